@@ -1,0 +1,117 @@
+"""Screening of incoming samples: every bad sample is rejected with a reason code.
+
+Screening never raises on data.  It returns the good samples and, for each
+rejected one, its position and a reason code from :data:`REASONS`.  The codes
+are stable: the daemon uses them as the ``reason`` label of its rejection
+counter and the replay command prints them.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Sequence
+
+import numpy as np
+from numpy.typing import NDArray
+
+#: Reason codes, with the sentence an operator reads.
+REASONS: dict[str, str] = {
+    "not_a_number": "value is not a number",
+    "nan": "value is NaN",
+    "infinite": "value is infinite",
+    "bad_time": "time stamp is missing, not finite or unreadable",
+    "duplicate_time": "time stamp repeats one already accepted for this stream",
+    "out_of_order": "time stamp is earlier than one already accepted for this stream",
+    "spike": "lone outlier far from the current level (held one sample, then discarded)",
+    "time_ahead": "time stamp is too far ahead of the receiving clock",
+    "time_behind": "time stamp is too far behind the receiving clock",
+    "stream_cap": "stream limit reached; new stream not admitted",
+}
+
+
+@dataclass(frozen=True)
+class Screened:
+    """Result of :func:`screen_samples`.
+
+    ``times``/``values`` hold the accepted samples in order, ``kept`` their
+    positions in the input, and ``rejected`` a list of ``(position, reason)``.
+    """
+
+    times: NDArray[np.float64]
+    values: NDArray[np.float64]
+    kept: NDArray[np.intp]
+    rejected: list[tuple[int, str]]
+
+
+def coerce_values(values: Sequence[Any] | NDArray[Any]) -> tuple[NDArray[np.float64], NDArray[np.bool_]]:
+    """Turn values into float64, marking those that are not numbers.
+
+    Only real numbers count (``bool`` and numeric text do not): text is the
+    business of the payload decoders, which know their formats.
+
+    Examples
+    --------
+    >>> v, bad = coerce_values([1, 2.5, "3", None, True])
+    >>> v[:2].tolist(), bad.tolist()
+    ([1.0, 2.5], [False, False, True, True, True])
+    """
+    if isinstance(values, np.ndarray) and values.dtype.kind in "fiu":
+        return values.astype(np.float64, copy=False), np.zeros(values.shape[0], dtype=bool)
+    out = np.empty(len(values), dtype=np.float64)
+    bad = np.zeros(len(values), dtype=bool)
+    for i, v in enumerate(values):
+        if isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, (bool, np.bool_)):
+            try:
+                out[i] = float(v)
+            except OverflowError:  # an int too large for a float
+                out[i] = np.inf if v > 0 else -np.inf
+        else:
+            out[i] = np.nan
+            bad[i] = True
+    return out, bad
+
+
+def screen_samples(
+    times: Sequence[Any] | NDArray[Any],
+    values: Sequence[Any] | NDArray[Any],
+    last_time: float = -np.inf,
+) -> Screened:
+    """Split a batch into accepted samples and rejections with reason codes.
+
+    Times must be finite and strictly increasing, also relative to
+    ``last_time``, the newest time already accepted for the stream.
+
+    Examples
+    --------
+    >>> s = screen_samples([1, 2, 2, 1.5, 3, 4], [1.0, float("nan"), 5.0, 2.0, "x", 7.0], last_time=0.5)
+    >>> s.times.tolist(), s.values.tolist(), s.rejected
+    ([1.0, 2.0, 4.0], [1.0, 5.0, 7.0], [(1, 'nan'), (3, 'out_of_order'), (4, 'not_a_number')])
+    >>> screen_samples([5, 5], [1.0, 2.0]).rejected
+    [(1, 'duplicate_time')]
+    """
+    t, bad_t = coerce_values(times)
+    v, bad_v = coerce_values(values)
+    if t.shape != v.shape:
+        raise ValueError(f"times and values differ in length: {t.shape[0]} != {v.shape[0]}")
+    n = t.shape[0]
+    reason = np.zeros(n, dtype=np.int8)  # 0 = accepted
+    codes = ["", "not_a_number", "nan", "infinite", "bad_time", "duplicate_time", "out_of_order"]
+    reason[np.isinf(v)] = 3
+    reason[np.isnan(v)] = 2
+    reason[bad_v] = 1
+    bad_time = bad_t | ~np.isfinite(t)
+    reason[bad_time] = 4
+    # Strictly increasing: compare each time with the newest earlier good time.
+    # Samples rejected for their value do not advance the clock of the stream.
+    tt = np.where(bad_time | (reason != 0), -np.inf, t)
+    prev = np.maximum.accumulate(np.concatenate(([last_time], tt[:-1]))) if n else tt
+    order_ok = tt > prev
+    dup = ~order_ok & (tt == prev) & (reason == 0)
+    ooo = ~order_ok & (tt < prev) & (reason == 0)
+    reason[dup] = 5
+    reason[ooo] = 6
+    keep = reason == 0
+    kept = np.flatnonzero(keep)
+    rej_idx = np.flatnonzero(~keep)
+    rejected = [(int(i), codes[reason[i]]) for i in rej_idx]
+    return Screened(times=t[kept], values=v[kept], kept=kept, rejected=rejected)

@@ -1,0 +1,118 @@
+"""Time stamps: RFC 3339 in and out, epoch seconds inside.
+
+The core carries every time as float seconds since the Unix epoch (UTC).
+These helpers only convert; none of them reads the clock.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from datetime import datetime, timezone
+
+_DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(ms|s|m|min|h|d|w)?\s*$")
+_UNIT_SECONDS = {"ms": 0.001, "s": 1.0, "m": 60.0, "min": 60.0, "h": 3600.0, "d": 86400.0, "w": 604800.0}
+
+
+def format_time(t: float) -> str:
+    """Format epoch seconds as RFC 3339 UTC with milliseconds and ``Z``.
+
+    Examples
+    --------
+    >>> format_time(0.0)
+    '1970-01-01T00:00:00.000Z'
+    >>> format_time(1764633600.25)
+    '2025-12-02T00:00:00.250Z'
+    """
+    ms = int(round(t * 1000.0))
+    sec, milli = divmod(ms, 1000)
+    dt = datetime.fromtimestamp(sec, tz=timezone.utc)
+    return dt.strftime("%Y-%m-%dT%H:%M:%S") + f".{milli:03d}Z"
+
+
+def parse_time(text: str | float | int) -> float:
+    """Parse RFC 3339 / ISO 8601 text or epoch seconds into epoch seconds.
+
+    A number (or numeric text) is taken as epoch seconds.  Text with a date is
+    parsed as ISO 8601; a missing offset is taken as UTC.  Raises ``ValueError``
+    with the offending text when it is neither.
+
+    Examples
+    --------
+    >>> parse_time("2025-12-02T00:00:00.250Z")
+    1764633600.25
+    >>> parse_time("1764633600.5")
+    1764633600.5
+    >>> parse_time("yesterday")
+    Traceback (most recent call last):
+    ...
+    ValueError: not an RFC 3339 time or epoch seconds: 'yesterday'
+    """
+    if isinstance(text, (int, float)) and not isinstance(text, bool):
+        value = float(text)
+        if not math.isfinite(value):
+            raise ValueError(f"time is not finite: {text!r}")
+        return value
+    s = str(text).strip()
+    if s and (s[0].isdigit() or s[0] in "+-.") and "-" not in s[1:] and ":" not in s:
+        try:
+            value = float(s)
+        except ValueError:
+            pass
+        else:
+            if math.isfinite(value):
+                return value
+            raise ValueError(f"time is not finite: {text!r}")
+    try:
+        dt = datetime.fromisoformat(s[:-1] + "+00:00" if s.endswith(("Z", "z")) else s)
+    except ValueError:
+        raise ValueError(f"not an RFC 3339 time or epoch seconds: {text!r}") from None
+    if dt.tzinfo is None:
+        dt = dt.replace(tzinfo=timezone.utc)
+    return dt.timestamp()
+
+
+def parse_duration(text: str | float | int) -> float:
+    """Parse a duration such as ``7d``, ``12h``, ``30 min``, ``1.5s`` or ``250ms`` into seconds.
+
+    A bare number is seconds.  Raises ``ValueError`` naming the text.
+
+    Examples
+    --------
+    >>> parse_duration("7d")
+    604800.0
+    >>> parse_duration("250ms")
+    0.25
+    >>> parse_duration(90)
+    90.0
+    """
+    if isinstance(text, (int, float)) and not isinstance(text, bool):
+        value = float(text)
+    else:
+        m = _DURATION.match(str(text))
+        if not m:
+            raise ValueError(
+                f"not a duration: {text!r} (use a number with a unit: ms, s, min, h, d or w, e.g. '7d')"
+            )
+        value = float(m.group(1)) * _UNIT_SECONDS[m.group(2) or "s"]
+    if not math.isfinite(value) or value <= 0:
+        raise ValueError(f"duration must be positive: {text!r}")
+    return value
+
+
+def format_duration(seconds: float) -> str:
+    """Render seconds in the largest unit that keeps it readable.
+
+    Examples
+    --------
+    >>> format_duration(604800)
+    '7 d'
+    >>> format_duration(90)
+    '1.5 min'
+    >>> format_duration(0.25)
+    '250 ms'
+    """
+    for unit, size in (("d", 86400.0), ("h", 3600.0), ("min", 60.0), ("s", 1.0)):
+        if seconds >= size:
+            return f"{seconds / size:.4g} {unit}"
+    return f"{seconds * 1000:.4g} ms"
