@@ -1,0 +1,604 @@
+"""The per-stream engine: warm-up, watching, and events that are confirmed or dismissed.
+
+One :class:`StreamEngine` watches one stream.  It is fed batches of samples
+with their times and returns the alert records the batch produced.  The same
+engine serves the daemon (live MQTT samples) and ``shiftwatch replay`` (CSV
+files), so both give the same alerts for the same samples.
+
+The engine moves through three states:
+
+``warming_up``
+    Collect ``warmup_samples`` and estimate a robust baseline (level, sigma,
+    lag-1 autocorrelation, sampling interval).  A warm-up that itself holds a
+    clear shift is restarted from the shift.
+``watching``
+    Standardise each sample on the baseline, prewhiten it when the feed is
+    autocorrelated, clip it, and feed the sequential test.  Lone spikes are
+    held for one sample and discarded when the next sample does not confirm
+    them.  The baseline is refined now and then from samples old enough that
+    a shift in progress cannot leak into it.
+``event_open``
+    The test tripped: the step has been fitted and a ``detected`` record
+    emitted.  Samples keep coming until the new level is known well enough;
+    then the step is refitted and the event ends as ``confirmed`` (the engine
+    warms up again on the new level) or ``dismissed`` (the old baseline stays).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+from collections import Counter
+from dataclasses import dataclass, field
+from typing import Any, NamedTuple, Sequence
+
+import numpy as np
+from numpy.typing import NDArray
+
+from shiftwatch.core.baseline import Baseline, estimate_baseline, merge_baselines
+from shiftwatch.core.screen import screen_samples
+from shiftwatch.core.sequential import SequentialTest
+from shiftwatch.core.settings import DetectionSettings
+from shiftwatch.core.stepfit import StepFit, StepFitter
+from shiftwatch.core.timefmt import format_time
+
+FloatArray = NDArray[np.float64]
+
+WARMING_UP = "warming_up"
+WATCHING = "watching"
+EVENT_OPEN = "event_open"
+
+#: Printed with every alert: shiftwatch advises, it does not protect.
+ADVISORY = (
+    "Advisory only: shiftwatch is not a safety function or interlock. "
+    "Follow site procedures before acting on equipment."
+)
+
+#: Field order of the alert record (the JSON contract shared with the daemon).
+RECORD_FIELDS = (
+    "id", "phase", "stream", "detected_at", "shift_at", "shift_at_low", "shift_at_high",
+    "level_before", "level_after", "delta", "delta_sigma", "sigma", "n_before", "n_after",
+    "test", "statistic", "threshold",
+)
+
+
+@dataclass(frozen=True)
+class AlertRecord:
+    """One record of an event.  ``phase`` is ``detected``, ``confirmed`` or ``dismissed``.
+
+    Times are epoch seconds here and RFC 3339 in :meth:`to_dict`.  ``as_of``
+    is the time of the sample that completed the record.
+    """
+
+    id: str
+    phase: str
+    stream: str
+    detected_at: float
+    shift_at: float
+    shift_at_low: float
+    shift_at_high: float
+    level_before: float
+    level_after: float
+    delta: float
+    delta_sigma: float
+    sigma: float
+    n_before: int
+    n_after: int
+    test: str
+    statistic: float
+    threshold: float
+    as_of: float
+    interval_level: float
+    level_before_se: float
+    level_after_se: float
+    f_stat: float
+    p_value: float
+    direction: str
+    unit: str | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        """The JSON form: contract fields first, then the extras."""
+        d: dict[str, Any] = {
+            "id": self.id,
+            "phase": self.phase,
+            "stream": self.stream,
+            "detected_at": format_time(self.detected_at),
+            "shift_at": format_time(self.shift_at),
+            "shift_at_low": format_time(self.shift_at_low),
+            "shift_at_high": format_time(self.shift_at_high),
+            "level_before": _round(self.level_before),
+            "level_after": _round(self.level_after),
+            "delta": _round(self.delta),
+            "delta_sigma": round(self.delta_sigma, 3),
+            "sigma": _round(self.sigma),
+            "n_before": self.n_before,
+            "n_after": self.n_after,
+            "test": self.test,
+            "statistic": round(self.statistic, 3),
+            "threshold": round(self.threshold, 3),
+            "as_of": format_time(self.as_of),
+            "direction": self.direction,
+            "interval_level": self.interval_level,
+            "level_before_se": _round(self.level_before_se),
+            "level_after_se": _round(self.level_after_se),
+            "f_stat": round(self.f_stat, 3),
+            "p_value": float(f"{self.p_value:.3g}"),
+            "advisory": ADVISORY,
+        }
+        if self.unit is not None:
+            d["unit"] = self.unit
+        return d
+
+
+def _round(x: float) -> float:
+    """Round to 6 significant digits for display without losing meaningful precision."""
+    if x == 0 or not math.isfinite(x):
+        return float(x)
+    return float(f"{x:.6g}")
+
+
+def event_id(stream: str, detected_at: float) -> str:
+    """A stable id for one event: the same stream and detection time give the same id.
+
+    Examples
+    --------
+    >>> event_id("line2/filler7/weight", 1764633600.0)
+    'e7c9e1b3d6e1a0a2'
+    """
+    h = hashlib.blake2b(f"{stream}|{detected_at:.3f}".encode(), digest_size=8)
+    return h.hexdigest()
+
+
+def make_test(settings: DetectionSettings, arl0: float, shift_z: float) -> SequentialTest:
+    """Build the configured sequential test for an in-control ARL of ``arl0`` samples.
+
+    ``shift_z`` is the smallest shift of interest in units of the test's input
+    (standardised, prewhitened residuals); CUSUM uses it for k.
+    """
+    if settings.test == "glr":
+        from shiftwatch.core.glr import GlrTest
+
+        return GlrTest.design(arl0, window=settings.glr_window)
+    if settings.test == "cusum":
+        from shiftwatch.core.cusum import CusumTest
+
+        return CusumTest.design(arl0, max(shift_z, 0.05))
+    from shiftwatch.core.river_adapter import RiverTest
+
+    return RiverTest(settings.test)
+
+
+@dataclass
+class _Event:
+    id: str
+    detected_at: float
+    test: str
+    statistic: float
+    threshold: float
+    required_after: int
+    trip_count: int  # samples in the fitter when the test tripped
+    first_fit: StepFit
+
+
+class Rejection(NamedTuple):
+    """A rejected sample: its position in the batch (-1 for a sample of an
+    earlier batch, such as one held for the spike check), reason code and time."""
+
+    position: int
+    reason: str
+    time: float
+
+
+@dataclass
+class BatchResult:
+    """What one call to :meth:`StreamEngine.process` produced."""
+
+    records: list[AlertRecord] = field(default_factory=list)
+    accepted: int = 0
+    rejected: list[Rejection] = field(default_factory=list)
+
+
+class StreamEngine:
+    """Watches one stream for level shifts.
+
+    Parameters
+    ----------
+    stream : the stream's name, carried into every record.
+    settings : detection settings (defaults when omitted).
+    unit : unit of the readings, carried into records when known.
+
+    Examples
+    --------
+    A 1-sigma step after 600 in-control samples of a 1 Hz fill weight:
+
+    >>> rng = np.random.default_rng(11)
+    >>> t = 1764633600.0 + np.arange(1000.0)
+    >>> x = 500.0 + 0.4 * rng.standard_normal(1000)
+    >>> x[600:] += 0.4
+    >>> eng = StreamEngine("filler3/weight")
+    >>> recs = eng.process(t, x).records
+    >>> [r.phase for r in recs]
+    ['detected', 'confirmed']
+    >>> abs(recs[-1].shift_at - t[600]) <= 3, round(recs[-1].delta, 1)
+    (True, 0.4)
+    """
+
+    def __init__(self, stream: str, settings: DetectionSettings | None = None, *,
+                 unit: str | None = None) -> None:
+        self.stream = stream
+        self.settings = settings if settings is not None else DetectionSettings()
+        self.unit = unit
+        self._reset()
+
+    # ------------------------------------------------------------------ state
+    def _reset(self) -> None:
+        self._state = WARMING_UP
+        self._fitter = StepFitter()
+        self._baseline: Baseline | None = None
+        self._test: SequentialTest | None = None
+        self._test_arl0 = 0.0
+        self._prev_r = 0.0
+        self._pending: tuple[float, float] | None = None  # held possible spike
+        self._event: _Event | None = None
+        self._refined_upto = 0  # fitter index up to which the baseline has absorbed samples
+        self._last_time = -math.inf
+        self.samples_total = 0
+        self.rejected_total: Counter[str] = Counter()
+        self.records_total: Counter[str] = Counter()
+        self.last_shift_at: float | None = None
+
+    @property
+    def state(self) -> str:
+        """``warming_up``, ``watching`` or ``event_open``."""
+        return self._state
+
+    @property
+    def baseline(self) -> Baseline | None:
+        return self._baseline
+
+    @property
+    def level(self) -> float | None:
+        """Current in-control level (None during the first warm-up)."""
+        return None if self._baseline is None else self._baseline.level
+
+    @property
+    def sigma(self) -> float | None:
+        return None if self._baseline is None else self._baseline.sigma
+
+    @property
+    def statistic(self) -> float:
+        return 0.0 if self._test is None else float(self._test.statistic)
+
+    @property
+    def threshold(self) -> float:
+        return math.nan if self._test is None else float(self._test.threshold)
+
+    @property
+    def test_name(self) -> str:
+        return self.settings.test
+
+    # ------------------------------------------------------------- feeding
+    def process(self, times: Sequence[Any] | FloatArray, values: Sequence[Any] | FloatArray) -> BatchResult:
+        """Feed a batch of samples (times in epoch seconds) and collect the records.
+
+        Bad samples are rejected with reason codes in the result; this method
+        does not raise on bad data.
+        """
+        scr = screen_samples(times, values, self._last_time)
+        raw_t = np.asarray(times, dtype=object) if scr.rejected else None
+        result = BatchResult(rejected=[Rejection(i, r, _time_or_nan(raw_t, i)) for i, r in scr.rejected])
+        t, x = scr.times, scr.values
+        if t.shape[0]:
+            self._last_time = float(t[-1])
+        kept = scr.kept
+        pos = 0
+        n = t.shape[0]
+        while pos < n:
+            if self._state == WARMING_UP:
+                used = self._warm(t[pos:], x[pos:], kept[pos:], result)
+            elif self._state == WATCHING:
+                used = self._watch(t[pos:], x[pos:], kept[pos:], result)
+            else:
+                used = self._track(t[pos:], x[pos:], kept[pos:], result)
+            pos += used
+        result.accepted = n
+        self.samples_total += len(scr.kept) + len(scr.rejected)
+        for rej in result.rejected:
+            self.rejected_total[rej.reason] += 1
+        for rec in result.records:
+            self.records_total[rec.phase] += 1
+        result.rejected.sort()
+        return result
+
+    # ------------------------------------------------------------ warm-up
+    def _append(self, t: FloatArray, x: FloatArray) -> None:
+        self._fitter.append(x, t)
+        excess = len(self._fitter) - self.settings.window_samples
+        if excess > 0 and self._state != EVENT_OPEN:
+            # Drop in chunks so the prefix sums are not shifted on every batch.
+            chunk = max(excess, self.settings.window_samples // 8)
+            chunk = min(chunk, len(self._fitter) - self.settings.warmup_samples)
+            if chunk > 0:
+                self._fitter.drop_front(chunk)
+                self._refined_upto = max(0, self._refined_upto - chunk)
+
+    def _warm(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
+        s = self.settings
+        need = s.warmup_samples - len(self._fitter)
+        take = min(need, t.shape[0])
+        self._fitter.append(x[:take], t[:take])
+        if len(self._fitter) < s.warmup_samples:
+            return take
+        wt, wx = self._fitter.times, self._fitter.values
+        b = estimate_baseline(wt, wx, clip=s.clip_sigma, min_sigma=s.min_sigma)
+        lone, _ = lone_outliers((wx - b.level) / b.sigma, s.spike_sigma)
+        if lone.any():
+            # Spikes inside the warm-up: discard them and wait for more samples.
+            first = wt.shape[0] - take  # window index of this call's first sample
+            result.rejected.extend(
+                Rejection(int(idx[j - first]) if j >= first else -1, "spike", float(wt[j]))
+                for j in np.flatnonzero(lone))
+            keep_t, keep_x = wt[~lone].copy(), wx[~lone].copy()
+            self._fitter = StepFitter(keep_x, keep_t)
+            return take
+        # A warm-up that holds a clear shift starts again from the shift.
+        clipped = b.level + np.clip((wx - b.level) / b.sigma, -s.clip_sigma, s.clip_sigma) * b.sigma
+        fit = _fit(clipped, wt, level=s.interval_level, variance_factor=_variance_factor(b.phi))
+        if (fit is not None and fit.p_value < s.confirm_p_value
+                and abs(fit.delta) >= 0.5 * s.min_shift_sigma * b.sigma):
+            self._fitter.drop_front(fit.index)
+            return take
+        self._start_watching(b)
+        return take
+
+    def _start_watching(self, b: Baseline) -> None:
+        self._baseline = b
+        self._state = WATCHING
+        self._design_test()
+        self._prev_r = 0.0
+        self._pending = None
+        self._refined_upto = len(self._fitter)
+
+    def _design_test(self) -> None:
+        b = self._baseline
+        assert b is not None
+        arl0 = self.settings.arl0(b.interval)
+        shift_z = self.settings.min_shift_sigma * b.sigma * (1.0 - b.phi) / b.innovation_sigma
+        self._test = make_test(self.settings, arl0, shift_z)
+        self._test_arl0 = arl0
+
+    # ----------------------------------------------------------- watching
+    def _split_spikes(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], center: float,
+                      sigma: float, final: bool) -> tuple[FloatArray, FloatArray, list[Rejection]]:
+        """Drop lone spikes from a segment; hold a trailing outlier for the next batch.
+
+        A sample further than ``spike_sigma`` from ``center`` is a lone spike
+        unless a neighbour deviates the same way (then it is the start of a
+        large step).  Returns the kept times and values, and the (input
+        position, time) of each spike dropped.  A held sample from the previous
+        batch is put in front (its position is -1).
+        """
+        s = self.settings
+        if self._pending is not None:
+            t = np.concatenate(([self._pending[0]], t))
+            x = np.concatenate(([self._pending[1]], x))
+            idx = np.concatenate(([-1], idx))
+            self._pending = None
+        lone, out_last = lone_outliers((x - center) / sigma, s.spike_sigma)
+        keep = ~lone
+        if out_last and not final:
+            # Cannot tell yet: hold it until the next sample arrives.
+            lone[-1] = False
+            keep[-1] = False
+            self._pending = (float(t[-1]), float(x[-1]))
+        spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in np.flatnonzero(lone)]
+        return t[keep], x[keep], spikes
+
+    def _watch(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
+        s = self.settings
+        b = self._baseline
+        test = self._test
+        assert b is not None and test is not None
+        kt, kx, spikes = self._split_spikes(t, x, idx, b.level, b.sigma, final=False)
+        if kt.shape[0] == 0:
+            result.rejected.extend(spikes)
+            return t.shape[0]
+        r = kx - b.level
+        prev = np.empty_like(r)
+        prev[0] = self._prev_r
+        prev[1:] = r[:-1]
+        z = np.clip((r - b.phi * prev) / b.innovation_sigma, -s.clip_sigma, s.clip_sigma)
+        trip = test.update(z)
+        if trip < 0:
+            result.rejected.extend(spikes)
+            self._prev_r = float(r[-1])
+            self._append(kt, kx)
+            self._maybe_refine()
+            return t.shape[0]
+        # Consume up to and including the tripping sample; the rest is fed to
+        # the event that opens now (a sample held for the spike check included).
+        t_trip = float(kt[trip])
+        result.rejected.extend(r for r in spikes if r.time < t_trip)
+        self._pending = None
+        self._prev_r = float(r[trip])
+        self._append(kt[: trip + 1], kx[: trip + 1])
+        self._open_event(t_trip, result)
+        return int(np.searchsorted(t, t_trip, side="right"))
+
+    def _maybe_refine(self) -> None:
+        """Refine the baseline from samples that are too old to hide a shift in progress."""
+        s = self.settings
+        b = self._baseline
+        assert b is not None
+        guard = max(s.glr_window, s.warmup_samples)
+        upto = len(self._fitter) - guard
+        block = max(s.warmup_samples, 256, b.n // 2) if b.n < s.baseline_memory else s.window_samples // 2
+        if upto - self._refined_upto < block:
+            return
+        vals = self._fitter.values[self._refined_upto:upto]
+        tms = self._fitter.times[self._refined_upto:upto]
+        self._refined_upto = upto
+        fresh = estimate_baseline(tms, vals, clip=s.clip_sigma, min_sigma=s.min_sigma)
+        # Robustly ignore a block whose level is far from the baseline (an
+        # undetected shift must not be absorbed faster than the memory allows).
+        self._baseline = merge_baselines(b, fresh, s.baseline_memory)
+        nb = self._baseline
+        if abs(nb.interval - b.interval) > 0.1 * b.interval:
+            self._design_test()
+
+    # ------------------------------------------------------------- events
+    def _open_event(self, detected_at: float, result: BatchResult) -> None:
+        s = self.settings
+        b = self._baseline
+        test = self._test
+        assert b is not None and test is not None
+        fit = self._fit_window(b)
+        ev = _Event(
+            id=event_id(self.stream, detected_at),
+            detected_at=detected_at,
+            test=test.name,
+            statistic=float(test.statistic),
+            threshold=float(test.threshold),
+            required_after=self._required_after(fit, b),
+            trip_count=len(self._fitter),
+            first_fit=fit,
+        )
+        self._event = ev
+        self._state = EVENT_OPEN
+        result.records.append(self._record(ev, fit, "detected", detected_at))
+
+    def _fit_window(self, b: Baseline) -> StepFit:
+        """Fit the step over the rolling window, reusing the fitter's running sums."""
+        return self._fitter.fit(level=self.settings.interval_level, min_segment=2,
+                                variance_factor=_variance_factor(b.phi))
+
+    def _required_after(self, fit: StepFit, b: Baseline) -> int:
+        s = self.settings
+        # The detected step is biased upward (it is what tripped the test), so
+        # plan for the smaller of it and the smallest shift of interest.
+        size = max(min(abs(fit.delta) / b.sigma, s.min_shift_sigma), 0.25 * s.min_shift_sigma)
+        n = math.ceil((1.0 / (s.confirm_precision * size)) ** 2 * _variance_factor(b.phi))
+        return int(min(max(n, s.confirm_min_samples), s.confirm_max_samples))
+
+    def _track(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
+        s = self.settings
+        ev = self._event
+        b = self._baseline
+        assert ev is not None and b is not None
+        fit0 = ev.first_fit
+        n_after_now = len(self._fitter) - fit0.index
+        since_trip = len(self._fitter) - ev.trip_count
+        need = max(min(ev.required_after - n_after_now, s.confirm_max_samples - since_trip), 0)
+        if need == 0:
+            self._decide(result, float(self._fitter.times[-1]))
+            return 0
+        take = min(need, t.shape[0])
+        kt, kx, spikes = self._split_spikes(t[:take], x[:take], idx[:take], fit0.level_after, b.sigma,
+                                            final=True)
+        result.rejected.extend(spikes)
+        self._fitter.append(kx, kt)
+        if take == need:
+            self._decide(result, float(t[take - 1]))
+        return take
+
+    def _decide(self, result: BatchResult, as_of: float) -> None:
+        s = self.settings
+        ev = self._event
+        b = self._baseline
+        assert ev is not None and b is not None
+        fit = self._fit_window(b)
+        real = (fit.p_value < s.confirm_p_value
+                and abs(fit.delta) >= 0.5 * s.min_shift_sigma * b.sigma
+                and fit.n_after >= s.confirm_min_samples)
+        phase = "confirmed" if real else "dismissed"
+        result.records.append(self._record(ev, fit, phase, as_of))
+        self._event = None
+        assert self._test is not None
+        self._test.reset()
+        if real:
+            self.last_shift_at = fit.shift_at
+            # Warm up again on the new level, keeping what we know of it.
+            self._fitter.drop_front(fit.index)
+            self._state = WARMING_UP
+            self._pending = None
+            if len(self._fitter) >= s.warmup_samples:
+                self._warm(np.empty(0), np.empty(0), np.empty(0, dtype=np.intp), result)
+        else:
+            self._state = WATCHING
+            self._prev_r = float(self._fitter.values[-1] - b.level)
+            self._refined_upto = min(self._refined_upto, len(self._fitter))
+
+    def _record(self, ev: _Event, fit: StepFit, phase: str, as_of: float) -> AlertRecord:
+        return AlertRecord(
+            id=ev.id,
+            phase=phase,
+            stream=self.stream,
+            detected_at=ev.detected_at,
+            shift_at=fit.shift_at,
+            shift_at_low=fit.shift_at_low,
+            shift_at_high=fit.shift_at_high,
+            level_before=fit.level_before,
+            level_after=fit.level_after,
+            delta=fit.delta,
+            delta_sigma=fit.delta_sigma,
+            sigma=fit.sigma,
+            n_before=fit.n_before,
+            n_after=fit.n_after,
+            test=ev.test,
+            statistic=ev.statistic,
+            threshold=ev.threshold,
+            as_of=as_of,
+            interval_level=fit.interval_level,
+            level_before_se=fit.level_before_se,
+            level_after_se=fit.level_after_se,
+            f_stat=fit.f_stat,
+            p_value=fit.p_value,
+            direction="up" if fit.delta > 0 else "down",
+            unit=self.unit,
+        )
+
+
+def lone_outliers(dev: FloatArray, limit: float) -> tuple[NDArray[np.bool_], bool]:
+    """Flag lone outliers among standardised deviations.
+
+    A deviation beyond ``limit`` is a lone outlier unless a neighbour deviates
+    beyond it in the same direction (the start of a large step).  Returns the
+    mask and whether the last sample is an outlier whose next neighbour is not
+    yet known (the caller may hold it).
+
+    Examples
+    --------
+    >>> m, last = lone_outliers(np.array([0.1, 9.0, 0.2, 7.0, 8.0, -0.3, 6.0]), 5.0)
+    >>> m.tolist(), last
+    ([False, True, False, False, False, False, True], True)
+    """
+    out = np.abs(dev) > limit
+    if not out.any():
+        return out, False
+    sign = np.sign(dev)
+    same_prev = np.zeros_like(out)
+    same_prev[1:] = out[1:] & out[:-1] & (sign[1:] == sign[:-1])
+    same_next = np.zeros_like(out)
+    same_next[:-1] = same_prev[1:]
+    lone = out & ~same_prev & ~same_next
+    return lone, bool(lone[-1])
+
+
+def _time_or_nan(raw: NDArray[Any] | None, i: int) -> float:
+    try:
+        return float(raw[i]) if raw is not None else math.nan
+    except (TypeError, ValueError, OverflowError):
+        return math.nan
+
+
+def _variance_factor(phi: float) -> float:
+    """Long-run over marginal variance for AR(1) noise: (1 + phi) / (1 - phi), at least 1."""
+    return max(1.0, (1.0 + phi) / (1.0 - phi))
+
+
+def _fit(values: FloatArray, times: FloatArray, *, level: float, variance_factor: float) -> StepFit | None:
+    from shiftwatch.core.stepfit import fit_step
+
+    if values.shape[0] < 5:
+        return None
+    return fit_step(values, times, level=level, min_segment=2, variance_factor=variance_factor)

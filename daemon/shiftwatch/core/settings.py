@@ -1,0 +1,122 @@
+"""Detection settings, in plant terms, and how they become test parameters."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, fields
+from typing import Any
+
+from shiftwatch.core.timefmt import parse_duration
+
+#: The sequential tests a stream can use.
+TEST_NAMES = ("glr", "cusum", "page_hinkley", "adwin")
+
+
+@dataclass(frozen=True)
+class DetectionSettings:
+    """How one stream is watched.
+
+    The two settings a plant chooses are ``min_shift_sigma`` (the smallest
+    step worth an alert, in noise sigmas) and ``false_alarm_every`` (how long,
+    on average, an in-control stream runs between false alarms, in seconds).
+    The rest have defaults chosen by measurement (see the README).
+
+    Examples
+    --------
+    >>> s = DetectionSettings(min_shift_sigma=1.5)
+    >>> s.test, s.false_alarm_every
+    ('glr', 604800.0)
+    >>> s.arl0(interval=2.0)
+    302400.0
+    >>> DetectionSettings(test="ewma")
+    Traceback (most recent call last):
+    ...
+    ValueError: test: 'ewma' is not one of glr, cusum, page_hinkley, adwin
+    """
+
+    #: smallest step of interest, in sigmas of the noise
+    min_shift_sigma: float = 1.0
+    #: mean time between false alarms on an in-control stream, seconds
+    false_alarm_every: float = 7 * 86400.0
+    #: which sequential test: glr (default), cusum, page_hinkley, adwin
+    test: str = "glr"
+    #: samples used to learn the baseline before watching starts (and after each confirmed shift)
+    warmup_samples: int = 120
+    #: most samples kept per stream for the step fit
+    window_samples: int = 1200
+    #: residuals are clipped to +-clip_sigma before they reach the test
+    clip_sigma: float = 3.0
+    #: a lone sample further than this many sigmas from the level is a spike and is discarded
+    spike_sigma: float = 5.0
+    #: confidence level of the shift-time interval
+    interval_level: float = 0.9
+    #: an event is decided once the new level's standard error is this fraction of the step
+    confirm_precision: float = 0.25
+    #: samples after the shift before an event is decided, at least
+    confirm_min_samples: int = 8
+    #: samples after the trip before an event is decided, at most
+    confirm_max_samples: int = 600
+    #: an event is dismissed unless its one-shift test has a p-value below this
+    confirm_p_value: float = 0.001
+    #: floor for sigma in reading units (None: from the reading resolution)
+    min_sigma: float | None = None
+    #: longest segment, in samples, over which the GLR test looks for a shift
+    glr_window: int = 400
+    #: weight, in samples, at which the baseline's memory is capped when it is refined
+    baseline_memory: int = 20000
+
+    def __post_init__(self) -> None:
+        def bad(name: str, why: str) -> None:
+            raise ValueError(f"{name}: {why}")
+
+        if self.test not in TEST_NAMES:
+            bad("test", f"{self.test!r} is not one of {', '.join(TEST_NAMES)}")
+        for name in ("min_shift_sigma", "false_alarm_every", "clip_sigma", "spike_sigma",
+                     "confirm_precision"):
+            v = getattr(self, name)
+            if not isinstance(v, (int, float)) or isinstance(v, bool) or not math.isfinite(v) or v <= 0:
+                bad(name, f"must be a positive number, got {v!r}")
+        for name in ("warmup_samples", "window_samples", "confirm_min_samples",
+                     "confirm_max_samples", "glr_window", "baseline_memory"):
+            v = getattr(self, name)
+            if not isinstance(v, int) or isinstance(v, bool) or v < 1:
+                bad(name, f"must be a positive whole number, got {v!r}")
+        if self.warmup_samples < 20:
+            bad("warmup_samples", f"must be at least 20, got {self.warmup_samples}")
+        if self.window_samples < 2 * self.warmup_samples:
+            bad("window_samples", f"must be at least twice warmup_samples ({2 * self.warmup_samples}), "
+                f"got {self.window_samples}")
+        if not 0.5 <= self.interval_level < 1.0:
+            bad("interval_level", f"must be in [0.5, 1), got {self.interval_level!r}")
+        if not 0.0 < self.confirm_p_value < 1.0:
+            bad("confirm_p_value", f"must be in (0, 1), got {self.confirm_p_value!r}")
+        if self.spike_sigma <= self.clip_sigma:
+            bad("spike_sigma", f"must exceed clip_sigma ({self.clip_sigma}), got {self.spike_sigma}")
+        if self.min_sigma is not None and not (self.min_sigma > 0):
+            bad("min_sigma", f"must be positive or null, got {self.min_sigma!r}")
+        if self.confirm_max_samples < self.confirm_min_samples:
+            bad("confirm_max_samples", "must be at least confirm_min_samples")
+
+    def arl0(self, interval: float) -> float:
+        """In-control average run length, in samples, for a sampling interval in seconds."""
+        return max(self.false_alarm_every / interval, 10.0)
+
+    @classmethod
+    def from_mapping(cls, data: dict[str, Any], base: "DetectionSettings | None" = None) -> "DetectionSettings":
+        """Build settings from a mapping (e.g. YAML), over ``base`` or the defaults.
+
+        ``false_alarm_every`` accepts a duration such as ``7d``.  Unknown keys
+        raise ``ValueError`` naming the key.
+        """
+        known = {f.name for f in fields(cls)}
+        values: dict[str, Any] = {} if base is None else {f.name: getattr(base, f.name) for f in fields(cls)}
+        for key, value in data.items():
+            if key not in known:
+                raise ValueError(f"{key}: unknown setting (known: {', '.join(sorted(known))})")
+            if key == "false_alarm_every":
+                value = parse_duration(value)
+            values[key] = value
+        return cls(**values)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {f.name: getattr(self, f.name) for f in fields(self)}
