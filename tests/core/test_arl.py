@@ -78,7 +78,9 @@ LUCAS_CROSIER_TABLE_1 = [
 
 
 @pytest.mark.parametrize(("h", "shift", "published"), LUCAS_CROSIER_TABLE_1)
-def test_two_sided_arl_matches_lucas_crosier_table_1(h: float, shift: float, published: float) -> None:
+def test_two_sided_arl_matches_lucas_crosier_table_1(
+    h: float, shift: float, published: float
+) -> None:
     # Lucas & Crosier (1982), Technometrics 24, Table 1 (k = 0.5): within 1 %.
     got = cusum_arl(0.5, h, shift)
     assert got == pytest.approx(published, rel=0.01)
@@ -155,7 +157,9 @@ def _decimal_chain_arl(k: float, h: float, shift: float, states: int) -> float:
     return float(x[0])
 
 
-@pytest.mark.parametrize(("k", "h", "shift"), [(0.5, 12.0, -2.0), (0.5, 20.0, 0.0), (0.5, 4.0, 1.0)])
+@pytest.mark.parametrize(
+    ("k", "h", "shift"), [(0.5, 12.0, -2.0), (0.5, 20.0, 0.0), (0.5, 4.0, 1.0)]
+)
 def test_chain_solver_matches_high_precision_elimination(k: float, h: float, shift: float) -> None:
     # The same Brook & Evans (1972) chain, built independently with scipy.stats
     # and solved by ordinary elimination at 80 significant digits, must match
@@ -195,7 +199,9 @@ def test_large_arl_stays_accurate() -> None:
         (0.5, 3.0, 0.5, 1.5, 40_000),  # head start, two-sided combination formula
     ],
 )
-def test_arl_agrees_with_simulation(k: float, h: float, shift: float, head_start: float, reps: int) -> None:
+def test_arl_agrees_with_simulation(
+    k: float, h: float, shift: float, head_start: float, reps: int
+) -> None:
     # Direct simulation of the recursion, fixed random state; the run length
     # has sd close to its mean, so 40 000 replications give a standard error
     # of about 0.5 %; we allow four standard errors plus 1 % for the

@@ -565,9 +565,11 @@ def _two_sided_zero_state(k: float, h: float) -> float:
     return 0.5 * _Chain(k, h, 0.0).expected_run_lengths()[0]
 
 
-def arl_table(k: float, h: float, shifts: list[float] | tuple[float, ...] | FloatArray) -> list[
-    tuple[float, float, float]
-]:
+def arl_table(
+    k: float,
+    h: float,
+    shifts: list[float] | tuple[float, ...] | FloatArray,
+) -> list[tuple[float, float, float]]:
     """Rows ``(shift, ARL, median run length)`` of the two-sided CUSUM.
 
     Parameters

@@ -113,7 +113,9 @@ class CusumTest(SequentialTest):
         """
         ms = float(min_shift)
         if not (math.isfinite(ms) and ms > 0.0):
-            raise ValueError(f"min_shift must be a finite number > 0 (sigma units), got {min_shift!r}")
+            raise ValueError(
+                f"min_shift must be a finite number > 0 (sigma units), got {min_shift!r}"
+            )
         a = float(arl0)
         if not (math.isfinite(a) and a > 1.0):
             raise ValueError(f"arl0 must be a finite number > 1 (samples), got {arl0!r}")
