@@ -488,7 +488,10 @@ class StreamEngine:
         fit0 = ev.first_fit
         n_after_now = len(self._fitter) - fit0.index
         since_trip = len(self._fitter) - ev.trip_count
-        need = max(min(ev.required_after - n_after_now, s.confirm_max_samples - since_trip), 0)
+        # Decide once the new level is known well enough, and never on the
+        # samples that tripped the test alone: some must come after the trip.
+        wanted = max(ev.required_after - n_after_now, s.confirm_min_samples - since_trip)
+        need = max(min(wanted, s.confirm_max_samples - since_trip), 0)
         if need == 0:
             self._decide(result, float(self._fitter.times[-1]))
             return 0

@@ -47,10 +47,10 @@ from shiftwatch.core.sequential import FloatArray, SequentialTest
 DEFAULT_WINDOW = 400
 
 #: Every lag from 1 to this value is evaluated.
-DENSE_LAGS = 24
+DENSE_LAGS = 10
 
 #: Growth factor of the sparse lags above ``DENSE_LAGS``.
-LAG_RATIO = 1.12
+LAG_RATIO = 1.15
 
 
 def default_lags(window: int) -> tuple[int, ...]:

@@ -99,7 +99,7 @@ class DetectionSettings:
 
     def arl0(self, interval: float) -> float:
         """In-control average run length, in samples, for a sampling interval in seconds."""
-        return max(self.false_alarm_every / interval, 10.0)
+        return max(self.false_alarm_every / interval, 50.0)
 
     @classmethod
     def from_mapping(cls, data: dict[str, Any], base: "DetectionSettings | None" = None) -> "DetectionSettings":

@@ -1,0 +1,469 @@
+"""The configuration file: loaded with ``yaml.safe_load`` semantics and validated in one place.
+
+Every error names the YAML key path and the line, for example::
+
+    config.yaml:14: streams[1].detection.min_shift_sigma: must be a positive number, got -1
+
+Unknown keys are errors with a "did you mean" hint.  The same definitions
+produce the JSON Schema shipped in ``config/`` (:func:`json_schema`).
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+from dataclasses import MISSING, dataclass, field, fields
+from pathlib import Path
+from typing import Any, Callable
+
+import yaml
+
+from shiftwatch.core.settings import TEST_NAMES, DetectionSettings
+from shiftwatch.core.timefmt import parse_duration
+
+
+class ConfigError(ValueError):
+    """A configuration problem: carries the file, line and key path."""
+
+    def __init__(self, path: str, message: str, *, file: str | None = None, line: int | None = None):
+        self.key_path = path
+        self.message = message
+        self.file = file
+        self.line = line
+        where = file or "config"
+        if line is not None:
+            where += f":{line}"
+        super().__init__(f"{where}: {path}: {message}" if path else f"{where}: {message}")
+
+
+# --------------------------------------------------------------------- schema
+@dataclass(frozen=True)
+class Key:
+    """One key of a section: its type checker, default and description."""
+
+    check: Callable[[Any], Any]
+    default: Any = MISSING
+    help: str = ""
+    schema: dict[str, Any] = field(default_factory=dict)
+
+
+def _num(positive: bool = True, integer: bool = False, minimum: float | None = None) -> Callable[[Any], Any]:
+    def check(v: Any) -> Any:
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+            raise ValueError(f"must be a {'whole ' if integer else ''}number, got {v!r}")
+        if integer and not float(v).is_integer():
+            raise ValueError(f"must be a whole number, got {v!r}")
+        if positive and v <= 0:
+            raise ValueError(f"must be positive, got {v!r}")
+        if minimum is not None and v < minimum:
+            raise ValueError(f"must be at least {minimum}, got {v!r}")
+        return int(v) if integer else float(v)
+
+    return check
+
+
+def _str(choices: tuple[str, ...] | None = None, nonempty: bool = True) -> Callable[[Any], Any]:
+    def check(v: Any) -> Any:
+        if not isinstance(v, str):
+            raise ValueError(f"must be text, got {v!r}")
+        if nonempty and not v.strip():
+            raise ValueError("must not be empty")
+        if choices is not None and v not in choices:
+            raise ValueError(f"{v!r} is not one of {', '.join(choices)}")
+        return v
+
+    return check
+
+
+def _duration(v: Any) -> float:
+    return parse_duration(v)
+
+
+def _bool(v: Any) -> bool:
+    if not isinstance(v, bool):
+        raise ValueError(f"must be true or false, got {v!r}")
+    return v
+
+
+def _optional(check: Callable[[Any], Any]) -> Callable[[Any], Any]:
+    def inner(v: Any) -> Any:
+        return None if v is None else check(v)
+
+    return inner
+
+
+_DETECTION_HELP = {
+    "min_shift_sigma": "smallest step worth an alert, in sigmas of the noise",
+    "false_alarm_every": "mean time between false alarms on a stream that has not changed (e.g. 7d)",
+    "test": "sequential test: glr, cusum, page_hinkley or adwin",
+    "warmup_samples": "samples used to learn the baseline before watching starts",
+    "window_samples": "most samples kept per stream for the step fit",
+    "clip_sigma": "residuals are clipped to this many sigmas before they reach the test",
+    "spike_sigma": "a lone sample further than this many sigmas from the level is discarded",
+    "interval_level": "confidence level of the shift-time interval",
+    "confirm_precision": "decide an event once the new level's standard error is this fraction of the step",
+    "confirm_min_samples": "samples after the shift before an event is decided, at least",
+    "confirm_max_samples": "samples after the trip before an event is decided, at most",
+    "confirm_p_value": "dismiss an event unless its one-shift test has a p-value below this",
+    "min_sigma": "floor for sigma in reading units (null: from the reading resolution)",
+    "glr_window": "longest segment, in samples, the GLR test considers",
+    "baseline_memory": "weight, in samples, at which the baseline's memory is capped",
+}
+
+
+def _detection_keys() -> dict[str, Key]:
+    keys: dict[str, Key] = {}
+    defaults = DetectionSettings()
+    for f in fields(DetectionSettings):
+        default = getattr(defaults, f.name)
+        if f.name == "false_alarm_every":
+            keys[f.name] = Key(_duration, "7d", _DETECTION_HELP[f.name], {"type": ["string", "number"]})
+        elif f.name == "test":
+            keys[f.name] = Key(_str(TEST_NAMES), default, _DETECTION_HELP[f.name], {"enum": list(TEST_NAMES)})
+        elif f.name == "min_sigma":
+            keys[f.name] = Key(_optional(_num()), None, _DETECTION_HELP[f.name], {"type": ["number", "null"]})
+        elif isinstance(default, int):
+            keys[f.name] = Key(_num(integer=True), default, _DETECTION_HELP[f.name], {"type": "integer"})
+        else:
+            keys[f.name] = Key(_num(), default, _DETECTION_HELP[f.name], {"type": "number"})
+    return keys
+
+
+DETECTION_KEYS = _detection_keys()
+
+TLS_KEYS = {
+    "ca_file": Key(_optional(_str()), None, "CA certificate bundle (PEM) that signs the broker's certificate"),
+    "cert_file": Key(_optional(_str()), None, "client certificate (PEM), for brokers that want one"),
+    "key_file": Key(_optional(_str()), None, "client private key (PEM)"),
+}
+
+BROKER_KEYS = {
+    "url": Key(_str(), "mqtt://127.0.0.1:1883", "mqtt://host:port, or mqtts://host:port for TLS"),
+    "client_id": Key(_str(), "shiftwatch", "fixed MQTT client id (keeps the persistent session across restarts)"),
+    "username": Key(_optional(_str()), None, "user name for the broker"),
+    "password_file": Key(_optional(_str()), None, "file holding the password (first line)"),
+    "password_env": Key(_optional(_str()), None, "environment variable holding the password"),
+    "tls": Key(lambda v: v, None, "TLS settings: ca_file, cert_file, key_file"),
+    "keepalive": Key(_num(integer=True), 30, "MQTT keepalive in seconds"),
+    "mqtt_version": Key(_str(("5", "3.1.1")), "5", "MQTT protocol version: 5 or 3.1.1"),
+    "session_expiry": Key(_duration, "1d", "how long the broker keeps our session and queued samples while we are away"),
+    "qos": Key(_num(integer=True, positive=False), 1, "subscription QoS (0, 1)"),
+    "max_payload_bytes": Key(_num(integer=True), 65536, "messages larger than this are rejected before parsing"),
+}
+
+STREAM_KEYS = {
+    "topic": Key(_str(), MISSING, "MQTT topic filter; every topic it matches is one stream"),
+    "format": Key(_str(("number", "json", "senml")), "json", "payload format: number, json or senml"),
+    "value": Key(_str(), "value", "key or dot path of the value in a JSON payload"),
+    "time": Key(_optional(_str()), None, "key or dot path of the time stamp in a JSON payload (absent: arrival time)"),
+    "unit": Key(_optional(_str()), None, "unit of the readings, shown in alerts"),
+    "detection": Key(lambda v: v, None, "per-stream overrides of the detection settings"),
+}
+
+ALERTS_KEYS = {
+    "topic_prefix": Key(_str(), "shiftwatch", "alerts go to <prefix>/alerts/<stream>, levels to <prefix>/levels/<stream>"),
+    "qos": Key(_num(integer=True, positive=False), 1, "QoS of alert records"),
+    "outbox_max": Key(_num(integer=True), 10000, "alert records kept for delivery while the broker is unreachable"),
+}
+
+METRICS_KEYS = {
+    "listen": Key(_str(), "127.0.0.1:9650", "host:port of the Prometheus endpoint"),
+    "max_streams": Key(_num(integer=True), 10000, "most streams tracked (and labelled in metrics)"),
+}
+
+STATE_KEYS = {
+    "dir": Key(_str(), "/var/lib/shiftwatch", "directory for snapshots and the alert outbox"),
+    "snapshot_every": Key(_duration, "60s", "how often stream state is snapshotted"),
+}
+
+TOP_KEYS = {
+    "broker": Key(lambda v: v, None, "MQTT broker connection"),
+    "streams": Key(lambda v: v, None, "which topics to watch and how to read them"),
+    "detection": Key(lambda v: v, None, "default detection settings for every stream"),
+    "alerts": Key(lambda v: v, None, "where alert records go"),
+    "metrics": Key(lambda v: v, None, "Prometheus endpoint"),
+    "state": Key(lambda v: v, None, "where state survives restarts"),
+}
+
+
+# --------------------------------------------------------------- the result
+@dataclass(frozen=True)
+class TlsConfig:
+    ca_file: str | None = None
+    cert_file: str | None = None
+    key_file: str | None = None
+
+
+@dataclass(frozen=True)
+class BrokerConfig:
+    url: str = "mqtt://127.0.0.1:1883"
+    client_id: str = "shiftwatch"
+    username: str | None = None
+    password_file: str | None = None
+    password_env: str | None = None
+    tls: TlsConfig | None = None
+    keepalive: int = 30
+    mqtt_version: str = "5"
+    session_expiry: float = 86400.0
+    qos: int = 1
+    max_payload_bytes: int = 65536
+
+
+@dataclass(frozen=True)
+class StreamConfig:
+    topic: str
+    format: str = "json"
+    value: str = "value"
+    time: str | None = None
+    unit: str | None = None
+    detection: DetectionSettings = field(default_factory=DetectionSettings)
+
+
+@dataclass(frozen=True)
+class AlertsConfig:
+    topic_prefix: str = "shiftwatch"
+    qos: int = 1
+    outbox_max: int = 10000
+
+
+@dataclass(frozen=True)
+class MetricsConfig:
+    listen: str = "127.0.0.1:9650"
+    max_streams: int = 10000
+
+
+@dataclass(frozen=True)
+class StateConfig:
+    dir: str = "/var/lib/shiftwatch"
+    snapshot_every: float = 60.0
+
+
+@dataclass(frozen=True)
+class Config:
+    broker: BrokerConfig = field(default_factory=BrokerConfig)
+    streams: tuple[StreamConfig, ...] = ()
+    detection: DetectionSettings = field(default_factory=DetectionSettings)
+    alerts: AlertsConfig = field(default_factory=AlertsConfig)
+    metrics: MetricsConfig = field(default_factory=MetricsConfig)
+    state: StateConfig = field(default_factory=StateConfig)
+    source: str | None = None
+
+    def settings_for(self, stream: str) -> DetectionSettings:
+        """Detection settings for a stream name: the first stream entry whose filter matches, else the defaults."""
+        sc = self.stream_for(stream)
+        return self.detection if sc is None else sc.detection
+
+    def stream_for(self, stream: str) -> StreamConfig | None:
+        for sc in self.streams:
+            if topic_matches(sc.topic, stream):
+                return sc
+        return None
+
+
+def topic_matches(pattern: str, topic: str) -> bool:
+    """MQTT topic-filter matching (``+`` one level, ``#`` the rest), per the MQTT specification.
+
+    A stream named ``topic/senml-name`` (one stream per SenML name) also
+    matches a filter that matches its topic.
+
+    Examples
+    --------
+    >>> topic_matches("plant/+/weight", "plant/f1/weight")
+    True
+    >>> topic_matches("plant/#", "plant/f1/weight")
+    True
+    >>> topic_matches("plant/+", "plant/f1/weight")
+    False
+    """
+    p = pattern.split("/")
+    t = topic.split("/")
+    for i, part in enumerate(p):
+        if part == "#":
+            return True
+        if i >= len(t):
+            return False
+        if part != "+" and part != t[i]:
+            return False
+    return len(t) == len(p)
+
+
+# --------------------------------------------------------------- validation
+class _Loader:
+    """Walks the YAML node tree so every value keeps its line number."""
+
+    def __init__(self, file: str | None):
+        self.file = file
+
+    def error(self, path: str, message: str, node: yaml.Node | None) -> ConfigError:
+        line = node.start_mark.line + 1 if node is not None else None
+        return ConfigError(path, message, file=self.file, line=line)
+
+    def plain(self, node: yaml.Node) -> Any:
+        # safe_load semantics for a sub-tree.
+        return yaml.safe_load(yaml.serialize(node))
+
+    def section(self, node: yaml.Node | None, keys: dict[str, Key], path: str) -> tuple[dict[str, Any], dict[str, yaml.Node]]:
+        out: dict[str, Any] = {}
+        nodes: dict[str, yaml.Node] = {}
+        empty = node is None or (isinstance(node, yaml.ScalarNode) and node.tag.endswith(":null"))
+        if not empty and not isinstance(node, yaml.MappingNode):
+            raise self.error(path, "must be a mapping of keys to values", node)
+        for knode, vnode in ([] if empty else node.value):  # type: ignore[union-attr]
+            key = self.plain(knode)
+            kpath = f"{path}.{key}" if path else str(key)
+            if not isinstance(key, str) or key not in keys:
+                hint = difflib.get_close_matches(str(key), list(keys), n=1)
+                msg = "unknown key"
+                msg += f"; did you mean '{hint[0]}'?" if hint else f" (known: {', '.join(keys)})"
+                raise self.error(kpath, msg, knode)
+            if key in out:
+                raise self.error(kpath, "key appears twice", knode)
+            nodes[key] = vnode
+            try:
+                out[key] = keys[key].check(self.plain(vnode))
+            except ValueError as exc:
+                raise self.error(kpath, str(exc), vnode) from None
+        for key, spec in keys.items():
+            if key not in out:
+                if spec.default is MISSING:
+                    raise self.error(f"{path}.{key}" if path else key, "is required", node)
+                default = spec.default
+                out[key] = spec.check(default) if default is not None else None
+        return out, nodes
+
+    def detection(self, node: yaml.Node | None, path: str, base: DetectionSettings) -> DetectionSettings:
+        if node is None:
+            return base
+        given, nodes = self.section(node, DETECTION_KEYS, path)
+        explicit = {k: v for k, v in given.items() if k in nodes}
+        merged = {f.name: getattr(base, f.name) for f in fields(DetectionSettings)}
+        merged.update(explicit)
+        try:
+            return DetectionSettings(**merged)
+        except ValueError as exc:
+            key, _, msg = str(exc).partition(": ")
+            raise self.error(f"{path}.{key}", msg, nodes.get(key, node)) from None
+
+
+def load_config(path: str | Path) -> Config:
+    """Read and validate a configuration file.  Raises :class:`ConfigError`."""
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise ConfigError("", f"cannot read the file: {exc.strerror or exc}", file=str(p)) from None
+    return parse_config(text, file=str(p))
+
+
+def parse_config(text: str, *, file: str | None = None) -> Config:
+    """Validate configuration text (see :func:`load_config`)."""
+    ld = _Loader(file)
+    try:
+        root = yaml.compose(text, Loader=yaml.SafeLoader)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        line = mark.line + 1 if mark is not None else None
+        raise ConfigError("", f"not valid YAML: {getattr(exc, 'problem', exc)}", file=file, line=line) from None
+    top, nodes = ld.section(root, TOP_KEYS, "")
+    b, bnodes = ld.section(nodes.get("broker"), BROKER_KEYS, "broker")
+    tls = None
+    if "tls" in bnodes:
+        t, _ = ld.section(bnodes["tls"], TLS_KEYS, "broker.tls")
+        tls = TlsConfig(**t)
+    url = b["url"]
+    if not (url.startswith("mqtt://") or url.startswith("mqtts://")):
+        raise ld.error("broker.url", f"must start with mqtt:// or mqtts://, got {url!r}", bnodes.get("url"))
+    if b["qos"] not in (0, 1):
+        raise ld.error("broker.qos", f"must be 0 or 1, got {b['qos']}", bnodes.get("qos"))
+    b["tls"] = tls
+    broker = BrokerConfig(**b)
+    detection = ld.detection(nodes.get("detection"), "detection", DetectionSettings())
+    streams: list[StreamConfig] = []
+    snode = nodes.get("streams")
+    if snode is not None and not (isinstance(snode, yaml.ScalarNode) and snode.tag.endswith(":null")):
+        if not isinstance(snode, yaml.SequenceNode):
+            raise ld.error("streams", "must be a list of stream entries", snode)
+        for i, item in enumerate(snode.value):
+            spath = f"streams[{i}]"
+            s, snodes = ld.section(item, STREAM_KEYS, spath)
+            _check_filter(ld, s["topic"], f"{spath}.topic", snodes.get("topic"))
+            s["detection"] = ld.detection(snodes.get("detection"), f"{spath}.detection", detection)
+            streams.append(StreamConfig(**s))
+    alerts, anodes = ld.section(nodes.get("alerts"), ALERTS_KEYS, "alerts")
+    if any(c in alerts["topic_prefix"] for c in "+#") or alerts["topic_prefix"].endswith("/"):
+        raise ld.error("alerts.topic_prefix", "must be a plain topic without + or # and without a trailing /",
+                       anodes.get("topic_prefix"))
+    metrics, mnodes = ld.section(nodes.get("metrics"), METRICS_KEYS, "metrics")
+    host, sep, port = metrics["listen"].rpartition(":")
+    if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:
+        raise ld.error("metrics.listen", f"must be host:port, got {metrics['listen']!r}", mnodes.get("listen"))
+    state, _ = ld.section(nodes.get("state"), STATE_KEYS, "state")
+    return Config(
+        broker=broker,
+        streams=tuple(streams),
+        detection=detection,
+        alerts=AlertsConfig(**alerts),
+        metrics=MetricsConfig(**metrics),
+        state=StateConfig(**state),
+        source=file,
+    )
+
+
+def _check_filter(ld: _Loader, topic: str, path: str, node: yaml.Node | None) -> None:
+    parts = topic.split("/")
+    for i, part in enumerate(parts):
+        if "#" in part and (part != "#" or i != len(parts) - 1):
+            raise ld.error(path, f"'#' must be a whole last level of the filter: {topic!r}", node)
+        if "+" in part and part != "+":
+            raise ld.error(path, f"'+' must be a whole level of the filter: {topic!r}", node)
+
+
+# ------------------------------------------------------------------ schema
+def json_schema() -> dict[str, Any]:
+    """A JSON Schema (draft 2020-12) for editors, made from the same key definitions."""
+
+    def obj(keys: dict[str, Key], extra: dict[str, Any] | None = None, required: tuple[str, ...] = ()) -> dict[str, Any]:
+        props: dict[str, Any] = {}
+        for name, spec in keys.items():
+            entry: dict[str, Any] = {"description": spec.help}
+            entry.update(spec.schema)
+            if spec.default is not MISSING and spec.default is not None and "type" not in spec.schema \
+                    and "enum" not in spec.schema:
+                entry["type"] = _json_type(spec.default)
+            if spec.default is not MISSING and spec.default is not None:
+                entry["default"] = spec.default
+            props[name] = entry
+        if extra:
+            for k, v in extra.items():
+                props[k] = {**props[k], **v}
+        out: dict[str, Any] = {"type": "object", "additionalProperties": False, "properties": props}
+        if required:
+            out["required"] = list(required)
+        return out
+
+    detection = obj(DETECTION_KEYS)
+    stream = obj(STREAM_KEYS, {"detection": detection}, required=("topic",))
+    stream["properties"]["format"]["enum"] = ["number", "json", "senml"]
+    broker = obj(BROKER_KEYS, {"tls": obj(TLS_KEYS)})
+    broker["properties"]["mqtt_version"]["enum"] = ["5", "3.1.1"]
+    top = obj(TOP_KEYS, {
+        "broker": broker,
+        "streams": {"type": "array", "items": stream},
+        "detection": detection,
+        "alerts": obj(ALERTS_KEYS),
+        "metrics": obj(METRICS_KEYS),
+        "state": obj(STATE_KEYS),
+    })
+    top["$schema"] = "https://json-schema.org/draft/2020-12/schema"
+    top["title"] = "shiftwatch configuration"
+    return top
+
+
+def _json_type(v: Any) -> str:
+    if isinstance(v, bool):
+        return "boolean"
+    if isinstance(v, int):
+        return "integer"
+    if isinstance(v, float):
+        return "number"
+    return "string"
