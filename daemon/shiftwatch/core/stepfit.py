@@ -609,6 +609,14 @@ class StepFitter:
     (6, 2, 4.0)
     """
 
+    _values: FloatArray
+    _times: FloatArray
+    _csum: FloatArray
+    _start: int
+    _end: int
+    _ref: float
+    _count: int
+
     def __init__(
         self,
         values: ArrayLike | None = None,
@@ -639,14 +647,14 @@ class StepFitter:
     @property
     def values(self) -> FloatArray:
         """Read-only view of the samples in the window."""
-        view = self._values[self._start : self._end]
+        view: FloatArray = self._values[self._start : self._end]
         view.flags.writeable = False
         return view
 
     @property
     def times(self) -> FloatArray:
         """Read-only view of the sample times in the window."""
-        view = self._times[self._start : self._end]
+        view: FloatArray = self._times[self._start : self._end]
         view.flags.writeable = False
         return view
 
