@@ -102,7 +102,7 @@ _DETECTION_HELP = {
     "spike_sigma": "a lone sample further than this many sigmas from the level is discarded",
     "interval_level": "confidence level of the shift-time interval",
     "confirm_precision": "decide an event once the new level's standard error is this fraction of the step",
-    "confirm_min_samples": "samples after the shift before an event is decided, at least",
+    "confirm_min_samples": "samples after the trip (and after the shift) before an event is decided, at least",
     "confirm_max_samples": "samples after the trip before an event is decided, at most",
     "confirm_p_value": "dismiss an event unless its one-shift test has a p-value below this",
     "min_sigma": "floor for sigma in reading units (null: from the reading resolution)",

@@ -175,9 +175,11 @@ class _Event:
     test: str
     statistic: float
     threshold: float
-    required_after: int
-    trip_count: int  # samples in the fitter when the test tripped
+    target_inputs: int  # samples to keep after the trip before deciding
+    fit_start: int  # fitter index where the event's fit window starts
+    trip_len: int  # samples in the fitter at the trip
     first_fit: StepFit
+    consumed: int = 0  # samples kept since the trip
 
 
 class Rejection(NamedTuple):
@@ -241,6 +243,9 @@ class StreamEngine:
         self._pending: tuple[float, float] | None = None  # held possible spike
         self._event: _Event | None = None
         self._refined_upto = 0  # fitter index up to which the baseline has absorbed samples
+        self._watch_kept = 0  # samples kept while watching since the baseline was set
+        self._next_refine = 0  # value of _watch_kept at which the baseline is refined next
+        self._refine_block = 0
         self._last_time = -math.inf
         self.samples_total = 0
         self.rejected_total: Counter[str] = Counter()
@@ -312,15 +317,20 @@ class StreamEngine:
 
     # ------------------------------------------------------------ warm-up
     def _append(self, t: FloatArray, x: FloatArray) -> None:
+        """Append while watching; keep between W+1 and 2W samples (W = window_samples).
+
+        The fitter drops W samples each time it would reach 2W+1.  The result
+        depends only on the samples appended, never on how they were batched,
+        which keeps replay and live ingest identical.
+        """
         self._fitter.append(x, t)
-        excess = len(self._fitter) - self.settings.window_samples
-        if excess > 0 and self._state != EVENT_OPEN:
-            # Drop in chunks so the prefix sums are not shifted on every batch.
-            chunk = max(excess, self.settings.window_samples // 8)
-            chunk = min(chunk, len(self._fitter) - self.settings.warmup_samples)
-            if chunk > 0:
-                self._fitter.drop_front(chunk)
-                self._refined_upto = max(0, self._refined_upto - chunk)
+        w = self.settings.window_samples
+        n = len(self._fitter)
+        if n > 2 * w:
+            keep = w + 1 + (n - w - 1) % w
+            drop = n - keep
+            self._fitter.drop_front(drop)
+            self._refined_upto = max(0, self._refined_upto - drop)
 
     def _warm(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
         s = self.settings
@@ -358,6 +368,13 @@ class StreamEngine:
         self._prev_r = 0.0
         self._pending = None
         self._refined_upto = len(self._fitter)
+        self._watch_kept = 0
+        self._refine_block = max(self.settings.warmup_samples, 300)
+        self._next_refine = self._guard() + self._refine_block
+
+    def _guard(self) -> int:
+        """Samples kept out of a baseline refinement: a shift in progress may hide there."""
+        return max(self.settings.glr_window, self.settings.warmup_samples)
 
     def _design_test(self) -> None:
         b = self._baseline
@@ -369,40 +386,60 @@ class StreamEngine:
 
     # ----------------------------------------------------------- watching
     def _split_spikes(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], center: float,
-                      sigma: float, final: bool) -> tuple[FloatArray, FloatArray, list[Rejection]]:
-        """Drop lone spikes from a segment; hold a trailing outlier for the next batch.
+                      sigma: float, limit: int) -> tuple[FloatArray, FloatArray, list[Rejection], int]:
+        """Drop lone spikes from a segment and keep at most ``limit`` samples.
 
         A sample further than ``spike_sigma`` from ``center`` is a lone spike
         unless a neighbour deviates the same way (then it is the start of a
-        large step).  Returns the kept times and values, and the (input
-        position, time) of each spike dropped.  A held sample from the previous
-        batch is put in front (its position is -1).
+        large step).  A trailing outlier is held until the next sample comes.
+        A sample held from the previous call is put in front.
+
+        Returns the kept times and values (at most ``limit``), the spikes
+        dropped before the last kept sample, and how many input samples were
+        used.  Counting kept samples, not input samples, makes the engine give
+        the same result with the spikes present or taken out; stopping at a
+        fixed count of kept samples makes it independent of batching.
         """
         s = self.settings
+        n_in = t.shape[0]
+        pos = np.arange(n_in, dtype=np.intp)
         if self._pending is not None:
             t = np.concatenate(([self._pending[0]], t))
             x = np.concatenate(([self._pending[1]], x))
             idx = np.concatenate(([-1], idx))
+            pos = np.concatenate(([-1], pos))
             self._pending = None
         lone, out_last = lone_outliers((x - center) / sigma, s.spike_sigma)
         keep = ~lone
-        if out_last and not final:
-            # Cannot tell yet: hold it until the next sample arrives.
+        held = False
+        if out_last:
             lone[-1] = False
             keep[-1] = False
+            held = True
+        kept = np.flatnonzero(keep)
+        if kept.shape[0] >= limit:
+            # Stop at the limit: whatever follows (a held sample included) is fed again later.
+            last = int(kept[limit - 1])
+            kept = kept[:limit]
+            spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in np.flatnonzero(lone[:last])]
+            return t[kept], x[kept], spikes, int(pos[last]) + 1
+        if held:
             self._pending = (float(t[-1]), float(x[-1]))
         spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in np.flatnonzero(lone)]
-        return t[keep], x[keep], spikes
+        return t[kept], x[kept], spikes, n_in
 
     def _watch(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
         s = self.settings
         b = self._baseline
         test = self._test
         assert b is not None and test is not None
-        kt, kx, spikes = self._split_spikes(t, x, idx, b.level, b.sigma, final=False)
+        # Stop at the next refinement point so the baseline changes at the
+        # same sample however the stream is batched.
+        kt, kx, spikes, used = self._split_spikes(t, x, idx, b.level, b.sigma,
+                                                  self._next_refine - self._watch_kept)
         if kt.shape[0] == 0:
             result.rejected.extend(spikes)
-            return t.shape[0]
+            return used
         r = kx - b.level
         prev = np.empty_like(r)
         prev[0] = self._prev_r
@@ -413,8 +450,8 @@ class StreamEngine:
             result.rejected.extend(spikes)
             self._prev_r = float(r[-1])
             self._append(kt, kx)
-            self._maybe_refine()
-            return t.shape[0]
+            self._count_watched(kt.shape[0])
+            return used
         # Consume up to and including the tripping sample; the rest is fed to
         # the event that opens now (a sample held for the spike check included).
         t_trip = float(kt[trip])
@@ -422,18 +459,25 @@ class StreamEngine:
         self._pending = None
         self._prev_r = float(r[trip])
         self._append(kt[: trip + 1], kx[: trip + 1])
+        self._watch_kept += trip + 1
         self._open_event(t_trip, result)
         return int(np.searchsorted(t, t_trip, side="right"))
 
-    def _maybe_refine(self) -> None:
+    def _count_watched(self, m: int) -> None:
+        self._watch_kept += m
+        if self._watch_kept >= self._next_refine:
+            self._refine()
+            # Refine often while the baseline rests on few samples, then rarely.
+            self._refine_block = min(2 * self._refine_block, 8192)
+            self._next_refine = self._watch_kept + self._refine_block
+
+    def _refine(self) -> None:
         """Refine the baseline from samples that are too old to hide a shift in progress."""
         s = self.settings
         b = self._baseline
         assert b is not None
-        guard = max(s.glr_window, s.warmup_samples)
-        upto = len(self._fitter) - guard
-        block = max(s.warmup_samples, 256, b.n // 2) if b.n < s.baseline_memory else s.window_samples // 2
-        if upto - self._refined_upto < block:
+        upto = len(self._fitter) - self._guard()
+        if upto - self._refined_upto < 50:
             return
         vals = self._fitter.values[self._refined_upto:upto]
         tms = self._fitter.times[self._refined_upto:upto]
@@ -452,25 +496,29 @@ class StreamEngine:
         b = self._baseline
         test = self._test
         assert b is not None and test is not None
-        fit = self._fit_window(b)
+        start = max(0, len(self._fitter) - s.window_samples)
+        fit = self._fit_from(start, b)
+        n_after = fit.n_after
+        target = max(self._required_after(fit, b) - n_after, s.confirm_min_samples)
         ev = _Event(
             id=event_id(self.stream, detected_at),
             detected_at=detected_at,
             test=test.name,
             statistic=float(test.statistic),
             threshold=float(test.threshold),
-            required_after=self._required_after(fit, b),
-            trip_count=len(self._fitter),
+            target_inputs=min(target, s.confirm_max_samples),
+            fit_start=start,
+            trip_len=len(self._fitter),
             first_fit=fit,
         )
         self._event = ev
         self._state = EVENT_OPEN
         result.records.append(self._record(ev, fit, "detected", detected_at))
 
-    def _fit_window(self, b: Baseline) -> StepFit:
-        """Fit the step over the rolling window, reusing the fitter's running sums."""
-        return self._fitter.fit(level=self.settings.interval_level, min_segment=2,
-                                variance_factor=_variance_factor(b.phi))
+    def _fit_from(self, start: int, b: Baseline) -> StepFit:
+        """Fit the step from fitter index ``start`` on, reusing the fitter's running sums."""
+        return self._fitter.fit_from(start, level=self.settings.interval_level, min_segment=2,
+                                     variance_factor=_variance_factor(b.phi))
 
     def _required_after(self, fit: StepFit, b: Baseline) -> int:
         s = self.settings
@@ -485,34 +533,35 @@ class StreamEngine:
         ev = self._event
         b = self._baseline
         assert ev is not None and b is not None
-        fit0 = ev.first_fit
-        n_after_now = len(self._fitter) - fit0.index
-        since_trip = len(self._fitter) - ev.trip_count
-        # Decide once the new level is known well enough, and never on the
-        # samples that tripped the test alone: some must come after the trip.
-        wanted = max(ev.required_after - n_after_now, s.confirm_min_samples - since_trip)
-        need = max(min(wanted, s.confirm_max_samples - since_trip), 0)
-        if need == 0:
-            self._decide(result, float(self._fitter.times[-1]))
-            return 0
-        take = min(need, t.shape[0])
-        kt, kx, spikes = self._split_spikes(t[:take], x[:take], idx[:take], fit0.level_after, b.sigma,
-                                            final=True)
+        # Kept samples are counted, so the decision falls on the same sample
+        # however the stream is batched.  The target was set at the trip:
+        # enough samples for the new level to be known well, and never only
+        # the samples that tripped the test.
+        kt, kx, spikes, used = self._split_spikes(t, x, idx, ev.first_fit.level_after, b.sigma,
+                                                  ev.target_inputs - ev.consumed)
         result.rejected.extend(spikes)
         self._fitter.append(kx, kt)
-        if take == need:
-            self._decide(result, float(t[take - 1]))
-        return take
+        ev.consumed += kt.shape[0]
+        if ev.consumed >= ev.target_inputs:
+            self._decide(result, float(kt[-1]))
+        return used
 
     def _decide(self, result: BatchResult, as_of: float) -> None:
         s = self.settings
         ev = self._event
         b = self._baseline
         assert ev is not None and b is not None
-        fit = self._fit_window(b)
+        fit = self._fit_from(ev.fit_start, b)
+        # A step persists: the latest samples (the later half of those that
+        # arrived after the trip) must sit nearer the new level than the old.
+        fresh = self._fitter.values[ev.trip_len:]
+        fresh = fresh[fresh.shape[0] // 2:]
+        persists = fresh.shape[0] > 0 and (
+            (float(np.mean(fresh)) - fit.level_before) * math.copysign(1.0, fit.delta) >= 0.5 * abs(fit.delta))
         real = (fit.p_value < s.confirm_p_value
                 and abs(fit.delta) >= 0.5 * s.min_shift_sigma * b.sigma
-                and fit.n_after >= s.confirm_min_samples)
+                and fit.n_after >= s.confirm_min_samples
+                and persists)
         phase = "confirmed" if real else "dismissed"
         result.records.append(self._record(ev, fit, phase, as_of))
         self._event = None
@@ -521,7 +570,7 @@ class StreamEngine:
         if real:
             self.last_shift_at = fit.shift_at
             # Warm up again on the new level, keeping what we know of it.
-            self._fitter.drop_front(fit.index)
+            self._fitter.drop_front(ev.fit_start + fit.index)
             self._state = WARMING_UP
             self._pending = None
             if len(self._fitter) >= s.warmup_samples:

@@ -52,8 +52,8 @@ class DetectionSettings:
     interval_level: float = 0.9
     #: an event is decided once the new level's standard error is this fraction of the step
     confirm_precision: float = 0.25
-    #: samples after the shift before an event is decided, at least
-    confirm_min_samples: int = 8
+    #: samples after the trip (and after the shift) before an event is decided, at least
+    confirm_min_samples: int = 30
     #: samples after the trip before an event is decided, at most
     confirm_max_samples: int = 600
     #: an event is dismissed unless its one-shift test has a p-value below this
