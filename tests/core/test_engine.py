@@ -262,3 +262,43 @@ def test_state_and_counters_are_reported() -> None:
     assert eng.state == "watching"
     assert eng.threshold > 0 and math.isfinite(eng.statistic)
     assert eng.samples_total == 300
+
+
+@pytest.mark.parametrize("test", ["glr", "cusum"])
+def test_a_restored_snapshot_carries_on_exactly(test: str) -> None:
+    # Snapshots taken in every state (warm-up, watching, event open), passed
+    # through JSON as the daemon stores them, give the same records as an
+    # engine that never stopped.
+    n = 4000
+    t = T0 + np.arange(float(n))
+    x = gaussian(n, 61.0, 0.7, 18)
+    x[1500:] += 0.9
+    x[2900:] -= 1.4
+    x[[700, 2000]] += 9.0
+    settings = DetectionSettings(test=test)
+    ref = [r.to_dict() for r in run(StreamEngine("s", settings), t, x, batch=250)[0]]
+    assert [d["phase"] for d in ref] == ["detected", "confirmed", "detected", "confirmed"]
+    cuts = [60, 700, 1530, 1545, 2930, 3500]
+    eng = StreamEngine("s", settings)
+    got, states = [], set()
+    for a, b in zip([0] + cuts, cuts + [n]):
+        got += [r.to_dict() for r in eng.process(t[a:b], x[a:b]).records]
+        snap = json.loads(json.dumps(eng.get_state()))
+        states.add(snap["state"])
+        eng = StreamEngine("s", settings)
+        eng.set_state(snap)
+    assert states == {"warming_up", "watching", "event_open"}
+    assert got == ref
+    assert eng.samples_total == n and eng.rejected_total["spike"] == 2
+
+
+def test_a_malformed_snapshot_is_refused_cleanly() -> None:
+    eng = StreamEngine("s")
+    eng.process(T0 + np.arange(300.0), gaussian(300, 1.0, 0.1, 19))
+    snap = eng.get_state()
+    for broken in ({}, {**snap, "state": "sleeping"}, {**snap, "baseline": None},
+                   {**snap, "times": [1.0, 2.0], "values": [1.0]}, {**snap, "test": {"name": "adwin"}}):
+        fresh = StreamEngine("s")
+        with pytest.raises(ValueError):
+            fresh.set_state(broken)
+        assert fresh.state == "warming_up"  # left clean, ready to warm up

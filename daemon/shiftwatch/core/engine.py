@@ -178,7 +178,7 @@ class _Event:
     target_inputs: int  # samples to keep after the trip before deciding
     fit_start: int  # fitter index where the event's fit window starts
     trip_len: int  # samples in the fitter at the trip
-    first_fit: StepFit
+    level_after: float  # the new level as first fitted: the centre for the spike check
     consumed: int = 0  # samples kept since the trip
 
 
@@ -239,6 +239,7 @@ class StreamEngine:
         self._baseline: Baseline | None = None
         self._test: SequentialTest | None = None
         self._test_arl0 = 0.0
+        self._test_shift_z = 0.0
         self._prev_r = 0.0
         self._pending: tuple[float, float] | None = None  # held possible spike
         self._event: _Event | None = None
@@ -383,6 +384,7 @@ class StreamEngine:
         shift_z = self.settings.min_shift_sigma * b.sigma * (1.0 - b.phi) / b.innovation_sigma
         self._test = make_test(self.settings, arl0, shift_z)
         self._test_arl0 = arl0
+        self._test_shift_z = shift_z
 
     # ----------------------------------------------------------- watching
     def _split_spikes(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], center: float,
@@ -509,7 +511,7 @@ class StreamEngine:
             target_inputs=min(target, s.confirm_max_samples),
             fit_start=start,
             trip_len=len(self._fitter),
-            first_fit=fit,
+            level_after=fit.level_after,
         )
         self._event = ev
         self._state = EVENT_OPEN
@@ -537,7 +539,7 @@ class StreamEngine:
         # however the stream is batched.  The target was set at the trip:
         # enough samples for the new level to be known well, and never only
         # the samples that tripped the test.
-        kt, kx, spikes, used = self._split_spikes(t, x, idx, ev.first_fit.level_after, b.sigma,
+        kt, kx, spikes, used = self._split_spikes(t, x, idx, ev.level_after, b.sigma,
                                                   ev.target_inputs - ev.consumed)
         result.rejected.extend(spikes)
         self._fitter.append(kx, kt)
@@ -579,6 +581,96 @@ class StreamEngine:
             self._state = WATCHING
             self._prev_r = float(self._fitter.values[-1] - b.level)
             self._refined_upto = min(self._refined_upto, len(self._fitter))
+
+    # ------------------------------------------------------------ snapshots
+    def get_state(self) -> dict[str, Any]:
+        """Everything needed to carry on after a restart, as plain JSON-able data.
+
+        The window is included, so a restored engine does not warm up again,
+        and an open event is decided as if nothing had happened.
+        """
+        ev = self._event
+        return {
+            "stream": self.stream,
+            "state": self._state,
+            "times": self._fitter.times.tolist(),
+            "values": self._fitter.values.tolist(),
+            "baseline": None if self._baseline is None else self._baseline.to_dict(),
+            "test": None if self._test is None else {
+                "name": self._test.name, "arl0": self._test_arl0, "shift_z": self._test_shift_z,
+                "state": self._test.get_state()},
+            "prev_r": self._prev_r,
+            "pending": None if self._pending is None else list(self._pending),
+            "event": None if ev is None else {
+                "id": ev.id, "detected_at": ev.detected_at, "test": ev.test, "statistic": ev.statistic,
+                "threshold": ev.threshold, "target_inputs": ev.target_inputs, "fit_start": ev.fit_start,
+                "trip_len": ev.trip_len, "level_after": ev.level_after, "consumed": ev.consumed},
+            "refined_upto": self._refined_upto,
+            "watch_kept": self._watch_kept,
+            "next_refine": self._next_refine,
+            "refine_block": self._refine_block,
+            "last_time": None if not math.isfinite(self._last_time) else self._last_time,
+            "samples_total": self.samples_total,
+            "rejected_total": dict(self.rejected_total),
+            "records_total": dict(self.records_total),
+            "last_shift_at": self.last_shift_at,
+        }
+
+    def set_state(self, state: dict[str, Any]) -> None:
+        """Restore what :meth:`get_state` produced.  Raises ``ValueError`` on malformed state."""
+        try:
+            self._reset()
+            st = str(state["state"])
+            if st not in (WARMING_UP, WATCHING, EVENT_OPEN):
+                raise ValueError(f"unknown engine state {st!r}")
+            self._state = st
+            times = np.asarray(state["times"], dtype=np.float64)
+            values = np.asarray(state["values"], dtype=np.float64)
+            if times.shape != values.shape:
+                raise ValueError("times and values differ in length")
+            self._fitter = StepFitter(values, times) if values.shape[0] else StepFitter()
+            b = state["baseline"]
+            self._baseline = None if b is None else Baseline(**{k: (int(v) if k == "n" else float(v))
+                                                                 for k, v in b.items()})
+            ts = state["test"]
+            if ts is not None:
+                if ts["name"] != self.settings.test:
+                    raise ValueError(f"snapshot was made with test {ts['name']!r}, settings say "
+                                     f"{self.settings.test!r}")
+                self._test = make_test(self.settings, float(ts["arl0"]), float(ts["shift_z"]))
+                self._test_arl0 = float(ts["arl0"])
+                self._test_shift_z = float(ts["shift_z"])
+                self._test.set_state(ts["state"])
+            self._prev_r = float(state["prev_r"])
+            p = state["pending"]
+            self._pending = None if p is None else (float(p[0]), float(p[1]))
+            e = state["event"]
+            self._event = None if e is None else _Event(
+                id=str(e["id"]), detected_at=float(e["detected_at"]), test=str(e["test"]),
+                statistic=float(e["statistic"]), threshold=float(e["threshold"]),
+                target_inputs=int(e["target_inputs"]), fit_start=int(e["fit_start"]),
+                trip_len=int(e["trip_len"]), level_after=float(e["level_after"]),
+                consumed=int(e["consumed"]))
+            if (st != WARMING_UP and (self._baseline is None or self._test is None)) or \
+                    (st == EVENT_OPEN) != (self._event is not None):
+                raise ValueError("snapshot is inconsistent with its state")
+            self._refined_upto = int(state["refined_upto"])
+            self._watch_kept = int(state["watch_kept"])
+            self._next_refine = int(state["next_refine"])
+            self._refine_block = int(state["refine_block"])
+            lt = state["last_time"]
+            self._last_time = -math.inf if lt is None else float(lt)
+            self.samples_total = int(state["samples_total"])
+            self.rejected_total = Counter({str(k): int(v) for k, v in state["rejected_total"].items()})
+            self.records_total = Counter({str(k): int(v) for k, v in state["records_total"].items()})
+            ls = state["last_shift_at"]
+            self.last_shift_at = None if ls is None else float(ls)
+        except (KeyError, TypeError, AttributeError) as exc:
+            self._reset()
+            raise ValueError(f"malformed engine state: {exc!r}") from None
+        except ValueError:
+            self._reset()
+            raise
 
     def _record(self, ev: _Event, fit: StepFit, phase: str, as_of: float) -> AlertRecord:
         return AlertRecord(
