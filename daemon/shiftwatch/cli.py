@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import logging
 import sys
 from pathlib import Path
 from typing import Any, Sequence, TextIO
@@ -191,6 +192,90 @@ def cmd_design(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+# ---------------------------------------------------------------- daemon
+class _JsonFormatter(logging.Formatter):
+    def format(self, record: logging.LogRecord) -> str:
+        d = {"level": record.levelname.lower(), "logger": record.name, "message": record.getMessage()}
+        if record.exc_info:
+            d["exception"] = self.formatException(record.exc_info)
+        return json.dumps(d)
+
+
+def setup_logging(fmt: str, level: int = logging.INFO) -> logging.Logger:
+    """One line per event on stderr, no timestamps of our own (journald adds them)."""
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(_JsonFormatter() if fmt == "json" else logging.Formatter("%(levelname)s %(message)s"))
+    log = logging.getLogger("shiftwatch")
+    log.handlers[:] = [handler]
+    log.setLevel(level)
+    log.propagate = False
+    return log
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    from shiftwatch.config import ConfigError, load_config
+
+    log = setup_logging(args.log_format)
+    try:
+        cfg = load_config(args.config)
+    except ConfigError as exc:
+        log.error("%s", exc)
+        return EXIT_USAGE
+    from shiftwatch.daemon import Daemon
+
+    for warning in config_warnings(args.config, cfg):
+        log.warning("%s", warning)
+    return Daemon(cfg, config_path=args.config, logger=log).run()
+
+
+def config_warnings(path: str, cfg: Any) -> list[str]:
+    """Warnings about a configuration that is valid but risky."""
+    import os
+    import stat
+
+    out = []
+    b = cfg.broker
+    for label, fpath in (("configuration file", path), ("broker.password_file", b.password_file)):
+        if not fpath:
+            continue
+        try:
+            mode = os.stat(fpath).st_mode
+        except OSError:
+            continue
+        if label == "configuration file" and not b.password_file and not b.password_env:
+            continue
+        if mode & (stat.S_IRWXG | stat.S_IRWXO):
+            out.append(f"{label} {fpath} is readable by other users; it leads to a secret: chmod 600 it")
+    return out
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    import dataclasses
+
+    import yaml
+
+    from shiftwatch.config import ConfigError, load_config
+
+    try:
+        cfg = load_config(args.config)
+    except ConfigError as exc:
+        _err(str(exc))
+        return EXIT_USAGE
+    d = dataclasses.asdict(cfg)
+    d.pop("source", None)
+    print(f"# {args.config}: valid. Resolved settings (defaults filled in, durations in seconds):")
+    print(yaml.safe_dump(d, sort_keys=False), end="")
+    for w in config_warnings(args.config, cfg):
+        _err("warning: " + w)
+    return EXIT_OK
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from shiftwatch.demo import run_demo
+
+    return run_demo(args.duration, metrics_listen=args.metrics_listen, use_embedded=args.embedded_broker)
+
+
 # ------------------------------------------------------------------- main
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
@@ -220,6 +305,21 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--json", action="store_true", help="print JSON instead of a table")
     d.set_defaults(func=cmd_design)
 
+    rn = sub.add_parser("run", help="run the daemon (MQTT in, alerts and metrics out)")
+    rn.add_argument("--config", required=True, help="YAML configuration file")
+    rn.add_argument("--log-format", choices=("text", "json"), default="text", help="log line format (default text)")
+    rn.set_defaults(func=cmd_run)
+
+    ck = sub.add_parser("check", help="validate a configuration file and print the resolved settings")
+    ck.add_argument("--config", required=True, help="YAML configuration file")
+    ck.set_defaults(func=cmd_check)
+
+    dm = sub.add_parser("demo", help="run a private broker, an invented line of sensors and the daemon")
+    dm.add_argument("--duration", type=float, default=75.0, help="seconds to run (default 75; Ctrl-C stops early)")
+    dm.add_argument("--metrics-listen", default="127.0.0.1:9650", help="metrics endpoint (default 127.0.0.1:9650)")
+    dm.add_argument("--embedded-broker", action="store_true",
+                    help="use the embedded broker even when mosquitto is installed")
+    dm.set_defaults(func=cmd_demo)
     return p
 
 

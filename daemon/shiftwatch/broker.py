@@ -1,0 +1,182 @@
+"""A private MQTT broker for the demo and the tests.
+
+Mosquitto is used when its binary is installed; otherwise the demo falls back
+to an embedded broker from PyPI (amqtt, MQTT 3.1.1 only).  Each broker listens
+on a free loopback port with its own configuration and data directory.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import socket
+import subprocess
+import tempfile
+import threading
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+
+def free_port() -> int:
+    """A TCP port on 127.0.0.1 that nothing listens on right now."""
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def find_mosquitto() -> str | None:
+    """Path of the mosquitto binary (PATH, then the Debian location), or None."""
+    found = shutil.which("mosquitto")
+    if found:
+        return found
+    for candidate in ("/usr/sbin/mosquitto", "/usr/local/sbin/mosquitto"):
+        if os.access(candidate, os.X_OK):
+            return candidate
+    return None
+
+
+def wait_for_port(port: int, timeout: float = 10.0) -> bool:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        try:
+            with socket.create_connection(("127.0.0.1", port), timeout=0.2):
+                return True
+        except OSError:
+            time.sleep(0.05)
+    return False
+
+
+@dataclass
+class MosquittoBroker:
+    """A Mosquitto process of our own.
+
+    ``extra`` lines go into its configuration (for example a TLS listener or
+    a password file).  Persistence is on and ``max_queued_messages`` is raised,
+    the settings the README asks operators to use.
+    """
+
+    port: int = 0
+    extra: list[str] = field(default_factory=list)
+    workdir: Path | None = None
+    process: subprocess.Popen[bytes] | None = None
+    binary: str | None = None
+
+    def start(self, timeout: float = 10.0) -> "MosquittoBroker":
+        self.binary = self.binary or find_mosquitto()
+        if self.binary is None:
+            raise RuntimeError("mosquitto is not installed (see the README's set-up)")
+        if self.workdir is None:
+            self.workdir = Path(tempfile.mkdtemp(prefix="shiftwatch-broker-"))
+        self.port = self.port or free_port()
+        conf = self.workdir / "mosquitto.conf"
+        lines = [
+            f"listener {self.port} 127.0.0.1",
+            "allow_anonymous true",
+            "persistence true",
+            f"persistence_location {self.workdir}/",
+            "autosave_interval 1",
+            "max_queued_messages 1000000",
+            "max_inflight_messages 20",
+            "log_dest none",
+        ] + list(self.extra)
+        conf.write_text("\n".join(lines) + "\n")
+        self.process = subprocess.Popen([self.binary, "-c", str(conf)], stdout=subprocess.DEVNULL,
+                                        stderr=subprocess.PIPE)
+        if not wait_for_port(self.port, timeout):
+            err = b""
+            if self.process.poll() is not None and self.process.stderr is not None:
+                err = self.process.stderr.read()
+            self.stop()
+            raise RuntimeError(f"mosquitto did not start on port {self.port}: {err.decode(errors='replace')}")
+        return self
+
+    @property
+    def url(self) -> str:
+        return f"mqtt://127.0.0.1:{self.port}"
+
+    def stop(self, sig: int | None = None) -> None:
+        if self.process is not None and self.process.poll() is None:
+            if sig is None:
+                self.process.terminate()
+            else:
+                self.process.send_signal(sig)
+            try:
+                self.process.wait(timeout=10)
+            except subprocess.TimeoutExpired:
+                self.process.kill()
+                self.process.wait()
+        self.process = None
+
+    def restart(self) -> None:
+        self.stop()
+        self.start()
+
+
+class EmbeddedBroker:
+    """amqtt's broker in a background thread (fallback when mosquitto is missing)."""
+
+    def __init__(self, port: int = 0) -> None:
+        self.port = port or free_port()
+        self._thread: threading.Thread | None = None
+        self._loop: Any = None
+        self._broker: Any = None
+        self._ready = threading.Event()
+        self._error: BaseException | None = None
+
+    @property
+    def url(self) -> str:
+        return f"mqtt://127.0.0.1:{self.port}"
+
+    def start(self, timeout: float = 15.0) -> "EmbeddedBroker":
+        import asyncio
+
+        try:
+            from amqtt.broker import Broker
+        except ImportError as exc:
+            raise RuntimeError("no mosquitto binary and no embedded broker (pip install amqtt)") from exc
+
+        config = {
+            "listeners": {"default": {"type": "tcp", "bind": f"127.0.0.1:{self.port}"}},
+            "sys_interval": 0,
+            "auth": {"allow-anonymous": True},
+            "topic-check": {"enabled": False},
+        }
+
+        def run() -> None:
+            loop = asyncio.new_event_loop()
+            self._loop = loop
+            asyncio.set_event_loop(loop)
+            try:
+                self._broker = Broker(config, loop=loop)
+                loop.run_until_complete(self._broker.start())
+            except BaseException as exc:  # reported to the caller of start()
+                self._error = exc
+                self._ready.set()
+                return
+            self._ready.set()
+            loop.run_forever()
+
+        self._thread = threading.Thread(target=run, name="embedded-broker", daemon=True)
+        self._thread.start()
+        self._ready.wait(timeout)
+        if self._error is not None:
+            raise RuntimeError(f"embedded broker did not start: {self._error}")
+        if not wait_for_port(self.port, timeout):
+            raise RuntimeError(f"embedded broker did not listen on port {self.port}")
+        return self
+
+    def stop(self) -> None:
+        import asyncio
+
+        if self._loop is None or self._broker is None:
+            return
+        fut = asyncio.run_coroutine_threadsafe(self._broker.shutdown(), self._loop)
+        try:
+            fut.result(timeout=10)
+        except Exception:
+            pass
+        self._loop.call_soon_threadsafe(self._loop.stop)
+        if self._thread is not None:
+            self._thread.join(timeout=10)

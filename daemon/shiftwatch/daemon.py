@@ -1,0 +1,469 @@
+"""The long-running daemon: MQTT in, alert records and metrics out, state on disk.
+
+The main thread owns every :class:`StreamEngine`.  paho's thread only puts
+messages on a bounded queue; the main thread drains it in small batches,
+decodes, groups samples per stream, runs the engines (the same ones
+``shiftwatch replay`` uses), publishes the records through the on-disk
+outbox, acknowledges the processed messages, and now and then snapshots the
+engines' state.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import queue
+import signal
+import threading
+import time
+from collections import OrderedDict
+from dataclasses import dataclass, field
+from pathlib import Path
+from types import FrameType
+from typing import Any
+
+import numpy as np
+
+from shiftwatch.config import Config, ConfigError, StreamConfig, load_config, topic_matches
+from shiftwatch.core.engine import AlertRecord, StreamEngine
+from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
+from shiftwatch.core.timefmt import format_time
+from shiftwatch.decode import REASONS as DECODE_REASONS
+from shiftwatch.decode import decode, stream_name
+from shiftwatch.metrics import Metrics, MetricsServer, StreamStats
+from shiftwatch.mqtt import BrokerError, Message, MqttLink, read_password
+from shiftwatch.notify import sd_notify, watchdog_interval
+from shiftwatch.outbox import Outbox
+from shiftwatch.statestore import StateStore
+
+#: Messages taken from the queue per processing round (acks go out after each round).
+DRAIN = 2000
+#: Bound of the queue between paho's thread and the main thread.
+QUEUE_MAX = 100_000
+
+
+class RateLimitedLog:
+    """At most one line per key per ``every`` seconds; says how many were held back."""
+
+    def __init__(self, log: logging.Logger, every: float = 10.0) -> None:
+        self.log = log
+        self.every = every
+        self._last: dict[str, float] = {}
+        self._held: dict[str, int] = {}
+
+    def warning(self, key: str, text: str, now: float) -> None:
+        last = self._last.get(key)
+        if last is not None and now - last < self.every:
+            self._held[key] = self._held.get(key, 0) + 1
+            return
+        held = self._held.pop(key, 0)
+        if len(self._last) > 1000:  # keys come from input: keep the table bounded
+            self._last.clear()
+        self._last[key] = now
+        self.log.warning(text + (f" ({held} more like this in the last {self.every:.0f} s)" if held else ""))
+
+
+def alert_summary(rec: AlertRecord) -> str:
+    """One line an operator reads at a glance.
+
+    Examples
+    --------
+    A record for a fill weight that stepped up is summarised as
+    ``CONFIRMED filler3/fill_g stepped up 0.9 g (1.1 sigma) at 06:24:59Z: 500 -> 500.9 g``.
+    """
+    unit = f" {rec.unit}" if rec.unit else ""
+    verb = {"detected": "DETECTED", "confirmed": "CONFIRMED", "dismissed": "DISMISSED"}[rec.phase]
+    when = format_time(rec.shift_at)[11:19] + "Z"
+    if rec.phase == "dismissed":
+        return (f"{verb} {rec.stream}: the step detected at {format_time(rec.detected_at)[11:19]}Z "
+                f"did not last; level stays {rec.level_before:.4g}{unit}")
+    return (f"{verb} {rec.stream} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
+            f"({abs(rec.delta_sigma):.2g} sigma) at {when}: {rec.level_before:.5g} -> "
+            f"{rec.level_after:.5g}{unit}, detected {rec.detected_at - rec.shift_at:.0f} s after the step")
+
+
+@dataclass
+class _Group:
+    spec: StreamConfig
+    unit: str | None
+    times: list[float] = field(default_factory=list)
+    values: list[float] = field(default_factory=list)
+    arrived: list[float] = field(default_factory=list)
+
+
+class Daemon:
+    """One shiftwatch process.
+
+    Parameters
+    ----------
+    cfg : the validated configuration.
+    config_path : where it came from (re-read on SIGHUP).
+    logger : where log lines go.
+    metrics : the metrics holder (a fresh registry by default).
+    """
+
+    def __init__(self, cfg: Config, *, config_path: str | None = None,
+                 logger: logging.Logger | None = None, metrics: Metrics | None = None,
+                 env: dict[str, str] | None = None) -> None:
+        self.cfg = cfg
+        self.config_path = config_path
+        self.log = logger or logging.getLogger("shiftwatch")
+        self.metrics = metrics or Metrics()
+        self.env = env
+        self.inbox: queue.Queue[Message] = queue.Queue(maxsize=QUEUE_MAX)
+        self.engines: dict[str, StreamEngine] = {}
+        self._spec_cache: dict[str, StreamConfig | None] = {}
+        state_dir = Path(cfg.state.dir)
+        self.store = StateStore(state_dir / "snapshots", logger=self.log)
+        self.outbox = Outbox(state_dir / "outbox", max_items=cfg.alerts.outbox_max, logger=self.log)
+        self._levels_sent: dict[str, tuple[str, float | None, float | None]] = {}
+        self._lock = threading.Lock()
+        self._mid_key: dict[int, str | None] = {}
+        self._early_acks: OrderedDict[int, None] = OrderedDict()
+        self._stop = threading.Event()
+        self._reload = threading.Event()
+        self._connected_changed = threading.Event()
+        self.rlog = RateLimitedLog(self.log)
+        self.link: MqttLink | None = None
+        self.server: MetricsServer | None = None
+        self.records_published = 0
+
+    # ------------------------------------------------------------ topics
+    @property
+    def prefix(self) -> str:
+        return self.cfg.alerts.topic_prefix
+
+    def status_topic(self) -> str:
+        return f"{self.prefix}/status"
+
+    def spec_for(self, topic: str) -> StreamConfig | None:
+        spec = self._spec_cache.get(topic, False)
+        if spec is False:
+            spec = next((s for s in self.cfg.streams if topic_matches(s.topic, topic)), None)
+            if len(self._spec_cache) > 100_000:
+                self._spec_cache.clear()
+            self._spec_cache[topic] = spec
+        return spec  # type: ignore[return-value]
+
+    # ----------------------------------------------------------- signals
+    def request_stop(self, *_: Any) -> None:
+        self._stop.set()
+
+    def request_reload(self, *_: Any) -> None:
+        self._reload.set()
+
+    def install_signal_handlers(self) -> None:
+        def stop(signum: int, frame: FrameType | None) -> None:
+            self._stop.set()
+
+        def hup(signum: int, frame: FrameType | None) -> None:
+            self._reload.set()
+
+        signal.signal(signal.SIGTERM, stop)
+        signal.signal(signal.SIGINT, stop)
+        signal.signal(signal.SIGHUP, hup)
+
+    # ------------------------------------------------------------- start
+    def restore(self) -> None:
+        """Load the last snapshot: each stream carries on without a second warm-up."""
+        streams, meta = self.store.load()
+        restored = 0
+        for name, state in streams.items():
+            spec = self.cfg.stream_for(name)
+            if spec is None:
+                continue
+            eng = StreamEngine(name, spec.detection, unit=spec.unit)
+            try:
+                eng.set_state(state)
+            except ValueError as exc:
+                self.log.warning("snapshot of stream %s not used (%s); it warms up again", name, exc)
+                continue
+            self.engines[name] = eng
+            restored += 1
+        if streams:
+            self.log.info("restored %d stream(s) from the snapshot of %s", restored,
+                          format_time(float(meta.get("saved_at", 0.0))))
+
+    def start(self) -> None:
+        """Everything up to the point where messages flow: state, metrics, broker, outbox."""
+        self.restore()
+        host, _, port = self.cfg.metrics.listen.rpartition(":")
+        self.server = self.metrics.serve(self.cfg.metrics.listen)
+        self.log.info("metrics on http://%s:%d/metrics", host or "0.0.0.0", self.server.port)
+        password = read_password(self.cfg.broker, self.env)
+        self.link = MqttLink(
+            self.cfg.broker,
+            subscriptions=[s.topic for s in self.cfg.streams],
+            status_topic=self.status_topic(),
+            inbox=self.inbox,
+            on_drop=self._count_drop,
+            on_published=self._published,
+            on_connection=self._connection,
+            logger=self.log,
+            password=password,
+        )
+        # Alert records left in the outbox by an earlier run go out first.
+        pending = self.outbox.pending()
+        for item in pending:
+            self._publish(item.topic, item.payload, qos=item.qos, retain=item.retain, key=item.key)
+        if pending:
+            self.log.info("re-sending %d alert record(s) kept in the outbox", len(pending))
+        self.link.start()
+        self.metrics.outbox_depth.set(len(self.outbox))
+        sd_notify("READY=1\nSTATUS=watching", env=self.env)
+
+    # -------------------------------------------------------------- loop
+    def run(self, *, install_signals: bool = True) -> int:
+        """Run until SIGTERM/SIGINT (or :meth:`request_stop`); returns the exit status."""
+        if install_signals:
+            self.install_signal_handlers()
+        try:
+            self.start()
+        except BrokerError as exc:
+            self.log.error("%s", exc)
+            return 2
+        except OSError as exc:
+            self.log.error("cannot start: %s", exc)
+            return 2
+        wd = watchdog_interval(self.env)
+        next_wd = time.monotonic()
+        next_snap = time.monotonic() + self.cfg.state.snapshot_every
+        while not self._stop.is_set():
+            self.round(timeout=0.2)
+            now = time.monotonic()
+            if wd is not None and now >= next_wd:
+                sd_notify("WATCHDOG=1", env=self.env)
+                next_wd = now + wd / 2
+            if now >= next_snap:
+                self.snapshot()
+                next_snap = now + self.cfg.state.snapshot_every
+            if self._reload.is_set():
+                self._reload.clear()
+                self.reload()
+        return self.shutdown()
+
+    def round(self, timeout: float = 0.2) -> int:
+        """Take what is queued (waiting up to ``timeout`` for the first message) and process it."""
+        msgs: list[Message] = []
+        try:
+            msgs.append(self.inbox.get(timeout=timeout))
+        except queue.Empty:
+            self._gauges()
+            return 0
+        while len(msgs) < DRAIN:
+            try:
+                msgs.append(self.inbox.get_nowait())
+            except queue.Empty:
+                break
+        self.process(msgs)
+        self._gauges()
+        return len(msgs)
+
+    def _gauges(self) -> None:
+        self.metrics.queue_depth.set(self.inbox.qsize())
+        self.metrics.outbox_depth.set(len(self.outbox))
+
+    def shutdown(self) -> int:
+        """SIGTERM: process what is queued, snapshot, let the outbox drain, say offline, disconnect."""
+        self.log.info("stopping: processing %d queued message(s)", self.inbox.qsize())
+        while self.round(timeout=0.0):
+            pass
+        self.snapshot()
+        deadline = time.monotonic() + 5.0
+        while len(self.outbox) and self.link is not None and self.link.connected and time.monotonic() < deadline:
+            time.sleep(0.02)
+        if self.link is not None:
+            self.link.stop()
+        if self.server is not None:
+            self.server.close()
+        if len(self.outbox):
+            self.log.warning("%d alert record(s) stay in the outbox for the next start", len(self.outbox))
+        sd_notify("STOPPING=1", env=self.env)
+        self.log.info("stopped")
+        return 0
+
+    # -------------------------------------------------------- processing
+    def process(self, msgs: list[Message]) -> None:
+        """Decode, group per stream, run the engines, publish; then acknowledge the messages."""
+        groups: dict[str, _Group] = {}
+        now = time.time()
+        self.metrics.messages_received.inc(len(msgs))
+        for m in msgs:
+            spec = self.spec_for(m.topic)
+            if spec is None:
+                self._count_drop("no_matching_stream")
+                continue
+            dec = decode(m.payload, spec.format, value_path=spec.value, time_path=spec.time,
+                         max_bytes=self.cfg.broker.max_payload_bytes, now=m.arrived)
+            for p in dec.problems:
+                self._count_drop(p.reason)
+                self.rlog.warning(f"decode:{p.reason}", f"message on {_printable(m.topic)} set aside: "
+                                  f"{p.message}", now)
+            for r in dec.readings:
+                name = stream_name(m.topic, r.name)
+                g = groups.get(name)
+                if g is None:
+                    g = groups[name] = _Group(spec=spec, unit=r.unit or spec.unit)
+                g.times.append(r.time if r.time is not None else m.arrived)
+                g.values.append(r.value)
+                g.arrived.append(m.arrived)
+        for name, g in groups.items():
+            self._run_stream(name, g, now)
+        if self.link is not None:
+            for m in msgs:
+                self.link.ack(m.mid, m.qos)
+
+    def engine_for(self, name: str, spec: StreamConfig, unit: str | None) -> StreamEngine | None:
+        eng = self.engines.get(name)
+        if eng is None:
+            if len(self.engines) >= self.cfg.metrics.max_streams:
+                return None
+            eng = self.engines[name] = StreamEngine(name, spec.detection, unit=unit)
+            self.log.info("new stream %s (warming up on %d samples)", _printable(name),
+                          spec.detection.warmup_samples)
+        return eng
+
+    def _run_stream(self, name: str, g: _Group, now: float) -> None:
+        eng = self.engine_for(name, g.spec, g.unit)
+        if eng is None:
+            self._count_drop("stream_cap", len(g.values))
+            self.rlog.warning("stream_cap", f"stream limit of {self.cfg.metrics.max_streams} reached; "
+                              f"samples of new stream {_printable(name)} set aside", now)
+            return
+        times = np.asarray(g.times, dtype=np.float64)
+        res = eng.process(times, np.asarray(g.values, dtype=np.float64))
+        for rej in res.rejected:
+            if rej.reason != "spike":
+                self.rlog.warning(f"sample:{name}:{rej.reason}",
+                                  f"sample of {_printable(name)} set aside: {SAMPLE_REASONS[rej.reason]}", now)
+        for rec in res.records:
+            j = int(np.searchsorted(times, rec.as_of))
+            arrived = g.arrived[min(j, len(g.arrived) - 1)]
+            self.emit(rec, arrived)
+        self._publish_level(name, eng)
+        self.metrics.update_stream(name, _stats(eng))
+
+    def emit(self, rec: AlertRecord, arrived: float) -> None:
+        """Publish an alert record (through the outbox) and log its summary."""
+        d = rec.to_dict()
+        d["summary"] = alert_summary(rec)
+        payload = json.dumps(d).encode()
+        topic = f"{self.prefix}/alerts/{rec.stream}"
+        item = self.outbox.add(topic, payload, qos=self.cfg.alerts.qos)
+        self._publish(topic, payload, qos=self.cfg.alerts.qos, retain=False, key=item.key)
+        self.records_published += 1
+        self.metrics.alert_delay.observe(max(0.0, time.time() - arrived))
+        self.log.info("%s [id %s]", d["summary"], rec.id)
+
+    def _publish_level(self, name: str, eng: StreamEngine) -> None:
+        sent = self._levels_sent.get(name)
+        now_state = (eng.state, eng.level, eng.sigma)
+        if sent == now_state or eng.level is None:
+            return
+        self._levels_sent[name] = now_state
+        body = {"stream": name, "state": eng.state, "level": eng.level, "sigma": eng.sigma,
+                "unit": eng.unit, "last_shift_at": None if eng.last_shift_at is None
+                else format_time(eng.last_shift_at)}
+        self._publish(f"{self.prefix}/levels/{name}", json.dumps(body).encode(), qos=1, retain=True)
+
+    def _publish(self, topic: str, payload: bytes, *, qos: int, retain: bool, key: str | None = None) -> None:
+        assert self.link is not None or key is not None
+        if self.link is None:
+            return
+        mid = self.link.publish(topic, payload, qos=qos, retain=retain)
+        with self._lock:
+            if mid in self._early_acks:
+                del self._early_acks[mid]
+                if key is not None:
+                    self.outbox.remove(key)
+            else:
+                self._mid_key[mid] = key
+
+    # ------------------------------------------------ callbacks (paho thread)
+    def _published(self, mid: int) -> None:
+        with self._lock:
+            if mid in self._mid_key:
+                key = self._mid_key.pop(mid)
+                if key is not None:
+                    self.outbox.remove(key)
+            else:
+                self._early_acks[mid] = None
+                while len(self._early_acks) > 1000:
+                    self._early_acks.popitem(last=False)
+
+    def _connection(self, up: bool) -> None:
+        self.metrics.broker_connected.set(1 if up else 0)
+
+    def _count_drop(self, reason: str, n: int = 1) -> None:
+        self.metrics.messages_dropped.labels(reason).inc(n)
+
+    # --------------------------------------------------------- snapshots
+    def snapshot(self) -> bool:
+        try:
+            self.store.save({n: e.get_state() for n, e in self.engines.items()},
+                            {"saved_at": time.time()})
+        except OSError as exc:
+            self.metrics.snapshot_failures.inc()
+            self.log.error("snapshot to %s failed: %s; detection carries on", self.cfg.state.dir,
+                           exc.strerror or exc)
+            return False
+        self.metrics.snapshots.inc()
+        return True
+
+    # ------------------------------------------------------------ reload
+    def reload(self) -> None:
+        """SIGHUP: re-read the configuration; streams that stay keep their state."""
+        if self.config_path is None:
+            self.log.warning("reload asked for, but the configuration did not come from a file")
+            return
+        try:
+            new = load_config(self.config_path)
+        except ConfigError as exc:
+            self.log.error("reload refused, keeping the running configuration: %s", exc)
+            return
+        old_filters = {s.topic for s in self.cfg.streams}
+        new_filters = {s.topic for s in new.streams}
+        kept = dropped = renewed = 0
+        for name in list(self.engines):
+            old_spec = self.cfg.stream_for(name)
+            spec = new.stream_for(name)
+            if spec is None:
+                del self.engines[name]
+                self.metrics.remove_stream(name)
+                dropped += 1
+            elif old_spec is None or spec.detection != old_spec.detection or spec.unit != old_spec.unit:
+                self.engines[name] = StreamEngine(name, spec.detection, unit=spec.unit)
+                renewed += 1
+            else:
+                kept += 1
+        self.cfg = new
+        self._spec_cache.clear()
+        if self.link is not None:
+            self.link.set_subscriptions(sorted(new_filters), added=sorted(new_filters - old_filters),
+                                        removed=sorted(old_filters - new_filters))
+        self.log.info("configuration reloaded: %d stream(s) kept, %d restarted with new settings, "
+                      "%d removed; filters added %d, removed %d", kept, renewed, dropped,
+                      len(new_filters - old_filters), len(old_filters - new_filters))
+
+
+def _stats(eng: StreamEngine) -> StreamStats:
+    return StreamStats(
+        samples_total=eng.samples_total,
+        rejected_total=dict(eng.rejected_total),
+        records_total=dict(eng.records_total),
+        level=eng.level,
+        sigma=eng.sigma,
+        statistic=eng.statistic,
+        threshold=eng.threshold,
+        last_shift_at=eng.last_shift_at,
+        state=eng.state,
+    )
+
+
+def _printable(text: str, limit: int = 120) -> str:
+    """Topic or stream text made safe for one log line."""
+    clean = "".join(c if c.isprintable() else "?" for c in text)
+    return clean if len(clean) <= limit else clean[:limit] + "..."
+
+
+__all__ = ["Daemon", "alert_summary", "DECODE_REASONS"]

@@ -1,0 +1,311 @@
+"""The MQTT link: the only module that touches paho.
+
+paho's network loop runs in its own thread.  Its callbacks do the least they
+can: an incoming message becomes a :class:`Message` on a bounded queue (a full
+queue drops it, counted and logged); a publication acknowledged by the broker
+is removed from the on-disk outbox.  Everything else happens in the daemon's
+main thread.
+
+Sessions are persistent so samples published while the daemon restarts are
+delivered when it comes back: MQTT 5 with ``clean_start=False`` and a session
+expiry, or MQTT 3.1.1 with ``clean_session=False``, always with a fixed client
+id.  Incoming QoS 1 messages are acknowledged only after the engine has
+processed them (paho's manual acks).
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import queue
+import ssl
+import threading
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Callable
+from urllib.parse import urlsplit
+
+import paho.mqtt.client as paho
+from paho.mqtt.enums import CallbackAPIVersion, MQTTProtocolVersion
+from paho.mqtt.packettypes import PacketTypes
+from paho.mqtt.properties import Properties
+
+from shiftwatch.config import BrokerConfig
+
+
+class BrokerError(RuntimeError):
+    """A broker problem the operator must fix (bad URL, unreadable password file)."""
+
+
+@dataclass(frozen=True)
+class Message:
+    """An incoming message, as the daemon sees it."""
+
+    topic: str
+    payload: bytes
+    arrived: float  # wall-clock seconds when paho handed it over
+    mid: int
+    qos: int
+
+
+def read_password(cfg: BrokerConfig, env: dict[str, str] | None = None) -> str | None:
+    """The broker password from ``password_file`` (first line) or ``password_env``.
+
+    Never logged.  Raises :class:`BrokerError` naming the file or variable,
+    never the password.
+    """
+    env = dict(os.environ) if env is None else env
+    if cfg.password_file:
+        try:
+            text = Path(cfg.password_file).read_text(encoding="utf-8")
+        except OSError as exc:
+            raise BrokerError(f"broker.password_file: cannot read {cfg.password_file}: "
+                              f"{exc.strerror or exc}") from None
+        lines = text.splitlines()
+        return lines[0] if lines else ""
+    if cfg.password_env:
+        if cfg.password_env not in env:
+            raise BrokerError(f"broker.password_env: environment variable {cfg.password_env} is not set")
+        return env[cfg.password_env]
+    return None
+
+
+def parse_url(url: str) -> tuple[str, int, bool]:
+    """(host, port, tls) from mqtt://host:port or mqtts://host:port."""
+    parts = urlsplit(url)
+    if parts.scheme not in ("mqtt", "mqtts") or not parts.hostname:
+        raise BrokerError(f"broker.url: expected mqtt://host:port or mqtts://host:port, got {url!r}")
+    tls = parts.scheme == "mqtts"
+    return parts.hostname, parts.port or (8883 if tls else 1883), tls
+
+
+class MqttLink:
+    """A persistent-session MQTT connection for one daemon.
+
+    Parameters
+    ----------
+    cfg : broker settings.
+    subscriptions : topic filters to subscribe to (at ``cfg.qos``).
+    status_topic : retained "online"/"offline" topic; "offline" is also the last will.
+    inbox : bounded queue that receives :class:`Message` objects.
+    on_drop : called with a reason when an incoming message is dropped.
+    on_published : called with the mid of each publication the broker acknowledged.
+    on_connection : called with True/False when the connection comes up or goes down.
+    """
+
+    def __init__(
+        self,
+        cfg: BrokerConfig,
+        *,
+        subscriptions: list[str],
+        status_topic: str,
+        inbox: "queue.Queue[Message]",
+        on_drop: Callable[[str], None],
+        on_published: Callable[[int], None],
+        on_connection: Callable[[bool], None],
+        logger: logging.Logger | None = None,
+        password: str | None = None,
+    ) -> None:
+        self.cfg = cfg
+        self.subscriptions = list(subscriptions)
+        self.status_topic = status_topic
+        self.log = logger or logging.getLogger(__name__)
+        self._inbox = inbox
+        self._on_drop = on_drop
+        self._on_published = on_published
+        self._on_connection = on_connection
+        self._lock = threading.Lock()
+        self._connected = False
+        self._last_error: str | None = None
+        self.host, self.port, tls = parse_url(cfg.url)
+        v5 = cfg.mqtt_version == "5"
+        self._v5 = v5
+        self.client = paho.Client(
+            callback_api_version=CallbackAPIVersion.VERSION2,
+            client_id=cfg.client_id,
+            clean_session=None if v5 else False,
+            protocol=MQTTProtocolVersion.MQTTv5 if v5 else MQTTProtocolVersion.MQTTv311,
+            manual_ack=True,
+        )
+        self.client.enable_logger(logging.getLogger("shiftwatch.paho"))
+        logging.getLogger("shiftwatch.paho").setLevel(logging.CRITICAL)
+        self.client.reconnect_delay_set(min_delay=1, max_delay=30)
+        self.client.max_queued_messages_set(0)
+        self.client.will_set(status_topic, b"offline", qos=1, retain=True)
+        if cfg.username is not None:
+            self.client.username_pw_set(cfg.username, password)
+        if tls:
+            tcfg = cfg.tls
+            self.client.tls_set(
+                ca_certs=tcfg.ca_file if tcfg else None,
+                certfile=tcfg.cert_file if tcfg else None,
+                keyfile=tcfg.key_file if tcfg else None,
+                cert_reqs=ssl.CERT_REQUIRED,
+            )
+            self.client.tls_insecure_set(False)
+        self.client.on_connect = self._handle_connect
+        self.client.on_disconnect = self._handle_disconnect
+        self.client.on_message = self._handle_message
+        self.client.on_publish = self._handle_publish
+        self.client.on_connect_fail = self._handle_connect_fail
+
+    # ---------------------------------------------------------------- life
+    def start(self) -> None:
+        """Connect in the background; paho reconnects with backoff (1 s doubling to 30 s)."""
+        props = None
+        if self._v5:
+            props = Properties(PacketTypes.CONNECT)
+            props.SessionExpiryInterval = int(self.cfg.session_expiry)
+            self.client.connect_async(self.host, self.port, keepalive=self.cfg.keepalive,
+                                      clean_start=False, properties=props)
+        else:
+            self.client.connect_async(self.host, self.port, keepalive=self.cfg.keepalive)
+        self.client.loop_start()
+
+    def stop(self, timeout: float = 5.0) -> None:
+        """Publish the retained "offline" status ourselves (a clean exit fires no will), then disconnect."""
+        if self.connected:
+            info = self.client.publish(self.status_topic, b"offline", qos=1, retain=True)
+            deadline = time.monotonic() + timeout
+            while not info.is_published() and time.monotonic() < deadline and self.connected:
+                time.sleep(0.01)
+        self.client.disconnect()
+        self.client.loop_stop()
+
+    @property
+    def connected(self) -> bool:
+        return self._connected
+
+    # ------------------------------------------------------------- actions
+    def publish(self, topic: str, payload: bytes, *, qos: int = 1, retain: bool = False) -> int:
+        """Queue a publication; returns its mid (delivery is reported through ``on_published``).
+
+        While disconnected paho keeps the message and sends it on reconnect.
+        """
+        info = self.client.publish(topic, payload, qos=qos, retain=retain)
+        return int(info.mid)
+
+    def set_subscriptions(self, filters: list[str], *, added: list[str], removed: list[str]) -> None:
+        """Change the subscriptions (on reload); the new list is also used on every reconnect."""
+        self.subscriptions = list(filters)
+        if self.connected:
+            for f in removed:
+                self.client.unsubscribe(f)
+            for f in added:
+                self.client.subscribe(f, qos=self.cfg.qos)
+
+    def ack(self, mid: int, qos: int) -> None:
+        """Acknowledge a processed QoS 1 message to the broker."""
+        if qos > 0:
+            self.client.ack(mid, qos)
+
+    # ----------------------------------------------------------- callbacks
+    def _handle_connect(self, client: paho.Client, userdata: Any, flags: Any, reason: Any,
+                        properties: Any) -> None:
+        if reason.is_failure:
+            self._report_error(f"broker {self.host}:{self.port} refused the connection: {reason}")
+            return
+        self._connected = True
+        self._last_error = None
+        session = getattr(flags, "session_present", False)
+        self.log.info("connected to broker %s:%d (session %s)", self.host, self.port,
+                      "resumed" if session else "new")
+        for f in self.subscriptions:
+            client.subscribe(f, qos=self.cfg.qos)
+        client.publish(self.status_topic, b"online", qos=1, retain=True)
+        self._on_connection(True)
+
+    def _handle_connect_fail(self, client: paho.Client, userdata: Any) -> None:
+        self._report_error(f"cannot connect to broker {self.host}:{self.port}; retrying with backoff")
+
+    def _handle_disconnect(self, client: paho.Client, userdata: Any, flags: Any, reason: Any,
+                           properties: Any) -> None:
+        was = self._connected
+        self._connected = False
+        if was:
+            self.log.warning("disconnected from broker %s:%d: %s; reconnecting with backoff",
+                             self.host, self.port, reason)
+        self._on_connection(False)
+
+    def _handle_message(self, client: paho.Client, userdata: Any, msg: paho.MQTTMessage) -> None:
+        try:
+            self._inbox.put_nowait(Message(topic=msg.topic, payload=bytes(msg.payload),
+                                           arrived=time.time(), mid=int(msg.mid), qos=int(msg.qos)))
+        except queue.Full:
+            # Acknowledge it anyway: an unacknowledged message would hold one of
+            # the broker's few in-flight slots and stall the whole flow.
+            self.ack(int(msg.mid), int(msg.qos))
+            self._on_drop("queue_full")
+        except Exception:  # a callback must never raise into paho's loop
+            self._on_drop("internal")
+
+    def _handle_publish(self, client: paho.Client, userdata: Any, mid: int, reason: Any,
+                        properties: Any) -> None:
+        try:
+            self._on_published(int(mid))
+        except Exception:
+            self.log.exception("error while recording a delivered publication")
+
+    def _report_error(self, text: str) -> None:
+        # One line per distinct problem, not one per reconnect attempt.
+        if text != self._last_error:
+            self.log.error(text)
+            self._last_error = text
+
+
+class PlainClient:
+    """A small MQTT client for the demo's sensors and alert display, and for tests.
+
+    Publishes at QoS 1 and, when ``on_message`` is given, subscribes to
+    ``subscribe`` filters and calls ``on_message(topic, payload)`` from paho's
+    thread.
+    """
+
+    def __init__(self, url: str, client_id: str, *, subscribe: list[str] | None = None,
+                 on_message: Callable[[str, bytes], None] | None = None, mqtt_version: str = "5") -> None:
+        self.host, self.port, tls = parse_url(url)
+        v5 = mqtt_version == "5"
+        self.client = paho.Client(
+            callback_api_version=CallbackAPIVersion.VERSION2, client_id=client_id,
+            protocol=MQTTProtocolVersion.MQTTv5 if v5 else MQTTProtocolVersion.MQTTv311,
+        )
+        self.client.max_queued_messages_set(0)
+        self._subscribe = list(subscribe or [])
+        self._on_message = on_message
+        self._up = threading.Event()
+
+        def on_connect(client: paho.Client, userdata: Any, flags: Any, reason: Any, props: Any) -> None:
+            if not reason.is_failure:
+                for f in self._subscribe:
+                    client.subscribe(f, qos=1)
+                self._up.set()
+
+        def on_message_cb(client: paho.Client, userdata: Any, msg: paho.MQTTMessage) -> None:
+            if self._on_message is not None:
+                try:
+                    self._on_message(msg.topic, bytes(msg.payload))
+                except Exception:
+                    logging.getLogger(__name__).exception("message handler failed")
+
+        self.client.on_connect = on_connect
+        self.client.on_message = on_message_cb
+
+    def start(self, timeout: float = 10.0) -> "PlainClient":
+        self.client.connect(self.host, self.port, keepalive=30)
+        self.client.loop_start()
+        if not self._up.wait(timeout):
+            raise BrokerError(f"no connection to {self.host}:{self.port} within {timeout:.0f} s")
+        time.sleep(0.05)  # let the SUBACKs arrive before the caller publishes
+        return self
+
+    def publish(self, topic: str, payload: bytes | str, *, qos: int = 1, retain: bool = False) -> None:
+        self.client.publish(topic, payload, qos=qos, retain=retain)
+
+    def publish_wait(self, topic: str, payload: bytes | str, *, qos: int = 1, timeout: float = 10.0) -> None:
+        info = self.client.publish(topic, payload, qos=qos)
+        info.wait_for_publish(timeout)
+
+    def stop(self) -> None:
+        self.client.disconnect()
+        self.client.loop_stop()
