@@ -19,11 +19,16 @@ large levels with tiny noise (level 1e4, sigma 1e-3) keep full accuracy.
 Besides the point estimate the fit reports
 
 * standard errors of the two levels,
-* an asymptotic confidence interval for the shift position after
+* a confidence interval for the shift position, by default the convex hull
+  of the likelihood-ratio confidence set of Hansen (2000), "Sample splitting
+  and threshold estimation", Econometrica 68:575-603 (applied to break
+  dates by Eo and Morley 2015, Quantitative Economics 6:463-497), with the
+  critical value corrected for the discreteness of the sampled series by
+  Siegmund's corrected diffusion approximation (Siegmund 1979, Advances in
+  Applied Probability 11:701-719; Siegmund 1985, "Sequential Analysis",
+  ch. X); on request the uncorrected LR set or the asymptotic interval of
   Bai (1997), "Estimation of a change point in multiple regression models",
-  Review of Economics and Statistics 79:551-563 (homoskedastic case), with
-  the squared shift estimated without its noise bias and the bounds rounded
-  outward to whole samples,
+  Review of Economics and Statistics 79:551-563 (homoskedastic case),
 * the sup-F statistic over the admissible splits and its approximate
   asymptotic p-value (Andrews 1993, Econometrica 61:821-856; the closed-form
   tail approximation of Hansen 1997 / Estrella 2003 for one parameter).
@@ -49,11 +54,14 @@ from numpy.typing import ArrayLike, NDArray
 FloatArray = NDArray[np.float64]
 
 __all__ = [
+    "INTERVAL_METHODS",
     "StepFit",
     "StepFitter",
     "bai_cdf",
     "bai_quantile",
     "fit_step",
+    "lr_cdf",
+    "lr_critical",
     "supf_pvalue",
 ]
 
@@ -62,6 +70,15 @@ __all__ = [
 # only resolves rounding noise between exactly tied splits (e.g. quantised
 # data) the same way whichever prefix sums were used.
 _TIE_RTOL = 1e-12
+
+#: Accepted values of the ``interval`` option (the first is the default).
+INTERVAL_METHODS = ("lr", "lr_asymptotic", "bai")
+
+# Siegmund's constant rho = -zeta(1/2) / sqrt(2 pi) for Gaussian increments:
+# the expected overshoot correction in P(max_j S_j >= b) ~ exp(-2 mu (b + rho))
+# for a unit-variance Gaussian random walk with drift -mu (Siegmund 1985,
+# "Sequential Analysis", ch. X; zeta(1/2) = -1.4603545088095868).
+_SIEGMUND_RHO = 1.4603545088095868 / math.sqrt(2.0 * math.pi)
 
 
 # ---------------------------------------------------------------------------
@@ -169,6 +186,73 @@ def bai_quantile(p: float) -> float:
     return 0.5 * (lo + hi)
 
 
+def lr_cdf(x: float) -> float:
+    """CDF of the limit law of the likelihood ratio for the break date.
+
+    Hansen (2000), Econometrica 68:575-603, Theorem 2: the LR statistic at
+    the true split converges to xi = max_s (2 W(s) - |s|), W a two-sided
+    Brownian motion, with P(xi <= x) = (1 - exp(-x/2))**2 for x >= 0.
+
+    Examples
+    --------
+    >>> round(lr_cdf(5.94), 3), round(lr_cdf(7.35), 3)
+    (0.9, 0.95)
+    """
+    x = float(x)
+    if math.isnan(x):
+        raise ValueError("x must be a number, got NaN")
+    if x <= 0.0:
+        return 0.0
+    return (-math.expm1(-0.5 * x)) ** 2
+
+
+def lr_critical(level: float, shift: float = 0.0) -> float:
+    """Critical value of the LR confidence set for the break date.
+
+    With ``shift = 0`` this is Hansen's (2000) asymptotic value
+    ``c = -2 log(1 - sqrt(level))``, the ``level`` quantile of
+    :func:`lr_cdf` (5.94 at 90%, 7.35 at 95%).
+
+    That limit treats the break as a point of a continuous Brownian motion.
+    In a sampled series each side of the LR profile at the true split is a
+    Gaussian random walk with drift -d**2 and increment standard deviation
+    2 d, where d = |shift| / sigma; by Siegmund's corrected diffusion
+    approximation its maximum exceeds x with probability about
+    ``exp(-(x + 2 rho d) / 2)``, rho = 0.5826.  The quantile is therefore
+    lowered by ``2 rho d`` (and floored at 0).  Without this correction the
+    set over-covers for shifts of a sigma or more.  The correction assumes
+    independent noise; under positive autocorrelation (with a variance
+    factor) the set is conservative.
+
+    Parameters
+    ----------
+    level : float
+        Confidence level in (0, 1).
+    shift : float, default 0
+        Shift size in noise standard deviations (its absolute value is used).
+
+    Returns
+    -------
+    float
+        The critical value, >= 0.
+
+    Examples
+    --------
+    >>> round(lr_critical(0.9), 2), round(lr_critical(0.95), 2)
+    (5.94, 7.35)
+    >>> round(lr_critical(0.9, 1.0), 3)
+    4.774
+    """
+    level = float(level)
+    if not 0.0 < level < 1.0:
+        raise ValueError(f"level must lie strictly between 0 and 1, got {level!r}")
+    d = abs(float(shift))
+    if math.isnan(d):
+        raise ValueError("shift must be a number, got NaN")
+    c = -2.0 * math.log1p(-math.sqrt(level)) - 2.0 * _SIEGMUND_RHO * d
+    return max(0.0, c)
+
+
 def supf_pvalue(f_stat: float, pi0: float) -> float:
     """Approximate asymptotic p-value of the sup-F statistic for one break.
 
@@ -249,18 +333,29 @@ class StepFit:
     shift_at : float
         ``times[index]``, the time of the first sample at the new level.
     index_low, index_high : int
-        Confidence interval for ``index`` (Bai 1997), rounded outward to
-        whole samples and clipped to [1, n - 1].
+        Confidence interval for ``index``, always containing it.  With
+        ``interval_method`` "lr" or "lr_asymptotic": the first and last
+        admissible split in the likelihood-ratio confidence set
+        ``{k : (rss(k) - rss) / (sigma**2 * variance_factor) <= c}``
+        (Hansen 2000), c from :func:`lr_critical`: for "lr" with the shift
+        in long-run noise sds, d = |delta| / (sigma sqrt(variance_factor)),
+        its square cleared of its noise bias, d**2 (1 - 1/f_stat); for
+        "lr_asymptotic" with shift 0.  With "bai": Bai (1997)'s interval
+        rounded outward to whole samples and clipped to [1, n - 1].
     shift_at_low, shift_at_high : float
         ``times[index_low]`` and ``times[index_high]``.
     interval_level : float
         Confidence level of the interval (e.g. 0.9).
+    interval_method : str
+        How the interval was computed: "lr", "lr_asymptotic" or "bai".
     halfwidth : float
-        Unrounded half width of the interval in samples,
+        For "bai": the unrounded half width in samples,
         ``q * sigma**2 * variance_factor / (delta**2 * (1 - 1/f_stat))``,
         q the (1 + level)/2 quantile of :func:`bai_cdf`; the factor
         ``1 - 1/f_stat`` removes the noise bias of ``delta**2``.  Infinite
-        (interval = whole window) when ``f_stat <= 1``.
+        (interval = whole window) when ``f_stat <= 1``.  For the LR methods
+        (whose interval need not be symmetric): the larger of
+        ``index - index_low`` and ``index_high - index``.
     level_before, level_after : float
         Least-squares levels (segment means).
     level_before_se, level_after_se : float
@@ -298,6 +393,7 @@ class StepFit:
     shift_at_low: float
     shift_at_high: float
     interval_level: float
+    interval_method: str
     halfwidth: float
     level_before: float
     level_after: float
@@ -323,8 +419,8 @@ class StepFit:
         --------
         >>> fit = fit_step([0.0, 0.1, 0.0, 1.0, 1.1, 1.0])
         >>> d = fit.to_dict()
-        >>> d["index"], round(d["delta"], 6)
-        (3, 1.0)
+        >>> d["index"], round(d["delta"], 6), d["interval_method"]
+        (3, 1.0, 'lr')
         """
         return asdict(self)
 
@@ -381,6 +477,12 @@ def _check_options(
     return k_lo, k_hi, pi0
 
 
+def _check_interval(interval: str) -> str:
+    if not isinstance(interval, str) or interval not in INTERVAL_METHODS:
+        raise ValueError(f"interval must be one of {INTERVAL_METHODS}, got {interval!r}")
+    return interval
+
+
 def _as_values(values: ArrayLike, name: str = "values") -> FloatArray:
     arr = np.asarray(values, dtype=np.float64)
     if arr.ndim != 1:
@@ -409,6 +511,7 @@ def _fit_window(
     k_hi: int,
     pi0: float,
     variance_factor: float,
+    interval: str,
 ) -> StepFit:
     """Fit one step to ``values`` given prefix sums ``csum`` (length n + 1).
 
@@ -448,22 +551,16 @@ def _fit_window(
         f_stat = 0.0 if explained == 0.0 else math.inf
     p_value = supf_pvalue(f_stat, pi0)
 
-    # Bai (1997): k_hat -/+ q * sigma^2 / delta^2.  The squared shift is
-    # estimated without the upward bias of the plug-in delta_hat^2, whose
-    # mean at a given split is delta^2 + vf * sigma^2 * (1/n1 + 1/n2):
-    # delta_hat^2 - vf * sigma^2 * n / (n1 n2) = delta_hat^2 * (1 - 1/F).
-    # The correction vanishes asymptotically and lifts the small-sample
-    # coverage (see the coverage simulation in the tests).  F <= 1 means
-    # the shift cannot be told from noise: the interval is the whole window.
-    q = bai_quantile(0.5 * (1.0 + float(level)))
-    if f_stat <= 1.0:
-        halfwidth = math.inf
+    if interval == "bai":
+        index_low, index_high, halfwidth = _bai_interval(
+            n, k, level, sigma2 * vf, delta, f_stat
+        )
     else:
-        halfwidth = q * sigma2 * vf / (delta * delta * (1.0 - 1.0 / f_stat))
-    # Outward rounding (see the coverage simulation in the tests).
-    reach = n if halfwidth >= n else int(math.ceil(halfwidth))
-    index_low = max(1, k - reach)
-    index_high = min(n - 1, k + reach)
+        index_low, index_high = _lr_interval(
+            values, mean_all, k, k_lo, k_hi, level, sigma2 * vf, f_stat,
+            corrected=interval == "lr",
+        )
+        halfwidth = float(max(k - index_low, index_high - k))
 
     return StepFit(
         index=k,
@@ -473,6 +570,7 @@ def _fit_window(
         shift_at_low=float(times[index_low]),
         shift_at_high=float(times[index_high]),
         interval_level=float(level),
+        interval_method=interval,
         halfwidth=halfwidth,
         level_before=mean_before,
         level_after=mean_after,
@@ -493,6 +591,68 @@ def _fit_window(
     )
 
 
+def _bai_interval(
+    n: int, k: int, level: float, s2: float, delta: float, f_stat: float
+) -> tuple[int, int, float]:
+    """Bai (1997) interval k -/+ q s2 / delta^2, rounded outward; s2 = vf sigma^2."""
+    # The squared shift is estimated without the upward bias of the plug-in
+    # delta_hat^2, whose mean at a given split is delta^2 + s2 (1/n1 + 1/n2):
+    # delta_hat^2 - s2 n / (n1 n2) = delta_hat^2 (1 - 1/F).  The correction
+    # vanishes asymptotically and lifts the small-sample coverage.  F <= 1
+    # means the shift cannot be told from noise: the interval is the whole
+    # window.
+    q = bai_quantile(0.5 * (1.0 + float(level)))
+    if f_stat <= 1.0:
+        halfwidth = math.inf
+    else:
+        halfwidth = q * s2 / (delta * delta * (1.0 - 1.0 / f_stat))
+    reach = n if halfwidth >= n else int(math.ceil(halfwidth))
+    return max(1, k - reach), min(n - 1, k + reach), halfwidth
+
+
+def _lr_interval(
+    values: FloatArray,
+    mean_all: float,
+    k: int,
+    k_lo: int,
+    k_hi: int,
+    level: float,
+    s2: float,
+    f_stat: float,
+    *,
+    corrected: bool,
+) -> tuple[int, int]:
+    """Convex hull of the LR confidence set (Hansen 2000); s2 = vf sigma^2.
+
+    rss(j) - rss(k) = B_k - B_j, B the between-segment sum of squares, is
+    evaluated for every admissible j at once from prefix sums of the window
+    centred on its own mean.  They are rebuilt here (O(n), like the two-pass
+    sums of squares) rather than taken from the caller, so that fit_step and
+    StepFitter, whose prefix sums are centred differently, give the same set.
+    """
+    n = values.size
+    cl = np.cumsum(values - mean_all)
+    ks = np.arange(k_lo, k_hi + 1, dtype=np.float64)
+    dev = cl[k_lo - 1 : k_hi]
+    prof = n * dev * dev / (ks * (n - ks))
+    b_hat = float(prof[k - k_lo])
+    if not corrected:
+        c = lr_critical(level)
+    elif math.isinf(f_stat):
+        c = 0.0
+    else:
+        # Shift in noise sds with the noise bias of its square removed:
+        # d^2 (1 - 1/F) = (F - 1) n / (k (n - k)).
+        d = math.sqrt(max(0.0, f_stat - 1.0) * n / (k * (n - k)))
+        c = lr_critical(level, d)
+    # Splits tied with the best one to rounding always belong to the set
+    # (this alone decides when sigma == 0).
+    inside = (b_hat - prof) <= c * s2 + _TIE_RTOL * b_hat
+    low = k_lo + int(np.argmax(inside))
+    high = k_hi - int(np.argmax(inside[::-1]))
+    return low, high
+
+
 # ---------------------------------------------------------------------------
 # Public entry points
 # ---------------------------------------------------------------------------
@@ -506,6 +666,7 @@ def fit_step(
     min_segment: int = 1,
     trim: float | None = None,
     variance_factor: float = 1.0,
+    interval: str = "lr",
 ) -> StepFit:
     """Fit the exact least-squares single step to a series.
 
@@ -532,6 +693,13 @@ def fit_step(
         Long-run variance over marginal variance of the noise (>= 1) for
         autocorrelated data.  Multiplies sigma**2 in the standard errors and
         the interval width and divides the F statistic.
+    interval : {"lr", "lr_asymptotic", "bai"}, default "lr"
+        Confidence interval for the shift position: the likelihood-ratio
+        set of Hansen (2000) with the critical value corrected for the
+        sampling of the series (see :func:`lr_critical`), the same set with
+        Hansen's uncorrected asymptotic critical value, or Bai (1997)'s
+        symmetric asymptotic interval.  The default is the one whose
+        simulated coverage stays closest to nominal (see the tests).
 
     Returns
     -------
@@ -553,7 +721,10 @@ def fit_step(
     (4, 2.0)
     >>> round(fit.level_before, 3), round(fit.level_after, 3), round(fit.delta, 3)
     (10.0, 12.0, 2.0)
-    >>> fit.index_low, fit.index_high
+    >>> fit.index_low, fit.index_high, fit.interval_method
+    (4, 4, 'lr')
+    >>> bai = fit_step([10.0, 10.2, 9.8, 10.0, 12.1, 11.9, 12.0, 12.0], interval="bai")
+    >>> bai.index_low, bai.index_high
     (3, 5)
     >>> fit.p_value < 0.001
     True
@@ -561,13 +732,14 @@ def fit_step(
     y = _as_values(values)
     n = y.size
     k_lo, k_hi, pi0 = _check_options(n, level, min_segment, trim, variance_factor)
+    _check_interval(interval)
     t = np.arange(n, dtype=np.float64) if times is None else _as_times(times, n)
     csum = np.empty(n + 1, dtype=np.float64)
     csum[0] = 0.0
     np.cumsum(y - y.mean(), out=csum[1:])
     return _fit_window(
         y, t, csum, level=level, k_lo=k_lo, k_hi=k_hi, pi0=pi0,
-        variance_factor=variance_factor,
+        variance_factor=variance_factor, interval=interval,
     )
 
 
@@ -749,6 +921,7 @@ class StepFitter:
         min_segment: int = 1,
         trim: float | None = None,
         variance_factor: float = 1.0,
+        interval: str = "lr",
     ) -> StepFit:
         """Fit one step to the suffix of the window beginning at ``start``.
 
@@ -771,10 +944,11 @@ class StepFitter:
         b = self._end
         n = b - a
         k_lo, k_hi, pi0 = _check_options(n, level, min_segment, trim, variance_factor)
+        _check_interval(interval)
         return _fit_window(
             self._values[a:b], self._times[a:b], self._csum[a : b + 1],
             level=level, k_lo=k_lo, k_hi=k_hi, pi0=pi0,
-            variance_factor=variance_factor,
+            variance_factor=variance_factor, interval=interval,
         )
 
     def fit(
@@ -784,6 +958,7 @@ class StepFitter:
         min_segment: int = 1,
         trim: float | None = None,
         variance_factor: float = 1.0,
+        interval: str = "lr",
     ) -> StepFit:
         """Fit one step to the whole window (see :func:`fit_step`).
 
@@ -794,5 +969,5 @@ class StepFitter:
         """
         return self.fit_from(
             0, level=level, min_segment=min_segment, trim=trim,
-            variance_factor=variance_factor,
+            variance_factor=variance_factor, interval=interval,
         )
