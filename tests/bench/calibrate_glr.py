@@ -99,11 +99,12 @@ def _direct_runs(c: float, window: int, n_runs: int, rng: np.random.Generator) -
     test = GlrTest(c, window=window)
     runs = []
     count = 0
-    buf = rng.standard_normal(1 << 16)
+    size = 4096  # batches much longer than the ARL waste work (a batch is evaluated in full)
+    buf = rng.standard_normal(size)
     i = 0
     while len(runs) < n_runs:
         if i >= buf.size:
-            buf = rng.standard_normal(1 << 16)
+            buf = rng.standard_normal(size)
             i = 0
         k = test.update(buf[i:])
         if k < 0:
