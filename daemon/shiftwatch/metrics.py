@@ -1,0 +1,337 @@
+"""Prometheus metrics of the daemon and the HTTP endpoint that serves them.
+
+This is the only module that imports ``prometheus_client``.  Everything lives
+on a :class:`~prometheus_client.CollectorRegistry` owned by a :class:`Metrics`
+object, so nothing is registered globally and tests can build as many as they
+like.
+
+Per-stream figures are not kept in prometheus_client instruments.  The daemon
+hands a :class:`StreamStats` snapshot to :meth:`Metrics.update_stream` after
+each batch, and a collector turns the latest snapshots into metric families at
+scrape time.  The counters therefore are the engine's own totals (restored from
+snapshots after a restart) rather than a second count that could drift.
+
+Names follow Prometheus conventions (base units, ``_total`` on counters,
+``_seconds`` and ``_timestamp_seconds`` on times):
+
+==========================================  =============================================
+``shiftwatch_samples_total{stream}``         samples received, rejected ones included
+``shiftwatch_samples_rejected_total``        rejected samples, by ``stream`` and ``reason``
+``shiftwatch_alert_records_total``           alert records, by ``stream`` and ``phase``
+``shiftwatch_level{stream}``                 in-control level, in reading units
+``shiftwatch_sigma{stream}``                 noise sigma, in reading units
+``shiftwatch_test_statistic{stream}``        the sequential test's statistic
+``shiftwatch_test_threshold{stream}``        the statistic's alarm threshold
+``shiftwatch_last_shift_timestamp_seconds``  when the last confirmed shift started
+``shiftwatch_stream_info{stream,state}``     1, labelled with the engine state
+``shiftwatch_streams``                       streams tracked
+==========================================  =============================================
+
+Missing values are omitted, never exported as NaN: ``shiftwatch_level`` and
+``shiftwatch_sigma`` appear once the first warm-up has set a baseline, the test
+gauges once a test has been designed (the threshold is known), and
+``shiftwatch_last_shift_timestamp_seconds`` once a shift has been confirmed.
+NaN would poison every sum and average over streams; an absent series is what
+PromQL expects for "not known yet".
+"""
+
+from __future__ import annotations
+
+import math
+import threading
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass
+from typing import Any
+from wsgiref.simple_server import WSGIServer
+
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, start_http_server
+from prometheus_client.metrics_core import CounterMetricFamily, GaugeMetricFamily, Metric
+from prometheus_client.registry import Collector
+
+__all__ = ["DEFAULT_LISTEN", "ALERT_DELAY_BUCKETS", "StreamStats", "Metrics", "MetricsServer",
+           "parse_listen"]
+
+#: Where the endpoint listens unless configured otherwise: loopback only.
+DEFAULT_LISTEN = "127.0.0.1:9650"
+
+#: Buckets of ``shiftwatch_alert_delay_seconds``: 1 ms to 10 s in 1-2.5-5 steps.
+ALERT_DELAY_BUCKETS: tuple[float, ...] = (
+    0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
+
+
+@dataclass(frozen=True)
+class StreamStats:
+    """What the metrics show of one stream at one moment.
+
+    Attributes
+    ----------
+    samples_total : samples received, rejected ones included.
+    rejected_total : rejected samples by reason code.
+    records_total : alert records by phase.
+    level, sigma : in-control level and noise sigma; None before the first baseline.
+    statistic, threshold : the sequential test's statistic and threshold; the
+        threshold is NaN while no test has been designed.
+    last_shift_at : epoch seconds at which the last confirmed shift started, or None.
+    state : the engine state (``warming_up``, ``watching``, ``event_open``).
+    """
+
+    samples_total: int
+    rejected_total: Mapping[str, int]
+    records_total: Mapping[str, int]
+    level: float | None
+    sigma: float | None
+    statistic: float
+    threshold: float
+    last_shift_at: float | None
+    state: str
+
+    @classmethod
+    def from_engine(cls, engine: Any) -> StreamStats:
+        """Copy the figures out of a ``StreamEngine`` (the counters are copied, not shared).
+
+        Parameters
+        ----------
+        engine : a :class:`shiftwatch.core.engine.StreamEngine`.
+
+        Returns
+        -------
+        StreamStats
+        """
+        return cls(
+            samples_total=int(engine.samples_total),
+            rejected_total=dict(engine.rejected_total),
+            records_total=dict(engine.records_total),
+            level=engine.level,
+            sigma=engine.sigma,
+            statistic=float(engine.statistic),
+            threshold=float(engine.threshold),
+            last_shift_at=engine.last_shift_at,
+            state=str(engine.state),
+        )
+
+
+def _known(x: float | None) -> bool:
+    return x is not None and not math.isnan(x)
+
+
+class _StreamCollector(Collector):
+    """Builds the per-stream families from the latest snapshots at scrape time."""
+
+    def __init__(self, metrics: Metrics) -> None:
+        self._metrics = metrics
+
+    def describe(self) -> list[Metric]:
+        # Names only, so the registry can detect clashes without a scrape.
+        return list(self._families({}))
+
+    def collect(self) -> Iterator[Metric]:
+        return self._families(self._metrics._snapshot())
+
+    @staticmethod
+    def _families(streams: Mapping[str, StreamStats]) -> Iterator[Metric]:
+        samples = CounterMetricFamily(
+            "shiftwatch_samples", "Samples received for the stream, rejected ones included.",
+            labels=["stream"])
+        rejected = CounterMetricFamily(
+            "shiftwatch_samples_rejected", "Samples rejected by screening, by reason.",
+            labels=["stream", "reason"])
+        records = CounterMetricFamily(
+            "shiftwatch_alert_records", "Alert records produced, by phase.",
+            labels=["stream", "phase"])
+        level = GaugeMetricFamily(
+            "shiftwatch_level", "In-control level of the stream, in reading units "
+            "(absent until the first warm-up ends).", labels=["stream"])
+        sigma = GaugeMetricFamily(
+            "shiftwatch_sigma", "Noise standard deviation of the stream, in reading units "
+            "(absent until the first warm-up ends).", labels=["stream"])
+        statistic = GaugeMetricFamily(
+            "shiftwatch_test_statistic", "Current statistic of the stream's sequential test "
+            "(absent until the test is set up).", labels=["stream"])
+        threshold = GaugeMetricFamily(
+            "shiftwatch_test_threshold", "Alarm threshold of the stream's sequential test "
+            "(absent until the test is set up).", labels=["stream"])
+        last_shift = GaugeMetricFamily(
+            "shiftwatch_last_shift_timestamp_seconds", "Start time of the last confirmed shift, "
+            "in seconds since the Unix epoch (absent until a shift is confirmed).", labels=["stream"])
+        info = GaugeMetricFamily(
+            "shiftwatch_stream_info", "Always 1; the state label is the engine state "
+            "(warming_up, watching or event_open).", labels=["stream", "state"])
+        count = GaugeMetricFamily("shiftwatch_streams", "Streams currently tracked.")
+
+        for name in sorted(streams):
+            st = streams[name]
+            samples.add_metric([name], float(st.samples_total))
+            for reason in sorted(st.rejected_total):
+                rejected.add_metric([name, reason], float(st.rejected_total[reason]))
+            for phase in sorted(st.records_total):
+                records.add_metric([name, phase], float(st.records_total[phase]))
+            if _known(st.level):
+                level.add_metric([name], float(st.level))  # type: ignore[arg-type]
+            if _known(st.sigma):
+                sigma.add_metric([name], float(st.sigma))  # type: ignore[arg-type]
+            if _known(st.threshold):
+                statistic.add_metric([name], float(st.statistic))
+                threshold.add_metric([name], float(st.threshold))
+            if _known(st.last_shift_at):
+                last_shift.add_metric([name], float(st.last_shift_at))  # type: ignore[arg-type]
+            info.add_metric([name, st.state], 1.0)
+        count.add_metric([], float(len(streams)))
+        yield from (samples, rejected, records, level, sigma, statistic, threshold, last_shift,
+                    info, count)
+
+
+def parse_listen(listen: str) -> tuple[str, int]:
+    """Split ``host:port`` (``[v6addr]:port`` for IPv6) into host and port.
+
+    An empty host means loopback (``127.0.0.1``); listening on every interface
+    has to be asked for with ``0.0.0.0`` or ``[::]``.
+
+    Parameters
+    ----------
+    listen : the address, e.g. ``"127.0.0.1:9650"``; port 0 picks a free port.
+
+    Returns
+    -------
+    tuple of (host, port)
+
+    Raises
+    ------
+    ValueError
+        If there is no port or the port is out of range.
+
+    Examples
+    --------
+    >>> parse_listen("127.0.0.1:9650")
+    ('127.0.0.1', 9650)
+    >>> parse_listen("[::1]:0")
+    ('::1', 0)
+    >>> parse_listen(":9650")
+    ('127.0.0.1', 9650)
+    """
+    host, sep, port = listen.rpartition(":")
+    if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:
+        raise ValueError(f"listen address must be host:port, got {listen!r}")
+    if host.startswith("[") and host.endswith("]"):
+        host = host[1:-1]
+    return (host or "127.0.0.1"), int(port)
+
+
+class MetricsServer:
+    """A running metrics endpoint; :meth:`close` stops it.
+
+    Attributes
+    ----------
+    host : the address it is bound to.
+    port : the port it is bound to (the chosen one when port 0 was asked for).
+    """
+
+    def __init__(self, server: WSGIServer, thread: threading.Thread) -> None:
+        self._server = server
+        self._thread = thread
+        addr = server.server_address
+        self.host: str = str(addr[0])
+        self.port: int = int(addr[1])
+
+    def close(self) -> None:
+        """Stop serving, close the socket and wait for the serving thread."""
+        self._server.shutdown()
+        self._server.server_close()
+        self._thread.join()
+
+    def __enter__(self) -> MetricsServer:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+class Metrics:
+    """The daemon's metrics on a registry of their own.
+
+    Parameters
+    ----------
+    registry : where to register; a fresh :class:`CollectorRegistry` by default.
+
+    Attributes
+    ----------
+    registry : the registry everything is registered on.
+    broker_connected : 1 while connected to the MQTT broker, else 0.
+    messages_received : MQTT messages received.
+    messages_dropped : MQTT messages discarded, labelled by ``reason``.
+    alert_delay : seconds from a sample's arrival to the publication of its alert.
+    queue_depth : messages waiting in the ingest queue.
+    outbox_depth : alert records waiting for the broker's acknowledgement.
+    snapshot_failures : state snapshots that could not be written.
+    snapshots : state snapshots written.
+    """
+
+    def __init__(self, registry: CollectorRegistry | None = None) -> None:
+        self.registry = registry if registry is not None else CollectorRegistry()
+        self._lock = threading.Lock()
+        self._streams: dict[str, StreamStats] = {}
+        reg = self.registry
+        self.broker_connected = Gauge(
+            "shiftwatch_broker_connected", "1 while connected to the MQTT broker, else 0.",
+            registry=reg)
+        self.messages_received = Counter(
+            "shiftwatch_messages_received", "MQTT messages received.", registry=reg)
+        self.messages_dropped = Counter(
+            "shiftwatch_messages_dropped", "MQTT messages discarded without processing, by reason.",
+            labelnames=["reason"], registry=reg)
+        self.alert_delay = Histogram(
+            "shiftwatch_alert_delay_seconds",
+            "Seconds from the arrival of the sample that completed an alert record "
+            "to the record's publication.", buckets=ALERT_DELAY_BUCKETS, registry=reg)
+        self.queue_depth = Gauge(
+            "shiftwatch_ingest_queue_depth", "Messages received and waiting to be processed.",
+            registry=reg)
+        self.outbox_depth = Gauge(
+            "shiftwatch_outbox_depth", "Alert records waiting for the broker to acknowledge them.",
+            registry=reg)
+        self.snapshot_failures = Counter(
+            "shiftwatch_snapshot_failures", "State snapshots that could not be written.",
+            registry=reg)
+        self.snapshots = Counter(
+            "shiftwatch_snapshots", "State snapshots written.", registry=reg)
+        reg.register(_StreamCollector(self))
+
+    def update_stream(self, stream: str, stats: StreamStats) -> None:
+        """Replace the stream's snapshot with ``stats`` (safe to call from any thread)."""
+        with self._lock:
+            self._streams[stream] = stats
+
+    def remove_stream(self, stream: str) -> None:
+        """Stop exporting the stream; unknown names are ignored."""
+        with self._lock:
+            self._streams.pop(stream, None)
+
+    def _snapshot(self) -> dict[str, StreamStats]:
+        with self._lock:
+            return dict(self._streams)
+
+    def serve(self, listen: str = DEFAULT_LISTEN, *, certfile: str | None = None,
+              keyfile: str | None = None) -> MetricsServer:
+        """Serve the registry over HTTP (HTTPS when a certificate and key are given).
+
+        Parameters
+        ----------
+        listen : ``host:port``, see :func:`parse_listen`; loopback by default.
+        certfile, keyfile : PEM certificate and private key; both or neither.
+
+        Returns
+        -------
+        MetricsServer
+
+        Raises
+        ------
+        ValueError
+            If the address is malformed or only one of certfile and keyfile is given.
+        OSError
+            If the address cannot be bound.
+        """
+        if (certfile is None) != (keyfile is None):
+            raise ValueError("certfile and keyfile must be given together")
+        host, port = parse_listen(listen)
+        server, thread = start_http_server(port, addr=host, registry=self.registry,
+                                           certfile=certfile, keyfile=keyfile)
+        return MetricsServer(server, thread)
