@@ -18,6 +18,11 @@ def shiftwatch_command() -> list[str]:
 
 
 @pytest.fixture
+def shiftwatch_cmd() -> list[str]:
+    return shiftwatch_command()
+
+
+@pytest.fixture
 def cli(tmp_path: Path):
     """Run the real command line in a subprocess; returns the CompletedProcess."""
 

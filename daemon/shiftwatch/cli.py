@@ -270,6 +270,13 @@ def cmd_check(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_schema(args: argparse.Namespace) -> int:
+    from shiftwatch.config import json_schema
+
+    print(json.dumps(json_schema(), indent=2))
+    return EXIT_OK
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     from shiftwatch.demo import run_demo
 
@@ -313,6 +320,9 @@ def build_parser() -> argparse.ArgumentParser:
     ck = sub.add_parser("check", help="validate a configuration file and print the resolved settings")
     ck.add_argument("--config", required=True, help="YAML configuration file")
     ck.set_defaults(func=cmd_check)
+
+    sc = sub.add_parser("schema", help="print the JSON Schema of the configuration file (for editors)")
+    sc.set_defaults(func=cmd_schema)
 
     dm = sub.add_parser("demo", help="run a private broker, an invented line of sensors and the daemon")
     dm.add_argument("--duration", type=float, default=75.0, help="seconds to run (default 75; Ctrl-C stops early)")

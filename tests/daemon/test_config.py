@@ -1,0 +1,109 @@
+"""Configuration: one place validates it; errors name the key path and the line."""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+
+import pytest
+
+from shiftwatch.config import ConfigError, json_schema, load_config, parse_config, topic_matches
+
+ROOT = Path(__file__).resolve().parents[2]
+
+
+def error_of(text: str) -> str:
+    with pytest.raises(ConfigError) as exc:
+        parse_config(text, file="plant.yaml")
+    return str(exc.value)
+
+
+def test_the_shipped_example_is_valid_and_means_what_it_says() -> None:
+    cfg = load_config(ROOT / "config" / "shiftwatch.example.yaml")
+    assert cfg.broker.client_id == "shiftwatch-line2"
+    assert cfg.broker.session_expiry == 86400.0
+    filler = cfg.settings_for("brackenfield/line2/filler/head3/fill")
+    assert filler.min_shift_sigma == 1.5 and filler.false_alarm_every == 7 * 86400
+    assert cfg.settings_for("brackenfield/line2/capper/torque").min_shift_sigma == 1.0
+    assert cfg.stream_for("brackenfield/line2/capper/torque").unit == "N m"
+    assert cfg.metrics.listen == "127.0.0.1:9650"  # loopback by default
+
+
+def test_the_shipped_schema_is_generated_from_the_same_definitions() -> None:
+    shipped = json.loads((ROOT / "config" / "shiftwatch.schema.json").read_text())
+    assert shipped == json_schema()
+    props = shipped["properties"]
+    assert set(props) == {"broker", "streams", "detection", "alerts", "metrics", "state"}
+    assert props["detection"]["properties"]["test"]["enum"] == ["glr", "cusum", "page_hinkley", "adwin"]
+    assert props["streams"]["items"]["required"] == ["topic"]
+
+
+@pytest.mark.parametrize("text, expected", [
+    ("detection:\n  min_shift_sigm: 1\n",
+     "plant.yaml:2: detection.min_shift_sigm: unknown key; did you mean 'min_shift_sigma'?"),
+    ("streams:\n  - topic: a/b\n    detection:\n      min_shift_sigma: -1\n",
+     "plant.yaml:4: streams[0].detection.min_shift_sigma: must be positive, got -1"),
+    ("streams:\n  - topic: a/b\n  - topic: c/#/d\n",
+     "plant.yaml:3: streams[1].topic: '#' must be a whole last level of the filter: 'c/#/d'"),
+    ("streams:\n  - format: json\n", "plant.yaml:2: streams[0].topic: is required"),
+    ("broker:\n  url: http://x\n",
+     "plant.yaml:2: broker.url: must start with mqtt:// or mqtts://, got 'http://x'"),
+    ("broker:\n  mqtt_version: 4\n", "plant.yaml:2: broker.mqtt_version: must be text, got 4"),
+    ("detection: {false_alarm_every: soon}\n",
+     "plant.yaml:1: detection.false_alarm_every: not a duration: 'soon'"),
+    ("metrics: {listen: nowhere}\n", "plant.yaml:1: metrics.listen: must be host:port, got 'nowhere'"),
+    ("alerts: {topic_prefix: 'a/+/b'}\n", "plant.yaml:1: alerts.topic_prefix: must be a plain topic"),
+    ("brokr: {}\n", "plant.yaml:1: brokr: unknown key; did you mean 'broker'?"),
+    ("streams: {topic: a}\n", "plant.yaml:1: streams: must be a list of stream entries"),
+    ("detection: [1, 2]\n", "plant.yaml:1: detection: must be a mapping of keys to values"),
+    ("detection:\n  warmup_samples: 1000\n",
+     "plant.yaml:2: detection.window_samples: must be at least twice warmup_samples"),
+    ("a: [\n", "plant.yaml:2: not valid YAML"),
+    ("detection: {}\ndetection: {}\n", "plant.yaml:2: detection: key appears twice"),
+])
+def test_errors_name_the_line_and_the_key_path(text: str, expected: str) -> None:
+    assert error_of(text).startswith(expected)
+
+
+def test_per_stream_overrides_layer_on_the_defaults() -> None:
+    cfg = parse_config("streams:\n  - topic: a/+\n    detection: {test: cusum}\n"
+                       "detection: {min_shift_sigma: 2, false_alarm_every: 30d}\n")
+    s = cfg.settings_for("a/x")
+    assert (s.test, s.min_shift_sigma, s.false_alarm_every) == ("cusum", 2.0, 30 * 86400.0)
+    assert cfg.settings_for("b").test == "glr"
+
+
+def test_topic_filters_follow_mqtt_rules() -> None:
+    # MQTT 5.0 specification, section 4.7 (topic filters and wildcards).
+    assert topic_matches("sport/tennis/player1/#", "sport/tennis/player1")
+    assert topic_matches("sport/tennis/player1/#", "sport/tennis/player1/ranking")
+    assert topic_matches("sport/+/player1", "sport/tennis/player1")
+    assert not topic_matches("sport/+", "sport/tennis/player1")
+    assert topic_matches("+/+", "/finance")
+    assert not topic_matches("sport/tennis/+", "sport/tennis")
+
+
+def test_check_prints_resolved_settings_without_secrets(cli, tmp_path: Path) -> None:
+    pw = tmp_path / "broker.password"
+    pw.write_text("s3cret-line2\n")
+    os.chmod(pw, 0o644)
+    cfg = tmp_path / "plant.yaml"
+    cfg.write_text(f"broker:\n  username: sw\n  password_file: {pw}\n"
+                   "streams:\n  - topic: a/+\n")
+    res = cli("check", "--config", str(cfg))
+    assert res.returncode == 0, res.stderr
+    assert "min_shift_sigma: 1.0" in res.stdout and "false_alarm_every: 604800.0" in res.stdout
+    assert "s3cret" not in res.stdout + res.stderr
+    assert "readable by other users" in res.stderr
+    bad = tmp_path / "bad.yaml"
+    bad.write_text("detection:\n  test: ewma\n")
+    res = cli("check", "--config", str(bad))
+    assert res.returncode == 2
+    assert f"{bad}:2: detection.test: 'ewma' is not one of glr, cusum, page_hinkley, adwin" in res.stderr
+
+
+def test_schema_command_prints_the_shipped_schema(cli) -> None:
+    res = cli("schema")
+    assert res.returncode == 0
+    assert json.loads(res.stdout) == json_schema()
