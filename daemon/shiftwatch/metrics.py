@@ -110,8 +110,9 @@ class StreamStats:
         )
 
 
-def _known(x: float | None) -> bool:
-    return x is not None and not math.isnan(x)
+def _known(x: float | None) -> float | None:
+    """The value as a float, or None when it is missing or NaN."""
+    return None if x is None or math.isnan(x) else float(x)
 
 
 class _StreamCollector(Collector):
@@ -165,15 +166,15 @@ class _StreamCollector(Collector):
                 rejected.add_metric([name, reason], float(st.rejected_total[reason]))
             for phase in sorted(st.records_total):
                 records.add_metric([name, phase], float(st.records_total[phase]))
-            if _known(st.level):
-                level.add_metric([name], float(st.level))  # type: ignore[arg-type]
-            if _known(st.sigma):
-                sigma.add_metric([name], float(st.sigma))  # type: ignore[arg-type]
-            if _known(st.threshold):
+            if (v := _known(st.level)) is not None:
+                level.add_metric([name], v)
+            if (v := _known(st.sigma)) is not None:
+                sigma.add_metric([name], v)
+            if (v := _known(st.threshold)) is not None:
                 statistic.add_metric([name], float(st.statistic))
-                threshold.add_metric([name], float(st.threshold))
-            if _known(st.last_shift_at):
-                last_shift.add_metric([name], float(st.last_shift_at))  # type: ignore[arg-type]
+                threshold.add_metric([name], v)
+            if (v := _known(st.last_shift_at)) is not None:
+                last_shift.add_metric([name], v)
             info.add_metric([name, st.state], 1.0)
         count.add_metric([], float(len(streams)))
         yield from (samples, rejected, records, level, sigma, statistic, threshold, last_shift,

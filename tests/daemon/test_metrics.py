@@ -26,7 +26,8 @@ def scrape(server: MetricsServer, *, scheme: str = "http", context: ssl.SSLConte
                                 context=context) as resp:
         assert resp.status == 200
         assert resp.headers["Content-Type"].startswith("text/plain")
-        return resp.read().decode("utf-8")
+        body: bytes = resp.read()
+        return body.decode("utf-8")
 
 
 def samples(text: str) -> Samples:

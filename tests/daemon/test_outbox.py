@@ -8,6 +8,7 @@ import signal
 import subprocess
 import sys
 import threading
+from collections.abc import Callable
 from pathlib import Path
 
 import pytest
@@ -144,7 +145,7 @@ def test_discarded_object_leaves_items_pending(tmp_path: Path) -> None:
     lambda data: data.replace(b'"qos": 1', b'"qos": 7'),
 ])
 def test_unreadable_item_is_moved_aside(tmp_path: Path, caplog: pytest.LogCaptureFixture,
-                                        damage) -> None:  # type: ignore[no-untyped-def]
+                                        damage: Callable[[bytes], bytes]) -> None:
     box = Outbox(tmp_path)
     a = box.add("t", b"payload a")
     b = box.add("t", b"payload b")
