@@ -22,7 +22,8 @@ Usage (from the repository root; numpy, plus scipy for the CUSUM oracle)::
 ``delay``
     Median detection delay of ``GlrTest.design(arl)`` and of an oracle
     two-sided CUSUM with ``k = shift / 2`` at the same in-control ARL, for
-    steps of 0.5, 0.75, 1, 1.5 and 2 sigma after 300 in-control samples.
+    steps of 0.5, 0.75, 1, 1.5 and 2 sigma after 300 in-control samples
+    (delay = trip index - step index).
 ``speed``
     ns/sample of ``GlrTest.update`` for batches of 1000 next to river's
     PageHinkley per-sample update (if river is installed).
@@ -220,7 +221,7 @@ def glr_delays(test: GlrTest, shift: float, reps: int, pre: int, rng: np.random.
         if 0 <= k < pre:
             false += 1
             continue
-        delays.append(k - pre + 1 if k >= 0 else 10**9)
+        delays.append(k - pre if k >= 0 else 10**9)
     return np.asarray(delays), false
 
 
@@ -238,14 +239,15 @@ def cusum_delays(k: float, h: float, shift: float, reps: int, pre: int, rng: np.
         if (trip >= 0).all():
             break
     ok = trip >= pre
-    return trip[ok] - pre + 1, int((trip < pre).sum())
+    return trip[ok] - pre, int((trip < pre).sum())
 
 
 def cmd_delay(window: int, arl: float, reps: int) -> None:
     test = GlrTest.design(arl, window=window)
     print(f"# GLR window {window} ({len(test.lags)} lags) threshold {test.threshold:.4f} "
-          f"at ARL {arl:.6g}; step after 300 in-control samples; delay = samples "
-          f"from the step up to and including the trip sample; {reps} reps")
+          f"at ARL {arl:.6g}; step at index 300 (after 300 in-control samples); "
+          f"delay = trip index - step index; {reps} reps; runs with a false alarm "
+          f"before the step are dropped")
     print("# shift  GLR-median  GLR-mean  CUSUM-k  CUSUM-h  CUSUM-median  CUSUM-mean  ratio-median")
     rng = np.random.default_rng(4242)
     for shift in (0.5, 0.75, 1.0, 1.5, 2.0):

@@ -421,13 +421,17 @@ def _max_stat(
     if full > t0:
         best[: min(full, n) - t0] = _max_stat_warmup(c[: min(full, n)], t0, lags, half_inv)
     if full < n:
-        view = np.lib.stride_tricks.sliding_window_view(c, maxlag + 1)
         cols = maxlag - np.asarray(lags, dtype=np.intp)
+        width = maxlag + 1
+        step = c.strides[0]
         for a in range(full, n, _CHUNK):
             b = min(a + _CHUNK, n)
-            rows = view[a - maxlag : b - maxlag]
+            # rows[i] = c[a - maxlag + i : a + i + 1] (a strided view, no copy)
+            rows = np.ndarray(
+                (b - a, width), np.float64, c, (a - maxlag) * step, (step, step)
+            )
             g = rows[:, cols]
-            np.subtract(rows[:, maxlag : maxlag + 1], g, out=g)
+            np.subtract(c[a:b, None], g, out=g)
             np.multiply(g, g, out=g)
             g *= half_inv
             g.max(axis=1, out=best[a - t0 : b - t0])
