@@ -1,0 +1,732 @@
+"""Payload decoders for MQTT messages: a plain number, JSON objects and SenML.
+
+:func:`decode` turns one message payload into :class:`Reading` objects and
+:class:`DecodeProblem` reports.  It never raises on any payload: every defect
+of the payload (size, encoding, syntax, nesting, types, values, times) becomes
+a problem with a stable ``reason`` label, listed with an operator-readable
+sentence in :data:`REASONS`.  It raises only on programming errors (a payload
+that is not bytes, an unknown format, bad limits or paths, a non-finite
+``now``).
+
+The module is pure: no I/O, no clock (the arrival time ``now`` is passed in),
+no MQTT library.
+
+Formats
+-------
+``number``
+    UTF-8 text of one decimal number; surrounding whitespace is allowed.
+``json``
+    A JSON object whose value sits at ``value_path`` (a key or a dot path
+    such as ``data.weight_g``) and, optionally, whose time sits at
+    ``time_path``.  A bare JSON number is taken as the value.  A JSON array
+    is a batch: each element is decoded on its own, good elements are kept
+    and bad ones reported.
+``senml``
+    A SenML pack in JSON, RFC 8428: base fields ``bn``, ``bt``, ``bu``,
+    ``bv``, ``bs``, ``bver`` and regular fields ``n``, ``t``, ``u``, ``v``
+    (``vs``, ``vb``, ``vd``, ``s``), resolved as in RFC 8428 section 4.6.
+
+Behaviour decisions
+-------------------
+- Only JSON numbers are values.  ``true``/``false``, ``null``, lists and
+  objects are not.  A number written as text (``"12.5"``) is rejected with
+  ``value_is_text`` rather than parsed: a producer that quotes its numbers
+  usually quotes other things too (``"12,5"``, ``"12.5 g"``), and accepting
+  some of them would make the feed's behaviour depend on each value's
+  spelling.  A ``null`` value is ``no_value``.
+- ``NaN``, ``Infinity`` and ``-Infinity`` (which Python's ``json`` accepts)
+  give ``nan`` / ``infinite``; so do integers too large for a float
+  (e.g. ``10**400``) and sums that overflow.
+- Times: a JSON number is epoch seconds, except that a number above
+  ``1e11`` (year 5138 as seconds) is taken as epoch milliseconds; text is
+  RFC 3339 (``Z``, ``z`` or an offset; no offset means UTC; a space may stand
+  for ``T``; a leap second ``:60`` counts as the second after ``:59``).
+  Numbers written as text are not times.  Anything else, or a non-finite
+  number, is ``bad_time`` and the item is dropped, because a reading that
+  cannot be placed in time cannot be placed in a series.
+- A configured ``time_path`` that is absent from an item, or holds
+  ``null``, gives the problem ``no_time`` but the reading is kept with
+  ``time=None`` (the caller uses the arrival time, as when no time path is
+  configured): the value itself is sound, and the counter tells the operator
+  that the producer does not send what the configuration expects.
+- Key paths: the whole path is first tried as one key (so keys containing
+  dots still work), then it is split on dots and walked through nested
+  objects.  Lists are not indexed.
+- A payload that is empty or only whitespace, and an empty array, give
+  ``empty``.  A leading UTF-8 byte-order mark is ignored.
+- Guards run before parsing: the size (``too_large``, checked on the raw
+  bytes before anything else), UTF-8 (``not_utf8``) and nesting depth
+  (``too_deep``, counted on the text with strings skipped, so ``json`` never
+  recurses deeply; a ``RecursionError`` is caught too).  A batch or pack
+  longer than ``max_items`` is cut to its first ``max_items`` elements and
+  reported once as ``too_many_items``.
+- Batch problems name the element (``item 3: ...``, ``record 2: ...``);
+  each bad element gives exactly one problem, except that a kept reading
+  may carry a ``no_time`` note.
+
+SenML specifics (RFC 8428)
+--------------------------
+- Base fields apply to the record they appear in and to every following
+  record until changed (section 4.6).  name = ``bn`` + ``n``;
+  time = ``bt`` + ``t``; value = ``bv`` + ``v``; unit = ``u``, else ``bu``.
+- The resolved name must be non-empty, start with a letter or digit and use
+  only letters, digits and ``- : . / _`` (section 4.5.1); otherwise
+  ``senml_invalid``.
+- A resolved time below ``2**28`` is relative to ``now`` (section 4.5.3):
+  time = ``now`` + time, so a record without ``t`` and ``bt`` is "now".
+  Above ``1e11`` the millisecond rule above applies, although RFC 8428 times
+  are seconds, because no plausible seconds stamp is that large.
+- ``vs``, ``vb`` and ``vd`` (string, boolean and data values) give
+  ``not_a_number`` for that record.  A record with a sum ``s`` and no value
+  is skipped without a problem, and so is a record holding only base fields
+  (it only sets base values for the records after it).  Any other record
+  without a value field, or with more than one, is ``senml_invalid``.
+- A base field of the wrong type (``bn`` not text, ``bt`` not a number,
+  ``bver`` not a positive integer or above 10, ...) makes its record
+  ``senml_invalid``, and the broken base stays in force: later records that
+  depend on it are rejected too until a record sets it again, rather than
+  silently falling back to an earlier base.  A non-finite ``bt`` or ``t``
+  is ``bad_time``; a non-finite ``bv`` is ``nan`` / ``infinite``.
+- A label ending in ``_`` is a must-understand extension (section 4.4);
+  none is understood here, so such a record is ``senml_invalid``.  Other
+  unknown labels (e.g. ``ut``) are ignored.
+- A pack must be a JSON array; anything else is ``senml_invalid``.
+- Readings keep their unit, but the stream is chosen by name alone
+  (:func:`stream_name`): records that share a name and differ in unit share
+  a stream.
+
+The RFC 8428 section numbers above were written from memory.
+
+Examples
+--------
+>>> decode(b" 500.25\\n", "number", now=1764633600.0).readings
+[Reading(name=None, time=None, value=500.25, unit=None)]
+>>> decode(b'{"data": {"weight_g": 498}, "ts": "2025-12-02T00:00:01Z"}', "json",
+...        value_path="data.weight_g", time_path="ts", now=0.0).readings
+[Reading(name=None, time=1764633601.0, value=498.0, unit=None)]
+>>> out = decode(b'[{"bn": "filler3/", "bt": 1764633600, "n": "fill_g", "u": "g", "v": 500.1},'
+...              b' {"n": "nozzle_temp", "u": "Cel", "t": 2, "v": 71.5}]', "senml", now=0.0)
+>>> [(r.name, r.time, r.value, r.unit) for r in out.readings]
+[('filler3/fill_g', 1764633600.0, 500.1, 'g'), ('filler3/nozzle_temp', 1764633602.0, 71.5, 'Cel')]
+>>> decode(b'NaN', "number", now=0.0).problems
+[DecodeProblem(reason='nan', message='the payload is NaN')]
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import re
+from dataclasses import dataclass
+from datetime import datetime
+from itertools import accumulate
+from typing import Any, NamedTuple
+
+FORMATS: tuple[str, ...] = ("number", "json", "senml")
+"""The payload formats :func:`decode` understands."""
+
+REASONS: dict[str, str] = {
+    "too_large": "The message is larger than the configured size limit and was dropped unread.",
+    "not_utf8": "The message is not valid UTF-8 text.",
+    "not_json": "The message is not valid JSON.",
+    "too_deep": "The message nests lists or objects deeper than the configured limit and was dropped unread.",
+    "empty": "The message holds no readings: it is empty, blank or an empty list.",
+    "too_many_items": "The message holds more items than the configured limit; only the first ones were used.",
+    "not_an_object": "A batch item is neither a JSON object nor a number.",
+    "no_value": "The item has no value at the configured value path, or the value is null.",
+    "not_a_number": "The value is not a number (it is text, true/false, a list or an object).",
+    "value_is_text": "The value is a number written as text in quotes; only plain JSON numbers are accepted.",
+    "nan": "The value is NaN (not a number).",
+    "infinite": "The value is infinite or too large to represent.",
+    "no_time": "The item has no time at the configured time path; the arrival time was used instead.",
+    "bad_time": ("The time is not epoch seconds, epoch milliseconds or an RFC 3339 time, "
+                 "or is not finite; the item was dropped."),
+    "senml_invalid": ("A SenML record breaks RFC 8428 (a bad name, a bad base field, "
+                      "a missing value or a wrong type); the record was dropped."),
+}
+"""Every problem reason label, with one sentence an operator can read.
+
+The labels are stable: they are used as Prometheus label values.
+"""
+
+
+class DecodeProblem(NamedTuple):
+    """One defect found in a payload.
+
+    Attributes
+    ----------
+    reason : str
+        Stable snake_case label, a key of :data:`REASONS`.
+    message : str
+        Short detail for logs (which item, what was found).
+    """
+
+    reason: str
+    message: str
+
+
+@dataclass(frozen=True)
+class Reading:
+    """One decoded sample.
+
+    Attributes
+    ----------
+    name : str or None
+        The resolved SenML name; None for the ``number`` and ``json`` formats.
+    time : float or None
+        Epoch seconds, or None to use the arrival time.  Always finite.
+    value : float
+        The value, always finite.
+    unit : str or None
+        The SenML unit, if any.
+    """
+
+    name: str | None
+    time: float | None
+    value: float
+    unit: str | None
+
+
+@dataclass(frozen=True)
+class Decoded:
+    """What one payload gave: the usable readings and the problems found.
+
+    A payload can give both, e.g. a batch with some bad items.
+    """
+
+    readings: list[Reading]
+    problems: list[DecodeProblem]
+
+
+class _Reject(Exception):
+    """Internal: one item or record is rejected with ``reason``."""
+
+    def __init__(self, reason: str, message: str) -> None:
+        super().__init__(reason, message)
+        self.reason = reason
+        self.message = message
+
+
+class _Constant:
+    """A ``NaN`` / ``Infinity`` / ``-Infinity`` literal met by the JSON parser."""
+
+    __slots__ = ("text",)
+
+    def __init__(self, text: str) -> None:
+        self.text = text
+
+    @property
+    def reason(self) -> str:
+        return "nan" if self.text == "NaN" else "infinite"
+
+
+class _Missing:
+    __slots__ = ()
+
+
+_MISSING = _Missing()
+
+# Every pattern here is unambiguous, so a failed match on a long hostile
+# payload (say 64 KiB of digits and one letter) costs linear time.
+_NUMBER = re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?", re.ASCII)
+_NONFINITE = re.compile(r"[+-]?(?:(nan)|inf|infinity)", re.ASCII | re.IGNORECASE)
+_RFC3339 = re.compile(
+    r"(\d{4}-\d{2}-\d{2})[Tt ](\d{2}:\d{2}:\d{2}(?:\.\d+)?)([Zz]|[+-]\d{2}:\d{2})?", re.ASCII)
+# A JSON string, or an unterminated one up to the end of the text: always
+# matches from a quote, so scanning stays linear on hostile input.
+_JSON_STRING = re.compile(r'"[^"\\]*(?:\\.[^"\\]*)*"?', re.DOTALL)
+_NOT_BRACKET = re.compile(r"[^\[\]{}]+")
+_BRACKET_STEP = {"[": 1, "{": 1, "]": -1, "}": -1}
+_SENML_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9\-:./_]*", re.ASCII)
+_SENML_BASE = ("bn", "bt", "bu", "bv", "bs", "bver")
+_SENML_REGULAR = ("n", "u", "v", "vs", "vb", "vd", "s", "t", "ut")
+_SENML_VALUES = ("v", "vs", "vb", "vd")
+_SENML_VERSION = 10  # RFC 8428 section 4.1: the version when bver is absent, and ours
+_RELATIVE_LIMIT = 2.0 ** 28  # RFC 8428 section 4.5.3
+_MS_THRESHOLD = 1e11
+_BIG_INT_DIGITS = 400  # longer integer literals overflow a float anyway
+
+
+def _parse_int(text: str) -> int | float:
+    # Python refuses int() on more than 4300 digits; such literals are
+    # beyond any float, so go straight to float (which gives +-inf).
+    return float(text) if len(text) > _BIG_INT_DIGITS else int(text)
+
+
+def _show(v: Any) -> str:
+    """A short, safe description of a JSON value for a problem message."""
+    if v is None:
+        return "null"
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, dict):
+        return "an object"
+    if isinstance(v, list):
+        return "a list"
+    if isinstance(v, _Constant):
+        return v.text
+    if isinstance(v, float):
+        return repr(v)
+    if isinstance(v, int):
+        text = str(v)
+        return text if len(text) <= 24 else f"an integer of {len(text)} digits"
+    text = repr(v) if isinstance(v, str) else type(v).__name__
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
+def _value(v: Any, what: str) -> float:
+    """A JSON value as a finite float, or :class:`_Reject`."""
+    if isinstance(v, bool):
+        raise _Reject("not_a_number", f"{what} is {_show(v)}, not a number")
+    if isinstance(v, int):
+        try:
+            return float(v)
+        except OverflowError:
+            raise _Reject("infinite", f"{what} is {_show(v)}, too large for a float") from None
+    if isinstance(v, float):
+        if math.isnan(v):
+            raise _Reject("nan", f"{what} is NaN")
+        if math.isinf(v):
+            raise _Reject("infinite", f"{what} is {_show(v)}")
+        return v
+    if isinstance(v, _Constant):
+        raise _Reject(v.reason, f"{what} is {v.text}")
+    if v is None:
+        raise _Reject("no_value", f"{what} is null")
+    if isinstance(v, str):
+        s = v.strip()
+        if _NUMBER.fullmatch(s) or _NONFINITE.fullmatch(s):
+            raise _Reject("value_is_text", f"{what} is the text {_show(v)}, not a JSON number")
+    raise _Reject("not_a_number", f"{what} is {_show(v)}, not a number")
+
+
+def _finite_time(t: float, what: str) -> float:
+    if not math.isfinite(t):
+        raise _Reject("bad_time", f"{what} is not finite")
+    return t / 1000.0 if t > _MS_THRESHOLD else t
+
+
+def _epoch(v: Any, what: str) -> float:
+    """A JSON time (epoch seconds / milliseconds or RFC 3339 text) as epoch seconds."""
+    if isinstance(v, (int, float)) and not isinstance(v, bool):
+        try:
+            t = float(v)
+        except OverflowError:
+            raise _Reject("bad_time", f"{what} is {_show(v)}, too large") from None
+        return _finite_time(t, what)
+    if isinstance(v, str):
+        return _rfc3339(v, what)
+    raise _Reject("bad_time", f"{what} is {_show(v)}, not a time")
+
+
+def _rfc3339(text: str, what: str) -> float:
+    m = _RFC3339.fullmatch(text.strip())
+    if m is None:
+        raise _Reject("bad_time", f"{what} is {_show(text)}, not an RFC 3339 time")
+    date, clock, offset = m.groups()
+    if offset is None or offset in "Zz":
+        offset = "+00:00"
+    leap = 0.0
+    if clock[6:8] == "60":  # a leap second (RFC 3339 section 5.6): the next second
+        clock, leap = clock[:6] + "59" + clock[8:], 1.0
+    try:
+        return datetime.fromisoformat(f"{date}T{clock}{offset}").timestamp() + leap
+    except (ValueError, OverflowError):
+        raise _Reject("bad_time", f"{what} is {_show(text)}, not a valid date and time") from None
+
+
+def _split_path(path: str | None, what: str) -> tuple[str, ...] | None:
+    if path is None:
+        return None
+    if not isinstance(path, str) or not path or any(not p for p in path.split(".")):
+        raise ValueError(f"{what} must be a key or a dot path such as 'data.weight_g', got {path!r}")
+    return tuple(path.split("."))
+
+
+def _lookup(obj: dict[str, Any], path: str, parts: tuple[str, ...]) -> Any:
+    if path in obj:
+        return obj[path]
+    cur: Any = obj
+    for part in parts:
+        if not isinstance(cur, dict) or part not in cur:
+            return _MISSING
+        cur = cur[part]
+    return cur
+
+
+def _too_deep(text: str, limit: int) -> bool:
+    """True when lists/objects nest deeper than ``limit`` (strings are skipped)."""
+    if text.count("[") + text.count("{") <= limit:
+        return False
+    brackets = _NOT_BRACKET.sub("", _JSON_STRING.sub("", text))
+    return max(accumulate(_BRACKET_STEP[c] for c in brackets), default=0) > limit
+
+
+def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", time_path: str | None = None,
+           max_bytes: int = 65536, now: float, max_items: int = 10000, max_depth: int = 32) -> Decoded:
+    """Decode one MQTT payload into readings and problems; never raises on the payload.
+
+    Parameters
+    ----------
+    payload : bytes
+        The raw message payload (``bytes`` or ``bytearray``).
+    fmt : {"number", "json", "senml"}
+        The payload format.
+    value_path : str, optional
+        ``json`` only: key or dot path of the value (default ``"value"``).
+    time_path : str or None, optional
+        ``json`` only: key or dot path of the time; None means arrival time.
+    max_bytes : int, optional
+        Payloads longer than this are rejected unread (``too_large``).
+    now : float
+        Arrival time, epoch seconds.  Used for SenML relative times.
+    max_items : int, optional
+        Longest batch or SenML pack used; the rest is cut (``too_many_items``).
+    max_depth : int, optional
+        Deepest nesting of lists/objects accepted (``too_deep``).
+
+    Returns
+    -------
+    Decoded
+        The readings (finite values, finite-or-None times) and the problems.
+
+    Raises
+    ------
+    TypeError
+        If ``payload`` is not bytes.
+    ValueError
+        If ``fmt``, a path, a limit or ``now`` is invalid (programming or
+        configuration errors, never payload errors).
+
+    Examples
+    --------
+    >>> decode(b'[{"value": 12.5}, {"value": "12.5"}, {"value": 13}]', "json", now=0.0)
+    ... # doctest: +NORMALIZE_WHITESPACE
+    Decoded(readings=[Reading(name=None, time=None, value=12.5, unit=None),
+                      Reading(name=None, time=None, value=13.0, unit=None)],
+            problems=[DecodeProblem(reason='value_is_text',
+                                    message="item 1: value is the text '12.5', not a JSON number")])
+    >>> decode(b'[' * 100, "json", now=0.0).problems[0].reason
+    'too_deep'
+    >>> decode(b'{"value": 1}', "json", time_path="ts", now=0.0)
+    ... # doctest: +NORMALIZE_WHITESPACE
+    Decoded(readings=[Reading(name=None, time=None, value=1.0, unit=None)],
+            problems=[DecodeProblem(reason='no_time', message="message: no time at 'ts'; arrival time used")])
+    """
+    if not isinstance(payload, (bytes, bytearray)):
+        raise TypeError(f"payload must be bytes, got {type(payload).__name__}")
+    if fmt not in FORMATS:
+        raise ValueError(f"unknown payload format {fmt!r}; expected one of {', '.join(FORMATS)}")
+    value_parts = _split_path(value_path, "value_path")
+    time_parts = _split_path(time_path, "time_path")
+    assert value_parts is not None
+    for label, limit in (("max_bytes", max_bytes), ("max_items", max_items), ("max_depth", max_depth)):
+        if isinstance(limit, bool) or not isinstance(limit, int) or limit < 1:
+            raise ValueError(f"{label} must be a positive integer, got {limit!r}")
+    if isinstance(now, bool) or not isinstance(now, (int, float)) or not math.isfinite(now):
+        raise ValueError(f"now must be finite epoch seconds, got {now!r}")
+
+    readings: list[Reading] = []
+    problems: list[DecodeProblem] = []
+    out = Decoded(readings, problems)
+    if len(payload) > max_bytes:
+        problems.append(DecodeProblem("too_large", f"the payload has {len(payload)} bytes; the limit is {max_bytes}"))
+        return out
+    try:
+        text = bytes(payload).decode("utf-8")
+    except UnicodeDecodeError as exc:
+        problems.append(DecodeProblem("not_utf8", f"invalid UTF-8 at byte {exc.start}"))
+        return out
+    if text.startswith("\ufeff"):
+        text = text[1:]
+    if not text.strip():
+        problems.append(DecodeProblem("empty", "the payload is empty" if not text else "the payload is blank"))
+        return out
+
+    if fmt == "number":
+        try:
+            readings.append(Reading(None, None, _number_text(text), None))
+        except _Reject as rej:
+            problems.append(DecodeProblem(rej.reason, rej.message))
+        return out
+
+    if _too_deep(text, max_depth):
+        problems.append(DecodeProblem("too_deep", f"lists/objects nest deeper than {max_depth} levels"))
+        return out
+    try:
+        doc = json.loads(text, parse_constant=_Constant, parse_int=_parse_int)
+    except RecursionError:
+        problems.append(DecodeProblem("too_deep", "lists/objects nest too deep to parse"))
+        return out
+    except ValueError as exc:
+        problems.append(DecodeProblem("not_json", f"invalid JSON: {_json_error(exc)}"))
+        return out
+
+    if fmt == "senml":
+        if not isinstance(doc, list):
+            problems.append(DecodeProblem(
+                "senml_invalid", f"a SenML pack is a JSON array of records, got {_show(doc)}"))
+            return out
+    if isinstance(doc, list):
+        if not doc:
+            problems.append(DecodeProblem("empty", "the payload is an empty list"))
+            return out
+        if len(doc) > max_items:
+            problems.append(DecodeProblem(
+                "too_many_items", f"{len(doc)} items; only the first {max_items} were used"))
+            doc = doc[:max_items]
+    if fmt == "senml":
+        _senml(doc, now, readings, problems)
+    elif isinstance(doc, list):
+        for i, item in enumerate(doc):
+            _json_item(item, f"item {i}", True, value_path, value_parts, time_path, time_parts,
+                       readings, problems)
+    else:
+        _json_item(doc, "message", False, value_path, value_parts, time_path, time_parts,
+                   readings, problems)
+    return out
+
+
+def _json_error(exc: ValueError) -> str:
+    if isinstance(exc, json.JSONDecodeError):
+        return f"{exc.msg} at line {exc.lineno} column {exc.colno}"
+    text = str(exc)
+    return text if len(text) <= 80 else text[:77] + "..."
+
+
+def _number_text(text: str) -> float:
+    s = text.strip()
+    m = _NONFINITE.fullmatch(s)
+    if m:
+        raise _Reject("nan" if m.group(1) else "infinite", f"the payload is {_show(s)[1:-1]}")
+    if not _NUMBER.fullmatch(s):
+        raise _Reject("not_a_number", f"the payload {_show(s)} is not a number")
+    value = float(s)
+    if not math.isfinite(value):
+        raise _Reject("infinite", f"the payload {_show(s)} is beyond the float range")
+    return value
+
+
+def _json_item(item: Any, where: str, in_batch: bool, value_path: str, value_parts: tuple[str, ...],
+               time_path: str | None, time_parts: tuple[str, ...] | None,
+               readings: list[Reading], problems: list[DecodeProblem]) -> None:
+    try:
+        if isinstance(item, dict):
+            raw = _lookup(item, value_path, value_parts)
+            if raw is _MISSING:
+                raise _Reject("no_value", f"{where}: no value at {value_path!r}")
+            value = _value(raw, f"{where}: {value_path}")
+            raw_time: Any = _MISSING if time_parts is None else _lookup(item, time_path or "", time_parts)
+        elif isinstance(item, list) and in_batch:
+            raise _Reject("not_an_object", f"{where} is a list, not an object or a number")
+        else:
+            value = _value(item, where)
+            raw_time = _MISSING
+        time: float | None = None
+        if time_path is not None:
+            if raw_time is _MISSING or raw_time is None:
+                note = DecodeProblem("no_time", f"{where}: no time at {time_path!r}; arrival time used")
+                readings.append(Reading(None, None, value, None))
+                problems.append(note)
+                return
+            time = _epoch(raw_time, f"{where}: {time_path}")
+        readings.append(Reading(None, time, value, None))
+    except _Reject as rej:
+        problems.append(DecodeProblem(rej.reason, rej.message))
+
+
+class _Broken:
+    """A base field set to something unusable; records relying on it are rejected."""
+
+    __slots__ = ("reason", "message")
+
+    def __init__(self, reason: str, message: str) -> None:
+        self.reason = reason
+        self.message = message
+
+
+def _is_number(v: Any) -> bool:
+    return (isinstance(v, (int, float)) and not isinstance(v, bool)) or isinstance(v, _Constant)
+
+
+def _senml_time(v: Any, what: str) -> float:
+    if not _is_number(v):
+        raise _Reject("senml_invalid", f"{what} is {_show(v)}, not a number")
+    if isinstance(v, _Constant):
+        raise _Reject("bad_time", f"{what} is {v.text}")
+    try:
+        t = float(v)
+    except OverflowError:
+        raise _Reject("bad_time", f"{what} is {_show(v)}, too large") from None
+    if not math.isfinite(t):
+        raise _Reject("bad_time", f"{what} is not finite")
+    return t
+
+
+def _senml_base(rec: dict[str, Any], base: dict[str, Any], where: str) -> None:
+    """Apply the record's base fields to ``base``; raise the first defect after applying all."""
+    first: _Reject | None = None
+    for key in _SENML_BASE:
+        if key not in rec:
+            continue
+        v = rec[key]
+        try:
+            if key in ("bn", "bu"):
+                if not isinstance(v, str):
+                    raise _Reject("senml_invalid", f"{where}: {key} is {_show(v)}, not text")
+                base[key] = v
+            elif key == "bt":
+                base[key] = _senml_time(v, f"{where}: bt")
+            elif key == "bv":
+                if not _is_number(v):
+                    raise _Reject("senml_invalid", f"{where}: bv is {_show(v)}, not a number")
+                base[key] = _value(v, f"{where}: bv")
+            elif key == "bs":
+                if not _is_number(v):
+                    raise _Reject("senml_invalid", f"{where}: bs is {_show(v)}, not a number")
+            else:  # bver
+                if isinstance(v, bool) or not isinstance(v, int) or v < 1:
+                    raise _Reject("senml_invalid", f"{where}: bver is {_show(v)}, not a positive integer")
+                if v > _SENML_VERSION:
+                    raise _Reject("senml_invalid",
+                                  f"{where}: SenML version {_show(v)} is newer than {_SENML_VERSION}")
+                base[key] = v
+        except _Reject as rej:
+            if key != "bs":
+                base[key] = _Broken(rej.reason, f"{rej.message} (base field still in force)")
+            first = first or rej
+    if first is not None:
+        raise first
+
+
+def _base(base: dict[str, Any], key: str, where: str) -> Any:
+    v = base[key]
+    if isinstance(v, _Broken):
+        raise _Reject(v.reason, f"{where}: relies on an earlier {v.message}")
+    return v
+
+
+def _senml(records: list[Any], now: float, readings: list[Reading], problems: list[DecodeProblem]) -> None:
+    base: dict[str, Any] = {"bn": "", "bt": 0.0, "bu": None, "bv": 0.0, "bver": _SENML_VERSION}
+    for i, rec in enumerate(records):
+        where = f"record {i}"
+        try:
+            if not isinstance(rec, dict):
+                raise _Reject("senml_invalid", f"{where} is {_show(rec)}, not an object")
+            _senml_base(rec, base, where)
+            reading = _senml_record(rec, base, now, where)
+            if reading is not None:
+                readings.append(reading)
+        except _Reject as rej:
+            problems.append(DecodeProblem(rej.reason, rej.message))
+
+
+def _senml_record(rec: dict[str, Any], base: dict[str, Any], now: float, where: str) -> Reading | None:
+    _base(base, "bver", where)
+    extension = next((k for k in rec if k.endswith("_")), None)
+    if extension is not None:
+        raise _Reject("senml_invalid", f"{where}: must-understand field {_show(extension)} is not supported")
+    if not any(k in rec for k in _SENML_REGULAR):
+        if any(k in rec for k in _SENML_BASE):
+            return None  # base fields only: sets bases for the records after it
+        raise _Reject("senml_invalid", f"{where} has no SenML fields")
+    present = [k for k in _SENML_VALUES if k in rec]
+    if len(present) > 1:
+        raise _Reject("senml_invalid", f"{where} has more than one value field ({', '.join(present)})")
+    if not present:
+        if "s" in rec:
+            return None  # sum only: not a level reading
+        raise _Reject("senml_invalid", f"{where} has no value field (v, vs, vb, vd or s)")
+
+    n = rec.get("n", "")
+    if not isinstance(n, str):
+        raise _Reject("senml_invalid", f"{where}: n is {_show(n)}, not text")
+    name = _base(base, "bn", where) + n
+    if not name:
+        raise _Reject("senml_invalid", f"{where} has no name (neither bn nor n)")
+    if not _SENML_NAME.fullmatch(name):
+        raise _Reject("senml_invalid", f"{where}: name {_show(name)} breaks RFC 8428 section 4.5.1")
+
+    unit = rec.get("u", _MISSING)
+    if unit is _MISSING:
+        unit = _base(base, "bu", where)
+    elif not isinstance(unit, str):
+        raise _Reject("senml_invalid", f"{where}: u is {_show(unit)}, not text")
+
+    key = present[0]
+    if key != "v":
+        kind = {"vs": "a string", "vb": "a boolean", "vd": "a data"}[key]
+        raise _Reject("not_a_number", f"{where} ({name}) has {kind} value ({key}), not a number")
+    value = _value(rec["v"], f"{where}: v") + _base(base, "bv", where)
+    if not math.isfinite(value):
+        raise _Reject("infinite", f"{where}: bv + v overflows")
+
+    t = _senml_time(rec["t"], f"{where}: t") if "t" in rec else 0.0
+    total = _base(base, "bt", where) + t
+    if not math.isfinite(total):
+        raise _Reject("bad_time", f"{where}: bt + t overflows")
+    time = now + total if total < _RELATIVE_LIMIT else _finite_time(total, f"{where}: time")
+    return Reading(name, time, value, unit)
+
+
+_MAX_STREAM = 256
+_HASH_HEX = 12
+
+
+def _unsafe_class() -> str:
+    # C0/C1 controls (NUL included), MQTT wildcards, line/paragraph
+    # separators, bidirectional controls, surrogates and noncharacters.
+    parts = ["\x00-\x1f\x7f-\x9f+#\u2028\u2029\u200e\u200f\u202a-\u202e\u2066-\u2069",
+             "\ud800-\udfff\ufdd0-\ufdef"]
+    parts += [chr(plane * 0x10000 + 0xFFFE) + chr(plane * 0x10000 + 0xFFFF) for plane in range(17)]
+    return "[" + "".join(parts) + "]"
+
+
+_UNSAFE = re.compile(_unsafe_class())
+
+
+def stream_name(topic: str, name: str | None) -> str:
+    """The stream a reading belongs to: ``topic``, or ``topic/name`` for SenML names.
+
+    The result is used both as a suffix of MQTT topic levels (alerts are
+    published under it) and as a Prometheus label value, so it is made safe
+    for both: MQTT wildcards ``+`` and ``#``, NUL and other control
+    characters (C0, C1, line and paragraph separators, bidirectional
+    controls), lone surrogates and noncharacters become ``_``, and the result
+    has at most 256 characters.  When anything had to change (a replaced
+    character, an empty name, a cut), ``~`` and the first 12 hex digits of the
+    SHA-256 of the original text are appended, so distinct inputs keep
+    distinct names.  Safe names of at most 256 characters are returned as
+    they are.
+
+    Parameters
+    ----------
+    topic : str
+        The MQTT topic the message arrived on.
+    name : str or None
+        The reading's resolved SenML name, or None.
+
+    Returns
+    -------
+    str
+        The stream name.
+
+    Examples
+    --------
+    >>> stream_name("brackenfield/filler3/fill_g", None)
+    'brackenfield/filler3/fill_g'
+    >>> stream_name("brackenfield/oven2", "zone1:temp")
+    'brackenfield/oven2/zone1:temp'
+    >>> stream_name("brackenfield/capper1", "torque\\x00#")
+    'brackenfield/capper1/torque__~554664185411'
+    >>> len(stream_name("brackenfield/" + "x" * 1000, None))
+    256
+    """
+    raw = topic if name is None else f"{topic}/{name}"
+    safe = _UNSAFE.sub("_", raw)
+    if raw and safe == raw and len(raw) <= _MAX_STREAM:
+        return raw
+    digest = hashlib.sha256(raw.encode("utf-8", "surrogatepass")).hexdigest()[:_HASH_HEX]
+    suffix = "~" + digest
+    return (safe or "_")[: _MAX_STREAM - len(suffix)] + suffix
