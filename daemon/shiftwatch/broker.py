@@ -69,6 +69,7 @@ class MosquittoBroker:
             raise RuntimeError("mosquitto is not installed (see the README's set-up)")
         if self.workdir is None:
             self.workdir = Path(tempfile.mkdtemp(prefix="shiftwatch-broker-"))
+        self.workdir.mkdir(parents=True, exist_ok=True)
         self.port = self.port or free_port()
         conf = self.workdir / "mosquitto.conf"
         lines = [

@@ -308,7 +308,12 @@ class Daemon:
                 g.values.append(r.value)
                 g.arrived.append(m.arrived)
         for name, g in groups.items():
-            self._run_stream(name, g, now)
+            try:
+                self._run_stream(name, g, now)
+            except Exception:  # a defect must cost one stream's batch, never the daemon
+                self._count_drop("internal_error", len(g.values))
+                self.log.exception("internal error while processing stream %s; its batch was set aside",
+                                   _printable(name))
         if self.link is not None:
             for m in msgs:
                 self.link.ack(m.mid, m.qos)

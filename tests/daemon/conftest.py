@@ -99,13 +99,14 @@ class DaemonProcess:
 
     def start(self, timeout: float = 20.0) -> "DaemonProcess":
         self.log = open(self.log_path, "a")
+        offset = self.log_path.stat().st_size
         self.proc = subprocess.Popen(self.command + ["run", "--config", str(self.config)],
                                      stdout=self.log, stderr=subprocess.STDOUT, text=True)
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             if self.proc.poll() is not None:
                 raise RuntimeError(f"daemon exited with {self.proc.returncode}: {self.log_text()}")
-            if "connected to broker" in self.log_text():
+            if "connected to broker" in self.log_text()[offset:]:
                 return self
             time.sleep(0.05)
         raise RuntimeError(f"daemon did not connect within {timeout} s: {self.log_text()}")

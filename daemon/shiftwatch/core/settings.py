@@ -98,8 +98,18 @@ class DetectionSettings:
             bad("confirm_max_samples", "must be at least confirm_min_samples")
 
     def arl0(self, interval: float) -> float:
-        """In-control average run length, in samples, for a sampling interval in seconds."""
-        return max(self.false_alarm_every / interval, 50.0)
+        """In-control average run length, in samples, for a sampling interval in seconds.
+
+        Kept within [50, 1e9] samples: the calibrated range of the tests.  A
+        stream whose samples arrive in bursts (arrival times microseconds
+        apart) would otherwise ask for an absurd run length.
+
+        Examples
+        --------
+        >>> DetectionSettings().arl0(1.0), DetectionSettings().arl0(1e-6)
+        (604800.0, 1000000000.0)
+        """
+        return min(max(self.false_alarm_every / interval, 50.0), 1e9)
 
     @classmethod
     def from_mapping(cls, data: dict[str, Any], base: "DetectionSettings | None" = None) -> "DetectionSettings":
