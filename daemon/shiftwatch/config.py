@@ -108,6 +108,7 @@ _DETECTION_HELP = {
     "min_sigma": "floor for sigma in reading units (null: from the reading resolution)",
     "glr_window": "longest segment, in samples, the GLR test considers",
     "baseline_memory": "weight, in samples, at which the baseline's memory is capped",
+    "baseline_guard": "the newest samples kept out of baseline refinements",
 }
 
 

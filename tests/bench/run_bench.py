@@ -103,7 +103,7 @@ def false_alarms(kind: str, total: int, pool: ProcessPoolExecutor) -> tuple[int,
 
 
 # ------------------------------------------------------------------ delay
-PRE = 600  # in-control samples after the warm-up, before the step
+PRE = 2000  # in-control samples after the warm-up, before the step (steady state)
 
 
 def _delay_chunk(args: tuple[float, int, int]) -> list[tuple[float, float, float, float, float]]:

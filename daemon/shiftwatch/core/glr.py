@@ -195,6 +195,7 @@ class GlrTest(SequentialTest):
         threshold: float,
         window: int = DEFAULT_WINDOW,
         lags: Sequence[int] | None = None,
+        reference_size: float = math.inf,
     ) -> None:
         try:
             thr = float(threshold)
@@ -231,12 +232,26 @@ class GlrTest(SequentialTest):
         self.window = window
         self.lags = lag_tuple
         self._lag_arr = np.asarray(lag_tuple, dtype=np.int64)
-        self._half_inv = 0.5 / self._lag_arr.astype(np.float64)
+        try:
+            ref = float(reference_size)
+        except (TypeError, ValueError):
+            ref = -1.0
+        if not ref > 0:
+            raise ValueError(f"reference_size must be > 0 (math.inf for a known mean), got {reference_size!r}")
+        self.reference_size = ref
+        # With the in-control mean estimated from n samples, the sum of L
+        # standardised residuals has variance L + L^2 / n, not L: the common
+        # error of the estimate adds up over the segment.  Dividing by the
+        # true variance keeps the statistic calibrated while the baseline is
+        # young, and changes nothing once n is large.
+        lag_f = self._lag_arr.astype(np.float64)
+        self._half_inv = 0.5 / (lag_f + lag_f * lag_f / ref)
         self.reset()
 
     # ------------------------------------------------------------------ design
     @classmethod
-    def design(cls, arl0: float, window: int = DEFAULT_WINDOW) -> GlrTest:
+    def design(cls, arl0: float, window: int = DEFAULT_WINDOW,
+               reference_size: float = math.inf) -> GlrTest:
         """Build a test whose two-sided in-control ARL on iid N(0, 1) is ``arl0``.
 
         Uses the default lag set for ``window``.  The threshold solves the
@@ -273,7 +288,8 @@ class GlrTest(SequentialTest):
             50 <= window <= 2000
         ):
             raise ValueError(f"window must be an integer in [50, 2000], got {window!r}")
-        return cls(threshold_for_arl(target, int(window)), window=int(window))
+        return cls(threshold_for_arl(target, int(window)), window=int(window),
+                   reference_size=reference_size)
 
     # -------------------------------------------------------------- properties
     @property

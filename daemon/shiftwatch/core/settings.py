@@ -41,7 +41,7 @@ class DetectionSettings:
     #: which sequential test: glr (default), cusum, page_hinkley, adwin
     test: str = "glr"
     #: samples used to learn the baseline before watching starts (and after each confirmed shift)
-    warmup_samples: int = 120
+    warmup_samples: int = 200
     #: most samples kept per stream for the step fit
     window_samples: int = 1200
     #: residuals are clipped to +-clip_sigma before they reach the test
@@ -64,6 +64,8 @@ class DetectionSettings:
     glr_window: int = 400
     #: weight, in samples, at which the baseline's memory is capped when it is refined
     baseline_memory: int = 20000
+    #: the newest samples are kept out of baseline refinements (a shift may be in progress there)
+    baseline_guard: int = 60
 
     def __post_init__(self) -> None:
         def bad(name: str, why: str) -> None:
@@ -77,7 +79,7 @@ class DetectionSettings:
             if not isinstance(v, (int, float)) or isinstance(v, bool) or not math.isfinite(v) or v <= 0:
                 bad(name, f"must be a positive number, got {v!r}")
         for name in ("warmup_samples", "window_samples", "confirm_min_samples",
-                     "confirm_max_samples", "glr_window", "baseline_memory"):
+                     "confirm_max_samples", "glr_window", "baseline_memory", "baseline_guard"):
             v = getattr(self, name)
             if not isinstance(v, int) or isinstance(v, bool) or v < 1:
                 bad(name, f"must be a positive whole number, got {v!r}")
