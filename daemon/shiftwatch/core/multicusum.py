@@ -1,0 +1,454 @@
+"""Multi-chart CUSUM: a bank of two-sided CUSUMs with different reference values.
+
+A single CUSUM with reference value ``k`` is optimal (Lorden 1971, Ann. Math.
+Statist. 42:1897-1908; Moustakides 1986) for a shift of exactly ``2 k``
+sigma and loses speed for shifts much smaller or larger.  The multi-chart
+CUSUM runs several two-sided CUSUMs side by side on the same residuals, one
+per shift of interest, and signals as soon as ANY of them signals (Lorden
+1971 already noted that such a bank is asymptotically optimal over a range
+of shifts; Han, Tsung, Li & Wang 2007, Naval Research Logistics 54:902-916,
+"Comparisons of some cusum-type control charts", compare it with the
+adaptive CUSUM and the GLR and find it close to the best over a range of
+shifts).
+
+Chart ``j`` has upper and lower sums::
+
+    C+_j,t = max(0, C+_j,t-1 + z_t - k_j)
+    C-_j,t = max(0, C-_j,t-1 - z_t - k_j)
+
+and the bank trips at the first sample where some ``C+_j`` or ``C-_j`` is
+strictly greater than its ``h_j`` (the convention of :mod:`.cusum` and
+:mod:`.arl`).  Each chart is updated exactly as :class:`.cusum.CusumTest`
+updates its sums (the running-minimum form of the Lindley recursion, in
+blocks of :data:`.cusum.BLOCK` samples), so a bank with one chart gives the
+same trip indices as ``CusumTest`` bit for bit.
+
+Design and calibration
+----------------------
+:meth:`MultiCusumTest.design` gives every chart the same individual
+two-sided in-control ARL ``A`` (so ``h_j = design_h(A, k_j)``) and chooses
+``A`` so that the JOINT in-control ARL of the bank is the requested one.
+The charts watch the same data, so their alarms are strongly correlated and
+the joint ARL has no closed form; it lies between ``A / m`` (Bonferroni,
+``m`` charts) and ``A``.  The ratio ``r = joint ARL / A`` was simulated with
+``tests/bench/calibrate_multicusum.py`` and fitted; see ``_CAL`` below.
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+from typing import Any, ClassVar, Sequence
+
+import numpy as np
+
+from shiftwatch.core.arl import design_h
+from shiftwatch.core.cusum import BLOCK
+from shiftwatch.core.sequential import FloatArray, SequentialTest
+
+__all__ = ["DEFAULT_MULTIPLES", "MultiCusumTest", "joint_arl_ratio"]
+
+#: Shifts watched by :meth:`MultiCusumTest.design`, as multiples of ``min_shift``.
+DEFAULT_MULTIPLES: tuple[float, ...] = (0.75, 1.0, 1.5, 2.0)
+
+# Calibration of r = joint ARL / individual ARL for DEFAULT_MULTIPLES, from
+# tests/bench/calibrate_multicusum.py (``curve``), run 2026-12-03 with fixed
+# random states: for min_shift in {0.3, 0.5, 1, 2, 3} and individual
+# two-sided ARLs A in {1e2, 3e2, ..., 1e6} (every chart at design_h(A, k)),
+# 3000 simulated in-control runs with resets per point (standard error
+# about 1.8% of r).  Per min_shift, weighted least squares of
+#
+#     log r = c0 + c1 * u + c2 * u**2,      u = log10(A) - 4,
+#
+# fitted every point within 2.6% (min_shift 0.3, 0.5, 1, 3) and 4.1%
+# (min_shift 2).  r falls from 0.61..0.77 at A = 100 to 0.36..0.42 at
+# A = 1e6; it depends on min_shift by up to 25% at small A (the charts'
+# discreteness), so it is interpolated in log(min_shift).  For min_shift 3
+# the k = 3 chart cannot reach A < 370, so that row starts at A = 1e3.
+# Extra point, min_shift 1 at A = 3e6 (2000 runs, beyond the fitted range):
+# simulated r = 0.391 +- 0.009, the linear extension below gives 0.393.
+_CAL: dict[float, tuple[float, float, float]] = {
+    0.3: (-0.6093, -0.1505, 0.0148),
+    0.5: (-0.6734, -0.1411, 0.0107),
+    1.0: (-0.7618, -0.1155, 0.0194),
+    2.0: (-0.8511, -0.1214, 0.0276),
+    3.0: (-0.7262, -0.1595, 0.0412),
+}
+#: Range of u = log10(A) - 4 covered by the simulations; linear beyond.
+_CAL_U_RANGE = (-2.0, 2.0)
+#: The design aims this factor above the requested joint ARL (fewer false alarms).
+_ARL_MARGIN = 1.03
+
+
+class MultiCusumTest(SequentialTest):
+    """A bank of two-sided CUSUMs that trips when any chart trips.
+
+    Parameters
+    ----------
+    ks : sequence of float
+        Reference values of the charts in sigma units, each finite and
+        ``>= 0`` (``k = d / 2`` is optimal for a shift of ``d`` sigma).
+    hs : sequence of float
+        Decision intervals of the charts in sigma units, each finite and
+        ``> 0``; same length as ``ks``.
+
+    Attributes
+    ----------
+    ks, hs : tuple of float
+        The design parameters, as given (same order).
+
+    Notes
+    -----
+    :attr:`statistic` is the largest of ``C / h`` over the charts and both
+    sides, so :attr:`threshold` is 1.0 and the bank trips when the statistic
+    exceeds 1.  At a trip, :attr:`tripped_k` is the reference value of the
+    chart with the largest ``C / h`` at the tripping sample (a chart that
+    exceeds its ``h`` there) and :attr:`direction` is the side of that chart
+    that exceeded.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> t = MultiCusumTest(ks=[0.25, 1.0], hs=[8.0, 3.0])
+    >>> t.update(np.array([0.0, 0.5, -3.0, -3.0, -3.0]))
+    3
+    >>> t.direction, t.tripped_k, t.statistic
+    (-1, 1.0, 1.3333333333333333)
+    >>> t.reset(); t.statistic, t.tripped_k
+    (0.0, None)
+    """
+
+    name: ClassVar[str] = "multi_cusum"
+
+    def __init__(self, ks: Sequence[float], hs: Sequence[float]) -> None:
+        kl = _float_list("ks", ks)
+        hl = _float_list("hs", hs)
+        if not kl:
+            raise ValueError(f"ks must hold at least one reference value, got {ks!r}")
+        if len(kl) != len(hl):
+            raise ValueError(
+                f"ks and hs must have the same length, got {len(kl)} ks and {len(hl)} hs"
+            )
+        if not all(math.isfinite(v) and v >= 0.0 for v in kl):
+            raise ValueError(f"every k in ks must be a finite number >= 0 (sigma units), got {ks!r}")
+        if not all(math.isfinite(v) and v > 0.0 for v in hl):
+            raise ValueError(f"every h in hs must be a finite number > 0 (sigma units), got {hs!r}")
+        self.ks: tuple[float, ...] = tuple(kl)
+        self.hs: tuple[float, ...] = tuple(hl)
+        m = len(kl)
+        k_arr = np.asarray(kl, dtype=np.float64)
+        h_arr = np.asarray(hl, dtype=np.float64)
+        # rows 0..m-1 are the upper sums, rows m..2m-1 the lower sums
+        self._k_col = k_arr[:, None]
+        self._h2 = np.concatenate((h_arr, h_arr))
+        self._h2_col = self._h2[:, None]
+        self._m = m
+        self._c = np.zeros(2 * m)
+        self._stat = 0.0
+        self._dir = 0
+        self._tripped = -1
+        self.reset()
+
+    # ------------------------------------------------------------------ design
+    @classmethod
+    def design(
+        cls,
+        arl0: float,
+        min_shift: float,
+        *,
+        multiples: Sequence[float] = DEFAULT_MULTIPLES,
+    ) -> MultiCusumTest:
+        """Build a bank whose joint in-control ARL on iid N(0, 1) is ``arl0``.
+
+        Charts watch the shifts ``min_shift * multiples`` with
+        ``k = shift / 2``; every chart gets the same individual two-sided ARL
+        ``A`` and ``h = design_h(A, k)``.  For the default multiples ``A``
+        solves ``A * joint_arl_ratio(A, min_shift) = 1.03 * arl0`` by
+        bisection (the 3% margin makes the real ARL slightly higher than
+        requested).  For other multiples there is no calibration and the
+        Bonferroni bound ``A = m * 1.03 * arl0`` is used (``m`` charts), which
+        errs on the safe side by a factor of about 2 at ARLs near 1e6; a
+        single multiple gives a plain two-sided CUSUM.  Designs are cached on
+        the inputs rounded to 10 significant digits.
+
+        The calibration was fitted to individual ARLs 1e2..1e6 (joint ARLs
+        ~60..4e5) for ``min_shift`` 0.3..3 and checked at 3e6 (joint 1.2e6)
+        for ``min_shift`` 1.  Simulated real/requested
+        joint ARL: 1.018 +- 0.023 at 1e5 and 1.006 +- 0.030 at 604,800 (min_shift 1,
+        tests/bench/calibrate_multicusum.py ``direct``).  Beyond 3e6 the fitted
+        ``log r`` is extended linearly in ``log A`` (about -4% per decade),
+        an extrapolation that is not checked by simulation: above
+        ``arl0 ~ 1e6`` treat the joint ARL as approximate (within perhaps
+        +-15% at 1e9).  Outside ``min_shift`` 0.3..3 the nearest calibrated
+        row is used.
+
+        Parameters
+        ----------
+        arl0 : float
+            Joint in-control ARL in samples, in [50, 1e9].
+        min_shift : float
+            Smallest shift watched, in sigma units (> 0).
+        multiples : sequence of float, default (0.75, 1.0, 1.5, 2.0)
+            Shifts of the charts as multiples of ``min_shift`` (each > 0).
+
+        Returns
+        -------
+        MultiCusumTest
+
+        Raises
+        ------
+        ValueError
+            On arguments outside these ranges, or when the chart with the
+            largest ``k`` cannot reach the needed individual ARL (small
+            ``arl0`` with a large ``min_shift``).
+
+        Examples
+        --------
+        >>> t = MultiCusumTest.design(604800, 1.0)
+        >>> t.ks
+        (0.375, 0.5, 0.75, 1.0)
+        >>> [round(h, 3) for h in t.hs]
+        [17.091, 13.107, 8.901, 6.687]
+        """
+        try:
+            a = float(arl0)
+        except (TypeError, ValueError):
+            raise ValueError(f"arl0 must be a number in [50, 1e9] (samples), got {arl0!r}") from None
+        if not (50.0 <= a <= 1e9):
+            raise ValueError(f"arl0 must be a number in [50, 1e9] (samples), got {arl0!r}")
+        try:
+            s = float(min_shift)
+        except (TypeError, ValueError):
+            raise ValueError(
+                f"min_shift must be a finite number > 0 (sigma units), got {min_shift!r}"
+            ) from None
+        if not (math.isfinite(s) and s > 0.0):
+            raise ValueError(
+                f"min_shift must be a finite number > 0 (sigma units), got {min_shift!r}"
+            )
+        try:
+            mult = tuple(float(v) for v in multiples)
+        except (TypeError, ValueError):
+            raise ValueError(
+                f"multiples must be a sequence of finite numbers > 0, got {multiples!r}"
+            ) from None
+        if not mult or not all(math.isfinite(v) and v > 0.0 for v in mult):
+            raise ValueError(f"multiples must be a sequence of finite numbers > 0, got {multiples!r}")
+        ks, hs = _design_cached(
+            float(f"{a:.10g}"), float(f"{s:.10g}"), tuple(float(f"{v:.10g}") for v in mult)
+        )
+        return cls(ks=ks, hs=hs)
+
+    # -------------------------------------------------------------- properties
+    @property
+    def threshold(self) -> float:
+        """Trip level of :attr:`statistic`: always 1.0 (``C / h`` of a chart)."""
+        return 1.0
+
+    @property
+    def statistic(self) -> float:
+        """Largest ``C / h`` over charts and sides (held at a trip until reset)."""
+        return self._stat
+
+    @property
+    def direction(self) -> int:
+        """+1 or -1: the side of :attr:`tripped_k` at the last trip, else 0."""
+        return self._dir
+
+    @property
+    def tripped_k(self) -> float | None:
+        """Reference value of the chart that tripped (None if no trip since reset)."""
+        return None if self._tripped < 0 else self.ks[self._tripped]
+
+    @property
+    def tripped_chart(self) -> int:
+        """Index into :attr:`ks` of the chart that tripped, or -1."""
+        return self._tripped
+
+    @property
+    def c_plus(self) -> tuple[float, ...]:
+        """Current upper sums, one per chart (sigma units)."""
+        return tuple(float(v) for v in self._c[: self._m])
+
+    @property
+    def c_minus(self) -> tuple[float, ...]:
+        """Current lower sums, one per chart (sigma units, non-negative)."""
+        return tuple(float(v) for v in self._c[self._m :])
+
+    # ------------------------------------------------------------------ core
+    def update(self, z: FloatArray) -> int:
+        """Feed residuals; return the index of the first trip or -1.
+
+        Each block of up to :data:`.cusum.BLOCK` samples costs a handful of
+        vector operations on a ``(2 m, block)`` array (``m`` charts, both
+        sides); samples after the trip index are not consumed.
+        """
+        x = np.asarray(z, dtype=np.float64).ravel()
+        n = x.shape[0]
+        m = self._m
+        kc = self._k_col
+        h2 = self._h2
+        start = 0
+        while start < n:
+            stop = min(n, start + BLOCK)
+            blk = x[start:stop]
+            d = np.empty((2 * m, stop - start))
+            np.subtract(blk[None, :], kc, out=d[:m])
+            np.subtract(-blk[None, :], kc, out=d[m:])
+            # running-minimum form of the Lindley recursion, row by row
+            s = np.cumsum(d, axis=1)
+            floor = np.minimum.accumulate(s, axis=1)
+            np.minimum(floor, -self._c[:, None], out=floor)
+            np.subtract(s, floor, out=s)
+            hit = (s > self._h2_col).any(axis=0)
+            if hit.any():
+                i = int(np.argmax(hit))
+                col = s[:, i].copy()
+                ratio = col / h2
+                # first maximum: upper sums come first, so a tie goes up (as in CusumTest)
+                row = int(np.argmax(ratio))
+                j = row % m
+                self._c = col
+                self._stat = float(ratio[row])
+                self._tripped = j
+                self._dir = 1 if row < m else -1
+                return start + i
+            self._c = s[:, -1].copy()
+            self._stat = float(np.max(self._c / h2))
+            start = stop
+        return -1
+
+    def reset(self) -> None:
+        """Set every sum to zero; keep ``ks`` and ``hs``."""
+        self._c = np.zeros(2 * self._m)
+        self._stat = 0.0
+        self._dir = 0
+        self._tripped = -1
+
+    def get_state(self) -> dict[str, Any]:
+        return {
+            "c_plus": [float(v) for v in self._c[: self._m]],
+            "c_minus": [float(v) for v in self._c[self._m :]],
+            "statistic": float(self._stat),
+            "direction": int(self._dir),
+            "tripped_chart": int(self._tripped),
+        }
+
+    def set_state(self, state: dict[str, Any]) -> None:
+        cp = [float(v) for v in state["c_plus"]]
+        cm = [float(v) for v in state["c_minus"]]
+        if len(cp) != self._m or len(cm) != self._m:
+            raise ValueError(
+                f"state holds {len(cp)} upper and {len(cm)} lower sums; this bank has "
+                f"{self._m} charts"
+            )
+        self._c = np.asarray(cp + cm, dtype=np.float64)
+        self._stat = float(state.get("statistic", float(np.max(self._c / self._h2))))
+        self._dir = int(state.get("direction", 0))
+        self._tripped = int(state.get("tripped_chart", -1))
+
+    def __repr__(self) -> str:
+        return f"MultiCusumTest(ks={list(self.ks)!r}, hs={list(self.hs)!r})"
+
+
+def _float_list(name: str, values: Sequence[float]) -> list[float]:
+    if isinstance(values, (str, bytes)):
+        raise ValueError(f"{name} must be a sequence of numbers, got {values!r}")
+    try:
+        return [float(v) for v in values]
+    except (TypeError, ValueError):
+        raise ValueError(f"{name} must be a sequence of numbers, got {values!r}") from None
+
+
+def joint_arl_ratio(individual_arl: float, min_shift: float) -> float:
+    """Calibrated ``r = joint ARL / individual ARL`` for the default multiples.
+
+    The bank has charts ``k = min_shift * m / 2`` for ``m`` in
+    :data:`DEFAULT_MULTIPLES`, each with two-sided in-control ARL
+    ``individual_arl``.  ``log r`` is the fitted quadratic in
+    ``u = log10(individual_arl) - 4`` at each calibrated ``min_shift``
+    (see ``_CAL``), extended linearly (with the slope at the end) outside
+    ``_CAL_U_RANGE`` and interpolated linearly in ``log(min_shift)``
+    between calibrated values (flat outside them).  The conservative margin
+    of :meth:`MultiCusumTest.design` is NOT included.
+
+    Parameters
+    ----------
+    individual_arl : float
+        Two-sided in-control ARL of every chart (> 1).
+    min_shift : float
+        Smallest shift of the bank in sigma units (> 0).
+
+    Returns
+    -------
+    float
+        The ratio, between ``1 / len(DEFAULT_MULTIPLES)`` and 1.
+
+    Examples
+    --------
+    >>> round(joint_arl_ratio(1e4, 1.0), 3)   # simulated: 0.459 +- 0.008
+    0.467
+    >>> round(joint_arl_ratio(3e6, 1.0), 3)   # simulated: 0.391 +- 0.009
+    0.393
+    """
+    u = math.log10(float(individual_arl)) - 4.0
+    ls = math.log(float(min_shift))
+    keys = sorted(_CAL)
+    logs = [math.log(v) for v in keys]
+    if ls <= logs[0]:
+        lr = _log_ratio(_CAL[keys[0]], u)
+    elif ls >= logs[-1]:
+        lr = _log_ratio(_CAL[keys[-1]], u)
+    else:
+        i = max(j for j in range(len(keys) - 1) if logs[j] <= ls)
+        w = (ls - logs[i]) / (logs[i + 1] - logs[i])
+        lr = (1.0 - w) * _log_ratio(_CAL[keys[i]], u) + w * _log_ratio(_CAL[keys[i + 1]], u)
+    m = len(DEFAULT_MULTIPLES)
+    return min(1.0, max(1.0 / m, math.exp(lr)))
+
+
+def _log_ratio(coef: tuple[float, float, float], u: float) -> float:
+    c0, c1, c2 = coef
+    lo, hi = _CAL_U_RANGE
+    if u < lo:
+        return c0 + c1 * lo + c2 * lo * lo + (c1 + 2.0 * c2 * lo) * (u - lo)
+    if u > hi:
+        return c0 + c1 * hi + c2 * hi * hi + (c1 + 2.0 * c2 * hi) * (u - hi)
+    return c0 + c1 * u + c2 * u * u
+
+
+@functools.lru_cache(maxsize=256)
+def _design_cached(
+    arl0: float, min_shift: float, multiples: tuple[float, ...]
+) -> tuple[tuple[float, ...], tuple[float, ...]]:
+    ks = tuple(min_shift * v / 2.0 for v in multiples)
+    m = len(ks)
+    target = arl0 * _ARL_MARGIN
+    if m == 1:
+        ind = target
+    elif tuple(sorted(multiples)) != DEFAULT_MULTIPLES:
+        # no calibration for this bank: Bonferroni, joint ARL >= A / m
+        ind = m * target
+    else:
+        # A * r(A) = target; A * r(A) increases with A, and A lies
+        # between target and m * target
+        lo, hi = math.log(target), math.log(m * target)
+        for _ in range(100):
+            mid = 0.5 * (lo + hi)
+            a = math.exp(mid)
+            if a * joint_arl_ratio(a, min_shift) < target:
+                lo = mid
+            else:
+                hi = mid
+            if hi - lo < 1e-12:
+                break
+        ind = math.exp(hi)
+    try:
+        hs = tuple(design_h(ind, k) for k in ks)
+    except ValueError:
+        raise ValueError(
+            f"arl0={arl0!r} with min_shift={min_shift!r} needs every chart at "
+            f"individual ARL {ind:.6g}, which the chart with the largest k "
+            f"({max(ks):.6g}) cannot reach; use a larger arl0 or a smaller min_shift"
+        ) from None
+    return ks, hs
