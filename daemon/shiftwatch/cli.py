@@ -27,9 +27,9 @@ def _err(msg: str) -> None:
 
 
 def _load_config(path: str | None) -> Any:
-    from shiftwatch.config import Config, load_config
+    from shiftwatch.config import load_config
 
-    return Config() if path is None else load_config(path)
+    return None if path is None else load_config(path)
 
 
 def _print_problems(problems: list[str], limit: int = 20) -> None:
@@ -41,25 +41,35 @@ def _print_problems(problems: list[str], limit: int = 20) -> None:
 
 # ----------------------------------------------------------------- replay
 def cmd_replay(args: argparse.Namespace) -> int:
-    from shiftwatch.config import ConfigError
     from shiftwatch.replay import CsvFormatError, read_long_csv, replay_series
 
-    try:
-        cfg = _load_config(args.config)
-    except ConfigError as exc:
-        _err(str(exc))
-        return EXIT_USAGE
+    if args.config is not None:
+        from shiftwatch.config import ConfigError
+
+        try:
+            cfg = _load_config(args.config)
+        except ConfigError as exc:
+            _err(str(exc))
+            return EXIT_USAGE
+    else:
+        cfg = None
     try:
         read = read_long_csv(args.csv)
     except CsvFormatError as exc:
         _err(str(exc))
         return EXIT_USAGE
 
-    def unit_for(stream: str) -> str | None:
-        sc = cfg.stream_for(stream)
-        return None if sc is None else sc.unit
+    if cfg is None:
+        from shiftwatch.core.settings import DetectionSettings
 
-    records, problems, engines = replay_series(read.streams, cfg.settings_for, unit_for)
+        defaults = DetectionSettings()
+        records, problems, engines = replay_series(read.streams, lambda name: defaults)
+    else:
+        def unit_for(stream: str) -> str | None:
+            sc = cfg.stream_for(stream)
+            return None if sc is None else sc.unit
+
+        records, problems, engines = replay_series(read.streams, cfg.settings_for, unit_for)
     out: TextIO
     if args.out:
         out = open(args.out, "w", encoding="utf-8")

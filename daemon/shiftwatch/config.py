@@ -14,12 +14,14 @@ import difflib
 import math
 from dataclasses import MISSING, dataclass, field, fields
 from pathlib import Path
-from typing import Any, Callable
-
-import yaml
+from typing import TYPE_CHECKING, Any, Callable
 
 from shiftwatch.core.settings import TEST_NAMES, DetectionSettings
 from shiftwatch.core.timefmt import parse_duration
+
+
+if TYPE_CHECKING:
+    import yaml
 
 
 class ConfigError(ValueError):
@@ -293,7 +295,10 @@ class _Loader:
     """Walks the YAML node tree so every value keeps its line number."""
 
     def __init__(self, file: str | None):
+        import yaml  # imported here: replay without a configuration never pays for it
+
         self.file = file
+        self.y = yaml
 
     def error(self, path: str, message: str, node: yaml.Node | None) -> ConfigError:
         line = node.start_mark.line + 1 if node is not None else None
@@ -301,13 +306,13 @@ class _Loader:
 
     def plain(self, node: yaml.Node) -> Any:
         # safe_load semantics for a sub-tree.
-        return yaml.safe_load(yaml.serialize(node))
+        return self.y.safe_load(self.y.serialize(node))
 
     def section(self, node: yaml.Node | None, keys: dict[str, Key], path: str) -> tuple[dict[str, Any], dict[str, yaml.Node]]:
         out: dict[str, Any] = {}
         nodes: dict[str, yaml.Node] = {}
-        empty = node is None or (isinstance(node, yaml.ScalarNode) and node.tag.endswith(":null"))
-        if not empty and not isinstance(node, yaml.MappingNode):
+        empty = node is None or (isinstance(node, self.y.ScalarNode) and node.tag.endswith(":null"))
+        if not empty and not isinstance(node, self.y.MappingNode):
             raise self.error(path, "must be a mapping of keys to values", node)
         for knode, vnode in ([] if empty else node.value):  # type: ignore[union-attr]
             key = self.plain(knode)
@@ -359,6 +364,7 @@ def load_config(path: str | Path) -> Config:
 def parse_config(text: str, *, file: str | None = None) -> Config:
     """Validate configuration text (see :func:`load_config`)."""
     ld = _Loader(file)
+    yaml = ld.y
     try:
         root = yaml.compose(text, Loader=yaml.SafeLoader)
     except yaml.YAMLError as exc:

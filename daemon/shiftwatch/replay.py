@@ -38,7 +38,14 @@ class StreamSeries:
 
     times: list[float] = field(default_factory=list)
     values: list[float] = field(default_factory=list)
-    where: list[tuple[str, int]] = field(default_factory=list)  # (file, line)
+    #: file index << 32 | line number, for each row (see :meth:`where`)
+    places: list[int] = field(default_factory=list)
+    files: list[str] = field(default_factory=list)
+
+    def where(self, i: int) -> tuple[str, int]:
+        """(file, line) of the i-th row."""
+        p = self.places[i]
+        return self.files[p >> 32], p & 0xFFFFFFFF
 
 
 @dataclass
@@ -49,17 +56,104 @@ class ReadResult:
 
 
 def _parse_time(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        s = text.strip()
+    """RFC 3339 or epoch seconds; raises ValueError."""
+    s = text.strip()
+    if "T" in s or "t" in s or ":" in s or "-" in s[1:]:
         dt = datetime.fromisoformat(s)
         if dt.tzinfo is None:
             dt = dt.replace(tzinfo=timezone.utc)
         return dt.timestamp()
+    v = float(s)
     if not math.isfinite(v):
         raise ValueError("not finite")
     return v
+
+
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
+def _parse_times(texts: list[str]) -> list[float]:
+    """Parse time texts (distinct ones, usually).  When every text is RFC 3339
+    in UTC with a ``Z``, numpy's C parser does them all at once; otherwise each
+    goes through :func:`_parse_time`."""
+    if texts and all(x.endswith("Z") and "T" in x for x in texts):
+        try:
+            stamps = np.array([x[:-1] for x in texts], dtype="datetime64[us]")
+        except ValueError:
+            pass
+        else:
+            return (stamps.astype(np.int64) / 1e6).tolist()
+    return [_parse_time(x) for x in texts]
+
+
+def _read_fast(text: str, ncols: int, ti: int, si: int, vi: int, fbits: int,
+               streams: dict[str, StreamSeries], files: list[str]) -> int | None:
+    """Column-wise reading of a clean file body; returns the row count, or None
+    (adding nothing) at the first doubt.
+
+    A clean body has no quotes, the same number of commas on every line,
+    readable times, numbers for values and non-empty stream names.  Parsing
+    then runs in C loops (str.split, numpy's converters) and each distinct
+    time text is parsed once.
+    """
+    if '"' in text or "\r" in text:
+        return None
+    body = text[:-1] if text.endswith("\n") else text
+    if not body:
+        return 0
+    n = body.count("\n") + 1
+    flat = body.replace("\n", ",").split(",")
+    if len(flat) != n * ncols:
+        return None
+    tcol, scol, vcol = flat[ti::ncols], flat[si::ncols], flat[vi::ncols]
+    try:
+        values = np.array(vcol, dtype=np.float64)
+        distinct = list(set(tcol))
+        parsed = dict(zip(distinct, _parse_times(distinct)))
+    except (ValueError, OverflowError):
+        return None
+    times = np.fromiter(map(parsed.__getitem__, tcol), dtype=np.float64, count=n)
+    index: dict[str, int] = {}
+    codes = np.fromiter((index.setdefault(x, len(index)) for x in scol), dtype=np.int64, count=n)
+    if any(not name.strip() for name in index):
+        return None
+    # The field count matched, but a line with a field too many and a later
+    # one with a field too few would shift the fields between them.  With
+    # three columns such a shift puts a stream name in the value column or a
+    # time text in the stream column, and one of the checks above fails --
+    # unless names look like numbers.  Then, and for wider files, count the
+    # commas of every line.
+    if ncols != 3 or any(_is_number(name) for name in index):
+        if any(c != ncols - 1 for c in map(str.count, body.split("\n"), [","] * n)):
+            return None
+    places = np.arange(2, n + 2, dtype=np.int64) | fbits
+    for name, k in index.items():
+        sel = np.flatnonzero(codes == k) if len(index) > 1 else slice(None)
+        key = name.strip()
+        ser = streams.get(key)
+        if ser is None:
+            ser = streams[key] = StreamSeries(files=files)
+        ser.times.extend(times[sel].tolist())
+        ser.values.extend(values[sel].tolist())
+        ser.places.extend(places[sel].tolist())
+    return n
+
+
+def _columns(name: str, header: list[str]) -> tuple[list[str], int, int, int]:
+    """The header's column names and the positions of time, stream and value."""
+    cols = [c.strip().lower().lstrip("\ufeff") for c in header]
+    missing = [c for c in REQUIRED_COLUMNS if c not in cols]
+    if missing:
+        raise CsvFormatError(
+            f"{name}:1: header lacks column(s) {', '.join(missing)}; "
+            f"expected time,stream,value, got {','.join(header)}")
+    ti, si, vi = (cols.index(c) for c in REQUIRED_COLUMNS)
+    return cols, ti, si, vi
 
 
 def read_long_csv(paths: Iterable[str | Path]) -> ReadResult:
@@ -67,64 +161,93 @@ def read_long_csv(paths: Iterable[str | Path]) -> ReadResult:
 
     Raises :class:`CsvFormatError` when a file is missing or its header lacks
     a required column; rows with bad values are reported in ``problems``.
+    Clean files are read column-wise (see :func:`_read_fast`); a file with
+    any problem is read again row by row so each problem names its line.
     """
     streams: dict[str, StreamSeries] = {}
     problems: list[str] = []
     rows = 0
+    files: list[str] = []
     for path in paths:
         name = str(path)
+        files.append(name)
+        fbits = (len(files) - 1) << 32
         try:
             fh = open(path, newline="", encoding="utf-8")
         except OSError as exc:
             raise CsvFormatError(f"{name}: cannot open: {exc.strerror or exc}") from None
         with fh:
+            try:
+                text = fh.read()
+            except UnicodeDecodeError:
+                text = None
+        first, _, body = (text or "").partition("\n")
+        try:
+            header = next(csv.reader([first])) if text else None
+        except csv.Error as exc:
+            raise CsvFormatError(f"{name}:1: unreadable header: {exc}") from None
+        if header is None and text is not None:
+            raise CsvFormatError(f"{name}:1: the file is empty; expected a header time,stream,value")
+        if header is not None:
+            cols, ti, si, vi = _columns(name, header)
+            width = max(ti, si, vi) + 1
+            got = _read_fast(body, len(cols), ti, si, vi, fbits, streams, files)
+            if got is not None:
+                rows += got
+                continue
+        # Slow path: the file has problems; go row by row and name each line.
+        with open(path, newline="", encoding="utf-8", errors="replace") as fh:
             reader = csv.reader(fh)
             try:
                 header = next(reader)
-            except StopIteration:
-                raise CsvFormatError(f"{name}:1: the file is empty; expected a header time,stream,value") from None
-            except (csv.Error, UnicodeDecodeError) as exc:
-                raise CsvFormatError(f"{name}:1: unreadable header: {exc}") from None
-            cols = [c.strip().lower().lstrip("\ufeff") for c in header]
-            missing = [c for c in REQUIRED_COLUMNS if c not in cols]
-            if missing:
-                raise CsvFormatError(
-                    f"{name}:1: header lacks column(s) {', '.join(missing)}; "
-                    f"expected time,stream,value, got {','.join(header)}")
-            ti, si, vi = (cols.index(c) for c in REQUIRED_COLUMNS)
+            except (StopIteration, csv.Error):
+                raise CsvFormatError(f"{name}:1: unreadable header") from None
+            cols, ti, si, vi = _columns(name, header)
             width = max(ti, si, vi) + 1
-            line = 1
+            if text is None:
+                problems.append(f"{name}: the file is not valid UTF-8; unreadable characters were replaced")
+            last_text: str | None = None
+            last_t = 0.0
+            appenders: dict[str, tuple] = {}
             try:
                 for row in reader:
-                    line = reader.line_num
-                    if not row or (len(row) == 1 and not row[0].strip()):
+                    if len(row) < width:
+                        if not row or (len(row) == 1 and not row[0].strip()):
+                            continue
+                        rows += 1
+                        problems.append(f"{name}:{reader.line_num}: expected {len(cols)} columns, got {len(row)}")
                         continue
                     rows += 1
-                    if len(row) < width:
-                        problems.append(f"{name}:{line}: expected {len(cols)} columns, got {len(row)}")
-                        continue
-                    stream = row[si].strip()
-                    if not stream:
-                        problems.append(f"{name}:{line}: empty stream name")
-                        continue
-                    try:
-                        t = _parse_time(row[ti])
-                    except (ValueError, OverflowError):
-                        problems.append(f"{name}:{line}: time {row[ti]!r} is not RFC 3339 or epoch seconds")
-                        continue
+                    text = row[ti]
+                    if text != last_text:
+                        try:
+                            last_t = _parse_time(text)
+                        except (ValueError, OverflowError):
+                            problems.append(f"{name}:{reader.line_num}: time {text!r} is not RFC 3339 or epoch seconds")
+                            last_text = None
+                            continue
+                        last_text = text
                     try:
                         v = float(row[vi])
                     except ValueError:
-                        problems.append(f"{name}:{line}: value {row[vi]!r} is not a number")
+                        problems.append(f"{name}:{reader.line_num}: value {row[vi]!r} is not a number")
                         continue
-                    s = streams.get(stream)
-                    if s is None:
-                        s = streams[stream] = StreamSeries()
-                    s.times.append(t)
-                    s.values.append(v)
-                    s.where.append((name, line))
+                    stream = row[si]
+                    app = appenders.get(stream)
+                    if app is None:
+                        key = stream.strip()
+                        if not key:
+                            problems.append(f"{name}:{reader.line_num}: empty stream name")
+                            continue
+                        ser = streams.get(key)
+                        if ser is None:
+                            ser = streams[key] = StreamSeries(files=files)
+                        app = appenders[stream] = (ser.times.append, ser.values.append, ser.places.append)
+                    app[0](last_t)
+                    app[1](v)
+                    app[2](fbits | reader.line_num)
             except (csv.Error, UnicodeDecodeError) as exc:
-                problems.append(f"{name}:{line + 1}: unreadable row: {exc}")
+                problems.append(f"{name}:{reader.line_num + 1}: unreadable row: {exc}")
     return ReadResult(streams=streams, problems=problems, rows=rows)
 
 
@@ -161,7 +284,7 @@ def replay_series(series: dict[str, StreamSeries], settings_for: Callable[[str],
             for rej in res.rejected:
                 if rej.reason == "spike":
                     continue
-                file, line = s.where[a + rej.position] if rej.position >= 0 else ("?", 0)
+                file, line = s.where(a + rej.position) if rej.position >= 0 else ("?", 0)
                 problems.append(f"{file}:{line}: stream {name}: {REASONS[rej.reason]}")
             if progress is not None:
                 progress(min(BATCH, t.shape[0] - a))

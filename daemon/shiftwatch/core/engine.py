@@ -333,7 +333,7 @@ class StreamEngine:
         depends only on the samples appended, never on how they were batched,
         which keeps replay and live ingest identical.
         """
-        self._fitter.append(x, t)
+        self._fitter.extend(x, t)
         w = self.settings.window_samples
         n = len(self._fitter)
         if n > 2 * w:
@@ -417,13 +417,19 @@ class StreamEngine:
         """
         s = self.settings
         n_in = t.shape[0]
-        pos = np.arange(n_in, dtype=np.intp)
+        held_before = self._pending is not None
         if self._pending is not None:
             t = np.concatenate(([self._pending[0]], t))
             x = np.concatenate(([self._pending[1]], x))
             idx = np.concatenate(([-1], idx))
-            pos = np.concatenate(([-1], pos))
             self._pending = None
+        span = s.spike_sigma * sigma
+        if not ((x > center + span).any() or (x < center - span).any()):
+            # Fast path: no outlier at all.
+            if x.shape[0] >= limit:
+                return t[:limit], x[:limit], [], limit - int(held_before)
+            return t, x, [], n_in
+        pos = np.arange(-int(held_before), n_in, dtype=np.intp)
         lone, out_last = lone_outliers((x - center) / sigma, s.spike_sigma)
         keep = ~lone
         held = False
@@ -456,10 +462,14 @@ class StreamEngine:
             result.rejected.extend(spikes)
             return used
         r = kx - b.level
-        prev = np.empty_like(r)
-        prev[0] = self._prev_r
-        prev[1:] = r[:-1]
-        z = np.clip((r - b.phi * prev) / b.innovation_sigma, -b.clip, b.clip)
+        if b.phi != 0.0:
+            e = r.copy()
+            e[0] -= b.phi * self._prev_r
+            e[1:] -= b.phi * r[:-1]
+        else:
+            e = r
+        z = e * (1.0 / b.innovation_sigma)
+        np.clip(z, -b.clip, b.clip, out=z)
         trip = test.update(z)
         if trip < 0:
             result.rejected.extend(spikes)
@@ -483,7 +493,7 @@ class StreamEngine:
         if self._watch_kept >= self._next_refine:
             self._refine()
             # Refine often while the baseline rests on few samples, then rarely.
-            self._refine_block = min(2 * self._refine_block, 4096)
+            self._refine_block = min(2 * self._refine_block, 65536)
             self._next_refine = self._watch_kept + self._refine_block
 
     def _refine(self) -> None:
@@ -562,7 +572,7 @@ class StreamEngine:
         kt, kx, spikes, used = self._split_spikes(t, x, idx, ev.level_after, b.sigma,
                                                   ev.target_inputs - ev.consumed)
         result.rejected.extend(spikes)
-        self._fitter.append(kx, kt)
+        self._fitter.extend(kx, kt)
         ev.consumed += kt.shape[0]
         if ev.consumed >= ev.target_inputs:
             self._decide(result, float(kt[-1]))

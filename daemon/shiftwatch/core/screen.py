@@ -91,6 +91,12 @@ def screen_samples(
     """
     t, bad_t = coerce_values(times)
     v, bad_v = coerce_values(values)
+    n = t.shape[0]
+    if n and t.shape == v.shape and not bad_t.any() and not bad_v.any():
+        # Fast path for the common case: all finite, strictly increasing.
+        if (t[0] > last_time and np.isfinite(v).all() and np.isfinite(t[-1])
+                and (n == 1 or bool((t[1:] > t[:-1]).all()))):
+            return Screened(times=t, values=v, kept=np.arange(n), rejected=[])
     if t.shape != v.shape:
         raise ValueError(f"times and values differ in length: {t.shape[0]} != {v.shape[0]}")
     n = t.shape[0]

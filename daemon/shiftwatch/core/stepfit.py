@@ -893,6 +893,33 @@ class StepFitter:
         self._end = e + m
         self._count += m
 
+    def extend(self, values: FloatArray, times: FloatArray) -> None:
+        """Append float64 arrays the caller has already checked (finite values,
+        non-decreasing times not before the last one): :meth:`append` without
+        the checks, for the engine's hot path."""
+        m = values.shape[0]
+        if m == 0:
+            return
+        need = len(self) + m
+        if self._end + m > self._values.size:
+            cap = self._values.size
+            while cap < 2 * need:
+                cap *= 2
+            self._rebuild(cap)
+        if len(self) == 0:
+            self._start = self._end = 0
+            self._csum[0] = 0.0
+            self._ref = float(values.mean())
+        e = self._end
+        self._values[e : e + m] = values
+        self._times[e : e + m] = times
+        cs = self._csum[e + 1 : e + m + 1]
+        np.subtract(values, self._ref, out=cs)
+        np.cumsum(cs, out=cs)
+        cs += self._csum[e]
+        self._end = e + m
+        self._count += m
+
     def drop_front(self, n: int) -> None:
         """Forget the ``n`` oldest samples of the window.
 
