@@ -97,7 +97,7 @@ def _optional(check: Callable[[Any], Any]) -> Callable[[Any], Any]:
 _DETECTION_HELP = {
     "min_shift_sigma": "smallest step worth an alert, in sigmas of the noise",
     "false_alarm_every": "mean time between false alarms on a stream that has not changed (e.g. 7d)",
-    "test": "sequential test: glr, cusum, page_hinkley or adwin",
+    "test": "sequential test: multi_cusum, glr, cusum, page_hinkley or adwin",
     "warmup_samples": "samples used to learn the baseline before watching starts",
     "window_samples": "most samples kept per stream for the step fit",
     "clip_sigma": "residuals are clipped to this many sigmas before they reach the test",

@@ -29,7 +29,7 @@ Usage (from the repository root)::
     oracle two-sided CUSUM with ``k = shift / 2`` at the same ARL
     (``cusum_run_length_quantile``).
 
-Results of 2026-12-03 (fixed random states):
+Results of 2026-12-02 (fixed random states):
 
 * ``direct``: real/requested joint ARL 1.018 +- 0.023 at 1e5 (2000 runs)
   and 1.006 +- 0.030 at 604,800 (1000 runs), min_shift 1.

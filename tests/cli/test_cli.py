@@ -57,7 +57,7 @@ def test_replay_finds_each_step_and_prints_json_lines(cli, tmp_path: Path, epoch
         assert list(r)[: len(RECORD_FIELDS)] == list(RECORD_FIELDS)
         assert abs(parse_time(r["shift_at"]) - (T0 + idx)) <= 5
         assert parse_time(r["shift_at_low"]) <= parse_time(r["shift_at"]) <= parse_time(r["shift_at_high"])
-        assert r["test"] == "glr"
+        assert r["test"] == "multi_cusum"
     assert [parse_time(r["as_of"]) for r in recs] == sorted(parse_time(r["as_of"]) for r in recs)
     assert "replayed 9000 rows in 3 stream(s): 3 shift(s) confirmed" in res.stderr
 
@@ -131,7 +131,7 @@ def test_replay_applies_per_stream_settings_from_config(cli, tmp_path: Path) -> 
     capper = [r for r in recs if r["stream"] == "brackenfield/capper1/torque_nm"]
     others = [r for r in recs if r["stream"] != "brackenfield/capper1/torque_nm"]
     assert capper and all(r["test"] == "cusum" and r["unit"] == "N m" for r in capper)
-    assert others and all(r["test"] == "glr" and "unit" not in r for r in others)
+    assert others and all(r["test"] == "multi_cusum" and "unit" not in r for r in others)
 
 
 def test_replay_names_the_config_key_and_line_on_error(cli, tmp_path: Path) -> None:

@@ -35,7 +35,7 @@ def test_the_shipped_schema_is_generated_from_the_same_definitions() -> None:
     assert shipped == json_schema()
     props = shipped["properties"]
     assert set(props) == {"broker", "streams", "detection", "alerts", "metrics", "state"}
-    assert props["detection"]["properties"]["test"]["enum"] == ["glr", "cusum", "page_hinkley", "adwin"]
+    assert props["detection"]["properties"]["test"]["enum"] == ["multi_cusum", "glr", "cusum", "page_hinkley", "adwin"]
     assert props["streams"]["items"]["required"] == ["topic"]
 
 
@@ -71,7 +71,7 @@ def test_per_stream_overrides_layer_on_the_defaults() -> None:
                        "detection: {min_shift_sigma: 2, false_alarm_every: 30d}\n")
     s = cfg.settings_for("a/x")
     assert (s.test, s.min_shift_sigma, s.false_alarm_every) == ("cusum", 2.0, 30 * 86400.0)
-    assert cfg.settings_for("b").test == "glr"
+    assert cfg.settings_for("b").test == "multi_cusum"
 
 
 def test_topic_filters_follow_mqtt_rules() -> None:
@@ -100,7 +100,7 @@ def test_check_prints_resolved_settings_without_secrets(cli, tmp_path: Path) -> 
     bad.write_text("detection:\n  test: ewma\n")
     res = cli("check", "--config", str(bad))
     assert res.returncode == 2
-    assert f"{bad}:2: detection.test: 'ewma' is not one of glr, cusum, page_hinkley, adwin" in res.stderr
+    assert f"{bad}:2: detection.test: 'ewma' is not one of multi_cusum, glr, cusum, page_hinkley, adwin" in res.stderr
 
 
 def test_schema_command_prints_the_shipped_schema(cli) -> None:

@@ -159,18 +159,28 @@ def make_test(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: f
     is designed for a longer ARL (see :func:`estimation_adjusted_arl`), so the
     false-alarm rate the plant chose holds from the first minutes on.
     """
-    shift_z = max(shift_z, 0.05)
+    # Designs are cached; putting their inputs on a 2% grid lets thousands of
+    # streams share a handful of them.  The ARL is rounded up (longer, the
+    # safe side) and the smallest shift down (more sensitive).
+    shift_z = _grid(max(shift_z, 0.05), up=False)
     n = int(min(n_ref, 1e9))
     if settings.test == "glr":
         from shiftwatch.core.glr import GlrTest
 
         # The GLR corrects for the error of the estimated mean itself.
-        return GlrTest.design(estimation_adjusted_arl(arl0, n, None), window=settings.glr_window,
+        return GlrTest.design(_design_arl(arl0, n, None), window=settings.glr_window,
                               reference_size=n_ref)
+    if settings.test == "multi_cusum":
+        from shiftwatch.core.multicusum import DEFAULT_MULTIPLES, MultiCusumTest
+
+        # The chart with the smallest reference value is the one most
+        # sensitive to an error in the estimated mean.
+        k_min = min(DEFAULT_MULTIPLES) * shift_z / 2.0
+        return MultiCusumTest.design(_design_arl(arl0, n, k_min), shift_z)
     if settings.test == "cusum":
         from shiftwatch.core.cusum import CusumTest
 
-        return CusumTest.design(estimation_adjusted_arl(arl0, n, shift_z / 2.0), shift_z)
+        return CusumTest.design(_design_arl(arl0, n, shift_z / 2.0), shift_z)
     from shiftwatch.core.river_adapter import RiverTest
 
     return RiverTest(settings.test)
@@ -732,6 +742,26 @@ class StreamEngine:
             direction="up" if fit.delta > 0 else "down",
             unit=self.unit,
         )
+
+
+def _design_arl(arl0: float, n: int, k_min: float | None) -> float:
+    """The in-control ARL a test is designed for: adjusted for the baseline's
+    estimation error, on the 2% grid, within the calibrated range."""
+    return min(_grid(estimation_adjusted_arl(arl0, n, k_min)), 1e9)
+
+
+def _grid(x: float, *, up: bool = True) -> float:
+    """Round a positive number to a 2% geometric grid (up or down).
+
+    Examples
+    --------
+    >>> _grid(604800.0) >= 604800.0, _grid(604800.0) / 604800.0 < 1.021
+    (True, True)
+    """
+    step = 0.02
+    q = math.log(x) / step
+    q = math.ceil(q - 1e-9) if up else math.floor(q + 1e-9)
+    return math.exp(q * step)
 
 
 def lone_outliers(dev: FloatArray, limit: float) -> tuple[NDArray[np.bool_], bool]:

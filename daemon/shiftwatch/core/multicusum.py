@@ -52,7 +52,7 @@ __all__ = ["DEFAULT_MULTIPLES", "MultiCusumTest", "joint_arl_ratio"]
 DEFAULT_MULTIPLES: tuple[float, ...] = (0.75, 1.0, 1.5, 2.0)
 
 # Calibration of r = joint ARL / individual ARL for DEFAULT_MULTIPLES, from
-# tests/bench/calibrate_multicusum.py (``curve``), run 2026-12-03 with fixed
+# tests/bench/calibrate_multicusum.py (``curve``), run 2026-12-02 with fixed
 # random states: for min_shift in {0.3, 0.5, 1, 2, 3} and individual
 # two-sided ARLs A in {1e2, 3e2, ..., 1e6} (every chart at design_h(A, k)),
 # 3000 simulated in-control runs with resets per point (standard error
@@ -143,6 +143,12 @@ class MultiCusumTest(SequentialTest):
         self._h2 = np.concatenate((h_arr, h_arr))
         self._h2_col = self._h2[:, None]
         self._m = m
+        self._k_arr = k_arr
+        self._h_arr = h_arr
+        # The in-control fast path needs the charts in ascending order of k.
+        self._ascending = bool(np.all(np.diff(k_arr) > 0)) and m > 1
+        # k_i * (1, 2, ..., BLOCK): the drift term of each chart over a block
+        self._kramp = k_arr[:, None] * np.arange(1.0, BLOCK + 1.0)[None, :]
         self._c = np.zeros(2 * m)
         self._stat = 0.0
         self._dir = 0
@@ -292,6 +298,15 @@ class MultiCusumTest(SequentialTest):
         while start < n:
             stop = min(n, start + BLOCK)
             blk = x[start:stop]
+            if self._ascending:
+                i = self._block_fast(blk)
+                if i == -2:
+                    pass  # the fast path declined: exact path below
+                elif i >= 0:
+                    return start + i
+                else:
+                    start = stop
+                    continue
             d = np.empty((2 * m, stop - start))
             np.subtract(blk[None, :], kc, out=d[:m])
             np.subtract(-blk[None, :], kc, out=d[m:])
@@ -316,6 +331,96 @@ class MultiCusumTest(SequentialTest):
             self._c = s[:, -1].copy()
             self._stat = float(np.max(self._c / h2))
             start = stop
+        return -1
+
+    def _block_fast(self, blk: FloatArray) -> int:
+        """One block in a few passes when no chart can be near its limit.
+
+        The chart with the smallest k is followed exactly.  The others are
+        never larger than it (same data, larger k, and their sums start no
+        higher), and chart i can only exceed h_i through a run of at least
+        ``L_i`` samples, where ``L_i`` follows from the largest residual in
+        the block; over such a run it lies at least ``(k_i - k_1) L_i`` below
+        the first chart.  So chart i can trip only where the first chart
+        exceeds ``h_i + (k_i - k_1) L_i``.  At those few samples (if any) its
+        exact value comes from prefix minima (``minimum.reduceat``), and its
+        value at the end of the block from one minimum: no running minimum
+        is needed for it.  The result equals the exact recursion up to
+        rounding.
+
+        Returns the trip index, -1 for no trip, or -2 when the sums do not
+        satisfy the ordering the argument needs (the caller then takes the
+        exact path).
+        """
+        m = self._m
+        ks, hs = self._k_arr, self._h_arr
+        c = self._c
+        n = blk.shape[0]
+        for side in (0, 1):
+            cs = c[side * m:(side + 1) * m]
+            if np.any(cs[1:] > cs[0]) or np.any(cs >= hs):
+                return -2
+        total = np.cumsum(blk)
+        best_t = n
+        first_c: list[FloatArray] = []
+        partial: list[list[tuple[FloatArray, float]]] = []
+        for side in (0, 1):
+            cs = c[side * m:(side + 1) * m]
+            if side == 0:
+                d0 = blk - ks[0]
+                signed = total
+                zmax = float(blk.max())
+            else:
+                d0 = -blk
+                d0 -= ks[0]
+                signed = -total
+                zmax = float(-blk.min())
+            s0 = np.cumsum(d0)
+            floor0 = np.minimum.accumulate(s0)
+            np.minimum(floor0, -cs[0], out=floor0)
+            c1 = np.subtract(s0, floor0, out=s0)
+            first_c.append(c1)
+            c1max = float(c1.max())
+            if c1max > hs[0]:
+                best_t = min(best_t, int(np.argmax(c1 > hs[0])))
+            rows: list[tuple[FloatArray, float]] = []
+            for i in range(1, m):
+                st = signed - self._kramp[i, :n]
+                rows.append((st, float(cs[i])))
+                g = zmax - ks[i]
+                if g <= 0:
+                    continue  # this chart can only fall in this block
+                lag = min(math.floor(hs[i] / g) + 1, math.floor((hs[i] - cs[i]) / g) + 1)
+                bound = hs[i] + (ks[i] - ks[0]) * max(lag, 1)
+                if c1max <= bound:
+                    continue
+                sus = np.flatnonzero(c1 > bound)
+                # exact values at the suspicious samples from prefix minima
+                cuts = sus + 1
+                cuts = cuts[cuts < n]
+                seg = np.minimum.reduceat(st, np.concatenate(([0], cuts)))
+                pre = np.minimum.accumulate(seg)[: sus.shape[0]]
+                ci = st[sus] - np.minimum(pre, -cs[i])
+                hit = np.flatnonzero(ci > hs[i])
+                if hit.shape[0]:
+                    best_t = min(best_t, int(sus[hit[0]]))
+            partial.append(rows)
+        t = best_t if best_t < n else n - 1
+        col = np.empty(2 * m)
+        for side in (0, 1):
+            col[side * m] = first_c[side][t]
+            for i, (st, c0) in enumerate(partial[side], start=1):
+                low = float(st[: t + 1].min()) if t < n - 1 else float(st.min())
+                col[side * m + i] = st[t] - min(-c0, low)
+        self._c = col
+        ratio = col / self._h2
+        if best_t < n:
+            row = int(np.argmax(ratio))
+            self._stat = float(ratio[row])
+            self._tripped = row % m
+            self._dir = 1 if row < m else -1
+            return best_t
+        self._stat = float(np.max(ratio))
         return -1
 
     def reset(self) -> None:

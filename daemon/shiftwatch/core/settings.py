@@ -9,7 +9,7 @@ from typing import Any
 from shiftwatch.core.timefmt import parse_duration
 
 #: The sequential tests a stream can use.
-TEST_NAMES = ("glr", "cusum", "page_hinkley", "adwin")
+TEST_NAMES = ("multi_cusum", "glr", "cusum", "page_hinkley", "adwin")
 
 
 @dataclass(frozen=True)
@@ -25,21 +25,21 @@ class DetectionSettings:
     --------
     >>> s = DetectionSettings(min_shift_sigma=1.5)
     >>> s.test, s.false_alarm_every
-    ('glr', 604800.0)
+    ('multi_cusum', 604800.0)
     >>> s.arl0(interval=2.0)
     302400.0
     >>> DetectionSettings(test="ewma")
     Traceback (most recent call last):
     ...
-    ValueError: test: 'ewma' is not one of glr, cusum, page_hinkley, adwin
+    ValueError: test: 'ewma' is not one of multi_cusum, glr, cusum, page_hinkley, adwin
     """
 
     #: smallest step of interest, in sigmas of the noise
     min_shift_sigma: float = 1.0
     #: mean time between false alarms on an in-control stream, seconds
     false_alarm_every: float = 7 * 86400.0
-    #: which sequential test: glr (default), cusum, page_hinkley, adwin
-    test: str = "glr"
+    #: which sequential test: multi_cusum (default), glr, cusum, page_hinkley, adwin
+    test: str = "multi_cusum"
     #: samples used to learn the baseline before watching starts (and after each confirmed shift)
     warmup_samples: int = 200
     #: most samples kept per stream for the step fit
