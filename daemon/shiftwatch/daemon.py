@@ -69,7 +69,8 @@ def alert_summary(rec: AlertRecord) -> str:
     Examples
     --------
     A record for a fill weight that stepped up is summarised as
-    ``CONFIRMED filler3/fill_g stepped up 0.9 g (1.1 sigma) at 06:24:59Z: 500 -> 500.9 g``.
+    ``CONFIRMED filler3/fill_g stepped up 0.9 g (1.1 sigma) at 06:24:59Z: 500 -> 500.9 g,
+    detected 18 s after the step``.
     """
     unit = f" {rec.unit}" if rec.unit else ""
     verb = {"detected": "DETECTED", "confirmed": "CONFIRMED", "dismissed": "DISMISSED"}[rec.phase]
@@ -77,9 +78,11 @@ def alert_summary(rec: AlertRecord) -> str:
     if rec.phase == "dismissed":
         return (f"{verb} {rec.stream}: the step detected at {format_time(rec.detected_at)[11:19]}Z "
                 f"did not last; level stays {rec.level_before:.4g}{unit}")
+    lag = rec.detected_at - rec.shift_at
+    lag_text = f"{lag:.1f} s" if lag < 10 else f"{lag:.0f} s"
     return (f"{verb} {rec.stream} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
             f"({abs(rec.delta_sigma):.2g} sigma) at {when}: {rec.level_before:.5g} -> "
-            f"{rec.level_after:.5g}{unit}, detected {rec.detected_at - rec.shift_at:.0f} s after the step")
+            f"{rec.level_after:.5g}{unit}, detected {lag_text} after the step")
 
 
 @dataclass

@@ -117,6 +117,7 @@ class MqttLink:
         self._on_connection = on_connection
         self._lock = threading.Lock()
         self._connected = False
+        self._stopping = False
         self._last_error: str | None = None
         self.host, self.port, tls = parse_url(cfg.url)
         v5 = cfg.mqtt_version == "5"
@@ -165,6 +166,7 @@ class MqttLink:
 
     def stop(self, timeout: float = 5.0) -> None:
         """Publish the retained "offline" status ourselves (a clean exit fires no will), then disconnect."""
+        self._stopping = True
         if self.connected:
             info = self.client.publish(self.status_topic, b"offline", qos=1, retain=True)
             deadline = time.monotonic() + timeout
@@ -223,7 +225,9 @@ class MqttLink:
                            properties: Any) -> None:
         was = self._connected
         self._connected = False
-        if was:
+        if self._stopping:
+            self.log.info("disconnected from broker %s:%d", self.host, self.port)
+        elif was:
             self.log.warning("disconnected from broker %s:%d: %s; reconnecting with backoff",
                              self.host, self.port, reason)
         self._on_connection(False)

@@ -159,7 +159,7 @@ def make_test(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: f
     is designed for a longer ARL (see :func:`estimation_adjusted_arl`), so the
     false-alarm rate the plant chose holds from the first minutes on.
     """
-    # Designs are cached; putting their inputs on a 2% grid lets thousands of
+    # Designs are cached; putting their inputs on a 5% grid lets thousands of
     # streams share a handful of them.  The ARL is rounded up (longer, the
     # safe side) and the smallest shift down (more sensitive).
     shift_z = _grid(max(shift_z, 0.05), up=False)
@@ -746,19 +746,19 @@ class StreamEngine:
 
 def _design_arl(arl0: float, n: int, k_min: float | None) -> float:
     """The in-control ARL a test is designed for: adjusted for the baseline's
-    estimation error, on the 2% grid, within the calibrated range."""
+    estimation error, on the 5% grid, within the calibrated range."""
     return min(_grid(estimation_adjusted_arl(arl0, n, k_min)), 1e9)
 
 
 def _grid(x: float, *, up: bool = True) -> float:
-    """Round a positive number to a 2% geometric grid (up or down).
+    """Round a positive number to a 5% geometric grid (up or down).
 
     Examples
     --------
-    >>> _grid(604800.0) >= 604800.0, _grid(604800.0) / 604800.0 < 1.021
+    >>> _grid(604800.0) >= 604800.0, _grid(604800.0) / 604800.0 < 1.052
     (True, True)
     """
-    step = 0.02
+    step = 0.05
     q = math.log(x) / step
     q = math.ceil(q - 1e-9) if up else math.floor(q + 1e-9)
     return math.exp(q * step)
