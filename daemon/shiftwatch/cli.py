@@ -12,7 +12,6 @@ import argparse
 import json
 import logging
 import sys
-from pathlib import Path
 from typing import Any, Sequence, TextIO
 
 from shiftwatch import __version__

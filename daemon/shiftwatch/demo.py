@@ -163,8 +163,8 @@ def run_demo(duration: float = 75.0, *, out: TextIO = sys.stdout, metrics_listen
         try:
             import socket
 
-            with socket.socket() as s:
-                s.bind((host, int(port)))
+            with socket.socket() as probe:
+                probe.bind((host, int(port)))
         except OSError:
             metrics_listen = f"{host}:{free_port()}"
     state_dir = tempfile.mkdtemp(prefix="shiftwatch-demo-state-")

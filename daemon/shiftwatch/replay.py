@@ -14,7 +14,7 @@ from collections import Counter
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Callable, Iterable
+from typing import Any, Callable, Iterable
 
 import numpy as np
 
@@ -87,7 +87,8 @@ def _parse_times(texts: list[str]) -> list[float]:
         except ValueError:
             pass
         else:
-            return (stamps.astype(np.int64) / 1e6).tolist()
+            secs: list[float] = (stamps.astype(np.int64) / 1e6).tolist()
+            return secs
     return [_parse_time(x) for x in texts]
 
 
@@ -208,7 +209,7 @@ def read_long_csv(paths: Iterable[str | Path]) -> ReadResult:
                 problems.append(f"{name}: the file is not valid UTF-8; unreadable characters were replaced")
             last_text: str | None = None
             last_t = 0.0
-            appenders: dict[str, tuple] = {}
+            appenders: dict[str, tuple[Any, Any, Any]] = {}
             try:
                 for row in reader:
                     if len(row) < width:

@@ -117,11 +117,15 @@ class DaemonProcess:
     def signal(self, sig: int) -> None:
         assert self.proc is not None
         self.proc.send_signal(sig)
+        if sig == signal.SIGTERM:
+            self.term_sent = True
 
     def stop(self, timeout: float = 20.0) -> int:
+        """SIGTERM (once) and wait for the exit status."""
         assert self.proc is not None
-        if self.proc.poll() is None:
+        if self.proc.poll() is None and not getattr(self, "term_sent", False):
             self.proc.send_signal(signal.SIGTERM)
+        self.term_sent = False
         code = self.proc.wait(timeout=timeout)
         self.log.close()
         return code

@@ -355,7 +355,7 @@ class StreamEngine:
     def _warm(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
         s = self.settings
         need = s.warmup_samples - len(self._fitter)
-        take = min(need, t.shape[0])
+        take = int(min(need, t.shape[0]))
         self._fitter.append(x[:take], t[:take])
         if len(self._fitter) < s.warmup_samples:
             return take
@@ -460,7 +460,6 @@ class StreamEngine:
         return t[kept], x[kept], spikes, n_in
 
     def _watch(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
-        s = self.settings
         b = self._baseline
         test = self._test
         assert b is not None and test is not None
@@ -571,7 +570,6 @@ class StreamEngine:
         return int(min(max(n, s.confirm_min_samples), s.confirm_max_samples))
 
     def _track(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
-        s = self.settings
         ev = self._event
         b = self._baseline
         assert ev is not None and b is not None
@@ -670,8 +668,7 @@ class StreamEngine:
                 raise ValueError("times and values differ in length")
             self._fitter = StepFitter(values, times) if values.shape[0] else StepFitter()
             b = state["baseline"]
-            self._baseline = None if b is None else Baseline(**{k: (int(v) if k == "n" else float(v))
-                                                                 for k, v in b.items()})
+            self._baseline = None if b is None else _baseline_from(b)
             ts = state["test"]
             if ts is not None:
                 if ts["name"] != self.settings.test:
@@ -788,6 +785,12 @@ def lone_outliers(dev: FloatArray, limit: float) -> tuple[NDArray[np.bool_], boo
     same_next[:-1] = same_prev[1:]
     lone = out & ~same_prev & ~same_next
     return lone, bool(lone[-1])
+
+
+def _baseline_from(d: dict[str, Any]) -> Baseline:
+    """A Baseline from its snapshot form (``Baseline.to_dict``)."""
+    floats = {k: float(v) for k, v in d.items() if k != "n"}
+    return Baseline(n=int(d["n"]), **floats)  # type: ignore[arg-type]
 
 
 def _time_or_nan(raw: NDArray[Any] | None, i: int) -> float:

@@ -1,0 +1,147 @@
+"""The daemon as a process: systemd notification, reload, stream cap, damaged state, logs, and the demo."""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import socket
+import subprocess
+import time
+from pathlib import Path
+
+from prometheus_client.parser import text_string_to_metric_families
+
+T0 = 1_790_000_000.0
+
+
+def metric(text: str, name: str, **labels: str) -> float | None:
+    for fam in text_string_to_metric_families(text):
+        for s in fam.samples:
+            if s.name == name and all(s.labels.get(k) == v for k, v in labels.items()):
+                return float(s.value)
+    return None
+
+
+def wait_until(pred, timeout: float = 15.0) -> bool:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if pred():
+            return True
+        time.sleep(0.05)
+    return False
+
+
+def test_systemd_notification_ready_watchdog_stopping(daemon_factory, tmp_path: Path, monkeypatch) -> None:
+    sock_path = tmp_path / "notify.sock"
+    sock = socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM)
+    sock.bind(str(sock_path))
+    sock.settimeout(15)
+    monkeypatch.setenv("NOTIFY_SOCKET", str(sock_path))
+    monkeypatch.setenv("WATCHDOG_USEC", "400000")  # ping at least every 0.2 s
+    d = daemon_factory("  - topic: a/+\n    format: number\n").start()
+    got = []
+    try:
+        while not any("WATCHDOG=1" in g for g in got):
+            got.append(sock.recv(4096).decode())
+        assert any("READY=1" in g for g in got)
+        d.signal(signal.SIGTERM)
+        while not any("STOPPING=1" in g for g in got):
+            got.append(sock.recv(4096).decode())
+    finally:
+        sock.close()
+    assert d.stop() == 0
+
+
+def test_reload_keeps_streams_that_stay(daemon_factory, publisher) -> None:
+    d = daemon_factory("  - topic: line/a/+\n    format: number\n  - topic: line/b/+\n    format: number\n").start()
+    for i in range(300):
+        publisher.publish("line/a/p1", f"{10 + 0.01 * (i % 7):.3f}")
+        publisher.publish("line/b/p1", f"{20 + 0.01 * (i % 5):.3f}")
+    assert wait_until(lambda: metric(d.scrape(), "shiftwatch_samples_total", stream="line/b/p1") == 300)
+    level_a = metric(d.scrape(), "shiftwatch_level", stream="line/a/p1")
+    assert level_a is not None
+    # Drop line/b and add line/c; line/a must keep its state.
+    text = d.config.read_text().replace("line/b/+", "line/c/+")
+    d.config.write_text(text)
+    d.signal(signal.SIGHUP)
+    assert wait_until(lambda: "configuration reloaded" in d.log_text())
+    assert "1 stream(s) kept" in d.log_text() and "1 removed" in d.log_text()
+    scrape = d.scrape()
+    assert metric(scrape, "shiftwatch_level", stream="line/a/p1") == level_a
+    assert metric(scrape, "shiftwatch_samples_total", stream="line/b/p1") is None
+    for _ in range(50):
+        publisher.publish("line/c/p1", "5.0")
+    assert wait_until(lambda: metric(d.scrape(), "shiftwatch_samples_total", stream="line/c/p1") == 50)
+    # A broken file is refused and the running configuration stays.
+    d.config.write_text("streams: [\n")
+    d.signal(signal.SIGHUP)
+    assert wait_until(lambda: "reload refused" in d.log_text())
+    assert d.proc is not None and d.proc.poll() is None
+    assert d.stop() == 0
+
+
+def test_stream_cap_holds(daemon_factory, publisher) -> None:
+    d = daemon_factory("  - topic: many/+\n    format: number\n")
+    d.config.write_text(d.config.read_text().replace("metrics:\n", "metrics:\n  max_streams: 3\n"))
+    d.start()
+    for k in range(6):
+        for _i in range(10):
+            publisher.publish(f"many/s{k}", "1.0")
+    assert wait_until(lambda: metric(d.scrape(), "shiftwatch_messages_dropped_total", reason="stream_cap") == 30)
+    scrape = d.scrape()
+    assert metric(scrape, "shiftwatch_streams") == 3
+    assert "stream limit of 3 reached" in d.log_text()
+    assert d.stop() == 0
+
+
+def test_damaged_snapshot_is_moved_aside(daemon_factory, tmp_path: Path) -> None:
+    d = daemon_factory("  - topic: a/+\n    format: number\n")
+    snap_dir = tmp_path / "state" / "snapshots"
+    snap_dir.mkdir(parents=True)
+    (snap_dir / "streams.json.gz").write_bytes(b"\x1f\x8b this is not a snapshot")
+    d.start()
+    assert d.proc is not None and d.proc.poll() is None
+    assert any(p.name.startswith("streams.json.gz.corrupt") for p in snap_dir.iterdir())
+    assert d.stop() == 0
+    assert (snap_dir / "streams.json.gz").exists()  # a good one written at shutdown
+
+
+def test_json_log_lines(daemon_factory, tmp_path: Path, shiftwatch_cmd) -> None:
+    d = daemon_factory("  - topic: a/+\n    format: number\n")
+    proc = subprocess.Popen(shiftwatch_cmd + ["run", "--config", str(d.config), "--log-format", "json"],
+                            stderr=subprocess.PIPE, text=True)
+    try:
+        line = proc.stderr.readline()  # type: ignore[union-attr]
+        rec = json.loads(line)
+        assert rec["level"] == "info" and "message" in rec
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        proc.wait(timeout=20)
+    assert proc.returncode == 0
+
+
+def test_demo_runs_and_reports(shiftwatch_cmd) -> None:
+    # 32 s covers the first scheduled step (filler head 2 at 24 s).
+    env = dict(os.environ)
+    res = subprocess.run(shiftwatch_cmd + ["demo", "--duration", "32", "--metrics-listen", "127.0.0.1:0"],
+                         capture_output=True, text=True, timeout=120, env=env)
+    assert res.returncode == 0, res.stderr
+    out = res.stdout
+    assert "Brackenfield Bottling, line 2 (an invented plant)" in out
+    assert "Advisory only" in out
+    assert "CONFIRMED brackenfield/line2/filler/head2/fill stepped up" in out
+    assert "What happened" in out
+    recap = out.split("What happened")[1]
+    assert "filler head 2 fill weight" in recap and "+1.3 g @24s" in recap
+
+
+def test_demo_stops_cleanly_on_ctrl_c(shiftwatch_cmd) -> None:
+    proc = subprocess.Popen(shiftwatch_cmd + ["demo", "--duration", "60", "--metrics-listen", "127.0.0.1:0"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    time.sleep(6)
+    proc.send_signal(signal.SIGINT)
+    out, err = proc.communicate(timeout=60)
+    assert proc.returncode == 130, err
+    assert "interrupted: stopping cleanly" in out and "What happened" in out
+    assert "Traceback" not in err
