@@ -25,7 +25,6 @@ the machine is noisy.
 from __future__ import annotations
 
 import argparse
-import csv
 import math
 import os
 import subprocess
@@ -33,7 +32,6 @@ import sys
 import tempfile
 import time
 from concurrent.futures import ProcessPoolExecutor
-from datetime import datetime, timezone
 
 import numpy as np
 

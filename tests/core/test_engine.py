@@ -338,3 +338,24 @@ def test_false_alarm_rate_holds_while_the_baseline_is_young(test: str) -> None:
     expected = runs * after / 20000.0
     assert alarms <= expected + math.sqrt(expected)  # one Poisson sd above
     assert alarms >= 0.4 * expected  # and it still watches
+
+
+def test_events_near_baseline_refinements_never_stall_the_engine() -> None:
+    # Regression: an event whose tripping sample was exactly the sample at
+    # which the baseline was due for a refinement, and which was then
+    # dismissed, left the engine unable to take another sample.  Slide a
+    # short excursion across the first refinement points so that trips land
+    # on, just before and just after them; every series must be processed
+    # whole (the engine raises instead of spinning if it stalls).
+    settings = DetectionSettings(false_alarm_every=3000.0)
+    base = np.random.default_rng(22).standard_normal(900)
+    t = T0 + np.arange(900.0)
+    tripped = 0
+    for start in range(300, 480):
+        x = base.copy()
+        x[start:start + 4] += 2.8
+        eng = StreamEngine("s", settings)
+        recs = eng.process(t, x).records
+        assert eng.samples_total == 900
+        tripped += any(r.phase == "detected" for r in recs)
+    assert tripped > 100

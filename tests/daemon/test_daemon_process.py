@@ -145,3 +145,13 @@ def test_demo_stops_cleanly_on_ctrl_c(shiftwatch_cmd) -> None:
     assert proc.returncode == 130, err
     assert "interrupted: stopping cleanly" in out and "What happened" in out
     assert "Traceback" not in err
+
+
+def test_demo_runs_on_the_embedded_broker(shiftwatch_cmd) -> None:
+    # The fallback for machines without Mosquitto: amqtt, MQTT 3.1.1.
+    res = subprocess.run(shiftwatch_cmd + ["demo", "--embedded-broker", "--duration", "32",
+                                           "--metrics-listen", "127.0.0.1:0"],
+                         capture_output=True, text=True, timeout=120)
+    assert res.returncode == 0, res.stderr
+    assert "broker   embedded amqtt broker" in res.stdout
+    assert "CONFIRMED brackenfield/line2/filler/head2/fill stepped up" in res.stdout

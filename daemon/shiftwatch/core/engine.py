@@ -319,6 +319,7 @@ class StreamEngine:
         pos = 0
         n = t.shape[0]
         while pos < n:
+            before = (pos, self._state, self._watch_kept, len(self._fitter))
             if self._state == WARMING_UP:
                 used = self._warm(t[pos:], x[pos:], kept[pos:], result)
             elif self._state == WATCHING:
@@ -326,6 +327,9 @@ class StreamEngine:
             else:
                 used = self._track(t[pos:], x[pos:], kept[pos:], result)
             pos += used
+            if (pos, self._state, self._watch_kept, len(self._fitter)) == before:
+                # Nothing moved: a defect.  Refuse loudly instead of spinning.
+                raise RuntimeError(f"engine for stream {self.stream!r} made no progress in state {self._state}")
         result.accepted = n
         self.samples_total += len(scr.kept) + len(scr.rejected)
         for rej in result.rejected:
@@ -465,8 +469,10 @@ class StreamEngine:
         assert b is not None and test is not None
         # Stop at the next refinement point so the baseline changes at the
         # same sample however the stream is batched.
+        # (After an event the count may already be past the refinement point:
+        # then one sample is taken and the refinement follows at once.)
         kt, kx, spikes, used = self._split_spikes(t, x, idx, b.level, b.sigma,
-                                                  self._next_refine - self._watch_kept)
+                                                  max(self._next_refine - self._watch_kept, 1))
         if kt.shape[0] == 0:
             result.rejected.extend(spikes)
             return used
