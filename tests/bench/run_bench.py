@@ -101,7 +101,7 @@ def false_alarms(kind: str, total: int, pool: ProcessPoolExecutor) -> tuple[int,
 
 
 # ------------------------------------------------------------------ delay
-PRE = 2000  # in-control samples after the warm-up, before the step (steady state)
+PRE = 5000  # in-control samples after the warm-up, before the step (steady state)
 
 
 def _delay_chunk(args: tuple[float, int, int]) -> list[tuple[float, float, float, float, float]]:
@@ -256,7 +256,7 @@ def main() -> int:
     ap.add_argument("--quick", action="store_true")
     args = ap.parse_args()
     ic_total = 1_000_000 if args.quick else 5_000_000
-    reps = 100 if args.quick else 400
+    reps = 100 if args.quick else 300
     failures: list[str] = []
     print(f"shiftwatch core benchmark ({'quick' if args.quick else 'full'} run), defaults: "
           f"false_alarm_every=7d at 1 Hz (ARL0={ARL0:,.0f}), min_shift_sigma=1, "

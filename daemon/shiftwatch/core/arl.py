@@ -104,6 +104,15 @@ def _n_nodes(h: float) -> int:
 # --------------------------------------------------------------------------
 
 
+@functools.lru_cache(maxsize=64)
+def _leggauss(n: int) -> tuple[FloatArray, FloatArray]:
+    """Gauss-Legendre nodes and weights on [-1, 1], cached by count."""
+    x, w = np.polynomial.legendre.leggauss(n)
+    x.flags.writeable = False
+    w.flags.writeable = False
+    return x, w
+
+
 class _Chain:
     """Nystrom discretisation of the one-sided CUSUM on N(drift + k, 1).
 
@@ -119,7 +128,7 @@ class _Chain:
 
     def __init__(self, k: float, h: float, mean: float) -> None:
         m = _n_nodes(h)
-        x, w = np.polynomial.legendre.leggauss(m)
+        x, w = _leggauss(m)
         nodes = 0.5 * h * (x + 1.0)
         weights = 0.5 * h * w
         u = np.concatenate(([0.0], nodes))
@@ -494,6 +503,30 @@ def design_h(arl0: float, k: float) -> float:
 
 
 @functools.lru_cache(maxsize=512)
+@functools.lru_cache(maxsize=1024)
+def siegmund_h(arl0: float, k: float) -> float:
+    """The h whose two-sided in-control ARL is ``arl0`` by Siegmund's approximation.
+
+    Fast (no Markov chain) and within a few percent of :func:`design_h` for
+    h >= 4; used where the target ARL is itself an allowance, not a promise.
+
+    Examples
+    --------
+    >>> abs(siegmund_h(604800.0, 0.5) - design_h(604800.0, 0.5)) < 0.2
+    True
+    """
+    lo_s, hi_s = 0.0, 1.0
+    while siegmund_arl(k, hi_s) < arl0 and hi_s < 1e6:
+        hi_s *= 2.0
+    for _ in range(60):
+        mid = 0.5 * (lo_s + hi_s)
+        if siegmund_arl(k, mid) < arl0:
+            lo_s = mid
+        else:
+            hi_s = mid
+    return max(1e-3, 0.5 * (lo_s + hi_s))
+
+
 def _design_h_cached(arl0: float, k: float) -> float:
     target = math.log(arl0)
     # ARL as h -> 0: one step signals with prob 2 P(Z > k).
@@ -508,16 +541,7 @@ def _design_h_cached(arl0: float, k: float) -> float:
         return math.log(_two_sided_zero_state(k, h)) - target
 
     # Starting guess from Siegmund's formula (inverted by bisection, cheap).
-    lo_s, hi_s = 0.0, 1.0
-    while siegmund_arl(k, hi_s) < arl0 and hi_s < 1e6:
-        hi_s *= 2.0
-    for _ in range(60):
-        mid = 0.5 * (lo_s + hi_s)
-        if siegmund_arl(k, mid) < arl0:
-            lo_s = mid
-        else:
-            hi_s = mid
-    h0 = max(1e-3, 0.5 * (lo_s + hi_s))
+    h0 = siegmund_h(arl0, k)
 
     step = 0.25
     lo, hi = max(1e-6, h0 - step), h0 + step
@@ -543,7 +567,7 @@ def _design_h_cached(arl0: float, k: float) -> float:
             break
         x = hi - ghi * (hi - lo) / (ghi - glo)
         gx = g(x)
-        if gx == 0.0:
+        if abs(gx) < 1e-10:  # ARL within 1e-10 of the target, relatively
             return x
         if (gx > 0.0) == (ghi > 0.0):
             hi, ghi = x, gx

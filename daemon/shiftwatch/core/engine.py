@@ -159,10 +159,10 @@ def make_test(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: f
     is designed for a longer ARL (see :func:`estimation_adjusted_arl`), so the
     false-alarm rate the plant chose holds from the first minutes on.
     """
-    # Designs are cached; putting their inputs on a 5% grid lets thousands of
+    # Designs are cached; putting their inputs on grids lets thousands of
     # streams share a handful of them.  The ARL is rounded up (longer, the
-    # safe side) and the smallest shift down (more sensitive).
-    shift_z = _grid(max(shift_z, 0.05), up=False)
+    # safe side) and the smallest shift down (more sensitive) on a 10% grid.
+    shift_z = _grid(max(shift_z, 0.05), up=False, step=0.1)
     n = int(min(n_ref, 1e9))
     if settings.test == "glr":
         from shiftwatch.core.glr import GlrTest
@@ -176,7 +176,8 @@ def make_test(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: f
         # The chart with the smallest reference value is the one most
         # sensitive to an error in the estimated mean.
         k_min = min(DEFAULT_MULTIPLES) * shift_z / 2.0
-        return MultiCusumTest.design(_design_arl(arl0, n, k_min), shift_z)
+        target = _design_arl(arl0, n, k_min)
+        return MultiCusumTest.design(target, shift_z, approximate=target > 1.25 * arl0)
     if settings.test == "cusum":
         from shiftwatch.core.cusum import CusumTest
 
@@ -749,19 +750,25 @@ class StreamEngine:
 
 def _design_arl(arl0: float, n: int, k_min: float | None) -> float:
     """The in-control ARL a test is designed for: adjusted for the baseline's
-    estimation error, on the 5% grid, within the calibrated range."""
-    return min(_grid(estimation_adjusted_arl(arl0, n, k_min)), 1e9)
+    estimation error and rounded up on a grid, within the calibrated range.
+
+    While the baseline is young the allowance is coarse (steps of 22%); once
+    it is within 25% of the plant's ARL the grid is fine (5%), so an
+    established stream runs at almost exactly the chosen false-alarm rate.
+    """
+    adj = estimation_adjusted_arl(arl0, n, k_min)
+    step = 0.2 if adj > 1.25 * arl0 else 0.05
+    return min(_grid(adj, step=step), 1e9)
 
 
-def _grid(x: float, *, up: bool = True) -> float:
-    """Round a positive number to a 5% geometric grid (up or down).
+def _grid(x: float, *, up: bool = True, step: float = 0.05) -> float:
+    """Round a positive number to a geometric grid of ``exp(step)`` (up or down).
 
     Examples
     --------
     >>> _grid(604800.0) >= 604800.0, _grid(604800.0) / 604800.0 < 1.052
     (True, True)
     """
-    step = 0.05
     q = math.log(x) / step
     q = math.ceil(q - 1e-9) if up else math.floor(q + 1e-9)
     return math.exp(q * step)

@@ -45,7 +45,7 @@ class DetectionSettings:
     #: most samples kept per stream for the step fit
     window_samples: int = 1200
     #: residuals are clipped to +-clip_sigma before they reach the test
-    clip_sigma: float = 3.0
+    clip_sigma: float = 4.0
     #: a lone sample further than this many sigmas from the level is a spike and is discarded
     spike_sigma: float = 5.0
     #: confidence level of the shift-time interval
