@@ -99,7 +99,7 @@ _DETECTION_HELP = {
     "false_alarm_every": "mean time between false alarms on a stream that has not changed (e.g. 7d)",
     "test": "sequential test: multi_cusum, glr, cusum, page_hinkley or adwin",
     "warmup_samples": "samples used to learn the baseline before watching starts",
-    "window_samples": "most samples kept per stream for the step fit",
+    "window_samples": "samples kept per stream, and looked back over by the step fit",
     "clip_sigma": "residuals are clipped to this many sigmas before they reach the test",
     "spike_sigma": "a lone sample further than this many sigmas from the level is discarded",
     "interval_level": "confidence level of the shift-time interval",

@@ -259,79 +259,124 @@ def _estimate_baseline(
     )
 
 
-def refine_baseline(b: Baseline, times: FloatArray, values: FloatArray, *, clip: float,
-                    floor: float, max_weight: int) -> Baseline:
-    """Fold a block of newer in-control samples into the baseline (see :func:`_refine_once`).
+class BaselineSums:
+    """Running sums of in-control samples, relative to a fixed baseline.
 
-    ``clip`` is the configured constant; when the tail share crosses the
-    heavy-tail line the clip changes and sigma is re-scaled by one more step
-    at the new constant.
-    """
-    nb = _refine_once(b, times, values, clip=b.clip, floor=floor, max_weight=max_weight)
-    c = choose_clip(nb.tail_fraction, clip)
-    if c != nb.clip:
-        nb = _refine_once(replace(b, clip=c), times, values, clip=c, floor=floor, max_weight=max_weight)
-        nb = replace(nb, clip=c)
-    return nb
-
-
-def _refine_once(b: Baseline, times: FloatArray, values: FloatArray, *, clip: float,
-                 floor: float, max_weight: int) -> Baseline:
-    """Fold a block of newer in-control samples into the baseline, cheaply.
-
-    One Huber step for the level and the scale relative to the current
-    baseline (vector operations on the block only), a lag-1 autocorrelation
-    of the clipped residuals, then a weighted average with the current
-    estimate (its weight capped at ``max_weight`` samples).  The phi kept for
-    prewhitening is zeroed unless it exceeds 2/sqrt(n) in size.
+    Samples are folded in as they age past the engine's guard, in any
+    batches; :meth:`refine` turns the sums into one Huber step for level and
+    scale, a lag-1 autocorrelation and a sampling interval, and merges them
+    into the baseline.  The sums take a few floats, not a window of samples,
+    and give the same result however the samples were batched.
 
     Examples
     --------
     >>> rng = np.random.default_rng(5)
     >>> b = estimate_baseline(np.arange(100.0), 10 + rng.standard_normal(100))
+    >>> sums = BaselineSums()
     >>> x = 10 + rng.standard_normal(5000)
-    >>> r = refine_baseline(b, np.arange(100.0, 5100.0), x, clip=3.0, floor=1e-9, max_weight=20000)
-    >>> r.n, abs(r.level - 10) < 0.05, abs(r.sigma - 1) < 0.05
+    >>> for a in range(0, 5000, 700):
+    ...     sums.add(b, x[a:a + 700], np.arange(100.0 + a, 100.0 + min(a + 700, 5000)))
+    >>> r = sums.refine(b, clip=4.0, floor=1e-9, max_weight=20000)
+    >>> r.n, bool(abs(r.level - 10) < 0.05), bool(abs(r.sigma - 1) < 0.05)
     (5100, True, True)
     """
-    n_blk = int(values.shape[0])
-    if n_blk < 3:
-        return b
-    beta = huber_beta(clip)
-    dev = (values - b.level) / b.sigma
-    tail_blk = float(np.mean(np.abs(dev) > TAIL_AT))
-    u = np.clip(dev, -clip, clip)
-    level = b.level + b.sigma * float(np.mean(u))
-    sigma = max(b.sigma * math.sqrt(float(np.mean(u * u)) / beta), floor)
-    phi_blk = lag1_autocorrelation(u - float(np.mean(u)))
-    e = np.clip(u[1:] - b.phi * u[:-1], -clip, clip)
-    innov = max(b.sigma * math.sqrt(float(np.mean(e * e)) / beta), floor)
-    dt = np.diff(times)
-    interval = float(np.median(dt)) if dt.shape[0] else b.interval
-    if not interval > 0:
-        interval = b.interval
-    w_old = min(b.n, max_weight)
-    w = w_old + n_blk
 
-    def avg(a: float, c: float) -> float:
-        return (a * w_old + c * n_blk) / w
+    __slots__ = ("n", "su", "suu", "slag", "see", "tail", "sdt", "ndt", "prev_u", "prev_t")
 
-    # The phi in use may be zero (not significant); average the raw estimates.
-    phi_raw = float(np.clip(avg(b.phi_raw, phi_blk), -0.95, 0.95))
-    n = min(b.n + n_blk, max_weight + n_blk)
-    phi = phi_raw if abs(phi_raw) >= 2.0 / math.sqrt(n) else 0.0
-    return Baseline(
-        level=avg(b.level, level),
-        sigma=math.sqrt(avg(b.sigma**2, sigma**2)),
-        phi=phi,
-        innovation_sigma=math.sqrt(avg(b.innovation_sigma**2, innov**2)),
-        interval=avg(b.interval, interval),
-        n=n,
-        quantum=b.quantum,
-        phi_raw=phi_raw,
-        clip=clip,
-        tail_fraction=avg(b.tail_fraction, tail_blk),
-    )
+    def __init__(self) -> None:
+        self.reset()
+
+    def reset(self) -> None:
+        self.n = 0
+        self.su = self.suu = self.slag = self.see = self.sdt = 0.0
+        self.tail = self.ndt = 0
+        self.prev_u: float | None = None
+        self.prev_t: float | None = None
+
+    def to_list(self) -> list[float | int | None]:
+        return [self.n, self.su, self.suu, self.slag, self.see, self.tail, self.sdt, self.ndt,
+                self.prev_u, self.prev_t]
+
+    @classmethod
+    def from_list(cls, d: list[float | int | None]) -> "BaselineSums":
+        out = cls()
+        (n, out.su, out.suu, out.slag, out.see, tail, out.sdt, ndt, out.prev_u, out.prev_t) = d  # type: ignore[assignment]
+        out.n, out.tail, out.ndt = int(n or 0), int(tail or 0), int(ndt or 0)
+        return out
+
+    def add(self, b: Baseline, values: FloatArray, times: FloatArray) -> None:
+        """Fold samples (in time order, continuing the previous ones) into the sums."""
+        m = values.shape[0]
+        if m == 0:
+            return
+        c = b.clip
+        dev = (values - b.level) / b.sigma
+        self.tail += int(np.count_nonzero(np.abs(dev) > TAIL_AT))
+        u = np.clip(dev, -c, c)
+        self.su += float(u.sum())
+        self.suu += float(np.dot(u, u))
+        if self.prev_u is not None:
+            lag_first = u[0] * self.prev_u
+            e_first = u[0] - b.phi * self.prev_u
+        else:
+            lag_first = 0.0
+            e_first = None
+        self.slag += float(np.dot(u[1:], u[:-1])) + float(lag_first)
+        e = np.clip(u[1:] - b.phi * u[:-1], -c, c)
+        self.see += float(np.dot(e, e))
+        if e_first is not None:
+            ef = float(np.clip(e_first, -c, c))
+            self.see += ef * ef
+        # Sampling interval: gaps longer than ten intervals (stoppages) are left out.
+        dt = np.diff(times)
+        if self.prev_t is not None:
+            dt = np.concatenate(([times[0] - self.prev_t], dt))
+        ok = dt[(dt > 0) & (dt < 10.0 * b.interval)]
+        self.sdt += float(ok.sum())
+        self.ndt += int(ok.shape[0])
+        self.n += m
+        self.prev_u = float(u[-1])
+        self.prev_t = float(times[-1])
+
+    def refine(self, b: Baseline, *, clip: float, floor: float, max_weight: int) -> Baseline:
+        """The baseline with the folded samples merged in (weight of the old one capped at
+        ``max_weight`` samples); the sums start again.  ``clip`` is the configured constant:
+        when the tail share crosses the heavy-tail line the clip changes from the next block on."""
+        n_blk = self.n
+        if n_blk < 16:
+            return b
+        beta = huber_beta(b.clip)
+        mean_u = self.su / n_blk
+        level = b.level + b.sigma * mean_u
+        sigma = max(b.sigma * math.sqrt(self.suu / n_blk / beta), floor)
+        var_u = self.suu / n_blk - mean_u * mean_u
+        phi_blk = ((self.slag / max(n_blk - 1, 1)) - mean_u * mean_u) / var_u if var_u > 0 else 0.0
+        innov = max(b.sigma * math.sqrt(self.see / max(n_blk - 1, 1) / beta), floor)
+        interval = self.sdt / self.ndt if self.ndt else b.interval
+        tail_blk = self.tail / n_blk
+        w_old = min(b.n, max_weight)
+        w = w_old + n_blk
+
+        def avg(a: float, c: float) -> float:
+            return (a * w_old + c * n_blk) / w
+
+        phi_raw = float(np.clip(avg(b.phi_raw, phi_blk), -0.95, 0.95))
+        n = min(b.n + n_blk, max_weight + n_blk)
+        phi = phi_raw if abs(phi_raw) >= 2.0 / math.sqrt(n) else 0.0
+        tail = avg(b.tail_fraction, tail_blk)
+        self.reset()
+        return Baseline(
+            level=avg(b.level, level),
+            sigma=math.sqrt(avg(b.sigma**2, sigma**2)),
+            phi=phi,
+            innovation_sigma=math.sqrt(avg(b.innovation_sigma**2, innov**2)),
+            interval=avg(b.interval, interval) if interval > 0 else b.interval,
+            n=n,
+            quantum=b.quantum,
+            phi_raw=phi_raw,
+            clip=choose_clip(tail, clip),
+            tail_fraction=tail,
+        )
 
 
 def estimation_adjusted_arl(arl0: float, n: int, k_min: float | None) -> float:

@@ -147,8 +147,9 @@ class MultiCusumTest(SequentialTest):
         self._h_arr = h_arr
         # The in-control fast path needs the charts in ascending order of k.
         self._ascending = bool(np.all(np.diff(k_arr) > 0)) and m > 1
-        # k_i * (1, 2, ..., BLOCK): the drift term of each chart over a block
-        self._kramp = k_arr[:, None] * np.arange(1.0, BLOCK + 1.0)[None, :]
+        # k_i * (1, 2, ..., BLOCK): the drift term of each chart over a block,
+        # shared by every bank with the same charts (streams share designs).
+        self._kramp = _drift_ramps(self.ks)
         self._c = np.zeros(2 * m)
         self._stat = 0.0
         self._dir = 0
@@ -461,6 +462,13 @@ class MultiCusumTest(SequentialTest):
 
     def __repr__(self) -> str:
         return f"MultiCusumTest(ks={list(self.ks)!r}, hs={list(self.hs)!r})"
+
+
+@functools.lru_cache(maxsize=64)
+def _drift_ramps(ks: tuple[float, ...]) -> FloatArray:
+    ramps = np.asarray(ks, dtype=np.float64)[:, None] * np.arange(1.0, BLOCK + 1.0)[None, :]
+    ramps.flags.writeable = False
+    return ramps
 
 
 def _float_list(name: str, values: Sequence[float]) -> list[float]:

@@ -42,8 +42,8 @@ class DetectionSettings:
     test: str = "multi_cusum"
     #: samples used to learn the baseline before watching starts (and after each confirmed shift)
     warmup_samples: int = 200
-    #: most samples kept per stream for the step fit
-    window_samples: int = 1200
+    #: samples kept per stream, and looked back over by the step fit (it grows while an event is open)
+    window_samples: int = 400
     #: residuals are clipped to +-clip_sigma before they reach the test
     clip_sigma: float = 4.0
     #: a lone sample further than this many sigmas from the level is a spike and is discarded
