@@ -115,6 +115,7 @@ Examples
 from __future__ import annotations
 
 import hashlib
+import functools
 import json
 import math
 import re
@@ -336,6 +337,7 @@ def _rfc3339(text: str, what: str) -> float:
         raise _Reject("bad_time", f"{what} is {_show(text)}, not a valid date and time") from None
 
 
+@functools.lru_cache(maxsize=256)
 def _split_path(path: str | None, what: str) -> tuple[str, ...] | None:
     if path is None:
         return None
@@ -361,6 +363,25 @@ def _too_deep(text: str, limit: int) -> bool:
         return False
     brackets = _NOT_BRACKET.sub("", _JSON_STRING.sub("", text))
     return max(accumulate(_BRACKET_STEP[c] for c in brackets), default=0) > limit
+
+
+@functools.lru_cache(maxsize=256)
+def _checked_options(fmt: str, value_path: str, time_path: str | None, max_bytes: int, max_items: int,
+                     max_depth: int) -> tuple[tuple[str, ...], tuple[str, ...] | None]:
+    """Validate the decoding options once per distinct set (the daemon reuses a few)."""
+    if fmt not in FORMATS:
+        raise ValueError(f"unknown payload format {fmt!r}; expected one of {', '.join(FORMATS)}")
+    value_parts = _split_path(value_path, "value_path")
+    time_parts = _split_path(time_path, "time_path")
+    assert value_parts is not None
+    for label, limit in (("max_bytes", max_bytes), ("max_items", max_items), ("max_depth", max_depth)):
+        if isinstance(limit, bool) or not isinstance(limit, int) or limit < 1:
+            raise ValueError(f"{label} must be a positive integer, got {limit!r}")
+    return value_parts, time_parts
+
+
+#: One decoder for every message (json.loads would build a new one each call).
+_JSON = json.JSONDecoder(parse_constant=_Constant, parse_int=_parse_int)
 
 
 def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", time_path: str | None = None,
@@ -416,14 +437,7 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
     """
     if not isinstance(payload, (bytes, bytearray)):
         raise TypeError(f"payload must be bytes, got {type(payload).__name__}")
-    if fmt not in FORMATS:
-        raise ValueError(f"unknown payload format {fmt!r}; expected one of {', '.join(FORMATS)}")
-    value_parts = _split_path(value_path, "value_path")
-    time_parts = _split_path(time_path, "time_path")
-    assert value_parts is not None
-    for label, limit in (("max_bytes", max_bytes), ("max_items", max_items), ("max_depth", max_depth)):
-        if isinstance(limit, bool) or not isinstance(limit, int) or limit < 1:
-            raise ValueError(f"{label} must be a positive integer, got {limit!r}")
+    value_parts, time_parts = _checked_options(fmt, value_path, time_path, max_bytes, max_items, max_depth)
     if isinstance(now, bool) or not isinstance(now, (int, float)) or not math.isfinite(now):
         raise ValueError(f"now must be finite epoch seconds, got {now!r}")
 
@@ -455,7 +469,7 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
         problems.append(DecodeProblem("too_deep", f"lists/objects nest deeper than {max_depth} levels"))
         return out
     try:
-        doc = json.loads(text, parse_constant=_Constant, parse_int=_parse_int)
+        doc = _JSON.decode(text)
     except RecursionError:
         problems.append(DecodeProblem("too_deep", "lists/objects nest too deep to parse"))
         return out

@@ -310,30 +310,44 @@ class BaselineSums:
         if m == 0:
             return
         c = b.clip
-        dev = (values - b.level) / b.sigma
-        self.tail += int(np.count_nonzero(np.abs(dev) > TAIL_AT))
-        u = np.clip(dev, -c, c)
-        self.su += float(u.sum())
-        self.suu += float(np.dot(u, u))
-        if self.prev_u is not None:
-            lag_first = u[0] * self.prev_u
-            e_first = u[0] - b.phi * self.prev_u
+        dev = values - b.level
+        dev *= 1.0 / b.sigma
+        if c > TAIL_AT:
+            u = np.clip(dev, -c, c)
+            self.tail += int(np.count_nonzero(u > TAIL_AT)) + int(np.count_nonzero(u < -TAIL_AT))
         else:
-            lag_first = 0.0
-            e_first = None
-        self.slag += float(np.dot(u[1:], u[:-1])) + float(lag_first)
-        e = np.clip(u[1:] - b.phi * u[:-1], -c, c)
-        self.see += float(np.dot(e, e))
-        if e_first is not None:
-            ef = float(np.clip(e_first, -c, c))
-            self.see += ef * ef
+            self.tail += int(np.count_nonzero(np.abs(dev) > TAIL_AT))
+            u = np.clip(dev, -c, c)
+        self.su += float(u.sum())
+        uu = float(np.dot(u, u))
+        self.suu += uu
+        lag = float(np.dot(u[1:], u[:-1]))
+        if self.prev_u is not None:
+            lag += u[0] * self.prev_u
+        self.slag += lag
+        if b.phi == 0.0:
+            self.see += uu  # prewhitened residuals are the residuals themselves
+        else:
+            e = np.clip(u[1:] - b.phi * u[:-1], -c, c)
+            self.see += float(np.dot(e, e))
+            if self.prev_u is not None:
+                ef = float(np.clip(u[0] - b.phi * self.prev_u, -c, c))
+                self.see += ef * ef
         # Sampling interval: gaps longer than ten intervals (stoppages) are left out.
-        dt = np.diff(times)
-        if self.prev_t is not None:
-            dt = np.concatenate(([times[0] - self.prev_t], dt))
-        ok = dt[(dt > 0) & (dt < 10.0 * b.interval)]
-        self.sdt += float(ok.sum())
-        self.ndt += int(ok.shape[0])
+        first = times[0] if self.prev_t is None else self.prev_t
+        span = float(times[-1] - first)
+        steps = m - 1 if self.prev_t is None else m
+        if steps > 0 and 0 < span < 10.0 * b.interval * steps:
+            dt = np.diff(times)
+            if self.prev_t is not None:
+                dt = np.concatenate(([times[0] - self.prev_t], dt))
+            if float(dt.max()) < 10.0 * b.interval and float(dt.min()) > 0:
+                self.sdt += span
+                self.ndt += steps
+            else:
+                ok = dt[(dt > 0) & (dt < 10.0 * b.interval)]
+                self.sdt += float(ok.sum())
+                self.ndt += int(ok.shape[0])
         self.n += m
         self.prev_u = float(u[-1])
         self.prev_t = float(times[-1])

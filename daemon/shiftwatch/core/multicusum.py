@@ -303,6 +303,8 @@ class MultiCusumTest(SequentialTest):
         kc = self._k_col
         h2 = self._h2
         start = 0
+        if n <= SMALL and m > 1:
+            return self._update_small(x)
         while start < n:
             stop = min(n, start + BLOCK)
             blk = x[start:stop]
@@ -341,6 +343,35 @@ class MultiCusumTest(SequentialTest):
             start = stop
         return -1
 
+    def _update_small(self, x: FloatArray) -> int:
+        """The recursion sample by sample in plain Python: for the few samples a
+        live stream brings per round, cheaper than a dozen array operations."""
+        m = self._m
+        ks = self.ks
+        hs = self.hs
+        c = self._c.tolist()
+        for j, z in enumerate(x.tolist()):
+            tripped = False
+            for i in range(m):
+                up = c[i] + z - ks[i]
+                c[i] = up if up > 0.0 else 0.0
+                lo = c[m + i] - z - ks[i]
+                c[m + i] = lo if lo > 0.0 else 0.0
+                if c[i] > hs[i] or c[m + i] > hs[i]:
+                    tripped = True
+            if tripped:
+                col = np.asarray(c)
+                ratio = col / self._h2
+                row = int(np.argmax(ratio))
+                self._c = col
+                self._stat = float(ratio[row])
+                self._tripped = row % m
+                self._dir = 1 if row < m else -1
+                return j
+        self._c = np.asarray(c)
+        self._stat = max(c[i] / hs[i % m] for i in range(2 * m))
+        return -1
+
     def _block_fast(self, blk: FloatArray) -> int:
         """One block in a few passes when no chart can be near its limit.
 
@@ -371,7 +402,9 @@ class MultiCusumTest(SequentialTest):
         total = np.cumsum(blk)
         best_t = n
         first_c: list[FloatArray] = []
-        partial: list[list[tuple[FloatArray, float]]] = []
+        signs: list[FloatArray] = []
+        # per side: chart index -> its S - k_i t (computed only when needed)
+        tilde: list[dict[int, FloatArray]] = []
         for side in (0, 1):
             cs = c[side * m:(side + 1) * m]
             if side == 0:
@@ -383,23 +416,28 @@ class MultiCusumTest(SequentialTest):
                 d0 -= ks[0]
                 signed = -total
                 zmax = float(-blk.min())
+            signs.append(signed)
             s0 = np.cumsum(d0)
             floor0 = np.minimum.accumulate(s0)
             np.minimum(floor0, -cs[0], out=floor0)
             c1 = np.subtract(s0, floor0, out=s0)
             first_c.append(c1)
             c1max = float(c1.max())
+            c1end = float(c1[-1])
             if c1max > hs[0]:
                 best_t = min(best_t, int(np.argmax(c1 > hs[0])))
-            rows: list[tuple[FloatArray, float]] = []
+            rows: dict[int, FloatArray] = {}
             for i in range(1, m):
-                st = signed - self._kramp[i, :n]
-                rows.append((st, float(cs[i])))
                 g = zmax - ks[i]
-                if g <= 0:
-                    continue  # this chart can only fall in this block
-                lag = min(math.floor(hs[i] / g) + 1, math.floor((hs[i] - cs[i]) / g) + 1)
-                bound = hs[i] + (ks[i] - ks[0]) * max(lag, 1)
+                if g > 0:
+                    lag = min(math.floor(hs[i] / g) + 1, math.floor((hs[i] - cs[i]) / g) + 1)
+                    bound = hs[i] + (ks[i] - ks[0]) * max(lag, 1)
+                else:
+                    bound = math.inf  # this chart can only fall in this block
+                if c1max <= bound and c1end <= 0.0:
+                    continue  # cannot trip, and ends at zero like the first chart
+                st = signed - self._kramp[i, :n]
+                rows[i] = st
                 if c1max <= bound:
                     continue
                 sus = np.flatnonzero(c1 > bound)
@@ -412,14 +450,20 @@ class MultiCusumTest(SequentialTest):
                 hit = np.flatnonzero(ci > hs[i])
                 if hit.shape[0]:
                     best_t = min(best_t, int(sus[hit[0]]))
-            partial.append(rows)
+            tilde.append(rows)
         t = best_t if best_t < n else n - 1
-        col = np.empty(2 * m)
+        col = np.zeros(2 * m)
         for side in (0, 1):
+            cs = c[side * m:(side + 1) * m]
             col[side * m] = first_c[side][t]
-            for i, (st, c0) in enumerate(partial[side], start=1):
+            if first_c[side][t] <= 0.0:
+                continue  # every chart of this side is at zero
+            for i in range(1, m):
+                st = tilde[side].get(i)
+                if st is None:
+                    st = signs[side] - self._kramp[i, :n]
                 low = float(st[: t + 1].min()) if t < n - 1 else float(st.min())
-                col[side * m + i] = st[t] - min(-c0, low)
+                col[side * m + i] = st[t] - min(-float(cs[i]), low)
         self._c = col
         ratio = col / self._h2
         if best_t < n:
@@ -469,6 +513,10 @@ def _drift_ramps(ks: tuple[float, ...]) -> FloatArray:
     ramps = np.asarray(ks, dtype=np.float64)[:, None] * np.arange(1.0, BLOCK + 1.0)[None, :]
     ramps.flags.writeable = False
     return ramps
+
+
+#: Batches up to this size take the plain-Python path.
+SMALL = 32
 
 
 def _float_list(name: str, values: Sequence[float]) -> list[float]:
