@@ -314,7 +314,7 @@ class BaselineSums:
         dev *= 1.0 / b.sigma
         if c > TAIL_AT:
             u = np.clip(dev, -c, c)
-            self.tail += int(np.count_nonzero(u > TAIL_AT)) + int(np.count_nonzero(u < -TAIL_AT))
+            self.tail += int(np.count_nonzero(np.abs(u) > TAIL_AT))
         else:
             self.tail += int(np.count_nonzero(np.abs(dev) > TAIL_AT))
             u = np.clip(dev, -c, c)
@@ -337,7 +337,13 @@ class BaselineSums:
         first = times[0] if self.prev_t is None else self.prev_t
         span = float(times[-1] - first)
         steps = m - 1 if self.prev_t is None else m
-        if steps > 0 and 0 < span < 10.0 * b.interval * steps:
+        if steps > 0 and abs(span / steps - b.interval) < 0.2 * b.interval:
+            # Regular sampling: no gap can hide in the span (a 10x gap would
+            # move the mean step by far more than 20% for these few steps,
+            # unless the block is long, where it hardly matters).
+            self.sdt += span
+            self.ndt += steps
+        elif steps > 0 and 0 < span < 10.0 * b.interval * steps:
             dt = np.diff(times)
             if self.prev_t is not None:
                 dt = np.concatenate(([times[0] - self.prev_t], dt))
