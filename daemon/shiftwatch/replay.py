@@ -17,10 +17,13 @@ from pathlib import Path
 from typing import Any, Callable, Iterable
 
 import numpy as np
+from numpy.typing import NDArray
 
 from shiftwatch.core.engine import AlertRecord, StreamEngine
 from shiftwatch.core.screen import REASONS
 from shiftwatch.core.settings import DetectionSettings
+
+FloatArray = NDArray[np.float64]
 
 REQUIRED_COLUMNS = ("time", "stream", "value")
 
@@ -77,6 +80,55 @@ def _is_number(text: str) -> bool:
     return True
 
 
+#: Positions of the fixed characters of "YYYY-MM-DDTHH:MM:SS.fffZ".
+_ISO_MS_FIXED = {4: "-", 7: "-", 10: "T", 13: ":", 16: ":", 19: ".", 23: "Z"}
+
+
+def _parse_iso_ms_column(texts: list[str]) -> FloatArray | None:
+    """Parse a column of RFC 3339 times all written as ``YYYY-MM-DDTHH:MM:SS.fffZ``
+    (the form shiftwatch writes) with array arithmetic; None if any differs.
+
+    Examples
+    --------
+    >>> _parse_iso_ms_column(["1970-01-01T00:00:01.500Z", "2026-03-02T06:00:00.000Z"]).tolist()
+    [1.5, 1772431200.0]
+    >>> _parse_iso_ms_column(["2026-03-02T06:00:00Z"]) is None
+    True
+    """
+    try:
+        arr = np.array(texts, dtype="U24")
+    except (ValueError, TypeError):
+        return None
+    if arr.shape[0] == 0 or any(len(texts[i]) != 24 for i in (0, -1)):
+        return None
+    c = arr.view(np.uint32).reshape(arr.shape[0], 24)
+    fixed = np.array([ord(ch) for ch in _ISO_MS_FIXED.values()], dtype=np.uint32)
+    if not bool((c[:, list(_ISO_MS_FIXED)] == fixed).all()):
+        return None
+    d = c[:, [0, 1, 2, 3, 5, 6, 8, 9, 11, 12, 14, 15, 17, 18, 20, 21, 22]] - np.uint32(48)
+    if bool((d > 9).any()):  # not a digit (below '0' wraps around)
+        return None
+    d = d.astype(np.int64)
+    y = d[:, 0:4] @ np.array([1000, 100, 10, 1])
+    mo = d[:, 4:6] @ np.array([10, 1])
+    day = d[:, 6:8] @ np.array([10, 1])
+    clock = d[:, 8:14] @ np.array([36000, 3600, 600, 60, 10, 1])
+    ms = d[:, 14:17] @ np.array([100, 10, 1])
+    hh, mi, ss = d[:, 8] * 10 + d[:, 9], d[:, 10] * 10 + d[:, 11], d[:, 12] * 10 + d[:, 13]
+    if bool(((mo < 1) | (mo > 12) | (day < 1) | (day > 31) | (hh > 23) | (mi > 59) | (ss > 60)).any()):
+        return None
+    # Days from the civil date (H. Hinnant's algorithm, common practice).
+    yy = y - (mo <= 2)
+    era = np.floor_divide(yy, 400)
+    yoe = yy - era * 400
+    mp = (mo + 9) % 12
+    doy = (153 * mp + 2) // 5 + day - 1
+    doe = yoe * 365 + yoe // 4 - yoe // 100 + doy
+    days = era * 146097 + doe - 719468
+    out: FloatArray = (days * 86400 + clock).astype(np.float64) + ms / 1000.0
+    return out
+
+
 def _parse_times(texts: list[str]) -> list[float]:
     """Parse time texts (distinct ones, usually).  When every text is RFC 3339
     in UTC with a ``Z``, numpy's C parser does them all at once; otherwise each
@@ -114,11 +166,13 @@ def _read_fast(text: str, ncols: int, ti: int, si: int, vi: int, fbits: int,
     tcol, scol, vcol = flat[ti::ncols], flat[si::ncols], flat[vi::ncols]
     try:
         values = np.array(vcol, dtype=np.float64)
-        distinct = list(set(tcol))
-        parsed = dict(zip(distinct, _parse_times(distinct)))
+        times = _parse_iso_ms_column(tcol)
+        if times is None:
+            distinct = list(set(tcol))
+            parsed = dict(zip(distinct, _parse_times(distinct)))
+            times = np.fromiter(map(parsed.__getitem__, tcol), dtype=np.float64, count=n)
     except (ValueError, OverflowError):
         return None
-    times = np.fromiter(map(parsed.__getitem__, tcol), dtype=np.float64, count=n)
     index: dict[str, int] = {}
     codes = np.fromiter((index.setdefault(x, len(index)) for x in scol), dtype=np.int64, count=n)
     if any(not name.strip() for name in index):
