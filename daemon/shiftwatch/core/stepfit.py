@@ -875,23 +875,7 @@ class StepFitter:
             t = _as_times(np.atleast_1d(np.asarray(times, dtype=np.float64)), m)
         if len(self) and t[0] < self._times[self._end - 1]:
             raise ValueError("times must not go back before the last appended time")
-        need = len(self) + m
-        if self._end + m > self._values.size:
-            cap = self._values.size
-            while cap < 2 * need:
-                cap *= 2
-            self._rebuild(cap)
-        if len(self) == 0:
-            self._start = self._end = 0
-            self._csum[0] = 0.0
-            self._ref = float(v.mean())
-        e = self._end
-        self._values[e : e + m] = v
-        self._times[e : e + m] = t
-        np.cumsum(v - self._ref, out=self._csum[e + 1 : e + m + 1])
-        self._csum[e + 1 : e + m + 1] += self._csum[e]
-        self._end = e + m
-        self._count += m
+        self.extend(v, t)
 
     def extend(self, values: FloatArray, times: FloatArray) -> None:
         """Append float64 arrays the caller has already checked (finite values,
