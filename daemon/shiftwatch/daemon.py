@@ -10,9 +10,9 @@ engines' state.
 
 from __future__ import annotations
 
+import functools
 import json
 import logging
-import queue
 import signal
 import threading
 import time
@@ -31,7 +31,7 @@ from shiftwatch.core.timefmt import format_time
 from shiftwatch.decode import REASONS as DECODE_REASONS
 from shiftwatch.decode import decode, stream_name
 from shiftwatch.metrics import Metrics, MetricsServer, StreamStats
-from shiftwatch.mqtt import BrokerError, Message, MqttLink, read_password
+from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
 from shiftwatch.notify import sd_notify, watchdog_interval
 from shiftwatch.outbox import Outbox
 from shiftwatch.statestore import StateStore
@@ -116,7 +116,7 @@ class Daemon:
         self.log = logger or logging.getLogger("shiftwatch")
         self.metrics = metrics or Metrics()
         self.env = env
-        self.inbox: queue.Queue[Message] = queue.Queue(maxsize=QUEUE_MAX)
+        self.inbox = Inbox(QUEUE_MAX)
         self.engines: dict[str, StreamEngine] = {}
         self._spec_cache: dict[str, StreamConfig | None] = {}
         state_dir = Path(cfg.state.dir)
@@ -133,6 +133,7 @@ class Daemon:
         self.link: MqttLink | None = None
         self.server: MetricsServer | None = None
         self.records_published = 0
+        self._last_trim = 0.0
 
     # ------------------------------------------------------------ topics
     @property
@@ -250,31 +251,35 @@ class Daemon:
 
     def round(self, timeout: float = 0.2) -> int:
         """Take what is queued (waiting up to ``timeout`` for the first message) and process it."""
-        msgs: list[Message] = []
-        try:
-            msgs.append(self.inbox.get(timeout=timeout))
-        except queue.Empty:
+        msgs = self.inbox.take(DRAIN, ROUND_BYTES, timeout)
+        if not msgs:
             self._gauges()
             return 0
-        size = len(msgs[0].payload)
-        while len(msgs) < DRAIN and size < ROUND_BYTES:
-            try:
-                m = self.inbox.get_nowait()
-            except queue.Empty:
-                break
-            msgs.append(m)
-            size += len(m.payload)
         self.process(msgs)
         self._gauges()
+        if sum(len(m.payload) for m in msgs) > ROUND_BYTES // 4:
+            self._trim_heap()
         return len(msgs)
 
+    def _trim_heap(self) -> None:
+        """Give memory freed after a large round back to the system (glibc keeps it
+        otherwise, and the daemon's resident size would stay at its peak).  At
+        most once every ten seconds; a no-op where malloc_trim does not exist."""
+        now = time.monotonic()
+        if now - self._last_trim < 10.0:
+            return
+        self._last_trim = now
+        trim = _malloc_trim()
+        if trim is not None:
+            trim(0)
+
     def _gauges(self) -> None:
-        self.metrics.queue_depth.set(self.inbox.qsize())
+        self.metrics.queue_depth.set(len(self.inbox))
         self.metrics.outbox_depth.set(len(self.outbox))
 
     def shutdown(self) -> int:
         """SIGTERM: process what is queued, snapshot, let the outbox drain, say offline, disconnect."""
-        self.log.info("stopping: processing %d queued message(s)", self.inbox.qsize())
+        self.log.info("stopping: processing %d queued message(s)", len(self.inbox))
         while self.round(timeout=0.0):
             pass
         self.snapshot()
@@ -323,6 +328,10 @@ class Daemon:
                 self._count_drop("internal_error", len(g.values))
                 self.log.exception("internal error while processing stream %s; its batch was set aside",
                                    _printable(name))
+        try:
+            self.outbox.sync()
+        except OSError as exc:
+            self.log.error("alert outbox could not be written to disk: %s", exc.strerror or exc)
         if self.link is not None:
             for m in msgs:
                 self.link.ack(m.mid, m.qos)
@@ -363,7 +372,9 @@ class Daemon:
         d["summary"] = alert_summary(rec)
         payload = json.dumps(d).encode()
         topic = f"{self.prefix}/alerts/{rec.stream}"
-        item = self.outbox.add(topic, payload, qos=self.cfg.alerts.qos)
+        # Forced to disk at the end of the round, before the round's messages
+        # are acknowledged: the publication need not wait for the disk.
+        item = self.outbox.add(topic, payload, qos=self.cfg.alerts.qos, sync=False)
         self._publish(topic, payload, qos=self.cfg.alerts.qos, retain=False, key=item.key)
         self.records_published += 1
         self.metrics.alert_delay.observe(max(0.0, time.time() - arrived))
@@ -457,6 +468,16 @@ class Daemon:
         self.log.info("configuration reloaded: %d stream(s) kept, %d restarted with new settings, "
                       "%d removed; filters added %d, removed %d", kept, renewed, dropped,
                       len(new_filters - old_filters), len(old_filters - new_filters))
+
+
+@functools.lru_cache(maxsize=1)
+def _malloc_trim() -> Any:
+    try:
+        import ctypes
+
+        return ctypes.CDLL("libc.so.6").malloc_trim
+    except (OSError, AttributeError):
+        return None
 
 
 def _stats(eng: StreamEngine) -> StreamStats:

@@ -17,13 +17,12 @@ from __future__ import annotations
 
 import logging
 import os
-import queue
 import ssl
 import threading
 import time
-from dataclasses import dataclass
+from collections import deque
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, NamedTuple
 from urllib.parse import urlsplit
 
 import paho.mqtt.client as paho
@@ -38,8 +37,7 @@ class BrokerError(RuntimeError):
     """A broker problem the operator must fix (bad URL, unreadable password file)."""
 
 
-@dataclass(frozen=True)
-class Message:
+class Message(NamedTuple):
     """An incoming message, as the daemon sees it."""
 
     topic: str
@@ -47,6 +45,47 @@ class Message:
     arrived: float  # wall-clock seconds when paho handed it over
     mid: int
     qos: int
+
+
+class Inbox:
+    """The bounded hand-over from paho's thread to the main thread.
+
+    A deque (its appends and pops are atomic) and an event that wakes the
+    consumer: cheaper per message than ``queue.Queue``, whose locks paho's
+    thread would otherwise take for every message.
+    """
+
+    def __init__(self, maxsize: int) -> None:
+        self.maxsize = maxsize
+        self._q: deque[Message] = deque()
+        self._ready = threading.Event()
+
+    def __len__(self) -> int:
+        return len(self._q)
+
+    def put(self, m: Message) -> bool:
+        """Add a message; False (nothing added) when the inbox is full."""
+        if len(self._q) >= self.maxsize:
+            return False
+        self._q.append(m)
+        if not self._ready.is_set():
+            self._ready.set()
+        return True
+
+    def take(self, max_items: int, max_bytes: int, timeout: float) -> list[Message]:
+        """Up to ``max_items`` messages (or about ``max_bytes`` of payload), waiting up to
+        ``timeout`` seconds for the first."""
+        self._ready.clear()
+        if not self._q and timeout > 0:
+            self._ready.wait(timeout)
+        out: list[Message] = []
+        size = 0
+        q = self._q
+        while q and len(out) < max_items and size < max_bytes:
+            m = q.popleft()
+            out.append(m)
+            size += len(m.payload)
+        return out
 
 
 def read_password(cfg: BrokerConfig, env: dict[str, str] | None = None) -> str | None:
@@ -88,7 +127,7 @@ class MqttLink:
     cfg : broker settings.
     subscriptions : topic filters to subscribe to (at ``cfg.qos``).
     status_topic : retained "online"/"offline" topic; "offline" is also the last will.
-    inbox : bounded queue that receives :class:`Message` objects.
+    inbox : bounded :class:`Inbox` that receives :class:`Message` objects.
     on_drop : called with a reason when an incoming message is dropped.
     on_published : called with the mid of each publication the broker acknowledged.
     on_connection : called with True/False when the connection comes up or goes down.
@@ -100,7 +139,7 @@ class MqttLink:
         *,
         subscriptions: list[str],
         status_topic: str,
-        inbox: "queue.Queue[Message]",
+        inbox: Inbox,
         on_drop: Callable[[str], None],
         on_published: Callable[[int], None],
         on_connection: Callable[[bool], None],
@@ -234,13 +273,11 @@ class MqttLink:
 
     def _handle_message(self, client: paho.Client, userdata: Any, msg: paho.MQTTMessage) -> None:
         try:
-            self._inbox.put_nowait(Message(topic=msg.topic, payload=bytes(msg.payload),
-                                           arrived=time.time(), mid=int(msg.mid), qos=int(msg.qos)))
-        except queue.Full:
-            # Acknowledge it anyway: an unacknowledged message would hold one of
-            # the broker's few in-flight slots and stall the whole flow.
-            self.ack(int(msg.mid), int(msg.qos))
-            self._on_drop("queue_full")
+            if not self._inbox.put(Message(msg.topic, msg.payload, time.time(), msg.mid, msg.qos)):
+                # Acknowledge it anyway: an unacknowledged message would hold one of
+                # the broker's few in-flight slots and stall the whole flow.
+                self.ack(int(msg.mid), int(msg.qos))
+                self._on_drop("queue_full")
         except Exception:  # a callback must never raise into paho's loop
             self._on_drop("internal")
 

@@ -134,6 +134,7 @@ class Outbox:
         self._log = logger if logger is not None else logging.getLogger(__name__)
         self._lock = threading.Lock()
         self._items: dict[str, OutboxItem] = {}  # always in key (= age) order
+        self._unsynced: list[str] = []  # written with sync=False, not yet forced to disk
         self.directory.mkdir(parents=True, exist_ok=True)
         self._next = self._load()
         with self._lock:
@@ -187,8 +188,14 @@ class Outbox:
         return self.directory / (key + _SUFFIX)
 
     # -------------------------------------------------------------- operations
-    def add(self, topic: str, payload: bytes, qos: int = 1, retain: bool = False) -> OutboxItem:
+    def add(self, topic: str, payload: bytes, qos: int = 1, retain: bool = False,
+            sync: bool = True) -> OutboxItem:
         """Store a record durably and return it; the oldest is discarded beyond ``max_items``.
+
+        With ``sync=False`` the record is written but not yet forced to disk;
+        :meth:`sync` does that for every such record at once (the daemon calls
+        it once per round, before it acknowledges the round's messages, so a
+        crash in between only means the messages are delivered again).
 
         Raises
         ------
@@ -207,18 +214,37 @@ class Outbox:
             item = OutboxItem(key=key, topic=topic, payload=bytes(payload), qos=qos,
                               retain=bool(retain))
             # Written under the lock so that items reach the disk and the list in key order.
-            self._write(item)
+            self._write(item, sync=sync)
             self._items[key] = item
             self._trim()
         return item
 
-    def _write(self, item: OutboxItem) -> None:
+    def sync(self) -> None:
+        """Force the records added with ``sync=False`` (and the directory) to disk."""
+        with self._lock:
+            keys, self._unsynced = self._unsynced, []
+            for key in keys:
+                if key not in self._items:
+                    continue  # already delivered and removed
+                try:
+                    fd = os.open(self._path(key), os.O_RDONLY)
+                except FileNotFoundError:
+                    continue
+                try:
+                    os.fsync(fd)
+                finally:
+                    os.close(fd)
+            if keys:
+                _fsync_dir(self.directory)
+
+    def _write(self, item: OutboxItem, sync: bool = True) -> None:
         fd, tmp = tempfile.mkstemp(prefix=_TMP_PREFIX, suffix=_TMP_SUFFIX, dir=self.directory)
         try:
             with open(fd, "wb") as f:
                 f.write(_encode(item))
                 f.flush()
-                os.fsync(f.fileno())
+                if sync:
+                    os.fsync(f.fileno())
             os.replace(tmp, self._path(item.key))
         except BaseException:
             try:
@@ -226,7 +252,10 @@ class Outbox:
             except OSError:
                 pass
             raise
-        _fsync_dir(self.directory)
+        if sync:
+            _fsync_dir(self.directory)
+        else:
+            self._unsynced.append(item.key)
 
     def _trim(self) -> None:
         while len(self._items) > self.max_items:

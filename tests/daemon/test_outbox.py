@@ -217,3 +217,14 @@ def test_concurrent_add_and_remove(tmp_path: Path) -> None:
     assert len(pending) == 80 == len(box)
     assert [i.key for i in pending] == sorted(i.key for i in pending)
     assert Outbox(tmp_path).pending() == pending
+
+
+def test_records_added_without_sync_are_forced_by_sync(tmp_path: Path) -> None:
+    box = Outbox(tmp_path / "ob")
+    a = box.add("sw/alerts/a", b"one", sync=False)
+    b = box.add("sw/alerts/b", b"two", sync=False)
+    box.remove(a.key)  # delivered before the round ended: nothing to force
+    box.sync()
+    again = Outbox(tmp_path / "ob")
+    assert [i.key for i in again.pending()] == [b.key]
+    assert again.pending()[0].payload == b"two"
