@@ -345,3 +345,17 @@ def test_arl_table_rows() -> None:
         assert med == cusum_run_length_quantile(0.5, 4.0, shift, 0.5)
         # the run length is right-skewed: median below the mean
         assert med <= arl + 1
+
+
+def test_quick_design_h_is_checked_against_the_chain() -> None:
+    # Siegmund's approximation (aimed 6% high) is used for the daemon's
+    # designs; the Brook & Evans chain must confirm the ARL it promises, never
+    # below the target and at most 7% above, over the range the CUSUM bank
+    # uses (k = 0.375 ... 1 for min_shift_sigma 1; smaller k for smaller shifts).
+    from shiftwatch.core.arl import quick_design_h
+
+    for arl0 in (1e3, 1e4, 604800.0, 1e7, 1e9):
+        for k in (0.1, 0.25, 0.375, 0.5, 0.75, 1.0, 1.5):
+            h = quick_design_h(arl0, k)
+            ratio = cusum_arl(k, h) / arl0
+            assert 1.0 - 1e-6 <= ratio <= 1.07, (arl0, k, h, ratio)

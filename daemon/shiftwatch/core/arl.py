@@ -527,6 +527,34 @@ def siegmund_h(arl0: float, k: float) -> float:
     return max(1e-3, 0.5 * (lo_s + hi_s))
 
 
+#: Siegmund's approximation overstates the ARL by up to about 6% for k <= 1
+#: (its h gives 0.946-0.996 of the target by the chain, k = 1 ... 0.375);
+#: aiming 6% higher keeps :func:`quick_design_h` on the safe side.
+SIEGMUND_MARGIN = 1.06
+
+
+@functools.lru_cache(maxsize=1024)
+def quick_design_h(arl0: float, k: float) -> float:
+    """An h whose two-sided in-control ARL is ``arl0`` to within +0% / +7%.
+
+    Siegmund's approximation aimed 6% high, with no Markov chain, where that
+    is accurate (h >= 4 and k <= 1, checked against the chain in the tests);
+    elsewhere :func:`design_h`.  Costs microseconds instead of milliseconds,
+    which matters to a daemon designing tests for thousands of streams.
+
+    Examples
+    --------
+    >>> h = quick_design_h(604800.0, 0.5)
+    >>> 1.0 <= cusum_arl(0.5, h) / 604800.0 <= 1.07
+    True
+    """
+    if k <= 1.0:
+        h = siegmund_h(arl0 * SIEGMUND_MARGIN, k)
+        if h >= 4.0:
+            return h
+    return design_h(arl0, k)
+
+
 def _design_h_cached(arl0: float, k: float) -> float:
     target = math.log(arl0)
     # ARL as h -> 0: one step signals with prob 2 P(Z > k).
