@@ -335,6 +335,7 @@ class StreamEngine:
         self._test_n_ref = 0.0
         self._prev_r = 0.0
         self._pending: tuple[float, float] | None = None  # held possible spike
+        self._prev_out = 0  # direction in which the last kept sample was an outlier (0: it was not)
         self._event: _Event | None = None
         self._unfolded = 0  # newest samples not yet folded into the baseline sums
         self._watch_kept = 0  # samples kept while watching since the baseline was set
@@ -475,6 +476,7 @@ class StreamEngine:
         self._pending = None
         self._sums.reset()
         self._unfolded = 0  # the warm-up samples are in the baseline already
+        self._prev_out = 0
         self._watch_kept = 0
         self._refine_block = 64
         self._next_refine = self.settings.baseline_guard + self._refine_block
@@ -498,7 +500,8 @@ class StreamEngine:
 
     # ----------------------------------------------------------- watching
     def _split_spikes(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], center: float,
-                      sigma: float, limit: int) -> tuple[FloatArray, FloatArray, list[Rejection], int]:
+                      sigma: float, limit: int
+                      ) -> tuple[FloatArray, FloatArray, list[Rejection], int, NDArray[np.int8] | None]:
         """Drop lone spikes from a segment and keep at most ``limit`` samples.
 
         A sample further than ``spike_sigma`` from ``center`` is a lone spike
@@ -507,8 +510,12 @@ class StreamEngine:
         A sample held from the previous call is put in front.
 
         Returns the kept times and values (at most ``limit``), the spikes
-        dropped before the last kept sample, and how many input samples were
-        used.  Counting kept samples, not input samples, makes the engine give
+        dropped before the last kept sample, how many input samples were
+        used, and for each kept sample the direction in which it was an
+        outlier (0 if it was not; None when no sample was an outlier).  The
+        caller records that of the last sample it consumes, so the next
+        sample is judged with its left neighbour however the stream was cut
+        into batches.  Counting kept samples, not input samples, makes the engine give
         the same result with the spikes present or taken out; stopping at a
         fixed count of kept samples makes it independent of batching.
         """
@@ -524,10 +531,12 @@ class StreamEngine:
         if not ((x > center + span).any() or (x < center - span).any()):
             # Fast path: no outlier at all.
             if x.shape[0] >= limit:
-                return t[:limit], x[:limit], [], limit - int(held_before)
-            return t, x, [], n_in
+                return t[:limit], x[:limit], [], limit - int(held_before), None
+            return t, x, [], n_in, None
         pos = np.arange(-int(held_before), n_in, dtype=np.intp)
-        lone, out_last = lone_outliers((x - center) / sigma, s.spike_sigma)
+        dev = (x - center) / sigma
+        lone, out_last = lone_outliers(dev, s.spike_sigma, prev_sign=self._prev_out)
+        osign = (np.sign(dev) * (np.abs(dev) > s.spike_sigma)).astype(np.int8)
         keep = ~lone
         held = False
         if out_last:
@@ -540,11 +549,11 @@ class StreamEngine:
             last = int(kept[limit - 1])
             kept = kept[:limit]
             spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in np.flatnonzero(lone[:last])]
-            return t[kept], x[kept], spikes, int(pos[last]) + 1
+            return t[kept], x[kept], spikes, int(pos[last]) + 1, osign[kept]
         if held:
             self._pending = (float(t[-1]), float(x[-1]))
         spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in np.flatnonzero(lone)]
-        return t[kept], x[kept], spikes, n_in
+        return t[kept], x[kept], spikes, n_in, osign[kept]
 
     def _watch(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
         b = self._baseline
@@ -554,8 +563,8 @@ class StreamEngine:
         # same sample however the stream is batched.
         # (After an event the count may already be past the refinement point:
         # then one sample is taken and the refinement follows at once.)
-        kt, kx, spikes, used = self._split_spikes(t, x, idx, b.level, b.sigma,
-                                                  max(self._next_refine - self._watch_kept, 1))
+        kt, kx, spikes, used, osign = self._split_spikes(t, x, idx, b.level, b.sigma,
+                                                         max(self._next_refine - self._watch_kept, 1))
         if kt.shape[0] == 0:
             result.rejected.extend(spikes)
             return used
@@ -571,6 +580,7 @@ class StreamEngine:
         trip = test.update(z)
         if trip < 0:
             result.rejected.extend(spikes)
+            self._prev_out = 0 if osign is None else int(osign[-1])
             self._prev_r = float(r[-1])
             self._append(kt, kx)
             self._count_watched(kt.shape[0])
@@ -580,6 +590,7 @@ class StreamEngine:
         t_trip = float(kt[trip])
         result.rejected.extend(r for r in spikes if r.time < t_trip)
         self._pending = None
+        self._prev_out = 0 if osign is None else int(osign[trip])
         self._prev_r = float(r[trip])
         self._append(kt[: trip + 1], kx[: trip + 1])
         self._watch_kept += trip + 1
@@ -668,8 +679,10 @@ class StreamEngine:
         # however the stream is batched.  The target was set at the trip:
         # enough samples for the new level to be known well, and never only
         # the samples that tripped the test.
-        kt, kx, spikes, used = self._split_spikes(t, x, idx, ev.level_after, b.sigma,
-                                                  ev.target_inputs - ev.consumed)
+        kt, kx, spikes, used, osign = self._split_spikes(t, x, idx, ev.level_after, b.sigma,
+                                                         ev.target_inputs - ev.consumed)
+        if kt.shape[0]:
+            self._prev_out = 0 if osign is None else int(osign[-1])
         result.rejected.extend(spikes)
         assert self._fitter is not None
         self._fitter.extend(kx, kt)
@@ -738,6 +751,7 @@ class StreamEngine:
                 "n_ref": self._test_n_ref, "state": self._test.get_state()},
             "prev_r": self._prev_r,
             "pending": None if self._pending is None else list(self._pending),
+            "prev_out": self._prev_out,
             "event": None if ev is None else {
                 "id": ev.id, "detected_at": ev.detected_at, "test": ev.test, "statistic": ev.statistic,
                 "threshold": ev.threshold, "target_inputs": ev.target_inputs,
@@ -786,6 +800,7 @@ class StreamEngine:
             self._prev_r = float(state["prev_r"])
             p = state["pending"]
             self._pending = None if p is None else (float(p[0]), float(p[1]))
+            self._prev_out = int(state["prev_out"])
             e = state["event"]
             self._event = None if e is None else _Event(
                 id=str(e["id"]), detected_at=float(e["detected_at"]), test=str(e["test"]),
@@ -870,13 +885,14 @@ def _grid(x: float, *, up: bool = True, step: float = 0.05) -> float:
     return math.exp(q * step)
 
 
-def lone_outliers(dev: FloatArray, limit: float) -> tuple[NDArray[np.bool_], bool]:
+def lone_outliers(dev: FloatArray, limit: float, prev_sign: int = 0) -> tuple[NDArray[np.bool_], bool]:
     """Flag lone outliers among standardised deviations.
 
     A deviation beyond ``limit`` is a lone outlier unless a neighbour deviates
     beyond it in the same direction (the start of a large step).  Returns the
     mask and whether the last sample is an outlier whose next neighbour is not
-    yet known (the caller may hold it).
+    yet known (the caller may hold it).  ``prev_sign`` is the direction in
+    which the sample before the first one was an outlier (0 if it was not).
 
     Examples
     --------
@@ -890,6 +906,8 @@ def lone_outliers(dev: FloatArray, limit: float) -> tuple[NDArray[np.bool_], boo
     sign = np.sign(dev)
     same_prev = np.zeros_like(out)
     same_prev[1:] = out[1:] & out[:-1] & (sign[1:] == sign[:-1])
+    if prev_sign:
+        same_prev[0] = bool(out[0]) and sign[0] == prev_sign
     same_next = np.zeros_like(out)
     same_next[:-1] = same_prev[1:]
     lone = out & ~same_prev & ~same_next
