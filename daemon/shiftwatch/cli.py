@@ -71,7 +71,11 @@ def cmd_replay(args: argparse.Namespace) -> int:
         records, problems, engines = replay_series(read.streams, cfg.settings_for, unit_for)
     out: TextIO
     if args.out:
-        out = open(args.out, "w", encoding="utf-8")
+        try:
+            out = open(args.out, "w", encoding="utf-8")
+        except OSError as exc:
+            _err(f"--out {args.out}: cannot write: {exc.strerror or exc}")
+            return EXIT_USAGE
     else:
         out = sys.stdout
     try:
@@ -134,7 +138,11 @@ def cmd_fit(args: argparse.Namespace) -> int:
     if int(good.sum()) < 5:
         _err(f"{args.csv}: stream {name!r} has {int(good.sum())} usable samples; a step fit needs at least 5")
         return EXIT_USAGE
-    fit = fit_step(v[good], t[good], level=args.level, min_segment=args.min_segment)
+    try:
+        fit = fit_step(v[good], t[good], level=args.level, min_segment=args.min_segment)
+    except ValueError as exc:
+        _err(f"fit: {exc}")
+        return EXIT_USAGE
     d = {
         "stream": name,
         "shift_at": format_time(fit.shift_at),
@@ -168,8 +176,8 @@ def cmd_design(args: argparse.Namespace) -> int:
     except ValueError as exc:
         _err(str(exc))
         return EXIT_USAGE
-    if not args.min_shift > 0:
-        _err(f"--min-shift must be positive, got {args.min_shift}")
+    if not 0 < args.min_shift <= 4:
+        _err(f"--min-shift must be above 0 and at most 4 sigma, got {args.min_shift}")
         return EXIT_USAGE
     d = design(args.min_shift, every, interval)
     if args.json:

@@ -257,9 +257,17 @@ class Config:
         return self.detection if sc is None else sc.detection
 
     def stream_for(self, stream: str) -> StreamConfig | None:
-        for sc in self.streams:
-            if topic_matches(sc.topic, stream):
-                return sc
+        """The stream entry whose filter matches the stream's topic.
+
+        A SenML stream is named ``topic/name``: when the name alone matches no
+        filter, shorter prefixes are tried (a SenML name may hold '/' too).
+        """
+        levels = stream.split("/")
+        for cut in range(len(levels), 0, -1):
+            topic = "/".join(levels[:cut])
+            for sc in self.streams:
+                if (cut == len(levels) or sc.format == "senml") and topic_matches(sc.topic, topic):
+                    return sc
         return None
 
 
@@ -400,6 +408,8 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
     if any(c in alerts["topic_prefix"] for c in "+#") or alerts["topic_prefix"].endswith("/"):
         raise ld.error("alerts.topic_prefix", "must be a plain topic without + or # and without a trailing /",
                        anodes.get("topic_prefix"))
+    if alerts["qos"] not in (0, 1, 2):
+        raise ld.error("alerts.qos", f"must be 0, 1 or 2, got {alerts['qos']}", anodes.get("qos"))
     metrics, mnodes = ld.section(nodes.get("metrics"), METRICS_KEYS, "metrics")
     host, sep, port = metrics["listen"].rpartition(":")
     if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:

@@ -284,9 +284,17 @@ class Daemon:
 
     def shutdown(self) -> int:
         """SIGTERM: process what is queued, snapshot, let the outbox drain, say offline, disconnect."""
-        self.log.info("stopping: processing %d queued message(s)", len(self.inbox))
-        while self.round(timeout=0.0):
-            pass
+        # Process what was queued when the stop came, no more: under load the
+        # inbox refills, and what arrives now is delivered again after the
+        # restart (it is not acknowledged).
+        left = len(self.inbox)
+        self.log.info("stopping: processing %d queued message(s)", left)
+        while left > 0:
+            msgs = self.inbox.take(min(left, DRAIN), ROUND_BYTES, 0.0)
+            if not msgs:
+                break
+            self.process(msgs)
+            left -= len(msgs)
         self.snapshot()
         deadline = time.monotonic() + 5.0
         while len(self.outbox) and self.link is not None and self.link.connected and time.monotonic() < deadline:
@@ -315,6 +323,9 @@ class Daemon:
             dec = decode(m.payload, spec.format, value_path=spec.value, time_path=spec.time,
                          max_bytes=self.cfg.broker.max_payload_bytes, now=m.arrived)
             for p in dec.problems:
+                if p.reason == "no_time":  # the reading is used, with its arrival time
+                    self.rlog.warning("decode:no_time", f"message on {_printable(m.topic)}: {p.message}", now)
+                    continue
                 self._count_drop(p.reason)
                 self.rlog.warning(f"decode:{p.reason}", f"message on {_printable(m.topic)} set aside: "
                                   f"{p.message}", now)

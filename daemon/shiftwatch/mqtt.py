@@ -157,6 +157,7 @@ class MqttLink:
         self._lock = threading.Lock()
         self._connected = False
         self._stopping = False
+        self._own_mids: set[int] = set()  # ids of the status messages this link publishes itself
         self._last_error: str | None = None
         self.host, self.port, tls = parse_url(cfg.url)
         v5 = cfg.mqtt_version == "5"
@@ -208,6 +209,7 @@ class MqttLink:
         self._stopping = True
         if self.connected:
             info = self.client.publish(self.status_topic, b"offline", qos=1, retain=True)
+            self._own_mids.add(int(info.mid))
             deadline = time.monotonic() + timeout
             while not info.is_published() and time.monotonic() < deadline and self.connected:
                 time.sleep(0.01)
@@ -254,7 +256,8 @@ class MqttLink:
                       "resumed" if session else "new")
         for f in self.subscriptions:
             client.subscribe(f, qos=self.cfg.qos)
-        client.publish(self.status_topic, b"online", qos=1, retain=True)
+        info = client.publish(self.status_topic, b"online", qos=1, retain=True)
+        self._own_mids.add(int(info.mid))
         self._on_connection(True)
 
     def _handle_connect_fail(self, client: paho.Client, userdata: Any) -> None:
@@ -283,6 +286,9 @@ class MqttLink:
 
     def _handle_publish(self, client: paho.Client, userdata: Any, mid: int, reason: Any,
                         properties: Any) -> None:
+        if int(mid) in self._own_mids:  # our status message, not the caller's
+            self._own_mids.discard(int(mid))
+            return
         try:
             self._on_published(int(mid))
         except Exception:

@@ -203,3 +203,17 @@ def test_design_prints_a_table_an_engineer_can_read(cli) -> None:
         assert f"  {shift}   " in out
     res = cli("design", "--false-alarm-every", "often")
     assert res.returncode == 2 and "not a duration: 'often'" in res.stderr
+
+
+def test_commands_explain_bad_arguments_without_a_traceback(cli, tmp_path: Path) -> None:
+    csv_path = tmp_path / "line.csv"
+    write_plant_csv(csv_path, n=300)
+    for args, message in (
+        (["replay", "--out", str(tmp_path / "no" / "such" / "dir.jsonl"), str(csv_path)], "cannot write"),
+        (["fit", str(csv_path), "--stream", "brackenfield/filler3/fill_g", "--level", "1.5"], "fit: "),
+        (["fit", str(csv_path), "--stream", "brackenfield/filler3/fill_g", "--min-segment", "5000"], "fit: "),
+        (["design", "--min-shift", "10"], "--min-shift must be above 0 and at most 4"),
+    ):
+        res = cli(*args)
+        assert res.returncode == 2, args
+        assert message in res.stderr and "Traceback" not in res.stderr, res.stderr

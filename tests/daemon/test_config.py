@@ -107,3 +107,23 @@ def test_schema_command_prints_the_shipped_schema(cli) -> None:
     res = cli("schema")
     assert res.returncode == 0
     assert json.loads(res.stdout) == json_schema()
+
+
+def test_senml_streams_find_their_entry_after_a_restart() -> None:
+    # A SenML stream is named topic/name; restore and reload look its entry up
+    # by that name, and names may hold '/' themselves.
+    cfg = load_config(ROOT / "config" / "shiftwatch.example.yaml")
+    for name in ("brackenfield/line2/oven/senml/zone3_temp", "brackenfield/line2/oven/senml/urn:x/zone4"):
+        spec = cfg.stream_for(name)
+        assert spec is not None and spec.format == "senml"
+    # ... but a JSON stream's topic with an extra level is not taken for it.
+    assert cfg.stream_for("brackenfield/line2/capper/torque/extra") is None
+
+
+@pytest.mark.parametrize("text, expected", [
+    ("alerts: {qos: 3}\n", "plant.yaml:1: alerts.qos: must be 0, 1 or 2, got 3"),
+    ("detection: {min_shift_sigma: 10}\n", "plant.yaml:1: detection.min_shift_sigma: must be at most 4"),
+    ("detection: {baseline_guard: 300}\n", "plant.yaml:1: detection.baseline_guard: must be below"),
+])
+def test_settings_that_would_break_detection_are_refused(text: str, expected: str) -> None:
+    assert error_of(text).startswith(expected)

@@ -43,8 +43,10 @@ def wait_metric(d, name: str, want: float, timeout: float = 15.0, **labels: str)
     deadline = time.monotonic() + timeout
     while True:
         text = d.scrape()
-        if metric_value(text, name, **labels) == want or time.monotonic() > deadline:
+        got = metric_value(text, name, **labels)
+        if got == want:
             return text
+        assert time.monotonic() < deadline, f"{name}{labels} is {got}, expected {want}"
         time.sleep(0.05)
 
 

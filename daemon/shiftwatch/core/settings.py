@@ -92,6 +92,12 @@ class DetectionSettings:
             bad("interval_level", f"must be in [0.5, 1), got {self.interval_level!r}")
         if not 0.0 < self.confirm_p_value < 1.0:
             bad("confirm_p_value", f"must be in (0, 1), got {self.confirm_p_value!r}")
+        if self.min_shift_sigma > 4.0:
+            bad("min_shift_sigma", f"must be at most 4 (larger steps are caught within a few samples "
+                f"at 4), got {self.min_shift_sigma}")
+        if self.baseline_guard >= self.window_samples - self.warmup_samples:
+            bad("baseline_guard", f"must be below window_samples - warmup_samples "
+                f"({self.window_samples - self.warmup_samples}), got {self.baseline_guard}")
         if self.spike_sigma <= self.clip_sigma:
             bad("spike_sigma", f"must exceed clip_sigma ({self.clip_sigma}), got {self.spike_sigma}")
         if self.min_sigma is not None and not (self.min_sigma > 0):
