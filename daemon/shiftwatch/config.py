@@ -19,7 +19,6 @@ from typing import TYPE_CHECKING, Any, Callable
 from shiftwatch.core.settings import TEST_NAMES, DetectionSettings
 from shiftwatch.core.timefmt import parse_duration
 
-
 if TYPE_CHECKING:
     import yaml
 

@@ -114,8 +114,8 @@ Examples
 
 from __future__ import annotations
 
-import hashlib
 import functools
+import hashlib
 import json
 import math
 import re

@@ -29,6 +29,8 @@ import zlib
 from dataclasses import dataclass
 from pathlib import Path
 
+from shiftwatch.fsutil import fsync_dir
+
 __all__ = ["OutboxItem", "Outbox"]
 
 _SUFFIX = ".msg"
@@ -78,14 +80,6 @@ def _decode(key: str, data: bytes) -> OutboxItem:
     if zlib.crc32(payload) != crc:
         raise ValueError("payload checksum mismatch")
     return OutboxItem(key=key, topic=topic, payload=payload, qos=qos, retain=retain)
-
-
-def _fsync_dir(directory: Path) -> None:
-    fd = os.open(directory, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
 
 
 class Outbox:
@@ -235,7 +229,7 @@ class Outbox:
                 finally:
                     os.close(fd)
             if keys:
-                _fsync_dir(self.directory)
+                fsync_dir(self.directory)
 
     def _write(self, item: OutboxItem, sync: bool = True) -> None:
         fd, tmp = tempfile.mkstemp(prefix=_TMP_PREFIX, suffix=_TMP_SUFFIX, dir=self.directory)
@@ -253,7 +247,7 @@ class Outbox:
                 pass
             raise
         if sync:
-            _fsync_dir(self.directory)
+            fsync_dir(self.directory)
         else:
             self._unsynced.append(item.key)
 

@@ -41,6 +41,8 @@ from typing import Any
 
 import numpy as np
 
+from shiftwatch.fsutil import fsync_dir
+
 __all__ = ["SCHEMA_VERSION", "SNAPSHOT_NAME", "StateStore"]
 
 #: Version of the snapshot layout; a snapshot with another version is set aside, not read.
@@ -151,14 +153,6 @@ def _parse(lines: Iterator[bytes]) -> tuple[dict[str, dict[str, Any]], dict[str,
     return streams, meta
 
 
-def _fsync_dir(directory: Path) -> None:
-    fd = os.open(directory, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
 class StateStore:
     """Saves and loads the engine states of all streams in one snapshot file.
 
@@ -216,7 +210,7 @@ class StateStore:
             except OSError:
                 pass
             raise
-        _fsync_dir(self.directory)
+        fsync_dir(self.directory)
 
     def load(self) -> tuple[dict[str, dict[str, Any]], dict[str, Any]]:
         """Read the snapshot.

@@ -22,7 +22,6 @@ from shiftwatch.broker import MosquittoBroker, free_port
 from shiftwatch.mqtt import PlainClient
 
 
-
 @pytest.fixture
 def broker(tmp_path: Path) -> Iterator[MosquittoBroker]:
     try:

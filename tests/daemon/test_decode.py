@@ -29,7 +29,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from shiftwatch import decode as decode_module
-from shiftwatch.decode import REASONS, DecodeProblem, Decoded, Reading, decode, stream_name
+from shiftwatch.decode import REASONS, Decoded, DecodeProblem, Reading, decode, stream_name
 
 NOW = 1764633600.0  # 2025-12-02T00:00:00Z, the arrival time used throughout
 SENML_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9\-:./_]*")  # RFC 8428 section 4.5.1

@@ -35,8 +35,13 @@ from typing import Any, NamedTuple, Sequence
 import numpy as np
 from numpy.typing import NDArray
 
-from shiftwatch.core.baseline import (Baseline, BaselineSums, estimate_baseline,
-                                      estimation_adjusted_arl, sigma_floor)
+from shiftwatch.core.baseline import (
+    Baseline,
+    BaselineSums,
+    estimate_baseline,
+    estimation_adjusted_arl,
+    sigma_floor,
+)
 from shiftwatch.core.screen import screen_samples
 from shiftwatch.core.sequential import SequentialTest
 from shiftwatch.core.settings import DetectionSettings
