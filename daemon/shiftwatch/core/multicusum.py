@@ -26,7 +26,7 @@ same trip indices as ``CusumTest`` bit for bit.
 Design and calibration
 ----------------------
 :meth:`MultiCusumTest.design` gives every chart the same individual
-two-sided in-control ARL ``A`` (so ``h_j = design_h(A, k_j)``) and chooses
+two-sided in-control ARL ``A`` (so ``h_j = quick_design_h(A, k_j)``) and chooses
 ``A`` so that the JOINT in-control ARL of the bank is the requested one.
 The charts watch the same data, so their alarms are strongly correlated and
 the joint ARL has no closed form; it lies between ``A / m`` (Bonferroni,
@@ -42,7 +42,7 @@ from typing import Any, ClassVar, Sequence
 
 import numpy as np
 
-from shiftwatch.core.arl import design_h, quick_design_h, siegmund_h
+from shiftwatch.core.arl import quick_design_h, siegmund_h
 from shiftwatch.core.cusum import BLOCK
 from shiftwatch.core.sequential import FloatArray, SequentialTest
 
@@ -175,7 +175,7 @@ class MultiCusumTest(SequentialTest):
 
         Charts watch the shifts ``min_shift * multiples`` with
         ``k = shift / 2``; every chart gets the same individual two-sided ARL
-        ``A`` and ``h = design_h(A, k)``.  For the default multiples ``A``
+        ``A`` and ``h = quick_design_h(A, k)``.  For the default multiples ``A``
         solves ``A * joint_arl_ratio(A, min_shift) = 1.03 * arl0`` by
         bisection (the 3% margin makes the real ARL slightly higher than
         requested).  For other multiples there is no calibration and the
