@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import csv
 import math
-from collections import Counter
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -306,21 +305,6 @@ def read_long_csv(paths: Iterable[str | Path]) -> ReadResult:
     return ReadResult(streams=streams, problems=problems, rows=rows)
 
 
-@dataclass
-class ReplayResult:
-    records: list[AlertRecord]
-    problems: list[str]
-    engines: dict[str, StreamEngine]
-    rows: int
-
-    @property
-    def rejected(self) -> Counter[str]:
-        total: Counter[str] = Counter()
-        for e in self.engines.values():
-            total.update(e.rejected_total)
-        return total
-
-
 def replay_series(series: dict[str, StreamSeries], settings_for: Callable[[str], DetectionSettings],
                   unit_for: Callable[[str], str | None] = lambda s: None,
                   progress: Callable[[int], None] | None = None) -> tuple[list[AlertRecord], list[str], dict[str, StreamEngine]]:
@@ -345,11 +329,3 @@ def replay_series(series: dict[str, StreamSeries], settings_for: Callable[[str],
                 progress(min(BATCH, t.shape[0] - a))
     records.sort(key=lambda r: (r.as_of, r.stream, r.phase != "detected"))
     return records, problems, engines
-
-
-def replay_files(paths: Iterable[str | Path], settings_for: Callable[[str], DetectionSettings],
-                 unit_for: Callable[[str], str | None] = lambda s: None) -> ReplayResult:
-    """Read the files and replay them (see :func:`read_long_csv`, :func:`replay_series`)."""
-    read = read_long_csv(paths)
-    records, problems, engines = replay_series(read.streams, settings_for, unit_for)
-    return ReplayResult(records=records, problems=read.problems + problems, engines=engines, rows=read.rows)
