@@ -13,6 +13,7 @@ from __future__ import annotations
 import functools
 import json
 import logging
+import secrets
 import signal
 import sys
 import threading
@@ -31,6 +32,7 @@ from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
 from shiftwatch.core.timefmt import format_time
 from shiftwatch.decode import REASONS as DECODE_REASONS
 from shiftwatch.decode import decode, stream_name
+from shiftwatch.journal import Journal, JournalGroup
 from shiftwatch.metrics import Metrics, MetricsServer, StreamStats
 from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
 from shiftwatch.notify import sd_notify, watchdog_interval
@@ -122,6 +124,8 @@ class Daemon:
         self._spec_cache: dict[str, StreamConfig | None] = {}
         state_dir = Path(cfg.state.dir)
         self.store = StateStore(state_dir / "snapshots", logger=self.log)
+        # The journal of samples processed since the last snapshot (see shiftwatch.journal).
+        self.journal = Journal(state_dir / "snapshots", logger=self.log) if cfg.state.journal else None
         self.outbox = Outbox(state_dir / "outbox", max_items=cfg.alerts.outbox_max, logger=self.log)
         self._levels_sent: dict[str, tuple[str, float | None, float | None]] = {}
         self._lock = threading.Lock()
@@ -173,8 +177,14 @@ class Daemon:
 
     # ------------------------------------------------------------- start
     def restore(self) -> None:
-        """Load the last snapshot: each stream carries on without a second warm-up."""
-        streams, meta = self.store.load()
+        """Load the last snapshot (each stream carries on without a second warm-up),
+        then replay the journal of what was processed after it."""
+        try:
+            streams, meta = self.store.load()
+        except OSError as exc:
+            self.log.error("state snapshot in %s cannot be read (%s); streams warm up again",
+                           self.store.directory, exc.strerror or exc)
+            streams, meta = {}, {}
         restored = 0
         for name, state in streams.items():
             spec = self.cfg.stream_for(name)
@@ -191,6 +201,36 @@ class Daemon:
         if streams:
             self.log.info("restored %d stream(s) from the snapshot of %s", restored,
                           format_time(float(meta.get("saved_at", 0.0))))
+        token = meta.get("journal")
+        self._replay_journal(token if isinstance(token, str) else "none")
+
+    def _replay_journal(self, token: str) -> None:
+        """Feed the engines the rounds journaled on top of the snapshot.  Their alert
+        records are not published again: they reached the outbox before the round
+        was journaled."""
+        if self.journal is None:
+            return
+        try:
+            rounds = self.journal.open(token)
+        except OSError as exc:
+            self._journal_failed(exc)
+            return
+        samples = 0
+        for groups in rounds:
+            for g in groups:
+                spec = self.cfg.stream_for(g.stream)
+                eng = None if spec is None else self.engine_for(g.stream, spec, g.unit)
+                if eng is None:
+                    continue
+                try:
+                    eng.process(g.times, g.values, g.arrived)
+                except Exception:  # as in process(): one stream's batch, never the daemon
+                    self.log.exception("internal error while replaying stream %s", _printable(g.stream))
+                samples += len(g.values)
+        for name, eng in self.engines.items():
+            self.metrics.update_stream(name, _stats(eng))
+        if rounds:
+            self.log.info("replayed %d sample(s) in %d round(s) from the journal", samples, len(rounds))
 
     def start(self) -> None:
         """Everything up to the point where messages flow: state, metrics, broker, outbox."""
@@ -296,6 +336,8 @@ class Daemon:
             self.process(msgs)
             left -= len(msgs)
         self.snapshot()
+        if self.journal is not None:
+            self.journal.close()
         deadline = time.monotonic() + 5.0
         while len(self.outbox) and self.link is not None and self.link.connected and time.monotonic() < deadline:
             time.sleep(0.02)
@@ -337,9 +379,12 @@ class Daemon:
                 g.times.append(r.time if r.time is not None else m.arrived)
                 g.values.append(r.value)
                 g.arrived.append(m.arrived)
+        fed: list[JournalGroup] = []
         for name, g in groups.items():
             try:
-                self._run_stream(name, g, now)
+                jg = self._run_stream(name, g, now)
+                if jg is not None:
+                    fed.append(jg)
             except Exception:  # a defect must cost one stream's batch, never the daemon
                 self._count_drop("internal_error", len(g.values))
                 self.log.exception("internal error while processing stream %s; its batch was set aside",
@@ -347,7 +392,14 @@ class Daemon:
         try:
             self.outbox.sync()
         except OSError as exc:
-            self.log.error("alert outbox could not be written to disk: %s", exc.strerror or exc)
+            self._outbox_failed(exc, now)
+        # The round's samples reach the journal before their acknowledgements
+        # leave, so a sample the broker forgets is never one the engines forget.
+        if fed and self.journal is not None and self.journal.is_open:
+            try:
+                self.journal.append(fed)
+            except OSError as exc:
+                self._journal_failed(exc)
         if self.link is not None:
             for m in msgs:
                 self.link.ack(m.mid, m.qos)
@@ -362,15 +414,17 @@ class Daemon:
                           spec.detection.warmup_samples)
         return eng
 
-    def _run_stream(self, name: str, g: _Group, now: float) -> None:
+    def _run_stream(self, name: str, g: _Group, now: float) -> JournalGroup | None:
         eng = self.engine_for(name, g.spec, g.unit)
         if eng is None:
             self._count_drop("stream_cap", len(g.values))
             self.rlog.warning("stream_cap", f"stream limit of {self.cfg.metrics.max_streams} reached; "
                               f"samples of new stream {_printable(name)} set aside", now)
-            return
+            return None
         times = np.asarray(g.times, dtype=np.float64)
-        res = eng.process(times, np.asarray(g.values, dtype=np.float64))
+        values = np.asarray(g.values, dtype=np.float64)
+        arrived = np.asarray(g.arrived, dtype=np.float64)
+        res = eng.process(times, values, arrived)
         for rej in res.rejected:
             if rej.reason != "spike":
                 self.rlog.warning(f"sample:{name}:{rej.reason}",
@@ -381,6 +435,7 @@ class Daemon:
             self.emit(rec, arrived)
         self._publish_level(name, eng)
         self.metrics.update_stream(name, _stats(eng))
+        return JournalGroup(name, g.unit, times, values, arrived)
 
     def emit(self, rec: AlertRecord, arrived: float) -> None:
         """Publish an alert record (through the outbox) and log its summary."""
@@ -389,9 +444,17 @@ class Daemon:
         payload = json.dumps(d).encode()
         topic = f"{self.prefix}/alerts/{rec.stream}"
         # Forced to disk at the end of the round, before the round's messages
-        # are acknowledged: the publication need not wait for the disk.
-        item = self.outbox.add(topic, payload, qos=self.cfg.alerts.qos, sync=False)
-        self._publish(topic, payload, qos=self.cfg.alerts.qos, retain=False, key=item.key)
+        # are acknowledged: the publication need not wait for the disk.  When
+        # the disk refuses it, the record is still published (paho keeps it in
+        # memory until the broker acknowledges it).
+        key: str | None = None
+        try:
+            key = self.outbox.add(topic, payload, qos=self.cfg.alerts.qos, sync=False).key
+            if not self.outbox.on_disk:
+                self.metrics.outbox_failures.inc()
+        except OSError as exc:
+            self._outbox_failed(exc, time.time())
+        self._publish(topic, payload, qos=self.cfg.alerts.qos, retain=False, key=key)
         self.records_published += 1
         self.metrics.alert_delay.observe(max(0.0, time.time() - arrived))
         self.log.info("%s [id %s]", d["summary"], rec.id)
@@ -425,7 +488,10 @@ class Daemon:
             if mid in self._mid_key:
                 key = self._mid_key.pop(mid)
                 if key is not None:
-                    self.outbox.remove(key)
+                    try:
+                        self.outbox.remove(key)
+                    except OSError as exc:
+                        self._outbox_failed(exc, time.time())
             else:
                 self._early_acks[mid] = None
                 while len(self._early_acks) > 1000:
@@ -437,17 +503,39 @@ class Daemon:
     def _count_drop(self, reason: str, n: int = 1) -> None:
         self.metrics.messages_dropped.labels(reason).inc(n)
 
+    def _outbox_failed(self, exc: OSError, now: float) -> None:
+        self.metrics.outbox_failures.inc()
+        self.rlog.warning("outbox", f"alert outbox in {self.outbox.directory} could not be written "
+                          f"({exc.strerror or exc}); records are still published, but one not yet "
+                          f"acknowledged by the broker would not survive a restart", now)
+
+    def _journal_failed(self, exc: OSError) -> None:
+        self.metrics.journal_failures.inc()
+        if self.journal is not None:
+            self.journal.close()
+        self.log.error("sample journal in %s could not be written (%s); until the next good snapshot "
+                       "a crash loses the samples processed since the last one", self.store.directory,
+                       exc.strerror or exc)
+
     # --------------------------------------------------------- snapshots
     def snapshot(self) -> bool:
+        """Save every engine's state; a new journal starts with the snapshot."""
+        token = secrets.token_hex(8)
         try:
             self.store.save({n: e.get_state() for n, e in self.engines.items()},
-                            {"saved_at": time.time()})
+                            {"saved_at": time.time(), "journal": token})
         except OSError as exc:
+            # The journal still belongs to the previous snapshot: it keeps growing.
             self.metrics.snapshot_failures.inc()
             self.log.error("snapshot to %s failed: %s; detection carries on", self.cfg.state.dir,
                            exc.strerror or exc)
             return False
         self.metrics.snapshots.inc()
+        if self.journal is not None:
+            try:
+                self.journal.restart(token)
+            except OSError as exc:
+                self._journal_failed(exc)
         return True
 
     # ------------------------------------------------------------ reload

@@ -264,6 +264,8 @@ class Metrics:
     outbox_depth : alert records waiting for the broker's acknowledgement.
     snapshot_failures : state snapshots that could not be written.
     snapshots : state snapshots written.
+    outbox_failures : alert records or outbox updates that could not be written to disk.
+    journal_failures : rounds of samples that could not be appended to the journal.
     """
 
     def __init__(self, registry: CollectorRegistry | None = None) -> None:
@@ -294,6 +296,14 @@ class Metrics:
             registry=reg)
         self.snapshots = Counter(
             "shiftwatch_snapshots", "State snapshots written.", registry=reg)
+        self.outbox_failures = Counter(
+            "shiftwatch_outbox_failures",
+            "Alert records (or outbox updates) that could not be written to disk; the records "
+            "were still published.", registry=reg)
+        self.journal_failures = Counter(
+            "shiftwatch_journal_failures",
+            "Rounds of samples that could not be journaled (journaling resumes with the next "
+            "snapshot).", registry=reg)
         reg.register(_StreamCollector(self))
 
     def update_stream(self, stream: str, stats: StreamStats) -> None:

@@ -383,13 +383,20 @@ class StreamEngine:
         return self.settings.test
 
     # ------------------------------------------------------------- feeding
-    def process(self, times: Sequence[Any] | FloatArray, values: Sequence[Any] | FloatArray) -> BatchResult:
+    def process(self, times: Sequence[Any] | FloatArray, values: Sequence[Any] | FloatArray,
+                arrived: float | Sequence[float] | FloatArray | None = None) -> BatchResult:
         """Feed a batch of samples (times in epoch seconds) and collect the records.
 
         Bad samples are rejected with reason codes in the result; this method
-        does not raise on bad data.
+        does not raise on bad data.  ``arrived`` is the receiving clock's time
+        of each sample (or one for the batch): with it, times further ahead of
+        or behind it than the settings' ``max_time_ahead`` / ``max_time_behind``
+        are rejected (``time_ahead``, ``time_behind``).  Without it (replay),
+        those limits do not apply.
         """
-        scr = screen_samples(times, values, self._last_time)
+        st = self.settings
+        scr = screen_samples(times, values, self._last_time, arrived=arrived,
+                             max_ahead=st.max_time_ahead, max_behind=st.max_time_behind)
         raw_t = np.asarray(times, dtype=object) if scr.rejected else None
         result = BatchResult(rejected=[Rejection(i, r, _time_or_nan(raw_t, i)) for i, r in scr.rejected])
         t, x = scr.times, scr.values
