@@ -81,7 +81,13 @@ class MosquittoBroker:
             "max_queued_messages 1000000",
             "max_inflight_messages 20",
             "log_dest none",
-        ] + list(self.extra)
+        ]
+        if os.geteuid() == 0:
+            # Started as root, Mosquitto would drop to its own user, which cannot
+            # write the persistence file into our directory: sessions and queued
+            # messages would then not survive a broker restart.
+            lines.append("user root")
+        lines += list(self.extra)
         conf.write_text("\n".join(lines) + "\n")
         self.process = subprocess.Popen([self.binary, "-c", str(conf)], stdout=subprocess.DEVNULL,
                                         stderr=subprocess.PIPE)

@@ -423,8 +423,8 @@ class Daemon:
             return None
         times = np.asarray(g.times, dtype=np.float64)
         values = np.asarray(g.values, dtype=np.float64)
-        arrived = np.asarray(g.arrived, dtype=np.float64)
-        res = eng.process(times, values, arrived)
+        arrivals = np.asarray(g.arrived, dtype=np.float64)
+        res = eng.process(times, values, arrivals)
         for rej in res.rejected:
             if rej.reason != "spike":
                 self.rlog.warning(f"sample:{name}:{rej.reason}",
@@ -435,7 +435,7 @@ class Daemon:
             self.emit(rec, arrived)
         self._publish_level(name, eng)
         self.metrics.update_stream(name, _stats(eng))
-        return JournalGroup(name, g.unit, times, values, arrived)
+        return JournalGroup(name, g.unit, times, values, arrivals)
 
     def emit(self, rec: AlertRecord, arrived: float) -> None:
         """Publish an alert record (through the outbox) and log its summary."""
