@@ -95,6 +95,7 @@ class Tally:
     shifts_with_two_ids: int = 0
     records_off_any_shift: int = 0
     snapshots_checked: int = 0
+    snapshots_restored: int = 0
     snapshots_corrupt: int = 0
     temp_files_seen: int = 0
     journal_rounds_seen: int = 0
@@ -107,7 +108,7 @@ class KillRun:
 
     def __init__(self, workdir: Path, command: list[str], *, plan: Plan | None = None,
                  kills: int = 3, journal: bool = True, snapshot_every: str = "1s",
-                 kill_seed: int = 7) -> None:
+                 kill_seed: int = 7, lifetime: tuple[float, float] = (0.3, 2.5)) -> None:
         self.workdir = Path(workdir)
         self.command = command
         self.plan = plan or Plan()
@@ -115,6 +116,7 @@ class KillRun:
         self.journal = journal
         self.snapshot_every = snapshot_every
         self.rng = random.Random(kill_seed)
+        self.lifetime = lifetime
         self.state = self.workdir / "state"
         self.port = free_port()
         self.cfg = self.workdir / "shiftwatch.yaml"
@@ -173,9 +175,10 @@ class KillRun:
         shutil.copytree(snap_dir, copy)
         names = sorted(p.name for p in copy.iterdir())
         self.tally.temp_files_seen += sum(1 for n in names if n.endswith(".tmp"))
-        _streams, meta = StateStore(copy).load()
+        streams, meta = StateStore(copy).load()
         after = sorted(p.name for p in copy.iterdir())
         self.tally.snapshots_checked += 1
+        self.tally.snapshots_restored += bool(streams)
         if any(".corrupt-" in n or ".unknown-" in n for n in after) or \
                 (SNAPSHOT_NAME in names and not meta):
             self.tally.snapshots_corrupt += 1
@@ -215,12 +218,13 @@ class KillRun:
         done = threading.Event()
         thread = threading.Thread(target=self._publish_all, args=(pub, done), daemon=True)
         thread.start()
-        span = self.plan.samples / self.plan.rate
-        moments = sorted(self.rng.uniform(0.05 * span, 0.9 * span) for _ in range(self.kills))
-        for at in moments:
-            left = t_start + at - time.monotonic()
-            if left > 0:
-                time.sleep(left)
+        # Each run of the daemon lives a random time (from its connection to
+        # the broker) before it is killed: some die before their first
+        # snapshot, some just after one, some in the middle of a round.
+        while self.tally.kills < self.kills and not done.is_set():
+            time.sleep(self.rng.uniform(*self.lifetime))
+            if done.is_set():
+                break
             assert self.proc is not None
             self.proc.send_signal(signal.SIGKILL)
             self.proc.wait()
