@@ -20,7 +20,8 @@ Parts:
    applied independently here.
 
 Targets (exit status 1 when one is missed): with the journal no sample lost,
-no snapshot corrupt, every shift alerted, duplicates share their id; journal
+no snapshot corrupt, every shift alerted, duplicates share their id; without
+it at most one snapshot interval of samples lost per kill; journal
 throughput ratio at least 0.8; every alert delivered on a read-only or full
 state directory; clock rejections exactly as the policy says.
 """
@@ -358,7 +359,9 @@ def main() -> int:
                       and t.shifts_with_two_ids == 0 and t.records_off_any_shift == 0
                       and not k.get("traceback-True"))
             else:
-                ok = per_kill <= bound and t.snapshots_corrupt == 0 and t.shifts_missed == 0
+                # The reference: at most one snapshot interval lost per kill; shifts in a lost
+                # span are alerted late, at the first sample after it (counted, not a target).
+                ok = per_kill <= bound and t.snapshots_corrupt == 0
             rows.append((f"SIGKILL, {name}", text, ok))
         log("journal cost ...")
         c = part_journal_cost(tmp, 2 if a.quick else 3, 100, 20000 if a.quick else 40000)
