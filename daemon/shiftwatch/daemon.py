@@ -572,6 +572,9 @@ class Daemon:
         self.log.info("configuration reloaded: %d stream(s) kept, %d restarted with new settings, "
                       "%d removed; filters added %d, removed %d", kept, renewed, dropped,
                       len(new_filters - old_filters), len(old_filters - new_filters))
+        # The journal holds samples fed to the engines as they were: a snapshot
+        # now keeps it from being replayed into engines made for other settings.
+        self.snapshot()
 
 
 @functools.lru_cache(maxsize=1)
