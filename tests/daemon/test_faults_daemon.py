@@ -47,7 +47,8 @@ class Piped:
         self.port = port
         self.lines: list[str] = []
         self.proc = subprocess.Popen(command + ["run", "--config", str(config)], stdout=subprocess.PIPE,
-                                     stderr=subprocess.STDOUT, text=True, preexec_fn=preexec_fn)
+                                     stderr=subprocess.STDOUT, text=True,
+                                     preexec_fn=preexec_fn)  # noqa: PLW1509 - a syscall or two, no locks
         self._reader = threading.Thread(target=self._read, daemon=True)
         self._reader.start()
         if not wait_until(lambda: "connected to broker" in self.text() or self.proc.poll() is not None):
@@ -169,11 +170,13 @@ def test_alert_records_in_the_outbox_survive_a_kill_while_the_broker_is_down(
 
 
 # ------------------------------------------------------- state directory faults
+_LIBC = ctypes.CDLL(None, use_errno=True)  # loaded here: the child after fork only calls it
+
+
 def _without_dac_override() -> None:
     """preexec_fn: drop the capabilities that let root write where modes forbid it."""
-    libc = ctypes.CDLL(None, use_errno=True)
     for cap in (1, 2, 3):  # CAP_DAC_OVERRIDE, CAP_DAC_READ_SEARCH, CAP_FOWNER
-        if libc.prctl(24, cap, 0, 0, 0) != 0:  # PR_CAPBSET_DROP
+        if _LIBC.prctl(24, cap, 0, 0, 0) != 0:  # PR_CAPBSET_DROP
             raise OSError(ctypes.get_errno(), "prctl(PR_CAPBSET_DROP)")
 
 
