@@ -92,22 +92,28 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
         _err(str(exc))
         return EXIT_USAGE
 
-    observe = None if report is None else report.observe
+    if cfg is None:
+        from shiftwatch.core.settings import DetectionSettings
+
+        defaults = DetectionSettings()
+
+        def settings_for(stream: str) -> Any:
+            return defaults
+
+        def unit_for(stream: str) -> str | None:
+            return None
+    else:
+        settings_for = cfg.settings_for
+
+        def unit_for(stream: str) -> str | None:
+            sc = cfg.stream_for(stream)
+            return None if sc is None else sc.unit
+
     bar = progress_bar(sum(len(s.times) for s in read.streams.values()), "replay", "sample")
     try:
-        if cfg is None:
-            from shiftwatch.core.settings import DetectionSettings
-
-            defaults = DetectionSettings()
-            records, problems, engines = replay_series(
-                read.streams, lambda name: defaults, progress=bar and bar.update, observe=observe)
-        else:
-            def unit_for(stream: str) -> str | None:
-                sc = cfg.stream_for(stream)
-                return None if sc is None else sc.unit
-
-            records, problems, engines = replay_series(
-                read.streams, cfg.settings_for, unit_for, progress=bar and bar.update, observe=observe)
+        records, problems, engines = replay_series(
+            read.streams, settings_for, unit_for, progress=bar and bar.update,
+            observe=None if report is None else report.observe)
     finally:
         if bar is not None:
             bar.close()
@@ -150,6 +156,7 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
             path = report.write(
                 samples={name: e.samples_total for name, e in engines.items()},
                 rejected={name: dict(e.rejected_total) for name, e in engines.items()},
+                units={name: unit_for(name) for name in engines},
                 sources=[str(p) for p in args.csv], unreadable_rows=len(read.problems),
                 settings_note=("default detection settings" if args.config is None
                                else f"detection settings from {args.config}"),

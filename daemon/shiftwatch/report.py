@@ -403,6 +403,7 @@ class ReplayReport:
 
     def write(self, *, samples: dict[str, int], rejected: dict[str, dict[str, int]],
               sources: Sequence[str], settings_note: str, unreadable_rows: int = 0,
+              units: dict[str, str | None] | None = None,
               progress: Callable[[int], None] | None = None) -> Path:
         """Render the charts and write ``report.html``; return its path.
 
@@ -413,12 +414,15 @@ class ReplayReport:
         sources : the replayed files.
         settings_note : which detection settings were used, in a few words.
         unreadable_rows : rows of the files that could not be read at all.
+        units : unit per stream, when known (else the unit of its records).
         progress : called with 1 after each chart.
         """
         for trace in self.traces.values():
             trace.close()
         names = sorted(set(samples) | set(self.traces))
         traces = [self.traces.get(n) or StreamTrace(n, **self._options) for n in names]
+        for trace in traces:
+            trace.unit = (units or {}).get(trace.name) or trace.unit
         try:
             with open(self._tmp, "w", encoding="utf-8") as out:
                 out.write(_head(sources, settings_note))

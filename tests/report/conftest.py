@@ -12,6 +12,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
+from typing import Callable
 
 import numpy as np
 import pytest
@@ -68,4 +69,11 @@ def write_plant_csv(path: Path, *, n: int = N, random_state: int = 2026) -> Plan
 
 @pytest.fixture
 def plant_csv(tmp_path: Path) -> PlantCsv:
+    """The line's CSV with the default schedule."""
     return write_plant_csv(tmp_path / "brackenfield-line2.csv")
+
+
+@pytest.fixture
+def write_plant() -> Callable[..., PlantCsv]:
+    """:func:`write_plant_csv`, for tests that need another length."""
+    return write_plant_csv
