@@ -36,6 +36,7 @@ import html
 import io
 import math
 import os
+import struct
 import tempfile
 from dataclasses import dataclass
 from datetime import timezone
@@ -610,9 +611,10 @@ def render_png(trace: StreamTrace) -> tuple[bytes, int, int]:
     fig = stream_figure(trace)
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=96, metadata={"Software": None})
-    width, height = (int(round(d)) for d in fig.get_size_inches() * fig.dpi)
     fig.clear()
-    return buf.getvalue(), width, height
+    png = buf.getvalue()
+    width, height = struct.unpack(">II", png[16:24])  # the IHDR chunk (PNG specification, section 11.2.2)
+    return png, int(width), int(height)
 
 
 # -------------------------------------------------------------------- HTML
@@ -628,7 +630,9 @@ th { background: #f2f2f2; }
 td.n { text-align: right; font-variant-numeric: tabular-nums; }
 tbody th { font-family: ui-monospace, monospace; font-weight: normal; background: #fafafa; }
 tfoot td { font-weight: bold; background: #f7f7f7; }
-.confirmed { color: #c51b7d; } .dismissed { color: #6b6b6b; } .open { color: #6a3d9a; }
+table.events td { white-space: nowrap; }
+td.confirmed { color: #c51b7d; } td.dismissed { color: #6b6b6b; } td.open { color: #6a3d9a; }
+tr.dismissed td { color: #6b6b6b; }
 .caution { border-left: 4px solid #d95f02; padding: 0.3rem 0.7rem; background: #fff6ee; }
 img { max-width: 100%; height: auto; border: 1px solid #e0e0e0; }
 footer { margin-top: 2rem; font-size: 0.8rem; color: #555; }
@@ -641,6 +645,14 @@ def _e(x: object) -> str:
 
 def _signed_duration(seconds: float) -> str:
     return ("-" if seconds < 0 else "") + format_duration(abs(seconds))
+
+
+def _interval_text(rec: AlertRecord) -> str:
+    """The shift-time interval; its end without the date when that is the same."""
+    low, high = format_time(rec.shift_at_low), format_time(rec.shift_at_high)
+    if low[:11] == high[:11]:
+        high = high[11:]
+    return f"{low} to {high} ({rec.interval_level:.0%})"
 
 
 def _head(sources: Sequence[str], settings_note: str) -> str:
@@ -715,8 +727,7 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
             out.append(
                 f'<tr class="event {ev.outcome}" data-id="{_e(r.id)}"><td class="n">{ev.number}</td>'
                 f'<td class="{ev.outcome}">{ev.outcome}</td><td>{format_time(r.shift_at)}</td>'
-                f"<td>{format_time(r.shift_at_low)} to {format_time(r.shift_at_high)} "
-                f"({r.interval_level:.0%})</td>"
+                f"<td>{_interval_text(r)}</td>"
                 f'<td class="n">{r.delta:+.4g}{_e(unit)}</td>'
                 f'<td class="n" data-sigma="{r.delta_sigma:.3f}">{r.delta_sigma:+.2f}</td>'
                 f"<td>{format_time(r.detected_at)}</td>"
