@@ -144,7 +144,7 @@ def test_chart_draws_each_event_at_its_records_exact_values(plant_csv: PlantCsv)
     lo, hi = zoom_range(r)
     s = read_long_csv([plant_csv.path]).streams[stream]
     t = np.asarray(s.times)
-    zt, zv = trace.zooms[r.id]
+    zt, _ = trace.zooms[r.id]
     assert zt.tolist() == t[(t >= lo) & (t <= hi)].tolist()
     assert len(fig.axes) == 2
 
@@ -220,7 +220,7 @@ def test_replay_report_without_matplotlib_says_what_to_install(plant_csv: PlantC
     code = ("import sys; sys.modules['matplotlib'] = None\n"
             "from shiftwatch.cli import main\n"
             f"sys.exit(main(['replay', '--report', {str(tmp_path / 'r')!r}, {str(plant_csv.path)!r}]))\n")
-    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60, check=False)
     assert res.returncode == 2
     assert "--report needs matplotlib" in res.stderr and "pip install 'shiftwatch[report]'" in res.stderr
     assert "Traceback" not in res.stderr
@@ -229,7 +229,7 @@ def test_replay_report_without_matplotlib_says_what_to_install(plant_csv: PlantC
 def test_the_daemon_and_the_cli_do_not_import_matplotlib_or_tqdm() -> None:
     code = ("import sys, shiftwatch.cli, shiftwatch.daemon, shiftwatch.replay, shiftwatch.report\n"
             "print(sorted({m.split('.')[0] for m in sys.modules} & {'matplotlib', 'tqdm', 'selenium'}))\n")
-    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60, check=False)
     assert res.returncode == 0, res.stderr
     assert res.stdout.strip() == "[]"
 
