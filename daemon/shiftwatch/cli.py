@@ -54,7 +54,7 @@ def progress_bar(total: int, desc: str, unit: str, *, minimum: int = PROGRESS_MI
         from tqdm import tqdm
     except ImportError:
         return None
-    return tqdm(total=total, desc=desc, unit=unit, unit_scale=True, leave=False, file=sys.stderr)
+    return tqdm(total=total, desc=desc, unit=unit, unit_scale=total >= 10_000, leave=False, file=sys.stderr)
 
 
 def cmd_replay(args: argparse.Namespace) -> int:
