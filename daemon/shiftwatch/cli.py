@@ -181,6 +181,13 @@ def cmd_design(args: argparse.Namespace) -> int:
     if not 0 < args.min_shift <= 4:
         _err(f"--min-shift must be above 0 and at most 4 sigma, got {args.min_shift}")
         return EXIT_USAGE
+    if args.chart:
+        from pathlib import Path
+
+        parent = Path(args.chart).resolve().parent
+        if not parent.is_dir():
+            _err(f"--chart {args.chart}: cannot write the chart: no directory {parent}")
+            return EXIT_USAGE
     d = design(args.min_shift, every, interval)
     curves = None
     if args.chart:
@@ -218,9 +225,9 @@ def cmd_design(args: argparse.Namespace) -> int:
     w(f"Design for a stream sampled every {format_duration(interval)}, "
       f"at most one false alarm every {format_duration(every)} on average\n")
     w(f"  in-control average run length (ARL): {d.arl0:,.0f} samples\n")
-    w(f"  multi-chart CUSUM (the default test): k = {', '.join(f'{k:.3g}' for k in d.bank_ks)}; "
-      f"h = {', '.join(f'{h:.3f}' for h in d.bank_hs)}\n")
     w(f"  CUSUM for a smallest shift of {d.min_shift_sigma:g} sigma: k = {d.k:.3f}, h = {d.h:.3f}\n")
+    w(f"  multi-chart CUSUM (the default test): k = {', '.join(f'{k:.3g}' for k in d.bank_ks)}; "
+      f"h's = {', '.join(f'{h:.3f}' for h in d.bank_hs)}\n")
     w(f"  GLR (any shift size): threshold = {d.glr_threshold:.3f}, segments up to {d.glr_window} samples\n\n")
     w("  shift    multi-CUSUM median     CUSUM ARL   CUSUM median delay     GLR median delay\n")
     w("  (sigma)  delay, at most         (samples)   (samples / time)       (samples / time)\n")
