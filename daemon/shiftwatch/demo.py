@@ -75,10 +75,10 @@ streams:
     value: weight_g
     time: ts
     unit: g
-    label: "fill weight on filler {1}"
+    label: "fill weight on filler {{1}}"
   - topic: brackenfield/line2/oven/senml
     format: senml
-    label: "tunnel oven {name}"
+    label: "tunnel oven {{name}}"
   - topic: brackenfield/line2/capper/torque
     format: number
     unit: N m
