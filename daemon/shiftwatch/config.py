@@ -282,9 +282,11 @@ class Config:
         True
         """
         m = self._match(stream)
-        if m is None or m[0].label is None:
+        if m is None:
             return None
         sc, topic, name = m
+        if sc.label is None:
+            return None
         plus, rest = _captures(sc.topic, topic)
 
         def fill(mo: re.Match[str]) -> str:

@@ -7,8 +7,8 @@ chart is asked for, with the Agg backend so no display is needed.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from pathlib import Path
-from typing import Sequence
 
 from shiftwatch.core.design import SensitivityCurve
 from shiftwatch.core.suggest import duration_setting

@@ -189,7 +189,7 @@ def sensitivity(min_shift_sigma: float, false_alarm_every: float, interval: floa
     """
     if not factor > 1:
         raise ValueError(f"factor must be above 1, got {factor!r}")
-    grid = shifts if shifts is not None else tuple(0.125 * i for i in range(0, 33))
+    grid = shifts if shifts is not None else tuple(0.125 * i for i in range(33))
     out = []
     for label, every in (("chosen", false_alarm_every), ("more sensitive", false_alarm_every / factor),
                          ("less sensitive", false_alarm_every * factor)):

@@ -42,6 +42,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from itertools import pairwise
 
 import numpy as np
 from numpy.typing import NDArray
@@ -49,6 +50,7 @@ from numpy.typing import NDArray
 from shiftwatch.core.baseline import estimate_baseline
 from shiftwatch.core.design import bank_run_lengths
 from shiftwatch.core.engine import make_test
+from shiftwatch.core.multicusum import MultiCusumTest
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.core.timefmt import format_duration
 
@@ -127,7 +129,7 @@ def measure_noise(times: FloatArray, values: FloatArray, *, block: int = BLOCK) 
     t, v = t[order], v[order]
     nb = max(1, min(BLOCKS, n // block))
     edges = np.linspace(0, n, nb + 1).astype(int)
-    parts = [estimate_baseline(t[a:b], v[a:b]) for a, b in zip(edges[:-1], edges[1:])]
+    parts = [estimate_baseline(t[a:b], v[a:b]) for a, b in pairwise(edges)]
 
     def med(xs: list[float]) -> float:
         return float(np.median(np.asarray(xs)))
@@ -302,9 +304,8 @@ def median_delay_samples(noise: Noise, min_shift_sigma: float, false_alarm_every
     arl0 = settings.arl0(noise.interval)
     z = test_shift(noise, min_shift_sigma)
     test = make_test(settings, arl0, z)
-    ks: tuple[float, ...] = getattr(test, "ks")
-    hs: tuple[float, ...] = getattr(test, "hs")
-    [(_, med)] = bank_run_lengths(ks, hs, (z,), arl0=arl0)
+    assert isinstance(test, MultiCusumTest)  # the default test
+    [(_, med)] = bank_run_lengths(test.ks, test.hs, (z,), arl0=arl0)
     return med, arl0
 
 
