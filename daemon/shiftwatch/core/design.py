@@ -162,6 +162,9 @@ class SensitivityCurve:
     median: tuple[float, ...]  # samples, an upper bound (nan at shift 0)
 
 
+#: Shift sizes of the chart: fine where the curves bend, coarser beyond 1.5 sigma.
+CHART_SHIFTS = tuple(0.125 * i for i in range(13)) + tuple(1.75 + 0.25 * i for i in range(10))
+
 #: How far the neighbouring choices of :func:`sensitivity` lie from the chosen one.
 SENSITIVITY_FACTOR = 4.0
 
@@ -189,7 +192,7 @@ def sensitivity(min_shift_sigma: float, false_alarm_every: float, interval: floa
     """
     if not factor > 1:
         raise ValueError(f"factor must be above 1, got {factor!r}")
-    grid = shifts if shifts is not None else tuple(0.125 * i for i in range(33))
+    grid = shifts if shifts is not None else CHART_SHIFTS
     out = []
     for label, every in (("chosen", false_alarm_every), ("more sensitive", false_alarm_every / factor),
                          ("less sensitive", false_alarm_every * factor)):
