@@ -137,6 +137,10 @@ def test_noise_measurement_finds_the_interval_and_the_resolution() -> None:
     assert m.sigma == pytest.approx(math.sqrt(0.25 + 0.01 / 12), rel=0.04)
     with pytest.raises(ValueError, match="at least 60 are needed"):
         measure_noise(t[:30], x[:30])
+    with pytest.raises(ValueError, match="all 100 readings are 182.5; a reading that never changes"):
+        measure_noise(t[:100], np.full(100, 182.5))
+    x[::10] = np.nan  # unreadable values are left out, not counted
+    assert measure_noise(t, x).n == n - n // 10
 
 
 # ------------------------------------------------------------ the suggestion

@@ -107,7 +107,7 @@ def measure_noise(times: FloatArray, values: FloatArray, *, block: int = BLOCK) 
     Raises
     ------
     ValueError
-        With fewer than :data:`MIN_READINGS` usable readings.
+        With fewer than :data:`MIN_READINGS` usable readings, or readings that never change.
 
     Examples
     --------
@@ -125,6 +125,8 @@ def measure_noise(times: FloatArray, values: FloatArray, *, block: int = BLOCK) 
     n = int(v.shape[0])
     if n < MIN_READINGS:
         raise ValueError(f"{n} usable readings; at least {MIN_READINGS} are needed to measure the noise")
+    if float(np.ptp(v)) == 0.0:
+        raise ValueError(f"all {n} readings are {v[0]:g}; a reading that never changes has no noise to measure")
     order = np.argsort(t, kind="stable")
     t, v = t[order], v[order]
     nb = max(1, min(BLOCKS, n // block))
