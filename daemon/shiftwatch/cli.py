@@ -449,21 +449,23 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--min-shift", type=float, default=None, help="smallest shift of interest, in sigmas (default 1)")
     d.add_argument("--false-alarm-every", default=None,
                    help="mean time between false alarms (default 7d; with --from, from the plant budget)")
-    d.add_argument("--interval", default="1s", help="sampling interval (default 1s)")
+    d.add_argument("--interval", default="1s",
+                   help="sampling interval (default 1s; with --from, measured per stream)")
     d.add_argument("--json", action="store_true", help="print JSON instead of a table")
     d.add_argument("--chart", metavar="FILE.png",
                    help="also draw ARL and delay against shift size, next to false_alarm_every / 4 and x 4")
     d.add_argument("--from", dest="from_csv", metavar="CSV", action="append",
                    help="suggest min_shift_sigma and false_alarm_every for every stream of this long CSV "
                    "file (repeatable)")
-    d.add_argument("--within", default="1min",
+    d.add_argument("--within", default="1min", metavar="DURATION",
                    help="with --from: the median detection delay the smallest step must meet (default 1min)")
-    d.add_argument("--streams-in-plant", type=int, default=None,
+    d.add_argument("--streams-in-plant", type=int, default=None, metavar="N",
                    help="with --from: streams in the whole plant, for the false-alarm budget "
                    "(default: the streams in the file)")
-    d.add_argument("--plant-false-alarms-per-day", type=float, default=None,
+    d.add_argument("--plant-false-alarms-per-day", type=float, default=None, metavar="X",
                    help="with --from: false detections a day the whole plant accepts (default 1)")
-    d.add_argument("--config", help="with --from: configuration whose units and labels name the streams")
+    d.add_argument("--config", metavar="FILE",
+                   help="with --from: configuration whose units and labels name the streams")
     d.set_defaults(func=cmd_design)
 
     rn = sub.add_parser("run", help="run the daemon (MQTT in, alerts and metrics out)")
