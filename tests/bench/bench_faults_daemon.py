@@ -29,13 +29,10 @@ state directory; clock rejections exactly as the policy says.
 from __future__ import annotations
 
 import argparse
-import ctypes
 import json
 import random
 import shutil
-import signal
 import statistics
-import subprocess
 import sys
 import tempfile
 import threading
@@ -49,7 +46,7 @@ ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT / "tests" / "daemon"))
 sys.path.insert(0, str(ROOT / "tests"))
 
-from killrun import KillRun, Plan, metric, scrape
+from killrun import KillRun, Piped, Plan, fsize_limit, metric, scrape, wait_until, without_dac_override
 
 from conftest import shiftwatch_command
 from shiftwatch.broker import MosquittoBroker, free_port
@@ -57,48 +54,6 @@ from shiftwatch.mqtt import PlainClient
 
 JOURNAL_RATIO_TARGET = 0.8
 DAY = 86400.0
-
-
-def wait_until(pred: Any, timeout: float = 60.0, every: float = 0.05) -> bool:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if pred():
-            return True
-        time.sleep(every)
-    return False
-
-
-class Daemon:
-    """``shiftwatch run`` with its log through a pipe (so a file-size limit spares it)."""
-
-    def __init__(self, cfg: Path, port: int, preexec_fn: Any = None) -> None:
-        self.port = port
-        self.lines: list[str] = []
-        self.proc = subprocess.Popen(shiftwatch_command() + ["run", "--config", str(cfg)],
-                                     stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
-                                     preexec_fn=preexec_fn)  # noqa: PLW1509 - a syscall or two, no locks
-        threading.Thread(target=self._read, daemon=True).start()
-        if not wait_until(lambda: "connected to broker" in self.text() or self.proc.poll() is not None, 30):
-            raise RuntimeError(self.text())
-        if self.proc.poll() is not None:
-            raise RuntimeError(self.text())
-
-    def _read(self) -> None:
-        assert self.proc.stdout is not None
-        for line in self.proc.stdout:
-            self.lines.append(line)
-
-    def text(self) -> str:
-        return "".join(self.lines)
-
-    def stop(self) -> int:
-        if self.proc.poll() is None:
-            self.proc.send_signal(signal.SIGTERM)
-        try:
-            return self.proc.wait(timeout=60)
-        except subprocess.TimeoutExpired:
-            self.proc.kill()
-            return self.proc.wait()
 
 
 class Sender:
@@ -157,7 +112,7 @@ def drain_rate(tmp: Path, journal: bool, streams: int, n: int, tag: str) -> floa
         port = free_port()
         cfg = config(tmp / f"drain-{tag}.yaml", broker, tmp / f"drain-{tag}" / "state", port,
                      journal=journal, snapshot_every="60s")
-        d = Daemon(cfg, port)  # makes the persistent session
+        d = Piped(shiftwatch_command(), cfg, port)  # makes the persistent session
         time.sleep(0.3)
         d.stop()
         pub = Sender(broker.url, f"drain-pub-{tag}")
@@ -166,7 +121,7 @@ def drain_rate(tmp: Path, journal: bool, streams: int, n: int, tag: str) -> floa
             for s in range(streams):
                 pub.send(f"bench/s{s}/v", {"v": 10.0 + 0.01 * ((j * 7 + s) % 13), "ts": base + j})
         pub.close()
-        d = Daemon(cfg, port)
+        d = Piped(shiftwatch_command(), cfg, port)
         first: list[tuple[float, float]] = []
 
         def done() -> bool:
@@ -196,24 +151,6 @@ def part_journal_cost(tmp: Path, repeats: int, streams: int, n: int) -> dict[str
 
 
 # ------------------------------------------------------- 3. disk faults
-_LIBC = ctypes.CDLL(None, use_errno=True)  # loaded here: the child after fork only calls it
-
-
-def _without_dac_override() -> None:
-    for cap in (1, 2, 3):  # CAP_DAC_OVERRIDE, CAP_DAC_READ_SEARCH, CAP_FOWNER
-        if _LIBC.prctl(24, cap, 0, 0, 0) != 0:  # PR_CAPBSET_DROP
-            raise OSError(ctypes.get_errno(), "prctl")
-
-
-def _fsize(limit: int) -> Any:
-    def apply() -> None:
-        import resource
-
-        resource.setrlimit(resource.RLIMIT_FSIZE, (limit, limit))
-
-    return apply
-
-
 def disk_run(tmp: Path, kind: str, i: int, streams: int) -> dict[str, float]:
     import os
 
@@ -223,9 +160,9 @@ def disk_run(tmp: Path, kind: str, i: int, streams: int) -> dict[str, float]:
     pre = None
     if kind == "read-only":
         state.chmod(0o555)
-        pre = _without_dac_override if os.geteuid() == 0 else None
+        pre = without_dac_override if os.geteuid() == 0 else None
     else:
-        pre = _fsize(600)
+        pre = fsize_limit(600)
     port = free_port()
     cfg = config(tmp / f"{kind}-{i}.yaml", broker, state, port, snapshot_every="0.5s")
     confirmed: set[str] = set()
@@ -238,7 +175,7 @@ def disk_run(tmp: Path, kind: str, i: int, streams: int) -> dict[str, float]:
                 confirmed.add(body["stream"])
 
     viewer = PlainClient(broker.url, f"viewer-{kind}-{i}", subscribe=["sw/alerts/#"], on_message=on).start()
-    d = Daemon(cfg, port, preexec_fn=pre)
+    d = Piped(shiftwatch_command(), cfg, port, preexec_fn=pre)
     try:
         time.sleep(0.3)
         pub = Sender(broker.url, f"pub-{kind}-{i}")
@@ -278,7 +215,7 @@ def part_clock(tmp: Path, streams: int, samples: int) -> dict[str, Any]:
     port = free_port()
     cfg = config(tmp / "clock.yaml", broker, tmp / "clock" / "state", port,
                  detection="    detection: {max_time_ahead: 10m, max_time_behind: 30d}\n")
-    d = Daemon(cfg, port)
+    d = Piped(shiftwatch_command(), cfg, port)
     rng = random.Random(4)
     want: dict[str, dict[str, int]] = {}
     try:

@@ -17,8 +17,10 @@ shifts without an alert.
 
 from __future__ import annotations
 
+import ctypes
 import json
 import random
+import resource
 import shutil
 import signal
 import subprocess
@@ -26,6 +28,7 @@ import threading
 import time
 import urllib.request
 from collections import Counter
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -55,6 +58,73 @@ def scrape(port: int) -> dict[tuple[str, tuple[tuple[str, str], ...]], float]:
 
 def metric(m: dict[tuple[str, tuple[tuple[str, str], ...]], float], name: str, **labels: str) -> float:
     return sum(v for (n, lab), v in m.items() if n == name and all(dict(lab).get(k) == x for k, x in labels.items()))
+
+
+def wait_until(pred: Callable[[], bool], timeout: float = 30.0, every: float = 0.05) -> bool:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if pred():
+            return True
+        time.sleep(every)
+    return False
+
+
+class Piped:
+    """``shiftwatch run`` with its log read through a pipe (a file would be subject to
+    the file-size limit of the full-disk fault)."""
+
+    def __init__(self, command: list[str], config: Path, port: int,
+                 preexec_fn: Callable[[], None] | None = None) -> None:
+        self.port = port
+        self.lines: list[str] = []
+        self.proc = subprocess.Popen(command + ["run", "--config", str(config)], stdout=subprocess.PIPE,
+                                     stderr=subprocess.STDOUT, text=True,
+                                     preexec_fn=preexec_fn)  # noqa: PLW1509 - a syscall or two, no locks
+        self._reader = threading.Thread(target=self._read, daemon=True)
+        self._reader.start()
+        if not wait_until(lambda: "connected to broker" in self.text() or self.proc.poll() is not None):
+            raise RuntimeError(f"daemon did not connect: {self.text()}")
+        if self.proc.poll() is not None:
+            raise RuntimeError(f"daemon exited: {self.text()}")
+
+    def _read(self) -> None:
+        assert self.proc.stdout is not None
+        for line in self.proc.stdout:
+            self.lines.append(line)
+
+    def text(self) -> str:
+        return "".join(self.lines)
+
+    def stop(self) -> int:
+        if self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGTERM)
+        try:
+            code = self.proc.wait(timeout=60)
+        except subprocess.TimeoutExpired:
+            self.proc.kill()
+            code = self.proc.wait()
+        self._reader.join(timeout=10)
+        return code
+
+
+_LIBC = ctypes.CDLL(None, use_errno=True)  # loaded here: the child after fork only calls it
+
+
+def without_dac_override() -> None:
+    """preexec_fn: drop the capabilities that let root write where modes forbid it."""
+    for cap in (1, 2, 3):  # CAP_DAC_OVERRIDE, CAP_DAC_READ_SEARCH, CAP_FOWNER
+        if _LIBC.prctl(24, cap, 0, 0, 0) != 0:  # PR_CAPBSET_DROP
+            raise OSError(ctypes.get_errno(), "prctl(PR_CAPBSET_DROP)")
+
+
+def fsize_limit(limit: int) -> Callable[[], None]:
+    """preexec_fn: files may not grow past ``limit`` bytes (a full disk, as the process sees it)."""
+
+    def apply() -> None:
+        # CPython ignores SIGXFSZ, so a write past the limit fails with EFBIG.
+        resource.setrlimit(resource.RLIMIT_FSIZE, (limit, limit))
+
+    return apply
 
 
 @dataclass

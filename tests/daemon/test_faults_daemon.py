@@ -5,13 +5,10 @@ against a real Mosquitto of its own; tests/bench/bench_faults_daemon.py repeats 
 
 from __future__ import annotations
 
-import ctypes
 import json
 import os
-import resource
 import signal
 import subprocess
-import threading
 import time
 from collections.abc import Callable
 from pathlib import Path
@@ -24,51 +21,9 @@ from shiftwatch.broker import MosquittoBroker, free_port
 from shiftwatch.mqtt import PlainClient
 
 from .conftest import Collector
-from .killrun import KillRun, Plan, metric, scrape
+from .killrun import KillRun, Piped, Plan, fsize_limit, metric, scrape, wait_until, without_dac_override
 
 T0 = 1_790_000_000.0
-
-
-def wait_until(pred: Callable[[], bool], timeout: float = 30.0) -> bool:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if pred():
-            return True
-        time.sleep(0.05)
-    return False
-
-
-class Piped:
-    """``shiftwatch run`` with its log read through a pipe (a file would be subject to
-    the file-size limit of the full-disk test)."""
-
-    def __init__(self, command: list[str], config: Path, port: int,
-                 preexec_fn: Callable[[], None] | None = None) -> None:
-        self.port = port
-        self.lines: list[str] = []
-        self.proc = subprocess.Popen(command + ["run", "--config", str(config)], stdout=subprocess.PIPE,
-                                     stderr=subprocess.STDOUT, text=True,
-                                     preexec_fn=preexec_fn)  # noqa: PLW1509 - a syscall or two, no locks
-        self._reader = threading.Thread(target=self._read, daemon=True)
-        self._reader.start()
-        if not wait_until(lambda: "connected to broker" in self.text() or self.proc.poll() is not None):
-            raise RuntimeError(f"daemon did not connect: {self.text()}")
-        assert self.proc.poll() is None, self.text()
-
-    def _read(self) -> None:
-        assert self.proc.stdout is not None
-        for line in self.proc.stdout:
-            self.lines.append(line)
-
-    def text(self) -> str:
-        return "".join(self.lines)
-
-    def stop(self) -> int:
-        if self.proc.poll() is None:
-            self.proc.send_signal(signal.SIGTERM)
-        code = self.proc.wait(timeout=30)
-        self._reader.join(timeout=10)
-        return code
 
 
 def write_config(path: Path, broker: MosquittoBroker, state: Path, port: int, extra: str = "") -> Path:
@@ -170,24 +125,6 @@ def test_alert_records_in_the_outbox_survive_a_kill_while_the_broker_is_down(
 
 
 # ------------------------------------------------------- state directory faults
-_LIBC = ctypes.CDLL(None, use_errno=True)  # loaded here: the child after fork only calls it
-
-
-def _without_dac_override() -> None:
-    """preexec_fn: drop the capabilities that let root write where modes forbid it."""
-    for cap in (1, 2, 3):  # CAP_DAC_OVERRIDE, CAP_DAC_READ_SEARCH, CAP_FOWNER
-        if _LIBC.prctl(24, cap, 0, 0, 0) != 0:  # PR_CAPBSET_DROP
-            raise OSError(ctypes.get_errno(), "prctl(PR_CAPBSET_DROP)")
-
-
-def _fsize_limit(limit: int) -> Callable[[], None]:
-    def apply() -> None:
-        # CPython ignores SIGXFSZ, so a write past the limit fails with EFBIG.
-        resource.setrlimit(resource.RLIMIT_FSIZE, (limit, limit))
-
-    return apply
-
-
 def _detects_without_its_disk(broker: MosquittoBroker, d: Piped) -> dict[Any, float]:
     """Send a step; the confirmed record must arrive and the failures be counted."""
     viewer = Collector(broker.url, "sw/alerts/#", f"sw-viewer-{d.port}")
@@ -213,7 +150,7 @@ def test_read_only_state_directory(tmp_path: Path, broker: MosquittoBroker, shif
     state.chmod(0o555)
     port = free_port()
     cfg = write_config(tmp_path / "sw.yaml", broker, state, port)
-    d = Piped(shiftwatch_cmd, cfg, port, preexec_fn=_without_dac_override if os.geteuid() == 0 else None)
+    d = Piped(shiftwatch_cmd, cfg, port, preexec_fn=without_dac_override if os.geteuid() == 0 else None)
     try:
         m = _detects_without_its_disk(broker, d)
         assert metric(m, "shiftwatch_outbox_failures_total") >= 2  # both records, kept in memory
@@ -234,7 +171,7 @@ def test_full_disk(tmp_path: Path, broker: MosquittoBroker, shiftwatch_cmd: list
     state = tmp_path / "state"
     port = free_port()
     cfg = write_config(tmp_path / "sw.yaml", broker, state, port)
-    d = Piped(shiftwatch_cmd, cfg, port, preexec_fn=_fsize_limit(600))
+    d = Piped(shiftwatch_cmd, cfg, port, preexec_fn=fsize_limit(600))
     try:
         m = _detects_without_its_disk(broker, d)
         assert metric(m, "shiftwatch_outbox_failures_total") >= 2
