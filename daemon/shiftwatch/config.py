@@ -171,6 +171,16 @@ ALERTS_KEYS = {
 METRICS_KEYS = {
     "listen": Key(_str(), "127.0.0.1:9650", "host:port of the Prometheus endpoint"),
     "max_streams": Key(_num(integer=True), 10000, "most streams tracked (and labelled in metrics)"),
+    "tls": Key(lambda v: v, None, "serve the metrics over HTTPS: cert_file, key_file, client_ca_file"),
+}
+
+METRICS_TLS_KEYS = {
+    "cert_file": Key(_str(), MISSING, "server certificate (PEM, leaf first) of the metrics endpoint",
+                     {"type": "string"}),
+    "key_file": Key(_str(), MISSING, "private key (PEM) of that certificate", {"type": "string"}),
+    "client_ca_file": Key(_optional(_str()), None,
+                          "CA (PEM) that signs scrapers' client certificates; when set, scrapers must present one",
+                          {"type": ["string", "null"]}),
 }
 
 STATE_KEYS = {
@@ -229,9 +239,17 @@ class AlertsConfig:
 
 
 @dataclass(frozen=True)
+class MetricsTlsConfig:
+    cert_file: str
+    key_file: str
+    client_ca_file: str | None = None
+
+
+@dataclass(frozen=True)
 class MetricsConfig:
     listen: str = "127.0.0.1:9650"
     max_streams: int = 10000
+    tls: MetricsTlsConfig | None = None
 
 
 @dataclass(frozen=True)
@@ -387,6 +405,10 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
     url = b["url"]
     if not (url.startswith("mqtt://") or url.startswith("mqtts://")):
         raise ld.error("broker.url", f"must start with mqtt:// or mqtts://, got {url!r}", bnodes.get("url"))
+    if "@" in url.split("://", 1)[1].split("/", 1)[0]:
+        # Not echoed: what stands before the @ may be a password.
+        raise ld.error("broker.url", "must not hold a user name or password; use broker.username and "
+                       "broker.password_file or broker.password_env", bnodes.get("url"))
     if b["qos"] not in (0, 1):
         raise ld.error("broker.qos", f"must be 0 or 1, got {b['qos']}", bnodes.get("qos"))
     b["tls"] = tls
@@ -413,6 +435,10 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
     host, sep, port = metrics["listen"].rpartition(":")
     if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:
         raise ld.error("metrics.listen", f"must be host:port, got {metrics['listen']!r}", mnodes.get("listen"))
+    metrics["tls"] = None
+    if "tls" in mnodes:
+        mt, _ = ld.section(mnodes["tls"], METRICS_TLS_KEYS, "metrics.tls")
+        metrics["tls"] = MetricsTlsConfig(**mt)
     state, _ = ld.section(nodes.get("state"), STATE_KEYS, "state")
     return Config(
         broker=broker,
@@ -467,7 +493,7 @@ def json_schema() -> dict[str, Any]:
         "streams": {"type": "array", "items": stream},
         "detection": detection,
         "alerts": obj(ALERTS_KEYS),
-        "metrics": obj(METRICS_KEYS),
+        "metrics": obj(METRICS_KEYS, {"tls": obj(METRICS_TLS_KEYS, required=("cert_file", "key_file"))}),
         "state": obj(STATE_KEYS),
     })
     top["$schema"] = "https://json-schema.org/draft/2020-12/schema"
