@@ -17,7 +17,7 @@ def shiftwatch_command() -> list[str]:
     return [exe] if exe else [sys.executable, "-m", "shiftwatch"]
 
 
-@pytest.fixture
+@pytest.fixture(scope="session")
 def shiftwatch_cmd() -> list[str]:
     return shiftwatch_command()
 

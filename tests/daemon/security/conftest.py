@@ -12,21 +12,27 @@ from __future__ import annotations
 
 import datetime as dt
 import ipaddress
+import json
 import os
+import ssl
 import subprocess
 import threading
 import time
+import urllib.request
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Iterator
 
+import numpy as np
 import pytest
 from cryptography import x509
 from cryptography.hazmat.primitives import hashes, serialization
 from cryptography.hazmat.primitives.asymmetric import ec
 from cryptography.x509.oid import ExtendedKeyUsageOID, NameOID
+from prometheus_client.parser import text_string_to_metric_families
 
-from shiftwatch.broker import MosquittoBroker, TlsListener
+from shiftwatch.broker import MosquittoBroker, TlsListener, free_port
+from shiftwatch.mqtt import PlainClient
 
 NOW = dt.datetime.now(dt.timezone.utc)
 
@@ -223,3 +229,83 @@ def run_daemon(shiftwatch_cmd: list[str]) -> Iterator[Callable[..., RunningDaemo
         if d.proc.poll() is None:
             d.proc.kill()
             d.proc.wait()
+
+
+NUMBER_STREAM = "  - topic: brackenfield/line2/capper/+/torque\n    format: number\n    unit: N m\n"
+JSON_STREAM = ("  - topic: brackenfield/line2/filler/+/fill\n    format: json\n    value: weight_g\n"
+               "    time: ts\n    unit: g\n")
+
+
+def write_config(path: Path, *, broker: str, state: Path, metrics: str | None = None,
+                 streams: str = JSON_STREAM, mode: int = 0o600) -> Path:
+    """A daemon configuration: ``broker`` and ``metrics`` are the YAML bodies of those sections."""
+    metrics = metrics if metrics is not None else f"  listen: 127.0.0.1:{free_port()}\n"
+    path.write_text(f"broker:\n{broker}streams:\n{streams}alerts:\n  topic_prefix: sw\n"
+                    f"metrics:\n{metrics}state:\n  dir: {state}\n  snapshot_every: 1s\n")
+    os.chmod(path, mode)
+    return path
+
+
+def metrics_port(config: Path) -> int:
+    """The port of ``metrics.listen`` in a configuration written by :func:`write_config`."""
+    for line in config.read_text().splitlines():
+        if line.strip().startswith("listen:"):
+            return int(line.rsplit(":", 1)[1])
+    raise AssertionError(f"no metrics.listen in {config}")
+
+
+def fill_series(seed: int = 5, n: int = 700, step: int = 450, delta: float = 1.2) -> list[bytes]:
+    """JSON fill-weight payloads at 1 Hz with one upward step (the invented bottling line)."""
+    x = 500.0 + 0.6 * np.random.default_rng(seed).standard_normal(n)
+    x[step:] += delta
+    t0 = 1_790_000_000.0
+    return [json.dumps({"weight_g": round(float(v), 4), "ts": int((t0 + i) * 1000)}).encode()
+            for i, v in enumerate(x)]
+
+
+def wait_until(pred: Callable[[], bool], timeout: float = 30.0) -> bool:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if pred():
+            return True
+        time.sleep(0.05)
+    return False
+
+
+def scrape(port: int, *, scheme: str = "http", context: ssl.SSLContext | None = None) -> str:
+    with urllib.request.urlopen(f"{scheme}://127.0.0.1:{port}/metrics", timeout=10, context=context) as r:
+        body: bytes = r.read()
+        return body.decode()
+
+
+def metric(text: str, name: str, **labels: str) -> float | None:
+    for fam in text_string_to_metric_families(text):
+        for s in fam.samples:
+            if s.name == name and all(s.labels.get(k) == v for k, v in labels.items()):
+                return float(s.value)
+    return None
+
+
+class Watcher:
+    """A subscriber of the test's own that keeps (topic, payload) pairs."""
+
+    def __init__(self, url: str, filt: str, client_id: str, **login: str) -> None:
+        self.items: list[tuple[str, bytes]] = []
+        self._lock = threading.Lock()
+        self.client = PlainClient(url, client_id, subscribe=[filt], on_message=self._on, **login)
+
+    def _on(self, topic: str, payload: bytes) -> None:
+        with self._lock:
+            self.items.append((topic, payload))
+
+    def records(self) -> list[dict[str, object]]:
+        with self._lock:
+            out = []
+            for _, p in self.items:
+                try:
+                    body = json.loads(p)
+                except ValueError:
+                    continue
+                if isinstance(body, dict):
+                    out.append(body)
+            return out
