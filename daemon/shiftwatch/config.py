@@ -188,6 +188,12 @@ STATE_KEYS = {
     "snapshot_every": Key(_duration, "60s", "how often stream state is snapshotted"),
 }
 
+#: Keys that are refused on purpose, with the reason given instead of "unknown key".
+REFUSED_KEYS = {
+    "broker.password": "a password is not accepted in the configuration file; put it in a file named "
+                       "by broker.password_file (chmod 600) or in the variable named by broker.password_env",
+}
+
 TOP_KEYS = {
     "broker": Key(lambda v: v, None, "MQTT broker connection"),
     "streams": Key(lambda v: v, None, "which topics to watch and how to read them"),
@@ -342,6 +348,8 @@ class _Loader:
         for knode, vnode in ([] if empty else node.value):  # type: ignore[union-attr]
             key = self.plain(knode)
             kpath = f"{path}.{key}" if path else str(key)
+            if kpath in REFUSED_KEYS:
+                raise self.error(kpath, REFUSED_KEYS[kpath], knode)
             if not isinstance(key, str) or key not in keys:
                 hint = difflib.get_close_matches(str(key), list(keys), n=1)
                 msg = "unknown key"
