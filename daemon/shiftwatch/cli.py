@@ -245,6 +245,10 @@ def cmd_run(args: argparse.Namespace) -> int:
     return Daemon(cfg, config_path=args.config, logger=log).run()
 
 
+#: Where systemd puts a system service's credentials (systemd.exec(5), LoadCredential=).
+CREDENTIALS_DIR = "/run/credentials/"
+
+
 def config_warnings(path: str, cfg: Any) -> list[str]:
     """Warnings about a configuration that is valid but risky.
 
@@ -262,7 +266,10 @@ def config_warnings(path: str, cfg: Any) -> list[str]:
                ("broker.tls.key_file", b.tls.key_file if b.tls else None),
                ("metrics.tls.key_file", m.tls.key_file if m.tls else None)]
     files = [(label, fpath, "") for label, fpath in secrets if fpath]
-    if files or b.password_env:
+    # A systemd credential (LoadCredential=) is readable by the service alone: a configuration
+    # that leads only to such files need not be hidden.
+    exposed = [f for _, f, _ in files if not f.startswith(CREDENTIALS_DIR)]
+    if exposed or b.password_env:
         files.insert(0, ("configuration file", path, " and it leads to a secret"))
     out = []
     for label, fpath, why in files:
