@@ -82,7 +82,8 @@ class TlsListener:
     port: int = 0
 
     def lines(self) -> list[str]:
-        out = [f"listener {self.port} 127.0.0.1", f"certfile {self.certfile}", f"keyfile {self.keyfile}"]
+        out = [f"listener {self.port} 127.0.0.1", f"certfile {self.certfile}",
+               f"keyfile {self.keyfile}"]
         if self.cafile is not None:
             out += [f"cafile {self.cafile}", "require_certificate true"]
         return out
@@ -128,7 +129,8 @@ class MosquittoBroker:
         pwfile.unlink(missing_ok=True)
         pwfile.touch(mode=0o600)
         for name, password in self.users.items():
-            subprocess.run([tool, "-b", str(pwfile), name, password], check=True, capture_output=True)
+            subprocess.run([tool, "-b", str(pwfile), name, password], check=True,
+                           capture_output=True)
         return ["allow_anonymous false", f"password_file {pwfile}"]
 
     def start(self, timeout: float = 10.0) -> "MosquittoBroker":

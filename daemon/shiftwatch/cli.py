@@ -278,12 +278,12 @@ def config_warnings(path: str, cfg: Any) -> list[str]:
         except OSError:
             continue  # a missing file is reported where it is used
         if mode & (stat.S_IRWXG | stat.S_IRWXO):
-            out.append(f"{label} {fpath} is readable by other users (mode {stat.S_IMODE(mode):04o}){why}; "
-                       "chmod 600 it")
+            out.append(f"{label} {fpath} is readable by other users "
+                       f"(mode {stat.S_IMODE(mode):04o}){why}; chmod 600 it")
     host = parse_listen(m.listen)[0]
     if m.tls is None and host not in ("127.0.0.1", "::1", "localhost"):
-        out.append(f"metrics.listen {m.listen} is reachable from other hosts and metrics.tls is not set: "
-                   "the metrics are served in the clear")
+        out.append(f"metrics.listen {m.listen} is reachable from other hosts and metrics.tls "
+                   "is not set: the metrics are served in the clear")
     return out
 
 

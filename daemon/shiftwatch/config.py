@@ -171,15 +171,18 @@ ALERTS_KEYS = {
 METRICS_KEYS = {
     "listen": Key(_str(), "127.0.0.1:9650", "host:port of the Prometheus endpoint"),
     "max_streams": Key(_num(integer=True), 10000, "most streams tracked (and labelled in metrics)"),
-    "tls": Key(lambda v: v, None, "serve the metrics over HTTPS: cert_file, key_file, client_ca_file"),
+    "tls": Key(lambda v: v, None,
+               "serve the metrics over HTTPS: cert_file, key_file, client_ca_file"),
 }
 
 METRICS_TLS_KEYS = {
-    "cert_file": Key(_str(), MISSING, "server certificate (PEM, leaf first) of the metrics endpoint",
+    "cert_file": Key(_str(), MISSING,
+                     "server certificate (PEM, leaf first) of the metrics endpoint",
                      {"type": "string"}),
     "key_file": Key(_str(), MISSING, "private key (PEM) of that certificate", {"type": "string"}),
     "client_ca_file": Key(_optional(_str()), None,
-                          "CA (PEM) that signs scrapers' client certificates; when set, scrapers must present one",
+                          "CA (PEM) that signs scrapers' client certificates; "
+                          "when set, scrapers must present one",
                           {"type": ["string", "null"]}),
 }
 
@@ -190,8 +193,9 @@ STATE_KEYS = {
 
 #: Keys that are refused on purpose, with the reason given instead of "unknown key".
 REFUSED_KEYS = {
-    "broker.password": "a password is not accepted in the configuration file; put it in a file named "
-                       "by broker.password_file (chmod 600) or in the variable named by broker.password_env",
+    "broker.password": "a password is not accepted in the configuration file; put it in a "
+                       "file named by broker.password_file (chmod 600) or in the variable "
+                       "named by broker.password_env",
 }
 
 TOP_KEYS = {
@@ -415,8 +419,8 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
         raise ld.error("broker.url", f"must start with mqtt:// or mqtts://, got {url!r}", bnodes.get("url"))
     if "@" in url.split("://", 1)[1].split("/", 1)[0]:
         # Not echoed: what stands before the @ may be a password.
-        raise ld.error("broker.url", "must not hold a user name or password; use broker.username and "
-                       "broker.password_file or broker.password_env", bnodes.get("url"))
+        raise ld.error("broker.url", "must not hold a user name or password; use broker.username "
+                       "and broker.password_file or broker.password_env", bnodes.get("url"))
     if b["qos"] not in (0, 1):
         raise ld.error("broker.qos", f"must be 0 or 1, got {b['qos']}", bnodes.get("qos"))
     b["tls"] = tls
@@ -501,7 +505,8 @@ def json_schema() -> dict[str, Any]:
         "streams": {"type": "array", "items": stream},
         "detection": detection,
         "alerts": obj(ALERTS_KEYS),
-        "metrics": obj(METRICS_KEYS, {"tls": obj(METRICS_TLS_KEYS, required=("cert_file", "key_file"))}),
+        "metrics": obj(METRICS_KEYS,
+                       {"tls": obj(METRICS_TLS_KEYS, required=("cert_file", "key_file"))}),
         "state": obj(STATE_KEYS),
     })
     top["$schema"] = "https://json-schema.org/draft/2020-12/schema"

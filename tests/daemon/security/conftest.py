@@ -19,9 +19,9 @@ import subprocess
 import threading
 import time
 import urllib.request
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable, Iterator
 
 import numpy as np
 import pytest
@@ -38,8 +38,13 @@ NOW = dt.datetime.now(dt.timezone.utc)
 
 
 def _write_key(key: ec.EllipticCurvePrivateKey, path: Path) -> Path:
-    path.write_bytes(key.private_bytes(serialization.Encoding.PEM, serialization.PrivateFormat.PKCS8,
-                                       serialization.NoEncryption()))
+    path.write_bytes(
+        key.private_bytes(
+            serialization.Encoding.PEM,
+            serialization.PrivateFormat.PKCS8,
+            serialization.NoEncryption(),
+        )
+    )
     os.chmod(path, 0o600)
     return path
 
@@ -54,50 +59,93 @@ class Authority:
     cert_file: Path
 
     @classmethod
-    def create(cls, directory: Path, name: str) -> "Authority":
+    def create(cls, directory: Path, name: str) -> Authority:
         key = ec.generate_private_key(ec.SECP256R1())
-        subject = x509.Name([x509.NameAttribute(NameOID.ORGANIZATION_NAME, "Brackenfield Bottling (test)"),
-                             x509.NameAttribute(NameOID.COMMON_NAME, name)])
+        subject = x509.Name(
+            [
+                x509.NameAttribute(NameOID.ORGANIZATION_NAME, "Brackenfield Bottling (test)"),
+                x509.NameAttribute(NameOID.COMMON_NAME, name),
+            ]
+        )
         ski = x509.SubjectKeyIdentifier.from_public_key(key.public_key())
-        cert = (x509.CertificateBuilder()
-                .subject_name(subject).issuer_name(subject).public_key(key.public_key())
-                .serial_number(x509.random_serial_number())
-                .not_valid_before(NOW - dt.timedelta(days=1)).not_valid_after(NOW + dt.timedelta(days=30))
-                .add_extension(x509.BasicConstraints(ca=True, path_length=0), critical=True)
-                .add_extension(x509.KeyUsage(digital_signature=False, content_commitment=False,
-                                             key_encipherment=False, data_encipherment=False,
-                                             key_agreement=False, key_cert_sign=True, crl_sign=True,
-                                             encipher_only=False, decipher_only=False), critical=True)
-                .add_extension(ski, critical=False)
-                .sign(key, hashes.SHA256()))
+        cert = (
+            x509.CertificateBuilder()
+            .subject_name(subject)
+            .issuer_name(subject)
+            .public_key(key.public_key())
+            .serial_number(x509.random_serial_number())
+            .not_valid_before(NOW - dt.timedelta(days=1))
+            .not_valid_after(NOW + dt.timedelta(days=30))
+            .add_extension(x509.BasicConstraints(ca=True, path_length=0), critical=True)
+            .add_extension(
+                x509.KeyUsage(
+                    digital_signature=False,
+                    content_commitment=False,
+                    key_encipherment=False,
+                    data_encipherment=False,
+                    key_agreement=False,
+                    key_cert_sign=True,
+                    crl_sign=True,
+                    encipher_only=False,
+                    decipher_only=False,
+                ),
+                critical=True,
+            )
+            .add_extension(ski, critical=False)
+            .sign(key, hashes.SHA256())
+        )
         path = directory / f"{name}.pem"
         path.write_bytes(cert.public_bytes(serialization.Encoding.PEM))
         return cls(name, key, cert, path)
 
-    def issue(self, directory: Path, stem: str, *, dns: tuple[str, ...] = ("localhost",),
-              ips: tuple[str, ...] = ("127.0.0.1",), days_valid: tuple[float, float] = (-1, 30),
-              client: bool = False) -> tuple[Path, Path]:
+    def issue(
+        self,
+        directory: Path,
+        stem: str,
+        *,
+        dns: tuple[str, ...] = ("localhost",),
+        ips: tuple[str, ...] = ("127.0.0.1",),
+        days_valid: tuple[float, float] = (-1, 30),
+        client: bool = False,
+    ) -> tuple[Path, Path]:
         """A leaf certificate signed by this CA; returns (cert_file, key_file)."""
         key = ec.generate_private_key(ec.SECP256R1())
         cn = dns[0] if dns else ips[0]
         alt: list[x509.GeneralName] = [x509.DNSName(d) for d in dns]
         alt += [x509.IPAddress(ipaddress.ip_address(i)) for i in ips]
         usage = ExtendedKeyUsageOID.CLIENT_AUTH if client else ExtendedKeyUsageOID.SERVER_AUTH
-        builder = (x509.CertificateBuilder()
-                   .subject_name(x509.Name([x509.NameAttribute(NameOID.COMMON_NAME, cn)]))
-                   .issuer_name(self.cert.subject).public_key(key.public_key())
-                   .serial_number(x509.random_serial_number())
-                   .not_valid_before(NOW + dt.timedelta(days=days_valid[0]))
-                   .not_valid_after(NOW + dt.timedelta(days=days_valid[1]))
-                   .add_extension(x509.BasicConstraints(ca=False, path_length=None), critical=True)
-                   .add_extension(x509.KeyUsage(digital_signature=True, content_commitment=False,
-                                                key_encipherment=False, data_encipherment=False,
-                                                key_agreement=False, key_cert_sign=False, crl_sign=False,
-                                                encipher_only=False, decipher_only=False), critical=True)
-                   .add_extension(x509.ExtendedKeyUsage([usage]), critical=False)
-                   .add_extension(x509.SubjectKeyIdentifier.from_public_key(key.public_key()), critical=False)
-                   .add_extension(x509.AuthorityKeyIdentifier.from_issuer_public_key(self.key.public_key()),
-                                  critical=False))
+        builder = (
+            x509.CertificateBuilder()
+            .subject_name(x509.Name([x509.NameAttribute(NameOID.COMMON_NAME, cn)]))
+            .issuer_name(self.cert.subject)
+            .public_key(key.public_key())
+            .serial_number(x509.random_serial_number())
+            .not_valid_before(NOW + dt.timedelta(days=days_valid[0]))
+            .not_valid_after(NOW + dt.timedelta(days=days_valid[1]))
+            .add_extension(x509.BasicConstraints(ca=False, path_length=None), critical=True)
+            .add_extension(
+                x509.KeyUsage(
+                    digital_signature=True,
+                    content_commitment=False,
+                    key_encipherment=False,
+                    data_encipherment=False,
+                    key_agreement=False,
+                    key_cert_sign=False,
+                    crl_sign=False,
+                    encipher_only=False,
+                    decipher_only=False,
+                ),
+                critical=True,
+            )
+            .add_extension(x509.ExtendedKeyUsage([usage]), critical=False)
+            .add_extension(
+                x509.SubjectKeyIdentifier.from_public_key(key.public_key()), critical=False
+            )
+            .add_extension(
+                x509.AuthorityKeyIdentifier.from_issuer_public_key(self.key.public_key()),
+                critical=False,
+            )
+        )
         if alt:
             builder = builder.add_extension(x509.SubjectAlternativeName(alt), critical=False)
         cert = builder.sign(self.key, hashes.SHA256())
@@ -131,7 +179,9 @@ def pki(tmp_path_factory: pytest.TempPathFactory) -> Pki:
         # Expired yesterday (RFC 5280 4.1.2.5: valid only between notBefore and notAfter).
         expired=plant.issue(d, "broker-expired", days_valid=(-10, -1)),
         # A name that is not the address the daemon dials (RFC 6125 / RFC 2818 identity check).
-        wrong_host=plant.issue(d, "broker-wrong-host", dns=("broker.brackenfield.example",), ips=()),
+        wrong_host=plant.issue(
+            d, "broker-wrong-host", dns=("broker.brackenfield.example",), ips=()
+        ),
         directory=d,
     )
 
@@ -140,8 +190,11 @@ def pki(tmp_path_factory: pytest.TempPathFactory) -> Pki:
 def tls_broker(tmp_path: Path, pki: Pki) -> Iterator[MosquittoBroker]:
     """A Mosquitto with a plain listener (for the test's own clients) and three TLS
     listeners: the good certificate, the expired one and the wrongly named one."""
-    b = MosquittoBroker(workdir=tmp_path / "tls-broker", log=True, tls=[
-        TlsListener(*pki.good), TlsListener(*pki.expired), TlsListener(*pki.wrong_host)])
+    b = MosquittoBroker(
+        workdir=tmp_path / "tls-broker",
+        log=True,
+        tls=[TlsListener(*pki.good), TlsListener(*pki.expired), TlsListener(*pki.wrong_host)],
+    )
     try:
         b.start()
     except RuntimeError as exc:
@@ -158,8 +211,11 @@ VIEWER_USER, VIEWER_SECRET = "viewer", "viewer-pass-5521"
 @pytest.fixture
 def auth_broker(tmp_path: Path) -> Iterator[MosquittoBroker]:
     """A Mosquitto with a password file and ``allow_anonymous false``."""
-    b = MosquittoBroker(workdir=tmp_path / "auth-broker", log=True,
-                        users={BROKER_USER: BROKER_SECRET, VIEWER_USER: VIEWER_SECRET})
+    b = MosquittoBroker(
+        workdir=tmp_path / "auth-broker",
+        log=True,
+        users={BROKER_USER: BROKER_SECRET, VIEWER_USER: VIEWER_SECRET},
+    )
     try:
         b.start()
     except RuntimeError as exc:
@@ -176,9 +232,14 @@ class RunningDaemon:
         self.config = config
         self.lines: list[tuple[float, str]] = []
         self._cv = threading.Condition()
-        self.proc = subprocess.Popen(command + ["run", "--config", str(config)], stdin=subprocess.DEVNULL,
-                                     stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
-                                     env=env)
+        self.proc = subprocess.Popen(
+            command + ["run", "--config", str(config)],
+            stdin=subprocess.DEVNULL,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.STDOUT,
+            text=True,
+            env=env,
+        )
         self._reader = threading.Thread(target=self._read, daemon=True)
         self._reader.start()
 
@@ -232,16 +293,27 @@ def run_daemon(shiftwatch_cmd: list[str]) -> Iterator[Callable[..., RunningDaemo
 
 
 NUMBER_STREAM = "  - topic: brackenfield/line2/capper/+/torque\n    format: number\n    unit: N m\n"
-JSON_STREAM = ("  - topic: brackenfield/line2/filler/+/fill\n    format: json\n    value: weight_g\n"
-               "    time: ts\n    unit: g\n")
+JSON_STREAM = (
+    "  - topic: brackenfield/line2/filler/+/fill\n    format: json\n    value: weight_g\n"
+    "    time: ts\n    unit: g\n"
+)
 
 
-def write_config(path: Path, *, broker: str, state: Path, metrics: str | None = None,
-                 streams: str = JSON_STREAM, mode: int = 0o600) -> Path:
+def write_config(
+    path: Path,
+    *,
+    broker: str,
+    state: Path,
+    metrics: str | None = None,
+    streams: str = JSON_STREAM,
+    mode: int = 0o600,
+) -> Path:
     """A daemon configuration: ``broker`` and ``metrics`` are the YAML bodies of those sections."""
     metrics = metrics if metrics is not None else f"  listen: 127.0.0.1:{free_port()}\n"
-    path.write_text(f"broker:\n{broker}streams:\n{streams}alerts:\n  topic_prefix: sw\n"
-                    f"metrics:\n{metrics}state:\n  dir: {state}\n  snapshot_every: 1s\n")
+    path.write_text(
+        f"broker:\n{broker}streams:\n{streams}alerts:\n  topic_prefix: sw\n"
+        f"metrics:\n{metrics}state:\n  dir: {state}\n  snapshot_every: 1s\n"
+    )
     os.chmod(path, mode)
     return path
 
@@ -259,8 +331,10 @@ def fill_series(seed: int = 5, n: int = 700, step: int = 450, delta: float = 1.2
     x = 500.0 + 0.6 * np.random.default_rng(seed).standard_normal(n)
     x[step:] += delta
     t0 = 1_790_000_000.0
-    return [json.dumps({"weight_g": round(float(v), 4), "ts": int((t0 + i) * 1000)}).encode()
-            for i, v in enumerate(x)]
+    return [
+        json.dumps({"weight_g": round(float(v), 4), "ts": int((t0 + i) * 1000)}).encode()
+        for i, v in enumerate(x)
+    ]
 
 
 def wait_until(pred: Callable[[], bool], timeout: float = 30.0) -> bool:
@@ -273,7 +347,9 @@ def wait_until(pred: Callable[[], bool], timeout: float = 30.0) -> bool:
 
 
 def scrape(port: int, *, scheme: str = "http", context: ssl.SSLContext | None = None) -> str:
-    with urllib.request.urlopen(f"{scheme}://127.0.0.1:{port}/metrics", timeout=10, context=context) as r:
+    with urllib.request.urlopen(
+        f"{scheme}://127.0.0.1:{port}/metrics", timeout=10, context=context
+    ) as r:
         body: bytes = r.read()
         return body.decode()
 

@@ -43,8 +43,9 @@ UNIT = ROOT / "systemd" / "shiftwatch.service"
 
 def need(tool: str) -> str:
     """The tool's path; under CI a missing tool fails the test, elsewhere it skips it."""
-    found = shutil.which(tool) or next((p for p in (f"/usr/bin/{tool}", f"/usr/sbin/{tool}")
-                                        if os.access(p, os.X_OK)), None)
+    found = shutil.which(tool) or next(
+        (p for p in (f"/usr/bin/{tool}", f"/usr/sbin/{tool}") if os.access(p, os.X_OK)), None
+    )
     if found:
         return found
     if os.environ.get("CI") == "true":
@@ -69,8 +70,12 @@ def service_settings(text: str) -> list[tuple[str, str]]:
 
 
 def exposure(unit: Path) -> float:
-    res = subprocess.run([need("systemd-analyze"), "security", "--offline=true", str(unit)],
-                         capture_output=True, text=True, timeout=60)
+    res = subprocess.run(
+        [need("systemd-analyze"), "security", "--offline=true", str(unit)],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
     m = re.search(r"Overall exposure level for \S+: (\d+\.\d+)", res.stdout + res.stderr)
     assert m, res.stdout + res.stderr
     return float(m.group(1))
@@ -84,8 +89,14 @@ def test_the_rating_would_notice_a_weaker_unit(tmp_path: Path) -> None:
     # The same unit without its sandboxing lines rates far worse: the check above can fail.
     weak = tmp_path / "shiftwatch.service"
     keep = ("Type", "ExecStart", "Restart", "StateDirectory")
-    weak.write_text("\n".join(line for line in UNIT.read_text().splitlines()
-                              if not line or line.startswith(("[", "#")) or line.split("=")[0] in keep) + "\n")
+    weak.write_text(
+        "\n".join(
+            line
+            for line in UNIT.read_text().splitlines()
+            if not line or line.startswith(("[", "#")) or line.split("=")[0] in keep
+        )
+        + "\n"
+    )
     assert exposure(weak) > 5.0
 
 
@@ -95,36 +106,63 @@ def test_the_unit_verifies_clean(tmp_path: Path, shiftwatch_cmd: list[str]) -> N
     copy = tmp_path / "shiftwatch.service"
     text = UNIT.read_text()
     assert "ExecStart=/opt/shiftwatch/.venv/bin/shiftwatch run" in text
-    copy.write_text(text.replace("ExecStart=/opt/shiftwatch/.venv/bin/shiftwatch", f"ExecStart={exe}"))
-    res = subprocess.run([need("systemd-analyze"), "verify", str(copy)], capture_output=True, text=True,
-                         timeout=60)
+    copy.write_text(
+        text.replace("ExecStart=/opt/shiftwatch/.venv/bin/shiftwatch", f"ExecStart={exe}")
+    )
+    res = subprocess.run(
+        [need("systemd-analyze"), "verify", str(copy)], capture_output=True, text=True, timeout=60
+    )
     assert res.returncode == 0 and res.stdout + res.stderr == "", res.stdout + res.stderr
 
 
 def test_the_unit_uses_the_hardening_directives() -> None:
     s = dict(service_settings(UNIT.read_text()))
-    for key, want in {"DynamicUser": "yes", "NoNewPrivileges": "yes", "ProtectSystem": "strict",
-                      "StateDirectory": "shiftwatch", "StateDirectoryMode": "0700", "UMask": "0077",
-                      "PrivateTmp": "yes", "PrivateDevices": "yes", "PrivateUsers": "yes",
-                      "PrivateMounts": "yes", "ProtectHome": "yes", "ProtectKernelTunables": "yes",
-                      "ProtectKernelModules": "yes", "ProtectKernelLogs": "yes",
-                      "ProtectControlGroups": "yes", "ProtectClock": "yes", "ProtectHostname": "yes",
-                      "ProtectProc": "invisible", "MemoryDenyWriteExecute": "yes",
-                      "CapabilityBoundingSet": "", "AmbientCapabilities": "",
-                      "RestrictAddressFamilies": "AF_INET AF_INET6 AF_UNIX",
-                      "SystemCallArchitectures": "native", "SystemCallErrorNumber": "EPERM"}.items():
+    for key, want in {
+        "DynamicUser": "yes",
+        "NoNewPrivileges": "yes",
+        "ProtectSystem": "strict",
+        "StateDirectory": "shiftwatch",
+        "StateDirectoryMode": "0700",
+        "UMask": "0077",
+        "PrivateTmp": "yes",
+        "PrivateDevices": "yes",
+        "PrivateUsers": "yes",
+        "PrivateMounts": "yes",
+        "ProtectHome": "yes",
+        "ProtectKernelTunables": "yes",
+        "ProtectKernelModules": "yes",
+        "ProtectKernelLogs": "yes",
+        "ProtectControlGroups": "yes",
+        "ProtectClock": "yes",
+        "ProtectHostname": "yes",
+        "ProtectProc": "invisible",
+        "MemoryDenyWriteExecute": "yes",
+        "CapabilityBoundingSet": "",
+        "AmbientCapabilities": "",
+        "RestrictAddressFamilies": "AF_INET AF_INET6 AF_UNIX",
+        "SystemCallArchitectures": "native",
+        "SystemCallErrorNumber": "EPERM",
+    }.items():
         assert s.get(key) == want, (key, s.get(key))
     filters = [v for k, v in service_settings(UNIT.read_text()) if k == "SystemCallFilter"]
     assert filters[:2] == ["@system-service", "~@privileged @resources"]
     # The daemon's own defaults match the directories the unit gives it.
     assert "/var/lib/shiftwatch" in (ROOT / "daemon/shiftwatch/config.py").read_text()
-    assert "--config /etc/shiftwatch/" in s["ExecStart"] and s["ConfigurationDirectory"] == "shiftwatch"
+    assert (
+        "--config /etc/shiftwatch/" in s["ExecStart"]
+        and s["ConfigurationDirectory"] == "shiftwatch"
+    )
 
 
 # ------------------------------------------------------------- system calls
 def syscall_groups() -> dict[str, list[str]]:
-    res = subprocess.run([need("systemd-analyze"), "syscall-filter"], capture_output=True, text=True,
-                         timeout=60, check=True)
+    res = subprocess.run(
+        [need("systemd-analyze"), "syscall-filter"],
+        capture_output=True,
+        text=True,
+        timeout=60,
+        check=True,
+    )
     groups: dict[str, list[str]] = {}
     current = None
     for line in res.stdout.splitlines():
@@ -178,21 +216,31 @@ def exercise(broker: MosquittoBroker, port: int) -> None:
 
 
 @pytest.mark.broker
-def test_every_system_call_the_daemon_makes_is_allowed(broker: MosquittoBroker, tmp_path: Path,
-                                                       shiftwatch_cmd: list[str]) -> None:
+def test_every_system_call_the_daemon_makes_is_allowed(
+    broker: MosquittoBroker, tmp_path: Path, shiftwatch_cmd: list[str]
+) -> None:
     strace = need("strace")
     filters = [v for k, v in service_settings(UNIT.read_text()) if k == "SystemCallFilter"]
     allowed = allowed_syscalls(filters)
     assert "mbind" in allowed and "setrlimit" not in allowed and "reboot" not in allowed
     port = free_port()
-    cfg = write_config(tmp_path / "traced.yaml", state=tmp_path / "state", metrics=f"  listen: 127.0.0.1:{port}\n",
-                       broker=f"  url: {broker.url}\n  client_id: sw-traced\n")
+    cfg = write_config(
+        tmp_path / "traced.yaml",
+        state=tmp_path / "state",
+        metrics=f"  listen: 127.0.0.1:{port}\n",
+        broker=f"  url: {broker.url}\n  client_id: sw-traced\n",
+    )
     trace = tmp_path / "trace.txt"
     log = open(tmp_path / "traced.log", "w")
-    proc = subprocess.Popen([strace, "-f", "-qq", "-o", str(trace)] + shiftwatch_cmd + ["run", "--config", str(cfg)],
-                            stdout=log, stderr=subprocess.STDOUT)
+    proc = subprocess.Popen(
+        [strace, "-f", "-qq", "-o", str(trace)] + shiftwatch_cmd + ["run", "--config", str(cfg)],
+        stdout=log,
+        stderr=subprocess.STDOUT,
+    )
     try:
-        assert wait_until(lambda: "connected to broker" in (tmp_path / "traced.log").read_text(), 60)
+        assert wait_until(
+            lambda: "connected to broker" in (tmp_path / "traced.log").read_text(), 60
+        )
         exercise(broker, port)
         (daemon_pid,) = children(proc.pid)
         os.kill(daemon_pid, signal.SIGTERM)
@@ -201,9 +249,11 @@ def test_every_system_call_the_daemon_makes_is_allowed(broker: MosquittoBroker, 
         if proc.poll() is None:
             proc.kill()
         log.close()
-    used = set(re.findall(r"^\d+\s+([a-z0-9_]+)\(", trace.read_text(), re.M))
+    used = set(re.findall(r"^\d+\s+([a-z0-9_]+)\(", trace.read_text(), re.MULTILINE))
     assert {"connect", "fsync", "rename", "mbind"} <= used  # the trace saw the daemon at work
-    assert used - allowed == set(), f"calls outside the unit's SystemCallFilter: {sorted(used - allowed)}"
+    assert used - allowed == set(), (
+        f"calls outside the unit's SystemCallFilter: {sorted(used - allowed)}"
+    )
 
 
 # ------------------------------------------------------------------ sandbox
@@ -218,7 +268,9 @@ for m in $(awk '{print $5}' /proc/self/mountinfo | sort -u); do
 done
 mount -o remount,bind,rw /srv/state          # StateDirectory=
 mount -t tmpfs -o mode=1777 tmpfs /tmp       # PrivateTmp=
-if touch /srv/probe 2>/dev/null || touch /usr/probe 2>/dev/null; then echo "SANDBOX IS WRITABLE"; exit 9; fi
+if touch /srv/probe 2>/dev/null || touch /usr/probe 2>/dev/null; then
+  echo "SANDBOX IS WRITABLE"; exit 9
+fi
 touch /srv/state/probe && rm /srv/state/probe
 umask 0077                                   # UMask=
 exec setpriv --no-new-privs --bounding-set=-all --inh-caps=-all --ambient-caps=-all \
@@ -228,8 +280,9 @@ exec setpriv --no-new-privs --bounding-set=-all --inh-caps=-all --ambient-caps=-
 
 
 @pytest.mark.broker
-def test_the_daemon_works_inside_the_units_restrictions(broker: MosquittoBroker, tmp_path: Path,
-                                                        shiftwatch_cmd: list[str]) -> None:
+def test_the_daemon_works_inside_the_units_restrictions(
+    broker: MosquittoBroker, tmp_path: Path, shiftwatch_cmd: list[str]
+) -> None:
     for tool in ("unshare", "setpriv", "mount"):
         need(tool)
     if os.geteuid() != 0:
@@ -242,23 +295,40 @@ def test_the_daemon_works_inside_the_units_restrictions(broker: MosquittoBroker,
     (work / "state").mkdir(parents=True)
     os.chmod(work / "state", 0o700)
     port = free_port()
-    write_config(work / "shiftwatch.yaml", state=Path("/srv/state"), metrics=f"  listen: 127.0.0.1:{port}\n",
-                 broker=f"  url: {broker.url}\n  client_id: sw-sandboxed\n")
+    write_config(
+        work / "shiftwatch.yaml",
+        state=Path("/srv/state"),
+        metrics=f"  listen: 127.0.0.1:{port}\n",
+        broker=f"  url: {broker.url}\n  client_id: sw-sandboxed\n",
+    )
     log_path = tmp_path / "sandbox.log"
     log = open(log_path, "w")
-    proc = subprocess.Popen(["unshare", "--mount", "--propagation", "private", "sh", "-c", SANDBOX],
-                            stdout=log, stderr=subprocess.STDOUT,
-                            env={"PATH": "/usr/sbin:/usr/bin:/sbin:/bin", "WORK": str(work),
-                                 "UNIT_ENV": env_line, "SHIFTWATCH": shiftwatch_cmd[0]})
+    proc = subprocess.Popen(
+        ["unshare", "--mount", "--propagation", "private", "sh", "-c", SANDBOX],
+        stdout=log,
+        stderr=subprocess.STDOUT,
+        env={
+            "PATH": "/usr/sbin:/usr/bin:/sbin:/bin",
+            "WORK": str(work),
+            "UNIT_ENV": env_line,
+            "SHIFTWATCH": shiftwatch_cmd[0],
+        },
+    )
     try:
-        ok = wait_until(lambda: "connected to broker" in log_path.read_text() or proc.poll() is not None, 60)
+        ok = wait_until(
+            lambda: "connected to broker" in log_path.read_text() or proc.poll() is not None, 60
+        )
         assert ok and proc.poll() is None, log_path.read_text()
         status = Path(f"/proc/{proc.pid}/status").read_text()
-        assert re.search(r"^CapEff:\s+0+$", status, re.M) and re.search(r"^CapBnd:\s+0+$", status, re.M)
-        assert re.search(r"^NoNewPrivs:\s+1$", status, re.M)
+        assert re.search(r"^CapEff:\s+0+$", status, re.MULTILINE) and re.search(
+            r"^CapBnd:\s+0+$", status, re.MULTILINE
+        )
+        assert re.search(r"^NoNewPrivs:\s+1$", status, re.MULTILINE)
         exercise(broker, port)
         maps = Path(f"/proc/{proc.pid}/maps").read_text().splitlines()
-        assert [m for m in maps if m.split()[1].startswith("rwx")] == []  # nothing writable and executable
+        assert [
+            m for m in maps if m.split()[1].startswith("rwx")
+        ] == []  # nothing writable and executable
         proc.send_signal(signal.SIGTERM)
         assert proc.wait(timeout=60) == 0, log_path.read_text()
     finally:
@@ -269,4 +339,6 @@ def test_the_daemon_works_inside_the_units_restrictions(broker: MosquittoBroker,
     assert "ERROR" not in text and "Traceback" not in text and "WARNING" not in text, text
     written = [p for p in (work / "state").rglob("*") if p.is_file()]
     assert any(p.name.startswith("streams") for p in written), written
-    assert all(p.stat().st_mode & 0o077 == 0 for p in written), [(p, oct(p.stat().st_mode)) for p in written]
+    assert all(p.stat().st_mode & 0o077 == 0 for p in written), [
+        (p, oct(p.stat().st_mode)) for p in written
+    ]
