@@ -14,7 +14,7 @@ import pytest
 from shiftwatch.broker import MosquittoBroker, free_port
 from shiftwatch.config import ConfigError, MetricsConfig, parse_config
 
-from .conftest import Pki, metric, scrape, write_config
+from .conftest import Pki, metric, scrape, wait_until, write_config
 
 NOT_SERVED = (OSError, http.client.HTTPException)
 
@@ -55,7 +55,7 @@ def test_the_daemon_binds_its_metrics_to_loopback(
     d = run_daemon(cfg)
     assert d.wait_for(lambda lines: any("connected to broker" in x for x in lines)), d.text()
     assert f"metrics on http://127.0.0.1:{port}/metrics" in d.text()
-    assert metric(scrape(port), "shiftwatch_broker_connected") == 1.0
+    assert wait_until(lambda: metric(scrape(port), "shiftwatch_broker_connected") == 1.0)
     # Bound to 127.0.0.1 only (0100007F in the kernel's table), not 0.0.0.0: another loopback
     # address of this host is refused.
     assert listening_addresses(port) == {"0100007F"}
@@ -87,8 +87,9 @@ def test_metrics_over_https_with_the_plant_ca(
     d, port = https_daemon(tmp_path, broker, pki, run_daemon, client_ca=False)
     assert f"metrics on https://127.0.0.1:{port}/metrics" in d.text()
     trusted = ssl.create_default_context(cafile=str(pki.plant.cert_file))
-    assert (
-        metric(scrape(port, scheme="https", context=trusted), "shiftwatch_broker_connected") == 1.0
+    assert wait_until(
+        lambda: metric(scrape(port, scheme="https", context=trusted), "shiftwatch_broker_connected")
+        == 1.0
     )
     with pytest.raises(NOT_SERVED):  # plain HTTP gets no metrics
         scrape(port)
@@ -112,8 +113,9 @@ def test_metrics_can_require_client_certificates(
     with pytest.raises(NOT_SERVED):  # no client certificate: refused
         scrape(port, scheme="https", context=trusted)
     trusted.load_cert_chain(str(scraper_cert), str(scraper_key))
-    assert (
-        metric(scrape(port, scheme="https", context=trusted), "shiftwatch_broker_connected") == 1.0
+    assert wait_until(
+        lambda: metric(scrape(port, scheme="https", context=trusted), "shiftwatch_broker_connected")
+        == 1.0
     )
     rogue_cert, rogue_key = pki.other.issue(
         pki.directory, "rogue-scraper", dns=("prometheus",), ips=(), client=True
