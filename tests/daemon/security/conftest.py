@@ -49,6 +49,21 @@ def _write_key(key: ec.EllipticCurvePrivateKey, path: Path) -> Path:
     return path
 
 
+def key_usage(*, ca: bool) -> x509.KeyUsage:
+    """RFC 5280 4.2.1.3: a CA signs certificates and CRLs; a TLS leaf with an EC key signs only."""
+    return x509.KeyUsage(
+        digital_signature=not ca,
+        content_commitment=False,
+        key_encipherment=False,
+        data_encipherment=False,
+        key_agreement=False,
+        key_cert_sign=ca,
+        crl_sign=ca,
+        encipher_only=False,
+        decipher_only=False,
+    )
+
+
 @dataclass
 class Authority:
     """A CA of our own: its key, its self-signed certificate and where the PEM is."""
@@ -78,17 +93,7 @@ class Authority:
             .not_valid_after(NOW + dt.timedelta(days=30))
             .add_extension(x509.BasicConstraints(ca=True, path_length=0), critical=True)
             .add_extension(
-                x509.KeyUsage(
-                    digital_signature=False,
-                    content_commitment=False,
-                    key_encipherment=False,
-                    data_encipherment=False,
-                    key_agreement=False,
-                    key_cert_sign=True,
-                    crl_sign=True,
-                    encipher_only=False,
-                    decipher_only=False,
-                ),
+                key_usage(ca=True),
                 critical=True,
             )
             .add_extension(ski, critical=False)
@@ -124,17 +129,7 @@ class Authority:
             .not_valid_after(NOW + dt.timedelta(days=days_valid[1]))
             .add_extension(x509.BasicConstraints(ca=False, path_length=None), critical=True)
             .add_extension(
-                x509.KeyUsage(
-                    digital_signature=True,
-                    content_commitment=False,
-                    key_encipherment=False,
-                    data_encipherment=False,
-                    key_agreement=False,
-                    key_cert_sign=False,
-                    crl_sign=False,
-                    encipher_only=False,
-                    decipher_only=False,
-                ),
+                key_usage(ca=False),
                 critical=True,
             )
             .add_extension(x509.ExtendedKeyUsage([usage]), critical=False)
