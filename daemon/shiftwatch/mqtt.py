@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import logging
 import os
+import re
 import ssl
 import sys
 import threading
@@ -149,6 +150,21 @@ def parse_url(url: str) -> tuple[str, int, bool]:
     return parts.hostname, parts.port or (8883 if tls else 1883), tls
 
 
+class _LastError(logging.Handler):
+    """Keeps the text of the last error paho logged (for a connection closed before CONNACK)."""
+
+    def __init__(self) -> None:
+        super().__init__(logging.ERROR)
+        self.text: str | None = None
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.text = record.getMessage()
+
+    def take(self) -> str | None:
+        text, self.text = self.text, None
+        return text
+
+
 class MqttLink:
     """A persistent-session MQTT connection for one daemon.
 
@@ -203,8 +219,16 @@ class MqttLink:
             protocol=MQTTProtocolVersion.MQTTv5 if v5 else MQTTProtocolVersion.MQTTv311,
             manual_ack=True,
         )
-        self.client.enable_logger(logging.getLogger("shiftwatch.paho"))
-        logging.getLogger("shiftwatch.paho").setLevel(logging.CRITICAL)
+        # paho's own log stays silent; its error lines are only kept, so that a connection the
+        # broker closes before accepting it (a TLS alert after the handshake, for example)
+        # can be reported with the reason.  Below ERROR nothing is even formatted.
+        plog = logging.getLogger(f"shiftwatch.paho.{cfg.client_id}")
+        plog.setLevel(logging.ERROR)
+        plog.propagate = False
+        self._paho_error = _LastError()
+        plog.handlers[:] = [self._paho_error]
+        self.client.enable_logger(plog)
+        self._refused = False
         self.client.reconnect_delay_set(min_delay=1, max_delay=30)
         self.client.max_queued_messages_set(0)
         self.client.will_set(status_topic, b"offline", qos=1, retain=True)
@@ -285,6 +309,7 @@ class MqttLink:
             if "authori" in str(reason).lower() or "password" in str(reason).lower():
                 who = f"user {self.cfg.username!r}" if self.cfg.username else "no user name"
                 hint = f" ({who}; check broker.username and the password)"
+            self._refused = True
             self._report_error(f"refused the connection: {reason}{hint}")
             return
         self._connected = True
@@ -308,6 +333,15 @@ class MqttLink:
                            properties: Any) -> None:
         was = self._connected
         self._connected = False
+        refused, self._refused = self._refused, False
+        if not was and not refused and not self._stopping:
+            # Closed between the TCP/TLS handshake and the CONNACK.
+            why = self._paho_error.take() or str(reason)
+            why = re.sub(r" \(_ssl\.c:\d+\)$", "", why.removeprefix("failed to receive on socket: "))
+            if any(a in why for a in ("certificate required", "alert unknown ca", "bad certificate")):
+                why += (" (the broker wants a client certificate it trusts: "
+                        "broker.tls.cert_file, key_file)")
+            self._report_error(f"the connection was closed before the broker accepted it: {why}")
         if self._stopping:
             self.log.info("disconnected from broker %s", self.url)
         elif was:

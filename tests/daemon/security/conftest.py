@@ -159,6 +159,8 @@ class Pki:
     good: tuple[Path, Path]
     expired: tuple[Path, Path]
     wrong_host: tuple[Path, Path]
+    client: tuple[Path, Path]
+    foreign_client: tuple[Path, Path]
     directory: Path
 
 
@@ -176,6 +178,11 @@ def pki(tmp_path_factory: pytest.TempPathFactory) -> Pki:
         # A name that is not the address the daemon dials (RFC 6125 / RFC 2818 identity check).
         wrong_host=plant.issue(
             d, "broker-wrong-host", dns=("broker.brackenfield.example",), ips=()
+        ),
+        # Client certificates for brokers that want one: from the plant CA, and from the other.
+        client=plant.issue(d, "client-line2", dns=("shiftwatch-line2",), ips=(), client=True),
+        foreign_client=other.issue(
+            d, "client-foreign", dns=("shiftwatch-line2",), ips=(), client=True
         ),
         directory=d,
     )

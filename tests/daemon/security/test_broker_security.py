@@ -76,13 +76,15 @@ def failures(
             TlsListener(*pki.expired),
             TlsListener(*pki.wrong_host),
             TlsListener(*pki.wrong_host),
+            TlsListener(*pki.good, cafile=pki.plant.cert_file),  # wants client certificates
+            TlsListener(*pki.good, cafile=pki.plant.cert_file),
         ],
     )
     try:
         broker.start()
     except RuntimeError as exc:
         pytest.fail(f"cannot start the test broker: {exc}")
-    good, expired, wrong_ip, wrong_name = broker.tls
+    good, expired, wrong_ip, wrong_name, wants_cert, wants_cert_too = broker.tls
     right_pw = d / "right.password"
     right_pw.write_text(BROKER_SECRET + "\n")
     wrong_pw = d / "wrong.password"
@@ -123,6 +125,25 @@ def failures(
             trust_plant,
             "TLS certificate verify failed: certificate has expired",
             "alert certificate expired",
+        ),
+        (
+            "no_client_cert",
+            wants_cert.url,
+            trust_plant,
+            "the connection was closed before the broker accepted it: [SSL: "
+            "TLSV13_ALERT_CERTIFICATE_REQUIRED] tlsv13 alert certificate required "
+            "(the broker wants a client certificate it trusts",
+            "peer did not return a certificate",
+        ),
+        (
+            "foreign_client_cert",
+            wants_cert_too.url,
+            trust_plant[:-2]
+            + f", cert_file: {pki.foreign_client[0]}, key_file: {pki.foreign_client[1]}}}\n",
+            "the connection was closed before the broker accepted it: "
+            "[SSL: TLSV1_ALERT_UNKNOWN_CA] tlsv1 alert unknown ca "
+            "(the broker wants a client certificate it trusts",
+            "SSL routines::certificate verify failed",
         ),
         (
             "wrong_password",
@@ -170,7 +191,16 @@ def failures(
     yield out
 
 
-CASES = ["wrong_ca", "wrong_host_ip", "wrong_host_name", "expired", "wrong_password", "anonymous"]
+CASES = [
+    "no_client_cert",
+    "foreign_client_cert",
+    "wrong_ca",
+    "wrong_host_ip",
+    "wrong_host_name",
+    "expired",
+    "wrong_password",
+    "anonymous",
+]
 
 
 @pytest.mark.broker
@@ -281,3 +311,36 @@ def test_verified_tls_connection_carries_samples_and_alerts(
     assert d.stop() == 0
     # The broker saw a TLS client: its connection came in on the TLS port.
     assert f"on port {tls_broker.tls[0].port}." in tls_broker.log_path.read_text()
+
+
+@pytest.mark.broker
+def test_a_client_certificate_is_presented_when_the_broker_wants_one(
+    tmp_path: Path, pki: Pki, run_daemon
+) -> None:
+    broker = MosquittoBroker(
+        workdir=tmp_path / "mtls-broker", tls=[TlsListener(*pki.good, cafile=pki.plant.cert_file)]
+    )
+    try:
+        broker.start()
+    except RuntimeError as exc:
+        pytest.fail(f"cannot start the test broker: {exc}")
+    try:
+        url = broker.tls[0].url
+        cert, key = pki.client
+        cfg = write_config(
+            tmp_path / "mtls.yaml",
+            state=tmp_path / "state",
+            broker=f"  url: {url}\n  client_id: sw-mtls\n"
+            f"  tls: {{ca_file: {pki.plant.cert_file}, cert_file: {cert}, key_file: {key}}}\n",
+        )
+        d = run_daemon(cfg)
+        assert d.wait_for(lambda lines: any(f"connected to broker {url}" in x for x in lines)), (
+            d.text()
+        )
+        assert wait_until(
+            lambda: metric(scrape(metrics_port(cfg)), "shiftwatch_broker_connected") == 1.0
+        )
+        assert d.stop() == 0
+        assert "ERROR" not in d.text() and "WARNING" not in d.text(), d.text()
+    finally:
+        broker.stop()

@@ -88,8 +88,10 @@ def test_metrics_over_https_with_the_plant_ca(
     assert f"metrics on https://127.0.0.1:{port}/metrics" in d.text()
     trusted = ssl.create_default_context(cafile=str(pki.plant.cert_file))
     assert wait_until(
-        lambda: metric(scrape(port, scheme="https", context=trusted), "shiftwatch_broker_connected")
-        == 1.0
+        lambda: (
+            metric(scrape(port, scheme="https", context=trusted), "shiftwatch_broker_connected")
+            == 1.0
+        )
     )
     with pytest.raises(NOT_SERVED):  # plain HTTP gets no metrics
         scrape(port)
@@ -114,8 +116,10 @@ def test_metrics_can_require_client_certificates(
         scrape(port, scheme="https", context=trusted)
     trusted.load_cert_chain(str(scraper_cert), str(scraper_key))
     assert wait_until(
-        lambda: metric(scrape(port, scheme="https", context=trusted), "shiftwatch_broker_connected")
-        == 1.0
+        lambda: (
+            metric(scrape(port, scheme="https", context=trusted), "shiftwatch_broker_connected")
+            == 1.0
+        )
     )
     rogue_cert, rogue_key = pki.other.issue(
         pki.directory, "rogue-scraper", dns=("prometheus",), ips=(), client=True

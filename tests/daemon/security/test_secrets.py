@@ -237,8 +237,7 @@ def test_a_configuration_without_secrets_may_be_readable(tmp_path: Path, cli) ->
     res = cli("check", "--config", str(env_only))
     assert (
         f"configuration file {env_only} is readable by other users (mode 0644) "
-        "and it leads to a secret"
-        in res.stderr
+        "and it leads to a secret" in res.stderr
     )
 
 
