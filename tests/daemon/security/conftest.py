@@ -188,6 +188,14 @@ def pki(tmp_path_factory: pytest.TempPathFactory) -> Pki:
     )
 
 
+def start_broker(b: MosquittoBroker) -> MosquittoBroker:
+    """Start the broker; a broker that cannot start fails the test (it never skips)."""
+    try:
+        return b.start()
+    except RuntimeError as exc:
+        pytest.fail(f"cannot start the test broker: {exc}")
+
+
 @pytest.fixture
 def tls_broker(tmp_path: Path, pki: Pki) -> Iterator[MosquittoBroker]:
     """A Mosquitto with a plain listener (for the test's own clients) and three TLS
@@ -197,11 +205,7 @@ def tls_broker(tmp_path: Path, pki: Pki) -> Iterator[MosquittoBroker]:
         log=True,
         tls=[TlsListener(*pki.good), TlsListener(*pki.expired), TlsListener(*pki.wrong_host)],
     )
-    try:
-        b.start()
-    except RuntimeError as exc:
-        pytest.fail(f"cannot start the TLS test broker: {exc}")
-    yield b
+    yield start_broker(b)
     b.stop()
 
 
@@ -218,11 +222,7 @@ def auth_broker(tmp_path: Path) -> Iterator[MosquittoBroker]:
         log=True,
         users={BROKER_USER: BROKER_SECRET, VIEWER_USER: VIEWER_SECRET},
     )
-    try:
-        b.start()
-    except RuntimeError as exc:
-        pytest.fail(f"cannot start the password test broker: {exc}")
-    yield b
+    yield start_broker(b)
     b.stop()
 
 

@@ -34,6 +34,7 @@ from .conftest import (
     metric,
     metrics_port,
     scrape,
+    start_broker,
     wait_until,
     write_config,
 )
@@ -80,10 +81,7 @@ def failures(
             TlsListener(*pki.good, cafile=pki.plant.cert_file),
         ],
     )
-    try:
-        broker.start()
-    except RuntimeError as exc:
-        pytest.fail(f"cannot start the test broker: {exc}")
+    start_broker(broker)
     good, expired, wrong_ip, wrong_name, wants_cert, wants_cert_too = broker.tls
     right_pw = d / "right.password"
     right_pw.write_text(BROKER_SECRET + "\n")
@@ -320,10 +318,7 @@ def test_a_client_certificate_is_presented_when_the_broker_wants_one(
     broker = MosquittoBroker(
         workdir=tmp_path / "mtls-broker", tls=[TlsListener(*pki.good, cafile=pki.plant.cert_file)]
     )
-    try:
-        broker.start()
-    except RuntimeError as exc:
-        pytest.fail(f"cannot start the test broker: {exc}")
+    start_broker(broker)
     try:
         url = broker.tls[0].url
         cert, key = pki.client
