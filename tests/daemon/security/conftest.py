@@ -230,12 +230,18 @@ class RunningDaemon:
     """``shiftwatch run`` in a subprocess; a thread stamps each stderr line as it arrives,
     so tests can count connection attempts and the gaps between them."""
 
-    def __init__(self, command: list[str], config: Path, env: dict[str, str] | None = None) -> None:
+    def __init__(
+        self,
+        command: list[str],
+        config: Path,
+        env: dict[str, str] | None = None,
+        args: tuple[str, ...] = (),
+    ) -> None:
         self.config = config
         self.lines: list[tuple[float, str]] = []
         self._cv = threading.Condition()
         self.proc = subprocess.Popen(
-            command + ["run", "--config", str(config)],
+            [*command, "run", "--config", str(config), *args],
             stdin=subprocess.DEVNULL,
             stdout=subprocess.PIPE,
             stderr=subprocess.STDOUT,
@@ -282,8 +288,10 @@ class RunningDaemon:
 def run_daemon(shiftwatch_cmd: list[str]) -> Iterator[Callable[..., RunningDaemon]]:
     started: list[RunningDaemon] = []
 
-    def start(config: Path, env: dict[str, str] | None = None) -> RunningDaemon:
-        d = RunningDaemon(shiftwatch_cmd, config, env)
+    def start(
+        config: Path, env: dict[str, str] | None = None, args: tuple[str, ...] = ()
+    ) -> RunningDaemon:
+        d = RunningDaemon(shiftwatch_cmd, config, env, args)
         started.append(d)
         return d
 

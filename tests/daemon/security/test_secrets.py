@@ -3,6 +3,7 @@ secrets, and configurations that lead to them, draw a warning when others can re
 
 from __future__ import annotations
 
+import json
 import os
 from pathlib import Path
 
@@ -95,20 +96,25 @@ def test_a_wrong_password_is_not_shown_either(
 ) -> None:
     wrong = "Wrong-" + BROKER_SECRET[::-1]
     pw = password_file(tmp_path / "broker.password", wrong)
-    cfg = write_config(
-        tmp_path / "wrong.yaml",
-        state=tmp_path / "s",
-        streams=NUMBER_STREAM,
-        broker=(
-            f"  url: {auth_broker.url}\n  client_id: sw-wrong\n  username: {BROKER_USER}\n"
-            f"  password_file: {pw}\n"
-        ),
+    cfg, cfg_json = (
+        write_config(
+            tmp_path / f"wrong-{fmt}.yaml",
+            state=tmp_path / f"s-{fmt}",
+            streams=NUMBER_STREAM,
+            broker=(
+                f"  url: {auth_broker.url}\n  client_id: sw-wrong-{fmt}\n"
+                f"  username: {BROKER_USER}\n  password_file: {pw}\n"
+            ),
+        )
+        for fmt in ("text", "json")
     )
-    d = run_daemon(cfg)
-    assert d.wait_for(lambda lines: any("Not authorized" in x for x in lines)), d.text()
-    assert d.stop() == 0
+    text_log, json_log = run_daemon(cfg), run_daemon(cfg_json, args=("--log-format", "json"))
+    for d in (text_log, json_log):
+        assert d.wait_for(lambda lines: any("Not authorized" in x for x in lines)), d.text()
+        assert d.stop() == 0
+    assert json.loads(json_log.matching("Not authorized")[0][1])["level"] == "error"
     res = cli("check", "--config", str(cfg))
-    for text in (d.text(), res.stdout, res.stderr):
+    for text in (text_log.text(), json_log.text(), res.stdout, res.stderr):
         assert wrong not in text and BROKER_SECRET[::-1] not in text
 
 
