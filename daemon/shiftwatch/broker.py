@@ -8,7 +8,9 @@ on a free loopback port with its own configuration and data directory.
 from __future__ import annotations
 
 import os
+import pwd
 import shutil
+import signal
 import socket
 import subprocess
 import tempfile
@@ -54,11 +56,15 @@ class MosquittoBroker:
 
     ``extra`` lines go into its configuration (for example a TLS listener or
     a password file).  Persistence is on and ``max_queued_messages`` is raised,
-    the settings the README asks operators to use.
+    the settings the README asks operators to use; ``autosave_interval`` (in
+    seconds) is how often the broker writes its state to disk, which bounds
+    what a crash of the broker loses.  :meth:`restart` keeps the port and the
+    data directory, so sessions and queued messages survive it.
     """
 
     port: int = 0
     extra: list[str] = field(default_factory=list)
+    autosave_interval: int = 1
     workdir: Path | None = None
     process: subprocess.Popen[bytes] | None = None
     binary: str | None = None
@@ -75,9 +81,13 @@ class MosquittoBroker:
         lines = [
             f"listener {self.port} 127.0.0.1",
             "allow_anonymous true",
+            # Started as root, mosquitto would switch to the user "mosquitto",
+            # which cannot write the persistence file into our private (root-only)
+            # directory: persistence would silently do nothing.  Stay who we are.
+            f"user {pwd.getpwuid(os.geteuid()).pw_name}",
             "persistence true",
             f"persistence_location {self.workdir}/",
-            "autosave_interval 1",
+            f"autosave_interval {self.autosave_interval}",
             "max_queued_messages 1000000",
             "max_inflight_messages 20",
             "log_dest none",
@@ -99,6 +109,7 @@ class MosquittoBroker:
 
     def stop(self, sig: int | None = None) -> None:
         if self.process is not None and self.process.poll() is None:
+            self.thaw()  # a frozen broker cannot act on SIGTERM
             if sig is None:
                 self.process.terminate()
             else:
@@ -110,9 +121,20 @@ class MosquittoBroker:
                 self.process.wait()
         self.process = None
 
-    def restart(self) -> None:
-        self.stop()
+    def restart(self, sig: int | None = None) -> None:
+        """Stop (SIGTERM, or ``sig`` such as SIGKILL) and start again on the same port."""
+        self.stop(sig)
         self.start()
+
+    def freeze(self) -> None:
+        """SIGSTOP: the broker keeps its sockets open but answers nothing."""
+        if self.process is not None:
+            self.process.send_signal(signal.SIGSTOP)
+
+    def thaw(self) -> None:
+        """SIGCONT after :meth:`freeze`."""
+        if self.process is not None:
+            self.process.send_signal(signal.SIGCONT)
 
 
 class EmbeddedBroker:
