@@ -389,7 +389,7 @@ class StreamEngine:
         Bad samples are rejected with reason codes in the result; this method
         does not raise on bad data.
         """
-        scr = screen_samples(times, values, self._last_time)
+        scr = screen_samples(times, values, self._last_time, self._window.times)
         raw_t = np.asarray(times, dtype=object) if scr.rejected else None
         result = BatchResult(rejected=[Rejection(i, r, _time_or_nan(raw_t, i)) for i, r in scr.rejected])
         t, x = scr.times, scr.values
@@ -411,7 +411,9 @@ class StreamEngine:
                 # Nothing moved: a defect.  Refuse loudly instead of spinning.
                 raise RuntimeError(f"engine for stream {self.stream!r} made no progress in state {self._state}")
         result.accepted = n
-        self.samples_total += len(scr.kept) + len(scr.rejected)
+        # Each (stream, time) once: a repeat of an accepted time (a message
+        # delivered twice) is counted only among the rejections.
+        self.samples_total += len(scr.kept) + sum(r != "duplicate_time" for _, r in scr.rejected)
         for rej in result.rejected:
             self.rejected_total[rej.reason] += 1
         for rec in result.records:
