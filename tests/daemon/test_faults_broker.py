@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from .faultkit import (STREAMS_YAML, AlertViewer, TallyPublisher, alert_records_total, metric, metric_values,
-                       rejected_by_stream, scrape, settle, topic_of, wait_until)
+                       rejected_by_stream, samples_by_stream, scrape, settle, topic_of, wait_until)
 
 HEADS = (1, 2, 3)
 
@@ -73,4 +73,84 @@ def test_broker_restarts_lose_no_sample_and_count_none_twice(broker, daemon_fact
     assert d.log_text().count("disconnected from broker") >= restarts
     pub.stop()
     viewer.stop()
+    assert d.stop() == 0
+
+
+def test_alert_records_made_during_an_outage_arrive_after_it(broker, daemon_factory) -> None:
+    # The daemon is held (SIGSTOP) while the step's samples reach it, the broker
+    # stops, and the daemon then processes them with no broker: its records
+    # are made during the outage.  The broker also delivers those samples
+    # again after the restart (they were never acknowledged); they count once.
+    d = daemon_factory(STREAMS_YAML).start()
+    viewer = AlertViewer(broker.url, "sw/alerts/#", "faults-outage-viewer").start()
+    pub = TallyPublisher(broker.url, "faults-outage-publisher").start()
+    topic = topic_of(4)
+    x = series(11, 700, step=402, delta=2.4)  # a 4-sigma step
+
+    def send(lo: int, hi: int) -> None:
+        for i in range(lo, hi):
+            pub.send(topic, i, float(x[i]))
+        assert pub.wait_all_acked(30)
+
+    send(0, 400)
+    assert wait_until(lambda: samples_by_stream(scrape(d.metrics_port)).get(topic) == 400)
+    assert d.proc is not None
+    d.signal(signal.SIGSTOP)
+    try:
+        send(400, 420)
+        time.sleep(0.5)  # the broker pushes its in-flight window into the daemon's socket
+        broker.stop()
+    finally:
+        d.signal(signal.SIGCONT)
+    assert wait_until(lambda: "DETECTED" in d.log_text(), timeout=30)
+    log = d.log_text()
+    down = log.rindex("disconnected from broker")
+    assert down < log.index("DETECTED") and "connected to broker" not in log[down + 20:log.index("DETECTED")]
+    broker.start()
+    send(420, 700)
+    assert wait_until(lambda: {p for _, p in viewer.distinct()} == {"detected", "confirmed"}, timeout=60)
+    got = settle(d.metrics_port, {topic: 700})
+    assert got == {topic: 700}
+    text = scrape(d.metrics_port)
+    assert rejected_by_stream(text, "duplicate_time").get(topic, 0) >= 1  # the redelivery was seen ...
+    assert alert_records_total(text) == 2  # ... and made no second event
+    pub.stop()
+    viewer.stop()
+    assert d.stop() == 0
+
+
+def test_a_frozen_broker_is_noticed_and_the_daemon_reconnects_when_it_thaws(broker, daemon_factory) -> None:
+    keepalive = 2
+    d = daemon_factory(STREAMS_YAML, keepalive=keepalive).start()
+    pub = TallyPublisher(broker.url, "faults-freeze-publisher").start()
+    topic = topic_of(5)
+    x = series(12, 600)
+    for i in range(300):
+        pub.send(topic, i, float(x[i]))
+    assert pub.wait_all_acked(30)
+    assert wait_until(lambda: samples_by_stream(scrape(d.metrics_port)).get(topic) == 300)
+    assert metric(scrape(d.metrics_port), "shiftwatch_broker_connected") == 1
+    broker.freeze()
+    try:
+        # Noticed through the keepalive (a ping unanswered), while the metrics stay served.
+        assert wait_until(lambda: metric(scrape(d.metrics_port), "shiftwatch_broker_connected") == 0,
+                          timeout=10 * keepalive)
+        frozen_scrapes = 0
+        deadline = time.monotonic() + 2 * keepalive  # stay frozen a while longer, scraping
+        while time.monotonic() < deadline:
+            text = scrape(d.metrics_port)
+            assert metric(text, "shiftwatch_broker_connected") == 0
+            assert samples_by_stream(text).get(topic) == 300
+            frozen_scrapes += 1
+            time.sleep(0.2)
+        assert frozen_scrapes >= 5
+    finally:
+        broker.thaw()
+    assert wait_until(lambda: metric(scrape(d.metrics_port), "shiftwatch_broker_connected") == 1, timeout=60)
+    for i in range(300, 600):
+        pub.send(topic, i, float(x[i]))
+    assert pub.wait_all_acked(30)
+    assert settle(d.metrics_port, {topic: 600}) == {topic: 600}
+    assert "disconnected from broker" in d.log_text()
+    pub.stop()
     assert d.stop() == 0
