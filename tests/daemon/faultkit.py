@@ -183,19 +183,20 @@ def wait_until(pred: Callable[[], bool], timeout: float = 30.0, step: float = 0.
     return pred()
 
 
-def settle(port: int, want: dict[str, int], timeout: float = 60.0) -> dict[str, int]:
-    """Scrape until the per-stream sample counts stop moving (or reach ``want``); return them."""
+def settle(port: int, want: dict[str, int], timeout: float = 60.0, quiet: float = 2.0) -> dict[str, int]:
+    """Scrape until the per-stream sample counts reach ``want`` (then once more, a moment
+    later, so a double count would show), or stop moving for ``quiet`` seconds; return them."""
     deadline = time.monotonic() + timeout
     last: dict[str, int] = {}
-    still = 0
+    moved = time.monotonic()
     while time.monotonic() < deadline:
         got = samples_by_stream(scrape(port))
         if all(got.get(k, 0) >= v for k, v in want.items()):
-            time.sleep(0.5)  # anything more (a double count) would show now
+            time.sleep(0.5)
             return samples_by_stream(scrape(port))
-        still = still + 1 if got == last else 0
-        if still >= 40:  # 2 s without change
+        if got != last:
+            last, moved = got, time.monotonic()
+        elif time.monotonic() - moved >= quiet:
             return got
-        last = got
         time.sleep(0.05)
     return last

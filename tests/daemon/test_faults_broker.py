@@ -16,7 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .faultkit import (STREAMS_YAML, AlertViewer, TallyPublisher, alert_records_total, metric, metric_values,
+from .faultkit import (STREAMS_YAML, AlertViewer, TallyPublisher, alert_records_total, metric,
                        rejected_by_stream, samples_by_stream, scrape, settle, topic_of, wait_until)
 
 HEADS = (1, 2, 3)
@@ -59,12 +59,14 @@ def test_broker_restarts_lose_no_sample_and_count_none_twice(broker, daemon_fact
     want = {topic_of(h): len(pub.acked[topic_of(h)]) for h in HEADS}
     assert want == {topic_of(h): n for h in HEADS}
     got = settle(d.metrics_port, want)
-    assert got == want  # nothing lost, nothing counted twice
+    # Nothing lost, nothing counted twice: shiftwatch_samples_total counts a sample
+    # once, when its time is new to the stream, so equality also says that every
+    # acknowledged sample reached the engine in order.  What the broker delivered
+    # again is set aside as duplicate_time (or out_of_order, once the stream's
+    # window no longer holds its time) and counted only there.
+    assert got == want
     text = scrape(d.metrics_port)
-    # Every sample reached the engine in order: none was set aside as late.
-    assert rejected_by_stream(text, "out_of_order") == {}
-    assert sum(metric_values(text, "shiftwatch_samples_rejected_total").values()) == \
-        sum(rejected_by_stream(text, "duplicate_time").values())
+    assert sum(rejected_by_stream(text, "duplicate_time").values()) >= 1
     assert metric(text, "shiftwatch_broker_connected") == 1
     # Every alert record the daemon made reached the persistent subscriber.
     made = alert_records_total(text)
@@ -152,5 +154,48 @@ def test_a_frozen_broker_is_noticed_and_the_daemon_reconnects_when_it_thaws(brok
     assert pub.wait_all_acked(30)
     assert settle(d.metrics_port, {topic: 600}) == {topic: 600}
     assert "disconnected from broker" in d.log_text()
+    pub.stop()
+    assert d.stop() == 0
+
+
+def acked_within(pub: TallyPublisher, start: float, end: float) -> int:
+    """Samples whose acknowledgement reached the publisher between two monotonic times."""
+    return sum(1 for t in pub.last_ack_at.values() if start <= t <= end)
+
+
+def test_a_killed_broker_loses_at_most_its_autosave_interval(broker, daemon_factory) -> None:
+    # mosquitto writes its store every autosave_interval seconds (and on a clean
+    # stop).  It compares whole seconds and saves once more than the interval
+    # has passed (from our reading of mosquitto 2.0's main loop, and what the
+    # bench measures), so at most autosave_interval + 1 s of acknowledged
+    # samples exist only in its memory when it is killed.
+    autosave = 2
+    broker.autosave_interval = autosave
+    broker.restart()
+    d = daemon_factory(STREAMS_YAML).start()
+    pub = TallyPublisher(broker.url, "faults-kill-publisher").start()
+    n = 700
+    data = {h: series(20 + h, n) for h in HEADS}
+    killed_at = 0.0
+
+    def feed(lo: int, hi: int) -> None:
+        for i in range(lo, hi):
+            for h in HEADS:
+                pub.send(topic_of(h), i, float(data[h][i]))
+            time.sleep(0.01)
+
+    feed(0, 350)  # about 4 s: past the first autosave
+    killed_at = time.monotonic()
+    broker.restart(signal.SIGKILL)
+    feed(350, n)
+    assert pub.wait_all_acked(60)
+    want = {topic_of(h): len(pub.acked[topic_of(h)]) for h in HEADS}
+    assert want == {topic_of(h): n for h in HEADS}
+    got = settle(d.metrics_port, want, quiet=4.0)
+    lost = sum(want.values()) - sum(got.values())
+    bound = acked_within(pub, killed_at - autosave - 1.0, killed_at)
+    assert 0 <= lost <= bound, (lost, bound)
+    text = scrape(d.metrics_port)
+    assert metric(text, "shiftwatch_broker_connected") == 1
     pub.stop()
     assert d.stop() == 0
