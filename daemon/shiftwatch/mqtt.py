@@ -311,7 +311,7 @@ class PlainClient:
     With ``persistent=True`` it behaves as a QoS 1 client with a persistent
     session should: a fixed client id, MQTT 5 ``clean_start=False`` with a
     session expiry (3.1.1 ``clean_session=False``), reconnection after a
-    broker restart within a second, and paho re-sending every publication the
+    broker restart within a second or two, and paho re-sending every publication the
     broker has not acknowledged.  ``on_acked(mid)`` is called from paho's
     thread for each publication the broker acknowledged, ``on_connection(up)``
     when the connection comes up or goes down.
@@ -332,7 +332,7 @@ class PlainClient:
         )
         self.client.max_queued_messages_set(0)
         if persistent:
-            self.client.reconnect_delay_set(min_delay=0.2, max_delay=1)
+            self.client.reconnect_delay_set(min_delay=1, max_delay=2)
         self._subscribe = list(subscribe or [])
         self._on_message = on_message
         self._up = threading.Event()
