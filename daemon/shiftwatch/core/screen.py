@@ -122,12 +122,10 @@ def screen_samples(
     dup = ~order_ok & (tt == prev) & (reason == 0)
     ooo = ~order_ok & (tt < prev) & (reason == 0)
     if ooo.any():  # a repeat of any time already accepted is a duplicate, not disorder
-        known = t[reason == 0][order_ok[reason == 0]]
-        parts = [known, np.array([last_time])]
+        parts = [t[(reason == 0) & order_ok], np.array([last_time])]
         if seen is not None:
             parts.append(seen)
-        known = np.concatenate(parts)
-        known = np.sort(known)
+        known = np.sort(np.concatenate(parts))
         at = np.flatnonzero(ooo)
         j = np.minimum(np.searchsorted(known, t[at]), known.shape[0] - 1)
         again = at[known[j] == t[at]]
