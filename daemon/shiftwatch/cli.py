@@ -39,9 +39,25 @@ def _print_problems(problems: list[str], limit: int = 20) -> None:
 
 
 # ----------------------------------------------------------------- replay
-def cmd_replay(args: argparse.Namespace) -> int:
-    from shiftwatch.replay import CsvFormatError, read_long_csv, replay_series
+#: Replays of fewer samples finish too soon for a progress bar to help.
+PROGRESS_MIN_SAMPLES = 100_000
 
+
+def progress_bar(total: int, desc: str, unit: str, *, minimum: int = PROGRESS_MIN_SAMPLES) -> Any:
+    """A tqdm bar on stderr when stderr is a terminal and the work is long; else None.
+
+    Without tqdm installed (it comes with the ``report`` extra) there is no bar.
+    """
+    if total < minimum or not sys.stderr.isatty():
+        return None
+    try:
+        from tqdm import tqdm
+    except ImportError:
+        return None
+    return tqdm(total=total, desc=desc, unit=unit, unit_scale=total >= 10_000, leave=False, file=sys.stderr)
+
+
+def cmd_replay(args: argparse.Namespace) -> int:
     if args.config is not None:
         from shiftwatch.config import ConfigError
 
@@ -52,6 +68,24 @@ def cmd_replay(args: argparse.Namespace) -> int:
             return EXIT_USAGE
     else:
         cfg = None
+    if args.report is None:
+        return _replay(args, cfg, None)
+    from shiftwatch.report import ReplayReport, ReportError
+
+    try:
+        report = ReplayReport(args.report)  # fails now, not after a long replay
+    except ReportError as exc:
+        _err(str(exc))
+        return EXIT_USAGE
+    try:
+        return _replay(args, cfg, report)
+    finally:
+        report.discard()  # the unfinished file, when writing did not complete
+
+
+def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
+    from shiftwatch.replay import CsvFormatError, read_long_csv, replay_series
+
     try:
         read = read_long_csv(args.csv)
     except CsvFormatError as exc:
@@ -62,13 +96,27 @@ def cmd_replay(args: argparse.Namespace) -> int:
         from shiftwatch.core.settings import DetectionSettings
 
         defaults = DetectionSettings()
-        records, problems, engines = replay_series(read.streams, lambda name: defaults)
+
+        def settings_for(stream: str) -> Any:
+            return defaults
+
+        def unit_for(stream: str) -> str | None:
+            return None
     else:
+        settings_for = cfg.settings_for
+
         def unit_for(stream: str) -> str | None:
             sc = cfg.stream_for(stream)
             return None if sc is None else sc.unit
 
-        records, problems, engines = replay_series(read.streams, cfg.settings_for, unit_for)
+    bar = progress_bar(sum(len(s.times) for s in read.streams.values()), "replay", "sample")
+    try:
+        records, problems, engines = replay_series(
+            read.streams, settings_for, unit_for, progress=bar and bar.update,
+            observe=None if report is None else report.observe)
+    finally:
+        if bar is not None:
+            bar.close()
     out: TextIO
     if args.out:
         try:
@@ -100,6 +148,26 @@ def cmd_replay(args: argparse.Namespace) -> int:
     if len(read.problems):
         summary += f"; {len(read.problems)} unreadable row(s) skipped"
     print(summary, file=sys.stderr)
+    if report is not None:
+        from shiftwatch.report import ReportError
+
+        bar = progress_bar(len(engines), "charts", "chart", minimum=2)
+        try:
+            path = report.write(
+                samples={name: e.samples_total for name, e in engines.items()},
+                rejected={name: dict(e.rejected_total) for name, e in engines.items()},
+                units={name: unit_for(name) for name in engines},
+                sources=[str(p) for p in args.csv], unreadable_rows=len(read.problems),
+                settings_note=("default detection settings" if args.config is None
+                               else f"detection settings from {args.config}"),
+                progress=bar and bar.update)
+        except ReportError as exc:
+            _err(str(exc))
+            return EXIT_USAGE
+        finally:
+            if bar is not None:
+                bar.close()
+        print(f"report written to {path}", file=sys.stderr)
     return EXIT_BAD_DATA if all_problems else EXIT_OK
 
 
@@ -434,6 +502,8 @@ def build_parser() -> argparse.ArgumentParser:
     r = sub.add_parser("replay", help="run CSV files through the detection engine and print alert records")
     r.add_argument("--config", help="YAML configuration (detection settings); defaults without it")
     r.add_argument("--out", help="write JSON lines here instead of stdout")
+    r.add_argument("--report", metavar="DIR",
+                   help="also write DIR/report.html: a chart per stream and a summary table")
     r.add_argument("csv", nargs="+", help="long CSV files with columns time,stream,value")
     r.set_defaults(func=cmd_replay)
 
