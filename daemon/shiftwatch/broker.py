@@ -13,6 +13,7 @@ from __future__ import annotations
 import os
 import pwd
 import shutil
+import signal
 import socket
 import subprocess
 import tempfile
@@ -102,10 +103,14 @@ class MosquittoBroker:
     to use.  ``tls`` adds TLS listeners beside the plain one; ``users`` (name
     to password) writes a password file and turns ``allow_anonymous`` off for
     every listener; ``log`` writes the broker's log to :attr:`log_path`.
+    ``autosave_interval`` (in seconds) is how often the broker writes its state to disk,
+    which bounds what a crash of the broker loses.  :meth:`restart` keeps the port and
+    the data directory, so sessions and queued messages survive it.
     """
 
     port: int = 0
     extra: list[str] = field(default_factory=list)
+    autosave_interval: int = 1
     workdir: Path | None = None
     process: subprocess.Popen[bytes] | None = None
     binary: str | None = None
@@ -147,10 +152,11 @@ class MosquittoBroker:
         lines = self._password_lines() + [
             # Stay the user that started it: Mosquitto started as root would switch to the
             # "mosquitto" user and could not read our key, password file or data directory.
+            # Persistence would silently do nothing without this.
             f"user {pwd.getpwuid(os.geteuid()).pw_name}",
             "persistence true",
             f"persistence_location {self.workdir}/",
-            "autosave_interval 1",
+            f"autosave_interval {self.autosave_interval}",
             "max_queued_messages 1000000",
             "max_inflight_messages 20",
         ]
@@ -178,6 +184,7 @@ class MosquittoBroker:
 
     def stop(self, sig: int | None = None) -> None:
         if self.process is not None and self.process.poll() is None:
+            self.thaw()  # a frozen broker cannot act on SIGTERM
             if sig is None:
                 self.process.terminate()
             else:
@@ -189,9 +196,20 @@ class MosquittoBroker:
                 self.process.wait()
         self.process = None
 
-    def restart(self) -> None:
-        self.stop()
+    def restart(self, sig: int | None = None) -> None:
+        """Stop (SIGTERM, or ``sig`` such as SIGKILL) and start again on the same port."""
+        self.stop(sig)
         self.start()
+
+    def freeze(self) -> None:
+        """SIGSTOP: the broker keeps its sockets open but answers nothing."""
+        if self.process is not None:
+            self.process.send_signal(signal.SIGSTOP)
+
+    def thaw(self) -> None:
+        """SIGCONT after :meth:`freeze`."""
+        if self.process is not None:
+            self.process.send_signal(signal.SIGCONT)
 
 
 class EmbeddedBroker:

@@ -387,20 +387,35 @@ class PlainClient:
     Publishes at QoS 1 and, when ``on_message`` is given, subscribes to
     ``subscribe`` filters and calls ``on_message(topic, payload)`` from paho's
     thread.  ``username`` and ``password`` log in to a broker that wants them.
+
+    With ``persistent=True`` it behaves as a QoS 1 client with a persistent
+    session should: a fixed client id, MQTT 5 ``clean_start=False`` with a
+    session expiry (3.1.1 ``clean_session=False``), reconnection after a
+    broker restart within a second or two, and paho re-sending every publication the
+    broker has not acknowledged.  ``on_acked(mid)`` is called from paho's
+    thread for each publication the broker acknowledged, ``on_connection(up)``
+    when the connection comes up or goes down.
     """
 
     def __init__(self, url: str, client_id: str, *, subscribe: list[str] | None = None,
                  on_message: Callable[[str, bytes], None] | None = None, mqtt_version: str = "5",
-                 username: str | None = None, password: str | None = None) -> None:
+                 username: str | None = None, password: str | None = None,
+                 persistent: bool = False, on_acked: Callable[[int], None] | None = None,
+                 on_connection: Callable[[bool], None] | None = None) -> None:
         self.host, self.port, tls = parse_url(url)
         v5 = mqtt_version == "5"
+        self._v5 = v5
+        self._persistent = persistent
         self.client = paho.Client(
             callback_api_version=CallbackAPIVersion.VERSION2, client_id=client_id,
             protocol=MQTTProtocolVersion.MQTTv5 if v5 else MQTTProtocolVersion.MQTTv311,
+            clean_session=False if persistent and not v5 else None,
         )
         self.client.max_queued_messages_set(0)
         if username is not None:
             self.client.username_pw_set(username, password)
+        if persistent:
+            self.client.reconnect_delay_set(min_delay=1, max_delay=2)
         self._subscribe = list(subscribe or [])
         self._on_message = on_message
         self._up = threading.Event()
@@ -410,6 +425,12 @@ class PlainClient:
                 for f in self._subscribe:
                     client.subscribe(f, qos=1)
                 self._up.set()
+                if on_connection is not None:
+                    on_connection(True)
+
+        def on_disconnect(client: paho.Client, userdata: Any, flags: Any, reason: Any, props: Any) -> None:
+            if on_connection is not None:
+                on_connection(False)
 
         def on_message_cb(client: paho.Client, userdata: Any, msg: paho.MQTTMessage) -> None:
             if self._on_message is not None:
@@ -418,19 +439,31 @@ class PlainClient:
                 except Exception:
                     logging.getLogger(__name__).exception("message handler failed")
 
+        def on_publish_cb(client: paho.Client, userdata: Any, mid: int, reason: Any, props: Any) -> None:
+            if on_acked is not None:
+                on_acked(int(mid))
+
         self.client.on_connect = on_connect
         self.client.on_message = on_message_cb
+        self.client.on_publish = on_publish_cb
+        self.client.on_disconnect = on_disconnect
 
     def start(self, timeout: float = 10.0) -> "PlainClient":
-        self.client.connect(self.host, self.port, keepalive=30)
+        if self._persistent and self._v5:
+            props = Properties(PacketTypes.CONNECT)
+            props.SessionExpiryInterval = 3600
+            self.client.connect(self.host, self.port, keepalive=30, clean_start=False, properties=props)
+        else:
+            self.client.connect(self.host, self.port, keepalive=30)
         self.client.loop_start()
         if not self._up.wait(timeout):
             raise BrokerError(f"no connection to {self.host}:{self.port} within {timeout:.0f} s")
         time.sleep(0.05)  # let the SUBACKs arrive before the caller publishes
         return self
 
-    def publish(self, topic: str, payload: bytes | str, *, qos: int = 1, retain: bool = False) -> None:
-        self.client.publish(topic, payload, qos=qos, retain=retain)
+    def publish(self, topic: str, payload: bytes | str, *, qos: int = 1, retain: bool = False) -> int:
+        """Queue a publication (kept and re-sent by paho while disconnected); returns its mid."""
+        return int(self.client.publish(topic, payload, qos=qos, retain=retain).mid)
 
     def publish_wait(self, topic: str, payload: bytes | str, *, qos: int = 1, timeout: float = 10.0) -> None:
         info = self.client.publish(topic, payload, qos=qos)
