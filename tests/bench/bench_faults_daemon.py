@@ -255,14 +255,15 @@ def part_clock(tmp: Path, streams: int, samples: int) -> dict[str, Any]:
             want[topic] = counts
         pub.close()
         total = streams * samples
-        wait_until(lambda: metric(scrape(port), "shiftwatch_samples_total") >= total, timeout=120)
+        wait_until(lambda: KillRun._processed(scrape(port)) + KillRun._again(scrape(port)) >= total,
+                   timeout=120)
         m = scrape(port)
         got = {t: {r: int(metric(m, "shiftwatch_samples_rejected_total", stream=t, reason=r))
                    for r in ("time_ahead", "time_behind", "out_of_order", "duplicate_time")}
                for t in want}
         states = [metric(m, "shiftwatch_stream_info", stream=t, state="watching") for t in want]
         return {"want": want, "got": got, "watching": sum(states), "streams": streams,
-                "samples": int(metric(m, "shiftwatch_samples_total"))}
+                "samples": int(KillRun._processed(m) + KillRun._again(m))}
     finally:
         d.stop()
         broker.stop()

@@ -311,7 +311,7 @@ class KillRun:
             m = scrape(self.port)
             if all(self._processed(m, s) >= n for s in names):
                 break
-            seen = metric(m, "shiftwatch_samples_total")
+            seen = self._processed(m) + self._again(m)
             if seen != last:
                 last, still = seen, time.monotonic()
             elif time.monotonic() - still > 3.0:  # nothing more is coming: the rest was lost
@@ -325,11 +325,16 @@ class KillRun:
         return self.tally
 
     @staticmethod
-    def _processed(m: dict[Any, float], stream: str) -> float:
-        seen = metric(m, "shiftwatch_samples_total", stream=stream)
-        again = sum(metric(m, "shiftwatch_samples_rejected_total", stream=stream, reason=r)
-                    for r in ("duplicate_time", "out_of_order"))
-        return seen - again
+    def _processed(m: dict[Any, float], stream: str | None = None) -> float:
+        """Readings the engines took as new (``shiftwatch_samples_total`` counts each once)."""
+        return metric(m, "shiftwatch_samples_total", **({} if stream is None else {"stream": stream}))
+
+    @staticmethod
+    def _again(m: dict[Any, float], stream: str | None = None) -> float:
+        """Readings seen a second time: set aside as not newer than the stream's newest."""
+        lab = {} if stream is None else {"stream": stream}
+        return sum(metric(m, "shiftwatch_samples_rejected_total", reason=r, **lab)
+                   for r in ("duplicate_time", "out_of_order"))
 
     def _stop_daemon(self) -> None:
         if self.proc is not None and self.proc.poll() is None:
@@ -345,7 +350,7 @@ class KillRun:
         p = self.plan
         for s in p.names():
             processed = self._processed(m, s)
-            again = metric(m, "shiftwatch_samples_total", stream=s) - processed
+            again = self._again(m, s)
             t.per_stream[s] = {"processed": processed, "reprocessed": again}
             t.published += p.samples
             t.processed += int(processed)

@@ -75,6 +75,7 @@ def screen_samples(
     times: Sequence[Any] | NDArray[Any],
     values: Sequence[Any] | NDArray[Any],
     last_time: float = -np.inf,
+    seen: NDArray[np.float64] | None = None,
     *,
     arrived: float | Sequence[float] | NDArray[np.float64] | None = None,
     max_ahead: float | None = None,
@@ -83,7 +84,11 @@ def screen_samples(
     """Split a batch into accepted samples and rejections with reason codes.
 
     Times must be finite and strictly increasing, also relative to
-    ``last_time``, the newest time already accepted for the stream.
+    ``last_time``, the newest time already accepted for the stream.  A time
+    that is not newer is ``duplicate_time`` when it equals one already
+    accepted (``last_time``, the increasing times in ``seen``, for example the
+    stream's window, or a sample earlier in the batch), as a message
+    delivered twice does; otherwise it is ``out_of_order``.
 
     When ``arrived`` (the receiving clock's time of each sample, or one time
     for the batch) is given, a time more than ``max_ahead`` seconds after it
@@ -101,6 +106,8 @@ def screen_samples(
     ([1.0, 2.0, 4.0], [1.0, 5.0, 7.0], [(1, 'nan'), (3, 'out_of_order'), (4, 'not_a_number')])
     >>> screen_samples([5, 5], [1.0, 2.0]).rejected
     [(1, 'duplicate_time')]
+    >>> screen_samples([3, 2, 2.5, 4, 3], [1.0] * 5, last_time=2, seen=np.array([1.0, 2.0])).rejected
+    [(1, 'duplicate_time'), (2, 'out_of_order'), (4, 'duplicate_time')]
 
     A sample stamped a day ahead of its arrival is set aside; the next one,
     stamped right again, is accepted:
@@ -149,6 +156,16 @@ def screen_samples(
     order_ok = tt > prev
     dup = ~order_ok & (tt == prev) & (reason == 0)
     ooo = ~order_ok & (tt < prev) & (reason == 0)
+    if ooo.any():  # a repeat of any time already accepted is a duplicate, not disorder
+        parts = [t[(reason == 0) & order_ok], np.array([last_time])]
+        if seen is not None:
+            parts.append(seen)
+        known = np.sort(np.concatenate(parts))
+        at = np.flatnonzero(ooo)
+        j = np.minimum(np.searchsorted(known, t[at]), known.shape[0] - 1)
+        again = at[known[j] == t[at]]
+        dup[again] = True
+        ooo[again] = False
     reason[dup] = 5
     reason[ooo] = 6
     keep = reason == 0
