@@ -46,7 +46,16 @@ ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT / "tests" / "daemon"))
 sys.path.insert(0, str(ROOT / "tests"))
 
-from killrun import KillRun, Piped, Plan, fsize_limit, metric, scrape, wait_until, without_dac_override
+from killrun import (
+    KillRun,
+    Piped,
+    Plan,
+    fsize_limit,
+    metric,
+    scrape,
+    wait_until,
+    without_dac_override,
+)
 
 from conftest import shiftwatch_command
 from shiftwatch.broker import MosquittoBroker, free_port

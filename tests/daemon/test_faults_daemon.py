@@ -21,7 +21,16 @@ from shiftwatch.broker import MosquittoBroker, free_port
 from shiftwatch.mqtt import PlainClient
 
 from .conftest import Collector
-from .killrun import KillRun, Piped, Plan, fsize_limit, metric, scrape, wait_until, without_dac_override
+from .killrun import (
+    KillRun,
+    Piped,
+    Plan,
+    fsize_limit,
+    metric,
+    scrape,
+    wait_until,
+    without_dac_override,
+)
 
 T0 = 1_790_000_000.0
 
