@@ -42,6 +42,7 @@ def reasons(out: Decoded) -> list[str]:
 def check_invariants(out: Decoded, fmt: str) -> None:
     """What every result must satisfy, whatever the payload."""
     assert isinstance(out, Decoded)
+    assert out.readings or out.problems  # every payload is accounted for
     for p in out.problems:
         assert isinstance(p, DecodeProblem)
         assert p.reason in REASONS, p
@@ -486,9 +487,10 @@ def test_senml_milliseconds_heuristic() -> None:
     ([{"n": "a", "v": None}], ["no_value"]),
     ([{"n": "a", "v": 1e308, "bv": 1e308}], ["infinite"]),                # bv + v overflows
     ([{"n": "a", "bt": 1e308, "t": 1e308, "v": 1}], ["bad_time"]),
-    ([{"n": "a", "s": 10}], []),                                          # sum only: skipped
+    ([{"n": "a", "s": 10}], ["empty"]),                                   # sum only: nothing to use
+    ([{"n": "a", "s": 10}, {"n": "a", "v": 1}], []),                      # sum skipped, value kept
     ([{"n": "a", "s": 10, "v": 2}], []),
-    ([{"bn": "a", "bt": 1, "bu": "g", "bv": 1, "bver": 10}], []),         # base only: skipped
+    ([{"bn": "a", "bt": 1, "bu": "g", "bv": 1, "bver": 10}], ["empty"]),  # base only: nothing to use
 ])
 def test_senml_bad_records(pack: list[Any], expected: list[str]) -> None:
     out = senml(pack)
