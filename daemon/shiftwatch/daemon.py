@@ -45,7 +45,8 @@ ROUND_BYTES = 2_000_000
 #: Bound of the queue between paho's thread and the main thread.
 QUEUE_MAX = 100_000
 #: The topic-to-stream-entry cache holds topics of at most SPEC_CACHE_TOPIC
-#: characters, and is emptied once it holds SPEC_CACHE_MIN + 2 * max_streams.
+#: characters, and is emptied once it holds SPEC_CACHE_MIN + max_streams
+#: (a topic gives one stream or more, so every live topic fits).
 SPEC_CACHE_TOPIC = 512
 SPEC_CACHE_MIN = 1000
 
@@ -157,7 +158,7 @@ class Daemon:
             # Topics come from publishers: a flood of new (or 64 KiB long) ones must
             # not grow the cache without bound.
             if len(topic) <= SPEC_CACHE_TOPIC:
-                if len(self._spec_cache) >= SPEC_CACHE_MIN + 2 * self.cfg.metrics.max_streams:
+                if len(self._spec_cache) >= SPEC_CACHE_MIN + self.cfg.metrics.max_streams:
                     self._spec_cache.clear()
                 self._spec_cache[topic] = spec
         return spec  # type: ignore[return-value]

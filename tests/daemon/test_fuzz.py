@@ -381,7 +381,7 @@ def test_flood_of_new_topics_keeps_the_cap_and_serves_the_old_stream(mosquitto: 
         assert drops(d) == {"stream_cap": n_flood - (cap - 1)}
         assert d.engines["fz/json/filler/head1"].samples_total == n_good
         # The cap's bookkeeping stays bounded: no per-topic memory of capped streams.
-        assert len(d._spec_cache) <= SPEC_CACHE_MIN + 2 * cap
+        assert len(d._spec_cache) <= SPEC_CACHE_MIN + cap
         assert len(d.rlog._last) <= 10 and len(d.rlog._held) <= 10
         assert sum("stream limit of 100 reached" in line for line in handler.lines) <= 2
         # The old stream's alerts are those of an engine fed only its own samples.
