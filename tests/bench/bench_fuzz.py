@@ -50,7 +50,7 @@ from typing import Any
 ROOT = Path(__file__).resolve().parents[2]
 sys.path[:0] = [str(ROOT), str(Path(__file__).resolve().parent)]
 
-from bench_daemon import RawPublisher, _die_with_parent, rss_kb, scrape, shiftwatch_command  # noqa: E402
+from bench_daemon import RawPublisher, _die_with_parent, rss_kb, scrape, shiftwatch_command
 
 T0 = 1_790_000_000.0
 GROWTH_TARGET = 0.10  # RSS growth after the cap is reached, as a fraction of the idle RSS
@@ -62,9 +62,9 @@ GROWTH_TARGET = 0.10  # RSS growth after the cap is reached, as a fraction of th
 def fuzz_decoders(n: int) -> dict[str, Any]:
     from hypothesis import given, settings
     from hypothesis import strategies as st
+    from tests.daemon.fuzz_strategies import PATHS, PAYLOADS, PROPERTY
 
     from shiftwatch.decode import FORMATS, decode
-    from tests.daemon.fuzz_strategies import PATHS, PAYLOADS, PROPERTY
 
     tally: Counter[str] = Counter()
     errors: list[str] = []
@@ -100,10 +100,10 @@ def fuzz_decoders(n: int) -> dict[str, Any]:
 # ======================================================================
 def fuzz_path(n: int, tmp: Path) -> dict[str, Any]:
     from hypothesis import given, settings
-
-    from shiftwatch.broker import MosquittoBroker
     from tests.daemon import test_fuzz as tf
     from tests.daemon.fuzz_strategies import MESSAGES, PROPERTY
+
+    from shiftwatch.broker import MosquittoBroker
 
     broker = MosquittoBroker(workdir=tmp / "path-broker").start()
     tally: Counter[str] = Counter()

@@ -37,9 +37,10 @@ import threading
 import time
 import urllib.request
 from collections import Counter as Tally
+from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any
 
 import numpy as np
 import paho.mqtt.client as paho
@@ -60,6 +61,8 @@ from shiftwatch.metrics import Metrics
 from shiftwatch.mqtt import PlainClient
 
 from .conftest import Collector
+from .test_daemon_mqtt import JSON_STREAM, metric_value, wait_metric
+from .test_daemon_process import wait_until
 from .fuzz_strategies import HOSTILE_PIECES, MESSAGES, PROPERTY, TOPIC_TEXT, is_safe
 
 T0 = 1_790_000_000.0
@@ -121,15 +124,6 @@ def live_daemon(broker: MosquittoBroker, state: Path, *, max_streams: int, clien
         daemon.shutdown()
         seen.client.stop()
         log.removeHandler(handler)
-
-
-def wait_until(pred: Any, timeout: float = 20.0) -> bool:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if pred():
-            return True
-        time.sleep(0.01)
-    return False
 
 
 def deliver(daemon: Daemon, topic: bytes, payload: bytes, *, mid: int = 0, qos: int = 0) -> None:
@@ -398,12 +392,7 @@ def test_flood_of_new_topics_keeps_the_cap_and_serves_the_old_stream(mosquitto: 
 # ---------------------------------------------------------------------------
 # The real daemon as a process, bad input published through the broker.
 
-JSON_GOOD = """\
-  - topic: brackenfield/line2/filler/+/fill
-    format: json
-    value: weight_g
-    time: ts
-    unit: g
+JSON_GOOD = JSON_STREAM + """\
   - topic: brackenfield/line2/oven/+
     format: senml
   - topic: brackenfield/line2/capper/+
@@ -489,8 +478,6 @@ def test_real_daemon_under_bad_input_keeps_the_good_stream_exact(daemon_factory,
     capped = n * per - (CAP - 1 - odd)
     want["stream_cap"] = capped
     total = n * (2 * per + 1) + odd
-    from .test_daemon_mqtt import metric_value, wait_metric
-
     text = wait_metric(d, "shiftwatch_messages_received_total", total, timeout=120)
     assert alerts.wait_for(lambda items: any(b.get("phase") == "confirmed" for _, b in items))
     text = wait_metric(d, "shiftwatch_samples_total", n, stream=topic)
