@@ -89,7 +89,7 @@ def _json(doc: Any) -> bytes:
 #: 4300-digit int-string limit), giant arrays, SenML with missing or
 #: conflicting base fields, oversized messages, invalid UTF-8.
 SPECIAL_PAYLOADS = st.sampled_from([
-    b"[" * 100_000, b"[" * 50_000 + b"]" * 50_000, b'{"v":' * 40 + b"1" + b"}" * 40,
+    b"[" * 100_000, b"[" * 65_000, b"[" * 30_000 + b"]" * 30_000, b'{"v":' * 40 + b"1" + b"}" * 40,
     b"NaN", b"Infinity", b"-Infinity", b'{"v": NaN, "ts": 1790000000}', b'{"v": Infinity}',
     b'{"value": -Infinity}', b'"12.5"', b'{"v": "12.5"}', b'{"value": "1e3"}', b'[{"n": "a", "v": "7"}]',
     str(10**400).encode(), b'{"v": ' + str(10**400).encode() + b"}", b"9" * 5000, b'{"v": ' + b"9" * 5000 + b"}",

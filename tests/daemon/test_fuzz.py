@@ -409,7 +409,7 @@ BAD = [
     ("brackenfield/line2/filler/head9/fill", b'{"weight_g": Infinity, "ts": 1790000000}', "infinite"),
     ("brackenfield/line2/filler/head9/fill", b'{"weight_g": ' + str(10**400).encode() + b"}", "infinite"),
     ("brackenfield/line2/filler/head9/fill", b'{"weight_g": 1, "ts": ' + b"9" * 5000 + b"}", "bad_time"),
-    ("brackenfield/line2/filler/head9/fill", b"[" * 5000, "too_deep"),
+    ("brackenfield/line2/filler/head9/fill", b"[" * 65_000, "too_deep"),
     ("brackenfield/line2/filler/head9/fill", b"1" * 65537, "too_large"),
     ("brackenfield/line2/filler/head9/fill", b'{"ts": 5}', "no_value"),
     ("brackenfield/line2/filler/head9/fill", b'{"weight_g": true}', "not_a_number"),
