@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import difflib
 import math
+import re
 from dataclasses import MISSING, dataclass, field, fields
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable
@@ -160,6 +161,9 @@ STREAM_KEYS = {
     "value": Key(_str(), "value", "key or dot path of the value in a JSON payload"),
     "time": Key(_optional(_str()), None, "key or dot path of the time stamp in a JSON payload (absent: arrival time)"),
     "unit": Key(_optional(_str()), None, "unit of the readings, shown in alerts"),
+    "label": Key(_optional(_str()), None, "what operators call the stream, used in alert summaries; "
+                 "{1}, {2}, ... stand for the topic levels matched by each +, {#} for those matched "
+                 "by #, {name} for the SenML name"),
     "detection": Key(lambda v: v, None, "per-stream overrides of the detection settings"),
 }
 
@@ -219,6 +223,7 @@ class StreamConfig:
     value: str = "value"
     time: str | None = None
     unit: str | None = None
+    label: str | None = None
     detection: DetectionSettings = field(default_factory=DetectionSettings)
 
 
@@ -262,13 +267,62 @@ class Config:
         A SenML stream is named ``topic/name``: when the name alone matches no
         filter, shorter prefixes are tried (a SenML name may hold '/' too).
         """
+        m = self._match(stream)
+        return None if m is None else m[0]
+
+    def label_for(self, stream: str) -> str | None:
+        """The operator's name of a stream: its entry's ``label`` with the placeholders filled.
+
+        Examples
+        --------
+        >>> cfg = Config(streams=(StreamConfig("plant/line2/+/fill", label="fill weight, filler {1}"),
+        ...                       StreamConfig("plant/oven", format="senml", label="oven {name}")))
+        >>> cfg.label_for("plant/line2/head7/fill"), cfg.label_for("plant/oven/zone3")
+        ('fill weight, filler head7', 'oven zone3')
+        >>> cfg.label_for("plant/line9/head1/fill") is None
+        True
+        """
+        m = self._match(stream)
+        if m is None:
+            return None
+        sc, topic, name = m
+        if sc.label is None:
+            return None
+        plus, rest = _captures(sc.topic, topic)
+
+        def fill(mo: re.Match[str]) -> str:
+            key = mo.group(1)
+            if key == "name":
+                return name
+            if key == "#":
+                return rest
+            i = int(key) - 1
+            return plus[i] if 0 <= i < len(plus) else mo.group(0)
+
+        return _PLACEHOLDER.sub(fill, sc.label)
+
+    def _match(self, stream: str) -> tuple[StreamConfig, str, str] | None:
+        """(entry, topic, SenML name or "") for a stream name."""
         levels = stream.split("/")
         for cut in range(len(levels), 0, -1):
             topic = "/".join(levels[:cut])
             for sc in self.streams:
                 if (cut == len(levels) or sc.format == "senml") and topic_matches(sc.topic, topic):
-                    return sc
+                    return sc, topic, "/".join(levels[cut:])
         return None
+
+
+#: Placeholders of a stream ``label``.
+_PLACEHOLDER = re.compile(r"\{(\d+|#|name)\}")
+
+
+def _captures(pattern: str, topic: str) -> tuple[list[str], str]:
+    """The topic levels matched by each ``+`` of a filter, and those matched by ``#``."""
+    p = pattern.split("/")
+    t = topic.split("/")
+    plus = [t[i] for i, part in enumerate(p) if part == "+" and i < len(t)]
+    rest = "/".join(t[len(p) - 1:]) if p and p[-1] == "#" else ""
+    return plus, rest
 
 
 def topic_matches(pattern: str, topic: str) -> bool:
@@ -402,6 +456,8 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
             spath = f"streams[{i}]"
             s, snodes = ld.section(item, STREAM_KEYS, spath)
             _check_filter(ld, s["topic"], f"{spath}.topic", snodes.get("topic"))
+            if s["label"] is not None:
+                _check_label(ld, s["label"], s["topic"], s["format"], f"{spath}.label", snodes.get("label"))
             s["detection"] = ld.detection(snodes.get("detection"), f"{spath}.detection", detection)
             streams.append(StreamConfig(**s))
     alerts, anodes = ld.section(nodes.get("alerts"), ALERTS_KEYS, "alerts")
@@ -436,6 +492,30 @@ def _check_filter(ld: _Loader, topic: str, path: str, node: yaml.Node | None) ->
             raise ld.error(path, f"'#' must be a whole last level of the filter: {topic!r}", node)
         if "+" in part and part != "+":
             raise ld.error(path, f"'+' must be a whole level of the filter: {topic!r}", node)
+
+
+def _check_label(ld: _Loader, label: str, topic: str, fmt: str, path: str, node: yaml.Node | None) -> None:
+    parts = topic.split("/")
+    n_plus = parts.count("+")
+    for mo in re.finditer(r"\{([^{}]*)\}", label):
+        key = mo.group(1)
+        if key.isdigit() and 1 <= int(key) <= n_plus:
+            continue
+        if key == "#" and parts[-1] == "#":
+            continue
+        if key == "name" and fmt == "senml":
+            continue
+        if key.isdigit():
+            why = f"the topic filter {topic!r} has {n_plus} '+' level{'' if n_plus == 1 else 's'}"
+        elif key == "#":
+            why = f"the topic filter {topic!r} does not end in '#'"
+        elif key == "name":
+            why = "only SenML streams have a name (format: senml)"
+        else:
+            why = "use {1}, {2}, ... for the levels matched by +, {#} for those matched by #, {name} for the SenML name"
+        raise ld.error(path, f"placeholder {mo.group(0)} cannot be filled: {why}", node)
+    if re.sub(r"\{[^{}]*\}", "", label).count("{") or re.sub(r"\{[^{}]*\}", "", label).count("}"):
+        raise ld.error(path, f"unbalanced brace in {label!r}", node)
 
 
 # ------------------------------------------------------------------ schema

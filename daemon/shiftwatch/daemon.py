@@ -28,7 +28,7 @@ import numpy as np
 from shiftwatch.config import Config, ConfigError, StreamConfig, load_config, topic_matches
 from shiftwatch.core.engine import AlertRecord, StreamEngine
 from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
-from shiftwatch.core.timefmt import format_time
+from shiftwatch.core.timefmt import format_duration, format_time
 from shiftwatch.decode import REASONS as DECODE_REASONS
 from shiftwatch.decode import decode, stream_name
 from shiftwatch.metrics import Metrics, MetricsServer, StreamStats
@@ -74,26 +74,49 @@ class RateLimitedLog:
                          exc_info=exc_info)
 
 
-def alert_summary(rec: AlertRecord) -> str:
-    """One line an operator reads at a glance.
+def alert_summary(rec: AlertRecord, label: str | None = None) -> str:
+    """One line an operator reads at a glance: what stepped, by how much, when, and how soon it was seen.
+
+    ``label`` is the operator's name of the stream (the config's ``label``);
+    without it the stream name is used.  Times are UTC.
 
     Examples
     --------
-    A record for a fill weight that stepped up is summarised as
-    ``CONFIRMED filler3/fill_g stepped up 0.9 g (1.1 sigma) at 06:24:59Z: 500 -> 500.9 g,
-    detected 18 s after the step``.
+    >>> rec = AlertRecord(id="ace7", phase="confirmed", stream="plant/line2/filler/head7/fill",
+    ...     detected_at=1772432601.0, shift_at=1772432592.0, shift_at_low=1772432590.0,
+    ...     shift_at_high=1772432593.0, level_before=500.03, level_after=501.83, delta=1.8,
+    ...     delta_sigma=2.1, sigma=0.86, n_before=1200, n_after=60, test="multi_cusum",
+    ...     statistic=1.02, threshold=1.0, as_of=1772432650.0, interval_level=0.9,
+    ...     level_before_se=0.02, level_after_se=0.1, f_stat=80.0, p_value=1e-15,
+    ...     direction="up", unit="g")
+    >>> alert_summary(rec, "fill weight on filler 7")
+    'CONFIRMED fill weight on filler 7 stepped up 1.8 g (2.1 sigma) at 06:23:12Z, detected 9 s later: 500.03 -> 501.83 g'
+    >>> alert_summary(rec)[:60]
+    'CONFIRMED plant/line2/filler/head7/fill stepped up 1.8 g (2.'
     """
     unit = f" {rec.unit}" if rec.unit else ""
+    who = label or rec.stream
     verb = {"detected": "DETECTED", "confirmed": "CONFIRMED", "dismissed": "DISMISSED"}[rec.phase]
-    when = format_time(rec.shift_at)[11:19] + "Z"
     if rec.phase == "dismissed":
-        return (f"{verb} {rec.stream}: the step detected at {format_time(rec.detected_at)[11:19]}Z "
-                f"did not last; level stays {rec.level_before:.4g}{unit}")
-    lag = rec.detected_at - rec.shift_at
-    lag_text = f"{lag:.1f} s" if lag < 10 else f"{lag:.0f} s"
-    return (f"{verb} {rec.stream} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
-            f"({abs(rec.delta_sigma):.2g} sigma) at {when}: {rec.level_before:.5g} -> "
-            f"{rec.level_after:.5g}{unit}, detected {lag_text} after the step")
+        return (f"{verb} {who}: the step detected at {_clock_utc(rec.detected_at)} did not last; "
+                f"the level stays {rec.level_before:.5g}{unit}, no action needed")
+    return (f"{verb} {who} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
+            f"({abs(rec.delta_sigma):.2g} sigma) at {_clock_utc(rec.shift_at)}, detected "
+            f"{_lag_text(rec.detected_at - rec.shift_at)} later: {rec.level_before:.5g} -> "
+            f"{rec.level_after:.5g}{unit}")
+
+
+def _clock_utc(t: float) -> str:
+    return format_time(t)[11:19] + "Z"
+
+
+def _lag_text(lag: float) -> str:
+    """A detection delay as an operator says it: 1.3 s, 9 s, 2.5 min."""
+    if lag < 10:
+        return f"{max(lag, 0.0):.1f} s".replace(".0 s", " s")
+    if lag < 120:
+        return f"{lag:.0f} s"
+    return format_duration(lag)
 
 
 @dataclass
@@ -401,7 +424,10 @@ class Daemon:
     def emit(self, rec: AlertRecord, arrived: float) -> None:
         """Publish an alert record (through the outbox) and log its summary."""
         d = rec.to_dict()
-        d["summary"] = alert_summary(rec)
+        label = self.cfg.label_for(rec.stream)
+        if label is not None:
+            d["label"] = label
+        d["summary"] = alert_summary(rec, label)
         payload = json.dumps(d).encode()
         topic = f"{self.prefix}/alerts/{rec.stream}"
         # Forced to disk at the end of the round, before the round's messages
@@ -410,7 +436,10 @@ class Daemon:
         self._publish(topic, payload, qos=self.cfg.alerts.qos, retain=False, key=item.key)
         self.records_published += 1
         self.metrics.alert_delay.observe(max(0.0, time.time() - arrived))
-        self.log.info("%s [id %s]", d["summary"], rec.id)
+        if label is None:
+            self.log.info("%s [id %s]", d["summary"], rec.id)
+        else:
+            self.log.info("%s [stream %s, id %s]", d["summary"], _printable(rec.stream), rec.id)
 
     def _publish_level(self, name: str, eng: StreamEngine) -> None:
         sent = self._levels_sent.get(name)
