@@ -70,8 +70,8 @@ class RateLimitedLog:
             self._last.clear()
             self._held.clear()
         self._last[key] = now
-        self.log.warning(text + (f" ({held} more like this in the last {self.every:.0f} s)" if held else ""),
-                         exc_info=exc_info)
+        more = f" ({held} more like this in the last {self.every:.0f} s)" if held else ""
+        self.log.warning(text + more, exc_info=exc_info)
 
 
 def alert_summary(rec: AlertRecord, label: str | None = None) -> str:
@@ -356,7 +356,7 @@ class Daemon:
             try:
                 dec = decode(m.payload, spec.format, value_path=spec.value, time_path=spec.time,
                              max_bytes=self.cfg.broker.max_payload_bytes, now=m.arrived)
-            except Exception:  # decode raises on no payload; a defect costs this message only
+            except Exception:  # decode never raises on a payload: a defect costs this message only
                 self._count_drop("internal_error")
                 self.rlog.warning("internal_error", f"internal error while decoding a message on "
                                   f"{_printable(m.topic)}; it was set aside", now, exc_info=True)
@@ -366,8 +366,8 @@ class Daemon:
                     self.rlog.warning("decode:no_time", f"message on {_printable(m.topic)}: {p.message}", now)
                     continue
                 self._count_drop(p.reason)
-                self.rlog.warning(f"decode:{p.reason}", f"message on {_printable(m.topic)} set aside "
-                                  f"({p.reason}): {p.message}", now)
+                self.rlog.warning(f"decode:{p.reason}", f"message on {_printable(m.topic)} "
+                                  f"set aside ({p.reason}): {p.message}", now)
             for r in dec.readings:
                 name = stream_name(m.topic, r.name)
                 g = groups.get(name)
@@ -381,8 +381,9 @@ class Daemon:
                 self._run_stream(name, g, now)
             except Exception:  # a defect must cost one stream's batch, never the daemon
                 self._count_drop("internal_error", len(g.values))
-                self.rlog.warning("internal_error", f"internal error while processing stream "
-                                  f"{_printable(name)}; its batch was set aside", now, exc_info=True)
+                self.rlog.warning("internal_error", "internal error while processing stream "
+                                  f"{_printable(name)}; its batch was set aside", now,
+                                  exc_info=True)
         try:
             self.outbox.sync()
         except OSError as exc:

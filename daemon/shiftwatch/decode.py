@@ -80,8 +80,9 @@ SenML specifics (RFC 8428)
   ``not_a_number`` for that record.  A record with a sum ``s`` and no value
   is skipped without a problem, and so is a record holding only base fields
   (it only sets base values for the records after it); a pack that holds
-  nothing else gives ``empty``, so every payload yields a reading or a problem.  Any other record
-  without a value field, or with more than one, is ``senml_invalid``.
+  nothing else gives ``empty``, so every payload yields a reading or a
+  problem.  Any other record without a value field, or with more than one,
+  is ``senml_invalid``.
 - A base field of the wrong type (``bn`` not text, ``bt`` not a number,
   ``bver`` not a positive integer or above 10, ...) makes its record
   ``senml_invalid``, and the broken base stays in force: later records that
@@ -759,7 +760,8 @@ def stream_name(topic: str, name: str | None) -> str:
     safe = _UNSAFE.sub("_", raw)
     if safe.count("/") >= MAX_STREAM_LEVELS:
         levels = safe.split("/")
-        safe = "/".join(levels[:MAX_STREAM_LEVELS - 1]) + "/" + "_".join(levels[MAX_STREAM_LEVELS - 1:])
+        keep = MAX_STREAM_LEVELS - 1
+        safe = "/".join(levels[:keep]) + "/" + "_".join(levels[keep:])
     if raw and safe == raw and len(raw) <= _MAX_STREAM:
         return raw
     digest = hashlib.sha256(raw.encode("utf-8", "surrogatepass")).hexdigest()[:_HASH_HEX]

@@ -284,7 +284,8 @@ class MqttLink:
         except Exception as exc:  # a callback must never raise into paho's loop
             # Acknowledged too, or the message would hold an in-flight slot for good.
             # MQTT topics are UTF-8; paho hands over whatever the broker sent.
-            self._on_drop("topic_not_utf8" if isinstance(exc, UnicodeDecodeError) else "internal_error")
+            bad_topic = isinstance(exc, UnicodeDecodeError)
+            self._on_drop("topic_not_utf8" if bad_topic else "internal_error")
             try:
                 self.ack(int(msg.mid), int(msg.qos))
             except Exception:

@@ -45,7 +45,7 @@ from typing import Any
 import numpy as np
 import paho.mqtt.client as paho
 import pytest
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 from prometheus_client.parser import text_string_to_metric_families
 
@@ -61,9 +61,9 @@ from shiftwatch.metrics import Metrics
 from shiftwatch.mqtt import PlainClient
 
 from .conftest import Collector
+from .fuzz_strategies import HOSTILE_PIECES, MESSAGES, PROPERTY, TOPIC_TEXT, is_safe
 from .test_daemon_mqtt import JSON_STREAM, metric_value, wait_metric
 from .test_daemon_process import wait_until
-from .fuzz_strategies import HOSTILE_PIECES, MESSAGES, PROPERTY, TOPIC_TEXT, is_safe
 
 T0 = 1_790_000_000.0
 PREFIX = "fzsw"
@@ -214,12 +214,23 @@ def check_published(daemon: Daemon, seen: Collector) -> None:
 # ---------------------------------------------------------------------------
 # Properties over the whole path.
 
+#: One message for each reason the property must meet at least once.
+EVERY_REASON = [
+    (b"fz/json/a", b"\xff"), (b"fz/json/a", b"{"), (b"fz/json/a", b"[" * 65_000),
+    (b"fz/json/a", b"1" * 65_537), (b"fz/json/a", b'{"v": NaN}'), (b"fz/json/a", b'{"v": 1e999}'),
+    (b"fz/json/a", b'{"v": "12.5"}'), (b"fz/batch/a", b"[" + b"1," * 10_000 + b"1]"),
+    (b"fz/senml/a", b'[{"n": "a b", "v": 1}]'), (b"fz/senml/a", b'[{"bn": "a"}]'),
+    (b"other/a", b"1"), (b"fz/num/\xff", b"1"),
+] + [(f"fz/num/cap{k}".encode(), b"1") for k in range(30)]
+
+
 def test_property_every_message_is_accounted_for(mosquitto: MosquittoBroker, tmp_path: Path) -> None:
     with live_daemon(mosquitto, tmp_path / "state", max_streams=25, client_id="fz-prop") as (d, seen, _):
         tally: Tally[str] = Tally()
 
         @settings(PROPERTY, max_examples=1200)
         @given(msgs=MESSAGES)
+        @example(msgs=EVERY_REASON)  # so each reason below is met, whatever hypothesis draws
         def prop(msgs: list[tuple[bytes, bytes]]) -> None:
             before_r, before_d, before_s = received(d), drops(d), samples(d)
             expected = [units(d, t, p) for t, p in msgs]
