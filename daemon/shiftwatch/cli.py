@@ -435,24 +435,45 @@ def cmd_run(args: argparse.Namespace) -> int:
     return Daemon(cfg, config_path=args.config, logger=log).run()
 
 
+#: Where systemd puts a system service's credentials (systemd.exec(5), LoadCredential=).
+CREDENTIALS_DIR = "/run/credentials/"
+
+
 def config_warnings(path: str, cfg: Any) -> list[str]:
-    """Warnings about a configuration that is valid but risky."""
+    """Warnings about a configuration that is valid but risky.
+
+    A file that holds a secret (the broker password file, a private key) and
+    the configuration file that names one should be readable by their owner
+    only; a metrics endpoint reachable from other hosts should use TLS.
+    """
     import os
     import stat
 
+    from shiftwatch.metrics import parse_listen
+
+    b, m = cfg.broker, cfg.metrics
+    secrets = [("broker.password_file", b.password_file),
+               ("broker.tls.key_file", b.tls.key_file if b.tls else None),
+               ("metrics.tls.key_file", m.tls.key_file if m.tls else None)]
+    files = [(label, fpath, "") for label, fpath in secrets if fpath]
+    # A systemd credential (LoadCredential=) is readable by the service alone: a configuration
+    # that leads only to such files need not be hidden.
+    exposed = [f for _, f, _ in files if not f.startswith(CREDENTIALS_DIR)]
+    if exposed or b.password_env:
+        files.insert(0, ("configuration file", path, " and it leads to a secret"))
     out = []
-    b = cfg.broker
-    for label, fpath in (("configuration file", path), ("broker.password_file", b.password_file)):
-        if not fpath:
-            continue
+    for label, fpath, why in files:
         try:
             mode = os.stat(fpath).st_mode
         except OSError:
-            continue
-        if label == "configuration file" and not b.password_file and not b.password_env:
-            continue
+            continue  # a missing file is reported where it is used
         if mode & (stat.S_IRWXG | stat.S_IRWXO):
-            out.append(f"{label} {fpath} is readable by other users; it leads to a secret: chmod 600 it")
+            out.append(f"{label} {fpath} is readable by other users "
+                       f"(mode {stat.S_IMODE(mode):04o}){why}; chmod 600 it")
+    host = parse_listen(m.listen)[0]
+    if m.tls is None and host not in ("127.0.0.1", "::1", "localhost"):
+        out.append(f"metrics.listen {m.listen} is reachable from other hosts and metrics.tls "
+                   "is not set: the metrics are served in the clear")
     return out
 
 

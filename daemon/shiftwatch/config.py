@@ -176,11 +176,31 @@ ALERTS_KEYS = {
 METRICS_KEYS = {
     "listen": Key(_str(), "127.0.0.1:9650", "host:port of the Prometheus endpoint"),
     "max_streams": Key(_num(integer=True), 10000, "most streams tracked (and labelled in metrics)"),
+    "tls": Key(lambda v: v, None,
+               "serve the metrics over HTTPS: cert_file, key_file, client_ca_file"),
+}
+
+METRICS_TLS_KEYS = {
+    "cert_file": Key(_str(), MISSING,
+                     "server certificate (PEM, leaf first) of the metrics endpoint",
+                     {"type": "string"}),
+    "key_file": Key(_str(), MISSING, "private key (PEM) of that certificate", {"type": "string"}),
+    "client_ca_file": Key(_optional(_str()), None,
+                          "CA (PEM) that signs scrapers' client certificates; "
+                          "when set, scrapers must present one",
+                          {"type": ["string", "null"]}),
 }
 
 STATE_KEYS = {
     "dir": Key(_str(), "/var/lib/shiftwatch", "directory for snapshots and the alert outbox"),
     "snapshot_every": Key(_duration, "60s", "how often stream state is snapshotted"),
+}
+
+#: Keys that are refused on purpose, with the reason given instead of "unknown key".
+REFUSED_KEYS = {
+    "broker.password": "a password is not accepted in the configuration file; put it in a "
+                       "file named by broker.password_file (chmod 600) or in the variable "
+                       "named by broker.password_env",
 }
 
 TOP_KEYS = {
@@ -235,9 +255,17 @@ class AlertsConfig:
 
 
 @dataclass(frozen=True)
+class MetricsTlsConfig:
+    cert_file: str
+    key_file: str
+    client_ca_file: str | None = None
+
+
+@dataclass(frozen=True)
 class MetricsConfig:
     listen: str = "127.0.0.1:9650"
     max_streams: int = 10000
+    tls: MetricsTlsConfig | None = None
 
 
 @dataclass(frozen=True)
@@ -379,6 +407,8 @@ class _Loader:
         for knode, vnode in ([] if empty else node.value):  # type: ignore[union-attr]
             key = self.plain(knode)
             kpath = f"{path}.{key}" if path else str(key)
+            if kpath in REFUSED_KEYS:
+                raise self.error(kpath, REFUSED_KEYS[kpath], knode)
             if not isinstance(key, str) or key not in keys:
                 hint = difflib.get_close_matches(str(key), list(keys), n=1)
                 msg = "unknown key"
@@ -442,6 +472,10 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
     url = b["url"]
     if not (url.startswith("mqtt://") or url.startswith("mqtts://")):
         raise ld.error("broker.url", f"must start with mqtt:// or mqtts://, got {url!r}", bnodes.get("url"))
+    if "@" in url.split("://", 1)[1].split("/", 1)[0]:
+        # Not echoed: what stands before the @ may be a password.
+        raise ld.error("broker.url", "must not hold a user name or password; use broker.username "
+                       "and broker.password_file or broker.password_env", bnodes.get("url"))
     if b["qos"] not in (0, 1):
         raise ld.error("broker.qos", f"must be 0 or 1, got {b['qos']}", bnodes.get("qos"))
     b["tls"] = tls
@@ -473,6 +507,10 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
     host, sep, port = metrics["listen"].rpartition(":")
     if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:
         raise ld.error("metrics.listen", f"must be host:port, got {metrics['listen']!r}", mnodes.get("listen"))
+    metrics["tls"] = None
+    if "tls" in mnodes:
+        mt, _ = ld.section(mnodes["tls"], METRICS_TLS_KEYS, "metrics.tls")
+        metrics["tls"] = MetricsTlsConfig(**mt)
     state, _ = ld.section(nodes.get("state"), STATE_KEYS, "state")
     return Config(
         broker=broker,
@@ -551,7 +589,8 @@ def json_schema() -> dict[str, Any]:
         "streams": {"type": "array", "items": stream},
         "detection": detection,
         "alerts": obj(ALERTS_KEYS),
-        "metrics": obj(METRICS_KEYS),
+        "metrics": obj(METRICS_KEYS,
+                       {"tls": obj(METRICS_TLS_KEYS, required=("cert_file", "key_file"))}),
         "state": obj(STATE_KEYS),
     })
     top["$schema"] = "https://json-schema.org/draft/2020-12/schema"

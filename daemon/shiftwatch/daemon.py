@@ -228,9 +228,18 @@ class Daemon:
     def start(self) -> None:
         """Everything up to the point where messages flow: state, metrics, broker, outbox."""
         self.restore()
-        host, _, port = self.cfg.metrics.listen.rpartition(":")
-        self.server = self.metrics.serve(self.cfg.metrics.listen)
-        self.log.info("metrics on http://%s:%d/metrics", host or "0.0.0.0", self.server.port)
+        mtls = self.cfg.metrics.tls
+        try:
+            self.server = self.metrics.serve(
+                self.cfg.metrics.listen, certfile=mtls.cert_file if mtls else None,
+                keyfile=mtls.key_file if mtls else None,
+                client_cafile=mtls.client_ca_file if mtls else None)
+        except OSError as exc:
+            what = "metrics.tls: " if mtls else ""
+            raise OSError(f"metrics endpoint {self.cfg.metrics.listen}: {what}{exc}") from None
+        self.log.info("metrics on %s://%s:%d/metrics%s", "https" if mtls else "http",
+                      self.server.host, self.server.port,
+                      " (client certificates required)" if mtls and mtls.client_ca_file else "")
         password = read_password(self.cfg.broker, self.env)
         self.link = MqttLink(
             self.cfg.broker,
