@@ -19,6 +19,7 @@ from typing import TYPE_CHECKING, Any, Callable
 
 from shiftwatch.core.settings import TEST_NAMES, DetectionSettings
 from shiftwatch.core.timefmt import parse_duration
+from shiftwatch.decode import MAX_PREFIX_LEVELS, stream_name
 
 if TYPE_CHECKING:
     import yaml
@@ -504,9 +505,12 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
             s["detection"] = ld.detection(snodes.get("detection"), f"{spath}.detection", detection)
             streams.append(StreamConfig(**s))
     alerts, anodes = ld.section(nodes.get("alerts"), ALERTS_KEYS, "alerts")
-    if any(c in alerts["topic_prefix"] for c in "+#") or alerts["topic_prefix"].endswith("/"):
-        raise ld.error("alerts.topic_prefix", "must be a plain topic without + or # and without a trailing /",
-                       anodes.get("topic_prefix"))
+    prefix = alerts["topic_prefix"]
+    if (stream_name(prefix, None) != prefix or prefix.endswith("/")
+            or prefix.count("/") >= MAX_PREFIX_LEVELS):
+        raise ld.error("alerts.topic_prefix", "must be a plain topic of at most "
+                       f"{MAX_PREFIX_LEVELS} levels and 256 characters, without + or #, control "
+                       "characters or a trailing /", anodes.get("topic_prefix"))
     if alerts["qos"] not in (0, 1, 2):
         raise ld.error("alerts.qos", f"must be 0, 1 or 2, got {alerts['qos']}", anodes.get("qos"))
     metrics, mnodes = ld.section(nodes.get("metrics"), METRICS_KEYS, "metrics")

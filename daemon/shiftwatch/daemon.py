@@ -46,6 +46,11 @@ DRAIN = 20000
 ROUND_BYTES = 2_000_000
 #: Bound of the queue between paho's thread and the main thread.
 QUEUE_MAX = 100_000
+#: The topic-to-stream-entry cache holds topics of at most SPEC_CACHE_TOPIC
+#: characters, and is emptied once it holds SPEC_CACHE_MIN + max_streams
+#: (a topic gives one stream or more, so every live topic fits).
+SPEC_CACHE_TOPIC = 512
+SPEC_CACHE_MIN = 1000
 
 
 class RateLimitedLog:
@@ -57,16 +62,18 @@ class RateLimitedLog:
         self._last: dict[str, float] = {}
         self._held: dict[str, int] = {}
 
-    def warning(self, key: str, text: str, now: float) -> None:
+    def warning(self, key: str, text: str, now: float, *, exc_info: bool = False) -> None:
         last = self._last.get(key)
         if last is not None and now - last < self.every:
             self._held[key] = self._held.get(key, 0) + 1
             return
         held = self._held.pop(key, 0)
-        if len(self._last) > 1000:  # keys come from input: keep the table bounded
+        if len(self._last) > 1000:  # keep the tables bounded whatever the keys
             self._last.clear()
+            self._held.clear()
         self._last[key] = now
-        self.log.warning(text + (f" ({held} more like this in the last {self.every:.0f} s)" if held else ""))
+        more = f" ({held} more like this in the last {self.every:.0f} s)" if held else ""
+        self.log.warning(text + more, exc_info=exc_info)
 
 
 def alert_summary(rec: AlertRecord, label: str | None = None) -> str:
@@ -175,9 +182,12 @@ class Daemon:
         spec = self._spec_cache.get(topic, False)
         if spec is False:
             spec = next((s for s in self.cfg.streams if topic_matches(s.topic, topic)), None)
-            if len(self._spec_cache) > 100_000:
-                self._spec_cache.clear()
-            self._spec_cache[topic] = spec
+            # Topics come from publishers: a flood of new (or 64 KiB long) ones must
+            # not grow the cache without bound.
+            if len(topic) <= SPEC_CACHE_TOPIC:
+                if len(self._spec_cache) >= SPEC_CACHE_MIN + self.cfg.metrics.max_streams:
+                    self._spec_cache.clear()
+                self._spec_cache[topic] = spec
         return spec  # type: ignore[return-value]
 
     # ----------------------------------------------------------- signals
@@ -276,7 +286,7 @@ class Daemon:
             subscriptions=[s.topic for s in self.cfg.streams],
             status_topic=self.status_topic(),
             inbox=self.inbox,
-            on_drop=self._count_drop,
+            on_drop=self._count_handover_drop,
             on_published=self._published,
             on_connection=self._connection,
             logger=self.log,
@@ -394,15 +404,21 @@ class Daemon:
             if spec is None:
                 self._count_drop("no_matching_stream")
                 continue
-            dec = decode(m.payload, spec.format, value_path=spec.value, time_path=spec.time,
-                         max_bytes=self.cfg.broker.max_payload_bytes, now=m.arrived)
+            try:
+                dec = decode(m.payload, spec.format, value_path=spec.value, time_path=spec.time,
+                             max_bytes=self.cfg.broker.max_payload_bytes, now=m.arrived)
+            except Exception:  # decode never raises on a payload: a defect costs this message only
+                self._count_drop("internal_error")
+                self.rlog.warning("internal_error", f"internal error while decoding a message on "
+                                  f"{_printable(m.topic)}; it was set aside", now, exc_info=True)
+                continue
             for p in dec.problems:
                 if p.reason == "no_time":  # the reading is used, with its arrival time
                     self.rlog.warning("decode:no_time", f"message on {_printable(m.topic)}: {p.message}", now)
                     continue
                 self._count_drop(p.reason)
-                self.rlog.warning(f"decode:{p.reason}", f"message on {_printable(m.topic)} set aside: "
-                                  f"{p.message}", now)
+                self.rlog.warning(f"decode:{p.reason}", f"message on {_printable(m.topic)} "
+                                  f"set aside ({p.reason}): {p.message}", now)
             for r in dec.readings:
                 name = stream_name(m.topic, r.name)
                 g = groups.get(name)
@@ -419,8 +435,9 @@ class Daemon:
                     fed.append(jg)
             except Exception:  # a defect must cost one stream's batch, never the daemon
                 self._count_drop("internal_error", len(g.values))
-                self.log.exception("internal error while processing stream %s; its batch was set aside",
-                                   _printable(name))
+                self.rlog.warning("internal_error", "internal error while processing stream "
+                                  f"{_printable(name)}; its batch was set aside", now,
+                                  exc_info=True)
         try:
             self.outbox.sync()
         except OSError as exc:
@@ -458,9 +475,9 @@ class Daemon:
         arrivals = np.asarray(g.arrived, dtype=np.float64)
         res = eng.process(times, values, arrivals)
         for rej in res.rejected:
-            if rej.reason != "spike":
-                self.rlog.warning(f"sample:{name}:{rej.reason}",
-                                  f"sample of {_printable(name)} set aside: {SAMPLE_REASONS[rej.reason]}", now)
+            if rej.reason != "spike":  # one key per reason: many streams cannot multiply the lines
+                self.rlog.warning(f"sample:{rej.reason}", f"sample of {_printable(name)} set aside "
+                                  f"({rej.reason}): {SAMPLE_REASONS[rej.reason]}", now)
         for rec in res.records:
             j = int(np.searchsorted(times, rec.as_of))
             arrived = g.arrived[min(j, len(g.arrived) - 1)]
@@ -555,6 +572,11 @@ class Daemon:
                        "a crash loses the samples processed since the last one", self.store.directory,
                        exc.strerror or exc)
 
+    def _count_handover_drop(self, reason: str) -> None:
+        """A message paho's thread could not hand over: it was received all the same."""
+        self.metrics.messages_received.inc()
+        self._count_drop(reason)
+
     # --------------------------------------------------------- snapshots
     def snapshot(self) -> bool:
         """Save every engine's state; a new journal starts with the snapshot."""
@@ -641,8 +663,8 @@ def _stats(eng: StreamEngine) -> StreamStats:
 
 def _printable(text: str, limit: int = 120) -> str:
     """Topic or stream text made safe for one log line."""
-    clean = "".join(c if c.isprintable() else "?" for c in text)
-    return clean if len(clean) <= limit else clean[:limit] + "..."
+    clean = "".join(c if c.isprintable() else "?" for c in text[:limit])
+    return clean if len(text) <= limit else clean + "..."
 
 
 __all__ = ["Daemon", "alert_summary", "DECODE_REASONS"]

@@ -356,8 +356,15 @@ class MqttLink:
                 # the broker's few in-flight slots and stall the whole flow.
                 self.ack(int(msg.mid), int(msg.qos))
                 self._on_drop("queue_full")
-        except Exception:  # a callback must never raise into paho's loop
-            self._on_drop("internal")
+        except Exception as exc:  # a callback must never raise into paho's loop
+            # Acknowledged too, or the message would hold an in-flight slot for good.
+            # MQTT topics are UTF-8; paho hands over whatever the broker sent.
+            bad_topic = isinstance(exc, UnicodeDecodeError)
+            self._on_drop("topic_not_utf8" if bad_topic else "internal_error")
+            try:
+                self.ack(int(msg.mid), int(msg.qos))
+            except Exception:
+                pass
 
     def _handle_publish(self, client: paho.Client, userdata: Any, mid: int, reason: Any,
                         properties: Any) -> None:

@@ -18,7 +18,7 @@ from numpy.typing import NDArray
 REASONS: dict[str, str] = {
     "not_a_number": "value is not a number",
     "nan": "value is NaN",
-    "infinite": "value is infinite",
+    "infinite": "value is infinite or beyond 1e150 in magnitude",
     "bad_time": "time stamp is missing, not finite or unreadable",
     "duplicate_time": "time stamp repeats one already accepted for this stream",
     "out_of_order": "time stamp is earlier than one already accepted for this stream",
@@ -27,6 +27,12 @@ REASONS: dict[str, str] = {
     "time_behind": "time stamp is too far behind the receiving clock",
     "stream_cap": "stream limit reached; new stream not admitted",
 }
+
+
+#: Largest magnitude of an accepted value.  Squares and sums of squares of
+#: larger (finite) values overflow inside the baseline and the step fit; no
+#: reading of a production line comes near it.
+MAX_ABS_VALUE = 1e150
 
 
 @dataclass(frozen=True)
@@ -128,7 +134,7 @@ def screen_samples(
         lag = arr - t
     if n and t.shape == v.shape and not bad_t.any() and not bad_v.any():
         # Fast path for the common case: all finite, strictly increasing, within the limits.
-        if (t[0] > last_time and np.isfinite(v).all() and np.isfinite(t[-1])
+        if (t[0] > last_time and bool((np.abs(v) <= MAX_ABS_VALUE).all()) and np.isfinite(t[-1])
                 and (n == 1 or bool((t[1:] > t[:-1]).all()))
                 and (lag is None or _within(lag, max_ahead, max_behind))):
             return Screened(times=t, values=v, kept=np.arange(n), rejected=[])
@@ -138,7 +144,7 @@ def screen_samples(
     reason = np.zeros(n, dtype=np.int8)  # 0 = accepted
     codes = ["", "not_a_number", "nan", "infinite", "bad_time", "duplicate_time", "out_of_order",
              "time_ahead", "time_behind"]
-    reason[np.isinf(v)] = 3
+    reason[~(np.abs(v) <= MAX_ABS_VALUE)] = 3  # infinite, or too large to compute with
     reason[np.isnan(v)] = 2
     reason[bad_v] = 1
     if lag is not None:
