@@ -140,7 +140,7 @@ def reading_quantum(x: FloatArray) -> float:
     return float(np.min(gaps[gaps != 0]))
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, slots=True)
 class Baseline:
     """A stream's in-control reference.
 
