@@ -532,6 +532,12 @@ class Daemon:
         now_state = (eng.state, eng.level, eng.sigma)
         if sent == now_state or eng.level is None:
             return
+        if self.link is None or not self.link.connected:
+            # Not handed to paho while the broker is away: paho would hold every
+            # update in memory and its 16-bit message ids would wrap in a long
+            # outage.  The stream's latest level goes out with its next sample
+            # after the reconnect (the broker keeps the last retained one).
+            return
         self._levels_sent[name] = now_state
         body = {"stream": name, "state": eng.state, "level": eng.level, "sigma": eng.sigma,
                 "unit": eng.unit, "last_shift_at": None if eng.last_shift_at is None
