@@ -156,12 +156,13 @@ def test_a_stream_whose_name_was_cut_survives_restore_replay_and_reload(
     name = stream_name(topic, None)
     assert name != topic and cfg.stream_for(name) is None  # the name alone matches no entry
 
+    t0 = 1.79e9
     x = 500.0 + 0.5 * np.random.default_rng(5).standard_normal(900)
     x[700:] += 1.5
 
     def msgs(lo: int, hi: int) -> list[Message]:
-        return [Message(topic=topic, payload=json.dumps({"v": float(x[i]), "ts": 1.79e9 + i}).encode(),
-                        arrived=1.79e9 + i, mid=0, qos=0) for i in range(lo, hi)]
+        return [Message(topic=topic, payload=json.dumps({"v": float(x[i]), "ts": t0 + i}).encode(),
+                        arrived=t0 + i, mid=0, qos=0) for i in range(lo, hi)]
 
     def start() -> Daemon:
         d = Daemon(load_config(str(path)), config_path=str(path), metrics=Metrics())
