@@ -10,6 +10,7 @@ engines' state.
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import json
 import logging
@@ -337,6 +338,8 @@ class Daemon:
         next_snap = time.monotonic() + self.cfg.state.snapshot_every
         while not self._stop.is_set():
             self.round(timeout=0.2)
+            if self.journal is not None:
+                self.journal.sync_if_due()
             now = time.monotonic()
             if wd is not None and now >= next_wd:
                 sd_notify("WATCHDOG=1", env=self.env)
@@ -553,7 +556,10 @@ class Daemon:
             if mid in self._early_acks:
                 del self._early_acks[mid]
                 if key is not None:
-                    self.outbox.remove(key)
+                    try:
+                        self.outbox.remove(key)
+                    except OSError as exc:  # as in _published: counted, never the stream's batch
+                        self._outbox_failed(exc, time.time())
             else:
                 self._mid_key[mid] = key
 
@@ -650,7 +656,10 @@ class Daemon:
             else:
                 kept += 1
             self._filters[name] = spec.topic
-        self.cfg = new
+        # Only what the README says a reload changes: the other sections (the
+        # prefix of the status topic and last will, the broker link, the
+        # endpoint, the state directory) stay as they were until the next start.
+        self.cfg = dataclasses.replace(self.cfg, streams=new.streams, detection=new.detection)
         self._spec_cache.clear()
         if self.link is not None:
             self.link.set_subscriptions(sorted(new_filters), added=sorted(new_filters - old_filters),
