@@ -299,17 +299,25 @@ class Config:
         sc = self.stream_for(stream)
         return self.detection if sc is None else sc.detection
 
-    def stream_for(self, stream: str) -> StreamConfig | None:
+    def stream_for(self, stream: str, topic_filter: str | None = None) -> StreamConfig | None:
         """The stream entry whose filter matches the stream's topic.
 
         A SenML stream is named ``topic/name``: when the name alone matches no
         filter, shorter prefixes are tried (a SenML name may hold '/' too).
+        ``topic_filter`` is the ``topic`` of the entry the stream was made for,
+        when known: the entry with that filter is the answer if there is one.
+        It matters for a name that :func:`~shiftwatch.decode.stream_name` had
+        to change (a topic of more than 256 characters ends in ``~`` and a
+        hash, its last levels cut), which a filter like ``plant/+/fill`` no
+        longer matches.
         """
-        m = self._match(stream)
+        m = self._match(stream, topic_filter)
         return None if m is None else m[0]
 
-    def label_for(self, stream: str) -> str | None:
+    def label_for(self, stream: str, topic_filter: str | None = None) -> str | None:
         """The operator's name of a stream: its entry's ``label`` with the placeholders filled.
+
+        ``topic_filter`` is as in :meth:`stream_for`.
 
         Examples
         --------
@@ -320,7 +328,7 @@ class Config:
         >>> cfg.label_for("plant/line9/head1/fill") is None
         True
         """
-        m = self._match(stream)
+        m = self._match(stream, topic_filter)
         if m is None:
             return None
         sc, topic, name = m
@@ -339,9 +347,15 @@ class Config:
 
         return _PLACEHOLDER.sub(fill, sc.label)
 
-    def _match(self, stream: str) -> tuple[StreamConfig, str, str] | None:
+    def _match(self, stream: str, topic_filter: str | None = None
+               ) -> tuple[StreamConfig, str, str] | None:
         """(entry, topic, SenML name or "") for a stream name."""
         levels = stream.split("/")
+        sc = next((s for s in self.streams if s.topic == topic_filter), None)
+        if sc is not None:
+            p = sc.topic.split("/")
+            cut = len(levels) if p[-1] == "#" or sc.format != "senml" else min(len(p), len(levels))
+            return sc, "/".join(levels[:cut]), "/".join(levels[cut:])
         for cut in range(len(levels), 0, -1):
             topic = "/".join(levels[:cut])
             for sc in self.streams:

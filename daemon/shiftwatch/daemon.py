@@ -156,6 +156,9 @@ class Daemon:
         self.env = env
         self.inbox = Inbox(QUEUE_MAX)
         self.engines: dict[str, StreamEngine] = {}
+        # The ``topic`` of the config entry each engine was made for: a stream name
+        # that stream_name() had to change may match no filter of its entry any more.
+        self._filters: dict[str, str] = {}
         self._spec_cache: dict[str, StreamConfig | None] = {}
         state_dir = Path(cfg.state.dir)
         self.store = StateStore(state_dir / "snapshots", logger=self.log)
@@ -225,8 +228,12 @@ class Daemon:
                            self.store.directory, exc.strerror or exc)
             streams, meta = {}, {}
         restored = 0
+        filters = meta.get("filters")
+        if not isinstance(filters, dict):  # snapshots written before it was saved
+            filters = {}
         for name, state in streams.items():
-            spec = self.cfg.stream_for(name)
+            f = filters.get(name)
+            spec = self.cfg.stream_for(name, f if isinstance(f, str) else None)
             if spec is None:
                 continue
             eng = StreamEngine(name, spec.detection, unit=spec.unit)
@@ -236,6 +243,7 @@ class Daemon:
                 self.log.warning("snapshot of stream %s not used (%s); it warms up again", name, exc)
                 continue
             self.engines[name] = eng
+            self._filters[name] = spec.topic
             restored += 1
         if streams:
             self.log.info("restored %d stream(s) from the snapshot of %s", restored,
@@ -257,7 +265,7 @@ class Daemon:
         samples = 0
         for groups in rounds:
             for g in groups:
-                spec = self.cfg.stream_for(g.stream)
+                spec = self.cfg.stream_for(g.stream, g.topic_filter or self._filters.get(g.stream))
                 eng = None if spec is None else self.engine_for(g.stream, spec, g.unit)
                 if eng is None:
                     continue
@@ -472,6 +480,7 @@ class Daemon:
             if len(self.engines) >= self.cfg.metrics.max_streams:
                 return None
             eng = self.engines[name] = StreamEngine(name, spec.detection, unit=unit)
+            self._filters[name] = spec.topic
             self.log.info("new stream %s (warming up on %d samples)", _printable(name),
                           spec.detection.warmup_samples)
         return eng
@@ -497,12 +506,13 @@ class Daemon:
             self.emit(rec, arrived)
         self._publish_level(name, eng)
         self.metrics.update_stream(name, StreamStats.from_engine(eng))
-        return JournalGroup(name, g.unit, times, values, arrivals)
+        return JournalGroup(name, g.unit, times, values, arrivals,
+                            self._filters.get(name, g.spec.topic))
 
     def emit(self, rec: AlertRecord, arrived: float) -> None:
         """Publish an alert record (through the outbox) and log its summary."""
         d = rec.to_dict()
-        label = self.cfg.label_for(rec.stream)
+        label = self.cfg.label_for(rec.stream, self._filters.get(rec.stream))
         if label is not None:
             d["label"] = label
         d["summary"] = alert_summary(rec, label)
@@ -605,7 +615,9 @@ class Daemon:
         token = secrets.token_hex(8)
         try:
             self.store.save({n: e.get_state() for n, e in self.engines.items()},
-                            {"saved_at": time.time(), "journal": token})
+                            {"saved_at": time.time(), "journal": token,
+                             "filters": {n: self._filters[n] for n in self.engines
+                                         if n in self._filters}})
         except OSError as exc:
             # The journal still belongs to the previous snapshot: it keeps growing.
             self.metrics.snapshot_failures.inc()
@@ -635,17 +647,21 @@ class Daemon:
         new_filters = {s.topic for s in new.streams}
         kept = dropped = renewed = 0
         for name in list(self.engines):
-            old_spec = self.cfg.stream_for(name)
-            spec = new.stream_for(name)
+            f = self._filters.get(name)
+            old_spec = self.cfg.stream_for(name, f)
+            spec = new.stream_for(name, f)
             if spec is None:
                 del self.engines[name]
+                self._filters.pop(name, None)
                 self.metrics.remove_stream(name)
                 dropped += 1
-            elif old_spec is None or spec.detection != old_spec.detection or spec.unit != old_spec.unit:
+                continue
+            if old_spec is None or spec.detection != old_spec.detection or spec.unit != old_spec.unit:
                 self.engines[name] = StreamEngine(name, spec.detection, unit=spec.unit)
                 renewed += 1
             else:
                 kept += 1
+            self._filters[name] = spec.topic
         # Only what the README says a reload changes: the other sections (the
         # prefix of the status topic and last will, the broker link, the
         # endpoint, the state directory) stay as they were until the next start.

@@ -22,8 +22,11 @@ Writes are plain ``write`` calls, which survive the death of the process
 File layout (``journal.bin``): a sequence of records, each
 ``b"SWJ1" + uint32 length + uint32 crc32 + body`` (little-endian).  The first
 body is JSON ``{"format": "shiftwatch-journal", "version": 1, "token": "..."}``.
-Every later body is one round: a JSON line ``[[stream, unit, n], ...]``, then
-for each stream its ``n`` times, values and arrival times as float64.  A torn
+Every later body is one round: a JSON line ``[[stream, unit, n, filter], ...]``
+(``filter`` is the ``topic`` of the config entry the stream's engine was made
+for; journals written before it was added have three items, read as no
+filter), then for each stream its ``n`` times, values and arrival times as
+float64.  A torn
 or damaged record ends the journal; what follows it is never read.
 """
 
@@ -61,6 +64,8 @@ class JournalGroup(NamedTuple):
     times: NDArray[np.float64]
     values: NDArray[np.float64]
     arrived: NDArray[np.float64]
+    #: The ``topic`` of the config entry the engine was made for (None: unknown).
+    topic_filter: str | None = None
 
 
 def _record(body: bytes) -> bytes:
@@ -71,7 +76,7 @@ def _encode_round(groups: Iterable[JournalGroup]) -> bytes:
     index = []
     arrays = []
     for g in groups:
-        index.append([g.stream, g.unit, int(g.times.shape[0])])
+        index.append([g.stream, g.unit, int(g.times.shape[0]), g.topic_filter])
         arrays += [g.times, g.values, g.arrived]
     head = json.dumps(index, ensure_ascii=False).encode("utf-8") + b"\n"
     return head + b"".join(np.ascontiguousarray(a, dtype="<f8").tobytes() for a in arrays)
@@ -85,13 +90,17 @@ def _decode_round(body: bytes) -> list[JournalGroup]:
     flat = np.frombuffer(data, dtype="<f8")
     out = []
     pos = 0
-    for stream, unit, n in index:
+    for entry in index:
+        if not isinstance(entry, list) or len(entry) not in (3, 4):
+            raise ValueError("malformed index entry")
+        stream, unit, n, topic_filter = (entry + [None])[:4]
         if not isinstance(stream, str) or not (unit is None or isinstance(unit, str)) \
-                or not isinstance(n, int) or n < 0 or pos + 3 * n > flat.shape[0]:
+                or not isinstance(n, int) or n < 0 or pos + 3 * n > flat.shape[0] \
+                or not (topic_filter is None or isinstance(topic_filter, str)):
             raise ValueError("malformed index entry")
         t, v, a = (flat[pos + k * n: pos + (k + 1) * n].astype(np.float64) for k in range(3))
         pos += 3 * n
-        out.append(JournalGroup(stream, unit, t, v, a))
+        out.append(JournalGroup(stream, unit, t, v, a, topic_filter))
     if pos != flat.shape[0]:
         raise ValueError("index and data differ in length")
     return out

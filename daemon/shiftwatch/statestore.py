@@ -11,7 +11,10 @@ One gzip member (``streams.json.gz``) holding JSON lines::
     ["<stream name>", {<engine state>}]        N lines, one per stream
     {"end": N}
 
-The last line proves the file is complete.  Engine states are plain JSON data
+The last line proves the file is complete.  ``meta`` is the caller's; the
+daemon keeps there ``saved_at``, ``journal`` (the token of the journal that
+belongs to the snapshot) and ``filters`` (stream name to the ``topic`` of the
+config entry its engine was made for; older snapshots lack it).  Engine states are plain JSON data
 except that lists of 8 or more floats (the sample windows) are stored as
 ``{"$f64": "<base64 of little-endian float64>"}``.  On 1,000 streams of 2,400
 floats this made saving about 1.5-3 times faster than writing the floats as

@@ -3,6 +3,7 @@ and a torn or damaged tail never read."""
 
 from __future__ import annotations
 
+import json
 import logging
 import os
 import subprocess
@@ -24,8 +25,9 @@ def group(name: str, n: int, seed: int = 0, unit: str | None = "g") -> JournalGr
 def same(a: list[list[JournalGroup]], b: list[list[JournalGroup]]) -> bool:
     return len(a) == len(b) and all(
         len(ra) == len(rb) and all(
-            ga.stream == gb.stream and ga.unit == gb.unit and all(
-                np.array_equal(x, y, equal_nan=True) for x, y in zip(ga[2:], gb[2:])) for ga, gb in zip(ra, rb))
+            ga.stream == gb.stream and ga.unit == gb.unit and ga.topic_filter == gb.topic_filter
+            and all(np.array_equal(x, y, equal_nan=True) for x, y in zip(ga[2:5], gb[2:5]))
+            for ga, gb in zip(ra, rb))
         for ra, rb in zip(a, b))
 
 
@@ -132,3 +134,78 @@ def test_rounds_survive_sigkill_without_fsync(tmp_path: Path) -> None:
     assert res.returncode == -9
     rounds = Journal(tmp_path).open("s")
     assert len(rounds) == 200 and rounds[-1][0].times[-1] == 999.0
+
+
+def test_a_stream_whose_name_was_cut_survives_restore_replay_and_reload(
+        tmp_path: Path, caplog: pytest.LogCaptureFixture) -> None:
+    # A topic of more than 256 characters under a '+' filter gets a cut name
+    # ending in '~' and a hash, which the filter 'plant/+/fill' no longer
+    # matches: the daemon must remember the entry the engine was made for.
+    from shiftwatch.config import load_config
+    from shiftwatch.daemon import Daemon
+    from shiftwatch.decode import stream_name
+    from shiftwatch.metrics import Metrics
+    from shiftwatch.mqtt import Message
+
+    path = tmp_path / "shiftwatch.yaml"
+    path.write_text("streams:\n  - {topic: 'plant/+/fill', format: json, value: v, time: ts, "
+                    "unit: g, label: 'fill on {1}'}\n"
+                    f"metrics: {{listen: '127.0.0.1:0'}}\nstate: {{dir: '{tmp_path / 'state'}'}}\n")
+    cfg = load_config(str(path))
+    topic = "plant/" + "h" * 300 + "/fill"
+    name = stream_name(topic, None)
+    assert name != topic and cfg.stream_for(name) is None  # the name alone matches no entry
+
+    t0 = 1.79e9
+    x = 500.0 + 0.5 * np.random.default_rng(5).standard_normal(900)
+    x[700:] += 1.5
+
+    def msgs(lo: int, hi: int) -> list[Message]:
+        return [Message(topic=topic, payload=json.dumps({"v": float(x[i]), "ts": t0 + i}).encode(),
+                        arrived=t0 + i, mid=0, qos=0) for i in range(lo, hi)]
+
+    def start() -> Daemon:
+        d = Daemon(load_config(str(path)), config_path=str(path), metrics=Metrics())
+        d.restore()
+        return d
+
+    first = start()
+    first.process(msgs(0, 500))
+    assert first.snapshot()
+    first.process(msgs(500, 650))  # journaled on top of the snapshot, then a crash
+    assert first.journal is not None
+    first.journal.close()
+    before = first.engines[name].get_state()
+
+    second = start()  # snapshot restored, then the journal replayed
+    assert name in second.engines
+    assert second.engines[name].get_state() == before
+    eng = second.engines[name]
+    second.reload()  # same file: the stream stays, with its state
+    assert second.engines.get(name) is eng and eng.get_state() == before
+
+    third = start()  # from the snapshot the reload wrote
+    assert third.engines[name].get_state() == before
+    with caplog.at_level(logging.INFO, logger="shiftwatch"):
+        third.process(msgs(650, 900))
+    assert third.records_published >= 1
+    assert "CONFIRMED fill on hhhh" in caplog.text  # the entry's label, from its '+' level
+    if third.journal is not None:
+        third.journal.close()
+
+
+def test_the_entry_filter_is_kept_and_old_rounds_without_it_still_read(tmp_path: Path) -> None:
+    from shiftwatch.journal import _decode_round, _encode_round
+
+    j = Journal(tmp_path)
+    j.open("snap-1")
+    j.append([group("line1/fill", 3)._replace(topic_filter="line1/+"), group("line2/fill", 2)])
+    j.close()
+    (got,) = Journal(tmp_path).open("snap-1")
+    assert [g.topic_filter for g in got] == ["line1/+", None]
+    # A round written before the filter was recorded has three items per stream.
+    body = _encode_round([group("line1/fill", 4)])
+    head, _, data = body.partition(b"\n")
+    old = json.dumps([entry[:3] for entry in json.loads(head)]).encode() + b"\n" + data
+    (g,) = _decode_round(old)
+    assert g.stream == "line1/fill" and g.topic_filter is None and g.values.shape == (4,)
