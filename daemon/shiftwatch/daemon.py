@@ -18,7 +18,6 @@ import sys
 import threading
 import time
 from collections import OrderedDict
-from dataclasses import dataclass, field
 from pathlib import Path
 from types import FrameType
 from typing import Any
@@ -30,7 +29,7 @@ from shiftwatch.core.engine import AlertRecord, StreamEngine
 from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
 from shiftwatch.core.timefmt import format_time
 from shiftwatch.decode import REASONS as DECODE_REASONS
-from shiftwatch.decode import decode, stream_name
+from shiftwatch.decode import DecodeProblem, decode_many, stream_name
 from shiftwatch.metrics import Metrics, MetricsServer, StreamStats
 from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
 from shiftwatch.notify import sd_notify, watchdog_interval
@@ -44,6 +43,11 @@ DRAIN = 20000
 ROUND_BYTES = 2_000_000
 #: Bound of the queue between paho's thread and the main thread.
 QUEUE_MAX = 100_000
+#: A round of at least BUSY_ROUND messages means the daemon is behind; the
+#: next round then lets messages collect for up to GATHER_S seconds (until the
+#: broker's window of unacknowledged messages is full or the flow pauses).
+BUSY_ROUND = 64
+GATHER_S = 0.02
 
 
 class RateLimitedLog:
@@ -89,15 +93,6 @@ def alert_summary(rec: AlertRecord) -> str:
             f"{rec.level_after:.5g}{unit}, detected {lag_text} after the step")
 
 
-@dataclass
-class _Group:
-    spec: StreamConfig
-    unit: str | None
-    times: list[float] = field(default_factory=list)
-    values: list[float] = field(default_factory=list)
-    arrived: list[float] = field(default_factory=list)
-
-
 class Daemon:
     """One shiftwatch process.
 
@@ -119,7 +114,7 @@ class Daemon:
         self.env = env
         self.inbox = Inbox(QUEUE_MAX)
         self.engines: dict[str, StreamEngine] = {}
-        self._spec_cache: dict[str, StreamConfig | None] = {}
+        self._routes: dict[str, tuple[StreamConfig, str] | None] = {}
         state_dir = Path(cfg.state.dir)
         self.store = StateStore(state_dir / "snapshots", logger=self.log)
         self.outbox = Outbox(state_dir / "outbox", max_items=cfg.alerts.outbox_max, logger=self.log)
@@ -135,6 +130,10 @@ class Daemon:
         self.server: MetricsServer | None = None
         self.records_published = 0
         self._last_trim = 0.0
+        self._busy = False
+        # Messages per round: the broker sends at most receive_maximum unacknowledged
+        # ones (MQTT 5), so a larger round would never fill.
+        self._round_max = DRAIN if cfg.broker.mqtt_version != "5" else min(DRAIN, cfg.broker.receive_maximum)
 
     # ------------------------------------------------------------ topics
     @property
@@ -145,13 +144,20 @@ class Daemon:
         return f"{self.prefix}/status"
 
     def spec_for(self, topic: str) -> StreamConfig | None:
-        spec = self._spec_cache.get(topic, False)
-        if spec is False:
+        route = self._route(topic)
+        return None if route is None else route[0]
+
+    def _route(self, topic: str) -> tuple[StreamConfig, str] | None:
+        """The stream configuration of a topic and its stream name (for readings
+        without a SenML name), cached per topic."""
+        route = self._routes.get(topic, False)
+        if route is False:
             spec = next((s for s in self.cfg.streams if topic_matches(s.topic, topic)), None)
-            if len(self._spec_cache) > 100_000:
-                self._spec_cache.clear()
-            self._spec_cache[topic] = spec
-        return spec  # type: ignore[return-value]
+            route = None if spec is None else (spec, stream_name(topic, None))
+            if len(self._routes) > 100_000:
+                self._routes.clear()
+            self._routes[topic] = route
+        return route  # type: ignore[return-value]
 
     # ----------------------------------------------------------- signals
     def request_stop(self, *_: Any) -> None:
@@ -256,7 +262,11 @@ class Daemon:
 
     def round(self, timeout: float = 0.2) -> int:
         """Take what is queued (waiting up to ``timeout`` for the first message) and process it."""
-        msgs = self.inbox.take(DRAIN, ROUND_BYTES, timeout)
+        # Under load (the last round was long) let a round's messages collect
+        # first; otherwise take what is there at once, for the alerts' sake.
+        gather = GATHER_S if self._busy else 0.0
+        msgs = self.inbox.take(self._round_max, ROUND_BYTES, timeout, gather=gather)
+        self._busy = len(msgs) >= BUSY_ROUND
         if not msgs:
             self._gauges()
             return 0
@@ -312,36 +322,44 @@ class Daemon:
     # -------------------------------------------------------- processing
     def process(self, msgs: list[Message]) -> None:
         """Decode, group per stream, run the engines, publish; then acknowledge the messages."""
-        groups: dict[str, _Group] = {}
         now = time.time()
         self.metrics.messages_received.inc(len(msgs))
+        # Messages per stream configuration, so each set is decoded in one call.
+        by_spec: dict[int, tuple[StreamConfig, list[Message], list[str]]] = {}
         for m in msgs:
-            spec = self.spec_for(m.topic)
-            if spec is None:
+            route = self._route(m.topic)
+            if route is None:
                 self._count_drop("no_matching_stream")
                 continue
-            dec = decode(m.payload, spec.format, value_path=spec.value, time_path=spec.time,
-                         max_bytes=self.cfg.broker.max_payload_bytes, now=m.arrived)
-            for p in dec.problems:
-                if p.reason == "no_time":  # the reading is used, with its arrival time
-                    self.rlog.warning("decode:no_time", f"message on {_printable(m.topic)}: {p.message}", now)
-                    continue
-                self._count_drop(p.reason)
-                self.rlog.warning(f"decode:{p.reason}", f"message on {_printable(m.topic)} set aside: "
-                                  f"{p.message}", now)
-            for r in dec.readings:
-                name = stream_name(m.topic, r.name)
-                g = groups.get(name)
-                if g is None:
-                    g = groups[name] = _Group(spec=spec, unit=r.unit or spec.unit)
-                g.times.append(r.time if r.time is not None else m.arrived)
-                g.values.append(r.value)
-                g.arrived.append(m.arrived)
-        for name, g in groups.items():
+            spec, topic_stream = route
+            entry = by_spec.get(id(spec))
+            if entry is None:
+                entry = by_spec[id(spec)] = (spec, [], [])
+            entry[1].append(m)
+            entry[2].append(topic_stream)
+        # stream -> [spec, unit, times, values, arrival times]
+        groups: dict[str, list[Any]] = {}
+        for spec, ms, names in by_spec.values():
+            decoded = decode_many([m.payload for m in ms], spec.format, value_path=spec.value,
+                                  time_path=spec.time, max_bytes=self.cfg.broker.max_payload_bytes,
+                                  now=[m.arrived for m in ms])
+            for m, topic_stream, dec in zip(ms, names, decoded):
+                if dec.problems:
+                    self._decode_problems(m.topic, dec.problems, now)
+                arrived = m.arrived
+                for r in dec.readings:
+                    name = topic_stream if r.name is None else stream_name(m.topic, r.name)
+                    g = groups.get(name)
+                    if g is None:
+                        g = groups[name] = [spec, r.unit or spec.unit, [], [], []]
+                    g[2].append(arrived if r.time is None else r.time)
+                    g[3].append(r.value)
+                    g[4].append(arrived)
+        for name, (spec, unit, times, values, arrivals) in groups.items():
             try:
-                self._run_stream(name, g, now)
+                self._run_stream(name, spec, unit, times, values, arrivals, now)
             except Exception:  # a defect must cost one stream's batch, never the daemon
-                self._count_drop("internal_error", len(g.values))
+                self._count_drop("internal_error", len(values))
                 self.log.exception("internal error while processing stream %s; its batch was set aside",
                                    _printable(name))
         try:
@@ -349,8 +367,16 @@ class Daemon:
         except OSError as exc:
             self.log.error("alert outbox could not be written to disk: %s", exc.strerror or exc)
         if self.link is not None:
-            for m in msgs:
-                self.link.ack(m.mid, m.qos)
+            self.link.ack_all(msgs)
+
+    def _decode_problems(self, topic: str, problems: list[DecodeProblem], now: float) -> None:
+        for p in problems:
+            if p.reason == "no_time":  # the reading is used, with its arrival time
+                self.rlog.warning("decode:no_time", f"message on {_printable(topic)}: {p.message}", now)
+                continue
+            self._count_drop(p.reason)
+            self.rlog.warning(f"decode:{p.reason}", f"message on {_printable(topic)} set aside: "
+                              f"{p.message}", now)
 
     def engine_for(self, name: str, spec: StreamConfig, unit: str | None) -> StreamEngine | None:
         eng = self.engines.get(name)
@@ -362,23 +388,23 @@ class Daemon:
                           spec.detection.warmup_samples)
         return eng
 
-    def _run_stream(self, name: str, g: _Group, now: float) -> None:
-        eng = self.engine_for(name, g.spec, g.unit)
+    def _run_stream(self, name: str, spec: StreamConfig, unit: str | None, times_list: list[float],
+                    values: list[float], arrivals: list[float], now: float) -> None:
+        eng = self.engine_for(name, spec, unit)
         if eng is None:
-            self._count_drop("stream_cap", len(g.values))
+            self._count_drop("stream_cap", len(values))
             self.rlog.warning("stream_cap", f"stream limit of {self.cfg.metrics.max_streams} reached; "
                               f"samples of new stream {_printable(name)} set aside", now)
             return
-        times = np.asarray(g.times, dtype=np.float64)
-        res = eng.process(times, np.asarray(g.values, dtype=np.float64))
+        times = np.asarray(times_list, dtype=np.float64)
+        res = eng.process(times, np.asarray(values, dtype=np.float64))
         for rej in res.rejected:
             if rej.reason != "spike":
                 self.rlog.warning(f"sample:{name}:{rej.reason}",
                                   f"sample of {_printable(name)} set aside: {SAMPLE_REASONS[rej.reason]}", now)
         for rec in res.records:
             j = int(np.searchsorted(times, rec.as_of))
-            arrived = g.arrived[min(j, len(g.arrived) - 1)]
-            self.emit(rec, arrived)
+            self.emit(rec, arrivals[min(j, len(arrivals) - 1)])
         self._publish_level(name, eng)
         self.metrics.update_stream(name, _stats(eng))
 
@@ -477,7 +503,7 @@ class Daemon:
             else:
                 kept += 1
         self.cfg = new
-        self._spec_cache.clear()
+        self._routes.clear()
         if self.link is not None:
             self.link.set_subscriptions(sorted(new_filters), added=sorted(new_filters - old_filters),
                                         removed=sorted(old_filters - new_filters))
