@@ -17,10 +17,10 @@ import signal
 import sys
 import threading
 import time
-from collections import OrderedDict
+from collections import OrderedDict, deque
 from pathlib import Path
 from types import FrameType
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 
@@ -44,10 +44,11 @@ ROUND_BYTES = 2_000_000
 #: Bound of the queue between paho's thread and the main thread.
 QUEUE_MAX = 100_000
 #: A round of at least BUSY_ROUND messages means the daemon is behind; the
-#: next round then lets messages collect for up to GATHER_S seconds (until the
-#: broker's window of unacknowledged messages is full or the flow pauses).
+#: next round then lets messages collect for up to GATHER_S seconds while they
+#: come fast (see Inbox.take), until the broker's window of unacknowledged
+#: messages is full.
 BUSY_ROUND = 64
-GATHER_S = 0.02
+GATHER_S = 0.1
 
 
 class RateLimitedLog:
@@ -93,6 +94,59 @@ def alert_summary(rec: AlertRecord) -> str:
             f"{rec.level_after:.5g}{unit}, detected {lag_text} after the step")
 
 
+class _SyncThenAck:
+    """Forces the outbox to disk, then acknowledges the round's messages, in its own thread.
+
+    An alert record must be durable before the messages that produced it are
+    acknowledged (a crash in between then means they are delivered again).
+    The fsync can take milliseconds; the main thread hands the round over and
+    goes on with the next.  Rounds are handled in the order given, so no
+    message is acknowledged ahead of an earlier round's records.
+    """
+
+    def __init__(self, sync: Callable[[], None], ack: Callable[[list[Message]], None],
+                 log: logging.Logger) -> None:
+        self._sync = sync
+        self._ack = ack
+        self._log = log
+        self._jobs: deque[tuple[bool, list[Message]]] = deque()
+        self._cv = threading.Condition()
+        self._open = 0  # rounds handed over and not finished
+        self._thread: threading.Thread | None = None
+
+    def idle(self) -> bool:
+        return self._open == 0
+
+    def submit(self, sync: bool, msgs: list[Message]) -> None:
+        with self._cv:
+            self._jobs.append((sync, msgs))
+            self._open += 1
+            if self._thread is None:
+                self._thread = threading.Thread(target=self._run, name="shiftwatch-outbox-sync", daemon=True)
+                self._thread.start()
+            self._cv.notify_all()
+
+    def wait_idle(self, timeout: float) -> bool:
+        """Wait until every round handed over is done; False on timeout."""
+        with self._cv:
+            return self._cv.wait_for(lambda: self._open == 0, timeout)
+
+    def _run(self) -> None:
+        while True:
+            with self._cv:
+                self._cv.wait_for(lambda: bool(self._jobs))
+                sync, msgs = self._jobs.popleft()
+            try:
+                if sync:
+                    self._sync()
+                self._ack(msgs)
+            except Exception:  # this thread must never die
+                self._log.exception("error while writing the outbox or acknowledging messages")
+            with self._cv:
+                self._open -= 1
+                self._cv.notify_all()
+
+
 class Daemon:
     """One shiftwatch process.
 
@@ -131,6 +185,7 @@ class Daemon:
         self.records_published = 0
         self._last_trim = 0.0
         self._busy = False
+        self._acker = _SyncThenAck(self._sync_outbox, self._ack, self.log)
         # Messages per round: the broker sends at most receive_maximum unacknowledged
         # ones (MQTT 5), so a larger round would never fill.
         self._round_max = DRAIN if cfg.broker.mqtt_version != "5" else min(DRAIN, cfg.broker.receive_maximum)
@@ -305,6 +360,8 @@ class Daemon:
                 break
             self.process(msgs)
             left -= len(msgs)
+        if not self._acker.wait_idle(10.0):
+            self.log.warning("stopping: the outbox is still being written; its rounds stay unacknowledged")
         self.snapshot()
         deadline = time.monotonic() + 5.0
         while len(self.outbox) and self.link is not None and self.link.connected and time.monotonic() < deadline:
@@ -323,6 +380,7 @@ class Daemon:
     def process(self, msgs: list[Message]) -> None:
         """Decode, group per stream, run the engines, publish; then acknowledge the messages."""
         now = time.time()
+        published_before = self.records_published
         self.metrics.messages_received.inc(len(msgs))
         # Messages per stream configuration, so each set is decoded in one call.
         by_spec: dict[int, tuple[StreamConfig, list[Message], list[str]]] = {}
@@ -362,10 +420,25 @@ class Daemon:
                 self._count_drop("internal_error", len(values))
                 self.log.exception("internal error while processing stream %s; its batch was set aside",
                                    _printable(name))
+        wrote = self.records_published != published_before
+        if self.link is None:
+            if wrote:
+                self._sync_outbox()
+        elif wrote or not self._acker.idle():
+            # The round's records must be on disk before its messages are
+            # acknowledged; another thread waits for the disk, so the next
+            # round (and its alerts) need not.  Later rounds queue behind it.
+            self._acker.submit(wrote, msgs)
+        else:
+            self.link.ack_all(msgs)
+
+    def _sync_outbox(self) -> None:
         try:
             self.outbox.sync()
         except OSError as exc:
             self.log.error("alert outbox could not be written to disk: %s", exc.strerror or exc)
+
+    def _ack(self, msgs: list[Message]) -> None:
         if self.link is not None:
             self.link.ack_all(msgs)
 

@@ -91,17 +91,18 @@ class Inbox:
         self._want = self.maxsize + 1
 
     def take(self, max_items: int, max_bytes: int, timeout: float, *, gather: float = 0.0,
-             settle: float = 0.001) -> list[Message]:
+             slice_s: float = 0.002, min_rate: float = 3000.0) -> list[Message]:
         """Up to ``max_items`` messages (or about ``max_bytes`` of payload), waiting up to
         ``timeout`` seconds for the first.
 
         With ``gather`` > 0 the consumer, once a message is there, lets more
-        collect for up to ``gather`` seconds: until ``max_items`` are queued or
-        the queue stops growing for ``settle`` seconds (the broker's window of
-        unacknowledged messages is full, or the publishers paused).  The main
-        thread then sleeps while paho's thread reads, and works in long rounds
-        while paho's thread has nothing to read, instead of both taking the
-        interpreter lock from each other for every message.
+        collect for up to ``gather`` seconds: while the queue grows by at least
+        ``min_rate`` messages a second (checked every ``slice_s`` seconds) and
+        until it holds ``max_items`` (the broker's window of unacknowledged
+        messages is then full).  The main thread then sleeps while paho's
+        thread reads a burst, and works through it in one long round, instead
+        of both threads taking the interpreter lock from each other for every
+        message.  A slow flow stops the gathering after one slice.
         """
         q = self._q
         if not q and timeout > 0:
@@ -109,14 +110,16 @@ class Inbox:
         if gather > 0 and q:
             end = time.monotonic() + gather
             n = len(q)
+            step = max(1, int(min_rate * slice_s))
             while n < max_items:
                 left = end - time.monotonic()
                 if left <= 0:
                     break
-                self._wait_for(max_items, min(settle, left))
-                if len(q) == n:
+                self._wait_for(max_items, min(slice_s, left))
+                grown = len(q) - n
+                n += grown
+                if grown < step:
                     break
-                n = len(q)
         out: list[Message] = []
         size = 0
         while q and len(out) < max_items and size < max_bytes:
@@ -240,7 +243,7 @@ class MqttLink:
             # it asks for here (else max_inflight_messages, 20 by default).
             # Messages are acknowledged only after processing, so this window
             # bounds how many the daemon can take in one round.
-            props.ReceiveMaximum = int(os.environ.get("SW_RM", self.cfg.receive_maximum))
+            props.ReceiveMaximum = self.cfg.receive_maximum
             self.client.connect_async(self.host, self.port, keepalive=self.cfg.keepalive,
                                       clean_start=False, properties=props)
         else:
