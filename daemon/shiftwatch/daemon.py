@@ -18,9 +18,10 @@ import sys
 import threading
 import time
 from collections import OrderedDict, deque
+from collections.abc import Callable
 from pathlib import Path
 from types import FrameType
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 

@@ -119,10 +119,11 @@ import hashlib
 import json
 import math
 import re
+from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime
 from itertools import accumulate
-from typing import Any, NamedTuple, Sequence
+from typing import Any, NamedTuple
 
 FORMATS: tuple[str, ...] = ("number", "json", "senml")
 """The payload formats :func:`decode` understands."""

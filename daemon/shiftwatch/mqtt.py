@@ -22,8 +22,9 @@ import struct
 import threading
 import time
 from collections import deque
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any, Callable, NamedTuple
+from typing import Any, NamedTuple
 from urllib.parse import urlsplit
 
 import paho.mqtt.client as paho
@@ -32,7 +33,6 @@ from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 
 from shiftwatch.config import BrokerConfig
-
 
 #: A PUBACK packet as a big-endian 32-bit word: type 0x40, remaining length 2, then the packet id.
 _PUBACK_HEAD = (paho.PUBACK << 24) | (2 << 16)
