@@ -91,7 +91,7 @@ class Inbox:
         self._want = self.maxsize + 1
 
     def take(self, max_items: int, max_bytes: int, timeout: float, *, gather: float = 0.0,
-             slice_s: float = 0.002, min_rate: float = 3000.0) -> list[Message]:
+             slice_s: float = 0.002, min_rate: float = 1500.0) -> list[Message]:
         """Up to ``max_items`` messages (or about ``max_bytes`` of payload), waiting up to
         ``timeout`` seconds for the first.
 
