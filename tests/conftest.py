@@ -17,7 +17,7 @@ def shiftwatch_command() -> list[str]:
     return [exe] if exe else [sys.executable, "-m", "shiftwatch"]
 
 
-@pytest.fixture
+@pytest.fixture(scope="session")
 def shiftwatch_cmd() -> list[str]:
     return shiftwatch_command()
 
@@ -26,8 +26,9 @@ def shiftwatch_cmd() -> list[str]:
 def cli(tmp_path: Path):
     """Run the real command line in a subprocess; returns the CompletedProcess."""
 
-    def run(*args: str, timeout: float = 120.0) -> subprocess.CompletedProcess[str]:
+    def run(*args: str, timeout: float = 120.0,
+            env: dict[str, str] | None = None) -> subprocess.CompletedProcess[str]:
         return subprocess.run(shiftwatch_command() + list(args), capture_output=True, text=True,
-                              timeout=timeout, cwd=tmp_path)
+                              timeout=timeout, cwd=tmp_path, env=env)
 
     return run

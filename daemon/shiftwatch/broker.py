@@ -2,13 +2,18 @@
 
 Mosquitto is used when its binary is installed; otherwise the demo falls back
 to an embedded broker from PyPI (amqtt, MQTT 3.1.1 only).  Each broker listens
-on a free loopback port with its own configuration and data directory.
+on a free loopback port with its own configuration and data directory.  For
+the security tests a Mosquitto can also open TLS listeners (one per server
+certificate) and require a user name and password (a password file written
+with ``mosquitto_passwd``, and ``allow_anonymous false``).
 """
 
 from __future__ import annotations
 
 import os
+import pwd
 import shutil
+import signal
 import socket
 import subprocess
 import tempfile
@@ -37,6 +42,19 @@ def find_mosquitto() -> str | None:
     return None
 
 
+def find_mosquitto_passwd(mosquitto: str | None = None) -> str | None:
+    """Path of ``mosquitto_passwd`` (PATH, then beside the broker, then /usr/bin), or None."""
+    found = shutil.which("mosquitto_passwd")
+    if found:
+        return found
+    dirs = [str(Path(mosquitto).parent)] if mosquitto else []
+    for d in dirs + ["/usr/bin", "/usr/local/bin"]:
+        candidate = os.path.join(d, "mosquitto_passwd")
+        if os.access(candidate, os.X_OK):
+            return candidate
+    return None
+
+
 def wait_for_port(port: int, timeout: float = 10.0) -> bool:
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
@@ -49,19 +67,76 @@ def wait_for_port(port: int, timeout: float = 10.0) -> bool:
 
 
 @dataclass
+class TlsListener:
+    """A TLS listener of a :class:`MosquittoBroker`.
+
+    Attributes
+    ----------
+    certfile, keyfile : the server's certificate (PEM, leaf first) and private key.
+    cafile : CA that signs client certificates; when given, clients must present one.
+    port : the port; 0 picks a free one at start.
+    """
+
+    certfile: str | Path
+    keyfile: str | Path
+    cafile: str | Path | None = None
+    port: int = 0
+
+    def lines(self) -> list[str]:
+        out = [f"listener {self.port} 127.0.0.1", f"certfile {self.certfile}",
+               f"keyfile {self.keyfile}"]
+        if self.cafile is not None:
+            out += [f"cafile {self.cafile}", "require_certificate true"]
+        return out
+
+    @property
+    def url(self) -> str:
+        return f"mqtts://127.0.0.1:{self.port}"
+
+
+@dataclass
 class MosquittoBroker:
     """A Mosquitto process of our own.
 
-    ``extra`` lines go into its configuration (for example a TLS listener or
-    a password file).  Persistence is on and ``max_queued_messages`` is raised,
-    the settings the README asks operators to use.
+    ``extra`` lines go into its configuration.  Persistence is on and
+    ``max_queued_messages`` is raised, the settings the README asks operators
+    to use.  ``tls`` adds TLS listeners beside the plain one; ``users`` (name
+    to password) writes a password file and turns ``allow_anonymous`` off for
+    every listener; ``log`` writes the broker's log to :attr:`log_path`.
+    ``autosave_interval`` (in seconds) is how often the broker writes its state to disk,
+    which bounds what a crash of the broker loses.  :meth:`restart` keeps the port and
+    the data directory, so sessions and queued messages survive it.
     """
 
     port: int = 0
     extra: list[str] = field(default_factory=list)
+    autosave_interval: int = 1
     workdir: Path | None = None
     process: subprocess.Popen[bytes] | None = None
     binary: str | None = None
+    tls: list[TlsListener] = field(default_factory=list)
+    users: dict[str, str] = field(default_factory=dict)
+    log: bool = False
+
+    @property
+    def log_path(self) -> Path:
+        assert self.workdir is not None
+        return self.workdir / "mosquitto.log"
+
+    def _password_lines(self) -> list[str]:
+        if not self.users:
+            return ["allow_anonymous true"]
+        assert self.workdir is not None
+        tool = find_mosquitto_passwd(self.binary)
+        if tool is None:
+            raise RuntimeError("mosquitto_passwd is not installed (it comes with mosquitto)")
+        pwfile = self.workdir / "passwd"
+        pwfile.unlink(missing_ok=True)
+        pwfile.touch(mode=0o600)
+        for name, password in self.users.items():
+            subprocess.run([tool, "-b", str(pwfile), name, password], check=True,
+                           capture_output=True)
+        return ["allow_anonymous false", f"password_file {pwfile}"]
 
     def start(self, timeout: float = 10.0) -> "MosquittoBroker":
         self.binary = self.binary or find_mosquitto()
@@ -71,21 +146,31 @@ class MosquittoBroker:
             self.workdir = Path(tempfile.mkdtemp(prefix="shiftwatch-broker-"))
         self.workdir.mkdir(parents=True, exist_ok=True)
         self.port = self.port or free_port()
+        for listener in self.tls:
+            listener.port = listener.port or free_port()
         conf = self.workdir / "mosquitto.conf"
-        lines = [
-            f"listener {self.port} 127.0.0.1",
-            "allow_anonymous true",
+        lines = self._password_lines() + [
+            # Stay the user that started it: Mosquitto started as root would switch to the
+            # "mosquitto" user and could not read our key, password file or data directory.
+            # Persistence would silently do nothing without this.
+            f"user {pwd.getpwuid(os.geteuid()).pw_name}",
             "persistence true",
             f"persistence_location {self.workdir}/",
-            "autosave_interval 1",
+            f"autosave_interval {self.autosave_interval}",
             "max_queued_messages 1000000",
             "max_inflight_messages 20",
-            "log_dest none",
-        ] + list(self.extra)
+        ]
+        lines += ([f"log_dest file {self.log_path}", "log_type error", "log_type warning",
+                   "log_type notice", "log_type information"] if self.log else ["log_dest none"])
+        lines.append(f"listener {self.port} 127.0.0.1")
+        for listener in self.tls:
+            lines += listener.lines()
+        lines += list(self.extra)
         conf.write_text("\n".join(lines) + "\n")
         self.process = subprocess.Popen([self.binary, "-c", str(conf)], stdout=subprocess.DEVNULL,
                                         stderr=subprocess.PIPE)
-        if not wait_for_port(self.port, timeout):
+        ports = [self.port] + [listener.port for listener in self.tls]
+        if not all(wait_for_port(port, timeout) for port in ports):
             err = b""
             if self.process.poll() is not None and self.process.stderr is not None:
                 err = self.process.stderr.read()
@@ -99,6 +184,7 @@ class MosquittoBroker:
 
     def stop(self, sig: int | None = None) -> None:
         if self.process is not None and self.process.poll() is None:
+            self.thaw()  # a frozen broker cannot act on SIGTERM
             if sig is None:
                 self.process.terminate()
             else:
@@ -110,9 +196,20 @@ class MosquittoBroker:
                 self.process.wait()
         self.process = None
 
-    def restart(self) -> None:
-        self.stop()
+    def restart(self, sig: int | None = None) -> None:
+        """Stop (SIGTERM, or ``sig`` such as SIGKILL) and start again on the same port."""
+        self.stop(sig)
         self.start()
+
+    def freeze(self) -> None:
+        """SIGSTOP: the broker keeps its sockets open but answers nothing."""
+        if self.process is not None:
+            self.process.send_signal(signal.SIGSTOP)
+
+    def thaw(self) -> None:
+        """SIGCONT after :meth:`freeze`."""
+        if self.process is not None:
+            self.process.send_signal(signal.SIGCONT)
 
 
 class EmbeddedBroker:

@@ -39,9 +39,25 @@ def _print_problems(problems: list[str], limit: int = 20) -> None:
 
 
 # ----------------------------------------------------------------- replay
-def cmd_replay(args: argparse.Namespace) -> int:
-    from shiftwatch.replay import CsvFormatError, read_long_csv, replay_series
+#: Replays of fewer samples finish too soon for a progress bar to help.
+PROGRESS_MIN_SAMPLES = 100_000
 
+
+def progress_bar(total: int, desc: str, unit: str, *, minimum: int = PROGRESS_MIN_SAMPLES) -> Any:
+    """A tqdm bar on stderr when stderr is a terminal and the work is long; else None.
+
+    Without tqdm installed (it comes with the ``report`` extra) there is no bar.
+    """
+    if total < minimum or not sys.stderr.isatty():
+        return None
+    try:
+        from tqdm import tqdm
+    except ImportError:
+        return None
+    return tqdm(total=total, desc=desc, unit=unit, unit_scale=total >= 10_000, leave=False, file=sys.stderr)
+
+
+def cmd_replay(args: argparse.Namespace) -> int:
     if args.config is not None:
         from shiftwatch.config import ConfigError
 
@@ -52,6 +68,24 @@ def cmd_replay(args: argparse.Namespace) -> int:
             return EXIT_USAGE
     else:
         cfg = None
+    if args.report is None:
+        return _replay(args, cfg, None)
+    from shiftwatch.report import ReplayReport, ReportError
+
+    try:
+        report = ReplayReport(args.report)  # fails now, not after a long replay
+    except ReportError as exc:
+        _err(str(exc))
+        return EXIT_USAGE
+    try:
+        return _replay(args, cfg, report)
+    finally:
+        report.discard()  # the unfinished file, when writing did not complete
+
+
+def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
+    from shiftwatch.replay import CsvFormatError, read_long_csv, replay_series
+
     try:
         read = read_long_csv(args.csv)
     except CsvFormatError as exc:
@@ -62,13 +96,27 @@ def cmd_replay(args: argparse.Namespace) -> int:
         from shiftwatch.core.settings import DetectionSettings
 
         defaults = DetectionSettings()
-        records, problems, engines = replay_series(read.streams, lambda name: defaults)
+
+        def settings_for(stream: str) -> Any:
+            return defaults
+
+        def unit_for(stream: str) -> str | None:
+            return None
     else:
+        settings_for = cfg.settings_for
+
         def unit_for(stream: str) -> str | None:
             sc = cfg.stream_for(stream)
             return None if sc is None else sc.unit
 
-        records, problems, engines = replay_series(read.streams, cfg.settings_for, unit_for)
+    bar = progress_bar(sum(len(s.times) for s in read.streams.values()), "replay", "sample")
+    try:
+        records, problems, engines = replay_series(
+            read.streams, settings_for, unit_for, progress=bar and bar.update,
+            observe=None if report is None else report.observe)
+    finally:
+        if bar is not None:
+            bar.close()
     out: TextIO
     if args.out:
         try:
@@ -100,6 +148,26 @@ def cmd_replay(args: argparse.Namespace) -> int:
     if len(read.problems):
         summary += f"; {len(read.problems)} unreadable row(s) skipped"
     print(summary, file=sys.stderr)
+    if report is not None:
+        from shiftwatch.report import ReportError
+
+        bar = progress_bar(len(engines), "charts", "chart", minimum=2)
+        try:
+            path = report.write(
+                samples={name: e.samples_total for name, e in engines.items()},
+                rejected={name: dict(e.rejected_total) for name, e in engines.items()},
+                units={name: unit_for(name) for name in engines},
+                sources=[str(p) for p in args.csv], unreadable_rows=len(read.problems),
+                settings_note=("default detection settings" if args.config is None
+                               else f"detection settings from {args.config}"),
+                progress=bar and bar.update)
+        except ReportError as exc:
+            _err(str(exc))
+            return EXIT_USAGE
+        finally:
+            if bar is not None:
+                bar.close()
+        print(f"report written to {path}", file=sys.stderr)
     return EXIT_BAD_DATA if all_problems else EXIT_OK
 
 
@@ -170,8 +238,10 @@ def cmd_design(args: argparse.Namespace) -> int:
     from shiftwatch.core.design import design
     from shiftwatch.core.timefmt import format_duration, parse_duration
 
+    if args.from_csv:
+        return _design_from(args)
     try:
-        every = parse_duration(args.false_alarm_every)
+        every = parse_duration(args.false_alarm_every or "7d")
         interval = parse_duration(args.interval)
     except ValueError as exc:
         _err(str(exc))
@@ -179,34 +249,154 @@ def cmd_design(args: argparse.Namespace) -> int:
     if not 0 < args.min_shift <= 4:
         _err(f"--min-shift must be above 0 and at most 4 sigma, got {args.min_shift}")
         return EXIT_USAGE
+    if args.chart:
+        from pathlib import Path
+
+        parent = Path(args.chart).resolve().parent
+        if not parent.is_dir():
+            _err(f"--chart {args.chart}: cannot write the chart: no directory {parent}")
+            return EXIT_USAGE
     d = design(args.min_shift, every, interval)
+    curves = None
+    if args.chart:
+        from shiftwatch.core.design import sensitivity
+        from shiftwatch.design_chart import ChartError, draw_sensitivity
+
+        curves = sensitivity(args.min_shift, every, interval)
+        try:
+            draw_sensitivity(curves, interval, args.chart)
+        except ChartError as exc:
+            _err(str(exc))
+            return EXIT_USAGE
     if args.json:
-        print(json.dumps({
+        out: dict[str, Any] = {
             "min_shift_sigma": d.min_shift_sigma, "false_alarm_every_s": d.false_alarm_every,
             "interval_s": d.interval, "arl0": d.arl0, "cusum": {"k": d.k, "h": d.h},
             "glr": {"threshold": d.glr_threshold, "window": d.glr_window},
+            "multi_cusum": {"ks": list(d.bank_ks), "hs": list(d.bank_hs)},
             "rows": [{"shift_sigma": r.shift, "cusum_arl": r.cusum_arl,
-                      "cusum_median_delay": r.cusum_median, "glr_median_delay": r.glr_median}
+                      "cusum_median_delay": r.cusum_median, "glr_median_delay": r.glr_median,
+                      "multi_cusum_arl_at_most": r.bank_arl,
+                      "multi_cusum_median_delay_at_most": None if r.shift == 0 else r.bank_median}
                      for r in d.rows],
-        }))
+        }
+        if curves is not None:
+            out["chart"] = {"file": args.chart, "curves": [
+                {"label": c.label, "min_shift_sigma": c.min_shift_sigma,
+                 "false_alarm_every_s": c.false_alarm_every, "arl0": c.arl0,
+                 "shift_sigma": list(c.shifts), "arl": list(c.arl),
+                 "median_delay": [None if s == 0 else m for s, m in zip(c.shifts, c.median)]}
+                for c in curves]}
+        print(json.dumps(out))
         return EXIT_OK
     w = sys.stdout.write
     w(f"Design for a stream sampled every {format_duration(interval)}, "
       f"at most one false alarm every {format_duration(every)} on average\n")
     w(f"  in-control average run length (ARL): {d.arl0:,.0f} samples\n")
     w(f"  CUSUM for a smallest shift of {d.min_shift_sigma:g} sigma: k = {d.k:.3f}, h = {d.h:.3f}\n")
+    w(f"  multi-chart CUSUM (the default test): k = {', '.join(f'{k:.3g}' for k in d.bank_ks)}; "
+      f"h's = {', '.join(f'{h:.3f}' for h in d.bank_hs)}\n")
     w(f"  GLR (any shift size): threshold = {d.glr_threshold:.3f}, segments up to {d.glr_window} samples\n\n")
-    w("  shift    CUSUM ARL   CUSUM median delay     GLR median delay\n")
-    w("  (sigma)  (samples)   (samples / time)       (samples / time)\n")
+    w("  shift    multi-CUSUM median     CUSUM ARL   CUSUM median delay     GLR median delay\n")
+    w("  (sigma)  delay, at most         (samples)   (samples / time)       (samples / time)\n")
     for r in d.rows:
         if r.shift == 0:
-            w(f"  {r.shift:5.2f}   {r.cusum_arl:11,.0f}   in control: a false alarm every {format_duration(r.cusum_arl * interval)} on average\n")
+            w(f"  {r.shift:5.2f}   {'':22s}{r.cusum_arl:11,.0f}   in control: a false alarm every "
+              f"{format_duration(r.cusum_arl * interval)} on average\n")
             continue
         g = "" if r.glr_median is None else f"{r.glr_median:6.0f} / {format_duration(r.glr_median * interval)}"
-        w(f"  {r.shift:5.2f}   {r.cusum_arl:11.1f}   {r.cusum_median:6.0f} / {format_duration(r.cusum_median * interval):12s} {g}\n")
+        b = f"{r.bank_median:6.0f} / {format_duration(r.bank_median * interval)}"
+        w(f"  {r.shift:5.2f}   {b:22s}{r.cusum_arl:11.1f}   {r.cusum_median:6.0f} / "
+          f"{format_duration(r.cusum_median * interval):12s} {g}\n")
     w("\nDelays count samples from the shift to the alarm. CUSUM figures come from the\n"
-      "Brook & Evans Markov chain; GLR delays from a simulation with a fixed random state.\n")
+      "Brook & Evans Markov chain; the multi-chart CUSUM trips no later than its fastest\n"
+      "chart, so its delay is at most that chart's; GLR delays come from a simulation\n"
+      "with a fixed random state.\n")
+    if args.chart:
+        w(f"\nChart written to {args.chart}: the chosen settings next to false_alarm_every / 4 "
+          "(more sensitive) and x 4 (less sensitive).\n")
     return EXIT_OK
+
+
+def _design_from(args: argparse.Namespace) -> int:
+    """``design --from CSV``: suggested settings for every stream of a replay file."""
+    import numpy as np
+
+    from shiftwatch.core.suggest import measure_noise, suggest
+    from shiftwatch.core.timefmt import parse_duration
+    from shiftwatch.replay import CsvFormatError, read_long_csv
+
+    if args.chart:
+        _err("--chart draws one choice of settings; use it without --from")
+        return EXIT_USAGE
+    if args.min_shift_given:
+        _err("--from suggests min_shift_sigma for each stream; leave out --min-shift")
+        return EXIT_USAGE
+    try:
+        within = parse_duration(args.within)
+        every = None if args.false_alarm_every is None else parse_duration(args.false_alarm_every)
+    except ValueError as exc:
+        _err(str(exc))
+        return EXIT_USAGE
+    if args.plant_false_alarms_per_day is not None and not args.plant_false_alarms_per_day > 0:
+        _err(f"--plant-false-alarms-per-day must be positive, got {args.plant_false_alarms_per_day}")
+        return EXIT_USAGE
+    if args.streams_in_plant is not None and args.streams_in_plant < 1:
+        _err(f"--streams-in-plant must be at least 1, got {args.streams_in_plant}")
+        return EXIT_USAGE
+    cfg = None
+    if args.config is not None:
+        from shiftwatch.config import ConfigError
+
+        try:
+            cfg = _load_config(args.config)
+        except ConfigError as exc:
+            _err(str(exc))
+            return EXIT_USAGE
+    try:
+        read = read_long_csv(args.from_csv)
+    except CsvFormatError as exc:
+        _err(str(exc))
+        return EXIT_USAGE
+    _print_problems(read.problems)
+    names = sorted(read.streams)
+    if not names:
+        _err(f"{', '.join(args.from_csv)}: no readable rows, so nothing to suggest")
+        return EXIT_USAGE
+    plant = args.streams_in_plant or len(names)
+    per_day = args.plant_false_alarms_per_day or 1.0
+    results: list[dict[str, Any]] = []
+    unmeasured = []
+    for name in names:
+        s = read.streams[name]
+        unit = label = None
+        if cfg is not None:
+            sc = cfg.stream_for(name)
+            unit = None if sc is None else sc.unit
+            label = cfg.label_for(name)
+        try:
+            noise = measure_noise(np.asarray(s.times, dtype=np.float64),
+                                  np.asarray(s.values, dtype=np.float64))
+        except ValueError as exc:
+            unmeasured.append(f"{name}: no suggestion: {exc}")
+            results.append({"stream": name, "problem": str(exc)})
+            continue
+        sug = suggest(noise, within=within, false_alarm_every=every, streams_in_plant=plant,
+                      plant_false_alarms_per_day=per_day)
+        results.append({"stream": name, **({"label": label} if label else {}),
+                        **({"unit": unit} if unit else {}), **sug.to_dict(),
+                        "explanation": sug.explain(label or name, unit)})
+    if args.json:
+        print(json.dumps({"within_s": within, "streams_in_plant": plant,
+                          "plant_false_alarms_per_day": None if every is not None else per_day,
+                          "streams": results}))
+    else:
+        for r in results:
+            if "explanation" in r:
+                print(r["explanation"])
+        for u in unmeasured:
+            print(u)
+    return EXIT_BAD_DATA if read.problems or unmeasured else EXIT_OK
 
 
 # ---------------------------------------------------------------- daemon
@@ -245,24 +435,45 @@ def cmd_run(args: argparse.Namespace) -> int:
     return Daemon(cfg, config_path=args.config, logger=log).run()
 
 
+#: Where systemd puts a system service's credentials (systemd.exec(5), LoadCredential=).
+CREDENTIALS_DIR = "/run/credentials/"
+
+
 def config_warnings(path: str, cfg: Any) -> list[str]:
-    """Warnings about a configuration that is valid but risky."""
+    """Warnings about a configuration that is valid but risky.
+
+    A file that holds a secret (the broker password file, a private key) and
+    the configuration file that names one should be readable by their owner
+    only; a metrics endpoint reachable from other hosts should use TLS.
+    """
     import os
     import stat
 
+    from shiftwatch.metrics import parse_listen
+
+    b, m = cfg.broker, cfg.metrics
+    secrets = [("broker.password_file", b.password_file),
+               ("broker.tls.key_file", b.tls.key_file if b.tls else None),
+               ("metrics.tls.key_file", m.tls.key_file if m.tls else None)]
+    files = [(label, fpath, "") for label, fpath in secrets if fpath]
+    # A systemd credential (LoadCredential=) is readable by the service alone: a configuration
+    # that leads only to such files need not be hidden.
+    exposed = [f for _, f, _ in files if not f.startswith(CREDENTIALS_DIR)]
+    if exposed or b.password_env:
+        files.insert(0, ("configuration file", path, " and it leads to a secret"))
     out = []
-    b = cfg.broker
-    for label, fpath in (("configuration file", path), ("broker.password_file", b.password_file)):
-        if not fpath:
-            continue
+    for label, fpath, why in files:
         try:
             mode = os.stat(fpath).st_mode
         except OSError:
-            continue
-        if label == "configuration file" and not b.password_file and not b.password_env:
-            continue
+            continue  # a missing file is reported where it is used
         if mode & (stat.S_IRWXG | stat.S_IRWXO):
-            out.append(f"{label} {fpath} is readable by other users; it leads to a secret: chmod 600 it")
+            out.append(f"{label} {fpath} is readable by other users "
+                       f"(mode {stat.S_IMODE(mode):04o}){why}; chmod 600 it")
+    host = parse_listen(m.listen)[0]
+    if m.tls is None and host not in ("127.0.0.1", "::1", "localhost"):
+        out.append(f"metrics.listen {m.listen} is reachable from other hosts and metrics.tls "
+                   "is not set: the metrics are served in the clear")
     return out
 
 
@@ -312,6 +523,8 @@ def build_parser() -> argparse.ArgumentParser:
     r = sub.add_parser("replay", help="run CSV files through the detection engine and print alert records")
     r.add_argument("--config", help="YAML configuration (detection settings); defaults without it")
     r.add_argument("--out", help="write JSON lines here instead of stdout")
+    r.add_argument("--report", metavar="DIR",
+                   help="also write DIR/report.html: a chart per stream and a summary table")
     r.add_argument("csv", nargs="+", help="long CSV files with columns time,stream,value")
     r.set_defaults(func=cmd_replay)
 
@@ -322,11 +535,28 @@ def build_parser() -> argparse.ArgumentParser:
     f.add_argument("--min-segment", type=int, default=2, help="fewest samples on each side of the shift (default 2)")
     f.set_defaults(func=cmd_fit)
 
-    d = sub.add_parser("design", help="turn plant terms into test parameters and show the run lengths")
-    d.add_argument("--min-shift", type=float, default=1.0, help="smallest shift of interest, in sigmas (default 1)")
-    d.add_argument("--false-alarm-every", default="7d", help="mean time between false alarms (default 7d)")
-    d.add_argument("--interval", default="1s", help="sampling interval (default 1s)")
+    d = sub.add_parser("design", help="turn plant terms into test parameters and show the run lengths, "
+                       "or suggest settings from a replay file")
+    d.add_argument("--min-shift", type=float, default=None, help="smallest shift of interest, in sigmas (default 1)")
+    d.add_argument("--false-alarm-every", default=None,
+                   help="mean time between false alarms (default 7d; with --from, from the plant budget)")
+    d.add_argument("--interval", default="1s",
+                   help="sampling interval (default 1s; with --from, measured per stream)")
     d.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    d.add_argument("--chart", metavar="FILE.png",
+                   help="also draw ARL and delay against shift size, next to false_alarm_every / 4 and x 4")
+    d.add_argument("--from", dest="from_csv", metavar="CSV", action="append",
+                   help="suggest min_shift_sigma and false_alarm_every for every stream of this long CSV "
+                   "file (repeatable)")
+    d.add_argument("--within", default="1min", metavar="DURATION",
+                   help="with --from: the median detection delay the smallest step must meet (default 1min)")
+    d.add_argument("--streams-in-plant", type=int, default=None, metavar="N",
+                   help="with --from: streams in the whole plant, for the false-alarm budget "
+                   "(default: the streams in the file)")
+    d.add_argument("--plant-false-alarms-per-day", type=float, default=None, metavar="X",
+                   help="with --from: false detections a day the whole plant accepts (default 1)")
+    d.add_argument("--config", metavar="FILE",
+                   help="with --from: configuration whose units and labels name the streams")
     d.set_defaults(func=cmd_design)
 
     rn = sub.add_parser("run", help="run the daemon (MQTT in, alerts and metrics out)")
@@ -353,6 +583,10 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    if getattr(args, "func", None) is cmd_design:
+        args.min_shift_given = args.min_shift is not None
+        if args.min_shift is None:
+            args.min_shift = 1.0
     if not getattr(args, "func", None):
         parser.print_help()
         return EXIT_USAGE

@@ -12,12 +12,14 @@ from __future__ import annotations
 
 import difflib
 import math
+import re
 from dataclasses import MISSING, dataclass, field, fields
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable
 
 from shiftwatch.core.settings import TEST_NAMES, DetectionSettings
 from shiftwatch.core.timefmt import parse_duration
+from shiftwatch.decode import MAX_PREFIX_LEVELS, stream_name
 
 if TYPE_CHECKING:
     import yaml
@@ -161,6 +163,9 @@ STREAM_KEYS = {
     "value": Key(_str(), "value", "key or dot path of the value in a JSON payload"),
     "time": Key(_optional(_str()), None, "key or dot path of the time stamp in a JSON payload (absent: arrival time)"),
     "unit": Key(_optional(_str()), None, "unit of the readings, shown in alerts"),
+    "label": Key(_optional(_str()), None, "what operators call the stream, used in alert summaries; "
+                 "{1}, {2}, ... stand for the topic levels matched by each +, {#} for those matched "
+                 "by #, {name} for the SenML name"),
     "detection": Key(lambda v: v, None, "per-stream overrides of the detection settings"),
 }
 
@@ -173,11 +178,31 @@ ALERTS_KEYS = {
 METRICS_KEYS = {
     "listen": Key(_str(), "127.0.0.1:9650", "host:port of the Prometheus endpoint"),
     "max_streams": Key(_num(integer=True), 10000, "most streams tracked (and labelled in metrics)"),
+    "tls": Key(lambda v: v, None,
+               "serve the metrics over HTTPS: cert_file, key_file, client_ca_file"),
+}
+
+METRICS_TLS_KEYS = {
+    "cert_file": Key(_str(), MISSING,
+                     "server certificate (PEM, leaf first) of the metrics endpoint",
+                     {"type": "string"}),
+    "key_file": Key(_str(), MISSING, "private key (PEM) of that certificate", {"type": "string"}),
+    "client_ca_file": Key(_optional(_str()), None,
+                          "CA (PEM) that signs scrapers' client certificates; "
+                          "when set, scrapers must present one",
+                          {"type": ["string", "null"]}),
 }
 
 STATE_KEYS = {
     "dir": Key(_str(), "/var/lib/shiftwatch", "directory for snapshots and the alert outbox"),
     "snapshot_every": Key(_duration, "60s", "how often stream state is snapshotted"),
+}
+
+#: Keys that are refused on purpose, with the reason given instead of "unknown key".
+REFUSED_KEYS = {
+    "broker.password": "a password is not accepted in the configuration file; put it in a "
+                       "file named by broker.password_file (chmod 600) or in the variable "
+                       "named by broker.password_env",
 }
 
 TOP_KEYS = {
@@ -221,6 +246,7 @@ class StreamConfig:
     value: str = "value"
     time: str | None = None
     unit: str | None = None
+    label: str | None = None
     detection: DetectionSettings = field(default_factory=DetectionSettings)
 
 
@@ -232,9 +258,17 @@ class AlertsConfig:
 
 
 @dataclass(frozen=True)
+class MetricsTlsConfig:
+    cert_file: str
+    key_file: str
+    client_ca_file: str | None = None
+
+
+@dataclass(frozen=True)
 class MetricsConfig:
     listen: str = "127.0.0.1:9650"
     max_streams: int = 10000
+    tls: MetricsTlsConfig | None = None
 
 
 @dataclass(frozen=True)
@@ -264,13 +298,62 @@ class Config:
         A SenML stream is named ``topic/name``: when the name alone matches no
         filter, shorter prefixes are tried (a SenML name may hold '/' too).
         """
+        m = self._match(stream)
+        return None if m is None else m[0]
+
+    def label_for(self, stream: str) -> str | None:
+        """The operator's name of a stream: its entry's ``label`` with the placeholders filled.
+
+        Examples
+        --------
+        >>> cfg = Config(streams=(StreamConfig("plant/line2/+/fill", label="fill weight, filler {1}"),
+        ...                       StreamConfig("plant/oven", format="senml", label="oven {name}")))
+        >>> cfg.label_for("plant/line2/head7/fill"), cfg.label_for("plant/oven/zone3")
+        ('fill weight, filler head7', 'oven zone3')
+        >>> cfg.label_for("plant/line9/head1/fill") is None
+        True
+        """
+        m = self._match(stream)
+        if m is None:
+            return None
+        sc, topic, name = m
+        if sc.label is None:
+            return None
+        plus, rest = _captures(sc.topic, topic)
+
+        def fill(mo: re.Match[str]) -> str:
+            key = mo.group(1)
+            if key == "name":
+                return name
+            if key == "#":
+                return rest
+            i = int(key) - 1
+            return plus[i] if 0 <= i < len(plus) else mo.group(0)
+
+        return _PLACEHOLDER.sub(fill, sc.label)
+
+    def _match(self, stream: str) -> tuple[StreamConfig, str, str] | None:
+        """(entry, topic, SenML name or "") for a stream name."""
         levels = stream.split("/")
         for cut in range(len(levels), 0, -1):
             topic = "/".join(levels[:cut])
             for sc in self.streams:
                 if (cut == len(levels) or sc.format == "senml") and topic_matches(sc.topic, topic):
-                    return sc
+                    return sc, topic, "/".join(levels[cut:])
         return None
+
+
+#: Placeholders of a stream ``label``.
+_PLACEHOLDER = re.compile(r"\{(\d+|#|name)\}")
+
+
+def _captures(pattern: str, topic: str) -> tuple[list[str], str]:
+    """The topic levels matched by each ``+`` of a filter, and those matched by ``#``."""
+    p = pattern.split("/")
+    t = topic.split("/")
+    plus = [t[i] for i, part in enumerate(p) if part == "+" and i < len(t)]
+    rest = "/".join(t[len(p) - 1:]) if p and p[-1] == "#" else ""
+    return plus, rest
 
 
 def topic_matches(pattern: str, topic: str) -> bool:
@@ -327,6 +410,8 @@ class _Loader:
         for knode, vnode in ([] if empty else node.value):  # type: ignore[union-attr]
             key = self.plain(knode)
             kpath = f"{path}.{key}" if path else str(key)
+            if kpath in REFUSED_KEYS:
+                raise self.error(kpath, REFUSED_KEYS[kpath], knode)
             if not isinstance(key, str) or key not in keys:
                 hint = difflib.get_close_matches(str(key), list(keys), n=1)
                 msg = "unknown key"
@@ -390,6 +475,10 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
     url = b["url"]
     if not (url.startswith("mqtt://") or url.startswith("mqtts://")):
         raise ld.error("broker.url", f"must start with mqtt:// or mqtts://, got {url!r}", bnodes.get("url"))
+    if "@" in url.split("://", 1)[1].split("/", 1)[0]:
+        # Not echoed: what stands before the @ may be a password.
+        raise ld.error("broker.url", "must not hold a user name or password; use broker.username "
+                       "and broker.password_file or broker.password_env", bnodes.get("url"))
     if b["qos"] not in (0, 1):
         raise ld.error("broker.qos", f"must be 0 or 1, got {b['qos']}", bnodes.get("qos"))
     if not 1 <= b["receive_maximum"] <= 65535:
@@ -407,18 +496,27 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
             spath = f"streams[{i}]"
             s, snodes = ld.section(item, STREAM_KEYS, spath)
             _check_filter(ld, s["topic"], f"{spath}.topic", snodes.get("topic"))
+            if s["label"] is not None:
+                _check_label(ld, s["label"], s["topic"], s["format"], f"{spath}.label", snodes.get("label"))
             s["detection"] = ld.detection(snodes.get("detection"), f"{spath}.detection", detection)
             streams.append(StreamConfig(**s))
     alerts, anodes = ld.section(nodes.get("alerts"), ALERTS_KEYS, "alerts")
-    if any(c in alerts["topic_prefix"] for c in "+#") or alerts["topic_prefix"].endswith("/"):
-        raise ld.error("alerts.topic_prefix", "must be a plain topic without + or # and without a trailing /",
-                       anodes.get("topic_prefix"))
+    prefix = alerts["topic_prefix"]
+    if (stream_name(prefix, None) != prefix or prefix.endswith("/")
+            or prefix.count("/") >= MAX_PREFIX_LEVELS):
+        raise ld.error("alerts.topic_prefix", "must be a plain topic of at most "
+                       f"{MAX_PREFIX_LEVELS} levels and 256 characters, without + or #, control "
+                       "characters or a trailing /", anodes.get("topic_prefix"))
     if alerts["qos"] not in (0, 1, 2):
         raise ld.error("alerts.qos", f"must be 0, 1 or 2, got {alerts['qos']}", anodes.get("qos"))
     metrics, mnodes = ld.section(nodes.get("metrics"), METRICS_KEYS, "metrics")
     host, sep, port = metrics["listen"].rpartition(":")
     if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:
         raise ld.error("metrics.listen", f"must be host:port, got {metrics['listen']!r}", mnodes.get("listen"))
+    metrics["tls"] = None
+    if "tls" in mnodes:
+        mt, _ = ld.section(mnodes["tls"], METRICS_TLS_KEYS, "metrics.tls")
+        metrics["tls"] = MetricsTlsConfig(**mt)
     state, _ = ld.section(nodes.get("state"), STATE_KEYS, "state")
     return Config(
         broker=broker,
@@ -438,6 +536,30 @@ def _check_filter(ld: _Loader, topic: str, path: str, node: yaml.Node | None) ->
             raise ld.error(path, f"'#' must be a whole last level of the filter: {topic!r}", node)
         if "+" in part and part != "+":
             raise ld.error(path, f"'+' must be a whole level of the filter: {topic!r}", node)
+
+
+def _check_label(ld: _Loader, label: str, topic: str, fmt: str, path: str, node: yaml.Node | None) -> None:
+    parts = topic.split("/")
+    n_plus = parts.count("+")
+    for mo in re.finditer(r"\{([^{}]*)\}", label):
+        key = mo.group(1)
+        if key.isdigit() and 1 <= int(key) <= n_plus:
+            continue
+        if key == "#" and parts[-1] == "#":
+            continue
+        if key == "name" and fmt == "senml":
+            continue
+        if key.isdigit():
+            why = f"the topic filter {topic!r} has {n_plus} '+' level{'' if n_plus == 1 else 's'}"
+        elif key == "#":
+            why = f"the topic filter {topic!r} does not end in '#'"
+        elif key == "name":
+            why = "only SenML streams have a name (format: senml)"
+        else:
+            why = "use {1}, {2}, ... for the levels matched by +, {#} for those matched by #, {name} for the SenML name"
+        raise ld.error(path, f"placeholder {mo.group(0)} cannot be filled: {why}", node)
+    if re.sub(r"\{[^{}]*\}", "", label).count("{") or re.sub(r"\{[^{}]*\}", "", label).count("}"):
+        raise ld.error(path, f"unbalanced brace in {label!r}", node)
 
 
 # ------------------------------------------------------------------ schema
@@ -473,7 +595,8 @@ def json_schema() -> dict[str, Any]:
         "streams": {"type": "array", "items": stream},
         "detection": detection,
         "alerts": obj(ALERTS_KEYS),
-        "metrics": obj(METRICS_KEYS),
+        "metrics": obj(METRICS_KEYS,
+                       {"tls": obj(METRICS_TLS_KEYS, required=("cert_file", "key_file"))}),
         "state": obj(STATE_KEYS),
     })
     top["$schema"] = "https://json-schema.org/draft/2020-12/schema"

@@ -28,9 +28,9 @@ import numpy as np
 from shiftwatch.config import Config, ConfigError, StreamConfig, load_config, topic_matches
 from shiftwatch.core.engine import AlertRecord, StreamEngine
 from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
-from shiftwatch.core.timefmt import format_time
+from shiftwatch.core.timefmt import format_duration, format_time
 from shiftwatch.decode import REASONS as DECODE_REASONS
-from shiftwatch.decode import DecodeProblem, decode_many, stream_name
+from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, stream_name
 from shiftwatch.metrics import Metrics, MetricsServer, StreamStats
 from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
 from shiftwatch.notify import sd_notify, watchdog_interval
@@ -50,6 +50,11 @@ QUEUE_MAX = 100_000
 #: messages is full.
 BUSY_ROUND = 64
 GATHER_S = 0.1
+#: The topic-to-stream-entry cache holds topics of at most SPEC_CACHE_TOPIC
+#: characters, and is emptied once it holds SPEC_CACHE_MIN + max_streams
+#: (a topic gives one stream or more, so every live topic fits).
+SPEC_CACHE_TOPIC = 512
+SPEC_CACHE_MIN = 1000
 
 
 class RateLimitedLog:
@@ -61,38 +66,63 @@ class RateLimitedLog:
         self._last: dict[str, float] = {}
         self._held: dict[str, int] = {}
 
-    def warning(self, key: str, text: str, now: float) -> None:
+    def warning(self, key: str, text: str, now: float, *, exc_info: bool = False) -> None:
         last = self._last.get(key)
         if last is not None and now - last < self.every:
             self._held[key] = self._held.get(key, 0) + 1
             return
         held = self._held.pop(key, 0)
-        if len(self._last) > 1000:  # keys come from input: keep the table bounded
+        if len(self._last) > 1000:  # keep the tables bounded whatever the keys
             self._last.clear()
+            self._held.clear()
         self._last[key] = now
-        self.log.warning(text + (f" ({held} more like this in the last {self.every:.0f} s)" if held else ""))
+        more = f" ({held} more like this in the last {self.every:.0f} s)" if held else ""
+        self.log.warning(text + more, exc_info=exc_info)
 
 
-def alert_summary(rec: AlertRecord) -> str:
-    """One line an operator reads at a glance.
+def alert_summary(rec: AlertRecord, label: str | None = None) -> str:
+    """One line an operator reads at a glance: what stepped, by how much, when, and how soon it was seen.
+
+    ``label`` is the operator's name of the stream (the config's ``label``);
+    without it the stream name is used.  Times are UTC.
 
     Examples
     --------
-    A record for a fill weight that stepped up is summarised as
-    ``CONFIRMED filler3/fill_g stepped up 0.9 g (1.1 sigma) at 06:24:59Z: 500 -> 500.9 g,
-    detected 18 s after the step``.
+    >>> rec = AlertRecord(id="ace7", phase="confirmed", stream="plant/line2/filler/head7/fill",
+    ...     detected_at=1772432601.0, shift_at=1772432592.0, shift_at_low=1772432590.0,
+    ...     shift_at_high=1772432593.0, level_before=500.03, level_after=501.83, delta=1.8,
+    ...     delta_sigma=2.1, sigma=0.86, n_before=1200, n_after=60, test="multi_cusum",
+    ...     statistic=1.02, threshold=1.0, as_of=1772432650.0, interval_level=0.9,
+    ...     level_before_se=0.02, level_after_se=0.1, f_stat=80.0, p_value=1e-15,
+    ...     direction="up", unit="g")
+    >>> alert_summary(rec, "fill weight on filler 7")
+    'CONFIRMED fill weight on filler 7 stepped up 1.8 g (2.1 sigma) at 06:23:12Z, detected 9 s later: 500.03 -> 501.83 g'
+    >>> alert_summary(rec)[:60]
+    'CONFIRMED plant/line2/filler/head7/fill stepped up 1.8 g (2.'
     """
     unit = f" {rec.unit}" if rec.unit else ""
+    who = label or rec.stream
     verb = {"detected": "DETECTED", "confirmed": "CONFIRMED", "dismissed": "DISMISSED"}[rec.phase]
-    when = format_time(rec.shift_at)[11:19] + "Z"
     if rec.phase == "dismissed":
-        return (f"{verb} {rec.stream}: the step detected at {format_time(rec.detected_at)[11:19]}Z "
-                f"did not last; level stays {rec.level_before:.4g}{unit}")
-    lag = rec.detected_at - rec.shift_at
-    lag_text = f"{lag:.1f} s" if lag < 10 else f"{lag:.0f} s"
-    return (f"{verb} {rec.stream} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
-            f"({abs(rec.delta_sigma):.2g} sigma) at {when}: {rec.level_before:.5g} -> "
-            f"{rec.level_after:.5g}{unit}, detected {lag_text} after the step")
+        return (f"{verb} {who}: the step detected at {_clock_utc(rec.detected_at)} did not last; "
+                f"the level stays {rec.level_before:.5g}{unit}, no action needed")
+    return (f"{verb} {who} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
+            f"({abs(rec.delta_sigma):.2g} sigma) at {_clock_utc(rec.shift_at)}, detected "
+            f"{_lag_text(rec.detected_at - rec.shift_at)} later: {rec.level_before:.5g} -> "
+            f"{rec.level_after:.5g}{unit}")
+
+
+def _clock_utc(t: float) -> str:
+    return format_time(t)[11:19] + "Z"
+
+
+def _lag_text(lag: float) -> str:
+    """A detection delay as an operator says it: 1.3 s, 9 s, 2.5 min."""
+    if lag < 10:
+        return f"{max(lag, 0.0):.1f} s".replace(".0 s", " s")
+    if lag < 120:
+        return f"{lag:.0f} s"
+    return format_duration(lag)
 
 
 class _SyncThenAck:
@@ -169,7 +199,7 @@ class Daemon:
         self.env = env
         self.inbox = Inbox(QUEUE_MAX)
         self.engines: dict[str, StreamEngine] = {}
-        self._routes: dict[str, tuple[StreamConfig, str] | None] = {}
+        self._spec_cache: dict[str, tuple[StreamConfig, str] | None] = {}
         state_dir = Path(cfg.state.dir)
         self.store = StateStore(state_dir / "snapshots", logger=self.log)
         self.outbox = Outbox(state_dir / "outbox", max_items=cfg.alerts.outbox_max, logger=self.log)
@@ -206,13 +236,16 @@ class Daemon:
     def _route(self, topic: str) -> tuple[StreamConfig, str] | None:
         """The stream configuration of a topic and its stream name (for readings
         without a SenML name), cached per topic."""
-        route = self._routes.get(topic, False)
+        route = self._spec_cache.get(topic, False)
         if route is False:
             spec = next((s for s in self.cfg.streams if topic_matches(s.topic, topic)), None)
             route = None if spec is None else (spec, stream_name(topic, None))
-            if len(self._routes) > 100_000:
-                self._routes.clear()
-            self._routes[topic] = route
+            # Topics come from publishers: a flood of new (or 64 KiB long) ones must
+            # not grow the cache without bound.
+            if len(topic) <= SPEC_CACHE_TOPIC:
+                if len(self._spec_cache) >= SPEC_CACHE_MIN + self.cfg.metrics.max_streams:
+                    self._spec_cache.clear()
+                self._spec_cache[topic] = route
         return route  # type: ignore[return-value]
 
     # ----------------------------------------------------------- signals
@@ -257,16 +290,25 @@ class Daemon:
     def start(self) -> None:
         """Everything up to the point where messages flow: state, metrics, broker, outbox."""
         self.restore()
-        host, _, port = self.cfg.metrics.listen.rpartition(":")
-        self.server = self.metrics.serve(self.cfg.metrics.listen)
-        self.log.info("metrics on http://%s:%d/metrics", host or "0.0.0.0", self.server.port)
+        mtls = self.cfg.metrics.tls
+        try:
+            self.server = self.metrics.serve(
+                self.cfg.metrics.listen, certfile=mtls.cert_file if mtls else None,
+                keyfile=mtls.key_file if mtls else None,
+                client_cafile=mtls.client_ca_file if mtls else None)
+        except OSError as exc:
+            what = "metrics.tls: " if mtls else ""
+            raise OSError(f"metrics endpoint {self.cfg.metrics.listen}: {what}{exc}") from None
+        self.log.info("metrics on %s://%s:%d/metrics%s", "https" if mtls else "http",
+                      self.server.host, self.server.port,
+                      " (client certificates required)" if mtls and mtls.client_ca_file else "")
         password = read_password(self.cfg.broker, self.env)
         self.link = MqttLink(
             self.cfg.broker,
             subscriptions=[s.topic for s in self.cfg.streams],
             status_topic=self.status_topic(),
             inbox=self.inbox,
-            on_drop=self._count_drop,
+            on_drop=self._count_handover_drop,
             on_published=self._published,
             on_connection=self._connection,
             logger=self.log,
@@ -399,10 +441,10 @@ class Daemon:
         # stream -> [spec, unit, times, values, arrival times]
         groups: dict[str, list[Any]] = {}
         for spec, ms, names in by_spec.values():
-            decoded = decode_many([m.payload for m in ms], spec.format, value_path=spec.value,
-                                  time_path=spec.time, max_bytes=self.cfg.broker.max_payload_bytes,
-                                  now=[m.arrived for m in ms])
+            decoded = self._decode(spec, ms, now)
             for m, topic_stream, dec in zip(ms, names, decoded):
+                if dec is None:
+                    continue
                 if dec.problems:
                     self._decode_problems(m.topic, dec.problems, now)
                 arrived = m.arrived
@@ -419,8 +461,9 @@ class Daemon:
                 self._run_stream(name, spec, unit, times, values, arrivals, now)
             except Exception:  # a defect must cost one stream's batch, never the daemon
                 self._count_drop("internal_error", len(values))
-                self.log.exception("internal error while processing stream %s; its batch was set aside",
-                                   _printable(name))
+                self.rlog.warning("internal_error", "internal error while processing stream "
+                                  f"{_printable(name)}; its batch was set aside", now,
+                                  exc_info=True)
         wrote = self.records_published != published_before
         if self.link is None:
             if wrote:
@@ -443,14 +486,37 @@ class Daemon:
         if self.link is not None:
             self.link.ack_all(msgs)
 
+    def _decode(self, spec: StreamConfig, ms: list[Message], now: float) -> list[Decoded | None]:
+        """Decode the messages of one stream entry; None for a message whose decoding failed.
+
+        decode never raises on a payload: a defect costs the messages it hits only.
+        """
+        kwargs: dict[str, Any] = {"value_path": spec.value, "time_path": spec.time,
+                                  "max_bytes": self.cfg.broker.max_payload_bytes}
+        try:
+            return list(decode_many([m.payload for m in ms], spec.format, now=[m.arrived for m in ms],
+                                    **kwargs))
+        except Exception:
+            pass
+        out: list[Decoded | None] = []
+        for m in ms:
+            try:
+                out.append(decode(m.payload, spec.format, now=m.arrived, **kwargs))
+            except Exception:
+                self._count_drop("internal_error")
+                self.rlog.warning("internal_error", f"internal error while decoding a message on "
+                                  f"{_printable(m.topic)}; it was set aside", now, exc_info=True)
+                out.append(None)
+        return out
+
     def _decode_problems(self, topic: str, problems: list[DecodeProblem], now: float) -> None:
         for p in problems:
             if p.reason == "no_time":  # the reading is used, with its arrival time
                 self.rlog.warning("decode:no_time", f"message on {_printable(topic)}: {p.message}", now)
                 continue
             self._count_drop(p.reason)
-            self.rlog.warning(f"decode:{p.reason}", f"message on {_printable(topic)} set aside: "
-                              f"{p.message}", now)
+            self.rlog.warning(f"decode:{p.reason}", f"message on {_printable(topic)} "
+                              f"set aside ({p.reason}): {p.message}", now)
 
     def engine_for(self, name: str, spec: StreamConfig, unit: str | None) -> StreamEngine | None:
         eng = self.engines.get(name)
@@ -473,9 +539,9 @@ class Daemon:
         times = np.asarray(times_list, dtype=np.float64)
         res = eng.process(times, np.asarray(values, dtype=np.float64))
         for rej in res.rejected:
-            if rej.reason != "spike":
-                self.rlog.warning(f"sample:{name}:{rej.reason}",
-                                  f"sample of {_printable(name)} set aside: {SAMPLE_REASONS[rej.reason]}", now)
+            if rej.reason != "spike":  # one key per reason: many streams cannot multiply the lines
+                self.rlog.warning(f"sample:{rej.reason}", f"sample of {_printable(name)} set aside "
+                                  f"({rej.reason}): {SAMPLE_REASONS[rej.reason]}", now)
         for rec in res.records:
             j = int(np.searchsorted(times, rec.as_of))
             self.emit(rec, arrivals[min(j, len(arrivals) - 1)])
@@ -485,7 +551,10 @@ class Daemon:
     def emit(self, rec: AlertRecord, arrived: float) -> None:
         """Publish an alert record (through the outbox) and log its summary."""
         d = rec.to_dict()
-        d["summary"] = alert_summary(rec)
+        label = self.cfg.label_for(rec.stream)
+        if label is not None:
+            d["label"] = label
+        d["summary"] = alert_summary(rec, label)
         payload = json.dumps(d).encode()
         topic = f"{self.prefix}/alerts/{rec.stream}"
         # Forced to disk at the end of the round, before the round's messages
@@ -494,7 +563,10 @@ class Daemon:
         self._publish(topic, payload, qos=self.cfg.alerts.qos, retain=False, key=item.key)
         self.records_published += 1
         self.metrics.alert_delay.observe(max(0.0, time.time() - arrived))
-        self.log.info("%s [id %s]", d["summary"], rec.id)
+        if label is None:
+            self.log.info("%s [id %s]", d["summary"], rec.id)
+        else:
+            self.log.info("%s [stream %s, id %s]", d["summary"], _printable(rec.stream), rec.id)
 
     def _publish_level(self, name: str, eng: StreamEngine) -> None:
         sent = self._levels_sent.get(name)
@@ -537,6 +609,11 @@ class Daemon:
     def _count_drop(self, reason: str, n: int = 1) -> None:
         self.metrics.messages_dropped.labels(reason).inc(n)
 
+    def _count_handover_drop(self, reason: str) -> None:
+        """A message paho's thread could not hand over: it was received all the same."""
+        self.metrics.messages_received.inc()
+        self._count_drop(reason)
+
     # --------------------------------------------------------- snapshots
     def snapshot(self) -> bool:
         try:
@@ -577,7 +654,7 @@ class Daemon:
             else:
                 kept += 1
         self.cfg = new
-        self._routes.clear()
+        self._spec_cache.clear()
         if self.link is not None:
             self.link.set_subscriptions(sorted(new_filters), added=sorted(new_filters - old_filters),
                                         removed=sorted(old_filters - new_filters))
@@ -612,8 +689,8 @@ def _stats(eng: StreamEngine) -> StreamStats:
 
 def _printable(text: str, limit: int = 120) -> str:
     """Topic or stream text made safe for one log line."""
-    clean = "".join(c if c.isprintable() else "?" for c in text)
-    return clean if len(clean) <= limit else clean[:limit] + "..."
+    clean = "".join(c if c.isprintable() else "?" for c in text[:limit])
+    return clean if len(text) <= limit else clean + "..."
 
 
 __all__ = ["Daemon", "alert_summary", "DECODE_REASONS"]

@@ -79,8 +79,10 @@ SenML specifics (RFC 8428)
 - ``vs``, ``vb`` and ``vd`` (string, boolean and data values) give
   ``not_a_number`` for that record.  A record with a sum ``s`` and no value
   is skipped without a problem, and so is a record holding only base fields
-  (it only sets base values for the records after it).  Any other record
-  without a value field, or with more than one, is ``senml_invalid``.
+  (it only sets base values for the records after it); a pack that holds
+  nothing else gives ``empty``, so every payload yields a reading or a
+  problem.  Any other record without a value field, or with more than one,
+  is ``senml_invalid``.
 - A base field of the wrong type (``bn`` not text, ``bt`` not a number,
   ``bver`` not a positive integer or above 10, ...) makes its record
   ``senml_invalid``, and the broken base stays in force: later records that
@@ -133,7 +135,8 @@ REASONS: dict[str, str] = {
     "not_utf8": "The message is not valid UTF-8 text.",
     "not_json": "The message is not valid JSON.",
     "too_deep": "The message nests lists or objects deeper than the configured limit and was dropped unread.",
-    "empty": "The message holds no readings: it is empty, blank or an empty list.",
+    "empty": ("The message holds no readings: it is empty, blank, an empty list, "
+              "or a SenML pack of base fields and sums only."),
     "too_many_items": "The message holds more items than the configured limit; only the first ones were used.",
     "not_an_object": "A batch item is neither a JSON object nor a number.",
     "no_value": "The item has no value at the configured value path, or the value is null.",
@@ -497,6 +500,8 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
             doc = doc[:max_items]
     if fmt == "senml":
         _senml(doc, now, readings, problems)
+        if not readings and not problems:  # only base fields or sums: still accounted for
+            problems.append(DecodeProblem("empty", "the SenML pack holds no value records"))
     elif isinstance(doc, list):
         for i, item in enumerate(doc):
             _json_item(item, f"item {i}", True, value_path, value_parts, time_path, time_parts,
@@ -767,6 +772,13 @@ def _senml_record(rec: dict[str, Any], base: dict[str, Any], now: float, where: 
 
 _MAX_STREAM = 256
 _HASH_HEX = 12
+#: Most topic levels in a stream name.  Mosquitto disconnects a client that
+#: publishes to a topic of more than 201 levels (measured with Mosquitto
+#: 2.0.11), and alerts go to ``<prefix>/alerts/<stream>``; with the prefix
+#: held to :data:`MAX_PREFIX_LEVELS` the alert topic stays well inside it.
+MAX_STREAM_LEVELS = 100
+#: Most levels in ``alerts.topic_prefix`` (checked by the configuration).
+MAX_PREFIX_LEVELS = 32
 
 
 def _unsafe_class() -> str:
@@ -788,12 +800,17 @@ def stream_name(topic: str, name: str | None) -> str:
     published under it) and as a Prometheus label value, so it is made safe
     for both: MQTT wildcards ``+`` and ``#``, NUL and other control
     characters (C0, C1, line and paragraph separators, bidirectional
-    controls), lone surrogates and noncharacters become ``_``, and the result
-    has at most 256 characters.  When anything had to change (a replaced
-    character, an empty name, a cut), ``~`` and the first 12 hex digits of the
-    SHA-256 of the original text are appended, so distinct inputs keep
-    distinct names.  Safe names of at most 256 characters are returned as
-    they are.
+    controls), lone surrogates and noncharacters become ``_`` (Mosquitto
+    disconnects a client that publishes a topic holding any of them), the
+    ``/`` after the 100th level becomes ``_`` (Mosquitto also refuses topics
+    of more than about 200 levels), and the result has at most 256
+    characters.  When anything had to change (a replaced character, an empty
+    name, a cut), ``~`` and the first 12 hex digits of the SHA-256 of the
+    original text are appended, so distinct inputs keep distinct names.
+    Safe names of at most 256 characters and 100 levels are returned as they
+    are.  Other text (``..``, spaces, quotes, backslashes, ``$``) is kept: it
+    means nothing special in an MQTT topic level, and the metrics endpoint
+    escapes it in label values.
 
     Parameters
     ----------
@@ -817,9 +834,15 @@ def stream_name(topic: str, name: str | None) -> str:
     'brackenfield/capper1/torque__~554664185411'
     >>> len(stream_name("brackenfield/" + "x" * 1000, None))
     256
+    >>> stream_name("brackenfield" + "/x" * 120, None).count("/")
+    99
     """
     raw = topic if name is None else f"{topic}/{name}"
     safe = _UNSAFE.sub("_", raw)
+    if safe.count("/") >= MAX_STREAM_LEVELS:
+        levels = safe.split("/")
+        keep = MAX_STREAM_LEVELS - 1
+        safe = "/".join(levels[:keep]) + "/" + "_".join(levels[keep:])
     if raw and safe == raw and len(raw) <= _MAX_STREAM:
         return raw
     digest = hashlib.sha256(raw.encode("utf-8", "surrogatepass")).hexdigest()[:_HASH_HEX]

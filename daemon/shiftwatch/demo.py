@@ -75,11 +75,14 @@ streams:
     value: weight_g
     time: ts
     unit: g
+    label: "fill weight on filler {{1}}"
   - topic: brackenfield/line2/oven/senml
     format: senml
+    label: "tunnel oven {{name}}"
   - topic: brackenfield/line2/capper/torque
     format: number
     unit: N m
+    label: capper torque
 detection:
   min_shift_sigma: 1.0
   false_alarm_every: 7d

@@ -311,13 +311,18 @@ class Metrics:
             return dict(self._streams)
 
     def serve(self, listen: str = DEFAULT_LISTEN, *, certfile: str | None = None,
-              keyfile: str | None = None) -> MetricsServer:
+              keyfile: str | None = None, client_cafile: str | None = None) -> MetricsServer:
         """Serve the registry over HTTP (HTTPS when a certificate and key are given).
+
+        TLS is prometheus_client's own (``start_http_server``'s ``certfile``,
+        ``keyfile``, ``client_cafile`` and ``client_auth_required``): with a
+        client CA, only scrapers presenting a certificate it signed are served.
 
         Parameters
         ----------
         listen : ``host:port``, see :func:`parse_listen`; loopback by default.
         certfile, keyfile : PEM certificate and private key; both or neither.
+        client_cafile : PEM CA that signs the scrapers' client certificates (HTTPS only).
 
         Returns
         -------
@@ -326,13 +331,18 @@ class Metrics:
         Raises
         ------
         ValueError
-            If the address is malformed or only one of certfile and keyfile is given.
+            If the address is malformed, only one of certfile and keyfile is given,
+            or a client CA is given without them.
         OSError
-            If the address cannot be bound.
+            If the address cannot be bound or a certificate or key cannot be loaded.
         """
         if (certfile is None) != (keyfile is None):
             raise ValueError("certfile and keyfile must be given together")
+        if client_cafile is not None and certfile is None:
+            raise ValueError("client_cafile needs certfile and keyfile")
         host, port = parse_listen(listen)
         server, thread = start_http_server(port, addr=host, registry=self.registry,
-                                           certfile=certfile, keyfile=keyfile)
+                                           certfile=certfile, keyfile=keyfile,
+                                           client_cafile=client_cafile,
+                                           client_auth_required=client_cafile is not None)
         return MetricsServer(server, thread)

@@ -11,14 +11,21 @@ delivered when it comes back: MQTT 5 with ``clean_start=False`` and a session
 expiry, or MQTT 3.1.1 with ``clean_session=False``, always with a fixed client
 id.  Incoming QoS 1 messages are acknowledged only after the engine has
 processed them (paho's manual acks).
+
+A connection that fails (refused, TLS verification, wrong password) is reported
+once as an error line naming the broker URL and the reason; paho then retries
+with a doubling delay (1 s up to 30 s), and each further attempt that fails the
+same way is one information line.
 """
 
 from __future__ import annotations
 
 import logging
 import os
+import re
 import ssl
 import struct
+import sys
 import threading
 import time
 from collections import deque
@@ -151,6 +158,30 @@ def read_password(cfg: BrokerConfig, env: dict[str, str] | None = None) -> str |
     return None
 
 
+def describe_connect_error(exc: BaseException | None) -> str:
+    """A short, operator-readable reason for a failed connection attempt.
+
+    TLS verification failures keep OpenSSL's own words, for example
+    ``certificate verify failed: certificate has expired``.
+
+    Examples
+    --------
+    >>> describe_connect_error(ConnectionRefusedError(111, "Connection refused"))
+    'connection refused (is the broker running, and is this its port?)'
+    >>> describe_connect_error(None)
+    'connection failed'
+    """
+    if isinstance(exc, ssl.SSLCertVerificationError):
+        return f"TLS certificate verify failed: {exc.verify_message or exc.reason}"
+    if isinstance(exc, ssl.SSLError):
+        return f"TLS handshake failed: {exc.reason or exc}"
+    if isinstance(exc, ConnectionRefusedError):
+        return "connection refused (is the broker running, and is this its port?)"
+    if isinstance(exc, OSError):
+        return str(exc.strerror or exc or "connection failed")
+    return "connection failed" if exc is None else str(exc)
+
+
 def parse_url(url: str) -> tuple[str, int, bool]:
     """(host, port, tls) from mqtt://host:port or mqtts://host:port."""
     parts = urlsplit(url)
@@ -158,6 +189,21 @@ def parse_url(url: str) -> tuple[str, int, bool]:
         raise BrokerError(f"broker.url: expected mqtt://host:port or mqtts://host:port, got {url!r}")
     tls = parts.scheme == "mqtts"
     return parts.hostname, parts.port or (8883 if tls else 1883), tls
+
+
+class _LastError(logging.Handler):
+    """Keeps the text of the last error paho logged (for a connection closed before CONNACK)."""
+
+    def __init__(self) -> None:
+        super().__init__(logging.ERROR)
+        self.text: str | None = None
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.text = record.getMessage()
+
+    def take(self) -> str | None:
+        text, self.text = self.text, None
+        return text
 
 
 class MqttLink:
@@ -200,7 +246,11 @@ class MqttLink:
         self._stopping = False
         self._own_mids: set[int] = set()  # ids of the status messages this link publishes itself
         self._last_error: str | None = None
+        self._failed_attempts = 0
         self.host, self.port, tls = parse_url(cfg.url)
+        # Rebuilt from its parts, so nothing else the URL held ever reaches a log line.
+        shown_host = f"[{self.host}]" if ":" in self.host else self.host
+        self.url = f"{'mqtts' if tls else 'mqtt'}://{shown_host}:{self.port}"
         v5 = cfg.mqtt_version == "5"
         self._v5 = v5
         self.client = paho.Client(
@@ -210,8 +260,16 @@ class MqttLink:
             protocol=MQTTProtocolVersion.MQTTv5 if v5 else MQTTProtocolVersion.MQTTv311,
             manual_ack=True,
         )
-        self.client.enable_logger(logging.getLogger("shiftwatch.paho"))
-        logging.getLogger("shiftwatch.paho").setLevel(logging.CRITICAL)
+        # paho's own log stays silent; its error lines are only kept, so that a connection the
+        # broker closes before accepting it (a TLS alert after the handshake, for example)
+        # can be reported with the reason.  Below ERROR nothing is even formatted.
+        plog = logging.getLogger(f"shiftwatch.paho.{cfg.client_id}")
+        plog.setLevel(logging.ERROR)
+        plog.propagate = False
+        self._paho_error = _LastError()
+        plog.handlers[:] = [self._paho_error]
+        self.client.enable_logger(plog)
+        self._refused = False
         self.client.reconnect_delay_set(min_delay=1, max_delay=30)
         self.client.max_queued_messages_set(0)
         self.client.will_set(status_topic, b"offline", qos=1, retain=True)
@@ -316,12 +374,18 @@ class MqttLink:
     def _handle_connect(self, client: paho.Client, userdata: Any, flags: Any, reason: Any,
                         properties: Any) -> None:
         if reason.is_failure:
-            self._report_error(f"broker {self.host}:{self.port} refused the connection: {reason}")
+            hint = ""
+            if "authori" in str(reason).lower() or "password" in str(reason).lower():
+                who = f"user {self.cfg.username!r}" if self.cfg.username else "no user name"
+                hint = f" ({who}; check broker.username and the password)"
+            self._refused = True
+            self._report_error(f"refused the connection: {reason}{hint}")
             return
         self._connected = True
         self._last_error = None
+        self._failed_attempts = 0
         session = getattr(flags, "session_present", False)
-        self.log.info("connected to broker %s:%d (session %s)", self.host, self.port,
+        self.log.info("connected to broker %s (session %s)", self.url,
                       "resumed" if session else "new")
         for f in self.subscriptions:
             client.subscribe(f, qos=self.cfg.qos)
@@ -330,17 +394,28 @@ class MqttLink:
         self._on_connection(True)
 
     def _handle_connect_fail(self, client: paho.Client, userdata: Any) -> None:
-        self._report_error(f"cannot connect to broker {self.host}:{self.port}; retrying with backoff")
+        # paho calls this from inside its ``except OSError`` around the attempt, so the
+        # exception being handled is the reason (it passes none itself).
+        self._report_error(f"cannot connect: {describe_connect_error(sys.exc_info()[1])}")
 
     def _handle_disconnect(self, client: paho.Client, userdata: Any, flags: Any, reason: Any,
                            properties: Any) -> None:
         was = self._connected
         self._connected = False
+        refused, self._refused = self._refused, False
+        if not was and not refused and not self._stopping:
+            # Closed between the TCP/TLS handshake and the CONNACK.
+            why = self._paho_error.take() or str(reason)
+            why = re.sub(r" \(_ssl\.c:\d+\)$", "", why.removeprefix("failed to receive on socket: "))
+            if any(a in why for a in ("certificate required", "alert unknown ca", "bad certificate")):
+                why += (" (the broker wants a client certificate it trusts: "
+                        "broker.tls.cert_file, key_file)")
+            self._report_error(f"the connection was closed before the broker accepted it: {why}")
         if self._stopping:
-            self.log.info("disconnected from broker %s:%d", self.host, self.port)
+            self.log.info("disconnected from broker %s", self.url)
         elif was:
-            self.log.warning("disconnected from broker %s:%d: %s; reconnecting with backoff",
-                             self.host, self.port, reason)
+            self.log.warning("disconnected from broker %s: %s; reconnecting with backoff",
+                             self.url, reason)
         self._on_connection(False)
 
     def _handle_message(self, client: paho.Client, userdata: Any, msg: paho.MQTTMessage) -> None:
@@ -350,8 +425,15 @@ class MqttLink:
                 # the broker's few in-flight slots and stall the whole flow.
                 self.ack(int(msg.mid), int(msg.qos))
                 self._on_drop("queue_full")
-        except Exception:  # a callback must never raise into paho's loop
-            self._on_drop("internal")
+        except Exception as exc:  # a callback must never raise into paho's loop
+            # Acknowledged too, or the message would hold an in-flight slot for good.
+            # MQTT topics are UTF-8; paho hands over whatever the broker sent.
+            bad_topic = isinstance(exc, UnicodeDecodeError)
+            self._on_drop("topic_not_utf8" if bad_topic else "internal_error")
+            try:
+                self.ack(int(msg.mid), int(msg.qos))
+            except Exception:
+                pass
 
     def _handle_publish(self, client: paho.Client, userdata: Any, mid: int, reason: Any,
                         properties: Any) -> None:
@@ -364,10 +446,15 @@ class MqttLink:
             self.log.exception("error while recording a delivered publication")
 
     def _report_error(self, text: str) -> None:
-        # One line per distinct problem, not one per reconnect attempt.
+        # One error line per distinct problem; a repeat is one information line per
+        # attempt, and attempts are spaced by paho's doubling delay.
+        self._failed_attempts += 1
         if text != self._last_error:
-            self.log.error(text)
+            self.log.error("broker %s: %s; retrying with backoff", self.url, text)
             self._last_error = text
+        else:
+            self.log.info("broker %s: attempt %d failed the same way; retrying with backoff",
+                          self.url, self._failed_attempts)
 
 
 class PlainClient:
@@ -375,18 +462,36 @@ class PlainClient:
 
     Publishes at QoS 1 and, when ``on_message`` is given, subscribes to
     ``subscribe`` filters and calls ``on_message(topic, payload)`` from paho's
-    thread.
+    thread.  ``username`` and ``password`` log in to a broker that wants them.
+
+    With ``persistent=True`` it behaves as a QoS 1 client with a persistent
+    session should: a fixed client id, MQTT 5 ``clean_start=False`` with a
+    session expiry (3.1.1 ``clean_session=False``), reconnection after a
+    broker restart within a second or two, and paho re-sending every publication the
+    broker has not acknowledged.  ``on_acked(mid)`` is called from paho's
+    thread for each publication the broker acknowledged, ``on_connection(up)``
+    when the connection comes up or goes down.
     """
 
     def __init__(self, url: str, client_id: str, *, subscribe: list[str] | None = None,
-                 on_message: Callable[[str, bytes], None] | None = None, mqtt_version: str = "5") -> None:
+                 on_message: Callable[[str, bytes], None] | None = None, mqtt_version: str = "5",
+                 username: str | None = None, password: str | None = None,
+                 persistent: bool = False, on_acked: Callable[[int], None] | None = None,
+                 on_connection: Callable[[bool], None] | None = None) -> None:
         self.host, self.port, tls = parse_url(url)
         v5 = mqtt_version == "5"
+        self._v5 = v5
+        self._persistent = persistent
         self.client = paho.Client(
             callback_api_version=CallbackAPIVersion.VERSION2, client_id=client_id,
             protocol=MQTTProtocolVersion.MQTTv5 if v5 else MQTTProtocolVersion.MQTTv311,
+            clean_session=False if persistent and not v5 else None,
         )
         self.client.max_queued_messages_set(0)
+        if username is not None:
+            self.client.username_pw_set(username, password)
+        if persistent:
+            self.client.reconnect_delay_set(min_delay=1, max_delay=2)
         self._subscribe = list(subscribe or [])
         self._on_message = on_message
         self._up = threading.Event()
@@ -396,6 +501,12 @@ class PlainClient:
                 for f in self._subscribe:
                     client.subscribe(f, qos=1)
                 self._up.set()
+                if on_connection is not None:
+                    on_connection(True)
+
+        def on_disconnect(client: paho.Client, userdata: Any, flags: Any, reason: Any, props: Any) -> None:
+            if on_connection is not None:
+                on_connection(False)
 
         def on_message_cb(client: paho.Client, userdata: Any, msg: paho.MQTTMessage) -> None:
             if self._on_message is not None:
@@ -404,19 +515,31 @@ class PlainClient:
                 except Exception:
                     logging.getLogger(__name__).exception("message handler failed")
 
+        def on_publish_cb(client: paho.Client, userdata: Any, mid: int, reason: Any, props: Any) -> None:
+            if on_acked is not None:
+                on_acked(int(mid))
+
         self.client.on_connect = on_connect
         self.client.on_message = on_message_cb
+        self.client.on_publish = on_publish_cb
+        self.client.on_disconnect = on_disconnect
 
     def start(self, timeout: float = 10.0) -> "PlainClient":
-        self.client.connect(self.host, self.port, keepalive=30)
+        if self._persistent and self._v5:
+            props = Properties(PacketTypes.CONNECT)
+            props.SessionExpiryInterval = 3600
+            self.client.connect(self.host, self.port, keepalive=30, clean_start=False, properties=props)
+        else:
+            self.client.connect(self.host, self.port, keepalive=30)
         self.client.loop_start()
         if not self._up.wait(timeout):
             raise BrokerError(f"no connection to {self.host}:{self.port} within {timeout:.0f} s")
         time.sleep(0.05)  # let the SUBACKs arrive before the caller publishes
         return self
 
-    def publish(self, topic: str, payload: bytes | str, *, qos: int = 1, retain: bool = False) -> None:
-        self.client.publish(topic, payload, qos=qos, retain=retain)
+    def publish(self, topic: str, payload: bytes | str, *, qos: int = 1, retain: bool = False) -> int:
+        """Queue a publication (kept and re-sent by paho while disconnected); returns its mid."""
+        return int(self.client.publish(topic, payload, qos=qos, retain=retain).mid)
 
     def publish_wait(self, topic: str, payload: bytes | str, *, qos: int = 1, timeout: float = 10.0) -> None:
         info = self.client.publish(topic, payload, qos=qos)

@@ -18,7 +18,7 @@ from typing import Any, Callable, Iterable
 import numpy as np
 from numpy.typing import NDArray
 
-from shiftwatch.core.engine import AlertRecord, StreamEngine
+from shiftwatch.core.engine import AlertRecord, BatchResult, StreamEngine
 from shiftwatch.core.screen import REASONS
 from shiftwatch.core.settings import DetectionSettings
 
@@ -307,8 +307,16 @@ def read_long_csv(paths: Iterable[str | Path]) -> ReadResult:
 
 def replay_series(series: dict[str, StreamSeries], settings_for: Callable[[str], DetectionSettings],
                   unit_for: Callable[[str], str | None] = lambda s: None,
-                  progress: Callable[[int], None] | None = None) -> tuple[list[AlertRecord], list[str], dict[str, StreamEngine]]:
-    """Run every stream through its own engine; return records sorted by time."""
+                  progress: Callable[[int], None] | None = None,
+                  observe: Callable[[str, FloatArray, FloatArray, BatchResult], None] | None = None,
+                  ) -> tuple[list[AlertRecord], list[str], dict[str, StreamEngine]]:
+    """Run every stream through its own engine; return records sorted by time.
+
+    Streams are replayed one after the other, in name order.  ``progress`` is
+    called with the number of samples of each batch; ``observe`` with the
+    stream, the batch's times and values and what the engine made of them
+    (the replay report collects its charts this way).
+    """
     records: list[AlertRecord] = []
     problems: list[str] = []
     engines: dict[str, StreamEngine] = {}
@@ -319,6 +327,8 @@ def replay_series(series: dict[str, StreamSeries], settings_for: Callable[[str],
         v = np.asarray(s.values, dtype=np.float64)
         for a in range(0, t.shape[0], BATCH):
             res = eng.process(t[a:a + BATCH], v[a:a + BATCH])
+            if observe is not None:
+                observe(name, t[a:a + BATCH], v[a:a + BATCH], res)
             records.extend(res.records)
             for rej in res.rejected:
                 if rej.reason == "spike":

@@ -135,14 +135,17 @@ def test_bad_samples_are_rejected_with_reasons_and_good_ones_kept() -> None:
     x[102] = "12.5"
     x[103] = None
     t[200] = t[199]  # duplicate time
-    t[300] = t[250]  # out of order
+    t[300] = t[250] + 0.5  # out of order
+    t[350] = t[340]  # a repeat of an accepted time (a message delivered again): a duplicate
     t[400] = float("nan")
     eng = StreamEngine("s")
     recs, rejected = run(eng, np.array(t, dtype=object), np.array(x, dtype=object))
     assert dict(rejected) == {100: "nan", 101: "infinite", 102: "not_a_number", 103: "not_a_number",
-                              200: "duplicate_time", 300: "out_of_order", 400: "bad_time"}
+                              200: "duplicate_time", 300: "out_of_order", 350: "duplicate_time",
+                              400: "bad_time"}
     assert eng.rejected_total["not_a_number"] == 2
-    assert eng.samples_total == n
+    assert eng.rejected_total["duplicate_time"] == 2
+    assert eng.samples_total == n - 3  # a time not newer than the newest is not counted again
     assert [r.phase for r in recs] == ["detected", "confirmed"]
     assert abs(recs[1].shift_at - t[1000]) <= 3
 

@@ -139,11 +139,12 @@ def daemon_factory(tmp_path: Path, broker: MosquittoBroker,
                    shiftwatch_cmd: list[str]) -> Iterator[Callable[..., DaemonProcess]]:
     started: list[DaemonProcess] = []
 
-    def make(streams_yaml: str, *, extra: str = "", client_id: str = "shiftwatch-test") -> DaemonProcess:
+    def make(streams_yaml: str, *, extra: str = "", client_id: str = "shiftwatch-test",
+             keepalive: int = 5) -> DaemonProcess:
         port = free_port()
         cfg = tmp_path / f"shiftwatch-{len(started)}.yaml"
         cfg.write_text(
-            f"broker:\n  url: {broker.url}\n  client_id: {client_id}\n  keepalive: 5\n"
+            f"broker:\n  url: {broker.url}\n  client_id: {client_id}\n  keepalive: {keepalive}\n"
             f"streams:\n{streams_yaml}"
             f"alerts:\n  topic_prefix: sw\n"
             f"metrics:\n  listen: 127.0.0.1:{port}\n"

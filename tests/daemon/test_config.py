@@ -56,6 +56,9 @@ def test_the_shipped_schema_is_generated_from_the_same_definitions() -> None:
      "plant.yaml:1: detection.false_alarm_every: not a duration: 'soon'"),
     ("metrics: {listen: nowhere}\n", "plant.yaml:1: metrics.listen: must be host:port, got 'nowhere'"),
     ("alerts: {topic_prefix: 'a/+/b'}\n", "plant.yaml:1: alerts.topic_prefix: must be a plain topic"),
+    ('alerts: {topic_prefix: "a/\\x01b"}\n', "plant.yaml:1: alerts.topic_prefix: must be a plain topic"),
+    ("alerts: {topic_prefix: '" + "l/" * 32 + "x'}\n",
+     "plant.yaml:1: alerts.topic_prefix: must be a plain topic of at most 32 levels"),
     ("brokr: {}\n", "plant.yaml:1: brokr: unknown key; did you mean 'broker'?"),
     ("streams: {topic: a}\n", "plant.yaml:1: streams: must be a list of stream entries"),
     ("detection: [1, 2]\n", "plant.yaml:1: detection: must be a mapping of keys to values"),
@@ -129,3 +132,33 @@ def test_senml_streams_find_their_entry_after_a_restart() -> None:
 ])
 def test_settings_that_would_break_detection_are_refused(text: str, expected: str) -> None:
     assert error_of(text).startswith(expected)
+
+
+def test_labels_name_streams_the_way_operators_do() -> None:
+    cfg = load_config(ROOT / "config" / "shiftwatch.example.yaml")
+    assert cfg.label_for("brackenfield/line2/filler/head3/fill") == "fill weight on filler head3"
+    assert cfg.label_for("brackenfield/line2/oven/senml/zone3_temp") == "tunnel oven zone3_temp"
+    assert cfg.label_for("brackenfield/line2/capper/torque") == "capper torque"
+    assert cfg.label_for("brackenfield/line9/unknown") is None
+    cfg = parse_config("streams:\n  - topic: 'plant/+/+/#'\n    label: '{2} on {1} ({#})'\n")
+    assert cfg.label_for("plant/line2/filler7/weight/net") == "filler7 on line2 (weight/net)"
+    assert parse_config("streams:\n  - topic: a/b\n").label_for("a/b") is None
+    schema = json_schema()["properties"]["streams"]["items"]["properties"]["label"]
+    assert "summaries" in schema["description"]
+
+
+@pytest.mark.parametrize("text, expected", [
+    ("streams:\n  - topic: plant/+/fill\n    label: 'filler {2}'\n",
+     "plant.yaml:3: streams[0].label: placeholder {2} cannot be filled: the topic filter 'plant/+/fill' has 1 '+' level"),
+    ("streams:\n  - topic: plant/fill\n    label: 'fill {#}'\n",
+     "plant.yaml:3: streams[0].label: placeholder {#} cannot be filled: the topic filter 'plant/fill' does not end in '#'"),
+    ("streams:\n  - topic: plant/fill\n    label: 'fill {name}'\n",
+     "plant.yaml:3: streams[0].label: placeholder {name} cannot be filled: only SenML streams have a name"),
+    ("streams:\n  - topic: plant/+/fill\n    label: 'filler {head}'\n",
+     "plant.yaml:3: streams[0].label: placeholder {head} cannot be filled: use {1}, {2}, ..."),
+    ("streams:\n  - topic: plant/+/fill\n    label: 'filler {1'\n",
+     "plant.yaml:3: streams[0].label: unbalanced brace in 'filler {1'"),
+    ("streams:\n  - topic: plant/+/fill\n    label: ''\n", "plant.yaml:3: streams[0].label: must not be empty"),
+])
+def test_bad_labels_are_refused_with_their_key_path(text: str, expected: str) -> None:
+    assert error_of(text).startswith(expected), error_of(text)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import signal
 import socket
 import subprocess
@@ -130,7 +131,10 @@ def test_demo_runs_and_reports(shiftwatch_cmd) -> None:
     out = res.stdout
     assert "Brackenfield Bottling, line 2 (an invented plant)" in out
     assert "Advisory only" in out
-    assert "CONFIRMED brackenfield/line2/filler/head2/fill stepped up" in out
+    # The display shows each record's summary, naming the stream by its label:
+    # "CONFIRMED fill weight on filler head2 stepped up 1.3 g (2.2 sigma) at 06:00:24Z, detected 0.8 s later: ..."
+    assert re.search(r"CONFIRMED fill weight on filler head2 stepped up [\d.]+ g \([\d.]+ sigma\) "
+                     r"at \d\d:\d\d:\d\dZ, detected [\d.]+ s later: [\d.]+ -> [\d.]+ g", out), out
     assert "What happened" in out
     recap = out.split("What happened")[1]
     assert "filler head 2 fill weight" in recap and "+1.3 g @24s" in recap
@@ -154,7 +158,7 @@ def test_demo_runs_on_the_embedded_broker(shiftwatch_cmd) -> None:
                          capture_output=True, text=True, timeout=120)
     assert res.returncode == 0, res.stderr
     assert "broker   embedded amqtt broker" in res.stdout
-    assert "CONFIRMED brackenfield/line2/filler/head2/fill stepped up" in res.stdout
+    assert "CONFIRMED fill weight on filler head2 stepped up" in res.stdout
 
 
 def test_alerts_made_while_the_broker_is_down_arrive_after_it(broker, tmp_path: Path) -> None:

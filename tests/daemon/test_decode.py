@@ -20,16 +20,17 @@ import calendar
 import json
 import math
 import re
-import unicodedata
 from pathlib import Path
 from typing import Any
 
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from shiftwatch import decode as decode_module
 from shiftwatch.decode import REASONS, Decoded, DecodeProblem, Reading, decode, decode_many, stream_name
+
+from .fuzz_strategies import JSON_VALUES, PATHS, PROPERTY, SCALARS, SENML_RECORDS, TOKENS, is_safe
 
 NOW = 1764633600.0  # 2025-12-02T00:00:00Z, the arrival time used throughout
 SENML_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9\-:./_]*")  # RFC 8428 section 4.5.1
@@ -42,6 +43,7 @@ def reasons(out: Decoded) -> list[str]:
 def check_invariants(out: Decoded, fmt: str) -> None:
     """What every result must satisfy, whatever the payload."""
     assert isinstance(out, Decoded)
+    assert out.readings or out.problems  # every payload is accounted for
     for p in out.problems:
         assert isinstance(p, DecodeProblem)
         assert p.reason in REASONS, p
@@ -486,9 +488,10 @@ def test_senml_milliseconds_heuristic() -> None:
     ([{"n": "a", "v": None}], ["no_value"]),
     ([{"n": "a", "v": 1e308, "bv": 1e308}], ["infinite"]),                # bv + v overflows
     ([{"n": "a", "bt": 1e308, "t": 1e308, "v": 1}], ["bad_time"]),
-    ([{"n": "a", "s": 10}], []),                                          # sum only: skipped
+    ([{"n": "a", "s": 10}], ["empty"]),                                   # sum only: nothing to use
+    ([{"n": "a", "s": 10}, {"n": "a", "v": 1}], []),                      # sum skipped, value kept
     ([{"n": "a", "s": 10, "v": 2}], []),
-    ([{"bn": "a", "bt": 1, "bu": "g", "bv": 1, "bver": 10}], []),         # base only: skipped
+    ([{"bn": "a", "bt": 1, "bu": "g", "bv": 1, "bver": 10}], ["empty"]),  # base only: nothing to use
 ])
 def test_senml_bad_records(pack: list[Any], expected: list[str]) -> None:
     out = senml(pack)
@@ -553,21 +556,6 @@ def test_senml_mixed_pack_keeps_good_records() -> None:
 # Together these run well over 10,000 decode examples with a fixed random state.
 
 FORMATS = st.sampled_from(["number", "json", "senml"])
-PROPERTY = settings(derandomize=True, deadline=None, database=None,
-                    suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
-
-KEYS = st.sampled_from(["value", "v", "n", "bn", "bt", "bu", "bv", "bs", "bver", "t", "u", "s", "vs", "vb",
-                        "vd", "ts", "data", "weight_g", "x_", "ut"]) | st.text(max_size=4)
-SCALARS = (st.none() | st.booleans() | st.integers() | st.floats(allow_nan=True, allow_infinity=True)
-           | st.text(max_size=8)
-           | st.sampled_from([10**400, -(10**4000), 2**28, 1e11 + 1, "12.5", "NaN", "2025-12-02T00:00:00Z",
-                              "urn:dev:ow:1:", "brackenfield/"]))
-JSON_VALUES = st.recursive(SCALARS, lambda inner: st.lists(inner, max_size=4)
-                           | st.dictionaries(KEYS, inner, max_size=5), max_leaves=12)
-PATHS = st.sampled_from(["value", "v", "data.weight_g", "ts", "a.b.c", "n"])
-TOKENS = st.sampled_from(["[", "]", "{", "}", ",", ":", '"v"', '"n"', '"bt"', '"value"', "NaN", "Infinity",
-                          "-Infinity", "1e999", "9" * 400, "-" + "9" * 5000, "12.5", '"a"', '"\\ud800"', "true",
-                          "null", " ", '"', "\\", "0", "-0.0e-0"])
 
 
 def run(payload: bytes, fmt: str, **kwargs: Any) -> Decoded:
@@ -605,23 +593,6 @@ def test_property_token_soup(tokens: list[str], fmt: str, max_depth: int) -> Non
     run("".join(tokens).encode("utf-8", "surrogatepass"), fmt, max_depth=max_depth, time_path="bt")
 
 
-def any_of(good: st.SearchStrategy[Any]) -> st.SearchStrategy[Any]:
-    return good | SCALARS
-
-
-SENML_RECORDS = st.fixed_dictionaries({}, optional={
-    "bn": any_of(st.text("ab09:/._-", max_size=8)),
-    "bt": any_of(st.integers(-10, 2**28 + 10) | st.floats(1e9, 2e12)),
-    "bu": any_of(st.sampled_from(["g", "Cel", "N.m", "%RH"])),
-    "bv": any_of(st.floats(-1e3, 1e3)),
-    "bs": any_of(st.floats(-1e3, 1e3)),
-    "bver": any_of(st.integers(-1, 12)),
-    "n": any_of(st.text("ab09:/._- ", max_size=6)),
-    "t": any_of(st.floats(-100, 100)),
-    "u": any_of(st.sampled_from(["g", "Cel"])),
-    "v": any_of(st.floats(-1e6, 1e6) | st.just(1e308)),
-    "vs": SCALARS, "vb": SCALARS, "vd": SCALARS, "s": SCALARS, "ut": SCALARS,
-})
 
 
 @settings(PROPERTY, max_examples=2000)
@@ -678,10 +649,6 @@ def test_stream_name_examples() -> None:
     assert len(long) == 256 and long.startswith("brackenfield/xxx")
     assert stream_name("a" * 256, None) == "a" * 256
     assert len(stream_name("a" * 257, None)) == 256
-
-
-def is_safe(s: str) -> bool:
-    return all(ch not in "+#" and unicodedata.category(ch) not in ("Cc", "Cs", "Zl", "Zp") for ch in s)
 
 
 @settings(PROPERTY, max_examples=1500)

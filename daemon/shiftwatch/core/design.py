@@ -6,6 +6,15 @@ h, the GLR threshold, and a table of run lengths by shift size.  CUSUM run
 lengths come from the Brook & Evans Markov chain (exact up to the
 discretisation); GLR run lengths come from a simulation with a fixed random
 state, so the same inputs always print the same table.
+
+The default test, the multi-chart CUSUM, has no exact run-length formula
+(its charts watch the same data).  :func:`bank_run_lengths` bounds it from
+above instead: the bank trips no later than its fastest chart, so its ARL
+and its median delay after a shift are at most the smallest of its charts'
+own figures, each exact from the chain.  In control the bank's joint ARL is
+the calibrated one (see :mod:`.multicusum`).  :func:`sensitivity` puts the
+chosen settings next to a more and a less sensitive choice for the chart of
+``shiftwatch design --chart``.
 """
 
 from __future__ import annotations
@@ -16,6 +25,7 @@ import numpy as np
 
 from shiftwatch.core.arl import cusum_arl, cusum_run_length_quantile, design_h
 from shiftwatch.core.glr import GlrTest
+from shiftwatch.core.multicusum import MultiCusumTest
 
 #: Shift sizes (in sigmas) tabulated by default.
 DEFAULT_SHIFTS = (0.0, 0.5, 0.75, 1.0, 1.5, 2.0, 3.0, 4.0)
@@ -29,6 +39,8 @@ class DesignRow:
     cusum_arl: float
     cusum_median: float
     glr_median: float | None  # None in control: the calibrated ARL applies instead
+    bank_arl: float = float("nan")  # multi_cusum: calibrated in control, an upper bound after a shift
+    bank_median: float = float("nan")  # multi_cusum median delay, an upper bound (nan in control)
 
 
 @dataclass(frozen=True)
@@ -44,6 +56,8 @@ class Design:
     glr_threshold: float
     glr_window: int
     rows: tuple[DesignRow, ...]
+    bank_ks: tuple[float, ...] = ()
+    bank_hs: tuple[float, ...] = ()
 
 
 def glr_median_delay(test: GlrTest, shift: float, *, runs: int = 400, max_len: int = 4000,
@@ -90,14 +104,102 @@ def design(min_shift_sigma: float, false_alarm_every: float, interval: float, *,
     k = min_shift_sigma / 2.0
     h = design_h(arl0, k)
     glr = GlrTest.design(arl0, window=glr_window)
+    bank = MultiCusumTest.design(min(arl0, 1e9), min_shift_sigma)
     rows = []
-    for s in shifts:
+    for s, (b_arl, b_med) in zip(shifts, bank_run_lengths(bank.ks, bank.hs, shifts, arl0=arl0)):
         rows.append(DesignRow(
             shift=float(s),
             cusum_arl=cusum_arl(k, h, float(s)),
             cusum_median=cusum_run_length_quantile(k, h, float(s), 0.5),
             glr_median=None if s == 0 else glr_median_delay(glr, float(s), runs=runs),
+            bank_arl=b_arl,
+            bank_median=b_med,
         ))
     return Design(min_shift_sigma=min_shift_sigma, false_alarm_every=false_alarm_every,
                   interval=interval, arl0=arl0, k=k, h=h, glr_threshold=glr.threshold,
-                  glr_window=glr_window, rows=tuple(rows))
+                  glr_window=glr_window, rows=tuple(rows), bank_ks=bank.ks, bank_hs=bank.hs)
+
+
+def bank_run_lengths(ks: tuple[float, ...], hs: tuple[float, ...], shifts: tuple[float, ...] | list[float],
+                     *, arl0: float) -> list[tuple[float, float]]:
+    """ARL and median run length of a multi-chart CUSUM, per shift (in test sigmas).
+
+    In control (shift 0) the ARL is ``arl0``, the joint ARL the bank was
+    calibrated for, and the median is NaN.  After a shift both figures are
+    upper bounds: the smallest ARL and the smallest median over the charts,
+    each from the Markov chain of :mod:`.arl`.  The bank's run length is the
+    minimum of its charts' run lengths, so ``E[min] <= min E`` and
+    ``P(min <= n) >= P(RL_j <= n)`` for every chart ``j``.
+
+    Examples
+    --------
+    >>> b = MultiCusumTest.design(604800, 1.0)
+    >>> [(round(a), m) for a, m in bank_run_lengths(b.ks, b.hs, (0.0, 1.0, 2.0), arl0=604800)][1:]
+    [(27, 25.0), (7, 7.0)]
+    """
+    out: list[tuple[float, float]] = []
+    for s in shifts:
+        sf = float(s)
+        if sf == 0.0:
+            out.append((float(arl0), float("nan")))
+            continue
+        arl = min(cusum_arl(k, h, sf) for k, h in zip(ks, hs))
+        med = min(cusum_run_length_quantile(k, h, sf, 0.5) for k, h in zip(ks, hs))
+        out.append((arl, med))
+    return out
+
+
+@dataclass(frozen=True)
+class SensitivityCurve:
+    """Run lengths of the multi-chart CUSUM by shift size, for one choice of settings."""
+
+    label: str
+    min_shift_sigma: float
+    false_alarm_every: float
+    arl0: float
+    shifts: tuple[float, ...]
+    arl: tuple[float, ...]  # samples; calibrated at shift 0, an upper bound elsewhere
+    median: tuple[float, ...]  # samples, an upper bound (nan at shift 0)
+
+
+#: Shift sizes of the chart: fine where the curves bend, coarser beyond 1.5 sigma.
+CHART_SHIFTS = tuple(0.125 * i for i in range(13)) + tuple(1.75 + 0.25 * i for i in range(10))
+
+#: How far the neighbouring choices of :func:`sensitivity` lie from the chosen one.
+SENSITIVITY_FACTOR = 4.0
+
+
+def sensitivity(min_shift_sigma: float, false_alarm_every: float, interval: float, *,
+                factor: float = SENSITIVITY_FACTOR,
+                shifts: tuple[float, ...] | None = None) -> list[SensitivityCurve]:
+    """The chosen settings next to a more and a less sensitive choice.
+
+    The neighbours keep ``min_shift_sigma`` and move ``false_alarm_every`` by
+    ``factor``: divided (more sensitive: faster detection, ``factor`` times
+    as many false alarms) and multiplied (less sensitive: slower detection,
+    ``factor`` times fewer).  That is the trade the plant decides; the
+    smallest shift of interest is a property of the process and stays.
+
+    Examples
+    --------
+    >>> c = sensitivity(1.0, 7 * 86400.0, 1.0, shifts=(0.0, 1.0))
+    >>> [x.label for x in c]
+    ['chosen', 'more sensitive', 'less sensitive']
+    >>> [round(x.arl0) for x in c]
+    [604800, 151200, 2419200]
+    >>> c[1].median[1] < c[0].median[1] < c[2].median[1]
+    True
+    """
+    if not factor > 1:
+        raise ValueError(f"factor must be above 1, got {factor!r}")
+    grid = shifts if shifts is not None else CHART_SHIFTS
+    out = []
+    for label, every in (("chosen", false_alarm_every), ("more sensitive", false_alarm_every / factor),
+                         ("less sensitive", false_alarm_every * factor)):
+        arl0 = min(max(every / interval, 50.0), 1e9)
+        bank = MultiCusumTest.design(arl0, min_shift_sigma)
+        rl = bank_run_lengths(bank.ks, bank.hs, grid, arl0=arl0)
+        out.append(SensitivityCurve(label=label, min_shift_sigma=min_shift_sigma, false_alarm_every=every,
+                                    arl0=arl0, shifts=tuple(float(s) for s in grid),
+                                    arl=tuple(a for a, _ in rl), median=tuple(m for _, m in rl)))
+    return out

@@ -50,6 +50,9 @@ from shiftwatch.core.timefmt import format_time
 
 FloatArray = NDArray[np.float64]
 
+#: Rejections of samples whose time is not newer than the stream's newest; not in samples_total.
+_NOT_NEW = frozenset(("duplicate_time", "out_of_order"))
+
 WARMING_UP = "warming_up"
 WATCHING = "watching"
 EVENT_OPEN = "event_open"
@@ -389,7 +392,7 @@ class StreamEngine:
         Bad samples are rejected with reason codes in the result; this method
         does not raise on bad data.
         """
-        scr = screen_samples(times, values, self._last_time)
+        scr = screen_samples(times, values, self._last_time, self._window.times)
         raw_t = np.asarray(times, dtype=object) if scr.rejected else None
         result = BatchResult(rejected=[Rejection(i, r, _time_or_nan(raw_t, i)) for i, r in scr.rejected])
         t, x = scr.times, scr.values
@@ -411,7 +414,10 @@ class StreamEngine:
                 # Nothing moved: a defect.  Refuse loudly instead of spinning.
                 raise RuntimeError(f"engine for stream {self.stream!r} made no progress in state {self._state}")
         result.accepted = n
-        self.samples_total += len(scr.kept) + len(scr.rejected)
+        # Each sample once: one whose time is not newer than the stream's newest
+        # (a message delivered again, or a late one) is counted only among the
+        # rejections, so a redelivery never counts twice.
+        self.samples_total += len(scr.kept) + sum(r not in _NOT_NEW for _, r in scr.rejected)
         for rej in result.rejected:
             self.rejected_total[rej.reason] += 1
         for rec in result.records:

@@ -18,7 +18,7 @@ from numpy.typing import NDArray
 REASONS: dict[str, str] = {
     "not_a_number": "value is not a number",
     "nan": "value is NaN",
-    "infinite": "value is infinite",
+    "infinite": "value is infinite or beyond 1e150 in magnitude",
     "bad_time": "time stamp is missing, not finite or unreadable",
     "duplicate_time": "time stamp repeats one already accepted for this stream",
     "out_of_order": "time stamp is earlier than one already accepted for this stream",
@@ -27,6 +27,12 @@ REASONS: dict[str, str] = {
     "time_behind": "time stamp is too far behind the receiving clock",
     "stream_cap": "stream limit reached; new stream not admitted",
 }
+
+
+#: Largest magnitude of an accepted value.  Squares and sums of squares of
+#: larger (finite) values overflow inside the baseline and the step fit; no
+#: reading of a production line comes near it.
+MAX_ABS_VALUE = 1e150
 
 
 @dataclass(frozen=True)
@@ -75,11 +81,16 @@ def screen_samples(
     times: Sequence[Any] | NDArray[Any],
     values: Sequence[Any] | NDArray[Any],
     last_time: float = -np.inf,
+    seen: NDArray[np.float64] | None = None,
 ) -> Screened:
     """Split a batch into accepted samples and rejections with reason codes.
 
     Times must be finite and strictly increasing, also relative to
-    ``last_time``, the newest time already accepted for the stream.
+    ``last_time``, the newest time already accepted for the stream.  A time
+    that is not newer is ``duplicate_time`` when it equals one already
+    accepted (``last_time``, the increasing times in ``seen``, for example the
+    stream's window, or a sample earlier in the batch), as a message
+    delivered twice does; otherwise it is ``out_of_order``.
 
     Examples
     --------
@@ -88,13 +99,15 @@ def screen_samples(
     ([1.0, 2.0, 4.0], [1.0, 5.0, 7.0], [(1, 'nan'), (3, 'out_of_order'), (4, 'not_a_number')])
     >>> screen_samples([5, 5], [1.0, 2.0]).rejected
     [(1, 'duplicate_time')]
+    >>> screen_samples([3, 2, 2.5, 4, 3], [1.0] * 5, last_time=2, seen=np.array([1.0, 2.0])).rejected
+    [(1, 'duplicate_time'), (2, 'out_of_order'), (4, 'duplicate_time')]
     """
     t, bad_t = coerce_values(times)
     v, bad_v = coerce_values(values)
     n = t.shape[0]
     if n and t.shape == v.shape and not bad_t.any() and not bad_v.any():
         # Fast path for the common case: all finite, strictly increasing.
-        if (t[0] > last_time and np.isfinite(v).all() and np.isfinite(t[-1])
+        if (t[0] > last_time and bool((np.abs(v) <= MAX_ABS_VALUE).all()) and np.isfinite(t[-1])
                 and (n == 1 or bool((t[1:] > t[:-1]).all()))):
             return Screened(times=t, values=v, kept=np.arange(n), rejected=[])
     if t.shape != v.shape:
@@ -102,7 +115,7 @@ def screen_samples(
     n = t.shape[0]
     reason = np.zeros(n, dtype=np.int8)  # 0 = accepted
     codes = ["", "not_a_number", "nan", "infinite", "bad_time", "duplicate_time", "out_of_order"]
-    reason[np.isinf(v)] = 3
+    reason[~(np.abs(v) <= MAX_ABS_VALUE)] = 3  # infinite, or too large to compute with
     reason[np.isnan(v)] = 2
     reason[bad_v] = 1
     bad_time = bad_t | ~np.isfinite(t)
@@ -114,6 +127,16 @@ def screen_samples(
     order_ok = tt > prev
     dup = ~order_ok & (tt == prev) & (reason == 0)
     ooo = ~order_ok & (tt < prev) & (reason == 0)
+    if ooo.any():  # a repeat of any time already accepted is a duplicate, not disorder
+        parts = [t[(reason == 0) & order_ok], np.array([last_time])]
+        if seen is not None:
+            parts.append(seen)
+        known = np.sort(np.concatenate(parts))
+        at = np.flatnonzero(ooo)
+        j = np.minimum(np.searchsorted(known, t[at]), known.shape[0] - 1)
+        again = at[known[j] == t[at]]
+        dup[again] = True
+        ooo[again] = False
     reason[dup] = 5
     reason[ooo] = 6
     keep = reason == 0
