@@ -112,6 +112,10 @@ _DETECTION_HELP = {
     "glr_window": "longest segment, in samples, the GLR test considers",
     "baseline_memory": "weight, in samples, at which the baseline's memory is capped",
     "baseline_guard": "the newest samples kept out of baseline refinements",
+    "max_time_ahead": "samples stamped further than this ahead of their arrival are rejected "
+                      "(time_ahead); null: no limit",
+    "max_time_behind": "samples stamped further than this before their arrival are rejected "
+                       "(time_behind); null: no limit",
 }
 
 
@@ -124,6 +128,9 @@ def _detection_keys() -> dict[str, Key]:
             keys[f.name] = Key(_duration, "7d", _DETECTION_HELP[f.name], {"type": ["string", "number"]})
         elif f.name == "test":
             keys[f.name] = Key(_str(TEST_NAMES), default, _DETECTION_HELP[f.name], {"enum": list(TEST_NAMES)})
+        elif f.name in ("max_time_ahead", "max_time_behind"):
+            keys[f.name] = Key(_optional(_duration), default, _DETECTION_HELP[f.name],
+                               {"type": ["string", "number", "null"]})
         elif f.name == "min_sigma":
             keys[f.name] = Key(_optional(_num()), None, _DETECTION_HELP[f.name], {"type": ["number", "null"]})
         elif isinstance(default, int):
@@ -196,6 +203,8 @@ METRICS_TLS_KEYS = {
 STATE_KEYS = {
     "dir": Key(_str(), "/var/lib/shiftwatch", "directory for snapshots and the alert outbox"),
     "snapshot_every": Key(_duration, "60s", "how often stream state is snapshotted"),
+    "journal": Key(_bool, True, "journal the samples processed since the last snapshot, so a "
+                   "killed daemon restarts where it stopped"),
 }
 
 #: Keys that are refused on purpose, with the reason given instead of "unknown key".
@@ -275,6 +284,7 @@ class MetricsConfig:
 class StateConfig:
     dir: str = "/var/lib/shiftwatch"
     snapshot_every: float = 60.0
+    journal: bool = True
 
 
 @dataclass(frozen=True)

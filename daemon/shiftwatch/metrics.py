@@ -41,6 +41,7 @@ import math
 import threading
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
+from types import MappingProxyType
 from typing import Any
 from wsgiref.simple_server import WSGIServer
 
@@ -59,7 +60,11 @@ ALERT_DELAY_BUCKETS: tuple[float, ...] = (
     0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
 
 
-@dataclass(frozen=True)
+#: Shared by the snapshots of every stream that has no rejections or records yet.
+_NONE: Mapping[str, int] = MappingProxyType({})
+
+
+@dataclass(frozen=True, slots=True)
 class StreamStats:
     """What the metrics show of one stream at one moment.
 
@@ -89,6 +94,9 @@ class StreamStats:
     def from_engine(cls, engine: Any) -> StreamStats:
         """Copy the figures out of a ``StreamEngine`` (the counters are copied, not shared).
 
+        One snapshot per stream is held at all times, so it is kept small:
+        no per-instance dict, and empty counters share one empty mapping.
+
         Parameters
         ----------
         engine : a :class:`shiftwatch.core.engine.StreamEngine`.
@@ -99,8 +107,8 @@ class StreamStats:
         """
         return cls(
             samples_total=int(engine.samples_total),
-            rejected_total=dict(engine.rejected_total),
-            records_total=dict(engine.records_total),
+            rejected_total=dict(engine.rejected_total) if engine.rejected_total else _NONE,
+            records_total=dict(engine.records_total) if engine.records_total else _NONE,
             level=engine.level,
             sigma=engine.sigma,
             statistic=float(engine.statistic),
@@ -264,6 +272,8 @@ class Metrics:
     outbox_depth : alert records waiting for the broker's acknowledgement.
     snapshot_failures : state snapshots that could not be written.
     snapshots : state snapshots written.
+    outbox_failures : alert records or outbox updates that could not be written to disk.
+    journal_failures : rounds of samples that could not be appended to the journal.
     """
 
     def __init__(self, registry: CollectorRegistry | None = None) -> None:
@@ -294,6 +304,14 @@ class Metrics:
             registry=reg)
         self.snapshots = Counter(
             "shiftwatch_snapshots", "State snapshots written.", registry=reg)
+        self.outbox_failures = Counter(
+            "shiftwatch_outbox_failures",
+            "Alert records (or outbox updates) that could not be written to disk; the records "
+            "were still published.", registry=reg)
+        self.journal_failures = Counter(
+            "shiftwatch_journal_failures",
+            "Rounds of samples that could not be journaled (journaling resumes with the next "
+            "snapshot).", registry=reg)
         reg.register(_StreamCollector(self))
 
     def update_stream(self, stream: str, stats: StreamStats) -> None:

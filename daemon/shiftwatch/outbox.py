@@ -97,11 +97,12 @@ class Outbox:
     Attributes
     ----------
     dropped : items discarded because ``max_items`` was exceeded.
+    on_disk : False when the directory could not be created or listed (read-only,
+        full): the outbox then keeps its records in memory only, says so once
+        in the log, and never raises for it.
 
     Raises
     ------
-    OSError
-        If the directory cannot be created or listed.
     ValueError
         If ``max_items`` is less than 1.
 
@@ -129,8 +130,16 @@ class Outbox:
         self._lock = threading.Lock()
         self._items: dict[str, OutboxItem] = {}  # always in key (= age) order
         self._unsynced: list[str] = []  # written with sync=False, not yet forced to disk
-        self.directory.mkdir(parents=True, exist_ok=True)
-        self._next = self._load()
+        self.on_disk = True
+        try:
+            self.directory.mkdir(parents=True, exist_ok=True)
+            self._next = self._load()
+        except OSError as exc:
+            self.on_disk = False
+            self._next = 0
+            self._log.error("outbox: directory %s cannot be used (%s); alert records are kept in "
+                            "memory only and do not survive a restart", self.directory,
+                            exc.strerror or exc)
         with self._lock:
             self._trim()
 
@@ -208,7 +217,8 @@ class Outbox:
             item = OutboxItem(key=key, topic=topic, payload=bytes(payload), qos=qos,
                               retain=bool(retain))
             # Written under the lock so that items reach the disk and the list in key order.
-            self._write(item, sync=sync)
+            if self.on_disk:
+                self._write(item, sync=sync)
             self._items[key] = item
             self._trim()
         return item
@@ -220,6 +230,8 @@ class Outbox:
         daemon calls from paho's network thread, must not wait for the disk.
         A record removed meanwhile is skipped or its file is gone, both fine.
         """
+        if not self.on_disk:
+            return
         with self._lock:
             keys, self._unsynced = self._unsynced, []
             keys = [k for k in keys if k in self._items]  # the others were delivered and removed
@@ -279,7 +291,7 @@ class Outbox:
             If the item's file exists but cannot be removed.
         """
         with self._lock:
-            if self._items.pop(key, None) is None:
+            if self._items.pop(key, None) is None or not self.on_disk:
                 return
             try:
                 os.unlink(self._path(key))

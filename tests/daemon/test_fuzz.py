@@ -149,7 +149,11 @@ def received(daemon: Daemon) -> float:
 
 
 def samples(daemon: Daemon) -> int:
-    return sum(e.samples_total for e in daemon.engines.values())
+    """Samples the engines took in: those counted in samples_total, plus those whose
+    time was not newer than their stream's newest, which are counted only among the
+    rejections (so that a sample the broker delivers again never counts twice)."""
+    return sum(e.samples_total + e.rejected_total["duplicate_time"] + e.rejected_total["out_of_order"]
+               for e in daemon.engines.values())
 
 
 def units(daemon: Daemon, topic: bytes, payload: bytes) -> tuple[int, bool]:

@@ -184,8 +184,21 @@ def test_add_failure_raises_and_stores_nothing(tmp_path: Path) -> None:
     with pytest.raises(OSError):
         box.add("t", b"b")
     assert len(box) == 1
-    with pytest.raises(OSError):
-        Outbox(tmp_path / "box")
+
+
+def test_unusable_directory_keeps_records_in_memory(tmp_path: Path, caplog: pytest.LogCaptureFixture) -> None:
+    # A directory that cannot be made (here: a file is in the way, which stops
+    # root too) leaves an outbox in memory: it never raises, and says so once.
+    (tmp_path / "box").write_text("not a directory")
+    box = Outbox(tmp_path / "box")
+    assert not box.on_disk
+    assert "kept in memory only" in caplog.text
+    item = box.add("t", b"a")
+    box.sync()
+    assert [i.key for i in box.pending()] == [item.key]
+    box.remove(item.key)
+    assert len(box) == 0
+    assert (tmp_path / "box").read_text() == "not a directory"
 
 
 def test_concurrent_add_and_remove(tmp_path: Path) -> None:

@@ -157,7 +157,8 @@ def test_spikes_are_marked_where_the_engine_set_them_aside(plant_csv: PlantCsv) 
     res = eng.process(np.asarray(s.times), np.asarray(s.values))  # one batch: every position known
     spikes = sorted(float(s.times[r.position]) for r in res.rejected if r.reason == "spike")
     assert spikes and trace.spike_times == spikes and trace.spikes_total == len(spikes)
-    assert trace.spike_values == [s.values[s.times.index(x)] for x in spikes]
+    times = s.times.tolist()  # the series holds arrays
+    assert trace.spike_values == [s.values[times.index(x)] for x in spikes]
 
 
 # ----------------------------------------------------- the real command line

@@ -218,9 +218,14 @@ class Window:
 
     def __init__(self, keep: int, slack: int = 32) -> None:
         self.keep = keep
-        self._x = np.empty(keep + slack)
-        self._t = np.empty(keep + slack)
+        self._x, self._t = _WindowStore.of(keep + slack).take()
         self._n = 0
+
+    def __del__(self) -> None:
+        try:
+            _WindowStore.of(self._x.shape[0]).give((self._x, self._t))
+        except (AttributeError, TypeError):  # half-built, or the interpreter is shutting down
+            pass
 
     def __len__(self) -> int:
         return self._n
@@ -267,6 +272,41 @@ class Window:
         self._t[: self._n] = ts
 
 
+class _WindowStore:
+    """Memory for the windows of one capacity, handed out from large blocks.
+
+    A daemon holds thousands of windows for as long as it runs.  One small
+    allocation each would sit between the short-lived arrays of batch
+    processing and keep the memory freed around them from being returned to
+    the system; blocks of :attr:`BLOCK` windows keep them together instead.
+    A window's arrays go back to the store when the window is dropped.
+    """
+
+    BLOCK = 128
+    _stores: dict[int, _WindowStore] = {}
+
+    def __init__(self, capacity: int) -> None:
+        self.capacity = capacity
+        self._free: list[tuple[FloatArray, FloatArray]] = []
+
+    @classmethod
+    def of(cls, capacity: int) -> _WindowStore:
+        store = cls._stores.get(capacity)
+        if store is None:
+            store = cls._stores[capacity] = cls(capacity)
+        return store
+
+    def take(self) -> tuple[FloatArray, FloatArray]:
+        """Arrays for the values and times of one window (contents undefined)."""
+        if not self._free:
+            block = np.empty((self.BLOCK, 2, self.capacity))
+            self._free.extend((block[i, 0], block[i, 1]) for i in range(self.BLOCK - 1, -1, -1))
+        return self._free.pop()
+
+    def give(self, arrays: tuple[FloatArray, FloatArray]) -> None:
+        self._free.append(arrays)
+
+
 @dataclass
 class _Event:
     id: str
@@ -298,6 +338,10 @@ class BatchResult:
     rejected: list[Rejection] = field(default_factory=list)
 
 
+#: The settings of engines built without any (frozen, so one is shared).
+_DEFAULT_SETTINGS = DetectionSettings()
+
+
 class StreamEngine:
     """Watches one stream for level shifts.
 
@@ -323,10 +367,18 @@ class StreamEngine:
     (True, True)
     """
 
+    # One engine per stream, thousands of them in the daemon: no per-instance dict.
+    __slots__ = (
+        "stream", "settings", "unit", "_state", "_window", "_fitter", "_sums", "_baseline",
+        "_test", "_test_arl0", "_test_shift_z", "_test_n_ref", "_prev_r", "_pending", "_prev_out",
+        "_event", "_unfolded", "_watch_kept", "_next_refine", "_refine_block", "_last_time",
+        "samples_total", "rejected_total", "records_total", "last_shift_at",
+    )
+
     def __init__(self, stream: str, settings: DetectionSettings | None = None, *,
                  unit: str | None = None) -> None:
         self.stream = stream
-        self.settings = settings if settings is not None else DetectionSettings()
+        self.settings = settings if settings is not None else _DEFAULT_SETTINGS
         self.unit = unit
         self._reset()
 
@@ -386,13 +438,20 @@ class StreamEngine:
         return self.settings.test
 
     # ------------------------------------------------------------- feeding
-    def process(self, times: Sequence[Any] | FloatArray, values: Sequence[Any] | FloatArray) -> BatchResult:
+    def process(self, times: Sequence[Any] | FloatArray, values: Sequence[Any] | FloatArray,
+                arrived: float | Sequence[float] | FloatArray | None = None) -> BatchResult:
         """Feed a batch of samples (times in epoch seconds) and collect the records.
 
         Bad samples are rejected with reason codes in the result; this method
-        does not raise on bad data.
+        does not raise on bad data.  ``arrived`` is the receiving clock's time
+        of each sample (or one for the batch): with it, times further ahead of
+        or behind it than the settings' ``max_time_ahead`` / ``max_time_behind``
+        are rejected (``time_ahead``, ``time_behind``).  Without it (replay),
+        those limits do not apply.
         """
-        scr = screen_samples(times, values, self._last_time, self._window.times)
+        st = self.settings
+        scr = screen_samples(times, values, self._last_time, self._window.times, arrived=arrived,
+                             max_ahead=st.max_time_ahead, max_behind=st.max_time_behind)
         raw_t = np.asarray(times, dtype=object) if scr.rejected else None
         result = BatchResult(rejected=[Rejection(i, r, _time_or_nan(raw_t, i)) for i, r in scr.rejected])
         t, x = scr.times, scr.values

@@ -120,6 +120,13 @@ class MultiCusumTest(SequentialTest):
 
     name: ClassVar[str] = "multi_cusum"
 
+    __slots__ = ("_bank", "_c", "_stat", "_dir", "_tripped")
+    _bank: _Bank
+    _c: FloatArray  # upper sums of the charts, then the lower sums
+    _stat: float
+    _dir: int
+    _tripped: int
+
     def __init__(self, ks: Sequence[float], hs: Sequence[float]) -> None:
         kl = _float_list("ks", ks)
         hl = _float_list("hs", hs)
@@ -133,28 +140,20 @@ class MultiCusumTest(SequentialTest):
             raise ValueError(f"every k in ks must be a finite number >= 0 (sigma units), got {ks!r}")
         if not all(math.isfinite(v) and v > 0.0 for v in hl):
             raise ValueError(f"every h in hs must be a finite number > 0 (sigma units), got {hs!r}")
-        self.ks: tuple[float, ...] = tuple(kl)
-        self.hs: tuple[float, ...] = tuple(hl)
-        m = len(kl)
-        k_arr = np.asarray(kl, dtype=np.float64)
-        h_arr = np.asarray(hl, dtype=np.float64)
-        # rows 0..m-1 are the upper sums, rows m..2m-1 the lower sums
-        self._k_col = k_arr[:, None]
-        self._h2 = np.concatenate((h_arr, h_arr))
-        self._h2_col = self._h2[:, None]
-        self._m = m
-        self._k_arr = k_arr
-        self._h_arr = h_arr
-        # The in-control fast path needs the charts in ascending order of k.
-        self._ascending = bool(np.all(np.diff(k_arr) > 0)) and m > 1
-        # k_i * (1, 2, ..., BLOCK): the drift term of each chart over a block,
-        # shared by every bank with the same charts (streams share designs).
-        self._kramp = _drift_ramps(self.ks)
-        self._c = np.zeros(2 * m)
-        self._stat = 0.0
-        self._dir = 0
-        self._tripped = -1
+        # The charts' fixed arrays are shared by every bank of the same design
+        # (thousands of streams use a handful of designs).
+        self._bank = _bank(tuple(kl), tuple(hl))
         self.reset()
+
+    @property
+    def ks(self) -> tuple[float, ...]:
+        """Reference values of the charts, as given."""
+        return self._bank.ks
+
+    @property
+    def hs(self) -> tuple[float, ...]:
+        """Decision intervals of the charts, as given."""
+        return self._bank.hs
 
     # ------------------------------------------------------------------ design
     @classmethod
@@ -282,12 +281,12 @@ class MultiCusumTest(SequentialTest):
     @property
     def c_plus(self) -> tuple[float, ...]:
         """Current upper sums, one per chart (sigma units)."""
-        return tuple(float(v) for v in self._c[: self._m])
+        return tuple(float(v) for v in self._c[: self._bank.m])
 
     @property
     def c_minus(self) -> tuple[float, ...]:
         """Current lower sums, one per chart (sigma units, non-negative)."""
-        return tuple(float(v) for v in self._c[self._m :])
+        return tuple(float(v) for v in self._c[self._bank.m :])
 
     # ------------------------------------------------------------------ core
     def update(self, z: FloatArray) -> int:
@@ -299,16 +298,17 @@ class MultiCusumTest(SequentialTest):
         """
         x = np.asarray(z, dtype=np.float64).ravel()
         n = x.shape[0]
-        m = self._m
-        kc = self._k_col
-        h2 = self._h2
+        bank = self._bank
+        m = bank.m
+        kc = bank.k_col
+        h2 = bank.h2
         start = 0
         if n <= SMALL and m > 1:
             return self._update_small(x)
         while start < n:
             stop = min(n, start + BLOCK)
             blk = x[start:stop]
-            if self._ascending:
+            if bank.ascending:
                 i = self._block_fast(blk)
                 if i == -2:
                     pass  # the fast path declined: exact path below
@@ -325,7 +325,7 @@ class MultiCusumTest(SequentialTest):
             floor = np.minimum.accumulate(s, axis=1)
             np.minimum(floor, -self._c[:, None], out=floor)
             np.subtract(s, floor, out=s)
-            hit = (s > self._h2_col).any(axis=0)
+            hit = (s > bank.h2_col).any(axis=0)
             if hit.any():
                 i = int(np.argmax(hit))
                 col = s[:, i].copy()
@@ -346,9 +346,10 @@ class MultiCusumTest(SequentialTest):
     def _update_small(self, x: FloatArray) -> int:
         """The recursion sample by sample in plain Python: for the few samples a
         live stream brings per round, cheaper than a dozen array operations."""
-        m = self._m
-        ks = self.ks
-        hs = self.hs
+        bank = self._bank
+        m = bank.m
+        ks = bank.ks
+        hs = bank.hs
         c = self._c.tolist()
         for j, z in enumerate(x.tolist()):
             tripped = False
@@ -361,7 +362,7 @@ class MultiCusumTest(SequentialTest):
                     tripped = True
             if tripped:
                 col = np.asarray(c)
-                ratio = col / self._h2
+                ratio = col / bank.h2
                 row = int(np.argmax(ratio))
                 self._c = col
                 self._stat = float(ratio[row])
@@ -391,8 +392,9 @@ class MultiCusumTest(SequentialTest):
         satisfy the ordering the argument needs (the caller then takes the
         exact path).
         """
-        m = self._m
-        ks, hs = self._k_arr, self._h_arr
+        bank = self._bank
+        m = bank.m
+        ks, hs = bank.k_arr, bank.h_arr
         c = self._c
         n = blk.shape[0]
         for side in (0, 1):
@@ -436,7 +438,7 @@ class MultiCusumTest(SequentialTest):
                     bound = math.inf  # this chart can only fall in this block
                 if c1max <= bound and c1end <= 0.0:
                     continue  # cannot trip, and ends at zero like the first chart
-                st = signed - self._kramp[i, :n]
+                st = signed - bank.kramp[i, :n]
                 rows[i] = st
                 if c1max <= bound:
                     continue
@@ -461,11 +463,11 @@ class MultiCusumTest(SequentialTest):
             for i in range(1, m):
                 st = tilde[side].get(i)
                 if st is None:
-                    st = signs[side] - self._kramp[i, :n]
+                    st = signs[side] - bank.kramp[i, :n]
                 low = float(st[: t + 1].min()) if t < n - 1 else float(st.min())
                 col[side * m + i] = st[t] - min(-float(cs[i]), low)
         self._c = col
-        ratio = col / self._h2
+        ratio = col / bank.h2
         if best_t < n:
             row = int(np.argmax(ratio))
             self._stat = float(ratio[row])
@@ -477,15 +479,15 @@ class MultiCusumTest(SequentialTest):
 
     def reset(self) -> None:
         """Set every sum to zero; keep ``ks`` and ``hs``."""
-        self._c = np.zeros(2 * self._m)
+        self._c = np.zeros(2 * self._bank.m)
         self._stat = 0.0
         self._dir = 0
         self._tripped = -1
 
     def get_state(self) -> dict[str, Any]:
         return {
-            "c_plus": [float(v) for v in self._c[: self._m]],
-            "c_minus": [float(v) for v in self._c[self._m :]],
+            "c_plus": [float(v) for v in self._c[: self._bank.m]],
+            "c_minus": [float(v) for v in self._c[self._bank.m :]],
             "statistic": float(self._stat),
             "direction": int(self._dir),
             "tripped_chart": int(self._tripped),
@@ -494,18 +496,52 @@ class MultiCusumTest(SequentialTest):
     def set_state(self, state: dict[str, Any]) -> None:
         cp = [float(v) for v in state["c_plus"]]
         cm = [float(v) for v in state["c_minus"]]
-        if len(cp) != self._m or len(cm) != self._m:
+        m = self._bank.m
+        if len(cp) != m or len(cm) != m:
             raise ValueError(
                 f"state holds {len(cp)} upper and {len(cm)} lower sums; this bank has "
-                f"{self._m} charts"
+                f"{m} charts"
             )
         self._c = np.asarray(cp + cm, dtype=np.float64)
-        self._stat = float(state.get("statistic", float(np.max(self._c / self._h2))))
+        self._stat = float(state.get("statistic", float(np.max(self._c / self._bank.h2))))
         self._dir = int(state.get("direction", 0))
         self._tripped = int(state.get("tripped_chart", -1))
 
     def __repr__(self) -> str:
         return f"MultiCusumTest(ks={list(self.ks)!r}, hs={list(self.hs)!r})"
+
+
+class _Bank:
+    """The fixed part of a bank: the charts' ``k`` and ``h`` and arrays derived
+    from them, shared (read-only) by every :class:`MultiCusumTest` built with
+    the same charts."""
+
+    __slots__ = ("ks", "hs", "m", "k_arr", "h_arr", "k_col", "h2", "h2_col", "ascending", "kramp")
+
+    def __init__(self, ks: tuple[float, ...], hs: tuple[float, ...]) -> None:
+        self.ks = ks
+        self.hs = hs
+        self.m = len(ks)
+        self.k_arr = _frozen(np.asarray(ks, dtype=np.float64))
+        self.h_arr = _frozen(np.asarray(hs, dtype=np.float64))
+        # rows 0..m-1 are the upper sums, rows m..2m-1 the lower sums
+        self.k_col = self.k_arr[:, None]
+        self.h2 = _frozen(np.concatenate((self.h_arr, self.h_arr)))
+        self.h2_col = self.h2[:, None]
+        # The in-control fast path needs the charts in ascending order of k.
+        self.ascending = bool(np.all(np.diff(self.k_arr) > 0)) and self.m > 1
+        # k_i * (1, 2, ..., BLOCK): the drift term of each chart over a block.
+        self.kramp = _drift_ramps(ks)
+
+
+def _frozen(a: FloatArray) -> FloatArray:
+    a.flags.writeable = False
+    return a
+
+
+@functools.lru_cache(maxsize=256)
+def _bank(ks: tuple[float, ...], hs: tuple[float, ...]) -> _Bank:
+    return _Bank(ks, hs)
 
 
 @functools.lru_cache(maxsize=64)

@@ -82,6 +82,10 @@ def screen_samples(
     values: Sequence[Any] | NDArray[Any],
     last_time: float = -np.inf,
     seen: NDArray[np.float64] | None = None,
+    *,
+    arrived: float | Sequence[float] | NDArray[np.float64] | None = None,
+    max_ahead: float | None = None,
+    max_behind: float | None = None,
 ) -> Screened:
     """Split a batch into accepted samples and rejections with reason codes.
 
@@ -92,6 +96,15 @@ def screen_samples(
     stream's window, or a sample earlier in the batch), as a message
     delivered twice does; otherwise it is ``out_of_order``.
 
+    When ``arrived`` (the receiving clock's time of each sample, or one time
+    for the batch) is given, a time more than ``max_ahead`` seconds after it
+    is rejected as ``time_ahead`` and one more than ``max_behind`` seconds
+    before it as ``time_behind`` (``None`` means no limit).  Such samples,
+    like those rejected for their value, never advance the stream's clock: a
+    sender whose clock jumped forward by a day does not lock its stream out
+    once the clock is set right.  The clock is the caller's: screening reads
+    none.
+
     Examples
     --------
     >>> s = screen_samples([1, 2, 2, 1.5, 3, 4], [1.0, float("nan"), 5.0, 2.0, "x", 7.0], last_time=0.5)
@@ -101,23 +114,45 @@ def screen_samples(
     [(1, 'duplicate_time')]
     >>> screen_samples([3, 2, 2.5, 4, 3], [1.0] * 5, last_time=2, seen=np.array([1.0, 2.0])).rejected
     [(1, 'duplicate_time'), (2, 'out_of_order'), (4, 'duplicate_time')]
+
+    A sample stamped a day ahead of its arrival is set aside; the next one,
+    stamped right again, is accepted:
+
+    >>> s = screen_samples([100.0, 86500.0, 102.0], [1.0, 2.0, 3.0], arrived=[100.5, 101.5, 102.5],
+    ...                    max_ahead=600.0)
+    >>> s.times.tolist(), s.rejected
+    ([100.0, 102.0], [(1, 'time_ahead')])
     """
     t, bad_t = coerce_values(times)
     v, bad_v = coerce_values(values)
     n = t.shape[0]
+    lag: NDArray[np.float64] | None = None  # arrival minus time stamp, when a limit applies
+    if arrived is not None and (max_ahead is not None or max_behind is not None) and n:
+        arr = np.asarray(arrived, dtype=np.float64)
+        if arr.ndim and arr.shape != t.shape:
+            raise ValueError(f"arrival times and times differ in length: {arr.shape[0]} != {n}")
+        lag = arr - t
     if n and t.shape == v.shape and not bad_t.any() and not bad_v.any():
-        # Fast path for the common case: all finite, strictly increasing.
+        # Fast path for the common case: all finite, strictly increasing, within the limits.
         if (t[0] > last_time and bool((np.abs(v) <= MAX_ABS_VALUE).all()) and np.isfinite(t[-1])
-                and (n == 1 or bool((t[1:] > t[:-1]).all()))):
+                and (n == 1 or bool((t[1:] > t[:-1]).all()))
+                and (lag is None or _within(lag, max_ahead, max_behind))):
             return Screened(times=t, values=v, kept=np.arange(n), rejected=[])
     if t.shape != v.shape:
         raise ValueError(f"times and values differ in length: {t.shape[0]} != {v.shape[0]}")
     n = t.shape[0]
     reason = np.zeros(n, dtype=np.int8)  # 0 = accepted
-    codes = ["", "not_a_number", "nan", "infinite", "bad_time", "duplicate_time", "out_of_order"]
+    codes = ["", "not_a_number", "nan", "infinite", "bad_time", "duplicate_time", "out_of_order",
+             "time_ahead", "time_behind"]
     reason[~(np.abs(v) <= MAX_ABS_VALUE)] = 3  # infinite, or too large to compute with
     reason[np.isnan(v)] = 2
     reason[bad_v] = 1
+    if lag is not None:
+        with np.errstate(invalid="ignore"):
+            if max_behind is not None:
+                reason[(lag > max_behind) & (reason == 0)] = 8
+            if max_ahead is not None:
+                reason[(-lag > max_ahead) & (reason == 0)] = 7
     bad_time = bad_t | ~np.isfinite(t)
     reason[bad_time] = 4
     # Strictly increasing: compare each time with the newest earlier good time.
@@ -144,3 +179,10 @@ def screen_samples(
     rej_idx = np.flatnonzero(~keep)
     rejected = [(int(i), codes[reason[i]]) for i in rej_idx]
     return Screened(times=t[kept], values=v[kept], kept=kept, rejected=rejected)
+
+
+def _within(lag: NDArray[np.float64], max_ahead: float | None, max_behind: float | None) -> bool:
+    """Whether every ``arrival - time`` lies within the limits."""
+    if max_ahead is not None and not bool(lag.min() >= -max_ahead):
+        return False
+    return max_behind is None or bool(lag.max() <= max_behind)

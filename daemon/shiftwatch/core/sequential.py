@@ -32,6 +32,9 @@ class SequentialTest(ABC):
     #: Short name used in alert records (``test`` field) and configuration.
     name: ClassVar[str] = ""
 
+    # Subclasses may declare __slots__ (the default test does: one per stream).
+    __slots__ = ()
+
     @property
     @abstractmethod
     def threshold(self) -> float:

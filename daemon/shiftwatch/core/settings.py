@@ -66,6 +66,10 @@ class DetectionSettings:
     baseline_memory: int = 20000
     #: the newest samples are kept out of baseline refinements (a shift may be in progress there)
     baseline_guard: int = 60
+    #: a sample stamped more than this many seconds ahead of its arrival is rejected (None: no limit)
+    max_time_ahead: float | None = 600.0
+    #: a sample stamped more than this many seconds before its arrival is rejected (None: no limit)
+    max_time_behind: float | None = None
 
     def __post_init__(self) -> None:
         def bad(name: str, why: str) -> None:
@@ -102,6 +106,11 @@ class DetectionSettings:
             bad("spike_sigma", f"must exceed clip_sigma ({self.clip_sigma}), got {self.spike_sigma}")
         if self.min_sigma is not None and not (self.min_sigma > 0):
             bad("min_sigma", f"must be positive or null, got {self.min_sigma!r}")
+        for name in ("max_time_ahead", "max_time_behind"):
+            v = getattr(self, name)
+            if v is not None and (not isinstance(v, (int, float)) or isinstance(v, bool)
+                                  or not math.isfinite(v) or v <= 0):
+                bad(name, f"must be a positive duration or null, got {v!r}")
         if self.confirm_max_samples < self.confirm_min_samples:
             bad("confirm_max_samples", "must be at least confirm_min_samples")
 
@@ -123,7 +132,8 @@ class DetectionSettings:
     def from_mapping(cls, data: dict[str, Any], base: "DetectionSettings | None" = None) -> "DetectionSettings":
         """Build settings from a mapping (e.g. YAML), over ``base`` or the defaults.
 
-        ``false_alarm_every`` accepts a duration such as ``7d``.  Unknown keys
+        ``false_alarm_every``, ``max_time_ahead`` and ``max_time_behind`` accept a
+        duration such as ``7d``.  Unknown keys
         raise ``ValueError`` naming the key.
         """
         known = {f.name for f in fields(cls)}
@@ -131,7 +141,8 @@ class DetectionSettings:
         for key, value in data.items():
             if key not in known:
                 raise ValueError(f"{key}: unknown setting (known: {', '.join(sorted(known))})")
-            if key == "false_alarm_every":
+            if key == "false_alarm_every" or (key in ("max_time_ahead", "max_time_behind")
+                                              and value is not None):
                 value = parse_duration(value)
             values[key] = value
         return cls(**values)

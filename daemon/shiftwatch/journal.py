@@ -1,0 +1,270 @@
+"""A journal of the samples processed since the last snapshot, replayed after a crash.
+
+The daemon acknowledges each round of messages as soon as it has processed
+them (the broker sends only a few unacknowledged messages at a time, so the
+acknowledgements cannot wait for the next snapshot).  Without more, a crash
+would lose from the engines' state every sample acknowledged since the last
+snapshot.  So before the acknowledgements go out, the round's samples, as
+each engine was fed them, are appended to this journal; a snapshot starts a
+new one.  At start the daemon loads the snapshot and feeds the journal's
+rounds to the engines again, which brings them to where they were when the
+process died.
+
+The journal belongs to one snapshot: its header holds a token that the
+snapshot's metadata repeats.  A journal whose token does not match the
+snapshot on disk (the process died between writing a snapshot and starting
+its journal) is discarded, so no round is applied twice.
+
+Writes are plain ``write`` calls, which survive the death of the process
+(SIGKILL, a crash, the OOM killer); the file is fsynced at most once per
+``sync_every`` seconds, which bounds what a power cut can take.
+
+File layout (``journal.bin``): a sequence of records, each
+``b"SWJ1" + uint32 length + uint32 crc32 + body`` (little-endian).  The first
+body is JSON ``{"format": "shiftwatch-journal", "version": 1, "token": "..."}``.
+Every later body is one round: a JSON line ``[[stream, unit, n], ...]``, then
+for each stream its ``n`` times, values and arrival times as float64.  A torn
+or damaged record ends the journal; what follows it is never read.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+import struct
+import time
+import zlib
+from collections.abc import Iterable, Sequence
+from pathlib import Path
+from typing import NamedTuple
+
+import numpy as np
+from numpy.typing import NDArray
+
+__all__ = ["JOURNAL_NAME", "Journal", "JournalGroup"]
+
+JOURNAL_NAME = "journal.bin"
+_MAGIC = b"SWJ1"
+_HEAD = struct.Struct("<4sII")
+_FORMAT = "shiftwatch-journal"
+_VERSION = 1
+
+
+class JournalGroup(NamedTuple):
+    """The samples one engine was fed in one round."""
+
+    stream: str
+    unit: str | None
+    times: NDArray[np.float64]
+    values: NDArray[np.float64]
+    arrived: NDArray[np.float64]
+
+
+def _record(body: bytes) -> bytes:
+    return _HEAD.pack(_MAGIC, len(body), zlib.crc32(body)) + body
+
+
+def _encode_round(groups: Iterable[JournalGroup]) -> bytes:
+    index = []
+    arrays = []
+    for g in groups:
+        index.append([g.stream, g.unit, int(g.times.shape[0])])
+        arrays += [g.times, g.values, g.arrived]
+    head = json.dumps(index, ensure_ascii=False).encode("utf-8") + b"\n"
+    return head + b"".join(np.ascontiguousarray(a, dtype="<f8").tobytes() for a in arrays)
+
+
+def _decode_round(body: bytes) -> list[JournalGroup]:
+    head, sep, data = body.partition(b"\n")
+    if not sep:
+        raise ValueError("no index line")
+    index = json.loads(head)
+    flat = np.frombuffer(data, dtype="<f8")
+    out = []
+    pos = 0
+    for stream, unit, n in index:
+        if not isinstance(stream, str) or not (unit is None or isinstance(unit, str)) \
+                or not isinstance(n, int) or n < 0 or pos + 3 * n > flat.shape[0]:
+            raise ValueError("malformed index entry")
+        t, v, a = (flat[pos + k * n: pos + (k + 1) * n].astype(np.float64) for k in range(3))
+        pos += 3 * n
+        out.append(JournalGroup(stream, unit, t, v, a))
+    if pos != flat.shape[0]:
+        raise ValueError("index and data differ in length")
+    return out
+
+
+class Journal:
+    """The sample journal of one state directory.
+
+    Parameters
+    ----------
+    directory : where ``journal.bin`` lives (created if missing).
+    sync_every : most seconds between fsyncs of appended rounds.
+    max_bytes : the journal stops growing at this size (when snapshots keep
+        failing); :meth:`append` then raises ``OSError`` until the next
+        :meth:`restart`.
+    logger : where problems are logged.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> d = tempfile.mkdtemp()
+    >>> j = Journal(d)
+    >>> j.open("t1")
+    []
+    >>> one = np.array([1.0, 2.0])
+    >>> j.append([JournalGroup("line1/fill", "g", one, one * 10, one + 0.5)])
+    >>> j.close()
+    >>> [(g.stream, g.values.tolist()) for r in Journal(d).open("t1") for g in r]
+    [('line1/fill', [10.0, 20.0])]
+    >>> Journal(d).open("another snapshot")
+    []
+    """
+
+    def __init__(self, directory: str | Path, *, sync_every: float = 1.0, max_bytes: int = 256 << 20,
+                 logger: logging.Logger | None = None) -> None:
+        self.directory = Path(directory)
+        self.path = self.directory / JOURNAL_NAME
+        self.sync_every = sync_every
+        self.max_bytes = max_bytes
+        self._log = logger if logger is not None else logging.getLogger(__name__)
+        self._fd: int | None = None
+        self._size = 0
+        self._last_sync = 0.0
+        self._dirty = False
+
+    # ------------------------------------------------------------ opening
+    def open(self, token: str) -> list[list[JournalGroup]]:
+        """Read the rounds recorded on top of the snapshot with ``token`` and go on appending.
+
+        A journal of another snapshot is discarded (and a new one started); a
+        damaged tail is cut off with a log line.
+
+        Returns
+        -------
+        list of rounds, oldest first, each a list of :class:`JournalGroup`.
+
+        Raises
+        ------
+        OSError
+            If the journal cannot be read or a new one cannot be written.
+        """
+        self.close()
+        try:
+            data = self.path.read_bytes()
+        except FileNotFoundError:
+            data = b""
+        rounds, good, header_token, problem = self._parse(data)
+        if header_token != token:
+            if header_token is not None:
+                self._log.info("journal %s belongs to another snapshot; discarded", self.path)
+            self.restart(token)
+            return []
+        if problem is not None:
+            self._log.warning("journal %s: %s after %d round(s); the rest (%d bytes) is discarded",
+                              self.path, problem, len(rounds), len(data) - good)
+        fd = os.open(self.path, os.O_WRONLY)
+        try:
+            os.ftruncate(fd, good)
+            os.lseek(fd, good, os.SEEK_SET)
+        except BaseException:
+            os.close(fd)
+            raise
+        self._fd, self._size = fd, good
+        return rounds
+
+    @staticmethod
+    def _parse(data: bytes) -> tuple[list[list[JournalGroup]], int, str | None, str | None]:
+        """(rounds, length of the good prefix, header token, problem or None)."""
+        rounds: list[list[JournalGroup]] = []
+        pos = 0
+        token: str | None = None
+        while pos < len(data):
+            if len(data) - pos < _HEAD.size:
+                return rounds, pos, token, "torn record"
+            magic, length, crc = _HEAD.unpack_from(data, pos)
+            body = data[pos + _HEAD.size: pos + _HEAD.size + length]
+            if magic != _MAGIC or len(body) != length or zlib.crc32(body) != crc:
+                return rounds, pos, token, "torn or damaged record"
+            try:
+                if token is None:
+                    head = json.loads(body)
+                    if not isinstance(head, dict) or head.get("format") != _FORMAT \
+                            or head.get("version") != _VERSION or not isinstance(head.get("token"), str):
+                        return [], 0, None, "unknown header"
+                    token = head["token"]
+                else:
+                    rounds.append(_decode_round(body))
+            except (ValueError, TypeError, UnicodeDecodeError):
+                return rounds, pos, token, "malformed record"
+            pos += _HEAD.size + length
+        return rounds, pos, token, None
+
+    def restart(self, token: str) -> None:
+        """Start an empty journal for the snapshot with ``token`` (atomically replaces the old one).
+
+        Raises
+        ------
+        OSError
+            If it cannot be written; no journal is then open.
+        """
+        self.close()
+        self.directory.mkdir(parents=True, exist_ok=True)
+        tmp = self.path.with_name(f".{JOURNAL_NAME}.tmp")
+        head = _record(json.dumps({"format": _FORMAT, "version": _VERSION, "token": token}).encode())
+        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+        try:
+            os.write(fd, head)
+            os.replace(tmp, self.path)
+        except BaseException:
+            os.close(fd)
+            try:
+                os.unlink(tmp)
+            except OSError:
+                pass
+            raise
+        self._fd, self._size = fd, len(head)
+
+    # ------------------------------------------------------------ writing
+    @property
+    def is_open(self) -> bool:
+        return self._fd is not None
+
+    def append(self, groups: Sequence[JournalGroup]) -> None:
+        """Append one round.  Raises ``OSError`` when it cannot be written in full;
+        the journal is then closed (a torn record must not be followed by more)."""
+        if self._fd is None:
+            raise OSError("the journal is not open")
+        rec = _record(_encode_round(groups))
+        if self._size + len(rec) > self.max_bytes:
+            self.close()
+            raise OSError(f"the journal reached its limit of {self.max_bytes} bytes")
+        try:
+            n = os.write(self._fd, rec)
+            if n != len(rec):
+                raise OSError(f"short write ({n} of {len(rec)} bytes)")
+        except OSError:
+            self.close()
+            raise
+        self._size += len(rec)
+        self._dirty = True
+        now = time.monotonic()
+        if now - self._last_sync >= self.sync_every:
+            self.sync()
+            self._last_sync = now
+
+    def sync(self) -> None:
+        """Force what was appended to disk (errors are logged: the data is still in the page cache)."""
+        if self._fd is not None and self._dirty:
+            try:
+                os.fdatasync(self._fd)
+            except OSError as exc:
+                self._log.warning("journal %s could not be forced to disk: %s", self.path, exc)
+            self._dirty = False
+
+    def close(self) -> None:
+        if self._fd is not None:
+            fd, self._fd = self._fd, None
+            os.close(fd)
