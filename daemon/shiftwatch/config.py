@@ -160,6 +160,8 @@ BROKER_KEYS = {
     "session_expiry": Key(_duration, "1d", "how long the broker keeps our session and queued samples while we are away"),
     "qos": Key(_num(integer=True, positive=False), 1, "subscription QoS (0, 1)"),
     "max_payload_bytes": Key(_num(integer=True), 65536, "messages larger than this are rejected before parsing"),
+    "receive_maximum": Key(_num(integer=True), 1000, "MQTT 5: most unacknowledged QoS 1 messages the broker may "
+                           "send us at once (1-65535)", {"type": "integer", "minimum": 1, "maximum": 65535}),
 }
 
 STREAM_KEYS = {
@@ -243,6 +245,7 @@ class BrokerConfig:
     session_expiry: float = 86400.0
     qos: int = 1
     max_payload_bytes: int = 65536
+    receive_maximum: int = 1000
 
 
 @dataclass(frozen=True)
@@ -502,6 +505,9 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
                        "and broker.password_file or broker.password_env", bnodes.get("url"))
     if b["qos"] not in (0, 1):
         raise ld.error("broker.qos", f"must be 0 or 1, got {b['qos']}", bnodes.get("qos"))
+    if not 1 <= b["receive_maximum"] <= 65535:
+        raise ld.error("broker.receive_maximum", f"must be 1 to 65535, got {b['receive_maximum']}",
+                       bnodes.get("receive_maximum"))
     b["tls"] = tls
     broker = BrokerConfig(**b)
     detection = ld.detection(nodes.get("detection"), "detection", DetectionSettings())

@@ -19,8 +19,8 @@ import signal
 import sys
 import threading
 import time
-from collections import OrderedDict
-from dataclasses import dataclass, field
+from collections import OrderedDict, deque
+from collections.abc import Callable
 from pathlib import Path
 from types import FrameType
 from typing import Any
@@ -32,7 +32,7 @@ from shiftwatch.core.engine import AlertRecord, StreamEngine
 from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
 from shiftwatch.core.timefmt import format_duration, format_time
 from shiftwatch.decode import REASONS as DECODE_REASONS
-from shiftwatch.decode import decode, stream_name
+from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, stream_name
 from shiftwatch.journal import Journal, JournalGroup
 from shiftwatch.metrics import Metrics, MetricsServer, StreamStats
 from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
@@ -51,6 +51,12 @@ DRAIN = 20000
 ROUND_BYTES = 800_000
 #: Bound of the queue between paho's thread and the main thread.
 QUEUE_MAX = 100_000
+#: A round of at least BUSY_ROUND messages means the daemon is behind; the
+#: next round then lets messages collect for up to GATHER_S seconds while they
+#: come fast (see Inbox.take), until the broker's window of unacknowledged
+#: messages is full.
+BUSY_ROUND = 64
+GATHER_S = 0.1
 #: The topic-to-stream-entry cache holds topics of at most SPEC_CACHE_TOPIC
 #: characters, and is emptied once it holds SPEC_CACHE_MIN + max_streams
 #: (a topic gives one stream or more, so every live topic fits).
@@ -126,13 +132,57 @@ def _lag_text(lag: float) -> str:
     return format_duration(lag)
 
 
-@dataclass
-class _Group:
-    spec: StreamConfig
-    unit: str | None
-    times: list[float] = field(default_factory=list)
-    values: list[float] = field(default_factory=list)
-    arrived: list[float] = field(default_factory=list)
+class _SyncThenAck:
+    """Forces the outbox to disk, then acknowledges the round's messages, in its own thread.
+
+    An alert record must be durable before the messages that produced it are
+    acknowledged (a crash in between then means they are delivered again).
+    The fsync can take milliseconds; the main thread hands the round over and
+    goes on with the next.  Rounds are handled in the order given, so no
+    message is acknowledged ahead of an earlier round's records.
+    """
+
+    def __init__(self, sync: Callable[[], None], ack: Callable[[list[Message]], None],
+                 log: logging.Logger) -> None:
+        self._sync = sync
+        self._ack = ack
+        self._log = log
+        self._jobs: deque[tuple[bool, list[Message]]] = deque()
+        self._cv = threading.Condition()
+        self._open = 0  # rounds handed over and not finished
+        self._thread: threading.Thread | None = None
+
+    def idle(self) -> bool:
+        return self._open == 0
+
+    def submit(self, sync: bool, msgs: list[Message]) -> None:
+        with self._cv:
+            self._jobs.append((sync, msgs))
+            self._open += 1
+            if self._thread is None:
+                self._thread = threading.Thread(target=self._run, name="shiftwatch-outbox-sync", daemon=True)
+                self._thread.start()
+            self._cv.notify_all()
+
+    def wait_idle(self, timeout: float) -> bool:
+        """Wait until every round handed over is done; False on timeout."""
+        with self._cv:
+            return self._cv.wait_for(lambda: self._open == 0, timeout)
+
+    def _run(self) -> None:
+        while True:
+            with self._cv:
+                self._cv.wait_for(lambda: bool(self._jobs))
+                sync, msgs = self._jobs.popleft()
+            try:
+                if sync:
+                    self._sync()
+                self._ack(msgs)
+            except Exception:  # this thread must never die
+                self._log.exception("error while writing the outbox or acknowledging messages")
+            with self._cv:
+                self._open -= 1
+                self._cv.notify_all()
 
 
 class Daemon:
@@ -159,7 +209,7 @@ class Daemon:
         # The ``topic`` of the config entry each engine was made for: a stream name
         # that stream_name() had to change may match no filter of its entry any more.
         self._filters: dict[str, str] = {}
-        self._spec_cache: dict[str, StreamConfig | None] = {}
+        self._spec_cache: dict[str, tuple[StreamConfig, str] | None] = {}
         state_dir = Path(cfg.state.dir)
         self.store = StateStore(state_dir / "snapshots", logger=self.log)
         # The journal of samples processed since the last snapshot (see shiftwatch.journal).
@@ -177,6 +227,11 @@ class Daemon:
         self.server: MetricsServer | None = None
         self.records_published = 0
         self._last_trim = 0.0
+        self._busy = False
+        self._acker = _SyncThenAck(self._sync_outbox, self._ack, self.log)
+        # Messages per round: the broker sends at most receive_maximum unacknowledged
+        # ones (MQTT 5), so a larger round would never fill.
+        self._round_max = DRAIN if cfg.broker.mqtt_version != "5" else min(DRAIN, cfg.broker.receive_maximum)
         self._trim_pending = False
 
     # ------------------------------------------------------------ topics
@@ -188,16 +243,23 @@ class Daemon:
         return f"{self.prefix}/status"
 
     def spec_for(self, topic: str) -> StreamConfig | None:
-        spec = self._spec_cache.get(topic, False)
-        if spec is False:
+        route = self._route(topic)
+        return None if route is None else route[0]
+
+    def _route(self, topic: str) -> tuple[StreamConfig, str] | None:
+        """The stream configuration of a topic and its stream name (for readings
+        without a SenML name), cached per topic."""
+        route = self._spec_cache.get(topic, False)
+        if route is False:
             spec = next((s for s in self.cfg.streams if topic_matches(s.topic, topic)), None)
+            route = None if spec is None else (spec, stream_name(topic, None))
             # Topics come from publishers: a flood of new (or 64 KiB long) ones must
             # not grow the cache without bound.
             if len(topic) <= SPEC_CACHE_TOPIC:
                 if len(self._spec_cache) >= SPEC_CACHE_MIN + self.cfg.metrics.max_streams:
                     self._spec_cache.clear()
-                self._spec_cache[topic] = spec
-        return spec  # type: ignore[return-value]
+                self._spec_cache[topic] = route
+        return route  # type: ignore[return-value]
 
     # ----------------------------------------------------------- signals
     def request_stop(self, *_: Any) -> None:
@@ -354,7 +416,11 @@ class Daemon:
 
     def round(self, timeout: float = 0.2) -> int:
         """Take what is queued (waiting up to ``timeout`` for the first message) and process it."""
-        msgs = self.inbox.take(DRAIN, ROUND_BYTES, timeout)
+        # Under load (the last round was long) let a round's messages collect
+        # first; otherwise take what is there at once, for the alerts' sake.
+        gather = GATHER_S if self._busy else 0.0
+        msgs = self.inbox.take(self._round_max, ROUND_BYTES, timeout, gather=gather)
+        self._busy = len(msgs) >= BUSY_ROUND
         if not msgs:
             self._gauges()
             if self._trim_pending:  # the burst is over: trim now, it costs nothing
@@ -398,6 +464,8 @@ class Daemon:
                 break
             self.process(msgs)
             left -= len(msgs)
+        if not self._acker.wait_idle(10.0):
+            self.log.warning("stopping: the outbox is still being written; its rounds stay unacknowledged")
         self.snapshot()
         if self.journal is not None:
             self.journal.close()
@@ -417,52 +485,51 @@ class Daemon:
     # -------------------------------------------------------- processing
     def process(self, msgs: list[Message]) -> None:
         """Decode, group per stream, run the engines, publish; then acknowledge the messages."""
-        groups: dict[str, _Group] = {}
         now = time.time()
+        published_before = self.records_published
         self.metrics.messages_received.inc(len(msgs))
+        # Messages per stream configuration, so each set is decoded in one call.
+        by_spec: dict[int, tuple[StreamConfig, list[Message], list[str]]] = {}
         for m in msgs:
-            spec = self.spec_for(m.topic)
-            if spec is None:
+            route = self._route(m.topic)
+            if route is None:
                 self._count_drop("no_matching_stream")
                 continue
-            try:
-                dec = decode(m.payload, spec.format, value_path=spec.value, time_path=spec.time,
-                             max_bytes=self.cfg.broker.max_payload_bytes, now=m.arrived)
-            except Exception:  # decode never raises on a payload: a defect costs this message only
-                self._count_drop("internal_error")
-                self.rlog.warning("internal_error", f"internal error while decoding a message on "
-                                  f"{_printable(m.topic)}; it was set aside", now, exc_info=True)
-                continue
-            for p in dec.problems:
-                if p.reason == "no_time":  # the reading is used, with its arrival time
-                    self.rlog.warning("decode:no_time", f"message on {_printable(m.topic)}: {p.message}", now)
+            spec, topic_stream = route
+            entry = by_spec.get(id(spec))
+            if entry is None:
+                entry = by_spec[id(spec)] = (spec, [], [])
+            entry[1].append(m)
+            entry[2].append(topic_stream)
+        # stream -> [spec, unit, times, values, arrival times]
+        groups: dict[str, list[Any]] = {}
+        for spec, ms, names in by_spec.values():
+            decoded = self._decode(spec, ms, now)
+            for m, topic_stream, dec in zip(ms, names, decoded):
+                if dec is None:
                     continue
-                self._count_drop(p.reason)
-                self.rlog.warning(f"decode:{p.reason}", f"message on {_printable(m.topic)} "
-                                  f"set aside ({p.reason}): {p.message}", now)
-            for r in dec.readings:
-                name = stream_name(m.topic, r.name)
-                g = groups.get(name)
-                if g is None:
-                    g = groups[name] = _Group(spec=spec, unit=r.unit or spec.unit)
-                g.times.append(r.time if r.time is not None else m.arrived)
-                g.values.append(r.value)
-                g.arrived.append(m.arrived)
+                if dec.problems:
+                    self._decode_problems(m.topic, dec.problems, now)
+                arrived = m.arrived
+                for r in dec.readings:
+                    name = topic_stream if r.name is None else stream_name(m.topic, r.name)
+                    g = groups.get(name)
+                    if g is None:
+                        g = groups[name] = [spec, r.unit or spec.unit, [], [], []]
+                    g[2].append(arrived if r.time is None else r.time)
+                    g[3].append(r.value)
+                    g[4].append(arrived)
         fed: list[JournalGroup] = []
-        for name, g in groups.items():
+        for name, (spec, unit, times, values, arrivals) in groups.items():
             try:
-                jg = self._run_stream(name, g, now)
+                jg = self._run_stream(name, spec, unit, times, values, arrivals, now)
                 if jg is not None:
                     fed.append(jg)
             except Exception:  # a defect must cost one stream's batch, never the daemon
-                self._count_drop("internal_error", len(g.values))
+                self._count_drop("internal_error", len(values))
                 self.rlog.warning("internal_error", "internal error while processing stream "
                                   f"{_printable(name)}; its batch was set aside", now,
                                   exc_info=True)
-        try:
-            self.outbox.sync()
-        except OSError as exc:
-            self._outbox_failed(exc, now)
         # The round's samples reach the journal before their acknowledgements
         # leave, so a sample the broker forgets is never one the engines forget.
         if fed and self.journal is not None and self.journal.is_open:
@@ -470,9 +537,59 @@ class Daemon:
                 self.journal.append(fed)
             except OSError as exc:
                 self._journal_failed(exc)
+        wrote = self.records_published != published_before
+        if self.link is None:
+            if wrote:
+                self._sync_outbox()
+        elif wrote or not self._acker.idle():
+            # The round's records must be on disk before its messages are
+            # acknowledged; another thread waits for the disk, so the next
+            # round (and its alerts) need not.  Later rounds queue behind it.
+            self._acker.submit(wrote, msgs)
+        else:
+            self.link.ack_all(msgs)
+
+    def _sync_outbox(self) -> None:
+        try:
+            self.outbox.sync()
+        except OSError as exc:
+            self._outbox_failed(exc, time.time())
+
+    def _ack(self, msgs: list[Message]) -> None:
         if self.link is not None:
-            for m in msgs:
-                self.link.ack(m.mid, m.qos)
+            self.link.ack_all(msgs)
+
+    def _decode(self, spec: StreamConfig, ms: list[Message], now: float) -> list[Decoded | None]:
+        """Decode the messages of one stream entry; None for a message whose decoding failed.
+
+        decode never raises on a payload: a defect costs the messages it hits only.
+        """
+        kwargs: dict[str, Any] = {"value_path": spec.value, "time_path": spec.time,
+                                  "max_bytes": self.cfg.broker.max_payload_bytes}
+        try:
+            return list(decode_many([m.payload for m in ms], spec.format, now=[m.arrived for m in ms],
+                                    **kwargs))
+        except Exception:
+            pass
+        out: list[Decoded | None] = []
+        for m in ms:
+            try:
+                out.append(decode(m.payload, spec.format, now=m.arrived, **kwargs))
+            except Exception:
+                self._count_drop("internal_error")
+                self.rlog.warning("internal_error", f"internal error while decoding a message on "
+                                  f"{_printable(m.topic)}; it was set aside", now, exc_info=True)
+                out.append(None)
+        return out
+
+    def _decode_problems(self, topic: str, problems: list[DecodeProblem], now: float) -> None:
+        for p in problems:
+            if p.reason == "no_time":  # the reading is used, with its arrival time
+                self.rlog.warning("decode:no_time", f"message on {_printable(topic)}: {p.message}", now)
+                continue
+            self._count_drop(p.reason)
+            self.rlog.warning(f"decode:{p.reason}", f"message on {_printable(topic)} "
+                              f"set aside ({p.reason}): {p.message}", now)
 
     def engine_for(self, name: str, spec: StreamConfig, unit: str | None) -> StreamEngine | None:
         eng = self.engines.get(name)
@@ -485,16 +602,17 @@ class Daemon:
                           spec.detection.warmup_samples)
         return eng
 
-    def _run_stream(self, name: str, g: _Group, now: float) -> JournalGroup | None:
-        eng = self.engine_for(name, g.spec, g.unit)
+    def _run_stream(self, name: str, spec: StreamConfig, unit: str | None, times_list: list[float],
+                    values_list: list[float], arrivals_list: list[float], now: float) -> JournalGroup | None:
+        eng = self.engine_for(name, spec, unit)
         if eng is None:
-            self._count_drop("stream_cap", len(g.values))
+            self._count_drop("stream_cap", len(values_list))
             self.rlog.warning("stream_cap", f"stream limit of {self.cfg.metrics.max_streams} reached; "
                               f"samples of new stream {_printable(name)} set aside", now)
             return None
-        times = np.asarray(g.times, dtype=np.float64)
-        values = np.asarray(g.values, dtype=np.float64)
-        arrivals = np.asarray(g.arrived, dtype=np.float64)
+        times = np.asarray(times_list, dtype=np.float64)
+        values = np.asarray(values_list, dtype=np.float64)
+        arrivals = np.asarray(arrivals_list, dtype=np.float64)
         res = eng.process(times, values, arrivals)
         for rej in res.rejected:
             if rej.reason != "spike":  # one key per reason: many streams cannot multiply the lines
@@ -502,12 +620,10 @@ class Daemon:
                                   f"({rej.reason}): {SAMPLE_REASONS[rej.reason]}", now)
         for rec in res.records:
             j = int(np.searchsorted(times, rec.as_of))
-            arrived = g.arrived[min(j, len(g.arrived) - 1)]
-            self.emit(rec, arrived)
+            self.emit(rec, float(arrivals[min(j, len(arrivals) - 1)]))
         self._publish_level(name, eng)
         self.metrics.update_stream(name, StreamStats.from_engine(eng))
-        return JournalGroup(name, g.unit, times, values, arrivals,
-                            self._filters.get(name, g.spec.topic))
+        return JournalGroup(name, unit, times, values, arrivals, self._filters.get(name, spec.topic))
 
     def emit(self, rec: AlertRecord, arrived: float) -> None:
         """Publish an alert record (through the outbox) and log its summary."""

@@ -121,6 +121,7 @@ import hashlib
 import json
 import math
 import re
+from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime
 from itertools import accumulate
@@ -340,6 +341,11 @@ def _rfc3339(text: str, what: str) -> float:
         raise _Reject("bad_time", f"{what} is {_show(text)}, not a valid date and time") from None
 
 
+def _check_now(now: Any) -> None:
+    if isinstance(now, bool) or not isinstance(now, (int, float)) or not math.isfinite(now):
+        raise ValueError(f"now must be finite epoch seconds, got {now!r}")
+
+
 @functools.lru_cache(maxsize=256)
 def _split_path(path: str | None, what: str) -> tuple[str, ...] | None:
     if path is None:
@@ -441,8 +447,7 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
     if not isinstance(payload, (bytes, bytearray)):
         raise TypeError(f"payload must be bytes, got {type(payload).__name__}")
     value_parts, time_parts = _checked_options(fmt, value_path, time_path, max_bytes, max_items, max_depth)
-    if isinstance(now, bool) or not isinstance(now, (int, float)) or not math.isfinite(now):
-        raise ValueError(f"now must be finite epoch seconds, got {now!r}")
+    _check_now(now)
 
     readings: list[Reading] = []
     problems: list[DecodeProblem] = []
@@ -505,6 +510,82 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
         _json_item(doc, "message", False, value_path, value_parts, time_path, time_parts,
                    readings, problems)
     return out
+
+
+def decode_many(payloads: Sequence[bytes | bytearray], fmt: str, *, value_path: str = "value",
+                time_path: str | None = None, max_bytes: int = 65536, now: Sequence[float],
+                max_items: int = 10000, max_depth: int = 32) -> list[Decoded]:
+    """:func:`decode` applied to each payload, with JSON objects parsed together.
+
+    Gives exactly ``[decode(p, fmt, now=t, ...) for p, t in zip(payloads, now)]``.
+    When every payload is a flat JSON object (``{`` first, ``}`` last, no
+    other ``{`` and no ``[``) they are parsed with one call over the array
+    that joins them, which costs a fraction of one call each.  The same
+    checks then run on each object as in :func:`decode`.  If that array does
+    not parse into one object per payload, each payload is decoded on its
+    own, so every bad payload is reported as :func:`decode` reports it.
+
+    Why the join cannot mix payloads up: the joined text holds exactly one
+    ``{`` per payload, at its start.  If it parses into as many objects as
+    there are payloads, every ``{`` opens one of them, so each object runs
+    from the start of one payload to just before the separator ahead of the
+    next; a payload that ends in ``}`` is then that object and nothing else.
+
+    Parameters
+    ----------
+    payloads : sequence of bytes
+        The raw payloads.
+    fmt, value_path, time_path, max_bytes, max_items, max_depth
+        As for :func:`decode`, the same for every payload.
+    now : sequence of float
+        Arrival time of each payload, epoch seconds.
+
+    Returns
+    -------
+    list of Decoded
+        One per payload, in order.
+
+    Examples
+    --------
+    >>> [d.readings[0].value if d.readings else d.problems[0].reason
+    ...  for d in decode_many([b'{"v": 1}', b'{"v": "x"}', b'{"v": 3}'], "json", value_path="v",
+    ...                       now=[0.0, 0.0, 0.0])]
+    [1.0, 'not_a_number', 3.0]
+    """
+    if len(payloads) != len(now):
+        raise ValueError(f"{len(payloads)} payloads but {len(now)} arrival times")
+    doc = _joined_objects(payloads, max_bytes) if fmt == "json" and len(payloads) > 1 else None
+    if doc is None:
+        return [decode(p, fmt, value_path=value_path, time_path=time_path, max_bytes=max_bytes, now=t,
+                       max_items=max_items, max_depth=max_depth) for p, t in zip(payloads, now)]
+    value_parts, time_parts = _checked_options(fmt, value_path, time_path, max_bytes, max_items, max_depth)
+    for t in now:
+        _check_now(t)
+    out: list[Decoded] = []
+    for item in doc:
+        readings: list[Reading] = []
+        problems: list[DecodeProblem] = []
+        _json_item(item, "message", False, value_path, value_parts, time_path, time_parts, readings, problems)
+        out.append(Decoded(readings, problems))
+    return out
+
+
+def _joined_objects(payloads: Sequence[bytes | bytearray], max_bytes: int) -> list[Any] | None:
+    """The payloads parsed as one JSON array when each is a flat object; None otherwise."""
+    for p in payloads:
+        if (type(p) is not bytes or not p or p[0] != 0x7B or p[-1] != 0x7D or len(p) > max_bytes
+                or b"[" in p):
+            return None
+    joined = b",".join(payloads)
+    if joined.count(b"{") != len(payloads):
+        return None
+    try:
+        doc = _JSON.decode("[" + joined.decode("utf-8") + "]")
+    except (ValueError, RecursionError):  # UnicodeDecodeError is a ValueError
+        return None
+    if not isinstance(doc, list) or len(doc) != len(payloads) or not all(type(d) is dict for d in doc):
+        return None
+    return doc
 
 
 def _json_error(exc: ValueError) -> str:

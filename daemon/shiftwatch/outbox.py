@@ -224,24 +224,28 @@ class Outbox:
         return item
 
     def sync(self) -> None:
-        """Force the records added with ``sync=False`` (and the directory) to disk."""
+        """Force the records added with ``sync=False`` (and the directory) to disk.
+
+        The lock is held only to take the list: :meth:`remove`, which the
+        daemon calls from paho's network thread, must not wait for the disk.
+        A record removed meanwhile is skipped or its file is gone, both fine.
+        """
         if not self.on_disk:
             return
         with self._lock:
             keys, self._unsynced = self._unsynced, []
-            for key in keys:
-                if key not in self._items:
-                    continue  # already delivered and removed
-                try:
-                    fd = os.open(self._path(key), os.O_RDONLY)
-                except FileNotFoundError:
-                    continue
-                try:
-                    os.fsync(fd)
-                finally:
-                    os.close(fd)
-            if keys:
-                fsync_dir(self.directory)
+            keys = [k for k in keys if k in self._items]  # the others were delivered and removed
+        for key in keys:
+            try:
+                fd = os.open(self._path(key), os.O_RDONLY)
+            except FileNotFoundError:
+                continue
+            try:
+                os.fsync(fd)
+            finally:
+                os.close(fd)
+        if keys:
+            fsync_dir(self.directory)
 
     def _write(self, item: OutboxItem, sync: bool = True) -> None:
         fd, tmp = tempfile.mkstemp(prefix=_TMP_PREFIX, suffix=_TMP_SUFFIX, dir=self.directory)

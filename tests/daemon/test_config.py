@@ -50,6 +50,8 @@ def test_the_shipped_schema_is_generated_from_the_same_definitions() -> None:
     ("broker:\n  url: http://x\n",
      "plant.yaml:2: broker.url: must start with mqtt:// or mqtts://, got 'http://x'"),
     ("broker:\n  mqtt_version: 4\n", "plant.yaml:2: broker.mqtt_version: must be text, got 4"),
+    ("broker:\n  receive_maximum: 70000\n",
+     "plant.yaml:2: broker.receive_maximum: must be 1 to 65535, got 70000"),
     ("detection: {false_alarm_every: soon}\n",
      "plant.yaml:1: detection.false_alarm_every: not a duration: 'soon'"),
     ("metrics: {listen: nowhere}\n", "plant.yaml:1: metrics.listen: must be host:port, got 'nowhere'"),

@@ -28,7 +28,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from shiftwatch import decode as decode_module
-from shiftwatch.decode import REASONS, Decoded, DecodeProblem, Reading, decode, stream_name
+from shiftwatch.decode import REASONS, Decoded, DecodeProblem, Reading, decode, decode_many, stream_name
 
 from .fuzz_strategies import JSON_VALUES, PATHS, PROPERTY, SCALARS, SENML_RECORDS, TOKENS, is_safe
 
@@ -683,3 +683,68 @@ def test_property_long_or_unsafe_names_stay_distinct(prefix: str, a: str, b: str
     if a != b:
         assert stream_name(long_prefix, a) != stream_name(long_prefix, b)
         assert stream_name("brackenfield/#" + a, None) != stream_name("brackenfield/#" + b, None)
+
+
+# ---------------------------------------------------------------------------
+# decode_many: the daemon's per-round decoder gives exactly what decode gives
+
+
+def each(payloads: list[bytes], fmt: str = "json", **kwargs: Any) -> list[Decoded]:
+    return [decode(p, fmt, now=NOW, **kwargs) for p in payloads]
+
+
+def test_decode_many_equals_decode_on_flat_objects_and_their_defects() -> None:
+    payloads = [b'{"v": 1.5, "ts": 1764633600}', b'{"v": "1.5", "ts": 1764633601}', b'{"v": NaN}',
+                b'{"ts": 1764633602}', b'{"v": 2, "ts": "2025-12-02T00:00:03Z"}', b'{"v": 1e999}',
+                b'{"v": 3, "ts": "soon"}', b'{"v": 4, "v": 5}']
+    kwargs: dict[str, Any] = {"value_path": "v", "time_path": "ts"}
+    assert decode_module._joined_objects(payloads, 65536) is not None  # the one-parse path is taken
+    assert decode_module._joined_objects([b'{"a":"}', b'{","b":1}'], 65536) is None
+    out = decode_many(payloads, "json", now=[NOW] * len(payloads), **kwargs)
+    assert out == each(payloads, **kwargs)
+    assert [r.value for d in out for r in d.readings] == [1.5, 2.0, 5.0]
+
+
+@pytest.mark.parametrize("payloads", [
+    # Joined, these two parse into ONE object {"a": "},{", "b": 1}: the count check must catch it.
+    [b'{"a":"}', b'{","b":1}'],
+    [b'{"v": 1}', b'{"v": 2'],                      # not flat-closed: decoded one by one
+    [b'{"v": 1}', b'\xff{"v": 2}'],                # bad UTF-8
+    [b'{"v": 1}', b'{"v": [1]}', b'{"v": {"w": 1}}'],
+    [b'{"v": 1}', b' {"v": 2}', b''],
+    [b'{"v": 1}', b'{"v": 2} {"v": 3}'],            # two documents in one payload
+    [b'{"v": 1}', b'{"v": 2}, {"v": 3}'],
+    [b'{"v": 1}', b'{' + b'"k": 1, ' * 10 + b'"v": 2}'],
+])
+def test_decode_many_never_mixes_payloads(payloads: list[bytes]) -> None:
+    assert decode_many(payloads, "json", value_path="v", now=[NOW] * len(payloads)) == \
+        each(payloads, value_path="v")
+
+
+def test_decode_many_checks_its_arguments() -> None:
+    with pytest.raises(ValueError, match="2 payloads but 1 arrival times"):
+        decode_many([b"1", b"2"], "number", now=[NOW])
+    with pytest.raises(ValueError, match="now must be finite"):
+        decode_many([b'{"value": 1}', b'{"value": 2}'], "json", now=[NOW, float("nan")])
+
+
+FLAT_PIECES = st.sampled_from(['"v": 1', '"v": 2.5', '"v": "x"', '"v": NaN', '"ts": 1764633600',
+                               '"ts": "2025-12-02T00:00:00Z"', '"ts": null', '"a": "}"', '"b": "{"',
+                               '"c": ","', '"d": "\\""', '"v": 9' + "9" * 400, '"', ",", "}", "{", " ", ":"])
+
+
+@settings(PROPERTY, max_examples=1500)
+@given(items=st.lists(st.lists(FLAT_PIECES, max_size=5), min_size=2, max_size=6),
+       time_path=st.none() | st.just("ts"))
+def test_property_decode_many_equals_decode(items: list[list[str]], time_path: str | None) -> None:
+    # Mostly flat objects (the fast path), with stray braces, quotes and commas
+    # that try to make the joined array parse differently from the parts.
+    payloads = [("{" + ", ".join(parts) + "}").encode() for parts in items]
+    assert decode_many(payloads, "json", value_path="v", time_path=time_path, now=[NOW] * len(payloads)) == \
+        each(payloads, value_path="v", time_path=time_path)
+
+
+@settings(PROPERTY, max_examples=500)
+@given(payloads=st.lists(st.binary(max_size=40), max_size=5), fmt=FORMATS)
+def test_property_decode_many_on_arbitrary_bytes(payloads: list[bytes], fmt: str) -> None:
+    assert decode_many(payloads, fmt, now=[NOW] * len(payloads)) == each(payloads, fmt)
