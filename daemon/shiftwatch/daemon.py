@@ -10,6 +10,7 @@ engines' state.
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import json
 import logging
@@ -329,6 +330,8 @@ class Daemon:
         next_snap = time.monotonic() + self.cfg.state.snapshot_every
         while not self._stop.is_set():
             self.round(timeout=0.2)
+            if self.journal is not None:
+                self.journal.sync_if_due()
             now = time.monotonic()
             if wd is not None and now >= next_wd:
                 sd_notify("WATCHDOG=1", env=self.env)
@@ -529,6 +532,12 @@ class Daemon:
         now_state = (eng.state, eng.level, eng.sigma)
         if sent == now_state or eng.level is None:
             return
+        if self.link is None or not self.link.connected:
+            # Not handed to paho while the broker is away: paho would hold every
+            # update in memory and its 16-bit message ids would wrap in a long
+            # outage.  The stream's latest level goes out with its next sample
+            # after the reconnect (the broker keeps the last retained one).
+            return
         self._levels_sent[name] = now_state
         body = {"stream": name, "state": eng.state, "level": eng.level, "sigma": eng.sigma,
                 "unit": eng.unit, "last_shift_at": None if eng.last_shift_at is None
@@ -543,7 +552,10 @@ class Daemon:
             if mid in self._early_acks:
                 del self._early_acks[mid]
                 if key is not None:
-                    self.outbox.remove(key)
+                    try:
+                        self.outbox.remove(key)
+                    except OSError as exc:  # as in _published: counted, never the stream's batch
+                        self._outbox_failed(exc, time.time())
             else:
                 self._mid_key[mid] = key
 
@@ -634,7 +646,10 @@ class Daemon:
                 renewed += 1
             else:
                 kept += 1
-        self.cfg = new
+        # Only what the README says a reload changes: the other sections (the
+        # prefix of the status topic and last will, the broker link, the
+        # endpoint, the state directory) stay as they were until the next start.
+        self.cfg = dataclasses.replace(self.cfg, streams=new.streams, detection=new.detection)
         self._spec_cache.clear()
         if self.link is not None:
             self.link.set_subscriptions(sorted(new_filters), added=sorted(new_filters - old_filters),

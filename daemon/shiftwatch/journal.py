@@ -39,6 +39,8 @@ from collections.abc import Iterable, Sequence
 from pathlib import Path
 from typing import NamedTuple
 
+from shiftwatch.fsutil import fsync_dir
+
 import numpy as np
 from numpy.typing import NDArray
 
@@ -217,7 +219,12 @@ class Journal:
         fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
         try:
             os.write(fd, head)
+            os.fsync(fd)
             os.replace(tmp, self.path)
+            # The rename itself must reach the disk: after a power cut an old
+            # journal with another token would otherwise come back, and every
+            # round since the snapshot would be thrown away with it.
+            fsync_dir(self.directory)
         except BaseException:
             os.close(fd)
             try:
@@ -250,6 +257,16 @@ class Journal:
             raise
         self._size += len(rec)
         self._dirty = True
+        self.sync_if_due()
+
+    def sync_if_due(self) -> None:
+        """Force appended rounds to disk once ``sync_every`` has passed since the last time.
+
+        Called after each append and from the daemon's main loop, so the last
+        rounds before a pause in traffic reach the disk too.
+        """
+        if not self._dirty:
+            return
         now = time.monotonic()
         if now - self._last_sync >= self.sync_every:
             self.sync()
@@ -265,6 +282,8 @@ class Journal:
             self._dirty = False
 
     def close(self) -> None:
+        """Force what was appended to disk, then close."""
         if self._fd is not None:
+            self.sync()
             fd, self._fd = self._fd, None
             os.close(fd)

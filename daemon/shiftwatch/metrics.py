@@ -15,7 +15,7 @@ Names follow Prometheus conventions (base units, ``_total`` on counters,
 ``_seconds`` and ``_timestamp_seconds`` on times):
 
 ==========================================  =============================================
-``shiftwatch_samples_total{stream}``         samples received, rejected ones included
+``shiftwatch_samples_total{stream}``         samples received, each once (see :class:`StreamStats`)
 ``shiftwatch_samples_rejected_total``        rejected samples, by ``stream`` and ``reason``
 ``shiftwatch_alert_records_total``           alert records, by ``stream`` and ``phase``
 ``shiftwatch_level{stream}``                 in-control level, in reading units
@@ -79,7 +79,9 @@ class StreamStats:
 
     Attributes
     ----------
-    samples_total : samples received, rejected ones included.
+    samples_total : samples received, rejected ones included, except those whose time is not
+        newer than the stream's newest (a redelivery or a late sample): those count only in
+        ``rejected_total``, so a message delivered twice never counts twice.
     rejected_total : rejected samples by reason code.
     records_total : alert records by phase.
     level, sigma : in-control level and noise sigma; None before the first baseline.
@@ -148,7 +150,7 @@ class _StreamCollector(Collector):
     @staticmethod
     def _families(streams: Mapping[str, StreamStats]) -> Iterator[Metric]:
         samples = CounterMetricFamily(
-            "shiftwatch_samples", "Samples received for the stream, rejected ones included.",
+            "shiftwatch_samples", "Samples received for the stream, each once (a repeat or late time counts only as rejected).",
             labels=["stream"])
         rejected = CounterMetricFamily(
             "shiftwatch_samples_rejected", "Samples rejected by screening, by reason.",

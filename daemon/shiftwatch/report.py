@@ -410,7 +410,8 @@ class ReplayReport:
 
         Parameters
         ----------
-        samples : samples per stream (the engine's count, rejected ones included).
+        samples : samples per stream (the engine's count: a repeated or late time is counted only
+            among the rejections).
         rejected : per stream, samples set aside by reason.
         sources : the replayed files.
         settings_note : which detection settings were used, in a few words.
