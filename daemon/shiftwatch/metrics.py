@@ -38,19 +38,23 @@ PromQL expects for "not known yet".
 from __future__ import annotations
 
 import math
+import socket
+import ssl
+import sys
 import threading
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Any
-from wsgiref.simple_server import WSGIServer
+from wsgiref.simple_server import WSGIRequestHandler
 
-from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, start_http_server
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, make_wsgi_app
+from prometheus_client.exposition import ThreadingWSGIServer
 from prometheus_client.metrics_core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
-__all__ = ["DEFAULT_LISTEN", "ALERT_DELAY_BUCKETS", "StreamStats", "Metrics", "MetricsServer",
-           "parse_listen"]
+__all__ = ["ALERT_DELAY_BUCKETS", "CONNECTION_TIMEOUT", "DEFAULT_LISTEN", "Metrics",
+           "MetricsServer", "StreamStats", "parse_listen"]
 
 #: Where the endpoint listens unless configured otherwise: loopback only.
 DEFAULT_LISTEN = "127.0.0.1:9650"
@@ -58,6 +62,11 @@ DEFAULT_LISTEN = "127.0.0.1:9650"
 #: Buckets of ``shiftwatch_alert_delay_seconds``: 1 ms to 10 s in 1-2.5-5 steps.
 ALERT_DELAY_BUCKETS: tuple[float, ...] = (
     0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
+
+#: Seconds a connection to the endpoint may stay silent (in the TLS handshake or while
+#: sending its request) before it is dropped.  Each connection has a thread of its own,
+#: so a silent one holds only that thread, never the other scrapes.
+CONNECTION_TIMEOUT = 10.0
 
 
 #: Shared by the snapshots of every stream that has no rejections or records yet.
@@ -227,6 +236,81 @@ def parse_listen(listen: str) -> tuple[str, int]:
     return (host or "127.0.0.1"), int(port)
 
 
+class _QuietHandler(WSGIRequestHandler):
+    """Serves one connection; logs nothing, and gives up on a client silent for too long."""
+
+    server: _EndpointServer
+
+    def setup(self) -> None:
+        super().setup()
+        self.connection.settimeout(self.server.connection_timeout)  # reads and writes alike
+
+    def log_message(self, format: str, *args: Any) -> None:
+        """Log nothing: a scrape is not an event."""
+
+
+class _EndpointServer(ThreadingWSGIServer):
+    """A thread per connection; with TLS the handshake runs in that thread, under a timeout.
+
+    prometheus_client's own TLS wraps the listening socket, so the handshake runs inside
+    ``accept()`` on the one thread that accepts: a client that connects and sends nothing
+    would hold up every other scrape.  Here the listening socket stays plain, an accepted
+    socket is wrapped without a handshake, and the connection's own thread does the
+    handshake with ``connection_timeout`` on the socket, closing it on failure.
+    """
+
+    def __init__(self, host: str, port: int, tls: ssl.SSLContext | None,
+                 connection_timeout: float) -> None:
+        family, _, _, _, sockaddr = socket.getaddrinfo(
+            host, port, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)[0]
+        self.address_family = family  # read by TCPServer.__init__ when it makes the socket
+        self.tls = tls
+        self.connection_timeout = connection_timeout
+        super().__init__((str(sockaddr[0]), port), _QuietHandler)
+
+    def get_request(self) -> tuple[socket.socket, Any]:
+        sock, addr = super().get_request()
+        if self.tls is None:
+            return sock, addr
+        try:  # no I/O here: the handshake waits for the connection's thread
+            return self.tls.wrap_socket(sock, server_side=True,
+                                        do_handshake_on_connect=False), addr
+        except OSError:
+            sock.close()
+            raise
+
+    def finish_request(self, request: Any, client_address: Any) -> None:
+        if isinstance(request, ssl.SSLSocket):
+            request.settimeout(self.connection_timeout)
+            try:
+                request.do_handshake()
+            except OSError:  # silent, too slow, plain HTTP, or an unsigned client certificate
+                return  # process_request_thread closes the socket
+        super().finish_request(request, client_address)
+
+    def handle_error(self, request: Any, client_address: Any) -> None:
+        """A client that timed out or hung up is no error of ours; anything else is printed."""
+        if not isinstance(sys.exc_info()[1], OSError):
+            super().handle_error(request, client_address)
+
+
+def _tls_context(certfile: str, keyfile: str, client_cafile: str | None) -> ssl.SSLContext:
+    """The server's TLS context; with a client CA, a client certificate it signed is required."""
+    ctx = ssl.SSLContext(ssl.PROTOCOL_TLS_SERVER)
+    if client_cafile is not None:
+        try:
+            ctx.load_verify_locations(cafile=client_cafile)
+        except OSError as exc:
+            raise OSError(f"Cannot load client CA file {client_cafile!r}: {exc}") from None
+        ctx.verify_mode = ssl.CERT_REQUIRED
+    try:
+        ctx.load_cert_chain(certfile=certfile, keyfile=keyfile)
+    except OSError as exc:
+        raise OSError(f"Cannot load server certificate file {certfile!r} or its private key "
+                      f"file {keyfile!r}: {exc}") from None
+    return ctx
+
+
 class MetricsServer:
     """A running metrics endpoint; :meth:`close` stops it.
 
@@ -236,7 +320,7 @@ class MetricsServer:
     port : the port it is bound to (the chosen one when port 0 was asked for).
     """
 
-    def __init__(self, server: WSGIServer, thread: threading.Thread) -> None:
+    def __init__(self, server: ThreadingWSGIServer, thread: threading.Thread) -> None:
         self._server = server
         self._thread = thread
         addr = server.server_address
@@ -331,18 +415,22 @@ class Metrics:
             return dict(self._streams)
 
     def serve(self, listen: str = DEFAULT_LISTEN, *, certfile: str | None = None,
-              keyfile: str | None = None, client_cafile: str | None = None) -> MetricsServer:
+              keyfile: str | None = None, client_cafile: str | None = None,
+              connection_timeout: float = CONNECTION_TIMEOUT) -> MetricsServer:
         """Serve the registry over HTTP (HTTPS when a certificate and key are given).
 
-        TLS is prometheus_client's own (``start_http_server``'s ``certfile``,
-        ``keyfile``, ``client_cafile`` and ``client_auth_required``): with a
-        client CA, only scrapers presenting a certificate it signed are served.
+        Each connection is served in a thread of its own, and the TLS handshake runs
+        there too, so a client that connects and stays silent holds only its own
+        thread, and only for ``connection_timeout`` seconds.  With a client CA,
+        only scrapers presenting a certificate it signed are served.
 
         Parameters
         ----------
         listen : ``host:port``, see :func:`parse_listen`; loopback by default.
         certfile, keyfile : PEM certificate and private key; both or neither.
         client_cafile : PEM CA that signs the scrapers' client certificates (HTTPS only).
+        connection_timeout : seconds a connection may stay silent, in the TLS handshake or
+            before and within its request, before it is dropped.
 
         Returns
         -------
@@ -361,8 +449,11 @@ class Metrics:
         if client_cafile is not None and certfile is None:
             raise ValueError("client_cafile needs certfile and keyfile")
         host, port = parse_listen(listen)
-        server, thread = start_http_server(port, addr=host, registry=self.registry,
-                                           certfile=certfile, keyfile=keyfile,
-                                           client_cafile=client_cafile,
-                                           client_auth_required=client_cafile is not None)
+        tls = None
+        if certfile is not None and keyfile is not None:
+            tls = _tls_context(certfile, keyfile, client_cafile)
+        server = _EndpointServer(host, port, tls, connection_timeout)
+        server.set_app(make_wsgi_app(self.registry))
+        thread = threading.Thread(target=server.serve_forever, name="metrics-http", daemon=True)
+        thread.start()
         return MetricsServer(server, thread)

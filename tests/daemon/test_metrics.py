@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import socket
 import ssl
 import subprocess
 import urllib.request
@@ -255,11 +256,18 @@ def test_close_frees_the_port(metrics: Metrics) -> None:
         scrape(again)
 
 
-def test_https_with_certificate(metrics: Metrics, tmp_path: Path) -> None:
+@pytest.fixture
+def self_signed(tmp_path: Path) -> tuple[Path, Path]:
+    """A self-signed certificate for 127.0.0.1 and its key, made by the openssl CLI."""
     cert, key = tmp_path / "cert.pem", tmp_path / "key.pem"
     subprocess.run(["openssl", "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "2",
                     "-subj", "/CN=127.0.0.1", "-addext", "subjectAltName=IP:127.0.0.1",
                     "-keyout", str(key), "-out", str(cert)], check=True, capture_output=True)
+    return cert, key
+
+
+def test_https_with_certificate(metrics: Metrics, self_signed: tuple[Path, Path]) -> None:
+    cert, key = self_signed
     metrics.update_stream("tls", watching())
     with metrics.serve("127.0.0.1:0", certfile=str(cert), keyfile=str(key)) as server:
         ctx = ssl.create_default_context(cafile=str(cert))
@@ -267,3 +275,23 @@ def test_https_with_certificate(metrics: Metrics, tmp_path: Path) -> None:
         assert got[("shiftwatch_samples_total", (("stream", "tls"),))] == 1500
         with pytest.raises(OSError):  # plain HTTP is not answered
             urllib.request.urlopen(f"http://127.0.0.1:{server.port}/metrics", timeout=30).read()
+
+
+@pytest.mark.parametrize("tls", [False, True], ids=["http", "https"])
+def test_a_silent_connection_is_dropped_after_the_timeout_and_holds_up_no_scrape(
+    metrics: Metrics, self_signed: tuple[Path, Path], tls: bool,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    cert, key = self_signed
+    files = {"certfile": str(cert), "keyfile": str(key)} if tls else {}
+    context = ssl.create_default_context(cafile=str(cert)) if tls else None
+    with metrics.serve("127.0.0.1:0", connection_timeout=0.5, **files) as server:
+        # Connects and sends nothing: neither a TLS handshake nor a request line.
+        with socket.create_connection(("127.0.0.1", server.port), timeout=30) as silent:
+            scrape(server, scheme="https" if tls else "http", context=context)
+            # The server hangs up on it (recv sees the end of the stream, b"") instead of
+            # waiting for ever; the 30 s socket timeout bounds the wait.
+            assert silent.recv(1) == b""
+        scrape(server, scheme="https" if tls else "http", context=context)
+    # The server thread handled the timeout before it closed the socket: nothing printed.
+    assert "Traceback" not in capsys.readouterr().err

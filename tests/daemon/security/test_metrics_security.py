@@ -1,5 +1,5 @@
 """The metrics endpoint: loopback unless asked otherwise, and HTTPS (optionally with client
-certificates) through prometheus_client's own TLS options, scraped for real."""
+certificates) with the handshake in each connection's own thread, scraped for real."""
 
 from __future__ import annotations
 
@@ -128,6 +128,27 @@ def test_metrics_can_require_client_certificates(
     rogue.load_cert_chain(str(rogue_cert), str(rogue_key))
     with pytest.raises(NOT_SERVED):  # a certificate the plant CA did not sign: refused
         scrape(port, scheme="https", context=rogue)
+    assert d.stop() == 0
+
+
+@pytest.mark.broker
+def test_a_silent_connection_does_not_hold_up_https_scrapes(
+    broker: MosquittoBroker, tmp_path: Path, pki: Pki, run_daemon
+) -> None:
+    d, port = https_daemon(tmp_path, broker, pki, run_daemon, client_ca=False)
+    trusted = ssl.create_default_context(cafile=str(pki.plant.cert_file))
+    assert wait_until(lambda: metric(scrape(port, scheme="https", context=trusted),
+                                     "shiftwatch_broker_connected") == 1.0)
+    # A client that connects and never starts its TLS handshake.  prometheus_client's own TLS
+    # ran the handshake in accept(), on the one accepting thread, without a timeout, so this
+    # held up every scrape for as long as it stayed open.
+    silent = socket.create_connection(("127.0.0.1", port), timeout=30)
+    try:
+        for _ in range(3):  # scrape(): urllib with a 10 s timeout of its own, so a bounded wait
+            text = scrape(port, scheme="https", context=trusted)
+            assert metric(text, "shiftwatch_broker_connected") == 1.0
+    finally:
+        silent.close()
     assert d.stop() == 0
 
 
