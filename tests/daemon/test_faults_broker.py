@@ -88,6 +88,21 @@ def test_broker_restarts_lose_no_sample_and_count_none_twice(broker, daemon_fact
     assert d.stop() == 0
 
 
+def unread_bytes_from(port: int) -> int:
+    """The most bytes any local TCP socket connected to ``port`` holds unread (Linux /proc/net/tcp)."""
+    most = 0
+    for table in ("/proc/net/tcp", "/proc/net/tcp6"):
+        try:
+            lines = open(table).read().splitlines()[1:]
+        except OSError:
+            continue
+        for line in lines:
+            f = line.split()
+            if int(f[2].rsplit(":", 1)[1], 16) == port:  # rem_address: the broker's end
+                most = max(most, int(f[4].split(":")[1], 16))  # rx_queue
+    return most
+
+
 def test_alert_records_made_during_an_outage_arrive_after_it(broker, daemon_factory) -> None:
     # The daemon is held (SIGSTOP) while the step's samples reach it, the broker
     # stops, and the daemon then processes them with no broker: its records
@@ -110,7 +125,9 @@ def test_alert_records_made_during_an_outage_arrive_after_it(broker, daemon_fact
     d.signal(signal.SIGSTOP)
     try:
         send(400, 420)
-        time.sleep(0.5)  # the broker pushes its in-flight window into the daemon's socket
+        # The broker pushes its in-flight window into the held daemon's socket;
+        # wait until the kernel holds it there (a loaded machine can take a while).
+        assert wait_until(lambda: unread_bytes_from(broker.port) >= 20 * 60, timeout=20)
         broker.stop()
     finally:
         d.signal(signal.SIGCONT)
