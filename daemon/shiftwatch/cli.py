@@ -31,6 +31,20 @@ def _load_config(path: str | None) -> Any:
     return None if path is None else load_config(path)
 
 
+def _optional_config(path: str | None) -> tuple[Any, bool]:
+    """The configuration named by ``--config``, or None without one; True when it was refused
+    (the error, with its file, line and key path, is already printed)."""
+    if path is None:  # replay without a config imports neither yaml nor the schema
+        return None, False
+    from shiftwatch.config import ConfigError
+
+    try:
+        return _load_config(path), False
+    except ConfigError as exc:
+        _err(str(exc))
+        return None, True
+
+
 def _print_problems(problems: list[str], limit: int = 20) -> None:
     for p in problems[:limit]:
         print(p, file=sys.stderr)
@@ -58,16 +72,9 @@ def progress_bar(total: int, desc: str, unit: str, *, minimum: int = PROGRESS_MI
 
 
 def cmd_replay(args: argparse.Namespace) -> int:
-    if args.config is not None:
-        from shiftwatch.config import ConfigError
-
-        try:
-            cfg = _load_config(args.config)
-        except ConfigError as exc:
-            _err(str(exc))
-            return EXIT_USAGE
-    else:
-        cfg = None
+    cfg, failed = _optional_config(args.config)
+    if failed:
+        return EXIT_USAGE
     if args.report is None:
         return _replay(args, cfg, None)
     from shiftwatch.report import ReplayReport, ReportError
@@ -344,15 +351,9 @@ def _design_from(args: argparse.Namespace) -> int:
     if args.streams_in_plant is not None and args.streams_in_plant < 1:
         _err(f"--streams-in-plant must be at least 1, got {args.streams_in_plant}")
         return EXIT_USAGE
-    cfg = None
-    if args.config is not None:
-        from shiftwatch.config import ConfigError
-
-        try:
-            cfg = _load_config(args.config)
-        except ConfigError as exc:
-            _err(str(exc))
-            return EXIT_USAGE
+    cfg, failed = _optional_config(args.config)
+    if failed:
+        return EXIT_USAGE
     try:
         read = read_long_csv(args.from_csv)
     except CsvFormatError as exc:
