@@ -27,6 +27,7 @@ import re
 import shutil
 import signal
 import subprocess
+import sys
 import time
 from pathlib import Path
 
@@ -267,7 +268,13 @@ for m in $(awk '{print $5}' /proc/self/mountinfo | sort -u); do
   mount -o remount,bind,ro "$m" 2>/dev/null || true   # ProtectSystem=strict
 done
 mount -o remount,bind,rw /srv/state          # StateDirectory=
+if [ -n "$KEEP" ]; then                      # an install under /tmp (a CI clone)
+  mount --bind "$KEEP" /srv/keep && mount -o remount,bind,ro /srv/keep
+fi
 mount -t tmpfs -o mode=1777 tmpfs /tmp       # PrivateTmp=
+if [ -n "$KEEP" ]; then                      # ... stays where its scripts expect it, read-only
+  mkdir -p "$KEEP" && mount --bind /srv/keep "$KEEP" && mount -o remount,bind,ro "$KEEP"
+fi
 if touch /srv/probe 2>/dev/null || touch /usr/probe 2>/dev/null; then
   echo "SANDBOX IS WRITABLE"; exit 9
 fi
@@ -301,6 +308,15 @@ def test_the_daemon_works_inside_the_units_restrictions(
         metrics=f"  listen: 127.0.0.1:{port}\n",
         broker=f"  url: {broker.url}\n  client_id: sw-sandboxed\n",
     )
+    # PrivateTmp covers /tmp: an install that lives there (a CI clone with its
+    # venv) is bound back at the same path, as an install under /opt needs no help.
+    import shiftwatch
+
+    needed = [Path(sys.prefix).resolve(), Path(shiftwatch.__file__).resolve().parents[2]]
+    under_tmp = [str(p) for p in needed if Path("/tmp") in p.parents]
+    keep = os.path.commonpath(under_tmp) if under_tmp else ""
+    if keep:
+        (work / "keep").mkdir()
     log_path = tmp_path / "sandbox.log"
     log = open(log_path, "w")
     proc = subprocess.Popen(
@@ -312,6 +328,7 @@ def test_the_daemon_works_inside_the_units_restrictions(
             "WORK": str(work),
             "UNIT_ENV": env_line,
             "SHIFTWATCH": shiftwatch_cmd[0],
+            "KEEP": keep,
         },
     )
     try:
