@@ -21,6 +21,7 @@ import threading
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
+from collections.abc import Callable
 from typing import Any
 
 
@@ -55,15 +56,30 @@ def find_mosquitto_passwd(mosquitto: str | None = None) -> str | None:
     return None
 
 
-def wait_for_port(port: int, timeout: float = 10.0) -> bool:
+def wait_until(pred: Callable[[], bool], timeout: float = 30.0, every: float = 0.05) -> bool:
+    """Poll ``pred`` every ``every`` seconds until it is true or ``timeout`` has passed.
+
+    Returns whether it became true (it is asked once more at the deadline).  The
+    demo and the tests use it to wait for a broker, a daemon or a message.
+    """
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
-        try:
-            with socket.create_connection(("127.0.0.1", port), timeout=0.2):
-                return True
-        except OSError:
-            time.sleep(0.05)
-    return False
+        if pred():
+            return True
+        time.sleep(every)
+    return pred()
+
+
+def _port_open(port: int) -> bool:
+    try:
+        with socket.create_connection(("127.0.0.1", port), timeout=0.2):
+            return True
+    except OSError:
+        return False
+
+
+def wait_for_port(port: int, timeout: float = 10.0) -> bool:
+    return wait_until(lambda: _port_open(port), timeout)
 
 
 @dataclass

@@ -17,6 +17,7 @@ from typing import Any, Callable
 
 from prometheus_client.parser import text_string_to_metric_families
 
+from shiftwatch.broker import wait_until
 from shiftwatch.mqtt import PlainClient
 
 T0 = 1_790_000_000.0  # sample times start here (2026-09-21), one second apart
@@ -174,13 +175,6 @@ def alert_records_total(text: str) -> int:
     return int(sum(metric_values(text, "shiftwatch_alert_records_total").values()))
 
 
-def wait_until(pred: Callable[[], bool], timeout: float = 30.0, step: float = 0.05) -> bool:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if pred():
-            return True
-        time.sleep(step)
-    return pred()
 
 
 def settle(port: int, want: dict[str, int], timeout: float = 60.0, quiet: float = 2.0) -> dict[str, int]:

@@ -36,7 +36,7 @@ from typing import Any
 import numpy as np
 from prometheus_client.parser import text_string_to_metric_families
 
-from shiftwatch.broker import MosquittoBroker, free_port
+from shiftwatch.broker import MosquittoBroker, free_port, wait_until
 from shiftwatch.journal import Journal
 from shiftwatch.mqtt import PlainClient
 from shiftwatch.statestore import SNAPSHOT_NAME, StateStore
@@ -60,13 +60,6 @@ def metric(m: dict[tuple[str, tuple[tuple[str, str], ...]], float], name: str, *
     return sum(v for (n, lab), v in m.items() if n == name and all(dict(lab).get(k) == x for k, x in labels.items()))
 
 
-def wait_until(pred: Callable[[], bool], timeout: float = 30.0, every: float = 0.05) -> bool:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if pred():
-            return True
-        time.sleep(every)
-    return False
 
 
 class Piped:

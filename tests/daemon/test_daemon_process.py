@@ -13,6 +13,8 @@ from pathlib import Path
 
 from prometheus_client.parser import text_string_to_metric_families
 
+from shiftwatch.broker import wait_until
+
 T0 = 1_790_000_000.0
 
 
@@ -24,13 +26,6 @@ def metric(text: str, name: str, **labels: str) -> float | None:
     return None
 
 
-def wait_until(pred, timeout: float = 15.0) -> bool:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if pred():
-            return True
-        time.sleep(0.05)
-    return False
 
 
 def test_systemd_notification_ready_watchdog_stopping(daemon_factory, tmp_path: Path, monkeypatch) -> None:

@@ -12,18 +12,11 @@ from __future__ import annotations
 import time
 from collections.abc import Callable
 
-from shiftwatch.broker import MosquittoBroker
+from shiftwatch.broker import MosquittoBroker, wait_until
 from shiftwatch.config import BrokerConfig
 from shiftwatch.mqtt import Inbox, Message, MqttLink, PlainClient
 
 
-def wait_until(pred: Callable[[], bool], timeout: float = 20.0) -> bool:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if pred():
-            return True
-        time.sleep(0.02)
-    return pred()
 
 
 def make_link(broker: MosquittoBroker, inbox: Inbox, receive_maximum: int) -> MqttLink:

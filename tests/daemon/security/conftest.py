@@ -31,7 +31,7 @@ from cryptography.hazmat.primitives.asymmetric import ec
 from cryptography.x509.oid import ExtendedKeyUsageOID, NameOID
 from prometheus_client.parser import text_string_to_metric_families
 
-from shiftwatch.broker import MosquittoBroker, TlsListener, free_port
+from shiftwatch.broker import MosquittoBroker, TlsListener, free_port, wait_until
 from shiftwatch.mqtt import PlainClient
 
 NOW = dt.datetime.now(dt.timezone.utc)
@@ -347,13 +347,6 @@ def fill_series(seed: int = 5, n: int = 700, step: int = 450, delta: float = 1.2
     ]
 
 
-def wait_until(pred: Callable[[], bool], timeout: float = 30.0) -> bool:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if pred():
-            return True
-        time.sleep(0.05)
-    return False
 
 
 def scrape(port: int, *, scheme: str = "http", context: ssl.SSLContext | None = None) -> str:
