@@ -4,6 +4,7 @@ Usage, from the repository root with the package installed and mosquitto availab
 
     python tests/bench/bench_daemon.py            # full run, about 5 to 10 minutes on 2 cores
     python tests/bench/bench_daemon.py --quick    # smaller loads, for a smoke check
+    python tests/bench/bench_daemon.py --part memory   # only the parts named (repeatable)
 
 Everything runs on this machine over loopback: a private mosquitto per part,
 the real daemon in a subprocess (``shiftwatch run --config``), and publisher
@@ -816,7 +817,10 @@ def startup(bench: Bench, runs: int) -> dict[str, Any]:
 
 
 # ---------------------------------------------------------------- main
-def main_bench(quick: bool) -> int:
+PARTS = ("startup", "ingest", "latency", "memory")
+
+
+def main_bench(quick: bool, parts: tuple[str, ...] = PARTS) -> int:
     rows: list[tuple[str, str, str, str, bool]] = []
     extra: list[str] = []
     bench = Bench()
@@ -831,60 +835,64 @@ def main_bench(quick: bool) -> int:
     t_start = time.monotonic()
     try:
         # 4. start-up first, while the machine is quiet.
-        s = startup(bench, 5)
-        med = statistics.median(s["times"]) if len(s["times"]) == 5 else math.inf
-        bmed = statistics.median(s["base"]) if s["base"] else math.nan
-        rows.append(("start-up to subscribed (median of 5)", f"{med:.3f} s", f"{bmed:.3f} s bare paho",
-                     f"<= {STARTUP_TARGET_S} s", med <= STARTUP_TARGET_S))
-        no_river = s["importtime_ok"] and not s["river_imported"] and not s["river_maps"]
-        rows.append(("river not imported by `run`", "not imported" if no_river else "IMPORTED/unknown",
-                     f"{s['n_imports']} modules", "never", no_river))
-        extra.append("start-up runs (s): " + ", ".join(f"{x:.3f}" for x in s["times"])
-                     + "; bare: " + ", ".join(f"{x:.3f}" for x in s["base"]))
-        print(f"[{time.monotonic() - t_start:5.0f} s] start-up done", file=sys.stderr, flush=True)
+        if "startup" in parts:
+            s = startup(bench, 5)
+            med = statistics.median(s["times"]) if len(s["times"]) == 5 else math.inf
+            bmed = statistics.median(s["base"]) if s["base"] else math.nan
+            rows.append(("start-up to subscribed (median of 5)", f"{med:.3f} s", f"{bmed:.3f} s bare paho",
+                         f"<= {STARTUP_TARGET_S} s", med <= STARTUP_TARGET_S))
+            no_river = s["importtime_ok"] and not s["river_imported"] and not s["river_maps"]
+            rows.append(("river not imported by `run`", "not imported" if no_river else "IMPORTED/unknown",
+                         f"{s['n_imports']} modules", "never", no_river))
+            extra.append("start-up runs (s): " + ", ".join(f"{x:.3f}" for x in s["times"])
+                         + "; bare: " + ", ".join(f"{x:.3f}" for x in s["base"]))
+            print(f"[{time.monotonic() - t_start:5.0f} s] start-up done", file=sys.stderr, flush=True)
 
         # 1. ingest.
-        streams, n = 500, (50_000 if quick else 200_000)
-        bare = ingest_bare(bench, streams, n)
-        print(f"[{time.monotonic() - t_start:5.0f} s] ingest bare: {bare}", file=sys.stderr, flush=True)
-        dmn = ingest_daemon(bench, streams, n)
-        print(f"[{time.monotonic() - t_start:5.0f} s] ingest daemon: {dmn}", file=sys.stderr, flush=True)
-        ratio = dmn["rate"] / bare["rate"] if bare["rate"] > 0 else 0.0
-        complete = dmn["count"] >= n and bare["count"] >= n
-        rows.append((f"ingest, {n:,} single-sample msgs / {streams} streams",
-                     f"{dmn['rate']:,.0f} msg/s ({ratio:.0%})", f"{bare['rate']:,.0f} msg/s bare sub",
-                     f">= {INGEST_TARGET:.0%} of bare", ratio >= INGEST_TARGET and complete))
-        extra.append(f"ingest: publishers {bare['pub_rate']:,.0f} msg/s (bare run), {dmn['pub_rate']:,.0f} msg/s "
-                     f"(daemon run); daemon received {dmn['count']:,.0f}/{n:,}, samples_total "
-                     f"{dmn['samples']:,.0f}, dropped {dmn['dropped']:,.0f}, streams {dmn['streams']:.0f}; "
-                     f"bare received {bare['count']:,.0f}/{n:,}; daemon drained in {dmn['seconds']:.1f} s, "
-                     f"bare in {bare['seconds']:.1f} s; daemon stop {dmn['stop_s']:.1f} s exit {dmn['exit']:.0f}")
+        if "ingest" in parts:
+            streams, n = 500, (50_000 if quick else 200_000)
+            bare = ingest_bare(bench, streams, n)
+            print(f"[{time.monotonic() - t_start:5.0f} s] ingest bare: {bare}", file=sys.stderr, flush=True)
+            dmn = ingest_daemon(bench, streams, n)
+            print(f"[{time.monotonic() - t_start:5.0f} s] ingest daemon: {dmn}", file=sys.stderr, flush=True)
+            ratio = dmn["rate"] / bare["rate"] if bare["rate"] > 0 else 0.0
+            complete = dmn["count"] >= n and bare["count"] >= n
+            rows.append((f"ingest, {n:,} single-sample msgs / {streams} streams",
+                         f"{dmn['rate']:,.0f} msg/s ({ratio:.0%})", f"{bare['rate']:,.0f} msg/s bare sub",
+                         f">= {INGEST_TARGET:.0%} of bare", ratio >= INGEST_TARGET and complete))
+            extra.append(f"ingest: publishers {bare['pub_rate']:,.0f} msg/s (bare run), {dmn['pub_rate']:,.0f} msg/s "
+                         f"(daemon run); daemon received {dmn['count']:,.0f}/{n:,}, samples_total "
+                         f"{dmn['samples']:,.0f}, dropped {dmn['dropped']:,.0f}, streams {dmn['streams']:.0f}; "
+                         f"bare received {bare['count']:,.0f}/{n:,}; daemon drained in {dmn['seconds']:.1f} s, "
+                         f"bare in {bare['seconds']:.1f} s; daemon stop {dmn['stop_s']:.1f} s exit {dmn['exit']:.0f}")
 
         # 2. alert latency.
-        lt = latency(bench, 2 if quick else 3)
-        p50, p99 = pct(lt["lat"], 0.5), pct(lt["lat"], 0.99)
-        b50, b99 = pct(lt["base"], 0.5), pct(lt["base"], 0.99)
-        enough = len(lt["lat"]) >= 50
-        rows.append((f"alert latency, 1,000 msg/s, {len(lt['lat'])} alerts",
-                     f"p50 {p50:.1f} / p99 {p99:.1f} ms", f"p50 {b50:.2f} / p99 {b99:.2f} ms broker",
-                     f"p99 <= {LATENCY_TARGET_MS:.0f} ms, n >= 50", enough and p99 <= LATENCY_TARGET_MS))
-        extra.append(f"latency: paced publisher at {lt['pub_rate']:,.0f} msg/s; records {lt['phases']}; "
-                     f"max {max(lt['lat'], default=math.nan):.1f} ms; detected records not matching a "
-                     f"published sample: {len(lt['unmatched'])}")
-        print(f"[{time.monotonic() - t_start:5.0f} s] latency done", file=sys.stderr, flush=True)
+        if "latency" in parts:
+            lt = latency(bench, 2 if quick else 3)
+            p50, p99 = pct(lt["lat"], 0.5), pct(lt["lat"], 0.99)
+            b50, b99 = pct(lt["base"], 0.5), pct(lt["base"], 0.99)
+            enough = len(lt["lat"]) >= 50
+            rows.append((f"alert latency, 1,000 msg/s, {len(lt['lat'])} alerts",
+                         f"p50 {p50:.1f} / p99 {p99:.1f} ms", f"p50 {b50:.2f} / p99 {b99:.2f} ms broker",
+                         f"p99 <= {LATENCY_TARGET_MS:.0f} ms, n >= 50", enough and p99 <= LATENCY_TARGET_MS))
+            extra.append(f"latency: paced publisher at {lt['pub_rate']:,.0f} msg/s; records {lt['phases']}; "
+                         f"max {max(lt['lat'], default=math.nan):.1f} ms; detected records not matching a "
+                         f"published sample: {len(lt['unmatched'])}")
+            print(f"[{time.monotonic() - t_start:5.0f} s] latency done", file=sys.stderr, flush=True)
 
         # 3. memory.
-        batch, batches = (260, 1) if quick else (650, 2)
-        mm = memory(bench, 10_000, batch, batches)
-        live = mm["streams"] >= 10_000 and mm["past_warmup"] >= 10_000
-        rows.append((f"RSS, 10,000 streams x {batch * batches} samples", f"{mm['rss_mb']:.1f} MB",
-                     f"{mm['idle_mb']:.1f} MB idle", f"<= {MEMORY_TARGET_MB:.0f} MB",
-                     live and mm["rss_mb"] <= MEMORY_TARGET_MB))
-        extra.append(f"memory: streams {mm['streams']:.0f}, past warm-up {mm['past_warmup']:.0f}, "
-                     f"messages {mm['received']:,.0f}/{mm['expected']:,}, samples {mm['samples']:,.0f}, "
-                     f"dropped {mm['dropped']:,.0f}; peak RSS {mm['hwm_mb']:.1f} MB; "
-                     f"{(mm['rss_mb'] - mm['idle_mb']) * 1024 / 10_000:.1f} kB per stream; fed in "
-                     f"{mm['feed_s']:.0f} s; daemon stop {mm['stop_s']:.1f} s exit {mm['exit']:.0f}")
+        if "memory" in parts:
+            batch, batches = (260, 1) if quick else (650, 2)
+            mm = memory(bench, 10_000, batch, batches)
+            live = mm["streams"] >= 10_000 and mm["past_warmup"] >= 10_000
+            rows.append((f"RSS, 10,000 streams x {batch * batches} samples", f"{mm['rss_mb']:.1f} MB",
+                         f"{mm['idle_mb']:.1f} MB idle", f"<= {MEMORY_TARGET_MB:.0f} MB",
+                         live and mm["rss_mb"] <= MEMORY_TARGET_MB))
+            extra.append(f"memory: streams {mm['streams']:.0f}, past warm-up {mm['past_warmup']:.0f}, "
+                         f"messages {mm['received']:,.0f}/{mm['expected']:,}, samples {mm['samples']:,.0f}, "
+                         f"dropped {mm['dropped']:,.0f}; peak RSS {mm['hwm_mb']:.1f} MB; "
+                         f"{(mm['rss_mb'] - mm['idle_mb']) * 1024 / 10_000:.1f} kB per stream; fed in "
+                         f"{mm['feed_s']:.0f} s; daemon stop {mm['stop_s']:.1f} s exit {mm['exit']:.0f}")
     except BaseException as exc:
         rows.append(("benchmark", f"aborted: {exc!r}"[:60], "", "", False))
     finally:
@@ -913,10 +921,12 @@ def main() -> int:
                               ("--round-s", float, 10.0), ("--stagger", float, 0.1), ("--rounds", int, 2),
                               ("--step", float, 3.0), ("--out", str, "")):
         ap.add_argument(opt, type=typ, default=default, help=argparse.SUPPRESS)
+    ap.add_argument("--part", action="append", choices=PARTS,
+                    help="run only this part (repeatable; default: all four)")
     a = ap.parse_args()
     if a.role:
         return {"pub": role_pub, "sub": role_sub, "status": role_status, "paced": role_paced}[a.role](a)
-    return main_bench(a.quick)
+    return main_bench(a.quick, tuple(a.part or PARTS))
 
 
 if __name__ == "__main__":
