@@ -143,11 +143,13 @@ class _SyncThenAck:
     """
 
     def __init__(self, sync: Callable[[], None], ack: Callable[[list[Message]], None],
-                 log: logging.Logger) -> None:
+                 log: logging.Logger, purge: Callable[[], None] | None = None) -> None:
         self._sync = sync
         self._ack = ack
+        self._purge = purge
         self._log = log
-        self._jobs: deque[tuple[bool, list[Message]]] = deque()
+        self._jobs: deque[tuple[bool, list[Message] | None]] = deque()
+        self._purge_queued = False
         self._cv = threading.Condition()
         self._open = 0  # rounds handed over and not finished
         self._thread: threading.Thread | None = None
@@ -157,12 +159,26 @@ class _SyncThenAck:
 
     def submit(self, sync: bool, msgs: list[Message]) -> None:
         with self._cv:
-            self._jobs.append((sync, msgs))
-            self._open += 1
-            if self._thread is None:
-                self._thread = threading.Thread(target=self._run, name="shiftwatch-outbox-sync", daemon=True)
-                self._thread.start()
-            self._cv.notify_all()
+            self._queue((sync, msgs))
+
+    def purge_soon(self) -> None:
+        """Have the thread delete the files of delivered records (at most one such job queued).
+
+        Called from paho's thread when the broker acknowledges a record: the
+        deletion then never holds up the reading of the next message.
+        """
+        with self._cv:
+            if not self._purge_queued:
+                self._purge_queued = True
+                self._queue((False, None))
+
+    def _queue(self, job: tuple[bool, list[Message] | None]) -> None:
+        self._jobs.append(job)
+        self._open += 1
+        if self._thread is None:
+            self._thread = threading.Thread(target=self._run, name="shiftwatch-outbox-sync", daemon=True)
+            self._thread.start()
+        self._cv.notify_all()
 
     def wait_idle(self, timeout: float) -> bool:
         """Wait until every round handed over is done; False on timeout."""
@@ -174,10 +190,16 @@ class _SyncThenAck:
             with self._cv:
                 self._cv.wait_for(lambda: bool(self._jobs))
                 sync, msgs = self._jobs.popleft()
+                if msgs is None:
+                    self._purge_queued = False
             try:
-                if sync:
-                    self._sync()
-                self._ack(msgs)
+                if msgs is None:
+                    if self._purge is not None:
+                        self._purge()
+                else:
+                    if sync:
+                        self._sync()
+                    self._ack(msgs)
             except Exception:  # this thread must never die
                 self._log.exception("error while writing the outbox or acknowledging messages")
             with self._cv:
@@ -213,7 +235,7 @@ class Daemon:
         state_dir = Path(cfg.state.dir)
         self.store = StateStore(state_dir / "snapshots", logger=self.log)
         # The journal of samples processed since the last snapshot (see shiftwatch.journal).
-        self.journal = Journal(state_dir / "snapshots", logger=self.log) if cfg.state.journal else None
+        self.journal = Journal(state_dir / "snapshots", logger=self.log, background=True) if cfg.state.journal else None
         self.outbox = Outbox(state_dir / "outbox", max_items=cfg.alerts.outbox_max, logger=self.log)
         self._levels_sent: dict[str, tuple[str, float | None, float | None]] = {}
         self._lock = threading.Lock()
@@ -228,7 +250,7 @@ class Daemon:
         self.records_published = 0
         self._last_trim = 0.0
         self._busy = False
-        self._acker = _SyncThenAck(self._sync_outbox, self._ack, self.log)
+        self._acker = _SyncThenAck(self._sync_outbox, self._ack, self.log, purge=self._purge_outbox)
         # Messages per round: the broker sends at most receive_maximum unacknowledged
         # ones (MQTT 5), so a larger round would never fill.
         self._round_max = DRAIN if cfg.broker.mqtt_version != "5" else min(DRAIN, cfg.broker.receive_maximum)
@@ -474,6 +496,7 @@ class Daemon:
             time.sleep(0.02)
         if self.link is not None:
             self.link.stop()
+        self._purge_outbox()  # the files of the records delivered last
         if self.server is not None:
             self.server.close()
         if len(self.outbox):
@@ -552,6 +575,12 @@ class Daemon:
     def _sync_outbox(self) -> None:
         try:
             self.outbox.sync()
+        except OSError as exc:
+            self._outbox_failed(exc, time.time())
+
+    def _purge_outbox(self) -> None:
+        try:
+            self.outbox.purge()
         except OSError as exc:
             self._outbox_failed(exc, time.time())
 
@@ -634,10 +663,13 @@ class Daemon:
         d["summary"] = alert_summary(rec, label)
         payload = json.dumps(d).encode()
         topic = f"{self.prefix}/alerts/{rec.stream}"
-        # Forced to disk at the end of the round, before the round's messages
-        # are acknowledged: the publication need not wait for the disk.  When
-        # the disk refuses it, the record is still published (paho keeps it in
-        # memory until the broker acknowledges it).
+        # Handed to paho first, then written to the outbox, which is forced to
+        # disk at the end of the round, before the round's messages are
+        # acknowledged: the publication waits for no disk (a crash before the
+        # write leaves the messages unacknowledged, so the record is made and
+        # sent again).  When the disk refuses it, the record is still published
+        # (paho keeps it in memory until the broker acknowledges it).
+        mid = self._send(topic, payload, qos=self.cfg.alerts.qos, retain=False)
         key: str | None = None
         try:
             key = self.outbox.add(topic, payload, qos=self.cfg.alerts.qos, sync=False).key
@@ -645,7 +677,8 @@ class Daemon:
                 self.metrics.outbox_failures.inc()
         except OSError as exc:
             self._outbox_failed(exc, time.time())
-        self._publish(topic, payload, qos=self.cfg.alerts.qos, retain=False, key=key)
+        if mid is not None:
+            self._track(mid, key)
         self.records_published += 1
         self.metrics.alert_delay.observe(max(0.0, time.time() - arrived))
         if label is None:
@@ -671,19 +704,33 @@ class Daemon:
         self._publish(f"{self.prefix}/levels/{name}", json.dumps(body).encode(), qos=1, retain=True)
 
     def _publish(self, topic: str, payload: bytes, *, qos: int, retain: bool, key: str | None = None) -> None:
-        if self.link is None:  # not started: records stay in the outbox for the next start
-            return
-        mid = self.link.publish(topic, payload, qos=qos, retain=retain)
+        mid = self._send(topic, payload, qos=qos, retain=retain)
+        if mid is not None:
+            self._track(mid, key)
+
+    def _send(self, topic: str, payload: bytes, *, qos: int, retain: bool) -> int | None:
+        """Hand a publication to paho; its mid, or None when not started (records
+        then stay in the outbox for the next start)."""
+        if self.link is None:
+            return None
+        return self.link.publish(topic, payload, qos=qos, retain=retain)
+
+    def _track(self, mid: int, key: str | None) -> None:
+        """Remember which outbox record (if any) publication ``mid`` carries, so the
+        broker's acknowledgement removes it, also one that came in already."""
         with self._lock:
             if mid in self._early_acks:
                 del self._early_acks[mid]
                 if key is not None:
-                    try:
-                        self.outbox.remove(key)
-                    except OSError as exc:  # as in _published: counted, never the stream's batch
-                        self._outbox_failed(exc, time.time())
+                    self._delivered(key)
             else:
                 self._mid_key[mid] = key
+
+    def _delivered(self, key: str) -> None:
+        """The broker has the record: out of the outbox now, its file deleted by the
+        outbox thread (neither paho's thread nor the main loop waits for the disk)."""
+        self.outbox.remove(key, defer=True)
+        self._acker.purge_soon()
 
     # ------------------------------------------------ callbacks (paho thread)
     def _published(self, mid: int) -> None:
@@ -691,10 +738,7 @@ class Daemon:
             if mid in self._mid_key:
                 key = self._mid_key.pop(mid)
                 if key is not None:
-                    try:
-                        self.outbox.remove(key)
-                    except OSError as exc:
-                        self._outbox_failed(exc, time.time())
+                    self._delivered(key)
             else:
                 self._early_acks[mid] = None
                 while len(self._early_acks) > 1000:

@@ -36,6 +36,7 @@ import json
 import logging
 import os
 import struct
+import threading
 import time
 import zlib
 from collections.abc import Iterable, Sequence
@@ -113,6 +114,8 @@ class Journal:
     ----------
     directory : where ``journal.bin`` lives (created if missing).
     sync_every : most seconds between fsyncs of appended rounds.
+    background : do those fsyncs in a thread of their own (the daemon does, so
+        that the disk never holds up its main loop); :meth:`close` waits for it.
     max_bytes : the journal stops growing at this size (when snapshots keep
         failing); :meth:`append` then raises ``OSError`` until the next
         :meth:`restart`.
@@ -135,7 +138,7 @@ class Journal:
     """
 
     def __init__(self, directory: str | Path, *, sync_every: float = 1.0, max_bytes: int = 256 << 20,
-                 logger: logging.Logger | None = None) -> None:
+                 logger: logging.Logger | None = None, background: bool = False) -> None:
         self.directory = Path(directory)
         self.path = self.directory / JOURNAL_NAME
         self.sync_every = sync_every
@@ -145,6 +148,8 @@ class Journal:
         self._size = 0
         self._last_sync = 0.0
         self._dirty = False
+        self.background = background
+        self._bg: threading.Thread | None = None
 
     # ------------------------------------------------------------ opening
     def open(self, token: str) -> list[list[JournalGroup]]:
@@ -278,8 +283,36 @@ class Journal:
             return
         now = time.monotonic()
         if now - self._last_sync >= self.sync_every:
-            self.sync()
+            if self.background:
+                self._sync_in_background()
+            else:
+                self.sync()
             self._last_sync = now
+
+    def _sync_in_background(self) -> None:
+        """Force the journal to disk from another thread, through a duplicate of its
+        descriptor (so a journal closed meanwhile is never a problem): the disk can
+        take tens of milliseconds, which the caller's next alert must not wait for.
+        While one such sync runs, the next waits for the following due time."""
+        if self._fd is None or (self._bg is not None and self._bg.is_alive()):
+            return
+        try:
+            fd = os.dup(self._fd)
+        except OSError as exc:
+            self._log.warning("journal %s could not be forced to disk: %s", self.path, exc)
+            return
+        self._dirty = False
+
+        def run() -> None:
+            try:
+                os.fdatasync(fd)
+            except OSError as exc:
+                self._log.warning("journal %s could not be forced to disk: %s", self.path, exc)
+            finally:
+                os.close(fd)
+
+        self._bg = threading.Thread(target=run, name="shiftwatch-journal-sync", daemon=True)
+        self._bg.start()
 
     def sync(self) -> None:
         """Force what was appended to disk (errors are logged: the data is still in the page cache)."""
@@ -292,6 +325,9 @@ class Journal:
 
     def close(self) -> None:
         """Force what was appended to disk, then close."""
+        if self._bg is not None:
+            self._bg.join()
+            self._bg = None
         if self._fd is not None:
             self.sync()
             fd, self._fd = self._fd, None

@@ -45,6 +45,67 @@ from shiftwatch.config import BrokerConfig
 _PUBACK_HEAD = (paho.PUBACK << 24) | (2 << 16)
 
 
+class _ReadBuffer:
+    """A connected socket whose reads come from one large ``recv`` at a time.
+
+    paho reads a packet in three or more ``recv`` calls (the command byte,
+    each byte of the remaining length, then the rest), so a stream of small
+    messages costs several system calls per message in paho's thread, which
+    shares the interpreter lock with the engines.  Here one ``recv`` of up to
+    :attr:`CHUNK` bytes fills a buffer that paho's small reads are then served
+    from.  ``pending()`` counts the buffered bytes (plus those of a TLS
+    socket's own buffer), which is how paho 2 knows to read again without
+    waiting in ``select``; with data buffered, ``recv`` never touches the
+    socket, and with none it raises what the socket raises (no data yet, a
+    closed connection's empty read), so paho's handling stays its own.
+    Everything else goes to the socket itself.
+    """
+
+    __slots__ = ("_sock", "_buf", "_pos")
+    CHUNK = 65536
+
+    def __init__(self, sock: Any) -> None:
+        self._sock = sock
+        self._buf = b""
+        self._pos = 0
+
+    def recv(self, n: int) -> bytes:
+        buf, pos = self._buf, self._pos
+        if pos >= len(buf):
+            buf = self._sock.recv(self.CHUNK)
+            if not buf:
+                return buf
+            self._buf, pos = buf, 0
+        end = min(pos + n, len(buf))
+        self._pos = end
+        return buf[pos:end]
+
+    def pending(self) -> int:
+        inner = getattr(self._sock, "pending", None)
+        return len(self._buf) - self._pos + (inner() if inner is not None else 0)
+
+    def fileno(self) -> int:
+        return int(self._sock.fileno())
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._sock, name)
+
+
+class _Client(paho.Client):
+    """paho's client, reading its socket through a :class:`_ReadBuffer`.
+
+    ``_create_socket`` is paho 2's one place where a connection's socket is
+    made (TCP, then TLS); a paho without it, or a websocket transport, reads
+    as paho always does.
+    """
+
+    def _create_socket(self) -> Any:
+        sock = super()._create_socket()
+        if getattr(self, "_transport", "tcp") == "websockets":
+            return sock
+        return _ReadBuffer(sock)
+
+
 class BrokerError(RuntimeError):
     """A broker problem the operator must fix (bad URL, unreadable password file)."""
 
@@ -191,6 +252,12 @@ def parse_url(url: str) -> tuple[str, int, bool]:
     return parts.hostname, parts.port or (8883 if tls else 1883), tls
 
 
+_CLOSED_EARLY = "the connection was closed before the broker accepted it: "
+#: Reasons of a connection closed with no word from the broker.
+_UNEXPLAINED = ("EOF occurred in violation of protocol", "Connection reset by peer",
+                "UNEXPECTED_EOF_WHILE_READING")
+
+
 class _LastError(logging.Handler):
     """Keeps the text of the last error paho logged (for a connection closed before CONNACK)."""
 
@@ -253,7 +320,7 @@ class MqttLink:
         self.url = f"{'mqtts' if tls else 'mqtt'}://{shown_host}:{self.port}"
         v5 = cfg.mqtt_version == "5"
         self._v5 = v5
-        self.client = paho.Client(
+        self.client = _Client(
             callback_api_version=CallbackAPIVersion.VERSION2,
             client_id=cfg.client_id,
             clean_session=None if v5 else False,
@@ -410,7 +477,14 @@ class MqttLink:
             if any(a in why for a in ("certificate required", "alert unknown ca", "bad certificate")):
                 why += (" (the broker wants a client certificate it trusts: "
                         "broker.tls.cert_file, key_file)")
-            self._report_error(f"the connection was closed before the broker accepted it: {why}")
+            text = f"{_CLOSED_EARLY}{why}"
+            if (any(u in why for u in _UNEXPLAINED) and self._last_error is not None
+                    and self._last_error.startswith(_CLOSED_EARLY)):
+                # The broker gave no reason this time (its alert was lost to the reset of
+                # the connection, a race on a loaded machine): the same failure as the
+                # last attempt, whose reason was shown.
+                text = self._last_error
+            self._report_error(text)
         if self._stopping:
             self.log.info("disconnected from broker %s", self.url)
         elif was:

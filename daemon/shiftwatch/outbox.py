@@ -1,10 +1,12 @@
 """The on-disk outbox of alert records, for at-least-once delivery across crashes.
 
-An alert record is added to the outbox (and is on disk) before it is handed
-to the MQTT client, and removed only when the broker has acknowledged it.
-After a crash or a restart every record still in the outbox is sent again, so
-a record may arrive twice but is never lost; records carry a stable ``id``
-for consumers to de-duplicate.
+The daemon hands an alert record to the MQTT client and adds it to the
+outbox at once; the outbox is forced to disk before the messages that
+produced the record are acknowledged (a crash before that means they are
+delivered again and the record is made again).  A record is removed when the
+broker has acknowledged it.  After a crash or a restart every record still
+in the outbox is sent again, so a record may arrive twice but is never lost;
+records carry a stable ``id`` for consumers to de-duplicate.
 
 Layout: one file per record, named by a zero-padded sequence number
 (``00000000000000000042.msg``) so the oldest-first order survives restarts.
@@ -128,8 +130,10 @@ class Outbox:
         self.dropped = 0
         self._log = logger if logger is not None else logging.getLogger(__name__)
         self._lock = threading.Lock()
+        self._add_lock = threading.Lock()
         self._items: dict[str, OutboxItem] = {}  # always in key (= age) order
         self._unsynced: list[str] = []  # written with sync=False, not yet forced to disk
+        self._unlink: list[str] = []  # removed with defer=True, file not yet deleted
         self.on_disk = True
         try:
             self.directory.mkdir(parents=True, exist_ok=True)
@@ -211,30 +215,45 @@ class Outbox:
             raise ValueError("topic must not be empty")
         if qos not in (0, 1, 2):
             raise ValueError(f"qos must be 0, 1 or 2, got {qos!r}")
-        with self._lock:
-            key = f"{self._next:0{_WIDTH}d}"
-            self._next += 1
+        # Adds take turns (so items reach the disk and the list in key order), and the
+        # file is written outside the lock that remove(), called from paho's thread,
+        # takes: that thread never waits for the disk.  An item can only be removed
+        # once add() has returned its key.
+        with self._add_lock:
+            with self._lock:
+                key = f"{self._next:0{_WIDTH}d}"
+                self._next += 1
             item = OutboxItem(key=key, topic=topic, payload=bytes(payload), qos=qos,
                               retain=bool(retain))
-            # Written under the lock so that items reach the disk and the list in key order.
             if self.on_disk:
                 self._write(item, sync=sync)
-            self._items[key] = item
-            self._trim()
+            with self._lock:
+                self._items[key] = item
+                if self.on_disk and not sync:
+                    self._unsynced.append(key)
+                self._trim()
         return item
 
     def sync(self) -> None:
         """Force the records added with ``sync=False`` (and the directory) to disk.
 
-        The lock is held only to take the list: :meth:`remove`, which the
-        daemon calls from paho's network thread, must not wait for the disk.
-        A record removed meanwhile is skipped or its file is gone, both fine.
+        Then deletes the files of records removed with ``defer=True``
+        (:meth:`purge`).  The lock is held only to take the list:
+        :meth:`remove`, which the daemon calls from paho's network thread,
+        must not wait for the disk.  A record removed meanwhile is skipped or
+        its file is gone, both fine.
         """
         if not self.on_disk:
             return
         with self._lock:
             keys, self._unsynced = self._unsynced, []
             keys = [k for k in keys if k in self._items]  # the others were delivered and removed
+        try:
+            self._fsync(keys)
+        finally:
+            self.purge()
+
+    def _fsync(self, keys: list[str]) -> None:
         for key in keys:
             try:
                 fd = os.open(self._path(key), os.O_RDONLY)
@@ -264,8 +283,6 @@ class Outbox:
             raise
         if sync:
             fsync_dir(self.directory)
-        else:
-            self._unsynced.append(item.key)
 
     def _trim(self) -> None:
         while len(self._items) > self.max_items:
@@ -279,24 +296,57 @@ class Outbox:
             except FileNotFoundError:
                 pass
 
-    def remove(self, key: str) -> None:
+    def remove(self, key: str, *, defer: bool = False) -> None:
         """Forget an item the broker has acknowledged; an unknown key is ignored.
 
         The removal is not fsynced: after a power cut an acknowledged record may
-        come back and be sent again, which at-least-once delivery allows.
+        come back and be sent again, which at-least-once delivery allows.  With
+        ``defer=True`` only the list changes at once and the file is deleted by
+        the next :meth:`purge` (or :meth:`sync`): paho's network thread then never
+        waits for the disk, which can take tens of milliseconds while another
+        thread forces it.  A record whose file outlives a crash is sent again.
 
         Raises
         ------
         OSError
-            If the item's file exists but cannot be removed.
+            If the item's file exists but cannot be removed (not with ``defer``).
         """
         with self._lock:
             if self._items.pop(key, None) is None or not self.on_disk:
+                return
+            if defer:
+                self._unlink.append(key)
                 return
             try:
                 os.unlink(self._path(key))
             except FileNotFoundError:
                 pass
+
+    @property
+    def purge_waiting(self) -> bool:
+        """Whether files of records removed with ``defer=True`` are still to be deleted."""
+        return bool(self._unlink)
+
+    def purge(self) -> None:
+        """Delete the files of the records removed with ``defer=True``.
+
+        Raises
+        ------
+        OSError
+            If a file exists but cannot be removed (the others are still deleted).
+        """
+        with self._lock:
+            keys, self._unlink = self._unlink, []
+        failed: OSError | None = None
+        for key in keys:
+            try:
+                os.unlink(self._path(key))
+            except FileNotFoundError:
+                pass
+            except OSError as exc:
+                failed = exc
+        if failed is not None:
+            raise failed
 
     def pending(self) -> list[OutboxItem]:
         """Items not yet acknowledged, oldest first."""

@@ -209,3 +209,34 @@ def test_the_entry_filter_is_kept_and_old_rounds_without_it_still_read(tmp_path:
     old = json.dumps([entry[:3] for entry in json.loads(head)]).encode() + b"\n" + data
     (g,) = _decode_round(old)
     assert g.stream == "line1/fill" and g.topic_filter is None and g.values.shape == (4,)
+
+
+def test_background_syncs_leave_the_caller_and_close_waits_for_them(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # The daemon's journal forces the disk from a thread of its own, so that a
+    # slow disk never holds up the main loop (and an alert); while one sync is
+    # in flight the next due one is skipped, and close() waits for it and
+    # forces the rest itself.
+    import threading
+
+    calls: list[str] = []
+    disk = threading.Event()  # the "disk" answers when the test says so
+    real = os.fdatasync
+
+    def held_fdatasync(fd: int) -> None:
+        if threading.current_thread() is not threading.main_thread():
+            assert disk.wait(30)
+        calls.append(threading.current_thread().name)
+        real(fd)
+
+    monkeypatch.setattr(os, "fdatasync", held_fdatasync)
+    j = Journal(tmp_path, sync_every=0.0, background=True)
+    j.open("snap-1")
+    rounds = [[group("line1/fill", 4, k)] for k in range(20)]
+    for r in rounds:
+        j.append(r)  # every one due for a sync; none waits for the held one
+    assert calls == []
+    disk.set()
+    j.close()
+    assert calls == ["shiftwatch-journal-sync", "MainThread"]
+    assert same(Journal(tmp_path).open("snap-1"), rounds)

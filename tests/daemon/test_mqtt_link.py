@@ -9,12 +9,16 @@ what lets a round hold more than 20 messages.
 
 from __future__ import annotations
 
+import logging
+import socket
 import time
 from collections.abc import Callable
 
+import pytest
+
 from shiftwatch.broker import MosquittoBroker, wait_until
 from shiftwatch.config import BrokerConfig
-from shiftwatch.mqtt import Inbox, Message, MqttLink, PlainClient
+from shiftwatch.mqtt import Inbox, Message, MqttLink, PlainClient, _ReadBuffer
 
 
 
@@ -60,3 +64,73 @@ def test_the_broker_holds_to_the_window_and_bulk_acks_release_it(broker: Mosquit
         assert len(inbox2) == 0
     finally:
         link2.stop()
+
+
+def test_the_read_buffer_serves_small_reads_from_one_large_one() -> None:
+    # paho reads a packet a byte or two at a time; the buffer answers those
+    # reads from one recv, tells paho through pending() that more is there,
+    # and passes the socket's own signals on: no data yet, and end of stream.
+    a, b = socket.socketpair()
+    try:
+        b.setblocking(False)
+        buf = _ReadBuffer(b)
+        with pytest.raises(BlockingIOError):
+            buf.recv(1)
+        a.sendall(b"\x30\x05hello\x30\x02ok")
+        time.sleep(0.05)
+        assert buf.recv(1) == b"\x30" and buf.pending() == 10
+        assert buf.recv(1) == b"\x05"
+        assert buf.recv(5) == b"hello"
+        assert buf.recv(1) == b"\x30" and buf.recv(1) == b"\x02"
+        assert buf.recv(100) == b"ok" and buf.pending() == 0
+        assert buf.fileno() == b.fileno() and buf.getsockname() == b.getsockname()
+        a.close()
+        time.sleep(0.05)
+        assert buf.recv(1) == b""
+    finally:
+        a.close()
+        b.close()
+
+
+def test_the_link_reads_a_long_run_of_small_messages_through_the_buffer(broker: MosquittoBroker) -> None:
+    inbox = Inbox(100_000)
+    link = make_link(broker, inbox, receive_maximum=1000)
+    pub = PlainClient(broker.url, "link-publisher-buffer").start()
+    try:
+        assert isinstance(link.client.socket(), _ReadBuffer)
+        for i in range(5000):
+            pub.publish(f"line/{i % 13}/v", b'{"v": %d}' % i, qos=1)
+        got: list[Message] = []
+        while len(got) < 5000:
+            msgs = inbox.take(1000, 10_000_000, 5.0)
+            assert msgs, f"the flow stalled after {len(got)} messages"
+            got.extend(msgs)
+            link.ack_all(msgs)
+        assert sorted(int(m.payload[6:-1]) for m in got) == list(range(5000))
+    finally:
+        pub.stop()
+        link.stop()
+
+
+def test_a_close_without_a_reason_after_a_refusal_with_one_is_the_same_failure(
+        caplog: pytest.LogCaptureFixture) -> None:
+    # A broker that refuses a client certificate sends a TLS alert and closes;
+    # on a loaded machine the reset can overtake the alert, and the next
+    # attempt then ends with a bare EOF.  That is the failure already shown
+    # with its reason, not a new one: one information line, no second error.
+    cfg = BrokerConfig(url="mqtt://127.0.0.1:9", client_id="link-eof")
+    log = logging.getLogger("test-link-eof")
+    link = MqttLink(cfg, subscriptions=[], status_topic="sw/status", inbox=Inbox(10),
+                    on_drop=lambda reason: None, on_published=lambda mid: None,
+                    on_connection=lambda up: None, logger=log)
+    reasons = ["[SSL: TLSV1_ALERT_UNKNOWN_CA] tlsv1 alert unknown ca (_ssl.c:2580)",
+               "EOF occurred in violation of protocol (_ssl.c:2427)",
+               "[SSL: TLSV1_ALERT_UNKNOWN_CA] tlsv1 alert unknown ca (_ssl.c:2580)"]
+    with caplog.at_level(logging.INFO, logger="test-link-eof"):
+        for why in reasons:
+            link._paho_error.text = f"failed to receive on socket: {why}"
+            link._handle_disconnect(link.client, None, None, "unspecified error", None)
+    errors = [r for r in caplog.records if r.levelno == logging.ERROR]
+    assert len(errors) == 1 and "alert unknown ca" in errors[0].getMessage()
+    same = [r.getMessage() for r in caplog.records if "failed the same way" in r.getMessage()]
+    assert [m.split("attempt ")[1].split(" ")[0] for m in same] == ["2", "3"]

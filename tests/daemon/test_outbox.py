@@ -241,3 +241,22 @@ def test_records_added_without_sync_are_forced_by_sync(tmp_path: Path) -> None:
     again = Outbox(tmp_path / "ob")
     assert [i.key for i in again.pending()] == [b.key]
     assert again.pending()[0].payload == b"two"
+
+
+def test_a_deferred_removal_deletes_the_file_at_the_next_purge(tmp_path: Path) -> None:
+    # paho's thread removes delivered records with defer=True: the list changes
+    # at once, the file goes with the next purge (or sync), and a record whose
+    # file outlived a crash is sent again, as at-least-once delivery allows.
+    box = Outbox(tmp_path / "ob")
+    a = box.add("sw/alerts/a", b"one")
+    b = box.add("sw/alerts/b", b"two")
+    box.remove(a.key, defer=True)
+    assert [i.key for i in box.pending()] == [b.key] and len(box) == 1
+    assert box.purge_waiting
+    assert sorted(i.key for i in Outbox(tmp_path / "ob").pending()) == [a.key, b.key]  # "crash" now
+    box.purge()
+    assert not box.purge_waiting
+    assert [i.key for i in Outbox(tmp_path / "ob").pending()] == [b.key]
+    box.remove(b.key, defer=True)
+    box.sync()  # sync purges too
+    assert Outbox(tmp_path / "ob").pending() == []

@@ -255,6 +255,25 @@ class Window:
         self._t[n: n + m] = t
         self._n = n + m
 
+    def push(self, x: float, t: float) -> None:
+        """:meth:`extend` by one sample."""
+        n = self._n
+        if n >= self._x.shape[0]:
+            if self.keep < 2:
+                self.extend(np.array([x]), np.array([t]))
+                return
+            shift = n + 1 - self.keep
+            self._x[: n - shift] = self._x[shift:n]
+            self._t[: n - shift] = self._t[shift:n]
+            n -= shift
+        self._x[n] = x
+        self._t[n] = t
+        self._n = n + 1
+
+    def at(self, i: int) -> tuple[float, float]:
+        """The time and value of sample ``i`` (0 is the oldest held)."""
+        return float(self._t[i]), float(self._x[i])
+
     def drop_front(self, k: int) -> None:
         k = min(k, self._n)
         if k:
@@ -337,6 +356,12 @@ class BatchResult:
     accepted: int = 0
     rejected: list[Rejection] = field(default_factory=list)
 
+
+#: Batches of at most this many samples are watched one sample at a time in
+#: plain floats (:meth:`StreamEngine._watch_small`): a live stream brings one or
+#: two samples per round, and a dozen array operations on them cost far more
+#: than the arithmetic.
+SMALL_BATCH = 8
 
 #: The settings of engines built without any (frozen, so one is shared).
 _DEFAULT_SETTINGS = DetectionSettings()
@@ -510,6 +535,21 @@ class StreamEngine:
         self._unfolded += m
         self._window.extend(x, t)
 
+    def _append_one(self, t: float, x: float) -> None:
+        """:meth:`_append` of one sample, in plain floats (the steady state: the
+        sample that ages past the guard is folded in, the new one joins the window)."""
+        fold = self._unfolded + 1 - self.settings.baseline_guard
+        if fold > 1 or (fold == 1 and self._unfolded == 0):  # a guard that changed, or none
+            self._append(np.array([t]), np.array([x]))
+            return
+        if fold == 1:
+            assert self._baseline is not None
+            wt, wx = self._window.at(len(self._window) - self._unfolded)
+            self._sums.add_one(self._baseline, wx, wt)
+            self._unfolded -= 1
+        self._unfolded += 1
+        self._window.push(x, t)
+
     def _warm(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
         s = self.settings
         need = s.warmup_samples - len(self._window)
@@ -626,6 +666,10 @@ class StreamEngine:
         return t[kept], x[kept], spikes, n_in, osign[kept]
 
     def _watch(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
+        if t.shape[0] <= SMALL_BATCH and self._pending is None:
+            used = self._watch_small(t, x, result)
+            if used:
+                return used
         b = self._baseline
         test = self._test
         assert b is not None and test is not None
@@ -666,6 +710,44 @@ class StreamEngine:
         self._watch_kept += trip + 1
         self._open_event(t_trip, result)
         return int(np.searchsorted(t, t_trip, side="right"))
+
+    def _watch_small(self, t: FloatArray, x: FloatArray, result: BatchResult) -> int:
+        """:meth:`_watch` for a few samples, one at a time in plain floats.
+
+        The same arithmetic as the array path, for the common case only: no
+        sample held for the spike check and none beyond ``spike_sigma``.  It
+        stops before the first outlier (the array path takes it on), after a
+        trip and after a refinement of the baseline, and returns how many
+        samples it consumed.
+        """
+        b = self._baseline
+        test = self._test
+        assert b is not None and test is not None
+        span = self.settings.spike_sigma * b.sigma
+        hi, lo = b.level + span, b.level - span
+        level, phi, clip = b.level, b.phi, b.clip
+        inv = 1.0 / b.innovation_sigma
+        used = 0
+        for tv, xv in zip(t.tolist(), x.tolist()):
+            if xv > hi or xv < lo:
+                break
+            r = xv - level
+            z = (r - phi * self._prev_r if phi != 0.0 else r) * inv
+            z = -clip if z < -clip else (clip if z > clip else z)
+            tripped = test.update_one(z)
+            self._prev_out = 0
+            self._prev_r = r
+            self._append_one(tv, xv)
+            used += 1
+            if tripped:
+                self._watch_kept += 1
+                self._open_event(tv, result)
+                break
+            refine = self._watch_kept + 1 >= self._next_refine
+            self._count_watched(1)
+            if refine:
+                break
+        return used
 
     def _count_watched(self, m: int) -> None:
         self._watch_kept += m

@@ -304,7 +304,7 @@ class MultiCusumTest(SequentialTest):
         h2 = bank.h2
         start = 0
         if n <= SMALL and m > 1:
-            return self._update_small(x)
+            return self._update_small(x.tolist())
         while start < n:
             stop = min(n, start + BLOCK)
             blk = x[start:stop]
@@ -343,7 +343,13 @@ class MultiCusumTest(SequentialTest):
             start = stop
         return -1
 
-    def _update_small(self, x: FloatArray) -> int:
+    def update_one(self, z: float) -> bool:
+        """One residual: the plain-Python recursion of :meth:`update` for a few samples."""
+        if self._bank.m > 1:
+            return self._update_small([z]) == 0
+        return self.update(np.array([z])) == 0
+
+    def _update_small(self, x: list[float]) -> int:
         """The recursion sample by sample in plain Python: for the few samples a
         live stream brings per round, cheaper than a dozen array operations."""
         bank = self._bank
@@ -351,7 +357,7 @@ class MultiCusumTest(SequentialTest):
         ks = bank.ks
         hs = bank.hs
         c = self._c.tolist()
-        for j, z in enumerate(x.tolist()):
+        for j, z in enumerate(x):
             tripped = False
             for i in range(m):
                 up = c[i] + z - ks[i]

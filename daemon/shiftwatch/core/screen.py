@@ -8,6 +8,7 @@ counter and the replay command prints them.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Any, Sequence
 
@@ -33,6 +34,21 @@ REASONS: dict[str, str] = {
 #: larger (finite) values overflow inside the baseline and the step fit; no
 #: reading of a production line comes near it.
 MAX_ABS_VALUE = 1e150
+
+
+#: Batches of at most this many float64 samples are checked in plain floats first.
+SMALL_BATCH = 8
+_F64 = np.dtype(np.float64)
+
+
+def _read_only_arange(n: int) -> NDArray[np.intp]:
+    a = np.arange(n)
+    a.flags.writeable = False
+    return a
+
+
+#: ``kept`` of a small batch that passes every check (shared, so read-only).
+_ARANGE = tuple(_read_only_arange(n) for n in range(SMALL_BATCH + 1))
 
 
 @dataclass(frozen=True)
@@ -123,6 +139,12 @@ def screen_samples(
     >>> s.times.tolist(), s.rejected
     ([100.0, 102.0], [(1, 'time_ahead')])
     """
+    if (type(times) is np.ndarray and type(values) is np.ndarray and times.dtype == _F64
+            and values.dtype == _F64 and times.ndim == 1 and 0 < times.shape[0] <= SMALL_BATCH
+            and times.shape == values.shape
+            and _small_batch_clean(times.tolist(), values.tolist(), last_time, arrived, max_ahead,
+                                   max_behind)):
+        return Screened(times=times, values=values, kept=_ARANGE[times.shape[0]], rejected=[])
     t, bad_t = coerce_values(times)
     v, bad_v = coerce_values(values)
     n = t.shape[0]
@@ -179,6 +201,36 @@ def screen_samples(
     rej_idx = np.flatnonzero(~keep)
     rejected = [(int(i), codes[reason[i]]) for i in rej_idx]
     return Screened(times=t[kept], values=v[kept], kept=kept, rejected=rejected)
+
+
+def _small_batch_clean(ts: list[float], vs: list[float], last_time: float, arrived: Any,
+                       max_ahead: float | None, max_behind: float | None) -> bool:
+    """Whether a few samples pass every check, tested in plain floats: the fast
+    path of :func:`screen_samples` without its array operations.  False sends the
+    batch down the full path (which also reports what is wrong)."""
+    prev = last_time
+    for t, v in zip(ts, vs):
+        if not (t > prev and abs(v) <= MAX_ABS_VALUE):
+            return False
+        prev = t
+    if not math.isfinite(prev):
+        return False
+    if arrived is None or (max_ahead is None and max_behind is None):
+        return True
+    arr = np.asarray(arrived, dtype=np.float64)
+    if arr.ndim == 0:
+        arrivals = [float(arr)] * len(ts)
+    elif arr.shape == (len(ts),):
+        arrivals = arr.tolist()
+    else:
+        return False
+    for a, t in zip(arrivals, ts):
+        lag = a - t
+        if max_ahead is not None and not lag >= -max_ahead:
+            return False
+        if max_behind is not None and not lag <= max_behind:
+            return False
+    return True
 
 
 def _within(lag: NDArray[np.float64], max_ahead: float | None, max_behind: float | None) -> bool:

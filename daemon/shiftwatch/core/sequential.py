@@ -65,6 +65,15 @@ class SequentialTest(ABC):
         and inf out).
         """
 
+    def update_one(self, z: float) -> bool:
+        """Feed one standardised residual; True when the test trips on it.
+
+        The same as :meth:`update` on a one-element array.  The engine calls
+        it for the one or two samples a live stream brings per round; a test
+        whose recursion is cheaper in plain floats overrides it.
+        """
+        return self.update(np.array([z])) == 0
+
     @abstractmethod
     def reset(self) -> None:
         """Forget all accumulated evidence (keeps the design parameters)."""
