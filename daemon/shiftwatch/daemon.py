@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import gc
 import json
 import logging
 import secrets
@@ -366,6 +367,7 @@ class Daemon:
     def start(self) -> None:
         """Everything up to the point where messages flow: state, metrics, broker, outbox."""
         self.restore()
+        settle_heap()
         mtls = self.cfg.metrics.tls
         try:
             self.server = self.metrics.serve(
@@ -430,6 +432,7 @@ class Daemon:
                 next_wd = now + wd / 2
             if now >= next_snap:
                 self.snapshot()
+                settle_heap()
                 next_snap = now + self.cfg.state.snapshot_every
             if self._reload.is_set():
                 self._reload.clear()
@@ -839,6 +842,23 @@ class Daemon:
 
 
 @functools.lru_cache(maxsize=1)
+def settle_heap() -> None:
+    """Collect cyclic garbage, then exempt every object alive now from later collections.
+
+    The engines' state (thousands of objects per thousand streams) lives as
+    long as the daemon, and each full collection of the cyclic garbage
+    collector would walk all of it: tens of milliseconds with 10,000
+    streams, in the middle of a round, in front of an alert.  ``gc.freeze``
+    moves what is alive to a generation the collector leaves alone; objects
+    are still freed by reference counting when the daemon drops them, and
+    nothing the engines hold forms cycles.  Called after start-up and after
+    each snapshot, when a pause costs least, so streams added later are
+    settled too.
+    """
+    gc.collect()
+    gc.freeze()
+
+
 def _malloc_trim() -> Any:
     try:
         import ctypes

@@ -392,3 +392,30 @@ def test_spike_pairs_and_steps_give_the_same_records_in_any_batches(test: str) -
         for a, b in zip(np.r_[0, cuts], np.r_[cuts, n]):
             got += [r.to_dict() for r in pieces.process(t[a:b], x[a:b]).records]
         assert got == whole
+
+
+def test_engines_form_no_reference_cycles() -> None:
+    # The daemon exempts long-lived objects from the cyclic garbage collector
+    # (gc.freeze) and relies on reference counting to free a dropped engine:
+    # an engine through warm-up, watching, an event and its decision must
+    # leave no cycle behind when it is dropped.
+    import gc
+
+    t = T0 + np.arange(1300.0)
+    x = gaussian(1300, 10.0, 1.0, 9)
+    x[800:] += 2.0
+    gc.collect()
+    was = gc.isenabled()
+    gc.disable()
+    try:
+        engines = [StreamEngine(f"s{i}") for i in range(20)]
+        for e in engines:
+            for a in range(0, 1300, 7):
+                e.process(t[a:a + 7], x[a:a + 7], t[a:a + 7])
+            e.get_state()
+        assert any(e.records_total["confirmed"] for e in engines)
+        del engines, e
+        assert gc.collect() == 0
+    finally:
+        if was:
+            gc.enable()
