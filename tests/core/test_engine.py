@@ -419,3 +419,28 @@ def test_engines_form_no_reference_cycles() -> None:
     finally:
         if was:
             gc.enable()
+
+
+def test_a_detection_settled_by_the_next_sample_says_so_in_as_of() -> None:
+    # The first sample of a large step lies beyond spike_sigma: it is kept
+    # only because the next one deviates the same way (a lone spike is
+    # held, then dropped).  When the test trips on it, the detection was
+    # complete only once that next sample came in, and the detected record's
+    # as_of says so; detected_at still names the first sample of the step.
+    t = T0 + np.arange(900.0)
+    x = 10.0 + np.random.default_rng(12).standard_normal(900)
+    x[590:600] += 2.0  # a drift inside spike_sigma charges the test...
+    x[600:] += 12.0  # ...and the first sample of the jump, an outlier, trips it
+    for batch in (1, 7, 900):
+        eng = StreamEngine("s")
+        recs, _ = run(eng, t, x, batch=batch)
+        det = [r for r in recs if r.phase == "detected"]
+        assert len(det) == 1
+        assert det[0].detected_at == t[600]
+        assert det[0].as_of == t[601]
+    # A step small enough to stay inside spike_sigma trips on a sample that
+    # settles itself.
+    y = gaussian(900, 10.0, 1.0, 12)
+    y[600:] += 2.0
+    det = [r for r in run(StreamEngine("s"), t, y, batch=1)[0] if r.phase == "detected"]
+    assert det and det[0].as_of == det[0].detected_at

@@ -611,7 +611,8 @@ class StreamEngine:
     # ----------------------------------------------------------- watching
     def _split_spikes(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], center: float,
                       sigma: float, limit: int
-                      ) -> tuple[FloatArray, FloatArray, list[Rejection], int, NDArray[np.int8] | None]:
+                      ) -> tuple[FloatArray, FloatArray, list[Rejection], int, NDArray[np.int8] | None,
+                                 FloatArray | None]:
         """Drop lone spikes from a segment and keep at most ``limit`` samples.
 
         A sample further than ``spike_sigma`` from ``center`` is a lone spike
@@ -625,7 +626,10 @@ class StreamEngine:
         outlier (0 if it was not; None when no sample was an outlier).  The
         caller records that of the last sample it consumes, so the next
         sample is judged with its left neighbour however the stream was cut
-        into batches.  Counting kept samples, not input samples, makes the engine give
+        into batches.  Last, for each kept sample, the time of the sample that
+        settled its keeping: its own, or for an outlier kept because the next
+        sample deviated the same way, that next one's (None when no sample
+        was an outlier).  Counting kept samples, not input samples, makes the engine give
         the same result with the spikes present or taken out; stopping at a
         fixed count of kept samples makes it independent of batching.
         """
@@ -641,12 +645,17 @@ class StreamEngine:
         if not ((x > center + span).any() or (x < center - span).any()):
             # Fast path: no outlier at all.
             if x.shape[0] >= limit:
-                return t[:limit], x[:limit], [], limit - int(held_before), None
-            return t, x, [], n_in, None
+                return t[:limit], x[:limit], [], limit - int(held_before), None, None
+            return t, x, [], n_in, None, None
         pos = np.arange(-int(held_before), n_in, dtype=np.intp)
         dev = (x - center) / sigma
         lone, out_last = lone_outliers(dev, s.spike_sigma, prev_sign=self._prev_out)
         osign = (np.sign(dev) * (np.abs(dev) > s.spike_sigma)).astype(np.int8)
+        # An outlier whose predecessor did not deviate the same way was kept on
+        # the word of its successor: it was settled when that one came in.
+        before = np.concatenate((np.array([self._prev_out], dtype=np.int8), osign[:-1]))
+        after = np.minimum(np.arange(1, t.shape[0] + 1), t.shape[0] - 1)
+        settled = np.where((osign != 0) & (before != osign), t[after], t)
         keep = ~lone
         held = False
         if out_last:
@@ -659,11 +668,11 @@ class StreamEngine:
             last = int(kept[limit - 1])
             kept = kept[:limit]
             spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in np.flatnonzero(lone[:last])]
-            return t[kept], x[kept], spikes, int(pos[last]) + 1, osign[kept]
+            return t[kept], x[kept], spikes, int(pos[last]) + 1, osign[kept], settled[kept]
         if held:
             self._pending = (float(t[-1]), float(x[-1]))
         spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in np.flatnonzero(lone)]
-        return t[kept], x[kept], spikes, n_in, osign[kept]
+        return t[kept], x[kept], spikes, n_in, osign[kept], settled[kept]
 
     def _watch(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
         if t.shape[0] <= SMALL_BATCH and self._pending is None:
@@ -677,7 +686,7 @@ class StreamEngine:
         # same sample however the stream is batched.
         # (After an event the count may already be past the refinement point:
         # then one sample is taken and the refinement follows at once.)
-        kt, kx, spikes, used, osign = self._split_spikes(t, x, idx, b.level, b.sigma,
+        kt, kx, spikes, used, osign, settled = self._split_spikes(t, x, idx, b.level, b.sigma,
                                                          max(self._next_refine - self._watch_kept, 1))
         if kt.shape[0] == 0:
             result.rejected.extend(spikes)
@@ -708,7 +717,7 @@ class StreamEngine:
         self._prev_r = float(r[trip])
         self._append(kt[: trip + 1], kx[: trip + 1])
         self._watch_kept += trip + 1
-        self._open_event(t_trip, result)
+        self._open_event(t_trip, result, t_trip if settled is None else float(settled[trip]))
         return int(np.searchsorted(t, t_trip, side="right"))
 
     def _watch_small(self, t: FloatArray, x: FloatArray, result: BatchResult) -> int:
@@ -741,7 +750,7 @@ class StreamEngine:
             used += 1
             if tripped:
                 self._watch_kept += 1
-                self._open_event(tv, result)
+                self._open_event(tv, result, tv)
                 break
             refine = self._watch_kept + 1 >= self._next_refine
             self._count_watched(1)
@@ -780,7 +789,10 @@ class StreamEngine:
             self._design_test()
 
     # ------------------------------------------------------------- events
-    def _open_event(self, detected_at: float, result: BatchResult) -> None:
+    def _open_event(self, detected_at: float, result: BatchResult, as_of: float) -> None:
+        """Fit the step and emit the ``detected`` record.  ``as_of`` is the time of the
+        sample that completed the detection: the tripping sample's, or the next one's
+        when the tripping sample was an outlier kept because that one confirmed it."""
         s = self.settings
         b = self._baseline
         test = self._test
@@ -807,7 +819,7 @@ class StreamEngine:
         )
         self._event = ev
         self._state = EVENT_OPEN
-        result.records.append(self._record(ev, fit, "detected", detected_at))
+        result.records.append(self._record(ev, fit, "detected", as_of))
 
     def _fit(self, b: Baseline) -> StepFit:
         """Fit the step over the event's window, reusing the fitter's running sums."""
@@ -831,7 +843,7 @@ class StreamEngine:
         # however the stream is batched.  The target was set at the trip:
         # enough samples for the new level to be known well, and never only
         # the samples that tripped the test.
-        kt, kx, spikes, used, osign = self._split_spikes(t, x, idx, ev.level_after, b.sigma,
+        kt, kx, spikes, used, osign, _ = self._split_spikes(t, x, idx, ev.level_after, b.sigma,
                                                          ev.target_inputs - ev.consumed)
         if kt.shape[0]:
             self._prev_out = 0 if osign is None else int(osign[-1])
