@@ -163,24 +163,31 @@ def _fam_records(names: list[str], stats: list[StreamStats]) -> Metric:
     return f
 
 
-def _fam_level(names: list[str], stats: list[StreamStats]) -> Metric:
-    f = GaugeMetricFamily(
-        "shiftwatch_level", "In-control level of the stream, in reading units "
-        "(absent until the first warm-up ends).", labels=["stream"])
-    for name, st in zip(names, stats):
-        if (v := _known(st.level)) is not None:
-            f.add_metric([name], v)
-    return f
+def _known_gauge(metric: str, text: str, field: str) -> Callable[[list[str], list[StreamStats]], Metric]:
+    """A per-stream gauge of one StreamStats field, absent for a stream where it is unknown."""
+
+    def family(names: list[str], stats: list[StreamStats]) -> Metric:
+        f = GaugeMetricFamily(metric, text, labels=["stream"])
+        for name, st in zip(names, stats):
+            if (v := _known(getattr(st, field))) is not None:
+                f.add_metric([name], v)
+        return f
+
+    return family
 
 
-def _fam_sigma(names: list[str], stats: list[StreamStats]) -> Metric:
-    f = GaugeMetricFamily(
-        "shiftwatch_sigma", "Noise standard deviation of the stream, in reading units "
-        "(absent until the first warm-up ends).", labels=["stream"])
-    for name, st in zip(names, stats):
-        if (v := _known(st.sigma)) is not None:
-            f.add_metric([name], v)
-    return f
+_fam_level = _known_gauge(
+    "shiftwatch_level", "In-control level of the stream, in reading units "
+    "(absent until the first warm-up ends).", "level")
+_fam_sigma = _known_gauge(
+    "shiftwatch_sigma", "Noise standard deviation of the stream, in reading units "
+    "(absent until the first warm-up ends).", "sigma")
+_fam_threshold = _known_gauge(
+    "shiftwatch_test_threshold", "Alarm threshold of the stream's sequential test "
+    "(absent until the test is set up).", "threshold")
+_fam_last_shift = _known_gauge(
+    "shiftwatch_last_shift_timestamp_seconds", "Start time of the last confirmed shift, "
+    "in seconds since the Unix epoch (absent until a shift is confirmed).", "last_shift_at")
 
 
 def _fam_statistic(names: list[str], stats: list[StreamStats]) -> Metric:
@@ -190,26 +197,6 @@ def _fam_statistic(names: list[str], stats: list[StreamStats]) -> Metric:
     for name, st in zip(names, stats):
         if _known(st.threshold) is not None:
             f.add_metric([name], float(st.statistic))
-    return f
-
-
-def _fam_threshold(names: list[str], stats: list[StreamStats]) -> Metric:
-    f = GaugeMetricFamily(
-        "shiftwatch_test_threshold", "Alarm threshold of the stream's sequential test "
-        "(absent until the test is set up).", labels=["stream"])
-    for name, st in zip(names, stats):
-        if (v := _known(st.threshold)) is not None:
-            f.add_metric([name], v)
-    return f
-
-
-def _fam_last_shift(names: list[str], stats: list[StreamStats]) -> Metric:
-    f = GaugeMetricFamily(
-        "shiftwatch_last_shift_timestamp_seconds", "Start time of the last confirmed shift, "
-        "in seconds since the Unix epoch (absent until a shift is confirmed).", labels=["stream"])
-    for name, st in zip(names, stats):
-        if (v := _known(st.last_shift_at)) is not None:
-            f.add_metric([name], v)
     return f
 
 
