@@ -230,8 +230,11 @@ def test_save_failure_leaves_previous_snapshot(tmp_path: Path) -> None:
 
 
 CHILD = r"""
+import os
 import sys
+import time
 import numpy as np
+from shiftwatch import statestore
 from shiftwatch.statestore import StateStore
 
 def make(parity):
@@ -240,12 +243,39 @@ def make(parity):
                       "values": rng.standard_normal(2000).tolist(), "n": i}
             for i in range(40)}
 
+# Where to stop and wait for the kill in the save after the first one:
+# "anywhere" (no stop; the parent kills at an arbitrary moment), "mid-write"
+# (half the snapshot written), "before-rename" (file complete and synced).
+stop = sys.argv[2]
+saves = 0
+
+def wait_for_kill():
+    if saves >= 1:
+        print("stopped", flush=True)
+        time.sleep(60)
+
+if stop == "mid-write":
+    real_lines = statestore._lines
+    def lines(streams, meta):
+        for k, line in enumerate(real_lines(streams, meta)):
+            if k == 20:
+                wait_for_kill()
+            yield line
+    statestore._lines = lines
+elif stop == "before-rename":
+    real_replace = os.replace
+    def replace(src, dst):
+        wait_for_kill()
+        real_replace(src, dst)
+    os.replace = replace
+
 data = [make(0), make(1)]
 store = StateStore(sys.argv[1])
 g = 0
 while True:
     g += 1
     store.save(data[g % 2], {"generation": g})
+    saves += 1
     print(g, flush=True)
 """
 
@@ -257,27 +287,47 @@ def make_expected(parity: int) -> dict[str, Any]:
             for i in range(40)}
 
 
-def test_killed_mid_save_leaves_old_or_new_complete_snapshot(tmp_path: Path) -> None:
-    expected = [make_expected(0), make_expected(1)]
+def kill_saver(directory: Path, stop: str, lines: int) -> int:
+    """Run a process that saves snapshots in a loop, SIGKILL it, return the last generation it reported."""
     env = dict(os.environ, PYTHONPATH=str(DAEMON_ROOT))
-    interrupted = 0
-    trials = 0
-    # Kill the saving process at arbitrary points until several kills have landed
-    # inside a save (a temporary file was left behind).
-    while interrupted < 3 and trials < 40:
-        trials += 1
-        proc = subprocess.Popen([sys.executable, "-c", CHILD, str(tmp_path)],
-                                stdout=subprocess.PIPE, text=True, env=env)
-        assert proc.stdout is not None
-        done = [int(proc.stdout.readline()) for _ in range(1 + trials % 3)]
+    proc = subprocess.Popen([sys.executable, "-c", CHILD, str(directory), stop],
+                            stdout=subprocess.PIPE, text=True, env=env)
+    assert proc.stdout is not None
+    try:
+        done = [int(proc.stdout.readline()) for _ in range(lines)]
+        if stop != "anywhere":
+            assert proc.stdout.readline() == "stopped\n"
+    finally:
         proc.send_signal(signal.SIGKILL)
         proc.wait()
         proc.stdout.close()
-        if any(p.name.endswith(".tmp") for p in tmp_path.iterdir()):
-            interrupted += 1
+    return done[-1]
+
+
+@pytest.mark.parametrize("stop", ["mid-write", "before-rename"])
+def test_killed_inside_save_leaves_previous_snapshot(tmp_path: Path, stop: str) -> None:
+    # The saver is held inside its second save (half written, or written and
+    # synced but not yet renamed) and killed there.
+    expected = [make_expected(0), make_expected(1)]
+    last = kill_saver(tmp_path, stop, 1)
+    assert last == 1
+    assert [p.name for p in tmp_path.iterdir() if p.name.endswith(".tmp")] != []
+    streams, meta = StateStore(tmp_path).load()
+    assert meta["generation"] == 1
+    assert streams == expected[1]
+    assert [p.name for p in tmp_path.iterdir()] == [SNAPSHOT_NAME]  # the leftover was removed
+    assert aside_files(tmp_path) == []  # nothing set aside as corrupt
+
+
+def test_killed_anywhere_leaves_old_or_new_complete_snapshot(tmp_path: Path) -> None:
+    # Kill the saving process at arbitrary moments (mostly inside a save, since it
+    # saves in a loop); every time the store holds one whole snapshot, at least
+    # as new as the last one reported done.
+    expected = [make_expected(0), make_expected(1)]
+    for trial in range(12):
+        last = kill_saver(tmp_path, "anywhere", 1 + trial % 3)
         streams, meta = StateStore(tmp_path).load()
         g = meta["generation"]
-        assert g >= done[-1]
+        assert g >= last
         assert streams == expected[g % 2]
         assert aside_files(tmp_path) == []  # leftovers removed, nothing set aside as corrupt
-    assert interrupted == 3

@@ -153,7 +153,8 @@ def screen_samples(
         arr = np.asarray(arrived, dtype=np.float64)
         if arr.ndim and arr.shape != t.shape:
             raise ValueError(f"arrival times and times differ in length: {arr.shape[0]} != {n}")
-        lag = arr - t
+        with np.errstate(invalid="ignore", over="ignore"):  # inf - inf: such times are rejected below
+            lag = arr - t
     if n and t.shape == v.shape and not bad_t.any() and not bad_v.any():
         # Fast path for the common case: all finite, strictly increasing, within the limits.
         if (t[0] > last_time and bool((np.abs(v) <= MAX_ABS_VALUE).all()) and np.isfinite(t[-1])
