@@ -764,8 +764,11 @@ def memory(bench: Bench, streams: int, batch: int, batches: int) -> dict[str, fl
         m = scrape(port)
         watching = sum(v for k, v in m.items() if k.startswith("shiftwatch_stream_info{")
                        and 'state="warming_up"' not in k)
+        time.sleep(1.0)
+        scraped_rss, _ = rss_kb(d.pid)  # after one full scrape (Prometheus scrapes all the time)
         code, stop_s = bench.stop_proc(d, 120)
         return {"idle_mb": idle_rss / 1024, "rss_mb": rss / 1024, "hwm_mb": hwm / 1024,
+                "scraped_mb": scraped_rss / 1024,
                 "received": m.get("shiftwatch_messages_received_total", 0.0), "expected": n_msgs, "streams": m.get("shiftwatch_streams", 0.0),
                 "past_warmup": watching, "samples": m.get("shiftwatch_samples_total", 0.0),
                 "dropped": m.get("shiftwatch_messages_dropped_total", 0.0), "feed_s": feed_s,
@@ -907,6 +910,7 @@ def main_bench(quick: bool, parts: tuple[str, ...] = PARTS) -> int:
             extra.append(f"memory: streams {mm['streams']:.0f}, past warm-up {mm['past_warmup']:.0f}, "
                          f"messages {mm['received']:,.0f}/{mm['expected']:,}, samples {mm['samples']:,.0f}, "
                          f"dropped {mm['dropped']:,.0f}; peak RSS {mm['hwm_mb']:.1f} MB; "
+                         f"RSS after a full scrape {mm['scraped_mb']:.1f} MB; "
                          f"{(mm['rss_mb'] - mm['idle_mb']) * 1024 / 10_000:.1f} kB per stream; fed in "
                          f"{mm['feed_s']:.0f} s; daemon stop {mm['stop_s']:.1f} s exit {mm['exit']:.0f}")
     except BaseException as exc:

@@ -124,6 +124,26 @@ def test_a_large_step_is_not_taken_for_a_spike() -> None:
     assert not [i for i, r in rejected if r == "spike" and i >= 1000]
 
 
+def test_counts_of_one_stream_never_show_in_another() -> None:
+    # Engines that have counted nothing share one empty counter; the first
+    # count gives the engine its own.
+    quiet, noisy = StreamEngine("quiet"), StreamEngine("noisy")
+    t = T0 + np.arange(300.0)
+    quiet.process(t, gaussian(300, 50.0, 1.0, 3))
+    x = gaussian(300, 50.0, 1.0, 4)
+    x[10] = np.nan
+    noisy.process(t, x)
+    assert noisy.rejected_total == {"nan": 1}
+    assert quiet.rejected_total == {} and quiet.records_total == {}
+    restored = StreamEngine("again")
+    restored.set_state(quiet.get_state())
+    restored.process(t[-1] + 1.0 + np.arange(2.0), np.array([np.nan, 50.0]))
+    assert restored.rejected_total == {"nan": 1}
+    assert quiet.rejected_total == {} and StreamEngine("new").rejected_total == {}
+    with pytest.raises(TypeError):
+        quiet.rejected_total["nan"] += 1  # the shared empty counter refuses to count
+
+
 def test_bad_samples_are_rejected_with_reasons_and_good_ones_kept() -> None:
     n = 1500
     t = list(T0 + np.arange(float(n)))

@@ -195,6 +195,16 @@ def make_test(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: f
     return RiverTest(settings.test)
 
 
+class _NoCounts(Counter[str]):
+    """An empty counter that refuses to count (shared by engines that have counted nothing)."""
+
+    def __setitem__(self, key: str, value: int) -> None:
+        raise TypeError("this shared empty counter is read-only")
+
+
+_NO_COUNTS: Counter[str] = _NoCounts()
+
+
 class Window:
     """The newest samples of one stream: values and times in two small arrays.
 
@@ -216,7 +226,7 @@ class Window:
 
     __slots__ = ("keep", "_x", "_t", "_n")
 
-    def __init__(self, keep: int, slack: int = 32) -> None:
+    def __init__(self, keep: int, slack: int = 8) -> None:
         self.keep = keep
         self._x, self._t = _WindowStore.of(keep + slack).take()
         self._n = 0
@@ -428,8 +438,10 @@ class StreamEngine:
         self._refine_block = 0
         self._last_time = -math.inf
         self.samples_total = 0
-        self.rejected_total: Counter[str] = Counter()
-        self.records_total: Counter[str] = Counter()
+        # Most streams never reject a sample or make a record: they share one
+        # empty, read-only counter until their first count.
+        self.rejected_total: Counter[str] = _NO_COUNTS
+        self.records_total: Counter[str] = _NO_COUNTS
         self.last_shift_at: float | None = None
 
     @property
@@ -502,10 +514,16 @@ class StreamEngine:
         # (a message delivered again, or a late one) is counted only among the
         # rejections, so a redelivery never counts twice.
         self.samples_total += len(scr.kept) + sum(r not in _NOT_NEW for _, r in scr.rejected)
-        for rej in result.rejected:
-            self.rejected_total[rej.reason] += 1
-        for rec in result.records:
-            self.records_total[rec.phase] += 1
+        if result.rejected:
+            if self.rejected_total is _NO_COUNTS:
+                self.rejected_total = Counter()
+            for rej in result.rejected:
+                self.rejected_total[rej.reason] += 1
+        if result.records:
+            if self.records_total is _NO_COUNTS:
+                self.records_total = Counter()
+            for rec in result.records:
+                self.records_total[rec.phase] += 1
         result.rejected.sort()
         return result
 
@@ -982,8 +1000,10 @@ class StreamEngine:
             lt = state["last_time"]
             self._last_time = -math.inf if lt is None else float(lt)
             self.samples_total = int(state["samples_total"])
-            self.rejected_total = Counter({str(k): int(v) for k, v in state["rejected_total"].items()})
-            self.records_total = Counter({str(k): int(v) for k, v in state["records_total"].items()})
+            self.rejected_total = (Counter({str(k): int(v) for k, v in state["rejected_total"].items()})
+                                   or _NO_COUNTS)
+            self.records_total = (Counter({str(k): int(v) for k, v in state["records_total"].items()})
+                                  or _NO_COUNTS)
             ls = state["last_shift_at"]
             self.last_shift_at = None if ls is None else float(ls)
         except (KeyError, TypeError, AttributeError) as exc:
