@@ -507,6 +507,16 @@ def scrape(port: int, names: tuple[str, ...] = ()) -> dict[str, float]:
     return out
 
 
+def dropped_by_reason(m: dict[str, float]) -> str:
+    """The scrape's dropped-message counters as "reason n, ..." (empty when none)."""
+    out = []
+    for key, v in sorted(m.items()):
+        if key.startswith("shiftwatch_messages_dropped_total{") and v:
+            reason = key.split('reason="', 1)[1].split('"', 1)[0]
+            out.append(f"{reason} {v:,.0f}")
+    return ", ".join(out)
+
+
 def processed(port: int) -> float:
     """Samples the engines have processed (the per-stream counters are updated after each stream's batch;
     shiftwatch_messages_received_total moves in steps of up to 2,000 messages before processing)."""
@@ -654,6 +664,7 @@ def ingest_daemon(bench: Bench, streams: int, n: int) -> dict[str, float]:
                 "seconds": (t2 or 0.0) - (t1 or 0.0),
                 "samples": m.get("shiftwatch_samples_total", 0.0),
                 "dropped": m.get("shiftwatch_messages_dropped_total", 0.0),
+                "dropped_by": dropped_by_reason(m),
                 "streams": m.get("shiftwatch_streams", 0.0), "exit": float(code or 0), "stop_s": stop_s}
     finally:
         bench.stop_broker(b)
@@ -878,7 +889,8 @@ def main_bench(quick: bool, parts: tuple[str, ...] = PARTS) -> int:
                          f">= {INGEST_TARGET:.0%} of bare", ratio >= INGEST_TARGET and complete))
             extra.append(f"ingest: publishers {bare['pub_rate']:,.0f} msg/s (bare run), {dmn['pub_rate']:,.0f} msg/s "
                          f"(daemon run); daemon received {dmn['count']:,.0f}/{n:,}, samples_total "
-                         f"{dmn['samples']:,.0f}, dropped {dmn['dropped']:,.0f}, streams {dmn['streams']:.0f}; "
+                         f"{dmn['samples']:,.0f}, dropped {dmn['dropped']:,.0f}"
+                         f"{' (' + dmn['dropped_by'] + ')' if dmn['dropped_by'] else ''}, streams {dmn['streams']:.0f}; "
                          f"bare received {bare['count']:,.0f}/{n:,}; daemon drained in {dmn['seconds']:.1f} s, "
                          f"bare in {bare['seconds']:.1f} s; daemon stop {dmn['stop_s']:.1f} s exit {dmn['exit']:.0f}")
 
