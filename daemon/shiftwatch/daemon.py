@@ -50,8 +50,11 @@ from shiftwatch.statestore import StateStore
 #: with 800 kB ones).  800 kB still holds DRAIN single-sample JSON messages.
 DRAIN = 20000
 ROUND_BYTES = 800_000
-#: Bound of the queue between paho's thread and the main thread.
+#: Bounds of the queue between paho's thread and the main thread: messages,
+#: and payload bytes (20 rounds of ROUND_BYTES).  A full queue holds paho's
+#: thread back, and the broker keeps the rest.
 QUEUE_MAX = 100_000
+QUEUE_BYTES = 64_000_000
 #: A round of at least BUSY_ROUND messages means the daemon is behind; the
 #: next round then lets messages collect for up to GATHER_S seconds while they
 #: come fast (see Inbox.take), until the broker's window of unacknowledged
@@ -227,7 +230,7 @@ class Daemon:
         self.log = logger or logging.getLogger("shiftwatch")
         self.metrics = metrics or Metrics()
         self.env = env
-        self.inbox = Inbox(QUEUE_MAX)
+        self.inbox = Inbox(QUEUE_MAX, QUEUE_BYTES)
         self.engines: dict[str, StreamEngine] = {}
         # The ``topic`` of the config entry each engine was made for: a stream name
         # that stream_name() had to change may match no filter of its entry any more.

@@ -20,6 +20,7 @@ same way is one information line.
 
 from __future__ import annotations
 
+import errno
 import logging
 import os
 import re
@@ -61,15 +62,23 @@ class _ReadBuffer:
     Everything else goes to the socket itself.
     """
 
-    __slots__ = ("_sock", "_buf", "_pos")
+    __slots__ = ("_sock", "_buf", "_pos", "_room")
     CHUNK = 65536
+    #: Longest wait for room in a full inbox before paho's thread gets on with
+    #: its other work (writing, keepalive) and comes back.
+    PAUSE_S = 0.05
 
-    def __init__(self, sock: Any) -> None:
+    def __init__(self, sock: Any, room: Callable[[float], bool] | None = None) -> None:
         self._sock = sock
         self._buf = b""
         self._pos = 0
+        self._room = room
 
     def recv(self, n: int) -> bytes:
+        if self._room is not None and not self._room(self.PAUSE_S):
+            # The inbox is full: read nothing now ("no data yet" to paho, whose
+            # packet parsing resumes where it stopped).
+            raise BlockingIOError(errno.EAGAIN, "inbox full")
         buf, pos = self._buf, self._pos
         if pos >= len(buf):
             buf = self._sock.recv(self.CHUNK)
@@ -81,6 +90,8 @@ class _ReadBuffer:
         return buf[pos:end]
 
     def pending(self) -> int:
+        if self._room is not None and not self._room(0.0):
+            return 0
         inner = getattr(self._sock, "pending", None)
         return len(self._buf) - self._pos + (inner() if inner is not None else 0)
 
@@ -99,11 +110,15 @@ class _Client(paho.Client):
     as paho always does.
     """
 
+    #: Called before each read with the longest wait: True when the reader may
+    #: go on (see :meth:`Inbox.wait_for_room`).
+    room: Callable[[float], bool] | None = None
+
     def _create_socket(self) -> Any:
         sock = super()._create_socket()
         if getattr(self, "_transport", "tcp") == "websockets":
             return sock
-        return _ReadBuffer(sock)
+        return _ReadBuffer(sock, self.room)
 
 
 class BrokerError(RuntimeError):
@@ -129,26 +144,99 @@ class Inbox:
     event only when the consumer waits for it (``_want`` is then the queue
     length it waits for), so a busy consumer costs the producer one
     comparison per message.
+
+    The bound is ``maxsize`` messages or ``max_bytes`` of payload, whichever
+    comes first.  While the inbox is full, :class:`_ReadBuffer` stops reading
+    the socket (see :meth:`wait_for_room`), so the broker keeps what follows
+    queued on its side; paho's thread meanwhile goes on writing
+    acknowledgements and publications.  Mosquitto 2.0 cannot be relied on to
+    hold to the client's Receive Maximum once acknowledgements flow (it
+    refills up to its ``max_queued_messages``), so the inbox, not the broker,
+    bounds the daemon's memory.  :meth:`put` refuses a message only past
+    twice the bound, which the read pause leaves no way to reach.
     """
 
-    def __init__(self, maxsize: int) -> None:
+    def __init__(self, maxsize: int, max_bytes: int = 1 << 62) -> None:
         self.maxsize = maxsize
+        self.max_bytes = max_bytes
         self._q: deque[Message] = deque()
         self._ready = threading.Event()
         self._want = maxsize + 1  # queue length that wakes the consumer; above maxsize: nobody waits
+        # Payload bytes put and taken: each written by one thread only, so no lock.
+        self._bytes_in = 0
+        self._bytes_out = 0
+        self._space = threading.Event()
+        self._blocked = False  # the reader waits for room
+        self._paused = False  # the reader is paused until the inbox is down to half its bound
+        self.closed = False
 
     def __len__(self) -> int:
         return len(self._q)
 
+    @property
+    def nbytes(self) -> int:
+        """Payload bytes held."""
+        return self._bytes_in - self._bytes_out
+
+    def full(self) -> bool:
+        """At or over the bound (messages or payload bytes)."""
+        return len(self._q) >= self.maxsize or self._bytes_in - self._bytes_out >= self.max_bytes
+
     def put(self, m: Message) -> bool:
-        """Add a message; False (nothing added) when the inbox is full."""
+        """Add a message; False (nothing added) when the inbox is closed, or far over its bound."""
         q = self._q
-        if len(q) >= self.maxsize:
+        if self.closed or len(q) >= 2 * self.maxsize or self._bytes_in - self._bytes_out >= 2 * self.max_bytes:
             return False
         q.append(m)
+        self._bytes_in += len(m.payload)
         if len(q) >= self._want:
             self._ready.set()
         return True
+
+    def _low(self) -> bool:
+        """At or under half the bound: a paused reader resumes."""
+        return (2 * len(self._q) <= self.maxsize
+                and 2 * (self._bytes_in - self._bytes_out) <= self.max_bytes)
+
+    def wait_for_room(self, timeout: float) -> bool:
+        """Wait up to ``timeout`` seconds (paho's thread) while the inbox is full;
+        True when the reader may go on, or the inbox is closed.
+
+        Once full, the reader stays paused until the inbox is down to half its
+        bound, so paho's thread reads in bursts between long stretches of
+        processing instead of one message per round alongside it (allocations
+        of the two threads interleaved pin more of the heap afterwards).
+        """
+        if self.closed:
+            return True
+        if not self._paused:
+            if not self.full():
+                return True
+            self._paused = True
+        if self._low():
+            self._paused = False
+            return True
+        if timeout <= 0:
+            return False
+        end = time.monotonic() + timeout
+        try:
+            while True:
+                self._space.clear()
+                self._blocked = True
+                if self.closed or self._low():
+                    self._paused = False
+                    return True
+                left = end - time.monotonic()
+                if left <= 0:
+                    return False
+                self._space.wait(left)
+        finally:
+            self._blocked = False
+
+    def close(self) -> None:
+        """Refuse further messages (stopping), and release a reader waiting for room."""
+        self.closed = True
+        self._space.set()
 
     def _wait_for(self, n: int, timeout: float) -> None:
         """Wait up to ``timeout`` seconds until the queue holds ``n`` messages."""
@@ -194,6 +282,9 @@ class Inbox:
             m = q.popleft()
             out.append(m)
             size += len(m.payload)
+        self._bytes_out += size
+        if self._blocked and self._low():
+            self._space.set()
         return out
 
 
@@ -327,6 +418,7 @@ class MqttLink:
             protocol=MQTTProtocolVersion.MQTTv5 if v5 else MQTTProtocolVersion.MQTTv311,
             manual_ack=True,
         )
+        self.client.room = inbox.wait_for_room
         # paho's own log stays silent; its error lines are only kept, so that a connection the
         # broker closes before accepting it (a TLS alert after the handshake, for example)
         # can be reported with the reason.  Below ERROR nothing is even formatted.
@@ -378,6 +470,7 @@ class MqttLink:
     def stop(self, timeout: float = 5.0) -> None:
         """Publish the retained "offline" status ourselves (a clean exit fires no will), then disconnect."""
         self._stopping = True
+        self._inbox.close()  # from now on paho's thread reads on and hands nothing over
         if self.connected:
             info = self.client.publish(self.status_topic, b"offline", qos=1, retain=True)
             self._own_mids.add(int(info.mid))
@@ -495,8 +588,11 @@ class MqttLink:
     def _handle_message(self, client: paho.Client, userdata: Any, msg: paho.MQTTMessage) -> None:
         try:
             if not self._inbox.put(Message(msg.topic, msg.payload, time.time(), msg.mid, msg.qos)):
-                # Acknowledge it anyway: an unacknowledged message would hold one of
-                # the broker's few in-flight slots and stall the whole flow.
+                if self._inbox.closed:
+                    return  # stopping: not acknowledged, so the broker delivers it again
+                # Far over the bound (reads are paused at the bound, so a defect).
+                # Acknowledge it anyway: an unacknowledged message would hold one
+                # of the broker's in-flight slots and stall the whole flow.
                 self.ack(int(msg.mid), int(msg.qos))
                 self._on_drop("queue_full")
         except Exception as exc:  # a callback must never raise into paho's loop
