@@ -77,11 +77,15 @@ class RateLimitedLog:
         self._last: dict[str, float] = {}
         self._held: dict[str, int] = {}
 
-    def warning(self, key: str, text: str, now: float, *, exc_info: bool = False) -> None:
+    def warning(self, key: str, text: str | Callable[[], str], now: float, *,
+                exc_info: bool = False) -> None:
+        """Log ``text`` (or what the callable returns: built only for a line that is written)."""
         last = self._last.get(key)
         if last is not None and now - last < self.every:
             self._held[key] = self._held.get(key, 0) + 1
             return
+        if callable(text):
+            text = text()
         held = self._held.pop(key, 0)
         if len(self._last) > 1000:  # keep the tables bounded whatever the keys
             self._last.clear()
@@ -447,7 +451,13 @@ class Daemon:
         # Under load (the last round was long) let a round's messages collect
         # first; otherwise take what is there at once, for the alerts' sake.
         gather = GATHER_S if self._busy else 0.0
-        msgs = self.inbox.take(self._round_max, ROUND_BYTES, timeout, gather=gather)
+        limit = self._round_max
+        if len(self.inbox) > limit:
+            # A backlog past the broker's window (Mosquitto sends past it once
+            # acknowledgements flow): larger rounds spread each round's fixed
+            # costs over more messages and give each engine more samples a call.
+            limit = DRAIN
+        msgs = self.inbox.take(limit, ROUND_BYTES, timeout, gather=gather)
         self._busy = len(msgs) >= BUSY_ROUND
         if not msgs:
             self._gauges()
@@ -620,10 +630,11 @@ class Daemon:
     def _decode_problems(self, topic: str, problems: list[DecodeProblem], now: float) -> None:
         for p in problems:
             if p.reason == "no_time":  # the reading is used, with its arrival time
-                self.rlog.warning("decode:no_time", f"message on {_printable(topic)}: {p.message}", now)
+                self.rlog.warning("decode:no_time", lambda p=p: f"message on {_printable(topic)}: {p.message}",
+                                  now)
                 continue
             self._count_drop(p.reason)
-            self.rlog.warning(f"decode:{p.reason}", f"message on {_printable(topic)} "
+            self.rlog.warning(f"decode:{p.reason}", lambda p=p: f"message on {_printable(topic)} "
                               f"set aside ({p.reason}): {p.message}", now)
 
     def engine_for(self, name: str, spec: StreamConfig, unit: str | None) -> StreamEngine | None:
@@ -651,8 +662,8 @@ class Daemon:
         res = eng.process(times, values, arrivals)
         for rej in res.rejected:
             if rej.reason != "spike":  # one key per reason: many streams cannot multiply the lines
-                self.rlog.warning(f"sample:{rej.reason}", f"sample of {_printable(name)} set aside "
-                                  f"({rej.reason}): {SAMPLE_REASONS[rej.reason]}", now)
+                self.rlog.warning(f"sample:{rej.reason}", lambda r=rej.reason: f"sample of {_printable(name)} "
+                                  f"set aside ({r}): {SAMPLE_REASONS[r]}", now)
         for rec in res.records:
             j = int(np.searchsorted(times, rec.as_of))
             self.emit(rec, float(arrivals[min(j, len(arrivals) - 1)]))

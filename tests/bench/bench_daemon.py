@@ -517,6 +517,16 @@ def dropped_by_reason(m: dict[str, float]) -> str:
     return ", ".join(out)
 
 
+def rejected_by_reason(m: dict[str, float]) -> str:
+    """The scrape's rejected-sample counters summed per reason, as "reason n, ..." (empty when none)."""
+    out: dict[str, float] = {}
+    for key, v in m.items():
+        if key.startswith("shiftwatch_samples_rejected_total{") and 'reason="' in key:
+            reason = key.split('reason="', 1)[1].split('"', 1)[0]
+            out[reason] = out.get(reason, 0.0) + v
+    return ", ".join(f"{r} {v:,.0f}" for r, v in sorted(out.items()) if v)
+
+
 def processed(port: int) -> float:
     """Samples the engines have processed (the per-stream counters are updated after each stream's batch;
     shiftwatch_messages_received_total moves in steps of up to 2,000 messages before processing)."""
@@ -665,6 +675,7 @@ def ingest_daemon(bench: Bench, streams: int, n: int) -> dict[str, float]:
                 "samples": m.get("shiftwatch_samples_total", 0.0),
                 "dropped": m.get("shiftwatch_messages_dropped_total", 0.0),
                 "dropped_by": dropped_by_reason(m),
+                "rejected_by": rejected_by_reason(m),
                 "streams": m.get("shiftwatch_streams", 0.0), "exit": float(code or 0), "stop_s": stop_s}
     finally:
         bench.stop_broker(b)
@@ -890,7 +901,8 @@ def main_bench(quick: bool, parts: tuple[str, ...] = PARTS) -> int:
             extra.append(f"ingest: publishers {bare['pub_rate']:,.0f} msg/s (bare run), {dmn['pub_rate']:,.0f} msg/s "
                          f"(daemon run); daemon received {dmn['count']:,.0f}/{n:,}, samples_total "
                          f"{dmn['samples']:,.0f}, dropped {dmn['dropped']:,.0f}"
-                         f"{' (' + dmn['dropped_by'] + ')' if dmn['dropped_by'] else ''}, streams {dmn['streams']:.0f}; "
+                         f"{' (' + dmn['dropped_by'] + ')' if dmn['dropped_by'] else ''}, samples rejected "
+                         f"{dmn['rejected_by'] or 'none'}, streams {dmn['streams']:.0f}; "
                          f"bare received {bare['count']:,.0f}/{n:,}; daemon drained in {dmn['seconds']:.1f} s, "
                          f"bare in {bare['seconds']:.1f} s; daemon stop {dmn['stop_s']:.1f} s exit {dmn['exit']:.0f}")
 

@@ -696,13 +696,15 @@ def each(payloads: list[bytes], fmt: str = "json", **kwargs: Any) -> list[Decode
 def test_decode_many_equals_decode_on_flat_objects_and_their_defects() -> None:
     payloads = [b'{"v": 1.5, "ts": 1764633600}', b'{"v": "1.5", "ts": 1764633601}', b'{"v": NaN}',
                 b'{"ts": 1764633602}', b'{"v": 2, "ts": "2025-12-02T00:00:03Z"}', b'{"v": 1e999}',
-                b'{"v": 3, "ts": "soon"}', b'{"v": 4, "v": 5}']
+                b'{"v": 3, "ts": "soon"}', b'{"v": 4, "v": 5}', b'{"v": 6, "ts": 1764633604500}',
+                b'{"v": 7.25, "ts": 1764633605.5}', b'{"v": false, "ts": 1764633606}']
     kwargs: dict[str, Any] = {"value_path": "v", "time_path": "ts"}
     assert decode_module._joined_objects(payloads, 65536) is not None  # the one-parse path is taken
     assert decode_module._joined_objects([b'{"a":"}', b'{","b":1}'], 65536) is None
     out = decode_many(payloads, "json", now=[NOW] * len(payloads), **kwargs)
     assert out == each(payloads, **kwargs)
-    assert [r.value for d in out for r in d.readings] == [1.5, 2.0, 5.0]
+    assert [r.value for d in out for r in d.readings] == [1.5, 2.0, 5.0, 6.0, 7.25]
+    assert out[8].readings[0].time == 1764633604.5  # epoch milliseconds, also on the quick path
 
 
 @pytest.mark.parametrize("payloads", [
@@ -729,6 +731,8 @@ def test_decode_many_checks_its_arguments() -> None:
 
 
 FLAT_PIECES = st.sampled_from(['"v": 1', '"v": 2.5', '"v": "x"', '"v": NaN', '"ts": 1764633600',
+                               '"ts": 1764633600123', '"ts": 1764633600.25', '"ts": -5', '"v": true',
+                               '"v": -0.0', '"v": 1e308', '"ts": 1e400', '"v": null', '"ts": true',
                                '"ts": "2025-12-02T00:00:00Z"', '"ts": null', '"a": "}"', '"b": "{"',
                                '"c": ","', '"d": "\\""', '"v": 9' + "9" * 400, '"', ",", "}", "{", " ", ":"])
 
