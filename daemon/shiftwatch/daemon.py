@@ -502,6 +502,10 @@ class Daemon:
                 break
             self.process(msgs)
             left -= len(msgs)
+        # Nothing more is taken: paho's thread reads on (the outbox's
+        # acknowledgements come in) and hands nothing over, and what the broker
+        # sends now stays unacknowledged, so it is delivered again after the restart.
+        self.inbox.close()
         if not self._acker.wait_idle(10.0):
             self.log.warning("stopping: the outbox is still being written; its rounds stay unacknowledged")
         self.snapshot()

@@ -90,8 +90,8 @@ class _ReadBuffer:
         return buf[pos:end]
 
     def pending(self) -> int:
-        if self._room is not None and not self._room(0.0):
-            return 0
+        # Truthful while the inbox is full too: paho then calls recv, which waits
+        # for room up to PAUSE_S, instead of sleeping in select on data held here.
         inner = getattr(self._sock, "pending", None)
         return len(self._buf) - self._pos + (inner() if inner is not None else 0)
 
@@ -418,7 +418,7 @@ class MqttLink:
             protocol=MQTTProtocolVersion.MQTTv5 if v5 else MQTTProtocolVersion.MQTTv311,
             manual_ack=True,
         )
-        self.client.room = inbox.wait_for_room
+        self.client.room = self._room
         # paho's own log stays silent; its error lines are only kept, so that a connection the
         # broker closes before accepting it (a TLS alert after the handshake, for example)
         # can be reported with the reason.  Below ERROR nothing is even formatted.
@@ -584,6 +584,12 @@ class MqttLink:
             self.log.warning("disconnected from broker %s: %s; reconnecting with backoff",
                              self.url, reason)
         self._on_connection(False)
+
+    def _room(self, timeout: float) -> bool:
+        # Reading never pauses before the CONNACK: a connection made while the
+        # inbox is full (after paho's keepalive gave up on a long pause) must
+        # still be able to come up.
+        return not self._connected or self._inbox.wait_for_room(timeout)
 
     def _handle_message(self, client: paho.Client, userdata: Any, msg: paho.MQTTMessage) -> None:
         try:

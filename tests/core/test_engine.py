@@ -142,6 +142,8 @@ def test_counts_of_one_stream_never_show_in_another() -> None:
     assert quiet.rejected_total == {} and StreamEngine("new").rejected_total == {}
     with pytest.raises(TypeError):
         quiet.rejected_total["nan"] += 1  # the shared empty counter refuses to count
+    with pytest.raises(TypeError):
+        quiet.records_total.update({"detected": 1})
 
 
 def test_bad_samples_are_rejected_with_reasons_and_good_ones_kept() -> None:

@@ -171,6 +171,35 @@ def test_the_read_buffer_serves_small_reads_from_one_large_one() -> None:
         b.close()
 
 
+def test_the_read_buffer_pauses_while_there_is_no_room_and_still_reports_what_it_holds() -> None:
+    # While the inbox is full, recv says "no data yet" (after waiting for room),
+    # but pending() still counts the buffered bytes: paho then comes back to
+    # recv instead of sleeping in select on data only this buffer holds.
+    a, b = socket.socketpair()
+    room = [True]
+    waits: list[float] = []
+
+    def may_read(timeout: float) -> bool:
+        waits.append(timeout)
+        return room[0]
+
+    try:
+        buf = _ReadBuffer(b, may_read)
+        a.sendall(b"\x30\x02okMORE")
+        time.sleep(0.05)
+        assert buf.recv(1) == b"\x30"
+        room[0] = False
+        with pytest.raises(BlockingIOError):
+            buf.recv(1)
+        assert waits[-1] == _ReadBuffer.PAUSE_S
+        assert buf.pending() == 7
+        room[0] = True
+        assert buf.recv(3) == b"\x02ok" and buf.recv(10) == b"MORE"
+    finally:
+        a.close()
+        b.close()
+
+
 def test_the_link_reads_a_long_run_of_small_messages_through_the_buffer(broker: MosquittoBroker) -> None:
     inbox = Inbox(100_000)
     link = make_link(broker, inbox, receive_maximum=1000)

@@ -198,8 +198,14 @@ def make_test(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: f
 class _NoCounts(Counter[str]):
     """An empty counter that refuses to count (shared by engines that have counted nothing)."""
 
-    def __setitem__(self, key: str, value: int) -> None:
+    def _refuse(self, *args: Any, **kwargs: Any) -> Any:
         raise TypeError("this shared empty counter is read-only")
+
+    __setitem__ = subtract = setdefault = __ior__ = __iadd__ = __isub__ = _refuse  # type: ignore[assignment]
+
+    def update(self, iterable: Any = None, /, **kwds: Any) -> None:  # type: ignore[override]
+        if iterable or kwds:  # Counter() itself calls update() with nothing
+            self._refuse()
 
 
 _NO_COUNTS: Counter[str] = _NoCounts()
@@ -515,12 +521,12 @@ class StreamEngine:
         # rejections, so a redelivery never counts twice.
         self.samples_total += len(scr.kept) + sum(r not in _NOT_NEW for _, r in scr.rejected)
         if result.rejected:
-            if self.rejected_total is _NO_COUNTS:
+            if isinstance(self.rejected_total, _NoCounts):
                 self.rejected_total = Counter()
             for rej in result.rejected:
                 self.rejected_total[rej.reason] += 1
         if result.records:
-            if self.records_total is _NO_COUNTS:
+            if isinstance(self.records_total, _NoCounts):
                 self.records_total = Counter()
             for rec in result.records:
                 self.records_total[rec.phase] += 1
