@@ -51,8 +51,8 @@ from shiftwatch.statestore import StateStore
 DRAIN = 20000
 ROUND_BYTES = 800_000
 #: Bounds of the queue between paho's thread and the main thread: messages,
-#: and payload bytes (20 rounds of ROUND_BYTES).  A full queue holds paho's
-#: thread back, and the broker keeps the rest.
+#: and payload bytes (80 rounds of ROUND_BYTES).  While the queue is full
+#: paho's thread reads nothing more, and the broker keeps the rest.
 QUEUE_MAX = 100_000
 QUEUE_BYTES = 64_000_000
 #: A round of at least BUSY_ROUND messages means the daemon is behind; the
@@ -259,8 +259,8 @@ class Daemon:
         self._last_trim = 0.0
         self._busy = False
         self._acker = _SyncThenAck(self._sync_outbox, self._ack, self.log, purge=self._purge_outbox)
-        # Messages per round: the broker sends at most receive_maximum unacknowledged
-        # ones (MQTT 5), so a larger round would never fill.
+        # Messages per round: the broker's window of unacknowledged ones (MQTT 5),
+        # DRAIN while a backlog larger than that waits (see round()).
         self._round_max = DRAIN if cfg.broker.mqtt_version != "5" else min(DRAIN, cfg.broker.receive_maximum)
         self._trim_pending = False
 

@@ -303,10 +303,15 @@ def _value(v: Any, what: str) -> float:
     raise _Reject("not_a_number", f"{what} is {_show(v)}, not a number")
 
 
+def _seconds(t: float) -> float:
+    """Epoch seconds from a time that may be in epoch milliseconds."""
+    return t / 1000.0 if t > _MS_THRESHOLD else t
+
+
 def _finite_time(t: float, what: str) -> float:
     if not math.isfinite(t):
         raise _Reject("bad_time", f"{what} is not finite")
-    return t / 1000.0 if t > _MS_THRESHOLD else t
+    return _seconds(t)
 
 
 def _epoch(v: Any, what: str) -> float:
@@ -573,10 +578,7 @@ def decode_many(payloads: Sequence[bytes | bytearray], fmt: str, *, value_path: 
                 t = item.get(time_path)
                 tt = type(t)
                 if (tt is float and t - t == 0.0) or (tt is int and -_BIG_INT < t < _BIG_INT):
-                    t = float(t)
-                    if t > _MS_THRESHOLD:  # epoch milliseconds, as in _finite_time
-                        t /= 1000.0
-                    out.append(Decoded([Reading(None, t, float(v), None)], no_problems))
+                    out.append(Decoded([Reading(None, _seconds(float(t)), float(v), None)], no_problems))
                     continue
         readings: list[Reading] = []
         problems: list[DecodeProblem] = []

@@ -203,9 +203,8 @@ class Inbox:
         True when the reader may go on, or the inbox is closed.
 
         Once full, the reader stays paused until the inbox is down to half its
-        bound, so paho's thread reads in bursts between long stretches of
-        processing instead of one message per round alongside it (allocations
-        of the two threads interleaved pin more of the heap afterwards).
+        bound, so it resumes for a burst rather than for every round the main
+        thread takes.
         """
         if self.closed:
             return True

@@ -507,21 +507,11 @@ def scrape(port: int, names: tuple[str, ...] = ()) -> dict[str, float]:
     return out
 
 
-def dropped_by_reason(m: dict[str, float]) -> str:
-    """The scrape's dropped-message counters as "reason n, ..." (empty when none)."""
-    out = []
-    for key, v in sorted(m.items()):
-        if key.startswith("shiftwatch_messages_dropped_total{") and v:
-            reason = key.split('reason="', 1)[1].split('"', 1)[0]
-            out.append(f"{reason} {v:,.0f}")
-    return ", ".join(out)
-
-
-def rejected_by_reason(m: dict[str, float]) -> str:
-    """The scrape's rejected-sample counters summed per reason, as "reason n, ..." (empty when none)."""
+def by_reason(m: dict[str, float], metric: str) -> str:
+    """A scrape's ``metric`` counters summed per reason label, as "reason n, ..." (empty when none)."""
     out: dict[str, float] = {}
     for key, v in m.items():
-        if key.startswith("shiftwatch_samples_rejected_total{") and 'reason="' in key:
+        if key.startswith(metric + "{") and 'reason="' in key:
             reason = key.split('reason="', 1)[1].split('"', 1)[0]
             out[reason] = out.get(reason, 0.0) + v
     return ", ".join(f"{r} {v:,.0f}" for r, v in sorted(out.items()) if v)
@@ -674,8 +664,8 @@ def ingest_daemon(bench: Bench, streams: int, n: int) -> dict[str, float]:
                 "seconds": (t2 or 0.0) - (t1 or 0.0),
                 "samples": m.get("shiftwatch_samples_total", 0.0),
                 "dropped": m.get("shiftwatch_messages_dropped_total", 0.0),
-                "dropped_by": dropped_by_reason(m),
-                "rejected_by": rejected_by_reason(m),
+                "dropped_by": by_reason(m, "shiftwatch_messages_dropped_total"),
+                "rejected_by": by_reason(m, "shiftwatch_samples_rejected_total"),
                 "streams": m.get("shiftwatch_streams", 0.0), "exit": float(code or 0), "stop_s": stop_s}
     finally:
         bench.stop_broker(b)

@@ -26,10 +26,11 @@ from shiftwatch.mqtt import Inbox, Message, MqttLink, PlainClient, _ReadBuffer
 
 
 
-def make_link(broker: MosquittoBroker, inbox: Inbox, receive_maximum: int) -> MqttLink:
-    cfg = BrokerConfig(url=broker.url, client_id="link-window", receive_maximum=receive_maximum)
+def make_link(broker: MosquittoBroker, inbox: Inbox, receive_maximum: int, *, client_id: str = "link-window",
+              on_drop: Callable[[str], None] = lambda reason: None) -> MqttLink:
+    cfg = BrokerConfig(url=broker.url, client_id=client_id, receive_maximum=receive_maximum)
     link = MqttLink(cfg, subscriptions=["line/+/v"], status_topic="sw/status", inbox=inbox,
-                    on_drop=lambda reason: None, on_published=lambda mid: None,
+                    on_drop=on_drop, on_published=lambda mid: None,
                     on_connection=lambda up: None)
     link.start()
     assert wait_until(lambda: link.connected)
@@ -37,25 +38,46 @@ def make_link(broker: MosquittoBroker, inbox: Inbox, receive_maximum: int) -> Mq
     return link
 
 
+def publish_numbered(pub: PlainClient, n: int, streams: int) -> None:
+    """Messages {"v": 0} to {"v": n - 1}, spread over ``streams`` topics."""
+    for i in range(n):
+        pub.publish(f"line/{i % streams}/v", b'{"v": %d}' % i, qos=1)
+
+
+def drain(link: MqttLink, inbox: Inbox, n: int, *, max_items: int = 1000,
+          pause: float = 0.0) -> tuple[list[Message], int]:
+    """Take and acknowledge rounds until ``n`` messages came (waiting ``pause`` before
+    each round); returns them and the longest inbox seen."""
+    got: list[Message] = []
+    most = 0
+    while len(got) < n:
+        if pause:
+            time.sleep(pause)
+        most = max(most, len(inbox))
+        msgs = inbox.take(max_items, 10_000_000, 5.0)
+        assert msgs, f"the flow stalled after {len(got)} messages"
+        got.extend(msgs)
+        link.ack_all(msgs)  # one write for the whole round
+    return got, most
+
+
+def numbers(msgs: list[Message]) -> list[int]:
+    return sorted(int(m.payload[6:-1]) for m in msgs)
+
+
 def test_the_broker_holds_to_the_window_and_bulk_acks_release_it(broker: MosquittoBroker) -> None:
     inbox = Inbox(100_000)
     link = make_link(broker, inbox, receive_maximum=50)
     pub = PlainClient(broker.url, "link-publisher").start()
     try:
-        for i in range(300):
-            pub.publish(f"line/{i % 7}/v", b'{"v": %d}' % i, qos=1)
+        publish_numbered(pub, 300, 7)
         # Nothing acknowledged yet: the broker stops at the window of 50.
         assert wait_until(lambda: len(inbox) >= 50)
         time.sleep(0.5)
         assert len(inbox) == 50
-        got: list[Message] = []
-        while len(got) < 300:
-            msgs = inbox.take(1000, 10_000_000, 5.0)
-            assert msgs, f"the flow stalled after {len(got)} messages"
-            assert all(m.qos == 1 for m in msgs)
-            got.extend(msgs)
-            link.ack_all(msgs)  # one write for the whole round
-        assert sorted(int(m.payload[6:-1]) for m in got) == list(range(300))
+        got, _ = drain(link, inbox, 300)
+        assert all(m.qos == 1 for m in got)
+        assert numbers(got) == list(range(300))
     finally:
         pub.stop()
         link.stop()
@@ -79,8 +101,7 @@ def test_after_acknowledgements_mosquitto_overshoots_the_window(broker: Mosquitt
     link = make_link(broker, inbox, receive_maximum=50)
     pub = PlainClient(broker.url, "link-publisher-overshoot").start()
     try:
-        for i in range(2000):
-            pub.publish(f"line/{i % 7}/v", b'{"v": %d}' % i, qos=1)
+        publish_numbered(pub, 2000, 7)
         assert wait_until(lambda: len(inbox) >= 50)
         time.sleep(0.5)
         first = inbox.take(1000, 10_000_000, 1.0)
@@ -100,29 +121,14 @@ def test_a_full_inbox_pauses_reading_and_nothing_is_dropped(broker: MosquittoBro
     # acknowledgements (the flow would stall otherwise).
     drops: list[str] = []
     inbox = Inbox(40)
-    cfg = BrokerConfig(url=broker.url, client_id="link-pause", receive_maximum=1000)
-    link = MqttLink(cfg, subscriptions=["line/+/v"], status_topic="sw/status", inbox=inbox,
-                    on_drop=drops.append, on_published=lambda mid: None,
-                    on_connection=lambda up: None)
-    link.start()
-    assert wait_until(lambda: link.connected)
-    time.sleep(0.2)
+    link = make_link(broker, inbox, receive_maximum=1000, client_id="link-pause", on_drop=drops.append)
     pub = PlainClient(broker.url, "link-publisher-pause").start()
     try:
-        for i in range(3000):
-            pub.publish(f"line/{i % 11}/v", b'{"v": %d}' % i, qos=1)
-        got: list[Message] = []
-        most = 0
-        while len(got) < 3000:
-            time.sleep(0.002)  # a slow consumer
-            most = max(most, len(inbox))
-            msgs = inbox.take(15, 10_000_000, 5.0)
-            assert msgs, f"the flow stalled after {len(got)} messages"
-            got.extend(msgs)
-            link.ack_all(msgs)
+        publish_numbered(pub, 3000, 11)
+        got, most = drain(link, inbox, 3000, max_items=15, pause=0.002)  # a slow consumer
         assert drops == []
-        assert most <= 41  # at most one message past the bound: the one being read when it filled
-        assert sorted(int(m.payload[6:-1]) for m in got) == list(range(3000))
+        assert most <= 40  # only paho's thread puts, and it checks for room before each read
+        assert numbers(got) == list(range(3000))
         assert link.connected
     finally:
         pub.stop()
@@ -206,15 +212,9 @@ def test_the_link_reads_a_long_run_of_small_messages_through_the_buffer(broker: 
     pub = PlainClient(broker.url, "link-publisher-buffer").start()
     try:
         assert isinstance(link.client.socket(), _ReadBuffer)
-        for i in range(5000):
-            pub.publish(f"line/{i % 13}/v", b'{"v": %d}' % i, qos=1)
-        got: list[Message] = []
-        while len(got) < 5000:
-            msgs = inbox.take(1000, 10_000_000, 5.0)
-            assert msgs, f"the flow stalled after {len(got)} messages"
-            got.extend(msgs)
-            link.ack_all(msgs)
-        assert sorted(int(m.payload[6:-1]) for m in got) == list(range(5000))
+        publish_numbered(pub, 5000, 13)
+        got, _ = drain(link, inbox, 5000)
+        assert numbers(got) == list(range(5000))
     finally:
         pub.stop()
         link.stop()

@@ -30,7 +30,7 @@ import hashlib
 import math
 from collections import Counter
 from dataclasses import dataclass, field
-from typing import Any, NamedTuple, Sequence
+from typing import Any, Iterable, NamedTuple, Sequence
 
 import numpy as np
 from numpy.typing import NDArray
@@ -209,6 +209,14 @@ class _NoCounts(Counter[str]):
 
 
 _NO_COUNTS: Counter[str] = _NoCounts()
+
+
+def _tally(counts: Counter[str], keys: Iterable[str]) -> Counter[str]:
+    """``counts`` with ``keys`` counted in (a counter of its own in place of the shared empty one)."""
+    if isinstance(counts, _NoCounts):
+        counts = Counter()
+    counts.update(keys)
+    return counts
 
 
 class Window:
@@ -521,15 +529,9 @@ class StreamEngine:
         # rejections, so a redelivery never counts twice.
         self.samples_total += len(scr.kept) + sum(r not in _NOT_NEW for _, r in scr.rejected)
         if result.rejected:
-            if isinstance(self.rejected_total, _NoCounts):
-                self.rejected_total = Counter()
-            for rej in result.rejected:
-                self.rejected_total[rej.reason] += 1
+            self.rejected_total = _tally(self.rejected_total, (rej.reason for rej in result.rejected))
         if result.records:
-            if isinstance(self.records_total, _NoCounts):
-                self.records_total = Counter()
-            for rec in result.records:
-                self.records_total[rec.phase] += 1
+            self.records_total = _tally(self.records_total, (rec.phase for rec in result.records))
         result.rejected.sort()
         return result
 
