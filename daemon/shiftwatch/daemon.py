@@ -66,6 +66,14 @@ GATHER_S = 0.1
 #: (a topic gives one stream or more, so every live topic fits).
 SPEC_CACHE_TOPIC = 512
 SPEC_CACHE_MIN = 1000
+#: Level publications handed to paho and not yet acknowledged by the broker, at
+#: most.  A stream whose level changes while this many are out waits its turn
+#: (oldest first) and then publishes its state as it is then.  Without the bound
+#: paho holds every update until its PUBACK, some dozen objects each, and
+#: PUBACKs wait behind the incoming messages while the inbox is full: 10,000
+#: streams fed batches left 13,000 updates in paho's memory, and their objects,
+#: made among the engines' own, fragmented the heap for good (about 20 MB).
+LEVELS_IN_FLIGHT = 50
 
 
 class RateLimitedLog:
@@ -246,6 +254,10 @@ class Daemon:
         self.journal = Journal(state_dir / "snapshots", logger=self.log, background=True) if cfg.state.journal else None
         self.outbox = Outbox(state_dir / "outbox", max_items=cfg.alerts.outbox_max, logger=self.log)
         self._levels_sent: dict[str, tuple[str, float | None, float | None]] = {}
+        # Streams whose level changed while LEVELS_IN_FLIGHT were out (an ordered
+        # set, main thread only), and the mids of the level publications out.
+        self._levels_due: dict[str, None] = {}
+        self._level_mids: set[int] = set()
         self._lock = threading.Lock()
         self._mid_key: dict[int, str | None] = {}
         self._early_acks: OrderedDict[int, None] = OrderedDict()
@@ -460,11 +472,13 @@ class Daemon:
         msgs = self.inbox.take(limit, ROUND_BYTES, timeout, gather=gather)
         self._busy = len(msgs) >= BUSY_ROUND
         if not msgs:
+            self.send_due_levels()
             self._gauges()
             if self._trim_pending:  # the burst is over: trim now, it costs nothing
                 self._trim_heap(idle=True)
             return 0
         self.process(msgs)
+        self.send_due_levels()
         self._gauges()
         if sum(len(m.payload) for m in msgs) > ROUND_BYTES // 4:
             self._trim_heap()
@@ -707,7 +721,7 @@ class Daemon:
         else:
             self.log.info("%s [stream %s, id %s]", d["summary"], _printable(rec.stream), rec.id)
 
-    def _publish_level(self, name: str, eng: StreamEngine) -> None:
+    def _publish_level(self, name: str, eng: StreamEngine, *, its_turn: bool = False) -> None:
         sent = self._levels_sent.get(name)
         now_state = (eng.state, eng.level, eng.sigma)
         if sent == now_state or eng.level is None:
@@ -718,16 +732,34 @@ class Daemon:
             # outage.  The stream's latest level goes out with its next sample
             # after the reconnect (the broker keeps the last retained one).
             return
+        if len(self._level_mids) >= LEVELS_IN_FLIGHT or (self._levels_due and not its_turn):
+            self._levels_due[name] = None  # its turn comes in send_due_levels()
+            return
         self._levels_sent[name] = now_state
         body = {"stream": name, "state": eng.state, "level": eng.level, "sigma": eng.sigma,
                 "unit": eng.unit, "last_shift_at": None if eng.last_shift_at is None
                 else format_time(eng.last_shift_at)}
-        self._publish(f"{self.prefix}/levels/{name}", json.dumps(body).encode(), qos=1, retain=True)
+        self._publish(f"{self.prefix}/levels/{name}", json.dumps(body).encode(), qos=1, retain=True,
+                      level=True)
 
-    def _publish(self, topic: str, payload: bytes, *, qos: int, retain: bool, key: str | None = None) -> None:
+    def send_due_levels(self) -> None:
+        """Publish the levels that waited for earlier ones to be acknowledged,
+        oldest first, each stream's state as it is now."""
+        due = self._levels_due
+        while due and len(self._level_mids) < LEVELS_IN_FLIGHT:
+            if self.link is None or not self.link.connected:
+                return
+            name = next(iter(due))
+            del due[name]
+            eng = self.engines.get(name)
+            if eng is not None:  # else removed by a reload meanwhile
+                self._publish_level(name, eng, its_turn=True)
+
+    def _publish(self, topic: str, payload: bytes, *, qos: int, retain: bool, key: str | None = None,
+                 level: bool = False) -> None:
         mid = self._send(topic, payload, qos=qos, retain=retain)
         if mid is not None:
-            self._track(mid, key)
+            self._track(mid, key, level=level)
 
     def _send(self, topic: str, payload: bytes, *, qos: int, retain: bool) -> int | None:
         """Hand a publication to paho; its mid, or None when not started (records
@@ -736,9 +768,10 @@ class Daemon:
             return None
         return self.link.publish(topic, payload, qos=qos, retain=retain)
 
-    def _track(self, mid: int, key: str | None) -> None:
+    def _track(self, mid: int, key: str | None, *, level: bool = False) -> None:
         """Remember which outbox record (if any) publication ``mid`` carries, so the
-        broker's acknowledgement removes it, also one that came in already."""
+        broker's acknowledgement removes it, also one that came in already; and
+        whether it is a level, which counts against LEVELS_IN_FLIGHT until then."""
         with self._lock:
             if mid in self._early_acks:
                 del self._early_acks[mid]
@@ -746,6 +779,8 @@ class Daemon:
                     self._delivered(key)
             else:
                 self._mid_key[mid] = key
+                if level:
+                    self._level_mids.add(mid)
 
     def _delivered(self, key: str) -> None:
         """The broker has the record: out of the outbox now, its file deleted by the
@@ -758,6 +793,7 @@ class Daemon:
         with self._lock:
             if mid in self._mid_key:
                 key = self._mid_key.pop(mid)
+                self._level_mids.discard(mid)
                 if key is not None:
                     self._delivered(key)
             else:
@@ -767,6 +803,12 @@ class Daemon:
 
     def _connection(self, up: bool) -> None:
         self.metrics.broker_connected.set(1 if up else 0)
+        if not up:
+            # paho sends the levels it holds again after the reconnect, but one
+            # whose PUBACK never comes (the broker lost the session) must not
+            # hold a place for ever: the bound counts from each connection.
+            with self._lock:
+                self._level_mids.clear()
 
     def _count_drop(self, reason: str, n: int = 1) -> None:
         self.metrics.messages_dropped.labels(reason).inc(n)

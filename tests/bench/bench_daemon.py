@@ -158,12 +158,19 @@ class RawPublisher:
         return buf
 
     def _read(self) -> None:
-        self.sock.settimeout(1.0)
+        # The socket blocks: a broker that is busy for a second (the daemon
+        # has paused its reading and the broker is queueing) must slow the
+        # sender, not fail it. The reader waits in select, not on a timeout.
+        import select
+
+        self.sock.settimeout(None)
         rest = b""
         while time.monotonic() < self.deadline:
             try:
+                if not select.select([self.sock], [], [], 1.0)[0]:
+                    continue
                 chunk = self.sock.recv(65536)
-            except OSError:
+            except (OSError, ValueError):
                 if self.sock.fileno() < 0:
                     return
                 continue

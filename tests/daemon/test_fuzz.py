@@ -55,7 +55,7 @@ from shiftwatch.config import parse_config
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.core.timefmt import parse_time
-from shiftwatch.daemon import SPEC_CACHE_MIN, Daemon
+from shiftwatch.daemon import LEVELS_IN_FLIGHT, SPEC_CACHE_MIN, Daemon
 from shiftwatch.decode import decode
 from shiftwatch.metrics import Metrics
 from shiftwatch.mqtt import PlainClient
@@ -402,6 +402,46 @@ def test_flood_of_new_topics_keeps_the_cap_and_serves_the_old_stream(mosquitto: 
             rec.pop("summary", None), rec.pop("unit", None)
         assert got == expected and [r["phase"] for r in got] == ["detected", "confirmed"]
         assert parse_time(got[1]["shift_at"]) == T0 + step
+
+
+def test_level_updates_waiting_for_acknowledgement_stay_bounded(mosquitto: MosquittoBroker,
+                                                                tmp_path: Path) -> None:
+    # 200 streams finish their warm-up while the broker answers nothing (SIGSTOP,
+    # shorter than the keepalive): paho gets LEVELS_IN_FLIGHT level updates, the
+    # other streams wait their turn, and once the broker answers again every
+    # stream's retained level is the one its engine holds.
+    n = 200
+    rng = np.random.default_rng(12)
+    with live_daemon(mosquitto, tmp_path / "state", max_streams=n, client_id="fz-levels") as (d, seen, _):
+        assert d.link is not None
+        mosquitto.freeze()
+        try:
+            for k in range(n):
+                batch = [{"v": float(v), "ts": T0 + i} for i, v in enumerate(50.0 + rng.standard_normal(30))]
+                deliver(d, f"fz/json/line/{k}".encode(), json.dumps(batch).encode())
+            while len(d.inbox):
+                d.round(timeout=0.05)
+            assert all(e.level is not None for e in d.engines.values()) and len(d.engines) == n
+            assert len(d._level_mids) == LEVELS_IN_FLIGHT
+            assert len(d._levels_due) == n - LEVELS_IN_FLIGHT
+            assert len(d.link.client._out_messages) <= LEVELS_IN_FLIGHT  # what paho holds
+        finally:
+            mosquitto.thaw()
+        prefix = f"{PREFIX}/levels/"
+
+        def latest() -> dict[str, Any]:
+            with seen._cv:
+                return {t[len(prefix):]: b for t, b in seen.items if t.startswith(prefix)}
+
+        deadline = time.monotonic() + 30
+        while (d._levels_due or len(latest()) < n) and time.monotonic() < deadline:
+            d.round(timeout=0.05)
+        got = latest()
+        assert set(got) == set(d.engines)
+        for name, body in got.items():
+            eng = d.engines[name]
+            assert (body["state"], body["level"], body["sigma"]) == (eng.state, eng.level, eng.sigma)
+        assert not d._levels_due and d.link.connected
 
 
 # ---------------------------------------------------------------------------
