@@ -594,6 +594,7 @@ class Daemon:
                 self.journal.append(fed)
             except OSError as exc:
                 self._journal_failed(exc)
+        self.metrics.messages_processed.inc(len(msgs))
         wrote = self.records_published != published_before
         if self.link is None:
             if wrote:

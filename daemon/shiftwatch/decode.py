@@ -393,6 +393,10 @@ def _checked_options(fmt: str, value_path: str, time_path: str | None, max_bytes
 
 #: One decoder for every message (json.loads would build a new one each call).
 _JSON = json.JSONDecoder(parse_constant=_Constant, parse_int=_parse_int)
+#: The same without the Python call per integer, for joined payloads that hold
+#: no digit run long enough for _parse_int to matter (_LONG_DIGITS finds one).
+_JSON_PLAIN_INTS = json.JSONDecoder(parse_constant=_Constant)
+_LONG_DIGITS = re.compile(rb"[0-9]{%d}" % (_BIG_INT_DIGITS + 1))
 
 
 def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", time_path: str | None = None,
@@ -600,8 +604,9 @@ def _joined_objects(payloads: Sequence[bytes | bytearray], max_bytes: int) -> li
     joined = b",".join(payloads)
     if joined.count(b"{") != len(payloads):
         return None
+    decoder = _JSON if _LONG_DIGITS.search(joined) else _JSON_PLAIN_INTS
     try:
-        doc = _JSON.decode("[" + joined.decode("utf-8") + "]")
+        doc = decoder.decode("[" + joined.decode("utf-8") + "]")
     except (ValueError, RecursionError):  # UnicodeDecodeError is a ValueError
         return None
     if not isinstance(doc, list) or len(doc) != len(payloads) or not all(type(d) is dict for d in doc):

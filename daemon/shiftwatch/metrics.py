@@ -398,6 +398,7 @@ class Metrics:
     registry : the registry everything is registered on.
     broker_connected : 1 while connected to the MQTT broker, else 0.
     messages_received : MQTT messages received.
+    messages_processed : messages taken from the ingest queue and processed.
     messages_dropped : MQTT messages discarded, labelled by ``reason``.
     alert_delay : seconds from a sample's arrival to the publication of its alert.
     queue_depth : messages waiting in the ingest queue.
@@ -418,6 +419,11 @@ class Metrics:
             registry=reg)
         self.messages_received = Counter(
             "shiftwatch_messages_received", "MQTT messages received.", registry=reg)
+        self.messages_processed = Counter(
+            "shiftwatch_messages_processed",
+            "MQTT messages taken from the ingest queue and processed: decoded, their samples fed "
+            "to the engines, their alert records published (the acknowledgement follows).",
+            registry=reg)
         self.messages_dropped = Counter(
             "shiftwatch_messages_dropped", "MQTT messages discarded without processing, by reason.",
             labelnames=["reason"], registry=reg)

@@ -84,6 +84,8 @@ def test_json_samples_give_an_alert_with_the_right_shift_time(daemon_factory, co
     assert metric_value(text, "shiftwatch_broker_connected") == 1
     assert metric_value(text, "shiftwatch_messages_received_total") == N
     assert metric_value(text, "shiftwatch_alert_delay_seconds_count") == 2
+    # Counted once a round is through, so it may trail the per-stream counter by a moment.
+    wait_metric(d, "shiftwatch_messages_processed_total", N)
     assert d.stop() == 0
     assert "CONFIRMED brackenfield/line2/filler/head2/fill stepped up" in d.log_text()
 

@@ -196,6 +196,7 @@ def test_names_types_and_help(metrics: Metrics, served: MetricsServer) -> None:
         "shiftwatch_test_threshold": "gauge", "shiftwatch_last_shift_timestamp_seconds": "gauge",
         "shiftwatch_stream_info": "gauge", "shiftwatch_streams": "gauge",
         "shiftwatch_broker_connected": "gauge", "shiftwatch_messages_received": "counter",
+        "shiftwatch_messages_processed": "counter",
         "shiftwatch_messages_dropped": "counter", "shiftwatch_alert_delay_seconds": "histogram",
         "shiftwatch_ingest_queue_depth": "gauge", "shiftwatch_outbox_depth": "gauge",
         "shiftwatch_snapshot_failures": "counter", "shiftwatch_snapshots": "counter",
