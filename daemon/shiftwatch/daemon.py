@@ -254,9 +254,10 @@ class Daemon:
         self.journal = Journal(state_dir / "snapshots", logger=self.log, background=True) if cfg.state.journal else None
         self.outbox = Outbox(state_dir / "outbox", max_items=cfg.alerts.outbox_max, logger=self.log)
         self._levels_sent: dict[str, tuple[str, float | None, float | None]] = {}
-        # Streams whose level changed while LEVELS_IN_FLIGHT were out (an ordered
-        # set, main thread only), and the mids of the level publications out.
-        self._levels_due: dict[str, None] = {}
+        # Streams whose level update waits its turn (an ordered set, main thread
+        # only): LEVELS_IN_FLIGHT were out, others were waiting already, or the
+        # broker was away; and the mids of the level publications out.
+        self._levels_due: OrderedDict[str, None] = OrderedDict()
         self._level_mids: set[int] = set()
         self._lock = threading.Lock()
         self._mid_key: dict[int, str | None] = {}
@@ -526,7 +527,9 @@ class Daemon:
         if self.journal is not None:
             self.journal.close()
         deadline = time.monotonic() + 5.0
-        while len(self.outbox) and self.link is not None and self.link.connected and time.monotonic() < deadline:
+        while ((len(self.outbox) or self._levels_due) and self.link is not None and self.link.connected
+               and time.monotonic() < deadline):
+            self.send_due_levels()
             time.sleep(0.02)
         if self.link is not None:
             self.link.stop()
@@ -727,14 +730,13 @@ class Daemon:
         now_state = (eng.state, eng.level, eng.sigma)
         if sent == now_state or eng.level is None:
             return
-        if self.link is None or not self.link.connected:
-            # Not handed to paho while the broker is away: paho would hold every
-            # update in memory and its 16-bit message ids would wrap in a long
-            # outage.  The stream's latest level goes out with its next sample
-            # after the reconnect (the broker keeps the last retained one).
-            return
-        if len(self._level_mids) >= LEVELS_IN_FLIGHT or (self._levels_due and not its_turn):
-            self._levels_due[name] = None  # its turn comes in send_due_levels()
+        if (self.link is None or not self.link.connected or len(self._level_mids) >= LEVELS_IN_FLIGHT
+                or (self._levels_due and not its_turn)):
+            # Its turn comes in send_due_levels(), with the state as it is then.
+            # Nothing goes to paho while the broker is away: paho would hold
+            # every update in memory and its 16-bit message ids would wrap in a
+            # long outage; the set holds each stream once at most.
+            self._levels_due[name] = None
             return
         self._levels_sent[name] = now_state
         body = {"stream": name, "state": eng.state, "level": eng.level, "sigma": eng.sigma,
@@ -750,8 +752,7 @@ class Daemon:
         while due and len(self._level_mids) < LEVELS_IN_FLIGHT:
             if self.link is None or not self.link.connected:
                 return
-            name = next(iter(due))
-            del due[name]
+            name, _ = due.popitem(last=False)
             eng = self.engines.get(name)
             if eng is not None:  # else removed by a reload meanwhile
                 self._publish_level(name, eng, its_turn=True)
@@ -805,9 +806,11 @@ class Daemon:
     def _connection(self, up: bool) -> None:
         self.metrics.broker_connected.set(1 if up else 0)
         if not up:
-            # paho sends the levels it holds again after the reconnect, but one
-            # whose PUBACK never comes (the broker lost the session) must not
-            # hold a place for ever: the bound counts from each connection.
+            # paho sends the levels it holds again after the reconnect, and the
+            # broker acknowledges them then; the bound counts from each
+            # connection all the same, so that a PUBACK that never comes (a
+            # defect anywhere) cannot hold a place for ever.  A link that flaps
+            # may so leave paho up to LEVELS_IN_FLIGHT more per flap for a while.
             with self._lock:
                 self._level_mids.clear()
 

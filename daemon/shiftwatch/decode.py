@@ -396,7 +396,7 @@ _JSON = json.JSONDecoder(parse_constant=_Constant, parse_int=_parse_int)
 #: The same without the Python call per integer, for joined payloads that hold
 #: no digit run long enough for _parse_int to matter (_LONG_DIGITS finds one).
 _JSON_PLAIN_INTS = json.JSONDecoder(parse_constant=_Constant)
-_LONG_DIGITS = re.compile(rb"[0-9]{%d}" % (_BIG_INT_DIGITS + 1))
+_LONG_DIGITS = re.compile(rb"[0-9]{%d}" % _BIG_INT_DIGITS)  # with a sign, 400 digits are 401 characters
 
 
 def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", time_path: str | None = None,

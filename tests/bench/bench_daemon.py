@@ -171,8 +171,8 @@ class RawPublisher:
                 if not select.select([self.sock], [], [], 1.0)[0]:
                     continue
                 chunk = self.sock.recv(65536)
-            except (OSError, ValueError):
-                if self.sock.fileno() < 0:
+            except (OSError, ValueError) as exc:
+                if self.sock.fileno() < 0 or isinstance(exc, ConnectionError):
                     return
                 continue
             if not chunk:

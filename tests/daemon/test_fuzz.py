@@ -424,10 +424,11 @@ def test_level_updates_waiting_for_acknowledgement_stay_bounded(mosquitto: Mosqu
             assert all(e.level is not None for e in d.engines.values()) and len(d.engines) == n
             assert len(d._level_mids) == LEVELS_IN_FLIGHT
             assert len(d._levels_due) == n - LEVELS_IN_FLIGHT
-            assert len(d.link.client._out_messages) <= LEVELS_IN_FLIGHT  # what paho holds
+            held = [m for m in d.link.client._out_messages.values() if m.topic.startswith(f"{PREFIX}/levels/")]
+            assert len(held) == LEVELS_IN_FLIGHT  # what paho holds
         finally:
             mosquitto.thaw()
-        prefix = f"{PREFIX}/levels/"
+        prefix = f"{PREFIX}/levels/fz/json/line/"  # earlier tests left retained levels of their own
 
         def latest() -> dict[str, Any]:
             with seen._cv:
@@ -437,9 +438,9 @@ def test_level_updates_waiting_for_acknowledgement_stay_bounded(mosquitto: Mosqu
         while (d._levels_due or len(latest()) < n) and time.monotonic() < deadline:
             d.round(timeout=0.05)
         got = latest()
-        assert set(got) == set(d.engines)
+        assert set(got) == {name[len("fz/json/line/"):] for name in d.engines}
         for name, body in got.items():
-            eng = d.engines[name]
+            eng = d.engines["fz/json/line/" + name]
             assert (body["state"], body["level"], body["sigma"]) == (eng.state, eng.level, eng.sigma)
         assert not d._levels_due and d.link.connected
 
