@@ -57,7 +57,7 @@ SENSORS = (
     Sensor("filler head 3 fill weight", "brackenfield/line2/filler/head3/fill",
            "brackenfield/line2/filler/head3/fill", "json", 499.8, 0.6, "g"),
     Sensor("tunnel oven zone 3 temperature", "brackenfield/line2/oven/senml",
-           "brackenfield/line2/oven/senml/zone3_temp", "senml", 182.0, 0.5, "Cel",
+           "brackenfield/line2/oven/senml/zone3", "senml", 182.0, 0.5, "Cel",
            step_at=38.0, step=-1.4, cause="burner retuned"),
     Sensor("capper torque", "brackenfield/line2/capper/torque",
            "brackenfield/line2/capper/torque", "number", 2.40, 0.05, "N m",
@@ -78,7 +78,7 @@ streams:
     label: "fill weight on filler {{1}}"
   - topic: brackenfield/line2/oven/senml
     format: senml
-    label: "tunnel oven {{name}}"
+    label: "tunnel oven {{name}} temperature"
   - topic: brackenfield/line2/capper/torque
     format: number
     unit: N m
@@ -100,7 +100,7 @@ def payload_for(sensor: Sensor, t: float, value: float) -> bytes:
     if sensor.fmt == "json":
         return json.dumps({"weight_g": round(value, 2), "ts": int(t * 1000)}).encode()
     if sensor.fmt == "senml":
-        return json.dumps([{"bn": "", "bt": round(t, 3), "n": "zone3_temp", "u": sensor.unit,
+        return json.dumps([{"bn": "", "bt": round(t, 3), "n": "zone3", "u": sensor.unit,
                             "v": round(value, 2)}]).encode()
     return f"{value:.3f}".encode()
 
