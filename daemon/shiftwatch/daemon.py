@@ -254,9 +254,8 @@ class Daemon:
         self.journal = Journal(state_dir / "snapshots", logger=self.log, background=True) if cfg.state.journal else None
         self.outbox = Outbox(state_dir / "outbox", max_items=cfg.alerts.outbox_max, logger=self.log)
         self._levels_sent: dict[str, tuple[str, float | None, float | None]] = {}
-        # Streams whose level update waits its turn (an ordered set, main thread
-        # only): LEVELS_IN_FLIGHT were out, others were waiting already, or the
-        # broker was away; and the mids of the level publications out.
+        # Streams whose level update is queued (an ordered set, main thread
+        # only; see send_due_levels), and the mids of the level publications out.
         self._levels_due: OrderedDict[str, None] = OrderedDict()
         self._level_mids: set[int] = set()
         self._lock = threading.Lock()
@@ -689,7 +688,7 @@ class Daemon:
         for rec in res.records:
             j = int(np.searchsorted(times, rec.as_of))
             self.emit(rec, float(arrivals[min(j, len(arrivals) - 1)]))
-        self._publish_level(name, eng)
+        self._level_changed(name, eng)
         self.metrics.update_stream(name, StreamStats.from_engine(eng))
         return JournalGroup(name, unit, times, values, arrivals, self._filters.get(name, spec.topic))
 
@@ -725,37 +724,38 @@ class Daemon:
         else:
             self.log.info("%s [stream %s, id %s]", d["summary"], _printable(rec.stream), rec.id)
 
-    def _publish_level(self, name: str, eng: StreamEngine, *, its_turn: bool = False) -> None:
-        sent = self._levels_sent.get(name)
-        now_state = (eng.state, eng.level, eng.sigma)
-        if sent == now_state or eng.level is None:
-            return
-        if (self.link is None or not self.link.connected or len(self._level_mids) >= LEVELS_IN_FLIGHT
-                or (self._levels_due and not its_turn)):
-            # Its turn comes in send_due_levels(), with the state as it is then.
-            # Nothing goes to paho while the broker is away: paho would hold
-            # every update in memory and its 16-bit message ids would wrap in a
-            # long outage; the set holds each stream once at most.
+    def _level_changed(self, name: str, eng: StreamEngine) -> None:
+        """After a stream's batch: queue its level update if what the levels
+        topic shows of it has changed (send_due_levels publishes it)."""
+        if eng.level is not None and self._levels_sent.get(name) != (eng.state, eng.level, eng.sigma):
             self._levels_due[name] = None
-            return
-        self._levels_sent[name] = now_state
-        body = {"stream": name, "state": eng.state, "level": eng.level, "sigma": eng.sigma,
-                "unit": eng.unit, "last_shift_at": None if eng.last_shift_at is None
-                else format_time(eng.last_shift_at)}
-        self._publish(f"{self.prefix}/levels/{name}", json.dumps(body).encode(), qos=1, retain=True,
-                      level=True)
 
     def send_due_levels(self) -> None:
-        """Publish the levels that waited for earlier ones to be acknowledged,
-        oldest first, each stream's state as it is now."""
+        """Publish the queued level updates, oldest first, each stream's state as
+        it is now, while fewer than LEVELS_IN_FLIGHT are unacknowledged.
+
+        Nothing goes to paho while the broker is away: paho would hold every
+        update in memory and its 16-bit message ids would wrap in a long
+        outage; the queue holds each stream once at most, and empties after
+        the reconnect.
+        """
         due = self._levels_due
         while due and len(self._level_mids) < LEVELS_IN_FLIGHT:
             if self.link is None or not self.link.connected:
                 return
             name, _ = due.popitem(last=False)
-            eng = self.engines.get(name)
-            if eng is not None:  # else removed by a reload meanwhile
-                self._publish_level(name, eng, its_turn=True)
+            eng = self.engines.get(name)  # None: removed by a reload meanwhile
+            if eng is None or eng.level is None:
+                continue
+            now_state = (eng.state, eng.level, eng.sigma)
+            if self._levels_sent.get(name) == now_state:
+                continue
+            self._levels_sent[name] = now_state
+            body = {"stream": name, "state": eng.state, "level": eng.level, "sigma": eng.sigma,
+                    "unit": eng.unit, "last_shift_at": None if eng.last_shift_at is None
+                    else format_time(eng.last_shift_at)}
+            self._publish(f"{self.prefix}/levels/{name}", json.dumps(body).encode(), qos=1, retain=True,
+                          level=True)
 
     def _publish(self, topic: str, payload: bytes, *, qos: int, retain: bool, key: str | None = None,
                  level: bool = False) -> None:
