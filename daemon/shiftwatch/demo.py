@@ -223,17 +223,18 @@ def run_demo(duration: float = 75.0, *, out: TextIO = sys.stdout, metrics_listen
         code = 130
     finally:
         line.stop()
+        ended = time.time() - start  # the sensors' last sample
         time.sleep(0.5)
         daemon.request_stop()
         runner.join(timeout=15)
         viewer.stop()
         broker.stop()
-    w(_recap(results, start))
+    w(_recap(results, start, ended))
     out.flush()
     return code
 
 
-def _recap(results: dict[str, list[dict[str, Any]]], start: float) -> str:
+def _recap(results: dict[str, list[dict[str, Any]]], start: float, ended: float) -> str:
     lines = ["\nWhat happened", f"  {'sensor':<32}{'planned step':>16}{'found':>22}{'started':>10}{'alerted':>10}"]
     for s in SENSORS:
         recs = results.get(s.stream, [])
@@ -245,11 +246,15 @@ def _recap(results: dict[str, list[dict[str, Any]]], start: float) -> str:
             alerted = parse_time(r["detected_at"]) - start
             lines.append(f"  {s.label:<32}{planned:>16}{r['delta']:>+15.3g} {s.unit:<6}"
                          f"{started:>9.1f}s{alerted:>9.1f}s")
+        elif s.step_at is not None and s.step_at >= ended:
+            lines.append(f"  {s.label:<32}{planned:>16}{'demo ended first':>22}")
         else:
             lines.append(f"  {s.label:<32}{planned:>16}{'no confirmed step':>22}")
     dismissed = sum(r["phase"] == "dismissed" for rs in results.values() for r in rs)
     lines.append(f"  dismissed detections: {dismissed}")
-    lines.append("  (times are seconds after the demo started; 'alerted' is when the test tripped)\n")
+    lines.append("  (times are seconds after the demo started; 'alerted' is when the test tripped;\n"
+                 "   'found' is the step fitted when the shift was confirmed, from the few seconds of\n"
+                 "   samples seen since it began, so noise moves it by a fraction of a sigma)\n")
     return "\n".join(lines) + "\n"
 
 

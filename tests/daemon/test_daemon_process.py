@@ -135,6 +135,9 @@ def test_demo_runs_and_reports(shiftwatch_cmd) -> None:
     assert "What happened" in out
     recap = out.split("What happened")[1]
     assert "filler head 2 fill weight" in recap and "+1.3 g @24s" in recap
+    # The oven's step (planned at 38 s) lies past the 32 s run: said so, not "no confirmed step".
+    oven = next(line for line in recap.splitlines() if "tunnel oven zone 3 temperature" in line)
+    assert "demo ended first" in oven
 
 
 def test_demo_stops_cleanly_on_ctrl_c(shiftwatch_cmd) -> None:
