@@ -214,13 +214,17 @@ def test_constant_readings_do_not_break_the_engine() -> None:
     assert recs[1].shift_at == t[700]
 
 
-def test_warmup_that_holds_a_shift_starts_again() -> None:
+def test_a_step_inside_the_first_warmup_is_reported_and_the_warmup_goes_on() -> None:
+    # The self-starting test watches the first warm-up: a step at sample 60 of
+    # a new stream is detected and confirmed at once, and the warm-up goes on
+    # from the new level.
     t = T0 + np.arange(1200.0)
     x = gaussian(1200, 20.0, 0.5, 9)
-    x[60:] += 2.5  # inside the first 120-sample warm-up
+    x[60:] += 2.5
     eng = StreamEngine("s")
     recs, _ = run(eng, t, x)
-    assert recs == []
+    assert [r.phase for r in recs] == ["detected", "confirmed"]
+    assert abs(recs[1].shift_at - t[60]) <= 2 and recs[0].detected_at <= t[70]
     assert eng.level is not None and abs(eng.level - 22.5) < 0.2
 
 
@@ -269,14 +273,27 @@ def test_autocorrelated_noise_is_prewhitened() -> None:
     assert conf.shift_at_high - conf.shift_at_low >= 20
 
 
-def test_a_transient_excursion_is_dismissed() -> None:
+def test_a_transient_excursion_is_reported_with_its_return() -> None:
+    # 20 samples 2.5 sigma away, then back: the step is confirmed within a few
+    # samples, and the return is its own event whose record says "returned",
+    # names the excursion's event and when it went back.
     t = T0 + np.arange(3000.0)
     x = gaussian(3000, 0.0, 1.0, 13)
-    x[1000:1020] += 2.5  # 20 samples away, then back: not a lasting step
+    x[1000:1020] += 2.5
     recs, _ = run(StreamEngine("s"), t, x)
-    phases = [r.phase for r in recs]
-    assert phases[0] == "detected"
-    assert "dismissed" in phases and "confirmed" not in phases
+    assert [r.phase for r in recs] == ["detected", "confirmed", "detected", "returned"]
+    assert recs[3].excursion_id == recs[0].id and recs[3].excursion_start == recs[1].shift_at
+    assert abs(recs[1].shift_at - t[1000]) <= 2 and abs(recs[3].shift_at - t[1020]) <= 2
+
+
+def test_a_short_blip_that_never_settles_is_dismissed() -> None:
+    # Three samples 2.5 sigma away are not a lasting step: the event that
+    # opens on them is dismissed once the level is seen to be back.
+    t = T0 + np.arange(3000.0)
+    x = gaussian(3000, 0.0, 1.0, 13)
+    x[1000:1004] += 3.5
+    recs, _ = run(StreamEngine("s"), t, x)
+    assert [r.phase for r in recs] in (["detected", "dismissed"], [])
 
 
 def test_state_and_counters_are_reported() -> None:
@@ -302,7 +319,10 @@ def test_a_restored_snapshot_carries_on_exactly(test: str) -> None:
     x[[700, 2000]] += 9.0
     settings = DetectionSettings(test=test)
     ref = [r.to_dict() for r in run(StreamEngine("s", settings), t, x, batch=250)[0]]
-    assert [d["phase"] for d in ref] == ["detected", "confirmed", "detected", "confirmed"]
+    # The second step goes back to within half the first step of the old level:
+    # its record is "returned" (the end of an excursion).
+    assert [d["phase"] for d in ref] == ["detected", "confirmed", "detected", "returned"]
+    assert ref[3]["excursion_id"] == ref[0]["id"]
     cuts = [60, 700, 1530, 1545, 2930, 3500]
     eng = StreamEngine("s", settings)
     got, states = [], set()

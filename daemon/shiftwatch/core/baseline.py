@@ -152,6 +152,9 @@ class Baseline:
     innovation_sigma : sigma of the prewhitened residuals x_t - level - phi (x_(t-1) - level).
     interval : median sampling interval in seconds.
     n : number of samples the estimate rests on.
+    n_level : number of samples the level alone rests on, when fewer than ``n``
+        (after a confirmed step the level is re-estimated from the samples
+        after it while sigma and phi carry over); 0 means ``n``.
     quantum : reading resolution (0.0 when readings are not quantised).
     """
 
@@ -165,9 +168,16 @@ class Baseline:
     phi_raw: float = 0.0  # the lag-1 autocorrelation as estimated, before the significance rule
     clip: float = 3.0  # residuals are clipped here (lower for heavy-tailed noise)
     tail_fraction: float = 0.0  # share of residuals beyond TAIL_AT sigmas
+    n_level: int = 0  # samples behind the level when fewer than n (0: n)
+
+    @property
+    def level_n(self) -> int:
+        """How many samples the level rests on."""
+        return self.n_level if 0 < self.n_level < self.n else self.n
 
     def to_dict(self) -> dict[str, float | int]:
         return {
+            "n_level": self.n_level,
             "phi_raw": self.phi_raw,
             "clip": self.clip,
             "tail_fraction": self.tail_fraction,
@@ -435,6 +445,8 @@ class BaselineSums:
         tail_blk = self.tail / n_blk
         w_old = min(b.n, max_weight)
         w = w_old + n_blk
+        # The level may rest on fewer samples than the rest (re-anchored after a step).
+        wl_old = min(b.level_n, max_weight)
 
         def avg(a: float, c: float) -> float:
             return (a * w_old + c * n_blk) / w
@@ -444,8 +456,9 @@ class BaselineSums:
         phi = phi_raw if abs(phi_raw) >= 2.0 / math.sqrt(n) else 0.0
         tail = avg(b.tail_fraction, tail_blk)
         self.reset()
+        n_level = b.level_n + n_blk
         return Baseline(
-            level=avg(b.level, level),
+            level=(b.level * wl_old + level * n_blk) / (wl_old + n_blk),
             sigma=math.sqrt(avg(b.sigma**2, sigma**2)),
             phi=phi,
             innovation_sigma=math.sqrt(avg(b.innovation_sigma**2, innov**2)),
@@ -455,10 +468,12 @@ class BaselineSums:
             phi_raw=phi_raw,
             clip=choose_clip(tail, clip),
             tail_fraction=tail,
+            n_level=n_level if n_level < n else 0,
         )
 
 
-def estimation_adjusted_arl(arl0: float, n: int, k_min: float | None) -> float:
+def estimation_adjusted_arl(arl0: float, n: int, k_min: float | None,
+                            n_level: int | None = None) -> float:
     """The design ARL that keeps the *real* in-control ARL near ``arl0`` when the
     baseline rests on only ``n`` samples.
 
@@ -475,7 +490,10 @@ def estimation_adjusted_arl(arl0: float, n: int, k_min: float | None) -> float:
       ``exp(2 H^2 / n) = exp(a^2 / (2 k^2 n))``, added to ``a'``.
 
     ``k_min`` is the smallest reference value of the test (None for tests that
-    correct for the mean error themselves).  Both terms vanish as n grows.
+    correct for the mean error themselves).  ``n_level`` is the number of
+    samples behind the level when it differs from ``n`` (a level re-estimated
+    after a step, sigma carried over); the mean term then uses it.  Both
+    terms vanish as n grows.
 
     Examples
     --------
@@ -488,5 +506,6 @@ def estimation_adjusted_arl(arl0: float, n: int, k_min: float | None) -> float:
     nu = max(n - 1, 2)
     a_adj = 0.5 * nu * math.expm1(2.0 * a / nu) if 2.0 * a / nu < 50 else a + 50.0
     if k_min is not None and k_min > 0:
-        a_adj += a * a / (2.0 * k_min * k_min * max(n, 1))
+        n_mean = n if n_level is None else n_level
+        a_adj += a * a / (2.0 * k_min * k_min * max(n_mean, 1))
     return float(min(math.exp(min(a_adj, 60.0)), 1e9))

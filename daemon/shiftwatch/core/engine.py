@@ -29,7 +29,7 @@ from __future__ import annotations
 import hashlib
 import math
 from collections import Counter
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, Iterable, NamedTuple, Sequence
 
 import numpy as np
@@ -40,8 +40,11 @@ from shiftwatch.core.baseline import (
     BaselineSums,
     estimate_baseline,
     estimation_adjusted_arl,
+    median,
     sigma_floor,
 )
+from shiftwatch.core.events import NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
+from shiftwatch.core.selfstart import SelfStart
 from shiftwatch.core.screen import screen_samples
 from shiftwatch.core.sequential import SequentialTest
 from shiftwatch.core.settings import DetectionSettings
@@ -56,6 +59,9 @@ _NOT_NEW = frozenset(("duplicate_time", "out_of_order"))
 WARMING_UP = "warming_up"
 WATCHING = "watching"
 EVENT_OPEN = "event_open"
+
+#: The phases of an event's records: one ``detected``, then one of the others.
+PHASES = ("detected", "confirmed", "returned", "dismissed", "undecided")
 
 #: Printed with every alert: shiftwatch advises, it does not protect.
 ADVISORY = (
@@ -73,7 +79,7 @@ RECORD_FIELDS = (
 
 @dataclass(frozen=True)
 class AlertRecord:
-    """One record of an event.  ``phase`` is ``detected``, ``confirmed`` or ``dismissed``.
+    """One record of an event.  ``phase`` is one of :data:`PHASES`.
 
     Times are epoch seconds here and RFC 3339 in :meth:`to_dict`.  ``as_of``
     is the time of the sample that completed the record.
@@ -104,6 +110,9 @@ class AlertRecord:
     p_value: float
     direction: str
     unit: str | None = None
+    #: for a ``returned`` record: the event whose step the level went back from, and its start
+    excursion_id: str | None = None
+    excursion_start: float | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON form: contract fields first, then the extras."""
@@ -136,6 +145,10 @@ class AlertRecord:
         }
         if self.unit is not None:
             d["unit"] = self.unit
+        if self.excursion_id is not None:
+            d["excursion_id"] = self.excursion_id
+        if self.excursion_start is not None:
+            d["excursion_start"] = format_time(self.excursion_start)
         return d
 
 
@@ -158,7 +171,8 @@ def event_id(stream: str, detected_at: float) -> str:
     return h.hexdigest()
 
 
-def make_test(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: float = math.inf) -> SequentialTest:
+def make_test(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: float = math.inf,
+              *, n_level: float | None = None) -> SequentialTest:
     """Build the configured sequential test for an in-control ARL of ``arl0`` samples.
 
     ``shift_z`` is the smallest shift of interest in units of the test's input
@@ -166,30 +180,33 @@ def make_test(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: f
     the number of samples the baseline rests on: while it is small the test
     is designed for a longer ARL (see :func:`estimation_adjusted_arl`), so the
     false-alarm rate the plant chose holds from the first minutes on.
+    ``n_level`` is the number of samples behind the level when fewer (a
+    level re-estimated after a step, the noise estimates carried over).
     """
     # Designs are cached; putting their inputs on grids lets thousands of
     # streams share a handful of them.  The ARL is rounded up (longer, the
     # safe side) and the smallest shift down (more sensitive) on a 10% grid.
     shift_z = _grid(max(shift_z, 0.05), up=False, step=0.1)
     n = int(min(n_ref, 1e9))
+    nl = n if n_level is None else int(min(n_level, n))
     if settings.test == "glr":
         from shiftwatch.core.glr import GlrTest
 
         # The GLR corrects for the error of the estimated mean itself.
         return GlrTest.design(_design_arl(arl0, n, None), window=settings.glr_window,
-                              reference_size=n_ref)
+                              reference_size=min(n_ref, float(nl)))
     if settings.test == "multi_cusum":
         from shiftwatch.core.multicusum import DEFAULT_MULTIPLES, MultiCusumTest
 
         # The chart with the smallest reference value is the one most
         # sensitive to an error in the estimated mean.
         k_min = min(DEFAULT_MULTIPLES) * shift_z / 2.0
-        target = _design_arl(arl0, n, k_min)
+        target = _design_arl(arl0, n, k_min, nl)
         return MultiCusumTest.design(target, shift_z, approximate=target > 1.25 * arl0)
     if settings.test == "cusum":
         from shiftwatch.core.cusum import CusumTest
 
-        return CusumTest.design(_design_arl(arl0, n, shift_z / 2.0), shift_z)
+        return CusumTest.design(_design_arl(arl0, n, shift_z / 2.0, nl), shift_z)
     from shiftwatch.core.river_adapter import RiverTest
 
     return RiverTest(settings.test)
@@ -350,19 +367,6 @@ class _WindowStore:
         self._free.append(arrays)
 
 
-@dataclass
-class _Event:
-    id: str
-    detected_at: float
-    test: str
-    statistic: float
-    threshold: float
-    target_inputs: int  # samples to keep after the trip before deciding
-    trip_len: int  # samples in the event's fitter at the trip
-    level_after: float  # the new level as first fitted: the centre for the spike check
-    consumed: int = 0  # samples kept since the trip
-
-
 class Rejection(NamedTuple):
     """A rejected sample: its position in the batch (-1 for a sample of an
     earlier batch, such as one held for the spike check), reason code and time."""
@@ -386,6 +390,10 @@ class BatchResult:
 #: two samples per round, and a dozen array operations on them cost far more
 #: than the arithmetic.
 SMALL_BATCH = 8
+
+#: A level re-estimated after a step is measured self-starting (see :mod:`.selfstart`)
+#: until it rests on this many samples; then it becomes the baseline's fixed level.
+YOUNG_END = 1000
 
 #: The settings of engines built without any (frozen, so one is shared).
 _DEFAULT_SETTINGS = DetectionSettings()
@@ -419,9 +427,10 @@ class StreamEngine:
     # One engine per stream, thousands of them in the daemon: no per-instance dict.
     __slots__ = (
         "stream", "settings", "unit", "_state", "_window", "_fitter", "_sums", "_baseline",
-        "_test", "_test_arl0", "_test_shift_z", "_test_n_ref", "_prev_r", "_pending", "_prev_out",
+        "_test", "_test_arl0", "_test_shift_z", "_test_n_ref", "_test_n_level", "_prev_r", "_pending", "_prev_out",
         "_event", "_unfolded", "_watch_kept", "_next_refine", "_refine_block", "_last_time",
-        "samples_total", "rejected_total", "records_total", "last_shift_at",
+        "samples_total", "rejected_total", "records_total", "last_shift_at", "_last_step",
+        "_young", "_provisional",
     )
 
     def __init__(self, stream: str, settings: DetectionSettings | None = None, *,
@@ -442,10 +451,14 @@ class StreamEngine:
         self._test_arl0 = 0.0
         self._test_shift_z = 0.0
         self._test_n_ref = 0.0
+        self._test_n_level = 0
         self._prev_r = 0.0
         self._pending: tuple[float, float] | None = None  # held possible spike
         self._prev_out = 0  # direction in which the last kept sample was an outlier (0: it was not)
-        self._event: _Event | None = None
+        self._event: OpenEvent | None = None
+        self._last_step: StepMemory | None = None  # the last confirmed step, to recognise its return
+        self._young: SelfStart | None = None  # the level while it rests on few samples
+        self._provisional = False  # the baseline is a stand-in for an event during the first warm-up
         self._unfolded = 0  # newest samples not yet folded into the baseline sums
         self._watch_kept = 0  # samples kept while watching since the baseline was set
         self._next_refine = 0  # value of _watch_kept at which the baseline is refined next
@@ -577,22 +590,29 @@ class StreamEngine:
         self._window.push(x, t)
 
     def _warm(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
+        """The first warm-up: collect ``warmup_samples`` for a robust baseline, watching
+        meanwhile with a self-starting test, so a new stream can alert within its
+        first samples (see :mod:`.selfstart`)."""
         s = self.settings
         need = s.warmup_samples - len(self._window)
         take = int(max(min(need, t.shape[0]), 0))
-        self._window.extend(x[:take], t[:take])
-        if len(self._window) < s.warmup_samples:
-            return take
+        if self._young is None:
+            self._young = SelfStart(None)
+        if need > 0:
+            used = self._watch_young(t, x, idx, need, result)
+            if self._state != WARMING_UP or len(self._window) < s.warmup_samples:
+                return used
+            take = used
         wt, wx = self._window.times, self._window.values
         b = estimate_baseline(wt, wx, clip=s.clip_sigma, min_sigma=s.min_sigma)
         lone, _ = lone_outliers((wx - b.level) / b.sigma, s.spike_sigma)
         if lone.any():
             # Spikes inside the warm-up: discard them and wait for more samples.
-            first = wt.shape[0] - take  # window index of this call's first sample
             result.rejected.extend(
-                Rejection(int(idx[j - first]) if j >= first else -1, "spike", float(wt[j]))
+                Rejection(_batch_position(t[:take], idx, float(wt[j])), "spike", float(wt[j]))
                 for j in np.flatnonzero(lone))
             self._window.reset_to(wx[~lone].copy(), wt[~lone].copy())
+            self._young = _young_from(self._window.values)
             return take
         # A warm-up that holds a clear shift starts again from the shift.
         clipped = b.level + np.clip((wx - b.level) / b.sigma, -b.clip, b.clip) * b.sigma
@@ -600,13 +620,19 @@ class StreamEngine:
         if (fit is not None and fit.p_value < s.confirm_p_value
                 and abs(fit.delta) >= 0.5 * s.min_shift_sigma * b.sigma):
             self._window.drop_front(fit.index)
+            self._young = _young_from(self._window.values)
             return take
         self._start_watching(b)
         return take
 
     def _start_watching(self, b: Baseline) -> None:
         self._baseline = b
+        self._provisional = False
+        self._young = None
         self._state = WATCHING
+        # The self-starting test's evidence was measured against another level:
+        # the test for the fixed baseline starts afresh.
+        self._test = None
         self._design_test()
         self._prev_r = 0.0
         self._pending = None
@@ -624,7 +650,7 @@ class StreamEngine:
         arl0 = self.settings.arl0(b.interval)
         shift_z = self.settings.min_shift_sigma * b.sigma * (1.0 - b.phi) / b.innovation_sigma
         old = self._test
-        self._test = make_test(self.settings, arl0, shift_z, float(b.n))
+        self._test = make_test(self.settings, arl0, shift_z, float(b.n), n_level=b.level_n)
         if old is not None and old.name == self._test.name:
             try:
                 self._test.set_state(old.get_state())
@@ -633,6 +659,7 @@ class StreamEngine:
         self._test_arl0 = arl0
         self._test_shift_z = shift_z
         self._test_n_ref = float(b.n)
+        self._test_n_level = b.level_n
 
     # ----------------------------------------------------------- watching
     def _split_spikes(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], center: float,
@@ -700,7 +727,143 @@ class StreamEngine:
         spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in np.flatnonzero(lone)]
         return t[kept], x[kept], spikes, n_in, osign[kept], settled[kept]
 
+    def _young_test(self) -> SequentialTest:
+        """The test for self-starting inputs: they are N(0, 1) however few samples the
+        level rests on, so it is designed for the plant's ARL with no allowance."""
+        if self._test is None:
+            b = self._baseline
+            if b is None:
+                dt = np.diff(self._window.times)
+                interval = median(dt) if dt.shape[0] else 1.0
+                shift_z = self.settings.min_shift_sigma
+                n = 1e9
+            else:
+                interval = b.interval
+                shift_z = self.settings.min_shift_sigma * b.sigma * (1.0 - b.phi) / b.innovation_sigma
+                n = float(b.n)
+            arl0 = self.settings.arl0(interval if interval > 0 else 1.0)
+            self._test = make_test(self.settings, arl0, shift_z)
+            self._test_arl0, self._test_shift_z, self._test_n_ref = arl0, shift_z, n
+            self._test_n_level = 0 if b is None else b.level_n
+        return self._test
+
+    def _watch_young(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], limit: int,
+                     result: BatchResult) -> int:
+        """Watch until ``limit`` samples are kept, one at a time against the young level.
+
+        Each sample is judged with the level and spread known when it comes, so
+        the outcome does not depend on batching.  Lone spikes are held one
+        sample and set aside as in :meth:`_watch`; a kept sample is standardised
+        against the samples before it (:class:`.selfstart.SelfStart`), clipped,
+        and fed to the test.  Returns the input samples consumed: it stops after
+        a trip, and after the sample that makes a re-anchored level old enough
+        to be fixed.
+        """
+        ys = self._young
+        assert ys is not None
+        s = self.settings
+        b = self._baseline
+        clip = s.clip_sigma if b is None else b.clip
+        kept = 0
+        pend_pos = -1  # batch position of the held sample (-1: held from an earlier batch)
+        for i, (tv, xv) in enumerate(zip(t.tolist(), x.tolist())):
+            if kept >= limit:
+                return i
+            spread = ys.spread() if b is None else b.sigma
+            out = 0
+            if spread > 0 and ys.n >= SelfStart.MIN_UNKNOWN:
+                dev = (xv - ys.mean) / spread
+                out = 1 if dev > s.spike_sigma else (-1 if dev < -s.spike_sigma else 0)
+            if self._pending is not None:
+                pt, px = self._pending
+                self._pending = None
+                p_out = 1 if px > ys.mean else -1
+                if out == p_out:
+                    # Two outliers on one side: the start of a large step.  The held
+                    # one is kept, settled by this one.
+                    self._prev_out = out
+                    kept += 1
+                    if self._feed_young(pt, px, clip):
+                        self._young_event(pt, result, tv)
+                        return i
+                    if kept >= limit or self._young_settled():
+                        return i
+                else:
+                    result.rejected.append(Rejection(pend_pos, "spike", pt))
+            elif out != 0 and out != self._prev_out:
+                self._pending = (tv, xv)
+                pend_pos = int(idx[i])
+                continue
+            self._prev_out = out
+            kept += 1
+            if self._feed_young(tv, xv, clip):
+                self._young_event(tv, result, tv)
+                return i + 1
+            if self._young_settled():
+                return i + 1
+        return t.shape[0]
+
+    def _feed_young(self, tv: float, xv: float, clip: float) -> bool:
+        """One kept sample of the young phase; True when the test trips on it."""
+        ys = self._young
+        assert ys is not None
+        z = ys.standardise(xv)
+        self._window.push(xv, tv)
+        if z is None:
+            ys.add(xv)
+            return False
+        if abs(z) <= self.settings.spike_sigma:
+            ys.add(xv)
+        else:
+            ys.prev = xv  # the start of a large step: fed, but kept out of the level
+        return self._young_test().update_one(-clip if z < -clip else (clip if z > clip else z))
+
+    def _young_settled(self) -> bool:
+        """After a re-anchor: fix the level once it rests on :data:`YOUNG_END` samples."""
+        ys = self._young
+        if self._state == WATCHING and ys is not None and ys.n >= YOUNG_END:
+            self._settle_young()
+            return True
+        return False
+
+    def _young_event(self, detected_at: float, result: BatchResult, as_of: float) -> None:
+        """Open an event from the young phase, the baseline standing at the young level."""
+        ys = self._young
+        assert ys is not None
+        b = self._baseline
+        if b is None:
+            dt = np.diff(self._window.times)
+            interval = median(dt) if dt.shape[0] else 1.0
+            sd = max(ys.spread(), sigma_floor(ys.mean, 0.0, self.settings.min_sigma))
+            b = Baseline(level=ys.mean, sigma=sd, phi=0.0, innovation_sigma=sd,
+                         interval=interval if interval > 0 else 1.0, n=max(ys.n, 1), quantum=0.0,
+                         clip=self.settings.clip_sigma)
+            self._provisional = True
+        else:
+            b = replace(b, level=ys.mean, n_level=ys.n if ys.n < b.n else 0)
+        self._baseline = b
+        self._prev_r = 0.0 if ys.prev is None else ys.prev - b.level
+        self._open_event(detected_at, result, as_of)
+
+    def _settle_young(self) -> None:
+        """A re-anchored level that rests on enough samples becomes the baseline's level."""
+        ys = self._young
+        b = self._baseline
+        assert ys is not None and b is not None
+        self._baseline = replace(b, level=ys.mean, n_level=ys.n if ys.n < b.n else 0)
+        self._young = None
+        self._prev_r = 0.0 if ys.prev is None else ys.prev - ys.mean
+        self._sums.reset()
+        self._unfolded = 0
+        self._watch_kept = 0
+        self._refine_block = 64
+        self._next_refine = self.settings.baseline_guard + self._refine_block
+        self._test = None
+        self._design_test()
+
     def _watch(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
+        if self._young is not None:
+            return self._watch_young(t, x, idx, t.shape[0], result)
         if t.shape[0] <= SMALL_BATCH and self._pending is None:
             used = self._watch_small(t, x, result)
             if used:
@@ -808,8 +971,9 @@ class StreamEngine:
             return
         self._baseline = nb
         k_min = None if s.test == "glr" else 0.5
-        grown = abs(math.log(estimation_adjusted_arl(1e6, nb.n, k_min)
-                             / estimation_adjusted_arl(1e6, int(self._test_n_ref), k_min))) > 0.05
+        grown = abs(math.log(estimation_adjusted_arl(1e6, nb.n, k_min, nb.level_n)
+                             / estimation_adjusted_arl(1e6, int(self._test_n_ref), k_min,
+                                                       self._test_n_level))) > 0.05
         if (grown or abs(nb.interval - b.interval) > 0.1 * b.interval or (nb.phi == 0) != (b.phi == 0)
                 or nb.clip != b.clip):
             self._design_test()
@@ -821,8 +985,7 @@ class StreamEngine:
         when the tripping sample was an outlier kept because that one confirmed it."""
         s = self.settings
         b = self._baseline
-        test = self._test
-        assert b is not None and test is not None
+        assert b is not None
         n = len(self._window)
         start = max(0, n - s.window_samples)
         # Samples still inside the guard may hold the start of the step, and
@@ -830,22 +993,34 @@ class StreamEngine:
         # into the baseline.
         self._unfolded = 0
         self._fitter = StepFitter(self._window.values[start:].copy(), self._window.times[start:].copy())
+        self._begin_event(detected_at, result, as_of)
+
+    def _begin_event(self, detected_at: float, result: BatchResult, as_of: float) -> None:
+        """Open an event over the fitter as it stands (its last sample is the detection)."""
+        b = self._baseline
+        test = self._test
+        assert b is not None and test is not None and self._fitter is not None
         fit = self._fit(b)
-        n_after = fit.n_after
-        target = max(self._required_after(fit, b) - n_after, s.confirm_min_samples)
-        ev = _Event(
+        sign = test.direction or (1 if fit.delta > 0 else -1)
+        ev = OpenEvent(
             id=event_id(self.stream, detected_at),
             detected_at=detected_at,
             test=test.name,
             statistic=float(test.statistic),
             threshold=float(test.threshold),
-            target_inputs=min(target, s.confirm_max_samples),
             trip_len=len(self._fitter),
+            level_before=fit.level_before,
             level_after=fit.level_after,
+            trial=self._new_trial(sign),
         )
         self._event = ev
         self._state = EVENT_OPEN
         result.records.append(self._record(ev, fit, "detected", as_of))
+
+    def _new_trial(self, sign: int) -> EventTrial:
+        s = self.settings
+        return EventTrial(sign, max(self._test_shift_z, 0.05), s.confirm_p_value, s.confirm_max_samples,
+                          s.confirm_min_samples)
 
     def _fit(self, b: Baseline) -> StepFit:
         """Fit the step over the event's window, reusing the fitter's running sums."""
@@ -853,70 +1028,153 @@ class StreamEngine:
         return self._fitter.fit(level=self.settings.interval_level, min_segment=2,
                                 variance_factor=_variance_factor(b.phi))
 
-    def _required_after(self, fit: StepFit, b: Baseline) -> int:
-        s = self.settings
-        # The detected step is biased upward (it is what tripped the test), so
-        # plan for the smaller of it and the smallest shift of interest.
-        size = max(min(abs(fit.delta) / b.sigma, s.min_shift_sigma), 0.25 * s.min_shift_sigma)
-        n = math.ceil((1.0 / (s.confirm_precision * size)) ** 2 * _variance_factor(b.phi))
-        return int(min(max(n, s.confirm_min_samples), s.confirm_max_samples))
-
     def _track(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
+        """Feed an open event: every kept sample goes to the step fit and to the
+        event's sequential decision (:class:`.events.EventTrial`), which stops at
+        the sample that decides, however the stream is batched."""
         ev = self._event
         b = self._baseline
-        assert ev is not None and b is not None
-        # Kept samples are counted, so the decision falls on the same sample
-        # however the stream is batched.  The target was set at the trip:
-        # enough samples for the new level to be known well, and never only
-        # the samples that tripped the test.
+        assert ev is not None and b is not None and self._fitter is not None
         kt, kx, spikes, used, osign, _ = self._split_spikes(t, x, idx, ev.level_after, b.sigma,
-                                                         ev.target_inputs - ev.consumed)
-        if kt.shape[0]:
+                                                         max(ev.trial.limit - ev.trial.m, 1))
+        if kt.shape[0] == 0:
+            result.rejected.extend(spikes)
+            return used
+        r = kx - b.level
+        e = r.copy()
+        if b.phi != 0.0:
+            e[0] -= b.phi * self._prev_r
+            e[1:] -= b.phi * r[:-1]
+        # Residuals from the level fitted before the step, not the baseline's.
+        e -= (1.0 - b.phi) * (ev.level_before - b.level)
+        z = e * (1.0 / b.innovation_sigma)
+        np.clip(z, -b.clip, b.clip, out=z)
+        i, outcome = ev.trial.feed(z)
+        if i < 0:
+            result.rejected.extend(spikes)
             self._prev_out = 0 if osign is None else int(osign[-1])
-        result.rejected.extend(spikes)
-        assert self._fitter is not None
-        self._fitter.extend(kx, kt)
-        self._window.extend(kx, kt)
-        ev.consumed += kt.shape[0]
-        if ev.consumed >= ev.target_inputs:
-            self._decide(result, float(kt[-1]))
-        return used
+            self._prev_r = float(r[-1])
+            self._fitter.extend(kx, kt)
+            self._window.extend(kx, kt)
+            return used
+        # Consume up to and including the deciding sample; the rest is fed
+        # again (a sample held for the spike check included).
+        t_dec = float(kt[i])
+        result.rejected.extend(rj for rj in spikes if rj.time < t_dec)
+        self._pending = None
+        self._prev_out = 0 if osign is None else int(osign[i])
+        self._prev_r = float(r[i])
+        self._fitter.extend(kx[: i + 1], kt[: i + 1])
+        self._window.extend(kx[: i + 1], kt[: i + 1])
+        self._decide(outcome, result, t_dec)
+        return int(np.searchsorted(t, t_dec, side="right"))
 
-    def _decide(self, result: BatchResult, as_of: float) -> None:
-        s = self.settings
+    def _decide(self, outcome: str, result: BatchResult, as_of: float) -> None:
+        """End the open event as its trial decided (see :mod:`.events`)."""
         ev = self._event
         b = self._baseline
-        assert ev is not None and b is not None
+        assert ev is not None and b is not None and self._fitter is not None
         fit = self._fit(b)
-        assert self._fitter is not None
-        # A step persists: the latest samples (the later half of those that
-        # arrived after the trip) must sit nearer the new level than the old.
-        fresh = self._fitter.values[ev.trip_len:]
-        fresh = fresh[fresh.shape[0] // 2:]
-        persists = fresh.shape[0] > 0 and (
-            (float(np.mean(fresh)) - fit.level_before) * math.copysign(1.0, fit.delta) >= 0.5 * abs(fit.delta))
-        real = (fit.p_value < s.confirm_p_value
-                and abs(fit.delta) >= 0.5 * s.min_shift_sigma * b.sigma
-                and fit.n_after >= s.confirm_min_samples
-                and persists)
-        phase = "confirmed" if real else "dismissed"
-        result.records.append(self._record(ev, fit, phase, as_of))
-        self._event = None
-        assert self._test is not None
-        self._test.reset()
-        if real:
-            self.last_shift_at = fit.shift_at
-            # Warm up again on the new level, keeping what we know of it.
-            self._window.reset_to(self._fitter.values[fit.index:], self._fitter.times[fit.index:])
-            self._fitter = None
-            self._state = WARMING_UP
-            self._pending = None
-            if len(self._window) >= s.warmup_samples:
-                self._warm(np.empty(0), np.empty(0), np.empty(0, dtype=np.intp), result)
-        else:
+        late = fit.index >= ev.trip_len
+        if late and outcome == STEP:
+            # The step the samples show began after the detection: that detection
+            # was not this step.  It ends as dismissed (with the fit it had), and the
+            # step gets an event of its own, detected now, so nothing is thrown away.
+            self._end_event(ev, "dismissed", self._fit_until_trip(ev, b), result, as_of)
+            self._state = EVENT_OPEN
+            self._begin_event(as_of, result, as_of)
+            return
+        shown = self._fit_until_trip(ev, b) if late else fit  # what the record says
+        if outcome == NO_STEP:
+            self._end_event(ev, "dismissed", shown, result, as_of)
             self._state = WATCHING
-            self._prev_r = float(self._window.values[-1] - b.level)
+            ys = self._young
+            if ys is not None:
+                # The level held: the event's samples belong to it.
+                for v in self._fitter.values[ev.trip_len:].tolist():
+                    ys.add(v)
+                if self._provisional:
+                    self._baseline = None
+                    self._provisional = False
+                    self._state = WARMING_UP
             self._fitter = None
+            assert self._test is not None
+            self._test.reset()
+            return
+        if outcome == STEP:
+            phase = "confirmed"
+            last = self._last_step
+            extra: dict[str, Any] = {}
+            if last is not None and last.is_return(level_after=fit.level_after, delta=fit.delta):
+                phase = "returned"
+                extra = {"excursion_id": last.id, "excursion_start": last.shift_at}
+                self._last_step = None
+            else:
+                self._last_step = StepMemory(ev.id, shift_at=fit.shift_at,
+                                             level_before=fit.level_before, delta=fit.delta)
+            self.last_shift_at = fit.shift_at
+            self._end_event(ev, phase, fit, result, as_of, **extra)
+        else:
+            self._end_event(ev, "undecided", shown, result, as_of)
+        self._reanchor(fit.index)
+
+    def _fit_until_trip(self, ev: OpenEvent, b: Baseline) -> StepFit:
+        """The step fit over the samples up to the detection only."""
+        assert self._fitter is not None
+        n = ev.trip_len
+        vals, times = self._fitter.values[:n], self._fitter.times[:n]
+        fit = _fit(vals, times, level=self.settings.interval_level, variance_factor=_variance_factor(b.phi))
+        if fit is None:  # too few samples to fit: the whole window's fit, clamped on output
+            return self._fit(b)
+        return fit
+
+    def _end_event(self, ev: OpenEvent, phase: str, fit: StepFit, result: BatchResult, as_of: float,
+                   **extra: Any) -> None:
+        result.records.append(self._record(ev, fit, phase, as_of, **extra))
+        self._event = None
+
+    def _reanchor(self, index: int) -> None:
+        """Watch on from the next sample with the level the samples after the step show.
+
+        Sigma, autocorrelation, clip and sampling interval describe the noise,
+        which a step in level does not change: they carry over.  The level
+        starts from the samples after the step and is measured self-starting
+        (:mod:`.selfstart`) until it rests on :data:`YOUNG_END` samples, so a
+        second step, or the return of an excursion, is found at once and the
+        false-alarm rate holds meanwhile.  During the first warm-up (no
+        baseline yet) the warm-up simply goes on from the step, the spread
+        pooled over both levels.
+        """
+        b = self._baseline
+        assert b is not None and self._fitter is not None and self._test is not None
+        vals = self._fitter.values[index:].copy()
+        times = self._fitter.times[index:].copy()
+        self._window.reset_to(vals, times)
+        self._fitter = None
+        self._pending = None
+        self._prev_out = 0
+        self._sums.reset()
+        self._unfolded = 0
+        self._watch_kept = 0
+        old = self._young
+        if self._provisional:
+            ys = SelfStart(None, ss=0.0 if old is None else old.ss, df=0 if old is None else old.df)
+            self._baseline = None
+            self._provisional = False
+            self._state = WARMING_UP
+        else:
+            ys = SelfStart(b.innovation_sigma, b.phi)
+            self._state = WATCHING
+        for v in vals.tolist():
+            ys.add(v)
+        self._young = ys
+        if self._baseline is not None:
+            self._baseline = replace(b, level=ys.mean, n_level=ys.n if ys.n < b.n else 0)
+            self._prev_r = float(vals[-1] - ys.mean)
+        # Self-starting inputs need no allowance for the young level: the test is
+        # designed for the plant's ARL and starts afresh.
+        self._test = None
+        self._young_test()
 
     # ------------------------------------------------------------ snapshots
     def get_state(self) -> dict[str, Any]:
@@ -938,14 +1196,15 @@ class StreamEngine:
             "baseline": None if self._baseline is None else self._baseline.to_dict(),
             "test": None if self._test is None else {
                 "name": self._test.name, "arl0": self._test_arl0, "shift_z": self._test_shift_z,
-                "n_ref": self._test_n_ref, "state": self._test.get_state()},
+                "n_ref": self._test_n_ref, "n_level": self._test_n_level,
+                "state": self._test.get_state()},
             "prev_r": self._prev_r,
             "pending": None if self._pending is None else list(self._pending),
             "prev_out": self._prev_out,
-            "event": None if ev is None else {
-                "id": ev.id, "detected_at": ev.detected_at, "test": ev.test, "statistic": ev.statistic,
-                "threshold": ev.threshold, "target_inputs": ev.target_inputs,
-                "trip_len": ev.trip_len, "level_after": ev.level_after, "consumed": ev.consumed},
+            "event": None if ev is None else ev.get_state(),
+            "last_step": None if self._last_step is None else self._last_step.get_state(),
+            "young": None if self._young is None else self._young.get_state(),
+            "provisional": self._provisional,
             "watch_kept": self._watch_kept,
             "next_refine": self._next_refine,
             "refine_block": self._refine_block,
@@ -957,79 +1216,126 @@ class StreamEngine:
         }
 
     def set_state(self, state: dict[str, Any]) -> None:
-        """Restore what :meth:`get_state` produced.  Raises ``ValueError`` on malformed state."""
+        """Restore what :meth:`get_state` produced (this version's or an earlier one's).
+
+        Every field is checked: a malformed state raises ``ValueError`` whose
+        message names the field, and leaves the engine as new (warming up).
+        """
+        field_name = "state"
         try:
             self._reset()
             st = str(state["state"])
             if st not in (WARMING_UP, WATCHING, EVENT_OPEN):
-                raise ValueError(f"unknown engine state {st!r}")
+                raise ValueError(f"state: unknown engine state {st!r}")
             self._state = st
-            times = np.asarray(state["times"], dtype=np.float64)
-            values = np.asarray(state["values"], dtype=np.float64)
+            field_name = "times"
+            times = _finite_array(state["times"], "times")
+            values = _finite_array(state["values"], "values")
             if times.shape != values.shape:
-                raise ValueError("times and values differ in length")
+                raise ValueError("times, values: differ in length")
             self._window.reset_to(values, times)
+            field_name = "event_times"
             ev_t, ev_v = state["event_times"], state["event_values"]
-            self._fitter = None if ev_t is None else StepFitter(np.asarray(ev_v, dtype=np.float64),
-                                                                  np.asarray(ev_t, dtype=np.float64))
-            self._sums = BaselineSums.from_list(list(state["sums"]))
-            self._unfolded = int(state["unfolded"])
+            if (ev_t is None) != (ev_v is None):
+                raise ValueError("event_times, event_values: one is missing")
+            if ev_t is not None:
+                et, evv = _finite_array(ev_t, "event_times"), _finite_array(ev_v, "event_values")
+                if et.shape != evv.shape:
+                    raise ValueError("event_times, event_values: differ in length")
+                self._fitter = StepFitter(evv, et)
+            field_name = "sums"
+            sums = list(state["sums"])
+            if len(sums) != 10 or not all(v is None or math.isfinite(float(v)) for v in sums):
+                raise ValueError(f"sums: expected 10 finite numbers or nulls, got {sums!r:.80}")
+            self._sums = BaselineSums.from_list(sums)
+            field_name = "unfolded"
+            self._unfolded = _count(state["unfolded"], "unfolded")
+            field_name = "baseline"
             b = state["baseline"]
             self._baseline = None if b is None else _baseline_from(b)
+            field_name = "test"
             ts = state["test"]
             if ts is not None:
                 if ts["name"] != self.settings.test:
-                    raise ValueError(f"snapshot was made with test {ts['name']!r}, settings say "
+                    raise ValueError(f"test: the snapshot was made with test {ts['name']!r}, settings say "
                                      f"{self.settings.test!r}")
-                self._test = make_test(self.settings, float(ts["arl0"]), float(ts["shift_z"]),
-                                       float(ts["n_ref"]))
-                self._test_arl0 = float(ts["arl0"])
-                self._test_shift_z = float(ts["shift_z"])
-                self._test_n_ref = float(ts["n_ref"])
+                arl0, shift_z, n_ref = (_positive(ts[k], f"test.{k}") for k in ("arl0", "shift_z", "n_ref"))
+                # Snapshots before level re-anchoring have no n_level: the level rested on n_ref.
+                n_level = _count(ts.get("n_level", int(min(n_ref, 1e9))), "test.n_level")
+                self._test = make_test(self.settings, arl0, shift_z, n_ref, n_level=n_level)
+                self._test_arl0, self._test_shift_z, self._test_n_ref = arl0, shift_z, n_ref
+                self._test_n_level = n_level
                 self._test.set_state(ts["state"])
-            self._prev_r = float(state["prev_r"])
+            field_name = "prev_r"
+            self._prev_r = _finite_number(state["prev_r"], "prev_r")
+            field_name = "pending"
             p = state["pending"]
-            self._pending = None if p is None else (float(p[0]), float(p[1]))
+            if p is not None:
+                if len(p) != 2:
+                    raise ValueError(f"pending: expected [time, value], got {p!r:.80}")
+                self._pending = (_finite_number(p[0], "pending"), _finite_number(p[1], "pending"))
+            field_name = "prev_out"
             self._prev_out = int(state["prev_out"])
+            if self._prev_out not in (-1, 0, 1):
+                raise ValueError(f"prev_out: must be -1, 0 or 1, got {self._prev_out}")
+            field_name = "event"
             e = state["event"]
-            self._event = None if e is None else _Event(
-                id=str(e["id"]), detected_at=float(e["detected_at"]), test=str(e["test"]),
-                statistic=float(e["statistic"]), threshold=float(e["threshold"]),
-                target_inputs=int(e["target_inputs"]),
-                trip_len=int(e["trip_len"]), level_after=float(e["level_after"]),
-                consumed=int(e["consumed"]))
+            if e is not None:
+                sign = 1 if float(e.get("level_after", 0.0)) >= (
+                    self._baseline.level if self._baseline is not None else 0.0) else -1
+                self._event = OpenEvent.from_state(
+                    e, lambda: self._new_trial(sign),
+                    self._baseline.level if self._baseline is not None else 0.0)
+            field_name = "last_step"
+            ls_ = state.get("last_step")
+            self._last_step = None if ls_ is None else StepMemory.from_state(ls_)
+            field_name = "young"
+            yg = state.get("young")
+            self._young = None if yg is None else SelfStart.from_state(yg)
+            self._provisional = bool(state.get("provisional", False))
             if (st != WARMING_UP and (self._baseline is None or self._test is None)) or \
                     (st == EVENT_OPEN) != (self._event is not None) or \
                     (self._event is None) != (self._fitter is None):
-                raise ValueError("snapshot is inconsistent with its state")
-            self._watch_kept = int(state["watch_kept"])
-            self._next_refine = int(state["next_refine"])
-            self._refine_block = int(state["refine_block"])
+                raise ValueError("state: the snapshot is inconsistent with its state")
+            field_name = "watch_kept"
+            self._watch_kept = _count(state["watch_kept"], "watch_kept")
+            self._next_refine = _count(state["next_refine"], "next_refine")
+            self._refine_block = _count(state["refine_block"], "refine_block")
+            field_name = "last_time"
             lt = state["last_time"]
-            self._last_time = -math.inf if lt is None else float(lt)
-            self.samples_total = int(state["samples_total"])
+            self._last_time = -math.inf if lt is None else _finite_number(lt, "last_time")
+            field_name = "samples_total"
+            self.samples_total = _count(state["samples_total"], "samples_total")
+            field_name = "rejected_total"
             self.rejected_total = (Counter({str(k): int(v) for k, v in state["rejected_total"].items()})
                                    or _NO_COUNTS)
+            field_name = "records_total"
             self.records_total = (Counter({str(k): int(v) for k, v in state["records_total"].items()})
                                   or _NO_COUNTS)
+            field_name = "last_shift_at"
             ls = state["last_shift_at"]
-            self.last_shift_at = None if ls is None else float(ls)
-        except (KeyError, TypeError, AttributeError) as exc:
-            self._reset()
-            raise ValueError(f"malformed engine state: {exc!r}") from None
+            self.last_shift_at = None if ls is None else _finite_number(ls, "last_shift_at")
         except ValueError:
             self._reset()
             raise
+        except (KeyError, TypeError, AttributeError, IndexError, OverflowError) as exc:
+            self._reset()
+            if isinstance(exc, KeyError):
+                raise ValueError(f"{exc.args[0]}: missing from the saved state") from None
+            raise ValueError(f"{field_name}: malformed ({exc!r:.120})") from None
 
-    def _record(self, ev: _Event, fit: StepFit, phase: str, as_of: float) -> AlertRecord:
+    def _record(self, ev: OpenEvent, fit: StepFit, phase: str, as_of: float,
+                **extra: Any) -> AlertRecord:
+        # A step is never dated after the detection that reported it: the fit of
+        # the event's samples can reach past it only at its upper bound.
         return AlertRecord(
             id=ev.id,
             phase=phase,
             stream=self.stream,
             detected_at=ev.detected_at,
-            shift_at=fit.shift_at,
-            shift_at_low=fit.shift_at_low,
-            shift_at_high=fit.shift_at_high,
+            shift_at=min(fit.shift_at, ev.detected_at),
+            shift_at_low=min(fit.shift_at_low, ev.detected_at),
+            shift_at_high=min(fit.shift_at_high, ev.detected_at),
             level_before=fit.level_before,
             level_after=fit.level_after,
             delta=fit.delta,
@@ -1048,10 +1354,11 @@ class StreamEngine:
             p_value=fit.p_value,
             direction="up" if fit.delta > 0 else "down",
             unit=self.unit,
+            **extra,
         )
 
 
-def _design_arl(arl0: float, n: int, k_min: float | None) -> float:
+def _design_arl(arl0: float, n: int, k_min: float | None, n_level: int | None = None) -> float:
     """The in-control ARL a test is designed for: adjusted for the baseline's
     estimation error and rounded up on a grid, within the calibrated range.
 
@@ -1059,7 +1366,7 @@ def _design_arl(arl0: float, n: int, k_min: float | None) -> float:
     it is within 25% of the plant's ARL the grid is fine (5%), so an
     established stream runs at almost exactly the chosen false-alarm rate.
     """
-    adj = estimation_adjusted_arl(arl0, n, k_min)
+    adj = estimation_adjusted_arl(arl0, n, k_min, n_level)
     step = 0.2 if adj > 1.25 * arl0 else 0.05
     return min(_grid(adj, step=step), 1e9)
 
@@ -1107,9 +1414,65 @@ def lone_outliers(dev: FloatArray, limit: float, prev_sign: int = 0) -> tuple[ND
 
 
 def _baseline_from(d: dict[str, Any]) -> Baseline:
-    """A Baseline from its snapshot form (``Baseline.to_dict``)."""
-    floats = {k: float(v) for k, v in d.items() if k != "n"}
-    return Baseline(n=int(d["n"]), **floats)  # type: ignore[arg-type]
+    """A Baseline from its snapshot form (``Baseline.to_dict``); ``ValueError`` names a bad field."""
+    known = {"level", "sigma", "phi", "innovation_sigma", "interval", "quantum", "phi_raw", "clip",
+             "tail_fraction"}
+    floats: dict[str, float] = {}
+    for k, v in d.items():
+        if k in ("n", "n_level"):
+            continue
+        if k not in known:
+            raise ValueError(f"baseline.{k}: unknown field")
+        floats[k] = _finite_number(v, f"baseline.{k}")
+    for k in ("sigma", "innovation_sigma", "interval"):
+        if k in floats and not floats[k] > 0:
+            raise ValueError(f"baseline.{k}: must be positive, got {floats[k]!r}")
+    n = _count(d["n"], "baseline.n")
+    n_level = _count(d.get("n_level", 0), "baseline.n_level")
+    return Baseline(n=n, n_level=n_level, **floats)  # type: ignore[arg-type]
+
+
+def _finite_number(v: Any, name: str) -> float:
+    x = float(v)
+    if not math.isfinite(x):
+        raise ValueError(f"{name}: not a finite number ({x!r})")
+    return x
+
+
+def _positive(v: Any, name: str) -> float:
+    x = _finite_number(v, name)
+    if not x > 0:
+        raise ValueError(f"{name}: must be positive, got {x!r}")
+    return x
+
+
+def _count(v: Any, name: str) -> int:
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or v != int(v) or v < 0:
+        raise ValueError(f"{name}: must be a whole number >= 0, got {v!r:.40}")
+    return int(v)
+
+
+def _finite_array(v: Any, name: str) -> FloatArray:
+    a = np.asarray(v, dtype=np.float64)
+    if a.ndim != 1:
+        raise ValueError(f"{name}: must be a list of numbers")
+    if not np.isfinite(a).all():
+        raise ValueError(f"{name}: holds a value that is not a finite number")
+    return a
+
+
+def _batch_position(t: FloatArray, idx: NDArray[np.intp], time: float) -> int:
+    """The batch position of the kept sample at ``time`` among ``t`` (-1: an earlier batch's)."""
+    j = int(np.searchsorted(t, time))
+    return int(idx[j]) if j < t.shape[0] and t[j] == time else -1
+
+
+def _young_from(values: FloatArray) -> SelfStart:
+    """A self-starting level of unknown spread over these samples."""
+    ys = SelfStart(None)
+    for v in values.tolist():
+        ys.add(v)
+    return ys
 
 
 def _time_or_nan(raw: NDArray[Any] | None, i: int) -> float:

@@ -40,7 +40,8 @@ class DetectionSettings:
     false_alarm_every: float = 7 * 86400.0
     #: which sequential test: multi_cusum (default), glr, cusum, page_hinkley, adwin
     test: str = "multi_cusum"
-    #: samples used to learn the baseline before watching starts (and after each confirmed shift)
+    #: samples used to learn a first baseline before watching starts (a new stream, or one restarted
+    #: without saved state); the baseline keeps growing from the samples after it
     warmup_samples: int = 200
     #: samples kept per stream, and looked back over by the step fit (it grows while an event is open)
     window_samples: int = 400
@@ -50,13 +51,15 @@ class DetectionSettings:
     spike_sigma: float = 5.0
     #: confidence level of the shift-time interval
     interval_level: float = 0.9
-    #: an event is decided once the new level's standard error is this fraction of the step
+    #: no longer used (events are decided by a sequential test, see core/events.py); accepted so
+    #: configuration files of earlier versions still load
     confirm_precision: float = 0.25
-    #: samples after the trip (and after the shift) before an event is decided, at least
-    confirm_min_samples: int = 30
-    #: samples after the trip before an event is decided, at most
-    confirm_max_samples: int = 600
-    #: an event is dismissed unless its one-shift test has a p-value below this
+    #: samples after the detection before an event can be decided, at least
+    confirm_min_samples: int = 1
+    #: samples after the detection after which an open event ends undecided
+    confirm_max_samples: int = 1000
+    #: error rate of the event decision: an unchanged level confirmed as a step, or a step of
+    #: min_shift_sigma dismissed, each at most this often
     confirm_p_value: float = 0.001
     #: floor for sigma in reading units (None: from the reading resolution)
     min_sigma: float | None = None
@@ -94,8 +97,8 @@ class DetectionSettings:
                 f"got {self.window_samples}")
         if not 0.5 <= self.interval_level < 1.0:
             bad("interval_level", f"must be in [0.5, 1), got {self.interval_level!r}")
-        if not 0.0 < self.confirm_p_value < 1.0:
-            bad("confirm_p_value", f"must be in (0, 1), got {self.confirm_p_value!r}")
+        if not 0.0 < self.confirm_p_value < 0.5:
+            bad("confirm_p_value", f"must be in (0, 0.5), got {self.confirm_p_value!r}")
         if self.min_shift_sigma > 4.0:
             bad("min_shift_sigma", f"must be at most 4 (larger steps are caught within a few samples "
                 f"at 4), got {self.min_shift_sigma}")

@@ -1,0 +1,291 @@
+"""The life of one event: the sequential decision after the test trips.
+
+An event opens when the stream's sequential test trips (the ``detected``
+record).  From then on every new sample is evidence about one question:
+is there a lasting step of at least the size of interest, or not?  The
+answer is a pair of Wald sequential probability ratio tests (Wald 1945,
+"Sequential tests of statistical hypotheses", Ann. Math. Statist.
+16:117-186) run on the samples that arrive *after* the trip, so the samples
+that tripped the test (and are biased towards a step by that selection) are
+not counted twice.
+
+The inputs are the same standardised, prewhitened, clipped residuals the
+sequential test sees, relative to the level before the trip; ``sign`` is
+the direction of the trip, and ``d`` the smallest step of interest in those
+units.  With ``S_m`` the sum of ``sign * z`` over ``m`` samples:
+
+* **step**: the log-likelihood ratio of "mean ``d``" against "mean 0",
+  ``d S_m - m d^2 / 2``.  At ``log((1 - beta) / alpha)`` the event is
+  *confirmed*.
+* **no step**: the log-likelihood ratio of "mean 0" against "mean
+  ``DISMISS_AT * d``", ``-c S_m + m c^2 / 2`` with ``c = DISMISS_AT * d``.
+  At the same bound the event is *dismissed*.
+* neither after ``limit`` samples: the event ends *undecided*.
+
+Wald's inequalities bound the error rates: an event on an unchanged level
+is confirmed with probability at most ``alpha``; a step of ``d`` or more is
+dismissed with probability at most ``alpha`` (both rates are set to the
+``confirm_p_value`` setting).  A real step smaller than ``d`` lies between
+the two hypotheses: the "no step" test drifts away from its bound for any
+step above ``DISMISS_AT * d / 2``, so such a step is not dismissed; it is
+confirmed at its fitted size or, if the evidence stays thin, ends
+undecided.  Either way the stream re-anchors on the new level (see
+:mod:`.engine`), so the same step is never detected twice.
+
+Expected samples to a decision (Wald's approximation ``bound / drift``,
+d = 1, bound 6.9): 3 for a 3 sigma step, 7 for 1.5 sigma, 14 for 1 sigma,
+and 25 to dismiss an event on an unchanged level.
+
+The decision falls on a fixed sample whatever the batching: the sums are
+advanced sample by sample (vectorised as cumulative sums) and the first
+sample at which a bound is crossed decides.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+from shiftwatch.core.sequential import FloatArray
+
+#: The "no step" hypothesis is tested against a step of this fraction of ``d``.
+DISMISS_AT = 0.75
+
+#: Outcomes of :meth:`EventTrial.feed`.
+PENDING = ""
+STEP = "step"
+NO_STEP = "no_step"
+NO_DECISION = "no_decision"
+
+
+class EventTrial:
+    """The two sequential tests of one open event.
+
+    Parameters
+    ----------
+    sign : +1 for an upward trip, -1 for a downward one.
+    d : the smallest step of interest, in the units of the inputs (> 0).
+    error_rate : alpha = beta of both tests (in (0, 0.5)).
+    limit : samples after which the event ends undecided (>= 1).
+    min_samples : samples before any decision (>= 1, at most ``limit``).
+
+    Examples
+    --------
+    A 3-sigma step (inputs around 3, d = 1) is confirmed within a few samples:
+
+    >>> tr = EventTrial(+1, 1.0, 0.001, 600)
+    >>> tr.feed(np.array([2.9, 3.2, 2.7, 3.1, 3.0]))
+    (2, 'step')
+    >>> tr.m, tr.outcome
+    (3, 'step')
+
+    An event on an unchanged level is dismissed:
+
+    >>> tr = EventTrial(-1, 1.0, 0.001, 600)
+    >>> i, outcome = tr.feed(np.zeros(100)); i, outcome
+    (24, 'no_step')
+    """
+
+    __slots__ = ("sign", "d", "bound", "limit", "min_samples", "m", "s", "outcome")
+
+    def __init__(self, sign: int, d: float, error_rate: float, limit: int,
+                 min_samples: int = 1) -> None:
+        if sign not in (-1, 1):
+            raise ValueError(f"sign must be +1 or -1, got {sign!r}")
+        if not (d > 0 and math.isfinite(d)):
+            raise ValueError(f"d must be a positive number, got {d!r}")
+        if not 0.0 < error_rate < 0.5:
+            raise ValueError(f"error_rate must be in (0, 0.5), got {error_rate!r}")
+        if limit < 1:
+            raise ValueError(f"limit must be at least 1, got {limit!r}")
+        self.sign = sign
+        self.d = float(d)
+        self.bound = math.log((1.0 - error_rate) / error_rate)
+        self.limit = int(limit)
+        self.min_samples = max(1, min(int(min_samples), self.limit))
+        self.m = 0
+        self.s = 0.0
+        self.outcome = PENDING
+
+    # The two log-likelihood ratios, from the sums.
+    def llr_step(self) -> float:
+        """Evidence for a step of ``d`` against none (decides at :attr:`bound`)."""
+        return self.d * self.s - 0.5 * self.m * self.d * self.d
+
+    def llr_no_step(self) -> float:
+        """Evidence for no step against one of ``DISMISS_AT * d`` (decides at :attr:`bound`)."""
+        c = DISMISS_AT * self.d
+        return -c * self.s + 0.5 * self.m * c * c
+
+    def feed(self, z: FloatArray) -> tuple[int, str]:
+        """Take inputs in time order until a decision.
+
+        Returns the index into ``z`` of the deciding sample (the samples after
+        it are not consumed) and the outcome, or ``(-1, "")`` when every
+        sample was taken and nothing is decided yet.
+        """
+        if self.outcome:
+            raise RuntimeError("the trial is decided already")
+        n = z.shape[0]
+        if n == 0:
+            return -1, PENDING
+        if n <= 4:
+            for i, v in enumerate(z.tolist()):
+                self.m += 1
+                self.s += self.sign * v
+                out = self._verdict()
+                if out:
+                    self.outcome = out
+                    return i, out
+            return -1, PENDING
+        m = self.m + np.arange(1, n + 1, dtype=np.float64)
+        s = self.s + np.cumsum(z if self.sign > 0 else -z)
+        c = DISMISS_AT * self.d
+        step = (self.d * s - 0.5 * m * self.d * self.d) >= self.bound
+        none = (-c * s + 0.5 * m * c * c) >= self.bound
+        hit = np.flatnonzero(((step | none) & (m >= self.min_samples)) | (m >= self.limit))
+        if hit.shape[0] == 0:
+            self.m += n
+            self.s = float(s[-1])
+            return -1, PENDING
+        i = int(hit[0])
+        self.m += i + 1
+        self.s = float(s[i])
+        self.outcome = self._verdict()
+        return i, self.outcome
+
+    def _verdict(self) -> str:
+        if self.m < self.min_samples:
+            return PENDING
+        if self.llr_step() >= self.bound:
+            return STEP
+        if self.llr_no_step() >= self.bound:
+            return NO_STEP
+        if self.m >= self.limit:
+            return NO_DECISION
+        return PENDING
+
+    def get_state(self) -> dict[str, Any]:
+        return {"sign": self.sign, "d": self.d, "bound": self.bound, "limit": self.limit,
+                "min_samples": self.min_samples, "m": self.m, "s": self.s}
+
+    @classmethod
+    def from_state(cls, state: dict[str, Any]) -> "EventTrial":
+        """Rebuild a trial from :meth:`get_state`; ``ValueError`` names a bad field."""
+        out = cls.__new__(cls)
+        sign = state["sign"]
+        if sign not in (-1, 1):
+            raise ValueError(f"event.trial.sign: must be +1 or -1, got {sign!r}")
+        out.sign = int(sign)
+        for name in ("d", "bound", "s"):
+            v = float(state[name])
+            if not math.isfinite(v) or (name != "s" and v <= 0):
+                raise ValueError(f"event.trial.{name}: not a usable number ({v!r})")
+            setattr(out, name, v)
+        for name in ("limit", "min_samples", "m"):
+            v = int(state[name])
+            if v < (1 if name != "m" else 0):
+                raise ValueError(f"event.trial.{name}: out of range ({v!r})")
+            setattr(out, name, v)
+        out.outcome = PENDING
+        return out
+
+
+class OpenEvent:
+    """What the engine remembers of the event it has open.
+
+    ``trip_len`` is the number of samples in the event's fitter at the trip
+    (the tripping sample is the last of them), so a refit can tell whether
+    the step it finds began before the detection or after it.
+    """
+
+    __slots__ = ("id", "detected_at", "test", "statistic", "threshold", "trip_len", "level_before",
+                 "level_after", "trial")
+
+    def __init__(self, *, id: str, detected_at: float, test: str, statistic: float,
+                 threshold: float, trip_len: int, level_before: float, level_after: float,
+                 trial: EventTrial) -> None:
+        self.id = id
+        self.detected_at = detected_at
+        self.test = test
+        self.statistic = statistic
+        self.threshold = threshold
+        self.trip_len = trip_len
+        # The level before the step as fitted at the detection (on every sample of the
+        # window before it, more than a young baseline has): the trial's reference.
+        self.level_before = level_before
+        self.level_after = level_after  # the new level as first fitted: the centre for the spike check
+        self.trial = trial
+
+    def get_state(self) -> dict[str, Any]:
+        return {"id": self.id, "detected_at": self.detected_at, "test": self.test,
+                "statistic": self.statistic, "threshold": self.threshold,
+                "trip_len": self.trip_len, "level_before": self.level_before,
+                "level_after": self.level_after,
+                "trial": self.trial.get_state()}
+
+    @classmethod
+    def from_state(cls, e: dict[str, Any], new_trial: Any, level: float) -> "OpenEvent":
+        """Rebuild from :meth:`get_state`.  Snapshots of earlier versions carry no
+        trial and no level before: ``new_trial()`` makes a trial, whose count starts
+        afresh, and ``level`` (the baseline's) is the reference."""
+        trial = e.get("trial")
+        out = cls(id=str(e["id"]), detected_at=_finite(e, "detected_at"), test=str(e["test"]),
+                  statistic=_finite(e, "statistic"), threshold=float(e["threshold"]),
+                  trip_len=int(e["trip_len"]),
+                  level_before=_finite(e, "level_before") if "level_before" in e else level,
+                  level_after=_finite(e, "level_after"),
+                  trial=new_trial() if trial is None else EventTrial.from_state(trial))
+        if out.trip_len < 1:
+            raise ValueError(f"event.trip_len: must be at least 1, got {out.trip_len}")
+        return out
+
+
+def _finite(d: dict[str, Any], key: str) -> float:
+    v = float(d[key])
+    if not math.isfinite(v):
+        raise ValueError(f"event.{key}: not a finite number ({v!r})")
+    return v
+
+
+class StepMemory:
+    """The last confirmed step of a stream, kept to recognise its return.
+
+    A later step in the opposite direction whose new level lies within half
+    the first step of the level before it ends the excursion: its record is
+    ``returned`` and names the excursion's event and start.
+
+    Examples
+    --------
+    >>> m = StepMemory("a1", shift_at=100.0, level_before=10.0, delta=2.0)
+    >>> m.is_return(level_after=10.3, delta=-1.7), m.is_return(level_after=11.5, delta=-0.5)
+    (True, False)
+    """
+
+    __slots__ = ("id", "shift_at", "level_before", "delta")
+
+    def __init__(self, id: str, *, shift_at: float, level_before: float, delta: float) -> None:
+        self.id = id
+        self.shift_at = shift_at
+        self.level_before = level_before
+        self.delta = delta
+
+    def is_return(self, *, level_after: float, delta: float) -> bool:
+        return (delta * self.delta < 0
+                and abs(level_after - self.level_before) <= 0.5 * abs(self.delta))
+
+    def get_state(self) -> dict[str, Any]:
+        return {"id": self.id, "shift_at": self.shift_at, "level_before": self.level_before,
+                "delta": self.delta}
+
+    @classmethod
+    def from_state(cls, d: dict[str, Any]) -> "StepMemory":
+        vals = {}
+        for key in ("shift_at", "level_before", "delta"):
+            v = float(d[key])
+            if not math.isfinite(v):
+                raise ValueError(f"last_step.{key}: not a finite number ({v!r})")
+            vals[key] = v
+        return cls(str(d["id"]), **vals)

@@ -1,0 +1,180 @@
+"""Self-starting standardisation of a young level (Hawkins 1987).
+
+A stream's level is known only from the samples seen so far: at the start
+of a stream, and again after every confirmed step, when the level is new
+but the noise is not.  Measuring each sample against a level estimated
+once from a few samples would share that estimate's error among all later
+inputs, and the sequential test would false-alarm far more often than
+designed.  The self-starting answer (Hawkins 1987, "Self-starting CUSUM
+charts for location and scale", The Statistician 36:299-316; Hawkins &
+Olwell 1998, "Cumulative Sum Charts and Charting for Quality Improvement",
+ch. 7) is to measure each sample against the mean of the samples *before*
+it, and to scale by the predictive spread::
+
+    T_n = (x_n - mean_(n-1)) / (s * sqrt(1 + 1/(n-1)))
+
+For independent Gaussian samples the ``T_n`` are independent; with sigma
+known they are N(0, 1) exactly, and with sigma estimated on ``df`` degrees
+of freedom they are Student-t with ``df`` degrees of freedom, turned into
+N(0, 1) by :func:`t_to_normal`.  So the sequential test sees standard
+normal inputs from the first samples on and keeps its designed false-alarm
+rate, at the cost that a step arriving while the level rests on ``n``
+samples is partly absorbed into the mean (by ``m / (n + m)`` after ``m``
+samples at the new level).
+
+Autocorrelated noise would break that independence, so the samples are
+prewhitened first (``e_n = r_n - phi r_(n-1)``, residuals from the running
+mean, scaled by the innovation spread ``s sqrt(1 - phi^2)``): with phi
+carried over from an established baseline, or, at the start of a stream,
+with the lag-1 autocorrelation of the samples so far once it is
+significant (beyond ``2 / sqrt(n)``, from 20 samples on; the same rule as
+the baseline's).  The inputs are then approximately N(0, 1).
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+
+def t_to_normal(t: float, df: float) -> float:
+    """The standard normal quantile with the same tail probability as Student-t ``t`` on ``df``.
+
+    Wallace's approximation (D. L. Wallace 1959, "Bounds on normal
+    approximations to Student's and the chi-square distributions", Ann.
+    Math. Statist. 30:1121-1130): ``z = sign(t) (8 df + 1) / (8 df + 3)
+    sqrt(df log(1 + t^2 / df))``.  ``df`` infinite returns ``t``.
+
+    Examples
+    --------
+    >>> round(t_to_normal(2.228, 10), 2)   # the two-sided 5% point of t(10) -> about 1.96
+    1.96
+    >>> t_to_normal(1.5, math.inf)
+    1.5
+    """
+    if math.isinf(df):
+        return t
+    z = math.sqrt(df * math.log1p(t * t / df)) * (8.0 * df + 1.0) / (8.0 * df + 3.0)
+    return z if t >= 0 else -z
+
+
+class SelfStart:
+    """Running level (and, unless known, spread) of one level regime.
+
+    Parameters
+    ----------
+    sigma : the innovation sigma when known (an established baseline), else None.
+    phi : lag-1 autocorrelation to prewhiten with (0 when unknown).
+    ss, df : pooled sum of squares and its degrees of freedom carried in from
+        earlier regimes (sigma unknown only).
+
+    Examples
+    --------
+    >>> ss = SelfStart(sigma=None)
+    >>> [ss.standardise(v) for v in (10.0, 10.2)]
+    [None, None]
+    >>> ss.add(10.0); ss.add(10.2); ss.add(9.9)
+    >>> round(ss.mean, 4), ss.n, round(ss.spread(), 4)
+    (10.0333, 3, 0.1528)
+    """
+
+    __slots__ = ("sigma", "phi", "n", "mean", "ss", "df", "prev", "first", "lag")
+
+    #: samples before the first standardised input when sigma is unknown (phi is estimated from 20 on)
+    MIN_UNKNOWN = 20
+
+    def __init__(self, sigma: float | None, phi: float = 0.0, ss: float = 0.0, df: int = 0) -> None:
+        self.sigma = sigma
+        self.phi = phi
+        self.n = 0
+        self.mean = 0.0
+        self.ss = ss  # pooled within-regime sum of squared deviations
+        self.df = df
+        self.prev: float | None = None  # the last sample added (for prewhitening)
+        self.first: float | None = None  # the first sample of the regime
+        self.lag = 0.0  # sum of products of consecutive samples, relative to the first
+
+    def spread(self) -> float:
+        """The current sigma: the known one, or the pooled estimate (0 before two samples)."""
+        if self.sigma is not None:
+            return self.sigma
+        return math.sqrt(self.ss / self.df) if self.df > 0 else 0.0
+
+    def standardise(self, x: float) -> float | None:
+        """``x`` measured against the samples before it, as a N(0, 1) input; None while
+        too few samples are known (or the spread is still zero)."""
+        n = self.n
+        if self.sigma is not None:
+            if n < 1:
+                return None
+            r = x - self.mean
+            if self.phi != 0.0 and self.prev is not None:
+                r -= self.phi * (self.prev - self.mean)
+            return r / (self.sigma * math.sqrt(1.0 + 1.0 / n))
+        if n < self.MIN_UNKNOWN or self.df < 2:
+            return None
+        s = math.sqrt(self.ss / self.df)
+        if not s > 0:
+            return None
+        phi = self.phi_estimate()
+        r = x - self.mean
+        df = float(self.df)
+        if phi != 0.0 and self.prev is not None:
+            r -= phi * (self.prev - self.mean)
+            s *= math.sqrt(1.0 - phi * phi)
+            # Autocorrelated samples carry less information about the spread:
+            # count the degrees of freedom at their effective number.
+            df = max(2.0, df * (1.0 - abs(phi)) / (1.0 + abs(phi)))
+        return t_to_normal(r / (s * math.sqrt(1.0 + 1.0 / n)), df)
+
+    def phi_estimate(self) -> float:
+        """The lag-1 autocorrelation of the regime's samples when significant, else 0
+        (the known phi when sigma is known)."""
+        if self.sigma is not None:
+            return self.phi
+        n = self.n
+        if n < 20 or not self.ss > 0 or self.first is None or self.prev is None:
+            return 0.0
+        m = self.mean - self.first
+        last = self.prev - self.first
+        # sum over consecutive pairs of (x_t - mean)(x_(t-1) - mean), from the running sums
+        c1 = self.lag - m * (2.0 * n * m - last) + (n - 1) * m * m
+        phi = max(-0.95, min(0.95, c1 / self.ss))
+        return phi if abs(phi) >= 2.0 / math.sqrt(n) else 0.0
+
+    def add(self, x: float) -> None:
+        """Take ``x`` into the running mean and spread (Welford's update)."""
+        if self.first is None:
+            self.first = x
+        elif self.prev is not None:
+            self.lag += (x - self.first) * (self.prev - self.first)
+        self.n += 1
+        d = x - self.mean
+        self.mean += d / self.n
+        if self.n > 1:
+            self.ss += d * (x - self.mean)
+            self.df += 1
+        self.prev = x
+
+    def get_state(self) -> dict[str, Any]:
+        return {"sigma": self.sigma, "phi": self.phi, "n": self.n, "mean": self.mean, "ss": self.ss,
+                "df": self.df, "prev": self.prev, "first": self.first, "lag": self.lag}
+
+    @classmethod
+    def from_state(cls, d: dict[str, Any]) -> "SelfStart":
+        """Rebuild from :meth:`get_state`; ``ValueError`` names a bad field."""
+        sigma = d["sigma"]
+        out = cls(None if sigma is None else float(sigma), float(d["phi"]), float(d["ss"]), int(d["df"]))
+        out.n = int(d["n"])
+        out.mean = float(d["mean"])
+        out.prev = None if d["prev"] is None else float(d["prev"])
+        out.first = None if d.get("first") is None else float(d["first"])
+        out.lag = float(d.get("lag", 0.0))
+        for name in ("phi", "ss", "mean", "lag"):
+            if not math.isfinite(getattr(out, name)):
+                raise ValueError(f"young.{name}: not a finite number")
+        if out.sigma is not None and not (math.isfinite(out.sigma) and out.sigma > 0):
+            raise ValueError(f"young.sigma: must be a positive number, got {out.sigma!r}")
+        if out.n < 0 or out.df < 0 or out.ss < 0:
+            raise ValueError("young.n, young.df, young.ss: must not be negative")
+        return out
