@@ -188,7 +188,7 @@ def make_test(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: f
     # safe side) and the smallest shift down (more sensitive) on a 10% grid.
     shift_z = _grid(max(shift_z, 0.05), up=False, step=0.1)
     n = int(min(n_ref, 1e9))
-    nl = n if n_level is None else int(min(n_level, n))
+    nl = n if not n_level else int(min(n_level, n))  # 0 or None: the level rests on n samples
     if settings.test == "glr":
         from shiftwatch.core.glr import GlrTest
 
