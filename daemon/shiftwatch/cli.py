@@ -149,7 +149,8 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
         for k, v in e.rejected_total.items():
             rejected[k] = rejected.get(k, 0) + v
     summary = (f"replayed {read.rows} rows in {len(engines)} stream(s): "
-               f"{phases.get('confirmed', 0)} shift(s) confirmed, {phases.get('dismissed', 0)} dismissed")
+               f"{phases.get('confirmed', 0)} shift(s) confirmed, {phases.get('returned', 0)} returned, "
+               f"{phases.get('dismissed', 0)} dismissed, {phases.get('undecided', 0)} undecided")
     if rejected:
         summary += "; samples set aside: " + ", ".join(f"{k} {v}" for k, v in sorted(rejected.items()))
     if len(read.problems):

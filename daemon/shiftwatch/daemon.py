@@ -125,10 +125,19 @@ def alert_summary(rec: AlertRecord, label: str | None = None) -> str:
     """
     unit = f" {rec.unit}" if rec.unit else ""
     who = label or rec.stream
-    verb = {"detected": "DETECTED", "confirmed": "CONFIRMED", "dismissed": "DISMISSED"}[rec.phase]
+    verb = rec.phase.upper()
     if rec.phase == "dismissed":
         return (f"{verb} {who}: the step detected at {_clock_utc(rec.detected_at)} did not last; "
                 f"the level stays {rec.level_before:.5g}{unit}, no action needed")
+    if rec.phase == "returned":
+        start = _clock_utc(rec.excursion_start) if rec.excursion_start is not None else "?"
+        return (f"{verb} {who} went back {rec.direction} {abs(rec.delta):.3g}{unit} at "
+                f"{_clock_utc(rec.shift_at)}, ending the excursion that began at {start}: "
+                f"{rec.level_before:.5g} -> {rec.level_after:.5g}{unit}")
+    if rec.phase == "undecided":
+        return (f"{verb} {who}: after {rec.n_after} samples the step detected at "
+                f"{_clock_utc(rec.detected_at)} is still uncertain ({rec.level_before:.5g} -> "
+                f"{rec.level_after:.5g}{unit}); watching on from the current level")
     return (f"{verb} {who} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
             f"({abs(rec.delta_sigma):.2g} sigma) at {_clock_utc(rec.shift_at)}, detected "
             f"{_lag_text(rec.detected_at - rec.shift_at)} later: {rec.level_before:.5g} -> "

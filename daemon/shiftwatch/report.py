@@ -235,7 +235,8 @@ class Event:
 
     @property
     def outcome(self) -> str:
-        """``confirmed``, ``dismissed`` or ``open`` (undecided when the replay ended)."""
+        """The final phase (``confirmed``, ``returned``, ``dismissed``, ``undecided``), or
+        ``open`` when the replay ended before the event was decided."""
         phase = self.final.phase
         return "open" if phase == "detected" else phase
 
@@ -682,7 +683,7 @@ def _head(sources: Sequence[str], settings_note: str) -> str:
 def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[str, dict[str, int]],
              unreadable_rows: int) -> str:
     all_events = {t.name: t.events() for t in traces}
-    counts = {"confirmed": 0, "dismissed": 0, "open": 0}
+    counts = {"confirmed": 0, "returned": 0, "dismissed": 0, "undecided": 0, "open": 0}
     for evs in all_events.values():
         for ev in evs:
             counts[ev.outcome] += 1
@@ -702,7 +703,9 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
         ("unreadable rows", unreadable_rows, "rows of the files that could not be read"),
         ("events", total_events, ""),
         ("confirmed", counts["confirmed"], "a lasting step"),
-        ("dismissed", counts["dismissed"], "the evidence did not hold up"),
+        ("returned", counts["returned"], "a lasting step back to the level before an earlier step"),
+        ("dismissed", counts["dismissed"], "no lasting step: the level stayed where it was"),
+        ("undecided", counts["undecided"], "still uncertain after confirm_max_samples; watching on"),
         ("open", counts["open"], "still undecided when the replay ended"),
     ):
         out.append(f'<tr><th scope="row">{label}</th><td class="n" data-total="{label}">{value:,}</td>'
