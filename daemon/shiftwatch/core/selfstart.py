@@ -80,8 +80,8 @@ class SelfStart:
 
     __slots__ = ("sigma", "phi", "n", "mean", "ss", "df", "prev", "first", "lag")
 
-    #: samples before the first standardised input when sigma is unknown (phi is estimated from 20 on)
-    MIN_UNKNOWN = 20
+    #: samples before the first standardised input when sigma is unknown (phi is estimated from 20 samples on)
+    MIN_UNKNOWN = 5
 
     def __init__(self, sigma: float | None, phi: float = 0.0, ss: float = 0.0, df: int = 0) -> None:
         self.sigma = sigma
