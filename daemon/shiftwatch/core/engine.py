@@ -395,6 +395,15 @@ SMALL_BATCH = 8
 #: until it rests on this many samples; then it becomes the baseline's fixed level.
 YOUNG_END = 1000
 
+#: While the young test's statistic is at least this fraction of its threshold, the
+#: samples are held back from the young level (see SelfStart.hold), at most
+#: YOUNG_HOLD of them: a large step in progress is not absorbed before it is seen.
+YOUNG_CALM = 0.5
+YOUNG_HOLD = 8
+#: Holding starts once the level rests on this many samples (the lag-1 autocorrelation
+#: is estimated from 20 on: holding on autocorrelated samples before that feeds runs).
+YOUNG_HOLD_FROM = 20
+
 #: The settings of engines built without any (frozen, so one is shared).
 _DEFAULT_SETTINGS = DetectionSettings()
 
@@ -812,11 +821,16 @@ class StreamEngine:
         if z is None:
             ys.add(xv)
             return False
-        if abs(z) <= self.settings.spike_sigma:
-            ys.add(xv)
+        test = self._young_test()
+        tripped = test.update_one(-clip if z < -clip else (clip if z > clip else z))
+        if abs(z) > self.settings.spike_sigma:
+            ys.last = xv  # the start of a large step: fed, never taken into the level
+        elif (tripped or test.statistic >= YOUNG_CALM * test.threshold) and ys.n >= YOUNG_HOLD_FROM:
+            ys.hold(xv, YOUNG_HOLD)
         else:
-            ys.prev = xv  # the start of a large step: fed, but kept out of the level
-        return self._young_test().update_one(-clip if z < -clip else (clip if z > clip else z))
+            ys.release()
+            ys.add(xv)
+        return tripped
 
     def _young_settled(self) -> bool:
         """After a re-anchor: fix the level once it rests on :data:`YOUNG_END` samples."""
@@ -842,7 +856,7 @@ class StreamEngine:
         else:
             b = replace(b, level=ys.mean, n_level=ys.n if ys.n < b.n else 0)
         self._baseline = b
-        self._prev_r = 0.0 if ys.prev is None else ys.prev - b.level
+        self._prev_r = 0.0 if ys.last is None else ys.last - b.level
         self._open_event(detected_at, result, as_of)
 
     def _settle_young(self) -> None:
@@ -850,9 +864,10 @@ class StreamEngine:
         ys = self._young
         b = self._baseline
         assert ys is not None and b is not None
-        self._baseline = replace(b, level=ys.mean, n_level=ys.n if ys.n < b.n else 0)
         self._young = None
-        self._prev_r = 0.0 if ys.prev is None else ys.prev - ys.mean
+        ys.release()
+        self._baseline = replace(b, level=ys.mean, n_level=ys.n if ys.n < b.n else 0)
+        self._prev_r = 0.0 if ys.last is None else ys.last - ys.mean
         self._sums.reset()
         self._unfolded = 0
         self._watch_kept = 0
@@ -1090,7 +1105,8 @@ class StreamEngine:
             self._state = WATCHING
             ys = self._young
             if ys is not None:
-                # The level held: the event's samples belong to it.
+                # The level held: the held samples and the event's belong to it.
+                ys.release()
                 for v in self._fitter.values[ev.trip_len:].tolist():
                     ys.add(v)
                 if self._provisional:

@@ -78,7 +78,7 @@ class SelfStart:
     (10.0333, 3, 0.1528)
     """
 
-    __slots__ = ("sigma", "phi", "n", "mean", "ss", "df", "prev", "first", "lag")
+    __slots__ = ("sigma", "phi", "n", "mean", "ss", "df", "prev", "first", "lag", "last", "held")
 
     #: samples before the first standardised input when sigma is unknown (phi is estimated from 20 samples on)
     MIN_UNKNOWN = 5
@@ -93,6 +93,8 @@ class SelfStart:
         self.prev: float | None = None  # the last sample added (for prewhitening)
         self.first: float | None = None  # the first sample of the regime
         self.lag = 0.0  # sum of products of consecutive samples, relative to the first
+        self.last: float | None = None  # the last sample seen, taken in or not (for prewhitening)
+        self.held: list[float] = []  # samples seen but not yet taken in (see hold)
 
     def spread(self) -> float:
         """The current sigma: the known one, or the pooled estimate (0 before two samples)."""
@@ -108,8 +110,8 @@ class SelfStart:
             if n < 1:
                 return None
             r = x - self.mean
-            if self.phi != 0.0 and self.prev is not None:
-                r -= self.phi * (self.prev - self.mean)
+            if self.phi != 0.0 and self.last is not None:
+                r -= self.phi * (self.last - self.mean)
             return r / (self.sigma * math.sqrt(1.0 + 1.0 / n))
         if n < self.MIN_UNKNOWN or self.df < 2:
             return None
@@ -119,8 +121,8 @@ class SelfStart:
         phi = self.phi_estimate()
         r = x - self.mean
         df = float(self.df)
-        if phi != 0.0 and self.prev is not None:
-            r -= phi * (self.prev - self.mean)
+        if phi != 0.0 and self.last is not None:
+            r -= phi * (self.last - self.mean)
             s *= math.sqrt(1.0 - phi * phi)
             # Autocorrelated samples carry less information about the spread:
             # count the degrees of freedom at their effective number.
@@ -155,10 +157,36 @@ class SelfStart:
             self.ss += d * (x - self.mean)
             self.df += 1
         self.prev = x
+        self.last = x
+
+    def hold(self, x: float, limit: int) -> None:
+        """See ``x`` without taking it in yet: while the test's evidence of a change
+        builds up, the samples that carry it must not move the level they are
+        measured against.  At most ``limit`` are held; the oldest is taken in
+        beyond that."""
+        self.held.append(x)
+        self.last = x
+        if len(self.held) > limit:
+            self._take(self.held.pop(0))
+
+    def release(self) -> None:
+        """Take in the held samples, oldest first (the evidence died down)."""
+        if self.held:
+            last = self.last
+            for v in self.held:
+                self._take(v)
+            self.held.clear()
+            self.last = last
+
+    def _take(self, x: float) -> None:
+        last = self.last
+        self.add(x)
+        self.last = last
 
     def get_state(self) -> dict[str, Any]:
         return {"sigma": self.sigma, "phi": self.phi, "n": self.n, "mean": self.mean, "ss": self.ss,
-                "df": self.df, "prev": self.prev, "first": self.first, "lag": self.lag}
+                "df": self.df, "prev": self.prev, "first": self.first, "lag": self.lag,
+                "last": self.last, "held": list(self.held)}
 
     @classmethod
     def from_state(cls, d: dict[str, Any]) -> "SelfStart":
@@ -170,6 +198,10 @@ class SelfStart:
         out.prev = None if d["prev"] is None else float(d["prev"])
         out.first = None if d.get("first") is None else float(d["first"])
         out.lag = float(d.get("lag", 0.0))
+        out.last = out.prev if d.get("last") is None else float(d["last"])
+        out.held = [float(v) for v in d.get("held", [])]
+        if not all(math.isfinite(v) for v in out.held):
+            raise ValueError("young.held: holds a value that is not a finite number")
         for name in ("phi", "ss", "mean", "lag"):
             if not math.isfinite(getattr(out, name)):
                 raise ValueError(f"young.{name}: not a finite number")
