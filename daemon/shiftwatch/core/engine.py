@@ -401,7 +401,8 @@ YOUNG_END = 1000
 YOUNG_CALM = 0.5
 YOUNG_HOLD = 8
 #: Holding starts once the level rests on this many samples (the lag-1 autocorrelation
-#: is estimated from 20 on: holding on autocorrelated samples before that feeds runs).
+#: is estimated from 20 on), and only on noise with no significant autocorrelation: on
+#: autocorrelated samples holding would feed the runs it is meant to wait out.
 YOUNG_HOLD_FROM = 20
 
 #: The settings of engines built without any (frozen, so one is shared).
@@ -825,7 +826,8 @@ class StreamEngine:
         tripped = test.update_one(-clip if z < -clip else (clip if z > clip else z))
         if abs(z) > self.settings.spike_sigma:
             ys.last = xv  # the start of a large step: fed, never taken into the level
-        elif (tripped or test.statistic >= YOUNG_CALM * test.threshold) and ys.n >= YOUNG_HOLD_FROM:
+        elif ((tripped or test.statistic >= YOUNG_CALM * test.threshold) and ys.n >= YOUNG_HOLD_FROM
+              and ys.phi_estimate() == 0.0):
             ys.hold(xv, YOUNG_HOLD)
         else:
             ys.release()
@@ -1010,13 +1012,16 @@ class StreamEngine:
         self._fitter = StepFitter(self._window.values[start:].copy(), self._window.times[start:].copy())
         self._begin_event(detected_at, result, as_of)
 
-    def _begin_event(self, detected_at: float, result: BatchResult, as_of: float) -> None:
-        """Open an event over the fitter as it stands (its last sample is the detection)."""
+    def _begin_event(self, detected_at: float, result: BatchResult, as_of: float,
+                     by_fit: bool = False) -> None:
+        """Open an event over the fitter as it stands (its last sample is the detection).
+        Its direction is the test's, or the fitted step's when ``by_fit`` (or the test
+        cannot tell)."""
         b = self._baseline
         test = self._test
         assert b is not None and test is not None and self._fitter is not None
         fit = self._fit(b)
-        sign = test.direction or (1 if fit.delta > 0 else -1)
+        sign = (0 if by_fit else test.direction) or (1 if fit.delta > 0 else -1)
         ev = OpenEvent(
             id=event_id(self.stream, detected_at),
             detected_at=detected_at,
@@ -1091,13 +1096,16 @@ class StreamEngine:
         assert ev is not None and b is not None and self._fitter is not None
         fit = self._fit(b)
         late = fit.index >= ev.trip_len
-        if late and outcome == STEP:
-            # The step the samples show began after the detection: that detection
-            # was not this step.  It ends as dismissed (with the fit it had), and the
-            # step gets an event of its own, detected now, so nothing is thrown away.
+        clear = (fit.p_value < self.settings.confirm_p_value
+                 and abs(fit.delta) >= 0.5 * self.settings.min_shift_sigma * b.sigma)
+        if late and (outcome == STEP or clear):
+            # The step the samples show began after the detection (in the detected
+            # direction, or clearly in the other): that detection was not this step.
+            # It ends as dismissed (with the fit it had), and the step gets an event
+            # of its own, detected now, so nothing is thrown away.
             self._end_event(ev, "dismissed", self._fit_until_trip(ev, b), result, as_of)
             self._state = EVENT_OPEN
-            self._begin_event(as_of, result, as_of)
+            self._begin_event(as_of, result, as_of, by_fit=True)
             return
         shown = self._fit_until_trip(ev, b) if late else fit  # what the record says
         if outcome == NO_STEP:
@@ -1174,7 +1182,7 @@ class StreamEngine:
         self._watch_kept = 0
         old = self._young
         if self._provisional:
-            ys = SelfStart(None, ss=0.0 if old is None else old.ss, df=0 if old is None else old.df)
+            ys = SelfStart(None) if old is None else old.carry_over()
             self._baseline = None
             self._provisional = False
             self._state = WARMING_UP

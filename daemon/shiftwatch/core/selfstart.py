@@ -78,7 +78,8 @@ class SelfStart:
     (10.0333, 3, 0.1528)
     """
 
-    __slots__ = ("sigma", "phi", "n", "mean", "ss", "df", "prev", "first", "lag", "last", "held")
+    __slots__ = ("sigma", "phi", "n", "mean", "ss", "df", "prev", "first", "lag", "last", "held",
+                 "pool_c1", "pool_n")
 
     #: samples before the first standardised input when sigma is unknown (phi is estimated from 20 samples on)
     MIN_UNKNOWN = 5
@@ -95,6 +96,9 @@ class SelfStart:
         self.lag = 0.0  # sum of products of consecutive samples, relative to the first
         self.last: float | None = None  # the last sample seen, taken in or not (for prewhitening)
         self.held: list[float] = []  # samples seen but not yet taken in (see hold)
+        # lag-1 cross products and samples of earlier regimes, pooled like ss (see carry_over)
+        self.pool_c1 = 0.0
+        self.pool_n = 0
 
     def spread(self) -> float:
         """The current sigma: the known one, or the pooled estimate (0 before two samples)."""
@@ -118,6 +122,7 @@ class SelfStart:
         s = math.sqrt(self.ss / self.df)
         if not s > 0:
             return None
+        raw = self._phi_raw()
         phi = self.phi_estimate()
         r = x - self.mean
         df = float(self.df)
@@ -127,6 +132,11 @@ class SelfStart:
             # Autocorrelated samples carry less information about the spread:
             # count the degrees of freedom at their effective number.
             df = max(2.0, df * (1.0 - abs(phi)) / (1.0 + abs(phi)))
+        elif raw > 0.0:
+            # Too few samples to tell positive autocorrelation from none: allow for
+            # it by its long-run variance factor (1 + phi) / (1 - phi), so runs of
+            # autocorrelated samples do not read as a step.
+            s *= math.sqrt((1.0 + raw) / (1.0 - raw))
         return t_to_normal(r / (s * math.sqrt(1.0 + 1.0 / n)), df)
 
     def phi_estimate(self) -> float:
@@ -134,15 +144,32 @@ class SelfStart:
         (the known phi when sigma is known)."""
         if self.sigma is not None:
             return self.phi
+        n = self.n + self.pool_n
+        phi = self._phi_raw()
+        return phi if n >= 20 and abs(phi) >= 2.0 / math.sqrt(n) else 0.0
+
+    def _c1(self) -> float:
+        """Sum over this regime's consecutive pairs of (x_t - mean)(x_(t-1) - mean)."""
         n = self.n
-        if n < 20 or not self.ss > 0 or self.first is None or self.prev is None:
+        if n < 2 or self.first is None or self.prev is None:
             return 0.0
         m = self.mean - self.first
         last = self.prev - self.first
-        # sum over consecutive pairs of (x_t - mean)(x_(t-1) - mean), from the running sums
-        c1 = self.lag - m * (2.0 * n * m - last) + (n - 1) * m * m
-        phi = max(-0.95, min(0.95, c1 / self.ss))
-        return phi if abs(phi) >= 2.0 / math.sqrt(n) else 0.0
+        return self.lag - m * (2.0 * n * m - last) + (n - 1) * m * m
+
+    def _phi_raw(self) -> float:
+        """The lag-1 autocorrelation as estimated, pooled over earlier regimes (0 before 3 samples)."""
+        if self.n + self.pool_n < 3 or not self.ss > 0:
+            return 0.0
+        return max(-0.95, min(0.95, (self._c1() + self.pool_c1) / self.ss))
+
+    def carry_over(self) -> "SelfStart":
+        """A new regime (the level stepped) of unknown spread: the spread and the
+        autocorrelation go on being estimated from both regimes, pooled."""
+        new = SelfStart(None, ss=self.ss, df=self.df)
+        new.pool_c1 = self.pool_c1 + self._c1()
+        new.pool_n = self.pool_n + self.n
+        return new
 
     def add(self, x: float) -> None:
         """Take ``x`` into the running mean and spread (Welford's update)."""
@@ -186,7 +213,8 @@ class SelfStart:
     def get_state(self) -> dict[str, Any]:
         return {"sigma": self.sigma, "phi": self.phi, "n": self.n, "mean": self.mean, "ss": self.ss,
                 "df": self.df, "prev": self.prev, "first": self.first, "lag": self.lag,
-                "last": self.last, "held": list(self.held)}
+                "last": self.last, "held": list(self.held), "pool_c1": self.pool_c1,
+                "pool_n": self.pool_n}
 
     @classmethod
     def from_state(cls, d: dict[str, Any]) -> "SelfStart":
@@ -200,9 +228,11 @@ class SelfStart:
         out.lag = float(d.get("lag", 0.0))
         out.last = out.prev if d.get("last") is None else float(d["last"])
         out.held = [float(v) for v in d.get("held", [])]
+        out.pool_c1 = float(d.get("pool_c1", 0.0))
+        out.pool_n = int(d.get("pool_n", 0))
         if not all(math.isfinite(v) for v in out.held):
             raise ValueError("young.held: holds a value that is not a finite number")
-        for name in ("phi", "ss", "mean", "lag"):
+        for name in ("phi", "ss", "mean", "lag", "pool_c1"):
             if not math.isfinite(getattr(out, name)):
                 raise ValueError(f"young.{name}: not a finite number")
         if out.sigma is not None and not (math.isfinite(out.sigma) and out.sigma > 0):
