@@ -2,9 +2,11 @@
 
 The sensors, their levels, noise and planned steps are the demo's
 (:data:`shiftwatch.demo.SENSORS`); the schedule here is stretched to 10
-samples a second for five minutes, and filler head 3 gets a short excursion
-that returns to its old level, which the engine should dismiss; filler head 1 steps up 20 samples before the
-end, so that event is still open when the file ends.
+samples a second for five minutes, and filler head 3 gets a blip of six
+samples that returns to its old level, which the engine should dismiss (a
+longer excursion would be confirmed and then reported as returned); filler
+head 1 steps up 6 samples before the end, so that event is still open when
+the file ends.
 """
 
 from __future__ import annotations
@@ -23,8 +25,8 @@ from shiftwatch.demo import RATE_HZ, SENSORS
 T0 = datetime(2026, 3, 2, 6, 0, tzinfo=timezone.utc).timestamp()
 N = 3000  # samples per stream
 STRETCH = 40  # the demo's step times (seconds) times this: sample index of the step
-EXCURSION = ("brackenfield/line2/filler/head3/fill", 1200, 15, 2.5)  # stream, start, length, sigmas
-LATE_STEP = ("brackenfield/line2/filler/head1/fill", N - 20, 3.0)  # stream, start, sigmas: still open at the end
+EXCURSION = ("brackenfield/line2/filler/head3/fill", 1200, 6, 3.0)  # stream, start, length, sigmas
+LATE_STEP = ("brackenfield/line2/filler/head1/fill", N - 6, 3.0)  # stream, start, sigmas: still open at the end
 
 
 @dataclass(frozen=True)

@@ -115,7 +115,7 @@ def test_report_memory_does_not_grow_with_the_replay() -> None:
 
 # ------------------------------------------------------------- the overlays
 def test_chart_draws_each_event_at_its_records_exact_values(plant_csv: PlantCsv) -> None:
-    stream = "brackenfield/line2/filler/head3/fill"  # the excursion: a dismissed event
+    stream = "brackenfield/line2/filler/head3/fill"  # the blip: a dismissed event
     trace = trace_of(plant_csv, stream)
     events = trace.events()
     assert [e.outcome for e in events] == ["dismissed"]
