@@ -303,3 +303,21 @@ def test_a_damaged_snapshot_entry_names_its_field(field: str, value: object, nam
     with pytest.raises(ValueError, match=name):
         fresh.set_state(snap)
     assert fresh.state == "warming_up"
+
+
+def test_an_open_event_can_be_ended_with_a_record() -> None:
+    # A reload that changes a stream's settings, or removes the stream, must not
+    # leave a detected record without a follow-up: end_event closes it as undecided.
+    rng = np.random.default_rng(10)
+    x = rng.standard_normal(1200)
+    x[800:] += 2.0
+    t = T0 + np.arange(1200.0)
+    eng = StreamEngine("s")
+    recs = feed(eng, t[:812], x[:812], batch=812)
+    assert eng.state == "event_open"
+    det = [r for r in recs if r.phase == "detected"][-1]
+    end = eng.end_event(float(t[811]))
+    assert end is not None and end.phase == "undecided" and end.id == det.id
+    assert end.shift_at_high <= end.detected_at <= end.as_of
+    assert eng.state == "watching" and eng.end_event(float(t[811])) is None
+    assert eng.records_total["undecided"] == 1

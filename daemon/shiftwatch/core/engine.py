@@ -1142,6 +1142,32 @@ class StreamEngine:
             self._end_event(ev, "undecided", shown, result, as_of)
         self._reanchor(fit.index)
 
+    def end_event(self, as_of: float) -> AlertRecord | None:
+        """End the open event now as ``undecided``, and return its record (None when no
+        event is open).  For a stream whose settings change or that is removed on a
+        reload: every event ends with a record.  The stream watches on from its
+        baseline, or goes on warming up."""
+        ev = self._event
+        b = self._baseline
+        if ev is None or b is None or self._fitter is None:
+            return None
+        fit = self._fit(b)
+        shown = fit if fit.index < ev.trip_len else self._fit_until_trip(ev, b)
+        rec = self._record(ev, shown, "undecided", max(as_of, ev.detected_at))
+        self._event = None
+        self._fitter = None
+        self._pending = None
+        if self._provisional:
+            self._baseline = None
+            self._provisional = False
+            self._state = WARMING_UP
+        else:
+            self._state = WATCHING
+        if self._test is not None:
+            self._test.reset()
+        self.records_total = _tally(self.records_total, ("undecided",))
+        return rec
+
     def _fit_until_trip(self, ev: OpenEvent, b: Baseline) -> StepFit:
         """The step fit over the samples up to the detection only."""
         assert self._fitter is not None
