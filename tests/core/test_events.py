@@ -313,11 +313,11 @@ def test_an_open_event_can_be_ended_with_a_record() -> None:
     x[800:] += 2.0
     t = T0 + np.arange(1200.0)
     eng = StreamEngine("s")
-    recs = feed(eng, t[:812], x[:812], batch=812)
+    recs = feed(eng, t[:809], x[:809], batch=809)  # detected at sample 806, decided at 811
     assert eng.state == "event_open"
     det = [r for r in recs if r.phase == "detected"][-1]
-    end = eng.end_event(float(t[811]))
+    end = eng.end_event(float(t[808]))
     assert end is not None and end.phase == "undecided" and end.id == det.id
     assert end.shift_at_high <= end.detected_at <= end.as_of
-    assert eng.state == "watching" and eng.end_event(float(t[811])) is None
+    assert eng.state == "watching" and eng.end_event(float(t[808])) is None
     assert eng.records_total["undecided"] == 1
