@@ -1029,7 +1029,10 @@ class StreamEngine:
             statistic=float(test.statistic),
             threshold=float(test.threshold),
             trip_len=len(self._fitter),
-            level_before=fit.level_before,
+            # The trial's reference: the baseline's level once it rests on more samples
+            # than the window (a fitted level before the step is biased by the very
+            # samples that tripped the test), else the fitted one (a young level).
+            level_before=b.level if b.level_n >= 2 * self.settings.window_samples else fit.level_before,
             level_after=fit.level_after,
             trial=self._new_trial(sign),
         )
