@@ -478,12 +478,30 @@ def config_warnings(path: str, cfg: Any) -> list[str]:
     return out
 
 
+#: Resolved settings that are durations: ``check`` prints them as the file would hold them.
+_DURATION_KEYS = frozenset(("session_expiry", "snapshot_every", "false_alarm_every", "max_time_ahead",
+                            "max_time_behind"))
+
+
+def _durations_as_text(d: Any) -> Any:
+    """The resolved settings with every duration in seconds written back as text (``7d``)."""
+    from shiftwatch.core.timefmt import duration_text
+
+    if isinstance(d, dict):
+        return {k: (duration_text(v) if k in _DURATION_KEYS and isinstance(v, float)
+                    else _durations_as_text(v)) for k, v in d.items()}
+    if isinstance(d, (list, tuple)):
+        return [_durations_as_text(v) for v in d]
+    return d
+
+
 def cmd_check(args: argparse.Namespace) -> int:
     import dataclasses
 
     import yaml
 
     from shiftwatch.config import ConfigError, load_config
+    from shiftwatch.preflight import run_probes
 
     try:
         cfg = load_config(args.config)
@@ -492,10 +510,23 @@ def cmd_check(args: argparse.Namespace) -> int:
         return EXIT_USAGE
     d = dataclasses.asdict(cfg)
     d.pop("source", None)
-    print(f"# {args.config}: valid. Resolved settings (defaults filled in, durations in seconds):")
-    print(yaml.safe_dump(d, sort_keys=False), end="")
+    print(f"# {args.config}: valid. Resolved settings (defaults filled in):")
+    print(yaml.safe_dump(_durations_as_text(d), sort_keys=False), end="")
     for w in config_warnings(args.config, cfg):
         _err("warning: " + w)
+    probes = run_probes(cfg, network=not args.no_network)
+    print("# Tried without side effects (nothing created, nothing published):")
+    for p in probes:
+        if p.ok:
+            print(f"#   ok: {p.what}: {p.note}")
+        else:
+            print(f"#   PROBLEM: {p.what}: {p.problem}")
+            _err(f"{p.what}: {p.problem}")
+    failed = sum(not p.ok for p in probes)
+    if failed:
+        _err(f"{args.config} is valid, but {failed} problem(s) would stop or hamper the daemon "
+             "at start (above)")
+        return EXIT_BAD_DATA
     return EXIT_OK
 
 
@@ -565,8 +596,12 @@ def build_parser() -> argparse.ArgumentParser:
     rn.add_argument("--log-format", choices=("text", "json"), default="text", help="log line format (default text)")
     rn.set_defaults(func=cmd_run)
 
-    ck = sub.add_parser("check", help="validate a configuration file and print the resolved settings")
+    ck = sub.add_parser("check", help="validate a configuration file, print the resolved settings, and try "
+                        "what can be tried without side effects (state directory, metrics port, "
+                        "files, broker)")
     ck.add_argument("--config", required=True, help="YAML configuration file")
+    ck.add_argument("--no-network", action="store_true",
+                    help="do not try to connect to the broker (the other probes still run)")
     ck.set_defaults(func=cmd_check)
 
     sc = sub.add_parser("schema", help="print the JSON Schema of the configuration file (for editors)")
