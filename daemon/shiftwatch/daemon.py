@@ -77,17 +77,45 @@ LEVELS_IN_FLIGHT = 50
 
 
 class RateLimitedLog:
-    """At most one line per key per ``every`` seconds; says how many were held back."""
+    """At most one line per key per ``every`` seconds; says how many were held back.
+
+    A line held back is counted, and the count comes out within the window
+    even when nothing more of that kind arrives: :meth:`flush` (called after
+    every processing round, and at shutdown) writes one summary line per key
+    whose window has ended with lines held back.  The summary opens a new
+    window, so a key still writes at most one line per ``every`` seconds.
+
+    Examples
+    --------
+    >>> import io
+    >>> out = io.StringIO()
+    >>> log = logging.getLogger("doctest.rlog")
+    >>> log.handlers[:] = [logging.StreamHandler(out)]
+    >>> log.propagate = False
+    >>> rl = RateLimitedLog(log)
+    >>> rl.warning("nan", "sample set aside (nan)", now=100.0)
+    >>> rl.warning("nan", "sample set aside (nan)", now=103.0)   # held back
+    >>> rl.flush(now=105.0)                                      # the window has not ended
+    >>> rl.flush(now=110.0)
+    >>> print(out.getvalue(), end="")
+    sample set aside (nan)
+    1 more like this in the last 10 s, held back (the last line written: sample set aside (nan))
+    """
 
     def __init__(self, log: logging.Logger, every: float = 10.0) -> None:
         self.log = log
         self.every = every
         self._last: dict[str, float] = {}
         self._held: dict[str, int] = {}
+        self._text: dict[str, str] = {}
+        self._extra: dict[str, dict[str, Any] | None] = {}
 
     def warning(self, key: str, text: str | Callable[[], str], now: float, *,
-                exc_info: bool = False) -> None:
-        """Log ``text`` (or what the callable returns: built only for a line that is written)."""
+                exc_info: bool = False, extra: dict[str, Any] | None = None) -> None:
+        """Log ``text`` (or what the callable returns: built only for a line that is written).
+
+        ``extra`` are the line's fields (stream, event id) for the JSON log format.
+        """
         last = self._last.get(key)
         if last is not None and now - last < self.every:
             self._held[key] = self._held.get(key, 0) + 1
@@ -98,9 +126,26 @@ class RateLimitedLog:
         if len(self._last) > 1000:  # keep the tables bounded whatever the keys
             self._last.clear()
             self._held.clear()
+            self._text.clear()
+            self._extra.clear()
         self._last[key] = now
+        self._text[key] = text
+        self._extra[key] = extra
         more = f" ({held} more like this in the last {self.every:.0f} s)" if held else ""
-        self.log.warning(text + more, exc_info=exc_info)
+        self.log.warning(text + more, exc_info=exc_info, extra=extra)
+
+    def flush(self, now: float, *, all_held: bool = False) -> None:
+        """Write the summary of each key whose window has ended with lines held back
+        (of every key holding some, with ``all_held``: at shutdown)."""
+        if not self._held:
+            return
+        for key in [k for k, last in self._last.items()
+                    if self._held.get(k) and (all_held or now - last >= self.every)]:
+            held = self._held.pop(key)
+            self._last[key] = now
+            self.log.warning(f"{held} more like this in the last {self.every:.0f} s, held back "
+                             f"(the last line written: {self._text.get(key, key)})",
+                             extra=self._extra.get(key))
 
 
 def alert_summary(rec: AlertRecord, label: str | None = None) -> str:
@@ -473,12 +518,14 @@ class Daemon:
         self._busy = len(msgs) >= BUSY_ROUND
         if not msgs:
             self.send_due_levels()
+            self.rlog.flush(time.time())
             self._gauges()
             if self._trim_pending:  # the burst is over: trim now, it costs nothing
                 self._trim_heap(idle=True)
             return 0
         self.process(msgs)
         self.send_due_levels()
+        self.rlog.flush(time.time())
         self._gauges()
         if sum(len(m.payload) for m in msgs) > ROUND_BYTES // 4:
             self._trim_heap()
@@ -537,6 +584,7 @@ class Daemon:
             self.server.close()
         if len(self.outbox):
             self.log.warning("%d alert record(s) stay in the outbox for the next start", len(self.outbox))
+        self.rlog.flush(time.time(), all_held=True)
         sd_notify("STOPPING=1", env=self.env)
         self.log.info("stopped")
         return 0
