@@ -401,18 +401,37 @@ def _design_from(args: argparse.Namespace) -> int:
 
 
 # ---------------------------------------------------------------- daemon
+#: Fields a log line may carry besides its message (``extra=`` of the logging call), in this order.
+LOG_FIELDS = ("stream", "event_id", "phase")
+
+
 class _JsonFormatter(logging.Formatter):
+    """One JSON object per line: ``time`` (RFC 3339 in the display time zone), ``level``,
+    ``logger``, ``message``, and ``stream``, ``event_id``, ``phase`` where the line concerns one."""
+
+    def __init__(self, tz: str = "UTC") -> None:
+        super().__init__()
+        self.tz = tz
+
     def format(self, record: logging.LogRecord) -> str:
-        d = {"level": record.levelname.lower(), "logger": record.name, "message": record.getMessage()}
+        from shiftwatch.display import stamp
+
+        d: dict[str, Any] = {"time": stamp(record.created, self.tz), "level": record.levelname.lower(),
+                             "logger": record.name, "message": record.getMessage()}
+        for key in LOG_FIELDS:
+            value = getattr(record, key, None)
+            if value is not None:
+                d[key] = value
         if record.exc_info:
             d["exception"] = self.formatException(record.exc_info)
         return json.dumps(d)
 
 
-def setup_logging(fmt: str, level: int = logging.INFO) -> logging.Logger:
-    """One line per event on stderr, no timestamps of our own (journald adds them)."""
+def setup_logging(fmt: str, level: int = logging.INFO, tz: str = "UTC") -> logging.Logger:
+    """One line per event on stderr.  Text lines carry no time stamp of their own (journald
+    adds one); JSON lines carry ``time`` in the display time zone ``tz``."""
     handler = logging.StreamHandler(sys.stderr)
-    handler.setFormatter(_JsonFormatter() if fmt == "json" else logging.Formatter("%(levelname)s %(message)s"))
+    handler.setFormatter(_JsonFormatter(tz) if fmt == "json" else logging.Formatter("%(levelname)s %(message)s"))
     log = logging.getLogger("shiftwatch")
     log.handlers[:] = [handler]
     log.setLevel(level)
@@ -429,6 +448,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     except ConfigError as exc:
         log.error("%s", exc)
         return EXIT_USAGE
+    log = setup_logging(args.log_format, tz=cfg.display.time_zone)
     from shiftwatch.daemon import Daemon
 
     for warning in config_warnings(args.config, cfg):

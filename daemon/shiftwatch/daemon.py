@@ -29,11 +29,12 @@ from typing import Any
 import numpy as np
 
 from shiftwatch.config import Config, ConfigError, StreamConfig, load_config, topic_matches
-from shiftwatch.core.engine import AlertRecord, StreamEngine
+from shiftwatch.core.engine import ADVISORY, AlertRecord, StreamEngine
 from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
-from shiftwatch.core.timefmt import format_duration, format_time
+from shiftwatch.core.timefmt import format_time
 from shiftwatch.decode import REASONS as DECODE_REASONS
 from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, stream_name
+from shiftwatch.display import alert_summary, clock, stamp
 from shiftwatch.journal import Journal, JournalGroup
 from shiftwatch.metrics import Metrics, MetricsServer, StreamStats
 from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
@@ -148,51 +149,6 @@ class RateLimitedLog:
                              extra=self._extra.get(key))
 
 
-def alert_summary(rec: AlertRecord, label: str | None = None) -> str:
-    """One line an operator reads at a glance: what stepped, by how much, when, and how soon it was seen.
-
-    ``label`` is the operator's name of the stream (the config's ``label``);
-    without it the stream name is used.  Times are UTC.
-
-    Examples
-    --------
-    >>> rec = AlertRecord(id="ace7", phase="confirmed", stream="plant/line2/filler/head7/fill",
-    ...     detected_at=1772432601.0, shift_at=1772432592.0, shift_at_low=1772432590.0,
-    ...     shift_at_high=1772432593.0, level_before=500.03, level_after=501.83, delta=1.8,
-    ...     delta_sigma=2.1, sigma=0.86, n_before=1200, n_after=60, test="multi_cusum",
-    ...     statistic=1.02, threshold=1.0, as_of=1772432650.0, interval_level=0.9,
-    ...     level_before_se=0.02, level_after_se=0.1, f_stat=80.0, p_value=1e-15,
-    ...     direction="up", unit="g")
-    >>> alert_summary(rec, "fill weight on filler 7")
-    'CONFIRMED fill weight on filler 7 stepped up 1.8 g (2.1 sigma) at 06:23:12Z, detected 9 s later: 500.03 -> 501.83 g'
-    >>> alert_summary(rec)[:60]
-    'CONFIRMED plant/line2/filler/head7/fill stepped up 1.8 g (2.'
-    """
-    unit = f" {rec.unit}" if rec.unit else ""
-    who = label or rec.stream
-    verb = {"detected": "DETECTED", "confirmed": "CONFIRMED", "dismissed": "DISMISSED"}[rec.phase]
-    if rec.phase == "dismissed":
-        return (f"{verb} {who}: the step detected at {_clock_utc(rec.detected_at)} did not last; "
-                f"the level stays {rec.level_before:.5g}{unit}, no action needed")
-    return (f"{verb} {who} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
-            f"({abs(rec.delta_sigma):.2g} sigma) at {_clock_utc(rec.shift_at)}, detected "
-            f"{_lag_text(rec.detected_at - rec.shift_at)} later: {rec.level_before:.5g} -> "
-            f"{rec.level_after:.5g}{unit}")
-
-
-def _clock_utc(t: float) -> str:
-    return format_time(t)[11:19] + "Z"
-
-
-def _lag_text(lag: float) -> str:
-    """A detection delay as an operator says it: 1.3 s, 9 s, 2.5 min."""
-    if lag < 10:
-        return f"{max(lag, 0.0):.1f} s".replace(".0 s", " s")
-    if lag < 120:
-        return f"{lag:.0f} s"
-    return format_duration(lag)
-
-
 class _SyncThenAck:
     """Forces the outbox to disk, then acknowledges the round's messages, in its own thread.
 
@@ -302,6 +258,9 @@ class Daemon:
         # Streams whose level update is queued (an ordered set, main thread
         # only; see send_due_levels), and the mids of the level publications out.
         self._levels_due: OrderedDict[str, None] = OrderedDict()
+        self._levels_offline = False
+        #: The site's time zone for times shown to people (records stay UTC).
+        self.tz = cfg.display.time_zone
         self._level_mids: set[int] = set()
         self._lock = threading.Lock()
         self._mid_key: dict[int, str | None] = {}
@@ -396,7 +355,7 @@ class Daemon:
             restored += 1
         if streams:
             self.log.info("restored %d stream(s) from the snapshot of %s", restored,
-                          format_time(float(meta.get("saved_at", 0.0))))
+                          stamp(float(meta.get("saved_at", 0.0)), self.tz))
         token = meta.get("journal")
         self._replay_journal(token if isinstance(token, str) else "none")
 
@@ -471,6 +430,7 @@ class Daemon:
         """Run until SIGTERM/SIGINT (or :meth:`request_stop`); returns the exit status."""
         if install_signals:
             self.install_signal_handlers()
+        self.log.info("shiftwatch starting. %s", ADVISORY)
         # Hand the interpreter lock between paho's thread and this one every
         # 0.5 ms rather than every 5 ms: an alert (or an acknowledgement) then
         # never waits long for the other thread to yield.
@@ -567,6 +527,12 @@ class Daemon:
         # acknowledgements come in) and hands nothing over, and what the broker
         # sends now stays unacknowledged, so it is delivered again after the restart.
         self.inbox.close()
+        # Every stream's retained level says the daemon is gone, so a dashboard
+        # reading it does not take it for one that is watched (a crash leaves the
+        # levels as they were; <prefix>/status, the last will, then says offline).
+        self._levels_offline = True
+        for name in self.engines:
+            self._levels_due[name] = None
         if not self._acker.wait_idle(10.0):
             self.log.warning("stopping: the outbox is still being written; its rounds stay unacknowledged")
         self.snapshot()
@@ -714,7 +680,7 @@ class Daemon:
             eng = self.engines[name] = StreamEngine(name, spec.detection, unit=unit)
             self._filters[name] = spec.topic
             self.log.info("new stream %s (warming up on %d samples)", _printable(name),
-                          spec.detection.warmup_samples)
+                          spec.detection.warmup_samples, extra={"stream": name})
         return eng
 
     def _run_stream(self, name: str, spec: StreamConfig, unit: str | None, times_list: list[float],
@@ -732,7 +698,7 @@ class Daemon:
         for rej in res.rejected:
             if rej.reason != "spike":  # one key per reason: many streams cannot multiply the lines
                 self.rlog.warning(f"sample:{rej.reason}", lambda r=rej.reason: f"sample of {_printable(name)} "
-                                  f"set aside ({r}): {SAMPLE_REASONS[r]}", now)
+                                  f"set aside ({r}): {SAMPLE_REASONS[r]}", now, extra={"stream": name})
         for rec in res.records:
             j = int(np.searchsorted(times, rec.as_of))
             self.emit(rec, float(arrivals[min(j, len(arrivals) - 1)]))
@@ -746,7 +712,7 @@ class Daemon:
         label = self.cfg.label_for(rec.stream, self._filters.get(rec.stream))
         if label is not None:
             d["label"] = label
-        d["summary"] = alert_summary(rec, label)
+        d["summary"] = alert_summary(rec, label, self.tz, today=time.time())
         payload = json.dumps(d).encode()
         topic = f"{self.prefix}/alerts/{rec.stream}"
         # Handed to paho first, then written to the outbox, which is forced to
@@ -767,10 +733,12 @@ class Daemon:
             self._track(mid, key)
         self.records_published += 1
         self.metrics.alert_delay.observe(max(0.0, time.time() - arrived))
+        fields = {"stream": rec.stream, "event_id": rec.id, "phase": rec.phase}
         if label is None:
-            self.log.info("%s [id %s]", d["summary"], rec.id)
+            self.log.info("%s [id %s]", d["summary"], rec.id, extra=fields)
         else:
-            self.log.info("%s [stream %s, id %s]", d["summary"], _printable(rec.stream), rec.id)
+            self.log.info("%s [stream %s, id %s]", d["summary"], _printable(rec.stream), rec.id,
+                          extra=fields)
 
     def _level_changed(self, name: str, eng: StreamEngine) -> None:
         """After a stream's batch: queue its level update if what the levels
@@ -795,15 +763,34 @@ class Daemon:
             eng = self.engines.get(name)  # None: removed by a reload meanwhile
             if eng is None or eng.level is None:
                 continue
-            now_state = (eng.state, eng.level, eng.sigma)
+            state = OFFLINE if self._levels_offline else eng.state
+            now_state = (state, eng.level, eng.sigma)
             if self._levels_sent.get(name) == now_state:
                 continue
             self._levels_sent[name] = now_state
-            body = {"stream": name, "state": eng.state, "level": eng.level, "sigma": eng.sigma,
-                    "unit": eng.unit, "last_shift_at": None if eng.last_shift_at is None
-                    else format_time(eng.last_shift_at)}
+            body = self.level_body(name, eng, state)
             self._publish(f"{self.prefix}/levels/{name}", json.dumps(body).encode(), qos=1, retain=True,
                           level=True)
+
+    def level_body(self, name: str, eng: StreamEngine, state: str) -> dict[str, Any]:
+        """The retained ``levels`` payload of a stream.
+
+        Level and sigma are rounded to 6 significant digits, as in alert
+        records; ``state`` is the engine's, or ``offline`` in the update each
+        stream gets when the daemon stops (the level is then the last one
+        known, not watched any more).  ``updated_at`` is when it was made (UTC).
+        """
+        body: dict[str, Any] = {"stream": name}
+        label = self.cfg.label_for(name, self._filters.get(name))
+        if label is not None:
+            body["label"] = label
+        body.update({"state": state, "level": _six(eng.level), "sigma": _six(eng.sigma),
+                     "unit": eng.unit, "last_shift_at": None if eng.last_shift_at is None
+                     else format_time(eng.last_shift_at), "updated_at": format_time(time.time())})
+        if state == OFFLINE:
+            body["note"] = ("shiftwatch stopped: this level is the last one known and is not "
+                            "being watched until it restarts")
+        return body
 
     def _publish(self, topic: str, payload: bytes, *, qos: int, retain: bool, key: str | None = None,
                  level: bool = False) -> None:
@@ -969,6 +956,17 @@ def settle_heap() -> None:
     """
     gc.collect()
     gc.freeze()
+
+
+#: The ``state`` of every retained level once the daemon has stopped.
+OFFLINE = "offline"
+
+
+def _six(x: float | None) -> float | None:
+    """Six significant digits (the rounding of alert records), for payloads people read."""
+    if x is None or x == 0 or not np.isfinite(x):
+        return x
+    return float(f"{x:.6g}")
 
 
 def _malloc_trim() -> Any:
