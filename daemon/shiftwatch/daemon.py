@@ -248,6 +248,8 @@ class Daemon:
         # The ``topic`` of the config entry each engine was made for: a stream name
         # that stream_name() had to change may match no filter of its entry any more.
         self._filters: dict[str, str] = {}
+        # Streams restored under a name stream_name() now gives differently (old -> new).
+        self._renamed: dict[str, str] = {}
         self._spec_cache: dict[str, tuple[StreamConfig, str] | None] = {}
         state_dir = Path(cfg.state.dir)
         self.store = StateStore(state_dir / "snapshots", logger=self.log)
@@ -339,11 +341,19 @@ class Daemon:
         filters = meta.get("filters")
         if not isinstance(filters, dict):  # snapshots written before it was saved
             filters = {}
+        renamed = 0
         for name, state in streams.items():
             f = filters.get(name)
             spec = self.cfg.stream_for(name, f if isinstance(f, str) else None)
             if spec is None:
                 continue
+            old, name = name, current_stream_name(name, spec)
+            if name != old:
+                renamed += 1
+                self._renamed[old] = name
+                self.log.info("stream %s is now named %s (a SenML name that is a URN is read as "
+                              "levels); its state carries over", _printable(old), _printable(name),
+                              extra={"stream": name})
             eng = StreamEngine(name, spec.detection, unit=spec.unit)
             try:
                 eng.set_state(state)
@@ -374,7 +384,9 @@ class Daemon:
         for groups in rounds:
             for g in groups:
                 spec = self.cfg.stream_for(g.stream, g.topic_filter or self._filters.get(g.stream))
-                eng = None if spec is None else self.engine_for(g.stream, spec, g.unit)
+                name = g.stream if spec is None else self._renamed.get(g.stream) or \
+                    current_stream_name(g.stream, spec)
+                eng = None if spec is None else self.engine_for(name, spec, g.unit)
                 if eng is None:
                     continue
                 try:
@@ -956,6 +968,40 @@ def settle_heap() -> None:
     """
     gc.collect()
     gc.freeze()
+
+
+def current_stream_name(name: str, spec: StreamConfig) -> str:
+    """The name a stream saved under ``name`` has now.
+
+    Releases before SenML names were read as levels named a SenML stream
+    ``topic/urn:nid:a:b``; now it is ``topic/a/b`` (see
+    :func:`shiftwatch.decode.readable_senml_name`).  For an entry of format
+    ``senml`` the SenML part starts after the filter's levels (for a filter
+    ending in ``#``, at the first level that starts with ``urn:``) and is
+    named again; every other name is returned as it is.  A name that was cut
+    and hashed (``~``) cannot be taken apart and stays.
+
+    Examples
+    --------
+    >>> spec = StreamConfig("ravensmoor/l4/+/senml", format="senml")
+    >>> current_stream_name("ravensmoor/l4/filler/senml/urn:ravensmoor:l4:filler:fill_volume", spec)
+    'ravensmoor/l4/filler/senml/l4/filler/fill_volume'
+    >>> current_stream_name("ravensmoor/l4/filler/senml/oven2:zone3", spec)
+    'ravensmoor/l4/filler/senml/oven2:zone3'
+    >>> current_stream_name("plant/x/urn:a:b:c", StreamConfig("plant/#", format="senml"))
+    'plant/x/b/c'
+    """
+    if spec.format != "senml" or "~" in name:
+        return name
+    levels = name.split("/")
+    fixed = spec.topic.split("/")
+    if fixed[-1] == "#":
+        cut = next((i for i in range(len(fixed) - 1, len(levels)) if levels[i][:4].lower() == "urn:"), None)
+    else:
+        cut = len(fixed)
+    if cut is None or cut >= len(levels) or levels[cut][:4].lower() != "urn:":
+        return name
+    return stream_name("/".join(levels[:cut]), "/".join(levels[cut:]))
 
 
 #: The ``state`` of every retained level once the daemon has stopped.

@@ -114,3 +114,40 @@ def test_retained_levels_have_a_label_rounded_numbers_and_say_offline_after_a_st
     assert levels.wait_for(lambda items: isinstance(items[-1][1], dict) and items[-1][1]["state"] == "offline")
     last = levels.items[-1][1]
     assert last["level"] == body["level"] and "not being watched" in last["note"]
+
+
+def test_senml_streams_get_readable_names_and_state_saved_under_the_old_name_carries_over(
+        tmp_path: Path, daemon_factory, collector, publisher) -> None:
+    import numpy as np
+
+    from shiftwatch.core.engine import StreamEngine
+    from shiftwatch.core.settings import DetectionSettings
+    from shiftwatch.statestore import StateStore
+
+    topic = "brackenfield/line4/filler/senml"
+    old = f"{topic}/urn:ravensmoor:l4:filler:fill_volume"  # the name releases before this one gave
+    new = f"{topic}/l4/filler/fill_volume"
+    # A snapshot as an earlier release left it: the stream warmed up under its old name.
+    eng = StreamEngine(old, DetectionSettings(), unit="ml")
+    x = np.asarray(step_series(13, n=700, step=600))
+    eng.process(T0 + np.arange(300.0), x[:300])
+    level = eng.level
+    StateStore(tmp_path / "state" / "snapshots").save(
+        {old: eng.get_state()}, {"saved_at": T0, "journal": "none", "filters": {old: topic}})
+    d = daemon_factory(SENML.replace("format: senml\n", "format: senml\n    label: 'filler {name}'\n"))
+    d.start()
+    log = d.log_text()
+    assert f"stream {old} is now named {new}" in log and "restored 1 stream(s)" in log
+    alerts = collector("sw/alerts/#")
+    for i in range(300, 700):
+        pack = [{"bn": "urn:ravensmoor:l4:filler:", "bt": T0 + i, "n": "fill_volume", "u": "ml",
+                 "v": float(x[i])}]
+        publisher.publish(topic, json.dumps(pack))
+    assert alerts.wait_for(lambda items: any(b.get("phase") == "confirmed" for _, b in items))
+    conf = alerts.records("confirmed")[0]
+    assert conf["stream"] == new and alerts.items[-1][0] == f"sw/alerts/{new}"
+    assert conf["label"] == "filler l4/filler/fill_volume"
+    # No second warm-up: the new name carried on from the old name's baseline.
+    assert "new stream" not in d.log_text()
+    assert conf["level_before"] == pytest.approx(level, abs=0.1)
+    assert d.stop() == 0
