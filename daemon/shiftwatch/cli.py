@@ -12,6 +12,7 @@ import argparse
 import json
 import logging
 import sys
+import time
 from typing import Any, Sequence, TextIO
 
 from shiftwatch import __version__
@@ -109,8 +110,14 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
 
         def unit_for(stream: str) -> str | None:
             return None
+
+        def label_for(stream: str) -> str | None:
+            return None
+        tz = "UTC"
     else:
         settings_for = cfg.settings_for
+        label_for = cfg.label_for
+        tz = cfg.display.time_zone
 
         def unit_for(stream: str) -> str | None:
             sc = cfg.stream_for(stream)
@@ -133,9 +140,19 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
             return EXIT_USAGE
     else:
         out = sys.stdout
+    from shiftwatch.display import alert_summary
+
+    written = time.time()  # the summaries give the date of a time not on this day
+    labels = {name: label_for(name) for name in engines}
     try:
         for rec in records:
-            out.write(json.dumps(rec.to_dict()) + "\n")
+            # The same record the daemon publishes: the label when the config gives one, the summary.
+            d = rec.to_dict()
+            label = labels.get(rec.stream)
+            if label is not None:
+                d["label"] = label
+            d["summary"] = alert_summary(rec, label, tz, today=written)
+            out.write(json.dumps(d) + "\n")
     finally:
         if args.out:
             out.close()
@@ -163,7 +180,7 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
             path = report.write(
                 samples={name: e.samples_total for name, e in engines.items()},
                 rejected={name: dict(e.rejected_total) for name, e in engines.items()},
-                units={name: unit_for(name) for name in engines},
+                units={name: unit_for(name) for name in engines}, labels=labels, time_zone=tz,
                 sources=[str(p) for p in args.csv], unreadable_rows=len(read.problems),
                 settings_note=("default detection settings" if args.config is None
                                else f"detection settings from {args.config}"),

@@ -16,6 +16,7 @@ import pytest
 from shiftwatch.core.arl import cusum_arl
 from shiftwatch.core.engine import RECORD_FIELDS, StreamEngine
 from shiftwatch.core.timefmt import format_time, parse_time
+from shiftwatch.display import alert_summary
 
 T0 = datetime(2026, 3, 2, 6, 0, tzinfo=timezone.utc).timestamp()
 
@@ -77,7 +78,9 @@ def test_replay_gives_what_the_engine_gives(cli, tmp_path: Path) -> None:
         eng = StreamEngine(name)
         for r in rows:
             if r[1] == name:
-                expected += [rec.to_dict() for rec in eng.process([parse_time(r[0])], [float(r[2])]).records]
+                for rec in eng.process([parse_time(r[0])], [float(r[2])]).records:
+                    # The summary is the daemon's: the samples are from 2026-03-02, so it is dated.
+                    expected.append({**rec.to_dict(), "summary": alert_summary(rec, today=0.0)})
     key = lambda d: (d["as_of"], d["stream"], d["phase"] != "detected")  # noqa: E731
     assert sorted(got, key=key) == sorted(expected, key=key)
     assert len(got) == 6
@@ -132,6 +135,19 @@ def test_replay_applies_per_stream_settings_from_config(cli, tmp_path: Path) -> 
     others = [r for r in recs if r["stream"] != "brackenfield/capper1/torque_nm"]
     assert capper and all(r["test"] == "cusum" and r["unit"] == "N m" for r in capper)
     assert others and all(r["test"] == "multi_cusum" and "unit" not in r for r in others)
+    # Alert records as the daemon publishes them: a summary, and the label the config gives.
+    assert all(r["summary"].startswith(r["phase"].upper() + " ") for r in recs)
+    assert all("label" not in r for r in recs)
+    cfg.write_text(cfg.read_text().replace("    unit: N m\n", "    unit: N m\n    label: capper {1}\n")
+                   + "display: {time_zone: America/Chicago}\n")
+    res = cli("replay", "--config", str(cfg), str(csv_path))
+    assert res.returncode == 0, res.stderr
+    capper = [r for r in read_records(res.stdout) if r["stream"] == "brackenfield/capper1/torque_nm"]
+    assert capper and all(r["label"] == "capper torque_nm" for r in capper)
+    # Chicago in March 2026 is on CST before the 8th (US rules: second Sunday of March).
+    assert all(r["summary"].startswith(f"{r['phase'].upper()} capper torque_nm ") and " CST" in r["summary"]
+               for r in capper), capper[0]["summary"]
+    assert all(r["shift_at"].endswith("Z") for r in capper)  # the records stay UTC
 
 
 def test_replay_names_the_config_key_and_line_on_error(cli, tmp_path: Path) -> None:
