@@ -253,20 +253,51 @@ def cmd_fit(args: argparse.Namespace) -> int:
         "f_stat": fit.f_stat,
         "p_value": fit.p_value,
     }
-    print(json.dumps(d))
+    if args.json:
+        print(json.dumps(d))
+    else:
+        print(_fit_text(d, fit))
     return EXIT_BAD_DATA if read.problems else EXIT_OK
 
 
+def _fit_text(d: dict[str, Any], fit: Any) -> str:
+    """The fitted step for a person: five significant figures (``--json`` keeps them all)."""
+    from shiftwatch.display import human_number as num
+
+    low, high = d["shift_at_low"], d["shift_at_high"]
+    if low[:11] == high[:11]:
+        high = high[11:]
+    return (f"{d['stream']}: one step at {d['shift_at']}\n"
+            f"  shift-time interval ({fit.interval_level:.0%}): {low} to {high}\n"
+            f"  level before {num(fit.level_before)} (standard error {num(fit.level_before_se, 2)}, "
+            f"{fit.n_before} samples)\n"
+            f"  level after  {num(fit.level_after)} (standard error {num(fit.level_after_se, 2)}, "
+            f"{fit.n_after} samples)\n"
+            f"  step {'+' if fit.delta >= 0 else ''}{num(fit.delta)} ({num(fit.delta_sigma, 3)} sigma; "
+            f"sigma {num(fit.sigma, 3)})\n"
+            f"  one step against none: F {num(fit.f_stat, 4)}, p-value {fit.p_value:.2g}\n"
+            "(rounded for reading; --json gives every figure in full)")
+
+
 # ----------------------------------------------------------------- design
+def _duration_option(option: str, text: str) -> float:
+    """A duration given on the command line; the error names the option."""
+    from shiftwatch.core.timefmt import parse_duration
+
+    try:
+        return parse_duration(text)
+    except ValueError as exc:
+        raise ValueError(f"{option}: {exc}") from None
+
+
 def cmd_design(args: argparse.Namespace) -> int:
     from shiftwatch.core.design import design
-    from shiftwatch.core.timefmt import format_duration, parse_duration
 
     if args.from_csv:
         return _design_from(args)
     try:
-        every = parse_duration(args.false_alarm_every or "7d")
-        interval = parse_duration(args.interval)
+        every = _duration_option("--false-alarm-every", args.false_alarm_every or "7d")
+        interval = _duration_option("--interval", args.interval)
     except ValueError as exc:
         _err(str(exc))
         return EXIT_USAGE
@@ -313,26 +344,29 @@ def cmd_design(args: argparse.Namespace) -> int:
                 for c in curves]}
         print(json.dumps(out))
         return EXIT_OK
+    from shiftwatch.display import human_duration as hd
+
     w = sys.stdout.write
-    w(f"Design for a stream sampled every {format_duration(interval)}, "
-      f"at most one false alarm every {format_duration(every)} on average\n")
+    w(f"Design for a stream sampled every {hd(interval)}, "
+      f"at most one false alarm every {hd(every)} on average\n")
     w(f"  in-control average run length (ARL): {d.arl0:,.0f} samples\n")
-    w(f"  CUSUM for a smallest shift of {d.min_shift_sigma:g} sigma: k = {d.k:.3f}, h = {d.h:.3f}\n")
+    w(f"  CUSUM for a smallest shift of {d.min_shift_sigma:g} sigma: k = {d.k:.3f}, h = {d.h:.2f}\n")
     w(f"  multi-chart CUSUM (the default test): k = {', '.join(f'{k:.3g}' for k in d.bank_ks)}; "
-      f"h's = {', '.join(f'{h:.3f}' for h in d.bank_hs)}\n")
-    w(f"  GLR (any shift size): threshold = {d.glr_threshold:.3f}, segments up to {d.glr_window} samples\n\n")
+      f"h's = {', '.join(f'{h:.2f}' for h in d.bank_hs)}\n")
+    w(f"  GLR (any shift size): threshold = {d.glr_threshold:.2f}, segments up to {d.glr_window} samples\n\n")
     w("  shift    multi-CUSUM median     CUSUM ARL   CUSUM median delay     GLR median delay\n")
     w("  (sigma)  delay, at most         (samples)   (samples / time)       (samples / time)\n")
     for r in d.rows:
         if r.shift == 0:
             w(f"  {r.shift:5.2f}   {'':22s}{r.cusum_arl:11,.0f}   in control: a false alarm every "
-              f"{format_duration(r.cusum_arl * interval)} on average\n")
+              f"{hd(r.cusum_arl * interval)} on average\n")
             continue
-        g = "" if r.glr_median is None else f"{r.glr_median:6.0f} / {format_duration(r.glr_median * interval)}"
-        b = f"{r.bank_median:6.0f} / {format_duration(r.bank_median * interval)}"
+        g = "" if r.glr_median is None else f"{r.glr_median:6.0f} / {hd(r.glr_median * interval)}"
+        b = f"{r.bank_median:6.0f} / {hd(r.bank_median * interval)}"
         w(f"  {r.shift:5.2f}   {b:22s}{r.cusum_arl:11.1f}   {r.cusum_median:6.0f} / "
-          f"{format_duration(r.cusum_median * interval):12s} {g}\n")
-    w("\nDelays count samples from the shift to the alarm. CUSUM figures come from the\n"
+          f"{hd(r.cusum_median * interval):12s} {g}\n")
+    w("\nDelays count samples from the shift to the alarm, and are rounded for reading\n"
+      "(--json gives every figure in full). CUSUM figures come from the\n"
       "Brook & Evans Markov chain; the multi-chart CUSUM trips no later than its fastest\n"
       "chart, so its delay is at most that chart's; GLR delays come from a simulation\n"
       "with a fixed random state.\n")
@@ -347,7 +381,6 @@ def _design_from(args: argparse.Namespace) -> int:
     import numpy as np
 
     from shiftwatch.core.suggest import measure_noise, suggest
-    from shiftwatch.core.timefmt import parse_duration
     from shiftwatch.replay import CsvFormatError, read_long_csv
 
     if args.chart:
@@ -357,8 +390,9 @@ def _design_from(args: argparse.Namespace) -> int:
         _err("--from suggests min_shift_sigma for each stream; leave out --min-shift")
         return EXIT_USAGE
     try:
-        within = parse_duration(args.within)
-        every = None if args.false_alarm_every is None else parse_duration(args.false_alarm_every)
+        within = _duration_option("--within", args.within)
+        every = None if args.false_alarm_every is None else _duration_option("--false-alarm-every",
+                                                                             args.false_alarm_every)
     except ValueError as exc:
         _err(str(exc))
         return EXIT_USAGE
@@ -575,9 +609,18 @@ def cmd_schema(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
+    from shiftwatch.config import DISPLAY_KEYS
+
+    try:
+        duration = _duration_option("--duration", args.duration)
+        tz = DISPLAY_KEYS["time_zone"].check(args.time_zone)
+    except ValueError as exc:
+        _err(str(exc) if str(exc).startswith("--") else f"--time-zone: {exc}")
+        return EXIT_USAGE
     from shiftwatch.demo import run_demo
 
-    return run_demo(args.duration, metrics_listen=args.metrics_listen, use_embedded=args.embedded_broker)
+    return run_demo(duration, metrics_listen=args.metrics_listen, use_embedded=args.embedded_broker,
+                    time_zone=tz)
 
 
 # ------------------------------------------------------------------- main
@@ -597,11 +640,12 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("csv", nargs="+", help="long CSV files with columns time,stream,value")
     r.set_defaults(func=cmd_replay)
 
-    f = sub.add_parser("fit", help="fit one step to a whole series and print it as JSON")
+    f = sub.add_parser("fit", help="fit one step to a whole series and print it (--json: as JSON)")
     f.add_argument("csv", help="long CSV file with columns time,stream,value")
     f.add_argument("--stream", help="stream to fit (needed when the file holds several)")
     f.add_argument("--level", type=float, default=0.9, help="confidence level of the shift-time interval (default 0.9)")
     f.add_argument("--min-segment", type=int, default=2, help="fewest samples on each side of the shift (default 2)")
+    f.add_argument("--json", action="store_true", help="print JSON, every figure in full, instead of text")
     f.set_defaults(func=cmd_fit)
 
     d = sub.add_parser("design", help="turn plant terms into test parameters and show the run lengths, "
@@ -645,7 +689,10 @@ def build_parser() -> argparse.ArgumentParser:
     sc.set_defaults(func=cmd_schema)
 
     dm = sub.add_parser("demo", help="run a private broker, an invented line of sensors and the daemon")
-    dm.add_argument("--duration", type=float, default=75.0, help="seconds to run (default 75; Ctrl-C stops early)")
+    dm.add_argument("--duration", default="75s", metavar="DURATION",
+                    help="how long to run, with a unit (default 75s; Ctrl-C stops early)")
+    dm.add_argument("--time-zone", default="UTC", metavar="IANA_NAME",
+                    help="time zone of the times shown, e.g. Europe/Berlin (default UTC)")
     dm.add_argument("--metrics-listen", default="127.0.0.1:9650", help="metrics endpoint (default 127.0.0.1:9650)")
     dm.add_argument("--embedded-broker", action="store_true",
                     help="use the embedded broker even when mosquitto is installed")

@@ -75,6 +75,41 @@ def stamp(t: float, tz: str = "UTC") -> str:
     return text[:-6] + "Z" if tz in UTC_NAMES else text
 
 
+def human_duration(seconds: float) -> str:
+    """A duration as a person says it, to about two figures: 250 ms, 9.8 s, 1 min 38 s, 7.5 d.
+
+    Examples
+    --------
+    >>> [human_duration(s) for s in (0.25, 9.84, 48.3, 98.0, 113.0, 600.0, 754.0, 7500.0, 50400.0)]
+    ['250 ms', '9.8 s', '48 s', '1 min 38 s', '1 min 53 s', '10 min', '13 min', '2 h 5 min', '14 h']
+    >>> [human_duration(s) for s in (86400.0, 648000.0, 2592000.0, 120 * 86400.0)]
+    ['1 d', '7.5 d', '30 d', '120 d']
+    """
+    if seconds < 1:
+        return f"{float(f'{seconds * 1000:.2g}'):g} ms"
+    if seconds < 59.5:
+        return f"{float(f'{seconds:.2g}'):g} s"
+    if seconds < 3570:
+        m, s = divmod(round(seconds), 60)
+        return f"{m} min {s} s" if m < 10 and s else f"{round(seconds / 60)} min"
+    if seconds < 86400 - 1800:
+        h, m = divmod(round(seconds / 60), 60)
+        return f"{h} h {m} min" if h < 10 and m else f"{round(seconds / 3600)} h"
+    days = seconds / 86400
+    return f"{float(f'{days:.2g}'):g} d" if days < 10 else f"{days:.0f} d"
+
+
+def human_number(x: float, digits: int = 5) -> str:
+    """A measured number to ``digits`` significant figures, without exponent for everyday sizes.
+
+    Examples
+    --------
+    >>> human_number(3.0683249999999873), human_number(1097.75), human_number(-0.000123456)
+    ('3.0683', '1097.8', '-0.00012346')
+    """
+    return f"{float(f'{x:.{digits}g}'):g}" if 1e-5 <= abs(x) < 1e15 or x == 0 else f"{x:.{digits}g}"
+
+
 def zone_label(tz: str) -> str:
     """How a chart or a heading names the zone: ``UTC`` or the IANA name.
 

@@ -7,6 +7,7 @@ filler, a capper torque head and a tunnel oven.
 from __future__ import annotations
 
 import json
+import re
 from datetime import datetime, timezone
 from pathlib import Path
 
@@ -172,7 +173,7 @@ def test_fit_on_the_nile_series(cli, tmp_path: Path) -> None:
         f.write("time,stream,value\n")
         for year, vol in zip(data["year"], data["volume"]):
             f.write(f"{int(year)}-01-01T00:00:00Z,aswan/flow,{vol}\n")
-    res = cli("fit", str(csv_path))
+    res = cli("fit", str(csv_path), "--json")
     assert res.returncode == 0, res.stderr
     d = json.loads(res.stdout)
     assert d["stream"] == "aswan/flow"
@@ -188,7 +189,7 @@ def test_fit_asks_for_a_stream_when_the_file_has_several(cli, tmp_path: Path) ->
     steps = write_plant_csv(csv_path, n=2000)
     res = cli("fit", str(csv_path))
     assert res.returncode == 2 and "choose one with --stream" in res.stderr
-    res = cli("fit", str(csv_path), "--stream", "brackenfield/filler3/fill_g")
+    res = cli("fit", str(csv_path), "--stream", "brackenfield/filler3/fill_g", "--json")
     assert res.returncode == 0, res.stderr
     d = json.loads(res.stdout)
     assert abs(parse_time(d["shift_at"]) - (T0 + steps["brackenfield/filler3/fill_g"])) <= 3
@@ -217,8 +218,36 @@ def test_design_prints_a_table_an_engineer_can_read(cli) -> None:
     assert cusum_arl(0.5, h) == pytest.approx(604800, rel=0.01)
     for shift in ("0.75", "1.00", "2.00", "4.00"):
         assert f"  {shift}   " in out
+    # Delays as a person says them (the first-hour report saw "1.633 min"): whole seconds
+    # under 10 minutes, never a decimal fraction of a minute.
+    assert not re.search(r"\d\.\d+ min", out), out
+    row = next(line for line in out.splitlines() if line.startswith("   0.50"))
+    assert re.search(r"\d+ / \d+ min \d+ s", row), row
     res = cli("design", "--false-alarm-every", "often")
-    assert res.returncode == 2 and "not a duration: 'often'" in res.stderr
+    assert res.returncode == 2 and "--false-alarm-every: not a duration: 'often'" in res.stderr
+    # A bare number is refused (it printed "every 7 s" and "a false alarm every 50 s").
+    res = cli("design", "--false-alarm-every", "7")
+    assert res.returncode == 2 and res.stdout == ""
+    assert "--false-alarm-every: '7' has no unit (use a number with a unit: 250ms, 30s" in res.stderr
+    res = cli("design", "--interval", "1")
+    assert res.returncode == 2 and "--interval: '1' has no unit" in res.stderr
+
+
+def test_fit_prints_rounded_figures_for_people_and_full_ones_in_json(cli, tmp_path: Path) -> None:
+    csv_path = tmp_path / "line.csv"
+    write_plant_csv(csv_path, n=2000)
+    args = ("fit", str(csv_path), "--stream", "brackenfield/filler3/fill_g")
+    full = json.loads(cli(*args, "--json").stdout)
+    res = cli(*args)
+    assert res.returncode == 0, res.stderr
+    text = res.stdout
+    assert text.startswith(f"brackenfield/filler3/fill_g: one step at {full['shift_at']}")
+    before, after = (float(f"{full[k]:.5g}") for k in ("level_before", "level_after"))
+    assert f"level before {before:g} " in text and f"level after  {after:g} " in text
+    # No figure runs to more than 5 significant digits (the report saw 3.0683249999999873).
+    numbers = re.findall(r"(?<![\d:T-])\d+\.\d+", text.split("\n", 1)[1].replace(full["shift_at_low"], ""))
+    assert numbers and all(len(n.replace(".", "").lstrip("0")) <= 5 for n in numbers), numbers
+    assert "--json gives every figure in full" in text
 
 
 def test_commands_explain_bad_arguments_without_a_traceback(cli, tmp_path: Path) -> None:
