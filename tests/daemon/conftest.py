@@ -2,7 +2,7 @@
 
 Every test that needs a broker starts a private Mosquitto on a free loopback
 port.  When no broker can be started the test fails (it never skips): the
-README's set-up installs Mosquitto wherever it is missing.
+README's test command (tests/install-and-test.sh) installs Mosquitto wherever it is missing.
 """
 
 from __future__ import annotations

@@ -2,7 +2,7 @@
 
 * The rules pass ``promtool check rules`` and behave as written under
   ``promtool test rules`` (promtool ships in Debian's ``prometheus``
-  package; the README's set-up installs it, so a missing promtool fails).
+  package; the README's test command (tests/install-and-test.sh) installs it, so a missing promtool fails).
 * Every query of the dashboard parses as PromQL (``promtool check rules`` on
   a recording rule per query, Grafana's variables filled in).
 * Every metric name the dashboard or the rules use is one the real daemon
@@ -44,7 +44,7 @@ PROMQL_WORDS = {"by", "without", "on", "ignoring", "group_left", "group_right", 
 def promtool() -> str:
     exe = shutil.which("promtool") or ("/usr/bin/promtool" if Path("/usr/bin/promtool").exists() else None)
     if exe is None:
-        pytest.fail("promtool is not installed: the README's set-up installs it "
+        pytest.fail("promtool is not installed: the README's test command (tests/install-and-test.sh) installs it "
                     "(apt-get install prometheus, which ships promtool)")
     return exe
 
