@@ -317,14 +317,14 @@ def test_design_charts_share_one_individual_arl_from_design_h() -> None:
     assert a_design * joint_arl_ratio(a_design, 1.0) <= 2000 * 1.03 * 1.001
 
 
-def test_design_scales_ks_and_is_monotone_and_cached() -> None:
+def test_design_scales_ks_and_is_monotone_and_repeatable() -> None:
     t = MultiCusumTest.design(604800, 0.5)
     assert t.ks == pytest.approx(tuple(0.5 * m / 2.0 for m in DEFAULT_MULTIPLES))
     lo = MultiCusumTest.design(1e4, 1.0)
     hi = MultiCusumTest.design(1e6, 1.0)
     assert all(a < b for a, b in zip(lo.hs, hi.hs))
     again = MultiCusumTest.design(1e4, 1.0)
-    assert again.hs == lo.hs and again is not lo
+    assert again.hs == lo.hs and again is not lo  # the same design again, a new test object
     custom = MultiCusumTest.design(1e4, 1.0, multiples=(1.0, 3.0))
     assert custom.ks == (0.5, 1.5)
 
