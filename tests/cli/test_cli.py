@@ -196,7 +196,7 @@ def test_fit_asks_for_a_stream_when_the_file_has_several(cli, tmp_path: Path) ->
 
 
 def test_design_matches_lucas_crosier(cli) -> None:
-    # Lucas & Crosier (1982), Technometrics 24, Table 1: a two-sided CUSUM with
+    # Lucas & Crosier (1982), Technometrics 24:199-205, Table 1 (values recalled from memory): a two-sided CUSUM with
     # k = 0.5 and h = 4 has an in-control ARL of 168 and 8.38 at a 1-sigma shift.
     res = cli("design", "--min-shift", "1", "--false-alarm-every", "168s", "--interval", "1s", "--json")
     assert res.returncode == 0, res.stderr

@@ -67,7 +67,7 @@ def _simulate_run_lengths(
 # published tables
 # --------------------------------------------------------------------------
 
-# Lucas & Crosier (1982), Technometrics 24, Table 1: two-sided CUSUM with
+# Lucas & Crosier (1982), Technometrics 24:199-205, Table 1 (values recalled from memory): two-sided CUSUM with
 # k = 0.5 and no head start.
 LUCAS_CROSIER_TABLE_1 = [
     (4.0, 0.0, 168.0),
@@ -83,7 +83,8 @@ LUCAS_CROSIER_TABLE_1 = [
 def test_two_sided_arl_matches_lucas_crosier_table_1(
     h: float, shift: float, published: float
 ) -> None:
-    # Lucas & Crosier (1982), Technometrics 24, Table 1 (k = 0.5): within 1 %.
+    # Lucas & Crosier (1982), Technometrics 24:199-205, Table 1 (values recalled from memory)
+    # (k = 0.5): within 1 %.
     got = cusum_arl(0.5, h, shift)
     assert got == pytest.approx(published, rel=0.01)
 
@@ -322,7 +323,7 @@ def test_design_h_one_week_at_one_hertz() -> None:
 
 
 def test_design_h_reproduces_lucas_crosier_h() -> None:
-    # Lucas & Crosier (1982) Table 1: h = 4 and h = 5 at k = 0.5 give
+    # Lucas & Crosier (1982), Technometrics 24:199-205, Table 1 (values recalled from memory): h = 4 and h = 5 at k = 0.5 give
     # in-control ARLs 168 and 465, so design_h must return h ~ 4 and ~ 5.
     assert design_h(168.0, 0.5) == pytest.approx(4.0, abs=0.01)
     assert design_h(465.0, 0.5) == pytest.approx(5.0, abs=0.01)
@@ -367,7 +368,7 @@ def test_bad_arguments_raise() -> None:
 
 
 def test_arl_table_rows() -> None:
-    # Lucas & Crosier (1982) Table 1, k = 0.5, h = 4 (ARL column).
+    # Lucas & Crosier (1982), Technometrics 24:199-205, Table 1 (values recalled from memory), k = 0.5, h = 4 (ARL column).
     rows = arl_table(0.5, 4.0, [0.0, 0.5, 1.0, 2.0])
     assert [r[0] for r in rows] == [0.0, 0.5, 1.0, 2.0]
     for (shift, arl, med), published in zip(rows, [168.0, 26.6, 8.38, 3.34]):
