@@ -91,11 +91,15 @@ def test_neighbouring_settings_trade_false_alarms_for_delay() -> None:
 @pytest.mark.slow
 def test_the_chosen_curve_in_control_is_the_calibrated_arl_by_simulation() -> None:
     # In control the chart shows the requested ARL; a simulation of the bank the
-    # engine builds for it (1,500 runs, fixed random state) agrees within 10%.
+    # engine builds for it (1,500 runs, fixed random state) agrees within three of
+    # its standard errors (the run lengths' own sd over sqrt(1500), about 2.6% of
+    # the mean for near-exponential run lengths) plus the 3% by which the bank's
+    # joint calibration may exceed the request (test_multicusum checks that margin).
     [chosen, _, _] = sensitivity(1.0, 500.0, 1.0, shifts=(0.0,))
     test = MultiCusumTest.design(chosen.arl0, 1.0)
     rl = run_lengths(test, 0.0, 1500, np.random.default_rng(7))
-    assert rl.mean() == pytest.approx(chosen.arl[0], rel=0.10)
+    se = float(rl.std(ddof=1)) / math.sqrt(rl.size)
+    assert abs(rl.mean() - chosen.arl[0]) <= 3 * se + 0.03 * chosen.arl[0], (rl.mean(), se)
 
 
 # ------------------------------------------------------ measuring the noise
