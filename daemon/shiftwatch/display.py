@@ -10,7 +10,7 @@ zones are IANA names read from the system's tz database through
 from __future__ import annotations
 
 import functools
-from datetime import datetime, timezone, tzinfo
+from datetime import UTC, datetime, tzinfo
 from zoneinfo import ZoneInfo
 
 from shiftwatch.core.engine import AlertRecord
@@ -22,7 +22,7 @@ UTC_NAMES = frozenset(("UTC", "Etc/UTC", "Z"))
 @functools.lru_cache(maxsize=16)
 def zone(name: str) -> tzinfo:
     """The tzinfo of an IANA name (``UTC`` is :data:`datetime.timezone.utc`)."""
-    return timezone.utc if name in UTC_NAMES else ZoneInfo(name)
+    return UTC if name in UTC_NAMES else ZoneInfo(name)
 
 
 def _local(t: float, tz: str) -> datetime:

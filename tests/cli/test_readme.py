@@ -18,7 +18,7 @@ def section(title: str) -> str:
 
 
 def test_quick_start_is_two_commands_and_ci_runs_the_second_and_nothing_else() -> None:
-    blocks = re.findall(r"```sh\n(.*?)```", section("Quick start"), re.S)
+    blocks = re.findall(r"```sh\n(.*?)```", section("Quick start"), re.DOTALL)
     commands = [line for b in blocks for line in b.splitlines() if line.strip()]
     assert len(commands) == 2, commands
     assert commands[0].endswith("shiftwatch demo") and "pip install" in commands[0]
@@ -41,7 +41,7 @@ def test_the_record_example_carries_the_advisory_the_engine_writes() -> None:
 
 def test_the_units_documentation_path_is_where_the_install_steps_put_the_readme() -> None:
     unit = (ROOT / "systemd" / "shiftwatch.service").read_text()
-    doc = re.search(r"^Documentation=file://(\S+)$", unit, re.M)
+    doc = re.search(r"^Documentation=file://(\S+)$", unit, re.MULTILINE)
     assert doc is not None
     assert re.search(rf"install -m 0644 \S*README\.md {re.escape(doc.group(1))}", section("Operation"))
 
@@ -49,7 +49,7 @@ def test_the_units_documentation_path_is_where_the_install_steps_put_the_readme(
 def test_every_link_inside_the_readme_leads_to_a_heading() -> None:
     # GitHub's anchors: lower case, punctuation other than - and _ dropped, spaces as -.
     anchors = {re.sub(r"[^\w\- ]", "", h.strip().lower()).replace(" ", "-")
-               for h in re.findall(r"^#+ (.+)$", README, re.M)}
+               for h in re.findall(r"^#+ (.+)$", README, re.MULTILINE)}
     links = set(re.findall(r"\]\(#([^)]+)\)", README))
     assert links and links <= anchors, links - anchors
 
