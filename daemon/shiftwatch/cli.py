@@ -507,10 +507,6 @@ def cmd_run(args: argparse.Namespace) -> int:
     return Daemon(cfg, config_path=args.config, logger=log).run()
 
 
-#: Where systemd puts a system service's credentials (systemd.exec(5), LoadCredential=).
-CREDENTIALS_DIR = "/run/credentials/"
-
-
 def config_warnings(path: str, cfg: Any) -> list[str]:
     """Warnings about a configuration that is valid but risky.
 
@@ -522,6 +518,7 @@ def config_warnings(path: str, cfg: Any) -> list[str]:
     import stat
 
     from shiftwatch.metrics import parse_listen
+    from shiftwatch.preflight import CREDENTIALS_DIR
 
     b, m = cfg.broker, cfg.metrics
     secrets = [("broker.password_file", b.password_file),

@@ -96,8 +96,24 @@ def port_probe(listen: str) -> Probe:
     return Probe(what, note="free")
 
 
+#: Where systemd puts a system service's credentials (systemd.exec(5), LoadCredential=): such a
+#: file exists only inside the running service, so `check` run beside it cannot read it.
+CREDENTIALS_DIR = "/run/credentials/"
+
+
+def _credential_elsewhere(path: str | None) -> bool:
+    return path is not None and path.startswith(CREDENTIALS_DIR) and not os.path.exists(path)
+
+
 def readable_probe(what: str, path: str) -> Probe:
-    """A file the daemon reads at start (password, certificates, keys) can be opened and read."""
+    """A file the daemon reads at start (password, certificates, keys) can be opened and read.
+
+    A systemd credential that is not there is not a problem: it exists only inside the
+    service (``LoadCredential=`` copies it there when the service starts).
+    """
+    if _credential_elsewhere(path):
+        return Probe(f"{what} {path}", note="a systemd credential, there only inside the service: "
+                     "not tried (check its source file named by LoadCredential=)")
     try:
         with open(path, "rb") as f:
             f.read(1)
@@ -111,6 +127,11 @@ def broker_probe(cfg: Config, env: dict[str, str] | None = None, timeout: float 
     from shiftwatch.mqtt import BrokerError, probe_broker, read_password
 
     what = f"broker {cfg.broker.url}"
+    b = cfg.broker
+    if any(_credential_elsewhere(f) for f in (b.password_file, b.tls.cert_file if b.tls else None,
+                                              b.tls.key_file if b.tls else None)):
+        return Probe(what, note="not tried: its password or key is a systemd credential, there "
+                     "only inside the service")
     try:
         password = read_password(cfg.broker, env)
     except BrokerError as exc:

@@ -441,7 +441,9 @@ def test_level_updates_waiting_for_acknowledgement_stay_bounded(mosquitto: Mosqu
         assert set(got) == {name[len("fz/json/line/"):] for name in d.engines}
         for name, body in got.items():
             eng = d.engines["fz/json/line/" + name]
-            assert (body["state"], body["level"], body["sigma"]) == (eng.state, eng.level, eng.sigma)
+            # Level and sigma to 6 significant digits, as the payload rounds them for people.
+            assert (body["state"], body["level"], body["sigma"]) == \
+                (eng.state, float(f"{eng.level:.6g}"), float(f"{eng.sigma:.6g}"))
         assert not d._levels_due and d.link.connected
 
 
