@@ -12,6 +12,7 @@ import argparse
 import json
 import logging
 import sys
+import time
 from typing import Any, Sequence, TextIO
 
 from shiftwatch import __version__
@@ -109,8 +110,14 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
 
         def unit_for(stream: str) -> str | None:
             return None
+
+        def label_for(stream: str) -> str | None:
+            return None
+        tz = "UTC"
     else:
         settings_for = cfg.settings_for
+        label_for = cfg.label_for
+        tz = cfg.display.time_zone
 
         def unit_for(stream: str) -> str | None:
             sc = cfg.stream_for(stream)
@@ -133,9 +140,19 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
             return EXIT_USAGE
     else:
         out = sys.stdout
+    from shiftwatch.display import alert_summary
+
+    written = time.time()  # the summaries give the date of a time not on this day
+    labels = {name: label_for(name) for name in engines}
     try:
         for rec in records:
-            out.write(json.dumps(rec.to_dict()) + "\n")
+            # The same record the daemon publishes: the label when the config gives one, the summary.
+            d = rec.to_dict()
+            label = labels.get(rec.stream)
+            if label is not None:
+                d["label"] = label
+            d["summary"] = alert_summary(rec, label, tz, today=written)
+            out.write(json.dumps(d) + "\n")
     finally:
         if args.out:
             out.close()
@@ -164,7 +181,7 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
             path = report.write(
                 samples={name: e.samples_total for name, e in engines.items()},
                 rejected={name: dict(e.rejected_total) for name, e in engines.items()},
-                units={name: unit_for(name) for name in engines},
+                units={name: unit_for(name) for name in engines}, labels=labels, time_zone=tz,
                 sources=[str(p) for p in args.csv], unreadable_rows=len(read.problems),
                 settings_note=("default detection settings" if args.config is None
                                else f"detection settings from {args.config}"),
@@ -237,20 +254,51 @@ def cmd_fit(args: argparse.Namespace) -> int:
         "f_stat": fit.f_stat,
         "p_value": fit.p_value,
     }
-    print(json.dumps(d))
+    if args.json:
+        print(json.dumps(d))
+    else:
+        print(_fit_text(d, fit))
     return EXIT_BAD_DATA if read.problems else EXIT_OK
 
 
+def _fit_text(d: dict[str, Any], fit: Any) -> str:
+    """The fitted step for a person: five significant figures (``--json`` keeps them all)."""
+    from shiftwatch.display import human_number as num
+
+    low, high = d["shift_at_low"], d["shift_at_high"]
+    if low[:11] == high[:11]:
+        high = high[11:]
+    return (f"{d['stream']}: one step at {d['shift_at']}\n"
+            f"  shift-time interval ({fit.interval_level:.0%}): {low} to {high}\n"
+            f"  level before {num(fit.level_before)} (standard error {num(fit.level_before_se, 2)}, "
+            f"{fit.n_before} samples)\n"
+            f"  level after  {num(fit.level_after)} (standard error {num(fit.level_after_se, 2)}, "
+            f"{fit.n_after} samples)\n"
+            f"  step {'+' if fit.delta >= 0 else ''}{num(fit.delta)} ({num(fit.delta_sigma, 3)} sigma; "
+            f"sigma {num(fit.sigma, 3)})\n"
+            f"  one step against none: F {num(fit.f_stat, 4)}, p-value {fit.p_value:.2g}\n"
+            "(rounded for reading; --json gives every figure in full)")
+
+
 # ----------------------------------------------------------------- design
+def _duration_option(option: str, text: str) -> float:
+    """A duration given on the command line; the error names the option."""
+    from shiftwatch.core.timefmt import parse_duration
+
+    try:
+        return parse_duration(text)
+    except ValueError as exc:
+        raise ValueError(f"{option}: {exc}") from None
+
+
 def cmd_design(args: argparse.Namespace) -> int:
     from shiftwatch.core.design import design
-    from shiftwatch.core.timefmt import format_duration, parse_duration
 
     if args.from_csv:
         return _design_from(args)
     try:
-        every = parse_duration(args.false_alarm_every or "7d")
-        interval = parse_duration(args.interval)
+        every = _duration_option("--false-alarm-every", args.false_alarm_every or "7d")
+        interval = _duration_option("--interval", args.interval)
     except ValueError as exc:
         _err(str(exc))
         return EXIT_USAGE
@@ -297,26 +345,29 @@ def cmd_design(args: argparse.Namespace) -> int:
                 for c in curves]}
         print(json.dumps(out))
         return EXIT_OK
+    from shiftwatch.display import human_duration as hd
+
     w = sys.stdout.write
-    w(f"Design for a stream sampled every {format_duration(interval)}, "
-      f"at most one false alarm every {format_duration(every)} on average\n")
+    w(f"Design for a stream sampled every {hd(interval)}, "
+      f"at most one false alarm every {hd(every)} on average\n")
     w(f"  in-control average run length (ARL): {d.arl0:,.0f} samples\n")
-    w(f"  CUSUM for a smallest shift of {d.min_shift_sigma:g} sigma: k = {d.k:.3f}, h = {d.h:.3f}\n")
+    w(f"  CUSUM for a smallest shift of {d.min_shift_sigma:g} sigma: k = {d.k:.3f}, h = {d.h:.2f}\n")
     w(f"  multi-chart CUSUM (the default test): k = {', '.join(f'{k:.3g}' for k in d.bank_ks)}; "
-      f"h's = {', '.join(f'{h:.3f}' for h in d.bank_hs)}\n")
-    w(f"  GLR (any shift size): threshold = {d.glr_threshold:.3f}, segments up to {d.glr_window} samples\n\n")
+      f"h's = {', '.join(f'{h:.2f}' for h in d.bank_hs)}\n")
+    w(f"  GLR (any shift size): threshold = {d.glr_threshold:.2f}, segments up to {d.glr_window} samples\n\n")
     w("  shift    multi-CUSUM median     CUSUM ARL   CUSUM median delay     GLR median delay\n")
     w("  (sigma)  delay, at most         (samples)   (samples / time)       (samples / time)\n")
     for r in d.rows:
         if r.shift == 0:
             w(f"  {r.shift:5.2f}   {'':22s}{r.cusum_arl:11,.0f}   in control: a false alarm every "
-              f"{format_duration(r.cusum_arl * interval)} on average\n")
+              f"{hd(r.cusum_arl * interval)} on average\n")
             continue
-        g = "" if r.glr_median is None else f"{r.glr_median:6.0f} / {format_duration(r.glr_median * interval)}"
-        b = f"{r.bank_median:6.0f} / {format_duration(r.bank_median * interval)}"
+        g = "" if r.glr_median is None else f"{r.glr_median:6.0f} / {hd(r.glr_median * interval)}"
+        b = f"{r.bank_median:6.0f} / {hd(r.bank_median * interval)}"
         w(f"  {r.shift:5.2f}   {b:22s}{r.cusum_arl:11.1f}   {r.cusum_median:6.0f} / "
-          f"{format_duration(r.cusum_median * interval):12s} {g}\n")
-    w("\nDelays count samples from the shift to the alarm. CUSUM figures come from the\n"
+          f"{hd(r.cusum_median * interval):12s} {g}\n")
+    w("\nDelays count samples from the shift to the alarm, and are rounded for reading\n"
+      "(--json gives every figure in full). CUSUM figures come from the\n"
       "Brook & Evans Markov chain; the multi-chart CUSUM trips no later than its fastest\n"
       "chart, so its delay is at most that chart's; GLR delays come from a simulation\n"
       "with a fixed random state.\n")
@@ -331,7 +382,6 @@ def _design_from(args: argparse.Namespace) -> int:
     import numpy as np
 
     from shiftwatch.core.suggest import measure_noise, suggest
-    from shiftwatch.core.timefmt import parse_duration
     from shiftwatch.replay import CsvFormatError, read_long_csv
 
     if args.chart:
@@ -341,8 +391,9 @@ def _design_from(args: argparse.Namespace) -> int:
         _err("--from suggests min_shift_sigma for each stream; leave out --min-shift")
         return EXIT_USAGE
     try:
-        within = parse_duration(args.within)
-        every = None if args.false_alarm_every is None else parse_duration(args.false_alarm_every)
+        within = _duration_option("--within", args.within)
+        every = None if args.false_alarm_every is None else _duration_option("--false-alarm-every",
+                                                                             args.false_alarm_every)
     except ValueError as exc:
         _err(str(exc))
         return EXIT_USAGE
@@ -402,18 +453,37 @@ def _design_from(args: argparse.Namespace) -> int:
 
 
 # ---------------------------------------------------------------- daemon
+#: Fields a log line may carry besides its message (``extra=`` of the logging call), in this order.
+LOG_FIELDS = ("stream", "event_id", "phase")
+
+
 class _JsonFormatter(logging.Formatter):
+    """One JSON object per line: ``time`` (RFC 3339 in the display time zone), ``level``,
+    ``logger``, ``message``, and ``stream``, ``event_id``, ``phase`` where the line concerns one."""
+
+    def __init__(self, tz: str = "UTC") -> None:
+        super().__init__()
+        self.tz = tz
+
     def format(self, record: logging.LogRecord) -> str:
-        d = {"level": record.levelname.lower(), "logger": record.name, "message": record.getMessage()}
+        from shiftwatch.display import stamp
+
+        d: dict[str, Any] = {"time": stamp(record.created, self.tz), "level": record.levelname.lower(),
+                             "logger": record.name, "message": record.getMessage()}
+        for key in LOG_FIELDS:
+            value = getattr(record, key, None)
+            if value is not None:
+                d[key] = value
         if record.exc_info:
             d["exception"] = self.formatException(record.exc_info)
         return json.dumps(d)
 
 
-def setup_logging(fmt: str, level: int = logging.INFO) -> logging.Logger:
-    """One line per event on stderr, no timestamps of our own (journald adds them)."""
+def setup_logging(fmt: str, level: int = logging.INFO, tz: str = "UTC") -> logging.Logger:
+    """One line per event on stderr.  Text lines carry no time stamp of their own (journald
+    adds one); JSON lines carry ``time`` in the display time zone ``tz``."""
     handler = logging.StreamHandler(sys.stderr)
-    handler.setFormatter(_JsonFormatter() if fmt == "json" else logging.Formatter("%(levelname)s %(message)s"))
+    handler.setFormatter(_JsonFormatter(tz) if fmt == "json" else logging.Formatter("%(levelname)s %(message)s"))
     log = logging.getLogger("shiftwatch")
     log.handlers[:] = [handler]
     log.setLevel(level)
@@ -430,15 +500,12 @@ def cmd_run(args: argparse.Namespace) -> int:
     except ConfigError as exc:
         log.error("%s", exc)
         return EXIT_USAGE
+    log = setup_logging(args.log_format, tz=cfg.display.time_zone)
     from shiftwatch.daemon import Daemon
 
     for warning in config_warnings(args.config, cfg):
         log.warning("%s", warning)
     return Daemon(cfg, config_path=args.config, logger=log).run()
-
-
-#: Where systemd puts a system service's credentials (systemd.exec(5), LoadCredential=).
-CREDENTIALS_DIR = "/run/credentials/"
 
 
 def config_warnings(path: str, cfg: Any) -> list[str]:
@@ -452,6 +519,7 @@ def config_warnings(path: str, cfg: Any) -> list[str]:
     import stat
 
     from shiftwatch.metrics import parse_listen
+    from shiftwatch.preflight import CREDENTIALS_DIR
 
     b, m = cfg.broker, cfg.metrics
     secrets = [("broker.password_file", b.password_file),
@@ -479,12 +547,30 @@ def config_warnings(path: str, cfg: Any) -> list[str]:
     return out
 
 
+#: Resolved settings that are durations: ``check`` prints them as the file would hold them.
+_DURATION_KEYS = frozenset(("session_expiry", "snapshot_every", "false_alarm_every", "max_time_ahead",
+                            "max_time_behind"))
+
+
+def _durations_as_text(d: Any) -> Any:
+    """The resolved settings with every duration in seconds written back as text (``7d``)."""
+    from shiftwatch.core.timefmt import duration_text
+
+    if isinstance(d, dict):
+        return {k: (duration_text(v) if k in _DURATION_KEYS and isinstance(v, float)
+                    else _durations_as_text(v)) for k, v in d.items()}
+    if isinstance(d, (list, tuple)):
+        return [_durations_as_text(v) for v in d]
+    return d
+
+
 def cmd_check(args: argparse.Namespace) -> int:
     import dataclasses
 
     import yaml
 
     from shiftwatch.config import ConfigError, load_config
+    from shiftwatch.preflight import run_probes
 
     try:
         cfg = load_config(args.config)
@@ -493,10 +579,23 @@ def cmd_check(args: argparse.Namespace) -> int:
         return EXIT_USAGE
     d = dataclasses.asdict(cfg)
     d.pop("source", None)
-    print(f"# {args.config}: valid. Resolved settings (defaults filled in, durations in seconds):")
-    print(yaml.safe_dump(d, sort_keys=False), end="")
+    print(f"# {args.config}: valid. Resolved settings (defaults filled in):")
+    print(yaml.safe_dump(_durations_as_text(d), sort_keys=False), end="")
     for w in config_warnings(args.config, cfg):
         _err("warning: " + w)
+    probes = run_probes(cfg, network=not args.no_network)
+    print("# Tried without side effects (nothing created, nothing published):")
+    for p in probes:
+        if p.ok:
+            print(f"#   ok: {p.what}: {p.note}")
+        else:
+            print(f"#   PROBLEM: {p.what}: {p.problem}")
+            _err(f"{p.what}: {p.problem}")
+    failed = sum(not p.ok for p in probes)
+    if failed:
+        _err(f"{args.config} is valid, but {failed} problem(s) would stop or hamper the daemon "
+             "at start (above)")
+        return EXIT_BAD_DATA
     return EXIT_OK
 
 
@@ -508,9 +607,18 @@ def cmd_schema(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
+    from shiftwatch.config import DISPLAY_KEYS
+
+    try:
+        duration = _duration_option("--duration", args.duration)
+        tz = DISPLAY_KEYS["time_zone"].check(args.time_zone)
+    except ValueError as exc:
+        _err(str(exc) if str(exc).startswith("--") else f"--time-zone: {exc}")
+        return EXIT_USAGE
     from shiftwatch.demo import run_demo
 
-    return run_demo(args.duration, metrics_listen=args.metrics_listen, use_embedded=args.embedded_broker)
+    return run_demo(duration, metrics_listen=args.metrics_listen, use_embedded=args.embedded_broker,
+                    time_zone=tz)
 
 
 # ------------------------------------------------------------------- main
@@ -530,11 +638,12 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("csv", nargs="+", help="long CSV files with columns time,stream,value")
     r.set_defaults(func=cmd_replay)
 
-    f = sub.add_parser("fit", help="fit one step to a whole series and print it as JSON")
+    f = sub.add_parser("fit", help="fit one step to a whole series and print it (--json: as JSON)")
     f.add_argument("csv", help="long CSV file with columns time,stream,value")
     f.add_argument("--stream", help="stream to fit (needed when the file holds several)")
     f.add_argument("--level", type=float, default=0.9, help="confidence level of the shift-time interval (default 0.9)")
     f.add_argument("--min-segment", type=int, default=2, help="fewest samples on each side of the shift (default 2)")
+    f.add_argument("--json", action="store_true", help="print JSON, every figure in full, instead of text")
     f.set_defaults(func=cmd_fit)
 
     d = sub.add_parser("design", help="turn plant terms into test parameters and show the run lengths, "
@@ -566,15 +675,22 @@ def build_parser() -> argparse.ArgumentParser:
     rn.add_argument("--log-format", choices=("text", "json"), default="text", help="log line format (default text)")
     rn.set_defaults(func=cmd_run)
 
-    ck = sub.add_parser("check", help="validate a configuration file and print the resolved settings")
+    ck = sub.add_parser("check", help="validate a configuration file, print the resolved settings, and try "
+                        "what can be tried without side effects (state directory, metrics port, "
+                        "files, broker)")
     ck.add_argument("--config", required=True, help="YAML configuration file")
+    ck.add_argument("--no-network", action="store_true",
+                    help="do not try to connect to the broker (the other probes still run)")
     ck.set_defaults(func=cmd_check)
 
     sc = sub.add_parser("schema", help="print the JSON Schema of the configuration file (for editors)")
     sc.set_defaults(func=cmd_schema)
 
     dm = sub.add_parser("demo", help="run a private broker, an invented line of sensors and the daemon")
-    dm.add_argument("--duration", type=float, default=75.0, help="seconds to run (default 75; Ctrl-C stops early)")
+    dm.add_argument("--duration", default="75s", metavar="DURATION",
+                    help="how long to run, with a unit (default 75s; Ctrl-C stops early)")
+    dm.add_argument("--time-zone", default="UTC", metavar="IANA_NAME",
+                    help="time zone of the times shown, e.g. Europe/Berlin (default UTC)")
     dm.add_argument("--metrics-listen", default="127.0.0.1:9650", help="metrics endpoint (default 127.0.0.1:9650)")
     dm.add_argument("--embedded-broker", action="store_true",
                     help="use the embedded broker even when mosquitto is installed")

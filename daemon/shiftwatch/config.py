@@ -36,7 +36,38 @@ class ConfigError(ValueError):
         where = file or "config"
         if line is not None:
             where += f":{line}"
-        super().__init__(f"{where}: {path}: {message}" if path else f"{where}: {message}")
+        shown = _counted_path(path)
+        super().__init__(f"{where}: {shown}: {message}" if path else f"{where}: {message}")
+
+
+def _ordinal(n: int) -> str:
+    """1st, 2nd, 3rd, 4th, ..., 11th, 12th, 13th, 21st.
+
+    Examples
+    --------
+    >>> [_ordinal(n) for n in (1, 2, 3, 4, 11, 12, 13, 21, 22, 101, 111)]
+    ['1st', '2nd', '3rd', '4th', '11th', '12th', '13th', '21st', '22nd', '101st', '111th']
+    """
+    suffix = "th" if 10 <= n % 100 <= 20 else {1: "st", 2: "nd", 3: "rd"}.get(n % 10, "th")
+    return f"{n}{suffix}"
+
+
+def _counted_path(path: str) -> str:
+    """A key path as an engineer counts: ``streams[2].unit`` reads "the 3rd stream (streams[2]): unit".
+
+    Examples
+    --------
+    >>> _counted_path("streams[2].detection.min_shift_sigma")
+    'the 3rd stream (streams[2]): detection.min_shift_sigma'
+    >>> _counted_path("streams[0]"), _counted_path("broker.url")
+    ('the 1st stream (streams[0])', 'broker.url')
+    """
+    m = re.match(r"streams\[(\d+)\]\.?", path)
+    if m is None:
+        return path
+    rest = path[m.end():]
+    head = f"the {_ordinal(int(m.group(1)) + 1)} stream (streams[{m.group(1)}])"
+    return f"{head}: {rest}" if rest else head
 
 
 # --------------------------------------------------------------------- schema
@@ -65,10 +96,19 @@ def _num(positive: bool = True, integer: bool = False, minimum: float | None = N
     return check
 
 
-def _str(choices: tuple[str, ...] | None = None, nonempty: bool = True) -> Callable[[Any], Any]:
+def _str(choices: tuple[str, ...] | None = None, nonempty: bool = True,
+         form: str | None = None) -> Callable[[Any], Any]:
+    """Text, one of ``choices`` when given; ``form`` describes it in the error (e.g. HOST:PORT)."""
+
     def check(v: Any) -> Any:
         if not isinstance(v, str):
-            raise ValueError(f"must be text, got {v!r}")
+            what = f"text in the form {form}" if form else "text"
+            if choices is not None and str(v) in choices:
+                # YAML reads 5 as a number: the value is right, it only needs quotes.
+                raise ValueError(f"must be text, got the number {v!r}; write it in quotes: \"{v}\"")
+            if choices is not None:
+                raise ValueError(f"must be text, one of {', '.join(repr(c) for c in choices)}, got {v!r}")
+            raise ValueError(f"must be {what}, got {v!r}")
         if nonempty and not v.strip():
             raise ValueError("must not be empty")
         if choices is not None and v not in choices:
@@ -80,6 +120,26 @@ def _str(choices: tuple[str, ...] | None = None, nonempty: bool = True) -> Calla
 
 def _duration(v: Any) -> float:
     return parse_duration(v)
+
+
+#: JSON Schema of a duration: text, a number with a unit (see parse_duration).
+DURATION_SCHEMA: dict[str, Any] = {"type": "string",
+                                   "pattern": r"^\s*\d+(\.\d+)?\s*(ms|s|m|min|h|d|w)\s*$"}
+
+
+def _time_zone(v: Any) -> str:
+    """An IANA time zone name (``Europe/Berlin``, ``UTC``), checked against the system's tz database."""
+    import zoneinfo
+
+    if not isinstance(v, str) or not v.strip():
+        raise ValueError(f"must be an IANA time zone name such as 'Europe/Berlin' or 'UTC', got {v!r}")
+    try:
+        zoneinfo.ZoneInfo(v)
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+        hint = difflib.get_close_matches(v, sorted(zoneinfo.available_timezones()), n=1)
+        more = f"; did you mean '{hint[0]}'?" if hint else " (IANA names such as 'Europe/Berlin' or 'UTC')"
+        raise ValueError(f"unknown time zone {v!r}{more}") from None
+    return v
 
 
 def _bool(v: Any) -> bool:
@@ -125,12 +185,16 @@ def _detection_keys() -> dict[str, Key]:
     for f in fields(DetectionSettings):
         default = getattr(defaults, f.name)
         if f.name == "false_alarm_every":
-            keys[f.name] = Key(_duration, "7d", _DETECTION_HELP[f.name], {"type": ["string", "number"]})
+            keys[f.name] = Key(_duration, "7d", _DETECTION_HELP[f.name], dict(DURATION_SCHEMA))
+        elif f.name == "min_shift_sigma":
+            keys[f.name] = Key(_num(), default, _DETECTION_HELP[f.name],
+                               {"type": "number", "exclusiveMinimum": 0, "maximum": 4})
         elif f.name == "test":
             keys[f.name] = Key(_str(TEST_NAMES), default, _DETECTION_HELP[f.name], {"enum": list(TEST_NAMES)})
         elif f.name in ("max_time_ahead", "max_time_behind"):
-            keys[f.name] = Key(_optional(_duration), default, _DETECTION_HELP[f.name],
-                               {"type": ["string", "number", "null"]})
+            keys[f.name] = Key(_optional(_duration), None if default is None else f"{default:g}s",
+                               _DETECTION_HELP[f.name],
+                               {"anyOf": [dict(DURATION_SCHEMA), {"type": "null"}]})
         elif f.name == "min_sigma":
             keys[f.name] = Key(_optional(_num()), None, _DETECTION_HELP[f.name], {"type": ["number", "null"]})
         elif isinstance(default, int):
@@ -156,8 +220,9 @@ BROKER_KEYS = {
     "password_env": Key(_optional(_str()), None, "environment variable holding the password"),
     "tls": Key(lambda v: v, None, "TLS settings: ca_file, cert_file, key_file"),
     "keepalive": Key(_num(integer=True), 30, "MQTT keepalive in seconds"),
-    "mqtt_version": Key(_str(("5", "3.1.1")), "5", "MQTT protocol version: 5 or 3.1.1"),
-    "session_expiry": Key(_duration, "1d", "how long the broker keeps our session and queued samples while we are away"),
+    "mqtt_version": Key(_str(("5", "3.1.1")), "5", "MQTT protocol version: \"5\" or \"3.1.1\" (in quotes)"),
+    "session_expiry": Key(_duration, "1d", "how long the broker keeps our session and queued samples "
+                          "while we are away", dict(DURATION_SCHEMA)),
     "qos": Key(_num(integer=True, positive=False), 1, "subscription QoS (0, 1)"),
     "max_payload_bytes": Key(_num(integer=True), 65536, "messages larger than this are rejected before parsing"),
     "receive_maximum": Key(_num(integer=True), 1000, "MQTT 5: most unacknowledged QoS 1 messages the broker may "
@@ -183,7 +248,8 @@ ALERTS_KEYS = {
 }
 
 METRICS_KEYS = {
-    "listen": Key(_str(), "127.0.0.1:9650", "host:port of the Prometheus endpoint"),
+    "listen": Key(_str(form='HOST:PORT, e.g. "127.0.0.1:9650"'), "127.0.0.1:9650",
+                  "HOST:PORT of the Prometheus endpoint"),
     "max_streams": Key(_num(integer=True), 10000, "most streams tracked (and labelled in metrics)"),
     "tls": Key(lambda v: v, None,
                "serve the metrics over HTTPS: cert_file, key_file, client_ca_file"),
@@ -202,7 +268,7 @@ METRICS_TLS_KEYS = {
 
 STATE_KEYS = {
     "dir": Key(_str(), "/var/lib/shiftwatch", "directory for snapshots and the alert outbox"),
-    "snapshot_every": Key(_duration, "60s", "how often stream state is snapshotted"),
+    "snapshot_every": Key(_duration, "60s", "how often stream state is snapshotted", dict(DURATION_SCHEMA)),
     "journal": Key(_bool, True, "journal the samples processed since the last snapshot, so a "
                    "killed daemon restarts where it stopped"),
 }
@@ -214,6 +280,11 @@ REFUSED_KEYS = {
                        "named by broker.password_env",
 }
 
+DISPLAY_KEYS = {
+    "time_zone": Key(_time_zone, "UTC", "IANA time zone in which alert summaries, logs, the demo and "
+                     "the replay report show times (records stay UTC), e.g. Europe/Berlin"),
+}
+
 TOP_KEYS = {
     "broker": Key(lambda v: v, None, "MQTT broker connection"),
     "streams": Key(lambda v: v, None, "which topics to watch and how to read them"),
@@ -221,6 +292,7 @@ TOP_KEYS = {
     "alerts": Key(lambda v: v, None, "where alert records go"),
     "metrics": Key(lambda v: v, None, "Prometheus endpoint"),
     "state": Key(lambda v: v, None, "where state survives restarts"),
+    "display": Key(lambda v: v, None, "how times are shown to people"),
 }
 
 
@@ -288,6 +360,11 @@ class StateConfig:
 
 
 @dataclass(frozen=True)
+class DisplayConfig:
+    time_zone: str = "UTC"
+
+
+@dataclass(frozen=True)
 class Config:
     broker: BrokerConfig = field(default_factory=BrokerConfig)
     streams: tuple[StreamConfig, ...] = ()
@@ -295,6 +372,7 @@ class Config:
     alerts: AlertsConfig = field(default_factory=AlertsConfig)
     metrics: MetricsConfig = field(default_factory=MetricsConfig)
     state: StateConfig = field(default_factory=StateConfig)
+    display: DisplayConfig = field(default_factory=DisplayConfig)
     source: str | None = None
 
     def settings_for(self, stream: str) -> DetectionSettings:
@@ -536,12 +614,14 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
     metrics, mnodes = ld.section(nodes.get("metrics"), METRICS_KEYS, "metrics")
     host, sep, port = metrics["listen"].rpartition(":")
     if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:
-        raise ld.error("metrics.listen", f"must be host:port, got {metrics['listen']!r}", mnodes.get("listen"))
+        raise ld.error("metrics.listen", f"must be HOST:PORT (e.g. \"127.0.0.1:9650\", a port of 0 to "
+                       f"65535), got {metrics['listen']!r}", mnodes.get("listen"))
     metrics["tls"] = None
     if "tls" in mnodes:
         mt, _ = ld.section(mnodes["tls"], METRICS_TLS_KEYS, "metrics.tls")
         metrics["tls"] = MetricsTlsConfig(**mt)
     state, _ = ld.section(nodes.get("state"), STATE_KEYS, "state")
+    display, _ = ld.section(nodes.get("display"), DISPLAY_KEYS, "display")
     return Config(
         broker=broker,
         streams=tuple(streams),
@@ -549,6 +629,7 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
         alerts=AlertsConfig(**alerts),
         metrics=MetricsConfig(**metrics),
         state=StateConfig(**state),
+        display=DisplayConfig(**display),
         source=file,
     )
 
@@ -595,8 +676,8 @@ def json_schema() -> dict[str, Any]:
         for name, spec in keys.items():
             entry: dict[str, Any] = {"description": spec.help}
             entry.update(spec.schema)
-            if spec.default is not MISSING and spec.default is not None and "type" not in spec.schema \
-                    and "enum" not in spec.schema:
+            if spec.default is not MISSING and spec.default is not None \
+                    and not {"type", "enum", "anyOf"} & set(spec.schema):
                 entry["type"] = _json_type(spec.default)
             if spec.default is not MISSING and spec.default is not None:
                 entry["default"] = spec.default
@@ -622,6 +703,7 @@ def json_schema() -> dict[str, Any]:
         "metrics": obj(METRICS_KEYS,
                        {"tls": obj(METRICS_TLS_KEYS, required=("cert_file", "key_file"))}),
         "state": obj(STATE_KEYS),
+        "display": obj(DISPLAY_KEYS),
     })
     top["$schema"] = "https://json-schema.org/draft/2020-12/schema"
     top["title"] = "shiftwatch configuration"

@@ -29,11 +29,12 @@ from typing import Any
 import numpy as np
 
 from shiftwatch.config import Config, ConfigError, StreamConfig, load_config, topic_matches
-from shiftwatch.core.engine import AlertRecord, StreamEngine
+from shiftwatch.core.engine import ADVISORY, AlertRecord, StreamEngine
 from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
-from shiftwatch.core.timefmt import format_duration, format_time
+from shiftwatch.core.timefmt import format_time
 from shiftwatch.decode import REASONS as DECODE_REASONS
 from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, stream_name
+from shiftwatch.display import alert_summary, clock, stamp
 from shiftwatch.journal import Journal, JournalGroup
 from shiftwatch.metrics import Metrics, MetricsServer, StreamStats
 from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
@@ -77,17 +78,45 @@ LEVELS_IN_FLIGHT = 50
 
 
 class RateLimitedLog:
-    """At most one line per key per ``every`` seconds; says how many were held back."""
+    """At most one line per key per ``every`` seconds; says how many were held back.
+
+    A line held back is counted, and the count comes out within the window
+    even when nothing more of that kind arrives: :meth:`flush` (called after
+    every processing round, and at shutdown) writes one summary line per key
+    whose window has ended with lines held back.  The summary opens a new
+    window, so a key still writes at most one line per ``every`` seconds.
+
+    Examples
+    --------
+    >>> import io
+    >>> out = io.StringIO()
+    >>> log = logging.getLogger("doctest.rlog")
+    >>> log.handlers[:] = [logging.StreamHandler(out)]
+    >>> log.propagate = False
+    >>> rl = RateLimitedLog(log)
+    >>> rl.warning("nan", "sample set aside (nan)", now=100.0)
+    >>> rl.warning("nan", "sample set aside (nan)", now=103.0)   # held back
+    >>> rl.flush(now=105.0)                                      # the window has not ended
+    >>> rl.flush(now=110.0)
+    >>> print(out.getvalue(), end="")
+    sample set aside (nan)
+    1 more like this in the last 10 s, held back (the last line written: sample set aside (nan))
+    """
 
     def __init__(self, log: logging.Logger, every: float = 10.0) -> None:
         self.log = log
         self.every = every
         self._last: dict[str, float] = {}
         self._held: dict[str, int] = {}
+        self._text: dict[str, str] = {}
+        self._extra: dict[str, dict[str, Any] | None] = {}
 
     def warning(self, key: str, text: str | Callable[[], str], now: float, *,
-                exc_info: bool = False) -> None:
-        """Log ``text`` (or what the callable returns: built only for a line that is written)."""
+                exc_info: bool = False, extra: dict[str, Any] | None = None) -> None:
+        """Log ``text`` (or what the callable returns: built only for a line that is written).
+
+        ``extra`` are the line's fields (stream, event id) for the JSON log format.
+        """
         last = self._last.get(key)
         if last is not None and now - last < self.every:
             self._held[key] = self._held.get(key, 0) + 1
@@ -98,63 +127,26 @@ class RateLimitedLog:
         if len(self._last) > 1000:  # keep the tables bounded whatever the keys
             self._last.clear()
             self._held.clear()
+            self._text.clear()
+            self._extra.clear()
         self._last[key] = now
+        self._text[key] = text
+        self._extra[key] = extra
         more = f" ({held} more like this in the last {self.every:.0f} s)" if held else ""
-        self.log.warning(text + more, exc_info=exc_info)
+        self.log.warning(text + more, exc_info=exc_info, extra=extra)
 
-
-def alert_summary(rec: AlertRecord, label: str | None = None) -> str:
-    """One line an operator reads at a glance: what stepped, by how much, when, and how soon it was seen.
-
-    ``label`` is the operator's name of the stream (the config's ``label``);
-    without it the stream name is used.  Times are UTC.
-
-    Examples
-    --------
-    >>> rec = AlertRecord(id="ace7", phase="confirmed", stream="plant/line2/filler/head7/fill",
-    ...     detected_at=1772432601.0, shift_at=1772432592.0, shift_at_low=1772432590.0,
-    ...     shift_at_high=1772432593.0, level_before=500.03, level_after=501.83, delta=1.8,
-    ...     delta_sigma=2.1, sigma=0.86, n_before=1200, n_after=60, test="multi_cusum",
-    ...     statistic=1.02, threshold=1.0, as_of=1772432650.0, interval_level=0.9,
-    ...     level_before_se=0.02, level_after_se=0.1, f_stat=80.0, p_value=1e-15,
-    ...     direction="up", unit="g")
-    >>> alert_summary(rec, "fill weight on filler 7")
-    'CONFIRMED fill weight on filler 7 stepped up 1.8 g (2.1 sigma) at 06:23:12Z, detected 9 s later: 500.03 -> 501.83 g'
-    >>> alert_summary(rec)[:60]
-    'CONFIRMED plant/line2/filler/head7/fill stepped up 1.8 g (2.'
-    """
-    unit = f" {rec.unit}" if rec.unit else ""
-    who = label or rec.stream
-    verb = rec.phase.upper()
-    if rec.phase == "dismissed":
-        return (f"{verb} {who}: the step detected at {_clock_utc(rec.detected_at)} did not last; "
-                f"the level stays {rec.level_before:.5g}{unit}, no action needed")
-    if rec.phase == "returned":
-        start = _clock_utc(rec.excursion_start) if rec.excursion_start is not None else "?"
-        return (f"{verb} {who} went back {rec.direction} {abs(rec.delta):.3g}{unit} at "
-                f"{_clock_utc(rec.shift_at)}, ending the excursion that began at {start}: "
-                f"{rec.level_before:.5g} -> {rec.level_after:.5g}{unit}")
-    if rec.phase == "undecided":
-        return (f"{verb} {who}: after {rec.n_after} samples the step detected at "
-                f"{_clock_utc(rec.detected_at)} is still uncertain ({rec.level_before:.5g} -> "
-                f"{rec.level_after:.5g}{unit}); watching on from the current level")
-    return (f"{verb} {who} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
-            f"({abs(rec.delta_sigma):.2g} sigma) at {_clock_utc(rec.shift_at)}, detected "
-            f"{_lag_text(rec.detected_at - rec.shift_at)} later: {rec.level_before:.5g} -> "
-            f"{rec.level_after:.5g}{unit}")
-
-
-def _clock_utc(t: float) -> str:
-    return format_time(t)[11:19] + "Z"
-
-
-def _lag_text(lag: float) -> str:
-    """A detection delay as an operator says it: 1.3 s, 9 s, 2.5 min."""
-    if lag < 10:
-        return f"{max(lag, 0.0):.1f} s".replace(".0 s", " s")
-    if lag < 120:
-        return f"{lag:.0f} s"
-    return format_duration(lag)
+    def flush(self, now: float, *, all_held: bool = False) -> None:
+        """Write the summary of each key whose window has ended with lines held back
+        (of every key holding some, with ``all_held``: at shutdown)."""
+        if not self._held:
+            return
+        for key in [k for k, last in self._last.items()
+                    if self._held.get(k) and (all_held or now - last >= self.every)]:
+            held = self._held.pop(key)
+            self._last[key] = now
+            self.log.warning(f"{held} more like this in the last {self.every:.0f} s, held back "
+                             f"(the last line written: {self._text.get(key, key)})",
+                             extra=self._extra.get(key))
 
 
 class _SyncThenAck:
@@ -256,6 +248,8 @@ class Daemon:
         # The ``topic`` of the config entry each engine was made for: a stream name
         # that stream_name() had to change may match no filter of its entry any more.
         self._filters: dict[str, str] = {}
+        # Streams restored under a name stream_name() now gives differently (old -> new).
+        self._renamed: dict[str, str] = {}
         self._spec_cache: dict[str, tuple[StreamConfig, str] | None] = {}
         state_dir = Path(cfg.state.dir)
         self.store = StateStore(state_dir / "snapshots", logger=self.log)
@@ -266,6 +260,9 @@ class Daemon:
         # Streams whose level update is queued (an ordered set, main thread
         # only; see send_due_levels), and the mids of the level publications out.
         self._levels_due: OrderedDict[str, None] = OrderedDict()
+        self._levels_offline = False
+        #: The site's time zone for times shown to people (records stay UTC).
+        self.tz = cfg.display.time_zone
         self._level_mids: set[int] = set()
         self._lock = threading.Lock()
         self._mid_key: dict[int, str | None] = {}
@@ -344,11 +341,19 @@ class Daemon:
         filters = meta.get("filters")
         if not isinstance(filters, dict):  # snapshots written before it was saved
             filters = {}
+        renamed = 0
         for name, state in streams.items():
             f = filters.get(name)
             spec = self.cfg.stream_for(name, f if isinstance(f, str) else None)
             if spec is None:
                 continue
+            old, name = name, current_stream_name(name, spec)
+            if name != old:
+                renamed += 1
+                self._renamed[old] = name
+                self.log.info("stream %s is now named %s (a SenML name that is a URN is read as "
+                              "levels); its state carries over", _printable(old), _printable(name),
+                              extra={"stream": name})
             eng = StreamEngine(name, spec.detection, unit=spec.unit)
             try:
                 eng.set_state(state)
@@ -360,7 +365,7 @@ class Daemon:
             restored += 1
         if streams:
             self.log.info("restored %d stream(s) from the snapshot of %s", restored,
-                          format_time(float(meta.get("saved_at", 0.0))))
+                          stamp(float(meta.get("saved_at", 0.0)), self.tz))
         token = meta.get("journal")
         self._replay_journal(token if isinstance(token, str) else "none")
 
@@ -379,7 +384,9 @@ class Daemon:
         for groups in rounds:
             for g in groups:
                 spec = self.cfg.stream_for(g.stream, g.topic_filter or self._filters.get(g.stream))
-                eng = None if spec is None else self.engine_for(g.stream, spec, g.unit)
+                name = g.stream if spec is None else self._renamed.get(g.stream) or \
+                    current_stream_name(g.stream, spec)
+                eng = None if spec is None else self.engine_for(name, spec, g.unit)
                 if eng is None:
                     continue
                 try:
@@ -435,6 +442,7 @@ class Daemon:
         """Run until SIGTERM/SIGINT (or :meth:`request_stop`); returns the exit status."""
         if install_signals:
             self.install_signal_handlers()
+        self.log.info("shiftwatch starting. %s", ADVISORY)
         # Hand the interpreter lock between paho's thread and this one every
         # 0.5 ms rather than every 5 ms: an alert (or an acknowledgement) then
         # never waits long for the other thread to yield.
@@ -482,12 +490,14 @@ class Daemon:
         self._busy = len(msgs) >= BUSY_ROUND
         if not msgs:
             self.send_due_levels()
+            self.rlog.flush(time.time())
             self._gauges()
             if self._trim_pending:  # the burst is over: trim now, it costs nothing
                 self._trim_heap(idle=True)
             return 0
         self.process(msgs)
         self.send_due_levels()
+        self.rlog.flush(time.time())
         self._gauges()
         if sum(len(m.payload) for m in msgs) > ROUND_BYTES // 4:
             self._trim_heap()
@@ -529,6 +539,12 @@ class Daemon:
         # acknowledgements come in) and hands nothing over, and what the broker
         # sends now stays unacknowledged, so it is delivered again after the restart.
         self.inbox.close()
+        # Every stream's retained level says the daemon is gone, so a dashboard
+        # reading it does not take it for one that is watched (a crash leaves the
+        # levels as they were; <prefix>/status, the last will, then says offline).
+        self._levels_offline = True
+        for name in self.engines:
+            self._levels_due[name] = None
         if not self._acker.wait_idle(10.0):
             self.log.warning("stopping: the outbox is still being written; its rounds stay unacknowledged")
         self.snapshot()
@@ -546,6 +562,7 @@ class Daemon:
             self.server.close()
         if len(self.outbox):
             self.log.warning("%d alert record(s) stay in the outbox for the next start", len(self.outbox))
+        self.rlog.flush(time.time(), all_held=True)
         sd_notify("STOPPING=1", env=self.env)
         self.log.info("stopped")
         return 0
@@ -675,7 +692,7 @@ class Daemon:
             eng = self.engines[name] = StreamEngine(name, spec.detection, unit=unit)
             self._filters[name] = spec.topic
             self.log.info("new stream %s (warming up on %d samples)", _printable(name),
-                          spec.detection.warmup_samples)
+                          spec.detection.warmup_samples, extra={"stream": name})
         return eng
 
     def _run_stream(self, name: str, spec: StreamConfig, unit: str | None, times_list: list[float],
@@ -693,7 +710,7 @@ class Daemon:
         for rej in res.rejected:
             if rej.reason != "spike":  # one key per reason: many streams cannot multiply the lines
                 self.rlog.warning(f"sample:{rej.reason}", lambda r=rej.reason: f"sample of {_printable(name)} "
-                                  f"set aside ({r}): {SAMPLE_REASONS[r]}", now)
+                                  f"set aside ({r}): {SAMPLE_REASONS[r]}", now, extra={"stream": name})
         for rec in res.records:
             j = int(np.searchsorted(times, rec.as_of))
             self.emit(rec, float(arrivals[min(j, len(arrivals) - 1)]))
@@ -707,7 +724,7 @@ class Daemon:
         label = self.cfg.label_for(rec.stream, self._filters.get(rec.stream))
         if label is not None:
             d["label"] = label
-        d["summary"] = alert_summary(rec, label)
+        d["summary"] = alert_summary(rec, label, self.tz, today=time.time())
         payload = json.dumps(d).encode()
         topic = f"{self.prefix}/alerts/{rec.stream}"
         # Handed to paho first, then written to the outbox, which is forced to
@@ -728,10 +745,12 @@ class Daemon:
             self._track(mid, key)
         self.records_published += 1
         self.metrics.alert_delay.observe(max(0.0, time.time() - arrived))
+        fields = {"stream": rec.stream, "event_id": rec.id, "phase": rec.phase}
         if label is None:
-            self.log.info("%s [id %s]", d["summary"], rec.id)
+            self.log.info("%s [id %s]", d["summary"], rec.id, extra=fields)
         else:
-            self.log.info("%s [stream %s, id %s]", d["summary"], _printable(rec.stream), rec.id)
+            self.log.info("%s [stream %s, id %s]", d["summary"], _printable(rec.stream), rec.id,
+                          extra=fields)
 
     def _level_changed(self, name: str, eng: StreamEngine) -> None:
         """After a stream's batch: queue its level update if what the levels
@@ -756,15 +775,34 @@ class Daemon:
             eng = self.engines.get(name)  # None: removed by a reload meanwhile
             if eng is None or eng.level is None:
                 continue
-            now_state = (eng.state, eng.level, eng.sigma)
+            state = OFFLINE if self._levels_offline else eng.state
+            now_state = (state, eng.level, eng.sigma)
             if self._levels_sent.get(name) == now_state:
                 continue
             self._levels_sent[name] = now_state
-            body = {"stream": name, "state": eng.state, "level": eng.level, "sigma": eng.sigma,
-                    "unit": eng.unit, "last_shift_at": None if eng.last_shift_at is None
-                    else format_time(eng.last_shift_at)}
+            body = self.level_body(name, eng, state)
             self._publish(f"{self.prefix}/levels/{name}", json.dumps(body).encode(), qos=1, retain=True,
                           level=True)
+
+    def level_body(self, name: str, eng: StreamEngine, state: str) -> dict[str, Any]:
+        """The retained ``levels`` payload of a stream.
+
+        Level and sigma are rounded to 6 significant digits, as in alert
+        records; ``state`` is the engine's, or ``offline`` in the update each
+        stream gets when the daemon stops (the level is then the last one
+        known, not watched any more).  ``updated_at`` is when it was made (UTC).
+        """
+        body: dict[str, Any] = {"stream": name}
+        label = self.cfg.label_for(name, self._filters.get(name))
+        if label is not None:
+            body["label"] = label
+        body.update({"state": state, "level": _six(eng.level), "sigma": _six(eng.sigma),
+                     "unit": eng.unit, "last_shift_at": None if eng.last_shift_at is None
+                     else format_time(eng.last_shift_at), "updated_at": format_time(time.time())})
+        if state == OFFLINE:
+            body["note"] = ("shiftwatch stopped: this level is the last one known and is not "
+                            "being watched until it restarts")
+        return body
 
     def _publish(self, topic: str, payload: bytes, *, qos: int, retain: bool, key: str | None = None,
                  level: bool = False) -> None:
@@ -930,6 +968,51 @@ def settle_heap() -> None:
     """
     gc.collect()
     gc.freeze()
+
+
+def current_stream_name(name: str, spec: StreamConfig) -> str:
+    """The name a stream saved under ``name`` has now.
+
+    Releases before SenML names were read as levels named a SenML stream
+    ``topic/urn:nid:a:b``; now it is ``topic/a/b`` (see
+    :func:`shiftwatch.decode.readable_senml_name`).  For an entry of format
+    ``senml`` the SenML part starts after the filter's levels (for a filter
+    ending in ``#``, at the first level that starts with ``urn:``) and is
+    named again; every other name is returned as it is.  A name that was cut
+    and hashed (``~``) cannot be taken apart and stays.
+
+    Examples
+    --------
+    >>> spec = StreamConfig("ravensmoor/l4/+/senml", format="senml")
+    >>> current_stream_name("ravensmoor/l4/filler/senml/urn:ravensmoor:l4:filler:fill_volume", spec)
+    'ravensmoor/l4/filler/senml/l4/filler/fill_volume'
+    >>> current_stream_name("ravensmoor/l4/filler/senml/oven2:zone3", spec)
+    'ravensmoor/l4/filler/senml/oven2:zone3'
+    >>> current_stream_name("plant/x/urn:a:b:c", StreamConfig("plant/#", format="senml"))
+    'plant/x/b/c'
+    """
+    if spec.format != "senml" or "~" in name:
+        return name
+    levels = name.split("/")
+    fixed = spec.topic.split("/")
+    if fixed[-1] == "#":
+        cut = next((i for i in range(len(fixed) - 1, len(levels)) if levels[i][:4].lower() == "urn:"), None)
+    else:
+        cut = len(fixed)
+    if cut is None or cut >= len(levels) or levels[cut][:4].lower() != "urn:":
+        return name
+    return stream_name("/".join(levels[:cut]), "/".join(levels[cut:]))
+
+
+#: The ``state`` of every retained level once the daemon has stopped.
+OFFLINE = "offline"
+
+
+def _six(x: float | None) -> float | None:
+    """Six significant digits (the rounding of alert records), for payloads people read."""
+    if x is None or x == 0 or not np.isfinite(x):
+        return x
+    return float(f"{x:.6g}")
 
 
 def _malloc_trim() -> Any:

@@ -819,8 +819,42 @@ def _unsafe_class() -> str:
 _UNSAFE = re.compile(_unsafe_class())
 
 
+def readable_senml_name(name: str) -> str:
+    """The part of a stream name that a SenML name gives: the name, read as levels when it is a URN.
+
+    RFC 8428 names are often URNs built from the base name (section 4.5.1
+    recommends globally unique names, e.g. ``urn:dev:ow:10e2073a01080063:``
+    followed by ``temp``).  A name that starts with ``urn:`` loses ``urn:``
+    and its namespace (the text up to the next ``:``), and each further
+    ``:`` becomes a topic level ``/``; a trailing ``:`` is dropped.  Any other
+    name is kept as it is.  Distinct names stay distinct unless they differ
+    only in the namespace or in ``:`` against ``/``.
+
+    Examples
+    --------
+    >>> readable_senml_name("urn:ravensmoor:l4:filler:fill_volume")
+    'l4/filler/fill_volume'
+    >>> readable_senml_name("urn:dev:ow:10e2073a01080063:temp")
+    'ow/10e2073a01080063/temp'
+    >>> readable_senml_name("oven2:zone3"), readable_senml_name("zone3")
+    ('oven2:zone3', 'zone3')
+    >>> readable_senml_name("urn:dev:")
+    'urn:dev:'
+    """
+    if name[:4].lower() != "urn:":
+        return name
+    _, sep, rest = name[4:].partition(":")
+    readable = rest.replace(":", "/").strip("/")
+    return readable if sep and readable else name
+
+
 def stream_name(topic: str, name: str | None) -> str:
     """The stream a reading belongs to: ``topic``, or ``topic/name`` for SenML names.
+
+    A SenML name that is a URN is read as levels first
+    (:func:`readable_senml_name`): ``urn:ravensmoor:l4:filler:fill_volume`` on
+    the topic ``ravensmoor/l4/senml`` gives the stream
+    ``ravensmoor/l4/senml/l4/filler/fill_volume``.
 
     The result is used both as a suffix of MQTT topic levels (alerts are
     published under it) and as a Prometheus label value, so it is made safe
@@ -863,7 +897,7 @@ def stream_name(topic: str, name: str | None) -> str:
     >>> stream_name("brackenfield" + "/x" * 120, None).count("/")
     99
     """
-    raw = topic if name is None else f"{topic}/{name}"
+    raw = topic if name is None else f"{topic}/{readable_senml_name(name)}"
     safe = _UNSAFE.sub("_", raw)
     if safe.count("/") >= MAX_STREAM_LEVELS:
         levels = safe.split("/")

@@ -27,6 +27,7 @@ from shiftwatch.config import Config, parse_config
 from shiftwatch.core.engine import ADVISORY
 from shiftwatch.core.timefmt import parse_time
 from shiftwatch.daemon import Daemon
+from shiftwatch.display import clock, zone_label
 from shiftwatch.metrics import Metrics
 from shiftwatch.mqtt import PlainClient
 
@@ -36,7 +37,9 @@ PREFIX = "shiftwatch/demo"
 
 @dataclass(frozen=True)
 class Sensor:
-    label: str  # what an operator calls it
+    """One invented sensor.  What an operator calls it is the configuration's ``label``
+    (:data:`CONFIG_TEMPLATE`), the same name the alerts use."""
+
     topic: str
     stream: str  # the stream name the daemon gives it
     fmt: str
@@ -49,17 +52,17 @@ class Sensor:
 
 
 SENSORS = (
-    Sensor("filler head 1 fill weight", "brackenfield/line2/filler/head1/fill",
+    Sensor("brackenfield/line2/filler/head1/fill",
            "brackenfield/line2/filler/head1/fill", "json", 500.4, 0.6, "g"),
-    Sensor("filler head 2 fill weight", "brackenfield/line2/filler/head2/fill",
+    Sensor("brackenfield/line2/filler/head2/fill",
            "brackenfield/line2/filler/head2/fill", "json", 500.1, 0.6, "g",
            step_at=24.0, step=1.3, cause="nozzle swapped"),
-    Sensor("filler head 3 fill weight", "brackenfield/line2/filler/head3/fill",
+    Sensor("brackenfield/line2/filler/head3/fill",
            "brackenfield/line2/filler/head3/fill", "json", 499.8, 0.6, "g"),
-    Sensor("tunnel oven zone 3 temperature", "brackenfield/line2/oven/senml",
+    Sensor("brackenfield/line2/oven/senml",
            "brackenfield/line2/oven/senml/zone3", "senml", 182.0, 0.5, "Cel",
            step_at=38.0, step=-1.4, cause="burner retuned"),
-    Sensor("capper torque", "brackenfield/line2/capper/torque",
+    Sensor("brackenfield/line2/capper/torque",
            "brackenfield/line2/capper/torque", "number", 2.40, 0.05, "N m",
            step_at=52.0, step=0.11, cause="clutch wearing"),
 )
@@ -93,6 +96,8 @@ metrics:
 state:
   dir: {state}
   snapshot_every: 10s
+display:
+  time_zone: {time_zone}
 """
 
 
@@ -145,14 +150,13 @@ class Line:
             k += 1
 
 
-def _clock(start: float) -> str:
-    e = max(0.0, time.time() - start)
-    return f"{int(e // 60):02d}:{e % 60:04.1f}"
-
-
 def run_demo(duration: float = 75.0, *, out: TextIO = sys.stdout, metrics_listen: str = "127.0.0.1:9650",
-             use_embedded: bool = False) -> int:
-    """Run the demo for ``duration`` seconds (Ctrl-C stops it early, cleanly)."""
+             use_embedded: bool = False, time_zone: str = "UTC") -> int:
+    """Run the demo for ``duration`` seconds (Ctrl-C stops it early, cleanly).
+
+    Every time it shows is a clock time in ``time_zone`` (an IANA name), the
+    zone the alert summaries use too.
+    """
     w = out.write
     broker: Any
     if not use_embedded and find_mosquitto() is not None:
@@ -162,17 +166,21 @@ def run_demo(duration: float = 75.0, *, out: TextIO = sys.stdout, metrics_listen
         broker = EmbeddedBroker().start()
         version, kind = "3.1.1", "embedded amqtt broker"
     host, _, port = metrics_listen.rpartition(":")
+    moved = None
     if port != "0":
         try:
             import socket
 
             with socket.socket() as probe:
                 probe.bind((host, int(port)))
-        except OSError:
+        except OSError as exc:
+            moved = f"port {port} is in use ({exc.strerror or exc})"
             metrics_listen = f"{host}:{free_port()}"
     state_dir = tempfile.mkdtemp(prefix="shiftwatch-demo-state-")
     cfg: Config = parse_config(CONFIG_TEMPLATE.format(url=broker.url, version=version, prefix=PREFIX,
-                                                      listen=metrics_listen, state=state_dir))
+                                                      listen=metrics_listen, state=state_dir,
+                                                      time_zone=time_zone))
+    names = {s.stream: cfg.label_for(s.stream) or s.stream for s in SENSORS}
     log = logging.getLogger("shiftwatch.demo.daemon")
     log.setLevel(logging.WARNING)
     daemon = Daemon(cfg, logger=log, metrics=Metrics())
@@ -187,18 +195,20 @@ def run_demo(duration: float = 75.0, *, out: TextIO = sys.stdout, metrics_listen
             return
         with lock:
             results.setdefault(rec["stream"], []).append(rec)
-            w(f"[{_clock(start)}] {rec.get('summary', rec['phase'])}\n")
+            w(f"[{clock(time.time(), time_zone)}] {rec.get('summary', rec['phase'])}\n")
             out.flush()
 
     w("shiftwatch demo: Brackenfield Bottling, line 2 (an invented plant)\n")
     w(f"  broker   {kind} on {broker.url}\n")
-    w("  sensors  3 filler heads (JSON, g), tunnel oven zone 3 (SenML, Cel), capper torque (number, N m),\n"
+    w("  sensors  3 filler heads (JSON, g), tunnel oven zone3 (SenML, Cel), capper torque (number, N m),\n"
       f"           {RATE_HZ:.0f} samples a second each; the first {cfg.detection.warmup_samples} samples of "
       "each stream teach shiftwatch its normal level\n")
+    w(f"  started  {clock(start, time_zone)}; every time shown is a clock time in "
+      f"{zone_label(time_zone)}, as in the alerts\n")
     for s in SENSORS:
         if s.step_at is not None:
-            w(f"  planned  {s.step_at:4.0f} s: {s.label} steps {'up' if s.step > 0 else 'down'} "
-              f"{abs(s.step):g} {s.unit} ({s.cause})\n")
+            w(f"  planned  {clock(start + s.step_at, time_zone)} ({s.step_at:.0f} s in): {names[s.stream]} "
+              f"steps {'up' if s.step > 0 else 'down'} {abs(s.step):g} {s.unit} ({s.cause})\n")
     w(f"  alerts   MQTT {PREFIX}/alerts/<stream>; levels {PREFIX}/levels/<stream>\n")
     w(f"  {ADVISORY}\n\n")
     out.flush()
@@ -213,7 +223,8 @@ def run_demo(duration: float = 75.0, *, out: TextIO = sys.stdout, metrics_listen
         while daemon.server is None and runner.is_alive():
             time.sleep(0.05)
         if daemon.server is not None:
-            w(f"  metrics  http://{host or '127.0.0.1'}:{daemon.server.port}/metrics\n\n")
+            why = f"\n           ({moved}, so the demo took a free one; --metrics-listen chooses)" if moved else ""
+            w(f"  metrics  http://{host or '127.0.0.1'}:{daemon.server.port}/metrics{why}\n\n")
         line.start()
         deadline = start + duration
         while time.time() < deadline and runner.is_alive():
@@ -229,32 +240,40 @@ def run_demo(duration: float = 75.0, *, out: TextIO = sys.stdout, metrics_listen
         runner.join(timeout=15)
         viewer.stop()
         broker.stop()
-    w(_recap(results, start, ended))
+    w(_recap(results, start, ended, names, time_zone))
     out.flush()
     return code
 
 
-def _recap(results: dict[str, list[dict[str, Any]]], start: float, ended: float) -> str:
-    lines = ["\nWhat happened", f"  {'sensor':<32}{'planned step':>16}{'found':>22}{'started':>10}{'alerted':>10}"]
+def _recap(results: dict[str, list[dict[str, Any]]], start: float, ended: float,
+           names: dict[str, str], time_zone: str = "UTC") -> str:
+    width = max(len(n) for n in names.values()) + 2
+    lines = ["\nWhat happened",
+             f"  {'sensor':<{width}}{'planned step':>24}{'found':>20}{'started':>14}{'alerted':>14}"]
     for s in SENSORS:
         recs = results.get(s.stream, [])
         conf = [r for r in recs if r["phase"] == "confirmed"]
-        planned = f"{s.step:+g} {s.unit} @{s.step_at:.0f}s" if s.step_at is not None else "none"
+        planned = (f"{s.step:+g} {s.unit} at {clock(start + s.step_at, time_zone)}"
+                   if s.step_at is not None else "none")
+        name = names[s.stream]
         if conf:
             r = conf[-1]
-            started = parse_time(r["shift_at"]) - start
-            alerted = parse_time(r["detected_at"]) - start
-            lines.append(f"  {s.label:<32}{planned:>16}{r['delta']:>+15.3g} {s.unit:<6}"
-                         f"{started:>9.1f}s{alerted:>9.1f}s")
+            started = clock(parse_time(r["shift_at"]), time_zone)
+            alerted = clock(parse_time(r["detected_at"]), time_zone)
+            lines.append(f"  {name:<{width}}{planned:>24}{r['delta']:>+13.3g} {s.unit:<6}"
+                         f"{started:>14}{alerted:>14}")
+        elif any(r["phase"] == "detected" for r in recs) and not any(r["phase"] == "dismissed" for r in recs):
+            lines.append(f"  {name:<{width}}{planned:>24}{'detected, undecided':>20}")
         elif s.step_at is not None and s.step_at >= ended:
-            lines.append(f"  {s.label:<32}{planned:>16}{'demo ended first':>22}")
+            lines.append(f"  {name:<{width}}{planned:>24}{'demo ended first':>20}")
         else:
-            lines.append(f"  {s.label:<32}{planned:>16}{'no confirmed step':>22}")
+            lines.append(f"  {name:<{width}}{planned:>24}{'no confirmed step':>20}")
     dismissed = sum(r["phase"] == "dismissed" for rs in results.values() for r in rs)
     lines.append(f"  dismissed detections: {dismissed}")
-    lines.append("  (times are seconds after the demo started; 'alerted' is when the test tripped;\n"
-                 "   'found' is the step fitted when the shift was confirmed, from the few seconds of\n"
-                 "   samples seen since it began, so noise moves it by a fraction of a sigma)\n")
+    lines.append(f"  (clock times in {zone_label(time_zone)}; 'started' is the fitted shift time, 'alerted' "
+                 "the\n   moment the test tripped; 'found' is the step fitted when the shift was confirmed, "
+                 "from\n   the few seconds of samples seen since it began, so noise moves it by a fraction "
+                 "of a sigma)\n")
     return "\n".join(lines) + "\n"
 
 

@@ -12,7 +12,7 @@ from pathlib import Path
 
 from shiftwatch.core.design import SensitivityCurve
 from shiftwatch.core.suggest import duration_setting
-from shiftwatch.core.timefmt import format_duration
+from shiftwatch.display import human_duration
 
 #: Line styles of the chosen, more sensitive and less sensitive curves.
 _STYLES = {"chosen": ("#1f4e79", "-", 2.4), "more sensitive": ("#b8572a", "--", 1.6),
@@ -58,7 +58,7 @@ def draw_sensitivity(curves: Sequence[SensitivityCurve], interval: float, path: 
     if chosen.shifts[at] > 0:
         d = chosen.median[at] * interval
         ax_delay.plot([chosen.shifts[at]], [d], "o", color=_STYLES["chosen"][0])
-        ax_delay.annotate(f"{format_duration(d)} at {chosen.min_shift_sigma:g} sigma",
+        ax_delay.annotate(f"{human_duration(d)} at {chosen.min_shift_sigma:g} sigma",
                           (chosen.shifts[at], d), textcoords="offset points", xytext=(8, 8), fontsize=9)
     for ax in (ax_arl, ax_delay):
         ax.set_yscale("log")
@@ -70,7 +70,7 @@ def draw_sensitivity(curves: Sequence[SensitivityCurve], interval: float, path: 
     ax_arl.set_ylabel("average run length (readings)")
     ax_arl.set_title("Average run length: false alarms at 0, detection beyond", fontsize=10)
     ax_arl.legend(loc="upper right", fontsize=8, frameon=False)
-    ax_delay.set_ylabel(f"median delay to detection (s; a reading every {format_duration(interval)})")
+    ax_delay.set_ylabel(f"median delay to detection (s; a reading every {human_duration(interval)})")
     ax_delay.set_title(f"Median detection delay, at most (min_shift_sigma {chosen.min_shift_sigma:g} dash-dotted)",
                        fontsize=10)
     fig.suptitle(f"shiftwatch design: multi-chart CUSUM, min_shift_sigma {chosen.min_shift_sigma:g}; "

@@ -342,6 +342,69 @@ def parse_url(url: str) -> tuple[str, int, bool]:
     return parts.hostname, parts.port or (8883 if tls else 1883), tls
 
 
+def probe_broker(cfg: BrokerConfig, password: str | None, *, timeout: float = 5.0) -> str | None:
+    """Connect once as ``shiftwatch check`` does; the reason it failed, or None.
+
+    The connection uses the configured URL, TLS settings and login, under
+    the client id ``<client_id>-check`` with a clean session that expires at
+    once, and no will: the daemon's own persistent session is neither taken
+    over nor changed, and nothing is published or subscribed.
+    """
+    host, port, tls = parse_url(cfg.url)
+    v5 = cfg.mqtt_version == "5"
+    client = paho.Client(callback_api_version=CallbackAPIVersion.VERSION2,
+                         client_id=f"{cfg.client_id}-check",
+                         protocol=MQTTProtocolVersion.MQTTv5 if v5 else MQTTProtocolVersion.MQTTv311,
+                         clean_session=None if v5 else True)
+    client.connect_timeout = timeout
+    if cfg.username is not None:
+        client.username_pw_set(cfg.username, password)
+    outcome: list[str | None] = []
+    done = threading.Event()
+
+    def on_connect(c: paho.Client, userdata: Any, flags: Any, reason: Any, props: Any) -> None:
+        if reason.is_failure:
+            hint = ""
+            if "authori" in str(reason).lower() or "password" in str(reason).lower():
+                who = f"user {cfg.username!r}" if cfg.username else "no user name"
+                hint = f" ({who}; check broker.username and the password)"
+            outcome.append(f"refused the connection: {reason}{hint}")
+        else:
+            outcome.append(None)
+        done.set()
+
+    def on_disconnect(c: paho.Client, userdata: Any, flags: Any, reason: Any, props: Any) -> None:
+        if not outcome:
+            outcome.append(f"{_CLOSED_EARLY}{reason}")
+        done.set()
+
+    client.on_connect = on_connect
+    client.on_disconnect = on_disconnect
+    try:
+        if tls:
+            t = cfg.tls
+            client.tls_set(ca_certs=t.ca_file if t else None, certfile=t.cert_file if t else None,
+                           keyfile=t.key_file if t else None, cert_reqs=ssl.CERT_REQUIRED)
+            client.tls_insecure_set(False)
+        if v5:
+            props = Properties(PacketTypes.CONNECT)
+            props.SessionExpiryInterval = 0
+            client.connect(host, port, keepalive=max(5, int(timeout) + 1), clean_start=True,
+                           properties=props)
+        else:
+            client.connect(host, port, keepalive=max(5, int(timeout) + 1))
+    except (OSError, ValueError) as exc:
+        return f"cannot connect: {describe_connect_error(exc)}"
+    client.loop_start()
+    try:
+        if not done.wait(timeout):
+            return f"no answer to the MQTT connection within {timeout:g} s"
+        return outcome[0] if outcome else "connection failed"
+    finally:
+        client.disconnect()
+        client.loop_stop()
+
+
 _CLOSED_EARLY = "the connection was closed before the broker accepted it: "
 #: Reasons of a connection closed with no word from the broker.
 _UNEXPLAINED = ("EOF occurred in violation of protocol", "Connection reset by peer",

@@ -39,7 +39,6 @@ import os
 import struct
 import tempfile
 from dataclasses import dataclass
-from datetime import timezone
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Literal, Sequence
 
@@ -48,7 +47,8 @@ from numpy.typing import NDArray
 
 from shiftwatch import __version__
 from shiftwatch.core.engine import ADVISORY, AlertRecord, BatchResult
-from shiftwatch.core.timefmt import format_duration, format_time
+from shiftwatch.core.timefmt import format_duration
+from shiftwatch.display import stamp, zone, zone_label
 
 if TYPE_CHECKING:
     from matplotlib.axes import Axes
@@ -272,6 +272,8 @@ class StreamTrace:
         self.spike_values: list[float] = []
         self.spikes_total = 0
         self.unit: str | None = None
+        self.label: str | None = None  # the operator's name, from the config's label
+        self.time_zone = "UTC"  # in which the chart shows times
         self._ring_t = np.empty(0)
         self._ring_v = np.empty(0)
         self._last = (math.nan, math.nan)  # last plotted sample of the previous batch
@@ -406,6 +408,7 @@ class ReplayReport:
     def write(self, *, samples: dict[str, int], rejected: dict[str, dict[str, int]],
               sources: Sequence[str], settings_note: str, unreadable_rows: int = 0,
               units: dict[str, str | None] | None = None,
+              labels: dict[str, str | None] | None = None, time_zone: str = "UTC",
               progress: Callable[[int], None] | None = None) -> Path:
         """Render the charts and write ``report.html``; return its path.
 
@@ -418,6 +421,8 @@ class ReplayReport:
         settings_note : which detection settings were used, in a few words.
         unreadable_rows : rows of the files that could not be read at all.
         units : unit per stream, when known (else the unit of its records).
+        labels : the operator's name per stream (the config's ``label``), when it has one.
+        time_zone : IANA zone in which times are shown (the config's ``display.time_zone``).
         progress : called with 1 after each chart.
         """
         for trace in self.traces.values():
@@ -426,17 +431,20 @@ class ReplayReport:
         traces = [self.traces.get(n) or StreamTrace(n, **self._options) for n in names]
         for trace in traces:
             trace.unit = (units or {}).get(trace.name) or trace.unit
+            trace.label = (labels or {}).get(trace.name) or trace.label
+            trace.time_zone = time_zone
         try:
             with open(self._tmp, "w", encoding="utf-8") as out:
-                out.write(_head(sources, settings_note))
-                out.write(_summary(traces, samples, rejected, unreadable_rows))
+                out.write(_head(sources, settings_note, time_zone))
+                out.write(_summary(traces, samples, rejected, unreadable_rows, time_zone))
                 out.write('<h2 id="charts">Charts</h2>\n')
                 out.write(_how_to_read())
                 for i, trace in enumerate(traces):
                     png, width, height = render_png(trace)
                     data = base64.b64encode(png).decode("ascii")
                     name = html.escape(trace.name)
-                    out.write(f'<section class="chart" id="s{i + 1}"><h3>{name}</h3>\n'
+                    title = name if trace.label is None else f"{html.escape(trace.label)} ({name})"
+                    out.write(f'<section class="chart" id="s{i + 1}"><h3>{title}</h3>\n'
                               f'<img src="data:image/png;base64,{data}" width="{width}" height="{height}" '
                               f'alt="samples, fitted levels and events of {name}"></section>\n')
                     if progress is not None:
@@ -496,12 +504,13 @@ def stream_figure(trace: StreamTrace) -> Figure:
     if trace.spike_times:
         main.plot(_days(trace.spike_times), trace.spike_values, linestyle="none", marker="x",
                   markersize=5, color=SPIKE_COLOUR)
-    for ev in events:
-        _draw_event(main, ev, env, label=True)
-    main.set_ylabel(f"value{unit}")
+    for k, ev in enumerate(events):
+        _draw_event(main, ev, env, label=True, until=_level_until(events, k, env))
+    # The axis names the reading as the operator does (its label), else "reading", with its unit.
+    main.set_ylabel(f"{trace.label or 'reading'}{unit}")
     main.set_title(f"{trace.name}: {env.count:,} samples, {len(events)} event(s)", loc="left", fontsize=10)
     if env.count:
-        _date_axis(main)
+        _date_axis(main, trace.time_zone)
     else:
         main.set_xticks([])
         main.set_yticks([])
@@ -514,7 +523,7 @@ def stream_figure(trace: StreamTrace) -> Figure:
         if zt.shape[0] and spikes.shape[0]:
             near = np.isin(zt, spikes)
             ax.plot(_days(zt[near]), zv[near], linestyle="none", marker="x", markersize=5, color=SPIKE_COLOUR)
-        _draw_event(ax, ev, env, label=False)
+        _draw_event(ax, ev, env, label=False, until=_level_until(events, events.index(ev), env))
         until = None if ev.outcome != "open" else (float(zt[-1]) if zt.shape[0] else None)
         a, b = zoom_range(ev.final, until)
         ax.set_xlim(_days(a), _days(b))
@@ -524,19 +533,20 @@ def stream_figure(trace: StreamTrace) -> Figure:
         r = ev.final
         ax.set_title(f"event {ev.number}: {ev.outcome}, {r.direction} {abs(r.delta_sigma):.2g} sigma",
                      loc="left", fontsize=9)
-        _date_axis(ax, label=False)
+        _date_axis(ax, trace.time_zone, label=False)
         ax.tick_params(labelsize=7)
     return fig
 
 
-def _date_axis(ax: Axes, *, label: bool = True) -> None:
+def _date_axis(ax: Axes, time_zone: str = "UTC", *, label: bool = True) -> None:
     import matplotlib.dates as mdates
 
-    loc = mdates.AutoDateLocator(tz=timezone.utc)  # type: ignore[no-untyped-call]
+    tz = zone(time_zone)
+    loc = mdates.AutoDateLocator(tz=tz)  # type: ignore[no-untyped-call]
     ax.xaxis.set_major_locator(loc)
-    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(loc, tz=timezone.utc))  # type: ignore[no-untyped-call]
+    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(loc, tz=tz))  # type: ignore[no-untyped-call]
     if label:
-        ax.set_xlabel("time (UTC)", fontsize=8)
+        ax.set_xlabel(f"time ({zone_label(time_zone)})", fontsize=8)
     ax.grid(True, linewidth=0.3, alpha=0.6)
 
 
@@ -552,9 +562,25 @@ def _style(ev: Event) -> tuple[str, LineStyle, str | None, float]:
     return CONFIRMED_COLOUR, "-", None, 0.22
 
 
-def _draw_event(ax: Axes, ev: Event, env: Envelope, *, label: bool) -> None:
+def _level_until(events: list[Event], k: int, env: Envelope) -> float | None:
+    """Where the fitted level after event ``k`` is drawn to: for a confirmed event, the
+    shift of the next event that was not dismissed, or the last sample (the new level
+    is the reference from then on, so on a long chart it is not a stub); for the
+    others, the record's ``as_of``."""
+    ev = events[k]
+    if ev.outcome != "confirmed":
+        return None
+    later = [e.final.shift_at for e in events[k + 1:]
+             if e.outcome != "dismissed" and e.final.shift_at > ev.final.shift_at]
+    if later:
+        return min(later)
+    return env.last_time if math.isfinite(env.last_time) else None
+
+
+def _draw_event(ax: Axes, ev: Event, env: Envelope, *, label: bool, until: float | None = None) -> None:
     """Band for the shift-time interval, line at the detection, the two fitted
-    levels; all at the record's exact values."""
+    levels; all at the record's exact values.  The level after is drawn to
+    ``until`` when given (see :func:`_level_until`), else to the record's ``as_of``."""
     r = ev.final
     colour, style, hatch, alpha = _style(ev)
     dismissed = ev.outcome == "dismissed"
@@ -567,6 +593,8 @@ def _draw_event(ax: Axes, ev: Event, env: Envelope, *, label: bool) -> None:
     if math.isfinite(env.first_time):
         start = max(start, env.first_time)
     end = r.as_of if r.as_of > r.shift_at else r.detected_at
+    if until is not None and until > end:
+        end = until
     before = DISMISSED_COLOUR if dismissed else BEFORE_COLOUR
     after = DISMISSED_COLOUR if dismissed else AFTER_COLOUR
     ax.hlines(r.level_before, _days(start), _days(r.shift_at), colors=before, linestyles=style, linewidth=2.0)
@@ -658,15 +686,15 @@ def _signed_duration(seconds: float) -> str:
     return ("-" if seconds < 0 else "") + format_duration(abs(seconds))
 
 
-def _interval_text(rec: AlertRecord) -> str:
+def _interval_text(rec: AlertRecord, time_zone: str = "UTC") -> str:
     """The shift-time interval; its end without the date when that is the same."""
-    low, high = format_time(rec.shift_at_low), format_time(rec.shift_at_high)
+    low, high = stamp(rec.shift_at_low, time_zone), stamp(rec.shift_at_high, time_zone)
     if low[:11] == high[:11]:
         high = high[11:]
     return f"{low} to {high} ({rec.interval_level:.0%})"
 
 
-def _head(sources: Sequence[str], settings_note: str) -> str:
+def _head(sources: Sequence[str], settings_note: str, time_zone: str = "UTC") -> str:
     files = ", ".join(f"<code>{_e(s)}</code>" for s in sources) or "none"
     return (
         '<!DOCTYPE html>\n<html lang="en">\n<head>\n<meta charset="utf-8">\n'
@@ -675,13 +703,15 @@ def _head(sources: Sequence[str], settings_note: str) -> str:
         "<title>shiftwatch replay report</title>\n"
         f"<style>{_CSS}</style>\n</head>\n<body>\n"
         "<h1>shiftwatch replay report</h1>\n"
-        f"<p>Replayed {files}; {_e(settings_note)}.</p>\n"
+        f"<p>Replayed {files}; {_e(settings_note)}. Times are shown in {_e(zone_label(time_zone))} "
+        "(the alert records hold them in UTC).</p>\n"
         f'<p class="caution">{_e(ADVISORY)}</p>\n'
     )
 
 
 def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[str, dict[str, int]],
-             unreadable_rows: int) -> str:
+             unreadable_rows: int, time_zone: str = "UTC") -> str:
+    zn = _e(zone_label(time_zone))
     all_events = {t.name: t.events() for t in traces}
     counts = {"confirmed": 0, "returned": 0, "dismissed": 0, "undecided": 0, "open": 0}
     for evs in all_events.values():
@@ -728,8 +758,8 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
                f'<td class="n">{counts["open"]}</td></tr></tfoot>\n</table>\n')
 
     out.append('<h2 id="events">Events</h2>\n<table class="events">\n<thead><tr><th>#</th><th>outcome</th>'
-               "<th>shift at (UTC)</th><th>shift-time interval</th><th>step</th><th>step (sigma)</th>"
-               "<th>detected at (UTC)</th><th>delay, shift to detection</th><th>p-value</th></tr></thead>\n")
+               f"<th>shift at ({zn})</th><th>shift-time interval</th><th>step</th><th>step (sigma)</th>"
+               f"<th>detected at ({zn})</th><th>delay, shift to detection</th><th>p-value</th></tr></thead>\n")
     for i, t in enumerate(traces):
         evs = all_events[t.name]
         out.append(f'<tbody data-stream="{_e(t.name)}"><tr><th colspan="9" scope="rowgroup">'
@@ -739,11 +769,11 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
             unit = f" {r.unit}" if r.unit else ""
             out.append(
                 f'<tr class="event {ev.outcome}" data-id="{_e(r.id)}"><td class="n">{ev.number}</td>'
-                f'<td class="{ev.outcome}">{ev.outcome}</td><td>{format_time(r.shift_at)}</td>'
-                f"<td>{_interval_text(r)}</td>"
+                f'<td class="{ev.outcome}">{ev.outcome}</td><td>{stamp(r.shift_at, time_zone)}</td>'
+                f"<td>{_interval_text(r, time_zone)}</td>"
                 f'<td class="n">{r.delta:+.4g}{_e(unit)}</td>'
                 f'<td class="n" data-sigma="{r.delta_sigma:.3f}">{r.delta_sigma:+.2f}</td>'
-                f"<td>{format_time(r.detected_at)}</td>"
+                f"<td>{stamp(r.detected_at, time_zone)}</td>"
                 f'<td class="n" data-delay="{ev.delay:.3f}">{_signed_duration(ev.delay)}</td>'
                 f'<td class="n">{r.p_value:.2g}</td></tr>\n')
         out.append("</tbody>\n")

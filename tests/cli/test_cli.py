@@ -7,6 +7,7 @@ filler, a capper torque head and a tunnel oven.
 from __future__ import annotations
 
 import json
+import re
 from datetime import datetime, timezone
 from pathlib import Path
 
@@ -16,6 +17,7 @@ import pytest
 from shiftwatch.core.arl import cusum_arl
 from shiftwatch.core.engine import RECORD_FIELDS, StreamEngine
 from shiftwatch.core.timefmt import format_time, parse_time
+from shiftwatch.display import alert_summary
 
 T0 = datetime(2026, 3, 2, 6, 0, tzinfo=timezone.utc).timestamp()
 
@@ -77,7 +79,9 @@ def test_replay_gives_what_the_engine_gives(cli, tmp_path: Path) -> None:
         eng = StreamEngine(name)
         for r in rows:
             if r[1] == name:
-                expected += [rec.to_dict() for rec in eng.process([parse_time(r[0])], [float(r[2])]).records]
+                for rec in eng.process([parse_time(r[0])], [float(r[2])]).records:
+                    # The summary is the daemon's: the samples are from 2026-03-02, so it is dated.
+                    expected.append({**rec.to_dict(), "summary": alert_summary(rec, today=0.0)})
     key = lambda d: (d["as_of"], d["stream"], d["phase"] != "detected")  # noqa: E731
     assert sorted(got, key=key) == sorted(expected, key=key)
     assert len(got) == 6
@@ -132,6 +136,19 @@ def test_replay_applies_per_stream_settings_from_config(cli, tmp_path: Path) -> 
     others = [r for r in recs if r["stream"] != "brackenfield/capper1/torque_nm"]
     assert capper and all(r["test"] == "cusum" and r["unit"] == "N m" for r in capper)
     assert others and all(r["test"] == "multi_cusum" and "unit" not in r for r in others)
+    # Alert records as the daemon publishes them: a summary, and the label the config gives.
+    assert all(r["summary"].startswith(r["phase"].upper() + " ") for r in recs)
+    assert all("label" not in r for r in recs)
+    cfg.write_text(cfg.read_text().replace("    unit: N m\n", "    unit: N m\n    label: capper {1}\n")
+                   + "display: {time_zone: America/Chicago}\n")
+    res = cli("replay", "--config", str(cfg), str(csv_path))
+    assert res.returncode == 0, res.stderr
+    capper = [r for r in read_records(res.stdout) if r["stream"] == "brackenfield/capper1/torque_nm"]
+    assert capper and all(r["label"] == "capper torque_nm" for r in capper)
+    # Chicago in March 2026 is on CST before the 8th (US rules: second Sunday of March).
+    assert all(r["summary"].startswith(f"{r['phase'].upper()} capper torque_nm ") and " CST" in r["summary"]
+               for r in capper), capper[0]["summary"]
+    assert all(r["shift_at"].endswith("Z") for r in capper)  # the records stay UTC
 
 
 def test_replay_names_the_config_key_and_line_on_error(cli, tmp_path: Path) -> None:
@@ -156,7 +173,7 @@ def test_fit_on_the_nile_series(cli, tmp_path: Path) -> None:
         f.write("time,stream,value\n")
         for year, vol in zip(data["year"], data["volume"]):
             f.write(f"{int(year)}-01-01T00:00:00Z,aswan/flow,{vol}\n")
-    res = cli("fit", str(csv_path))
+    res = cli("fit", str(csv_path), "--json")
     assert res.returncode == 0, res.stderr
     d = json.loads(res.stdout)
     assert d["stream"] == "aswan/flow"
@@ -172,14 +189,14 @@ def test_fit_asks_for_a_stream_when_the_file_has_several(cli, tmp_path: Path) ->
     steps = write_plant_csv(csv_path, n=2000)
     res = cli("fit", str(csv_path))
     assert res.returncode == 2 and "choose one with --stream" in res.stderr
-    res = cli("fit", str(csv_path), "--stream", "brackenfield/filler3/fill_g")
+    res = cli("fit", str(csv_path), "--stream", "brackenfield/filler3/fill_g", "--json")
     assert res.returncode == 0, res.stderr
     d = json.loads(res.stdout)
     assert abs(parse_time(d["shift_at"]) - (T0 + steps["brackenfield/filler3/fill_g"])) <= 3
 
 
 def test_design_matches_lucas_crosier(cli) -> None:
-    # Lucas & Crosier (1982), Technometrics 24, Table 1: a two-sided CUSUM with
+    # Lucas & Crosier (1982), Technometrics 24:199-205, Table 1 (values recalled from memory): a two-sided CUSUM with
     # k = 0.5 and h = 4 has an in-control ARL of 168 and 8.38 at a 1-sigma shift.
     res = cli("design", "--min-shift", "1", "--false-alarm-every", "168s", "--interval", "1s", "--json")
     assert res.returncode == 0, res.stderr
@@ -201,8 +218,36 @@ def test_design_prints_a_table_an_engineer_can_read(cli) -> None:
     assert cusum_arl(0.5, h) == pytest.approx(604800, rel=0.01)
     for shift in ("0.75", "1.00", "2.00", "4.00"):
         assert f"  {shift}   " in out
+    # Delays as a person says them (the first-hour report saw "1.633 min"): whole seconds
+    # under 10 minutes, never a decimal fraction of a minute.
+    assert not re.search(r"\d\.\d+ min", out), out
+    row = next(line for line in out.splitlines() if line.startswith("   0.50"))
+    assert re.search(r"\d+ / \d+ min \d+ s", row), row
     res = cli("design", "--false-alarm-every", "often")
-    assert res.returncode == 2 and "not a duration: 'often'" in res.stderr
+    assert res.returncode == 2 and "--false-alarm-every: not a duration: 'often'" in res.stderr
+    # A bare number is refused (it printed "every 7 s" and "a false alarm every 50 s").
+    res = cli("design", "--false-alarm-every", "7")
+    assert res.returncode == 2 and res.stdout == ""
+    assert "--false-alarm-every: '7' has no unit (use a number with a unit: 250ms, 30s" in res.stderr
+    res = cli("design", "--interval", "1")
+    assert res.returncode == 2 and "--interval: '1' has no unit" in res.stderr
+
+
+def test_fit_prints_rounded_figures_for_people_and_full_ones_in_json(cli, tmp_path: Path) -> None:
+    csv_path = tmp_path / "line.csv"
+    write_plant_csv(csv_path, n=2000)
+    args = ("fit", str(csv_path), "--stream", "brackenfield/filler3/fill_g")
+    full = json.loads(cli(*args, "--json").stdout)
+    res = cli(*args)
+    assert res.returncode == 0, res.stderr
+    text = res.stdout
+    assert text.startswith(f"brackenfield/filler3/fill_g: one step at {full['shift_at']}")
+    before, after = (float(f"{full[k]:.5g}") for k in ("level_before", "level_after"))
+    assert f"level before {before:g} " in text and f"level after  {after:g} " in text
+    # No figure runs to more than 5 significant digits (the report saw 3.0683249999999873).
+    numbers = re.findall(r"(?<![\d:T-])\d+\.\d+", text.split("\n", 1)[1].replace(full["shift_at_low"], ""))
+    assert numbers and all(len(n.replace(".", "").lstrip("0")) <= 5 for n in numbers), numbers
+    assert "--json gives every figure in full" in text
 
 
 def test_commands_explain_bad_arguments_without_a_traceback(cli, tmp_path: Path) -> None:

@@ -20,6 +20,8 @@ import math
 
 import numpy as np
 import pytest
+import scipy.optimize
+import scipy.special
 
 from shiftwatch.core.arl import (
     arl_table,
@@ -65,7 +67,7 @@ def _simulate_run_lengths(
 # published tables
 # --------------------------------------------------------------------------
 
-# Lucas & Crosier (1982), Technometrics 24, Table 1: two-sided CUSUM with
+# Lucas & Crosier (1982), Technometrics 24:199-205, Table 1 (values recalled from memory): two-sided CUSUM with
 # k = 0.5 and no head start.
 LUCAS_CROSIER_TABLE_1 = [
     (4.0, 0.0, 168.0),
@@ -81,7 +83,8 @@ LUCAS_CROSIER_TABLE_1 = [
 def test_two_sided_arl_matches_lucas_crosier_table_1(
     h: float, shift: float, published: float
 ) -> None:
-    # Lucas & Crosier (1982), Technometrics 24, Table 1 (k = 0.5): within 1 %.
+    # Lucas & Crosier (1982), Technometrics 24:199-205, Table 1 (values recalled from memory)
+    # (k = 0.5): within 1 %.
     got = cusum_arl(0.5, h, shift)
     assert got == pytest.approx(published, rel=0.01)
 
@@ -289,26 +292,54 @@ def test_design_h_round_trip(arl0: float, k: float) -> None:
     assert cusum_arl(k, h) == pytest.approx(arl0, rel=0.005)
 
 
+def siegmund_two_sided_in_control(k: float, h: float) -> float:
+    """Siegmund (1985), "Sequential Analysis", ch. X: the one-sided CUSUM's ARL with drift
+    delta is (exp(-2 delta b) + 2 delta b - 1) / (2 delta**2), b = h + 2 rho, rho =
+    -zeta(1/2) / sqrt(2 pi) (formula recalled from memory, the constant from scipy); in
+    control delta = -k, and two symmetric sides halve it.  Written here, apart from
+    arl.siegmund_arl."""
+    rho = -float(scipy.special.zeta(0.5)) / math.sqrt(2.0 * math.pi)
+    b = h + 2.0 * rho
+    return (math.exp(2.0 * k * b) - 2.0 * k * b - 1.0) / (2.0 * k * k) / 2.0
+
+
 def test_design_h_one_week_at_one_hertz() -> None:
-    # Our issue quotes h ~ 12.1 for k = 0.5 and ARL0 = 604800 (from memory);
-    # the accurate solution is 12.15.
+    # h for k = 0.5 at an in-control ARL of 604,800 (a week at 1 Hz): Siegmund's
+    # approximation, solved with scipy's brentq, gives about 12.15; the Brook & Evans
+    # Markov chain (checked against an independent chain above) confirms it.
+    h_siegmund = scipy.optimize.brentq(lambda h: siegmund_two_sided_in_control(0.5, h) - 604800.0,
+                                       5.0, 20.0, xtol=1e-10)
+    assert h_siegmund == pytest.approx(12.15, abs=0.005)
+    # The approximation is within 1% of the chain's ARL at that h (its error in the far
+    # tail of the chain's state space is the overshoot correction's)...
+    assert cusum_arl(0.5, h_siegmund) == pytest.approx(604800.0, rel=0.01)
+    # ... and design_h, which solves the chain, lands within 0.01 of it.
     h = design_h(604800.0, 0.5)
-    assert abs(h - 12.1) < 0.1
-    # Siegmund's approximation inverted by hand gives nearly the same h.
-    assert siegmund_arl(0.5, h) == pytest.approx(604800.0, rel=0.05)
+    assert h == pytest.approx(h_siegmund, abs=0.01)
+    assert cusum_arl(0.5, h) == pytest.approx(604800.0, rel=0.005)
+    # The module's own siegmund_arl agrees with the formula written here (it rounds 2 rho to
+    # 1.166, which moves b by 0.0008 and the ARL by exp(2 k 0.0008) - 1, about 0.08%).
+    assert siegmund_arl(0.5, h) == pytest.approx(siegmund_two_sided_in_control(0.5, h), rel=1e-3)
 
 
 def test_design_h_reproduces_lucas_crosier_h() -> None:
-    # Lucas & Crosier (1982) Table 1: h = 4 and h = 5 at k = 0.5 give
+    # Lucas & Crosier (1982), Technometrics 24:199-205, Table 1 (values recalled from memory): h = 4 and h = 5 at k = 0.5 give
     # in-control ARLs 168 and 465, so design_h must return h ~ 4 and ~ 5.
     assert design_h(168.0, 0.5) == pytest.approx(4.0, abs=0.01)
     assert design_h(465.0, 0.5) == pytest.approx(5.0, abs=0.01)
 
 
 def test_design_h_is_monotone_and_cached() -> None:
+    from shiftwatch.core.arl import _design_h_cached
+
     hs = [design_h(a, 0.5) for a in (100.0, 1e3, 1e4, 1e5, 1e6)]
     assert all(a < b for a, b in zip(hs, hs[1:]))
-    assert design_h(1e4, 0.5) == hs[2]  # served from the cache, bit-identical
+    hits = _design_h_cached.cache_info().hits
+    assert design_h(1e4, 0.5) == hs[2]  # bit-identical ...
+    assert _design_h_cached.cache_info().hits == hits + 1  # ... because the cache served it
+    # arl0 rounded to 10 significant digits shares the entry.
+    assert design_h(1e4 * (1 + 1e-12), 0.5) == hs[2]
+    assert _design_h_cached.cache_info().hits == hits + 2
 
 
 @pytest.mark.parametrize(
@@ -337,7 +368,7 @@ def test_bad_arguments_raise() -> None:
 
 
 def test_arl_table_rows() -> None:
-    # Lucas & Crosier (1982) Table 1, k = 0.5, h = 4 (ARL column).
+    # Lucas & Crosier (1982), Technometrics 24:199-205, Table 1 (values recalled from memory), k = 0.5, h = 4 (ARL column).
     rows = arl_table(0.5, 4.0, [0.0, 0.5, 1.0, 2.0])
     assert [r[0] for r in rows] == [0.0, 0.5, 1.0, 2.0]
     for (shift, arl, med), published in zip(rows, [168.0, 26.6, 8.38, 3.34]):

@@ -273,7 +273,7 @@ def test_design_uses_half_the_shift_and_design_h() -> None:
     t = CusumTest.design(arl0=604800.0, min_shift=1.0)
     assert t.k == 0.5
     assert t.h == design_h(604800.0, 0.5)
-    # Lucas & Crosier (1982) Table 1: k = 0.5, h = 4 has two-sided ARL0 168
+    # Lucas & Crosier (1982), Technometrics 24:199-205, Table 1 (values recalled from memory): k = 0.5, h = 4 has two-sided ARL0 168
     assert CusumTest.design(168.0, 1.0).h == pytest.approx(4.0, abs=0.01)
     with pytest.raises(ValueError, match="min_shift"):
         CusumTest.design(1000.0, 0.0)

@@ -385,8 +385,12 @@ def test_false_alarm_rate_holds_while_the_baseline_is_young(test: str) -> None:
         res = eng.process(T0 + np.arange(float(n)), rng.standard_normal(n))
         alarms += sum(r.phase == "detected" for r in res.records)
     expected = runs * after / 20000.0
+    # Alarms are rare and independent across runs: a Poisson count, sd sqrt(45) = 6.7.
     assert alarms <= expected + math.sqrt(expected)  # one Poisson sd above
-    assert alarms >= 0.4 * expected  # and it still watches
+    # And it still watches: the allowance makes a young baseline's test more cautious
+    # (31 of 45 measured for the GLR), but not silent; 0.4 of 45 is 18, more than two Poisson
+    # sds (sqrt(31) = 5.6) below the lowest count measured.
+    assert alarms >= 0.4 * expected
 
 
 def test_events_near_baseline_refinements_never_stall_the_engine() -> None:

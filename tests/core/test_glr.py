@@ -221,14 +221,18 @@ def _simulated_arl(threshold: float, window: int, runs: int, rng: np.random.Gene
 )
 def test_design_arl_by_simulation(arl0, window, runs):
     # Monte Carlo truth (fixed random state): the mean run length on iid
-    # N(0, 1) with resets.  Run lengths are close to exponential, so the
-    # relative standard error is about 1/sqrt(runs) (1.6% .. 3.2%).  The
-    # product accepts +-20%; the calibration aims at +0..+10%.
+    # N(0, 1) with resets.  The band around the design's aim has two parts:
+    # - the aim: the design asks for 5% more than arl0 (glr._ARL_MARGIN = log 1.05);
+    # - the calibration's own error: its fresh checks in glr's docstring (1.044 to
+    #   1.082 of arl0, each from tens of thousands of runs) sit within 0.035 of that aim;
+    # - this simulation's standard error: run lengths are close to exponential
+    #   (sd = mean), so the relative standard error is 1/sqrt(runs), 1.6% .. 3.2%;
+    #   three of them.
     rng = np.random.default_rng(int(arl0) + window)
     test = GlrTest.design(arl0, window=window)
     arl = _simulated_arl(test.threshold, window, runs, rng)
     se = 1.0 / math.sqrt(runs)
-    assert 1.0 - 0.08 - 3 * se < arl / arl0 < 1.0 + 0.15 + 3 * se, arl
+    assert abs(arl / arl0 - 1.05) < 0.035 + 3 * se * 1.05, arl
 
 
 def test_design_threshold_monotone_and_default_window():

@@ -8,9 +8,9 @@ References used below:
   Li & Wang 2007, Naval Research Logistics 54:902-916), as the reference
   for the vectorised update.
 * :class:`shiftwatch.core.cusum.CusumTest` for the one-chart bank.
-* Lucas & Crosier (1982, Technometrics 24:199-205): the two-sided CUSUM
-  with k = 0.5, h = 4 has in-control ARL 168 (value from memory; the
-  integral equation in core/arl.py gives 167.7).
+* Lucas & Crosier (1982), Technometrics 24:199-205, Table 1 (values recalled from memory): the two-sided CUSUM
+  with k = 0.5, h = 4 has in-control ARL 168 (the integral equation in
+  core/arl.py gives 167.7).
 * Bonferroni: the joint ARL of m charts that each have ARL A lies between
   A / m and A.
 """
@@ -279,8 +279,8 @@ def _simulated_arl(ks: tuple[float, ...], hs: tuple[float, ...], streams: int, s
 
 
 def test_one_chart_simulation_reproduces_lucas_crosier() -> None:
-    # Lucas & Crosier (1982): k = 0.5, h = 4 has in-control ARL 168 (from
-    # memory).  Checks the simulation helper used below.
+    # Lucas & Crosier (1982), Technometrics 24:199-205, Table 1 (values recalled from memory): k = 0.5, h = 4 has in-control
+    # ARL 168.  Checks the simulation helper used below.
     arl = _simulated_arl((0.5,), (4.0,), streams=400, steps=5000, state=1)
     assert arl == pytest.approx(168.0, rel=0.05)
 
@@ -317,14 +317,14 @@ def test_design_charts_share_one_individual_arl_from_design_h() -> None:
     assert a_design * joint_arl_ratio(a_design, 1.0) <= 2000 * 1.03 * 1.001
 
 
-def test_design_scales_ks_and_is_monotone_and_cached() -> None:
+def test_design_scales_ks_and_is_monotone_and_repeatable() -> None:
     t = MultiCusumTest.design(604800, 0.5)
     assert t.ks == pytest.approx(tuple(0.5 * m / 2.0 for m in DEFAULT_MULTIPLES))
     lo = MultiCusumTest.design(1e4, 1.0)
     hi = MultiCusumTest.design(1e6, 1.0)
     assert all(a < b for a, b in zip(lo.hs, hi.hs))
     again = MultiCusumTest.design(1e4, 1.0)
-    assert again.hs == lo.hs and again is not lo
+    assert again.hs == lo.hs and again is not lo  # the same design again, a new test object
     custom = MultiCusumTest.design(1e4, 1.0, multiples=(1.0, 3.0))
     assert custom.ks == (0.5, 1.5)
 

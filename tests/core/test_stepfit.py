@@ -9,8 +9,9 @@ References used (outside the project):
   from = 0.15)``, ``confint``) as printed in its documentation examples;
   the figures are quoted from memory.
 * Bai (1997), Review of Economics and Statistics 79:551-563, for the
-  limit law of the break-date estimator (values of G computed
-  independently by the project lead).
+  limit law of the break-date estimator (its closed form recalled from
+  memory and evaluated in the test with scipy's normal CDF; a simulation
+  of the Brownian argmax checks it too).
 * Andrews (1993), Econometrica 61:821-856, Table 1 (p = 1, pi0 = 0.15)
   critical values of sup-F, from memory.
 * Hansen (2000), "Sample splitting and threshold estimation", Econometrica
@@ -89,12 +90,30 @@ def vectorised_supf(y: np.ndarray, k_lo: int, k_hi: int) -> np.ndarray:
 # ---------------------------------------------------------------------------
 
 
+def bai_g(x: float) -> float:
+    """Bai (1997)'s closed form of G for x >= 0 (recalled from memory), evaluated with scipy's
+    normal CDF: G(x) = 1 + sqrt(x/(2 pi)) e^(-x/8) - (x + 5)/2 Phi(-sqrt(x)/2)
+    + 3/2 e^x Phi(-3 sqrt(x)/2).  test_bai_cdf_against_simulated_brownian_argmax checks the
+    law by simulation, so a wrongly recalled formula would show there."""
+    from scipy.stats import norm
+
+    r = math.sqrt(x)
+    return float(1.0 + math.sqrt(x / (2.0 * math.pi)) * math.exp(-x / 8.0)
+                 - 0.5 * (x + 5.0) * norm.cdf(-r / 2.0) + 1.5 * math.exp(x) * norm.cdf(-1.5 * r))
+
+
 def test_bai_cdf_known_values() -> None:
-    # Values of G from Bai (1997)'s closed form, computed independently by the
-    # project lead: G(7.7) = 0.95014, G(11.0) = 0.97483, G(4.7) = 0.90009.
-    assert bai_cdf(7.7) == pytest.approx(0.95014, abs=5e-6)
-    assert bai_cdf(11.0) == pytest.approx(0.97483, abs=5e-6)
-    assert bai_cdf(4.7) == pytest.approx(0.90009, abs=5e-6)
+    # G from the published closed form, computed here with scipy (see bai_g).
+    for x in (0.5, 4.7, 7.7, 11.0, 20.0):
+        assert bai_cdf(x) == pytest.approx(bai_g(x), abs=1e-12)
+        assert bai_cdf(-x) == pytest.approx(1.0 - bai_g(x), abs=1e-12)
+    # The density integrates to one over the line (quad over the symmetric halves).
+    import scipy.integrate
+
+    h = 1e-5
+    dens = lambda x: (bai_g(x + h) - bai_g(max(x - h, 0.0))) / (x + h - max(x - h, 0.0))  # noqa: E731
+    half, _ = scipy.integrate.quad(dens, 0.0, 200.0, limit=200)
+    assert 2 * half == pytest.approx(1.0, abs=1e-4)
     # Symmetry, centre and monotonicity of a CDF of a symmetric law.
     assert bai_cdf(0.0) == pytest.approx(0.5, abs=1e-15)
     xs = np.linspace(-50, 50, 401)
@@ -310,9 +329,24 @@ def test_nile_break_interval_lr(nile: tuple[np.ndarray, np.ndarray]) -> None:
     # 95% and 1898 alone at 90% ("lr"); 1896 .. 1899 at both levels with
     # Hansen's uncorrected values ("lr_asymptotic"); Bai 1895 .. 1901.
     y, years = nile
-    lr_profile = (brute_rss(y, 15, 85) - brute_rss(y, 28, 28)[0]) / (1597457 / 98)
-    # LR profile at the last old years 1896 .. 1899 (splits 26 .. 29).
-    assert lr_profile[26 - 15 : 30 - 15] == pytest.approx([5.38, 3.78, 0.0, 5.85], abs=0.01)
+    n = y.shape[0]
+    # The LR profile by its definition (Hansen 2000, eq. 8): LR(k) = (RSS(k) - RSS(k_hat)) /
+    # sigma_hat**2 with sigma_hat**2 = RSS(k_hat) / (n - 2), each RSS(k) from scipy's least
+    # squares on the two-level design matrix (independent of stepfit and of brute_rss).
+    def lstsq_rss(k: int) -> float:
+        design = np.zeros((n, 2))
+        design[:k, 0] = 1.0
+        design[k:, 1] = 1.0
+        _, res, _, _ = scipy.linalg.lstsq(design, y)
+        return float(res) if np.ndim(res) == 0 else float(res[0])
+
+    rss = np.array([lstsq_rss(k) for k in range(15, 86)])
+    k_hat = int(np.argmin(rss)) + 15
+    assert k_hat == 28  # strucchange's break, last old year 1898 (from memory, as above)
+    assert rss.min() == pytest.approx(1597457, rel=1e-5)  # strucchange's RSS (from memory)
+    lr_profile = (rss - rss.min()) / (rss.min() / (n - 2))
+    assert np.allclose(brute_rss(y, 15, 85), rss, rtol=1e-10)  # the two RSS routes agree
+    assert lr_profile[28 - 15] == 0.0 and np.all(lr_profile >= 0)
     last_old = {}
     for level in (0.9, 0.95):
         for method in ("lr", "lr_asymptotic"):

@@ -1,8 +1,8 @@
 """Sensitivity design: the CUSUM bank's run-length bounds, the neighbouring settings, and the
 settings suggested from a stream's history, checked against outside references.
 
-References: Lucas & Crosier (1982) for a CUSUM's ARL; statsmodels' ``acf`` for
-the autocorrelation; numpy's standard deviation of simulated noise of known
+References: Lucas & Crosier (1982), Technometrics 24:199-205, Table 1 (values recalled from
+memory) for a CUSUM's ARL; statsmodels' ``acf`` for the autocorrelation; numpy's standard deviation of simulated noise of known
 sigma; simulations of the real test and of the real engine for the delays.
 The plant is invented (Brackenfield Bottling, line 2).
 """
@@ -54,7 +54,7 @@ def run_lengths(test: MultiCusumTest, shift: float, runs: int, rng: np.random.Ge
 
 # ------------------------------------------------------------ the bank bound
 def test_a_one_chart_bank_is_the_cusum_of_lucas_and_crosier() -> None:
-    # Lucas & Crosier (1982), Technometrics 24, Table 1: two-sided CUSUM,
+    # Lucas & Crosier (1982), Technometrics 24:199-205, Table 1 (values recalled from memory): two-sided CUSUM,
     # k = 0.5, h = 4: ARL 168 in control and 8.38 at a 1-sigma shift.
     [(arl0, _), (arl1, _)] = bank_run_lengths((0.5,), (4.0,), (0.0, 1.0), arl0=168.0)
     assert arl0 == 168.0  # in control the calibrated joint ARL is reported as is
@@ -91,11 +91,15 @@ def test_neighbouring_settings_trade_false_alarms_for_delay() -> None:
 @pytest.mark.slow
 def test_the_chosen_curve_in_control_is_the_calibrated_arl_by_simulation() -> None:
     # In control the chart shows the requested ARL; a simulation of the bank the
-    # engine builds for it (1,500 runs, fixed random state) agrees within 10%.
+    # engine builds for it (1,500 runs, fixed random state) agrees within three of
+    # its standard errors (the run lengths' own sd over sqrt(1500), about 2.6% of
+    # the mean for near-exponential run lengths) plus the 3% by which the bank's
+    # joint calibration may exceed the request (test_multicusum checks that margin).
     [chosen, _, _] = sensitivity(1.0, 500.0, 1.0, shifts=(0.0,))
     test = MultiCusumTest.design(chosen.arl0, 1.0)
     rl = run_lengths(test, 0.0, 1500, np.random.default_rng(7))
-    assert rl.mean() == pytest.approx(chosen.arl[0], rel=0.10)
+    se = float(rl.std(ddof=1)) / math.sqrt(rl.size)
+    assert abs(rl.mean() - chosen.arl[0]) <= 3 * se + 0.03 * chosen.arl[0], (rl.mean(), se)
 
 
 # ------------------------------------------------------ measuring the noise

@@ -2,7 +2,7 @@
 
 Every test that needs a broker starts a private Mosquitto on a free loopback
 port.  When no broker can be started the test fails (it never skips): the
-README's set-up installs Mosquitto wherever it is missing.
+README's test command (tests/install-and-test.sh) installs Mosquitto wherever it is missing.
 """
 
 from __future__ import annotations
@@ -95,11 +95,12 @@ class DaemonProcess:
         self.metrics_port = metrics_port
         self.proc: subprocess.Popen[str] | None = None
         self.log_path = config.with_suffix(".log")
+        self.run_args: list[str] = []  # more options of `shiftwatch run`, e.g. --log-format json
 
     def start(self, timeout: float = 20.0) -> "DaemonProcess":
         self.log = open(self.log_path, "a")
         offset = self.log_path.stat().st_size
-        self.proc = subprocess.Popen(self.command + ["run", "--config", str(self.config)],
+        self.proc = subprocess.Popen(self.command + ["run", "--config", str(self.config), *self.run_args],
                                      stdout=self.log, stderr=subprocess.STDOUT, text=True)
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:

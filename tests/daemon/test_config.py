@@ -34,7 +34,7 @@ def test_the_shipped_schema_is_generated_from_the_same_definitions() -> None:
     shipped = json.loads((ROOT / "config" / "shiftwatch.schema.json").read_text())
     assert shipped == json_schema()
     props = shipped["properties"]
-    assert set(props) == {"broker", "streams", "detection", "alerts", "metrics", "state"}
+    assert set(props) == {"broker", "streams", "detection", "alerts", "metrics", "state", "display"}
     assert props["detection"]["properties"]["test"]["enum"] == ["multi_cusum", "glr", "cusum", "page_hinkley", "adwin"]
     assert props["streams"]["items"]["required"] == ["topic"]
 
@@ -43,18 +43,21 @@ def test_the_shipped_schema_is_generated_from_the_same_definitions() -> None:
     ("detection:\n  min_shift_sigm: 1\n",
      "plant.yaml:2: detection.min_shift_sigm: unknown key; did you mean 'min_shift_sigma'?"),
     ("streams:\n  - topic: a/b\n    detection:\n      min_shift_sigma: -1\n",
-     "plant.yaml:4: streams[0].detection.min_shift_sigma: must be positive, got -1"),
+     "plant.yaml:4: the 1st stream (streams[0]): detection.min_shift_sigma: must be positive, got -1"),
     ("streams:\n  - topic: a/b\n  - topic: c/#/d\n",
-     "plant.yaml:3: streams[1].topic: '#' must be a whole last level of the filter: 'c/#/d'"),
-    ("streams:\n  - format: json\n", "plant.yaml:2: streams[0].topic: is required"),
+     "plant.yaml:3: the 2nd stream (streams[1]): topic: '#' must be a whole last level of the filter: 'c/#/d'"),
+    ("streams:\n  - format: json\n", "plant.yaml:2: the 1st stream (streams[0]): topic: is required"),
     ("broker:\n  url: http://x\n",
      "plant.yaml:2: broker.url: must start with mqtt:// or mqtts://, got 'http://x'"),
-    ("broker:\n  mqtt_version: 4\n", "plant.yaml:2: broker.mqtt_version: must be text, got 4"),
+    ("broker:\n  mqtt_version: 4\n",
+     "plant.yaml:2: broker.mqtt_version: must be text, one of '5', '3.1.1', got 4"),
     ("broker:\n  receive_maximum: 70000\n",
      "plant.yaml:2: broker.receive_maximum: must be 1 to 65535, got 70000"),
     ("detection: {false_alarm_every: soon}\n",
      "plant.yaml:1: detection.false_alarm_every: not a duration: 'soon'"),
-    ("metrics: {listen: nowhere}\n", "plant.yaml:1: metrics.listen: must be host:port, got 'nowhere'"),
+    ("metrics: {listen: nowhere}\n",
+     "plant.yaml:1: metrics.listen: must be HOST:PORT (e.g. \"127.0.0.1:9650\", a port of 0 to 65535), "
+     "got 'nowhere'"),
     ("alerts: {topic_prefix: 'a/+/b'}\n", "plant.yaml:1: alerts.topic_prefix: must be a plain topic"),
     ('alerts: {topic_prefix: "a/\\x01b"}\n', "plant.yaml:1: alerts.topic_prefix: must be a plain topic"),
     ("alerts: {topic_prefix: '" + "l/" * 32 + "x'}\n",
@@ -95,10 +98,11 @@ def test_check_prints_resolved_settings_without_secrets(cli, tmp_path: Path) -> 
     os.chmod(pw, 0o644)
     cfg = tmp_path / "plant.yaml"
     cfg.write_text(f"broker:\n  username: sw\n  password_file: {pw}\n"
-                   "streams:\n  - topic: a/+\n")
-    res = cli("check", "--config", str(cfg))
+                   f"streams:\n  - topic: a/+\nstate:\n  dir: {tmp_path}\nmetrics:\n  listen: 127.0.0.1:0\n")
+    res = cli("check", "--config", str(cfg), "--no-network")
     assert res.returncode == 0, res.stderr
-    assert "min_shift_sigma: 1.0" in res.stdout and "false_alarm_every: 604800.0" in res.stdout
+    # Durations are printed in a form the file accepts back.
+    assert "min_shift_sigma: 1.0" in res.stdout and "false_alarm_every: 7d" in res.stdout
     assert "s3cret" not in res.stdout + res.stderr
     assert "readable by other users" in res.stderr
     bad = tmp_path / "bad.yaml"
@@ -149,16 +153,80 @@ def test_labels_name_streams_the_way_operators_do() -> None:
 
 @pytest.mark.parametrize("text, expected", [
     ("streams:\n  - topic: plant/+/fill\n    label: 'filler {2}'\n",
-     "plant.yaml:3: streams[0].label: placeholder {2} cannot be filled: the topic filter 'plant/+/fill' has 1 '+' level"),
+     "plant.yaml:3: the 1st stream (streams[0]): label: placeholder {2} cannot be filled: the topic filter 'plant/+/fill' has 1 '+' level"),
     ("streams:\n  - topic: plant/fill\n    label: 'fill {#}'\n",
-     "plant.yaml:3: streams[0].label: placeholder {#} cannot be filled: the topic filter 'plant/fill' does not end in '#'"),
+     "plant.yaml:3: the 1st stream (streams[0]): label: placeholder {#} cannot be filled: the topic filter 'plant/fill' does not end in '#'"),
     ("streams:\n  - topic: plant/fill\n    label: 'fill {name}'\n",
-     "plant.yaml:3: streams[0].label: placeholder {name} cannot be filled: only SenML streams have a name"),
+     "plant.yaml:3: the 1st stream (streams[0]): label: placeholder {name} cannot be filled: only SenML streams have a name"),
     ("streams:\n  - topic: plant/+/fill\n    label: 'filler {head}'\n",
-     "plant.yaml:3: streams[0].label: placeholder {head} cannot be filled: use {1}, {2}, ..."),
+     "plant.yaml:3: the 1st stream (streams[0]): label: placeholder {head} cannot be filled: use {1}, {2}, ..."),
     ("streams:\n  - topic: plant/+/fill\n    label: 'filler {1'\n",
-     "plant.yaml:3: streams[0].label: unbalanced brace in 'filler {1'"),
-    ("streams:\n  - topic: plant/+/fill\n    label: ''\n", "plant.yaml:3: streams[0].label: must not be empty"),
+     "plant.yaml:3: the 1st stream (streams[0]): label: unbalanced brace in 'filler {1'"),
+    ("streams:\n  - topic: plant/+/fill\n    label: ''\n", "plant.yaml:3: the 1st stream (streams[0]): label: must not be empty"),
 ])
 def test_bad_labels_are_refused_with_their_key_path(text: str, expected: str) -> None:
     assert error_of(text).startswith(expected), error_of(text)
+
+
+FORMS = "(use a number with a unit: 250ms, 30s, 10min (or 10m), 12h, 7d or 2w)"
+
+
+@pytest.mark.parametrize("text, expected", [
+    # The first-hour report: a bare 7 passed as 7 seconds, and a replay gave 258 dismissals.
+    ("detection:\n  false_alarm_every: 7\n", "plant.yaml:2: detection.false_alarm_every: 7 has no unit " + FORMS),
+    ("detection:\n  false_alarm_every: '7'\n",
+     "plant.yaml:2: detection.false_alarm_every: '7' has no unit " + FORMS),
+    ("detection:\n  max_time_ahead: 600\n", "plant.yaml:2: detection.max_time_ahead: 600 has no unit"),
+    ("streams:\n  - topic: a\n  - topic: b\n  - topic: c\n    detection: {max_time_behind: 2.5}\n",
+     "plant.yaml:5: the 3rd stream (streams[2]): detection.max_time_behind: 2.5 has no unit"),
+    ("broker:\n  session_expiry: 86400\n", "plant.yaml:2: broker.session_expiry: 86400 has no unit"),
+    ("state:\n  snapshot_every: 60\n", "plant.yaml:2: state.snapshot_every: 60 has no unit"),
+])
+def test_a_duration_without_a_unit_is_refused_with_the_accepted_forms(text: str, expected: str) -> None:
+    assert error_of(text).startswith(expected), error_of(text)
+
+
+def test_durations_with_units_mean_what_they_say() -> None:
+    cfg = parse_config("detection: {false_alarm_every: 7d, max_time_ahead: 10m, max_time_behind: 90 min}\n"
+                       "broker: {session_expiry: 12h}\nstate: {snapshot_every: 250ms}\n")
+    d = cfg.detection
+    assert (d.false_alarm_every, d.max_time_ahead, d.max_time_behind) == (604800.0, 600.0, 5400.0)
+    assert (cfg.broker.session_expiry, cfg.state.snapshot_every) == (43200.0, 0.25)
+
+
+@pytest.mark.parametrize("text, expected", [
+    # YAML reads an unquoted 5 as a number.
+    ("broker:\n  mqtt_version: 5\n",
+     'plant.yaml:2: broker.mqtt_version: must be text, got the number 5; write it in quotes: "5"'),
+    ("metrics:\n  listen: 43143\n",
+     'plant.yaml:2: metrics.listen: must be text in the form HOST:PORT, e.g. "127.0.0.1:9650", got 43143'),
+    ("streams:\n  - topic: a\n  - topic: b\n  - topic: c\n    unit: 5\n",
+     "plant.yaml:5: the 3rd stream (streams[2]): unit: must be text, got 5"),
+    ("streams:\n" + "  - topic: a\n" * 11 + "  - {topic: b, formt: json}\n",
+     "plant.yaml:13: the 12th stream (streams[11]): formt: unknown key; did you mean 'format'?"),
+    ("display:\n  time_zone: Europe/Berln\n",
+     "plant.yaml:2: display.time_zone: unknown time zone 'Europe/Berln'; did you mean 'Europe/Berlin'?"),
+    ("display:\n  time_zone: 2\n",
+     "plant.yaml:2: display.time_zone: must be an IANA time zone name such as 'Europe/Berlin'"),
+])
+def test_errors_say_what_to_write_instead(text: str, expected: str) -> None:
+    assert error_of(text).startswith(expected), error_of(text)
+
+
+def test_the_display_time_zone_defaults_to_utc_and_takes_iana_names() -> None:
+    assert parse_config("{}\n").display.time_zone == "UTC"
+    assert parse_config("display: {time_zone: America/Chicago}\n").display.time_zone == "America/Chicago"
+
+
+def test_the_schema_holds_the_limits_check_enforces() -> None:
+    import re
+
+    det = json_schema()["properties"]["detection"]["properties"]
+    # check refuses min_shift_sigma above 4 (test_settings_that_would_break_detection_are_refused).
+    assert det["min_shift_sigma"]["maximum"] == 4 and det["min_shift_sigma"]["exclusiveMinimum"] == 0
+    pattern = re.compile(det["false_alarm_every"]["pattern"])
+    assert det["false_alarm_every"]["type"] == "string"
+    assert all(pattern.match(t) for t in ("7d", "250ms", "10 min", "1.5h"))
+    assert not any(pattern.match(t) for t in ("7", "60", "soon"))
+    behind = det["max_time_behind"]["anyOf"]
+    assert {"type": "null"} in behind and any(re.compile(b["pattern"]).match("2d") for b in behind if "pattern" in b)

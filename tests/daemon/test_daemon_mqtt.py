@@ -209,7 +209,7 @@ def test_a_replayed_file_and_the_same_samples_over_mqtt_agree(daemon_factory, co
     assert alerts.wait_for(lambda items: len(items) >= len(replayed))
     time.sleep(0.5)
     live = alerts.records()
-    for rec in live:
+    for rec in live + replayed:  # the summaries differ only if the two were made on different days
         rec.pop("summary")
     assert live == replayed
     assert d.stop() == 0

@@ -120,28 +120,59 @@ def test_json_log_lines(daemon_factory, tmp_path: Path, shiftwatch_cmd) -> None:
 
 
 def test_demo_runs_and_reports(shiftwatch_cmd) -> None:
-    # 32 s covers the first scheduled step (filler head 2 at 24 s).
+    # 32 s covers the first scheduled step (filler head 2 at 24 s).  The port asked for is
+    # taken, so the demo says why it moves to another.
     env = dict(os.environ)
-    res = subprocess.run(shiftwatch_cmd + ["demo", "--duration", "32", "--metrics-listen", "127.0.0.1:0"],
-                         capture_output=True, text=True, timeout=120, env=env)
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen(1)
+        port = taken.getsockname()[1]
+        res = subprocess.run(shiftwatch_cmd + ["demo", "--duration", "32s", "--metrics-listen",
+                                               f"127.0.0.1:{port}"],
+                             capture_output=True, text=True, timeout=120, env=env)
     assert res.returncode == 0, res.stderr
     out = res.stdout
     assert "Brackenfield Bottling, line 2 (an invented plant)" in out
-    assert "Advisory only" in out
-    # The display shows each record's summary, naming the stream by its label:
-    # "CONFIRMED fill weight on filler head2 stepped up 1.3 g (2.2 sigma) at 06:00:24Z, detected 0.8 s later: ..."
-    assert re.search(r"CONFIRMED fill weight on filler head2 stepped up [\d.]+ g \([\d.]+ sigma\) "
-                     r"at \d\d:\d\d:\d\dZ, detected [\d.]+ s later: [\d.]+ -> [\d.]+ g", out), out
+    assert "Advisory only" in out and "local codes and licensed practice" in out
+    assert f"(port {port} is in use (Address already in use), so the demo took a free one" in out
+    # The display shows each record's summary, naming the stream by its label, and the
+    # time it arrived on the same clock as the summary (UTC by default):
+    # "[06:00:25Z] CONFIRMED fill weight on filler head2 stepped up 1.3 g (2.2 sigma) at 06:00:24Z, ..."
+    assert re.search(r"\[\d\d:\d\d:\d\dZ\] CONFIRMED fill weight on filler head2 stepped up [\d.]+ g "
+                     r"\([\d.]+ sigma\) at \d\d:\d\d:\d\dZ, detected [\d.]+ s later: [\d.]+ -> [\d.]+ g",
+                     out), out
+    assert not re.search(r"\[\d\d:\d\d\.\d\]", out)  # no relative clock beside the clock times
     assert "What happened" in out
     recap = out.split("What happened")[1]
-    assert "filler head 2 fill weight" in recap and "+1.3 g @24s" in recap
+    # The recap names each sensor as the alerts do.
+    head2 = next(line for line in recap.splitlines() if "fill weight on filler head2" in line)
+    assert re.search(r"\+1\.3 g at \d\d:\d\d:\d\dZ", head2), head2
+    assert "filler head 2" not in out
     # The oven's step (planned at 38 s) lies past the 32 s run: said so, not "no confirmed step".
-    oven = next(line for line in recap.splitlines() if "tunnel oven zone 3 temperature" in line)
+    oven = next(line for line in recap.splitlines() if "tunnel oven zone3 temperature" in line)
     assert "demo ended first" in oven
 
 
+def test_the_demo_shows_times_in_the_zone_asked_for_and_refuses_a_duration_without_unit(
+        shiftwatch_cmd) -> None:
+    res = subprocess.run(shiftwatch_cmd + ["demo", "--duration", "30"], capture_output=True, text=True,
+                         timeout=60)
+    assert res.returncode == 2 and "--duration: '30' has no unit (use a number with a unit" in res.stderr
+    res = subprocess.run(shiftwatch_cmd + ["demo", "--time-zone", "Mars/Olympus"], capture_output=True,
+                         text=True, timeout=60)
+    assert res.returncode == 2 and "--time-zone: unknown time zone 'Mars/Olympus'" in res.stderr
+    res = subprocess.run(shiftwatch_cmd + ["demo", "--duration", "29s", "--time-zone", "Asia/Kolkata",
+                                           "--metrics-listen", "127.0.0.1:0"],
+                         capture_output=True, text=True, timeout=120)
+    assert res.returncode == 0, res.stderr
+    # Kolkata has no daylight saving time: IST all year.
+    assert re.search(r"\[\d\d:\d\d:\d\d IST\] DETECTED fill weight on filler head2 stepped up [\d.]+ g "
+                     r"\([\d.]+ sigma\) at \d\d:\d\d:\d\d IST", res.stdout), res.stdout
+    assert "every time shown is a clock time in Asia/Kolkata" in res.stdout
+
+
 def test_demo_stops_cleanly_on_ctrl_c(shiftwatch_cmd) -> None:
-    proc = subprocess.Popen(shiftwatch_cmd + ["demo", "--duration", "60", "--metrics-listen", "127.0.0.1:0"],
+    proc = subprocess.Popen(shiftwatch_cmd + ["demo", "--duration", "60s", "--metrics-listen", "127.0.0.1:0"],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     time.sleep(6)
     proc.send_signal(signal.SIGINT)
@@ -153,7 +184,7 @@ def test_demo_stops_cleanly_on_ctrl_c(shiftwatch_cmd) -> None:
 
 def test_demo_runs_on_the_embedded_broker(shiftwatch_cmd) -> None:
     # The fallback for machines without Mosquitto: amqtt, MQTT 3.1.1.
-    res = subprocess.run(shiftwatch_cmd + ["demo", "--embedded-broker", "--duration", "32",
+    res = subprocess.run(shiftwatch_cmd + ["demo", "--embedded-broker", "--duration", "32s",
                                            "--metrics-listen", "127.0.0.1:0"],
                          capture_output=True, text=True, timeout=120)
     assert res.returncode == 0, res.stderr

@@ -2,7 +2,7 @@
 
 * The rules pass ``promtool check rules`` and behave as written under
   ``promtool test rules`` (promtool ships in Debian's ``prometheus``
-  package; the README's set-up installs it, so a missing promtool fails).
+  package; the README's test command (tests/install-and-test.sh) installs it, so a missing promtool fails).
 * Every query of the dashboard parses as PromQL (``promtool check rules`` on
   a recording rule per query, Grafana's variables filled in).
 * Every metric name the dashboard or the rules use is one the real daemon
@@ -44,7 +44,7 @@ PROMQL_WORDS = {"by", "without", "on", "ignoring", "group_left", "group_right", 
 def promtool() -> str:
     exe = shutil.which("promtool") or ("/usr/bin/promtool" if Path("/usr/bin/promtool").exists() else None)
     if exe is None:
-        pytest.fail("promtool is not installed: the README's set-up installs it "
+        pytest.fail("promtool is not installed: the README's test command (tests/install-and-test.sh) installs it "
                     "(apt-get install prometheus, which ships promtool)")
     return exe
 
@@ -226,7 +226,7 @@ def test_the_dashboard_is_a_well_formed_grafana_dashboard() -> None:
     for p in dash["panels"]:
         g = p["gridPos"]
         assert 0 <= g["x"] and g["x"] + g["w"] <= 24 and g["h"] > 0, p["title"]
-        if p["type"] == "row":
+        if p["type"] in ("row", "text"):
             continue
         assert p["datasource"]["uid"] == "${datasource}" and p["targets"], p["title"]
         for t in p["targets"]:
@@ -236,6 +236,24 @@ def test_the_dashboard_is_a_well_formed_grafana_dashboard() -> None:
     titles = " ".join(p["title"].lower() for p in dash["panels"])
     for wanted in ("level", "sigma", "alert records", "broker", "ingest", "drops"):
         assert wanted in titles, wanted
+    # The caution is on the board itself, at the top (a dashboard's description is not shown).
+    top = min(dash["panels"], key=lambda p: (p["gridPos"]["y"], p["gridPos"]["x"]))
+    assert top["type"] == "text" and top["gridPos"]["w"] == 24
+    text = top["options"]["content"]
+    for words in ("not a safety function", "safety instrumented system", "interlock", "site procedures",
+                  "local codes and licensed practice"):
+        assert words in text.lower() or words in text, words
+
+
+def test_the_rules_say_what_the_daemon_does_and_point_to_a_readme_section_that_exists() -> None:
+    text = RULES.read_text()
+    headings = {line.lstrip("#").strip() for line in (ROOT / "README.md").read_text().splitlines()
+                if line.startswith("#")}
+    named = re.findall(r'see the README, "([^"]+)"', text)
+    assert named and all(n in headings for n in named), (named, sorted(headings))
+    # The README (Operation) and the daemon pause reading at the queue bound: nothing is dropped.
+    falling = text.split("ShiftwatchFallingBehind")[1].split("- alert:")[0]
+    assert "dropped (reason queue_full)" not in falling and "stops reading from the broker" in falling
 
 
 def test_every_dashboard_query_is_valid_promql(tmp_path: Path) -> None:
@@ -314,13 +332,15 @@ def test_alerts_name_the_stream_by_its_label_in_the_record_and_the_log(fed_daemo
     d, alerts = fed_daemon
     conf = alerts.records("confirmed")[0]
     assert conf["label"] == "fill weight on filler head7"
-    # "fill weight on filler head7 stepped up 1.2 g (2 sigma) at 00:21:40Z, detected 9 s later: ..."
+    # "fill weight on filler head7 stepped up 1.2 g (2 sigma) at 2026-09-21 00:21:40Z, detected 9 s
+    # later: ..." (the samples are stamped on another day than today, so the date is given)
     m = re.fullmatch(r"CONFIRMED fill weight on filler head7 stepped up ([\d.]+) g \(([\d.]+) sigma\) "
-                     r"at (\d\d:\d\d:\d\d)Z, detected ([\d.]+) s later: ([\d.]+) -> ([\d.]+) g", conf["summary"])
+                     r"at (\d{4}-\d\d-\d\d \d\d:\d\d:\d\d)Z, detected ([\d.]+) s later: ([\d.]+) -> ([\d.]+) g",
+                     conf["summary"])
     assert m, conf["summary"]
     assert float(m.group(1)) == pytest.approx(abs(conf["delta"]), rel=0.01)
     assert float(m.group(2)) == pytest.approx(conf["delta_sigma"], abs=0.05)
-    assert m.group(3) == conf["shift_at"][11:19]
+    assert m.group(3) == conf["shift_at"][:10] + " " + conf["shift_at"][11:19]
     from shiftwatch.core.timefmt import parse_time
 
     lag = parse_time(conf["detected_at"]) - parse_time(conf["shift_at"])

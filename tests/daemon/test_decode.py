@@ -640,8 +640,13 @@ def test_property_huge_integers(digits: int, sign: str, fmt: str, wrap: str) -> 
 
 def test_stream_name_examples() -> None:
     assert stream_name("brackenfield/filler3/fill_g", None) == "brackenfield/filler3/fill_g"
+    # A name in the form of RFC 8428's examples in section 5 (recalled from memory): a URN is
+    # read as levels, without urn:dev:.
     assert stream_name("brackenfield/oven2", "urn:dev:ow:10e2073a01080063:temp") == \
-        "brackenfield/oven2/urn:dev:ow:10e2073a01080063:temp"
+        "brackenfield/oven2/ow/10e2073a01080063/temp"
+    assert stream_name("ravensmoor/l4/senml", "urn:ravensmoor:l4:filler:fill_volume") == \
+        "ravensmoor/l4/senml/l4/filler/fill_volume"
+    assert stream_name("brackenfield/oven2", "oven2:zone3") == "brackenfield/oven2/oven2:zone3"
     odd = stream_name("brackenfield/+/cap#\x00", "a\nb")
     assert odd.startswith("brackenfield/_/cap__/a_b~") and len(odd) == len("brackenfield/_/cap__/a_b~") + 12
     assert stream_name("", None).startswith("_~")

@@ -240,7 +240,7 @@ def test_max_time_limits_are_validated_with_their_key_path(cli: Any, tmp_path: P
     bad.write_text("streams:\n  - topic: a/+\n    detection:\n      max_time_ahead: soon\n")
     res = cli("check", "--config", str(bad))
     assert res.returncode != 0
-    assert "bad.yaml:4: streams[0].detection.max_time_ahead: not a duration: 'soon'" in res.stderr
+    assert "bad.yaml:4: the 1st stream (streams[0]): detection.max_time_ahead: not a duration: 'soon'" in res.stderr
 
 
 @pytest.fixture

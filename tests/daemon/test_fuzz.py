@@ -441,7 +441,9 @@ def test_level_updates_waiting_for_acknowledgement_stay_bounded(mosquitto: Mosqu
         assert set(got) == {name[len("fz/json/line/"):] for name in d.engines}
         for name, body in got.items():
             eng = d.engines["fz/json/line/" + name]
-            assert (body["state"], body["level"], body["sigma"]) == (eng.state, eng.level, eng.sigma)
+            # Level and sigma to 6 significant digits, as the payload rounds them for people.
+            assert (body["state"], body["level"], body["sigma"]) == \
+                (eng.state, float(f"{eng.level:.6g}"), float(f"{eng.sigma:.6g}"))
         assert not d._levels_due and d.link.connected
 
 
@@ -559,9 +561,10 @@ def test_real_daemon_under_bad_input_keeps_the_good_stream_exact(daemon_factory,
     assert abs(parse_time(alerts.records("confirmed")[0]["shift_at"]) - (T0 + step)) <= 3
     assert d.stop() == 0
     lived = time.monotonic() - started
-    # Logs: at most one line per reason per 10 s (plus the one that opens a window).
+    # Logs: at most one line per reason per 10 s (plus the one that opens a window, and
+    # the summary of what was held back when the daemon stopped).
     lines = log_lines(d.log_text())
     per_reason = Tally(r for r in map(reason_of, lines) if r is not None)
-    allowed = math.floor(lived / 10) + 1
+    allowed = math.floor(lived / 10) + 2
     assert per_reason and max(per_reason.values()) <= allowed, (per_reason, lived)
     assert len(lines) <= 30 + CAP + len(per_reason) * allowed, len(lines)  # CAP "new stream" lines

@@ -247,3 +247,49 @@ def test_the_daemon_and_the_cli_do_not_import_matplotlib_or_tqdm() -> None:
     res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60, check=False)
     assert res.returncode == 0, res.stderr
     assert res.stdout.strip() == "[]"
+
+
+# ------------------------------------------- what the reader of a chart sees
+def test_the_chart_names_the_reading_its_unit_and_zone_and_draws_a_confirmed_level_to_the_end(
+        plant_csv: PlantCsv) -> None:
+    # The first-hour report: the y-axis said "value" with --config and a unit, the times were
+    # UTC only, and the level after a confirmed step was a stub on a long chart.
+    stream = "brackenfield/line2/filler/head2/fill"  # one confirmed step, nothing after it
+    trace = trace_of(plant_csv, stream)
+    trace.unit, trace.label, trace.time_zone = "g", "fill weight on filler head2", "Europe/Berlin"
+    events = trace.events()
+    assert [e.outcome for e in events] == ["confirmed"]
+    fig = stream_figure(trace)
+    main = fig.axes[0]
+    assert main.get_ylabel() == "fill weight on filler head2 (g)"
+    assert main.get_xlabel() == "time (Europe/Berlin)"
+    assert str(main.xaxis.get_major_formatter()._locator.tz) == "Europe/Berlin"
+    r = events[0].final
+    after = [seg for c in main.collections if hasattr(c, "get_segments") for seg in c.get_segments()
+             if seg[0][1] == r.level_after]
+    assert len(after) == 1
+    (x0, _), (x1, _) = after[0]
+    assert x0 == r.shift_at / 86400.0
+    assert x1 == trace.envelope.last_time / 86400.0 > r.as_of / 86400.0  # to the last sample
+
+
+def test_replay_report_with_a_config_uses_its_labels_units_and_time_zone(cli, plant_csv: PlantCsv,
+                                                                         tmp_path: Path) -> None:
+    cfg = tmp_path / "line2.yaml"
+    cfg.write_text("streams:\n  - topic: brackenfield/line2/filler/+/fill\n    unit: g\n"
+                   "    label: fill weight on filler {1}\n"
+                   "display: {time_zone: Europe/Berlin}\n")
+    out = tmp_path / "report"
+    res = cli("replay", "--config", str(cfg), "--report", str(out), str(plant_csv.path))
+    assert res.returncode == 0, res.stderr
+    text = (out / "report.html").read_text()
+    assert "Times are shown in Europe/Berlin (the alert records hold them in UTC)" in text
+    assert "<th>shift at (Europe/Berlin)</th>" in text and "<th>detected at (Europe/Berlin)</th>" in text
+    assert "<h3>fill weight on filler head2 (brackenfield/line2/filler/head2/fill)</h3>" in text
+    conf = next(r for r in read_records(res.stdout) if r["phase"] == "confirmed"
+                and r["stream"] == "brackenfield/line2/filler/head2/fill")
+    # 2026-03-02 in Berlin is CET, UTC+1: the table shows the record's UTC time an hour on.
+    from shiftwatch.display import stamp
+
+    assert stamp(parse_time(conf["shift_at"]), "Europe/Berlin").endswith("+01:00")
+    assert f"<td>{stamp(parse_time(conf['shift_at']), 'Europe/Berlin')}</td>" in text

@@ -7,7 +7,7 @@ console.  The test checks that each chart decoded, that nothing came from
 anywhere but the file itself, that the console stayed free of errors, and
 keeps a screenshot of the whole page at tests/artifacts/report.png.
 
-Chromium and its driver come from the README's setup (apt packages
+Chromium and its driver come from the README's test command (apt packages
 ``chromium`` and ``chromium-driver``).  When they are missing the test
 fails; it never skips.
 """
@@ -29,7 +29,7 @@ CHROMIUM = "/usr/bin/chromium"
 CHROMEDRIVER = "/usr/bin/chromedriver"
 ARTIFACTS = Path(__file__).resolve().parents[1] / "artifacts"
 SCREENSHOT = ARTIFACTS / "report.png"
-SETUP_HINT = ("the README's setup installs them: "
+SETUP_HINT = ("the README's test command (sh tests/install-and-test.sh) installs them: "
               "apt-get update && apt-get install -y chromium chromium-driver")
 
 # Flags for a headless Chromium run as root with nothing to fetch (common practice

@@ -502,7 +502,6 @@ def design_h(arl0: float, k: float) -> float:
     return _design_h_cached(float(f"{a:.10g}"), round(kk, 12))
 
 
-@functools.lru_cache(maxsize=512)
 @functools.lru_cache(maxsize=1024)
 def siegmund_h(arl0: float, k: float) -> float:
     """The h whose two-sided in-control ARL is ``arl0`` by Siegmund's approximation.
@@ -555,6 +554,7 @@ def quick_design_h(arl0: float, k: float) -> float:
     return design_h(arl0, k)
 
 
+@functools.lru_cache(maxsize=512)
 def _design_h_cached(arl0: float, k: float) -> float:
     target = math.log(arl0)
     # ARL as h -> 0: one step signals with prob 2 P(Z > k).

@@ -65,8 +65,9 @@ PHASES = ("detected", "confirmed", "returned", "dismissed", "undecided")
 
 #: Printed with every alert: shiftwatch advises, it does not protect.
 ADVISORY = (
-    "Advisory only: shiftwatch is not a safety function or interlock. "
-    "Follow site procedures before acting on equipment."
+    "Advisory only: shiftwatch is not a safety function, a safety instrumented system or an "
+    "interlock, and must not start or stop equipment without the site's own safety review. "
+    "Site procedures, local codes and licensed practice come first."
 )
 
 #: Field order of the alert record (the JSON contract shared with the daemon).

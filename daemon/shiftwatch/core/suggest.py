@@ -171,16 +171,20 @@ def budget_false_alarm_every(streams_in_plant: int, plant_false_alarms_per_day: 
 
 
 def duration_setting(seconds: float) -> str:
-    """A duration written the way the configuration file takes it.
+    """A duration written the way the configuration file takes it, in the largest unit
+    that gives a whole number or one decimal.
 
     Examples
     --------
     >>> duration_setting(30 * 86400.0), duration_setting(5400.0), duration_setting(2.5)
-    ('30d', '90min', '2.5s')
+    ('30d', '1.5h', '2.5s')
+    >>> duration_setting(30 * 86400.0 / 4), duration_setting(7 * 86400.0 / 4), duration_setting(600.0)
+    ('7.5d', '42h', '10min')
     """
     for unit, size in (("d", 86400.0), ("h", 3600.0), ("min", 60.0)):
-        if seconds >= size and abs(seconds / size - round(seconds / size)) < 1e-9:
-            return f"{round(seconds / size)}{unit}"
+        n = seconds / size
+        if n >= 1 and abs(n * 10 - round(n * 10)) < 1e-9:
+            return f"{round(n * 10) / 10:g}{unit}"
     return f"{seconds:g}s"
 
 

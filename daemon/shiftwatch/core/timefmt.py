@@ -72,10 +72,16 @@ def parse_time(text: str | float | int) -> float:
     return dt.timestamp()
 
 
+#: The forms a duration may take, shown in every error about one.
+DURATION_FORMS = "a number with a unit: 250ms, 30s, 10min (or 10m), 12h, 7d or 2w"
+
+
 def parse_duration(text: str | float | int) -> float:
     """Parse a duration such as ``7d``, ``12h``, ``30 min``, ``1.5s`` or ``250ms`` into seconds.
 
-    A bare number is seconds.  Raises ``ValueError`` naming the text.
+    The unit is required: a bare number (``7``, or the YAML number 7) is
+    refused, since nobody can tell whether it meant seconds or days.  Raises
+    ``ValueError`` naming the text and showing the accepted forms.
 
     Examples
     --------
@@ -83,21 +89,45 @@ def parse_duration(text: str | float | int) -> float:
     604800.0
     >>> parse_duration("250ms")
     0.25
-    >>> parse_duration(90)
-    90.0
+    >>> parse_duration(7)
+    Traceback (most recent call last):
+    ...
+    ValueError: 7 has no unit (use a number with a unit: 250ms, 30s, 10min (or 10m), 12h, 7d or 2w)
+    >>> parse_duration("90")
+    Traceback (most recent call last):
+    ...
+    ValueError: '90' has no unit (use a number with a unit: 250ms, 30s, 10min (or 10m), 12h, 7d or 2w)
     """
     if isinstance(text, (int, float)) and not isinstance(text, bool):
-        value = float(text)
-    else:
-        m = _DURATION.match(str(text))
-        if not m:
-            raise ValueError(
-                f"not a duration: {text!r} (use a number with a unit: ms, s, min, h, d or w, e.g. '7d')"
-            )
-        value = float(m.group(1)) * _UNIT_SECONDS[m.group(2) or "s"]
+        raise ValueError(f"{text!r} has no unit (use {DURATION_FORMS})")
+    m = _DURATION.match(str(text))
+    if not m:
+        raise ValueError(f"not a duration: {text!r} (use {DURATION_FORMS})")
+    if m.group(2) is None:
+        raise ValueError(f"{text!r} has no unit (use {DURATION_FORMS})")
+    value = float(m.group(1)) * _UNIT_SECONDS[m.group(2)]
     if not math.isfinite(value) or value <= 0:
         raise ValueError(f"duration must be positive: {text!r}")
     return value
+
+
+def duration_text(seconds: float) -> str:
+    """Seconds as a duration :func:`parse_duration` reads back exactly (for resolved settings).
+
+    Examples
+    --------
+    >>> duration_text(604800.0), duration_text(90.0), duration_text(0.25), duration_text(600.0)
+    ('7d', '90s', '250ms', '10min')
+    >>> parse_duration(duration_text(1.0 / 3.0)) == 1.0 / 3.0
+    True
+    """
+    for unit, size in (("d", 86400.0), ("h", 3600.0), ("min", 60.0), ("s", 1.0)):
+        n = seconds / size
+        if n >= 1 and n == int(n) and int(n) * size == seconds:
+            return f"{int(n)}{unit}"
+    if seconds * 1000 == int(seconds * 1000):
+        return f"{int(seconds * 1000)}ms"
+    return f"{seconds!r}s"
 
 
 def format_duration(seconds: float) -> str:

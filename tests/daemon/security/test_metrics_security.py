@@ -211,7 +211,7 @@ def test_a_metrics_endpoint_open_to_the_network_without_tls_draws_a_warning(
         broker="  url: mqtt://127.0.0.1:1883\n",
         metrics="  listen: 0.0.0.0:9650\n",
     )
-    res = cli("check", "--config", str(open_cfg))
+    res = cli("check", "--config", str(open_cfg), "--no-network")
     assert res.returncode == 0
     assert (
         "metrics.listen 0.0.0.0:9650 is reachable from other hosts and metrics.tls is not set"
@@ -224,5 +224,5 @@ def test_a_metrics_endpoint_open_to_the_network_without_tls_draws_a_warning(
         metrics=f"  listen: 0.0.0.0:9650\n  tls: {{cert_file: {pki.good[0]}, "
         f"key_file: {pki.good[1]}}}\n",
     )
-    res = cli("check", "--config", str(tls_cfg))
+    res = cli("check", "--config", str(tls_cfg), "--no-network")
     assert res.returncode == 0 and "warning" not in res.stderr, res.stderr

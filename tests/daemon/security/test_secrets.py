@@ -208,7 +208,7 @@ def test_files_that_lead_to_secrets_must_be_private(
     tmp_path: Path, pki: Pki, cli, which: str, config_mode: int, secret_mode: int
 ) -> None:
     cfg = modes_case(tmp_path, pki, config_mode, secret_mode, which)
-    res = cli("check", "--config", str(cfg))
+    res = cli("check", "--config", str(cfg), "--no-network")
     assert res.returncode == 0, res.stderr
     warned_config = (
         f"configuration file {cfg} is readable by other users (mode {config_mode:04o})"
@@ -232,7 +232,7 @@ def test_a_configuration_without_secrets_may_be_readable(tmp_path: Path, cli) ->
         broker="  url: mqtt://127.0.0.1:1883\n",
         mode=0o644,
     )
-    res = cli("check", "--config", str(cfg))
+    res = cli("check", "--config", str(cfg), "--no-network")
     assert res.returncode == 0 and "warning" not in res.stderr, res.stderr
     env_only = write_config(
         tmp_path / "env.yaml",
@@ -240,7 +240,7 @@ def test_a_configuration_without_secrets_may_be_readable(tmp_path: Path, cli) ->
         mode=0o644,
         broker=("  url: mqtt://127.0.0.1:1883\n  username: sw\n  password_env: SW_PW\n"),
     )
-    res = cli("check", "--config", str(env_only))
+    res = cli("check", "--config", str(env_only), "--no-network")
     assert (
         f"configuration file {env_only} is readable by other users (mode 0644) "
         "and it leads to a secret" in res.stderr
@@ -280,5 +280,5 @@ def test_a_configuration_leading_only_to_systemd_credentials_may_be_readable(
             "  password_file: /run/credentials/shiftwatch.service/broker.password\n"
         ),
     )
-    res = cli("check", "--config", str(cfg))
+    res = cli("check", "--config", str(cfg), "--no-network")
     assert res.returncode == 0 and "warning" not in res.stderr, res.stderr

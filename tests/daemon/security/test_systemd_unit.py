@@ -50,7 +50,7 @@ def need(tool: str) -> str:
     if found:
         return found
     if os.environ.get("CI") == "true":
-        pytest.fail(f"{tool} is not installed (the README's set-up installs it)")
+        pytest.fail(f"{tool} is not installed (the README's test command (tests/install-and-test.sh) installs it)")
     pytest.skip(f"{tool} is not installed")
 
 

@@ -1,0 +1,185 @@
+"""Times as people read them: in the site's time zone (``display.time_zone``), dated when not today.
+
+Records, snapshots and every machine-read field stay RFC 3339 UTC
+(:func:`shiftwatch.core.timefmt.format_time`); what is shown here goes into
+alert summaries, log lines, the demo's display and the replay report.  Time
+zones are IANA names read from the system's tz database through
+:mod:`zoneinfo`; ``UTC`` keeps the ``Z`` of RFC 3339.
+"""
+
+from __future__ import annotations
+
+import functools
+from datetime import UTC, datetime, tzinfo
+from zoneinfo import ZoneInfo
+
+from shiftwatch.core.engine import AlertRecord
+from shiftwatch.core.timefmt import format_duration
+
+UTC_NAMES = frozenset(("UTC", "Etc/UTC", "Z"))
+
+
+@functools.lru_cache(maxsize=16)
+def zone(name: str) -> tzinfo:
+    """The tzinfo of an IANA name (``UTC`` is :data:`datetime.timezone.utc`)."""
+    return UTC if name in UTC_NAMES else ZoneInfo(name)
+
+
+def _local(t: float, tz: str) -> datetime:
+    return datetime.fromtimestamp(t, tz=zone(tz))
+
+
+def _zone_suffix(dt: datetime, tz: str) -> str:
+    if tz in UTC_NAMES:
+        return "Z"
+    return " " + (dt.tzname() or dt.strftime("%z"))
+
+
+def clock(t: float, tz: str = "UTC", *, today: float | None = None) -> str:
+    """A time of day in ``tz``, with the date in front when it falls on another day than ``today``.
+
+    ``today`` is a time on the reference day (for an alert summary, the time the
+    record was made, so a replay gives the same text on any day).
+
+    Examples
+    --------
+    >>> clock(1772432592.0)                        # 2026-03-02 06:23:12 UTC
+    '06:23:12Z'
+    >>> clock(1772432592.0, today=1772432592.0 + 86400)
+    '2026-03-02 06:23:12Z'
+    >>> clock(1772432592.0, "Europe/Berlin")
+    '07:23:12 CET'
+    >>> clock(1772432592.0, "America/Chicago", today=1772432592.0)
+    '00:23:12 CST'
+    >>> clock(1772432592.0 - 7 * 3600, "America/Chicago", today=1772432592.0)
+    '2026-03-01 17:23:12 CST'
+    """
+    dt = _local(t, tz)
+    ref = _local(t if today is None else today, tz)
+    fmt = "%H:%M:%S" if dt.date() == ref.date() else "%Y-%m-%d %H:%M:%S"
+    return dt.strftime(fmt) + _zone_suffix(dt, tz)
+
+
+def stamp(t: float, tz: str = "UTC") -> str:
+    """RFC 3339 with milliseconds in ``tz``: its offset, or ``Z`` for UTC.
+
+    Examples
+    --------
+    >>> stamp(1772432592.25)
+    '2026-03-02T06:23:12.250Z'
+    >>> stamp(1772432592.25, "Asia/Kolkata")
+    '2026-03-02T11:53:12.250+05:30'
+    """
+    dt = _local(round(t * 1000) / 1000, tz)
+    text = dt.isoformat(timespec="milliseconds")
+    return text[:-6] + "Z" if tz in UTC_NAMES else text
+
+
+def human_duration(seconds: float) -> str:
+    """A duration as a person says it, to about two figures: 250 ms, 9.8 s, 1 min 38 s, 7.5 d.
+
+    Examples
+    --------
+    >>> [human_duration(s) for s in (0.25, 9.84, 48.3, 98.0, 113.0, 600.0, 754.0, 7500.0, 50400.0)]
+    ['250 ms', '9.8 s', '48 s', '1 min 38 s', '1 min 53 s', '10 min', '13 min', '2 h 5 min', '14 h']
+    >>> [human_duration(s) for s in (86400.0, 648000.0, 2592000.0, 120 * 86400.0)]
+    ['1 d', '7.5 d', '30 d', '120 d']
+    """
+    if seconds < 1:
+        return f"{float(f'{seconds * 1000:.2g}'):g} ms"
+    if seconds < 59.5:
+        return f"{float(f'{seconds:.2g}'):g} s"
+    if seconds < 3570:
+        m, s = divmod(round(seconds), 60)
+        return f"{m} min {s} s" if m < 10 and s else f"{round(seconds / 60)} min"
+    if seconds < 86400 - 1800:
+        h, m = divmod(round(seconds / 60), 60)
+        return f"{h} h {m} min" if h < 10 and m else f"{round(seconds / 3600)} h"
+    days = seconds / 86400
+    return f"{float(f'{days:.2g}'):g} d" if days < 10 else f"{days:.0f} d"
+
+
+def human_number(x: float, digits: int = 5) -> str:
+    """A measured number to ``digits`` significant figures, without exponent for everyday sizes.
+
+    Examples
+    --------
+    >>> human_number(3.0683249999999873), human_number(1097.75), human_number(-0.000123456)
+    ('3.0683', '1097.8', '-0.00012346')
+    """
+    return f"{float(f'{x:.{digits}g}'):g}" if 1e-5 <= abs(x) < 1e15 or x == 0 else f"{x:.{digits}g}"
+
+
+def zone_label(tz: str) -> str:
+    """How a chart or a heading names the zone: ``UTC`` or the IANA name.
+
+    Examples
+    --------
+    >>> zone_label("UTC"), zone_label("Europe/Berlin")
+    ('UTC', 'Europe/Berlin')
+    """
+    return "UTC" if tz in UTC_NAMES else tz
+
+
+def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *,
+                  today: float | None = None) -> str:
+    """One line an operator reads at a glance: what stepped, by how much, when, and how soon it was seen.
+
+    ``label`` is the operator's name of the stream (the config's ``label``);
+    without it the stream name is used.  Times are shown in ``tz`` (the
+    config's ``display.time_zone``, an IANA name), with the date in front
+    when the time falls on another day than ``today`` (the daemon and replay
+    pass the time the summary is written; by default the record's ``as_of``).
+
+    Examples
+    --------
+    >>> rec = AlertRecord(id="ace7", phase="confirmed", stream="plant/line2/filler/head7/fill",
+    ...     detected_at=1772432601.0, shift_at=1772432592.0, shift_at_low=1772432590.0,
+    ...     shift_at_high=1772432593.0, level_before=500.03, level_after=501.83, delta=1.8,
+    ...     delta_sigma=2.1, sigma=0.86, n_before=1200, n_after=60, test="multi_cusum",
+    ...     statistic=1.02, threshold=1.0, as_of=1772432650.0, interval_level=0.9,
+    ...     level_before_se=0.02, level_after_se=0.1, f_stat=80.0, p_value=1e-15,
+    ...     direction="up", unit="g")
+    >>> alert_summary(rec, "fill weight on filler 7")
+    'CONFIRMED fill weight on filler 7 stepped up 1.8 g (2.1 sigma) at 06:23:12Z, detected 9 s later: 500.03 -> 501.83 g'
+    >>> alert_summary(rec, "filler 7", "Europe/Berlin")
+    'CONFIRMED filler 7 stepped up 1.8 g (2.1 sigma) at 07:23:12 CET, detected 9 s later: 500.03 -> 501.83 g'
+    >>> alert_summary(rec, "filler 7", today=rec.as_of + 86400)[:71]
+    'CONFIRMED filler 7 stepped up 1.8 g (2.1 sigma) at 2026-03-02 06:23:12Z'
+    >>> from dataclasses import replace
+    >>> alert_summary(replace(rec, phase="dismissed"), "filler 7")
+    "DISMISSED filler 7: no lasting step found after the detection at 06:23:21Z; the level stays 500.03 g (any follow-up is for the site's procedures)"
+    >>> alert_summary(rec)[:60]
+    'CONFIRMED plant/line2/filler/head7/fill stepped up 1.8 g (2.'
+    """
+    unit = f" {rec.unit}" if rec.unit else ""
+    who = label or rec.stream
+    ref = rec.as_of if today is None else today
+    verb = {"detected": "DETECTED", "confirmed": "CONFIRMED", "dismissed": "DISMISSED"}.get(
+        rec.phase, rec.phase.upper())
+    if rec.phase == "dismissed":
+        return (f"{verb} {who}: no lasting step found after the detection at "
+                f"{clock(rec.detected_at, tz, today=ref)}; the level stays "
+                f"{rec.level_before:.5g}{unit} (any follow-up is for the site's procedures)")
+    if rec.phase == "returned":
+        start = "?" if rec.excursion_start is None else clock(rec.excursion_start, tz, today=ref)
+        return (f"{verb} {who} went back {rec.direction} {abs(rec.delta):.3g}{unit} at "
+                f"{clock(rec.shift_at, tz, today=ref)}, ending the excursion that began at {start}: "
+                f"{rec.level_before:.5g} -> {rec.level_after:.5g}{unit}")
+    if rec.phase == "undecided":
+        return (f"{verb} {who}: after {rec.n_after} samples the step detected at "
+                f"{clock(rec.detected_at, tz, today=ref)} is still uncertain ({rec.level_before:.5g} -> "
+                f"{rec.level_after:.5g}{unit}); watching on from the current level")
+    return (f"{verb} {who} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
+            f"({abs(rec.delta_sigma):.2g} sigma) at {clock(rec.shift_at, tz, today=ref)}, detected "
+            f"{_lag_text(rec.detected_at - rec.shift_at)} later: {rec.level_before:.5g} -> "
+            f"{rec.level_after:.5g}{unit}")
+
+
+def _lag_text(lag: float) -> str:
+    """A detection delay as an operator says it: 1.3 s, 9 s, 2.5 min."""
+    if lag < 10:
+        return f"{max(lag, 0.0):.1f} s".replace(".0 s", " s")
+    if lag < 120:
+        return f"{lag:.0f} s"
+    return format_duration(lag)

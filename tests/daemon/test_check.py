@@ -1,0 +1,100 @@
+"""`shiftwatch check` tries what it can without side effects: the state directory, the
+metrics port, the files the daemon reads, and the broker.
+
+The first-hour report: a `state.dir` that was a file and a metrics port already in use
+both passed `check` and failed at start.  Every test here runs the real command line in a
+subprocess against a private Mosquitto (or a port nothing listens on).
+"""
+
+from __future__ import annotations
+
+import os
+import socket
+from pathlib import Path
+
+import pytest
+
+from shiftwatch.broker import MosquittoBroker, free_port
+
+
+def write(tmp_path: Path, text: str, name: str = "plant.yaml") -> Path:
+    p = tmp_path / name
+    p.write_text(text)
+    os.chmod(p, 0o600)
+    return p
+
+
+def test_a_state_dir_that_is_a_file_and_a_taken_port_are_problems(cli, tmp_path: Path, broker) -> None:
+    not_a_dir = tmp_path / "state"
+    not_a_dir.write_text("oops\n")
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen(1)
+        port = taken.getsockname()[1]
+        cfg = write(tmp_path, f"broker: {{url: '{broker.url}'}}\nstreams:\n  - topic: a/+\n"
+                    f"metrics: {{listen: '127.0.0.1:{port}'}}\nstate: {{dir: '{not_a_dir}'}}\n")
+        res = cli("check", "--config", str(cfg))
+    assert res.returncode == 1, res.stderr
+    assert f"state.dir {not_a_dir}: is a file, not a directory" in res.stderr
+    assert f"metrics.listen 127.0.0.1:{port}: cannot listen there: Address already in use" in res.stderr
+    assert f"ok: broker {broker.url}: accepted a connection" in res.stdout
+    assert "2 problem(s)" in res.stderr
+
+
+def test_a_good_configuration_passes_and_check_leaves_nothing_behind(cli, tmp_path: Path, broker) -> None:
+    state = tmp_path / "var" / "lib" / "shiftwatch"
+    port = free_port()
+    cfg = write(tmp_path, f"broker: {{url: '{broker.url}', client_id: line2}}\nstreams:\n  - topic: a/+\n"
+                f"metrics: {{listen: '127.0.0.1:{port}'}}\nstate: {{dir: '{state}'}}\n")
+    res = cli("check", "--config", str(cfg))
+    assert res.returncode == 0, res.stderr
+    assert f"ok: state.dir {state}: does not exist yet; the daemon will make it in {tmp_path}" in res.stdout
+    assert f"ok: metrics.listen 127.0.0.1:{port}: free" in res.stdout
+    assert f"ok: broker {broker.url}: accepted a connection" in res.stdout
+    assert not (tmp_path / "var").exists()  # nothing created
+    with socket.socket() as s:  # the port was released
+        s.bind(("127.0.0.1", port))
+
+
+def test_a_broker_that_does_not_answer_is_a_problem_unless_the_network_is_skipped(cli, tmp_path: Path) -> None:
+    url = f"mqtt://127.0.0.1:{free_port()}"  # nothing listens there
+    cfg = write(tmp_path, f"broker: {{url: '{url}'}}\nstreams:\n  - topic: a/+\n"
+                f"metrics: {{listen: '127.0.0.1:0'}}\nstate: {{dir: '{tmp_path}'}}\n")
+    res = cli("check", "--config", str(cfg))
+    assert res.returncode == 1
+    assert f"broker {url}: cannot connect: connection refused (is the broker running" in res.stderr
+    res = cli("check", "--config", str(cfg), "--no-network")
+    assert res.returncode == 0, res.stderr
+    assert f"ok: broker {url}: not tried (--no-network)" in res.stdout
+
+
+def test_an_unreadable_password_file_and_a_wrong_password_are_problems(cli, tmp_path: Path) -> None:
+    try:
+        b = MosquittoBroker(workdir=tmp_path / "broker", users={"sw-line2": "right"}).start()
+    except RuntimeError as exc:
+        pytest.fail(f"cannot start the test broker: {exc}")
+    try:
+        missing = tmp_path / "no-such.password"
+        cfg = write(tmp_path, f"broker: {{url: '{b.url}', username: sw-line2, password_file: '{missing}'}}\n"
+                    f"streams:\n  - topic: a/+\nmetrics: {{listen: '127.0.0.1:0'}}\n"
+                    f"state: {{dir: '{tmp_path}'}}\n")
+        res = cli("check", "--config", str(cfg))
+        assert res.returncode == 1
+        assert f"broker.password_file {missing}: cannot be read: No such file or directory" in res.stderr
+        wrong = write(tmp_path, "wrong\n", "wrong.password")
+        cfg = write(tmp_path, f"broker: {{url: '{b.url}', username: sw-line2, password_file: '{wrong}'}}\n"
+                    f"streams:\n  - topic: a/+\nmetrics: {{listen: '127.0.0.1:0'}}\n"
+                    f"state: {{dir: '{tmp_path}'}}\n")
+        res = cli("check", "--config", str(cfg))
+        assert res.returncode == 1
+        assert "refused the connection: Not authorized (user 'sw-line2'; check broker.username" in res.stderr
+        assert "wrong" not in res.stdout.replace(str(wrong), "") + res.stderr.replace(str(wrong), "")
+        right = write(tmp_path, "right\n", "right.password")
+        cfg = write(tmp_path, f"broker: {{url: '{b.url}', username: sw-line2, password_file: '{right}'}}\n"
+                    f"streams:\n  - topic: a/+\nmetrics: {{listen: '127.0.0.1:0'}}\n"
+                    f"state: {{dir: '{tmp_path}'}}\n")
+        res = cli("check", "--config", str(cfg))
+        assert res.returncode == 0, res.stderr
+        assert f"ok: broker.password_file {right}: readable" in res.stdout
+    finally:
+        b.stop()
