@@ -852,7 +852,14 @@ class StreamEngine:
             dt = np.diff(self._window.times)
             interval = median(dt) if dt.shape[0] else 1.0
             sd = max(ys.spread(), sigma_floor(ys.mean, 0.0, self.settings.min_sigma))
-            b = Baseline(level=ys.mean, sigma=sd, phi=0.0, innovation_sigma=sd,
+            # The event is weighed on prewhitened residuals as an established stream's
+            # would be, with the autocorrelation as far as the samples show it; while
+            # it cannot be told from none, in units of its long-run variance at two
+            # standard errors above the estimate (a step must not be confirmed on a
+            # run of autocorrelated samples).
+            phi = ys.phi_estimate()
+            inn = sd * math.sqrt(1.0 - phi * phi) * math.sqrt(ys.variance_factor(2.0))
+            b = Baseline(level=ys.mean, sigma=sd, phi=phi, innovation_sigma=inn,
                          interval=interval if interval > 0 else 1.0, n=max(ys.n, 1), quantum=0.0,
                          clip=self.settings.clip_sigma)
             self._provisional = True
@@ -1042,9 +1049,12 @@ class StreamEngine:
         result.records.append(self._record(ev, fit, "detected", as_of))
 
     def _new_trial(self, sign: int) -> EventTrial:
+        """The decision for an event in direction ``sign``: the smallest step of interest in
+        the units of the trial's inputs (prewhitened residuals over the innovation sigma)."""
         s = self.settings
-        return EventTrial(sign, max(self._test_shift_z, 0.05), s.confirm_p_value, s.confirm_max_samples,
-                          s.confirm_min_samples)
+        b = self._baseline
+        d = self._test_shift_z if b is None else s.min_shift_sigma * b.sigma * (1.0 - b.phi) / b.innovation_sigma
+        return EventTrial(sign, max(d, 0.05), s.confirm_p_value, s.confirm_max_samples, s.confirm_min_samples)
 
     def _fit(self, b: Baseline) -> StepFit:
         """Fit the step over the event's window, reusing the fitter's running sums."""

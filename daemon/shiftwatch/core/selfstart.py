@@ -37,6 +37,12 @@ import math
 from typing import Any
 
 
+#: While the autocorrelation cannot be told from none, the test's inputs allow for
+#: it at its estimate plus this many standard errors (0: at the estimate, so a new
+#: stream can alert early); the decision on an event allows for it at two.
+PHI_MARGIN = 0.0
+
+
 def t_to_normal(t: float, df: float) -> float:
     """The standard normal quantile with the same tail probability as Student-t ``t`` on ``df``.
 
@@ -132,11 +138,12 @@ class SelfStart:
             # Autocorrelated samples carry less information about the spread:
             # count the degrees of freedom at their effective number.
             df = max(2.0, df * (1.0 - abs(phi)) / (1.0 + abs(phi)))
-        elif raw > 0.0:
+        else:
             # Too few samples to tell positive autocorrelation from none: allow for
-            # it by its long-run variance factor (1 + phi) / (1 - phi), so runs of
-            # autocorrelated samples do not read as a step.
-            s *= math.sqrt((1.0 + raw) / (1.0 - raw))
+            # it by its long-run variance factor (1 + phi) / (1 - phi) at the estimate
+            # plus PHI_MARGIN standard errors (1 / sqrt(n)), so runs of autocorrelated
+            # samples do not read as a step.
+            s *= math.sqrt(self.variance_factor(PHI_MARGIN))
         return t_to_normal(r / (s * math.sqrt(1.0 + 1.0 / n)), df)
 
     def phi_estimate(self) -> float:
@@ -147,6 +154,16 @@ class SelfStart:
         n = self.n + self.pool_n
         phi = self._phi_raw()
         return phi if n >= 20 and abs(phi) >= 2.0 / math.sqrt(n) else 0.0
+
+    def variance_factor(self, margin: float) -> float:
+        """(1 + phi) / (1 - phi) for positive autocorrelation that cannot yet be told
+        from none, phi taken at the estimate plus ``margin`` standard errors (1 when
+        the estimate is significant: then the samples are prewhitened instead)."""
+        if self.phi_estimate() != 0.0:
+            return 1.0
+        n = self.n + self.pool_n
+        up = min(0.95, max(self._phi_raw(), 0.0) + (margin / math.sqrt(n) if n > 0 else 0.0))
+        return (1.0 + up) / (1.0 - up) if up > 0.0 else 1.0
 
     def _c1(self) -> float:
         """Sum over this regime's consecutive pairs of (x_t - mean)(x_(t-1) - mean)."""
