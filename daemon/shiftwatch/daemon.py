@@ -343,8 +343,10 @@ class Daemon:
             eng = StreamEngine(name, spec.detection, unit=spec.unit)
             try:
                 eng.set_state(state)
-            except ValueError as exc:
-                self.log.warning("snapshot of stream %s not used (%s); it warms up again", name, exc)
+            except Exception as exc:  # whatever is wrong with one entry costs that stream only
+                self.metrics.states_set_aside.inc()
+                self.log.warning("saved state of stream %s set aside (%s); it warms up again, the "
+                                 "other streams are restored", _printable(name), _one_line(exc))
                 continue
             self.engines[name] = eng
             self._filters[name] = spec.topic
@@ -571,6 +573,11 @@ class Daemon:
                     self._decode_problems(m.topic, dec.problems, now)
                 arrived = m.arrived
                 for r in dec.readings:
+                    if r.time is None and spec.time is not None:
+                        # Set aside (no_time, counted with the problems above): placed at its
+                        # arrival it would stand after every sample of a backlog stamped
+                        # earlier, and those would all be rejected as out_of_order.
+                        continue
                     name = topic_stream if r.name is None else stream_name(m.topic, r.name)
                     g = groups.get(name)
                     if g is None:
@@ -650,10 +657,6 @@ class Daemon:
 
     def _decode_problems(self, topic: str, problems: list[DecodeProblem], now: float) -> None:
         for p in problems:
-            if p.reason == "no_time":  # the reading is used, with its arrival time
-                self.rlog.warning("decode:no_time", lambda p=p: f"message on {_printable(topic)}: {p.message}",
-                                  now)
-                continue
             self._count_drop(p.reason)
             self.rlog.warning(f"decode:{p.reason}", lambda p=p: f"message on {_printable(topic)} "
                               f"set aside ({p.reason}): {p.message}", now)
@@ -756,6 +759,14 @@ class Daemon:
                     else format_time(eng.last_shift_at)}
             self._publish(f"{self.prefix}/levels/{name}", json.dumps(body).encode(), qos=1, retain=True,
                           level=True)
+
+    def _clear_levels(self, name: str) -> None:
+        """A removed stream: its retained levels message is cleared on the broker (an
+        empty retained message deletes it), so no subscriber sees a stream that is gone."""
+        self._levels_due.pop(name, None)
+        self._levels_sent.pop(name, None)
+        if self.link is not None:  # also for a level published before a restart
+            self._publish(f"{self.prefix}/levels/{name}", b"", qos=1, retain=True)
 
     def _publish(self, topic: str, payload: bytes, *, qos: int, retain: bool, key: str | None = None,
                  level: bool = False) -> None:
@@ -870,6 +881,16 @@ class Daemon:
         except ConfigError as exc:
             self.log.error("reload refused, keeping the running configuration: %s", exc)
             return
+        except Exception as exc:  # a defect in reading must never cost the running daemon
+            self.log.error("reload refused, keeping the running configuration: %s: cannot be read "
+                           "(%s: %s)", self.config_path, type(exc).__name__, exc)
+            return
+        if not new.streams:
+            # An empty (or emptied) file would drop every stream and its state at once:
+            # much more likely a file caught half-written than a wish.
+            self.log.error("reload refused, keeping the running configuration: %s has no stream "
+                           "entries (to stop watching every stream, stop the daemon)", self.config_path)
+            return
         old_filters = {s.topic for s in self.cfg.streams}
         new_filters = {s.topic for s in new.streams}
         kept = dropped = renewed = 0
@@ -881,6 +902,7 @@ class Daemon:
                 del self.engines[name]
                 self._filters.pop(name, None)
                 self.metrics.remove_stream(name)
+                self._clear_levels(name)
                 dropped += 1
                 continue
             if old_spec is None or spec.detection != old_spec.detection or spec.unit != old_spec.unit:
@@ -930,6 +952,12 @@ def _malloc_trim() -> Any:
         return ctypes.CDLL("libc.so.6").malloc_trim
     except (OSError, AttributeError):
         return None
+
+
+def _one_line(exc: BaseException, limit: int = 300) -> str:
+    """An exception as a short log phrase (its type when it has no message)."""
+    text = " ".join(str(exc).split()) or type(exc).__name__
+    return text if len(text) <= limit else text[:limit - 3] + "..."
 
 
 def _printable(text: str, limit: int = 120) -> str:

@@ -45,10 +45,12 @@ Behaviour decisions
   number, is ``bad_time`` and the item is dropped, because a reading that
   cannot be placed in time cannot be placed in a series.
 - A configured ``time_path`` that is absent from an item, or holds
-  ``null``, gives the problem ``no_time`` but the reading is kept with
-  ``time=None`` (the caller uses the arrival time, as when no time path is
-  configured): the value itself is sound, and the counter tells the operator
-  that the producer does not send what the configuration expects.
+  ``null``, gives the problem ``no_time``; the reading is returned with
+  ``time=None`` and the problem, and the daemon sets it aside: placed at its
+  arrival time among readings placed by their own times, it would stand
+  after every reading of a broker backlog stamped earlier, and those would
+  then all be rejected as ``out_of_order`` (one such message cost 151 of 446
+  good samples after a 30 s outage).
 - Key paths: the whole path is first tried as one key (so keys containing
   dots still work), then it is split on dots and walked through nested
   objects.  Lists are not indexed.
@@ -143,7 +145,7 @@ REASONS: dict[str, str] = {
     "value_is_text": "The value is a number written as text in quotes; only plain JSON numbers are accepted.",
     "nan": "The value is NaN (not a number).",
     "infinite": "The value is infinite or too large to represent.",
-    "no_time": "The item has no time at the configured time path; the arrival time was used instead.",
+    "no_time": "The item has no time at the configured time path; the daemon sets it aside.",
     "bad_time": ("The time is not epoch seconds, epoch milliseconds or an RFC 3339 time, "
                  "or is not finite; the item was dropped."),
     "senml_invalid": ("A SenML record breaks RFC 8428 (a bad name, a bad base field, "
@@ -448,7 +450,7 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
     >>> decode(b'{"value": 1}', "json", time_path="ts", now=0.0)
     ... # doctest: +NORMALIZE_WHITESPACE
     Decoded(readings=[Reading(name=None, time=None, value=1.0, unit=None)],
-            problems=[DecodeProblem(reason='no_time', message="message: no time at 'ts'; arrival time used")])
+            problems=[DecodeProblem(reason='no_time', message="message: no time at 'ts'")])
     """
     if not isinstance(payload, (bytes, bytearray)):
         raise TypeError(f"payload must be bytes, got {type(payload).__name__}")
@@ -652,7 +654,7 @@ def _json_item(item: Any, where: str, in_batch: bool, value_path: str, value_par
         time: float | None = None
         if time_path is not None:
             if raw_time is _MISSING or raw_time is None:
-                note = DecodeProblem("no_time", f"{where}: no time at {time_path!r}; arrival time used")
+                note = DecodeProblem("no_time", f"{where}: no time at {time_path!r}")
                 readings.append(Reading(None, None, value, None))
                 problems.append(note)
                 return

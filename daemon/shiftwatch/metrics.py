@@ -407,6 +407,7 @@ class Metrics:
     snapshots : state snapshots written.
     outbox_failures : alert records or outbox updates that could not be written to disk.
     journal_failures : rounds of samples that could not be appended to the journal.
+    states_set_aside : saved stream states that could not be used at start.
     """
 
     def __init__(self, registry: CollectorRegistry | None = None) -> None:
@@ -450,6 +451,10 @@ class Metrics:
             "shiftwatch_journal_failures",
             "Rounds of samples that could not be journaled (journaling resumes with the next "
             "snapshot).", registry=reg)
+        self.states_set_aside = Counter(
+            "shiftwatch_stream_states_set_aside",
+            "Saved stream states that could not be used at start (malformed or damaged); "
+            "those streams warmed up again.", registry=reg)
         for family in _FAMILIES:
             reg.register(_StreamCollector(self, family))
 
