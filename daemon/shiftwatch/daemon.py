@@ -15,6 +15,8 @@ import functools
 import gc
 import json
 import logging
+import math
+import os
 import secrets
 import signal
 import sys
@@ -34,6 +36,7 @@ from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
 from shiftwatch.core.timefmt import format_duration, format_time
 from shiftwatch.decode import REASONS as DECODE_REASONS
 from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, stream_name
+from shiftwatch.fsutil import explain_os_error
 from shiftwatch.journal import Journal, JournalGroup
 from shiftwatch.metrics import Metrics, MetricsServer, StreamStats
 from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
@@ -74,6 +77,9 @@ SPEC_CACHE_MIN = 1000
 #: streams fed batches left 13,000 updates in paho's memory, and their objects,
 #: made among the engines' own, fragmented the heap for good (about 20 MB).
 LEVELS_IN_FLIGHT = 50
+#: At most this many "new stream" lines per NEW_STREAM_EVERY seconds; the rest are summed up.
+NEW_STREAM_LINES = 10
+NEW_STREAM_EVERY = 10.0
 
 
 class RateLimitedLog:
@@ -275,6 +281,10 @@ class Daemon:
         # DRAIN while a backlog larger than that waits (see round()).
         self._round_max = DRAIN if cfg.broker.mqtt_version != "5" else min(DRAIN, cfg.broker.receive_maximum)
         self._trim_pending = False
+        # The window of "new stream" lines (see _new_stream_line).
+        self._new_since = -math.inf
+        self._new_lines = self._new_held = 0
+        self._new_last = ""
 
     # ------------------------------------------------------------ topics
     @property
@@ -329,7 +339,7 @@ class Daemon:
             streams, meta = self.store.load()
         except OSError as exc:
             self.log.error("state snapshot in %s cannot be read (%s); streams warm up again",
-                           self.store.directory, exc.strerror or exc)
+                           self.store.directory, explain_os_error(exc, self.store.directory))
             streams, meta = {}, {}
         restored = 0
         filters = meta.get("filters")
@@ -473,6 +483,8 @@ class Daemon:
             limit = DRAIN
         msgs = self.inbox.take(limit, ROUND_BYTES, timeout, gather=gather)
         self._busy = len(msgs) >= BUSY_ROUND
+        if self._new_held:
+            self._flush_new_streams(time.monotonic())
         if not msgs:
             self.send_due_levels()
             self._gauges()
@@ -668,9 +680,32 @@ class Daemon:
                 return None
             eng = self.engines[name] = StreamEngine(name, spec.detection, unit=unit)
             self._filters[name] = spec.topic
-            self.log.info("new stream %s (warming up on %d samples)", _printable(name),
-                          spec.detection.warmup_samples)
+            self._new_stream_line(name, spec.detection.warmup_samples)
         return eng
+
+    def _new_stream_line(self, name: str, warmup: int) -> None:
+        """One "new stream" line each, up to NEW_STREAM_LINES per NEW_STREAM_EVERY seconds;
+        past that they are counted and summed up in one line (a SenML pack of 10,000
+        names gave 10,000 lines)."""
+        now = time.monotonic()
+        self._flush_new_streams(now)
+        if self._new_lines < NEW_STREAM_LINES:
+            self._new_lines += 1
+            self.log.info("new stream %s (warming up on %d samples)", _printable(name), warmup)
+        else:
+            self._new_held += 1
+            self._new_last = name
+
+    def _flush_new_streams(self, now: float) -> None:
+        """Close the window of new-stream lines when it is over, with the line that sums up
+        the streams it held back."""
+        if now - self._new_since < NEW_STREAM_EVERY:
+            return
+        if self._new_held:
+            self.log.info("%d more new stream(s) in the last %.0f s, not listed one by one (the last: "
+                          "%s); each warms up on its own samples; shiftwatch_streams counts them",
+                          self._new_held, NEW_STREAM_EVERY, _printable(self._new_last))
+        self._new_since, self._new_lines, self._new_held = now, 0, 0
 
     def _run_stream(self, name: str, spec: StreamConfig, unit: str | None, times_list: list[float],
                     values_list: list[float], arrivals_list: list[float], now: float) -> JournalGroup | None:
@@ -831,7 +866,7 @@ class Daemon:
     def _outbox_failed(self, exc: OSError, now: float) -> None:
         self.metrics.outbox_failures.inc()
         self.rlog.warning("outbox", f"alert outbox in {self.outbox.directory} could not be written "
-                          f"({exc.strerror or exc}); records are still published, but one not yet "
+                          f"({explain_os_error(exc, self.outbox.directory)}); records are still published, but one not yet "
                           f"acknowledged by the broker would not survive a restart", now)
 
     def _journal_failed(self, exc: OSError) -> None:
@@ -840,7 +875,7 @@ class Daemon:
             self.journal.close()
         self.log.error("sample journal in %s could not be written (%s); until the next good snapshot "
                        "a crash loses the samples processed since the last one", self.store.directory,
-                       exc.strerror or exc)
+                       explain_os_error(exc, self.store.directory))
 
     def _count_handover_drop(self, reason: str) -> None:
         """A message paho's thread could not hand over: it was received all the same."""
@@ -860,7 +895,7 @@ class Daemon:
             # The journal still belongs to the previous snapshot: it keeps growing.
             self.metrics.snapshot_failures.inc()
             self.log.error("snapshot to %s failed: %s; detection carries on", self.cfg.state.dir,
-                           exc.strerror or exc)
+                           explain_os_error(exc, self.store.directory))
             return False
         self.metrics.snapshots.inc()
         if self.journal is not None:

@@ -148,6 +148,8 @@ REASONS: dict[str, str] = {
     "no_time": "The item has no time at the configured time path; the daemon sets it aside.",
     "bad_time": ("The time is not epoch seconds, epoch milliseconds or an RFC 3339 time, "
                  "or is not finite; the item was dropped."),
+    "duplicate_key": ("The value or time key (in SenML any field) appears twice in one object; "
+                      "which reading is meant cannot be told, so the item was dropped."),
     "senml_invalid": ("A SenML record breaks RFC 8428 (a bad name, a bad base field, "
                       "a missing value or a wrong type); the record was dropped."),
 }
@@ -359,6 +361,52 @@ def _split_path(path: str | None, what: str) -> tuple[str, ...] | None:
     return tuple(path.split("."))
 
 
+class _Repeated(dict):  # type: ignore[type-arg]
+    """A JSON object in which some keys appeared more than once (``repeated``); it holds
+    the last value of each, as ``json`` does."""
+
+    __slots__ = ("repeated",)
+
+
+def _pairs(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+    d = dict(pairs)
+    if len(d) == len(pairs):
+        return d
+    out = _Repeated(d)
+    seen: set[str] = set()
+    out.repeated = {k for k, _ in pairs if k in seen or seen.add(k)}  # type: ignore[func-returns-value]
+    return out
+
+
+def _repeats(obj: dict[str, Any], path: str, parts: tuple[str, ...]) -> bool:
+    """True when the key at ``path`` (whole, or walked by its parts) appears twice in its object."""
+    if type(obj) is _Repeated and path in obj.repeated:
+        return True
+    if path in obj:
+        return False
+    cur: Any = obj
+    for part in parts:
+        if not isinstance(cur, dict):
+            return False
+        if type(cur) is _Repeated and part in cur.repeated:
+            return True
+        cur = cur.get(part)
+    return False
+
+
+def _may_repeat(payload: bytes, keys: tuple[bytes, ...]) -> bool:
+    """Cheap test before the parse: can a watched key appear twice?  A key spelled with
+    escapes is caught by the backslash."""
+    return b"\\" in payload or any(payload.count(k) > 1 for k in keys)
+
+
+@functools.lru_cache(maxsize=256)
+def _watched(value_parts: tuple[str, ...], time_parts: tuple[str, ...] | None) -> tuple[bytes, ...]:
+    """The watched keys as they appear, quoted, in a payload (for :func:`_may_repeat`)."""
+    names = {*value_parts, *(time_parts or ())}
+    return tuple(json.dumps(n).encode() for n in sorted(names))
+
+
 def _lookup(obj: dict[str, Any], path: str, parts: tuple[str, ...]) -> Any:
     if path in obj:
         return obj[path]
@@ -398,7 +446,10 @@ _JSON = json.JSONDecoder(parse_constant=_Constant, parse_int=_parse_int)
 #: The same without the Python call per integer, for joined payloads that hold
 #: no digit run long enough for _parse_int to matter (_LONG_DIGITS finds one).
 _JSON_PLAIN_INTS = json.JSONDecoder(parse_constant=_Constant)
-_LONG_DIGITS = re.compile(rb"[0-9]{%d}" % _BIG_INT_DIGITS)  # with a sign, 400 digits are 401 characters
+_LONG_DIGITS = re.compile(rb"[0-9]{%d}" % _BIG_INT_DIGITS)
+#: The same, noting keys that appear twice in an object (see _Repeated): used for SenML,
+#: and for a JSON payload in which a watched key may appear twice (see _may_repeat).
+_JSON_PAIRS = json.JSONDecoder(parse_constant=_Constant, parse_int=_parse_int, object_pairs_hook=_pairs)  # with a sign, 400 digits are 401 characters
 
 
 def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", time_path: str | None = None,
@@ -484,8 +535,9 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
     if _too_deep(text, max_depth):
         problems.append(DecodeProblem("too_deep", f"lists/objects nest deeper than {max_depth} levels"))
         return out
+    watch_pairs = fmt == "senml" or _may_repeat(bytes(payload), _watched(value_parts, time_parts))
     try:
-        doc = _JSON.decode(text)
+        doc = (_JSON_PAIRS if watch_pairs else _JSON).decode(text)
     except RecursionError:
         problems.append(DecodeProblem("too_deep", "lists/objects nest too deep to parse"))
         return out
@@ -562,7 +614,10 @@ def decode_many(payloads: Sequence[bytes | bytearray], fmt: str, *, value_path: 
     """
     if len(payloads) != len(now):
         raise ValueError(f"{len(payloads)} payloads but {len(now)} arrival times")
-    doc = _joined_objects(payloads, max_bytes) if fmt == "json" and len(payloads) > 1 else None
+    doc = None
+    if fmt == "json" and len(payloads) > 1:
+        value_parts, time_parts = _checked_options(fmt, value_path, time_path, max_bytes, max_items, max_depth)
+        doc = _joined_objects(payloads, max_bytes, _watched(value_parts, time_parts))
     if doc is None:
         return [decode(p, fmt, value_path=value_path, time_path=time_path, max_bytes=max_bytes, now=t,
                        max_items=max_items, max_depth=max_depth) for p, t in zip(payloads, now)]
@@ -597,11 +652,13 @@ def decode_many(payloads: Sequence[bytes | bytearray], fmt: str, *, value_path: 
 _BIG_INT = 2 ** 1000
 
 
-def _joined_objects(payloads: Sequence[bytes | bytearray], max_bytes: int) -> list[Any] | None:
-    """The payloads parsed as one JSON array when each is a flat object; None otherwise."""
+def _joined_objects(payloads: Sequence[bytes | bytearray], max_bytes: int,
+                    keys: tuple[bytes, ...] = ()) -> list[Any] | None:
+    """The payloads parsed as one JSON array when each is a flat object in which no watched
+    key may appear twice (``keys``, see :func:`_may_repeat`); None otherwise."""
     for p in payloads:
         if (type(p) is not bytes or not p or p[0] != 0x7B or p[-1] != 0x7D or len(p) > max_bytes
-                or b"[" in p):
+                or b"[" in p or _may_repeat(p, keys)):
             return None
     joined = b",".join(payloads)
     if joined.count(b"{") != len(payloads):
@@ -641,6 +698,10 @@ def _json_item(item: Any, where: str, in_batch: bool, value_path: str, value_par
                readings: list[Reading], problems: list[DecodeProblem]) -> None:
     try:
         if isinstance(item, dict):
+            for path, parts in ((value_path, value_parts), (time_path, time_parts)):
+                if path is not None and parts is not None and _repeats(item, path, parts):
+                    raise _Reject("duplicate_key", f"{where}: the key {path!r} appears twice; "
+                                  "which reading is meant cannot be told")
             raw = _lookup(item, value_path, value_parts)
             if raw is _MISSING:
                 raise _Reject("no_value", f"{where}: no value at {value_path!r}")
@@ -742,6 +803,9 @@ def _senml(records: list[Any], now: float, readings: list[Reading], problems: li
         try:
             if not isinstance(rec, dict):
                 raise _Reject("senml_invalid", f"{where} is {_show(rec)}, not an object")
+            if type(rec) is _Repeated:
+                raise _Reject("duplicate_key", f"{where}: the field(s) "
+                              f"{', '.join(sorted(map(repr, rec.repeated)))} appear twice")
             _senml_base(rec, base, where)
             reading = _senml_record(rec, base, now, where)
             if reading is not None:

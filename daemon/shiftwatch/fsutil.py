@@ -15,6 +15,18 @@ def fsync_dir(directory: Path) -> None:
         os.close(fd)
 
 
+def explain_os_error(exc: OSError, directory: Path) -> str:
+    """What went wrong with a file in ``directory``, in an operator's words.
+
+    A directory (or its parent) that is a file gives EEXIST or ENOTDIR, which
+    name no culprit; that case names the file in the way.
+    """
+    for d in (directory, *list(directory.parents)[:1]):
+        if os.path.lexists(d) and not os.path.isdir(d):
+            return f"{d} is a file, not a directory; move it away"
+    return str(exc.strerror or exc)
+
+
 #: The file in ``state.dir`` that one running daemon holds locked.
 LOCK_NAME = "lock"
 
