@@ -803,10 +803,10 @@ def _senml(records: list[Any], now: float, readings: list[Reading], problems: li
         try:
             if not isinstance(rec, dict):
                 raise _Reject("senml_invalid", f"{where} is {_show(rec)}, not an object")
+            _senml_base(rec, base, where)  # its base fields still apply to the records after it
             if type(rec) is _Repeated:
                 raise _Reject("duplicate_key", f"{where}: the field(s) "
                               f"{', '.join(sorted(map(repr, rec.repeated)))} appear twice")
-            _senml_base(rec, base, where)
             reading = _senml_record(rec, base, now, where)
             if reading is not None:
                 readings.append(reading)
