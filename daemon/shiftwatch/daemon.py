@@ -378,6 +378,8 @@ class Daemon:
         except OSError as exc:
             self._journal_failed(exc)
             return
+        if self.journal.lost is not None:  # logged by the journal, with what it held
+            self.metrics.journal_damaged.inc()
         samples = 0
         for groups in rounds:
             for g in groups:
@@ -453,11 +455,15 @@ class Daemon:
         wd = watchdog_interval(self.env)
         next_wd = time.monotonic()
         next_snap = time.monotonic() + self.cfg.state.snapshot_every
+        next_check = time.monotonic() + 1.0
         while not self._stop.is_set():
             self.round(timeout=0.2)
             if self.journal is not None:
                 self.journal.sync_if_due()
             now = time.monotonic()
+            if now >= next_check:
+                self.check_journal()
+                next_check = now + 1.0
             if wd is not None and now >= next_wd:
                 sd_notify("WATCHDOG=1", env=self.env)
                 next_wd = now + wd / 2
@@ -904,6 +910,23 @@ class Daemon:
             except OSError as exc:
                 self._journal_failed(exc)
         return True
+
+    def check_journal(self) -> None:
+        """Notice a journal deleted, replaced or damaged behind the daemon's back (see
+        Journal.check): log it, count it, and start a fresh one through a snapshot, which
+        holds everything the lost journal did."""
+        if self.journal is None or not self.journal.is_open:
+            return
+        problem = self.journal.check()
+        if problem is None:
+            return
+        self.metrics.journal_damaged.inc()
+        self.log.error("sample journal %s %s: a crash now would lose the samples since the last "
+                       "snapshot; taking a snapshot, which starts a fresh journal", self.journal.path,
+                       problem)
+        if not self.snapshot():
+            self.journal.close()  # appending to a file that is gone helps nobody
+            self.log.error("no fresh journal until a snapshot succeeds")
 
     # ------------------------------------------------------------ reload
     def reload(self) -> None:

@@ -150,6 +150,13 @@ class Journal:
         self._dirty = False
         self.background = background
         self._bg: threading.Thread | None = None
+        # The header record this journal was opened or started with, and the file's
+        # identity, which check() compares with what is on disk.
+        self._head = b""
+        self._ident: tuple[int, int] | None = None
+        #: What was wrong with the journal found by the last open() (None: nothing); the
+        #: samples it held since the snapshot could not be replayed.
+        self.lost: str | None = None
 
     # ------------------------------------------------------------ opening
     def open(self, token: str) -> list[list[JournalGroup]]:
@@ -168,6 +175,7 @@ class Journal:
             If the journal cannot be read or a new one cannot be written.
         """
         self.close()
+        self.lost = None
         try:
             data = self.path.read_bytes()
         except FileNotFoundError:
@@ -176,12 +184,21 @@ class Journal:
         if header_token != token:
             if header_token is not None:
                 self._log.info("journal %s belongs to another snapshot; discarded", self.path)
+            elif data:
+                # Not a journal of another snapshot: one whose header cannot be read (a
+                # flipped bit, another file).  What it held is lost; say so, keep it aside.
+                self.lost = (f"journal {self.path} has an unreadable header ({problem or 'unknown'}); "
+                             f"the {len(data)} bytes of samples it held since the last snapshot "
+                             f"cannot be replayed")
+                aside = self._set_aside()
+                self._log.error("%s%s; a fresh journal is started", self.lost,
+                                f", it was moved to {aside}" if aside else "")
             self.restart(token)
             return []
         if problem is not None:
             self._log.warning("journal %s: %s after %d round(s); the rest (%d bytes) is discarded",
                               self.path, problem, len(rounds), len(data) - good)
-        fd = os.open(self.path, os.O_WRONLY)
+        fd = os.open(self.path, os.O_RDWR)
         try:
             os.ftruncate(fd, good)
             os.lseek(fd, good, os.SEEK_SET)
@@ -189,7 +206,42 @@ class Journal:
             os.close(fd)
             raise
         self._fd, self._size = fd, good
+        self._head = data[:_HEAD.size + _HEAD.unpack_from(data, 0)[1]]
+        st = os.fstat(fd)
+        self._ident = (st.st_dev, st.st_ino)
         return rounds
+
+    def _set_aside(self) -> str | None:
+        n = 1
+        while (aside := self.path.with_name(f"{JOURNAL_NAME}.damaged-{n}")).exists():
+            n += 1
+        try:
+            os.replace(self.path, aside)
+        except OSError:
+            return None
+        return aside.name
+
+    def check(self) -> str | None:
+        """What has happened to the open journal behind its back, or None: deleted,
+        replaced by another file, or its header changed on disk.  Each would lose
+        every sample since the last snapshot at the next crash, silently; the
+        daemon calls this once a second and starts a fresh journal (through a
+        snapshot) when it says something."""
+        if self._fd is None or self._ident is None:
+            return None
+        try:
+            if os.fstat(self._fd).st_nlink == 0:
+                return "was deleted"
+            st = os.stat(self.path)
+            if (st.st_dev, st.st_ino) != self._ident:
+                return "was replaced by another file"
+            if os.pread(self._fd, len(self._head), 0) != self._head:
+                return "has a damaged header"
+        except FileNotFoundError:
+            return "was deleted"
+        except OSError as exc:
+            return f"cannot be checked ({exc.strerror or exc})"
+        return None
 
     @staticmethod
     def _parse(data: bytes) -> tuple[list[list[JournalGroup]], int, str | None, str | None]:
@@ -230,7 +282,7 @@ class Journal:
         self.directory.mkdir(parents=True, exist_ok=True)
         tmp = self.path.with_name(f".{JOURNAL_NAME}.tmp")
         head = _record(json.dumps({"format": _FORMAT, "version": _VERSION, "token": token}).encode())
-        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+        fd = os.open(tmp, os.O_RDWR | os.O_CREAT | os.O_TRUNC, 0o600)
         try:
             os.write(fd, head)
             os.fsync(fd)
@@ -247,6 +299,9 @@ class Journal:
                 pass
             raise
         self._fd, self._size = fd, len(head)
+        self._head = head
+        st = os.fstat(fd)
+        self._ident = (st.st_dev, st.st_ino)
 
     # ------------------------------------------------------------ writing
     @property

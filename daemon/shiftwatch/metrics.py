@@ -408,6 +408,7 @@ class Metrics:
     outbox_failures : alert records or outbox updates that could not be written to disk.
     journal_failures : rounds of samples that could not be appended to the journal.
     states_set_aside : saved stream states that could not be used at start.
+    journal_damaged : sample journals found deleted, replaced or damaged.
     """
 
     def __init__(self, registry: CollectorRegistry | None = None) -> None:
@@ -451,6 +452,11 @@ class Metrics:
             "shiftwatch_journal_failures",
             "Rounds of samples that could not be journaled (journaling resumes with the next "
             "snapshot).", registry=reg)
+        self.journal_damaged = Counter(
+            "shiftwatch_journal_damaged",
+            "Sample journals found deleted, replaced or with a damaged header, at start or while "
+            "running; the samples since the last snapshot that only they held are lost at start, "
+            "kept by an immediate snapshot while running.", registry=reg)
         self.states_set_aside = Counter(
             "shiftwatch_stream_states_set_aside",
             "Saved stream states that could not be used at start (malformed or damaged); "
