@@ -194,12 +194,21 @@ class _SyncThenAck:
                 self._purge_queued = True
                 self._queue((False, None))
 
+    def start(self) -> None:
+        """Start the thread, once, at start-up: a thread started on the way of a round
+        could fail under a task limit and take the daemon down with it.  Until then
+        (a Daemon used without start()) jobs are done in the caller's thread."""
+        if self._thread is None:
+            t = threading.Thread(target=self._run, name="shiftwatch-outbox-sync", daemon=True)
+            t.start()
+            self._thread = t
+
     def _queue(self, job: tuple[bool, list[Message] | None]) -> None:
         self._jobs.append(job)
         self._open += 1
         if self._thread is None:
-            self._thread = threading.Thread(target=self._run, name="shiftwatch-outbox-sync", daemon=True)
-            self._thread.start()
+            self._run_one()
+            return
         self._cv.notify_all()
 
     def wait_idle(self, timeout: float) -> bool:
@@ -211,22 +220,27 @@ class _SyncThenAck:
         while True:
             with self._cv:
                 self._cv.wait_for(lambda: bool(self._jobs))
-                sync, msgs = self._jobs.popleft()
-                if msgs is None:
-                    self._purge_queued = False
-            try:
-                if msgs is None:
-                    if self._purge is not None:
-                        self._purge()
-                else:
-                    if sync:
-                        self._sync()
-                    self._ack(msgs)
-            except Exception:  # this thread must never die
-                self._log.exception("error while writing the outbox or acknowledging messages")
-            with self._cv:
-                self._open -= 1
-                self._cv.notify_all()
+            self._run_one()
+
+    def _run_one(self) -> None:
+        """Do the oldest job (the caller holds no lock)."""
+        with self._cv:
+            sync, msgs = self._jobs.popleft()
+            if msgs is None:
+                self._purge_queued = False
+        try:
+            if msgs is None:
+                if self._purge is not None:
+                    self._purge()
+            else:
+                if sync:
+                    self._sync()
+                self._ack(msgs)
+        except Exception:  # the thread must never die
+            self._log.exception("error while writing the outbox or acknowledging messages")
+        with self._cv:
+            self._open -= 1
+            self._cv.notify_all()
 
 
 class Daemon:
@@ -398,7 +412,14 @@ class Daemon:
             self.log.info("replayed %d sample(s) in %d round(s) from the journal", samples, len(rounds))
 
     def start(self) -> None:
-        """Everything up to the point where messages flow: state, metrics, broker, outbox."""
+        """Everything up to the point where messages flow: state, metrics, broker, outbox.
+
+        Every thread the daemon needs is started here, where a failure (under a task
+        limit, say) stops the start with one clear line; none is started later.
+        """
+        self._acker.start()
+        if self.journal is not None:
+            self.journal.start_background()
         self.restore()
         settle_heap()
         mtls = self.cfg.metrics.tls
@@ -451,6 +472,9 @@ class Daemon:
             return 2
         except OSError as exc:
             self.log.error("cannot start: %s", exc)
+            return 2
+        except RuntimeError as exc:  # "can't start new thread": a task limit too tight
+            self.log.error("cannot start: %s (is the service's task limit, TasksMax=, too low?)", exc)
             return 2
         wd = watchdog_interval(self.env)
         next_wd = time.monotonic()
@@ -545,6 +569,7 @@ class Daemon:
         self.snapshot()
         if self.journal is not None:
             self.journal.close()
+            self.journal.stop_background()
         deadline = time.monotonic() + 5.0
         while ((len(self.outbox) or self._levels_due) and self.link is not None and self.link.connected
                and time.monotonic() < deadline):

@@ -149,7 +149,12 @@ class Journal:
         self._last_sync = 0.0
         self._dirty = False
         self.background = background
-        self._bg: threading.Thread | None = None
+        # The background syncs' thread (start_background) and the one job it may hold:
+        # a duplicate of the journal's descriptor to force to disk.
+        self._syncer: threading.Thread | None = None
+        self._cv = threading.Condition()
+        self._job: int | None = None
+        self._stopping = False
         # The header record this journal was opened or started with, and the file's
         # identity, which check() compares with what is on disk.
         self._head = b""
@@ -338,18 +343,57 @@ class Journal:
             return
         now = time.monotonic()
         if now - self._last_sync >= self.sync_every:
-            if self.background:
+            if self.background and self._syncer is not None:
                 self._sync_in_background()
             else:
                 self.sync()
             self._last_sync = now
 
+    def start_background(self) -> None:
+        """Start the thread that does the background syncs (``background=True``).
+
+        Called once at start-up, where a failure stops the start with a clear
+        error: a thread started later, on the path of every round, could fail
+        under a task limit (``RuntimeError: can't start new thread``) and kill
+        the daemon.  Without it, syncs are done in the caller.
+        """
+        if self._syncer is None:
+            t = threading.Thread(target=self._sync_loop, name="shiftwatch-journal-sync", daemon=True)
+            t.start()
+            self._syncer = t
+
+    def stop_background(self) -> None:
+        """End the sync thread (after :meth:`close`)."""
+        with self._cv:
+            self._stopping = True
+            self._cv.notify_all()
+        if self._syncer is not None:
+            self._syncer.join()
+            self._syncer = None
+
+    def _sync_loop(self) -> None:
+        while True:
+            with self._cv:
+                self._cv.wait_for(lambda: self._job is not None or self._stopping)
+                if self._job is None:
+                    return
+                fd = self._job
+            try:
+                os.fdatasync(fd)
+            except OSError as exc:
+                self._log.warning("journal %s could not be forced to disk: %s", self.path, exc)
+            finally:
+                os.close(fd)
+                with self._cv:
+                    self._job = None
+                    self._cv.notify_all()
+
     def _sync_in_background(self) -> None:
-        """Force the journal to disk from another thread, through a duplicate of its
+        """Force the journal to disk in the sync thread, through a duplicate of its
         descriptor (so a journal closed meanwhile is never a problem): the disk can
         take tens of milliseconds, which the caller's next alert must not wait for.
         While one such sync runs, the next waits for the following due time."""
-        if self._fd is None or (self._bg is not None and self._bg.is_alive()):
+        if self._fd is None or self._job is not None:
             return
         try:
             fd = os.dup(self._fd)
@@ -357,17 +401,9 @@ class Journal:
             self._log.warning("journal %s could not be forced to disk: %s", self.path, exc)
             return
         self._dirty = False
-
-        def run() -> None:
-            try:
-                os.fdatasync(fd)
-            except OSError as exc:
-                self._log.warning("journal %s could not be forced to disk: %s", self.path, exc)
-            finally:
-                os.close(fd)
-
-        self._bg = threading.Thread(target=run, name="shiftwatch-journal-sync", daemon=True)
-        self._bg.start()
+        with self._cv:
+            self._job = fd
+            self._cv.notify_all()
 
     def sync(self) -> None:
         """Force what was appended to disk (errors are logged: the data is still in the page cache)."""
@@ -380,9 +416,8 @@ class Journal:
 
     def close(self) -> None:
         """Force what was appended to disk, then close."""
-        if self._bg is not None:
-            self._bg.join()
-            self._bg = None
+        with self._cv:  # a background sync of this journal finishes first
+            self._cv.wait_for(lambda: self._job is None)
         if self._fd is not None:
             self.sync()
             fd, self._fd = self._fd, None
