@@ -432,11 +432,12 @@ class _Endpoint:
         self.deadline = deadline
         self.max_connections = max_connections
         self.shed = 0  # connections closed or refused at the bound
-        self._conns: dict[asyncio.Task[None], _Connection] = {}
+        self._conns: dict[asyncio.Task[None], _Connection] = {}  # still reading or being answered
+        self._held = 0  # accepted sockets not yet closed (shed ones included until they are)
+        self._freed: asyncio.Event
         self._loop = asyncio.new_event_loop()
         self._loop.set_exception_handler(lambda loop, context: None)  # clients' faults are no events
         self._ready = threading.Event()
-        self._failed: BaseException | None = None
         self.renderer: _Renderer | None = None
         self.thread: threading.Thread | None = None
         try:
@@ -444,8 +445,6 @@ class _Endpoint:
             self.thread = threading.Thread(target=self._serve, name="metrics-http", daemon=True)
             self.thread.start()
             self._ready.wait()
-            if self._failed is not None:
-                raise self._failed
         except BaseException:
             self.close()
             raise
@@ -453,43 +452,50 @@ class _Endpoint:
     # ----------------------------------------------------------- the loop's thread
     def _serve(self) -> None:
         asyncio.set_event_loop(self._loop)
-        try:
-            server = self._loop.run_until_complete(
-                asyncio.start_server(self._connected, sock=self.sock, limit=_MAX_HEAD))
-        except BaseException as exc:
-            self._failed = exc
-            self._ready.set()
-            return
+        self._freed = asyncio.Event()
+        accepting = self._loop.create_task(self._accept())
         self._ready.set()
         try:
             self._loop.run_forever()
         finally:
-            server.close()
+            accepting.cancel()
             for task in list(self._conns):
                 task.cancel()
-            self._loop.run_until_complete(asyncio.gather(*self._conns, return_exceptions=True))
-            self._loop.run_until_complete(server.wait_closed())
+            self._loop.run_until_complete(
+                asyncio.gather(accepting, *self._conns, return_exceptions=True))
 
-    async def _connected(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
-        task = asyncio.current_task()
-        assert task is not None
-        try:
-            if len(self._conns) >= self.max_connections and not self._shed_one():
-                self.shed += 1
-                writer.write(_response(503, b"too many connections to the metrics endpoint\n"))
-                return
-            conn = self._conns[task] = _Connection(task)
-            async with asyncio.timeout(self.deadline):
-                if self.tls is not None:
-                    await writer.start_tls(self.tls)
-                head = await reader.readuntil(b"\r\n\r\n")
-                conn.reading = False
-                await self._answer(head, writer)
-        except (Exception, asyncio.CancelledError):
-            pass  # timed out, shed, hung up, a bad handshake or request: closed, nothing to tell
-        finally:
-            self._conns.pop(task, None)
-            writer.close()
+    async def _accept(self) -> None:
+        """Accept one connection at a time; past the bound, make room first.
+
+        The accepted socket is one over the bound for as long as it takes to
+        close the oldest connection still sending its request; when every
+        connection is being answered, the new one gets a 503 and is closed.
+        Nothing more is accepted meanwhile (the kernel's backlog holds them),
+        so the descriptors held never pass ``max_connections + 1``.
+        """
+        loop = self._loop
+        while True:
+            try:
+                conn, _ = await loop.sock_accept(self.sock)
+            except OSError:  # out of descriptors (another part of the process), or a reset
+                await asyncio.sleep(0.1)
+                continue
+            if self._held >= self.max_connections:
+                if not self._shed_one():
+                    self.shed += 1
+                    try:
+                        conn.setblocking(False)
+                        conn.send(_response(503, b"too many connections to the metrics endpoint\n"))
+                    except OSError:
+                        pass
+                    conn.close()
+                    continue
+                while self._held >= self.max_connections:
+                    self._freed.clear()
+                    await self._freed.wait()
+            self._held += 1
+            task = loop.create_task(self._handle(conn))
+            self._conns[task] = _Connection(task)
 
     def _shed_one(self) -> bool:
         """Close the oldest connection still sending its request; False when there is none."""
@@ -500,6 +506,46 @@ class _Endpoint:
         oldest.task.cancel()
         self.shed += 1
         return True
+
+    async def _handle(self, conn: socket.socket) -> None:
+        task = asyncio.current_task()
+        assert task is not None
+        writer: asyncio.StreamWriter | None = None
+        answered = False
+        try:
+            async with asyncio.timeout(self.deadline):
+                # The TLS handshake, when there is one, is part of the connection's deadline.
+                reader = asyncio.StreamReader(limit=_MAX_HEAD, loop=self._loop)
+                protocol = asyncio.StreamReaderProtocol(reader, loop=self._loop)
+                transport, _ = await self._loop.connect_accepted_socket(
+                    lambda: protocol, sock=conn, ssl=self.tls,
+                    ssl_handshake_timeout=self.deadline if self.tls is not None else None)
+                writer = asyncio.StreamWriter(transport, protocol, reader, self._loop)
+                head = await reader.readuntil(b"\r\n\r\n")
+                record = self._conns.get(task)
+                if record is not None:
+                    record.reading = False
+                await self._answer(head, writer)
+                answered = True
+        except (Exception, asyncio.CancelledError):
+            pass  # timed out, shed, hung up, a bad handshake or request: closed, nothing to tell
+        finally:
+            self._conns.pop(task, None)
+            try:
+                if writer is None:
+                    conn.close()
+                else:
+                    if answered:
+                        writer.close()
+                    else:
+                        writer.transport.abort()
+                    try:
+                        await asyncio.wait_for(writer.wait_closed(), 2.0)
+                    except (Exception, asyncio.CancelledError):
+                        writer.transport.abort()
+            finally:
+                self._held -= 1
+                self._freed.set()
 
     async def _answer(self, head: bytes, writer: asyncio.StreamWriter) -> None:
         lines = head.decode("latin-1").split("\r\n")
@@ -536,7 +582,7 @@ class _Endpoint:
 
     # ----------------------------------------------------------- from other threads
     def open_connections(self) -> int:
-        return len(self._conns)
+        return self._held
 
     def close(self) -> None:
         if self.thread is not None and self.thread.is_alive():
