@@ -445,6 +445,7 @@ class Daemon:
             on_connection=self._connection,
             logger=self.log,
             password=password,
+            on_takeover=self.metrics.client_id_conflicts.inc,
         )
         # Alert records left in the outbox by an earlier run go out first.
         pending = self.outbox.pending()

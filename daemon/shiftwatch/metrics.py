@@ -677,6 +677,7 @@ class Metrics:
     journal_failures : rounds of samples that could not be appended to the journal.
     states_set_aside : saved stream states that could not be used at start.
     journal_damaged : sample journals found deleted, replaced or damaged.
+    client_id_conflicts : takeovers of the MQTT session by another client with our client id.
     """
 
     def __init__(self, registry: CollectorRegistry | None = None) -> None:
@@ -725,6 +726,11 @@ class Metrics:
             "Sample journals found deleted, replaced or with a damaged header, at start or while "
             "running; the samples since the last snapshot that only they held are lost at start, "
             "kept by an immediate snapshot while running.", registry=reg)
+        self.client_id_conflicts = Counter(
+            "shiftwatch_client_id_conflicts",
+            "Times the broker closed the connection in a way that means another client connected "
+            "with the same client id and took the session over; each doubles the wait before "
+            "the next attempt.", registry=reg)
         self.states_set_aside = Counter(
             "shiftwatch_stream_states_set_aside",
             "Saved stream states that could not be used at start (malformed or damaged); "

@@ -308,3 +308,34 @@ def test_the_duplicate_key_decision_holds_in_the_daemon(daemon_factory, publishe
     assert "set aside (duplicate_key)" in d.log_text()
     assert d.stop() == 0
 
+
+
+# ------------------------------------------------------- 10: another client with our client id
+def test_a_client_that_takes_our_client_id_is_named_counted_and_backed_off_from(
+        daemon_factory, broker, publisher) -> None:
+    from shiftwatch.mqtt import PlainClient
+
+    d = daemon_factory(JSON_STREAM, client_id="sw-line2").start()
+    # Another program with the same client id that reconnects whenever it is thrown
+    # off, as a second daemon would: before the fix the daemon logged only
+    # "Unspecified error", and the two kicked each other off every second.
+    rival_msgs: list[str] = []
+    rival = PlainClient(broker.url, "sw-line2", subscribe=["oven/#"],
+                        on_message=lambda topic, payload: rival_msgs.append(topic))
+    rival.client.reconnect_delay_set(min_delay=1, max_delay=1)
+    rival.start()
+    try:
+        assert wait_until(lambda: "next attempt in 4 s" in d.log_text(), timeout=60), d.log_text()
+    finally:
+        rival.stop()
+    log = d.log_text()
+    assert "another client is most likely connecting with our client id 'sw-line2'" in log
+    # The wait grows with each takeover: 2 s, then 4 s.
+    assert log.index("next attempt in 2 s") < log.index("next attempt in 4 s")
+    assert "Unspecified error" not in log.split("next attempt in 2 s")[1]
+    assert wait_until(lambda: (metric(d.scrape(), "shiftwatch_client_id_conflicts_total") or 0) >= 2)
+    # Once the rival has gone the daemon gets its session back and carries on.
+    assert wait_until(lambda: metric(d.scrape(), "shiftwatch_broker_connected") == 1, timeout=60)
+    publish(publisher, "oven/z1/t", series(5, 14, time.time() - 60))
+    assert wait_until(lambda: metric(d.scrape(), "shiftwatch_samples_total", stream="oven/z1/t") == 5)
+    assert d.stop() == 0
