@@ -441,6 +441,8 @@ def cmd_run(args: argparse.Namespace) -> int:
     except OSError as exc:
         log.error("cannot start: state.dir %s cannot be used: %s", cfg.state.dir, exc.strerror or exc)
         return EXIT_USAGE
+    if lock.problem is not None:
+        log.warning("%s; not locked against a second daemon", lock.problem)
     from shiftwatch.daemon import Daemon
 
     try:

@@ -38,10 +38,13 @@ class StateDirInUse(RuntimeError):
 class StateDirLock:
     """An exclusive lock on a state directory, held for the life of one daemon.
 
-    ``flock`` on ``<dir>/lock``: the kernel releases it when the process ends
-    in any way (SIGKILL included), so a stale lock file never blocks a start.
-    The holder writes its pid, host and start time into the file, which is how
-    a second daemon names it in its refusal.
+    ``flock`` on the directory itself (which needs no write permission, so a
+    read-only state directory still runs, as the README promises): the kernel
+    releases it when the process ends in any way (SIGKILL included), so
+    nothing stale ever blocks a start.  The holder writes its pid, host and
+    start time into ``<dir>/lock`` where it can, which is how a second daemon
+    names it in its refusal.  A directory that cannot be made at all is not
+    locked (``problem`` says why): nothing can be written in it anyway.
 
     Examples
     --------
@@ -64,32 +67,42 @@ class StateDirLock:
 
         self.directory = Path(directory)
         self.path = self.directory / LOCK_NAME
-        self.directory.mkdir(parents=True, exist_ok=True, mode=0o700)
-        fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o600)
+        self.problem: str | None = None
+        self._fd: int | None = None
+        try:
+            self.directory.mkdir(parents=True, exist_ok=True, mode=0o700)
+        except OSError as exc:
+            self.problem = f"state.dir {directory} cannot be made ({explain_os_error(exc, self.directory)})"
+            return
+        fd = os.open(self.directory, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
+            os.close(fd)
             try:
-                holder = os.pread(fd, 512, 0).decode("utf-8", "replace").strip()
-            finally:
-                os.close(fd)
+                holder = self.path.read_bytes()[:512].decode("utf-8", "replace").strip()
+            except OSError:
+                holder = ""
             raise StateDirInUse(f"state directory {self.directory} is in use by another shiftwatch "
-                                f"({holder or 'holder unknown'}); two daemons must not share one "
+                                f"({holder or 'it did not say which'}); two daemons must not share one "
                                 "state.dir") from None
         except BaseException:
             os.close(fd)
             raise
+        self._fd = fd
         stamp = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
-        text = f"pid {os.getpid()} on host {socket.gethostname()}, started {stamp}\n".encode()
-        try:
-            os.ftruncate(fd, 0)
-            os.pwrite(fd, text, 0)
+        text = f"pid {os.getpid()} on host {socket.gethostname()}, started {stamp}\n"
+        try:  # only names the holder; the lock is on the directory
+            wfd = os.open(self.path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+            try:
+                os.write(wfd, text.encode())
+            finally:
+                os.close(wfd)
         except OSError:
-            pass  # the lock itself is what counts; the text only names the holder
-        self._fd: int | None = fd
+            pass
 
     def release(self) -> None:
-        """Give the lock up (the file stays; it is never read for anything but the name)."""
+        """Give the lock up."""
         if self._fd is not None:
             fd, self._fd = self._fd, None
             os.close(fd)

@@ -39,18 +39,23 @@ import struct
 import threading
 import time
 import zlib
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from pathlib import Path
-from typing import NamedTuple
+from typing import BinaryIO, NamedTuple
 
 from shiftwatch.fsutil import fsync_dir
 
 import numpy as np
 from numpy.typing import NDArray
 
-__all__ = ["JOURNAL_NAME", "Journal", "JournalGroup"]
+__all__ = ["JOURNAL_NAME", "MAX_BYTES", "Journal", "JournalGroup"]
 
 JOURNAL_NAME = "journal.bin"
+#: The journal never grows past this.  The daemon snapshots early once the journal
+#: is half this size (a snapshot starts a new one), so it reaches the bound only while
+#: snapshots fail; then journaling stops (counted) until one succeeds.  A start-up
+#: replays at most this much (see the README for the time that takes).
+MAX_BYTES = 64 << 20
 _MAGIC = b"SWJ1"
 _HEAD = struct.Struct("<4sII")
 _FORMAT = "shiftwatch-journal"
@@ -81,6 +86,22 @@ def _encode_round(groups: Iterable[JournalGroup]) -> bytes:
         arrays += [g.times, g.values, g.arrived]
     head = json.dumps(index, ensure_ascii=False).encode("utf-8") + b"\n"
     return head + b"".join(np.ascontiguousarray(a, dtype="<f8").tobytes() for a in arrays)
+
+
+def _read_record(f: BinaryIO, size: int) -> tuple[bytes | None, str | None]:
+    """The next record's body, or (None, problem); (None, None) at a clean end."""
+    head = f.read(_HEAD.size)
+    if not head:
+        return None, None
+    if len(head) < _HEAD.size:
+        return None, "torn record"
+    magic, length, crc = _HEAD.unpack(head)
+    if magic != _MAGIC or length > size:
+        return None, "torn or damaged record"
+    body = f.read(length)
+    if len(body) != length or zlib.crc32(body) != crc:
+        return None, "torn or damaged record"
+    return body, None
 
 
 def _decode_round(body: bytes) -> list[JournalGroup]:
@@ -137,7 +158,7 @@ class Journal:
     []
     """
 
-    def __init__(self, directory: str | Path, *, sync_every: float = 1.0, max_bytes: int = 256 << 20,
+    def __init__(self, directory: str | Path, *, sync_every: float = 1.0, max_bytes: int = MAX_BYTES,
                  logger: logging.Logger | None = None, background: bool = False) -> None:
         self.directory = Path(directory)
         self.path = self.directory / JOURNAL_NAME
@@ -145,7 +166,7 @@ class Journal:
         self.max_bytes = max_bytes
         self._log = logger if logger is not None else logging.getLogger(__name__)
         self._fd: int | None = None
-        self._size = 0
+        self._size = 0  # bytes in the journal (see :attr:`size`)
         self._last_sync = 0.0
         self._dirty = False
         self.background = background
@@ -168,7 +189,8 @@ class Journal:
         """Read the rounds recorded on top of the snapshot with ``token`` and go on appending.
 
         A journal of another snapshot is discarded (and a new one started); a
-        damaged tail is cut off with a log line.
+        damaged tail is cut off with a log line.  :meth:`replay` does the same
+        one round at a time.
 
         Returns
         -------
@@ -179,30 +201,75 @@ class Journal:
         OSError
             If the journal cannot be read or a new one cannot be written.
         """
+        return list(self.replay(token))
+
+    def replay(self, token: str) -> Iterator[list[JournalGroup]]:
+        """:meth:`open`, one round at a time: memory holds one round, whatever the size of
+        the journal.  The journal is open for appending once the iterator is exhausted
+        (a journal of another snapshot is replaced before this returns)."""
         self.close()
         self.lost = None
         try:
-            data = self.path.read_bytes()
+            f = open(self.path, "rb")
         except FileNotFoundError:
-            data = b""
-        rounds, good, header_token, problem = self._parse(data)
+            f = None
+        header_token: str | None = None
+        problem: str | None = None
+        head = b""
+        size = 0
+        if f is not None:
+            size = os.fstat(f.fileno()).st_size
+            body, problem = _read_record(f, size)
+            if body is not None:
+                try:
+                    h = json.loads(body)
+                except (ValueError, UnicodeDecodeError):
+                    h = None
+                if (isinstance(h, dict) and h.get("format") == _FORMAT and h.get("version") == _VERSION
+                        and isinstance(h.get("token"), str)):
+                    header_token = h["token"]
+                    head = _record(body)
+                else:
+                    problem = "unknown header"
         if header_token != token:
+            if f is not None:
+                f.close()
             if header_token is not None:
                 self._log.info("journal %s belongs to another snapshot; discarded", self.path)
-            elif data:
+            elif size:
                 # Not a journal of another snapshot: one whose header cannot be read (a
                 # flipped bit, another file).  What it held is lost; say so, keep it aside.
                 self.lost = (f"journal {self.path} has an unreadable header ({problem or 'unknown'}); "
-                             f"the {len(data)} bytes of samples it held since the last snapshot "
+                             f"the {size} bytes of samples it held since the last snapshot "
                              f"cannot be replayed")
                 aside = self._set_aside()
                 self._log.error("%s%s; a fresh journal is started", self.lost,
                                 f", it was moved to {aside}" if aside else "")
             self.restart(token)
-            return []
+            return iter(())
+        assert f is not None
+        return self._rounds(f, size, head)
+
+    def _rounds(self, f: BinaryIO, size: int, head: bytes) -> Iterator[list[JournalGroup]]:
+        good = len(head)
+        rounds = 0
+        problem: str | None = None
+        with f:
+            while True:
+                body, problem = _read_record(f, size)
+                if body is None:
+                    break
+                try:
+                    groups = _decode_round(body)
+                except (ValueError, TypeError, UnicodeDecodeError):
+                    problem = "malformed record"
+                    break
+                good += _HEAD.size + len(body)
+                rounds += 1
+                yield groups
         if problem is not None:
             self._log.warning("journal %s: %s after %d round(s); the rest (%d bytes) is discarded",
-                              self.path, problem, len(rounds), len(data) - good)
+                              self.path, problem, rounds, size - good)
         fd = os.open(self.path, os.O_RDWR)
         try:
             os.ftruncate(fd, good)
@@ -211,10 +278,9 @@ class Journal:
             os.close(fd)
             raise
         self._fd, self._size = fd, good
-        self._head = data[:_HEAD.size + _HEAD.unpack_from(data, 0)[1]]
+        self._head = head
         st = os.fstat(fd)
         self._ident = (st.st_dev, st.st_ino)
-        return rounds
 
     def _set_aside(self) -> str | None:
         n = 1
@@ -247,33 +313,6 @@ class Journal:
         except OSError as exc:
             return f"cannot be checked ({exc.strerror or exc})"
         return None
-
-    @staticmethod
-    def _parse(data: bytes) -> tuple[list[list[JournalGroup]], int, str | None, str | None]:
-        """(rounds, length of the good prefix, header token, problem or None)."""
-        rounds: list[list[JournalGroup]] = []
-        pos = 0
-        token: str | None = None
-        while pos < len(data):
-            if len(data) - pos < _HEAD.size:
-                return rounds, pos, token, "torn record"
-            magic, length, crc = _HEAD.unpack_from(data, pos)
-            body = data[pos + _HEAD.size: pos + _HEAD.size + length]
-            if magic != _MAGIC or len(body) != length or zlib.crc32(body) != crc:
-                return rounds, pos, token, "torn or damaged record"
-            try:
-                if token is None:
-                    head = json.loads(body)
-                    if not isinstance(head, dict) or head.get("format") != _FORMAT \
-                            or head.get("version") != _VERSION or not isinstance(head.get("token"), str):
-                        return [], 0, None, "unknown header"
-                    token = head["token"]
-                else:
-                    rounds.append(_decode_round(body))
-            except (ValueError, TypeError, UnicodeDecodeError):
-                return rounds, pos, token, "malformed record"
-            pos += _HEAD.size + length
-        return rounds, pos, token, None
 
     def restart(self, token: str) -> None:
         """Start an empty journal for the snapshot with ``token`` (atomically replaces the old one).
@@ -309,6 +348,11 @@ class Journal:
         self._ident = (st.st_dev, st.st_ino)
 
     # ------------------------------------------------------------ writing
+    @property
+    def size(self) -> int:
+        """Bytes in the open journal."""
+        return self._size
+
     @property
     def is_open(self) -> bool:
         return self._fd is not None
