@@ -426,12 +426,9 @@ class Daemon:
             eng = None if spec is None else self.engine_for(stream, spec, last.unit)
             if eng is None:
                 continue
-            if len(gs) == 1:
-                times, values, arrived = last.times, last.values, last.arrived
-            else:
-                times = np.concatenate([g.times for g in gs])
-                values = np.concatenate([g.values for g in gs])
-                arrived = np.concatenate([g.arrived for g in gs])
+            times = np.concatenate([g.times for g in gs])  # copies: the journal's are read-only views
+            values = np.concatenate([g.values for g in gs])
+            arrived = np.concatenate([g.arrived for g in gs])
             try:
                 eng.process(times, values, arrived)
             except Exception:  # as in process(): one stream's batch, never the daemon

@@ -109,7 +109,9 @@ def _decode_round(body: bytes) -> list[JournalGroup]:
     if not sep:
         raise ValueError("no index line")
     index = json.loads(head)
-    flat = np.frombuffer(data, dtype="<f8")
+    # Views of one array (read-only: a round's samples are never changed in place); a
+    # copy per group cost most of a start-up with a large journal.
+    flat = np.frombuffer(data, dtype="<f8").astype(np.float64, copy=False)
     out = []
     pos = 0
     for entry in index:
@@ -120,7 +122,7 @@ def _decode_round(body: bytes) -> list[JournalGroup]:
                 or not isinstance(n, int) or n < 0 or pos + 3 * n > flat.shape[0] \
                 or not (topic_filter is None or isinstance(topic_filter, str)):
             raise ValueError("malformed index entry")
-        t, v, a = (flat[pos + k * n: pos + (k + 1) * n].astype(np.float64) for k in range(3))
+        t, v, a = flat[pos:pos + n], flat[pos + n:pos + 2 * n], flat[pos + 2 * n:pos + 3 * n]
         pos += 3 * n
         out.append(JournalGroup(stream, unit, t, v, a, topic_filter))
     if pos != flat.shape[0]:

@@ -496,6 +496,15 @@ class _Endpoint:
             self._held += 1
             task = loop.create_task(self._handle(conn))
             self._conns[task] = _Connection(task)
+            # The bookkeeping is the task's done callback, not its own finally: a task
+            # shed before it first ran never enters its try, and would leak its place.
+            task.add_done_callback(lambda t, conn=conn: self._done(t, conn))
+
+    def _done(self, task: asyncio.Task[None], conn: socket.socket) -> None:
+        self._conns.pop(task, None)
+        conn.close()  # no-op when the handler's transport has closed it already
+        self._held -= 1
+        self._freed.set()
 
     def _shed_one(self) -> bool:
         """Close the oldest connection still sending its request; False when there is none."""
@@ -531,21 +540,15 @@ class _Endpoint:
             pass  # timed out, shed, hung up, a bad handshake or request: closed, nothing to tell
         finally:
             self._conns.pop(task, None)
-            try:
-                if writer is None:
-                    conn.close()
+            if writer is not None:  # else _done closes the socket
+                if answered:
+                    writer.close()
                 else:
-                    if answered:
-                        writer.close()
-                    else:
-                        writer.transport.abort()
-                    try:
-                        await asyncio.wait_for(writer.wait_closed(), 2.0)
-                    except (Exception, asyncio.CancelledError):
-                        writer.transport.abort()
-            finally:
-                self._held -= 1
-                self._freed.set()
+                    writer.transport.abort()
+                try:
+                    await asyncio.wait_for(writer.wait_closed(), 2.0)
+                except (Exception, asyncio.CancelledError):
+                    writer.transport.abort()
 
     async def _answer(self, head: bytes, writer: asyncio.StreamWriter) -> None:
         lines = head.decode("latin-1").split("\r\n")
