@@ -121,9 +121,12 @@ class _Client(paho.Client):
         return _ReadBuffer(sock, self.room)
 
 
-#: A connection lost with no reason within this many seconds of coming up, twice in a
-#: row, is taken as another client with our client id taking the session over.
+#: A connection lost with no reason within TAKEOVER_WINDOW seconds of coming up,
+#: TAKEOVER_STREAK times in a row with every reconnect succeeding at once, is taken as
+#: another client with our client id taking the session over.  (A broker restarted that
+#: often looks the same: Mosquitto 2.0 closes the socket without a word either way.)
 TAKEOVER_WINDOW = 10.0
+TAKEOVER_STREAK = 3
 #: Longest wait before reconnecting after such takeovers (it doubles with each).
 TAKEOVER_MAX_DELAY = 120
 
@@ -594,11 +597,10 @@ class MqttLink:
             self._report_error(text)
         if self._stopping:
             self.log.info("disconnected from broker %s", self.url)
-        elif was and self._taken_over(flags, reason):
-            pass  # said in words, counted, backed off
         elif was:
             self.log.warning("disconnected from broker %s: %s; reconnecting with backoff",
                              self.url, reason)
+            self._taken_over(flags, reason)  # says what it most likely means, when it can
         self._on_connection(False)
 
     def _taken_over(self, flags: Any, reason: Any) -> bool:
@@ -608,7 +610,8 @@ class MqttLink:
         MQTT 5 has a reason for it (0x8E, session taken over), but Mosquitto 2.0
         sends no DISCONNECT at all: it closes the socket, which paho reports as
         "Unspecified error".  So a connection lost that way within
-        TAKEOVER_WINDOW seconds of coming up, twice in a row, is taken as one.
+        TAKEOVER_WINDOW seconds of coming up, TAKEOVER_STREAK times in a row, is
+        taken as one.
         Each such loss doubles the wait before the next attempt (up to
         TAKEOVER_MAX_DELAY), so two programs with one client id stop kicking
         each other off every second; a connection that lasts resets it.
@@ -617,7 +620,7 @@ class MqttLink:
         code = getattr(reason, "value", None)
         from_server = bool(getattr(flags, "is_disconnect_packet_from_server", False))
         if code == 0x8E:
-            self._short_losses = max(self._short_losses, 1) + 1
+            self._short_losses = max(self._short_losses, TAKEOVER_STREAK - 1) + 1
         elif not from_server and lived < TAKEOVER_WINDOW:
             self._short_losses += 1
         else:
@@ -626,7 +629,7 @@ class MqttLink:
                 self.takeovers = 0
                 self.client.reconnect_delay_set(min_delay=1, max_delay=30)
             return False
-        if self._short_losses < 2:
+        if self._short_losses < TAKEOVER_STREAK:
             return False
         self.takeovers += 1
         delay = min(2 ** self.takeovers, TAKEOVER_MAX_DELAY)

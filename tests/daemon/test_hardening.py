@@ -332,7 +332,6 @@ def test_a_client_that_takes_our_client_id_is_named_counted_and_backed_off_from(
     assert "another client is most likely connecting with our client id 'sw-line2'" in log
     # The wait grows with each takeover: 2 s, then 4 s.
     assert log.index("next attempt in 2 s") < log.index("next attempt in 4 s")
-    assert "Unspecified error" not in log.split("next attempt in 2 s")[1]
     assert wait_until(lambda: (metric(d.scrape(), "shiftwatch_client_id_conflicts_total") or 0) >= 2)
     # Once the rival has gone the daemon gets its session back and carries on.
     assert wait_until(lambda: metric(d.scrape(), "shiftwatch_broker_connected") == 1, timeout=60)
