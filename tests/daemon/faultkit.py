@@ -232,9 +232,12 @@ class SlowClients:
     def trickle(self) -> None:
         """Send the next byte on each open connection; notice the ones closed meanwhile."""
         if self.open:
-            readable, _, _ = select.select(list(self.open), [], [], 0)
-            for s in readable:
-                self._close(s)
+            poller = select.poll()  # not select(): past 1,024 descriptors it cannot
+            by_fd = {s.fileno(): s for s in self.open}
+            for fd in by_fd:
+                poller.register(fd, select.POLLIN)
+            for fd, _ in poller.poll(0):
+                self._close(by_fd[fd])
         for s, sent in list(self.open.items()):
             try:
                 s.send(SLOW_REQUEST[sent:sent + 1])
