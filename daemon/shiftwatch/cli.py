@@ -501,11 +501,28 @@ def cmd_run(args: argparse.Namespace) -> int:
         log.error("%s", exc)
         return EXIT_USAGE
     log = setup_logging(args.log_format, tz=cfg.display.time_zone)
+    from shiftwatch.fsutil import StateDirInUse, StateDirLock
+
+    # Taken before anything in the directory is read or written: a second daemon
+    # on the same state would truncate the first one's journal in its restore().
+    try:
+        lock = StateDirLock(cfg.state.dir)
+    except StateDirInUse as exc:
+        log.error("cannot start: %s", exc)
+        return EXIT_USAGE
+    except OSError as exc:
+        log.error("cannot start: state.dir %s cannot be used: %s", cfg.state.dir, exc.strerror or exc)
+        return EXIT_USAGE
+    if lock.problem is not None:
+        log.warning("%s; not locked against a second daemon", lock.problem)
     from shiftwatch.daemon import Daemon
 
-    for warning in config_warnings(args.config, cfg):
-        log.warning("%s", warning)
-    return Daemon(cfg, config_path=args.config, logger=log).run()
+    try:
+        for warning in config_warnings(args.config, cfg):
+            log.warning("%s", warning)
+        return Daemon(cfg, config_path=args.config, logger=log).run()
+    finally:
+        lock.release()
 
 
 def config_warnings(path: str, cfg: Any) -> list[str]:

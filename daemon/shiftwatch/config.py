@@ -552,9 +552,18 @@ def load_config(path: str | Path) -> Config:
     """Read and validate a configuration file.  Raises :class:`ConfigError`."""
     p = Path(path)
     try:
-        text = p.read_text(encoding="utf-8")
+        data = p.read_bytes()
     except OSError as exc:
         raise ConfigError("", f"cannot read the file: {exc.strerror or exc}", file=str(p)) from None
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        # Named by line and column, as a YAML error is: the file must be UTF-8 (YAML 1.1
+        # allows UTF-16 too, but nobody writes a configuration in it).
+        line = data.count(b"\n", 0, exc.start) + 1
+        column = exc.start - (data.rfind(b"\n", 0, exc.start) + 1) + 1
+        raise ConfigError("", f"not UTF-8 (byte 0x{data[exc.start]:02x} at column {column}); "
+                          "save the file as UTF-8", file=str(p), line=line) from None
     return parse_config(text, file=str(p))
 
 

@@ -15,6 +15,8 @@ import functools
 import gc
 import json
 import logging
+import math
+import os
 import secrets
 import signal
 import sys
@@ -35,6 +37,7 @@ from shiftwatch.core.timefmt import format_time
 from shiftwatch.decode import REASONS as DECODE_REASONS
 from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, stream_name
 from shiftwatch.display import alert_summary, clock, stamp
+from shiftwatch.fsutil import explain_os_error
 from shiftwatch.journal import Journal, JournalGroup
 from shiftwatch.metrics import Metrics, MetricsServer, StreamStats
 from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
@@ -75,6 +78,11 @@ SPEC_CACHE_MIN = 1000
 #: streams fed batches left 13,000 updates in paho's memory, and their objects,
 #: made among the engines' own, fragmented the heap for good (about 20 MB).
 LEVELS_IN_FLIGHT = 50
+#: Samples gathered from the journal's rounds before they are fed, stream by stream.
+REPLAY_BATCH = 200_000
+#: At most this many "new stream" lines per NEW_STREAM_EVERY seconds; the rest are summed up.
+NEW_STREAM_LINES = 10
+NEW_STREAM_EVERY = 10.0
 
 
 class RateLimitedLog:
@@ -189,12 +197,21 @@ class _SyncThenAck:
                 self._purge_queued = True
                 self._queue((False, None))
 
+    def start(self) -> None:
+        """Start the thread, once, at start-up: a thread started on the way of a round
+        could fail under a task limit and take the daemon down with it.  Until then
+        (a Daemon used without start()) jobs are done in the caller's thread."""
+        if self._thread is None:
+            t = threading.Thread(target=self._run, name="shiftwatch-outbox-sync", daemon=True)
+            t.start()
+            self._thread = t
+
     def _queue(self, job: tuple[bool, list[Message] | None]) -> None:
         self._jobs.append(job)
         self._open += 1
         if self._thread is None:
-            self._thread = threading.Thread(target=self._run, name="shiftwatch-outbox-sync", daemon=True)
-            self._thread.start()
+            self._run_one()
+            return
         self._cv.notify_all()
 
     def wait_idle(self, timeout: float) -> bool:
@@ -206,22 +223,27 @@ class _SyncThenAck:
         while True:
             with self._cv:
                 self._cv.wait_for(lambda: bool(self._jobs))
-                sync, msgs = self._jobs.popleft()
-                if msgs is None:
-                    self._purge_queued = False
-            try:
-                if msgs is None:
-                    if self._purge is not None:
-                        self._purge()
-                else:
-                    if sync:
-                        self._sync()
-                    self._ack(msgs)
-            except Exception:  # this thread must never die
-                self._log.exception("error while writing the outbox or acknowledging messages")
-            with self._cv:
-                self._open -= 1
-                self._cv.notify_all()
+            self._run_one()
+
+    def _run_one(self) -> None:
+        """Do the oldest job (the caller holds no lock)."""
+        with self._cv:
+            sync, msgs = self._jobs.popleft()
+            if msgs is None:
+                self._purge_queued = False
+        try:
+            if msgs is None:
+                if self._purge is not None:
+                    self._purge()
+            else:
+                if sync:
+                    self._sync()
+                self._ack(msgs)
+        except Exception:  # the thread must never die
+            self._log.exception("error while writing the outbox or acknowledging messages")
+        with self._cv:
+            self._open -= 1
+            self._cv.notify_all()
 
 
 class Daemon:
@@ -281,6 +303,11 @@ class Daemon:
         # DRAIN while a backlog larger than that waits (see round()).
         self._round_max = DRAIN if cfg.broker.mqtt_version != "5" else min(DRAIN, cfg.broker.receive_maximum)
         self._trim_pending = False
+        # The window of "new stream" lines (see _new_stream_line).
+        self._new_since = -math.inf
+        self._new_lines = self._new_held = 0
+        self._new_last = ""
+        self._early_snapshot_failed = False
 
     # ------------------------------------------------------------ topics
     @property
@@ -335,7 +362,7 @@ class Daemon:
             streams, meta = self.store.load()
         except OSError as exc:
             self.log.error("state snapshot in %s cannot be read (%s); streams warm up again",
-                           self.store.directory, exc.strerror or exc)
+                           self.store.directory, explain_os_error(exc, self.store.directory))
             streams, meta = {}, {}
         restored = 0
         filters = meta.get("filters")
@@ -357,8 +384,10 @@ class Daemon:
             eng = StreamEngine(name, spec.detection, unit=spec.unit)
             try:
                 eng.set_state(state)
-            except ValueError as exc:
-                self.log.warning("snapshot of stream %s not used (%s); it warms up again", name, exc)
+            except Exception as exc:  # whatever is wrong with one entry costs that stream only
+                self.metrics.states_set_aside.inc()
+                self.log.warning("saved state of stream %s set aside (%s); it warms up again, the "
+                                 "other streams are restored", _printable(name), _one_line(exc))
                 continue
             self.engines[name] = eng
             self._filters[name] = spec.topic
@@ -372,35 +401,66 @@ class Daemon:
     def _replay_journal(self, token: str) -> None:
         """Feed the engines the rounds journaled on top of the snapshot.  Their alert
         records are not published again: they reached the outbox before the round
-        was journaled."""
+        was journaled.
+
+        Rounds are read one at a time and each stream's samples from many rounds
+        are fed in one batch (up to REPLAY_BATCH samples in all), which gives the
+        same state and records as round by round (batch splits change nothing in
+        the engine) at a fraction of the calls, with one batch in memory.
+        """
         if self.journal is None:
             return
+        samples = rounds = 0
+        pending: dict[str, list[JournalGroup]] = {}
+        held = 0
         try:
-            rounds = self.journal.open(token)
+            for groups in self.journal.replay(token):
+                rounds += 1
+                for g in groups:
+                    pending.setdefault(g.stream, []).append(g)
+                    held += len(g.values)
+                if held >= REPLAY_BATCH:
+                    samples += self._replay_batch(pending)
+                    pending, held = {}, 0
         except OSError as exc:
             self._journal_failed(exc)
-            return
-        samples = 0
-        for groups in rounds:
-            for g in groups:
-                spec = self.cfg.stream_for(g.stream, g.topic_filter or self._filters.get(g.stream))
-                name = g.stream if spec is None else self._renamed.get(g.stream) or \
-                    current_stream_name(g.stream, spec)
-                eng = None if spec is None else self.engine_for(name, spec, g.unit)
-                if eng is None:
-                    continue
-                try:
-                    eng.process(g.times, g.values, g.arrived)
-                except Exception:  # as in process(): one stream's batch, never the daemon
-                    self.log.exception("internal error while replaying stream %s", _printable(g.stream))
-                samples += len(g.values)
+        samples += self._replay_batch(pending)
+        if self.journal.lost is not None:  # logged by the journal, with what it held
+            self.metrics.journal_damaged.inc()
         for name, eng in self.engines.items():
             self.metrics.update_stream(name, StreamStats.from_engine(eng))
         if rounds:
-            self.log.info("replayed %d sample(s) in %d round(s) from the journal", samples, len(rounds))
+            self.log.info("replayed %d sample(s) in %d round(s) from the journal", samples, rounds)
+
+    def _replay_batch(self, pending: dict[str, list[JournalGroup]]) -> int:
+        samples = 0
+        for stream, gs in pending.items():
+            last = gs[-1]
+            spec = self.cfg.stream_for(stream, last.topic_filter or self._filters.get(stream))
+            name = stream if spec is None else self._renamed.get(stream) or \
+                current_stream_name(stream, spec)
+            eng = None if spec is None else self.engine_for(name, spec, last.unit)
+            if eng is None:
+                continue
+            times = np.concatenate([g.times for g in gs])  # copies: the journal's are read-only views
+            values = np.concatenate([g.values for g in gs])
+            arrived = np.concatenate([g.arrived for g in gs])
+            try:
+                eng.process(times, values, arrived)
+            except Exception:  # as in process(): one stream's batch, never the daemon
+                self.log.exception("internal error while replaying stream %s", _printable(stream))
+            samples += len(values)
+        return samples
 
     def start(self) -> None:
-        """Everything up to the point where messages flow: state, metrics, broker, outbox."""
+        """Everything up to the point where messages flow: state, metrics, broker, outbox.
+
+        Every thread the daemon needs is started here, where a failure (under a task
+        limit, say) stops the start with one clear line; none is started later.
+        """
+        self._acker.start()
+        if self.journal is not None:
+            self.journal.start_background()
         self.restore()
         settle_heap()
         mtls = self.cfg.metrics.tls
@@ -426,6 +486,7 @@ class Daemon:
             on_connection=self._connection,
             logger=self.log,
             password=password,
+            on_takeover=self.metrics.client_id_conflicts.inc,
         )
         # Alert records left in the outbox by an earlier run go out first.
         pending = self.outbox.pending()
@@ -455,18 +516,25 @@ class Daemon:
         except OSError as exc:
             self.log.error("cannot start: %s", exc)
             return 2
+        except RuntimeError as exc:  # "can't start new thread": a task limit too tight
+            self.log.error("cannot start: %s (is the service's task limit, TasksMax=, too low?)", exc)
+            return 2
         wd = watchdog_interval(self.env)
         next_wd = time.monotonic()
         next_snap = time.monotonic() + self.cfg.state.snapshot_every
+        next_check = time.monotonic() + 1.0
         while not self._stop.is_set():
             self.round(timeout=0.2)
             if self.journal is not None:
                 self.journal.sync_if_due()
             now = time.monotonic()
+            if now >= next_check:
+                self.check_journal()
+                next_check = now + 1.0
             if wd is not None and now >= next_wd:
                 sd_notify("WATCHDOG=1", env=self.env)
                 next_wd = now + wd / 2
-            if now >= next_snap:
+            if now >= next_snap or self._journal_half_full():
                 self.snapshot()
                 settle_heap()
                 next_snap = now + self.cfg.state.snapshot_every
@@ -488,6 +556,8 @@ class Daemon:
             limit = DRAIN
         msgs = self.inbox.take(limit, ROUND_BYTES, timeout, gather=gather)
         self._busy = len(msgs) >= BUSY_ROUND
+        if self._new_held:
+            self._flush_new_streams(time.monotonic())
         if not msgs:
             self.send_due_levels()
             self.rlog.flush(time.time())
@@ -550,6 +620,7 @@ class Daemon:
         self.snapshot()
         if self.journal is not None:
             self.journal.close()
+            self.journal.stop_background()
         deadline = time.monotonic() + 5.0
         while ((len(self.outbox) or self._levels_due) and self.link is not None and self.link.connected
                and time.monotonic() < deadline):
@@ -597,6 +668,11 @@ class Daemon:
                     self._decode_problems(m.topic, dec.problems, now)
                 arrived = m.arrived
                 for r in dec.readings:
+                    if r.time is None and spec.time is not None:
+                        # Set aside (no_time, counted with the problems above): placed at its
+                        # arrival it would stand after every sample of a backlog stamped
+                        # earlier, and those would all be rejected as out_of_order.
+                        continue
                     name = topic_stream if r.name is None else stream_name(m.topic, r.name)
                     g = groups.get(name)
                     if g is None:
@@ -676,10 +752,6 @@ class Daemon:
 
     def _decode_problems(self, topic: str, problems: list[DecodeProblem], now: float) -> None:
         for p in problems:
-            if p.reason == "no_time":  # the reading is used, with its arrival time
-                self.rlog.warning("decode:no_time", lambda p=p: f"message on {_printable(topic)}: {p.message}",
-                                  now)
-                continue
             self._count_drop(p.reason)
             self.rlog.warning(f"decode:{p.reason}", lambda p=p: f"message on {_printable(topic)} "
                               f"set aside ({p.reason}): {p.message}", now)
@@ -691,9 +763,33 @@ class Daemon:
                 return None
             eng = self.engines[name] = StreamEngine(name, spec.detection, unit=unit)
             self._filters[name] = spec.topic
-            self.log.info("new stream %s (warming up on %d samples)", _printable(name),
-                          spec.detection.warmup_samples, extra={"stream": name})
+            self._new_stream_line(name, spec.detection.warmup_samples)
         return eng
+
+    def _new_stream_line(self, name: str, warmup: int) -> None:
+        """One "new stream" line each, up to NEW_STREAM_LINES per NEW_STREAM_EVERY seconds;
+        past that they are counted and summed up in one line (a SenML pack of 10,000
+        names gave 10,000 lines)."""
+        now = time.monotonic()
+        self._flush_new_streams(now)
+        if self._new_lines < NEW_STREAM_LINES:
+            self._new_lines += 1
+            self.log.info("new stream %s (warming up on %d samples)", _printable(name), warmup,
+                          extra={"stream": name})
+        else:
+            self._new_held += 1
+            self._new_last = name
+
+    def _flush_new_streams(self, now: float) -> None:
+        """Close the window of new-stream lines when it is over, with the line that sums up
+        the streams it held back."""
+        if now - self._new_since < NEW_STREAM_EVERY:
+            return
+        if self._new_held:
+            self.log.info("%d more new stream(s) in the last %.0f s, not listed one by one (the last: "
+                          "%s); each warms up on its own samples; shiftwatch_streams counts them",
+                          self._new_held, NEW_STREAM_EVERY, _printable(self._new_last))
+        self._new_since, self._new_lines, self._new_held = now, 0, 0
 
     def _run_stream(self, name: str, spec: StreamConfig, unit: str | None, times_list: list[float],
                     values_list: list[float], arrivals_list: list[float], now: float) -> JournalGroup | None:
@@ -804,6 +900,14 @@ class Daemon:
                             "being watched until it restarts")
         return body
 
+    def _clear_levels(self, name: str) -> None:
+        """A removed stream: its retained levels message is cleared on the broker (an
+        empty retained message deletes it), so no subscriber sees a stream that is gone."""
+        self._levels_due.pop(name, None)
+        self._levels_sent.pop(name, None)
+        if self.link is not None:  # also for a level published before a restart
+            self._publish(f"{self.prefix}/levels/{name}", b"", qos=1, retain=True)
+
     def _publish(self, topic: str, payload: bytes, *, qos: int, retain: bool, key: str | None = None,
                  level: bool = False) -> None:
         mid = self._send(topic, payload, qos=qos, retain=retain)
@@ -867,7 +971,7 @@ class Daemon:
     def _outbox_failed(self, exc: OSError, now: float) -> None:
         self.metrics.outbox_failures.inc()
         self.rlog.warning("outbox", f"alert outbox in {self.outbox.directory} could not be written "
-                          f"({exc.strerror or exc}); records are still published, but one not yet "
+                          f"({explain_os_error(exc, self.outbox.directory)}); records are still published, but one not yet "
                           f"acknowledged by the broker would not survive a restart", now)
 
     def _journal_failed(self, exc: OSError) -> None:
@@ -876,7 +980,7 @@ class Daemon:
             self.journal.close()
         self.log.error("sample journal in %s could not be written (%s); until the next good snapshot "
                        "a crash loses the samples processed since the last one", self.store.directory,
-                       exc.strerror or exc)
+                       explain_os_error(exc, self.store.directory))
 
     def _count_handover_drop(self, reason: str) -> None:
         """A message paho's thread could not hand over: it was received all the same."""
@@ -895,16 +999,43 @@ class Daemon:
         except OSError as exc:
             # The journal still belongs to the previous snapshot: it keeps growing.
             self.metrics.snapshot_failures.inc()
+            self._early_snapshot_failed = True
             self.log.error("snapshot to %s failed: %s; detection carries on", self.cfg.state.dir,
-                           exc.strerror or exc)
+                           explain_os_error(exc, self.store.directory))
             return False
         self.metrics.snapshots.inc()
+        self._early_snapshot_failed = False
         if self.journal is not None:
             try:
                 self.journal.restart(token)
             except OSError as exc:
                 self._journal_failed(exc)
         return True
+
+    def _journal_half_full(self) -> bool:
+        """The journal is half its bound: snapshot now (which starts a new one), so that
+        it reaches the bound only while snapshots fail.  After a failed snapshot only
+        the regular interval applies, until one succeeds."""
+        j = self.journal
+        return (j is not None and j.is_open and j.size >= j.max_bytes // 2
+                and not self._early_snapshot_failed)
+
+    def check_journal(self) -> None:
+        """Notice a journal deleted, replaced or damaged behind the daemon's back (see
+        Journal.check): log it, count it, and start a fresh one through a snapshot, which
+        holds everything the lost journal did."""
+        if self.journal is None or not self.journal.is_open:
+            return
+        problem = self.journal.check()
+        if problem is None:
+            return
+        self.metrics.journal_damaged.inc()
+        self.log.error("sample journal %s %s: a crash now would lose the samples since the last "
+                       "snapshot; taking a snapshot, which starts a fresh journal", self.journal.path,
+                       problem)
+        if not self.snapshot():
+            self.journal.close()  # appending to a file that is gone helps nobody
+            self.log.error("no fresh journal until a snapshot succeeds")
 
     # ------------------------------------------------------------ reload
     def reload(self) -> None:
@@ -917,6 +1048,16 @@ class Daemon:
         except ConfigError as exc:
             self.log.error("reload refused, keeping the running configuration: %s", exc)
             return
+        except Exception as exc:  # a defect in reading must never cost the running daemon
+            self.log.error("reload refused, keeping the running configuration: %s: cannot be read "
+                           "(%s: %s)", self.config_path, type(exc).__name__, exc)
+            return
+        if not new.streams:
+            # An empty (or emptied) file would drop every stream and its state at once:
+            # much more likely a file caught half-written than a wish.
+            self.log.error("reload refused, keeping the running configuration: %s has no stream "
+                           "entries (to stop watching every stream, stop the daemon)", self.config_path)
+            return
         old_filters = {s.topic for s in self.cfg.streams}
         new_filters = {s.topic for s in new.streams}
         kept = dropped = renewed = 0
@@ -928,6 +1069,7 @@ class Daemon:
                 del self.engines[name]
                 self._filters.pop(name, None)
                 self.metrics.remove_stream(name)
+                self._clear_levels(name)
                 dropped += 1
                 continue
             if old_spec is None or spec.detection != old_spec.detection or spec.unit != old_spec.unit:
@@ -1022,6 +1164,12 @@ def _malloc_trim() -> Any:
         return ctypes.CDLL("libc.so.6").malloc_trim
     except (OSError, AttributeError):
         return None
+
+
+def _one_line(exc: BaseException, limit: int = 300) -> str:
+    """An exception as a short log phrase (its type when it has no message)."""
+    text = " ".join(str(exc).split()) or type(exc).__name__
+    return text if len(text) <= limit else text[:limit - 3] + "..."
 
 
 def _printable(text: str, limit: int = 120) -> str:

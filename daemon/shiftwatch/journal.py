@@ -39,18 +39,23 @@ import struct
 import threading
 import time
 import zlib
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from pathlib import Path
-from typing import NamedTuple
+from typing import BinaryIO, NamedTuple
 
 from shiftwatch.fsutil import fsync_dir
 
 import numpy as np
 from numpy.typing import NDArray
 
-__all__ = ["JOURNAL_NAME", "Journal", "JournalGroup"]
+__all__ = ["JOURNAL_NAME", "MAX_BYTES", "Journal", "JournalGroup"]
 
 JOURNAL_NAME = "journal.bin"
+#: The journal never grows past this.  The daemon snapshots early once the journal
+#: is half this size (a snapshot starts a new one), so it reaches the bound only while
+#: snapshots fail; then journaling stops (counted) until one succeeds.  A start-up
+#: replays at most this much (see the README for the time that takes).
+MAX_BYTES = 64 << 20
 _MAGIC = b"SWJ1"
 _HEAD = struct.Struct("<4sII")
 _FORMAT = "shiftwatch-journal"
@@ -83,12 +88,30 @@ def _encode_round(groups: Iterable[JournalGroup]) -> bytes:
     return head + b"".join(np.ascontiguousarray(a, dtype="<f8").tobytes() for a in arrays)
 
 
+def _read_record(f: BinaryIO, size: int) -> tuple[bytes | None, str | None]:
+    """The next record's body, or (None, problem); (None, None) at a clean end."""
+    head = f.read(_HEAD.size)
+    if not head:
+        return None, None
+    if len(head) < _HEAD.size:
+        return None, "torn record"
+    magic, length, crc = _HEAD.unpack(head)
+    if magic != _MAGIC or length > size:
+        return None, "torn or damaged record"
+    body = f.read(length)
+    if len(body) != length or zlib.crc32(body) != crc:
+        return None, "torn or damaged record"
+    return body, None
+
+
 def _decode_round(body: bytes) -> list[JournalGroup]:
     head, sep, data = body.partition(b"\n")
     if not sep:
         raise ValueError("no index line")
     index = json.loads(head)
-    flat = np.frombuffer(data, dtype="<f8")
+    # Views of one array (read-only: a round's samples are never changed in place); a
+    # copy per group cost most of a start-up with a large journal.
+    flat = np.frombuffer(data, dtype="<f8").astype(np.float64, copy=False)
     out = []
     pos = 0
     for entry in index:
@@ -99,7 +122,7 @@ def _decode_round(body: bytes) -> list[JournalGroup]:
                 or not isinstance(n, int) or n < 0 or pos + 3 * n > flat.shape[0] \
                 or not (topic_filter is None or isinstance(topic_filter, str)):
             raise ValueError("malformed index entry")
-        t, v, a = (flat[pos + k * n: pos + (k + 1) * n].astype(np.float64) for k in range(3))
+        t, v, a = flat[pos:pos + n], flat[pos + n:pos + 2 * n], flat[pos + 2 * n:pos + 3 * n]
         pos += 3 * n
         out.append(JournalGroup(stream, unit, t, v, a, topic_filter))
     if pos != flat.shape[0]:
@@ -137,7 +160,7 @@ class Journal:
     []
     """
 
-    def __init__(self, directory: str | Path, *, sync_every: float = 1.0, max_bytes: int = 256 << 20,
+    def __init__(self, directory: str | Path, *, sync_every: float = 1.0, max_bytes: int = MAX_BYTES,
                  logger: logging.Logger | None = None, background: bool = False) -> None:
         self.directory = Path(directory)
         self.path = self.directory / JOURNAL_NAME
@@ -145,18 +168,31 @@ class Journal:
         self.max_bytes = max_bytes
         self._log = logger if logger is not None else logging.getLogger(__name__)
         self._fd: int | None = None
-        self._size = 0
+        self._size = 0  # bytes in the journal (see :attr:`size`)
         self._last_sync = 0.0
         self._dirty = False
         self.background = background
-        self._bg: threading.Thread | None = None
+        # The background syncs' thread (start_background) and the one job it may hold:
+        # a duplicate of the journal's descriptor to force to disk.
+        self._syncer: threading.Thread | None = None
+        self._cv = threading.Condition()
+        self._job: int | None = None
+        self._stopping = False
+        # The header record this journal was opened or started with, and the file's
+        # identity, which check() compares with what is on disk.
+        self._head = b""
+        self._ident: tuple[int, int] | None = None
+        #: What was wrong with the journal found by the last open() (None: nothing); the
+        #: samples it held since the snapshot could not be replayed.
+        self.lost: str | None = None
 
     # ------------------------------------------------------------ opening
     def open(self, token: str) -> list[list[JournalGroup]]:
         """Read the rounds recorded on top of the snapshot with ``token`` and go on appending.
 
         A journal of another snapshot is discarded (and a new one started); a
-        damaged tail is cut off with a log line.
+        damaged tail is cut off with a log line.  :meth:`replay` does the same
+        one round at a time.
 
         Returns
         -------
@@ -167,21 +203,76 @@ class Journal:
         OSError
             If the journal cannot be read or a new one cannot be written.
         """
+        return list(self.replay(token))
+
+    def replay(self, token: str) -> Iterator[list[JournalGroup]]:
+        """:meth:`open`, one round at a time: memory holds one round, whatever the size of
+        the journal.  The journal is open for appending once the iterator is exhausted
+        (a journal of another snapshot is replaced before this returns)."""
         self.close()
+        self.lost = None
         try:
-            data = self.path.read_bytes()
+            f = open(self.path, "rb")
         except FileNotFoundError:
-            data = b""
-        rounds, good, header_token, problem = self._parse(data)
+            f = None
+        header_token: str | None = None
+        problem: str | None = None
+        head = b""
+        size = 0
+        if f is not None:
+            size = os.fstat(f.fileno()).st_size
+            body, problem = _read_record(f, size)
+            if body is not None:
+                try:
+                    h = json.loads(body)
+                except (ValueError, UnicodeDecodeError):
+                    h = None
+                if (isinstance(h, dict) and h.get("format") == _FORMAT and h.get("version") == _VERSION
+                        and isinstance(h.get("token"), str)):
+                    header_token = h["token"]
+                    head = _record(body)
+                else:
+                    problem = "unknown header"
         if header_token != token:
+            if f is not None:
+                f.close()
             if header_token is not None:
                 self._log.info("journal %s belongs to another snapshot; discarded", self.path)
+            elif size:
+                # Not a journal of another snapshot: one whose header cannot be read (a
+                # flipped bit, another file).  What it held is lost; say so, keep it aside.
+                self.lost = (f"journal {self.path} has an unreadable header ({problem or 'unknown'}); "
+                             f"the {size} bytes of samples it held since the last snapshot "
+                             f"cannot be replayed")
+                aside = self._set_aside()
+                self._log.error("%s%s; a fresh journal is started", self.lost,
+                                f", it was moved to {aside}" if aside else "")
             self.restart(token)
-            return []
+            return iter(())
+        assert f is not None
+        return self._rounds(f, size, head)
+
+    def _rounds(self, f: BinaryIO, size: int, head: bytes) -> Iterator[list[JournalGroup]]:
+        good = len(head)
+        rounds = 0
+        problem: str | None = None
+        with f:
+            while True:
+                body, problem = _read_record(f, size)
+                if body is None:
+                    break
+                try:
+                    groups = _decode_round(body)
+                except (ValueError, TypeError, UnicodeDecodeError):
+                    problem = "malformed record"
+                    break
+                good += _HEAD.size + len(body)
+                rounds += 1
+                yield groups
         if problem is not None:
             self._log.warning("journal %s: %s after %d round(s); the rest (%d bytes) is discarded",
-                              self.path, problem, len(rounds), len(data) - good)
-        fd = os.open(self.path, os.O_WRONLY)
+                              self.path, problem, rounds, size - good)
+        fd = os.open(self.path, os.O_RDWR)
         try:
             os.ftruncate(fd, good)
             os.lseek(fd, good, os.SEEK_SET)
@@ -189,34 +280,41 @@ class Journal:
             os.close(fd)
             raise
         self._fd, self._size = fd, good
-        return rounds
+        self._head = head
+        st = os.fstat(fd)
+        self._ident = (st.st_dev, st.st_ino)
 
-    @staticmethod
-    def _parse(data: bytes) -> tuple[list[list[JournalGroup]], int, str | None, str | None]:
-        """(rounds, length of the good prefix, header token, problem or None)."""
-        rounds: list[list[JournalGroup]] = []
-        pos = 0
-        token: str | None = None
-        while pos < len(data):
-            if len(data) - pos < _HEAD.size:
-                return rounds, pos, token, "torn record"
-            magic, length, crc = _HEAD.unpack_from(data, pos)
-            body = data[pos + _HEAD.size: pos + _HEAD.size + length]
-            if magic != _MAGIC or len(body) != length or zlib.crc32(body) != crc:
-                return rounds, pos, token, "torn or damaged record"
-            try:
-                if token is None:
-                    head = json.loads(body)
-                    if not isinstance(head, dict) or head.get("format") != _FORMAT \
-                            or head.get("version") != _VERSION or not isinstance(head.get("token"), str):
-                        return [], 0, None, "unknown header"
-                    token = head["token"]
-                else:
-                    rounds.append(_decode_round(body))
-            except (ValueError, TypeError, UnicodeDecodeError):
-                return rounds, pos, token, "malformed record"
-            pos += _HEAD.size + length
-        return rounds, pos, token, None
+    def _set_aside(self) -> str | None:
+        n = 1
+        while (aside := self.path.with_name(f"{JOURNAL_NAME}.damaged-{n}")).exists():
+            n += 1
+        try:
+            os.replace(self.path, aside)
+        except OSError:
+            return None
+        return aside.name
+
+    def check(self) -> str | None:
+        """What has happened to the open journal behind its back, or None: deleted,
+        replaced by another file, or its header changed on disk.  Each would lose
+        every sample since the last snapshot at the next crash, silently; the
+        daemon calls this once a second and starts a fresh journal (through a
+        snapshot) when it says something."""
+        if self._fd is None or self._ident is None:
+            return None
+        try:
+            if os.fstat(self._fd).st_nlink == 0:
+                return "was deleted"
+            st = os.stat(self.path)
+            if (st.st_dev, st.st_ino) != self._ident:
+                return "was replaced by another file"
+            if os.pread(self._fd, len(self._head), 0) != self._head:
+                return "has a damaged header"
+        except FileNotFoundError:
+            return "was deleted"
+        except OSError as exc:
+            return f"cannot be checked ({exc.strerror or exc})"
+        return None
 
     def restart(self, token: str) -> None:
         """Start an empty journal for the snapshot with ``token`` (atomically replaces the old one).
@@ -230,7 +328,7 @@ class Journal:
         self.directory.mkdir(parents=True, exist_ok=True)
         tmp = self.path.with_name(f".{JOURNAL_NAME}.tmp")
         head = _record(json.dumps({"format": _FORMAT, "version": _VERSION, "token": token}).encode())
-        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+        fd = os.open(tmp, os.O_RDWR | os.O_CREAT | os.O_TRUNC, 0o600)
         try:
             os.write(fd, head)
             os.fsync(fd)
@@ -247,8 +345,16 @@ class Journal:
                 pass
             raise
         self._fd, self._size = fd, len(head)
+        self._head = head
+        st = os.fstat(fd)
+        self._ident = (st.st_dev, st.st_ino)
 
     # ------------------------------------------------------------ writing
+    @property
+    def size(self) -> int:
+        """Bytes in the open journal."""
+        return self._size
+
     @property
     def is_open(self) -> bool:
         return self._fd is not None
@@ -283,18 +389,57 @@ class Journal:
             return
         now = time.monotonic()
         if now - self._last_sync >= self.sync_every:
-            if self.background:
+            if self.background and self._syncer is not None:
                 self._sync_in_background()
             else:
                 self.sync()
             self._last_sync = now
 
+    def start_background(self) -> None:
+        """Start the thread that does the background syncs (``background=True``).
+
+        Called once at start-up, where a failure stops the start with a clear
+        error: a thread started later, on the path of every round, could fail
+        under a task limit (``RuntimeError: can't start new thread``) and kill
+        the daemon.  Without it, syncs are done in the caller.
+        """
+        if self._syncer is None:
+            t = threading.Thread(target=self._sync_loop, name="shiftwatch-journal-sync", daemon=True)
+            t.start()
+            self._syncer = t
+
+    def stop_background(self) -> None:
+        """End the sync thread (after :meth:`close`)."""
+        with self._cv:
+            self._stopping = True
+            self._cv.notify_all()
+        if self._syncer is not None:
+            self._syncer.join()
+            self._syncer = None
+
+    def _sync_loop(self) -> None:
+        while True:
+            with self._cv:
+                self._cv.wait_for(lambda: self._job is not None or self._stopping)
+                if self._job is None:
+                    return
+                fd = self._job
+            try:
+                os.fdatasync(fd)
+            except OSError as exc:
+                self._log.warning("journal %s could not be forced to disk: %s", self.path, exc)
+            finally:
+                os.close(fd)
+                with self._cv:
+                    self._job = None
+                    self._cv.notify_all()
+
     def _sync_in_background(self) -> None:
-        """Force the journal to disk from another thread, through a duplicate of its
+        """Force the journal to disk in the sync thread, through a duplicate of its
         descriptor (so a journal closed meanwhile is never a problem): the disk can
         take tens of milliseconds, which the caller's next alert must not wait for.
         While one such sync runs, the next waits for the following due time."""
-        if self._fd is None or (self._bg is not None and self._bg.is_alive()):
+        if self._fd is None or self._job is not None:
             return
         try:
             fd = os.dup(self._fd)
@@ -302,17 +447,9 @@ class Journal:
             self._log.warning("journal %s could not be forced to disk: %s", self.path, exc)
             return
         self._dirty = False
-
-        def run() -> None:
-            try:
-                os.fdatasync(fd)
-            except OSError as exc:
-                self._log.warning("journal %s could not be forced to disk: %s", self.path, exc)
-            finally:
-                os.close(fd)
-
-        self._bg = threading.Thread(target=run, name="shiftwatch-journal-sync", daemon=True)
-        self._bg.start()
+        with self._cv:
+            self._job = fd
+            self._cv.notify_all()
 
     def sync(self) -> None:
         """Force what was appended to disk (errors are logged: the data is still in the page cache)."""
@@ -325,9 +462,8 @@ class Journal:
 
     def close(self) -> None:
         """Force what was appended to disk, then close."""
-        if self._bg is not None:
-            self._bg.join()
-            self._bg = None
+        with self._cv:  # a background sync of this journal finishes first
+            self._cv.wait_for(lambda: self._job is None)
         if self._fd is not None:
             self.sync()
             fd, self._fd = self._fd, None

@@ -37,23 +37,25 @@ PromQL expects for "not known yet".
 
 from __future__ import annotations
 
+import asyncio
+import gzip
 import math
 import socket
 import ssl
-import sys
 import threading
+import time
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Any
-from wsgiref.simple_server import WSGIRequestHandler
+from urllib.parse import parse_qs, urlsplit
 
-from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, make_wsgi_app
-from prometheus_client.exposition import ThreadingWSGIServer
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram
+from prometheus_client.exposition import choose_encoder, gzip_accepted
 from prometheus_client.metrics_core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
-__all__ = ["ALERT_DELAY_BUCKETS", "CONNECTION_TIMEOUT", "DEFAULT_LISTEN", "Metrics",
+__all__ = ["ALERT_DELAY_BUCKETS", "CONNECTION_TIMEOUT", "DEFAULT_LISTEN", "MAX_CONNECTIONS", "Metrics",
            "MetricsServer", "StreamStats", "parse_listen"]
 
 #: Where the endpoint listens unless configured otherwise: loopback only.
@@ -63,10 +65,14 @@ DEFAULT_LISTEN = "127.0.0.1:9650"
 ALERT_DELAY_BUCKETS: tuple[float, ...] = (
     0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
 
-#: Seconds a connection to the endpoint may stay silent (in the TLS handshake or while
-#: sending its request) before it is dropped.  Each connection has a thread of its own,
-#: so a silent one holds only that thread, never the other scrapes.
+#: Seconds a connection to the endpoint may last in all, from accept to the last byte of
+#: the response (TLS handshake, request and response together), however slowly it sends.
+#: Prometheus's own scrape_timeout defaults to 10 s.
 CONNECTION_TIMEOUT = 10.0
+#: Connections open at once, at most (the unit's LimitNOFILE leaves room for them).  A
+#: scrape needs one for a few milliseconds; past the bound the oldest connection still
+#: sending its request is closed to make room.
+MAX_CONNECTIONS = 32
 
 
 #: Shared by the snapshots of every stream that has no rejections or records yet.
@@ -282,62 +288,314 @@ def parse_listen(listen: str) -> tuple[str, int]:
     return (host or "127.0.0.1"), int(port)
 
 
-class _QuietHandler(WSGIRequestHandler):
-    """Serves one connection; logs nothing, and gives up on a client silent for too long."""
+class _Connection:
+    """One accepted connection: its task, and whether it is still sending its request."""
 
-    server: _EndpointServer
+    __slots__ = ("task", "reading", "since")
 
-    def setup(self) -> None:
-        super().setup()
-        self.connection.settimeout(self.server.connection_timeout)  # reads and writes alike
-
-    def log_message(self, format: str, *args: Any) -> None:
-        """Log nothing: a scrape is not an event."""
+    def __init__(self, task: asyncio.Task[None]) -> None:
+        self.task = task
+        self.reading = True  # the TLS handshake or the request head is not complete yet
+        self.since = time.monotonic()
 
 
-class _EndpointServer(ThreadingWSGIServer):
-    """A thread per connection; with TLS the handshake runs in that thread, under a timeout.
+_Key = tuple[str, tuple[str, ...], bool]
 
-    prometheus_client's own TLS wraps the listening socket, so the handshake runs inside
-    ``accept()`` on the one thread that accepts: a client that connects and sends nothing
-    would hold up every other scrape.  Here the listening socket stays plain, an accepted
-    socket is wrapped without a handshake, and the connection's own thread does the
-    handshake with ``connection_timeout`` on the socket, closing it on failure.
+
+class _Renderer:
+    """Renders the exposition in a thread of its own, one render at a time, shared by every
+    request that arrived before it started.
+
+    A request joins the batch for its kind of output (format, names asked for,
+    gzip); the thread takes all waiting batches, renders each once and hands the
+    bytes to every request of it.  So each scrape sees figures gathered after it
+    arrived, and any number of parallel scrapers cost one render at a time:
+    with 10,000 streams a render is about 1.3 MB of text and a good part of a
+    second of CPU, and eight scrapers each rendering in a thread of its own kept
+    the main thread from the interpreter lock for seconds (alerts waited 5-6 s).
+    After each render the thread rests as long as the render took, so scraping
+    takes at most about half of one core however hard it is pushed.
     """
 
-    def __init__(self, host: str, port: int, tls: ssl.SSLContext | None,
-                 connection_timeout: float) -> None:
+    def __init__(self, registry: CollectorRegistry) -> None:
+        self._registry = registry
+        self._cv = threading.Condition()
+        self._waiting: dict[_Key, list[tuple[asyncio.AbstractEventLoop, asyncio.Future[Any]]]] = {}
+        self._closed = False
+        self.renders = 0
+        # Started here, with the endpoint: no thread is ever started while serving.
+        self._thread = threading.Thread(target=self._run, name="metrics-render", daemon=True)
+        self._thread.start()
+
+    def submit(self, key: _Key, fut: asyncio.Future[Any]) -> None:
+        with self._cv:
+            self._waiting.setdefault(key, []).append((fut.get_loop(), fut))
+            self._cv.notify()
+
+    def close(self) -> None:
+        with self._cv:
+            self._closed = True
+            self._cv.notify()
+        self._thread.join()
+
+    def _run(self) -> None:
+        while True:
+            with self._cv:
+                self._cv.wait_for(lambda: self._closed or bool(self._waiting))
+                if self._closed:
+                    return
+                batches, self._waiting = self._waiting, {}
+            started = time.monotonic()
+            for key, waiters in batches.items():
+                try:
+                    result: Any = self._render(*key)
+                except Exception as exc:  # a failed render fails its scrapes, never the thread
+                    result = exc
+                for loop, fut in waiters:
+                    try:
+                        loop.call_soon_threadsafe(_settle, fut, result)
+                    except RuntimeError:  # the endpoint's loop has closed
+                        pass
+                self.renders += 1
+            took = time.monotonic() - started
+            with self._cv:  # rest as long as the render took (or until closed)
+                self._cv.wait_for(lambda: self._closed, timeout=min(took, 5.0))
+
+    def _render(self, accept: str, names: tuple[str, ...], zipped: bool) -> tuple[bytes, str, bool]:
+        encoder, content_type = choose_encoder(accept)
+        registry: Any = self._registry.restricted_registry(list(names)) if names else self._registry
+        out = encoder(registry)
+        if zipped:
+            out = gzip.compress(out, compresslevel=1)
+        return out, content_type, zipped
+
+
+def _settle(fut: asyncio.Future[Any], result: Any) -> None:
+    if fut.done():
+        return
+    if isinstance(result, BaseException):
+        fut.set_exception(result)
+    else:
+        fut.set_result(result)
+
+
+_STATUS = {200: "OK", 400: "Bad Request", 404: "Not Found", 405: "Method Not Allowed",
+           500: "Internal Server Error", 503: "Service Unavailable"}
+
+#: Longest request head (request line and headers) read; a longer one is cut off.
+_MAX_HEAD = 16384
+
+
+def _response(status: int, body: bytes, content_type: str = "text/plain; charset=utf-8",
+              extra: tuple[tuple[str, str], ...] = (), *, head_only: bool = False) -> bytes:
+    lines = [f"HTTP/1.1 {status} {_STATUS.get(status, '')}", f"Content-Type: {content_type}",
+             f"Content-Length: {len(body)}", "Connection: close"]
+    lines += [f"{k}: {v}" for k, v in extra]
+    return ("\r\n".join(lines) + "\r\n\r\n").encode("latin-1") + (b"" if head_only else body)
+
+
+class _Endpoint:
+    """The metrics endpoint: one asyncio loop in one thread serves every connection.
+
+    Each connection gets ``deadline`` seconds in all, from accept to the last
+    byte of the response (TLS handshake, request, response), however slowly it
+    sends: a client that trickles a byte every few seconds is cut at the
+    deadline (the threaded server it replaces timed each read, so such a client
+    stayed for ever, with a thread of its own).  At most ``max_connections`` are
+    open at once; a new one past the bound closes the oldest that has not
+    finished sending its request (a slow or silent client), or, when every one
+    is being answered, gets a 503 and is closed.  No thread is made per
+    connection, so slow clients cannot make the daemon start a thread it cannot
+    have (under a task limit), and the file descriptors it takes stay within
+    the bound.  The listening socket stays plain; TLS starts on each accepted
+    connection, inside its deadline, so a silent client holds up no other.
+    """
+
+    def __init__(self, host: str, port: int, tls: ssl.SSLContext | None, deadline: float,
+                 max_connections: int, registry: CollectorRegistry) -> None:
+        if max_connections < 1:
+            raise ValueError(f"max_connections must be at least 1, got {max_connections}")
         family, _, _, _, sockaddr = socket.getaddrinfo(
             host, port, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)[0]
-        self.address_family = family  # read by TCPServer.__init__ when it makes the socket
-        self.tls = tls
-        self.connection_timeout = connection_timeout
-        super().__init__((str(sockaddr[0]), port), _QuietHandler)
-
-    def get_request(self) -> tuple[socket.socket, Any]:
-        sock, addr = super().get_request()
-        if self.tls is None:
-            return sock, addr
-        try:  # no I/O here: the handshake waits for the connection's thread
-            return self.tls.wrap_socket(sock, server_side=True,
-                                        do_handshake_on_connect=False), addr
-        except OSError:
+        sock = socket.socket(family, socket.SOCK_STREAM)
+        try:
+            sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+            sock.bind(sockaddr)
+            sock.listen(128)
+            sock.setblocking(False)
+        except BaseException:
             sock.close()
             raise
+        self.sock = sock
+        self.server_address = sock.getsockname()
+        self.tls = tls
+        self.deadline = deadline
+        self.max_connections = max_connections
+        self.shed = 0  # connections closed or refused at the bound
+        self._conns: dict[asyncio.Task[None], _Connection] = {}  # still reading or being answered
+        self._held = 0  # accepted sockets not yet closed (shed ones included until they are)
+        self._freed: asyncio.Event
+        self._loop = asyncio.new_event_loop()
+        self._loop.set_exception_handler(lambda loop, context: None)  # clients' faults are no events
+        self._ready = threading.Event()
+        self.renderer: _Renderer | None = None
+        self.thread: threading.Thread | None = None
+        try:
+            self.renderer = _Renderer(registry)
+            self.thread = threading.Thread(target=self._serve, name="metrics-http", daemon=True)
+            self.thread.start()
+            self._ready.wait()
+        except BaseException:
+            self.close()
+            raise
 
-    def finish_request(self, request: Any, client_address: Any) -> None:
-        if isinstance(request, ssl.SSLSocket):
-            request.settimeout(self.connection_timeout)
+    # ----------------------------------------------------------- the loop's thread
+    def _serve(self) -> None:
+        asyncio.set_event_loop(self._loop)
+        self._freed = asyncio.Event()
+        accepting = self._loop.create_task(self._accept())
+        self._ready.set()
+        try:
+            self._loop.run_forever()
+        finally:
+            accepting.cancel()
+            for task in list(self._conns):
+                task.cancel()
+            self._loop.run_until_complete(
+                asyncio.gather(accepting, *self._conns, return_exceptions=True))
+
+    async def _accept(self) -> None:
+        """Accept one connection at a time; past the bound, make room first.
+
+        The accepted socket is one over the bound for as long as it takes to
+        close the oldest connection still sending its request; when every
+        connection is being answered, the new one gets a 503 and is closed.
+        Nothing more is accepted meanwhile (the kernel's backlog holds them),
+        so the descriptors held never pass ``max_connections + 1``.
+        """
+        loop = self._loop
+        while True:
             try:
-                request.do_handshake()
-            except OSError:  # silent, too slow, plain HTTP, or an unsigned client certificate
-                return  # process_request_thread closes the socket
-        super().finish_request(request, client_address)
+                conn, _ = await loop.sock_accept(self.sock)
+            except OSError:  # out of descriptors (another part of the process), or a reset
+                await asyncio.sleep(0.1)
+                continue
+            if self._held >= self.max_connections:
+                if not self._shed_one():
+                    self.shed += 1
+                    try:
+                        conn.setblocking(False)
+                        conn.send(_response(503, b"too many connections to the metrics endpoint\n"))
+                    except OSError:
+                        pass
+                    conn.close()
+                    continue
+                while self._held >= self.max_connections:
+                    self._freed.clear()
+                    await self._freed.wait()
+            self._held += 1
+            task = loop.create_task(self._handle(conn))
+            self._conns[task] = _Connection(task)
+            # The bookkeeping is the task's done callback, not its own finally: a task
+            # shed before it first ran never enters its try, and would leak its place.
+            task.add_done_callback(lambda t, conn=conn: self._done(t, conn))
 
-    def handle_error(self, request: Any, client_address: Any) -> None:
-        """A client that timed out or hung up is no error of ours; anything else is printed."""
-        if not isinstance(sys.exc_info()[1], OSError):
-            super().handle_error(request, client_address)
+    def _done(self, task: asyncio.Task[None], conn: socket.socket) -> None:
+        self._conns.pop(task, None)
+        conn.close()  # no-op when the handler's transport has closed it already
+        self._held -= 1
+        self._freed.set()
+
+    def _shed_one(self) -> bool:
+        """Close the oldest connection still sending its request; False when there is none."""
+        oldest = min((c for c in self._conns.values() if c.reading), key=lambda c: c.since, default=None)
+        if oldest is None:
+            return False
+        del self._conns[oldest.task]
+        oldest.task.cancel()
+        self.shed += 1
+        return True
+
+    async def _handle(self, conn: socket.socket) -> None:
+        task = asyncio.current_task()
+        assert task is not None
+        writer: asyncio.StreamWriter | None = None
+        answered = False
+        try:
+            async with asyncio.timeout(self.deadline):
+                # The TLS handshake, when there is one, is part of the connection's deadline.
+                reader = asyncio.StreamReader(limit=_MAX_HEAD, loop=self._loop)
+                protocol = asyncio.StreamReaderProtocol(reader, loop=self._loop)
+                transport, _ = await self._loop.connect_accepted_socket(
+                    lambda: protocol, sock=conn, ssl=self.tls,
+                    ssl_handshake_timeout=self.deadline if self.tls is not None else None)
+                writer = asyncio.StreamWriter(transport, protocol, reader, self._loop)
+                head = await reader.readuntil(b"\r\n\r\n")
+                record = self._conns.get(task)
+                if record is not None:
+                    record.reading = False
+                await self._answer(head, writer)
+                answered = True
+        except (Exception, asyncio.CancelledError):
+            pass  # timed out, shed, hung up, a bad handshake or request: closed, nothing to tell
+        finally:
+            self._conns.pop(task, None)
+            if writer is not None:  # else _done closes the socket
+                if answered:
+                    writer.close()
+                else:
+                    writer.transport.abort()
+                try:
+                    await asyncio.wait_for(writer.wait_closed(), 2.0)
+                except (Exception, asyncio.CancelledError):
+                    writer.transport.abort()
+
+    async def _answer(self, head: bytes, writer: asyncio.StreamWriter) -> None:
+        lines = head.decode("latin-1").split("\r\n")
+        parts = lines[0].split(" ")
+        if len(parts) != 3:
+            writer.write(_response(400, b"bad request\n"))
+            return
+        method, target, _ = parts
+        headers = {}
+        for line in lines[1:]:
+            name, sep, value = line.partition(":")
+            if sep:
+                headers[name.strip().lower()] = value.strip()
+        if method not in ("GET", "HEAD"):
+            writer.write(_response(405, b"only GET and HEAD are served\n"))
+            return
+        url = urlsplit(target)
+        if url.path not in ("/metrics", "/"):
+            writer.write(_response(404, b"not found; the metrics are at /metrics\n"))
+            return
+        names = tuple(sorted(parse_qs(url.query).get("name[]", [])))
+        key = (headers.get("accept", ""), names, gzip_accepted(headers.get("accept-encoding", "")))
+        fut: asyncio.Future[tuple[bytes, str, bool]] = self._loop.create_future()
+        assert self.renderer is not None
+        self.renderer.submit(key, fut)
+        try:
+            body, content_type, zipped = await fut
+        except Exception:
+            writer.write(_response(500, b"the metrics could not be rendered\n"))
+            return
+        extra = (("Content-Encoding", "gzip"),) if zipped else ()
+        writer.write(_response(200, body, content_type, extra, head_only=method == "HEAD"))
+        await writer.drain()
+
+    # ----------------------------------------------------------- from other threads
+    def open_connections(self) -> int:
+        return self._held
+
+    def close(self) -> None:
+        if self.thread is not None and self.thread.is_alive():
+            self._loop.call_soon_threadsafe(self._loop.stop)
+            self.thread.join()
+        if not self._loop.is_closed():
+            self._loop.close()
+        if self.renderer is not None:
+            self.renderer.close()
+        self.sock.close()
 
 
 def _tls_context(certfile: str, keyfile: str, client_cafile: str | None) -> ssl.SSLContext:
@@ -366,18 +624,31 @@ class MetricsServer:
     port : the port it is bound to (the chosen one when port 0 was asked for).
     """
 
-    def __init__(self, server: ThreadingWSGIServer, thread: threading.Thread) -> None:
-        self._server = server
-        self._thread = thread
-        addr = server.server_address
+    def __init__(self, endpoint: _Endpoint) -> None:
+        self._endpoint = endpoint
+        addr = endpoint.server_address
         self.host: str = str(addr[0])
         self.port: int = int(addr[1])
 
+    @property
+    def shed(self) -> int:
+        """Connections closed or refused at the bound so far."""
+        return self._endpoint.shed
+
+    @property
+    def open_connections(self) -> int:
+        """Connections open now."""
+        return self._endpoint.open_connections()
+
+    @property
+    def renders(self) -> int:
+        """Renders of the exposition so far (one serves every scrape that waited for it)."""
+        r = self._endpoint.renderer
+        return 0 if r is None else r.renders
+
     def close(self) -> None:
-        """Stop serving, close the socket and wait for the serving thread."""
-        self._server.shutdown()
-        self._server.server_close()
-        self._thread.join()
+        """Stop serving, close the socket and wait for the endpoint's threads."""
+        self._endpoint.close()
 
     def __enter__(self) -> MetricsServer:
         return self
@@ -407,6 +678,9 @@ class Metrics:
     snapshots : state snapshots written.
     outbox_failures : alert records or outbox updates that could not be written to disk.
     journal_failures : rounds of samples that could not be appended to the journal.
+    states_set_aside : saved stream states that could not be used at start.
+    journal_damaged : sample journals found deleted, replaced or damaged.
+    client_id_conflicts : takeovers of the MQTT session by another client with our client id.
     """
 
     def __init__(self, registry: CollectorRegistry | None = None) -> None:
@@ -450,6 +724,20 @@ class Metrics:
             "shiftwatch_journal_failures",
             "Rounds of samples that could not be journaled (journaling resumes with the next "
             "snapshot).", registry=reg)
+        self.journal_damaged = Counter(
+            "shiftwatch_journal_damaged",
+            "Sample journals found deleted, replaced or with a damaged header, at start or while "
+            "running; the samples since the last snapshot that only they held are lost at start, "
+            "kept by an immediate snapshot while running.", registry=reg)
+        self.client_id_conflicts = Counter(
+            "shiftwatch_client_id_conflicts",
+            "Times the broker closed the connection in a way that means another client connected "
+            "with the same client id and took the session over; each doubles the wait before "
+            "the next attempt.", registry=reg)
+        self.states_set_aside = Counter(
+            "shiftwatch_stream_states_set_aside",
+            "Saved stream states that could not be used at start (malformed or damaged); "
+            "those streams warmed up again.", registry=reg)
         for family in _FAMILIES:
             reg.register(_StreamCollector(self, family))
 
@@ -469,12 +757,15 @@ class Metrics:
 
     def serve(self, listen: str = DEFAULT_LISTEN, *, certfile: str | None = None,
               keyfile: str | None = None, client_cafile: str | None = None,
-              connection_timeout: float = CONNECTION_TIMEOUT) -> MetricsServer:
+              connection_timeout: float = CONNECTION_TIMEOUT,
+              max_connections: int = MAX_CONNECTIONS) -> MetricsServer:
         """Serve the registry over HTTP (HTTPS when a certificate and key are given).
 
-        Each connection is served in a thread of its own, and the TLS handshake runs
-        there too, so a client that connects and stays silent holds only its own
-        thread, and only for ``connection_timeout`` seconds.  With a client CA,
+        One asyncio loop in one thread serves every connection, and one more thread
+        renders the exposition (see :class:`_Endpoint` and :class:`_Renderer`);
+        both start here and no other thread is ever started.  A connection has
+        ``connection_timeout`` seconds in all, TLS handshake, request and response
+        together; at most ``max_connections`` are open at once.  With a client CA,
         only scrapers presenting a certificate it signed are served.
 
         Parameters
@@ -482,8 +773,9 @@ class Metrics:
         listen : ``host:port``, see :func:`parse_listen`; loopback by default.
         certfile, keyfile : PEM certificate and private key; both or neither.
         client_cafile : PEM CA that signs the scrapers' client certificates (HTTPS only).
-        connection_timeout : seconds a connection may stay silent, in the TLS handshake or
-            before and within its request, before it is dropped.
+        connection_timeout : seconds a connection may last in all, from accept to the end of
+            the response, however slowly it sends; then it is closed.
+        max_connections : connections open at once, at most (see :class:`_Endpoint`).
 
         Returns
         -------
@@ -505,8 +797,5 @@ class Metrics:
         tls = None
         if certfile is not None and keyfile is not None:
             tls = _tls_context(certfile, keyfile, client_cafile)
-        server = _EndpointServer(host, port, tls, connection_timeout)
-        server.set_app(make_wsgi_app(self.registry))
-        thread = threading.Thread(target=server.serve_forever, name="metrics-http", daemon=True)
-        thread.start()
-        return MetricsServer(server, thread)
+        return MetricsServer(_Endpoint(host, port, tls, connection_timeout, max_connections,
+                                       self.registry))

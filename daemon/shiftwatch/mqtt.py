@@ -121,6 +121,16 @@ class _Client(paho.Client):
         return _ReadBuffer(sock, self.room)
 
 
+#: A connection lost with no reason within TAKEOVER_WINDOW seconds of coming up,
+#: TAKEOVER_STREAK times in a row with every reconnect succeeding at once, is taken as
+#: another client with our client id taking the session over.  (A broker restarted that
+#: often looks the same: Mosquitto 2.0 closes the socket without a word either way.)
+TAKEOVER_WINDOW = 10.0
+TAKEOVER_STREAK = 3
+#: Longest wait before reconnecting after such takeovers (it doubles with each).
+TAKEOVER_MAX_DELAY = 120
+
+
 class BrokerError(RuntimeError):
     """A broker problem the operator must fix (bad URL, unreadable password file)."""
 
@@ -452,8 +462,13 @@ class MqttLink:
         on_connection: Callable[[bool], None],
         logger: logging.Logger | None = None,
         password: str | None = None,
+        on_takeover: Callable[[], None] | None = None,
     ) -> None:
         self.cfg = cfg
+        self._on_takeover = on_takeover
+        self._connected_at = 0.0
+        self._short_losses = 0  # connections in a row lost soon after they came up, no reason given
+        self.takeovers = 0
         self.subscriptions = list(subscriptions)
         self.status_topic = status_topic
         self.log = logger or logging.getLogger(__name__)
@@ -596,6 +611,7 @@ class MqttLink:
     def _handle_connect(self, client: paho.Client, userdata: Any, flags: Any, reason: Any,
                         properties: Any) -> None:
         if reason.is_failure:
+            self._short_losses = 0
             hint = ""
             if "authori" in str(reason).lower() or "password" in str(reason).lower():
                 who = f"user {self.cfg.username!r}" if self.cfg.username else "no user name"
@@ -604,6 +620,7 @@ class MqttLink:
             self._report_error(f"refused the connection: {reason}{hint}")
             return
         self._connected = True
+        self._connected_at = time.monotonic()
         self._last_error = None
         self._failed_attempts = 0
         session = getattr(flags, "session_present", False)
@@ -616,6 +633,7 @@ class MqttLink:
         self._on_connection(True)
 
     def _handle_connect_fail(self, client: paho.Client, userdata: Any) -> None:
+        self._short_losses = 0  # the broker was away: an outage, not a takeover
         # paho calls this from inside its ``except OSError`` around the attempt, so the
         # exception being handled is the reason (it passes none itself).
         self._report_error(f"cannot connect: {describe_connect_error(sys.exc_info()[1])}")
@@ -645,7 +663,51 @@ class MqttLink:
         elif was:
             self.log.warning("disconnected from broker %s: %s; reconnecting with backoff",
                              self.url, reason)
+            self._taken_over(flags, reason)  # says what it most likely means, when it can
         self._on_connection(False)
+
+    def _taken_over(self, flags: Any, reason: Any) -> bool:
+        """True (after saying so, counting it and backing off) when another client has
+        most likely taken our session over by connecting with our client id.
+
+        MQTT 5 has a reason for it (0x8E, session taken over), but Mosquitto 2.0
+        sends no DISCONNECT at all: it closes the socket, which paho reports as
+        "Unspecified error".  So a connection lost that way within
+        TAKEOVER_WINDOW seconds of coming up, TAKEOVER_STREAK times in a row, is
+        taken as one.
+        Each such loss doubles the wait before the next attempt (up to
+        TAKEOVER_MAX_DELAY), so two programs with one client id stop kicking
+        each other off every second; a connection that lasts resets it.
+        """
+        lived = time.monotonic() - self._connected_at
+        code = getattr(reason, "value", None)
+        from_server = bool(getattr(flags, "is_disconnect_packet_from_server", False))
+        if code == 0x8E:
+            self._short_losses = max(self._short_losses, TAKEOVER_STREAK - 1) + 1
+        elif not from_server and lived < TAKEOVER_WINDOW:
+            self._short_losses += 1
+        else:
+            self._short_losses = 0
+            if self.takeovers:
+                self.takeovers = 0
+                self.client.reconnect_delay_set(min_delay=1, max_delay=30)
+            return False
+        if self._short_losses < TAKEOVER_STREAK:
+            return False
+        self.takeovers += 1
+        delay = min(2 ** self.takeovers, TAKEOVER_MAX_DELAY)
+        self.client.reconnect_delay_set(min_delay=delay, max_delay=max(30, delay))
+        if self._on_takeover is not None:
+            self._on_takeover()
+        why = ("the broker says another client took the session over" if code == 0x8E else
+               f"the broker closed the connection {lived:.1f} s after accepting it, with no reason "
+               f"given, {self._short_losses} times in a row")
+        self.log.warning("broker %s: %s: another client is most likely connecting with our client id "
+                         "%r (a second shiftwatch with the same broker.client_id, or another program), "
+                         "and the messages of our subscriptions then go to it, not to us (or the broker "
+                         "restarted that often); next attempt in %d s", self.url, why,
+                         self.cfg.client_id, delay)
+        return True
 
     def _room(self, timeout: float) -> bool:
         # Reading never pauses before the CONNACK: a connection made while the

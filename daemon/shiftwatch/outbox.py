@@ -31,7 +31,7 @@ import zlib
 from dataclasses import dataclass
 from pathlib import Path
 
-from shiftwatch.fsutil import fsync_dir
+from shiftwatch.fsutil import explain_os_error, fsync_dir
 
 __all__ = ["OutboxItem", "Outbox"]
 
@@ -143,7 +143,7 @@ class Outbox:
             self._next = 0
             self._log.error("outbox: directory %s cannot be used (%s); alert records are kept in "
                             "memory only and do not survive a restart", self.directory,
-                            exc.strerror or exc)
+                            explain_os_error(exc, self.directory))
         with self._lock:
             self._trim()
 

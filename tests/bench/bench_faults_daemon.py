@@ -18,6 +18,19 @@ Parts:
 4. Clock jumps: streams whose senders' clocks jump ahead, back and to the
    epoch at random; the daemon's rejection counters against the policy
    applied independently here.
+5. Slow clients of /metrics (issue 11): 1,100 connections that each send a
+   byte of a request every 0.5 s and never finish it, for 15 s, against the
+   daemon under the unit's file limit (LimitNOFILE=256); meanwhile scrapes,
+   a broker restart, snapshots.  Tally: scrapes answered and failed, the
+   daemon's most open files and threads, slow clients shed or cut.
+6. The same under a task limit: the daemon in a pids cgroup of 60 tasks.
+7. Two instances on one state directory: a second ``run`` with another port
+   and client id is refused; the first, killed, comes back with every sample.
+8. Start-up with the largest journal allowed (journal.MAX_BYTES): time from
+   exec to connected, peak memory, samples replayed.
+
+``--part`` runs only the parts named (kills, journal, disk, clock,
+slow-clients, task-limit, two-instances, journal-start).
 
 Targets (exit status 1 when one is missed): with the journal no sample lost,
 no snapshot corrupt, every shift alerted, duplicates share their id; without
@@ -62,6 +75,8 @@ from shiftwatch.broker import MosquittoBroker, free_port
 from shiftwatch.mqtt import PlainClient
 
 JOURNAL_RATIO_TARGET = 0.8
+#: Start-up with a journal at its bound, seconds (exec to connected).
+JOURNAL_START_TARGET_S = 30.0
 DAY = 86400.0
 
 
@@ -279,71 +294,312 @@ def part_clock(tmp: Path, streams: int, samples: int) -> dict[str, Any]:
 
 
 # ---------------------------------------------------------------- report
+# ---------------------------------------------------------------- issue 11
+def _limits_config(tmp: Path, broker: MosquittoBroker, tag: str) -> tuple[Path, int]:
+    port = free_port()
+    cfg = config(tmp / f"{tag}.yaml", broker, tmp / f"{tag}-state", port)
+    return cfg, port
+
+
+def slow_clients_run(tmp: Path, tag: str, *, clients: int, seconds: float, nofile: int | None = None,
+                     pids: int | None = None) -> dict[str, Any]:
+    """One run of the daemon against ``clients`` slow clients (see part 5)."""
+    import resource
+
+    from faultkit import SlowClients, daemon_fds, daemon_threads, pids_cgroup
+
+    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    if soft < clients + 200:
+        resource.setrlimit(resource.RLIMIT_NOFILE, (min(hard, clients + 1000), hard))
+    broker = MosquittoBroker(workdir=tmp / f"{tag}-broker").start()
+    out: dict[str, Any] = {"scrapes": 0, "scrape_failures": 0, "fds": 0, "threads_grew": 0}
+    stack = []
+    try:
+        cfg, port = _limits_config(tmp, broker, tag)
+        command = shiftwatch_command()
+        if nofile is not None:
+            command = ["prlimit", f"--nofile={nofile}:{nofile}", "--", *command]
+        if pids is not None:
+            cm = pids_cgroup(pids)
+            group = cm.__enter__()
+            stack.append(cm)
+            command = ["sh", "-c", f'echo $$ > {group}/cgroup.procs && exec "$@"', "sh", *command]
+        d = Piped(command, cfg, port)
+        try:
+            pid = d.proc.pid
+            threads = daemon_threads(pid)
+            snaps = metric(scrape(port), "shiftwatch_snapshots_total") or 0.0
+            connects = d.text().count("connected to broker")
+            slow = SlowClients(port, clients)
+            restarted = False
+            t0 = time.monotonic()
+
+            def meanwhile() -> None:
+                nonlocal restarted
+                if d.proc.poll() is not None:
+                    return
+                out["fds"] = max(out["fds"], daemon_fds(pid))
+                out["threads_grew"] = max(out["threads_grew"], daemon_threads(pid) - threads)
+                try:
+                    scrape(port)
+                    out["scrapes"] += 1
+                except OSError:
+                    out["scrape_failures"] += 1
+                if not restarted and time.monotonic() - t0 > 3:
+                    broker.restart()
+                    restarted = True
+
+            try:
+                slow.run(seconds, meanwhile)
+                out["left_open"] = len(slow.open)
+            finally:
+                slow.close()
+            out["closed"] = slow.closed_by_server
+            out["refused"] = slow.refused
+            out["alive"] = d.proc.poll() is None
+            if out["alive"]:
+                out["reconnected"] = wait_until(lambda: d.text().count("connected to broker") > connects, 30)
+                out["snapshots_during"] = (metric(scrape(port), "shiftwatch_snapshots_total") or 0.0) - snaps
+            else:
+                out["reconnected"] = False
+                out["snapshots_during"] = 0.0
+        finally:
+            out["exit"] = d.stop()
+            text = d.text()
+            out["emfile"] = text.count("Too many open files")
+            out["no_thread"] = text.count("can't start new thread")
+            out["tracebacks"] = text.count("Traceback")
+    finally:
+        for cm in stack:
+            cm.__exit__(None, None, None)
+        broker.stop()
+    return out
+
+
+def part_slow_clients(tmp: Path, runs: int, clients: int, *, nofile: int | None = None,
+                      pids: int | None = None) -> list[dict[str, Any]]:
+    tag = "tasks" if pids else "files"
+    return [slow_clients_run(tmp, f"{tag}-{i}", clients=clients, seconds=15.0, nofile=nofile, pids=pids)
+            for i in range(runs)]
+
+
+def slow_text(runs: list[dict[str, Any]]) -> tuple[str, bool]:
+    tot = lambda k: sum(float(r.get(k, 0)) for r in runs)  # noqa: E731
+    text = (f"{len(runs)} runs: daemon alive {tot('alive'):.0f}, clean exit "
+            f"{sum(r['exit'] == 0 for r in runs)}; scrapes answered {tot('scrapes'):.0f}, failed "
+            f"{tot('scrape_failures'):.0f}; reconnected after a broker restart {tot('reconnected'):.0f}; "
+            f"snapshots while held {tot('snapshots_during'):.0f}; most open files "
+            f"{max(r['fds'] for r in runs)}, threads added {max(r['threads_grew'] for r in runs)}; slow "
+            f"clients closed by the daemon {tot('closed'):.0f}, refused at connect {tot('refused'):.0f}, "
+            f"open at the end {tot('left_open'):.0f}; 'Too many open files' {tot('emfile'):.0f}, "
+            f"'can't start new thread' {tot('no_thread'):.0f}, tracebacks {tot('tracebacks'):.0f}")
+    ok = all(r["alive"] and r["exit"] == 0 and r["scrape_failures"] == 0 and r["reconnected"]
+             and r["snapshots_during"] > 0 and r["threads_grew"] == 0 and not r["left_open"]
+             and not r["emfile"] and not r["no_thread"] and not r["tracebacks"] for r in runs)
+    return text, ok
+
+
+def part_two_instances(tmp: Path, runs: int) -> dict[str, Any]:
+    """Part 7: a second daemon on the first one's state directory, then a kill of the first."""
+    t = {"runs": runs, "refused": 0, "named_holder": 0, "sent": 0, "restored": 0, "ran_both": 0}
+    for i in range(runs):
+        broker = MosquittoBroker(workdir=tmp / f"two-{i}-broker").start()
+        try:
+            state = tmp / f"two-{i}-state"
+            port_a, port_b = free_port(), free_port()
+            cfg_a = config(tmp / f"two-{i}-a.yaml", broker, state, port_a, snapshot_every="1h")
+            cfg_b = config(tmp / f"two-{i}-b.yaml", broker, state, port_b, snapshot_every="1h")
+            a = Piped(shiftwatch_command(), cfg_a, port_a)
+            sender = Sender(broker.url, f"two-{i}-pub")
+            n = 600
+            t0 = time.time() - 900
+            for k in range(n // 2):
+                sender.send("bench/s1/v", {"v": 10.0 + 0.01 * (k % 7), "ts": t0 + k})
+            try:
+                b = Piped(shiftwatch_command(), cfg_b, port_b)
+                t["ran_both"] += 1
+                b.stop()
+            except RuntimeError as exc:
+                t["refused"] += 1
+                t["named_holder"] += f"pid {a.proc.pid}" in str(exc)
+            for k in range(n // 2, n):
+                sender.send("bench/s1/v", {"v": 10.0 + 0.01 * (k % 7), "ts": t0 + k})
+            sender.close()
+            t["sent"] += n
+            wait_until(lambda: metric(scrape(port_a), "shiftwatch_samples_total", stream="bench/s1/v") == n, 60)
+            a.proc.kill()
+            a.proc.wait()
+            a = Piped(shiftwatch_command(), cfg_a, port_a)
+            wait_until(lambda: metric(scrape(port_a), "shiftwatch_samples_total", stream="bench/s1/v") == n, 30)
+            t["restored"] += int(metric(scrape(port_a), "shiftwatch_samples_total", stream="bench/s1/v") or 0)
+            a.stop()
+        finally:
+            broker.stop()
+    return t
+
+
+def part_journal_start(tmp: Path, runs: int) -> dict[str, Any]:
+    """Part 8: start-up with a journal at its bound (500 streams, one sample each a round)."""
+    import secrets as _secrets
+
+    from shiftwatch.journal import MAX_BYTES, Journal, JournalGroup
+    from shiftwatch.statestore import StateStore
+
+    broker = MosquittoBroker(workdir=tmp / "jstart-broker").start()
+    out: dict[str, Any] = {"times": [], "hwm_mb": [], "replayed": 0, "journal_mb": 0.0, "empty_times": []}
+    try:
+        for i in range(runs):
+            for full in (False, True):
+                state = tmp / f"jstart-{i}-{int(full)}"
+                snaps = state / "snapshots"
+                token = _secrets.token_hex(8)
+                StateStore(snaps).save({}, {"saved_at": time.time(), "journal": token, "filters": {}})
+                j = Journal(snaps)
+                j.restart(token)
+                rounds = 0
+                if full:
+                    rng = np.random.default_rng(i)
+                    t0 = time.time() - 86400
+                    names = [f"bench/s{k:03d}/v" for k in range(500)]
+                    one = np.ones(1)
+                    try:
+                        while True:
+                            tt = t0 + rounds
+                            vals = 10.0 + 0.1 * rng.standard_normal(500)
+                            j.append([JournalGroup(nm, None, one * tt, one * vals[k], one * tt, "bench/+/v")
+                                      for k, nm in enumerate(names)])
+                            rounds += 1
+                    except OSError:  # the bound: MAX_BYTES
+                        pass
+                    out["journal_mb"] = j.size / 1e6
+                j.close()
+                port = free_port()
+                cfg = config(tmp / f"jstart-{i}-{int(full)}.yaml", broker, state, port)
+                t = time.monotonic()
+                d = Piped(shiftwatch_command(), cfg, port)
+                took = time.monotonic() - t
+                hwm = 0.0
+                for line in Path(f"/proc/{d.proc.pid}/status").read_text().splitlines():
+                    if line.startswith("VmHWM:"):
+                        hwm = int(line.split()[1]) / 1024
+                if full:
+                    out["times"].append(took)
+                    out["hwm_mb"].append(hwm)
+                    m = [ln for ln in d.text().splitlines() if "replayed" in ln]
+                    out["replayed_line"] = m[0] if m else "no replay line"
+                    out["rounds"] = rounds
+                else:
+                    out["empty_times"].append(took)
+                d.stop()
+        out["bound_mb"] = MAX_BYTES / 1e6
+    finally:
+        broker.stop()
+    return out
+
+
+PARTS = ("kills", "journal", "disk", "clock", "slow-clients", "task-limit", "two-instances",
+         "journal-start")
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true")
+    ap.add_argument("--part", action="append", choices=PARTS, help="run only this part (repeatable)")
     a = ap.parse_args()
+    parts = tuple(a.part or PARTS)
     tmp = Path(tempfile.mkdtemp(prefix="shiftwatch-bench-faults-"))
     rows: list[tuple[str, str, bool]] = []
     try:
-        kills = 6 if a.quick else 25
-        plan = Plan(streams=4, samples=2400 if a.quick else 8000, gap=400, rate=150.0, seed=3)
-        log("SIGKILL runs ...")
-        k = part_kills(tmp, kills, plan)
-        for journal in (True, False):
-            t = k[journal]
-            name = "journal on" if journal else "journal off"
-            bound = plan.rate * 1.0 * plan.streams  # one snapshot interval (1 s) of samples
-            per_kill = t.lost / max(t.kills, 1)
-            text = (f"{t.kills} kills ({t.snapshots_restored} after a snapshot), {t.published} samples: lost {t.lost} ({per_kill:.1f} per kill; "
-                    f"one 1 s snapshot interval is {bound:.0f}), reprocessed {t.reprocessed}; "
-                    f"records {t.records}, delivered twice {t.duplicates}; shifts {t.shifts}, "
-                    f"missed {t.shifts_missed}, alerted under two ids {t.shifts_with_two_ids}, "
-                    f"records off any shift {t.records_off_any_shift}; snapshots loaded "
-                    f"{t.snapshots_checked}, corrupt {t.snapshots_corrupt}, temp files seen "
-                    f"{t.temp_files_seen}; journal rounds replayable {t.journal_rounds_seen}; {t.seconds:.0f} s")
-            if journal:
-                ok = (t.lost == 0 and t.snapshots_corrupt == 0 and t.shifts_missed == 0
-                      and t.shifts_with_two_ids == 0 and t.records_off_any_shift == 0
-                      and not k.get("traceback-True"))
-            else:
-                # The reference: at most one snapshot interval lost per kill; shifts in a lost
-                # span are alerted late, at the first sample after it (counted, not a target).
-                ok = per_kill <= bound and t.snapshots_corrupt == 0
-            rows.append((f"SIGKILL, {name}", text, ok))
-        log("journal cost ...")
-        c = part_journal_cost(tmp, 2 if a.quick else 3, 100, 20000 if a.quick else 40000)
-        ratio = c["on"] / c["off"]
-        text = (f"{c['on']:,.0f} msg/s vs {c['off']:,.0f} msg/s = {ratio:.2f} (runs on "
-                f"{', '.join(f'{x:,.0f}' for x in c['runs_on'])}; off "
-                f"{', '.join(f'{x:,.0f}' for x in c['runs_off'])})")
-        rows.append(("journal cost (drain rate on / off)", text, ratio >= JOURNAL_RATIO_TARGET))
-        log("disk faults ...")
-        disk = part_disk(tmp, 1 if a.quick else 3, 4)
-        for kind, runs in disk.items():
-            alerted = sum(r["alerted"] for r in runs)
-            expected = sum(r["streams"] for r in runs)
-            text = (f"{len(runs)} runs: confirmed alerts {alerted}/{expected}; daemon alive in "
-                    f"{sum(r['alive'] for r in runs):.0f}, clean exit in "
-                    f"{sum(r['exit'] == 0 for r in runs)}; failures counted: snapshot "
-                    f"{sum(r['snapshot_failures'] for r in runs):.0f}, outbox "
-                    f"{sum(r['outbox_failures'] for r in runs):.0f}, journal "
-                    f"{sum(r['journal_failures'] for r in runs):.0f}; tracebacks "
-                    f"{sum(r['tracebacks'] for r in runs):.0f}")
-            ok = (alerted == expected and all(r["alive"] and r["exit"] == 0 and r["snapshot_failures"] > 0
-                                              and r["outbox_failures"] > 0 and not r["tracebacks"]
-                                              for r in runs))
-            rows.append((f"{kind} state directory", text, ok))
-        log("clock jumps ...")
-        clk = part_clock(tmp, 10 if a.quick else 40, 600 if a.quick else 1500)
-        want_tot = {r: sum(w[r] for w in clk["want"].values())
-                    for r in ("time_ahead", "time_behind", "out_of_order", "duplicate_time")}
-        got_tot = {r: sum(g[r] for g in clk["got"].values()) for r in want_tot}
-        exact = all(clk["got"][t] == {r: clk["want"][t][r] for r in want_tot} for t in clk["want"])
-        rows.append(("clock jumps", f"{clk['streams']} streams, {clk['samples']} samples: rejected "
-                     + ", ".join(f"{r} {got_tot[r]} (policy {want_tot[r]})" for r in want_tot)
-                     + f"; streams watching at the end {clk['watching']:.0f}/{clk['streams']}",
-                     exact and clk["watching"] == clk["streams"]))
+        if "kills" in parts:
+            kills = 6 if a.quick else 25
+            plan = Plan(streams=4, samples=2400 if a.quick else 8000, gap=400, rate=150.0, seed=3)
+            log("SIGKILL runs ...")
+            k = part_kills(tmp, kills, plan)
+            for journal in (True, False):
+                t = k[journal]
+                name = "journal on" if journal else "journal off"
+                bound = plan.rate * 1.0 * plan.streams  # one snapshot interval (1 s) of samples
+                per_kill = t.lost / max(t.kills, 1)
+                text = (f"{t.kills} kills ({t.snapshots_restored} after a snapshot), {t.published} samples: lost {t.lost} ({per_kill:.1f} per kill; "
+                        f"one 1 s snapshot interval is {bound:.0f}), reprocessed {t.reprocessed}; "
+                        f"records {t.records}, delivered twice {t.duplicates}; shifts {t.shifts}, "
+                        f"missed {t.shifts_missed}, alerted under two ids {t.shifts_with_two_ids}, "
+                        f"records off any shift {t.records_off_any_shift}; snapshots loaded "
+                        f"{t.snapshots_checked}, corrupt {t.snapshots_corrupt}, temp files seen "
+                        f"{t.temp_files_seen}; journal rounds replayable {t.journal_rounds_seen}; {t.seconds:.0f} s")
+                if journal:
+                    ok = (t.lost == 0 and t.snapshots_corrupt == 0 and t.shifts_missed == 0
+                          and t.shifts_with_two_ids == 0 and t.records_off_any_shift == 0
+                          and not k.get("traceback-True"))
+                else:
+                    # The reference: at most one snapshot interval lost per kill; shifts in a lost
+                    # span are alerted late, at the first sample after it (counted, not a target).
+                    ok = per_kill <= bound and t.snapshots_corrupt == 0
+                rows.append((f"SIGKILL, {name}", text, ok))
+        if "journal" in parts:
+            log("journal cost ...")
+            c = part_journal_cost(tmp, 2 if a.quick else 3, 100, 20000 if a.quick else 40000)
+            ratio = c["on"] / c["off"]
+            text = (f"{c['on']:,.0f} msg/s vs {c['off']:,.0f} msg/s = {ratio:.2f} (runs on "
+                    f"{', '.join(f'{x:,.0f}' for x in c['runs_on'])}; off "
+                    f"{', '.join(f'{x:,.0f}' for x in c['runs_off'])})")
+            rows.append(("journal cost (drain rate on / off)", text, ratio >= JOURNAL_RATIO_TARGET))
+        if "disk" in parts:
+            log("disk faults ...")
+            disk = part_disk(tmp, 1 if a.quick else 3, 4)
+            for kind, runs in disk.items():
+                alerted = sum(r["alerted"] for r in runs)
+                expected = sum(r["streams"] for r in runs)
+                text = (f"{len(runs)} runs: confirmed alerts {alerted}/{expected}; daemon alive in "
+                        f"{sum(r['alive'] for r in runs):.0f}, clean exit in "
+                        f"{sum(r['exit'] == 0 for r in runs)}; failures counted: snapshot "
+                        f"{sum(r['snapshot_failures'] for r in runs):.0f}, outbox "
+                        f"{sum(r['outbox_failures'] for r in runs):.0f}, journal "
+                        f"{sum(r['journal_failures'] for r in runs):.0f}; tracebacks "
+                        f"{sum(r['tracebacks'] for r in runs):.0f}")
+                ok = (alerted == expected and all(r["alive"] and r["exit"] == 0 and r["snapshot_failures"] > 0
+                                                  and r["outbox_failures"] > 0 and not r["tracebacks"]
+                                                  for r in runs))
+                rows.append((f"{kind} state directory", text, ok))
+        if "clock" in parts:
+            log("clock jumps ...")
+            clk = part_clock(tmp, 10 if a.quick else 40, 600 if a.quick else 1500)
+            want_tot = {r: sum(w[r] for w in clk["want"].values())
+                        for r in ("time_ahead", "time_behind", "out_of_order", "duplicate_time")}
+            got_tot = {r: sum(g[r] for g in clk["got"].values()) for r in want_tot}
+            exact = all(clk["got"][t] == {r: clk["want"][t][r] for r in want_tot} for t in clk["want"])
+            rows.append(("clock jumps", f"{clk['streams']} streams, {clk['samples']} samples: rejected "
+                         + ", ".join(f"{r} {got_tot[r]} (policy {want_tot[r]})" for r in want_tot)
+                         + f"; streams watching at the end {clk['watching']:.0f}/{clk['streams']}",
+                         exact and clk["watching"] == clk["streams"]))
+        if "slow-clients" in parts:
+            log("slow metrics clients under the unit's file limit ...")
+            runs = part_slow_clients(tmp, 1 if a.quick else 3, 300 if a.quick else 1100, nofile=256)
+            text, ok = slow_text(runs)
+            rows.append(("1,100 slow /metrics clients, LimitNOFILE=256" if not a.quick else
+                         "300 slow /metrics clients, LimitNOFILE=256", text, ok))
+        if "task-limit" in parts:
+            log("slow metrics clients under a task limit ...")
+            runs = part_slow_clients(tmp, 1 if a.quick else 3, 300 if a.quick else 1100, pids=60)
+            text, ok = slow_text(runs)
+            rows.append(("the same in a pids cgroup of 60 tasks", text, ok))
+        if "two-instances" in parts:
+            log("two instances on one state directory ...")
+            two = part_two_instances(tmp, 2 if a.quick else 5)
+            text = (f"{two['runs']} runs: second daemon refused {two['refused']}, naming the first's pid "
+                    f"{two['named_holder']}, ran side by side {two['ran_both']}; after a SIGKILL of the first, "
+                    f"samples restored {two['restored']} of {two['sent']}")
+            rows.append(("two instances, one state.dir", text,
+                         two["refused"] == two["runs"] == two["named_holder"] and two["restored"] == two["sent"]))
+        if "journal-start" in parts:
+            log("start-up with a journal at its bound ...")
+            js = part_journal_start(tmp, 1 if a.quick else 3)
+            med = statistics.median(js["times"])
+            text = (f"journal {js['journal_mb']:.1f} MB (bound {js['bound_mb']:.1f} MB, {js['rounds']} rounds of "
+                    f"500 streams): exec to connected {', '.join(f'{x:.1f}' for x in js['times'])} s "
+                    f"(empty journal {', '.join(f'{x:.2f}' for x in js['empty_times'])} s), peak RSS "
+                    f"{', '.join(f'{x:.0f}' for x in js['hwm_mb'])} MB; {js['replayed_line']}")
+            rows.append(("start-up with the largest journal", text, med <= JOURNAL_START_TARGET_S))
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
     print("| fault | tally | target |")

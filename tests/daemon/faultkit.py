@@ -3,16 +3,26 @@
 A :class:`TallyPublisher` is a QoS 1 publisher with a persistent session that
 keeps count of the samples the broker acknowledged; :class:`AlertViewer`
 subscribes to the alert topic with a persistent session of its own; the
-metric helpers scrape the daemon's real endpoint over HTTP.
+metric helpers scrape the daemon's real endpoint over HTTP.  For the metrics
+endpoint's limits (tests/daemon/test_metrics_limits.py and
+bench_faults_daemon.py): :class:`SlowClients` that trickle requests, the
+daemon's open files and threads from /proc, and a pids cgroup.
 """
 
 from __future__ import annotations
 
+import contextlib
+import itertools
 import json
+import os
+import select
+import socket
 import threading
 import time
 import urllib.request
 from collections import deque
+from collections.abc import Iterator
+from pathlib import Path
 from typing import Any, Callable
 
 from prometheus_client.parser import text_string_to_metric_families
@@ -194,3 +204,102 @@ def settle(port: int, want: dict[str, int], timeout: float = 60.0, quiet: float 
             return got
         time.sleep(0.05)
     return last
+
+
+# ------------------------------------------------------------ the endpoint's limits
+SLOW_REQUEST = b"GET /metrics HTTP/1.1\r\nHost: 127.0.0.1\r\nX-Slow: " + b"a" * 4000
+
+
+class SlowClients:
+    """``n`` connections that each send one byte of a request every ``every`` seconds and
+    never finish it; counts those the server closes.  Bounded: ``n`` sockets, and the
+    caller's loop of :meth:`trickle` stops at its own deadline."""
+
+    def __init__(self, port: int, n: int, every: float = 0.5) -> None:
+        self.every = every
+        self.open: dict[socket.socket, int] = {}
+        self.closed_by_server = 0
+        self.refused = 0
+        for _ in range(n):
+            try:
+                s = socket.create_connection(("127.0.0.1", port), timeout=5)
+            except OSError:
+                self.refused += 1
+                continue
+            s.setblocking(False)
+            self.open[s] = 0
+
+    def trickle(self) -> None:
+        """Send the next byte on each open connection; notice the ones closed meanwhile."""
+        if self.open:
+            poller = select.poll()  # not select(): past 1,024 descriptors it cannot
+            by_fd = {s.fileno(): s for s in self.open}
+            for fd in by_fd:
+                poller.register(fd, select.POLLIN)
+            for fd, _ in poller.poll(0):
+                self._close(by_fd[fd])
+        for s, sent in list(self.open.items()):
+            try:
+                s.send(SLOW_REQUEST[sent:sent + 1])
+                self.open[s] = sent + 1
+            except (BlockingIOError, InterruptedError):
+                pass
+            except OSError:  # reset or broken pipe: the server closed it
+                self._close(s)
+
+    def _close(self, s: socket.socket) -> None:
+        self.open.pop(s, None)
+        self.closed_by_server += 1
+        s.close()
+
+    def run(self, seconds: float, between: callable = None) -> None:  # type: ignore[valid-type]
+        end = time.monotonic() + seconds
+        while self.open and time.monotonic() < end:
+            self.trickle()
+            if between is not None:
+                between()
+            time.sleep(self.every)
+
+    def close(self) -> None:
+        for s in self.open:
+            s.close()
+        self.open.clear()
+
+
+def daemon_fds(pid: int) -> int:
+    return len(os.listdir(f"/proc/{pid}/fd"))
+
+
+def daemon_threads(pid: int) -> int:
+    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+        if line.startswith("Threads:"):
+            return int(line.split()[1])
+    raise AssertionError("no Threads line")
+
+
+_count = itertools.count()
+
+
+class CgroupUnavailable(RuntimeError):
+    """No pids cgroup can be made here (not root, or no cgroup v1 pids hierarchy)."""
+
+
+@contextlib.contextmanager
+def pids_cgroup(limit: int) -> Iterator[Path]:
+    """A cgroup (v1 pids controller) that allows ``limit`` tasks; root only."""
+    base = Path("/sys/fs/cgroup/pids")
+    path = base / f"shiftwatch-test-{os.getpid()}-{next(_count)}"
+    try:
+        path.mkdir()
+        (path / "pids.max").write_text(f"{limit}\n")
+    except OSError as exc:
+        raise CgroupUnavailable(f"cannot make a pids cgroup in {base}: {exc}") from None
+    try:
+        yield path
+    finally:
+        for _ in range(100):
+            try:
+                path.rmdir()
+                break
+            except OSError:
+                time.sleep(0.1)

@@ -83,6 +83,7 @@ REASON_EXAMPLES: dict[str, tuple[bytes, str, dict[str, Any]]] = {
     "no_time": (b'{"value": 1}', "json", {"time_path": "ts"}),
     "bad_time": (b'{"value": 1, "ts": "yesterday"}', "json", {"time_path": "ts"}),
     "senml_invalid": (b'[{"v": 1}]', "senml", {}),
+    "duplicate_key": (b'{"value": 1, "value": 2}', "json", {}),
 }
 
 
@@ -708,7 +709,9 @@ def test_decode_many_equals_decode_on_flat_objects_and_their_defects() -> None:
     assert decode_module._joined_objects([b'{"a":"}', b'{","b":1}'], 65536) is None
     out = decode_many(payloads, "json", now=[NOW] * len(payloads), **kwargs)
     assert out == each(payloads, **kwargs)
-    assert [r.value for d in out for r in d.readings] == [1.5, 2.0, 5.0, 6.0, 7.25]
+    # {"v": 4, "v": 5} is set aside as duplicate_key (it once gave 5, the last value, silently)
+    assert [r.value for d in out for r in d.readings] == [1.5, 2.0, 6.0, 7.25]
+    assert reasons(out[7]) == ["duplicate_key"]
     assert out[8].readings[0].time == 1764633604.5  # epoch milliseconds, also on the quick path
 
 
@@ -759,3 +762,36 @@ def test_property_decode_many_equals_decode(items: list[list[str]], time_path: s
 @given(payloads=st.lists(st.binary(max_size=40), max_size=5), fmt=FORMATS)
 def test_property_decode_many_on_arbitrary_bytes(payloads: list[bytes], fmt: str) -> None:
     assert decode_many(payloads, fmt, now=[NOW] * len(payloads)) == each(payloads, fmt)
+
+
+# ---------------------------------------------------------------------------
+# Duplicate keys.  RFC 8259 section 4 says names within an object SHOULD be
+# unique and that receivers differ on what they do with repeats; Python's json
+# keeps the last.  For the value or time key that would be a silent choice
+# between two readings, so such an item is set aside as duplicate_key.  Repeats
+# of keys the stream does not use change nothing.
+
+@pytest.mark.parametrize("payload, kwargs, kept", [
+    (b'{"value": 1, "value": 2}', {}, []),
+    (b'{"value": 1, "ts": 5, "ts": 6}', {"time_path": "ts"}, []),
+    (b'{"a": {"b": 1, "b": 2}}', {"value_path": "a.b"}, []),
+    (b'{"v\\u0061lue": 1, "value": 2}', {}, []),  # the same key, spelled with an escape
+    (b'{"value": 1, "note": "x", "note": "y"}', {}, [1.0]),
+    (b'{"value": 1, "meta": {"value": 2}}', {}, [1.0]),  # the same name in another object
+    (b'[{"value": 1, "value": 2}, {"value": 3}]', {}, [3.0]),  # one batch item only
+])
+def test_a_repeated_value_or_time_key_sets_the_item_aside(payload: bytes, kwargs: dict[str, Any],
+                                                          kept: list[float]) -> None:
+    out = decode(payload, "json", now=NOW, **kwargs)
+    assert [r.value for r in out.readings] == kept
+    assert reasons(out) == ([] if kept == [1.0] else ["duplicate_key"])
+    # decode_many, over flat objects joined into one parse, says the same
+    if payload.startswith(b"{"):
+        many = decode_many([b'{"value": 7}', payload, b'{"value": 8}'], "json", now=[NOW] * 3, **kwargs)
+        assert many[1] == out
+
+
+def test_a_senml_record_with_a_repeated_field_is_set_aside_alone() -> None:
+    out = decode(b'[{"bn": "line2/", "n": "a", "v": 1, "v": 2}, {"n": "b", "v": 3}]', "senml", now=NOW)
+    assert [(r.name, r.value) for r in out.readings] == [("line2/b", 3.0)]
+    assert reasons(out) == ["duplicate_key"]

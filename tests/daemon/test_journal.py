@@ -231,6 +231,8 @@ def test_background_syncs_leave_the_caller_and_close_waits_for_them(
 
     monkeypatch.setattr(os, "fdatasync", held_fdatasync)
     j = Journal(tmp_path, sync_every=0.0, background=True)
+    j.start_background()  # its thread starts here, at start-up, never on the way of a round
+    threads = threading.active_count()
     j.open("snap-1")
     rounds = [[group("line1/fill", 4, k)] for k in range(20)]
     for r in rounds:
@@ -239,4 +241,6 @@ def test_background_syncs_leave_the_caller_and_close_waits_for_them(
     disk.set()
     j.close()
     assert calls == ["shiftwatch-journal-sync", "MainThread"]
+    assert threading.active_count() == threads  # no thread was started per sync
+    j.stop_background()
     assert same(Journal(tmp_path).open("snap-1"), rounds)

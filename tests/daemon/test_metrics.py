@@ -201,6 +201,8 @@ def test_names_types_and_help(metrics: Metrics, served: MetricsServer) -> None:
         "shiftwatch_ingest_queue_depth": "gauge", "shiftwatch_outbox_depth": "gauge",
         "shiftwatch_snapshot_failures": "counter", "shiftwatch_snapshots": "counter",
         "shiftwatch_outbox_failures": "counter", "shiftwatch_journal_failures": "counter",
+        "shiftwatch_journal_damaged": "counter", "shiftwatch_stream_states_set_aside": "counter",
+        "shiftwatch_client_id_conflicts": "counter",
     }
     for name, kind in expected.items():
         assert fams[name][0] == kind, name

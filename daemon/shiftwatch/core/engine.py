@@ -410,6 +410,26 @@ YOUNG_HOLD_FROM = 20
 _DEFAULT_SETTINGS = DetectionSettings()
 
 
+
+def _check_finite(o: Any, path: str) -> None:
+    """Raise ValueError naming the first number in a saved state that is NaN or infinite
+    (no state the engine saves holds one; a test's reference size may be infinite)."""
+    if isinstance(o, float):
+        if not math.isfinite(o) and not (path.endswith("n_ref") and o == math.inf):
+            raise ValueError(f"field {path or 'state'} is {o!r}, not a finite number")
+    elif isinstance(o, dict):
+        for k, v in o.items():
+            _check_finite(v, f"{path}.{k}" if path else str(k))
+    elif isinstance(o, (list, tuple)):
+        if o and all(type(v) is float for v in o):  # a window: one vector check
+            bad = ~np.isfinite(np.asarray(o, dtype=np.float64))
+            if bad.any():
+                i = int(np.argmax(bad))
+                raise ValueError(f"field {path}[{i}] is {o[i]!r}, not a finite number")
+            return
+        for i, v in enumerate(o):
+            _check_finite(v, f"{path}[{i}]")
+
 class StreamEngine:
     """Watches one stream for level shifts.
 
@@ -1288,6 +1308,7 @@ class StreamEngine:
         field_name = "state"
         try:
             self._reset()
+            _check_finite(state, "")
             st = str(state["state"])
             if st not in (WARMING_UP, WATCHING, EVENT_OPEN):
                 raise ValueError(f"state: unknown engine state {st!r}")
