@@ -1060,11 +1060,20 @@ class Daemon:
             return
         old_filters = {s.topic for s in self.cfg.streams}
         new_filters = {s.topic for s in new.streams}
-        kept = dropped = renewed = 0
+        kept = dropped = renewed = ended = 0
         for name in list(self.engines):
             f = self._filters.get(name)
             old_spec = self.cfg.stream_for(name, f)
             spec = new.stream_for(name, f)
+            if spec is None or old_spec is None or spec.detection != old_spec.detection \
+                    or spec.unit != old_spec.unit:
+                # The engine goes: an event it has open ends with a record (undecided),
+                # so no detected record is left without a follow-up.
+                now = time.time()
+                rec = self.engines[name].end_event(now)
+                if rec is not None:
+                    self.emit(rec, now)
+                    ended += 1
             if spec is None:
                 del self.engines[name]
                 self._filters.pop(name, None)
@@ -1086,6 +1095,10 @@ class Daemon:
         if self.link is not None:
             self.link.set_subscriptions(sorted(new_filters), added=sorted(new_filters - old_filters),
                                         removed=sorted(old_filters - new_filters))
+        if ended:
+            self.outbox.sync()
+            self.log.info("%d open event(s) ended undecided: their streams were removed or restarted "
+                          "with new settings", ended)
         self.log.info("configuration reloaded: %d stream(s) kept, %d restarted with new settings, "
                       "%d removed; filters added %d, removed %d", kept, renewed, dropped,
                       len(new_filters - old_filters), len(old_filters - new_filters))

@@ -338,3 +338,37 @@ def test_a_client_that_takes_our_client_id_is_named_counted_and_backed_off_from(
     publish(publisher, "oven/z1/t", series(5, 14, time.time() - 60))
     assert wait_until(lambda: metric(d.scrape(), "shiftwatch_samples_total", stream="oven/z1/t") == 5)
     assert d.stop() == 0
+
+
+# ------------------------------------------------------- 11: a reload ends open events
+def test_a_reload_that_changes_or_removes_a_stream_ends_its_open_event_with_a_record(
+        daemon_factory, publisher, collector) -> None:
+    # Before the fix, the engine was replaced and its open event vanished: a
+    # "detected" record with no follow-up.  Now it ends as "undecided".
+    slow = ("  - topic: line/a/+\n    format: json\n    value: v\n    time: ts\n"
+            "    detection: {confirm_min_samples: 500}\n"
+            "  - topic: line/b/+\n    format: json\n    value: v\n    time: ts\n"
+            "    detection: {confirm_min_samples: 500}\n")
+    d = daemon_factory(slow).start()
+    seen = collector("sw/alerts/#")
+    t0 = time.time() - 900
+    for topic, seed in (("line/a/p1", 11), ("line/b/p1", 12)):
+        pairs = series(330, seed, t0)
+        pairs = [(t, v + (2.0 if i >= 300 else 0.0)) for i, (t, v) in enumerate(pairs)]  # a 4-sigma step
+        publish(publisher, topic, pairs)
+    assert wait_until(lambda: len(seen.records("detected")) == 2, timeout=30)
+    det = {r["stream"]: r["id"] for r in seen.records("detected")}
+    assert seen.records("undecided") == []
+    # line/a gets new settings, line/b is removed.
+    d.config.write_text(d.config.read_text().replace(
+        "  - topic: line/b/+\n    format: json\n    value: v\n    time: ts\n"
+        "    detection: {confirm_min_samples: 500}\n", "").replace(
+        "{confirm_min_samples: 500}", "{confirm_min_samples: 400}"))
+    d.signal(signal.SIGHUP)
+    assert wait_until(lambda: len(seen.records("undecided")) == 2, timeout=30)
+    ends = {r["stream"]: r for r in seen.records("undecided")}
+    assert {s: r["id"] for s, r in ends.items()} == det
+    for r in ends.values():
+        assert r["shift_at_high"] <= r["detected_at"] <= r["as_of"]
+    assert "2 open event(s) ended undecided" in d.log_text()
+    assert d.stop() == 0
