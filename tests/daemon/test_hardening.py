@@ -149,7 +149,7 @@ def _break_entry(state: dict[str, Any], how: str) -> str:
     """Damage one saved engine state; the field the refusal must name."""
     if how == "pending_short":
         state["pending"] = [1.0]
-        return "IndexError"
+        return "pending: expected [time, value]"
     if how == "number_beyond_float":
         state["prev_r"] = float("inf")  # what json reads 1e400 as
         return "field prev_r"

@@ -104,7 +104,7 @@ def design(min_shift_sigma: float, false_alarm_every: float, interval: float, *,
     k = min_shift_sigma / 2.0
     h = design_h(arl0, k)
     glr = GlrTest.design(arl0, window=glr_window)
-    bank = MultiCusumTest.design(min(arl0, 1e9), min_shift_sigma)
+    bank = _steady_bank(arl0, min_shift_sigma)
     rows = []
     for s, (b_arl, b_med) in zip(shifts, bank_run_lengths(bank.ks, bank.hs, shifts, arl0=arl0)):
         rows.append(DesignRow(
@@ -197,9 +197,20 @@ def sensitivity(min_shift_sigma: float, false_alarm_every: float, interval: floa
     for label, every in (("chosen", false_alarm_every), ("more sensitive", false_alarm_every / factor),
                          ("less sensitive", false_alarm_every * factor)):
         arl0 = min(max(every / interval, 50.0), 1e9)
-        bank = MultiCusumTest.design(arl0, min_shift_sigma)
+        bank = _steady_bank(arl0, min_shift_sigma)
         rl = bank_run_lengths(bank.ks, bank.hs, grid, arl0=arl0)
         out.append(SensitivityCurve(label=label, min_shift_sigma=min_shift_sigma, false_alarm_every=every,
                                     arl0=arl0, shifts=tuple(float(s) for s in grid),
                                     arl=tuple(a for a, _ in rl), median=tuple(m for _, m in rl)))
     return out
+
+
+def _steady_bank(arl0: float, min_shift_sigma: float) -> MultiCusumTest:
+    """The CUSUM bank an established stream runs (see :func:`.engine.steady_test`)."""
+    from shiftwatch.core.engine import steady_test
+    from shiftwatch.core.settings import DetectionSettings
+
+    bank = steady_test(DetectionSettings(min_shift_sigma=min(min_shift_sigma, 4.0)), min(arl0, 1e9),
+                       min_shift_sigma)
+    assert isinstance(bank, MultiCusumTest)
+    return bank

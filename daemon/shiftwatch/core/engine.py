@@ -1,4 +1,4 @@
-"""The per-stream engine: warm-up, watching, and events that are confirmed or dismissed.
+"""The per-stream engine: warm-up, watching, and events with their outcome.
 
 One :class:`StreamEngine` watches one stream.  It is fed batches of samples
 with their times and returns the alert records the batch produced.  The same
@@ -9,19 +9,26 @@ The engine moves through three states:
 
 ``warming_up``
     Collect ``warmup_samples`` and estimate a robust baseline (level, sigma,
-    lag-1 autocorrelation, sampling interval).  A warm-up that itself holds a
-    clear shift is restarted from the shift.
+    lag-1 autocorrelation, sampling interval).  Meanwhile each sample is
+    measured self-starting against the samples before it
+    (:mod:`.selfstart`) and fed to the test, so a new stream can alert within
+    its first samples.
 ``watching``
     Standardise each sample on the baseline, prewhiten it when the feed is
     autocorrelated, clip it, and feed the sequential test.  Lone spikes are
     held for one sample and discarded when the next sample does not confirm
     them.  The baseline is refined now and then from samples old enough that
-    a shift in progress cannot leak into it.
+    a shift in progress cannot leak into it; its level rests on at most
+    :data:`LEVEL_MEMORY` samples, so a slow wander is followed.  For
+    :data:`YOUNG_END` samples after a step the level is young and measured
+    self-starting.
 ``event_open``
     The test tripped: the step has been fitted and a ``detected`` record
-    emitted.  Samples keep coming until the new level is known well enough;
-    then the step is refitted and the event ends as ``confirmed`` (the engine
-    warms up again on the new level) or ``dismissed`` (the old baseline stays).
+    emitted.  Each later sample goes to the event's sequential decision
+    (:class:`.events.EventTrial`); the event ends ``confirmed`` (or
+    ``returned``, when the level goes back after an earlier step),
+    ``dismissed`` or ``undecided``.  After a step the stream watches on at
+    once from the new level, the noise estimates carried over.
 """
 
 from __future__ import annotations
@@ -166,9 +173,9 @@ def event_id(stream: str, detected_at: float) -> str:
     Examples
     --------
     >>> event_id("line2/filler7/weight", 1764633600.0)
-    'f5edd45c430473b9'
+    '79be137c3ac03026'
     """
-    h = hashlib.blake2b(f"{stream}|{detected_at:.3f}".encode(), digest_size=8)
+    h = hashlib.blake2b(f"{stream}|{detected_at:.6f}".encode(), digest_size=8)
     return h.hexdigest()
 
 
@@ -211,6 +218,13 @@ def make_test(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: f
     from shiftwatch.core.river_adapter import RiverTest
 
     return RiverTest(settings.test)
+
+
+def steady_test(settings: DetectionSettings, arl0: float, shift_z: float) -> SequentialTest:
+    """The test an established stream runs: its level rests on :data:`LEVEL_MEMORY`
+    samples (sigma on many more), so the design allows for that much.  What
+    ``shiftwatch design`` and the suggestions state is this test's behaviour."""
+    return make_test(settings, arl0, shift_z, n_level=LEVEL_MEMORY)
 
 
 class _NoCounts(Counter[str]):
@@ -405,6 +419,14 @@ YOUNG_HOLD = 8
 #: is estimated from 20 on), and only on noise with no significant autocorrelation: on
 #: autocorrelated samples holding would feed the runs it is meant to wait out.
 YOUNG_HOLD_FROM = 20
+
+#: The baseline is refined at least every REFINE_BLOCK_MAX samples (more often while
+#: it is young), and its level rests on at most LEVEL_MEMORY samples: a level that
+#: wanders slowly is followed (a 2-sigma ramp over 4 hours at 1 Hz lags by about
+#: 0.15 sigma) instead of being answered with step records; the test allows for a
+#: level known from that many samples (estimation_adjusted_arl).
+REFINE_BLOCK_MAX = 128
+LEVEL_MEMORY = 1000
 
 #: The settings of engines built without any (frozen, so one is shared).
 _DEFAULT_SETTINGS = DetectionSettings()
@@ -636,7 +658,11 @@ class StreamEngine:
             take = used
         wt, wx = self._window.times, self._window.values
         b = estimate_baseline(wt, wx, clip=s.clip_sigma, min_sigma=s.min_sigma)
-        lone, _ = lone_outliers((wx - b.level) / b.sigma, s.spike_sigma)
+        lone, last_open = lone_outliers((wx - b.level) / b.sigma, s.spike_sigma)
+        if last_open:
+            # The last sample was kept because the sample after it (not in the window
+            # yet) deviates the same way: the start of a step, not a spike.
+            lone[-1] = False
         if lone.any():
             # Spikes inside the warm-up: discard them and wait for more samples.
             result.rejected.extend(
@@ -674,6 +700,11 @@ class StreamEngine:
         self._refine_block = 64
         self._next_refine = self.settings.baseline_guard + self._refine_block
 
+    @staticmethod
+    def _level_weight(b: Baseline) -> int:
+        """How many samples the level effectively rests on (its memory is capped)."""
+        return min(b.level_n, LEVEL_MEMORY)
+
     def _design_test(self) -> None:
         """(Re)build the test for the current baseline, keeping the evidence it holds."""
         b = self._baseline
@@ -681,7 +712,7 @@ class StreamEngine:
         arl0 = self.settings.arl0(b.interval)
         shift_z = self.settings.min_shift_sigma * b.sigma * (1.0 - b.phi) / b.innovation_sigma
         old = self._test
-        self._test = make_test(self.settings, arl0, shift_z, float(b.n), n_level=b.level_n)
+        self._test = make_test(self.settings, arl0, shift_z, float(b.n), n_level=self._level_weight(b))
         if old is not None and old.name == self._test.name:
             try:
                 self._test.set_state(old.get_state())
@@ -690,7 +721,7 @@ class StreamEngine:
         self._test_arl0 = arl0
         self._test_shift_z = shift_z
         self._test_n_ref = float(b.n)
-        self._test_n_level = b.level_n
+        self._test_n_level = self._level_weight(b)
 
     # ----------------------------------------------------------- watching
     def _split_spikes(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], center: float,
@@ -767,15 +798,14 @@ class StreamEngine:
                 dt = np.diff(self._window.times)
                 interval = median(dt) if dt.shape[0] else 1.0
                 shift_z = self.settings.min_shift_sigma
-                n = 1e9
             else:
                 interval = b.interval
                 shift_z = self.settings.min_shift_sigma * b.sigma * (1.0 - b.phi) / b.innovation_sigma
-                n = float(b.n)
             arl0 = self.settings.arl0(interval if interval > 0 else 1.0)
-            self._test = make_test(self.settings, arl0, shift_z)
-            self._test_arl0, self._test_shift_z, self._test_n_ref = arl0, shift_z, n
-            self._test_n_level = 0 if b is None else b.level_n
+            # Designed with no allowance for the young level; a snapshot rebuilds it so.
+            self._test = make_test(self.settings, arl0, shift_z, 1e9)
+            self._test_arl0, self._test_shift_z, self._test_n_ref = arl0, shift_z, 1e9
+            self._test_n_level = 0
         return self._test
 
     def _watch_young(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], limit: int,
@@ -821,7 +851,8 @@ class StreamEngine:
                         return i
                 else:
                     result.rejected.append(Rejection(pend_pos, "spike", pt))
-            elif out != 0 and out != self._prev_out:
+                    self._prev_out = 0
+            if out != 0 and out != self._prev_out:
                 self._pending = (tv, xv)
                 pend_pos = int(idx[i])
                 continue
@@ -997,7 +1028,7 @@ class StreamEngine:
         if self._watch_kept >= self._next_refine:
             self._refine()
             # Refine often while the baseline rests on few samples, then rarely.
-            self._refine_block = min(2 * self._refine_block, 65536)
+            self._refine_block = min(2 * self._refine_block, REFINE_BLOCK_MAX)
             self._next_refine = self._watch_kept + self._refine_block
 
     def _refine(self) -> None:
@@ -1011,12 +1042,13 @@ class StreamEngine:
         b = self._baseline
         assert b is not None
         floor = sigma_floor(b.level, b.quantum, s.min_sigma)
-        nb = self._sums.refine(b, clip=s.clip_sigma, floor=floor, max_weight=s.baseline_memory)
+        nb = self._sums.refine(b, clip=s.clip_sigma, floor=floor, max_weight=s.baseline_memory,
+                               level_weight=LEVEL_MEMORY)
         if nb is b:
             return
         self._baseline = nb
         k_min = None if s.test == "glr" else 0.5
-        grown = abs(math.log(estimation_adjusted_arl(1e6, nb.n, k_min, nb.level_n)
+        grown = abs(math.log(estimation_adjusted_arl(1e6, nb.n, k_min, self._level_weight(nb))
                              / estimation_adjusted_arl(1e6, int(self._test_n_ref), k_min,
                                                        self._test_n_level))) > 0.05
         if (grown or abs(nb.interval - b.interval) > 0.1 * b.interval or (nb.phi == 0) != (b.phi == 0)
@@ -1188,6 +1220,11 @@ class StreamEngine:
         fit = self._fit(b)
         shown = fit if fit.index < ev.trip_len else self._fit_until_trip(ev, b)
         rec = self._record(ev, shown, "undecided", max(as_of, ev.detected_at))
+        ys = self._young
+        if ys is not None:  # as for a dismissal: the held and event samples join the young level
+            ys.release()
+            for v in self._fitter.values[ev.trip_len:].tolist():
+                ys.add(v)
         self._event = None
         self._fitter = None
         self._pending = None
@@ -1400,13 +1437,15 @@ class StreamEngine:
             field_name = "last_shift_at"
             ls = state["last_shift_at"]
             self.last_shift_at = None if ls is None else _finite_number(ls, "last_shift_at")
-        except ValueError:
+        except ValueError as exc:
             self._reset()
-            raise
+            if str(exc).startswith(field_name.split(".")[0]):
+                raise
+            raise ValueError(f"{field_name}: {exc}") from None
         except (KeyError, TypeError, AttributeError, IndexError, OverflowError) as exc:
             self._reset()
             if isinstance(exc, KeyError):
-                raise ValueError(f"{exc.args[0]}: missing from the saved state") from None
+                raise ValueError(f"{field_name}: {exc.args[0]} is missing from the saved state") from None
             raise ValueError(f"{field_name}: malformed ({exc!r:.120})") from None
 
     def _record(self, ev: OpenEvent, fit: StepFit, phase: str, as_of: float,
@@ -1512,9 +1551,16 @@ def _baseline_from(d: dict[str, Any]) -> Baseline:
     for k in ("sigma", "innovation_sigma", "interval"):
         if k in floats and not floats[k] > 0:
             raise ValueError(f"baseline.{k}: must be positive, got {floats[k]!r}")
+    for k in ("phi", "phi_raw"):
+        if k in floats and not -0.95 <= floats[k] <= 0.95:
+            raise ValueError(f"baseline.{k}: must lie in [-0.95, 0.95], got {floats[k]!r}")
     n = _count(d["n"], "baseline.n")
     n_level = _count(d.get("n_level", 0), "baseline.n_level")
     return Baseline(n=n, n_level=n_level, **floats)  # type: ignore[arg-type]
+
+
+#: The largest count a saved state may hold (doubles count exactly up to it).
+MAX_COUNT = 2**53
 
 
 def _finite_number(v: Any, name: str) -> float:
@@ -1532,8 +1578,9 @@ def _positive(v: Any, name: str) -> float:
 
 
 def _count(v: Any, name: str) -> int:
-    if isinstance(v, bool) or not isinstance(v, (int, float)) or v != int(v) or v < 0:
-        raise ValueError(f"{name}: must be a whole number >= 0, got {v!r:.40}")
+    if (isinstance(v, bool) or not isinstance(v, (int, float)) or not 0 <= v <= MAX_COUNT
+            or v != int(v)):
+        raise ValueError(f"{name}: must be a whole number from 0 to 2**53, got {v!r:.40}")
     return int(v)
 
 

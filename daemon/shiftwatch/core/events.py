@@ -141,7 +141,9 @@ class EventTrial:
                     return i, out
             return -1, PENDING
         m = self.m + np.arange(1, n + 1, dtype=np.float64)
-        s = self.s + np.cumsum(z if self.sign > 0 else -z)
+        # Summed from the running total one sample at a time, as the small path sums:
+        # both decide on the same sample however the stream is batched.
+        s = np.cumsum(np.concatenate(([self.s], z if self.sign > 0 else -z)))[1:]
         c = DISMISS_AT * self.d
         step = (self.d * s - 0.5 * m * self.d * self.d) >= self.bound
         none = (-c * s + 0.5 * m * c * c) >= self.bound
@@ -186,7 +188,7 @@ class EventTrial:
             setattr(out, name, v)
         for name in ("limit", "min_samples", "m"):
             v = int(state[name])
-            if v < (1 if name != "m" else 0):
+            if not (1 if name != "m" else 0) <= v <= 2**53:
                 raise ValueError(f"event.trial.{name}: out of range ({v!r})")
             setattr(out, name, v)
         out.outcome = PENDING

@@ -129,7 +129,7 @@ class SelfStart:
         if not s > 0:
             return None
         raw = self._phi_raw()
-        phi = self.phi_estimate()
+        phi = self._significant(raw)
         r = x - self.mean
         df = float(self.df)
         if phi != 0.0 and self.last is not None:
@@ -143,7 +143,7 @@ class SelfStart:
             # it by its long-run variance factor (1 + phi) / (1 - phi) at the estimate
             # plus PHI_MARGIN standard errors (1 / sqrt(n)), so runs of autocorrelated
             # samples do not read as a step.
-            s *= math.sqrt(self.variance_factor(PHI_MARGIN))
+            s *= math.sqrt(self._long_run_factor(raw, PHI_MARGIN))
         return t_to_normal(r / (s * math.sqrt(1.0 + 1.0 / n)), df)
 
     def phi_estimate(self) -> float:
@@ -151,18 +151,25 @@ class SelfStart:
         (the known phi when sigma is known)."""
         if self.sigma is not None:
             return self.phi
+        return self._significant(self._phi_raw())
+
+    def _significant(self, raw: float) -> float:
+        """``raw`` when it is significant (beyond 2 / sqrt(n), from 20 samples on), else 0."""
         n = self.n + self.pool_n
-        phi = self._phi_raw()
-        return phi if n >= 20 and abs(phi) >= 2.0 / math.sqrt(n) else 0.0
+        return raw if n >= 20 and abs(raw) >= 2.0 / math.sqrt(n) else 0.0
 
     def variance_factor(self, margin: float) -> float:
         """(1 + phi) / (1 - phi) for positive autocorrelation that cannot yet be told
         from none, phi taken at the estimate plus ``margin`` standard errors (1 when
         the estimate is significant: then the samples are prewhitened instead)."""
-        if self.phi_estimate() != 0.0:
+        if self.sigma is not None:
             return 1.0
+        raw = self._phi_raw()
+        return 1.0 if self._significant(raw) != 0.0 else self._long_run_factor(raw, margin)
+
+    def _long_run_factor(self, raw: float, margin: float) -> float:
         n = self.n + self.pool_n
-        up = min(0.95, max(self._phi_raw(), 0.0) + (margin / math.sqrt(n) if n > 0 else 0.0))
+        up = min(0.95, max(raw, 0.0) + (margin / math.sqrt(n) if n > 0 else 0.0))
         return (1.0 + up) / (1.0 - up) if up > 0.0 else 1.0
 
     def _c1(self) -> float:
@@ -254,6 +261,11 @@ class SelfStart:
                 raise ValueError(f"young.{name}: not a finite number")
         if out.sigma is not None and not (math.isfinite(out.sigma) and out.sigma > 0):
             raise ValueError(f"young.sigma: must be a positive number, got {out.sigma!r}")
-        if out.n < 0 or out.df < 0 or out.ss < 0:
-            raise ValueError("young.n, young.df, young.ss: must not be negative")
+        for name in ("n", "df", "pool_n"):
+            if not 0 <= getattr(out, name) <= 2**53:
+                raise ValueError(f"young.{name}: must be a whole number from 0 to 2**53")
+        if out.ss < 0:
+            raise ValueError("young.ss: must not be negative")
+        if not -0.95 <= out.phi <= 0.95:
+            raise ValueError(f"young.phi: must lie in [-0.95, 0.95], got {out.phi!r}")
         return out

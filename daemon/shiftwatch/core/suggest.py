@@ -49,7 +49,7 @@ from numpy.typing import NDArray
 
 from shiftwatch.core.baseline import estimate_baseline
 from shiftwatch.core.design import bank_run_lengths
-from shiftwatch.core.engine import make_test
+from shiftwatch.core.engine import steady_test
 from shiftwatch.core.multicusum import MultiCusumTest
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.core.timefmt import format_duration
@@ -304,12 +304,12 @@ def median_delay_samples(noise: Noise, min_shift_sigma: float, false_alarm_every
     """(median delay bound in readings, in-control ARL) for a step of ``min_shift_sigma``.
 
     The test is the one the engine builds for an established baseline of
-    this stream (:func:`.engine.make_test` with the default test).
+    this stream (:func:`.engine.steady_test` with the default test).
     """
     settings = DetectionSettings(min_shift_sigma=min_shift_sigma, false_alarm_every=false_alarm_every)
     arl0 = settings.arl0(noise.interval)
     z = test_shift(noise, min_shift_sigma)
-    test = make_test(settings, arl0, z)
+    test = steady_test(settings, arl0, z)
     assert isinstance(test, MultiCusumTest)  # the default test
     [(_, med)] = bank_run_lengths(test.ks, test.hs, (z,), arl0=arl0)
     return med, arl0
