@@ -45,16 +45,20 @@ def _optional_config(path: str | None) -> tuple[Any, bool]:
         return None, True
 
 
-def _print_problems(problems: list[str], limit: int = 20) -> None:
+def _print_problems(problems: list[str], limit: int = 20, total: int | None = None) -> None:
+    """The first ``limit`` problems on stderr, and how many more there were (``total`` in all)."""
+    total = len(problems) if total is None else total
     for p in problems[:limit]:
         print(p, file=sys.stderr)
-    if len(problems) > limit:
-        print(f"... and {len(problems) - limit} more problems like these", file=sys.stderr)
+    if total > limit:
+        print(f"... and {total - limit} more problems like these", file=sys.stderr)
 
 
 # ----------------------------------------------------------------- replay
 #: Replays of fewer samples finish too soon for a progress bar to help.
 PROGRESS_MIN_SAMPLES = 100_000
+#: Replays of fewer input bytes (about 100,000 rows of long CSV) finish too soon for one.
+PROGRESS_MIN_BYTES = 4_000_000
 
 
 def progress_bar(total: int, desc: str, unit: str, *, minimum: int = PROGRESS_MIN_SAMPLES) -> Any:
@@ -69,6 +73,17 @@ def progress_bar(total: int, desc: str, unit: str, *, minimum: int = PROGRESS_MI
     except ImportError:
         return None
     return tqdm(total=total, desc=desc, unit=unit, unit_scale=total >= 10_000, leave=False, file=sys.stderr)
+
+
+def _input_bytes(paths: list[str]) -> int:
+    import os
+
+    from shiftwatch.sources import expand_paths
+
+    try:
+        return sum(os.path.getsize(p) for p in expand_paths(paths))
+    except (OSError, ValueError):
+        return 0
 
 
 def cmd_replay(args: argparse.Namespace) -> int:
@@ -91,21 +106,22 @@ def cmd_replay(args: argparse.Namespace) -> int:
 
 
 def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
-    from shiftwatch.replay import CsvFormatError, read_long_csv, replay_series
+    from shiftwatch.replay import KEEP_PROBLEMS, CsvFormatError, default_jobs, replay_files
+    from shiftwatch.sources import open_sources, time_zone
 
+    jobs = default_jobs() if args.jobs is None else args.jobs
+    if jobs < 1:
+        _err(f"--jobs must be at least 1, got {jobs}")
+        return EXIT_USAGE
     try:
-        read = read_long_csv(args.csv)
+        tz = time_zone(args.timezone)
+        sources = open_sources(args.csv, args.layout)
     except CsvFormatError as exc:
         _err(str(exc))
         return EXIT_USAGE
 
     if cfg is None:
-        from shiftwatch.core.settings import DetectionSettings
-
-        defaults = DetectionSettings()
-
-        def settings_for(stream: str) -> Any:
-            return defaults
+        settings_for = None
 
         def unit_for(stream: str) -> str | None:
             return None
@@ -116,11 +132,14 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
             sc = cfg.stream_for(stream)
             return None if sc is None else sc.unit
 
-    bar = progress_bar(sum(len(s.times) for s in read.streams.values()), "replay", "sample")
+    bar = progress_bar(_input_bytes(args.csv), "replay", "B", minimum=PROGRESS_MIN_BYTES)
     try:
-        records, problems, engines = replay_series(
-            read.streams, settings_for, unit_for, progress=bar and bar.update,
-            observe=None if report is None else report.observe)
+        result = replay_files(args.csv, settings_for, unit_for, jobs=jobs, timezone=tz, sources=sources,
+                              trace_options=None if report is None else report.trace_options,
+                              progress=bar and bar.update)
+    except CsvFormatError as exc:
+        _err(str(exc))
+        return EXIT_USAGE
     finally:
         if bar is not None:
             bar.close()
@@ -134,37 +153,39 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
     else:
         out = sys.stdout
     try:
-        for rec in records:
+        for rec in result.records:
             out.write(json.dumps(rec.to_dict()) + "\n")
     finally:
         if args.out:
             out.close()
-    all_problems = read.problems + problems
-    _print_problems(all_problems)
+    problem_count = result.problem_count
+    _print_problems(result.problems, KEEP_PROBLEMS, problem_count)
+    streams = result.streams
     phases: dict[str, int] = {}
     rejected: dict[str, int] = {}
-    for e in engines.values():
-        for k, v in e.records_total.items():
+    for o in streams.values():
+        for k, v in o.records_total.items():
             phases[k] = phases.get(k, 0) + v
-        for k, v in e.rejected_total.items():
+        for k, v in o.rejected_total.items():
             rejected[k] = rejected.get(k, 0) + v
-    summary = (f"replayed {read.rows} rows in {len(engines)} stream(s): "
+    summary = (f"replayed {result.rows} rows in {len(streams)} stream(s): "
                f"{phases.get('confirmed', 0)} shift(s) confirmed, {phases.get('dismissed', 0)} dismissed")
     if rejected:
         summary += "; samples set aside: " + ", ".join(f"{k} {v}" for k, v in sorted(rejected.items()))
-    if len(read.problems):
-        summary += f"; {len(read.problems)} unreadable row(s) skipped"
+    if result.read_problem_count:
+        summary += f"; {result.read_problem_count} unreadable row(s) skipped"
     print(summary, file=sys.stderr)
     if report is not None:
         from shiftwatch.report import ReportError
 
-        bar = progress_bar(len(engines), "charts", "chart", minimum=2)
+        report.adopt({name: o.trace for name, o in streams.items()})
+        bar = progress_bar(len(streams), "charts", "chart", minimum=2)
         try:
             path = report.write(
-                samples={name: e.samples_total for name, e in engines.items()},
-                rejected={name: dict(e.rejected_total) for name, e in engines.items()},
-                units={name: unit_for(name) for name in engines},
-                sources=[str(p) for p in args.csv], unreadable_rows=len(read.problems),
+                samples={name: o.samples_total for name, o in streams.items()},
+                rejected={name: dict(o.rejected_total) for name, o in streams.items()},
+                units={name: unit_for(name) for name in streams},
+                sources=[s.path for s in sources], unreadable_rows=result.read_problem_count,
                 settings_note=("default detection settings" if args.config is None
                                else f"detection settings from {args.config}"),
                 progress=bar and bar.update)
@@ -175,7 +196,7 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
             if bar is not None:
                 bar.close()
         print(f"report written to {path}", file=sys.stderr)
-    return EXIT_BAD_DATA if all_problems else EXIT_OK
+    return EXIT_BAD_DATA if problem_count else EXIT_OK
 
 
 # -------------------------------------------------------------------- fit
@@ -187,7 +208,7 @@ def cmd_fit(args: argparse.Namespace) -> int:
     from shiftwatch.replay import CsvFormatError, read_long_csv
 
     try:
-        read = read_long_csv([args.csv])
+        read = read_long_csv([args.csv], layout=args.layout, timezone=args.timezone, only=args.stream)
     except CsvFormatError as exc:
         _err(str(exc))
         return EXIT_USAGE
@@ -355,7 +376,7 @@ def _design_from(args: argparse.Namespace) -> int:
     if failed:
         return EXIT_USAGE
     try:
-        read = read_long_csv(args.from_csv)
+        read = read_long_csv(args.from_csv, layout=args.layout, timezone=args.timezone)
     except CsvFormatError as exc:
         _err(str(exc))
         return EXIT_USAGE
@@ -513,6 +534,15 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 
 # ------------------------------------------------------------------- main
+def _add_reading_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--layout", choices=("auto", "long", "wide"), default="auto",
+                   help="long: time,stream,value; wide: time then one column per tag; "
+                   "auto (default): long when the file has stream and value columns")
+    p.add_argument("--timezone", metavar="ZONE",
+                   help="IANA time zone (e.g. Europe/Berlin) of times written without a UTC offset; "
+                   "such times are refused without it")
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="shiftwatch",
@@ -526,14 +556,20 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--out", help="write JSON lines here instead of stdout")
     r.add_argument("--report", metavar="DIR",
                    help="also write DIR/report.html: a chart per stream and a summary table")
-    r.add_argument("csv", nargs="+", help="long CSV files with columns time,stream,value")
+    r.add_argument("--jobs", type=int, default=None, metavar="N",
+                   help="processes to split the streams over (default: the cores available)")
+    _add_reading_options(r)
+    r.add_argument("csv", nargs="+", metavar="FILE",
+                   help="CSV or Parquet files, long (time,stream,value) or wide (time,TAG,...); "
+                   "a directory stands for its .parquet and .csv files")
     r.set_defaults(func=cmd_replay)
 
     f = sub.add_parser("fit", help="fit one step to a whole series and print it as JSON")
-    f.add_argument("csv", help="long CSV file with columns time,stream,value")
+    f.add_argument("csv", metavar="FILE", help="CSV or Parquet file, long or wide, as replay reads them")
     f.add_argument("--stream", help="stream to fit (needed when the file holds several)")
     f.add_argument("--level", type=float, default=0.9, help="confidence level of the shift-time interval (default 0.9)")
     f.add_argument("--min-segment", type=int, default=2, help="fewest samples on each side of the shift (default 2)")
+    _add_reading_options(f)
     f.set_defaults(func=cmd_fit)
 
     d = sub.add_parser("design", help="turn plant terms into test parameters and show the run lengths, "
@@ -558,6 +594,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="with --from: false detections a day the whole plant accepts (default 1)")
     d.add_argument("--config", metavar="FILE",
                    help="with --from: configuration whose units and labels name the streams")
+    _add_reading_options(d)
     d.set_defaults(func=cmd_design)
 
     rn = sub.add_parser("run", help="run the daemon (MQTT in, alerts and metrics out)")
