@@ -157,7 +157,7 @@ class _Feeder:
     def take_block(self, block: Block) -> None:
         """Count a block's rows and keep its problems (all but the parts)."""
         self.rows += block.rows
-        self.read_count += len(block.problems)
+        self.read_count += len(block.problems) + block.unlisted
         if block.note is not None and block.file not in self.notes:
             self.notes[block.file] = block.note
             self.read_count += 1

@@ -33,7 +33,7 @@ import math
 import os
 import zoneinfo
 from dataclasses import dataclass, field
-from datetime import datetime, timezone, tzinfo
+from datetime import datetime, timedelta, tzinfo
 from pathlib import Path
 from typing import Any, BinaryIO, Iterator
 from urllib.parse import unquote
@@ -291,6 +291,8 @@ class Block:
     rows: int
     nbytes: int
     note: str | None = None
+    #: problems counted beyond those in ``problems``
+    unlisted: int = 0
 
 
 class _Lines:
@@ -949,26 +951,20 @@ def _open_parquet(path: str, layout: str) -> Source:
     pq = _pyarrow()
     try:
         meta = pq.ParquetFile(path).metadata
-        names = list(meta.schema.to_arrow_schema().names)
-    except Exception as exc:  # pyarrow raises its own ArrowInvalid, OSError, ...
+        header = list(meta.schema.to_arrow_schema().names)
+    except Exception as exc:  # pyarrow raises ArrowInvalid, OSError, ... for a damaged file
         raise CsvFormatError(f"{path}: not a readable Parquet file: {exc}") from None
-    stream = _partition_stream(path)
-    header = list(names)
-    if stream is not None and "stream" not in [c.strip().lower() for c in names] and layout != "wide":
-        cols = [c.strip().lower() for c in names]
-        if "time" in cols and "value" in cols:
-            ti, vi = cols.index("time"), cols.index("value")
-            offsets = [0]
-            for g in range(meta.num_row_groups):
-                offsets.append(offsets[-1] + meta.row_group(g).num_rows)
-            return Source(path, "parquet", "long", header, ti, -1, vi, [(vi, "")], group_rows=offsets,
-                          stream=stream)
-    lay, ti, si, vi, tags = _pick_layout(path, header, layout, path)
     offsets = [0]
     for g in range(meta.num_row_groups):
         offsets.append(offsets[-1] + meta.row_group(g).num_rows)
-    return Source(path, "parquet", lay, header, ti, si, vi, tags, group_rows=offsets,
-                  stream=stream if lay == "long" and si < 0 else None)
+    stream = _partition_stream(path)
+    cols = [c.strip().lower() for c in header]
+    if stream is not None and layout != "wide" and "stream" not in cols and "time" in cols and "value" in cols:
+        # a long file whose stream is its partition's (stream=NAME directories)
+        ti, vi = cols.index("time"), cols.index("value")
+        return Source(path, "parquet", "long", header, ti, -1, vi, [(vi, "")], group_rows=offsets, stream=stream)
+    lay, ti, si, vi, tags = _pick_layout(path, header, layout, path)
+    return Source(path, "parquet", lay, header, ti, si, vi, tags, group_rows=offsets)
 
 
 def parquet_tasks(src: Source, fidx: int, first_index: int = 0) -> Iterator[tuple[Any, ...]]:
@@ -977,73 +973,119 @@ def parquet_tasks(src: Source, fidx: int, first_index: int = 0) -> Iterator[tupl
         yield ("parquet", fidx, g, first_index + g)
 
 
-def _arrow_times(col: Any, src: Source, g: int, first: int, tz: tzinfo | None,
-                 problems: list[str]) -> tuple[FloatArray, NDArray[np.bool_]]:
-    """A time column as epoch seconds, and which rows have a readable time."""
-    import pyarrow as pa
-    import pyarrow.compute as pc
+class _GroupProblems:
+    """Problems of one row group: a message for the first rows of each kind, the rest counted."""
 
-    name = src.header[src.time_col]
+    SHOWN = 20
+
+    def __init__(self, src: Source, g: int) -> None:
+        self.where = f"{src.path}: row group {g}"
+        self.messages: list[str] = []
+        self.unlisted = 0
+
+    def rows(self, bad: NDArray[np.bool_], first: int, column: str, what: str) -> None:
+        idx = np.flatnonzero(bad)
+        for i in idx[:self.SHOWN].tolist():
+            self.messages.append(f"{self.where}, row {first + i}, column {column}: {what}")
+        self.unlisted += max(0, idx.shape[0] - self.SHOWN)
+
+    def whole(self, column: str, what: str, rows: int) -> None:
+        self.messages.append(f"{self.where}, column {column}: {what}")
+        self.unlisted += rows - 1
+
+
+def _naive_wall_to_utc(wall: FloatArray, tz: tzinfo) -> tuple[FloatArray, NDArray[np.bool_]]:
+    """Epoch seconds of local wall-clock times (given as if they were UTC) in ``tz``, and which exist.
+
+    Offsets change on whole minutes, so each distinct minute is looked up once.
+    """
+    minutes = np.floor(wall / 60.0).astype(np.int64)
+    distinct = _distinct(np.sort(minutes))
+    offsets = np.zeros(distinct.shape[0])
+    exists = np.ones(distinct.shape[0], dtype=bool)
+    epoch = datetime(1970, 1, 1)
+    for i, m in enumerate(distinct.tolist()):
+        local = epoch + timedelta(minutes=m)
+        ts = local.replace(tzinfo=tz).timestamp()
+        offsets[i] = m * 60.0 - ts
+        exists[i] = datetime.fromtimestamp(ts, tz).replace(tzinfo=None) == local
+    at = np.searchsorted(distinct, minutes)
+    return wall - offsets[at], exists[at]
+
+
+def _arrow_times(col: Any, column: str, tz: tzinfo | None, first: int,
+                 problems: _GroupProblems) -> tuple[FloatArray, NDArray[np.bool_]]:
+    """A time column as epoch seconds, and which rows have a usable time (the others are problems)."""
+    import pyarrow as pa
+
     n = len(col)
-    where = f"{src.path}: row group {g}"
+    valid = np.asarray(col.is_valid(), dtype=bool)
+    problems.rows(~valid, first, column, "no time (null)")
     if pa.types.is_timestamp(col.type):
-        unit = col.type.unit
-        scale = {"s": 1.0, "ms": 1e3, "us": 1e6, "ns": 1e9}[unit]
+        raw = np.asarray(col.cast(pa.int64()).fill_null(0), dtype=np.int64)
+        per_second = {"s": 1, "ms": 1000, "us": 10**6, "ns": 10**9}[col.type.unit]
+        # The coarsest exact unit, so that a time reads as the same double whatever its unit.
+        while per_second > 1000 and bool((raw % 1000 == 0).all()):
+            raw, per_second = raw // 1000, per_second // 1000
+        t = raw.astype(np.float64) / per_second if per_second > 1 else raw.astype(np.float64)
         if col.type.tz is None:
             if tz is None:
-                bad = np.ones(n, dtype=bool)
-                for i in range(min(n, 3)):
-                    problems.append(f"{where}, row {first + i}, column {name}: a time without a UTC offset; "
-                                    "say which time zone the file is in with --timezone")
-                return np.zeros(n), ~bad
-            texts = pc.strftime(col, format="%Y-%m-%dT%H:%M:%S.%f").to_pylist()
-            return _times_of_texts(texts, src, g, first, tz, problems, name)
-        ints = col.cast(pa.int64())
-        ok = np.asarray(ints.is_valid())
-        raw = np.asarray(ints.fill_null(0), dtype=np.int64)
-        return raw.astype(np.float64) / scale if scale != 1.0 else raw.astype(np.float64), ok
+                problems.rows(valid, first, column, "the time has no UTC offset; say which time zone the "
+                              "file is in with --timezone (an IANA name such as Europe/Berlin)")
+                return t, np.zeros(n, dtype=bool)
+            t, exists = _naive_wall_to_utc(t, tz)
+            problems.rows(valid & ~exists, first, column, f"the time does not exist in {tz} "
+                          "(the clocks were put forward)")
+            valid &= exists
+        return t, valid
     if pa.types.is_integer(col.type) or pa.types.is_floating(col.type):
-        ok = np.asarray(col.is_valid())
         t = np.asarray(col.cast(pa.float64()).fill_null(0.0), dtype=np.float64)
-        fin = np.isfinite(t)
-        ok &= fin
-        return _epoch_rule(np.where(fin, t, 0.0)), ok
+        finite = np.isfinite(t)
+        problems.rows(valid & ~finite, first, column, "the time is not finite")
+        return _epoch_rule(np.where(finite, t, 0.0)), valid & finite
     if pa.types.is_string(col.type) or pa.types.is_large_string(col.type) or pa.types.is_dictionary(col.type):
-        return _times_of_texts(col.cast(pa.string()).to_pylist(), src, g, first, tz, problems, name)
-    raise ValueError(f"column {name} holds {col.type}, not times")
+        texts = col.cast(pa.string()).to_pylist()
+        out = np.zeros(n)
+        cache: dict[str, float | str] = {}
+        for i, x in enumerate(texts):
+            if x is None:
+                continue
+            got = cache.get(x)
+            if got is None:
+                try:
+                    got = parse_time(x, tz)
+                except TimeTextError as exc:
+                    got = f"time {x!r} {exc}"
+                except (ValueError, OverflowError):
+                    got = f"time {x!r} is not RFC 3339, epoch seconds or epoch milliseconds"
+                cache[x] = got
+            if isinstance(got, str):
+                valid[i] = False
+                if len(problems.messages) < problems.SHOWN:
+                    problems.messages.append(f"{problems.where}, row {first + i}, column {column}: {got}")
+                else:
+                    problems.unlisted += 1
+            else:
+                out[i] = got
+        return out, valid
+    problems.whole(column, f"holds {col.type}, not times; the rows were skipped", n)
+    return np.zeros(n), np.zeros(n, dtype=bool)
 
 
-def _times_of_texts(texts: list[str | None], src: Source, g: int, first: int, tz: tzinfo | None,
-                    problems: list[str], name: str) -> tuple[FloatArray, NDArray[np.bool_]]:
-    n = len(texts)
-    out = np.zeros(n)
-    ok = np.ones(n, dtype=bool)
-    cache: dict[str, float | str] = {}
-    for i, x in enumerate(texts):
-        if x is None:
-            ok[i] = False
-            continue
-        got = cache.get(x)
-        if got is None:
-            try:
-                got = parse_time(x, tz)
-            except TimeTextError as exc:
-                got = f"time {x!r} {exc}"
-            except (ValueError, OverflowError):
-                got = f"time {x!r} is not RFC 3339, epoch seconds or epoch milliseconds"
-            cache[x] = got
-        if isinstance(got, str):
-            ok[i] = False
-            problems.append(f"{src.path}: row group {g}, row {first + i}, column {name}: {got}")
-        else:
-            out[i] = got
-    return out, ok
+def _is_number_type(t: Any) -> bool:
+    import pyarrow as pa
+
+    return bool(pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t))
 
 
 def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo | None,
                         opened: dict[str, Any] | None = None) -> Block:
-    """One row group's rows per stream; null times and values that are not numbers are problems
-    (named by file, row group, row and column), null cells of a wide file missing readings."""
+    """One row group's rows per stream, :data:`PARQUET_SLICE` rows at a time.
+
+    Null or unreadable times, null values and null or empty stream names are
+    problems named by file, row group, row and column; a null cell of a wide
+    file is a missing reading.
+    """
     import pyarrow as pa
 
     pq = _pyarrow()
@@ -1053,52 +1095,39 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
         if opened is not None:
             opened.clear()
             opened[src.path] = pf
-    want = [src.header[src.time_col]]
+    tname = src.header[src.time_col]
     if src.layout == "long":
-        want.append(src.header[src.value_col])
-        if src.stream_col >= 0:
-            want.append(src.header[src.stream_col])
+        value_cols = [(src.header[src.value_col], "")]
+        want = [tname, value_cols[0][0]] + ([src.header[src.stream_col]] if src.stream_col >= 0 else [])
     else:
-        want += [src.header[c] for c, _ in src.tags]
+        value_cols = [(src.header[c], tag) for c, tag in src.tags]
+        want = [tname] + [c for c, _ in value_cols]
     table = pf.read_row_group(g, columns=want)
     n = table.num_rows
     base = src.group_rows[g]
     fbits = fidx << PLACE_BITS
-    problems: list[str] = []
+    problems = _GroupProblems(src, g)
     collected: dict[str, list[tuple[FloatArray, FloatArray, IntArray]]] = {}
-    where = f"{src.path}: row group {g}"
     for a in range(0, n, PARQUET_SLICE):
         part = table.slice(a, PARQUET_SLICE)
         m = part.num_rows
-        tcol = part.column(0).combine_chunks()
-        times, tok = _arrow_times(tcol, src, g, a, tz, problems)
-        for i in np.flatnonzero(~tok & ~np.asarray(tcol.is_valid()))[:20].tolist():
-            problems.append(f"{where}, row {a + i}, column {want[0]}: no time (null)")
-        nulls = int(np.count_nonzero(~np.asarray(tcol.is_valid())))
-        if nulls > 20:
-            problems += [f"{where}, column {want[0]}: no time (null)"] * (nulls - 20)
-        places = (np.arange(base + a, base + a + m, dtype=np.int64)) | fbits
-        value_cols = [(want[1], "")] if src.layout == "long" else [(src.header[c], tag) for c, tag in src.tags]
+        times, tok = _arrow_times(part.column(0).combine_chunks(), tname, tz, a, problems)
+        places = np.arange(base + a, base + a + m, dtype=np.int64) | fbits
         for j, (cname, tag) in enumerate(value_cols):
             col = part.column(1 + j).combine_chunks()
-            if not (pa.types.is_integer(col.type) or pa.types.is_floating(col.type)
-                    or pa.types.is_decimal(col.type)):
-                problems.append(f"{where}, column {cname}: holds {col.type}, not numbers; "
-                                f"its {m} rows were skipped")
+            if not _is_number_type(col.type):
+                problems.whole(cname, f"holds {col.type}, not numbers; its values were skipped", m)
                 continue
-            valid = np.asarray(col.is_valid())
+            valid = np.asarray(col.is_valid(), dtype=bool)
             v = np.asarray(col.cast(pa.float64()).fill_null(np.nan), dtype=np.float64)
-            keep = tok & valid
-            if src.layout == "long":
-                for i in np.flatnonzero(tok & ~valid)[:20].tolist():
-                    problems.append(f"{where}, row {a + i}, column {cname}: no value (null)")
-                k = int(np.count_nonzero(tok & ~valid))
-                if k > 20:
-                    problems += [f"{where}, column {cname}: no value (null)"] * (k - 20)
+            if src.layout == "wide":
+                keep = tok & valid
+            else:
+                problems.rows(tok & ~valid, a, cname, "no value (null)")
+                keep = tok & valid
                 if src.stream_col >= 0:
-                    scol = part.column(2).combine_chunks()
-                    _long_parquet_parts(scol, times, v, places, keep, collected, problems, where, a,
-                                        want[2])
+                    _long_parquet_parts(part.column(2).combine_chunks(), times, v, places, keep, collected,
+                                        problems, a, src.header[src.stream_col])
                     continue
                 tag = src.stream or ""
             if bool(keep.all()):
@@ -1112,37 +1141,31 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
         else:
             t, v, p = zip(*pieces)
             parts.append((key, np.concatenate(t), np.concatenate(v), np.concatenate(p)))
-    return Block(index, fidx, parts, problems, n, 0)
+    return Block(index, fidx, parts, problems.messages, n, 0, unlisted=problems.unlisted)
 
 
-def _long_parquet_parts(scol: Any, times: FloatArray, v: FloatArray, places: IntArray,
-                        keep: NDArray[np.bool_], collected: dict[str, list[tuple[FloatArray, FloatArray, IntArray]]],
-                        problems: list[str], where: str, first: int, cname: str) -> None:
+def _long_parquet_parts(scol: Any, times: FloatArray, v: FloatArray, places: IntArray, keep: NDArray[np.bool_],
+                        collected: dict[str, list[tuple[FloatArray, FloatArray, IntArray]]],
+                        problems: _GroupProblems, first: int, cname: str) -> None:
+    """Split a slice of a long file by its stream column (dictionary-encoded, as pyarrow keeps strings)."""
     import pyarrow as pa
 
     if not pa.types.is_dictionary(scol.type):
-        scol = scol.cast(pa.string()).dictionary_encode()
-    dictionary = scol.dictionary.to_pylist()
-    valid = np.asarray(scol.is_valid())
-    codes = np.asarray(scol.indices.fill_null(0), dtype=np.int64)
-    names = [str(x).strip() for x in dictionary]
-    empty = np.array([not x for x in names] + [True], dtype=bool)
-    codes = np.where(valid, codes, len(names))
-    bad = keep & empty[codes]
-    for i in np.flatnonzero(bad)[:20].tolist():
-        problems.append(f"{where}, row {first + i}, column {cname}: empty stream name")
-    nb = int(np.count_nonzero(bad))
-    if nb > 20:
-        problems += [f"{where}, column {cname}: empty stream name"] * (nb - 20)
-    keep = keep & ~empty[codes]
-    # The same name may appear under several codes (spaces around it): merge by name.
+        if not (pa.types.is_string(scol.type) or pa.types.is_large_string(scol.type)):
+            problems.whole(cname, f"holds {scol.type}, not stream names; the rows were skipped", len(scol))
+            return
+        scol = scol.dictionary_encode()
+    names = [str(x).strip() for x in scol.dictionary.to_pylist()]
+    valid = np.asarray(scol.is_valid(), dtype=bool)
+    problems.rows(keep & ~valid, first, cname, "no stream name (null)")
+    # The same name may stand under several codes (spaces around it): one code per name.
     key_of: dict[str, int] = {}
     remap = np.array([key_of.setdefault(x, len(key_of)) if x else -1 for x in names] + [-1], dtype=np.int64)
-    codes = remap[codes]
-    codes = np.where(keep, codes, len(key_of))
+    codes = remap[np.where(valid, np.asarray(scol.indices.fill_null(0), dtype=np.int64), len(names))]
+    problems.rows(keep & valid & (codes < 0), first, cname, "empty stream name")
+    codes = np.where(keep & (codes >= 0), codes, len(key_of))
     order = np.argsort(codes, kind="stable")
-    counts = np.bincount(codes, minlength=len(key_of) + 1)
-    sels = np.split(order, np.cumsum(counts)[:-1])
+    sels = np.split(order, np.cumsum(np.bincount(codes, minlength=len(key_of) + 1))[:-1])
     for key, sel in zip(key_of, sels):
         if sel.shape[0]:
             collected.setdefault(key, []).append((times[sel], v[sel], places[sel]))
