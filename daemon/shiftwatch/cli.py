@@ -106,7 +106,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
 
 
 def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
-    from shiftwatch.replay import KEEP_PROBLEMS, CsvFormatError, default_jobs, replay_files
+    from shiftwatch.replay import CsvFormatError, default_jobs, replay_files
     from shiftwatch.sources import open_sources, time_zone
 
     jobs = default_jobs() if args.jobs is None else args.jobs
@@ -132,6 +132,8 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
             sc = cfg.stream_for(stream)
             return None if sc is None else sc.unit
 
+    if args.dask is not None:
+        return _replay_on_dask(args, cfg, report, settings_for, unit_for, sources)
     bar = progress_bar(_input_bytes(args.csv), "replay", "B", minimum=PROGRESS_MIN_BYTES)
     try:
         result = replay_files(args.csv, settings_for, unit_for, jobs=jobs, timezone=tz, sources=sources,
@@ -143,6 +145,33 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
     finally:
         if bar is not None:
             bar.close()
+    return _replay_output(args, report, result, unit_for, sources)
+
+
+def _replay_on_dask(args: argparse.Namespace, cfg: Any, report: Any, settings_for: Any, unit_for: Any,
+                    sources: list[Any]) -> int:
+    import os
+
+    from shiftwatch.cluster import ClusterError, replay_on_dask
+    from shiftwatch.replay import CsvFormatError
+
+    if len(args.csv) != 1 or not os.path.isdir(args.csv[0]):
+        _err("--dask replays one dataset: give the directory that holds it, partitioned by stream")
+        return EXIT_USAGE
+    try:
+        result = replay_on_dask(args.csv[0], args.dask, settings_for, unit_for, layout=args.layout,
+                                timezone=args.timezone,
+                                trace_options=None if report is None else report.trace_options)
+    except (ClusterError, CsvFormatError) as exc:
+        _err(str(exc))
+        return EXIT_USAGE
+    return _replay_output(args, report, result, unit_for, sources)
+
+
+def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for: Any, sources: list[Any]) -> int:
+    """Write the records, the problems, the summary and the report of a replay."""
+    from shiftwatch.replay import KEEP_PROBLEMS
+
     out: TextIO
     if args.out:
         try:
@@ -558,6 +587,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="also write DIR/report.html: a chart per stream and a summary table")
     r.add_argument("--jobs", type=int, default=None, metavar="N",
                    help="processes to split the streams over (default: the cores available)")
+    r.add_argument("--dask", metavar="ADDRESS",
+                   help="replay one dataset directory partitioned by stream on this Dask scheduler "
+                   "(tcp://HOST:PORT); needs the cluster extra")
     _add_reading_options(r)
     r.add_argument("csv", nargs="+", metavar="FILE",
                    help="CSV or Parquet files, long (time,stream,value) or wide (time,TAG,...); "
