@@ -28,6 +28,7 @@ import os
 import queue
 import traceback
 import zlib
+from collections import deque
 from dataclasses import dataclass, field
 from datetime import tzinfo
 from typing import TYPE_CHECKING, Any, Callable, Iterable
@@ -340,41 +341,73 @@ def _owner(name: str, jobs: int) -> int:
 _END = "end"
 
 
+#: Chunks a process parses ahead of what it feeds, while it waits for another's chunk.
+LOOKAHEAD = 2
+
+
 def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_for: Any,
             trace_options: dict[str, int] | None, tz: tzinfo | None, plan: Any, pairs: dict[tuple[int, int], Any],
             results: Any, done: Any) -> None:
-    """Process ``me`` of ``jobs``: parse its chunks, pass rows on to their owners, feed its streams."""
+    """Process ``me`` of ``jobs``: parse chunks ``me``, ``me + jobs``, ... and pass their rows on to
+    the streams' owners; feed its own streams every chunk's rows in chunk order.
+
+    While the chunk to feed next is another's and has not come yet, it parses up to
+    :data:`LOOKAHEAD` of its own ahead, so the processes parse at the same time.
+    """
     try:
         feeder = _Feeder(sources, settings_for, unit_for, trace_options)
         opened: dict[str, Any] = {}
-        k = 0
-        while True:
-            owner = k % jobs
-            if owner == me:
-                task = plan.get()
-                if task == _END:
-                    for j in range(jobs):
-                        if j != me:
-                            pairs[me, j].put(_END)
-                    break
-                block = parse_task(task, sources, tz, opened)
-                feeder.take_block(block)
-                split: list[list[Any]] = [[] for _ in range(jobs)]
-                for part in block.parts:
-                    split[_owner(part[0], jobs)].append(part)
+        own: deque[tuple[int, list[Any]]] = deque()
+        next_own = me
+        total: int | None = None
+
+        def parse_next() -> None:
+            nonlocal next_own, total
+            task = plan.get()
+            if task == _END:
+                total = next_own  # at most; a chunk another lacks ends the loop sooner
                 for j in range(jobs):
                     if j != me:
-                        pairs[me, j].put(split[j])
-                feeder.add(split[me])
-                with done.get_lock():
-                    done.value += block.nbytes
+                        pairs[me, j].put(_END)
+                return
+            block = parse_task(task, sources, tz, opened)
+            feeder.take_block(block)
+            split: list[list[Any]] = [[] for _ in range(jobs)]
+            for part in block.parts:
+                split[_owner(part[0], jobs)].append(part)
+            for j in range(jobs):
+                if j != me:
+                    pairs[me, j].put(split[j])
+            own.append((block.index, split[me]))
+            next_own += jobs
+            with done.get_lock():
+                done.value += block.nbytes
+
+        k = 0
+        while total is None or k < total:
+            owner = k % jobs
+            if owner == me:
+                while not own and total is None:
+                    parse_next()
+                if not own:
+                    break
+                _, parts = own.popleft()
+                feeder.add(parts)
             else:
-                got = pairs[owner, me].get()
-                if got == _END:
+                try:
+                    got = pairs[owner, me].get_nowait()
+                except queue.Empty:
+                    if total is None and len(own) < LOOKAHEAD:
+                        parse_next()
+                        continue
+                    got = pairs[owner, me].get()
+                if got == _END:  # the owner had no chunk k: there are k chunks
                     break
                 feeder.add(got)
             k += 1
         results.put(("ok", me, feeder.finish(), feeder.read_summary()))
+        for f in opened.values():
+            f.close()
     except BaseException:  # noqa: BLE001 - reported to the parent, which stops the others
         results.put(("error", me, traceback.format_exc(), None))
 
@@ -420,18 +453,24 @@ def _replay_in_processes(sources: list[Source], settings_for: Any, unit_for: Any
                 raise RuntimeError(f"replay process {i} ended (exit code {p.exitcode}) before its work was done")
 
     try:
-        k = 0
-        for task in tasks(sources, tz, chunk_bytes):
+        def hand(i: int, task: Any) -> None:
             while True:
                 try:
-                    plans[k % jobs].put(task, timeout=0.2)
-                    break
+                    plans[i].put(task, timeout=0.2)
+                    return
                 except queue.Full:
                     check()
                     report_progress()
+
+        k = 0
+        for task in tasks(sources, tz, chunk_bytes):
+            if task[0] == "csv":
+                task = task[:3] + (None,) + task[4:]  # the worker reads the bytes itself
+            hand(k % jobs, task)
             k += 1
             report_progress()
-        plans[k % jobs].put(_END)
+        for i in range(jobs):  # each learns the end when it asks for a chunk past it
+            hand((k + i) % jobs, _END)
         while len(finished) < jobs:
             try:
                 msg = results.get(timeout=0.2)

@@ -876,11 +876,14 @@ def _wide_parts(src: Source, body: _Body, times: FloatArray,
 
 def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUNK_BYTES,
               first_index: int = 0) -> Iterator[tuple[Any, ...]]:
-    """The chunks of a CSV file: ``("csv", file, line, bytes)`` or ``("block", Block)``."""
+    """The chunks of a CSV file: ``("csv", file, line, bytes, index, offset, size)`` or
+    ``("block", Block)`` for a chunk with quotes, read here.  Another process may be handed the
+    task without its bytes (None), and read them from the file at the offset."""
     index = first_index
     with open(src.path, "rb") as fb:
         fb.seek(src.body_start)
         line0 = src.body_line
+        offset = src.body_start  # of raw's first byte in the file
         carry = b""
         eof = False
         while True:
@@ -900,6 +903,7 @@ def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUN
                 carry = lines.rest()
                 eof = eof or lines.more is None
                 line0 += lines.count
+                offset += lines.consumed
                 yield ("block", block)
                 index += 1
                 continue
@@ -911,9 +915,10 @@ def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUN
                 nl = raw.rfind(b"\n")
             cut = len(raw) if eof or nl < 0 else nl + 1
             chunk, carry = raw[:cut], raw[cut:]
-            yield ("csv", fidx, line0, chunk, index)
+            yield ("csv", fidx, line0, chunk, index, offset, cut)
             index += 1
             line0 += _count_lines(chunk)
+            offset += cut
 
 
 def parse_csv_chunk(src: Source, fidx: int, line0: int, chunk: bytes, index: int,
@@ -1089,12 +1094,7 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
     import pyarrow as pa
 
     pq = _pyarrow()
-    pf = None if opened is None else opened.get(src.path)
-    if pf is None:
-        pf = pq.ParquetFile(src.path)
-        if opened is not None:
-            opened.clear()
-            opened[src.path] = pf
+    pf = _kept_open(opened, src.path, lambda: pq.ParquetFile(src.path))
     tname = src.header[src.time_col]
     if src.layout == "long":
         value_cols = [(src.header[src.value_col], "")]
@@ -1182,6 +1182,30 @@ def tasks(sources: list[Source], tz: tzinfo | None, chunk_bytes: int = CHUNK_BYT
             index += 1
 
 
+def _kept_open(opened: dict[str, Any] | None, path: str, make: Any) -> Any:
+    """The file last opened, while the pieces are of the same file (``opened`` keeps it)."""
+    f = None if opened is None else opened.get(path)
+    if f is None:
+        f = make()
+        if opened is not None:
+            for old in opened.values():
+                old.close()
+            opened.clear()
+            opened[path] = f
+    return f
+
+
+def _read_at(path: str, offset: int, size: int, opened: dict[str, Any] | None) -> bytes:
+    """``size`` bytes of a file from ``offset`` (a chunk handed over without its bytes)."""
+    f = _kept_open(opened, path, lambda: open(path, "rb"))
+    chunk = os.pread(f.fileno(), size, offset)
+    if opened is None:
+        f.close()
+    if len(chunk) != size:
+        raise CsvFormatError(f"{path}: the file changed while it was read")
+    return chunk
+
+
 def parse_task(task: tuple[Any, ...], sources: list[Source], tz: tzinfo | None,
                opened: dict[str, Any] | None = None) -> Block:
     """The :class:`Block` of one task of :func:`tasks`."""
@@ -1190,7 +1214,9 @@ def parse_task(task: tuple[Any, ...], sources: list[Source], tz: tzinfo | None,
         block: Block = task[1]
         return block
     if kind == "csv":
-        _, fidx, line0, chunk, index = task
+        _, fidx, line0, chunk, index, offset, size = task
+        if chunk is None:
+            chunk = _read_at(sources[fidx].path, offset, size, opened)
         return parse_csv_chunk(sources[fidx], fidx, line0, chunk, index, tz)
     _, fidx, g, index = task
     return parse_parquet_group(sources[fidx], fidx, g, index, tz, opened)
