@@ -225,7 +225,7 @@ class _Feeder:
             held.clear()
             self.held_count[name] = 0
         else:
-            held[:] = [(t[upto:], v[upto:], p[upto:])]
+            held[:] = [(t[upto:].copy(), v[upto:].copy(), p[upto:].copy())]  # not views of the whole
             self.held_count[name] = n - upto
 
     def _problem(self, name: str, reason: str, place: int) -> None:

@@ -1102,19 +1102,19 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
     else:
         value_cols = [(src.header[c], tag) for c, tag in src.tags]
         want = [tname] + [c for c, _ in value_cols]
-    table = pf.read_row_group(g, columns=want)
-    n = table.num_rows
+    n = 0
     base = src.group_rows[g]
     fbits = fidx << PLACE_BITS
     problems = _GroupProblems(src, g)
     collected: dict[str, list[tuple[FloatArray, FloatArray, IntArray]]] = {}
-    for a in range(0, n, PARQUET_SLICE):
-        part = table.slice(a, PARQUET_SLICE)
+    for part in pf.iter_batches(batch_size=PARQUET_SLICE, row_groups=[g], columns=want, use_threads=False):
+        a = n
         m = part.num_rows
-        times, tok = _arrow_times(part.column(0).combine_chunks(), tname, tz, a, problems)
+        n += m
+        times, tok = _arrow_times(part.column(0), tname, tz, a, problems)
         places = np.arange(base + a, base + a + m, dtype=np.int64) | fbits
         for j, (cname, tag) in enumerate(value_cols):
-            col = part.column(1 + j).combine_chunks()
+            col = part.column(1 + j)
             if not _is_number_type(col.type):
                 problems.whole(cname, f"holds {col.type}, not numbers; its values were skipped", m)
                 continue
@@ -1126,7 +1126,7 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
                 problems.rows(tok & ~valid, a, cname, "no value (null)")
                 keep = tok & valid
                 if src.stream_col >= 0:
-                    _long_parquet_parts(part.column(2).combine_chunks(), times, v, places, keep, collected,
+                    _long_parquet_parts(part.column(2), times, v, places, keep, collected,
                                         problems, a, src.header[src.stream_col])
                     continue
                 tag = src.stream or ""
@@ -1134,13 +1134,8 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
                 collected.setdefault(tag, []).append((times, v, places))
             elif bool(keep.any()):
                 collected.setdefault(tag, []).append((times[keep], v[keep], places[keep]))
-    parts = []
-    for key, pieces in collected.items():
-        if len(pieces) == 1:
-            parts.append((key, *pieces[0]))
-        else:
-            t, v, p = zip(*pieces)
-            parts.append((key, np.concatenate(t), np.concatenate(v), np.concatenate(p)))
+    # A stream's pieces stay apart (in order): joining them would hold the row group twice.
+    parts = [(key, *piece) for key, pieces in collected.items() for piece in pieces]
     return Block(index, fidx, parts, problems.messages, n, 0, unlisted=problems.unlisted)
 
 
