@@ -261,7 +261,7 @@ def open_source(path: str, layout: str = "auto") -> Source:
             raise CsvFormatError(f"{path}:1: unreadable header: {exc}") from None
         lay, ti, si, vi, tags = _pick_layout(path, header, layout, f"{path}:1")
         return Source(path, "csv", lay, header, ti, si, vi, tags, body_start=lines.consumed,
-                      body_line=reader.line_num + 1, stream=_partition_stream(path))
+                      body_line=reader.line_num + 1)
 
 
 def open_sources(paths: list[str | Path], layout: str = "auto") -> list[Source]:
@@ -1136,7 +1136,16 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
                 collected.setdefault(tag, []).append((times[keep], v[keep], places[keep]))
     # A stream's pieces stay apart (in order): joining them would hold the row group twice.
     parts = [(key, *piece) for key, pieces in collected.items() for piece in pieces]
-    return Block(index, fidx, parts, problems.messages, n, 0, unlisted=problems.unlisted)
+    size = _file_size(src.path)
+    nbytes = size * n // max(1, src.group_rows[-1])  # for progress: the group's share of the file
+    return Block(index, fidx, parts, problems.messages, n, nbytes, unlisted=problems.unlisted)
+
+
+def _file_size(path: str) -> int:
+    try:
+        return os.path.getsize(path)
+    except OSError:
+        return 0
 
 
 def _long_parquet_parts(scol: Any, times: FloatArray, v: FloatArray, places: IntArray, keep: NDArray[np.bool_],
