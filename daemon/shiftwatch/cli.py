@@ -50,8 +50,9 @@ def _print_problems(problems: list[str], limit: int = 20, total: int | None = No
     total = len(problems) if total is None else total
     for p in problems[:limit]:
         print(p, file=sys.stderr)
-    if total > limit:
-        print(f"... and {total - limit} more problems like these", file=sys.stderr)
+    shown = min(limit, len(problems))
+    if total > shown:
+        print(f"... and {total - shown} more problems like these", file=sys.stderr)
 
 
 # ----------------------------------------------------------------- replay

@@ -23,7 +23,6 @@ engines' per stream in name order).
 
 from __future__ import annotations
 
-import multiprocessing
 import os
 import queue
 import traceback
@@ -408,6 +407,8 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
         results.put(("ok", me, feeder.finish(), feeder.read_summary()))
         for f in opened.values():
             f.close()
+    except CsvFormatError as exc:
+        results.put(("format", me, str(exc), None))
     except BaseException:  # noqa: BLE001 - reported to the parent, which stops the others
         results.put(("error", me, traceback.format_exc(), None))
 
@@ -415,6 +416,8 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
 def _replay_in_processes(sources: list[Source], settings_for: Any, unit_for: Any,
                          trace_options: dict[str, int] | None, tz: tzinfo | None, jobs: int,
                          progress: Callable[[int], None] | None, chunk_bytes: int) -> ReplayResult:
+    import multiprocessing  # here: one process never pays for it
+
     ctx = multiprocessing.get_context("fork")  # the workers inherit the settings and the opened files
     plans = [ctx.Queue(maxsize=4) for _ in range(jobs)]
     pairs = {(a, b): ctx.Queue(maxsize=2) for a in range(jobs) for b in range(jobs) if a != b}
@@ -443,9 +446,7 @@ def _replay_in_processes(sources: list[Source], settings_for: Any, unit_for: Any
                 msg = results.get_nowait()
             except queue.Empty:
                 break
-            if msg[0] == "error":
-                _stop(procs)
-                raise RuntimeError(f"replay process {msg[1]} failed:\n{msg[2]}")
+            _failed(msg, procs)
             finished[msg[1]] = msg
         for i, p in enumerate(procs):
             if i not in finished and p.exitcode is not None:
@@ -478,9 +479,7 @@ def _replay_in_processes(sources: list[Source], settings_for: Any, unit_for: Any
                 check()
                 report_progress()
                 continue
-            if msg[0] == "error":
-                _stop(procs)
-                raise RuntimeError(f"replay process {msg[1]} failed:\n{msg[2]}")
+            _failed(msg, procs)
             finished[msg[1]] = msg
         report_progress()
     except BaseException:
@@ -489,6 +488,16 @@ def _replay_in_processes(sources: list[Source], settings_for: Any, unit_for: Any
     for p in procs:
         p.join()
     return _merge([(msg[2], msg[3]) for _, msg in sorted(finished.items())])
+
+
+def _failed(msg: tuple[Any, ...], procs: list[Any]) -> None:
+    """Stop every process and raise what one of them reported, if it failed."""
+    if msg[0] == "format":
+        _stop(procs)
+        raise CsvFormatError(msg[2])
+    if msg[0] == "error":
+        _stop(procs)
+        raise RuntimeError(f"replay process {msg[1]} failed:\n{msg[2]}")
 
 
 def _stop(procs: list[Any]) -> None:

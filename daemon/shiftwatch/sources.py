@@ -31,12 +31,10 @@ from __future__ import annotations
 import csv
 import math
 import os
-import zoneinfo
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, tzinfo
 from pathlib import Path
 from typing import Any, BinaryIO, Iterator
-from urllib.parse import unquote
 
 import numpy as np
 from numpy.typing import NDArray
@@ -70,6 +68,8 @@ def time_zone(name: str | None) -> tzinfo | None:
     """The IANA time zone of that name (None for None); :class:`CsvFormatError` when unknown."""
     if name is None:
         return None
+    import zoneinfo
+
     try:
         return zoneinfo.ZoneInfo(name)
     except (zoneinfo.ZoneInfoNotFoundError, ValueError):
@@ -94,7 +94,7 @@ def parse_time(text: str, tz: tzinfo | None = None) -> float:
     --------
     >>> parse_time("2026-03-02T06:00:00.250Z"), parse_time("1772431200.5"), parse_time("1772431200250")
     (1772431200.25, 1772431200.5, 1772431200.25)
-    >>> parse_time("2026-03-02T07:00:00", zoneinfo.ZoneInfo("Europe/Berlin"))
+    >>> parse_time("2026-03-02T07:00:00", time_zone("Europe/Berlin"))
     1772431200.0
     >>> parse_time("2026-03-02T07:00:00")
     Traceback (most recent call last):
@@ -189,6 +189,8 @@ def expand_paths(paths: list[str | Path]) -> list[str]:
 
 def _partition_stream(path: str) -> str | None:
     """The stream named by the nearest ``stream=NAME`` directory of a path (percent-decoded)."""
+    from urllib.parse import unquote
+
     for part in reversed(Path(path).parent.parts):
         if part.startswith("stream="):
             return unquote(part[len("stream="):])
@@ -1107,7 +1109,19 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
     fbits = fidx << PLACE_BITS
     problems = _GroupProblems(src, g)
     collected: dict[str, list[tuple[FloatArray, FloatArray, IntArray]]] = {}
-    for part in pf.iter_batches(batch_size=PARQUET_SLICE, row_groups=[g], columns=want, use_threads=False):
+    batches = pf.iter_batches(batch_size=PARQUET_SLICE, row_groups=[g], columns=want, use_threads=False)
+    while True:
+        try:
+            part = next(batches)
+        except StopIteration:
+            break
+        except Exception as exc:  # noqa: BLE001 - pyarrow's errors for damaged pages are of many kinds
+            lost = src.group_rows[g + 1] - src.group_rows[g] - n
+            problems.messages.append(f"{problems.where}: unreadable from row {n} on ({' '.join(str(exc).split())}); "
+                                     f"its last {lost} rows were skipped")
+            problems.unlisted += lost - 1
+            n += lost
+            break
         a = n
         m = part.num_rows
         n += m

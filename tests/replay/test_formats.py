@@ -178,6 +178,19 @@ def test_bad_parquet_rows_are_named_by_row_group_row_and_column(cli, history, tm
     assert res.returncode == 1 and f"{naive}: row group 0, row 0, column time: the time has no UTC offset" in res.stderr
     res = cli("replay", "--timezone", "UTC", str(naive))
     assert res.stdout == cli("replay", str(f)).stdout
+    # A damaged page in row group 1 (its footer still sound): that group's rows are counted and
+    # skipped, the others replayed.
+    damaged = tmp_path / "damaged.parquet"
+    pq.write_table(arrow_long(data), damaged, row_group_size=4000)
+    offset = pq.ParquetFile(damaged).metadata.row_group(1).column(2).data_page_offset
+    raw = bytearray(damaged.read_bytes())
+    raw[offset + 10:offset + 200] = b"\xab" * 190
+    damaged.write_bytes(raw)
+    res = cli("replay", "--jobs", "2", str(damaged))
+    assert res.returncode == 1 and "Traceback" not in res.stderr, res.stderr
+    assert f"{damaged}: row group 1: unreadable from row 0 on (" in res.stderr
+    assert "its last 4000 rows were skipped" in res.stderr and "4000 unreadable row(s) skipped" in res.stderr
+    assert "replayed 16000 rows in 4 stream(s)" in res.stderr
     broken = tmp_path / "broken.parquet"
     broken.write_bytes(b"PAR1" + bytes(100))
     res = cli("replay", str(broken))
