@@ -364,11 +364,11 @@ class _Lines:
         return bytes(self.buf[self.pos:self.end])
 
 
-def _count_lines(data: bytes | bytearray) -> int:
-    """Lines as :class:`_Lines` counts them in data that ends with a line end."""
-    n = data.count(b"\n")
-    if b"\r" in data:
-        n += data.count(b"\r") - data.count(b"\r\n")
+def _count_lines(data: bytes | bytearray, end: int) -> int:
+    """Lines as :class:`_Lines` counts them in ``data[:end]``, which ends with a line end."""
+    n = data.count(b"\n", 0, end)
+    if data.find(b"\r", 0, end) >= 0:
+        n += data.count(b"\r", 0, end) - data.count(b"\r\n", 0, end)
     return n
 
 
@@ -883,63 +883,63 @@ def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUN
     task without its bytes (None), and read them from the file at the offset."""
     index = first_index
     with open(src.path, "rb") as fb:
-        fb.seek(src.body_start)
+        offset = src.body_start  # of the chunk's first byte in the file
         line0 = src.body_line
-        offset = src.body_start  # of raw's first byte in the file
-        carry = b""
-        eof = False
         while True:
-            raw = carry
-            if not eof:
-                data = fb.read(chunk_bytes)
-                eof = len(data) < chunk_bytes
-                raw += data
-            if not raw:
+            fb.seek(offset)
+            data = fb.read(chunk_bytes)
+            if not data:
                 return
-            if b'"' in raw:
+            eof = len(data) < chunk_bytes
+            if data.find(b'"') >= 0:
                 # Only reading the rows finds where they end: read them here, up to the
                 # first row that ends at or past the chunk's size.
-                lines = _Lines(bytearray(raw), 0, len(raw), None if eof else fb)
-                block = _slow_rows(src, fidx, lines, line0, tz, index, 0, stop_at=len(raw))
+                lines = _Lines(bytearray(data), 0, len(data), None if eof else fb)
+                block = _slow_rows(src, fidx, lines, line0, tz, index, 0, stop_at=len(data))
                 block.nbytes = lines.consumed
-                carry = lines.rest()
-                eof = eof or lines.more is None
                 line0 += lines.count
                 offset += lines.consumed
                 yield ("block", block)
                 index += 1
+                if lines.more is None and not lines.rest():
+                    return
                 continue
-            nl = raw.rfind(b"\n")
-            while nl < 0 and not eof:
+            nl = data.rfind(b"\n")
+            while nl < 0 and not eof:  # a line longer than a chunk: read on to its end
                 more = fb.read(chunk_bytes)
                 eof = len(more) < chunk_bytes
-                raw += more
-                nl = raw.rfind(b"\n")
-            cut = len(raw) if eof or nl < 0 else nl + 1
-            chunk, carry = raw[:cut], raw[cut:]
-            yield ("csv", fidx, line0, chunk, index, offset, cut)
+                data += more
+                nl = data.rfind(b"\n")
+            cut = len(data) if eof else nl + 1
+            # The next chunk starts after the last newline: it is read again from there, so
+            # no bytes are carried over (or copied) from one chunk to the next.
+            yield ("csv", fidx, line0, data, index, offset, cut)
             index += 1
-            line0 += _count_lines(chunk)
+            if cut == len(data) and eof:
+                return
+            line0 += _count_lines(data, cut)
             offset += cut
 
 
 def parse_csv_chunk(src: Source, fidx: int, line0: int, chunk: bytes, index: int,
-                    tz: tzinfo | None) -> Block:
-    """A CSV chunk's rows: column-wise when it is clean, else row by row."""
-    buf = bytearray(_PAD) + chunk + bytearray(_PAD)
-    begin, end = _PAD, _PAD + len(chunk)
-    utf8 = chunk.isascii()
+                    tz: tzinfo | None, size: int | None = None) -> Block:
+    """The rows of ``chunk[:size]``: column-wise when it is clean, else row by row."""
+    size = len(chunk) if size is None else size
+    buf = bytearray(size + 2 * _PAD)
+    buf[_PAD:_PAD + size] = memoryview(chunk)[:size]
+    begin, end = _PAD, _PAD + size
+    utf8 = buf.isascii()  # the padding is zeros: ASCII
     if not utf8:
         try:
-            chunk.decode("utf-8")
+            buf.decode("utf-8")
             utf8 = True
         except UnicodeDecodeError:
             pass
     if utf8:
         got = _read_fast(src, buf, begin, end, line0, fidx << PLACE_BITS, tz)
         if got is not None:
-            return Block(index, fidx, got[0], [], got[1], len(chunk))
-    return _slow_rows(src, fidx, _Lines(buf, begin, end, None), line0, tz, index, len(chunk))
+            return Block(index, fidx, got[0], [], got[1], size)
+    return _slow_rows(src, fidx, _Lines(buf, begin, end, None), line0, tz, index, size)
 
 
 # ---------------------------------------------------------------------------
@@ -1235,6 +1235,6 @@ def parse_task(task: tuple[Any, ...], sources: list[Source], tz: tzinfo | None,
         _, fidx, line0, chunk, index, offset, size = task
         if chunk is None:
             chunk = _read_at(sources[fidx].path, offset, size, opened)
-        return parse_csv_chunk(sources[fidx], fidx, line0, chunk, index, tz)
+        return parse_csv_chunk(sources[fidx], fidx, line0, chunk, index, tz, size)
     _, fidx, g, index = task
     return parse_parquet_group(sources[fidx], fidx, g, index, tz, opened)
