@@ -46,16 +46,21 @@ def _optional_config(path: str | None) -> tuple[Any, bool]:
         return None, True
 
 
-def _print_problems(problems: list[str], limit: int = 20) -> None:
+def _print_problems(problems: list[str], limit: int = 20, total: int | None = None) -> None:
+    """The first ``limit`` problems on stderr, and how many more there were (``total`` in all)."""
+    total = len(problems) if total is None else total
     for p in problems[:limit]:
         print(p, file=sys.stderr)
-    if len(problems) > limit:
-        print(f"... and {len(problems) - limit} more problems like these", file=sys.stderr)
+    shown = min(limit, len(problems))
+    if total > shown:
+        print(f"... and {total - shown} more problems like these", file=sys.stderr)
 
 
 # ----------------------------------------------------------------- replay
 #: Replays of fewer samples finish too soon for a progress bar to help.
 PROGRESS_MIN_SAMPLES = 100_000
+#: Replays of fewer input bytes (about 100,000 rows of long CSV) finish too soon for one.
+PROGRESS_MIN_BYTES = 4_000_000
 
 
 def progress_bar(total: int, desc: str, unit: str, *, minimum: int = PROGRESS_MIN_SAMPLES) -> Any:
@@ -70,6 +75,17 @@ def progress_bar(total: int, desc: str, unit: str, *, minimum: int = PROGRESS_MI
     except ImportError:
         return None
     return tqdm(total=total, desc=desc, unit=unit, unit_scale=total >= 10_000, leave=False, file=sys.stderr)
+
+
+def _input_bytes(paths: list[str]) -> int:
+    import os
+
+    from shiftwatch.sources import expand_paths
+
+    try:
+        return sum(os.path.getsize(p) for p in expand_paths(paths))
+    except (OSError, ValueError):
+        return 0
 
 
 def cmd_replay(args: argparse.Namespace) -> int:
@@ -92,45 +108,82 @@ def cmd_replay(args: argparse.Namespace) -> int:
 
 
 def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
-    from shiftwatch.replay import CsvFormatError, read_long_csv, replay_series
+    from shiftwatch.replay import CsvFormatError, default_jobs, replay_files
+    from shiftwatch.sources import open_sources, time_zone
 
+    jobs = default_jobs() if args.jobs is None else args.jobs
+    if jobs < 1:
+        _err(f"--jobs must be at least 1, got {jobs}")
+        return EXIT_USAGE
     try:
-        read = read_long_csv(args.csv)
+        in_tz = time_zone(args.timezone)  # the zone of input times without an offset
+        sources = open_sources(args.csv, args.layout)
     except CsvFormatError as exc:
         _err(str(exc))
         return EXIT_USAGE
 
     if cfg is None:
-        from shiftwatch.core.settings import DetectionSettings
-
-        defaults = DetectionSettings()
-
-        def settings_for(stream: str) -> Any:
-            return defaults
+        settings_for = None
 
         def unit_for(stream: str) -> str | None:
             return None
 
         def label_for(stream: str) -> str | None:
             return None
-        tz = "UTC"
+        show_tz = "UTC"
     else:
         settings_for = cfg.settings_for
         label_for = cfg.label_for
-        tz = cfg.display.time_zone
+        show_tz = cfg.display.time_zone  # the zone summaries and the report show times in
 
         def unit_for(stream: str) -> str | None:
             sc = cfg.stream_for(stream)
             return None if sc is None else sc.unit
 
-    bar = progress_bar(sum(len(s.times) for s in read.streams.values()), "replay", "sample")
+    shown = (label_for, show_tz)
+    if args.dask is not None:
+        return _replay_on_dask(args, cfg, report, settings_for, unit_for, sources, shown)
+    bar = progress_bar(_input_bytes(args.csv), "replay", "B", minimum=PROGRESS_MIN_BYTES)
     try:
-        records, problems, engines = replay_series(
-            read.streams, settings_for, unit_for, progress=bar and bar.update,
-            observe=None if report is None else report.observe)
+        result = replay_files(args.csv, settings_for, unit_for, jobs=jobs, timezone=in_tz, sources=sources,
+                              trace_options=None if report is None else report.trace_options,
+                              progress=bar and bar.update)
+    except CsvFormatError as exc:
+        _err(str(exc))
+        return EXIT_USAGE
     finally:
         if bar is not None:
             bar.close()
+    return _replay_output(args, report, result, unit_for, sources, shown)
+
+
+def _replay_on_dask(args: argparse.Namespace, cfg: Any, report: Any, settings_for: Any, unit_for: Any,
+                    sources: list[Any], shown: tuple[Any, str]) -> int:
+    import os
+
+    from shiftwatch.cluster import ClusterError, replay_on_dask
+    from shiftwatch.replay import CsvFormatError
+
+    if len(args.csv) != 1 or not os.path.isdir(args.csv[0]):
+        _err("--dask replays one dataset: give the directory that holds it, partitioned by stream")
+        return EXIT_USAGE
+    try:
+        result = replay_on_dask(args.csv[0], args.dask, settings_for, unit_for, layout=args.layout,
+                                timezone=args.timezone,
+                                trace_options=None if report is None else report.trace_options)
+    except (ClusterError, CsvFormatError) as exc:
+        _err(str(exc))
+        return EXIT_USAGE
+    return _replay_output(args, report, result, unit_for, sources, shown)
+
+
+def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for: Any, sources: list[Any],
+                   shown: tuple[Any, str]) -> int:
+    """Write the records, the problems, the summary and the report of a replay."""
+    from shiftwatch.replay import KEEP_PROBLEMS
+
+    label_for, tz = shown
+
     out: TextIO
     if args.out:
         try:
@@ -143,9 +196,9 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
     from shiftwatch.display import alert_summary
 
     written = time.time()  # the summaries give the date of a time not on this day
-    labels = {name: label_for(name) for name in engines}
+    labels = {name: label_for(name) for name in result.streams}
     try:
-        for rec in records:
+        for rec in result.records:
             # The same record the daemon publishes: the label when the config gives one, the summary.
             d = rec.to_dict()
             label = labels.get(rec.stream)
@@ -156,33 +209,35 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
     finally:
         if args.out:
             out.close()
-    all_problems = read.problems + problems
-    _print_problems(all_problems)
+    problem_count = result.problem_count
+    _print_problems(result.problems, KEEP_PROBLEMS, problem_count)
+    streams = result.streams
     phases: dict[str, int] = {}
     rejected: dict[str, int] = {}
-    for e in engines.values():
-        for k, v in e.records_total.items():
+    for o in streams.values():
+        for k, v in o.records_total.items():
             phases[k] = phases.get(k, 0) + v
-        for k, v in e.rejected_total.items():
+        for k, v in o.rejected_total.items():
             rejected[k] = rejected.get(k, 0) + v
-    summary = (f"replayed {read.rows} rows in {len(engines)} stream(s): "
+    summary = (f"replayed {result.rows} rows in {len(streams)} stream(s): "
                f"{phases.get('confirmed', 0)} shift(s) confirmed, {phases.get('returned', 0)} returned, "
                f"{phases.get('dismissed', 0)} dismissed, {phases.get('undecided', 0)} undecided")
     if rejected:
         summary += "; samples set aside: " + ", ".join(f"{k} {v}" for k, v in sorted(rejected.items()))
-    if len(read.problems):
-        summary += f"; {len(read.problems)} unreadable row(s) skipped"
+    if result.read_problem_count:
+        summary += f"; {result.read_problem_count} unreadable row(s) skipped"
     print(summary, file=sys.stderr)
     if report is not None:
         from shiftwatch.report import ReportError
 
-        bar = progress_bar(len(engines), "charts", "chart", minimum=2)
+        report.adopt({name: o.trace for name, o in streams.items()})
+        bar = progress_bar(len(streams), "charts", "chart", minimum=2)
         try:
             path = report.write(
-                samples={name: e.samples_total for name, e in engines.items()},
-                rejected={name: dict(e.rejected_total) for name, e in engines.items()},
-                units={name: unit_for(name) for name in engines}, labels=labels, time_zone=tz,
-                sources=[str(p) for p in args.csv], unreadable_rows=len(read.problems),
+                samples={name: o.samples_total for name, o in streams.items()},
+                rejected={name: dict(o.rejected_total) for name, o in streams.items()},
+                units={name: unit_for(name) for name in streams}, labels=labels, time_zone=tz,
+                sources=[s.path for s in sources], unreadable_rows=result.read_problem_count,
                 settings_note=("default detection settings" if args.config is None
                                else f"detection settings from {args.config}"),
                 progress=bar and bar.update)
@@ -193,7 +248,7 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
             if bar is not None:
                 bar.close()
         print(f"report written to {path}", file=sys.stderr)
-    return EXIT_BAD_DATA if all_problems else EXIT_OK
+    return EXIT_BAD_DATA if problem_count else EXIT_OK
 
 
 # -------------------------------------------------------------------- fit
@@ -205,7 +260,7 @@ def cmd_fit(args: argparse.Namespace) -> int:
     from shiftwatch.replay import CsvFormatError, read_long_csv
 
     try:
-        read = read_long_csv([args.csv])
+        read = read_long_csv([args.csv], layout=args.layout, timezone=args.timezone, only=args.stream)
     except CsvFormatError as exc:
         _err(str(exc))
         return EXIT_USAGE
@@ -407,7 +462,7 @@ def _design_from(args: argparse.Namespace) -> int:
     if failed:
         return EXIT_USAGE
     try:
-        read = read_long_csv(args.from_csv)
+        read = read_long_csv(args.from_csv, layout=args.layout, timezone=args.timezone)
     except CsvFormatError as exc:
         _err(str(exc))
         return EXIT_USAGE
@@ -639,6 +694,15 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 
 # ------------------------------------------------------------------- main
+def _add_reading_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--layout", choices=("auto", "long", "wide"), default="auto",
+                   help="long: time,stream,value; wide: time then one column per tag; "
+                   "auto (default): long when the file has stream and value columns")
+    p.add_argument("--timezone", metavar="ZONE",
+                   help="IANA time zone (e.g. Europe/Berlin) of times written without a UTC offset; "
+                   "such times are refused without it")
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="shiftwatch",
@@ -652,15 +716,24 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--out", help="write JSON lines here instead of stdout")
     r.add_argument("--report", metavar="DIR",
                    help="also write DIR/report.html: a chart per stream and a summary table")
-    r.add_argument("csv", nargs="+", help="long CSV files with columns time,stream,value")
+    r.add_argument("--jobs", type=int, default=None, metavar="N",
+                   help="processes to split the streams over (default: the cores available)")
+    r.add_argument("--dask", metavar="ADDRESS",
+                   help="replay one dataset directory partitioned by stream on this Dask scheduler "
+                   "(tcp://HOST:PORT); needs the cluster extra")
+    _add_reading_options(r)
+    r.add_argument("csv", nargs="+", metavar="FILE",
+                   help="CSV or Parquet files, long (time,stream,value) or wide (time,TAG,...); "
+                   "a directory stands for its .parquet and .csv files")
     r.set_defaults(func=cmd_replay)
 
     f = sub.add_parser("fit", help="fit one step to a whole series and print it (--json: as JSON)")
-    f.add_argument("csv", help="long CSV file with columns time,stream,value")
+    f.add_argument("csv", metavar="FILE", help="CSV or Parquet file, long or wide, as replay reads them")
     f.add_argument("--stream", help="stream to fit (needed when the file holds several)")
     f.add_argument("--level", type=float, default=0.9, help="confidence level of the shift-time interval (default 0.9)")
     f.add_argument("--min-segment", type=int, default=2, help="fewest samples on each side of the shift (default 2)")
     f.add_argument("--json", action="store_true", help="print JSON, every figure in full, instead of text")
+    _add_reading_options(f)
     f.set_defaults(func=cmd_fit)
 
     d = sub.add_parser("design", help="turn plant terms into test parameters and show the run lengths, "
@@ -685,6 +758,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="with --from: false detections a day the whole plant accepts (default 1)")
     d.add_argument("--config", metavar="FILE",
                    help="with --from: configuration whose units and labels name the streams")
+    _add_reading_options(d)
     d.set_defaults(func=cmd_design)
 
     rn = sub.add_parser("run", help="run the daemon (MQTT in, alerts and metrics out)")

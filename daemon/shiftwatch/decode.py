@@ -250,7 +250,9 @@ _SENML_REGULAR = ("n", "u", "v", "vs", "vb", "vd", "s", "t", "ut")
 _SENML_VALUES = ("v", "vs", "vb", "vd")
 _SENML_VERSION = 10  # RFC 8428 section 4.1: the version when bver is absent, and ours
 _RELATIVE_LIMIT = 2.0 ** 28  # RFC 8428 section 4.5.3
-_MS_THRESHOLD = 1e11
+#: A numeric time above this (year 5138 in seconds) is epoch milliseconds; replay reads files by the same rule.
+EPOCH_MS_ABOVE = 1e11
+_MS_THRESHOLD = EPOCH_MS_ABOVE
 _BIG_INT_DIGITS = 400  # longer integer literals overflow a float anyway
 
 

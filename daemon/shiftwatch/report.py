@@ -395,6 +395,17 @@ class ReplayReport:
         """Where the finished report is."""
         return self.directory / REPORT_FILE
 
+    @property
+    def trace_options(self) -> dict[str, int]:
+        """The options of each stream's :class:`StreamTrace` (``replay_files(trace_options=...)``)."""
+        return dict(self._options)
+
+    def adopt(self, traces: dict[str, StreamTrace]) -> None:
+        """Take the finished traces of a replay that built them itself (:func:`shiftwatch.replay.replay_files`)."""
+        for name, trace in traces.items():
+            trace.close()
+            self.traces[name] = trace
+
     def observe(self, stream: str, times: FloatArray, values: FloatArray, result: BatchResult) -> None:
         """The hook for :func:`shiftwatch.replay.replay_series`: one processed batch."""
         trace = self.traces.get(stream)

@@ -101,7 +101,7 @@ def test_replay_reports_bad_rows_by_file_and_line_and_keeps_the_good(cli, tmp_pa
     assert res.returncode == 1
     err = res.stderr
     assert f"{csv_path}:11: value 'n/a' is not a number" in err
-    assert f"{csv_path}:21: time 'yesterday' is not RFC 3339 or epoch seconds" in err
+    assert f"{csv_path}:21: time 'yesterday' is not RFC 3339, epoch seconds or epoch milliseconds" in err
     assert f"{csv_path}:31: stream " in err and "value is NaN" in err
     assert f"{csv_path}:41: stream " in err and "repeats one already accepted" in err
     assert f"{csv_path}:51: expected 3 columns, got 2" in err

@@ -1,0 +1,1240 @@
+"""Reading replay files a piece at a time: long and wide CSV, Parquet.
+
+Layouts
+-------
+- **long**: columns ``time``, ``stream`` and ``value`` (others are ignored),
+  one reading a row.
+- **wide**: a ``time`` column and one column per tag, the column's name being
+  the stream's (``time,filler_head1,filler_head2,...``); an empty cell (CSV)
+  or a null (Parquet) is a missing reading, not a problem.
+
+With ``layout="auto"`` a file is long when it has ``stream`` and ``value``
+columns and wide otherwise.  Times are RFC 3339, epoch seconds, or epoch
+milliseconds: a number above :data:`shiftwatch.decode.EPOCH_MS_ABOVE` (the
+daemon's rule) is milliseconds.  A time without a UTC offset is refused
+unless a time zone (an IANA name) is given, and then read as local time
+there.
+
+A CSV file is cut into chunks of about :data:`CHUNK_BYTES` at line ends, a
+Parquet file into row groups; each becomes a :class:`Block`: per stream, its
+rows in file order and where each row came from.  Memory is therefore
+bounded by the chunk, not by the file.  Clean CSV chunks are read
+column-wise from their bytes (see :func:`_read_fast`); a chunk with any
+problem, quotes or carriage returns is read row by row with the stdlib
+``csv`` module, so every problem names its ``file:line``.  Parquet problems
+name the file, row group, row (counted from 0 within the row group, as
+pyarrow counts) and column.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+import os
+from dataclasses import dataclass, field
+from datetime import datetime, timedelta, tzinfo
+from pathlib import Path
+from typing import Any, BinaryIO, Iterator
+
+import numpy as np
+from numpy.typing import NDArray
+
+from shiftwatch.decode import EPOCH_MS_ABOVE
+
+FloatArray = NDArray[np.float64]
+IntArray = NDArray[np.int64]
+
+REQUIRED_COLUMNS = ("time", "stream", "value")
+LAYOUTS = ("auto", "long", "wide")
+
+#: Bytes of CSV read per chunk (cut at the next line end).
+CHUNK_BYTES = 1 << 21
+#: Parquet rows handled at once within a row group.
+PARQUET_SLICE = 1 << 16
+#: A row's place is ``file index << PLACE_BITS | line`` (CSV) or ``| row`` (Parquet).
+PLACE_BITS = 40
+_PLACE_MASK = (1 << PLACE_BITS) - 1
+
+
+class CsvFormatError(ValueError):
+    """A file cannot be read at all (missing file, bad header, unknown time zone)."""
+
+
+class TimeTextError(ValueError):
+    """A time that is not RFC 3339, epoch seconds or epoch milliseconds, or lacks an offset."""
+
+
+def time_zone(name: str | None) -> tzinfo | None:
+    """The IANA time zone of that name (None for None); :class:`CsvFormatError` when unknown."""
+    if name is None:
+        return None
+    import zoneinfo
+
+    try:
+        return zoneinfo.ZoneInfo(name)
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+        raise CsvFormatError(f"--timezone {name}: not an IANA time zone name (e.g. Europe/Berlin, "
+                             "America/Chicago, UTC)") from None
+
+
+def _epoch_rule(t: FloatArray) -> FloatArray:
+    """Epoch seconds from numeric times, epoch milliseconds above the daemon's bound."""
+    big = t > EPOCH_MS_ABOVE
+    if bool(big.any()):
+        t = np.where(big, t / 1000.0, t)
+    return t
+
+
+def parse_time(text: str, tz: tzinfo | None = None) -> float:
+    """RFC 3339 text, epoch seconds or epoch milliseconds as epoch seconds.
+
+    Text without a UTC offset is read in ``tz``, and refused without one.
+
+    Examples
+    --------
+    >>> parse_time("2026-03-02T06:00:00.250Z"), parse_time("1772431200.5"), parse_time("1772431200250")
+    (1772431200.25, 1772431200.5, 1772431200.25)
+    >>> parse_time("2026-03-02T07:00:00", time_zone("Europe/Berlin"))
+    1772431200.0
+    >>> parse_time("2026-03-02T07:00:00")
+    Traceback (most recent call last):
+    ...
+    shiftwatch.sources.TimeTextError: has no UTC offset; say which time zone the file is in with --timezone (an IANA name such as Europe/Berlin)
+    """
+    s = text.strip()
+    if "T" in s or "t" in s or ":" in s or "-" in s[1:]:
+        dt = datetime.fromisoformat(s)
+        if dt.tzinfo is None:
+            if tz is None:
+                raise TimeTextError("has no UTC offset; say which time zone the file is in with --timezone "
+                                    "(an IANA name such as Europe/Berlin)")
+            local = dt
+            dt = dt.replace(tzinfo=tz)
+            if datetime.fromtimestamp(dt.timestamp(), tz).replace(tzinfo=None) != local:
+                raise TimeTextError(f"does not exist in {tz} (the clocks were put forward)")
+        return dt.timestamp()
+    v = float(s)
+    if not math.isfinite(v):
+        raise ValueError("not finite")
+    return v / 1000.0 if v > EPOCH_MS_ABOVE else v
+
+
+def _parse_times(texts: list[str], tz: tzinfo | None) -> list[float]:
+    """Parse time texts (distinct ones, usually).  When every text is RFC 3339
+    in UTC with a ``Z``, numpy's C parser does them all at once; otherwise each
+    goes through :func:`parse_time`."""
+    if texts and all(x.endswith("Z") and "T" in x for x in texts):
+        try:
+            stamps = np.array([x[:-1] for x in texts], dtype="datetime64[us]")
+        except ValueError:
+            pass
+        else:
+            secs: list[float] = (stamps.astype(np.int64) / 1e6).tolist()
+            return secs
+    return [parse_time(x, tz) for x in texts]
+
+
+# ---------------------------------------------------------------------------
+# Sources: one input file each, its header read and its layout known.
+
+@dataclass
+class Source:
+    """One replay file: where it is, its kind and layout, and its columns.
+
+    ``tags`` are ``(column, stream)`` pairs: the value column and the stream
+    name of a long file's single value column is ``(value, "")``; a wide
+    file has one pair per tag.
+    """
+
+    path: str
+    kind: str  # "csv" or "parquet"
+    layout: str  # "long" or "wide"
+    header: list[str]
+    time_col: int
+    stream_col: int = -1
+    value_col: int = -1
+    tags: list[tuple[int, str]] = field(default_factory=list)
+    #: CSV: byte offset and line number of the first row after the header
+    body_start: int = 0
+    body_line: int = 2
+    #: Parquet: the first row of each row group, and the file's row count at the end
+    group_rows: list[int] = field(default_factory=list)
+    #: the stream of every row, when a partition directory (``stream=NAME``) says it
+    stream: str | None = None
+
+    def where(self, row: int) -> str:
+        """The place of a row in this file, as problems name it."""
+        if self.kind == "csv":
+            return f"{self.path}:{row}"
+        g = int(np.searchsorted(self.group_rows, row, side="right")) - 1
+        return f"{self.path}: row group {g}, row {row - self.group_rows[g]}"
+
+
+def expand_paths(paths: list[str | Path]) -> list[str]:
+    """The files to read: each path, a directory standing for its ``.parquet`` and ``.csv``
+    files (all levels below it, in path order)."""
+    out: list[str] = []
+    for p in paths:
+        if os.path.isdir(p):
+            found = sorted(str(f) for f in Path(p).rglob("*")
+                           if f.is_file() and f.suffix.lower() in (".parquet", ".pq", ".csv")
+                           and not any(part.startswith((".", "_")) for part in f.relative_to(p).parts))
+            if not found:
+                raise CsvFormatError(f"{p}: the directory holds no .parquet or .csv file")
+            out.extend(found)
+        else:
+            out.append(str(p))
+    return out
+
+
+def _partition_stream(path: str) -> str | None:
+    """The stream named by the nearest ``stream=NAME`` directory of a path (percent-decoded)."""
+    from urllib.parse import unquote
+
+    for part in reversed(Path(path).parent.parts):
+        if part.startswith("stream="):
+            return unquote(part[len("stream="):])
+    return None
+
+
+def _pick_layout(name: str, header: list[str], layout: str, where: str) -> tuple[str, int, int, int,
+                                                                                 list[tuple[int, str]]]:
+    cols = [c.strip().lower().lstrip("\ufeff") for c in header]
+    long_ok = all(c in cols for c in REQUIRED_COLUMNS)
+    if layout == "long" or (layout == "auto" and (long_ok or "time" not in cols)):
+        missing = [c for c in REQUIRED_COLUMNS if c not in cols]
+        if missing:
+            raise CsvFormatError(
+                f"{where}: header lacks column(s) {', '.join(missing)}; expected time,stream,value "
+                f"(long) or time followed by one column per tag (wide), got {','.join(header)}")
+        ti, si, vi = (cols.index(c) for c in REQUIRED_COLUMNS)
+        return "long", ti, si, vi, [(vi, "")]
+    if "time" not in cols:
+        raise CsvFormatError(f"{where}: header lacks a time column; a wide file is time followed by one "
+                             f"column per tag, got {','.join(header)}")
+    ti = cols.index("time")
+    tags: list[tuple[int, str]] = []
+    seen: set[str] = set()
+    for i, h in enumerate(header):
+        if i == ti:
+            continue
+        tag = h.lstrip("\ufeff").strip()
+        if not tag:
+            raise CsvFormatError(f"{where}: column {i + 1} of the header has no name; in a wide file "
+                                 "each column after time names a tag")
+        if tag in seen:
+            raise CsvFormatError(f"{where}: the header names tag {tag!r} twice")
+        seen.add(tag)
+        tags.append((i, tag))
+    if not tags:
+        raise CsvFormatError(f"{where}: no tag columns after time")
+    return "wide", ti, -1, -1, tags
+
+
+def _is_parquet(path: str) -> bool:
+    with open(path, "rb") as fb:
+        return fb.read(4) == b"PAR1"
+
+
+def open_source(path: str, layout: str = "auto") -> Source:
+    """Read a file's header (or Parquet schema) and decide its layout.
+
+    Raises :class:`CsvFormatError` when the file cannot be opened or its
+    columns fit no layout.
+    """
+    try:
+        parquet = _is_parquet(path)
+    except OSError as exc:
+        raise CsvFormatError(f"{path}: cannot open: {exc.strerror or exc}") from None
+    if parquet:
+        return _open_parquet(path, layout)
+    try:
+        fb = open(path, "rb")
+    except OSError as exc:
+        raise CsvFormatError(f"{path}: cannot open: {exc.strerror or exc}") from None
+    with fb:
+        lines = _Lines(bytearray(), 0, 0, fb)
+        reader = csv.reader(lines)
+        try:
+            header = next(reader)
+        except StopIteration:
+            raise CsvFormatError(f"{path}:1: the file is empty; expected a header time,stream,value") from None
+        except csv.Error as exc:
+            raise CsvFormatError(f"{path}:1: unreadable header: {exc}") from None
+        lay, ti, si, vi, tags = _pick_layout(path, header, layout, f"{path}:1")
+        return Source(path, "csv", lay, header, ti, si, vi, tags, body_start=lines.consumed,
+                      body_line=reader.line_num + 1)
+
+
+def open_sources(paths: list[str | Path], layout: str = "auto") -> list[Source]:
+    """:func:`open_source` for every file (directories expanded), so a bad header stops
+    the replay before it starts."""
+    if layout not in LAYOUTS:
+        raise CsvFormatError(f"--layout {layout}: choose one of {', '.join(LAYOUTS)}")
+    return [open_source(p, layout) for p in expand_paths(paths)]
+
+
+# ---------------------------------------------------------------------------
+# Blocks: what a chunk or row group holds, per stream.
+
+@dataclass
+class Block:
+    """The rows of one chunk of a file, per stream, in file order.
+
+    ``parts`` holds ``(stream, times, values, places)``; ``problems`` the
+    chunk's unreadable rows as messages, in file order; ``note`` a remark
+    about the whole file (not valid UTF-8), or None.
+    """
+
+    index: int
+    file: int
+    parts: list[tuple[str, FloatArray, FloatArray, IntArray]]
+    problems: list[str]
+    rows: int
+    nbytes: int
+    note: str | None = None
+    #: problems counted beyond those in ``problems``
+    unlisted: int = 0
+
+
+class _Lines:
+    """The lines of CSV bytes as text, split as a text file opened with ``newline=""``
+    splits them (at ``\\n``, ``\\r\\n`` and a lone ``\\r``), invalid UTF-8 replaced.
+
+    Reads ``buf[pos:end]``, then more from ``more`` (a binary file) when given.
+    ``consumed`` counts the bytes handed out from the start of the data and
+    ``count`` the lines, so a reader can stop at a row boundary and say
+    where it is.
+    """
+
+    def __init__(self, buf: bytearray, pos: int, end: int, more: BinaryIO | None) -> None:
+        self.buf = buf
+        self.pos = pos
+        self.end = end
+        self.more = more
+        self.consumed = 0
+        self.count = 0
+        self.bad_utf8 = False
+
+    def __iter__(self) -> _Lines:
+        return self
+
+    def _fill(self) -> bool:
+        if self.more is None:
+            return False
+        data = self.more.read(1 << 16)
+        if not data:
+            self.more = None
+            return False
+        if self.pos > (1 << 20):
+            del self.buf[:self.pos]
+            self.end -= self.pos
+            self.pos = 0
+        self.buf[self.end:self.end] = data
+        self.end += len(data)
+        return True
+
+    def __next__(self) -> str:
+        b = self.buf
+        while True:
+            nl = b.find(b"\n", self.pos, self.end)
+            if nl >= 0 or not self._fill():
+                break
+        stop = self.end if nl < 0 else nl + 1
+        if stop == self.pos:
+            raise StopIteration
+        cr = b.find(b"\r", self.pos, stop)
+        while 0 <= cr < stop - 1:
+            if b[cr + 1] != 10:  # a lone \r ends the line
+                stop = cr + 1
+                break
+            cr = b.find(b"\r", cr + 2, stop)
+        raw = bytes(b[self.pos:stop])
+        self.consumed += stop - self.pos
+        self.pos = stop
+        self.count += 1
+        try:
+            return raw.decode("utf-8")
+        except UnicodeDecodeError:
+            self.bad_utf8 = True
+            return raw.decode("utf-8", errors="replace")
+
+    def rest(self) -> bytes:
+        """The bytes not handed out yet (without reading more)."""
+        return bytes(self.buf[self.pos:self.end])
+
+
+def _count_lines(data: bytes | bytearray, end: int) -> int:
+    """Lines as :class:`_Lines` counts them in ``data[:end]``, which ends with a line end."""
+    n = data.count(b"\n", 0, end)
+    if data.find(b"\r", 0, end) >= 0:
+        n += data.count(b"\r", 0, end) - data.count(b"\r\n", 0, end)
+    return n
+
+
+def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | None, index: int,
+               nbytes: int, stop_at: int | None = None) -> Block:
+    """Row-by-row reading with the stdlib ``csv`` module; every problem names its line.
+
+    ``line0`` is the line number of the first line; with ``stop_at`` reading
+    ends at the first row boundary at or after that many bytes.
+    """
+    name = src.path
+    reader = csv.reader(lines)
+    ti = src.time_col
+    long = src.layout == "long"
+    si = src.stream_col
+    width = (max(ti, si, src.value_col) if long else max(ti, max(c for c, _ in src.tags))) + 1
+    ncols = len(src.header)
+    fbits = fidx << PLACE_BITS
+    base = line0 - 1
+    problems: list[str] = []
+    rows = 0
+    last_text: str | None = None
+    last_t = 0.0
+    collected: dict[str, tuple[list[float], list[float], list[int]]] = {}
+    appenders: dict[str, tuple[Any, Any, Any]] = {}
+
+    def lists_for(key: str) -> tuple[Any, Any, Any]:
+        lists = collected.setdefault(key, ([], [], []))
+        return lists[0].append, lists[1].append, lists[2].append
+
+    if not long:
+        tag_apps = [(c, tag, lists_for(tag)) for c, tag in src.tags]
+    while True:
+        try:
+            row = next(reader)
+        except StopIteration:
+            break
+        except csv.Error as exc:
+            problems.append(f"{name}:{base + reader.line_num}: unreadable row: {exc}")
+            if stop_at is not None and lines.consumed >= stop_at:
+                break
+            continue
+        line = base + reader.line_num
+        if len(row) < width:
+            if not row or (len(row) == 1 and not row[0].strip()):
+                pass
+            else:
+                rows += 1
+                problems.append(f"{name}:{line}: expected {ncols} columns, got {len(row)}")
+        else:
+            rows += 1
+            text = row[ti]
+            ok = True
+            if text != last_text:
+                try:
+                    last_t = parse_time(text, tz)
+                except TimeTextError as exc:
+                    problems.append(f"{name}:{line}: time {text!r} {exc}")
+                    last_text = None
+                    ok = False
+                except (ValueError, OverflowError):
+                    problems.append(f"{name}:{line}: time {text!r} is not RFC 3339, epoch seconds "
+                                    "or epoch milliseconds")
+                    last_text = None
+                    ok = False
+                else:
+                    last_text = text
+            if ok and long:
+                try:
+                    v = float(row[src.value_col])
+                except ValueError:
+                    problems.append(f"{name}:{line}: value {row[src.value_col]!r} is not a number")
+                else:
+                    stream = row[si] if src.stream is None or si >= 0 else src.stream
+                    app = appenders.get(stream)
+                    if app is None:
+                        key = stream.strip()
+                        if not key:
+                            problems.append(f"{name}:{line}: empty stream name")
+                            app = None
+                        else:
+                            app = appenders[stream] = lists_for(key)
+                    if app is not None:
+                        app[0](last_t)
+                        app[1](v)
+                        app[2](fbits | line)
+            elif ok:
+                for c, tag, app in tag_apps:
+                    cell = row[c]
+                    if not cell or not cell.strip():
+                        continue
+                    try:
+                        v = float(cell)
+                    except ValueError:
+                        problems.append(f"{name}:{line}: {tag}: value {cell!r} is not a number")
+                        continue
+                    app[0](last_t)
+                    app[1](v)
+                    app[2](fbits | line)
+        if stop_at is not None and lines.consumed >= stop_at:
+            break
+    parts = [(key, np.array(ts, dtype=np.float64), np.array(vs, dtype=np.float64), np.array(ps, dtype=np.int64))
+             for key, (ts, vs, ps) in collected.items() if ts]
+    note = f"{name}: the file is not valid UTF-8; unreadable characters were replaced" if lines.bad_utf8 else None
+    return Block(index, fidx, parts, problems, rows, nbytes, note)
+
+
+# ---------------------------------------------------------------------------
+# Column-wise reading of clean CSV chunks.  The chunk is one buffer of bytes;
+# fields are found from the positions of commas and newlines and read eight
+# bytes at a time as little-endian words (byte i of a word is bits 8i to 8i+7).
+
+#: Zero bytes after the chunk's bytes, so a word can be read at any field; as many before it.
+_PAD = 16
+_ONES = np.uint64(0x0101010101010101)
+_ZEROS = np.uint64(0x3030303030303030)  # eight '0' characters
+#: _LOW_BYTES[r]: a word with its r low bytes set.
+_LOW_BYTES = np.array([(1 << (8 * r)) - 1 for r in range(8)] + [2**64 - 1], dtype=np.uint64)
+_POW10_FLOAT = 10.0 ** np.arange(17)
+_POW10_INT = 10 ** np.arange(18, dtype=np.int64)
+#: Stream names are hashed a word at a time up to this many bytes; longer ones are also compared whole.
+_HASHED_BYTES = 1024
+
+
+def _eight_digits(x: NDArray[np.uint64]) -> NDArray[np.uint64]:
+    """The number written by eight digit bytes (0..9 each, the first in the low byte).
+
+    Examples
+    --------
+    >>> w = np.frombuffer(bytes([1, 2, 3, 4, 5, 6, 7, 8]), dtype="<u8")
+    >>> _eight_digits(w.copy()).tolist()
+    [12345678]
+    """
+    x = (x * np.uint64(10) + (x >> np.uint64(8))) & np.uint64(0x00FF00FF00FF00FF)
+    x = (x * np.uint64(100) + (x >> np.uint64(16))) & np.uint64(0x0000FFFF0000FFFF)
+    return (x * np.uint64(10000) + (x >> np.uint64(32))) & np.uint64(0xFFFFFFFF)
+
+
+class _Body:
+    """The rows held in ``buf[begin:end]`` (each line ending in a newline),
+    with the byte offsets of every field.
+
+    ``starts`` and ``ends`` are ``(rows, columns)`` arrays of offsets into
+    ``buf``; ``buf`` has at least :data:`_PAD` bytes after ``end`` and
+    before ``begin``.
+    """
+
+    def __init__(self, buf: bytearray, begin: int, end: int, starts: IntArray, ends: IntArray) -> None:
+        self.buf = buf
+        self.begin = begin
+        self.end = end
+        self.starts = starts
+        self.ends = ends
+        self._words = np.ndarray((len(buf) - 7,), dtype="<u8", buffer=buf, strides=(1,))
+
+    @classmethod
+    def split(cls, buf: bytearray, begin: int, end: int, ncols: int) -> _Body | None:
+        """Find the fields; None unless every line holds exactly ``ncols`` of them."""
+        raw = np.frombuffer(buf, dtype=np.uint8, count=end - begin, offset=begin)
+        newline = raw == 10
+        is_delim = raw == 44
+        is_delim |= newline
+        delims = np.flatnonzero(is_delim)
+        n = int(np.count_nonzero(newline))
+        if n == 0 or delims.shape[0] != n * ncols:
+            return None
+        ends = delims.reshape(n, ncols)
+        # n newlines, each the last delimiter of its line: the others are commas.
+        if not bool(newline[ends[:, -1]].all()):
+            return None
+        ends += begin
+        starts = np.empty_like(ends)
+        starts[0, 0] = begin
+        starts[1:, 0] = ends[:-1, -1] + 1
+        starts[:, 1:] = ends[:, :-1] + 1
+        return cls(buf, begin, end, starts, ends)
+
+    def words(self, at: IntArray) -> NDArray[np.uint64]:
+        """The 8 bytes at each offset (offsets past the end read padding)."""
+        return self._words[np.minimum(at, self.end)]
+
+    def text(self, row: int, col: int) -> str:
+        return self.buf[int(self.starts[row, col]):int(self.ends[row, col])].decode()
+
+    def texts(self, col: int) -> list[str]:
+        b = self.buf
+        return [b[s:e].decode() for s, e in zip(self.starts[:, col].tolist(), self.ends[:, col].tolist())]
+
+
+def _parse_decimal_column(body: _Body, col: int) -> tuple[FloatArray, NDArray[np.bool_]]:
+    """Values of the fields of a column that are plain decimals; see :func:`_parse_decimals`.
+
+    Examples
+    --------
+    >>> data = b"time,stream,value\\nx,-0.50\\nx,+12\\nx,7.\\nx,1e3\\nx,.25\\nx,-\\n"
+    >>> body = _Body.split(bytearray(data + bytes(_PAD)), 18, len(data), 2)
+    >>> v, ok = _parse_decimal_column(body, 1)
+    >>> v[ok].tolist(), ok.tolist()
+    ([-0.5, 12.0, 7.0, 0.25], [True, True, True, False, True, False])
+    """
+    return _parse_decimals(body, body.starts[:, col], body.ends[:, col])
+
+
+def _parse_decimals(body: _Body, s: IntArray, e: IntArray) -> tuple[FloatArray, NDArray[np.bool_]]:
+    """Values of the fields ``buf[s:e]`` that are plain decimals (``[+-]digits[.digits]``,
+    at most 16 characters); the mask says which fields are.
+
+    Each value is its digits as an integer M divided by 10**d (d digits after
+    the point).  With M <= 2**53 and d <= 16 both are exact doubles, so the
+    one correctly rounded division gives exactly what ``float(text)`` gives
+    (the exact case of W. D. Clinger, "How to read floating point numbers
+    accurately", PLDI 1990).  Other fields are left to the caller.
+    """
+    lens = e - s
+    width = 8 if int(lens.max(initial=0)) <= 8 else 16
+    n = lens.shape[0]
+    # The field's last `width` bytes, right-aligned: column c of the window is
+    # byte e - width + c.  Bytes before the field become '0' (leading zeros).
+    parts = []
+    for k in range(width // 8):
+        keep = ~_LOW_BYTES[np.clip(width - lens - 8 * k, 0, 8)]
+        parts.append((body.words(e - width + 8 * k) & keep) | (_ZEROS & ~keep))
+    # A sign in the field's first byte becomes a leading zero too.
+    first_col = np.clip(width - lens, 0, width - 1)
+    head = parts[0] if width == 8 else np.where(first_col < 8, parts[0], parts[1])
+    shift = ((first_col % 8) * 8).astype(np.uint64)
+    first = (head >> shift) & np.uint64(0xFF)
+    neg = first == 45
+    signed = neg | (first == 43)
+    fix = np.where(signed, (first ^ np.uint64(0x30)) << shift, np.uint64(0))
+    if width == 8:
+        parts[0] ^= fix
+    else:
+        parts[0] ^= np.where(first_col < 8, fix, np.uint64(0))
+        parts[1] ^= np.where(first_col < 8, np.uint64(0), fix)
+    x = np.stack(parts, axis=1) ^ _ZEROS  # digits become 0..9, '.' becomes 0x1e
+    c = x.view(np.uint8).reshape(n, width)
+    dot = c == 0x1E
+    bad = ((c > 9) & ~dot).view(np.uint64).any(axis=1)
+    c[dot] = 0
+    dots = dot.view(np.uint64)  # 0x01 in each byte that held a point
+    n_dots = np.bitwise_count(dots).sum(axis=1, dtype=np.int64)
+    ok = ~bad & (n_dots <= 1) & (lens - signed - n_dots >= 1) & (lens <= width)
+    digits = _eight_digits(x[:, 0])
+    if width == 16:
+        digits = digits * np.uint64(10**8) + _eight_digits(x[:, 1])
+    a = digits.astype(np.int64)
+    # The column of the point (where there is one): 8 j + (set bits below its byte) / 8.
+    col_at = np.zeros(n, dtype=np.int64)
+    for j in range(width // 8):
+        wj = dots[:, j]
+        col_at += np.where(wj != 0, 8 * j + np.bitwise_count(wj - np.uint64(1)).astype(np.int64) // 8, 0)
+    p = np.where(n_dots == 1, width - 1 - col_at, 0)  # digits after the point
+    scale = _POW10_INT[p]
+    m = np.where(n_dots == 1, (a // (scale * 10)) * scale + a % scale, a)
+    ok &= m <= 2**53
+    v = m.astype(np.float64) / _POW10_FLOAT[p]
+    np.negative(v, out=v, where=neg)
+    return v, ok
+
+
+#: Columns of "YYYY-MM-DDTHH:MM:SS.fffZ" that hold fixed characters, and those that hold digits.
+_ISO_MS_FIXED = {4: "-", 7: "-", 10: "T", 13: ":", 16: ":", 19: ".", 23: "Z"}
+_ISO_MS_DIGITS = [0, 1, 2, 3, 5, 6, 8, 9, 11, 12, 14, 15, 17, 18, 20, 21, 22]
+_DAYS_IN_MONTH = np.array([0, 31, 28, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31])
+
+
+def _parse_iso_ms_column(c: NDArray[np.uint8]) -> FloatArray | None:
+    """Parse RFC 3339 times written as ``YYYY-MM-DDTHH:MM:SS.fffZ`` (the form
+    shiftwatch writes) with array arithmetic; None if any row differs or is
+    not a valid date and time.
+
+    ``c`` holds the 24 bytes of one time per row.  The result equals
+    ``datetime.fromisoformat(text).timestamp()`` bit for bit: both are the
+    whole number of milliseconds divided by 1000, correctly rounded.
+
+    Examples
+    --------
+    >>> rows = lambda *ts: np.frombuffer("".join(ts).encode(), dtype=np.uint8).reshape(-1, 24)
+    >>> _parse_iso_ms_column(rows("1970-01-01T00:00:01.500Z", "2026-03-02T06:00:00.000Z")).tolist()
+    [1.5, 1772431200.0]
+    >>> _parse_iso_ms_column(rows("2026-02-29T06:00:00.000Z")) is None   # not a leap year
+    True
+    """
+    fixed = np.frombuffer("".join(_ISO_MS_FIXED.values()).encode(), dtype=np.uint8)
+    if not bool((c[:, list(_ISO_MS_FIXED)] == fixed).all()):
+        return None
+    d = c[:, _ISO_MS_DIGITS] - np.uint8(48)
+    if bool((d > 9).any()):  # not a digit (below '0' wraps around)
+        return None
+    d = d.astype(np.int32)
+    y = d[:, 0] * 1000 + d[:, 1] * 100 + d[:, 2] * 10 + d[:, 3]
+    mo = d[:, 4] * 10 + d[:, 5]
+    day = d[:, 6] * 10 + d[:, 7]
+    hh, mi, ss = d[:, 8] * 10 + d[:, 9], d[:, 10] * 10 + d[:, 11], d[:, 12] * 10 + d[:, 13]
+    ms = d[:, 14] * 100 + d[:, 15] * 10 + d[:, 16]
+    if bool(((mo < 1) | (mo > 12) | (day < 1) | (hh > 23) | (mi > 59) | (ss > 59) | (y < 1)).any()):
+        return None
+    leap = ((y % 4 == 0) & (y % 100 != 0)) | (y % 400 == 0)
+    if bool((day > _DAYS_IN_MONTH[mo] + (leap & (mo == 2))).any()):
+        return None
+    # Days from the civil date (H. Hinnant's algorithm, common practice).
+    yy = y - (mo <= 2)
+    era = yy // 400
+    yoe = yy - era * 400
+    doy = (153 * ((mo + 9) % 12) + 2) // 5 + day - 1
+    doe = yoe * 365 + yoe // 4 - yoe // 100 + doy
+    days = (era * 146097 + doe - 719468).astype(np.int64)
+    total_ms = ((days * 24 + hh) * 60 + mi) * 60_000 + ss * 1000 + ms
+    out: FloatArray = total_ms.astype(np.float64) / 1000.0
+    return out
+
+
+def _iso_ms_times(body: _Body, col: int) -> FloatArray | None:
+    """The time column when every field is in shiftwatch's own form, else None.
+
+    Rows that repeat the time text of the row before (several streams
+    sampled at once) are parsed once.
+    """
+    s, e = body.starts[:, col], body.ends[:, col]
+    if not bool((e - s == 24).all()):
+        return None
+    w = np.stack([body.words(s + 8 * k) for k in range(3)], axis=1)
+    new = np.ones(w.shape[0], dtype=bool)
+    new[1:] = (w[1:] != w[:-1]).any(axis=1)
+    firsts = np.flatnonzero(new)
+    parsed = _parse_iso_ms_column(w[firsts].view(np.uint8).reshape(-1, 24))
+    if parsed is None:
+        return None
+    return parsed if firsts.shape[0] == w.shape[0] else parsed[np.cumsum(new) - 1]
+
+
+def _fast_times(body: _Body, col: int, tz: tzinfo | None) -> FloatArray:
+    """The time column as epoch seconds; ValueError (or OverflowError) at the first doubt."""
+    times = _iso_ms_times(body, col)
+    if times is not None:
+        return times
+    times, plain = _parse_decimals(body, body.starts[:, col], body.ends[:, col])  # epoch numbers
+    if bool(plain.all()):
+        return _epoch_rule(times)
+    tcol = body.texts(col)
+    distinct = list(set(tcol))
+    parsed = dict(zip(distinct, _parse_times(distinct, tz)))
+    return np.fromiter(map(parsed.__getitem__, tcol), dtype=np.float64, count=len(tcol))
+
+
+def _distinct(sorted_values: NDArray[Any]) -> NDArray[Any]:
+    """The distinct values of a sorted array."""
+    keep = np.ones(sorted_values.shape[0], dtype=bool)
+    keep[1:] = sorted_values[1:] != sorted_values[:-1]
+    return sorted_values[keep]
+
+
+def _stream_codes(body: _Body, col: int) -> tuple[IntArray, list[bytes]] | None:
+    """A code per row for the bytes of its field, and the distinct fields by code.
+
+    Fields are hashed eight bytes at a time and every field is compared with
+    the first one of its code, so equal codes mean equal bytes (None on a
+    hash collision, which the caller takes as a doubt).  Each step of eight
+    bytes works on the rows whose field is still that long, so the work and
+    memory follow the bytes of the column, not the rows times the longest
+    name; fields longer than :data:`_HASHED_BYTES` are also compared whole.
+    """
+    s, e = body.starts[:, col], body.ends[:, col]
+    lens = e - s
+    n = lens.shape[0]
+    h = lens.astype(np.uint64)
+    steps: list[tuple[IntArray | None, NDArray[np.uint64]]] = []
+    active: IntArray | None = None  # rows still longer than 8 k bytes; None: every row
+    for k in range((min(int(lens.max(initial=0)), _HASHED_BYTES) + 7) // 8):
+        la = lens if active is None else lens[active]
+        if k:
+            longer = la > 8 * k
+            if not bool(longer.all()):
+                active = np.flatnonzero(longer) if active is None else active[longer]
+                la = la[longer]
+        sa = s if active is None else s[active]
+        wk = body.words(sa + 8 * k) & _LOW_BYTES[np.clip(la - 8 * k, 0, 8)]
+        steps.append((active, wk))
+        ha = h if active is None else h[active]
+        ha = (ha ^ wk) * np.uint64(0x100000001B3)
+        ha ^= ha >> np.uint64(29)
+        if active is None:
+            h = ha
+        else:
+            h[active] = ha
+    # Most files hold few streams: look them up among those of the first rows,
+    # and sort all hashes only when that does not cover every row.
+    # (Sorting, not np.unique: that would import numpy.ma on its first call.)
+    distinct = _distinct(np.sort(h[:4096]))
+    codes = np.searchsorted(distinct, h)
+    if not bool((distinct[np.minimum(codes, distinct.shape[0] - 1)] == h).all()):
+        distinct = _distinct(np.sort(h))
+        codes = np.searchsorted(distinct, h)
+    first = np.full(distinct.shape[0], n, dtype=np.int64)
+    np.minimum.at(first, codes, np.arange(n))
+    rep = first[codes]
+    if not bool((lens[rep] == lens).all()):
+        return None
+    for active, wk in steps:
+        if active is None:
+            same = wk[rep] == wk
+        else:  # a row's representative has its length, so it is among the active rows too
+            same = wk[np.searchsorted(active, rep[active])] == wk
+        if not bool(same.all()):
+            return None
+    b = body.buf
+    for i in np.flatnonzero(lens > _HASHED_BYTES).tolist():
+        r = int(rep[i])
+        if r != i and b[int(s[i]):int(e[i])] != b[int(s[r]):int(e[r])]:
+            return None
+    return codes.astype(np.int64), [bytes(b[int(s[i]):int(e[i])]) for i in first.tolist()]
+
+
+def _read_fast(src: Source, buf: bytearray, begin: int, end: int, line0: int, fbits: int,
+               tz: tzinfo | None) -> tuple[list[tuple[str, FloatArray, FloatArray, IntArray]], int] | None:
+    """Column-wise reading of a clean chunk ``buf[begin:end]``; returns the parts
+    per stream and the row count, or None at the first doubt.
+
+    A clean chunk has no quotes or carriage returns, exactly the header's
+    number of fields on every line, readable times, numbers for values (or,
+    in a wide file, empty cells) and non-empty stream names.  Then
+    everything runs in array operations: fields are found from the positions
+    of commas and newlines, shiftwatch's own time form and plain decimals
+    are parsed with integer arithmetic (other forms go through the parsers
+    of the row-by-row reader), and stream names are grouped by a hash of
+    their bytes.  ``buf`` has :data:`_PAD` spare bytes before ``begin`` and
+    after ``end``.
+    """
+    if buf.find(b'"', begin, end) >= 0 or buf.find(b"\r", begin, end) >= 0:
+        return None
+    if buf.count(b"\n", begin, end) == end - begin:
+        return ([], 0) if end - begin <= 1 else None  # no rows, or blank lines only
+    if buf[end - 1] != 10:
+        buf[end] = 10  # a newline after the last line, in the padding
+        end += 1
+    body = _Body.split(buf, begin, end, len(src.header))
+    if body is None:
+        return None
+    n = int(body.starts.shape[0])
+    places = np.arange(line0, line0 + n, dtype=np.int64) | fbits
+    try:
+        times = _fast_times(body, src.time_col, tz)
+        if src.layout == "wide":
+            return _wide_parts(src, body, times, places), n
+        vi = src.value_col
+        values, plain = _parse_decimal_column(body, vi)
+        if not bool(plain.all()):
+            values[~plain] = [float(body.text(i, vi)) for i in np.flatnonzero(~plain).tolist()]
+    except (ValueError, OverflowError, UnicodeDecodeError):
+        return None
+    if src.stream is not None:
+        return [(src.stream, times, values, places)], n
+    got = _stream_codes(body, src.stream_col)
+    if got is None:
+        return None
+    codes, names = got
+    keys: dict[str, int] = {}
+    try:
+        key_of = np.array([keys.setdefault(raw.decode().strip(), len(keys)) for raw in names], dtype=np.int64)
+    except UnicodeDecodeError:
+        return None
+    if "" in keys:
+        return None
+    if len(keys) < len(names):
+        codes = key_of[codes]
+    if len(keys) == 1:
+        return [(next(iter(keys)), times, values, places)], n
+    # Stable: each stream's rows stay in file order.
+    order = np.argsort(codes.astype(np.int16) if len(keys) < 2**15 else codes, kind="stable")
+    sels = np.split(order, np.cumsum(np.bincount(codes, minlength=len(keys)))[:-1])
+    return [(key, times[sel], values[sel], places[sel]) for key, sel in zip(keys, sels)], n
+
+
+def _wide_parts(src: Source, body: _Body, times: FloatArray,
+                places: IntArray) -> list[tuple[str, FloatArray, FloatArray, IntArray]]:
+    """A wide chunk's cells per tag, empty cells left out; ValueError for a cell that is
+    neither empty nor a number."""
+    cols = [c for c, _ in src.tags]
+    s = body.starts[:, cols].ravel()
+    e = body.ends[:, cols].ravel()
+    values, plain = _parse_decimals(body, s, e)
+    empty = e == s
+    other = ~plain & ~empty
+    if bool(other.any()):
+        b = body.buf
+        values[other] = [float(b[s[i]:e[i]].decode()) for i in np.flatnonzero(other).tolist()]
+    m = len(cols)
+    v = values.reshape(-1, m)
+    present = ~empty.reshape(-1, m)
+    every = bool(present.all())
+    parts = []
+    for j, (_, tag) in enumerate(src.tags):
+        if every:
+            parts.append((tag, times, v[:, j].copy(), places))
+            continue
+        sel = present[:, j]
+        if bool(sel.any()):
+            parts.append((tag, times[sel], v[sel, j], places[sel]))
+    return parts
+
+
+# ---------------------------------------------------------------------------
+# Tasks: the pieces of the files in order.  A task is read where it is
+# parsed (a CSV chunk's bytes travel with it); a chunk with quotes is read
+# row by row while planning, since only that finds where its rows end.
+
+def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUNK_BYTES,
+              first_index: int = 0) -> Iterator[tuple[Any, ...]]:
+    """The chunks of a CSV file: ``("csv", file, line, bytes, index, offset, size)`` or
+    ``("block", Block)`` for a chunk with quotes, read here.  Another process may be handed the
+    task without its bytes (None), and read them from the file at the offset."""
+    index = first_index
+    with open(src.path, "rb") as fb:
+        offset = src.body_start  # of the chunk's first byte in the file
+        line0 = src.body_line
+        while True:
+            fb.seek(offset)
+            data = fb.read(chunk_bytes)
+            if not data:
+                return
+            eof = len(data) < chunk_bytes
+            if data.find(b'"') >= 0:
+                # Only reading the rows finds where they end: read them here, up to the
+                # first row that ends at or past the chunk's size.
+                lines = _Lines(bytearray(data), 0, len(data), None if eof else fb)
+                block = _slow_rows(src, fidx, lines, line0, tz, index, 0, stop_at=len(data))
+                block.nbytes = lines.consumed
+                line0 += lines.count
+                offset += lines.consumed
+                yield ("block", block)
+                index += 1
+                if lines.more is None and not lines.rest():
+                    return
+                continue
+            nl = data.rfind(b"\n")
+            while nl < 0 and not eof:  # a line longer than a chunk: read on to its end
+                more = fb.read(chunk_bytes)
+                eof = len(more) < chunk_bytes
+                data += more
+                nl = data.rfind(b"\n")
+            cut = len(data) if eof else nl + 1
+            # The next chunk starts after the last newline: it is read again from there, so
+            # no bytes are carried over (or copied) from one chunk to the next.
+            yield ("csv", fidx, line0, data, index, offset, cut)
+            index += 1
+            if cut == len(data) and eof:
+                return
+            line0 += _count_lines(data, cut)
+            offset += cut
+
+
+def parse_csv_chunk(src: Source, fidx: int, line0: int, chunk: bytes, index: int,
+                    tz: tzinfo | None, size: int | None = None) -> Block:
+    """The rows of ``chunk[:size]``: column-wise when it is clean, else row by row."""
+    size = len(chunk) if size is None else size
+    buf = bytearray(size + 2 * _PAD)
+    buf[_PAD:_PAD + size] = memoryview(chunk)[:size]
+    begin, end = _PAD, _PAD + size
+    utf8 = buf.isascii()  # the padding is zeros: ASCII
+    if not utf8:
+        try:
+            buf.decode("utf-8")
+            utf8 = True
+        except UnicodeDecodeError:
+            pass
+    if utf8:
+        got = _read_fast(src, buf, begin, end, line0, fidx << PLACE_BITS, tz)
+        if got is not None:
+            return Block(index, fidx, got[0], [], got[1], size)
+    return _slow_rows(src, fidx, _Lines(buf, begin, end, None), line0, tz, index, size)
+
+
+# ---------------------------------------------------------------------------
+# Parquet (pyarrow, imported only when a Parquet file is read).
+
+def _pyarrow() -> Any:
+    try:
+        import pyarrow.parquet as pq
+    except ImportError as exc:
+        raise CsvFormatError(f"reading Parquet needs pyarrow ({exc}); install it with "
+                             "pip install 'shiftwatch[parquet]'") from None
+    return pq
+
+
+def _open_parquet(path: str, layout: str) -> Source:
+    pq = _pyarrow()
+    try:
+        meta = pq.ParquetFile(path).metadata
+        header = list(meta.schema.to_arrow_schema().names)
+    except Exception as exc:  # pyarrow raises ArrowInvalid, OSError, ... for a damaged file
+        raise CsvFormatError(f"{path}: not a readable Parquet file: {exc}") from None
+    offsets = [0]
+    for g in range(meta.num_row_groups):
+        offsets.append(offsets[-1] + meta.row_group(g).num_rows)
+    stream = _partition_stream(path)
+    cols = [c.strip().lower() for c in header]
+    if stream is not None and layout != "wide" and "stream" not in cols and "time" in cols and "value" in cols:
+        # a long file whose stream is its partition's (stream=NAME directories)
+        ti, vi = cols.index("time"), cols.index("value")
+        return Source(path, "parquet", "long", header, ti, -1, vi, [(vi, "")], group_rows=offsets, stream=stream)
+    lay, ti, si, vi, tags = _pick_layout(path, header, layout, path)
+    return Source(path, "parquet", lay, header, ti, si, vi, tags, group_rows=offsets)
+
+
+def parquet_tasks(src: Source, fidx: int, first_index: int = 0) -> Iterator[tuple[Any, ...]]:
+    """The row groups of a Parquet file: ``("parquet", file, row group, index)``."""
+    for g in range(len(src.group_rows) - 1):
+        yield ("parquet", fidx, g, first_index + g)
+
+
+class _GroupProblems:
+    """Problems of one row group: a message for the first rows of each kind, the rest counted."""
+
+    SHOWN = 20
+
+    def __init__(self, src: Source, g: int) -> None:
+        self.where = f"{src.path}: row group {g}"
+        self.messages: list[str] = []
+        self.unlisted = 0
+
+    def rows(self, bad: NDArray[np.bool_], first: int, column: str, what: str) -> None:
+        idx = np.flatnonzero(bad)
+        for i in idx[:self.SHOWN].tolist():
+            self.messages.append(f"{self.where}, row {first + i}, column {column}: {what}")
+        self.unlisted += max(0, idx.shape[0] - self.SHOWN)
+
+    def whole(self, column: str, what: str, rows: int) -> None:
+        self.messages.append(f"{self.where}, column {column}: {what}")
+        self.unlisted += rows - 1
+
+
+def _naive_wall_to_utc(wall: FloatArray, tz: tzinfo) -> tuple[FloatArray, NDArray[np.bool_]]:
+    """Epoch seconds of local wall-clock times (given as if they were UTC) in ``tz``, and which exist.
+
+    Offsets change on whole minutes, so each distinct minute is looked up once.
+    """
+    minutes = np.floor(wall / 60.0).astype(np.int64)
+    distinct = _distinct(np.sort(minutes))
+    offsets = np.zeros(distinct.shape[0])
+    exists = np.ones(distinct.shape[0], dtype=bool)
+    epoch = datetime(1970, 1, 1)
+    for i, m in enumerate(distinct.tolist()):
+        local = epoch + timedelta(minutes=m)
+        ts = local.replace(tzinfo=tz).timestamp()
+        offsets[i] = m * 60.0 - ts
+        exists[i] = datetime.fromtimestamp(ts, tz).replace(tzinfo=None) == local
+    at = np.searchsorted(distinct, minutes)
+    return wall - offsets[at], exists[at]
+
+
+def _arrow_times(col: Any, column: str, tz: tzinfo | None, first: int,
+                 problems: _GroupProblems) -> tuple[FloatArray, NDArray[np.bool_]]:
+    """A time column as epoch seconds, and which rows have a usable time (the others are problems)."""
+    import pyarrow as pa
+
+    n = len(col)
+    valid = np.asarray(col.is_valid(), dtype=bool)
+    problems.rows(~valid, first, column, "no time (null)")
+    if pa.types.is_timestamp(col.type):
+        raw = np.asarray(col.cast(pa.int64()).fill_null(0), dtype=np.int64)
+        per_second = {"s": 1, "ms": 1000, "us": 10**6, "ns": 10**9}[col.type.unit]
+        # The coarsest exact unit, so that a time reads as the same double whatever its unit.
+        while per_second > 1000 and bool((raw % 1000 == 0).all()):
+            raw, per_second = raw // 1000, per_second // 1000
+        t = raw.astype(np.float64) / per_second if per_second > 1 else raw.astype(np.float64)
+        if col.type.tz is None:
+            if tz is None:
+                problems.rows(valid, first, column, "the time has no UTC offset; say which time zone the "
+                              "file is in with --timezone (an IANA name such as Europe/Berlin)")
+                return t, np.zeros(n, dtype=bool)
+            t, exists = _naive_wall_to_utc(t, tz)
+            problems.rows(valid & ~exists, first, column, f"the time does not exist in {tz} "
+                          "(the clocks were put forward)")
+            valid &= exists
+        return t, valid
+    if pa.types.is_integer(col.type) or pa.types.is_floating(col.type):
+        t = np.asarray(col.cast(pa.float64()).fill_null(0.0), dtype=np.float64)
+        finite = np.isfinite(t)
+        problems.rows(valid & ~finite, first, column, "the time is not finite")
+        return _epoch_rule(np.where(finite, t, 0.0)), valid & finite
+    if pa.types.is_string(col.type) or pa.types.is_large_string(col.type) or pa.types.is_dictionary(col.type):
+        texts = col.cast(pa.string()).to_pylist()
+        out = np.zeros(n)
+        cache: dict[str, float | str] = {}
+        for i, x in enumerate(texts):
+            if x is None:
+                continue
+            got = cache.get(x)
+            if got is None:
+                try:
+                    got = parse_time(x, tz)
+                except TimeTextError as exc:
+                    got = f"time {x!r} {exc}"
+                except (ValueError, OverflowError):
+                    got = f"time {x!r} is not RFC 3339, epoch seconds or epoch milliseconds"
+                cache[x] = got
+            if isinstance(got, str):
+                valid[i] = False
+                if len(problems.messages) < problems.SHOWN:
+                    problems.messages.append(f"{problems.where}, row {first + i}, column {column}: {got}")
+                else:
+                    problems.unlisted += 1
+            else:
+                out[i] = got
+        return out, valid
+    problems.whole(column, f"holds {col.type}, not times; the rows were skipped", n)
+    return np.zeros(n), np.zeros(n, dtype=bool)
+
+
+def _is_number_type(t: Any) -> bool:
+    import pyarrow as pa
+
+    return bool(pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t))
+
+
+def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo | None,
+                        opened: dict[str, Any] | None = None) -> Block:
+    """One row group's rows per stream, :data:`PARQUET_SLICE` rows at a time.
+
+    Null or unreadable times, null values and null or empty stream names are
+    problems named by file, row group, row and column; a null cell of a wide
+    file is a missing reading.
+    """
+    import pyarrow as pa
+
+    pq = _pyarrow()
+    pf = _kept_open(opened, src.path, lambda: pq.ParquetFile(src.path))
+    tname = src.header[src.time_col]
+    if src.layout == "long":
+        value_cols = [(src.header[src.value_col], "")]
+        want = [tname, value_cols[0][0]] + ([src.header[src.stream_col]] if src.stream_col >= 0 else [])
+    else:
+        value_cols = [(src.header[c], tag) for c, tag in src.tags]
+        want = [tname] + [c for c, _ in value_cols]
+    n = 0
+    base = src.group_rows[g]
+    fbits = fidx << PLACE_BITS
+    problems = _GroupProblems(src, g)
+    collected: dict[str, list[tuple[FloatArray, FloatArray, IntArray]]] = {}
+    batches = pf.iter_batches(batch_size=PARQUET_SLICE, row_groups=[g], columns=want, use_threads=False)
+    while True:
+        try:
+            part = next(batches)
+        except StopIteration:
+            break
+        except Exception as exc:  # noqa: BLE001 - pyarrow's errors for damaged pages are of many kinds
+            lost = src.group_rows[g + 1] - src.group_rows[g] - n
+            problems.messages.append(f"{problems.where}: unreadable from row {n} on ({' '.join(str(exc).split())}); "
+                                     f"its last {lost} rows were skipped")
+            problems.unlisted += lost - 1
+            n += lost
+            break
+        a = n
+        m = part.num_rows
+        n += m
+        times, tok = _arrow_times(part.column(0), tname, tz, a, problems)
+        places = np.arange(base + a, base + a + m, dtype=np.int64) | fbits
+        for j, (cname, tag) in enumerate(value_cols):
+            col = part.column(1 + j)
+            if not _is_number_type(col.type):
+                problems.whole(cname, f"holds {col.type}, not numbers; its values were skipped", m)
+                continue
+            valid = np.asarray(col.is_valid(), dtype=bool)
+            v = np.asarray(col.cast(pa.float64()).fill_null(np.nan), dtype=np.float64)
+            if src.layout == "wide":
+                keep = tok & valid
+            else:
+                problems.rows(tok & ~valid, a, cname, "no value (null)")
+                keep = tok & valid
+                if src.stream_col >= 0:
+                    _long_parquet_parts(part.column(2), times, v, places, keep, collected,
+                                        problems, a, src.header[src.stream_col])
+                    continue
+                tag = src.stream or ""
+            if bool(keep.all()):
+                collected.setdefault(tag, []).append((times, v, places))
+            elif bool(keep.any()):
+                collected.setdefault(tag, []).append((times[keep], v[keep], places[keep]))
+    # A stream's pieces stay apart (in order): joining them would hold the row group twice.
+    parts = [(key, *piece) for key, pieces in collected.items() for piece in pieces]
+    size = _file_size(src.path)
+    nbytes = size * n // max(1, src.group_rows[-1])  # for progress: the group's share of the file
+    return Block(index, fidx, parts, problems.messages, n, nbytes, unlisted=problems.unlisted)
+
+
+def _file_size(path: str) -> int:
+    try:
+        return os.path.getsize(path)
+    except OSError:
+        return 0
+
+
+def _long_parquet_parts(scol: Any, times: FloatArray, v: FloatArray, places: IntArray, keep: NDArray[np.bool_],
+                        collected: dict[str, list[tuple[FloatArray, FloatArray, IntArray]]],
+                        problems: _GroupProblems, first: int, cname: str) -> None:
+    """Split a slice of a long file by its stream column (dictionary-encoded, as pyarrow keeps strings)."""
+    import pyarrow as pa
+
+    if not pa.types.is_dictionary(scol.type):
+        if not (pa.types.is_string(scol.type) or pa.types.is_large_string(scol.type)):
+            problems.whole(cname, f"holds {scol.type}, not stream names; the rows were skipped", len(scol))
+            return
+        scol = scol.dictionary_encode()
+    names = [str(x).strip() for x in scol.dictionary.to_pylist()]
+    valid = np.asarray(scol.is_valid(), dtype=bool)
+    problems.rows(keep & ~valid, first, cname, "no stream name (null)")
+    # The same name may stand under several codes (spaces around it): one code per name.
+    key_of: dict[str, int] = {}
+    remap = np.array([key_of.setdefault(x, len(key_of)) if x else -1 for x in names] + [-1], dtype=np.int64)
+    codes = remap[np.where(valid, np.asarray(scol.indices.fill_null(0), dtype=np.int64), len(names))]
+    problems.rows(keep & valid & (codes < 0), first, cname, "empty stream name")
+    codes = np.where(keep & (codes >= 0), codes, len(key_of))
+    order = np.argsort(codes, kind="stable")
+    sels = np.split(order, np.cumsum(np.bincount(codes, minlength=len(key_of) + 1))[:-1])
+    for key, sel in zip(key_of, sels):
+        if sel.shape[0]:
+            collected.setdefault(key, []).append((times[sel], v[sel], places[sel]))
+
+
+def tasks(sources: list[Source], tz: tzinfo | None, chunk_bytes: int = CHUNK_BYTES) -> Iterator[tuple[Any, ...]]:
+    """Every piece of every file, in order; pieces are numbered from 0 across the files."""
+    index = 0
+    for fidx, src in enumerate(sources):
+        it = (csv_tasks(src, fidx, tz, chunk_bytes, index) if src.kind == "csv"
+              else parquet_tasks(src, fidx, index))
+        for task in it:
+            yield task
+            index += 1
+
+
+def _kept_open(opened: dict[str, Any] | None, path: str, make: Any) -> Any:
+    """The file last opened, while the pieces are of the same file (``opened`` keeps it)."""
+    f = None if opened is None else opened.get(path)
+    if f is None:
+        f = make()
+        if opened is not None:
+            for old in opened.values():
+                old.close()
+            opened.clear()
+            opened[path] = f
+    return f
+
+
+def _read_at(path: str, offset: int, size: int, opened: dict[str, Any] | None) -> bytes:
+    """``size`` bytes of a file from ``offset`` (a chunk handed over without its bytes)."""
+    f = _kept_open(opened, path, lambda: open(path, "rb"))
+    chunk = os.pread(f.fileno(), size, offset)
+    if opened is None:
+        f.close()
+    if len(chunk) != size:
+        raise CsvFormatError(f"{path}: the file changed while it was read")
+    return chunk
+
+
+def parse_task(task: tuple[Any, ...], sources: list[Source], tz: tzinfo | None,
+               opened: dict[str, Any] | None = None) -> Block:
+    """The :class:`Block` of one task of :func:`tasks`."""
+    kind = task[0]
+    if kind == "block":
+        block: Block = task[1]
+        return block
+    if kind == "csv":
+        _, fidx, line0, chunk, index, offset, size = task
+        if chunk is None:
+            chunk = _read_at(sources[fidx].path, offset, size, opened)
+        return parse_csv_chunk(sources[fidx], fidx, line0, chunk, index, tz, size)
+    _, fidx, g, index = task
+    return parse_parquet_group(sources[fidx], fidx, g, index, tz, opened)

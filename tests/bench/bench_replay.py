@@ -1,0 +1,238 @@
+"""Benchmark of `shiftwatch replay` at historian scale: speed, memory, processes, layouts.
+
+Usage, from the repository root with the package installed (``.[test]``)::
+
+    python tests/bench/bench_replay.py            # 2.4 million and 50 million rows (about 10 minutes)
+    python tests/bench/bench_replay.py --quick    # 2.4 million and 12 million rows
+    python tests/bench/bench_replay.py --repeat 5 # more runs per figure (the best counts)
+
+The files are written under /tmp at run time and deleted afterwards: 200
+streams of the invented Brackenfield plant at one sample a second (noise,
+a step on every tenth stream, lone spikes, a fixed random state), as long
+CSV with shiftwatch's RFC 3339 times, as wide CSV (time and 200 tag
+columns) and as long Parquet (pyarrow, row groups of 1 million rows).
+Every replay is the real command line in its own process (``--out
+/dev/null``), which reports its peak RSS (VmHWM) and CPU time.  Figures are
+the best of ``--repeat`` runs, all measured in this run; the machine is
+shared, so single-process times are CPU times (user and system, as in
+bench_report.py) and ``--jobs`` is judged on wall time.  Targets:
+
+1. long CSV of 2.4 million rows, one process: at most 1.0 times a bare
+   stdlib ``csv`` parse of the same file run as a command (csv.reader,
+   datetime.fromisoformat on the time, float on the value);
+2. peak RSS of the 2.4 million and the 50 million (12 million with
+   ``--quick``) row replays, one process: within 10% of each other and at
+   most 150 MB;
+3. ``--jobs 2`` at least 1.7 times faster than ``--jobs 1`` (on a 2-core
+   machine; runs are paired and the median ratio of the pairs counts);
+4. Parquet of the same rows: at most 0.5 times the long CSV's time;
+5. wide CSV with 200 tags: at most 1.2 times the long CSV's time per value.
+
+The script prints one table, the spread of the runs, and exits 0 only when
+every target is met.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+from shiftwatch.core.timefmt import format_time
+
+T0 = 1_788_000_000.0
+STREAMS = 200
+NAMES = [f"brackenfield/line{k // 25 + 1}/cell{k % 25:02d}/sensor" for k in range(STREAMS)]
+PERIOD = 12_000  # seconds of distinct values; longer files repeat them with later times
+
+# VmHWM, not ru_maxrss: Linux carries the high-water mark of the process that forked the runner
+# across exec into ru_maxrss, so a runner started by a big bench process reported the bench's size.
+RUNNER = """\
+import resource, sys
+from shiftwatch.cli import main
+code = main(sys.argv[1:])
+hwm = next(int(ln.split()[1]) for ln in open("/proc/self/status") if ln.startswith("VmHWM:"))
+cpu = sum(getattr(resource.getrusage(w), f) for w in (resource.RUSAGE_SELF, resource.RUSAGE_CHILDREN)
+          for f in ("ru_utime", "ru_stime"))
+print("peak_rss_kb", hwm, cpu, file=sys.stderr)
+sys.exit(code)
+"""
+
+BARE_PARSE = """
+import csv, resource, sys
+from datetime import datetime
+with open(sys.argv[1], newline="") as f:
+    r = csv.reader(f)
+    next(r)
+    for row in r:
+        datetime.fromisoformat(row[0])
+        float(row[2])
+use = resource.getrusage(resource.RUSAGE_SELF)
+print(use.ru_utime + use.ru_stime, file=sys.stderr)
+"""
+
+
+def value_texts() -> list[list[str]]:
+    """PERIOD x STREAMS values as text: noise, a step on every tenth stream, lone spikes."""
+    rng = np.random.default_rng(2026)
+    v = 100.0 + rng.standard_normal((PERIOD, STREAMS))
+    v[PERIOD // 2:, ::10] += 1.5
+    v[rng.random((PERIOD, STREAMS)) < 0.001] += 9.0
+    return [[f"{x:.3f}" for x in row] for row in v.tolist()]
+
+
+def write_long(path: Path, seconds: int, texts: list[list[str]]) -> int:
+    with open(path, "w", encoding="utf-8") as f:
+        f.write("time,stream,value\n")
+        for a in range(0, seconds, 1000):
+            out = []
+            for i in range(a, min(seconds, a + 1000)):
+                stamp = format_time(T0 + i)
+                row = texts[i % PERIOD]
+                out.extend(f"{stamp},{name},{row[k]}\n" for k, name in enumerate(NAMES))
+            f.write("".join(out))
+    return seconds * STREAMS
+
+
+def write_wide(path: Path, seconds: int, texts: list[list[str]]) -> int:
+    with open(path, "w", encoding="utf-8") as f:
+        f.write("time," + ",".join(NAMES) + "\n")
+        f.write("".join(f"{format_time(T0 + i)},{','.join(texts[i % PERIOD])}\n" for i in range(seconds)))
+    return seconds * STREAMS
+
+
+def write_parquet(path: Path, seconds: int, texts: list[list[str]]) -> int:
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    values = np.array([[float(x) for x in row] for row in texts[:seconds]]).ravel()
+    ms = (T0 * 1000 + 1000 * np.repeat(np.arange(seconds, dtype=np.int64), STREAMS)).astype(np.int64)
+    table = pa.table({"time": pa.array(ms, pa.timestamp("ms", tz="UTC")),
+                      "stream": pa.array(NAMES * seconds).dictionary_encode(), "value": values})
+    pq.write_table(table, path, row_group_size=1 << 20)
+    return seconds * STREAMS
+
+
+def run(args: list[str]) -> tuple[float, float, float]:
+    """Wall seconds, peak RSS (MB) and CPU seconds (with its children's) of the command line in a
+    fresh process."""
+    t0 = time.perf_counter()
+    res = subprocess.run([sys.executable, "-c", RUNNER, *args], capture_output=True, text=True, check=False)
+    wall = time.perf_counter() - t0
+    if res.returncode not in (0, 1):
+        raise RuntimeError(f"replay exited {res.returncode}: {res.stderr[-800:]}")
+    line = next(ln.split() for ln in res.stderr.splitlines() if ln.startswith("peak_rss_kb"))
+    return wall, int(line[1]) / 1024.0, float(line[2])
+
+
+def replay(path: Path, jobs: int) -> tuple[float, float, float]:
+    return run(["replay", "--jobs", str(jobs), "--out", os.devnull, str(path)])
+
+
+def bare(path: Path) -> tuple[float, float]:
+    """Wall and CPU seconds of the bare parse."""
+    t0 = time.perf_counter()
+    res = subprocess.run([sys.executable, "-c", BARE_PARSE, str(path)], check=True, capture_output=True, text=True)
+    return time.perf_counter() - t0, float(res.stderr.split()[-1])
+
+
+def spread(xs: list[float]) -> str:
+    return f"{min(xs):.2f}-{max(xs):.2f} s" if len(xs) > 1 else f"{xs[0]:.2f} s"
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="12 million rows instead of 50 million for memory")
+    ap.add_argument("--repeat", type=int, default=3, help="runs per timed figure (default 3)")
+    opts = ap.parse_args()
+    small_s = 12_000  # 2.4 million rows
+    big_s = 60_000 if opts.quick else 250_000
+    rows: list[tuple[str, str, str, str, bool]] = []
+    notes: list[str] = []
+    say = lambda msg: print(f"[{time.strftime('%H:%M:%S')}] {msg}", file=sys.stderr, flush=True)  # noqa: E731
+    with tempfile.TemporaryDirectory(prefix="shiftwatch-bench-replay-", dir="/tmp") as tmp:
+        d = Path(tmp)
+        texts = value_texts()
+        long_csv, wide_csv, parquet = d / "long.csv", d / "wide.csv", d / "long.parquet"
+        n = write_long(long_csv, small_s, texts)
+        write_wide(wide_csv, small_s, texts)
+        write_parquet(parquet, small_s, texts)
+        say(f"wrote {n:,} rows: long CSV {long_csv.stat().st_size / 1e6:.0f} MB, wide CSV "
+            f"{wide_csv.stat().st_size / 1e6:.0f} MB, Parquet {parquet.stat().st_size / 1e6:.0f} MB")
+
+        # 1. speed against a bare parse; 3. --jobs 2 against --jobs 1 (paired runs).  This machine
+        # is shared (and its hypervisor steals time), so single-process figures compare CPU time
+        # (user + system), as bench_report.py does; wall times are printed beside them.
+        bares, ones, twos, pairs, mem_small = [], [], [], [], []
+        for _ in range(opts.repeat):
+            bares.append(bare(long_csv))
+            one = replay(long_csv, 1)
+            two = replay(long_csv, 2)
+            ones.append(one)
+            twos.append(two)
+            mem_small.append(one[1])
+            pairs.append(one[0] / two[0])
+        say(f"bare parse {spread([b[0] for b in bares])}, --jobs 1 {spread([o[0] for o in ones])}, "
+            f"--jobs 2 {spread([t[0] for t in twos])} (wall)")
+        cpu1 = min(o[2] for o in ones)
+        r = cpu1 / min(b[1] for b in bares)
+        rows.append((f"long CSV, {n:,} rows, one process", f"{cpu1:.2f} s CPU",
+                     f"bare csv parse {min(b[1] for b in bares):.2f} s", f"ratio {r:.2f} <= 1.0", r <= 1.0))
+        notes.append(f"long CSV --jobs 1: CPU {spread([o[2] for o in ones])}, wall {spread([o[0] for o in ones])}; "
+                     f"bare parse: CPU {spread([b[1] for b in bares])}, wall {spread([b[0] for b in bares])}; "
+                     f"CPU ratio per run {', '.join(f'{a[2] / b[1]:.2f}' for a, b in zip(ones, bares))}")
+        sp = statistics.median(pairs)
+        rows.append(("--jobs 2 against --jobs 1 (wall)", f"{min(t[0] for t in twos):.2f} s",
+                     f"{min(o[0] for o in ones):.2f} s",
+                     f"speed-up {sp:.2f} >= 1.7 (median of {len(pairs)} pairs)", sp >= 1.7))
+        notes.append(f"--jobs 2: wall {spread([t[0] for t in twos])}, CPU of all its processes "
+                     f"{spread([t[2] for t in twos])} ({min(t[2] for t in twos) / cpu1:.2f} x one process's); "
+                     f"speed-up per pair {', '.join(f'{x:.2f}' for x in pairs)}")
+
+        # 4. Parquet; 5. wide CSV (CPU time, one process)
+        pqs = [replay(parquet, 1) for _ in range(opts.repeat)]
+        r = min(p[2] for p in pqs) / cpu1
+        rows.append(("Parquet, same rows, one process", f"{min(p[2] for p in pqs):.2f} s CPU",
+                     f"long CSV {cpu1:.2f} s", f"ratio {r:.2f} <= 0.5", r <= 0.5))
+        notes.append(f"Parquet: CPU {spread([p[2] for p in pqs])}, wall {spread([p[0] for p in pqs])}, "
+                     f"peak RSS {max(p[1] for p in pqs):.0f} MB")
+        wides = [replay(wide_csv, 1) for _ in range(opts.repeat)]
+        r = min(w[2] for w in wides) / cpu1  # the same values: per value, the same ratio
+        rows.append((f"wide CSV, {STREAMS} tags, same values", f"{min(w[2] for w in wides):.2f} s CPU",
+                     f"long CSV {cpu1:.2f} s", f"ratio per value {r:.2f} <= 1.2", r <= 1.2))
+        notes.append(f"wide CSV: CPU {spread([w[2] for w in wides])}, wall {spread([w[0] for w in wides])}")
+        for f in (wide_csv, parquet):
+            f.unlink()
+
+        # 2. memory, 2.4 million against big_s * 200 rows
+        big = d / "big.csv"
+        t0 = time.perf_counter()
+        nb = write_long(big, big_s, texts)
+        say(f"wrote {nb:,} rows ({big.stat().st_size / 1e9:.1f} GB) in {time.perf_counter() - t0:.0f} s")
+        wb, mb, _ = replay(big, 1)
+        big.unlink()
+        ms = max(mem_small)
+        close = abs(mb - ms) <= 0.10 * ms
+        rows.append((f"peak RSS, {n:,} and {nb:,} rows", f"{mb:.0f} MB", f"{ms:.0f} MB",
+                     "within 10%, <= 150 MB", close and max(mb, ms) <= 150))
+        notes.append(f"peak RSS of the small replays: {', '.join(f'{x:.0f}' for x in mem_small)} MB; "
+                     f"the big replay took {wb:.0f} s ({nb / wb / 1e6:.2f} M rows/s)")
+        long_csv.unlink()
+    w = [max(len(r[i]) for r in rows + [("target", "measured", "baseline", "goal", True)]) for i in range(4)]
+    print("  ".join(h.ljust(w[i]) for i, h in enumerate(("target", "measured", "baseline", "goal"))) + "  result")
+    for r in rows:
+        print("  ".join(str(r[i]).ljust(w[i]) for i in range(4)) + "  " + ("ok" if r[4] else "MISSED"))
+    for note in notes:
+        print("  " + note)
+    return 0 if all(r[4] for r in rows) else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

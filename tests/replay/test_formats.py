@@ -1,0 +1,222 @@
+"""The layouts plants export: long and wide CSV, Parquet, and the forms of time.
+
+References: the stdlib csv module and datetime (history.py), pandas reading
+the wide CSV, pyarrow reading the Parquet files, zoneinfo for local times.
+Each replay is compared with the same readings replayed from another
+layout, or fed to the engines in one batch here.
+"""
+
+from __future__ import annotations
+
+import json
+from datetime import datetime, timezone
+from pathlib import Path
+from zoneinfo import ZoneInfo
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from shiftwatch.replay import read_long_csv, replay_files
+
+from .history import (STREAMS, json_lines, one_batch_records, printed_records, readings, stdlib_long,
+                      write_long, write_wide)
+
+
+@pytest.fixture(scope="module")
+def history(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, dict]:
+    data = readings(4000)
+    path = write_long(tmp_path_factory.mktemp("history") / "line2.csv", data)
+    return path, data
+
+
+# ------------------------------------------------------------------ times
+def test_epoch_milliseconds_are_read_as_the_daemon_reads_them(cli, history, tmp_path: Path) -> None:
+    # Epoch milliseconds (above 1e11, the daemon's rule) crashed replay and fit with
+    # "year 58692 is out of range".
+    path, data = history
+    ms = write_long(tmp_path / "ms.csv", data, form="epoch_ms")
+    rfc = cli("replay", str(path))
+    got = cli("replay", str(ms))
+    assert got.returncode == 0 and "Traceback" not in got.stderr, got.stderr
+    assert got.stdout == rfc.stdout and got.stdout.count("\n") >= 8
+    assert printed_records(got.stdout) == one_batch_records(stdlib_long(ms)[0])
+    name = "brackenfield/line2/filler/head1/fill"
+    fit_ms = cli("fit", str(ms), "--stream", name, "--json")
+    fit_rfc = cli("fit", str(path), "--stream", name, "--json")
+    assert fit_ms.returncode == 0, fit_ms.stderr
+    assert json.loads(fit_ms.stdout) == json.loads(fit_rfc.stdout)
+
+
+def test_times_without_an_offset_need_the_files_time_zone(cli, tmp_path: Path) -> None:
+    # Local times in Europe/Berlin across the start of summer time (2026-03-29, 02:00 -> 03:00),
+    # written by zoneinfo; with --timezone they are the same instants as the UTC file's.
+    t0 = datetime(2026, 3, 29, 0, 10, tzinfo=timezone.utc).timestamp()
+    data = readings(4000, random_state=4, t0=t0)
+    zone = ZoneInfo("Europe/Berlin")
+    stamps = [datetime.fromtimestamp(t, zone).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3]
+              for t in data[next(iter(data))][0].tolist()]
+    assert stamps[0] == "2026-03-29T01:10:00.000" and stamps[-1] == "2026-03-29T03:16:39.000"
+    local = write_long(tmp_path / "local.csv", data, stamps=stamps)
+    utc = write_long(tmp_path / "utc.csv", data)
+    refused = cli("replay", str(local))
+    assert refused.returncode == 1 and "Traceback" not in refused.stderr
+    assert (f"{local}:2: time '2026-03-29T01:10:00.000' has no UTC offset; say which time zone the file is "
+            "in with --timezone") in refused.stderr
+    assert refused.stdout == ""
+    read = cli("replay", "--timezone", "Europe/Berlin", str(local))
+    assert read.returncode == 0, read.stderr
+    assert read.stdout == cli("replay", str(utc)).stdout and read.stdout
+    gap = tmp_path / "gap.csv"
+    gap.write_text("time,stream,value\n2026-03-29T02:30:00,x,1.0\n")
+    res = cli("replay", "--timezone", "Europe/Berlin", str(gap))
+    assert res.returncode == 1 and "does not exist in Europe/Berlin" in res.stderr
+    res = cli("replay", "--timezone", "Europe/Bruxelles", str(utc))
+    assert res.returncode == 2 and "--timezone Europe/Bruxelles: not an IANA time zone name" in res.stderr
+    assert "Traceback" not in res.stderr
+
+
+# ------------------------------------------------------------------- wide
+def test_wide_csv_reads_as_pandas_reads_it(cli, history, tmp_path: Path) -> None:
+    path, data = history
+    wide = write_wide(tmp_path / "wide.csv", data, missing=0.02)
+    # Reference: pandas reads the wide file; an empty cell is NaN there and a missing reading here.
+    frame = pd.read_csv(wide, dtype={"time": str})
+    times = [datetime.fromisoformat(x).timestamp() for x in frame["time"]]
+    series = {}
+    for name in STREAMS:
+        keep = frame[name].notna().to_numpy()
+        series[name] = (np.asarray(times)[keep], frame[name].to_numpy()[keep])
+    expected = one_batch_records(series)
+    for jobs in ("1", "2"):
+        res = cli("replay", "--jobs", jobs, str(wide))
+        assert res.returncode == 0, res.stderr
+        assert printed_records(res.stdout) == expected and len(expected) >= 8
+        assert "replayed 4000 rows in 4 stream(s)" in res.stderr
+    res = replay_files([wide], jobs=2, chunk_bytes=3000)
+    assert json_lines(res.records) == expected
+    full = write_wide(tmp_path / "full.csv", data)
+    assert cli("replay", "--layout", "wide", str(full)).stdout == cli("replay", str(path)).stdout
+
+
+def test_a_bad_cell_of_a_wide_file_names_its_line_and_tag(cli, history, tmp_path: Path) -> None:
+    _, data = history
+    wide = write_wide(tmp_path / "wide.csv", data)
+    lines = wide.read_text().splitlines()
+    cells = lines[100].split(",")
+    cells[2] = "12,5".replace(",", ";")
+    lines[100] = ",".join(cells)
+    wide.write_text("\n".join(lines) + "\n")
+    res = cli("replay", str(wide))
+    assert res.returncode == 1
+    assert f"{wide}:101: brackenfield/line2/filler/head2/fill: value '12;5' is not a number" in res.stderr
+    assert "1 unreadable row(s) skipped" in res.stderr and res.stdout.count("\n") >= 8
+    dup = tmp_path / "dup.csv"
+    dup.write_text("time,oven,oven\n2026-03-02T06:00:00Z,1,2\n")
+    res = cli("replay", str(dup))
+    assert res.returncode == 2 and f"{dup}:1: the header names tag 'oven' twice" in res.stderr
+
+
+# ----------------------------------------------------------------- Parquet
+def arrow_long(data: dict, unit: str = "ms") -> pa.Table:
+    names = list(data)
+    t = data[names[0]][0]
+    n = t.shape[0]
+    return pa.table({
+        "time": pa.array((np.repeat(t, len(names)) * {"ms": 1e3, "us": 1e6}[unit]).round().astype(np.int64),
+                         pa.timestamp(unit, tz="UTC")),
+        "stream": pa.array(names * n).dictionary_encode(),
+        "value": pa.array(np.stack([data[k][1] for k in names], axis=1).ravel()),
+    })
+
+
+def test_parquet_long_and_wide_give_the_records_of_the_csv(cli, history, tmp_path: Path) -> None:
+    path, data = history
+    long_pq = tmp_path / "long.parquet"
+    pq.write_table(arrow_long(data, "us"), long_pq, row_group_size=3000)
+    names = list(data)
+    wide_pq = tmp_path / "wide.parquet"
+    pq.write_table(pa.table({"time": (data[names[0]][0] * 1000).round().astype(np.int64),  # epoch ms
+                             **{k: data[k][1] for k in names}}), wide_pq, row_group_size=700)
+    csv_out = cli("replay", str(path)).stdout
+    for f in (long_pq, wide_pq):
+        for jobs in ("1", "2"):
+            res = cli("replay", "--jobs", jobs, str(f))
+            assert res.returncode == 0, res.stderr
+            assert res.stdout == csv_out, f
+    # Reference for the reader: pyarrow's own reading of the file, per stream in row order.
+    frame = pq.read_table(long_pq).to_pandas()
+    read = read_long_csv([long_pq])
+    for name in names:
+        rows = frame[frame["stream"] == name]
+        assert read.streams[name].values.tolist() == rows["value"].tolist()
+        assert read.streams[name].times.tolist() == [x.timestamp() for x in rows["time"]]
+
+
+def test_bad_parquet_rows_are_named_by_row_group_row_and_column(cli, history, tmp_path: Path) -> None:
+    _, data = history
+    table = arrow_long(data)
+    times = table.column("time").to_pylist()
+    values = table.column("value").to_pylist()
+    times[2005] = None
+    values[3010] = None
+    values[3020] = float("nan")
+    table = table.set_column(0, "time", pa.array(times, pa.timestamp("ms", tz="UTC")))
+    table = table.set_column(2, "value", pa.array(values, pa.float64()))
+    f = tmp_path / "bad.parquet"
+    pq.write_table(table, f, row_group_size=1000)
+    res = cli("replay", str(f))
+    assert res.returncode == 1 and "Traceback" not in res.stderr
+    assert f"{f}: row group 2, row 5, column time: no time (null)" in res.stderr
+    assert f"{f}: row group 3, row 10, column value: no value (null)" in res.stderr
+    assert f"{f}: row group 3, row 20: stream {table.column('stream')[3020]}: value is NaN" in res.stderr
+    assert "2 unreadable row(s) skipped" in res.stderr and res.stdout.count("\n") >= 8
+    naive = tmp_path / "naive.parquet"
+    pq.write_table(table.set_column(0, "time", pa.array(times, pa.timestamp("ms"))), naive)
+    res = cli("replay", str(naive))
+    assert res.returncode == 1 and f"{naive}: row group 0, row 0, column time: the time has no UTC offset" in res.stderr
+    res = cli("replay", "--timezone", "UTC", str(naive))
+    assert res.stdout == cli("replay", str(f)).stdout
+    # A damaged page in row group 1 (its footer still sound): that group's rows are counted and
+    # skipped, the others replayed.
+    damaged = tmp_path / "damaged.parquet"
+    pq.write_table(arrow_long(data), damaged, row_group_size=4000)
+    offset = pq.ParquetFile(damaged).metadata.row_group(1).column(2).data_page_offset
+    raw = bytearray(damaged.read_bytes())
+    raw[offset + 10:offset + 200] = b"\xab" * 190
+    damaged.write_bytes(raw)
+    res = cli("replay", "--jobs", "2", str(damaged))
+    assert res.returncode == 1 and "Traceback" not in res.stderr, res.stderr
+    assert f"{damaged}: row group 1: unreadable from row 0 on (" in res.stderr
+    assert "its last 4000 rows were skipped" in res.stderr and "4000 unreadable row(s) skipped" in res.stderr
+    assert "replayed 16000 rows in 4 stream(s)" in res.stderr
+    broken = tmp_path / "broken.parquet"
+    broken.write_bytes(b"PAR1" + bytes(100))
+    res = cli("replay", str(broken))
+    assert res.returncode == 2 and f"{broken}: not a readable Parquet file" in res.stderr
+    assert "Traceback" not in res.stderr
+
+
+def test_the_report_of_several_processes_is_the_report_of_one(cli, history, tmp_path: Path) -> None:
+    path, _ = history
+    one = cli("replay", "--jobs", "1", "--report", str(tmp_path / "one"), str(path))
+    two = cli("replay", "--jobs", "2", "--report", str(tmp_path / "two"), str(path))
+    assert one.returncode == two.returncode == 0, one.stderr + two.stderr
+    html_one = (tmp_path / "one" / "report.html").read_text()
+    assert (tmp_path / "two" / "report.html").read_text() == html_one
+    assert html_one.count('<img src="data:image/png;base64,') == 4
+
+
+def test_fit_reads_what_replay_reads(cli, history, tmp_path: Path) -> None:
+    path, data = history
+    wide_pq = tmp_path / "wide.parquet"
+    names = list(data)
+    pq.write_table(pa.table({"time": data[names[0]][0], **{k: data[k][1] for k in names}}), wide_pq)
+    for name in names:
+        a = cli("fit", str(path), "--stream", name, "--json")
+        b = cli("fit", str(wide_pq), "--stream", name, "--json")
+        assert a.returncode == b.returncode == 0, b.stderr
+        assert json.loads(a.stdout) == json.loads(b.stdout)
+        assert json.loads(a.stdout)["stream"] == name and json.loads(a.stdout)["p_value"] < 1e-6

@@ -1,0 +1,156 @@
+"""Streaming replay: chunks, processes and memory.
+
+Every check compares a replay with one computed here: the file read by the
+stdlib ``csv`` module and each stream fed to its engine in one batch
+(history.py), or the same replay in one process with one chunk.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+import pytest
+
+from shiftwatch.replay import KEEP_PROBLEMS, replay_files
+
+from .history import json_lines, one_batch_records, printed_records, readings, stdlib_long, write_long
+
+
+def messy_history(path: Path, n: int = 4000) -> Path:
+    """Long CSV with the troubles of real exports spread through it: a bad value, a bad time,
+    a short row, a NaN, a repeated row, a quoted stream name, CRLF line ends, a blank line."""
+    write_long(path, readings(n))
+    lines = path.read_bytes().split(b"\n")
+    lines[10] = lines[10].rsplit(b",", 1)[0] + b",n/a"
+    lines[2000] = b"yesterday," + lines[2000].split(b",", 1)[1]
+    lines[4001] = b"2026-03-02T06:20:00.000Z,brackenfield/line2/capper/torque"
+    lines[6000] = lines[6000].rsplit(b",", 1)[0] + b",nan"
+    lines[8001] = lines[8000]
+    t, name, v = lines[9000].split(b",")
+    lines[9000] = b'%s,"%s",%s' % (t, name, v)
+    for i in range(12000, 12040):
+        lines[i] += b"\r"
+    lines.insert(14000, b"")
+    path.write_bytes(b"\n".join(lines))
+    return path
+
+
+@pytest.fixture(scope="module")
+def messy(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    return messy_history(tmp_path_factory.mktemp("messy") / "line2.csv")
+
+
+def test_one_chunk_in_one_process_gives_the_records_of_one_batch_per_stream(messy: Path) -> None:
+    series, bad = stdlib_long(messy)
+    res = replay_files([messy], jobs=1, chunk_bytes=1 << 30)
+    assert json_lines(res.records) == one_batch_records(series)
+    assert len(res.records) >= 8
+    # Reference for the lines: the stdlib csv module's line numbers of the rows it could not read.
+    named = [int(p.split(":")[1]) for p in res.read_problems]
+    assert named == bad and res.read_problem_count == len(bad) == 3
+    engine_problems = [p for p in res.problems if "stream" in p]
+    assert [p.split(":", 2)[1] for p in engine_problems] == ["6001", "8002"]
+    assert "value is NaN" in engine_problems[0] and "repeats one already accepted" in engine_problems[1]
+
+
+@pytest.mark.parametrize("chunk_bytes", [1000, 4099, 65536])
+@pytest.mark.parametrize("jobs", [1, 2, 3])
+def test_any_chunking_and_any_number_of_processes_give_the_same_replay(messy: Path, chunk_bytes: int,
+                                                                      jobs: int) -> None:
+    whole = replay_files([messy], jobs=1, chunk_bytes=1 << 30)
+    res = replay_files([messy], jobs=jobs, chunk_bytes=chunk_bytes)
+    assert json_lines(res.records) == json_lines(whole.records)
+    assert res.problems == whole.problems and res.problem_count == whole.problem_count
+    assert res.rows == whole.rows == 4 * 4000  # the short row counts, the blank line does not
+    assert {n: (o.samples_total, o.records_total, o.rejected_total) for n, o in res.streams.items()} == \
+        {n: (o.samples_total, o.records_total, o.rejected_total) for n, o in whole.streams.items()}
+
+
+def test_problems_are_counted_all_and_kept_first(tmp_path: Path) -> None:
+    # Sixty unreadable rows in three files: the first KEEP_PROBLEMS in file order, all counted.
+    paths = []
+    for k in range(3):
+        p = write_long(tmp_path / f"part{k}.csv", readings(300, random_state=k, t0=1.8e9 + 300 * k))
+        lines = p.read_text().splitlines()
+        for i in range(1, 21):
+            lines[i * 50] = lines[i * 50].rsplit(",", 1)[0] + ",--"
+        p.write_text("\n".join(lines) + "\n")
+        paths.append(p)
+    whole = [f"{p}:{i * 50 + 1}: value '--' is not a number" for p in paths for i in range(1, 21)]
+    for jobs, chunk in ((1, 1 << 30), (2, 2000), (3, 777)):
+        res = replay_files(paths, jobs=jobs, chunk_bytes=chunk)
+        assert res.read_problems == whole[:KEEP_PROBLEMS] and res.read_problem_count == 60
+
+
+def test_cli_jobs_2_prints_what_jobs_1_prints_and_the_reference_records(cli, tmp_path: Path) -> None:
+    # Above two chunks of the real command line (5.6 MB), so both processes parse and replay.
+    path = write_long(tmp_path / "line2.csv", readings(30_000))
+    assert path.stat().st_size > 4 * 2**20
+    one = cli("replay", "--jobs", "1", str(path))
+    two = cli("replay", "--jobs", "2", str(path))
+    default = cli("replay", str(path))
+    assert one.returncode == two.returncode == default.returncode == 0, one.stderr + two.stderr
+    assert two.stdout == one.stdout == default.stdout and two.stderr == one.stderr
+    assert printed_records(one.stdout) == one_batch_records(stdlib_long(path)[0])
+    assert "replayed 120000 rows in 4 stream(s)" in one.stderr
+    res = cli("replay", "--jobs", "0", str(path))
+    assert res.returncode == 2 and "--jobs must be at least 1" in res.stderr
+
+
+MEMORY_PROBE = textwrap.dedent("""
+    import sys, tracemalloc
+    from shiftwatch.replay import replay_files
+    tracemalloc.start()
+    res = replay_files([sys.argv[1]], jobs=1)
+    print(tracemalloc.get_traced_memory()[1], len(res.records), res.rows)
+""")
+
+
+def traced_peak(path: Path) -> tuple[int, int, int]:
+    """Peak of memory traced by tracemalloc (numpy's arrays included) while replaying, in a
+    fresh process; records and rows."""
+    out = subprocess.run([sys.executable, "-c", MEMORY_PROBE, str(path)], capture_output=True, text=True,
+                         timeout=600, check=True).stdout.split()
+    return int(out[0]), int(out[1]), int(out[2])
+
+
+def test_memory_follows_the_streams_not_the_rows(tmp_path: Path) -> None:
+    # The same 10 streams over 12,000 and 48,000 seconds: four times the rows, the same peak
+    # (a stream holds back less than a batch of 4,096 samples: both files are well past that).
+    names = [f"brackenfield/line{k % 4}/sensor{k}" for k in range(10)]
+    small = write_long(tmp_path / "small.csv", readings(12_000, names))
+    big = write_long(tmp_path / "big.csv", readings(48_000, names))
+    (ps, rs, ns), (pb, rb, nb) = traced_peak(small), traced_peak(big)
+    assert (ns, nb) == (120_000, 480_000) and rs > 0 and rb > 0
+    assert pb <= 1.10 * ps, (ps, pb)
+
+
+def test_a_long_stream_name_costs_its_bytes_not_the_rows_times_its_length(tmp_path: Path) -> None:
+    # One 50,000-character name among 20,000 rows cost 1 GB when every row was hashed over the
+    # longest name's length.
+    data = readings(5000)
+    plain = write_long(tmp_path / "plain.csv", data)
+    lines = plain.read_text().splitlines()
+    t, _, v = lines[100].split(",")
+    lines[100] = f"{t},brackenfield/{'x' * 50_000},{v}"
+    long = tmp_path / "long.csv"
+    long.write_text("\n".join(lines) + "\n")
+    (pp, _, _), (pl, _, rows) = traced_peak(plain), traced_peak(long)
+    assert rows == 20_000
+    assert pl <= pp + 2_000_000, (pp, pl)
+
+
+def test_a_stream_whose_rows_are_out_of_order_is_told_so_by_line(cli, tmp_path: Path) -> None:
+    # Rows are fed in file order, as before: a row earlier than its predecessor is set aside.
+    path = write_long(tmp_path / "line2.csv", readings(2000))
+    lines = path.read_text().splitlines()
+    lines[4001], lines[4005] = lines[4005], lines[4001]  # one stream's rows swapped
+    path.write_text("\n".join(lines) + "\n")
+    res = cli("replay", str(path))
+    assert res.returncode == 1
+    assert f"{path}:4006: stream brackenfield/line2/filler/head1/fill: " in res.stderr
+    assert [json.loads(x)["stream"] for x in res.stdout.splitlines()]
