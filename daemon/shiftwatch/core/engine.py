@@ -967,23 +967,35 @@ class StreamEngine:
         np.clip(z, -b.clip, b.clip, out=z)
         trip = test.update(z)
         if trip < 0:
-            result.rejected.extend(spikes)
-            self._prev_out = 0 if osign is None else int(osign[-1])
-            self._prev_r = float(r[-1])
+            self._kept_all(spikes, osign, r, result)
             self._append(kt, kx)
             self._count_watched(kt.shape[0])
             return used
-        # Consume up to and including the tripping sample; the rest is fed to
-        # the event that opens now (a sample held for the spike check included).
-        t_trip = float(kt[trip])
-        result.rejected.extend(r for r in spikes if r.time < t_trip)
-        self._pending = None
-        self._prev_out = 0 if osign is None else int(osign[trip])
-        self._prev_r = float(r[trip])
+        # The rest is fed to the event that opens now.
+        t_trip = self._kept_to(trip, kt, spikes, osign, r, result)
         self._append(kt[: trip + 1], kx[: trip + 1])
         self._watch_kept += trip + 1
         self._open_event(t_trip, result, t_trip if settled is None else float(settled[trip]))
         return int(np.searchsorted(t, t_trip, side="right"))
+
+    def _kept_all(self, spikes: list[Rejection], osign: NDArray[np.int8] | None, r: FloatArray,
+                  result: BatchResult) -> None:
+        """Every kept sample of a :meth:`_split_spikes` segment was consumed."""
+        result.rejected.extend(spikes)
+        self._prev_out = 0 if osign is None else int(osign[-1])
+        self._prev_r = float(r[-1])
+
+    def _kept_to(self, i: int, kt: FloatArray, spikes: list[Rejection], osign: NDArray[np.int8] | None,
+                 r: FloatArray, result: BatchResult) -> float:
+        """Kept samples up to and including ``i`` were consumed (a trip or a decision fell
+        there); the rest, a sample held for the spike check included, is fed again.
+        Returns the time of sample ``i``."""
+        t_i = float(kt[i])
+        result.rejected.extend(rj for rj in spikes if rj.time < t_i)
+        self._pending = None
+        self._prev_out = 0 if osign is None else int(osign[i])
+        self._prev_r = float(r[i])
+        return t_i
 
     def _watch_small(self, t: FloatArray, x: FloatArray, result: BatchResult) -> int:
         """:meth:`_watch` for a few samples, one at a time in plain floats.
@@ -1137,19 +1149,11 @@ class StreamEngine:
         np.clip(z, -b.clip, b.clip, out=z)
         i, outcome = ev.trial.feed(z)
         if i < 0:
-            result.rejected.extend(spikes)
-            self._prev_out = 0 if osign is None else int(osign[-1])
-            self._prev_r = float(r[-1])
+            self._kept_all(spikes, osign, r, result)
             self._fitter.extend(kx, kt)
             self._window.extend(kx, kt)
             return used
-        # Consume up to and including the deciding sample; the rest is fed
-        # again (a sample held for the spike check included).
-        t_dec = float(kt[i])
-        result.rejected.extend(rj for rj in spikes if rj.time < t_dec)
-        self._pending = None
-        self._prev_out = 0 if osign is None else int(osign[i])
-        self._prev_r = float(r[i])
+        t_dec = self._kept_to(i, kt, spikes, osign, r, result)
         self._fitter.extend(kx[: i + 1], kt[: i + 1])
         self._window.extend(kx[: i + 1], kt[: i + 1])
         self._decide(outcome, result, t_dec)
