@@ -43,7 +43,7 @@ def test_the_units_documentation_path_is_where_the_install_steps_put_the_readme(
     unit = (ROOT / "systemd" / "shiftwatch.service").read_text()
     doc = re.search(r"^Documentation=file://(\S+)$", unit, re.MULTILINE)
     assert doc is not None
-    assert re.search(rf"install -m 0644 \S*README\.md {re.escape(doc.group(1))}", section("Operation"))
+    assert re.search(rf"install -m 0644 \S*README\.md {re.escape(doc.group(1))}", section("For installers"))
 
 
 def test_every_link_inside_the_readme_leads_to_a_heading() -> None:

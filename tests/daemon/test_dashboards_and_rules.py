@@ -251,7 +251,7 @@ def test_the_rules_say_what_the_daemon_does_and_point_to_a_readme_section_that_e
                 if line.startswith("#")}
     named = re.findall(r'see the README, "([^"]+)"', text)
     assert named and all(n in headings for n in named), (named, sorted(headings))
-    # The README (Operation) and the daemon pause reading at the queue bound: nothing is dropped.
+    # The README ("State, restarts and signals") and the daemon pause reading at the queue bound: nothing is dropped.
     falling = text.split("ShiftwatchFallingBehind")[1].split("- alert:")[0]
     assert "dropped (reason queue_full)" not in falling and "stops reading from the broker" in falling
 
