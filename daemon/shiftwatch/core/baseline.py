@@ -427,8 +427,7 @@ class BaselineSums:
         self.prev_u = u
         self.prev_t = time
 
-    def refine(self, b: Baseline, *, clip: float, floor: float, max_weight: int,
-               level_weight: int | None = None) -> Baseline:
+    def refine(self, b: Baseline, *, clip: float, floor: float, max_weight: int) -> Baseline:
         """The baseline with the folded samples merged in (weight of the old one capped at
         ``max_weight`` samples); the sums start again.  ``clip`` is the configured constant:
         when the tail share crosses the heavy-tail line the clip changes from the next block on."""
@@ -447,7 +446,7 @@ class BaselineSums:
         w_old = min(b.n, max_weight)
         w = w_old + n_blk
         # The level may rest on fewer samples than the rest (re-anchored after a step).
-        wl_old = min(b.level_n, max_weight if level_weight is None else level_weight)
+        wl_old = min(b.level_n, max_weight)
 
         def avg(a: float, c: float) -> float:
             return (a * w_old + c * n_blk) / w
