@@ -19,9 +19,9 @@ import subprocess
 import tempfile
 import threading
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from collections.abc import Callable
 from typing import Any
 
 
@@ -154,7 +154,7 @@ class MosquittoBroker:
                            capture_output=True)
         return ["allow_anonymous false", f"password_file {pwfile}"]
 
-    def start(self, timeout: float = 10.0) -> "MosquittoBroker":
+    def start(self, timeout: float = 10.0) -> MosquittoBroker:
         self.binary = self.binary or find_mosquitto()
         if self.binary is None:
             raise RuntimeError("mosquitto is not installed (see the README's set-up)")
@@ -243,7 +243,7 @@ class EmbeddedBroker:
     def url(self) -> str:
         return f"mqtt://127.0.0.1:{self.port}"
 
-    def start(self, timeout: float = 15.0) -> "EmbeddedBroker":
+    def start(self, timeout: float = 15.0) -> EmbeddedBroker:
         import asyncio
 
         try:

@@ -13,7 +13,8 @@ import json
 import logging
 import sys
 import time
-from typing import Any, Sequence, TextIO
+from collections.abc import Sequence
+from typing import Any, TextIO
 
 from shiftwatch import __version__
 

@@ -26,8 +26,9 @@ Example, with a scheduler already running::
 from __future__ import annotations
 
 import os
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.replay import KEEP_PROBLEMS, ReplayResult, _record_key, replay_files

@@ -13,9 +13,10 @@ from __future__ import annotations
 import difflib
 import math
 import re
+from collections.abc import Callable
 from dataclasses import MISSING, dataclass, field, fields
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Callable
+from typing import TYPE_CHECKING, Any
 
 from shiftwatch.core.settings import TEST_NAMES, DetectionSettings
 from shiftwatch.core.timefmt import parse_duration

@@ -16,7 +16,6 @@ import gc
 import json
 import logging
 import math
-import os
 import secrets
 import signal
 import sys
@@ -36,7 +35,7 @@ from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
 from shiftwatch.core.timefmt import format_time
 from shiftwatch.decode import REASONS as DECODE_REASONS
 from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, stream_name
-from shiftwatch.display import alert_summary, clock, stamp
+from shiftwatch.display import alert_summary, stamp
 from shiftwatch.fsutil import explain_os_error
 from shiftwatch.journal import Journal, JournalGroup
 from shiftwatch.metrics import Metrics, MetricsServer, StreamStats
@@ -1191,4 +1190,4 @@ def _printable(text: str, limit: int = 120) -> str:
     return clean if len(text) <= limit else clean + "..."
 
 
-__all__ = ["Daemon", "alert_summary", "DECODE_REASONS"]
+__all__ = ["DECODE_REASONS", "Daemon", "alert_summary"]

@@ -521,8 +521,7 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
     except UnicodeDecodeError as exc:
         problems.append(DecodeProblem("not_utf8", f"invalid UTF-8 at byte {exc.start}"))
         return out
-    if text.startswith("\ufeff"):
-        text = text[1:]
+    text = text.removeprefix("\ufeff")
     if not text.strip():
         problems.append(DecodeProblem("empty", "the payload is empty" if not text else "the payload is blank"))
         return out
@@ -730,7 +729,7 @@ def _json_item(item: Any, where: str, in_batch: bool, value_path: str, value_par
 class _Broken:
     """A base field set to something unusable; records relying on it are rejected."""
 
-    __slots__ = ("reason", "message")
+    __slots__ = ("message", "reason")
 
     def __init__(self, reason: str, message: str) -> None:
         self.reason = reason

@@ -277,4 +277,4 @@ def _recap(results: dict[str, list[dict[str, Any]]], start: float, ended: float,
     return "\n".join(lines) + "\n"
 
 
-__all__ = ["run_demo", "SENSORS"]
+__all__ = ["SENSORS", "run_demo"]

@@ -43,10 +43,10 @@ from collections.abc import Iterable, Iterator, Sequence
 from pathlib import Path
 from typing import BinaryIO, NamedTuple
 
-from shiftwatch.fsutil import fsync_dir
-
 import numpy as np
 from numpy.typing import NDArray
+
+from shiftwatch.fsutil import fsync_dir
 
 __all__ = ["JOURNAL_NAME", "MAX_BYTES", "Journal", "JournalGroup"]
 

@@ -291,7 +291,7 @@ def parse_listen(listen: str) -> tuple[str, int]:
 class _Connection:
     """One accepted connection: its task, and whether it is still sending its request."""
 
-    __slots__ = ("task", "reading", "since")
+    __slots__ = ("reading", "since", "task")
 
     def __init__(self, task: asyncio.Task[None]) -> None:
         self.task = task

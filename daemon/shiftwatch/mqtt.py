@@ -62,7 +62,7 @@ class _ReadBuffer:
     Everything else goes to the socket itself.
     """
 
-    __slots__ = ("_sock", "_buf", "_pos", "_room")
+    __slots__ = ("_buf", "_pos", "_room", "_sock")
     CHUNK = 65536
     #: Longest wait for room in a full inbox before paho's thread gets on with
     #: its other work (writing, keepalive) and comes back.
@@ -824,7 +824,7 @@ class PlainClient:
         self.client.on_publish = on_publish_cb
         self.client.on_disconnect = on_disconnect
 
-    def start(self, timeout: float = 10.0) -> "PlainClient":
+    def start(self, timeout: float = 10.0) -> PlainClient:
         if self._persistent and self._v5:
             props = Properties(PacketTypes.CONNECT)
             props.SessionExpiryInterval = 3600

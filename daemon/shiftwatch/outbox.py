@@ -33,7 +33,7 @@ from pathlib import Path
 
 from shiftwatch.fsutil import explain_os_error, fsync_dir
 
-__all__ = ["OutboxItem", "Outbox"]
+__all__ = ["Outbox", "OutboxItem"]
 
 _SUFFIX = ".msg"
 _TMP_PREFIX = ".outbox-"

@@ -31,10 +31,11 @@ from __future__ import annotations
 import csv
 import math
 import os
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, tzinfo
 from pathlib import Path
-from typing import Any, BinaryIO, Iterator
+from typing import Any, BinaryIO
 
 import numpy as np
 from numpy.typing import NDArray

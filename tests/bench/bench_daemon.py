@@ -59,9 +59,10 @@ import tempfile
 import threading
 import time
 import urllib.request
+from collections.abc import Callable
 from datetime import datetime
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 T0_MS = 1_788_000_000_000  # synthetic sample times of the ingest and memory parts (epoch ms)
 INGEST_TARGET = 0.80

@@ -384,7 +384,7 @@ def part_slow_clients(tmp: Path, runs: int, clients: int, *, nofile: int | None 
 
 
 def slow_text(runs: list[dict[str, Any]]) -> tuple[str, bool]:
-    tot = lambda k: sum(float(r.get(k, 0)) for r in runs)  # noqa: E731
+    tot = lambda k: sum(float(r.get(k, 0)) for r in runs)
     text = (f"{len(runs)} runs: daemon alive {tot('alive'):.0f}, clean exit "
             f"{sum(r['exit'] == 0 for r in runs)}; scrapes answered {tot('scrapes'):.0f}, failed "
             f"{tot('scrape_failures'):.0f}; reconnected after a broker restart {tot('reconnected'):.0f}; "

@@ -51,7 +51,7 @@ from typing import Any
 ROOT = Path(__file__).resolve().parents[2]
 sys.path[:0] = [str(ROOT), str(Path(__file__).resolve().parent)]
 
-from bench_daemon import RawPublisher, _die_with_parent, rss_kb, scrape, shiftwatch_command  # noqa: E402
+from bench_daemon import RawPublisher, _die_with_parent, rss_kb, scrape, shiftwatch_command
 
 T0 = 1_790_000_000.0
 #: RSS growth between the 100,000th and the last new topic, as a fraction of the

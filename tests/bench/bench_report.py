@@ -32,7 +32,7 @@ import subprocess
 import sys
 import tempfile
 import time
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
@@ -42,7 +42,7 @@ from shiftwatch.core.timefmt import format_time
 from shiftwatch.demo import SENSORS
 from shiftwatch.report import StreamTrace
 
-T0 = datetime(2026, 3, 2, 6, 0, tzinfo=timezone.utc).timestamp()
+T0 = datetime(2026, 3, 2, 6, 0, tzinfo=UTC).timestamp()
 MEMORY_RATIO = 1.10
 TIME_RATIO = 1.5
 

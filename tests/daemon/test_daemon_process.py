@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import gc
-
 import json
 import os
 import re

@@ -124,7 +124,7 @@ class _Chain:
     chain and allows the subtraction-free solve.
     """
 
-    __slots__ = ("a", "exit", "k", "h", "mean", "nodes", "weights")
+    __slots__ = ("a", "exit", "h", "k", "mean", "nodes", "weights")
 
     def __init__(self, k: float, h: float, mean: float) -> None:
         m = _n_nodes(h)

@@ -319,7 +319,7 @@ class BaselineSums:
     (5100, True, True)
     """
 
-    __slots__ = ("n", "su", "suu", "slag", "see", "tail", "sdt", "ndt", "prev_u", "prev_t")
+    __slots__ = ("n", "ndt", "prev_t", "prev_u", "sdt", "see", "slag", "su", "suu", "tail")
 
     def __init__(self) -> None:
         self.reset()
@@ -336,7 +336,7 @@ class BaselineSums:
                 self.prev_u, self.prev_t]
 
     @classmethod
-    def from_list(cls, d: list[float | int | None]) -> "BaselineSums":
+    def from_list(cls, d: list[float | int | None]) -> BaselineSums:
         out = cls()
         (n, out.su, out.suu, out.slag, out.see, tail, out.sdt, ndt, out.prev_u, out.prev_t) = d  # type: ignore[assignment]
         out.n, out.tail, out.ndt = int(n or 0), int(tail or 0), int(ndt or 0)

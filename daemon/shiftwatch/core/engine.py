@@ -36,8 +36,9 @@ from __future__ import annotations
 import hashlib
 import math
 from collections import Counter
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field, replace
-from typing import Any, Iterable, NamedTuple, Sequence
+from typing import Any, NamedTuple
 
 import numpy as np
 from numpy.typing import NDArray
@@ -51,8 +52,8 @@ from shiftwatch.core.baseline import (
     sigma_floor,
 )
 from shiftwatch.core.events import NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
-from shiftwatch.core.selfstart import SelfStart
 from shiftwatch.core.screen import screen_samples
+from shiftwatch.core.selfstart import SelfStart
 from shiftwatch.core.sequential import SequentialTest
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.core.stepfit import StepFit, StepFitter
@@ -270,7 +271,7 @@ class Window:
     [4.0, 9.0]
     """
 
-    __slots__ = ("keep", "_x", "_t", "_n")
+    __slots__ = ("_n", "_t", "_x", "keep")
 
     def __init__(self, keep: int, slack: int = 8) -> None:
         self.keep = keep
@@ -479,11 +480,11 @@ class StreamEngine:
 
     # One engine per stream, thousands of them in the daemon: no per-instance dict.
     __slots__ = (
-        "stream", "settings", "unit", "_state", "_window", "_fitter", "_sums", "_baseline",
-        "_test", "_test_arl0", "_test_shift_z", "_test_n_ref", "_test_n_level", "_prev_r", "_pending", "_prev_out",
-        "_event", "_unfolded", "_watch_kept", "_next_refine", "_refine_block", "_last_time",
-        "samples_total", "rejected_total", "records_total", "last_shift_at", "_last_step",
-        "_young", "_provisional",
+        "_baseline", "_event", "_fitter", "_last_step", "_last_time", "_next_refine", "_pending",
+        "_prev_out", "_prev_r", "_provisional", "_refine_block", "_state", "_sums", "_test",
+        "_test_arl0", "_test_n_level", "_test_n_ref", "_test_shift_z", "_unfolded", "_watch_kept",
+        "_window", "_young", "last_shift_at", "records_total", "rejected_total", "samples_total",
+        "settings", "stream", "unit",
     )
 
     def __init__(self, stream: str, settings: DetectionSettings | None = None, *,

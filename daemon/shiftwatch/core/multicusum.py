@@ -38,7 +38,8 @@ from __future__ import annotations
 
 import functools
 import math
-from typing import Any, ClassVar, Sequence
+from collections.abc import Sequence
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -120,7 +121,7 @@ class MultiCusumTest(SequentialTest):
 
     name: ClassVar[str] = "multi_cusum"
 
-    __slots__ = ("_bank", "_c", "_stat", "_dir", "_tripped")
+    __slots__ = ("_bank", "_c", "_dir", "_stat", "_tripped")
     _bank: _Bank
     _c: FloatArray  # upper sums of the charts, then the lower sums
     _stat: float
@@ -522,7 +523,7 @@ class _Bank:
     from them, shared (read-only) by every :class:`MultiCusumTest` built with
     the same charts."""
 
-    __slots__ = ("ks", "hs", "m", "k_arr", "h_arr", "k_col", "h2", "h2_col", "ascending", "kramp")
+    __slots__ = ("ascending", "h2", "h2_col", "h_arr", "hs", "k_arr", "k_col", "kramp", "ks", "m")
 
     def __init__(self, ks: tuple[float, ...], hs: tuple[float, ...]) -> None:
         self.ks = ks
