@@ -578,14 +578,14 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
         mark = getattr(exc, "problem_mark", None)
         line = mark.line + 1 if mark is not None else None
         raise ConfigError("", f"not valid YAML: {getattr(exc, 'problem', exc)}", file=file, line=line) from None
-    top, nodes = ld.section(root, TOP_KEYS, "")
+    _top, nodes = ld.section(root, TOP_KEYS, "")
     b, bnodes = ld.section(nodes.get("broker"), BROKER_KEYS, "broker")
     tls = None
     if "tls" in bnodes:
         t, _ = ld.section(bnodes["tls"], TLS_KEYS, "broker.tls")
         tls = TlsConfig(**t)
     url = b["url"]
-    if not (url.startswith("mqtt://") or url.startswith("mqtts://")):
+    if not url.startswith(("mqtt://", "mqtts://")):
         raise ld.error("broker.url", f"must start with mqtt:// or mqtts://, got {url!r}", bnodes.get("url"))
     if "@" in url.split("://", 1)[1].split("/", 1)[0]:
         # Not echoed: what stands before the @ may be a password.
@@ -622,7 +622,7 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
     if alerts["qos"] not in (0, 1, 2):
         raise ld.error("alerts.qos", f"must be 0, 1 or 2, got {alerts['qos']}", anodes.get("qos"))
     metrics, mnodes = ld.section(nodes.get("metrics"), METRICS_KEYS, "metrics")
-    host, sep, port = metrics["listen"].rpartition(":")
+    _host, sep, port = metrics["listen"].rpartition(":")
     if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:
         raise ld.error("metrics.listen", f"must be HOST:PORT (e.g. \"127.0.0.1:9650\", a port of 0 to "
                        f"65535), got {metrics['listen']!r}", mnodes.get("listen"))

@@ -47,7 +47,7 @@ import time
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass
 from types import MappingProxyType
-from typing import Any
+from typing import Any, Self
 from urllib.parse import parse_qs, urlsplit
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram
@@ -650,7 +650,7 @@ class MetricsServer:
         """Stop serving, close the socket and wait for the endpoint's threads."""
         self._endpoint.close()
 
-    def __enter__(self) -> MetricsServer:
+    def __enter__(self) -> Self:
         return self
 
     def __exit__(self, *exc: object) -> None:

@@ -778,7 +778,7 @@ class PlainClient:
                  username: str | None = None, password: str | None = None,
                  persistent: bool = False, on_acked: Callable[[int], None] | None = None,
                  on_connection: Callable[[bool], None] | None = None) -> None:
-        self.host, self.port, tls = parse_url(url)
+        self.host, self.port, _tls = parse_url(url)
         v5 = mqtt_version == "5"
         self._v5 = v5
         self._persistent = persistent

@@ -155,7 +155,7 @@ class Outbox:
             if name.startswith(_TMP_PREFIX) and name.endswith(_TMP_SUFFIX):
                 self._unlink_quietly(name, "leftover of an interrupted add")
                 continue
-            stem, dot, rest = name.partition(".")
+            stem, _dot, rest = name.partition(".")
             if stem.isdigit() and len(stem) == _WIDTH:
                 highest = max(highest, int(stem))  # set-aside files too: never reuse a number
                 if "." + rest == _SUFFIX:

@@ -24,6 +24,7 @@ from hypothesis import strategies as st
 
 from shiftwatch.core.arl import design_h
 from shiftwatch.core.cusum import BLOCK, CusumTest, tabular_cusum
+import itertools
 
 NIST_MEANS = [
     324.925, 324.675, 324.725, 324.350, 325.350, 325.225, 324.125, 324.525, 325.225, 324.600,
@@ -153,7 +154,7 @@ def test_batched_update_equals_naive_loop(
     t2 = CusumTest(k, h)
     bounds = sorted({0, len(z), *[c for c in cuts if c <= len(z)]})
     got_idx = -1
-    for a, b in zip(bounds, bounds[1:]):
+    for a, b in itertools.pairwise(bounds):
         r = t2.update(arr[a:b])
         if r >= 0:
             got_idx = a + r

@@ -21,13 +21,13 @@ import threading
 import time
 import urllib.request
 from collections import deque
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
 from prometheus_client.parser import text_string_to_metric_families
 
-from shiftwatch.broker import wait_until  # noqa: F401  re-exported: the fault tests import it from here
+from shiftwatch.broker import wait_until  # noqa: F401  re-exported for the fault tests
 from shiftwatch.mqtt import PlainClient
 
 T0 = 1_790_000_000.0  # sample times start here (2026-09-21), one second apart
@@ -252,7 +252,7 @@ class SlowClients:
         self.closed_by_server += 1
         s.close()
 
-    def run(self, seconds: float, between: callable = None) -> None:  # type: ignore[valid-type]
+    def run(self, seconds: float, between: Callable[[], object] | None = None) -> None:
         end = time.monotonic() + seconds
         while self.open and time.monotonic() < end:
             self.trickle()

@@ -124,7 +124,7 @@ def test_items_survive_a_killed_process(tmp_path: Path) -> None:
     assert keys[:30] == returned
     assert keys == sorted(keys)
     for n, item in enumerate(pending):
-        assert item.topic == "alerts/%d" % n and item.payload == b"payload %d" % n
+        assert item.topic == f"alerts/{n}" and item.payload == b"payload %d" % n
     assert all(name.endswith(".msg") for name in files(tmp_path))  # leftovers cleaned
 
 

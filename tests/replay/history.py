@@ -56,7 +56,7 @@ def time_text(t: float, form: str) -> str:
     if form == "epoch_s":
         return f"{t:.3f}"
     if form == "epoch_ms":
-        return str(int(round(t * 1000)))
+        return str(int(round(t * 1000)))  # noqa: RUF046  t may be a NumPy scalar
     raise ValueError(form)
 
 

@@ -396,7 +396,7 @@ def _quantile_cached(k: float, h: float, mu: float, q: float, sides: int) -> flo
     # geometric beyond the mean, so ~ARL * (-log(1 - q) + 10) is ample.
     arl = cusum_arl(k, h, mu, sides=sides)
     bound = max(2.0, arl * (-math.log1p(-q) + 10.0))
-    nbits = min(200, max(1, int(math.ceil(math.log2(bound))) + 1))
+    nbits = min(200, max(1, math.ceil(math.log2(bound)) + 1))
     powers = [_survival_powers(c, nbits) for c in chains]
     vecs = [np.ones(c.a.shape[0]) for c in chains]
     n = 0  # invariant: P(RL > n) > 1 - q

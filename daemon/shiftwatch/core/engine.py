@@ -38,7 +38,7 @@ import math
 from collections import Counter
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field, replace
-from typing import Any, NamedTuple
+from typing import Any, ClassVar, NamedTuple
 
 import numpy as np
 from numpy.typing import NDArray
@@ -359,7 +359,7 @@ class _WindowStore:
     """
 
     BLOCK = 128
-    _stores: dict[int, _WindowStore] = {}
+    _stores: ClassVar[dict[int, _WindowStore]] = {}
 
     def __init__(self, capacity: int) -> None:
         self.capacity = capacity

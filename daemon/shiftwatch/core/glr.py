@@ -48,6 +48,7 @@ from typing import Any
 import numpy as np
 
 from shiftwatch.core.sequential import FloatArray, SequentialTest
+import itertools
 
 #: Default longest lag.  A 0.5-sigma shift needs about 2 c / 0.25 ~ 110
 #: samples to reach the threshold ``c ~ 13.7`` used at ARL 604,800 (simulated
@@ -91,7 +92,7 @@ def default_lags(window: int) -> tuple[int, ...]:
     x = float(DENSE_LAGS)
     while True:
         x *= LAG_RATIO
-        lag = int(round(x))
+        lag = round(x)
         if lag >= window:
             break
         if lag > lags[-1]:
@@ -145,7 +146,7 @@ def _calibration_constant(window: int) -> float:
         return _CAL_A[keys[0]]
     if window >= keys[-1]:
         return _CAL_A[keys[-1]]
-    for lo, hi in zip(keys, keys[1:]):
+    for lo, hi in itertools.pairwise(keys):
         if lo <= window <= hi:
             w = (math.log(window) - math.log(lo)) / (math.log(hi) - math.log(lo))
             return (1 - w) * _CAL_A[lo] + w * _CAL_A[hi]

@@ -24,7 +24,7 @@ def format_time(t: float) -> str:
     >>> format_time(1764633600.25)
     '2025-12-02T00:00:00.250Z'
     """
-    ms = int(round(t * 1000.0))
+    ms = int(round(t * 1000.0))  # noqa: RUF046  an int whatever t is, NumPy scalars too
     sec, milli = divmod(ms, 1000)
     dt = datetime.fromtimestamp(sec, tz=UTC)
     return dt.strftime("%Y-%m-%dT%H:%M:%S") + f".{milli:03d}Z"

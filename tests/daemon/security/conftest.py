@@ -31,8 +31,12 @@ from cryptography.hazmat.primitives.asymmetric import ec
 from cryptography.x509.oid import ExtendedKeyUsageOID, NameOID
 from prometheus_client.parser import text_string_to_metric_families
 
-from shiftwatch.broker import MosquittoBroker, TlsListener, free_port
-from shiftwatch.broker import wait_until  # noqa: F401  re-exported: the security tests import it from here
+from shiftwatch.broker import (
+    MosquittoBroker,
+    TlsListener,
+    free_port,
+    wait_until,  # noqa: F401  re-exported for the tests
+)
 from shiftwatch.mqtt import PlainClient
 
 NOW = dt.datetime.now(dt.UTC)
