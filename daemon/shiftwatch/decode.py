@@ -546,11 +546,10 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
         problems.append(DecodeProblem("not_json", f"invalid JSON: {_json_error(exc)}"))
         return out
 
-    if fmt == "senml":
-        if not isinstance(doc, list):
-            problems.append(DecodeProblem(
-                "senml_invalid", f"a SenML pack is a JSON array of records, got {_show(doc)}"))
-            return out
+    if fmt == "senml" and not isinstance(doc, list):
+        problems.append(DecodeProblem(
+            "senml_invalid", f"a SenML pack is a JSON array of records, got {_show(doc)}"))
+        return out
     if isinstance(doc, list):
         if not doc:
             problems.append(DecodeProblem("empty", "the payload is an empty list"))

@@ -135,9 +135,8 @@ class Line:
         while not self._stop.is_set():
             t = self.start_time + k / RATE_HZ
             delay = t - time.time()
-            if delay > 0:
-                if self._stop.wait(delay):
-                    break
+            if delay > 0 and self._stop.wait(delay):
+                break
             elapsed = t - self.start_time
             for s in SENSORS:
                 v = s.level + s.sigma * float(self.rng.standard_normal())

@@ -342,8 +342,8 @@ def main() -> int:
         for e in dec["errors"]:
             print("  " + e)
         bad = dec["tally"]["EXCEPTION"] + dec["tally"]["UNACCOUNTED"]
-        rows.append(("decoders: exceptions, payloads unaccounted", f"{dec['tally']['EXCEPTION']}, "
-                     f"{dec['tally']['UNACCOUNTED']} of {dec['examples']:,}", "0, 0", bad == 0))
+        rows.append(("decoders: exceptions, payloads unaccounted", (f"{dec['tally']['EXCEPTION']}, "
+                     f"{dec['tally']['UNACCOUNTED']} of {dec['examples']:,}"), "0, 0", bad == 0))
 
         path = fuzz_path(n_path, tmp)
         print(f"message path: {path['examples']:,} examples, {path['messages']:,} messages in "

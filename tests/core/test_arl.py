@@ -16,6 +16,7 @@ References used below:
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -31,7 +32,6 @@ from shiftwatch.core.arl import (
     design_h,
     siegmund_arl,
 )
-import itertools
 
 
 def _simulate_run_lengths(

@@ -14,6 +14,7 @@ References used below:
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 
@@ -24,7 +25,6 @@ from hypothesis import strategies as st
 
 from shiftwatch.core.arl import design_h
 from shiftwatch.core.cusum import BLOCK, CusumTest, tabular_cusum
-import itertools
 
 NIST_MEANS = [
     324.925, 324.675, 324.725, 324.350, 325.350, 325.225, 324.125, 324.525, 325.225, 324.600,

@@ -8,6 +8,7 @@ Monte Carlo simulation of the in-control run length on iid N(0, 1).
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 
@@ -17,7 +18,6 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from shiftwatch.core.glr import DEFAULT_WINDOW, GlrTest, default_lags, threshold_for_arl
-import itertools
 
 
 class NaiveGlr:

@@ -17,6 +17,7 @@ References used below:
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 
@@ -28,7 +29,6 @@ from hypothesis import strategies as st
 from shiftwatch.core.arl import cusum_arl, design_h
 from shiftwatch.core.cusum import BLOCK, CusumTest
 from shiftwatch.core.multicusum import DEFAULT_MULTIPLES, MultiCusumTest, joint_arl_ratio
-import itertools
 
 
 class NaiveBank:

@@ -41,6 +41,7 @@ window 400, real ARL / requested): 1.072 +- 0.011 at 200, 1.060 +- 0.011 at
 
 from __future__ import annotations
 
+import itertools
 import math
 from collections.abc import Sequence
 from typing import Any
@@ -48,7 +49,6 @@ from typing import Any
 import numpy as np
 
 from shiftwatch.core.sequential import FloatArray, SequentialTest
-import itertools
 
 #: Default longest lag.  A 0.5-sigma shift needs about 2 c / 0.25 ~ 110
 #: samples to reach the threshold ``c ~ 13.7`` used at ARL 604,800 (simulated
