@@ -265,7 +265,7 @@ class EmbeddedBroker:
             try:
                 self._broker = Broker(config, loop=loop)
                 loop.run_until_complete(self._broker.start())
-            except BaseException as exc:  # reported to the caller of start()
+            except BaseException as exc:  # noqa: BLE001  reported to the caller of start()
                 self._error = exc
                 self._ready.set()
                 return
@@ -289,7 +289,7 @@ class EmbeddedBroker:
         fut = asyncio.run_coroutine_threadsafe(self._broker.shutdown(), self._loop)
         try:
             fut.result(timeout=10)
-        except Exception:
+        except Exception:  # noqa: BLE001, S110  the loop is stopped below whatever shutdown did
             pass
         self._loop.call_soon_threadsafe(self._loop.stop)
         if self._thread is not None:

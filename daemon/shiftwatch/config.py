@@ -109,7 +109,7 @@ def _str(choices: tuple[str, ...] | None = None, nonempty: bool = True,
                 raise ValueError(f"must be text, got the number {v!r}; write it in quotes: \"{v}\"")
             if choices is not None:
                 raise ValueError(f"must be text, one of {', '.join(repr(c) for c in choices)}, got {v!r}")
-            raise ValueError(f"must be {what}, got {v!r}")
+            raise ValueError(f"must be {what}, got {v!r}")  # noqa: TRY004  the loader reports ValueError as a config error
         if nonempty and not v.strip():
             raise ValueError("must not be empty")
         if choices is not None and v not in choices:
@@ -145,7 +145,7 @@ def _time_zone(v: Any) -> str:
 
 def _bool(v: Any) -> bool:
     if not isinstance(v, bool):
-        raise ValueError(f"must be true or false, got {v!r}")
+        raise ValueError(f"must be true or false, got {v!r}")  # noqa: TRY004  as above
     return v
 
 

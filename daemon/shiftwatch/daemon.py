@@ -238,7 +238,7 @@ class _SyncThenAck:
                 if sync:
                     self._sync()
                 self._ack(msgs)
-        except Exception:  # the thread must never die
+        except Exception:  # noqa: BLE001  the thread must never die
             self._log.exception("error while writing the outbox or acknowledging messages")
         with self._cv:
             self._open -= 1
@@ -383,7 +383,7 @@ class Daemon:
             eng = StreamEngine(name, spec.detection, unit=spec.unit)
             try:
                 eng.set_state(state)
-            except Exception as exc:  # whatever is wrong with one entry costs that stream only
+            except Exception as exc:  # noqa: BLE001  whatever is wrong with one entry costs that stream only
                 self.metrics.states_set_aside.inc()
                 self.log.warning("saved state of stream %s set aside (%s); it warms up again, the "
                                  "other streams are restored", _printable(name), _one_line(exc))
@@ -685,7 +685,7 @@ class Daemon:
                 jg = self._run_stream(name, spec, unit, times, values, arrivals, now)
                 if jg is not None:
                     fed.append(jg)
-            except Exception:  # a defect must cost one stream's batch, never the daemon
+            except Exception:  # noqa: BLE001  a defect must cost one stream's batch, never the daemon
                 self._count_drop("internal_error", len(values))
                 self.rlog.warning("internal_error", "internal error while processing stream "
                                   f"{_printable(name)}; its batch was set aside", now,
@@ -736,13 +736,13 @@ class Daemon:
         try:
             return list(decode_many([m.payload for m in ms], spec.format, now=[m.arrived for m in ms],
                                     **kwargs))
-        except Exception:
+        except Exception:  # noqa: BLE001, S110  decoded one by one below, each failure counted
             pass
         out: list[Decoded | None] = []
         for m in ms:
             try:
                 out.append(decode(m.payload, spec.format, now=m.arrived, **kwargs))
-            except Exception:
+            except Exception:  # noqa: BLE001  a defect costs this message only; counted and logged
                 self._count_drop("internal_error")
                 self.rlog.warning("internal_error", f"internal error while decoding a message on "
                                   f"{_printable(m.topic)}; it was set aside", now, exc_info=True)
@@ -1047,7 +1047,7 @@ class Daemon:
         except ConfigError as exc:
             self.log.error("reload refused, keeping the running configuration: %s", exc)
             return
-        except Exception as exc:  # a defect in reading must never cost the running daemon
+        except Exception as exc:  # noqa: BLE001  a defect in reading must never cost the running daemon
             self.log.error("reload refused, keeping the running configuration: %s: cannot be read "
                            "(%s: %s)", self.config_path, type(exc).__name__, exc)
             return

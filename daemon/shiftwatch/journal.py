@@ -212,7 +212,7 @@ class Journal:
         self.close()
         self.lost = None
         try:
-            f = open(self.path, "rb")
+            f = open(self.path, "rb")  # noqa: SIM115  kept open to append to, or closed below
         except FileNotFoundError:
             f = None
         header_token: str | None = None

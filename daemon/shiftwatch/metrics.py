@@ -349,7 +349,7 @@ class _Renderer:
             for key, waiters in batches.items():
                 try:
                     result: Any = self._render(*key)
-                except Exception as exc:  # a failed render fails its scrapes, never the thread
+                except Exception as exc:  # noqa: BLE001  a failed render fails its scrapes, never the thread
                     result = exc
                 for loop, fut in waiters:
                     try:
@@ -536,7 +536,7 @@ class _Endpoint:
                     record.reading = False
                 await self._answer(head, writer)
                 answered = True
-        except (Exception, asyncio.CancelledError):
+        except (Exception, asyncio.CancelledError):  # noqa: BLE001, S110  see below
             pass  # timed out, shed, hung up, a bad handshake or request: closed, nothing to tell
         finally:
             self._conns.pop(task, None)
@@ -547,7 +547,7 @@ class _Endpoint:
                     writer.transport.abort()
                 try:
                     await asyncio.wait_for(writer.wait_closed(), 2.0)
-                except (Exception, asyncio.CancelledError):
+                except (Exception, asyncio.CancelledError):  # noqa: BLE001  not closed cleanly: aborted
                     writer.transport.abort()
 
     async def _answer(self, head: bytes, writer: asyncio.StreamWriter) -> None:
@@ -576,7 +576,7 @@ class _Endpoint:
         self.renderer.submit(key, fut)
         try:
             body, content_type, zipped = await fut
-        except Exception:
+        except Exception:  # noqa: BLE001  whatever failed the render, the scrape gets a 500
             writer.write(_response(500, b"the metrics could not be rendered\n"))
             return
         extra = (("Content-Encoding", "gzip"),) if zipped else ()

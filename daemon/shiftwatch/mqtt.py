@@ -725,14 +725,14 @@ class MqttLink:
                 # of the broker's in-flight slots and stall the whole flow.
                 self.ack(int(msg.mid), int(msg.qos))
                 self._on_drop("queue_full")
-        except Exception as exc:  # a callback must never raise into paho's loop
+        except Exception as exc:  # noqa: BLE001  a callback must never raise into paho's loop
             # Acknowledged too, or the message would hold an in-flight slot for good.
             # MQTT topics are UTF-8; paho hands over whatever the broker sent.
             bad_topic = isinstance(exc, UnicodeDecodeError)
             self._on_drop("topic_not_utf8" if bad_topic else "internal_error")
             try:
                 self.ack(int(msg.mid), int(msg.qos))
-            except Exception:
+            except Exception:  # noqa: BLE001, S110  the drop is counted above; paho's loop goes on
                 pass
 
     def _handle_publish(self, client: paho.Client, userdata: Any, mid: int, reason: Any,

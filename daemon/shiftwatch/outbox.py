@@ -71,7 +71,7 @@ def _decode(key: str, data: bytes) -> OutboxItem:
         raise ValueError("no header line")
     h = json.loads(head)
     if not isinstance(h, dict):
-        raise ValueError("header is not an object")
+        raise ValueError("header is not an object")  # noqa: TRY004  damage is a ValueError (docstring)
     topic, qos, retain, size, crc = (h.get(k) for k in ("topic", "qos", "retain", "size", "crc32"))
     if (not isinstance(topic, str) or not topic or qos not in (0, 1, 2)
             or not isinstance(retain, bool) or not isinstance(size, int)

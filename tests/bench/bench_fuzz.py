@@ -84,7 +84,7 @@ def fuzz_decoders(n: int) -> dict[str, Any]:
         try:
             out = decode(payload, fmt, value_path=value_path, time_path=time_path, now=T0,
                          max_depth=max_depth, max_items=max_items)
-        except Exception:
+        except Exception:  # noqa: BLE001  any exception is what this fuzzer counts
             tally["EXCEPTION"] += 1
             if len(errors) < 3:
                 errors.append(f"{fmt} {payload[:60]!r}: {traceback.format_exc(limit=3)}")
@@ -129,7 +129,7 @@ def fuzz_path(n: int, tmp: Path) -> dict[str, Any]:
                     while len(d.inbox):
                         d.round(timeout=0.0)
                     after_d = tf.drops(d)
-                except Exception:
+                except Exception:  # noqa: BLE001  any exception is what this fuzzer counts
                     tally["EXCEPTION"] += 1
                     if len(errors) < 3:
                         errors.append(traceback.format_exc(limit=4))
@@ -211,7 +211,8 @@ def flood(n_topics: int, tmp: Path) -> dict[str, Any]:
         f"metrics: {{listen: '127.0.0.1:{port}'}}\n"  # max_streams: the default, 10,000
         f"state: {{dir: '{tmp / 'flood-state'}', snapshot_every: 1h}}\n")
     proc = subprocess.Popen(shiftwatch_command() + ["run", "--config", str(cfg)], stdout=subprocess.DEVNULL,
-                            stderr=subprocess.PIPE, preexec_fn=_die_with_parent)
+                            stderr=subprocess.PIPE,
+                            preexec_fn=_die_with_parent)  # noqa: PLW1509  a prctl call only, no locks
     log = DaemonLog(proc)
     sampler_stop = threading.Event()
     rss_trace: list[tuple[float, int]] = []

@@ -99,7 +99,7 @@ class DaemonProcess:
         self.run_args: list[str] = []  # more options of `shiftwatch run`, e.g. --log-format json
 
     def start(self, timeout: float = 20.0) -> DaemonProcess:
-        self.log = open(self.log_path, "a")
+        self.log = open(self.log_path, "a")  # noqa: SIM115  the daemon's output while it runs; closed by stop()
         offset = self.log_path.stat().st_size
         self.proc = subprocess.Popen(self.command + ["run", "--config", str(self.config), *self.run_args],
                                      stdout=self.log, stderr=subprocess.STDOUT, text=True)

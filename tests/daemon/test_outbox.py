@@ -215,7 +215,7 @@ def test_concurrent_add_and_remove(tmp_path: Path) -> None:
                     added.append(item)
                 if i % 2:
                     box.remove(item.key)  # as an on_publish callback would
-        except BaseException as exc:  # pragma: no cover - reported below
+        except BaseException as exc:  # noqa: BLE001  # pragma: no cover - reported below
             errors.append(exc)
 
     threads = [threading.Thread(target=producer, args=(n,)) for n in range(4)]

@@ -1446,7 +1446,7 @@ class StreamEngine:
         except (KeyError, TypeError, AttributeError, IndexError, OverflowError) as exc:
             self._reset()
             if isinstance(exc, KeyError):
-                raise ValueError(f"{field_name}: {exc.args[0]} is missing from the saved state") from None
+                raise ValueError(f"{field_name}: {exc.args[0]} is missing from the saved state") from None  # noqa: TRY004  every bad field is a ValueError
             raise ValueError(f"{field_name}: malformed ({exc!r:.120})") from None
 
     def _record(self, ev: OpenEvent, fit: StepFit, phase: str, as_of: float,

@@ -564,7 +564,7 @@ SMALL = 32
 
 def _float_list(name: str, values: Sequence[float]) -> list[float]:
     if isinstance(values, (str, bytes)):
-        raise ValueError(f"{name} must be a sequence of numbers, got {values!r}")
+        raise ValueError(f"{name} must be a sequence of numbers, got {values!r}")  # noqa: TRY004  as below
     try:
         return [float(v) for v in values]
     except (TypeError, ValueError):

@@ -99,7 +99,7 @@ def parse_duration(text: str | float) -> float:
     ValueError: '90' has no unit (use a number with a unit: 250ms, 30s, 10min (or 10m), 12h, 7d or 2w)
     """
     if isinstance(text, (int, float)) and not isinstance(text, bool):
-        raise ValueError(f"{text!r} has no unit (use {DURATION_FORMS})")
+        raise ValueError(f"{text!r} has no unit (use {DURATION_FORMS})")  # noqa: TRY004  callers catch ValueError
     m = _DURATION.match(str(text))
     if not m:
         raise ValueError(f"not a duration: {text!r} (use {DURATION_FORMS})")

@@ -233,7 +233,7 @@ def test_every_system_call_the_daemon_makes_is_allowed(
         broker=f"  url: {broker.url}\n  client_id: sw-traced\n",
     )
     trace = tmp_path / "trace.txt"
-    log = open(tmp_path / "traced.log", "w")
+    log = open(tmp_path / "traced.log", "w")  # noqa: SIM115  closed in the finally below
     proc = subprocess.Popen(
         [strace, "-f", "-qq", "-o", str(trace)] + shiftwatch_cmd + ["run", "--config", str(cfg)],
         stdout=log,
@@ -319,7 +319,7 @@ def test_the_daemon_works_inside_the_units_restrictions(
     if keep:
         (work / "keep").mkdir()
     log_path = tmp_path / "sandbox.log"
-    log = open(log_path, "w")
+    log = open(log_path, "w")  # noqa: SIM115  closed in the finally below
     proc = subprocess.Popen(
         ["unshare", "--mount", "--propagation", "private", "sh", "-c", SANDBOX],
         stdout=log,
