@@ -247,7 +247,7 @@ class EmbeddedBroker:
         import asyncio
 
         try:
-            from amqtt.broker import Broker
+            from amqtt.broker import Broker  # type: ignore[import-untyped]  # amqtt ships no type information
         except ImportError as exc:
             raise RuntimeError("no mosquitto binary and no embedded broker (pip install amqtt)") from exc
 

@@ -752,8 +752,11 @@ class Daemon:
     def _decode_problems(self, topic: str, problems: list[DecodeProblem], now: float) -> None:
         for p in problems:
             self._count_drop(p.reason)
-            self.rlog.warning(f"decode:{p.reason}", lambda p=p: f"message on {_printable(topic)} "
-                              f"set aside ({p.reason}): {p.message}", now)
+
+            def text(p: DecodeProblem = p) -> str:
+                return f"message on {_printable(topic)} set aside ({p.reason}): {p.message}"
+
+            self.rlog.warning(f"decode:{p.reason}", text, now)
 
     def engine_for(self, name: str, spec: StreamConfig, unit: str | None) -> StreamEngine | None:
         eng = self.engines.get(name)
@@ -804,8 +807,11 @@ class Daemon:
         res = eng.process(times, values, arrivals)
         for rej in res.rejected:
             if rej.reason != "spike":  # one key per reason: many streams cannot multiply the lines
-                self.rlog.warning(f"sample:{rej.reason}", lambda r=rej.reason: f"sample of {_printable(name)} "
-                                  f"set aside ({r}): {SAMPLE_REASONS[r]}", now, extra={"stream": name})
+
+                def text(r: str = rej.reason) -> str:
+                    return f"sample of {_printable(name)} set aside ({r}): {SAMPLE_REASONS[r]}"
+
+                self.rlog.warning(f"sample:{rej.reason}", text, now, extra={"stream": name})
         for rec in res.records:
             j = int(np.searchsorted(times, rec.as_of))
             self.emit(rec, float(arrivals[min(j, len(arrivals) - 1)]))

@@ -363,11 +363,12 @@ def _split_path(path: str | None, what: str) -> tuple[str, ...] | None:
     return tuple(path.split("."))
 
 
-class _Repeated(dict):  # type: ignore[type-arg]
+class _Repeated(dict[str, Any]):
     """A JSON object in which some keys appeared more than once (``repeated``); it holds
     the last value of each, as ``json`` does."""
 
     __slots__ = ("repeated",)
+    repeated: set[str]
 
 
 def _pairs(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
@@ -622,21 +623,21 @@ def decode_many(payloads: Sequence[bytes | bytearray], fmt: str, *, value_path: 
         return [decode(p, fmt, value_path=value_path, time_path=time_path, max_bytes=max_bytes, now=t,
                        max_items=max_items, max_depth=max_depth) for p, t in zip(payloads, now)]
     value_parts, time_parts = _checked_options(fmt, value_path, time_path, max_bytes, max_items, max_depth)
-    for t in now:
-        _check_now(t)
+    for arrived in now:
+        _check_now(arrived)
     out: list[Decoded] = []
     no_problems: list[DecodeProblem] = []  # shared by the clean results below; never appended to
     for item in doc:
         if type(item) is dict:
             # The common case, with the same outcome as _json_item: a finite float
             # or a plain int (type() leaves out bool) right under each key.
-            v = item.get(value_path)
+            v: Any = item.get(value_path)
             tv = type(v)
             if (tv is float and v - v == 0.0) or (tv is int and -_BIG_INT < v < _BIG_INT):
                 if time_path is None:
                     out.append(Decoded([Reading(None, None, float(v), None)], no_problems))
                     continue
-                t = item.get(time_path)
+                t: Any = item.get(time_path)
                 tt = type(t)
                 if (tt is float and t - t == 0.0) or (tt is int and -_BIG_INT < t < _BIG_INT):
                     out.append(Decoded([Reading(None, _seconds(float(t)), float(v), None)], no_problems))

@@ -38,6 +38,7 @@ PromQL expects for "not known yet".
 from __future__ import annotations
 
 import asyncio
+import functools
 import gzip
 import math
 import socket
@@ -498,7 +499,7 @@ class _Endpoint:
             self._conns[task] = _Connection(task)
             # The bookkeeping is the task's done callback, not its own finally: a task
             # shed before it first ran never enters its try, and would leak its place.
-            task.add_done_callback(lambda t, conn=conn: self._done(t, conn))
+            task.add_done_callback(functools.partial(self._done, conn=conn))
 
     def _done(self, task: asyncio.Task[None], conn: socket.socket) -> None:
         self._conns.pop(task, None)

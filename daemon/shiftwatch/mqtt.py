@@ -79,6 +79,7 @@ class _ReadBuffer:
             # The inbox is full: read nothing now ("no data yet" to paho, whose
             # packet parsing resumes where it stopped).
             raise BlockingIOError(errno.EAGAIN, "inbox full")
+        buf: bytes
         buf, pos = self._buf, self._pos
         if pos >= len(buf):
             buf = self._sock.recv(self.CHUNK)
@@ -139,7 +140,7 @@ class Message(NamedTuple):
     """An incoming message, as the daemon sees it."""
 
     topic: str
-    payload: bytes
+    payload: bytes | bytearray  # paho's MQTTMessage.payload, decoded as it is
     arrived: float  # wall-clock seconds when paho handed it over
     mid: int
     qos: int
@@ -397,7 +398,7 @@ def probe_broker(cfg: BrokerConfig, password: str | None, *, timeout: float = 5.
                            keyfile=t.key_file if t else None, cert_reqs=ssl.CERT_REQUIRED)
             client.tls_insecure_set(False)
         if v5:
-            props = Properties(PacketTypes.CONNECT)
+            props = Properties(PacketTypes.CONNECT)  # type: ignore[no-untyped-call]  # paho's Properties() is unannotated
             props.SessionExpiryInterval = 0
             client.connect(host, port, keepalive=max(5, int(timeout) + 1), clean_start=True,
                            properties=props)
@@ -531,7 +532,7 @@ class MqttLink:
         """Connect in the background; paho reconnects with backoff (1 s doubling to 30 s)."""
         props = None
         if self._v5:
-            props = Properties(PacketTypes.CONNECT)
+            props = Properties(PacketTypes.CONNECT)  # type: ignore[no-untyped-call]  # paho's Properties() is unannotated
             props.SessionExpiryInterval = int(self.cfg.session_expiry)
             # Mosquitto sends an MQTT 5 client as many unacknowledged messages as
             # it asks for here (else max_inflight_messages, 20 by default).
@@ -826,7 +827,7 @@ class PlainClient:
 
     def start(self, timeout: float = 10.0) -> PlainClient:
         if self._persistent and self._v5:
-            props = Properties(PacketTypes.CONNECT)
+            props = Properties(PacketTypes.CONNECT)  # type: ignore[no-untyped-call]  # paho's Properties() is unannotated
             props.SessionExpiryInterval = 3600
             self.client.connect(self.host, self.port, keepalive=30, clean_start=False, properties=props)
         else:

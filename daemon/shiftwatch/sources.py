@@ -31,7 +31,7 @@ from __future__ import annotations
 import csv
 import math
 import os
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, tzinfo
 from pathlib import Path
@@ -171,7 +171,7 @@ class Source:
         return f"{self.path}: row group {g}, row {row - self.group_rows[g]}"
 
 
-def expand_paths(paths: list[str | Path]) -> list[str]:
+def expand_paths(paths: Sequence[str | Path]) -> list[str]:
     """The files to read: each path, a directory standing for its ``.parquet`` and ``.csv``
     files (all levels below it, in path order)."""
     out: list[str] = []

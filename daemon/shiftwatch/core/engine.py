@@ -234,9 +234,9 @@ class _NoCounts(Counter[str]):
     def _refuse(self, *args: Any, **kwargs: Any) -> Any:
         raise TypeError("this shared empty counter is read-only")
 
-    __setitem__ = subtract = setdefault = __ior__ = __iadd__ = __isub__ = _refuse  # type: ignore[assignment]
+    __setitem__ = subtract = setdefault = __ior__ = __iadd__ = __isub__ = _refuse
 
-    def update(self, iterable: Any = None, /, **kwds: Any) -> None:  # type: ignore[override]
+    def update(self, iterable: Any = None, /, **kwds: Any) -> None:
         if iterable or kwds:  # Counter() itself calls update() with nothing
             self._refuse()
 
@@ -864,7 +864,7 @@ class StreamEngine:
                 return i + 1
             if self._young_settled():
                 return i + 1
-        return t.shape[0]
+        return int(t.shape[0])
 
     def _feed_young(self, tv: float, xv: float, clip: float) -> bool:
         """One kept sample of the young phase; True when the test trips on it."""
@@ -1557,7 +1557,7 @@ def _baseline_from(d: dict[str, Any]) -> Baseline:
             raise ValueError(f"baseline.{k}: must lie in [-0.95, 0.95], got {floats[k]!r}")
     n = _count(d["n"], "baseline.n")
     n_level = _count(d.get("n_level", 0), "baseline.n_level")
-    return Baseline(n=n, n_level=n_level, **floats)  # type: ignore[arg-type]
+    return Baseline(n=n, n_level=n_level, **floats)
 
 
 #: The largest count a saved state may hold (doubles count exactly up to it).

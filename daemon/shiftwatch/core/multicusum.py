@@ -403,7 +403,7 @@ class MultiCusumTest(SequentialTest):
         m = bank.m
         ks, hs = bank.k_arr, bank.h_arr
         c = self._c
-        n = blk.shape[0]
+        n: int = blk.shape[0]
         for side in (0, 1):
             cs = c[side * m:(side + 1) * m]
             if np.any(cs[1:] > cs[0]) or np.any(cs >= hs):
@@ -468,9 +468,8 @@ class MultiCusumTest(SequentialTest):
             if first_c[side][t] <= 0.0:
                 continue  # every chart of this side is at zero
             for i in range(1, m):
-                st = tilde[side].get(i)
-                if st is None:
-                    st = signs[side] - bank.kramp[i, :n]
+                kept = tilde[side].get(i)
+                st = signs[side] - bank.kramp[i, :n] if kept is None else kept
                 low = float(st[: t + 1].min()) if t < n - 1 else float(st.min())
                 col[side * m + i] = st[t] - min(-float(cs[i]), low)
         self._c = col
