@@ -510,7 +510,7 @@ class _Loader:
         empty = node is None or (isinstance(node, self.y.ScalarNode) and node.tag.endswith(":null"))
         if not empty and not isinstance(node, self.y.MappingNode):
             raise self.error(path, "must be a mapping of keys to values", node)
-        for knode, vnode in ([] if empty else node.value):  # type: ignore[union-attr]
+        for knode, vnode in (node.value if isinstance(node, self.y.MappingNode) else []):
             key = self.plain(knode)
             kpath = f"{path}.{key}" if path else str(key)
             if kpath in REFUSED_KEYS:

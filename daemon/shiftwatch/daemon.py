@@ -25,7 +25,7 @@ from collections import OrderedDict, deque
 from collections.abc import Callable
 from pathlib import Path
 from types import FrameType
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 
@@ -323,7 +323,7 @@ class Daemon:
     def _route(self, topic: str) -> tuple[StreamConfig, str] | None:
         """The stream configuration of a topic and its stream name (for readings
         without a SenML name), cached per topic."""
-        route = self._spec_cache.get(topic, False)
+        route: tuple[StreamConfig, str] | None | Literal[False] = self._spec_cache.get(topic, False)
         if route is False:
             spec = next((s for s in self.cfg.streams if topic_matches(s.topic, topic)), None)
             route = None if spec is None else (spec, stream_name(topic, None))
@@ -333,7 +333,7 @@ class Daemon:
                 if len(self._spec_cache) >= SPEC_CACHE_MIN + self.cfg.metrics.max_streams:
                     self._spec_cache.clear()
                 self._spec_cache[topic] = route
-        return route  # type: ignore[return-value]
+        return route
 
     # ----------------------------------------------------------- signals
     def request_stop(self, *_: Any) -> None:

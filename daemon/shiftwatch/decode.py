@@ -123,6 +123,7 @@ import hashlib
 import json
 import math
 import re
+from collections import Counter
 from collections.abc import Sequence
 from datetime import datetime
 from itertools import accumulate
@@ -376,8 +377,7 @@ def _pairs(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
     if len(d) == len(pairs):
         return d
     out = _Repeated(d)
-    seen: set[str] = set()
-    out.repeated = {k for k, _ in pairs if k in seen or seen.add(k)}  # type: ignore[func-returns-value]
+    out.repeated = {k for k, times in Counter(k for k, _ in pairs).items() if times > 1}
     return out
 
 
