@@ -140,7 +140,7 @@ class Message(NamedTuple):
     """An incoming message, as the daemon sees it."""
 
     topic: str
-    payload: bytes | bytearray  # paho's MQTTMessage.payload, decoded as it is
+    payload: bytes | bytearray  # as paho hands it over (MQTTMessage.payload)
     arrived: float  # wall-clock seconds when paho handed it over
     mid: int
     qos: int
