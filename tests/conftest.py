@@ -28,7 +28,7 @@ def cli(tmp_path: Path):
 
     def run(*args: str, timeout: float = 120.0,
             env: dict[str, str] | None = None) -> subprocess.CompletedProcess[str]:
-        return subprocess.run(shiftwatch_command() + list(args), capture_output=True, text=True,
-                              timeout=timeout, cwd=tmp_path, env=env)
+        return subprocess.run(shiftwatch_command() + list(args), capture_output=True, check=False,
+                              text=True, timeout=timeout, cwd=tmp_path, env=env)
 
     return run

@@ -19,9 +19,9 @@ import subprocess
 import tempfile
 import threading
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from collections.abc import Callable
 from typing import Any
 
 
@@ -154,7 +154,7 @@ class MosquittoBroker:
                            capture_output=True)
         return ["allow_anonymous false", f"password_file {pwfile}"]
 
-    def start(self, timeout: float = 10.0) -> "MosquittoBroker":
+    def start(self, timeout: float = 10.0) -> MosquittoBroker:
         self.binary = self.binary or find_mosquitto()
         if self.binary is None:
             raise RuntimeError("mosquitto is not installed (see the README's set-up)")
@@ -243,11 +243,11 @@ class EmbeddedBroker:
     def url(self) -> str:
         return f"mqtt://127.0.0.1:{self.port}"
 
-    def start(self, timeout: float = 15.0) -> "EmbeddedBroker":
+    def start(self, timeout: float = 15.0) -> EmbeddedBroker:
         import asyncio
 
         try:
-            from amqtt.broker import Broker
+            from amqtt.broker import Broker  # type: ignore[import-untyped]  # amqtt ships no type information
         except ImportError as exc:
             raise RuntimeError("no mosquitto binary and no embedded broker (pip install amqtt)") from exc
 
@@ -265,7 +265,7 @@ class EmbeddedBroker:
             try:
                 self._broker = Broker(config, loop=loop)
                 loop.run_until_complete(self._broker.start())
-            except BaseException as exc:  # reported to the caller of start()
+            except BaseException as exc:  # noqa: BLE001  reported to the caller of start()
                 self._error = exc
                 self._ready.set()
                 return
@@ -289,7 +289,7 @@ class EmbeddedBroker:
         fut = asyncio.run_coroutine_threadsafe(self._broker.shutdown(), self._loop)
         try:
             fut.result(timeout=10)
-        except Exception:
+        except Exception:  # noqa: BLE001, S110  the loop is stopped below whatever shutdown did
             pass
         self._loop.call_soon_threadsafe(self._loop.stop)
         if self._thread is not None:

@@ -13,7 +13,8 @@ import json
 import logging
 import sys
 import time
-from typing import Any, Sequence, TextIO
+from collections.abc import Sequence
+from typing import Any, TextIO
 
 from shiftwatch import __version__
 
@@ -187,7 +188,7 @@ def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for:
     out: TextIO
     if args.out:
         try:
-            out = open(args.out, "w", encoding="utf-8")
+            out = open(args.out, "w", encoding="utf-8")  # noqa: SIM115  closed in the finally below
         except OSError as exc:
             _err(f"--out {args.out}: cannot write: {exc.strerror or exc}")
             return EXIT_USAGE

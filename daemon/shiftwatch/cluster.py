@@ -26,8 +26,9 @@ Example, with a scheduler already running::
 from __future__ import annotations
 
 import os
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.replay import KEEP_PROBLEMS, ReplayResult, _record_key, replay_files
@@ -101,7 +102,7 @@ def replay_on_dask(root: str | Path, client: Any, settings_for: Callable[[str], 
     own = isinstance(client, str)
     if own:
         try:
-            client = Client(client, timeout="20s")
+            client = Client(client, timeout="20s")  # type: ignore[no-untyped-call]  # distributed's Client() is unannotated
         except (OSError, TimeoutError) as exc:
             raise ClusterError(f"cannot reach the Dask scheduler at {client}: {exc}") from None
     try:

@@ -13,9 +13,10 @@ from __future__ import annotations
 import difflib
 import math
 import re
+from collections.abc import Callable
 from dataclasses import MISSING, dataclass, field, fields
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Callable
+from typing import TYPE_CHECKING, Any
 
 from shiftwatch.core.settings import TEST_NAMES, DetectionSettings
 from shiftwatch.core.timefmt import parse_duration
@@ -108,7 +109,7 @@ def _str(choices: tuple[str, ...] | None = None, nonempty: bool = True,
                 raise ValueError(f"must be text, got the number {v!r}; write it in quotes: \"{v}\"")
             if choices is not None:
                 raise ValueError(f"must be text, one of {', '.join(repr(c) for c in choices)}, got {v!r}")
-            raise ValueError(f"must be {what}, got {v!r}")
+            raise ValueError(f"must be {what}, got {v!r}")  # noqa: TRY004  the loader reports ValueError as a config error
         if nonempty and not v.strip():
             raise ValueError("must not be empty")
         if choices is not None and v not in choices:
@@ -144,7 +145,7 @@ def _time_zone(v: Any) -> str:
 
 def _bool(v: Any) -> bool:
     if not isinstance(v, bool):
-        raise ValueError(f"must be true or false, got {v!r}")
+        raise ValueError(f"must be true or false, got {v!r}")  # noqa: TRY004  as above
     return v
 
 
@@ -509,7 +510,7 @@ class _Loader:
         empty = node is None or (isinstance(node, self.y.ScalarNode) and node.tag.endswith(":null"))
         if not empty and not isinstance(node, self.y.MappingNode):
             raise self.error(path, "must be a mapping of keys to values", node)
-        for knode, vnode in ([] if empty else node.value):  # type: ignore[union-attr]
+        for knode, vnode in (node.value if isinstance(node, self.y.MappingNode) else []):
             key = self.plain(knode)
             kpath = f"{path}.{key}" if path else str(key)
             if kpath in REFUSED_KEYS:
@@ -577,14 +578,14 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
         mark = getattr(exc, "problem_mark", None)
         line = mark.line + 1 if mark is not None else None
         raise ConfigError("", f"not valid YAML: {getattr(exc, 'problem', exc)}", file=file, line=line) from None
-    top, nodes = ld.section(root, TOP_KEYS, "")
+    _top, nodes = ld.section(root, TOP_KEYS, "")
     b, bnodes = ld.section(nodes.get("broker"), BROKER_KEYS, "broker")
     tls = None
     if "tls" in bnodes:
         t, _ = ld.section(bnodes["tls"], TLS_KEYS, "broker.tls")
         tls = TlsConfig(**t)
     url = b["url"]
-    if not (url.startswith("mqtt://") or url.startswith("mqtts://")):
+    if not url.startswith(("mqtt://", "mqtts://")):
         raise ld.error("broker.url", f"must start with mqtt:// or mqtts://, got {url!r}", bnodes.get("url"))
     if "@" in url.split("://", 1)[1].split("/", 1)[0]:
         # Not echoed: what stands before the @ may be a password.
@@ -621,7 +622,7 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
     if alerts["qos"] not in (0, 1, 2):
         raise ld.error("alerts.qos", f"must be 0, 1 or 2, got {alerts['qos']}", anodes.get("qos"))
     metrics, mnodes = ld.section(nodes.get("metrics"), METRICS_KEYS, "metrics")
-    host, sep, port = metrics["listen"].rpartition(":")
+    _host, sep, port = metrics["listen"].rpartition(":")
     if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:
         raise ld.error("metrics.listen", f"must be HOST:PORT (e.g. \"127.0.0.1:9650\", a port of 0 to "
                        f"65535), got {metrics['listen']!r}", mnodes.get("listen"))

@@ -16,7 +16,6 @@ import gc
 import json
 import logging
 import math
-import os
 import secrets
 import signal
 import sys
@@ -26,7 +25,7 @@ from collections import OrderedDict, deque
 from collections.abc import Callable
 from pathlib import Path
 from types import FrameType
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 
@@ -36,7 +35,7 @@ from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
 from shiftwatch.core.timefmt import format_time
 from shiftwatch.decode import REASONS as DECODE_REASONS
 from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, stream_name
-from shiftwatch.display import alert_summary, clock, stamp
+from shiftwatch.display import alert_summary, stamp
 from shiftwatch.fsutil import explain_os_error
 from shiftwatch.journal import Journal, JournalGroup
 from shiftwatch.metrics import Metrics, MetricsServer, StreamStats
@@ -239,7 +238,7 @@ class _SyncThenAck:
                 if sync:
                     self._sync()
                 self._ack(msgs)
-        except Exception:  # the thread must never die
+        except Exception:  # noqa: BLE001  the thread must never die
             self._log.exception("error while writing the outbox or acknowledging messages")
         with self._cv:
             self._open -= 1
@@ -324,7 +323,7 @@ class Daemon:
     def _route(self, topic: str) -> tuple[StreamConfig, str] | None:
         """The stream configuration of a topic and its stream name (for readings
         without a SenML name), cached per topic."""
-        route = self._spec_cache.get(topic, False)
+        route: tuple[StreamConfig, str] | None | Literal[False] = self._spec_cache.get(topic, False)
         if route is False:
             spec = next((s for s in self.cfg.streams if topic_matches(s.topic, topic)), None)
             route = None if spec is None else (spec, stream_name(topic, None))
@@ -334,7 +333,7 @@ class Daemon:
                 if len(self._spec_cache) >= SPEC_CACHE_MIN + self.cfg.metrics.max_streams:
                     self._spec_cache.clear()
                 self._spec_cache[topic] = route
-        return route  # type: ignore[return-value]
+        return route
 
     # ----------------------------------------------------------- signals
     def request_stop(self, *_: Any) -> None:
@@ -384,7 +383,7 @@ class Daemon:
             eng = StreamEngine(name, spec.detection, unit=spec.unit)
             try:
                 eng.set_state(state)
-            except Exception as exc:  # whatever is wrong with one entry costs that stream only
+            except Exception as exc:  # noqa: BLE001  whatever is wrong with one entry costs that stream only
                 self.metrics.states_set_aside.inc()
                 self.log.warning("saved state of stream %s set aside (%s); it warms up again, the "
                                  "other streams are restored", _printable(name), _one_line(exc))
@@ -686,7 +685,7 @@ class Daemon:
                 jg = self._run_stream(name, spec, unit, times, values, arrivals, now)
                 if jg is not None:
                     fed.append(jg)
-            except Exception:  # a defect must cost one stream's batch, never the daemon
+            except Exception:  # noqa: BLE001  a defect must cost one stream's batch, never the daemon
                 self._count_drop("internal_error", len(values))
                 self.rlog.warning("internal_error", "internal error while processing stream "
                                   f"{_printable(name)}; its batch was set aside", now,
@@ -737,13 +736,13 @@ class Daemon:
         try:
             return list(decode_many([m.payload for m in ms], spec.format, now=[m.arrived for m in ms],
                                     **kwargs))
-        except Exception:
+        except Exception:  # noqa: BLE001, S110  decoded one by one below, each failure counted
             pass
         out: list[Decoded | None] = []
         for m in ms:
             try:
                 out.append(decode(m.payload, spec.format, now=m.arrived, **kwargs))
-            except Exception:
+            except Exception:  # noqa: BLE001  a defect costs this message only; counted and logged
                 self._count_drop("internal_error")
                 self.rlog.warning("internal_error", f"internal error while decoding a message on "
                                   f"{_printable(m.topic)}; it was set aside", now, exc_info=True)
@@ -753,8 +752,11 @@ class Daemon:
     def _decode_problems(self, topic: str, problems: list[DecodeProblem], now: float) -> None:
         for p in problems:
             self._count_drop(p.reason)
-            self.rlog.warning(f"decode:{p.reason}", lambda p=p: f"message on {_printable(topic)} "
-                              f"set aside ({p.reason}): {p.message}", now)
+
+            def text(p: DecodeProblem = p) -> str:
+                return f"message on {_printable(topic)} set aside ({p.reason}): {p.message}"
+
+            self.rlog.warning(f"decode:{p.reason}", text, now)
 
     def engine_for(self, name: str, spec: StreamConfig, unit: str | None) -> StreamEngine | None:
         eng = self.engines.get(name)
@@ -805,8 +807,11 @@ class Daemon:
         res = eng.process(times, values, arrivals)
         for rej in res.rejected:
             if rej.reason != "spike":  # one key per reason: many streams cannot multiply the lines
-                self.rlog.warning(f"sample:{rej.reason}", lambda r=rej.reason: f"sample of {_printable(name)} "
-                                  f"set aside ({r}): {SAMPLE_REASONS[r]}", now, extra={"stream": name})
+
+                def text(r: str = rej.reason) -> str:
+                    return f"sample of {_printable(name)} set aside ({r}): {SAMPLE_REASONS[r]}"
+
+                self.rlog.warning(f"sample:{rej.reason}", text, now, extra={"stream": name})
         for rec in res.records:
             j = int(np.searchsorted(times, rec.as_of))
             self.emit(rec, float(arrivals[min(j, len(arrivals) - 1)]))
@@ -1048,7 +1053,7 @@ class Daemon:
         except ConfigError as exc:
             self.log.error("reload refused, keeping the running configuration: %s", exc)
             return
-        except Exception as exc:  # a defect in reading must never cost the running daemon
+        except Exception as exc:  # noqa: BLE001  a defect in reading must never cost the running daemon
             self.log.error("reload refused, keeping the running configuration: %s: cannot be read "
                            "(%s: %s)", self.config_path, type(exc).__name__, exc)
             return
@@ -1191,4 +1196,4 @@ def _printable(text: str, limit: int = 120) -> str:
     return clean if len(text) <= limit else clean + "..."
 
 
-__all__ = ["Daemon", "alert_summary", "DECODE_REASONS"]
+__all__ = ["DECODE_REASONS", "Daemon", "alert_summary"]

@@ -123,6 +123,7 @@ import hashlib
 import json
 import math
 import re
+from collections import Counter
 from collections.abc import Sequence
 from datetime import datetime
 from itertools import accumulate
@@ -363,11 +364,12 @@ def _split_path(path: str | None, what: str) -> tuple[str, ...] | None:
     return tuple(path.split("."))
 
 
-class _Repeated(dict):  # type: ignore[type-arg]
+class _Repeated(dict[str, Any]):
     """A JSON object in which some keys appeared more than once (``repeated``); it holds
     the last value of each, as ``json`` does."""
 
     __slots__ = ("repeated",)
+    repeated: set[str]
 
 
 def _pairs(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
@@ -375,8 +377,7 @@ def _pairs(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
     if len(d) == len(pairs):
         return d
     out = _Repeated(d)
-    seen: set[str] = set()
-    out.repeated = {k for k, _ in pairs if k in seen or seen.add(k)}  # type: ignore[func-returns-value]
+    out.repeated = {k for k, times in Counter(k for k, _ in pairs).items() if times > 1}
     return out
 
 
@@ -521,8 +522,7 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
     except UnicodeDecodeError as exc:
         problems.append(DecodeProblem("not_utf8", f"invalid UTF-8 at byte {exc.start}"))
         return out
-    if text.startswith("\ufeff"):
-        text = text[1:]
+    text = text.removeprefix("\ufeff")
     if not text.strip():
         problems.append(DecodeProblem("empty", "the payload is empty" if not text else "the payload is blank"))
         return out
@@ -547,11 +547,10 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
         problems.append(DecodeProblem("not_json", f"invalid JSON: {_json_error(exc)}"))
         return out
 
-    if fmt == "senml":
-        if not isinstance(doc, list):
-            problems.append(DecodeProblem(
-                "senml_invalid", f"a SenML pack is a JSON array of records, got {_show(doc)}"))
-            return out
+    if fmt == "senml" and not isinstance(doc, list):
+        problems.append(DecodeProblem(
+            "senml_invalid", f"a SenML pack is a JSON array of records, got {_show(doc)}"))
+        return out
     if isinstance(doc, list):
         if not doc:
             problems.append(DecodeProblem("empty", "the payload is an empty list"))
@@ -624,21 +623,21 @@ def decode_many(payloads: Sequence[bytes | bytearray], fmt: str, *, value_path: 
         return [decode(p, fmt, value_path=value_path, time_path=time_path, max_bytes=max_bytes, now=t,
                        max_items=max_items, max_depth=max_depth) for p, t in zip(payloads, now)]
     value_parts, time_parts = _checked_options(fmt, value_path, time_path, max_bytes, max_items, max_depth)
-    for t in now:
-        _check_now(t)
+    for arrived in now:
+        _check_now(arrived)
     out: list[Decoded] = []
     no_problems: list[DecodeProblem] = []  # shared by the clean results below; never appended to
     for item in doc:
         if type(item) is dict:
             # The common case, with the same outcome as _json_item: a finite float
             # or a plain int (type() leaves out bool) right under each key.
-            v = item.get(value_path)
+            v: Any = item.get(value_path)
             tv = type(v)
             if (tv is float and v - v == 0.0) or (tv is int and -_BIG_INT < v < _BIG_INT):
                 if time_path is None:
                     out.append(Decoded([Reading(None, None, float(v), None)], no_problems))
                     continue
-                t = item.get(time_path)
+                t: Any = item.get(time_path)
                 tt = type(t)
                 if (tt is float and t - t == 0.0) or (tt is int and -_BIG_INT < t < _BIG_INT):
                     out.append(Decoded([Reading(None, _seconds(float(t)), float(v), None)], no_problems))
@@ -730,7 +729,7 @@ def _json_item(item: Any, where: str, in_batch: bool, value_path: str, value_par
 class _Broken:
     """A base field set to something unusable; records relying on it are rejected."""
 
-    __slots__ = ("reason", "message")
+    __slots__ = ("message", "reason")
 
     def __init__(self, reason: str, message: str) -> None:
         self.reason = reason

@@ -135,9 +135,8 @@ class Line:
         while not self._stop.is_set():
             t = self.start_time + k / RATE_HZ
             delay = t - time.time()
-            if delay > 0:
-                if self._stop.wait(delay):
-                    break
+            if delay > 0 and self._stop.wait(delay):
+                break
             elapsed = t - self.start_time
             for s in SENSORS:
                 v = s.level + s.sigma * float(self.rng.standard_normal())
@@ -277,4 +276,4 @@ def _recap(results: dict[str, list[dict[str, Any]]], start: float, ended: float,
     return "\n".join(lines) + "\n"
 
 
-__all__ = ["run_demo", "SENSORS"]
+__all__ = ["SENSORS", "run_demo"]

@@ -43,10 +43,10 @@ from collections.abc import Iterable, Iterator, Sequence
 from pathlib import Path
 from typing import BinaryIO, NamedTuple
 
-from shiftwatch.fsutil import fsync_dir
-
 import numpy as np
 from numpy.typing import NDArray
+
+from shiftwatch.fsutil import fsync_dir
 
 __all__ = ["JOURNAL_NAME", "MAX_BYTES", "Journal", "JournalGroup"]
 
@@ -212,7 +212,7 @@ class Journal:
         self.close()
         self.lost = None
         try:
-            f = open(self.path, "rb")
+            f = open(self.path, "rb")  # noqa: SIM115  kept open to append to, or closed below
         except FileNotFoundError:
             f = None
         header_token: str | None = None

@@ -38,6 +38,7 @@ PromQL expects for "not known yet".
 from __future__ import annotations
 
 import asyncio
+import functools
 import gzip
 import math
 import socket
@@ -47,7 +48,7 @@ import time
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass
 from types import MappingProxyType
-from typing import Any
+from typing import Any, Self
 from urllib.parse import parse_qs, urlsplit
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram
@@ -291,7 +292,7 @@ def parse_listen(listen: str) -> tuple[str, int]:
 class _Connection:
     """One accepted connection: its task, and whether it is still sending its request."""
 
-    __slots__ = ("task", "reading", "since")
+    __slots__ = ("reading", "since", "task")
 
     def __init__(self, task: asyncio.Task[None]) -> None:
         self.task = task
@@ -349,7 +350,7 @@ class _Renderer:
             for key, waiters in batches.items():
                 try:
                     result: Any = self._render(*key)
-                except Exception as exc:  # a failed render fails its scrapes, never the thread
+                except Exception as exc:  # noqa: BLE001  a failed render fails its scrapes, never the thread
                     result = exc
                 for loop, fut in waiters:
                     try:
@@ -498,7 +499,7 @@ class _Endpoint:
             self._conns[task] = _Connection(task)
             # The bookkeeping is the task's done callback, not its own finally: a task
             # shed before it first ran never enters its try, and would leak its place.
-            task.add_done_callback(lambda t, conn=conn: self._done(t, conn))
+            task.add_done_callback(functools.partial(self._done, conn=conn))
 
     def _done(self, task: asyncio.Task[None], conn: socket.socket) -> None:
         self._conns.pop(task, None)
@@ -536,7 +537,7 @@ class _Endpoint:
                     record.reading = False
                 await self._answer(head, writer)
                 answered = True
-        except (Exception, asyncio.CancelledError):
+        except (Exception, asyncio.CancelledError):  # noqa: BLE001, S110  see below
             pass  # timed out, shed, hung up, a bad handshake or request: closed, nothing to tell
         finally:
             self._conns.pop(task, None)
@@ -547,7 +548,7 @@ class _Endpoint:
                     writer.transport.abort()
                 try:
                     await asyncio.wait_for(writer.wait_closed(), 2.0)
-                except (Exception, asyncio.CancelledError):
+                except (Exception, asyncio.CancelledError):  # noqa: BLE001  not closed cleanly: aborted
                     writer.transport.abort()
 
     async def _answer(self, head: bytes, writer: asyncio.StreamWriter) -> None:
@@ -576,7 +577,7 @@ class _Endpoint:
         self.renderer.submit(key, fut)
         try:
             body, content_type, zipped = await fut
-        except Exception:
+        except Exception:  # noqa: BLE001  whatever failed the render, the scrape gets a 500
             writer.write(_response(500, b"the metrics could not be rendered\n"))
             return
         extra = (("Content-Encoding", "gzip"),) if zipped else ()
@@ -650,7 +651,7 @@ class MetricsServer:
         """Stop serving, close the socket and wait for the endpoint's threads."""
         self._endpoint.close()
 
-    def __enter__(self) -> MetricsServer:
+    def __enter__(self) -> Self:
         return self
 
     def __exit__(self, *exc: object) -> None:

@@ -62,7 +62,7 @@ class _ReadBuffer:
     Everything else goes to the socket itself.
     """
 
-    __slots__ = ("_sock", "_buf", "_pos", "_room")
+    __slots__ = ("_buf", "_pos", "_room", "_sock")
     CHUNK = 65536
     #: Longest wait for room in a full inbox before paho's thread gets on with
     #: its other work (writing, keepalive) and comes back.
@@ -79,6 +79,7 @@ class _ReadBuffer:
             # The inbox is full: read nothing now ("no data yet" to paho, whose
             # packet parsing resumes where it stopped).
             raise BlockingIOError(errno.EAGAIN, "inbox full")
+        buf: bytes
         buf, pos = self._buf, self._pos
         if pos >= len(buf):
             buf = self._sock.recv(self.CHUNK)
@@ -139,7 +140,7 @@ class Message(NamedTuple):
     """An incoming message, as the daemon sees it."""
 
     topic: str
-    payload: bytes
+    payload: bytes | bytearray  # as paho hands it over (MQTTMessage.payload)
     arrived: float  # wall-clock seconds when paho handed it over
     mid: int
     qos: int
@@ -397,7 +398,7 @@ def probe_broker(cfg: BrokerConfig, password: str | None, *, timeout: float = 5.
                            keyfile=t.key_file if t else None, cert_reqs=ssl.CERT_REQUIRED)
             client.tls_insecure_set(False)
         if v5:
-            props = Properties(PacketTypes.CONNECT)
+            props = Properties(PacketTypes.CONNECT)  # type: ignore[no-untyped-call]  # paho's Properties() is unannotated
             props.SessionExpiryInterval = 0
             client.connect(host, port, keepalive=max(5, int(timeout) + 1), clean_start=True,
                            properties=props)
@@ -531,7 +532,7 @@ class MqttLink:
         """Connect in the background; paho reconnects with backoff (1 s doubling to 30 s)."""
         props = None
         if self._v5:
-            props = Properties(PacketTypes.CONNECT)
+            props = Properties(PacketTypes.CONNECT)  # type: ignore[no-untyped-call]  # paho's Properties() is unannotated
             props.SessionExpiryInterval = int(self.cfg.session_expiry)
             # Mosquitto sends an MQTT 5 client as many unacknowledged messages as
             # it asks for here (else max_inflight_messages, 20 by default).
@@ -725,14 +726,14 @@ class MqttLink:
                 # of the broker's in-flight slots and stall the whole flow.
                 self.ack(int(msg.mid), int(msg.qos))
                 self._on_drop("queue_full")
-        except Exception as exc:  # a callback must never raise into paho's loop
+        except Exception as exc:  # noqa: BLE001  a callback must never raise into paho's loop
             # Acknowledged too, or the message would hold an in-flight slot for good.
             # MQTT topics are UTF-8; paho hands over whatever the broker sent.
             bad_topic = isinstance(exc, UnicodeDecodeError)
             self._on_drop("topic_not_utf8" if bad_topic else "internal_error")
             try:
                 self.ack(int(msg.mid), int(msg.qos))
-            except Exception:
+            except Exception:  # noqa: BLE001, S110  the drop is counted above; paho's loop goes on
                 pass
 
     def _handle_publish(self, client: paho.Client, userdata: Any, mid: int, reason: Any,
@@ -778,7 +779,7 @@ class PlainClient:
                  username: str | None = None, password: str | None = None,
                  persistent: bool = False, on_acked: Callable[[int], None] | None = None,
                  on_connection: Callable[[bool], None] | None = None) -> None:
-        self.host, self.port, tls = parse_url(url)
+        self.host, self.port, _tls = parse_url(url)
         v5 = mqtt_version == "5"
         self._v5 = v5
         self._persistent = persistent
@@ -824,9 +825,9 @@ class PlainClient:
         self.client.on_publish = on_publish_cb
         self.client.on_disconnect = on_disconnect
 
-    def start(self, timeout: float = 10.0) -> "PlainClient":
+    def start(self, timeout: float = 10.0) -> PlainClient:
         if self._persistent and self._v5:
-            props = Properties(PacketTypes.CONNECT)
+            props = Properties(PacketTypes.CONNECT)  # type: ignore[no-untyped-call]  # paho's Properties() is unannotated
             props.SessionExpiryInterval = 3600
             self.client.connect(self.host, self.port, keepalive=30, clean_start=False, properties=props)
         else:

@@ -80,9 +80,8 @@ def watchdog_interval(env: Mapping[str, str] | None = None) -> float | None:
     e = os.environ if env is None else env
     usec = e.get("WATCHDOG_USEC", "")
     pid = e.get("WATCHDOG_PID")
-    if pid is not None and pid != "":
-        if not _is_number(pid) or int(pid) != os.getpid():
-            return None
+    if pid is not None and pid != "" and (not _is_number(pid) or int(pid) != os.getpid()):
+        return None
     if not _is_number(usec) or int(usec) <= 0:
         return None
     return int(usec) / 1_000_000

@@ -33,7 +33,7 @@ from pathlib import Path
 
 from shiftwatch.fsutil import explain_os_error, fsync_dir
 
-__all__ = ["OutboxItem", "Outbox"]
+__all__ = ["Outbox", "OutboxItem"]
 
 _SUFFIX = ".msg"
 _TMP_PREFIX = ".outbox-"
@@ -71,7 +71,7 @@ def _decode(key: str, data: bytes) -> OutboxItem:
         raise ValueError("no header line")
     h = json.loads(head)
     if not isinstance(h, dict):
-        raise ValueError("header is not an object")
+        raise ValueError("header is not an object")  # noqa: TRY004  damage is a ValueError (docstring)
     topic, qos, retain, size, crc = (h.get(k) for k in ("topic", "qos", "retain", "size", "crc32"))
     if (not isinstance(topic, str) or not topic or qos not in (0, 1, 2)
             or not isinstance(retain, bool) or not isinstance(size, int)
@@ -155,7 +155,7 @@ class Outbox:
             if name.startswith(_TMP_PREFIX) and name.endswith(_TMP_SUFFIX):
                 self._unlink_quietly(name, "leftover of an interrupted add")
                 continue
-            stem, dot, rest = name.partition(".")
+            stem, _dot, rest = name.partition(".")
             if stem.isdigit() and len(stem) == _WIDTH:
                 highest = max(highest, int(stem))  # set-aside files too: never reuse a number
                 if "." + rest == _SUFFIX:

@@ -28,9 +28,10 @@ import queue
 import traceback
 import zlib
 from collections import deque
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from datetime import tzinfo
-from typing import TYPE_CHECKING, Any, Callable, Iterable
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -305,9 +306,9 @@ def replay_files(paths: Iterable[str | Path], settings_for: Callable[[str], Dete
         sources = open_sources(list(paths), layout)
     if settings_for is None:
         defaults = DetectionSettings()
-        settings_for = lambda stream: defaults  # noqa: E731
+        settings_for = lambda stream: defaults
     if unit_for is None:
-        unit_for = lambda stream: None  # noqa: E731
+        unit_for = lambda stream: None
     if jobs <= 1 or _small(sources, chunk_bytes):
         feeder = _Feeder(sources, settings_for, unit_for, trace_options)
         for task in tasks(sources, tz, chunk_bytes):
@@ -518,7 +519,7 @@ class StreamSeries:
     Rows are added in parts (one per chunk) and joined into arrays when first read.
     """
 
-    __slots__ = ("sources", "_parts", "_joined")
+    __slots__ = ("_joined", "_parts", "sources")
 
     def __init__(self, sources: list[Source]) -> None:
         #: the files that ``places`` refer to (shared by every series of one read)

@@ -38,9 +38,10 @@ import math
 import os
 import struct
 import tempfile
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Callable, Literal, Sequence
+from typing import TYPE_CHECKING, Any, Literal
 
 import numpy as np
 from numpy.typing import NDArray
@@ -553,9 +554,9 @@ def _date_axis(ax: Axes, time_zone: str = "UTC", *, label: bool = True) -> None:
     import matplotlib.dates as mdates
 
     tz = zone(time_zone)
-    loc = mdates.AutoDateLocator(tz=tz)  # type: ignore[no-untyped-call]
+    loc = mdates.AutoDateLocator(tz=tz)  # type: ignore[no-untyped-call]  # unannotated in matplotlib
     ax.xaxis.set_major_locator(loc)
-    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(loc, tz=tz))  # type: ignore[no-untyped-call]
+    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(loc, tz=tz))  # type: ignore[no-untyped-call]  # as above
     if label:
         ax.set_xlabel(f"time ({zone_label(time_zone)})", fontsize=8)
     ax.grid(True, linewidth=0.3, alpha=0.6)

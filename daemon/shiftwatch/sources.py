@@ -31,10 +31,11 @@ from __future__ import annotations
 import csv
 import math
 import os
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, tzinfo
 from pathlib import Path
-from typing import Any, BinaryIO, Iterator
+from typing import Any, BinaryIO
 
 import numpy as np
 from numpy.typing import NDArray
@@ -170,7 +171,7 @@ class Source:
         return f"{self.path}: row group {g}, row {row - self.group_rows[g]}"
 
 
-def expand_paths(paths: list[str | Path]) -> list[str]:
+def expand_paths(paths: Sequence[str | Path]) -> list[str]:
     """The files to read: each path, a directory standing for its ``.parquet`` and ``.csv``
     files (all levels below it, in path order)."""
     out: list[str] = []
@@ -249,7 +250,7 @@ def open_source(path: str, layout: str = "auto") -> Source:
     if parquet:
         return _open_parquet(path, layout)
     try:
-        fb = open(path, "rb")
+        fb = open(path, "rb")  # noqa: SIM115  opened apart to report its error; the with below closes it
     except OSError as exc:
         raise CsvFormatError(f"{path}: cannot open: {exc.strerror or exc}") from None
     with fb:
@@ -959,7 +960,7 @@ def _open_parquet(path: str, layout: str) -> Source:
     try:
         meta = pq.ParquetFile(path).metadata
         header = list(meta.schema.to_arrow_schema().names)
-    except Exception as exc:  # pyarrow raises ArrowInvalid, OSError, ... for a damaged file
+    except Exception as exc:  # noqa: BLE001  pyarrow raises ArrowInvalid, OSError, ... for a damaged file
         raise CsvFormatError(f"{path}: not a readable Parquet file: {exc}") from None
     offsets = [0]
     for g in range(meta.num_row_groups):
@@ -1215,7 +1216,7 @@ def _kept_open(opened: dict[str, Any] | None, path: str, make: Any) -> Any:
 
 def _read_at(path: str, offset: int, size: int, opened: dict[str, Any] | None) -> bytes:
     """``size`` bytes of a file from ``offset`` (a chunk handed over without its bytes)."""
-    f = _kept_open(opened, path, lambda: open(path, "rb"))
+    f = _kept_open(opened, path, lambda: open(path, "rb"))  # noqa: SIM115  kept open across chunks
     chunk = os.pread(f.fileno(), size, offset)
     if opened is None:
         f.close()

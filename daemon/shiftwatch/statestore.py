@@ -238,7 +238,7 @@ class StateStore:
         """
         self._remove_leftovers()
         try:
-            f = open(self.path, "rb")
+            f = open(self.path, "rb")  # noqa: SIM115  opened apart for FileNotFoundError; closed by the with
         except FileNotFoundError:
             return {}, {}
         try:

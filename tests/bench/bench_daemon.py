@@ -59,9 +59,10 @@ import tempfile
 import threading
 import time
 import urllib.request
+from collections.abc import Callable
 from datetime import datetime
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 T0_MS = 1_788_000_000_000  # synthetic sample times of the ingest and memory parts (epoch ms)
 INGEST_TARGET = 0.80
@@ -79,7 +80,7 @@ def _die_with_parent() -> None:
         import ctypes
 
         ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, signal.SIGTERM)  # PR_SET_PDEATHSIG
-    except Exception:
+    except Exception:  # noqa: BLE001, S110  best effort: without it the clean-up below still runs
         pass
 
 
@@ -246,8 +247,8 @@ def role_pub(a: argparse.Namespace) -> int:
         for b in range(a.batches):
             variants = []
             for _ in range(8):
-                items = ",".join('{"v":%.3f,"ts":%d}' % (100.0 + rng.gauss(0.0, 1.0),
-                                                          T0_MS + (b * a.batch + q) * 1000)
+                items = ",".join(f'{{"v":{100.0 + rng.gauss(0.0, 1.0):.3f},'
+                                 f'"ts":{T0_MS + (b * a.batch + q) * 1000}}}'
                                  for q in range(a.batch))
                 variants.append(("[" + items + "]").encode())
             for i, topic in enumerate(topics):
@@ -357,8 +358,8 @@ def role_paced(a: argparse.Namespace) -> int:
         level = 100.0 + (a.step if rounds_done % 2 == 1 else 0.0)
         value = level + rng.gauss(0.0, 1.0)
         t_pub = time.time()
-        ts_ms = int(round(t_pub * 1000.0))
-        c.publish(topics[i], '{"v": %.3f, "ts": %d}' % (value, ts_ms), qos=1)
+        ts_ms = round(t_pub * 1000.0)
+        c.publish(topics[i], f'{{"v": {value:.3f}, "ts": {ts_ms}}}', qos=1)
         log.append((i, ts_ms, t_pub))
     time.sleep(0.5)
     Path(a.out).write_text(json.dumps(log))
@@ -419,7 +420,7 @@ class Bench:
         for c in self.clients:
             try:
                 c.stop()
-            except Exception:
+            except Exception:  # noqa: BLE001, S110  clean-up goes on past a failed stop
                 pass
         for p in self.procs:
             if p.poll() is None:
@@ -429,12 +430,12 @@ class Bench:
                 except subprocess.TimeoutExpired:
                     p.kill()
                     p.wait(timeout=10)
-                except Exception:
+                except Exception:  # noqa: BLE001, S110  clean-up goes on past a failed stop
                     pass
         for b in self.brokers:
             try:
                 b.stop()
-            except Exception:
+            except Exception:  # noqa: BLE001, S110  clean-up goes on past a failed stop
                 pass
         shutil.rmtree(self.tmp, ignore_errors=True)
 
@@ -457,7 +458,7 @@ class Bench:
     def helper(self, *args: str) -> subprocess.Popen[str]:
         p = subprocess.Popen([sys.executable, str(Path(__file__).resolve()), *args],
                              stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True,
-                             preexec_fn=_die_with_parent)
+                             preexec_fn=_die_with_parent)  # noqa: PLW1509  a prctl call only, no locks
         self.procs.append(p)
         return p
 
@@ -489,10 +490,10 @@ class Bench:
             cmd = [sys.executable, *python_args, "-m", "shiftwatch"]
         else:
             cmd = shiftwatch_command()
-        log = open(cfg.with_suffix(".log"), "ab")
-        p = subprocess.Popen(cmd + ["run", "--config", str(cfg)], stdout=log, stderr=subprocess.STDOUT,
-                             preexec_fn=_die_with_parent)
-        log.close()
+        with open(cfg.with_suffix(".log"), "ab") as log:
+            p = subprocess.Popen(cmd + ["run", "--config", str(cfg)], stdout=log,
+                                 stderr=subprocess.STDOUT,
+                                 preexec_fn=_die_with_parent)  # noqa: PLW1509  a prctl call only
         self.procs.append(p)
         return p
 
@@ -688,7 +689,7 @@ def ingest_bare(bench: Bench, streams: int, n: int) -> dict[str, float]:
 def ingest_daemon(bench: Bench, streams: int, n: int) -> dict[str, float]:
     b = bench.broker()
     try:
-        d, port, cfg = bench.start_daemon(b, "swi")
+        d, port, _cfg = bench.start_daemon(b, "swi")
         pubs = start_publishers(bench, b, streams, n)
         go(pubs)
         # Poll the daemon's processed-messages counter (one sample each): first poll that
@@ -728,7 +729,7 @@ def ingest_daemon(bench: Bench, streams: int, n: int) -> dict[str, float]:
 
 # ---------------------------------------------------------------- part 2
 def parse_ms(text: str) -> int:
-    return int(round(datetime.fromisoformat(text.replace("Z", "+00:00")).timestamp() * 1000.0))
+    return round(datetime.fromisoformat(text).timestamp() * 1000.0)
 
 
 def latency(bench: Bench, rounds: int, *, extra_streams: int = 0, scrapers: int = 0) -> dict[str, Any]:
@@ -742,7 +743,7 @@ def latency(bench: Bench, rounds: int, *, extra_streams: int = 0, scrapers: int 
     duration = warmup + rounds * round_s + 1.0
     b = bench.broker()
     try:
-        d, port, cfg = bench.start_daemon(b, "swl")
+        d, port, _cfg = bench.start_daemon(b, "swl")
         alerts: list[tuple[float, dict[str, Any]]] = []
         raw: dict[tuple[str, int], float] = {}
         lock = threading.Lock()
@@ -762,7 +763,7 @@ def latency(bench: Bench, rounds: int, *, extra_streams: int = 0, scrapers: int 
 
             filler = PlainClient(b.url, f"bench-filler-{bench.uid()}").start()
             ms = int(time.time() * 1000)
-            infos = [filler.client.publish(f"bench/z{i:05d}/v", '{"v": 1.0, "ts": %d}' % ms, qos=1)
+            infos = [filler.client.publish(f"bench/z{i:05d}/v", f'{{"v": 1.0, "ts": {ms}}}', qos=1)
                      for i in range(extra_streams)]
             for info in infos:
                 info.wait_for_publish(60)
@@ -834,7 +835,7 @@ def pct(xs: list[float], q: float) -> float:
 def memory(bench: Bench, streams: int, batch: int, batches: int) -> dict[str, float]:
     b = bench.broker()
     try:
-        d, port, cfg = bench.start_daemon(b, "swm")
+        d, port, _cfg = bench.start_daemon(b, "swm")
         time.sleep(1.0)
         idle_rss, _ = rss_kb(d.pid)
         n_msgs = streams * batches
@@ -1043,7 +1044,7 @@ def main_bench(quick: bool, parts: tuple[str, ...] = PARTS) -> int:
                          f"RSS after a full scrape {mm['scraped_mb']:.1f} MB; "
                          f"{(mm['rss_mb'] - mm['idle_mb']) * 1024 / 10_000:.1f} kB per stream; fed in "
                          f"{mm['feed_s']:.0f} s; daemon stop {mm['stop_s']:.1f} s exit {mm['exit']:.0f}")
-    except BaseException as exc:
+    except BaseException as exc:  # noqa: BLE001  an aborted run (Ctrl-C too) still prints its table
         rows.append(("benchmark", f"aborted: {exc!r}"[:60], "", "", False))
     finally:
         signal.alarm(0)

@@ -96,13 +96,13 @@ class Rig:
         for part in (self.pub, self.viewer):
             try:
                 part.stop()
-            except Exception:
+            except Exception:  # noqa: BLE001, S110  clean-up goes on past a failed stop
                 pass
         if self.daemon.proc is not None and self.daemon.proc.poll() is None:
             self.daemon.proc.send_signal(signal.SIGCONT)
             try:
                 self.daemon.stop()
-            except Exception:
+            except Exception:  # noqa: BLE001  whatever failed the stop, the daemon is killed
                 self.daemon.proc.kill()
         self.broker.stop()
 

@@ -384,7 +384,7 @@ def part_slow_clients(tmp: Path, runs: int, clients: int, *, nofile: int | None 
 
 
 def slow_text(runs: list[dict[str, Any]]) -> tuple[str, bool]:
-    tot = lambda k: sum(float(r.get(k, 0)) for r in runs)  # noqa: E731
+    tot = lambda k: sum(float(r.get(k, 0)) for r in runs)
     text = (f"{len(runs)} runs: daemon alive {tot('alive'):.0f}, clean exit "
             f"{sum(r['exit'] == 0 for r in runs)}; scrapes answered {tot('scrapes'):.0f}, failed "
             f"{tot('scrape_failures'):.0f}; reconnected after a broker restart {tot('reconnected'):.0f}; "
@@ -426,11 +426,11 @@ def part_two_instances(tmp: Path, runs: int) -> dict[str, Any]:
                 sender.send("bench/s1/v", {"v": 10.0 + 0.01 * (k % 7), "ts": t0 + k})
             sender.close()
             t["sent"] += n
-            wait_until(lambda: metric(scrape(port_a), "shiftwatch_samples_total", stream="bench/s1/v") == n, 60)
+            wait_until(lambda: metric(scrape(port_a), "shiftwatch_samples_total", stream="bench/s1/v") == n, 60)  # noqa: B023  called at once
             a.proc.kill()
             a.proc.wait()
             a = Piped(shiftwatch_command(), cfg_a, port_a)
-            wait_until(lambda: metric(scrape(port_a), "shiftwatch_samples_total", stream="bench/s1/v") == n, 30)
+            wait_until(lambda: metric(scrape(port_a), "shiftwatch_samples_total", stream="bench/s1/v") == n, 30)  # noqa: B023  called at once
             t["restored"] += int(metric(scrape(port_a), "shiftwatch_samples_total", stream="bench/s1/v") or 0)
             a.stop()
         finally:

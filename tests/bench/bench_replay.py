@@ -156,7 +156,7 @@ def main() -> int:
     big_s = 60_000 if opts.quick else 250_000
     rows: list[tuple[str, str, str, str, bool]] = []
     notes: list[str] = []
-    say = lambda msg: print(f"[{time.strftime('%H:%M:%S')}] {msg}", file=sys.stderr, flush=True)  # noqa: E731
+    say = lambda msg: print(f"[{time.strftime('%H:%M:%S')}] {msg}", file=sys.stderr, flush=True)
     with tempfile.TemporaryDirectory(prefix="shiftwatch-bench-replay-", dir="/tmp") as tmp:
         d = Path(tmp)
         texts = value_texts()

@@ -184,7 +184,7 @@ def _curve_task(args: tuple[float, float, int, int]) -> tuple[float, float, np.n
     min_shift, a, trips, stream = args
     ks = [min_shift * m / 2.0 for m in DEFAULT_MULTIPLES]
     hs = [design_h(a, k) for k in ks]
-    state = 20261203 + 7919 * stream + int(1000 * min_shift) * 31 + int(round(math.log10(a) * 100))
+    state = 20261203 + 7919 * stream + int(1000 * min_shift) * 31 + round(math.log10(a) * 100)
     r = simulate_runs(ks, hs, max_samples=trips * a * 2.0, max_runs=trips, state=state)
     return min_shift, a, r
 

@@ -174,10 +174,9 @@ def river_side_by_side(n_ic: int, reps: int) -> dict[str, dict[str, float]]:
                 d = math.inf
                 for i, v in enumerate(50.0 + 0.5 * z):
                     det.update(float(v))
-                    if det.drift_detected:
-                        if i >= PRE + 120:
-                            d = i - (PRE + 120) + 1
-                            break
+                    if det.drift_detected and i >= PRE + 120:
+                        d = i - (PRE + 120) + 1
+                        break
                 ds.append(d)
             res[f"delay_{shift}"] = float(np.median(ds))
         out[name] = res

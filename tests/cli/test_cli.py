@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import json
 import re
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
@@ -19,7 +19,7 @@ from shiftwatch.core.engine import RECORD_FIELDS, StreamEngine
 from shiftwatch.core.timefmt import format_time, parse_time
 from shiftwatch.display import alert_summary
 
-T0 = datetime(2026, 3, 2, 6, 0, tzinfo=timezone.utc).timestamp()
+T0 = datetime(2026, 3, 2, 6, 0, tzinfo=UTC).timestamp()
 
 
 def write_plant_csv(path: Path, *, n: int = 3000, epoch: bool = False) -> dict[str, int]:
@@ -82,7 +82,7 @@ def test_replay_gives_what_the_engine_gives(cli, tmp_path: Path) -> None:
                 for rec in eng.process([parse_time(r[0])], [float(r[2])]).records:
                     # The summary is the daemon's: the samples are from 2026-03-02, so it is dated.
                     expected.append({**rec.to_dict(), "summary": alert_summary(rec, today=0.0)})
-    key = lambda d: (d["as_of"], d["stream"], d["phase"] != "detected")  # noqa: E731
+    key = lambda d: (d["as_of"], d["stream"], d["phase"] != "detected")
     assert sorted(got, key=key) == sorted(expected, key=key)
     assert len(got) == 6
 
@@ -171,8 +171,8 @@ def test_fit_on_the_nile_series(cli, tmp_path: Path) -> None:
     csv_path = tmp_path / "nile.csv"
     with open(csv_path, "w") as f:
         f.write("time,stream,value\n")
-        for year, vol in zip(data["year"], data["volume"]):
-            f.write(f"{int(year)}-01-01T00:00:00Z,aswan/flow,{vol}\n")
+        f.writelines(f"{int(year)}-01-01T00:00:00Z,aswan/flow,{vol}\n"
+                     for year, vol in zip(data["year"], data["volume"]))
     res = cli("fit", str(csv_path), "--json")
     assert res.returncode == 0, res.stderr
     d = json.loads(res.stdout)

@@ -16,6 +16,7 @@ References used below:
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -333,7 +334,7 @@ def test_design_h_is_monotone_and_cached() -> None:
     from shiftwatch.core.arl import _design_h_cached
 
     hs = [design_h(a, 0.5) for a in (100.0, 1e3, 1e4, 1e5, 1e6)]
-    assert all(a < b for a, b in zip(hs, hs[1:]))
+    assert all(a < b for a, b in itertools.pairwise(hs))
     hits = _design_h_cached.cache_info().hits
     assert design_h(1e4, 0.5) == hs[2]  # bit-identical ...
     assert _design_h_cached.cache_info().hits == hits + 1  # ... because the cache served it

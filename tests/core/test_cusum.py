@@ -14,6 +14,7 @@ References used below:
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 
@@ -153,7 +154,7 @@ def test_batched_update_equals_naive_loop(
     t2 = CusumTest(k, h)
     bounds = sorted({0, len(z), *[c for c in cuts if c <= len(z)]})
     got_idx = -1
-    for a, b in zip(bounds, bounds[1:]):
+    for a, b in itertools.pairwise(bounds):
         r = t2.update(arr[a:b])
         if r >= 0:
             got_idx = a + r

@@ -15,7 +15,9 @@ import math
 
 import numpy as np
 import pytest
-from hypothesis import given, settings as hsettings, strategies as st
+from hypothesis import given
+from hypothesis import settings as hsettings
+from hypothesis import strategies as st
 from scipy import stats
 from scipy.signal import lfilter
 

@@ -8,6 +8,7 @@ Monte Carlo simulation of the in-control run length on iid N(0, 1).
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 
@@ -237,7 +238,7 @@ def test_design_arl_by_simulation(arl0, window, runs):
 
 def test_design_threshold_monotone_and_default_window():
     thresholds = [threshold_for_arl(a) for a in (1e2, 1e3, 1e4, 1e5, 604800, 1e7, 1e9)]
-    assert all(b > a for a, b in zip(thresholds, thresholds[1:]))
+    assert all(b > a for a, b in itertools.pairwise(thresholds))
     t = GlrTest.design(604800)
     assert t.window == DEFAULT_WINDOW and t.lags == default_lags(DEFAULT_WINDOW)
     assert t.threshold == threshold_for_arl(604800)

@@ -17,6 +17,7 @@ References used below:
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 
@@ -67,7 +68,7 @@ def _feed(test: MultiCusumTest, z: np.ndarray, cuts: list[int]) -> list[tuple[in
     """Feed ``z`` in pieces split at ``cuts``; reset after every trip."""
     out = []
     edges = sorted({0, z.size, *[c for c in cuts if 0 <= c <= z.size]})
-    for a, b in zip(edges, edges[1:]):
+    for a, b in itertools.pairwise(edges):
         pos = a
         while pos < b:
             i = test.update(z[pos:b])
@@ -153,7 +154,7 @@ def test_one_chart_bank_is_exactly_cusum_test(
     trips_bank = _feed(bank, z, cuts)
     trips_single = []
     edges = sorted({0, z.size, *cuts})
-    for a, b in zip(edges, edges[1:]):
+    for a, b in itertools.pairwise(edges):
         pos = a
         while pos < b:
             i = single.update(z[pos:b])

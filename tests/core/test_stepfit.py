@@ -74,7 +74,7 @@ def brute_rss(y: np.ndarray, k_lo: int, k_hi: int) -> np.ndarray:
 
 def vectorised_supf(y: np.ndarray, k_lo: int, k_hi: int) -> np.ndarray:
     """sup-F over splits k_lo..k_hi for each row of y (independent of stepfit)."""
-    r, n = y.shape
+    _r, n = y.shape
     yc = y - y.mean(axis=1, keepdims=True)
     c = np.cumsum(yc, axis=1)
     k = np.arange(k_lo, k_hi + 1)
@@ -111,7 +111,7 @@ def test_bai_cdf_known_values() -> None:
     import scipy.integrate
 
     h = 1e-5
-    dens = lambda x: (bai_g(x + h) - bai_g(max(x - h, 0.0))) / (x + h - max(x - h, 0.0))  # noqa: E731
+    dens = lambda x: (bai_g(x + h) - bai_g(max(x - h, 0.0))) / (x + h - max(x - h, 0.0))
     half, _ = scipy.integrate.quad(dens, 0.0, 200.0, limit=200)
     assert 2 * half == pytest.approx(1.0, abs=1e-4)
     # Symmetry, centre and monotonicity of a CDF of a symmetric law.
@@ -432,7 +432,7 @@ def test_exact_fit_equals_brute_force_loop(case: tuple[np.ndarray, int]) -> None
 
 def _lstsq_rss(k: float, y: np.ndarray) -> float:
     """RSS of the two-level regression with the split at k (scipy.linalg.lstsq)."""
-    ki = int(round(float(np.atleast_1d(k)[0])))
+    ki = round(float(np.atleast_1d(k)[0]))
     n = y.size
     x = np.zeros((n, 2))
     x[:ki, 0] = 1.0
@@ -463,7 +463,7 @@ def test_exact_fit_equals_scipy_brute(
         _lstsq_rss, (slice(1, n, 1),), args=(y,), finish=None, full_output=True
     )
     fit = fit_step(y)
-    assert fit.index == int(round(float(np.atleast_1d(k_best)[0])))
+    assert fit.index == round(float(np.atleast_1d(k_best)[0]))
     assert fit.rss == pytest.approx(rss_best, rel=1e-7)
     # And the two-pass RSS is accurate, not just consistent: direct sum.
     direct = brute_rss(y, fit.index, fit.index)[0]

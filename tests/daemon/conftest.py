@@ -13,8 +13,9 @@ import subprocess
 import threading
 import time
 import urllib.request
+from collections.abc import Callable, Iterator
 from pathlib import Path
-from typing import Any, Callable, Iterator
+from typing import Any
 
 import pytest
 
@@ -97,8 +98,8 @@ class DaemonProcess:
         self.log_path = config.with_suffix(".log")
         self.run_args: list[str] = []  # more options of `shiftwatch run`, e.g. --log-format json
 
-    def start(self, timeout: float = 20.0) -> "DaemonProcess":
-        self.log = open(self.log_path, "a")
+    def start(self, timeout: float = 20.0) -> DaemonProcess:
+        self.log = open(self.log_path, "a")  # noqa: SIM115  the daemon's output while it runs; closed by stop()
         offset = self.log_path.stat().st_size
         self.proc = subprocess.Popen(self.command + ["run", "--config", str(self.config), *self.run_args],
                                      stdout=self.log, stderr=subprocess.STDOUT, text=True)

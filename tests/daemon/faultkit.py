@@ -21,13 +21,13 @@ import threading
 import time
 import urllib.request
 from collections import deque
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 from prometheus_client.parser import text_string_to_metric_families
 
-from shiftwatch.broker import wait_until
+from shiftwatch.broker import wait_until  # noqa: F401  re-exported for the fault tests
 from shiftwatch.mqtt import PlainClient
 
 T0 = 1_790_000_000.0  # sample times start here (2026-09-21), one second apart
@@ -79,7 +79,7 @@ class TallyPublisher:
         if up:
             self._reconnected = True
 
-    def start(self) -> "TallyPublisher":
+    def start(self) -> TallyPublisher:
         self.client.start()
         return self
 
@@ -138,7 +138,7 @@ class AlertViewer:
         with self._lock:
             self.records.append(json.loads(payload))
 
-    def start(self) -> "AlertViewer":
+    def start(self) -> AlertViewer:
         self.client.start()
         return self
 
@@ -252,7 +252,7 @@ class SlowClients:
         self.closed_by_server += 1
         s.close()
 
-    def run(self, seconds: float, between: callable = None) -> None:  # type: ignore[valid-type]
+    def run(self, seconds: float, between: Callable[[], object] | None = None) -> None:
         end = time.monotonic() + seconds
         while self.open and time.monotonic() < end:
             self.trickle()

@@ -213,10 +213,9 @@ class KillRun:
 
     def _start_daemon(self, timeout: float = 30.0) -> None:
         offset = self.log_path.stat().st_size if self.log_path.exists() else 0
-        log = open(self.log_path, "ab")
-        self.proc = subprocess.Popen(self.command + ["run", "--config", str(self.cfg)],
-                                     stdout=log, stderr=subprocess.STDOUT)
-        log.close()
+        with open(self.log_path, "ab") as log:
+            self.proc = subprocess.Popen(self.command + ["run", "--config", str(self.cfg)],
+                                         stdout=log, stderr=subprocess.STDOUT)
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             if self.proc.poll() is not None:
@@ -374,7 +373,7 @@ class KillRun:
         for c in self.clients:
             try:
                 c.stop()
-            except Exception:  # noqa: BLE001 - cleanup must go on
+            except Exception:  # noqa: BLE001, S110  clean-up must go on
                 pass
         if self.proc is not None and self.proc.poll() is None:
             self.proc.kill()

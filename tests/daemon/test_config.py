@@ -56,8 +56,8 @@ def test_the_shipped_schema_is_generated_from_the_same_definitions() -> None:
     ("detection: {false_alarm_every: soon}\n",
      "plant.yaml:1: detection.false_alarm_every: not a duration: 'soon'"),
     ("metrics: {listen: nowhere}\n",
-     "plant.yaml:1: metrics.listen: must be HOST:PORT (e.g. \"127.0.0.1:9650\", a port of 0 to 65535), "
-     "got 'nowhere'"),
+     ("plant.yaml:1: metrics.listen: must be HOST:PORT (e.g. \"127.0.0.1:9650\", a port of 0 to 65535), "
+      "got 'nowhere'")),
     ("alerts: {topic_prefix: 'a/+/b'}\n", "plant.yaml:1: alerts.topic_prefix: must be a plain topic"),
     ('alerts: {topic_prefix: "a/\\x01b"}\n', "plant.yaml:1: alerts.topic_prefix: must be a plain topic"),
     ("alerts: {topic_prefix: '" + "l/" * 32 + "x'}\n",

@@ -28,7 +28,15 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from shiftwatch import decode as decode_module
-from shiftwatch.decode import REASONS, Decoded, DecodeProblem, Reading, decode, decode_many, stream_name
+from shiftwatch.decode import (
+    REASONS,
+    Decoded,
+    DecodeProblem,
+    Reading,
+    decode,
+    decode_many,
+    stream_name,
+)
 
 from .fuzz_strategies import JSON_VALUES, PATHS, PROPERTY, SCALARS, SENML_RECORDS, TOKENS, is_safe
 

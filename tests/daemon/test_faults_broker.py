@@ -93,7 +93,8 @@ def unread_bytes_from(port: int) -> int:
     most = 0
     for table in ("/proc/net/tcp", "/proc/net/tcp6"):
         try:
-            lines = open(table).read().splitlines()[1:]
+            with open(table) as f:
+                lines = f.read().splitlines()[1:]
         except OSError:
             continue
         for line in lines:

@@ -59,9 +59,9 @@ def served(metrics: Metrics) -> Iterator[MetricsServer]:
 
 
 def watching(**over: object) -> StreamStats:
-    base = dict(samples_total=1500, rejected_total={"nan": 3, "duplicate_time": 1},
-                records_total={"detected": 2, "confirmed": 1}, level=500.25, sigma=0.4,
-                statistic=3.5, threshold=16.2, last_shift_at=1764633600.5, state="watching")
+    base = {"samples_total": 1500, "rejected_total": {"nan": 3, "duplicate_time": 1},
+                "records_total": {"detected": 2, "confirmed": 1}, "level": 500.25, "sigma": 0.4,
+                "statistic": 3.5, "threshold": 16.2, "last_shift_at": 1764633600.5, "state": "watching"}
     base.update(over)
     return StreamStats(**base)  # type: ignore[arg-type]
 

@@ -15,7 +15,6 @@ from __future__ import annotations
 import contextlib
 import os
 import socket
-import time
 import urllib.request
 from collections.abc import Iterator
 from pathlib import Path
@@ -28,7 +27,6 @@ from shiftwatch.metrics import MAX_CONNECTIONS, Metrics
 
 from .faultkit import CgroupUnavailable, SlowClients, daemon_fds, daemon_threads
 from .faultkit import pids_cgroup as faultkit_pids_cgroup
-
 
 
 def metric(text: str, name: str, **labels: str) -> float | None:

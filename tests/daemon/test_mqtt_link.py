@@ -24,8 +24,6 @@ from shiftwatch.config import BrokerConfig
 from shiftwatch.mqtt import Inbox, Message, MqttLink, PlainClient, _ReadBuffer
 
 
-
-
 def make_link(broker: MosquittoBroker, inbox: Inbox, receive_maximum: int, *, client_id: str = "link-window",
               on_drop: Callable[[str], None] = lambda reason: None) -> MqttLink:
     cfg = BrokerConfig(url=broker.url, client_id=client_id, receive_maximum=receive_maximum)

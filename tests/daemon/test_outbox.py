@@ -124,7 +124,7 @@ def test_items_survive_a_killed_process(tmp_path: Path) -> None:
     assert keys[:30] == returned
     assert keys == sorted(keys)
     for n, item in enumerate(pending):
-        assert item.topic == "alerts/%d" % n and item.payload == b"payload %d" % n
+        assert item.topic == f"alerts/{n}" and item.payload == b"payload %d" % n
     assert all(name.endswith(".msg") for name in files(tmp_path))  # leftovers cleaned
 
 
@@ -215,7 +215,7 @@ def test_concurrent_add_and_remove(tmp_path: Path) -> None:
                     added.append(item)
                 if i % 2:
                     box.remove(item.key)  # as an on_publish callback would
-        except BaseException as exc:  # pragma: no cover - reported below
+        except BaseException as exc:  # noqa: BLE001  # pragma: no cover - reported below
             errors.append(exc)
 
     threads = [threading.Thread(target=producer, args=(n,)) for n in range(4)]

@@ -165,10 +165,10 @@ def test_garbage_bytes_are_moved_aside(tmp_path: Path, caplog: pytest.LogCapture
 @pytest.mark.parametrize("content", [
     b"", b"\n", b"[1, 2]\n", b'{"format": "other"}\n',
     b'{"format": "shiftwatch-state", "schema_version": 1, "streams": 1, "meta": {}}\n[1, 2]\n{"end": 1}\n',
-    b'{"format": "shiftwatch-state", "schema_version": 1, "streams": 1, "meta": {}}\n'
-    b'["s", {"v": {"$f64": "!!!"}}]\n{"end": 1}\n',
-    b'{"format": "shiftwatch-state", "schema_version": 1, "streams": 1, "meta": {}}\n'
-    b'["s", {"v": {"$f64": "AAAA"}}]\n{"end": 1}\n',  # 3 bytes: not whole floats
+    (b'{"format": "shiftwatch-state", "schema_version": 1, "streams": 1, "meta": {}}\n'
+     b'["s", {"v": {"$f64": "!!!"}}]\n{"end": 1}\n'),
+    (b'{"format": "shiftwatch-state", "schema_version": 1, "streams": 1, "meta": {}}\n'
+     b'["s", {"v": {"$f64": "AAAA"}}]\n{"end": 1}\n'),  # 3 bytes: not whole floats
     b'{"format": "shiftwatch-state", "schema_version": 1, "streams": 0, "meta": {}}\n{"end": 5}\n',
     b'{"format": "shiftwatch-state", "schema_version": 1, "streams": -1, "meta": {}}\n',
     b'\xff\xfe{}\n',

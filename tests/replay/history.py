@@ -14,9 +14,9 @@ from __future__ import annotations
 
 import csv
 import json
-from datetime import datetime, timezone
+from collections.abc import Iterable
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Iterable
 
 import numpy as np
 
@@ -24,7 +24,7 @@ from shiftwatch.core.engine import AlertRecord, StreamEngine
 from shiftwatch.core.timefmt import format_time
 from shiftwatch.decode import EPOCH_MS_ABOVE
 
-T0 = datetime(2026, 3, 2, 6, 0, tzinfo=timezone.utc).timestamp()
+T0 = datetime(2026, 3, 2, 6, 0, tzinfo=UTC).timestamp()
 #: stream -> (level, sigma, step in sigmas, sample index of the step)
 STREAMS = {
     "brackenfield/line2/filler/head1/fill": (500.0, 0.8, 1.5, 1400),
@@ -56,7 +56,7 @@ def time_text(t: float, form: str) -> str:
     if form == "epoch_s":
         return f"{t:.3f}"
     if form == "epoch_ms":
-        return str(int(round(t * 1000)))
+        return str(int(round(t * 1000)))  # noqa: RUF046  t may be a NumPy scalar
     raise ValueError(form)
 
 

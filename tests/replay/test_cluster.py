@@ -4,7 +4,6 @@ worker processes on the loopback interface, against the replay in one process.""
 from __future__ import annotations
 
 import json
-
 from pathlib import Path
 
 import numpy as np

@@ -9,7 +9,7 @@ layout, or fed to the engines in one batch here.
 from __future__ import annotations
 
 import json
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 from zoneinfo import ZoneInfo
 
@@ -21,8 +21,16 @@ import pytest
 
 from shiftwatch.replay import read_long_csv, replay_files
 
-from .history import (STREAMS, json_lines, one_batch_records, printed_records, readings, stdlib_long,
-                      write_long, write_wide)
+from .history import (
+    STREAMS,
+    json_lines,
+    one_batch_records,
+    printed_records,
+    readings,
+    stdlib_long,
+    write_long,
+    write_wide,
+)
 
 
 @pytest.fixture(scope="module")
@@ -53,7 +61,7 @@ def test_epoch_milliseconds_are_read_as_the_daemon_reads_them(cli, history, tmp_
 def test_times_without_an_offset_need_the_files_time_zone(cli, tmp_path: Path) -> None:
     # Local times in Europe/Berlin across the start of summer time (2026-03-29, 02:00 -> 03:00),
     # written by zoneinfo; with --timezone they are the same instants as the UTC file's.
-    t0 = datetime(2026, 3, 29, 0, 10, tzinfo=timezone.utc).timestamp()
+    t0 = datetime(2026, 3, 29, 0, 10, tzinfo=UTC).timestamp()
     data = readings(4000, random_state=4, t0=t0)
     zone = ZoneInfo("Europe/Berlin")
     stamps = [datetime.fromtimestamp(t, zone).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3]

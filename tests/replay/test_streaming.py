@@ -17,7 +17,14 @@ import pytest
 
 from shiftwatch.replay import KEEP_PROBLEMS, replay_files
 
-from .history import json_lines, one_batch_records, printed_records, readings, stdlib_long, write_long
+from .history import (
+    json_lines,
+    one_batch_records,
+    printed_records,
+    readings,
+    stdlib_long,
+    write_long,
+)
 
 
 def messy_history(path: Path, n: int = 4000) -> Path:

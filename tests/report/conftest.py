@@ -11,10 +11,10 @@ the file ends.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 import pytest
@@ -22,7 +22,7 @@ import pytest
 from shiftwatch.core.timefmt import format_time
 from shiftwatch.demo import RATE_HZ, SENSORS
 
-T0 = datetime(2026, 3, 2, 6, 0, tzinfo=timezone.utc).timestamp()
+T0 = datetime(2026, 3, 2, 6, 0, tzinfo=UTC).timestamp()
 N = 3000  # samples per stream
 STRETCH = 40  # the demo's step times (seconds) times this: sample index of the step
 EXCURSION = ("brackenfield/line2/filler/head3/fill", 1200, 6, 3.0)  # stream, start, length, sigmas

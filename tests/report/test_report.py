@@ -15,8 +15,9 @@ import struct
 import subprocess
 import sys
 import termios
+from collections.abc import Callable
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Callable
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd

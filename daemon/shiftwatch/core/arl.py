@@ -30,6 +30,7 @@ from __future__ import annotations
 
 import functools
 import math
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -59,9 +60,11 @@ _MAX_NODES = 400
 # --------------------------------------------------------------------------
 
 
-def _upper_tail(x: FloatArray) -> FloatArray:
+def _upper_tail(x: NDArray[np.floating[Any]]) -> FloatArray:
     """P(N(0,1) > x), accurate in the far tail (via erfc)."""
-    out: FloatArray = 0.5 * _ERFC(np.asarray(x, dtype=np.float64) / _SQRT2).astype(np.float64)
+    # np.frompyfunc's result is typed as a scalar or an object array; here it is the array.
+    erfc = np.asarray(_ERFC(np.asarray(x, dtype=np.float64) / _SQRT2))
+    out: FloatArray = 0.5 * erfc.astype(np.float64)
     return out
 
 
@@ -124,7 +127,7 @@ class _Chain:
     chain and allows the subtraction-free solve.
     """
 
-    __slots__ = ("a", "exit", "k", "h", "mean", "nodes", "weights")
+    __slots__ = ("a", "exit", "h", "k", "mean", "nodes", "weights")
 
     def __init__(self, k: float, h: float, mean: float) -> None:
         m = _n_nodes(h)
@@ -396,7 +399,7 @@ def _quantile_cached(k: float, h: float, mu: float, q: float, sides: int) -> flo
     # geometric beyond the mean, so ~ARL * (-log(1 - q) + 10) is ample.
     arl = cusum_arl(k, h, mu, sides=sides)
     bound = max(2.0, arl * (-math.log1p(-q) + 10.0))
-    nbits = min(200, max(1, int(math.ceil(math.log2(bound))) + 1))
+    nbits = min(200, max(1, math.ceil(math.log2(bound)) + 1))
     powers = [_survival_powers(c, nbits) for c in chains]
     vecs = [np.ones(c.a.shape[0]) for c in chains]
     n = 0  # invariant: P(RL > n) > 1 - q
@@ -614,7 +617,8 @@ def _design_h_cached(arl0: float, k: float) -> float:
 
 def _two_sided_zero_state(k: float, h: float) -> float:
     # In control the sides are mirror images: 1/ARL = 2/ARL+.
-    return 0.5 * _Chain(k, h, 0.0).expected_run_lengths()[0]
+    out: float = 0.5 * _Chain(k, h, 0.0).expected_run_lengths()[0]
+    return out
 
 
 def arl_table(

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, replace
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -319,7 +320,7 @@ class BaselineSums:
     (5100, True, True)
     """
 
-    __slots__ = ("n", "su", "suu", "slag", "see", "tail", "sdt", "ndt", "prev_u", "prev_t")
+    __slots__ = ("n", "ndt", "prev_t", "prev_u", "sdt", "see", "slag", "su", "suu", "tail")
 
     def __init__(self) -> None:
         self.reset()
@@ -336,9 +337,10 @@ class BaselineSums:
                 self.prev_u, self.prev_t]
 
     @classmethod
-    def from_list(cls, d: list[float | int | None]) -> "BaselineSums":
+    def from_list(cls, d: list[Any]) -> BaselineSums:
+        """Rebuild from :meth:`to_list` (as read back from a saved state)."""
         out = cls()
-        (n, out.su, out.suu, out.slag, out.see, tail, out.sdt, ndt, out.prev_u, out.prev_t) = d  # type: ignore[assignment]
+        (n, out.su, out.suu, out.slag, out.see, tail, out.sdt, ndt, out.prev_u, out.prev_t) = d
         out.n, out.tail, out.ndt = int(n or 0), int(tail or 0), int(ndt or 0)
         return out
 

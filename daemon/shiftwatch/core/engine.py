@@ -35,8 +35,9 @@ from __future__ import annotations
 import hashlib
 import math
 from collections import Counter
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field, replace
-from typing import Any, Iterable, NamedTuple, Sequence
+from typing import Any, ClassVar, NamedTuple
 
 import numpy as np
 from numpy.typing import NDArray
@@ -50,8 +51,8 @@ from shiftwatch.core.baseline import (
     sigma_floor,
 )
 from shiftwatch.core.events import NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
-from shiftwatch.core.selfstart import SelfStart
 from shiftwatch.core.screen import screen_samples
+from shiftwatch.core.selfstart import SelfStart
 from shiftwatch.core.sequential import SequentialTest
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.core.stepfit import StepFit, StepFitter
@@ -231,9 +232,9 @@ class _NoCounts(Counter[str]):
     def _refuse(self, *args: Any, **kwargs: Any) -> Any:
         raise TypeError("this shared empty counter is read-only")
 
-    __setitem__ = subtract = setdefault = __ior__ = __iadd__ = __isub__ = _refuse  # type: ignore[assignment]
+    __setitem__ = subtract = setdefault = __ior__ = __iadd__ = __isub__ = _refuse
 
-    def update(self, iterable: Any = None, /, **kwds: Any) -> None:  # type: ignore[override]
+    def update(self, iterable: Any = None, /, **kwds: Any) -> None:
         if iterable or kwds:  # Counter() itself calls update() with nothing
             self._refuse()
 
@@ -268,7 +269,7 @@ class Window:
     [4.0, 9.0]
     """
 
-    __slots__ = ("keep", "_x", "_t", "_n")
+    __slots__ = ("_n", "_t", "_x", "keep")
 
     def __init__(self, keep: int, slack: int = 8) -> None:
         self.keep = keep
@@ -356,7 +357,7 @@ class _WindowStore:
     """
 
     BLOCK = 128
-    _stores: dict[int, _WindowStore] = {}
+    _stores: ClassVar[dict[int, _WindowStore]] = {}
 
     def __init__(self, capacity: int) -> None:
         self.capacity = capacity
@@ -475,11 +476,11 @@ class StreamEngine:
 
     # One engine per stream, thousands of them in the daemon: no per-instance dict.
     __slots__ = (
-        "stream", "settings", "unit", "_state", "_window", "_fitter", "_sums", "_baseline",
-        "_test", "_test_arl0", "_test_shift_z", "_test_n_ref", "_test_n_level", "_prev_r", "_pending", "_prev_out",
-        "_event", "_unfolded", "_watch_kept", "_next_refine", "_refine_block", "_last_time",
-        "samples_total", "rejected_total", "records_total", "last_shift_at", "_last_step",
-        "_young", "_provisional",
+        "_baseline", "_event", "_fitter", "_last_step", "_last_time", "_next_refine", "_pending",
+        "_prev_out", "_prev_r", "_provisional", "_refine_block", "_state", "_sums", "_test",
+        "_test_arl0", "_test_n_level", "_test_n_ref", "_test_shift_z", "_unfolded", "_watch_kept",
+        "_window", "_young", "last_shift_at", "records_total", "rejected_total", "samples_total",
+        "settings", "stream", "unit",
     )
 
     def __init__(self, stream: str, settings: DetectionSettings | None = None, *,
@@ -854,7 +855,7 @@ class StreamEngine:
                 return i + 1
             if self._young_settled():
                 return i + 1
-        return t.shape[0]
+        return int(t.shape[0])
 
     def _feed_young(self, tv: float, xv: float, clip: float) -> bool:
         """One kept sample of the young phase; True when the test trips on it."""
@@ -1439,7 +1440,7 @@ class StreamEngine:
         except (KeyError, TypeError, AttributeError, IndexError, OverflowError) as exc:
             self._reset()
             if isinstance(exc, KeyError):
-                raise ValueError(f"{field_name}: {exc.args[0]} is missing from the saved state") from None
+                raise ValueError(f"{field_name}: {exc.args[0]} is missing from the saved state") from None  # noqa: TRY004  every bad field is a ValueError
             raise ValueError(f"{field_name}: malformed ({exc!r:.120})") from None
 
     def _record(self, ev: OpenEvent, fit: StepFit, phase: str, as_of: float,
@@ -1550,7 +1551,7 @@ def _baseline_from(d: dict[str, Any]) -> Baseline:
             raise ValueError(f"baseline.{k}: must lie in [-0.95, 0.95], got {floats[k]!r}")
     n = _count(d["n"], "baseline.n")
     n_level = _count(d.get("n_level", 0), "baseline.n_level")
-    return Baseline(n=n, n_level=n_level, **floats)  # type: ignore[arg-type]
+    return Baseline(n=n, n_level=n_level, **floats)
 
 
 #: The largest count a saved state may hold (doubles count exactly up to it).

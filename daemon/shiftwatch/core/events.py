@@ -88,7 +88,7 @@ class EventTrial:
     (24, 'no_step')
     """
 
-    __slots__ = ("sign", "d", "bound", "limit", "min_samples", "m", "s", "outcome")
+    __slots__ = ("bound", "d", "limit", "m", "min_samples", "outcome", "s", "sign")
 
     def __init__(self, sign: int, d: float, error_rate: float, limit: int,
                  min_samples: int = 1) -> None:
@@ -174,7 +174,7 @@ class EventTrial:
                 "min_samples": self.min_samples, "m": self.m, "s": self.s}
 
     @classmethod
-    def from_state(cls, state: dict[str, Any]) -> "EventTrial":
+    def from_state(cls, state: dict[str, Any]) -> EventTrial:
         """Rebuild a trial from :meth:`get_state`; ``ValueError`` names a bad field."""
         out = cls.__new__(cls)
         sign = state["sign"]
@@ -203,8 +203,10 @@ class OpenEvent:
     the step it finds began before the detection or after it.
     """
 
-    __slots__ = ("id", "detected_at", "test", "statistic", "threshold", "trip_len", "level_before",
-                 "level_after", "trial")
+    __slots__ = (
+        "detected_at", "id", "level_after", "level_before", "statistic", "test", "threshold",
+        "trial", "trip_len",
+    )
 
     def __init__(self, *, id: str, detected_at: float, test: str, statistic: float,
                  threshold: float, trip_len: int, level_before: float, level_after: float,
@@ -229,7 +231,7 @@ class OpenEvent:
                 "trial": self.trial.get_state()}
 
     @classmethod
-    def from_state(cls, e: dict[str, Any], new_trial: Any, level: float) -> "OpenEvent":
+    def from_state(cls, e: dict[str, Any], new_trial: Any, level: float) -> OpenEvent:
         """Rebuild from :meth:`get_state`.  Snapshots of earlier versions carry no
         trial and no level before: ``new_trial()`` makes a trial, whose count starts
         afresh, and ``level`` (the baseline's) is the reference."""
@@ -266,7 +268,7 @@ class StepMemory:
     (True, False)
     """
 
-    __slots__ = ("id", "shift_at", "level_before", "delta")
+    __slots__ = ("delta", "id", "level_before", "shift_at")
 
     def __init__(self, id: str, *, shift_at: float, level_before: float, delta: float) -> None:
         self.id = id
@@ -283,7 +285,7 @@ class StepMemory:
                 "delta": self.delta}
 
     @classmethod
-    def from_state(cls, d: dict[str, Any]) -> "StepMemory":
+    def from_state(cls, d: dict[str, Any]) -> StepMemory:
         vals = {}
         for key in ("shift_at", "level_before", "delta"):
             v = float(d[key])

@@ -41,8 +41,10 @@ window 400, real ARL / requested): 1.072 +- 0.011 at 200, 1.060 +- 0.011 at
 
 from __future__ import annotations
 
+import itertools
 import math
-from typing import Any, Sequence
+from collections.abc import Sequence
+from typing import Any
 
 import numpy as np
 
@@ -90,7 +92,7 @@ def default_lags(window: int) -> tuple[int, ...]:
     x = float(DENSE_LAGS)
     while True:
         x *= LAG_RATIO
-        lag = int(round(x))
+        lag = round(x)
         if lag >= window:
             break
         if lag > lags[-1]:
@@ -144,7 +146,7 @@ def _calibration_constant(window: int) -> float:
         return _CAL_A[keys[0]]
     if window >= keys[-1]:
         return _CAL_A[keys[-1]]
-    for lo, hi in zip(keys, keys[1:]):
+    for lo, hi in itertools.pairwise(keys):
         if lo <= window <= hi:
             w = (math.log(window) - math.log(lo)) / (math.log(hi) - math.log(lo))
             return (1 - w) * _CAL_A[lo] + w * _CAL_A[hi]

@@ -38,7 +38,8 @@ from __future__ import annotations
 
 import functools
 import math
-from typing import Any, ClassVar, Sequence
+from collections.abc import Sequence
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -120,7 +121,7 @@ class MultiCusumTest(SequentialTest):
 
     name: ClassVar[str] = "multi_cusum"
 
-    __slots__ = ("_bank", "_c", "_stat", "_dir", "_tripped")
+    __slots__ = ("_bank", "_c", "_dir", "_stat", "_tripped")
     _bank: _Bank
     _c: FloatArray  # upper sums of the charts, then the lower sums
     _stat: float
@@ -402,7 +403,7 @@ class MultiCusumTest(SequentialTest):
         m = bank.m
         ks, hs = bank.k_arr, bank.h_arr
         c = self._c
-        n = blk.shape[0]
+        n: int = blk.shape[0]
         for side in (0, 1):
             cs = c[side * m:(side + 1) * m]
             if np.any(cs[1:] > cs[0]) or np.any(cs >= hs):
@@ -467,9 +468,8 @@ class MultiCusumTest(SequentialTest):
             if first_c[side][t] <= 0.0:
                 continue  # every chart of this side is at zero
             for i in range(1, m):
-                st = tilde[side].get(i)
-                if st is None:
-                    st = signs[side] - bank.kramp[i, :n]
+                kept = tilde[side].get(i)
+                st = signs[side] - bank.kramp[i, :n] if kept is None else kept
                 low = float(st[: t + 1].min()) if t < n - 1 else float(st.min())
                 col[side * m + i] = st[t] - min(-float(cs[i]), low)
         self._c = col
@@ -522,7 +522,7 @@ class _Bank:
     from them, shared (read-only) by every :class:`MultiCusumTest` built with
     the same charts."""
 
-    __slots__ = ("ks", "hs", "m", "k_arr", "h_arr", "k_col", "h2", "h2_col", "ascending", "kramp")
+    __slots__ = ("ascending", "h2", "h2_col", "h_arr", "hs", "k_arr", "k_col", "kramp", "ks", "m")
 
     def __init__(self, ks: tuple[float, ...], hs: tuple[float, ...]) -> None:
         self.ks = ks
@@ -563,7 +563,7 @@ SMALL = 32
 
 def _float_list(name: str, values: Sequence[float]) -> list[float]:
     if isinstance(values, (str, bytes)):
-        raise ValueError(f"{name} must be a sequence of numbers, got {values!r}")
+        raise ValueError(f"{name} must be a sequence of numbers, got {values!r}")  # noqa: TRY004  as below
     try:
         return [float(v) for v in values]
     except (TypeError, ValueError):

@@ -9,8 +9,9 @@ counter and the replay command prints them.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any, Sequence
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -155,12 +156,12 @@ def screen_samples(
             raise ValueError(f"arrival times and times differ in length: {arr.shape[0]} != {n}")
         with np.errstate(invalid="ignore", over="ignore"):  # inf - inf: such times are rejected below
             lag = arr - t
-    if n and t.shape == v.shape and not bad_t.any() and not bad_v.any():
-        # Fast path for the common case: all finite, strictly increasing, within the limits.
-        if (t[0] > last_time and bool((np.abs(v) <= MAX_ABS_VALUE).all()) and np.isfinite(t[-1])
-                and (n == 1 or bool((t[1:] > t[:-1]).all()))
-                and (lag is None or _within(lag, max_ahead, max_behind))):
-            return Screened(times=t, values=v, kept=np.arange(n), rejected=[])
+    # Fast path for the common case: all finite, strictly increasing, within the limits.
+    if (n and t.shape == v.shape and not bad_t.any() and not bad_v.any()
+            and t[0] > last_time and bool((np.abs(v) <= MAX_ABS_VALUE).all()) and np.isfinite(t[-1])
+            and (n == 1 or bool((t[1:] > t[:-1]).all()))
+            and (lag is None or _within(lag, max_ahead, max_behind))):
+        return Screened(times=t, values=v, kept=np.arange(n), rejected=[])
     if t.shape != v.shape:
         raise ValueError(f"times and values differ in length: {t.shape[0]} != {v.shape[0]}")
     n = t.shape[0]

@@ -36,7 +36,6 @@ from __future__ import annotations
 import math
 from typing import Any
 
-
 #: While the autocorrelation cannot be told from none, the test's inputs allow for
 #: it at its estimate plus this many standard errors (0: at the estimate, so a new
 #: stream can alert early); the decision on an event allows for it at two.
@@ -84,8 +83,10 @@ class SelfStart:
     (10.0333, 3, 0.1528)
     """
 
-    __slots__ = ("sigma", "phi", "n", "mean", "ss", "df", "prev", "first", "lag", "last", "held",
-                 "pool_c1", "pool_n")
+    __slots__ = (
+        "df", "first", "held", "lag", "last", "mean", "n", "phi", "pool_c1", "pool_n", "prev",
+        "sigma", "ss",
+    )
 
     #: samples before the first standardised input when sigma is unknown (phi is estimated from 20 samples on)
     MIN_UNKNOWN = 5
@@ -187,7 +188,7 @@ class SelfStart:
             return 0.0
         return max(-0.95, min(0.95, (self._c1() + self.pool_c1) / self.ss))
 
-    def carry_over(self) -> "SelfStart":
+    def carry_over(self) -> SelfStart:
         """A new regime (the level stepped) of unknown spread: the spread and the
         autocorrelation go on being estimated from both regimes, pooled."""
         new = SelfStart(None, ss=self.ss, df=self.df)
@@ -241,7 +242,7 @@ class SelfStart:
                 "pool_n": self.pool_n}
 
     @classmethod
-    def from_state(cls, d: dict[str, Any]) -> "SelfStart":
+    def from_state(cls, d: dict[str, Any]) -> SelfStart:
         """Rebuild from :meth:`get_state`; ``ValueError`` names a bad field."""
         sigma = d["sigma"]
         out = cls(None if sigma is None else float(sigma), float(d["phi"]), float(d["ss"]), int(d["df"]))

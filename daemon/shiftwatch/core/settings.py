@@ -132,7 +132,7 @@ class DetectionSettings:
         return min(max(self.false_alarm_every / interval, 50.0), 1e9)
 
     @classmethod
-    def from_mapping(cls, data: dict[str, Any], base: "DetectionSettings | None" = None) -> "DetectionSettings":
+    def from_mapping(cls, data: dict[str, Any], base: DetectionSettings | None = None) -> DetectionSettings:
         """Build settings from a mapping (e.g. YAML), over ``base`` or the defaults.
 
         ``false_alarm_every``, ``max_time_ahead`` and ``max_time_behind`` accept a

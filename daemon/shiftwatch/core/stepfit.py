@@ -468,8 +468,8 @@ def _check_options(
         pi0 = float(trim)
         # Same rounding as strucchange's Fstats: from = floor(trim * n),
         # to = floor((1 - trim) * n), counted in samples before the split.
-        k_lo = max(k_lo, int(math.floor(pi0 * n)))
-        k_hi = min(k_hi, int(math.floor((1.0 - pi0) * n)))
+        k_lo = max(k_lo, math.floor(pi0 * n))
+        k_hi = min(k_hi, math.floor((1.0 - pi0) * n))
         if k_lo > k_hi:
             raise ValueError(
                 f"trim={trim!r} with min_segment={m} leaves no admissible split for n={n}"
@@ -606,7 +606,7 @@ def _bai_interval(
         halfwidth = math.inf
     else:
         halfwidth = q * s2 / (delta * delta * (1.0 - 1.0 / f_stat))
-    reach = n if halfwidth >= n else int(math.ceil(halfwidth))
+    reach = n if halfwidth >= n else math.ceil(halfwidth)
     return max(1, k - reach), min(n - 1, k + reach), halfwidth
 
 

@@ -336,8 +336,8 @@ def suggest(noise: Noise, *, within: float, false_alarm_every: float | None = No
     if not within > 0:
         raise ValueError(f"the delay asked for must be positive, got {within!r}")
     budget = false_alarm_every is None
-    every = budget_false_alarm_every(streams_in_plant, plant_false_alarms_per_day) if budget \
-        else float(false_alarm_every)  # type: ignore[arg-type]
+    every = budget_false_alarm_every(streams_in_plant, plant_false_alarms_per_day) \
+        if false_alarm_every is None else float(false_alarm_every)
     floor = noise.quantum / noise.sigma if noise.quantum > 0 else 0.0
     choice = None
     for m in MIN_SHIFT_GRID:

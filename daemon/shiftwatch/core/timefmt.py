@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import math
 import re
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 
 _DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(ms|s|m|min|h|d|w)?\s*$")
 _UNIT_SECONDS = {"ms": 0.001, "s": 1.0, "m": 60.0, "min": 60.0, "h": 3600.0, "d": 86400.0, "w": 604800.0}
@@ -24,13 +24,13 @@ def format_time(t: float) -> str:
     >>> format_time(1764633600.25)
     '2025-12-02T00:00:00.250Z'
     """
-    ms = int(round(t * 1000.0))
+    ms = int(round(t * 1000.0))  # noqa: RUF046  an int whatever t is, NumPy scalars too
     sec, milli = divmod(ms, 1000)
-    dt = datetime.fromtimestamp(sec, tz=timezone.utc)
+    dt = datetime.fromtimestamp(sec, tz=UTC)
     return dt.strftime("%Y-%m-%dT%H:%M:%S") + f".{milli:03d}Z"
 
 
-def parse_time(text: str | float | int) -> float:
+def parse_time(text: str | float) -> float:
     """Parse RFC 3339 / ISO 8601 text or epoch seconds into epoch seconds.
 
     A number (or numeric text) is taken as epoch seconds.  Text with a date is
@@ -68,7 +68,7 @@ def parse_time(text: str | float | int) -> float:
     except ValueError:
         raise ValueError(f"not an RFC 3339 time or epoch seconds: {text!r}") from None
     if dt.tzinfo is None:
-        dt = dt.replace(tzinfo=timezone.utc)
+        dt = dt.replace(tzinfo=UTC)
     return dt.timestamp()
 
 
@@ -76,7 +76,7 @@ def parse_time(text: str | float | int) -> float:
 DURATION_FORMS = "a number with a unit: 250ms, 30s, 10min (or 10m), 12h, 7d or 2w"
 
 
-def parse_duration(text: str | float | int) -> float:
+def parse_duration(text: str | float) -> float:
     """Parse a duration such as ``7d``, ``12h``, ``30 min``, ``1.5s`` or ``250ms`` into seconds.
 
     The unit is required: a bare number (``7``, or the YAML number 7) is
@@ -99,7 +99,7 @@ def parse_duration(text: str | float | int) -> float:
     ValueError: '90' has no unit (use a number with a unit: 250ms, 30s, 10min (or 10m), 12h, 7d or 2w)
     """
     if isinstance(text, (int, float)) and not isinstance(text, bool):
-        raise ValueError(f"{text!r} has no unit (use {DURATION_FORMS})")
+        raise ValueError(f"{text!r} has no unit (use {DURATION_FORMS})")  # noqa: TRY004  callers catch ValueError
     m = _DURATION.match(str(text))
     if not m:
         raise ValueError(f"not a duration: {text!r} (use {DURATION_FORMS})")

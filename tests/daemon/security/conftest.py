@@ -31,10 +31,15 @@ from cryptography.hazmat.primitives.asymmetric import ec
 from cryptography.x509.oid import ExtendedKeyUsageOID, NameOID
 from prometheus_client.parser import text_string_to_metric_families
 
-from shiftwatch.broker import MosquittoBroker, TlsListener, free_port, wait_until
+from shiftwatch.broker import (
+    MosquittoBroker,
+    TlsListener,
+    free_port,
+    wait_until,  # noqa: F401  re-exported for the tests
+)
 from shiftwatch.mqtt import PlainClient
 
-NOW = dt.datetime.now(dt.timezone.utc)
+NOW = dt.datetime.now(dt.UTC)
 
 
 def _write_key(key: ec.EllipticCurvePrivateKey, path: Path) -> Path:

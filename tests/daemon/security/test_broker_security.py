@@ -105,16 +105,16 @@ def failures(
             "wrong_host_ip",
             wrong_ip.url,
             trust_plant,
-            "TLS certificate verify failed: IP address mismatch, "
-            "certificate is not valid for '127.0.0.1'",
+            ("TLS certificate verify failed: IP address mismatch, "
+             "certificate is not valid for '127.0.0.1'"),
             "alert bad certificate",
         ),
         (
             "wrong_host_name",
             f"mqtts://localhost:{wrong_name.port}",
             trust_plant,
-            "TLS certificate verify failed: Hostname mismatch, "
-            "certificate is not valid for 'localhost'",
+            ("TLS certificate verify failed: Hostname mismatch, "
+             "certificate is not valid for 'localhost'"),
             "alert bad certificate",
         ),
         (
@@ -128,9 +128,9 @@ def failures(
             "no_client_cert",
             wants_cert.url,
             trust_plant,
-            "the connection was closed before the broker accepted it: [SSL: "
-            "TLSV13_ALERT_CERTIFICATE_REQUIRED] tlsv13 alert certificate required "
-            "(the broker wants a client certificate it trusts",
+            ("the connection was closed before the broker accepted it: [SSL: "
+             "TLSV13_ALERT_CERTIFICATE_REQUIRED] tlsv13 alert certificate required "
+             "(the broker wants a client certificate it trusts"),
             "peer did not return a certificate",
         ),
         (
@@ -138,9 +138,9 @@ def failures(
             wants_cert_too.url,
             trust_plant[:-2]
             + f", cert_file: {pki.foreign_client[0]}, key_file: {pki.foreign_client[1]}}}\n",
-            "the connection was closed before the broker accepted it: "
-            "[SSL: TLSV1_ALERT_UNKNOWN_CA] tlsv1 alert unknown ca "
-            "(the broker wants a client certificate it trusts",
+            ("the connection was closed before the broker accepted it: "
+             "[SSL: TLSV1_ALERT_UNKNOWN_CA] tlsv1 alert unknown ca "
+             "(the broker wants a client certificate it trusts"),
             "SSL routines::certificate verify failed",
         ),
         (
