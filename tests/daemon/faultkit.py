@@ -170,6 +170,15 @@ def metric(text: str, name: str, **labels: str) -> float | None:
     return metric_values(text, name).get(tuple(sorted(labels.items())))
 
 
+def metric_matching(text: str, name: str, **labels: str) -> float | None:
+    """The first sample of ``name`` whose labels include ``labels`` (others may differ)."""
+    for fam in text_string_to_metric_families(text):
+        for s in fam.samples:
+            if s.name == name and all(s.labels.get(k) == v for k, v in labels.items()):
+                return float(s.value)
+    return None
+
+
 def samples_by_stream(text: str) -> dict[str, int]:
     """``shiftwatch_samples_total`` per stream."""
     return {dict(k)["stream"]: int(v) for k, v in metric_values(text, "shiftwatch_samples_total").items()}

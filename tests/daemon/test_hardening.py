@@ -15,22 +15,15 @@ from typing import Any
 
 import numpy as np
 import pytest
-from prometheus_client.parser import text_string_to_metric_families
 
 from shiftwatch.broker import wait_until
 from shiftwatch.statestore import StateStore
 
+from .faultkit import metric_matching as metric
+
 JSON_STREAM = "  - topic: oven/+/t\n    format: json\n    value: v\n    time: ts\n    unit: C\n"
 TWO_STREAMS = ("  - topic: line/a/+\n    format: json\n    value: v\n    time: ts\n"
                "  - topic: line/b/+\n    format: json\n    value: v\n    time: ts\n")
-
-
-def metric(text: str, name: str, **labels: str) -> float | None:
-    for fam in text_string_to_metric_families(text):
-        for s in fam.samples:
-            if s.name == name and all(s.labels.get(k) == v for k, v in labels.items()):
-                return float(s.value)
-    return None
 
 
 def series(n: int, seed: int, t0: float, *, level: float = 180.0) -> list[tuple[float, float]]:

@@ -20,21 +20,13 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
-from prometheus_client.parser import text_string_to_metric_families
 
 from shiftwatch.broker import wait_until
 from shiftwatch.metrics import MAX_CONNECTIONS, Metrics
 
 from .faultkit import CgroupUnavailable, SlowClients, daemon_fds, daemon_threads
+from .faultkit import metric_matching as metric
 from .faultkit import pids_cgroup as faultkit_pids_cgroup
-
-
-def metric(text: str, name: str, **labels: str) -> float | None:
-    for fam in text_string_to_metric_families(text):
-        for s in fam.samples:
-            if s.name == name and all(s.labels.get(k) == v for k, v in labels.items()):
-                return float(s.value)
-    return None
 
 
 @contextlib.contextmanager
