@@ -19,6 +19,8 @@ from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.core.timefmt import format_time, parse_time
 
+from .faultkit import metric_matching as metric_value
+
 T0 = 1_790_000_000.0  # 2026-09-21
 STEP = 500
 N = 800
@@ -28,14 +30,6 @@ def series(seed: int, level: float, sigma: float, delta: float, n: int = N, step
     x = level + sigma * np.random.default_rng(seed).standard_normal(n)
     x[step:] += delta
     return np.round(x, 4)
-
-
-def metric_value(text: str, name: str, **labels: str) -> float | None:
-    for fam in text_string_to_metric_families(text):
-        for s in fam.samples:
-            if s.name == name and all(s.labels.get(k) == v for k, v in labels.items()):
-                return float(s.value)
-    return None
 
 
 def wait_metric(d, name: str, want: float, timeout: float = 15.0, **labels: str) -> str:
