@@ -52,7 +52,7 @@ from shiftwatch.core.baseline import (
 )
 from shiftwatch.core.events import NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
 from shiftwatch.core.screen import screen_samples
-from shiftwatch.core.selfstart import SelfStart
+from shiftwatch.core.selfstart import SelfStart, SplitEvidence, split_evidence
 from shiftwatch.core.sequential import SequentialTest
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.core.stepfit import StepFit, StepFitter
@@ -414,10 +414,29 @@ YOUNG_END = 1000
 #: YOUNG_HOLD of them: a large step in progress is not absorbed before it is seen.
 YOUNG_CALM = 0.5
 YOUNG_HOLD = 8
+#: A sample this many sigmas from the young level is held back too, whatever the
+#: statistic: the first samples of a large step must not drag the level, inflate the
+#: spread and fake an autocorrelation before the test has seen them.  (Beyond 2 sigma
+#: falls one iid sample in 22; it is taken in with the next sample that is not.)
+YOUNG_Z_HOLD = 2.0
 #: Holding starts once the level rests on this many samples (the lag-1 autocorrelation
 #: is estimated from 20 on), and only on noise with no significant autocorrelation: on
 #: autocorrelated samples holding would feed the runs it is meant to wait out.
 YOUNG_HOLD_FROM = 20
+
+#: In the first warm-up the samples so far are also tested for one step at an unknown
+#: point (:func:`.selfstart.split_evidence`), from this many samples on, whenever the
+#: young test's statistic reaches YOUNG_SPLIT_SCREEN of its threshold or a sample lies
+#: YOUNG_Z_HOLD sigmas out; a step is called at a p-value below YOUNG_SPLIT_SHARE over
+#: the plant's ARL.  The self-starting test absorbs a step into the level it measures
+#: against; this test does not, so a step in a stream's first samples is not lost.
+YOUNG_SPLIT_FROM = 20
+YOUNG_SPLIT_SCREEN = 0.1
+YOUNG_SPLIT_SHARE = 0.5
+YOUNG_SPLIT_MARGIN = 0.0
+#: ... and only for a split with this many samples before it, whose autocorrelation is not
+#: significant (autocorrelated noise wanders like a step over a few dozen samples).
+YOUNG_SPLIT_BEFORE = 15
 
 #: The baseline is refined at least every REFINE_BLOCK_MAX samples (more often while
 #: it is young).  Each refinement ends a vectorised stretch of a batch, so a smaller
@@ -477,7 +496,7 @@ class StreamEngine:
     # One engine per stream, thousands of them in the daemon: no per-instance dict.
     __slots__ = (
         "_baseline", "_event", "_fitter", "_last_step", "_last_time", "_next_refine", "_pending",
-        "_prev_out", "_prev_r", "_provisional", "_refine_block", "_state", "_sums", "_test",
+        "_prev_out", "_prev_r", "_provisional", "_refine_block", "_split", "_state", "_sums", "_test",
         "_test_arl0", "_test_n_level", "_test_n_ref", "_test_shift_z", "_unfolded", "_watch_kept",
         "_window", "_young", "last_shift_at", "records_total", "rejected_total", "samples_total",
         "settings", "stream", "unit",
@@ -509,6 +528,7 @@ class StreamEngine:
         self._last_step: StepMemory | None = None  # the last confirmed step, to recognise its return
         self._young: SelfStart | None = None  # the level while it rests on few samples
         self._provisional = False  # the baseline is a stand-in for an event during the first warm-up
+        self._split: SplitEvidence | None = None  # the split that opened a first-warm-up event
         self._unfolded = 0  # newest samples not yet folded into the baseline sums
         self._watch_kept = 0  # samples kept while watching since the baseline was set
         self._next_refine = 0  # value of _watch_kept at which the baseline is refined next
@@ -868,10 +888,17 @@ class StreamEngine:
             return False
         test = self._young_test()
         tripped = test.update_one(-clip if z < -clip else (clip if z > clip else z))
+        if (not tripped and self._baseline is None and ys.n >= YOUNG_SPLIT_FROM
+                and (abs(z) >= YOUNG_Z_HOLD or test.statistic >= YOUNG_SPLIT_SCREEN * test.threshold)):
+            ev = split_evidence(self._window.values, phi_margin=YOUNG_SPLIT_MARGIN)
+            if (ev is not None and ev.index >= YOUNG_SPLIT_BEFORE and abs(ev.phi) < 2.0 / math.sqrt(ev.index)
+                    and ev.p_value * self._test_arl0 < YOUNG_SPLIT_SHARE):
+                self._split = ev
+                tripped = True
         if abs(z) > self.settings.spike_sigma:
             ys.last = xv  # the start of a large step: fed, never taken into the level
-        elif ((tripped or test.statistic >= YOUNG_CALM * test.threshold) and ys.n >= YOUNG_HOLD_FROM
-              and ys.phi_estimate() == 0.0):
+        elif ((tripped or abs(z) >= YOUNG_Z_HOLD or test.statistic >= YOUNG_CALM * test.threshold)
+              and ys.n >= YOUNG_HOLD_FROM and ys.phi_estimate() == 0.0):
             ys.hold(xv, YOUNG_HOLD)
         else:
             ys.release()
@@ -891,18 +918,28 @@ class StreamEngine:
         ys = self._young
         assert ys is not None
         b = self._baseline
+        split, self._split = self._split, None
         if b is None:
             dt = np.diff(self._window.times)
             interval = median(dt) if dt.shape[0] else 1.0
-            sd = max(ys.spread(), sigma_floor(ys.mean, 0.0, self.settings.min_sigma))
+            level = ys.mean if split is None else split.level_before
+            spread = ys.spread() if split is None else split.sigma
+            sd = max(spread, sigma_floor(level, 0.0, self.settings.min_sigma))
             # The event is weighed on prewhitened residuals as an established stream's
             # would be, with the autocorrelation as far as the samples show it; while
             # it cannot be told from none, in units of its long-run variance at two
             # standard errors above the estimate (a step must not be confirmed on a
             # run of autocorrelated samples).
-            phi = ys.phi_estimate()
-            inn = sd * math.sqrt(1.0 - phi * phi) * math.sqrt(ys.variance_factor(2.0))
-            b = Baseline(level=ys.mean, sigma=sd, phi=phi, innovation_sigma=inn,
+            if split is None:
+                phi, vf = ys.phi_estimate(), ys.variance_factor(2.0)
+            else:
+                # The samples' own autocorrelation, around the two levels of the split.
+                n = len(self._window)
+                phi = split.phi if n >= 20 and abs(split.phi) >= 2.0 / math.sqrt(n) else 0.0
+                up = min(0.95, max(split.phi, 0.0) + 2.0 / math.sqrt(n))
+                vf = 1.0 if phi != 0.0 else (1.0 + up) / (1.0 - up)
+            inn = sd * math.sqrt(1.0 - phi * phi) * math.sqrt(vf)
+            b = Baseline(level=level, sigma=sd, phi=phi, innovation_sigma=inn,
                          interval=interval if interval > 0 else 1.0, n=max(ys.n, 1), quantum=0.0,
                          clip=self.settings.clip_sigma)
             self._provisional = True
