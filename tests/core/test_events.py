@@ -338,8 +338,8 @@ def test_split_evidence_matches_a_two_sample_t_test() -> None:
     ev = split_evidence(x, min_segment=3)
     assert ev is not None
     rss = {k: np.sum((x[:k] - x[:k].mean()) ** 2) + np.sum((x[k:] - x[k:].mean()) ** 2) for k in range(3, 38)}
-    assert ev.index == min(rss, key=rss.__getitem__)
-    ref = stats.ttest_ind(x[ev.index:], x[: ev.index], equal_var=True)
+    assert ev.split_at == min(rss, key=rss.__getitem__)
+    ref = stats.ttest_ind(x[ev.split_at:], x[: ev.split_at], equal_var=True)
     # No autocorrelation allowance when the samples before show none.
     if ev.phi <= 0.0:
         assert ev.t == pytest.approx(abs(ref.statistic), rel=1e-9)

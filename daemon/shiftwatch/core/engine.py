@@ -891,7 +891,7 @@ class StreamEngine:
         if (not tripped and self._baseline is None and ys.n >= YOUNG_SPLIT_FROM
                 and (abs(z) >= YOUNG_Z_HOLD or test.statistic >= YOUNG_SPLIT_SCREEN * test.threshold)):
             ev = split_evidence(self._window.values, phi_margin=YOUNG_SPLIT_MARGIN)
-            if (ev is not None and ev.index >= YOUNG_SPLIT_BEFORE and abs(ev.phi) < 2.0 / math.sqrt(ev.index)
+            if (ev is not None and ev.split_at >= YOUNG_SPLIT_BEFORE and abs(ev.phi) < 2.0 / math.sqrt(ev.split_at)
                     and ev.p_value * self._test_arl0 < YOUNG_SPLIT_SHARE):
                 self._split = ev
                 tripped = True

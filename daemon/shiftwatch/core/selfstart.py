@@ -293,7 +293,7 @@ class SelfStart:
 class SplitEvidence(NamedTuple):
     """The strongest single split of a young level's samples (see :func:`split_evidence`)."""
 
-    index: int  # first sample after the split
+    split_at: int  # first sample after the split
     t: float  # two-sample t of the split, on the long-run spread
     p_value: float  # Bonferroni bound over every split tried
     level_before: float
