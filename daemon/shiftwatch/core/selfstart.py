@@ -78,6 +78,10 @@ class SelfStart:
     phi : lag-1 autocorrelation to prewhiten with (0 when unknown).
     ss, df : pooled sum of squares and its degrees of freedom carried in from
         earlier regimes (sigma unknown only).
+    follow : with sigma known, the level follows slow change once it rests on this
+        many samples: the running mean becomes an exponentially weighted one of
+        weight ``1 / follow`` (0: a plain running mean throughout).  The predictive
+        spread allows for the weighted mean's own variance, tracked exactly.
 
     Examples
     --------
@@ -90,15 +94,18 @@ class SelfStart:
     """
 
     __slots__ = (
-        "df", "first", "held", "lag", "last", "mean", "n", "phi", "pool_c1", "pool_n", "prev",
-        "sigma", "ss",
+        "df", "first", "follow", "held", "lag", "last", "mean", "n", "phi", "pool_c1", "pool_n", "prev",
+        "sigma", "ss", "vm",
     )
 
     #: samples before the first standardised input when sigma is unknown (phi is estimated from 20 samples on)
     MIN_UNKNOWN = 5
 
-    def __init__(self, sigma: float | None, phi: float = 0.0, ss: float = 0.0, df: int = 0) -> None:
+    def __init__(self, sigma: float | None, phi: float = 0.0, ss: float = 0.0, df: int = 0,
+                 follow: int = 0) -> None:
         self.sigma = sigma
+        self.follow = follow if sigma is not None else 0
+        self.vm = 0.0  # variance of the mean in units of sigma^2 (1/n for a plain mean)
         self.phi = phi
         self.n = 0
         self.mean = 0.0
@@ -129,7 +136,7 @@ class SelfStart:
             r = x - self.mean
             if self.phi != 0.0 and self.last is not None:
                 r -= self.phi * (self.last - self.mean)
-            return r / (self.sigma * math.sqrt(1.0 + 1.0 / n))
+            return r / (self.sigma * math.sqrt(1.0 + self.vm))
         if n < self.MIN_UNKNOWN or self.df < 2:
             return None
         s = math.sqrt(self.ss / self.df)
@@ -222,7 +229,13 @@ class SelfStart:
             self.lag += (x - self.first) * (self.prev - self.first)
         self.n += 1
         d = x - self.mean
-        self.mean += d / self.n
+        if self.follow and self.n > self.follow:
+            lam = 1.0 / self.follow
+            self.mean += lam * d
+            self.vm = (1.0 - lam) ** 2 * self.vm + lam * lam
+        else:
+            self.mean += d / self.n
+            self.vm = 1.0 / self.n
         if self.n > 1:
             self.ss += d * (x - self.mean)
             self.df += 1
@@ -255,6 +268,7 @@ class SelfStart:
 
     def get_state(self) -> dict[str, Any]:
         return {"sigma": self.sigma, "phi": self.phi, "n": self.n, "mean": self.mean, "ss": self.ss,
+                "follow": self.follow, "vm": self.vm,
                 "df": self.df, "prev": self.prev, "first": self.first, "lag": self.lag,
                 "last": self.last, "held": list(self.held), "pool_c1": self.pool_c1,
                 "pool_n": self.pool_n}
@@ -265,6 +279,11 @@ class SelfStart:
         sigma = d["sigma"]
         out = cls(None if sigma is None else float(sigma), float(d["phi"]), float(d["ss"]), int(d["df"]))
         out.n = int(d["n"])
+        # Snapshots before following: a plain running mean.
+        out.follow = int(d.get("follow", 0)) if out.sigma is not None else 0
+        out.vm = float(d.get("vm", 1.0 / out.n if out.n else 0.0))
+        if out.follow < 0 or not (math.isfinite(out.vm) and 0.0 <= out.vm <= 1.0):
+            raise ValueError("young.follow/vm: must be a non-negative count and a variance factor in [0, 1]")
         out.mean = float(d["mean"])
         out.prev = None if d["prev"] is None else float(d["prev"])
         out.first = None if d.get("first") is None else float(d["first"])
