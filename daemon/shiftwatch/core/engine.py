@@ -220,10 +220,12 @@ def make_test(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: f
     return RiverTest(settings.test)
 
 
-def steady_test(settings: DetectionSettings, arl0: float, shift_z: float) -> SequentialTest:
-    """The test an established stream runs, its baseline resting on many samples.  What
-    ``shiftwatch design`` and the suggestions state is this test's behaviour."""
-    return make_test(settings, arl0, shift_z)
+def steady_test(settings: DetectionSettings, arl0: float, shift_z: float, phi: float = 0.0) -> SequentialTest:
+    """The test an established stream runs, its baseline resting on many samples and its
+    level followed (designed for a longer ARL by :func:`follow_arl_factor`, so that the
+    real one is ``arl0``).  What ``shiftwatch design`` and the suggestions state is this
+    test's behaviour."""
+    return make_test(settings, arl0 * follow_arl_factor(phi), shift_z)
 
 
 class _NoCounts(Counter[str]):
@@ -1095,6 +1097,10 @@ class StreamEngine:
         for tv, xv in zip(t.tolist(), x.tolist()):
             if xv > hi or xv < lo:
                 break
+            w = self._window
+            while self._follow_lag > delay:  # the delay shrank (phi was refined): catch up first
+                self._follow = keep * self._follow + lam * (w.at(len(w) - self._follow_lag)[1] - level)
+                self._follow_lag -= 1
             u = self._follow
             r = xv - level - u
             z = (r - phi * self._prev_r if phi != 0.0 else r) * inv
@@ -1109,9 +1115,8 @@ class StreamEngine:
                 self._watch_kept += 1
                 self._open_event(tv, result, tv)
                 break
-            while self._follow_lag > delay:
-                w = self._window
-                self._follow = keep * self._follow + lam * (w.at(len(w) - self._follow_lag)[1] - level)
+            if self._follow_lag > delay:
+                self._follow = keep * u + lam * (w.at(len(w) - self._follow_lag)[1] - level)
                 self._follow_lag -= 1
             refine = self._watch_kept + 1 >= self._next_refine
             self._count_watched(1)
@@ -1165,6 +1170,9 @@ class StreamEngine:
         # The sums were of the samples less the follower's offset: the refined level is
         # the baseline's part of the followed level, which stays where it was.
         self._follow += b.level - nb.level
+        if self._unfolded_u:
+            shift = b.level - nb.level
+            self._unfolded_u = deque(v + shift for v in self._unfolded_u)
         k_min = None if s.test == "glr" else 0.5
         grown = abs(math.log(estimation_adjusted_arl(1e6, nb.n, k_min, nb.level_n)
                              / estimation_adjusted_arl(1e6, int(self._test_n_ref), k_min,
@@ -1816,12 +1824,17 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
     m = r.shape[0]
     out = np.empty(m + 1)
     out[0] = u0
+    # Blocks of about 1 / lam samples: a^-(block) stays near e, so the cumulative
+    # sum loses no precision against the recursion sample by sample.
+    block = max(16, min(_FOLLOW_BLOCK, int(1.0 / lam)))
     p = _follow_powers.get(lam)
     if p is None:
-        p = (1.0 - lam) ** np.arange(1, _FOLLOW_BLOCK + 1, dtype=np.float64)
+        if len(_follow_powers) > 64:  # lam follows phi, refined now and then: keep a few
+            _follow_powers.clear()
+        p = (1.0 - lam) ** np.arange(1, block + 1, dtype=np.float64)
         _follow_powers[lam] = p
-    for a in range(0, m, _FOLLOW_BLOCK):
-        blk = r[a: a + _FOLLOW_BLOCK]
+    for a in range(0, m, block):
+        blk = r[a: a + block]
         k = blk.shape[0]
         pk = p[:k]
         out[a + 1: a + k + 1] = pk * (out[a] + lam * np.cumsum(blk / pk))

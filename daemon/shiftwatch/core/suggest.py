@@ -309,7 +309,7 @@ def median_delay_samples(noise: Noise, min_shift_sigma: float, false_alarm_every
     settings = DetectionSettings(min_shift_sigma=min_shift_sigma, false_alarm_every=false_alarm_every)
     arl0 = settings.arl0(noise.interval)
     z = test_shift(noise, min_shift_sigma)
-    test = steady_test(settings, arl0, z)
+    test = steady_test(settings, arl0, z, noise.phi)
     assert isinstance(test, MultiCusumTest)  # the default test
     [(_, med)] = bank_run_lengths(test.ks, test.hs, (z,), arl0=arl0)
     return med, arl0
