@@ -437,7 +437,8 @@ YOUNG_SPLIT_SCREEN = 0.1
 YOUNG_SPLIT_SHARE = 0.5
 YOUNG_SPLIT_MARGIN = 0.0
 #: ... and only for a split with this many samples before it, whose autocorrelation is not
-#: significant (autocorrelated noise wanders like a step over a few dozen samples).
+#: significantly positive (autocorrelated noise wanders like a step over a few dozen samples;
+#: negative autocorrelation does not).
 YOUNG_SPLIT_BEFORE = 15
 
 #: An established level follows slow change: the level a sample is measured against
@@ -450,6 +451,7 @@ YOUNG_SPLIT_BEFORE = 15
 FOLLOW_SAMPLES = 110
 FOLLOW_DELAY = 40
 FOLLOW_DELAY_MAX = 300
+FOLLOW_PHI_MAX = 0.7
 FOLLOW_MARGIN = 2.0
 FOLLOW_ARL_EXTRA = 1.4
 
@@ -510,11 +512,39 @@ class StreamEngine:
 
     # One engine per stream, thousands of them in the daemon: no per-instance dict.
     __slots__ = (
-        "_baseline", "_event", "_fitter", "_follow", "_follow_lag", "_last_step", "_unfolded_u", "_last_time", "_next_refine", "_pending",
-        "_prev_out", "_prev_r", "_provisional", "_refine_block", "_split", "_state", "_sums", "_test",
-        "_test_arl0", "_test_n_level", "_test_n_ref", "_test_shift_z", "_unfolded", "_watch_kept",
-        "_window", "_young", "last_shift_at", "records_total", "rejected_total", "samples_total",
-        "settings", "stream", "unit",
+        "_baseline",
+        "_event",
+        "_fitter",
+        "_follow",
+        "_follow_lag",
+        "_last_step",
+        "_last_time",
+        "_next_refine",
+        "_pending",
+        "_prev_out",
+        "_prev_r",
+        "_provisional",
+        "_refine_block",
+        "_split",
+        "_state",
+        "_sums",
+        "_test",
+        "_test_arl0",
+        "_test_n_level",
+        "_test_n_ref",
+        "_test_shift_z",
+        "_unfolded",
+        "_unfolded_u",
+        "_watch_kept",
+        "_window",
+        "_young",
+        "last_shift_at",
+        "records_total",
+        "rejected_total",
+        "samples_total",
+        "settings",
+        "stream",
+        "unit",
     )
 
     def __init__(self, stream: str, settings: DetectionSettings | None = None, *,
@@ -926,7 +956,7 @@ class StreamEngine:
         if (not tripped and self._baseline is None and ys.n >= YOUNG_SPLIT_FROM
                 and (abs(z) >= YOUNG_Z_HOLD or test.statistic >= YOUNG_SPLIT_SCREEN * test.threshold)):
             ev = split_evidence(self._window.values, phi_margin=YOUNG_SPLIT_MARGIN)
-            if (ev is not None and ev.split_at >= YOUNG_SPLIT_BEFORE and abs(ev.phi) < 2.0 / math.sqrt(ev.split_at)
+            if (ev is not None and ev.split_at >= YOUNG_SPLIT_BEFORE and ev.phi < 2.0 / math.sqrt(ev.split_at)
                     and ev.p_value * self._test_arl0 < YOUNG_SPLIT_SHARE):
                 self._split = ev
                 tripped = True
@@ -1169,10 +1199,15 @@ class StreamEngine:
         self._baseline = nb
         # The sums were of the samples less the follower's offset: the refined level is
         # the baseline's part of the followed level, which stays where it was.
-        self._follow += b.level - nb.level
-        if self._unfolded_u:
+        if math.isinf(follow_samples(nb.phi)):
+            # Not followed (strongly autocorrelated noise): the refined level is the level.
+            self._follow = 0.0
+            self._unfolded_u = deque(0.0 for _ in self._unfolded_u)
+        else:
             shift = b.level - nb.level
-            self._unfolded_u = deque(v + shift for v in self._unfolded_u)
+            self._follow += shift
+            if self._unfolded_u:
+                self._unfolded_u = deque(v + shift for v in self._unfolded_u)
         k_min = None if s.test == "glr" else 0.5
         grown = abs(math.log(estimation_adjusted_arl(1e6, nb.n, k_min, nb.level_n)
                              / estimation_adjusted_arl(1e6, int(self._test_n_ref), k_min,
@@ -1227,7 +1262,7 @@ class StreamEngine:
             # followed level.  A false trip comes most often when the follower happens
             # to lag, so the followed level is biased towards the trip exactly when an
             # event is open; the margin keeps the trial from confirming that lag.
-            level_before=(b.level + self._follow + sign * FOLLOW_MARGIN * b.sigma * math.sqrt(1.0 / (2.0 * follow_samples(b.phi) - 1.0))
+            level_before=(b.level + self._follow + sign * FOLLOW_MARGIN * b.sigma * _follow_se(b.phi)
                           if b.level_n >= 2 * self.settings.window_samples else fit.level_before),
             level_after=fit.level_after,
             trial=self._new_trial(sign),
@@ -1431,7 +1466,9 @@ class StreamEngine:
             self._provisional = False
             self._state = WARMING_UP
         else:
-            ys = SelfStart(b.innovation_sigma, b.phi, follow=int(follow_samples(b.phi)) + follow_delay(b.phi, self.settings.window_samples))
+            tau = follow_samples(b.phi)
+            follow = 0 if math.isinf(tau) else int(tau) + follow_delay(b.phi, self.settings.window_samples)
+            ys = SelfStart(b.innovation_sigma, b.phi, follow=follow)
             self._state = WATCHING
         for v in vals.tolist():
             ys.add(v)
@@ -1787,8 +1824,17 @@ def follow_samples(phi: float) -> float:
     """The follower's time constant for noise of lag-1 autocorrelation ``phi``: longer
     by the long-run variance factor (1 + phi) / (1 - phi), as a step takes that much
     longer to be told from autocorrelated noise (an AR(1) stream of phi 0.6 follows
-    four times as slowly)."""
+    four times as slowly).  Beyond FOLLOW_PHI_MAX, infinite: the level is not
+    followed, since a step of min_shift takes longer to find than any delay the
+    window allows, and the follower would absorb it."""
+    if phi > FOLLOW_PHI_MAX:
+        return math.inf
     return FOLLOW_SAMPLES * _long_run(phi)
+
+
+def _follow_se(phi: float) -> float:
+    """Standard error of the followed level in sigmas (iid noise): sqrt(lam / (2 - lam))."""
+    return math.sqrt(1.0 / (2.0 * follow_samples(phi) - 1.0))
 
 
 def follow_delay(phi: float, window: int) -> int:
@@ -1809,6 +1855,8 @@ def follow_arl_factor(phi: float) -> float:
     brought the rates back to 1.03 (iid) and 0.85 (phi 0.6) of nominal at 7d.
     tests/bench/bench_events.py measures the resulting rates on every noise kind.
     """
+    if phi > FOLLOW_PHI_MAX:
+        return 1.0
     return 1.0 + FOLLOW_ARL_EXTRA / _long_run(phi)
 
 
@@ -1822,6 +1870,8 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
     [0.0, 0.5, 0.75, 0.875]
     """
     m = r.shape[0]
+    if lam <= 0.0:
+        return np.full(m + 1, u0)
     out = np.empty(m + 1)
     out[0] = u0
     # Blocks of about 1 / lam samples: a^-(block) stays near e, so the cumulative
