@@ -43,6 +43,7 @@ from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
 from shiftwatch.notify import sd_notify, watchdog_interval
 from shiftwatch.outbox import Outbox
 from shiftwatch.statestore import StateStore
+from shiftwatch.status import StatusBoard
 
 #: Messages taken from the queue per processing round (acks go out after each
 #: round).  Large rounds give each stream's engine longer batches; a round also
@@ -307,6 +308,13 @@ class Daemon:
         self._new_lines = self._new_held = 0
         self._new_last = ""
         self._early_snapshot_failed = False
+        #: What the status page shows beyond the metrics (records, rates, held samples).
+        self.status = StatusBoard(self.metrics.streams, self._label, time_zone=self.tz)
+        self.metrics.label_for = self.status.label
+
+    def _label(self, name: str) -> str | None:
+        """The configured label of a stream (the status board caches it)."""
+        return self.cfg.label_for(name, self._filters.get(name))
 
     # ------------------------------------------------------------ topics
     @property
@@ -467,12 +475,14 @@ class Daemon:
             self.server = self.metrics.serve(
                 self.cfg.metrics.listen, certfile=mtls.cert_file if mtls else None,
                 keyfile=mtls.key_file if mtls else None,
-                client_cafile=mtls.client_ca_file if mtls else None)
+                client_cafile=mtls.client_ca_file if mtls else None, pages=self.status)
         except OSError as exc:
             what = "metrics.tls: " if mtls else ""
             raise OSError(f"metrics endpoint {self.cfg.metrics.listen}: {what}{exc}") from None
-        self.log.info("metrics on %s://%s:%d/metrics%s", "https" if mtls else "http",
-                      self.server.host, self.server.port,
+        scheme = "https" if mtls else "http"
+        host = f"[{self.server.host}]" if ":" in self.server.host else self.server.host
+        self.log.info("metrics on %s://%s:%d/metrics, status page on %s://%s:%d/status%s", scheme,
+                      host, self.server.port, scheme, host, self.server.port,
                       " (client certificates required)" if mtls and mtls.client_ca_file else "")
         password = read_password(self.cfg.broker, self.env)
         self.link = MqttLink(
@@ -524,6 +534,7 @@ class Daemon:
         next_check = time.monotonic() + 1.0
         while not self._stop.is_set():
             self.round(timeout=0.2)
+            self.status.tick()
             if self.journal is not None:
                 self.journal.sync_if_due()
             now = time.monotonic()
@@ -558,6 +569,7 @@ class Daemon:
         if self._new_held:
             self._flush_new_streams(time.monotonic())
         if not msgs:
+            self.status.serve_windows(self.engines)
             self.send_due_levels()
             self.rlog.flush(time.time())
             self._gauges()
@@ -565,6 +577,7 @@ class Daemon:
                 self._trim_heap(idle=True)
             return 0
         self.process(msgs)
+        self.status.serve_windows(self.engines)
         self.send_due_levels()
         self.rlog.flush(time.time())
         self._gauges()
@@ -846,6 +859,7 @@ class Daemon:
             self._track(mid, key)
         self.records_published += 1
         self.metrics.alert_delay.observe(max(0.0, time.time() - arrived))
+        self.status.record(rec)
         fields = {"stream": rec.stream, "event_id": rec.id, "phase": rec.phase}
         if label is None:
             self.log.info("%s [id %s]", d["summary"], rec.id, extra=fields)
@@ -1083,6 +1097,7 @@ class Daemon:
                 del self.engines[name]
                 self._filters.pop(name, None)
                 self.metrics.remove_stream(name)
+                self.status.forget(name)
                 self._clear_levels(name)
                 dropped += 1
                 continue
@@ -1097,6 +1112,7 @@ class Daemon:
         # endpoint, the state directory) stay as they were until the next start.
         self.cfg = dataclasses.replace(self.cfg, streams=new.streams, detection=new.detection)
         self._spec_cache.clear()
+        self.status.forget_labels()
         if self.link is not None:
             self.link.set_subscriptions(sorted(new_filters), added=sorted(new_filters - old_filters),
                                         removed=sorted(old_filters - new_filters))
