@@ -859,7 +859,8 @@ class Daemon:
             self._track(mid, key)
         self.records_published += 1
         self.metrics.alert_delay.observe(max(0.0, time.time() - arrived))
-        self.status.record(rec)
+        eng = self.engines.get(rec.stream) if rec.phase == "detected" else None
+        self.status.record(rec, None if eng is None else eng.held_samples())
         fields = {"stream": rec.stream, "event_id": rec.id, "phase": rec.phase}
         if label is None:
             self.log.info("%s [id %s]", d["summary"], rec.id, extra=fields)

@@ -53,6 +53,11 @@ RECORDS_KEPT = 16
 #: A stream's page keeps its held samples copied after each round for this long after its
 #: last request (the page asks every few seconds while open).
 WATCH_S = 30.0
+#: Samples kept with an event (what the engine held when it was detected), so that its page
+#: can show the level before a step after the engine has let those samples go; and the
+#: events per stream that keep them.
+CONTEXT_SAMPLES = 600
+CONTEXT_EVENTS = 2
 #: Streams whose held samples are copied at once, at most (pages open on different streams).
 WATCH_MAX = 16
 #: Seconds a request for a stream's page waits for the main thread's first copy of its samples
@@ -155,7 +160,7 @@ class StreamStatus:
                 "shift_at": format_time(ev.shift_at), "shift_at_low": format_time(ev.shift_at_low),
                 "shift_at_high": format_time(ev.shift_at_high), "as_of": format_time(ev.as_of),
                 "level_before": _num(ev.level_before), "level_after": _num(ev.level_after),
-                "delta": _num(ev.delta), "delta_sigma": _num(ev.delta_sigma, 3),
+                "delta": _num(ev.delta), "delta_sigma": round(ev.delta_sigma, 3) if math.isfinite(ev.delta_sigma) else None,
                 "direction": ev.direction, "recorded_at": format_time(ev.recorded_at),
                 "when_text": clock(ev.shift_at if ev.phase != "dismissed" else ev.detected_at, tz,
                                    today=now),
@@ -256,6 +261,7 @@ class StatusBoard:
         self._clock = clock_fn
         self._lock = threading.Lock()
         self._records: dict[str, deque[tuple[float, AlertRecord]]] = {}
+        self._context: dict[str, deque[tuple[str, list[float], list[float]]]] = {}
         self._labels: dict[str, str | None] = {}
         self._providers: list[Callable[[str], Mapping[str, Any] | None]] = []
         # Sample rates: the counts at the last two checkpoints (main thread writes, others read).
@@ -266,18 +272,31 @@ class StatusBoard:
         self._windows: dict[str, tuple[list[float], list[float], float, float | None, float | None]] = {}
 
     # ------------------------------------------------------------ main thread
-    def record(self, rec: AlertRecord) -> None:
-        """An alert record was made (the daemon calls this as it publishes it)."""
+    def record(self, rec: AlertRecord, held: tuple[Any, Any] | None = None) -> None:
+        """An alert record was made (the daemon calls this as it publishes it).
+
+        ``held`` is what the engine holds when a ``detected`` record is made (its
+        :meth:`~shiftwatch.core.engine.StreamEngine.held_samples`): the samples
+        before the step, which the engine lets go once the step is confirmed.
+        The stream's page shows them, lighter, before the samples held now.
+        """
         with self._lock:
             q = self._records.get(rec.stream)
             if q is None:
                 q = self._records[rec.stream] = deque(maxlen=RECORDS_KEPT)
             q.append((self._clock(), rec))
+            if held is not None:
+                c = self._context.get(rec.stream)
+                if c is None:
+                    c = self._context[rec.stream] = deque(maxlen=CONTEXT_EVENTS)
+                c.append((rec.id, [float(v) for v in held[0][-CONTEXT_SAMPLES:]],
+                          [float(v) for v in held[1][-CONTEXT_SAMPLES:]]))
 
     def forget(self, stream: str) -> None:
         """A stream removed by a reload."""
         with self._lock:
             self._records.pop(stream, None)
+            self._context.pop(stream, None)
             self._labels.pop(stream, None)
             self._rates.pop(stream, None)
 
@@ -409,6 +428,7 @@ class StatusBoard:
         now = self._clock()
         with self._lock:
             records = list(self._records.get(name, ()))
+            context = list(self._context.get(name, ()))
             providers = list(self._providers)
         status = stream_status(name, stats, label=self.label(name), records=records,
                                samples_per_minute=self._rates.get(name), providers=providers)
@@ -430,8 +450,17 @@ class StatusBoard:
             ev.update({"phase": rec.phase, "shift_at": rec.shift_at, "shift_at_low": rec.shift_at_low,
                        "shift_at_high": rec.shift_at_high, "detected_at": rec.detected_at,
                        "level_before": _num(rec.level_before), "level_after": _num(rec.level_after)})
-        t0 = times[0] if times else None
-        t1 = times[-1] if times else None
+        # Samples kept with the events, older than those held now.
+        first = times[0] if times else math.inf
+        earlier: dict[float, float] = {}
+        for _, ct, cx in context:
+            for tv, xv in zip(ct, cx):
+                if tv < first:
+                    earlier[tv] = xv
+        early_t = sorted(earlier)[-CONTEXT_SAMPLES:]
+        early_x = [earlier[tv] for tv in early_t]
+        t0 = early_t[0] if early_t else (times[0] if times else None)
+        t1 = times[-1] if times else (early_t[-1] if early_t else None)
         for ev in events.values():
             ev["in_view"] = t0 is not None and t1 is not None and ev["shift_at_high"] >= t0 \
                 and ev["shift_at_low"] <= t1
@@ -445,6 +474,7 @@ class StatusBoard:
             "samples": {"t": times, "x": values, "held": len(times),
                         "from_text": None if t0 is None else clock(t0, tz, today=now),
                         "to_text": None if t1 is None else clock(t1, tz, today=now)},
+            "earlier": {"t": early_t, "x": early_x},
             "level": None if held is None else _num(held[3]),
             "sigma": None if held is None else _num(held[4]),
             "events": list(events.values())[::-1],
@@ -480,7 +510,8 @@ def _json(d: Mapping[str, Any]) -> bytes:
 
 #: The page's files, served under /status/assets/ (read once).
 ASSETS = {"overview.html": "text/html; charset=utf-8", "stream.html": "text/html; charset=utf-8",
-          "status.js": "text/javascript; charset=utf-8", "status.css": "text/css; charset=utf-8"}
+          "status.js": "text/javascript; charset=utf-8", "status.css": "text/css; charset=utf-8",
+          "icon.svg": "image/svg+xml"}
 _ASSET_CACHE: dict[str, bytes] = {}
 
 
@@ -545,3 +576,57 @@ def _cell(text: str) -> str:
 
 #: The fields of :class:`StreamStatus`, in order (the README's table and the tests use it).
 STATUS_FIELDS = tuple(f.name for f in dataclasses.fields(StreamStatus))
+
+
+def status_url(listen: str, tls: bool) -> str:
+    """Where a client on this machine reaches the page's JSON for a ``metrics.listen`` address.
+
+    A wildcard address (``0.0.0.0``, ``::``) is reached through loopback.
+
+    Examples
+    --------
+    >>> status_url("127.0.0.1:9650", False)
+    'http://127.0.0.1:9650/status.json'
+    >>> status_url("0.0.0.0:9650", True), status_url("[::]:9650", False)
+    ('https://127.0.0.1:9650/status.json', 'http://[::1]:9650/status.json')
+    """
+    from shiftwatch.metrics import parse_listen
+
+    host, port = parse_listen(listen)
+    host = {"0.0.0.0": "127.0.0.1", "::": "::1", "": "127.0.0.1"}.get(host, host)
+    if ":" in host:
+        host = f"[{host}]"
+    return f"{'https' if tls else 'http'}://{host}:{port}/status.json"
+
+
+def fetch_overview(url: str, *, query: str = "", limit: int = DEFAULT_LIMIT, ca_file: str | None = None,
+                   cert_file: str | None = None, key_file: str | None = None,
+                   timeout: float = 10.0) -> dict[str, Any]:
+    """GET the overview JSON from a running daemon (``shiftwatch status``).
+
+    Raises
+    ------
+    OSError
+        When the daemon cannot be reached or answers with an error (the message says which).
+    """
+    import ssl
+    import urllib.error
+    import urllib.request
+    from urllib.parse import urlencode
+
+    ctx = None
+    if url.startswith("https:"):
+        ctx = ssl.create_default_context(cafile=ca_file)
+        if cert_file is not None:
+            ctx.load_cert_chain(cert_file, key_file)
+    full = f"{url}?{urlencode({'q': query, 'limit': limit})}"
+    try:
+        with urllib.request.urlopen(full, timeout=timeout, context=ctx) as r:  # noqa: S310  http(s) only
+            doc: dict[str, Any] = json.loads(r.read())
+    except urllib.error.HTTPError as exc:
+        raise OSError(f"{url}: the daemon answered {exc.code} {exc.reason}") from None
+    except urllib.error.URLError as exc:
+        raise OSError(f"{url}: {exc.reason} (is shiftwatch running with this configuration?)") from None
+    except (TimeoutError, ValueError) as exc:
+        raise OSError(f"{url}: {exc}") from None
+    return doc

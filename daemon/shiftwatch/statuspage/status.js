@@ -164,17 +164,18 @@ function drawChart(d) {
   const box = document.getElementById("chart");
   const W = 1000, H = 360, L = 70, R = 14, T = 12, B = 34;
   const t = d.samples.t, x = d.samples.x;
+  const et = (d.earlier || { t: [] }).t, ex = (d.earlier || { x: [] }).x;
   const parts = [];
-  if (t.length < 2) {
+  if (t.length + et.length < 2) {
     parts.push(svg("text", { x: W / 2, y: H / 2, "text-anchor": "middle", class: "empty" },
       "no samples held yet"));
     box.replaceChildren(...parts);
     box.dataset.samples = String(t.length);
     return;
   }
-  const t0 = t[0], t1 = t[t.length - 1];
+  const t0 = et.length ? et[0] : t[0], t1 = t.length ? t[t.length - 1] : et[et.length - 1];
   const inView = d.events.filter(e => e.in_view);
-  let lo = Math.min(...x), hi = Math.max(...x);
+  let lo = Math.min(...x, ...ex), hi = Math.max(...x, ...ex);
   for (const e of inView) {
     for (const v of [e.level_before, e.level_after]) if (v !== null) { lo = Math.min(lo, v); hi = Math.max(hi, v); }
   }
@@ -207,7 +208,11 @@ function drawChart(d) {
     parts.push(svg("rect", { x: px(a), y: T, width: Math.max(px(b) - px(a), 2), height: H - T - B,
       class: "band", "data-event": e.id }));
   }
-  // samples: a faint trace and a dot each
+  // samples kept with an event, which the engine has let go since: lighter
+  for (let i = 0; i < et.length; i++) {
+    parts.push(svg("circle", { cx: px(et[i]).toFixed(1), cy: py(ex[i]).toFixed(1), r: 1.6, class: "earlier" }));
+  }
+  // samples held now: a faint trace and a dot each
   let path = "";
   for (let i = 0; i < t.length; i++) path += (i ? "L" : "M") + px(t[i]).toFixed(1) + " " + py(x[i]).toFixed(1);
   parts.push(svg("path", { d: path, class: "trace" }));
@@ -235,7 +240,9 @@ function drawChart(d) {
   }
   box.replaceChildren(...parts);
   box.dataset.samples = String(t.length);
-  show("span", "(" + t.length + " samples, " + d.samples.from_text + " to " + d.samples.to_text + ")");
+  box.dataset.earlier = String(et.length);
+  show("span", "(" + t.length + " held now" + (et.length ? ", " + et.length + " earlier ones kept with the event" : "") +
+    ", " + d.samples.from_text + " to " + d.samples.to_text + ")");
 }
 
 function fact(name, value) {
