@@ -88,6 +88,9 @@ def dashboard_queries() -> list[str]:
     for p in dash["panels"]:
         for t in p.get("targets", []):
             out.append(t["expr"])
+    for a in dash["annotations"]["list"]:
+        if "expr" in a:
+            out.append(a["expr"])
     for v in dash["templating"]["list"]:
         q = v.get("query")
         if isinstance(q, dict):
@@ -100,7 +103,7 @@ def dashboard_queries() -> list[str]:
 def fill_grafana_variables(expr: str) -> str:
     """Grafana's variables as a real query would have them (Grafana documentation, "Global variables")."""
     return (expr.replace("$__rate_interval", "2m").replace("$__range", "6h")
-            .replace("$job", "shiftwatch").replace("$stream", ".*"))
+            .replace("$job", "shiftwatch").replace("$stream", ".*").replace("$unit", "g"))
 
 
 # ------------------------------------------------------------------ rules
@@ -236,6 +239,25 @@ def test_the_dashboard_is_a_well_formed_grafana_dashboard() -> None:
     titles = " ".join(p["title"].lower() for p in dash["panels"])
     for wanted in ("level", "sigma", "alert records", "broker", "ingest", "drops"):
         assert wanted in titles, wanted
+    # The level panel is repeated per unit (Grafana documentation, "Configure repeating panels":
+    # repeat names a variable with several values), with the unit in its title and axis label,
+    # so no axis mixes units.
+    levels = [p for p in dash["panels"] if p["title"].startswith("Level")]
+    per_unit = next(p for p in levels if p.get("repeat") == "unit")
+    assert "$unit" in per_unit["title"] and per_unit["fieldConfig"]["defaults"]["custom"]["axisLabel"] == "$unit"
+    assert 'unit="$unit"' in per_unit["targets"][0]["expr"]
+    unit_var = next(v for v in dash["templating"]["list"] if v["name"] == "unit")
+    assert unit_var["multi"] and unit_var["includeAll"]
+    assert "shiftwatch_stream_display_info" in unit_var["query"]["query"]
+    # Streams without a unit have a panel of their own; every level query shows one unit only.
+    assert any('unit!=""' in p["targets"][0]["expr"] and "unless" in p["targets"][0]["expr"] for p in levels)
+    # Confirmed steps and planned changes are marked from the metrics (Grafana documentation,
+    # "Annotations": a Prometheus query whose series become annotations).
+    marks = {a["name"]: a for a in dash["annotations"]["list"]}
+    assert 'phase="confirmed"' in marks["Confirmed steps"]["expr"]
+    assert 'phase="planned"' in marks["Planned changes"]["expr"]
+    for a in marks.values():
+        assert a["datasource"]["uid"] == "${datasource}" and a["enable"] and a["step"]
     # The caution is on the board itself, at the top (a dashboard's description is not shown).
     top = min(dash["panels"], key=lambda p: (p["gridPos"]["y"], p["gridPos"]["x"]))
     assert top["type"] == "text" and top["gridPos"]["w"] == 24
@@ -324,7 +346,7 @@ def test_every_metric_the_dashboard_and_rules_use_is_on_the_real_endpoint(fed_da
     # The dashboard covers what the issue lists.
     for wanted in ("shiftwatch_level", "shiftwatch_sigma", "shiftwatch_alert_records_total",
                    "shiftwatch_broker_connected", "shiftwatch_messages_received_total",
-                   "shiftwatch_messages_dropped_total"):
+                   "shiftwatch_messages_dropped_total", "shiftwatch_stream_display_info"):
         assert "dashboard" in used.get(wanted, set()), wanted
 
 
