@@ -308,12 +308,13 @@ class StatusBoard:
     def tick(self, now: float | None = None) -> None:
         """Checkpoint the sample counts; the rate of each stream is over the last two checkpoints.
 
-        Called by the main thread about every :data:`RATE_EVERY_S` seconds (more
-        often is harmless: a checkpoint younger than half of that is skipped).
+        The main thread calls it after every round; a checkpoint is taken once
+        :data:`RATE_EVERY_S` seconds have passed since the last one (a dict of
+        every stream's count, a few milliseconds with 10,000 streams).
         """
         now = time.monotonic() if now is None else now
         prev = self._prev
-        if prev is not None and now - prev[0] < RATE_EVERY_S / 2:
+        if prev is not None and now - prev[0] < RATE_EVERY_S:
             return
         counts = {name: st.samples_total for name, st in self._streams().items()}
         if prev is not None:
