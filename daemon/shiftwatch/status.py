@@ -610,6 +610,7 @@ def fetch_overview(url: str, *, query: str = "", limit: int = DEFAULT_LIMIT, ca_
     OSError
         When the daemon cannot be reached or answers with an error (the message says which).
     """
+    import http.client
     import ssl
     import urllib.error
     import urllib.request
@@ -628,6 +629,8 @@ def fetch_overview(url: str, *, query: str = "", limit: int = DEFAULT_LIMIT, ca_
         raise OSError(f"{url}: the daemon answered {exc.code} {exc.reason}") from None
     except urllib.error.URLError as exc:
         raise OSError(f"{url}: {exc.reason} (is shiftwatch running with this configuration?)") from None
-    except (TimeoutError, ValueError) as exc:
-        raise OSError(f"{url}: {exc}") from None
+    except (OSError, http.client.HTTPException, ValueError) as exc:
+        # e.g. the endpoint closed the connection: a client certificate it wants was not sent
+        raise OSError(f"{url}: {exc or type(exc).__name__} (with metrics.tls.client_ca_file the "
+                      f"endpoint wants --cert-file and --key-file)") from None
     return doc
