@@ -694,9 +694,9 @@ class _Endpoint:
 #: Headers of the status page's answers: nothing may be loaded from anywhere but this
 #: endpoint, and no answer is cached (the page asks again every few seconds).
 _PAGE_HEADERS = (
-    ("Content-Security-Policy", "default-src 'none'; script-src 'self'; style-src 'self'; "
-     "connect-src 'self'; img-src 'self'; base-uri 'none'; form-action 'none'; "
-     "frame-ancestors 'none'"),
+    ("Content-Security-Policy", ("default-src 'none'; script-src 'self'; style-src 'self'; "
+                                 "connect-src 'self'; img-src 'self'; base-uri 'none'; "
+                                 "form-action 'none'; frame-ancestors 'none'")),
     ("X-Content-Type-Options", "nosniff"),
     ("Cache-Control", "no-store"),
     ("Referrer-Policy", "no-referrer"),

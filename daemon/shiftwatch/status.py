@@ -544,10 +544,10 @@ def format_table(doc: Mapping[str, Any], width: int = 120) -> str:
     filler head 2  watching  500.91 g  0.6 g  60    confirmed 06:24:59Z +0.875 g (+1.5 sigma)
     """
     counts = doc.get("counts", {})
-    lines = [str(doc.get("advisory", "")),
-             f"shiftwatch status at {doc.get('generated_text', '?')} ({doc.get('time_zone', 'UTC')}): "
-             f"{counts.get('streams', 0)} stream(s), {counts.get('event_open', 0)} with an open event, "
-             f"{counts.get('recent', 0)} with a recent one"]
+    head = (f"shiftwatch status at {doc.get('generated_text', '?')} ({doc.get('time_zone', 'UTC')}): "
+            f"{counts.get('streams', 0)} stream(s), {counts.get('event_open', 0)} with an open event, "
+            f"{counts.get('recent', 0)} with a recent one")
+    lines = [str(doc.get("advisory", "")), head]
     rows = [("STREAM", "STATE", "LEVEL", "SIGMA", "/MIN", "LAST EVENT")]
     for s in doc.get("streams", []):
         ev = s.get("last_event")
@@ -623,7 +623,7 @@ def fetch_overview(url: str, *, query: str = "", limit: int = DEFAULT_LIMIT, ca_
             ctx.load_cert_chain(cert_file, key_file)
     full = f"{url}?{urlencode({'q': query, 'limit': limit})}"
     try:
-        with urllib.request.urlopen(full, timeout=timeout, context=ctx) as r:  # noqa: S310  http(s) only
+        with urllib.request.urlopen(full, timeout=timeout, context=ctx) as r:
             doc: dict[str, Any] = json.loads(r.read())
     except urllib.error.HTTPError as exc:
         raise OSError(f"{url}: the daemon answered {exc.code} {exc.reason}") from None

@@ -29,14 +29,13 @@ import os
 import shutil
 import statistics
 import sys
-import time
 from pathlib import Path
 from typing import Any
 from urllib.parse import quote
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-import bench_daemon  # noqa: E402  this directory's module, found through the path above
+import bench_daemon  # this directory's module, found through the path above
 
 TARGET_RATIO = 1.5
 FLOOR_MS = 10.0
