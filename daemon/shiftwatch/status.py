@@ -506,7 +506,29 @@ class StatusBoard:
 
 
 def _json(d: Mapping[str, Any]) -> bytes:
-    return json.dumps(d, separators=(",", ":"), allow_nan=False).encode()
+    """Compact JSON; a number that is not finite (a fit's p-value may be) becomes null, since
+    JSON has no NaN and browsers refuse it."""
+    try:
+        return json.dumps(d, separators=(",", ":"), allow_nan=False).encode()
+    except ValueError:
+        return json.dumps(_finite(d), separators=(",", ":"), allow_nan=False).encode()
+
+
+def _finite(o: Any) -> Any:
+    """``o`` with every float that is not finite replaced by None.
+
+    Examples
+    --------
+    >>> _finite({"a": [1.0, float("nan")], "b": {"c": float("inf")}, "d": "x"})
+    {'a': [1.0, None], 'b': {'c': None}, 'd': 'x'}
+    """
+    if isinstance(o, float):
+        return o if math.isfinite(o) else None
+    if isinstance(o, Mapping):
+        return {k: _finite(v) for k, v in o.items()}
+    if isinstance(o, list | tuple):
+        return [_finite(v) for v in o]
+    return o
 
 
 #: The page's files, served under /status/assets/ (read once).

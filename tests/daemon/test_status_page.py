@@ -132,6 +132,27 @@ def test_providers_add_acknowledgement_hold_and_stale_and_the_table_shows_them()
     assert "(stale) (hold)" in table and "line/a" in table
 
 
+def test_a_stream_page_without_samples_yet_and_with_a_figure_that_is_not_finite_is_still_json() -> None:
+    import dataclasses
+
+    eng = StreamEngine("line/a", unit="g")
+    x = series(4)
+    x[500:] += 2.0
+    recs = eng.process(T0 + np.arange(700.0), x).records
+    board, _ = board_with({"line/a": eng}, {})
+    for r in recs:
+        board.record(dataclasses.replace(r, p_value=float("nan")))  # JSON has no NaN (RFC 8259, 6)
+    code, body, ctype = board.page("/status/stream.json", "name=line%2Fa")
+    assert code == 200 and ctype == "application/json"
+    assert b"NaN" not in body
+    doc = json.loads(body)
+    # No main thread copied the held samples here: the page says none, and still has its events.
+    assert doc["samples"]["held"] == 0 and doc["earlier"]["t"] == []
+    assert [r["p_value"] for r in doc["events"][0]["records"]] == [None, None]
+    assert board.page("/status/stream.json", "name=line%2Fb")[0] == 404
+    assert board.page("/status.json", "limit=x")[0] == 400
+
+
 # ---------------------------------------------------------------- the real daemon
 def publish_line(publisher: Any, alerts: Any, n: int = 700, step_at: int = 450) -> None:
     """The three heads at 1 Hz; head1 steps up 4 sigma at sample ``step_at``.  From the step
