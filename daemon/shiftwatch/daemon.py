@@ -402,6 +402,12 @@ class Daemon:
         if streams:
             self.log.info("restored %d stream(s) from the snapshot of %s", restored,
                           stamp(float(meta.get("saved_at", 0.0)), self.tz))
+        # The status page's last events (records of streams no longer configured are left out).
+        saved = meta.get("status_records")
+        if isinstance(saved, list):
+            self.status.restore([r for r in saved if isinstance(r, list) and len(r) == 2
+                                 and isinstance(r[1], dict) and isinstance(r[1].get("stream"), str)
+                                 and r[1]["stream"] in self.engines])
         token = meta.get("journal")
         self._replay_journal(token if isinstance(token, str) else "none")
 
@@ -1015,7 +1021,8 @@ class Daemon:
             self.store.save({n: e.get_state() for n, e in self.engines.items()},
                             {"saved_at": time.time(), "journal": token,
                              "filters": {n: self._filters[n] for n in self.engines
-                                         if n in self._filters}})
+                                         if n in self._filters},
+                             "status_records": self.status.export()})
         except OSError as exc:
             # The journal still belongs to the previous snapshot: it keeps growing.
             self.metrics.snapshot_failures.inc()

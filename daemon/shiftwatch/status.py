@@ -58,6 +58,9 @@ WATCH_S = 30.0
 #: events per stream that keep them.
 CONTEXT_SAMPLES = 600
 CONTEXT_EVENTS = 2
+#: Records saved with each state snapshot (the newest, at most two per stream), so the page
+#: shows each stream's last event again after a restart.
+SAVED_RECORDS = 2000
 #: Streams whose held samples are copied at once, at most (pages open on different streams).
 WATCH_MAX = 16
 #: Seconds a request for a stream's page waits for the main thread's first copy of its samples
@@ -291,6 +294,37 @@ class StatusBoard:
                     c = self._context[rec.stream] = deque(maxlen=CONTEXT_EVENTS)
                 c.append((rec.id, [float(v) for v in held[0][-CONTEXT_SAMPLES:]],
                           [float(v) for v in held[1][-CONTEXT_SAMPLES:]]))
+
+    def export(self, limit: int = SAVED_RECORDS) -> list[list[Any]]:
+        """The newest records (two per stream at most, ``limit`` in all) for the state snapshot:
+        ``[recorded_at, record fields]`` each, oldest first."""
+        with self._lock:
+            pairs = [p for q in self._records.values() for p in list(q)[-2:]]
+        pairs.sort(key=lambda p: p[0])
+        return [[t, dataclasses.asdict(rec)] for t, rec in pairs[-limit:]]
+
+    def restore(self, saved: object) -> int:
+        """Take back records saved by :meth:`export` (from a snapshot); entries that are not
+        well-formed are skipped.  Returns how many were taken."""
+        if not isinstance(saved, list):
+            return 0
+        names = {f.name for f in dataclasses.fields(AlertRecord)}
+        taken = 0
+        with self._lock:
+            for item in saved:
+                try:
+                    t, fields = item
+                    if not isinstance(fields, dict) or set(fields) - names:
+                        continue
+                    rec = AlertRecord(**fields)
+                    if not isinstance(rec.stream, str) or not isinstance(rec.id, str):
+                        continue
+                    q = self._records.setdefault(rec.stream, deque(maxlen=RECORDS_KEPT))
+                    q.append((float(t), rec))
+                    taken += 1
+                except (TypeError, ValueError):
+                    continue
+        return taken
 
     def forget(self, stream: str) -> None:
         """A stream removed by a reload."""

@@ -266,6 +266,33 @@ def test_the_daemon_serves_the_status_json_and_the_stream_page_on_its_metrics_li
     assert [s["stream"] for s in json.loads(res.stdout)["streams"]] == [QUIET[0]]
 
 
+def test_the_last_event_is_shown_again_after_a_restart(line_daemon: tuple[Any, Any]) -> None:
+    d, alerts = line_daemon
+    conf = alerts.records("confirmed")[-1]
+    base = f"http://127.0.0.1:{d.metrics_port}"
+    assert d.stop() == 0  # its last snapshot carries the page's records
+    d.start()
+    doc = json.loads(get(base + "/status.json")[2])
+    first = doc["streams"][0]
+    assert first["stream"] == STEPPED and first["last_event"]["id"] == conf["id"]
+    assert first["last_event"]["phase"] == "confirmed" and first["recent"]
+
+
+def test_saved_records_come_back_and_bad_entries_are_skipped() -> None:
+    eng = StreamEngine("line/a", unit="g")
+    x = series(4)
+    x[500:] += 2.0
+    recs = eng.process(T0 + np.arange(700.0), x).records
+    board, m = board_with({"line/a": eng}, {})
+    for r in recs:
+        board.record(r)
+    saved = json.loads(json.dumps(board.export()))  # as the snapshot stores it
+    again = StatusBoard(m.streams)
+    assert again.restore([*saved, ["x"], [1.0, {"id": "a", "nonsense": 1}], [1.0, {"stream": 3}], 7]) == 2
+    assert again.overview()["streams"][0]["last_event"]["id"] == recs[-1].id
+    assert again.restore({"not": "a list"}) == 0
+
+
 def test_status_names_the_address_when_no_daemon_answers(tmp_path: Path, shiftwatch_cmd: list[str]) -> None:
     from shiftwatch.broker import free_port
 
