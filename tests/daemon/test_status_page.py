@@ -454,3 +454,65 @@ def test_the_demo_prints_the_status_page_and_it_answers(shiftwatch_cmd: list[str
     finally:
         proc.send_signal(signal.SIGINT)
         proc.wait(60)
+
+
+def test_fields_other_parts_provide_show_on_the_page_and_absent_ones_leave_no_gap(browser: Any) -> None:
+    # The real endpoint and board in this process, with providers as the acknowledgement,
+    # hold and Sparkplug parts would add them; a thread stands in for the daemon's main
+    # thread, copying the held samples of open pages after each "round".
+    import threading
+
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    t = T0 + np.arange(700.0)
+    engines = {}
+    records = []
+    for k, name in enumerate(("line/filler/a", "line/filler/b", "line/oven/c")):
+        eng = StreamEngine(name, unit="g" if "filler" in name else "Cel")
+        x = series(3 if k == 0 else k + 20)
+        if k == 0:
+            x[695:] += 2.0  # still open at the end (see the first test)
+        records += eng.process(t, x).records
+        engines[name] = eng
+    assert engines["line/filler/a"].state == "event_open"
+    board, m = board_with(engines, {"line/filler/a": "filler A"})
+    for r in records:
+        board.record(r)
+    board.add_provider(lambda n: {"ack": {"acked": True, "by": "shift B", "note": "nozzle checked"}}
+                       if n == "line/filler/a" else None)
+    board.add_provider(lambda n: {"hold": {"kind": "hold", "note": "cleaning"}} if n == "line/oven/c" else None)
+    board.add_provider(lambda n: {"stale": True} if n == "line/filler/b" else None)
+    stop = threading.Event()
+
+    def main_thread() -> None:
+        while not stop.is_set():
+            board.serve_windows(engines)
+            stop.wait(0.05)
+
+    helper = threading.Thread(target=main_thread, daemon=True)
+    helper.start()
+    server = m.serve("127.0.0.1:0", pages=board)
+    try:
+        base = f"http://127.0.0.1:{server.port}"
+        browser.get(base + "/status")
+        WebDriverWait(browser, 30).until(lambda b: len(b.find_elements(By.CSS_SELECTOR, "tr.stream")) == 3)
+        rows = browser.execute_script(
+            "return Array.from(document.querySelectorAll('tr.stream')).map(r => [r.dataset.stream, "
+            "r.className, r.cells[1].textContent])")
+        # Open first, then the stale one, then the rest; each tag where a provider gave one.
+        assert rows[0] == ["line/filler/a", "stream open", "event open seen by shift B"]
+        assert rows[1] == ["line/filler/b", "stream stale", "watching stale"]
+        assert rows[2] == ["line/oven/c", "stream", "watching hold"]
+        screenshot(browser, "status-extras.png")
+        browser.get(f"{base}/status/stream?name={quote('line/filler/a', safe='')}")
+        WebDriverWait(browser, 30).until(lambda b: int(b.find_element(By.ID, "chart").get_attribute(
+            "data-samples") or 0) > 100)
+        facts = browser.find_element(By.ID, "facts").text
+        assert "acknowledged\nyes, by shift B: nozzle checked" in facts and "stale" not in facts
+        assert browser.execute_script("return document.querySelectorAll('#records tr.record').length") == 1
+        assert [e for e in browser.get_log("browser") if e["level"] in ("SEVERE", "WARNING")] == []
+    finally:
+        stop.set()
+        helper.join(5)
+        server.close()
