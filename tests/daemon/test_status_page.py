@@ -511,6 +511,7 @@ def test_fields_other_parts_provide_show_on_the_page_and_absent_ones_leave_no_ga
         facts = browser.find_element(By.ID, "facts").text
         assert "acknowledged\nyes, by shift B: nozzle checked" in facts and "stale" not in facts
         assert browser.execute_script("return document.querySelectorAll('#records tr.record').length") == 1
+        screenshot(browser, "status-open-event.png")
         assert [e for e in browser.get_log("browser") if e["level"] in ("SEVERE", "WARNING")] == []
     finally:
         stop.set()
