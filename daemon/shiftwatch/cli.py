@@ -672,6 +672,31 @@ def cmd_check(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_status(args: argparse.Namespace) -> int:
+    from shiftwatch.config import ConfigError, load_config
+    from shiftwatch.status import fetch_overview, format_table, status_url
+
+    try:
+        cfg = load_config(args.config)
+    except ConfigError as exc:
+        _err(str(exc))
+        return EXIT_USAGE
+    tls = cfg.metrics.tls
+    url = args.url or status_url(cfg.metrics.listen, tls is not None)
+    try:
+        doc = fetch_overview(url, query=args.filter or "", limit=args.limit,
+                             ca_file=args.ca_file or (tls.cert_file if tls else None),
+                             cert_file=args.cert_file, key_file=args.key_file)
+    except OSError as exc:
+        _err(f"cannot read the status: {exc}")
+        return EXIT_USAGE
+    if args.json:
+        print(json.dumps(doc, indent=2))
+    else:
+        print(format_table(doc))
+    return EXIT_OK
+
+
 def cmd_schema(args: argparse.Namespace) -> int:
     from shiftwatch.config import json_schema
 
@@ -774,6 +799,20 @@ def build_parser() -> argparse.ArgumentParser:
     ck.add_argument("--no-network", action="store_true",
                     help="do not try to connect to the broker (the other probes still run)")
     ck.set_defaults(func=cmd_check)
+
+    st = sub.add_parser("status", help="print every stream's status from the running daemon "
+                        "(the status page's figures) as a table")
+    st.add_argument("--config", required=True, help="YAML configuration file of the running daemon "
+                    "(its metrics.listen and metrics.tls say where to ask)")
+    st.add_argument("--filter", metavar="TEXT", help="only streams whose name or label holds TEXT")
+    st.add_argument("--limit", type=int, default=500, help="rows at most (default 500)")
+    st.add_argument("--json", action="store_true", help="print the JSON as the daemon gives it")
+    st.add_argument("--url", help="ask here instead (e.g. https://edge7.example:9650/status.json)")
+    st.add_argument("--ca-file", help="CA that signed the endpoint's certificate (default: "
+                    "metrics.tls.cert_file, which serves for a self-signed one)")
+    st.add_argument("--cert-file", help="client certificate, when the endpoint asks for one")
+    st.add_argument("--key-file", help="its private key")
+    st.set_defaults(func=cmd_status)
 
     sc = sub.add_parser("schema", help="print the JSON Schema of the configuration file (for editors)")
     sc.set_defaults(func=cmd_schema)

@@ -43,6 +43,7 @@ from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
 from shiftwatch.notify import sd_notify, watchdog_interval
 from shiftwatch.outbox import Outbox
 from shiftwatch.statestore import StateStore
+from shiftwatch.status import StatusBoard
 
 #: Messages taken from the queue per processing round (acks go out after each
 #: round).  Large rounds give each stream's engine longer batches; a round also
@@ -307,6 +308,13 @@ class Daemon:
         self._new_lines = self._new_held = 0
         self._new_last = ""
         self._early_snapshot_failed = False
+        #: What the status page shows beyond the metrics (records, rates, held samples).
+        self.status = StatusBoard(self.metrics.streams, self._label, time_zone=self.tz)
+        self.metrics.label_for = self.status.label
+
+    def _label(self, name: str) -> str | None:
+        """The configured label of a stream (the status board caches it)."""
+        return self.cfg.label_for(name, self._filters.get(name))
 
     # ------------------------------------------------------------ topics
     @property
@@ -394,6 +402,12 @@ class Daemon:
         if streams:
             self.log.info("restored %d stream(s) from the snapshot of %s", restored,
                           stamp(float(meta.get("saved_at", 0.0)), self.tz))
+        # The status page's last events (records of streams no longer configured are left out).
+        saved = meta.get("status_records")
+        if isinstance(saved, list):
+            self.status.restore([r for r in saved if isinstance(r, list) and len(r) == 2
+                                 and isinstance(r[1], dict) and isinstance(r[1].get("stream"), str)
+                                 and r[1]["stream"] in self.engines])
         token = meta.get("journal")
         self._replay_journal(token if isinstance(token, str) else "none")
 
@@ -467,12 +481,14 @@ class Daemon:
             self.server = self.metrics.serve(
                 self.cfg.metrics.listen, certfile=mtls.cert_file if mtls else None,
                 keyfile=mtls.key_file if mtls else None,
-                client_cafile=mtls.client_ca_file if mtls else None)
+                client_cafile=mtls.client_ca_file if mtls else None, pages=self.status)
         except OSError as exc:
             what = "metrics.tls: " if mtls else ""
             raise OSError(f"metrics endpoint {self.cfg.metrics.listen}: {what}{exc}") from None
-        self.log.info("metrics on %s://%s:%d/metrics%s", "https" if mtls else "http",
-                      self.server.host, self.server.port,
+        scheme = "https" if mtls else "http"
+        host = f"[{self.server.host}]" if ":" in self.server.host else self.server.host
+        self.log.info("metrics on %s://%s:%d/metrics, status page on %s://%s:%d/status%s", scheme,
+                      host, self.server.port, scheme, host, self.server.port,
                       " (client certificates required)" if mtls and mtls.client_ca_file else "")
         password = read_password(self.cfg.broker, self.env)
         self.link = MqttLink(
@@ -524,6 +540,7 @@ class Daemon:
         next_check = time.monotonic() + 1.0
         while not self._stop.is_set():
             self.round(timeout=0.2)
+            self.status.tick()
             if self.journal is not None:
                 self.journal.sync_if_due()
             now = time.monotonic()
@@ -558,6 +575,7 @@ class Daemon:
         if self._new_held:
             self._flush_new_streams(time.monotonic())
         if not msgs:
+            self.status.serve_windows(self.engines)
             self.send_due_levels()
             self.rlog.flush(time.time())
             self._gauges()
@@ -565,6 +583,7 @@ class Daemon:
                 self._trim_heap(idle=True)
             return 0
         self.process(msgs)
+        self.status.serve_windows(self.engines)
         self.send_due_levels()
         self.rlog.flush(time.time())
         self._gauges()
@@ -846,6 +865,8 @@ class Daemon:
             self._track(mid, key)
         self.records_published += 1
         self.metrics.alert_delay.observe(max(0.0, time.time() - arrived))
+        eng = self.engines.get(rec.stream) if rec.phase == "detected" else None
+        self.status.record(rec, None if eng is None else eng.held_samples())
         fields = {"stream": rec.stream, "event_id": rec.id, "phase": rec.phase}
         if label is None:
             self.log.info("%s [id %s]", d["summary"], rec.id, extra=fields)
@@ -1000,7 +1021,8 @@ class Daemon:
             self.store.save({n: e.get_state() for n, e in self.engines.items()},
                             {"saved_at": time.time(), "journal": token,
                              "filters": {n: self._filters[n] for n in self.engines
-                                         if n in self._filters}})
+                                         if n in self._filters},
+                             "status_records": self.status.export()})
         except OSError as exc:
             # The journal still belongs to the previous snapshot: it keeps growing.
             self.metrics.snapshot_failures.inc()
@@ -1083,6 +1105,7 @@ class Daemon:
                 del self.engines[name]
                 self._filters.pop(name, None)
                 self.metrics.remove_stream(name)
+                self.status.forget(name)
                 self._clear_levels(name)
                 dropped += 1
                 continue
@@ -1097,6 +1120,7 @@ class Daemon:
         # endpoint, the state directory) stay as they were until the next start.
         self.cfg = dataclasses.replace(self.cfg, streams=new.streams, detection=new.detection)
         self._spec_cache.clear()
+        self.status.forget_labels()
         if self.link is not None:
             self.link.set_subscriptions(sorted(new_filters), added=sorted(new_filters - old_filters),
                                         removed=sorted(old_filters - new_filters))

@@ -223,7 +223,9 @@ def run_demo(duration: float = 75.0, *, out: TextIO = sys.stdout, metrics_listen
             time.sleep(0.05)
         if daemon.server is not None:
             why = f"\n           ({moved}, so the demo took a free one; --metrics-listen chooses)" if moved else ""
-            w(f"  metrics  http://{host or '127.0.0.1'}:{daemon.server.port}/metrics{why}\n\n")
+            base = f"http://{host or '127.0.0.1'}:{daemon.server.port}"
+            w(f"  status   {base}/status  (every stream at a glance, in a browser on this machine)\n")
+            w(f"  metrics  {base}/metrics{why}\n\n")
         line.start()
         deadline = start + duration
         while time.time() < deadline and runner.is_alive():

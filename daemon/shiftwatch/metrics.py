@@ -24,6 +24,7 @@ Names follow Prometheus conventions (base units, ``_total`` on counters,
 ``shiftwatch_test_threshold{stream}``        the statistic's alarm threshold
 ``shiftwatch_last_shift_timestamp_seconds``  when the last confirmed shift started
 ``shiftwatch_stream_info{stream,state}``     1, labelled with the engine state
+``shiftwatch_stream_display_info``           1, labelled with the stream's ``label`` and ``unit``
 ``shiftwatch_streams``                       streams tracked
 ==========================================  =============================================
 
@@ -48,7 +49,7 @@ import time
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass
 from types import MappingProxyType
-from typing import Any, Self
+from typing import Any, Protocol, Self
 from urllib.parse import parse_qs, urlsplit
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram
@@ -96,6 +97,7 @@ class StreamStats:
         threshold is NaN while no test has been designed.
     last_shift_at : epoch seconds at which the last confirmed shift started, or None.
     state : the engine state (``warming_up``, ``watching``, ``event_open``).
+    unit : the unit of the readings, when known.
     """
 
     samples_total: int
@@ -107,6 +109,7 @@ class StreamStats:
     threshold: float
     last_shift_at: float | None
     state: str
+    unit: str | None = None
 
     @classmethod
     def from_engine(cls, engine: Any) -> StreamStats:
@@ -133,6 +136,7 @@ class StreamStats:
             threshold=float(engine.threshold),
             last_shift_at=engine.last_shift_at,
             state=str(engine.state),
+            unit=engine.unit,
         )
 
 
@@ -214,6 +218,25 @@ def _fam_info(names: list[str], stats: list[StreamStats]) -> Metric:
     for name, st in zip(names, stats):
         f.add_metric([name, st.state], 1.0)
     return f
+
+
+def _display_info(labels: Callable[[str], str | None]) -> Callable[[list[str], list[StreamStats]], Metric]:
+    """``shiftwatch_stream_display_info``: the label and unit of each stream, once, for panels.
+
+    A stream without a configured label or a known unit has that label empty
+    (which PromQL treats as absent).
+    """
+
+    def family(names: list[str], stats: list[StreamStats]) -> Metric:
+        f = GaugeMetricFamily(
+            "shiftwatch_stream_display_info", "Always 1; the label and unit labels are the "
+            "stream's configured label and the unit of its readings (empty when none).",
+            labels=["stream", "label", "unit"])
+        for name, st in zip(names, stats):
+            f.add_metric([name, labels(name) or "", st.unit or ""], 1.0)
+        return f
+
+    return family
 
 
 def _fam_count(names: list[str], stats: list[StreamStats]) -> Metric:
@@ -301,6 +324,18 @@ class _Connection:
 
 
 _Key = tuple[str, tuple[str, ...], bool]
+#: The ``accept`` of a render key that asks for a page of the status board, not the exposition.
+_PAGE = "\x00page"
+
+
+class PageSource(Protocol):
+    """What the endpoint needs of the status board (:class:`shiftwatch.status.StatusBoard`)."""
+
+    def page(self, path: str, query: str) -> tuple[int, bytes, str]: ...
+
+    def want(self, name: str) -> bool: ...
+
+    def has_stream(self, name: str) -> bool: ...
 
 
 class _Renderer:
@@ -318,8 +353,9 @@ class _Renderer:
     takes at most about half of one core however hard it is pushed.
     """
 
-    def __init__(self, registry: CollectorRegistry) -> None:
+    def __init__(self, registry: CollectorRegistry, pages: PageSource | None = None) -> None:
         self._registry = registry
+        self._pages = pages
         self._cv = threading.Condition()
         self._waiting: dict[_Key, list[tuple[asyncio.AbstractEventLoop, asyncio.Future[Any]]]] = {}
         self._closed = False
@@ -362,13 +398,17 @@ class _Renderer:
             with self._cv:  # rest as long as the render took (or until closed)
                 self._cv.wait_for(lambda: self._closed, timeout=min(took, 5.0))
 
-    def _render(self, accept: str, names: tuple[str, ...], zipped: bool) -> tuple[bytes, str, bool]:
-        encoder, content_type = choose_encoder(accept)
-        registry: Any = self._registry.restricted_registry(list(names)) if names else self._registry
-        out = encoder(registry)
+    def _render(self, accept: str, names: tuple[str, ...], zipped: bool) -> tuple[bytes, str, bool, int]:
+        status = 200
+        if accept == _PAGE and self._pages is not None:
+            status, out, content_type = self._pages.page(*names)
+        else:
+            encoder, content_type = choose_encoder(accept)
+            registry: Any = self._registry.restricted_registry(list(names)) if names else self._registry
+            out = encoder(registry)
         if zipped:
             out = gzip.compress(out, compresslevel=1)
-        return out, content_type, zipped
+        return out, content_type, zipped, status
 
 
 def _settle(fut: asyncio.Future[Any], result: Any) -> None:
@@ -380,7 +420,7 @@ def _settle(fut: asyncio.Future[Any], result: Any) -> None:
         fut.set_result(result)
 
 
-_STATUS = {200: "OK", 400: "Bad Request", 404: "Not Found", 405: "Method Not Allowed",
+_STATUS = {200: "OK", 303: "See Other", 400: "Bad Request", 404: "Not Found", 405: "Method Not Allowed",
            500: "Internal Server Error", 503: "Service Unavailable"}
 
 #: Longest request head (request line and headers) read; a longer one is cut off.
@@ -413,7 +453,8 @@ class _Endpoint:
     """
 
     def __init__(self, host: str, port: int, tls: ssl.SSLContext | None, deadline: float,
-                 max_connections: int, registry: CollectorRegistry) -> None:
+                 max_connections: int, registry: CollectorRegistry,
+                 pages: PageSource | None = None) -> None:
         if max_connections < 1:
             raise ValueError(f"max_connections must be at least 1, got {max_connections}")
         family, _, _, _, sockaddr = socket.getaddrinfo(
@@ -439,10 +480,11 @@ class _Endpoint:
         self._loop = asyncio.new_event_loop()
         self._loop.set_exception_handler(lambda loop, context: None)  # clients' faults are no events
         self._ready = threading.Event()
+        self.pages = pages
         self.renderer: _Renderer | None = None
         self.thread: threading.Thread | None = None
         try:
-            self.renderer = _Renderer(registry)
+            self.renderer = _Renderer(registry, pages)
             self.thread = threading.Thread(target=self._serve, name="metrics-http", daemon=True)
             self.thread.start()
             self._ready.wait()
@@ -567,22 +609,72 @@ class _Endpoint:
             writer.write(_response(405, b"only GET and HEAD are served\n"))
             return
         url = urlsplit(target)
+        accept = headers.get("accept", "")
+        zipped = gzip_accepted(headers.get("accept-encoding", ""))
+        head_only = method == "HEAD"
+        pages = self.pages
+        if pages is not None and (url.path == "/status" or url.path.startswith("/status/")
+                                  or url.path == "/status.json"):
+            await self._answer_page(pages, url.path, url.query, zipped, head_only, writer)
+            return
+        if url.path == "/" and pages is not None and "text/html" in accept:
+            # A person's browser at the bare address gets the status page; scrapers (which
+            # never ask for HTML) still get the exposition at / as before.
+            writer.write(_response(303, b"the status page is at /status\n",
+                                   extra=(("Location", "/status"),), head_only=head_only))
+            return
         if url.path not in ("/metrics", "/"):
-            writer.write(_response(404, b"not found; the metrics are at /metrics\n"))
+            writer.write(_response(404, b"not found; the metrics are at /metrics, the status page "
+                                   b"at /status\n"))
             return
         names = tuple(sorted(parse_qs(url.query).get("name[]", [])))
-        key = (headers.get("accept", ""), names, gzip_accepted(headers.get("accept-encoding", "")))
-        fut: asyncio.Future[tuple[bytes, str, bool]] = self._loop.create_future()
+        await self._rendered((accept, names, zipped), head_only, writer,
+                             b"the metrics could not be rendered\n")
+
+    async def _rendered(self, key: _Key, head_only: bool, writer: asyncio.StreamWriter,
+                        failed: bytes, extra: tuple[tuple[str, str], ...] = ()) -> None:
+        """Have the render thread make the answer to ``key`` and send it."""
+        fut: asyncio.Future[tuple[bytes, str, bool, int]] = self._loop.create_future()
         assert self.renderer is not None
         self.renderer.submit(key, fut)
         try:
-            body, content_type, zipped = await fut
-        except Exception:  # noqa: BLE001  whatever failed the render, the scrape gets a 500
-            writer.write(_response(500, b"the metrics could not be rendered\n"))
+            body, content_type, zipped, status = await fut
+        except Exception:  # noqa: BLE001  whatever failed the render, the request gets a 500
+            writer.write(_response(500, failed))
             return
-        extra = (("Content-Encoding", "gzip"),) if zipped else ()
-        writer.write(_response(200, body, content_type, extra, head_only=method == "HEAD"))
+        if zipped:
+            extra += (("Content-Encoding", "gzip"),)
+        writer.write(_response(status, body, content_type, extra, head_only=head_only))
         await writer.drain()
+
+    async def _answer_page(self, pages: PageSource, path: str, query: str, zipped: bool,
+                           head_only: bool, writer: asyncio.StreamWriter) -> None:
+        """The status page, its files and its JSON (see :mod:`shiftwatch.status`)."""
+        from shiftwatch import status  # the page's module, imported only when a page is asked for
+
+        extra = _PAGE_HEADERS
+        if path.startswith("/status/assets/"):
+            name = path.removeprefix("/status/assets/")
+            if name not in status.ASSETS:
+                writer.write(_response(404, b"not found\n"))
+                return
+            writer.write(_response(200, status.asset(name), status.ASSETS[name], extra,
+                                   head_only=head_only))
+            await writer.drain()
+            return
+        if path not in status.PAGE_PATHS:
+            writer.write(_response(404, b"not found; the status page is at /status\n"))
+            return
+        if path == "/status/stream.json":
+            # The main thread copies a stream's held samples after its rounds, once a page
+            # asks for them: wait here (not in the render thread) for the first copy.
+            name = parse_qs(query).get("name", [""])[0]
+            if pages.has_stream(name):
+                deadline = time.monotonic() + status.WINDOW_WAIT_S
+                while not pages.want(name) and time.monotonic() < deadline:
+                    await asyncio.sleep(0.02)
+        await self._rendered((_PAGE, (path, query), zipped), head_only, writer,
+                             b"the status page could not be rendered\n", extra)
 
     # ----------------------------------------------------------- from other threads
     def open_connections(self) -> int:
@@ -597,6 +689,18 @@ class _Endpoint:
         if self.renderer is not None:
             self.renderer.close()
         self.sock.close()
+
+
+#: Headers of the status page's answers: nothing may be loaded from anywhere but this
+#: endpoint, and no answer is cached (the page asks again every few seconds).
+_PAGE_HEADERS = (
+    ("Content-Security-Policy", ("default-src 'none'; script-src 'self'; style-src 'self'; "
+                                 "connect-src 'self'; img-src 'self'; base-uri 'none'; "
+                                 "form-action 'none'; frame-ancestors 'none'")),
+    ("X-Content-Type-Options", "nosniff"),
+    ("Cache-Control", "no-store"),
+    ("Referrer-Policy", "no-referrer"),
+)
 
 
 def _tls_context(certfile: str, keyfile: str, client_cafile: str | None) -> ssl.SSLContext:
@@ -739,8 +843,12 @@ class Metrics:
             "shiftwatch_stream_states_set_aside",
             "Saved stream states that could not be used at start (malformed or damaged); "
             "those streams warmed up again.", registry=reg)
+        #: The operator's label of a stream (the daemon sets it; shown in
+        #: ``shiftwatch_stream_display_info``).  Called from the render thread.
+        self.label_for: Callable[[str], str | None] = lambda name: None
         for family in _FAMILIES:
             reg.register(_StreamCollector(self, family))
+        reg.register(_StreamCollector(self, _display_info(lambda name: self.label_for(name))))
 
     def update_stream(self, stream: str, stats: StreamStats) -> None:
         """Replace the stream's snapshot with ``stats`` (safe to call from any thread)."""
@@ -756,10 +864,15 @@ class Metrics:
         with self._lock:
             return dict(self._streams)
 
+    def streams(self) -> dict[str, StreamStats]:
+        """The latest snapshot of every stream (a copy; safe to call from any thread)."""
+        return self._snapshot()
+
     def serve(self, listen: str = DEFAULT_LISTEN, *, certfile: str | None = None,
               keyfile: str | None = None, client_cafile: str | None = None,
               connection_timeout: float = CONNECTION_TIMEOUT,
-              max_connections: int = MAX_CONNECTIONS) -> MetricsServer:
+              max_connections: int = MAX_CONNECTIONS,
+              pages: PageSource | None = None) -> MetricsServer:
         """Serve the registry over HTTP (HTTPS when a certificate and key are given).
 
         One asyncio loop in one thread serves every connection, and one more thread
@@ -777,6 +890,9 @@ class Metrics:
         connection_timeout : seconds a connection may last in all, from accept to the end of
             the response, however slowly it sends; then it is closed.
         max_connections : connections open at once, at most (see :class:`_Endpoint`).
+        pages : the status board whose page and JSON are served under ``/status`` on the
+            same address, with the same TLS, deadline and bound on connections; None serves
+            the metrics only.
 
         Returns
         -------
@@ -799,4 +915,4 @@ class Metrics:
         if certfile is not None and keyfile is not None:
             tls = _tls_context(certfile, keyfile, client_cafile)
         return MetricsServer(_Endpoint(host, port, tls, connection_timeout, max_connections,
-                                       self.registry))
+                                       self.registry, pages))

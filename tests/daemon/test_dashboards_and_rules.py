@@ -88,6 +88,9 @@ def dashboard_queries() -> list[str]:
     for p in dash["panels"]:
         for t in p.get("targets", []):
             out.append(t["expr"])
+    for a in dash["annotations"]["list"]:
+        if "expr" in a:
+            out.append(a["expr"])
     for v in dash["templating"]["list"]:
         q = v.get("query")
         if isinstance(q, dict):
@@ -100,7 +103,7 @@ def dashboard_queries() -> list[str]:
 def fill_grafana_variables(expr: str) -> str:
     """Grafana's variables as a real query would have them (Grafana documentation, "Global variables")."""
     return (expr.replace("$__rate_interval", "2m").replace("$__range", "6h")
-            .replace("$job", "shiftwatch").replace("$stream", ".*"))
+            .replace("$job", "shiftwatch").replace("$stream", ".*").replace("$unit", "g"))
 
 
 # ------------------------------------------------------------------ rules
@@ -236,6 +239,25 @@ def test_the_dashboard_is_a_well_formed_grafana_dashboard() -> None:
     titles = " ".join(p["title"].lower() for p in dash["panels"])
     for wanted in ("level", "sigma", "alert records", "broker", "ingest", "drops"):
         assert wanted in titles, wanted
+    # The level panel is repeated per unit (Grafana documentation, "Configure repeating panels":
+    # repeat names a variable with several values), with the unit in its title and axis label,
+    # so no axis mixes units.
+    levels = [p for p in dash["panels"] if p["title"].startswith("Level")]
+    per_unit = next(p for p in levels if p.get("repeat") == "unit")
+    assert "$unit" in per_unit["title"] and per_unit["fieldConfig"]["defaults"]["custom"]["axisLabel"] == "$unit"
+    assert 'unit="$unit"' in per_unit["targets"][0]["expr"]
+    unit_var = next(v for v in dash["templating"]["list"] if v["name"] == "unit")
+    assert unit_var["multi"] and unit_var["includeAll"]
+    assert "shiftwatch_stream_display_info" in unit_var["query"]["query"]
+    # Streams without a unit have a panel of their own; every level query shows one unit only.
+    assert any('unit!=""' in p["targets"][0]["expr"] and "unless" in p["targets"][0]["expr"] for p in levels)
+    # Confirmed steps and planned changes are marked from the metrics (Grafana documentation,
+    # "Annotations": a Prometheus query whose series become annotations).
+    marks = {a["name"]: a for a in dash["annotations"]["list"]}
+    assert 'phase="confirmed"' in marks["Confirmed steps"]["expr"]
+    assert 'phase="planned"' in marks["Planned changes"]["expr"]
+    for a in marks.values():
+        assert a["datasource"]["uid"] == "${datasource}" and a["enable"] and a["step"]
     # The caution is on the board itself, at the top (a dashboard's description is not shown).
     top = min(dash["panels"], key=lambda p: (p["gridPos"]["y"], p["gridPos"]["x"]))
     assert top["type"] == "text" and top["gridPos"]["w"] == 24
@@ -324,7 +346,7 @@ def test_every_metric_the_dashboard_and_rules_use_is_on_the_real_endpoint(fed_da
     # The dashboard covers what the issue lists.
     for wanted in ("shiftwatch_level", "shiftwatch_sigma", "shiftwatch_alert_records_total",
                    "shiftwatch_broker_connected", "shiftwatch_messages_received_total",
-                   "shiftwatch_messages_dropped_total"):
+                   "shiftwatch_messages_dropped_total", "shiftwatch_stream_display_info"):
         assert "dashboard" in used.get(wanted, set()), wanted
 
 
@@ -349,3 +371,63 @@ def test_alerts_name_the_stream_by_its_label_in_the_record_and_the_log(fed_daemo
     log = d.log_text()
     assert conf["summary"] in log
     assert "[stream brackenfield/line2/filler/head7/fill, id " in log
+
+
+def test_the_level_panels_and_the_step_marks_select_what_they_say(tmp_path: Path) -> None:
+    # promtool's PromQL unit tests (Prometheus documentation, "Unit testing for rules",
+    # promql_expr_test): the dashboard's own queries, Grafana's variables filled in,
+    # evaluated on synthetic series at one-minute steps.
+    dash = json.loads(DASHBOARD.read_text())
+    levels = {p["title"]: p["targets"][0]["expr"] for p in dash["panels"] if p["title"].startswith("Level")}
+    marks = {a["name"]: a["expr"] for a in dash["annotations"]["list"]}
+    sel = 'job="shiftwatch",instance="edge1:9650"'
+    fill, oven, bare = ("brackenfield/line2/filler/head1/fill", "brackenfield/line2/oven/zone3",
+                        "brackenfield/line2/spare")
+
+    def fill_in(expr: str, unit: str = "g") -> str:
+        return fill_grafana_variables(expr).replace('unit="g"', f'unit="{unit}"')
+
+    series = [
+        {"series": f'shiftwatch_level{{{sel},stream="{fill}"}}', "values": "500x10"},
+        {"series": f'shiftwatch_level{{{sel},stream="{oven}"}}', "values": "180x10"},
+        {"series": f'shiftwatch_level{{{sel},stream="{bare}"}}', "values": "3x10"},
+        {"series": f'shiftwatch_stream_display_info{{{sel},stream="{fill}",label="fill weight head1",unit="g"}}',
+         "values": "1x10"},
+        {"series": f'shiftwatch_stream_display_info{{{sel},stream="{oven}",unit="Cel"}}', "values": "1x10"},
+        {"series": f'shiftwatch_stream_display_info{{{sel},stream="{bare}"}}', "values": "1x10"},
+        # head1's first confirmed step at 3m (the series appears), a second at 6m; a planned change at 8m.
+        {"series": f'shiftwatch_alert_records_total{{{sel},stream="{fill}",phase="confirmed"}}',
+         "values": "_ _ _ 1 1 1 2 2 2 2 2"},
+        {"series": f'shiftwatch_alert_records_total{{{sel},stream="{fill}",phase="planned"}}',
+         "values": "0 0 0 0 0 0 0 0 1 1 1"},
+    ]
+    head1 = {"job": "shiftwatch", "instance": "edge1:9650", "stream": fill}
+    info = {"label": "fill weight head1", "unit": "g"}
+
+    def lbl(d: dict[str, str]) -> str:
+        return "{" + ",".join(f'{k}="{v}"' for k, v in sorted(d.items())) + "}"
+
+    per_unit = next(e for t, e in levels.items() if "$unit" in t)
+    no_unit = next(e for t, e in levels.items() if "without a unit" in t)
+    checks = [
+        {"expr": fill_in(per_unit), "eval_time": "5m",
+         "exp_samples": [{"labels": lbl({**head1, **info}), "value": 500}]},
+        {"expr": fill_in(per_unit, "Cel"), "eval_time": "5m",
+         "exp_samples": [{"labels": lbl({**head1, "stream": oven, "unit": "Cel"}), "value": 180}]},
+        {"expr": fill_in(no_unit), "eval_time": "5m",
+         "exp_samples": [{"labels": f'shiftwatch_level{lbl({**head1, "stream": bare})}', "value": 3}]},
+    ]
+    conf = lbl({**head1, **info, "phase": "confirmed"})
+    for t, want in (("2m", []), ("3m", [{"labels": conf, "value": 1}]), ("4m", []), ("5m", []),
+                    ("6m", [{"labels": conf, "value": 1}]), ("7m", [])):
+        checks.append({"expr": fill_in(marks["Confirmed steps"]), "eval_time": t, "exp_samples": want})
+    planned = lbl({**head1, **info, "phase": "planned"})
+    for t, want in (("7m", []), ("8m", [{"labels": planned, "value": 1}]), ("9m", [])):
+        checks.append({"expr": fill_in(marks["Planned changes"]), "eval_time": t, "exp_samples": want})
+    spec = tmp_path / "dashboard.test.yml"
+    spec.write_text(yaml.safe_dump({"rule_files": [], "evaluation_interval": "1m", "tests": [
+        {"interval": "1m", "input_series": series, "promql_expr_test": checks}]}, sort_keys=False))
+    res = subprocess.run([promtool(), "test", "rules", str(spec)], check=False, capture_output=True,
+                         text=True, timeout=120)
+    assert res.returncode == 0, res.stdout + res.stderr
+    assert "SUCCESS" in res.stdout

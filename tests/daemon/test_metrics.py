@@ -195,7 +195,7 @@ def test_names_types_and_help(metrics: Metrics, served: MetricsServer) -> None:
         "shiftwatch_sigma": "gauge", "shiftwatch_test_statistic": "gauge",
         "shiftwatch_test_threshold": "gauge", "shiftwatch_last_shift_timestamp_seconds": "gauge",
         "shiftwatch_stream_info": "gauge", "shiftwatch_streams": "gauge",
-        "shiftwatch_broker_connected": "gauge", "shiftwatch_messages_received": "counter",
+        "shiftwatch_stream_display_info": "gauge", "shiftwatch_broker_connected": "gauge", "shiftwatch_messages_received": "counter",
         "shiftwatch_messages_processed": "counter",
         "shiftwatch_messages_dropped": "counter", "shiftwatch_alert_delay_seconds": "histogram",
         "shiftwatch_ingest_queue_depth": "gauge", "shiftwatch_outbox_depth": "gauge",
@@ -210,6 +210,19 @@ def test_names_types_and_help(metrics: Metrics, served: MetricsServer) -> None:
     # Nothing but our own metrics: no process or platform collectors on a private registry.
     # (prometheus_client adds a *_created gauge beside each of its own counters and histograms.)
     assert {n for n in fams if not n.endswith("_created")} == set(expected)
+
+
+def test_the_display_info_names_each_streams_label_and_unit_once(metrics: Metrics,
+                                                                 served: MetricsServer) -> None:
+    # An info-style series (Prometheus naming practice, "_info" with value 1 and the facts as
+    # labels), one per stream; an empty label is how the exposition leaves one out.
+    metrics.label_for = {"plant/a": "fill weight head a"}.get
+    metrics.update_stream("plant/a", watching(unit="g"))
+    metrics.update_stream("plant/b", watching())
+    got = {(s.labels["stream"], s.labels.get("label", ""), s.labels.get("unit", "")): s.value
+           for f in text_string_to_metric_families(scrape(served)) for s in f.samples
+           if s.name == "shiftwatch_stream_display_info"}
+    assert got == {("plant/a", "fill weight head a", "g"): 1.0, ("plant/b", "", ""): 1.0}
 
 
 def test_registries_are_independent() -> None:

@@ -619,6 +619,18 @@ class StreamEngine:
     def test_name(self) -> str:
         return self.settings.test
 
+    def held_samples(self) -> tuple[FloatArray, FloatArray]:
+        """Copies of the samples the engine holds now (its window): times and values, oldest first.
+
+        Examples
+        --------
+        >>> eng = StreamEngine("s")
+        >>> _ = eng.process([1.0, 2.0, 3.0], [5.0, 6.0, 7.0])
+        >>> [a.tolist() for a in eng.held_samples()]
+        [[1.0, 2.0, 3.0], [5.0, 6.0, 7.0]]
+        """
+        return self._window.times.copy(), self._window.values.copy()
+
     # ------------------------------------------------------------- feeding
     def process(self, times: Sequence[Any] | FloatArray, values: Sequence[Any] | FloatArray,
                 arrived: float | Sequence[float] | FloatArray | None = None) -> BatchResult:

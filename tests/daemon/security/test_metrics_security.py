@@ -226,3 +226,38 @@ def test_a_metrics_endpoint_open_to_the_network_without_tls_draws_a_warning(
     )
     res = cli("check", "--config", str(tls_cfg), "--no-network")
     assert res.returncode == 0 and "warning" not in res.stderr, res.stderr
+
+
+@pytest.mark.broker
+def test_the_status_page_has_the_metrics_tls_and_client_certificates(
+    broker: MosquittoBroker, tmp_path: Path, pki: Pki, run_daemon, shiftwatch_cmd
+) -> None:
+    import json
+    import subprocess
+    import urllib.request
+
+    d, port = https_daemon(tmp_path, broker, pki, run_daemon, client_ca=True)
+    assert f"status page on https://127.0.0.1:{port}/status (client certificates required)" in d.text()
+    viewer_cert, viewer_key = pki.plant.issue(
+        pki.directory, "status-viewer", dns=("supervisor-line2",), ips=(), client=True
+    )
+    trusted = ssl.create_default_context(cafile=str(pki.plant.cert_file))
+    url = f"https://127.0.0.1:{port}/status.json"
+    with pytest.raises(NOT_SERVED):  # no client certificate: the page is refused as the metrics are
+        urllib.request.urlopen(url, timeout=10, context=trusted)
+    with pytest.raises(NOT_SERVED):  # plain HTTP: nothing
+        urllib.request.urlopen(url.replace("https:", "http:"), timeout=10)
+    trusted.load_cert_chain(str(viewer_cert), str(viewer_key))
+    with urllib.request.urlopen(url, timeout=10, context=trusted) as r:
+        doc = json.loads(r.read())
+    assert doc["advisory"].startswith("Advisory only") and doc["streams"] == []
+    # `shiftwatch status` over the same HTTPS, with the client certificate.
+    cfg = str(d.config)
+    base = [*shiftwatch_cmd, "status", "--config", cfg, "--ca-file", str(pki.plant.cert_file)]
+    res = subprocess.run([*base, "--cert-file", str(viewer_cert), "--key-file", str(viewer_key)],
+                         capture_output=True, text=True, timeout=60, check=False)
+    assert res.returncode == 0, res.stderr
+    assert res.stdout.startswith("Advisory only") and "0 stream(s)" in res.stdout
+    res = subprocess.run(base, capture_output=True, text=True, timeout=60, check=False)
+    assert res.returncode == 2 and f"cannot read the status: {url}: " in res.stderr
+    assert d.stop() == 0
