@@ -27,11 +27,12 @@ from typing import Any
 
 import numpy as np
 import pytest
-from .faultkit import metric_matching
 
 from shiftwatch.broker import MosquittoBroker, free_port
 from shiftwatch.core.timefmt import format_time
 from shiftwatch.mqtt import PlainClient
+
+from .faultkit import metric_matching
 
 README = Path(__file__).resolve().parents[2] / "README.md"
 
@@ -326,9 +327,9 @@ def test_windows_survive_a_restart_a_kill_and_a_reload(daemon_factory, publisher
 def _readme_acl(prefix: str) -> str:
     """The ACL file the README gives installers (between its marker comments)."""
     text = README.read_text()
-    m = re.search(r"```\n(# shiftwatch ACL.*?)```", text, re.S)
+    m = re.search(r"```\n(# shiftwatch ACL.*?)```", text, re.DOTALL)
     assert m, "the README's Mosquitto ACL block is missing"
-    return m.group(1).replace("shiftwatch/line2", prefix).replace("brackenfield/line2", "brackenfield/line2")
+    return m.group(1).replace("shiftwatch/line2", prefix)
 
 
 def test_the_readme_acl_lets_operators_command_but_not_forge_alerts(tmp_path: Path, shiftwatch_cmd,
