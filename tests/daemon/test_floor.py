@@ -397,3 +397,22 @@ def test_the_readme_acl_lets_operators_command_but_not_forge_alerts(tmp_path: Pa
             assert d.stop() == 0
     finally:
         b.stop()
+
+
+def test_the_demo_shows_a_planned_changeover_without_alarm_beside_unplanned_steps_that_alarm(
+        shiftwatch_cmd) -> None:
+    # 52 s covers the announced recipe change on filler head 3 (44 s, its window to 50 s)
+    # and the unannounced steps on filler head 2 (24 s) and the oven (38 s).
+    res = subprocess.run(shiftwatch_cmd + ["demo", "--duration", "52s", "--metrics-listen", "127.0.0.1:0"],
+                         capture_output=True, check=False, text=True, timeout=180)
+    assert res.returncode == 0, res.stderr
+    out = res.stdout
+    assert "the MES announces a planned change on fill weight on filler head3" in out
+    assert re.search(r"planned window [0-9a-f]+ accepted for brackenfield/line2/filler/head3/fill", out), out
+    assert re.search(r"PLANNED fill weight on filler head3 stepped up [\d.]+ g .*no alarm", out), out
+    assert not re.search(r"(DETECTED|CONFIRMED) fill weight on filler head3", out), out
+    assert re.search(r"CONFIRMED fill weight on filler head2 stepped up", out), out
+    assert re.search(r"CONFIRMED tunnel oven zone3 temperature stepped down", out), out
+    recap = out.split("What happened")[1]
+    head3 = next(line for line in recap.splitlines() if "fill weight on filler head3" in line)
+    assert head3.rstrip().endswith("no alarm") and re.search(r"\+2 g at \d\d:\d\d:\d\dZ", head3), head3
