@@ -20,6 +20,7 @@ from __future__ import annotations
 import json
 import logging
 import os
+import threading
 from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Any
@@ -37,6 +38,7 @@ from shiftwatch.core.plans import (
     Command,
     CommandError,
     FloorBook,
+    StreamFloor,
     parse_command,
 )
 from shiftwatch.core.timefmt import format_time
@@ -79,6 +81,8 @@ class FloorDesk:
         self._publish = publish
         self._warn = warn
         self._saved = -1
+        #: Held while the book changes, and by view(): the status page reads from its own thread.
+        self._lock = threading.Lock()
         #: The newest sample time seen per stream (held samples included).
         self.newest: dict[str, float] = {}
         for kind in (PLAN, HOLD):
@@ -130,7 +134,8 @@ class FloorDesk:
                 except OSError:
                     pass
         if books:
-            self.book = max(books, key=lambda b: b.revision)
+            with self._lock:
+                self.book = max(books, key=lambda b: b.revision)
             self._saved = self.book.revision
             n = len(self.book.windows)
             if n:
@@ -138,7 +143,14 @@ class FloorDesk:
         self._gauge_windows()
 
     def get_state(self) -> dict[str, Any]:
-        return self.book.get_state()
+        with self._lock:
+            return self.book.get_state()
+
+    def view(self, name: str) -> StreamFloor:
+        """What people have said about a stream (holds, planned windows, events and their
+        acknowledgement), as of its newest sample: safe to call from any thread."""
+        with self._lock:
+            return self.book.view(name, self.newest.get(name))
 
     def save(self) -> bool:
         """Write the book (temporary file, fsync, rename) if it changed since the last write."""
@@ -189,11 +201,13 @@ class FloorDesk:
 
     def note(self, rec: AlertRecord) -> None:
         """An alert record went out: keep its event for acknowledgement."""
-        self.book.note_record(rec.stream, rec.phase, rec.id, rec.shift_at, rec.delta, rec.unit)
+        with self._lock:
+            self.book.note_record(rec.stream, rec.phase, rec.id, rec.shift_at, rec.delta, rec.unit)
         self._gauge_stream(rec.stream)
 
     def forget(self, name: str) -> None:
-        self.book.forget_stream(name)
+        with self._lock:
+            self.book.forget_stream(name)
         self.newest.pop(name, None)
         try:
             self.metrics.unacknowledged.remove(name)
@@ -225,7 +239,8 @@ class FloorDesk:
             verb = m.topic[len(base):]
             try:
                 cmd = parse_command(verb, bytes(m.payload), now)
-                out = self.book.apply(cmd, now, engines.keys())
+                with self._lock:
+                    out = self.book.apply(cmd, now, engines.keys())
             except CommandError as exc:
                 self._refuse(verb, exc, bytes(m.payload), now)
                 continue
@@ -258,7 +273,9 @@ class FloorDesk:
 
     def prune(self, now: float, engines: Mapping[str, StreamEngine]) -> None:
         """Forget windows long over (see core.plans.KEEP_AFTER)."""
-        if self.book.prune(now):
+        with self._lock:
+            gone = self.book.prune(now)
+        if gone:
             self.attach_all(engines)
             self._gauge_windows()
             self.save()
