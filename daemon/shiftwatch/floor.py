@@ -328,8 +328,9 @@ class FloorDesk:
             w = reply["window"]
             until = w["end"] or "ended by command"
             what = "planned window" if cmd.verb == PLAN else "hold"
-            self.log.info("%s %s announced%s for %s, from %s until %s%s; %d stream(s) match now",
-                          what, w["id"], by, w["target"], w["start"], until, note, reply["streams_now"])
+            self.log.info("%s %s announced%s for %s, from %s until %s%s; %d stream(s) match now (it changes "
+                          "only what shiftwatch reports, not what is safe)", what, w["id"], by, w["target"],
+                          w["start"], until, note, reply["streams_now"])
         elif cmd.verb == END:
             for w in reply["ended"]:
                 self.log.info("%s %s %s%s", "planned window" if w["kind"] == PLAN else "hold", w["id"],

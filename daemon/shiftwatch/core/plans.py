@@ -386,7 +386,7 @@ def parse_command(verb: str, payload: bytes | str | Mapping[str, Any], now: floa
 class Outcome:
     """What a command did: ``reply`` is the JSON-able reply (without the advisory,
     which the shell adds); ``ack`` the acknowledged event's stream and note;
-    ``ended_open`` the streams whose open event a new planned window may cover."""
+    ``changed_targets`` the targets of the windows it added or ended."""
 
     reply: dict[str, Any]
     ack: tuple[str, EventNote] | None = None
