@@ -42,7 +42,7 @@ from shiftwatch.core.plans import (
     parse_command,
 )
 from shiftwatch.core.timefmt import format_time
-from shiftwatch.fsutil import fsync_dir
+from shiftwatch.fsutil import explain_os_error, fsync_dir
 from shiftwatch.metrics import FloorMetrics
 from shiftwatch.mqtt import Message
 
@@ -113,11 +113,11 @@ class FloorDesk:
                                  "aside (%s)", exc)
         try:
             raw = self.path.read_bytes()
-        except FileNotFoundError:
+        except (FileNotFoundError, NotADirectoryError):  # none yet; a bad directory is the store's to report
             raw = None
         except OSError as exc:
             self.log.error("%s cannot be read (%s); planned windows and holds come from the snapshot",
-                           self.path, exc)
+                           self.path, explain_os_error(exc, self.path.parent))
             raw = None
         if raw is not None:
             try:
@@ -171,7 +171,8 @@ class FloorDesk:
         except OSError as exc:
             self.metrics.save_failures.inc()
             self.log.error("planned windows, holds and acknowledgements could not be written to %s (%s); "
-                           "they hold in memory and go into the next snapshot", self.path, exc)
+                           "they hold in memory and go into the next snapshot", self.path,
+                           explain_os_error(exc, self.path.parent))
             return False
         self._saved = self.book.revision
         return True
