@@ -210,10 +210,11 @@ class FloorDesk:
         with self._lock:
             self.book.forget_stream(name)
         self.newest.pop(name, None)
-        try:
-            self.metrics.unacknowledged.remove(name)
-        except KeyError:
-            pass
+        for series in (self.metrics.unacknowledged, self.metrics.held):
+            try:
+                series.remove(name)
+            except KeyError:
+                pass
 
     def _gauge_stream(self, name: str) -> None:
         if name in self.book.events:

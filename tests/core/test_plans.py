@@ -14,6 +14,8 @@ import json
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.plans import (
@@ -290,3 +292,35 @@ def test_a_plan_that_does_not_cover_the_step_changes_nothing() -> None:
     ref = StreamEngine("l2/h1").process(t, x).records
     assert [r.to_dict() for r in recs] == [r.to_dict() for r in ref]
     assert [r.phase for r in recs] == ["detected", "confirmed"]
+
+
+# ------------------------------------------------------------------ fuzzing
+
+_JSON = st.recursive(st.none() | st.booleans() | st.floats(allow_nan=True) | st.integers() | st.text(max_size=30),
+                     lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=8), inner, max_size=4),
+                     max_leaves=12)
+_FIELDS = st.dictionaries(
+    st.sampled_from(["target", "start", "end", "for", "note", "by", "ref", "id", "event", "x"]),
+    st.one_of(_JSON, st.sampled_from(["now", "-5min", "+1h", "20min", "2026-03-02T06:00:00Z", "a/#", "+/x",
+                                      "abc123", "1e999", "-0s", "+1e400min"])),
+    max_size=6)
+
+
+@settings(max_examples=600, deadline=None)
+@given(verb=st.sampled_from(["plan", "hold", "end", "ack", "zap"]),
+       payload=st.one_of(st.binary(max_size=80), _FIELDS.map(lambda d: json.dumps(d).encode()),
+                         _JSON.map(lambda d: json.dumps(d).encode())))
+def test_any_payload_gives_a_command_or_a_reasoned_refusal_and_never_half_a_change(verb: str,
+                                                                                   payload: bytes) -> None:
+    # The project's rule for bad input: a clear error naming what was wrong, nothing crashes.
+    book = FloorBook()
+    before = json.dumps(book.get_state())
+    try:
+        cmd = parse_command(verb, payload, NOW)
+    except CommandError as exc:
+        assert exc.reason and str(exc)
+        return
+    try:
+        book.apply(cmd, NOW, ["a/b"])
+    except CommandError as exc:
+        assert exc.reason and json.dumps(book.get_state()) == before  # refused: nothing changed
