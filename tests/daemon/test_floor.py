@@ -371,6 +371,7 @@ def test_the_readme_acl_lets_operators_command_but_not_forge_alerts(tmp_path: Pa
             op.publish_wait("sw/alerts/brackenfield/line2/head1/fill", forged)
             op.publish_wait("sw/replies", json.dumps({"ref": "x", "accepted": True}))
             op.publish_wait("sw/levels/brackenfield/line2/head1/fill", forged)
+            op.publish_wait("sw/acks/brackenfield/line2/head1/fill", forged)
             # A sensor may publish readings but not commands.
             sensor = PlainClient(b.url, "sensor-1", username="sensor", password="sensor-pw").start()
             sensor.publish_wait("sw/commands/end", json.dumps({"target": "brackenfield/line2/#", "ref": "s1"}))
@@ -384,7 +385,7 @@ def test_the_readme_acl_lets_operators_command_but_not_forge_alerts(tmp_path: Pa
             while sum(t == "sw/replies" for t, _ in seen) < 2 and time.monotonic() < deadline:
                 time.sleep(0.05)
             topics = [t for t, _ in seen]
-            assert not any(t.startswith(("sw/alerts/", "sw/levels/")) for t in topics), topics
+            assert not any(t.startswith(("sw/alerts/", "sw/levels/", "sw/acks/")) for t in topics), topics
             replies = [json.loads(p) for t, p in seen if t == "sw/replies"]
             assert [r["command"] for r in replies] == ["hold", "end"], replies  # no forged reply, no sensor end
             assert all(r["accepted"] for r in replies)
