@@ -108,7 +108,9 @@ def test_a_planned_changeover_raises_no_alarm_beside_an_unplanned_step_that_does
                                              if isinstance(b, dict)))
     wait_metric(d, "shiftwatch_samples_total", 900, stream=topic("head1"))
     wait_metric(d, "shiftwatch_samples_total", 900, stream=topic("head2"))
-    time.sleep(0.5)
+    assert alerts.wait_for(lambda items: sum(t.endswith("head1/fill") for t, _ in items) >= 3
+                           and sum(t.endswith("head2/fill") for t, _ in items) >= 2)
+    time.sleep(0.5)  # anything more would have come with them
     by_stream: dict[str, list[dict[str, Any]]] = {}
     for t, b in alerts.items:
         by_stream.setdefault(t.split("/", 2)[2], []).append(b)
@@ -231,6 +233,7 @@ def test_a_hold_keeps_samples_from_the_engine_counts_them_and_ends_by_command(
     assert metric_matching(text, "shiftwatch_samples_total", stream=topic("head3")) == 600
     assert metric_matching(text, "shiftwatch_samples_held_total", stream=topic("head4")) is None
     # The stop on head4 (no hold) alarmed; head3's was never seen by its engine.
+    assert alerts.wait_for(lambda items: any(t.endswith("head4/fill") for t, _ in items))
     streams = {t.split("/", 2)[2] for t, _ in alerts.items}
     assert topic("head4") in streams and topic("head3") not in streams
     # Its baseline was kept clean of the zeros: the level is the fill weight's.
