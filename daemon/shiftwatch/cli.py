@@ -826,7 +826,131 @@ def build_parser() -> argparse.ArgumentParser:
     dm.add_argument("--embedded-broker", action="store_true",
                     help="use the embedded broker even when mosquitto is installed")
     dm.set_defaults(func=cmd_demo)
+    _add_floor_commands(sub)
     return p
+
+
+def _add_floor_commands(sub: Any) -> None:
+    """plan, hold, end, ack: commands published to the running daemon through the broker."""
+
+    def common(c: argparse.ArgumentParser) -> None:
+        c.add_argument("--config", required=True, help="the daemon's YAML configuration (broker, topic prefix)")
+        c.add_argument("--note", default="", help="a short note kept with it (at most 200 characters)")
+        c.add_argument("--by", default="", help="who says so (a name or a role, at most 64 characters)")
+        c.add_argument("--user", help="broker user name (default: broker.username of the configuration); "
+                       "operators should use their own, which the broker's ACL lets send commands only")
+        c.add_argument("--password-file", help="file whose first line is that user's password")
+        c.add_argument("--wait", default="10s", metavar="DURATION", help="how long to wait for the reply (default 10s)")
+        c.add_argument("--json", action="store_true", help="print the daemon's reply as JSON")
+        c.set_defaults(func=cmd_floor)
+
+    def window(c: argparse.ArgumentParser, kind: str) -> None:
+        c.add_argument("target", help="a stream name or an MQTT topic filter (+ one level, # the rest)")
+        c.add_argument("--start", help="RFC 3339 time, 'now' (the default) or a signed duration from now "
+                       "(--start=-5min for one that began 5 minutes ago)")
+        ends = c.add_mutually_exclusive_group(required=kind == "plan")
+        ends.add_argument("--for", dest="for_", metavar="DURATION", help="how long, from the start (20min)")
+        ends.add_argument("--until", metavar="TIME", help="RFC 3339 time, or a signed duration from now (+20min)")
+
+    pl = sub.add_parser("plan", help="announce a planned change (changeover, recipe change, recalibration): "
+                        "a step inside the window is recorded as planned and raises no alarm")
+    window(pl, "plan")
+    common(pl)
+    hd = sub.add_parser("hold", help="hold streams (machine stopped, cleaned, in maintenance): their samples "
+                        "are not watched and kept out of the baseline until the hold ends")
+    window(hd, "hold")
+    common(hd)
+    en = sub.add_parser("end", help="end a planned window or a hold now (or withdraw one not begun)")
+    which = en.add_mutually_exclusive_group(required=True)
+    which.add_argument("--id", help="the window's id (from the reply that accepted it)")
+    which.add_argument("--target", help="every window announced for exactly this target")
+    common(en)
+    ak = sub.add_parser("ack", help="mark an event as seen, with an optional note")
+    ak.add_argument("event", help="the event's id (the alert record's id)")
+    common(ak)
+
+
+def cmd_floor(args: argparse.Namespace) -> int:
+    from shiftwatch.config import ConfigError, load_config
+    from shiftwatch.core.timefmt import parse_duration
+    from shiftwatch.mqtt import BrokerError, read_password, send_command
+
+    try:
+        cfg = load_config(args.config)
+        wait = parse_duration(args.wait)
+    except ConfigError as exc:
+        _err(str(exc))
+        return EXIT_USAGE
+    except ValueError as exc:
+        _err(f"--wait: {exc}")
+        return EXIT_USAGE
+    verb = args.command
+    body: dict[str, Any] = {}
+    if verb in ("plan", "hold"):
+        body["target"] = args.target
+        for key, v in (("start", args.start), ("for", args.for_), ("end", args.until)):
+            if v is not None:
+                body[key] = v
+    elif verb == "end":
+        body["id" if args.id is not None else "target"] = args.id if args.id is not None else args.target
+    else:
+        body["event"] = args.event
+    if args.note:
+        body["note"] = args.note
+    if args.by:
+        body["by"] = args.by
+    user = args.user if args.user is not None else cfg.broker.username
+    try:
+        if args.password_file is not None:
+            with open(args.password_file, encoding="utf-8") as fh:
+                password: str | None = fh.readline().rstrip("\r\n")
+        elif args.user is not None:
+            password = None
+        else:
+            password = read_password(cfg.broker)
+    except (OSError, ValueError) as exc:
+        _err(f"password: {exc}")
+        return EXIT_USAGE
+    prefix = cfg.alerts.topic_prefix
+    try:
+        reply = send_command(cfg.broker, prefix, verb, body, username=user, password=password, timeout=wait)
+    except BrokerError as exc:
+        _err(str(exc))
+        return EXIT_USAGE
+    if reply is None:
+        _err(f"no reply within {args.wait} on {prefix}/replies: is shiftwatch running with this "
+             f"configuration, and does the broker let user {user or '(none)'} publish on "
+             f"{prefix}/commands/{verb}? (a broker drops a publication its ACL refuses without a word)")
+        return EXIT_USAGE
+    if args.json:
+        print(json.dumps(reply, indent=1))
+    elif not reply.get("accepted"):
+        print(f"REFUSED ({reply.get('reason')}): {reply.get('message')}")
+    else:
+        print(_floor_text(verb, reply))
+        if reply.get("warning"):
+            print(f"warning: {reply['warning']}")
+        print(reply.get("advisory", ""))
+    return EXIT_OK if reply.get("accepted") else EXIT_BAD_DATA
+
+
+def _floor_text(verb: str, reply: dict[str, Any]) -> str:
+    """One line for an accepted command's reply."""
+    if verb in ("plan", "hold"):
+        w = reply["window"]
+        what = "planned window" if verb == "plan" else "hold"
+        until = w["end"] or "ended by command (shiftwatch end --id ...)"
+        extra = ""
+        if reply.get("open_events_planned"):
+            extra = f"; open event(s) {', '.join(reply['open_events_planned'])} ended as planned"
+        return (f"ACCEPTED {what} {w['id']} for {w['target']} ({reply['streams_now']} stream(s) now), "
+                f"from {w['start']} until {until}{extra}")
+    if verb == "end":
+        return "ACCEPTED " + "; ".join(
+            f"{'planned window' if w['kind'] == 'plan' else 'hold'} {w['id']} "
+            + ("withdrawn" if w.get("withdrawn") else f"ended at {w['end']}") for w in reply["ended"])
+    ev = reply["event"]
+    return f"ACCEPTED acknowledgement of event {ev['id']} ({ev['phase']}) on {reply['stream']}"
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -36,9 +36,10 @@ from shiftwatch.core.timefmt import format_time
 from shiftwatch.decode import REASONS as DECODE_REASONS
 from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, stream_name
 from shiftwatch.display import alert_summary, stamp
+from shiftwatch.floor import FloorDesk
 from shiftwatch.fsutil import explain_os_error
 from shiftwatch.journal import Journal, JournalGroup
-from shiftwatch.metrics import Metrics, MetricsServer, StreamStats
+from shiftwatch.metrics import FloorMetrics, Metrics, MetricsServer, StreamStats
 from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
 from shiftwatch.notify import sd_notify, watchdog_interval
 from shiftwatch.outbox import Outbox
@@ -308,6 +309,9 @@ class Daemon:
         self._new_lines = self._new_held = 0
         self._new_last = ""
         self._early_snapshot_failed = False
+        # Planned windows, holds and acknowledgements (shiftwatch.floor, core/plans.py).
+        self.floor = FloorDesk(self.prefix, state_dir / "snapshots", FloorMetrics(self.metrics.registry),
+                               self.log, self._publish_floor, warn=self._warn_floor)
         #: What the status page shows beyond the metrics (records, rates, held samples).
         self.status = StatusBoard(self.metrics.streams, self._label, time_zone=self.tz)
         self.metrics.label_for = self.status.label
@@ -372,6 +376,7 @@ class Daemon:
                            self.store.directory, explain_os_error(exc, self.store.directory))
             streams, meta = {}, {}
         restored = 0
+        self.floor.load(meta)
         filters = meta.get("filters")
         if not isinstance(filters, dict):  # snapshots written before it was saved
             filters = {}
@@ -398,6 +403,7 @@ class Daemon:
                 continue
             self.engines[name] = eng
             self._filters[name] = spec.topic
+            self.floor.attach(name, eng)
             restored += 1
         if streams:
             self.log.info("restored %d stream(s) from the snapshot of %s", restored,
@@ -459,7 +465,8 @@ class Daemon:
             values = np.concatenate([g.values for g in gs])
             arrived = np.concatenate([g.arrived for g in gs])
             try:
-                eng.process(times, values, arrived)
+                for rec in eng.process(times, values, arrived).records:
+                    self.floor.note(rec)  # published before the crash; kept for acknowledgement
             except Exception:  # as in process(): one stream's batch, never the daemon
                 self.log.exception("internal error while replaying stream %s", _printable(stream))
             samples += len(values)
@@ -493,7 +500,7 @@ class Daemon:
         password = read_password(self.cfg.broker, self.env)
         self.link = MqttLink(
             self.cfg.broker,
-            subscriptions=[s.topic for s in self.cfg.streams],
+            subscriptions=[s.topic for s in self.cfg.streams] + [self.floor.command_filter],
             status_topic=self.status_topic(),
             inbox=self.inbox,
             on_drop=self._count_handover_drop,
@@ -664,7 +671,14 @@ class Daemon:
         self.metrics.messages_received.inc(len(msgs))
         # Messages per stream configuration, so each set is decoded in one call.
         by_spec: dict[int, tuple[StreamConfig, list[Message], list[str]]] = {}
+        commands = [m for m in msgs if self.floor.is_command(m.topic)]
+        if commands:
+            # Before the round's samples, and written to disk before its acknowledgement.
+            for rec in self.floor.handle(commands, now, self.engines, self._label):
+                self.emit(rec, now)
         for m in msgs:
+            if commands and self.floor.is_command(m.topic):
+                continue
             route = self._route(m.topic)
             if route is None:
                 self._count_drop("no_matching_stream")
@@ -784,6 +798,7 @@ class Daemon:
                 return None
             eng = self.engines[name] = StreamEngine(name, spec.detection, unit=unit)
             self._filters[name] = spec.topic
+            self.floor.attach(name, eng)
             self._new_stream_line(name, spec.detection.warmup_samples)
         return eng
 
@@ -823,6 +838,13 @@ class Daemon:
         times = np.asarray(times_list, dtype=np.float64)
         values = np.asarray(values_list, dtype=np.float64)
         arrivals = np.asarray(arrivals_list, dtype=np.float64)
+        held = self.floor.split_held(name, times)
+        if held is not None:
+            # Not process readings: kept from the engine (no detection, not in the baseline).
+            keep = ~held
+            times, values, arrivals = times[keep], values[keep], arrivals[keep]
+            if not times.shape[0]:
+                return None
         res = eng.process(times, values, arrivals)
         for rej in res.rejected:
             if rej.reason != "spike":  # one key per reason: many streams cannot multiply the lines
@@ -840,6 +862,7 @@ class Daemon:
 
     def emit(self, rec: AlertRecord, arrived: float) -> None:
         """Publish an alert record (through the outbox) and log its summary."""
+        self.floor.note(rec)
         d = rec.to_dict()
         label = self.cfg.label_for(rec.stream, self._filters.get(rec.stream))
         if label is not None:
@@ -873,6 +896,25 @@ class Daemon:
         else:
             self.log.info("%s [stream %s, id %s]", d["summary"], _printable(rec.stream), rec.id,
                           extra=fields)
+
+    def _publish_floor(self, topic: str, payload: bytes, durable: bool) -> None:
+        """A command's reply (as it is), or an acknowledgement record (through the outbox,
+        as alert records go)."""
+        if not durable:
+            self._publish(topic, payload, qos=1, retain=False)
+            return
+        mid = self._send(topic, payload, qos=self.cfg.alerts.qos, retain=False)
+        key: str | None = None
+        try:
+            key = self.outbox.add(topic, payload, qos=self.cfg.alerts.qos, sync=False).key
+        except OSError as exc:
+            self._outbox_failed(exc, time.time())
+        if mid is not None:
+            self._track(mid, key)
+        self.records_published += 1  # the round's outbox is synced before its acknowledgement
+
+    def _warn_floor(self, key: str, text: str, now: float) -> None:
+        self.rlog.warning(key, text, now)
 
     def _level_changed(self, name: str, eng: StreamEngine) -> None:
         """After a stream's batch: queue its level update if what the levels
@@ -1022,7 +1064,8 @@ class Daemon:
                             {"saved_at": time.time(), "journal": token,
                              "filters": {n: self._filters[n] for n in self.engines
                                          if n in self._filters},
-                             "status_records": self.status.export()})
+                             "status_records": self.status.export(),
+                             "floor": self.floor.get_state()})
         except OSError as exc:
             # The journal still belongs to the previous snapshot: it keeps growing.
             self.metrics.snapshot_failures.inc()
@@ -1031,6 +1074,8 @@ class Daemon:
                            explain_os_error(exc, self.store.directory))
             return False
         self.metrics.snapshots.inc()
+        self.floor.saved()
+        self.floor.prune(time.time(), self.engines)
         self._early_snapshot_failed = False
         if self.journal is not None:
             try:
@@ -1085,8 +1130,8 @@ class Daemon:
             self.log.error("reload refused, keeping the running configuration: %s has no stream "
                            "entries (to stop watching every stream, stop the daemon)", self.config_path)
             return
-        old_filters = {s.topic for s in self.cfg.streams}
-        new_filters = {s.topic for s in new.streams}
+        old_filters = {s.topic for s in self.cfg.streams} | {self.floor.command_filter}
+        new_filters = {s.topic for s in new.streams} | {self.floor.command_filter}
         kept = dropped = renewed = ended = 0
         for name in list(self.engines):
             f = self._filters.get(name)
@@ -1103,6 +1148,7 @@ class Daemon:
                     ended += 1
             if spec is None:
                 del self.engines[name]
+                self.floor.forget(name)
                 self._filters.pop(name, None)
                 self.metrics.remove_stream(name)
                 self.status.forget(name)
@@ -1111,6 +1157,7 @@ class Daemon:
                 continue
             if old_spec is None or spec.detection != old_spec.detection or spec.unit != old_spec.unit:
                 self.engines[name] = StreamEngine(name, spec.detection, unit=spec.unit)
+                self.floor.attach(name, self.engines[name])  # windows and holds outlive a reload
                 renewed += 1
             else:
                 kept += 1

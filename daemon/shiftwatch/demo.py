@@ -3,9 +3,12 @@
 The line is Brackenfield Bottling's line 2, a plant we made up: three filler
 heads report fill weights as JSON, a tunnel oven reports a zone temperature
 as SenML, and a capper reports its torque as a plain number.  Sensors sample
-ten times a second so the demo moves quickly; three steps are scheduled (a
+ten times a second so the demo moves quickly; four steps are scheduled (a
 nozzle swap on filler head 2, a burner retune on the oven, a worn clutch on
-the capper) and a few lone spikes are thrown in.  The daemon runs exactly as
+the capper, and a recipe change on filler head 3) and a few lone spikes are
+thrown in.  The recipe change is announced beforehand on the command topic,
+as the plant's MES would, so it is recorded as ``planned`` and raises no
+alarm, beside the unannounced steps that do.  The daemon runs exactly as
 ``shiftwatch run`` would, and the alerts are shown as they arrive over MQTT.
 """
 
@@ -25,7 +28,7 @@ import numpy as np
 from shiftwatch.broker import EmbeddedBroker, MosquittoBroker, find_mosquitto, free_port
 from shiftwatch.config import Config, parse_config
 from shiftwatch.core.engine import ADVISORY
-from shiftwatch.core.timefmt import parse_time
+from shiftwatch.core.timefmt import format_time, parse_time
 from shiftwatch.daemon import Daemon
 from shiftwatch.display import clock, zone_label
 from shiftwatch.metrics import Metrics
@@ -33,6 +36,11 @@ from shiftwatch.mqtt import PlainClient
 
 RATE_HZ = 10.0
 PREFIX = "shiftwatch/demo"
+#: An announced change is announced this long before its step, for a window from
+#: WINDOW_BEFORE before the step to WINDOW_AFTER after it.
+ANNOUNCE_AHEAD = 8.0
+WINDOW_BEFORE = 4.0
+WINDOW_AFTER = 6.0
 
 
 @dataclass(frozen=True)
@@ -65,6 +73,24 @@ SENSORS = (
     Sensor("brackenfield/line2/capper/torque",
            "brackenfield/line2/capper/torque", "number", 2.40, 0.05, "N m",
            step_at=52.0, step=0.11, cause="clutch wearing"),
+)
+
+
+
+@dataclass(frozen=True)
+class Changeover:
+    """A step made on purpose and announced beforehand on the command topic, as the
+    plant's MES would: a planned window from WINDOW_BEFORE before the step to
+    WINDOW_AFTER after it, announced ANNOUNCE_AHEAD before the step."""
+
+    topic: str
+    at: float  # seconds after start
+    step: float
+    cause: str
+
+
+CHANGEOVERS = (
+    Changeover("brackenfield/line2/filler/head3/fill", 44.0, 2.0, "recipe change: fill target raised"),
 )
 
 CONFIG_TEMPLATE = """\
@@ -142,6 +168,7 @@ class Line:
                 v = s.level + s.sigma * float(self.rng.standard_normal())
                 if s.step_at is not None and elapsed >= s.step_at:
                     v += s.step
+                v += sum(c.step for c in CHANGEOVERS if c.topic == s.topic and elapsed >= c.at)
                 if self.rng.random() < 0.002:  # a lone spike: a bumped sensor, a glitch
                     v += 8 * s.sigma * (1 if self.rng.random() < 0.5 else -1)
                 self.client.publish(s.topic, payload_for(s, t, v))
@@ -204,15 +231,45 @@ def run_demo(duration: float = 75.0, *, out: TextIO = sys.stdout, metrics_listen
       "each stream teach shiftwatch its normal level\n")
     w(f"  started  {clock(start, time_zone)}; every time shown is a clock time in "
       f"{zone_label(time_zone)}, as in the alerts\n")
-    for s in SENSORS:
-        if s.step_at is not None:
-            w(f"  planned  {clock(start + s.step_at, time_zone)} ({s.step_at:.0f} s in): {names[s.stream]} "
-              f"steps {'up' if s.step > 0 else 'down'} {abs(s.step):g} {s.unit} ({s.cause})\n")
-    w(f"  alerts   MQTT {PREFIX}/alerts/<stream>; levels {PREFIX}/levels/<stream>\n")
+    unit_of = {s.topic: s.unit for s in SENSORS}
+    steps = sorted([(s.step_at, s.stream, s.step, s.unit, s.cause) for s in SENSORS if s.step_at is not None]
+                   + [(c.at, c.topic, c.step, unit_of[c.topic], c.cause + ", announced as a planned change")
+                      for c in CHANGEOVERS])
+    for at, stream, size, unit, cause in steps:
+        w(f"  schedule {clock(start + at, time_zone)} ({at:.0f} s in): {names[stream]} "
+          f"steps {'up' if size > 0 else 'down'} {abs(size):g} {unit} ({cause})\n")
+    w(f"  alerts   MQTT {PREFIX}/alerts/<stream>; levels {PREFIX}/levels/<stream>; commands "
+      f"{PREFIX}/commands/<command>\n")
     w(f"  {ADVISORY}\n\n")
     out.flush()
-    viewer = PlainClient(broker.url, "shiftwatch-demo-viewer", subscribe=[f"{PREFIX}/alerts/#"],
-                         on_message=on_alert, mqtt_version=version)
+    def on_message(topic: str, payload: bytes) -> None:
+        if topic == f"{PREFIX}/replies":
+            on_reply(payload)
+        else:
+            on_alert(topic, payload)
+
+    def on_reply(payload: bytes) -> None:
+        try:
+            rep = json.loads(payload)
+        except ValueError:
+            return
+        with lock:
+            if rep.get("accepted"):
+                win = rep.get("window") or {}
+                text = (f"planned window {win.get('id')} accepted for {win.get('target')}, "
+                        f"{clock(parse_time(win['start']), time_zone)} to "
+                        f"{clock(parse_time(win['end']), time_zone)}: a step inside it raises no alarm"
+                        if win.get("end") else "command accepted")
+            else:
+                text = f"command refused ({rep.get('reason')}): {rep.get('message')}"
+            w(f"[{clock(time.time(), time_zone)}] {text}\n")
+            out.flush()
+
+    viewer = PlainClient(broker.url, "shiftwatch-demo-viewer",
+                         subscribe=[f"{PREFIX}/alerts/#", f"{PREFIX}/replies"],
+                         on_message=on_message, mqtt_version=version)
+    mes = PlainClient(broker.url, "brackenfield-line2-mes", mqtt_version=version)
+    due = sorted(((start + c.at - ANNOUNCE_AHEAD, c) for c in CHANGEOVERS), key=lambda d: d[0])
     line = Line(broker.url, version, start)
     runner = threading.Thread(target=daemon.run, kwargs={"install_signals": False}, name="daemon")
     code = 0
@@ -226,15 +283,27 @@ def run_demo(duration: float = 75.0, *, out: TextIO = sys.stdout, metrics_listen
             base = f"http://{host or '127.0.0.1'}:{daemon.server.port}"
             w(f"  status   {base}/status  (every stream at a glance, in a browser on this machine)\n")
             w(f"  metrics  {base}/metrics{why}\n\n")
+        mes.start()
         line.start()
         deadline = start + duration
         while time.time() < deadline and runner.is_alive():
+            while due and time.time() >= due[0][0]:
+                _, c = due.pop(0)
+                with lock:
+                    w(f"[{clock(time.time(), time_zone)}] the MES announces a planned change on "
+                      f"{names[c.topic]} ({c.cause})\n")
+                    out.flush()
+                mes.publish(f"{PREFIX}/commands/plan", json.dumps({
+                    "target": c.topic, "start": format_time(start + c.at - WINDOW_BEFORE),
+                    "end": format_time(start + c.at + WINDOW_AFTER), "note": c.cause,
+                    "by": "MES line 2", "ref": "demo-plan"}))
             time.sleep(0.2)
     except KeyboardInterrupt:
         w("\ninterrupted: stopping cleanly\n")
         code = 130
     finally:
         line.stop()
+        mes.stop()
         ended = time.time() - start  # the sensors' last sample
         time.sleep(0.5)
         daemon.request_stop()
@@ -250,13 +319,25 @@ def _recap(results: dict[str, list[dict[str, Any]]], start: float, ended: float,
            names: dict[str, str], time_zone: str = "UTC") -> str:
     width = max(len(n) for n in names.values()) + 2
     lines = ["\nWhat happened",
-             f"  {'sensor':<{width}}{'planned step':>24}{'found':>20}{'started':>14}{'alerted':>14}"]
+             f"  {'sensor':<{width}}{'scheduled step':>24}{'found':>20}{'started':>14}{'alerted':>14}"]
     for s in SENSORS:
         recs = results.get(s.stream, [])
         conf = [r for r in recs if r["phase"] == "confirmed"]
+        change = next((c for c in CHANGEOVERS if c.topic == s.topic), None)
         planned = (f"{s.step:+g} {s.unit} at {clock(start + s.step_at, time_zone)}"
-                   if s.step_at is not None else "none")
+                   if s.step_at is not None else
+                   f"{change.step:+g} {s.unit} at {clock(start + change.at, time_zone)}"
+                   if change is not None else "none")
         name = names[s.stream]
+        plan = [r for r in recs if r["phase"] == "planned"]
+        if change is not None and change.at >= ended:
+            lines.append(f"  {name:<{width}}{planned:>24}{'demo ended first':>20}")
+            continue
+        if plan and not conf:
+            r = plan[-1]
+            lines.append(f"  {name:<{width}}{planned:>24}{r['delta']:>+13.3g} {s.unit:<6}"
+                         f"{clock(parse_time(r['shift_at']), time_zone):>14}{'no alarm':>14}")
+            continue
         if conf:
             r = conf[-1]
             started = clock(parse_time(r["shift_at"]), time_zone)
@@ -271,6 +352,8 @@ def _recap(results: dict[str, list[dict[str, Any]]], start: float, ended: float,
             lines.append(f"  {name:<{width}}{planned:>24}{'no confirmed step':>20}")
     dismissed = sum(r["phase"] == "dismissed" for rs in results.values() for r in rs)
     lines.append(f"  dismissed detections: {dismissed}")
+    lines.append("  (an announced change inside its planned window is recorded as 'planned': its step is "
+                 "kept,\n   no alarm is raised and the stream is watched from the new level at once)")
     lines.append(f"  (clock times in {zone_label(time_zone)}; 'started' is the fitted shift time, 'alerted' "
                  "the\n   moment the test tripped; 'found' is the step fitted when the shift was confirmed, "
                  "from\n   the few seconds of samples seen since it began, so noise moves it by a fraction "
@@ -278,4 +361,4 @@ def _recap(results: dict[str, list[dict[str, Any]]], start: float, ended: float,
     return "\n".join(lines) + "\n"
 
 
-__all__ = ["SENSORS", "run_demo"]
+__all__ = ["CHANGEOVERS", "SENSORS", "run_demo"]

@@ -149,6 +149,8 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
     >>> from dataclasses import replace
     >>> alert_summary(replace(rec, phase="dismissed"), "filler 7")
     "DISMISSED filler 7: no lasting step found after the detection at 06:23:21Z; the level stays 500.03 g (any follow-up is for the site's procedures)"
+    >>> alert_summary(replace(rec, phase="planned", plan_id="5277bb177513"), "filler 7")
+    'PLANNED filler 7 stepped up 1.8 g (2.1 sigma) at 06:23:12Z, inside planned window 5277bb177513: no alarm, watching on from the new level: 500.03 -> 501.83 g'
     >>> alert_summary(rec)[:60]
     'CONFIRMED plant/line2/filler/head7/fill stepped up 1.8 g (2.'
     """
@@ -165,6 +167,11 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
         start = "?" if rec.excursion_start is None else clock(rec.excursion_start, tz, today=ref)
         return (f"{verb} {who} went back {rec.direction} {abs(rec.delta):.3g}{unit} at "
                 f"{clock(rec.shift_at, tz, today=ref)}, ending the excursion that began at {start}: "
+                f"{rec.level_before:.5g} -> {rec.level_after:.5g}{unit}")
+    if rec.phase == "planned":
+        return (f"{verb} {who} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
+                f"({abs(rec.delta_sigma):.2g} sigma) at {clock(rec.shift_at, tz, today=ref)}, inside planned "
+                f"window {rec.plan_id}: no alarm, watching on from the new level: "
                 f"{rec.level_before:.5g} -> {rec.level_after:.5g}{unit}")
     if rec.phase == "undecided":
         return (f"{verb} {who}: after {rec.n_after} samples the step detected at "

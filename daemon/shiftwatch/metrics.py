@@ -916,3 +916,28 @@ class Metrics:
             tls = _tls_context(certfile, keyfile, client_cafile)
         return MetricsServer(_Endpoint(host, port, tls, connection_timeout, max_connections,
                                        self.registry, pages))
+
+
+class FloorMetrics:
+    """The metrics of the floor commands, on the daemon's registry."""
+
+    def __init__(self, registry: CollectorRegistry) -> None:
+        self.held = Counter(
+            "shiftwatch_samples_held", "Samples kept from the engine because a hold was in force "
+            "on their stream at their time stamp.", labelnames=["stream"], registry=registry)
+        self.unacknowledged = Gauge(
+            "shiftwatch_events_unacknowledged", "Open, unacknowledged events of the stream: "
+            "confirmed (or returned) steps that nobody has marked as seen.", labelnames=["stream"],
+            registry=registry)
+        self.commands = Counter(
+            "shiftwatch_commands", "Commands received on <prefix>/commands/<verb>, by command "
+            "and outcome (accepted or refused).", labelnames=["command", "outcome"], registry=registry)
+        self.refused = Counter(
+            "shiftwatch_commands_refused", "Commands refused, by reason.", labelnames=["reason"],
+            registry=registry)
+        self.windows = Gauge(
+            "shiftwatch_windows", "Planned windows (kind=plan) and holds (kind=hold) kept, whether "
+            "begun or not.", labelnames=["kind"], registry=registry)
+        self.save_failures = Counter(
+            "shiftwatch_floor_save_failures", "Times the book of windows and acknowledgements could "
+            "not be written to the state directory.", registry=registry)

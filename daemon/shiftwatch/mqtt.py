@@ -21,9 +21,11 @@ same way is one information line.
 from __future__ import annotations
 
 import errno
+import json
 import logging
 import os
 import re
+import secrets
 import ssl
 import struct
 import sys
@@ -849,3 +851,74 @@ class PlainClient:
     def stop(self) -> None:
         self.client.disconnect()
         self.client.loop_stop()
+
+
+def send_command(cfg: BrokerConfig, prefix: str, verb: str, body: dict[str, Any], *,
+                 username: str | None, password: str | None, timeout: float = 10.0) -> dict[str, Any] | None:
+    """Publish one command on ``<prefix>/commands/<verb>`` and wait for its reply.
+
+    Connects with the configured URL and TLS settings under a client id of its
+    own (``<client_id>-cmd-<random>``, a clean session), subscribes to
+    ``<prefix>/replies`` first, and returns the reply whose ``ref`` is this
+    command's (None when none came within ``timeout``).  Raises
+    :class:`BrokerError` when the broker cannot be reached or refuses the login.
+    """
+    ref = body.setdefault("ref", secrets.token_hex(6))
+    host, port, tls = parse_url(cfg.url)
+    v5 = cfg.mqtt_version == "5"
+    client = paho.Client(callback_api_version=CallbackAPIVersion.VERSION2,
+                         client_id=f"{cfg.client_id}-cmd-{secrets.token_hex(3)}",
+                         protocol=MQTTProtocolVersion.MQTTv5 if v5 else MQTTProtocolVersion.MQTTv311,
+                         clean_session=None if v5 else True)
+    if username is not None:
+        client.username_pw_set(username, password)
+    if tls:
+        t = cfg.tls
+        client.tls_set(ca_certs=t.ca_file if t else None, certfile=t.cert_file if t else None,
+                       keyfile=t.key_file if t else None, cert_reqs=ssl.CERT_REQUIRED)
+        client.tls_insecure_set(False)
+    connected = threading.Event()
+    subscribed = threading.Event()
+    got = threading.Event()
+    failure: list[str] = []
+    reply: list[dict[str, Any]] = []
+
+    def on_connect(c: paho.Client, userdata: Any, flags: Any, reason: Any, props: Any) -> None:
+        if reason.is_failure:
+            failure.append(f"refused the connection: {reason}")
+        else:
+            c.subscribe(f"{prefix}/replies", qos=1)
+        connected.set()
+
+    def on_subscribe(c: paho.Client, userdata: Any, mid: int, reasons: Any, props: Any) -> None:
+        subscribed.set()
+
+    def on_message(c: paho.Client, userdata: Any, msg: paho.MQTTMessage) -> None:
+        try:
+            d = json.loads(msg.payload)
+        except ValueError:
+            return
+        if isinstance(d, dict) and d.get("ref") == ref:
+            reply.append(d)
+            got.set()
+
+    client.on_connect = on_connect
+    client.on_subscribe = on_subscribe
+    client.on_message = on_message
+    try:
+        client.connect(host, port, keepalive=30)
+    except (OSError, ValueError) as exc:
+        raise BrokerError(f"broker {cfg.url}: cannot connect: {exc}") from None
+    client.loop_start()
+    try:
+        if not connected.wait(timeout) or failure:
+            raise BrokerError(f"broker {cfg.url}: {failure[0] if failure else 'no answer to the connection'}")
+        if not subscribed.wait(timeout):
+            raise BrokerError(f"broker {cfg.url}: the subscription to {prefix}/replies was not confirmed")
+        info = client.publish(f"{prefix}/commands/{verb}", json.dumps(body), qos=1)
+        info.wait_for_publish(timeout)
+        got.wait(timeout)
+        return reply[0] if reply else None
+    finally:
+        client.disconnect()
+        client.loop_stop()

@@ -35,7 +35,7 @@ from __future__ import annotations
 import hashlib
 import math
 from collections import Counter, deque
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any, ClassVar, NamedTuple
 
@@ -68,7 +68,9 @@ WATCHING = "watching"
 EVENT_OPEN = "event_open"
 
 #: The phases of an event's records: one ``detected``, then one of the others.
-PHASES = ("detected", "confirmed", "returned", "dismissed", "undecided")
+PHASES = ("detected", "confirmed", "returned", "dismissed", "undecided", "planned")
+#: A step inside a planned window gets one record of this phase instead (see core/plans.py).
+PLANNED = "planned"
 
 #: Printed with every alert: shiftwatch advises, it does not protect.
 ADVISORY = (
@@ -121,6 +123,8 @@ class AlertRecord:
     #: for a ``returned`` record: the event whose step the level went back from, and its start
     excursion_id: str | None = None
     excursion_start: float | None = None
+    #: for a ``planned`` record: the planned window the step fell in
+    plan_id: str | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON form: contract fields first, then the extras."""
@@ -157,6 +161,8 @@ class AlertRecord:
             d["excursion_id"] = self.excursion_id
         if self.excursion_start is not None:
             d["excursion_start"] = format_time(self.excursion_start)
+        if self.plan_id is not None:
+            d["plan_id"] = self.plan_id
         return d
 
 
@@ -539,6 +545,7 @@ class StreamEngine:
         "_window",
         "_young",
         "last_shift_at",
+        "planned",
         "records_total",
         "rejected_total",
         "samples_total",
@@ -552,6 +559,9 @@ class StreamEngine:
         self.stream = stream
         self.settings = settings if settings is not None else _DEFAULT_SETTINGS
         self.unit = unit
+        #: Set by the shell (core/plans.py, FloorBook.plan_lookup): given a step's shift-time
+        #: interval, the id of the planned window it meets, or None.
+        self.planned: Callable[[float, float], str | None] | None = None
         self._reset()
 
     # ------------------------------------------------------------------ state
@@ -1258,6 +1268,8 @@ class StreamEngine:
         test = self._test
         assert b is not None and test is not None and self._fitter is not None
         fit = self._fit(b)
+        if self.planned is not None and self._adopt_if_planned(fit, detected_at, result, as_of):
+            return
         sign = (0 if by_fit else test.direction) or (1 if fit.delta > 0 else -1)
         ev = OpenEvent(
             id=event_id(self.stream, detected_at),
@@ -1282,6 +1294,42 @@ class StreamEngine:
         self._event = ev
         self._state = EVENT_OPEN
         result.records.append(self._record(ev, fit, "detected", as_of))
+
+    def _adopt_if_planned(self, fit: StepFit, detected_at: float, result: BatchResult | None,
+                          as_of: float, ev: OpenEvent | None = None) -> AlertRecord | None:
+        """A step whose shift-time interval meets a planned window: one ``planned`` record
+        (the fit as it stands), no event, and the stream watches on from the new level at
+        once, as after a confirmed step.  None when no planned window covers it."""
+        assert self.planned is not None and self._test is not None
+        plan = self.planned(min(fit.shift_at_low, detected_at), min(fit.shift_at_high, detected_at))
+        if plan is None:
+            return None
+        if ev is None:
+            ev = OpenEvent(id=event_id(self.stream, detected_at), detected_at=detected_at,
+                           test=self._test.name, statistic=float(self._test.statistic),
+                           threshold=float(self._test.threshold), trip_len=0, level_before=fit.level_before,
+                           level_after=fit.level_after, trial=self._new_trial(1))
+        rec = self._record(ev, fit, PLANNED, as_of, plan_id=plan)
+        if result is not None:
+            result.records.append(rec)
+        self._event = None
+        self._last_step = None  # the reference moved on purpose: no excursion to return from
+        self._reanchor(fit.index)
+        return rec
+
+    def adopt_planned_event(self, as_of: float) -> AlertRecord | None:
+        """An event open when a planned window covering its step is announced ends as
+        ``planned`` now (its record returned); None when no event is open or no window
+        covers it."""
+        ev = self._event
+        b = self._baseline
+        if ev is None or b is None or self._fitter is None or self.planned is None:
+            return None
+        fit = self._fit(b)
+        rec = self._adopt_if_planned(fit, ev.detected_at, None, max(as_of, ev.detected_at), ev)
+        if rec is not None:
+            self.records_total = _tally(self.records_total, (PLANNED,))
+        return rec
 
     def _new_trial(self, sign: int) -> EventTrial:
         """The decision for an event in direction ``sign``: the smallest step of interest in
