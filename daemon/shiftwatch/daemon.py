@@ -315,10 +315,26 @@ class Daemon:
         #: What the status page shows beyond the metrics (records, rates, held samples).
         self.status = StatusBoard(self.metrics.streams, self._label, time_zone=self.tz)
         self.metrics.label_for = self.status.label
+        self.status.add_provider(self._floor_fields)
 
     def _label(self, name: str) -> str | None:
         """The configured label of a stream (the status board caches it)."""
         return self.cfg.label_for(name, self._filters.get(name))
+
+    def _floor_fields(self, name: str) -> dict[str, Any] | None:
+        """The status page's acknowledgement and hold fields, from the floor desk (called
+        from the render thread: the desk's view is thread-safe)."""
+        view = self.floor.view(name)
+        out: dict[str, Any] = {}
+        if view.events:
+            last = view.events[-1]
+            out["ack"] = {"acked": last.acked_at is not None, "by": last.acked_by, "note": last.note,
+                          "at": last.acked_at}
+        window = view.hold if view.hold is not None else (view.plans[0] if view.plans else None)
+        if window is not None:
+            out["hold"] = {"kind": "hold" if window is view.hold else "planned change",
+                           "until": window.end, "note": window.note}
+        return out or None
 
     # ------------------------------------------------------------ topics
     @property

@@ -148,6 +148,15 @@ def test_a_planned_changeover_raises_no_alarm_beside_an_unplanned_step_that_does
     assert metric_matching(text, "shiftwatch_commands_total", command="plan", outcome="accepted") == 1
     assert metric_matching(text, "shiftwatch_commands_total", command="ack", outcome="accepted") == 1
     assert metric_matching(text, "shiftwatch_events_unacknowledged", stream=topic("head2")) == 0
+    # The status page's JSON says who saw the step, with the note.
+    import urllib.parse
+    import urllib.request
+
+    url = f"http://127.0.0.1:{d.metrics_port}/status/stream.json?name={urllib.parse.quote(topic('head2'))}"
+    with urllib.request.urlopen(url, timeout=5) as resp:
+        page = json.loads(resp.read())
+    seen = page["status"]["ack"]
+    assert seen["acked"] is True and seen["by"] == "op 17" and seen["note"] == "nozzle 4 swapped, checked"
     r = floor_cli(cli, d, "ack", ev)
     assert r.returncode == 1 and r.stdout.startswith("REFUSED (already_acknowledged)")
     assert d.stop() == 0
