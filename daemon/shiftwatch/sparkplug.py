@@ -343,10 +343,7 @@ def payload_class() -> Any:
     pool = descriptor_pool.DescriptorPool()
     pool.Add(fdp)
     desc = pool.FindMessageTypeByName(f"{PACKAGE}.Payload")
-    get = getattr(message_factory, "GetMessageClass", None)
-    if get is not None:
-        return get(desc)
-    return message_factory.MessageFactory(pool).GetPrototype(desc)  # protobuf before 4.22
+    return message_factory.GetMessageClass(desc)
 
 
 # ------------------------------------------------------------------ topics
@@ -409,6 +406,8 @@ class Outcome:
     rebirth : (group, node) whose births a host would ask for again (data before a
         birth, a gap in seq); whether to ask is the daemon's choice.
     note : a short line about a birth or death, for the log.
+    used : True when the message was taken in (a birth, a death or data applied);
+        False when it was set aside whole (see ``problems``).
     """
 
     readings: list[Reading] = field(default_factory=list)
@@ -420,6 +419,7 @@ class Outcome:
     fresh: list[str] = field(default_factory=list)
     rebirth: tuple[str, str] | None = None
     note: str | None = None
+    used: bool = False
 
 
 class _Bad(Exception):
@@ -502,6 +502,7 @@ class SparkplugSessions:
             return out
         try:
             self._message(t, p, now, out)
+            out.used = True
         except _Bad as bad:
             out.problems.append(DecodeProblem(bad.reason, bad.message))
         return out
@@ -518,9 +519,9 @@ class SparkplugSessions:
             seq = self._seq(p, t.kind)
             node.seq = seq
             node.bd_seq = self._bd_seq(p)
-            for dev in node.devices.values():  # a new node session: devices must be born again
-                dev.alive = False
-                dev.aliases = {}
+            for device in node.devices.values():  # a new node session: devices must be born again
+                device.alive = False
+                device.aliases = {}
             self._birth(t, node.session, p, now, out)
             out.note = (f"NBIRTH of edge node {t.group}/{t.node}: {len(node.session.types)} metric(s)"
                         + ("" if node.bd_seq is None else f", bdSeq {node.bd_seq}"))
