@@ -672,6 +672,8 @@ class SparkplugSessions:
         for i, m in enumerate(metrics[:self.max_metrics]):
             if m.name:
                 name = m.name
+            elif birth:
+                continue  # reported by _birth: a birth must name every metric
             elif m.HasField("alias"):
                 found = s.aliases.get(m.alias)
                 if found is None:
@@ -681,9 +683,8 @@ class SparkplugSessions:
                     continue
                 name = found
             else:
-                if not birth:
-                    out.problems.append(DecodeProblem(
-                        "sparkplug_invalid", f"{t.kind}: metric {i} has neither a name nor an alias"))
+                out.problems.append(DecodeProblem(
+                    "sparkplug_invalid", f"{t.kind}: metric {i} has neither a name nor an alias"))
                 continue
             if birth and name == "bdSeq" and t.kind == "NBIRTH":
                 continue  # the session counter, not a process value

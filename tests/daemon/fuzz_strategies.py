@@ -111,3 +111,35 @@ PAYLOADS = (st.binary(max_size=200) | st.text(max_size=60).map(lambda t: t.encod
                         st.integers(1_780_000_000, 1_800_000_000) | SCALARS)
             | SPECIAL_PAYLOADS)
 MESSAGES = st.lists(st.tuples(TOPICS, PAYLOADS), min_size=1, max_size=3)
+
+
+# ---------------------------------------------------------------------------
+# Sparkplug B (format: sparkplug_b): topics and payloads built with the schema of
+# shiftwatch.sparkplug, some fields left out, some of the wrong kind, and raw bytes.
+
+SP_TOPICS = st.sampled_from([
+    "spBv1.0/fz/NBIRTH/e1", "spBv1.0/fz/NDATA/e1", "spBv1.0/fz/NDEATH/e1", "spBv1.0/fz/DBIRTH/e1/d1",
+    "spBv1.0/fz/DDATA/e1/d1", "spBv1.0/fz/DDEATH/e1/d1", "spBv1.0/fz/NCMD/e1", "spBv1.0/fz/DCMD/e1/d1",
+    "spBv1.0/STATE/host1", "spBv1.0/fz/NDATA/e1/d1", "spBv1.0/fz/XDATA/e1", "spBv1.0/fz/DDATA/e1",
+    "spBv1.0/fz/NBIRTH/e2", "spBv1.0/fz/DDATA/e2/d\x00", "spBv1.0/fz/DBIRTH/e2/#"])
+SP_METRICS = st.fixed_dictionaries({}, optional={
+    "name": st.sampled_from(["", "bdSeq", "Fill Weight", "a/b", "Node Control/Rebirth", "x+#"]) | st.text(max_size=6),
+    "alias": st.integers(0, 5) | st.sampled_from([2**64 - 1]),
+    "timestamp": st.integers(0, 2**64 - 1) | st.just(1_790_000_000_000),
+    "datatype": st.integers(0, 40) | st.sampled_from([2**32 - 1]),
+    "is_null": st.booleans(),
+    "is_historical": st.booleans(),
+    "int_value": st.integers(0, 2**32 - 1),
+    "long_value": st.integers(0, 2**64 - 1),
+    "float_value": st.floats(width=32, allow_nan=True, allow_infinity=True),
+    "double_value": st.floats(allow_nan=True, allow_infinity=True),
+    "boolean_value": st.booleans(),
+    "string_value": st.text(max_size=6),
+    "bytes_value": st.binary(max_size=6),
+})
+SP_PAYLOADS = st.fixed_dictionaries({"metrics": st.lists(SP_METRICS, max_size=5)}, optional={
+    "timestamp": st.integers(0, 2**64 - 1) | st.just(1_790_000_000_000),
+    "seq": st.integers(0, 300) | st.sampled_from([2**64 - 1]),
+    "uuid": st.text(max_size=4),
+    "body": st.binary(max_size=4),
+})
