@@ -702,8 +702,9 @@ def _check_sparkplug(ld: _Loader, s: dict[str, Any], spath: str, snodes: dict[st
         from shiftwatch.sparkplug import payload_class
 
         payload_class()
-    except ImportError as exc:
-        raise ld.error(f"{spath}.format", str(exc), snodes.get("format")) from None
+    except ImportError:
+        raise ld.error(f"{spath}.format", "sparkplug_b needs the protobuf package, which is not "
+                       "installed: pip install 'shiftwatch[sparkplug]'", snodes.get("format")) from None
 
 
 def _check_label(ld: _Loader, label: str, topic: str, fmt: str, path: str, node: yaml.Node | None) -> None:

@@ -530,3 +530,19 @@ def test_configuration_mistakes_are_named(text: str, where: str) -> None:
     with pytest.raises(ConfigError) as err:
         parse_config(text)
     assert err.value.key_path == where
+
+
+def test_without_protobuf_the_configuration_says_what_to_install(tmp_path: Any) -> None:
+    # A fresh interpreter in which importing google.protobuf fails, as on a machine without
+    # the sparkplug extra.
+    import subprocess
+    import sys
+
+    cfg = tmp_path / "plant.yaml"
+    cfg.write_text(SP_ENTRY)
+    code = ("import sys; sys.modules['google.protobuf'] = None\n"
+            "from shiftwatch.config import ConfigError, load_config\n"
+            f"try:\n    load_config({str(cfg)!r})\nexcept ConfigError as exc:\n    print(exc)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60, check=True)
+    assert "streams[0]): format: sparkplug_b needs the protobuf package, which is not installed" in out.stdout
+    assert "pip install 'shiftwatch[sparkplug]'" in out.stdout

@@ -268,5 +268,7 @@ def test_fuzz_the_sparkplug_message_path(mosquitto: MosquittoBroker, tmp_path: P
                          if s.name == "shiftwatch_stream_stale" and s.value == 1}
         assert all(math.isfinite(s.value) for f in families for s in f.samples)
         assert stale_streams == set(d.sparkplug.stale)  # the gauge and the daemon's flags agree
+        assert all(d.stale_since(x) is not None for x in stale_streams)
+        assert d.stale_since("spBv1.0/no/such/stream") is None
         for reason in ("sparkplug_invalid", "sparkplug_not_data", "sparkplug_no_birth"):
             assert tally[reason] > 0, (reason, tally)
