@@ -807,21 +807,33 @@ class Daemon:
             self.rlog.warning("sparkplug:seq", f"Sparkplug message on {_printable(m.topic)} has seq "
                               f"{got}, expected {expected}: messages of this edge node were lost "
                               "or reordered on the way", now)
-        if out.rebirth is not None and spec.rebirth_requests and self.link is not None \
-                and self.sparkplug.may_ask_rebirth(out.rebirth, now):
-            group, node = out.rebirth
-            self._send(f"{SPARKPLUG_NAMESPACE}/{group}/NCMD/{node}",
-                       rebirth_request(int(now * 1000)), qos=0, retain=False)
-            sp.rebirth_requests.inc()
-            self.rlog.warning(f"sparkplug:rebirth:{group}/{node}", f"asked Sparkplug edge node "
-                              f"{_printable(group)}/{_printable(node)} for its births again "
-                              "(NCMD Node Control/Rebirth)", now, level=logging.INFO)
+        if out.rebirth is not None and spec.rebirth_requests and self.link is not None:
+            self._ask_rebirth(*out.rebirth, now)
         problems = out.problems
         if not spec.rebirth_requests and any(p.reason == "sparkplug_no_birth" for p in problems):
             problems = [p if p.reason != "sparkplug_no_birth" else p._replace(
                 message=p.message + "; its next birth (when it reconnects) brings it back, or set "
                 "rebirth_requests: true to ask for one") for p in problems]
         return Decoded(out.readings, problems)
+
+    def _ask_rebirth(self, group: str, node: str, now: float) -> None:
+        """Publish an NCMD asking the edge node for its births (at most once per 30 s per
+        node); never for a group or node name that is not a plain topic level."""
+        levels = f"{group}/{node}"
+        if stream_name(levels, None) != levels or levels.count("/") != 1 \
+                or not self.sparkplug.may_ask_rebirth((group, node), now):
+            return
+        try:
+            self._send(f"{SPARKPLUG_NAMESPACE}/{group}/NCMD/{node}", rebirth_request(int(now * 1000)),
+                       qos=0, retain=False)
+        except (ValueError, RuntimeError) as exc:  # paho refuses what it cannot send
+            self.rlog.warning("sparkplug:rebirth-failed", f"rebirth request to Sparkplug edge node "
+                              f"{_printable(levels)} not sent: {_one_line(exc)}", now)
+            return
+        self.metrics.sparkplug().rebirth_requests.inc()
+        self.rlog.warning(f"sparkplug:rebirth:{levels}", f"asked Sparkplug edge node "
+                          f"{_printable(levels)} for its births again (NCMD Node Control/Rebirth)",
+                          now, level=logging.INFO)
 
     def _decode_problems(self, topic: str, problems: list[DecodeProblem], now: float) -> None:
         for p in problems:

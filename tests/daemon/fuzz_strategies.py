@@ -121,7 +121,9 @@ SP_TOPICS = st.sampled_from([
     "spBv1.0/fz/NBIRTH/e1", "spBv1.0/fz/NDATA/e1", "spBv1.0/fz/NDEATH/e1", "spBv1.0/fz/DBIRTH/e1/d1",
     "spBv1.0/fz/DDATA/e1/d1", "spBv1.0/fz/DDEATH/e1/d1", "spBv1.0/fz/NCMD/e1", "spBv1.0/fz/DCMD/e1/d1",
     "spBv1.0/STATE/host1", "spBv1.0/fz/NDATA/e1/d1", "spBv1.0/fz/XDATA/e1", "spBv1.0/fz/DDATA/e1",
-    "spBv1.0/fz/NBIRTH/e2", "spBv1.0/fz/DDATA/e2/d\x00", "spBv1.0/fz/DBIRTH/e2/#"])
+    "spBv1.0/fz/NBIRTH/e2", "spBv1.0/fz/DDATA/e2/d\x00", "spBv1.0/fz/DBIRTH/e2/#",
+    # Names no broker would carry, where a rebirth request must not be published.
+    "spBv1.0/fz/NDATA/e\x00", "spBv1.0/f+/NDATA/e1", "spBv1.0/fz/DDATA/#/d1"])
 SP_METRICS = st.fixed_dictionaries({}, optional={
     "name": st.sampled_from(["", "bdSeq", "Fill Weight", "a/b", "Node Control/Rebirth", "x+#"]) | st.text(max_size=6),
     "alias": st.integers(0, 5) | st.sampled_from([2**64 - 1]),
