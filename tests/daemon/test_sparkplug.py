@@ -482,7 +482,7 @@ def build(d: dict[str, Any]) -> bytes:
     return bytes(p.SerializeToString())
 
 
-SP_BODIES = (SP_PAYLOADS.map(build)
+SP_BODIES = (SP_PAYLOADS.map(build) | SP_PAYLOADS.map(build)
              | st.tuples(SP_PAYLOADS.map(build), SP_PAYLOADS.map(build)).map(b"".join)  # merged on parse
              | st.tuples(SP_PAYLOADS.map(build), st.integers(0, 60)).map(lambda t: t[0][:t[1]])
              | st.binary(max_size=80))
