@@ -2,7 +2,8 @@
 # Install everything the tests need and run the whole suite: the README's second command,
 # and all that CI runs (.ci/run calls this and nothing else).
 #
-#   1. a virtual environment in .venv with shiftwatch and its test and demo extras;
+#   1. a virtual environment in .venv with shiftwatch and its test, demo and sparkplug extras
+#      (sparkplug: protobuf, for the Sparkplug B tests);
 #   2. the system packages the tests use, each only where it is missing: Mosquitto (the
 #      brokers), promtool (Debian's prometheus package, without its recommends: the alerting
 #      rules and the dashboard's queries), Chromium and its driver (the report's browser test),
@@ -17,7 +18,7 @@ cd "$(dirname "$0")/.."
 
 python3 -m venv .venv
 . .venv/bin/activate
-python -m pip install --quiet -e '.[test,demo]'
+python -m pip install --quiet -e '.[test,demo,sparkplug]'
 
 have() { command -v "$1" >/dev/null 2>&1 || [ -x "/usr/sbin/$1" ] || [ -x "/usr/bin/$1" ]; }
 need=""

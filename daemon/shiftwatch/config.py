@@ -231,15 +231,23 @@ BROKER_KEYS = {
                            "send us at once (1-65535)", {"type": "integer", "minimum": 1, "maximum": 65535}),
 }
 
+#: Payload formats of a stream entry.
+FORMATS = ("number", "json", "senml", "sparkplug_b")
+
 STREAM_KEYS = {
     "topic": Key(_str(), MISSING, "MQTT topic filter; every topic it matches is one stream"),
-    "format": Key(_str(("number", "json", "senml")), "json", "payload format: number, json or senml"),
+    "format": Key(_str(FORMATS), "json", "payload format: number, json, senml or sparkplug_b"),
     "value": Key(_str(), "value", "key or dot path of the value in a JSON payload"),
     "time": Key(_optional(_str()), None, "key or dot path of the time stamp in a JSON payload (absent: arrival time)"),
     "unit": Key(_optional(_str()), None, "unit of the readings, shown in alerts"),
     "label": Key(_optional(_str()), None, "what operators call the stream, used in alert summaries; "
                  "{1}, {2}, ... stand for the topic levels matched by each +, {#} for those matched "
-                 "by #, {name} for the SenML name"),
+                 "by #, {name} for the SenML name; for sparkplug_b {group}, {node} and {name} "
+                 "(the device and metric name)"),
+    "rebirth_requests": Key(_bool, False, "sparkplug_b only: ask an edge node for its births again "
+                            "(an NCMD with Node Control/Rebirth) when its data comes before its "
+                            "birth or with a gap in seq; off by default, since it writes to the "
+                            "edge node"),
     "detection": Key(lambda v: v, None, "per-stream overrides of the detection settings"),
 }
 
@@ -331,6 +339,7 @@ class StreamConfig:
     unit: str | None = None
     label: str | None = None
     detection: DetectionSettings = field(default_factory=DetectionSettings)
+    rebirth_requests: bool = False
 
 
 @dataclass(frozen=True)
@@ -418,6 +427,10 @@ class Config:
         if sc.label is None:
             return None
         plus, rest = _captures(sc.topic, topic)
+        if sc.format == "sparkplug_b":
+            group, node, name = (stream.split("/", 2) + ["", ""])[:3]
+            parts = {"group": group, "node": node, "name": name}
+            return _PLACEHOLDER.sub(lambda mo: parts.get(mo.group(1), mo.group(0)), sc.label)
 
         def fill(mo: re.Match[str]) -> str:
             key = mo.group(1)
@@ -444,11 +457,14 @@ class Config:
             for sc in self.streams:
                 if (cut == len(levels) or sc.format == "senml") and topic_matches(sc.topic, topic):
                     return sc, topic, "/".join(levels[cut:])
+        for sc in self.streams:
+            if sc.format == "sparkplug_b" and _sparkplug_matches(sc.topic, levels):
+                return sc, stream, "/".join(levels[2:])
         return None
 
 
 #: Placeholders of a stream ``label``.
-_PLACEHOLDER = re.compile(r"\{(\d+|#|name)\}")
+_PLACEHOLDER = re.compile(r"\{(\d+|#|name|group|node)\}")
 
 
 def _captures(pattern: str, topic: str) -> tuple[list[str], str]:
@@ -458,6 +474,16 @@ def _captures(pattern: str, topic: str) -> tuple[list[str], str]:
     plus = [t[i] for i, part in enumerate(p) if part == "+" and i < len(t)]
     rest = "/".join(t[len(p) - 1:]) if p and p[-1] == "#" else ""
     return plus, rest
+
+
+def _sparkplug_matches(pattern: str, levels: list[str]) -> bool:
+    """Whether a Sparkplug stream (``group/node/[device/]metric``) can come from a filter:
+    its node's NDATA topic, or its device's DDATA topic, matches it."""
+    if len(levels) < 3:
+        return False
+    group, node = levels[0], levels[1]
+    return (topic_matches(pattern, f"spBv1.0/{group}/NDATA/{node}")
+            or topic_matches(pattern, f"spBv1.0/{group}/DDATA/{node}/{levels[2]}"))
 
 
 def topic_matches(pattern: str, topic: str) -> bool:
@@ -609,6 +635,7 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
             spath = f"streams[{i}]"
             s, snodes = ld.section(item, STREAM_KEYS, spath)
             _check_filter(ld, s["topic"], f"{spath}.topic", snodes.get("topic"))
+            _check_sparkplug(ld, s, spath, snodes)
             if s["label"] is not None:
                 _check_label(ld, s["label"], s["topic"], s["format"], f"{spath}.label", snodes.get("label"))
             s["detection"] = ld.detection(snodes.get("detection"), f"{spath}.detection", detection)
@@ -654,11 +681,42 @@ def _check_filter(ld: _Loader, topic: str, path: str, node: yaml.Node | None) ->
             raise ld.error(path, f"'+' must be a whole level of the filter: {topic!r}", node)
 
 
+def _check_sparkplug(ld: _Loader, s: dict[str, Any], spath: str, snodes: dict[str, yaml.Node]) -> None:
+    """A sparkplug_b entry subscribes inside the Sparkplug namespace, and protobuf is there;
+    rebirth_requests belongs to sparkplug_b entries only."""
+    if s["format"] != "sparkplug_b":
+        if s["rebirth_requests"]:
+            raise ld.error(f"{spath}.rebirth_requests", "only a stream entry with format: sparkplug_b "
+                           "can ask for rebirths", snodes.get("rebirth_requests"))
+        return
+    first = s["topic"].split("/")[0]
+    if first != "spBv1.0":
+        raise ld.error(f"{spath}.topic", "a sparkplug_b entry's topic must be a filter in the "
+                       f"Sparkplug B namespace, such as 'spBv1.0/<group>/#', got {s['topic']!r}",
+                       snodes.get("topic"))
+    for key in ("value", "time"):
+        if key in snodes:
+            raise ld.error(f"{spath}.{key}", "not used with format: sparkplug_b (each metric has "
+                           "its name and its own time stamp)", snodes[key])
+    try:
+        from shiftwatch.sparkplug import payload_class
+
+        payload_class()
+    except ImportError:
+        raise ld.error(f"{spath}.format", "sparkplug_b needs the protobuf package, which is not "
+                       "installed: pip install 'shiftwatch[sparkplug]'", snodes.get("format")) from None
+
+
 def _check_label(ld: _Loader, label: str, topic: str, fmt: str, path: str, node: yaml.Node | None) -> None:
     parts = topic.split("/")
     n_plus = parts.count("+")
     for mo in re.finditer(r"\{([^{}]*)\}", label):
         key = mo.group(1)
+        if fmt == "sparkplug_b":
+            if key in ("group", "node", "name"):
+                continue
+            raise ld.error(path, f"placeholder {mo.group(0)} cannot be filled: a sparkplug_b "
+                           "stream's label can use {group}, {node} and {name}", node)
         if key.isdigit() and 1 <= int(key) <= n_plus:
             continue
         if key == "#" and parts[-1] == "#":
@@ -703,7 +761,7 @@ def json_schema() -> dict[str, Any]:
 
     detection = obj(DETECTION_KEYS)
     stream = obj(STREAM_KEYS, {"detection": detection}, required=("topic",))
-    stream["properties"]["format"]["enum"] = ["number", "json", "senml"]
+    stream["properties"]["format"]["enum"] = list(FORMATS)
     broker = obj(BROKER_KEYS, {"tls": obj(TLS_KEYS)})
     broker["properties"]["mqtt_version"]["enum"] = ["5", "3.1.1"]
     top = obj(TOP_KEYS, {

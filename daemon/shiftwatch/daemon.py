@@ -43,6 +43,8 @@ from shiftwatch.metrics import FloorMetrics, Metrics, MetricsServer, StreamStats
 from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
 from shiftwatch.notify import sd_notify, watchdog_interval
 from shiftwatch.outbox import Outbox
+from shiftwatch.sparkplug import NAMESPACE as SPARKPLUG_NAMESPACE
+from shiftwatch.sparkplug import SparkplugSessions, rebirth_request
 from shiftwatch.statestore import StateStore
 from shiftwatch.status import StatusBoard
 
@@ -121,10 +123,12 @@ class RateLimitedLog:
         self._extra: dict[str, dict[str, Any] | None] = {}
 
     def warning(self, key: str, text: str | Callable[[], str], now: float, *,
-                exc_info: bool = False, extra: dict[str, Any] | None = None) -> None:
+                exc_info: bool = False, extra: dict[str, Any] | None = None,
+                level: int = logging.WARNING) -> None:
         """Log ``text`` (or what the callable returns: built only for a line that is written).
 
-        ``extra`` are the line's fields (stream, event id) for the JSON log format.
+        ``extra`` are the line's fields (stream, event id) for the JSON log format;
+        ``level`` the line's level (the summaries of held-back lines are warnings).
         """
         last = self._last.get(key)
         if last is not None and now - last < self.every:
@@ -142,7 +146,7 @@ class RateLimitedLog:
         self._text[key] = text
         self._extra[key] = extra
         more = f" ({held} more like this in the last {self.every:.0f} s)" if held else ""
-        self.log.warning(text + more, exc_info=exc_info, extra=extra)
+        self.log.log(level, text + more, exc_info=exc_info, extra=extra)
 
     def flush(self, now: float, *, all_held: bool = False) -> None:
         """Write the summary of each key whose window has ended with lines held back
@@ -316,6 +320,10 @@ class Daemon:
         self.status = StatusBoard(self.metrics.streams, self._label, time_zone=self.tz)
         self.metrics.label_for = self.status.label
         self.status.add_provider(self._floor_fields)
+        #: Sparkplug B edge nodes and devices: aliases, seq, and the streams a death made stale.
+        self.sparkplug = SparkplugSessions(max_sessions=cfg.metrics.max_streams)
+        self._sparkplug_streams: set[str] = set()
+        self.status.add_provider(self._stale_fields)
 
     def _label(self, name: str) -> str | None:
         """The configured label of a stream (the status board caches it)."""
@@ -335,6 +343,18 @@ class Daemon:
             out["hold"] = {"kind": "hold" if window is view.hold else "planned change",
                            "until": window.end, "note": window.note}
         return out or None
+
+    def _stale_fields(self, name: str) -> dict[str, Any] | None:
+        """The status page's stale flag of a Sparkplug B stream (None for other streams)."""
+        if name not in self._sparkplug_streams:
+            return None
+        return {"stale": self.sparkplug.stale.get(name) is not None}
+
+    def stale_since(self, stream: str) -> float | None:
+        """When the Sparkplug edge node or device of ``stream`` died (epoch seconds), while
+        the stream is stale (until the next birth); None for a live stream or another format.
+        Read by the main thread's callers; the metrics show it as shiftwatch_stream_stale."""
+        return self.sparkplug.stale.get(stream)
 
     # ------------------------------------------------------------ topics
     @property
@@ -721,7 +741,12 @@ class Daemon:
                         # arrival it would stand after every sample of a backlog stamped
                         # earlier, and those would all be rejected as out_of_order.
                         continue
-                    name = topic_stream if r.name is None else stream_name(m.topic, r.name)
+                    if r.name is None:
+                        name = topic_stream
+                    elif spec.format == "sparkplug_b":
+                        name = r.name  # already the stream's name (group/node/[device/]metric)
+                    else:
+                        name = stream_name(m.topic, r.name)
                     g = groups.get(name)
                     if g is None:
                         g = groups[name] = [spec, r.unit or spec.unit, [], [], []]
@@ -780,6 +805,8 @@ class Daemon:
 
         decode never raises on a payload: a defect costs the messages it hits only.
         """
+        if spec.format == "sparkplug_b":
+            return [self._sparkplug_message(spec, m, now) for m in ms]
         kwargs: dict[str, Any] = {"value_path": spec.value, "time_path": spec.time,
                                   "max_bytes": self.cfg.broker.max_payload_bytes}
         try:
@@ -797,6 +824,72 @@ class Daemon:
                                   f"{_printable(m.topic)}; it was set aside", now, exc_info=True)
                 out.append(None)
         return out
+
+    def _sparkplug_message(self, spec: StreamConfig, m: Message, now: float) -> Decoded | None:
+        """Decode one Sparkplug B message through the edge-node sessions, and act on what it
+        says: births and deaths logged, stale flags set and cleared, seq gaps counted, skipped
+        metrics counted, a rebirth asked for when the entry allows it."""
+        try:
+            out = self.sparkplug.feed(m.topic, m.payload, m.arrived,
+                                      max_bytes=self.cfg.broker.max_payload_bytes)
+        except Exception:  # noqa: BLE001  a defect costs this message only; counted and logged
+            self._count_drop("internal_error")
+            self.rlog.warning("internal_error", f"internal error while decoding a Sparkplug message on "
+                              f"{_printable(m.topic)}; it was set aside", now, exc_info=True)
+            return None
+        sp = self.metrics.sparkplug()
+        if out.used and out.kind is not None:
+            sp.messages.labels(out.kind).inc()
+        for kind, n in out.skipped.items():
+            sp.metrics_skipped.labels(kind).inc(n)
+        for stream in out.stale:
+            sp.set_stale(stream, True)
+        for stream in out.fresh:
+            sp.set_stale(stream, False)
+        for r in out.readings:
+            if r.name is not None and r.name not in self._sparkplug_streams \
+                    and len(self._sparkplug_streams) < 4 * self.cfg.metrics.max_streams:
+                self._sparkplug_streams.add(r.name)
+                if not self.sparkplug.is_stale(r.name):
+                    sp.set_stale(r.name, False)
+        if out.note is not None:
+            more = f"; {len(out.stale)} stream(s) stale" if out.stale else ""
+            more += f"; {len(out.fresh)} stream(s) live again" if out.fresh else ""
+            self.rlog.warning(f"sparkplug:{out.kind}", out.note + more, now,
+                              level=logging.WARNING if out.stale else logging.INFO)
+        if out.seq_gap is not None:
+            sp.seq_gaps.inc()
+            expected, got = out.seq_gap
+            self.rlog.warning("sparkplug:seq", f"Sparkplug message on {_printable(m.topic)} has seq "
+                              f"{got}, expected {expected}: messages of this edge node were lost "
+                              "or reordered on the way", now)
+        if out.rebirth is not None and spec.rebirth_requests and self.link is not None:
+            self._ask_rebirth(*out.rebirth, now)
+        problems = out.problems
+        if not spec.rebirth_requests and any(p.reason == "sparkplug_no_birth" for p in problems):
+            problems = [p if p.reason != "sparkplug_no_birth" else p._replace(
+                message=p.message + "; its next birth (when it reconnects) brings it back, or set "
+                "rebirth_requests: true to ask for one") for p in problems]
+        return Decoded(out.readings, problems)
+
+    def _ask_rebirth(self, group: str, node: str, now: float) -> None:
+        """Publish an NCMD asking the edge node for its births (at most once per 30 s per
+        node); never for a group or node name that is not a plain topic level."""
+        levels = f"{group}/{node}"
+        if stream_name(levels, None) != levels or levels.count("/") != 1 \
+                or not self.sparkplug.may_ask_rebirth((group, node), now):
+            return
+        try:
+            self._send(f"{SPARKPLUG_NAMESPACE}/{group}/NCMD/{node}", rebirth_request(int(now * 1000)),
+                       qos=0, retain=False)
+        except (ValueError, RuntimeError) as exc:  # paho refuses what it cannot send
+            self.rlog.warning("sparkplug:rebirth-failed", f"rebirth request to Sparkplug edge node "
+                              f"{_printable(levels)} not sent: {_one_line(exc)}", now)
+            return
+        self.metrics.sparkplug().rebirth_requests.inc()
+        self.rlog.warning(f"sparkplug:rebirth:{levels}", f"asked Sparkplug edge node "
+                          f"{_printable(levels)} for its births again (NCMD Node Control/Rebirth)",
+                          now, level=logging.INFO)
 
     def _decode_problems(self, topic: str, problems: list[DecodeProblem], now: float) -> None:
         for p in problems:
@@ -1168,6 +1261,7 @@ class Daemon:
                 self._filters.pop(name, None)
                 self.metrics.remove_stream(name)
                 self.status.forget(name)
+                self.sparkplug.forget_stream(name)
                 self._clear_levels(name)
                 dropped += 1
                 continue

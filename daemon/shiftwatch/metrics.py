@@ -58,7 +58,7 @@ from prometheus_client.metrics_core import CounterMetricFamily, GaugeMetricFamil
 from prometheus_client.registry import Collector
 
 __all__ = ["ALERT_DELAY_BUCKETS", "CONNECTION_TIMEOUT", "DEFAULT_LISTEN", "MAX_CONNECTIONS", "Metrics",
-           "MetricsServer", "StreamStats", "parse_listen"]
+           "MetricsServer", "SparkplugMetrics", "StreamStats", "parse_listen"]
 
 #: Where the endpoint listens unless configured otherwise: loopback only.
 DEFAULT_LISTEN = "127.0.0.1:9650"
@@ -792,6 +792,7 @@ class Metrics:
         self.registry = registry if registry is not None else CollectorRegistry()
         self._lock = threading.Lock()
         self._streams: dict[str, StreamStats] = {}
+        self._sparkplug: SparkplugMetrics | None = None
         reg = self.registry
         self.broker_connected = Gauge(
             "shiftwatch_broker_connected", "1 while connected to the MQTT broker, else 0.",
@@ -859,6 +860,15 @@ class Metrics:
         """Stop exporting the stream; unknown names are ignored."""
         with self._lock:
             self._streams.pop(stream, None)
+        if self._sparkplug is not None:
+            self._sparkplug.set_stale(stream, None)
+
+    def sparkplug(self) -> SparkplugMetrics:
+        """The Sparkplug B metrics, registered on first use (only a daemon with a
+        ``sparkplug_b`` stream entry exports them)."""
+        if self._sparkplug is None:
+            self._sparkplug = SparkplugMetrics(self.registry)
+        return self._sparkplug
 
     def _snapshot(self) -> dict[str, StreamStats]:
         with self._lock:
@@ -941,3 +951,63 @@ class FloorMetrics:
         self.save_failures = Counter(
             "shiftwatch_floor_save_failures", "Times the book of windows and acknowledgements could "
             "not be written to the state directory.", registry=registry)
+
+
+class SparkplugMetrics:
+    """What the daemon counts of Sparkplug B traffic (see :mod:`shiftwatch.sparkplug`).
+
+    Attributes
+    ----------
+    messages : Sparkplug messages used, by message type (NBIRTH, NDATA, ...).
+    metrics_skipped : metrics that are not numbers (booleans, strings, datasets, ...), by kind.
+    seq_gaps : messages whose ``seq`` did not follow on from the edge node's last one.
+    rebirth_requests : NCMD rebirth requests sent to edge nodes.
+    """
+
+    def __init__(self, registry: CollectorRegistry) -> None:
+        self._lock = threading.Lock()
+        self._stale: dict[str, bool] = {}
+        self.messages = Counter(
+            "shiftwatch_sparkplug_messages", "Sparkplug B messages used, by message type "
+            "(births, data, deaths); those set aside count in shiftwatch_messages_dropped_total.",
+            labelnames=["type"], registry=registry)
+        self.metrics_skipped = Counter(
+            "shiftwatch_sparkplug_metrics_skipped", "Sparkplug B metrics that are not numbers "
+            "(booleans, strings, date-times, bytes, datasets, templates, arrays, nulls), by kind; "
+            "skipped, not errors.", labelnames=["kind"], registry=registry)
+        self.seq_gaps = Counter(
+            "shiftwatch_sparkplug_seq_gaps", "Sparkplug B messages whose seq did not follow on "
+            "from their edge node's previous message (messages lost or reordered on the way).",
+            registry=registry)
+        self.rebirth_requests = Counter(
+            "shiftwatch_sparkplug_rebirth_requests", "Rebirth requests (NCMD Node Control/Rebirth) "
+            "sent to edge nodes; only with rebirth_requests: true.", registry=registry)
+        registry.register(_StaleCollector(self))
+
+    def set_stale(self, stream: str, stale: bool | None) -> None:
+        """Mark a Sparkplug stream stale (True), live (False), or forget it (None)."""
+        with self._lock:
+            if stale is None:
+                self._stale.pop(stream, None)
+            else:
+                self._stale[stream] = stale
+
+    def stale_snapshot(self) -> dict[str, bool]:
+        with self._lock:
+            return dict(self._stale)
+
+
+class _StaleCollector(Collector):
+    def __init__(self, sp: SparkplugMetrics) -> None:
+        self._sp = sp
+
+    def describe(self) -> list[Metric]:
+        return [GaugeMetricFamily("shiftwatch_stream_stale", "", labels=["stream"])]
+
+    def collect(self) -> Iterator[Metric]:
+        f = GaugeMetricFamily(
+            "shiftwatch_stream_stale", "1 while a Sparkplug B stream's edge node or device is "
+            "dead (after its NDEATH or DDEATH, until its next birth), else 0.", labels=["stream"])
+        for name, stale in sorted(self._sp.stale_snapshot().items()):
+            f.add_metric([name], 1.0 if stale else 0.0)
+        yield f

@@ -41,6 +41,7 @@ import paho.mqtt.client as paho
 from paho.mqtt.enums import CallbackAPIVersion, MQTTProtocolVersion
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
+from paho.mqtt.subscribeoptions import SubscribeOptions
 
 from shiftwatch.config import BrokerConfig
 
@@ -580,7 +581,16 @@ class MqttLink:
             for f in removed:
                 self.client.unsubscribe(f)
             for f in added:
-                self.client.subscribe(f, qos=self.cfg.qos)
+                self._subscribe(self.client, f)
+
+    def _subscribe(self, client: paho.Client, topic_filter: str) -> None:
+        """Subscribe at ``cfg.qos``; with MQTT 5 with No Local (MQTT 5 section 3.8.3.1), so the
+        daemon is never sent what it publishes itself (a Sparkplug rebirth request under a
+        ``spBv1.0/#`` filter, or its alerts under a filter that covers the prefix)."""
+        if self.cfg.mqtt_version == "5":
+            client.subscribe(topic_filter, options=SubscribeOptions(qos=self.cfg.qos, noLocal=True))
+        else:
+            client.subscribe(topic_filter, qos=self.cfg.qos)
 
     def ack(self, mid: int, qos: int) -> None:
         """Acknowledge a processed QoS 1 message to the broker."""
@@ -630,7 +640,7 @@ class MqttLink:
         self.log.info("connected to broker %s (session %s)", self.url,
                       "resumed" if session else "new")
         for f in self.subscriptions:
-            client.subscribe(f, qos=self.cfg.qos)
+            self._subscribe(client, f)
         info = client.publish(self.status_topic, b"online", qos=1, retain=True)
         self._own_mids.add(int(info.mid))
         self._on_connection(True)

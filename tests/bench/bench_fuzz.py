@@ -28,6 +28,13 @@ Three parts, each with the strategies of the test suite
    at the cap, at 100,000 topics, during and after), and at most one log
    line per reason per 10 s.
 
+4. Sparkplug B decoding: sequences of hypothesis examples (births, data,
+   deaths, commands on random topics; built, merged, truncated protobuf and
+   raw bytes) straight into ``shiftwatch.sparkplug.SparkplugSessions``;
+   tally of problems by reason, of exceptions and of messages neither taken
+   in nor set aside with a reason (targets 0, 0).  ``--sparkplug-only`` runs
+   this part alone.
+
 The script prints the tallies and one table, and exits 0 only when every
 target is met.
 """
@@ -98,6 +105,46 @@ def fuzz_decoders(n: int) -> dict[str, Any]:
     run()
     return {"examples": count["examples"], "readings": count["readings"], "tally": tally,
             "errors": errors, "seconds": time.monotonic() - t}
+
+
+# ======================================================================
+# 4. Sparkplug B decoding
+# ======================================================================
+def fuzz_sparkplug(n: int) -> dict[str, Any]:
+    from hypothesis import given, settings
+    from hypothesis import strategies as st
+    from tests.daemon.fuzz_strategies import PROPERTY, SP_TOPICS
+    from tests.daemon.test_sparkplug import SP_BODIES
+
+    from shiftwatch.sparkplug import SparkplugSessions
+
+    tally: Counter[str] = Counter()
+    errors: list[str] = []
+    count = {"examples": 0, "messages": 0, "readings": 0, "used": 0}
+
+    @settings(PROPERTY, max_examples=n)
+    @given(msgs=st.lists(st.tuples(SP_TOPICS, SP_BODIES), min_size=1, max_size=12))
+    def run(msgs: list[tuple[str, bytes]]) -> None:
+        count["examples"] += 1
+        s = SparkplugSessions(max_sessions=4, max_metrics=4)
+        for topic, body in msgs:
+            count["messages"] += 1
+            try:
+                out = s.feed(topic, body, T0, max_bytes=200)
+            except Exception:  # noqa: BLE001  any exception is what this fuzzer counts
+                tally["EXCEPTION"] += 1
+                if len(errors) < 3:
+                    errors.append(f"{topic} {body[:60]!r}: {traceback.format_exc(limit=3)}")
+                continue
+            count["readings"] += len(out.readings)
+            count["used"] += out.used
+            tally.update(p.reason for p in out.problems)
+            if not out.used and not out.problems:
+                tally["UNACCOUNTED"] += 1
+
+    t = time.monotonic()
+    run()
+    return {**count, "tally": tally, "errors": errors, "seconds": time.monotonic() - t}
 
 
 # ======================================================================
@@ -328,7 +375,10 @@ def main() -> int:
     ap.add_argument("--decoder-examples", type=int)
     ap.add_argument("--path-examples", type=int)
     ap.add_argument("--topics", type=int)
+    ap.add_argument("--sparkplug-examples", type=int)
+    ap.add_argument("--sparkplug-only", action="store_true", help="run part 4 (Sparkplug B) alone")
     a = ap.parse_args()
+    n_sp = a.sparkplug_examples or (2_000 if a.quick else 20_000)
     n_dec = a.decoder_examples or (5_000 if a.quick else 50_000)
     n_path = a.path_examples or (1_000 if a.quick else 10_000)
     n_topics = a.topics or (100_000 if a.quick else 1_000_000)
@@ -336,6 +386,17 @@ def main() -> int:
     rows: list[tuple[str, str, str, bool]] = []
     with tempfile.TemporaryDirectory(prefix="shiftwatch-bench-fuzz-") as tmpname:
         tmp = Path(tmpname)
+
+        sp = fuzz_sparkplug(n_sp)
+        print(f"sparkplug: {sp['examples']:,} sequences, {sp['messages']:,} messages in {sp['seconds']:.0f} s, "
+              f"{sp['used']:,} taken in, {sp['readings']:,} readings; problems by reason: {tally_text(sp['tally'])}")
+        for e in sp["errors"]:
+            print("  " + e)
+        rows.append(("sparkplug: exceptions, messages unaccounted", (f"{sp['tally']['EXCEPTION']}, "
+                     f"{sp['tally']['UNACCOUNTED']} of {sp['messages']:,}"), "0, 0",
+                     sp["tally"]["EXCEPTION"] + sp["tally"]["UNACCOUNTED"] == 0))
+        if a.sparkplug_only:
+            return _table(rows)
 
         dec = fuzz_decoders(n_dec)
         print(f"decoders: {dec['examples']:,} examples in {dec['seconds']:.0f} s, "
@@ -381,6 +442,10 @@ def main() -> int:
                      fl["max_per_reason_per_10s"] <= 1))
         rows.append(("flood: daemon exit status on SIGTERM", str(fl["exit"]), "0", fl["exit"] == 0))
 
+    return _table(rows)
+
+
+def _table(rows: list[tuple[str, str, str, bool]]) -> int:
     width = max(len(r[0]) for r in rows)
     print()
     print(f"{'target'.ljust(width)}  measured | target | result")

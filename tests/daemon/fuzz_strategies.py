@@ -111,3 +111,51 @@ PAYLOADS = (st.binary(max_size=200) | st.text(max_size=60).map(lambda t: t.encod
                         st.integers(1_780_000_000, 1_800_000_000) | SCALARS)
             | SPECIAL_PAYLOADS)
 MESSAGES = st.lists(st.tuples(TOPICS, PAYLOADS), min_size=1, max_size=3)
+
+
+# ---------------------------------------------------------------------------
+# Sparkplug B (format: sparkplug_b): topics and payloads built with the schema of
+# shiftwatch.sparkplug, some fields left out, some of the wrong kind, and raw bytes.
+
+_SP_NODE_TOPICS = st.sampled_from([
+    "spBv1.0/fz/NBIRTH/e1", "spBv1.0/fz/NDATA/e1", "spBv1.0/fz/NDEATH/e1", "spBv1.0/fz/DBIRTH/e1/d1",
+    "spBv1.0/fz/DDATA/e1/d1", "spBv1.0/fz/DDEATH/e1/d1", "spBv1.0/fz/NBIRTH/e2", "spBv1.0/fz/DDATA/e2/d2"])
+_SP_OTHER_TOPICS = st.sampled_from([
+    "spBv1.0/fz/NCMD/e1", "spBv1.0/fz/DCMD/e1/d1", "spBv1.0/STATE/host1", "spBv1.0/fz/NDATA/e1/d1",
+    "spBv1.0/fz/XDATA/e1", "spBv1.0/fz/DDATA/e1", "spBv1.0/fz/DDATA/e2/d\x00", "spBv1.0/fz/DBIRTH/e2/#",
+    # Names no broker would carry, where a rebirth request must not be published.
+    "spBv1.0/fz/NDATA/e\x00", "spBv1.0/f+/NDATA/e1", "spBv1.0/fz/DDATA/#/d1"])
+#: Mostly the messages of two edge nodes and their devices, sometimes anything else.
+SP_TOPICS = st.one_of(_SP_NODE_TOPICS, _SP_NODE_TOPICS, _SP_NODE_TOPICS, _SP_OTHER_TOPICS)
+SP_METRICS = st.fixed_dictionaries({}, optional={
+    "name": st.sampled_from(["", "bdSeq", "Fill Weight", "a/b", "Node Control/Rebirth", "x+#"]) | st.text(max_size=6),
+    "alias": st.integers(0, 5) | st.sampled_from([2**64 - 1]),
+    "timestamp": st.integers(0, 2**64 - 1) | st.just(1_790_000_000_000),
+    "datatype": st.integers(0, 40) | st.sampled_from([2**32 - 1]),
+    "is_null": st.booleans(),
+    "is_historical": st.booleans(),
+    "int_value": st.integers(0, 2**32 - 1),
+    "long_value": st.integers(0, 2**64 - 1),
+    "float_value": st.floats(width=32, allow_nan=True, allow_infinity=True),
+    "double_value": st.floats(allow_nan=True, allow_infinity=True),
+    "boolean_value": st.booleans(),
+    "string_value": st.text(max_size=6),
+    "bytes_value": st.binary(max_size=6),
+})
+#: Well-formed metrics (a name or an alias, a numeric datatype and its value field), so that
+#: sequences reach births followed by data and deaths, not only the error paths.
+SP_GOOD_METRICS = st.one_of(
+    st.fixed_dictionaries({"name": st.sampled_from(["Fill Weight", "Line Speed", "a/b"]),
+                           "alias": st.integers(0, 3), "datatype": st.just(10),
+                           "double_value": st.floats(-1e6, 1e6)}),
+    st.fixed_dictionaries({"alias": st.integers(0, 3), "double_value": st.floats(-1e6, 1e6)},
+                          optional={"timestamp": st.integers(1_790_000_000_000, 1_790_000_100_000)}),
+    st.fixed_dictionaries({"name": st.sampled_from(["Count", "Fill Weight"]), "datatype": st.sampled_from([1, 3, 4, 7]),
+                           "int_value": st.integers(0, 2**32 - 1)}),
+    st.fixed_dictionaries({"name": st.just("bdSeq"), "datatype": st.just(8), "long_value": st.integers(0, 3)}))
+SP_PAYLOADS = st.fixed_dictionaries({"metrics": st.lists(SP_GOOD_METRICS | SP_METRICS, max_size=5)}, optional={
+    "timestamp": st.integers(0, 2**64 - 1) | st.just(1_790_000_000_000),
+    "seq": st.integers(0, 4) | st.integers(0, 300) | st.sampled_from([2**64 - 1]),
+    "uuid": st.text(max_size=4),
+    "body": st.binary(max_size=4),
+})
