@@ -50,7 +50,7 @@ from shiftwatch.core.baseline import (
     median,
     sigma_floor,
 )
-from shiftwatch.core.events import NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
+from shiftwatch.core.events import NO_DECISION, NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
 from shiftwatch.core.screen import screen_samples
 from shiftwatch.core.selfstart import SelfStart, SplitEvidence, split_evidence
 from shiftwatch.core.sequential import SequentialTest
@@ -1416,6 +1416,12 @@ class StreamEngine:
             assert self._test is not None
             self._test.reset()
             return
+        if outcome == STEP and (fit.delta * ev.trial.sign <= 0.0
+                                or abs(fit.delta) < 0.5 * self.settings.min_shift_sigma * b.sigma):
+            # The trial (on clipped, robust inputs) says step, but the least-squares fit of
+            # the samples shows less than half of min_shift, or the other way: heavy tails
+            # can do that.  No step is confirmed on conflicting evidence.
+            outcome = NO_DECISION
         if outcome == STEP:
             phase = "confirmed"
             last = self._last_step
