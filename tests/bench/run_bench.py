@@ -10,8 +10,10 @@ settings (false_alarm_every = 7d, min_shift_sigma = 1).  Targets:
 
 - false alarms: at most 1 per 500,000 in-control samples on iid Gaussian,
   AR(1) phi = 0.6, and t(3) noise with 0.5% spikes of 6 sigma;
-- delay: median detection delay within 15% of an oracle CUSUM tuned to the
-  exact shift (k = shift / 2, same in-control ARL) for 0.75, 1, 1.5, 2 sigma;
+- delay: median detection delay at most 1.2 times an oracle CUSUM tuned to the
+  exact shift (k = shift / 2, same in-control ARL) for 0.75, 1, 1.5, 2 sigma
+  (issue 10's target; it was within 15% before the level followed slow change,
+  which costs 5-15% of delay: 1.00-1.09 before, 1.14-1.20 after);
 - shift time: median |shift_at error| of 3 samples or less;
 - interval: coverage of the 90% shift-time interval between 85% and 95%;
 - river's PageHinkley and ADWIN at their defaults on the same data;
@@ -280,11 +282,11 @@ def main() -> int:
             err = float(np.nanmedian(r[:, 2]))
             cov = float(np.nanmean(r[:, 3]))
             ratio = med / omed
-            ok = ratio <= 1.15 and err <= 3 and 0.85 <= cov <= 0.95
+            ok = ratio <= 1.2 and err <= 3 and 0.85 <= cov <= 0.95
             failures += [] if ok else [f"delay/shift time/coverage at {shift} sigma"]
             print(f"  {shift:>6.2f}{med:>9.1f}{omed:>9.1f}{ratio:>8.2f}{err:>16.1f}{cov:>10.3f}"
                   f"{r[:, 4].mean():>7.3f}  {'ok' if ok else 'MISSED'}")
-        print("  targets: ratio <= 1.15, |shift_at err| <= 3, coverage in [0.85, 0.95]")
+        print("  targets: ratio <= 1.2, |shift_at err| <= 3, coverage in [0.85, 0.95]")
 
     print("\nriver at its defaults on the same kinds of data")
     rv = river_side_by_side(200_000 if args.quick else 500_000, 40 if args.quick else 100)
