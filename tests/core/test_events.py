@@ -197,10 +197,10 @@ def test_a_new_stream_can_alert_within_its_first_samples() -> None:
             when.append(int(np.searchsorted(t, recs[0].detected_at)))
     # Every step found is found soon, and nothing false comes before it.  Measured
     # before the split test of the first warm-up: found in 22 of 30 (the rest were
-    # absorbed into the young level); now 29 of 30, by sample 41 at the latest (the
-    # one missed has 20 samples before the step whose autocorrelation looks
-    # significant, so the split test stands aside).
-    assert len(when) >= 28 and max(when) <= 50 and np.median(when) <= 30
+    # absorbed into the young level); now 30 of 30, by sample 57 at the latest (one
+    # whose 20 samples before the step look autocorrelated: the split test allows
+    # for it and takes longer).
+    assert len(when) >= 29 and max(when) <= 60 and np.median(when) <= 30
 
 
 def test_the_first_warmup_keeps_the_false_alarm_rate() -> None:
