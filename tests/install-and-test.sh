@@ -7,7 +7,8 @@
 #   2. the system packages the tests use, each only where it is missing: Mosquitto (the
 #      brokers), promtool (Debian's prometheus package, without its recommends: the alerting
 #      rules and the dashboard's queries), Chromium and its driver (the report's browser test),
-#      systemd-analyze and strace (the tests of the systemd unit).  apt-get runs as is when
+#      systemd-analyze and strace (the tests of the systemd unit), nats-server (the shard
+#      tests' NATS cluster).  apt-get runs as is when
 #      we are root, through sudo when we are not and sudo exists; otherwise the script says
 #      what to install and stops;
 #   3. python -m pytest, the whole suite, doctests included.
@@ -28,6 +29,7 @@ have promtool || lean="$lean prometheus"
 { have chromium && have chromedriver; } || need="$need chromium chromium-driver"
 have systemd-analyze || need="$need systemd"
 have strace || need="$need strace"
+have nats-server || need="$need nats-server"
 
 if [ -n "$need$lean" ]; then
     if [ "$(id -u)" -eq 0 ]; then

@@ -548,11 +548,11 @@ def setup_logging(fmt: str, level: int = logging.INFO, tz: str = "UTC") -> loggi
 
 
 def cmd_run(args: argparse.Namespace) -> int:
-    from shiftwatch.config import ConfigError, load_config
+    from shiftwatch.config import ConfigError, for_shard, load_config
 
     log = setup_logging(args.log_format)
     try:
-        cfg = load_config(args.config)
+        cfg = for_shard(load_config(args.config), args.shard)
     except ConfigError as exc:
         log.error("%s", exc)
         return EXIT_USAGE
@@ -790,6 +790,9 @@ def build_parser() -> argparse.ArgumentParser:
     rn = sub.add_parser("run", help="run the daemon (MQTT in, alerts and metrics out)")
     rn.add_argument("--config", required=True, help="YAML configuration file")
     rn.add_argument("--log-format", choices=("text", "json"), default="text", help="log line format (default text)")
+    rn.add_argument("--shard", type=int, metavar="N", default=None,
+                    help="run partition N of the configuration's shard section (in place of "
+                    "shard.number; the systemd template passes its instance)")
     rn.set_defaults(func=cmd_run)
 
     ck = sub.add_parser("check", help="validate a configuration file, print the resolved settings, and try "

@@ -123,6 +123,15 @@ def _duration(v: Any) -> float:
     return parse_duration(v)
 
 
+def _duration_or_zero(v: Any) -> float:
+    """A duration, or 0 (``0``, ``0s``) for none."""
+    if isinstance(v, (int, float)) and not isinstance(v, bool) and v == 0:
+        return 0.0
+    if isinstance(v, str) and v.strip() in ("0", "0s", "0ms"):
+        return 0.0
+    return parse_duration(v)
+
+
 #: JSON Schema of a duration: text, a number with a unit (see parse_duration).
 DURATION_SCHEMA: dict[str, Any] = {"type": "string",
                                    "pattern": r"^\s*\d+(\.\d+)?\s*(ms|s|m|min|h|d|w)\s*$"}
@@ -281,6 +290,39 @@ STATE_KEYS = {
     "snapshot_every": Key(_duration, "60s", "how often stream state is snapshotted", dict(DURATION_SCHEMA)),
     "journal": Key(_bool, True, "journal the samples processed since the last snapshot, so a "
                    "killed daemon restarts where it stopped"),
+    "keep": Key(_str(("local", "cluster")), "local", "where stream state lives: local (state.dir) or "
+                "cluster (the NATS cluster of the cluster section, so a shard can restart on another box)"),
+}
+
+SHARD_KEYS = {
+    "number": Key(_num(integer=True, positive=False), MISSING,
+                  "this daemon's partition, 0 to of - 1 (the cluster's partition numbers)",
+                  {"type": "integer", "minimum": 0}),
+    "of": Key(_num(integer=True), MISSING, "how many partitions the cluster's mapping makes",
+              {"type": "integer", "minimum": 1}),
+    "topic_prefix": Key(_str(), "part/{number}", "topic levels the cluster's mapping puts in front of "
+                        "each topic of this partition ({number} stands for shard.number); the daemon "
+                        "subscribes below them and strips them, so stream names never hold them"),
+    "metrics_port": Key(_str(("offset", "same")), "offset", "offset: the metrics port is metrics.listen's "
+                        "plus shard.number (several shards on one box); same: as configured"),
+}
+
+CLUSTER_KEYS = {
+    "servers": Key(lambda v: v, MISSING, "nats://host:port URLs of the NATS cluster's servers",
+                   {"type": "array", "items": {"type": "string"}}),
+    "name": Key(_str(), "shiftwatch", "prefix of the JetStream stream and key-value buckets the "
+                "daemons share (letters, digits, - and _)"),
+    "replicas": Key(_num(integer=True), 3, "replicas of the journal stream and the buckets (1 to 5)",
+                    {"type": "integer", "minimum": 1, "maximum": 5}),
+    "lease": Key(_duration, "15s", "how long a shard's claim lasts without renewal (see the README, "
+                 "Running shards)", dict(DURATION_SCHEMA)),
+    "timeout": Key(_duration, "5s", "deadline of each request to the cluster", dict(DURATION_SCHEMA)),
+    "redelivery_wait": Key(_duration_or_zero, "30s", "with state.keep: cluster, after each connection to the broker "
+                           "wait this long before processing, so messages a lost connection left "
+                           "unacknowledged come first; set it above the NATS server's mqtt ack_wait "
+                           "(0: do not wait)", dict(DURATION_SCHEMA)),
+    "username": Key(_optional(_str()), None, "user name for the NATS cluster"),
+    "password_file": Key(_optional(_str()), None, "file holding the NATS password (first line)"),
 }
 
 #: Keys that are refused on purpose, with the reason given instead of "unknown key".
@@ -303,6 +345,8 @@ TOP_KEYS = {
     "metrics": Key(lambda v: v, None, "Prometheus endpoint"),
     "state": Key(lambda v: v, None, "where state survives restarts"),
     "display": Key(lambda v: v, None, "how times are shown to people"),
+    "shard": Key(lambda v: v, None, "this daemon's partition of the topics (absent: all of them)"),
+    "cluster": Key(lambda v: v, None, "the NATS cluster holding shared state and shard ownership"),
 }
 
 
@@ -368,6 +412,32 @@ class StateConfig:
     dir: str = "/var/lib/shiftwatch"
     snapshot_every: float = 60.0
     journal: bool = True
+    keep: str = "local"
+
+
+@dataclass(frozen=True)
+class ShardConfig:
+    number: int
+    of: int
+    topic_prefix: str = "part/{number}"
+    metrics_port: str = "offset"
+
+    @property
+    def prefix(self) -> str:
+        """The topic levels in front of this partition's topics, with their trailing /."""
+        return self.topic_prefix.replace("{number}", str(self.number)).rstrip("/") + "/"
+
+
+@dataclass(frozen=True)
+class ClusterConfig:
+    servers: tuple[str, ...]
+    name: str = "shiftwatch"
+    replicas: int = 3
+    lease: float = 15.0
+    timeout: float = 5.0
+    redelivery_wait: float = 30.0
+    username: str | None = None
+    password_file: str | None = None
 
 
 @dataclass(frozen=True)
@@ -385,6 +455,8 @@ class Config:
     state: StateConfig = field(default_factory=StateConfig)
     display: DisplayConfig = field(default_factory=DisplayConfig)
     source: str | None = None
+    shard: ShardConfig | None = None
+    cluster: ClusterConfig | None = None
 
     def settings_for(self, stream: str) -> DetectionSettings:
         """Detection settings for a stream name: the first stream entry whose filter matches, else the defaults."""
@@ -658,8 +730,12 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
     if "tls" in mnodes:
         mt, _ = ld.section(mnodes["tls"], METRICS_TLS_KEYS, "metrics.tls")
         metrics["tls"] = MetricsTlsConfig(**mt)
-    state, _ = ld.section(nodes.get("state"), STATE_KEYS, "state")
+    state, stnodes = ld.section(nodes.get("state"), STATE_KEYS, "state")
     display, _ = ld.section(nodes.get("display"), DISPLAY_KEYS, "display")
+    shard, cluster = _shard_and_cluster(ld, nodes)
+    if state["keep"] == "cluster" and cluster is None:
+        raise ld.error("state.keep", "cluster needs a cluster section (cluster.servers: the NATS "
+                       "servers that hold the state)", stnodes.get("keep"))
     return Config(
         broker=broker,
         streams=tuple(streams),
@@ -669,7 +745,79 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
         state=StateConfig(**state),
         display=DisplayConfig(**display),
         source=file,
+        shard=shard,
+        cluster=cluster,
     )
+
+
+def for_shard(cfg: Config, number: int | None = None) -> Config:
+    """The configuration one shard runs with: ``number`` (``run --shard``) in place of
+    shard.number; its own state directory (``<state.dir>/shard-<number>``), MQTT client
+    id (``<client_id>-shard-<number>``) and, with ``metrics_port: offset``, metrics port
+    (metrics.listen's plus the number), so several shards can share one file and one box.
+    A configuration without a shard section is returned as it is (``--shard`` then
+    raises ConfigError)."""
+    import dataclasses
+
+    sh = cfg.shard
+    if sh is None:
+        if number is not None:
+            raise ConfigError("shard", "--shard needs a shard section in the configuration "
+                              "(shard.of: the number of partitions)", file=cfg.source)
+        return cfg
+    if number is not None:
+        if not 0 <= number < sh.of:
+            raise ConfigError("shard.number", f"--shard must be 0 to {sh.of - 1} (shard.of is "
+                              f"{sh.of}), got {number}", file=cfg.source)
+        sh = dataclasses.replace(sh, number=number)
+    n = sh.number
+    metrics = cfg.metrics
+    if sh.metrics_port == "offset":
+        host, _, port = metrics.listen.rpartition(":")
+        if int(port) != 0:
+            if int(port) + n > 65535:
+                raise ConfigError("metrics.listen", f"port {port} plus shard {n} is past 65535",
+                                  file=cfg.source)
+            metrics = dataclasses.replace(metrics, listen=f"{host}:{int(port) + n}")
+    return dataclasses.replace(
+        cfg, shard=sh, metrics=metrics,
+        state=dataclasses.replace(cfg.state, dir=str(Path(cfg.state.dir) / f"shard-{n}")),
+        broker=dataclasses.replace(cfg.broker, client_id=f"{cfg.broker.client_id}-shard-{n}"))
+
+
+def _shard_and_cluster(ld: _Loader, nodes: dict[str, yaml.Node]) -> tuple[ShardConfig | None, ClusterConfig | None]:
+    shard = cluster = None
+    if nodes.get("shard") is not None:
+        sh, shnodes = ld.section(nodes["shard"], SHARD_KEYS, "shard")
+        if not 0 <= sh["number"] < sh["of"]:
+            raise ld.error("shard.number", f"must be 0 to shard.of - 1 ({sh['of'] - 1}), got "
+                           f"{sh['number']}", shnodes.get("number"))
+        prefix = sh["topic_prefix"]
+        if any(c in prefix for c in "+#") or prefix.startswith("/") or not prefix.strip("/"):
+            raise ld.error("shard.topic_prefix", f"must be plain topic levels without + or #, got "
+                           f"{prefix!r}", shnodes.get("topic_prefix"))
+        shard = ShardConfig(**sh)
+    if nodes.get("cluster") is not None:
+        cl, clnodes = ld.section(nodes["cluster"], CLUSTER_KEYS, "cluster")
+        servers = cl["servers"]
+        if isinstance(servers, str):
+            servers = [servers]
+        if not isinstance(servers, list) or not servers or not all(
+                isinstance(u, str) and u.startswith(("nats://", "tls://")) for u in servers):
+            raise ld.error("cluster.servers", "must be a list of nats://host:port (or tls://) URLs",
+                           clnodes.get("servers"))
+        if not re.fullmatch(r"[A-Za-z0-9_-]{1,64}", cl["name"]):
+            raise ld.error("cluster.name", f"must be 1 to 64 letters, digits, - or _, got {cl['name']!r}",
+                           clnodes.get("name"))
+        if not 1 <= cl["replicas"] <= 5:
+            raise ld.error("cluster.replicas", f"must be 1 to 5, got {cl['replicas']}",
+                           clnodes.get("replicas"))
+        if cl["lease"] < 3:
+            raise ld.error("cluster.lease", "must be at least 3s (it is renewed every third)",
+                           clnodes.get("lease"))
+        cl["servers"] = tuple(servers)
+        cluster = ClusterConfig(**cl)
+    return shard, cluster
 
 
 def _check_filter(ld: _Loader, topic: str, path: str, node: yaml.Node | None) -> None:
@@ -773,7 +921,11 @@ def json_schema() -> dict[str, Any]:
                        {"tls": obj(METRICS_TLS_KEYS, required=("cert_file", "key_file"))}),
         "state": obj(STATE_KEYS),
         "display": obj(DISPLAY_KEYS),
+        "shard": obj(SHARD_KEYS, required=("number", "of")),
+        "cluster": obj(CLUSTER_KEYS, required=("servers",)),
     })
+    top["properties"]["state"]["properties"]["keep"]["enum"] = ["local", "cluster"]
+    top["properties"]["shard"]["properties"]["metrics_port"]["enum"] = ["offset", "same"]
     top["$schema"] = "https://json-schema.org/draft/2020-12/schema"
     top["title"] = "shiftwatch configuration"
     return top

@@ -39,8 +39,10 @@ from shiftwatch.display import alert_summary, stamp
 from shiftwatch.floor import FloorDesk
 from shiftwatch.fsutil import explain_os_error
 from shiftwatch.journal import Journal, JournalGroup
+from shiftwatch.lease import ShardLease
 from shiftwatch.metrics import FloorMetrics, Metrics, MetricsServer, StreamStats
 from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
+from shiftwatch.natsio import ClusterError
 from shiftwatch.notify import sd_notify, watchdog_interval
 from shiftwatch.outbox import Outbox
 from shiftwatch.sparkplug import NAMESPACE as SPARKPLUG_NAMESPACE
@@ -268,7 +270,8 @@ class Daemon:
         self.cfg = cfg
         self.config_path = config_path
         self.log = logger or logging.getLogger("shiftwatch")
-        self.metrics = metrics or Metrics()
+        self.metrics = metrics or Metrics(
+            const_labels=None if cfg.shard is None else {"shard": str(cfg.shard.number)})
         self.env = env
         self.inbox = Inbox(QUEUE_MAX, QUEUE_BYTES)
         self.engines: dict[str, StreamEngine] = {}
@@ -281,7 +284,31 @@ class Daemon:
         state_dir = Path(cfg.state.dir)
         self.store = StateStore(state_dir / "snapshots", logger=self.log)
         # The journal of samples processed since the last snapshot (see shiftwatch.journal).
-        self.journal = Journal(state_dir / "snapshots", logger=self.log, background=True) if cfg.state.journal else None
+        # state.keep: cluster: the journal and snapshots live in the NATS cluster instead
+        # (shiftwatch.clusterstate); the outbox stays local as well (see _cluster_load).
+        self.in_cluster = cfg.state.keep == "cluster"
+        self.journal = Journal(state_dir / "snapshots", logger=self.log, background=True) \
+            if cfg.state.journal and not self.in_cluster else None
+        self.shard_prefix = cfg.shard.prefix if cfg.shard is not None else ""
+        self.nats: Any = None  # shiftwatch.natsio.NatsIO, with a cluster section
+        self.cluster: Any = None  # shiftwatch.clusterstate.ClusterState, with state.keep: cluster
+        self.lease: ShardLease | None = None
+        self._fed_since_snapshot: set[str] = set()
+        # Cluster mode, after each connection to the broker: take nothing for
+        # cluster.redelivery_wait, then take all that came in one round with each
+        # stream's samples in time order (see _connection).
+        self._hold_until = 0.0
+        self._sort_round = False
+        # A round the cluster did not take (its state could not be loaded, or its samples
+        # not journaled): (what failed, its messages, the groups fed, a flag), retried first.
+        self._held_round: tuple[str, list[Message], list[JournalGroup], bool] | None = None
+        # Streams another daemon wrote moments ago (they moved here): their samples wait
+        # until that daemon has had time to finish its own (see _cluster_load), and the
+        # rounds' acknowledgements wait with them.
+        self.writer_id = secrets.token_hex(6)
+        self._deferred: dict[str, float] = {}
+        self._deferred_samples: dict[str, list[Any]] = {}
+        self._ack_later: list[tuple[list[Message], bool]] = []
         self.outbox = Outbox(state_dir / "outbox", max_items=cfg.alerts.outbox_max, logger=self.log)
         self._levels_sent: dict[str, tuple[str, float | None, float | None]] = {}
         # Streams whose level update is queued (an ordered set, main thread
@@ -362,6 +389,10 @@ class Daemon:
         return self.cfg.alerts.topic_prefix
 
     def status_topic(self) -> str:
+        """``<prefix>/status``; a shard's is ``<prefix>/status/shard-<number>``, so one
+        shard's last will does not say the others are offline."""
+        if self.cfg.shard is not None:
+            return f"{self.prefix}/status/shard-{self.cfg.shard.number}"
         return f"{self.prefix}/status"
 
     def spec_for(self, topic: str) -> StreamConfig | None:
@@ -508,6 +539,188 @@ class Daemon:
             samples += len(values)
         return samples
 
+    # ----------------------------------------------------------- cluster
+    def _join_cluster(self) -> None:
+        """With a cluster section: connect, claim the shard (waiting while another
+        daemon holds it), and prepare the cluster state.  Raises ClusterError."""
+        cc = self.cfg.cluster
+        if cc is None:
+            return
+        from shiftwatch.clusterstate import ClusterState
+        from shiftwatch.natsio import NatsIO, nats_available
+
+        if not nats_available():
+            raise ClusterError("the cluster section needs the NATS client: pip install "
+                               "'shiftwatch[nats]' (nats-py)")
+        password = None
+        if cc.password_file:
+            try:
+                password = Path(cc.password_file).read_text().splitlines()[0]
+            except (OSError, IndexError) as exc:
+                raise ClusterError(f"cluster.password_file {cc.password_file} cannot be read "
+                                   f"({exc})") from None
+        shard = self.cfg.shard
+        who = f"shiftwatch-{self.cfg.broker.client_id}"
+        self.nats = NatsIO(list(cc.servers), name=who, timeout=cc.timeout, user=cc.username,
+                           password=password)
+        self.nats.start()
+        self.nats.connect()
+        self.log.info("connected to the NATS cluster %s", self.nats.where)
+        if shard is not None:
+            self.lease = ShardLease(self.nats, name=cc.name, shard=shard.number, lease=cc.lease,
+                                    replicas=cc.replicas, logger=self.log)
+            self._setup_retried(self.lease.setup)
+            if not self.lease.claim(self._stop):
+                return
+        if self.in_cluster:
+            self.cluster = ClusterState(self.nats, name=cc.name, replicas=cc.replicas, logger=self.log,
+                                        writer=self.writer_id)
+            self._setup_retried(self.cluster.setup)
+            self.log.info("stream state in the cluster (journal stream %s, bucket %s, %d replica(s))",
+                          self.cluster.stream, self.cluster.bucket, cc.replicas)
+
+    def _setup_retried(self, setup: Callable[[], None], attempts: int = 5) -> None:
+        """Make the cluster's buckets or stream, trying again a few times: shards that
+        start together race to make them, and a bucket just made by another may not
+        answer for a moment."""
+        for attempt in range(attempts):
+            try:
+                setup()
+                return
+            except ClusterError as exc:
+                if attempt == attempts - 1 or self._stop.is_set():
+                    raise
+                self.log.warning("%s; trying again in 2 s", exc)
+                self._stop.wait(2.0)
+
+    def _cluster_load(self, names: list[str], *, defer: bool = False) -> None:
+        """Streams seen for the first time by this daemon: their state from the cluster
+        (snapshot, then the journal after it), fed to new engines.  The records the
+        journal's replay makes are published again: the outbox that held them may
+        have been on another box.
+
+        With ``defer``, a stream whose journal another daemon wrote less than
+        cluster.redelivery_wait ago (it moved here when the shards changed, and
+        that daemon may still hold older samples of it) gets no engine yet: it is
+        deferred until then (see _release_deferred)."""
+        if not names or self.cluster is None:
+            return
+        try:
+            loaded = self.cluster.load(names)
+        except ClusterError as exc:
+            raise ClusterError(f"loading stream state: {exc}") from None
+        restored = replayed = 0
+        wait = self.cfg.cluster.redelivery_wait if self.cfg.cluster is not None else 0.0
+        now = time.time()
+        for name, r in loaded.items():
+            if (defer and r.written_by not in (None, self.writer_id) and r.written_at is not None
+                    and now - r.written_at < wait):
+                self._deferred[name] = r.written_at + wait
+                continue
+            if r.problem is not None:
+                self.metrics.states_set_aside.inc()
+                self.log.warning("stream %s: %s; what could be read is used", _printable(name), r.problem)
+            for topic, payload, qos in r.records:
+                self._publish(topic, payload, qos=qos, retain=False)
+            if r.state is None and not r.groups:
+                continue
+            spec = self.cfg.stream_for(name, r.topic_filter)
+            if spec is None:
+                continue
+            eng = StreamEngine(name, spec.detection, unit=r.unit or spec.unit)
+            if r.state is not None:
+                try:
+                    eng.set_state(r.state)
+                except Exception as exc:  # noqa: BLE001  costs that stream only
+                    self.metrics.states_set_aside.inc()
+                    self.log.warning("saved state of stream %s set aside (%s); it warms up again",
+                                     _printable(name), _one_line(exc))
+                    eng = StreamEngine(name, spec.detection, unit=r.unit or spec.unit)
+                restored += 1
+            self.engines[name] = eng
+            self._filters[name] = spec.topic
+            for g in r.groups:
+                try:
+                    res = eng.process(np.array(g.times), np.array(g.values), np.array(g.arrived))
+                except Exception:
+                    self.log.exception("internal error while replaying stream %s", _printable(name))
+                    continue
+                replayed += len(g.values)
+                for rec in res.records:
+                    self.emit(rec, time.time())
+            self.metrics.update_stream(name, StreamStats.from_engine(eng))
+        if restored or replayed:
+            self.log.info("loaded %d stream(s) from the cluster (%d journaled sample(s) replayed)",
+                          restored, replayed)
+
+    def _cluster_journal(self, fed: list[JournalGroup], now: float) -> bool:
+        """The round's samples into the cluster's journal; False when the cluster did not
+        take them (the round then stays unacknowledged)."""
+        assert self.cluster is not None
+        try:
+            refused = self.cluster.journal(fed)
+            for _attempt in range(2):
+                if not refused:
+                    return True
+                # Written by another daemon meanwhile (the stream moved between shards):
+                # its engine here is stale.  Load it again and feed it this round once more.
+                names = [g.stream for g in refused]
+                self.log.warning("%d stream(s) were written by another daemon meanwhile (they moved "
+                                 "between shards), e.g. %s; reloading them from the cluster",
+                                 len(names), _printable(names[0]))
+                for n in names:
+                    self.engines.pop(n, None)
+                self._cluster_load(names)
+                again = []
+                for g in refused:
+                    spec = self.cfg.stream_for(g.stream, g.topic_filter)
+                    if spec is None:
+                        continue
+                    jg = self._run_stream(g.stream, spec, g.unit, list(g.times), list(g.values),
+                                          list(g.arrived), now)
+                    if jg is not None:
+                        again.append(jg)
+                refused = self.cluster.journal(again)
+            if refused:
+                # Another daemon keeps writing them: it owns them now.  This daemon lets
+                # them go (their engines here are stale) and sets the round's samples of
+                # them aside, counted: holding the round would only have it delivered
+                # again, to the same end.
+                lost = sum(len(g.values) for g in refused)
+                for g in refused:
+                    self.engines.pop(g.stream, None)
+                    self.metrics.remove_stream(g.stream)
+                self._count_drop("stream_moved", lost)
+                self.log.warning("%d stream(s) are written by another daemon now (e.g. %s); "
+                                 "%d sample(s) of them that came here set aside", len(refused),
+                                 _printable(refused[0].stream), lost)
+            return True
+        except ClusterError as exc:
+            self.metrics.journal_failures.inc()
+            self.rlog.warning("cluster_journal", f"cluster journal not written ({exc}); the round "
+                              "stays unacknowledged and is delivered again", now)
+            return False
+
+    def _lease_lost(self) -> int:
+        """The shard's lease is gone: stop at once, acknowledging nothing more."""
+        assert self.lease is not None
+        self.log.error("shard %d is no longer ours (%s); stopping without acknowledging anything "
+                       "more, so the next owner carries on", self.lease.shard, self.lease.lost)
+        self.inbox.close()
+        if self.link is not None:
+            self.link.stop()
+        if self.server is not None:
+            self.server.close()
+        if self.nats is not None:
+            self.nats.close()
+        return 3
+
+    def _stop_unstarted(self) -> int:
+        self.log.info("stopped before the shard was ours")
+        if self.nats is not None:
+            self.nats.close()
+        return 0
+
     def start(self) -> None:
         """Everything up to the point where messages flow: state, metrics, broker, outbox.
 
@@ -517,7 +730,11 @@ class Daemon:
         self._acker.start()
         if self.journal is not None:
             self.journal.start_background()
-        self.restore()
+        self._join_cluster()
+        if self._stop.is_set():
+            return
+        if not self.in_cluster:
+            self.restore()
         settle_heap()
         mtls = self.cfg.metrics.tls
         try:
@@ -536,7 +753,7 @@ class Daemon:
         password = read_password(self.cfg.broker, self.env)
         self.link = MqttLink(
             self.cfg.broker,
-            subscriptions=[s.topic for s in self.cfg.streams] + [self.floor.command_filter],
+            subscriptions=[self.shard_prefix + s.topic for s in self.cfg.streams] + [self.floor.command_filter],
             status_topic=self.status_topic(),
             inbox=self.inbox,
             on_drop=self._count_handover_drop,
@@ -545,6 +762,7 @@ class Daemon:
             logger=self.log,
             password=password,
             on_takeover=self.metrics.client_id_conflicts.inc,
+            strip=self.shard_prefix,
         )
         # Alert records left in the outbox by an earlier run go out first.
         pending = self.outbox.pending()
@@ -568,6 +786,11 @@ class Daemon:
         sys.setswitchinterval(0.0005)
         try:
             self.start()
+            if self._stop.is_set():  # stopped while waiting for the shard's lease
+                return self._stop_unstarted()
+        except ClusterError as exc:
+            self.log.error("cannot start: %s", exc)
+            return 2
         except BrokerError as exc:
             self.log.error("%s", exc)
             return 2
@@ -582,6 +805,8 @@ class Daemon:
         next_snap = time.monotonic() + self.cfg.state.snapshot_every
         next_check = time.monotonic() + 1.0
         while not self._stop.is_set():
+            if self.lease is not None and self.lease.lost is not None:
+                return self._lease_lost()
             self.round(timeout=0.2)
             self.status.tick()
             if self.journal is not None:
@@ -613,7 +838,24 @@ class Daemon:
             # acknowledgements flow): larger rounds spread each round's fixed
             # costs over more messages and give each engine more samples a call.
             limit = DRAIN
-        msgs = self.inbox.take(limit, ROUND_BYTES, timeout, gather=gather)
+        if self._held_round is not None:
+            self._retry_held_round()
+            return 0
+        if self._deferred or self._ack_later:
+            self._release_deferred()
+        round_bytes = ROUND_BYTES
+        sort = False
+        if self._sort_round:
+            held = self._hold_until - time.monotonic()
+            if held > 0:  # waiting for the redeliveries (see _connection)
+                self._stop.wait(min(held, timeout))
+                self.send_due_levels()
+                self._gauges()
+                return 0
+            self._sort_round = False
+            sort = True
+            limit, round_bytes = max(limit, len(self.inbox)), max(ROUND_BYTES, self.inbox.nbytes)
+        msgs = self.inbox.take(limit, round_bytes, timeout, gather=gather)
         self._busy = len(msgs) >= BUSY_ROUND
         if self._new_held:
             self._flush_new_streams(time.monotonic())
@@ -625,7 +867,7 @@ class Daemon:
             if self._trim_pending:  # the burst is over: trim now, it costs nothing
                 self._trim_heap(idle=True)
             return 0
-        self.process(msgs)
+        self.process(msgs, in_time_order=sort)
         self.status.serve_windows(self.engines)
         self.send_due_levels()
         self.rlog.flush(time.time())
@@ -633,6 +875,23 @@ class Daemon:
         if sum(len(m.payload) for m in msgs) > ROUND_BYTES // 4:
             self._trim_heap()
         return len(msgs)
+
+    def _retry_held_round(self) -> None:
+        """Cluster mode: the round the cluster did not take, before anything newer (a
+        sample fed after newer ones would be set aside as out of order)."""
+        assert self._held_round is not None
+        kind, msgs, fed, flag = self._held_round
+        if kind == "load":
+            self._held_round = None
+            self.process(msgs, in_time_order=flag)
+        elif self._cluster_journal(fed, time.time()):
+            self._held_round = None
+            self._finish(msgs, flag)
+        if self._held_round is not None:
+            self._stop.wait(0.5)  # the cluster is not answering: no hurry
+        self.send_due_levels()
+        self.rlog.flush(time.time())
+        self._gauges()
 
     def _trim_heap(self, *, idle: bool = False) -> None:
         """Give memory freed after a large round back to the system (glibc keeps it
@@ -692,6 +951,10 @@ class Daemon:
         self._purge_outbox()  # the files of the records delivered last
         if self.server is not None:
             self.server.close()
+        if self.lease is not None:
+            self.lease.release()
+        if self.nats is not None:
+            self.nats.close()
         if len(self.outbox):
             self.log.warning("%d alert record(s) stay in the outbox for the next start", len(self.outbox))
         self.rlog.flush(time.time(), all_held=True)
@@ -700,8 +963,11 @@ class Daemon:
         return 0
 
     # -------------------------------------------------------- processing
-    def process(self, msgs: list[Message]) -> None:
-        """Decode, group per stream, run the engines, publish; then acknowledge the messages."""
+    def process(self, msgs: list[Message], *, in_time_order: bool = False) -> None:
+        """Decode, group per stream, run the engines, publish; then acknowledge the messages.
+
+        ``in_time_order``: each stream's samples are fed sorted by time, not in the
+        order they arrived (the round after a hold for redeliveries, cluster mode)."""
         now = time.time()
         published_before = self.records_published
         self.metrics.messages_received.inc(len(msgs))
@@ -753,8 +1019,31 @@ class Daemon:
                     g[2].append(arrived if r.time is None else r.time)
                     g[3].append(r.value)
                     g[4].append(arrived)
+        if self.cluster is not None:
+            try:
+                self._cluster_load([n for n in groups if n not in self.engines
+                                    and n not in self._deferred], defer=True)
+            except ClusterError as exc:
+                # Nothing is fed (a fresh engine would start without the stream's history)
+                # and nothing acknowledged: the round is held and processed again first
+                # (the broker's redelivery would come after newer samples).
+                self.rlog.warning("cluster_load", f"{exc}; the round is held and tried again",
+                                  now)
+                self._held_round = ("load", msgs, [], in_time_order)
+                return
         fed: list[JournalGroup] = []
         for name, (spec, unit, times, values, arrivals) in groups.items():
+            if name in self._deferred:
+                held = self._deferred_samples.setdefault(name, [spec, unit, [], [], []])
+                held[2] += times
+                held[3] += values
+                held[4] += arrivals
+                continue
+            if in_time_order and len(times) > 1:
+                order = sorted(range(len(times)), key=times.__getitem__)
+                times = [times[i] for i in order]
+                values = [values[i] for i in order]
+                arrivals = [arrivals[i] for i in order]
             try:
                 jg = self._run_stream(name, spec, unit, times, values, arrivals, now)
                 if jg is not None:
@@ -773,6 +1062,50 @@ class Daemon:
                 self._journal_failed(exc)
         self.metrics.messages_processed.inc(len(msgs))
         wrote = self.records_published != published_before
+        if fed and self.cluster is not None and not self._cluster_journal(fed, now):
+            # Fed but not in the cluster's journal: held unacknowledged, and journaled
+            # before anything newer is taken (see round()).
+            self._held_round = ("journal", msgs, fed, wrote)
+            return
+        if self._deferred or self._ack_later:
+            self._ack_later.append((msgs, wrote))
+            return
+        self._finish(msgs, wrote)
+
+    def _release_deferred(self) -> None:
+        """Feed the deferred streams whose wait is over (loaded afresh, with what the
+        other daemon wrote meanwhile; their held samples in time order), then
+        acknowledge the rounds that waited for them."""
+        now = time.time()
+        due = [n for n, until in self._deferred.items() if until <= now]
+        if due:
+            try:
+                self._cluster_load(due)
+            except ClusterError as exc:
+                self.rlog.warning("cluster_load", f"{exc}; tried again shortly", now)
+                return
+            fed = []
+            for n in due:
+                del self._deferred[n]
+                held = self._deferred_samples.pop(n, None)
+                if held is None:
+                    continue
+                spec, unit, times, values, arrivals = held
+                order = sorted(range(len(times)), key=times.__getitem__)
+                jg = self._run_stream(n, spec, unit, [times[i] for i in order],
+                                      [values[i] for i in order], [arrivals[i] for i in order], now)
+                if jg is not None:
+                    fed.append(jg)
+            if fed and not self._cluster_journal(fed, now):
+                self._held_round = ("journal", [], fed, True)
+                return
+        if not self._deferred and self._held_round is None and self._ack_later:
+            later, self._ack_later = self._ack_later, []
+            for msgs, wrote in later:
+                self._finish(msgs, wrote)
+
+    def _finish(self, msgs: list[Message], wrote: bool) -> None:
+        """Acknowledge a processed round (after the outbox is on disk when it wrote records)."""
         if self.link is None:
             if wrote:
                 self._sync_outbox()
@@ -967,6 +1300,7 @@ class Daemon:
             self.emit(rec, float(arrivals[min(j, len(arrivals) - 1)]))
         self._level_changed(name, eng)
         self.metrics.update_stream(name, StreamStats.from_engine(eng))
+        self._fed_since_snapshot.add(name)
         return JournalGroup(name, unit, times, values, arrivals, self._filters.get(name, spec.topic))
 
     def emit(self, rec: AlertRecord, arrived: float) -> None:
@@ -1133,6 +1467,13 @@ class Daemon:
 
     def _connection(self, up: bool) -> None:
         self.metrics.broker_connected.set(1 if up else 0)
+        if up and self.in_cluster and self.cfg.cluster is not None and self.cfg.cluster.redelivery_wait > 0:
+            # NATS sends the messages a lost connection (ours, or a dead owner's) left
+            # unacknowledged again only when its MQTT ack_wait has passed, after newer
+            # ones.  Fed in arrival order they would come after their stream's newer
+            # samples and be set aside as out of order: wait for them, then sort.
+            self._hold_until = time.monotonic() + self.cfg.cluster.redelivery_wait
+            self._sort_round = True
         if not up:
             # paho sends the levels it holds again after the reconnect, and the
             # broker acknowledges them then; the bound counts from each
@@ -1167,6 +1508,8 @@ class Daemon:
     # --------------------------------------------------------- snapshots
     def snapshot(self) -> bool:
         """Save every engine's state; a new journal starts with the snapshot."""
+        if self.cluster is not None:
+            return self._cluster_snapshot()
         token = secrets.token_hex(8)
         try:
             self.store.save({n: e.get_state() for n, e in self.engines.items()},
@@ -1191,6 +1534,28 @@ class Daemon:
                 self.journal.restart(token)
             except OSError as exc:
                 self._journal_failed(exc)
+        return True
+
+    def _cluster_snapshot(self) -> bool:
+        """Save the streams fed since the last snapshot to the cluster, each with the
+        alert records of it that the broker has not acknowledged yet."""
+        assert self.cluster is not None
+        names = [n for n in self._fed_since_snapshot if n in self.engines]
+        pending: dict[str, list[tuple[str, bytes, int]]] = {}
+        head = f"{self.prefix}/alerts/"
+        for item in self.outbox.pending():
+            if item.topic.startswith(head):
+                pending.setdefault(item.topic[len(head):], []).append((item.topic, item.payload, item.qos))
+        try:
+            self.cluster.save({n: (self.engines[n].get_state(), self._filters.get(n), self.engines[n].unit,
+                                   pending.get(n, [])) for n in names})
+        except ClusterError as exc:
+            self.metrics.snapshot_failures.inc()
+            self.log.error("snapshot to the cluster failed: %s; detection carries on, the journal "
+                           "keeps growing until one succeeds", exc)
+            return False
+        self._fed_since_snapshot.difference_update(names)
+        self.metrics.snapshots.inc()
         return True
 
     def _journal_half_full(self) -> bool:
@@ -1279,8 +1644,10 @@ class Daemon:
         self._spec_cache.clear()
         self.status.forget_labels()
         if self.link is not None:
-            self.link.set_subscriptions(sorted(new_filters), added=sorted(new_filters - old_filters),
-                                        removed=sorted(old_filters - new_filters))
+            p = self.shard_prefix
+            self.link.set_subscriptions(sorted(p + f for f in new_filters),
+                                        added=sorted(p + f for f in new_filters - old_filters),
+                                        removed=sorted(p + f for f in old_filters - new_filters))
         if ended:
             self.outbox.sync()
             self.log.info("%d open event(s) ended undecided: their streams were removed or restarted "

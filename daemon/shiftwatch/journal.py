@@ -468,3 +468,9 @@ class Journal:
             self.sync()
             fd, self._fd = self._fd, None
             os.close(fd)
+
+
+#: One round's groups as bytes, and back: the cluster journal (shiftwatch.clusterstate)
+#: stores each stream's group of a round in this form, one JetStream message each.
+encode_groups = _encode_round
+decode_groups = _decode_round

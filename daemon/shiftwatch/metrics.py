@@ -338,6 +338,30 @@ class PageSource(Protocol):
     def has_stream(self, name: str) -> bool: ...
 
 
+class WithLabels:
+    """A registry seen with constant labels added to every sample (for the encoders,
+    which only call ``collect()``; ``restricted_registry`` keeps the labels).
+
+    >>> from prometheus_client import Counter, generate_latest
+    >>> reg = CollectorRegistry()
+    >>> Counter("bottles", "Bottles.", registry=reg).inc(3)
+    >>> print(generate_latest(WithLabels(reg, {"shard": "2"})).decode().splitlines()[2])
+    bottles_total{shard="2"} 3.0
+    """
+
+    def __init__(self, registry: Any, labels: dict[str, str]) -> None:
+        self._registry = registry
+        self._labels = labels
+
+    def restricted_registry(self, names: list[str]) -> WithLabels:
+        return WithLabels(self._registry.restricted_registry(names), self._labels)
+
+    def collect(self) -> Iterator[Any]:
+        for m in self._registry.collect():
+            m.samples = [s._replace(labels={**s.labels, **self._labels}) for s in m.samples]
+            yield m
+
+
 class _Renderer:
     """Renders the exposition in a thread of its own, one render at a time, shared by every
     request that arrived before it started.
@@ -788,8 +812,12 @@ class Metrics:
     client_id_conflicts : takeovers of the MQTT session by another client with our client id.
     """
 
-    def __init__(self, registry: CollectorRegistry | None = None) -> None:
+    def __init__(self, registry: CollectorRegistry | None = None, *,
+                 const_labels: dict[str, str] | None = None) -> None:
         self.registry = registry if registry is not None else CollectorRegistry()
+        #: Labels put on every series served (a shard's ``shard="<number>"``), so the
+        #: series of many daemons stay apart whatever the scrape configuration.
+        self.const_labels = dict(const_labels or {})
         self._lock = threading.Lock()
         self._streams: dict[str, StreamStats] = {}
         self._sparkplug: SparkplugMetrics | None = None
@@ -924,8 +952,11 @@ class Metrics:
         tls = None
         if certfile is not None and keyfile is not None:
             tls = _tls_context(certfile, keyfile, client_cafile)
+        registry: Any = self.registry
+        if self.const_labels:
+            registry = WithLabels(self.registry, self.const_labels)
         return MetricsServer(_Endpoint(host, port, tls, connection_timeout, max_connections,
-                                       self.registry, pages))
+                                       registry, pages))
 
 
 class FloorMetrics:

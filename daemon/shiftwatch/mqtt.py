@@ -467,8 +467,12 @@ class MqttLink:
         logger: logging.Logger | None = None,
         password: str | None = None,
         on_takeover: Callable[[], None] | None = None,
+        strip: str = "",
     ) -> None:
         self.cfg = cfg
+        # A shard's partition prefix (``part/1/``): subscriptions carry it, and it is
+        # taken off every incoming topic before the daemon sees it.
+        self._strip = strip
         self._on_takeover = on_takeover
         self._connected_at = 0.0
         self._short_losses = 0  # connections in a row lost soon after they came up, no reason given
@@ -730,7 +734,10 @@ class MqttLink:
 
     def _handle_message(self, client: paho.Client, userdata: Any, msg: paho.MQTTMessage) -> None:
         try:
-            if not self._inbox.put(Message(msg.topic, msg.payload, time.time(), msg.mid, msg.qos)):
+            topic = msg.topic
+            if self._strip and topic.startswith(self._strip):
+                topic = topic[len(self._strip):]
+            if not self._inbox.put(Message(topic, msg.payload, time.time(), msg.mid, msg.qos)):
                 if self._inbox.closed:
                     return  # stopping: not acknowledged, so the broker delivers it again
                 # Far over the bound (reads are paused at the bound, so a defect).

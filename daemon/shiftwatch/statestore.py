@@ -280,3 +280,9 @@ class StateStore:
                                       name, exc)
                 else:
                     self._log.info("removed leftover %s of an interrupted snapshot", name)
+
+
+#: An engine state made JSON-ready (packed float lists) and back: the cluster state
+#: (shiftwatch.clusterstate) keeps each stream's state in this form.
+encode_state = _encode
+decode_state = _decode

@@ -34,7 +34,8 @@ def test_the_shipped_schema_is_generated_from_the_same_definitions() -> None:
     shipped = json.loads((ROOT / "config" / "shiftwatch.schema.json").read_text())
     assert shipped == json_schema()
     props = shipped["properties"]
-    assert set(props) == {"broker", "streams", "detection", "alerts", "metrics", "state", "display"}
+    assert set(props) == {"broker", "streams", "detection", "alerts", "metrics", "state", "display",
+                          "shard", "cluster"}
     assert props["detection"]["properties"]["test"]["enum"] == ["multi_cusum", "glr", "cusum", "page_hinkley", "adwin"]
     assert props["streams"]["items"]["required"] == ["topic"]
 

@@ -201,6 +201,21 @@ def test_the_rules_fire_when_they_should_and_not_otherwise(tmp_path: Path) -> No
              "exp_alerts": [_alert("ShiftwatchSamplesRejected", instance="edge1:9650", stream=fill_b)]},
         ]},
         {"interval": "1m", "input_series": [
+            # Two shards on one box: the rules keep each shard's alerts apart.
+            {"series": f'shiftwatch_messages_dropped_total{{{sel},shard="0",reason="not_json"}}',
+             "values": "0+1x40"},
+            {"series": f'shiftwatch_messages_dropped_total{{{sel},shard="1",reason="not_json"}}',
+             "values": "0+60x40"},
+            {"series": f'shiftwatch_broker_connected{{{sel},shard="0"}}', "values": "1x10"},
+            {"series": f'shiftwatch_broker_connected{{{sel},shard="1"}}', "values": "1 0x10"},
+        ], "alert_rule_test": [
+            {"eval_time": "30m", "alertname": "ShiftwatchMessagesDropped",
+             "exp_alerts": [_alert("ShiftwatchMessagesDropped", instance="edge1:9650", shard="1",
+                                   reason="not_json")]},
+            {"eval_time": "5m", "alertname": "ShiftwatchBrokerDisconnected",
+             "exp_alerts": [_alert("ShiftwatchBrokerDisconnected", **a, shard="1")]},
+        ]},
+        {"interval": "1m", "input_series": [
             {"series": 'up{job="node",instance="edge1:9100"}', "values": "1x20"},
         ], "alert_rule_test": [
             {"eval_time": "5m", "alertname": "ShiftwatchAbsent", "exp_alerts": []},

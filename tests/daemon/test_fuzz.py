@@ -333,6 +333,13 @@ def test_oversized_payloads_are_set_aside_before_parsing(mosquitto: MosquittoBro
             return real.decode(text)
 
     monkeypatch.setattr(decode_module, "_JSON", CountingDecoder())
+    fast = decode_module._fast_loads
+
+    def counting_fast(data: bytes | str) -> Any:  # orjson's parse, tried first
+        parsed.append(len(data))
+        return fast(data)
+
+    monkeypatch.setattr(decode_module, "_fast_loads", counting_fast)
     with live_daemon(mosquitto, tmp_path / "state", max_streams=10, client_id="fz-size",
                      extra="") as (d, _, handler):
         limit = d.cfg.broker.max_payload_bytes

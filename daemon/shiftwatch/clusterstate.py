@@ -1,0 +1,241 @@
+"""Stream state kept in a NATS cluster (``state.keep: cluster``), keyed by stream.
+
+The same two parts as the local state directory, with the same guarantee
+(at least once: no sample the broker forgets is one the engines forget):
+
+- **Journal**: a JetStream stream ``<name>_journal`` with one subject per
+  stream, ``<name>.journal.<key>`` (``key`` is a hash of the stream's name, so
+  any name fits a subject).  After each round, every stream's samples of the
+  round are one message on its subject, in the local journal's encoding
+  (``journal.encode_groups``); the round's MQTT messages are acknowledged only
+  after the cluster has acknowledged all of them (stored on a majority of the
+  replicas).  Each publish carries JetStream's
+  ``Nats-Expected-Last-Subject-Sequence`` header with the last sequence this
+  daemon wrote or read for the stream: a stream that another shard has written
+  meanwhile (it moved when the number of shards changed) is refused, and the
+  daemon reloads it and feeds it the round again (see ``Daemon``).
+- **Snapshots**: a key-value bucket ``<name>_state``, one key per stream, its
+  engine state (``statestore.encode_state``), the journal sequence it
+  includes, the ``topic`` filter of its config entry and the alert records it
+  had made that the broker had not yet acknowledged.  After a snapshot the
+  stream's journal subject is purged down to its last message (which keeps the
+  subject's last sequence for the header above).
+
+A stream is loaded when its first samples reach a daemon: snapshot, then the
+journal messages after the snapshot's sequence, fed to a new engine.  That is
+what lets a shard start on a box with an empty disk, and a stream move to
+another shard, with its baseline, open event and samples since the snapshot.
+The alert records a replay makes are published again (the same ``event_id``:
+ids are made from the stream and the detection time), since the outbox that
+held them was on the box that is gone.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import base64
+import hashlib
+import json
+import logging
+import time
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+from shiftwatch.journal import JournalGroup, decode_groups, encode_groups
+from shiftwatch.natsio import ClusterError, NatsIO, SequenceConflict
+from shiftwatch.statestore import decode_state, encode_state
+
+__all__ = ["ClusterState", "Restored", "stream_key"]
+
+_FORMAT = "shiftwatch-cluster-state"
+SCHEMA_VERSION = 1
+#: Requests in flight at once (loads, journal publishes, snapshot puts).
+PARALLEL = 256
+#: Headers of each journal message: the daemon that wrote it, and when.
+WRITER = "Shiftwatch-Writer"
+WRITTEN = "Shiftwatch-Written"
+#: Journal messages older than this are dropped by the cluster even without a snapshot
+#: (a safety net: snapshots purge them long before).
+JOURNAL_MAX_AGE = 7 * 86400.0
+
+
+def stream_key(name: str) -> str:
+    """The stream's key in the bucket and its journal subject's last token.
+
+    >>> k = stream_key("brackenfield/line2/filler/3/fill")
+    >>> k[0], len(k)
+    ('s', 41)
+    >>> k[1:] == hashlib.sha256(b"brackenfield/line2/filler/3/fill").hexdigest()[:40]
+    True
+    """
+    return "s" + hashlib.sha256(name.encode("utf-8", "surrogatepass")).hexdigest()[:40]
+
+
+@dataclass
+class Restored:
+    """What the cluster holds of one stream."""
+
+    state: dict[str, Any] | None = None
+    topic_filter: str | None = None
+    unit: str | None = None
+    saved_at: float | None = None
+    records: list[tuple[str, bytes, int]] = field(default_factory=list)
+    groups: list[JournalGroup] = field(default_factory=list)
+    problem: str | None = None
+    #: Who wrote the stream's last journal message, and when (wall clock, seconds).
+    written_by: str | None = None
+    written_at: float | None = None
+
+
+class ClusterState:
+    """The journal and snapshots of every stream, in a NATS cluster."""
+
+    def __init__(self, io: NatsIO, *, name: str, replicas: int, logger: logging.Logger,
+                 writer: str = "") -> None:
+        self.io = io
+        #: This daemon's id in the journal messages it writes (header Shiftwatch-Writer).
+        self.writer = writer
+        self.name = name
+        self.replicas = replicas
+        self.log = logger
+        self.stream = f"{name}_journal"
+        self.bucket = f"{name}_state"
+        #: Last journal sequence written or read per stream (the expected-last header).
+        self.seq: dict[str, int] = {}
+        #: Sequence each stream's last snapshot includes.
+        self._saved: dict[str, int] = {}
+
+    def subject(self, name: str) -> str:
+        return f"{self.name}.journal.{stream_key(name)}"
+
+    def setup(self) -> None:
+        """Create the journal stream and the bucket where missing (ClusterError otherwise)."""
+        async def go() -> None:
+            await self.io.ensure_stream(self.stream, [f"{self.name}.journal.*"], self.replicas,
+                                        JOURNAL_MAX_AGE)
+            await self.io.ensure_bucket(self.bucket, self.replicas)
+
+        self.io.run(go(), timeout=self.io.timeout * 3)
+
+    # ------------------------------------------------------------ loading
+    def load(self, names: Iterable[str]) -> dict[str, Restored]:
+        """What the cluster holds of each stream (an empty Restored for a new one)."""
+        names = list(names)
+        sem = asyncio.Semaphore(PARALLEL)
+
+        async def one(name: str) -> tuple[str, Restored, int]:
+            async with sem:
+                return (name, *await self._load_one(name))
+
+        async def go() -> list[tuple[str, Restored, int]]:
+            return list(await asyncio.gather(*(one(n) for n in names)))
+
+        out: dict[str, Restored] = {}
+        for name, r, last in self.io.run(go(), timeout=self.io.timeout * (1 + len(names) // PARALLEL)):
+            self.seq[name] = last
+            out[name] = r
+        return out
+
+    async def _load_one(self, name: str) -> tuple[Restored, int]:
+        r = Restored()
+        subject = self.subject(name)
+        entry = await self.io.kv_get(self.bucket, stream_key(name))
+        after = 0
+        if entry is not None:
+            try:
+                doc = json.loads(entry.value)
+                if not isinstance(doc, dict) or doc.get("format") != _FORMAT:
+                    raise ValueError("not a shiftwatch stream state")
+                if doc.get("schema_version") != SCHEMA_VERSION:
+                    raise ValueError(f"schema version {doc.get('schema_version')!r}")
+                if doc.get("stream") != name:
+                    raise ValueError("saved under another stream's name (hash collision)")
+                after = int(doc["seq"])
+                r.state = decode_state(doc["state"])
+                r.topic_filter = doc.get("filter")
+                r.unit = doc.get("unit")
+                r.saved_at = float(doc.get("saved_at", 0.0))
+                r.records = [(str(t), base64.b64decode(p), int(q)) for t, p, q in doc.get("records", [])]
+            except (ValueError, KeyError, TypeError) as exc:
+                r.state, after = None, 0
+                r.problem = f"saved state in bucket {self.bucket} unusable ({exc})"
+        last, headers = await self.io.last_seq(self.stream, subject)
+        r.written_by = headers.get(WRITER)
+        try:
+            r.written_at = float(headers.get(WRITTEN, "nan"))
+        except ValueError:
+            r.written_at = None
+        if last > after:
+            for _seq, body in await self.io.messages_after(self.stream, subject, after, last):
+                try:
+                    r.groups.extend(g for g in decode_groups(body) if g.stream == name)
+                except (ValueError, TypeError) as exc:
+                    r.problem = f"journal message on {subject} unusable ({exc})"
+        self._saved[name] = after
+        return r, last
+
+    # ------------------------------------------------------------ journal
+    def journal(self, groups: list[JournalGroup]) -> list[JournalGroup]:
+        """Store each group as its stream's next journal message and wait for the cluster.
+
+        Returns the groups refused because their stream's subject moved on (written
+        by another daemon); raises ClusterError when the cluster did not
+        acknowledge the others in time.
+        """
+        sem = asyncio.Semaphore(PARALLEL)
+
+        async def one(g: JournalGroup) -> tuple[JournalGroup, int | None]:
+            async with sem:
+                try:
+                    seq = await self.io.publish(self.subject(g.stream), encode_groups([g]),
+                                                expect_last=self.seq.get(g.stream, 0),
+                                                headers={WRITER: self.writer, WRITTEN: f"{time.time():.3f}"})
+                except SequenceConflict:
+                    return g, None
+                return g, seq
+
+        async def go() -> list[tuple[JournalGroup, int | None]]:
+            return list(await asyncio.gather(*(one(g) for g in groups)))
+
+        refused = []
+        for g, seq in self.io.run(go(), timeout=self.io.timeout * (1 + len(groups) // PARALLEL)):
+            if seq is None:
+                refused.append(g)
+            else:
+                self.seq[g.stream] = seq
+        return refused
+
+    # ---------------------------------------------------------- snapshots
+    def save(self, entries: Mapping[str, tuple[dict[str, Any], str | None, str | None,
+                                               list[tuple[str, bytes, int]]]]) -> int:
+        """Save the states of the streams given (state, filter, unit, records not yet
+        acknowledged), each with the journal sequence it includes, then purge their
+        journal subjects.  Returns how many were saved; raises ClusterError."""
+        now = time.time()
+        sem = asyncio.Semaphore(PARALLEL)
+
+        async def one(name: str, state: dict[str, Any], f: str | None, unit: str | None,
+                      records: list[tuple[str, bytes, int]]) -> None:
+            seq = self.seq.get(name, 0)
+            doc = {"format": _FORMAT, "schema_version": SCHEMA_VERSION, "stream": name, "filter": f,
+                   "unit": unit, "seq": seq, "saved_at": now, "state": encode_state(dict(state)),
+                   "records": [[t, base64.b64encode(p).decode("ascii"), q] for t, p, q in records]}
+            async with sem:
+                await self.io.kv_put(self.bucket, stream_key(name),
+                                     json.dumps(doc, separators=(",", ":")).encode("utf-8"))
+                if seq > self._saved.get(name, 0):
+                    await self.io.purge_subject(self.stream, self.subject(name), keep=1)
+                self._saved[name] = seq
+
+        async def go() -> None:
+            await asyncio.gather(*(one(n, *e) for n, e in entries.items()))
+
+        try:
+            self.io.run(go(), timeout=self.io.timeout * (1 + len(entries) // PARALLEL))
+        except ClusterError:
+            raise
+        except Exception as exc:  # noqa: BLE001  nats-py's own errors, as one line
+            raise ClusterError(f"NATS cluster {self.io.where}: snapshot to bucket {self.bucket} "
+                               f"failed ({type(exc).__name__}: {exc})") from None
+        return len(entries)

@@ -1,0 +1,303 @@
+"""The daemon's connection to a NATS cluster: the only module that imports nats-py.
+
+nats-py is an asyncio client and the daemon is threaded, so :class:`NatsIO`
+runs one asyncio loop in a thread of its own (started with the daemon's other
+threads) and offers blocking calls that wait for a coroutine on that loop,
+each with a deadline.  Everything the cluster state (``clusterstate.py``) and
+the shard lease (``lease.py``) need goes through here: JetStream publishes
+with an expected last sequence per subject, reads of a subject's messages,
+purges, and key-value buckets.
+
+Errors come out as :class:`ClusterError` with one line that names the cluster
+and what failed; a publish refused because the subject moved on meanwhile is
+a :class:`SequenceConflict`.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import threading
+from collections.abc import Awaitable, Callable, Coroutine
+from dataclasses import dataclass
+from typing import Any, TypeVar
+
+__all__ = ["ClusterError", "KvEntry", "NatsIO", "SequenceConflict", "nats_available"]
+
+T = TypeVar("T")
+
+#: JetStream's error code for "wrong last sequence" (an expected-last-sequence header not met).
+WRONG_LAST_SEQUENCE = 10071
+#: JetStream's error code for "stream name already in use with a different configuration".
+STREAM_EXISTS_OTHERWISE = 10058
+
+
+class ClusterError(RuntimeError):
+    """The NATS cluster could not be reached or refused a request (one line, no traceback)."""
+
+
+class SequenceConflict(ClusterError):
+    """A publish expected a subject's last sequence and found another: someone else wrote."""
+
+
+@dataclass(frozen=True)
+class KvEntry:
+    value: bytes
+    revision: int
+
+
+def nats_available() -> bool:
+    try:
+        import nats  # noqa: F401
+    except ImportError:
+        return False
+    return True
+
+
+def _describe(exc: BaseException) -> str:
+    text = " ".join(str(exc).split())
+    return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
+
+
+class NatsIO:
+    """A NATS connection on an asyncio loop in its own thread, used with blocking calls.
+
+    Parameters
+    ----------
+    servers : ``nats://host:port`` URLs of the cluster's servers (any subset; the client
+        learns the others and reconnects to whichever answers).
+    name : the connection's name, as the servers' monitoring shows it.
+    timeout : deadline of each request, seconds.
+    """
+
+    def __init__(self, servers: list[str], *, name: str, timeout: float = 5.0,
+                 user: str | None = None, password: str | None = None) -> None:
+        self.servers = list(servers)
+        self.name = name
+        self.timeout = timeout
+        self._user = user
+        self._password = password
+        self._loop = asyncio.new_event_loop()
+        self._thread: threading.Thread | None = None
+        self._nc: Any = None
+        self._js: Any = None
+        self._kv: dict[str, Any] = {}
+
+    @property
+    def where(self) -> str:
+        return ", ".join(self.servers)
+
+    # ------------------------------------------------------------ running
+    def start(self) -> None:
+        """Start the loop's thread (once, with the daemon's other threads)."""
+        if self._thread is None:
+            t = threading.Thread(target=self._loop.run_forever, name="shiftwatch-nats", daemon=True)
+            t.start()
+            self._thread = t
+
+    def run(self, coro: Coroutine[Any, Any, T], timeout: float | None = None) -> T:
+        """Run ``coro`` on the loop and wait for it (``timeout`` plus a second at most)."""
+        if self._thread is None:
+            self.start()
+        fut = asyncio.run_coroutine_threadsafe(coro, self._loop)
+        try:
+            return fut.result((timeout or self.timeout) + 1.0)
+        except TimeoutError:
+            fut.cancel()
+            raise ClusterError(f"NATS cluster {self.where}: no answer within "
+                               f"{(timeout or self.timeout):.0f} s") from None
+        except ClusterError:
+            raise
+        except Exception as exc:  # noqa: BLE001  nats-py's errors, as one line
+            raise ClusterError(f"NATS cluster {self.where}: {_describe(exc)}") from None
+
+    def call_soon(self, fn: Callable[[], Awaitable[Any]]) -> None:
+        """Start ``fn()`` on the loop without waiting for it (errors are dropped)."""
+        async def quiet() -> None:
+            try:
+                await fn()
+            except Exception:  # noqa: BLE001, S110  best effort by design (see callers)
+                pass
+        asyncio.run_coroutine_threadsafe(quiet(), self._loop)
+
+    def cancel(self, task: Any) -> None:
+        """Cancel an asyncio task running on the loop."""
+        self._loop.call_soon_threadsafe(task.cancel)
+
+    def connect(self) -> None:
+        """Connect, or raise ClusterError naming the servers and the cause."""
+        import nats
+
+        async def go() -> None:
+            errors: list[str] = []
+
+            async def on_error(exc: Exception) -> None:
+                errors.append(_describe(exc))
+
+            try:
+                self._nc = await nats.connect(
+                    servers=self.servers, name=self.name, connect_timeout=min(self.timeout, 5.0),
+                    max_reconnect_attempts=-1, reconnect_time_wait=0.5, allow_reconnect=True,
+                    user=self._user, password=self._password, error_cb=on_error)
+            except Exception as exc:  # noqa: BLE001  every cause becomes one line
+                cause = errors[-1] if errors else _describe(exc)
+                raise ClusterError(f"NATS cluster {self.where} cannot be reached ({cause})") from None
+            self._js = self._nc.jetstream(timeout=self.timeout)
+
+        try:
+            self.run(go(), timeout=self.timeout * 2)
+        except ClusterError as exc:
+            if "cannot be reached" in str(exc):
+                raise
+            raise ClusterError(f"NATS cluster {self.where} cannot be reached (no answer within "
+                               f"{self.timeout * 2:.0f} s)") from None
+
+    def close(self) -> None:
+        async def go() -> None:
+            if self._nc is not None and not self._nc.is_closed:
+                await self._nc.drain()
+
+        if self._thread is not None:
+            try:
+                self.run(go(), timeout=3.0)
+            except Exception:  # noqa: BLE001, S110  closing: nothing more to do with the cluster
+                pass
+            self._loop.call_soon_threadsafe(self._loop.stop)
+            self._thread.join(5.0)
+            self._thread = None
+
+    @property
+    def connected(self) -> bool:
+        return self._nc is not None and bool(self._nc.is_connected)
+
+    # ---------------------------------------------------------- JetStream
+    async def ensure_stream(self, name: str, subjects: list[str], replicas: int,
+                            max_age: float) -> None:
+        """Create the stream, or check that one of that name is there."""
+        from nats.js.api import StorageType, StreamConfig
+        from nats.js.errors import NotFoundError
+
+        try:
+            await self._js.stream_info(name)
+            return
+        except NotFoundError:
+            pass
+        try:
+            await self._js.add_stream(StreamConfig(name=name, subjects=subjects, num_replicas=replicas,
+                                                   storage=StorageType.FILE, max_age=max_age))
+        except Exception as exc:  # noqa: BLE001
+            raise ClusterError(f"NATS cluster {self.where}: JetStream stream {name} cannot be created "
+                               f"with {replicas} replica(s) ({_describe(exc)})") from None
+
+    async def ensure_bucket(self, bucket: str, replicas: int, ttl: float | None = None) -> None:
+        from nats.js.api import KeyValueConfig, StorageType
+        from nats.js.errors import BucketNotFoundError
+
+        try:
+            self._kv[bucket] = await self._js.key_value(bucket)
+            return
+        except BucketNotFoundError:
+            pass
+        try:
+            self._kv[bucket] = await self._js.create_key_value(KeyValueConfig(
+                bucket=bucket, history=1, replicas=replicas, ttl=ttl, storage=StorageType.FILE))
+        except Exception as exc:  # noqa: BLE001
+            raise ClusterError(f"NATS cluster {self.where}: key-value bucket {bucket} cannot be "
+                               f"created with {replicas} replica(s) ({_describe(exc)})") from None
+
+    async def publish(self, subject: str, payload: bytes, *, expect_last: int | None = None,
+                      headers: dict[str, str] | None = None) -> int:
+        """Publish to JetStream and wait for the ack; the message's stream sequence.
+
+        With ``expect_last`` the cluster stores the message only when the subject's
+        last sequence is that number (0: no message on it yet); otherwise SequenceConflict.
+        """
+        from nats.js.errors import APIError
+
+        headers = dict(headers or {})
+        if expect_last is not None:
+            headers["Nats-Expected-Last-Subject-Sequence"] = str(expect_last)
+        try:
+            ack = await self._js.publish(subject, payload, headers=headers or None)
+        except APIError as exc:
+            if exc.err_code == WRONG_LAST_SEQUENCE:
+                raise SequenceConflict(f"{subject}: {exc.description}") from None
+            raise ClusterError(f"NATS cluster {self.where}: publish to {subject} refused "
+                               f"({_describe(exc)})") from None
+        except Exception as exc:  # noqa: BLE001
+            raise ClusterError(f"NATS cluster {self.where}: publish to {subject} not acknowledged "
+                               f"({_describe(exc)})") from None
+        return int(ack.seq)
+
+    async def last_seq(self, stream: str, subject: str) -> tuple[int, dict[str, str]]:
+        """The sequence of the subject's last message in the stream (0: none), and its headers."""
+        from nats.js.errors import NotFoundError
+
+        try:
+            msg = await self._js.get_last_msg(stream, subject)
+        except NotFoundError:
+            return 0, {}
+        return int(msg.seq), dict(msg.headers or {})
+
+    async def messages_after(self, stream: str, subject: str, after: int, last: int) -> list[tuple[int, bytes]]:
+        """The subject's messages with sequences in (after, last], in order."""
+        from nats.js.errors import NotFoundError
+
+        out: list[tuple[int, bytes]] = []
+        seq = after + 1
+        while seq <= last:
+            try:
+                msg = await self._js.get_msg(stream, seq=seq, subject=subject, next=True)
+            except NotFoundError:
+                break
+            if msg.seq > last:
+                break
+            out.append((int(msg.seq), bytes(msg.data or b"")))
+            seq = int(msg.seq) + 1
+        return out
+
+    async def purge_subject(self, stream: str, subject: str, keep: int = 1) -> None:
+        await self._js.purge_stream(stream, subject=subject, keep=keep)
+
+    # ------------------------------------------------------- key-value
+    async def kv_get(self, bucket: str, key: str) -> KvEntry | None:
+        """The key's entry, read from the bucket's stream leader (a direct get may be
+        answered by a replica that lags, say one just restarted); None when absent."""
+        from nats.js.errors import NotFoundError
+
+        try:
+            msg = await self._js.get_last_msg(f"KV_{bucket}", f"$KV.{bucket}.{key}", direct=False)
+        except NotFoundError:
+            return None
+        op = (msg.headers or {}).get("KV-Operation")
+        if op in ("DEL", "PURGE"):
+            return None
+        return KvEntry(bytes(msg.data or b""), int(msg.seq))
+
+    async def kv_put(self, bucket: str, key: str, value: bytes) -> int:
+        return int(await self._kv[bucket].put(key, value))
+
+    async def kv_create(self, bucket: str, key: str, value: bytes) -> int | None:
+        """Create the key; None when it exists (someone holds it)."""
+        from nats.js.errors import KeyWrongLastSequenceError
+
+        try:
+            return int(await self._kv[bucket].create(key, value))
+        except KeyWrongLastSequenceError:
+            return None
+
+    async def kv_update(self, bucket: str, key: str, value: bytes, last: int) -> int | None:
+        """Update the key if its revision is still ``last``; None when it is not."""
+        from nats.js.errors import KeyWrongLastSequenceError
+
+        try:
+            return int(await self._kv[bucket].update(key, value, last=last))
+        except KeyWrongLastSequenceError:
+            return None
+
+    async def kv_delete(self, bucket: str, key: str, last: int | None = None) -> None:
+        from nats.js.errors import KeyWrongLastSequenceError
+
+        try:
+            await self._kv[bucket].delete(key, last=last)
+        except KeyWrongLastSequenceError:
+            pass

@@ -1,0 +1,288 @@
+"""Shards behind a NATS cluster: throughput for 1, 2 and 4 shards against as many bare
+paho subscribers in the same run, and the cost of cluster state against local state.
+
+    python tests/bench/bench_shards.py [--quick] [--repeat N] [--part throughput|state]
+
+For each shard count n, a private 3-server NATS cluster (JetStream, MQTT, the plant
+mapped to n partitions; tests/daemon/natskit.py) is started.  The consumers'
+sessions are made first (each subscribes once and goes away), then a backlog is
+published at QoS 1 and stored by the cluster, then the consumers come back and the
+time from the first to the last message taken is measured:
+
+- shards: n ``shiftwatch run --shard k`` daemons (subprocesses), polled through
+  ``shiftwatch_messages_processed_total`` on each one's /metrics;
+- bare: n paho clients (MQTT 3.1.1, persistent sessions, QoS 1, automatic acks)
+  subscribed to the same partition prefixes, counting messages.
+
+Two payload kinds: single-sample JSON messages ({"v": .., "ts": ..}) and JSON
+arrays of 260 samples.  ``--part state`` runs one shard over the same backlog with
+``state.keep: local`` and ``state.keep: cluster`` and reports the ratio.
+
+Ratios only, each against a baseline measured in the same run: the machine
+(2 cores) is shared, so absolute rates move from run to run.  With --repeat the
+median of the repeats is reported.  Not part of the test suite.
+"""
+
+from __future__ import annotations
+
+import argparse
+import http.client
+import json
+import socket
+import statistics
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+from tempfile import TemporaryDirectory
+from typing import Any
+
+ROOT = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(ROOT / "tests" / "daemon"))
+
+import paho.mqtt.client as paho
+from killrun import metric, scrape
+from natskit import NatsCluster
+from paho.mqtt.enums import CallbackAPIVersion, MQTTProtocolVersion
+
+from shiftwatch.broker import free_port, wait_until
+from shiftwatch.mqtt import PlainClient
+
+CMD = [sys.executable, "-m", "shiftwatch"]
+T0 = 1_790_000_000.0
+BATCH = 260
+
+
+def _free(port: int) -> bool:
+    with socket.socket() as s:
+        try:
+            s.bind(("127.0.0.1", port))
+        except OSError:
+            return False
+    return True
+
+
+def names(streams: int) -> list[str]:
+    return [f"brackenfield/line{i % 7 + 1}/head{i}/fill" for i in range(streams)]
+
+
+def payloads(streams: int, rounds: int, batch: int) -> list[tuple[str, bytes]]:
+    """Round-robin over the streams: ``rounds`` messages per stream, ``batch`` samples each
+    (1: a single JSON object)."""
+    out = []
+    tops = names(streams)
+    for r in range(rounds):
+        for i, t in enumerate(tops):
+            if batch == 1:
+                out.append((t, json.dumps({"v": round(500 + ((r * 7 + i) % 13) * 0.01, 3),
+                                           "ts": T0 + r}).encode()))
+            else:
+                base = r * batch
+                out.append((t, json.dumps([{"v": round(500 + ((base + j + i) % 13) * 0.01, 3),
+                                            "ts": T0 + base + j} for j in range(batch)]).encode()))
+    return out
+
+
+def publish_backlog(url: str, msgs: list[tuple[str, bytes]]) -> None:
+    pub = PlainClient(url, "bench-publisher", mqtt_version="3.1.1").start()
+    try:
+        infos = []
+        for topic, payload in msgs:
+            infos.append(pub.client.publish(topic, payload, qos=1))
+            if len(infos) >= 2000:
+                for i in infos:
+                    i.wait_for_publish(30)
+                infos = []
+        for i in infos:
+            i.wait_for_publish(30)
+    finally:
+        pub.stop()
+
+
+class Bare:
+    """n bare paho subscribers with persistent sessions, counting messages."""
+
+    def __init__(self, url: str, parts: int, tag: str) -> None:
+        host, port = url.split("://")[1].split(":")
+        self.host, self.port, self.parts, self.tag = host, int(port), parts, tag
+        self.count = 0
+        self.first = self.last = 0.0
+        self._lock = threading.Lock()
+        self.clients: list[paho.Client] = []
+
+    def _client(self, k: int) -> paho.Client:
+        c = paho.Client(CallbackAPIVersion.VERSION2, client_id=f"bare-{self.tag}-{k}", clean_session=False,
+                        protocol=MQTTProtocolVersion.MQTTv311)
+        c.max_inflight_messages_set(1000)
+
+        def on_message(cl: Any, u: Any, m: Any) -> None:
+            with self._lock:
+                now = time.monotonic()
+                if not self.count:
+                    self.first = now
+                self.count += 1
+                self.last = now
+
+        c.on_message = on_message
+        return c
+
+    def connect(self, subscribe: bool) -> None:
+        self.clients = []
+        for k in range(self.parts):
+            c = self._client(k)
+            c.connect(self.host, self.port, 30)
+            c.loop_start()
+            if subscribe:
+                c.subscribe(f"part/{k}/brackenfield/+/+/fill", qos=1)
+            self.clients.append(c)
+
+    def disconnect(self) -> None:
+        for c in self.clients:
+            c.disconnect()
+            c.loop_stop()
+
+
+def shard_config(path: Path, cluster: NatsCluster, parts: int, keep: str, port: int, tag: str) -> None:
+    servers = ", ".join(cluster.urls)
+    text = (f"broker:\n  url: {cluster.mqtt_url(0)}\n  client_id: bench-{tag}\n  mqtt_version: \"3.1.1\"\n"
+            "streams:\n  - topic: brackenfield/+/+/fill\n    format: json\n    value: v\n    time: ts\n"
+            f"alerts:\n  topic_prefix: bench/{tag}\n"
+            f"metrics:\n  listen: 127.0.0.1:{port}\n  max_streams: 100000\n"
+            f"state:\n  dir: {path.parent / ('state-' + tag)}\n  snapshot_every: 60s\n  keep: {keep}\n"
+            f"shard:\n  number: 0\n  of: {parts}\n"
+            f"cluster:\n  servers: [{servers}]\n  name: bench{tag}\n  lease: 15s\n  redelivery_wait: 0s\n")
+    path.write_text(text)
+
+
+def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: list[tuple[str, bytes]],
+               tag: str) -> float:
+    cfg = work / f"{tag}.yaml"
+    port = free_port()
+    while not all(_free(port + k) for k in range(parts)):  # the shards take port, port + 1, ...
+        port = free_port()
+    shard_config(cfg, cluster, parts, keep, port, tag)
+
+    def start(k: int) -> subprocess.Popen[bytes]:
+        log = open(work / f"{tag}-{k}.log", "ab")  # noqa: SIM115  kept open by the child
+        return subprocess.Popen(CMD + ["run", "--config", str(cfg), "--shard", str(k)], stdout=log,
+                                stderr=subprocess.STDOUT)
+
+    def logs(k: int) -> str:
+        return (work / f"{tag}-{k}.log").read_text(errors="replace")
+
+    # Sessions first: start, wait for the subscription (the retained online status), stop.
+    seen: dict[str, str] = {}
+    viewer = PlainClient(cluster.mqtt_url(1), f"bench-viewer-{tag}", subscribe=[f"bench/{tag}/status/#"],
+                         on_message=lambda t, p: seen.__setitem__(t, p.decode()), mqtt_version="3.1.1").start()
+    procs = [start(k) for k in range(parts)]
+    assert wait_until(lambda: sum(v == "online" for v in seen.values()) >= parts, 90), \
+        [logs(k)[-800:] for k in range(parts)]
+    for p in procs:
+        p.terminate()
+        p.wait(60)
+    publish_backlog(cluster.mqtt_url(2), msgs)
+    procs = [start(k) for k in range(parts)]
+    ports = [port + k for k in range(parts)]
+    total = len(msgs)
+    first = None
+    start_count = 0.0
+    deadline = time.monotonic() + 600
+    done_at = None
+    while time.monotonic() < deadline:
+        n = 0.0
+        for p in ports:
+            try:
+                n += metric(scrape(p), "shiftwatch_messages_processed_total")
+            except (OSError, http.client.HTTPException):  # not serving yet
+                pass
+        now = time.monotonic()
+        if first is None and n > 0:
+            first, start_count = now, n
+        if n >= total:
+            done_at = now
+            break
+        time.sleep(0.05)
+    for p in procs:
+        p.terminate()
+        p.wait(60)
+    viewer.stop()
+    if first is None or done_at is None or done_at <= first:
+        raise RuntimeError(f"shards did not take the backlog: {[logs(k)[-1500:] for k in range(parts)]}")
+    return (total - start_count) / (done_at - first)
+
+
+def run_bare(cluster: NatsCluster, parts: int, msgs: list[tuple[str, bytes]], tag: str) -> float:
+    bare = Bare(cluster.mqtt_url(0), parts, tag)
+    bare.connect(subscribe=True)
+    time.sleep(3.0)  # the cluster makes each session's consumer
+    bare.disconnect()
+    publish_backlog(cluster.mqtt_url(2), msgs)
+    bare.count = 0
+    bare.connect(subscribe=False)
+    assert wait_until(lambda: bare.count >= len(msgs), 600, every=0.05), (bare.count, len(msgs))
+    bare.disconnect()
+    return (bare.count - 1) / max(bare.last - bare.first, 1e-9)
+
+
+def part_throughput(args: argparse.Namespace, work: Path) -> list[str]:
+    rows = []
+    streams = 500 if args.quick else 2000
+    single_rounds = 10 if args.quick else 20
+    batch_rounds = 3 if args.quick else 4
+    for parts in args.shards:
+        with NatsCluster(3, parts, base=work / f"nats{parts}") as cluster:
+            for kind, batch, rounds in (("single", 1, single_rounds), ("batch260", BATCH, batch_rounds)):
+                msgs = payloads(streams, rounds, batch)
+                rs, rb = [], []
+                for rep in range(args.repeat):
+                    tag = f"{kind}{parts}r{rep}"
+                    rb.append(run_bare(cluster, parts, msgs, tag))
+                    rs.append(run_shards(work, cluster, parts, "cluster", msgs, tag))
+                shard_rate, bare_rate = statistics.median(rs), statistics.median(rb)
+                rows.append(f"| {parts} | {kind} | {len(msgs):,} | {shard_rate:,.0f} msg/s, "
+                            f"{shard_rate * batch:,.0f} samples/s | {bare_rate:,.0f} msg/s | "
+                            f"{shard_rate / bare_rate:.2f} | {', '.join(f'{s / b:.2f}' for s, b in zip(rs, rb))} |")
+                print(rows[-1], flush=True)
+    head = ("| shards | payload | messages | shards took | bare subscribers took | ratio (median) | "
+            "ratio per repeat |")
+    return [head, "|---|---|---|---|---|---|---|", *rows]
+
+
+def part_state(args: argparse.Namespace, work: Path) -> list[str]:
+    streams = 500 if args.quick else 2000
+    msgs = payloads(streams, 10 if args.quick else 20, 1)
+    local, clus = [], []
+    with NatsCluster(3, 1, base=work / "nats-state") as cluster:
+        for rep in range(args.repeat):
+            local.append(run_shards(work, cluster, 1, "local", msgs, f"local{rep}"))
+            clus.append(run_shards(work, cluster, 1, "cluster", msgs, f"clus{rep}"))
+    lm, cm = statistics.median(local), statistics.median(clus)
+    return ["| state | messages | one shard took (median) | per repeat |", "|---|---|---|---|",
+            f"| local state.dir | {len(msgs):,} | {lm:,.0f} msg/s | {', '.join(f'{x:,.0f}' for x in local)} |",
+            (f"| cluster (R3 journal per stream per round) | {len(msgs):,} | {cm:,.0f} msg/s | "
+             f"{', '.join(f'{x:,.0f}' for x in clus)} |"),
+            f"| cluster / local | | {cm / lm:.2f} | |"]
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true")
+    ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--part", choices=("throughput", "state"), action="append")
+    ap.add_argument("--shards", type=int, nargs="+", default=[1, 2, 4], help="shard counts (default 1 2 4)")
+    args = ap.parse_args()
+    parts = args.part or ["throughput", "state"]
+    with TemporaryDirectory(prefix="bench-shards-") as tmp:
+        work = Path(tmp)
+        out = []
+        if "throughput" in parts:
+            out += part_throughput(args, work) + [""]
+        if "state" in parts:
+            out += part_state(args, work)
+    print("\n".join(out))
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,202 @@
+"""A private NATS cluster on loopback for the shard tests and benches.
+
+:class:`NatsCluster` starts N ``nats-server`` processes (Debian's package
+``nats-server``, 2.9 here) on free loopback ports, routed to each other as one
+cluster, each with JetStream (its own store directory) and an MQTT listener.
+The cluster's global account maps the invented plant's topics to partitions
+with NATS's own ``partition()`` mapping function (nats-server 2.9 documents
+``{{partition(n, wildcard indexes...)}}`` in its subject mapping), so an MQTT
+message on ``brackenfield/<line>/<machine>/<quantity>`` is delivered as
+``part/<k>/brackenfield/...`` for exactly one k in 0..n-1.
+
+Servers can be killed (SIGKILL) and started again on the same ports and store,
+which is what the fault tests do to one of them.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import signal
+import socket
+import subprocess
+import tempfile
+from pathlib import Path
+
+from shiftwatch.broker import free_port, wait_until
+
+#: The servers' MQTT ack_wait: unacknowledged messages are sent again after it (the
+#: daemons' cluster.redelivery_wait in the tests is above it).
+ACK_WAIT = "2s"
+#: The topic levels the tests' mapping partitions (after the plant name).
+PLANT = "brackenfield"
+
+
+def find_nats_server() -> str | None:
+    """Path of the nats-server binary (PATH, then Debian's /usr/sbin), or None."""
+    found = shutil.which("nats-server")
+    if found:
+        return found
+    for candidate in ("/usr/sbin/nats-server", "/usr/local/sbin/nats-server"):
+        if os.access(candidate, os.X_OK):
+            return candidate
+    return None
+
+
+def partition_mapping(parts: int, prefix: str = "part") -> str:
+    """The account mapping that puts every plant topic of three levels below the
+    plant name into one of ``parts`` partitions, as a nats-server config line."""
+    idx = ",".join(str(i) for i in (1, 2, 3))
+    return (f'"{PLANT}.*.*.*": "{prefix}.{{{{partition({parts},{idx})}}}}.{PLANT}.'
+            '{{wildcard(1)}}.{{wildcard(2)}}.{{wildcard(3)}}"')
+
+
+def _port_open(port: int) -> bool:
+    try:
+        with socket.create_connection(("127.0.0.1", port), timeout=0.2):
+            return True
+    except OSError:
+        return False
+
+
+class NatsServer:
+    """One server of a :class:`NatsCluster` (ports fixed for its whole life)."""
+
+    def __init__(self, binary: str, name: str, base: Path, client_port: int, cluster_port: int,
+                 mqtt_port: int) -> None:
+        self.binary = binary
+        self.name = name
+        self.dir = base / name
+        self.dir.mkdir(parents=True, exist_ok=True)
+        self.client_port = client_port
+        self.cluster_port = cluster_port
+        self.mqtt_port = mqtt_port
+        self.conf = self.dir / "nats.conf"
+        self.log_path = self.dir / "nats.log"
+        self.proc: subprocess.Popen[bytes] | None = None
+
+    @property
+    def url(self) -> str:
+        return f"nats://127.0.0.1:{self.client_port}"
+
+    @property
+    def mqtt_url(self) -> str:
+        return f"mqtt://127.0.0.1:{self.mqtt_port}"
+
+    def write_config(self, routes: list[int], parts: int) -> None:
+        route_list = ", ".join(f"nats-route://127.0.0.1:{p}" for p in routes)
+        self.conf.write_text(
+            f"server_name: {self.name}\n"
+            f"listen: 127.0.0.1:{self.client_port}\n"
+            f"jetstream {{ store_dir: \"{self.dir / 'js'}\", max_memory_store: 256MB, "
+            "max_file_store: 4GB }\n"
+            f"cluster {{ name: shiftwatch-test, listen: 127.0.0.1:{self.cluster_port}, "
+            f"routes: [{route_list}] }}\n"
+            f"mqtt {{ listen: 127.0.0.1:{self.mqtt_port}, ack_wait: \"{ACK_WAIT}\", max_ack_pending: 4096 }}\n"
+            f"mappings {{ {partition_mapping(parts)} }}\n")
+
+    def start(self) -> None:
+        log = self.log_path.open("ab")
+        self.proc = subprocess.Popen([self.binary, "-c", str(self.conf)], stdout=log,
+                                     stderr=subprocess.STDOUT)
+        log.close()
+
+    def ready(self) -> bool:
+        return (self.proc is not None and self.proc.poll() is None and _port_open(self.client_port)
+                and _port_open(self.mqtt_port))
+
+    def kill(self) -> None:
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGKILL)
+            self.proc.wait(10)
+        self.proc = None
+
+    def stop(self) -> None:
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.terminate()
+            try:
+                self.proc.wait(10)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait(10)
+        self.proc = None
+
+
+class NatsCluster:
+    """``size`` routed nats-servers with JetStream and MQTT, the plant mapped to ``parts`` partitions."""
+
+    def __init__(self, size: int = 3, parts: int = 3, base: str | Path | None = None) -> None:
+        binary = find_nats_server()
+        if binary is None:
+            raise RuntimeError("nats-server not found (Debian package nats-server; "
+                               "tests/install-and-test.sh installs it)")
+        self._tmp = None if base is not None else tempfile.TemporaryDirectory(prefix="sw-nats-")
+        self.base = Path(base if base is not None else self._tmp.name)  # type: ignore[union-attr]
+        self.parts = parts
+        ports = [(free_port(), free_port(), free_port()) for _ in range(size)]
+        self.servers = [NatsServer(binary, f"n{i + 1}", self.base, *p) for i, p in enumerate(ports)]
+        for s in self.servers:
+            s.write_config([p[1] for p in ports if p[1] != s.cluster_port], parts)
+
+    @property
+    def urls(self) -> list[str]:
+        return [s.url for s in self.servers]
+
+    def mqtt_url(self, i: int = 0) -> str:
+        return self.servers[i].mqtt_url
+
+    def start(self, timeout: float = 60.0) -> NatsCluster:
+        for s in self.servers:
+            s.start()
+        if not wait_until(lambda: all(s.ready() for s in self.servers), timeout):
+            logs = "; ".join(f"{s.name}: {s.log_path.read_text()[-400:]}" for s in self.servers)
+            self.stop()
+            raise RuntimeError(f"NATS cluster did not come up within {timeout:.0f} s: {logs}")
+        if not wait_until(self.jetstream_ready, timeout, every=0.5):
+            self.stop()
+            raise RuntimeError("NATS cluster came up but JetStream has no meta leader")
+        return self
+
+    def jetstream_ready(self) -> bool:
+        """JetStream answers an account info request (the meta group has a leader)."""
+        import asyncio
+
+        import nats
+
+        async def probe() -> bool:
+            nc = await nats.connect(servers=self.urls, connect_timeout=1, max_reconnect_attempts=0)
+            try:
+                await nc.jetstream().account_info()
+                return True
+            except Exception:  # noqa: BLE001  not ready yet
+                return False
+            finally:
+                await nc.close()
+
+        try:
+            return asyncio.run(probe())
+        except Exception:  # noqa: BLE001  not ready yet
+            return False
+
+    def kill(self, i: int) -> None:
+        self.servers[i].kill()
+
+    def restart(self, i: int, timeout: float = 30.0) -> None:
+        s = self.servers[i]
+        s.start()
+        if not wait_until(s.ready, timeout):
+            raise RuntimeError(f"NATS server {s.name} did not come back within {timeout:.0f} s")
+
+    def stop(self) -> None:
+        for s in self.servers:
+            s.stop()
+        if self._tmp is not None:
+            self._tmp.cleanup()
+            self._tmp = None
+
+    def __enter__(self) -> NatsCluster:  # noqa: PYI034  start() returns the cluster itself
+        return self.start()
+
+    def __exit__(self, *exc: object) -> None:
+        self.stop()
+

@@ -1,0 +1,338 @@
+"""Shards of shiftwatch behind a private NATS cluster: the scenario of test_shards.py
+and tests/bench/bench_shards.py.
+
+A 3-server NATS cluster (``natskit.NatsCluster``: JetStream, MQTT, the plant's
+topics mapped to partitions), one real ``shiftwatch run --shard k`` per
+partition in a subprocess with ``state.keep: cluster``, a publisher thread
+sending filler weights with scheduled steps over MQTT at QoS 1 (paho, through
+``PlainClient``), and a viewer keeping every alert record.
+
+The tally (``Tally``) counts, over all streams: samples published, samples the
+engines took (``shiftwatch_samples_total`` of the shard that holds each stream
+at the end: the count is part of the stream's saved state, so it carries
+across restarts and moves), samples lost (published, never taken), injected
+steps without a confirmed record, steps confirmed under two or more event ids,
+and records delivered more than once under the same id.
+"""
+
+from __future__ import annotations
+
+import json
+import signal
+import subprocess
+import threading
+import time
+from collections import defaultdict
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from shiftwatch.broker import free_port, wait_until
+from shiftwatch.mqtt import PlainClient
+
+try:  # in the test package
+    from .killrun import metric, scrape
+    from .natskit import NatsCluster
+except ImportError:  # from the benches, with tests/daemon on sys.path
+    from killrun import metric, scrape  # type: ignore[no-redef]
+    from natskit import NatsCluster  # type: ignore[no-redef]
+
+T0 = 1_790_000_000.0
+NOISE = 0.2
+STEP = 0.6  # 3 sigma
+
+
+@dataclass
+class Plan:
+    """``lines`` x ``heads`` streams of ``samples`` readings at ``rate`` a second, a step every ``gap``."""
+
+    lines: int = 3
+    heads: int = 4
+    samples: int = 1000
+    gap: int = 400
+    rate: float = 100.0
+    seed: int = 3
+
+    def names(self) -> list[str]:
+        return [f"brackenfield/line{li + 1}/head{h + 1}/fill"
+                for li in range(self.lines) for h in range(self.heads)]
+
+    def series(self, i: int) -> np.ndarray:
+        rng = np.random.default_rng(self.seed * 1000 + i)
+        x = 500.0 + NOISE * rng.standard_normal(self.samples)
+        for k, at in enumerate(self.shift_indices()):
+            x[at:] += STEP if k % 2 == 0 else -STEP
+        return x
+
+    def shift_indices(self) -> list[int]:
+        return list(range(self.gap, self.samples - self.gap // 4, self.gap))
+
+
+@dataclass
+class Tally:
+    published: int = 0
+    taken: int = 0
+    lost: int = 0
+    shifts: int = 0
+    shifts_missed: int = 0
+    shifts_with_two_ids: int = 0
+    records: int = 0
+    delivered_twice: int = 0
+    seconds: float = 0.0
+    short: dict[str, int] = field(default_factory=dict)
+    restarts: int = 0
+
+    def line(self) -> str:
+        return (f"samples published {self.published}, taken {self.taken}, lost {self.lost}; "
+                f"steps {self.shifts}, missed {self.shifts_missed}, confirmed under two ids "
+                f"{self.shifts_with_two_ids}; records {self.records}, delivered twice (same id) "
+                f"{self.delivered_twice}; shards restarted after a failure {self.restarts}; "
+                f"{self.seconds:.0f} s"
+                + (f"; streams short of samples: {self.short}" if self.short else ""))
+
+
+class Shard:
+    """One ``shiftwatch run --shard k`` with its log in a file."""
+
+    def __init__(self, command: list[str], config: Path, number: int, log: Path, port: int) -> None:
+        self.command, self.config, self.number, self.log_path, self.port = command, config, number, log, port
+        self.proc: subprocess.Popen[bytes] | None = None
+
+    def start(self, timeout: float = 60.0) -> None:
+        offset = self.log_path.stat().st_size if self.log_path.exists() else 0
+        with open(self.log_path, "ab") as log:
+            self.proc = subprocess.Popen(self.command + ["run", "--config", str(self.config),
+                                                         "--shard", str(self.number)],
+                                         stdout=log, stderr=subprocess.STDOUT)
+        ok = wait_until(lambda: "connected to broker" in self.log()[offset:]
+                        or self.proc is None or self.proc.poll() is not None, timeout)
+        if not ok or self.proc.poll() is not None:
+            raise RuntimeError(f"shard {self.number} did not start: {self.log()[-3000:]}")
+
+    def log(self) -> str:
+        return self.log_path.read_text(errors="replace") if self.log_path.exists() else ""
+
+    def exited_on_its_own(self) -> bool:
+        """The daemon stopped with a failure status (as systemd's Restart=on-failure sees it)."""
+        return self.proc is not None and self.proc.poll() not in (None, 0, -signal.SIGKILL)
+
+    def kill(self) -> None:
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGKILL)
+            self.proc.wait()
+
+    def stop(self) -> int:
+        if self.proc is None:
+            return 0
+        if self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGTERM)
+        try:
+            return self.proc.wait(timeout=60)
+        except subprocess.TimeoutExpired:
+            self.proc.kill()
+            return self.proc.wait()
+
+
+class ShardRun:
+    """The cluster, ``shards`` daemons, a publisher and a viewer, in ``workdir``."""
+
+    def __init__(self, workdir: Path, command: list[str], cluster: NatsCluster, *, shards: int = 3,
+                 plan: Plan | None = None, name: str = "sw", lease: str = "15s") -> None:
+        self.workdir = Path(workdir)
+        self.command = command
+        self.cluster = cluster
+        self.plan = plan or Plan()
+        self.name = name
+        self.lease = lease
+        self.base_port = free_port()
+        self.shards: dict[int, Shard] = {}
+        self.records: list[dict[str, Any]] = []
+        self.status: dict[str, str] = {}
+        self.restarts = 0
+        self._closing = threading.Event()
+        self._lock = threading.Lock()
+        self.clients: list[PlainClient] = []
+        self.config = self.workdir / "shiftwatch.yaml"
+        self.write_config(shards)
+
+    def write_config(self, parts: int, state_dir: str = "state") -> None:
+        self.parts = parts
+        servers = ", ".join(self.cluster.urls)
+        self.config.write_text(
+            f"broker:\n  url: {self.cluster.mqtt_url(0)}\n  client_id: {self.name}\n  keepalive: 5\n"
+            "  mqtt_version: \"3.1.1\"\n"
+            "streams:\n  - topic: brackenfield/+/+/fill\n    format: json\n"
+            "    value: v\n    time: ts\n    unit: g\n"
+            f"alerts:\n  topic_prefix: {self.name}/out\n"
+            f"metrics:\n  listen: 127.0.0.1:{self.base_port}\n"
+            f"state:\n  dir: {self.workdir / state_dir}\n  snapshot_every: 2s\n  keep: cluster\n"
+            f"shard:\n  number: 0\n  of: {parts}\n"
+            f"cluster:\n  servers: [{servers}]\n  name: {self.name}\n  lease: {self.lease}\n"
+            "  redelivery_wait: 6s\n")
+
+    def fresh_state(self, k: int, state_dir: str) -> None:
+        """Shard k's next start uses a configuration with a state directory never used (another box)."""
+        old = self.config
+        self.config = self.workdir / f"shiftwatch-{k}-{state_dir}.yaml"
+        self.write_config(self.parts, state_dir)
+        self.shards[k] = Shard(self.command, self.config, k, self.workdir / f"shard{k}-{state_dir}.log",
+                               self.base_port + k)
+        self.config = old
+
+    def repartition(self, parts: int) -> None:
+        """Change the cluster's mapping to ``parts`` partitions (every server reloads its
+        configuration) and the daemons' shard.of for the shards started after it."""
+        for s in self.cluster.servers:
+            s.write_config([o.cluster_port for o in self.cluster.servers if o is not s], parts)
+            if s.proc is not None:
+                s.proc.send_signal(signal.SIGHUP)
+        self.write_config(parts)
+
+    def shard(self, k: int) -> Shard:
+        if k not in self.shards:
+            self.shards[k] = Shard(self.command, self.config, k, self.workdir / f"shard{k}.log",
+                                   self.base_port + k)
+        return self.shards[k]
+
+    def _on_record(self, topic: str, payload: bytes) -> None:
+        try:
+            body = json.loads(payload)
+        except ValueError:
+            return
+        with self._lock:
+            self.records.append(body)
+
+    def _on_message(self, topic: str, payload: bytes) -> None:
+        if "/status/" in topic:
+            with self._lock:
+                self.status[topic.rsplit("-", 1)[-1]] = payload.decode(errors="replace")
+        else:
+            self._on_record(topic, payload)
+
+    def online(self, k: int, timeout: float = 60.0) -> bool:
+        """Wait for shard k's retained status to say online: the daemon publishes it
+        right after its SUBSCRIBE, which the cluster has then handled."""
+        return wait_until(lambda: self.status.get(str(k)) == "online", timeout)
+
+    def supervise(self) -> None:
+        """Start a shard again when it exits with a failure status, after 2 s, as the
+        systemd template's Restart=on-failure and RestartSec do (a shard that lost its
+        lease while the cluster did not answer stops with status 3)."""
+        def loop() -> None:
+            while not self._closing.wait(0.5):
+                for sh in list(self.shards.values()):
+                    if sh.exited_on_its_own() and not self._closing.wait(2.0):
+                        self.restarts += 1
+                        try:
+                            sh.start()
+                        except RuntimeError:
+                            pass  # tried again on the next turn
+        threading.Thread(target=loop, daemon=True).start()
+
+    def start(self) -> None:
+        self.supervise()
+        viewer = PlainClient(self.cluster.mqtt_url(1), f"{self.name}-viewer",
+                             subscribe=[f"{self.name}/out/alerts/#", f"{self.name}/out/status/#"],
+                             on_message=self._on_message, mqtt_version="3.1.1").start()
+        self.clients.append(viewer)
+
+    def publish(self, during: Callable[[int], None] | None = None) -> None:
+        """Publish the plan (from the cluster's third server); ``during(j)`` is called
+        after each sample index j, from the publishing thread."""
+        p = self.plan
+        pub = PlainClient(self.cluster.mqtt_url(2), f"{self.name}-publisher", mqtt_version="3.1.1").start()
+        self.clients.append(pub)
+        names = p.names()
+        series = [p.series(i) for i in range(len(names))]
+        start = time.monotonic()
+        for j in range(p.samples):
+            for i, name in enumerate(names):
+                pub.publish(name, json.dumps({"v": round(float(series[i][j]), 4), "ts": T0 + j}), qos=1)
+            if during is not None:
+                during(j)
+            lag = start + (j + 1) / p.rate - time.monotonic()
+            if lag > 0:
+                time.sleep(lag)
+
+    def settle(self, timeout: float = 120.0, still_for: float = 20.0) -> dict[str, float]:
+        """Wait until every stream's samples are taken (or nothing moves for ``still_for``
+        seconds: reconnections back off up to 8 s, and a daemon waits for redeliveries after
+        each); the
+        count per stream, from the shard that has taken most of it."""
+        names = self.plan.names()
+        deadline = time.monotonic() + timeout
+        last: dict[str, float] = {}
+        still = time.monotonic()
+        while time.monotonic() < deadline:
+            counts = self.taken()
+            if all(counts.get(s, 0) >= self.plan.samples for s in names):
+                last = counts
+                break
+            if counts != last:
+                last, still = counts, time.monotonic()
+            elif time.monotonic() - still > still_for:
+                break
+            time.sleep(0.3)
+        time.sleep(1.0)  # records completed by the last readings
+        return self.taken() or last
+
+    def taken(self) -> dict[str, float]:
+        out: dict[str, float] = defaultdict(float)
+        for sh in self.shards.values():
+            if sh.proc is None or sh.proc.poll() is not None:
+                continue
+            try:
+                m = scrape(sh.port)
+            except OSError:
+                continue
+            for s in self.plan.names():
+                out[s] = max(out[s], metric(m, "shiftwatch_samples_total", stream=s))
+        return dict(out)
+
+    def tally(self, counts: dict[str, float], seconds: float) -> Tally:
+        p = self.plan
+        t = Tally(seconds=seconds, restarts=self.restarts)
+        names = p.names()
+        t.published = p.samples * len(names)
+        t.taken = int(sum(min(counts.get(s, 0), p.samples) for s in names))
+        t.lost = t.published - t.taken
+        t.short = {s: int(counts.get(s, 0)) for s in names if counts.get(s, 0) < p.samples}
+        with self._lock:
+            records = list(self.records)
+        t.records = len(records)
+        seen: dict[tuple[str, str], int] = defaultdict(int)
+        for r in records:
+            seen[(str(r.get("id")), str(r.get("phase")))] += 1
+        t.delivered_twice = sum(n - 1 for n in seen.values() if n > 1)
+        for s in names:
+            # A step back to the level before the last one is confirmed as "returned".
+            confirmed = [r for r in records if r.get("stream") == s
+                         and r.get("phase") in ("confirmed", "returned")]
+            for at in p.shift_indices():
+                t.shifts += 1
+                t_at = T0 + at
+                near = {r["id"] for r in confirmed if abs(_epoch(r.get("shift_at")) - t_at) <= 20}
+                if not near:
+                    t.shifts_missed += 1
+                elif len(near) > 1:
+                    t.shifts_with_two_ids += 1
+        return t
+
+    def close(self) -> None:
+        self._closing.set()
+        for sh in self.shards.values():
+            sh.stop()
+        for c in self.clients:
+            c.stop()
+
+
+def _epoch(value: Any) -> float:
+    from shiftwatch.core.timefmt import parse_time
+
+    try:
+        return float(parse_time(value)) if isinstance(value, str) else float(value)
+    except (TypeError, ValueError):
+        return float("nan")
