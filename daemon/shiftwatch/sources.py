@@ -693,14 +693,17 @@ def _iso_ms_times(body: _Body, col: int) -> FloatArray | None:
     s, e = body.starts[:, col], body.ends[:, col]
     if not bool((e - s == 24).all()):
         return None
-    w = np.stack([body.words(s + 8 * k) for k in range(3)], axis=1)
-    new = np.ones(w.shape[0], dtype=bool)
-    new[1:] = (w[1:] != w[:-1]).any(axis=1)
+    words = [body.words(s + 8 * k) for k in range(3)]
+    new = np.zeros(s.shape[0], dtype=bool)
+    new[0] = True
+    changed = new[1:]  # a view: a row is new when any of its words differs from the row before
+    for w in words:
+        changed |= w[1:] != w[:-1]
     firsts = np.flatnonzero(new)
-    parsed = _parse_iso_ms_column(w[firsts].view(np.uint8).reshape(-1, 24))
+    parsed = _parse_iso_ms_column(np.stack([w[firsts] for w in words], axis=1).view(np.uint8).reshape(-1, 24))
     if parsed is None:
         return None
-    return parsed if firsts.shape[0] == w.shape[0] else parsed[np.cumsum(new) - 1]
+    return parsed if firsts.shape[0] == s.shape[0] else parsed[np.cumsum(new) - 1]
 
 
 def _fast_times(body: _Body, col: int, tz: tzinfo | None) -> FloatArray:
@@ -715,6 +718,13 @@ def _fast_times(body: _Body, col: int, tz: tzinfo | None) -> FloatArray:
     distinct = list(set(tcol))
     parsed = dict(zip(distinct, _parse_times(distinct, tz)))
     return np.fromiter(map(parsed.__getitem__, tcol), dtype=np.float64, count=len(tcol))
+
+
+def _groups(order: IntArray, codes: IntArray, count: int) -> list[IntArray]:
+    """The rows of each code, ``order`` being the rows sorted by code (as ``np.split`` at the
+    codes' bounds gives them, without its Python loop of several calls per piece)."""
+    bounds = np.cumsum(np.bincount(codes, minlength=count)).tolist()
+    return [order[a:b] for a, b in zip([0, *bounds[:-1]], bounds)]
 
 
 def _distinct(sorted_values: NDArray[Any]) -> NDArray[Any]:
@@ -748,7 +758,9 @@ def _stream_codes(body: _Body, col: int) -> tuple[IntArray, list[bytes]] | None:
                 active = np.flatnonzero(longer) if active is None else active[longer]
                 la = la[longer]
         sa = s if active is None else s[active]
-        wk = body.words(sa + 8 * k) & _LOW_BYTES[np.clip(la - 8 * k, 0, 8)]
+        wk = body.words(sa + 8 * k)
+        if int(la.min(initial=8 * k + 8)) < 8 * k + 8:  # some fields end within this word
+            wk &= _LOW_BYTES[np.clip(la - 8 * k, 0, 8)]
         steps.append((active, wk))
         ha = h if active is None else h[active]
         ha = (ha ^ wk) * np.uint64(0x100000001B3)
@@ -841,8 +853,8 @@ def _read_fast(src: Source, buf: bytearray, begin: int, end: int, line0: int, fb
         return [(next(iter(keys)), times, values, places)], n
     # Stable: each stream's rows stay in file order.
     order = np.argsort(codes.astype(np.int16) if len(keys) < 2**15 else codes, kind="stable")
-    sels = np.split(order, np.cumsum(np.bincount(codes, minlength=len(keys)))[:-1])
-    return [(key, times[sel], values[sel], places[sel]) for key, sel in zip(keys, sels)], n
+    return [(key, times[sel], values[sel], places[sel])
+            for key, sel in zip(keys, _groups(order, codes, len(keys)))], n
 
 
 def _wide_parts(src: Source, body: _Body, times: FloatArray,
@@ -1230,8 +1242,7 @@ def _long_parquet_parts(scol: Any, times: FloatArray, v: FloatArray, places: Int
     problems.rows(keep & valid & (codes < 0), first, cname, "empty stream name")
     codes = np.where(keep & (codes >= 0), codes, len(key_of))
     order = np.argsort(codes, kind="stable")
-    sels = np.split(order, np.cumsum(np.bincount(codes, minlength=len(key_of) + 1))[:-1])
-    for key, sel in zip(key_of, sels):
+    for key, sel in zip(key_of, _groups(order, codes, len(key_of) + 1)):
         if sel.shape[0]:
             collected.setdefault(key, []).append((times[sel], v[sel], places[sel]))
 
