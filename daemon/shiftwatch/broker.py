@@ -32,15 +32,20 @@ def free_port() -> int:
         return int(s.getsockname()[1])
 
 
-def find_mosquitto() -> str | None:
-    """Path of the mosquitto binary (PATH, then the Debian location), or None."""
-    found = shutil.which("mosquitto")
+def find_program(name: str) -> str | None:
+    """Path of a server binary (PATH, then Debian's /usr/sbin and /usr/local/sbin), or None."""
+    found = shutil.which(name)
     if found:
         return found
-    for candidate in ("/usr/sbin/mosquitto", "/usr/local/sbin/mosquitto"):
+    for candidate in (f"/usr/sbin/{name}", f"/usr/local/sbin/{name}"):
         if os.access(candidate, os.X_OK):
             return candidate
     return None
+
+
+def find_mosquitto() -> str | None:
+    """Path of the mosquitto binary (PATH, then the Debian location), or None."""
+    return find_program("mosquitto")
 
 
 def find_mosquitto_passwd(mosquitto: str | None = None) -> str | None:

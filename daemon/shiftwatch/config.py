@@ -18,6 +18,7 @@ from dataclasses import MISSING, dataclass, field, fields
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from shiftwatch.core.plans import filter_matches
 from shiftwatch.core.settings import TEST_NAMES, DetectionSettings
 from shiftwatch.core.timefmt import parse_duration
 from shiftwatch.decode import MAX_PREFIX_LEVELS, stream_name
@@ -559,10 +560,8 @@ def _sparkplug_matches(pattern: str, levels: list[str]) -> bool:
 
 
 def topic_matches(pattern: str, topic: str) -> bool:
-    """MQTT topic-filter matching (``+`` one level, ``#`` the rest), per the MQTT specification.
-
-    A stream named ``topic/senml-name`` (one stream per SenML name) also
-    matches a filter that matches its topic.
+    """MQTT topic-filter matching (``+`` one level, ``#`` the rest), per the MQTT
+    specification (the one implementation is :func:`shiftwatch.core.plans.filter_matches`).
 
     Examples
     --------
@@ -573,16 +572,7 @@ def topic_matches(pattern: str, topic: str) -> bool:
     >>> topic_matches("plant/+", "plant/f1/weight")
     False
     """
-    p = pattern.split("/")
-    t = topic.split("/")
-    for i, part in enumerate(p):
-        if part == "#":
-            return True
-        if i >= len(t):
-            return False
-        if part != "+" and part != t[i]:
-            return False
-    return len(t) == len(p)
+    return filter_matches(pattern, topic)
 
 
 # --------------------------------------------------------------- validation

@@ -15,15 +15,13 @@ which is what the fault tests do to one of them.
 
 from __future__ import annotations
 
-import os
-import shutil
 import signal
 import socket
 import subprocess
 import tempfile
 from pathlib import Path
 
-from shiftwatch.broker import free_port, wait_until
+from shiftwatch.broker import find_program, free_port, wait_until
 
 #: The servers' MQTT ack_wait: unacknowledged messages are sent again after it (the
 #: daemons' cluster.redelivery_wait in the tests is above it).
@@ -34,13 +32,7 @@ PLANT = "brackenfield"
 
 def find_nats_server() -> str | None:
     """Path of the nats-server binary (PATH, then Debian's /usr/sbin), or None."""
-    found = shutil.which("nats-server")
-    if found:
-        return found
-    for candidate in ("/usr/sbin/nats-server", "/usr/local/sbin/nats-server"):
-        if os.access(candidate, os.X_OK):
-            return candidate
-    return None
+    return find_program("nats-server")
 
 
 def partition_mapping(parts: int, prefix: str = "part") -> str:
