@@ -391,13 +391,14 @@ def test_the_page_in_headless_chromium_shows_the_step_draws_the_chart_and_stays_
     # The filter box narrows by name.
     box = browser.find_element(By.ID, "filter")
     box.send_keys("head3")
-    WebDriverWait(browser, 15).until(lambda b: [r.get_attribute("data-stream") for r in
-                                                b.find_elements(By.CSS_SELECTOR, "tr.stream")] == [QUIET[1]])
+    # (read in one script: the page's refresh replaces the rows between two driver calls)
+    WebDriverWait(browser, 15).until(lambda b: b.execute_script(
+        "return Array.from(document.querySelectorAll('tr.stream')).map(r => r.dataset.stream)") == [QUIET[1]])
 
     # The stream's page: its chart and its records.
     browser.get(f"{base}/status/stream?name={quote(STEPPED, safe='')}")
-    WebDriverWait(browser, 30).until(lambda b: int(b.find_element(By.ID, "chart").get_attribute(
-        "data-samples") or 0) > 200)
+    WebDriverWait(browser, 30).until(lambda b: int(b.execute_script(
+        "const c = document.getElementById('chart'); return c ? c.dataset.samples || 0 : 0")) > 200)
     page = json.loads(get(f"{base}/status/stream.json?name={quote(STEPPED, safe='')}")[2])
     chart = browser.execute_script(
         "const c = document.getElementById('chart'); return {dots: c.querySelectorAll('circle.sample').length, "
@@ -506,8 +507,8 @@ def test_fields_other_parts_provide_show_on_the_page_and_absent_ones_leave_no_ga
         assert rows[2] == ["line/oven/c", "stream", "watching hold"]
         screenshot(browser, "status-extras.png")
         browser.get(f"{base}/status/stream?name={quote('line/filler/a', safe='')}")
-        WebDriverWait(browser, 30).until(lambda b: int(b.find_element(By.ID, "chart").get_attribute(
-            "data-samples") or 0) > 100)
+        WebDriverWait(browser, 30).until(lambda b: int(b.execute_script(
+            "const c = document.getElementById('chart'); return c ? c.dataset.samples || 0 : 0")) > 100)
         facts = browser.find_element(By.ID, "facts").text
         assert "acknowledged\nyes, by shift B: nozzle checked" in facts and "stale" not in facts
         assert browser.execute_script("return document.querySelectorAll('#records tr.record').length") == 1

@@ -50,7 +50,7 @@ from shiftwatch.core.baseline import (
     median,
     sigma_floor,
 )
-from shiftwatch.core.events import NO_DECISION, NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
+from shiftwatch.core.events import NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
 from shiftwatch.core.screen import screen_samples
 from shiftwatch.core.selfstart import SelfStart, SplitEvidence, split_evidence
 from shiftwatch.core.sequential import SequentialTest
@@ -463,6 +463,10 @@ FOLLOW_SAMPLES = 110
 FOLLOW_DELAY = 40
 FOLLOW_DELAY_MAX = 300
 FOLLOW_PHI_MAX = 0.7
+#: Lone spikes are judged against the followed level as it stood at the last of these
+#: points (every FOLLOW_RECENTER watched samples, so the same samples are spikes however
+#: the stream is batched, and the level judged against is never more than that old).
+FOLLOW_RECENTER = 1024
 FOLLOW_MARGIN = 2.0
 FOLLOW_ARL_EXTRA = 1.4
 
@@ -524,12 +528,14 @@ class StreamEngine:
     # One engine per stream, thousands of them in the daemon: no per-instance dict.
     __slots__ = (
         "_baseline",
+        "_center",
         "_event",
         "_fitter",
         "_follow",
         "_follow_lag",
         "_last_step",
         "_last_time",
+        "_next_center",
         "_next_refine",
         "_pending",
         "_prev_out",
@@ -584,6 +590,8 @@ class StreamEngine:
         self._prev_r = 0.0
         self._follow = 0.0  # offset of the followed level from the baseline's (see FOLLOW_SAMPLES)
         self._follow_lag = 0  # newest kept samples in the window not yet fed to the follower
+        self._center = 0.0  # the follower's offset that spikes are judged against (see FOLLOW_RECENTER)
+        self._next_center = FOLLOW_RECENTER  # value of _watch_kept at which _center is taken next
         self._pending: tuple[float, float] | None = None  # held possible spike
         self._prev_out = 0  # direction in which the last kept sample was an outlier (0: it was not)
         self._event: OpenEvent | None = None
@@ -795,6 +803,8 @@ class StreamEngine:
         self._prev_r = 0.0
         self._follow = 0.0
         self._follow_lag = 0
+        self._center = 0.0
+        self._next_center = FOLLOW_RECENTER
         self._pending = None
         self._sums.reset()
         self._unfolded = 0  # the warm-up samples are in the baseline already
@@ -1026,7 +1036,7 @@ class StreamEngine:
                 phi, vf = ys.phi_estimate(), ys.variance_factor(2.0)
             else:
                 # The samples' own autocorrelation, around the two levels of the split.
-                n = len(self._window)
+                n = split.split_at  # the phi estimate rests on the samples before the split
                 phi = split.phi if n >= 20 and abs(split.phi) >= 2.0 / math.sqrt(n) else 0.0
                 up = min(0.95, max(split.phi, 0.0) + 2.0 / math.sqrt(n))
                 vf = 1.0 if phi != 0.0 else (1.0 + up) / (1.0 - up)
@@ -1036,7 +1046,7 @@ class StreamEngine:
                          clip=self.settings.clip_sigma)
             self._provisional = True
         else:
-            b = replace(b, level=ys.mean, n_level=ys.n if ys.n < b.n else 0)
+            b = replace(b, level=ys.mean, n_level=ys.level_n() if ys.level_n() < b.n else 0)
         self._baseline = b
         self._prev_r = 0.0 if ys.last is None else ys.last - b.level
         self._open_event(detected_at, result, as_of)
@@ -1048,10 +1058,12 @@ class StreamEngine:
         assert ys is not None and b is not None
         self._young = None
         ys.release()
-        self._baseline = replace(b, level=ys.mean, n_level=ys.n if ys.n < b.n else 0)
+        self._baseline = replace(b, level=ys.mean, n_level=ys.level_n() if ys.level_n() < b.n else 0)
         self._prev_r = 0.0 if ys.last is None else ys.last - ys.mean
         self._follow = 0.0
         self._follow_lag = 0
+        self._center = 0.0
+        self._next_center = FOLLOW_RECENTER
         self._sums.reset()
         self._unfolded = 0
         self._unfolded_u.clear()
@@ -1075,9 +1087,9 @@ class StreamEngine:
         # same sample however the stream is batched.
         # (After an event the count may already be past the refinement point:
         # then one sample is taken and the refinement follows at once.)
-        u0 = self._follow
-        kt, kx, spikes, used, osign, settled = self._split_spikes(t, x, idx, b.level + u0, b.sigma,
-                                                         max(self._next_refine - self._watch_kept, 1))
+        stop = min(self._next_refine, self._next_center)
+        kt, kx, spikes, used, osign, settled = self._split_spikes(t, x, idx, b.level + self._center, b.sigma,
+                                                         max(stop - self._watch_kept, 1))
         if kt.shape[0] == 0:
             result.rejected.extend(spikes)
             return used
@@ -1144,7 +1156,7 @@ class StreamEngine:
         test = self._test
         assert b is not None and test is not None
         span = self.settings.spike_sigma * b.sigma
-        hi, lo = b.level + self._follow + span, b.level + self._follow - span
+        hi, lo = b.level + self._center + span, b.level + self._center - span
         level, phi, clip = b.level, b.phi, b.clip
         inv = 1.0 / b.innovation_sigma
         lam = 1.0 / follow_samples(b.phi)
@@ -1175,7 +1187,7 @@ class StreamEngine:
             if self._follow_lag > delay:
                 self._follow = keep * u + lam * (w.at(len(w) - self._follow_lag)[1] - level)
                 self._follow_lag -= 1
-            refine = self._watch_kept + 1 >= self._next_refine
+            refine = self._watch_kept + 1 >= min(self._next_refine, self._next_center)
             self._count_watched(1)
             if refine:
                 break
@@ -1213,6 +1225,9 @@ class StreamEngine:
             # Refine often while the baseline rests on few samples, then rarely.
             self._refine_block = min(2 * self._refine_block, REFINE_BLOCK_MAX)
             self._next_refine = self._watch_kept + self._refine_block
+        if self._watch_kept >= self._next_center:
+            self._center = self._follow
+            self._next_center = self._watch_kept + FOLLOW_RECENTER
 
     def _refine(self) -> None:
         """Merge the samples folded since the last refinement into the baseline.
@@ -1231,13 +1246,18 @@ class StreamEngine:
         self._baseline = nb
         # The sums were of the samples less the follower's offset: the refined level is
         # the baseline's part of the followed level, which stays where it was.
-        if math.isinf(follow_samples(nb.phi)):
-            # Not followed (strongly autocorrelated noise): the refined level is the level.
-            self._follow = 0.0
+        off = math.isinf(follow_samples(nb.phi))
+        if off:
+            # Not followed (strongly autocorrelated noise): the refined level is the level
+            # (from the followed one, so it does not jump when following stops).
+            if not math.isinf(follow_samples(b.phi)):
+                self._baseline = nb = replace(nb, level=b.level + self._follow)
+            self._follow = self._center = 0.0
             self._unfolded_u = deque(0.0 for _ in self._unfolded_u)
         else:
             shift = b.level - nb.level
             self._follow += shift
+            self._center += shift
             if self._unfolded_u:
                 self._unfolded_u = deque(v + shift for v in self._unfolded_u)
         k_min = None if s.test == "glr" else 0.5
@@ -1245,7 +1265,7 @@ class StreamEngine:
                              / estimation_adjusted_arl(1e6, int(self._test_n_ref), k_min,
                                                        self._test_n_level))) > 0.05
         if (grown or abs(nb.interval - b.interval) > 0.1 * b.interval or (nb.phi == 0) != (b.phi == 0)
-                or nb.clip != b.clip):
+                or nb.clip != b.clip or off != math.isinf(follow_samples(b.phi))):
             self._design_test()
 
     # ------------------------------------------------------------- events
@@ -1260,9 +1280,13 @@ class StreamEngine:
         start = max(0, n - s.window_samples)
         # Samples still inside the guard may hold the start of the step, and
         # the event's own samples a short excursion: none of them is folded
-        # into the baseline.
+        # into the baseline.  The next sample folded is not the neighbour of the last
+        # one folded: neither the time step nor the lag product across the event counts
+        # (a block folded after it would otherwise count the gap, one by one would not).
         self._unfolded = 0
         self._unfolded_u.clear()
+        self._sums.prev_t = None
+        self._sums.prev_u = None
         self._fitter = StepFitter(self._window.values[start:].copy(), self._window.times[start:].copy())
         # An open event measures from the baseline's level (see _track); the last
         # residual was from the followed level.
@@ -1404,11 +1428,20 @@ class StreamEngine:
             # of its own, detected now, so nothing is thrown away.
             self._end_event(ev, "dismissed", self._fit_until_trip(ev, b), result, as_of)
             self._state = EVENT_OPEN
+            if self._young is None:
+                # The samples since the first trip are not followed yet either.
+                self._follow_lag += len(self._fitter) - ev.trip_len
             self._begin_event(as_of, result, as_of, by_fit=True)
             return
         shown = self._fit_until_trip(ev, b) if late else fit  # what the record says
-        if outcome == NO_STEP:
-            self._end_event(ev, "dismissed", shown, result, as_of)
+        conflict = outcome == STEP and (fit.delta * ev.trial.sign <= 0.0
+                                        or abs(fit.delta) < 0.5 * self.settings.min_shift_sigma * b.sigma)
+        if outcome == NO_STEP or conflict:
+            # (conflict: the trial, on clipped, robust inputs, says step, but the least-squares
+            # fit of the samples shows less than half of min_shift, or the other way; heavy
+            # tails can do that.  No step is confirmed on conflicting evidence: the event
+            # ends undecided and the stream watches on from its level, as after a dismissal.)
+            self._end_event(ev, "undecided" if conflict else "dismissed", shown, result, as_of)
             self._state = WATCHING
             if self._young is None:
                 self._follow_catch_up(ev, b)
@@ -1426,12 +1459,6 @@ class StreamEngine:
             assert self._test is not None
             self._test.reset()
             return
-        if outcome == STEP and (fit.delta * ev.trial.sign <= 0.0
-                                or abs(fit.delta) < 0.5 * self.settings.min_shift_sigma * b.sigma):
-            # The trial (on clipped, robust inputs) says step, but the least-squares fit of
-            # the samples shows less than half of min_shift, or the other way: heavy tails
-            # can do that.  No step is confirmed on conflicting evidence.
-            outcome = NO_DECISION
         if outcome == STEP:
             phase = "confirmed"
             last = self._last_step
@@ -1492,6 +1519,7 @@ class StreamEngine:
         end = max(start, vals.shape[0] - follow_delay(b.phi, self.settings.window_samples))
         self._follow = float(follow_path(vals[start:end] - b.level, self._follow, 1.0 / follow_samples(b.phi))[-1])
         self._follow_lag = vals.shape[0] - end
+        self._center = self._follow
         self._prev_r -= self._follow
 
     def _fit_until_trip(self, ev: OpenEvent, b: Baseline) -> StepFit:
@@ -1535,6 +1563,8 @@ class StreamEngine:
         self._watch_kept = 0
         self._follow = 0.0
         self._follow_lag = 0
+        self._center = 0.0
+        self._next_center = FOLLOW_RECENTER
         old = self._young
         if self._provisional:
             ys = SelfStart(None) if old is None else old.carry_over()
@@ -1550,7 +1580,7 @@ class StreamEngine:
             ys.add(v)
         self._young = ys
         if self._baseline is not None:
-            self._baseline = replace(b, level=ys.mean, n_level=ys.n if ys.n < b.n else 0)
+            self._baseline = replace(b, level=ys.mean, n_level=ys.level_n() if ys.level_n() < b.n else 0)
             self._prev_r = float(vals[-1] - ys.mean)
         # Self-starting inputs need no allowance for the young level: the test is
         # designed for the plant's ARL and starts afresh.
@@ -1583,6 +1613,8 @@ class StreamEngine:
             "prev_r": self._prev_r,
             "follow": self._follow,
             "follow_lag": self._follow_lag,
+            "center": self._center,
+            "next_center": self._next_center,
             "pending": None if self._pending is None else list(self._pending),
             "prev_out": self._prev_out,
             "event": None if ev is None else ev.get_state(),
@@ -1663,8 +1695,6 @@ class StreamEngine:
             field_name = "follow"
             # Snapshots before the follower have none: the level was the baseline's.
             self._follow = _finite_number(state.get("follow", 0.0), "follow")
-            field_name = "follow_lag"
-            self._follow_lag = _count(state.get("follow_lag", 0), "follow_lag")
             field_name = "pending"
             p = state["pending"]
             if p is not None:
@@ -1698,6 +1728,18 @@ class StreamEngine:
             self._watch_kept = _count(state["watch_kept"], "watch_kept")
             self._next_refine = _count(state["next_refine"], "next_refine")
             self._refine_block = _count(state["refine_block"], "refine_block")
+            field_name = "follow_lag"
+            self._follow_lag = _count(state.get("follow_lag", 0), "follow_lag")
+            # Not yet followed: samples of the window, or of an open event (up to its trip).
+            room = self._event.trip_len if self._event is not None else len(self._window)
+            if self._follow_lag > room or (self._follow_lag and self._young is not None):
+                raise ValueError(f"follow_lag: {self._follow_lag} samples not yet followed, but there "
+                                 f"are {room}" + (" and the level is young" if self._young is not None else ""))
+            field_name = "center"
+            self._center = _finite_number(state.get("center", self._follow), "center")
+            field_name = "next_center"
+            self._next_center = _count(state.get("next_center", self._watch_kept + FOLLOW_RECENTER),
+                                       "next_center")
             field_name = "last_time"
             lt = state["last_time"]
             self._last_time = -math.inf if lt is None else _finite_number(lt, "last_time")
@@ -1712,6 +1754,11 @@ class StreamEngine:
             field_name = "last_shift_at"
             ls = state["last_shift_at"]
             self.last_shift_at = None if ls is None else _finite_number(ls, "last_shift_at")
+            if ("follow" not in state and self._baseline is not None and self._young is None
+                    and self._test is not None):
+                # A snapshot from before the follower: its test was designed for a fixed level.
+                field_name = "test"
+                self._design_test()
         except ValueError as exc:
             self._reset()
             if str(exc).startswith(field_name.split(".")[0]):
@@ -1909,8 +1956,9 @@ def follow_samples(phi: float) -> float:
 
 
 def _follow_se(phi: float) -> float:
-    """Standard error of the followed level in sigmas (iid noise): sqrt(lam / (2 - lam))."""
-    return math.sqrt(1.0 / (2.0 * follow_samples(phi) - 1.0))
+    """Standard error of the followed level in sigmas: sqrt(lam / (2 - lam)) for iid noise,
+    times sqrt((1 + phi) / (1 - phi)) for AR(1) noise (the long-run variance)."""
+    return math.sqrt(_long_run(phi) / (2.0 * follow_samples(phi) - 1.0))
 
 
 def follow_delay(phi: float, window: int) -> int:
@@ -1926,9 +1974,10 @@ def follow_arl_factor(phi: float) -> float:
 
     Measured, not derived: on iid noise the follower (FOLLOW_SAMPLES 110, FOLLOW_DELAY
     40) raised the in-control detections of the default test by 1.85 times at
-    false_alarm_every 7d (10 M samples), on AR(1) noise of phi 0.6 by 1.74 and of phi
-    0.8 not at all.  The factor falls linearly from 2.4 at phi 0 to 1 at phi 0.8, which
-    brought the rates back to 1.03 (iid) and 0.85 (phi 0.6) of nominal at 7d.
+    false_alarm_every 7d (10 M samples), on AR(1) noise of phi 0.6 by 1.74.  The
+    factor is 1 + 1.4 / ((1 + phi) / (1 - phi)): 2.4 at phi 0, 1.35 at phi 0.6, and 1
+    above FOLLOW_PHI_MAX, where nothing is followed.  bench_events.py measured the
+    rates with it at 0.6 to 1.5 of nominal on every noise kind at 7d.
     tests/bench/bench_events.py measures the resulting rates on every noise kind.
     """
     if phi > FOLLOW_PHI_MAX:

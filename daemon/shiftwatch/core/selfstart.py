@@ -160,6 +160,13 @@ class SelfStart:
             s *= math.sqrt(self._long_run_factor(raw, PHI_MARGIN))
         return t_to_normal(r / (s * math.sqrt(1.0 + 1.0 / n)), df)
 
+    def level_n(self) -> int:
+        """How many samples the level is worth: n for a plain running mean, 1 / its
+        variance factor once it follows (an exponentially weighted mean)."""
+        if self.follow and self.vm > 0.0:
+            return max(1, min(self.n, int(1.0 / self.vm)))
+        return self.n
+
     def phi_estimate(self) -> float:
         """The lag-1 autocorrelation of the regime's samples when significant, else 0
         (the known phi when sigma is known)."""
@@ -343,10 +350,11 @@ def split_evidence(values: FloatArray, min_segment: int = 3, phi_margin: float =
     changepoint model for statistical process control", J. Quality Technology
     35:355-366), with a bound in place of simulated thresholds.
 
-    Autocorrelation is estimated from the residuals of the two-segment fit, so the
-    step itself does not read as autocorrelation, corrected for its small-sample
-    bias, and the t statistic is divided by the square root of the long-run
-    variance factor at the estimate plus ``phi_margin`` standard errors.
+    Autocorrelation is estimated from the samples before the split (the split is
+    chosen to explain as much as it can, so residuals around both fitted levels
+    would understate a slow wander's), corrected for its small-sample bias, and the
+    t statistic is divided by the square root of the long-run variance factor at
+    the estimate plus ``phi_margin`` standard errors.
     """
     n = int(values.shape[0])
     m = max(int(min_segment), 2)
