@@ -115,7 +115,13 @@ def test_shard_killed_and_restarted_on_an_empty_state_dir(tmp_path: Path, cluste
         assert not errors, errors
         counts = r.settle()
         tally = r.tally(counts, time.monotonic() - t0)
+        # Streams the dead shard wrote moments before are loaded once cluster.redelivery_wait
+        # has passed (deferred): the line can come after the last samples.
+        deadline = time.monotonic() + 30.0
         log = r.shard(1).log()
+        while "from the cluster" not in log and time.monotonic() < deadline:
+            time.sleep(0.5)
+            log = r.shard(1).log()
     finally:
         r.close()
     print(tally.line())
