@@ -32,3 +32,45 @@ def cli(tmp_path: Path):
                               text=True, timeout=timeout, cwd=tmp_path, env=env)
 
     return run
+
+
+CHROMIUM = "/usr/bin/chromium"
+CHROMEDRIVER = "/usr/bin/chromedriver"
+CHROMIUM_SETUP_HINT = ("the README's test command (sh tests/install-and-test.sh) installs them: "
+                       "apt-get update && apt-get install -y chromium chromium-driver")
+
+
+@pytest.fixture
+def chromium(tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
+    """Start headless Chromium under Selenium: ``chromium(flags, logging_prefs)`` returns a
+    driver (its profile fresh in tmp_path; Selenium Manager fetches nothing); every driver
+    started is quit at teardown.  Missing Chromium or ChromeDriver fails the test."""
+    drivers = []
+
+    def start(flags: tuple[str, ...], logging_prefs: dict[str, str]):
+        missing = [p for p in (CHROMIUM, CHROMEDRIVER) if not os.access(p, os.X_OK)]
+        if missing:
+            pytest.fail(f"cannot run the browser test: {', '.join(missing)} not installed; "
+                        f"{CHROMIUM_SETUP_HINT}")
+        try:
+            from selenium import webdriver
+            from selenium.webdriver.chrome.options import Options
+            from selenium.webdriver.chrome.service import Service
+        except ImportError as exc:
+            pytest.fail(f"cannot run the browser test: {exc}; pip install -e '.[test]' installs selenium")
+        monkeypatch.setenv("SE_OFFLINE", "true")  # Selenium Manager must fetch nothing
+        opts = Options()
+        opts.binary_location = CHROMIUM
+        for flag in flags:
+            opts.add_argument(flag)
+        opts.add_argument(f"--user-data-dir={tmp_path / f'chromium-profile-{len(drivers)}'}")
+        opts.set_capability("goog:loggingPrefs", logging_prefs)
+        service = Service(CHROMEDRIVER, log_output=str(tmp_path / f"chromedriver-{len(drivers)}.log"))
+        driver = webdriver.Chrome(service=service, options=opts)
+        driver.set_page_load_timeout(60)
+        drivers.append(driver)
+        return driver
+
+    yield start
+    for d in drivers:
+        d.quit()

@@ -12,7 +12,6 @@ Screenshots of both pages go to tests/artifacts/ (git-ignored).
 from __future__ import annotations
 
 import json
-import os
 import re
 import signal
 import subprocess
@@ -33,10 +32,6 @@ from shiftwatch.status import STATUS_FIELDS, StatusBoard, format_table
 
 T0 = 1_790_000_000.0  # 2026-09-21T14:13:20Z
 ARTIFACTS = Path(__file__).resolve().parents[1] / "artifacts"
-CHROMIUM = "/usr/bin/chromium"
-CHROMEDRIVER = "/usr/bin/chromedriver"
-SETUP_HINT = ("the README's test command (sh tests/install-and-test.sh) installs them: "
-              "apt-get update && apt-get install -y chromium chromium-driver")
 # As tests/report/test_report_browser.py: headless Chromium run as root with nothing to
 # fetch (common practice for Chromium in containers), every name but 127.0.0.1 unresolvable.
 FLAGS = ("--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
@@ -308,32 +303,10 @@ def test_status_names_the_address_when_no_daemon_answers(tmp_path: Path, shiftwa
 
 # ---------------------------------------------------------------- the browser
 @pytest.fixture
-def browser(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Iterator[Any]:
-    missing = [p for p in (CHROMIUM, CHROMEDRIVER) if not os.access(p, os.X_OK)]
-    if missing:
-        pytest.fail(f"cannot run the browser test: {', '.join(missing)} not installed; {SETUP_HINT}")
-    try:
-        from selenium import webdriver
-        from selenium.webdriver.chrome.options import Options
-        from selenium.webdriver.chrome.service import Service
-    except ImportError as exc:
-        pytest.fail(f"cannot run the browser test: {exc}; pip install -e '.[test]' installs selenium")
-    monkeypatch.setenv("SE_OFFLINE", "true")  # Selenium Manager must fetch nothing
-    opts = Options()
-    opts.binary_location = CHROMIUM
-    for flag in FLAGS:
-        opts.add_argument(flag)
-    opts.add_argument(f"--user-data-dir={tmp_path / 'chromium-profile'}")
+def browser(chromium: Any) -> Any:
     # The browser's console and its network log (every request it made, from the DevTools
     # protocol's Network.requestWillBeSent events).
-    opts.set_capability("goog:loggingPrefs", {"browser": "ALL", "performance": "ALL"})
-    service = Service(CHROMEDRIVER, log_output=str(tmp_path / "chromedriver.log"))
-    driver = webdriver.Chrome(service=service, options=opts)
-    driver.set_page_load_timeout(60)
-    try:
-        yield driver
-    finally:
-        driver.quit()
+    return chromium(FLAGS, {"browser": "ALL", "performance": "ALL"})
 
 
 def requested_urls(browser: Any) -> list[str]:

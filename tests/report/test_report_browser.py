@@ -15,8 +15,6 @@ fails; it never skips.
 from __future__ import annotations
 
 import json
-import os
-from collections.abc import Iterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -26,12 +24,8 @@ import pytest
 if TYPE_CHECKING:
     from conftest import PlantCsv
 
-CHROMIUM = "/usr/bin/chromium"
-CHROMEDRIVER = "/usr/bin/chromedriver"
 ARTIFACTS = Path(__file__).resolve().parents[1] / "artifacts"
 SCREENSHOT = ARTIFACTS / "report.png"
-SETUP_HINT = ("the README's test command (sh tests/install-and-test.sh) installs them: "
-              "apt-get update && apt-get install -y chromium chromium-driver")
 
 # Flags for a headless Chromium run as root with nothing to fetch (common practice
 # for Chromium in containers); the profile directory is fresh per test.
@@ -52,30 +46,9 @@ streams:
 
 
 @pytest.fixture
-def browser(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Iterator[Any]:
-    missing = [p for p in (CHROMIUM, CHROMEDRIVER) if not os.access(p, os.X_OK)]
-    if missing:
-        pytest.fail(f"cannot run the browser test: {', '.join(missing)} not installed; {SETUP_HINT}")
-    try:
-        from selenium import webdriver
-        from selenium.webdriver.chrome.options import Options
-        from selenium.webdriver.chrome.service import Service
-    except ImportError as exc:
-        pytest.fail(f"cannot run the browser test: {exc}; pip install -e '.[test]' installs selenium")
-    monkeypatch.setenv("SE_OFFLINE", "true")  # Selenium Manager must fetch nothing
-    opts = Options()
-    opts.binary_location = CHROMIUM
-    for flag in FLAGS:
-        opts.add_argument(flag)
-    opts.add_argument(f"--user-data-dir={tmp_path / 'chromium-profile'}")
-    opts.set_capability("goog:loggingPrefs", {"browser": "ALL"})
-    service = Service(CHROMEDRIVER, log_output=str(tmp_path / "chromedriver.log"))
-    driver = webdriver.Chrome(service=service, options=opts)
-    driver.set_page_load_timeout(60)
-    try:
-        yield driver
-    finally:
-        driver.quit()
+def browser(chromium: Any) -> Any:
+    # The browser's console.
+    return chromium(FLAGS, {"browser": "ALL"})
 
 
 def test_report_renders_in_headless_chromium(browser: Any, cli: Any, plant_csv: PlantCsv,
