@@ -185,11 +185,15 @@ class ShardRun:
     def repartition(self, parts: int) -> None:
         """Change the cluster's mapping to ``parts`` partitions (every server reloads its
         configuration) and the daemons' shard.of for the shards started after it."""
+        self.write_config(parts)
+        self.remap(parts)
+
+    def remap(self, parts: int) -> None:
+        """Only the cluster's mapping: every server writes ``parts`` partitions and reloads."""
         for s in self.cluster.servers:
             s.write_config([o.cluster_port for o in self.cluster.servers if o is not s], parts)
             if s.proc is not None:
                 s.proc.send_signal(signal.SIGHUP)
-        self.write_config(parts)
 
     def shard(self, k: int) -> Shard:
         if k not in self.shards:

@@ -165,9 +165,14 @@ def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, clus
     errors: list[str] = []
 
     def grow() -> None:
+        # The README's order: the new shard first (it subscribes to a partition that has
+        # no traffic yet), then the mapping on every server.
         try:
-            r.repartition(4)
+            r.write_config(4)
             r.shard(3).start()
+            if not r.online(3):
+                raise RuntimeError("shard 3 did not say online")
+            r.remap(4)
         except RuntimeError as exc:
             errors.append(str(exc))
         grown.set()
@@ -192,11 +197,14 @@ def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, clus
     # (part of the saved state) include the samples taken before the change, at 300.
     took = [v for (n, _lab), v in new_shard.items() if n == "shiftwatch_samples_total"]
     assert took and min(took) > 300, took
-    # A live change of the mapping moves streams while the old owners still hold some of
-    # their samples; NATS sends a lost or refused delivery again only after its MQTT
-    # ack_wait, after newer samples, so a few can arrive out of order and be set aside.
-    # How many is a known gap of a live reshard, open in issue 15 (measured over four runs:
-    # 163 to 1,074 samples lost in all, up to 545 of one stream's 1,000; in one run 2 steps
-    # were confirmed under two ids): the tally is printed, and the README's Running shards
-    # says so.  What has held in every run: no step is missed.
+    # With the README's order the new partition has its subscriber before any topic maps
+    # to it, and a moving stream's new owner waits cluster.redelivery_wait when the old
+    # owner wrote it lately.  What that does not cover: an old owner whose deliveries the
+    # cluster held back (NATS's MQTT side sometimes stalls a QoS 1 session for seconds
+    # under a burst, measured with plain subscribers too) gets the stream's samples from
+    # before the change after its new owner has begun; they are set aside, counted as
+    # stream_moved or out_of_order.  Measured over seven runs: 0 samples lost in six, in
+    # one 212 (106 of each of two streams), all from before the change (the steps are
+    # after it).  The tally is printed; what must hold: no step missed, none under two ids.
     assert tally.shifts_missed == 0, tally.line()
+    assert tally.shifts_with_two_ids == 0, tally.line()
