@@ -95,3 +95,24 @@ def test_watching_one_sample_at_a_time_keeps_the_state_of_batches(test: str) -> 
     assert small.statistic == pytest.approx(big.statistic, rel=1e-9, abs=1e-12)
     assert small.samples_total == big.samples_total == n
     assert small.rejected_total == big.rejected_total
+
+
+def test_the_sampling_interval_does_not_depend_on_where_a_batch_ends() -> None:
+    # Found when the design ARL began to follow the interval more closely: a block
+    # whose mean step lay within 20% of the interval was taken whole, so a 21 s gap
+    # (samples rejected for a clock jump) counted in a long block and not in a short
+    # one, and one stream read 1.031 s or 1.0 s by batching.  Gaps of 10 intervals or
+    # more are left out step by step now, in blocks as one by one.
+    rng = np.random.default_rng(12)
+    t = np.concatenate((np.arange(500.0), 520.0 + np.arange(300.0)))
+    x = 50.0 + 0.2 * rng.standard_normal(t.size)
+    b = estimate_baseline(t[:200], x[:200])
+    whole, pieces, single = BaselineSums(), BaselineSums(), BaselineSums()
+    whole.add(b, x[200:], t[200:])
+    for idx in np.array_split(np.arange(200, t.size), 7):
+        pieces.add(b, x[idx], t[idx])
+    for i in range(200, t.size):
+        single.add_one(b, float(x[i]), float(t[i]))
+    assert whole.ndt == pieces.ndt == single.ndt == t.size - 200 - 2  # every step but the gap
+    assert whole.sdt == pytest.approx(single.sdt) and pieces.sdt == pytest.approx(single.sdt)
+    assert whole.sdt / whole.ndt == pytest.approx(1.0)
