@@ -392,12 +392,21 @@ class BaselineSums:
         # where a batch ends.  (A block's mean step within 20% of the interval was once
         # taken whole: a 21 s gap in a long block counted, in a short one it did not, and
         # the design ARL, which follows the interval, differed by batching.)
-        dt = np.diff(times)
+        gap = 10.0 * b.interval
         if self.prev_t is not None:
-            dt = np.concatenate(([times[0] - self.prev_t], dt))
-        ok = dt[(dt > 0) & (dt < 10.0 * b.interval)]
-        self.sdt += float(ok.sum())
-        self.ndt += int(ok.shape[0])
+            d0 = float(times[0]) - self.prev_t
+            if 0.0 < d0 < gap:
+                self.sdt += d0
+                self.ndt += 1
+        if m > 1:
+            dt = times[1:] - times[:-1]
+            if 0.0 < float(dt.min()) and float(dt.max()) < gap:
+                self.sdt += float(times[-1] - times[0])
+                self.ndt += m - 1
+            else:
+                ok = dt[(dt > 0) & (dt < gap)]
+                self.sdt += float(ok.sum())
+                self.ndt += int(ok.shape[0])
         self.n += m
         self.prev_u = float(u[-1])
         self.prev_t = float(times[-1])
