@@ -397,17 +397,23 @@ def test_kendall_bias_correction_centres_the_autocorrelation() -> None:
     assert np.mean(raw) < 0.6 - 0.05
 
 
+def _t3_spikes(state: int, n: int) -> np.ndarray:
+    """bench_events' heavy-tailed kind: unit-variance t(3) noise with 0.5% spikes of 6 sigma."""
+    rng = np.random.default_rng(state)
+    x = rng.standard_t(3, n) / math.sqrt(3.0)
+    spikes = rng.random(n) < 0.005
+    x[spikes] += rng.choice([-6.0, 6.0], size=int(spikes.sum()))
+    return x
+
+
 def test_no_step_below_min_shift_is_confirmed_on_heavy_tailed_noise() -> None:
     # Measured (bench_events, t(3) noise with 0.5% spikes of 6 sigma, false_alarm_every
     # 1h): an event was confirmed whose least-squares step was -0.23 sigma, because the
     # trial's clipped inputs said "step" where the fit of the samples did not.  Such an
     # event now ends undecided.  The same 500,000 samples: nothing below min_shift
     # (1 sigma) is confirmed, and no confirmed step points against its detection.
-    rng = np.random.default_rng(10293)
     n = 500_000
-    x = rng.standard_t(3, n) / math.sqrt(3.0)
-    spikes = rng.random(n) < 0.005
-    x[spikes] += rng.choice([-6.0, 6.0], size=int(spikes.sum()))
+    x = _t3_spikes(10293, n)
     t = T0 + np.arange(float(n))
     eng = StreamEngine("s", DetectionSettings(false_alarm_every=3600.0))
     recs = []
@@ -428,12 +434,7 @@ def test_heavy_tailed_noise_alarms_at_the_chosen_rate_whatever_its_warmup_showed
     # line is the same noise (t(6)) on either scale and a clipped stream's test is
     # designed for it.  The target is the issue's (0.5 to 1.5 of nominal); nominal here
     # is 300,000 / 3,600 = 83 detections.
-    rng = np.random.default_rng(1001)
-    n = 1_000_000
-    x = rng.standard_t(3, n) / math.sqrt(3.0)
-    spikes = rng.random(n) < 0.005
-    x[spikes] += rng.choice([-6.0, 6.0], size=int(spikes.sum()))
-    x, t = x[:300_000], T0 + np.arange(300_000.0)
+    x, t = _t3_spikes(1001, 1_000_000)[:300_000], T0 + np.arange(300_000.0)
     eng = StreamEngine("s", DetectionSettings(false_alarm_every=3600.0))
     det = 0
     for a in range(0, x.size, 1024):
