@@ -15,6 +15,7 @@ import numpy as np
 import pytest
 from statsmodels.tsa.stattools import acf
 
+from shiftwatch.core.baseline import estimate_baseline
 from shiftwatch.core.design import bank_run_lengths, sensitivity
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.multicusum import MultiCusumTest
@@ -220,3 +221,16 @@ def test_the_stated_delay_holds_in_the_real_engine(phi: float, within: float) ->
     # starts to be followed (measured: 54.5 against 51 stated, 7% longer).
     assert med <= s.median_delay_samples * 1.10, (med, s.median_delay_samples)
     assert med >= 0.7 * s.median_delay_samples, (med, s.median_delay_samples)
+
+
+def test_heavy_tailed_is_what_the_engine_would_choose() -> None:
+    # Found in review: measure_noise kept its own heavy-tail line (3.1% at clip 3) when
+    # the engine's changed, so on t(6) noise it said "not heavy-tailed" where the engine
+    # clips at 2.  It now asks the engine's own estimator at the engine's clip.
+    rng = np.random.default_rng(21)
+    t = np.arange(40_000.0)
+    for x in (rng.standard_normal(40_000), rng.standard_t(3, 40_000), rng.laplace(size=40_000),
+              rng.standard_t(6, 40_000)):
+        m = measure_noise(t, 50.0 + x)
+        engine = estimate_baseline(t, 50.0 + x, clip=DetectionSettings().clip_sigma)
+        assert m.heavy_tailed == (engine.clip < DetectionSettings().clip_sigma)

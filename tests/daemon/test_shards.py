@@ -173,11 +173,16 @@ def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, clus
             if not r.online(3):
                 raise RuntimeError("shard 3 did not say online")
             r.remap(4)
+            remapped_at.append(published[-1])
         except RuntimeError as exc:
             errors.append(str(exc))
         grown.set()
 
+    published: list[int] = [0]
+    remapped_at: list[int] = []
+
     def during(j: int) -> None:
+        published[-1] = j
         if j == 300:
             threading.Thread(target=grow, daemon=True).start()
 
@@ -186,6 +191,8 @@ def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, clus
         r.publish(during)
         assert grown.wait(90)
         assert not errors, errors
+        # The mapping changed while samples still flowed (not after the last of them).
+        assert remapped_at and remapped_at[0] < plan.samples - 100, remapped_at
         counts = r.settle(120)
         tally = r.tally(counts, time.monotonic() - t0)
         new_shard = scrape(r.shard(3).port)

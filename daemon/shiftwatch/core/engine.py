@@ -43,6 +43,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from shiftwatch.core.baseline import (
+    HEAVY_TAIL_CLIP,
     Baseline,
     BaselineSums,
     estimate_baseline,
@@ -481,9 +482,17 @@ FOLLOW_MARGIN = 2.0
 #: of nominal, t(4) 0.55, Laplace 0.37; tests/bench/bench_events.py measures t(3) with
 #: spikes at 1h and 7d with it.
 HEAVY_ARL_FACTOR = 0.45
+#: The shortest in-control ARL a test is designed for (DetectionSettings.arl0's floor).
+MIN_DESIGN_ARL = 50.0
+#: Which design rules a saved test was made by: a snapshot made under other rules (none
+#: recorded: before the ARL-dependent follower factor and HEAVY_ARL_FACTOR) has its test
+#: designed again on load, keeping its evidence, as a fresh stream's would be.
+DESIGN_RULES = 2
 #: The follower's design factor for iid noise, ``exp(a + b (log10 arl0 - u0))``
 #: (see :func:`follow_arl_factor`): (a, b, u0).
 FOLLOW_ARL_FIT = (0.157, 0.231, 2.78)
+#: ... measured from 600 to 604,800 samples (log10), held at its ends beyond.
+FOLLOW_ARL_RANGE = (2.78, 5.78)
 
 #: The baseline is refined at least every REFINE_BLOCK_MAX samples (more often while
 #: it is young).  Each refinement ends a vectorised stretch of a batch, so a smaller
@@ -841,9 +850,10 @@ class StreamEngine:
         # longer ARL by the factor that keeps the measured false-alarm rate at the
         # plant's (see follow_arl_factor).
         arl0 *= follow_arl_factor(b.phi, arl0)
-        if b.clip < self.settings.clip_sigma:
-            # Heavy-tailed noise, clipped at 2 sigma: see HEAVY_ARL_FACTOR.
-            arl0 *= HEAVY_ARL_FACTOR
+        if b.clip <= HEAVY_TAIL_CLIP < self.settings.clip_sigma:
+            # Heavy-tailed noise, clipped at 2 sigma: see HEAVY_ARL_FACTOR (never below the
+            # shortest ARL a test is designed for: one reading a minute at 1h is 60).
+            arl0 = max(arl0 * HEAVY_ARL_FACTOR, MIN_DESIGN_ARL)
         self._test = make_test(self.settings, arl0, shift_z, float(b.n), n_level=n_level)
         if old is not None and old.name == self._test.name:
             try:
@@ -1054,7 +1064,10 @@ class StreamEngine:
                 phi, vf = ys.phi_estimate(), ys.variance_factor(2.0)
             else:
                 # The samples' own autocorrelation, around the two levels of the split.
-                n = split.split_at  # the phi estimate rests on the samples before the split
+                # The phi estimate rests on the samples before the split, or on both
+                # segments pooled, where that is less (then it is 2 standard errors high
+                # already, and the allowance below adds 2 more: on the safe side).
+                n = split.split_at
                 phi = split.phi if n >= 20 and abs(split.phi) >= 2.0 / math.sqrt(n) else 0.0
                 up = min(0.95, max(split.phi, 0.0) + 2.0 / math.sqrt(n))
                 vf = 1.0 if phi != 0.0 else (1.0 + up) / (1.0 - up)
@@ -1626,7 +1639,7 @@ class StreamEngine:
             "baseline": None if self._baseline is None else self._baseline.to_dict(),
             "test": None if self._test is None else {
                 "name": self._test.name, "arl0": self._test_arl0, "shift_z": self._test_shift_z,
-                "n_ref": self._test_n_ref, "n_level": self._test_n_level,
+                "n_ref": self._test_n_ref, "n_level": self._test_n_level, "rules": DESIGN_RULES,
                 "state": self._test.get_state()},
             "prev_r": self._prev_r,
             "follow": self._follow,
@@ -1772,9 +1785,11 @@ class StreamEngine:
             field_name = "last_shift_at"
             ls = state["last_shift_at"]
             self.last_shift_at = None if ls is None else _finite_number(ls, "last_shift_at")
-            if ("follow" not in state and self._baseline is not None and self._young is None
-                    and self._test is not None):
-                # A snapshot from before the follower: its test was designed for a fixed level.
+            if (self._baseline is not None and self._young is None and self._test is not None
+                    and state["test"].get("rules") != DESIGN_RULES):
+                # A snapshot made under other design rules (before the follower, its test was
+                # designed for a fixed level; before DESIGN_RULES 2, with one follower factor
+                # for every ARL): the test is designed as this version designs it.
                 field_name = "test"
                 self._design_test()
         except ValueError as exc:
@@ -1996,12 +2011,13 @@ def follow_arl_factor(phi: float, arl0: float) -> float:
     that grows with ``arl0`` (the reference's own wander matters more the longer the
     test's sums run): 1.17 at 600 samples, 1.29 at 3,600, 1.69 at 28,800, 1.86 at 86,400
     and 2.34 at 604,800 (0.6 to 16 M samples each, 2026-12-03).  ``log`` of it is close
-    to linear in ``log10 arl0`` (FOLLOW_ARL_FIT, within 8% of every point), and the
+    to linear in ``log10 arl0`` (FOLLOW_ARL_FIT, within 9% of every point), and the
     detections fall about in proportion to the design ARL, so the iid factor is that
-    fit.  Autocorrelated noise needs less (its steps take longer to tell, the follower is
-    slower): the extra over 1 is divided by the long-run variance factor (at 7d, phi 0.6,
-    1.74 was measured where iid gave 1.85), and nothing is followed above
-    FOLLOW_PHI_MAX.  tests/bench/bench_events.py measures the resulting rates on every
+    fit, held at its ends beyond the measured range.  Autocorrelated noise needs less (its
+    steps take longer to tell, the follower is slower): the extra over 1 is divided by the
+    square root of the long-run variance factor (chosen by measurement: with the factor
+    itself, AR(1) phi 0.6 ran at 1.51 of nominal at 7d, with its root 1.26, and 0.94 to
+    1.08 at 1h and 8h), and nothing is followed above FOLLOW_PHI_MAX.  tests/bench/bench_events.py measures the resulting rates on every
     noise kind at 7d and 1h.  (A single factor of 2.4 for every ARL gave 0.56 of the
     nominal rate at 1h on iid noise.)
 
@@ -2011,7 +2027,8 @@ def follow_arl_factor(phi: float, arl0: float) -> float:
     if phi > FOLLOW_PHI_MAX:
         return 1.0
     a, b, u0 = FOLLOW_ARL_FIT
-    iid = math.exp(a + b * (math.log10(max(arl0, 1.0)) - u0))
+    u = min(max(math.log10(max(arl0, 1.0)), FOLLOW_ARL_RANGE[0]), FOLLOW_ARL_RANGE[1])
+    iid = math.exp(a + b * (u - u0))
     return 1.0 + max(iid - 1.0, 0.0) / math.sqrt(_long_run(phi))
 
 

@@ -99,8 +99,10 @@ class Noise:
     heavy_tailed: bool
 
 
-def measure_noise(times: FloatArray, values: FloatArray, *, block: int = BLOCK) -> Noise:
-    """Measure a stream's noise from its history (see the module notes, rule 1).
+def measure_noise(times: FloatArray, values: FloatArray, *, block: int = BLOCK,
+                  clip: float = DetectionSettings.clip_sigma) -> Noise:
+    """Measure a stream's noise from its history (see the module notes, rule 1), each
+    block estimated as the engine estimates a baseline at ``clip`` (its configured clip).
 
     Non-finite readings are left out; readings are taken in time order.
 
@@ -131,7 +133,7 @@ def measure_noise(times: FloatArray, values: FloatArray, *, block: int = BLOCK) 
     t, v = t[order], v[order]
     nb = max(1, min(BLOCKS, n // block))
     edges = np.linspace(0, n, nb + 1).astype(int)
-    parts = [estimate_baseline(t[a:b], v[a:b]) for a, b in pairwise(edges)]
+    parts = [estimate_baseline(t[a:b], v[a:b], clip=clip) for a, b in pairwise(edges)]
 
     def med(xs: list[float]) -> float:
         return float(np.median(np.asarray(xs)))
@@ -146,7 +148,8 @@ def measure_noise(times: FloatArray, values: FloatArray, *, block: int = BLOCK) 
     return Noise(n=n, blocks=nb, level=med([p.level for p in parts]), sigma=sigma,
                  innovation_sigma=innov, phi=phi, interval=med([p.interval for p in parts]),
                  quantum=med([p.quantum for p in parts]),
-                 heavy_tailed=med([p.tail_fraction for p in parts]) > 0.031)
+                 # heavy-tailed when most blocks were clipped lower, as the engine would
+                 heavy_tailed=sum(p.clip < clip for p in parts) * 2 > len(parts))
 
 
 def budget_false_alarm_every(streams_in_plant: int, plant_false_alarms_per_day: float) -> float:
