@@ -236,9 +236,9 @@ def choose_clip(tail_fraction: float, clip: float, current: float | None = None)
     costs some speed on large steps, so it is used only where heavy tails would
     otherwise raise the false-alarm rate.
 
-    >>> choose_clip(0.0126, 4.0), choose_clip(0.032, 4.0), choose_clip(0.024, 4.0, 2.0)
+    >>> choose_clip(0.0126, 4.0), choose_clip(0.032, 4.0), choose_clip(0.020, 4.0, 2.0)
     (4.0, 2.0, 4.0)
-    >>> choose_clip(0.026, 4.0, 4.0), choose_clip(0.028, 4.0, 2.0)   # within the band: kept
+    >>> choose_clip(0.023, 4.0, 4.0), choose_clip(0.024, 4.0, 2.0)   # within the band: kept
     (4.0, 2.0)
     """
     if current is None:
