@@ -374,6 +374,26 @@ def test_split_evidence_matches_a_two_sample_t_test() -> None:
     assert ev.p_value == pytest.approx(min(1.0, splits * 2 * stats.t.sf(ev.t, 38)), rel=0.05)
 
 
+def test_split_evidence_with_a_bound_to_beat_answers_the_same() -> None:
+    # p_below only saves work: None only where the full evidence's bound is not below
+    # it, the same evidence otherwise (random series with and without steps).
+    rng = np.random.default_rng(43)
+    for _ in range(300):
+        n = int(rng.integers(20, 200))
+        x = rng.standard_normal(n)
+        if rng.random() < 0.5:
+            x[int(rng.integers(5, n - 5)):] += rng.uniform(0.5, 4.0)
+        full = split_evidence(x)
+        for p_below in (1e-6, 1e-3, 0.05):
+            quick = split_evidence(x, p_below=p_below)
+            if quick is None:
+                assert full is None or full.p_value >= p_below
+            else:
+                assert quick == full
+            if full is not None and full.p_value < p_below:
+                assert quick == full
+
+
 def test_kendall_bias_correction_centres_the_autocorrelation() -> None:
     # Kendall (1954): the lag-1 sample autocorrelation of n AR(1) samples around
     # their own mean falls short of phi by about (1 + 3 phi) / n.  Over 4,000 series

@@ -1020,7 +1020,8 @@ class StreamEngine:
         tripped = test.update_one(-clip if z < -clip else (clip if z > clip else z))
         if (not tripped and self._baseline is None and ys.n >= YOUNG_SPLIT_FROM
                 and (abs(z) >= YOUNG_Z_HOLD or test.statistic >= YOUNG_SPLIT_SCREEN * test.threshold)):
-            ev = split_evidence(self._window.values, phi_margin=YOUNG_SPLIT_MARGIN)
+            ev = split_evidence(self._window.values, phi_margin=YOUNG_SPLIT_MARGIN,
+                                p_below=YOUNG_SPLIT_SHARE / self._test_arl0 if self._test_arl0 > 0.0 else 1.0)
             if (ev is not None and ev.split_at >= YOUNG_SPLIT_BEFORE and ev.phi < YOUNG_SPLIT_GATE / math.sqrt(ev.split_at)
                     and ev.p_value * self._test_arl0 < YOUNG_SPLIT_SHARE):
                 self._split = ev

@@ -341,7 +341,8 @@ def student_t_tail(t: float, df: float) -> float:
     return 0.5 * math.erfc(t_to_normal(t, df) / math.sqrt(2.0))
 
 
-def split_evidence(values: FloatArray, min_segment: int = 3, phi_margin: float = 0.0) -> SplitEvidence | None:
+def split_evidence(values: FloatArray, min_segment: int = 3, phi_margin: float = 0.0,
+                   p_below: float = 1.0) -> SplitEvidence | None:
     """How strongly ``values`` (one young level's samples, in order) show one step.
 
     Every split with at least ``min_segment`` samples on each side is tried; the
@@ -360,6 +361,10 @@ def split_evidence(values: FloatArray, min_segment: int = 3, phi_margin: float =
     show less, corrected for its small-sample bias, and the
     t statistic is divided by the square root of the long-run variance factor at
     the estimate plus ``phi_margin`` standard errors.
+
+    With ``p_below``, None also when the bound cannot fall below it (checked first
+    with no allowance for autocorrelation, which only raises it): a caller that calls
+    a step only below ``p_below`` gets the same answer for less work.
     """
     n = int(values.shape[0])
     m = max(int(min_segment), 2)
@@ -377,6 +382,12 @@ def split_evidence(values: FloatArray, min_segment: int = 3, phi_margin: float =
     e = float(explained[j])
     rss = ss - e
     if not rss > 0.0:
+        return None
+    df = n - 2.0
+    splits = n - 2 * m + 1
+    if p_below < 1.0 and splits * 2.0 * student_t_tail(math.sqrt(e * df / rss), df) >= p_below:
+        # Even with no allowance for autocorrelation the bound is not below p_below:
+        # the caller would not call a step, so the rest is not worked out.
         return None
     before = float(values[:k].mean())
     after = float(values[k:].mean())
@@ -400,8 +411,6 @@ def split_evidence(values: FloatArray, min_segment: int = 3, phi_margin: float =
         r = min(r, rp + (1.0 + 3.0 * rp) / n + SPLIT_POOL_MARGIN / math.sqrt(n))
     phi = min(0.95, r + phi_margin / math.sqrt(k))
     vf = (1.0 + phi) / (1.0 - phi) if phi > 0.0 else 1.0
-    df = n - 2.0
     t = math.sqrt(e * df / rss / vf)
-    splits = n - 2 * m + 1
     p = min(1.0, splits * 2.0 * student_t_tail(t, df))
     return SplitEvidence(k, t, p, before, after, math.sqrt(rss / df), max(-0.95, min(0.95, r)))
