@@ -38,6 +38,7 @@ from __future__ import annotations
 
 import functools
 import math
+import operator
 from collections.abc import Sequence
 from typing import Any, ClassVar
 
@@ -377,7 +378,7 @@ class MultiCusumTest(SequentialTest):
                 self._dir = 1 if row < m else -1
                 return j
         self._c = np.asarray(c)
-        self._stat = max(c[i] / hs[i % m] for i in range(2 * m))
+        self._stat = max(map(operator.truediv, c, bank.h2_list))
         return -1
 
     def _block_fast(self, blk: FloatArray) -> int:
@@ -522,7 +523,7 @@ class _Bank:
     from them, shared (read-only) by every :class:`MultiCusumTest` built with
     the same charts."""
 
-    __slots__ = ("ascending", "h2", "h2_col", "h_arr", "hs", "k_arr", "k_col", "kramp", "ks", "m")
+    __slots__ = ("ascending", "h2", "h2_col", "h2_list", "h_arr", "hs", "k_arr", "k_col", "kramp", "ks", "m")
 
     def __init__(self, ks: tuple[float, ...], hs: tuple[float, ...]) -> None:
         self.ks = ks
@@ -534,6 +535,7 @@ class _Bank:
         self.k_col = self.k_arr[:, None]
         self.h2 = _frozen(np.concatenate((self.h_arr, self.h_arr)))
         self.h2_col = self.h2[:, None]
+        self.h2_list = tuple(self.h2.tolist())  # the same, for plain-Python divisions
         # The in-control fast path needs the charts in ascending order of k.
         self.ascending = bool(np.all(np.diff(self.k_arr) > 0)) and self.m > 1
         # k_i * (1, 2, ..., BLOCK): the drift term of each chart over a block.
