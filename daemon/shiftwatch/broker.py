@@ -75,7 +75,8 @@ def wait_until(pred: Callable[[], bool], timeout: float = 30.0, every: float = 0
     return pred()
 
 
-def _port_open(port: int) -> bool:
+def port_open(port: int) -> bool:
+    """Whether something accepts connections on 127.0.0.1:``port`` (within 0.2 s)."""
     try:
         with socket.create_connection(("127.0.0.1", port), timeout=0.2):
             return True
@@ -84,7 +85,7 @@ def _port_open(port: int) -> bool:
 
 
 def wait_for_port(port: int, timeout: float = 10.0) -> bool:
-    return wait_until(lambda: _port_open(port), timeout)
+    return wait_until(lambda: port_open(port), timeout)
 
 
 @dataclass

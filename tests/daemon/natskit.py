@@ -16,12 +16,11 @@ which is what the fault tests do to one of them.
 from __future__ import annotations
 
 import signal
-import socket
 import subprocess
 import tempfile
 from pathlib import Path
 
-from shiftwatch.broker import find_program, free_port, wait_until
+from shiftwatch.broker import find_program, free_port, port_open, wait_until
 
 #: The servers' MQTT ack_wait: unacknowledged messages are sent again after it (the
 #: daemons' cluster.redelivery_wait in the tests is above it).
@@ -41,14 +40,6 @@ def partition_mapping(parts: int, prefix: str = "part") -> str:
     idx = ",".join(str(i) for i in (1, 2, 3))
     return (f'"{PLANT}.*.*.*": "{prefix}.{{{{partition({parts},{idx})}}}}.{PLANT}.'
             '{{wildcard(1)}}.{{wildcard(2)}}.{{wildcard(3)}}"')
-
-
-def _port_open(port: int) -> bool:
-    try:
-        with socket.create_connection(("127.0.0.1", port), timeout=0.2):
-            return True
-    except OSError:
-        return False
 
 
 class NatsServer:
@@ -94,8 +85,8 @@ class NatsServer:
         log.close()
 
     def ready(self) -> bool:
-        return (self.proc is not None and self.proc.poll() is None and _port_open(self.client_port)
-                and _port_open(self.mqtt_port))
+        return (self.proc is not None and self.proc.poll() is None and port_open(self.client_port)
+                and port_open(self.mqtt_port))
 
     def kill(self) -> None:
         if self.proc is not None and self.proc.poll() is None:
