@@ -55,7 +55,7 @@ from shiftwatch.core.events import NO_STEP, STEP, EventTrial, OpenEvent, StepMem
 from shiftwatch.core.screen import screen_samples
 from shiftwatch.core.selfstart import SelfStart, SplitEvidence, split_evidence
 from shiftwatch.core.sequential import SequentialTest
-from shiftwatch.core.settings import DetectionSettings
+from shiftwatch.core.settings import ARL_RANGE, DetectionSettings
 from shiftwatch.core.stepfit import StepFit, StepFitter
 from shiftwatch.core.timefmt import format_time
 
@@ -482,8 +482,6 @@ FOLLOW_MARGIN = 2.0
 #: of nominal, t(4) 0.55, Laplace 0.37; tests/bench/bench_events.py measures t(3) with
 #: spikes at 1h and 7d with it.
 HEAVY_ARL_FACTOR = 0.45
-#: The shortest in-control ARL a test is designed for (DetectionSettings.arl0's floor).
-MIN_DESIGN_ARL = 50.0
 #: Which design rules a saved test was made by: a snapshot made under other rules (none
 #: recorded: before the ARL-dependent follower factor and HEAVY_ARL_FACTOR) has its test
 #: designed again on load, keeping its evidence, as a fresh stream's would be.
@@ -853,7 +851,7 @@ class StreamEngine:
         if b.clip <= HEAVY_TAIL_CLIP < self.settings.clip_sigma:
             # Heavy-tailed noise, clipped at 2 sigma: see HEAVY_ARL_FACTOR (never below the
             # shortest ARL a test is designed for: one reading a minute at 1h is 60).
-            arl0 = max(arl0 * HEAVY_ARL_FACTOR, MIN_DESIGN_ARL)
+            arl0 = max(arl0 * HEAVY_ARL_FACTOR, ARL_RANGE[0])
         self._test = make_test(self.settings, arl0, shift_z, float(b.n), n_level=n_level)
         if old is not None and old.name == self._test.name:
             try:

@@ -10,6 +10,8 @@ from shiftwatch.core.timefmt import parse_duration
 
 #: The sequential tests a stream can use.
 TEST_NAMES = ("multi_cusum", "glr", "cusum", "page_hinkley", "adwin")
+#: In-control ARLs, in samples, a test is designed for: the calibrated range of the tests.
+ARL_RANGE = (50.0, 1e9)
 
 
 @dataclass(frozen=True)
@@ -129,7 +131,7 @@ class DetectionSettings:
         >>> DetectionSettings().arl0(1.0), DetectionSettings().arl0(1e-6)
         (604800.0, 1000000000.0)
         """
-        return min(max(self.false_alarm_every / interval, 50.0), 1e9)
+        return min(max(self.false_alarm_every / interval, ARL_RANGE[0]), ARL_RANGE[1])
 
     @classmethod
     def from_mapping(cls, data: dict[str, Any], base: DetectionSettings | None = None) -> DetectionSettings:
