@@ -51,7 +51,11 @@ from shiftwatch.core.baseline import (
     median,
     sigma_floor,
 )
+from shiftwatch.core.calm import MAX_CHARTS as CALM_MAX_CHARTS
+from shiftwatch.core.calm import CalmTerms
+from shiftwatch.core.cusum import CusumTest
 from shiftwatch.core.events import NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
+from shiftwatch.core.multicusum import MultiCusumTest
 from shiftwatch.core.screen import screen_samples
 from shiftwatch.core.selfstart import SelfStart, SplitEvidence, split_evidence
 from shiftwatch.core.sequential import SequentialTest
@@ -675,6 +679,45 @@ class StreamEngine:
         [[1.0, 2.0, 3.0], [5.0, 6.0, 7.0]]
         """
         return self._window.times.copy(), self._window.values.copy()
+
+    def calm_terms(self) -> CalmTerms | None:
+        """What :class:`.calm.CalmPool` needs to hold this stream's next samples back,
+        or None when the stream is not calm: no established baseline being watched, a
+        young level, a sample held for the spike check, a test other than a CUSUM, or
+        a baseline about to change within two samples."""
+        b, test = self._baseline, self._test
+        if (self._state != WATCHING or b is None or test is None or self._young is not None
+                or self._pending is not None or self._event is not None):
+            return None
+        if isinstance(test, MultiCusumTest):
+            ks, hs, cp, cm = test.ks, test.hs, test.c_plus, test.c_minus
+        elif isinstance(test, CusumTest):
+            ks, hs, cp, cm = (test.k,), (test.h,), (test.c_plus,), (test.c_minus,)
+        else:
+            return None
+        s = self.settings
+        room = min(self._next_refine, self._next_center) - self._watch_kept
+        delay = follow_delay(b.phi, s.window_samples)
+        if room < 2 or self._follow_lag > delay or len(ks) > CALM_MAX_CHARTS:
+            return None
+        span = s.spike_sigma * b.sigma
+        fs = follow_samples(b.phi)
+        if math.isinf(fs):
+            offsets: tuple[float, ...] = (self._follow,)
+        else:
+            # The next delay + 1 samples are measured against offsets the follower reaches
+            # on samples the window holds now (see _follow_plan).
+            lag = self._follow_lag
+            w = self._window.values
+            path = follow_path(w[len(w) - lag:] - b.level, self._follow, 1.0 / fs)
+            offsets = tuple(path[np.maximum(0, lag + np.arange(delay + 1) - delay)].tolist())
+        return CalmTerms(level=b.level, offsets=offsets, followed=not math.isinf(fs),
+                         lo=b.level + self._center - span, hi=b.level + self._center + span,
+                         inv=1.0 / b.innovation_sigma, phi=b.phi, prev_r=self._prev_r, clip=b.clip,
+                         ks=tuple(ks), hs=tuple(hs), c_plus=tuple(cp), c_minus=tuple(cm), room=room,
+                         last_time=self._last_time,
+                         max_ahead=math.inf if s.max_time_ahead is None else s.max_time_ahead,
+                         max_behind=math.inf if s.max_time_behind is None else s.max_time_behind)
 
     # ------------------------------------------------------------- feeding
     def process(self, times: Sequence[Any] | FloatArray, values: Sequence[Any] | FloatArray,
