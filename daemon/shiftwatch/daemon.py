@@ -30,6 +30,7 @@ from typing import Any, Literal
 import numpy as np
 
 from shiftwatch.config import Config, ConfigError, StreamConfig, load_config, topic_matches
+from shiftwatch.core.calm import CalmPool
 from shiftwatch.core.engine import ADVISORY, AlertRecord, StreamEngine
 from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
 from shiftwatch.core.timefmt import format_time
@@ -38,7 +39,7 @@ from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, strea
 from shiftwatch.display import alert_summary, stamp
 from shiftwatch.floor import FloorDesk
 from shiftwatch.fsutil import explain_os_error
-from shiftwatch.journal import Journal, JournalGroup
+from shiftwatch.journal import Journal, JournalGroup, JournalSingles
 from shiftwatch.lease import ShardLease
 from shiftwatch.metrics import FloorMetrics, Metrics, MetricsServer, StreamStats
 from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
@@ -87,6 +88,15 @@ LEVELS_IN_FLIGHT = 50
 REPLAY_BATCH = 200_000
 #: At most this many "new stream" lines per NEW_STREAM_EVERY seconds; the rest are summed up.
 NEW_STREAM_LINES = 10
+#: The pool of calm streams (shiftwatch.core.calm): a calm stream's samples reach its
+#: engine in batches of 24 to 48 (fewer where its engine's follower or baseline asks),
+#: or after 15 to 30 s, whichever comes first; at once where a chart could trip.
+POOL_SAMPLES = 96
+POOL_AGE_S = 30.0
+#: An idle round feeds waiting samples for up to this long (oldest first, at most
+#: POOL_IDLE_BATCH streams looked at), so an alert that comes meanwhile waits little.
+POOL_IDLE_S = 0.02
+POOL_IDLE_BATCH = 2000
 NEW_STREAM_EVERY = 10.0
 
 
@@ -266,7 +276,7 @@ class Daemon:
 
     def __init__(self, cfg: Config, *, config_path: str | None = None,
                  logger: logging.Logger | None = None, metrics: Metrics | None = None,
-                 env: dict[str, str] | None = None) -> None:
+                 env: dict[str, str] | None = None, pool: bool = True) -> None:
         self.cfg = cfg
         self.config_path = config_path
         self.log = logger or logging.getLogger("shiftwatch")
@@ -294,6 +304,10 @@ class Daemon:
         self.cluster: Any = None  # shiftwatch.clusterstate.ClusterState, with state.keep: cluster
         self.lease: ShardLease | None = None
         self._fed_since_snapshot: set[str] = set()
+        # Calm streams whose samples wait for one batch (see shiftwatch.core.calm).  Not in
+        # cluster mode, where every round's samples go to the cluster per stream anyway.
+        self.pool = CalmPool(max_samples=POOL_SAMPLES, max_age=POOL_AGE_S) \
+            if pool and not self.in_cluster else None
         # Cluster mode, after each connection to the broker: take nothing for
         # cluster.redelivery_wait, then take all that came in one round with each
         # stream's samples in time order (see _connection).
@@ -481,8 +495,36 @@ class Daemon:
             self.status.restore([r for r in saved if isinstance(r, list) and len(r) == 2
                                  and isinstance(r[1], dict) and isinstance(r[1].get("stream"), str)
                                  and r[1]["stream"] in self.engines])
+        self._feed_saved_waiting(meta.get("waiting"))
         token = meta.get("journal")
         self._replay_journal(token if isinstance(token, str) else "none")
+
+    def _feed_saved_waiting(self, waiting: Any) -> None:
+        """The samples the snapshot's pooled streams had waiting (see snapshot()), fed to
+        their engines before the journal is replayed.  A damaged entry costs its stream's
+        waiting samples only, with a line naming it."""
+        if waiting is None:
+            return  # a snapshot written before the pool
+        if not isinstance(waiting, dict):
+            self.log.warning("snapshot field 'waiting' is not a mapping (%s); the samples that "
+                             "waited in it are not fed", type(waiting).__name__)
+            return
+        now = time.time()
+        for name, entry in waiting.items():
+            eng = self.engines.get(self._renamed.get(name, name)) if isinstance(name, str) else None
+            if eng is None:
+                continue
+            try:
+                t, x, a = (np.asarray(col, dtype=np.float64) for col in entry)
+                if not t.ndim == x.ndim == a.ndim == 1 or not t.shape == x.shape == a.shape:
+                    raise ValueError("three lists of equal length expected")
+            except (TypeError, ValueError) as exc:
+                self.metrics.states_set_aside.inc()
+                self.log.warning("snapshot field 'waiting' of stream %s set aside (%s); the stream "
+                                 "carries on without those samples", _printable(str(name)), _one_line(exc))
+                continue
+            for rec in eng.process(t, x, a).records:
+                self.emit(rec, now)
 
     def _replay_journal(self, token: str) -> None:
         """Feed the engines the rounds journaled on top of the snapshot.  Their alert
@@ -860,6 +902,7 @@ class Daemon:
         if self._new_held:
             self._flush_new_streams(time.monotonic())
         if not msgs:
+            self._pool_due(idle=True)
             self.status.serve_windows(self.engines)
             self.send_due_levels()
             self.rlog.flush(time.time())
@@ -868,6 +911,7 @@ class Daemon:
                 self._trim_heap(idle=True)
             return 0
         self.process(msgs, in_time_order=sort)
+        self._pool_due()
         self.status.serve_windows(self.engines)
         self.send_due_levels()
         self.rlog.flush(time.time())
@@ -910,6 +954,8 @@ class Daemon:
 
     def _gauges(self) -> None:
         self.metrics.queue_depth.set(len(self.inbox))
+        if self.pool is not None:
+            self.metrics.samples_waiting.set(self.pool.total_waiting())
         self.metrics.outbox_depth.set(len(self.outbox))
 
     def shutdown(self) -> int:
@@ -935,6 +981,7 @@ class Daemon:
         self._levels_offline = True
         for name in self.engines:
             self._levels_due[name] = None
+        self._pool_empty()
         if not self._acker.wait_idle(10.0):
             self.log.warning("stopping: the outbox is still being written; its rounds stay unacknowledged")
         self.snapshot()
@@ -1019,6 +1066,7 @@ class Daemon:
                     g[2].append(arrived if r.time is None else r.time)
                     g[3].append(r.value)
                     g[4].append(arrived)
+        singles = self._pool_round(groups, now) if self.pool is not None and len(self.pool) else None
         if self.cluster is not None:
             try:
                 self._cluster_load([n for n in groups if n not in self.engines
@@ -1032,7 +1080,7 @@ class Daemon:
                 self._held_round = ("load", msgs, [], in_time_order)
                 return
         fed: list[JournalGroup] = []
-        for name, (spec, unit, times, values, arrivals) in groups.items():
+        for name, (spec, unit, times, values, arrivals, *prior) in groups.items():
             if name in self._deferred:
                 held = self._deferred_samples.setdefault(name, [spec, unit, [], [], []])
                 held[2] += times
@@ -1045,7 +1093,8 @@ class Daemon:
                 values = [values[i] for i in order]
                 arrivals = [arrivals[i] for i in order]
             try:
-                jg = self._run_stream(name, spec, unit, times, values, arrivals, now)
+                jg = self._run_stream(name, spec, unit, times, values, arrivals, now,
+                                      prior=prior[0] if prior else None)
                 if jg is not None:
                     fed.append(jg)
             except Exception:  # noqa: BLE001  a defect must cost one stream's batch, never the daemon
@@ -1055,9 +1104,9 @@ class Daemon:
                                   exc_info=True)
         # The round's samples reach the journal before their acknowledgements
         # leave, so a sample the broker forgets is never one the engines forget.
-        if fed and self.journal is not None and self.journal.is_open:
+        if (fed or singles) and self.journal is not None and self.journal.is_open:
             try:
-                self.journal.append(fed)
+                self.journal.append(fed, singles)
             except OSError as exc:
                 self._journal_failed(exc)
         self.metrics.messages_processed.inc(len(msgs))
@@ -1270,7 +1319,10 @@ class Daemon:
         self._new_since, self._new_lines, self._new_held = now, 0, 0
 
     def _run_stream(self, name: str, spec: StreamConfig, unit: str | None, times_list: list[float],
-                    values_list: list[float], arrivals_list: list[float], now: float) -> JournalGroup | None:
+                    values_list: list[float], arrivals_list: list[float], now: float, *,
+                    prior: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None) -> JournalGroup | None:
+        """Feed a stream this round's samples (after ``prior``, the samples it had waiting
+        in the pool); returns the round's samples to journal."""
         eng = self.engine_for(name, spec, unit)
         if eng is None:
             self._count_drop("stream_cap", len(values_list))
@@ -1285,8 +1337,18 @@ class Daemon:
             # Not process readings: kept from the engine (no detection, not in the baseline).
             keep = ~held
             times, values, arrivals = times[keep], values[keep], arrivals[keep]
-            if not times.shape[0]:
-                return None
+        group = JournalGroup(name, unit, times, values, arrivals, self._filters.get(name, spec.topic)) \
+            if times.shape[0] else None
+        if prior is not None and prior[0].shape[0]:
+            times, values, arrivals = (np.concatenate((p, a)) for p, a in zip(prior, (times, values, arrivals)))
+        if times.shape[0]:
+            self._feed(name, eng, times, values, arrivals, now)
+        return group
+
+    def _feed(self, name: str, eng: StreamEngine, times: np.ndarray, values: np.ndarray,
+              arrivals: np.ndarray, now: float, *, rejoin: bool = True) -> None:
+        """Run a stream's engine on samples; publish its records; let it join the pool
+        of calm streams when it is calm (``rejoin``)."""
         res = eng.process(times, values, arrivals)
         for rej in res.rejected:
             if rej.reason != "spike":  # one key per reason: many streams cannot multiply the lines
@@ -1301,7 +1363,95 @@ class Daemon:
         self._level_changed(name, eng)
         self.metrics.update_stream(name, StreamStats.from_engine(eng))
         self._fed_since_snapshot.add(name)
-        return JournalGroup(name, unit, times, values, arrivals, self._filters.get(name, spec.topic))
+        if rejoin and self.pool is not None:
+            terms = eng.calm_terms()
+            if terms is not None:
+                self.pool.join(name, terms)
+
+    # ------------------------------------------------------- calm streams
+    def _pool_round(self, groups: dict[str, list[Any]], now: float) -> JournalSingles | None:
+        """The round's samples of pooled (calm) streams: one sample each goes through the
+        pool's charts together (and into the journal as columns); a stream whose charts
+        could trip, whose sample is not plain or whose batch is full is fed at once.  The
+        others (more samples, or a hold in force) leave the pool and go the per-stream
+        way, their waiting samples first.  Takes those streams out of ``groups``."""
+        pool = self.pool
+        assert pool is not None
+        holding = self.floor.holding()
+        names: list[str] = []
+        rows: list[list[Any]] = []
+        ts: list[float] = []
+        xs: list[float] = []
+        arr: list[float] = []
+        for name, g in groups.items():
+            if name not in pool:
+                continue
+            t, v = g[2], g[3]
+            if holding or len(t) != 1 or not (_plain_number(v[0]) and _plain_number(t[0])):
+                g.append(pool.take(name))
+                continue
+            names.append(name)
+            rows.append(g)
+            ts.append(t[0])
+            xs.append(v[0])
+            arr.append(g[4][0])
+        if not names:
+            return None
+        for name in names:
+            del groups[name]
+        t_a, x_a, a_a = np.array(ts), np.array(xs), np.array(arr)
+        newest = self.floor.newest
+        for name, tv in zip(names, ts):  # as FloorDesk.split_held keeps it
+            if tv > newest.get(name, -math.inf):
+                newest[name] = tv
+        handed = pool.offer(names, t_a, x_a, a_a, now=time.monotonic())
+        for i in np.flatnonzero(handed).tolist():
+            name = names[i]
+            self._feed_waiting(name, now)
+        filters = self._filters
+        return JournalSingles(names, [g[1] for g in rows], [filters.get(n, g[0].topic) for n, g in zip(names, rows)],
+                              t_a, x_a, a_a)
+
+    def _feed_waiting(self, name: str, now: float, *, rejoin: bool = True) -> None:
+        """A pooled stream leaves the pool: its engine takes the samples that waited."""
+        assert self.pool is not None
+        t, x, a = self.pool.take(name)
+        eng = self.engines.get(name)
+        if eng is None or not t.shape[0]:
+            return
+        try:
+            self._feed(name, eng, t, x, a, now, rejoin=rejoin)
+        except Exception:  # noqa: BLE001  as in process(): one stream's batch, never the daemon
+            self._count_drop("internal_error", len(x))
+            self.rlog.warning("internal_error", "internal error while processing stream "
+                              f"{_printable(name)}; its batch was set aside", now, exc_info=True)
+
+    def _pool_due(self, *, idle: bool = False) -> None:
+        """Feed the pooled streams whose samples waited their longest, and those whose
+        status page is open (it shows the engine's samples).  When the round found
+        nothing to do (``idle``), feed the others too, oldest first, for up to
+        POOL_IDLE_S: a daemon with time to spare keeps every engine current."""
+        pool = self.pool
+        if pool is None or not len(pool):
+            return
+        now = time.time()
+        mono = time.monotonic()
+        for name in pool.due(mono if not idle else math.inf, most=None if not idle else POOL_IDLE_BATCH):
+            self._feed_waiting(name, now)
+            if idle and time.monotonic() - mono > POOL_IDLE_S:
+                break
+        for name in self.status.watched():
+            if pool.waiting(name):
+                self._feed_waiting(name, now)
+
+    def _pool_empty(self) -> None:
+        """Every pooled stream's engine takes its waiting samples, and none joins again
+        until it is fed next (before a reload or a stop)."""
+        if self.pool is None:
+            return
+        now = time.time()
+        for name in self.pool.names():
+            self._feed_waiting(name, now, rejoin=False)
 
     def emit(self, rec: AlertRecord, arrived: float) -> None:
         """Publish an alert record (through the outbox) and log its summary."""
@@ -1511,9 +1661,13 @@ class Daemon:
         if self.cluster is not None:
             return self._cluster_snapshot()
         token = secrets.token_hex(8)
+        # Samples waiting in the pool were journaled, not fed: the snapshot carries them
+        # (the new journal starts after them), and a start feeds them first.
+        waiting = {} if self.pool is None else {
+            n: [t.tolist(), x.tolist(), a.tolist()] for n, (t, x, a) in self.pool.waiting_samples().items()}
         try:
             self.store.save({n: e.get_state() for n, e in self.engines.items()},
-                            {"saved_at": time.time(), "journal": token,
+                            {"saved_at": time.time(), "journal": token, "waiting": waiting,
                              "filters": {n: self._filters[n] for n in self.engines
                                          if n in self._filters},
                              "status_records": self.status.export(),
@@ -1604,6 +1758,8 @@ class Daemon:
             self.log.error("reload refused, keeping the running configuration: %s has no stream "
                            "entries (to stop watching every stream, stop the daemon)", self.config_path)
             return
+        # Engines are kept, renewed or dropped below as they stand with every sample taken.
+        self._pool_empty()
         old_filters = {s.topic for s in self.cfg.streams} | {self.floor.command_filter}
         new_filters = {s.topic for s in new.streams} | {self.floor.command_filter}
         kept = dropped = renewed = ended = 0
@@ -1736,6 +1892,11 @@ def _one_line(exc: BaseException, limit: int = 300) -> str:
     """An exception as a short log phrase (its type when it has no message)."""
     text = " ".join(str(exc).split()) or type(exc).__name__
     return text if len(text) <= limit else text[:limit - 3] + "..."
+
+
+def _plain_number(v: Any) -> bool:
+    """A float, or an int a float holds exactly: what the pool takes as it is."""
+    return type(v) is float or (type(v) is int and -(1 << 53) <= v <= 1 << 53)
 
 
 def _printable(text: str, limit: int = 120) -> str:

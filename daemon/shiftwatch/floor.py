@@ -190,6 +190,10 @@ class FloorDesk:
         for name, eng in engines.items():
             self.attach(name, eng)
 
+    def holding(self) -> bool:
+        """Whether any hold is in the book (ended or not): while none is, no sample is held."""
+        return any(w.kind == HOLD for w in self.book.windows.values())
+
     def split_held(self, name: str, times: NDArray[np.float64]) -> NDArray[np.bool_] | None:
         """The samples of a batch that fall in a hold (counted), or None when none does."""
         if times.shape[0]:

@@ -78,14 +78,31 @@ def _record(body: bytes) -> bytes:
     return _HEAD.pack(_MAGIC, len(body), zlib.crc32(body)) + body
 
 
-def _encode_round(groups: Iterable[JournalGroup]) -> bytes:
+class JournalSingles(NamedTuple):
+    """One sample each of many streams in one round, as columns (the pooled calm
+    streams of shiftwatch.core.calm): journaled as one-sample groups, in one step."""
+
+    streams: list[str]
+    units: list[str | None]
+    topic_filters: list[str | None]
+    times: NDArray[np.float64]
+    values: NDArray[np.float64]
+    arrived: NDArray[np.float64]
+
+
+def _encode_round(groups: Iterable[JournalGroup], singles: JournalSingles | None = None) -> bytes:
     index = []
     arrays = []
     for g in groups:
         index.append([g.stream, g.unit, int(g.times.shape[0]), g.topic_filter])
         arrays += [g.times, g.values, g.arrived]
+    data = b"".join(np.ascontiguousarray(a, dtype="<f8").tobytes() for a in arrays)
+    if singles is not None and singles.streams:
+        index += [[n, u, 1, f] for n, u, f in zip(singles.streams, singles.units, singles.topic_filters)]
+        # Each group's times, values and arrivals in turn: one row of three per stream.
+        data += np.column_stack((singles.times, singles.values, singles.arrived)).astype("<f8").tobytes()
     head = json.dumps(index, ensure_ascii=False).encode("utf-8") + b"\n"
-    return head + b"".join(np.ascontiguousarray(a, dtype="<f8").tobytes() for a in arrays)
+    return head + data
 
 
 def _read_record(f: BinaryIO, size: int) -> tuple[bytes | None, str | None]:
@@ -359,12 +376,13 @@ class Journal:
     def is_open(self) -> bool:
         return self._fd is not None
 
-    def append(self, groups: Sequence[JournalGroup]) -> None:
-        """Append one round.  Raises ``OSError`` when it cannot be written in full;
-        the journal is then closed (a torn record must not be followed by more)."""
+    def append(self, groups: Sequence[JournalGroup], singles: JournalSingles | None = None) -> None:
+        """Append one round (``singles``: one sample each of more streams).  Raises
+        ``OSError`` when it cannot be written in full; the journal is then closed (a
+        torn record must not be followed by more)."""
         if self._fd is None:
             raise OSError("the journal is not open")
-        rec = _record(_encode_round(groups))
+        rec = _record(_encode_round(groups, singles))
         if self._size + len(rec) > self.max_bytes:
             self.close()
             raise OSError(f"the journal reached its limit of {self.max_bytes} bytes")

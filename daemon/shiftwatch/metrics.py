@@ -802,6 +802,7 @@ class Metrics:
     messages_dropped : MQTT messages discarded, labelled by ``reason``.
     alert_delay : seconds from a sample's arrival to the publication of its alert.
     queue_depth : messages waiting in the ingest queue.
+    samples_waiting : samples of calm streams waiting to reach their engines in one batch.
     outbox_depth : alert records waiting for the broker's acknowledgement.
     snapshot_failures : state snapshots that could not be written.
     snapshots : state snapshots written.
@@ -842,6 +843,10 @@ class Metrics:
         self.queue_depth = Gauge(
             "shiftwatch_ingest_queue_depth", "Messages received and waiting to be processed.",
             registry=reg)
+        self.samples_waiting = Gauge(
+            "shiftwatch_samples_waiting",
+            "Samples of calm streams taken in (journaled) and waiting to reach their engines in "
+            "one batch; not yet in shiftwatch_samples_total.", registry=reg)
         self.outbox_depth = Gauge(
             "shiftwatch_outbox_depth", "Alert records waiting for the broker to acknowledge them.",
             registry=reg)

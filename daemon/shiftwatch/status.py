@@ -358,6 +358,13 @@ class StatusBoard:
                            if name in old}
         self._prev = (now, counts)
 
+    def watched(self) -> list[str]:
+        """The streams whose page is open (their engines' samples are copied after a round)."""
+        if not self._watch:
+            return []
+        with self._lock:
+            return list(self._watch)
+
     def serve_windows(self, engines: Mapping[str, Any]) -> None:
         """Copy the held samples of the streams whose page is open (main thread, after a round).
 

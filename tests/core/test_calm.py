@@ -38,7 +38,7 @@ def test_pooled_charts_follow_pages_recursion() -> None:
     # recursion on the clipped residuals, checked against a plain loop.
     rng = np.random.default_rng(5)
     ks, hs = (0.25, 0.5, 1.0), (30.0, 20.0, 10.0)
-    terms = CalmTerms(level=3.0, offsets=(0.0,), followed=False, lo=-100.0, hi=100.0, inv=2.0, phi=0.0,
+    terms = CalmTerms(level=3.0, offsets=(0.0,), lam=0.0, delay=0, lo=-100.0, hi=100.0, inv=2.0, phi=0.0,
                       prev_r=0.0, clip=3.0, ks=ks, hs=hs, c_plus=(1.0, 0.5, 0.0), c_minus=(0.0, 0.2, 0.4),
                       room=10_000,
                       last_time=0.0, max_ahead=math.inf, max_behind=math.inf)

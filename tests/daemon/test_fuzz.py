@@ -151,9 +151,11 @@ def received(daemon: Daemon) -> float:
 def samples(daemon: Daemon) -> int:
     """Samples the engines took in: those counted in samples_total, plus those whose
     time was not newer than their stream's newest, which are counted only among the
-    rejections (so that a sample the broker delivers again never counts twice)."""
-    return sum(e.samples_total + e.rejected_total["duplicate_time"] + e.rejected_total["out_of_order"]
-               for e in daemon.engines.values())
+    rejections (so that a sample the broker delivers again never counts twice), plus
+    those of calm streams waiting in the pool for their engines (journaled already)."""
+    waiting = 0 if daemon.pool is None else daemon.pool.total_waiting()
+    return waiting + sum(e.samples_total + e.rejected_total["duplicate_time"] + e.rejected_total["out_of_order"]
+                         for e in daemon.engines.values())
 
 
 def units(daemon: Daemon, topic: bytes, payload: bytes) -> tuple[int, bool]:

@@ -24,10 +24,11 @@ each sample less the baseline's level and the follower's offset as it will
 stand at that sample, prewhitened, scaled and clipped.  The follower is fed
 samples ``delay`` samples old, so its offsets for the next ``delay + 1``
 samples depend only on samples the engine holds already: the engine states
-them when the stream joins (``offsets``), and the stream leaves the pool
-before it runs past them.  So the pool's sums are the engine's, up to the
-order of floating-point sums, and it hands a stream over when a sum comes
-within a hair (``MARGIN``) of its threshold ``h``.
+them when the stream joins (``offsets``).  Past them the pool moves the
+offset as the engine does, ``u <- (1 - lam) u + lam (x - level)`` with the
+pooled sample ``delay + 1`` places back.  So the pool's sums are the
+engine's, up to the order of floating-point sums, and it hands a stream over
+when a sum comes within a hair (``MARGIN``) of its threshold ``h``.
 
 A stream leaves the pool after at most ``room`` samples (the engine refines
 its baseline or re-centres its spike band at a count of samples: that
@@ -64,7 +65,8 @@ class CalmTerms(NamedTuple):
 
     level: float  # the baseline's level
     offsets: tuple[float, ...]  # the follower's offset at each of the next samples (one: it stays)
-    followed: bool  # whether the offset moves (then no more samples than offsets are pooled)
+    lam: float  # the follower's weight per sample (0: the offset stays)
+    delay: int  # how many samples old the samples the follower is fed are (len(offsets) - 1)
     lo: float  # the spike band: a sample outside it goes to the engine at once
     hi: float
     inv: float  # 1 / the prewhitened residuals' sigma
@@ -90,7 +92,7 @@ class CalmPool:
     within half a sigma cannot trip it, a second of 4 sigma (clipped to 3) could:
 
     >>> pool = CalmPool(max_samples=64, max_age=60.0)
-    >>> terms = CalmTerms(level=10.0, offsets=(0.0,), followed=False, lo=5.0, hi=15.0, inv=1.0, phi=0.0,
+    >>> terms = CalmTerms(level=10.0, offsets=(0.0,), lam=0.0, delay=0, lo=5.0, hi=15.0, inv=1.0, phi=0.0,
     ...                   prev_r=0.0, clip=3.0, ks=(0.5,), hs=(2.0,), c_plus=(0.0,), c_minus=(0.0,),
     ...                   room=1000, last_time=0.0, max_ahead=math.inf, max_behind=math.inf)
     >>> pool.join("s", terms)
@@ -119,6 +121,8 @@ class CalmPool:
         old = len(self._names)
         m, w = MAX_CHARTS, self.max_samples
         self._level = _grown(self, "_level", (n,), 0.0)
+        self._lam = _grown(self, "_lam", (n,), 0.0)
+        self._keep = _grown(self, "_keep", (n,), 1.0)
         self._lo = _grown(self, "_lo", (n,), 0.0)
         self._hi = _grown(self, "_hi", (n,), 0.0)
         self._inv = _grown(self, "_inv", (n,), 0.0)
@@ -140,11 +144,17 @@ class CalmPool:
         self._a = _grown(self, "_a", (n, w), 0.0)
         cnt: NDArray[np.intp] = np.zeros(n, dtype=np.intp)
         cap: NDArray[np.intp] = np.zeros(n, dtype=np.intp)
+        stated: NDArray[np.intp] = np.zeros(n, dtype=np.intp)
+        delay: NDArray[np.intp] = np.zeros(n, dtype=np.intp)
         if old:
             cnt[:old] = self._cnt
             cap[:old] = self._cap
+            stated[:old] = self._stated
+            delay[:old] = self._delay
         self._cnt: NDArray[np.intp] = cnt
         self._cap: NDArray[np.intp] = cap
+        self._stated: NDArray[np.intp] = stated  # offsets stated by the engine (the rest computed)
+        self._delay: NDArray[np.intp] = delay
         self._free.extend(range(n - 1, old - 1, -1))
         self._names.extend([None] * (n - old))
 
@@ -158,6 +168,10 @@ class CalmPool:
         """How many samples of the stream wait (0 when it is not pooled)."""
         slot = self._slot.get(name)
         return 0 if slot is None else int(self._cnt[slot])
+
+    def total_waiting(self) -> int:
+        """Samples waiting, over every stream."""
+        return int(self._cnt.sum())
 
     def names(self) -> list[str]:
         return list(self._slot)
@@ -178,8 +192,16 @@ class CalmPool:
         self._level[slot] = terms.level
         k = min(len(terms.offsets), self.max_samples)
         self._u[slot, :k] = terms.offsets[:k]
-        if not terms.followed:
+        if terms.lam > 0.0:
+            if len(terms.offsets) != terms.delay + 1:
+                raise ValueError(f"a followed stream states delay + 1 offsets, got {len(terms.offsets)}")
+            self._stated[slot] = k
+        else:
             self._u[slot, k:] = terms.offsets[-1]
+            self._stated[slot] = self.max_samples
+        self._lam[slot] = terms.lam
+        self._keep[slot] = 1.0 - terms.lam
+        self._delay[slot] = terms.delay
         self._lo[slot] = terms.lo
         self._hi[slot] = terms.hi
         self._inv[slot] = terms.inv
@@ -199,8 +221,6 @@ class CalmPool:
         self._cm[slot, :m] = terms.c_minus
         spread = (zlib.crc32(name.encode("utf-8", "surrogatepass")) % 1024) / 1024.0
         most = self.max_samples // 2 + int(spread * (self.max_samples - self.max_samples // 2))
-        if terms.followed:
-            most = min(most, len(terms.offsets))
         self._cap[slot] = max(1, min(terms.room, most))
         self._age[slot] = self.max_age * (0.5 + 0.5 * spread)
         self._cnt[slot] = 0
@@ -235,7 +255,15 @@ class CalmPool:
         plain, or the stream has waited its most samples."""
         s = self.slots(names)
         cnt = self._cnt[s]
-        r = (x - self._level[s]) - self._u[s, cnt]
+        level = self._level[s]
+        past = cnt >= self._stated[s]
+        if past.any():
+            # The follower's offset past those the engine stated: fed the pooled sample
+            # delay + 1 places back, as the engine feeds it.
+            sp, cp_ = s[past], cnt[past]
+            self._u[sp, cp_] = self._keep[sp] * self._u[sp, cp_ - 1] \
+                + self._lam[sp] * (self._x[sp, cp_ - self._delay[sp] - 1] - level[past])
+        r = (x - level) - self._u[s, cnt]
         plain = (np.abs(x) <= MAX_ABS_VALUE) & (t > self._last_t[s]) & (t - a <= self._ahead[s]) \
             & (a - t <= self._behind[s]) & (x >= self._lo[s]) & (x <= self._hi[s])
         # (NaN fails every comparison above; an infinite time fails the arrival checks
@@ -266,12 +294,17 @@ class CalmPool:
         out: NDArray[np.bool_] = ~plain | could_trip | (cnt >= self._cap[s])
         return out
 
-    def due(self, now: float) -> list[str]:
-        """Streams whose oldest waiting sample is older than their share of ``max_age``."""
+    def due(self, now: float, *, most: int | None = None) -> list[str]:
+        """Streams whose oldest waiting sample is older than their share of ``max_age``
+        (``now`` infinite: every stream with samples waiting), oldest first; at most
+        ``most`` of them."""
         live = self._cnt > 0
         if not live.any():
             return []
         old = np.flatnonzero(live & (now - self._first_at >= self._age))
+        if old.shape[0] > 1:
+            order = np.argsort(self._first_at[old], kind="stable")
+            old = old[order[:most]] if most is not None else old[order]
         names = self._names
         return [n for n in (names[i] for i in old.tolist()) if n is not None]
 

@@ -702,16 +702,17 @@ class StreamEngine:
             return None
         span = s.spike_sigma * b.sigma
         fs = follow_samples(b.phi)
-        if math.isinf(fs):
+        lam = 0.0 if math.isinf(fs) else 1.0 / fs
+        if lam == 0.0:
             offsets: tuple[float, ...] = (self._follow,)
         else:
             # The next delay + 1 samples are measured against offsets the follower reaches
             # on samples the window holds now (see _follow_plan).
             lag = self._follow_lag
             w = self._window.values
-            path = follow_path(w[len(w) - lag:] - b.level, self._follow, 1.0 / fs)
+            path = follow_path(w[len(w) - lag:] - b.level, self._follow, lam)
             offsets = tuple(path[np.maximum(0, lag + np.arange(delay + 1) - delay)].tolist())
-        return CalmTerms(level=b.level, offsets=offsets, followed=not math.isinf(fs),
+        return CalmTerms(level=b.level, offsets=offsets, lam=lam, delay=delay if lam else 0,
                          lo=b.level + self._center - span, hi=b.level + self._center + span,
                          inv=1.0 / b.innovation_sigma, phi=b.phi, prev_r=self._prev_r, clip=b.clip,
                          ks=tuple(ks), hs=tuple(hs), c_plus=tuple(cp), c_minus=tuple(cm), room=room,

@@ -310,7 +310,7 @@ class MultiCusumTest(SequentialTest):
         while start < n:
             stop = min(n, start + BLOCK)
             blk = x[start:stop]
-            if bank.ascending:
+            if bank.ascending and stop - start >= FAST_FROM:
                 i = self._block_fast(blk)
                 if i == -2:
                     pass  # the fast path declined: exact path below
@@ -561,6 +561,10 @@ def _drift_ramps(ks: tuple[float, ...]) -> FloatArray:
 
 #: Batches up to this size take the plain-Python path.
 SMALL = 32
+#: Blocks of at least this many samples take the few-pass path (_block_fast); shorter
+#: ones the running minimum of every chart, which costs fewer array calls (measured
+#: here: 33 against 82 us at 72 samples, 60 against 93 at 400, even at 1,000).
+FAST_FROM = 1024
 
 
 def _float_list(name: str, values: Sequence[float]) -> list[float]:
