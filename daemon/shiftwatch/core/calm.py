@@ -105,7 +105,7 @@ class CalmPool:
     [[1.0, 2.0], [10.4, 14.0], [1.0, 2.0]]
     """
 
-    def __init__(self, *, max_samples: int, max_age: float, capacity: int = 256) -> None:
+    def __init__(self, *, max_samples: int, max_age: float, capacity: int = 64) -> None:
         if max_samples < 2:
             raise ValueError(f"max_samples must be at least 2, got {max_samples}")
         self.max_samples = int(max_samples)
@@ -133,6 +133,7 @@ class CalmPool:
         self._ahead = _grown(self, "_ahead", (n,), 0.0)
         self._behind = _grown(self, "_behind", (n,), 0.0)
         self._first_at = _grown(self, "_first_at", (n,), 0.0)
+        self._last_a = _grown(self, "_last_a", (n,), 0.0)
         self._age = _grown(self, "_age", (n,), 0.0)
         self._k = _grown(self, "_k", (n, m), 0.0)
         self._h = _grown(self, "_h", (n, m), math.inf)
@@ -141,7 +142,6 @@ class CalmPool:
         self._u = _grown(self, "_u", (n, w), 0.0)
         self._t = _grown(self, "_t", (n, w), 0.0)
         self._x = _grown(self, "_x", (n, w), 0.0)
-        self._a = _grown(self, "_a", (n, w), 0.0)
         cnt: NDArray[np.intp] = np.zeros(n, dtype=np.intp)
         cap: NDArray[np.intp] = np.zeros(n, dtype=np.intp)
         stated: NDArray[np.intp] = np.zeros(n, dtype=np.intp)
@@ -184,7 +184,7 @@ class CalmPool:
         if len(terms.ks) > MAX_CHARTS or len(terms.ks) != len(terms.hs):
             raise ValueError(f"a pooled test has 1 to {MAX_CHARTS} charts, got {len(terms.ks)}")
         if not self._free:
-            self._alloc(2 * len(self._names))
+            self._alloc(len(self._names) + max(64, len(self._names) // 4))
         slot = self._free.pop()
         self._slot[name] = slot
         self._names[slot] = name
@@ -232,7 +232,17 @@ class CalmPool:
         self._free.append(slot)
         n = int(self._cnt[slot])
         self._cnt[slot] = 0
-        return self._t[slot, :n].copy(), self._x[slot, :n].copy(), self._a[slot, :n].copy()
+        return self._columns(slot, n)
+
+    def _columns(self, slot: int, n: int) -> tuple[FloatArray, FloatArray, FloatArray]:
+        """A stream's waiting samples: times, values and arrival times.  Every sample but
+        the newest passed the arrival checks when it came, so its own time stands in
+        for its arrival (the engine checks nothing else of it); the newest's is kept."""
+        t = self._t[slot, :n].copy()
+        a = t.copy()
+        if n:
+            a[-1] = self._last_a[slot]
+        return t, self._x[slot, :n].copy(), a
 
     def waiting_samples(self) -> dict[str, tuple[FloatArray, FloatArray, FloatArray]]:
         """Copies of every stream's waiting samples (for a snapshot), streams with none left out."""
@@ -240,7 +250,7 @@ class CalmPool:
         for name, slot in self._slot.items():
             n = int(self._cnt[slot])
             if n:
-                out[name] = (self._t[slot, :n].copy(), self._x[slot, :n].copy(), self._a[slot, :n].copy())
+                out[name] = self._columns(slot, n)
         return out
 
     # ------------------------------------------------------------ a round
@@ -286,7 +296,7 @@ class CalmPool:
             self._first_at[s[first]] = now
         self._t[s, cnt] = t
         self._x[s, cnt] = x
-        self._a[s, cnt] = a
+        self._last_a[s] = a
         cnt = cnt + 1
         self._cnt[s] = cnt
         self._last_t[s] = t
@@ -310,8 +320,9 @@ class CalmPool:
 
 
 def _grown(pool: CalmPool, attr: str, shape: tuple[int, ...], fill: float) -> FloatArray:
-    """``pool``'s array ``attr`` with room for ``shape[0]`` rows, the new ones ``fill``."""
-    out = np.full(shape, fill)
+    """``pool``'s array ``attr`` with room for ``shape[0]`` rows, the new ones ``fill``.
+    Zeros come from the allocator untouched: rows never written cost no memory."""
+    out = np.zeros(shape) if fill == 0.0 else np.full(shape, fill)
     old: FloatArray | None = getattr(pool, attr, None)
     if old is not None:
         out[: old.shape[0]] = old
