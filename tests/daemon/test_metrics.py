@@ -198,7 +198,7 @@ def test_names_types_and_help(metrics: Metrics, served: MetricsServer) -> None:
         "shiftwatch_stream_display_info": "gauge", "shiftwatch_broker_connected": "gauge", "shiftwatch_messages_received": "counter",
         "shiftwatch_messages_processed": "counter",
         "shiftwatch_messages_dropped": "counter", "shiftwatch_alert_delay_seconds": "histogram",
-        "shiftwatch_ingest_queue_depth": "gauge", "shiftwatch_outbox_depth": "gauge",
+        "shiftwatch_ingest_queue_depth": "gauge", "shiftwatch_outbox_depth": "gauge", "shiftwatch_samples_waiting": "gauge",
         "shiftwatch_snapshot_failures": "counter", "shiftwatch_snapshots": "counter",
         "shiftwatch_outbox_failures": "counter", "shiftwatch_journal_failures": "counter",
         "shiftwatch_journal_damaged": "counter", "shiftwatch_stream_states_set_aside": "counter",
