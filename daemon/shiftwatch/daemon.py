@@ -1048,6 +1048,15 @@ class Daemon:
                 if dec.problems:
                     self._decode_problems(m.topic, dec.problems, now)
                 arrived = m.arrived
+                if dec.columns is not None:  # a clean JSON array, as lists (see decode())
+                    ts, vs = dec.columns
+                    g = groups.get(topic_stream)
+                    if g is None:
+                        g = groups[topic_stream] = [spec, spec.unit, [], [], []]
+                    g[2].extend([arrived] * len(vs) if ts is None else ts)
+                    g[3].extend(vs)
+                    g[4].extend([arrived] * len(vs))
+                    continue
                 for r in dec.readings:
                     if r.time is None and spec.time is not None:
                         # Set aside (no_time, counted with the problems above): placed at its
@@ -1190,7 +1199,7 @@ class Daemon:
         if spec.format == "sparkplug_b":
             return [self._sparkplug_message(spec, m, now) for m in ms]
         kwargs: dict[str, Any] = {"value_path": spec.value, "time_path": spec.time,
-                                  "max_bytes": self.cfg.broker.max_payload_bytes}
+                                  "max_bytes": self.cfg.broker.max_payload_bytes, "columns": True}
         try:
             return list(decode_many([m.payload for m in ms], spec.format, now=[m.arrived for m in ms],
                                     **kwargs))

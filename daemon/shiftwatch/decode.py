@@ -129,6 +129,8 @@ from datetime import datetime
 from itertools import accumulate
 from typing import Any, NamedTuple
 
+import numpy as np
+
 FORMATS: tuple[str, ...] = ("number", "json", "senml")
 """The payload formats :func:`decode` understands."""
 
@@ -199,11 +201,15 @@ class Reading(NamedTuple):
 class Decoded(NamedTuple):
     """What one payload gave: the usable readings and the problems found.
 
-    A payload can give both, e.g. a batch with some bad items.
+    A payload can give both, e.g. a batch with some bad items.  With
+    ``columns=True`` (see :func:`decode`) a clean JSON array comes as
+    ``columns``, its times (None: none configured) and values as lists, and
+    ``readings`` is empty.
     """
 
     readings: list[Reading]
     problems: list[DecodeProblem]
+    columns: tuple[list[float] | None, list[float]] | None = None
 
 
 class _Reject(Exception):
@@ -482,7 +488,8 @@ _JSON_PAIRS = json.JSONDecoder(parse_constant=_Constant, parse_int=_parse_int, o
 
 
 def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", time_path: str | None = None,
-           max_bytes: int = 65536, now: float, max_items: int = 10000, max_depth: int = 32) -> Decoded:
+           max_bytes: int = 65536, now: float, max_items: int = 10000, max_depth: int = 32,
+           columns: bool = False) -> Decoded:
     """Decode one MQTT payload into readings and problems; never raises on the payload.
 
     Parameters
@@ -503,6 +510,10 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
         Longest batch or SenML pack used; the rest is cut (``too_many_items``).
     max_depth : int, optional
         Deepest nesting of lists/objects accepted (``too_deep``).
+    columns : bool, optional
+        ``json`` only: a JSON array of flat objects whose every item has one
+        number at each (plain) key comes back as ``columns`` (times, values)
+        instead of readings: the same numbers, without an object per sample.
 
     Returns
     -------
@@ -524,13 +535,18 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
     Decoded(readings=[Reading(name=None, time=None, value=12.5, unit=None),
                       Reading(name=None, time=None, value=13.0, unit=None)],
             problems=[DecodeProblem(reason='value_is_text',
-                                    message="item 1: value is the text '12.5', not a JSON number")])
+                                    message="item 1: value is the text '12.5', not a JSON number")],
+            columns=None)
     >>> decode(b'[' * 100, "json", now=0.0).problems[0].reason
     'too_deep'
     >>> decode(b'{"value": 1}', "json", time_path="ts", now=0.0)
     ... # doctest: +NORMALIZE_WHITESPACE
     Decoded(readings=[Reading(name=None, time=None, value=1.0, unit=None)],
-            problems=[DecodeProblem(reason='no_time', message="message: no time at 'ts'")])
+            problems=[DecodeProblem(reason='no_time', message="message: no time at 'ts'")],
+            columns=None)
+    >>> decode(b'[{"v": 1, "ts": 10}, {"v": 2.5, "ts": 11}]', "json", value_path="v", time_path="ts",
+    ...        now=0.0, columns=True).columns
+    ([10.0, 11.0], [1.0, 2.5])
     """
     if not isinstance(payload, (bytes, bytearray)):
         raise TypeError(f"payload must be bytes, got {type(payload).__name__}")
@@ -552,6 +568,11 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
     if not text.strip():
         problems.append(DecodeProblem("empty", "the payload is empty" if not text else "the payload is blank"))
         return out
+
+    if columns and fmt == "json":
+        cols = _array_columns(bytes(payload), value_parts, time_parts, max_items, max_depth)
+        if cols is not None:
+            return Decoded(readings, problems, cols)
 
     if fmt == "number":
         try:
@@ -603,7 +624,7 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
 
 def decode_many(payloads: Sequence[bytes | bytearray], fmt: str, *, value_path: str = "value",
                 time_path: str | None = None, max_bytes: int = 65536, now: Sequence[float],
-                max_items: int = 10000, max_depth: int = 32) -> list[Decoded]:
+                max_items: int = 10000, max_depth: int = 32, columns: bool = False) -> list[Decoded]:
     """:func:`decode` applied to each payload, with JSON objects parsed together.
 
     Gives exactly ``[decode(p, fmt, now=t, ...) for p, t in zip(payloads, now)]``.
@@ -649,7 +670,7 @@ def decode_many(payloads: Sequence[bytes | bytearray], fmt: str, *, value_path: 
         doc = _joined_objects(payloads, max_bytes, _watched(value_parts, time_parts))
     if doc is None:
         return [decode(p, fmt, value_path=value_path, time_path=time_path, max_bytes=max_bytes, now=t,
-                       max_items=max_items, max_depth=max_depth) for p, t in zip(payloads, now)]
+                       max_items=max_items, max_depth=max_depth, columns=columns) for p, t in zip(payloads, now)]
     value_parts, time_parts = _checked_options(fmt, value_path, time_path, max_bytes, max_items, max_depth)
     for arrived in now:
         _check_now(arrived)
@@ -679,6 +700,54 @@ def decode_many(payloads: Sequence[bytes | bytearray], fmt: str, *, value_path: 
 
 #: Integers below this in magnitude convert to a finite float.
 _BIG_INT = 2 ** 1000
+
+
+def _array_columns(payload: bytes, value_parts: tuple[str, ...], time_parts: tuple[str, ...] | None,
+                   max_items: int, max_depth: int) -> tuple[list[float] | None, list[float]] | None:
+    """The times and values of a JSON array of flat objects, when :func:`decode` would give
+    exactly these readings and no problem; None otherwise (then it decodes as usual).
+
+    Why no duplicate key can hide: with no backslash a key has one spelling; the
+    payload holds as many quoted value keys (and time keys) as objects, and every
+    object has one, so no object has two.
+    """
+    if (len(value_parts) != 1 or (time_parts is not None and len(time_parts) != 1) or max_depth < 2
+            or len(payload) < 2 or payload[0] != 0x5B or payload[-1] != 0x5D or b"\\" in payload
+            or payload.count(b"[") != 1 or payload.count(b"]") != 1):
+        return None
+    n = payload.count(b"{")
+    keys = _watched(value_parts, time_parts)
+    if n == 0 or n > max_items or payload.count(b"}") != n or any(payload.count(k) != n for k in keys):
+        return None
+    doc = _fast_loads(payload)  # (orjson refuses what the stdlib parser reads otherwise: NaN, huge ints)
+    if type(doc) is not list or len(doc) != n:
+        return None
+    try:
+        values = _finite_column([item[value_parts[0]] for item in doc])
+        if values is None:
+            return None
+        if time_parts is None:
+            return None, values
+        raw = _finite_column([item[time_parts[0]] for item in doc])
+    except (KeyError, TypeError):  # an item that is not an object, or lacks a key
+        return None
+    if raw is None:
+        return None
+    t = np.asarray(raw)
+    # _seconds, element by element: the same division.
+    return np.where(t > _MS_THRESHOLD, t / 1000.0, t).tolist(), values
+
+
+def _finite_column(column: list[Any]) -> list[float] | None:
+    """JSON numbers as finite floats (as :func:`_value` makes them), or None when any is
+    something else (text, a bool, null, an object) or not finite."""
+    kinds = set(map(type, column))
+    if not kinds <= {float, int}:
+        return None
+    out = np.array(column, dtype=np.float64)  # orjson's ints fit 64 bits: exact as float() makes them
+    if not np.isfinite(out).all():
+        return None
+    return out.tolist()
 
 
 def _joined_objects(payloads: Sequence[bytes | bytearray], max_bytes: int,

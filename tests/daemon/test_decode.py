@@ -766,6 +766,42 @@ def test_property_decode_many_equals_decode(items: list[list[str]], time_path: s
         each(payloads, value_path="v", time_path=time_path)
 
 
+def _as_readings(d: Decoded) -> Decoded:
+    """A result with columns, as the readings they stand for."""
+    if d.columns is None:
+        return d
+    ts, vs = d.columns
+    assert not d.readings and not d.problems
+    return Decoded([Reading(None, None if ts is None else t, v, None)
+                    for t, v in zip(ts if ts is not None else [None] * len(vs), vs)], [])
+
+
+@settings(PROPERTY, max_examples=1500)
+@given(items=st.lists(st.lists(FLAT_PIECES, max_size=5), min_size=1, max_size=6),
+       time_path=st.none() | st.just("ts"), max_items=st.sampled_from([3, 10000]))
+def test_property_columns_give_the_readings_of_the_usual_path(items: list[list[str]], time_path: str | None,
+                                                               max_items: int) -> None:
+    # A JSON array of (mostly) flat objects, with duplicate keys, stray braces and
+    # quotes, text, NaN, huge numbers: columns=True must give the same numbers as the
+    # usual path (the stdlib parser with repeated-key detection), or decode as usual.
+    payload = ("[" + ", ".join("{" + ", ".join(parts) + "}" for parts in items) + "]").encode()
+    kwargs: dict[str, Any] = {"value_path": "v", "time_path": time_path, "now": NOW, "max_items": max_items}
+    assert _as_readings(decode(payload, "json", columns=True, **kwargs)) == decode(payload, "json", **kwargs)
+
+
+def test_columns_take_clean_arrays_and_leave_the_rest() -> None:
+    clean = b'[{"v": 1, "ts": 1764633600123}, {"v": -2.5, "ts": 1764633601}]'
+    got = decode(clean, "json", value_path="v", time_path="ts", now=NOW, columns=True)
+    assert got.columns == ([1764633600.123, 1764633601.0], [1.0, -2.5]) and got.readings == []
+    for payload in (b'[{"v": 1, "v": 2}, {"w": 3, "v": 4}]',  # one object has the key twice
+                    b'[{"v": 1, "x": {"v": 2}}]',  # nested
+                    b'[{"v": 1}, {"v": "2"}]',  # text
+                    b'[{"v\\u0020": 1}]',  # an escape
+                    b' [{"v": 1}]'):  # not at the first byte
+        d = decode(payload, "json", value_path="v", now=NOW, columns=True)
+        assert d.columns is None and d == decode(payload, "json", value_path="v", now=NOW)
+
+
 @settings(PROPERTY, max_examples=500)
 @given(payloads=st.lists(st.binary(max_size=40), max_size=5), fmt=FORMATS)
 def test_property_decode_many_on_arbitrary_bytes(payloads: list[bytes], fmt: str) -> None:
