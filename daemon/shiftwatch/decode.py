@@ -747,7 +747,8 @@ def _finite_column(column: list[Any]) -> list[float] | None:
     out = np.array(column, dtype=np.float64)  # orjson's ints fit 64 bits: exact as float() makes them
     if not np.isfinite(out).all():
         return None
-    return out.tolist()
+    floats: list[float] = out.tolist()
+    return floats
 
 
 def _joined_objects(payloads: Sequence[bytes | bytearray], max_bytes: int,
