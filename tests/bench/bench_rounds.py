@@ -196,6 +196,7 @@ def part_batches(streams: int = 200, batch: int = 260, rounds: int = 8) -> float
             "alerts: {topic_prefix: bench}\nmetrics: {listen: '127.0.0.1:0'}\n"
             f"state: {{dir: '{st}'}}\n")
         d = Daemon(cfg, metrics=Metrics())
+        d.restore()  # opens the journal
         t = T0 + np.arange(float(WARM))
         for name in names:
             eng = d.engine_for(name, cfg.streams[0], None)
