@@ -15,6 +15,11 @@ References outside the project:
 - MQTT 3.1.1 section 4.3.2 (OASIS standard): a QoS 1 message not acknowledged by
   the receiver is delivered again; that is what carries a killed shard's backlog
   to its successor.
+- nats-server 2.9.10 itself (Debian's package) for the partition function: which
+  ``part.<k>`` subject the real cluster's ``partition()`` mapping delivers each topic on
+  is the reference for ``shiftwatch.partition`` (FNV-1a 32-bit, whose constants and
+  test vectors are those of the IETF draft draft-eastlake-fnv, over the wildcard tokens
+  joined with nothing between them, mod n).
 - At-least-once delivery with a key to drop repeats is common practice for
   event streams; the record's ``id`` (with ``phase``) is that key.
 
@@ -31,9 +36,13 @@ from pathlib import Path
 
 import pytest
 
+from shiftwatch.broker import wait_until
+from shiftwatch.mqtt import PlainClient
+from shiftwatch.partition import fnv1a_32, partition_of
+
 from .killrun import scrape
 from .natskit import NatsCluster
-from .shardrun import Plan, ShardRun
+from .shardrun import HASHED_LEVELS, Plan, ShardRun
 
 CMD = [sys.executable, "-m", "shiftwatch"]
 
@@ -55,6 +64,59 @@ def _run(tmp_path: Path, cluster: NatsCluster, name: str, plan: Plan) -> ShardRu
         r.shard(k).start()
         assert r.online(k), f"shard {k} never said online: {r.shard(k).log()[-2000:]}"
     return r
+
+
+def test_partition_function_is_the_one_nats_server_applies(cluster: NatsCluster) -> None:
+    # Reference: the real nats-server 2.9 cluster.  Topics published over MQTT through the
+    # cluster's mapping partition(3, 1, 2, 3) arrive on part/<k>/...; shiftwatch.partition
+    # must give the same k for every one.  The topics include pairs whose wildcard tokens
+    # join to the same text (ab/c/d and a/bc/d): nats-server joins them with nothing
+    # between, so those pairs share a partition, which a separator would break.
+    # FNV-1a 32-bit reference values: the IETF draft draft-eastlake-fnv's test vectors.
+    assert fnv1a_32(b"") == 0x811C9DC5
+    assert fnv1a_32(b"a") == 0xE40C292C
+    assert fnv1a_32(b"foobar") == 0xBF9CF968
+    topics = [f"brackenfield/line{i}/head{j}/fill" for i in range(12) for j in range(12)]
+    topics += [f"brackenfield/{a}/{b}/{c}" for a, b, c in
+               [("ab", "c", "d"), ("a", "bc", "d"), ("a", "b", "cd"), ("abc", "d", "x"), ("a", "bcd", "x"),
+                ("L-7", "Kopf_2", "temp"), ("L-7K", "opf_2", "temp"), ("0", "0", "0"), ("00", "", "0")]]
+    arrived: dict[str, str] = {}
+    lock = threading.Lock()
+
+    def on(topic: str, payload: bytes) -> None:
+        with lock:
+            arrived[payload.decode()] = topic
+
+    sub = PlainClient(cluster.mqtt_url(1), "partition-probe-sub", subscribe=["part/#"], on_message=on,
+                      mqtt_version="3.1.1").start()
+    pub = PlainClient(cluster.mqtt_url(2), "partition-probe-pub", mqtt_version="3.1.1").start()
+    try:
+        # The subscription has reached every server once a probe comes back.
+        def probe() -> bool:
+            pub.publish("brackenfield/probe/probe/probe", b"probe", qos=1)
+            return "probe" in arrived
+
+        assert wait_until(probe, 30, every=0.5)
+        for t in topics:
+            pub.publish(t, t.encode(), qos=1)
+        assert wait_until(lambda: all(t in arrived for t in topics), 30), \
+            sorted(set(topics) - set(arrived))[:10]
+    finally:
+        sub.stop()
+        pub.stop()
+    wrong = {}
+    for t in topics:
+        k = int(arrived[t].split("/")[1])
+        assert arrived[t] == f"part/{k}/{t}"
+        if partition_of(t, HASHED_LEVELS, cluster.parts) != k:
+            wrong[t] = k
+    assert not wrong, wrong
+    for a, b in [("brackenfield/ab/c/d", "brackenfield/a/bc/d"), ("brackenfield/a/b/cd", "brackenfield/ab/c/d"),
+                 ("brackenfield/abc/d/x", "brackenfield/a/bcd/x"),
+                 ("brackenfield/L-7/Kopf_2/temp", "brackenfield/L-7K/opf_2/temp")]:
+        assert arrived[a].split("/")[1] == arrived[b].split("/")[1], (a, b)
+    # And the three partitions all occur (the check is not passed by one constant answer).
+    assert {v.split("/")[1] for v in arrived.values()} == {"0", "1", "2"}
 
 
 def test_three_shards_split_the_plant_and_keep_stream_names(tmp_path: Path, cluster: NatsCluster) -> None:
