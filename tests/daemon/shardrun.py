@@ -41,6 +41,8 @@ except ImportError:  # from the benches, with tests/daemon on sys.path
     from natskit import NatsCluster  # type: ignore[no-redef]
 
 T0 = 1_790_000_000.0
+#: The topic levels natskit's mapping hashes (its wildcards 1, 2, 3 below the plant name).
+HASHED_LEVELS = (2, 3, 4)
 NOISE = 0.2
 STEP = 0.6  # 3 sigma
 
@@ -169,7 +171,7 @@ class ShardRun:
             f"alerts:\n  topic_prefix: {self.name}/out\n"
             f"metrics:\n  listen: 127.0.0.1:{self.base_port}\n"
             f"state:\n  dir: {self.workdir / state_dir}\n  snapshot_every: 2s\n  keep: cluster\n"
-            f"shard:\n  number: 0\n  of: {parts}\n"
+            f"shard:\n  number: 0\n  of: {parts}\n  hashed_levels: {list(HASHED_LEVELS)}\n"
             f"cluster:\n  servers: [{servers}]\n  name: {self.name}\n  lease: {self.lease}\n"
             "  redelivery_wait: 6s\n")
 
@@ -194,6 +196,20 @@ class ShardRun:
             s.write_config([o.cluster_port for o in self.cluster.servers if o is not s], parts)
             if s.proc is not None:
                 s.proc.send_signal(signal.SIGHUP)
+
+    def reload_shards(self, numbers: list[int], line: str, timeout: float = 30.0) -> None:
+        """SIGHUP to the running shards ``numbers`` (they read the configuration again), then
+        wait for ``line`` in each one's log after it."""
+        offsets = {}
+        for k in numbers:
+            sh = self.shards[k]
+            offsets[k] = len(sh.log())
+            if sh.proc is not None and sh.proc.poll() is None:
+                sh.proc.send_signal(signal.SIGHUP)
+        for k in numbers:
+            sh = self.shards[k]
+            if not wait_until(lambda sh=sh, k=k: line in sh.log()[offsets[k]:], timeout):
+                raise RuntimeError(f"shard {k} did not log {line!r} after SIGHUP: {sh.log()[-2000:]}")
 
     def shard(self, k: int) -> Shard:
         if k not in self.shards:
