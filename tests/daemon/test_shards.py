@@ -239,13 +239,17 @@ def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, clus
     errors: list[str] = []
 
     def grow() -> None:
-        # The README's order: the new shard first (it subscribes to a partition that has
-        # no traffic yet), then the mapping on every server.
+        # The README's order: shard.of raised in the file and the new shard started (it
+        # subscribes to a partition no topic maps to yet); the old shards reloaded (each
+        # lets go of the streams the mapping for 4 partitions gives another shard: state
+        # saved to the cluster, engine dropped; what still comes to it of them goes to
+        # their journal); then the mapping on every server.
         try:
             r.write_config(4)
             r.shard(3).start()
             if not r.online(3):
                 raise RuntimeError("shard 3 did not say online")
+            r.reload_shards([0, 1, 2], "shard.of is 4 now")
             r.remap(4)
             remapped_at.append(published[-1])
         except RuntimeError as exc:
@@ -269,23 +273,31 @@ def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, clus
         assert remapped_at and remapped_at[0] < plan.samples - 100, remapped_at
         counts = r.settle(120)
         tally = r.tally(counts, time.monotonic() - t0)
-        new_shard = scrape(r.shard(3).port)
+        pages = {k: scrape(sh.port) for k, sh in r.shards.items()}
     finally:
         r.close()
         r.repartition(3)
-    print(tally.line())
+    handed = sum(v for m in pages.values() for (n, _lab), v in m.items()
+                 if n == "shiftwatch_samples_handed_over_total")
+    print(tally.line() + f"; handed over through the journal {handed:.0f}")
+    # Each stream ends with exactly the shard the real cluster's mapping for 4 partitions
+    # sends it to (the streams shard 3 holds came to it from NATS under part/3): the old
+    # owners let the moved ones go instead of keeping stale engines.
+    holders: dict[str, list[int]] = {s: [] for s in plan.names()}
+    for k, m in pages.items():
+        for n, lab in m:
+            if n == "shiftwatch_samples_total":
+                holders[dict(lab)["stream"]].append(k)
+    assert holders == {s: [partition_of(s, HASHED_LEVELS, 4)] for s in plan.names()}, holders
     # The fourth shard took streams over with their history: their sample counts
     # (part of the saved state) include the samples taken before the change, at 300.
-    took = [v for (n, _lab), v in new_shard.items() if n == "shiftwatch_samples_total"]
+    took = [v for (n, _lab), v in pages[3].items() if n == "shiftwatch_samples_total"]
     assert took and min(took) > 300, took
-    # With the README's order the new partition has its subscriber before any topic maps
-    # to it, and a moving stream's new owner waits cluster.redelivery_wait when the old
-    # owner wrote it lately.  What that does not cover: an old owner whose deliveries the
-    # cluster held back (NATS's MQTT side sometimes stalls a QoS 1 session for seconds
-    # under a burst, seen with plain subscribers too) gets the stream's samples from
-    # before the change after its new owner has begun, and the two write the stream in
-    # turn until one gives up.  Measured over ten runs: nothing lost in seven; in the
-    # others 212, 1,350 (one step under two ids) and 1,380 samples (two steps missed).
-    # Open in issue 15: ownership of a moving stream is decided by who writes last, not
-    # by the mapping.  So the tally is printed, and what is asserted is what held in
-    # every run: the streams moved with their history, while samples flowed.
+    # What the issue asks of a reshard while samples flow: no step missed, none confirmed
+    # under two ids.  Samples an old owner gets late (NATS's MQTT side sometimes holds a
+    # QoS 1 session's deliveries back for seconds) after the new owner has written the
+    # stream are set aside and counted (other_shard): the bound only catches a gross loss;
+    # the tally is printed (README, Shards measured).
+    assert tally.shifts_missed == 0, tally.line()
+    assert tally.shifts_with_two_ids == 0, tally.line()
+    assert tally.lost <= tally.published // 10, tally.line()
