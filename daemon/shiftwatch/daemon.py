@@ -850,6 +850,18 @@ class Daemon:
             self.nats.close()
         return 3
 
+    def _start_failed(self) -> int:
+        """A start that failed after the shard's lease was claimed (say, the metrics port
+        was taken) gives the lease back: the restarted daemon would otherwise wait for
+        it to expire, up to cluster.lease, on every attempt."""
+        if self.server is not None:
+            self.server.close()
+        if self.lease is not None:
+            self.lease.release()
+        if self.nats is not None:
+            self.nats.close()
+        return 2
+
     def _stop_unstarted(self) -> int:
         self.log.info("stopped before the shard was ours")
         if self.nats is not None:
@@ -925,16 +937,16 @@ class Daemon:
                 return self._stop_unstarted()
         except ClusterError as exc:
             self.log.error("cannot start: %s", exc)
-            return 2
+            return self._start_failed()
         except BrokerError as exc:
             self.log.error("%s", exc)
-            return 2
+            return self._start_failed()
         except OSError as exc:
             self.log.error("cannot start: %s", exc)
-            return 2
+            return self._start_failed()
         except RuntimeError as exc:  # "can't start new thread": a task limit too tight
             self.log.error("cannot start: %s (is the service's task limit, TasksMax=, too low?)", exc)
-            return 2
+            return self._start_failed()
         wd = watchdog_interval(self.env)
         next_wd = time.monotonic()
         next_snap = time.monotonic() + self.cfg.state.snapshot_every

@@ -30,15 +30,15 @@ from typing import Any
 
 import numpy as np
 
-from shiftwatch.broker import free_port, wait_until
+from shiftwatch.broker import wait_until
 from shiftwatch.mqtt import PlainClient
 
 try:  # in the test package
     from .killrun import metric, scrape
-    from .natskit import NatsCluster
+    from .natskit import NatsCluster, free_port_block
 except ImportError:  # from the benches, with tests/daemon on sys.path
     from killrun import metric, scrape  # type: ignore[no-redef]
-    from natskit import NatsCluster  # type: ignore[no-redef]
+    from natskit import NatsCluster, free_port_block  # type: ignore[no-redef]
 
 T0 = 1_790_000_000.0
 #: The topic levels natskit's mapping hashes (its wildcards 1, 2, 3 below the plant name).
@@ -149,7 +149,8 @@ class ShardRun:
         self.plan = plan or Plan()
         self.name = name
         self.lease = lease
-        self.base_port = free_port()
+        # Each shard's metrics port is base + k (metrics_port: offset): the whole block free.
+        self.base_port = free_port_block(8)
         self.shards: dict[int, Shard] = {}
         self.records: list[dict[str, Any]] = []
         self.status: dict[str, str] = {}
@@ -210,6 +211,37 @@ class ShardRun:
             sh = self.shards[k]
             if not wait_until(lambda sh=sh, k=k: line in sh.log()[offsets[k]:], timeout):
                 raise RuntimeError(f"shard {k} did not log {line!r} after SIGHUP: {sh.log()[-2000:]}")
+
+    def cluster_holds(self, streams: list[str]) -> list[str]:
+        """The streams of ``streams`` of which the cluster holds a snapshot or a journal
+        message under this run's cluster.name (read with nats-py, not through a daemon)."""
+        import asyncio
+
+        import nats
+        from nats.js.errors import NotFoundError
+
+        from shiftwatch.clusterstate import stream_key
+
+        async def go() -> list[str]:
+            nc = await nats.connect(servers=self.cluster.urls, connect_timeout=2, max_reconnect_attempts=2)
+            try:
+                js = nc.jetstream(timeout=5)
+                out = []
+                for s in streams:
+                    key = stream_key(s)
+                    for stream, subject in ((f"{self.name}_journal", f"{self.name}.journal.{key}"),
+                                            (f"KV_{self.name}_state", f"$KV.{self.name}_state.{key}")):
+                        try:
+                            await js.get_last_msg(stream, subject)
+                        except NotFoundError:
+                            continue
+                        out.append(s)
+                        break
+                return out
+            finally:
+                await nc.close()
+
+        return asyncio.run(go())
 
     def shard(self, k: int) -> Shard:
         if k not in self.shards:

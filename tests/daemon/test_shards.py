@@ -28,6 +28,7 @@ The last test changes the mapping to 4 partitions: it runs last in the module.
 
 from __future__ import annotations
 
+import socket
 import sys
 import threading
 import time
@@ -119,6 +120,34 @@ def test_partition_function_is_the_one_nats_server_applies(cluster: NatsCluster)
     assert {v.split("/")[1] for v in arrived.values()} == {"0", "1", "2"}
 
 
+def test_a_shard_that_cannot_start_gives_its_lease_back(tmp_path: Path, cluster: NatsCluster) -> None:
+    # A run of this module on the shared machine failed as a CI run had ("shard 1 did not
+    # start" within 60 s): the shard's metrics port was taken (the kit took base + k from
+    # the range the kernel also hands outgoing connections as local ports), the daemon
+    # stopped with status 2 after it had claimed its lease, and every restart waited for
+    # that lease to expire (cluster.lease), then failed the same way.  A start that fails
+    # gives the lease back: the next attempt claims it at once.
+    r = ShardRun(tmp_path, CMD, cluster, plan=Plan(samples=10), name="portclash")
+    sh = r.shard(0)
+    blocker = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+    try:
+        blocker.bind(("127.0.0.1", sh.port))
+        blocker.listen(1)
+        with pytest.raises(RuntimeError, match="did not start"):
+            sh.start()
+        assert sh.proc is not None and sh.proc.wait(30) == 2
+        first = sh.log()
+        assert "Address already in use" in first and "shard 0 is ours" in first, first[-2000:]
+        assert "shard 0 released" in first, first[-2000:]
+        blocker.close()
+        sh.start()
+        second = sh.log()[len(first):]
+    finally:
+        blocker.close()
+        r.close()
+    assert "shard 0 is ours" in second and "is held by" not in second, second[-2000:]
+
+
 def test_three_shards_split_the_plant_and_keep_stream_names(tmp_path: Path, cluster: NatsCluster) -> None:
     plan = Plan(samples=700, rate=100.0)
     r = _run(tmp_path, cluster, "split", plan)
@@ -154,11 +183,14 @@ def test_shard_killed_and_restarted_on_an_empty_state_dir(tmp_path: Path, cluste
     r = _run(tmp_path, cluster, "killed", plan)
     restarted = threading.Event()
     errors: list[str] = []
+    held: list[str] = []
 
     def restart() -> None:
         try:
             r.shards[1].kill()
             r.status.pop("1", None)
+            # What the dead shard left in the cluster of its streams (written before the kill).
+            held.extend(r.cluster_holds([s for s in plan.names() if partition_of(s, HASHED_LEVELS, 3) == 1]))
             # Another box: a state directory that has never been used.
             r.fresh_state(1, "state-elsewhere")
             r.shard(1).start()
@@ -186,13 +218,16 @@ def test_shard_killed_and_restarted_on_an_empty_state_dir(tmp_path: Path, cluste
             log = r.shard(1).log()
     finally:
         r.close()
-    print(tally.line())
+    print(tally.line() + f"; streams the dead shard had left in the cluster: {len(held)}")
     # The new shard 1 waited for the dead one's lease, then took from the cluster the streams
-    # the dead one had written.  (In one CI-equivalent run the dead one had written none:
-    # NATS's MQTT side held its session's deliveries back from the start.)
-    dead = (r.workdir / "shard1.log").read_text(errors="replace")
-    if "new stream" in dead or "from the cluster" in dead:
+    # the dead one had written: none of those warmed up again.  Which streams those are is
+    # read from the cluster itself at the kill: a dead shard that had created engines may
+    # not have journaled them yet (in one run it had three engines and nothing in the
+    # cluster; NATS then delivered all of its unacknowledged samples to the new shard).
+    if held:
         assert "loaded" in log and "from the cluster" in log, log[-3000:]
+    for s in held:
+        assert f"new stream {s} " not in log, (s, log[-3000:])
     # What the issue asks of a shard moved to an empty disk: no step missed, none under a
     # second id.  Samples: none lost in every run but that one, where the held-back
     # deliveries came after newer samples, later than cluster.redelivery_wait, and 1,500
