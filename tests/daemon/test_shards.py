@@ -23,11 +23,12 @@ References outside the project:
 - At-least-once delivery with a key to drop repeats is common practice for
   event streams; the record's ``id`` (with ``phase``) is that key.
 
-The last test changes the mapping to 4 partitions: it runs last in the module.
+The last two tests change the mapping to 4 partitions (and back at their end): they run last in the module.
 """
 
 from __future__ import annotations
 
+import signal
 import socket
 import sys
 import threading
@@ -335,4 +336,74 @@ def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, clus
     # the tally is printed (README, Shards measured).
     assert tally.shifts_missed == 0, tally.line()
     assert tally.shifts_with_two_ids == 0, tally.line()
+    assert tally.lost <= tally.published // 10, tally.line()
+
+
+def test_an_old_owner_held_back_at_a_reshard_never_writes_a_moved_stream(tmp_path: Path,
+                                                                          cluster: NatsCluster) -> None:
+    # The stall behind the measured losses, made certain: right after the old shards'
+    # reload, the old owner of the most moving streams is stopped (SIGSTOP) for 9 s, longer
+    # than cluster.redelivery_wait (6 s) and the MQTT keepalive, while the mapping changes.
+    # Its deliveries of the moving streams from before the change reach it only after their
+    # new owner has begun.  Before ownership by the mapping, such an owner wrote the
+    # streams again and the two shards took turns (steps missed, a step under two ids).
+    # Now its late samples are refused by the journal and set aside, counted: every sample
+    # the streams that moved away from it lost is one it set aside; no step is missed, none
+    # is confirmed under two ids.  (The stop also costs the streams it keeps or gains some
+    # samples: NATS dropped its connection, and deliveries it had held back came after
+    # newer ones and were set aside as out of order, as after a lost connection; README,
+    # Shards measured.  The bound on those is the loose one of the other fault tests.)
+    plan = Plan(samples=1000, rate=100.0)
+    r = _run(tmp_path, cluster, "stalled", plan)
+    names = plan.names()
+    moving = {k: [s for s in names if partition_of(s, HASHED_LEVELS, 3) == k
+                  and partition_of(s, HASHED_LEVELS, 4) != k] for k in range(3)}
+    stalled = max(moving, key=lambda k: len(moving[k]))
+    grown = threading.Event()
+    errors: list[str] = []
+
+    def grow() -> None:
+        try:
+            r.write_config(4)
+            r.shard(3).start()
+            if not r.online(3):
+                raise RuntimeError("shard 3 did not say online")
+            r.reload_shards([0, 1, 2], "shard.of is 4 now")
+            proc = r.shard(stalled).proc
+            assert proc is not None
+            proc.send_signal(signal.SIGSTOP)
+            try:
+                r.remap(4)
+                time.sleep(9.0)
+            finally:
+                proc.send_signal(signal.SIGCONT)
+        except RuntimeError as exc:
+            errors.append(str(exc))
+        grown.set()
+
+    def during(j: int) -> None:
+        if j == 300:
+            threading.Thread(target=grow, daemon=True).start()
+
+    try:
+        t0 = time.monotonic()
+        r.publish(during)
+        assert grown.wait(120)
+        assert not errors, errors
+        counts = r.settle(150)
+        tally = r.tally(counts, time.monotonic() - t0)
+        page = scrape(r.shard(stalled).port)
+    finally:
+        r.close()
+        r.repartition(3)
+    other = sum(v for (n, lab), v in page.items()
+                if n == "shiftwatch_messages_dropped_total" and dict(lab).get("reason") == "other_shard")
+    handed = sum(v for (n, _lab), v in page.items() if n == "shiftwatch_samples_handed_over_total")
+    moved_short = sum(plan.samples - min(int(counts.get(s, 0)), plan.samples) for s in moving[stalled])
+    print(tally.line() + f"; shard {stalled} (stopped 9 s, {len(moving[stalled])} streams moving away, "
+          f"{moved_short} of their samples lost): other shards' samples {other:.0f}, handed over "
+          f"{handed:.0f}, set aside {other - handed:.0f}")
+    assert tally.shifts_missed == 0, tally.line()
+    assert tally.shifts_with_two_ids == 0, tally.line()
+    assert moved_short <= other - handed, (moved_short, tally.line())
     assert tally.lost <= tally.published // 10, tally.line()
