@@ -155,6 +155,7 @@ class ShardRun:
         self.records: list[dict[str, Any]] = []
         self.status: dict[str, str] = {}
         self.restarts = 0
+        self._probes: set[str] = set()
         self._closing = threading.Event()
         self._lock = threading.Lock()
         self.clients: list[PlainClient] = []
@@ -258,7 +259,9 @@ class ShardRun:
             self.records.append(body)
 
     def _on_message(self, topic: str, payload: bytes) -> None:
-        if "/status/" in topic:
+        if topic.endswith("/~probe"):
+            self._probes.add(topic)
+        elif "/status/" in topic:
             with self._lock:
                 self.status[topic.rsplit("-", 1)[-1]] = payload.decode(errors="replace")
         else:
@@ -286,10 +289,32 @@ class ShardRun:
 
     def start(self) -> None:
         self.supervise()
-        viewer = PlainClient(self.cluster.mqtt_url(1), f"{self.name}-viewer",
-                             subscribe=[f"{self.name}/out/alerts/#", f"{self.name}/out/status/#"],
+        filters = [f"{self.name}/out/alerts/#", f"{self.name}/out/status/#"]
+        viewer = PlainClient(self.cluster.mqtt_url(1), f"{self.name}-viewer", subscribe=filters,
                              on_message=self._on_message, mqtt_version="3.1.1").start()
         self.clients.append(viewer)
+        self._confirm_subscriptions(viewer, filters)
+
+    def _confirm_subscriptions(self, viewer: PlainClient, filters: list[str], timeout: float = 90.0) -> None:
+        """Wait until a probe published under each filter comes back to the viewer.  NATS's
+        MQTT side answers a SUBSCRIBE whose JetStream consumer it could not create in time
+        with a failure code ("Unable to add JetStream consumer ... timeout" in its log, seen
+        on this loaded machine): the viewer then saw no alert record at all.  A filter whose
+        probe does not come back is subscribed again."""
+        probes = {f: f[:-1] + "~probe" for f in filters}
+        deadline = time.monotonic() + timeout
+        while True:
+            missing = [f for f, t in probes.items() if t not in self._probes]
+            if not missing:
+                return
+            if time.monotonic() > deadline:
+                raise RuntimeError(f"the viewer's subscriptions {missing} were never confirmed")
+            for f in missing:
+                viewer.publish(probes[f], b"probe", qos=1)
+            if wait_until(lambda missing=missing: all(probes[f] in self._probes for f in missing), 5.0):
+                continue
+            for f in missing:
+                viewer.client.subscribe(f, qos=1)
 
     def publish(self, during: Callable[[int], None] | None = None) -> None:
         """Publish the plan (from the cluster's third server); ``during(j)`` is called
