@@ -961,6 +961,8 @@ class Daemon:
             now = time.monotonic()
             if now >= next_check:
                 self.check_journal()
+                if self.link is not None:
+                    self.link.retry_subscriptions()
                 next_check = now + 1.0
             if wd is not None and now >= next_wd:
                 sd_notify("WATCHDOG=1", env=self.env)
