@@ -142,13 +142,14 @@ class ShardRun:
     """The cluster, ``shards`` daemons, a publisher and a viewer, in ``workdir``."""
 
     def __init__(self, workdir: Path, command: list[str], cluster: NatsCluster, *, shards: int = 3,
-                 plan: Plan | None = None, name: str = "sw", lease: str = "15s") -> None:
+                 plan: Plan | None = None, name: str = "sw", lease: str = "15s", keepalive: int = 5) -> None:
         self.workdir = Path(workdir)
         self.command = command
         self.cluster = cluster
         self.plan = plan or Plan()
         self.name = name
         self.lease = lease
+        self.keepalive = keepalive
         # Each shard's metrics port is base + k (metrics_port: offset): the whole block free.
         self.base_port = free_port_block(8)
         self.shards: dict[int, Shard] = {}
@@ -166,7 +167,7 @@ class ShardRun:
         self.parts = parts
         servers = ", ".join(self.cluster.urls)
         self.config.write_text(
-            f"broker:\n  url: {self.cluster.mqtt_url(0)}\n  client_id: {self.name}\n  keepalive: 5\n"
+            f"broker:\n  url: {self.cluster.mqtt_url(0)}\n  client_id: {self.name}\n  keepalive: {self.keepalive}\n"
             "  mqtt_version: \"3.1.1\"\n"
             "streams:\n  - topic: brackenfield/+/+/fill\n    format: json\n"
             "    value: v\n    time: ts\n    unit: g\n"
