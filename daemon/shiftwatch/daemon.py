@@ -735,19 +735,20 @@ class Daemon:
 
     def _take_foreign(self, foreign: dict[str, list[Any]], now: float) -> bool:
         """Samples of streams the mapping gives another shard: not fed to an engine.
-        With state in the cluster, those of a stream this daemon wrote or read (it
-        owned it until the number of shards changed) go to the stream's journal,
-        stating the last sequence this daemon knows: its new owner loads them with
-        the snapshot, or, when it has written the stream since, they are refused and
-        set aside.  The others are set aside.  All count as other_shard.  False: the
-        cluster did not answer (the round is held and taken again)."""
+        With state in the cluster they go to the stream's journal, stating the last
+        sequence this daemon knows of it (0, no message yet, for a stream it never
+        had: NATS may have held all of an old owner's deliveries back): its owner
+        loads them with the snapshot, or, when it has written the stream since, they
+        are refused and set aside.  Without the cluster they are set aside.  All
+        count as other_shard.  False: the cluster did not answer (the round is held
+        and taken again)."""
         assert self.owner is not None
         n = sum(len(g[3]) for g in foreign.values())
         handed = 0
         if self.cluster is not None:
             out = []
             for name, (spec, unit, times, values, arrivals) in foreign.items():
-                if name in self.cluster.seq and name not in self.engines:
+                if name not in self.engines:
                     out.append(JournalGroup(name, unit, np.asarray(times, dtype=np.float64),
                                             np.asarray(values, dtype=np.float64),
                                             np.asarray(arrivals, dtype=np.float64),
@@ -773,9 +774,9 @@ class Daemon:
                 def text(name: str = name, k: int | None = k) -> str:
                     return (f"stream {_printable(name)} belongs to shard {k} (shard.of "
                             f"{self.owner.of if self.owner else '?'}), not to this one: its samples "
-                            "are not fed here (those of a stream this shard had are written to the "
-                            "stream's journal for its owner while it has not written the stream "
-                            "itself; the others are set aside)")
+                            "are not fed here (with state in the cluster they are written to the "
+                            "stream's journal for its owner until the owner writes the stream "
+                            "itself; then, or with local state, they are set aside)")
 
                 self.rlog.warning("other_shard", text, now, extra={"stream": name})
         return True
