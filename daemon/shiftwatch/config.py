@@ -159,6 +159,16 @@ def _bool(v: Any) -> bool:
     return v
 
 
+def _levels(v: Any) -> tuple[int, ...]:
+    """A non-empty list of topic level numbers, counted from 1 (shard.hashed_levels)."""
+    if not isinstance(v, list) or not v or not all(
+            isinstance(i, int) and not isinstance(i, bool) and i >= 1 for i in v):
+        raise ValueError(f"must be a list of topic level numbers counted from 1, e.g. [2, 3, 4], got {v!r}")
+    if len(set(v)) != len(v):
+        raise ValueError(f"names a level twice: {v!r}")
+    return tuple(v)
+
+
 def _optional(check: Callable[[Any], Any]) -> Callable[[Any], Any]:
     def inner(v: Any) -> Any:
         return None if v is None else check(v)
@@ -306,6 +316,12 @@ SHARD_KEYS = {
                         "subscribes below them and strips them, so stream names never hold them"),
     "metrics_port": Key(_str(("offset", "same")), "offset", "offset: the metrics port is metrics.listen's "
                         "plus shard.number (several shards on one box); same: as configured"),
+    "hashed_levels": Key(_optional(_levels), None, "the topic levels (counted from 1, below topic_prefix) "
+                         "whose wildcards the cluster's partition() mapping hashes, in its order; with "
+                         "it a shard feeds its engines only the streams the mapping for shard.of "
+                         "partitions gives it (absent: every stream that reaches it)",
+                         {"type": ["array", "null"], "items": {"type": "integer", "minimum": 1},
+                          "minItems": 1}),
 }
 
 CLUSTER_KEYS = {
@@ -422,6 +438,7 @@ class ShardConfig:
     of: int
     topic_prefix: str = "part/{number}"
     metrics_port: str = "offset"
+    hashed_levels: tuple[int, ...] | None = None
 
     @property
     def prefix(self) -> str:

@@ -46,6 +46,7 @@ from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
 from shiftwatch.natsio import ClusterError
 from shiftwatch.notify import sd_notify, watchdog_interval
 from shiftwatch.outbox import Outbox
+from shiftwatch.partition import Ownership
 from shiftwatch.sparkplug import NAMESPACE as SPARKPLUG_NAMESPACE
 from shiftwatch.sparkplug import SparkplugSessions, rebirth_request
 from shiftwatch.statestore import StateStore
@@ -300,6 +301,11 @@ class Daemon:
         self.journal = Journal(state_dir / "snapshots", logger=self.log, background=True) \
             if cfg.state.journal and not self.in_cluster else None
         self.shard_prefix = cfg.shard.prefix if cfg.shard is not None else ""
+        # With shard.hashed_levels: the streams the mapping for shard.of partitions gives
+        # this shard; the others' samples are not fed (see _take_foreign, _set_shard).
+        self.owner = Ownership(cfg.shard.number, cfg.shard.of, cfg.shard.hashed_levels) \
+            if cfg.shard is not None and cfg.shard.hashed_levels else None
+        self._topic_of: dict[str, str] = {}  # stream -> a topic it came on (with self.owner)
         self.nats: Any = None  # shiftwatch.natsio.NatsIO, with a cluster section
         self.cluster: Any = None  # shiftwatch.clusterstate.ClusterState, with state.keep: cluster
         self.lease: ShardLease | None = None
@@ -706,6 +712,14 @@ class Daemon:
                     return True
                 # Written by another daemon meanwhile (the stream moved between shards):
                 # its engine here is stale.  Load it again and feed it this round once more.
+                if self.owner is not None:
+                    theirs = [g for g in refused if not self._owns_stream(g.stream)]
+                    if theirs:
+                        self._let_go([g.stream for g in theirs], save=False)
+                        self._count_drop("other_shard", sum(len(g.values) for g in theirs))
+                        refused = [g for g in refused if self._owns_stream(g.stream)]
+                        if not refused:
+                            return True
                 names = [g.stream for g in refused]
                 self.log.warning("%d stream(s) were written by another daemon meanwhile (they moved "
                                  "between shards), e.g. %s; reloading them from the cluster",
@@ -743,6 +757,128 @@ class Daemon:
                               "stays unacknowledged and is delivered again", now)
             return False
 
+    # ---------------------------------------------------- stream ownership
+    # With shard.hashed_levels each shard computes the partition of every topic as the
+    # NATS mapping for shard.of partitions does (shiftwatch.partition) and feeds its
+    # engines only its own streams.  When the number of shards changes, a moving
+    # stream then has one writer at a time, decided by the mapping: the old owner
+    # lets it go at its reload (snapshot, engine dropped) and writes what still
+    # comes to it of the stream into the stream's journal, which the new owner
+    # loads with the snapshot (README, "Running shards").
+    def _note_topic(self, name: str, topic: str) -> None:
+        if name not in self._topic_of:
+            if len(self._topic_of) >= 2 * self.cfg.metrics.max_streams + SPEC_CACHE_MIN:
+                self._topic_of = {n: t for n, t in self._topic_of.items() if n in self.engines}
+            self._topic_of[name] = topic
+
+    def _owns_stream(self, name: str) -> bool:
+        topic = self._topic_of.get(name)
+        return self.owner is None or topic is None or self.owner.owns(topic)
+
+    def _take_foreign(self, foreign: dict[str, list[Any]], now: float) -> bool:
+        """Samples of streams the mapping gives another shard: not fed to an engine.
+        With state in the cluster they go to the stream's journal, stating the last
+        sequence this daemon knows of it (0, no message yet, for a stream it never
+        had: NATS may have held all of an old owner's deliveries back): its owner
+        loads them with the snapshot, or, when it has written the stream since, they
+        are refused and set aside.  Without the cluster they are set aside.  All
+        count as other_shard.  False: the cluster did not answer (the round is held
+        and taken again)."""
+        assert self.owner is not None
+        n = sum(len(g[3]) for g in foreign.values())
+        handed = 0
+        if self.cluster is not None:
+            out = []
+            for name, (spec, unit, times, values, arrivals) in foreign.items():
+                if name not in self.engines:
+                    out.append(JournalGroup(name, unit, np.asarray(times, dtype=np.float64),
+                                            np.asarray(values, dtype=np.float64),
+                                            np.asarray(arrivals, dtype=np.float64),
+                                            self._filters.get(name, spec.topic)))
+            if out:
+                try:
+                    refused = self.cluster.journal(out)
+                except ClusterError as exc:
+                    self.metrics.journal_failures.inc()
+                    self.rlog.warning("cluster_journal", f"samples of another shard's streams not "
+                                      f"written to their journal ({exc}); the round is held and "
+                                      "tried again", now)
+                    return False
+                gone = {g.stream for g in refused}
+                handed = sum(len(g.values) for g in out if g.stream not in gone)
+        self._count_drop("other_shard", n)
+        if handed:
+            self.metrics.samples_handed_over.inc(handed)
+        for name in foreign:
+            if self.owner.first_sight(name):
+                k = self.owner.partition(self._topic_of.get(name, name))
+
+                def text(name: str = name, k: int | None = k) -> str:
+                    return (f"stream {_printable(name)} belongs to shard {k} (shard.of "
+                            f"{self.owner.of if self.owner else '?'}), not to this one: its samples "
+                            "are not fed here (with state in the cluster they are written to the "
+                            "stream's journal for its owner until the owner writes the stream "
+                            "itself; then, or with local state, they are set aside)")
+
+                self.rlog.warning("other_shard", text, now, extra={"stream": name})
+        return True
+
+    def _let_go(self, names: list[str], *, save: bool = True) -> None:
+        """Streams this shard no longer owns: their state saved (state in the cluster),
+        their engines and series dropped.  Their open events carry on with the new owner."""
+        names = [n for n in names if n in self.engines]
+        if save and names and self.cluster is not None:
+            self._cluster_snapshot(names)
+        for n in names:
+            del self.engines[n]
+            self._filters.pop(n, None)
+            self._fed_since_snapshot.discard(n)
+            self._levels_due.pop(n, None)
+            self.metrics.remove_stream(n)
+            self.status.forget(n)
+
+    def _set_shard(self, new: Config) -> None:
+        """SIGHUP: take shard.of and shard.hashed_levels from the file (the number, the
+        prefix and the cluster stay until the next start)."""
+        sh, nsh = self.cfg.shard, new.shard
+        if sh is None or nsh is None:
+            if (sh is None) != (nsh is None):
+                self.log.warning("the shard section was added or removed: that takes a restart")
+            return
+        if nsh.topic_prefix != sh.topic_prefix:
+            self.log.warning("shard.topic_prefix changed: that takes a restart (kept: %s)", sh.topic_prefix)
+        if (nsh.of, nsh.hashed_levels) == (sh.of, sh.hashed_levels):
+            return
+        self.cfg = dataclasses.replace(self.cfg, shard=dataclasses.replace(
+            sh, of=nsh.of, hashed_levels=nsh.hashed_levels))
+        if not nsh.hashed_levels:
+            self.owner = None
+            self.log.info("shard.of is %d now; shard.hashed_levels is not set, so this shard feeds "
+                          "every stream that reaches it", nsh.of)
+            return
+        if self.owner is None:
+            self.owner = Ownership(sh.number, nsh.of, nsh.hashed_levels)
+        else:
+            self.owner.change(nsh.of, nsh.hashed_levels)
+        if sh.number >= nsh.of:
+            self.log.warning("shard %d is past shard.of %d: it owns no stream now; stop it once the "
+                             "NATS servers' mapping has %d partitions", sh.number, nsh.of, nsh.of)
+        gone = [n for n in self.engines if not self._owns_stream(n)]
+        # Deferred streams (loaded, waiting for their previous writer) that are not ours
+        # any more: the samples they hold go to their journal like any other shard's.
+        held = {n: self._deferred_samples.pop(n) for n in list(self._deferred)
+                if not self._owns_stream(n) and n in self._deferred_samples}
+        for n in [n for n in self._deferred if not self._owns_stream(n)]:
+            del self._deferred[n]
+        self._let_go(gone)
+        if held and not self._take_foreign(held, time.time()):
+            lost = sum(len(g[3]) for g in held.values())
+            self._count_drop("other_shard", lost)
+        self._topic_of = {n: t for n, t in self._topic_of.items() if n in self.engines}
+        self.log.info("shard.of is %d now: this shard owns the streams the mapping gives partition %d; "
+                      "%d stream(s) let go (state saved to the cluster, engines dropped), %d kept",
+                      nsh.of, sh.number, len(gone), len(self.engines))
+
     def _lease_lost(self) -> int:
         """The shard's lease is gone: stop at once, acknowledging nothing more."""
         assert self.lease is not None
@@ -756,6 +892,18 @@ class Daemon:
         if self.nats is not None:
             self.nats.close()
         return 3
+
+    def _start_failed(self) -> int:
+        """A start that failed after the shard's lease was claimed (say, the metrics port
+        was taken) gives the lease back: the restarted daemon would otherwise wait for
+        it to expire, up to cluster.lease, on every attempt."""
+        if self.server is not None:
+            self.server.close()
+        if self.lease is not None:
+            self.lease.release()
+        if self.nats is not None:
+            self.nats.close()
+        return 2
 
     def _stop_unstarted(self) -> int:
         self.log.info("stopped before the shard was ours")
@@ -832,16 +980,16 @@ class Daemon:
                 return self._stop_unstarted()
         except ClusterError as exc:
             self.log.error("cannot start: %s", exc)
-            return 2
+            return self._start_failed()
         except BrokerError as exc:
             self.log.error("%s", exc)
-            return 2
+            return self._start_failed()
         except OSError as exc:
             self.log.error("cannot start: %s", exc)
-            return 2
+            return self._start_failed()
         except RuntimeError as exc:  # "can't start new thread": a task limit too tight
             self.log.error("cannot start: %s (is the service's task limit, TasksMax=, too low?)", exc)
-            return 2
+            return self._start_failed()
         wd = watchdog_interval(self.env)
         next_wd = time.monotonic()
         next_snap = time.monotonic() + self.cfg.state.snapshot_every
@@ -856,6 +1004,8 @@ class Daemon:
             now = time.monotonic()
             if now >= next_check:
                 self.check_journal()
+                if self.link is not None:
+                    self.link.retry_subscriptions()
                 next_check = now + 1.0
             if wd is not None and now >= next_wd:
                 sd_notify("WATCHDOG=1", env=self.env)
@@ -1038,8 +1188,9 @@ class Daemon:
                 entry = by_spec[id(spec)] = (spec, [], [])
             entry[1].append(m)
             entry[2].append(topic_stream)
-        # stream -> [spec, unit, times, values, arrival times]
+        # stream -> [spec, unit, times, values, arrival times]; foreign: another shard's streams
         groups: dict[str, list[Any]] = {}
+        foreign: dict[str, list[Any]] = {}
         for spec, ms, names in by_spec.values():
             decoded = self._decode(spec, ms, now)
             for m, topic_stream, dec in zip(ms, names, decoded):
@@ -1048,11 +1199,14 @@ class Daemon:
                 if dec.problems:
                     self._decode_problems(m.topic, dec.problems, now)
                 arrived = m.arrived
+                into = groups if self.owner is None or self.owner.owns(m.topic) else foreign
                 if dec.columns is not None:  # a clean JSON array, as lists (see decode())
                     ts, vs = dec.columns
-                    g = groups.get(topic_stream)
+                    g = into.get(topic_stream)
                     if g is None:
-                        g = groups[topic_stream] = [spec, spec.unit, [], [], []]
+                        g = into[topic_stream] = [spec, spec.unit, [], [], []]
+                        if self.owner is not None:
+                            self._note_topic(topic_stream, m.topic)
                     g[2].extend([arrived] * len(vs) if ts is None else ts)
                     g[3].extend(vs)
                     g[4].extend([arrived] * len(vs))
@@ -1069,9 +1223,11 @@ class Daemon:
                         name = r.name  # already the stream's name (group/node/[device/]metric)
                     else:
                         name = stream_name(m.topic, r.name)
-                    g = groups.get(name)
+                    g = into.get(name)
                     if g is None:
-                        g = groups[name] = [spec, r.unit or spec.unit, [], [], []]
+                        g = into[name] = [spec, r.unit or spec.unit, [], [], []]
+                        if self.owner is not None:
+                            self._note_topic(name, m.topic)
                     g[2].append(arrived if r.time is None else r.time)
                     g[3].append(r.value)
                     g[4].append(arrived)
@@ -1088,6 +1244,9 @@ class Daemon:
                                   now)
                 self._held_round = ("load", msgs, [], in_time_order)
                 return
+        if foreign and not self._take_foreign(foreign, now):
+            self._held_round = ("load", msgs, [], in_time_order)  # nothing fed yet: all again
+            return
         fed: list[JournalGroup] = []
         for name, (spec, unit, times, values, arrivals, *prior) in groups.items():
             if name in self._deferred:
@@ -1699,11 +1858,11 @@ class Daemon:
                 self._journal_failed(exc)
         return True
 
-    def _cluster_snapshot(self) -> bool:
-        """Save the streams fed since the last snapshot to the cluster, each with the
-        alert records of it that the broker has not acknowledged yet."""
+    def _cluster_snapshot(self, only: list[str] | None = None) -> bool:
+        """Save the streams fed since the last snapshot (or the streams ``only``) to the
+        cluster, each with the alert records of it that the broker has not acknowledged yet."""
         assert self.cluster is not None
-        names = [n for n in self._fed_since_snapshot if n in self.engines]
+        names = [n for n in (self._fed_since_snapshot if only is None else only) if n in self.engines]
         pending: dict[str, list[tuple[str, bytes, int]]] = {}
         head = f"{self.prefix}/alerts/"
         for item in self.outbox.pending():
@@ -1807,6 +1966,7 @@ class Daemon:
         # endpoint, the state directory) stay as they were until the next start.
         self.cfg = dataclasses.replace(self.cfg, streams=new.streams, detection=new.detection)
         self._spec_cache.clear()
+        self._set_shard(new)
         self.status.forget_labels()
         if self.link is not None:
             p = self.shard_prefix

@@ -811,6 +811,7 @@ class Metrics:
     states_set_aside : saved stream states that could not be used at start.
     journal_damaged : sample journals found deleted, replaced or damaged.
     client_id_conflicts : takeovers of the MQTT session by another client with our client id.
+    samples_handed_over : samples of another shard's streams written to their journal for it.
     """
 
     def __init__(self, registry: CollectorRegistry | None = None, *,
@@ -873,6 +874,11 @@ class Metrics:
             "Times the broker closed the connection in a way that means another client connected "
             "with the same client id and took the session over; each doubles the wait before "
             "the next attempt.", registry=reg)
+        self.samples_handed_over = Counter(
+            "shiftwatch_samples_handed_over",
+            "Samples of streams that the shard mapping gives another shard, written to their "
+            "stream's journal in the cluster for that shard (they also count in "
+            "shiftwatch_messages_dropped_total{reason=\"other_shard\"}).", registry=reg)
         self.states_set_aside = Counter(
             "shiftwatch_stream_states_set_aside",
             "Saved stream states that could not be used at start (malformed or damaged); "

@@ -23,6 +23,7 @@ from __future__ import annotations
 import errno
 import json
 import logging
+import math
 import os
 import re
 import secrets
@@ -133,6 +134,8 @@ TAKEOVER_WINDOW = 10.0
 TAKEOVER_STREAK = 3
 #: Longest wait before reconnecting after such takeovers (it doubles with each).
 TAKEOVER_MAX_DELAY = 120
+#: Longest wait before a refused subscription is tried again (seconds; doubling from 2).
+SUBSCRIBE_RETRY_MAX = 30
 
 
 class BrokerError(RuntimeError):
@@ -488,6 +491,10 @@ class MqttLink:
         self._connected = False
         self._stopping = False
         self._own_mids: set[int] = set()  # ids of the status messages this link publishes itself
+        # SUBSCRIBEs waiting for their SUBACK (mid -> filter), and filters the broker refused:
+        # filter -> (when to try again, monotonic; attempts so far).  See retry_subscriptions.
+        self._sub_mids: dict[int, str] = {}
+        self._sub_refused: dict[str, tuple[float, int]] = {}
         self._last_error: str | None = None
         self._failed_attempts = 0
         self.host, self.port, tls = parse_url(cfg.url)
@@ -533,6 +540,7 @@ class MqttLink:
         self.client.on_message = self._handle_message
         self.client.on_publish = self._handle_publish
         self.client.on_connect_fail = self._handle_connect_fail
+        self.client.on_subscribe = self._handle_subscribe
 
     # ---------------------------------------------------------------- life
     def start(self) -> None:
@@ -592,9 +600,58 @@ class MqttLink:
         daemon is never sent what it publishes itself (a Sparkplug rebirth request under a
         ``spBv1.0/#`` filter, or its alerts under a filter that covers the prefix)."""
         if self.cfg.mqtt_version == "5":
-            client.subscribe(topic_filter, options=SubscribeOptions(qos=self.cfg.qos, noLocal=True))
+            _rc, mid = client.subscribe(topic_filter, options=SubscribeOptions(qos=self.cfg.qos, noLocal=True))
         else:
-            client.subscribe(topic_filter, qos=self.cfg.qos)
+            _rc, mid = client.subscribe(topic_filter, qos=self.cfg.qos)
+        if mid is not None:
+            with self._lock:
+                self._sub_mids[int(mid)] = topic_filter
+
+    def _handle_subscribe(self, client: paho.Client, userdata: Any, mid: int, reasons: Any,
+                          properties: Any) -> None:
+        """A SUBACK.  A refused filter (0x80 in MQTT 3.1.1; 0x80 and up in MQTT 5) brings no
+        message until it is subscribed again: NATS's MQTT side refuses a SUBSCRIBE whose
+        JetStream consumer it could not create in time, Mosquitto one its ACL denies.  It is
+        logged and tried again later (retry_subscriptions), waiting twice as long each time."""
+        with self._lock:
+            f = self._sub_mids.pop(int(mid), None)
+        if f is None or not reasons:
+            return
+        code = reasons[0]
+        if getattr(code, "is_failure", False) or getattr(code, "value", 0) >= 0x80:
+            with self._lock:
+                attempts = self._sub_refused.get(f, (0.0, 0))[1] + 1
+                wait = float(min(2 ** attempts, SUBSCRIBE_RETRY_MAX))
+                self._sub_refused[f] = (time.monotonic() + wait, attempts)
+            self.log.error("broker %s refused the subscription to %s (%s); no message of it arrives "
+                           "until it is taken: trying again in %.0f s", self.url, f, code, wait)
+            return
+        with self._lock:
+            was = self._sub_refused.pop(f, None)
+        if was is not None:
+            self.log.info("broker %s took the subscription to %s (attempt %d)", self.url, f, was[1] + 1)
+
+    def refused_subscriptions(self) -> list[str]:
+        """The filters the broker refused and that are not taken yet."""
+        with self._lock:
+            return sorted(self._sub_refused)
+
+    def retry_subscriptions(self) -> None:
+        """Subscribe again to the refused filters whose wait is over (the daemon's main loop
+        calls this about once a second)."""
+        if not self._sub_refused or not self.connected:
+            return
+        now = time.monotonic()
+        with self._lock:
+            due = [f for f, (when, _n) in self._sub_refused.items() if when <= now]
+            for f in due:  # no second SUBSCRIBE before this one's SUBACK
+                self._sub_refused[f] = (math.inf, self._sub_refused[f][1])
+        for f in due:
+            if f in self.subscriptions:
+                self._subscribe(self.client, f)
+            else:
+                with self._lock:
+                    self._sub_refused.pop(f, None)  # removed by a reload meanwhile
 
     def ack(self, mid: int, qos: int) -> None:
         """Acknowledge a processed QoS 1 message to the broker."""
@@ -643,6 +700,8 @@ class MqttLink:
         session = getattr(flags, "session_present", False)
         self.log.info("connected to broker %s (session %s)", self.url,
                       "resumed" if session else "new")
+        with self._lock:
+            self._sub_mids.clear()  # SUBACKs of an earlier connection never come
         for f in self.subscriptions:
             self._subscribe(client, f)
         info = client.publish(self.status_topic, b"online", qos=1, retain=True)

@@ -15,18 +15,47 @@ which is what the fault tests do to one of them.
 
 from __future__ import annotations
 
+import random
 import signal
+import socket
 import subprocess
 import tempfile
 from pathlib import Path
 
-from shiftwatch.broker import find_program, free_port, port_open, wait_until
+from shiftwatch.broker import find_program, port_open, wait_until
 
 #: The servers' MQTT ack_wait: unacknowledged messages are sent again after it (the
 #: daemons' cluster.redelivery_wait in the tests is above it).
 ACK_WAIT = "2s"
 #: The topic levels the tests' mapping partitions (after the plant name).
 PLANT = "brackenfield"
+
+
+#: Where the kit's listening ports come from: below Linux's ephemeral range (32768 to
+#: 60999 by default), whose ports the kernel also gives to outgoing connections as their
+#: local ports.  A port taken from that range and bound later (a shard's metrics port at
+#: base + k, a NATS server started again on its port) could meanwhile be the local port
+#: of some connection, and the bind then fails with "Address already in use".
+PORT_RANGE = (20000, 32000)
+
+
+def _bindable(port: int) -> bool:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        try:
+            s.bind(("127.0.0.1", port))
+        except OSError:
+            return False
+    return True
+
+
+def free_port_block(n: int = 1) -> int:
+    """The first of ``n`` consecutive loopback ports, all free now, outside the ephemeral range."""
+    lo, hi = PORT_RANGE
+    for _ in range(1000):
+        base = random.randrange(lo, hi - n)  # not cryptography: spreads concurrent runs apart
+        if all(_bindable(base + i) for i in range(n)):
+            return base
+    raise RuntimeError(f"no {n} consecutive free ports in {lo} to {hi}")
 
 
 def find_nats_server() -> str | None:
@@ -116,7 +145,10 @@ class NatsCluster:
         self._tmp = None if base is not None else tempfile.TemporaryDirectory(prefix="sw-nats-")
         self.base = Path(base if base is not None else self._tmp.name)  # type: ignore[union-attr]
         self.parts = parts
-        ports = [(free_port(), free_port(), free_port()) for _ in range(size)]
+        ports = []
+        for _ in range(size):
+            base = free_port_block(3)
+            ports.append((base, base + 1, base + 2))
         self.servers = [NatsServer(binary, f"n{i + 1}", self.base, *p) for i, p in enumerate(ports)]
         for s in self.servers:
             s.write_config([p[1] for p in ports if p[1] != s.cluster_port], parts)

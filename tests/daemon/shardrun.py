@@ -30,17 +30,19 @@ from typing import Any
 
 import numpy as np
 
-from shiftwatch.broker import free_port, wait_until
+from shiftwatch.broker import wait_until
 from shiftwatch.mqtt import PlainClient
 
 try:  # in the test package
     from .killrun import metric, scrape
-    from .natskit import NatsCluster
+    from .natskit import NatsCluster, free_port_block
 except ImportError:  # from the benches, with tests/daemon on sys.path
     from killrun import metric, scrape  # type: ignore[no-redef]
-    from natskit import NatsCluster  # type: ignore[no-redef]
+    from natskit import NatsCluster, free_port_block  # type: ignore[no-redef]
 
 T0 = 1_790_000_000.0
+#: The topic levels natskit's mapping hashes (its wildcards 1, 2, 3 below the plant name).
+HASHED_LEVELS = (2, 3, 4)
 NOISE = 0.2
 STEP = 0.6  # 3 sigma
 
@@ -140,18 +142,21 @@ class ShardRun:
     """The cluster, ``shards`` daemons, a publisher and a viewer, in ``workdir``."""
 
     def __init__(self, workdir: Path, command: list[str], cluster: NatsCluster, *, shards: int = 3,
-                 plan: Plan | None = None, name: str = "sw", lease: str = "15s") -> None:
+                 plan: Plan | None = None, name: str = "sw", lease: str = "15s", keepalive: int = 5) -> None:
         self.workdir = Path(workdir)
         self.command = command
         self.cluster = cluster
         self.plan = plan or Plan()
         self.name = name
         self.lease = lease
-        self.base_port = free_port()
+        self.keepalive = keepalive
+        # Each shard's metrics port is base + k (metrics_port: offset): the whole block free.
+        self.base_port = free_port_block(8)
         self.shards: dict[int, Shard] = {}
         self.records: list[dict[str, Any]] = []
         self.status: dict[str, str] = {}
         self.restarts = 0
+        self._probes: set[str] = set()
         self._closing = threading.Event()
         self._lock = threading.Lock()
         self.clients: list[PlainClient] = []
@@ -162,14 +167,14 @@ class ShardRun:
         self.parts = parts
         servers = ", ".join(self.cluster.urls)
         self.config.write_text(
-            f"broker:\n  url: {self.cluster.mqtt_url(0)}\n  client_id: {self.name}\n  keepalive: 5\n"
+            f"broker:\n  url: {self.cluster.mqtt_url(0)}\n  client_id: {self.name}\n  keepalive: {self.keepalive}\n"
             "  mqtt_version: \"3.1.1\"\n"
             "streams:\n  - topic: brackenfield/+/+/fill\n    format: json\n"
             "    value: v\n    time: ts\n    unit: g\n"
             f"alerts:\n  topic_prefix: {self.name}/out\n"
             f"metrics:\n  listen: 127.0.0.1:{self.base_port}\n"
             f"state:\n  dir: {self.workdir / state_dir}\n  snapshot_every: 2s\n  keep: cluster\n"
-            f"shard:\n  number: 0\n  of: {parts}\n"
+            f"shard:\n  number: 0\n  of: {parts}\n  hashed_levels: {list(HASHED_LEVELS)}\n"
             f"cluster:\n  servers: [{servers}]\n  name: {self.name}\n  lease: {self.lease}\n"
             "  redelivery_wait: 6s\n")
 
@@ -195,6 +200,51 @@ class ShardRun:
             if s.proc is not None:
                 s.proc.send_signal(signal.SIGHUP)
 
+    def reload_shards(self, numbers: list[int], line: str, timeout: float = 30.0) -> None:
+        """SIGHUP to the running shards ``numbers`` (they read the configuration again), then
+        wait for ``line`` in each one's log after it."""
+        offsets = {}
+        for k in numbers:
+            sh = self.shards[k]
+            offsets[k] = len(sh.log())
+            if sh.proc is not None and sh.proc.poll() is None:
+                sh.proc.send_signal(signal.SIGHUP)
+        for k in numbers:
+            sh = self.shards[k]
+            if not wait_until(lambda sh=sh, k=k: line in sh.log()[offsets[k]:], timeout):
+                raise RuntimeError(f"shard {k} did not log {line!r} after SIGHUP: {sh.log()[-2000:]}")
+
+    def cluster_holds(self, streams: list[str]) -> list[str]:
+        """The streams of ``streams`` of which the cluster holds a snapshot or a journal
+        message under this run's cluster.name (read with nats-py, not through a daemon)."""
+        import asyncio
+
+        import nats
+        from nats.js.errors import NotFoundError
+
+        from shiftwatch.clusterstate import stream_key
+
+        async def go() -> list[str]:
+            nc = await nats.connect(servers=self.cluster.urls, connect_timeout=2, max_reconnect_attempts=2)
+            try:
+                js = nc.jetstream(timeout=5)
+                out = []
+                for s in streams:
+                    key = stream_key(s)
+                    for stream, subject in ((f"{self.name}_journal", f"{self.name}.journal.{key}"),
+                                            (f"KV_{self.name}_state", f"$KV.{self.name}_state.{key}")):
+                        try:
+                            await js.get_last_msg(stream, subject)
+                        except NotFoundError:
+                            continue
+                        out.append(s)
+                        break
+                return out
+            finally:
+                await nc.close()
+
+        return asyncio.run(go())
+
     def shard(self, k: int) -> Shard:
         if k not in self.shards:
             self.shards[k] = Shard(self.command, self.config, k, self.workdir / f"shard{k}.log",
@@ -210,7 +260,9 @@ class ShardRun:
             self.records.append(body)
 
     def _on_message(self, topic: str, payload: bytes) -> None:
-        if "/status/" in topic:
+        if topic.endswith("/~probe"):
+            self._probes.add(topic)
+        elif "/status/" in topic:
             with self._lock:
                 self.status[topic.rsplit("-", 1)[-1]] = payload.decode(errors="replace")
         else:
@@ -238,10 +290,32 @@ class ShardRun:
 
     def start(self) -> None:
         self.supervise()
-        viewer = PlainClient(self.cluster.mqtt_url(1), f"{self.name}-viewer",
-                             subscribe=[f"{self.name}/out/alerts/#", f"{self.name}/out/status/#"],
+        filters = [f"{self.name}/out/alerts/#", f"{self.name}/out/status/#"]
+        viewer = PlainClient(self.cluster.mqtt_url(1), f"{self.name}-viewer", subscribe=filters,
                              on_message=self._on_message, mqtt_version="3.1.1").start()
         self.clients.append(viewer)
+        self._confirm_subscriptions(viewer, filters)
+
+    def _confirm_subscriptions(self, viewer: PlainClient, filters: list[str], timeout: float = 90.0) -> None:
+        """Wait until a probe published under each filter comes back to the viewer.  NATS's
+        MQTT side answers a SUBSCRIBE whose JetStream consumer it could not create in time
+        with a failure code ("Unable to add JetStream consumer ... timeout" in its log, seen
+        on this loaded machine): the viewer then saw no alert record at all.  A filter whose
+        probe does not come back is subscribed again."""
+        probes = {f: f[:-1] + "~probe" for f in filters}
+        deadline = time.monotonic() + timeout
+        while True:
+            missing = [f for f, t in probes.items() if t not in self._probes]
+            if not missing:
+                return
+            if time.monotonic() > deadline:
+                raise RuntimeError(f"the viewer's subscriptions {missing} were never confirmed")
+            for f in missing:
+                viewer.publish(probes[f], b"probe", qos=1)
+            if wait_until(lambda missing=missing: all(probes[f] in self._probes for f in missing), 5.0):
+                continue
+            for f in missing:
+                viewer.client.subscribe(f, qos=1)
 
     def publish(self, during: Callable[[int], None] | None = None) -> None:
         """Publish the plan (from the cluster's third server); ``during(j)`` is called

@@ -50,6 +50,11 @@ def test_the_shipped_schema_is_generated_from_the_same_definitions() -> None:
     ("streams:\n  - format: json\n", "plant.yaml:2: the 1st stream (streams[0]): topic: is required"),
     ("broker:\n  url: http://x\n",
      "plant.yaml:2: broker.url: must start with mqtt:// or mqtts://, got 'http://x'"),
+    ("shard:\n  number: 0\n  of: 3\n  hashed_levels: [2, 0]\n",
+     ("plant.yaml:4: shard.hashed_levels: must be a list of topic level numbers counted from 1, e.g. "
+      "[2, 3, 4], got [2, 0]")),
+    ("shard:\n  number: 0\n  of: 3\n  hashed_levels: [2, 3, 2]\n",
+     "plant.yaml:4: shard.hashed_levels: names a level twice: [2, 3, 2]"),
     ("broker:\n  mqtt_version: 4\n",
      "plant.yaml:2: broker.mqtt_version: must be text, one of '5', '3.1.1', got 4"),
     ("broker:\n  receive_maximum: 70000\n",

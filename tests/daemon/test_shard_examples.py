@@ -14,6 +14,7 @@ import yaml
 from shiftwatch.config import parse_config
 
 from .natskit import find_nats_server, partition_mapping
+from .shardrun import HASHED_LEVELS
 
 ROOT = Path(__file__).resolve().parents[2]
 NATS_EXAMPLE = ROOT / "config" / "nats-partitions.conf"
@@ -55,5 +56,8 @@ def test_the_statefulset_example_runs_one_shard_per_pod() -> None:
         "metadata.labels['apps.kubernetes.io/pod-index']"
     labels = sts["spec"]["template"]["metadata"]["labels"]
     assert sts["spec"]["selector"]["matchLabels"].items() <= labels.items()
+    # The hashed levels are those of the mapping the example and the shard tests use
+    # (the partition function is checked against the real server in test_shards.py).
+    assert cfg.shard.hashed_levels == HASHED_LEVELS
     # The configuration's redelivery wait is above the NATS example's ack_wait.
     assert cfg.cluster.redelivery_wait > 5.0 and 'ack_wait: "5s"' in NATS_EXAMPLE.read_text()

@@ -15,14 +15,21 @@ References outside the project:
 - MQTT 3.1.1 section 4.3.2 (OASIS standard): a QoS 1 message not acknowledged by
   the receiver is delivered again; that is what carries a killed shard's backlog
   to its successor.
+- nats-server 2.9.10 itself (Debian's package) for the partition function: which
+  ``part.<k>`` subject the real cluster's ``partition()`` mapping delivers each topic on
+  is the reference for ``shiftwatch.partition`` (FNV-1a 32-bit, whose constants and
+  test vectors are those of the IETF draft draft-eastlake-fnv, over the wildcard tokens
+  joined with nothing between them, mod n).
 - At-least-once delivery with a key to drop repeats is common practice for
   event streams; the record's ``id`` (with ``phase``) is that key.
 
-The last test changes the mapping to 4 partitions: it runs last in the module.
+The last two tests change the mapping to 4 partitions (and back at their end): they run last in the module.
 """
 
 from __future__ import annotations
 
+import signal
+import socket
 import sys
 import threading
 import time
@@ -31,9 +38,13 @@ from pathlib import Path
 
 import pytest
 
+from shiftwatch.broker import wait_until
+from shiftwatch.mqtt import PlainClient
+from shiftwatch.partition import fnv1a_32, partition_of
+
 from .killrun import scrape
 from .natskit import NatsCluster
-from .shardrun import Plan, ShardRun
+from .shardrun import HASHED_LEVELS, Plan, ShardRun
 
 CMD = [sys.executable, "-m", "shiftwatch"]
 
@@ -48,13 +59,94 @@ def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[NatsCluster]:
     c.stop()
 
 
-def _run(tmp_path: Path, cluster: NatsCluster, name: str, plan: Plan) -> ShardRun:
-    r = ShardRun(tmp_path, CMD, cluster, plan=plan, name=name)
+def _run(tmp_path: Path, cluster: NatsCluster, name: str, plan: Plan, keepalive: int = 5) -> ShardRun:
+    r = ShardRun(tmp_path, CMD, cluster, plan=plan, name=name, keepalive=keepalive)
     r.start()
     for k in range(3):
         r.shard(k).start()
         assert r.online(k), f"shard {k} never said online: {r.shard(k).log()[-2000:]}"
     return r
+
+
+def test_partition_function_is_the_one_nats_server_applies(cluster: NatsCluster) -> None:
+    # Reference: the real nats-server 2.9 cluster.  Topics published over MQTT through the
+    # cluster's mapping partition(3, 1, 2, 3) arrive on part/<k>/...; shiftwatch.partition
+    # must give the same k for every one.  The topics include pairs whose wildcard tokens
+    # join to the same text (ab/c/d and a/bc/d): nats-server joins them with nothing
+    # between, so those pairs share a partition, which a separator would break.
+    # FNV-1a 32-bit reference values: the IETF draft draft-eastlake-fnv's test vectors.
+    assert fnv1a_32(b"") == 0x811C9DC5
+    assert fnv1a_32(b"a") == 0xE40C292C
+    assert fnv1a_32(b"foobar") == 0xBF9CF968
+    topics = [f"brackenfield/line{i}/head{j}/fill" for i in range(12) for j in range(12)]
+    topics += [f"brackenfield/{a}/{b}/{c}" for a, b, c in
+               [("ab", "c", "d"), ("a", "bc", "d"), ("a", "b", "cd"), ("abc", "d", "x"), ("a", "bcd", "x"),
+                ("L-7", "Kopf_2", "temp"), ("L-7K", "opf_2", "temp"), ("0", "0", "0"), ("00", "", "0")]]
+    arrived: dict[str, str] = {}
+    lock = threading.Lock()
+
+    def on(topic: str, payload: bytes) -> None:
+        with lock:
+            arrived[payload.decode()] = topic
+
+    sub = PlainClient(cluster.mqtt_url(1), "partition-probe-sub", subscribe=["part/#"], on_message=on,
+                      mqtt_version="3.1.1").start()
+    pub = PlainClient(cluster.mqtt_url(2), "partition-probe-pub", mqtt_version="3.1.1").start()
+    try:
+        # The subscription has reached every server once a probe comes back.
+        def probe() -> bool:
+            pub.publish("brackenfield/probe/probe/probe", b"probe", qos=1)
+            return "probe" in arrived
+
+        assert wait_until(probe, 30, every=0.5)
+        for t in topics:
+            pub.publish(t, t.encode(), qos=1)
+        assert wait_until(lambda: all(t in arrived for t in topics), 30), \
+            sorted(set(topics) - set(arrived))[:10]
+    finally:
+        sub.stop()
+        pub.stop()
+    wrong = {}
+    for t in topics:
+        k = int(arrived[t].split("/")[1])
+        assert arrived[t] == f"part/{k}/{t}"
+        if partition_of(t, HASHED_LEVELS, cluster.parts) != k:
+            wrong[t] = k
+    assert not wrong, wrong
+    for a, b in [("brackenfield/ab/c/d", "brackenfield/a/bc/d"), ("brackenfield/a/b/cd", "brackenfield/ab/c/d"),
+                 ("brackenfield/abc/d/x", "brackenfield/a/bcd/x"),
+                 ("brackenfield/L-7/Kopf_2/temp", "brackenfield/L-7K/opf_2/temp")]:
+        assert arrived[a].split("/")[1] == arrived[b].split("/")[1], (a, b)
+    # And the three partitions all occur (the check is not passed by one constant answer).
+    assert {v.split("/")[1] for v in arrived.values()} == {"0", "1", "2"}
+
+
+def test_a_shard_that_cannot_start_gives_its_lease_back(tmp_path: Path, cluster: NatsCluster) -> None:
+    # A run of this module on the shared machine failed as a CI run had ("shard 1 did not
+    # start" within 60 s): the shard's metrics port was taken (the kit took base + k from
+    # the range the kernel also hands outgoing connections as local ports), the daemon
+    # stopped with status 2 after it had claimed its lease, and every restart waited for
+    # that lease to expire (cluster.lease), then failed the same way.  A start that fails
+    # gives the lease back: the next attempt claims it at once.
+    r = ShardRun(tmp_path, CMD, cluster, plan=Plan(samples=10), name="portclash")
+    sh = r.shard(0)
+    blocker = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+    try:
+        blocker.bind(("127.0.0.1", sh.port))
+        blocker.listen(1)
+        with pytest.raises(RuntimeError, match="did not start"):
+            sh.start()
+        assert sh.proc is not None and sh.proc.wait(30) == 2
+        first = sh.log()
+        assert "Address already in use" in first and "shard 0 is ours" in first, first[-2000:]
+        assert "shard 0 released" in first, first[-2000:]
+        blocker.close()
+        sh.start()
+        second = sh.log()[len(first):]
+    finally:
+        blocker.close()
+        r.close()
+    assert "shard 0 is ours" in second and "is held by" not in second, second[-2000:]
 
 
 def test_three_shards_split_the_plant_and_keep_stream_names(tmp_path: Path, cluster: NatsCluster) -> None:
@@ -92,11 +184,14 @@ def test_shard_killed_and_restarted_on_an_empty_state_dir(tmp_path: Path, cluste
     r = _run(tmp_path, cluster, "killed", plan)
     restarted = threading.Event()
     errors: list[str] = []
+    held: list[str] = []
 
     def restart() -> None:
         try:
             r.shards[1].kill()
             r.status.pop("1", None)
+            # What the dead shard left in the cluster of its streams (written before the kill).
+            held.extend(r.cluster_holds([s for s in plan.names() if partition_of(s, HASHED_LEVELS, 3) == 1]))
             # Another box: a state directory that has never been used.
             r.fresh_state(1, "state-elsewhere")
             r.shard(1).start()
@@ -124,13 +219,16 @@ def test_shard_killed_and_restarted_on_an_empty_state_dir(tmp_path: Path, cluste
             log = r.shard(1).log()
     finally:
         r.close()
-    print(tally.line())
+    print(tally.line() + f"; streams the dead shard had left in the cluster: {len(held)}")
     # The new shard 1 waited for the dead one's lease, then took from the cluster the streams
-    # the dead one had written.  (In one CI-equivalent run the dead one had written none:
-    # NATS's MQTT side held its session's deliveries back from the start.)
-    dead = (r.workdir / "shard1.log").read_text(errors="replace")
-    if "new stream" in dead or "from the cluster" in dead:
+    # the dead one had written: none of those warmed up again.  Which streams those are is
+    # read from the cluster itself at the kill: a dead shard that had created engines may
+    # not have journaled them yet (in one run it had three engines and nothing in the
+    # cluster; NATS then delivered all of its unacknowledged samples to the new shard).
+    if held:
         assert "loaded" in log and "from the cluster" in log, log[-3000:]
+    for s in held:
+        assert f"new stream {s} " not in log, (s, log[-3000:])
     # What the issue asks of a shard moved to an empty disk: no step missed, none under a
     # second id.  Samples: none lost in every run but that one, where the held-back
     # deliveries came after newer samples, later than cluster.redelivery_wait, and 1,500
@@ -177,13 +275,17 @@ def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, clus
     errors: list[str] = []
 
     def grow() -> None:
-        # The README's order: the new shard first (it subscribes to a partition that has
-        # no traffic yet), then the mapping on every server.
+        # The README's order: shard.of raised in the file and the new shard started (it
+        # subscribes to a partition no topic maps to yet); the old shards reloaded (each
+        # lets go of the streams the mapping for 4 partitions gives another shard: state
+        # saved to the cluster, engine dropped; what still comes to it of them goes to
+        # their journal); then the mapping on every server.
         try:
             r.write_config(4)
             r.shard(3).start()
             if not r.online(3):
                 raise RuntimeError("shard 3 did not say online")
+            r.reload_shards([0, 1, 2], "shard.of is 4 now")
             r.remap(4)
             remapped_at.append(published[-1])
         except RuntimeError as exc:
@@ -207,23 +309,103 @@ def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, clus
         assert remapped_at and remapped_at[0] < plan.samples - 100, remapped_at
         counts = r.settle(120)
         tally = r.tally(counts, time.monotonic() - t0)
-        new_shard = scrape(r.shard(3).port)
+        pages = {k: scrape(sh.port) for k, sh in r.shards.items()}
     finally:
         r.close()
         r.repartition(3)
-    print(tally.line())
+    handed = sum(v for m in pages.values() for (n, _lab), v in m.items()
+                 if n == "shiftwatch_samples_handed_over_total")
+    print(tally.line() + f"; handed over through the journal {handed:.0f}")
+    # Each stream ends with exactly the shard the real cluster's mapping for 4 partitions
+    # sends it to (the streams shard 3 holds came to it from NATS under part/3): the old
+    # owners let the moved ones go instead of keeping stale engines.
+    holders: dict[str, list[int]] = {s: [] for s in plan.names()}
+    for k, m in pages.items():
+        for n, lab in m:
+            if n == "shiftwatch_samples_total":
+                holders[dict(lab)["stream"]].append(k)
+    assert holders == {s: [partition_of(s, HASHED_LEVELS, 4)] for s in plan.names()}, holders
     # The fourth shard took streams over with their history: their sample counts
     # (part of the saved state) include the samples taken before the change, at 300.
-    took = [v for (n, _lab), v in new_shard.items() if n == "shiftwatch_samples_total"]
+    took = [v for (n, _lab), v in pages[3].items() if n == "shiftwatch_samples_total"]
     assert took and min(took) > 300, took
-    # With the README's order the new partition has its subscriber before any topic maps
-    # to it, and a moving stream's new owner waits cluster.redelivery_wait when the old
-    # owner wrote it lately.  What that does not cover: an old owner whose deliveries the
-    # cluster held back (NATS's MQTT side sometimes stalls a QoS 1 session for seconds
-    # under a burst, seen with plain subscribers too) gets the stream's samples from
-    # before the change after its new owner has begun, and the two write the stream in
-    # turn until one gives up.  Measured over ten runs: nothing lost in seven; in the
-    # others 212, 1,350 (one step under two ids) and 1,380 samples (two steps missed).
-    # Open in issue 15: ownership of a moving stream is decided by who writes last, not
-    # by the mapping.  So the tally is printed, and what is asserted is what held in
-    # every run: the streams moved with their history, while samples flowed.
+    # What the issue asks of a reshard while samples flow: no step missed, none confirmed
+    # under two ids.  Samples an old owner gets late (NATS's MQTT side sometimes holds a
+    # QoS 1 session's deliveries back for seconds) after the new owner has written the
+    # stream are set aside and counted (other_shard): the bound only catches a gross loss;
+    # the tally is printed (README, Shards measured).
+    assert tally.shifts_missed == 0, tally.line()
+    assert tally.shifts_with_two_ids == 0, tally.line()
+    assert tally.lost <= tally.published // 10, tally.line()
+
+
+def test_an_old_owner_held_back_at_a_reshard_never_writes_a_moved_stream(tmp_path: Path,
+                                                                          cluster: NatsCluster) -> None:
+    # The stall behind the measured losses, made certain: right after the old shards'
+    # reload, the old owner of the most moving streams is stopped (SIGSTOP) for 9 s, longer
+    # than cluster.redelivery_wait (6 s), while the mapping changes.  (The MQTT keepalive is
+    # 30 s here, so the broker keeps the stopped shard's connection: a frozen process, not
+    # a lost connection, is what is tested.)
+    # Its deliveries of the moving streams from before the change reach it only after their
+    # new owner has begun.  Before ownership by the mapping, such an owner wrote the
+    # streams again and the two shards took turns (steps missed, a step under two ids).
+    # Now its late samples are refused by the journal and set aside, counted: every sample
+    # the streams that moved away from it lost is one it set aside; no step is missed, none
+    # is confirmed under two ids.  (With the keepalive of the other tests, 5 s, NATS dropped
+    # the stopped shard's connection, and the streams it kept or gained lost samples
+    # delivered again after newer ones, as after any lost connection (README, Shards
+    # measured), in one run two steps of them.  The bound on those is the loose one.)
+    plan = Plan(samples=1000, rate=100.0)
+    r = _run(tmp_path, cluster, "stalled", plan, keepalive=30)
+    names = plan.names()
+    moving = {k: [s for s in names if partition_of(s, HASHED_LEVELS, 3) == k
+                  and partition_of(s, HASHED_LEVELS, 4) != k] for k in range(3)}
+    stalled = max(moving, key=lambda k: len(moving[k]))
+    grown = threading.Event()
+    errors: list[str] = []
+
+    def grow() -> None:
+        try:
+            r.write_config(4)
+            r.shard(3).start()
+            if not r.online(3):
+                raise RuntimeError("shard 3 did not say online")
+            r.reload_shards([0, 1, 2], "shard.of is 4 now")
+            proc = r.shard(stalled).proc
+            assert proc is not None
+            proc.send_signal(signal.SIGSTOP)
+            try:
+                r.remap(4)
+                time.sleep(9.0)
+            finally:
+                proc.send_signal(signal.SIGCONT)
+        except RuntimeError as exc:
+            errors.append(str(exc))
+        grown.set()
+
+    def during(j: int) -> None:
+        if j == 300:
+            threading.Thread(target=grow, daemon=True).start()
+
+    try:
+        t0 = time.monotonic()
+        r.publish(during)
+        assert grown.wait(120)
+        assert not errors, errors
+        counts = r.settle(150)
+        tally = r.tally(counts, time.monotonic() - t0)
+        page = scrape(r.shard(stalled).port)
+    finally:
+        r.close()
+        r.repartition(3)
+    other = sum(v for (n, lab), v in page.items()
+                if n == "shiftwatch_messages_dropped_total" and dict(lab).get("reason") == "other_shard")
+    handed = sum(v for (n, _lab), v in page.items() if n == "shiftwatch_samples_handed_over_total")
+    moved_short = sum(plan.samples - min(int(counts.get(s, 0)), plan.samples) for s in moving[stalled])
+    print(tally.line() + f"; shard {stalled} (stopped 9 s, {len(moving[stalled])} streams moving away, "
+          f"{moved_short} of their samples lost): other shards' samples {other:.0f}, handed over "
+          f"{handed:.0f}, set aside {other - handed:.0f}")
+    assert tally.shifts_missed == 0, tally.line()
+    assert tally.shifts_with_two_ids == 0, tally.line()
+    assert moved_short <= other - handed, (moved_short, tally.line())
+    assert tally.lost <= tally.published // 10, tally.line()
