@@ -3,8 +3,8 @@ engine handed one sample per call, measured in the same run.
 
 Usage, from the repository root with the package installed::
 
-    python tests/bench/bench_rounds.py            # 10,000 streams, about 2 minutes
-    python tests/bench/bench_rounds.py --quick    # 2,000 streams, a smoke check
+    python tests/bench/bench_rounds.py            # 10,000 streams, 13 minutes on a busy 2-core machine
+    python tests/bench/bench_rounds.py --quick    # 2,000 streams, about 3 minutes
 
 Everything runs in this process; no broker.  10,000 streams (4 in 5 white noise,
 1 in 5 AR(1) with phi 0.6), each past its warm-up on 2,000 samples, then rounds
