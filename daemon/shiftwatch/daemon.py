@@ -1531,59 +1531,90 @@ class Daemon:
         self._level_changed(name, eng)
         self.metrics.update_stream(name, StreamStats.from_engine(eng))
         self._fed_since_snapshot.add(name)
-        if rejoin and self.pool is not None:
+        if rejoin and self.pool is not None and not (self.floor.holding() and self.floor.concerned_by_hold(name)):
             terms = eng.calm_terms()
             if terms is not None:
                 self.pool.join(name, terms)
 
     # ------------------------------------------------------- calm streams
     def _pool_round(self, groups: dict[str, list[Any]], now: float) -> JournalSingles | None:
-        """The round's samples of pooled (calm) streams: one sample each goes through the
-        pool's charts together (and into the journal as columns); a stream whose charts
-        could trip, whose sample is not plain or whose batch is full is fed at once.  The
-        others (more samples, or a hold in force) leave the pool and go the per-stream
-        way, their waiting samples first.  Takes those streams out of ``groups``."""
+        """The round's samples of pooled (calm) streams go through the pool's charts
+        together, a layer at a time (every such stream's first sample, then the second of
+        those with two, ...), and into the journal as columns; a stream whose charts could
+        trip, whose sample is not plain or whose batch is full is fed at once, with the
+        rest of its round.  A stream a hold names, or whose samples are not plain numbers,
+        leaves the pool and goes the per-stream way, its waiting samples first.  Takes the
+        pooled streams out of ``groups``."""
         pool = self.pool
         assert pool is not None
-        holding = self.floor.holding()
-        names: list[str] = []
-        rows: list[list[Any]] = []
-        ts: list[float] = []
-        xs: list[float] = []
-        arr: list[float] = []
+        holds = self.floor.holding()
+        active: list[tuple[str, list[Any]]] = []
         for name, g in groups.items():
             if name not in pool:
                 continue
-            t, v = g[2], g[3]
-            if holding or len(t) != 1 or not (_plain_number(v[0]) and _plain_number(t[0])):
+            if ((holds and self.floor.concerned_by_hold(name))
+                    or not all(map(_plain_number, g[2])) or not all(map(_plain_number, g[3]))):
                 g.append(pool.take(name))
                 continue
-            names.append(name)
-            rows.append(g)
-            ts.append(t[0])
-            xs.append(v[0])
-            arr.append(g[4][0])
-        if not names:
+            active.append((name, g))
+        if not active:
             return None
-        for name in names:
+        for name, _ in active:
             del groups[name]
-        t_a, x_a, a_a = np.array(ts), np.array(xs), np.array(arr)
-        newest = self.floor.newest
-        for name, tv in zip(names, ts):  # as FloorDesk.split_held keeps it
-            if tv > newest.get(name, -math.inf):
-                newest[name] = tv
-        handed = pool.offer(names, t_a, x_a, a_a, now=time.monotonic())
-        for i in np.flatnonzero(handed).tolist():
-            name = names[i]
-            self._feed_waiting(name, now)
         filters = self._filters
-        return JournalSingles(names, [g[1] for g in rows], [filters.get(n, g[0].topic) for n, g in zip(names, rows)],
-                              t_a, x_a, a_a)
+        newest = self.floor.newest
+        names: list[str] = []
+        units: list[str | None] = []
+        tops: list[str | None] = []
+        ts: list[float] = []
+        xs: list[float] = []
+        arr: list[float] = []
+        mono = time.monotonic()
+        layer = 0
+        while active:
+            lt = [g[2][layer] for _, g in active]
+            lx = [g[3][layer] for _, g in active]
+            la = [g[4][layer] for _, g in active]
+            ln = [n for n, _ in active]
+            names += ln
+            units += [g[1] for _, g in active]
+            tops += [filters.get(n, g[0].topic) for n, g in active]
+            ts += lt
+            xs += lx
+            arr += la
+            for name, tv in zip(ln, lt):  # as FloorDesk.split_held keeps it
+                if tv > newest.get(name, -math.inf):
+                    newest[name] = tv
+            handed = pool.offer(ln, np.array(lt, dtype=np.float64), np.array(lx, dtype=np.float64),
+                                np.array(la, dtype=np.float64), now=mono)
+            later: list[tuple[str, list[Any]]] = []
+            for (name, g), h in zip(active, handed.tolist()):
+                rest = layer + 1
+                if h:
+                    # Fed now with the rest of its round, which is journaled with it here.
+                    if len(g[2]) > rest:
+                        names += [name] * (len(g[2]) - rest)
+                        units += [g[1]] * (len(g[2]) - rest)
+                        tops += [filters.get(name, g[0].topic)] * (len(g[2]) - rest)
+                        ts += g[2][rest:]
+                        xs += g[3][rest:]
+                        arr += g[4][rest:]
+                    self._feed_waiting(name, now, then=(g[2][rest:], g[3][rest:], g[4][rest:]))
+                elif len(g[2]) > rest:
+                    later.append((name, g))
+            active = later
+            layer += 1
+        return JournalSingles(names, units, tops, np.array(ts, dtype=np.float64),
+                              np.array(xs, dtype=np.float64), np.array(arr, dtype=np.float64))
 
-    def _feed_waiting(self, name: str, now: float, *, rejoin: bool = True) -> None:
-        """A pooled stream leaves the pool: its engine takes the samples that waited."""
+    def _feed_waiting(self, name: str, now: float, *, rejoin: bool = True,
+                      then: tuple[list[float], list[float], list[float]] | None = None) -> None:
+        """A pooled stream leaves the pool: its engine takes the samples that waited (and
+        ``then``, more of the round's samples after them)."""
         assert self.pool is not None
         t, x, a = self.pool.take(name)
+        if then is not None and then[0]:
+            t, x, a = (np.concatenate((w, np.asarray(m, dtype=np.float64))) for w, m in zip((t, x, a), then))
         eng = self.engines.get(name)
         if eng is None or not t.shape[0]:
             return

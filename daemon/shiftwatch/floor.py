@@ -83,6 +83,9 @@ class FloorDesk:
         self._saved = -1
         #: Held while the book changes, and by view(): the status page reads from its own thread.
         self._lock = threading.Lock()
+        self._hold_key: tuple[int, int] = (0, -1)
+        self._hold_any = False
+        self._hold_cache: dict[str, bool] = {}
         #: The newest sample time seen per stream (held samples included).
         self.newest: dict[str, float] = {}
         for kind in (PLAN, HOLD):
@@ -192,7 +195,26 @@ class FloorDesk:
 
     def holding(self) -> bool:
         """Whether any hold is in the book (ended or not): while none is, no sample is held."""
-        return any(w.kind == HOLD for w in self.book.windows.values())
+        return bool(self._hold_view()[0])
+
+    def concerned_by_hold(self, name: str) -> bool:
+        """Whether a hold in the book (ended or not) names the stream (cached per revision)."""
+        holds, cache = self._hold_view()
+        if not holds:
+            return False
+        hit = cache.get(name)
+        if hit is None:
+            hit = cache[name] = bool(self.book.holds_for(name))
+        return hit
+
+    def _hold_view(self) -> tuple[bool, dict[str, bool]]:
+        """(any hold in the book, the per-stream answers so far), as of the book's revision."""
+        key = (id(self.book), self.book.revision)
+        if key != self._hold_key:
+            self._hold_key = key
+            self._hold_any = any(w.kind == HOLD for w in self.book.windows.values())
+            self._hold_cache = {}
+        return self._hold_any, self._hold_cache
 
     def split_held(self, name: str, times: NDArray[np.float64]) -> NDArray[np.bool_] | None:
         """The samples of a batch that fall in a hold (counted), or None when none does."""
