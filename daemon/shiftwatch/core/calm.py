@@ -276,8 +276,9 @@ class CalmPool:
         r = (x - level) - self._u[s, cnt]
         plain = (np.abs(x) <= MAX_ABS_VALUE) & (t > self._last_t[s]) & (t - a <= self._ahead[s]) \
             & (a - t <= self._behind[s]) & (x >= self._lo[s]) & (x <= self._hi[s])
-        # (NaN fails every comparison above; an infinite time fails the arrival checks
-        # or, at -inf, the order check.)
+        # (NaN fails every comparison above; a time of -inf fails the order check.  The
+        # decoders give finite times only; an infinite one would pass only with no
+        # max_time_ahead, and the engine would set it aside when the stream is fed.)
         phi = self._phi[s]
         inv = self._inv[s]
         clip = self._clip[s]
