@@ -516,12 +516,11 @@ class Daemon:
                              "waited in it are not fed", type(waiting).__name__)
             return
         now = time.time()
+        unknown: list[str] = []
         for name, entry in waiting.items():
             eng = self.engines.get(self._renamed.get(name, name)) if isinstance(name, str) else None
             if eng is None:
-                self.log.warning("snapshot field 'waiting' has samples of stream %s, which is not restored "
-                                 "(no longer configured, or its state was set aside); they are not fed",
-                                 _printable(str(name)))
+                unknown.append(str(name))
                 continue
             try:
                 t, x, a = (np.asarray(col, dtype=np.float64) for col in entry)
@@ -534,6 +533,10 @@ class Daemon:
                 continue
             for rec in eng.process(t, x, a).records:
                 self.emit(rec, now)
+        if unknown:
+            self.log.warning("snapshot field 'waiting' has samples of %d stream(s) not restored (no longer "
+                             "configured, or their state was set aside; the first: %s); they are not fed",
+                             len(unknown), _printable(unknown[0]))
 
     def _replay_journal(self, token: str) -> None:
         """Feed the engines the rounds journaled on top of the snapshot.  Their alert
