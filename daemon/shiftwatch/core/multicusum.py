@@ -381,6 +381,28 @@ class MultiCusumTest(SequentialTest):
         self._stat = max(map(operator.truediv, c, bank.h2_list))
         return -1
 
+    def small_sums(self) -> list[float] | None:
+        """The sums as a list, for a caller that runs :meth:`_update_small`'s recursion
+        itself (the engine's young phase) and hands them back with :meth:`set_small_sums`;
+        None for a bank of one chart (whose updates take the array path)."""
+        return self._c.tolist() if self._bank.m > 1 else None
+
+    def set_small_sums(self, c: list[float], tripped: bool) -> None:
+        """The state :meth:`_update_small` leaves after its last sample: ``c`` the sums
+        after it, ``tripped`` whether a chart exceeded its h on it."""
+        bank = self._bank
+        if tripped:
+            col = np.asarray(c)
+            ratio = col / bank.h2
+            row = int(np.argmax(ratio))
+            self._c = col
+            self._stat = float(ratio[row])
+            self._tripped = row % bank.m
+            self._dir = 1 if row < bank.m else -1
+            return
+        self._c = np.asarray(c)
+        self._stat = max(map(operator.truediv, c, bank.h2_list))
+
     def _block_fast(self, blk: FloatArray) -> int:
         """One block in a few passes when no chart can be near its limit.
 
