@@ -12,6 +12,7 @@ both and require the same records, rejections and saved state, bit for bit.
 
 from __future__ import annotations
 
+import itertools
 import json
 from typing import Any
 
@@ -60,7 +61,7 @@ def _run(x: np.ndarray, cuts: list[int], settings: DetectionSettings, fast: bool
         t = T0 + np.arange(float(x.shape[0]))
         records, rejected, states = [], [], []
         bounds = [0, *cuts, x.shape[0]]
-        for a, b in zip(bounds[:-1], bounds[1:]):
+        for a, b in itertools.pairwise(bounds):
             res = eng.process(t[a:b], x[a:b])
             records += [r.to_dict() for r in res.records]
             rejected += [(a + r.position, r.reason, r.time) for r in res.rejected]

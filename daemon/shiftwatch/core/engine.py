@@ -43,6 +43,7 @@ from typing import Any, ClassVar, NamedTuple
 import numpy as np
 from numpy.typing import NDArray
 
+from shiftwatch.core import selfstart as _selfstart
 from shiftwatch.core.baseline import (
     HEAVY_TAIL_CLIP,
     Baseline,
@@ -54,7 +55,6 @@ from shiftwatch.core.baseline import (
 )
 from shiftwatch.core.events import NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
 from shiftwatch.core.screen import screen_samples
-from shiftwatch.core import selfstart as _selfstart
 from shiftwatch.core.selfstart import SelfStart, SplitEvidence, split_evidence
 from shiftwatch.core.sequential import SequentialTest
 from shiftwatch.core.settings import ARL_RANGE, DetectionSettings
