@@ -1060,15 +1060,23 @@ class StreamEngine:
         dirty = False  # c holds updates the test has not been handed yet
         kept = 0
         pend_pos = -1  # batch position of the held sample (-1: held from an earlier batch)
-        xs = x.tolist()
-        ts = t.tolist()
-        for i in range(len(xs)):
+        total = int(t.shape[0])
+        # The batch is turned into floats a piece at a time: the first warm-up takes a
+        # few hundred samples of a batch of thousands.
+        at = end = 0
+        xs: list[float] = []
+        ts: list[float] = []
+        for i in range(total):
             if kept >= limit:
                 if dirty:
                     test.set_small_sums(c, False)  # type: ignore[union-attr]
                 return i
-            xv = xs[i]
-            tv = ts[i]
+            if i == end:
+                at, end = i, min(total, i + 256)
+                xs = x[at:end].tolist()
+                ts = t[at:end].tolist()
+            xv = xs[i - at]
+            tv = ts[i - at]
             n = ys.n
             if no_base:
                 if known is not None:
@@ -1215,7 +1223,30 @@ class StreamEngine:
                 else:
                     if ys.held:
                         ys.release()
-                    ys.add(xv)
+                    # SelfStart.add
+                    first = ys.first
+                    if first is None:
+                        ys.first = xv
+                    elif ys.prev is not None:
+                        ys.lag += (xv - first) * (ys.prev - first)
+                    n1 = ys.n + 1
+                    ys.n = n1
+                    mean = ys.mean
+                    d = xv - mean
+                    follow = ys.follow
+                    if follow and n1 > follow:
+                        lam = 1.0 / follow
+                        mean += lam * d
+                        ys.vm = (1.0 - lam) ** 2 * ys.vm + lam * lam
+                    else:
+                        mean += d / n1
+                        ys.vm = 1.0 / n1
+                    ys.mean = mean
+                    if n1 > 1:
+                        ys.ss += d * (xv - mean)
+                        ys.df += 1
+                    ys.prev = xv
+                    ys.last = xv
                 if tripped:
                     if dirty:
                         test.set_small_sums(c, False)
@@ -1229,7 +1260,7 @@ class StreamEngine:
                 return i + 1
         if dirty:
             test.set_small_sums(c, False)  # type: ignore[union-attr]
-        return int(t.shape[0])
+        return total
 
     def _feed_young(self, tv: float, xv: float, clip: float) -> bool:
         """One kept sample of the young phase; True when the test trips on it."""
