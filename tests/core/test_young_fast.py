@@ -140,3 +140,19 @@ def test_fast_young_path_after_a_restore() -> None:
 
 def test_the_reference_flag_is_on_by_default() -> None:
     assert engine.FAST_YOUNG is True
+
+
+@pytest.mark.parametrize(("margin", "bias"), [(1.0, True), (0.0, False)])
+def test_fast_young_path_follows_the_selfstart_switches(monkeypatch: pytest.MonkeyPatch, margin: float,
+                                                        bias: bool) -> None:
+    # PHI_MARGIN and BIAS_CORRECT are read where the reference reads them.
+    from shiftwatch.core import selfstart
+
+    monkeypatch.setattr(selfstart, "PHI_MARGIN", margin)
+    monkeypatch.setattr(selfstart, "BIAS_CORRECT", bias)
+    rng = np.random.default_rng(13)
+    for kind in ("iid", "ar"):
+        x = _series(kind, 1500, rng)
+        cuts = _cuts(1500, rng)
+        settings = DetectionSettings()
+        assert _run(x, cuts, settings, fast=True) == _run(x, cuts, settings, fast=False)

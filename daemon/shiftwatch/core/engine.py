@@ -1078,11 +1078,12 @@ class StreamEngine:
             xv = xs[i - at]
             tv = ts[i - at]
             n = ys.n
+            sd0 = -1.0  # sqrt(ss / df) of the level as it stands (-1: not worked out)
             if no_base:
                 if known is not None:
                     spread = known
                 else:
-                    spread = sqrt(ys.ss / ys.df) if ys.df > 0 else 0.0
+                    spread = sd0 = sqrt(ys.ss / ys.df) if ys.df > 0 else 0.0
             else:
                 spread = b_sigma
             out = 0
@@ -1110,6 +1111,7 @@ class StreamEngine:
                     if test is not None:
                         c, ks, hs, h2, m, thr = _small_bank(test)
                     n = ys.n
+                    sd0 = -1.0
                 else:
                     result.rejected.append(Rejection(pend_pos, "spike", pt))
                     self._prev_out = 0
@@ -1133,7 +1135,7 @@ class StreamEngine:
             elif n >= min_unknown and ys.df >= 2:
                 dfi = ys.df
                 ssum = ys.ss
-                sd = sqrt(ssum / dfi)
+                sd = sd0 if sd0 >= 0.0 else sqrt(ssum / dfi)
                 if sd > 0:
                     # SelfStart._phi_raw, ._significant, ._long_run_factor and t_to_normal
                     nn = n + ys.pool_n
@@ -1151,7 +1153,7 @@ class StreamEngine:
                         rr = (c1 + ys.pool_c1) / ssum
                         if bias:
                             rr += (1.0 + 3.0 * rr) / nn
-                        raw = max(-0.95, min(0.95, rr))
+                        raw = rr if -0.95 <= rr <= 0.95 else max(-0.95, min(0.95, rr))
                     phi = raw if nn >= 20 and abs(raw) >= 2.0 / sqrt(nn) else 0.0
                     r = xv - mean
                     dff = float(dfi)
@@ -1160,9 +1162,13 @@ class StreamEngine:
                         r -= phi * (last - mean)
                         sd *= sqrt(1.0 - phi * phi)
                         dff = max(2.0, dff * (1.0 - abs(phi)) / (1.0 + abs(phi)))
-                    else:
+                    elif margin:
                         up = min(0.95, max(raw, 0.0) + (margin / sqrt(nn) if nn > 0 else 0.0))
                         sd *= sqrt((1.0 + up) / (1.0 - up) if up > 0.0 else 1.0)
+                    elif raw > 0.0:
+                        # the same with no margin: raw lies in (0, 0.95], and a factor of 1
+                        # leaves sd as it is
+                        sd *= sqrt((1.0 + raw) / (1.0 - raw))
                     tt = r / (sd * sqrt(1.0 + 1.0 / n))
                     zz = sqrt(dff * log1p(tt * tt / dff)) * (8.0 * dff + 1.0) / (8.0 * dff + 3.0)
                     z = zz if tt >= 0 else -zz
