@@ -156,3 +156,19 @@ def test_fast_young_path_follows_the_selfstart_switches(monkeypatch: pytest.Monk
         cuts = _cuts(1500, rng)
         settings = DetectionSettings()
         assert _run(x, cuts, settings, fast=True) == _run(x, cuts, settings, fast=False)
+
+
+def test_a_remembered_design_and_an_adopted_state_equal_the_made_ones() -> None:
+    from shiftwatch.core.multicusum import MultiCusumTest
+
+    first = MultiCusumTest.design(123456.0, 0.9)
+    again = MultiCusumTest.design(123456.0, 0.9)  # from the memo
+    made = MultiCusumTest(ks=list(first.ks), hs=list(first.hs))
+    assert (again.ks, again.hs) == (first.ks, first.hs) == (made.ks, made.hs)
+    old = MultiCusumTest.design(123456.0, 0.9)
+    old.update(np.random.default_rng(2).standard_normal(300) + 0.3)
+    by_state, adopted = MultiCusumTest.design(50000.0, 0.9), MultiCusumTest.design(50000.0, 0.9)
+    by_state.set_state(old.get_state())
+    assert adopted.adopt_state(old)
+    assert adopted.get_state() == by_state.get_state()
+    assert not MultiCusumTest(ks=[0.5], hs=[5.0]).adopt_state(old)

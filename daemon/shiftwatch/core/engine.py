@@ -859,10 +859,14 @@ class StreamEngine:
             arl0 = max(arl0 * HEAVY_ARL_FACTOR, ARL_RANGE[0])
         self._test = make_test(self.settings, arl0, shift_z, float(b.n), n_level=n_level)
         if old is not None and old.name == self._test.name:
-            try:
-                self._test.set_state(old.get_state())
-            except ValueError:
-                pass  # a test of another shape: start it afresh
+            adopt = getattr(self._test, "adopt_state", None)
+            if adopt is not None and type(old) is type(self._test):
+                adopt(old)  # the same as the round trip below, for a bank of CUSUMs
+            else:
+                try:
+                    self._test.set_state(old.get_state())
+                except ValueError:
+                    pass  # a test of another shape: start it afresh
         self._test_arl0 = arl0
         self._test_shift_z = shift_z
         self._test_n_ref = float(b.n)
