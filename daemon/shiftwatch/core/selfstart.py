@@ -382,9 +382,9 @@ def split_evidence(values: FloatArray, min_segment: int = 3, phi_margin: float =
     m = max(int(min_segment), 2)
     if n < 2 * m + 1:
         return None
-    # The young phase calls this on most of a new stream's samples: the splits and their
-    # weights come from a cache, and the arrays' own methods stand in for numpy's
-    # functions (the same operations, a third of the time).
+    # The first warm-up calls this on about a third of a new stream's samples: the splits
+    # and their weights come from a cache, and the arrays' own methods stand in for
+    # numpy's functions (the same operations, in about half the time).
     ks, weight = _split_grid(n, m)
     v = values - values[0]
     c = v.cumsum()
