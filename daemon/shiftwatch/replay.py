@@ -377,7 +377,7 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
                 split[_owner(part[0], jobs)].append(part)
             for j in range(jobs):
                 if j != me:
-                    pairs[me, j].put(split[j])
+                    pairs[me, j].put(_pack(split[j]))
             own.append((block.index, split[me]))
             next_own += jobs
             with done.get_lock():
@@ -401,9 +401,9 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
                         parse_next()
                         continue
                     got = pairs[owner, me].get()
-                if got == _END:  # the owner had no chunk k: there are k chunks
+                if isinstance(got, str):  # _END: the owner had no chunk k, there are k chunks
                     break
-                feeder.add(got)
+                feeder.add(_unpack(got))
             k += 1
         results.put(("ok", me, feeder.finish(), feeder.read_summary()))
         for f in opened.values():
@@ -412,6 +412,30 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
         results.put(("format", me, str(exc), None))
     except BaseException:  # noqa: BLE001 - reported to the parent, which stops the others
         results.put(("error", me, traceback.format_exc(), None))
+
+
+def _pack(parts: list[tuple[str, FloatArray, FloatArray, IntArray]]) -> tuple[Any, ...]:
+    """A chunk's rows for another process: the streams' names and row counts, and three arrays
+    (times, values, places) of all of them in turn.  Three arrays pickle in a fraction of the
+    time of three per stream (a chunk holds a few hundred streams' rows)."""
+    if not parts:
+        return ((), (), None, None, None)
+    return (tuple(p[0] for p in parts), tuple(p[1].shape[0] for p in parts),
+            np.concatenate([p[1] for p in parts]), np.concatenate([p[2] for p in parts]),
+            np.concatenate([p[3] for p in parts]))
+
+
+def _unpack(packed: tuple[Any, ...]) -> list[tuple[str, FloatArray, FloatArray, IntArray]]:
+    """:func:`_pack`'s parts again, each in arrays of its own (not views that would keep the
+    whole chunk's arrays alive while a stream holds its rows)."""
+    names, counts, t, v, p = packed
+    out = []
+    a = 0
+    for name, n in zip(names, counts):
+        b = a + n
+        out.append((name, t[a:b].copy(), v[a:b].copy(), p[a:b].copy()))
+        a = b
+    return out
 
 
 def _replay_in_processes(sources: list[Source], settings_for: Any, unit_for: Any,

@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import hashlib
 import math
+import operator
 from collections import Counter, deque
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field, replace
@@ -42,6 +43,7 @@ from typing import Any, ClassVar, NamedTuple
 import numpy as np
 from numpy.typing import NDArray
 
+from shiftwatch.core import selfstart as _selfstart
 from shiftwatch.core.baseline import (
     HEAVY_TAIL_CLIP,
     Baseline,
@@ -421,6 +423,9 @@ SMALL_BATCH = 8
 #: A level re-estimated after a step is measured self-starting (see :mod:`.selfstart`)
 #: until it rests on this many samples; then it becomes the baseline's fixed level.
 YOUNG_END = 1000
+#: The young phase runs through :meth:`StreamEngine._watch_young_fast`; False: through the
+#: per-sample reference loop it is held to (tests/core/test_young_fast.py).
+FAST_YOUNG = True
 
 #: While the young test's statistic is at least this fraction of its threshold, the
 #: samples are held back from the young level (see SelfStart.hold), at most
@@ -898,10 +903,14 @@ class StreamEngine:
             arl0 = max(arl0 * HEAVY_ARL_FACTOR, ARL_RANGE[0])
         self._test = make_test(self.settings, arl0, shift_z, float(b.n), n_level=n_level)
         if old is not None and old.name == self._test.name:
-            try:
-                self._test.set_state(old.get_state())
-            except ValueError:
-                pass  # a test of another shape: start it afresh
+            adopt = getattr(self._test, "adopt_state", None)
+            if adopt is not None and type(old) is type(self._test):
+                adopt(old)  # the same as the round trip below, for a bank of CUSUMs
+            else:
+                try:
+                    self._test.set_state(old.get_state())
+                except ValueError:
+                    pass  # a test of another shape: start it afresh
         self._test_arl0 = arl0
         self._test_shift_z = shift_z
         self._test_n_ref = float(b.n)
@@ -1004,6 +1013,8 @@ class StreamEngine:
         a trip, and after the sample that makes a re-anchored level old enough
         to be fixed.
         """
+        if FAST_YOUNG:
+            return self._watch_young_fast(t, x, idx, limit, result)
         ys = self._young
         assert ys is not None
         s = self.settings
@@ -1048,6 +1059,262 @@ class StreamEngine:
             if self._young_settled():
                 return i + 1
         return int(t.shape[0])
+
+    def _watch_young_fast(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], limit: int,
+                          result: BatchResult) -> int:
+        """:meth:`_watch_young` in one loop: the same operations on the same floats in the
+        same order, so the same records and state bit for bit (tests/core/test_young_fast.py
+        holds it to the reference loop), at a fraction of the cost.
+
+        Per kept sample the reference calls a dozen methods (SelfStart.standardise and
+        its helpers, the window's push, the test's update_one, which turns the CUSUM
+        bank's sums into a list and back) and works out the lag-1 autocorrelation
+        twice.  Here the self-starting standardisation is written out, the window is
+        written in place, and the bank's recursion (:meth:`.multicusum.MultiCusumTest
+        ._update_small`) runs on a list of its sums that is handed back to the test only
+        when the loop leaves or something else reads the test.  Rare turns (a held
+        spike that is settled, a split test, a trip, a held sample) call the same
+        methods the reference does.
+        """
+        ys = self._young
+        assert ys is not None
+        s = self.settings
+        b = self._baseline
+        clip = s.clip_sigma if b is None else b.clip
+        nclip = -clip
+        spike = s.spike_sigma
+        no_base = b is None
+        b_sigma = 0.0 if b is None else b.sigma
+        known = ys.sigma  # a SelfStart's sigma never changes
+        watching = self._state == WATCHING
+        margin = _selfstart.PHI_MARGIN
+        bias = _selfstart.BIAS_CORRECT
+        min_unknown = SelfStart.MIN_UNKNOWN
+        win = self._window
+        cap = win._x.shape[0]
+        sqrt = math.sqrt
+        log1p = math.log1p
+        truediv = operator.truediv
+        test = self._test
+        # The bank's sums while its recursion runs here (None: the test's own update_one).
+        c: list[float] | None = None
+        ks: tuple[float, ...] = ()
+        hs: tuple[float, ...] = ()
+        h2: tuple[float, ...] = ()
+        m = 0
+        thr = 1.0
+        if test is not None:
+            c, ks, hs, h2, m, thr = _small_bank(test)
+        dirty = False  # c holds updates the test has not been handed yet
+        kept = 0
+        pend_pos = -1  # batch position of the held sample (-1: held from an earlier batch)
+        total = int(t.shape[0])
+        # The batch is turned into floats a piece at a time: the first warm-up takes a
+        # few hundred samples of a batch of thousands.
+        at = end = 0
+        xs: list[float] = []
+        ts: list[float] = []
+        for i in range(total):
+            if kept >= limit:
+                if dirty:
+                    test.set_small_sums(c, False)  # type: ignore[union-attr]
+                return i
+            if i == end:
+                at, end = i, min(total, i + 256)
+                xs = x[at:end].tolist()
+                ts = t[at:end].tolist()
+            xv = xs[i - at]
+            tv = ts[i - at]
+            n = ys.n
+            sd0 = -1.0  # sqrt(ss / df) of the level as it stands (-1: not worked out)
+            if no_base:
+                if known is not None:
+                    spread = known
+                else:
+                    spread = sd0 = sqrt(ys.ss / ys.df) if ys.df > 0 else 0.0
+            else:
+                spread = b_sigma
+            out = 0
+            if spread > 0 and n >= min_unknown:
+                dev = (xv - ys.mean) / spread
+                out = 1 if dev > spike else (-1 if dev < -spike else 0)
+            if self._pending is not None:
+                # A spike held from the sample before: the reference's own steps.
+                if dirty:
+                    test.set_small_sums(c, False)  # type: ignore[union-attr]
+                    dirty = False
+                pt, px = self._pending
+                self._pending = None
+                p_out = 1 if px > ys.mean else -1
+                if out == p_out:
+                    self._prev_out = out
+                    kept += 1
+                    if self._feed_young(pt, px, clip):
+                        self._young_event(pt, result, tv)
+                        return i
+                    if kept >= limit or self._young_settled():
+                        return i
+                    if test is None and self._test is not None:
+                        test = self._test
+                    if test is not None:
+                        c, ks, hs, h2, m, thr = _small_bank(test)
+                    n = ys.n
+                    sd0 = -1.0
+                else:
+                    result.rejected.append(Rejection(pend_pos, "spike", pt))
+                    self._prev_out = 0
+            if out != 0 and out != self._prev_out:
+                self._pending = (tv, xv)
+                pend_pos = int(idx[i])
+                continue
+            self._prev_out = out
+            kept += 1
+            # ---- _feed_young, written out
+            mean = ys.mean
+            z: float | None = None
+            phi = 0.0
+            if known is not None:
+                phi = ys.phi
+                if n >= 1:
+                    r = xv - mean
+                    if phi != 0.0 and ys.last is not None:
+                        r -= phi * (ys.last - mean)
+                    z = r / (known * sqrt(1.0 + ys.vm))
+            elif n >= min_unknown and ys.df >= 2:
+                dfi = ys.df
+                ssum = ys.ss
+                sd = sd0 if sd0 >= 0.0 else sqrt(ssum / dfi)
+                if sd > 0:
+                    # SelfStart._phi_raw, ._significant, ._long_run_factor and t_to_normal
+                    nn = n + ys.pool_n
+                    if nn < 3 or not ssum > 0:
+                        raw = 0.0
+                    else:
+                        first = ys.first
+                        prev = ys.prev
+                        if n < 2 or first is None or prev is None:
+                            c1 = 0.0
+                        else:
+                            mm = mean - first
+                            lst = prev - first
+                            c1 = ys.lag - mm * (2.0 * n * mm - lst) + (n - 1) * mm * mm
+                        rr = (c1 + ys.pool_c1) / ssum
+                        if bias:
+                            rr += (1.0 + 3.0 * rr) / nn
+                        raw = rr if -0.95 <= rr <= 0.95 else max(-0.95, min(0.95, rr))
+                    phi = raw if nn >= 20 and abs(raw) >= 2.0 / sqrt(nn) else 0.0
+                    r = xv - mean
+                    dff = float(dfi)
+                    last = ys.last
+                    if phi != 0.0 and last is not None:
+                        r -= phi * (last - mean)
+                        sd *= sqrt(1.0 - phi * phi)
+                        dff = max(2.0, dff * (1.0 - abs(phi)) / (1.0 + abs(phi)))
+                    elif margin:
+                        up = min(0.95, max(raw, 0.0) + (margin / sqrt(nn) if nn > 0 else 0.0))
+                        sd *= sqrt((1.0 + up) / (1.0 - up) if up > 0.0 else 1.0)
+                    elif raw > 0.0:
+                        # the same with no margin: raw lies in (0, 0.95], and a factor of 1
+                        # leaves sd as it is
+                        sd *= sqrt((1.0 + raw) / (1.0 - raw))
+                    tt = r / (sd * sqrt(1.0 + 1.0 / n))
+                    zz = sqrt(dff * log1p(tt * tt / dff)) * (8.0 * dff + 1.0) / (8.0 * dff + 3.0)
+                    z = zz if tt >= 0 else -zz
+            # Window.push
+            wn = win._n
+            if wn < cap:
+                win._x[wn] = xv
+                win._t[wn] = tv
+                win._n = wn + 1
+            else:
+                win.push(xv, tv)
+            if z is None:
+                ys.add(xv)
+            else:
+                if test is None:
+                    test = self._young_test()
+                    c, ks, hs, h2, m, thr = _small_bank(test)
+                zc = nclip if z < nclip else (clip if z > clip else z)
+                stat = -1.0  # the test's statistic, worked out when needed
+                if c is not None:
+                    # MultiCusumTest._update_small on one sample
+                    tripped = False
+                    for j in range(m):
+                        up = c[j] + zc - ks[j]
+                        c[j] = up if up > 0.0 else 0.0
+                        lo = c[m + j] - zc - ks[j]
+                        c[m + j] = lo if lo > 0.0 else 0.0
+                        if c[j] > hs[j] or c[m + j] > hs[j]:
+                            tripped = True
+                    if tripped:
+                        test.set_small_sums(c, True)
+                        dirty = False
+                    else:
+                        dirty = True
+                else:
+                    tripped = test.update_one(zc)
+                    thr = test.threshold
+                az = abs(z)
+                if not tripped and no_base and n >= YOUNG_SPLIT_FROM:
+                    if az < YOUNG_Z_HOLD:
+                        stat = max(map(truediv, c, h2)) if c is not None else test.statistic
+                    if az >= YOUNG_Z_HOLD or stat >= YOUNG_SPLIT_SCREEN * thr:
+                        ev = split_evidence(win.values, phi_margin=YOUNG_SPLIT_MARGIN,
+                                            p_below=YOUNG_SPLIT_SHARE / self._test_arl0 if self._test_arl0 > 0.0
+                                            else 1.0)
+                        if (ev is not None and ev.split_at >= YOUNG_SPLIT_BEFORE
+                                and ev.phi < YOUNG_SPLIT_GATE / math.sqrt(ev.split_at)
+                                and ev.p_value * self._test_arl0 < YOUNG_SPLIT_SHARE):
+                            self._split = ev
+                            tripped = True
+                if az > spike:
+                    ys.last = xv  # the start of a large step: fed, never taken into the level
+                elif n >= YOUNG_HOLD_FROM and phi == 0.0 and (
+                        tripped or az >= YOUNG_Z_HOLD
+                        or (stat if stat >= 0.0 else (max(map(truediv, c, h2)) if c is not None
+                                                       else test.statistic)) >= YOUNG_CALM * thr):
+                    ys.hold(xv, YOUNG_HOLD)
+                else:
+                    if ys.held:
+                        ys.release()
+                    # SelfStart.add
+                    first = ys.first
+                    if first is None:
+                        ys.first = xv
+                    elif ys.prev is not None:
+                        ys.lag += (xv - first) * (ys.prev - first)
+                    n1 = ys.n + 1
+                    ys.n = n1
+                    mean = ys.mean
+                    d = xv - mean
+                    follow = ys.follow
+                    if follow and n1 > follow:
+                        lam = 1.0 / follow
+                        mean += lam * d
+                        ys.vm = (1.0 - lam) ** 2 * ys.vm + lam * lam
+                    else:
+                        mean += d / n1
+                        ys.vm = 1.0 / n1
+                    ys.mean = mean
+                    if n1 > 1:
+                        ys.ss += d * (xv - mean)
+                        ys.df += 1
+                    ys.prev = xv
+                    ys.last = xv
+                if tripped:
+                    if dirty:
+                        test.set_small_sums(c, False)
+                        dirty = False
+                    self._young_event(tv, result, tv)
+                    return i + 1
+            if watching and ys.n >= YOUNG_END:
+                if dirty:
+                    test.set_small_sums(c, False)  # type: ignore[union-attr]
+                self._settle_young()
+                return i + 1
+        if dirty:
+            test.set_small_sums(c, False)  # type: ignore[union-attr]
+        return total
 
     def _feed_young(self, tv: float, xv: float, clip: float) -> bool:
         """One kept sample of the young phase; True when the test trips on it."""
@@ -1995,6 +2262,19 @@ def _batch_position(t: FloatArray, idx: NDArray[np.intp], time: float) -> int:
     """The batch position of the kept sample at ``time`` among ``t`` (-1: an earlier batch's)."""
     j = int(np.searchsorted(t, time))
     return int(idx[j]) if j < t.shape[0] and t[j] == time else -1
+
+
+def _small_bank(test: SequentialTest) -> tuple[list[float] | None, tuple[float, ...], tuple[float, ...],
+                                              tuple[float, ...], int, float]:
+    """For :meth:`StreamEngine._watch_young_fast`: a CUSUM bank's sums as a list with its
+    charts' k, h and h twice over (upper, lower), and the test's threshold; the sums are
+    None for a test that updates itself (any other test, or a bank of one chart)."""
+    small = getattr(test, "small_sums", None)
+    c = small() if small is not None else None
+    if c is None:
+        return None, (), (), (), 0, test.threshold
+    ks, hs = test.ks, test.hs  # type: ignore[attr-defined]
+    return c, ks, hs, hs + hs, len(ks), test.threshold
 
 
 def _young_from(values: FloatArray) -> SelfStart:

@@ -224,6 +224,15 @@ class MultiCusumTest(SequentialTest):
         >>> [round(h, 3) for h in t.hs]
         [17.164, 13.157, 8.923, 6.689]
         """
+        key = (arl0, min_shift, multiples, approximate)
+        plain = (cls is MultiCusumTest and type(arl0) is float and type(min_shift) is float
+                 and type(multiples) is tuple and type(approximate) is bool)
+        if plain:
+            # An engine redesigns its test at every refinement, nearly always to a design
+            # already made: the same inputs give the same charts, without the checks.
+            made = _DESIGNS.get(key)
+            if made is not None:
+                return cls._of(*made)
         try:
             a = float(arl0)
         except (TypeError, ValueError):
@@ -252,7 +261,30 @@ class MultiCusumTest(SequentialTest):
             float(f"{a:.10g}"), float(f"{s:.10g}"), tuple(float(f"{v:.10g}") for v in mult),
             bool(approximate),
         )
+        if plain:
+            if len(_DESIGNS) >= 4096:
+                _DESIGNS.clear()
+            _DESIGNS[key] = (ks, hs)
         return cls(ks=ks, hs=hs)
+
+    @classmethod
+    def _of(cls, ks: tuple[float, ...], hs: tuple[float, ...]) -> MultiCusumTest:
+        """A bank of charts that :meth:`design` made (checked then), its sums at zero."""
+        out = cls.__new__(cls)
+        out._bank = _bank(ks, hs)
+        out.reset()
+        return out
+
+    def adopt_state(self, other: MultiCusumTest) -> bool:
+        """``self.set_state(other.get_state())`` without the round trip: False (and nothing
+        taken) where that would raise, a bank of another number of charts."""
+        if other._bank.m != self._bank.m:
+            return False
+        self._c = other._c.copy()
+        self._stat = float(other._stat)
+        self._dir = int(other._dir)
+        self._tripped = int(other._tripped)
+        return True
 
     # -------------------------------------------------------------- properties
     @property
@@ -380,6 +412,28 @@ class MultiCusumTest(SequentialTest):
         self._c = np.asarray(c)
         self._stat = max(map(operator.truediv, c, bank.h2_list))
         return -1
+
+    def small_sums(self) -> list[float] | None:
+        """The sums as a list, for a caller that runs :meth:`_update_small`'s recursion
+        itself (the engine's young phase) and hands them back with :meth:`set_small_sums`;
+        None for a bank of one chart (whose updates take the array path)."""
+        return self._c.tolist() if self._bank.m > 1 else None
+
+    def set_small_sums(self, c: list[float], tripped: bool) -> None:
+        """The state :meth:`_update_small` leaves after its last sample: ``c`` the sums
+        after it, ``tripped`` whether a chart exceeded its h on it."""
+        bank = self._bank
+        if tripped:
+            col = np.asarray(c)
+            ratio = col / bank.h2
+            row = int(np.argmax(ratio))
+            self._c = col
+            self._stat = float(ratio[row])
+            self._tripped = row % bank.m
+            self._dir = 1 if row < bank.m else -1
+            return
+        self._c = np.asarray(c)
+        self._stat = max(map(operator.truediv, c, bank.h2_list))
 
     def _block_fast(self, blk: FloatArray) -> int:
         """One block in a few passes when no chart can be near its limit.
@@ -631,6 +685,10 @@ def _log_ratio(coef: tuple[float, float, float], u: float) -> float:
     if u > hi:
         return c0 + c1 * hi + c2 * hi * hi + (c1 + 2.0 * c2 * hi) * (u - hi)
     return c0 + c1 * u + c2 * u * u
+
+
+#: design()'s inputs, as given, and the charts made from them.
+_DESIGNS: dict[tuple[Any, ...], tuple[tuple[float, ...], tuple[float, ...]]] = {}
 
 
 @functools.lru_cache(maxsize=256)

@@ -1,0 +1,174 @@
+"""The young phase's fast path against the per-sample reference path it stands in for.
+
+A young level (a stream's first warm-up, and the YOUNG_END samples after each
+confirmed step) is watched one sample at a time: each sample is standardised
+against the samples before it, fed to the test and taken into the level.  The
+engine does that in one tight loop (``StreamEngine._watch_young_fast``: the
+self-starting arithmetic and the CUSUM bank in plain floats, with no method
+call per sample); the original loop stays as the reference
+(``engine.FAST_YOUNG = False``).  These tests replay many random series through
+both and require the same records, rejections and saved state, bit for bit.
+"""
+
+from __future__ import annotations
+
+import itertools
+import json
+from typing import Any
+
+import numpy as np
+import pytest
+
+from shiftwatch.core import engine
+from shiftwatch.core.engine import StreamEngine
+from shiftwatch.core.settings import DetectionSettings
+
+T0 = 1_788_000_000.0
+
+
+def _series(kind: str, n: int, rng: np.random.Generator) -> np.ndarray:
+    if kind == "iid":
+        x = rng.standard_normal(n)
+    elif kind == "ar":
+        e = rng.standard_normal(n)
+        x = np.empty(n)
+        x[0] = e[0]
+        for i in range(1, n):
+            x[i] = 0.6 * x[i - 1] + e[i]
+    elif kind == "t3":
+        x = rng.standard_t(3, n)
+        x[rng.random(n) < 0.01] += rng.choice([-12.0, 12.0])
+    elif kind == "quantised":  # a coarse sensor: ties, runs of equal values
+        x = np.round(rng.standard_normal(n) * 2.0) / 2.0
+    else:
+        raise ValueError(kind)
+    x = 20.0 + 0.5 * x
+    # Steps: some in the first warm-up, some after it, some two close together.
+    for _ in range(int(rng.integers(0, 4))):
+        at = int(rng.choice([int(rng.integers(5, 200)), int(rng.integers(200, max(201, n)))]))
+        x[at:] += float(rng.choice([-1.0, 1.0])) * float(rng.uniform(0.8, 6.0))
+    # Lone spikes, and a pair that starts a large step.
+    for at in rng.integers(0, n, size=int(rng.integers(0, 5))):
+        x[at] += float(rng.choice([-15.0, 15.0]))
+    return x
+
+
+def _run(x: np.ndarray, cuts: list[int], settings: DetectionSettings, fast: bool) -> dict[str, Any]:
+    saved = engine.FAST_YOUNG
+    engine.FAST_YOUNG = fast
+    try:
+        eng = StreamEngine("s", settings)
+        t = T0 + np.arange(float(x.shape[0]))
+        records, rejected, states = [], [], []
+        bounds = [0, *cuts, x.shape[0]]
+        for a, b in itertools.pairwise(bounds):
+            res = eng.process(t[a:b], x[a:b])
+            records += [r.to_dict() for r in res.records]
+            rejected += [(a + r.position, r.reason, r.time) for r in res.rejected]
+            states.append(json.dumps(eng.get_state(), sort_keys=True))
+        return {"records": records, "rejected": rejected, "states": states,
+                "counts": (eng.samples_total, dict(eng.records_total), dict(eng.rejected_total))}
+    finally:
+        engine.FAST_YOUNG = saved
+
+
+def _cuts(n: int, rng: np.random.Generator) -> list[int]:
+    mode = int(rng.integers(0, 4))
+    if mode == 0:
+        return []
+    if mode == 1:  # a few random cuts
+        return sorted({int(v) for v in rng.integers(1, n, size=int(rng.integers(1, 8)))})
+    if mode == 2:  # small batches throughout
+        out, at = [], 0
+        while True:
+            at += int(rng.integers(1, 12))
+            if at >= n:
+                return out
+            out.append(at)
+    return list(range(4096, n, 4096)) or [n // 2]
+
+
+@pytest.mark.parametrize("kind", ["iid", "ar", "t3", "quantised"])
+def test_fast_young_path_equals_the_per_sample_path(kind: str) -> None:
+    rng = np.random.default_rng({"iid": 1, "ar": 2, "t3": 3, "quantised": 4}[kind])
+    for _ in range(12):
+        n = int(rng.choice([40, 150, 260, 1500, 3000]))
+        x = _series(kind, n, rng)
+        cuts = _cuts(n, rng)
+        settings = DetectionSettings(false_alarm_every=float(rng.choice([3600.0, 7 * 86400.0])))
+        ref = _run(x, cuts, settings, fast=False)
+        got = _run(x, cuts, settings, fast=True)
+        assert got == ref
+
+
+@pytest.mark.parametrize("test", ["cusum", "glr"])
+def test_fast_young_path_with_other_tests(test: str) -> None:
+    rng = np.random.default_rng(11)
+    for _ in range(4):
+        x = _series(str(rng.choice(["iid", "t3"])), 1500, rng)
+        cuts = _cuts(1500, rng)
+        settings = DetectionSettings(test=test)
+        assert _run(x, cuts, settings, fast=True) == _run(x, cuts, settings, fast=False)
+
+
+def test_fast_young_path_after_a_restore() -> None:
+    # A snapshot taken in the young phase (held samples, a pending spike) carries on
+    # the same through either path.
+    rng = np.random.default_rng(5)
+    x = _series("iid", 2000, rng)
+    x[600:] += 3.0
+    x[700] += 15.0
+    t = T0 + np.arange(2000.0)
+    outs = []
+    for fast in (False, True):
+        saved = engine.FAST_YOUNG
+        engine.FAST_YOUNG = fast
+        try:
+            got: list[Any] = []
+            eng = StreamEngine("s")
+            for a in range(0, 2000, 50):
+                got += [r.to_dict() for r in eng.process(t[a:a + 50], x[a:a + 50]).records]
+                st = eng.get_state()
+                eng = StreamEngine("s")
+                eng.set_state(st)
+                got.append(json.dumps(st, sort_keys=True))
+            outs.append(got)
+        finally:
+            engine.FAST_YOUNG = saved
+    assert outs[0] == outs[1]
+
+
+def test_the_reference_flag_is_on_by_default() -> None:
+    assert engine.FAST_YOUNG is True
+
+
+@pytest.mark.parametrize(("margin", "bias"), [(1.0, True), (0.0, False)])
+def test_fast_young_path_follows_the_selfstart_switches(monkeypatch: pytest.MonkeyPatch, margin: float,
+                                                        bias: bool) -> None:
+    # PHI_MARGIN and BIAS_CORRECT are read where the reference reads them.
+    from shiftwatch.core import selfstart
+
+    monkeypatch.setattr(selfstart, "PHI_MARGIN", margin)
+    monkeypatch.setattr(selfstart, "BIAS_CORRECT", bias)
+    rng = np.random.default_rng(13)
+    for kind in ("iid", "ar"):
+        x = _series(kind, 1500, rng)
+        cuts = _cuts(1500, rng)
+        settings = DetectionSettings()
+        assert _run(x, cuts, settings, fast=True) == _run(x, cuts, settings, fast=False)
+
+
+def test_a_remembered_design_and_an_adopted_state_equal_the_made_ones() -> None:
+    from shiftwatch.core.multicusum import MultiCusumTest
+
+    first = MultiCusumTest.design(123456.0, 0.9)
+    again = MultiCusumTest.design(123456.0, 0.9)  # from the memo
+    made = MultiCusumTest(ks=list(first.ks), hs=list(first.hs))
+    assert (again.ks, again.hs) == (first.ks, first.hs) == (made.ks, made.hs)
+    old = MultiCusumTest.design(123456.0, 0.9)
+    old.update(np.random.default_rng(2).standard_normal(300) + 0.3)
+    by_state, adopted = MultiCusumTest.design(50000.0, 0.9), MultiCusumTest.design(50000.0, 0.9)
+    by_state.set_state(old.get_state())
+    assert adopted.adopt_state(old)
+    assert adopted.get_state() == by_state.get_state()
+    assert not MultiCusumTest(ks=[0.5], hs=[5.0]).adopt_state(old)
