@@ -38,7 +38,7 @@ import operator
 from collections import Counter, deque
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field, replace
-from typing import Any, ClassVar, NamedTuple
+from typing import Any, ClassVar, NamedTuple, cast
 
 import numpy as np
 from numpy.typing import NDArray
@@ -1247,7 +1247,7 @@ class StreamEngine:
                         if c[j] > hs[j] or c[m + j] > hs[j]:
                             tripped = True
                     if tripped:
-                        test.set_small_sums(c, True)
+                        cast(MultiCusumTest, test).set_small_sums(c, True)
                         dirty = False
                     else:
                         dirty = True
@@ -1302,8 +1302,8 @@ class StreamEngine:
                     ys.prev = xv
                     ys.last = xv
                 if tripped:
-                    if dirty:
-                        test.set_small_sums(c, False)
+                    if dirty and c is not None:
+                        cast(MultiCusumTest, test).set_small_sums(c, False)
                         dirty = False
                     self._young_event(tv, result, tv)
                     return i + 1
