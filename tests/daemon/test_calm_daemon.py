@@ -76,6 +76,14 @@ def _warm(d: Daemon, n: int, data: np.ndarray, t0: float = T0) -> None:
                for i in range(n)])
 
 
+def _warmed(tmp_path: Path, name: str, n: int, data: np.ndarray, t0: float = T0) -> Daemon:
+    """A pooled daemon whose n streams are past their warm-up."""
+    d = _daemon(_config(tmp_path, name), pool=True)
+    assert d.pool is not None
+    _warm(d, n, data, t0)
+    return d
+
+
 def _records(d: Daemon) -> list[dict[str, Any]]:
     """The records published so far (in the outbox: nothing acknowledges them here), in
     the order of stream and time: within a round the two daemons feed streams in
@@ -186,9 +194,8 @@ def test_a_damaged_waiting_field_costs_those_samples_only(tmp_path: Path) -> Non
 def test_idle_rounds_and_a_reload_feed_the_waiting_samples(tmp_path: Path) -> None:
     n = 10
     data = _data(n, WARM + 60, np.random.default_rng(14), steps=False)
-    d = _daemon(_config(tmp_path, "c"), pool=True)
+    d = _warmed(tmp_path, "c", n, data)
     assert d.pool is not None
-    _warm(d, n, data)
     for k in range(WARM, WARM + 30):
         d.process(_round(n, k, data))
     assert d.pool.total_waiting() > 0
@@ -240,10 +247,9 @@ def test_a_hold_on_one_stream_leaves_the_others_pooled(tmp_path: Path) -> None:
     # review measured the pooled daemon 2 to 3 times slower than none while it stood).
     n = 10
     data = _data(n, WARM + 100, np.random.default_rng(16), steps=False)
-    d = _daemon(_config(tmp_path, "h"), pool=True)
-    assert d.pool is not None
     t0 = float(int(time.time())) - 2 * WARM  # commands take times within days of now
-    _warm(d, n, data, t0)
+    d = _warmed(tmp_path, "h", n, data, t0)
+    assert d.pool is not None
     held = "line/s000/v"
     hold = Message("shiftwatch/commands/hold", json.dumps(
         {"target": held, "start": _iso(t0 + WARM + 10), "end": _iso(t0 + WARM + 20), "note": "scale check",

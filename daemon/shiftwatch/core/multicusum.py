@@ -401,16 +401,9 @@ class MultiCusumTest(SequentialTest):
                 if c[i] > hs[i] or c[m + i] > hs[i]:
                     tripped = True
             if tripped:
-                col = np.asarray(c)
-                ratio = col / bank.h2
-                row = int(np.argmax(ratio))
-                self._c = col
-                self._stat = float(ratio[row])
-                self._tripped = row % m
-                self._dir = 1 if row < m else -1
+                self.set_small_sums(c, True)
                 return j
-        self._c = np.asarray(c)
-        self._stat = max(map(operator.truediv, c, bank.h2_list))
+        self.set_small_sums(c, False)
         return -1
 
     def small_sums(self) -> list[float] | None:
