@@ -97,6 +97,9 @@ POOL_AGE_S = 30.0
 #: An idle round feeds waiting samples for up to this long (oldest first, at most
 #: POOL_IDLE_BATCH streams looked at), so an alert that comes meanwhile waits little.
 POOL_IDLE_S = 0.02
+#: Streams with up to this many samples in a round go through the pool; more make a
+#: batch the engine takes in one call anyway.
+POOL_LAYERS = 4
 POOL_IDLE_BATCH = 2000
 NEW_STREAM_EVERY = 10.0
 
@@ -1548,9 +1551,10 @@ class Daemon:
         together, a layer at a time (every such stream's first sample, then the second of
         those with two, ...), and into the journal as columns; a stream whose charts could
         trip, whose sample is not plain or whose batch is full is fed at once, with the
-        rest of its round.  A stream a hold names, or whose samples are not plain numbers,
-        leaves the pool and goes the per-stream way, its waiting samples first.  Takes the
-        pooled streams out of ``groups``."""
+        rest of its round.  A stream with more than POOL_LAYERS samples this round (a batch
+        its engine takes in one call anyway), one a hold names, or one whose samples are not
+        plain numbers leaves the pool and goes the per-stream way, its waiting samples
+        first.  Takes the pooled streams out of ``groups``."""
         pool = self.pool
         assert pool is not None
         holds = self.floor.holding()
@@ -1558,7 +1562,7 @@ class Daemon:
         for name, g in groups.items():
             if name not in pool:
                 continue
-            if ((holds and self.floor.concerned_by_hold(name))
+            if (len(g[2]) > POOL_LAYERS or (holds and self.floor.concerned_by_hold(name))
                     or not all(map(_plain_number, g[2])) or not all(map(_plain_number, g[3]))):
                 g.append(pool.take(name))
                 continue

@@ -268,3 +268,29 @@ def test_a_hold_on_one_stream_leaves_the_others_pooled(tmp_path: Path) -> None:
     assert d.engines[held].samples_total == WARM + 50
     assert d.journal is not None
     d.journal.close()
+
+
+def test_a_pooled_stream_that_brings_a_batch_goes_the_per_stream_way(tmp_path: Path) -> None:
+    # A pooled stream whose round brings a JSON array of hundreds of samples: its engine
+    # takes them in one call, and the journal keeps them as one group.  Fed through the
+    # pool a sample at a time they had made a journal entry per sample (the memory bench
+    # ran the journal to its limit and the daemon to 261 MB).
+    from shiftwatch.journal import Journal
+
+    n = 5
+    data = _data(n, WARM + 400, np.random.default_rng(17), steps=False)
+    d = _warmed(tmp_path, "batch", n, data)
+    assert d.pool is not None
+    d.process(_round(n, WARM, data))  # one sample each: they wait in the pool
+    assert all(f"line/s{i:03d}/v" in d.pool for i in range(n))
+    assert d.snapshot()
+    d.process([Message(f"line/s{i:03d}/v", json.dumps([{"v": float(v), "ts": T0 + WARM + 1 + j} for j, v in
+                                                        enumerate(data[i, WARM + 1:WARM + 301])]).encode(),
+                       T0 + WARM + 301, 0, 0) for i in range(n)])
+    assert d.pool.total_waiting() == 0
+    assert all(e.samples_total == WARM + 301 for e in d.engines.values())
+    assert d.journal is not None
+    d.journal.close()
+    _, meta = d.store.load()
+    (groups,) = Journal(tmp_path / "batch" / "snapshots").open(meta["journal"])
+    assert sorted((g.stream, len(g.values)) for g in groups) == [(f"line/s{i:03d}/v", 300) for i in range(n)]

@@ -53,8 +53,8 @@ from shiftwatch.core.screen import MAX_ABS_VALUE
 
 FloatArray = NDArray[np.float64]
 
-#: Most charts a pooled test may have (the default bank has 3 to 4).
-MAX_CHARTS = 8
+#: Most charts a pooled test may have (the default bank has 4).
+MAX_CHARTS = 4
 #: Slack on the threshold (relative and absolute) for the order in which the engine's
 #: array path takes floating-point sums.
 MARGIN = 1e-9
@@ -140,8 +140,11 @@ class CalmPool:
         self._cp = _grown(self, "_cp", (n, m), 0.0)
         self._cm = _grown(self, "_cm", (n, m), 0.0)
         self._u = _grown(self, "_u", (n, w), 0.0)
-        self._t = _grown(self, "_t", (n, w), 0.0)
-        self._x = _grown(self, "_x", (n, w), 0.0)
+        # Only rows with samples waiting are copied: a stream whose samples come in
+        # batches never has any, and its rows cost nothing.
+        live = None if not old else np.flatnonzero(self._cnt[:old] > 0)
+        self._t = _grown(self, "_t", (n, w), 0.0, live)
+        self._x = _grown(self, "_x", (n, w), 0.0, live)
         cnt: NDArray[np.intp] = np.zeros(n, dtype=np.intp)
         cap: NDArray[np.intp] = np.zeros(n, dtype=np.intp)
         stated: NDArray[np.intp] = np.zeros(n, dtype=np.intp)
@@ -184,7 +187,7 @@ class CalmPool:
         if len(terms.ks) > MAX_CHARTS or len(terms.ks) != len(terms.hs):
             raise ValueError(f"a pooled test has 1 to {MAX_CHARTS} charts, got {len(terms.ks)}")
         if not self._free:
-            self._alloc(len(self._names) + max(64, len(self._names) // 4))
+            self._alloc(2 * len(self._names))
         slot = self._free.pop()
         self._slot[name] = slot
         self._names[slot] = name
@@ -320,11 +323,16 @@ class CalmPool:
         return [n for n in (names[i] for i in old.tolist()) if n is not None]
 
 
-def _grown(pool: CalmPool, attr: str, shape: tuple[int, ...], fill: float) -> FloatArray:
-    """``pool``'s array ``attr`` with room for ``shape[0]`` rows, the new ones ``fill``.
-    Zeros come from the allocator untouched: rows never written cost no memory."""
+def _grown(pool: CalmPool, attr: str, shape: tuple[int, ...], fill: float,
+           rows: NDArray[np.intp] | None = None) -> FloatArray:
+    """``pool``'s array ``attr`` with room for ``shape[0]`` rows, the new ones ``fill``; of
+    the old rows those in ``rows`` are kept (all when None).  Zeros come from the
+    allocator untouched: rows never written cost no memory."""
     out = np.zeros(shape) if fill == 0.0 else np.full(shape, fill)
     old: FloatArray | None = getattr(pool, attr, None)
     if old is not None:
-        out[: old.shape[0]] = old
+        if rows is None:
+            out[: old.shape[0]] = old
+        else:
+            out[rows] = old[rows]
     return out
