@@ -129,6 +129,18 @@ class ShardLease:
                     entry = await self.io.kv_get(self.bucket, self.key)
                 except Exception:  # noqa: BLE001, S112  judged at the next renewal, by the time since the last success
                     continue
+                if entry is None:
+                    # Gone (it expired while a server was down and no renewal got through):
+                    # claimed again if nobody else has it; create is atomic, so one owner.
+                    try:
+                        again = await asyncio.wait_for(
+                            self.io.kv_create(self.bucket, self.key, self._value()), timeout=self.lease / 4)
+                    except Exception:  # noqa: BLE001  judged below, by the time since the last success
+                        again = None
+                    if again is not None:
+                        self._rev = again
+                        self._last_ok = time.monotonic()
+                        continue
                 if entry is None or _owner_id(entry.value) == self.owner["id"]:
                     # Ours (carry on from its revision), or gone for now: the time since
                     # the last success decides, as for a cluster that does not answer.
