@@ -896,23 +896,24 @@ class Daemon:
         self.inbox.close()
         if self.link is not None:
             self.link.stop()
-        if self.server is not None:
-            self.server.close()
-        if self.nats is not None:
-            self.nats.close()
+        self._close_server_and_cluster(release=False)
         return 3
 
     def _start_failed(self) -> int:
         """A start that failed after the shard's lease was claimed (say, the metrics port
         was taken) gives the lease back: the restarted daemon would otherwise wait for
         it to expire, up to cluster.lease, on every attempt."""
+        self._close_server_and_cluster(release=True)
+        return 2
+
+    def _close_server_and_cluster(self, *, release: bool) -> None:
+        """Close the metrics endpoint, give the lease back (``release``), close NATS."""
         if self.server is not None:
             self.server.close()
-        if self.lease is not None:
+        if release and self.lease is not None:
             self.lease.release()
         if self.nats is not None:
             self.nats.close()
-        return 2
 
     def _stop_unstarted(self) -> int:
         self.log.info("stopped before the shard was ours")
