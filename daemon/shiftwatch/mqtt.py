@@ -495,6 +495,9 @@ class MqttLink:
         # filter -> (when to try again, monotonic; attempts so far).  See retry_subscriptions.
         self._sub_mids: dict[int, str] = {}
         self._sub_refused: dict[str, tuple[float, int]] = {}
+        # Filters a reload added: their SUBACK is logged, since only from then on do their
+        # messages arrive (the reload's own log line comes before the broker has answered).
+        self._sub_added: set[str] = set()
         self._last_error: str | None = None
         self._failed_attempts = 0
         self.host, self.port, tls = parse_url(cfg.url)
@@ -592,6 +595,8 @@ class MqttLink:
         if self.connected:
             for f in removed:
                 self.client.unsubscribe(f)
+            with self._lock:
+                self._sub_added.update(added)
             for f in added:
                 self._subscribe(self.client, f)
 
@@ -628,8 +633,13 @@ class MqttLink:
             return
         with self._lock:
             was = self._sub_refused.pop(f, None)
+            new = f in self._sub_added
+            self._sub_added.discard(f)
         if was is not None:
             self.log.info("broker %s took the subscription to %s (attempt %d)", self.url, f, was[1] + 1)
+        elif new:
+            self.log.info("broker %s took the subscription to %s: its messages arrive from now on",
+                          self.url, f)
 
     def refused_subscriptions(self) -> list[str]:
         """The filters the broker refused and that are not taken yet."""

@@ -67,6 +67,9 @@ def test_reload_keeps_streams_that_stay(daemon_factory, publisher) -> None:
     scrape = d.scrape()
     assert metric(scrape, "shiftwatch_level", stream="line/a/p1") == level_a
     assert metric(scrape, "shiftwatch_samples_total", stream="line/b/p1") is None
+    # The reload's line comes before the broker answers the new SUBSCRIBE; messages
+    # published before its SUBACK are not delivered (MQTT 3.1.1 section 3.8.4).
+    assert wait_until(lambda: "took the subscription to line/c/+" in d.log_text())
     for _ in range(50):
         publisher.publish("line/c/p1", "5.0")
     assert wait_until(lambda: metric(d.scrape(), "shiftwatch_samples_total", stream="line/c/p1") == 50)
