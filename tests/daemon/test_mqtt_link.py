@@ -42,6 +42,11 @@ def publish_numbered(pub: PlainClient, n: int, streams: int) -> None:
         pub.publish(f"line/{i % streams}/v", b'{"v": %d}' % i, qos=1)
 
 
+def _pending(link: MqttLink) -> int:
+    sock = link.client.socket()
+    return int(sock.pending()) if isinstance(sock, _ReadBuffer) else -1
+
+
 def drain(link: MqttLink, inbox: Inbox, n: int, *, max_items: int = 1000,
           pause: float = 0.0) -> tuple[list[Message], int]:
     """Take and acknowledge rounds until ``n`` messages came (waiting ``pause`` before
@@ -52,8 +57,12 @@ def drain(link: MqttLink, inbox: Inbox, n: int, *, max_items: int = 1000,
         if pause:
             time.sleep(pause)
         most = max(most, len(inbox))
-        msgs = inbox.take(max_items, 10_000_000, 5.0)
-        assert msgs, f"the flow stalled after {len(got)} messages"
+        msgs = inbox.take(max_items, 10_000_000, 15.0)
+        # One CI run on a machine loaded past its cores stalled here once (after 1,757 of
+        # 5,000); what the link held then says where the messages stopped.
+        assert msgs, (f"the flow stalled after {len(got)} messages: connected {link.connected}, "
+                      f"inbox {len(inbox)}, unsent packets {len(getattr(link.client, '_out_packet', ()))}, "
+                      f"buffered bytes {_pending(link)}")
         got.extend(msgs)
         link.ack_all(msgs)  # one write for the whole round
     return got, most
