@@ -22,7 +22,7 @@ import sys
 import threading
 import time
 from collections import OrderedDict, deque
-from collections.abc import Callable
+from collections.abc import Callable, Iterator, Mapping
 from pathlib import Path
 from types import FrameType
 from typing import Any, Literal
@@ -1881,7 +1881,7 @@ class Daemon:
         waiting = {} if self.pool is None else {
             n: [t.tolist(), x.tolist(), a.tolist()] for n, (t, x, a) in self.pool.waiting_samples().items()}
         try:
-            self.store.save({n: e.get_state() for n, e in self.engines.items()},
+            self.store.save(_EngineStates(self.engines),
                             {"saved_at": time.time(), "journal": token, "waiting": waiting,
                              "filters": {n: self._filters[n] for n in self.engines
                                          if n in self._filters},
@@ -2030,6 +2030,29 @@ class Daemon:
         # The journal holds samples fed to the engines as they were: a snapshot
         # now keeps it from being replayed into engines made for other settings.
         self.snapshot()
+
+
+class _EngineStates(Mapping[str, dict[str, Any]]):
+    """Each engine's state, made when the snapshot writer reaches it.
+
+    A dict of every state at once held each window as lists of float objects for
+    all streams together: with 10,000 streams the snapshot took the daemon from
+    179 MB to a peak of 516 MB, and the freed heap left it at 234 MB.  One
+    state at a time is all the writer needs."""
+
+    __slots__ = ("_engines",)
+
+    def __init__(self, engines: Mapping[str, StreamEngine]) -> None:
+        self._engines = engines
+
+    def __getitem__(self, name: str) -> dict[str, Any]:
+        return self._engines[name].get_state()
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(list(self._engines))
+
+    def __len__(self) -> int:
+        return len(self._engines)
 
 
 @functools.lru_cache(maxsize=1)
