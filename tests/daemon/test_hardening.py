@@ -167,7 +167,8 @@ def test_a_bad_snapshot_entry_costs_its_stream_only(daemon_factory, publisher, t
     level_b = metric(d.scrape(), "shiftwatch_level", stream="line/b/p1")
     assert d.stop() == 0
     store = StateStore(tmp_path / "state" / "snapshots")
-    streams, meta = store.load()
+    saved, meta = store.load()
+    streams = dict(saved)  # the loaded states are read-only (each unpacked as it is read)
     named = _break_entry(streams["line/a/p1"], how)
     store.save(streams, meta)
     d.start()  # before the fix: a traceback at every start (IndexError), or NaN accepted
