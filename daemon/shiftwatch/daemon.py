@@ -90,8 +90,8 @@ REPLAY_BATCH = 200_000
 #: At most this many "new stream" lines per NEW_STREAM_EVERY seconds; the rest are summed up.
 NEW_STREAM_LINES = 10
 #: The pool of calm streams (shiftwatch.core.calm): a calm stream's samples reach its
-#: engine in batches of 32 to 64 (fewer where its engine's baseline is refined sooner),
-#: or after 15 to 30 s, whichever comes first; at once where a chart could trip.
+#: engine in batches of 48 to 64 (fewer where its engine's baseline is refined sooner),
+#: or after 22.5 to 30 s, whichever comes first; at once where a chart could trip.
 POOL_SAMPLES = 64
 POOL_AGE_S = 30.0
 #: An idle round feeds waiting samples for up to this long (oldest first, at most
