@@ -881,13 +881,26 @@ def _senml_columns(payload: bytes, now: float, max_items: int, max_depth: int) -
     n_col = list(map(_GET_N, recs))
     t_col = list(map(_GET_T, recs))
     u_col = list(map(_GET_U, recs))
-    n_unset, t_unset, u_unset = n_col.count(_UNSET), t_col.count(_UNSET), u_col.count(_UNSET)
+    n0 = n_col[0]
+    if n_col.count(n0) == n:  # one name (a sensor's series): no comparison with UNSET per record
+        firsts: dict[Any, None] = {n0: None}
+        n_unset = n if n0 is _UNSET else 0
+        n_colons = 0 if n_unset else n * n0.count(":")
+    else:
+        firsts = dict.fromkeys(n_col)
+        n_unset = n_col.count(_UNSET)
+        n_colons = "".join([x for x in n_col if x is not _UNSET] if n_unset else n_col).count(":")
+    try:
+        t = np.array(t_col, dtype=np.float64)  # refuses UNSET: then the records without t are 0
+        t_unset = 0
+    except TypeError:
+        t_unset = t_col.count(_UNSET)
+        t = np.array([0.0 if x is _UNSET else x for x in t_col], dtype=np.float64)
+    u_unset = u_col.count(_UNSET)
     base = [head.bn, head.bt, head.bu, head.bv, head.bver]
     texts = [x for x in (head.bn, head.bu) if x is not _UNSET]
     fields = 4 * n - n_unset - t_unset - u_unset + 5 - base.count(_UNSET)
-    colons = fields + sum(x.count(":") for x in texts)
-    if n_unset < n:
-        colons += "".join([x for x in n_col if x is not _UNSET] if n_unset else n_col).count(":")
+    colons = fields + sum(x.count(":") for x in texts) + n_colons
     if u_unset < n:
         colons += "".join([x for x in u_col if x is not _UNSET] if u_unset else u_col).count(":")
     if payload.count(b":") != colons:
@@ -899,7 +912,6 @@ def _senml_columns(payload: bytes, now: float, max_items: int, max_depth: int) -
     bu = None if head.bu is _UNSET else head.bu
     bv = 0.0 if head.bv is _UNSET else head.bv
     bt = 0.0 if head.bt is _UNSET else head.bt
-    firsts = dict.fromkeys(n_col)
     names = [bn + ("" if key is _UNSET else key) for key in firsts]
     if not all(name and _SENML_NAME.fullmatch(name) for name in names):
         return None
@@ -912,7 +924,6 @@ def _senml_columns(payload: bytes, now: float, max_items: int, max_depth: int) -
             if per.setdefault(key, unit) != unit:
                 return None
         units = [per[key] for key in firsts]
-    t = np.array([0.0 if x is _UNSET else x for x in t_col] if t_unset else t_col, dtype=np.float64)
     with np.errstate(over="ignore"):  # a sum past the float range is inf, refused below
         values = np.array(list(map(_GET_V, recs)), dtype=np.float64) + bv
         total = bt + t
