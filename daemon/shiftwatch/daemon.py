@@ -90,8 +90,8 @@ REPLAY_BATCH = 200_000
 #: At most this many "new stream" lines per NEW_STREAM_EVERY seconds; the rest are summed up.
 NEW_STREAM_LINES = 10
 #: The pool of calm streams (shiftwatch.core.calm): a calm stream's samples reach its
-#: engine in batches of 32 to 64 (fewer where its engine's baseline is refined sooner),
-#: or after 15 to 30 s, whichever comes first; at once where a chart could trip.
+#: engine in batches of 48 to 64 (fewer where its engine's baseline is refined sooner),
+#: or after 22.5 to 30 s, whichever comes first; at once where a chart could trip.
 POOL_SAMPLES = 64
 POOL_AGE_S = 30.0
 #: An idle round feeds waiting samples for up to this long (oldest first, at most
@@ -1210,18 +1210,20 @@ class Daemon:
                     self._decode_problems(m.topic, dec.problems, now)
                 arrived = m.arrived
                 into = groups if self.owner is None or self.owner.owns(m.topic) else foreign
-                if dec.columns is not None:  # a clean JSON array, as lists (see decode())
+                readings = dec.readings
+                if dec.columns is not None:  # a clean JSON array, as arrays (see decode())
                     ts, vs = dec.columns
-                    g = into.get(topic_stream)
-                    if g is None:
-                        g = into[topic_stream] = [spec, spec.unit, [], [], []]
-                        if self.owner is not None:
-                            self._note_topic(topic_stream, m.topic)
-                    g[2].extend([arrived] * len(vs) if ts is None else ts)
-                    g[3].extend(vs)
-                    g[4].extend([arrived] * len(vs))
+                    self._add_columns(into, topic_stream, spec, spec.unit, m.topic, ts, vs, arrived)
                     continue
-                for r in dec.readings:
+                if dec.senml is not None:  # a clean SenML pack, as arrays per name
+                    pack = dec.senml
+                    streams = [stream_name(m.topic, n) for n in pack.names]
+                    if len(set(streams)) == len(streams):
+                        for name, unit, ts, vs in zip(streams, pack.units, pack.times, pack.values):
+                            self._add_columns(into, name, spec, unit or spec.unit, m.topic, ts, vs, arrived)
+                        continue
+                    readings = pack.readings()  # two names, one stream: in record order
+                for r in readings:
                     if r.time is None and spec.time is not None:
                         # Set aside (no_time, counted with the problems above): placed at its
                         # arrival it would stand after every sample of a backlog stamped
@@ -1238,6 +1240,8 @@ class Daemon:
                         g = into[name] = [spec, r.unit or spec.unit, [], [], []]
                         if self.owner is not None:
                             self._note_topic(name, m.topic)
+                    elif type(g[2]) is not list:
+                        g[2:5] = [c.tolist() for c in g[2:5]]
                     g[2].append(arrived if r.time is None else r.time)
                     g[3].append(r.value)
                     g[4].append(arrived)
@@ -1298,6 +1302,31 @@ class Daemon:
             self._ack_later.append((msgs, wrote))
             return
         self._finish(msgs, wrote)
+
+    def _add_columns(self, into: dict[str, list[Any]], name: str, spec: StreamConfig, unit: str | None,
+                     topic: str, ts: np.ndarray | None, vs: np.ndarray, arrived: float) -> None:
+        """A stream's samples from one message, as arrays (times None: the arrival time), into
+        its group of the round.  A group of more than POOL_LAYERS samples keeps arrays (its
+        engine takes them in one call); a smaller one keeps lists, which the pool's layers
+        index sample by sample."""
+        n = vs.shape[0]
+        g = into.get(name)
+        if g is None:
+            g = into[name] = [spec, unit, [], [], []]
+            if self.owner is not None:
+                self._note_topic(name, topic)
+            if n > POOL_LAYERS:
+                arr = np.full(n, arrived)
+                g[2:5] = [arr if ts is None else ts, vs, arr]
+                return
+        if type(g[2]) is not list:
+            g[2] = np.concatenate((g[2], np.full(n, arrived) if ts is None else ts))
+            g[3] = np.concatenate((g[3], vs))
+            g[4] = np.concatenate((g[4], np.full(n, arrived)))
+            return
+        g[2].extend([arrived] * n if ts is None else ts.tolist())
+        g[3].extend(vs.tolist())
+        g[4].extend([arrived] * n)
 
     def _release_deferred(self) -> None:
         """Feed the deferred streams whose wait is over (loaded afresh, with what the
@@ -1520,7 +1549,10 @@ class Daemon:
         if prior is not None and prior[0].shape[0]:
             times, values, arrivals = (np.concatenate((p, a)) for p, a in zip(prior, (times, values, arrivals)))
         if times.shape[0]:
-            self._feed(name, eng, times, values, arrivals, now)
+            # A stream that brought more than POOL_LAYERS samples this round would leave the
+            # pool again on its next such round: it joins after a round of few samples, and
+            # saves calm_terms(), join() and take() on each of its batches.
+            self._feed(name, eng, times, values, arrivals, now, rejoin=len(values_list) <= POOL_LAYERS)
         return group
 
     def _feed(self, name: str, eng: StreamEngine, times: np.ndarray, values: np.ndarray,

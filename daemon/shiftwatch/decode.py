@@ -122,6 +122,7 @@ import functools
 import hashlib
 import json
 import math
+import operator
 import re
 from collections import Counter
 from collections.abc import Sequence
@@ -129,7 +130,11 @@ from datetime import datetime
 from itertools import accumulate
 from typing import Any, NamedTuple
 
+import msgspec
 import numpy as np
+from numpy.typing import NDArray
+
+FloatArray = NDArray[np.float64]
 
 FORMATS: tuple[str, ...] = ("number", "json", "senml")
 """The payload formats :func:`decode` understands."""
@@ -198,18 +203,47 @@ class Reading(NamedTuple):
     unit: str | None
 
 
+class SenmlColumns(NamedTuple):
+    """A clean SenML pack as columns, one pair of arrays per resolved name.
+
+    ``names`` are the distinct names in the order of their first record,
+    ``units`` the unit of each (the same on all its records), ``times`` and
+    ``values`` each name's samples in record order, and ``order`` the index
+    into ``names`` of every record, so :meth:`readings` gives back exactly the
+    readings the pack stands for, in record order.
+    """
+
+    names: list[str]
+    units: list[str | None]
+    times: list[FloatArray]
+    values: list[FloatArray]
+    order: NDArray[np.intp]
+
+    def readings(self) -> list[Reading]:
+        """The readings, one per record, in record order."""
+        seen = [0] * len(self.names)
+        out = []
+        for i in self.order.tolist():
+            j = seen[i]
+            seen[i] = j + 1
+            out.append(Reading(self.names[i], float(self.times[i][j]), float(self.values[i][j]),
+                               self.units[i]))
+        return out
+
+
 class Decoded(NamedTuple):
     """What one payload gave: the usable readings and the problems found.
 
     A payload can give both, e.g. a batch with some bad items.  With
     ``columns=True`` (see :func:`decode`) a clean JSON array comes as
-    ``columns``, its times (None: none configured) and values as lists, and
-    ``readings`` is empty.
+    ``columns``, its times (None: none configured) and values as float64
+    arrays, and a clean SenML pack as ``senml``; ``readings`` is then empty.
     """
 
     readings: list[Reading]
     problems: list[DecodeProblem]
-    columns: tuple[list[float] | None, list[float]] | None = None
+    columns: tuple[FloatArray | None, FloatArray] | None = None
+    senml: SenmlColumns | None = None
 
 
 class _Reject(Exception):
@@ -511,9 +545,10 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
     max_depth : int, optional
         Deepest nesting of lists/objects accepted (``too_deep``).
     columns : bool, optional
-        ``json`` only: a JSON array of flat objects whose every item has one
-        number at each (plain) key comes back as ``columns`` (times, values)
-        instead of readings: the same numbers, without an object per sample.
+        A JSON array of flat objects whose every item has one number at each
+        (plain) key comes back as ``columns`` (times, values), and a plain
+        SenML pack (see :func:`_senml_columns`) as ``senml``, instead of
+        readings: the same numbers, without an object per sample.
 
     Returns
     -------
@@ -536,17 +571,21 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
                       Reading(name=None, time=None, value=13.0, unit=None)],
             problems=[DecodeProblem(reason='value_is_text',
                                     message="item 1: value is the text '12.5', not a JSON number")],
-            columns=None)
+            columns=None, senml=None)
     >>> decode(b'[' * 100, "json", now=0.0).problems[0].reason
     'too_deep'
     >>> decode(b'{"value": 1}', "json", time_path="ts", now=0.0)
     ... # doctest: +NORMALIZE_WHITESPACE
     Decoded(readings=[Reading(name=None, time=None, value=1.0, unit=None)],
             problems=[DecodeProblem(reason='no_time', message="message: no time at 'ts'")],
-            columns=None)
-    >>> decode(b'[{"v": 1, "ts": 10}, {"v": 2.5, "ts": 11}]', "json", value_path="v", time_path="ts",
-    ...        now=0.0, columns=True).columns
-    ([10.0, 11.0], [1.0, 2.5])
+            columns=None, senml=None)
+    >>> [c.tolist() for c in decode(b'[{"v": 1, "ts": 10}, {"v": 2.5, "ts": 11}]', "json", value_path="v",
+    ...                             time_path="ts", now=0.0, columns=True).columns]
+    [[10.0, 11.0], [1.0, 2.5]]
+    >>> pack = decode(b'[{"bn": "oven2:", "bt": 1764633600, "n": "zone1", "v": 181.5}, {"n": "zone1", "t": 1, '
+    ...               b'"v": 181.75}]', "senml", now=0.0, columns=True).senml
+    >>> pack.names, [t.tolist() for t in pack.times], [v.tolist() for v in pack.values]
+    (['oven2:zone1'], [[1764633600.0, 1764633601.0]], [[181.5, 181.75]])
     """
     if not isinstance(payload, (bytes, bytearray)):
         raise TypeError(f"payload must be bytes, got {type(payload).__name__}")
@@ -569,10 +608,16 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
         problems.append(DecodeProblem("empty", "the payload is empty" if not text else "the payload is blank"))
         return out
 
-    if columns and fmt == "json":
-        cols = _array_columns(bytes(payload), value_parts, time_parts, max_items, max_depth)
-        if cols is not None:
-            return Decoded(readings, problems, cols)
+    if columns and fmt != "number" and payload[:1] == b"[" and payload.isascii():
+        # ASCII is valid UTF-8 and has no byte-order mark: the checks below stand.
+        if fmt == "json":
+            cols = _array_columns(bytes(payload), value_parts, time_parts, max_items, max_depth)
+            if cols is not None:
+                return Decoded(readings, problems, cols)
+        else:
+            pack = _senml_columns(bytes(payload), now, max_items, max_depth)
+            if pack is not None:
+                return Decoded(readings, problems, None, pack)
 
     if fmt == "number":
         try:
@@ -703,52 +748,195 @@ _BIG_INT = 2 ** 1000
 
 
 def _array_columns(payload: bytes, value_parts: tuple[str, ...], time_parts: tuple[str, ...] | None,
-                   max_items: int, max_depth: int) -> tuple[list[float] | None, list[float]] | None:
+                   max_items: int, max_depth: int) -> tuple[FloatArray | None, FloatArray] | None:
     """The times and values of a JSON array of flat objects, when :func:`decode` would give
     exactly these readings and no problem; None otherwise (then it decodes as usual).
 
-    Why no duplicate key can hide: with no backslash a key has one spelling; the
-    payload holds as many quoted value keys (and time keys) as objects, and every
-    object has one, so no object has two.
+    msgspec parses the array straight into one small struct per object (see
+    :func:`_column_decoders`): a value or time that is not a JSON number, or is beyond
+    the float range, fails the parse, and so does anything that is not JSON (NaN and
+    Infinity literals included); the usual path then says what is wrong.
+
+    Why no duplicate key can hide.  With no backslash a key has one spelling.  The
+    strict parse takes objects of the watched keys only, all numbers: the only text is
+    then the keys, so the payload's colons are one per key (plus those a key holds), and
+    as many as the keys of one object times the objects means no object has a key twice.
+    Otherwise (other keys beside them) the payload must hold as many quoted value keys
+    (and time keys) as objects, and every object has one, so no object has two.
     """
     if (len(value_parts) != 1 or (time_parts is not None and len(time_parts) != 1) or max_depth < 2
-            or len(payload) < 2 or payload[0] != 0x5B or payload[-1] != 0x5D or b"\\" in payload
-            or payload.count(b"[") != 1 or payload.count(b"]") != 1):
+            or len(payload) < 2 or payload[-1] != 0x5D or b"\\" in payload
+            or payload.find(b"[", 1) >= 0 or payload.find(b"]", 0, len(payload) - 1) >= 0):
         return None
-    n = payload.count(b"{")
-    keys = _watched(value_parts, time_parts)
-    if n == 0 or n > max_items or payload.count(b"}") != n or any(payload.count(k) != n for k in keys):
+    decoders = _column_decoders(value_parts[0], None if time_parts is None else time_parts[0])
+    if decoders is None:
         return None
-    doc = _fast_loads(payload)  # (orjson refuses what the stdlib parser reads otherwise: NaN, huge ints)
-    if type(doc) is not list or len(doc) != n:
+    strict, lenient, colons = decoders
+    try:
+        doc = strict.decode(payload)
+        if payload.count(b":") != colons * len(doc):
+            return None
+    except msgspec.MsgspecError:
+        n = payload.count(b"{")
+        keys = _watched(value_parts, time_parts)
+        if n == 0 or n > max_items or payload.count(b"}") != n or any(payload.count(k) != n for k in keys):
+            return None
+        try:
+            doc = lenient.decode(payload)
+        except msgspec.MsgspecError:
+            return None
+        if len(doc) != n:
+            return None
+    if not doc or len(doc) > max_items:
+        return None
+    values = np.array(list(map(_FIRST, doc)), dtype=np.float64)
+    if not np.isfinite(values).all():
+        return None
+    if time_parts is None:
+        return None, values
+    t = np.array(list(map(_SECOND, doc)), dtype=np.float64)
+    if not np.isfinite(t).all():
+        return None
+    # _seconds, element by element: the same division.
+    return np.where(t > _MS_THRESHOLD, t / 1000.0, t), values
+
+
+_FIRST = operator.attrgetter("a")
+_SECOND = operator.attrgetter("b")
+
+
+@functools.lru_cache(maxsize=64)
+def _column_decoders(value_key: str, time_key: str | None) -> tuple[Any, Any, int] | None:
+    """msgspec decoders of a JSON array of objects holding a number at ``value_key``
+    (field ``a``) and at ``time_key`` (field ``b``): one that refuses any other key, one
+    that skips other keys; and the colons an object of the first kind holds.
+
+    msgspec takes a JSON integer for a float field as ``float()`` does (correctly
+    rounded), refuses true/false, null, text, objects and lists there, and refuses
+    numbers beyond the float range: exactly the values :func:`_value` and
+    :func:`_epoch` take as numbers.  On the daemon benchmark's 260-sample arrays it
+    parsed in 28 microseconds, against 60 for orjson's parse into dicts.
+    """
+    if time_key == value_key:
+        return None
+    fields: list[tuple[str, type]] = [("a", float)]
+    rename = {"a": value_key}
+    if time_key is not None:
+        fields.append(("b", float))
+        rename["b"] = time_key
+    out = []
+    for forbid in (True, False):
+        sample = msgspec.defstruct("Sample", fields, rename=rename, gc=False, forbid_unknown_fields=forbid)
+        out.append(msgspec.json.Decoder(list[sample]))  # type: ignore[valid-type]
+    return out[0], out[1], sum(1 + key.count(":") for key in rename.values())
+
+
+class _SenmlRecord(msgspec.Struct, forbid_unknown_fields=True, gc=False):
+    """A SenML record the fast path takes: a numeric value, and nothing it does not
+    resolve itself (no vs/vb/vd/s/bs, no unknown or must-understand label)."""
+
+    v: float
+    n: str | msgspec.UnsetType = msgspec.UNSET
+    t: float | msgspec.UnsetType = msgspec.UNSET
+    u: str | msgspec.UnsetType = msgspec.UNSET
+    bn: str | msgspec.UnsetType = msgspec.UNSET
+    bt: float | msgspec.UnsetType = msgspec.UNSET
+    bu: str | msgspec.UnsetType = msgspec.UNSET
+    bv: float | msgspec.UnsetType = msgspec.UNSET
+    bver: int | msgspec.UnsetType = msgspec.UNSET
+
+
+_SENML_PACK = msgspec.json.Decoder(list[_SenmlRecord])
+_GET_N = operator.attrgetter("n")
+_GET_T = operator.attrgetter("t")
+_GET_U = operator.attrgetter("u")
+_GET_V = operator.attrgetter("v")
+_UNSET: Any = msgspec.UNSET
+
+
+def _senml_columns(payload: bytes, now: float, max_items: int, max_depth: int) -> SenmlColumns | None:
+    """A SenML pack as columns when :func:`decode` would give exactly its readings and no
+    problem; None otherwise (then it decodes as usual).
+
+    Taken: records of scalar fields only (so nothing nests), no backslash, base fields
+    in the first record only, every record with a numeric ``v`` and nothing but ``n``,
+    ``t``, ``u`` beside it, names that pass RFC 8428 section 4.5.1, one unit per name,
+    finite sums.  The colons tell the rest.  With no backslash a key has one spelling,
+    and the payload's colons are one per key it holds plus those inside its text values.
+    They are counted against the keys of the parsed records (the first record's base
+    fields, and ``v``, ``n``, ``t``, ``u`` of each) and the colons of their names and
+    units: a key held twice in a record (the parse keeps one), or a base field in a
+    later record, adds at least one colon more.
+    """
+    if max_depth < 2 or payload[-1] != 0x5D or b"\\" in payload:
         return None
     try:
-        values = _finite_column([item[value_parts[0]] for item in doc])
-        if values is None:
-            return None
-        if time_parts is None:
-            return None, values
-        raw = _finite_column([item[time_parts[0]] for item in doc])
-    except (KeyError, TypeError):  # an item that is not an object, or lacks a key
+        recs = _SENML_PACK.decode(payload)
+    except msgspec.MsgspecError:
         return None
-    if raw is None:
+    n = len(recs)
+    if n == 0 or n > max_items:
         return None
-    t = np.asarray(raw)
-    # _seconds, element by element: the same division.
-    return np.where(t > _MS_THRESHOLD, t / 1000.0, t).tolist(), values
-
-
-def _finite_column(column: list[Any]) -> list[float] | None:
-    """JSON numbers as finite floats (as :func:`_value` makes them), or None when any is
-    something else (text, a bool, null, an object) or not finite."""
-    kinds = set(map(type, column))
-    if not kinds <= {float, int}:
+    head: Any = recs[0]  # (its fields are narrowed by "is _UNSET", which mypy does not follow)
+    n_col = list(map(_GET_N, recs))
+    t_col = list(map(_GET_T, recs))
+    u_col = list(map(_GET_U, recs))
+    n0 = n_col[0]
+    if n_col.count(n0) == n:  # one name (a sensor's series): no comparison with UNSET per record
+        firsts: dict[Any, None] = {n0: None}
+        n_unset = n if n0 is _UNSET else 0
+        n_colons = 0 if n_unset else n * n0.count(":")
+    else:
+        firsts = dict.fromkeys(n_col)
+        n_unset = n_col.count(_UNSET)
+        n_colons = "".join([x for x in n_col if x is not _UNSET] if n_unset else n_col).count(":")
+    try:
+        t = np.array(t_col, dtype=np.float64)  # refuses UNSET: then the records without t are 0
+        t_unset = 0
+    except TypeError:
+        t_unset = t_col.count(_UNSET)
+        t = np.array([0.0 if x is _UNSET else x for x in t_col], dtype=np.float64)
+    u_unset = u_col.count(_UNSET)
+    base = [head.bn, head.bt, head.bu, head.bv, head.bver]
+    texts = [x for x in (head.bn, head.bu) if x is not _UNSET]
+    fields = 4 * n - n_unset - t_unset - u_unset + 5 - base.count(_UNSET)
+    colons = fields + sum(x.count(":") for x in texts) + n_colons
+    if u_unset < n:
+        colons += "".join([x for x in u_col if x is not _UNSET] if u_unset else u_col).count(":")
+    if payload.count(b":") != colons:
         return None
-    out = np.array(column, dtype=np.float64)  # orjson's ints fit 64 bits: exact as float() makes them
-    if not np.isfinite(out).all():
+    bver = head.bver
+    if bver is not _UNSET and not 1 <= bver <= _SENML_VERSION:
         return None
-    floats: list[float] = out.tolist()
-    return floats
+    bn = "" if head.bn is _UNSET else head.bn
+    bu = None if head.bu is _UNSET else head.bu
+    bv = 0.0 if head.bv is _UNSET else head.bv
+    bt = 0.0 if head.bt is _UNSET else head.bt
+    names = [bn + ("" if key is _UNSET else key) for key in firsts]
+    if not all(name and _SENML_NAME.fullmatch(name) for name in names):
+        return None
+    if u_unset == n:
+        units: list[str | None] = [bu] * len(names)
+    else:
+        per: dict[Any, Any] = {}
+        for key, unit in zip(n_col, u_col):
+            unit = bu if unit is _UNSET else unit
+            if per.setdefault(key, unit) != unit:
+                return None
+        units = [per[key] for key in firsts]
+    with np.errstate(over="ignore"):  # a sum past the float range is inf, refused below
+        values = np.array(list(map(_GET_V, recs)), dtype=np.float64) + bv
+        total = bt + t
+    if not (np.isfinite(values).all() and np.isfinite(total).all()):
+        return None
+    times = np.where(total < _RELATIVE_LIMIT, now + total,
+                     np.where(total > _MS_THRESHOLD, total / 1000.0, total))
+    if len(names) == 1:
+        return SenmlColumns(names, units, [times], [values], np.zeros(n, dtype=np.intp))
+    code = {key: j for j, key in enumerate(firsts)}
+    order = np.array([code[key] for key in n_col], dtype=np.intp)
+    picks = [order == j for j in range(len(names))]
+    return SenmlColumns(names, units, [times[m] for m in picks], [values[m] for m in picks], order)
 
 
 def _joined_objects(payloads: Sequence[bytes | bytearray], max_bytes: int,

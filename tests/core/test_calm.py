@@ -168,3 +168,31 @@ def test_a_stream_with_an_open_event_is_not_calm() -> None:
         if eng.state == "event_open":
             break
     assert eng.state == "event_open" and eng.calm_terms() is None
+
+
+def test_batches_and_waits_are_spread_over_the_top_quarter_of_the_limits() -> None:
+    # Streams that join together leave after 48 to 64 plain samples (max_samples 64), or
+    # once their first waiting sample is 22.5 to 30 s old (max_age 30): spread by name,
+    # so they do not all reach their engines in one round, and never past the limits.
+    terms = CalmTerms(level=0.0, offsets=(0.0,), lam=0.0, delay=0, lo=-10.0, hi=10.0, inv=1.0, phi=0.0,
+                      prev_r=0.0, clip=3.0, ks=(0.5,), hs=(1e6,), c_plus=(0.0,), c_minus=(0.0,), room=10_000,
+                      last_time=0.0, max_ahead=math.inf, max_behind=math.inf)
+    names = [f"brackenfield/line{i // 20}/head{i % 20}/fill_g" for i in range(200)]
+    pool = CalmPool(max_samples=64, max_age=30.0)
+    for name in names:
+        pool.join(name, terms)
+    left: dict[str, int] = {}
+    for j in range(1, 65):
+        live = [n for n in names if n not in left]
+        t = np.full(len(live), float(j))
+        for name, h in zip(live, pool.offer(live, t, np.zeros(len(live)), t, now=0.0).tolist()):
+            if h:
+                left[name] = j
+    assert len(left) == len(names) and set(left.values()) <= set(range(48, 65))
+    assert len(set(left.values())) >= 8
+    ages = CalmPool(max_samples=64, max_age=30.0)
+    for name in names:
+        ages.join(name, terms)
+    ages.offer(names, np.ones(200), np.zeros(200), np.ones(200), now=0.0)
+    assert ages.due(22.49) == [] and sorted(ages.due(30.0)) == sorted(names)
+    assert 50 < len(ages.due(26.25)) < 150

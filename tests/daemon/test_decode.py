@@ -23,6 +23,7 @@ import re
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -337,9 +338,11 @@ def test_programming_errors_raise() -> None:
 # SenML: RFC 8428 examples (recalled from memory) and resolution rules
 
 def senml(records: list[dict[str, Any]] | str, now: float = NOW) -> Decoded:
+    """The pack decoded as usual; its decoding as columns (the daemon's) must give the same."""
     text = records if isinstance(records, str) else json.dumps(records)
     out = decode(text.encode(), "senml", now=now)
     check_invariants(out, "senml")
+    assert _as_readings(decode(text.encode(), "senml", now=now, columns=True)) == out
     return out
 
 
@@ -387,6 +390,13 @@ def test_rfc8428_5_1_3_multiple_measurements_resolve_as_5_1_4() -> None:
     assert out.problems == []
     assert [(r.name, r.unit, r.value) for r in out.readings] == [x[:3] for x in resolved]
     assert [r.time for r in out.readings] == pytest.approx([x[3] for x in resolved], abs=1e-6)
+    # The daemon's columns: one pair of arrays per name, the same resolution.
+    cols = decode(pack.encode(), "senml", now=NOW, columns=True)
+    assert cols.senml is not None and cols.readings == [] and cols.problems == []
+    assert cols.senml.names == ["urn:dev:ow:10e2073a0108006:voltage", "urn:dev:ow:10e2073a0108006:current"]
+    assert cols.senml.units == ["V", "A"]
+    assert cols.senml.values[1].tolist() == [1.2, 1.3, 1.4, 1.5, 1.6, 1.7]
+    assert cols.senml.times[1].tolist() == pytest.approx([x[3] for x in resolved[1:]], abs=1e-6)
 
 
 def test_rfc8428_5_1_3_humidity_and_location() -> None:
@@ -752,6 +762,10 @@ FLAT_PIECES = st.sampled_from(['"v": 1', '"v": 2.5', '"v": "x"', '"v": NaN', '"t
                                '"ts": "2025-12-02T00:00:00Z"', '"ts": null', '"a": "}"', '"b": "{"',
                                '"c": ","', '"d": "\\""', '"v": 9' + "9" * 400, '"v": 1' + "0" * 350,
                                '"v": -' + "9" * 400, '"ts": -' + "9" * 400, '"v": -' + "9" * 399,
+                               # integers past 64 bits and past 2**53, within the float range; exponents
+                               '"v": 9007199254740993', '"v": 123456789012345678901234567890',
+                               '"v": -' + "7" * 300, '"ts": 1' + "3" * 20, '"v": 2.5e-3', '"v": 1E+2',
+                               '"ts": 100000000000', '"ts": 100000000001', '"ts": 1e11',
                                '"', ",", "}", "{", " ", ":"])
 
 
@@ -767,32 +781,122 @@ def test_property_decode_many_equals_decode(items: list[list[str]], time_path: s
 
 
 def _as_readings(d: Decoded) -> Decoded:
-    """A result with columns, as the readings they stand for."""
+    """A result with columns (JSON arrays, SenML packs), as the readings they stand for; the
+    columns are float64 arrays, and their numbers must be exactly the readings' floats."""
+    if d.senml is not None:
+        assert not d.readings and not d.problems and d.columns is None
+        assert all(t.dtype == np.float64 and v.dtype == np.float64 for t, v in zip(d.senml.times, d.senml.values))
+        return Decoded(d.senml.readings(), [])
     if d.columns is None:
         return d
     ts, vs = d.columns
     assert not d.readings and not d.problems
+    assert vs.dtype == np.float64 and (ts is None or ts.dtype == np.float64)
     return Decoded([Reading(None, None if ts is None else t, v, None)
-                    for t, v in zip(ts if ts is not None else [None] * len(vs), vs)], [])
+                    for t, v in zip(ts.tolist() if ts is not None else [None] * len(vs), vs.tolist())], [])
+
+
+def _fields(draw: Any, choices: dict[str, list[str]], must: tuple[str, ...] = ()) -> list[str]:
+    keys = [k for k in choices if k in must or draw(st.booleans())]
+    return [f'"{k}": {draw(st.sampled_from(choices[k]))}' for k in keys]
+
+
+_PLAIN_ITEM = {"v": ["1", "2.5", "-0.0", "1e308", "9007199254740993", "-" + "7" * 300, "2.5e-3"],
+               "ts": ["1764633600", "1764633600123", "1764633600.25", "-5", "1e11", "1" + "3" * 20],
+               "note": ['"x"', "true", "null"]}
 
 
 @settings(PROPERTY, max_examples=1500)
-@given(items=st.lists(st.lists(FLAT_PIECES, max_size=5), min_size=1, max_size=6),
-       time_path=st.none() | st.just("ts"), max_items=st.sampled_from([3, 10000]))
-def test_property_columns_give_the_readings_of_the_usual_path(items: list[list[str]], time_path: str | None,
-                                                               max_items: int) -> None:
-    # A JSON array of (mostly) flat objects, with duplicate keys, stray braces and
-    # quotes, text, NaN, huge numbers: columns=True must give the same numbers as the
-    # usual path (the stdlib parser with repeated-key detection), or decode as usual.
-    payload = ("[" + ", ".join("{" + ", ".join(parts) + "}" for parts in items) + "]").encode()
+@given(items=st.lists(st.none() | st.lists(FLAT_PIECES, max_size=5), min_size=1, max_size=6),
+       time_path=st.none() | st.just("ts"), max_items=st.sampled_from([3, 10000]), data=st.data())
+def test_property_columns_give_the_readings_of_the_usual_path(items: list[list[str] | None], time_path: str | None,
+                                                               max_items: int, data: st.DataObject) -> None:
+    # A JSON array of flat objects, some plain (a number at each key, so that many arrays
+    # take the column path), the rest with duplicate keys, stray braces and quotes, text,
+    # NaN, huge numbers: columns=True must give the same numbers as the usual path (the
+    # stdlib parser with repeated-key detection), or decode as usual.
+    parts = [_fields(data.draw, _PLAIN_ITEM, ("v", "ts")) if it is None else it for it in items]
+    payload = ("[" + ", ".join("{" + ", ".join(p) + "}" for p in parts) + "]").encode()
     kwargs: dict[str, Any] = {"value_path": "v", "time_path": time_path, "now": NOW, "max_items": max_items}
     assert _as_readings(decode(payload, "json", columns=True, **kwargs)) == decode(payload, "json", **kwargs)
+
+
+SENML_PIECES = st.sampled_from([
+    '"v": 1.5', '"v": 7', '"v": -0.0', '"v": "x"', '"v": true', '"v": null', '"v": NaN', '"v": 1e400',
+    '"v": 1e308', '"v": 9' + "9" * 30, '"vs": "a"', '"vb": true', '"s": 1', '"n": "a"', '"n": "b:c"',
+    '"n": ""', '"n": "bad name"', '"n": 5', '"n": "v"', '"t": 1', '"t": -5', '"t": 0.25', '"t": 1e12',
+    '"t": 1764633600', '"t": "x"', '"t": null', '"u": "g"', '"u": "kg"', '"u": null', '"bn": "dev:"',
+    '"bn": "urn:x:y:"', '"bn": ""', '"bn": 3', '"bt": 1764633600', '"bt": 1764633600000',
+    '"bt": -1e308', '"bt": "now"', '"bu": "g"', '"bu": "Cel"', '"bv": 100', '"bv": 1e308',
+    '"bv": "x"', '"bver": 10', '"bver": 11', '"bver": 5.0', '"bver": 0', '"bs": 1', '"x_": 1',
+    '"ut": 1', '"q": [1]', '"r": {"v": 1}', '"w": "}"', '"v\\u0061": 1', '"', ",", "}", "{", " "])
+
+
+_PLAIN_SENML = {"v": ["1.5", "7", "-0.0", "1e308", "2.5e-3", "-" + "3" * 25], "n": ['"a"', '"b:c"', '"a"'],
+                "t": ["1", "-5", "0.25", "1e12", "1764633600"], "u": ['"g"']}
+_PLAIN_BASE = {"bn": ['"dev:"', '"urn:x:y:"', '""'], "bt": ["1764633600", "1764633600000", "-1e308"],
+               "bu": ['"g"', '"Cel"'], "bv": ["100", "1e308"], "bver": ["10", "11", "1"]}
+
+
+@st.composite
+def _senml_pack(draw: Any) -> str:
+    """A pack of plain records (each takes the column path alone) and records of any pieces."""
+    plain = draw(st.lists(st.sampled_from([True] * 5 + [False]), min_size=1, max_size=6))
+    records = [_fields(draw, _PLAIN_SENML, ("v", "n")) if p else draw(st.lists(SENML_PIECES, max_size=5))
+               for p in plain]
+    if draw(st.booleans()):
+        records[0] = _fields(draw, _PLAIN_BASE) + records[0]
+    return "[" + ", ".join("{" + ", ".join(parts) + "}" for parts in records) + "]"
+
+
+@settings(PROPERTY, max_examples=2000)
+@given(pack=_senml_pack(), max_items=st.sampled_from([3, 10000]))
+def test_property_senml_columns_give_the_readings_of_the_usual_path(pack: str, max_items: int) -> None:
+    # SenML packs of flat records, some plain (so that many packs take the column path),
+    # the rest with every kind of defect, repeated and base fields anywhere: columns=True
+    # must give exactly the readings and problems of the usual path (the stdlib parser with
+    # repeated-key detection, RFC 8428 resolution).
+    kwargs: dict[str, Any] = {"now": NOW, "max_items": max_items}
+    payload = pack.encode()
+    assert _as_readings(decode(payload, "senml", columns=True, **kwargs)) == decode(payload, "senml", **kwargs)
+
+
+def test_senml_columns_take_plain_packs() -> None:
+    # RFC 8428 section 4.6 resolution on a pack the columns take: bt + t (relative below
+    # 2**28 to now, section 4.5.3; epoch milliseconds above 1e11 are our rule), bv + v,
+    # u else bu; records in an order that interleaves two names.
+    pack = (b'[{"bn": "brackenfield:filler3:", "bt": 1764633600, "bu": "g", "bv": 500, "n": "fill", "v": 0.5},'
+            b' {"n": "head", "u": "Cel", "t": 1, "v": -430},'
+            b' {"n": "fill", "t": 2, "v": -0.25}, {"n": "head", "u": "Cel", "t": 3, "v": -429.5}]')
+    got = decode(pack, "senml", now=NOW, columns=True)
+    assert got.senml is not None
+    assert got.senml.names == ["brackenfield:filler3:fill", "brackenfield:filler3:head"]
+    assert got.senml.units == ["g", "Cel"]
+    assert [v.tolist() for v in got.senml.values] == [[500.5, 499.75], [70.0, 70.5]]
+    assert [t.tolist() for t in got.senml.times] == [[1764633600.0, 1764633602.0], [1764633601.0, 1764633603.0]]
+    assert got.senml.order.tolist() == [0, 1, 0, 1]
+    relative = decode(b'[{"n": "a", "t": -5, "v": 1}, {"n": "a", "v": 2}]', "senml", now=NOW, columns=True)
+    assert relative.senml is not None and relative.senml.times[0].tolist() == [NOW - 5, NOW]
+    millis = decode(b'[{"n": "a", "t": 1764633600500, "v": 1}]', "senml", now=NOW, columns=True)
+    assert millis.senml is not None and millis.senml.times[0].tolist() == [1764633600.5]
+    # Left to the usual path: a unit that changes within a name, a base field after the
+    # first record, a string value, a repeated field, a sum, an extension, bad bytes.
+    for payload in (b'[{"n": "a", "u": "g", "v": 1}, {"n": "a", "v": 2}]',
+                    b'[{"n": "a", "v": 1}, {"bn": "x:", "n": "a", "v": 2}]',
+                    b'[{"n": "a", "vs": "on"}]',
+                    b'[{"n": "a", "v": 1, "v": 2}]',
+                    b'[{"n": "a", "v": 1}, {"n": "a", "s": 2}]',
+                    b'[{"n": "a", "v": 1, "x_": 0}]',
+                    '[{"n": "\u00e9", "v": 1}]'.encode()):
+        d = decode(payload, "senml", now=NOW, columns=True)
+        assert d.senml is None and d == decode(payload, "senml", now=NOW)
 
 
 def test_columns_take_clean_arrays_and_leave_the_rest() -> None:
     clean = b'[{"v": 1, "ts": 1764633600123}, {"v": -2.5, "ts": 1764633601}]'
     got = decode(clean, "json", value_path="v", time_path="ts", now=NOW, columns=True)
-    assert got.columns == ([1764633600.123, 1764633601.0], [1.0, -2.5]) and got.readings == []
+    assert got.columns is not None and got.readings == []
+    assert [c.tolist() for c in got.columns] == [[1764633600.123, 1764633601.0], [1.0, -2.5]]
     for payload in (b'[{"v": 1, "v": 2}, {"w": 3, "v": 4}]',  # one object has the key twice
                     b'[{"v": 1, "x": {"v": 2}}]',  # nested
                     b'[{"v": 1}, {"v": "2"}]',  # text
