@@ -467,7 +467,7 @@ def _split_t2_none(n: int, m: int, p_below: float) -> float:
         lo, hi = hi, hi * 2.0
         if hi > 1e12:
             return 0.0
-    for _ in range(80):
+    while hi - lo > 1e-12 * hi:
         mid = 0.5 * (lo + hi)
         if bound(mid) >= goal:
             lo = mid
