@@ -130,7 +130,8 @@ def test_noted_split_tests_give_the_reference_records(monkeypatch: pytest.Monkey
         mode = trial % 3
         cuts = ([] if mode == 0 else sorted({int(v) for v in rng.integers(1, n, size=int(rng.integers(1, 6)))})
                 if mode == 1 else list(range(int(rng.integers(17, 60)), n, 37)))
-        s = DetectionSettings(false_alarm_every=float(rng.choice([3600.0, 7 * 86400.0])))
+        s = DetectionSettings(false_alarm_every=float(rng.choice([3600.0, 7 * 86400.0])),
+                              test=str(rng.choice(["multi_cusum", "multi_cusum", "cusum", "glr"])))
         assert _run(t, x, cuts, s, fast=True) == _run(t, x, cuts, s, fast=False), trial
     assert counted.again >= 5  # the path that watches a batch again was taken, and agreed
 
