@@ -445,7 +445,7 @@ def _replay_in_processes(sources: list[Source], settings_for: Any, unit_for: Any
 
     ctx = multiprocessing.get_context("fork")  # the workers inherit the settings and the opened files
     plans = [ctx.Queue(maxsize=4) for _ in range(jobs)]
-    pairs = {(a, b): ctx.Queue(maxsize=2) for a in range(jobs) for b in range(jobs) if a != b}
+    pairs = {(a, b): ctx.Queue(maxsize=LOOKAHEAD) for a in range(jobs) for b in range(jobs) if a != b}
     results = ctx.Queue()
     done = ctx.Value("q", 0)
     procs = [ctx.Process(target=_worker, args=(i, jobs, sources, settings_for, unit_for, trace_options, tz,

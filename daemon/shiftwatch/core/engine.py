@@ -60,7 +60,7 @@ from shiftwatch.core.cusum import CusumTest
 from shiftwatch.core.events import NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
 from shiftwatch.core.multicusum import MultiCusumTest
 from shiftwatch.core.screen import screen_samples
-from shiftwatch.core.selfstart import SelfStart, SplitEvidence, split_evidence
+from shiftwatch.core.selfstart import SelfStart, SplitEvidence, split_evidence, split_screen
 from shiftwatch.core.sequential import SequentialTest
 from shiftwatch.core.settings import ARL_RANGE, DetectionSettings
 from shiftwatch.core.stepfit import StepFit, StepFitter
@@ -465,6 +465,18 @@ YOUNG_SPLIT_MARGIN = 0.0
 #: 1,000 of 1,000 (998 without it).
 YOUNG_SPLIT_BEFORE = 15
 YOUNG_SPLIT_GATE = 3.0
+#: The first warm-up's split tests are noted and weighed together (see
+#: StreamEngine._watch_young_fast) on batches of at least this many samples, at most this
+#: many rows at a time.
+SPLIT_DEFER_FROM = 16
+#: A segment that holds an outlier is split at its outliers only
+#: (StreamEngine._split_spikes_sparse); False: the reference's passes over the segment.
+SPARSE_SPIKES = True
+SPLIT_DEFER_ROWS = 64
+
+
+class _SplitCalled(Exception):
+    """A split test noted by the young loop calls a step: the loop is run again."""
 
 #: An established level follows slow change: the level a sample is measured against
 #: is the baseline's plus an exponentially weighted offset (weight 1/FOLLOW_SAMPLES
@@ -962,6 +974,8 @@ class StreamEngine:
             if x.shape[0] >= limit:
                 return t[:limit], x[:limit], [], limit - int(held_before), None, None
             return t, x, [], n_in, None, None
+        if SPARSE_SPIKES:
+            return self._split_spikes_sparse(t, x, idx, center, sigma, limit, n_in, held_before)
         pos = np.arange(-int(held_before), n_in, dtype=np.intp)
         dev = (x - center) / sigma
         lone, out_last = lone_outliers(dev, s.spike_sigma, prev_sign=self._prev_out)
@@ -988,6 +1002,64 @@ class StreamEngine:
             self._pending = (float(t[-1]), float(x[-1]))
         spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in np.flatnonzero(lone)]
         return t[kept], x[kept], spikes, n_in, osign[kept], settled[kept]
+
+    def _split_spikes_sparse(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], center: float,
+                             sigma: float, limit: int, n_in: int, held_before: bool
+                             ) -> tuple[FloatArray, FloatArray, list[Rejection], int, NDArray[np.int8],
+                                        FloatArray]:
+        """:meth:`_split_spikes`'s outcome when the segment holds an outlier, worked out at
+        the outliers only: a segment of thousands of samples holds a handful, and the
+        reference spends a dozen passes over the whole segment on them.
+
+        The outliers are the samples whose ``(x - center) / sigma`` lies beyond
+        ``spike_sigma``, found among the candidates ``|x - center| > spike_sigma sigma (1 -
+        1e-9)`` (a superset: the division and the product are each correctly rounded) and
+        judged by the same division on the same difference, so the same floats; their
+        neighbours, signs and settling times follow :func:`lone_outliers` and the
+        reference's arrays rule for rule (tests/core/test_split_spikes.py holds the two
+        paths to each other).
+        """
+        k = self.settings.spike_sigma
+        n = t.shape[0]
+        d = x - center
+        cand = np.flatnonzero(np.abs(d) > (k * sigma) * (1.0 - 1e-9))
+        dev = (d[cand] / sigma).tolist()
+        sign: dict[int, float] = {}
+        for i, v in zip(cand.tolist(), dev):
+            if abs(v) > k:
+                sign[i] = 1.0 if v > 0 else -1.0
+        prev = self._prev_out
+        lone: list[int] = []
+        late: list[int] = []  # outliers settled by the sample after them
+        for i, sg in sign.items():
+            same_prev = sign.get(i - 1) == sg if i > 0 else (prev != 0 and sg == prev)
+            if not same_prev and sign.get(i + 1) != sg:
+                lone.append(i)
+            if (sign.get(i - 1, 0.0) if i > 0 else float(prev)) != sg:
+                late.append(i)
+        held = bool(lone) and lone[-1] == n - 1
+        keep = np.ones(n, dtype=np.bool_)
+        if lone:
+            keep[lone] = False
+        osign_all = np.zeros(n, dtype=np.int8)
+        if sign:
+            osign_all[list(sign)] = list(sign.values())
+        settled_all = t.copy()
+        if late:
+            settled_all[late] = t[[min(i + 1, n - 1) for i in late]]
+        if held:
+            lone.pop()
+        kept = np.flatnonzero(keep)
+        if kept.shape[0] >= limit:
+            # Stop at the limit: whatever follows (a held sample included) is fed again later.
+            last = int(kept[limit - 1])
+            kept = kept[:limit]
+            spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in lone if j < last]
+            return t[kept], x[kept], spikes, last - int(held_before) + 1, osign_all[kept], settled_all[kept]
+        if held:
+            self._pending = (float(t[-1]), float(x[-1]))
+        spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in lone]
+        return t[kept], x[kept], spikes, n_in, osign_all[kept], settled_all[kept]
 
     def _young_test(self) -> SequentialTest:
         """The test for self-starting inputs: they are N(0, 1) however few samples the
@@ -1069,6 +1141,72 @@ class StreamEngine:
 
     def _watch_young_fast(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], limit: int,
                           result: BatchResult) -> int:
+        """:meth:`_young_loop`, in the first warm-up with its split tests weighed together.
+
+        The first warm-up asks :func:`.selfstart.split_evidence` about the window some fifty
+        times in 200 samples, and almost always in vain (the answer None has no effect).  So
+        on a batch of at least :data:`SPLIT_DEFER_FROM` samples the loop notes the window's
+        length at each of those tests and goes on as if the answer were None; before it
+        does anything that the answer could have prevented (a trip, a held spike settled,
+        its return) it weighs the noted tests at once (:func:`.selfstart.split_screen`,
+        :func:`.selfstart.split_evidence` for the few it cannot settle).  If one of them
+        would have called a step, everything the loop changed is put back as it was at
+        the start and the batch is watched again with each test asked as it comes.  The
+        window only grows here (each test saw a prefix of it), so the records and the
+        state are the same bit for bit (tests/core/test_young_fast.py).
+        """
+        ys = self._young
+        test = self._test
+        span = min(limit, int(t.shape[0]))
+        win = self._window
+        if (ys is not None and ys.sigma is None and self._baseline is None and self._split is None
+                and span >= SPLIT_DEFER_FROM and len(win) + span + 1 <= win._x.shape[0]
+                and (test is None or isinstance(test, MultiCusumTest))):
+            mark = (ys.copy(), len(win), self._pending, self._prev_out, len(result.rejected),
+                    len(result.records), test, None if test is None else test.mark(), self._test_arl0,
+                    self._test_shift_z, self._test_n_ref, self._test_n_level)
+            try:
+                return self._young_loop(t, x, idx, limit, result, [])
+            except _SplitCalled:
+                (young, n, self._pending, self._prev_out, rejected, records, test, sums, self._test_arl0,
+                 self._test_shift_z, self._test_n_ref, self._test_n_level) = mark
+                self._young = young
+                win._n = n
+                del result.rejected[rejected:]
+                del result.records[records:]
+                self._test = test
+                self._split = None
+                if test is not None and sums is not None:
+                    test.back_to(sums)
+        return self._young_loop(t, x, idx, limit, result, None)
+
+    def _flush_splits(self, deferred: list[tuple[int, float]]) -> None:
+        """Weigh the split tests :meth:`_watch_young_fast` noted; raise :class:`_SplitCalled`
+        when one of them calls a step (the first that would have, in order)."""
+        if not deferred:
+            return
+        values = self._window.values
+        arl0 = deferred[0][1]
+        if any(a != arl0 for _, a in deferred):  # never within one batch; each on its own
+            for n, a in deferred:
+                self._flush_splits([(n, a)])
+            deferred.clear()
+            return
+        p_below = YOUNG_SPLIT_SHARE / arl0 if arl0 > 0.0 else 1.0
+        lengths = np.array([n for n, _ in deferred], dtype=np.intp)
+        sure = split_screen(values, lengths, p_below=p_below)
+        for n, none in zip(lengths.tolist(), sure.tolist()):
+            if none:
+                continue
+            ev = split_evidence(values[:n], phi_margin=YOUNG_SPLIT_MARGIN, p_below=p_below)
+            if (ev is not None and ev.split_at >= YOUNG_SPLIT_BEFORE
+                    and ev.phi < YOUNG_SPLIT_GATE / math.sqrt(ev.split_at)
+                    and ev.p_value * arl0 < YOUNG_SPLIT_SHARE):
+                raise _SplitCalled
+        deferred.clear()
+
+    def _young_loop(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], limit: int,
+                    result: BatchResult, deferred: list[tuple[int, float]] | None) -> int:
         """:meth:`_watch_young` in one loop: the same operations on the same floats in the
         same order, so the same records and state bit for bit (tests/core/test_young_fast.py
         holds it to the reference loop), at a fraction of the cost.
@@ -1123,6 +1261,8 @@ class StreamEngine:
         ts: list[float] = []
         for i in range(total):
             if kept >= limit:
+                if deferred:
+                    self._flush_splits(deferred)
                 if dirty:
                     test.set_small_sums(c, False)  # type: ignore[union-attr]
                 return i
@@ -1154,6 +1294,8 @@ class StreamEngine:
                 self._pending = None
                 p_out = 1 if px > ys.mean else -1
                 if out == p_out:
+                    if deferred:
+                        self._flush_splits(deferred)
                     self._prev_out = out
                     kept += 1
                     if self._feed_young(pt, px, clip):
@@ -1265,7 +1407,11 @@ class StreamEngine:
                 if not tripped and no_base and n >= YOUNG_SPLIT_FROM:
                     if az < YOUNG_Z_HOLD:
                         stat = max(map(truediv, c, h2)) if c is not None else test.statistic
-                    if az >= YOUNG_Z_HOLD or stat >= YOUNG_SPLIT_SCREEN * thr:
+                    if deferred is not None and (az >= YOUNG_Z_HOLD or stat >= YOUNG_SPLIT_SCREEN * thr):
+                        deferred.append((win._n, self._test_arl0))
+                        if len(deferred) >= SPLIT_DEFER_ROWS:
+                            self._flush_splits(deferred)
+                    elif az >= YOUNG_Z_HOLD or stat >= YOUNG_SPLIT_SCREEN * thr:
                         ev = split_evidence(win.values, phi_margin=YOUNG_SPLIT_MARGIN,
                                             p_below=YOUNG_SPLIT_SHARE / self._test_arl0 if self._test_arl0 > 0.0
                                             else 1.0)
@@ -1309,16 +1455,22 @@ class StreamEngine:
                     ys.prev = xv
                     ys.last = xv
                 if tripped:
+                    if deferred:
+                        self._flush_splits(deferred)
                     if dirty and c is not None:
                         cast(MultiCusumTest, test).set_small_sums(c, False)
                         dirty = False
                     self._young_event(tv, result, tv)
                     return i + 1
             if watching and ys.n >= YOUNG_END:
+                if deferred:
+                    self._flush_splits(deferred)
                 if dirty:
                     test.set_small_sums(c, False)  # type: ignore[union-attr]
                 self._settle_young()
                 return i + 1
+        if deferred:
+            self._flush_splits(deferred)
         if dirty:
             test.set_small_sums(c, False)  # type: ignore[union-attr]
         return total
@@ -2300,6 +2452,9 @@ def _time_or_nan(raw: NDArray[Any] | None, i: int) -> float:
 
 
 _FOLLOW_BLOCK = 2048
+#: follow_path works out a long stretch's blocks together; False: one block at a time
+#: (the reference, tests/core/test_follow_path.py).
+FOLLOW_BLOCKS_TOGETHER = True
 
 
 def _long_run(phi: float) -> float:
@@ -2386,11 +2541,31 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
             _follow_powers.clear()
         p = (1.0 - lam) ** np.arange(1, block + 1, dtype=np.float64)
         _follow_powers[lam] = p
-    for a in range(0, m, block):
-        blk = r[a: a + block]
-        k = blk.shape[0]
-        pk = p[:k]
-        out[a + 1: a + k + 1] = pk * (out[a] + lam * np.cumsum(blk / pk))
+    if m <= block or not FOLLOW_BLOCKS_TOGETHER:
+        for a in range(0, m, block):
+            blk = r[a: a + block]
+            k = blk.shape[0]
+            pk = p[:k]
+            out[a + 1: a + k + 1] = pk * (out[a] + lam * np.cumsum(blk / pk))
+        return out
+    # The same per block, all blocks at once: a block's cumulative sum does not depend on
+    # the offset it starts from, so the sums are one array operation (a row per block,
+    # the last one padded; a row's running sum is its own, summed in order), and only the
+    # offset carried from block to block runs in plain floats, by the same operations on
+    # the same numbers as the array's last element.  The same floats, in about a fifth of
+    # the array calls (a stretch of 4,096 samples is some ten blocks).
+    nb = -(-m // block)
+    rows = np.zeros(nb * block)
+    rows[:m] = r
+    sums = np.cumsum(rows.reshape(nb, block) / p, axis=1)
+    sums *= lam
+    last = float(p[block - 1])
+    starts = [u0]
+    u = u0
+    for s_last in sums[: nb - 1, block - 1].tolist():
+        u = last * (u + s_last)
+        starts.append(u)
+    out[1:] = (p * (np.array(starts)[:, None] + sums)).ravel()[:m]
     return out
 
 

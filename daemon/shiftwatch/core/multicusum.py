@@ -286,6 +286,16 @@ class MultiCusumTest(SequentialTest):
         self._tripped = int(other._tripped)
         return True
 
+    def mark(self) -> tuple[FloatArray, float, int, int]:
+        """The state as it stands, for :meth:`back_to` (the engine's young loop, which may
+        have to watch a batch again)."""
+        return self._c.copy(), self._stat, self._dir, self._tripped
+
+    def back_to(self, mark: tuple[FloatArray, float, int, int]) -> None:
+        """The state :meth:`mark` returned, exactly."""
+        self._c = mark[0].copy()
+        self._stat, self._dir, self._tripped = mark[1], mark[2], mark[3]
+
     # -------------------------------------------------------------- properties
     @property
     def threshold(self) -> float:

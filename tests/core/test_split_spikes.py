@@ -1,0 +1,138 @@
+"""Spikes split from a segment at its outliers only, against the passes over the whole segment.
+
+``StreamEngine._split_spikes`` sets lone outliers aside and holds a trailing one;
+when a segment holds an outlier, ``_split_spikes_sparse`` works that out at the
+outliers only (``engine.SPARSE_SPIKES``).  The reference is the original array
+code (``engine.SPARSE_SPIKES = False``, built on ``engine.lone_outliers``): the same
+kept samples, spikes, held sample, directions and settling times, called directly
+on many random segments, and the same records, rejections and saved state from the
+whole engine on many random series (spikes alone, in pairs that start a large step,
+at batch edges, steps, AR(1) noise, quantised values, gaps in time).
+"""
+
+from __future__ import annotations
+
+import itertools
+import json
+from typing import Any
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from shiftwatch.core import engine
+from shiftwatch.core.engine import StreamEngine
+from shiftwatch.core.settings import DetectionSettings
+
+T0 = 1_788_000_000.0
+
+
+def _segment(rng: np.random.Generator, n: int) -> np.ndarray:
+    x = rng.standard_normal(n)
+    for at in rng.integers(0, n, size=int(rng.integers(1, 8))):
+        x[at] += float(rng.choice([-9.0, 9.0]))
+        if rng.random() < 0.3 and at + 1 < n:  # a pair: the start of a large step
+            x[at + 1] += float(rng.choice([-9.0, 9.0]))
+    if rng.random() < 0.3:
+        x[-1] += float(rng.choice([-9.0, 9.0]))  # an outlier last: held for the next sample
+    if rng.random() < 0.2:
+        x[0] += float(rng.choice([-9.0, 9.0]))
+    return 40.0 + 0.2 * x
+
+
+def _call(sparse: bool, t: np.ndarray, x: np.ndarray, pending: tuple[float, float] | None, prev_out: int,
+          limit: int) -> tuple[Any, ...]:
+    saved = engine.SPARSE_SPIKES
+    engine.SPARSE_SPIKES = sparse
+    try:
+        eng = StreamEngine("brackenfield/press4/ram")
+        eng._pending = pending
+        eng._prev_out = prev_out
+        idx = np.arange(t.shape[0], dtype=np.intp)
+        kt, kx, spikes, used, osign, settled = eng._split_spikes(t, x, idx, 40.0, 0.2, limit)
+        return (kt.tolist(), kx.tolist(), spikes, used, None if osign is None else osign.tolist(),
+                None if settled is None else settled.tolist(), eng._pending)
+    finally:
+        engine.SPARSE_SPIKES = saved
+
+
+def test_sparse_split_equals_the_array_split_on_random_segments() -> None:
+    rng = np.random.default_rng(77)
+    for _ in range(600):
+        n = int(rng.integers(1, 300))
+        x = _segment(rng, n)
+        t = T0 + np.cumsum(rng.choice([1.0, 1.0, 1.0, 7.5], n))
+        pending = None
+        if rng.random() < 0.3:
+            pending = (T0 - 1.0, 40.0 + float(rng.choice([-1.8, 1.8])))
+        prev_out = int(rng.choice([-1, 0, 0, 1]))
+        limit = int(rng.choice([1, 2, max(1, n // 2), n, n + 5]))
+        assert _call(True, t, x, pending, prev_out, limit) == _call(False, t, x, pending, prev_out, limit)
+
+
+def test_an_outlier_at_the_spike_limit_is_judged_as_the_reference_judges_it() -> None:
+    # Values whose deviation lies within a rounding of spike_sigma * sigma either way.
+    k = DetectionSettings().spike_sigma
+    base = 40.0 + k * 0.2
+    near = [base + j * np.spacing(base) for j in range(-3, 4)]
+    for v in near:
+        x = np.array([40.0, v, 40.0, 40.0 + 2.0 * k * 0.2, v, 40.0])
+        t = T0 + np.arange(6.0)
+        for limit in (3, 6):
+            assert _call(True, t, x, None, 0, limit) == _call(False, t, x, None, 0, limit)
+
+
+def _run(t: np.ndarray, x: np.ndarray, cuts: list[int], sparse: bool) -> dict[str, Any]:
+    saved = engine.SPARSE_SPIKES
+    engine.SPARSE_SPIKES = sparse
+    try:
+        eng = StreamEngine("brackenfield/press4/ram", DetectionSettings())
+        records, rejected, states = [], [], []
+        for a, b in itertools.pairwise([0, *cuts, x.shape[0]]):
+            res = eng.process(t[a:b], x[a:b])
+            records += [r.to_dict() for r in res.records]
+            rejected += [(a + r.position, r.reason, r.time) for r in res.rejected]
+            states.append(json.dumps(eng.get_state(), sort_keys=True))
+        return {"records": records, "rejected": rejected, "states": states,
+                "counts": (eng.samples_total, dict(eng.records_total), dict(eng.rejected_total))}
+    finally:
+        engine.SPARSE_SPIKES = saved
+
+
+def _series(rng: np.random.Generator, n: int) -> tuple[np.ndarray, np.ndarray]:
+    kind = int(rng.integers(0, 3))
+    x = rng.standard_normal(n)
+    if kind == 1:
+        for i in range(1, n):
+            x[i] += 0.6 * x[i - 1]
+    elif kind == 2:
+        x = np.round(x * 2.0) / 2.0
+    for at in rng.integers(0, n, size=int(rng.integers(0, 3))):
+        x[at:] += float(rng.choice([-1.0, 1.0])) * float(rng.uniform(0.8, 5.0))
+    for at in rng.integers(0, n, size=int(rng.integers(2, 30))):
+        x[at] += float(rng.choice([-12.0, 12.0]))
+        if rng.random() < 0.2 and at + 1 < n:
+            x[at + 1] += 12.0
+    dt = np.ones(n)
+    dt[rng.random(n) < 0.02] = 60.0
+    return T0 + np.cumsum(dt), 7.0 + 0.1 * x
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_engine_records_are_the_same_with_the_sparse_split(seed: int) -> None:
+    rng = np.random.default_rng(seed)
+    for trial in range(12):
+        n = int(rng.choice([900, 3000, 9000]))
+        t, x = _series(rng, n)
+        cuts = ([] if trial % 3 == 0 else list(range(int(rng.integers(50, 700)), n, 4096)) if trial % 3 == 1
+                else sorted({int(v) for v in rng.integers(1, n, size=12)}))
+        assert _run(t, x, cuts, True) == _run(t, x, cuts, False), trial
+
+
+@settings(max_examples=30, deadline=None)
+@given(seed=st.integers(0, 2**32 - 1), n=st.integers(250, 2500), cut=st.integers(1, 2500))
+def test_sparse_split_property(seed: int, n: int, cut: int) -> None:
+    t, x = _series(np.random.default_rng(seed), n)
+    cuts = [cut] if cut < n else []
+    assert _run(t, x, cuts, True) == _run(t, x, cuts, False)
