@@ -13,8 +13,6 @@ and gaps in time, cut into batches in many ways.
 
 from __future__ import annotations
 
-import itertools
-import json
 from typing import Any
 
 import numpy as np
@@ -26,6 +24,8 @@ from shiftwatch.core import engine
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.selfstart import split_evidence, split_screen
 from shiftwatch.core.settings import DetectionSettings
+
+from .batches import run_in_batches
 
 T0 = 1_788_000_000.0
 
@@ -88,21 +88,7 @@ def _series(rng: np.random.Generator, n: int) -> tuple[np.ndarray, np.ndarray]:
 
 def _run(t: np.ndarray, x: np.ndarray, cuts: list[int], settings_: DetectionSettings,
          fast: bool) -> dict[str, Any]:
-    saved = engine.FAST_YOUNG
-    engine.FAST_YOUNG = fast
-    try:
-        eng = StreamEngine("brackenfield/kiln2/zone3", settings_)
-        records, rejected, states = [], [], []
-        for a, b in itertools.pairwise([0, *cuts, x.shape[0]]):
-            res = eng.process(t[a:b], x[a:b])
-            records += [r.to_dict() for r in res.records]
-            rejected += [(a + r.position, r.reason, r.time) for r in res.rejected]
-            states.append(json.dumps(eng.get_state(), sort_keys=True))
-        return {"records": records, "rejected": rejected, "states": states,
-                "counts": (eng.samples_total, dict(eng.records_total), dict(eng.rejected_total))}
-    finally:
-        engine.FAST_YOUNG = saved
-
+    return run_in_batches(StreamEngine("brackenfield/kiln2/zone3", settings_), t, x, cuts, "FAST_YOUNG", fast)
 
 class _Counted:
     """Counts the batches the fast loop watched again because a noted split test called a step."""

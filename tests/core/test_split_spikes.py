@@ -12,8 +12,6 @@ at batch edges, steps, AR(1) noise, quantised values, gaps in time).
 
 from __future__ import annotations
 
-import itertools
-import json
 from typing import Any
 
 import numpy as np
@@ -24,6 +22,8 @@ from hypothesis import strategies as st
 from shiftwatch.core import engine
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.settings import DetectionSettings
+
+from .batches import run_in_batches
 
 T0 = 1_788_000_000.0
 
@@ -84,20 +84,8 @@ def test_an_outlier_at_the_spike_limit_is_judged_as_the_reference_judges_it() ->
 
 
 def _run(t: np.ndarray, x: np.ndarray, cuts: list[int], sparse: bool) -> dict[str, Any]:
-    saved = engine.SPARSE_SPIKES
-    engine.SPARSE_SPIKES = sparse
-    try:
-        eng = StreamEngine("brackenfield/press4/ram", DetectionSettings())
-        records, rejected, states = [], [], []
-        for a, b in itertools.pairwise([0, *cuts, x.shape[0]]):
-            res = eng.process(t[a:b], x[a:b])
-            records += [r.to_dict() for r in res.records]
-            rejected += [(a + r.position, r.reason, r.time) for r in res.rejected]
-            states.append(json.dumps(eng.get_state(), sort_keys=True))
-        return {"records": records, "rejected": rejected, "states": states,
-                "counts": (eng.samples_total, dict(eng.records_total), dict(eng.rejected_total))}
-    finally:
-        engine.SPARSE_SPIKES = saved
+    return run_in_batches(StreamEngine("brackenfield/press4/ram", DetectionSettings()), t, x, cuts,
+                          "SPARSE_SPIKES", sparse)
 
 
 def _series(rng: np.random.Generator, n: int) -> tuple[np.ndarray, np.ndarray]:

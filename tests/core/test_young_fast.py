@@ -12,7 +12,6 @@ both and require the same records, rejections and saved state, bit for bit.
 
 from __future__ import annotations
 
-import itertools
 import json
 from typing import Any
 
@@ -22,6 +21,8 @@ import pytest
 from shiftwatch.core import engine
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.settings import DetectionSettings
+
+from .batches import run_in_batches
 
 T0 = 1_788_000_000.0
 
@@ -54,22 +55,8 @@ def _series(kind: str, n: int, rng: np.random.Generator) -> np.ndarray:
 
 
 def _run(x: np.ndarray, cuts: list[int], settings: DetectionSettings, fast: bool) -> dict[str, Any]:
-    saved = engine.FAST_YOUNG
-    engine.FAST_YOUNG = fast
-    try:
-        eng = StreamEngine("s", settings)
-        t = T0 + np.arange(float(x.shape[0]))
-        records, rejected, states = [], [], []
-        bounds = [0, *cuts, x.shape[0]]
-        for a, b in itertools.pairwise(bounds):
-            res = eng.process(t[a:b], x[a:b])
-            records += [r.to_dict() for r in res.records]
-            rejected += [(a + r.position, r.reason, r.time) for r in res.rejected]
-            states.append(json.dumps(eng.get_state(), sort_keys=True))
-        return {"records": records, "rejected": rejected, "states": states,
-                "counts": (eng.samples_total, dict(eng.records_total), dict(eng.rejected_total))}
-    finally:
-        engine.FAST_YOUNG = saved
+    t = T0 + np.arange(float(x.shape[0]))
+    return run_in_batches(StreamEngine("s", settings), t, x, cuts, "FAST_YOUNG", fast)
 
 
 def _cuts(n: int, rng: np.random.Generator) -> list[int]:

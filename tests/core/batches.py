@@ -1,0 +1,34 @@
+"""One engine run over a series cut into batches, with one of the engine module's
+switches set: how the tests hold a fast path to the reference path it replaces
+(the young phase's loop, the sparse spike split, the split screen)."""
+
+from __future__ import annotations
+
+import itertools
+import json
+from typing import Any
+
+import numpy as np
+
+from shiftwatch.core import engine
+from shiftwatch.core.engine import StreamEngine
+
+
+def run_in_batches(eng: StreamEngine, t: np.ndarray, x: np.ndarray, cuts: list[int],
+                   switch: str, on: bool) -> dict[str, Any]:
+    """Feed ``eng`` the batches ``x[a:b]`` between ``cuts`` with ``engine.<switch>`` set to
+    ``on`` (restored after); returns its records, rejections, state after each batch and
+    counters, for comparison with the same run the other way."""
+    saved = getattr(engine, switch)
+    setattr(engine, switch, on)
+    try:
+        records, rejected, states = [], [], []
+        for a, b in itertools.pairwise([0, *cuts, x.shape[0]]):
+            res = eng.process(t[a:b], x[a:b])
+            records += [r.to_dict() for r in res.records]
+            rejected += [(a + r.position, r.reason, r.time) for r in res.rejected]
+            states.append(json.dumps(eng.get_state(), sort_keys=True))
+        return {"records": records, "rejected": rejected, "states": states,
+                "counts": (eng.samples_total, dict(eng.records_total), dict(eng.rejected_total))}
+    finally:
+        setattr(engine, switch, saved)
