@@ -596,6 +596,7 @@ class MqttLink:
             for f in removed:
                 self.client.unsubscribe(f)
             with self._lock:
+                self._sub_added.difference_update(removed)
                 self._sub_added.update(added)
             for f in added:
                 self._subscribe(self.client, f)
@@ -712,6 +713,7 @@ class MqttLink:
                       "resumed" if session else "new")
         with self._lock:
             self._sub_mids.clear()  # SUBACKs of an earlier connection never come
+            self._sub_added.clear()  # every filter is subscribed afresh: nothing to announce
         for f in self.subscriptions:
             self._subscribe(client, f)
         info = client.publish(self.status_topic, b"online", qos=1, retain=True)
