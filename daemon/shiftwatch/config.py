@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from shiftwatch.core.plans import filter_matches
-from shiftwatch.core.settings import TEST_NAMES, DetectionSettings
+from shiftwatch.core.settings import MIN_SIGMA_LOWEST, TEST_NAMES, DetectionSettings
 from shiftwatch.core.timefmt import parse_duration
 from shiftwatch.decode import MAX_PREFIX_LEVELS, stream_name
 
@@ -190,7 +190,8 @@ _DETECTION_HELP = {
     "confirm_max_samples": "samples after the detection after which an open event ends undecided",
     "confirm_p_value": "error rate of the event decision: an unchanged level confirmed, or a step of "
                        "min_shift_sigma dismissed, each at most this often",
-    "min_sigma": "floor for sigma in reading units (null: from the reading resolution)",
+    "min_sigma": "floor for sigma in reading units (null: from the reading resolution, else 1e-6 of the level "
+                 "and at least 1e-9: set it for readings whose noise is smaller)",
     "glr_window": "longest segment, in samples, the GLR test considers",
     "baseline_memory": "weight, in samples, at which the baseline's memory is capped",
     "baseline_guard": "the newest samples kept out of baseline refinements",
@@ -218,7 +219,8 @@ def _detection_keys() -> dict[str, Key]:
                                _DETECTION_HELP[f.name],
                                {"anyOf": [dict(DURATION_SCHEMA), {"type": "null"}]})
         elif f.name == "min_sigma":
-            keys[f.name] = Key(_optional(_num()), None, _DETECTION_HELP[f.name], {"type": ["number", "null"]})
+            keys[f.name] = Key(_optional(_num()), None, _DETECTION_HELP[f.name],
+                               {"type": ["number", "null"], "minimum": MIN_SIGMA_LOWEST})
         elif isinstance(default, int):
             keys[f.name] = Key(_num(integer=True), default, _DETECTION_HELP[f.name], {"type": "integer"})
         else:

@@ -139,9 +139,28 @@ def test_senml_streams_find_their_entry_after_a_restart() -> None:
     ("alerts: {qos: 3}\n", "plant.yaml:1: alerts.qos: must be 0, 1 or 2, got 3"),
     ("detection: {min_shift_sigma: 10}\n", "plant.yaml:1: detection.min_shift_sigma: must be at most 4"),
     ("detection: {baseline_guard: 300}\n", "plant.yaml:1: detection.baseline_guard: must be below"),
+    # A floor whose square underflows (IEEE 754 doubles: normal down to about 2.2e-308) made
+    # a flat stream's statistics divide by zero and stop the daemon.
+    ("detection: {min_sigma: 1.0e-300}\n", "plant.yaml:1: detection.min_sigma: must be null or a finite number"),
 ])
 def test_settings_that_would_break_detection_are_refused(text: str, expected: str) -> None:
     assert error_of(text).startswith(expected)
+
+
+def test_the_lowest_sigma_floor_accepted_keeps_a_flat_stream_running() -> None:
+    """At the lowest ``min_sigma`` check accepts, a stream that holds one value and then
+    steps is still processed, and the step is confirmed (1.0e-300 raised ZeroDivisionError)."""
+    import numpy as np
+
+    from shiftwatch.core.engine import StreamEngine
+    from shiftwatch.core.settings import MIN_SIGMA_LOWEST
+
+    spec = parse_config(f"detection: {{min_sigma: {MIN_SIGMA_LOWEST:.1e}}}\n").detection
+    eng = StreamEngine("flat", spec)
+    t = np.arange(1000.0)
+    x = np.where(t < 600, 5.0, 6.0)
+    phases = [r.phase for r in eng.process(t, x).records]
+    assert "confirmed" in phases
 
 
 def test_labels_name_streams_the_way_operators_do() -> None:

@@ -12,6 +12,9 @@ from shiftwatch.core.timefmt import parse_duration
 TEST_NAMES = ("multi_cusum", "glr", "cusum", "page_hinkley", "adwin")
 #: In-control ARLs, in samples, a test is designed for: the calibrated range of the tests.
 ARL_RANGE = (50.0, 1e9)
+#: The smallest ``min_sigma`` accepted: its square must stay a normal double (below
+#: about 1e-154 it underflows, and a flat stream's statistics divide by zero).
+MIN_SIGMA_LOWEST = 1e-100
 
 
 @dataclass(frozen=True)
@@ -109,8 +112,9 @@ class DetectionSettings:
                 f"({self.window_samples - self.warmup_samples}), got {self.baseline_guard}")
         if self.spike_sigma <= self.clip_sigma:
             bad("spike_sigma", f"must exceed clip_sigma ({self.clip_sigma}), got {self.spike_sigma}")
-        if self.min_sigma is not None and not (self.min_sigma > 0):
-            bad("min_sigma", f"must be positive or null, got {self.min_sigma!r}")
+        if self.min_sigma is not None and not (MIN_SIGMA_LOWEST <= self.min_sigma < math.inf):
+            bad("min_sigma", f"must be null or a finite number of at least {MIN_SIGMA_LOWEST:g} "
+                f"(reading units), got {self.min_sigma!r}")
         for name in ("max_time_ahead", "max_time_behind"):
             v = getattr(self, name)
             if v is not None and (not isinstance(v, (int, float)) or isinstance(v, bool)
