@@ -33,8 +33,10 @@ it starts (40 ms or so), which an installed package never does.  Targets:
 
 The script prints one table, the spread of the runs, and exits 0 only when
 every target is met.  Besides the targets it measures, in the same runs:
-what two bare parses side by side take against one (the most any
-``--jobs 2`` could gain on this machine as it is loaded now), a replay whose
+what two bare parses side by side take against one, and two one-process
+replays side by side against one (the most any ``--jobs 2`` could gain on
+this machine as it is loaded now: the replays' numpy passes over chunk-sized
+arrays share the caches, where the bare parse's plain Python hardly does), a replay whose
 engines do nothing (reading, batching and output only: the rest of the
 replay's CPU time is the engines'), and a bare ``csv.reader`` loop that
 parses neither times nor values.
@@ -181,6 +183,18 @@ def bare_pair(path: Path) -> float:
     return time.perf_counter() - t0
 
 
+def replay_pair(path: Path) -> float:
+    """Wall seconds of two one-process replays of the file started together, until both have
+    ended: what this machine gives two processes that share nothing (no rows handed over)."""
+    t0 = time.perf_counter()
+    procs = [subprocess.Popen([sys.executable, "-c", RUNNER, "replay", "--jobs", "1", "--out", os.devnull, str(path)],
+                              stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL) for _ in range(2)]
+    for p in procs:
+        if p.wait() not in (0, 1):
+            raise RuntimeError("the replay failed")
+    return time.perf_counter() - t0
+
+
 def med(xs: list[float]) -> float:
     return statistics.median(xs)
 
@@ -214,6 +228,7 @@ def main() -> int:
         # (user + system), as bench_report.py does; wall times are printed beside them.
         compile_package()
         bares, loops, ones, twos, pairs, nulls, ceilings, mem_small = [], [], [], [], [], [], [], []
+        twins: list[float] = []
         for _ in range(opts.repeat):
             bares.append(bare(long_csv))
             one = replay(long_csv, 1)
@@ -223,6 +238,7 @@ def main() -> int:
             mem_small.append(one[1])
             pairs.append(one[0] / two[0])
             ceilings.append(2 * bares[-1][0] / bare_pair(long_csv))
+            twins.append(2 * one[0] / replay_pair(long_csv))
             nulls.append(replay(long_csv, 1, NULL_ENGINE))
             loops.append(bare(long_csv, BARE_LOOP))
         say(f"bare parse {spread([b[0] for b in bares])}, --jobs 1 {spread([o[0] for o in ones])}, "
@@ -246,8 +262,10 @@ def main() -> int:
         notes.append(f"--jobs 2: wall {spread([t[0] for t in twos])}, CPU of all its processes "
                      f"{spread([t[2] for t in twos])} ({med([t[2] for t in twos]) / cpu1:.2f} x one process's); "
                      f"speed-up per pair {', '.join(f'{x:.2f}' for x in pairs)}; two bare parses side by side "
-                     f"against one: {med(ceilings):.2f} x ({', '.join(f'{x:.2f}' for x in ceilings)}), the most "
-                     "two processes gained on this machine in these runs")
+                     f"against one: {med(ceilings):.2f} x ({', '.join(f'{x:.2f}' for x in ceilings)}); two "
+                     f"one-process replays side by side against one: {med(twins):.2f} x "
+                     f"({', '.join(f'{x:.2f}' for x in twins)}), the most two replay processes that hand "
+                     "nothing over gained on this machine in these runs")
 
         # 4. Parquet; 5. wide CSV (CPU time, one process)
         pqs = [replay(parquet, 1) for _ in range(opts.repeat)]
