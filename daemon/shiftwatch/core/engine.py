@@ -473,6 +473,10 @@ SPLIT_DEFER_FROM = 16
 #: (StreamEngine._split_spikes_sparse); False: the reference's passes over the segment.
 SPARSE_SPIKES = True
 SPLIT_DEFER_ROWS = 64
+#: A batch that folds samples of the window and of its own into the baseline sums folds
+#: them in one call (BaselineSums.add with a cut); False: two calls, the reference
+#: (tests/core/test_batch_path.py holds the two to each other).
+FOLD_TOGETHER = True
 
 
 class _SplitCalled(Exception):
@@ -803,19 +807,27 @@ class StreamEngine:
         fold = self._unfolded + m - guard
         if fold > 0:
             old = min(self._unfolded, fold)
+            new = fold - old
             if old:
                 n = len(self._window)
-                wx = self._window.values[n - self._unfolded: n - self._unfolded + old]
-                wt = self._window.times[n - self._unfolded: n - self._unfolded + old]
+                w = self._window
+                a = n - self._unfolded
                 uq = self._unfolded_u
                 wu = np.array(uq[:old], dtype=np.float64)
                 del uq[:old]
-                self._sums.add(b, wx - wu, wt.copy())
-            if fold > old:
-                self._sums.add(b, x[: fold - old] - u[: fold - old], t[: fold - old])
-                self._unfolded_u.extend(u[fold - old:].tolist())
-            else:
-                self._unfolded_u.extend(u.tolist())
+                if new and FOLD_TOGETHER:
+                    # The window's oldest unfolded samples and the batch's first, folded
+                    # as two calls would fold them (BaselineSums.add's cut).
+                    self._sums.add(b, np.concatenate((w.values[a: a + old], x[:new]))
+                                   - np.concatenate((wu, u[:new])),
+                                   np.concatenate((w.times[a: a + old], t[:new])), cut=old)
+                else:
+                    self._sums.add(b, w.values[a: a + old] - wu, w.times[a: a + old].copy())
+                    if new:
+                        self._sums.add(b, x[:new] - u[:new], t[:new])
+            elif new:
+                self._sums.add(b, x[:new] - u[:new], t[:new])
+            self._unfolded_u.extend(u[new:].tolist() if new else u.tolist())
             self._unfolded -= fold
         else:
             self._unfolded_u.extend(u.tolist())

@@ -1,0 +1,112 @@
+"""The established watch's cheaper batch path against the reference it stands in for.
+
+A watching stream's batch goes through the spike split, the follower, the test and
+the baseline sums as arrays; the array calls on a batch of a few hundred samples
+cost more than their arithmetic.  Where the engine now shares or saves those calls
+(the switches in :data:`SWITCHES`, each one a fast path with the original kept as
+its reference), these tests replay random histories through both, with steps,
+spikes, gaps in time, autocorrelated and heavy-tailed noise and every kind of
+batching, and require the same records, rejections and saved state (every sum and
+estimate the engine keeps, printed with all its digits) bit for bit.  The reference
+paths themselves are held to outside references by the other tests of tests/core
+(test_engine.py, test_events.py: statsmodels, scipy, published tables).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from shiftwatch.core import engine
+from shiftwatch.core.engine import StreamEngine
+from shiftwatch.core.settings import DetectionSettings
+
+from .batches import run_in_batches
+
+T0 = 1_788_000_000.0
+
+#: The engine's switches for the batch path (True: the fast path, False: the reference).
+SWITCHES = ("FOLD_TOGETHER",)
+
+
+def _history(kind: str, n: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    """Times and values of one stream: noise of ``kind``, steps, lone spikes, gaps."""
+    if kind == "iid":
+        x = rng.standard_normal(n)
+    elif kind == "ar":
+        e = rng.standard_normal(n)
+        x = np.empty(n)
+        x[0] = e[0]
+        for i in range(1, n):
+            x[i] = 0.6 * x[i - 1] + e[i]
+    elif kind == "t3":  # heavy tails: the stream ends up clipped at 2 sigma
+        x = rng.standard_t(3, n)
+    elif kind == "quantised":
+        x = np.round(rng.standard_normal(n) * 2.0) / 2.0
+    else:
+        raise ValueError(kind)
+    x = 50.0 + 0.8 * x
+    for _ in range(int(rng.integers(0, 4))):
+        at = int(rng.integers(300, n))
+        x[at:] += float(rng.choice([-1.0, 1.0])) * float(rng.uniform(0.5, 5.0))
+    for at in rng.integers(0, n, size=int(rng.integers(0, 12))):
+        x[at] += float(rng.choice([-1.0, 1.0])) * float(rng.uniform(6.0, 20.0))
+    dt = np.ones(n)
+    for at in rng.integers(1, n, size=int(rng.integers(0, 6))):  # stoppages and short gaps
+        dt[at] = float(rng.choice([2.0, 7.0, 45.0, 3600.0]))
+    if rng.random() < 0.3:  # a jittery clock
+        dt *= rng.uniform(0.8, 1.2, n)
+    return T0 + np.cumsum(dt), x
+
+
+def _cuts(n: int, rng: np.random.Generator) -> list[int]:
+    mode = int(rng.integers(0, 5))
+    if mode == 0:
+        return list(range(4096, n, 4096))  # as replay feeds
+    if mode == 1:
+        return list(range(260, n, 260))  # JSON arrays of 260 samples
+    if mode == 2:
+        return sorted({int(v) for v in rng.integers(1, n, size=int(rng.integers(1, 40)))})
+    if mode == 3:  # batches of 1 to 300 samples
+        out, at = [], 0
+        while True:
+            at += int(rng.integers(1, 300))
+            if at >= n:
+                return out
+            out.append(at)
+    return []
+
+
+@pytest.mark.parametrize("kind", ["iid", "ar", "t3", "quantised"])
+def test_batch_path_equals_the_reference(kind: str) -> None:
+    rng = np.random.default_rng({"iid": 21, "ar": 22, "t3": 23, "quantised": 24}[kind])
+    for _ in range(12):
+        n = int(rng.integers(1500, 9000))
+        t, x = _history(kind, n, rng)
+        cuts = _cuts(n, rng)
+        fast = run_in_batches(StreamEngine("s"), t, x, cuts, SWITCHES, True)
+        ref = run_in_batches(StreamEngine("s"), t, x, cuts, SWITCHES, False)
+        assert fast == ref
+        assert fast["states"]
+
+
+@pytest.mark.parametrize("switch", SWITCHES)
+def test_each_switch_alone(switch: str) -> None:
+    # One fast path at a time against the reference, on other settings too (a shorter
+    # guard and window, the single CUSUM and the GLR).
+    rng = np.random.default_rng(31)
+    for test_name, settings in (("multi_cusum", DetectionSettings()),
+                                ("cusum", DetectionSettings(test="cusum")),
+                                ("glr", DetectionSettings(test="glr"))):
+        for kind in ("iid", "ar", "t3"):
+            n = int(rng.integers(2000, 6000))
+            t, x = _history(kind, n, rng)
+            cuts = _cuts(n, rng)
+            fast = run_in_batches(StreamEngine("s", settings), t, x, cuts, switch, True)
+            ref = run_in_batches(StreamEngine("s", settings), t, x, cuts, switch, False)
+            assert fast == ref, (test_name, kind)
+
+
+def test_the_switches_are_the_engines() -> None:
+    # Every switch named here exists and is on by default.
+    assert all(getattr(engine, name) is True for name in SWITCHES)
