@@ -14,11 +14,14 @@ paths themselves are held to outside references by the other tests of tests/core
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 import pytest
 
 from shiftwatch.core import engine
 from shiftwatch.core.engine import StreamEngine
+from shiftwatch.core.multicusum import MultiCusumTest
 from shiftwatch.core.settings import DetectionSettings
 
 from .batches import run_in_batches
@@ -110,3 +113,48 @@ def test_each_switch_alone(switch: str) -> None:
 def test_the_switches_are_the_engines() -> None:
     # Every switch named here exists and is on by default.
     assert all(getattr(engine, name) is True for name in SWITCHES)
+
+
+def _bank_update_as_it_was(test: Any, z: np.ndarray) -> int:
+    """MultiCusumTest.update's exact path as it was written before the per-row maxima
+    screened its blocks and the running sum went in place: the reference for it."""
+    bank = test._bank
+    m = bank.m
+    d = np.empty((2 * m, z.shape[0]))
+    np.subtract(z[None, :], bank.k_col, out=d[:m])
+    np.subtract(-z[None, :], bank.k_col, out=d[m:])
+    s = np.cumsum(d, axis=1)
+    floor = np.minimum.accumulate(s, axis=1)
+    np.minimum(floor, -test._c[:, None], out=floor)
+    np.subtract(s, floor, out=s)
+    hit = (s > bank.h2_col).any(axis=0)
+    if hit.any():
+        i = int(np.argmax(hit))
+        col = s[:, i].copy()
+        ratio = col / bank.h2
+        row = int(np.argmax(ratio))
+        test._c, test._stat, test._tripped, test._dir = col, float(ratio[row]), row % m, 1 if row < m else -1
+        return i
+    test._c = s[:, -1].copy()
+    test._stat = float(np.max(test._c / bank.h2))
+    return -1
+
+
+def test_bank_update_equals_its_earlier_form() -> None:
+    # The CUSUM bank's block update (33 to 1,023 samples, below its fast screen) against the
+    # form it had, on residuals that trip and residuals that do not, from random sums:
+    # the same trip index, sums, statistic and direction, bit for bit.
+    rng = np.random.default_rng(41)
+    for _ in range(300):
+        arl = float(rng.choice([600.0, 3600.0, 604800.0]))
+        shift = float(rng.uniform(0.5, 2.0))
+        new, old = MultiCusumTest.design(arl, shift), MultiCusumTest.design(arl, shift)
+        n = int(rng.integers(33, 1024))
+        z = np.clip(rng.standard_normal(n) + float(rng.choice([0.0, 0.0, 0.4, -0.6, 1.5])), -4.0, 4.0)
+        start = np.abs(rng.standard_normal(2 * new._bank.m)) * float(rng.choice([0.0, 0.5, 2.0]))
+        start = np.minimum(start, 0.9 * np.concatenate((new._bank.h_arr, new._bank.h_arr)))
+        new._c, old._c = start.copy(), start.copy()
+        got, want = new.update(z), _bank_update_as_it_was(old, z)
+        assert got == want
+        assert new.get_state() == old.get_state()
+        assert new._c.tobytes() == old._c.tobytes()

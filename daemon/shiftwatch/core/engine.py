@@ -36,6 +36,7 @@ import hashlib
 import math
 import operator
 from array import array
+from bisect import bisect_left
 from collections import Counter
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field, replace
@@ -981,7 +982,7 @@ class StreamEngine:
             idx = np.concatenate(([-1], idx))
             self._pending = None
         span = s.spike_sigma * sigma
-        if not ((x > center + span).any() or (x < center - span).any()):
+        if not (float(x.max()) > center + span or float(x.min()) < center - span):
             # Fast path: no outlier at all.
             if x.shape[0] >= limit:
                 return t[:limit], x[:limit], [], limit - int(held_before), None, None
@@ -1050,28 +1051,46 @@ class StreamEngine:
             if (sign.get(i - 1, 0.0) if i > 0 else float(prev)) != sg:
                 late.append(i)
         held = bool(lone) and lone[-1] == n - 1
-        keep = np.ones(n, dtype=np.bool_)
-        if lone:
-            keep[lone] = False
-        osign_all = np.zeros(n, dtype=np.int8)
-        if sign:
-            osign_all[list(sign)] = list(sign.values())
-        settled_all = t.copy()
-        if late:
-            settled_all[late] = t[[min(i + 1, n - 1) for i in late]]
+        removed = lone.copy()  # the samples not kept: the lone spikes and a held one
         if held:
             lone.pop()
-        kept = np.flatnonzero(keep)
-        if kept.shape[0] >= limit:
+        # The kept samples are the segment's up to ``cut`` less the removed ones among them:
+        # the slices between those (a handful), with each outlier's sign and settling time
+        # put at its place among the kept ones, instead of index arrays over the segment.
+        full = n - len(removed) >= limit
+        if full:
             # Stop at the limit: whatever follows (a held sample included) is fed again later.
-            last = int(kept[limit - 1])
-            kept = kept[:limit]
+            last = limit - 1
+            for j in removed:
+                if j > last:
+                    break
+                last += 1
+            cut = last + 1
+        else:
+            cut = n
+        gone = [j for j in removed if j < cut]
+        if gone:
+            segs = [(a, b) for a, b in zip([0, *(j + 1 for j in gone)], [*gone, cut]) if a < b]
+            kt = np.concatenate([t[a:b] for a, b in segs])
+            kx = np.concatenate([x[a:b] for a, b in segs])
+        else:
+            kt, kx = t[:cut], x[:cut]
+        out = set(gone)
+        osign = np.zeros(kt.shape[0], dtype=np.int8)
+        for i, sg in sign.items():
+            if i < cut and i not in out:
+                osign[i - bisect_left(gone, i)] = sg
+        settled = kt.copy()
+        for i in late:
+            if i < cut and i not in out:
+                settled[i - bisect_left(gone, i)] = t[min(i + 1, n - 1)]
+        if full:
             spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in lone if j < last]
-            return t[kept], x[kept], spikes, last - int(held_before) + 1, osign_all[kept], settled_all[kept]
+            return kt, kx, spikes, last - int(held_before) + 1, osign, settled
         if held:
             self._pending = (float(t[-1]), float(x[-1]))
         spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in lone]
-        return t[kept], x[kept], spikes, n_in, osign_all[kept], settled_all[kept]
+        return kt, kx, spikes, n_in, osign, settled
 
     def _young_test(self) -> SequentialTest:
         """The test for self-starting inputs: they are N(0, 1) however few samples the
@@ -2558,7 +2577,7 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
             blk = r[a: a + block]
             k = blk.shape[0]
             pk = p[:k]
-            out[a + 1: a + k + 1] = pk * (out[a] + lam * np.cumsum(blk / pk))
+            out[a + 1: a + k + 1] = pk * (out[a] + lam * np.add.accumulate(blk / pk))
         return out
     # The same per block, all blocks at once: a block's cumulative sum does not depend on
     # the offset it starts from, so the sums are one array operation (a row per block,
@@ -2569,7 +2588,7 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
     nb = -(-m // block)
     rows = np.zeros(nb * block)
     rows[:m] = r
-    sums = np.cumsum(rows.reshape(nb, block) / p, axis=1)
+    sums = np.add.accumulate(rows.reshape(nb, block) / p, axis=1)
     sums *= lam
     last = float(p[block - 1])
     starts = [u0]
