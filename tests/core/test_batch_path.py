@@ -29,7 +29,8 @@ from .batches import run_in_batches
 T0 = 1_788_000_000.0
 
 #: The engine's switches for the batch path (True: the fast path, False: the reference).
-SWITCHES = ("FOLD_TOGETHER",)
+#: SPARSE_SPIKES's fast path now keeps its samples as slices between the lone spikes.
+SWITCHES = ("FOLD_TOGETHER", "SPARSE_SPIKES")
 
 
 def _history(kind: str, n: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
@@ -63,7 +64,9 @@ def _history(kind: str, n: int, rng: np.random.Generator) -> tuple[np.ndarray, n
 
 
 def _cuts(n: int, rng: np.random.Generator) -> list[int]:
-    mode = int(rng.integers(0, 5))
+    mode = int(rng.integers(0, 6))
+    if mode == 5:  # one sample at a time for a while (a lone spike is a whole batch), then 4,096
+        return list(range(1, min(n, 400))) + list(range(400, n, 4096))
     if mode == 0:
         return list(range(4096, n, 4096))  # as replay feeds
     if mode == 1:

@@ -1071,8 +1071,8 @@ class StreamEngine:
         gone = [j for j in removed if j < cut]
         if gone:
             segs = [(a, b) for a, b in zip([0, *(j + 1 for j in gone)], [*gone, cut]) if a < b]
-            kt = np.concatenate([t[a:b] for a, b in segs])
-            kx = np.concatenate([x[a:b] for a, b in segs])
+            kt = np.concatenate([t[a:b] for a, b in segs]) if segs else t[:0]
+            kx = np.concatenate([x[a:b] for a, b in segs]) if segs else x[:0]
         else:
             kt, kx = t[:cut], x[:cut]
         out = set(gone)
