@@ -161,3 +161,27 @@ def test_bank_update_equals_its_earlier_form() -> None:
         assert got == want
         assert new.get_state() == old.get_state()
         assert new._c.tobytes() == old._c.tobytes()
+
+
+def test_follower_single_block_equals_its_loop() -> None:
+    # follow_path on a stretch of at most one block (a live batch) against the block loop's
+    # step as it was written, ``p * (u0 + lam cumsum(r / p))``: the same floats; and both
+    # against the recursion u_i = (1 - lam) u_(i-1) + lam r_i, the exponentially weighted
+    # mean's definition (NIST/SEMATECH e-Handbook 6.3.2.4), to within the rounding the
+    # module documents.
+    rng = np.random.default_rng(43)
+    for _ in range(200):
+        lam = 1.0 / float(rng.choice([60.0, 110.0, 250.0, 1000.0]))
+        block = max(16, min(engine._FOLLOW_BLOCK, int(4.0 / lam)))
+        m = int(rng.integers(0, block + 1))
+        r = rng.standard_normal(m) * float(rng.uniform(0.1, 3.0))
+        u0 = float(rng.standard_normal())
+        got = engine.follow_path(r, u0, lam)
+        p = ((1.0 - lam) ** np.arange(1, block + 1, dtype=np.float64))[:m]  # as the engine keeps them
+        want = np.concatenate(([u0], p * (u0 + lam * np.cumsum(r / p))))
+        assert got.tobytes() == want.tobytes()
+        u, rec = u0, [u0]
+        for v in r.tolist():
+            u = (1.0 - lam) * u + lam * v
+            rec.append(u)
+        assert np.allclose(got, rec, rtol=0.0, atol=1e-11 * (1.0 + float(np.abs(r).max(initial=0.0))))

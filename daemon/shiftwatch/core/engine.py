@@ -828,10 +828,11 @@ class StreamEngine:
                         self._sums.add(b, x[:new] - u[:new], t[:new])
             elif new:
                 self._sums.add(b, x[:new] - u[:new], t[:new])
-            self._unfolded_u.extend(u[new:].tolist() if new else u.tolist())
+            # The offsets' doubles as they are (no float object per sample on the way).
+            self._unfolded_u.frombytes((u[new:] if new else u).tobytes())
             self._unfolded -= fold
         else:
-            self._unfolded_u.extend(u.tolist())
+            self._unfolded_u.frombytes(u.tobytes())
         self._unfolded += m
         self._window.extend(x, t)
 
@@ -982,7 +983,7 @@ class StreamEngine:
             idx = np.concatenate(([-1], idx))
             self._pending = None
         span = s.spike_sigma * sigma
-        if not (float(x.max()) > center + span or float(x.min()) < center - span):
+        if not (float(np.maximum.reduce(x)) > center + span or float(np.minimum.reduce(x)) < center - span):
             # Fast path: no outlier at all.
             if x.shape[0] >= limit:
                 return t[:limit], x[:limit], [], limit - int(held_before), None, None
@@ -1635,7 +1636,7 @@ class StreamEngine:
         else:
             e = r
         z = e * (1.0 / b.innovation_sigma)
-        np.clip(z, -b.clip, b.clip, out=z)
+        z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
         trip = test.update(z)
         if trip < 0:
             self._kept_all(spikes, osign, r, result)
@@ -1930,7 +1931,7 @@ class StreamEngine:
         # Residuals from the level fitted before the step, not the baseline's.
         e -= (1.0 - b.phi) * (ev.level_before - b.level)
         z = e * (1.0 / b.innovation_sigma)
-        np.clip(z, -b.clip, b.clip, out=z)
+        z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
         i, outcome = ev.trial.feed(z)
         if i < 0:
             self._kept_all(spikes, osign, r, result)
@@ -2572,7 +2573,12 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
             _follow_powers.clear()
         p = (1.0 - lam) ** np.arange(1, block + 1, dtype=np.float64)
         _follow_powers[lam] = p
-    if m <= block or not FOLLOW_BLOCKS_TOGETHER:
+    if m <= block:
+        # One block (a live batch, or a stretch shorter than 4 / lam): the loop's one
+        # step, its product written in place.
+        np.multiply(p[:m], u0 + lam * np.add.accumulate(r / p[:m]), out=out[1:])
+        return out
+    if not FOLLOW_BLOCKS_TOGETHER:
         for a in range(0, m, block):
             blk = r[a: a + block]
             k = blk.shape[0]

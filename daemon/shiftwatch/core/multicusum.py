@@ -372,7 +372,7 @@ class MultiCusumTest(SequentialTest):
             np.subtract(s, floor, out=s)
             # A chart trips in this block only if its largest sum exceeds its limit: the
             # per-row maxima are 2 m numbers, where the sample-by-sample test is 2 m n.
-            if (np.maximum.reduce(s, axis=1) > h2).any():
+            if any(map(operator.gt, np.maximum.reduce(s, axis=1).tolist(), bank.h2_list)):
                 hit = (s > bank.h2_col).any(axis=0)
                 i = int(np.argmax(hit))
                 col = s[:, i].copy()
@@ -386,7 +386,8 @@ class MultiCusumTest(SequentialTest):
                 self._dir = 1 if row < m else -1
                 return start + i
             self._c = s[:, -1].copy()
-            self._stat = float(np.max(self._c / h2))
+            # the largest C / h in plain floats: the same divisions, and max is exact
+            self._stat = max(map(operator.truediv, self._c.tolist(), bank.h2_list))
             start = stop
         return -1
 

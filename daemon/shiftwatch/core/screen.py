@@ -156,8 +156,8 @@ def screen_samples(
         # as they are (values within the bound: the largest and the smallest, where a NaN
         # fails the comparison as it fails abs(v) <= bound).
         n = times.shape[0]
-        if (n and times[0] > last_time and bool(values.max() <= MAX_ABS_VALUE)
-                and bool(values.min() >= -MAX_ABS_VALUE) and np.isfinite(times[-1])
+        if (n and times[0] > last_time and bool(np.maximum.reduce(values) <= MAX_ABS_VALUE)
+                and bool(np.minimum.reduce(values) >= -MAX_ABS_VALUE) and np.isfinite(times[-1])
                 and (n == 1 or bool((times[1:] > times[:-1]).all()))):
             return Screened(times=times, values=values,
                             kept=_KEPT[:n] if n <= _KEPT.shape[0] else np.arange(n), rejected=[])
