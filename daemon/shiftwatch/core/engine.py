@@ -806,22 +806,33 @@ class StreamEngine:
         m = x.shape[0]
         guard = self.settings.baseline_guard
         fold = self._unfolded + m - guard
+        w = self._window
+        extended = False
         if fold > 0:
             old = min(self._unfolded, fold)
             new = fold - old
             if old:
-                n = len(self._window)
-                w = self._window
+                n = len(w)
                 a = n - self._unfolded
                 uq = self._unfolded_u
                 wu = np.array(uq[:old], dtype=np.float64)
                 del uq[:old]
                 if new and FOLD_TOGETHER:
                     # The window's oldest unfolded samples and the batch's first, folded
-                    # as two calls would fold them (BaselineSums.add's cut).
-                    self._sums.add(b, np.concatenate((w.values[a: a + old], x[:new]))
-                                   - np.concatenate((wu, u[:new])),
-                                   np.concatenate((w.times[a: a + old], t[:new])), cut=old)
+                    # as two calls would fold them (BaselineSums.add's cut).  They are all
+                    # the window's unfolded ones (old == unfolded here), so once the batch
+                    # has joined the window they lie side by side in it, as long as the
+                    # window keeps them (m + old samples at most).
+                    if m + old <= w.keep:
+                        w.extend(x, t)
+                        extended = True
+                        p0 = len(w) - m - old
+                        self._sums.add(b, w.values[p0: p0 + fold] - np.concatenate((wu, u[:new])),
+                                       w.times[p0: p0 + fold], cut=old)
+                    else:
+                        self._sums.add(b, np.concatenate((w.values[a: a + old], x[:new]))
+                                       - np.concatenate((wu, u[:new])),
+                                       np.concatenate((w.times[a: a + old], t[:new])), cut=old)
                 else:
                     self._sums.add(b, w.values[a: a + old] - wu, w.times[a: a + old].copy())
                     if new:
@@ -834,7 +845,8 @@ class StreamEngine:
         else:
             self._unfolded_u.frombytes(u.tobytes())
         self._unfolded += m
-        self._window.extend(x, t)
+        if not extended:
+            w.extend(x, t)
 
     def _append_one(self, t: float, x: float, u: float) -> None:
         """:meth:`_append` of one sample, in plain floats (the steady state: the

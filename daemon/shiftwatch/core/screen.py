@@ -10,8 +10,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 from numpy.typing import NDArray
@@ -55,12 +54,13 @@ _ARANGE = tuple(_read_only_arange(n) for n in range(SMALL_BATCH + 1))
 _KEPT = _read_only_arange(4096)
 
 
-@dataclass(frozen=True)
-class Screened:
+class Screened(NamedTuple):
     """Result of :func:`screen_samples`.
 
     ``times``/``values`` hold the accepted samples in order, ``kept`` their
     positions in the input, and ``rejected`` a list of ``(position, reason)``.
+    (A named tuple: one is made on every engine call, and a frozen dataclass
+    is made by four attribute writes through ``object.__setattr__``.)
     """
 
     times: NDArray[np.float64]
