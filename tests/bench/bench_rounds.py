@@ -5,6 +5,7 @@ Usage, from the repository root with the package installed::
 
     python tests/bench/bench_rounds.py            # 10,000 streams, 13 minutes on a busy 2-core machine
     python tests/bench/bench_rounds.py --quick    # 2,000 streams, about 3 minutes
+    python tests/bench/bench_rounds.py --engine-only 16   # the engines handed 260-sample arrays only
 
 Everything runs in this process; no broker.  10,000 streams (4 in 5 white noise,
 1 in 5 AR(1) with phi 0.6), each past its warm-up on 2,000 samples, then rounds
@@ -246,7 +247,7 @@ def part_engine_batches(streams: int = 200, batch: int = 260, rounds: int = 16) 
     for eng in engines:
         eng.process(t, 500.0 + 0.4 * rng.standard_normal(WARM))
     per_call = []
-    for k in range(rounds + 1):
+    for k in range(rounds + 1 if rounds else 0):
         x = np.round(500.0 + 0.4 * rng.standard_normal((streams, batch)), 4)
         tk = T0 + WARM + k * batch + np.arange(float(batch))
         c0 = time.process_time()
@@ -254,14 +255,22 @@ def part_engine_batches(streams: int = 200, batch: int = 260, rounds: int = 16) 
             eng.process(tk, x[i])
         if k:  # the first round is not timed, as in part_batches
             per_call.append((time.process_time() - c0) / streams * 1e6)
-    return statistics.median(per_call), per_call
+    return (statistics.median(per_call) if per_call else math.nan), per_call
 
 
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="2,000 streams instead of 10,000")
     ap.add_argument("--detection-only", action="store_true", help="skip the daemon part")
+    ap.add_argument("--engine-only", type=int, metavar="R", default=None,
+                    help="only the engines handed 260-sample arrays, R timed rounds (for callgrind: "
+                         "the difference of two R is the rounds' own count)")
     a = ap.parse_args()
+    if a.engine_only is not None:
+        us, calls = part_engine_batches(rounds=a.engine_only)
+        print(f"engine alone, 260 samples a call, 200 streams: {us:.1f} us a call (median of "
+              f"{len(calls)} rounds: " + ", ".join(f"{v:.0f}" for v in calls) + ")")
+        return 0
     n = 2_000 if a.quick else 10_000
     t_start = time.monotonic()
     det, notes = part_detection(n, 240, 40)
