@@ -5,6 +5,7 @@ Usage, from the repository root with the package installed::
 
     python tests/bench/bench_rounds.py            # 10,000 streams, 13 minutes on a busy 2-core machine
     python tests/bench/bench_rounds.py --quick    # 2,000 streams, about 3 minutes
+    python tests/bench/bench_rounds.py --engine-only 16   # the engines handed 260-sample arrays only
 
 Everything runs in this process; no broker.  10,000 streams (4 in 5 white noise,
 1 in 5 AR(1) with phi 0.6), each past its warm-up on 2,000 samples, then rounds
@@ -25,7 +26,9 @@ of one sample per stream, 1 stream in 100 stepping by 3 sigma during them.
    unit in the first record, ``n``, ``t``, ``v`` in each), through ``Daemon.process``
    (decode, engines, journal): samples a second of CPU time, median of the rounds.
    Reported against the issue's 1,000,000 a second per shard; the broker and paho's
-   thread are not in it (bench_daemon.py and bench_shards.py measure those).
+   thread are not in it (bench_daemon.py and bench_shards.py measure those).  Beside
+   it, the engines alone handed the same kind of 260-sample arrays, one call per
+   stream and round: microseconds per call, the median round.
 
 The script prints one table and exits 0 when the target is met.
 """
@@ -235,11 +238,39 @@ def part_batches(streams: int = 200, batch: int = 260, rounds: int = 8, fmt: str
     return statistics.median(rates), rates
 
 
+def part_engine_batches(streams: int = 200, batch: int = 260, rounds: int = 16) -> tuple[float, list[float]]:
+    """The engines alone handed the same kind of batches (200 established streams, 260 samples
+    a call, no daemon around them): microseconds per call, the median round, and each round."""
+    rng = np.random.default_rng(9)
+    engines = [StreamEngine(f"bench/{i:05d}/v") for i in range(streams)]
+    t = T0 + np.arange(float(WARM))
+    for eng in engines:
+        eng.process(t, 500.0 + 0.4 * rng.standard_normal(WARM))
+    per_call = []
+    for k in range(rounds + 1 if rounds else 0):
+        x = np.round(500.0 + 0.4 * rng.standard_normal((streams, batch)), 4)
+        tk = T0 + WARM + k * batch + np.arange(float(batch))
+        c0 = time.process_time()
+        for i, eng in enumerate(engines):
+            eng.process(tk, x[i])
+        if k:  # the first round is not timed, as in part_batches
+            per_call.append((time.process_time() - c0) / streams * 1e6)
+    return (statistics.median(per_call) if per_call else math.nan), per_call
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="2,000 streams instead of 10,000")
     ap.add_argument("--detection-only", action="store_true", help="skip the daemon part")
+    ap.add_argument("--engine-only", type=int, metavar="R", default=None,
+                    help="only the engines handed 260-sample arrays, R timed rounds (for callgrind: "
+                         "the difference of two R is the rounds' own count)")
     a = ap.parse_args()
+    if a.engine_only is not None:
+        us, calls = part_engine_batches(rounds=a.engine_only)
+        print(f"engine alone, 260 samples a call, 200 streams: {us:.1f} us a call (median of "
+              f"{len(calls)} rounds: " + ", ".join(f"{v:.0f}" for v in calls) + ")")
+        return 0
     n = 2_000 if a.quick else 10_000
     t_start = time.monotonic()
     det, notes = part_detection(n, 240, 40)
@@ -248,8 +279,11 @@ def main() -> int:
     if not a.detection_only:
         dmn, more = part_daemon(n, 120)
         notes += more
-    batch_rate = senml_rate = math.nan
+    batch_rate = senml_rate = engine_us = math.nan
     if not a.detection_only:
+        engine_us, calls = part_engine_batches(rounds=16)
+        notes.append("engine alone, 260 samples a call, us per call by round (CPU time): "
+                     + ", ".join(f"{v:.0f}" for v in calls))
         batch_rate, rates = part_batches(rounds=16)
         senml_rate, srates = part_batches(rounds=16, fmt="senml")
         notes.append("batched payloads, samples/s by round (CPU time): JSON arrays "
@@ -267,6 +301,9 @@ def main() -> int:
          "(reported; 1,000,000/s per shard)", True),
         ("daemon in process, SenML packs of 260 records", f"{senml_rate:,.0f} samples/s", "",
          "(reported; 1,000,000/s per shard)", True),
+        ("engine alone, 260 samples a call, 200 streams", f"{engine_us:.0f} us a call",
+         f"{260 / engine_us * 1e6:,.0f} samples/s" if not math.isnan(engine_us) else "",
+         "(reported; the daemon's round above includes it)", True),
     ]
     w = [max(len(r[i]) for r in rows + [("target", "measured", "baseline", "goal", True)]) for i in range(4)]
     for i, h in enumerate(("target", "measured", "baseline", "goal")):

@@ -15,12 +15,14 @@ from shiftwatch.core.engine import StreamEngine
 
 
 def run_in_batches(eng: StreamEngine, t: np.ndarray, x: np.ndarray, cuts: list[int],
-                   switch: str, on: bool) -> dict[str, Any]:
-    """Feed ``eng`` the batches ``x[a:b]`` between ``cuts`` with ``engine.<switch>`` set to
-    ``on`` (restored after); returns its records, rejections, state after each batch and
-    counters, for comparison with the same run the other way."""
-    saved = getattr(engine, switch)
-    setattr(engine, switch, on)
+                   switch: str | tuple[str, ...], on: bool) -> dict[str, Any]:
+    """Feed ``eng`` the batches ``x[a:b]`` between ``cuts`` with ``engine.<switch>`` (or each
+    of several) set to ``on`` (restored after); returns its records, rejections, state after
+    each batch and counters, for comparison with the same run the other way."""
+    names = (switch,) if isinstance(switch, str) else switch
+    saved = {name: getattr(engine, name) for name in names}
+    for name in names:
+        setattr(engine, name, on)
     try:
         records, rejected, states = [], [], []
         for a, b in itertools.pairwise([0, *cuts, x.shape[0]]):
@@ -31,4 +33,5 @@ def run_in_batches(eng: StreamEngine, t: np.ndarray, x: np.ndarray, cuts: list[i
         return {"records": records, "rejected": rejected, "states": states,
                 "counts": (eng.samples_total, dict(eng.records_total), dict(eng.rejected_total))}
     finally:
-        setattr(engine, switch, saved)
+        for name, value in saved.items():
+            setattr(engine, name, value)

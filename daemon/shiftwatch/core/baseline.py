@@ -18,6 +18,11 @@ from numpy.typing import NDArray
 
 FloatArray = NDArray[np.float64]
 
+#: ndarray.sum's, min's and max's reductions, without their wrappers (BaselineSums.add).
+_sum = np.add.reduce
+_min = np.minimum.reduce
+_max = np.maximum.reduce
+
 #: d2 for subgroups of two: E|X1 - X2| = 1.128 sigma for Gaussian noise.
 #: A standard SPC constant (common practice).
 D2_MOVING_RANGE = 1.128
@@ -372,8 +377,15 @@ class BaselineSums:
         out.n, out.tail, out.ndt = int(n or 0), int(tail or 0), int(ndt or 0)
         return out
 
-    def add(self, b: Baseline, values: FloatArray, times: FloatArray) -> None:
-        """Fold samples (in time order, continuing the previous ones) into the sums."""
+    def add(self, b: Baseline, values: FloatArray, times: FloatArray, cut: int = 0) -> None:
+        """Fold samples (in time order, continuing the previous ones) into the sums.
+
+        With ``0 < cut < len(values)`` the samples are folded as two calls would fold
+        ``values[:cut]`` and then ``values[cut:]`` (the engine folds the oldest samples of
+        its window and the oldest of a batch together): the same sums, bit for bit, since
+        the elementwise work is the same on either side of the cut and each sum is taken
+        per part, in the same order; only the array calls are shared.
+        """
         m = values.shape[0]
         if m == 0:
             return
@@ -381,49 +393,65 @@ class BaselineSums:
         dev = values - b.level
         dev *= 1.0 / b.sigma
         if c > TAIL_AT:
-            u = np.clip(dev, -c, c)
+            u = dev.clip(-c, c)
             self.tail += int(np.count_nonzero(np.abs(u) > TAIL_AT))
         else:
             self.tail += int(np.count_nonzero(np.abs(dev) > TAIL_AT))
-            u = np.clip(dev, -c, c)
-        self.su += float(u.sum())
-        uu = float(np.dot(u, u))
-        self.suu += uu
-        lag = float(np.dot(u[1:], u[:-1]))
-        if self.prev_u is not None:
-            lag += u[0] * self.prev_u
-        self.slag += lag
-        if b.phi == 0.0:
-            self.see += uu  # prewhitened residuals are the residuals themselves
-        else:
-            e = np.clip(u[1:] - b.phi * u[:-1], -c, c)
-            self.see += float(np.dot(e, e))
-            if self.prev_u is not None:
-                ef = float(np.clip(u[0] - b.phi * self.prev_u, -c, c))
-                self.see += ef * ef
+            u = dev.clip(-c, c)
+        phi = b.phi
+        # The prewhitened residuals within the samples (both parts; the one across the
+        # cut is the second part's first, as prev_u makes it in a call of its own).
+        e_all = None if phi == 0.0 or m < 2 else (u[1:] - phi * u[:-1]).clip(-c, c)
         # Sampling interval: gaps of ten intervals or more (stoppages) are left out, each
         # step judged on its own as add_one judges it, so the estimate does not depend on
         # where a batch ends.  (A block's mean step within 20% of the interval was once
         # taken whole: a 21 s gap in a long block counted, in a short one it did not, and
         # the design ARL, which follows the interval, differed by batching.)
         gap = 10.0 * b.interval
-        if self.prev_t is not None:
-            d0 = float(times[0]) - self.prev_t
-            if 0.0 < d0 < gap:
-                self.sdt += d0
-                self.ndt += 1
-        if m > 1:
-            dt = times[1:] - times[:-1]
-            if 0.0 < float(dt.min()) and float(dt.max()) < gap:
-                self.sdt += float(times[-1] - times[0])
-                self.ndt += m - 1
+        dt_all = times[1:] - times[:-1] if m > 1 else None
+        parts = ((0, cut), (cut, m)) if 0 < cut < m else ((0, m),)
+        # Every step regular over both parts (the step across the cut included) means
+        # every step regular within each part: one test for both in the common case.
+        regular = dt_all is not None and 0.0 < float(_min(dt_all)) and float(_max(dt_all)) < gap
+        for a, z in parts:
+            k = z - a
+            us = u[a:z]
+            self.su += float(_sum(us))
+            uu = float(np.dot(us, us))
+            self.suu += uu
+            lag = float(np.dot(us[1:], us[:-1]))
+            if self.prev_u is not None:
+                lag += us[0] * self.prev_u
+            self.slag += lag
+            if phi == 0.0:
+                self.see += uu  # prewhitened residuals are the residuals themselves
             else:
-                ok = dt[(dt > 0) & (dt < gap)]
-                self.sdt += float(ok.sum())
-                self.ndt += int(ok.shape[0])
-        self.n += m
-        self.prev_u = float(u[-1])
-        self.prev_t = float(times[-1])
+                if e_all is not None:
+                    e = e_all[a: z - 1]
+                    self.see += float(np.dot(e, e))
+                if self.prev_u is not None:
+                    # clip of one number: min and max give the same float
+                    ef = float(us[0] - phi * self.prev_u)
+                    ef = -c if ef < -c else (c if ef > c else ef)
+                    self.see += ef * ef
+            if self.prev_t is not None:
+                d0 = float(times[a]) - self.prev_t
+                if 0.0 < d0 < gap:
+                    self.sdt += d0
+                    self.ndt += 1
+            if k > 1:
+                assert dt_all is not None
+                dt = dt_all[a: z - 1]
+                if regular or (0.0 < float(_min(dt)) and float(_max(dt)) < gap):
+                    self.sdt += float(times[z - 1] - times[a])
+                    self.ndt += k - 1
+                else:
+                    ok = dt[(dt > 0) & (dt < gap)]
+                    self.sdt += float(ok.sum())
+                    self.ndt += int(ok.shape[0])
+            self.n += k
+            self.prev_u = float(us[-1])
+            self.prev_t = float(times[z - 1])
 
     def add_one(self, b: Baseline, value: float, time: float) -> None:
         """:meth:`add` of one sample, in plain floats: the same operations on the same

@@ -36,6 +36,7 @@ import hashlib
 import math
 import operator
 from array import array
+from bisect import bisect_left
 from collections import Counter
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field, replace
@@ -473,6 +474,10 @@ SPLIT_DEFER_FROM = 16
 #: (StreamEngine._split_spikes_sparse); False: the reference's passes over the segment.
 SPARSE_SPIKES = True
 SPLIT_DEFER_ROWS = 64
+#: A batch that folds samples of the window and of its own into the baseline sums folds
+#: them in one call (BaselineSums.add with a cut); False: two calls, the reference
+#: (tests/core/test_batch_path.py holds the two to each other).
+FOLD_TOGETHER = True
 
 
 class _SplitCalled(Exception):
@@ -801,26 +806,47 @@ class StreamEngine:
         m = x.shape[0]
         guard = self.settings.baseline_guard
         fold = self._unfolded + m - guard
+        w = self._window
+        extended = False
         if fold > 0:
             old = min(self._unfolded, fold)
+            new = fold - old
             if old:
-                n = len(self._window)
-                wx = self._window.values[n - self._unfolded: n - self._unfolded + old]
-                wt = self._window.times[n - self._unfolded: n - self._unfolded + old]
+                n = len(w)
+                a = n - self._unfolded
                 uq = self._unfolded_u
                 wu = np.array(uq[:old], dtype=np.float64)
                 del uq[:old]
-                self._sums.add(b, wx - wu, wt.copy())
-            if fold > old:
-                self._sums.add(b, x[: fold - old] - u[: fold - old], t[: fold - old])
-                self._unfolded_u.extend(u[fold - old:].tolist())
-            else:
-                self._unfolded_u.extend(u.tolist())
+                if new and FOLD_TOGETHER:
+                    # The window's oldest unfolded samples and the batch's first, folded
+                    # as two calls would fold them (BaselineSums.add's cut).  They are all
+                    # the window's unfolded ones (old == unfolded here), so once the batch
+                    # has joined the window they lie side by side in it, as long as the
+                    # window keeps them (m + old samples at most).
+                    if m + old <= w.keep:
+                        w.extend(x, t)
+                        extended = True
+                        p0 = len(w) - m - old
+                        self._sums.add(b, w.values[p0: p0 + fold] - np.concatenate((wu, u[:new])),
+                                       w.times[p0: p0 + fold], cut=old)
+                    else:
+                        self._sums.add(b, np.concatenate((w.values[a: a + old], x[:new]))
+                                       - np.concatenate((wu, u[:new])),
+                                       np.concatenate((w.times[a: a + old], t[:new])), cut=old)
+                else:
+                    self._sums.add(b, w.values[a: a + old] - wu, w.times[a: a + old].copy())
+                    if new:
+                        self._sums.add(b, x[:new] - u[:new], t[:new])
+            elif new:
+                self._sums.add(b, x[:new] - u[:new], t[:new])
+            # The offsets' doubles as they are (no float object per sample on the way).
+            self._unfolded_u.frombytes((u[new:] if new else u).tobytes())
             self._unfolded -= fold
         else:
-            self._unfolded_u.extend(u.tolist())
+            self._unfolded_u.frombytes(u.tobytes())
         self._unfolded += m
-        self._window.extend(x, t)
+        if not extended:
+            w.extend(x, t)
 
     def _append_one(self, t: float, x: float, u: float) -> None:
         """:meth:`_append` of one sample, in plain floats (the steady state: the
@@ -969,7 +995,7 @@ class StreamEngine:
             idx = np.concatenate(([-1], idx))
             self._pending = None
         span = s.spike_sigma * sigma
-        if not ((x > center + span).any() or (x < center - span).any()):
+        if not (float(np.maximum.reduce(x)) > center + span or float(np.minimum.reduce(x)) < center - span):
             # Fast path: no outlier at all.
             if x.shape[0] >= limit:
                 return t[:limit], x[:limit], [], limit - int(held_before), None, None
@@ -1038,28 +1064,46 @@ class StreamEngine:
             if (sign.get(i - 1, 0.0) if i > 0 else float(prev)) != sg:
                 late.append(i)
         held = bool(lone) and lone[-1] == n - 1
-        keep = np.ones(n, dtype=np.bool_)
-        if lone:
-            keep[lone] = False
-        osign_all = np.zeros(n, dtype=np.int8)
-        if sign:
-            osign_all[list(sign)] = list(sign.values())
-        settled_all = t.copy()
-        if late:
-            settled_all[late] = t[[min(i + 1, n - 1) for i in late]]
+        removed = lone.copy()  # the samples not kept: the lone spikes and a held one
         if held:
             lone.pop()
-        kept = np.flatnonzero(keep)
-        if kept.shape[0] >= limit:
+        # The kept samples are the segment's up to ``cut`` less the removed ones among them:
+        # the slices between those (a handful), with each outlier's sign and settling time
+        # put at its place among the kept ones, instead of index arrays over the segment.
+        full = n - len(removed) >= limit
+        if full:
             # Stop at the limit: whatever follows (a held sample included) is fed again later.
-            last = int(kept[limit - 1])
-            kept = kept[:limit]
+            last = limit - 1
+            for j in removed:
+                if j > last:
+                    break
+                last += 1
+            cut = last + 1
+        else:
+            cut = n
+        gone = [j for j in removed if j < cut]
+        if gone:
+            segs = [(a, b) for a, b in zip([0, *(j + 1 for j in gone)], [*gone, cut]) if a < b]
+            kt = np.concatenate([t[a:b] for a, b in segs]) if segs else t[:0]
+            kx = np.concatenate([x[a:b] for a, b in segs]) if segs else x[:0]
+        else:
+            kt, kx = t[:cut], x[:cut]
+        out = set(gone)
+        osign = np.zeros(kt.shape[0], dtype=np.int8)
+        for i, sg in sign.items():
+            if i < cut and i not in out:
+                osign[i - bisect_left(gone, i)] = sg
+        settled = kt.copy()
+        for i in late:
+            if i < cut and i not in out:
+                settled[i - bisect_left(gone, i)] = t[min(i + 1, n - 1)]
+        if full:
             spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in lone if j < last]
-            return t[kept], x[kept], spikes, last - int(held_before) + 1, osign_all[kept], settled_all[kept]
+            return kt, kx, spikes, last - int(held_before) + 1, osign, settled
         if held:
             self._pending = (float(t[-1]), float(x[-1]))
         spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in lone]
-        return t[kept], x[kept], spikes, n_in, osign_all[kept], settled_all[kept]
+        return kt, kx, spikes, n_in, osign, settled
 
     def _young_test(self) -> SequentialTest:
         """The test for self-starting inputs: they are N(0, 1) however few samples the
@@ -1604,7 +1648,7 @@ class StreamEngine:
         else:
             e = r
         z = e * (1.0 / b.innovation_sigma)
-        np.clip(z, -b.clip, b.clip, out=z)
+        z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
         trip = test.update(z)
         if trip < 0:
             self._kept_all(spikes, osign, r, result)
@@ -1899,7 +1943,7 @@ class StreamEngine:
         # Residuals from the level fitted before the step, not the baseline's.
         e -= (1.0 - b.phi) * (ev.level_before - b.level)
         z = e * (1.0 / b.innovation_sigma)
-        np.clip(z, -b.clip, b.clip, out=z)
+        z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
         i, outcome = ev.trial.feed(z)
         if i < 0:
             self._kept_all(spikes, osign, r, result)
@@ -2541,12 +2585,17 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
             _follow_powers.clear()
         p = (1.0 - lam) ** np.arange(1, block + 1, dtype=np.float64)
         _follow_powers[lam] = p
-    if m <= block or not FOLLOW_BLOCKS_TOGETHER:
+    if m <= block:
+        # One block (a live batch, or a stretch shorter than 4 / lam): the loop's one
+        # step, its product written in place.
+        np.multiply(p[:m], u0 + lam * np.add.accumulate(r / p[:m]), out=out[1:])
+        return out
+    if not FOLLOW_BLOCKS_TOGETHER:
         for a in range(0, m, block):
             blk = r[a: a + block]
             k = blk.shape[0]
             pk = p[:k]
-            out[a + 1: a + k + 1] = pk * (out[a] + lam * np.cumsum(blk / pk))
+            out[a + 1: a + k + 1] = pk * (out[a] + lam * np.add.accumulate(blk / pk))
         return out
     # The same per block, all blocks at once: a block's cumulative sum does not depend on
     # the offset it starts from, so the sums are one array operation (a row per block,
@@ -2557,7 +2606,7 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
     nb = -(-m // block)
     rows = np.zeros(nb * block)
     rows[:m] = r
-    sums = np.cumsum(rows.reshape(nb, block) / p, axis=1)
+    sums = np.add.accumulate(rows.reshape(nb, block) / p, axis=1)
     sums *= lam
     last = float(p[block - 1])
     starts = [u0]

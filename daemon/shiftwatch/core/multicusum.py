@@ -364,13 +364,16 @@ class MultiCusumTest(SequentialTest):
             d = np.empty((2 * m, stop - start))
             np.subtract(blk[None, :], kc, out=d[:m])
             np.subtract(-blk[None, :], kc, out=d[m:])
-            # running-minimum form of the Lindley recursion, row by row
-            s = np.cumsum(d, axis=1)
+            # running-minimum form of the Lindley recursion, row by row (the running sum
+            # in place: each element is the same sum of the same two numbers)
+            s = np.add.accumulate(d, axis=1, out=d)
             floor = np.minimum.accumulate(s, axis=1)
             np.minimum(floor, -self._c[:, None], out=floor)
             np.subtract(s, floor, out=s)
-            hit = (s > bank.h2_col).any(axis=0)
-            if hit.any():
+            # A chart trips in this block only if its largest sum exceeds its limit: the
+            # per-row maxima are 2 m numbers, where the sample-by-sample test is 2 m n.
+            if any(map(operator.gt, np.maximum.reduce(s, axis=1).tolist(), bank.h2_list)):
+                hit = (s > bank.h2_col).any(axis=0)
                 i = int(np.argmax(hit))
                 col = s[:, i].copy()
                 ratio = col / h2
@@ -383,7 +386,8 @@ class MultiCusumTest(SequentialTest):
                 self._dir = 1 if row < m else -1
                 return start + i
             self._c = s[:, -1].copy()
-            self._stat = float(np.max(self._c / h2))
+            # the largest C / h in plain floats: the same divisions, and max is exact
+            self._stat = max(map(operator.truediv, self._c.tolist(), bank.h2_list))
             start = stop
         return -1
 

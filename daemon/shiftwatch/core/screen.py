@@ -10,8 +10,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 from numpy.typing import NDArray
@@ -50,14 +49,18 @@ def _read_only_arange(n: int) -> NDArray[np.intp]:
 
 #: ``kept`` of a small batch that passes every check (shared, so read-only).
 _ARANGE = tuple(_read_only_arange(n) for n in range(SMALL_BATCH + 1))
+#: ``kept`` of a larger clean batch: a read-only prefix of this (a replay's batches are
+#: 4,096 samples at most), so a clean batch makes no index array of its own.
+_KEPT = _read_only_arange(4096)
 
 
-@dataclass(frozen=True)
-class Screened:
+class Screened(NamedTuple):
     """Result of :func:`screen_samples`.
 
     ``times``/``values`` hold the accepted samples in order, ``kept`` their
     positions in the input, and ``rejected`` a list of ``(position, reason)``.
+    (A named tuple: one is made on every engine call, and a frozen dataclass
+    is made by four attribute writes through ``object.__setattr__``.)
     """
 
     times: NDArray[np.float64]
@@ -146,6 +149,18 @@ def screen_samples(
             and _small_batch_clean(times.tolist(), values.tolist(), last_time, arrived, max_ahead,
                                    max_behind)):
         return Screened(times=times, values=values, kept=_ARANGE[times.shape[0]], rejected=[])
+    if (type(times) is np.ndarray and type(values) is np.ndarray and times.dtype == _F64
+            and values.dtype == _F64 and times.ndim == 1 and times.shape == values.shape
+            and (arrived is None or (max_ahead is None and max_behind is None))):
+        # Float arrays, no arrival limits: the checks of the fast path below on the arrays
+        # as they are (values within the bound: the largest and the smallest, where a NaN
+        # fails the comparison as it fails abs(v) <= bound).
+        n = times.shape[0]
+        if (n and times[0] > last_time and bool(np.maximum.reduce(values) <= MAX_ABS_VALUE)
+                and bool(np.minimum.reduce(values) >= -MAX_ABS_VALUE) and np.isfinite(times[-1])
+                and (n == 1 or bool((times[1:] > times[:-1]).all()))):
+            return Screened(times=times, values=values,
+                            kept=_KEPT[:n] if n <= _KEPT.shape[0] else np.arange(n), rejected=[])
     t, bad_t = coerce_values(times)
     v, bad_v = coerce_values(values)
     n = t.shape[0]
