@@ -271,7 +271,7 @@ class Window:
     """The newest samples of one stream: values and times in two small arrays.
 
     Holds at least the last ``keep`` samples (up to ``keep + slack`` between
-    trims, so long streams shift memory rarely).  Memory per stream is about
+    trims, so long streams shift memory rarely), in one array of two rows.  Memory per stream is about
     ``16 (keep + slack)`` bytes; the step fitter with its running sums is
     only built while an event is open.
 
@@ -286,16 +286,18 @@ class Window:
     [4.0, 9.0]
     """
 
-    __slots__ = ("_n", "_t", "_x", "keep")
+    __slots__ = ("_b", "_n", "keep")
 
     def __init__(self, keep: int, slack: int = 8) -> None:
         self.keep = keep
-        self._x, self._t = _WindowStore.of(keep + slack).take()
+        # One (2, capacity) view: row 0 the values, row 1 the times (one array object
+        # per stream instead of two: 10,000 streams hold 10,000 windows).
+        self._b = _WindowStore.of(keep + slack).take()
         self._n = 0
 
     def __del__(self) -> None:
         try:
-            _WindowStore.of(self._x.shape[0]).give((self._x, self._t))
+            _WindowStore.of(self._b.shape[1]).give(self._b)
         except (AttributeError, TypeError):  # half-built, or the interpreter is shutting down
             pass
 
@@ -303,64 +305,67 @@ class Window:
         return self._n
 
     @property
+    def capacity(self) -> int:
+        return int(self._b.shape[1])
+
+    @property
     def values(self) -> FloatArray:
-        return self._x[: self._n]
+        return self._b[0, : self._n]
 
     @property
     def times(self) -> FloatArray:
-        return self._t[: self._n]
+        return self._b[1, : self._n]
 
     def extend(self, x: FloatArray, t: FloatArray) -> None:
         m = x.shape[0]
+        b = self._b
         if m >= self.keep:
-            self._x[: self.keep] = x[-self.keep:]
-            self._t[: self.keep] = t[-self.keep:]
+            b[0, : self.keep] = x[-self.keep:]
+            b[1, : self.keep] = t[-self.keep:]
             self._n = self.keep
             return
         n = self._n
-        if n + m > self._x.shape[0]:
+        if n + m > b.shape[1]:
             shift = n + m - self.keep
-            self._x[: n - shift] = self._x[shift:n]
-            self._t[: n - shift] = self._t[shift:n]
+            b[:, : n - shift] = b[:, shift:n]
             n -= shift
-        self._x[n: n + m] = x
-        self._t[n: n + m] = t
+        b[0, n: n + m] = x
+        b[1, n: n + m] = t
         self._n = n + m
 
     def push(self, x: float, t: float) -> None:
         """:meth:`extend` by one sample."""
         n = self._n
-        if n >= self._x.shape[0]:
+        b = self._b
+        if n >= b.shape[1]:
             if self.keep < 2:
                 self.extend(np.array([x]), np.array([t]))
                 return
             shift = n + 1 - self.keep
-            self._x[: n - shift] = self._x[shift:n]
-            self._t[: n - shift] = self._t[shift:n]
+            b[:, : n - shift] = b[:, shift:n]
             n -= shift
-        self._x[n] = x
-        self._t[n] = t
+        b[0, n] = x
+        b[1, n] = t
         self._n = n + 1
 
     def at(self, i: int) -> tuple[float, float]:
         """The time and value of sample ``i`` (0 is the oldest held)."""
-        return float(self._t[i]), float(self._x[i])
+        return float(self._b[1, i]), float(self._b[0, i])
 
     def drop_front(self, k: int) -> None:
         k = min(k, self._n)
         if k:
-            self._x[: self._n - k] = self._x[k: self._n]
-            self._t[: self._n - k] = self._t[k: self._n]
+            self._b[:, : self._n - k] = self._b[:, k: self._n]
             self._n -= k
 
     def reset_to(self, x: FloatArray, t: FloatArray) -> None:
         """Hold exactly these samples (the newest ones, if they do not all fit)."""
-        cap = self._x.shape[0]
+        cap = self._b.shape[1]
         xs = np.asarray(x, dtype=np.float64)[-cap:]
         ts = np.asarray(t, dtype=np.float64)[-cap:]
         self._n = xs.shape[0]
-        self._x[: self._n] = xs
-        self._t[: self._n] = ts
+        self._b[0, : self._n] = xs
+        self._b[1, : self._n] = ts
 
 
 class _WindowStore:
@@ -370,7 +375,7 @@ class _WindowStore:
     allocation each would sit between the short-lived arrays of batch
     processing and keep the memory freed around them from being returned to
     the system; blocks of :attr:`BLOCK` windows keep them together instead.
-    A window's arrays go back to the store when the window is dropped.
+    A window's array goes back to the store when the window is dropped.
     """
 
     BLOCK = 128
@@ -378,7 +383,7 @@ class _WindowStore:
 
     def __init__(self, capacity: int) -> None:
         self.capacity = capacity
-        self._free: list[tuple[FloatArray, FloatArray]] = []
+        self._free: list[FloatArray] = []
 
     @classmethod
     def of(cls, capacity: int) -> _WindowStore:
@@ -387,16 +392,15 @@ class _WindowStore:
             store = cls._stores[capacity] = cls(capacity)
         return store
 
-    def take(self) -> tuple[FloatArray, FloatArray]:
-        """Arrays for the values and times of one window (contents undefined)."""
+    def take(self) -> FloatArray:
+        """A (2, capacity) array for the values and times of one window (contents undefined)."""
         if not self._free:
             block = np.empty((self.BLOCK, 2, self.capacity))
-            self._free.extend((block[i, 0], block[i, 1]) for i in range(self.BLOCK - 1, -1, -1))
+            self._free.extend(block[i] for i in range(self.BLOCK - 1, -1, -1))
         return self._free.pop()
 
-    def give(self, arrays: tuple[FloatArray, FloatArray]) -> None:
-        self._free.append(arrays)
-
+    def give(self, rows: FloatArray) -> None:
+        self._free.append(rows)
 
 class Rejection(NamedTuple):
     """A rejected sample: its position in the batch (-1 for a sample of an
@@ -1204,7 +1208,7 @@ class StreamEngine:
         span = min(limit, int(t.shape[0]))
         win = self._window
         if (ys is not None and ys.sigma is None and self._baseline is None and self._split is None
-                and span >= SPLIT_DEFER_FROM and len(win) + span + 1 <= win._x.shape[0]
+                and span >= SPLIT_DEFER_FROM and len(win) + span + 1 <= win.capacity
                 and (test is None or isinstance(test, MultiCusumTest))):
             mark = (ys.copy(), len(win), self._pending, self._prev_out, len(result.rejected),
                     len(result.records), test, None if test is None else test.mark(), self._test_arl0,
@@ -1280,7 +1284,8 @@ class StreamEngine:
         bias = _selfstart.BIAS_CORRECT
         min_unknown = SelfStart.MIN_UNKNOWN
         win = self._window
-        cap = win._x.shape[0]
+        cap = win.capacity
+        wb = win._b
         sqrt = math.sqrt
         log1p = math.log1p
         truediv = operator.truediv
@@ -1416,8 +1421,8 @@ class StreamEngine:
             # Window.push
             wn = win._n
             if wn < cap:
-                win._x[wn] = xv
-                win._t[wn] = tv
+                wb[0, wn] = xv
+                wb[1, wn] = tv
                 win._n = wn + 1
             else:
                 win.push(xv, tv)
