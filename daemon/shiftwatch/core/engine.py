@@ -268,10 +268,10 @@ def _tally(counts: Counter[str], keys: Iterable[str]) -> Counter[str]:
 
 
 class Window:
-    """The newest samples of one stream: values and times in two small arrays.
+    """The newest samples of one stream: values and times, the two rows of one small array.
 
     Holds at least the last ``keep`` samples (up to ``keep + slack`` between
-    trims, so long streams shift memory rarely), in one array of two rows.  Memory per stream is about
+    trims, so long streams shift memory rarely).  Memory per stream is about
     ``16 (keep + slack)`` bytes; the step fitter with its running sums is
     only built while an event is open.
 
