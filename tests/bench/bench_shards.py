@@ -12,7 +12,8 @@ published at QoS 1 and stored by the cluster, then the consumers come back and t
 time from the first to the last message taken is measured:
 
 - shards: n ``shiftwatch run --shard k`` daemons (subprocesses), polled through
-  ``shiftwatch_messages_processed_total`` on each one's /metrics;
+  ``shiftwatch_samples_total`` on each one's /metrics (samples the engines took:
+  copies the broker sent again are not counted; messages = samples / batch);
 - bare: n paho clients (MQTT 3.1.1, persistent sessions, QoS 1, automatic acks)
   subscribed to the same partition prefixes, counting messages.
 
@@ -166,25 +167,27 @@ def shard_config(path: Path, cluster: NatsCluster, parts: int, keep: str, port: 
     path.write_text(text)
 
 
-def processed(ports: list[int]) -> float:
-    """Messages the shards processed.  Only that family is asked for (``name[]``): a full
-    scrape renders every stream's series, and 20 of them a second took about a third
-    of a core from the shard being measured."""
+def taken(ports: list[int]) -> float:
+    """Samples the shards' engines took (``shiftwatch_samples_total``): a sample the broker
+    sent again and the engine set aside as a duplicate is not counted, so copies of
+    messages do not make a backlog look taken.  Only that family is asked for
+    (``name[]``): a full scrape renders every series, and 20 of them a second took
+    about a third of a core from the shard being measured."""
     n = 0.0
     for p in ports:
         try:
-            with urllib.request.urlopen(f"http://127.0.0.1:{p}/metrics?name[]=shiftwatch_messages_processed_total",
+            with urllib.request.urlopen(f"http://127.0.0.1:{p}/metrics?name[]=shiftwatch_samples_total",
                                         timeout=5) as r:
                 text = r.read().decode()
         except (OSError, http.client.HTTPException):  # not serving yet
             continue
         for fam in text_string_to_metric_families(text):
-            n += sum(x.value for x in fam.samples if x.name == "shiftwatch_messages_processed_total")
+            n += sum(x.value for x in fam.samples if x.name == "shiftwatch_samples_total")
     return n
 
 
 def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: list[tuple[str, bytes]],
-               tag: str, warm: list[tuple[str, bytes]] | None = None) -> float:
+               tag: str, warm: list[tuple[str, bytes]] | None = None, per_msg: int = 1) -> float:
     """The shards' rate over the backlog ``msgs``, in messages a second.  With ``warm``,
     the shards first take those messages live, so that the backlog meets established
     streams instead of new ones warming up."""
@@ -216,10 +219,10 @@ def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: li
         # stopped (SIGSTOP, a few seconds: well inside the keepalive and the lease)
         # while the backlog is stored, and go on (SIGCONT) with their engines as they were.
         publish_backlog(cluster.mqtt_url(2), warm)
-        assert wait_until(lambda: processed(ports) >= len(warm), 600, every=0.2), \
+        assert wait_until(lambda: taken(ports) >= len(warm) * BATCH, 600, every=0.2), \
             [logs(k)[-800:] for k in range(parts)]
         time.sleep(1.0)  # the last round's acknowledgements
-        base = processed(ports)
+        base = taken(ports)
         for p in procs:
             p.send_signal(signal.SIGSTOP)
         publish_backlog(cluster.mqtt_url(2), msgs)
@@ -231,13 +234,13 @@ def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: li
             p.wait(60)
         publish_backlog(cluster.mqtt_url(2), msgs)
         procs = [start(k) for k in range(parts)]
-    total = len(msgs)
+    total = len(msgs) * per_msg
     first = None
     start_count = 0.0
     deadline = time.monotonic() + 600
     done_at = None
     while time.monotonic() < deadline:
-        n = processed(ports) - base
+        n = taken(ports) - base
         now = time.monotonic()
         if first is None and n > 0:
             first, start_count = now, n
@@ -251,7 +254,7 @@ def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: li
     viewer.stop()
     if first is None or done_at is None or done_at <= first:
         raise RuntimeError(f"shards did not take the backlog: {[logs(k)[-1500:] for k in range(parts)]}")
-    return (total - start_count) / (done_at - first)
+    return (total - start_count) / (done_at - first) / per_msg
 
 
 def run_bare(cluster: NatsCluster, parts: int, msgs: list[tuple[str, bytes]], tag: str) -> float:
@@ -287,7 +290,7 @@ def part_throughput(args: argparse.Namespace, work: Path) -> list[str]:
                 for rep in range(args.repeat):
                     tag = f"{kind}{parts}r{rep}"
                     rb.append(run_bare(cluster, parts, msgs, tag))
-                    rs.append(run_shards(work, cluster, parts, "cluster", msgs, tag, warm))
+                    rs.append(run_shards(work, cluster, parts, "cluster", msgs, tag, warm, batch))
                     print(f"  repeat {rep + 1}: shards {rs[-1]:,.0f} msg/s, bare {rb[-1]:,.0f} msg/s, "
                           f"ratio {rs[-1] / rb[-1]:.2f}", flush=True)
                 shard_rate, bare_rate = statistics.median(rs), statistics.median(rb)
