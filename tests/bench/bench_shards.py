@@ -64,6 +64,8 @@ CMD = [sys.executable, "-m", "shiftwatch"]
 T0 = 1_790_000_000.0
 BATCH = 260
 WARM_ROUNDS = 5
+#: How long the bare subscribers may take a backlog before the repeat is not counted.
+BARE_WAIT = 90.0
 
 
 def _free(port: int) -> bool:
@@ -265,8 +267,12 @@ def run_bare(cluster: NatsCluster, parts: int, msgs: list[tuple[str, bytes]], ta
     publish_backlog(cluster.mqtt_url(2), msgs)
     bare.count = 0
     bare.connect(subscribe=False)
-    assert wait_until(lambda: bare.count >= len(msgs), 600, every=0.05), (bare.count, len(msgs))
+    ok = wait_until(lambda: bare.count >= len(msgs), BARE_WAIT, every=0.05)
     bare.disconnect()
+    if not ok:
+        # NATS's MQTT side sometimes holds a session's deliveries back (README, "Running
+        # shards"); such a repeat says nothing about the subscriber's rate.
+        raise RuntimeError(f"bare subscribers took {bare.count} of {len(msgs)} messages in {BARE_WAIT:.0f} s")
     return (bare.count - 1) / max(bare.last - bare.first, 1e-9)
 
 
@@ -289,10 +295,17 @@ def part_throughput(args: argparse.Namespace, work: Path) -> list[str]:
                 rs, rb = [], []
                 for rep in range(args.repeat):
                     tag = f"{kind}{parts}r{rep}"
-                    rb.append(run_bare(cluster, parts, msgs, tag))
+                    try:
+                        b = run_bare(cluster, parts, msgs, tag)
+                    except RuntimeError as exc:
+                        print(f"  repeat {rep + 1}: not counted ({exc})", flush=True)
+                        continue
+                    rb.append(b)
                     rs.append(run_shards(work, cluster, parts, "cluster", msgs, tag, warm, batch))
                     print(f"  repeat {rep + 1}: shards {rs[-1]:,.0f} msg/s, bare {rb[-1]:,.0f} msg/s, "
                           f"ratio {rs[-1] / rb[-1]:.2f}", flush=True)
+                if not rs:
+                    continue
                 shard_rate, bare_rate = statistics.median(rs), statistics.median(rb)
                 rows.append(f"| {parts} | {kind} | {args.streams} | {len(msgs):,} | {shard_rate:,.0f} msg/s, "
                             f"{shard_rate * batch:,.0f} samples/s | {bare_rate:,.0f} msg/s | "
