@@ -46,7 +46,7 @@ from shiftwatch.journal import JournalGroup, decode_groups, encode_groups
 from shiftwatch.natsio import ClusterError, NatsIO, SequenceConflict
 from shiftwatch.statestore import decode_state, encode_state
 
-__all__ = ["ClusterState", "Restored", "stream_key"]
+__all__ = ["ClusterState", "JournalRound", "Restored", "stream_key"]
 
 _FORMAT = "shiftwatch-cluster-state"
 SCHEMA_VERSION = 1
@@ -183,28 +183,18 @@ class ClusterState:
         by another daemon); raises ClusterError when the cluster did not
         acknowledge the others in time.
         """
-        sem = asyncio.Semaphore(PARALLEL)
+        rnd = self.journal_round()
+        for g in groups:
+            rnd.add(g)
+        return rnd.wait()
 
-        async def one(g: JournalGroup) -> tuple[JournalGroup, int | None]:
-            async with sem:
-                try:
-                    seq = await self.io.publish(self.subject(g.stream), encode_groups([g]),
-                                                expect_last=self.seq.get(g.stream, 0),
-                                                headers={WRITER: self.writer, WRITTEN: f"{time.time():.3f}"})
-                except SequenceConflict:
-                    return g, None
-                return g, seq
+    def journal_round(self) -> JournalRound:
+        """A round's journal messages, sent while the round is still being fed
+        (:meth:`JournalRound.add` as each stream's group is ready, then
+        :meth:`JournalRound.wait`): the cluster stores the first streams' samples
+        while the engines take the next ones, instead of after the whole round."""
+        return JournalRound(self)
 
-        async def go() -> list[tuple[JournalGroup, int | None]]:
-            return list(await asyncio.gather(*(one(g) for g in groups)))
-
-        refused = []
-        for g, seq in self.io.run(go(), timeout=self.io.timeout * (1 + len(groups) // PARALLEL)):
-            if seq is None:
-                refused.append(g)
-            else:
-                self.seq[g.stream] = seq
-        return refused
 
     # ---------------------------------------------------------- snapshots
     def save(self, entries: Mapping[str, tuple[dict[str, Any], str | None, str | None,
@@ -239,3 +229,79 @@ class ClusterState:
             raise ClusterError(f"NATS cluster {self.io.where}: snapshot to bucket {self.bucket} "
                                f"failed ({type(exc).__name__}: {exc})") from None
         return len(entries)
+
+
+class JournalRound:
+    """The journal messages of one round, published as their groups are added.
+
+    Each stream's group is one message with the expected last sequence known when
+    it is added (a stream has one group a round), exactly as :meth:`ClusterState.journal`
+    sends them.  Groups go to the NATS thread in chunks of :data:`CHUNK`, so the
+    publishing overlaps the feeding of the rest of the round; :meth:`wait` sends the
+    last chunk and waits for every acknowledgement.  Nothing is acknowledged to the
+    broker before :meth:`wait` returns: the guarantee is the same.
+    """
+
+    #: Groups handed to the NATS thread at a time (each hand-over wakes its loop).
+    CHUNK = 32
+
+    def __init__(self, cs: ClusterState) -> None:
+        self.cs = cs
+        self._sem = asyncio.Semaphore(PARALLEL)
+        self._buf: list[tuple[JournalGroup, bytes, int]] = []
+        self._futs: list[Any] = []
+        self._n = 0
+        self._error: BaseException | None = None
+
+    def add(self, g: JournalGroup) -> None:
+        self._buf.append((g, encode_groups([g]), self.cs.seq.get(g.stream, 0)))
+        self._n += 1
+        if len(self._buf) >= self.CHUNK:
+            self._send()
+
+    def _send(self) -> None:
+        chunk, self._buf = self._buf, []
+        if not chunk or self._error is not None:
+            return
+        cs, sem = self.cs, self._sem
+        headers = {WRITER: cs.writer, WRITTEN: f"{time.time():.3f}"}
+
+        async def one(g: JournalGroup, body: bytes, last: int) -> tuple[JournalGroup, int | None]:
+            async with sem:
+                try:
+                    seq = await cs.io.publish(cs.subject(g.stream), body, expect_last=last, headers=headers)
+                except SequenceConflict:
+                    return g, None
+                return g, seq
+
+        async def go() -> list[tuple[JournalGroup, int | None]]:
+            return list(await asyncio.gather(*(one(*c) for c in chunk)))
+
+        try:
+            self._futs.append(cs.io.submit(go()))
+        except Exception as exc:  # noqa: BLE001  the loop is gone: said by wait()
+            self._error = exc
+
+    def wait(self) -> list[JournalGroup]:
+        """Send what is left, wait for the cluster; the groups refused (their stream's
+        subject moved on).  Raises ClusterError when the cluster did not acknowledge
+        the others in time (no sequence is taken from such a round)."""
+        self._send()
+        if self._error is not None:
+            raise ClusterError(f"NATS cluster {self.cs.io.where}: {self._error}")
+        deadline = time.monotonic() + self.cs.io.timeout * (1 + self._n // PARALLEL)
+        results: list[tuple[JournalGroup, int | None]] = []
+        try:
+            for f in self._futs:
+                results += self.cs.io.result(f, max(0.0, deadline - time.monotonic()))
+        except ClusterError:
+            for f in self._futs:
+                f.cancel()
+            raise
+        refused = []
+        for g, seq in results:
+            if seq is None:
+                refused.append(g)
+            else:
+                self.cs.seq[g.stream] = seq
+        return refused

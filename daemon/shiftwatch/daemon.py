@@ -710,12 +710,13 @@ class Daemon:
             self.log.info("loaded %d stream(s) from the cluster (%d journaled sample(s) replayed)",
                           restored, replayed)
 
-    def _cluster_journal(self, fed: list[JournalGroup], now: float) -> bool:
+    def _cluster_journal(self, fed: list[JournalGroup], now: float, *, started: Any = None) -> bool:
         """The round's samples into the cluster's journal; False when the cluster did not
-        take them (the round then stays unacknowledged)."""
+        take them (the round then stays unacknowledged).  ``started``: the round's
+        ``JournalRound``, to which ``fed`` was added as it was fed."""
         assert self.cluster is not None
         try:
-            refused = self.cluster.journal(fed)
+            refused = started.wait() if started is not None else self.cluster.journal(fed)
             for _attempt in range(2):
                 if not refused:
                     return True
@@ -1262,6 +1263,10 @@ class Daemon:
             self._held_round = ("load", msgs, [], in_time_order)  # nothing fed yet: all again
             return
         fed: list[JournalGroup] = []
+        # State in the cluster: each stream's journal message leaves as soon as its
+        # engine is fed, so the cluster stores it while the next streams are fed; the
+        # round is still acknowledged only once every message is stored.
+        pub = self.cluster.journal_round() if self.cluster is not None else None
         for name, (spec, unit, times, values, arrivals, *prior) in groups.items():
             if name in self._deferred:
                 held = self._deferred_samples.setdefault(name, [spec, unit, [], [], []])
@@ -1279,6 +1284,8 @@ class Daemon:
                                       prior=prior[0] if prior else None)
                 if jg is not None:
                     fed.append(jg)
+                    if pub is not None:
+                        pub.add(jg)
             except Exception:  # noqa: BLE001  a defect must cost one stream's batch, never the daemon
                 self._count_drop("internal_error", len(values) + (len(prior[0][0]) if prior else 0))
                 self.rlog.warning("internal_error", "internal error while processing stream "
@@ -1293,7 +1300,7 @@ class Daemon:
                 self._journal_failed(exc)
         self.metrics.messages_processed.inc(len(msgs))
         wrote = self.records_published != published_before
-        if fed and self.cluster is not None and not self._cluster_journal(fed, now):
+        if fed and self.cluster is not None and not self._cluster_journal(fed, now, started=pub):
             # Fed but not in the cluster's journal: held unacknowledged, and journaled
             # before anything newer is taken (see round()).
             self._held_round = ("journal", msgs, fed, wrote)

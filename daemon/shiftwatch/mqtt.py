@@ -500,6 +500,14 @@ class MqttLink:
         self._sub_added: set[str] = set()
         self._last_error: str | None = None
         self._failed_attempts = 0
+        # Packet ids of the QoS 1 messages handed to the inbox and not yet acknowledged
+        # (added by paho's thread, removed by whichever thread acknowledges).  A broker
+        # that sends such a message again (DUP set, the same packet id) while this
+        # daemon still holds the first copy gets the first copy's PUBACK; the second
+        # copy is skipped (see _handle_message).
+        self._unacked: set[int] = set()
+        #: Copies skipped that way (a count for tests and benchmarks).
+        self.redeliveries_skipped = 0
         self.host, self.port, tls = parse_url(cfg.url)
         # Rebuilt from its parts, so nothing else the URL held ever reaches a log line.
         shown_host = f"[{self.host}]" if ":" in self.host else self.host
@@ -667,6 +675,7 @@ class MqttLink:
     def ack(self, mid: int, qos: int) -> None:
         """Acknowledge a processed QoS 1 message to the broker."""
         if qos > 0:
+            self._unacked.discard(mid)
             self.client.ack(mid, qos)
 
     def ack_all(self, msgs: list[Message]) -> None:
@@ -691,6 +700,7 @@ class MqttLink:
             if m.qos > 1:
                 self.ack(m.mid, m.qos)
         queue(paho.PUBACK, struct.pack(f"!{len(mids)}I", *mids), 0, 1)
+        self._unacked.difference_update([m.mid for m in msgs])
 
     # ----------------------------------------------------------- callbacks
     def _handle_connect(self, client: paho.Client, userdata: Any, flags: Any, reason: Any,
@@ -808,6 +818,16 @@ class MqttLink:
             topic = msg.topic
             if self._strip and topic.startswith(self._strip):
                 topic = topic[len(self._strip):]
+            if msg.qos == 1:
+                if msg.dup and msg.mid in self._unacked:
+                    # A copy the broker sent again (NATS does after its ack_wait, Mosquitto
+                    # after a reconnect) of a message this daemon holds unacknowledged: the
+                    # first copy's PUBACK acknowledges both.  Processing the copy too would
+                    # cost a decode and an engine call for samples set aside as duplicates,
+                    # and its PUBACK could come after the broker gave the id to another message.
+                    self.redeliveries_skipped += 1
+                    return
+                self._unacked.add(msg.mid)
             if not self._inbox.put(Message(topic, msg.payload, time.time(), msg.mid, msg.qos)):
                 if self._inbox.closed:
                     return  # stopping: not acknowledged, so the broker delivers it again

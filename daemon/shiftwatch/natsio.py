@@ -16,6 +16,7 @@ a :class:`SequenceConflict`.
 from __future__ import annotations
 
 import asyncio
+import concurrent.futures
 import threading
 from collections.abc import Awaitable, Callable, Coroutine
 from dataclasses import dataclass
@@ -96,9 +97,17 @@ class NatsIO:
 
     def run(self, coro: Coroutine[Any, Any, T], timeout: float | None = None) -> T:
         """Run ``coro`` on the loop and wait for it (``timeout`` plus a second at most)."""
+        return self.result(self.submit(coro), timeout)
+
+    def submit(self, coro: Coroutine[Any, Any, T]) -> concurrent.futures.Future[T]:
+        """Start ``coro`` on the loop; :meth:`result` waits for it."""
         if self._thread is None:
             self.start()
-        fut = asyncio.run_coroutine_threadsafe(coro, self._loop)
+        return asyncio.run_coroutine_threadsafe(coro, self._loop)
+
+    def result(self, fut: concurrent.futures.Future[T], timeout: float | None = None) -> T:
+        """Wait for a coroutine started with :meth:`submit` (``timeout`` plus a second at most);
+        its errors as ClusterError."""
         try:
             return fut.result((timeout or self.timeout) + 1.0)
         except TimeoutError:

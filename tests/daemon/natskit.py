@@ -95,7 +95,8 @@ class NatsServer:
     def mqtt_url(self) -> str:
         return f"mqtt://127.0.0.1:{self.mqtt_port}"
 
-    def write_config(self, routes: list[int], parts: int) -> None:
+    def write_config(self, routes: list[int], parts: int, ack_wait: str = ACK_WAIT,
+                     max_ack_pending: int = 4096) -> None:
         route_list = ", ".join(f"nats-route://127.0.0.1:{p}" for p in routes)
         self.conf.write_text(
             f"server_name: {self.name}\n"
@@ -104,7 +105,8 @@ class NatsServer:
             "max_file_store: 4GB }\n"
             f"cluster {{ name: shiftwatch-test, listen: 127.0.0.1:{self.cluster_port}, "
             f"routes: [{route_list}] }}\n"
-            f"mqtt {{ listen: 127.0.0.1:{self.mqtt_port}, ack_wait: \"{ACK_WAIT}\", max_ack_pending: 4096 }}\n"
+            f"mqtt {{ listen: 127.0.0.1:{self.mqtt_port}, ack_wait: \"{ack_wait}\", "
+            f"max_ack_pending: {max_ack_pending} }}\n"
             f"mappings {{ {partition_mapping(parts)} }}\n")
 
     def start(self) -> None:
@@ -137,7 +139,8 @@ class NatsServer:
 class NatsCluster:
     """``size`` routed nats-servers with JetStream and MQTT, the plant mapped to ``parts`` partitions."""
 
-    def __init__(self, size: int = 3, parts: int = 3, base: str | Path | None = None) -> None:
+    def __init__(self, size: int = 3, parts: int = 3, base: str | Path | None = None, *,
+                 ack_wait: str = ACK_WAIT, max_ack_pending: int = 4096) -> None:
         binary = find_nats_server()
         if binary is None:
             raise RuntimeError("nats-server not found (Debian package nats-server; "
@@ -151,7 +154,7 @@ class NatsCluster:
             ports.append((base, base + 1, base + 2))
         self.servers = [NatsServer(binary, f"n{i + 1}", self.base, *p) for i, p in enumerate(ports)]
         for s in self.servers:
-            s.write_config([p[1] for p in ports if p[1] != s.cluster_port], parts)
+            s.write_config([p[1] for p in ports if p[1] != s.cluster_port], parts, ack_wait, max_ack_pending)
 
     @property
     def urls(self) -> list[str]:
