@@ -1,6 +1,7 @@
 """One engine run over a series cut into batches, with one of the engine module's
 switches set: how the tests hold a fast path to the reference path it replaces
-(the young phase's loop, the sparse spike split, the split screen)."""
+(the young phase's loop, the sparse spike split, the split screen, the batch path),
+and the noise the histories of those tests are made of."""
 
 from __future__ import annotations
 
@@ -12,6 +13,26 @@ import numpy as np
 
 from shiftwatch.core import engine
 from shiftwatch.core.engine import StreamEngine
+
+
+def noise(kind: str, n: int, rng: np.random.Generator) -> np.ndarray:
+    """``n`` samples of unit-scale noise of ``kind``: ``iid`` Gaussian, ``ar`` (AR(1), phi 0.6),
+    ``t3`` (Student's t with 3 degrees of freedom: heavy tails) or ``quantised`` (Gaussian
+    rounded to halves: ties and runs of equal values, as a coarse sensor gives)."""
+    if kind == "iid":
+        return rng.standard_normal(n)
+    if kind == "ar":
+        e = rng.standard_normal(n)
+        x = np.empty(n)
+        x[0] = e[0]
+        for i in range(1, n):
+            x[i] = 0.6 * x[i - 1] + e[i]
+        return x
+    if kind == "t3":
+        return rng.standard_t(3, n)
+    if kind == "quantised":
+        return np.round(rng.standard_normal(n) * 2.0) / 2.0
+    raise ValueError(kind)
 
 
 def run_in_batches(eng: StreamEngine, t: np.ndarray, x: np.ndarray, cuts: list[int],

@@ -24,7 +24,7 @@ from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.multicusum import MultiCusumTest
 from shiftwatch.core.settings import DetectionSettings
 
-from .batches import run_in_batches
+from .batches import noise, run_in_batches
 
 T0 = 1_788_000_000.0
 
@@ -35,20 +35,7 @@ SWITCHES = ("FOLD_TOGETHER", "SPARSE_SPIKES")
 
 def _history(kind: str, n: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
     """Times and values of one stream: noise of ``kind``, steps, lone spikes, gaps."""
-    if kind == "iid":
-        x = rng.standard_normal(n)
-    elif kind == "ar":
-        e = rng.standard_normal(n)
-        x = np.empty(n)
-        x[0] = e[0]
-        for i in range(1, n):
-            x[i] = 0.6 * x[i - 1] + e[i]
-    elif kind == "t3":  # heavy tails: the stream ends up clipped at 2 sigma
-        x = rng.standard_t(3, n)
-    elif kind == "quantised":
-        x = np.round(rng.standard_normal(n) * 2.0) / 2.0
-    else:
-        raise ValueError(kind)
+    x = noise(kind, n, rng)  # t3: heavy tails, the stream ends up clipped at 2 sigma
     x = 50.0 + 0.8 * x
     for _ in range(int(rng.integers(0, 4))):
         at = int(rng.integers(300, n))

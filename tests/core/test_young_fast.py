@@ -22,27 +22,15 @@ from shiftwatch.core import engine
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.settings import DetectionSettings
 
-from .batches import run_in_batches
+from .batches import noise, run_in_batches
 
 T0 = 1_788_000_000.0
 
 
 def _series(kind: str, n: int, rng: np.random.Generator) -> np.ndarray:
-    if kind == "iid":
-        x = rng.standard_normal(n)
-    elif kind == "ar":
-        e = rng.standard_normal(n)
-        x = np.empty(n)
-        x[0] = e[0]
-        for i in range(1, n):
-            x[i] = 0.6 * x[i - 1] + e[i]
-    elif kind == "t3":
-        x = rng.standard_t(3, n)
+    x = noise(kind, n, rng)
+    if kind == "t3":
         x[rng.random(n) < 0.01] += rng.choice([-12.0, 12.0])
-    elif kind == "quantised":  # a coarse sensor: ties, runs of equal values
-        x = np.round(rng.standard_normal(n) * 2.0) / 2.0
-    else:
-        raise ValueError(kind)
     x = 20.0 + 0.5 * x
     # Steps: some in the first warm-up, some after it, some two close together.
     for _ in range(int(rng.integers(0, 4))):
