@@ -20,6 +20,7 @@ import signal
 import socket
 import subprocess
 import tempfile
+import time
 from pathlib import Path
 
 from shiftwatch.broker import find_program, port_open, wait_until
@@ -69,6 +70,33 @@ def partition_mapping(parts: int, prefix: str = "part") -> str:
     idx = ",".join(str(i) for i in (1, 2, 3))
     return (f'"{PLANT}.*.*.*": "{prefix}.{{{{partition({parts},{idx})}}}}.{PLANT}.'
             '{{wildcard(1)}}.{{wildcard(2)}}.{{wildcard(3)}}"')
+
+
+def start_lone_server(base: Path, name: str, mqtt: str | None = None) -> tuple[subprocess.Popen[bytes], int]:
+    """One nats-server with JetStream on a free loopback port (its MQTT side on the next port
+    when ``mqtt`` holds that block's options, e.g. ``'ack_wait: "1s"'``), started and answering;
+    the test fails, with the server's log, when it cannot be started (CI never skips)."""
+    import pytest  # here: the benchmarks import this module without pytest's fixtures
+
+    exe = find_nats_server()
+    if exe is None:
+        pytest.fail("nats-server is not installed (tests/install-and-test.sh installs it)")
+    port = free_port_block(2 if mqtt is not None else 1)
+    conf = base / "nats.conf"
+    text = f"server_name: {name}\nlisten: 127.0.0.1:{port}\n" f'jetstream {{ store_dir: "{base / "js"}" }}\n'
+    if mqtt is not None:
+        text += f"mqtt {{ listen: 127.0.0.1:{port + 1}, {mqtt} }}\n"
+    conf.write_text(text)
+    with open(base / "nats.log", "wb") as log:
+        server = subprocess.Popen([exe, "-c", str(conf)], stdout=log, stderr=subprocess.STDOUT)
+    deadline = time.monotonic() + 30
+    while not (port_open(port) and (mqtt is None or port_open(port + 1))):
+        if time.monotonic() > deadline or server.poll() is not None:
+            server.kill()
+            server.wait(10)
+            pytest.fail(f"nats-server did not start: {(base / 'nats.log').read_text()[-600:]}")
+        time.sleep(0.05)
+    return server, port
 
 
 class NatsServer:

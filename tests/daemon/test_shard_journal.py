@@ -16,35 +16,24 @@ cluster's replication is not what is tested here).
 from __future__ import annotations
 
 import logging
-import subprocess
 from pathlib import Path
 
 import numpy as np
 import pytest
 
-from shiftwatch.broker import port_open, wait_until
+from shiftwatch.broker import wait_until
 from shiftwatch.clusterstate import ClusterState, JournalRound
 from shiftwatch.journal import JournalGroup
 from shiftwatch.natsio import NatsIO
 
-from .natskit import find_nats_server, free_port_block
+from .natskit import start_lone_server
 
 
 @pytest.fixture
 def cluster(tmp_path: Path):  # type: ignore[no-untyped-def]
-    exe = find_nats_server()
-    if exe is None:
-        pytest.fail("nats-server is not installed (tests/install-and-test.sh installs it)")
-    port = free_port_block(1)
-    conf = tmp_path / "nats.conf"
-    conf.write_text(f"server_name: journal\nlisten: 127.0.0.1:{port}\n"
-                    f'jetstream {{ store_dir: "{tmp_path / "js"}" }}\n')
-    with open(tmp_path / "nats.log", "wb") as log:
-        server = subprocess.Popen([exe, "-c", str(conf)], stdout=log, stderr=subprocess.STDOUT)
+    server, port = start_lone_server(tmp_path, "journal")
     io = None
     try:
-        if not wait_until(lambda: port_open(port), 30):
-            pytest.fail(f"nats-server did not start: {(tmp_path / 'nats.log').read_text()[-600:]}")
         io = NatsIO([f"nats://127.0.0.1:{port}"], name="journal-test", timeout=5.0)
         io.start()
         assert wait_until(lambda: _connects(io), 30)

@@ -28,32 +28,19 @@ import time
 from pathlib import Path
 
 import paho.mqtt.client as paho
-import pytest
 
-from shiftwatch.broker import port_open, wait_until
+from shiftwatch.broker import wait_until
 from shiftwatch.config import BrokerConfig
 from shiftwatch.mqtt import Inbox, MqttLink, PlainClient
 
-from .natskit import find_nats_server, free_port_block
+from .natskit import start_lone_server
 
 N = 30
 
 
 def _server(tmp_path: Path) -> tuple[subprocess.Popen[bytes], str]:
-    exe = find_nats_server()
-    if exe is None:
-        pytest.fail("nats-server is not installed (tests/install-and-test.sh installs it)")
-    base = free_port_block(2)
-    conf = tmp_path / "nats.conf"
-    conf.write_text(f"server_name: redeliver\nlisten: 127.0.0.1:{base}\n"
-                    f'jetstream {{ store_dir: "{tmp_path / "js"}" }}\n'
-                    f'mqtt {{ listen: 127.0.0.1:{base + 1}, ack_wait: "1s", max_ack_pending: 1000 }}\n')
-    with open(tmp_path / "nats.log", "wb") as log:
-        server = subprocess.Popen([exe, "-c", str(conf)], stdout=log, stderr=subprocess.STDOUT)
-    if not wait_until(lambda: port_open(base) and port_open(base + 1), 30):
-        server.kill()
-        pytest.fail(f"nats-server did not start: {(tmp_path / 'nats.log').read_text()[-600:]}")
-    return server, f"mqtt://127.0.0.1:{base + 1}"
+    server, port = start_lone_server(tmp_path, "redeliver", mqtt='ack_wait: "1s", max_ack_pending: 1000')
+    return server, f"mqtt://127.0.0.1:{port + 1}"
 
 
 def _link(url: str, inbox: Inbox, client_id: str) -> MqttLink:
