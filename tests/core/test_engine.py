@@ -222,6 +222,52 @@ def test_constant_readings_do_not_break_the_engine() -> None:
     assert recs[1].shift_at == t[700]
 
 
+def _reviewers_history(n: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    """A fresh reviewer's random history (AR(1) noise with phi -0.5, steps, lone spikes and
+    runs of them, stoppages, a jittery clock), drawn in the order the reviewer's script drew it."""
+    w = rng.standard_normal(n)
+    e = np.empty(n)
+    e[0] = w[0]
+    for i in range(1, n):
+        e[i] = -0.5 * e[i - 1] + w[i]
+    x = 50.0 + 0.8 * e
+    for _ in range(int(rng.integers(0, 5))):
+        at = int(rng.integers(100, n))
+        x[at:] += float(rng.choice([-1.0, 1.0])) * float(rng.uniform(0.5, 6.0))
+    for at in rng.integers(0, n, size=int(rng.integers(0, 25))):
+        ln = int(rng.choice([1, 1, 1, 2, 3, 5]))
+        alt = rng.random() < 0.5
+        sg = float(rng.choice([-1.0, 1.0]))
+        for j in range(ln):
+            if at + j < n:
+                x[at + j] += (sg if not alt or j % 2 == 0 else -sg) * float(rng.uniform(6.0, 30.0))
+    dt = np.ones(n)
+    for at in rng.integers(1, n, size=int(rng.integers(0, 8))):
+        dt[at] = float(rng.choice([2.0, 7.0, 9.99, 10.0, 11.0, 45.0, 3600.0]))
+    if rng.random() < 0.3:
+        dt *= rng.uniform(0.8, 1.2, n)
+    return 1_788_000_000.0 + np.cumsum(dt), x
+
+
+@pytest.mark.parametrize("batch", [10_000, 260, 1])
+def test_a_young_trip_on_too_few_samples_to_fit_waits_for_them(batch: int) -> None:
+    """A young level re-anchored after a confirmed step tripped its test 3 samples in, with 4
+    samples in the window; opening the event raised ValueError from the step fit (it needs 5),
+    though process() must not raise on data.  Now the event opens once the fit can be made:
+    the step confirmed at +1,573 s is followed by a return detected at +1,577 s, the same for
+    any batching."""
+    rng = np.random.default_rng(716)
+    assert str(rng.choice(["iid", "ar", "ar_hi", "ar_neg", "t3", "quant", "int", "flat"])) == "ar_neg"
+    t, x = _reviewers_history(int(rng.integers(300, 7000)), rng)
+    eng = StreamEngine("s", DetectionSettings(min_sigma=0.05, false_alarm_every=3600.0))
+    records = []
+    for a in range(0, t.shape[0], batch):
+        records += eng.process(t[a:a + batch], x[a:a + batch]).records
+    seen = [(r.phase, round(r.detected_at - 1_788_000_000.0)) for r in records]
+    assert seen[4:8] == [("detected", 1573), ("confirmed", 1573), ("detected", 1577), ("returned", 1577)]
+    assert eng.samples_total == t.shape[0]
+
+
 def test_a_step_inside_the_first_warmup_is_reported_and_the_warmup_goes_on() -> None:
     # The self-starting test watches the first warm-up: a step at sample 60 of
     # a new stream is detected and confirmed at once, and the warm-up goes on

@@ -474,6 +474,10 @@ YOUNG_SPLIT_GATE = 3.0
 #: StreamEngine._watch_young_fast) on batches of at least this many samples, at most this
 #: many rows at a time.
 SPLIT_DEFER_FROM = 16
+#: The shortest segment an event's step fit allows on each side of the step, and the
+#: fewest samples it can fit (``StepFitter``: at least 2 * min_segment + 1).
+FIT_MIN_SEGMENT = 2
+FIT_MIN = 2 * FIT_MIN_SEGMENT + 1
 #: A segment that holds an outlier is split at its outliers only
 #: (StreamEngine._split_spikes_sparse); False: the reference's passes over the segment.
 SPARSE_SPIKES = True
@@ -1562,9 +1566,17 @@ class StreamEngine:
         return False
 
     def _young_event(self, detected_at: float, result: BatchResult, as_of: float) -> None:
-        """Open an event from the young phase, the baseline standing at the young level."""
+        """Open an event from the young phase, the baseline standing at the young level.
+
+        A young level re-anchored after an event can trip its test within a few
+        samples; while the window holds fewer than the step fit needs (``FIT_MIN``),
+        no event opens and the young phase goes on: its test's sums stay over the
+        limit, so it trips again as the next samples come unless they pull it back.
+        """
         ys = self._young
         assert ys is not None
+        if len(self._window) < FIT_MIN:
+            return
         b = self._baseline
         split, self._split = self._split, None
         if b is None:
@@ -1925,7 +1937,7 @@ class StreamEngine:
     def _fit(self, b: Baseline) -> StepFit:
         """Fit the step over the event's window, reusing the fitter's running sums."""
         assert self._fitter is not None
-        return self._fitter.fit(level=self.settings.interval_level, min_segment=2,
+        return self._fitter.fit(level=self.settings.interval_level, min_segment=FIT_MIN_SEGMENT,
                                 variance_factor=_variance_factor(b.phi))
 
     def _track(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
