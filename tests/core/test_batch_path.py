@@ -22,6 +22,7 @@ import pytest
 from shiftwatch.core import engine
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.multicusum import MultiCusumTest
+from shiftwatch.core.screen import screen_samples
 from shiftwatch.core.settings import DetectionSettings
 
 from .batches import noise, run_in_batches
@@ -80,13 +81,13 @@ def test_batch_path_equals_the_reference(kind: str) -> None:
         fast = run_in_batches(StreamEngine("s"), t, x, cuts, SWITCHES, True)
         ref = run_in_batches(StreamEngine("s"), t, x, cuts, SWITCHES, False)
         assert fast == ref
-        assert fast["states"]
+        assert len(fast["states"]) == len(cuts) + 1  # a state after every batch was compared
 
 
 @pytest.mark.parametrize("switch", SWITCHES)
 def test_each_switch_alone(switch: str) -> None:
-    # One fast path at a time against the reference, on other settings too (a shorter
-    # guard and window, the single CUSUM and the GLR).
+    # One fast path at a time against the reference, with the other tests too (the single
+    # CUSUM and the GLR).
     rng = np.random.default_rng(31)
     for test_name, settings in (("multi_cusum", DetectionSettings()),
                                 ("cusum", DetectionSettings(test="cusum")),
@@ -172,3 +173,29 @@ def test_follower_single_block_equals_its_loop() -> None:
             u = (1.0 - lam) * u + lam * v
             rec.append(u)
         assert np.allclose(got, rec, rtol=0.0, atol=1e-11 * (1.0 + float(np.abs(r).max(initial=0.0))))
+
+
+def test_a_float_batch_is_screened_as_an_object_batch_is() -> None:
+    # screen_samples checks a float64 batch on the array as it is; the same values as an
+    # object array go through the per-value conversion with validity masks (the path the
+    # decoders' mixed payloads take): the same kept samples and the same rejections, on
+    # batches full of what must be set aside (NaN, infinities, values past 1e150 in
+    # magnitude, repeated and earlier times).  IEEE 754 doubles: -0.0 == 0.0, NaN fails
+    # every comparison.
+    rng = np.random.default_rng(47)
+    specials = [np.nan, np.inf, -np.inf, 1e200, -1e200, 1e150, -1e150, np.nextafter(1e150, np.inf),
+                -np.nextafter(1e150, np.inf), -0.0]
+    for _ in range(3000):
+        n = int(rng.integers(0, 40))
+        x = 50.0 + rng.standard_normal(n)
+        for at in rng.integers(0, max(n, 1), size=int(rng.integers(0, 6))):
+            if n:
+                x[at] = specials[int(rng.integers(0, len(specials)))]
+        t = 1_788_000_000.0 + np.cumsum(rng.choice([1.0, 1.0, 1.0, 0.0, -2.0], size=n))
+        last = float(rng.choice([-np.inf, 1_787_999_999.0, 1_788_000_003.0]))
+        got = screen_samples(t, x, last_time=last)
+        want = screen_samples(t.astype(object), x.astype(object), last_time=last)
+        assert got.times.tobytes() == np.asarray(want.times, dtype=np.float64).tobytes()
+        assert got.values.tobytes() == np.asarray(want.values, dtype=np.float64).tobytes()
+        assert got.rejected == want.rejected
+        assert np.asarray(got.kept).tolist() == np.asarray(want.kept).tolist()
