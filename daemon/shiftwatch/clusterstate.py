@@ -293,7 +293,8 @@ class JournalRound:
         results: list[tuple[JournalGroup, int | None]] = []
         try:
             for f in self._futs:
-                results += self.cs.io.result(f, max(0.0, deadline - time.monotonic()))
+                # (at least a moment: a timeout of 0 would mean the client's whole timeout)
+                results += self.cs.io.result(f, max(0.05, deadline - time.monotonic()))
         except ClusterError:
             for f in self._futs:
                 f.cancel()

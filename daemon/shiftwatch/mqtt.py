@@ -501,10 +501,11 @@ class MqttLink:
         self._last_error: str | None = None
         self._failed_attempts = 0
         # Packet ids of the QoS 1 messages handed to the inbox and not yet acknowledged
-        # (added by paho's thread, removed by whichever thread acknowledges).  A broker
-        # that sends such a message again (DUP set, the same packet id) while this
-        # daemon still holds the first copy gets the first copy's PUBACK; the second
-        # copy is skipped (see _handle_message).
+        # on this connection (added by paho's thread, removed by whichever thread
+        # acknowledges, emptied at each connect).  A broker that sends such a message
+        # again (DUP set, the same packet id) while this daemon still holds the first
+        # copy gets the first copy's PUBACK; the second copy is skipped (see
+        # _handle_message).
         self._unacked: set[int] = set()
         #: Copies skipped that way (a count for tests and benchmarks).
         self.redeliveries_skipped = 0
@@ -724,6 +725,12 @@ class MqttLink:
         with self._lock:
             self._sub_mids.clear()  # SUBACKs of an earlier connection never come
             self._sub_added.clear()  # every filter is subscribed afresh: nothing to announce
+        # A copy is skipped only within the connection that brought the first: a broker
+        # that was restarted (a NATS server killed and started again) may number what it
+        # sends again anew, and a packet id this daemon still holds from the connection
+        # before could then stand for another message, which would never be processed.
+        # Copies after a reconnect are processed (their samples set aside as duplicates).
+        self._unacked.clear()
         for f in self.subscriptions:
             self._subscribe(client, f)
         info = client.publish(self.status_topic, b"online", qos=1, retain=True)
@@ -820,8 +827,8 @@ class MqttLink:
                 topic = topic[len(self._strip):]
             if msg.qos == 1:
                 if msg.dup and msg.mid in self._unacked:
-                    # A copy the broker sent again (NATS does after its ack_wait, Mosquitto
-                    # after a reconnect) of a message this daemon holds unacknowledged: the
+                    # A copy the broker sent again on this connection (NATS does after its
+                    # ack_wait) of a message this daemon holds unacknowledged: the
                     # first copy's PUBACK acknowledges both.  Processing the copy too would
                     # cost a decode and an engine call for samples set aside as duplicates,
                     # and its PUBACK could come after the broker gave the id to another message.
