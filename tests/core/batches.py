@@ -35,6 +35,16 @@ def noise(kind: str, n: int, rng: np.random.Generator) -> np.ndarray:
     raise ValueError(kind)
 
 
+def steps_of(n: int, rng: np.random.Generator, most: int) -> list[int]:
+    """Cuts that split ``n`` samples into batches of 1 to ``most - 1`` samples each."""
+    out, at = [], 0
+    while True:
+        at += int(rng.integers(1, most))
+        if at >= n:
+            return out
+        out.append(at)
+
+
 def run_in_batches(eng: StreamEngine, t: np.ndarray, x: np.ndarray, cuts: list[int],
                    switch: str | tuple[str, ...], on: bool) -> dict[str, Any]:
     """Feed ``eng`` the batches ``x[a:b]`` between ``cuts`` with ``engine.<switch>`` (or each

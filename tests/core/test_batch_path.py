@@ -25,7 +25,7 @@ from shiftwatch.core.multicusum import MultiCusumTest
 from shiftwatch.core.screen import screen_samples
 from shiftwatch.core.settings import DetectionSettings
 
-from .batches import noise, run_in_batches
+from .batches import noise, run_in_batches, steps_of
 
 T0 = 1_788_000_000.0
 
@@ -61,13 +61,8 @@ def _cuts(n: int, rng: np.random.Generator) -> list[int]:
         return list(range(260, n, 260))  # JSON arrays of 260 samples
     if mode == 2:
         return sorted({int(v) for v in rng.integers(1, n, size=int(rng.integers(1, 40)))})
-    if mode == 3:  # batches of 1 to 300 samples
-        out, at = [], 0
-        while True:
-            at += int(rng.integers(1, 300))
-            if at >= n:
-                return out
-            out.append(at)
+    if mode == 3:  # batches of 1 to 299 samples
+        return steps_of(n, rng, 300)
     return []
 
 

@@ -22,7 +22,7 @@ from shiftwatch.core import engine
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.settings import DetectionSettings
 
-from .batches import noise, run_in_batches
+from .batches import noise, run_in_batches, steps_of
 
 T0 = 1_788_000_000.0
 
@@ -54,12 +54,7 @@ def _cuts(n: int, rng: np.random.Generator) -> list[int]:
     if mode == 1:  # a few random cuts
         return sorted({int(v) for v in rng.integers(1, n, size=int(rng.integers(1, 8)))})
     if mode == 2:  # small batches throughout
-        out, at = [], 0
-        while True:
-            at += int(rng.integers(1, 12))
-            if at >= n:
-                return out
-            out.append(at)
+        return steps_of(n, rng, 12)
     return list(range(4096, n, 4096)) or [n // 2]
 
 
