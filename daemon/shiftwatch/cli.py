@@ -109,6 +109,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
 
 
 def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
+    from shiftwatch import heap
     from shiftwatch.replay import CsvFormatError, default_jobs, replay_files
     from shiftwatch.sources import open_sources, time_zone
 
@@ -144,6 +145,7 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
     shown = (label_for, show_tz)
     if args.dask is not None:
         return _replay_on_dask(args, cfg, report, settings_for, unit_for, sources, shown)
+    heap.keep_freed_memory()  # a chunk's arrays reuse the last one's pages (see shiftwatch.heap)
     bar = progress_bar(_input_bytes(args.csv), "replay", "B", minimum=PROGRESS_MIN_BYTES)
     try:
         result = replay_files(args.csv, settings_for, unit_for, jobs=jobs, timezone=in_tz, sources=sources,

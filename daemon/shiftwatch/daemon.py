@@ -29,6 +29,7 @@ from typing import Any, Literal
 
 import numpy as np
 
+from shiftwatch import heap
 from shiftwatch.config import Config, ConfigError, StreamConfig, load_config, topic_matches
 from shiftwatch.core.calm import CalmPool
 from shiftwatch.core.engine import ADVISORY, AlertRecord, StreamEngine
@@ -1109,7 +1110,7 @@ class Daemon:
             return
         self._last_trim = now
         self._trim_pending = False
-        trim = _malloc_trim()
+        trim = heap.malloc_trim()
         if trim is not None:
             trim(0)
 
@@ -2155,15 +2156,6 @@ def _six(x: float | None) -> float | None:
     if x is None or x == 0 or not np.isfinite(x):
         return x
     return float(f"{x:.6g}")
-
-
-def _malloc_trim() -> Any:
-    try:
-        import ctypes
-
-        return ctypes.CDLL("libc.so.6").malloc_trim
-    except (OSError, AttributeError):
-        return None
 
 
 def _one_line(exc: BaseException, limit: int = 300) -> str:

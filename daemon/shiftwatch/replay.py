@@ -13,6 +13,8 @@ With ``jobs`` > 1 the streams are split over that many processes (by a hash
 of the name).  Each process parses every ``jobs``-th chunk and hands the
 rows of streams it does not own to their owners, which process the chunks
 in file order: the records and problems are the same as in one process.
+The rows handed over go through memory the processes share (a few slots
+per pair of processes, mapped before they start), not through a pipe.
 
 Bad rows are reported as ``file:line: problem`` (Parquet: file, row group,
 row and column) and skipped; everything good is still processed.  The
@@ -23,6 +25,7 @@ engines' per stream in name order).
 
 from __future__ import annotations
 
+import mmap
 import os
 import queue
 import traceback
@@ -343,11 +346,59 @@ _END = "end"
 
 #: Chunks a process parses ahead of what it feeds, while it waits for another's chunk.
 LOOKAHEAD = 2
+#: Bytes of a shared slot per byte of a chunk: a row handed over takes 24 bytes (time, value,
+#: place) and a CSV row at least 6 (``t,s,v`` and its line end), so a slot this size holds any
+#: share of a chunk whose lines are of at least ``24 / SLOT_SCALE`` bytes.  A share that does
+#: not fit (shorter lines, a Parquet row group) goes through the pipe instead.
+SLOT_SCALE = 2
+
+
+class _Slots:
+    """Shared memory in which one process hands chunk shares to another: LOOKAHEAD + 2 slots,
+    used in turn.  The sender fills a slot before its message waits for room in the queue,
+    which holds at most LOOKAHEAD messages: then the receiver may still be copying out the
+    message before those, and has copied out every earlier one (it copies a share out before
+    it asks for the next message).  So the slot filled is never one still being read."""
+
+    def __init__(self, slot_bytes: int) -> None:
+        self.count = LOOKAHEAD + 2
+        self.rows = max(1, slot_bytes // 24)
+        self.mem = mmap.mmap(-1, self.count * self.rows * 24)  # anonymous and shared: kept across fork
+        self.next = 0
+
+    def view(self, slot: int, rows: int) -> tuple[FloatArray, FloatArray, IntArray]:
+        base = slot * self.rows * 24
+        t = np.frombuffer(self.mem, np.float64, rows, base)
+        v = np.frombuffer(self.mem, np.float64, rows, base + 8 * self.rows)
+        p = np.frombuffer(self.mem, np.int64, rows, base + 16 * self.rows)
+        return t, v, p
+
+    def put(self, parts: list[tuple[str, FloatArray, FloatArray, IntArray]]) -> tuple[Any, ...]:
+        """The message that hands ``parts`` over: written into the next slot, or packed whole
+        (:func:`_pack`) when they do not fit."""
+        rows = sum(p[1].shape[0] for p in parts)
+        if not parts or rows > self.rows:
+            return _pack(parts)
+        slot = self.next
+        self.next = (slot + 1) % self.count
+        t, v, p = self.view(slot, rows)
+        np.concatenate([q[1] for q in parts], out=t)
+        np.concatenate([q[2] for q in parts], out=v)
+        np.concatenate([q[3] for q in parts], out=p)
+        return ("slot", slot, tuple(q[0] for q in parts), tuple(q[1].shape[0] for q in parts))
+
+    def take(self, msg: tuple[Any, ...]) -> list[tuple[str, FloatArray, FloatArray, IntArray]]:
+        """The parts a message hands over, each in arrays of its own."""
+        if msg[0] != "slot":
+            return _unpack(msg)
+        _, slot, names, counts = msg
+        t, v, p = self.view(slot, sum(counts))
+        return _unpack((names, counts, t, v, p))
 
 
 def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_for: Any,
             trace_options: dict[str, int] | None, tz: tzinfo | None, plan: Any, pairs: dict[tuple[int, int], Any],
-            results: Any, done: Any) -> None:
+            slots: dict[tuple[int, int], _Slots], results: Any, done: Any) -> None:
     """Process ``me`` of ``jobs``: parse chunks ``me``, ``me + jobs``, ... and pass their rows on to
     the streams' owners; feed its own streams every chunk's rows in chunk order.
 
@@ -377,7 +428,7 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
                 split[_owner(part[0], jobs)].append(part)
             for j in range(jobs):
                 if j != me:
-                    pairs[me, j].put(_pack(split[j]))
+                    pairs[me, j].put(slots[me, j].put(split[j]))
             own.append((block.index, split[me]))
             next_own += jobs
             with done.get_lock():
@@ -403,7 +454,7 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
                     got = pairs[owner, me].get()
                 if isinstance(got, str):  # _END: the owner had no chunk k, there are k chunks
                     break
-                feeder.add(_unpack(got))
+                feeder.add(slots[owner, me].take(got))
             k += 1
         results.put(("ok", me, feeder.finish(), feeder.read_summary()))
         for f in opened.values():
@@ -446,10 +497,11 @@ def _replay_in_processes(sources: list[Source], settings_for: Any, unit_for: Any
     ctx = multiprocessing.get_context("fork")  # the workers inherit the settings and the opened files
     plans = [ctx.Queue(maxsize=4) for _ in range(jobs)]
     pairs = {(a, b): ctx.Queue(maxsize=LOOKAHEAD) for a in range(jobs) for b in range(jobs) if a != b}
+    slots = {pair: _Slots(int(SLOT_SCALE * chunk_bytes)) for pair in pairs}
     results = ctx.Queue()
     done = ctx.Value("q", 0)
     procs = [ctx.Process(target=_worker, args=(i, jobs, sources, settings_for, unit_for, trace_options, tz,
-                                                plans[i], pairs, results, done), daemon=True)
+                                                plans[i], pairs, slots, results, done), daemon=True)
              for i in range(jobs)]
     for p in procs:
         p.start()

@@ -77,6 +77,51 @@ def test_any_chunking_and_any_number_of_processes_give_the_same_replay(messy: Pa
         {n: (o.samples_total, o.records_total, o.rejected_total) for n, o in whole.streams.items()}
 
 
+@pytest.mark.parametrize("slot_scale", [0, 0.18])
+def test_shares_that_do_not_fit_a_shared_slot_go_through_the_pipe_and_change_nothing(
+        messy: Path, slot_scale: float, monkeypatch: pytest.MonkeyPatch) -> None:
+    # Slots of one row (every share through the pipe) and of 30 (a chunk of 4,099 bytes holds
+    # about 80 rows: with 2 processes most shares do not fit, with 3 most do).  The processes
+    # are forked after the slots are made, so they take these sizes.
+    from shiftwatch import replay
+
+    monkeypatch.setattr(replay, "SLOT_SCALE", slot_scale)
+    whole = replay_files([messy], jobs=1, chunk_bytes=1 << 30)
+    for jobs in (2, 3):
+        res = replay_files([messy], jobs=jobs, chunk_bytes=4099)
+        assert json_lines(res.records) == json_lines(whole.records)
+        assert res.problems == whole.problems and res.rows == whole.rows
+
+
+def test_a_shared_slot_hands_over_copies_of_the_rows_and_is_used_in_turn() -> None:
+    import numpy as np
+
+    from shiftwatch.replay import LOOKAHEAD, _Slots
+
+    slots = _Slots(24 * 100)  # 100 rows
+    rng = np.random.default_rng(5)
+
+    def parts(sizes: list[int]) -> list[tuple[str, np.ndarray, np.ndarray, np.ndarray]]:
+        return [(f"brackenfield/s{k}", rng.random(n), rng.random(n), rng.integers(0, 1 << 40, n))
+                for k, n in enumerate(sizes)]
+
+    used = []
+    for sizes in ([30, 70], [1], [50, 50], [99], [60, 41], []):
+        sent = parts(sizes)
+        msg = slots.put(sent)
+        fits = 0 < sum(sizes) <= 100
+        assert (msg[0] == "slot") == fits, sizes
+        if fits:
+            used.append(msg[1])
+        got = slots.take(msg)
+        assert [g[0] for g in got] == [s[0] for s in sent]
+        for g, s in zip(got, sent):
+            for a, b in zip(g[1:], s[1:]):
+                assert a.dtype == b.dtype and np.array_equal(a, b)
+                assert a.flags.owndata  # a copy, not a view of the slot the next share overwrites
+    assert used == [k % (LOOKAHEAD + 2) for k in range(len(used))]
+
+
 def test_problems_are_counted_all_and_kept_first(tmp_path: Path) -> None:
     # Sixty unreadable rows in three files: the first KEEP_PROBLEMS in file order, all counted.
     paths = []
