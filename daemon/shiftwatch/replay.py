@@ -346,10 +346,12 @@ _END = "end"
 
 #: Chunks a process parses ahead of what it feeds, while it waits for another's chunk.
 LOOKAHEAD = 2
-#: Bytes of a shared slot per byte of a chunk: a row handed over takes 24 bytes (time, value,
-#: place) and a CSV row at least 6 (``t,s,v`` and its line end), so a slot this size holds any
-#: share of a chunk whose lines are of at least ``24 / SLOT_SCALE`` bytes.  A share that does
-#: not fit (shorter lines, a Parquet row group) goes through the pipe instead.
+#: A shared slot holds this many times an even share (1 / jobs) of a chunk of CSV lines of
+#: 12 bytes (a row handed over takes 24 bytes: time, value, place).  With 2 processes a slot
+#: takes any share of a chunk of lines of 12 bytes or more; with more processes, the shares
+#: of up to SLOT_SCALE times the even share, so the mapping stays (jobs - 1) x 16 chunks in all.
+#: A share that does not fit (short lines, rows grouped by stream, a Parquet row group) goes
+#: through the pipe instead.
 SLOT_SCALE = 2
 
 
@@ -497,7 +499,7 @@ def _replay_in_processes(sources: list[Source], settings_for: Any, unit_for: Any
     ctx = multiprocessing.get_context("fork")  # the workers inherit the settings and the opened files
     plans = [ctx.Queue(maxsize=4) for _ in range(jobs)]
     pairs = {(a, b): ctx.Queue(maxsize=LOOKAHEAD) for a in range(jobs) for b in range(jobs) if a != b}
-    slots = {pair: _Slots(int(SLOT_SCALE * chunk_bytes)) for pair in pairs}
+    slots = {pair: _Slots(int(SLOT_SCALE * 2 * chunk_bytes / jobs)) for pair in pairs}
     results = ctx.Queue()
     done = ctx.Value("q", 0)
     procs = [ctx.Process(target=_worker, args=(i, jobs, sources, settings_for, unit_for, trace_options, tz,
