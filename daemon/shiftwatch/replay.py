@@ -14,7 +14,8 @@ of the name).  Each process parses every ``jobs``-th chunk and hands the
 rows of streams it does not own to their owners, which process the chunks
 in file order: the records and problems are the same as in one process.
 The rows handed over go through memory the processes share (a few slots
-per pair of processes, mapped before they start), not through a pipe.
+per pair of processes, mapped before they start); only their names and
+counts, and shares too large for a slot, go through a pipe.
 
 Bad rows are reported as ``file:line: problem`` (Parquet: file, row group,
 row and column) and skipped; everything good is still processed.  The
@@ -292,7 +293,8 @@ def replay_files(paths: Iterable[str | Path], settings_for: Callable[[str], Dete
     ----------
     paths : the files, read in this order; a directory stands for its files.
     settings_for, unit_for : detection settings and unit per stream (defaults without).
-    jobs : processes to split the streams over (1: this process).
+    jobs : processes to split the streams over (1: this process); fewer when the open-file
+        limit cannot hold their queues (see :func:`_jobs_the_files_allow`).
     layout : ``auto``, ``long`` or ``wide``.
     timezone : IANA name (or tzinfo) for times without a UTC offset; they are refused without it.
     trace_options : when given, each stream's :class:`shiftwatch.report.StreamTrace` is built
@@ -312,6 +314,7 @@ def replay_files(paths: Iterable[str | Path], settings_for: Callable[[str], Dete
         settings_for = lambda stream: defaults
     if unit_for is None:
         unit_for = lambda stream: None
+    jobs = _jobs_the_files_allow(jobs)
     if jobs <= 1 or _small(sources, chunk_bytes):
         feeder = _Feeder(sources, settings_for, unit_for, trace_options)
         for task in tasks(sources, tz, chunk_bytes):
@@ -322,6 +325,46 @@ def replay_files(paths: Iterable[str | Path], settings_for: Callable[[str], Dete
                 progress(block.nbytes)
         return _merge([(feeder.finish(), feeder.read_summary())])
     return _replay_in_processes(sources, settings_for, unit_for, trace_options, tz, jobs, progress, chunk_bytes)
+
+
+#: Open files the parent keeps besides its queues' pipes (the files read, standard streams,
+#: the interpreter's own), and the open files each queue takes (the two ends of its pipe).
+SPARE_FILES = 64
+FILES_PER_QUEUE = 2
+
+
+def _jobs_the_files_allow(jobs: int) -> int:
+    """``jobs``, or fewer when the open-file limit cannot hold their queues.
+
+    N processes take a queue for each ordered pair of them, N for the plans and one for the
+    results: 2 (N^2 + 1) open files in every process.  With 1,024 (a common soft limit) that
+    stops at 22 processes; the soft limit is raised towards the hard one as far as needed,
+    and where the hard limit is lower still the replay runs in as many processes as it
+    allows (the records do not depend on their number).
+    """
+    if jobs <= 1:
+        return jobs
+    try:
+        import resource
+    except ImportError:  # not on a Unix
+        return jobs
+
+    def need(n: int) -> int:
+        return FILES_PER_QUEUE * (n * n + 1) + SPARE_FILES
+
+    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    if soft != resource.RLIM_INFINITY and soft < need(jobs):
+        want = need(jobs) if hard == resource.RLIM_INFINITY else min(hard, need(jobs))
+        try:
+            resource.setrlimit(resource.RLIMIT_NOFILE, (want, hard))
+            soft = want
+        except (ValueError, OSError):
+            pass
+    if soft == resource.RLIM_INFINITY:
+        return jobs
+    while jobs > 1 and need(jobs) > soft:
+        jobs -= 1
+    return jobs
 
 
 def _small(sources: list[Source], chunk_bytes: int) -> bool:
@@ -365,7 +408,11 @@ class _Slots:
     def __init__(self, slot_bytes: int) -> None:
         self.count = LOOKAHEAD + 2
         self.rows = max(1, slot_bytes // 24)
-        self.mem = mmap.mmap(-1, self.count * self.rows * 24)  # anonymous and shared: kept across fork
+        try:
+            self.mem = mmap.mmap(-1, self.count * self.rows * 24)  # anonymous and shared: kept across fork
+        except OSError:  # no address space or commit left for it (ulimit -v, strict overcommit)
+            self.rows = 0  # every share goes through the pipe
+            self.mem = mmap.mmap(-1, mmap.PAGESIZE)
         self.next = 0
 
     def view(self, slot: int, rows: int) -> tuple[FloatArray, FloatArray, IntArray]:

@@ -123,6 +123,53 @@ def test_a_shared_slot_hands_over_copies_of_the_rows_and_is_used_in_turn() -> No
     assert used == [k % (LOOKAHEAD + 2) for k in range(len(used))]
 
 
+def test_a_replay_whose_shared_slots_cannot_be_mapped_hands_every_share_through_the_pipe(
+        messy: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # As under ``ulimit -v`` or strict overcommit: every mapping of the slots' size fails.
+    import mmap
+
+    from shiftwatch import replay
+
+    real = mmap.mmap
+
+    def refuse(fileno: int, length: int, *args: object, **kw: object) -> mmap.mmap:
+        if length > mmap.PAGESIZE:
+            raise OSError(12, "Cannot allocate memory")
+        return real(fileno, length, *args, **kw)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(mmap, "mmap", refuse)
+    assert replay._Slots(1 << 20).rows == 0
+    whole = replay_files([messy], jobs=1, chunk_bytes=1 << 30)
+    res = replay_files([messy], jobs=2, chunk_bytes=4099)
+    assert json_lines(res.records) == json_lines(whole.records) and res.problems == whole.problems
+
+
+LOW_FILE_LIMIT = textwrap.dedent("""
+    import resource, sys
+    resource.setrlimit(resource.RLIMIT_NOFILE, (int(sys.argv[1]), int(sys.argv[2])))
+    from shiftwatch.cli import main
+    code = main(sys.argv[3:])
+    print("limit", *resource.getrlimit(resource.RLIMIT_NOFILE), file=sys.stderr)
+    sys.exit(code)
+""")
+
+
+def test_more_processes_than_the_open_file_limit_holds_replay_in_as_many_as_it_does(tmp_path: Path) -> None:
+    # N processes keep 2 (N^2 + 1) pipe ends open in each (getrlimit(2): RLIMIT_NOFILE); with a
+    # hard limit of 200, 12 processes would need 290 and failed with "Too many open files".
+    path = write_long(tmp_path / "line3.csv", readings(30_000))
+    one = subprocess.run([sys.executable, "-m", "shiftwatch", "replay", "--jobs", "1", str(path)],
+                         check=False, capture_output=True, text=True, timeout=300)
+    assert one.returncode == 0, one.stderr
+    for soft, hard in ((200, 200), (64, 4096)):
+        res = subprocess.run([sys.executable, "-c", LOW_FILE_LIMIT, str(soft), str(hard), "replay", "--jobs", "12",
+                              str(path)], check=False, capture_output=True, text=True, timeout=300)
+        assert res.returncode == 0, res.stderr[-2000:]
+        assert res.stdout == one.stdout
+        # A soft limit below the hard one is raised as far as the processes need (2 x 145 + 64).
+        assert f"limit {min(hard, 354)} {hard}" in res.stderr
+
+
 def test_problems_are_counted_all_and_kept_first(tmp_path: Path) -> None:
     # Sixty unreadable rows in three files: the first KEEP_PROBLEMS in file order, all counted.
     paths = []
