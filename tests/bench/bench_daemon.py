@@ -286,7 +286,7 @@ def role_sub(a: argparse.Namespace) -> int:
 
     def on_message(client: Any, userdata: Any, msg: Any) -> None:
         now = time.time()
-        if state["n"] == 0:
+        if state["n"] == a.skip:  # the first message timed (--skip: the warm-up's are not)
             state["first"] = now
         state["n"] += 1
         state["last"] = now
@@ -750,15 +750,16 @@ def batch_bare(bench: Bench, streams: int, batch: int, rounds: int) -> dict[str,
     b = bench.broker()
     try:
         n = streams * rounds
+        skip = streams * BATCH_WARM_ROUNDS
         sub = bench.helper("--role", "sub", "--port", str(b.port), "--filter", "bench/+/v",
-                           "--count", str(n), "--idle", "15", "--timeout", "300")
+                           "--count", str(n), "--idle", "15", "--skip", str(skip), "--timeout", "300")
         wait_line(sub, "ready", 30)
         pubs = start_publishers(bench, b, streams, 0, mode="batch", batch=batch, batches=rounds, timeout=300)
         go(pubs)
         finish_publishers(bench, pubs, 300)
         r = read_json_line(sub, 300)
         bench.stop_proc(sub, 10)
-        rate = (r["count"] - 1) * batch / max(r["t_last"] - r["t_first"], 1e-9)
+        rate = (r["count"] - skip - 1) * batch / max(r["t_last"] - r["t_first"], 1e-9)
         return {"rate": rate, "count": r["count"], "expected": n}
     finally:
         bench.stop_broker(b)
@@ -1170,7 +1171,7 @@ def main() -> int:
     for opt, typ, default in (("--port", int, 0), ("--prefix", str, "bench"), ("--first", int, 0),
                               ("--last", int, 0), ("--count", int, 0), ("--mode", str, "single"),
                               ("--batch", int, 1), ("--batches", int, 1), ("--filter", str, "bench/+/v"),
-                              ("--idle", float, 15.0), ("--timeout", float, 300.0), ("--streams", int, 50),
+                              ("--idle", float, 15.0), ("--skip", int, 0), ("--timeout", float, 300.0), ("--streams", int, 50),
                               ("--rate", float, 1000.0), ("--duration", float, 30.0), ("--warmup", float, 9.0),
                               ("--round-s", float, 10.0), ("--stagger", float, 0.1), ("--rounds", int, 2),
                               ("--step", float, 3.0), ("--out", str, "")):
