@@ -34,9 +34,10 @@ process (the publisher, the bare subscribers, the /metrics poller), and the
 machine's busy time from /proc/stat, whose rest is other work sharing the
 machine.  Reported: samples per CPU-second of the shard process itself (and
 without its two /metrics threads, which serve the poller), the shard's CPU by
-thread (names from ``py-spy dump`` when py-spy is installed), the NATS
-servers' CPU-seconds per million samples, each one's share of the machine's
-cores, and the load average.
+thread (names from ``py-spy dump`` when py-spy is installed), how the shard's
+main thread spent the interval (on a core, runnable but waiting for a core,
+asleep: the kernel's schedstat), the NATS servers' CPU-seconds per million
+samples, each one's share of the machine's cores, and the load average.
 
 Ratios only, each against a baseline measured in the same run: the machine
 (2 cores) is shared, so absolute rates move from run to run.  With --repeat the
@@ -97,6 +98,9 @@ class CpuReading:
     at: float
     groups: dict[str, float]
     threads: dict[int, float]
+    #: The shards' main threads: seconds on a core and seconds runnable but waiting for one.
+    ran: float
+    queued: float
     busy: float
     load: float
 
@@ -111,6 +115,8 @@ class CpuSpent:
     #: The shards' threads (by thread id), and which of them are their main threads.
     threads: dict[int, float]
     mains: list[int]
+    ran: float
+    queued: float
     busy: float
     load: float
     #: Thread names by thread id, when py-spy could tell them.
@@ -140,6 +146,14 @@ class CpuSpent:
             total[name] = total.get(name, 0.0) + cpu
         return total
 
+    def main_split(self) -> tuple[float, float, float]:
+        """The shards' main threads' wall time (per shard) as parts: on a core, runnable but
+        waiting for a core (the machine too busy), asleep (waiting for messages or for the
+        cluster's acknowledgements)."""
+        wall = self.wall * max(len(self.mains), 1)
+        ran, queued = self.ran / wall, self.queued / wall
+        return ran, queued, max(1.0 - ran - queued, 0.0)
+
     @property
     def polling(self) -> float:
         """The shards' CPU in the threads that answer the benchmark's /metrics polls."""
@@ -164,6 +178,7 @@ class CpuMeter:
         self.mains = list(threads or [])
         self._last: dict[int, float] = {}
         self._last_threads: dict[int, float] = {}
+        self._last_sched: dict[int, tuple[float, float]] = {}
 
     def _cpu(self, p: psutil.Process) -> float:
         try:
@@ -182,16 +197,30 @@ class CpuMeter:
                 pass
         return dict(self._last_threads)
 
+    def _sched(self) -> tuple[float, float]:
+        """The main threads' time on a core and runnable on a run queue, from the kernel's
+        /proc/<pid>/task/<pid>/schedstat (nanoseconds; psutil does not read it)."""
+        ran = queued = 0.0
+        for pid in self.mains:
+            try:
+                fields = Path(f"/proc/{pid}/task/{pid}/schedstat").read_text().split()
+                self._last_sched[pid] = (int(fields[0]) / 1e9, int(fields[1]) / 1e9)
+            except (OSError, IndexError, ValueError):
+                pass
+            r, q = self._last_sched.get(pid, (0.0, 0.0))
+            ran, queued = ran + r, queued + q
+        return ran, queued
+
     def read(self) -> CpuReading:
         m = psutil.cpu_times()
         busy = m.user + m.nice + m.system + m.irq + m.softirq + m.steal  # guest time is in user
         return CpuReading(time.monotonic(), {k: sum(self._cpu(p) for p in ps) for k, ps in self.procs.items()},
-                          self._threads(), busy, os.getloadavg()[0])
+                          self._threads(), *self._sched(), busy, os.getloadavg()[0])
 
     def spent(self, a: CpuReading, b: CpuReading, samples: float) -> CpuSpent:
         return CpuSpent(b.at - a.at, samples, {k: b.groups[k] - a.groups[k] for k in a.groups},
                         {t: c - a.threads.get(t, 0.0) for t, c in b.threads.items()}, self.mains,
-                        b.busy - a.busy, max(a.load, b.load))
+                        b.ran - a.ran, b.queued - a.queued, b.busy - a.busy, max(a.load, b.load))
 
 
 def thread_names(pid: int) -> dict[int, str]:
@@ -458,9 +487,10 @@ def run_bare(cluster: NatsCluster, parts: int, msgs: list[tuple[str, bytes]], ta
 
 CPU_HEAD = ("| shards | payload | phase | seconds | samples | shard: samples per CPU-second "
             "(without the /metrics threads) | shard: CPU / wall, of one core | shard's CPU by thread | "
+            "shard's main thread: on a core / waiting for a core / asleep | "
             "NATS servers: CPU-s per million samples | this process: CPU-s per million samples | "
             "share of the 2 cores: shard / NATS / this process / other work / idle | load average (1 min) |")
-CPU_RULE = "|---|---|---|---|---|---|---|---|---|---|---|---|"
+CPU_RULE = "|---|---|---|---|---|---|---|---|---|---|---|---|---|"
 
 
 def cpu_rows(parts: int | str, kind: str, phase: str, spent: list[CpuSpent]) -> list[str]:
@@ -474,7 +504,7 @@ def cpu_rows(parts: int | str, kind: str, phase: str, spent: list[CpuSpent]) -> 
         return statistics.median(f(x) for x in spent)
 
     shard = med(lambda x: x.groups["shard"])
-    per_cpu = busy = threads = "-"
+    per_cpu = busy = threads = split = "-"
     if shard > 0:
         per_cpu = (f"{med(lambda x: x.samples / x.groups['shard']):,.0f} "
                    f"({med(lambda x: x.samples / (x.groups['shard'] - x.polling)):,.0f})")
@@ -482,13 +512,14 @@ def cpu_rows(parts: int | str, kind: str, phase: str, spent: list[CpuSpent]) -> 
         names = sorted({n for x in spent for n in x.thread_cpu()})
         parts_of = {n: med(lambda x, n=n: x.thread_cpu().get(n, 0.0) / x.groups["shard"]) for n in names}
         threads = ", ".join(f"{n} {v:.0%}" for n, v in sorted(parts_of.items(), key=lambda x: -x[1]) if v >= 0.005)
+        split = " / ".join(f"{med(lambda x, i=i: x.main_split()[i]):.0%}" for i in range(3))
     shares = " / ".join(f"{med(f):.0%}" for f in (
         lambda x: x.share(x.groups["shard"]), lambda x: x.share(x.groups["nats"]),
         lambda x: x.share(x.groups["bench"]), lambda x: x.share(x.others),
         lambda x: max(1.0 - x.share(x.busy), 0.0)))
     loads = [x.load for x in spent]
     row = (f"| {parts} | {kind} | {phase} | {med(lambda x: x.wall):.2f} | {med(lambda x: x.samples):,.0f} | "
-           f"{per_cpu} | {busy} | {threads} | {med(lambda x: x.groups['nats'] / x.samples * 1e6):.2f} | "
+           f"{per_cpu} | {busy} | {threads} | {split} | {med(lambda x: x.groups['nats'] / x.samples * 1e6):.2f} | "
            f"{med(lambda x: x.groups['bench'] / x.samples * 1e6):.2f} | {shares} | "
            f"{min(loads):.1f} to {max(loads):.1f} |")
     return [row]
@@ -501,7 +532,8 @@ def cpu_line(what: str, x: CpuSpent) -> str:
     return (f"    {what}: {x.wall:.2f} s, {x.samples:,.0f} samples{own}; CPU-s shard {shard:.2f}, "
             f"NATS {x.groups['nats']:.2f}, this process {x.groups['bench']:.2f}, other work {x.others:.2f}, "
             f"machine busy {x.share(x.busy):.0%} of {CORES} cores; load {x.load:.1f}"
-            + (f"\n      the shard's CPU by thread: {x.by_thread()}" if shard > 0 else ""))
+            + (f"\n      the shard's CPU by thread: {x.by_thread()}; its main thread on a core / waiting "
+               "for a core / asleep: " + " / ".join(f"{v:.0%}" for v in x.main_split()) if shard > 0 else ""))
 
 
 def part_throughput(args: argparse.Namespace, work: Path) -> list[str]:
