@@ -41,7 +41,10 @@ samples, each one's share of the machine's cores, and the load average.
 
 Ratios only, each against a baseline measured in the same run: the machine
 (2 cores) is shared, so absolute rates move from run to run.  With --repeat the
-median of the repeats is reported.  Not part of the test suite.
+median of the repeats is reported.  A repeat in which the shards take no sample
+for 60 s (samples set aside, e.g. copies NATS sent again after newer ones after a
+reconnection, never arrive) is reported as not counted, with the shard's log.
+Not part of the test suite.
 """
 
 from __future__ import annotations
@@ -83,6 +86,9 @@ BATCH = 260
 WARM_ROUNDS = 5
 #: How long the bare subscribers may take a backlog before the repeat is not counted.
 BARE_WAIT = 90.0
+#: How long the shards may take no sample of the backlog before the repeat is not counted
+#: (samples set aside, e.g. copies NATS sent again after newer ones, never arrive).
+STALL = 60.0
 #: The machine's cores, the denominator of each process group's share.
 CORES = psutil.cpu_count() or 1
 #: The shard's threads that answer the benchmark's /metrics polls (metrics.py): what they
@@ -397,8 +403,18 @@ def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: li
         # stopped (SIGSTOP, a few seconds: well inside the keepalive and the lease)
         # while the backlog is stored, and go on (SIGCONT) with their engines as they were.
         publish_backlog(cluster.mqtt_url(2), warm)
-        assert wait_until(lambda: taken(ports) >= len(warm) * BATCH, 600, every=0.2), \
-            [logs(k)[-800:] for k in range(parts)]
+        last_n, moved = -1.0, time.monotonic()
+        while (n := taken(ports)) < len(warm) * BATCH:
+            if n != last_n:
+                last_n, moved = n, time.monotonic()
+            elif time.monotonic() - moved > STALL:
+                for p in procs:
+                    p.terminate()
+                    p.wait(60)
+                viewer.stop()
+                raise RuntimeError(f"shards took {n:,.0f} of the {len(warm) * BATCH:,} warm-up samples, none "
+                                   f"for {STALL:.0f} s: {[logs(k)[-1500:] for k in range(parts)]}")
+            time.sleep(0.2)
         time.sleep(1.0)  # the last round's acknowledgements
         base = taken(ports)
         for p in procs:
@@ -419,9 +435,12 @@ def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: li
     done: CpuReading | None = None
     start_count = 0.0
     deadline = time.monotonic() + 600
-    while time.monotonic() < deadline:
+    last_n, moved = -1.0, time.monotonic()
+    while time.monotonic() < deadline and time.monotonic() - moved < STALL:
         n = taken(ports) - base
         now = meter.read()
+        if n != last_n:
+            last_n, moved = n, now.at
         if first is None and n > 0:
             first, start_count = now, n
         if n >= total:
@@ -437,7 +456,8 @@ def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: li
         p.wait(60)
     viewer.stop()
     if first is None or done is None or done.at <= first.at:
-        raise RuntimeError(f"shards did not take the backlog: {[logs(k)[-1500:] for k in range(parts)]}")
+        raise RuntimeError(f"shards took {max(last_n, 0):,.0f} of {total:,} samples, none for {STALL:.0f} s or more: "
+                           f"{[logs(k)[-1500:] for k in range(parts)]}")
     take = meter.spent(first, done, total - start_count)
     take.names = names
     return (total - start_count) / take.wall / per_msg, take, store
@@ -564,8 +584,12 @@ def part_throughput(args: argparse.Namespace, work: Path) -> list[str]:
                     except RuntimeError as exc:
                         print(f"  repeat {rep + 1}: not counted ({exc})", flush=True)
                         continue
+                    try:
+                        r, s_take, s_store = run_shards(work, cluster, parts, "cluster", msgs, tag, warm, batch)
+                    except RuntimeError as exc:
+                        print(f"  repeat {rep + 1}: not counted ({str(exc)[:3000]})", flush=True)
+                        continue
                     rb.append(b)
-                    r, s_take, s_store = run_shards(work, cluster, parts, "cluster", msgs, tag, warm, batch)
                     rs.append(r)
                     stores += [b_store, s_store]
                     bare_takes.append(b_take)
