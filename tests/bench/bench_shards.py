@@ -133,10 +133,6 @@ class CpuSpent:
         return cpu / (self.wall * CORES)
 
     @property
-    def main(self) -> float:
-        return sum(self.threads.get(t, 0.0) for t in self.mains)
-
-    @property
     def others(self) -> float:
         """The machine's busy time that none of the measured groups spent (other work)."""
         return max(self.busy - sum(self.groups.values()), 0.0)
