@@ -27,9 +27,24 @@ new`` measures each stream's first samples, warm-up included (the figures before
 (``ack_wait`` 5 s, ``max_ack_pending`` 4,096; --ack-wait, --max-ack-pending).  ``--part state`` runs one shard over the same backlog with
 ``state.keep: local`` and ``state.keep: cluster`` and reports the ratio.
 
+Where the CPU goes: over each measured interval (the cluster storing a backlog,
+the bare subscribers taking it, the shards taking it) the CPU time (user +
+system, psutil from /proc) of each shard, of each nats-server and of this
+process (the publisher, the bare subscribers, the /metrics poller), and the
+machine's busy time from /proc/stat, whose rest is other work sharing the
+machine.  Reported: samples per CPU-second of the shard process itself (and
+without its two /metrics threads, which serve the poller), the shard's CPU by
+thread (names from ``py-spy dump`` when py-spy is installed), how the shard's
+main thread spent the interval (on a core, runnable but waiting for a core,
+asleep: the kernel's schedstat), the NATS servers' CPU-seconds per million
+samples, each one's share of the machine's cores, and the load average.
+
 Ratios only, each against a baseline measured in the same run: the machine
 (2 cores) is shared, so absolute rates move from run to run.  With --repeat the
-median of the repeats is reported.  Not part of the test suite.
+median of the repeats is reported.  A repeat in which the shards take no sample
+for 60 s (samples set aside, e.g. copies NATS sent again after newer ones after a
+reconnection, never arrive) is reported as not counted, with the shard's log.
+Not part of the test suite.
 """
 
 from __future__ import annotations
@@ -37,6 +52,9 @@ from __future__ import annotations
 import argparse
 import http.client
 import json
+import os
+import re
+import shutil
 import signal
 import socket
 import statistics
@@ -45,6 +63,7 @@ import sys
 import threading
 import time
 import urllib.request
+from dataclasses import dataclass, field
 from pathlib import Path
 from tempfile import TemporaryDirectory
 from typing import Any
@@ -53,6 +72,7 @@ ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT / "tests" / "daemon"))
 
 import paho.mqtt.client as paho
+import psutil
 from natskit import NatsCluster
 from paho.mqtt.enums import CallbackAPIVersion, MQTTProtocolVersion
 from prometheus_client.parser import text_string_to_metric_families
@@ -66,6 +86,162 @@ BATCH = 260
 WARM_ROUNDS = 5
 #: How long the bare subscribers may take a backlog before the repeat is not counted.
 BARE_WAIT = 90.0
+#: How long the shards may take no sample of the backlog before the repeat is not counted
+#: (samples set aside, e.g. copies NATS sent again after newer ones, never arrive).
+STALL = 60.0
+#: The machine's cores, the denominator of each process group's share.
+CORES = psutil.cpu_count() or 1
+#: The shard's threads that answer the benchmark's /metrics polls (metrics.py): what they
+#: spend is the benchmark's, not the shard's work, and is also shown left out.
+POLL_THREADS = ("metrics-render", "metrics-http")
+
+
+@dataclass
+class CpuReading:
+    """CPU seconds (user + system) spent so far by each group of processes, by each
+    thread of the shards, and by the whole machine (all cores, busy time only)."""
+
+    at: float
+    groups: dict[str, float]
+    threads: dict[int, float]
+    #: The shards' main threads: seconds on a core and seconds runnable but waiting for one.
+    ran: float
+    queued: float
+    busy: float
+    load: float
+
+
+@dataclass
+class CpuSpent:
+    """What was spent between two readings, and the samples taken meanwhile."""
+
+    wall: float
+    samples: float
+    groups: dict[str, float]
+    #: The shards' threads (by thread id), and which of them are their main threads.
+    threads: dict[int, float]
+    mains: list[int]
+    ran: float
+    queued: float
+    busy: float
+    load: float
+    #: Thread names by thread id, when py-spy could tell them.
+    names: dict[int, str] = field(default_factory=dict)
+
+    def share(self, cpu: float) -> float:
+        """``cpu`` seconds as a share of all the machine's cores over the interval."""
+        return cpu / (self.wall * CORES)
+
+    @property
+    def others(self) -> float:
+        """The machine's busy time that none of the measured groups spent (other work)."""
+        return max(self.busy - sum(self.groups.values()), 0.0)
+
+    def thread_cpu(self) -> dict[str, float]:
+        """The shards' CPU seconds by thread name (by id when py-spy was not there; the
+        MQTT client's thread without its client id)."""
+        total: dict[str, float] = {}
+        for tid, cpu in self.threads.items():
+            name = self.names.get(tid, "MainThread" if tid in self.mains else f"thread {tid}")
+            if name.startswith("paho-mqtt-client-"):
+                name = "paho-mqtt-client"
+            total[name] = total.get(name, 0.0) + cpu
+        return total
+
+    def main_split(self) -> tuple[float, float, float]:
+        """The shards' main threads' wall time (per shard) as parts: on a core, runnable but
+        waiting for a core (the machine too busy), asleep (waiting for messages or for the
+        cluster's acknowledgements)."""
+        wall = self.wall * max(len(self.mains), 1)
+        ran, queued = self.ran / wall, self.queued / wall
+        return ran, queued, max(1.0 - ran - queued, 0.0)
+
+    @property
+    def polling(self) -> float:
+        """The shards' CPU in the threads that answer the benchmark's /metrics polls."""
+        return sum(c for n, c in self.thread_cpu().items() if n in POLL_THREADS)
+
+    def by_thread(self) -> str:
+        """The shards' CPU by thread, as parts of the shards' CPU, largest first."""
+        shard = self.groups["shard"] or 1.0
+        return ", ".join(f"{n} {c / shard:.0%}" for n, c in sorted(self.thread_cpu().items(), key=lambda x: -x[1])
+                         if c / shard >= 0.005)
+
+
+class CpuMeter:
+    """Reads the CPU time of named groups of processes from the kernel (psutil, from
+    /proc/<pid>/stat), of each thread of the processes in ``threads`` (the shards, from
+    /proc/<pid>/task), and the machine's from /proc/stat.  A process that has ended
+    counts as what it had spent at the last reading."""
+
+    def __init__(self, groups: dict[str, list[int]], threads: list[int] | None = None) -> None:
+        self.procs = {name: [psutil.Process(pid) for pid in pids] for name, pids in groups.items()}
+        self.threaded = [psutil.Process(pid) for pid in threads or []]
+        self.mains = list(threads or [])
+        self._last: dict[int, float] = {}
+        self._last_threads: dict[int, float] = {}
+        self._last_sched: dict[int, tuple[float, float]] = {}
+
+    def _cpu(self, p: psutil.Process) -> float:
+        try:
+            t = p.cpu_times()
+            self._last[p.pid] = t.user + t.system
+        except psutil.NoSuchProcess:
+            pass
+        return self._last.get(p.pid, 0.0)
+
+    def _threads(self) -> dict[int, float]:
+        for p in self.threaded:
+            try:
+                for th in p.threads():
+                    self._last_threads[th.id] = th.user_time + th.system_time
+            except psutil.NoSuchProcess:
+                pass
+        return dict(self._last_threads)
+
+    def _sched(self) -> tuple[float, float]:
+        """The main threads' time on a core and runnable on a run queue, from the kernel's
+        /proc/<pid>/task/<pid>/schedstat (nanoseconds; psutil does not read it)."""
+        ran = queued = 0.0
+        for pid in self.mains:
+            try:
+                fields = Path(f"/proc/{pid}/task/{pid}/schedstat").read_text().split()
+                self._last_sched[pid] = (int(fields[0]) / 1e9, int(fields[1]) / 1e9)
+            except (OSError, IndexError, ValueError):
+                pass
+            r, q = self._last_sched.get(pid, (0.0, 0.0))
+            ran, queued = ran + r, queued + q
+        return ran, queued
+
+    def read(self) -> CpuReading:
+        m = psutil.cpu_times()
+        busy = m.user + m.nice + m.system + m.irq + m.softirq + m.steal  # guest time is in user
+        return CpuReading(time.monotonic(), {k: sum(self._cpu(p) for p in ps) for k, ps in self.procs.items()},
+                          self._threads(), *self._sched(), busy, os.getloadavg()[0])
+
+    def spent(self, a: CpuReading, b: CpuReading, samples: float) -> CpuSpent:
+        return CpuSpent(b.at - a.at, samples, {k: b.groups[k] - a.groups[k] for k in a.groups},
+                        {t: c - a.threads.get(t, 0.0) for t, c in b.threads.items()}, self.mains,
+                        b.ran - a.ran, b.queued - a.queued, b.busy - a.busy, max(a.load, b.load))
+
+
+def thread_names(pid: int) -> dict[int, str]:
+    """Thread id to Python thread name in process ``pid``, from ``py-spy dump`` when py-spy is
+    installed beside this Python or on PATH (empty otherwise: the threads are then shown by id)."""
+    exe = Path(sys.executable).with_name("py-spy")
+    spy = str(exe) if exe.exists() else shutil.which("py-spy")
+    if spy is None:
+        return {}
+    try:
+        out = subprocess.run([spy, "dump", "--pid", str(pid)], capture_output=True, text=True,
+                             timeout=30, check=False).stdout
+    except (OSError, subprocess.SubprocessError):
+        return {}
+    return {int(m[1]): m[2] for m in re.finditer(r'^Thread (\d+) \([^)]*\): "([^"]*)"', out, re.MULTILINE)}
+
+
+def nats_pids(cluster: NatsCluster) -> list[int]:
+    return [s.proc.pid for s in cluster.servers if s.proc is not None]
 
 
 def _free(port: int) -> bool:
@@ -189,9 +365,11 @@ def taken(ports: list[int]) -> float:
 
 
 def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: list[tuple[str, bytes]],
-               tag: str, warm: list[tuple[str, bytes]] | None = None, per_msg: int = 1) -> float:
-    """The shards' rate over the backlog ``msgs``, in messages a second.  With ``warm``,
-    the shards first take those messages live, so that the backlog meets established
+               tag: str, warm: list[tuple[str, bytes]] | None = None,
+               per_msg: int = 1) -> tuple[float, CpuSpent, CpuSpent]:
+    """The shards' rate over the backlog ``msgs``, in messages a second, with the CPU
+    spent while they took it and while the cluster stored it.  With ``warm``, the
+    shards first take those messages live, so that the backlog meets established
     streams instead of new ones warming up."""
     cfg = work / f"{tag}.yaml"
     port = free_port()
@@ -221,63 +399,162 @@ def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: li
         # stopped (SIGSTOP, a few seconds: well inside the keepalive and the lease)
         # while the backlog is stored, and go on (SIGCONT) with their engines as they were.
         publish_backlog(cluster.mqtt_url(2), warm)
-        assert wait_until(lambda: taken(ports) >= len(warm) * BATCH, 600, every=0.2), \
-            [logs(k)[-800:] for k in range(parts)]
+        last_n, moved = -1.0, time.monotonic()
+        while (n := taken(ports)) < len(warm) * BATCH:
+            if n != last_n:
+                last_n, moved = n, time.monotonic()
+            elif time.monotonic() - moved > STALL:
+                for p in procs:
+                    p.terminate()
+                    p.wait(60)
+                viewer.stop()
+                raise RuntimeError(f"shards took {n:,.0f} of the {len(warm) * BATCH:,} warm-up samples, none "
+                                   f"for {STALL:.0f} s: {[logs(k)[-1500:] for k in range(parts)]}")
+            time.sleep(0.2)
         time.sleep(1.0)  # the last round's acknowledgements
         base = taken(ports)
         for p in procs:
             p.send_signal(signal.SIGSTOP)
-        publish_backlog(cluster.mqtt_url(2), msgs)
+        store = publish_measured(cluster, msgs, per_msg)
         for p in procs:
             p.send_signal(signal.SIGCONT)
     else:
         for p in procs:
             p.terminate()
             p.wait(60)
-        publish_backlog(cluster.mqtt_url(2), msgs)
+        store = publish_measured(cluster, msgs, per_msg)
         procs = [start(k) for k in range(parts)]
+    pids = [p.pid for p in procs]
+    meter = CpuMeter({"shard": pids, "nats": nats_pids(cluster), "bench": [os.getpid()]}, threads=pids)
     total = len(msgs) * per_msg
-    first = None
+    first: CpuReading | None = None
+    done: CpuReading | None = None
     start_count = 0.0
     deadline = time.monotonic() + 600
-    done_at = None
-    while time.monotonic() < deadline:
+    last_n, moved = -1.0, time.monotonic()
+    while time.monotonic() < deadline and time.monotonic() - moved < STALL:
         n = taken(ports) - base
-        now = time.monotonic()
+        now = meter.read()
+        if n != last_n:
+            last_n, moved = n, now.at
         if first is None and n > 0:
             first, start_count = now, n
         if n >= total:
-            done_at = now
+            done = now
             break
         time.sleep(0.05)
+    names: dict[int, str] = {}
+    if done is not None:
+        for p in procs:
+            names.update(thread_names(p.pid))
     for p in procs:
         p.terminate()
         p.wait(60)
     viewer.stop()
-    if first is None or done_at is None or done_at <= first:
-        raise RuntimeError(f"shards did not take the backlog: {[logs(k)[-1500:] for k in range(parts)]}")
-    return (total - start_count) / (done_at - first) / per_msg
+    if first is None or done is None or done.at <= first.at:
+        raise RuntimeError(f"shards took {max(last_n, 0):,.0f} of {total:,} samples, none for {STALL:.0f} s or more: "
+                           f"{[logs(k)[-1500:] for k in range(parts)]}")
+    take = meter.spent(first, done, total - start_count)
+    take.names = names
+    return (total - start_count) / take.wall / per_msg, take, store
 
 
-def run_bare(cluster: NatsCluster, parts: int, msgs: list[tuple[str, bytes]], tag: str) -> float:
+def publish_measured(cluster: NatsCluster, msgs: list[tuple[str, bytes]], per_msg: int) -> CpuSpent:
+    """Publishes the backlog (the publisher is a thread of this process) and returns the
+    CPU spent while the cluster stored it."""
+    meter = CpuMeter({"shard": [], "nats": nats_pids(cluster), "bench": [os.getpid()]})
+    a = meter.read()
+    publish_backlog(cluster.mqtt_url(2), msgs)
+    return meter.spent(a, meter.read(), len(msgs) * per_msg)
+
+
+def run_bare(cluster: NatsCluster, parts: int, msgs: list[tuple[str, bytes]], tag: str,
+             per_msg: int = 1) -> tuple[float, CpuSpent, CpuSpent]:
+    """The bare subscribers' rate over the backlog, in messages a second, with the CPU spent
+    while they took it (they are threads of this process) and while the cluster stored it."""
     bare = Bare(cluster.mqtt_url(0), parts, tag)
     bare.connect(subscribe=True)
     time.sleep(3.0)  # the cluster makes each session's consumer
     bare.disconnect()
-    publish_backlog(cluster.mqtt_url(2), msgs)
+    store = publish_measured(cluster, msgs, per_msg)
+    meter = CpuMeter({"shard": [], "nats": nats_pids(cluster), "bench": [os.getpid()]})
     bare.count = 0
     bare.connect(subscribe=False)
-    ok = wait_until(lambda: bare.count >= len(msgs), BARE_WAIT, every=0.05)
+    first: tuple[int, CpuReading] | None = None
+    done: tuple[int, CpuReading] | None = None
+    deadline = time.monotonic() + BARE_WAIT
+    while time.monotonic() < deadline:
+        n = bare.count
+        now = meter.read()
+        if first is None and n > 0:
+            first = n, now
+        if n >= len(msgs):
+            done = n, now
+            break
+        time.sleep(0.05)
     bare.disconnect()
-    if not ok:
+    if first is None or done is None or done[1].at <= first[1].at:
         # NATS's MQTT side sometimes holds a session's deliveries back (README, "Running
         # shards"); such a repeat says nothing about the subscriber's rate.
         raise RuntimeError(f"bare subscribers took {bare.count} of {len(msgs)} messages in {BARE_WAIT:.0f} s")
-    return (bare.count - 1) / max(bare.last - bare.first, 1e-9)
+    take = meter.spent(first[1], done[1], (done[0] - first[0]) * per_msg)
+    return (bare.count - 1) / max(bare.last - bare.first, 1e-9), take, store
+
+
+CPU_HEAD = ("| shards | payload | phase | seconds | samples | shard: samples per CPU-second "
+            "(without the /metrics threads) | shard: CPU / wall, of one core | shard's CPU by thread | "
+            "shard's main thread: on a core / waiting for a core / asleep | "
+            "NATS servers: CPU-s per million samples | this process: CPU-s per million samples | "
+            "share of the 2 cores: shard / NATS / this process / other work / idle | load average (1 min) |")
+CPU_RULE = "|---|---|---|---|---|---|---|---|---|---|---|---|---|"
+
+
+def cpu_rows(parts: int | str, kind: str, phase: str, spent: list[CpuSpent]) -> list[str]:
+    """One table row: the median over the repeats of each figure.  "This process" is the
+    benchmark itself: the publisher while the cluster stores the backlog, the bare
+    subscribers while they take it, the /metrics poller while the shards take it."""
+    if not spent:
+        return []
+
+    def med(f: Any) -> float:
+        return statistics.median(f(x) for x in spent)
+
+    shard = med(lambda x: x.groups["shard"])
+    per_cpu = busy = threads = split = "-"
+    if shard > 0:
+        per_cpu = (f"{med(lambda x: x.samples / x.groups['shard']):,.0f} "
+                   f"({med(lambda x: x.samples / (x.groups['shard'] - x.polling)):,.0f})")
+        busy = f"{med(lambda x: x.groups['shard'] / x.wall):.2f}"
+        names = sorted({n for x in spent for n in x.thread_cpu()})
+        parts_of = {n: med(lambda x, n=n: x.thread_cpu().get(n, 0.0) / x.groups["shard"]) for n in names}
+        threads = ", ".join(f"{n} {v:.0%}" for n, v in sorted(parts_of.items(), key=lambda x: -x[1]) if v >= 0.005)
+        split = " / ".join(f"{med(lambda x, i=i: x.main_split()[i]):.0%}" for i in range(3))
+    shares = " / ".join(f"{med(f):.0%}" for f in (
+        lambda x: x.share(x.groups["shard"]), lambda x: x.share(x.groups["nats"]),
+        lambda x: x.share(x.groups["bench"]), lambda x: x.share(x.others),
+        lambda x: max(1.0 - x.share(x.busy), 0.0)))
+    loads = [x.load for x in spent]
+    row = (f"| {parts} | {kind} | {phase} | {med(lambda x: x.wall):.2f} | {med(lambda x: x.samples):,.0f} | "
+           f"{per_cpu} | {busy} | {threads} | {split} | {med(lambda x: x.groups['nats'] / x.samples * 1e6):.2f} | "
+           f"{med(lambda x: x.groups['bench'] / x.samples * 1e6):.2f} | {shares} | "
+           f"{min(loads):.1f} to {max(loads):.1f} |")
+    return [row]
+
+
+def cpu_line(what: str, x: CpuSpent) -> str:
+    shard = x.groups["shard"]
+    own = (f", {x.samples / shard:,.0f} samples per shard CPU-second "
+           f"({x.samples / (shard - x.polling):,.0f} without the /metrics threads)") if shard > 0 else ""
+    return (f"    {what}: {x.wall:.2f} s, {x.samples:,.0f} samples{own}; CPU-s shard {shard:.2f}, "
+            f"NATS {x.groups['nats']:.2f}, this process {x.groups['bench']:.2f}, other work {x.others:.2f}, "
+            f"machine busy {x.share(x.busy):.0%} of {CORES} cores; load {x.load:.1f}"
+            + (f"\n      the shard's CPU by thread: {x.by_thread()}; its main thread on a core / waiting "
+               "for a core / asleep: " + " / ".join(f"{v:.0%}" for v in x.main_split()) if shard > 0 else ""))
 
 
 def part_throughput(args: argparse.Namespace, work: Path) -> list[str]:
     rows = []
+    cpu = []
     streams = 500 if args.quick else 2000
     single_rounds = 10 if args.quick else 20
     batch_rounds = 3 if args.quick else 4
@@ -293,17 +570,31 @@ def part_throughput(args: argparse.Namespace, work: Path) -> list[str]:
                     continue
                 msgs = payloads(streams, rounds, batch, after)
                 rs, rb = [], []
+                stores: list[CpuSpent] = []
+                bare_takes: list[CpuSpent] = []
+                shard_takes: list[CpuSpent] = []
                 for rep in range(args.repeat):
                     tag = f"{kind}{parts}r{rep}"
                     try:
-                        b = run_bare(cluster, parts, msgs, tag)
+                        b, b_take, b_store = run_bare(cluster, parts, msgs, tag, batch)
                     except RuntimeError as exc:
                         print(f"  repeat {rep + 1}: not counted ({exc})", flush=True)
                         continue
+                    try:
+                        r, s_take, s_store = run_shards(work, cluster, parts, "cluster", msgs, tag, warm, batch)
+                    except RuntimeError as exc:
+                        print(f"  repeat {rep + 1}: not counted ({str(exc)[:3000]})", flush=True)
+                        continue
                     rb.append(b)
-                    rs.append(run_shards(work, cluster, parts, "cluster", msgs, tag, warm, batch))
+                    rs.append(r)
+                    stores += [b_store, s_store]
+                    bare_takes.append(b_take)
+                    shard_takes.append(s_take)
                     print(f"  repeat {rep + 1}: shards {rs[-1]:,.0f} msg/s, bare {rb[-1]:,.0f} msg/s, "
                           f"ratio {rs[-1] / rb[-1]:.2f}", flush=True)
+                    for what, x in (("stored (bare's backlog)", b_store), ("bare took", b_take),
+                                    ("stored (shards' backlog)", s_store), ("shards took", s_take)):
+                        print(cpu_line(what, x), flush=True)
                 if not rs:
                     continue
                 shard_rate, bare_rate = statistics.median(rs), statistics.median(rb)
@@ -311,26 +602,43 @@ def part_throughput(args: argparse.Namespace, work: Path) -> list[str]:
                             f"{shard_rate * batch:,.0f} samples/s | {bare_rate:,.0f} msg/s | "
                             f"{shard_rate / bare_rate:.2f} | {', '.join(f'{s / b:.2f}' for s, b in zip(rs, rb))} |")
                 print(rows[-1], flush=True)
+                cpu += (cpu_rows(parts, kind, "the cluster stores the backlog (publisher)", stores)
+                        + cpu_rows(parts, kind, "bare subscribers take it", bare_takes)
+                        + cpu_rows(parts, kind, "shards take it", shard_takes))
     head = ("| shards | payload | streams | messages | shards took | bare subscribers took | ratio (median) | "
             "ratio per repeat |")
-    return [head, "|---|---|---|---|---|---|---|---|", *rows]
+    return [head, "|---|---|---|---|---|---|---|---|", *rows, "",
+            f"Where the CPU went (medians over the repeats; {CORES} cores):", "",
+            CPU_HEAD, CPU_RULE, *cpu]
 
 
 def part_state(args: argparse.Namespace, work: Path) -> list[str]:
     streams = 500 if args.quick else 2000
     msgs = payloads(streams, 10 if args.quick else 20, 1)
     local, clus = [], []
+    local_cpu: list[CpuSpent] = []
+    clus_cpu: list[CpuSpent] = []
     with NatsCluster(3, 1, base=work / "nats-state", ack_wait=args.ack_wait,
                      max_ack_pending=args.max_ack_pending) as cluster:
         for rep in range(args.repeat):
-            local.append(run_shards(work, cluster, 1, "local", msgs, f"local{rep}"))
-            clus.append(run_shards(work, cluster, 1, "cluster", msgs, f"clus{rep}"))
+            r, take, _ = run_shards(work, cluster, 1, "local", msgs, f"local{rep}")
+            local.append(r)
+            local_cpu.append(take)
+            print(cpu_line(f"repeat {rep + 1}, local state, shard took", take), flush=True)
+            r, take, _ = run_shards(work, cluster, 1, "cluster", msgs, f"clus{rep}")
+            clus.append(r)
+            clus_cpu.append(take)
+            print(cpu_line(f"repeat {rep + 1}, cluster state, shard took", take), flush=True)
     lm, cm = statistics.median(local), statistics.median(clus)
     return ["| state | messages | one shard took (median) | per repeat |", "|---|---|---|---|",
             f"| local state.dir | {len(msgs):,} | {lm:,.0f} msg/s | {', '.join(f'{x:,.0f}' for x in local)} |",
             (f"| cluster (R3 journal per stream per round) | {len(msgs):,} | {cm:,.0f} msg/s | "
              f"{', '.join(f'{x:,.0f}' for x in clus)} |"),
-            f"| cluster / local | | {cm / lm:.2f} | |"]
+            f"| cluster / local | | {cm / lm:.2f} | |", "",
+            f"Where the CPU went while the shard took the backlog (medians over the repeats; {CORES} cores):", "",
+            CPU_HEAD, CPU_RULE,
+            *cpu_rows(1, "single", "local state.dir", local_cpu),
+            *cpu_rows(1, "single", "cluster state", clus_cpu)]
 
 
 def main() -> int:
