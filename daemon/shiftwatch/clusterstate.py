@@ -268,9 +268,17 @@ class JournalRound:
 
         async def one(g: JournalGroup, body: bytes, last: int) -> tuple[JournalGroup, int | None]:
             async with sem:
+                subject = cs.subject(g.stream)
                 try:
-                    seq = await cs.io.publish(cs.subject(g.stream), body, expect_last=last, headers=headers)
+                    seq = await cs.io.publish(subject, body, expect_last=last, headers=headers)
                 except SequenceConflict:
+                    # Refused: the subject moved on.  When its last message is this very
+                    # group, written by this daemon, an earlier attempt of the round was
+                    # stored and only its acknowledgement was lost (the round timed out and
+                    # is tried again): that message is this group's, nothing to reload.
+                    at, hdrs, stored = await cs.io.last_message(cs.stream, subject)
+                    if at > last and hdrs.get(WRITER) == cs.writer and stored == body:
+                        return g, at
                     return g, None
                 return g, seq
 

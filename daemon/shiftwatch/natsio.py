@@ -247,6 +247,15 @@ class NatsIO:
             return 0, {}
         return int(msg.seq), dict(msg.headers or {})
 
+    async def last_message(self, stream: str, subject: str) -> tuple[int, dict[str, str], bytes]:
+        """The subject's last message in the stream: sequence (0: none), headers and body."""
+        from nats.js.errors import NotFoundError
+        try:
+            msg = await self._js.get_last_msg(stream, subject)
+        except NotFoundError:
+            return 0, {}, b""
+        return int(msg.seq), dict(msg.headers or {}), bytes(msg.data or b"")
+
     async def messages_after(self, stream: str, subject: str, after: int, last: int) -> list[tuple[int, bytes]]:
         """The subject's messages with sequences in (after, last], in order."""
         from nats.js.errors import NotFoundError

@@ -99,3 +99,37 @@ def test_a_stream_written_by_another_daemon_meanwhile_is_refused(cluster: Cluste
     refused = rnd.wait()
     assert [g.stream for g in refused] == ["plant/2/v"]
     assert cs.seq["plant/2/v"] < other.seq["plant/2/v"]
+
+
+def test_a_group_stored_whose_acknowledgement_was_lost_is_not_taken_for_another_daemons(
+        cluster: ClusterState) -> None:
+    """A round whose journal wait timed out is held and written again with the same
+    expected last sequence (the wait takes no sequence from a round that timed out).
+    A group the cluster had stored all the same is then refused: JetStream checks the
+    ``Nats-Expected-Last-Subject-Sequence`` header against the subject's last message
+    (NATS JetStream documentation, "Headers"; its error 10071, "wrong last sequence",
+    from memory).  That refusal must not read as another daemon's write."""
+    cs = cluster
+    name = "plant/1/v"
+    assert cs.journal([_group(1)]) == []
+    before = cs.seq[name]
+    g = _group(1, t0=10.0)
+    assert cs.journal([g]) == []
+    stored = cs.seq[name]
+    cs.seq[name] = before  # what a timed-out wait leaves: the acknowledgement never came
+    assert cs.journal([g]) == []  # the held round, written again
+    assert cs.seq[name] == stored
+    assert _stored(cs) == 2  # the group is in the journal once
+    (again,) = cs.load([name])[name].groups[1:]
+    assert again.values.tolist() == g.values.tolist()
+    # A different message after the expected sequence is still a refusal: another group of
+    # this daemon's (not the one being written again) ...
+    cs.seq[name] = before
+    assert [x.stream for x in cs.journal([_group(1, t0=20.0)])] == [name]
+    # ... and the same samples written by another daemon.
+    other = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w2")
+    other.load([name])
+    g2 = _group(1, t0=30.0)
+    assert other.journal([g2]) == []
+    cs.seq[name] = stored
+    assert [x.stream for x in cs.journal([g2])] == [name]
