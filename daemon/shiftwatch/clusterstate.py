@@ -13,7 +13,9 @@ The same two parts as the local state directory, with the same guarantee
   ``Nats-Expected-Last-Subject-Sequence`` header with the last sequence this
   daemon wrote or read for the stream: a stream that another shard has written
   meanwhile (it moved when the number of shards changed) is refused, and the
-  daemon reloads it and feeds it the round again (see ``Daemon``).
+  daemon reloads it and feeds it the round again (see ``Daemon``).  A refusal
+  whose cause is this daemon's own earlier write of the same group (stored,
+  but its acknowledgement lost to a timeout) is taken as that write.
 - **Snapshots**: a key-value bucket ``<name>_state``, one key per stream, its
   engine state (``statestore.encode_state``), the journal sequence it
   includes, the ``topic`` filter of its config entry and the alert records it
