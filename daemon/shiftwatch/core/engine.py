@@ -500,6 +500,7 @@ FOLD_TOGETHER = True
 #: array's own buffer (StreamEngine._keep_offsets, _refine); False: the reference, a
 #: buffer emptied and filled again each batch and a new array at each refinement.
 OFFSETS_IN_PLACE = True
+_ONE_ZERO = array("d", [0.0])
 
 
 class _SplitCalled(Exception):
@@ -875,15 +876,26 @@ class StreamEngine:
         The offsets' doubles are copied as they are (no float object per sample)."""
         uq = self._unfolded_u
         n = len(uq)
-        if drop and tail.shape[0] == drop and OFFSETS_IN_PLACE:
+        if not OFFSETS_IN_PLACE:
+            if drop:
+                del uq[:drop]
+            uq.frombytes(tail.tobytes())
+            return
+        if drop and tail.shape[0] == drop:
             v = np.frombuffer(uq)
             v[: n - drop] = v[drop:]
             v[n - drop:] = tail
             del v  # the array can be resized again once no view of its buffer is left
             return
-        if drop:
-            del uq[:drop]
-        uq.frombytes(tail.tobytes())
+        # A new array of exactly the doubles it holds (frombytes would allot a tenth
+        # more, and past 512 bytes a guard's worth would leave Python's small-object heap).
+        out = array("d", _ONE_ZERO) * (n - drop + tail.shape[0])
+        if len(out):
+            v = np.frombuffer(out)
+            v[: n - drop] = np.frombuffer(uq)[drop:]
+            v[n - drop:] = tail
+            del v
+        self._unfolded_u = out
 
     def _append_one(self, t: float, x: float, u: float) -> None:
         """:meth:`_append` of one sample, in plain floats (the steady state: the
