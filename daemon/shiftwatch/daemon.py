@@ -313,6 +313,8 @@ class Daemon:
         self.nats: Any = None  # shiftwatch.natsio.NatsIO, with a cluster section
         self.cluster: Any = None  # shiftwatch.clusterstate.ClusterState, with state.keep: cluster
         self.lease: ShardLease | None = None
+        # Streams fed since the last snapshot to the cluster (state.keep: cluster only: a
+        # snapshot on disk saves every stream, and the set would hold every name for good).
         self._fed_since_snapshot: set[str] = set()
         # Calm streams whose samples wait for one batch (see shiftwatch.core.calm).  Not in
         # cluster mode, where every round's samples go to the cluster per stream anyway.
@@ -1583,7 +1585,8 @@ class Daemon:
             self.emit(rec, float(arrivals[min(j, len(arrivals) - 1)]))
         self._level_changed(name, eng)
         self.metrics.update_stream(name, StreamStats.from_engine(eng))
-        self._fed_since_snapshot.add(name)
+        if self.in_cluster:  # read by the snapshots to the cluster only
+            self._fed_since_snapshot.add(name)
         if rejoin and self.pool is not None and not (self.floor.holding() and self.floor.concerned_by_hold(name)):
             terms = eng.calm_terms()
             if terms is not None:

@@ -328,3 +328,19 @@ def test_level_updates_are_due_exactly_when_the_tuples_kept_before_said_so(tmp_p
     assert due_rounds > 2 * n  # levels moved with refinements and steps
     assert d.journal is not None
     d.journal.close()
+
+
+def test_a_daemon_keeping_its_state_on_disk_keeps_no_set_of_fed_streams(tmp_path: Path) -> None:
+    # The set of streams fed since the last snapshot serves only the snapshots to the
+    # NATS cluster (state.keep: cluster), which save just those streams.  A daemon with
+    # its state on disk snapshots every stream, so it must not gather the set: it held
+    # every stream's name for as long as the daemon ran (about 50 bytes a stream).
+    n = 40
+    data = _data(n, WARM + 10, np.random.default_rng(13), steps=False)
+    d = _daemon(_config(tmp_path, "disk"), pool=False)
+    assert not d.in_cluster
+    _warm(d, n, data)
+    assert len(d.engines) == n and all(e.samples_total == WARM for e in d.engines.values())
+    assert d._fed_since_snapshot == set()
+    assert d.journal is not None
+    d.journal.close()
