@@ -267,6 +267,28 @@ def test_sums_kept_in_place_leave_marks_and_adopted_states_alone() -> None:
     assert test.c_minus == pytest.approx(tuple(naive.lo), abs=1e-9)
 
 
+def test_drift_worked_out_per_use_is_the_table_it_replaced() -> None:
+    # The fast block path subtracts each chart's drift k * (1, 2, ..., n); it once read
+    # it from a table per design (k as a column times 1..BLOCK as a row, 128 kB for four
+    # charts) and now works it out where it is needed.  The same products bit for bit,
+    # and the path still follows Page's recursion (NaiveBank) over long blocks.
+    from shiftwatch.core import multicusum
+
+    ks = MultiCusumTest.design(604800, 0.9).ks
+    table = np.asarray(ks, dtype=np.float64)[:, None] * np.arange(1.0, BLOCK + 1.0)[None, :]
+    k_arr = np.asarray(ks, dtype=np.float64)
+    for i in range(len(ks)):
+        for n in (1, 777, BLOCK):
+            assert (k_arr[i] * multicusum._STEPS[:n]).tobytes() == table[i, :n].tobytes()
+    test = MultiCusumTest.design(604800, 0.9)
+    naive = NaiveBank(list(test.ks), list(test.hs))
+    z = np.random.default_rng(23).standard_normal(3 * BLOCK + 11) * 0.9
+    assert test.update(z) == -1
+    assert all(naive.step(v) is None for v in z.tolist())
+    assert test.c_plus == pytest.approx(tuple(naive.up), abs=1e-9)
+    assert test.c_minus == pytest.approx(tuple(naive.lo), abs=1e-9)
+
+
 def test_reset_and_empty_batch() -> None:
     test = MultiCusumTest([0.5, 1.0], [4.0, 3.0])
     assert test.update(np.array([])) == -1

@@ -505,7 +505,7 @@ class MultiCusumTest(SequentialTest):
                     bound = math.inf  # this chart can only fall in this block
                 if c1max <= bound and c1end <= 0.0:
                     continue  # cannot trip, and ends at zero like the first chart
-                st = signed - bank.kramp[i, :n]
+                st = signed - ks[i] * _STEPS[:n]
                 rows[i] = st
                 if c1max <= bound:
                     continue
@@ -529,7 +529,7 @@ class MultiCusumTest(SequentialTest):
                 continue  # every chart of this side is at zero
             for i in range(1, m):
                 kept = tilde[side].get(i)
-                st = signs[side] - bank.kramp[i, :n] if kept is None else kept
+                st = signs[side] - ks[i] * _STEPS[:n] if kept is None else kept
                 low = float(st[: t + 1].min()) if t < n - 1 else float(st.min())
                 col[side * m + i] = st[t] - min(-float(cs[i]), low)
         self._c[:] = col
@@ -582,7 +582,7 @@ class _Bank:
     from them, shared (read-only) by every :class:`MultiCusumTest` built with
     the same charts."""
 
-    __slots__ = ("ascending", "h2", "h2_col", "h2_list", "h_arr", "hs", "k_arr", "k_col", "kramp", "ks", "m")
+    __slots__ = ("ascending", "h2", "h2_col", "h2_list", "h_arr", "hs", "k_arr", "k_col", "ks", "m")
 
     def __init__(self, ks: tuple[float, ...], hs: tuple[float, ...]) -> None:
         self.ks = ks
@@ -597,8 +597,6 @@ class _Bank:
         self.h2_list = tuple(self.h2.tolist())  # the same, for plain-Python divisions
         # The in-control fast path needs the charts in ascending order of k.
         self.ascending = bool(np.all(np.diff(self.k_arr) > 0)) and self.m > 1
-        # k_i * (1, 2, ..., BLOCK): the drift term of each chart over a block.
-        self.kramp = _drift_ramps(ks)
 
 
 def _frozen(a: FloatArray) -> FloatArray:
@@ -611,11 +609,9 @@ def _bank(ks: tuple[float, ...], hs: tuple[float, ...]) -> _Bank:
     return _Bank(ks, hs)
 
 
-@functools.lru_cache(maxsize=64)
-def _drift_ramps(ks: tuple[float, ...]) -> FloatArray:
-    ramps = np.asarray(ks, dtype=np.float64)[:, None] * np.arange(1.0, BLOCK + 1.0)[None, :]
-    ramps.flags.writeable = False
-    return ramps
+#: 1, 2, ..., BLOCK: a chart's drift over a block is ``k * _STEPS[:n]``, worked out where
+#: it is needed (a table of them per design took 128 kB a bank of four charts).
+_STEPS = _frozen(np.arange(1.0, BLOCK + 1.0))
 
 
 #: Batches up to this size take the plain-Python path.
