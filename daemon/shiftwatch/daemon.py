@@ -31,8 +31,9 @@ import numpy as np
 
 from shiftwatch import heap
 from shiftwatch.config import Config, ConfigError, StreamConfig, load_config, topic_matches
+from shiftwatch.core.baseline import Baseline
 from shiftwatch.core.calm import CalmPool
-from shiftwatch.core.engine import ADVISORY, AlertRecord, StreamEngine
+from shiftwatch.core.engine import ADVISORY, WATCHING, AlertRecord, StreamEngine
 from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
 from shiftwatch.core.timefmt import format_time
 from shiftwatch.decode import REASONS as DECODE_REASONS
@@ -313,6 +314,8 @@ class Daemon:
         self.nats: Any = None  # shiftwatch.natsio.NatsIO, with a cluster section
         self.cluster: Any = None  # shiftwatch.clusterstate.ClusterState, with state.keep: cluster
         self.lease: ShardLease | None = None
+        # Streams fed since the last snapshot to the cluster (state.keep: cluster only: a
+        # snapshot on disk saves every stream, and the set would hold every name for good).
         self._fed_since_snapshot: set[str] = set()
         # Calm streams whose samples wait for one batch (see shiftwatch.core.calm).  Not in
         # cluster mode, where every round's samples go to the cluster per stream anyway.
@@ -334,7 +337,10 @@ class Daemon:
         self._deferred_samples: dict[str, list[Any]] = {}
         self._ack_later: list[tuple[list[Message], bool]] = []
         self.outbox = Outbox(state_dir / "outbox", max_items=cfg.alerts.outbox_max, logger=self.log)
-        self._levels_sent: dict[str, tuple[str, float | None, float | None]] = {}
+        # What the levels topic shows of each stream, (state, level, sigma) as last sent (see
+        # _shows): a watching stream's is its engine's Baseline itself (a tuple a stream
+        # would cost 64 bytes more, and the baseline is there anyway).
+        self._levels_sent: dict[str, Baseline | tuple[str, float | None, float | None]] = {}
         # Streams whose level update is queued (an ordered set, main thread
         # only; see send_due_levels), and the mids of the level publications out.
         self._levels_due: OrderedDict[str, None] = OrderedDict()
@@ -1580,7 +1586,8 @@ class Daemon:
             self.emit(rec, float(arrivals[min(j, len(arrivals) - 1)]))
         self._level_changed(name, eng)
         self.metrics.update_stream(name, StreamStats.from_engine(eng))
-        self._fed_since_snapshot.add(name)
+        if self.in_cluster:  # read by the snapshots to the cluster only
+            self._fed_since_snapshot.add(name)
         if rejoin and self.pool is not None and not (self.floor.holding() and self.floor.concerned_by_hold(name)):
             terms = eng.calm_terms()
             if terms is not None:
@@ -1767,8 +1774,23 @@ class Daemon:
     def _level_changed(self, name: str, eng: StreamEngine) -> None:
         """After a stream's batch: queue its level update if what the levels
         topic shows of it has changed (send_due_levels publishes it)."""
-        if eng.level is not None and self._levels_sent.get(name) != (eng.state, eng.level, eng.sigma):
+        if eng.level is not None and not self._shows(name, eng.state, eng):
             self._levels_due[name] = None
+
+    def _shows(self, name: str, state: str, eng: StreamEngine) -> bool:
+        """Whether the levels topic shows the stream as ``(state, eng.level, eng.sigma)``
+        (compared as tuples, as they were kept before: the same floats, or equal ones)."""
+        sent = self._levels_sent.get(name)
+        if sent is None:
+            return False
+        if isinstance(sent, tuple):
+            return sent == (state, eng.level, eng.sigma)
+        return state == WATCHING and (sent.level, sent.sigma) == (eng.level, eng.sigma)
+
+    def _note_shown(self, name: str, state: str, eng: StreamEngine) -> None:
+        """The levels topic now shows the stream as ``(state, eng.level, eng.sigma)``."""
+        b = eng.baseline
+        self._levels_sent[name] = b if state == WATCHING and b is not None else (state, eng.level, eng.sigma)
 
     def send_due_levels(self) -> None:
         """Publish the queued level updates, oldest first, each stream's state as
@@ -1788,10 +1810,9 @@ class Daemon:
             if eng is None or eng.level is None:
                 continue
             state = OFFLINE if self._levels_offline else eng.state
-            now_state = (state, eng.level, eng.sigma)
-            if self._levels_sent.get(name) == now_state:
+            if self._shows(name, state, eng):
                 continue
-            self._levels_sent[name] = now_state
+            self._note_shown(name, state, eng)
             body = self.level_body(name, eng, state)
             self._publish(f"{self.prefix}/levels/{name}", json.dumps(body).encode(), qos=1, retain=True,
                           level=True)

@@ -31,7 +31,9 @@ T0 = 1_788_000_000.0
 
 #: The engine's switches for the batch path (True: the fast path, False: the reference).
 #: SPARSE_SPIKES's fast path now keeps its samples as slices between the lone spikes.
-SWITCHES = ("FOLD_TOGETHER", "SPARSE_SPIKES")
+#: OFFSETS_IN_PLACE keeps the follower offsets in one buffer (memory, not arithmetic: the
+#: saved state's offsets must come out the same to the last bit).
+SWITCHES = ("FOLD_TOGETHER", "SPARSE_SPIKES", "OFFSETS_IN_PLACE")
 
 
 def _history(kind: str, n: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
@@ -194,3 +196,39 @@ def test_a_float_batch_is_screened_as_an_object_batch_is() -> None:
         assert got.values.tobytes() == np.asarray(want.values, dtype=np.float64).tobytes()
         assert got.rejected == want.rejected
         assert np.asarray(got.kept).tolist() == np.asarray(want.kept).tolist()
+
+
+def test_windows_of_one_block_keep_their_own_samples() -> None:
+    # Windows hold their rows in shared blocks of _WindowStore.BLOCK (no array object of
+    # their own).  Streams made, fed and dropped in turn must each keep exactly their
+    # own newest samples, also in a row that a dropped window left behind: held to a
+    # plain list of every stream's samples (collections.deque with maxlen, the standard
+    # library's bounded queue, as the reference of what a window holds).
+    import collections
+    import gc
+
+    from shiftwatch.core.engine import Window, _WindowStore
+
+    rng = np.random.default_rng(41)
+    keep = 37
+    live: dict[int, tuple[Window, collections.deque[tuple[float, float]]]] = {}
+    for step in range(3 * _WindowStore.BLOCK):
+        k = int(rng.integers(0, 2 * _WindowStore.BLOCK))
+        if k in live and rng.random() < 0.3:
+            del live[k]  # its row goes back to the store
+            gc.collect()
+            continue
+        if k not in live:
+            live[k] = (Window(keep, slack=5), collections.deque(maxlen=keep + 5))
+        w, ref = live[k]
+        m = int(rng.integers(1, 12))
+        x, t = rng.standard_normal(m), step + np.arange(float(m)) / 16
+        if m == 1:
+            w.push(float(x[0]), float(t[0]))
+        else:
+            w.extend(x, t)
+        ref.extend(zip(t.tolist(), x.tolist()))
+        for w2, ref2 in live.values():
+            n = len(w2)
+            assert keep <= n or n == len(ref2)
+            assert list(zip(w2.times.tolist(), w2.values.tolist())) == list(ref2)[len(ref2) - n:]

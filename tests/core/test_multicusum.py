@@ -233,6 +233,62 @@ def test_state_round_trip_through_json() -> None:
         MultiCusumTest([0.5], [4.0]).set_state(snap)
 
 
+def test_sums_kept_in_place_leave_marks_and_adopted_states_alone() -> None:
+    # The bank writes its sums into one array of its own (a fresh array each batch
+    # would be one more allocation per stream and round).  A mark, a bank that
+    # adopted the state and the list handed out for the engine's loop are copies:
+    # feeding the bank afterwards leaves them at Page's recursion as it stood
+    # (NaiveBank, Page 1954), and going back to the mark carries on from there.
+    rng = np.random.default_rng(17)
+    ks, hs = [0.25, 0.5, 1.0], [60.0, 40.0, 25.0]  # no chart trips on this sequence
+    z = rng.standard_normal(900) * 0.8 + 0.05
+    naive = NaiveBank(ks, hs)
+    for v in z[:300].tolist():
+        assert naive.step(v) is None
+    at_mark = (tuple(naive.up), tuple(naive.lo))
+    test = MultiCusumTest(ks, hs)
+    for a, b in ((0, 5), (5, 290), (290, 300)):  # the small path, the blocks, the small path
+        assert test.update(z[a:b]) == -1
+    mark = test.mark()
+    listed = test.small_sums()
+    other = MultiCusumTest(ks, hs)
+    assert other.adopt_state(test)
+    assert test.update(z[300:600]) == -1
+    assert test.c_plus != pytest.approx(at_mark[0], abs=1e-9)  # the bank moved on
+    for kept in (tuple(mark[0].tolist()), tuple(listed or ()), other.c_plus + other.c_minus):
+        assert kept == pytest.approx(at_mark[0] + at_mark[1], abs=1e-9)
+    test.back_to(mark)
+    assert test.get_state() == other.get_state()
+    assert test.update(z[300:]) == other.update(z[300:])
+    assert test.get_state() == other.get_state()
+    for v in z[300:].tolist():
+        naive.step(v)
+    assert test.c_plus == pytest.approx(tuple(naive.up), abs=1e-9)
+    assert test.c_minus == pytest.approx(tuple(naive.lo), abs=1e-9)
+
+
+def test_drift_worked_out_per_use_is_the_table_it_replaced() -> None:
+    # The fast block path subtracts each chart's drift k * (1, 2, ..., n); it once read
+    # it from a table per design (k as a column times 1..BLOCK as a row, 128 kB for four
+    # charts) and now works it out where it is needed.  The same products bit for bit,
+    # and the path still follows Page's recursion (NaiveBank) over long blocks.
+    from shiftwatch.core import multicusum
+
+    ks = MultiCusumTest.design(604800, 0.9).ks
+    table = np.asarray(ks, dtype=np.float64)[:, None] * np.arange(1.0, BLOCK + 1.0)[None, :]
+    k_arr = np.asarray(ks, dtype=np.float64)
+    for i in range(len(ks)):
+        for n in (1, 777, BLOCK):
+            assert (k_arr[i] * multicusum._STEPS[:n]).tobytes() == table[i, :n].tobytes()
+    test = MultiCusumTest.design(604800, 0.9)
+    naive = NaiveBank(list(test.ks), list(test.hs))
+    z = np.random.default_rng(23).standard_normal(3 * BLOCK + 11) * 0.9
+    assert test.update(z) == -1
+    assert all(naive.step(v) is None for v in z.tolist())
+    assert test.c_plus == pytest.approx(tuple(naive.up), abs=1e-9)
+    assert test.c_minus == pytest.approx(tuple(naive.lo), abs=1e-9)
+
+
 def test_reset_and_empty_batch() -> None:
     test = MultiCusumTest([0.5, 1.0], [4.0, 3.0])
     assert test.update(np.array([])) == -1

@@ -294,3 +294,53 @@ def test_a_pooled_stream_that_brings_a_batch_goes_the_per_stream_way(tmp_path: P
     _, meta = d.store.load()
     (groups,) = Journal(tmp_path / "batch" / "snapshots").open(meta["journal"])
     assert sorted((g.stream, len(g.values)) for g in groups) == [(f"line/s{i:03d}/v", 300) for i in range(n)]
+
+
+def test_level_updates_are_due_exactly_when_the_tuples_kept_before_said_so(tmp_path: Path) -> None:
+    # What the levels topic shows of a watching stream is kept as its engine's Baseline
+    # (a tuple per stream cost 64 bytes more).  Over streams that warm up, watch, open
+    # events on steps and refine their baselines, an update must be due exactly when
+    # the (state, level, sigma) tuple last sent differs from the stream's now, the rule
+    # as it stood (a plain dict of those tuples beside the daemon is the reference).
+    n, m = 30, WARM + 500
+    data = _data(n, m, np.random.default_rng(12))
+    d = _daemon(_config(tmp_path, "levels"), pool=False)
+    sent: dict[str, tuple[Any, ...]] = {}
+    states: set[str] = set()
+    due_rounds = 0
+    for k in range(0, m, 25):
+        rows = [Message(f"line/s{i:03d}/v", json.dumps([{"v": float(v), "ts": T0 + k + j} for j, v in
+                                                        enumerate(data[i, k:k + 25])]).encode(), T0 + k, 0, 0)
+                for i in range(n)]
+        d.process(rows)
+        for name, eng in d.engines.items():
+            if eng.level is None:
+                continue
+            now = (eng.state, eng.level, eng.sigma)
+            states.add(eng.state)
+            assert d._shows(name, eng.state, eng) == (sent.get(name) == now), (k, name)
+            if sent.get(name) != now:
+                due_rounds += 1
+                sent[name] = now
+                d._note_shown(name, eng.state, eng)
+        d._levels_due.clear()  # no broker here: what send_due_levels would have sent is noted above
+    assert {"watching", "event_open"} <= states
+    assert due_rounds > 2 * n  # levels moved with refinements and steps
+    assert d.journal is not None
+    d.journal.close()
+
+
+def test_a_daemon_keeping_its_state_on_disk_keeps_no_set_of_fed_streams(tmp_path: Path) -> None:
+    # The set of streams fed since the last snapshot serves only the snapshots to the
+    # NATS cluster (state.keep: cluster), which save just those streams.  A daemon with
+    # its state on disk snapshots every stream, so it must not gather the set: it held
+    # every stream's name for as long as the daemon ran (about 50 bytes a stream).
+    n = 40
+    data = _data(n, WARM + 10, np.random.default_rng(13), steps=False)
+    d = _daemon(_config(tmp_path, "disk"), pool=False)
+    assert not d.in_cluster
+    _warm(d, n, data)
+    assert len(d.engines) == n and all(e.samples_total == WARM for e in d.engines.values())
+    assert d._fed_since_snapshot == set()
+    assert d.journal is not None
+    d.journal.close()

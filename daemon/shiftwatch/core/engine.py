@@ -286,18 +286,19 @@ class Window:
     [4.0, 9.0]
     """
 
-    __slots__ = ("_b", "_n", "keep")
+    # The window's (2, capacity) rows are row ``_i`` of a block of _WindowStore.BLOCK
+    # windows, reached through the block: a view of its own per window would cost an
+    # array object and its shape (about 130 bytes a stream).
+    __slots__ = ("_blk", "_i", "_n", "keep")
 
     def __init__(self, keep: int, slack: int = 8) -> None:
         self.keep = keep
-        # One (2, capacity) view: row 0 the values, row 1 the times (one array object
-        # per stream instead of two: 10,000 streams hold 10,000 windows).
-        self._b = _WindowStore.of(keep + slack).take()
+        self._blk, self._i = _WindowStore.of(keep + slack).take()
         self._n = 0
 
     def __del__(self) -> None:
         try:
-            _WindowStore.of(self._b.shape[1]).give(self._b)
+            _WindowStore.of(self._blk.shape[2]).give(self._blk, self._i)
         except (AttributeError, TypeError):  # half-built, or the interpreter is shutting down
             pass
 
@@ -306,66 +307,74 @@ class Window:
 
     @property
     def capacity(self) -> int:
-        return int(self._b.shape[1])
+        return int(self._blk.shape[2])
+
+    @property
+    def rows(self) -> FloatArray:
+        """The (2, capacity) array itself: row 0 the values, row 1 the times (a view)."""
+        rows: FloatArray = self._blk[self._i]
+        return rows
 
     @property
     def values(self) -> FloatArray:
-        return self._b[0, : self._n]
+        return self._blk[self._i, 0, : self._n]
 
     @property
     def times(self) -> FloatArray:
-        return self._b[1, : self._n]
+        return self._blk[self._i, 1, : self._n]
 
     def extend(self, x: FloatArray, t: FloatArray) -> None:
         m = x.shape[0]
-        b = self._b
+        b = self._blk
+        i = self._i
         if m >= self.keep:
-            b[0, : self.keep] = x[-self.keep:]
-            b[1, : self.keep] = t[-self.keep:]
+            b[i, 0, : self.keep] = x[-self.keep:]
+            b[i, 1, : self.keep] = t[-self.keep:]
             self._n = self.keep
             return
         n = self._n
-        if n + m > b.shape[1]:
+        if n + m > b.shape[2]:
             shift = n + m - self.keep
-            b[:, : n - shift] = b[:, shift:n]
+            b[i, :, : n - shift] = b[i, :, shift:n]
             n -= shift
-        b[0, n: n + m] = x
-        b[1, n: n + m] = t
+        b[i, 0, n: n + m] = x
+        b[i, 1, n: n + m] = t
         self._n = n + m
 
     def push(self, x: float, t: float) -> None:
         """:meth:`extend` by one sample."""
         n = self._n
-        b = self._b
-        if n >= b.shape[1]:
+        b = self._blk
+        i = self._i
+        if n >= b.shape[2]:
             if self.keep < 2:
                 self.extend(np.array([x]), np.array([t]))
                 return
             shift = n + 1 - self.keep
-            b[:, : n - shift] = b[:, shift:n]
+            b[i, :, : n - shift] = b[i, :, shift:n]
             n -= shift
-        b[0, n] = x
-        b[1, n] = t
+        b[i, 0, n] = x
+        b[i, 1, n] = t
         self._n = n + 1
 
-    def at(self, i: int) -> tuple[float, float]:
-        """The time and value of sample ``i`` (0 is the oldest held)."""
-        return float(self._b[1, i]), float(self._b[0, i])
+    def at(self, j: int) -> tuple[float, float]:
+        """The time and value of sample ``j`` (0 is the oldest held)."""
+        return float(self._blk[self._i, 1, j]), float(self._blk[self._i, 0, j])
 
     def drop_front(self, k: int) -> None:
         k = min(k, self._n)
         if k:
-            self._b[:, : self._n - k] = self._b[:, k: self._n]
+            self._blk[self._i, :, : self._n - k] = self._blk[self._i, :, k: self._n]
             self._n -= k
 
     def reset_to(self, x: FloatArray, t: FloatArray) -> None:
         """Hold exactly these samples (the newest ones, if they do not all fit)."""
-        cap = self._b.shape[1]
+        cap = self._blk.shape[2]
         xs = np.asarray(x, dtype=np.float64)[-cap:]
         ts = np.asarray(t, dtype=np.float64)[-cap:]
         self._n = xs.shape[0]
-        self._b[0, : self._n] = xs
-        self._b[1, : self._n] = ts
+        self._blk[self._i, 0, : self._n] = xs
+        self._blk[self._i, 1, : self._n] = ts
 
 
 class _WindowStore:
@@ -375,7 +384,7 @@ class _WindowStore:
     allocation each would sit between the short-lived arrays of batch
     processing and keep the memory freed around them from being returned to
     the system; blocks of :attr:`BLOCK` windows keep them together instead.
-    A window's array goes back to the store when the window is dropped.
+    A window's row goes back to the store when the window is dropped.
     """
 
     BLOCK = 128
@@ -383,7 +392,7 @@ class _WindowStore:
 
     def __init__(self, capacity: int) -> None:
         self.capacity = capacity
-        self._free: list[FloatArray] = []
+        self._free: list[tuple[FloatArray, int]] = []
 
     @classmethod
     def of(cls, capacity: int) -> _WindowStore:
@@ -392,15 +401,16 @@ class _WindowStore:
             store = cls._stores[capacity] = cls(capacity)
         return store
 
-    def take(self) -> FloatArray:
-        """A (2, capacity) array for the values and times of one window (contents undefined)."""
+    def take(self) -> tuple[FloatArray, int]:
+        """A block of (BLOCK, 2, capacity) and the row of it that holds the values and
+        times of one window (contents undefined)."""
         if not self._free:
             block = np.empty((self.BLOCK, 2, self.capacity))
-            self._free.extend(block[i] for i in range(self.BLOCK - 1, -1, -1))
+            self._free.extend((block, i) for i in range(self.BLOCK - 1, -1, -1))
         return self._free.pop()
 
-    def give(self, rows: FloatArray) -> None:
-        self._free.append(rows)
+    def give(self, block: FloatArray, i: int) -> None:
+        self._free.append((block, i))
 
 class Rejection(NamedTuple):
     """A rejected sample: its position in the batch (-1 for a sample of an
@@ -486,6 +496,11 @@ SPLIT_DEFER_ROWS = 64
 #: them in one call (BaselineSums.add with a cut); False: two calls, the reference
 #: (tests/core/test_batch_path.py holds the two to each other).
 FOLD_TOGETHER = True
+#: The follower offsets of the unfolded samples are moved and shifted inside their
+#: array's own buffer (StreamEngine._keep_offsets, _refine); False: the reference, a
+#: buffer emptied and filled again each batch and a new array at each refinement.
+OFFSETS_IN_PLACE = True
+_ONE_ZERO = array("d", [0.0])
 
 
 class _SplitCalled(Exception):
@@ -822,9 +837,7 @@ class StreamEngine:
             if old:
                 n = len(w)
                 a = n - self._unfolded
-                uq = self._unfolded_u
-                wu = np.array(uq[:old], dtype=np.float64)
-                del uq[:old]
+                wu = np.array(self._unfolded_u[:old], dtype=np.float64)
                 if new and FOLD_TOGETHER:
                     # The window's oldest unfolded samples and the batch's first, folded
                     # as two calls would fold them (BaselineSums.add's cut).  They are all
@@ -847,14 +860,42 @@ class StreamEngine:
                         self._sums.add(b, x[:new] - u[:new], t[:new])
             elif new:
                 self._sums.add(b, x[:new] - u[:new], t[:new])
-            # The offsets' doubles as they are (no float object per sample on the way).
-            self._unfolded_u.frombytes((u[new:] if new else u).tobytes())
+            self._keep_offsets(old, u[new:] if new else u)
             self._unfolded -= fold
         else:
-            self._unfolded_u.frombytes(u.tobytes())
+            self._keep_offsets(0, u)
         self._unfolded += m
         if not extended:
             w.extend(x, t)
+
+    def _keep_offsets(self, drop: int, tail: FloatArray) -> None:
+        """The follower offsets of the unfolded samples: the oldest ``drop`` leave, ``tail``
+        joins.  Written into the array's own buffer when its length stays (a batch of a
+        guard or more): a buffer freed and made again each round would land among the
+        round's short-lived objects and keep their memory from going back to the system.
+        The offsets' doubles are copied as they are (no float object per sample)."""
+        uq = self._unfolded_u
+        n = len(uq)
+        if not OFFSETS_IN_PLACE:
+            if drop:
+                del uq[:drop]
+            uq.frombytes(tail.tobytes())
+            return
+        if drop and tail.shape[0] == drop:
+            v = np.frombuffer(uq)
+            v[: n - drop] = v[drop:]
+            v[n - drop:] = tail
+            del v  # the array can be resized again once no view of its buffer is left
+            return
+        # A new array of exactly the doubles it holds (frombytes would allot a tenth
+        # more, and past 512 bytes a guard's worth would leave Python's small-object heap).
+        out = array("d", _ONE_ZERO) * (n - drop + tail.shape[0])
+        if len(out):
+            v = np.frombuffer(out)
+            v[: n - drop] = np.frombuffer(uq)[drop:]
+            v[n - drop:] = tail
+            del v
+        self._unfolded_u = out
 
     def _append_one(self, t: float, x: float, u: float) -> None:
         """:meth:`_append` of one sample, in plain floats (the steady state: the
@@ -1289,7 +1330,7 @@ class StreamEngine:
         min_unknown = SelfStart.MIN_UNKNOWN
         win = self._window
         cap = win.capacity
-        wb = win._b
+        wb = win.rows
         sqrt = math.sqrt
         log1p = math.log1p
         truediv = operator.truediv
@@ -1814,12 +1855,22 @@ class StreamEngine:
             if not math.isinf(follow_samples(b.phi)):
                 self._baseline = nb = replace(nb, level=b.level + self._follow)
             self._follow = self._center = 0.0
-            self._unfolded_u = array("d", bytes(8 * len(self._unfolded_u)))
+            if self._unfolded_u and OFFSETS_IN_PLACE:  # in place, as in _keep_offsets
+                v = np.frombuffer(self._unfolded_u)
+                v[:] = 0.0
+                del v
+            elif self._unfolded_u:
+                self._unfolded_u = array("d", bytes(8 * len(self._unfolded_u)))
         else:
             shift = b.level - nb.level
             self._follow += shift
             self._center += shift
-            if self._unfolded_u:
+            if self._unfolded_u and OFFSETS_IN_PLACE:
+                # v + shift for each, in place (IEEE addition: the same doubles as in floats)
+                v = np.frombuffer(self._unfolded_u)
+                v += shift
+                del v
+            elif self._unfolded_u:
                 self._unfolded_u = array("d", [v + shift for v in self._unfolded_u])
         k_min = None if s.test == "glr" else 0.5
         grown = abs(math.log(estimation_adjusted_arl(1e6, nb.n, k_min, nb.level_n)

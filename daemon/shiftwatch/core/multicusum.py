@@ -280,7 +280,7 @@ class MultiCusumTest(SequentialTest):
         taken) where that would raise, a bank of another number of charts."""
         if other._bank.m != self._bank.m:
             return False
-        self._c = other._c.copy()
+        self._c[:] = other._c
         self._stat = float(other._stat)
         self._dir = int(other._dir)
         self._tripped = int(other._tripped)
@@ -293,7 +293,7 @@ class MultiCusumTest(SequentialTest):
 
     def back_to(self, mark: tuple[FloatArray, float, int, int]) -> None:
         """The state :meth:`mark` returned, exactly."""
-        self._c = mark[0].copy()
+        self._c[:] = mark[0]
         self._stat, self._dir, self._tripped = mark[1], mark[2], mark[3]
 
     # -------------------------------------------------------------- properties
@@ -375,17 +375,17 @@ class MultiCusumTest(SequentialTest):
             if any(map(operator.gt, np.maximum.reduce(s, axis=1).tolist(), bank.h2_list)):
                 hit = (s > bank.h2_col).any(axis=0)
                 i = int(np.argmax(hit))
-                col = s[:, i].copy()
+                col = self._c
+                col[:] = s[:, i]
                 ratio = col / h2
                 # first maximum: upper sums come first, so a tie goes up (as in CusumTest)
                 row = int(np.argmax(ratio))
                 j = row % m
-                self._c = col
                 self._stat = float(ratio[row])
                 self._tripped = j
                 self._dir = 1 if row < m else -1
                 return start + i
-            self._c = s[:, -1].copy()
+            self._c[:] = s[:, -1]
             # the largest C / h in plain floats: the same divisions, and max is exact
             self._stat = max(map(operator.truediv, self._c.tolist(), bank.h2_list))
             start = stop
@@ -430,16 +430,14 @@ class MultiCusumTest(SequentialTest):
         """The state :meth:`_update_small` leaves after its last sample: ``c`` the sums
         after it, ``tripped`` whether a chart exceeded its h on it."""
         bank = self._bank
+        self._c[:] = c
         if tripped:
-            col = np.asarray(c)
-            ratio = col / bank.h2
+            ratio = self._c / bank.h2
             row = int(np.argmax(ratio))
-            self._c = col
             self._stat = float(ratio[row])
             self._tripped = row % bank.m
             self._dir = 1 if row < bank.m else -1
             return
-        self._c = np.asarray(c)
         self._stat = max(map(operator.truediv, c, bank.h2_list))
 
     def _block_fast(self, blk: FloatArray) -> int:
@@ -507,7 +505,7 @@ class MultiCusumTest(SequentialTest):
                     bound = math.inf  # this chart can only fall in this block
                 if c1max <= bound and c1end <= 0.0:
                     continue  # cannot trip, and ends at zero like the first chart
-                st = signed - bank.kramp[i, :n]
+                st = signed - ks[i] * _STEPS[:n]
                 rows[i] = st
                 if c1max <= bound:
                     continue
@@ -531,10 +529,10 @@ class MultiCusumTest(SequentialTest):
                 continue  # every chart of this side is at zero
             for i in range(1, m):
                 kept = tilde[side].get(i)
-                st = signs[side] - bank.kramp[i, :n] if kept is None else kept
+                st = signs[side] - ks[i] * _STEPS[:n] if kept is None else kept
                 low = float(st[: t + 1].min()) if t < n - 1 else float(st.min())
                 col[side * m + i] = st[t] - min(-float(cs[i]), low)
-        self._c = col
+        self._c[:] = col
         ratio = col / bank.h2
         if best_t < n:
             row = int(np.argmax(ratio))
@@ -584,7 +582,7 @@ class _Bank:
     from them, shared (read-only) by every :class:`MultiCusumTest` built with
     the same charts."""
 
-    __slots__ = ("ascending", "h2", "h2_col", "h2_list", "h_arr", "hs", "k_arr", "k_col", "kramp", "ks", "m")
+    __slots__ = ("ascending", "h2", "h2_col", "h2_list", "h_arr", "hs", "k_arr", "k_col", "ks", "m")
 
     def __init__(self, ks: tuple[float, ...], hs: tuple[float, ...]) -> None:
         self.ks = ks
@@ -599,8 +597,6 @@ class _Bank:
         self.h2_list = tuple(self.h2.tolist())  # the same, for plain-Python divisions
         # The in-control fast path needs the charts in ascending order of k.
         self.ascending = bool(np.all(np.diff(self.k_arr) > 0)) and self.m > 1
-        # k_i * (1, 2, ..., BLOCK): the drift term of each chart over a block.
-        self.kramp = _drift_ramps(ks)
 
 
 def _frozen(a: FloatArray) -> FloatArray:
@@ -613,11 +609,9 @@ def _bank(ks: tuple[float, ...], hs: tuple[float, ...]) -> _Bank:
     return _Bank(ks, hs)
 
 
-@functools.lru_cache(maxsize=64)
-def _drift_ramps(ks: tuple[float, ...]) -> FloatArray:
-    ramps = np.asarray(ks, dtype=np.float64)[:, None] * np.arange(1.0, BLOCK + 1.0)[None, :]
-    ramps.flags.writeable = False
-    return ramps
+#: 1, 2, ..., BLOCK: a chart's drift over a block is ``k * _STEPS[:n]``, worked out where
+#: it is needed (a table of them per design took 128 kB a bank of four charts).
+_STEPS = _frozen(np.arange(1.0, BLOCK + 1.0))
 
 
 #: Batches up to this size take the plain-Python path.
