@@ -899,12 +899,22 @@ def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUN
     with open(src.path, "rb") as fb:
         offset = src.body_start  # of the chunk's first byte in the file
         line0 = src.body_line
+        size = os.fstat(fb.fileno()).st_size  # a file cut short meanwhile is named, not read in part
+
+        def whole(at: int) -> None:
+            if at < size:
+                raise CsvFormatError(f"{src.path}: the file changed while it was read (it ends at byte {at:,}, "
+                                     f"not {size:,})")
+
         while True:
             fb.seek(offset)
             data = fb.read(chunk_bytes)
             if not data:
+                whole(offset)
                 return
             eof = len(data) < chunk_bytes
+            if eof:
+                whole(offset + len(data))
             if data.find(b'"') >= 0:
                 # Only reading the rows finds where they end: read them here, up to the
                 # first row that ends at or past the chunk's size.
@@ -923,6 +933,8 @@ def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUN
                 more = fb.read(chunk_bytes)
                 eof = len(more) < chunk_bytes
                 data += more
+                if eof:
+                    whole(offset + len(data))
                 nl = data.rfind(b"\n")
             cut = len(data) if eof else nl + 1
             # The next chunk starts after the last newline: it is read again from there, so

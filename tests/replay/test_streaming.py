@@ -15,7 +15,7 @@ from pathlib import Path
 
 import pytest
 
-from shiftwatch.replay import KEEP_PROBLEMS, replay_files
+from shiftwatch.replay import KEEP_PROBLEMS, CsvFormatError, replay_files
 
 from .history import (
     json_lines,
@@ -142,6 +142,24 @@ def test_a_replay_whose_shared_slots_cannot_be_mapped_hands_every_share_through_
     whole = replay_files([messy], jobs=1, chunk_bytes=1 << 30)
     res = replay_files([messy], jobs=2, chunk_bytes=4099)
     assert json_lines(res.records) == json_lines(whole.records) and res.problems == whole.problems
+
+
+def test_a_file_cut_short_while_it_is_replayed_is_named_in_one_process_as_in_several(tmp_path: Path) -> None:
+    # A historian rewriting its export under the replay: the rows planned and not yet read are
+    # gone.  One process read the chunks as it went and ended early without a word; several
+    # read planned byte ranges and named the file.  Both name it now.
+    for jobs in (1, 2):
+        path = write_long(tmp_path / f"line4-{jobs}.csv", readings(3000))
+        size = path.stat().st_size
+        assert size > 20 * 20_000  # twenty chunks and more
+
+        def cut(nbytes: int, path: Path = path, size: int = size) -> None:
+            if path.stat().st_size == size:  # after the first chunk read
+                with open(path, "r+b") as f:
+                    f.truncate(size // 2)
+
+        with pytest.raises(CsvFormatError, match=r"line4-\d\.csv: the file changed while it was read"):
+            replay_files([path], jobs=jobs, chunk_bytes=20_000, progress=cut)
 
 
 LOW_FILE_LIMIT = textwrap.dedent("""
