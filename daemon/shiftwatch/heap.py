@@ -2,12 +2,13 @@
 
 glibc's malloc serves a block of 128 KB or more with an mmap of its own and unmaps it when
 it is freed, and gives the top of its heap back to the system when more than 128 KB of it
-is free (it raises both limits as it sees larger blocks freed, but not far enough for a
-replay's chunks).  A replay allocates and frees arrays of a few hundred kilobytes to a few
-megabytes for every chunk of every file, so without :func:`keep_freed_memory` each chunk's
-arrays are mapped afresh and every page of them is a page fault: about 66,000 in a
-one-process replay of the 2.4-million-row benchmark file and 105,000 with ``--jobs 2``,
-against 15,000 and 29,000 with it (``perf stat``, 2026-12-04), at the same peak size.
+is free.  It raises the first limit to the largest block it has seen freed, and the second
+to twice that, which is not enough for a replay: each chunk allocates and frees several
+arrays of a few hundred kilobytes to a few megabytes, so the top of the heap is given back
+and taken again chunk after chunk, a page fault for every page taken again.  Without
+:func:`keep_freed_memory`: about 66,000 faults in a one-process replay of the
+2.4-million-row benchmark file and 105,000 with ``--jobs 2``; with it 15,000 and 29,000
+(``perf stat``, 2026-12-04), at the same peak size.
 
 Everything here is a no-op where glibc is not the C library.
 """

@@ -408,14 +408,16 @@ class _Slots:
     def __init__(self, slot_bytes: int) -> None:
         self.count = LOOKAHEAD + 2
         self.rows = max(1, slot_bytes // 24)
+        self.mem: mmap.mmap | None
         try:
             self.mem = mmap.mmap(-1, self.count * self.rows * 24)  # anonymous and shared: kept across fork
         except OSError:  # no address space or commit left for it (ulimit -v, strict overcommit)
             self.rows = 0  # every share goes through the pipe
-            self.mem = mmap.mmap(-1, mmap.PAGESIZE)
+            self.mem = None
         self.next = 0
 
     def view(self, slot: int, rows: int) -> tuple[FloatArray, FloatArray, IntArray]:
+        assert self.mem is not None  # a share is put in a slot only when there are slots
         base = slot * self.rows * 24
         t = np.frombuffer(self.mem, np.float64, rows, base)
         v = np.frombuffer(self.mem, np.float64, rows, base + 8 * self.rows)

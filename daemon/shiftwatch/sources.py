@@ -903,8 +903,7 @@ def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUN
 
         def whole(at: int) -> None:
             if at < size:
-                raise CsvFormatError(f"{src.path}: the file changed while it was read (it ends at byte {at:,}, "
-                                     f"not {size:,})")
+                raise _changed(src.path, at, size)
 
         while True:
             fb.seek(offset)
@@ -1290,8 +1289,14 @@ def _read_at(path: str, offset: int, size: int, opened: dict[str, Any] | None) -
     if opened is None:
         f.close()
     if len(chunk) != size:
-        raise CsvFormatError(f"{path}: the file changed while it was read")
+        raise _changed(path, offset + len(chunk), offset + size)
     return chunk
+
+
+def _changed(path: str, at: int, expected: int) -> CsvFormatError:
+    """A file that ends (at byte ``at``) before the bytes planned from it (``expected``)."""
+    return CsvFormatError(f"{path}: the file changed while it was read (it ends at byte {at:,}, "
+                          f"not {expected:,})")
 
 
 def parse_task(task: tuple[Any, ...], sources: list[Source], tz: tzinfo | None,
