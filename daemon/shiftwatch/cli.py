@@ -11,12 +11,19 @@ from __future__ import annotations
 import argparse
 import json
 import logging
+import os
 import sys
 import time
 from collections.abc import Sequence
 from typing import Any, TextIO
 
 from shiftwatch import __version__
+
+# numpy's OpenBLAS starts a worker thread a core when numpy is loaded, and reads this
+# once, then.  The commands' vectors (a few thousand samples at most) never reach the
+# sizes it splits between threads, so the workers cost only their start: about 70 ms of
+# CPU a command on two cores.  A user's own setting is kept (tests/cli/test_threads.py).
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 EXIT_OK = 0
 EXIT_BAD_DATA = 1  # some rows or values were bad; the good ones were processed
