@@ -51,6 +51,7 @@ from shiftwatch.sources import (
     CsvFormatError,
     Source,
     open_sources,
+    parquet_pieces,
     parse_task,
     tasks,
     time_zone,
@@ -317,12 +318,17 @@ def replay_files(paths: Iterable[str | Path], settings_for: Callable[[str], Dete
     jobs = _jobs_the_files_allow(jobs)
     if jobs <= 1 or _small(sources, chunk_bytes):
         feeder = _Feeder(sources, settings_for, unit_for, trace_options)
-        for task in tasks(sources, tz, chunk_bytes):
-            block = parse_task(task, sources, tz, {})
-            feeder.take_block(block)
-            feeder.add(block.parts)
-            if progress is not None:
-                progress(block.nbytes)
+        opened: dict[str, Any] = {}  # the file being read (and where in a Parquet row group)
+        try:
+            for task in tasks(sources, tz, chunk_bytes):
+                block = parse_task(task, sources, tz, opened)
+                feeder.take_block(block)
+                feeder.add(block.parts)
+                if progress is not None:
+                    progress(block.nbytes)
+        finally:
+            for f in opened.values():
+                f.close()
         return _merge([(feeder.finish(), feeder.read_summary())])
     return _replay_in_processes(sources, settings_for, unit_for, trace_options, tz, jobs, progress, chunk_bytes)
 
@@ -373,7 +379,7 @@ def _small(sources: list[Source], chunk_bytes: int) -> bool:
         return False
     src = sources[0]
     if src.kind == "parquet":
-        return len(src.group_rows) <= 2
+        return len(src.group_rows) <= 2 and len(parquet_pieces(src.group_rows[-1])) == 1
     try:
         return os.path.getsize(src.path) - src.body_start <= chunk_bytes
     except OSError:

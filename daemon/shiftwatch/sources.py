@@ -52,6 +52,10 @@ LAYOUTS = ("auto", "long", "wide")
 CHUNK_BYTES = 1 << 21
 #: Parquet rows handled at once within a row group.
 PARQUET_SLICE = 1 << 16
+#: Parquet rows of one piece (a task, and a Block): a row group with more is read in pieces of
+#: this many (rounded down to whole slices), so memory does not grow with the row group
+#: (pyarrow writes groups of up to 1,048,576 rows by default, Spark by bytes, often far more).
+PARQUET_PIECE = 1 << 18
 #: A row's place is ``file index << PLACE_BITS | line`` (CSV) or ``| row`` (Parquet).
 PLACE_BITS = 40
 _PLACE_MASK = (1 << PLACE_BITS) - 1
@@ -999,10 +1003,21 @@ def _open_parquet(path: str, layout: str) -> Source:
     return Source(path, "parquet", lay, header, ti, si, vi, tags, group_rows=offsets)
 
 
+def parquet_pieces(rows: int) -> list[tuple[int, int]]:
+    """The pieces of a row group of ``rows`` rows: ``(first row, stop)`` of at most
+    :data:`PARQUET_PIECE` rows each, whole slices (an empty group is one empty piece)."""
+    piece = max(PARQUET_SLICE, PARQUET_PIECE - PARQUET_PIECE % PARQUET_SLICE)
+    return [(a, min(rows, a + piece)) for a in range(0, max(rows, 1), piece)]
+
+
 def parquet_tasks(src: Source, fidx: int, first_index: int = 0) -> Iterator[tuple[Any, ...]]:
-    """The row groups of a Parquet file: ``("parquet", file, row group, index)``."""
+    """The pieces of a Parquet file's row groups: ``("parquet", file, row group, index, first
+    row, stop)``, rows counted within the group."""
+    index = first_index
     for g in range(len(src.group_rows) - 1):
-        yield ("parquet", fidx, g, first_index + g)
+        for a, b in parquet_pieces(src.group_rows[g + 1] - src.group_rows[g]):
+            yield ("parquet", fidx, g, index, a, b)
+            index += 1
 
 
 class _GroupProblems:
@@ -1150,9 +1165,58 @@ def _is_number_type(t: Any) -> bool:
     return bool(pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t))
 
 
+class _GroupCursor:
+    """Where the reading of a row group stands, kept (in ``opened``) from one piece to the
+    next, so that a process reading a group's pieces in turn decodes each row once."""
+
+    def __init__(self, g: int, batches: Any) -> None:
+        self.g = g
+        self.batches = batches
+        self.row = 0  # of the group, the first not yet taken
+        self.rest: Any = None  # rows of a batch read past a piece's end
+
+    def take(self) -> Any:
+        """The next rows (a record batch), or None at the group's end; pyarrow's errors pass."""
+        if self.rest is not None:
+            part, self.rest = self.rest, None
+        else:
+            part = next(self.batches, None)
+        if part is not None:
+            self.row += part.num_rows
+        return part
+
+    def give_back(self, part: Any) -> None:
+        self.rest = part
+        self.row -= part.num_rows
+
+    def close(self) -> None:  # _kept_open closes what it drops
+        self.batches = iter(())
+
+
+def _group_cursor(opened: dict[str, Any] | None, pf: Any, path: str, g: int, first: int,
+                  want: list[str]) -> _GroupCursor:
+    """A cursor at row ``first`` of row group ``g``: the one kept from the piece before when it
+    is not past that row, else a new one that reads its way there."""
+    key = path + "\0rows"
+    cur = None if opened is None else opened.get(key)
+    if not (isinstance(cur, _GroupCursor) and cur.g == g and cur.row <= first):
+        cur = _GroupCursor(g, pf.iter_batches(batch_size=PARQUET_SLICE, row_groups=[g], columns=want,
+                                              use_threads=False))
+        if opened is not None:
+            opened[key] = cur
+    while cur.row < first:
+        part = cur.take()
+        if part is None:
+            break
+        if cur.row > first:  # a batch across the piece's first row: keep its part from there
+            cur.give_back(part.slice(part.num_rows - (cur.row - first)))
+    return cur
+
+
 def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo | None,
-                        opened: dict[str, Any] | None = None) -> Block:
-    """One row group's rows per stream, :data:`PARQUET_SLICE` rows at a time.
+                        opened: dict[str, Any] | None = None, first: int = 0, stop: int | None = None) -> Block:
+    """Rows ``first`` to ``stop`` of a row group (all of it by default) per stream,
+    :data:`PARQUET_SLICE` rows at a time.
 
     Null or unreadable times, null values and null or empty stream names are
     problems named by file, row group, row and column; a null cell of a wide
@@ -1161,7 +1225,7 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
     import pyarrow as pa
 
     pq = _pyarrow()
-    pf = _kept_open(opened, src.path, lambda: pq.ParquetFile(src.path))
+    pf = _kept_open(opened, src.path, lambda: pq.ParquetFile(src.path, pre_buffer=False, buffer_size=1 << 20))
     tname = src.header[src.time_col]
     if src.layout == "long":
         value_cols = [(src.header[src.value_col], "")]
@@ -1169,24 +1233,36 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
     else:
         value_cols = [(src.header[c], tag) for c, tag in src.tags]
         want = [tname] + [c for c, _ in value_cols]
-    n = 0
+    group = src.group_rows[g + 1] - src.group_rows[g]
+    stop = group if stop is None else stop
+    n = first  # rows of the group taken so far
     base = src.group_rows[g]
     fbits = fidx << PLACE_BITS
     problems = _GroupProblems(src, g)
     collected: dict[str, list[tuple[FloatArray, FloatArray, IntArray]]] = {}
-    batches = pf.iter_batches(batch_size=PARQUET_SLICE, row_groups=[g], columns=want, use_threads=False)
-    while True:
+    cursor = None
+    while n < stop:
         try:
-            part = next(batches)
-        except StopIteration:
-            break
+            if cursor is None:
+                cursor = _group_cursor(opened, pf, src.path, g, n, want)
+            # (a cursor short of row n: the group ended early, its metadata counting more rows)
+            part = cursor.take() if cursor.row >= n else None
         except Exception as exc:  # noqa: BLE001 - pyarrow's errors for damaged pages are of many kinds
-            lost = src.group_rows[g + 1] - src.group_rows[g] - n
+            if opened is not None:
+                opened.pop(src.path + "\0rows", None)  # the next piece tries afresh
+            lost = stop - n
+            skipped = (f"its last {lost} rows were skipped" if stop == group else
+                       f"rows {n} to {stop - 1} ({lost}) were skipped")
             problems.messages.append(f"{problems.where}: unreadable from row {n} on ({' '.join(str(exc).split())}); "
-                                     f"its last {lost} rows were skipped")
+                                     f"{skipped}")
             problems.unlisted += lost - 1
             n += lost
             break
+        if part is None:
+            break
+        if n + part.num_rows > stop:  # past the piece: the rest is the next piece's
+            cursor.give_back(part.slice(stop - n))
+            part = part.slice(0, stop - n)
         a = n
         m = part.num_rows
         n += m
@@ -1218,8 +1294,8 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
     # A stream's pieces stay apart (in order): joining them would hold the row group twice.
     parts = [(key, *piece) for key, pieces in collected.items() for piece in pieces]
     size = _file_size(src.path)
-    nbytes = size * n // max(1, src.group_rows[-1])  # for progress: the group's share of the file
-    return Block(index, fidx, parts, problems.messages, n, nbytes, unlisted=problems.unlisted)
+    nbytes = size * (n - first) // max(1, src.group_rows[-1])  # for progress: the piece's share of the file
+    return Block(index, fidx, parts, problems.messages, n - first, nbytes, unlisted=problems.unlisted)
 
 
 def _file_size(path: str) -> int:
@@ -1311,5 +1387,5 @@ def parse_task(task: tuple[Any, ...], sources: list[Source], tz: tzinfo | None,
         if chunk is None:
             chunk = _read_at(sources[fidx].path, offset, size, opened)
         return parse_csv_chunk(sources[fidx], fidx, line0, chunk, index, tz, size)
-    _, fidx, g, index = task
-    return parse_parquet_group(sources[fidx], fidx, g, index, tz, opened)
+    _, fidx, g, index, first, stop = task
+    return parse_parquet_group(sources[fidx], fidx, g, index, tz, opened, first, stop)
