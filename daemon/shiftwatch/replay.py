@@ -717,20 +717,25 @@ def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone
     rows = 0
     noted: set[int] = set()
     by_file: dict[int, list[str]] = {}
-    for task in tasks(sources, tz):
-        block = parse_task(task, sources, tz, {})
-        rows += block.rows
-        if block.note is not None and block.file not in noted:
-            noted.add(block.file)
-        by_file.setdefault(block.file, []).extend(block.problems)
-        for name, t, v, p in block.parts:
-            if only is not None and name != only:
-                streams.setdefault(name, StreamSeries(sources))
-                continue
-            ser = streams.get(name)
-            if ser is None:
-                ser = streams[name] = StreamSeries(sources)
-            ser.add(t, v, p)
+    opened: dict[str, Any] = {}  # as in replay_files: a Parquet group's pieces read in turn
+    try:
+        for task in tasks(sources, tz):
+            block = parse_task(task, sources, tz, opened)
+            rows += block.rows
+            if block.note is not None and block.file not in noted:
+                noted.add(block.file)
+            by_file.setdefault(block.file, []).extend(block.problems)
+            for name, t, v, p in block.parts:
+                if only is not None and name != only:
+                    streams.setdefault(name, StreamSeries(sources))
+                    continue
+                ser = streams.get(name)
+                if ser is None:
+                    ser = streams[name] = StreamSeries(sources)
+                ser.add(t, v, p)
+    finally:
+        for f in opened.values():
+            f.close()
     for f in sorted(set(by_file) | noted):
         if f in noted:
             problems.append(f"{sources[f].path}: the file is not valid UTF-8; unreadable characters were replaced")

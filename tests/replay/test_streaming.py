@@ -341,6 +341,12 @@ def test_the_pieces_of_a_parquet_row_group_give_the_records_of_the_csv(tmp_path:
     # Reference: the stdlib csv reader's rows, each stream fed to its engine in one batch.
     assert json_lines(res.records) == json_lines(whole.records) == one_batch_records(stdlib_long(csv_path)[0])
     assert res.rows == 24_000 and res.problem_count == whole.problem_count
+    # fit's reader, which keeps whole series, reads the pieces as the stdlib csv reader reads the CSV
+    from shiftwatch.replay import read_long_csv
+
+    series = read_long_csv([pq_path]).streams
+    for name, (t, v) in stdlib_long(csv_path)[0].items():
+        assert series[name].times.tolist() == list(t) and series[name].values.tolist() == list(v)
 
 
 def test_a_damaged_page_in_a_row_group_read_in_pieces_costs_the_rows_from_it_on(tmp_path: Path, monkeypatch) -> None:
