@@ -379,7 +379,7 @@ def _small(sources: list[Source], chunk_bytes: int) -> bool:
         return False
     src = sources[0]
     if src.kind == "parquet":
-        return len(src.group_rows) <= 2 and len(parquet_pieces(src.group_rows[-1])) == 1
+        return len(src.group_rows) <= 2 and len(parquet_pieces(src, src.group_rows[-1])) == 1
     try:
         return os.path.getsize(src.path) - src.body_start <= chunk_bytes
     except OSError:

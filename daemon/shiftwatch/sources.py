@@ -50,11 +50,16 @@ LAYOUTS = ("auto", "long", "wide")
 
 #: Bytes of CSV read per chunk (cut at the next line end).
 CHUNK_BYTES = 1 << 21
-#: Parquet rows handled at once within a row group.
+#: Parquet cells (rows times value columns) handled at once within a row group: 65,536 rows
+#: of a long file, 327 of a wide one with 200 tags.
 PARQUET_SLICE = 1 << 16
-#: Parquet rows of one piece (a task, and a Block): a row group with more is read in pieces of
-#: this many (rounded down to whole slices), so memory does not grow with the row group
-#: (pyarrow writes groups of up to 1,048,576 rows by default, Spark by bytes, often far more).
+#: The fewest rows of a slice, however wide the file (each value column costs a few array calls
+#: a slice).
+PARQUET_SLICE_MIN_ROWS = 1024
+#: Parquet cells of one piece (a task, and a Block): a row group with more is read in pieces of
+#: this many (rounded down to whole slices), so memory grows neither with the row group
+#: (pyarrow writes groups of up to 1,048,576 rows by default, Spark by bytes, often far more)
+#: nor with the number of tags.
 PARQUET_PIECE = 1 << 18
 #: A row's place is ``file index << PLACE_BITS | line`` (CSV) or ``| row`` (Parquet).
 PLACE_BITS = 40
@@ -1003,10 +1008,15 @@ def _open_parquet(path: str, layout: str) -> Source:
     return Source(path, "parquet", lay, header, ti, si, vi, tags, group_rows=offsets)
 
 
-def parquet_pieces(rows: int) -> list[tuple[int, int]]:
+def parquet_slice_rows(src: Source) -> int:
+    """Rows of a slice of this Parquet file: :data:`PARQUET_SLICE` cells of its value columns."""
+    return max(PARQUET_SLICE_MIN_ROWS, PARQUET_SLICE // max(1, len(src.tags)))
+
+
+def parquet_pieces(src: Source, rows: int) -> list[tuple[int, int]]:
     """The pieces of a row group of ``rows`` rows: ``(first row, stop)`` of at most
-    :data:`PARQUET_PIECE` rows each, whole slices (an empty group is one empty piece)."""
-    piece = max(PARQUET_SLICE, PARQUET_PIECE - PARQUET_PIECE % PARQUET_SLICE)
+    :data:`PARQUET_PIECE` cells each, whole slices (an empty group is one empty piece)."""
+    piece = parquet_slice_rows(src) * max(1, PARQUET_PIECE // PARQUET_SLICE)
     return [(a, min(rows, a + piece)) for a in range(0, max(rows, 1), piece)]
 
 
@@ -1015,7 +1025,7 @@ def parquet_tasks(src: Source, fidx: int, first_index: int = 0) -> Iterator[tupl
     row, stop)``, rows counted within the group."""
     index = first_index
     for g in range(len(src.group_rows) - 1):
-        for a, b in parquet_pieces(src.group_rows[g + 1] - src.group_rows[g]):
+        for a, b in parquet_pieces(src, src.group_rows[g + 1] - src.group_rows[g]):
             yield ("parquet", fidx, g, index, a, b)
             index += 1
 
@@ -1165,12 +1175,19 @@ def _is_number_type(t: Any) -> bool:
     return bool(pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t))
 
 
+def _parquet_buffer(columns: int) -> int:
+    """Bytes of pyarrow's read buffer per column: 1 MiB for a long file's three columns, down to
+    64 KiB for many (a buffer per column: 200 tags with 1 MiB each held 200 MB)."""
+    return max(1 << 16, min(1 << 20, (1 << 23) // max(1, columns)))
+
+
 class _GroupCursor:
     """Where the reading of a row group stands, kept (in ``opened``) from one piece to the
     next, so that a process reading a group's pieces in turn decodes each row once."""
 
-    def __init__(self, g: int, batches: Any) -> None:
+    def __init__(self, g: int, size: int, batches: Any) -> None:
         self.g = g
+        self.size = size  # rows of its batches
         self.batches = batches
         self.row = 0  # of the group, the first not yet taken
         self.rest: Any = None  # rows of a batch read past a piece's end
@@ -1194,14 +1211,14 @@ class _GroupCursor:
 
 
 def _group_cursor(opened: dict[str, Any] | None, pf: Any, path: str, g: int, first: int,
-                  want: list[str]) -> _GroupCursor:
+                  want: list[str], size: int) -> _GroupCursor:
     """A cursor at row ``first`` of row group ``g``: the one kept from the piece before when it
     is not past that row, else a new one that reads its way there."""
     key = path + "\0rows"
     cur = None if opened is None else opened.get(key)
-    if not (isinstance(cur, _GroupCursor) and cur.g == g and cur.row <= first):
-        cur = _GroupCursor(g, pf.iter_batches(batch_size=PARQUET_SLICE, row_groups=[g], columns=want,
-                                              use_threads=False))
+    if not (isinstance(cur, _GroupCursor) and cur.g == g and cur.size == size and cur.row <= first):
+        cur = _GroupCursor(g, size, pf.iter_batches(batch_size=size, row_groups=[g], columns=want,
+                                                    use_threads=False))
         if opened is not None:
             opened[key] = cur
     while cur.row < first:
@@ -1216,7 +1233,7 @@ def _group_cursor(opened: dict[str, Any] | None, pf: Any, path: str, g: int, fir
 def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo | None,
                         opened: dict[str, Any] | None = None, first: int = 0, stop: int | None = None) -> Block:
     """Rows ``first`` to ``stop`` of a row group (all of it by default) per stream,
-    :data:`PARQUET_SLICE` rows at a time.
+    :data:`PARQUET_SLICE` cells at a time.
 
     Null or unreadable times, null values and null or empty stream names are
     problems named by file, row group, row and column; a null cell of a wide
@@ -1225,7 +1242,6 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
     import pyarrow as pa
 
     pq = _pyarrow()
-    pf = _kept_open(opened, src.path, lambda: pq.ParquetFile(src.path, pre_buffer=False, buffer_size=1 << 20))
     tname = src.header[src.time_col]
     if src.layout == "long":
         value_cols = [(src.header[src.value_col], "")]
@@ -1233,6 +1249,8 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
     else:
         value_cols = [(src.header[c], tag) for c, tag in src.tags]
         want = [tname] + [c for c, _ in value_cols]
+    pf = _kept_open(opened, src.path, lambda: pq.ParquetFile(src.path, pre_buffer=False,
+                                                             buffer_size=_parquet_buffer(len(want))))
     group = src.group_rows[g + 1] - src.group_rows[g]
     stop = group if stop is None else stop
     n = first  # rows of the group taken so far
@@ -1244,7 +1262,7 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
     while n < stop:
         try:
             if cursor is None:
-                cursor = _group_cursor(opened, pf, src.path, g, n, want)
+                cursor = _group_cursor(opened, pf, src.path, g, n, want, parquet_slice_rows(src))
             # (a cursor short of row n: the group ended early, its metadata counting more rows)
             part = cursor.take() if cursor.row >= n else None
         except Exception as exc:  # noqa: BLE001 - pyarrow's errors for damaged pages are of many kinds

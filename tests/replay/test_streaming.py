@@ -284,6 +284,7 @@ PIECE_PROBE = textwrap.dedent("""
     from shiftwatch import sources
     from shiftwatch.replay import replay_files
     sources.PARQUET_SLICE = 10_000
+    sources.PARQUET_SLICE_MIN_ROWS = 1
     sources.PARQUET_PIECE = 20_000
     tracemalloc.start()
     res = replay_files([sys.argv[1]], jobs=1)
@@ -306,6 +307,39 @@ def one_group_parquet(path: Path, data: dict) -> Path:
     pq.write_table(table, path, row_group_size=table.num_rows)
     assert pq.ParquetFile(path).metadata.num_row_groups == 1
     return path
+
+
+WIDE_PIECE_PROBE = PIECE_PROBE.replace("sources.PARQUET_PIECE = 20_000", "sources.PARQUET_PIECE = 40_000")
+
+
+def one_group_wide_parquet(path: Path, data: dict) -> Path:
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    names = list(data)
+    t = data[names[0]][0]
+    table = pa.table({"time": pa.array((t * 1e3).round().astype("int64"), pa.timestamp("ms", tz="UTC")),
+                      **{k: pa.array(data[k][1]) for k in names}})
+    pq.write_table(table, path, row_group_size=table.num_rows)
+    return path
+
+
+def test_a_wide_parquet_row_group_is_read_in_pieces_of_cells_not_rows(tmp_path: Path) -> None:
+    # 120,000 rows of 200 tags in one row group (a wide historian export) took a replay to
+    # 499 MB (measured 2026-12-04): slices and pieces counted rows, whatever their width.
+    # Here 40 tags: a slice of 10,000 cells is 250 rows, a piece of 40,000 cells 1,000 rows.
+    names = [f"brackenfield/line3/tag{k:02d}" for k in range(40)]
+    small = one_group_wide_parquet(tmp_path / "small.parquet", readings(5_000, names))
+    big = one_group_wide_parquet(tmp_path / "big.parquet", readings(20_000, names))
+
+    def peak(path: Path) -> tuple[int, int, int]:
+        out = subprocess.run([sys.executable, "-c", WIDE_PIECE_PROBE, str(path)], capture_output=True,
+                             text=True, timeout=600, check=True).stdout.split()
+        return int(out[0]), int(out[1]), int(out[2])
+
+    (ps, _, ns), (pb, rb, nb) = peak(small), peak(big)
+    assert (ns, nb) == (5_000, 20_000) and rb > 0
+    assert pb <= 1.10 * ps, (ps, pb)
 
 
 def test_a_parquet_row_group_is_read_in_pieces_so_memory_follows_the_streams(tmp_path: Path) -> None:
@@ -333,6 +367,7 @@ def test_the_pieces_of_a_parquet_row_group_give_the_records_of_the_csv(tmp_path:
     pq_path = one_group_parquet(tmp_path / "line2.parquet", data)
     whole = replay_files([pq_path], jobs=1)
     monkeypatch.setattr(sources, "PARQUET_SLICE", 1_000)
+    monkeypatch.setattr(sources, "PARQUET_SLICE_MIN_ROWS", 1)
     monkeypatch.setattr(sources, "PARQUET_PIECE", 3_500)  # not a whole number of slices: 3 of them
     blocks = [sources.parse_task(t, sources.open_sources([str(pq_path)], "auto"), None)
               for t in sources.tasks(sources.open_sources([str(pq_path)], "auto"), None)]
@@ -367,6 +402,7 @@ def test_a_damaged_page_in_a_row_group_read_in_pieces_costs_the_rows_from_it_on(
     raw[middle:end] = b"\xab" * (end - middle)  # page headers included: pyarrow cannot read on
     path.write_bytes(raw)
     monkeypatch.setattr(sources, "PARQUET_SLICE", 1_000)
+    monkeypatch.setattr(sources, "PARQUET_SLICE_MIN_ROWS", 1)
     monkeypatch.setattr(sources, "PARQUET_PIECE", 3_000)
     one = replay_files([path], jobs=1)
     two = replay_files([path], jobs=2)
