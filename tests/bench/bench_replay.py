@@ -127,7 +127,7 @@ def write_wide(path: Path, seconds: int, texts: list[list[str]]) -> int:
     return seconds * STREAMS
 
 
-def write_parquet(path: Path, seconds: int, texts: list[list[str]]) -> int:
+def write_parquet(path: Path, seconds: int, texts: list[list[str]], row_group_size: int = 1 << 20) -> int:
     import pyarrow as pa
     import pyarrow.parquet as pq
 
@@ -135,7 +135,7 @@ def write_parquet(path: Path, seconds: int, texts: list[list[str]]) -> int:
     ms = (T0 * 1000 + 1000 * np.repeat(np.arange(seconds, dtype=np.int64), STREAMS)).astype(np.int64)
     table = pa.table({"time": pa.array(ms, pa.timestamp("ms", tz="UTC")),
                       "stream": pa.array(NAMES * seconds).dictionary_encode(), "value": values})
-    pq.write_table(table, path, row_group_size=1 << 20)
+    pq.write_table(table, path, row_group_size=row_group_size)
     return seconds * STREAMS
 
 
@@ -276,6 +276,14 @@ def main() -> int:
         pq_null = med([replay(parquet, 1, NULL_ENGINE)[2] for _ in range(opts.repeat)])
         notes.append(f"Parquet: CPU {spread([p[2] for p in pqs])}, wall {spread([p[0] for p in pqs])}, "
                      f"peak RSS {max(p[1] for p in pqs):.0f} MB; with engines that do nothing: CPU {pq_null:.2f} s")
+        # The same rows written as one row group (as Spark and some historians write them): read
+        # in pieces, so the peak is that of the file in groups of a million rows.
+        one_group = d / "one_group.parquet"
+        write_parquet(one_group, small_s, texts, row_group_size=small_s * STREAMS)
+        og = replay(one_group, 1)
+        one_group.unlink()
+        notes.append(f"Parquet in one row group of {small_s * STREAMS:,} rows: peak RSS {og[1]:.0f} MB "
+                     f"(groups of 1,048,576 rows: {max(p[1] for p in pqs):.0f} MB), CPU {og[2]:.2f} s")
         wides = [replay(wide_csv, 1) for _ in range(opts.repeat)]
         cpu_wide = med([w[2] for w in wides])
         r = cpu_wide / cpu1  # the same values: per value, the same ratio
