@@ -10,7 +10,8 @@ The files are written under /tmp at run time and deleted afterwards: 200
 streams of the invented Brackenfield plant at one sample a second (noise,
 a step on every tenth stream, lone spikes, a fixed random state), as long
 CSV with shiftwatch's RFC 3339 times, as wide CSV (time and 200 tag
-columns) and as long Parquet (pyarrow, row groups of 1 million rows).
+columns) and as long Parquet (pyarrow, row groups of 1 million rows, and
+once as one row group, for its peak memory).
 Every replay is the real command line in its own process (``--out
 /dev/null``), which reports its peak RSS (VmHWM) and CPU time.  Figures are
 the medians of ``--repeat`` runs, all measured in this run; the machine is
