@@ -265,3 +265,25 @@ def test_fit_reads_what_replay_reads(cli, history, tmp_path: Path) -> None:
         assert a.returncode == b.returncode == 0, b.stderr
         assert json.loads(a.stdout) == json.loads(b.stdout)
         assert json.loads(a.stdout)["stream"] == name and json.loads(a.stdout)["p_value"] < 1e-6
+
+
+def test_csv_files_in_stream_directories_take_the_directory_s_stream(cli, tmp_path: Path) -> None:
+    # README: in a `stream=NAME` directory (as pyarrow writes a dataset partitioned by stream) a
+    # long file needs no `stream` column.  CSV files there were read as wide files with one tag
+    # called `value`: two pumps' rows merged into one stream and half of them were set aside.
+    # Reference: each stream's rows in a long CSV of its own, read by the stdlib csv module and
+    # fed to its engine in one batch (history.py).
+    data = readings(3000)
+    names = list(data)
+    for name in names:
+        t, v = data[name]
+        d = tmp_path / "dataset" / f"stream={name.replace('/', '%2F')}"
+        d.mkdir(parents=True)
+        (d / "part-0.csv").write_text("time,value\n" + "".join(f"{x:.3f},{y}\n" for x, y in zip(t, v)))
+    res = cli("replay", "--jobs", "1", str(tmp_path / "dataset"))
+    assert res.returncode == 0, res.stderr
+    assert f"replayed {3000 * len(names)} rows in {len(names)} stream(s)" in res.stderr
+    reference = one_batch_records(stdlib_long(write_long(tmp_path / "long.csv", data, form="epoch_s"))[0])
+    assert printed_records(res.stdout) == reference and len(reference) >= 4
+    # --layout long takes them too (a partition supplies the stream column)
+    assert cli("replay", "--layout", "long", str(tmp_path / "dataset")).stdout == res.stdout
