@@ -453,9 +453,33 @@ class _Slots:
         return _unpack((names, counts, t, v, p))
 
 
+def _end_with_parent(parent: int) -> None:
+    """Have the kernel kill this process when its parent ends, however it ends (prctl(2),
+    PR_SET_PDEATHSIG): a worker left behind blocks on its pipes for ever, holding the
+    caller's standard output and error.  Also ends it now if the parent is gone already."""
+    import ctypes
+    import signal
+
+    try:
+        ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGKILL), 0, 0, 0)  # PR_SET_PDEATHSIG
+    except (OSError, AttributeError):  # not Linux: the parent's own stop still ends its workers
+        pass
+    if os.getppid() != parent:
+        os._exit(1)
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)  # not the parent's _stop_on_sigterm: _stop ends it
+
+
+class _Stopped(SystemExit):
+    """SIGTERM while processes replay: the parent stops them, then exits as SIGTERM would (143)."""
+
+
+def _stop_on_sigterm(signum: int, frame: Any) -> None:
+    raise _Stopped(128 + signum)
+
+
 def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_for: Any,
             trace_options: dict[str, int] | None, tz: tzinfo | None, plan: Any, pairs: dict[tuple[int, int], Any],
-            slots: dict[tuple[int, int], _Slots], results: Any, done: Any) -> None:
+            slots: dict[tuple[int, int], _Slots], results: Any, done: Any, parent: int) -> None:
     """Process ``me`` of ``jobs``: parse chunks ``me``, ``me + jobs``, ... and pass their rows on to
     the streams' owners; feed its own streams every chunk's rows in chunk order.
 
@@ -463,6 +487,7 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
     :data:`LOOKAHEAD` of its own ahead, so the processes parse at the same time.
     """
     try:
+        _end_with_parent(parent)
         feeder = _Feeder(sources, settings_for, unit_for, trace_options)
         opened: dict[str, Any] = {}
         own: deque[tuple[int, list[Any]]] = deque()
@@ -558,8 +583,27 @@ def _replay_in_processes(sources: list[Source], settings_for: Any, unit_for: Any
     results = ctx.Queue()
     done = ctx.Value("q", 0)
     procs = [ctx.Process(target=_worker, args=(i, jobs, sources, settings_for, unit_for, trace_options, tz,
-                                                plans[i], pairs, slots, results, done), daemon=True)
+                                                plans[i], pairs, slots, results, done, os.getpid()), daemon=True)
              for i in range(jobs)]
+    import signal
+    import threading
+
+    main_thread = threading.current_thread() is threading.main_thread()
+    old_term = signal.getsignal(signal.SIGTERM)
+    if main_thread:
+        signal.signal(signal.SIGTERM, _stop_on_sigterm)
+    try:
+        return _run_processes(procs, plans, results, done, sources, tz, jobs, progress, chunk_bytes)
+    finally:
+        if main_thread and old_term is not None:
+            signal.signal(signal.SIGTERM, old_term)
+
+
+def _run_processes(procs: list[Any], plans: list[Any], results: Any, done: Any, sources: list[Source],
+                   tz: tzinfo | None, jobs: int, progress: Callable[[int], None] | None,
+                   chunk_bytes: int) -> ReplayResult:
+    """Start the workers, hand them the pieces, gather what they return; any failure or
+    signal stops them all."""
     for p in procs:
         p.start()
     reported = 0

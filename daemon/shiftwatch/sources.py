@@ -271,15 +271,16 @@ def open_source(path: str, layout: str = "auto") -> Source:
             raise CsvFormatError(f"{path}:1: the file is empty; expected a header time,stream,value") from None
         except csv.Error as exc:
             raise CsvFormatError(f"{path}:1: unreadable header: {exc}") from None
-        body = {"body_start": lines.consumed, "body_line": reader.line_num + 1}
+        start, line = lines.consumed, reader.line_num + 1
         stream = _partition_stream(path)
         cols = [c.strip().lower().lstrip("\ufeff") for c in header]
         if stream is not None and layout != "wide" and "stream" not in cols and "time" in cols and "value" in cols:
             # a long file whose stream is its partition's (stream=NAME directories), as for Parquet
             ti, vi = cols.index("time"), cols.index("value")
-            return Source(path, "csv", "long", header, ti, -1, vi, [(vi, "")], stream=stream, **body)
+            return Source(path, "csv", "long", header, ti, -1, vi, [(vi, "")], stream=stream, body_start=start,
+                          body_line=line)
         lay, ti, si, vi, tags = _pick_layout(path, header, layout, f"{path}:1")
-        return Source(path, "csv", lay, header, ti, si, vi, tags, **body)
+        return Source(path, "csv", lay, header, ti, si, vi, tags, body_start=start, body_line=line)
 
 
 def open_sources(paths: list[str | Path], layout: str = "auto") -> list[Source]:

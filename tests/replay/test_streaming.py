@@ -8,6 +8,7 @@ stdlib ``csv`` module and each stream fed to its engine in one batch
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
 import textwrap
@@ -420,3 +421,59 @@ def test_a_damaged_page_in_a_row_group_read_in_pieces_costs_the_rows_from_it_on(
     assert len(one.read_problems) == 8 - read // 3_000
     kept = sum(o.samples_total for o in one.streams.values())
     assert read - 30 <= kept <= read  # a few set aside as spikes (history.py puts some in)
+
+
+def _children(pid: int) -> list[int]:
+    """The process's children (proc(5): /proc/PID/task/TID/children)."""
+    out: list[int] = []
+    for task in Path(f"/proc/{pid}/task").iterdir():
+        try:
+            out += [int(x) for x in (task / "children").read_text().split()]
+        except OSError:
+            pass
+    return out
+
+
+def _alive(pid: int) -> bool:
+    try:
+        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+    except OSError:
+        return False
+    return state != "Z"
+
+
+@pytest.mark.parametrize("signum", ["SIGTERM", "SIGKILL"])
+def test_a_replay_stopped_by_a_signal_leaves_no_process_behind(tmp_path: Path, shiftwatch_cmd, signum: str) -> None:
+    # SIGTERM (what timeout(1), systemd and schedulers send) ended the parent of a --jobs 2
+    # replay and left both workers blocked on their pipes for ever, holding the caller's
+    # stdout and stderr; SIGKILL likewise.  Reference for the signals: signal(7).
+    import signal
+    import time
+
+    names = [f"brackenfield/line{k % 5}/cell{k:03d}/weight" for k in range(200)]
+    path = write_long(tmp_path / "line2.csv", readings(6_000, names))  # 1.2 M rows: seconds of work
+    proc = subprocess.Popen(shiftwatch_cmd + ["replay", "--jobs", "2", "--out", str(tmp_path / "out.jsonl"),
+                                              str(path)], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    workers: list[int] = []
+    deadline = time.monotonic() + 60
+    while len(workers) < 2 and time.monotonic() < deadline and proc.poll() is None:
+        workers = _children(proc.pid)
+        time.sleep(0.02)
+    assert len(workers) >= 2, "the replay never started its workers"
+    time.sleep(0.5)  # into the work, with chunks in the queues
+    assert proc.poll() is None
+    try:
+        proc.send_signal(getattr(signal, signum))
+        _, err = proc.communicate(timeout=30)  # hung for ever while a worker held stderr
+        assert proc.returncode in (143, -15, -9), proc.returncode
+        assert "Traceback" not in err.decode()
+        gone = time.monotonic() + 30
+        while any(_alive(w) for w in workers) and time.monotonic() < gone:
+            time.sleep(0.05)
+        assert not any(_alive(w) for w in workers)
+        assert not (tmp_path / "out.jsonl").exists() or signum == "SIGKILL"
+    finally:  # a failure leaves nothing behind either
+        for w in [proc.pid, *workers]:
+            if _alive(w):
+                os.kill(w, signal.SIGKILL)
+        proc.wait(timeout=30)
