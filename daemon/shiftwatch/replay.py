@@ -662,6 +662,8 @@ def _run_processes(procs: list[Any], plans: list[Any], results: Any, done: Any, 
         report_progress()
     except BaseException:
         _stop(procs)
+        for q in plans:  # a piece on its way to a stopped worker would hold the exit for ever
+            q.cancel_join_thread()
         raise
     for p in procs:
         p.join()

@@ -941,6 +941,7 @@ def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUN
                 yield ("block", block)
                 index += 1
                 if lines.more is None and not lines.rest():
+                    whole(offset)  # the row read on past the chunk may have met a cut, not the end
                     return
                 continue
             nl = data.rfind(b"\n")

@@ -477,3 +477,70 @@ def test_a_replay_stopped_by_a_signal_leaves_no_process_behind(tmp_path: Path, s
             if _alive(w):
                 os.kill(w, signal.SIGKILL)
         proc.wait(timeout=30)
+
+
+def test_a_quoted_file_cut_in_the_row_that_ends_a_chunk_is_named(tmp_path: Path) -> None:
+    # A file whose stream names are quoted is read row by row while planning; the row that runs
+    # past a chunk's end is read on from the file.  When the file had been cut inside that row,
+    # the replay took the cut row as a short row and ended there, with exit 1 and a replay of
+    # the first part (found by an outside trial).
+    path = write_long(tmp_path / "line4.csv", readings(3000))
+    lines = path.read_text().splitlines(keepends=True)
+    quoted = [lines[0]] + [f'{t},"{n}",{v}' for t, n, v in (ln.split(",") for ln in lines[1:])]
+    path.write_text("".join(quoted))
+    size = path.stat().st_size
+    header = len(quoted[0])
+    chunk = 20_011  # rows are 72 and 73 bytes: not a row's end
+    read = [header]
+
+    content = path.read_bytes()
+
+    def cut(nbytes: int) -> None:
+        read[0] += nbytes
+        if len(read) == 1:  # after the first chunk: cut inside the row that runs past the next one's end
+            read.append(0)
+            end = content.index(b"\n", read[0] + chunk)  # that row's newline, past the chunk's last byte
+            start = content.rindex(b"\n", 0, end) + 1
+            assert start < read[0] + chunk < end  # the row runs past the chunk's end
+            with open(path, "r+b") as f:  # past the chunk's end, inside that row
+                f.truncate(read[0] + chunk + 2)
+
+    assert size > read[0] + 3 * chunk
+    with pytest.raises(CsvFormatError, match=r"line4\.csv: the file changed while it was read"):
+        replay_files([path], jobs=1, chunk_bytes=chunk, progress=cut)
+
+
+CUT_WHILE_PLANNING = textwrap.dedent("""
+    import sys
+    from pathlib import Path
+    from shiftwatch.replay import CsvFormatError, replay_files
+    path = Path(sys.argv[1])
+    size = path.stat().st_size
+    def cut(nbytes):
+        if path.stat().st_size == size:
+            with open(path, "r+b") as f:
+                f.truncate(size // 2 + 7)
+    try:
+        replay_files([path], jobs=2, progress=cut)
+    except CsvFormatError as exc:
+        print(exc)
+""")
+
+
+def test_a_file_cut_while_several_processes_replay_it_ends_the_command(tmp_path: Path) -> None:
+    # Quoted chunks are parsed by the parent and handed over whole (megabytes each, far more
+    # than a pipe holds).  When the cut stopped the replay, the parent named the file and then
+    # never exited: the queue's feeder thread still wrote a chunk to a stopped worker's pipe,
+    # and the interpreter waits for that thread at exit (found by an outside trial, 3 runs of 7).
+    names = [f"brackenfield/line{k % 5}/cell{k:03d}/weight" for k in range(50)]
+    path = write_long(tmp_path / "line4.csv", readings(4_000, names))
+    lines = path.read_text().splitlines(keepends=True)
+    path.write_text(lines[0] + "".join(f'{t},"{n}",{v}' for t, n, v in (ln.split(",") for ln in lines[1:])))
+    assert path.stat().st_size > 6 * 2**20  # three chunks and more
+    for _ in range(3):
+        cut = tmp_path / "cut.csv"
+        cut.write_bytes(path.read_bytes())
+        res = subprocess.run([sys.executable, "-c", CUT_WHILE_PLANNING, str(cut)], capture_output=True, text=True,
+                             timeout=60, check=False)
+        assert res.returncode == 0, res.stderr
+        assert "cut.csv: the file changed while it was read" in res.stdout
