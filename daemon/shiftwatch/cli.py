@@ -234,8 +234,11 @@ def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for:
                f"{phases.get('dismissed', 0)} dismissed, {phases.get('undecided', 0)} undecided")
     if rejected:
         summary += "; samples set aside: " + ", ".join(f"{k} {v}" for k, v in sorted(rejected.items()))
-    if result.read_problem_count:
-        summary += f"; {result.read_problem_count} unreadable row(s) skipped"
+    skipped = result.read_problem_count - result.file_notes
+    if skipped:
+        summary += f"; {skipped} unreadable row(s) skipped"
+    if result.file_notes:
+        summary += f"; {result.file_notes} file(s) not valid UTF-8 (characters replaced)"
     print(summary, file=sys.stderr)
     if report is not None:
         from shiftwatch.report import ReportError

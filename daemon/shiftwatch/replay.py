@@ -112,6 +112,8 @@ class ReplayResult:
     rows: int
     read_problems: list[str]
     read_problem_count: int
+    #: Of read_problem_count, the notes about whole files (not valid UTF-8), not rows.
+    file_notes: int = 0
 
     @property
     def problems(self) -> list[str]:
@@ -276,7 +278,7 @@ def _merge(parts: list[tuple[dict[str, StreamOutcome], tuple[Any, ...]]]) -> Rep
     for name in sorted(streams):
         records += streams[name].records
     records.sort(key=_record_key)
-    return ReplayResult(records, streams, rows, [x[4] for x in kept[:KEEP_PROBLEMS]], count)
+    return ReplayResult(records, streams, rows, [x[4] for x in kept[:KEEP_PROBLEMS]], count, len(notes))
 
 
 # ---------------------------------------------------------------------------

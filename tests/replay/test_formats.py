@@ -287,3 +287,19 @@ def test_csv_files_in_stream_directories_take_the_directory_s_stream(cli, tmp_pa
     assert printed_records(res.stdout) == reference and len(reference) >= 4
     # --layout long takes them too (a partition supplies the stream column)
     assert cli("replay", "--layout", "long", str(tmp_path / "dataset")).stdout == res.stdout
+
+
+def test_a_file_that_is_not_utf8_is_named_once_and_no_row_is_counted_unreadable(cli, tmp_path: Path) -> None:
+    # A Latin-1 export: every row was replayed, yet the summary said "1 unreadable row(s)
+    # skipped" (the note about the file was counted as a row).  Reference for the bytes: the
+    # stdlib's latin-1 codec writes "é" as the single byte 0xE9, which is not UTF-8.
+    data = readings(1000)
+    text = write_long(tmp_path / "u.csv", data).read_text().replace("oven/zone3_temp", "four/température")
+    path = tmp_path / "latin1.csv"
+    path.write_bytes(text.encode("latin-1"))
+    res = cli("replay", "--jobs", "1", str(path))
+    assert res.returncode == 1 and "Traceback" not in res.stderr
+    assert f"{path}: the file is not valid UTF-8; unreadable characters were replaced" in res.stderr
+    assert "replayed 4000 rows in 4 stream(s)" in res.stderr
+    assert "unreadable row(s) skipped" not in res.stderr
+    assert "1 file(s) not valid UTF-8" in res.stderr
