@@ -145,7 +145,7 @@ class _Client(paho.Client):
         qos = (command & 0x06) >> 1
         n = len(packet)
         v5 = self._protocol == MQTTProtocolVersion.MQTTv5
-        if (qos > 1 or n < 2 or type(packet) is not bytes or self.on_log is not None
+        if (qos > 1 or n < 2 or type(packet) not in (bytearray, bytes) or self.on_log is not None
                 or (self._logger is not None and self._logger.isEnabledFor(logging.DEBUG))
                 or not _matcher_empty(self._on_message_filtered)):
             return super()._handle_publish()
@@ -154,21 +154,20 @@ class _Client(paho.Client):
         # MalformedPacket, or its parsing of the properties).
         if pos + (2 if qos else 0) + (1 if v5 else 0) > n or (pos == 2 and not v5):
             return super()._handle_publish()
-        topic = packet[2:pos]
         mid = 0
         if qos:
             mid = (packet[pos] << 8) | packet[pos + 1]
-            pos += 2
-        if v5:
-            if packet[pos] != 0:
-                return super()._handle_publish()
-            pos += 1
+        if v5 and packet[pos + (2 if qos else 0)] != 0:
+            return super()._handle_publish()
+        with memoryview(packet) as view:  # paho's packet is a bytearray: one copy of each part
+            topic = bytes(view[2:pos])
+            payload = bytes(view[pos + (2 if qos else 0) + (1 if v5 else 0):])
         message = paho.MQTTMessage(mid=mid, topic=topic)
         message.dup = (command & 0x08) != 0
         message.qos = qos
         message.retain = (command & 0x01) != 0
         message.properties = _NO_PROPERTIES if v5 else None
-        message.payload = packet[pos:]
+        message.payload = payload
         message.timestamp = paho.time_func()
         with self._callback_mutex:
             on_message = self.on_message
