@@ -105,6 +105,32 @@ def _encode_round(groups: Iterable[JournalGroup], singles: JournalSingles | None
     return head + data
 
 
+def _round_record(groups: Sequence[JournalGroup], singles: JournalSingles | None = None) -> list[bytes | memoryview]:
+    """``_record(_encode_round(groups, singles))`` as the parts to write in turn: the same
+    bytes, but the samples are copied once (into one array, written from where it lies)
+    rather than four times (each array's bytes, their join, the index in front, the
+    record head in front), and the checksum is taken over the parts in turn.  A round
+    of 500 streams with 260 samples each is 3 MB."""
+    index: list[list[object]] = []
+    arrays: list[np.ndarray] = []
+    for g in groups:
+        index.append([g.stream, g.unit, int(g.times.shape[0]), g.topic_filter])
+        arrays += [g.times, g.values, g.arrived]
+    parts: list[bytes | memoryview] = []
+    if arrays:
+        parts.append(memoryview(np.concatenate(arrays, dtype="<f8")).cast("B"))
+    if singles is not None and singles.streams:
+        index += [[n, u, 1, f] for n, u, f in zip(singles.streams, singles.units, singles.topic_filters)]
+        # Each group's times, values and arrivals in turn: one row of three per stream.
+        parts.append(memoryview(np.column_stack((singles.times, singles.values, singles.arrived))
+                                .astype("<f8")).cast("B"))
+    parts.insert(0, json.dumps(index, ensure_ascii=False).encode("utf-8") + b"\n")
+    crc = 0
+    for part in parts:
+        crc = zlib.crc32(part, crc)
+    return [_HEAD.pack(_MAGIC, sum(len(part) for part in parts), crc), *parts]
+
+
 def _read_record(f: BinaryIO, size: int) -> tuple[bytes | None, str | None]:
     """The next record's body, or (None, problem); (None, None) at a clean end."""
     head = f.read(_HEAD.size)
@@ -382,18 +408,19 @@ class Journal:
         torn record must not be followed by more)."""
         if self._fd is None:
             raise OSError("the journal is not open")
-        rec = _record(_encode_round(groups, singles))
-        if self._size + len(rec) > self.max_bytes:
+        rec = _round_record(groups, singles)
+        size = sum(len(part) for part in rec)
+        if self._size + size > self.max_bytes:
             self.close()
             raise OSError(f"the journal reached its limit of {self.max_bytes} bytes")
         try:
-            n = os.write(self._fd, rec)
-            if n != len(rec):
-                raise OSError(f"short write ({n} of {len(rec)} bytes)")
+            n = os.writev(self._fd, rec)
+            if n != size:
+                raise OSError(f"short write ({n} of {size} bytes)")
         except OSError:
             self.close()
             raise
-        self._size += len(rec)
+        self._size += size
         self._dirty = True
         self.sync_if_due()
 

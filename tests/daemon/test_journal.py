@@ -244,3 +244,35 @@ def test_background_syncs_leave_the_caller_and_close_waits_for_them(
     assert threading.active_count() == threads  # no thread was started per sync
     j.stop_background()
     assert same(Journal(tmp_path).open("snap-1"), rounds)
+
+
+def test_a_round_is_written_as_the_plain_encoding_bit_for_bit(tmp_path: Path) -> None:
+    """Journal.append writes the parts of _round_record; they are exactly
+    _record(_encode_round(...)), for random rounds (groups of several sizes, float32 and
+    strided arrays, units, filters, names outside ASCII, pooled singles, empty rounds)."""
+    from shiftwatch.journal import JournalSingles, _encode_round, _record, _round_record
+
+    rng = np.random.default_rng(5)
+    j = Journal(tmp_path)
+    j.open("t")
+    expected = [(tmp_path / JOURNAL_NAME).read_bytes()]
+    for k in range(60):
+        groups = []
+        for i in range(int(rng.integers(0, 6))):
+            n = int(rng.choice([0, 1, 3, 260]))
+            t = rng.standard_normal(2 * n)[::2] if k % 3 == 0 else 1.788e9 + np.arange(float(n))
+            v = rng.standard_normal(n).astype(np.float32) if k % 4 == 0 else rng.standard_normal(n)
+            groups.append(JournalGroup(f"s{i}/é{k}", None if i % 2 else "g", t, v, np.full(n, 1.788e9 + k),
+                                       None if i % 3 else "plant/+/v"))
+        singles = None
+        if k % 2:
+            m = int(rng.integers(0, 4))
+            singles = JournalSingles([f"p{q}" for q in range(m)], [None] * m, ["plant/#"] * m,
+                                     rng.standard_normal(m), rng.standard_normal(m), rng.standard_normal(m))
+        rec = b"".join(bytes(p) for p in _round_record(groups, singles))
+        assert rec == _record(_encode_round(groups, singles))
+        if groups or singles:
+            j.append(groups, singles)
+            expected.append(rec)
+    j.close()
+    assert (tmp_path / JOURNAL_NAME).read_bytes() == b"".join(expected)
