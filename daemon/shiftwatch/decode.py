@@ -598,6 +598,17 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
     if len(payload) > max_bytes:
         problems.append(DecodeProblem("too_large", f"the payload has {len(payload)} bytes; the limit is {max_bytes}"))
         return out
+    if columns and fmt != "number" and payload[:1] == b"[" and payload.isascii():
+        # ASCII is valid UTF-8, has no byte-order mark and is not blank when it starts
+        # with "[": the checks of the text below would pass, so they come after this.
+        if fmt == "json":
+            cols = _array_columns(bytes(payload), value_parts, time_parts, max_items, max_depth)
+            if cols is not None:
+                return Decoded(readings, problems, cols)
+        else:
+            pack = _senml_columns(bytes(payload), now, max_items, max_depth)
+            if pack is not None:
+                return Decoded(readings, problems, None, pack)
     try:
         text = bytes(payload).decode("utf-8")
     except UnicodeDecodeError as exc:
@@ -607,17 +618,6 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
     if not text.strip():
         problems.append(DecodeProblem("empty", "the payload is empty" if not text else "the payload is blank"))
         return out
-
-    if columns and fmt != "number" and payload[:1] == b"[" and payload.isascii():
-        # ASCII is valid UTF-8 and has no byte-order mark: the checks below stand.
-        if fmt == "json":
-            cols = _array_columns(bytes(payload), value_parts, time_parts, max_items, max_depth)
-            if cols is not None:
-                return Decoded(readings, problems, cols)
-        else:
-            pack = _senml_columns(bytes(payload), now, max_items, max_depth)
-            if pack is not None:
-                return Decoded(readings, problems, None, pack)
 
     if fmt == "number":
         try:
