@@ -598,6 +598,17 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
     if len(payload) > max_bytes:
         problems.append(DecodeProblem("too_large", f"the payload has {len(payload)} bytes; the limit is {max_bytes}"))
         return out
+    if columns and fmt != "number" and payload[:1] == b"[" and payload.isascii():
+        # ASCII is valid UTF-8, has no byte-order mark and is not blank when it starts
+        # with "[": the checks of the text below would pass, so they come after this.
+        if fmt == "json":
+            cols = _array_columns(bytes(payload), value_parts, time_parts, max_items, max_depth)
+            if cols is not None:
+                return Decoded(readings, problems, cols)
+        else:
+            pack = _senml_columns(bytes(payload), now, max_items, max_depth)
+            if pack is not None:
+                return Decoded(readings, problems, None, pack)
     try:
         text = bytes(payload).decode("utf-8")
     except UnicodeDecodeError as exc:
@@ -607,17 +618,6 @@ def decode(payload: bytes | bytearray, fmt: str, *, value_path: str = "value", t
     if not text.strip():
         problems.append(DecodeProblem("empty", "the payload is empty" if not text else "the payload is blank"))
         return out
-
-    if columns and fmt != "number" and payload[:1] == b"[" and payload.isascii():
-        # ASCII is valid UTF-8 and has no byte-order mark: the checks below stand.
-        if fmt == "json":
-            cols = _array_columns(bytes(payload), value_parts, time_parts, max_items, max_depth)
-            if cols is not None:
-                return Decoded(readings, problems, cols)
-        else:
-            pack = _senml_columns(bytes(payload), now, max_items, max_depth)
-            if pack is not None:
-                return Decoded(readings, problems, None, pack)
 
     if fmt == "number":
         try:
@@ -789,12 +789,13 @@ def _array_columns(payload: bytes, value_parts: tuple[str, ...], time_parts: tup
             return None
     if not doc or len(doc) > max_items:
         return None
-    values = np.array(list(map(_FIRST, doc)), dtype=np.float64)
+    # np.fromiter: the same floats as np.array(list(...)), without the list in between.
+    values = np.fromiter(map(_FIRST, doc), np.float64, len(doc))
     if not np.isfinite(values).all():
         return None
     if time_parts is None:
         return None, values
-    t = np.array(list(map(_SECOND, doc)), dtype=np.float64)
+    t = np.fromiter(map(_SECOND, doc), np.float64, len(doc))
     if not np.isfinite(t).all():
         return None
     # _seconds, element by element: the same division.
@@ -925,7 +926,7 @@ def _senml_columns(payload: bytes, now: float, max_items: int, max_depth: int) -
                 return None
         units = [per[key] for key in firsts]
     with np.errstate(over="ignore"):  # a sum past the float range is inf, refused below
-        values = np.array(list(map(_GET_V, recs)), dtype=np.float64) + bv
+        values = np.fromiter(map(_GET_V, recs), np.float64, n) + bv
         total = bt + t
     if not (np.isfinite(values).all() and np.isfinite(total).all()):
         return None

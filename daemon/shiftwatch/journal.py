@@ -91,18 +91,41 @@ class JournalSingles(NamedTuple):
 
 
 def _encode_round(groups: Iterable[JournalGroup], singles: JournalSingles | None = None) -> bytes:
-    index = []
-    arrays = []
+    return b"".join(_round_parts(groups, singles))
+
+
+def _round_parts(groups: Iterable[JournalGroup], singles: JournalSingles | None = None) -> list[bytes | memoryview]:
+    """A round's body in parts: the index line, then every group's times, values and
+    arrival times as little-endian float64 (copied once, into one array), then the
+    pooled singles' rows."""
+    index: list[list[object]] = []
+    arrays: list[np.ndarray] = []
     for g in groups:
         index.append([g.stream, g.unit, int(g.times.shape[0]), g.topic_filter])
         arrays += [g.times, g.values, g.arrived]
-    data = b"".join(np.ascontiguousarray(a, dtype="<f8").tobytes() for a in arrays)
+    parts: list[bytes | memoryview] = [b""]
+    if arrays:
+        parts.append(np.concatenate(arrays, dtype="<f8").data.cast("B"))
     if singles is not None and singles.streams:
         index += [[n, u, 1, f] for n, u, f in zip(singles.streams, singles.units, singles.topic_filters)]
         # Each group's times, values and arrivals in turn: one row of three per stream.
-        data += np.column_stack((singles.times, singles.values, singles.arrived)).astype("<f8").tobytes()
-    head = json.dumps(index, ensure_ascii=False).encode("utf-8") + b"\n"
-    return head + data
+        parts.append(np.column_stack((singles.times, singles.values, singles.arrived))
+                     .astype("<f8").data.cast("B"))
+    parts[0] = json.dumps(index, ensure_ascii=False).encode("utf-8") + b"\n"
+    return parts
+
+
+def _round_record(groups: Sequence[JournalGroup], singles: JournalSingles | None = None) -> list[bytes | memoryview]:
+    """``_record(_encode_round(groups, singles))`` as the parts to write in turn: the same
+    bytes, but the samples are copied once (into one array, written from where it lies)
+    rather than joined into one body and again behind the record's head, and the
+    checksum is taken over the parts in turn.  A round of 500 streams with 260 samples
+    each is 3 MB."""
+    parts = _round_parts(groups, singles)
+    crc = 0
+    for part in parts:
+        crc = zlib.crc32(part, crc)
+    return [_HEAD.pack(_MAGIC, sum(len(part) for part in parts), crc), *parts]
 
 
 def _read_record(f: BinaryIO, size: int) -> tuple[bytes | None, str | None]:
@@ -382,18 +405,19 @@ class Journal:
         torn record must not be followed by more)."""
         if self._fd is None:
             raise OSError("the journal is not open")
-        rec = _record(_encode_round(groups, singles))
-        if self._size + len(rec) > self.max_bytes:
+        rec = _round_record(groups, singles)
+        size = sum(len(part) for part in rec)
+        if self._size + size > self.max_bytes:
             self.close()
             raise OSError(f"the journal reached its limit of {self.max_bytes} bytes")
         try:
-            n = os.write(self._fd, rec)
-            if n != len(rec):
-                raise OSError(f"short write ({n} of {len(rec)} bytes)")
+            n = os.writev(self._fd, rec)
+            if n != size:
+                raise OSError(f"short write ({n} of {size} bytes)")
         except OSError:
             self.close()
             raise
-        self._size += len(rec)
+        self._size += size
         self._dirty = True
         self.sync_if_due()
 

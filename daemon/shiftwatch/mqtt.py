@@ -39,7 +39,7 @@ from typing import Any, NamedTuple
 from urllib.parse import urlsplit
 
 import paho.mqtt.client as paho
-from paho.mqtt.enums import CallbackAPIVersion, MQTTProtocolVersion
+from paho.mqtt.enums import CallbackAPIVersion, MQTTErrorCode, MQTTProtocolVersion
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from paho.mqtt.subscribeoptions import SubscribeOptions
@@ -124,6 +124,75 @@ class _Client(paho.Client):
         if getattr(self, "_transport", "tcp") == "websockets":
             return sock
         return _ReadBuffer(sock, self.room)
+
+    def _handle_publish(self) -> Any:
+        """paho's handling of an incoming PUBLISH, without its per-message overheads
+        where they change nothing: a QoS 0 or 1 message with no MQTT 5 properties (what
+        brokers send unless the publisher set some), no per-filter callbacks, and paho's
+        log silent below ERROR.  paho 2.1 parses the packet with three ``struct``
+        unpacks that copy the payload each time, builds a ``Properties`` object, formats
+        a debug line and searches its filter tree, per message: together about half of
+        paho's thread under a load of batched payloads (py-spy, the daemon benchmark's
+        arrays of 260).  Here the same ``MQTTMessage`` (the same fields; ``properties`` a
+        shared empty ``Properties`` of a PUBLISH, which the daemon never reads) goes to
+        ``on_message`` as paho's ``_handle_on_message`` hands it over, and the QoS 1
+        PUBACK follows as paho's (only without ``manual_ack``).  Anything else, a malformed
+        packet included, goes through paho's own code (tests/daemon/test_mqtt_publish_fast.py
+        holds the two to the same messages)."""
+        pkt = self._in_packet
+        command: int = pkt["command"]
+        packet: Any = pkt["packet"]
+        qos = (command & 0x06) >> 1
+        n = len(packet)
+        v5 = self._protocol == MQTTProtocolVersion.MQTTv5
+        if (qos > 1 or n < 2 or type(packet) not in (bytearray, bytes) or self.on_log is not None
+                or (self._logger is not None and self._logger.isEnabledFor(logging.DEBUG))
+                or not _matcher_empty(self._on_message_filtered)):
+            return super()._handle_publish()
+        pos = 2 + ((packet[0] << 8) | packet[1])
+        # A short packet, an empty MQTT 3 topic, or MQTT 5 properties: paho's way (its
+        # MalformedPacket, or its parsing of the properties).
+        if pos + (2 if qos else 0) + (1 if v5 else 0) > n or (pos == 2 and not v5):
+            return super()._handle_publish()
+        mid = 0
+        if qos:
+            mid = (packet[pos] << 8) | packet[pos + 1]
+        if v5 and packet[pos + (2 if qos else 0)] != 0:
+            return super()._handle_publish()
+        with memoryview(packet) as view:  # paho's packet is a bytearray: one copy of each part
+            topic = bytes(view[2:pos])
+            payload = bytes(view[pos + (2 if qos else 0) + (1 if v5 else 0):])
+        message = paho.MQTTMessage(mid=mid, topic=topic)
+        message.dup = (command & 0x08) != 0
+        message.qos = qos
+        message.retain = (command & 0x01) != 0
+        message.properties = _NO_PROPERTIES if v5 else None
+        message.payload = payload
+        message.timestamp = paho.time_func()
+        with self._callback_mutex:
+            on_message = self.on_message
+        if on_message:
+            with self._in_callback_mutex:
+                try:
+                    on_message(self, self._userdata, message)
+                except Exception as err:
+                    self._easy_log(paho.MQTT_LOG_ERR, "Caught exception in on_message: %s", err)
+                    if not self.suppress_exceptions:
+                        raise
+        if qos == 1 and not self._manual_ack:
+            return self._send_puback(mid)
+        return MQTTErrorCode.MQTT_ERR_SUCCESS
+
+
+#: The ``properties`` of a PUBLISH that had none (see :meth:`_Client._handle_publish`).
+_NO_PROPERTIES = Properties(PacketTypes.PUBLISH)  # type: ignore[no-untyped-call]
+
+
+def _matcher_empty(matcher: Any) -> bool:
+    """paho's filter tree of per-filter callbacks holds none (``message_callback_add``
+    was never called); False when this paho's tree is not as expected."""
+    root = getattr(matcher, "_root", None)
+    return root is not None and getattr(root, "_content", 1) is None and getattr(root, "_children", 1) == {}
 
 
 #: A connection lost with no reason within TAKEOVER_WINDOW seconds of coming up,

@@ -5,6 +5,7 @@ Usage, from the repository root with the package installed and mosquitto availab
     python tests/bench/bench_daemon.py            # full run, about 8 to 15 minutes on 2 cores
     python tests/bench/bench_daemon.py --quick    # smaller loads, for a smoke check
     python tests/bench/bench_daemon.py --part memory   # only the parts named (repeatable)
+    python tests/bench/bench_daemon.py --part batch --against ../old/daemon   # batched ingest, paired with other code
 
 Everything runs on this machine over loopback: a private mosquitto per part,
 the real daemon in a subprocess (``shiftwatch run --config``), and publisher
@@ -806,6 +807,38 @@ def batch_daemon(bench: Bench, streams: int, batch: int, rounds: int) -> dict[st
         bench.stop_broker(b)
 
 
+def batch_pairs(bench: Bench, against: str, runs: int, streams: int, batch: int, rounds: int) -> list[str]:
+    """``--against DIR``: the batched load taken by the daemon imported from DIR (another
+    checkout's ``daemon/`` directory, first on PYTHONPATH) and by this checkout's, one after
+    the other in each run, which goes first alternating; samples per daemon CPU-second."""
+    here = str(Path(__file__).resolve().parents[2] / "daemon")
+    sides = {"against": against, "this": here}
+    got: dict[str, list[float]] = {"against": [], "this": []}
+    saved = os.environ.get("PYTHONPATH")
+    try:
+        for k in range(runs):
+            for side in (("against", "this") if k % 2 == 0 else ("this", "against")):
+                os.environ["PYTHONPATH"] = sides[side] + (os.pathsep + saved if saved else "")
+                d = batch_daemon(bench, streams, batch, rounds)
+                ok = d["samples"] >= d["expected"]
+                got[side].append(d["per_cpu"] if ok else math.nan)
+                print(f"  run {k + 1}, {side}: {d['per_cpu']:,.0f} samples per daemon CPU-s, on "
+                      f"{d['cpu_share']:.2f} of a core ({d['samples']:,.0f}/{d['expected']:,} samples)",
+                      file=sys.stderr, flush=True)
+    finally:
+        if saved is None:
+            os.environ.pop("PYTHONPATH", None)
+        else:
+            os.environ["PYTHONPATH"] = saved
+    out = []
+    for side in ("against", "this"):
+        xs = got[side]
+        med = statistics.median(xs) if xs else math.nan
+        out.append(f"{side} ({sides[side]}): median {med:,.0f} samples per daemon CPU-s "
+                   f"({1e6 / med:.3f} us a sample); runs " + ", ".join(f"{x:,.0f}" for x in xs))
+    return out
+
+
 # ---------------------------------------------------------------- part 2
 def parse_ms(text: str) -> int:
     return round(datetime.fromisoformat(text).timestamp() * 1000.0)
@@ -1014,7 +1047,7 @@ SCRAPE_LATENCY_FACTOR = 3.0
 SCRAPE_FLOOR_MS = 50.0
 
 
-def main_bench(quick: bool, parts: tuple[str, ...] = PARTS) -> int:
+def main_bench(quick: bool, parts: tuple[str, ...] = PARTS, against: str | None = None) -> int:
     rows: list[tuple[str, str, str, str, bool]] = []
     extra: list[str] = []
     bench = Bench()
@@ -1074,8 +1107,13 @@ def main_bench(quick: bool, parts: tuple[str, ...] = PARTS) -> int:
                          f"bare received {bare['count']:,.0f}/{n:,}; daemon drained in {dmn['seconds']:.1f} s, "
                          f"bare in {bare['seconds']:.1f} s; daemon stop {dmn['stop_s']:.1f} s exit {dmn['exit']:.0f}")
 
-        # 6. batched ingest.
-        if "batch" in parts:
+        # 6. batched ingest; with --against, old and new code paired instead.
+        if "batch" in parts and against:
+            n_runs = 2 if quick else 6
+            paired = batch_pairs(bench, against, n_runs, 500, 260, 16 if quick else 40)
+            rows.append(("ingest, JSON arrays of 260, paired", "see below", "", "", True))
+            extra += [f"batch, {n_runs} runs each: " + line for line in paired]
+        elif "batch" in parts:
             streams, batch, rounds = 500, 260, (16 if quick else 40)
             runs = []
             for k in range(1 if quick else 3):
@@ -1178,11 +1216,17 @@ def main() -> int:
         ap.add_argument(opt, type=typ, default=default, help=argparse.SUPPRESS)
     ap.add_argument("--part", action="append", choices=PARTS,
                     help="run only this part (repeatable; default: all)")
+    ap.add_argument("--against", metavar="DIR",
+                    help="batch part only: pair this checkout's daemon with the one imported from DIR (another "
+                         "checkout's daemon/ directory, e.g. a `git worktree add` of main): 6 runs each (2 with "
+                         "--quick), which goes first alternating, samples per daemon CPU-second; no bare subscriber")
     a = ap.parse_args()
     if a.role:
         return {"pub": role_pub, "sub": role_sub, "status": role_status, "paced": role_paced,
                 "scrape": role_scrape}[a.role](a)
-    return main_bench(a.quick, tuple(a.part or PARTS))
+    if a.against and not Path(a.against, "shiftwatch", "__init__.py").is_file():
+        ap.error(f"--against {a.against}: no shiftwatch package there (give a checkout's daemon/ directory)")
+    return main_bench(a.quick, tuple(a.part or PARTS), a.against)
 
 
 if __name__ == "__main__":

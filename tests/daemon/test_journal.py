@@ -244,3 +244,49 @@ def test_background_syncs_leave_the_caller_and_close_waits_for_them(
     assert threading.active_count() == threads  # no thread was started per sync
     j.stop_background()
     assert same(Journal(tmp_path).open("snap-1"), rounds)
+
+
+def test_a_round_is_written_as_the_plain_encoding_bit_for_bit(tmp_path: Path) -> None:
+    """Journal.append writes the parts of _round_record, and the cluster's journal messages
+    are _encode_round's: both exactly the encoding as first written, for random rounds (groups of several sizes, float32 and
+    strided arrays, units, filters, names outside ASCII, pooled singles, empty rounds)."""
+    from shiftwatch.journal import JournalSingles, _encode_round, _record, _round_record
+
+    def plain(groups: list[JournalGroup], singles: JournalSingles | None) -> bytes:
+        """The encoding as it was first written: each array's bytes, joined."""
+        index = []
+        arrays = []
+        for g in groups:
+            index.append([g.stream, g.unit, int(g.times.shape[0]), g.topic_filter])
+            arrays += [g.times, g.values, g.arrived]
+        data = b"".join(np.ascontiguousarray(a, dtype="<f8").tobytes() for a in arrays)
+        if singles is not None and singles.streams:
+            index += [[n, u, 1, f] for n, u, f in zip(singles.streams, singles.units, singles.topic_filters)]
+            data += np.column_stack((singles.times, singles.values, singles.arrived)).astype("<f8").tobytes()
+        return json.dumps(index, ensure_ascii=False).encode("utf-8") + b"\n" + data
+
+    rng = np.random.default_rng(5)
+    j = Journal(tmp_path)
+    j.open("t")
+    expected = [(tmp_path / JOURNAL_NAME).read_bytes()]
+    for k in range(60):
+        groups = []
+        for i in range(int(rng.integers(0, 6))):
+            n = int(rng.choice([0, 1, 3, 260]))
+            t = rng.standard_normal(2 * n)[::2] if k % 3 == 0 else 1.788e9 + np.arange(float(n))
+            v = rng.standard_normal(n).astype(np.float32) if k % 4 == 0 else rng.standard_normal(n)
+            groups.append(JournalGroup(f"s{i}/é{k}", None if i % 2 else "g", t, v, np.full(n, 1.788e9 + k),
+                                       None if i % 3 else "plant/+/v"))
+        singles = None
+        if k % 2:
+            m = int(rng.integers(0, 4))
+            singles = JournalSingles([f"p{q}" for q in range(m)], [None] * m, ["plant/#"] * m,
+                                     rng.standard_normal(m), rng.standard_normal(m), rng.standard_normal(m))
+        rec = b"".join(bytes(p) for p in _round_record(groups, singles))
+        assert _encode_round(groups, singles) == plain(groups, singles)
+        assert rec == _record(plain(groups, singles))
+        if groups or singles:
+            j.append(groups, singles)
+            expected.append(rec)
+    j.close()
+    assert (tmp_path / JOURNAL_NAME).read_bytes() == b"".join(expected)

@@ -331,3 +331,56 @@ def test_killed_anywhere_leaves_old_or_new_complete_snapshot(tmp_path: Path) -> 
         assert g >= last
         assert streams == expected[g % 2]
         assert aside_files(tmp_path) == []  # leftovers removed, nothing set aside as corrupt
+
+
+def test_encode_skips_plain_values_without_changing_anything() -> None:
+    """_encode hands numbers, text, booleans and None back untouched without a call per
+    value; held to the recursion that calls itself on every value, on engine states and
+    on random nested data (numpy scalars, tuples, marker-like dicts, long and short lists)."""
+    import base64
+    import random
+
+    import numpy as np
+
+    from shiftwatch.core.engine import StreamEngine
+    from shiftwatch.statestore import _encode, _is_float_list
+
+    def reference(o: object) -> object:
+        if isinstance(o, dict):
+            d = {k: reference(v) for k, v in o.items()}
+            if len(d) == 1 and ("$f64" in d or "$dict" in d):
+                return {"$dict": d}
+            return d
+        if isinstance(o, (list, tuple)):
+            if _is_float_list(o):
+                return {"$f64": base64.b64encode(np.array(o, dtype="<f8").tobytes()).decode("ascii")}
+            return [reference(x) for x in o]
+        if isinstance(o, np.ndarray) and o.ndim == 1 and o.dtype.kind == "f":
+            return {"$f64": base64.b64encode(o.astype("<f8").tobytes()).decode("ascii")}
+        return o
+
+    rng = random.Random(3)
+
+    def leaf() -> object:
+        return rng.choice([1.5, 7, True, None, "x", np.float64(2.5), np.int64(3), float("nan")])
+
+    def tree(depth: int) -> object:
+        r = rng.random()
+        if depth > 3 or r < 0.3:
+            return leaf()
+        if r < 0.5:
+            return {rng.choice(["a", "$f64", "$dict", "b"]): tree(depth + 1) for _ in range(rng.randrange(3))}
+        if r < 0.7:
+            return [rng.random() for _ in range(rng.choice([3, 8, 20]))]
+        if r < 0.8:
+            return np.arange(float(rng.randrange(1, 12)))
+        seq = [tree(depth + 1) for _ in range(rng.randrange(12))]
+        return tuple(seq) if rng.random() < 0.3 else seq
+
+    for _ in range(500):
+        o = tree(0)
+        assert repr(_encode(o)) == repr(reference(o))
+    eng = StreamEngine("line/v")
+    eng.process(1.788e9 + np.arange(3000.0), 100 + np.random.default_rng(1).standard_normal(3000))
+    state = dict(eng.get_state())
+    assert repr(_encode(state)) == repr(reference(state))
