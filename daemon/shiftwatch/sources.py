@@ -211,18 +211,25 @@ def _pick_layout(name: str, header: list[str], layout: str, where: str) -> tuple
                                                                                  list[tuple[int, str]]]:
     cols = [c.strip().lower().lstrip("\ufeff") for c in header]
     long_ok = all(c in cols for c in REQUIRED_COLUMNS)
-    if layout == "long" or (layout == "auto" and (long_ok or "time" not in cols)):
+    # A `stream` or `value` column says the file is long (README: say --layout wide for a tag so named)
+    if layout == "long" or (layout == "auto" and (long_ok or "time" not in cols or "stream" in cols
+                                                   or "value" in cols)):
         missing = [c for c in REQUIRED_COLUMNS if c not in cols]
         if missing:
+            wide = ("; a wide file with a tag called stream or value is read with --layout wide"
+                    if layout == "auto" and "time" in cols else "")
             raise CsvFormatError(
                 f"{where}: header lacks column(s) {', '.join(missing)}; expected time,stream,value "
-                f"(long) or time followed by one column per tag (wide), got {','.join(header)}")
+                f"(long) or time followed by one column per tag (wide), got {','.join(header)}{wide}")
         ti, si, vi = (cols.index(c) for c in REQUIRED_COLUMNS)
         return "long", ti, si, vi, [(vi, "")]
     if "time" not in cols:
         raise CsvFormatError(f"{where}: header lacks a time column; a wide file is time followed by one "
                              f"column per tag, got {','.join(header)}")
     ti = cols.index("time")
+    if cols.count("time") > 1:
+        raise CsvFormatError(f"{where}: the header names time twice; a wide file is one time column "
+                             "followed by one column per tag")
     tags: list[tuple[int, str]] = []
     seen: set[str] = set()
     for i, h in enumerate(header):

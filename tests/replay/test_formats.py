@@ -303,3 +303,27 @@ def test_a_file_that_is_not_utf8_is_named_once_and_no_row_is_counted_unreadable(
     assert "replayed 4000 rows in 4 stream(s)" in res.stderr
     assert "unreadable row(s) skipped" not in res.stderr
     assert "1 file(s) not valid UTF-8" in res.stderr
+
+
+def test_headers_that_fit_no_layout_whole_are_refused_with_what_is_missing(cli, tmp_path: Path) -> None:
+    # Found by an outside trial: `time,time,b,c` made a stream called "time" of the second time
+    # column, and a Parquet file of time and stream with no value was read as wide, its stream
+    # column refused as "not numbers", which hid the missing column.  README: `--layout auto`
+    # takes a file with `stream` and `value` columns as long; say `--layout wide` when a tag
+    # is called `stream` or `value`.
+    twice = tmp_path / "twice.csv"
+    twice.write_text("time,Time,b\n2026-03-02T06:00:00Z,2026-03-02T06:00:00Z,1\n")
+    res = cli("replay", str(twice))
+    assert res.returncode == 2 and f"{twice}:1: the header names time twice" in res.stderr, res.stderr
+    no_value = tmp_path / "no_value.parquet"
+    pq.write_table(pa.table({"time": pa.array([0, 1000], pa.timestamp("ms", tz="UTC")),
+                             "stream": ["brackenfield/line2/capper/torque"] * 2}), no_value)
+    res = cli("replay", str(no_value))
+    assert res.returncode == 2 and "header lacks column(s) value" in res.stderr, res.stderr
+    lone = tmp_path / "lone.csv"
+    lone.write_text("time,value\n2026-03-02T06:00:00Z,1.5\n2026-03-02T06:00:01Z,1.6\n")
+    res = cli("replay", str(lone))
+    assert res.returncode == 2 and "header lacks column(s) stream" in res.stderr
+    assert "--layout wide" in res.stderr  # the way to read a tag called value
+    res = cli("replay", "--layout", "wide", str(lone))
+    assert res.returncode == 0 and "replayed 2 rows in 1 stream(s)" in res.stderr, res.stderr
