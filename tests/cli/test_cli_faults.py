@@ -1,0 +1,94 @@
+"""The real command line against faults around its input and output: a full disk, odd
+addresses and numbers, pipes, unreadable files in a directory.
+
+The README's promise: a clear error naming what was wrong and where, no Python
+traceback, exit 0 ok, 1 some bad rows or values, 2 could not run.  Demo data
+are set at the Brackenfield bottling plant, an invented site.
+"""
+
+from __future__ import annotations
+
+import errno
+import os
+import subprocess
+from datetime import UTC, datetime
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from shiftwatch.core.timefmt import format_time
+
+# full(4) (Linux manual page): "Writes to the /dev/full device fail with an ENOSPC error."
+# The message is the C library's for that errno (strerror(3), here os.strerror).
+ENOSPC_TEXT = os.strerror(errno.ENOSPC)
+STREAM = "brackenfield/filler3/fill_g"
+T0 = datetime(2026, 3, 2, 6, 0, tzinfo=UTC).timestamp()
+
+
+def write_filler(path: Path, n: int = 3000) -> Path:
+    """One stream of fill weights with a step of 1.2 g at sample 1,800."""
+    rng = np.random.default_rng(7)
+    with open(path, "w") as f:
+        f.write("time,stream,value\n")
+        f.writelines(f"{format_time(T0 + i)},{STREAM},{500 + 0.8 * rng.standard_normal() + 1.2 * (i >= 1800):.4f}\n"
+                     for i in range(n))
+    return path
+
+
+@pytest.fixture
+def line_csv(tmp_path: Path) -> Path:
+    return write_filler(tmp_path / "filler3.csv")
+
+
+@pytest.fixture
+def run_to(shiftwatch_cmd: list[str]):
+    """``run_to(stdout, *args)``: the real command line with its standard output on ``stdout``
+    (an open file)."""
+
+    def run(stdout, *args: str, stdin=None) -> subprocess.CompletedProcess[str]:
+        return subprocess.run(shiftwatch_cmd + list(args), stdout=stdout, stderr=subprocess.PIPE, stdin=stdin,
+                              check=False, text=True, timeout=300)
+
+    return run
+
+
+def no_traceback(stderr: str) -> None:
+    assert "Traceback" not in stderr and "Exception ignored" not in stderr, stderr
+
+
+# ------------------------------------------------------------------ a full disk
+@pytest.mark.parametrize("where", ["--out", "stdout"])
+def test_replay_to_a_full_disk_exits_2_naming_the_output(cli, run_to, line_csv: Path, where: str) -> None:
+    if where == "--out":
+        res = cli("replay", "--jobs", "1", "--out", "/dev/full", str(line_csv))
+        what = "--out /dev/full"
+    else:
+        with open("/dev/full", "w") as full:
+            res = run_to(full, "replay", "--jobs", "1", str(line_csv))
+        what = "standard output"
+    no_traceback(res.stderr)
+    assert res.returncode == 2, res.stderr
+    assert f"shiftwatch: {what}: cannot write: {ENOSPC_TEXT}\n" in res.stderr
+
+
+@pytest.mark.parametrize("command", [("fit", "--stream", STREAM, "FILE"), ("fit", "--json", "FILE"),
+                                     ("design",), ("design", "--json"), ("design", "--from", "FILE"),
+                                     ("schema",)])
+def test_commands_printing_to_a_full_disk_exit_2(run_to, line_csv: Path, command: tuple[str, ...]) -> None:
+    args = [str(line_csv) if a == "FILE" else a for a in command]
+    with open("/dev/full", "w") as full:
+        res = run_to(full, *args)
+    no_traceback(res.stderr)
+    assert res.returncode == 2, res.stderr
+    assert res.stderr.endswith(f"shiftwatch: standard output: cannot write: {ENOSPC_TEXT}\n"), res.stderr
+
+
+def test_replay_writes_the_same_records_to_out_and_stdout(cli, line_csv: Path, tmp_path: Path) -> None:
+    # Where the disk has room the guard around the output changes nothing: --out and standard
+    # output hold the same lines, and this history has a confirmed step to write.
+    out = tmp_path / "records.jsonl"
+    a = cli("replay", "--jobs", "1", "--out", str(out), str(line_csv))
+    b = cli("replay", "--jobs", "1", str(line_csv))
+    assert a.returncode == b.returncode == 0, a.stderr + b.stderr
+    assert out.read_text() == b.stdout and '"phase": "confirmed"' in b.stdout
