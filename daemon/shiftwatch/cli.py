@@ -214,6 +214,13 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
     shown = (label_for, show_tz)
     if args.dask is not None:
         return _replay_on_dask(args, cfg, report, settings_for, unit_for, sources, shown)
+    cores = default_jobs()
+    if jobs > cores:
+        # More processes than cores only take turns on them, and pay for it: --jobs 1000 on two
+        # cores took 67 s against 3 s, 27 s of it system time.
+        _err(f"--jobs {jobs}: replaying in {cores} process{'es' if cores > 1 else ''}, "
+             "as many as the cores this process may run on")
+        jobs = cores
     heap.keep_freed_memory()  # a chunk's arrays reuse the last one's pages (see shiftwatch.heap)
     bar = progress_bar(_input_bytes(args.csv), "replay", "B", minimum=PROGRESS_MIN_BYTES)
     try:

@@ -92,3 +92,40 @@ def test_replay_writes_the_same_records_to_out_and_stdout(cli, line_csv: Path, t
     b = cli("replay", "--jobs", "1", str(line_csv))
     assert a.returncode == b.returncode == 0, a.stderr + b.stderr
     assert out.read_text() == b.stdout and '"phase": "confirmed"' in b.stdout
+
+
+# ------------------------------------------------------------ more jobs than cores
+@pytest.mark.parametrize("jobs", ["1000", "99999999999999999999"])
+def test_replay_takes_no_more_processes_than_cores_and_says_so(cli, line_csv: Path, jobs: str) -> None:
+    # The cores this process may run on: sched_getaffinity(2) (Linux manual page), os.sched_getaffinity.
+    # A number of jobs past any open-file limit used to hang while it was lowered one by one.
+    cores = len(os.sched_getaffinity(0))
+    one = cli("replay", "--jobs", "1", str(line_csv))
+    many = cli("replay", "--jobs", jobs, str(line_csv))
+    assert one.returncode == many.returncode == 0, many.stderr
+    assert many.stdout == one.stdout
+    if cores > 1:
+        said = f"shiftwatch: --jobs {jobs}: replaying in {cores} processes, as many as the cores this process may run on\n"
+    else:
+        said = f"shiftwatch: --jobs {jobs}: replaying in 1 process, as many as the cores this process may run on\n"
+    assert many.stderr == said + one.stderr
+
+
+# ------------------------------------------------------------ a malformed --dask address
+@pytest.mark.parametrize(("address", "why"), [
+    ("nonsense", "missing port number in address 'nonsense'"),
+    ("tcp://historian.brackenfield.example:port", "invalid literal for int() with base 10: 'port'"),
+    ("ftp://historian.brackenfield.example:8786", "unknown address scheme 'ftp'"),
+])
+def test_dask_with_a_malformed_address_exits_2_naming_it_and_the_form(cli, tmp_path: Path, address: str,
+                                                                     why: str) -> None:
+    # The form is distributed's: a scheduler address is tcp://HOST:PORT (Dask's documentation of
+    # distributed.Client and its address parser, distributed.comm.addressing, whose words "why" are).
+    part = tmp_path / "data" / "stream=brackenfield%2Ffiller3%2Ffill_g"
+    part.mkdir(parents=True)
+    write_filler(part / "part-0.csv")
+    res = cli("replay", "--dask", address, str(tmp_path / "data"))
+    no_traceback(res.stderr)
+    assert res.returncode == 2, res.stderr
+    assert res.stderr.startswith(f"shiftwatch: {address!r} is not a Dask scheduler address ("), res.stderr
+    assert why in res.stderr and "give it as tcp://HOST:PORT" in res.stderr
