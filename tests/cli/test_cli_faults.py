@@ -129,3 +129,74 @@ def test_dask_with_a_malformed_address_exits_2_naming_it_and_the_form(cli, tmp_p
     assert res.returncode == 2, res.stderr
     assert res.stderr.startswith(f"shiftwatch: {address!r} is not a Dask scheduler address ("), res.stderr
     assert why in res.stderr and "give it as tcp://HOST:PORT" in res.stderr
+
+
+# ------------------------------------------------------------ pipes and FIFOs
+# A pipe (pipe(7)) and a FIFO (fifo(7)) are not regular files (inode(7): S_ISFIFO); opening a
+# FIFO for reading blocks until a writer opens it (fifo(7)), and neither can be read by offset.
+READERS = [("replay",), ("fit",), ("design", "--from")]
+
+
+def _says_save_to_a_file(stderr: str, path: str) -> None:
+    no_traceback(stderr)
+    assert stderr.startswith(f"shiftwatch: {path}: a pipe, not a regular file; "), stderr
+    assert "save the data to a file first" in stderr
+
+
+@pytest.mark.parametrize("command", READERS)
+def test_reading_a_pipe_exits_2_saying_to_save_it_to_a_file(run_to, line_csv: Path, command: tuple[str, ...]
+                                                            ) -> None:
+    with open(line_csv) as data:
+        cat = subprocess.Popen(["cat"], stdin=data, stdout=subprocess.PIPE)  # cat(1): the file through a pipe
+        res = run_to(subprocess.PIPE, *command, "/dev/stdin", stdin=cat.stdout)
+        assert cat.stdout is not None
+        cat.stdout.close()
+        cat.wait()
+    assert res.returncode == 2, res.stderr
+    assert res.stdout == ""
+    _says_save_to_a_file(res.stderr, "/dev/stdin")
+
+
+@pytest.mark.parametrize("command", READERS)
+def test_a_fifo_without_a_writer_is_refused_without_opening_it(cli, tmp_path: Path, command: tuple[str, ...]
+                                                               ) -> None:
+    fifo = tmp_path / "historian.csv"
+    os.mkfifo(fifo)
+    res = cli(*command, str(fifo), timeout=60)  # the code before waited here for a writer
+    assert res.returncode == 2, res.stderr
+    _says_save_to_a_file(res.stderr, str(fifo))
+
+
+def test_the_same_rows_from_a_regular_file_given_as_dev_stdin_replay(run_to, line_csv: Path) -> None:
+    # Standard input redirected from a regular file is a regular file (stat(2) of /dev/stdin),
+    # which can be read by offset: it replays as the file named directly does.
+    with open(line_csv) as data:
+        via_stdin = run_to(subprocess.PIPE, "replay", "--jobs", "1", "/dev/stdin", stdin=data)
+    direct = run_to(subprocess.PIPE, "replay", "--jobs", "1", str(line_csv))
+    assert via_stdin.returncode == direct.returncode == 0, via_stdin.stderr
+    assert via_stdin.stdout == direct.stdout and '"phase": "confirmed"' in direct.stdout
+
+
+# ------------------------------------------------------------ unreadable entries of a directory
+@pytest.mark.parametrize("entry", ["broken symlink", "fifo"])
+@pytest.mark.parametrize("command", READERS)
+def test_a_directorys_unreadable_entry_exits_2_naming_it(cli, tmp_path: Path, entry: str,
+                                                        command: tuple[str, ...]) -> None:
+    # README: "A file that cannot be read ... gives exit status 2", in a directory as named directly.
+    data = tmp_path / "brackenfield-line3"
+    data.mkdir()
+    write_filler(data / "filler3.csv")
+    bad = data / "filler4.csv"
+    if entry == "broken symlink":
+        os.symlink(tmp_path / "archive" / "filler4.csv", bad)
+        # stat(2) follows the link: ENOENT, whose text is strerror(3)'s.
+        why = f"cannot open: {os.strerror(errno.ENOENT)} (a symbolic link to {tmp_path / 'archive' / 'filler4.csv'})"
+    else:
+        os.mkfifo(bad)
+        why = "a pipe, not a regular file; "
+    given = cli(*command, str(bad), timeout=60)
+    res = cli(*command, str(data), timeout=60)
+    no_traceback(res.stderr)
+    assert res.returncode == given.returncode == 2, res.stderr
+    assert res.stderr.startswith(f"shiftwatch: {bad}: {why}"), res.stderr
+    assert res.stderr == given.stderr
