@@ -356,6 +356,12 @@ def cmd_fit(args: argparse.Namespace) -> int:
         return EXIT_USAGE
     _print_problems(read.problems)
     names = sorted(read.streams)
+    if not names:  # say why, not "holds 0 streams" or "no stream named 'a' (streams: )"
+        if read.problems:
+            _err(f"{args.csv}: no stream could be read: no row was usable; the first problem: {read.problems[0]}")
+        else:
+            _err(f"{args.csv}: holds no rows, so no stream to fit")
+        return EXIT_USAGE
     if args.stream is None:
         if len(names) != 1:
             _err(f"{args.csv}: holds {len(names)} streams; choose one with --stream "

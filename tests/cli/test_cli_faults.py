@@ -15,6 +15,8 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
 import pytest
 
 from shiftwatch.core.timefmt import format_time
@@ -200,3 +202,48 @@ def test_a_directorys_unreadable_entry_exits_2_naming_it(cli, tmp_path: Path, en
     assert res.returncode == given.returncode == 2, res.stderr
     assert res.stderr.startswith(f"shiftwatch: {bad}: {why}"), res.stderr
     assert res.stderr == given.stderr
+
+
+# ------------------------------------------------------------ fit on a file with no usable row
+def _fit_says_why(res: subprocess.CompletedProcess[str], path: Path) -> None:
+    no_traceback(res.stderr)
+    assert res.returncode == 2, res.stderr
+    lines = res.stderr.splitlines()
+    first, last = lines[0], lines[-1]
+    # The problems are printed first; the last line names the first of them as the reason.
+    assert last == f"shiftwatch: {path}: no stream could be read: no row was usable; the first problem: {first}"
+
+
+@pytest.mark.parametrize("stream", [None, STREAM])
+def test_fit_on_naive_times_without_a_timezone_says_why_no_stream_was_read(cli, tmp_path: Path,
+                                                                           stream: str | None) -> None:
+    # RFC 3339 (section 5.6) requires the offset; "2026-03-02 06:00:00" has none, and without
+    # --timezone every row is refused.
+    path = tmp_path / "filler3-local.csv"
+    path.write_text("time,stream,value\n" + "".join(f"2026-03-02 06:00:{s:02d},{STREAM},{500 + s % 3}\n"
+                                                    for s in range(40)))
+    res = cli("fit", *(() if stream is None else ("--stream", stream)), str(path))
+    _fit_says_why(res, path)
+    assert "has no UTC offset" in res.stderr.splitlines()[-1]
+
+
+@pytest.mark.parametrize("kind", ["string values", "corrupt"])
+def test_fit_on_a_parquet_file_with_no_readable_row_says_why(cli, tmp_path: Path, kind: str) -> None:
+    path = tmp_path / "oven2.parquet"
+    times = pa.array([T0 + i for i in range(400)], type=pa.float64())
+    if kind == "string values":
+        values = pa.array([f"{182 + 0.1 * (i % 7):.1f} C" for i in range(400)], type=pa.string())
+    else:
+        values = pa.array([182 + 0.1 * (i % 7) for i in range(400)], type=pa.float64())
+    pq.write_table(pa.table({"time": times, "stream": ["brackenfield/oven2/zone4_c"] * 400, "value": values}),
+                   path, compression="snappy")
+    if kind == "corrupt":
+        data = bytearray(path.read_bytes())
+        for i in range(100, 400):  # inside the first column chunk's pages, the footer kept
+            data[i] ^= 0x5A
+        path.write_bytes(bytes(data))
+        with pytest.raises((OSError, pa.ArrowException)):  # pyarrow itself cannot read the rows either
+            pq.read_table(path)
+    else:
+        assert pq.read_schema(path).field("value").type == pa.string()  # pyarrow's reading of the type
+    _fit_says_why(cli("fit", str(path)), path)
