@@ -838,7 +838,7 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--report", metavar="DIR",
                    help="also write DIR/report.html: a chart per stream and a summary table")
     r.add_argument("--jobs", type=int, default=None, metavar="N",
-                   help="processes to split the streams over (default: the cores available)")
+                   help="processes to split the streams over (default, and at most: the cores available)")
     r.add_argument("--dask", metavar="ADDRESS",
                    help="replay one dataset directory partitioned by stream on this Dask scheduler "
                    "(tcp://HOST:PORT); needs the cluster extra")
