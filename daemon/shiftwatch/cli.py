@@ -15,7 +15,7 @@ import os
 import sys
 import time
 from collections.abc import Sequence
-from typing import Any, TextIO
+from typing import Any
 
 from shiftwatch import __version__
 
@@ -32,6 +32,68 @@ EXIT_USAGE = 2  # the command could not run at all (bad file, header, config)
 
 def _err(msg: str) -> None:
     print(f"shiftwatch: {msg}", file=sys.stderr)
+
+
+class OutputError(Exception):
+    """Writing a command's output failed (a full disk, a quota, an I/O error): the command
+    stops with exit status 2 and one line naming the output and the error."""
+
+    def __init__(self, what: str, exc: OSError) -> None:
+        super().__init__(f"{what}: cannot write: {exc.strerror or exc}")
+        self.what = what
+
+
+class _Output:
+    """A text stream whose write errors are :class:`OutputError` naming it (``what``).
+
+    A broken pipe stays a ``BrokenPipeError``: the reader went away, which is no fault.
+    """
+
+    def __init__(self, stream: Any, what: str) -> None:
+        self._stream = stream
+        self.what = what
+
+    def _guarded(self, call: Any, *args: Any) -> Any:
+        try:
+            return call(*args)
+        except BrokenPipeError:
+            raise
+        except OSError as exc:
+            raise OutputError(self.what, exc) from None
+
+    def write(self, text: str) -> int:
+        return int(self._guarded(self._stream.write, text))
+
+    def flush(self) -> None:
+        self._guarded(self._stream.flush)
+
+    def close(self) -> None:
+        self._guarded(self._stream.close)
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._stream, name)
+
+
+def _close_quietly(stream: Any) -> None:
+    """Close a file whose writing already failed: its buffer cannot be written either, and
+    the first error is the one to report."""
+    try:
+        stream.close()
+    except OSError:
+        pass
+
+
+def _stdout_to_null(stream: Any) -> None:
+    """Point standard output at /dev/null, so the interpreter's last flush of what could not be
+    written fails no more (the recipe of the Python manual's signal module notes on SIGPIPE)."""
+    try:
+        fd = stream.fileno()
+        if fd >= 0:
+            null = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(null, fd)
+            os.close(null)
+    except (OSError, ValueError):
+        pass
 
 
 def _load_config(path: str | None) -> Any:
@@ -152,6 +214,13 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
     shown = (label_for, show_tz)
     if args.dask is not None:
         return _replay_on_dask(args, cfg, report, settings_for, unit_for, sources, shown)
+    cores = default_jobs()
+    if jobs > cores:
+        # More processes than cores only take turns on them, and pay for it: --jobs 1000 on two
+        # cores took 67 s against 3 s, 27 s of it system time.
+        _err(f"--jobs {jobs}: replaying in {cores} process{'es' if cores > 1 else ''}, "
+             "as many as the cores this process may run on")
+        jobs = cores
     heap.keep_freed_memory()  # a chunk's arrays reuse the last one's pages (see shiftwatch.heap)
     bar = progress_bar(_input_bytes(args.csv), "replay", "B", minimum=PROGRESS_MIN_BYTES)
     try:
@@ -194,10 +263,10 @@ def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for:
 
     label_for, tz = shown
 
-    out: TextIO
+    out: Any
     if args.out:
         try:
-            out = open(args.out, "w", encoding="utf-8")  # noqa: SIM115  closed in the finally below
+            out = _Output(open(args.out, "w", encoding="utf-8"), f"--out {args.out}")  # noqa: SIM115  closed below
         except OSError as exc:
             _err(f"--out {args.out}: cannot write: {exc.strerror or exc}")
             return EXIT_USAGE
@@ -216,9 +285,20 @@ def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for:
                 d["label"] = label
             d["summary"] = alert_summary(rec, label, tz, today=written)
             out.write(json.dumps(d) + "\n")
-    finally:
         if args.out:
             out.close()
+        else:
+            out.flush()  # a full disk is told here, before the summary, and not at exit
+    except OutputError as exc:
+        if not args.out:
+            raise  # standard output: main() tells it
+        _close_quietly(out)
+        _err(str(exc))
+        return EXIT_USAGE
+    except BaseException:
+        if args.out:
+            _close_quietly(out)
+        raise
     problem_count = result.problem_count
     _print_problems(result.problems, KEEP_PROBLEMS, problem_count)
     streams = result.streams
@@ -279,6 +359,12 @@ def cmd_fit(args: argparse.Namespace) -> int:
         return EXIT_USAGE
     _print_problems(read.problems)
     names = sorted(read.streams)
+    if not names:  # say why, not "holds 0 streams" or "no stream named 'a' (streams: )"
+        if read.problems:
+            _err(f"{args.csv}: no stream could be read: no row was usable; the first problem: {read.problems[0]}")
+        else:
+            _err(f"{args.csv}: holds no rows, so no stream to fit")
+        return EXIT_USAGE
     if args.stream is None:
         if len(names) != 1:
             _err(f"{args.csv}: holds {len(names)} streams; choose one with --stream "
@@ -755,7 +841,7 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--report", metavar="DIR",
                    help="also write DIR/report.html: a chart per stream and a summary table")
     r.add_argument("--jobs", type=int, default=None, metavar="N",
-                   help="processes to split the streams over (default: the cores available)")
+                   help="processes to split the streams over (default, and at most: the cores available)")
     r.add_argument("--dask", metavar="ADDRESS",
                    help="replay one dataset directory partitioned by stream on this Dask scheduler "
                    "(tcp://HOST:PORT); needs the cluster extra")
@@ -978,12 +1064,24 @@ def main(argv: Sequence[str] | None = None) -> int:
     if not getattr(args, "func", None):
         parser.print_help()
         return EXIT_USAGE
+    stdout = sys.stdout
+    sys.stdout = _Output(stdout, "standard output")
     try:
-        return int(args.func(args))
+        code = int(args.func(args))
+        sys.stdout.flush()  # what is still buffered, so that a full disk is told now
+        return code
     except KeyboardInterrupt:
         return 130
     except BrokenPipeError:
+        _stdout_to_null(stdout)
         return EXIT_OK
+    except OutputError as exc:
+        _err(str(exc))
+        if exc.what == "standard output":
+            _stdout_to_null(stdout)
+        return EXIT_USAGE
+    finally:
+        sys.stdout = stdout
 
 
 if __name__ == "__main__":

@@ -89,7 +89,8 @@ def replay_on_dask(root: str | Path, client: Any, settings_for: Callable[[str], 
     ``replay_files(files)`` in one process.  Raises
     :class:`~shiftwatch.sources.CsvFormatError` for a file that cannot be
     read (checked on the workers) and :class:`ClusterError` when dask is
-    missing or a stream is in two partitions.
+    missing, the address is malformed or unreachable, or a stream is in two
+    partitions.
     """
     try:
         from distributed import Client
@@ -105,6 +106,9 @@ def replay_on_dask(root: str | Path, client: Any, settings_for: Callable[[str], 
             client = Client(client, timeout="20s")  # type: ignore[no-untyped-call]  # distributed's Client() is unannotated
         except (OSError, TimeoutError) as exc:
             raise ClusterError(f"cannot reach the Dask scheduler at {client}: {exc}") from None
+        except ValueError as exc:  # distributed's parse of the address: no port, an unknown scheme
+            raise ClusterError(f"{client!r} is not a Dask scheduler address ({exc}); give it as "
+                               "tcp://HOST:PORT, for example tcp://10.20.0.5:8786") from None
     try:
         futures = client.map(_replay_partition, partitions, settings_for=settings_for, unit_for=unit_for,
                              layout=layout, timezone=timezone, trace_options=trace_options, pure=False)

@@ -26,6 +26,7 @@ engines' per stream in name order).
 
 from __future__ import annotations
 
+import math
 import mmap
 import os
 import queue
@@ -360,19 +361,20 @@ def _jobs_the_files_allow(jobs: int) -> int:
     def need(n: int) -> int:
         return FILES_PER_QUEUE * (n * n + 1) + SPARE_FILES
 
+    def most(files: int) -> int:  # the largest N with need(N) <= files, solved for N
+        return max(1, math.isqrt(max(0, (files - SPARE_FILES) // FILES_PER_QUEUE - 1)))
+
     soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
     if soft != resource.RLIM_INFINITY and soft < need(jobs):
         want = need(jobs) if hard == resource.RLIM_INFINITY else min(hard, need(jobs))
         try:
             resource.setrlimit(resource.RLIMIT_NOFILE, (want, hard))
             soft = want
-        except (ValueError, OSError):
+        except (ValueError, OSError, OverflowError):  # OverflowError: more than an rlim_t holds
             pass
     if soft == resource.RLIM_INFINITY:
         return jobs
-    while jobs > 1 and need(jobs) > soft:
-        jobs -= 1
-    return jobs
+    return min(jobs, most(soft))
 
 
 def _small(sources: list[Source], chunk_bytes: int) -> bool:

@@ -31,6 +31,7 @@ from __future__ import annotations
 import csv
 import math
 import os
+import stat
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, tzinfo
@@ -182,12 +183,14 @@ class Source:
 
 def expand_paths(paths: Sequence[str | Path]) -> list[str]:
     """The files to read: each path, a directory standing for its ``.parquet`` and ``.csv``
-    files (all levels below it, in path order)."""
+    files (all levels below it, in path order).  An entry of a directory that is named as
+    such a file but is none (a broken symlink, a pipe) is kept, so that opening it names it
+    as opening a path given directly does, instead of leaving its rows out without a word."""
     out: list[str] = []
     for p in paths:
         if os.path.isdir(p):
             found = sorted(str(f) for f in Path(p).rglob("*")
-                           if f.is_file() and f.suffix.lower() in (".parquet", ".pq", ".csv")
+                           if not f.is_dir() and f.suffix.lower() in (".parquet", ".pq", ".csv")
                            and not any(part.startswith((".", "_")) for part in f.relative_to(p).parts))
             if not found:
                 raise CsvFormatError(f"{p}: the directory holds no .parquet or .csv file")
@@ -248,6 +251,31 @@ def _pick_layout(name: str, header: list[str], layout: str, where: str) -> tuple
     return "wide", ti, -1, -1, tags
 
 
+#: What a path that is no regular file is, by its type (stat(2)'s st_mode).
+_NOT_FILES = ((stat.S_ISFIFO, "a pipe"), (stat.S_ISCHR, "a character device"), (stat.S_ISSOCK, "a socket"),
+              (stat.S_ISBLK, "a block device"), (stat.S_ISDIR, "a directory"))
+
+
+def _check_regular(path: str) -> None:
+    """Raise :class:`CsvFormatError` unless ``path`` is a regular file (or a link to one).
+
+    A file is read in pieces by their place in it, and opened more than once, which a pipe
+    (``cat FILE | shiftwatch replay /dev/stdin``, a FIFO) cannot give: its second opening sees
+    rows from the middle, or waits for ever for a writer.  Told from os.stat, before opening.
+    """
+    try:
+        mode = os.stat(path).st_mode
+    except OSError as exc:
+        link = f" (a symbolic link to {os.readlink(path)})" if os.path.islink(path) else ""
+        raise CsvFormatError(f"{path}: cannot open: {exc.strerror or exc}{link}") from None
+    if stat.S_ISREG(mode):
+        return
+    kind = next((what for test, what in _NOT_FILES if test(mode)), "not a file")
+    raise CsvFormatError(f"{path}: {kind}, not a regular file; shiftwatch reads a file in pieces by their "
+                         "place in it, so save the data to a file first (for example: cat > history.csv) "
+                         "and give that file")
+
+
 def _is_parquet(path: str) -> bool:
     with open(path, "rb") as fb:
         return fb.read(4) == b"PAR1"
@@ -259,6 +287,7 @@ def open_source(path: str, layout: str = "auto") -> Source:
     Raises :class:`CsvFormatError` when the file cannot be opened or its
     columns fit no layout.
     """
+    _check_regular(path)
     try:
         parquet = _is_parquet(path)
     except OSError as exc:

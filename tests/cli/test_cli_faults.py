@@ -1,0 +1,249 @@
+"""The real command line against faults around its input and output: a full disk, odd
+addresses and numbers, pipes, unreadable files in a directory.
+
+The README's promise: a clear error naming what was wrong and where, no Python
+traceback, exit 0 ok, 1 some bad rows or values, 2 could not run.  Demo data
+are set at the Brackenfield bottling plant, an invented site.
+"""
+
+from __future__ import annotations
+
+import errno
+import os
+import subprocess
+from datetime import UTC, datetime
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from shiftwatch.core.timefmt import format_time
+
+# full(4) (Linux manual page): "Writes to the /dev/full device fail with an ENOSPC error."
+# The message is the C library's for that errno (strerror(3), here os.strerror).
+ENOSPC_TEXT = os.strerror(errno.ENOSPC)
+STREAM = "brackenfield/filler3/fill_g"
+T0 = datetime(2026, 3, 2, 6, 0, tzinfo=UTC).timestamp()
+
+
+def write_filler(path: Path, n: int = 3000) -> Path:
+    """One stream of fill weights with a step of 1.2 g at sample 1,800."""
+    rng = np.random.default_rng(7)
+    with open(path, "w") as f:
+        f.write("time,stream,value\n")
+        f.writelines(f"{format_time(T0 + i)},{STREAM},{500 + 0.8 * rng.standard_normal() + 1.2 * (i >= 1800):.4f}\n"
+                     for i in range(n))
+    return path
+
+
+@pytest.fixture
+def line_csv(tmp_path: Path) -> Path:
+    return write_filler(tmp_path / "filler3.csv")
+
+
+@pytest.fixture
+def run_to(shiftwatch_cmd: list[str]):
+    """``run_to(stdout, *args)``: the real command line with its standard output on ``stdout``
+    (an open file)."""
+
+    def run(stdout, *args: str, stdin=None) -> subprocess.CompletedProcess[str]:
+        return subprocess.run(shiftwatch_cmd + list(args), stdout=stdout, stderr=subprocess.PIPE, stdin=stdin,
+                              check=False, text=True, timeout=300)
+
+    return run
+
+
+def no_traceback(stderr: str) -> None:
+    assert "Traceback" not in stderr and "Exception ignored" not in stderr, stderr
+
+
+# ------------------------------------------------------------------ a full disk
+@pytest.mark.parametrize("where", ["--out", "stdout"])
+def test_replay_to_a_full_disk_exits_2_naming_the_output(cli, run_to, line_csv: Path, where: str) -> None:
+    if where == "--out":
+        res = cli("replay", "--jobs", "1", "--out", "/dev/full", str(line_csv))
+        what = "--out /dev/full"
+    else:
+        with open("/dev/full", "w") as full:
+            res = run_to(full, "replay", "--jobs", "1", str(line_csv))
+        what = "standard output"
+    no_traceback(res.stderr)
+    assert res.returncode == 2, res.stderr
+    assert f"shiftwatch: {what}: cannot write: {ENOSPC_TEXT}\n" in res.stderr
+
+
+@pytest.mark.parametrize("command", [("fit", "--stream", STREAM, "FILE"), ("fit", "--json", "FILE"),
+                                     ("design",), ("design", "--json"), ("design", "--from", "FILE"),
+                                     ("schema",)])
+def test_commands_printing_to_a_full_disk_exit_2(run_to, line_csv: Path, command: tuple[str, ...]) -> None:
+    args = [str(line_csv) if a == "FILE" else a for a in command]
+    with open("/dev/full", "w") as full:
+        res = run_to(full, *args)
+    no_traceback(res.stderr)
+    assert res.returncode == 2, res.stderr
+    assert res.stderr.endswith(f"shiftwatch: standard output: cannot write: {ENOSPC_TEXT}\n"), res.stderr
+
+
+def test_replay_writes_the_same_records_to_out_and_stdout(cli, line_csv: Path, tmp_path: Path) -> None:
+    # Where the disk has room the guard around the output changes nothing: --out and standard
+    # output hold the same lines, and this history has a confirmed step to write.
+    out = tmp_path / "records.jsonl"
+    a = cli("replay", "--jobs", "1", "--out", str(out), str(line_csv))
+    b = cli("replay", "--jobs", "1", str(line_csv))
+    assert a.returncode == b.returncode == 0, a.stderr + b.stderr
+    assert out.read_text() == b.stdout and '"phase": "confirmed"' in b.stdout
+
+
+# ------------------------------------------------------------ more jobs than cores
+@pytest.mark.parametrize("jobs", ["1000", "99999999999999999999"])
+def test_replay_takes_no_more_processes_than_cores_and_says_so(cli, line_csv: Path, jobs: str) -> None:
+    # The cores this process may run on: sched_getaffinity(2) (Linux manual page), os.sched_getaffinity.
+    # A number of jobs past any open-file limit used to hang while it was lowered one by one.
+    cores = len(os.sched_getaffinity(0))
+    one = cli("replay", "--jobs", "1", str(line_csv))
+    many = cli("replay", "--jobs", jobs, str(line_csv))
+    assert one.returncode == many.returncode == 0, many.stderr
+    assert many.stdout == one.stdout
+    if cores > 1:
+        said = f"shiftwatch: --jobs {jobs}: replaying in {cores} processes, as many as the cores this process may run on\n"
+    else:
+        said = f"shiftwatch: --jobs {jobs}: replaying in 1 process, as many as the cores this process may run on\n"
+    assert many.stderr == said + one.stderr
+
+
+# ------------------------------------------------------------ a malformed --dask address
+@pytest.mark.parametrize(("address", "why"), [
+    ("nonsense", "missing port number in address 'nonsense'"),
+    ("tcp://historian.brackenfield.example:port", "invalid literal for int() with base 10: 'port'"),
+    ("ftp://historian.brackenfield.example:8786", "unknown address scheme 'ftp'"),
+])
+def test_dask_with_a_malformed_address_exits_2_naming_it_and_the_form(cli, tmp_path: Path, address: str,
+                                                                     why: str) -> None:
+    # The form is distributed's: a scheduler address is tcp://HOST:PORT (Dask's documentation of
+    # distributed.Client and its address parser, distributed.comm.addressing, whose words "why" are).
+    part = tmp_path / "data" / "stream=brackenfield%2Ffiller3%2Ffill_g"
+    part.mkdir(parents=True)
+    write_filler(part / "part-0.csv")
+    res = cli("replay", "--dask", address, str(tmp_path / "data"))
+    no_traceback(res.stderr)
+    assert res.returncode == 2, res.stderr
+    assert res.stderr.startswith(f"shiftwatch: {address!r} is not a Dask scheduler address ("), res.stderr
+    assert why in res.stderr and "give it as tcp://HOST:PORT" in res.stderr
+
+
+# ------------------------------------------------------------ pipes and FIFOs
+# A pipe (pipe(7)) and a FIFO (fifo(7)) are not regular files (inode(7): S_ISFIFO); opening a
+# FIFO for reading blocks until a writer opens it (fifo(7)), and neither can be read by offset.
+READERS = [("replay",), ("fit",), ("design", "--from")]
+
+
+def _says_save_to_a_file(stderr: str, path: str) -> None:
+    no_traceback(stderr)
+    assert stderr.startswith(f"shiftwatch: {path}: a pipe, not a regular file; "), stderr
+    assert "save the data to a file first" in stderr
+
+
+@pytest.mark.parametrize("command", READERS)
+def test_reading_a_pipe_exits_2_saying_to_save_it_to_a_file(run_to, line_csv: Path, command: tuple[str, ...]
+                                                            ) -> None:
+    with open(line_csv) as data:
+        cat = subprocess.Popen(["cat"], stdin=data, stdout=subprocess.PIPE)  # cat(1): the file through a pipe
+        res = run_to(subprocess.PIPE, *command, "/dev/stdin", stdin=cat.stdout)
+        assert cat.stdout is not None
+        cat.stdout.close()
+        cat.wait()
+    assert res.returncode == 2, res.stderr
+    assert res.stdout == ""
+    _says_save_to_a_file(res.stderr, "/dev/stdin")
+
+
+@pytest.mark.parametrize("command", READERS)
+def test_a_fifo_without_a_writer_is_refused_without_opening_it(cli, tmp_path: Path, command: tuple[str, ...]
+                                                               ) -> None:
+    fifo = tmp_path / "historian.csv"
+    os.mkfifo(fifo)
+    res = cli(*command, str(fifo), timeout=60)  # the code before waited here for a writer
+    assert res.returncode == 2, res.stderr
+    _says_save_to_a_file(res.stderr, str(fifo))
+
+
+def test_the_same_rows_from_a_regular_file_given_as_dev_stdin_replay(run_to, line_csv: Path) -> None:
+    # Standard input redirected from a regular file is a regular file (stat(2) of /dev/stdin),
+    # which can be read by offset: it replays as the file named directly does.
+    with open(line_csv) as data:
+        via_stdin = run_to(subprocess.PIPE, "replay", "--jobs", "1", "/dev/stdin", stdin=data)
+    direct = run_to(subprocess.PIPE, "replay", "--jobs", "1", str(line_csv))
+    assert via_stdin.returncode == direct.returncode == 0, via_stdin.stderr
+    assert via_stdin.stdout == direct.stdout and '"phase": "confirmed"' in direct.stdout
+
+
+# ------------------------------------------------------------ unreadable entries of a directory
+@pytest.mark.parametrize("entry", ["broken symlink", "fifo"])
+@pytest.mark.parametrize("command", READERS)
+def test_a_directorys_unreadable_entry_exits_2_naming_it(cli, tmp_path: Path, entry: str,
+                                                        command: tuple[str, ...]) -> None:
+    # README: "A file that cannot be read ... gives exit status 2", in a directory as named directly.
+    data = tmp_path / "brackenfield-line3"
+    data.mkdir()
+    write_filler(data / "filler3.csv")
+    bad = data / "filler4.csv"
+    if entry == "broken symlink":
+        os.symlink(tmp_path / "archive" / "filler4.csv", bad)
+        # stat(2) follows the link: ENOENT, whose text is strerror(3)'s.
+        why = f"cannot open: {os.strerror(errno.ENOENT)} (a symbolic link to {tmp_path / 'archive' / 'filler4.csv'})"
+    else:
+        os.mkfifo(bad)
+        why = "a pipe, not a regular file; "
+    given = cli(*command, str(bad), timeout=60)
+    res = cli(*command, str(data), timeout=60)
+    no_traceback(res.stderr)
+    assert res.returncode == given.returncode == 2, res.stderr
+    assert res.stderr.startswith(f"shiftwatch: {bad}: {why}"), res.stderr
+    assert res.stderr == given.stderr
+
+
+# ------------------------------------------------------------ fit on a file with no usable row
+def _fit_says_why(res: subprocess.CompletedProcess[str], path: Path) -> None:
+    no_traceback(res.stderr)
+    assert res.returncode == 2, res.stderr
+    lines = res.stderr.splitlines()
+    first, last = lines[0], lines[-1]
+    # The problems are printed first; the last line names the first of them as the reason.
+    assert last == f"shiftwatch: {path}: no stream could be read: no row was usable; the first problem: {first}"
+
+
+@pytest.mark.parametrize("stream", [None, STREAM])
+def test_fit_on_naive_times_without_a_timezone_says_why_no_stream_was_read(cli, tmp_path: Path,
+                                                                           stream: str | None) -> None:
+    # RFC 3339 (section 5.6) requires the offset; "2026-03-02 06:00:00" has none, and without
+    # --timezone every row is refused.
+    path = tmp_path / "filler3-local.csv"
+    path.write_text("time,stream,value\n" + "".join(f"2026-03-02 06:00:{s:02d},{STREAM},{500 + s % 3}\n"
+                                                    for s in range(40)))
+    res = cli("fit", *(() if stream is None else ("--stream", stream)), str(path))
+    _fit_says_why(res, path)
+    assert "has no UTC offset" in res.stderr.splitlines()[-1]
+
+
+@pytest.mark.parametrize("kind", ["string values", "corrupt"])
+def test_fit_on_a_parquet_file_with_no_readable_row_says_why(cli, tmp_path: Path, kind: str) -> None:
+    path = tmp_path / "oven2.parquet"
+    times = pa.array([T0 + i for i in range(400)], type=pa.float64())
+    if kind == "string values":
+        values = pa.array([f"{182 + 0.1 * (i % 7):.1f} C" for i in range(400)], type=pa.string())
+    else:
+        values = pa.array([182 + 0.1 * (i % 7) for i in range(400)], type=pa.float64())
+    pq.write_table(pa.table({"time": times, "stream": ["brackenfield/oven2/zone4_c"] * 400, "value": values}),
+                   path, compression="snappy")
+    if kind == "corrupt":
+        data = bytearray(path.read_bytes())
+        for i in range(100, 400):  # inside the first column chunk's pages, the footer kept
+            data[i] ^= 0x5A
+        path.write_bytes(bytes(data))
+        with pytest.raises((OSError, pa.ArrowException)):  # pyarrow itself cannot read the rows either
+            pq.read_table(path)
+    else:
+        assert pq.read_schema(path).field("value").type == pa.string()  # pyarrow's reading of the type
+    _fit_says_why(cli("fit", str(path)), path)
