@@ -38,6 +38,7 @@ import math
 import os
 import struct
 import tempfile
+import warnings
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -479,6 +480,17 @@ class ReplayReport:
 
 
 # ------------------------------------------------------------------ charts
+#: Text properties of every text a chart draws: stream names, labels and units are
+#: the user's, so they are drawn as written.  By default matplotlib parses the text
+#: between two ``$`` as mathtext ("Writing mathematical expressions" in its
+#: documentation), which draws ``pump A$ B$`` as math and fails on ``x $a_$`` when
+#: the figure is drawn; ``parse_math=False`` (matplotlib >= 3.5) turns that off.
+LITERAL: dict[str, Any] = {"parse_math": False}
+#: matplotlib's warnings about characters its font cannot draw (regular expressions,
+#: matched at the start of the message).
+_FONT_WARNINGS = (r"Glyph \d+ \(", r"Matplotlib currently does not support .* natively")
+
+
 def _days(t: FloatArray | float | list[float]) -> Any:
     """Epoch seconds as matplotlib date numbers (days since 1970-01-01 UTC)."""
     return np.asarray(t, dtype=np.float64) / 86400.0
@@ -512,22 +524,27 @@ def stream_figure(trace: StreamTrace) -> Figure:
     elif x.shape[0]:
         main.plot(_days(x), mean, color=SAMPLE_COLOUR, linewidth=0.6, marker=".", markersize=2.5)
     else:
-        main.text(0.5, 0.5, "no usable samples", transform=main.transAxes, ha="center", va="center")
+        main.text(0.5, 0.5, "no usable samples", transform=main.transAxes, ha="center", va="center",
+                  parse_math=False)
     if trace.spike_times:
         main.plot(_days(trace.spike_times), trace.spike_values, linestyle="none", marker="x",
                   markersize=5, color=SPIKE_COLOUR)
     for k, ev in enumerate(events):
         _draw_event(main, ev, env, label=True, until=_level_until(events, k, env))
     # The axis names the reading as the operator does (its label), else "reading", with its unit.
-    main.set_ylabel(f"{trace.label or 'reading'}{unit}")
-    main.set_title(f"{trace.name}: {env.count:,} samples, {len(events)} event(s)", loc="left", fontsize=10)
+    # Names, labels and units are the user's text: drawn as written, never as mathtext (see LITERAL).
+    main.set_ylabel(f"{trace.label or 'reading'}{unit}", **LITERAL)
+    main.set_title(f"{trace.name}: {env.count:,} samples, {len(events)} event(s)", loc="left", fontsize=10,
+                   **LITERAL)
     if env.count:
         _date_axis(main, trace.time_zone)
     else:
         main.set_xticks([])
         main.set_yticks([])
-    fig.legend(handles=_legend(trace, events), loc="upper left", bbox_to_anchor=(1 - 2.35 / 12, 1 - 0.25 / height),
-               fontsize=8, frameon=False)
+    legend = fig.legend(handles=_legend(trace, events), loc="upper left",
+                        bbox_to_anchor=(1 - 2.35 / 12, 1 - 0.25 / height), fontsize=8, frameon=False)
+    for text in legend.get_texts():
+        text.set_parse_math(False)
     spikes = np.asarray(trace.spike_times)
     for ax, ev in zip(panels, zoomed):
         zt, zv = trace.zooms[ev.records[0].id]
@@ -544,7 +561,7 @@ def stream_figure(trace: StreamTrace) -> Figure:
             ax.set_ylim(float(zv.min()) - pad, float(zv.max()) + pad)
         r = ev.final
         ax.set_title(f"event {ev.number}: {ev.outcome}, {r.direction} {abs(r.delta_sigma):.2g} sigma",
-                     loc="left", fontsize=9)
+                     loc="left", fontsize=9, **LITERAL)
         _date_axis(ax, trace.time_zone, label=False)
         ax.tick_params(labelsize=7)
     return fig
@@ -558,7 +575,7 @@ def _date_axis(ax: Axes, time_zone: str = "UTC", *, label: bool = True) -> None:
     ax.xaxis.set_major_locator(loc)
     ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(loc, tz=tz))  # type: ignore[no-untyped-call]  # as above
     if label:
-        ax.set_xlabel(f"time ({zone_label(time_zone)})", fontsize=8)
+        ax.set_xlabel(f"time ({zone_label(time_zone)})", fontsize=8, **LITERAL)
     ax.grid(True, linewidth=0.3, alpha=0.6)
 
 
@@ -613,7 +630,7 @@ def _draw_event(ax: Axes, ev: Event, env: Envelope, *, label: bool, until: float
     ax.hlines(r.level_after, _days(r.shift_at), _days(end), colors=after, linestyles=style, linewidth=2.0)
     if label:
         ax.annotate(str(ev.number), xy=(_days(r.detected_at), 1.0), xycoords=("data", "axes fraction"),
-                    xytext=(2, -10), textcoords="offset points", fontsize=8, color=colour)
+                    xytext=(2, -10), textcoords="offset points", fontsize=8, color=colour, **LITERAL)
 
 
 def band_range(rec: AlertRecord, interval: float) -> tuple[float, float]:
@@ -658,11 +675,18 @@ def _legend(trace: StreamTrace, events: list[Event]) -> list[Any]:
 
 
 def render_png(trace: StreamTrace) -> tuple[bytes, int, int]:
-    """The stream's chart as PNG bytes, with its width and height in pixels."""
-    fig = stream_figure(trace)
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=96, metadata={"Software": None})
-    fig.clear()
+    """The stream's chart as PNG bytes, with its width and height in pixels.
+
+    A character the font lacks (a control character in a stream's name, a script
+    DejaVu Sans does not cover) is drawn as an empty box; matplotlib's warning
+    about it is not shown.  Other warnings and every error pass through."""
+    with warnings.catch_warnings():
+        for message in _FONT_WARNINGS:
+            warnings.filterwarnings("ignore", message=message, category=UserWarning)
+        fig = stream_figure(trace)
+        buf = io.BytesIO()
+        fig.savefig(buf, format="png", dpi=96, metadata={"Software": None})
+        fig.clear()
     png = buf.getvalue()
     width, height = struct.unpack(">II", png[16:24])  # the IHDR chunk (PNG specification, section 11.2.2)
     return png, int(width), int(height)

@@ -1,0 +1,89 @@
+"""``shiftwatch replay --report`` with the user's text and under interruption.
+
+References: matplotlib's documentation, "Writing mathematical expressions"
+(text between two ``$`` signs is parsed as mathtext unless the Text has
+``parse_math=False``), and POSIX signals (SIGINT, SIGTERM): a report that is
+interrupted leaves no temporary file behind.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from shiftwatch.core.engine import StreamEngine
+from shiftwatch.report import StreamTrace, stream_figure
+
+pytest.importorskip("matplotlib")
+
+#: Names an outside tester used: the first three are not valid mathtext (the report
+#: crashed), the last two are (they were drawn as math).
+DOLLAR_NAMES = ("x $a_$", "tank_1 $\\frac$", "flow $\\frac{m^3$/h", "pump A$ B$", "cost $/h to $^")
+
+
+def write_steps(path: Path, names: tuple[str, ...], rows: int = 300) -> Path:
+    """One reading a second per stream, a step of 3 after the middle (as gen_dollar.py)."""
+    with open(path, "w", encoding="utf-8", newline="") as f:
+        f.write("time,stream,value\n")
+        for name in names:
+            quoted = '"' + name.replace('"', '""') + '"'
+            f.writelines(f"{1764800000 + i},{quoted},{10 + (i % 5) * 0.1 + (3 if i > rows // 2 else 0):.2f}\n"
+                         for i in range(rows))
+    return path
+
+
+def traced(name: str, rows: int = 300) -> StreamTrace:
+    t = 1764800000.0 + np.arange(rows, dtype=np.float64)
+    v = 10 + (np.arange(rows) % 5) * 0.1 + np.where(np.arange(rows) > rows // 2, 3.0, 0.0)
+    trace = StreamTrace(name)
+    trace.add_batch(t, v, StreamEngine(name).process(t, v))
+    trace.close()
+    return trace
+
+
+def test_names_labels_and_units_with_dollar_signs_do_not_break_the_report(cli, tmp_path: Path) -> None:
+    """A `$...$` in a stream's name, its configured label or unit crashed ``--report``
+    (mathtext ParseSyntaxException in savefig; exit 1, no report.html).  matplotlib's
+    "Writing mathematical expressions": text between `$` is mathtext unless parse_math=False."""
+    data = write_steps(tmp_path / "dollar.csv", DOLLAR_NAMES + ("a",))
+    cfg = tmp_path / "label.yaml"
+    cfg.write_text('streams:\n  - topic: "a"\n    label: "x $a_$"\n    unit: "m$^3$"\n')
+    out = tmp_path / "report"
+    res = cli("replay", "--jobs", "1", "--config", str(cfg), "--report", str(out), str(data))
+    assert res.returncode == 0, res.stderr[-2000:]
+    assert "Traceback" not in res.stderr
+    text = (out / "report.html").read_text(encoding="utf-8")
+    for name in DOLLAR_NAMES:
+        assert f"<h3>{name}</h3>" in text  # nothing in these names needs escaping in HTML
+    assert "<h3>x $a_$ (a)</h3>" in text
+    assert sorted(p.name for p in out.iterdir()) == ["report.html"]
+
+
+@pytest.mark.parametrize("name", DOLLAR_NAMES)
+def test_every_text_of_a_chart_is_drawn_as_written(name: str) -> None:
+    """`pump A$ B$` was drawn as math (italic A, no dollars).  matplotlib's "Writing
+    mathematical expressions": a Text with parse_math=False is drawn literally."""
+    trace = traced(name)
+    trace.label, trace.unit = name, "m$^3$"
+    fig = stream_figure(trace)
+    fig.canvas.draw()  # raised ParseSyntaxException for the names that are not valid mathtext
+    from matplotlib.text import Text
+
+    texts = [t for t in fig.findobj(Text) if t.get_text()]
+    assert any(t.get_text().startswith(f"{name}: 300 samples") for t in texts)
+    assert any(t.get_text() == f"{name} (m$^3$)" for t in texts)
+    mathtext = [t.get_text() for t in texts if "$" in t.get_text() and t.get_parse_math()]
+    assert mathtext == []
+
+
+def test_a_name_the_font_cannot_draw_warns_nobody(cli, tmp_path: Path) -> None:
+    """Control characters in a name made matplotlib print "UserWarning: Glyph 1 (...)
+    missing from font(s)" on the terminal, once per character and chart."""
+    data = write_steps(tmp_path / "ctl.csv", ("tank\x01\x02 level",))
+    out = tmp_path / "report"
+    res = cli("replay", "--jobs", "1", "--report", str(out), str(data))
+    assert res.returncode == 0, res.stderr[-2000:]
+    assert "Glyph" not in res.stderr and "Warning" not in res.stderr
+    assert (out / "report.html").is_file()
