@@ -36,10 +36,13 @@ import html
 import io
 import math
 import os
+import signal
 import struct
 import tempfile
+import threading
 import warnings
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Literal
@@ -365,10 +368,11 @@ def zoom_range(rec: AlertRecord, until: float | None = None) -> tuple[float, flo
 class ReplayReport:
     """Collects a replay for the HTML report and writes it.
 
-    The output directory is created and a temporary file opened in it at once,
-    so a directory that cannot be written is reported before a long replay,
-    not after.  :meth:`write` renames the file to ``report.html`` when it is
-    complete; :meth:`discard` removes it.
+    The output directory is created and a file created in it and removed at
+    once, so a directory that cannot be written is reported before a long
+    replay, not after.  :meth:`write` writes a temporary file and renames it to
+    ``report.html`` when it is complete; however it stops (an error, Ctrl-C,
+    SIGTERM or SIGHUP while drawing) it removes the temporary file first.
 
     Parameters
     ----------
@@ -383,10 +387,11 @@ class ReplayReport:
         try:
             self.directory.mkdir(parents=True, exist_ok=True)
             fd, tmp = tempfile.mkstemp(prefix=".report-", suffix=".html", dir=self.directory)
+            os.close(fd)
+            os.unlink(tmp)  # a probe: nothing is left behind while the replay runs
         except OSError as exc:
             raise ReportError(f"--report {directory}: cannot write there: {exc.strerror or exc}") from None
-        os.close(fd)
-        self._tmp = Path(tmp)
+        self._tmp: Path | None = None  # the unfinished report, while write() runs
         self._options = {"max_bins": max_bins, "zoom_samples": zoom_samples, "max_zooms": max_zooms,
                          "max_spikes": max_spikes}
         self.traces: dict[str, StreamTrace] = {}
@@ -446,37 +451,94 @@ class ReplayReport:
             trace.unit = (units or {}).get(trace.name) or trace.unit
             trace.label = (labels or {}).get(trace.name) or trace.label
             trace.time_zone = time_zone
-        try:
-            with open(self._tmp, "w", encoding="utf-8") as out:
-                out.write(_head(sources, settings_note, time_zone))
-                out.write(_summary(traces, samples, rejected, unreadable_rows, time_zone))
-                out.write('<h2 id="charts">Charts</h2>\n')
-                out.write(_how_to_read())
-                for i, trace in enumerate(traces):
-                    png, width, height = render_png(trace)
-                    data = base64.b64encode(png).decode("ascii")
-                    name = html.escape(trace.name)
-                    title = name if trace.label is None else f"{html.escape(trace.label)} ({name})"
-                    out.write(f'<section class="chart" id="s{i + 1}"><h3>{title}</h3>\n'
-                              f'<img src="data:image/png;base64,{data}" width="{width}" height="{height}" '
-                              f'alt="samples, fitted levels and events of {name}"></section>\n')
-                    if progress is not None:
-                        progress(1)
-                out.write(f"<footer><p>{html.escape(ADVISORY)}</p>"
-                          f"<p>Written by shiftwatch {__version__}.</p></footer>\n</body>\n</html>\n")
-            os.replace(self._tmp, self.path)
-        except OSError as exc:
-            self.discard()
-            raise ReportError(f"--report {self.directory}: cannot write {REPORT_FILE}: "
-                              f"{exc.strerror or exc}") from None
+        with _unwinding_on_termination():
+            try:
+                return self._write(traces, samples=samples, rejected=rejected, sources=sources,
+                                   settings_note=settings_note, unreadable_rows=unreadable_rows,
+                                   time_zone=time_zone, progress=progress)
+            except OSError as exc:
+                raise ReportError(f"--report {self.directory}: cannot write {REPORT_FILE}: "
+                                  f"{exc.strerror or exc}") from None
+            finally:
+                self.discard()  # the unfinished file, when the report did not complete
+
+    def _write(self, traces: list[StreamTrace], *, samples: dict[str, int], rejected: dict[str, dict[str, int]],
+               sources: Sequence[str], settings_note: str, unreadable_rows: int, time_zone: str,
+               progress: Callable[[int], None] | None) -> Path:
+        fd, tmp = tempfile.mkstemp(prefix=".report-", suffix=".html", dir=self.directory)
+        self._tmp = Path(tmp)
+        with open(fd, "w", encoding="utf-8") as out:
+            out.write(_head(sources, settings_note, time_zone))
+            out.write(_summary(traces, samples, rejected, unreadable_rows, time_zone))
+            out.write('<h2 id="charts">Charts</h2>\n')
+            out.write(_how_to_read())
+            for i, trace in enumerate(traces):
+                png, width, height = render_png(trace)
+                data = base64.b64encode(png).decode("ascii")
+                name = html.escape(trace.name)
+                title = name if trace.label is None else f"{html.escape(trace.label)} ({name})"
+                out.write(f'<section class="chart" id="s{i + 1}"><h3>{title}</h3>\n'
+                          f'<img src="data:image/png;base64,{data}" width="{width}" height="{height}" '
+                          f'alt="samples, fitted levels and events of {name}"></section>\n')
+                if progress is not None:
+                    progress(1)
+            out.write(f"<footer><p>{html.escape(ADVISORY)}</p>"
+                      f"<p>Written by shiftwatch {__version__}.</p></footer>\n</body>\n</html>\n")
+        os.replace(tmp, self.path)
+        self._tmp = None
         return self.path
 
     def discard(self) -> None:
-        """Remove the unfinished file."""
-        try:
-            self._tmp.unlink()
-        except OSError:
-            pass
+        """Remove the unfinished file, if there is one."""
+        tmp, self._tmp = self._tmp, None
+        if tmp is not None:
+            try:
+                tmp.unlink()
+            except OSError:
+                pass
+
+
+class _Terminated(BaseException):
+    """SIGTERM or SIGHUP arrived while the report was written (see :func:`_unwinding_on_termination`)."""
+
+    def __init__(self, signum: int) -> None:
+        super().__init__(signum)
+        self.signum = signum
+
+
+def _raise_terminated(signum: int, frame: object) -> None:
+    raise _Terminated(signum)
+
+
+@contextmanager
+def _unwinding_on_termination() -> Iterator[None]:
+    """Let SIGTERM and SIGHUP unwind the report's writing, then end the process as they would.
+
+    At their default disposition these signals end the process at once, and
+    the ``finally`` that removes the unfinished file never runs.  While the
+    block runs (in the main thread) they raise instead; once the block has
+    cleaned up, the default is restored and the signal raised again, so the
+    process still ends by it (exit status 128 + the signal's number).  A
+    handler the program installed itself is left alone: it decides, and an
+    exception it raises unwinds the block too.
+    """
+    wanted = [getattr(signal, n) for n in ("SIGTERM", "SIGHUP") if hasattr(signal, n)]
+    installed: dict[int, Any] = {}
+    if threading.current_thread() is threading.main_thread():
+        for sig in wanted:
+            if signal.getsignal(sig) == signal.SIG_DFL:
+                installed[sig] = signal.signal(sig, _raise_terminated)
+    try:
+        yield
+    except _Terminated as exc:
+        for sig, old in installed.items():
+            signal.signal(sig, old)
+        installed.clear()
+        signal.raise_signal(exc.signum)
+        raise  # only if the signal did not end the process
+    finally:
+        for sig, old in installed.items():
+            signal.signal(sig, old)
 
 
 # ------------------------------------------------------------------ charts

@@ -8,6 +8,10 @@ interrupted leaves no temporary file behind.
 
 from __future__ import annotations
 
+import os
+import signal
+import subprocess
+import time
 from pathlib import Path
 
 import numpy as np
@@ -87,3 +91,46 @@ def test_a_name_the_font_cannot_draw_warns_nobody(cli, tmp_path: Path) -> None:
     assert res.returncode == 0, res.stderr[-2000:]
     assert "Glyph" not in res.stderr and "Warning" not in res.stderr
     assert (out / "report.html").is_file()
+
+
+@pytest.mark.parametrize("signum", [signal.SIGINT, signal.SIGTERM], ids=["SIGINT", "SIGTERM"])
+def test_a_report_interrupted_while_drawing_leaves_no_temporary_file(shiftwatch_cmd: list[str], tmp_path: Path,
+                                                                     signum: int) -> None:
+    """Killed while drawing (Ctrl-C, SIGTERM), the replay left ``.report-XXXX.html`` in the
+    report directory.  POSIX: SIGTERM's default action ends the process without unwinding,
+    so the report turns it into an exception while it writes, cleans up, and re-raises it."""
+    data = write_steps(tmp_path / "many.csv", tuple(f"tank{k:03d}" for k in range(80)))
+    out = tmp_path / "report"
+    proc = subprocess.Popen(shiftwatch_cmd + ["replay", "--jobs", "1", "--out", os.devnull, "--report", str(out),
+                                              str(data)], stderr=subprocess.PIPE, text=True, cwd=tmp_path)
+    try:
+        assert proc.stderr is not None
+        for line in proc.stderr:  # the summary line comes when the replay is done, before the charts
+            if line.startswith("replayed "):
+                break
+        deadline = time.monotonic() + 60
+        while not list(out.glob(".report-*.html")) and time.monotonic() < deadline:
+            time.sleep(0.02)
+        assert list(out.glob(".report-*.html")), "the report's temporary file never appeared"
+        time.sleep(0.5)  # a few charts in
+        assert proc.poll() is None, "the report was done before the signal: draw more streams"
+        proc.send_signal(signum)
+        err = proc.stderr.read()
+        rc = proc.wait(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    assert rc in (-signum, 128 + signum), (rc, err[-2000:])
+    assert "Traceback" not in err
+    assert sorted(p.name for p in out.iterdir()) == []
+
+
+def test_a_report_directory_is_empty_while_the_replay_runs(tmp_path: Path) -> None:
+    """The early check that the directory can be written left its probe file there for the
+    whole replay, where a kill at any moment would leave it."""
+    from shiftwatch.report import ReplayReport
+
+    report = ReplayReport(tmp_path / "report")
+    assert list((tmp_path / "report").iterdir()) == []
+    report.discard()
