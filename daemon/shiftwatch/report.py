@@ -71,6 +71,10 @@ ZOOM_SAMPLES = 2400
 MAX_ZOOMS = 3
 #: Spikes marked per stream; further ones are counted only.
 MAX_SPIKES = 500
+#: Charts drawn per report (``--report-charts``).  A chart costs about 0.1 to 0.25 s of CPU
+#: and 30 to 60 kB of the file, so thousands of streams are summarised in the tables, with
+#: charts for the streams with events first (see :func:`charted_streams`).
+MAX_CHARTS = 200
 
 # Colours and line styles, shared by the charts and the legend.
 SAMPLE_COLOUR = "#4a7bb7"
@@ -378,11 +382,17 @@ class ReplayReport:
     ----------
     directory : where ``report.html`` goes (created if missing).
     max_bins, zoom_samples, max_zooms, max_spikes : see :class:`StreamTrace`.
+    max_charts : most charts drawn (see :func:`charted_streams`); every stream is in the tables.
     """
 
     def __init__(self, directory: str | Path, *, max_bins: int = MAX_BINS, zoom_samples: int = ZOOM_SAMPLES,
-                 max_zooms: int = MAX_ZOOMS, max_spikes: int = MAX_SPIKES) -> None:
+                 max_zooms: int = MAX_ZOOMS, max_spikes: int = MAX_SPIKES, max_charts: int = MAX_CHARTS) -> None:
         require_matplotlib()
+        if max_charts < 0:
+            raise ValueError(f"max_charts must be 0 or more, got {max_charts}")
+        self.max_charts = max_charts
+        #: (streams charted, streams) of the last report written
+        self.charted: tuple[int, int] = (0, 0)
         self.directory = Path(directory)
         try:
             self.directory.mkdir(parents=True, exist_ok=True)
@@ -441,7 +451,7 @@ class ReplayReport:
         units : unit per stream, when known (else the unit of its records).
         labels : the operator's name per stream (the config's ``label``), when it has one.
         time_zone : IANA zone in which times are shown (the config's ``display.time_zone``).
-        progress : called with 1 after each chart.
+        progress : called with 1 after each chart (at most ``max_charts``; see :func:`charted_streams`).
         """
         for trace in self.traces.values():
             trace.close()
@@ -465,14 +475,20 @@ class ReplayReport:
     def _write(self, traces: list[StreamTrace], *, samples: dict[str, int], rejected: dict[str, dict[str, int]],
                sources: Sequence[str], settings_note: str, unreadable_rows: int, time_zone: str,
                progress: Callable[[int], None] | None) -> Path:
+        charted = charted_streams(traces, rejected, self.max_charts)
+        self.charted = (len(charted), len(traces))
         fd, tmp = tempfile.mkstemp(prefix=".report-", suffix=".html", dir=self.directory)
         self._tmp = Path(tmp)
         with open(fd, "w", encoding="utf-8") as out:
             out.write(_head(sources, settings_note, time_zone))
-            out.write(_summary(traces, samples, rejected, unreadable_rows, time_zone))
+            out.write(_summary(traces, samples, rejected, unreadable_rows, time_zone, charted))
             out.write('<h2 id="charts">Charts</h2>\n')
             out.write(_how_to_read())
+            if len(charted) < len(traces):
+                out.write(_charts_note(len(charted), len(traces), self.max_charts))
             for i, trace in enumerate(traces):
+                if trace.name not in charted:
+                    continue
                 png, width, height = render_png(trace)
                 data = base64.b64encode(png).decode("ascii")
                 name = html.escape(trace.name)
@@ -482,6 +498,7 @@ class ReplayReport:
                           f'alt="samples, fitted levels and events of {name}"></section>\n')
                 if progress is not None:
                     progress(1)
+                _check_terminated()
             out.write(f"<footer><p>{html.escape(ADVISORY)}</p>"
                       f"<p>Written by shiftwatch {__version__}.</p></footer>\n</body>\n</html>\n")
         os.replace(tmp, self.path)
@@ -506,8 +523,23 @@ class _Terminated(BaseException):
         self.signum = signum
 
 
+#: The signal that arrived while the report was written (0: none); see _raise_terminated.
+_pending_signal = 0
+
+
 def _raise_terminated(signum: int, frame: object) -> None:
+    # Also noted: Python runs a handler between any two bytecodes, and an exception
+    # raised inside a finaliser (__del__, a weakref callback) is printed and dropped,
+    # so the drawing loop checks the note after each chart too.
+    global _pending_signal
+    _pending_signal = signum
     raise _Terminated(signum)
+
+
+def _check_terminated() -> None:
+    """Raise :class:`_Terminated` when a signal arrived whose exception was lost."""
+    if _pending_signal:
+        raise _Terminated(_pending_signal)
 
 
 @contextmanager
@@ -522,23 +554,28 @@ def _unwinding_on_termination() -> Iterator[None]:
     handler the program installed itself is left alone: it decides, and an
     exception it raises unwinds the block too.
     """
+    global _pending_signal
     wanted = [getattr(signal, n) for n in ("SIGTERM", "SIGHUP") if hasattr(signal, n)]
     installed: dict[int, Any] = {}
+    _pending_signal = 0
     if threading.current_thread() is threading.main_thread():
         for sig in wanted:
             if signal.getsignal(sig) == signal.SIG_DFL:
                 installed[sig] = signal.signal(sig, _raise_terminated)
     try:
         yield
+        _check_terminated()  # finished although a signal came: it still ends the process
     except _Terminated as exc:
         for sig, old in installed.items():
             signal.signal(sig, old)
         installed.clear()
+        _pending_signal = 0
         signal.raise_signal(exc.signum)
         raise  # only if the signal did not end the process
     finally:
         for sig, old in installed.items():
             signal.signal(sig, old)
+        _pending_signal = 0
 
 
 # ------------------------------------------------------------------ charts
@@ -772,6 +809,7 @@ td.confirmed { color: #c51b7d; } td.dismissed { color: #6b6b6b; } td.open { colo
 tr.dismissed td { color: #6b6b6b; }
 .caution { border-left: 4px solid #d95f02; padding: 0.3rem 0.7rem; background: #fff6ee; }
 img { max-width: 100%; height: auto; border: 1px solid #e0e0e0; }
+.nochart { color: #6b6b6b; font-size: 0.8rem; }
 footer { margin-top: 2rem; font-size: 0.8rem; color: #555; }
 """
 
@@ -807,8 +845,41 @@ def _head(sources: Sequence[str], settings_note: str, time_zone: str = "UTC") ->
     )
 
 
+def charted_streams(traces: Sequence[StreamTrace], rejected: dict[str, dict[str, int]],
+                    max_charts: int = MAX_CHARTS) -> set[str]:
+    """The streams that get a chart: at most ``max_charts``, taking first the streams
+    with events (alert records), then those with samples set aside (rejected, or lone
+    spikes), then the others; each group in name order.
+
+    >>> quiet, busy = StreamTrace("b"), StreamTrace("c")
+    >>> sorted(charted_streams([StreamTrace("a"), quiet, busy], {"c": {"late": 2}}, 2))
+    ['a', 'c']
+    """
+    def rank(t: StreamTrace) -> tuple[int, str]:
+        if t.records:
+            return 0, t.name
+        if sum(rejected.get(t.name, {}).values()) or t.spikes_total:
+            return 1, t.name
+        return 2, t.name
+
+    return {t.name for t in sorted(traces, key=rank)[:max_charts]}
+
+
+def _charts_note(charted: int, streams: int, max_charts: int) -> str:
+    return (f'<p class="caution" id="charts-note">Charts for {charted:,} of {streams:,} streams: at most '
+            f"{max_charts:,} are drawn (<code>--report-charts</code>), first the streams with events, then "
+            "those with samples set aside, then the others, each in name order. Every stream is in the "
+            "Streams and Events tables above; those without a chart say so there.</p>\n")
+
+
+def _stream_link(i: int, name: str, charted: set[str] | None) -> str:
+    if charted is None or name in charted:
+        return f'<a href="#s{i + 1}">{_e(name)}</a>'
+    return f'{_e(name)} <span class="nochart">(no chart)</span>'
+
+
 def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[str, dict[str, int]],
-             unreadable_rows: int, time_zone: str = "UTC") -> str:
+             unreadable_rows: int, time_zone: str = "UTC", charted: set[str] | None = None) -> str:
     zn = _e(zone_label(time_zone))
     all_events = {t.name: t.events() for t in traces}
     counts = {"confirmed": 0, "returned": 0, "dismissed": 0, "undecided": 0, "open": 0}
@@ -846,7 +917,7 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
     for i, t in enumerate(traces):
         evs = all_events[t.name]
         n = {k: sum(ev.outcome == k for ev in evs) for k in counts}
-        out.append(f'<tr><td><a href="#s{i + 1}">{_e(t.name)}</a></td><td class="n">{samples.get(t.name, 0):,}</td>'
+        out.append(f'<tr><td>{_stream_link(i, t.name, charted)}</td><td class="n">{samples.get(t.name, 0):,}</td>'
                    f'<td class="n">{sum(rejected.get(t.name, {}).values()):,}</td><td class="n">{len(evs)}</td>'
                    f'<td class="n">{n["confirmed"]}</td><td class="n">{n["dismissed"]}</td>'
                    f'<td class="n">{n["open"]}</td></tr>\n')
@@ -861,7 +932,7 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
     for i, t in enumerate(traces):
         evs = all_events[t.name]
         out.append(f'<tbody data-stream="{_e(t.name)}"><tr><th colspan="9" scope="rowgroup">'
-                   f'<a href="#s{i + 1}">{_e(t.name)}</a>{"" if evs else ": no events"}</th></tr>\n')
+                   f'{_stream_link(i, t.name, charted)}{"" if evs else ": no events"}</th></tr>\n')
         for ev in evs:
             r = ev.final
             unit = f" {r.unit}" if r.unit else ""
@@ -894,5 +965,5 @@ def _how_to_read() -> str:
     )
 
 
-__all__ = ["Envelope", "Event", "ReplayReport", "ReportError", "StreamTrace", "render_png",
+__all__ = ["Envelope", "Event", "ReplayReport", "ReportError", "StreamTrace", "charted_streams", "render_png",
            "require_matplotlib", "stream_figure", "zoom_range"]

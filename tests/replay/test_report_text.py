@@ -9,6 +9,7 @@ interrupted leaves no temporary file behind.
 from __future__ import annotations
 
 import os
+import re
 import signal
 import subprocess
 import time
@@ -27,13 +28,13 @@ pytest.importorskip("matplotlib")
 DOLLAR_NAMES = ("x $a_$", "tank_1 $\\frac$", "flow $\\frac{m^3$/h", "pump A$ B$", "cost $/h to $^")
 
 
-def write_steps(path: Path, names: tuple[str, ...], rows: int = 300) -> Path:
+def write_steps(path: Path, names: tuple[str, ...], rows: int = 300, step: float = 3.0) -> Path:
     """One reading a second per stream, a step of 3 after the middle (as gen_dollar.py)."""
     with open(path, "w", encoding="utf-8", newline="") as f:
         f.write("time,stream,value\n")
         for name in names:
             quoted = '"' + name.replace('"', '""') + '"'
-            f.writelines(f"{1764800000 + i},{quoted},{10 + (i % 5) * 0.1 + (3 if i > rows // 2 else 0):.2f}\n"
+            f.writelines(f"{1764800000 + i},{quoted},{10 + (i % 5) * 0.1 + (step if i > rows // 2 else 0):.2f}\n"
                          for i in range(rows))
     return path
 
@@ -134,3 +135,26 @@ def test_a_report_directory_is_empty_while_the_replay_runs(tmp_path: Path) -> No
     report = ReplayReport(tmp_path / "report")
     assert list((tmp_path / "report").iterdir()) == []
     report.discard()
+
+
+def test_a_report_of_many_streams_charts_those_with_events_first_and_lists_the_rest(cli, tmp_path: Path) -> None:
+    """A report of 15,000 streams drew a chart for each (over 300 s, a file of hundreds of MB).
+    ``--report-charts N`` caps the charts (default 200): streams with events first, then those
+    with samples set aside, then the others, by name; every stream stays in the tables."""
+    data = write_steps(tmp_path / "many.csv", tuple(f"a-quiet{k}" for k in range(6)), step=0.0)
+    with open(data, "a", encoding="utf-8") as f:  # no step: quiet, but two readings out of order
+        f.writelines(f"{1764800000 + i},m-late,{10 + (i % 5) * 0.1:.2f}\n" for i in range(300))
+        f.write("1764800100,m-late,10.00\n1764800050,m-late,10.00\n")
+    with_steps = write_steps(tmp_path / "steps.csv", ("z-step1", "z-step2"))
+    out = tmp_path / "report"
+    res = cli("replay", "--jobs", "1", "--report-charts", "3", "--report", str(out), str(data), str(with_steps))
+    assert res.returncode in (0, 1), res.stderr[-2000:]
+    assert "charts for 3 of 9 streams" in res.stderr
+    text = (out / "report.html").read_text(encoding="utf-8")
+    charted = re.findall(r'<section class="chart" id="s(\d+)"><h3>([^<]*)</h3>', text)
+    assert [name for _, name in charted] == ["m-late", "z-step1", "z-step2"]
+    assert "Charts for 3 of 9 streams" in text
+    for k in range(6):  # no chart, but in the tables, without a link to a chart that is not there
+        assert f"<td>a-quiet{k} <span class=\"nochart\">(no chart)</span></td>" in text
+    links = set(re.findall(r'href="#(s\d+)"', text))
+    assert links == {f"s{i}" for i, _ in charted}
