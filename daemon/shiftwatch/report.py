@@ -32,13 +32,14 @@ of 9 s fills about half of them, so each bin is 5 s wide.
 from __future__ import annotations
 
 import base64
+import errno
 import html
 import io
 import math
 import os
+import secrets
 import signal
 import struct
-import tempfile
 import threading
 import warnings
 from collections.abc import Callable, Iterator, Sequence
@@ -396,7 +397,7 @@ class ReplayReport:
         self.directory = Path(directory)
         try:
             self.directory.mkdir(parents=True, exist_ok=True)
-            fd, tmp = tempfile.mkstemp(prefix=".report-", suffix=".html", dir=self.directory)
+            fd, tmp = _create_temporary(self.directory)
             os.close(fd)
             os.unlink(tmp)  # a probe: nothing is left behind while the replay runs
         except OSError as exc:
@@ -477,8 +478,8 @@ class ReplayReport:
                progress: Callable[[int], None] | None) -> Path:
         charted = charted_streams(traces, rejected, self.max_charts)
         self.charted = (len(charted), len(traces))
-        fd, tmp = tempfile.mkstemp(prefix=".report-", suffix=".html", dir=self.directory)
-        self._tmp = Path(tmp)
+        fd, tmp = _create_temporary(self.directory)
+        self._tmp = tmp
         with open(fd, "w", encoding="utf-8") as out:
             out.write(_head(sources, settings_note, time_zone))
             out.write(_summary(traces, samples, rejected, unreadable_rows, time_zone, charted))
@@ -513,6 +514,22 @@ class ReplayReport:
                 tmp.unlink()
             except OSError:
                 pass
+
+
+def _create_temporary(directory: Path) -> tuple[int, Path]:
+    """Create ``directory/.report-XXXXXXXX.html`` for writing, readable as the umask allows.
+
+    Like :func:`tempfile.mkstemp` (a new name, never an existing file), but with
+    mode 0666 less the umask rather than 0600: the file becomes ``report.html``,
+    which is meant to be passed around, as any file the user writes."""
+    flags = os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_CLOEXEC", 0)
+    for _ in range(100):
+        path = directory / f".report-{secrets.token_hex(4)}.html"
+        try:
+            return os.open(path, flags, 0o666), path
+        except FileExistsError:
+            continue
+    raise FileExistsError(errno.EEXIST, "no unused temporary name", str(directory))
 
 
 class _Terminated(BaseException):

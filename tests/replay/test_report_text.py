@@ -158,3 +158,16 @@ def test_a_report_of_many_streams_charts_those_with_events_first_and_lists_the_r
         assert f"<td>a-quiet{k} <span class=\"nochart\">(no chart)</span></td>" in text
     links = set(re.findall(r'href="#(s\d+)"', text))
     assert links == {f"s{i}" for i, _ in charted}
+
+
+def test_the_report_is_readable_as_the_umask_allows(shiftwatch_cmd: list[str], tmp_path: Path) -> None:
+    """report.html came out mode 0600 (tempfile.mkstemp's temporary file, renamed), so a
+    report written to a shared directory could not be opened by a colleague.  POSIX open(2):
+    a new file gets the mode asked for less the umask, as any file the user writes."""
+    data = write_steps(tmp_path / "one.csv", ("tank1",))
+    out = tmp_path / "report"
+    res = subprocess.run(["sh", "-c", 'umask 022 && exec "$@"', "sh", *shiftwatch_cmd, "replay", "--jobs", "1",
+                          "--out", os.devnull, "--report", str(out), str(data)],
+                         capture_output=True, text=True, timeout=120, check=False, cwd=tmp_path)
+    assert res.returncode == 0, res.stderr[-2000:]
+    assert (out / "report.html").stat().st_mode & 0o777 == 0o644
