@@ -641,7 +641,7 @@ def stream_figure(trace: StreamTrace) -> Figure:
         main.plot(_days(x), mean, color=SAMPLE_COLOUR, linewidth=0.6, marker=".", markersize=2.5)
     else:
         main.text(0.5, 0.5, "no usable samples", transform=main.transAxes, ha="center", va="center",
-                  parse_math=False)
+                  **LITERAL)
     if trace.spike_times:
         main.plot(_days(trace.spike_times), trace.spike_values, linestyle="none", marker="x",
                   markersize=5, color=SPIKE_COLOUR)
