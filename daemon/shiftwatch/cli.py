@@ -30,6 +30,17 @@ EXIT_BAD_DATA = 1  # some rows or values were bad; the good ones were processed
 EXIT_USAGE = 2  # the command could not run at all (bad file, header, config)
 
 
+def _count(text: str) -> int:
+    """A whole number of 0 or more (an argparse type)."""
+    try:
+        n = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if n < 0:
+        raise argparse.ArgumentTypeError(f"expected 0 or more, got {n}")
+    return n
+
+
 def _err(msg: str) -> None:
     print(f"shiftwatch: {msg}", file=sys.stderr)
 
@@ -164,10 +175,11 @@ def cmd_replay(args: argparse.Namespace) -> int:
         return EXIT_USAGE
     if args.report is None:
         return _replay(args, cfg, None)
-    from shiftwatch.report import ReplayReport, ReportError
+    from shiftwatch.report import MAX_CHARTS, ReplayReport, ReportError
 
     try:
-        report = ReplayReport(args.report)  # fails now, not after a long replay
+        report = ReplayReport(args.report, max_charts=MAX_CHARTS if args.report_charts is None
+                              else args.report_charts)  # fails now, not after a long replay
     except ReportError as exc:
         _err(str(exc))
         return EXIT_USAGE
@@ -324,7 +336,7 @@ def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for:
         from shiftwatch.report import ReportError
 
         report.adopt({name: o.trace for name, o in streams.items()})
-        bar = progress_bar(len(streams), "charts", "chart", minimum=2)
+        bar = progress_bar(min(len(streams), report.max_charts), "charts", "chart", minimum=2)
         try:
             path = report.write(
                 samples={name: o.samples_total for name, o in streams.items()},
@@ -340,6 +352,10 @@ def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for:
         finally:
             if bar is not None:
                 bar.close()
+        charted, total = report.charted
+        if charted < total:
+            print(f"report: charts for {charted:,} of {total:,} streams (those with events first; "
+                  f"--report-charts N to change); every stream is in its tables", file=sys.stderr)
         print(f"report written to {path}", file=sys.stderr)
     return EXIT_BAD_DATA if problem_count else EXIT_OK
 
@@ -840,6 +856,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--out", help="write JSON lines here instead of stdout")
     r.add_argument("--report", metavar="DIR",
                    help="also write DIR/report.html: a chart per stream and a summary table")
+    r.add_argument("--report-charts", type=_count, default=None, metavar="N",
+                   help="most charts in the report (default 200): streams with events first, then "
+                   "those with samples set aside, then the others; every stream is in its tables")
     r.add_argument("--jobs", type=int, default=None, metavar="N",
                    help="processes to split the streams over (default, and at most: the cores available)")
     r.add_argument("--dask", metavar="ADDRESS",

@@ -32,13 +32,18 @@ of 9 s fills about half of them, so each bin is 5 s wide.
 from __future__ import annotations
 
 import base64
+import errno
 import html
 import io
 import math
 import os
+import secrets
+import signal
 import struct
-import tempfile
-from collections.abc import Callable, Sequence
+import threading
+import warnings
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Literal
@@ -67,6 +72,10 @@ ZOOM_SAMPLES = 2400
 MAX_ZOOMS = 3
 #: Spikes marked per stream; further ones are counted only.
 MAX_SPIKES = 500
+#: Charts drawn per report (``--report-charts``).  A chart costs about 0.1 to 0.25 s of CPU
+#: and 30 to 60 kB of the file, so thousands of streams are summarised in the tables, with
+#: charts for the streams with events first (see :func:`charted_streams`).
+MAX_CHARTS = 200
 
 # Colours and line styles, shared by the charts and the legend.
 SAMPLE_COLOUR = "#4a7bb7"
@@ -364,28 +373,36 @@ def zoom_range(rec: AlertRecord, until: float | None = None) -> tuple[float, flo
 class ReplayReport:
     """Collects a replay for the HTML report and writes it.
 
-    The output directory is created and a temporary file opened in it at once,
-    so a directory that cannot be written is reported before a long replay,
-    not after.  :meth:`write` renames the file to ``report.html`` when it is
-    complete; :meth:`discard` removes it.
+    The output directory is created and a file created in it and removed at
+    once, so a directory that cannot be written is reported before a long
+    replay, not after.  :meth:`write` writes a temporary file and renames it to
+    ``report.html`` when it is complete; however it stops (an error, Ctrl-C,
+    SIGTERM or SIGHUP while drawing) it removes the temporary file first.
 
     Parameters
     ----------
     directory : where ``report.html`` goes (created if missing).
     max_bins, zoom_samples, max_zooms, max_spikes : see :class:`StreamTrace`.
+    max_charts : most charts drawn (see :func:`charted_streams`); every stream is in the tables.
     """
 
     def __init__(self, directory: str | Path, *, max_bins: int = MAX_BINS, zoom_samples: int = ZOOM_SAMPLES,
-                 max_zooms: int = MAX_ZOOMS, max_spikes: int = MAX_SPIKES) -> None:
+                 max_zooms: int = MAX_ZOOMS, max_spikes: int = MAX_SPIKES, max_charts: int = MAX_CHARTS) -> None:
         require_matplotlib()
+        if max_charts < 0:
+            raise ValueError(f"max_charts must be 0 or more, got {max_charts}")
+        self.max_charts = max_charts
+        #: (streams charted, streams) of the last report written
+        self.charted: tuple[int, int] = (0, 0)
         self.directory = Path(directory)
         try:
             self.directory.mkdir(parents=True, exist_ok=True)
-            fd, tmp = tempfile.mkstemp(prefix=".report-", suffix=".html", dir=self.directory)
+            fd, tmp = _create_temporary(self.directory)
+            os.close(fd)
+            os.unlink(tmp)  # a probe: nothing is left behind while the replay runs
         except OSError as exc:
             raise ReportError(f"--report {directory}: cannot write there: {exc.strerror or exc}") from None
-        os.close(fd)
-        self._tmp = Path(tmp)
+        self._tmp: Path | None = None  # the unfinished report, while write() runs
         self._options = {"max_bins": max_bins, "zoom_samples": zoom_samples, "max_zooms": max_zooms,
                          "max_spikes": max_spikes}
         self.traces: dict[str, StreamTrace] = {}
@@ -435,7 +452,7 @@ class ReplayReport:
         units : unit per stream, when known (else the unit of its records).
         labels : the operator's name per stream (the config's ``label``), when it has one.
         time_zone : IANA zone in which times are shown (the config's ``display.time_zone``).
-        progress : called with 1 after each chart.
+        progress : called with 1 after each chart (at most ``max_charts``; see :func:`charted_streams`).
         """
         for trace in self.traces.values():
             trace.close()
@@ -445,40 +462,151 @@ class ReplayReport:
             trace.unit = (units or {}).get(trace.name) or trace.unit
             trace.label = (labels or {}).get(trace.name) or trace.label
             trace.time_zone = time_zone
-        try:
-            with open(self._tmp, "w", encoding="utf-8") as out:
-                out.write(_head(sources, settings_note, time_zone))
-                out.write(_summary(traces, samples, rejected, unreadable_rows, time_zone))
-                out.write('<h2 id="charts">Charts</h2>\n')
-                out.write(_how_to_read())
-                for i, trace in enumerate(traces):
-                    png, width, height = render_png(trace)
-                    data = base64.b64encode(png).decode("ascii")
-                    name = html.escape(trace.name)
-                    title = name if trace.label is None else f"{html.escape(trace.label)} ({name})"
-                    out.write(f'<section class="chart" id="s{i + 1}"><h3>{title}</h3>\n'
-                              f'<img src="data:image/png;base64,{data}" width="{width}" height="{height}" '
-                              f'alt="samples, fitted levels and events of {name}"></section>\n')
-                    if progress is not None:
-                        progress(1)
-                out.write(f"<footer><p>{html.escape(ADVISORY)}</p>"
-                          f"<p>Written by shiftwatch {__version__}.</p></footer>\n</body>\n</html>\n")
-            os.replace(self._tmp, self.path)
-        except OSError as exc:
-            self.discard()
-            raise ReportError(f"--report {self.directory}: cannot write {REPORT_FILE}: "
-                              f"{exc.strerror or exc}") from None
+        with _unwinding_on_termination():
+            try:
+                return self._write(traces, samples=samples, rejected=rejected, sources=sources,
+                                   settings_note=settings_note, unreadable_rows=unreadable_rows,
+                                   time_zone=time_zone, progress=progress)
+            except OSError as exc:
+                raise ReportError(f"--report {self.directory}: cannot write {REPORT_FILE}: "
+                                  f"{exc.strerror or exc}") from None
+            finally:
+                self.discard()  # the unfinished file, when the report did not complete
+
+    def _write(self, traces: list[StreamTrace], *, samples: dict[str, int], rejected: dict[str, dict[str, int]],
+               sources: Sequence[str], settings_note: str, unreadable_rows: int, time_zone: str,
+               progress: Callable[[int], None] | None) -> Path:
+        charted = charted_streams(traces, rejected, self.max_charts)
+        self.charted = (len(charted), len(traces))
+        fd, tmp = _create_temporary(self.directory)
+        self._tmp = tmp
+        with open(fd, "w", encoding="utf-8") as out:
+            out.write(_head(sources, settings_note, time_zone))
+            out.write(_summary(traces, samples, rejected, unreadable_rows, time_zone, charted))
+            out.write('<h2 id="charts">Charts</h2>\n')
+            out.write(_how_to_read())
+            if len(charted) < len(traces):
+                out.write(_charts_note(len(charted), len(traces), self.max_charts))
+            for i, trace in enumerate(traces):
+                if trace.name not in charted:
+                    continue
+                png, width, height = render_png(trace)
+                data = base64.b64encode(png).decode("ascii")
+                name = html.escape(trace.name)
+                title = name if trace.label is None else f"{html.escape(trace.label)} ({name})"
+                out.write(f'<section class="chart" id="s{i + 1}"><h3>{title}</h3>\n'
+                          f'<img src="data:image/png;base64,{data}" width="{width}" height="{height}" '
+                          f'alt="samples, fitted levels and events of {name}"></section>\n')
+                if progress is not None:
+                    progress(1)
+                _check_terminated()
+            out.write(f"<footer><p>{html.escape(ADVISORY)}</p>"
+                      f"<p>Written by shiftwatch {__version__}.</p></footer>\n</body>\n</html>\n")
+        os.replace(tmp, self.path)
+        self._tmp = None
         return self.path
 
     def discard(self) -> None:
-        """Remove the unfinished file."""
+        """Remove the unfinished file, if there is one."""
+        tmp, self._tmp = self._tmp, None
+        if tmp is not None:
+            try:
+                tmp.unlink()
+            except OSError:
+                pass
+
+
+def _create_temporary(directory: Path) -> tuple[int, Path]:
+    """Create ``directory/.report-XXXXXXXX.html`` for writing, readable as the umask allows.
+
+    Like :func:`tempfile.mkstemp` (a new name, never an existing file), but with
+    mode 0666 less the umask rather than 0600: the file becomes ``report.html``,
+    which is meant to be passed around, as any file the user writes."""
+    flags = os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_CLOEXEC", 0)
+    for _ in range(100):
+        path = directory / f".report-{secrets.token_hex(4)}.html"
         try:
-            self._tmp.unlink()
-        except OSError:
-            pass
+            return os.open(path, flags, 0o666), path
+        except FileExistsError:
+            continue
+    raise FileExistsError(errno.EEXIST, "no unused temporary name", str(directory))
+
+
+class _Terminated(BaseException):
+    """SIGTERM or SIGHUP arrived while the report was written (see :func:`_unwinding_on_termination`)."""
+
+    def __init__(self, signum: int) -> None:
+        super().__init__(signum)
+        self.signum = signum
+
+
+#: The signal that arrived while the report was written (0: none); see _raise_terminated.
+_pending_signal = 0
+
+
+def _raise_terminated(signum: int, frame: object) -> None:
+    # Also noted: Python runs a handler between any two bytecodes, and an exception
+    # raised inside a finaliser (__del__, a weakref callback) is printed and dropped,
+    # so the drawing loop checks the note after each chart too.
+    global _pending_signal
+    _pending_signal = signum
+    raise _Terminated(signum)
+
+
+def _check_terminated() -> None:
+    """Raise :class:`_Terminated` when a signal arrived whose exception was lost."""
+    if _pending_signal:
+        raise _Terminated(_pending_signal)
+
+
+@contextmanager
+def _unwinding_on_termination() -> Iterator[None]:
+    """Let SIGTERM and SIGHUP unwind the report's writing, then end the process as they would.
+
+    At their default disposition these signals end the process at once, and
+    the ``finally`` that removes the unfinished file never runs.  While the
+    block runs (in the main thread) they raise instead; once the block has
+    cleaned up, the default is restored and the signal raised again, so the
+    process still ends by it (exit status 128 + the signal's number).  A
+    handler the program installed itself is left alone: it decides, and an
+    exception it raises unwinds the block too.
+    """
+    global _pending_signal
+    wanted = [getattr(signal, n) for n in ("SIGTERM", "SIGHUP") if hasattr(signal, n)]
+    installed: dict[int, Any] = {}
+    _pending_signal = 0
+    if threading.current_thread() is threading.main_thread():
+        for sig in wanted:
+            if signal.getsignal(sig) == signal.SIG_DFL:
+                installed[sig] = signal.signal(sig, _raise_terminated)
+    try:
+        yield
+        _check_terminated()  # finished although a signal came: it still ends the process
+    except _Terminated as exc:
+        for sig, old in installed.items():
+            signal.signal(sig, old)
+        installed.clear()
+        _pending_signal = 0
+        signal.raise_signal(exc.signum)
+        raise  # only if the signal did not end the process
+    finally:
+        for sig, old in installed.items():
+            signal.signal(sig, old)
+        _pending_signal = 0
 
 
 # ------------------------------------------------------------------ charts
+#: Text properties of every text a chart draws: stream names, labels and units are
+#: the user's, so they are drawn as written.  By default matplotlib parses the text
+#: between two ``$`` as mathtext ("Writing mathematical expressions" in its
+#: documentation), which draws ``pump A$ B$`` as math and fails on ``x $a_$`` when
+#: the figure is drawn; ``parse_math=False`` (matplotlib >= 3.5) turns that off.
+LITERAL: dict[str, Any] = {"parse_math": False}
+#: matplotlib's warnings about characters its font cannot draw (regular expressions,
+#: matched at the start of the message).
+_FONT_WARNINGS = (r"Glyph \d+ \(", r"Matplotlib currently does not support .* natively")
+
+
 def _days(t: FloatArray | float | list[float]) -> Any:
     """Epoch seconds as matplotlib date numbers (days since 1970-01-01 UTC)."""
     return np.asarray(t, dtype=np.float64) / 86400.0
@@ -512,22 +640,27 @@ def stream_figure(trace: StreamTrace) -> Figure:
     elif x.shape[0]:
         main.plot(_days(x), mean, color=SAMPLE_COLOUR, linewidth=0.6, marker=".", markersize=2.5)
     else:
-        main.text(0.5, 0.5, "no usable samples", transform=main.transAxes, ha="center", va="center")
+        main.text(0.5, 0.5, "no usable samples", transform=main.transAxes, ha="center", va="center",
+                  **LITERAL)
     if trace.spike_times:
         main.plot(_days(trace.spike_times), trace.spike_values, linestyle="none", marker="x",
                   markersize=5, color=SPIKE_COLOUR)
     for k, ev in enumerate(events):
         _draw_event(main, ev, env, label=True, until=_level_until(events, k, env))
     # The axis names the reading as the operator does (its label), else "reading", with its unit.
-    main.set_ylabel(f"{trace.label or 'reading'}{unit}")
-    main.set_title(f"{trace.name}: {env.count:,} samples, {len(events)} event(s)", loc="left", fontsize=10)
+    # Names, labels and units are the user's text: drawn as written, never as mathtext (see LITERAL).
+    main.set_ylabel(f"{trace.label or 'reading'}{unit}", **LITERAL)
+    main.set_title(f"{trace.name}: {env.count:,} samples, {len(events)} event(s)", loc="left", fontsize=10,
+                   **LITERAL)
     if env.count:
         _date_axis(main, trace.time_zone)
     else:
         main.set_xticks([])
         main.set_yticks([])
-    fig.legend(handles=_legend(trace, events), loc="upper left", bbox_to_anchor=(1 - 2.35 / 12, 1 - 0.25 / height),
-               fontsize=8, frameon=False)
+    legend = fig.legend(handles=_legend(trace, events), loc="upper left",
+                        bbox_to_anchor=(1 - 2.35 / 12, 1 - 0.25 / height), fontsize=8, frameon=False)
+    for text in legend.get_texts():
+        text.set_parse_math(False)
     spikes = np.asarray(trace.spike_times)
     for ax, ev in zip(panels, zoomed):
         zt, zv = trace.zooms[ev.records[0].id]
@@ -544,7 +677,7 @@ def stream_figure(trace: StreamTrace) -> Figure:
             ax.set_ylim(float(zv.min()) - pad, float(zv.max()) + pad)
         r = ev.final
         ax.set_title(f"event {ev.number}: {ev.outcome}, {r.direction} {abs(r.delta_sigma):.2g} sigma",
-                     loc="left", fontsize=9)
+                     loc="left", fontsize=9, **LITERAL)
         _date_axis(ax, trace.time_zone, label=False)
         ax.tick_params(labelsize=7)
     return fig
@@ -558,7 +691,7 @@ def _date_axis(ax: Axes, time_zone: str = "UTC", *, label: bool = True) -> None:
     ax.xaxis.set_major_locator(loc)
     ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(loc, tz=tz))  # type: ignore[no-untyped-call]  # as above
     if label:
-        ax.set_xlabel(f"time ({zone_label(time_zone)})", fontsize=8)
+        ax.set_xlabel(f"time ({zone_label(time_zone)})", fontsize=8, **LITERAL)
     ax.grid(True, linewidth=0.3, alpha=0.6)
 
 
@@ -613,7 +746,7 @@ def _draw_event(ax: Axes, ev: Event, env: Envelope, *, label: bool, until: float
     ax.hlines(r.level_after, _days(r.shift_at), _days(end), colors=after, linestyles=style, linewidth=2.0)
     if label:
         ax.annotate(str(ev.number), xy=(_days(r.detected_at), 1.0), xycoords=("data", "axes fraction"),
-                    xytext=(2, -10), textcoords="offset points", fontsize=8, color=colour)
+                    xytext=(2, -10), textcoords="offset points", fontsize=8, color=colour, **LITERAL)
 
 
 def band_range(rec: AlertRecord, interval: float) -> tuple[float, float]:
@@ -658,11 +791,18 @@ def _legend(trace: StreamTrace, events: list[Event]) -> list[Any]:
 
 
 def render_png(trace: StreamTrace) -> tuple[bytes, int, int]:
-    """The stream's chart as PNG bytes, with its width and height in pixels."""
-    fig = stream_figure(trace)
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=96, metadata={"Software": None})
-    fig.clear()
+    """The stream's chart as PNG bytes, with its width and height in pixels.
+
+    A character the font lacks (a control character in a stream's name, a script
+    DejaVu Sans does not cover) is drawn as an empty box; matplotlib's warning
+    about it is not shown.  Other warnings and every error pass through."""
+    with warnings.catch_warnings():
+        for message in _FONT_WARNINGS:
+            warnings.filterwarnings("ignore", message=message, category=UserWarning)
+        fig = stream_figure(trace)
+        buf = io.BytesIO()
+        fig.savefig(buf, format="png", dpi=96, metadata={"Software": None})
+        fig.clear()
     png = buf.getvalue()
     width, height = struct.unpack(">II", png[16:24])  # the IHDR chunk (PNG specification, section 11.2.2)
     return png, int(width), int(height)
@@ -686,6 +826,7 @@ td.confirmed { color: #c51b7d; } td.dismissed { color: #6b6b6b; } td.open { colo
 tr.dismissed td { color: #6b6b6b; }
 .caution { border-left: 4px solid #d95f02; padding: 0.3rem 0.7rem; background: #fff6ee; }
 img { max-width: 100%; height: auto; border: 1px solid #e0e0e0; }
+.nochart { color: #6b6b6b; font-size: 0.8rem; }
 footer { margin-top: 2rem; font-size: 0.8rem; color: #555; }
 """
 
@@ -721,8 +862,41 @@ def _head(sources: Sequence[str], settings_note: str, time_zone: str = "UTC") ->
     )
 
 
+def charted_streams(traces: Sequence[StreamTrace], rejected: dict[str, dict[str, int]],
+                    max_charts: int = MAX_CHARTS) -> set[str]:
+    """The streams that get a chart: at most ``max_charts``, taking first the streams
+    with events (alert records), then those with samples set aside (rejected, or lone
+    spikes), then the others; each group in name order.
+
+    >>> quiet, busy = StreamTrace("b"), StreamTrace("c")
+    >>> sorted(charted_streams([StreamTrace("a"), quiet, busy], {"c": {"late": 2}}, 2))
+    ['a', 'c']
+    """
+    def rank(t: StreamTrace) -> tuple[int, str]:
+        if t.records:
+            return 0, t.name
+        if sum(rejected.get(t.name, {}).values()) or t.spikes_total:
+            return 1, t.name
+        return 2, t.name
+
+    return {t.name for t in sorted(traces, key=rank)[:max_charts]}
+
+
+def _charts_note(charted: int, streams: int, max_charts: int) -> str:
+    return (f'<p class="caution" id="charts-note">Charts for {charted:,} of {streams:,} streams: at most '
+            f"{max_charts:,} are drawn (<code>--report-charts</code>), first the streams with events, then "
+            "those with samples set aside, then the others, each in name order. Every stream is in the "
+            "Streams and Events tables above; those without a chart say so there.</p>\n")
+
+
+def _stream_link(i: int, name: str, charted: set[str] | None) -> str:
+    if charted is None or name in charted:
+        return f'<a href="#s{i + 1}">{_e(name)}</a>'
+    return f'{_e(name)} <span class="nochart">(no chart)</span>'
+
+
 def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[str, dict[str, int]],
-             unreadable_rows: int, time_zone: str = "UTC") -> str:
+             unreadable_rows: int, time_zone: str = "UTC", charted: set[str] | None = None) -> str:
     zn = _e(zone_label(time_zone))
     all_events = {t.name: t.events() for t in traces}
     counts = {"confirmed": 0, "returned": 0, "dismissed": 0, "undecided": 0, "open": 0}
@@ -760,7 +934,7 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
     for i, t in enumerate(traces):
         evs = all_events[t.name]
         n = {k: sum(ev.outcome == k for ev in evs) for k in counts}
-        out.append(f'<tr><td><a href="#s{i + 1}">{_e(t.name)}</a></td><td class="n">{samples.get(t.name, 0):,}</td>'
+        out.append(f'<tr><td>{_stream_link(i, t.name, charted)}</td><td class="n">{samples.get(t.name, 0):,}</td>'
                    f'<td class="n">{sum(rejected.get(t.name, {}).values()):,}</td><td class="n">{len(evs)}</td>'
                    f'<td class="n">{n["confirmed"]}</td><td class="n">{n["dismissed"]}</td>'
                    f'<td class="n">{n["open"]}</td></tr>\n')
@@ -775,7 +949,7 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
     for i, t in enumerate(traces):
         evs = all_events[t.name]
         out.append(f'<tbody data-stream="{_e(t.name)}"><tr><th colspan="9" scope="rowgroup">'
-                   f'<a href="#s{i + 1}">{_e(t.name)}</a>{"" if evs else ": no events"}</th></tr>\n')
+                   f'{_stream_link(i, t.name, charted)}{"" if evs else ": no events"}</th></tr>\n')
         for ev in evs:
             r = ev.final
             unit = f" {r.unit}" if r.unit else ""
@@ -808,5 +982,5 @@ def _how_to_read() -> str:
     )
 
 
-__all__ = ["Envelope", "Event", "ReplayReport", "ReportError", "StreamTrace", "render_png",
+__all__ = ["Envelope", "Event", "ReplayReport", "ReportError", "StreamTrace", "charted_streams", "render_png",
            "require_matplotlib", "stream_figure", "zoom_range"]
