@@ -54,9 +54,12 @@ _FORMAT = "shiftwatch-cluster-state"
 SCHEMA_VERSION = 1
 #: Requests in flight at once (loads, journal publishes, snapshot puts).
 PARALLEL = 256
-#: Headers of each journal message: the daemon that wrote it, and when.
+#: Headers of each journal message: the daemon that wrote it, when, and (a shard's)
+#: its shard number, which names the partition topic where that daemon can be asked
+#: to pass on what it still holds of a stream that moved (see Daemon, handover).
 WRITER = "Shiftwatch-Writer"
 WRITTEN = "Shiftwatch-Written"
+SHARD = "Shiftwatch-Shard"
 #: Journal messages older than this are dropped by the cluster even without a snapshot
 #: (a safety net: snapshots purge them long before).
 JOURNAL_MAX_AGE = 7 * 86400.0
@@ -85,19 +88,23 @@ class Restored:
     records: list[tuple[str, bytes, int]] = field(default_factory=list)
     groups: list[JournalGroup] = field(default_factory=list)
     problem: str | None = None
-    #: Who wrote the stream's last journal message, and when (wall clock, seconds).
+    #: Who wrote the stream's last journal message, when (wall clock, seconds), and the
+    #: shard number it ran as (None: not a shard, or written before the header existed).
     written_by: str | None = None
     written_at: float | None = None
+    written_shard: int | None = None
 
 
 class ClusterState:
     """The journal and snapshots of every stream, in a NATS cluster."""
 
     def __init__(self, io: NatsIO, *, name: str, replicas: int, logger: logging.Logger,
-                 writer: str = "") -> None:
+                 writer: str = "", shard: int | None = None) -> None:
         self.io = io
         #: This daemon's id in the journal messages it writes (header Shiftwatch-Writer).
         self.writer = writer
+        #: Its shard number (header Shiftwatch-Shard), None when it runs no shard.
+        self.shard = shard
         self.name = name
         self.replicas = replicas
         self.log = logger
@@ -168,6 +175,8 @@ class ClusterState:
             r.written_at = float(headers.get(WRITTEN, "nan"))
         except ValueError:
             r.written_at = None
+        shard = headers.get(SHARD, "")
+        r.written_shard = int(shard) if shard.isascii() and shard.isdigit() else None
         if last > after:
             for _seq, body in await self.io.messages_after(self.stream, subject, after, last):
                 try:
@@ -267,6 +276,8 @@ class JournalRound:
             return
         cs, sem = self.cs, self._sem
         headers = {WRITER: cs.writer, WRITTEN: f"{time.time():.3f}"}
+        if cs.shard is not None:
+            headers[SHARD] = str(cs.shard)
 
         async def one(g: JournalGroup, body: bytes, last: int) -> tuple[JournalGroup, int | None]:
             async with sem:

@@ -340,6 +340,10 @@ CLUSTER_KEYS = {
                            "wait this long before processing, so messages a lost connection left "
                            "unacknowledged come first; set it above the NATS server's mqtt ack_wait "
                            "(0: do not wait)", dict(DURATION_SCHEMA)),
+    "handover_wait": Key(_duration_or_zero, "60s", "with shard.hashed_levels and state.keep: cluster, "
+                         "the longest a shard holds a stream that moved to it while the shard that "
+                         "wrote it last is asked to pass on what it still holds of it (0: do not ask; "
+                         "hold it for redelivery_wait instead)", dict(DURATION_SCHEMA)),
     "username": Key(_optional(_str()), None, "user name for the NATS cluster"),
     "password_file": Key(_optional(_str()), None, "file holding the NATS password (first line)"),
 }
@@ -456,6 +460,7 @@ class ClusterConfig:
     lease: float = 15.0
     timeout: float = 5.0
     redelivery_wait: float = 30.0
+    handover_wait: float = 60.0
     username: str | None = None
     password_file: str | None = None
 

@@ -41,6 +41,8 @@ from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, strea
 from shiftwatch.display import alert_summary, stamp
 from shiftwatch.floor import FloorDesk
 from shiftwatch.fsutil import explain_os_error
+from shiftwatch.handover import MAGIC as HANDOVER_MAGIC
+from shiftwatch.handover import Handover, HandoverError, is_handover
 from shiftwatch.journal import Journal, JournalGroup, JournalSingles
 from shiftwatch.lease import ShardLease
 from shiftwatch.metrics import FloorMetrics, Metrics, MetricsServer, StreamStats
@@ -336,6 +338,12 @@ class Daemon:
         self._deferred: dict[str, float] = {}
         self._deferred_samples: dict[str, list[Any]] = {}
         self._ack_later: list[tuple[list[Message], bool]] = []
+        # A shard with its state in the cluster asks the shard that wrote a moved stream
+        # last to pass on what it still holds of it, and answers such asks (see
+        # shiftwatch.handover).
+        self.handover = Handover(cfg.shard.number, self.writer_id, cfg.shard.topic_prefix,
+                                 cfg.cluster.handover_wait) \
+            if cfg.shard is not None and cfg.cluster is not None and self.in_cluster else None
         self.outbox = Outbox(state_dir / "outbox", max_items=cfg.alerts.outbox_max, logger=self.log)
         # What the levels topic shows of each stream, (state, level, sigma) as last sent (see
         # _shows): a watching stream's is its engine's Baseline itself (a tuple a stream
@@ -638,7 +646,8 @@ class Daemon:
                 return
         if self.in_cluster:
             self.cluster = ClusterState(self.nats, name=cc.name, replicas=cc.replicas, logger=self.log,
-                                        writer=self.writer_id)
+                                        writer=self.writer_id,
+                                        shard=shard.number if shard is not None else None)
             self._setup_retried(self.cluster.setup)
             self.log.info("stream state in the cluster (journal stream %s, bucket %s, %d replica(s))",
                           self.cluster.stream, self.cluster.bucket, cc.replicas)
@@ -663,10 +672,13 @@ class Daemon:
         journal's replay makes are published again: the outbox that held them may
         have been on another box.
 
-        With ``defer``, a stream whose journal another daemon wrote less than
-        cluster.redelivery_wait ago (it moved here when the shards changed, and
-        that daemon may still hold older samples of it) gets no engine yet: it is
-        deferred until then (see _release_deferred)."""
+        With ``defer``, a stream whose journal another daemon wrote moments ago (it
+        moved here when the shards changed, and that daemon may still hold older
+        samples of it) gets no engine yet: it is deferred (see _release_deferred).
+        When that daemon was another shard, it is asked to pass on what it holds
+        (shiftwatch.handover) and the stream waits for its answer, at most
+        cluster.handover_wait; otherwise it waits cluster.redelivery_wait from
+        the journal's last write."""
         if not names or self.cluster is None:
             return
         try:
@@ -677,10 +689,17 @@ class Daemon:
         wait = self.cfg.cluster.redelivery_wait if self.cfg.cluster is not None else 0.0
         now = time.time()
         for name, r in loaded.items():
-            if (defer and r.written_by not in (None, self.writer_id) and r.written_at is not None
-                    and now - r.written_at < wait):
-                self._deferred[name] = r.written_at + wait
-                continue
+            if defer and r.written_by not in (None, self.writer_id) and r.written_at is not None:
+                ho, topic = self.handover, self._topic_of.get(name)
+                if (ho is not None and topic is not None and ho.can_ask(r.written_shard)
+                        and now - r.written_at < ho.wait):
+                    assert r.written_shard is not None
+                    ho.ask(name, r.written_shard, topic)
+                    self._deferred[name] = now + ho.wait
+                    continue
+                if now - r.written_at < wait:
+                    self._deferred[name] = r.written_at + wait
+                    continue
             if r.problem is not None:
                 self.metrics.states_set_aside.inc()
                 self.log.warning("stream %s: %s; what could be read is used", _printable(name), r.problem)
@@ -887,6 +906,8 @@ class Daemon:
                 if not self._owns_stream(n) and n in self._deferred_samples}
         for n in [n for n in self._deferred if not self._owns_stream(n)]:
             del self._deferred[n]
+            if self.handover is not None:
+                self.handover.forget(n)
         self._let_go(gone)
         if held and not self._take_foreign(held, time.time()):
             lost = sum(len(g[3]) for g in held.values())
@@ -1051,6 +1072,8 @@ class Daemon:
         if self._held_round is not None:
             self._retry_held_round()
             return 0
+        if self.handover is not None:
+            self._send_answers()  # those held after a reconnect (see shiftwatch.handover)
         if self._deferred or self._ack_later:
             self._release_deferred()
         round_bytes = ROUND_BYTES
@@ -1193,8 +1216,13 @@ class Daemon:
             # Before the round's samples, and written to disk before its acknowledgement.
             for rec in self.floor.handle(commands, now, self.engines, self._label):
                 self.emit(rec, now)
+        handover = [m for m in msgs if is_handover(m.payload)] if self.handover is not None else None
+        if handover:
+            self._handover_messages(handover, now)
         for m in msgs:
             if commands and self.floor.is_command(m.topic):
+                continue
+            if handover and is_handover(m.payload):
                 continue
             route = self._route(m.topic)
             if route is None:
@@ -1266,6 +1294,8 @@ class Daemon:
                                   now)
                 self._held_round = ("load", msgs, [], in_time_order)
                 return
+            if self.handover is not None:
+                self._send_asks()
         if foreign and not self._take_foreign(foreign, now):
             self._held_round = ("load", msgs, [], in_time_order)  # nothing fed yet: all again
             return
@@ -1312,6 +1342,8 @@ class Daemon:
             # before anything newer is taken (see round()).
             self._held_round = ("journal", msgs, fed, wrote)
             return
+        if self.handover is not None:
+            self._send_answers()
         if self._deferred or self._ack_later:
             self._ack_later.append((msgs, wrote))
             return
@@ -1342,6 +1374,55 @@ class Daemon:
         g[3].extend(vs.tolist())
         g[4].extend([arrived] * n)
 
+    # ---------------------------------------------------------- handover
+    def _handover_messages(self, msgs: list[Message], now: float) -> None:
+        """Asks and answers on this shard's handover topic (shiftwatch.handover): an ask
+        is answered once the round that brought it is in the cluster (after a
+        reconnect, once cluster.redelivery_wait has passed); an answer makes the streams
+        it names due now."""
+        assert self.handover is not None
+        held = self._hold_until if self._hold_until > time.monotonic() else 0.0
+        for m in msgs:
+            try:
+                released = self.handover.receive(m.payload, m.topic, time.monotonic(), not_before=held)
+            except HandoverError as exc:
+                self._count_drop("bad_handover")
+                self.rlog.warning("bad_handover", f"handover message on {self.shard_prefix}"
+                                  f"{_printable(m.topic)} set aside: {exc}", now)
+                continue
+            for n in released:
+                if n in self._deferred:
+                    self._deferred[n] = 0.0
+
+    def _send_asks(self) -> None:
+        assert self.handover is not None
+        out = self.handover.outgoing()
+        if not out:
+            return
+        names = [n for _t, p in out for n in json.loads(p[len(HANDOVER_MAGIC):])["ask"]]
+        self.log.info("%d stream(s) moved here (e.g. %s); asked the shard(s) that wrote them last "
+                      "for what they still hold of them; they wait for the answer, at most "
+                      "cluster.handover_wait (%s s)", len(names), _printable(names[0]),
+                      f"{self.handover.wait:g}")
+        for topic, payload in out:
+            self._publish(topic, payload, qos=1, retain=False)
+
+    def _send_answers(self) -> None:
+        assert self.handover is not None
+        for topic, payload in self.handover.answers_due(time.monotonic()):
+            self._publish(topic, payload, qos=1, retain=False)
+
+    def _settle_handover(self, name: str) -> None:
+        outcome = self.handover.settle(name) if self.handover is not None else None
+        if outcome is None:
+            return
+        self.metrics.handovers.labels(outcome).inc()
+        if outcome == "waited_out":
+            self.rlog.warning("handover_waited_out", f"stream {_printable(name)}: the shard that "
+                              "wrote it last did not answer within cluster.handover_wait; loaded "
+                              "with what the cluster holds (samples that shard still sends are "
+                              "set aside there)", time.time(), extra={"stream": name})
+
     def _release_deferred(self) -> None:
         """Feed the deferred streams whose wait is over (loaded afresh, with what the
         other daemon wrote meanwhile; their held samples in time order), then
@@ -1357,6 +1438,7 @@ class Daemon:
             fed = []
             for n in due:
                 del self._deferred[n]
+                self._settle_handover(n)
                 held = self._deferred_samples.pop(n, None)
                 if held is None:
                     continue

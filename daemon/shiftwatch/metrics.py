@@ -812,6 +812,7 @@ class Metrics:
     journal_damaged : sample journals found deleted, replaced or damaged.
     client_id_conflicts : takeovers of the MQTT session by another client with our client id.
     samples_handed_over : samples of another shard's streams written to their journal for it.
+    handovers : streams that moved to this shard and waited for their last writer, by outcome.
     """
 
     def __init__(self, registry: CollectorRegistry | None = None, *,
@@ -879,6 +880,12 @@ class Metrics:
             "Samples of streams that the shard mapping gives another shard, written to their "
             "stream's journal in the cluster for that shard (they also count in "
             "shiftwatch_messages_dropped_total{reason=\"other_shard\"}).", registry=reg)
+        self.handovers = Counter(
+            "shiftwatch_stream_handovers",
+            "Streams that moved to this shard (the number of shards changed) and waited, before "
+            "their first samples here were fed, for the shard that wrote them last to pass on "
+            "what it still held of them; outcome answered, or waited_out after "
+            "cluster.handover_wait.", ["outcome"], registry=reg)
         self.states_set_aside = Counter(
             "shiftwatch_stream_states_set_aside",
             "Saved stream states that could not be used at start (malformed or damaged); "
