@@ -50,6 +50,7 @@ from shiftwatch.sources import (
     REQUIRED_COLUMNS,
     Block,
     CsvFormatError,
+    OpenFiles,
     Source,
     open_sources,
     parquet_pieces,
@@ -321,17 +322,13 @@ def replay_files(paths: Iterable[str | Path], settings_for: Callable[[str], Dete
     jobs = _jobs_the_files_allow(jobs)
     if jobs <= 1 or _small(sources, chunk_bytes):
         feeder = _Feeder(sources, settings_for, unit_for, trace_options)
-        opened: dict[str, Any] = {}  # the file being read (and where in a Parquet row group)
-        try:
+        with OpenFiles() as opened:
             for task in tasks(sources, tz, chunk_bytes):
                 block = parse_task(task, sources, tz, opened)
                 feeder.take_block(block)
                 feeder.add(block.parts)
                 if progress is not None:
                     progress(block.nbytes)
-        finally:
-            for f in opened.values():
-                f.close()
         return _merge([(feeder.finish(), feeder.read_summary())])
     return _replay_in_processes(sources, settings_for, unit_for, trace_options, tz, jobs, progress, chunk_bytes)
 
@@ -493,7 +490,7 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
     try:
         _end_with_parent(parent)
         feeder = _Feeder(sources, settings_for, unit_for, trace_options)
-        opened: dict[str, Any] = {}
+        opened = OpenFiles()
         own: deque[tuple[int, list[Any]]] = deque()
         next_own = me
         total: int | None = None
@@ -543,8 +540,7 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
                 feeder.add(slots[owner, me].take(got))
             k += 1
         results.put(("ok", me, feeder.finish(), feeder.read_summary()))
-        for f in opened.values():
-            f.close()
+        opened.close()
     except CsvFormatError as exc:
         results.put(("format", me, str(exc), None))
     except BaseException:  # noqa: BLE001 - reported to the parent, which stops the others
@@ -767,8 +763,7 @@ def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone
     rows = 0
     noted: set[int] = set()
     by_file: dict[int, list[str]] = {}
-    opened: dict[str, Any] = {}  # as in replay_files: a Parquet group's pieces read in turn
-    try:
+    with OpenFiles() as opened:  # as in replay_files: a Parquet group's pieces read in turn
         for task in tasks(sources, tz):
             block = parse_task(task, sources, tz, opened)
             rows += block.rows
@@ -783,9 +778,6 @@ def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone
                 if ser is None:
                     ser = streams[name] = StreamSeries(sources)
                 ser.add(t, v, p)
-    finally:
-        for f in opened.values():
-            f.close()
     for f in sorted(set(by_file) | noted):
         if f in noted:
             problems.append(f"{sources[f].path}: the file is not valid UTF-8; unreadable characters were replaced")

@@ -36,7 +36,7 @@ from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, tzinfo
 from pathlib import Path
-from typing import Any, BinaryIO
+from typing import Any, BinaryIO, Self
 
 import numpy as np
 from numpy.typing import NDArray
@@ -1405,6 +1405,23 @@ def tasks(sources: list[Source], tz: tzinfo | None, chunk_bytes: int = CHUNK_BYT
         for task in it:
             yield task
             index += 1
+
+
+class OpenFiles(dict[str, Any]):
+    """The file being read (and where it stands in a Parquet row group), kept from one
+    piece of it to the next by :func:`parse_task` and closed when the reading ends: a
+    context manager (``with OpenFiles() as opened:``)."""
+
+    def close(self) -> None:
+        for f in self.values():
+            f.close()
+        self.clear()
+
+    def __enter__(self) -> Self:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
 
 
 def _kept_open(opened: dict[str, Any] | None, path: str, make: Any) -> Any:
