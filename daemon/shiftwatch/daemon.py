@@ -344,6 +344,9 @@ class Daemon:
         self.handover = Handover(cfg.shard.number, self.writer_id, cfg.shard.topic_prefix,
                                  cfg.cluster.handover_wait) \
             if cfg.shard is not None and cfg.cluster is not None and self.in_cluster else None
+        # Answers to this daemon's asks, as the NATS thread hands them over (plain NATS on
+        # <cluster.name>.handover.<writer id>; see shiftwatch.handover).
+        self._answers: deque[bytes] = deque()
         self.outbox = Outbox(state_dir / "outbox", max_items=cfg.alerts.outbox_max, logger=self.log)
         # What the levels topic shows of each stream, (state, level, sigma) as last sent (see
         # _shows): a watching stream's is its engine's Baseline itself (a tuple a stream
@@ -651,6 +654,9 @@ class Daemon:
             self._setup_retried(self.cluster.setup)
             self.log.info("stream state in the cluster (journal stream %s, bucket %s, %d replica(s))",
                           self.cluster.stream, self.cluster.bucket, cc.replicas)
+            if self.handover is not None:
+                self._setup_retried(lambda: self.nats.subscribe(self._answer_subject(self.writer_id),
+                                                                self._answers.append))
 
     def _setup_retried(self, setup: Callable[[], None], attempts: int = 5) -> None:
         """Make the cluster's buckets or stream, trying again a few times: shards that
@@ -1073,6 +1079,8 @@ class Daemon:
             self._retry_held_round()
             return 0
         if self.handover is not None:
+            if self._answers:
+                self._take_answers()
             self._send_answers()  # those held after a reconnect (see shiftwatch.handover)
         if self._deferred or self._ack_later:
             self._release_deferred()
@@ -1376,23 +1384,34 @@ class Daemon:
 
     # ---------------------------------------------------------- handover
     def _handover_messages(self, msgs: list[Message], now: float) -> None:
-        """Asks and answers on this shard's handover topic (shiftwatch.handover): an ask
-        is answered once the round that brought it is in the cluster (after a
-        reconnect, once cluster.redelivery_wait has passed); an answer makes the streams
-        it names due now."""
+        """Asks that came over MQTT on streams' topics (shiftwatch.handover): each is
+        answered once the round that brought it is in the cluster (after a reconnect,
+        once cluster.redelivery_wait has passed)."""
+        for m in msgs:
+            self._handover_message(m.payload, f"on {self.shard_prefix}{_printable(m.topic)}", now)
+
+    def _take_answers(self) -> None:
+        """Answers to this daemon's asks (plain NATS): the streams they name are due now."""
+        now = time.time()
+        while self._answers:
+            self._handover_message(self._answers.popleft(), "from the cluster", now)
+
+    def _handover_message(self, payload: bytes | bytearray, where: str, now: float) -> None:
         assert self.handover is not None
         held = self._hold_until if self._hold_until > time.monotonic() else 0.0
-        for m in msgs:
-            try:
-                released = self.handover.receive(m.payload, m.topic, time.monotonic(), not_before=held)
-            except HandoverError as exc:
-                self._count_drop("bad_handover")
-                self.rlog.warning("bad_handover", f"handover message on {self.shard_prefix}"
-                                  f"{_printable(m.topic)} set aside: {exc}", now)
-                continue
-            for n in released:
-                if n in self._deferred:
-                    self._deferred[n] = 0.0
+        try:
+            released = self.handover.receive(payload, time.monotonic(), not_before=held)
+        except HandoverError as exc:
+            self._count_drop("bad_handover")
+            self.rlog.warning("bad_handover", f"handover message {where} set aside: {exc}", now)
+            return
+        for n in released:
+            if n in self._deferred:
+                self._deferred[n] = 0.0
+
+    def _answer_subject(self, writer: str) -> str:
+        assert self.cfg.cluster is not None
+        return f"{self.cfg.cluster.name}.handover.{writer}"
 
     def _send_asks(self) -> None:
         assert self.handover is not None
@@ -1409,8 +1428,9 @@ class Daemon:
 
     def _send_answers(self) -> None:
         assert self.handover is not None
-        for topic, payload in self.handover.answers_due(time.monotonic()):
-            self._publish(topic, payload, qos=1, retain=False)
+        for writer, payload in self.handover.answers_due(time.monotonic()):
+            if self.nats is not None:
+                self.nats.send(self._answer_subject(writer), payload)
 
     def _settle_handover(self, name: str) -> None:
         outcome = self.handover.settle(name) if self.handover is not None else None

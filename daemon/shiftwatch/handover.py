@@ -21,9 +21,16 @@ what it stored in order, so the ask has to come through the subscription that
 carries the stream's samples: hence the stream's own topic, and a payload no
 sensor sends (:data:`MAGIC` first).  When the old owner takes the ask from its
 queue it has taken all of the stream's earlier samples and written them to the
-journal.  It then sends an *answer* on the same topic in the asking shard's
-partition, and the new owner loads the stream with everything the old one
-wrote.  An old owner that never answers (stopped, or gone with a
+journal.  It then sends an *answer*, and the new owner loads the stream with
+everything the old one wrote.
+
+The answer goes by plain NATS, on ``<cluster.name>.handover.<the asker's writer
+id>``, which the asker subscribes to through its cluster connection, not over
+MQTT: while it waits, the asker holds its rounds' acknowledgements, and once
+NATS's MQTT side has sent it ``max_ack_pending`` unacknowledged messages it
+sends no more on that subscription, so an answer queued behind them would
+never come (the wait would run out instead).  A plain NATS message is sent at
+most once: one that is lost costs the wait.  An old owner that never answers (stopped, or gone with a
 shrinking cluster) costs the new owner ``cluster.handover_wait``, after which it
 loads the stream as it is.  An old owner that connected again moments before
 holds its answers for ``cluster.redelivery_wait``: what its lost connection left
@@ -34,7 +41,7 @@ Both messages are :data:`MAGIC`, then a JSON object:
 - ask: ``{"ask": [stream names], "shard": <asking shard>, "writer": <its id>}``
 - answer: ``{"answer": [stream names], "shard": <answering shard>, "writer": <the asker's id>}``
 
-An answer names the asker's writer id, so a daemon that restarted meanwhile (a
+An answer goes to the asker's writer id, so a daemon that restarted meanwhile (a
 new id) does not take an answer meant for its predecessor.
 
 Pure: bytes and times in, topics and bytes out; no I/O, no clock.
@@ -43,6 +50,7 @@ Pure: bytes and times in, topics and bytes out; no I/O, no clock.
 from __future__ import annotations
 
 import json
+import re
 from dataclasses import dataclass, field
 
 __all__ = ["MAGIC", "MAX_NAMES", "Handover", "HandoverError", "is_handover"]
@@ -53,6 +61,8 @@ __all__ = ["MAGIC", "MAX_NAMES", "Handover", "HandoverError", "is_handover"]
 MAGIC = b"\x00shiftwatch-handover\n"
 #: Stream names per message (a reshard can move thousands of streams at once).
 MAX_NAMES = 500
+#: A writer id: one token of a NATS subject.
+_WRITER = re.compile(r"[A-Za-z0-9_-]{1,64}")
 
 
 def is_handover(payload: bytes | bytearray) -> bool:
@@ -86,8 +96,8 @@ class Handover:
     wait
         ``cluster.handover_wait``, seconds; 0: never ask.
 
-    Topics given and returned are a stream's topic without any partition prefix;
-    :meth:`outgoing` and :meth:`answers_due` return whole topics to publish on.
+    Topics given are a stream's topic without any partition prefix; :meth:`outgoing`
+    returns whole topics to publish on, :meth:`answers_due` the writer ids to answer.
 
     Examples
     --------
@@ -100,12 +110,12 @@ class Handover:
     [('part/1/brackenfield/line2/head1/fill',
       b'{"ask":["brackenfield/line2/head1/fill"],"shard":3,"writer":"w-new"}')]
     >>> ask = MAGIC + b'{"ask":["brackenfield/line2/head1/fill"],"shard":3,"writer":"w-new"}'
-    >>> old.receive(ask, "brackenfield/line2/head1/fill", 10.0)
+    >>> old.receive(ask, 10.0)
     []
-    >>> [topic for topic, _ in old.answers_due(10.0)]
-    ['part/3/brackenfield/line2/head1/fill']
+    >>> [writer for writer, _ in old.answers_due(10.0)]
+    ['w-new']
     >>> answer = MAGIC + b'{"answer":["brackenfield/line2/head1/fill"],"shard":1,"writer":"w-new"}'
-    >>> new.receive(answer, "brackenfield/line2/head1/fill", 11.0)
+    >>> new.receive(answer, 11.0)
     ['brackenfield/line2/head1/fill']
     >>> new.settle("brackenfield/line2/head1/fill")
     'answered'
@@ -119,8 +129,8 @@ class Handover:
     waiting: dict[str, _Waiting] = field(default_factory=dict)
     #: Asks to send: (shard, topic) -> names.
     _asks: dict[tuple[int, str], list[str]] = field(default_factory=dict)
-    #: Answers owed: (not before, shard, writer, topic) -> names, in the order asked.
-    _owed: dict[tuple[float, int, str, str], list[str]] = field(default_factory=dict)
+    #: Answers owed: (not before, writer) -> names, in the order asked.
+    _owed: dict[tuple[float, str], list[str]] = field(default_factory=dict)
 
     def topic(self, shard: int, topic: str) -> str:
         """``topic`` in ``shard``'s partition."""
@@ -150,9 +160,8 @@ class Handover:
         self._asks = {}
         return out
 
-    def receive(self, payload: bytes | bytearray, topic: str, now: float, *,
-                not_before: float = 0.0) -> list[str]:
-        """An ask or an answer that came on ``topic``.  An ask is answered by
+    def receive(self, payload: bytes | bytearray, now: float, *, not_before: float = 0.0) -> list[str]:
+        """An ask or an answer.  An ask is answered by
         :meth:`answers_due` from ``max(now, not_before)`` on; an answer returns the
         streams it releases (asked by this daemon and not settled).  Raises
         :class:`HandoverError` for a message that is neither."""
@@ -170,10 +179,10 @@ class Handover:
             raise HandoverError(f"'{kind}' is not a list of stream names")
         if type(shard) is not int or shard < 0:
             raise HandoverError("'shard' is not a shard number")
-        if not isinstance(writer, str):
-            raise HandoverError("'writer' is not a string")
+        if not isinstance(writer, str) or not _WRITER.fullmatch(writer):
+            raise HandoverError("'writer' is not a writer id (1 to 64 letters, digits, - or _)")
         if kind == "ask":
-            owed = self._owed.setdefault((max(now, not_before), shard, writer, topic), [])
+            owed = self._owed.setdefault((max(now, not_before), writer), [])
             owed.extend(n for n in names if n not in owed)
             return []
         if writer != self.writer:
@@ -187,15 +196,15 @@ class Handover:
         return released
 
     def answers_due(self, now: float) -> list[tuple[str, bytes]]:
-        """The answers to publish now (QoS 1): call only when everything taken before
-        the asks is in the cluster's journal."""
+        """The answers to send now, each with the writer id it goes to: call only when
+        everything taken before the asks is in the cluster's journal."""
         out = []
         for key in [k for k in self._owed if k[0] <= now]:
-            _due, shard, writer, topic = key
+            _due, writer = key
             names = self._owed.pop(key)
             for i in range(0, len(names), MAX_NAMES):
-                out.append((self.topic(shard, topic), _dump({"answer": names[i:i + MAX_NAMES],
-                                                             "shard": self.number, "writer": writer})))
+                out.append((writer, _dump({"answer": names[i:i + MAX_NAMES], "shard": self.number,
+                                           "writer": writer})))
         return out
 
     def settle(self, name: str) -> str | None:

@@ -178,6 +178,25 @@ class NatsIO:
     def connected(self) -> bool:
         return self._nc is not None and bool(self._nc.is_connected)
 
+    # ------------------------------------------------------- plain NATS
+    def subscribe(self, subject: str, take: Callable[[bytes], None]) -> None:
+        """Hand every message on ``subject`` to ``take`` (called on the loop's thread: it
+        must only queue the payload).  The client subscribes again after a reconnect."""
+        async def go() -> None:
+            async def cb(msg: Any) -> None:
+                take(bytes(msg.data))
+
+            await self._nc.subscribe(subject, cb=cb)
+
+        self.run(go())
+
+    def send(self, subject: str, payload: bytes) -> None:
+        """Publish on ``subject`` without waiting: at most once, as plain NATS is."""
+        async def go() -> None:
+            await self._nc.publish(subject, payload)
+
+        self.call_soon(go)
+
     # ---------------------------------------------------------- JetStream
     async def ensure_stream(self, name: str, subjects: list[str], replicas: int,
                             max_age: float) -> None:

@@ -43,13 +43,13 @@ def test_an_ask_is_answered_on_the_asker_s_partition_and_releases_only_the_strea
     assert topic == "part/1/" + TOPIC
     assert _body(payload) == {"ask": ["s1", "s2"], "shard": 3, "writer": "w-new"}
     assert new.outgoing() == []  # sent once
-    assert old.receive(payload, TOPIC, 5.0) == []
-    [(atopic, answer)] = old.answers_due(5.0)
-    assert atopic == "part/3/" + TOPIC
+    assert old.receive(payload, 5.0) == []
+    [(writer, answer)] = old.answers_due(5.0)
+    assert writer == "w-new"  # sent on <cluster.name>.handover.w-new, plain NATS
     assert _body(answer) == {"answer": ["s1", "s2"], "shard": 1, "writer": "w-new"}
     assert old.answers_due(5.0) == []  # owed once
-    assert new.receive(answer, TOPIC, 6.0) == ["s1", "s2"]
-    assert new.receive(answer, TOPIC, 6.0) == []  # a copy of the answer releases nothing more
+    assert new.receive(answer, 6.0) == ["s1", "s2"]
+    assert new.receive(answer, 6.0) == []  # a copy of the answer releases nothing more
     assert new.settle("s1") == "answered" and new.settle("s2") == "answered"
     assert new.settle("s1") is None  # settled once
 
@@ -61,16 +61,16 @@ def test_an_answer_for_another_writer_or_from_another_shard_releases_nothing() -
     # For the daemon this one replaced (another writer id), or from a shard not asked:
     for doc in ({"answer": ["s1"], "shard": 1, "writer": "w-before"},
                 {"answer": ["s1"], "shard": 2, "writer": "w-new"}):
-        assert new.receive(MAGIC + json.dumps(doc).encode(), TOPIC, 1.0) == []
+        assert new.receive(MAGIC + json.dumps(doc).encode(), 1.0) == []
     assert new.settle("s1") == "waited_out"
 
 
 def test_answers_after_a_reconnect_wait_for_the_redeliveries() -> None:
     old = Handover(1, "w-old", "part/{number}", 60.0)
     ask = MAGIC + json.dumps({"ask": ["s1"], "shard": 0, "writer": "w0"}).encode()
-    old.receive(ask, TOPIC, 100.0, not_before=130.0)
+    old.receive(ask, 100.0, not_before=130.0)
     assert old.answers_due(129.9) == []
-    assert [t for t, _ in old.answers_due(130.0)] == ["part/0/" + TOPIC]
+    assert [w for w, _ in old.answers_due(130.0)] == ["w0"]
 
 
 def test_many_streams_go_in_messages_of_at_most_max_names() -> None:
@@ -103,12 +103,14 @@ def test_who_can_be_asked() -> None:
     (MAGIC + b'{"ask": [], "shard": -1, "writer": "w"}', "'shard' is not a shard number"),
     (MAGIC + b'{"ask": [], "shard": true, "writer": "w"}', "'shard' is not a shard number"),
     (MAGIC + b'{"ask": [], "shard": 1.0, "writer": "w"}', "'shard' is not a shard number"),
-    (MAGIC + b'{"ask": [], "shard": 1}', "'writer' is not a string"),
+    (MAGIC + b'{"ask": [], "shard": 1}', "'writer' is not a writer id"),
+    (MAGIC + b'{"ask": [], "shard": 1, "writer": "a.b"}', "'writer' is not a writer id"),  # a subject's dot
+    (MAGIC + b'{"ask": [], "shard": 1, "writer": "*"}', "'writer' is not a writer id"),  # a wildcard
 ])
 def test_a_damaged_message_is_refused_with_what_is_wrong(payload: bytes, why: str) -> None:
     h = Handover(1, "w", "part/{number}", 60.0)
     with pytest.raises(HandoverError, match=why):
-        h.receive(payload, TOPIC, 0.0)
+        h.receive(payload, 0.0)
     assert h.answers_due(1e9) == []
 
 
@@ -118,9 +120,9 @@ def test_names_of_any_text_go_through() -> None:
     new.ask(name, 1, TOPIC)
     [(_t, payload)] = new.outgoing()
     old = Handover(1, "w-old", "part/{number}", 60.0)
-    old.receive(payload, TOPIC, 0.0)
+    old.receive(payload, 0.0)
     [(_t, answer)] = old.answers_due(0.0)
-    assert new.receive(answer, TOPIC, 0.0) == [name]
+    assert new.receive(answer, 0.0) == [name]
 
 
 @pytest.mark.parametrize("payload", [

@@ -434,8 +434,9 @@ def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, clus
     assert handovers["waited_out"] == 0, handovers
 
 
-def test_an_old_owner_held_back_at_a_reshard_hands_its_late_samples_over(tmp_path: Path,
-                                                                          cluster: NatsCluster) -> None:
+@pytest.mark.parametrize("ack_limit", [None, 64], ids=["kit-limit", "64-unacknowledged"])
+def test_an_old_owner_held_back_at_a_reshard_hands_its_late_samples_over(tmp_path: Path, cluster: NatsCluster,
+                                                                          ack_limit: int | None) -> None:
     # The stall behind the measured losses, made certain: right after the old shards'
     # reload, the old owner of the most moving streams is stopped (SIGSTOP) for 2.5 s
     # before the mapping changes and 9 s after it, longer than cluster.redelivery_wait
@@ -449,7 +450,24 @@ def test_an_old_owner_held_back_at_a_reshard_hands_its_late_samples_over(tmp_pat
     # new owners ask the old one and wait for its answer, which it sends only once it has
     # written all it held to the journal: no sample of a moving stream is lost, no step
     # missed, none confirmed under two ids.
+    # With a cluster of its own whose MQTT side sends at most 64 unacknowledged messages a
+    # subscription: a new owner holds its rounds' acknowledgements while it waits, so it
+    # soon has 64 and NATS sends it nothing more.  The answer comes by plain NATS all the
+    # same; over MQTT (a first version) it queued behind them, and every wait ran out
+    # (cluster.handover_wait) instead.
+    own = NatsCluster(3, 3, base=tmp_path / "nats", max_ack_pending=ack_limit).start() \
+        if ack_limit is not None else None
+    if own is not None:
+        cluster = own
     plan = Plan(samples=1600, rate=100.0)
+    try:
+        _stalled_reshard(tmp_path, cluster, plan)
+    finally:
+        if own is not None:
+            own.stop()
+
+
+def _stalled_reshard(tmp_path: Path, cluster: NatsCluster, plan: Plan) -> None:
     r = _run(tmp_path, cluster, "stalled", plan, keepalive=30)
     names = plan.names()
     moving = {k: [s for s in names if partition_of(s, HASHED_LEVELS, 3) == k
