@@ -328,6 +328,7 @@ class Daemon:
         # stream's samples in time order (see _connection).
         self._hold_until = 0.0
         self._sort_round = False
+        self._taken_early: list[Message] = []  # taken as a hold began (see round())
         # A round the cluster did not take (its state could not be loaded, or its samples
         # not journaled): (what failed, its messages, the groups fed, a flag), retried first.
         self._held_round: tuple[str, list[Message], list[JournalGroup], bool] | None = None
@@ -1097,6 +1098,13 @@ class Daemon:
             sort = True
             limit, round_bytes = max(limit, len(self.inbox)), max(ROUND_BYTES, self.inbox.nbytes)
         msgs = self.inbox.take(limit, round_bytes, timeout, gather=gather)
+        if self._sort_round and not sort:
+            # The connection came up while this round waited for its first message: the
+            # hold began meanwhile, and what was taken waits for the sorted round with the rest.
+            self._taken_early += msgs
+            return 0
+        if sort and self._taken_early:
+            msgs, self._taken_early = self._taken_early + msgs, []
         self._busy = len(msgs) >= BUSY_ROUND
         if self._new_held:
             self._flush_new_streams(time.monotonic())
@@ -1315,9 +1323,9 @@ class Daemon:
         for name, (spec, unit, times, values, arrivals, *prior) in groups.items():
             if name in self._deferred:
                 held = self._deferred_samples.setdefault(name, [spec, unit, [], [], []])
-                held[2] += times
-                held[3] += values
-                held[4] += arrivals
+                # (lists: a JSON array's group is arrays, and list += array adds elementwise)
+                for col, got in ((2, times), (3, values), (4, arrivals)):
+                    held[col].extend(got.tolist() if type(got) is np.ndarray else got)
                 continue
             if in_time_order and len(times) > 1:
                 order = sorted(range(len(times)), key=times.__getitem__)
@@ -1995,13 +2003,24 @@ class Daemon:
 
     def _connection(self, up: bool) -> None:
         self.metrics.broker_connected.set(1 if up else 0)
-        if up and self.in_cluster and self.cfg.cluster is not None and self.cfg.cluster.redelivery_wait > 0:
-            # NATS sends the messages a lost connection (ours, or a dead owner's) left
-            # unacknowledged again only when its MQTT ack_wait has passed, after newer
-            # ones.  Fed in arrival order they would come after their stream's newer
-            # samples and be set aside as out of order: wait for them, then sort.
-            self._hold_until = time.monotonic() + self.cfg.cluster.redelivery_wait
-            self._sort_round = True
+        cc = self.cfg.cluster
+        if up and self.in_cluster and cc is not None and cc.redelivery_wait > 0:
+            if self.link is not None and not self.link.session_resumed:
+                # A new session: no connection before this one left anything
+                # unacknowledged, so nothing can come again.  (Waiting here made a shard
+                # started moments before a reshard or a kill take nothing meanwhile.)
+                self._hold_until = 0.0
+                self._sort_round = False
+            else:
+                # NATS sends the messages a lost connection (ours, or a dead owner's) left
+                # unacknowledged again only when its MQTT ack_wait has passed, after newer
+                # ones.  Fed in arrival order they would come after their stream's newer
+                # samples and be set aside as out of order: wait for them, then sort.
+                self._hold_until = time.monotonic() + cc.redelivery_wait
+                self._sort_round = True
+                self.log.info("session resumed: processing waits cluster.redelivery_wait (%s s) so that "
+                              "what the connection before left unacknowledged comes first",
+                              f"{cc.redelivery_wait:g}")
         if not up:
             # paho sends the levels it holds again after the reconnect, and the
             # broker acknowledges them then; the bound counts from each

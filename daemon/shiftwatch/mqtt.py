@@ -556,6 +556,10 @@ class MqttLink:
         self._on_drop = on_drop
         self._on_published = on_published
         self._on_connection = on_connection
+        #: Whether the broker kept a session for the client id at the last connect (its
+        #: CONNACK's session present flag): only then can it send messages again that an
+        #: earlier connection left unacknowledged.
+        self.session_resumed = False
         self._lock = threading.Lock()
         self._connected = False
         self._stopping = False
@@ -789,6 +793,7 @@ class MqttLink:
         self._last_error = None
         self._failed_attempts = 0
         session = getattr(flags, "session_present", False)
+        self.session_resumed = bool(session)
         self.log.info("connected to broker %s (session %s)", self.url,
                       "resumed" if session else "new")
         with self._lock:

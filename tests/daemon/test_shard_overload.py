@@ -147,6 +147,14 @@ def _counts(port: int) -> tuple[int, dict[str, int]]:
     return taken, rejected
 
 
+def _serving(port: int) -> bool:
+    try:
+        scrape(port)
+    except OSError:
+        return False
+    return True
+
+
 def _run_shard(tmp_path: Path, redelivery_wait: str) -> tuple[int, int, dict[str, int], str, int]:
     """The shard's samples taken at the end and just after the cut, what it set aside by
     reason, its log, and how many connections the relay carried."""
@@ -219,3 +227,63 @@ def test_a_shard_whose_connection_is_cut_while_it_takes_a_backlog_loses_no_sampl
     # Each sample once (shiftwatch_samples_total counts a sample the first time it is fed),
     # all of them: what the server acknowledged to the publisher.
     assert taken == total, (taken, total, rejected, log[-3000:])
+
+
+def test_only_a_resumed_session_waits_for_what_came_before(tmp_path: Path) -> None:
+    """``cluster.redelivery_wait`` is for messages an earlier connection left
+    unacknowledged, which only a session the broker kept can bring (MQTT 3.1.1 section
+    3.2.2.2, Session Present; section 4.4: the server sends the unacknowledged QoS 1
+    messages again only within that session).  A shard whose session is new has
+    nothing to wait for: before, it took nothing for the whole wait, and a shard
+    started moments before a reshard or a kill had fed none of its samples (the
+    reshard and SIGKILL tests in ``test_shards.py`` lost samples that way in CI runs).
+    The wait here is 600 s, so a sample the new session takes is one it did not wait for."""
+    server, port = start_lone_server(tmp_path, "hold", mqtt='ack_wait: "2s"')
+    cfg = tmp_path / "shiftwatch.yaml"
+    metrics_port = free_port()
+    _config(cfg, port + 1, port, metrics_port, "600s")
+    log_path = tmp_path / "shard.log"
+    env = dict(os.environ, PYTHONPATH=str(ROOT / "daemon"))
+    url = f"mqtt://127.0.0.1:{port + 1}"
+    msg = [("brackenfield/line1/head1/fill", json.dumps([{"v": 500.0 + j * 0.01, "ts": T0 + j}
+                                                         for j in range(5)]).encode())]
+    proc: subprocess.Popen[bytes] | None = None
+
+    def start() -> subprocess.Popen[bytes]:
+        with open(log_path, "ab") as log:
+            return subprocess.Popen([sys.executable, "-m", "shiftwatch", "run", "--config", str(cfg)],
+                                    stdout=log, stderr=subprocess.STDOUT, env=env)
+
+    def log() -> str:
+        return log_path.read_text(errors="replace")
+
+    try:
+        proc = start()
+        assert wait_until(lambda: "(session new)" in log(), 60), log()
+        time.sleep(1.0)  # the SUBSCRIBE handled: the session's consumer exists
+        _publish(url, msg)
+        assert wait_until(lambda: _counts(metrics_port)[0] == 5, 60), log()
+        assert "session resumed: processing waits" not in log()
+        proc.terminate()
+        assert proc.wait(60) == 0, log()
+        _publish(url, msg)  # the same samples again while the shard is away
+        proc = start()
+        assert wait_until(lambda: "(session resumed)" in log(), 60), log()
+        assert wait_until(lambda: "session resumed: processing waits cluster.redelivery_wait (600 s)"
+                          in log(), 10), log()
+        # Held for the wait: the message that came while the shard was away is not
+        # processed yet.  (The main loop may already be waiting for a message when the
+        # connection comes up; what it takes then waits for the sorted round too.  Before,
+        # it was processed at once, and a JSON array for a stream held that way stopped
+        # the daemon: tests/daemon/test_columns_daemon.py.)
+        assert wait_until(lambda: _serving(metrics_port), 30), log()
+        time.sleep(2.0)  # the message delivered (not a timing check: the wait is 600 s)
+        processed = metric_values(scrape(metrics_port), "shiftwatch_messages_processed_total")
+        assert sum(processed.values()) == 0, (processed, log())
+        assert _counts(metrics_port)[0] == 0 and "Traceback" not in log(), log()
+    finally:
+        if proc is not None and proc.poll() is None:
+            proc.terminate()
+            proc.wait(60)
+        server.terminate()
+        server.wait(10)
