@@ -336,7 +336,7 @@ CLUSTER_KEYS = {
     "lease": Key(_duration, "15s", "how long a shard's claim lasts without renewal (see the README, "
                  "Running shards)", dict(DURATION_SCHEMA)),
     "timeout": Key(_duration, "5s", "deadline of each request to the cluster", dict(DURATION_SCHEMA)),
-    "redelivery_wait": Key(_duration_or_zero, "30s", "with state.keep: cluster, after each connection to the broker "
+    "redelivery_wait": Key(_duration_or_zero, "30s", "with state.keep: cluster, after each connection that resumes the session "
                            "wait this long before processing, so messages a lost connection left "
                            "unacknowledged come first; set it above the NATS server's mqtt ack_wait "
                            "(0: do not wait)", dict(DURATION_SCHEMA)),
