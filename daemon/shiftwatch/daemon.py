@@ -1393,6 +1393,11 @@ class Daemon:
             for n in released:
                 if n in self._deferred:
                     self._deferred[n] = 0.0
+            if self.owner is not None and self.owner.owns(m.topic) and self.handover.owes(m.topic):
+                self.rlog.warning("handover_owned", f"another shard asked for what this shard holds of "
+                                  f"the streams on {_printable(m.topic)}, which the mapping for shard.of "
+                                  f"{self.owner.of} still gives this shard: the answer waits until a "
+                                  "reload lets them go (is shard.of up to date here?)", now)
 
     def _send_asks(self) -> None:
         assert self.handover is not None
@@ -1408,8 +1413,12 @@ class Daemon:
             self._publish(topic, payload, qos=1, retain=False)
 
     def _send_answers(self) -> None:
+        """The answers owed whose asks' rounds are in the cluster; not for the streams this
+        shard still owns (its reload has not let them go: see Handover.answers_due)."""
         assert self.handover is not None
-        for topic, payload in self.handover.answers_due(time.monotonic()):
+        owner = self.owner
+        for topic, payload in self.handover.answers_due(time.monotonic(),
+                                                        None if owner is None else owner.owns):
             self._publish(topic, payload, qos=1, retain=False)
 
     def _settle_handover(self, name: str) -> None:

@@ -43,6 +43,7 @@ Pure: bytes and times in, topics and bytes out; no I/O, no clock.
 from __future__ import annotations
 
 import json
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 __all__ = ["MAGIC", "MAX_NAMES", "Handover", "HandoverError", "is_handover"]
@@ -186,17 +187,31 @@ class Handover:
                 released.append(n)
         return released
 
-    def answers_due(self, now: float) -> list[tuple[str, bytes]]:
+    def answers_due(self, now: float, holding: Callable[[str], bool] | None = None) -> list[tuple[str, bytes]]:
         """The answers to publish now (QoS 1): call only when everything taken before
-        the asks is in the cluster's journal."""
+        the asks is in the cluster's journal.
+
+        ``holding(topic)``: this shard still owns the streams on ``topic`` (the mapping
+        moved them, but its reload has not let them go yet): it would snapshot its
+        engine of them after their new owner had begun, so their answer waits until
+        the reload, and is dropped once ``wait`` has passed (the asker has stopped
+        waiting then)."""
         out = []
         for key in [k for k in self._owed if k[0] <= now]:
-            _due, shard, writer, topic = key
+            due, shard, writer, topic = key
+            if holding is not None and holding(topic):
+                if now - due >= self.wait:
+                    del self._owed[key]
+                continue
             names = self._owed.pop(key)
             for i in range(0, len(names), MAX_NAMES):
                 out.append((self.topic(shard, topic), _dump({"answer": names[i:i + MAX_NAMES],
                                                              "shard": self.number, "writer": writer})))
         return out
+
+    def owes(self, topic: str) -> bool:
+        """Whether an answer is owed for streams on ``topic``."""
+        return any(k[3] == topic for k in self._owed)
 
     def settle(self, name: str) -> str | None:
         """The stream is loaded now: how its wait ended ('answered', 'waited_out'), or
