@@ -25,7 +25,10 @@ journal.  It then sends an *answer* on the same topic in the asking shard's
 partition, and the new owner loads the stream with everything the old one
 wrote.  An old owner that never answers (stopped, or gone with a
 shrinking cluster) costs the new owner ``cluster.handover_wait``, after which it
-loads the stream as it is.  An old owner that connected again moments before
+loads the stream as it is.  An old owner that still owns the stream by its own
+``shard.of`` (the mapping changed before its reload) answers only once its reload
+has let the stream go: until then it keeps an engine of the stream, which it would
+save over its new owner's work.  An old owner that connected again moments before
 holds its answers for ``cluster.redelivery_wait``: what its lost connection left
 unacknowledged comes again only after the servers' ack_wait, after the ask.
 
