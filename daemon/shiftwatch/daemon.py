@@ -1396,7 +1396,8 @@ class Daemon:
         answered once the round that brought it is in the cluster (after a reconnect,
         once cluster.redelivery_wait has passed)."""
         for m in msgs:
-            self._handover_message(m.payload, f"on {self.shard_prefix}{_printable(m.topic)}", now)
+            self._handover_message(m.payload, f"on {self.shard_prefix}{_printable(m.topic)}", now,
+                                   topic=m.topic)
 
     def _take_answers(self) -> None:
         """Answers to this daemon's asks (plain NATS): the streams they name are due now."""
@@ -1404,11 +1405,12 @@ class Daemon:
         while self._answers:
             self._handover_message(self._answers.popleft(), "from the cluster", now)
 
-    def _handover_message(self, payload: bytes | bytearray, where: str, now: float) -> None:
+    def _handover_message(self, payload: bytes | bytearray, where: str, now: float, *,
+                          topic: str = "") -> None:
         assert self.handover is not None
         held = self._hold_until if self._hold_until > time.monotonic() else 0.0
         try:
-            released = self.handover.receive(payload, time.monotonic(), not_before=held)
+            released = self.handover.receive(payload, time.monotonic(), topic=topic, not_before=held)
         except HandoverError as exc:
             self._count_drop("bad_handover")
             self.rlog.warning("bad_handover", f"handover message {where} set aside: {exc}", now)
@@ -1416,6 +1418,11 @@ class Daemon:
         for n in released:
             if n in self._deferred:
                 self._deferred[n] = 0.0
+        if topic and self.owner is not None and self.owner.owns(topic) and self.handover.owes(topic):
+            self.rlog.warning("handover_owned", f"another shard asked for what this shard holds of "
+                              f"the streams on {_printable(topic)}, which the mapping for shard.of "
+                              f"{self.owner.of} still gives this shard: the answer waits until a "
+                              "reload lets them go (is shard.of up to date here?)", now)
 
     def _answer_subject(self, writer: str) -> str:
         assert self.cfg.cluster is not None
@@ -1435,8 +1442,12 @@ class Daemon:
             self._publish(topic, payload, qos=1, retain=False)
 
     def _send_answers(self) -> None:
+        """The answers owed whose asks' rounds are in the cluster; not for the streams this
+        shard still owns (its reload has not let them go: see Handover.answers_due)."""
         assert self.handover is not None
-        for writer, payload in self.handover.answers_due(time.monotonic()):
+        owner = self.owner
+        for writer, payload in self.handover.answers_due(time.monotonic(),
+                                                         None if owner is None else owner.owns):
             if self.nats is not None:
                 self.nats.send(self._answer_subject(writer), payload)
 

@@ -32,7 +32,10 @@ sends no more on that subscription, so an answer queued behind them would
 never come (the wait would run out instead).  A plain NATS message is sent at
 most once: one that is lost costs the wait.  An old owner that never answers (stopped, or gone with a
 shrinking cluster) costs the new owner ``cluster.handover_wait``, after which it
-loads the stream as it is.  An old owner that connected again moments before
+loads the stream as it is.  An old owner that still owns the stream by its own
+``shard.of`` (the mapping changed before its reload) answers only once its reload
+has let the stream go: until then it keeps an engine of the stream, which it would
+save over its new owner's work.  An old owner that connected again moments before
 holds its answers for ``cluster.redelivery_wait``: what its lost connection left
 unacknowledged comes again only after the servers' ack_wait, after the ask.
 
@@ -51,6 +54,7 @@ from __future__ import annotations
 
 import json
 import re
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 __all__ = ["MAGIC", "MAX_NAMES", "Handover", "HandoverError", "is_handover"]
@@ -129,8 +133,8 @@ class Handover:
     waiting: dict[str, _Waiting] = field(default_factory=dict)
     #: Asks to send: (shard, topic) -> names.
     _asks: dict[tuple[int, str], list[str]] = field(default_factory=dict)
-    #: Answers owed: (not before, writer) -> names, in the order asked.
-    _owed: dict[tuple[float, str], list[str]] = field(default_factory=dict)
+    #: Answers owed: (not before, writer, the ask's topic) -> names, in the order asked.
+    _owed: dict[tuple[float, str, str], list[str]] = field(default_factory=dict)
 
     def topic(self, shard: int, topic: str) -> str:
         """``topic`` in ``shard``'s partition."""
@@ -160,8 +164,9 @@ class Handover:
         self._asks = {}
         return out
 
-    def receive(self, payload: bytes | bytearray, now: float, *, not_before: float = 0.0) -> list[str]:
-        """An ask or an answer.  An ask is answered by
+    def receive(self, payload: bytes | bytearray, now: float, *, topic: str = "",
+                not_before: float = 0.0) -> list[str]:
+        """An ask (that came on ``topic``) or an answer.  An ask is answered by
         :meth:`answers_due` from ``max(now, not_before)`` on; an answer returns the
         streams it releases (asked by this daemon and not settled).  Raises
         :class:`HandoverError` for a message that is neither."""
@@ -182,7 +187,7 @@ class Handover:
         if not isinstance(writer, str) or not _WRITER.fullmatch(writer):
             raise HandoverError("'writer' is not a writer id (1 to 64 letters, digits, - or _)")
         if kind == "ask":
-            owed = self._owed.setdefault((max(now, not_before), writer), [])
+            owed = self._owed.setdefault((max(now, not_before), writer, topic), [])
             owed.extend(n for n in names if n not in owed)
             return []
         if writer != self.writer:
@@ -195,17 +200,31 @@ class Handover:
                 released.append(n)
         return released
 
-    def answers_due(self, now: float) -> list[tuple[str, bytes]]:
+    def answers_due(self, now: float, holding: Callable[[str], bool] | None = None) -> list[tuple[str, bytes]]:
         """The answers to send now, each with the writer id it goes to: call only when
-        everything taken before the asks is in the cluster's journal."""
+        everything taken before the asks is in the cluster's journal.
+
+        ``holding(topic)``: this shard still owns the streams on ``topic`` (the mapping
+        moved them, but its reload has not let them go yet): it would snapshot its
+        engine of them after their new owner had begun, so their answer waits until
+        the reload, and is dropped once ``wait`` has passed (the asker has stopped
+        waiting then)."""
         out = []
         for key in [k for k in self._owed if k[0] <= now]:
-            _due, writer = key
+            due, writer, topic = key
+            if holding is not None and holding(topic):
+                if now - due >= self.wait:
+                    del self._owed[key]
+                continue
             names = self._owed.pop(key)
             for i in range(0, len(names), MAX_NAMES):
                 out.append((writer, _dump({"answer": names[i:i + MAX_NAMES], "shard": self.number,
                                            "writer": writer})))
         return out
+
+    def owes(self, topic: str) -> bool:
+        """Whether an answer is owed for streams on ``topic``."""
+        return any(k[2] == topic for k in self._owed)
 
     def settle(self, name: str) -> str | None:
         """The stream is loaded now: how its wait ended ('answered', 'waited_out'), or

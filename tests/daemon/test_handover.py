@@ -73,6 +73,25 @@ def test_answers_after_a_reconnect_wait_for_the_redeliveries() -> None:
     assert [w for w, _ in old.answers_due(130.0)] == ["w0"]
 
 
+def test_a_shard_that_still_owns_the_streams_answers_only_once_it_let_them_go() -> None:
+    # An old owner whose reload has not come yet (the mapping changed first) still has
+    # an engine of the stream, which it saves to the cluster at its next snapshot and at
+    # its reload: answered at once, its new owner would begin before that and have its
+    # state overwritten (test_shards.py, test_an_old_owner_not_yet_reloaded_...).
+    old = Handover(1, "w-old", "part/{number}", 60.0)
+    ask = MAGIC + json.dumps({"ask": ["s1"], "shard": 3, "writer": "w3"}).encode()
+    old.receive(ask, 100.0, topic=TOPIC)
+    assert old.owes(TOPIC) and not old.owes("brackenfield/line1/head1/fill")
+    assert old.answers_due(100.0, lambda topic: topic == TOPIC) == []  # still its own
+    assert old.answers_due(159.0, lambda topic: topic == TOPIC) == []
+    [(writer, answer)] = old.answers_due(159.0, lambda topic: False)  # the reload let them go
+    assert writer == "w3" and _body(answer)["answer"] == ["s1"]
+    # Held past the wait, the answer is dropped: its asker stopped waiting then.
+    old.receive(ask, 200.0, topic=TOPIC)
+    assert old.answers_due(260.0, lambda topic: True) == []
+    assert not old.owes(TOPIC) and old.answers_due(261.0, lambda topic: False) == []
+
+
 def test_many_streams_go_in_messages_of_at_most_max_names() -> None:
     new = Handover(0, "w", "sites/{number}/", 60.0)
     names = [f"s{i}" for i in range(2 * MAX_NAMES + 1)]
