@@ -811,7 +811,8 @@ class Daemon:
     def _note_topic(self, name: str, topic: str) -> None:
         if name not in self._topic_of:
             if len(self._topic_of) >= 2 * self.cfg.metrics.max_streams + SPEC_CACHE_MIN:
-                self._topic_of = {n: t for n, t in self._topic_of.items() if n in self.engines}
+                self._topic_of = {n: t for n, t in self._topic_of.items()
+                                  if n in self.engines or n in self._deferred}
             self._topic_of[name] = topic
 
     def _owns_stream(self, name: str) -> bool:
@@ -919,7 +920,8 @@ class Daemon:
         if held and not self._take_foreign(held, time.time()):
             lost = sum(len(g[3]) for g in held.values())
             self._count_drop("other_shard", lost)
-        self._topic_of = {n: t for n, t in self._topic_of.items() if n in self.engines}
+        # (deferred streams keep theirs: a later reshard must still see where they belong)
+        self._topic_of = {n: t for n, t in self._topic_of.items() if n in self.engines or n in self._deferred}
         self.log.info("shard.of is %d now: this shard owns the streams the mapping gives partition %d; "
                       "%d stream(s) let go (state saved to the cluster, engines dropped), %d kept",
                       nsh.of, sh.number, len(gone), len(self.engines))
