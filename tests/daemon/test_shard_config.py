@@ -82,3 +82,37 @@ def test_an_unreachable_cluster_is_one_line_and_exit_status_2(tmp_path: Path) ->
     text = out.stdout + out.stderr
     assert "Traceback" not in text
     assert f"cannot start: NATS cluster nats://127.0.0.1:{port} cannot be reached" in text, text
+
+
+def test_a_held_stream_keeps_its_topic_through_a_reload_so_the_next_one_moves_it(tmp_path: Path) -> None:
+    # A stream waiting for its last writer's answer (Daemon._deferred) has no engine yet.
+    # A reload pruned the stream-to-topic map down to the engines, so the held stream's
+    # topic was forgotten, and a stream with no known topic counts as this shard's own:
+    # at the next change of shard.of it stayed held here although the mapping had moved
+    # it on (found by reading; the partitions here are NATS's, see shiftwatch.partition).
+    from shiftwatch.config import load_config
+    from shiftwatch.daemon import Daemon
+    from shiftwatch.metrics import Metrics
+    from shiftwatch.partition import partition_of
+
+    topic = "brackenfield/line1/head6/fill"  # partition 0 of 3 and of 5, not of 4
+    levels = (2, 3, 4)
+    assert [partition_of(topic, levels, n) for n in (3, 5)] == [0, 0] and partition_of(topic, levels, 4) != 0
+
+    def config(of: int) -> Path:
+        path = tmp_path / f"of{of}.yaml"
+        path.write_text("streams:\n  - {topic: 'brackenfield/+/+/fill', format: json, value: v, time: ts}\n"
+                        f"metrics: {{listen: '127.0.0.1:0'}}\nstate: {{dir: '{tmp_path / 'state'}'}}\n"
+                        f"shard: {{number: 0, of: {of}, hashed_levels: [2, 3, 4]}}\n")
+        return path
+
+    d = Daemon(load_config(str(config(3))), config_path=str(config(3)), metrics=Metrics())
+    d._note_topic(topic, topic)
+    d._deferred[topic] = float("inf")
+    d._deferred_samples[topic] = [None, "g", [1.0, 2.0], [500.0, 500.1], [1.0, 2.0]]
+    d._set_shard(load_config(str(config(5))))  # still this shard's
+    assert topic in d._deferred and d._topic_of.get(topic) == topic
+    d._set_shard(load_config(str(config(4))))  # moved away: its held samples go, counted
+    assert topic not in d._deferred and topic not in d._deferred_samples
+    dropped = d.metrics.messages_dropped.labels("other_shard")._value.get()
+    assert dropped == 2
