@@ -774,7 +774,7 @@ def _array_columns(payload: bytes, value_parts: tuple[str, ...], time_parts: tup
     strict, lenient, colons = decoders
     try:
         doc = strict.decode(payload)
-        if payload.count(b":") != colons * len(doc):
+        if _count_colons(payload) != colons * len(doc):
             return None
     except msgspec.MsgspecError:
         n = payload.count(b"{")
@@ -789,21 +789,30 @@ def _array_columns(payload: bytes, value_parts: tuple[str, ...], time_parts: tup
             return None
     if not doc or len(doc) > max_items:
         return None
-    # np.fromiter: the same floats as np.array(list(...)), without the list in between.
-    values = np.fromiter(map(_FIRST, doc), np.float64, len(doc))
+    # The same float objects into float64 arrays.  A list comprehension over the structs
+    # and np.fromiter over the list cost about 70,000 fewer instructions for two columns of
+    # 260 than np.fromiter over map(attrgetter) (callgrind, 2026-12-04).
+    n = len(doc)
+    values = np.fromiter([s.a for s in doc], np.float64, n)
     if not np.isfinite(values).all():
         return None
     if time_parts is None:
         return None, values
-    t = np.fromiter(map(_SECOND, doc), np.float64, len(doc))
+    t = np.fromiter([s.b for s in doc], np.float64, n)
     if not np.isfinite(t).all():
         return None
-    # _seconds, element by element: the same division.
-    return np.where(t > _MS_THRESHOLD, t / 1000.0, t), values
+    # _seconds, element by element: the same division, for a column that holds a time in
+    # milliseconds (none is past the threshold otherwise, and the column is kept as it is).
+    if float(np.maximum.reduce(t)) > _MS_THRESHOLD:
+        return np.where(t > _MS_THRESHOLD, t / 1000.0, t), values
+    return t, values
 
 
-_FIRST = operator.attrgetter("a")
-_SECOND = operator.attrgetter("b")
+def _count_colons(payload: bytes) -> int:
+    """``payload.count(b":")``, counted by numpy: bytes.count scans a byte at a time, a
+    comparison over the bytes as uint8 runs in vector instructions (about 3 against 8
+    microseconds on the daemon benchmark's 9.6 kB arrays)."""
+    return int(np.count_nonzero(np.frombuffer(payload, np.uint8) == 0x3A))
 
 
 @functools.lru_cache(maxsize=64)

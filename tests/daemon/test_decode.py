@@ -943,3 +943,16 @@ def test_a_senml_record_with_a_repeated_field_is_set_aside_alone() -> None:
     out = decode(b'[{"bn": "line2/", "n": "a", "v": 1, "v": 2}, {"n": "b", "v": 3}]', "senml", now=NOW)
     assert [(r.name, r.value) for r in out.readings] == [("line2/b", 3.0)]
     assert reasons(out) == ["duplicate_key"]
+
+
+def test_colons_are_counted_as_bytes_count_counts_them() -> None:
+    # The column path's duplicate-key check counts a payload's colons with numpy; the
+    # reference is the standard library's bytes.count, on random payloads of every byte
+    # value (colons, UTF-8 lead and continuation bytes, NUL) and length, empty included.
+    rng = np.random.default_rng(71)
+    for _ in range(2000):
+        n = int(rng.integers(0, 3000))
+        alphabet = rng.choice([b":", b"{", b'"', b"\xc3", b"\xa9", b"\x00", b"9"], size=int(rng.integers(1, 6)))
+        payload = b"".join(rng.choice(alphabet, size=n).tolist()) if n else b""
+        assert decode_module._count_colons(payload) == payload.count(b":")
+    assert decode_module._count_colons(bytes(range(256)) * 3) == 3

@@ -52,6 +52,9 @@ _ARANGE = tuple(_read_only_arange(n) for n in range(SMALL_BATCH + 1))
 #: ``kept`` of a larger clean batch: a read-only prefix of this (a replay's batches are
 #: 4,096 samples at most), so a clean batch makes no index array of its own.
 _KEPT = _read_only_arange(4096)
+#: Float batches with arrival limits (the daemon's) are screened on the arrays as they are;
+#: False sends them down the full path, the reference (tests/core/test_screen_fast.py).
+ARRIVAL_FAST = True
 
 
 class Screened(NamedTuple):
@@ -150,15 +153,19 @@ def screen_samples(
                                    max_behind)):
         return Screened(times=times, values=values, kept=_ARANGE[times.shape[0]], rejected=[])
     if (type(times) is np.ndarray and type(values) is np.ndarray and times.dtype == _F64
-            and values.dtype == _F64 and times.ndim == 1 and times.shape == values.shape
-            and (arrived is None or (max_ahead is None and max_behind is None))):
-        # Float arrays, no arrival limits: the checks of the fast path below on the arrays
-        # as they are (values within the bound: the largest and the smallest, where a NaN
-        # fails the comparison as it fails abs(v) <= bound).
+            and values.dtype == _F64 and times.ndim == 1 and times.shape == values.shape):
+        # Float arrays: the checks of the fast path below on the arrays as they are (values
+        # within the bound: the largest and the smallest, where a NaN fails the comparison
+        # as it fails abs(v) <= bound).  Arrival limits (the daemon's batches) are checked
+        # on the lags' smallest and largest, as _within does, once the times are known to
+        # be finite and increasing; anything else takes the full path, which also says
+        # what is wrong (ARRIVAL_FAST = False: always the full path when limits apply).
         n = times.shape[0]
+        limits = arrived is not None and (max_ahead is not None or max_behind is not None)
         if (n and times[0] > last_time and bool(np.maximum.reduce(values) <= MAX_ABS_VALUE)
                 and bool(np.minimum.reduce(values) >= -MAX_ABS_VALUE) and np.isfinite(times[-1])
-                and (n == 1 or bool((times[1:] > times[:-1]).all()))):
+                and (n == 1 or bool((times[1:] > times[:-1]).all()))
+                and (not limits or (ARRIVAL_FAST and _arrivals_within(arrived, times, max_ahead, max_behind)))):
             return Screened(times=times, values=values,
                             kept=_KEPT[:n] if n <= _KEPT.shape[0] else np.arange(n), rejected=[])
     t, bad_t = coerce_values(times)
@@ -248,6 +255,23 @@ def _small_batch_clean(ts: list[float], vs: list[float], last_time: float, arriv
         if max_behind is not None and not lag <= max_behind:
             return False
     return True
+
+
+def _arrivals_within(arrived: Any, times: NDArray[np.float64], max_ahead: float | None,
+                     max_behind: float | None) -> bool:
+    """Whether every ``arrival - time`` of a batch of finite, increasing float times lies
+    within the limits: :func:`_within` on the same lags (one arrival for the batch, or one
+    float per sample; any other shape is left to the full path, which reports it)."""
+    if type(arrived) is float:
+        lag = arrived - times
+    else:
+        arr = np.asarray(arrived)
+        if arr.dtype != _F64 or (arr.ndim and arr.shape != times.shape):
+            return False
+        lag = arr - times
+    if max_ahead is not None and not bool(np.minimum.reduce(lag) >= -max_ahead):
+        return False
+    return max_behind is None or bool(np.maximum.reduce(lag) <= max_behind)
 
 
 def _within(lag: NDArray[np.float64], max_ahead: float | None, max_behind: float | None) -> bool:
