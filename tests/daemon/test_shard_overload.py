@@ -31,6 +31,7 @@ import subprocess
 import sys
 import threading
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 from shiftwatch.broker import free_port, wait_until
@@ -147,6 +148,22 @@ def _counts(port: int) -> tuple[int, dict[str, int]]:
     return taken, rejected
 
 
+def _shard(cfg: Path, log_path: Path) -> tuple[Callable[[], subprocess.Popen[bytes]], Callable[[], str]]:
+    """How to start ``shiftwatch run --config cfg`` (its output appended to ``log_path``),
+    and how to read that log."""
+    env = dict(os.environ, PYTHONPATH=str(ROOT / "daemon"))
+
+    def start() -> subprocess.Popen[bytes]:
+        with open(log_path, "ab") as log:
+            return subprocess.Popen([sys.executable, "-m", "shiftwatch", "run", "--config", str(cfg)],
+                                    stdout=log, stderr=subprocess.STDOUT, env=env)
+
+    def log() -> str:
+        return log_path.read_text(errors="replace")
+
+    return start, log
+
+
 def _serving(port: int) -> bool:
     try:
         scrape(port)
@@ -163,17 +180,8 @@ def _run_shard(tmp_path: Path, redelivery_wait: str) -> tuple[int, int, dict[str
     cfg = tmp_path / "shiftwatch.yaml"
     metrics_port = free_port()
     _config(cfg, relay.port, port, metrics_port, redelivery_wait)
-    log_path = tmp_path / "shard.log"
-    env = dict(os.environ, PYTHONPATH=str(ROOT / "daemon"))
+    start, log = _shard(cfg, tmp_path / "shard.log")
     proc: subprocess.Popen[bytes] | None = None
-
-    def start() -> subprocess.Popen[bytes]:
-        with open(log_path, "ab") as log:
-            return subprocess.Popen([sys.executable, "-m", "shiftwatch", "run", "--config", str(cfg)],
-                                    stdout=log, stderr=subprocess.STDOUT, env=env)
-
-    def log() -> str:
-        return log_path.read_text(errors="replace")
 
     try:
         # The shard's session and subscription first, then the backlog while it is away.
@@ -242,20 +250,11 @@ def test_only_a_resumed_session_waits_for_what_came_before(tmp_path: Path) -> No
     cfg = tmp_path / "shiftwatch.yaml"
     metrics_port = free_port()
     _config(cfg, port + 1, port, metrics_port, "600s")
-    log_path = tmp_path / "shard.log"
-    env = dict(os.environ, PYTHONPATH=str(ROOT / "daemon"))
+    start, log = _shard(cfg, tmp_path / "shard.log")
     url = f"mqtt://127.0.0.1:{port + 1}"
     msg = [("brackenfield/line1/head1/fill", json.dumps([{"v": 500.0 + j * 0.01, "ts": T0 + j}
                                                          for j in range(5)]).encode())]
     proc: subprocess.Popen[bytes] | None = None
-
-    def start() -> subprocess.Popen[bytes]:
-        with open(log_path, "ab") as log:
-            return subprocess.Popen([sys.executable, "-m", "shiftwatch", "run", "--config", str(cfg)],
-                                    stdout=log, stderr=subprocess.STDOUT, env=env)
-
-    def log() -> str:
-        return log_path.read_text(errors="replace")
 
     try:
         proc = start()
