@@ -41,7 +41,6 @@ from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, strea
 from shiftwatch.display import alert_summary, stamp
 from shiftwatch.floor import FloorDesk
 from shiftwatch.fsutil import explain_os_error
-from shiftwatch.handover import MAGIC as HANDOVER_MAGIC
 from shiftwatch.handover import Handover, HandoverError, is_handover
 from shiftwatch.journal import Journal, JournalGroup, JournalSingles
 from shiftwatch.lease import ShardLease
@@ -1084,7 +1083,9 @@ class Daemon:
         if self.handover is not None:
             if self._answers:
                 self._take_answers()
-            self._send_answers()  # those held after a reconnect (see shiftwatch.handover)
+            # Answers owed for asks of rounds now in the cluster (the round before this one,
+            # or held after a reconnect; see shiftwatch.handover).
+            self._send_answers()
         if self._deferred or self._ack_later:
             self._release_deferred()
         round_bytes = ROUND_BYTES
@@ -1360,8 +1361,6 @@ class Daemon:
             # before anything newer is taken (see round()).
             self._held_round = ("journal", msgs, fed, wrote)
             return
-        if self.handover is not None:
-            self._send_answers()
         if self._deferred or self._ack_later:
             self._ack_later.append((msgs, wrote))
             return
@@ -1432,15 +1431,14 @@ class Daemon:
 
     def _send_asks(self) -> None:
         assert self.handover is not None
-        out = self.handover.outgoing()
-        if not out:
+        names = self.handover.asking()
+        if not names:
             return
-        names = [n for _t, p in out for n in json.loads(p[len(HANDOVER_MAGIC):])["ask"]]
         self.log.info("%d stream(s) moved here (e.g. %s); asked the shard(s) that wrote them last "
                       "for what they still hold of them; they wait for the answer, at most "
                       "cluster.handover_wait (%s s)", len(names), _printable(names[0]),
                       f"{self.handover.wait:g}")
-        for topic, payload in out:
+        for topic, payload in self.handover.outgoing():
             self._publish(topic, payload, qos=1, retain=False)
 
     def _send_answers(self) -> None:

@@ -154,6 +154,10 @@ class Handover:
         self.waiting[name] = _Waiting(shard)
         self._asks.setdefault((shard, topic), []).append(name)
 
+    def asking(self) -> list[str]:
+        """The streams :meth:`outgoing` is about to ask for."""
+        return [n for names in self._asks.values() for n in names]
+
     def outgoing(self) -> list[tuple[str, bytes]]:
         """The asks to publish now (QoS 1), at most :data:`MAX_NAMES` names a message."""
         out = []
