@@ -9,6 +9,7 @@ in tests/bench/bench_faults_broker.py.
 
 from __future__ import annotations
 
+import os
 import signal
 import threading
 import time
@@ -88,8 +89,18 @@ def test_broker_restarts_lose_no_sample_and_count_none_twice(broker, daemon_fact
     assert d.stop() == 0
 
 
-def unread_bytes_from(port: int) -> int:
-    """The most bytes any local TCP socket connected to ``port`` holds unread (Linux /proc/net/tcp)."""
+def unread_bytes_from(port: int, pid: int) -> int:
+    """The most bytes a TCP socket of process ``pid`` connected to ``port`` holds unread
+    (Linux /proc/net/tcp; the process's sockets are found by inode in /proc/<pid>/fd).
+    Sockets of other processes (the test's own publisher and viewer) are not counted."""
+    inodes = set()
+    for fd in os.listdir(f"/proc/{pid}/fd"):
+        try:
+            target = os.readlink(f"/proc/{pid}/fd/{fd}")
+        except OSError:
+            continue
+        if target.startswith("socket:["):
+            inodes.add(target[8:-1])
     most = 0
     for table in ("/proc/net/tcp", "/proc/net/tcp6"):
         try:
@@ -99,7 +110,7 @@ def unread_bytes_from(port: int) -> int:
             continue
         for line in lines:
             f = line.split()
-            if int(f[2].rsplit(":", 1)[1], 16) == port:  # rem_address: the broker's end
+            if int(f[2].rsplit(":", 1)[1], 16) == port and f[9] in inodes:  # rem_address: the broker's end
                 most = max(most, int(f[4].split(":")[1], 16))  # rx_queue
     return most
 
@@ -128,12 +139,13 @@ def test_alert_records_made_during_an_outage_arrive_after_it(broker, daemon_fact
         send(400, 420)
         # The broker pushes its in-flight window into the held daemon's socket;
         # wait until the kernel holds it there (a loaded machine can take a while).
-        assert wait_until(lambda: unread_bytes_from(broker.port) > 0, timeout=20)
-        held = [unread_bytes_from(broker.port)]
+        pid = d.proc.pid
+        assert wait_until(lambda: unread_bytes_from(broker.port, pid) > 0, timeout=20)
+        held = [unread_bytes_from(broker.port, pid)]
 
         def settled() -> bool:  # no more bytes for half a second: the window has arrived
             time.sleep(0.5)
-            held.append(unread_bytes_from(broker.port))
+            held.append(unread_bytes_from(broker.port, pid))
             return held[-1] == held[-2]
 
         assert wait_until(settled, timeout=20)
@@ -142,7 +154,10 @@ def test_alert_records_made_during_an_outage_arrive_after_it(broker, daemon_fact
         d.signal(signal.SIGCONT)
     # The broker is down from here on; the record is made and logged meanwhile
     # (paho may notice the lost connection a moment before or after).
-    assert wait_until(lambda: "DETECTED" in d.log_text(), timeout=30)
+    # On failure: what the daemon took and said (a CI run once saw no record here).
+    assert wait_until(lambda: "DETECTED" in d.log_text(), timeout=30), (
+        f"no record during the outage; unread bytes while held {held}; samples taken "
+        f"{samples_by_stream(scrape(d.metrics_port)).get(topic)}; daemon log:\n{d.log_text()[-4000:]}")
     broker.start()
     send(420, 700)
     assert wait_until(lambda: {p for _, p in viewer.distinct()} == {"detected", "confirmed"}, timeout=60)
