@@ -22,6 +22,15 @@ The same two parts as the local state directory, with the same guarantee
   had made that the broker had not yet acknowledged.  After a snapshot the
   stream's journal subject is purged down to its last message (which keeps the
   subject's last sequence for the header above).
+- **Parked samples**: a JetStream stream ``<name>_parked``, one subject per
+  stream, ``<name>.parked.<key>``.  A stream that moved to this shard waits
+  for its last writer (see ``shiftwatch.handover``) before it is loaded; the
+  samples that reach it meanwhile are parked here, one message per round in
+  the journal's encoding, so that their MQTT messages can be acknowledged
+  while it waits (a shard holding them unacknowledged was sent nothing more
+  once it held the broker's limit of them, asks and all).  Whoever loads the
+  stream next feeds them after its journal, writes them to the journal and
+  purges them from here.
 
 A stream is loaded when its first samples reach a daemon: snapshot, then the
 journal messages after the snapshot's sequence, fed to a new engine.  That is
@@ -87,6 +96,10 @@ class Restored:
     saved_at: float | None = None
     records: list[tuple[str, bytes, int]] = field(default_factory=list)
     groups: list[JournalGroup] = field(default_factory=list)
+    #: Samples parked while the stream waited for its last writer, in the order parked,
+    #: and the last parked message's sequence (0: none); see :meth:`ClusterState.unpark`.
+    parked: list[JournalGroup] = field(default_factory=list)
+    parked_last: int = 0
     problem: str | None = None
     #: Who wrote the stream's last journal message, when (wall clock, seconds), and the
     #: shard number it ran as (None: not a shard, or written before the header existed).
@@ -110,6 +123,7 @@ class ClusterState:
         self.log = logger
         self.stream = f"{name}_journal"
         self.bucket = f"{name}_state"
+        self.parking = f"{name}_parked"
         #: Last journal sequence written or read per stream (the expected-last header).
         self.seq: dict[str, int] = {}
         #: Sequence each stream's last snapshot includes.
@@ -118,14 +132,19 @@ class ClusterState:
     def subject(self, name: str) -> str:
         return f"{self.name}.journal.{stream_key(name)}"
 
+    def parked_subject(self, name: str) -> str:
+        return f"{self.name}.parked.{stream_key(name)}"
+
     def setup(self) -> None:
         """Create the journal stream and the bucket where missing (ClusterError otherwise)."""
         async def go() -> None:
             await self.io.ensure_stream(self.stream, [f"{self.name}.journal.*"], self.replicas,
                                         JOURNAL_MAX_AGE)
             await self.io.ensure_bucket(self.bucket, self.replicas)
+            await self.io.ensure_stream(self.parking, [f"{self.name}.parked.*"], self.replicas,
+                                        JOURNAL_MAX_AGE)
 
-        self.io.run(go(), timeout=self.io.timeout * 3)
+        self.io.run(go(), timeout=self.io.timeout * 4)
 
     # ------------------------------------------------------------ loading
     def load(self, names: Iterable[str]) -> dict[str, Restored]:
@@ -133,11 +152,16 @@ class ClusterState:
         names = list(names)
         sem = asyncio.Semaphore(PARALLEL)
 
+        parked: set[str] = set()
+
         async def one(name: str) -> tuple[str, Restored, int]:
             async with sem:
-                return (name, *await self._load_one(name))
+                return (name, *await self._load_one(name, self.parked_subject(name) in parked))
 
         async def go() -> list[tuple[str, Restored, int]]:
+            # One request says which streams have parked samples (few, and only around a
+            # change of the number of shards), instead of one request per stream.
+            parked.update(await self.io.subjects(self.parking, f"{self.name}.parked.*"))
             return list(await asyncio.gather(*(one(n) for n in names)))
 
         out: dict[str, Restored] = {}
@@ -146,7 +170,7 @@ class ClusterState:
             out[name] = r
         return out
 
-    async def _load_one(self, name: str) -> tuple[Restored, int]:
+    async def _load_one(self, name: str, parked: bool = False) -> tuple[Restored, int]:
         r = Restored()
         subject = self.subject(name)
         entry = await self.io.kv_get(self.bucket, stream_key(name))
@@ -183,8 +207,46 @@ class ClusterState:
                     r.groups.extend(g for g in decode_groups(body) if g.stream == name)
                 except (ValueError, TypeError) as exc:
                     r.problem = f"journal message on {subject} unusable ({exc})"
+        if parked:
+            psubject = self.parked_subject(name)
+            r.parked_last, _ = await self.io.last_seq(self.parking, psubject)
+            for _seq, body in await self.io.messages_after(self.parking, psubject, 0, r.parked_last):
+                try:
+                    r.parked.extend(g for g in decode_groups(body) if g.stream == name)
+                except (ValueError, TypeError) as exc:
+                    r.problem = f"parked message on {psubject} unusable ({exc})"
         self._saved[name] = after
         return r, last
+
+    # ------------------------------------------------------------ parking
+    def park(self, groups: list[JournalGroup]) -> None:
+        """Store each group as its stream's next parked message and wait for the cluster
+        (ClusterError when it did not acknowledge them in time).  A group parked twice
+        (a round taken again after a timeout) is stored once: its message id is the hash
+        of the writer and the body, which JetStream's duplicate window checks."""
+        headers = {WRITER: self.writer, WRITTEN: f"{time.time():.3f}"}
+        sem = asyncio.Semaphore(PARALLEL)
+
+        async def one(g: JournalGroup) -> None:
+            body = encode_groups([g])
+            digest = hashlib.sha256(self.writer.encode() + body).hexdigest()[:32]
+            async with sem:
+                await self.io.publish(self.parked_subject(g.stream), body,
+                                      headers={**headers, "Nats-Msg-Id": digest})
+
+        async def go() -> None:
+            await asyncio.gather(*(one(g) for g in groups))
+
+        self.io.run(go(), timeout=self.io.timeout * (1 + len(groups) // PARALLEL))
+
+    def unpark(self, lasts: Mapping[str, int]) -> None:
+        """Purge each stream's parked messages up to and including the sequence given
+        (those a load read; later ones, parked meanwhile, stay).  Raises ClusterError."""
+        async def go() -> None:
+            await asyncio.gather(*(self.io.purge_subject(self.parking, self.parked_subject(n), keep=None,
+                                                         upto=last) for n, last in lasts.items()))
+
+        self.io.run(go(), timeout=self.io.timeout * (1 + len(lasts) // PARALLEL))
 
     # ------------------------------------------------------------ journal
     def journal(self, groups: list[JournalGroup]) -> list[JournalGroup]:

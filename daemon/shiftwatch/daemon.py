@@ -336,8 +336,6 @@ class Daemon:
         # rounds' acknowledgements wait with them.
         self.writer_id = secrets.token_hex(6)
         self._deferred: dict[str, float] = {}
-        self._deferred_samples: dict[str, list[Any]] = {}
-        self._ack_later: list[tuple[list[Message], bool]] = []
         # A shard with its state in the cluster asks the shard that wrote a moved stream
         # last to pass on what it still holds of it, and answers such asks (see
         # shiftwatch.handover).
@@ -694,6 +692,8 @@ class Daemon:
         restored = replayed = 0
         wait = self.cfg.cluster.redelivery_wait if self.cfg.cluster is not None else 0.0
         now = time.time()
+        unparked: list[JournalGroup] = []
+        parked_last: dict[str, int] = {}
         for name, r in loaded.items():
             if defer and r.written_by not in (None, self.writer_id) and r.written_at is not None:
                 ho, topic = self.handover, self._topic_of.get(name)
@@ -711,7 +711,7 @@ class Daemon:
                 self.log.warning("stream %s: %s; what could be read is used", _printable(name), r.problem)
             for topic, payload, qos in r.records:
                 self._publish(topic, payload, qos=qos, retain=False)
-            if r.state is None and not r.groups:
+            if r.state is None and not r.groups and not r.parked_last:
                 continue
             spec = self.cfg.stream_for(name, r.topic_filter)
             if spec is None:
@@ -737,10 +737,52 @@ class Daemon:
                 replayed += len(g.values)
                 for rec in res.records:
                     self.emit(rec, time.time())
+            if r.parked_last:
+                parked_last[name] = r.parked_last
+                jg = self._unpark(name, spec, r.unit or spec.unit, r.parked, now)
+                if jg is not None:
+                    unparked.append(jg)
             self.metrics.update_stream(name, StreamStats.from_engine(eng))
         if restored or replayed:
             self.log.info("loaded %d stream(s) from the cluster (%d journaled sample(s) replayed)",
                           restored, replayed)
+        if parked_last:
+            self._journal_unparked(unparked, parked_last, now)
+
+    def _unpark(self, name: str, spec: StreamConfig, unit: str | None, parked: list[JournalGroup],
+                now: float) -> JournalGroup | None:
+        """Feed a loaded stream the samples parked while it waited (shiftwatch.clusterstate),
+        in time order after its journal; the samples fed, to journal."""
+        if not parked:
+            return None
+        t = np.concatenate([g.times for g in parked])
+        order = np.argsort(t, kind="stable")
+        v = np.concatenate([g.values for g in parked])[order]
+        a = np.concatenate([g.arrived for g in parked])[order]
+        return self._run_stream(name, spec, unit, t[order].tolist(), v.tolist(), a.tolist(), now)
+
+    def _journal_unparked(self, fed: list[JournalGroup], lasts: dict[str, int], now: float) -> None:
+        """The unparked samples into the streams' journals, then out of the parking.  Raises
+        ClusterError when the journal did not take them: the streams' engines are dropped
+        (the samples stay parked) and the caller loads them again later."""
+        assert self.cluster is not None
+        try:
+            refused = self.cluster.journal(fed) if fed else []
+        except ClusterError:
+            refused = fed
+        if refused:
+            names = {g.stream for g in refused}
+            for n in names:
+                self.engines.pop(n, None)
+            raise ClusterError(f"the parked samples of {len(names)} stream(s) (e.g. "
+                               f"{_printable(next(iter(names)))}) did not reach their journal")
+        try:
+            self.cluster.unpark(lasts)
+        except ClusterError as exc:
+            # They are in the journal: loaded again later, they are set aside as duplicates.
+            self.rlog.warning("cluster_unpark", f"parked samples of {len(lasts)} stream(s) not "
+                              f"removed from the cluster ({exc}); a later load of those streams sets "
+                              "them aside as duplicates", now)
 
     def _cluster_journal(self, fed: list[JournalGroup], now: float, *, started: Any = None) -> bool:
         """The round's samples into the cluster's journal; False when the cluster did not
@@ -907,18 +949,14 @@ class Daemon:
             self.log.warning("shard %d is past shard.of %d: it owns no stream now; stop it once the "
                              "NATS servers' mapping has %d partitions", sh.number, nsh.of, nsh.of)
         gone = [n for n in self.engines if not self._owns_stream(n)]
-        # Deferred streams (loaded, waiting for their previous writer) that are not ours
-        # any more: the samples they hold go to their journal like any other shard's.
-        held = {n: self._deferred_samples.pop(n) for n in list(self._deferred)
-                if not self._owns_stream(n) and n in self._deferred_samples}
+        # Deferred streams (waiting for their previous writer) that are not ours any more:
+        # the samples parked for them stay in the cluster, and their next owner feeds
+        # them when it loads them.
         for n in [n for n in self._deferred if not self._owns_stream(n)]:
             del self._deferred[n]
             if self.handover is not None:
                 self.handover.forget(n)
         self._let_go(gone)
-        if held and not self._take_foreign(held, time.time()):
-            lost = sum(len(g[3]) for g in held.values())
-            self._count_drop("other_shard", lost)
         # (deferred streams keep theirs: a later reshard must still see where they belong)
         self._topic_of = {n: t for n, t in self._topic_of.items() if n in self.engines or n in self._deferred}
         self.log.info("shard.of is %d now: this shard owns the streams the mapping gives partition %d; "
@@ -1086,7 +1124,7 @@ class Daemon:
             # Answers owed for asks of rounds now in the cluster (the round before this one,
             # or held after a reconnect; see shiftwatch.handover).
             self._send_answers()
-        if self._deferred or self._ack_later:
+        if self._deferred:
             self._release_deferred()
         round_bytes = ROUND_BYTES
         sort = False
@@ -1315,6 +1353,9 @@ class Daemon:
                 return
             if self.handover is not None:
                 self._send_asks()
+            if self._deferred and not self._park(groups, now):
+                self._held_round = ("load", msgs, [], in_time_order)  # nothing fed yet: all again
+                return
         if foreign and not self._take_foreign(foreign, now):
             self._held_round = ("load", msgs, [], in_time_order)  # nothing fed yet: all again
             return
@@ -1325,11 +1366,7 @@ class Daemon:
         pub = self.cluster.journal_round() if self.cluster is not None else None
         for name, (spec, unit, times, values, arrivals, *prior) in groups.items():
             if name in self._deferred:
-                held = self._deferred_samples.setdefault(name, [spec, unit, [], [], []])
-                # (lists: a JSON array's group is arrays, and list += array adds elementwise)
-                for col, got in ((2, times), (3, values), (4, arrivals)):
-                    held[col].extend(got.tolist() if type(got) is np.ndarray else got)
-                continue
+                continue  # parked in the cluster (see _park)
             if in_time_order and len(times) > 1:
                 order = sorted(range(len(times)), key=times.__getitem__)
                 times = [times[i] for i in order]
@@ -1361,10 +1398,31 @@ class Daemon:
             # before anything newer is taken (see round()).
             self._held_round = ("journal", msgs, fed, wrote)
             return
-        if self._deferred or self._ack_later:
-            self._ack_later.append((msgs, wrote))
-            return
         self._finish(msgs, wrote)
+
+    def _park(self, groups: dict[str, list[Any]], now: float) -> bool:
+        """The round's samples of the deferred streams (waiting for their last writer) into
+        the cluster's parking, so that the round can be acknowledged while they wait: a
+        shard holding its rounds unacknowledged is sent nothing more once it holds the
+        broker's limit of them (NATS: max_ack_pending), asks for its own answers
+        included.  False: the cluster did not take them (the round is held)."""
+        assert self.cluster is not None
+        parked = [JournalGroup(name, unit, np.asarray(times, dtype=np.float64),
+                               np.asarray(values, dtype=np.float64), np.asarray(arrivals, dtype=np.float64),
+                               self._filters.get(name, spec.topic))
+                  for name, (spec, unit, times, values, arrivals, *_prior) in groups.items()
+                  if name in self._deferred]
+        if not parked:
+            return True
+        try:
+            self.cluster.park(parked)
+        except ClusterError as exc:
+            self.metrics.journal_failures.inc()
+            self.rlog.warning("cluster_park", f"samples of streams waiting for their last writer not "
+                              f"parked in the cluster ({exc}); the round is held and tried again", now)
+            return False
+        self.metrics.samples_parked.inc(sum(len(g.values) for g in parked))
+        return True
 
     def _add_columns(self, into: dict[str, list[Any]], name: str, spec: StreamConfig, unit: str | None,
                      topic: str, ts: np.ndarray | None, vs: np.ndarray, arrived: float) -> None:
@@ -1463,37 +1521,20 @@ class Daemon:
                               "set aside there)", time.time(), extra={"stream": name})
 
     def _release_deferred(self) -> None:
-        """Feed the deferred streams whose wait is over (loaded afresh, with what the
-        other daemon wrote meanwhile; their held samples in time order), then
-        acknowledge the rounds that waited for them."""
+        """Load the deferred streams whose wait is over: afresh, with what the other
+        daemon wrote meanwhile, then the samples parked while they waited."""
         now = time.time()
         due = [n for n, until in self._deferred.items() if until <= now]
-        if due:
-            try:
-                self._cluster_load(due)
-            except ClusterError as exc:
-                self.rlog.warning("cluster_load", f"{exc}; tried again shortly", now)
-                return
-            fed = []
-            for n in due:
-                del self._deferred[n]
-                self._settle_handover(n)
-                held = self._deferred_samples.pop(n, None)
-                if held is None:
-                    continue
-                spec, unit, times, values, arrivals = held
-                order = sorted(range(len(times)), key=times.__getitem__)
-                jg = self._run_stream(n, spec, unit, [times[i] for i in order],
-                                      [values[i] for i in order], [arrivals[i] for i in order], now)
-                if jg is not None:
-                    fed.append(jg)
-            if fed and not self._cluster_journal(fed, now):
-                self._held_round = ("journal", [], fed, True)
-                return
-        if not self._deferred and self._held_round is None and self._ack_later:
-            later, self._ack_later = self._ack_later, []
-            for msgs, wrote in later:
-                self._finish(msgs, wrote)
+        if not due:
+            return
+        try:
+            self._cluster_load(due)
+        except ClusterError as exc:
+            self.rlog.warning("cluster_load", f"{exc}; tried again shortly", now)
+            return
+        for n in due:
+            del self._deferred[n]
+            self._settle_handover(n)
 
     def _finish(self, msgs: list[Message], wrote: bool) -> None:
         """Acknowledge a processed round (after the outbox is on disk when it wrote records)."""

@@ -886,6 +886,11 @@ class Metrics:
             "their first samples here were fed, for the shard that wrote them last to pass on "
             "what it still held of them; outcome answered, or waited_out after "
             "cluster.handover_wait.", ["outcome"], registry=reg)
+        self.samples_parked = Counter(
+            "shiftwatch_samples_parked",
+            "Samples of streams waiting for their last writer (see "
+            "shiftwatch_stream_handovers_total), parked in the cluster so that their messages "
+            "could be acknowledged meanwhile; fed when the wait ends.", registry=reg)
         self.states_set_aside = Counter(
             "shiftwatch_stream_states_set_aside",
             "Saved stream states that could not be used at start (malformed or damaged); "

@@ -292,8 +292,19 @@ class NatsIO:
             seq = int(msg.seq) + 1
         return out
 
-    async def purge_subject(self, stream: str, subject: str, keep: int = 1) -> None:
-        await self._js.purge_stream(stream, subject=subject, keep=keep)
+    async def purge_subject(self, stream: str, subject: str, keep: int | None = 1,
+                            upto: int | None = None) -> None:
+        """Purge the subject's messages in the stream: all but the last ``keep``, or (with
+        ``upto``) those with sequences up to and including ``upto``."""
+        if upto is not None:
+            await self._js.purge_stream(stream, subject=subject, seq=upto + 1)
+        else:
+            await self._js.purge_stream(stream, subject=subject, keep=keep)
+
+    async def subjects(self, stream: str, subject_filter: str) -> dict[str, int]:
+        """The stream's subjects that match the filter and hold messages, with their counts."""
+        info = await self._js.stream_info(stream, subjects_filter=subject_filter)
+        return dict(info.state.subjects or {})
 
     # ------------------------------------------------------- key-value
     async def kv_get(self, bucket: str, key: str) -> KvEntry | None:

@@ -91,32 +91,3 @@ def test_a_round_of_mixed_batches_feeds_the_engines_as_one_message_per_round(tmp
     for d in (together, apart):
         if d.journal is not None:
             d.journal.close()
-
-
-def test_arrays_of_a_held_stream_wait_as_samples(tmp_path: Path) -> None:
-    # A stream that moved here waits (Daemon._deferred) while its last writer is asked for
-    # what it still holds; its samples wait with it, as lists (they are fed sorted by time
-    # when the wait ends, Daemon._release_deferred).  A JSON array's group is arrays, and
-    # ``list += array`` adds elementwise (numpy broadcasting): the first array to reach a
-    # held stream stopped the daemon with "operands could not be broadcast together"
-    # (found through test_shard_overload.py; the shard tests send single samples).
-    msgs = _messages(np.random.default_rng(16))[:6]  # line/a and line/b: arrays and singles
-    held = _daemon(tmp_path, "held")
-    for name in ("line/a/v", "line/b/v"):
-        held._deferred[name] = float("inf")
-    held.process(msgs)
-    assert not held.engines  # nothing fed while held
-    for name in ("line/a/v", "line/b/v"):
-        # The reference: the samples the messages carry (the stdlib's json), in order.
-        sent = [r for m in msgs if m.topic == name for r in _samples(m.payload)]
-        _spec, _unit, times, values, arrivals = held._deferred_samples[name]
-        assert times == [r["ts"] for r in sent] and values == [r["v"] for r in sent], name
-        assert len(arrivals) == len(sent)
-        assert all(type(v) is float for col in (times, values, arrivals) for v in col)
-    if held.journal is not None:
-        held.journal.close()
-
-
-def _samples(payload: bytes) -> list[dict[str, float]]:
-    doc = json.loads(payload)
-    return [{"ts": float(r["ts"]), "v": float(r["v"])} for r in (doc if isinstance(doc, list) else [doc])]

@@ -109,10 +109,9 @@ def test_a_held_stream_keeps_its_topic_through_a_reload_so_the_next_one_moves_it
     d = Daemon(load_config(str(config(3))), config_path=str(config(3)), metrics=Metrics())
     d._note_topic(topic, topic)
     d._deferred[topic] = float("inf")
-    d._deferred_samples[topic] = [None, "g", [1.0, 2.0], [500.0, 500.1], [1.0, 2.0]]
     d._set_shard(load_config(str(config(5))))  # still this shard's
     assert topic in d._deferred and d._topic_of.get(topic) == topic
-    d._set_shard(load_config(str(config(4))))  # moved away: its held samples go, counted
-    assert topic not in d._deferred and topic not in d._deferred_samples
-    dropped = d.metrics.messages_dropped.labels("other_shard")._value.get()
-    assert dropped == 2
+    d._set_shard(load_config(str(config(4))))  # moved away: it waits here no more
+    # (the samples parked for it stay in the cluster for its next owner:
+    # test_shard_parking.py)
+    assert topic not in d._deferred

@@ -458,7 +458,27 @@ def test_an_old_owner_held_back_at_a_reshard_hands_its_late_samples_over(tmp_pat
     _stalled_reshard(tmp_path, cluster, Plan(samples=1600, rate=100.0))
 
 
-def _stalled_reshard(tmp_path: Path, cluster: NatsCluster, plan: Plan) -> None:
+def test_shards_waiting_for_an_answer_go_on_taking_samples_at_a_small_unacknowledged_limit(
+        tmp_path: Path) -> None:
+    # The same stall on a cluster whose MQTT side sends a subscription at most 64
+    # unacknowledged messages.  A new owner waiting for the stopped shard's answer held
+    # its rounds unacknowledged (the waiting streams' samples were only in its memory), so
+    # after 64 messages NATS sent it nothing more, on any of its streams, asks for its own
+    # answers included: in one run of three two waiting shards waited on each other until
+    # cluster.handover_wait.  Now the waiting streams' samples are parked in the cluster
+    # and every round is acknowledged: shard 3 goes on taking its other streams.
+    own = NatsCluster(3, 3, base=tmp_path / "nats", max_ack_pending=64)
+    try:
+        own.start()
+    except RuntimeError as exc:
+        pytest.fail(f"cannot start the test NATS cluster: {exc}")
+    try:
+        _stalled_reshard(tmp_path, own, Plan(samples=3000, rate=100.0), watch=True)
+    finally:
+        own.stop()
+
+
+def _stalled_reshard(tmp_path: Path, cluster: NatsCluster, plan: Plan, *, watch: bool = False) -> None:
     r = _run(tmp_path, cluster, "stalled", plan, keepalive=30)
     names = plan.names()
     moving = {k: [s for s in names if partition_of(s, HASHED_LEVELS, 3) == k
@@ -466,6 +486,15 @@ def _stalled_reshard(tmp_path: Path, cluster: NatsCluster, plan: Plan) -> None:
     stalled = max(moving, key=lambda k: len(moving[k]))
     published: list[int] = [0]
     remapped_at: list[int] = []
+    # Streams shard 3 takes over from the shards that keep running (answered at once),
+    # and what it took of them while the stalled shard's streams waited (watch=True).
+    others = [s for s in names if partition_of(s, HASHED_LEVELS, 4) == 3 and s not in moving[stalled]]
+    watched: list[float] = []
+
+    def taken_by_3() -> float:
+        page = scrape(r.shard(3).port)
+        return sum(v for (n, lab), v in page.items()
+                   if n == "shiftwatch_samples_total" and dict(lab).get("stream") in others)
 
     def grow() -> None:
         _all_taking(r)  # as in the test above
@@ -481,7 +510,14 @@ def _stalled_reshard(tmp_path: Path, cluster: NatsCluster, plan: Plan) -> None:
             time.sleep(2.5)
             r.remap(4)
             remapped_at.append(published[-1])
-            time.sleep(9.0)
+            if watch:
+                time.sleep(3.0)
+                before = taken_by_3()
+                time.sleep(5.0)
+                watched.append(taken_by_3() - before)
+                time.sleep(1.0)
+            else:
+                time.sleep(9.0)
         finally:
             proc.send_signal(signal.SIGCONT)
 
@@ -493,6 +529,12 @@ def _stalled_reshard(tmp_path: Path, cluster: NatsCluster, plan: Plan) -> None:
         r.repartition(3)
     # The mapping changed while samples still flowed, so the stalled shard held some.
     assert remapped_at and remapped_at[0] < plan.samples - 200, remapped_at
+    if watch:
+        # Still publishing when the watch ended (8 s after the change, 100 a second) ...
+        assert remapped_at[0] + 900 < plan.samples, remapped_at
+        # ... and shard 3 took its other streams' samples meanwhile: 500 a stream were
+        # sent in the 5 s; a shard sent nothing more after 64 would show at most 64.
+        assert len(others) == 2 and watched and watched[0] >= 300, (others, watched)
     page = pages[stalled]
     other = sum(v for (n, lab), v in page.items()
                 if n == "shiftwatch_messages_dropped_total" and dict(lab).get("reason") == "other_shard")

@@ -1,0 +1,249 @@
+"""Samples of a stream that waits for its last writer are parked in the cluster.
+
+A stream that moved to a shard (the number of shards changed) waits there until
+the shard that wrote it last has passed on what it still held
+(``shiftwatch.handover``).  Its samples used to wait in the daemon's memory, and
+the rounds that brought them unacknowledged; NATS's MQTT side then sent the shard
+nothing more once it held ``max_ack_pending`` of them (the live case is
+``test_shards.py::test_shards_waiting_for_an_answer_go_on_taking_samples_at_a_small_unacknowledged_limit``).
+Now they are parked in the cluster (``ClusterState.park``) and the round is
+acknowledged; whoever loads the stream next, this daemon when the wait ends or
+another on an empty disk after a crash, feeds them after the journal, journals
+them and purges them.
+
+In-process daemons against a real nats-server with JetStream (one server, one
+replica).  The samples each check expects are read from the messages with the
+standard library's ``json``, the reference for what was sent.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from shiftwatch.broker import wait_until
+from shiftwatch.clusterstate import ClusterState
+from shiftwatch.config import load_config
+from shiftwatch.daemon import Daemon
+from shiftwatch.handover import MAGIC
+from shiftwatch.journal import JournalGroup
+from shiftwatch.metrics import Metrics
+from shiftwatch.mqtt import Message
+from shiftwatch.natsio import NatsIO
+from shiftwatch.partition import partition_of
+
+from .natskit import start_lone_server
+
+LEVELS = (2, 3, 4)
+NAME = "pk"
+
+
+def _owned_by_1_of_2(n: int) -> list[str]:
+    """Topics the NATS mapping for 2 partitions gives partition 1 (shiftwatch.partition)."""
+    out = [t for li in range(1, 5) for h in range(1, 9)
+           if partition_of(t := f"brackenfield/line{li}/head{h}/fill", LEVELS, 2) == 1]
+    assert len(out) >= n
+    return out[:n]
+
+
+@pytest.fixture
+def server(tmp_path: Path) -> Iterator[int]:
+    proc, port = start_lone_server(tmp_path, "parking")
+    yield port
+    proc.terminate()
+    proc.wait(10)
+
+
+def _io(port: int, who: str) -> NatsIO:
+    io = NatsIO([f"nats://127.0.0.1:{port}"], name=who, timeout=5.0)
+    io.start()
+
+    def connects() -> bool:
+        try:
+            io.connect()
+        except Exception:  # noqa: BLE001  JetStream not up yet
+            return False
+        return True
+
+    assert wait_until(connects, 30)
+    return io
+
+
+def _old_writer(port: int, topic: str, n: int) -> None:
+    """Shard 0 wrote the stream's journal last, moments ago: ``n`` samples, times 0 to n - 1."""
+    io = _io(port, "old-writer")
+    try:
+        cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="w-old",
+                          shard=0)
+        cs.setup()
+        t = np.arange(n, dtype=float)
+        assert cs.journal([JournalGroup(topic, "g", t, 500.0 + 0.0 * t, t, "brackenfield/+/+/fill")]) == []
+    finally:
+        io.close()
+
+
+def _daemon(tmp_path: Path, port: int, name: str, handover_wait: float = 60.0) -> Daemon:
+    path = tmp_path / f"{name}.yaml"
+    path.write_text(
+        "streams:\n  - {topic: 'brackenfield/+/+/fill', format: json, value: v, time: ts, unit: g}\n"
+        f"broker: {{client_id: {name}}}\n"
+        f"metrics: {{listen: '127.0.0.1:0'}}\nstate: {{dir: '{tmp_path / name}', keep: cluster}}\n"
+        f"cluster: {{servers: ['nats://127.0.0.1:{port}'], name: {NAME}, replicas: 1, "
+        f"handover_wait: {handover_wait}s, redelivery_wait: 1s, lease: 3s}}\n"
+        "shard: {number: 1, of: 2, topic_prefix: 'part/{number}', hashed_levels: [2, 3, 4]}\n")
+    d = Daemon(load_config(str(path)), config_path=str(path), metrics=Metrics())
+    d._join_cluster()
+    assert d.cluster is not None and d.handover is not None
+    return d
+
+
+def _close(d: Daemon) -> None:
+    if d.lease is not None:
+        d.lease.release()
+    if d.nats is not None:
+        d.nats.close()
+    if d.journal is not None:
+        d.journal.close()
+
+
+def _single(topic: str, t: float, v: float) -> Message:
+    return Message(topic, json.dumps({"ts": t, "v": v}).encode(), time.time(), 0, 0)
+
+
+def _array(topic: str, t0: float, vs: list[float]) -> Message:
+    return Message(topic, json.dumps([{"ts": t0 + j, "v": v} for j, v in enumerate(vs)]).encode(),
+                   time.time(), 0, 0)
+
+
+def _sent(msgs: list[Message], topic: str) -> tuple[list[float], list[float]]:
+    """The reference: the samples the messages carry, read with the stdlib's json."""
+    times, values = [], []
+    for m in msgs:
+        if m.topic != topic:
+            continue
+        doc = json.loads(m.payload)
+        for r in doc if isinstance(doc, list) else [doc]:
+            times.append(float(r["ts"]))
+            values.append(float(r["v"]))
+    return times, values
+
+
+def _parked(port: int, topic: str) -> tuple[list[float], list[float], int]:
+    io = _io(port, "reader")
+    try:
+        cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="reader")
+        r = cs.load([topic])[topic]
+        times = [t for g in r.parked for t in g.times.tolist()]
+        values = [v for g in r.parked for v in g.values.tolist()]
+        return times, values, r.parked_last
+    finally:
+        io.close()
+
+
+def _journaled(port: int, topic: str) -> list[float]:
+    io = _io(port, "reader2")
+    try:
+        cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="reader2")
+        return [t for g in cs.load([topic])[topic].groups for t in g.times.tolist()]
+    finally:
+        io.close()
+
+
+def _counter(d: Daemon, name: str, **labels: str) -> float:
+    value = d.metrics.registry.get_sample_value(name, labels)
+    return 0.0 if value is None else float(value)
+
+
+def test_a_waiting_stream_s_samples_are_parked_and_its_round_is_done(tmp_path: Path, server: int) -> None:
+    a_topic, b_topic = _owned_by_1_of_2(2)
+    for topic in (a_topic, b_topic):
+        _old_writer(server, topic, 100)
+    rng = np.random.default_rng(21)
+    x = np.round(500.0 + 0.4 * rng.standard_normal(400), 4).tolist()
+    # Arrays and single samples of both streams in one round (a JSON array's group is
+    # arrays, a single sample's is lists: the first array to reach a held stream once
+    # stopped the daemon with "operands could not be broadcast together").
+    msgs = [_array(a_topic, 100.0, x[0:150]), _single(b_topic, 100.0, x[150]),
+            _single(a_topic, 250.0, x[151]), _array(b_topic, 101.0, x[152:352])]
+    d = _daemon(tmp_path, server, "parker")
+    try:
+        d.process(msgs)
+        assert sorted(d._deferred) == sorted([a_topic, b_topic])  # both wait for shard 0
+        assert not d.engines  # nothing fed while they wait
+        assert d._held_round is None  # the round is done: its messages are acknowledged
+        assert _counter(d, "shiftwatch_samples_parked_total") == 352
+    finally:
+        _close(d)
+    for topic in (a_topic, b_topic):
+        times, values, last = _parked(server, topic)
+        assert last > 0
+        assert (times, values) == _sent(msgs, topic), topic
+
+
+def test_parked_samples_are_fed_in_time_order_when_the_wait_ends(tmp_path: Path, server: int) -> None:
+    [topic] = _owned_by_1_of_2(1)
+    _old_writer(server, topic, 100)
+    d = _daemon(tmp_path, server, "release")
+    try:
+        first = [_array(topic, 100.0, [500.0] * 50)]
+        d.process(first)
+        assert topic in d._deferred and topic not in d.engines
+        second = [_array(topic, 150.0, [500.1] * 50)]
+        d.process(second)
+        # The old owner wrote samples 100 to 119 meanwhile (its late ones), before the answer.
+        io = _io(server, "late-writer")
+        try:
+            cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="w-old",
+                              shard=0)
+            cs.load([topic])
+            t = np.arange(100.0, 120.0)
+            assert cs.journal([JournalGroup(topic, "g", t, 499.9 + 0.0 * t, t, "brackenfield/+/+/fill")]) == []
+        finally:
+            io.close()
+        # Shard 0's answer, as it comes by plain NATS (shiftwatch.handover's format).
+        answer = {"answer": [topic], "shard": 0, "writer": d.writer_id}
+        d._handover_message(MAGIC + json.dumps(answer).encode(), "from the test", time.time())
+        d._release_deferred()
+        eng = d.engines[topic]
+        # The journal's 120 samples, then the parked 100 to 199, whose first 20 (times 100
+        # to 119, taken by the old owner first) are set aside as duplicates.
+        assert eng.samples_total == 200, eng.samples_total
+        assert sum(eng.rejected_total.values()) == 20, eng.rejected_total
+        assert _parked(server, topic)[2] == 0  # purged
+        assert _counter(d, "shiftwatch_stream_handovers_total", outcome="answered") == 1
+        # In the journal now as this shard fed them (the duplicates too: a load feeds the
+        # journal to a new engine, which sets them aside again).
+        journaled = _journaled(server, topic)
+        assert journaled == [float(i) for i in range(120)] + [float(i) for i in range(100, 200)]
+    finally:
+        _close(d)
+
+
+def test_parked_samples_survive_the_shard_and_reach_the_next_loader_on_an_empty_disk(
+        tmp_path: Path, server: int) -> None:
+    [topic] = _owned_by_1_of_2(1)
+    _old_writer(server, topic, 100)
+    first = _daemon(tmp_path, server, "first", handover_wait=1.0)
+    try:
+        first.process([_array(topic, 100.0, [500.0] * 60)])
+        assert topic in first._deferred and first._held_round is None
+    finally:
+        _close(first)  # gone before the wait ended: no snapshot, nothing fed
+    time.sleep(1.2)  # past cluster.handover_wait and redelivery_wait: the next loader does not wait
+    second = _daemon(tmp_path, server, "second-on-an-empty-disk", handover_wait=1.0)
+    try:
+        second.process([_array(topic, 160.0, [500.0] * 40)])
+        assert topic not in second._deferred
+        eng = second.engines[topic]
+        assert eng.samples_total == 200 and not sum(eng.rejected_total.values()), (
+            eng.samples_total, eng.rejected_total)
+        assert _parked(server, topic)[2] == 0
+        assert _journaled(server, topic) == [float(i) for i in range(200)]
+    finally:
+        _close(second)
