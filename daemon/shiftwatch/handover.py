@@ -22,14 +22,16 @@ carries the stream's samples: hence the stream's own topic, and a payload no
 sensor sends (:data:`MAGIC` first).  When the old owner takes the ask from its
 queue it has taken all of the stream's earlier samples and written them to the
 journal.  It then sends an *answer*, and the new owner loads the stream with
-everything the old one wrote.
+everything the old one wrote, then the samples of it that reached the new owner
+while it waited (parked in the cluster meanwhile, so that their rounds could be
+acknowledged: see ``shiftwatch.clusterstate``).
 
 The answer goes by plain NATS, on ``<cluster.name>.handover.<the asker's writer
 id>``, which the asker subscribes to through its cluster connection, not over
-MQTT: while it waits, the asker holds its rounds' acknowledgements, and once
-NATS's MQTT side has sent it ``max_ack_pending`` unacknowledged messages it
-sends no more on that subscription, so an answer queued behind them would
-never come (the wait would run out instead).  A plain NATS message is sent at
+MQTT: a message queued behind others on an MQTT subscription comes only as fast
+as they are acknowledged, and NATS's MQTT side sends a subscription no more once
+``max_ack_pending`` of its messages are unacknowledged (the first version held
+the waiting streams' rounds unacknowledged, and its answers never came).  A plain NATS message is sent at
 most once: one that is lost costs the wait.  An old owner that never answers (stopped, or gone with a
 shrinking cluster) costs the new owner ``cluster.handover_wait``, after which it
 loads the stream as it is.  An old owner that still owns the stream by its own

@@ -543,7 +543,8 @@ def _stalled_reshard(tmp_path: Path, cluster: NatsCluster, plan: Plan, *, watch:
     moved_short = sum(plan.samples - min(int(counts.get(s, 0)), plan.samples) for s in moving[stalled])
     print(tally.line() + f"; shard {stalled} (stopped 11.5 s, {len(moving[stalled])} streams moving away, "
           f"{moved_short} of their samples lost): other shards' samples {other:.0f}, handed over "
-          f"{handed:.0f}; handovers {handovers}")
+          f"{handed:.0f}; handovers {handovers}"
+          + (f"; shard 3 took {watched} of its other streams in the 5 s watched" if watch else ""))
     assert tally.shifts_missed == 0, tally.line()
     assert tally.shifts_with_two_ids == 0, tally.line()
     # The stalled shard wrote the moving streams' late samples to their journals (how many
