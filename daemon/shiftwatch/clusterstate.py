@@ -19,8 +19,13 @@ The same two parts as the local state directory, with the same guarantee
 - **Snapshots**: a key-value bucket ``<name>_state``, one key per stream, its
   engine state (``statestore.encode_state``), the journal sequence it
   includes, the ``topic`` filter of its config entry and the alert records it
-  had made that the broker had not yet acknowledged.  After a snapshot the
-  stream's journal subject is purged down to its last message (which keeps the
+  had made that the broker had not yet acknowledged.  A snapshot is saved only
+  while the stream's journal still ends at the sequence this daemon wrote or
+  read, and the bucket's entry is still the revision it read or wrote (a
+  key-value update with the expected last revision): a daemon whose engine of
+  the stream is stale (another has written the stream since) saves nothing.
+  After a snapshot the stream's journal subject is purged up to the
+  snapshot's sequence, never past it (the last message stays: it keeps the
   subject's last sequence for the header above).
 - **Parked samples**: a JetStream stream ``<name>_parked``, one subject per
   stream, ``<name>.parked.<key>``.  A stream that moved to this shard waits
@@ -128,6 +133,10 @@ class ClusterState:
         self.seq: dict[str, int] = {}
         #: Sequence each stream's last snapshot includes.
         self._saved: dict[str, int] = {}
+        #: Revision of each stream's entry in the bucket, as read or written here (0: none).
+        self._rev: dict[str, int] = {}
+        #: Streams the last :meth:`save` refused: written by another daemon since.
+        self.refused: list[str] = []
 
     def subject(self, name: str) -> str:
         return f"{self.name}.journal.{stream_key(name)}"
@@ -174,6 +183,7 @@ class ClusterState:
         r = Restored()
         subject = self.subject(name)
         entry = await self.io.kv_get(self.bucket, stream_key(name))
+        self._rev[name] = 0 if entry is None else entry.revision
         after = 0
         if entry is not None:
             try:
@@ -274,9 +284,13 @@ class ClusterState:
                                                list[tuple[str, bytes, int]]]]) -> int:
         """Save the states of the streams given (state, filter, unit, records not yet
         acknowledged), each with the journal sequence it includes, then purge their
-        journal subjects.  Returns how many were saved; raises ClusterError."""
+        journal subjects up to that sequence.  A stream another daemon has written
+        since (its journal ends past this daemon's sequence, or its entry in the bucket
+        is not the revision this daemon knows) is not saved: it is listed in
+        :attr:`refused`.  Returns how many were saved; raises ClusterError."""
         now = time.time()
         sem = asyncio.Semaphore(PARALLEL)
+        refused: list[str] = []
 
         async def one(name: str, state: dict[str, Any], f: str | None, unit: str | None,
                       records: list[tuple[str, bytes, int]]) -> None:
@@ -284,11 +298,23 @@ class ClusterState:
             doc = {"format": _FORMAT, "schema_version": SCHEMA_VERSION, "stream": name, "filter": f,
                    "unit": unit, "seq": seq, "saved_at": now, "state": encode_state(dict(state)),
                    "records": [[t, base64.b64encode(p).decode("ascii"), q] for t, p, q in records]}
+            body = json.dumps(doc, separators=(",", ":")).encode("utf-8")
             async with sem:
-                await self.io.kv_put(self.bucket, stream_key(name),
-                                     json.dumps(doc, separators=(",", ":")).encode("utf-8"))
+                last, _ = await self.io.last_seq(self.stream, self.subject(name))
+                if last != seq:
+                    refused.append(name)
+                    return
+                rev = self._rev.get(name, 0)
+                if rev:
+                    new = await self.io.kv_update(self.bucket, stream_key(name), body, last=rev)
+                else:
+                    new = await self.io.kv_create(self.bucket, stream_key(name), body)
+                if new is None:
+                    refused.append(name)
+                    return
+                self._rev[name] = new
                 if seq > self._saved.get(name, 0):
-                    await self.io.purge_subject(self.stream, self.subject(name), keep=1)
+                    await self.io.purge_subject(self.stream, self.subject(name), keep=None, upto=seq - 1)
                 self._saved[name] = seq
 
         async def go() -> None:
@@ -301,7 +327,8 @@ class ClusterState:
         except Exception as exc:  # noqa: BLE001  nats-py's own errors, as one line
             raise ClusterError(f"NATS cluster {self.io.where}: snapshot to bucket {self.bucket} "
                                f"failed ({type(exc).__name__}: {exc})") from None
-        return len(entries)
+        self.refused = sorted(refused)
+        return len(entries) - len(refused)
 
 
 class JournalRound:

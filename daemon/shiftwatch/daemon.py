@@ -2159,6 +2159,20 @@ class Daemon:
             return False
         self._fed_since_snapshot.difference_update(names)
         self.metrics.snapshots.inc()
+        stale = [n for n in self.cluster.refused if n in self.engines]
+        if stale:
+            # Written by another daemon since this one last wrote or read them (they moved,
+            # and this daemon had not let them go): its engines of them are stale.  Dropped
+            # here; samples of them that still come load them afresh, or are refused by the
+            # journal and set aside.
+            for n in stale:
+                del self.engines[n]
+                self._filters.pop(n, None)
+                self._levels_due.pop(n, None)
+                self.metrics.remove_stream(n)
+            self.log.warning("%d stream(s) were written by another daemon since this one last did "
+                             "(e.g. %s): not saved over its work; their engines here are dropped",
+                             len(stale), _printable(stale[0]))
         return True
 
     def _journal_half_full(self) -> bool:

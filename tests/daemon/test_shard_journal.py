@@ -133,3 +133,47 @@ def test_a_group_stored_whose_acknowledgement_was_lost_is_not_taken_for_another_
     assert other.journal([g2]) == []
     cs.seq[name] = stored
     assert [x.stream for x in cs.journal([g2])] == [name]
+
+
+def test_a_snapshot_of_a_stream_another_daemon_wrote_since_is_refused_and_purges_nothing(
+        cluster: ClusterState) -> None:
+    """A daemon whose engine of a stream is stale (another daemon has written the stream's
+    journal since: it moved, and this one has not let it go yet) must not save it.  Its
+    snapshot used to overwrite the other's and purge the journal down to its last message,
+    so a later load had the stale state and lost the other's samples but the last.
+    The fence is the same as the journal's: the stream's journal must still end where
+    this daemon left it, and the bucket's entry must still be the revision it read or
+    wrote (a key-value update with the expected last revision, NATS JetStream's
+    ``Nats-Expected-Last-Subject-Sequence`` on the bucket's stream)."""
+    cs = cluster
+    name = "plant/7/v"
+    assert cs.journal([_group(7, t0=0.0)]) == []
+    assert cs.save({name: ({"n": 5}, "plant/+/v", None, [])}) == 1
+    other = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w2")
+    other.load([name])
+    assert other.journal([_group(7, t0=5.0)]) == []
+    assert other.journal([_group(7, t0=10.0)]) == []
+    # The stale daemon's snapshot: refused, nothing saved, nothing purged.
+    assert cs.save({name: ({"n": 99}, "plant/+/v", None, [])}) == 0
+    assert cs.refused == [name]
+    reader = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3")
+    r = reader.load([name])[name]
+    assert r.state == {"n": 5}
+    assert [t for g in r.groups for t in g.times.tolist()] == [float(t) for t in range(5, 15)]
+    # The other daemon's own snapshot goes through, and a later stale one is refused too.
+    assert other.save({name: ({"n": 15}, "plant/+/v", None, [])}) == 1
+    assert cs.save({name: ({"n": 99}, "plant/+/v", None, [])}) == 0
+    assert reader.load([name])[name].state == {"n": 15}
+
+
+def test_a_snapshot_purges_only_up_to_what_it_includes(cluster: ClusterState) -> None:
+    """The purge after a snapshot keeps the journal messages after the snapshot's sequence,
+    whoever wrote them: purging down to the last message would delete another daemon's."""
+    cs = cluster
+    name = "plant/8/v"
+    for t0 in (0.0, 5.0, 10.0):
+        assert cs.journal([_group(8, t0=t0)]) == []
+    assert cs.save({name: ({"n": 15}, "plant/+/v", None, [])}) == 1
+    r = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3").load([name])[name]
+    assert r.state == {"n": 15} and r.groups == []
+    assert _stored(cs) >= 1  # the last message stays: it carries the subject's last sequence

@@ -1,4 +1,6 @@
-"""Samples of a stream that waits for its last writer are parked in the cluster.
+"""Moved streams in the cluster: samples parked while a stream waits, stale snapshots.
+
+Samples of a stream that waits for its last writer are parked in the cluster.
 
 A stream that moved to a shard (the number of shards changed) waits there until
 the shard that wrote it last has passed on what it still held
@@ -9,7 +11,8 @@ nothing more once it held ``max_ack_pending`` of them (the live case is
 Now they are parked in the cluster (``ClusterState.park``) and the round is
 acknowledged; whoever loads the stream next, this daemon when the wait ends or
 another on an empty disk after a crash, feeds them after the journal, journals
-them and purges them.
+them and purges them.  And a shard whose engine of a stream is stale (another
+daemon has written the stream since) does not save it over the other's work.
 
 In-process daemons against a real nats-server with JetStream (one server, one
 replica).  The samples each check expects are read from the messages with the
@@ -247,3 +250,30 @@ def test_parked_samples_survive_the_shard_and_reach_the_next_loader_on_an_empty_
         assert _journaled(server, topic) == [float(i) for i in range(200)]
     finally:
         _close(second)
+
+
+def test_a_stale_engine_is_not_saved_over_the_work_of_the_stream_s_new_writer(
+        tmp_path: Path, server: int) -> None:
+    # A shard that still feeds a stream another daemon now writes (the mapping changed
+    # before this shard's reload) snapshotted it over the new writer's snapshot and purged
+    # the journal down to its last message.  Now the snapshot is refused
+    # (ClusterState.save, test_shard_journal.py) and the stale engine dropped.
+    [topic] = _owned_by_1_of_2(1)
+    d = _daemon(tmp_path, server, "stale")
+    try:
+        d.process([_array(topic, 0.0, [500.0] * 50)])
+        assert topic in d.engines
+        io = _io(server, "new-writer")
+        try:
+            cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="w-new",
+                              shard=0)
+            cs.load([topic])
+            t = np.arange(50.0, 80.0)
+            assert cs.journal([JournalGroup(topic, "g", t, 500.0 + 0.0 * t, t, "brackenfield/+/+/fill")]) == []
+        finally:
+            io.close()
+        assert d._cluster_snapshot()
+        assert topic not in d.engines
+        assert _journaled(server, topic) == [float(i) for i in range(80)]  # nothing purged
+    finally:
+        _close(d)
