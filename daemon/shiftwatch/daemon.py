@@ -331,9 +331,9 @@ class Daemon:
         # A round the cluster did not take (its state could not be loaded, or its samples
         # not journaled): (what failed, its messages, the groups fed, a flag), retried first.
         self._held_round: tuple[str, list[Message], list[JournalGroup], bool] | None = None
-        # Streams another daemon wrote moments ago (they moved here): their samples wait
-        # until that daemon has had time to finish its own (see _cluster_load), and the
-        # rounds' acknowledgements wait with them.
+        # Streams another daemon wrote moments ago (they moved here), each with the time its
+        # wait ends: their samples are parked in the cluster until that daemon has had time
+        # to finish its own (see _cluster_load, _park); the rounds are acknowledged as usual.
         self.writer_id = secrets.token_hex(6)
         self._deferred: dict[str, float] = {}
         # A shard with its state in the cluster asks the shard that wrote a moved stream
