@@ -174,6 +174,9 @@ def cmd_replay(args: argparse.Namespace) -> int:
     if failed:
         return EXIT_USAGE
     if args.report is None:
+        if args.report_charts is not None:
+            _err("--report-charts needs --report DIR: it sets how many charts the report holds")
+            return EXIT_USAGE
         return _replay(args, cfg, None)
     from shiftwatch.report import MAX_CHARTS, ReplayReport, ReportError
 

@@ -171,3 +171,15 @@ def test_the_report_is_readable_as_the_umask_allows(shiftwatch_cmd: list[str], t
                          capture_output=True, text=True, timeout=120, check=False, cwd=tmp_path)
     assert res.returncode == 0, res.stderr[-2000:]
     assert (out / "report.html").stat().st_mode & 0o777 == 0o644
+
+
+def test_report_charts_without_report_is_refused_before_the_replay(cli, tmp_path: Path) -> None:
+    """``--report-charts N`` sets how many charts the report holds; given without
+    ``--report DIR`` it was silently ignored (exit 0, no report), so a user who meant to get
+    a report found none only after the replay.  Refused now, as a usage error, before any
+    row is read (argparse's convention: exit 2 for a command line it cannot use)."""
+    data = write_steps(tmp_path / "one.csv", ("tank1",))
+    res = cli("replay", "--jobs", "1", "--report-charts", "3", str(data))
+    assert res.returncode == 2, (res.returncode, res.stderr[-2000:])
+    assert "--report-charts needs --report DIR" in res.stderr
+    assert res.stdout == ""  # nothing replayed
