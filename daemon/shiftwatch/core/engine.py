@@ -1331,19 +1331,20 @@ class StreamEngine:
         win = self._window
         cap = win.capacity
         wb = win.rows
+        # The window's rows as 1-d views (the block never moves): an element set through a
+        # plain integer index costs about half of one through a (row, column) tuple.
+        wvals, wtimes = wb[0], wb[1]
         sqrt = math.sqrt
         log1p = math.log1p
         truediv = operator.truediv
         test = self._test
         # The bank's sums while its recursion runs here (None: the test's own update_one).
         c: list[float] | None = None
-        ks: tuple[float, ...] = ()
-        hs: tuple[float, ...] = ()
         h2: tuple[float, ...] = ()
-        m = 0
+        khs: tuple[tuple[int, int, float, float], ...] = ()  # each chart: its two sums' places, k, h
         thr = 1.0
         if test is not None:
-            c, ks, hs, h2, m, thr = _small_bank(test)
+            c, h2, khs, thr = _small_bank(test)
         dirty = False  # c holds updates the test has not been handed yet
         kept = 0
         pend_pos = -1  # batch position of the held sample (-1: held from an earlier batch)
@@ -1400,7 +1401,7 @@ class StreamEngine:
                     if test is None and self._test is not None:
                         test = self._test
                     if test is not None:
-                        c, ks, hs, h2, m, thr = _small_bank(test)
+                        c, h2, khs, thr = _small_bank(test)
                     n = ys.n
                     sd0 = -1.0
                 else:
@@ -1466,8 +1467,8 @@ class StreamEngine:
             # Window.push
             wn = win._n
             if wn < cap:
-                wb[0, wn] = xv
-                wb[1, wn] = tv
+                wvals[wn] = xv
+                wtimes[wn] = tv
                 win._n = wn + 1
             else:
                 win.push(xv, tv)
@@ -1476,19 +1477,29 @@ class StreamEngine:
             else:
                 if test is None:
                     test = self._young_test()
-                    c, ks, hs, h2, m, thr = _small_bank(test)
+                    c, h2, khs, thr = _small_bank(test)
                 zc = nclip if z < nclip else (clip if z > clip else z)
                 stat = -1.0  # the test's statistic, worked out when needed
                 if c is not None:
                     # MultiCusumTest._update_small on one sample
+                    # (a sum at zero never exceeds its h, which is positive, so each side
+                    # is compared with h only when it is above zero)
                     tripped = False
-                    for j in range(m):
-                        up = c[j] + zc - ks[j]
-                        c[j] = up if up > 0.0 else 0.0
-                        lo = c[m + j] - zc - ks[j]
-                        c[m + j] = lo if lo > 0.0 else 0.0
-                        if c[j] > hs[j] or c[m + j] > hs[j]:
-                            tripped = True
+                    for j, mj, kj, hj in khs:
+                        up = c[j] + zc - kj
+                        if up > 0.0:
+                            c[j] = up
+                            if up > hj:
+                                tripped = True
+                        else:
+                            c[j] = 0.0
+                        lo = c[mj] - zc - kj
+                        if lo > 0.0:
+                            c[mj] = lo
+                            if lo > hj:
+                                tripped = True
+                        else:
+                            c[mj] = 0.0
                     if tripped:
                         cast(MultiCusumTest, test).set_small_sums(c, True)
                         dirty = False
@@ -2535,17 +2546,25 @@ def _batch_position(t: FloatArray, idx: NDArray[np.intp], time: float) -> int:
     return int(idx[j]) if j < t.shape[0] and t[j] == time else -1
 
 
-def _small_bank(test: SequentialTest) -> tuple[list[float] | None, tuple[float, ...], tuple[float, ...],
-                                              tuple[float, ...], int, float]:
-    """For :meth:`StreamEngine._watch_young_fast`: a CUSUM bank's sums as a list with its
-    charts' k, h and h twice over (upper, lower), and the test's threshold; the sums are
-    None for a test that updates itself (any other test, or a bank of one chart)."""
+def _small_bank(test: SequentialTest) -> tuple[list[float] | None, tuple[float, ...],
+                                              tuple[tuple[int, int, float, float], ...], float]:
+    """For :meth:`StreamEngine._young_loop`: a CUSUM bank's sums as a list, its charts' h
+    twice over (upper, lower), each chart's row for the recursion (:func:`_chart_rows`),
+    and the test's threshold; the sums are None for a test that updates itself (any other
+    test, or a bank of one chart)."""
     small = getattr(test, "small_sums", None)
     c = small() if small is not None else None
     if c is None:
-        return None, (), (), (), 0, test.threshold
+        return None, (), (), test.threshold
     ks, hs = test.ks, test.hs  # type: ignore[attr-defined]
-    return c, ks, hs, hs + hs, len(ks), test.threshold
+    return c, hs + hs, _chart_rows(ks, hs), test.threshold
+
+
+def _chart_rows(ks: tuple[float, ...], hs: tuple[float, ...]) -> tuple[tuple[int, int, float, float], ...]:
+    """For the young loop's CUSUM recursion: each chart's place among the sums (upper,
+    lower), its k and its h."""
+    m = len(ks)
+    return tuple((j, m + j, k, h) for j, (k, h) in enumerate(zip(ks, hs)))
 
 
 def _young_from(values: FloatArray) -> SelfStart:

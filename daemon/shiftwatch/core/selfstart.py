@@ -504,14 +504,27 @@ def split_screen(values: FloatArray, lengths: NDArray[np.intp], min_segment: int
     nf = ns.astype(np.float64)
     mean = c[np.maximum(ns, 1) - 1] / nf  # split_evidence's total / n, per row
     ks = np.arange(m, big - m + 1, dtype=np.float64)
-    dev = c[m - 1: big - m] - ks * mean[:, None]
-    valid = ks <= (nf - m)[:, None]
-    weight = np.where(valid, ks * (nf[:, None] - ks), 1.0)
-    explained = np.where(valid, dev * dev * nf[:, None] / weight, 0.0)
-    e = explained.max(axis=1)
-    d = v - mean[:, None]
-    d = np.where(np.arange(big) < ns[:, None], d, 0.0)
-    ss = (d * d).sum(axis=1)
+    col = nf[:, None]
+    # The arrays are worked in place and the cells beyond a row's length are zeroed by
+    # multiplying with the row's mask, not by np.where, which broadcasts its scalar cell by
+    # cell (a call took 4 to 5 times as long).  Every cell a row uses holds the same float as
+    # before (and as split_evidence's): dev * dev * n / (k (n - k)), and the squares
+    # summed in the same order, the ones beyond the row's length zero.
+    with np.errstate(invalid="ignore", over="ignore"):
+        dev = ks * mean[:, None]
+        np.subtract(c[m - 1: big - m], dev, out=dev)
+        np.multiply(dev, dev, out=dev)
+        np.multiply(dev, col, out=dev)
+        weight = col - ks
+        np.multiply(ks, weight, out=weight)
+        valid = ks <= (nf - m)[:, None]
+        np.divide(dev, weight, out=dev, where=valid)
+        dev *= valid  # a cell left undivided: finite times 0 (an inf gives nan: split_evidence decides)
+        e = dev.max(axis=1)
+        d = v - mean[:, None]
+        d *= np.arange(big) < ns[:, None]
+        np.multiply(d, d, out=d)
+        ss = d.sum(axis=1)
     rss = ss * (1.0 - _SCREEN_SS) - e
     crit = np.array([_split_t2_none(int(n), m, p_below) if n >= 2 * m + 1 else 0.0 for n in ns.tolist()])
     with np.errstate(invalid="ignore", over="ignore"):
