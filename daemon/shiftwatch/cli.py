@@ -334,6 +334,10 @@ def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for:
         summary += f"; {skipped} unreadable row(s) skipped"
     if result.file_notes:
         summary += f"; {result.file_notes} file(s) not valid UTF-8 (characters replaced)"
+    if result.repeated_hour:
+        summary += (f"; {result.repeated_hour} time(s) in the hour repeated when the clocks went back "
+                    f"in {args.timezone} read as its second occurrence (their stream's times went back "
+                    "there)")
     print(summary, file=sys.stderr)
     if report is not None:
         from shiftwatch.report import ReportError

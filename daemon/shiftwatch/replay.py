@@ -51,6 +51,7 @@ from shiftwatch.sources import (
     Block,
     CsvFormatError,
     OpenFiles,
+    RepeatedHour,
     Source,
     open_sources,
     parquet_pieces,
@@ -116,6 +117,9 @@ class ReplayResult:
     read_problem_count: int
     #: Of read_problem_count, the notes about whole files (not valid UTF-8), not rows.
     file_notes: int = 0
+    #: Times without an offset read as the second occurrence of the hour repeated when the
+    #: clocks went back (:class:`shiftwatch.sources.RepeatedHour`).
+    repeated_hour: int = 0
 
     @property
     def problems(self) -> list[str]:
@@ -144,8 +148,14 @@ class _Feeder:
     """
 
     def __init__(self, sources: list[Source], settings_for: Callable[[str], DetectionSettings],
-                 unit_for: Callable[[str], str | None], trace_options: dict[str, int] | None) -> None:
+                 unit_for: Callable[[str], str | None], trace_options: dict[str, int] | None,
+                 tz: tzinfo | None = None) -> None:
         self.sources = sources
+        # With --timezone: each stream's last time as read, to tell the second occurrence of
+        # the hour repeated when the clocks go back by the stream's own order.
+        self.repeated = RepeatedHour(tz) if tz is not None else None
+        self.last_time: dict[str, float] = {}
+        self.repeated_count = 0
         self.settings_for = settings_for
         self.unit_for = unit_for
         self.trace_options = trace_options
@@ -180,6 +190,10 @@ class _Feeder:
 
     def add(self, parts: Iterable[tuple[str, FloatArray, FloatArray, IntArray]]) -> None:
         for name, t, v, p in parts:
+            if self.repeated is not None and t.shape[0]:
+                t = t.copy()  # (a view of the chunk's, or of a slot shared with another process)
+                self.repeated_count += self.repeated.adjust(t, self.last_time.get(name, -np.inf))
+                self.last_time[name] = float(t[-1])
             held = self.held.get(name)
             if held is None:
                 held = self.held[name] = []
@@ -256,8 +270,8 @@ class _Feeder:
                                       eng.samples_total, dict(eng.records_total), dict(eng.rejected_total), trace)
         return out
 
-    def read_summary(self) -> tuple[int, list[tuple[int, int, int, int, str]], int, dict[int, str]]:
-        return self.rows, self.read_problems, self.read_count, self.notes
+    def read_summary(self) -> tuple[int, list[tuple[int, int, int, int, str]], int, dict[int, str], int]:
+        return self.rows, self.read_problems, self.read_count, self.notes, self.repeated_count
 
 
 def _merge(parts: list[tuple[dict[str, StreamOutcome], tuple[Any, ...]]]) -> ReplayResult:
@@ -268,19 +282,22 @@ def _merge(parts: list[tuple[dict[str, StreamOutcome], tuple[Any, ...]]]) -> Rep
     kept: list[tuple[int, int, int, int, str]] = []
     count = 0
     notes: dict[int, str] = {}
-    for outcome, (r, k, c, n) in parts:
+    repeated = 0
+    for outcome, (r, k, c, n, h) in parts:
         streams.update(outcome)
         rows += r
         kept += k
         count += c
         notes.update(n)
+        repeated += h
     kept += [(f, 0, 0, 0, note) for f, note in notes.items()]
     kept.sort(key=lambda x: x[:4])
     records: list[AlertRecord] = []
     for name in sorted(streams):
         records += streams[name].records
     records.sort(key=_record_key)
-    return ReplayResult(records, streams, rows, [x[4] for x in kept[:KEEP_PROBLEMS]], count, len(notes))
+    return ReplayResult(records, streams, rows, [x[4] for x in kept[:KEEP_PROBLEMS]], count, len(notes),
+                        repeated)
 
 
 # ---------------------------------------------------------------------------
@@ -321,7 +338,7 @@ def replay_files(paths: Iterable[str | Path], settings_for: Callable[[str], Dete
         unit_for = lambda stream: None
     jobs = _jobs_the_files_allow(jobs)
     if jobs <= 1 or _small(sources, chunk_bytes):
-        feeder = _Feeder(sources, settings_for, unit_for, trace_options)
+        feeder = _Feeder(sources, settings_for, unit_for, trace_options, tz)
         with OpenFiles() as opened:
             for task in tasks(sources, tz, chunk_bytes):
                 block = parse_task(task, sources, tz, opened)
@@ -489,7 +506,7 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
     """
     try:
         _end_with_parent(parent)
-        feeder = _Feeder(sources, settings_for, unit_for, trace_options)
+        feeder = _Feeder(sources, settings_for, unit_for, trace_options, tz)
         opened = OpenFiles()
         own: deque[tuple[int, list[Any]]] = deque()
         next_own = me
@@ -763,6 +780,8 @@ def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone
     rows = 0
     noted: set[int] = set()
     by_file: dict[int, list[str]] = {}
+    repeated = RepeatedHour(tz) if tz is not None else None  # as replay_files reads that hour
+    last_time: dict[str, float] = {}
     with OpenFiles() as opened:  # as in replay_files: a Parquet group's pieces read in turn
         for task in tasks(sources, tz):
             block = parse_task(task, sources, tz, opened)
@@ -774,6 +793,10 @@ def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone
                 if only is not None and name != only:
                     streams.setdefault(name, StreamSeries(sources))
                     continue
+                if repeated is not None and t.shape[0]:
+                    t = t.copy()
+                    repeated.adjust(t, last_time.get(name, -np.inf))
+                    last_time[name] = float(t[-1])
                 ser = streams.get(name)
                 if ser is None:
                     ser = streams[name] = StreamSeries(sources)

@@ -34,7 +34,7 @@ import os
 import stat
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
-from datetime import datetime, timedelta, tzinfo
+from datetime import UTC, datetime, timedelta, tzinfo
 from pathlib import Path
 from typing import Any, BinaryIO, Self
 
@@ -86,6 +86,103 @@ def time_zone(name: str | None) -> tzinfo | None:
     except (zoneinfo.ZoneInfoNotFoundError, ValueError):
         raise CsvFormatError(f"--timezone {name}: not an IANA time zone name (e.g. Europe/Berlin, "
                              "America/Chicago, UTC)") from None
+
+
+class RepeatedHour:
+    """Tells the second occurrence of a local time from the first, by a stream's own times.
+
+    When the clocks go back (the end of summer time) an hour of local time happens
+    twice; a time written without its offset reads as the first occurrence (PEP 495's
+    ``fold=0``), so the second hour's readings would stand an hour early, before those
+    they follow.  A reading is taken as the second occurrence when its first-occurrence
+    time lies in such an hour and goes back from the stream's previous time (in the
+    file's order, as read here) by more than half the hour: the first time of the
+    second hour, after the last of the first, and every one after it, since each goes
+    back from the one before once that was moved.  A reading merely late within the hour
+    (by less than half of it) stays where it is, and is set aside as out of order as
+    before; readings half an hour or more apart cannot be told from repeats this way.
+
+    Pure: epoch seconds in, epoch seconds out; the zone's transitions are found with
+    :mod:`zoneinfo` (by the offsets at each day's start, then to the second).
+
+    Examples
+    --------
+    >>> from zoneinfo import ZoneInfo
+    >>> rh = RepeatedHour(ZoneInfo("Europe/Berlin"))
+    >>> first = parse_time("2026-10-25T02:59:00", rh.tz)  # 00:59Z
+    >>> second = parse_time("2026-10-25T02:00:00", rh.tz)  # read as 00:00Z, the first 02:00
+    >>> t = np.array([first, second, second + 60.0])
+    >>> rh.adjust(t, -np.inf), [round(x - first) for x in t]
+    (2, [0, 60, 120])
+    """
+
+    __slots__ = ("_hours", "_years", "tz")
+
+    def __init__(self, tz: tzinfo) -> None:
+        self.tz = tz
+        self._years: set[int] = set()
+        #: Each repeated hour as (start, end, length): its first-occurrence times, epoch seconds.
+        self._hours: list[tuple[float, float, float]] = []
+
+    def _offset(self, t: float) -> float:
+        off = datetime.fromtimestamp(t, self.tz).utcoffset()
+        return 0.0 if off is None else off.total_seconds()
+
+    def _cover(self, lo: float, hi: float) -> None:
+        """Find the clocks' going back in the years from ``lo`` to ``hi`` (once a year)."""
+        first = datetime.fromtimestamp(max(lo, 0.0), UTC).year
+        last = datetime.fromtimestamp(max(hi, 0.0), UTC).year
+        for year in range(first, last + 1):
+            if year in self._years:
+                continue
+            self._years.add(year)
+            start = datetime(year, 1, 1, tzinfo=UTC).timestamp()
+            days = [start + 86400.0 * d for d in range(367)]
+            offs = [self._offset(d) for d in days]
+            for a, b, oa, ob in zip(days, days[1:], offs, offs[1:]):
+                if ob >= oa:
+                    continue
+                while b - a > 1.0:  # the instant the offset drops, to the second
+                    m = math.floor((a + b) / 2.0)
+                    if self._offset(m) == oa:
+                        a = m
+                    else:
+                        b = m
+                shift = oa - ob
+                self._hours.append((b - shift, b, shift))
+        self._hours.sort()
+
+    def adjust(self, t: FloatArray, prev: float) -> int:
+        """Move the readings of ``t`` (one stream's times in file order, after ``prev``) that
+        are second occurrences to their true times, in place; how many were moved."""
+        n = t.shape[0]
+        if n == 0 or not np.isfinite(t).all():
+            finite = t[np.isfinite(t)]
+            if finite.shape[0] == 0:
+                return 0
+            lo, hi = float(finite.min()), float(finite.max())
+        else:
+            lo, hi = float(t.min()), float(t.max())
+        self._cover(lo, hi)
+        moved = 0
+        for start, end, shift in self._hours:
+            if end <= lo or start > hi:
+                continue
+            inside = np.flatnonzero((t >= start) & (t < end))
+            if inside.shape[0] == 0:
+                continue
+            # Nothing moves unless a reading goes back by more than half the hour from the
+            # one before it as read (the second hour's first; or, after a moved one, the
+            # next piece's first): the loop starts there.
+            back = np.concatenate(([prev], t[:-1]))[inside] - t[inside] > shift / 2.0
+            if not bool(back.any()):
+                continue
+            for i in inside[int(np.argmax(back)):].tolist():
+                before = float(t[i - 1]) if i else prev
+                if before - t[i] > shift / 2.0 and t[i] + shift > before:
+                    t[i] += shift
+                    moved += 1
+        return moved
 
 
 def _epoch_rule(t: FloatArray) -> FloatArray:

@@ -86,6 +86,62 @@ def test_times_without_an_offset_need_the_files_time_zone(cli, tmp_path: Path) -
     assert "Traceback" not in res.stderr
 
 
+def test_the_hour_repeated_when_clocks_go_back_is_read_as_each_stream_s_times_say(cli, tmp_path: Path) -> None:
+    # Local times in Europe/Berlin across the end of summer time (2026-10-25, 03:00 CEST ->
+    # 02:00 CET), written by zoneinfo: the local hour 02:00 to 03:00 happens twice, and an
+    # export in local time writes both as 02:xx (PEP 495: the second has fold=1, which no
+    # text shows).  Read as its first occurrence, the second hour stood before the samples
+    # it followed and was set aside as out of order (an hour of every stream lost).  Each
+    # stream's times now say which it is: a time of the repeated hour that goes back by
+    # more than half an hour from the stream's last is its second occurrence.  The
+    # reference is the same readings written in UTC.
+    t0 = datetime(2026, 10, 25, 0, 10, tzinfo=UTC).timestamp()
+    data = readings(4000, random_state=5, t0=t0)
+    zone = ZoneInfo("Europe/Berlin")
+    stamps = [datetime.fromtimestamp(t, zone).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3]
+              for t in data[next(iter(data))][0].tolist()]
+    assert stamps[0] == "2026-10-25T02:10:00.000" and stamps[2999] == "2026-10-25T02:59:59.000"
+    assert stamps[3000] == "2026-10-25T02:00:00.000" and stamps[-1] == "2026-10-25T02:16:39.000"
+    local = write_long(tmp_path / "local.csv", data, stamps=stamps)
+    utc = write_long(tmp_path / "utc.csv", data)
+    expected = cli("replay", str(utc))
+    assert expected.returncode == 0 and expected.stdout.count("\n") >= 4
+    read = cli("replay", "--timezone", "Europe/Berlin", str(local))
+    assert read.returncode == 0, read.stderr[-2000:]
+    assert read.stdout == expected.stdout
+    assert "4000 time(s) in the hour repeated when the clocks went back" in read.stderr
+    # The same through more than one process, the file in several chunks (streams are fed
+    # by their owner, which keeps each stream's last time).
+    chunked = replay_files([local], jobs=2, timezone="Europe/Berlin", chunk_bytes=64 * 1024)
+    whole = replay_files([utc], jobs=1)
+    assert [r.to_dict() for r in chunked.records] == [r.to_dict() for r in whole.records]
+    assert chunked.repeated_hour == 4000 and chunked.problem_count == whole.problem_count
+    # Parquet with wall-clock timestamps (no time zone), read by row group.
+    names = list(data)
+    wall = [datetime.fromisoformat(s) for s in stamps]
+    table = pa.table({"time": pa.array([w for w in wall for _ in names], pa.timestamp("ms")),
+                      "stream": pa.array(names * len(wall)),
+                      "value": pa.array(np.stack([data[k][1] for k in names], axis=1).ravel())})
+    naive = tmp_path / "local.parquet"
+    pq.write_table(table, naive, row_group_size=5000)
+    res = cli("replay", "--timezone", "Europe/Berlin", str(naive))
+    assert res.returncode == 0, res.stderr[-2000:]
+    assert res.stdout == expected.stdout
+    # fit reads the hour as replay does: the step it fits is the UTC file's.
+    name = next(iter(data))
+    fit_local = cli("fit", "--timezone", "Europe/Berlin", str(local), "--stream", name, "--json")
+    fit_utc = cli("fit", str(utc), "--stream", name, "--json")
+    assert fit_local.returncode == 0, fit_local.stderr
+    assert json.loads(fit_local.stdout) == json.loads(fit_utc.stdout)
+    # A row that is merely late within the first hour (less than half an hour) is still set
+    # aside as out of order, not moved an hour on.
+    late = tmp_path / "late.csv"
+    late.write_text("time,stream,value\n2026-10-25T02:10:00,x,1.0\n2026-10-25T02:11:00,x,1.0\n"
+                    "2026-10-25T02:10:30,x,1.0\n2026-10-25T02:12:00,x,1.0\n")
+    res = cli("replay", "--timezone", "Europe/Berlin", str(late))
+    assert res.returncode == 1 and f"{late}:4: stream x:" in res.stderr, res.stderr
+
+
 # ------------------------------------------------------------------- wide
 def test_wide_csv_reads_as_pandas_reads_it(cli, history, tmp_path: Path) -> None:
     path, data = history
