@@ -70,7 +70,8 @@ def merge_results(parts: list[ReplayResult]) -> ReplayResult:
     records.sort(key=_record_key)
     read_problems = [p for part in parts for p in part.read_problems][:KEEP_PROBLEMS]
     return ReplayResult(records, streams, sum(p.rows for p in parts), read_problems,
-                        sum(p.read_problem_count for p in parts), sum(p.file_notes for p in parts))
+                        sum(p.read_problem_count for p in parts), sum(p.file_notes for p in parts),
+                        sum(p.repeated_hour for p in parts))
 
 
 def replay_on_dask(root: str | Path, client: Any, settings_for: Callable[[str], DetectionSettings] | None = None,
