@@ -142,6 +142,37 @@ def test_the_hour_repeated_when_clocks_go_back_is_read_as_each_stream_s_times_sa
     assert res.returncode == 1 and f"{late}:4: stream x:" in res.stderr, res.stderr
 
 
+@pytest.mark.parametrize(("zone", "utc_start"), [
+    ("Europe/Berlin", "2026-10-25T00:20:00+00:00"),  # 03:00 CEST -> 02:00 CET, an hour
+    ("America/New_York", "2026-11-01T05:20:00+00:00"),  # 02:00 EDT -> 01:00 EST, an hour
+    ("Australia/Lord_Howe", "2026-04-04T14:20:00+00:00"),  # 02:00 -> 01:30 local, half an hour
+])
+@pytest.mark.parametrize("every", [1.0, 60.0, 600.0])
+def test_repeated_hours_of_several_zones_read_as_zoneinfo_writes_them(zone: str, utc_start: str,
+                                                                      every: float) -> None:
+    # The reference: zoneinfo's own local times of known instants (PEP 495), written as text
+    # without their offset, read back with parse_time (first occurrence) and sorted out by
+    # RepeatedHour, in pieces of 97 readings (as chunks cut a stream's rows).
+    from shiftwatch.sources import RepeatedHour, parse_time
+
+    tz = ZoneInfo(zone)
+    t0 = datetime.fromisoformat(utc_start).timestamp()
+    true = t0 + every * np.arange(int(7200 / every))
+    texts = [datetime.fromtimestamp(t, tz).strftime("%Y-%m-%dT%H:%M:%S") for t in true.tolist()]
+    read = np.array([parse_time(x, tz) for x in texts])
+    assert bool((read != true).any())  # the first occurrence is not the truth for every reading
+    rh = RepeatedHour(tz)
+    last = -np.inf
+    moved = 0
+    for a in range(0, read.shape[0], 97):
+        piece = read[a:a + 97].copy()
+        moved += rh.adjust(piece, last)
+        last = float(piece[-1])
+        read[a:a + 97] = piece
+    assert read.tolist() == true.tolist()
+    assert moved == int((np.array([parse_time(x, tz) for x in texts]) != true).sum())
+
+
 # ------------------------------------------------------------------- wide
 def test_wide_csv_reads_as_pandas_reads_it(cli, history, tmp_path: Path) -> None:
     path, data = history
