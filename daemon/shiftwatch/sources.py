@@ -124,15 +124,21 @@ class RepeatedHour:
         #: Each repeated hour as (start, end, length): its first-occurrence times, epoch seconds.
         self._hours: list[tuple[float, float, float]] = []
 
+    #: Years looked at: those datetime can hold a whole of (times past them are never moved).
+    FIRST_YEAR, LAST_YEAR = 1970, 9998
+
     def _offset(self, t: float) -> float:
         off = datetime.fromtimestamp(t, self.tz).utcoffset()
         return 0.0 if off is None else off.total_seconds()
 
+    @classmethod
+    def _year(cls, t: float) -> int:
+        """The year of ``t`` near enough (no clock goes back around the new year), clamped."""
+        return int(min(max(1970.0 + t // 31_556_952.0, cls.FIRST_YEAR), cls.LAST_YEAR))
+
     def _cover(self, lo: float, hi: float) -> None:
         """Find the clocks' going back in the years from ``lo`` to ``hi`` (once a year)."""
-        first = datetime.fromtimestamp(max(lo, 0.0), UTC).year
-        last = datetime.fromtimestamp(max(hi, 0.0), UTC).year
-        for year in range(first, last + 1):
+        for year in range(self._year(lo), self._year(hi) + 1):
             if year in self._years:
                 continue
             self._years.add(year)

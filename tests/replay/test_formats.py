@@ -414,3 +414,14 @@ def test_headers_that_fit_no_layout_whole_are_refused_with_what_is_missing(cli, 
     assert "--layout wide" in res.stderr  # the way to read a tag called value
     res = cli("replay", "--layout", "wide", str(lone))
     assert res.returncode == 0 and "replayed 2 rows in 1 stream(s)" in res.stderr, res.stderr
+
+
+def test_repeated_hours_are_looked_for_only_in_the_years_zoneinfo_knows() -> None:
+    # A time far past the year 9999 (an epoch number in the wrong unit, say) must not stop
+    # the replay: datetime refuses such years ("year 10000 is out of range").
+    from shiftwatch.sources import RepeatedHour
+
+    rh = RepeatedHour(ZoneInfo("Europe/Berlin"))
+    t = np.array([-1e11, 1.7e9, 2.6e11, 1e12, 1e15])
+    assert rh.adjust(t, -np.inf) == 0
+    assert t.tolist() == [-1e11, 1.7e9, 2.6e11, 1e12, 1e15]
