@@ -78,17 +78,23 @@ def _io(port: int, who: str) -> NatsIO:
     return io
 
 
-def _old_writer(port: int, topic: str, n: int) -> None:
-    """Shard 0 wrote the stream's journal last, moments ago: ``n`` samples, times 0 to n - 1."""
-    io = _io(port, "old-writer")
+def _journal_as(port: int, writer: str, topic: str, t: np.ndarray, value: float = 500.0) -> None:
+    """Shard 0, as daemon ``writer``, loads the stream and writes samples at times ``t`` (all
+    ``value``) into its journal, as a shard does after a round."""
+    io = _io(port, writer)
     try:
-        cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="w-old",
+        cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer=writer,
                           shard=0)
         cs.setup()
-        t = np.arange(n, dtype=float)
-        assert cs.journal([JournalGroup(topic, "g", t, 500.0 + 0.0 * t, t, "brackenfield/+/+/fill")]) == []
+        cs.load([topic])
+        assert cs.journal([JournalGroup(topic, "g", t, value + 0.0 * t, t, "brackenfield/+/+/fill")]) == []
     finally:
         io.close()
+
+
+def _old_writer(port: int, topic: str, n: int) -> None:
+    """Shard 0 wrote the stream's journal last, moments ago: ``n`` samples, times 0 to n - 1."""
+    _journal_as(port, "w-old", topic, np.arange(n, dtype=float))
 
 
 def _daemon(tmp_path: Path, port: int, name: str, handover_wait: float = 60.0) -> Daemon:
@@ -200,15 +206,7 @@ def test_parked_samples_are_fed_in_time_order_when_the_wait_ends(tmp_path: Path,
         second = [_array(topic, 150.0, [500.1] * 50)]
         d.process(second)
         # The old owner wrote samples 100 to 119 meanwhile (its late ones), before the answer.
-        io = _io(server, "late-writer")
-        try:
-            cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="w-old",
-                              shard=0)
-            cs.load([topic])
-            t = np.arange(100.0, 120.0)
-            assert cs.journal([JournalGroup(topic, "g", t, 499.9 + 0.0 * t, t, "brackenfield/+/+/fill")]) == []
-        finally:
-            io.close()
+        _journal_as(server, "w-old", topic, np.arange(100.0, 120.0), 499.9)
         # Shard 0's answer, as it comes by plain NATS (shiftwatch.handover's format).
         answer = {"answer": [topic], "shard": 0, "writer": d.writer_id}
         d._handover_message(MAGIC + json.dumps(answer).encode(), "from the test", time.time())
@@ -263,15 +261,7 @@ def test_a_stale_engine_is_not_saved_over_the_work_of_the_stream_s_new_writer(
     try:
         d.process([_array(topic, 0.0, [500.0] * 50)])
         assert topic in d.engines
-        io = _io(server, "new-writer")
-        try:
-            cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="w-new",
-                              shard=0)
-            cs.load([topic])
-            t = np.arange(50.0, 80.0)
-            assert cs.journal([JournalGroup(topic, "g", t, 500.0 + 0.0 * t, t, "brackenfield/+/+/fill")]) == []
-        finally:
-            io.close()
+        _journal_as(server, "w-new", topic, np.arange(50.0, 80.0))
         assert d._cluster_snapshot()
         assert topic not in d.engines
         assert _journaled(server, topic) == [float(i) for i in range(80)]  # nothing purged

@@ -58,14 +58,20 @@ def test_epoch_milliseconds_are_read_as_the_daemon_reads_them(cli, history, tmp_
     assert json.loads(fit_ms.stdout) == json.loads(fit_rfc.stdout)
 
 
-def test_times_without_an_offset_need_the_files_time_zone(cli, tmp_path: Path) -> None:
-    # Local times in Europe/Berlin across the start of summer time (2026-03-29, 02:00 -> 03:00),
-    # written by zoneinfo; with --timezone they are the same instants as the UTC file's.
-    t0 = datetime(2026, 3, 29, 0, 10, tzinfo=UTC).timestamp()
-    data = readings(4000, random_state=4, t0=t0)
+def _berlin_readings(start: datetime, random_state: int) -> tuple[dict[str, tuple[np.ndarray, np.ndarray]], list[str]]:
+    """4,000 readings a stream, a second apart from ``start``, and their times as zoneinfo
+    writes them in Europe/Berlin without an offset (milliseconds, as historians export)."""
+    data = readings(4000, random_state=random_state, t0=start.timestamp())
     zone = ZoneInfo("Europe/Berlin")
     stamps = [datetime.fromtimestamp(t, zone).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3]
               for t in data[next(iter(data))][0].tolist()]
+    return data, stamps
+
+
+def test_times_without_an_offset_need_the_files_time_zone(cli, tmp_path: Path) -> None:
+    # Local times in Europe/Berlin across the start of summer time (2026-03-29, 02:00 -> 03:00),
+    # written by zoneinfo; with --timezone they are the same instants as the UTC file's.
+    data, stamps = _berlin_readings(datetime(2026, 3, 29, 0, 10, tzinfo=UTC), random_state=4)
     assert stamps[0] == "2026-03-29T01:10:00.000" and stamps[-1] == "2026-03-29T03:16:39.000"
     local = write_long(tmp_path / "local.csv", data, stamps=stamps)
     utc = write_long(tmp_path / "utc.csv", data)
@@ -95,11 +101,7 @@ def test_the_hour_repeated_when_clocks_go_back_is_read_as_each_stream_s_times_sa
     # stream's times now say which it is: a time of the repeated hour that goes back by
     # more than half an hour from the stream's last is its second occurrence.  The
     # reference is the same readings written in UTC.
-    t0 = datetime(2026, 10, 25, 0, 10, tzinfo=UTC).timestamp()
-    data = readings(4000, random_state=5, t0=t0)
-    zone = ZoneInfo("Europe/Berlin")
-    stamps = [datetime.fromtimestamp(t, zone).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3]
-              for t in data[next(iter(data))][0].tolist()]
+    data, stamps = _berlin_readings(datetime(2026, 10, 25, 0, 10, tzinfo=UTC), random_state=5)
     assert stamps[0] == "2026-10-25T02:10:00.000" and stamps[2999] == "2026-10-25T02:59:59.000"
     assert stamps[3000] == "2026-10-25T02:00:00.000" and stamps[-1] == "2026-10-25T02:16:39.000"
     local = write_long(tmp_path / "local.csv", data, stamps=stamps)
