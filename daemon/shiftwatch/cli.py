@@ -847,7 +847,8 @@ def _add_reading_options(p: argparse.ArgumentParser) -> None:
                    "auto (default): long when the file has stream and value columns")
     p.add_argument("--timezone", metavar="ZONE",
                    help="IANA time zone (e.g. Europe/Berlin) of times written without a UTC offset; "
-                   "such times are refused without it")
+                   "such times are refused without it. The hour repeated when the clocks go back is "
+                   "told apart by each stream's own order")
 
 
 def build_parser() -> argparse.ArgumentParser:
