@@ -177,3 +177,20 @@ def test_a_snapshot_purges_only_up_to_what_it_includes(cluster: ClusterState) ->
     r = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3").load([name])[name]
     assert r.state == {"n": 15} and r.groups == []
     assert _stored(cs) >= 1  # the last message stays: it carries the subject's last sequence
+
+
+def test_a_snapshot_of_the_journal_s_first_message_keeps_that_message(cluster: ClusterState) -> None:
+    """The purge after a snapshot keeps the message the snapshot includes (it carries the
+    subject's last sequence for the expected-last header).  A snapshot of the journal's
+    very first message (stream sequence 1) purged with ``seq`` 1, which nats-server
+    (2.9.10, as installed here) takes as no bound at all: the subject was emptied, its
+    last sequence read 0, and the daemon's next journal write of the stream was refused
+    as another daemon's.  Purging below sequence 1 purges nothing: no request is made."""
+    cs = cluster
+    name = "plant/6/v"
+    assert cs.journal([_group(6, t0=0.0)]) == []
+    assert cs.seq[name] == 1  # a fresh cluster: the journal stream's first message
+    assert cs.save({name: ({"n": 5}, "plant/+/v", None, [])}) == 1
+    assert _stored(cs) == 1
+    assert cs.journal([_group(6, t0=5.0)]) == []  # not refused
+    assert cs.seq[name] == 2
