@@ -24,6 +24,8 @@ The same two parts as the local state directory, with the same guarantee
   read, and the bucket's entry is still the revision it read or wrote (a
   key-value update with the expected last revision): a daemon whose engine of
   the stream is stale (another has written the stream since) saves nothing.
+  The entry names the daemon that saved it (``writer``), so that a save whose
+  acknowledgement was lost does not fence out the daemon that made it.
   After a snapshot the stream's journal subject is purged up to the
   snapshot's sequence, never past it (the last message stays: it keeps the
   subject's last sequence for the header above).
@@ -296,7 +298,8 @@ class ClusterState:
                       records: list[tuple[str, bytes, int]]) -> None:
             seq = self.seq.get(name, 0)
             doc = {"format": _FORMAT, "schema_version": SCHEMA_VERSION, "stream": name, "filter": f,
-                   "unit": unit, "seq": seq, "saved_at": now, "state": encode_state(dict(state)),
+                   "unit": unit, "seq": seq, "saved_at": now, "writer": self.writer,
+                   "state": encode_state(dict(state)),
                    "records": [[t, base64.b64encode(p).decode("ascii"), q] for t, p, q in records]}
             body = json.dumps(doc, separators=(",", ":")).encode("utf-8")
             async with sem:
@@ -309,6 +312,14 @@ class ClusterState:
                     new = await self.io.kv_update(self.bucket, stream_key(name), body, last=rev)
                 else:
                     new = await self.io.kv_create(self.bucket, stream_key(name), body)
+                if new is None and self.writer:
+                    # This daemon's own save whose acknowledgement was lost (a timed-out save
+                    # takes no revision) is not another's write: the journal check above
+                    # says nobody wrote the stream since, and the entry says who saved it.
+                    entry = await self.io.kv_get(self.bucket, stream_key(name))
+                    if entry is not None and _saved_by(entry.value) == self.writer:
+                        new = await self.io.kv_update(self.bucket, stream_key(name), body,
+                                                      last=entry.revision)
                 if new is None:
                     refused.append(name)
                     return
@@ -329,6 +340,16 @@ class ClusterState:
                                f"failed ({type(exc).__name__}: {exc})") from None
         self.refused = sorted(refused)
         return len(entries) - len(refused)
+
+
+def _saved_by(value: bytes) -> str | None:
+    """The writer id in a saved stream state (None: unreadable, or saved before it was kept)."""
+    try:
+        doc = json.loads(value)
+    except ValueError:
+        return None
+    writer = doc.get("writer") if isinstance(doc, dict) else None
+    return writer if isinstance(writer, str) else None
 
 
 class JournalRound:

@@ -194,3 +194,35 @@ def test_a_snapshot_of_the_journal_s_first_message_keeps_that_message(cluster: C
     assert _stored(cs) == 1
     assert cs.journal([_group(6, t0=5.0)]) == []  # not refused
     assert cs.seq[name] == 2
+
+
+def test_a_snapshot_whose_acknowledgement_was_lost_does_not_fence_out_its_own_writer(
+        cluster: ClusterState) -> None:
+    """A save that timed out takes no revision from its key-value update (the wait was
+    cancelled), though the cluster may have stored it.  The next save of that stream then
+    expected the revision before it, was refused as if another daemon had written the
+    stream, and the daemon dropped its engine (after a snapshot of many streams timed
+    out, every one of them): the legitimate owner fenced out by its own write.  Now a
+    refused update reads the entry, and one this daemon wrote (the writer id in the
+    saved document) is taken as that write; another daemon's still refuses."""
+    cs = cluster
+    name = "plant/9/v"
+    assert cs.journal([_group(9, t0=0.0)]) == []
+    assert cs.save({name: ({"n": 5}, "plant/+/v", None, [])}) == 1
+    before = cs._rev[name]
+    assert cs.journal([_group(9, t0=5.0)]) == []
+    assert cs.save({name: ({"n": 10}, "plant/+/v", None, [])}) == 1
+    cs._rev[name] = before  # what a timed-out save leaves: its acknowledgement never came
+    assert cs.journal([_group(9, t0=10.0)]) == []
+    assert cs.save({name: ({"n": 15}, "plant/+/v", None, [])}) == 1
+    assert cs.refused == []
+    reader = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3")
+    assert reader.load([name])[name].state == {"n": 15}
+    # Another daemon's save since is still a refusal, whatever revision this one expects.
+    other = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w2")
+    other.load([name])
+    assert other.save({name: ({"n": 15, "by": 2}, "plant/+/v", None, [])}) == 1
+    cs._rev[name] = before
+    assert cs.save({name: ({"n": 99}, "plant/+/v", None, [])}) == 0
+    assert cs.refused == [name]
+    assert reader.load([name])[name].state == {"n": 15, "by": 2}
