@@ -713,7 +713,12 @@ class Daemon:
                 self._publish(topic, payload, qos=qos, retain=False)
             if r.state is None and not r.groups and not r.parked_last:
                 continue
-            spec = self.cfg.stream_for(name, r.topic_filter)
+            # The filter of the entry the stream was made for: the snapshot's, or (none yet)
+            # the latest journal or parked message's.  A cut name (a topic of more than 256
+            # characters) matches its entry only through it.
+            topic_filter = r.topic_filter or next(
+                (g.topic_filter for g in reversed([*r.groups, *r.parked]) if g.topic_filter), None)
+            spec = self.cfg.stream_for(name, topic_filter)
             if spec is None:
                 continue
             eng = StreamEngine(name, spec.detection, unit=r.unit or spec.unit)
