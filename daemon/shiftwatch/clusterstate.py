@@ -21,7 +21,8 @@ The same two parts as the local state directory, with the same guarantee
   includes, the ``topic`` filter of its config entry and the alert records it
   had made that the broker had not yet acknowledged.  A snapshot is saved only
   while the stream's journal still ends at the sequence this daemon wrote or
-  read, and the bucket's entry is still the revision it read or wrote (a
+  read (or at its own message after it: a round stored whose acknowledgement
+  was lost), and the bucket's entry is still the revision it read or wrote (a
   key-value update with the expected last revision): a daemon whose engine of
   the stream is stale (another has written the stream since) saves nothing.
   The entry names the daemon that saved it (``writer``), so that a save whose
@@ -297,16 +298,23 @@ class ClusterState:
         async def one(name: str, state: dict[str, Any], f: str | None, unit: str | None,
                       records: list[tuple[str, bytes, int]]) -> None:
             seq = self.seq.get(name, 0)
-            doc = {"format": _FORMAT, "schema_version": SCHEMA_VERSION, "stream": name, "filter": f,
-                   "unit": unit, "seq": seq, "saved_at": now, "writer": self.writer,
-                   "state": encode_state(dict(state)),
-                   "records": [[t, base64.b64encode(p).decode("ascii"), q] for t, p, q in records]}
-            body = json.dumps(doc, separators=(",", ":")).encode("utf-8")
             async with sem:
-                last, _ = await self.io.last_seq(self.stream, self.subject(name))
+                last, headers = await self.io.last_seq(self.stream, self.subject(name))
                 if last != seq:
-                    refused.append(name)
-                    return
+                    if not (last > seq and self.writer and headers.get(WRITER) == self.writer):
+                        refused.append(name)
+                        return
+                    # This daemon's own message past its sequence: a round whose journal wait
+                    # timed out, stored all the same and held to be written again.  Each of its
+                    # writes expects this daemon's sequence, so nobody else's lies between,
+                    # and the engine was fed that round: the snapshot includes it.  (The
+                    # sequence stays: the held round finds its group stored by it.)
+                    seq = last
+                doc = {"format": _FORMAT, "schema_version": SCHEMA_VERSION, "stream": name, "filter": f,
+                       "unit": unit, "seq": seq, "saved_at": now, "writer": self.writer,
+                       "state": encode_state(dict(state)),
+                       "records": [[t, base64.b64encode(p).decode("ascii"), q] for t, p, q in records]}
+                body = json.dumps(doc, separators=(",", ":")).encode("utf-8")
                 rev = self._rev.get(name, 0)
                 if rev:
                     new = await self.io.kv_update(self.bucket, stream_key(name), body, last=rev)

@@ -226,3 +226,35 @@ def test_a_snapshot_whose_acknowledgement_was_lost_does_not_fence_out_its_own_wr
     assert cs.save({name: ({"n": 99}, "plant/+/v", None, [])}) == 0
     assert cs.refused == [name]
     assert reader.load([name])[name].state == {"n": 15, "by": 2}
+
+
+def test_a_snapshot_taken_while_the_daemon_s_own_round_waits_to_be_written_again_is_saved(
+        cluster: ClusterState) -> None:
+    """A round whose journal wait timed out is held (its engines fed, its messages stored
+    or not) until it is written again; a snapshot due meanwhile found the journal past
+    the daemon's sequence and was refused as if another daemon had written the stream,
+    and the owner dropped its engine.  When the messages past that sequence are this
+    daemon's own (each was written expecting the one before, so only its own can follow
+    its own), the engine has been fed them: the snapshot includes them, and the held
+    round written again still finds its group stored."""
+    cs = cluster
+    name = "plant/5/v"
+    assert cs.journal([_group(5, t0=0.0)]) == []
+    before = cs.seq[name]
+    g = _group(5, t0=5.0)
+    assert cs.journal([g]) == []
+    stored = cs.seq[name]
+    cs.seq[name] = before  # what a timed-out wait leaves: the acknowledgement never came
+    assert cs.save({name: ({"n": 10}, "plant/+/v", None, [])}) == 1
+    assert cs.refused == []
+    reader = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3")
+    r = reader.load([name])[name]
+    assert r.state == {"n": 10} and r.groups == []  # the snapshot includes the stored group
+    assert cs.journal([g]) == []  # the held round, written again: its group is found stored
+    assert cs.seq[name] == stored
+    # Another daemon's message past this daemon's sequence is still a refusal.
+    other = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w2")
+    other.load([name])
+    assert other.journal([_group(5, t0=10.0)]) == []
+    assert cs.save({name: ({"n": 99}, "plant/+/v", None, [])}) == 0
+    assert cs.refused == [name]
