@@ -377,3 +377,30 @@ def test_parked_samples_of_a_stream_with_a_cut_name_and_no_snapshot_are_fed(
         assert _journaled(server, name) == [float(i) for i in range(200)]
     finally:
         _close(second)
+
+
+def test_a_damaged_parked_message_is_set_aside_named_and_counted_and_the_rest_is_fed(
+        tmp_path: Path, server: int) -> None:
+    # A parked message that does not decode (here: bytes that are no journal encoding)
+    # costs only its own samples: the load names the subject, counts it with the states set
+    # aside, feeds the stream's other parked samples and purges the parking.
+    [topic] = _owned_by_1_of_2(1)
+    _old_writer(server, topic, 100)
+    first = _daemon(tmp_path, server, "first-damaged", handover_wait=1.0)
+    try:
+        first.process([_array(topic, 100.0, [500.0] * 60)])
+        assert topic in first._deferred
+        subject = first.cluster.parked_subject(topic)
+        first.nats.run(first.nats.publish(subject, b"\x00not a journal round"))
+    finally:
+        _close(first)
+    time.sleep(1.2)  # past cluster.handover_wait and redelivery_wait
+    second = _daemon(tmp_path, server, "second-damaged", handover_wait=1.0)
+    try:
+        second.process([_array(topic, 160.0, [500.0] * 40)])
+        eng = second.engines[topic]
+        assert eng.samples_total == 200 and not sum(eng.rejected_total.values())
+        assert _counter(second, "shiftwatch_stream_states_set_aside_total") == 1
+        assert _parked(server, topic)[2] == 0
+    finally:
+        _close(second)
