@@ -26,7 +26,8 @@ The same two parts as the local state directory, with the same guarantee
   key-value update with the expected last revision): a daemon whose engine of
   the stream is stale (another has written the stream since) saves nothing.
   The entry names the daemon that saved it (``writer``), so that a save whose
-  acknowledgement was lost does not fence out the daemon that made it.
+  acknowledgement was lost does not fence out the daemon that made it; an
+  entry deleted meanwhile is made again.
   After a snapshot the stream's journal subject is purged up to the
   snapshot's sequence, never past it (the last message stays: it keeps the
   subject's last sequence for the header above).
@@ -320,12 +321,15 @@ class ClusterState:
                     new = await self.io.kv_update(self.bucket, stream_key(name), body, last=rev)
                 else:
                     new = await self.io.kv_create(self.bucket, stream_key(name), body)
-                if new is None and self.writer:
-                    # This daemon's own save whose acknowledgement was lost (a timed-out save
-                    # takes no revision) is not another's write: the journal check above
-                    # says nobody wrote the stream since, and the entry says who saved it.
+                if new is None:
+                    # The journal check above says nobody wrote the stream since.  An entry
+                    # deleted meanwhile (by hand, or the bucket made anew) is made again from
+                    # this engine; one this daemon saved itself, whose acknowledgement was
+                    # lost (a timed-out save takes no revision), is not another's write.
                     entry = await self.io.kv_get(self.bucket, stream_key(name))
-                    if entry is not None and _saved_by(entry.value) == self.writer:
+                    if entry is None:
+                        new = await self.io.kv_create(self.bucket, stream_key(name), body)
+                    elif self.writer and _saved_by(entry.value) == self.writer:
                         new = await self.io.kv_update(self.bucket, stream_key(name), body,
                                                       last=entry.revision)
                 if new is None:

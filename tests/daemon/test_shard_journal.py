@@ -258,3 +258,25 @@ def test_a_snapshot_taken_while_the_daemon_s_own_round_waits_to_be_written_again
     assert other.journal([_group(5, t0=10.0)]) == []
     assert cs.save({name: ({"n": 99}, "plant/+/v", None, [])}) == 0
     assert cs.refused == [name]
+
+
+def test_a_snapshot_whose_entry_was_deleted_meanwhile_is_saved_again(cluster: ClusterState) -> None:
+    """The stream's entry in the bucket deleted while its owner runs (by hand, or the
+    bucket made anew): the owner's update expecting its revision was refused, and the
+    owner dropped its engine and loaded the stream from the journal, which its earlier
+    snapshots had purged down to their last message, so the stream warmed up again on
+    a few samples.  With the journal still ending where the owner left it nobody else
+    wrote the stream: the owner's state is saved anew (a key-value create, which NATS
+    allows over a deleted key)."""
+    cs = cluster
+    name = "plant/4/v"
+    assert cs.journal([_group(4, t0=0.0)]) == []
+    assert cs.journal([_group(4, t0=5.0)]) == []
+    assert cs.save({name: ({"n": 10}, "plant/+/v", None, [])}) == 1
+    from shiftwatch.clusterstate import stream_key
+    cs.io.run(cs.io.kv_delete(cs.bucket, stream_key(name)))
+    assert cs.journal([_group(4, t0=10.0)]) == []
+    assert cs.save({name: ({"n": 15}, "plant/+/v", None, [])}) == 1
+    assert cs.refused == []
+    reader = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3")
+    assert reader.load([name])[name].state == {"n": 15}
