@@ -21,9 +21,13 @@ The same two parts as the local state directory, with the same guarantee
   includes, the ``topic`` filter of its config entry and the alert records it
   had made that the broker had not yet acknowledged.  A snapshot is saved only
   while the stream's journal still ends at the sequence this daemon wrote or
-  read, and the bucket's entry is still the revision it read or wrote (a
+  read (or at its own message after it: a round stored whose acknowledgement
+  was lost), and the bucket's entry is still the revision it read or wrote (a
   key-value update with the expected last revision): a daemon whose engine of
   the stream is stale (another has written the stream since) saves nothing.
+  The entry names the daemon that saved it (``writer``), so that a save whose
+  acknowledgement was lost does not fence out the daemon that made it; an
+  entry deleted meanwhile is made again.
   After a snapshot the stream's journal subject is purged up to the
   snapshot's sequence, never past it (the last message stays: it keeps the
   subject's last sequence for the header above).
@@ -295,20 +299,39 @@ class ClusterState:
         async def one(name: str, state: dict[str, Any], f: str | None, unit: str | None,
                       records: list[tuple[str, bytes, int]]) -> None:
             seq = self.seq.get(name, 0)
-            doc = {"format": _FORMAT, "schema_version": SCHEMA_VERSION, "stream": name, "filter": f,
-                   "unit": unit, "seq": seq, "saved_at": now, "state": encode_state(dict(state)),
-                   "records": [[t, base64.b64encode(p).decode("ascii"), q] for t, p, q in records]}
-            body = json.dumps(doc, separators=(",", ":")).encode("utf-8")
             async with sem:
-                last, _ = await self.io.last_seq(self.stream, self.subject(name))
+                last, headers = await self.io.last_seq(self.stream, self.subject(name))
                 if last != seq:
-                    refused.append(name)
-                    return
+                    if not (last > seq and self.writer and headers.get(WRITER) == self.writer):
+                        refused.append(name)
+                        return
+                    # This daemon's own message past its sequence: a round whose journal wait
+                    # timed out, stored all the same and held to be written again.  Each of its
+                    # writes expects this daemon's sequence, so nobody else's lies between,
+                    # and the engine was fed that round: the snapshot includes it.  (The
+                    # sequence stays: the held round finds its group stored by it.)
+                    seq = last
+                doc = {"format": _FORMAT, "schema_version": SCHEMA_VERSION, "stream": name, "filter": f,
+                       "unit": unit, "seq": seq, "saved_at": now, "writer": self.writer,
+                       "state": encode_state(dict(state)),
+                       "records": [[t, base64.b64encode(p).decode("ascii"), q] for t, p, q in records]}
+                body = json.dumps(doc, separators=(",", ":")).encode("utf-8")
                 rev = self._rev.get(name, 0)
                 if rev:
                     new = await self.io.kv_update(self.bucket, stream_key(name), body, last=rev)
                 else:
                     new = await self.io.kv_create(self.bucket, stream_key(name), body)
+                if new is None:
+                    # The journal check above says nobody wrote the stream since.  An entry
+                    # deleted meanwhile (by hand, or the bucket made anew) is made again from
+                    # this engine; one this daemon saved itself, whose acknowledgement was
+                    # lost (a timed-out save takes no revision), is not another's write.
+                    entry = await self.io.kv_get(self.bucket, stream_key(name))
+                    if entry is None:
+                        new = await self.io.kv_create(self.bucket, stream_key(name), body)
+                    elif self.writer and _saved_by(entry.value) == self.writer:
+                        new = await self.io.kv_update(self.bucket, stream_key(name), body,
+                                                      last=entry.revision)
                 if new is None:
                     refused.append(name)
                     return
@@ -329,6 +352,16 @@ class ClusterState:
                                f"failed ({type(exc).__name__}: {exc})") from None
         self.refused = sorted(refused)
         return len(entries) - len(refused)
+
+
+def _saved_by(value: bytes) -> str | None:
+    """The writer id in a saved stream state (None: unreadable, or saved before it was kept)."""
+    try:
+        doc = json.loads(value)
+    except ValueError:
+        return None
+    writer = doc.get("writer") if isinstance(doc, dict) else None
+    return writer if isinstance(writer, str) else None
 
 
 class JournalRound:

@@ -713,7 +713,12 @@ class Daemon:
                 self._publish(topic, payload, qos=qos, retain=False)
             if r.state is None and not r.groups and not r.parked_last:
                 continue
-            spec = self.cfg.stream_for(name, r.topic_filter)
+            # The filter of the entry the stream was made for: the snapshot's, or (none yet)
+            # the latest journal or parked message's.  A cut name (a topic of more than 256
+            # characters) matches its entry only through it.
+            topic_filter = r.topic_filter or next(
+                (g.topic_filter for g in reversed([*r.groups, *r.parked]) if g.topic_filter), None)
+            spec = self.cfg.stream_for(name, topic_filter)
             if spec is None:
                 continue
             eng = StreamEngine(name, spec.detection, unit=r.unit or spec.unit)
@@ -763,26 +768,30 @@ class Daemon:
 
     def _journal_unparked(self, fed: list[JournalGroup], lasts: dict[str, int], now: float) -> None:
         """The unparked samples into the streams' journals, then out of the parking.  Raises
-        ClusterError when the journal did not take them: the streams' engines are dropped
-        (the samples stay parked) and the caller loads them again later."""
+        ClusterError when the journal did not take some: those streams' engines are dropped
+        (their samples stay parked) and the caller loads them again later; the others'
+        parked samples, in their journals now, are purged first (loaded again, they would
+        be fed twice)."""
         assert self.cluster is not None
         try:
             refused = self.cluster.journal(fed) if fed else []
         except ClusterError:
             refused = fed
-        if refused:
-            names = {g.stream for g in refused}
-            for n in names:
-                self.engines.pop(n, None)
-            raise ClusterError(f"the parked samples of {len(names)} stream(s) (e.g. "
-                               f"{_printable(next(iter(names)))}) did not reach their journal")
+        names = {g.stream for g in refused}
+        for n in names:
+            self.engines.pop(n, None)
+        done = {n: last for n, last in lasts.items() if n not in names}
         try:
-            self.cluster.unpark(lasts)
+            if done:
+                self.cluster.unpark(done)
         except ClusterError as exc:
             # They are in the journal: loaded again later, they are set aside as duplicates.
-            self.rlog.warning("cluster_unpark", f"parked samples of {len(lasts)} stream(s) not "
+            self.rlog.warning("cluster_unpark", f"parked samples of {len(done)} stream(s) not "
                               f"removed from the cluster ({exc}); a later load of those streams sets "
                               "them aside as duplicates", now)
+        if names:
+            raise ClusterError(f"the parked samples of {len(names)} stream(s) (e.g. "
+                               f"{_printable(next(iter(names)))}) did not reach their journal")
 
     def _cluster_journal(self, fed: list[JournalGroup], now: float, *, started: Any = None) -> bool:
         """The round's samples into the cluster's journal; False when the cluster did not
@@ -1531,7 +1540,9 @@ class Daemon:
             self._cluster_load(due)
         except ClusterError as exc:
             self.rlog.warning("cluster_load", f"{exc}; tried again shortly", now)
-            return
+            # Those that loaded all the same (another's parked samples were refused by its
+            # journal) are done: only the others wait for the next attempt.
+            due = [n for n in due if n in self.engines]
         for n in due:
             del self._deferred[n]
             self._settle_handover(n)

@@ -295,9 +295,12 @@ class NatsIO:
     async def purge_subject(self, stream: str, subject: str, keep: int | None = 1,
                             upto: int | None = None) -> None:
         """Purge the subject's messages in the stream: all but the last ``keep``, or (with
-        ``upto``) those with sequences up to and including ``upto``."""
+        ``upto``) those with sequences up to and including ``upto``.  A purge request's
+        ``seq`` is the first sequence kept, and the server takes ``seq`` 1 (and 0) as no
+        bound, purging the whole subject: with ``upto`` below 1 nothing is sent."""
         if upto is not None:
-            await self._js.purge_stream(stream, subject=subject, seq=upto + 1)
+            if upto >= 1:
+                await self._js.purge_stream(stream, subject=subject, seq=upto + 1)
         else:
             await self._js.purge_stream(stream, subject=subject, keep=keep)
 

@@ -177,3 +177,106 @@ def test_a_snapshot_purges_only_up_to_what_it_includes(cluster: ClusterState) ->
     r = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3").load([name])[name]
     assert r.state == {"n": 15} and r.groups == []
     assert _stored(cs) >= 1  # the last message stays: it carries the subject's last sequence
+
+
+def test_a_snapshot_of_the_journal_s_first_message_keeps_that_message(cluster: ClusterState) -> None:
+    """The purge after a snapshot keeps the message the snapshot includes (it carries the
+    subject's last sequence for the expected-last header).  A snapshot of the journal's
+    very first message (stream sequence 1) purged with ``seq`` 1, which nats-server
+    (2.9.10, as installed here) takes as no bound at all: the subject was emptied, its
+    last sequence read 0, and the daemon's next journal write of the stream was refused
+    as another daemon's.  Purging below sequence 1 purges nothing: no request is made."""
+    cs = cluster
+    name = "plant/6/v"
+    assert cs.journal([_group(6, t0=0.0)]) == []
+    assert cs.seq[name] == 1  # a fresh cluster: the journal stream's first message
+    assert cs.save({name: ({"n": 5}, "plant/+/v", None, [])}) == 1
+    assert _stored(cs) == 1
+    assert cs.journal([_group(6, t0=5.0)]) == []  # not refused
+    assert cs.seq[name] == 2
+
+
+def test_a_snapshot_whose_acknowledgement_was_lost_does_not_fence_out_its_own_writer(
+        cluster: ClusterState) -> None:
+    """A save that timed out takes no revision from its key-value update (the wait was
+    cancelled), though the cluster may have stored it.  The next save of that stream then
+    expected the revision before it, was refused as if another daemon had written the
+    stream, and the daemon dropped its engine (after a snapshot of many streams timed
+    out, every one of them): the legitimate owner fenced out by its own write.  Now a
+    refused update reads the entry, and one this daemon wrote (the writer id in the
+    saved document) is taken as that write; another daemon's still refuses."""
+    cs = cluster
+    name = "plant/9/v"
+    assert cs.journal([_group(9, t0=0.0)]) == []
+    assert cs.save({name: ({"n": 5}, "plant/+/v", None, [])}) == 1
+    before = cs._rev[name]
+    assert cs.journal([_group(9, t0=5.0)]) == []
+    assert cs.save({name: ({"n": 10}, "plant/+/v", None, [])}) == 1
+    cs._rev[name] = before  # what a timed-out save leaves: its acknowledgement never came
+    assert cs.journal([_group(9, t0=10.0)]) == []
+    assert cs.save({name: ({"n": 15}, "plant/+/v", None, [])}) == 1
+    assert cs.refused == []
+    reader = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3")
+    assert reader.load([name])[name].state == {"n": 15}
+    # Another daemon's save since is still a refusal, whatever revision this one expects.
+    other = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w2")
+    other.load([name])
+    assert other.save({name: ({"n": 15, "by": 2}, "plant/+/v", None, [])}) == 1
+    cs._rev[name] = before
+    assert cs.save({name: ({"n": 99}, "plant/+/v", None, [])}) == 0
+    assert cs.refused == [name]
+    assert reader.load([name])[name].state == {"n": 15, "by": 2}
+
+
+def test_a_snapshot_taken_while_the_daemon_s_own_round_waits_to_be_written_again_is_saved(
+        cluster: ClusterState) -> None:
+    """A round whose journal wait timed out is held (its engines fed, its messages stored
+    or not) until it is written again; a snapshot due meanwhile found the journal past
+    the daemon's sequence and was refused as if another daemon had written the stream,
+    and the owner dropped its engine.  When the messages past that sequence are this
+    daemon's own (each was written expecting the one before, so only its own can follow
+    its own), the engine has been fed them: the snapshot includes them, and the held
+    round written again still finds its group stored."""
+    cs = cluster
+    name = "plant/5/v"
+    assert cs.journal([_group(5, t0=0.0)]) == []
+    before = cs.seq[name]
+    g = _group(5, t0=5.0)
+    assert cs.journal([g]) == []
+    stored = cs.seq[name]
+    cs.seq[name] = before  # what a timed-out wait leaves: the acknowledgement never came
+    assert cs.save({name: ({"n": 10}, "plant/+/v", None, [])}) == 1
+    assert cs.refused == []
+    reader = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3")
+    r = reader.load([name])[name]
+    assert r.state == {"n": 10} and r.groups == []  # the snapshot includes the stored group
+    assert cs.journal([g]) == []  # the held round, written again: its group is found stored
+    assert cs.seq[name] == stored
+    # Another daemon's message past this daemon's sequence is still a refusal.
+    other = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w2")
+    other.load([name])
+    assert other.journal([_group(5, t0=10.0)]) == []
+    assert cs.save({name: ({"n": 99}, "plant/+/v", None, [])}) == 0
+    assert cs.refused == [name]
+
+
+def test_a_snapshot_whose_entry_was_deleted_meanwhile_is_saved_again(cluster: ClusterState) -> None:
+    """The stream's entry in the bucket deleted while its owner runs (by hand, or the
+    bucket made anew): the owner's update expecting its revision was refused, and the
+    owner dropped its engine and loaded the stream from the journal, which its earlier
+    snapshots had purged down to their last message, so the stream warmed up again on
+    a few samples.  With the journal still ending where the owner left it nobody else
+    wrote the stream: the owner's state is saved anew (a key-value create, which NATS
+    allows over a deleted key)."""
+    cs = cluster
+    name = "plant/4/v"
+    assert cs.journal([_group(4, t0=0.0)]) == []
+    assert cs.journal([_group(4, t0=5.0)]) == []
+    assert cs.save({name: ({"n": 10}, "plant/+/v", None, [])}) == 1
+    from shiftwatch.clusterstate import stream_key
+    cs.io.run(cs.io.kv_delete(cs.bucket, stream_key(name)))
+    assert cs.journal([_group(4, t0=10.0)]) == []
+    assert cs.save({name: ({"n": 15}, "plant/+/v", None, [])}) == 1
+    assert cs.refused == []
+    reader = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3")
+    assert reader.load([name])[name].state == {"n": 15}
