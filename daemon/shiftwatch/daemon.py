@@ -2176,11 +2176,7 @@ class Daemon:
             # and this daemon had not let them go): its engines of them are stale.  Dropped
             # here; samples of them that still come load them afresh, or are refused by the
             # journal and set aside.
-            for n in stale:
-                del self.engines[n]
-                self._filters.pop(n, None)
-                self._levels_due.pop(n, None)
-                self.metrics.remove_stream(n)
+            self._let_go(stale, save=False)  # (its status-page entries go with them)
             self.log.warning("%d stream(s) were written by another daemon since this one last did "
                              "(e.g. %s): not saved over its work; their engines here are dropped",
                              len(stale), _printable(stale[0]))
