@@ -151,11 +151,9 @@ class _Feeder:
                  unit_for: Callable[[str], str | None], trace_options: dict[str, int] | None,
                  tz: tzinfo | None = None) -> None:
         self.sources = sources
-        # With --timezone: each stream's last time as read, to tell the second occurrence of
-        # the hour repeated when the clocks go back by the stream's own order.
+        # With --timezone: the hour repeated when the clocks go back, told apart by each
+        # stream's own order.
         self.repeated = RepeatedHour(tz) if tz is not None else None
-        self.last_time: dict[str, float] = {}
-        self.repeated_count = 0
         self.settings_for = settings_for
         self.unit_for = unit_for
         self.trace_options = trace_options
@@ -190,10 +188,8 @@ class _Feeder:
 
     def add(self, parts: Iterable[tuple[str, FloatArray, FloatArray, IntArray]]) -> None:
         for name, t, v, p in parts:
-            if self.repeated is not None and t.shape[0]:
-                t = t.copy()  # (a view of the chunk's, or of a slot shared with another process)
-                self.repeated_count += self.repeated.adjust(t, self.last_time.get(name, -np.inf))
-                self.last_time[name] = float(t[-1])
+            if self.repeated is not None:
+                t = self.repeated.follow(name, t)
             held = self.held.get(name)
             if held is None:
                 held = self.held[name] = []
@@ -271,7 +267,8 @@ class _Feeder:
         return out
 
     def read_summary(self) -> tuple[int, list[tuple[int, int, int, int, str]], int, dict[int, str], int]:
-        return self.rows, self.read_problems, self.read_count, self.notes, self.repeated_count
+        return (self.rows, self.read_problems, self.read_count, self.notes,
+                0 if self.repeated is None else self.repeated.moved)
 
 
 def _merge(parts: list[tuple[dict[str, StreamOutcome], tuple[Any, ...]]]) -> ReplayResult:
@@ -781,7 +778,6 @@ def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone
     noted: set[int] = set()
     by_file: dict[int, list[str]] = {}
     repeated = RepeatedHour(tz) if tz is not None else None  # as replay_files reads that hour
-    last_time: dict[str, float] = {}
     with OpenFiles() as opened:  # as in replay_files: a Parquet group's pieces read in turn
         for task in tasks(sources, tz):
             block = parse_task(task, sources, tz, opened)
@@ -793,10 +789,8 @@ def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone
                 if only is not None and name != only:
                     streams.setdefault(name, StreamSeries(sources))
                     continue
-                if repeated is not None and t.shape[0]:
-                    t = t.copy()
-                    repeated.adjust(t, last_time.get(name, -np.inf))
-                    last_time[name] = float(t[-1])
+                if repeated is not None:
+                    t = repeated.follow(name, t)
                 ser = streams.get(name)
                 if ser is None:
                     ser = streams[name] = StreamSeries(sources)

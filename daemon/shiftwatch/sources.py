@@ -111,18 +111,22 @@ class RepeatedHour:
     >>> rh = RepeatedHour(ZoneInfo("Europe/Berlin"))
     >>> first = parse_time("2026-10-25T02:59:00", rh.tz)  # 00:59Z
     >>> second = parse_time("2026-10-25T02:00:00", rh.tz)  # read as 00:00Z, the first 02:00
-    >>> t = np.array([first, second, second + 60.0])
-    >>> rh.adjust(t, -np.inf), [round(x - first) for x in t]
-    (2, [0, 60, 120])
+    >>> t = rh.follow("oven", np.array([first, second, second + 60.0]))
+    >>> [round(x - first) for x in t], rh.moved
+    ([0, 60, 120], 2)
     """
 
-    __slots__ = ("_hours", "_years", "tz")
+    __slots__ = ("_hours", "_last", "_years", "moved", "tz")
 
     def __init__(self, tz: tzinfo) -> None:
         self.tz = tz
         self._years: set[int] = set()
         #: Each repeated hour as (start, end, length): its first-occurrence times, epoch seconds.
         self._hours: list[tuple[float, float, float]] = []
+        #: Each stream's last time as :meth:`follow` gave it.
+        self._last: dict[str, float] = {}
+        #: Readings moved to their second occurrence so far.
+        self.moved = 0
 
     #: Years looked at: those datetime can hold a whole of (times past them are never moved).
     FIRST_YEAR, LAST_YEAR = 1970, 9998
@@ -158,14 +162,25 @@ class RepeatedHour:
                 self._hours.append((b - shift, b, shift))
         self._hours.sort()
 
-    def adjust(self, t: FloatArray, prev: float) -> int:
-        """Move the readings of ``t`` (one stream's times in file order, after ``prev``) that
-        are second occurrences to their true times, in place; how many were moved."""
+    def follow(self, stream: str, t: FloatArray) -> FloatArray:
+        """The next times of ``stream`` in file order, its second occurrences moved (``t``
+        itself when none is, a copy otherwise: the caller's arrays may be shared)."""
+        if t.shape[0] == 0:
+            return t
+        t, moved = self.adjust(t, self._last.get(stream, -np.inf))
+        self._last[stream] = float(t[-1])
+        self.moved += moved
+        return t
+
+    def adjust(self, t: FloatArray, prev: float) -> tuple[FloatArray, int]:
+        """Times ``t`` (one stream's, in file order, after ``prev``) with the second
+        occurrences moved to their true times, and how many were moved: ``t`` itself when
+        none is, else a copy."""
         n = t.shape[0]
         if n == 0 or not np.isfinite(t).all():
             finite = t[np.isfinite(t)]
             if finite.shape[0] == 0:
-                return 0
+                return t, 0
             lo, hi = float(finite.min()), float(finite.max())
         else:
             lo, hi = float(t.min()), float(t.max())
@@ -183,12 +198,14 @@ class RepeatedHour:
             back = np.concatenate(([prev], t[:-1]))[inside] - t[inside] > shift / 2.0
             if not bool(back.any()):
                 continue
+            if not moved:
+                t = t.copy()
             for i in inside[int(np.argmax(back)):].tolist():
                 before = float(t[i - 1]) if i else prev
                 if before - t[i] > shift / 2.0 and t[i] + shift > before:
                     t[i] += shift
                     moved += 1
-        return moved
+        return t, moved
 
 
 def _epoch_rule(t: FloatArray) -> FloatArray:
