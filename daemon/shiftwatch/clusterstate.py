@@ -405,7 +405,7 @@ class JournalRound:
             async with sem:
                 subject = cs.subject(g.stream)
                 try:
-                    seq = await cs.io.publish(subject, body, expect_last=last, headers=headers)
+                    seq = await cs.io.publish_in_batch(subject, body, expect_last=last, headers=headers)
                 except SequenceConflict:
                     # Refused: the subject moved on.  When its last message is this very
                     # group, written by this daemon, an earlier attempt of the round was

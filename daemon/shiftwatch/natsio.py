@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import asyncio
 import concurrent.futures
+import json
 import threading
 from collections.abc import Awaitable, Callable, Coroutine
 from dataclasses import dataclass
@@ -54,6 +55,13 @@ def nats_available() -> bool:
     return True
 
 
+def _publish_headers(headers: dict[str, str] | None, expect_last: int | None) -> dict[str, str] | None:
+    out = dict(headers or {})
+    if expect_last is not None:
+        out["Nats-Expected-Last-Subject-Sequence"] = str(expect_last)
+    return out or None
+
+
 def _describe(exc: BaseException) -> str:
     text = " ".join(str(exc).split())
     return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
@@ -82,6 +90,11 @@ class NatsIO:
         self._nc: Any = None
         self._js: Any = None
         self._kv: dict[str, Any] = {}
+        # publish_in_batch: one reply subscription, a future per message in flight
+        self._batch_prefix: str | None = None
+        self._batch_futs: dict[str, tuple[asyncio.Future[int], str]] = {}
+        self._batch_n = 0
+        self._batch_lock = asyncio.Lock()
 
     @property
     def where(self) -> str:
@@ -151,6 +164,7 @@ class NatsIO:
                 cause = errors[-1] if errors else _describe(exc)
                 raise ClusterError(f"NATS cluster {self.where} cannot be reached ({cause})") from None
             self._js = self._nc.jetstream(timeout=self.timeout)
+            self._batch_prefix = None  # (a new connection has no reply subscription yet)
 
         try:
             self.run(go(), timeout=self.timeout * 2)
@@ -239,22 +253,86 @@ class NatsIO:
         With ``expect_last`` the cluster stores the message only when the subject's
         last sequence is that number (0: no message on it yet); otherwise SequenceConflict.
         """
+        hdrs = _publish_headers(headers, expect_last)
+        try:
+            ack = await self._js.publish(subject, payload, headers=hdrs)
+        except Exception as exc:  # noqa: BLE001  as one of ours
+            raise self._publish_error(subject, exc) from None
+        return int(ack.seq)
+
+    async def publish_in_batch(self, subject: str, payload: bytes, *, expect_last: int | None = None,
+                               headers: dict[str, str] | None = None) -> int:
+        """:meth:`publish` with no deadline of its own: the caller bounds the wait for a
+        whole batch of them (a journal round, see ``clusterstate.JournalRound.wait``).
+
+        nats-py's ``publish`` is a request with a timer for every message, which is
+        most of the NATS thread's CPU per journal message.  Here every message is
+        sent with a reply subject under one subscription of this connection, and
+        the acknowledgement completes a future; no timer.  (nats-py's own
+        ``publish_async`` works so, but a refusal never completes its future: its
+        reply handler calls ``APIError.from_error``, which raises, inside the
+        subscription's callback, in nats-py 2.x.)  Refusals are the same as
+        :meth:`publish`'s; a message that is never acknowledged waits until the
+        caller cancels it.
+        """
+        prefix = self._batch_prefix or await self._batch_subscribe()
+        self._batch_n += 1
+        token = str(self._batch_n)
+        fut: asyncio.Future[int] = self._loop.create_future()
+        self._batch_futs[token] = fut, subject
+        try:
+            await self._nc.publish(subject, payload, reply=prefix + token,
+                                   headers=_publish_headers(headers, expect_last))
+            return await fut
+        except ClusterError:
+            raise
+        except Exception as exc:  # noqa: BLE001  as one of ours
+            raise self._publish_error(subject, exc) from None
+        finally:
+            self._batch_futs.pop(token, None)
+
+    async def _batch_subscribe(self) -> str:
+        async with self._batch_lock:
+            if self._batch_prefix is None:
+                prefix = self._nc.new_inbox() + "."
+                await self._nc.subscribe(prefix + "*", cb=self._batch_reply)
+                self._batch_prefix = prefix
+            return self._batch_prefix
+
+    async def _batch_reply(self, msg: Any) -> None:
+        assert self._batch_prefix is not None
+        fut, subject = self._batch_futs.get(msg.subject[len(self._batch_prefix):], (None, ""))
+        if fut is None or fut.done():
+            return  # its batch was given up (timed out) meanwhile
+        status = (msg.headers or {}).get("Status")
+        try:
+            resp = json.loads(msg.data) if msg.data else {}
+        except ValueError:
+            resp = {}
+        err = resp.get("error") if isinstance(resp, dict) else None
+        if isinstance(err, dict):
+            if err.get("err_code") == WRONG_LAST_SEQUENCE:
+                fut.set_exception(SequenceConflict(f"{subject}: {err.get('description')}"))
+            else:
+                fut.set_exception(ClusterError(f"NATS cluster {self.where}: publish to {subject} refused "
+                                               f"({err.get('description') or err})"))
+        elif isinstance(resp, dict) and isinstance(resp.get("seq"), int):
+            fut.set_result(int(resp["seq"]))
+        else:  # no JetStream stream took it ("no responders", status 503), or an odd answer
+            why = "no stream takes the subject" if status == "503" else f"answer {bytes(msg.data[:80])!r}"
+            fut.set_exception(ClusterError(f"NATS cluster {self.where}: publish to {subject} not "
+                                           f"acknowledged ({why})"))
+
+    def _publish_error(self, subject: str, exc: BaseException) -> ClusterError:
         from nats.js.errors import APIError
 
-        headers = dict(headers or {})
-        if expect_last is not None:
-            headers["Nats-Expected-Last-Subject-Sequence"] = str(expect_last)
-        try:
-            ack = await self._js.publish(subject, payload, headers=headers or None)
-        except APIError as exc:
+        if isinstance(exc, APIError):
             if exc.err_code == WRONG_LAST_SEQUENCE:
-                raise SequenceConflict(f"{subject}: {exc.description}") from None
-            raise ClusterError(f"NATS cluster {self.where}: publish to {subject} refused "
-                               f"({_describe(exc)})") from None
-        except Exception as exc:  # noqa: BLE001
-            raise ClusterError(f"NATS cluster {self.where}: publish to {subject} not acknowledged "
-                               f"({_describe(exc)})") from None
-        return int(ack.seq)
+                return SequenceConflict(f"{subject}: {exc.description}")
+            return ClusterError(f"NATS cluster {self.where}: publish to {subject} refused "
+                                f"({_describe(exc)})")
+        return ClusterError(f"NATS cluster {self.where}: publish to {subject} not acknowledged "
+                            f"({_describe(exc)})")
 
     async def last_seq(self, stream: str, subject: str) -> tuple[int, dict[str, str]]:
         """The sequence of the subject's last message in the stream (0: none), and its headers."""

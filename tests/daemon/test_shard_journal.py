@@ -15,7 +15,11 @@ cluster's replication is not what is tested here).
 
 from __future__ import annotations
 
+import asyncio
 import logging
+import signal
+import subprocess
+import time
 from pathlib import Path
 
 import numpy as np
@@ -24,13 +28,14 @@ import pytest
 from shiftwatch.broker import wait_until
 from shiftwatch.clusterstate import ClusterState, JournalRound
 from shiftwatch.journal import JournalGroup
-from shiftwatch.natsio import NatsIO
+from shiftwatch.natsio import ClusterError, NatsIO, SequenceConflict
 
 from .natskit import start_lone_server
 
 
 @pytest.fixture
-def cluster(tmp_path: Path):  # type: ignore[no-untyped-def]
+def served(tmp_path: Path):  # type: ignore[no-untyped-def]
+    """A ClusterState on a lone nats-server, and that server's process."""
     server, port = start_lone_server(tmp_path, "journal")
     io = None
     try:
@@ -39,12 +44,18 @@ def cluster(tmp_path: Path):  # type: ignore[no-untyped-def]
         assert wait_until(lambda: _connects(io), 30)
         cs = ClusterState(io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w1")
         cs.setup()
-        yield cs
+        yield cs, server
     finally:
         if io is not None:
             io.close()
+        server.send_signal(signal.SIGCONT)  # (a test may have left it stopped)
         server.terminate()
         server.wait(10)
+
+
+@pytest.fixture
+def cluster(served: tuple[ClusterState, subprocess.Popen[bytes]]) -> ClusterState:
+    return served[0]
 
 
 def _connects(io: NatsIO) -> bool:
@@ -85,6 +96,91 @@ def test_a_rounds_journal_messages_are_stored_before_the_round_is_done(cluster: 
     for i in (0, n - 1):
         (g,) = loaded[f"plant/{i}/v"].groups
         assert g.values.tolist() == _group(i).values.tolist()
+
+
+def test_a_round_the_cluster_does_not_acknowledge_times_out_and_is_taken_once_when_written_again(
+        served: tuple[ClusterState, subprocess.Popen[bytes]]) -> None:
+    """The round's journal messages carry no deadline of their own (nats-py's
+    ``publish_async``): the round's :meth:`JournalRound.wait` bounds them all.  With the
+    server stopped (SIGSTOP) the wait must end in ClusterError by that bound and take
+    no sequence; the messages the server stores once it runs again are then found as
+    this daemon's own when the held round is written again, each group stored once."""
+    cs, server = served
+    names = [f"plant/{i}/v" for i in range(3)]
+    assert cs.journal([_group(i) for i in range(3)]) == []
+    before = dict(cs.seq)
+    cs.io.timeout = 1.0
+    server.send_signal(signal.SIGSTOP)
+    try:
+        rnd = cs.journal_round()
+        for i in range(3):
+            rnd.add(_group(i, t0=10.0))
+        started = time.monotonic()
+        with pytest.raises(ClusterError):
+            rnd.wait()
+        # The bound: the client's timeout for a round of fewer than PARALLEL messages, plus
+        # the second NatsIO.result allows (generous: a loaded machine).
+        assert time.monotonic() - started < 10.0
+        assert cs.seq == before  # no sequence from a round that timed out
+    finally:
+        server.send_signal(signal.SIGCONT)
+    cs.io.timeout = 5.0
+    # The stopped server stores what was sent to it once it runs; the round, held, is
+    # written again with the same expected sequences and finds its own messages.
+    assert cs.journal([_group(i, t0=10.0) for i in range(3)]) == []
+    assert _stored(cs) == 6
+    for i, name in enumerate(names):
+        assert cs.seq[name] > before[name]
+        groups = cs.load([name])[name].groups
+        assert [g.times[0] for g in groups] == [0.0, 10.0]
+
+
+def test_a_batch_publish_is_refused_as_a_single_one_is(cluster: ClusterState) -> None:
+    """``NatsIO.publish_in_batch`` (the journal round's publish, one reply subscription
+    for all) reads JetStream's answers as ``publish`` does: the stream sequence, a
+    wrong expected last sequence as SequenceConflict (JetStream error 10071, from
+    memory, as above), another refusal and a subject no stream takes as ClusterError,
+    each at once, not after a timeout, and naming the subject."""
+    io = cluster.io
+    subject = cluster.subject("plant/batch/v")
+
+    async def both(expect: int | None) -> list[object]:
+        out: list[object] = []
+        for fn in (io.publish, io.publish_in_batch):
+            try:
+                out.append(await asyncio.wait_for(fn(subject, b"x", expect_last=expect), 5))
+            except Exception as exc:  # noqa: BLE001  compared below
+                out.append(exc)
+        return out
+
+    first, second = io.run(both(0))
+    assert isinstance(first, int) and isinstance(second, SequenceConflict)  # one per empty subject
+    assert subject in str(second)
+    a, b = io.run(both(None))
+    assert isinstance(a, int) and b == a + 1
+    for stale in io.run(both(1)):
+        assert isinstance(stale, SequenceConflict) and subject in str(stale)
+
+    async def refused(subj: str, payload: bytes) -> list[BaseException]:
+        out: list[BaseException] = []
+        for fn in (io.publish, io.publish_in_batch):
+            with pytest.raises(ClusterError) as info:
+                await asyncio.wait_for(fn(subj, payload), 5)
+            out.append(info.value)
+        return out
+
+    # No stream takes the subject (NATS answers "no responders").
+    for exc in io.run(refused("nowhere.at.all", b"x")):
+        assert not isinstance(exc, SequenceConflict) and "nowhere.at.all" in str(exc)
+
+    async def small_stream() -> None:
+        from nats.js.api import StreamConfig
+        await io._js.add_stream(StreamConfig(name="tiny", subjects=["tiny.>"], max_msg_size=8))
+
+    io.run(small_stream())
+    # A message over the stream's max_msg_size: refused by JetStream with an error of its own.
+    for exc in io.run(refused("tiny.a", b"x" * 64)):
+        assert not isinstance(exc, SequenceConflict) and "refused" in str(exc) and "tiny.a" in str(exc)
 
 
 def test_a_stream_written_by_another_daemon_meanwhile_is_refused(cluster: ClusterState) -> None:
