@@ -186,28 +186,26 @@ class ClusterState:
     async def _load_one(self, name: str, parked: bool = False) -> tuple[Restored, int]:
         r = Restored()
         subject = self.subject(name)
-        entry = await self.io.kv_get(self.bucket, stream_key(name))
+        key = stream_key(name)
+        problems: list[str] = []
+        entry = await self.io.kv_get(self.bucket, key)
         self._rev[name] = 0 if entry is None else entry.revision
-        after = 0
+        where = f"bucket {self.bucket} key {key}"
+        after: int | None = 0
         if entry is not None:
-            try:
-                doc = json.loads(entry.value)
-                if not isinstance(doc, dict) or doc.get("format") != _FORMAT:
-                    raise ValueError("not a shiftwatch stream state")
-                if doc.get("schema_version") != SCHEMA_VERSION:
-                    raise ValueError(f"schema version {doc.get('schema_version')!r}")
-                if doc.get("stream") != name:
-                    raise ValueError("saved under another stream's name (hash collision)")
-                after = int(doc["seq"])
-                r.state = decode_state(doc["state"])
-                r.topic_filter = doc.get("filter")
-                r.unit = doc.get("unit")
-                r.saved_at = float(doc.get("saved_at", 0.0))
-                r.records = [(str(t), base64.b64decode(p), int(q)) for t, p, q in doc.get("records", [])]
-            except (ValueError, KeyError, TypeError) as exc:
-                r.state, after = None, 0
-                r.problem = f"saved state in bucket {self.bucket} unusable ({exc})"
+            after, why = self._read_entry(r, name, entry.value, where)
+            if why is not None:
+                problems.append(why)
         last, headers = await self.io.last_seq(self.stream, subject)
+        if after is None or after > last:
+            # A position that cannot be (the journal's last message stays at every purge, so
+            # a snapshot never includes more than the journal holds): damaged, or the journal
+            # stream was made anew.  The state is kept and the journal fed from its start:
+            # samples the state already holds are set aside as repeats, none is skipped.
+            if after is not None:
+                problems.append(f"saved state in {where} includes journal sequence {after}, past the "
+                                f"end of {self.stream} ({last}); its journal is read from the start")
+            after = 0
         r.written_by = headers.get(WRITER)
         try:
             r.written_at = float(headers.get(WRITTEN, "nan"))
@@ -216,21 +214,71 @@ class ClusterState:
         shard = headers.get(SHARD, "")
         r.written_shard = int(shard) if shard.isascii() and shard.isdigit() else None
         if last > after:
-            for _seq, body in await self.io.messages_after(self.stream, subject, after, last):
+            for seq, body in await self.io.messages_after(self.stream, subject, after, last):
                 try:
                     r.groups.extend(g for g in decode_groups(body) if g.stream == name)
                 except (ValueError, TypeError) as exc:
-                    r.problem = f"journal message on {subject} unusable ({exc})"
+                    problems.append(f"journal message {self.stream} sequence {seq} ({subject}) unusable "
+                                    f"({exc}); its samples are set aside")
         if parked:
             psubject = self.parked_subject(name)
             r.parked_last, _ = await self.io.last_seq(self.parking, psubject)
-            for _seq, body in await self.io.messages_after(self.parking, psubject, 0, r.parked_last):
+            for seq, body in await self.io.messages_after(self.parking, psubject, 0, r.parked_last):
                 try:
                     r.parked.extend(g for g in decode_groups(body) if g.stream == name)
                 except (ValueError, TypeError) as exc:
-                    r.problem = f"parked message on {psubject} unusable ({exc})"
+                    problems.append(f"parked message {self.parking} sequence {seq} ({psubject}) unusable "
+                                    f"({exc}); its samples are set aside")
+        if problems:
+            r.problem = "; ".join(problems)
         self._saved[name] = after
         return r, last
+
+    def _read_entry(self, r: Restored, name: str, value: bytes, where: str) -> tuple[int | None, str | None]:
+        """Fill ``r`` from a stream's entry in the bucket: the journal sequence the snapshot
+        includes (None: unusable) and what was wrong with the entry (None: nothing).  A part
+        of the entry that is damaged is set aside alone: the engine state (then the whole
+        snapshot: the stream warms up again from its journal), the position, the filter and
+        unit (the configuration's are used), each alert record that could not be published."""
+        try:
+            doc = json.loads(value)
+            if not isinstance(doc, dict) or doc.get("format") != _FORMAT:
+                raise ValueError("not a shiftwatch stream state")
+            if doc.get("schema_version") != SCHEMA_VERSION:
+                raise ValueError(f"schema version {doc.get('schema_version')!r}")
+            if doc.get("stream") != name:
+                raise ValueError("saved under another stream's name (hash collision)")
+            state = decode_state(doc["state"])
+            if not isinstance(state, dict):
+                raise TypeError(f"engine state is a {type(state).__name__}, not an object")
+        except (ValueError, KeyError, TypeError) as exc:
+            return 0, f"saved state in {where} unusable ({exc}); the stream starts from its journal"
+        wrong: list[str] = []
+        seq = doc.get("seq")
+        after: int | None = seq if type(seq) is int and seq >= 0 else None
+        if after is None:
+            wrong.append(f"journal position {_short(seq)} (its journal is read from the start)")
+        r.state = state
+        for part in ("filter", "unit"):
+            v = doc.get(part)
+            if v is not None and not isinstance(v, str):
+                wrong.append(f"{part} {_short(v)} (the configuration's is used)")
+            elif part == "filter":
+                r.topic_filter = v
+            else:
+                r.unit = v
+        saved_at = doc.get("saved_at", 0.0)
+        r.saved_at = float(saved_at) if type(saved_at) in (int, float) else None
+        records = doc.get("records", [])
+        for rec in records if isinstance(records, list) else [records]:
+            item = _record(rec)
+            if item is None:
+                wrong.append(f"alert record {_short(rec)} (not published again)")
+            else:
+                r.records.append(item)
+        if not wrong:
+            return after, None
+        return after, f"saved state in {where} has an unusable " + ", ".join(wrong)
 
     # ------------------------------------------------------------ parking
     def park(self, groups: list[JournalGroup]) -> None:
@@ -352,6 +400,30 @@ class ClusterState:
                                f"failed ({type(exc).__name__}: {exc})") from None
         self.refused = sorted(refused)
         return len(entries) - len(refused)
+
+
+def _record(rec: Any) -> tuple[str, bytes, int] | None:
+    """A saved alert record as (topic, payload, qos), or None when it could not be published:
+    paho refuses a topic that is empty, holds a wildcard or a NUL, and a QoS outside 0 to 2
+    (MQTT 3.1.1 sections 4.7.1 and 3.3.1.2), and the daemon would stop on such a refusal."""
+    if not isinstance(rec, list) or len(rec) != 3:
+        return None
+    topic, payload, qos = rec
+    if (not isinstance(topic, str) or not topic or "+" in topic or "#" in topic or "\0" in topic
+            or len(topic.encode("utf-8", "surrogatepass")) > 65535
+            or not isinstance(payload, str) or type(qos) is not int or qos not in (0, 1, 2)):
+        return None
+    try:
+        topic.encode("utf-8")
+        return topic, base64.b64decode(payload, validate=True), qos
+    except (ValueError, UnicodeError):
+        return None
+
+
+def _short(v: Any) -> str:
+    """A damaged value for a log line: its repr, cut to 60 characters."""
+    text = repr(v)
+    return text if len(text) <= 60 else text[:57] + "..."
 
 
 def _saved_by(value: bytes) -> str | None:

@@ -726,9 +726,12 @@ class Daemon:
                 try:
                     eng.set_state(r.state)
                 except Exception as exc:  # noqa: BLE001  costs that stream only
+                    from shiftwatch.clusterstate import stream_key as _stream_key
+
                     self.metrics.states_set_aside.inc()
-                    self.log.warning("saved state of stream %s set aside (%s); it warms up again",
-                                     _printable(name), _one_line(exc))
+                    self.log.warning("saved state of stream %s (bucket %s key %s) set aside (%s); it "
+                                     "warms up again", _printable(name), self.cluster.bucket,
+                                     _stream_key(name), _one_line(exc))
                     eng = StreamEngine(name, spec.detection, unit=r.unit or spec.unit)
                 restored += 1
             self.engines[name] = eng

@@ -1,0 +1,198 @@
+"""Damaged entries in the cluster's state: a snapshot or a journal message put there by
+hand, by another program or by a fault.
+
+A shard loads a stream from the snapshot bucket and the journal stream when its first
+samples come (``ClusterState.load``).  Whatever is wrong in what it reads must cost only
+the damaged part: it is named in a log line with where it lies (bucket and key, or
+stream and sequence), counted in ``shiftwatch_stream_states_set_aside_total``, and
+nothing good is lost, no round is held, nothing stops.
+
+In-process daemons against a real nats-server with JetStream (one server, one replica).
+The damaged entries are written with nats-py, the NATS project's own client, as a person
+or another program would.  References outside the project: the samples each check
+expects are read from the messages with the standard library's ``json``; what an MQTT
+client refuses to publish is asked of paho itself (MQTT 3.1.1 sections 3.3.1.2, no QoS
+3, and 4.7.1, no wildcard in a topic name).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import logging
+import time
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import paho.mqtt.client as paho
+import pytest
+
+from shiftwatch.clusterstate import ClusterState, stream_key
+from shiftwatch.daemon import Daemon
+
+from .natskit import start_lone_server
+from .test_shard_parking import NAME, _array, _close, _counter, _daemon, _io, _owned_by_1_of_2
+
+FILTER = "brackenfield/+/+/fill"
+
+
+@pytest.fixture
+def server(tmp_path: Path) -> Iterator[int]:
+    proc, port = start_lone_server(tmp_path, "damaged")
+    yield port
+    proc.terminate()
+    proc.wait(10)
+
+
+class _Lines(logging.Handler):
+    def __init__(self) -> None:
+        super().__init__()
+        self.lines: list[str] = []
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.lines.append(record.getMessage())
+
+
+def _written(tmp_path: Path, port: int, topic: str) -> None:
+    """Daemon 'a' takes 50 samples (times 0 to 49), saves the stream's snapshot, then takes
+    10 more (50 to 59), which stay in the journal after the snapshot."""
+    d = _daemon(tmp_path, port, "a")
+    try:
+        d.process([_array(topic, 0.0, [500.0] * 50)])
+        assert d._cluster_snapshot()
+        d.process([_array(topic, 50.0, [500.0] * 10)])
+    finally:
+        _close(d)
+
+
+async def _kv(port: int, topic: str, value: bytes | None = None) -> bytes:
+    """The stream's entry in the snapshot bucket; with ``value``, put that there first."""
+    import nats
+
+    nc = await nats.connect(f"nats://127.0.0.1:{port}")
+    try:
+        kv = await nc.jetstream().key_value(f"{NAME}_state")
+        if value is not None:
+            await kv.put(stream_key(topic), value)
+        return bytes((await kv.get(stream_key(topic))).value or b"")
+    finally:
+        await nc.close()
+
+
+async def _publish_journal(port: int, topic: str, body: bytes) -> int:
+    import nats
+
+    nc = await nats.connect(f"nats://127.0.0.1:{port}")
+    try:
+        return int((await nc.jetstream().publish(f"{NAME}.journal.{stream_key(topic)}", body)).seq)
+    finally:
+        await nc.close()
+
+
+def _damage(port: int, topic: str, change: dict[str, Any]) -> None:
+    doc = json.loads(asyncio.run(_kv(port, topic)))
+    doc.update(change)
+    asyncio.run(_kv(port, topic, json.dumps(doc).encode()))
+
+
+def _loader(tmp_path: Path, port: int, name: str) -> tuple[Daemon, _Lines]:
+    time.sleep(1.1)  # past the loaders' redelivery_wait after daemon a's last journal write
+    d = _daemon(tmp_path, port, name, handover_wait=1.0)
+    lines = _Lines()
+    d.log.addHandler(lines)
+    return d, lines
+
+
+@pytest.mark.parametrize("seq", [-7, 10**15, "12", None, 1.5, True])
+def test_a_snapshot_whose_journal_position_cannot_be_keeps_its_state_and_its_journal(
+        tmp_path: Path, server: int, seq: object) -> None:
+    # A snapshot's "seq" (the journal sequence its state includes) that is no sequence at
+    # all, or lies past the journal's end (damaged, or the journal stream made anew): the
+    # state is kept and the journal read from its start (the samples the state holds come
+    # again and are set aside as repeats), so none of the 80 samples is lost.  Before, a
+    # negative one made the cluster refuse the read: the load failed and the whole round
+    # (the healthy stream's samples too) was held and tried again, for ever; one past the
+    # end skipped the journal's 10 samples without a word; a string threw the state away.
+    damaged, healthy = _owned_by_1_of_2(2)
+    _written(tmp_path, server, damaged)
+    _damage(server, damaged, {"seq": seq})
+    d, lines = _loader(tmp_path, server, "b")
+    try:
+        d.process([_array(damaged, 60.0, [500.0] * 20), _array(healthy, 0.0, [500.0] * 20)])
+        assert healthy in d.engines and d.engines[healthy].samples_total == 20
+        eng = d.engines[damaged]
+        assert eng.samples_total == 80, eng.samples_total
+        assert _counter(d, "shiftwatch_stream_states_set_aside_total") == 1
+        said = [x for x in lines.lines if stream_key(damaged) in x]
+        assert said and f"bucket {NAME}_state" in said[0], lines.lines
+    finally:
+        _close(d)
+
+
+def test_alert_records_of_a_snapshot_that_cannot_be_published_are_set_aside_and_named(
+        tmp_path: Path, server: int) -> None:
+    # The snapshot keeps the alert records the broker had not acknowledged; a loader
+    # publishes them again.  One whose topic or QoS paho refuses would stop the daemon
+    # (paho raises, at every start again); the others must still go out.
+    [topic] = _owned_by_1_of_2(1)
+    _written(tmp_path, server, topic)
+    good = ["sw/out/alerts/x", "eyJpZCI6IDF9", 1]
+    bad = [["sw/out/#", "eyJpZCI6IDF9", 1], ["sw/out/alerts/y", "eyJpZCI6IDF9", 7],
+           [{"a": 1}, "eyJpZCI6IDF9", 1], ["sw/out/alerts/z", "not base64!", 1], "a record"]
+    _damage(server, topic, {"records": [good, *bad], "unit": {"g": 1}, "filter": 5})
+    # The reference: paho refuses the first two (and a topic that is no text).
+    client = paho.Client(paho.CallbackAPIVersion.VERSION2)
+    for t, _p, q in bad[:3]:
+        with pytest.raises((ValueError, TypeError, AttributeError)):
+            client.publish(t, b"{}", qos=q)  # type: ignore[arg-type]
+    io = _io(server, "reader")
+    try:
+        cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="reader")
+        r = cs.load([topic])[topic]
+    finally:
+        io.close()
+    assert r.records == [("sw/out/alerts/x", b'{"id": 1}', 1)]
+    assert r.state is not None and r.unit is None and r.topic_filter is None
+    assert r.problem is not None and f"bucket {NAME}_state key {stream_key(topic)}" in r.problem
+    assert r.problem.count("alert record") == len(bad) and "unit" in r.problem and "filter" in r.problem
+    d, _lines = _loader(tmp_path, server, "c")
+    try:
+        d.process([_array(topic, 60.0, [500.0] * 20)])
+        assert d.engines[topic].samples_total == 80 and d.engines[topic].unit == "g"
+        assert _counter(d, "shiftwatch_stream_states_set_aside_total") == 1
+    finally:
+        _close(d)
+
+
+def test_a_damaged_journal_message_is_named_by_its_sequence_and_the_rest_is_fed(
+        tmp_path: Path, server: int) -> None:
+    [topic] = _owned_by_1_of_2(1)
+    _written(tmp_path, server, topic)
+    seq = asyncio.run(_publish_journal(server, topic, b"\xff\x00 not a journal round"))
+    d, lines = _loader(tmp_path, server, "d")
+    try:
+        d.process([_array(topic, 60.0, [500.0] * 20)])
+        assert d.engines[topic].samples_total == 80
+        assert _counter(d, "shiftwatch_stream_states_set_aside_total") == 1
+        said = [x for x in lines.lines if f"{NAME}_journal sequence {seq}" in x]
+        assert said, lines.lines
+    finally:
+        _close(d)
+
+
+def test_an_engine_state_of_the_wrong_shape_is_named_by_bucket_and_key(tmp_path: Path, server: int) -> None:
+    # The engine state itself damaged: the stream warms up again from what its journal
+    # holds after the snapshot (the 50 samples the snapshot held are gone with it).
+    [topic] = _owned_by_1_of_2(1)
+    _written(tmp_path, server, topic)
+    _damage(server, topic, {"state": {"kind": "zz"}})
+    d, lines = _loader(tmp_path, server, "e")
+    try:
+        d.process([_array(topic, 60.0, [500.0] * 20)])
+        assert d.engines[topic].samples_total == 30
+        assert _counter(d, "shiftwatch_stream_states_set_aside_total") == 1
+        said = [x for x in lines.lines if f"bucket {NAME}_state key {stream_key(topic)}" in x]
+        assert said, lines.lines
+    finally:
+        _close(d)
