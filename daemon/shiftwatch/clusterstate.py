@@ -286,20 +286,47 @@ class ClusterState:
         (ClusterError when it did not acknowledge them in time).  A group parked twice
         (a round taken again after a timeout) is stored once: its message id is the hash
         of the writer and the body, which JetStream's duplicate window checks."""
-        headers = {WRITER: self.writer, WRITTEN: f"{time.time():.3f}"}
         sem = asyncio.Semaphore(PARALLEL)
 
         async def one(g: JournalGroup) -> None:
-            body = encode_groups([g])
-            digest = hashlib.sha256(self.writer.encode() + body).hexdigest()[:32]
             async with sem:
-                await self.io.publish(self.parked_subject(g.stream), body,
-                                      headers={**headers, "Nats-Msg-Id": digest})
+                await self._park_one(g)
 
         async def go() -> None:
             await asyncio.gather(*(one(g) for g in groups))
 
         self.io.run(go(), timeout=self.io.timeout * (1 + len(groups) // PARALLEL))
+
+    async def _park_one(self, g: JournalGroup) -> None:
+        body = encode_groups([g])
+        digest = hashlib.sha256(self.writer.encode() + body).hexdigest()[:32]
+        await self.io.publish(self.parked_subject(g.stream), body,
+                              headers={WRITER: self.writer, WRITTEN: f"{time.time():.3f}",
+                                       "Nats-Msg-Id": digest})
+
+    def park_behind(self, groups: list[JournalGroup]) -> list[JournalGroup]:
+        """Park samples of streams whose earlier samples this daemon parked and which it let
+        go before it loaded them, behind those (the next owner feeds the parking in time
+        order after the journal), while the stream's journal still ends at the sequence this
+        daemon read: once it moved on, the owner has loaded the stream (and its parking), so
+        these are refused, as a journal write would be.  Returns the groups refused; raises
+        ClusterError when the cluster did not answer in time."""
+        sem = asyncio.Semaphore(PARALLEL)
+        refused: list[JournalGroup] = []
+
+        async def one(g: JournalGroup) -> None:
+            async with sem:
+                last, _ = await self.io.last_seq(self.stream, self.subject(g.stream))
+                if last != self.seq.get(g.stream, 0):
+                    refused.append(g)
+                    return
+                await self._park_one(g)
+
+        async def go() -> None:
+            await asyncio.gather(*(one(g) for g in groups))
+
+        self.io.run(go(), timeout=self.io.timeout * (1 + len(groups) // PARALLEL))
+        return refused
 
     def unpark(self, lasts: Mapping[str, int]) -> None:
         """Purge each stream's parked messages up to and including the sequence given

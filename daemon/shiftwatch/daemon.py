@@ -336,6 +336,10 @@ class Daemon:
         # to finish its own (see _cluster_load, _park); the rounds are acknowledged as usual.
         self.writer_id = secrets.token_hex(6)
         self._deferred: dict[str, float] = {}
+        # Streams whose samples this daemon parked and has not fed itself since (it let them
+        # go at a reload while they waited): samples of them that still come here are parked
+        # behind those, not journaled ahead of them (see _take_foreign).
+        self._parked_here: set[str] = set()
         # A shard with its state in the cluster asks the shard that wrote a moved stream
         # last to pass on what it still holds of it, and answers such asks (see
         # shiftwatch.handover).
@@ -706,6 +710,7 @@ class Daemon:
                 if now - r.written_at < wait:
                     self._deferred[name] = r.written_at + wait
                     continue
+            self._parked_here.discard(name)  # loaded here: this load feeds what is parked
             if r.problem is not None:
                 self.metrics.states_set_aside.inc()
                 self.log.warning("stream %s: %s; what could be read is used", _printable(name), r.problem)
@@ -892,9 +897,21 @@ class Daemon:
                                             np.asarray(values, dtype=np.float64),
                                             np.asarray(arrivals, dtype=np.float64),
                                             self._filters.get(name, spec.topic)))
-            if out:
+            # A stream this shard parked samples of while it waited, and let go before it
+            # loaded it (the number of shards changed again): what still comes of it is
+            # parked behind those, whose next owner feeds the parking after the journal in
+            # time order.  Journaled, these newer samples came before the parked ones, which
+            # were then set aside as out of order.
+            behind = [g for g in out if g.stream in self._parked_here]
+            out = [g for g in out if g.stream not in self._parked_here]
+            if out or behind:
                 try:
-                    refused = self.cluster.journal(out)
+                    refused = self.cluster.journal(out) if out else []
+                    if behind:
+                        late = self.cluster.park_behind(behind)
+                        self._parked_here.difference_update(g.stream for g in late)
+                        refused += late
+                        out += behind
                 except ClusterError as exc:
                     self.metrics.journal_failures.inc()
                     self.rlog.warning("cluster_journal", f"samples of another shard's streams not "
@@ -1434,6 +1451,7 @@ class Daemon:
                               f"parked in the cluster ({exc}); the round is held and tried again", now)
             return False
         self.metrics.samples_parked.inc(sum(len(g.values) for g in parked))
+        self._parked_here.update(g.stream for g in parked)
         return True
 
     def _add_columns(self, into: dict[str, list[Any]], name: str, spec: StreamConfig, unit: str | None,

@@ -399,3 +399,40 @@ def test_a_damaged_parked_message_is_set_aside_named_and_counted_and_the_rest_is
         assert _parked(server, topic)[2] == 0
     finally:
         _close(second)
+
+
+def test_late_samples_of_a_stream_let_go_while_it_waited_stay_behind_its_parked_ones(
+        tmp_path: Path, server: int) -> None:
+    # Two changes of the number of shards within cluster.handover_wait: the stream moved
+    # to this shard, which parked its samples while it waited for the old owner's answer
+    # (times 100 to 159), then moved on before the answer came (the reload lets the
+    # deferred stream go, its parked samples stay for the next owner).  Samples of it that
+    # reach this shard late (times 160 to 199, sent before the mapping changed) used to go
+    # to the stream's journal, ahead of the older parked ones: the next owner feeds the
+    # journal first, then the parking, so the 60 parked samples came after newer ones and
+    # were set aside as out of order (a step among them would have been missed).  Now they
+    # are parked behind them, and the next owner feeds all 200 in time order.
+    topic = next(t for t in _owned_by_1_of_2(16) if partition_of(t, LEVELS, 3) != 1)
+    _old_writer(server, topic, 100)
+    d = _daemon(tmp_path, server, "twice")
+    try:
+        d.process([_array(topic, 100.0, [500.0] * 60)])
+        assert topic in d._deferred
+        moved_on = tmp_path / "twice-of-3.yaml"
+        moved_on.write_text((tmp_path / "twice.yaml").read_text().replace("of: 2", "of: 3"))
+        d._set_shard(load_config(str(moved_on)))
+        assert topic not in d._deferred and d.owner is not None and not d.owner.owns(topic)
+        d.process([_array(topic, 160.0, [500.1] * 40)])
+        assert _counter(d, "shiftwatch_messages_dropped_total", reason="other_shard") == 40
+    finally:
+        _close(d)
+    time.sleep(1.2)  # past the next owner's cluster.handover_wait and redelivery_wait
+    nxt = _daemon(tmp_path, server, "next-owner", handover_wait=1.0)
+    try:
+        nxt.process([_array(topic, 200.0, [500.1] * 20)])
+        eng = nxt.engines[topic]
+        assert eng.samples_total == 220 and not sum(eng.rejected_total.values()), (
+            eng.samples_total, eng.rejected_total)
+        assert _journaled(server, topic) == [float(i) for i in range(220)]
+    finally:
+        _close(nxt)
