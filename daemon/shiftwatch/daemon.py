@@ -725,6 +725,16 @@ class Daemon:
                 (g.topic_filter for g in reversed([*r.groups, *r.parked]) if g.topic_filter), None)
             spec = self.cfg.stream_for(name, topic_filter)
             if spec is None:
+                if r.parked_last:
+                    from shiftwatch.clusterstate import JOURNAL_MAX_AGE
+
+                    # Its entry was removed while it waited: no engine, and the parked
+                    # samples stay for a configuration that has the entry again.
+                    self.log.warning("stream %s has no stream entry any more: its %d parked sample(s) "
+                                     "stay in %s (subject %s, kept up to %d days) for a configuration "
+                                     "that has its entry again", _printable(name),
+                                     sum(len(g.values) for g in r.parked), self.cluster.parking,
+                                     self.cluster.parked_subject(name), round(JOURNAL_MAX_AGE / 86400))
                 continue
             eng = StreamEngine(name, spec.detection, unit=r.unit or spec.unit)
             if r.state is not None:

@@ -436,3 +436,35 @@ def test_late_samples_of_a_stream_let_go_while_it_waited_stay_behind_its_parked_
         assert _journaled(server, topic) == [float(i) for i in range(220)]
     finally:
         _close(nxt)
+
+
+def test_parked_samples_of_a_stream_whose_entry_was_removed_stay_and_are_said(
+        tmp_path: Path, server: int) -> None:
+    # The stream's entry removed from the configuration (a reload) while its samples were
+    # parked: when its wait ends no engine is made, and the parked samples stay in the
+    # cluster for a configuration that has the entry again (the parking keeps them up to
+    # its age limit).  That used to happen without a word: the only line said the stream
+    # was loaded with what the cluster holds.
+    [topic] = _owned_by_1_of_2(1)
+    _old_writer(server, topic, 100)
+    d = _daemon(tmp_path, server, "no-entry", handover_wait=1.0)
+    lines: list[str] = []
+    handler = logging.Handler()
+    handler.emit = lambda rec: lines.append(rec.getMessage())  # type: ignore[method-assign]
+    d.log.addHandler(handler)
+    try:
+        d.process([_array(topic, 100.0, [500.0] * 60)])
+        assert topic in d._deferred
+        path = tmp_path / "no-entry.yaml"
+        path.write_text(path.read_text().replace("brackenfield/+/+/fill", "brackenfield/+/+/weight"))
+        d.reload()
+        time.sleep(1.1)
+        d._release_deferred()
+        assert topic not in d._deferred and topic not in d.engines
+        times, _values, last = _parked(server, topic)
+        assert times == [float(t) for t in range(100, 160)] and last > 0  # kept
+        subject = d.cluster.parked_subject(topic)
+        said = [x for x in lines if subject in x and "60 parked sample(s)" in x]
+        assert said, lines
+    finally:
+        _close(d)
