@@ -196,3 +196,80 @@ def test_an_engine_state_of_the_wrong_shape_is_named_by_bucket_and_key(tmp_path:
         assert said, lines.lines
     finally:
         _close(d)
+
+
+def test_a_real_daemon_restarted_on_a_snapshot_with_unpublishable_records_keeps_running(
+        tmp_path: Path) -> None:
+    # The process itself: `shiftwatch run` with its state in the cluster (a lone nats-server
+    # with JetStream and MQTT), stopped (SIGTERM: its snapshot saved), its stream's entry
+    # given an alert record on a wildcard topic and one of QoS 7 with nats-py, started
+    # again.  Before, paho's publish of the first raised at the stream's load and the daemon
+    # stopped with a traceback, at every start again (a trial with 3 shards lost all 4,500
+    # samples of the damaged shard's streams that way); now it names the entry and runs on.
+    import subprocess
+    import sys
+
+    from shiftwatch.broker import wait_until
+    from shiftwatch.mqtt import PlainClient
+
+    from .killrun import metric, scrape
+    from .natskit import free_port_block
+
+    proc, port = start_lone_server(tmp_path, "damaged-run", mqtt='ack_wait: "2s"')
+    metrics_port = free_port_block(1)
+    topic = "brackenfield/line1/head1/fill"
+    config = tmp_path / "shiftwatch.yaml"
+    config.write_text(
+        f"broker: {{url: 'mqtt://127.0.0.1:{port + 1}', client_id: dmg, mqtt_version: '3.1.1'}}\n"
+        "streams:\n  - {topic: 'brackenfield/+/+/fill', format: json, value: v, time: ts, unit: g}\n"
+        f"alerts: {{topic_prefix: dmg/out}}\nmetrics: {{listen: '127.0.0.1:{metrics_port}'}}\n"
+        f"state: {{dir: '{tmp_path / 'state'}', keep: cluster, snapshot_every: 2s}}\n"
+        f"cluster: {{servers: ['nats://127.0.0.1:{port}'], name: {NAME}, replicas: 1, "
+        "redelivery_wait: 0s}\n")
+    log = tmp_path / "daemon.log"
+    cmd = [sys.executable, "-m", "shiftwatch", "run", "--config", str(config)]
+    pub = PlainClient(f"mqtt://127.0.0.1:{port + 1}", "dmg-publisher", mqtt_version="3.1.1").start()
+    daemon: subprocess.Popen[bytes] | None = None
+
+    def start() -> subprocess.Popen[bytes]:
+        offset = log.stat().st_size if log.exists() else 0
+        with open(log, "ab") as out:
+            p = subprocess.Popen(cmd, stdout=out, stderr=subprocess.STDOUT)
+        assert wait_until(lambda: "connected to broker" in log.read_text()[offset:] or p.poll() is not None, 60)
+        return p
+
+    def taken() -> float:
+        try:
+            return metric(scrape(metrics_port), "shiftwatch_samples_total", stream=topic)
+        except OSError:
+            return -1.0
+
+    def send(t0: int, n: int) -> None:
+        for j in range(t0, t0 + n):
+            pub.publish(topic, json.dumps({"v": 500.0, "ts": 1_790_000_000 + j}), qos=1)
+
+    try:
+        daemon = start()
+        send(0, 100)
+        assert wait_until(lambda: taken() >= 100, 60), log.read_text()[-2000:]
+        daemon.send_signal(15)
+        assert daemon.wait(60) == 0
+        doc = json.loads(asyncio.run(_kv(port, topic)))
+        doc["records"] = [*doc.get("records", []), ["dmg/#", "e30=", 1], ["dmg/out/x", "e30=", 7]]
+        asyncio.run(_kv(port, topic, json.dumps(doc).encode()))
+        daemon = start()
+        send(100, 50)
+        assert wait_until(lambda: taken() >= 150 or daemon.poll() is not None, 60)
+        text = log.read_text()
+        assert daemon.poll() is None and "Traceback" not in text, text[-3000:]
+        assert taken() == 150
+        assert f"bucket {NAME}_state key {stream_key(topic)}" in text, text[-3000:]
+        m = scrape(metrics_port)
+        assert metric(m, "shiftwatch_stream_states_set_aside_total") == 1
+    finally:
+        pub.stop()
+        if daemon is not None and daemon.poll() is None:
+            daemon.terminate()
+            daemon.wait(60)
+        proc.terminate()
+        proc.wait(10)
