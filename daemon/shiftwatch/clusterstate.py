@@ -141,6 +141,9 @@ class ClusterState:
         self._rev: dict[str, int] = {}
         #: Streams the last :meth:`save` refused: written by another daemon since.
         self.refused: list[str] = []
+        #: Streams whose entry the last :meth:`save` found damaged (no stream state at all)
+        #: and wrote anew from the engine.
+        self.damaged: list[str] = []
 
     def subject(self, name: str) -> str:
         return f"{self.name}.journal.{stream_key(name)}"
@@ -370,6 +373,7 @@ class ClusterState:
         now = time.time()
         sem = asyncio.Semaphore(PARALLEL)
         refused: list[str] = []
+        damaged: list[str] = []
 
         async def one(name: str, state: dict[str, Any], f: str | None, unit: str | None,
                       records: list[tuple[str, bytes, int]]) -> None:
@@ -407,6 +411,13 @@ class ClusterState:
                     elif self.writer and _saved_by(entry.value) == self.writer:
                         new = await self.io.kv_update(self.bucket, stream_key(name), body,
                                                       last=entry.revision)
+                    elif not _is_state(entry.value):
+                        # Damaged (put there by hand or by another program): nobody's stream
+                        # state, and nobody wrote the stream since (the check above).  The
+                        # engine here is good: written anew, not dropped as stale.
+                        damaged.append(name)
+                        new = await self.io.kv_update(self.bucket, stream_key(name), body,
+                                                      last=entry.revision)
                 if new is None:
                     refused.append(name)
                     return
@@ -426,6 +437,7 @@ class ClusterState:
             raise ClusterError(f"NATS cluster {self.io.where}: snapshot to bucket {self.bucket} "
                                f"failed ({type(exc).__name__}: {exc})") from None
         self.refused = sorted(refused)
+        self.damaged = sorted(damaged)
         return len(entries) - len(refused)
 
 
@@ -451,6 +463,15 @@ def _short(v: Any) -> str:
     """A damaged value for a log line: its repr, cut to 60 characters."""
     text = repr(v)
     return text if len(text) <= 60 else text[:57] + "..."
+
+
+def _is_state(value: bytes) -> bool:
+    """Whether a bucket entry is a stream state at all (of whichever daemon)."""
+    try:
+        doc = json.loads(value)
+    except ValueError:
+        return False
+    return isinstance(doc, dict) and doc.get("format") == _FORMAT
 
 
 def _saved_by(value: bytes) -> str | None:

@@ -2201,6 +2201,15 @@ class Daemon:
             return False
         self._fed_since_snapshot.difference_update(names)
         self.metrics.snapshots.inc()
+        if self.cluster.damaged:
+            from shiftwatch.clusterstate import stream_key as _stream_key
+
+            self.metrics.states_set_aside.inc(len(self.cluster.damaged))
+            first = self.cluster.damaged[0]
+            self.log.warning("%d stream(s) had an entry that is no stream state (damaged), e.g. %s "
+                             "(bucket %s key %s): written anew from this daemon's engines",
+                             len(self.cluster.damaged), _printable(first), self.cluster.bucket,
+                             _stream_key(first))
         stale = [n for n in self.cluster.refused if n in self.engines]
         if stale:
             # Written by another daemon since this one last wrote or read them (they moved,
