@@ -141,6 +141,10 @@ class ClusterState:
         self._rev: dict[str, int] = {}
         #: Streams the last :meth:`save` refused: written by another daemon since.
         self.refused: list[str] = []
+        #: Streams whose journal write was refused because the subject's last message is
+        #: none of a daemon's (no writer header: put there by hand or by another program),
+        #: with that message's sequence; the daemon takes them out when it says so.
+        self.unsigned: dict[str, int] = {}
         #: Streams whose entry the last :meth:`save` found damaged (no stream state at all)
         #: and wrote anew from the engine.
         self.damaged: list[str] = []
@@ -534,6 +538,8 @@ class JournalRound:
                     at, hdrs, stored = await cs.io.last_message(cs.stream, subject)
                     if at > last and hdrs.get(WRITER) == cs.writer and stored == body:
                         return g, at
+                    if at and WRITER not in hdrs:
+                        cs.unsigned[g.stream] = at
                     return g, None
                 return g, seq
 

@@ -825,6 +825,8 @@ class Daemon:
                 # its engine here is stale.  Load it again and feed it this round once more.
                 if self.owner is not None:
                     theirs = [g for g in refused if not self._owns_stream(g.stream)]
+                    for g in theirs:
+                        self.cluster.unsigned.pop(g.stream, None)
                     if theirs:
                         self._let_go([g.stream for g in theirs], save=False)
                         self._count_drop("other_shard", sum(len(g.values) for g in theirs))
@@ -832,9 +834,7 @@ class Daemon:
                         if not refused:
                             return True
                 names = [g.stream for g in refused]
-                self.log.warning("%d stream(s) were written by another daemon meanwhile (they moved "
-                                 "between shards), e.g. %s; reloading them from the cluster",
-                                 len(names), _printable(names[0]))
+                self._say_refused(names)
                 for n in names:
                     self.engines.pop(n, None)
                 self._cluster_load(names)
@@ -855,6 +855,7 @@ class Daemon:
                 # again, to the same end.
                 lost = sum(len(g.values) for g in refused)
                 for g in refused:
+                    self.cluster.unsigned.pop(g.stream, None)
                     self.engines.pop(g.stream, None)
                     self.metrics.remove_stream(g.stream)
                 self._count_drop("stream_moved", lost)
@@ -886,6 +887,23 @@ class Daemon:
     def _owns_stream(self, name: str) -> bool:
         topic = self._topic_of.get(name)
         return self.owner is None or topic is None or self.owner.owns(topic)
+
+    def _say_refused(self, names: list[str]) -> None:
+        """Why the journal refused these streams' groups: another daemon wrote them (they
+        moved between shards), or a message no daemon wrote ends their journal."""
+        assert self.cluster is not None
+        unsigned = {n: self.cluster.unsigned.pop(n) for n in names if n in self.cluster.unsigned}
+        moved = [n for n in names if n not in unsigned]
+        if unsigned:
+            first = next(iter(unsigned))
+            self.log.warning("%d stream(s) have a journal message that no shiftwatch wrote (no writer "
+                             "header; put there by hand or by another program?), e.g. %s: %s "
+                             "sequence %d; reloading them from the cluster", len(unsigned),
+                             _printable(first), self.cluster.stream, unsigned[first])
+        if moved:
+            self.log.warning("%d stream(s) were written by another daemon meanwhile (they moved "
+                             "between shards), e.g. %s; reloading them from the cluster",
+                             len(moved), _printable(moved[0]))
 
     def _take_foreign(self, foreign: dict[str, list[Any]], now: float) -> bool:
         """Samples of streams the mapping gives another shard: not fed to an engine.
@@ -929,6 +947,8 @@ class Daemon:
                                       "tried again", now)
                     return False
                 gone = {g.stream for g in refused}
+                for n in gone:
+                    self.cluster.unsigned.pop(n, None)  # (refused as another shard's stream)
                 handed = sum(len(g.values) for g in out if g.stream not in gone)
         self._count_drop("other_shard", n)
         if handed:

@@ -324,3 +324,25 @@ def test_a_lease_key_overwritten_with_garbage_stops_the_owner_with_what_was_foun
     finally:
         lease.release()
         io.close()
+
+
+def test_a_message_no_daemon_wrote_in_a_running_stream_s_journal_is_named_not_taken_for_a_move(
+        tmp_path: Path, server: int) -> None:
+    # Bytes appended to a stream's journal subject while its owner runs.  The owner's next
+    # write is refused (the subject moved on) and the stream is reloaded and fed the round
+    # again, which loses nothing; but the line said the stream "moved between shards",
+    # and sent the reader after a reshard that never happened.
+    [topic] = _owned_by_1_of_2(1)
+    d = _daemon(tmp_path, server, "journal-owner")
+    lines = _Lines()
+    d.log.addHandler(lines)
+    try:
+        d.process([_array(topic, 0.0, [500.0] * 50)])
+        seq = asyncio.run(_publish_journal(server, topic, b"\xff\x00 garbage"))
+        d.process([_array(topic, 50.0, [500.0] * 10)])
+        assert d.engines[topic].samples_total == 60
+        assert not any("moved between shards" in x for x in lines.lines), lines.lines
+        said = [x for x in lines.lines if f"{NAME}_journal sequence {seq}" in x and "no shiftwatch" in x]
+        assert said, lines.lines
+    finally:
+        _close(d)
