@@ -336,9 +336,9 @@ class Daemon:
         # to finish its own (see _cluster_load, _park); the rounds are acknowledged as usual.
         self.writer_id = secrets.token_hex(6)
         self._deferred: dict[str, float] = {}
-        # Streams whose samples this daemon parked and has not fed itself since (it let them
-        # go at a reload while they waited): samples of them that still come here are parked
-        # behind those, not journaled ahead of them (see _take_foreign).
+        # Streams whose samples this daemon parked and has not loaded since: when a reload
+        # let one go while it waited, samples of it that still come here are parked behind
+        # those, not journaled ahead of them (see _take_foreign).
         self._parked_here: set[str] = set()
         # A shard with its state in the cluster asks the shard that wrote a moved stream
         # last to pass on what it still holds of it, and answers such asks (see
