@@ -947,8 +947,8 @@ class Daemon:
                                       "tried again", now)
                     return False
                 gone = {g.stream for g in refused}
-                for n in gone:
-                    self.cluster.unsigned.pop(n, None)  # (refused as another shard's stream)
+                for name in gone:
+                    self.cluster.unsigned.pop(name, None)  # (refused as another shard's stream)
                 handed = sum(len(g.values) for g in out if g.stream not in gone)
         self._count_drop("other_shard", n)
         if handed:

@@ -468,3 +468,25 @@ def test_parked_samples_of_a_stream_whose_entry_was_removed_stay_and_are_said(
         assert said, lines
     finally:
         _close(d)
+
+
+def test_samples_of_another_shard_s_stream_refused_by_its_journal_are_set_aside_and_counted(
+        tmp_path: Path, server: int) -> None:
+    # A shard that gets samples of a stream the mapping gives another shard writes them to
+    # the stream's journal with the last sequence it knows (none: it never had the stream);
+    # once the owner has written the stream they are refused, set aside and counted as
+    # other_shard.  (A change on this branch once reused the count's name for a loop over
+    # the refused streams, and the shard stopped with a TypeError at such a refusal.)
+    topic = next(t for t in _owned_by_1_of_2(16) if partition_of(t, LEVELS, 3) != 1)
+    _old_writer(server, topic, 100)  # the owner has written it
+    d = _daemon(tmp_path, server, "not-mine")
+    try:
+        moved_on = tmp_path / "not-mine-of-3.yaml"
+        moved_on.write_text((tmp_path / "not-mine.yaml").read_text().replace("of: 2", "of: 3"))
+        d._set_shard(load_config(str(moved_on)))
+        d.process([_array(topic, 100.0, [500.0] * 30)])
+        assert _counter(d, "shiftwatch_messages_dropped_total", reason="other_shard") == 30
+        assert _counter(d, "shiftwatch_samples_handed_over_total") == 0
+        assert _journaled(server, topic) == [float(i) for i in range(100)]
+    finally:
+        _close(d)
