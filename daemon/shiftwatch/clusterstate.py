@@ -386,6 +386,8 @@ class ClusterState:
                 last, headers = await self.io.last_seq(self.stream, self.subject(name))
                 if last != seq:
                     if not (last > seq and self.writer and headers.get(WRITER) == self.writer):
+                        if last and WRITER not in headers:
+                            self.unsigned[name] = last  # none of a daemon's: said as such
                         refused.append(name)
                         return
                     # This daemon's own message past its sequence: a round whose journal wait

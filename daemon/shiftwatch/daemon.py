@@ -834,7 +834,8 @@ class Daemon:
                         if not refused:
                             return True
                 names = [g.stream for g in refused]
-                self._say_refused(names)
+                self._say_refused(names, "were written by another daemon meanwhile (they moved between "
+                                  "shards)", "reloading them from the cluster")
                 for n in names:
                     self.engines.pop(n, None)
                 self._cluster_load(names)
@@ -888,9 +889,10 @@ class Daemon:
         topic = self._topic_of.get(name)
         return self.owner is None or topic is None or self.owner.owns(topic)
 
-    def _say_refused(self, names: list[str]) -> None:
-        """Why the journal refused these streams' groups: another daemon wrote them (they
-        moved between shards), or a message no daemon wrote ends their journal."""
+    def _say_refused(self, names: list[str], moved_text: str, then: str) -> None:
+        """Why the cluster refused these streams (a journal write, a snapshot): another
+        daemon wrote them (``moved_text``), or a message no daemon wrote ends their journal
+        (``ClusterState.unsigned``); ``then``: what this daemon does about it."""
         assert self.cluster is not None
         unsigned = {n: self.cluster.unsigned.pop(n) for n in names if n in self.cluster.unsigned}
         moved = [n for n in names if n not in unsigned]
@@ -898,12 +900,11 @@ class Daemon:
             first = next(iter(unsigned))
             self.log.warning("%d stream(s) have a journal message that no shiftwatch wrote (no writer "
                              "header; put there by hand or by another program?), e.g. %s: %s "
-                             "sequence %d; reloading them from the cluster", len(unsigned),
-                             _printable(first), self.cluster.stream, unsigned[first])
+                             "sequence %d; %s", len(unsigned), _printable(first), self.cluster.stream,
+                             unsigned[first], then)
         if moved:
-            self.log.warning("%d stream(s) were written by another daemon meanwhile (they moved "
-                             "between shards), e.g. %s; reloading them from the cluster",
-                             len(moved), _printable(moved[0]))
+            self.log.warning("%d stream(s) %s, e.g. %s; %s", len(moved), moved_text,
+                             _printable(moved[0]), then)
 
     def _take_foreign(self, foreign: dict[str, list[Any]], now: float) -> bool:
         """Samples of streams the mapping gives another shard: not fed to an engine.
@@ -2237,9 +2238,9 @@ class Daemon:
             # here; samples of them that still come load them afresh, or are refused by the
             # journal and set aside.
             self._let_go(stale, save=False)  # (its status-page entries go with them)
-            self.log.warning("%d stream(s) were written by another daemon since this one last did "
-                             "(e.g. %s): not saved over its work; their engines here are dropped",
-                             len(stale), _printable(stale[0]))
+            self._say_refused(stale, "were written by another daemon since this one last did: not "
+                              "saved over its work", "their engines here are dropped (loaded again "
+                              "from the cluster with their next samples)")
         return True
 
     def _journal_half_full(self) -> bool:

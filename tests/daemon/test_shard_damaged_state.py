@@ -346,3 +346,25 @@ def test_a_message_no_daemon_wrote_in_a_running_stream_s_journal_is_named_not_ta
         assert said, lines.lines
     finally:
         _close(d)
+
+
+def test_a_message_no_daemon_wrote_found_at_a_snapshot_is_named_not_taken_for_another_daemon_s(
+        tmp_path: Path, server: int) -> None:
+    # As above, but the snapshot comes first: the journal no longer ends where the owner
+    # left it, so the save is refused and the engine dropped (loaded again with the next
+    # samples, nothing lost); the line said another daemon had written the stream.
+    [topic] = _owned_by_1_of_2(1)
+    d = _daemon(tmp_path, server, "snapshot-owner")
+    lines = _Lines()
+    d.log.addHandler(lines)
+    try:
+        d.process([_array(topic, 0.0, [500.0] * 50)])
+        seq = asyncio.run(_publish_journal(server, topic, b"\xff\x00 garbage"))
+        assert d._cluster_snapshot()
+        assert not any("written by another daemon" in x for x in lines.lines), lines.lines
+        said = [x for x in lines.lines if f"{NAME}_journal sequence {seq}" in x and "no shiftwatch" in x]
+        assert said, lines.lines
+        d.process([_array(topic, 50.0, [500.0] * 10)])
+        assert d.engines[topic].samples_total == 60
+    finally:
+        _close(d)
