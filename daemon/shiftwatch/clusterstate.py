@@ -141,6 +141,13 @@ class ClusterState:
         self._rev: dict[str, int] = {}
         #: Streams the last :meth:`save` refused: written by another daemon since.
         self.refused: list[str] = []
+        #: Streams whose journal write was refused because the subject's last message is
+        #: none of a daemon's (no writer header: put there by hand or by another program),
+        #: with that message's sequence; the daemon takes them out when it says so.
+        self.unsigned: dict[str, int] = {}
+        #: Streams whose entry the last :meth:`save` found damaged (no stream state at all)
+        #: and wrote anew from the engine.
+        self.damaged: list[str] = []
 
     def subject(self, name: str) -> str:
         return f"{self.name}.journal.{stream_key(name)}"
@@ -186,28 +193,26 @@ class ClusterState:
     async def _load_one(self, name: str, parked: bool = False) -> tuple[Restored, int]:
         r = Restored()
         subject = self.subject(name)
-        entry = await self.io.kv_get(self.bucket, stream_key(name))
+        key = stream_key(name)
+        problems: list[str] = []
+        entry = await self.io.kv_get(self.bucket, key)
         self._rev[name] = 0 if entry is None else entry.revision
-        after = 0
+        where = f"bucket {self.bucket} key {key}"
+        after: int | None = 0
         if entry is not None:
-            try:
-                doc = json.loads(entry.value)
-                if not isinstance(doc, dict) or doc.get("format") != _FORMAT:
-                    raise ValueError("not a shiftwatch stream state")
-                if doc.get("schema_version") != SCHEMA_VERSION:
-                    raise ValueError(f"schema version {doc.get('schema_version')!r}")
-                if doc.get("stream") != name:
-                    raise ValueError("saved under another stream's name (hash collision)")
-                after = int(doc["seq"])
-                r.state = decode_state(doc["state"])
-                r.topic_filter = doc.get("filter")
-                r.unit = doc.get("unit")
-                r.saved_at = float(doc.get("saved_at", 0.0))
-                r.records = [(str(t), base64.b64decode(p), int(q)) for t, p, q in doc.get("records", [])]
-            except (ValueError, KeyError, TypeError) as exc:
-                r.state, after = None, 0
-                r.problem = f"saved state in bucket {self.bucket} unusable ({exc})"
+            after, why = self._read_entry(r, name, entry.value, where)
+            if why is not None:
+                problems.append(why)
         last, headers = await self.io.last_seq(self.stream, subject)
+        if after is None or after > last:
+            # A position that cannot be (the journal's last message stays at every purge, so
+            # a snapshot never includes more than the journal holds): damaged, or the journal
+            # stream was made anew.  The state is kept and the journal fed from its start:
+            # samples the state already holds are set aside as repeats, none is skipped.
+            if after is not None:
+                problems.append(f"saved state in {where} includes journal sequence {after}, past the "
+                                f"end of {self.stream} ({last}); its journal is read from the start")
+            after = 0
         r.written_by = headers.get(WRITER)
         try:
             r.written_at = float(headers.get(WRITTEN, "nan"))
@@ -216,21 +221,71 @@ class ClusterState:
         shard = headers.get(SHARD, "")
         r.written_shard = int(shard) if shard.isascii() and shard.isdigit() else None
         if last > after:
-            for _seq, body in await self.io.messages_after(self.stream, subject, after, last):
+            for seq, body in await self.io.messages_after(self.stream, subject, after, last):
                 try:
                     r.groups.extend(g for g in decode_groups(body) if g.stream == name)
                 except (ValueError, TypeError) as exc:
-                    r.problem = f"journal message on {subject} unusable ({exc})"
+                    problems.append(f"journal message {self.stream} sequence {seq} ({subject}) unusable "
+                                    f"({exc}); its samples are set aside")
         if parked:
             psubject = self.parked_subject(name)
             r.parked_last, _ = await self.io.last_seq(self.parking, psubject)
-            for _seq, body in await self.io.messages_after(self.parking, psubject, 0, r.parked_last):
+            for seq, body in await self.io.messages_after(self.parking, psubject, 0, r.parked_last):
                 try:
                     r.parked.extend(g for g in decode_groups(body) if g.stream == name)
                 except (ValueError, TypeError) as exc:
-                    r.problem = f"parked message on {psubject} unusable ({exc})"
+                    problems.append(f"parked message {self.parking} sequence {seq} ({psubject}) unusable "
+                                    f"({exc}); its samples are set aside")
+        if problems:
+            r.problem = "; ".join(problems)
         self._saved[name] = after
         return r, last
+
+    def _read_entry(self, r: Restored, name: str, value: bytes, where: str) -> tuple[int | None, str | None]:
+        """Fill ``r`` from a stream's entry in the bucket: the journal sequence the snapshot
+        includes (None: unusable) and what was wrong with the entry (None: nothing).  A part
+        of the entry that is damaged is set aside alone: the engine state (then the whole
+        snapshot: the stream warms up again from its journal), the position, the filter and
+        unit (the configuration's are used), each alert record that could not be published."""
+        try:
+            doc = json.loads(value)
+            if not isinstance(doc, dict) or doc.get("format") != _FORMAT:
+                raise ValueError("not a shiftwatch stream state")
+            if doc.get("schema_version") != SCHEMA_VERSION:
+                raise ValueError(f"schema version {doc.get('schema_version')!r}")
+            if doc.get("stream") != name:
+                raise ValueError("saved under another stream's name (hash collision)")
+            state = decode_state(doc["state"])
+            if not isinstance(state, dict):
+                raise TypeError(f"engine state is a {type(state).__name__}, not an object")
+        except (ValueError, KeyError, TypeError) as exc:
+            return 0, f"saved state in {where} unusable ({exc}); the stream starts from its journal"
+        wrong: list[str] = []
+        seq = doc.get("seq")
+        after: int | None = seq if type(seq) is int and seq >= 0 else None
+        if after is None:
+            wrong.append(f"journal position {_short(seq)} (its journal is read from the start)")
+        r.state = state
+        for part in ("filter", "unit"):
+            v = doc.get(part)
+            if v is not None and not isinstance(v, str):
+                wrong.append(f"{part} {_short(v)} (the configuration's is used)")
+            elif part == "filter":
+                r.topic_filter = v
+            else:
+                r.unit = v
+        saved_at = doc.get("saved_at", 0.0)
+        r.saved_at = float(saved_at) if type(saved_at) in (int, float) else None
+        records = doc.get("records", [])
+        for rec in records if isinstance(records, list) else [records]:
+            item = _record(rec)
+            if item is None:
+                wrong.append(f"alert record {_short(rec)} (not published again)")
+            else:
+                r.records.append(item)
+        if not wrong:
+            return after, None
+        return after, f"saved state in {where} has an unusable " + ", ".join(wrong)
 
     # ------------------------------------------------------------ parking
     def park(self, groups: list[JournalGroup]) -> None:
@@ -238,20 +293,47 @@ class ClusterState:
         (ClusterError when it did not acknowledge them in time).  A group parked twice
         (a round taken again after a timeout) is stored once: its message id is the hash
         of the writer and the body, which JetStream's duplicate window checks."""
-        headers = {WRITER: self.writer, WRITTEN: f"{time.time():.3f}"}
         sem = asyncio.Semaphore(PARALLEL)
 
         async def one(g: JournalGroup) -> None:
-            body = encode_groups([g])
-            digest = hashlib.sha256(self.writer.encode() + body).hexdigest()[:32]
             async with sem:
-                await self.io.publish(self.parked_subject(g.stream), body,
-                                      headers={**headers, "Nats-Msg-Id": digest})
+                await self._park_one(g)
 
         async def go() -> None:
             await asyncio.gather(*(one(g) for g in groups))
 
         self.io.run(go(), timeout=self.io.timeout * (1 + len(groups) // PARALLEL))
+
+    async def _park_one(self, g: JournalGroup) -> None:
+        body = encode_groups([g])
+        digest = hashlib.sha256(self.writer.encode() + body).hexdigest()[:32]
+        await self.io.publish(self.parked_subject(g.stream), body,
+                              headers={WRITER: self.writer, WRITTEN: f"{time.time():.3f}",
+                                       "Nats-Msg-Id": digest})
+
+    def park_behind(self, groups: list[JournalGroup]) -> list[JournalGroup]:
+        """Park samples of streams whose earlier samples this daemon parked and which it let
+        go before it loaded them, behind those (the next owner feeds the parking in time
+        order after the journal), while the stream's journal still ends at the sequence this
+        daemon read: once it moved on, the owner has loaded the stream (and its parking), so
+        these are refused, as a journal write would be.  Returns the groups refused; raises
+        ClusterError when the cluster did not answer in time."""
+        sem = asyncio.Semaphore(PARALLEL)
+        refused: list[JournalGroup] = []
+
+        async def one(g: JournalGroup) -> None:
+            async with sem:
+                last, _ = await self.io.last_seq(self.stream, self.subject(g.stream))
+                if last != self.seq.get(g.stream, 0):
+                    refused.append(g)
+                    return
+                await self._park_one(g)
+
+        async def go() -> None:
+            await asyncio.gather(*(one(g) for g in groups))
+
+        self.io.run(go(), timeout=self.io.timeout * (1 + len(groups) // PARALLEL))
+        return refused
 
     def unpark(self, lasts: Mapping[str, int]) -> None:
         """Purge each stream's parked messages up to and including the sequence given
@@ -295,6 +377,7 @@ class ClusterState:
         now = time.time()
         sem = asyncio.Semaphore(PARALLEL)
         refused: list[str] = []
+        damaged: list[str] = []
 
         async def one(name: str, state: dict[str, Any], f: str | None, unit: str | None,
                       records: list[tuple[str, bytes, int]]) -> None:
@@ -303,6 +386,8 @@ class ClusterState:
                 last, headers = await self.io.last_seq(self.stream, self.subject(name))
                 if last != seq:
                     if not (last > seq and self.writer and headers.get(WRITER) == self.writer):
+                        if last and WRITER not in headers:
+                            self.unsigned[name] = last  # none of a daemon's: said as such
                         refused.append(name)
                         return
                     # This daemon's own message past its sequence: a round whose journal wait
@@ -332,6 +417,13 @@ class ClusterState:
                     elif self.writer and _saved_by(entry.value) == self.writer:
                         new = await self.io.kv_update(self.bucket, stream_key(name), body,
                                                       last=entry.revision)
+                    elif not _is_state(entry.value):
+                        # Damaged (put there by hand or by another program): nobody's stream
+                        # state, and nobody wrote the stream since (the check above).  The
+                        # engine here is good: written anew, not dropped as stale.
+                        damaged.append(name)
+                        new = await self.io.kv_update(self.bucket, stream_key(name), body,
+                                                      last=entry.revision)
                 if new is None:
                     refused.append(name)
                     return
@@ -351,7 +443,41 @@ class ClusterState:
             raise ClusterError(f"NATS cluster {self.io.where}: snapshot to bucket {self.bucket} "
                                f"failed ({type(exc).__name__}: {exc})") from None
         self.refused = sorted(refused)
+        self.damaged = sorted(damaged)
         return len(entries) - len(refused)
+
+
+def _record(rec: Any) -> tuple[str, bytes, int] | None:
+    """A saved alert record as (topic, payload, qos), or None when it could not be published:
+    paho refuses a topic that is empty, holds a wildcard or a NUL, and a QoS outside 0 to 2
+    (MQTT 3.1.1 sections 4.7.1 and 3.3.1.2), and the daemon would stop on such a refusal."""
+    if not isinstance(rec, list) or len(rec) != 3:
+        return None
+    topic, payload, qos = rec
+    if (not isinstance(topic, str) or not topic or "+" in topic or "#" in topic or "\0" in topic
+            or len(topic.encode("utf-8", "surrogatepass")) > 65535
+            or not isinstance(payload, str) or type(qos) is not int or qos not in (0, 1, 2)):
+        return None
+    try:
+        topic.encode("utf-8")
+        return topic, base64.b64decode(payload, validate=True), qos
+    except (ValueError, UnicodeError):
+        return None
+
+
+def _short(v: Any) -> str:
+    """A damaged value for a log line: its repr, cut to 60 characters."""
+    text = repr(v)
+    return text if len(text) <= 60 else text[:57] + "..."
+
+
+def _is_state(value: bytes) -> bool:
+    """Whether a bucket entry is a stream state at all (of whichever daemon)."""
+    try:
+        doc = json.loads(value)
+    except ValueError:
+        return False
+    return isinstance(doc, dict) and doc.get("format") == _FORMAT
 
 
 def _saved_by(value: bytes) -> str | None:
@@ -414,6 +540,8 @@ class JournalRound:
                     at, hdrs, stored = await cs.io.last_message(cs.stream, subject)
                     if at > last and hdrs.get(WRITER) == cs.writer and stored == body:
                         return g, at
+                    if at and WRITER not in hdrs:
+                        cs.unsigned[g.stream] = at
                     return g, None
                 return g, seq
 

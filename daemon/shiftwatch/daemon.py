@@ -336,6 +336,10 @@ class Daemon:
         # to finish its own (see _cluster_load, _park); the rounds are acknowledged as usual.
         self.writer_id = secrets.token_hex(6)
         self._deferred: dict[str, float] = {}
+        # Streams whose samples this daemon parked and has not loaded since: when a reload
+        # let one go while it waited, samples of it that still come here are parked behind
+        # those, not journaled ahead of them (see _take_foreign).
+        self._parked_here: set[str] = set()
         # A shard with its state in the cluster asks the shard that wrote a moved stream
         # last to pass on what it still holds of it, and answers such asks (see
         # shiftwatch.handover).
@@ -706,6 +710,7 @@ class Daemon:
                 if now - r.written_at < wait:
                     self._deferred[name] = r.written_at + wait
                     continue
+            self._parked_here.discard(name)  # loaded here: this load feeds what is parked
             if r.problem is not None:
                 self.metrics.states_set_aside.inc()
                 self.log.warning("stream %s: %s; what could be read is used", _printable(name), r.problem)
@@ -720,15 +725,28 @@ class Daemon:
                 (g.topic_filter for g in reversed([*r.groups, *r.parked]) if g.topic_filter), None)
             spec = self.cfg.stream_for(name, topic_filter)
             if spec is None:
+                if r.parked_last:
+                    from shiftwatch.clusterstate import JOURNAL_MAX_AGE
+
+                    # Its entry was removed while it waited: no engine, and the parked
+                    # samples stay for a configuration that has the entry again.
+                    self.log.warning("stream %s has no stream entry any more: its %d parked sample(s) "
+                                     "stay in %s (subject %s, kept up to %d days) for a configuration "
+                                     "that has its entry again", _printable(name),
+                                     sum(len(g.values) for g in r.parked), self.cluster.parking,
+                                     self.cluster.parked_subject(name), round(JOURNAL_MAX_AGE / 86400))
                 continue
             eng = StreamEngine(name, spec.detection, unit=r.unit or spec.unit)
             if r.state is not None:
                 try:
                     eng.set_state(r.state)
                 except Exception as exc:  # noqa: BLE001  costs that stream only
+                    from shiftwatch.clusterstate import stream_key as _stream_key
+
                     self.metrics.states_set_aside.inc()
-                    self.log.warning("saved state of stream %s set aside (%s); it warms up again",
-                                     _printable(name), _one_line(exc))
+                    self.log.warning("saved state of stream %s (bucket %s key %s) set aside (%s); it "
+                                     "warms up again", _printable(name), self.cluster.bucket,
+                                     _stream_key(name), _one_line(exc))
                     eng = StreamEngine(name, spec.detection, unit=r.unit or spec.unit)
                 restored += 1
             self.engines[name] = eng
@@ -807,6 +825,8 @@ class Daemon:
                 # its engine here is stale.  Load it again and feed it this round once more.
                 if self.owner is not None:
                     theirs = [g for g in refused if not self._owns_stream(g.stream)]
+                    for g in theirs:
+                        self.cluster.unsigned.pop(g.stream, None)
                     if theirs:
                         self._let_go([g.stream for g in theirs], save=False)
                         self._count_drop("other_shard", sum(len(g.values) for g in theirs))
@@ -814,9 +834,8 @@ class Daemon:
                         if not refused:
                             return True
                 names = [g.stream for g in refused]
-                self.log.warning("%d stream(s) were written by another daemon meanwhile (they moved "
-                                 "between shards), e.g. %s; reloading them from the cluster",
-                                 len(names), _printable(names[0]))
+                self._say_refused(names, "were written by another daemon meanwhile (they moved between "
+                                  "shards)", "reloading them from the cluster")
                 for n in names:
                     self.engines.pop(n, None)
                 self._cluster_load(names)
@@ -837,6 +856,7 @@ class Daemon:
                 # again, to the same end.
                 lost = sum(len(g.values) for g in refused)
                 for g in refused:
+                    self.cluster.unsigned.pop(g.stream, None)
                     self.engines.pop(g.stream, None)
                     self.metrics.remove_stream(g.stream)
                 self._count_drop("stream_moved", lost)
@@ -869,6 +889,23 @@ class Daemon:
         topic = self._topic_of.get(name)
         return self.owner is None or topic is None or self.owner.owns(topic)
 
+    def _say_refused(self, names: list[str], moved_text: str, then: str) -> None:
+        """Why the cluster refused these streams (a journal write, a snapshot): another
+        daemon wrote them (``moved_text``), or a message no daemon wrote ends their journal
+        (``ClusterState.unsigned``); ``then``: what this daemon does about it."""
+        assert self.cluster is not None
+        unsigned = {n: self.cluster.unsigned.pop(n) for n in names if n in self.cluster.unsigned}
+        moved = [n for n in names if n not in unsigned]
+        if unsigned:
+            first = next(iter(unsigned))
+            self.log.warning("%d stream(s) have a journal message that no shiftwatch wrote (no writer "
+                             "header; put there by hand or by another program?), e.g. %s: %s "
+                             "sequence %d; %s", len(unsigned), _printable(first), self.cluster.stream,
+                             unsigned[first], then)
+        if moved:
+            self.log.warning("%d stream(s) %s, e.g. %s; %s", len(moved), moved_text,
+                             _printable(moved[0]), then)
+
     def _take_foreign(self, foreign: dict[str, list[Any]], now: float) -> bool:
         """Samples of streams the mapping gives another shard: not fed to an engine.
         With state in the cluster they go to the stream's journal, stating the last
@@ -889,9 +926,21 @@ class Daemon:
                                             np.asarray(values, dtype=np.float64),
                                             np.asarray(arrivals, dtype=np.float64),
                                             self._filters.get(name, spec.topic)))
-            if out:
+            # A stream this shard parked samples of while it waited, and let go before it
+            # loaded it (the number of shards changed again): what still comes of it is
+            # parked behind those, whose next owner feeds the parking after the journal in
+            # time order.  Journaled, these newer samples came before the parked ones, which
+            # were then set aside as out of order.
+            behind = [g for g in out if g.stream in self._parked_here]
+            out = [g for g in out if g.stream not in self._parked_here]
+            if out or behind:
                 try:
-                    refused = self.cluster.journal(out)
+                    refused = self.cluster.journal(out) if out else []
+                    if behind:
+                        late = self.cluster.park_behind(behind)
+                        self._parked_here.difference_update(g.stream for g in late)
+                        refused += late
+                        out += behind
                 except ClusterError as exc:
                     self.metrics.journal_failures.inc()
                     self.rlog.warning("cluster_journal", f"samples of another shard's streams not "
@@ -899,6 +948,8 @@ class Daemon:
                                       "tried again", now)
                     return False
                 gone = {g.stream for g in refused}
+                for name in gone:
+                    self.cluster.unsigned.pop(name, None)  # (refused as another shard's stream)
                 handed = sum(len(g.values) for g in out if g.stream not in gone)
         self._count_drop("other_shard", n)
         if handed:
@@ -1431,6 +1482,7 @@ class Daemon:
                               f"parked in the cluster ({exc}); the round is held and tried again", now)
             return False
         self.metrics.samples_parked.inc(sum(len(g.values) for g in parked))
+        self._parked_here.update(g.stream for g in parked)
         return True
 
     def _add_columns(self, into: dict[str, list[Any]], name: str, spec: StreamConfig, unit: str | None,
@@ -2170,6 +2222,15 @@ class Daemon:
             return False
         self._fed_since_snapshot.difference_update(names)
         self.metrics.snapshots.inc()
+        if self.cluster.damaged:
+            from shiftwatch.clusterstate import stream_key as _stream_key
+
+            self.metrics.states_set_aside.inc(len(self.cluster.damaged))
+            first = self.cluster.damaged[0]
+            self.log.warning("%d stream(s) had an entry that is no stream state (damaged), e.g. %s "
+                             "(bucket %s key %s): written anew from this daemon's engines",
+                             len(self.cluster.damaged), _printable(first), self.cluster.bucket,
+                             _stream_key(first))
         stale = [n for n in self.cluster.refused if n in self.engines]
         if stale:
             # Written by another daemon since this one last wrote or read them (they moved,
@@ -2177,9 +2238,9 @@ class Daemon:
             # here; samples of them that still come load them afresh, or are refused by the
             # journal and set aside.
             self._let_go(stale, save=False)  # (its status-page entries go with them)
-            self.log.warning("%d stream(s) were written by another daemon since this one last did "
-                             "(e.g. %s): not saved over its work; their engines here are dropped",
-                             len(stale), _printable(stale[0]))
+            self._say_refused(stale, "were written by another daemon since this one last did: not "
+                              "saved over its work", "their engines here are dropped (loaded again "
+                              "from the cluster with their next samples)")
         return True
 
     def _journal_half_full(self) -> bool:

@@ -150,6 +150,12 @@ class ShardLease:
                         self._lose("the lease's entry is gone and could not be renewed")
                         return
                     continue
+                if _owner_id(entry.value) is None:
+                    # No owner entry at all (put there by hand or by another program): who
+                    # wrote it is not known, so the shard is given up all the same.
+                    self._lose(f"key {self.key} in bucket {self.bucket} was overwritten with something "
+                               f"that is no owner entry ({_sample(entry.value)})")
+                    return
                 self._lose("the lease was claimed by another daemon")
                 return
             self._rev = rev
@@ -179,6 +185,12 @@ def _owner_id(value: bytes) -> str | None:
         return str(d["id"]) if isinstance(d, dict) else None
     except (ValueError, KeyError):
         return None
+
+
+def _sample(value: bytes) -> str:
+    """The start of an entry's bytes, for a log line."""
+    text = value[:40].decode("utf-8", "replace")
+    return text + ("..." if len(value) > 40 else "")
 
 
 def _seconds(s: float) -> str:

@@ -894,7 +894,10 @@ class Metrics:
         self.states_set_aside = Counter(
             "shiftwatch_stream_states_set_aside",
             "Saved stream states that could not be used at start (malformed or damaged); "
-            "those streams warmed up again.", registry=reg)
+            "those streams warmed up again. With state in the cluster also each stream load "
+            "that found a damaged part (of its snapshot entry, journal or parked samples; that "
+            "part alone was set aside) and each snapshot entry found damaged and written anew.",
+            registry=reg)
         #: The operator's label of a stream (the daemon sets it; shown in
         #: ``shiftwatch_stream_display_info``).  Called from the render thread.
         self.label_for: Callable[[str], str | None] = lambda name: None
