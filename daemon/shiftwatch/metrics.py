@@ -808,7 +808,8 @@ class Metrics:
     snapshots : state snapshots written.
     outbox_failures : alert records or outbox updates that could not be written to disk.
     journal_failures : rounds of samples that could not be appended to the journal.
-    states_set_aside : saved stream states that could not be used at start.
+    states_set_aside : saved stream states that could not be used at start, and (state in the
+        cluster) stream loads that found a damaged part and snapshot entries written anew.
     journal_damaged : sample journals found deleted, replaced or damaged.
     client_id_conflicts : takeovers of the MQTT session by another client with our client id.
     samples_handed_over : samples of another shard's streams written to their journal for it.
