@@ -32,6 +32,7 @@ import csv
 import math
 import os
 import stat
+from collections import deque
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta, tzinfo
@@ -537,6 +538,43 @@ class _Lines:
         return bytes(self.buf[self.pos:self.end])
 
 
+class _RowLines:
+    """The lines of :class:`_Lines` for the csv module, with their numbers: ``taken`` holds
+    the (number, text) of the lines of the row being read, and :meth:`open_quote` hands all but
+    the first of them out again, for a row that a quote left open ran on from."""
+
+    def __init__(self, lines: _Lines, first: int) -> None:
+        self.lines = lines
+        self.next_number = first
+        self.pending: deque[tuple[int, str]] = deque()
+        self.taken: list[tuple[int, str]] = []
+
+    def __iter__(self) -> _RowLines:
+        return self
+
+    def __next__(self) -> str:
+        if self.pending:
+            item = self.pending.popleft()
+        else:
+            item = (self.next_number, next(self.lines))
+            self.next_number += 1
+        self.taken.append(item)
+        return item[1]
+
+    @property
+    def last_line(self) -> int:
+        """The number of the row's last line (of the last line read, after a blank row)."""
+        return self.taken[-1][0] if self.taken else self.next_number - 1
+
+    def open_quote(self, path: str) -> str:
+        """Skip the row's first line, read the others again; the problem that names it."""
+        first = self.taken[0][0]
+        self.pending.extendleft(reversed(self.taken[1:]))
+        self.taken.clear()
+        return (f"{path}:{first}: a quote opens a field here that is not closed on its line; the line was "
+                "skipped and the lines after it read as rows")
+
+
 def _count_lines(data: bytes | bytearray, end: int) -> int:
     """Lines as :class:`_Lines` counts them in ``data[:end]``, which ends with a line end."""
     # numpy counts the newlines of a 2 MiB chunk about five times faster than bytes.count
@@ -554,14 +592,14 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
     ends at the first row boundary at or after that many bytes.
     """
     name = src.path
-    reader = csv.reader(lines)
+    source = _RowLines(lines, line0)
+    reader = csv.reader(source)
     ti = src.time_col
     long = src.layout == "long"
     si = src.stream_col
     width = (max(ti, si, src.value_col) if long else max(ti, max(c for c, _ in src.tags))) + 1
     ncols = len(src.header)
     fbits = fidx << PLACE_BITS
-    base = line0 - 1
     problems: list[str] = []
     rows = 0
     last_text: str | None = None
@@ -575,17 +613,32 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
 
     if not long:
         tag_apps = [(c, tag, lists_for(tag)) for c, tag in src.tags]
+    used = sorted({ti, si, src.value_col} - {-1} if long else {ti, *(c for c, _ in src.tags)})
     while True:
+        source.taken.clear()
         try:
             row = next(reader)
         except StopIteration:
             break
         except csv.Error as exc:
-            problems.append(f"{name}:{base + reader.line_num}: unreadable row: {exc}")
-            if stop_at is not None and lines.consumed >= stop_at:
+            if len(source.taken) > 1:  # a quote left open ran on to the field size limit
+                problems.append(source.open_quote(name))
+                rows += 1
+                continue
+            problems.append(f"{name}:{source.last_line}: unreadable row: {exc}")
+            if stop_at is not None and lines.consumed >= stop_at and not source.pending:
                 break
             continue
-        line = base + reader.line_num
+        line = source.last_line
+        if len(source.taken) > 1 and (len(row) < width or any(
+                "\n" in row[c] or "\r" in row[c] for c in used)):
+            # A field that runs over a line end where a time, a stream or a value should be: a
+            # quote left open (an export that cut a quoted name) would take every line up to the
+            # next quote, or the end of the file, as one field.  The line with the quote is
+            # skipped and the lines after it are read again as rows.
+            problems.append(source.open_quote(name))
+            rows += 1
+            continue
         if len(row) < width:
             if not row or (len(row) == 1 and not row[0].strip()):
                 pass
@@ -642,7 +695,7 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
                     app[0](last_t)
                     app[1](v)
                     app[2](fbits | line)
-        if stop_at is not None and lines.consumed >= stop_at:
+        if stop_at is not None and lines.consumed >= stop_at and not source.pending:
             break
     parts = [(key, np.array(ts, dtype=np.float64), np.array(vs, dtype=np.float64), np.array(ps, dtype=np.int64))
              for key, (ts, vs, ps) in collected.items() if ts]

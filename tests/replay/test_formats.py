@@ -420,3 +420,61 @@ def test_repeated_hours_are_looked_for_only_in_the_years_zoneinfo_knows() -> Non
     rh = RepeatedHour(ZoneInfo("Europe/Berlin"))
     t = np.array([-1e11, 1.7e9, 2.6e11, 1e12, 1e15])
     assert rh.follow("x", t) is t and rh.moved == 0
+
+
+# ----------------------------------------------------------- quotes left open
+def _open_quotes(path: Path) -> tuple[Path, Path]:
+    """The file with a quote left open before a stream name on line 102 (an export that cut a
+    quoted name), another one on line 15,001 near the end, and a legitimately quoted name on
+    line 110 that the first one's field would run into; and the same file without lines 102 and
+    15,001, read by the stdlib csv module as the reference."""
+    lines = path.read_text().splitlines(keepends=True)
+    t, name, v = lines[101].split(",")
+    lines[101] = f'{t},"{name},{v}'
+    t, name, v = lines[109].split(",")
+    lines[109] = f'{t},"{name}",{v}'
+    t, name, v = lines[15000].split(",")
+    lines[15000] = f'{t},"{name},{v}'
+    lines[300] = lines[300].rsplit(",", 1)[0] + ",n/a\n"
+    broken = path.with_name("open-quote.csv")
+    broken.write_text("".join(lines))
+    good = path.with_name("without.csv")
+    good.write_text("".join(ln for i, ln in enumerate(lines) if i not in (101, 15000)))
+    return broken, good
+
+
+@pytest.mark.parametrize("jobs,chunk_bytes", [(1, 1 << 30), (1, 4099), (2, 65536)])
+def test_a_quote_left_open_costs_its_own_line_not_the_rest_of_the_file(history, tmp_path: Path, jobs: int,
+                                                                        chunk_bytes: int) -> None:
+    # A quote opened and never closed made the csv module read on to the next quote or the end
+    # of the file as one field: a small file lost every row after it, named by the line where
+    # the file ended ("expected 3 columns, got 2"), and a large one the rows up to the 128 KiB
+    # field limit ("field larger than field limit"), counted as one unreadable row (found by an
+    # outside trial: fit then found a step in the first 50 rows and missed the real one).
+    src, _ = history
+    copy = tmp_path / "line2.csv"
+    copy.write_bytes(src.read_bytes())
+    broken, good = _open_quotes(copy)
+    series, bad = stdlib_long(good)
+    assert bad == [300]  # the n/a value, on line 301 of the file: line 300 of the one without line 102
+    res = replay_files([broken], jobs=jobs, chunk_bytes=chunk_bytes)
+    assert json_lines(res.records) == one_batch_records(series) and len(res.records) >= 8
+    quote = "a quote opens a field here that is not closed on its line"
+    assert res.read_problems == [f"{broken}:102: {quote}; the line was skipped and the lines after it read as rows",
+                                 f"{broken}:301: value 'n/a' is not a number",
+                                 f"{broken}:15001: {quote}; the line was skipped and the lines after it read as rows"]
+    assert res.read_problem_count == 3
+    assert res.rows == 4 * 4000
+
+
+def test_fit_of_a_file_with_a_quote_left_open_fits_every_other_row(cli, history, tmp_path: Path) -> None:
+    src, _ = history
+    copy = tmp_path / "line2.csv"
+    copy.write_bytes(src.read_bytes())
+    broken, good = _open_quotes(copy)
+    name = "brackenfield/line2/filler/head1/fill"
+    got = cli("fit", str(broken), "--stream", name, "--json")
+    want = cli("fit", str(good), "--stream", name, "--json")
+    assert got.returncode == 1 and want.returncode == 1, got.stderr
+    assert f"{broken}:102: a quote opens a field here that is not closed on its line" in got.stderr
+    assert json.loads(got.stdout) == json.loads(want.stdout)
