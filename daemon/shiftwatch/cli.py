@@ -227,6 +227,8 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
             return None if sc is None else sc.unit
 
     shown = (label_for, show_tz)
+    if args.out and not _out_writable(args.out, sources):
+        return EXIT_USAGE
     if args.dask is not None:
         return _replay_on_dask(args, cfg, report, settings_for, unit_for, sources, shown)
     cores = default_jobs()
@@ -269,6 +271,33 @@ def _replay_on_dask(args: argparse.Namespace, cfg: Any, report: Any, settings_fo
         _err(str(exc))
         return EXIT_USAGE
     return _replay_output(args, report, result, unit_for, sources, shown)
+
+
+def _out_writable(out: str, sources: list[Any]) -> bool:
+    """Whether ``--out`` can be written, told before the replay (which may take hours) and not
+    after it; an input file given as ``--out`` is refused, since writing would overwrite it."""
+    import os
+
+    for src in sources:
+        try:
+            same = os.path.samefile(out, src.path)
+        except OSError:
+            same = False
+        if same:
+            _err(f"--out {out}: is the input file {src.path}; the records would overwrite its readings")
+            return False
+    existed = os.path.lexists(out)
+    try:
+        open(out, "a", encoding="utf-8").close()  # made to try it; written after the replay
+    except OSError as exc:
+        _err(f"--out {out}: cannot write: {exc.strerror or exc}")
+        return False
+    if not existed:
+        try:
+            os.unlink(out)  # made only to try it: a replay that fails leaves nothing
+        except OSError:
+            pass
+    return True
 
 
 def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for: Any, sources: list[Any],

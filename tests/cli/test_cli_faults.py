@@ -96,6 +96,49 @@ def test_replay_writes_the_same_records_to_out_and_stdout(cli, line_csv: Path, t
     assert out.read_text() == b.stdout and '"phase": "confirmed"' in b.stdout
 
 
+# A replay whose --out cannot be written found it out only after the whole replay, and a --out
+# naming an input file overwrote the readings with the records (found by an outside trial: at
+# historian scale, hours of work lost, or the history itself).
+NO_REPLAY = """
+import sys
+import shiftwatch.replay
+def no_replay(*args, **kwargs):
+    raise SystemExit("the replay ran before --out was tried")
+shiftwatch.replay.replay_files = no_replay
+from shiftwatch.cli import main
+sys.exit(main(sys.argv[1:]))
+"""
+
+
+@pytest.mark.parametrize("out", ["missing-dir/records.jsonl", "a-directory"])
+def test_replay_tries_out_before_replaying(line_csv: Path, tmp_path: Path, out: str) -> None:
+    import sys
+
+    (tmp_path / "a-directory").mkdir()
+    res = subprocess.run([sys.executable, "-c", NO_REPLAY, "replay", "--out", out, str(line_csv)],
+                         capture_output=True, text=True, check=False, timeout=120, cwd=tmp_path)
+    no_traceback(res.stderr)
+    what = os.strerror(errno.ENOENT if out.startswith("missing") else errno.EISDIR)
+    assert res.returncode == 2 and res.stderr == f"shiftwatch: --out {out}: cannot write: {what}\n", res.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["a-directory", "filler3.csv"]
+
+
+def test_replay_refuses_an_out_that_is_one_of_its_input_files(cli, line_csv: Path, tmp_path: Path) -> None:
+    before = line_csv.read_bytes()
+    (tmp_path / "data").mkdir()
+    link = tmp_path / "data" / "same.csv"
+    link.symlink_to(line_csv)
+    for out, inputs in ((str(line_csv), [str(line_csv)]), (str(link), [str(tmp_path)])):
+        res = cli("replay", "--out", out, *inputs)
+        no_traceback(res.stderr)
+        assert res.returncode == 2, res.stderr
+        assert res.stderr == (f"shiftwatch: --out {out}: is the input file {line_csv if out == str(line_csv) else link}"
+                              "; the records would overwrite its readings\n"), res.stderr
+        assert line_csv.read_bytes() == before
+    fine = cli("replay", "--out", str(tmp_path / "records.jsonl"), str(line_csv))
+    assert fine.returncode == 0 and '"phase": "confirmed"' in (tmp_path / "records.jsonl").read_text()
+
+
 # ------------------------------------------------------------ more jobs than cores
 @pytest.mark.parametrize("jobs", ["1000", "99999999999999999999"])
 def test_replay_takes_no_more_processes_than_cores_and_says_so(cli, line_csv: Path, jobs: str) -> None:
