@@ -360,7 +360,8 @@ def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for:
         summary += "; samples set aside: " + ", ".join(f"{k} {v}" for k, v in sorted(rejected.items()))
     skipped = result.read_problem_count - result.file_notes
     if skipped:
-        summary += f"; {skipped} unreadable row(s) skipped"
+        # a bad cell of a wide file is counted, its row is not skipped
+        summary += f"; {skipped} unreadable row(s) or cell(s) skipped"
     if result.file_notes:
         summary += f"; {result.file_notes} file(s) not valid UTF-8 (characters replaced)"
     if result.repeated_hour:
@@ -378,7 +379,7 @@ def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for:
                 samples={name: o.samples_total for name, o in streams.items()},
                 rejected={name: dict(o.rejected_total) for name, o in streams.items()},
                 units={name: unit_for(name) for name in streams}, labels=labels, time_zone=tz,
-                sources=[s.path for s in sources], unreadable_rows=result.read_problem_count,
+                sources=[s.path for s in sources], unreadable_rows=skipped,
                 settings_note=("default detection settings" if args.config is None
                                else f"detection settings from {args.config}"),
                 progress=bar and bar.update)

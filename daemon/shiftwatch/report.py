@@ -448,7 +448,7 @@ class ReplayReport:
         rejected : per stream, samples set aside by reason.
         sources : the replayed files.
         settings_note : which detection settings were used, in a few words.
-        unreadable_rows : rows of the files that could not be read at all.
+        unreadable_rows : rows of the files that could not be read, and unreadable cells of a wide file.
         units : unit per stream, when known (else the unit of its records).
         labels : the operator's name per stream (the config's ``label``), when it has one.
         time_zone : IANA zone in which times are shown (the config's ``display.time_zone``).
@@ -916,7 +916,8 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
         ("streams", len(traces), ""),
         ("samples", total_samples, ""),
         ("rejected samples", total_rejected, why),
-        ("unreadable rows", unreadable_rows, "rows of the files that could not be read"),
+        ("unreadable rows or cells", unreadable_rows,
+         "rows of the files that could not be read, and cells of a wide file"),
         ("events", total_events, ""),
         ("confirmed", counts["confirmed"], "a lasting step"),
         ("returned", counts["returned"], "a lasting step back to the level before an earlier step"),
