@@ -402,6 +402,8 @@ class ReplayReport:
             os.unlink(tmp)  # a probe: nothing is left behind while the replay runs
         except OSError as exc:
             raise ReportError(f"--report {directory}: cannot write there: {exc.strerror or exc}") from None
+        if self.path.is_dir():  # the finished report could not be renamed there, after the replay
+            raise ReportError(f"--report {directory}: cannot write {REPORT_FILE}: it is a directory")
         self._tmp: Path | None = None  # the unfinished report, while write() runs
         self._options = {"max_bins": max_bins, "zoom_samples": zoom_samples, "max_zooms": max_zooms,
                          "max_spikes": max_spikes}

@@ -231,6 +231,18 @@ def test_replay_report_names_a_directory_it_cannot_write(cli, plant_csv: PlantCs
     assert res.stdout == ""  # refused before replaying anything
 
 
+def test_replay_report_refuses_a_report_html_that_is_a_directory_before_replaying(cli, plant_csv: PlantCsv,
+                                                                                  tmp_path: Path) -> None:
+    # A writable directory whose report.html is a directory was found out only when the
+    # finished report was renamed there, after the whole replay (found by an outside trial).
+    (tmp_path / "out" / "report.html").mkdir(parents=True)
+    res = cli("replay", "--report", str(tmp_path / "out"), str(plant_csv.path))
+    assert res.returncode == 2 and "Traceback" not in res.stderr
+    assert res.stderr == f"shiftwatch: --report {tmp_path / 'out'}: cannot write report.html: it is a directory\n"
+    assert res.stdout == ""  # refused before replaying anything
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["report.html"]
+
+
 def test_replay_report_without_matplotlib_says_what_to_install(plant_csv: PlantCsv, tmp_path: Path) -> None:
     # The real CLI in a subprocess where importing matplotlib fails.
     code = ("import sys; sys.modules['matplotlib'] = None\n"
