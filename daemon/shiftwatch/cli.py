@@ -194,7 +194,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
 
 def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
     from shiftwatch import heap
-    from shiftwatch.replay import CsvFormatError, default_jobs, replay_files
+    from shiftwatch.replay import CsvFormatError, ReplayProcessError, default_jobs, replay_files
     from shiftwatch.sources import open_sources, time_zone
 
     jobs = default_jobs() if args.jobs is None else args.jobs
@@ -244,7 +244,10 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
         result = replay_files(args.csv, settings_for, unit_for, jobs=jobs, timezone=in_tz, sources=sources,
                               trace_options=None if report is None else report.trace_options,
                               progress=bar and bar.update)
-    except CsvFormatError as exc:
+    except (CsvFormatError, ReplayProcessError) as exc:
+        if bar is not None:
+            bar.close()
+            bar = None
         _err(str(exc))
         return EXIT_USAGE
     finally:

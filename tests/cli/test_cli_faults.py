@@ -139,6 +139,58 @@ def test_replay_refuses_an_out_that_is_one_of_its_input_files(cli, line_csv: Pat
     assert fine.returncode == 0 and '"phase": "confirmed"' in (tmp_path / "records.jsonl").read_text()
 
 
+# A replay process killed (the out-of-memory killer, an operator) ended the replay with a
+# Python traceback and exit status 1, the status of a replay with some bad rows (found by an
+# outside trial).  Here the workers wait at their first piece, so the kill comes mid-replay.
+WORKERS_WAIT = """
+import os, sys, time
+import shiftwatch.replay
+parent = os.getpid()
+real = shiftwatch.replay.parse_task
+def slow(*args, **kwargs):
+    if os.getpid() != parent:
+        time.sleep(60)
+    return real(*args, **kwargs)
+shiftwatch.replay.parse_task = slow
+from shiftwatch.cli import main
+sys.exit(main(sys.argv[1:]))
+"""
+
+
+def test_a_replay_process_killed_ends_the_replay_with_one_line_and_exit_2(tmp_path: Path) -> None:
+    import signal
+    import sys
+    import time
+
+    big = write_filler(tmp_path / "filler3.csv", n=45_000)  # over one 2 MiB chunk: in processes
+    assert big.stat().st_size > 2 << 20
+    proc = subprocess.Popen([sys.executable, "-c", WORKERS_WAIT, "replay", "--jobs", "2", "--out",
+                             str(tmp_path / "out.jsonl"), str(big)],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        children = Path(f"/proc/{proc.pid}/task/{proc.pid}/children")
+        deadline = time.monotonic() + 60
+        while time.monotonic() < deadline and len(children.read_text().split()) < 2:
+            time.sleep(0.05)
+        kids = [int(k) for k in children.read_text().split()]
+        assert len(kids) >= 2, kids
+        time.sleep(0.5)  # past the fork, into the first piece
+        os.kill(kids[0], signal.SIGKILL)
+        out, err = proc.communicate(timeout=60)
+        assert out == ""
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    no_traceback(err)
+    assert proc.returncode == 2, err
+    assert err.startswith("shiftwatch: replay process ") and err.count("\n") == 1, err
+    assert "was killed by signal 9 (SIGKILL" in err and "nothing was written" in err, err
+    assert not (tmp_path / "out.jsonl").exists()
+    for k in kids:  # the other process was stopped too
+        assert not Path(f"/proc/{k}").exists() or "Z" in Path(f"/proc/{k}/stat").read_text().split()[2]
+
+
 # ------------------------------------------------------------ more jobs than cores
 @pytest.mark.parametrize("jobs", ["1000", "99999999999999999999"])
 def test_replay_takes_no_more_processes_than_cores_and_says_so(cli, line_csv: Path, jobs: str) -> None:
