@@ -209,6 +209,29 @@ class RepeatedHour:
         return t, moved
 
 
+#: Times a record can be written at (RFC 3339 has four-digit years): from the year 1 to the last
+#: second of the year 9999, epoch seconds.  Epoch microseconds or nanoseconds, read as
+#: milliseconds by the daemon's rule, fall far past it.
+TIME_MIN, TIME_MAX = -62135596800.0, 253402300799.0
+_EPOCH_HINT = ("(shiftwatch reads epoch seconds, and epoch milliseconds above 100,000,000,000: divide epoch "
+               "microseconds or nanoseconds first)")
+
+
+def _out_of_range(t: float) -> str | None:
+    """What is wrong with a time no record can be written at, or None for a time in range."""
+    if t > TIME_MAX:
+        return f"is past the year 9999 {_EPOCH_HINT}"
+    if t < TIME_MIN:
+        return "is before the year 1"
+    return None
+
+
+def _in_range(t: FloatArray) -> NDArray[np.bool_]:
+    """Which times a record can be written at (see :data:`TIME_MAX`)."""
+    ok: NDArray[np.bool_] = (t >= TIME_MIN) & (t <= TIME_MAX)
+    return ok
+
+
 def _epoch_rule(t: FloatArray) -> FloatArray:
     """Epoch seconds from numeric times, epoch milliseconds above the daemon's bound."""
     big = t > EPOCH_MS_ABOVE
@@ -242,13 +265,19 @@ def parse_time(text: str, tz: tzinfo | None = None) -> float:
                                     "(an IANA name such as Europe/Berlin)")
             local = dt
             dt = dt.replace(tzinfo=tz)
-            if datetime.fromtimestamp(dt.timestamp(), tz).replace(tzinfo=None) != local:
+            t = dt.timestamp()
+            if _out_of_range(t) is None and datetime.fromtimestamp(t, tz).replace(tzinfo=None) != local:
                 raise TimeTextError(f"does not exist in {tz} (the clocks were put forward)")
-        return dt.timestamp()
-    v = float(s)
-    if not math.isfinite(v):
-        raise ValueError("not finite")
-    return v / 1000.0 if v > EPOCH_MS_ABOVE else v
+        t = dt.timestamp()
+    else:
+        v = float(s)
+        if not math.isfinite(v):
+            raise ValueError("not finite")
+        t = v / 1000.0 if v > EPOCH_MS_ABOVE else v
+    wrong = _out_of_range(t)
+    if wrong is not None:
+        raise TimeTextError(wrong)
+    return t
 
 
 def _parse_times(texts: list[str], tz: tzinfo | None) -> list[float]:
@@ -938,11 +967,15 @@ def _fast_times(body: _Body, col: int, tz: tzinfo | None) -> FloatArray:
         return times
     times, plain = _parse_decimals(body, body.starts[:, col], body.ends[:, col])  # epoch numbers
     if bool(plain.all()):
-        return _epoch_rule(times)
-    tcol = body.texts(col)
-    distinct = list(set(tcol))
-    parsed = dict(zip(distinct, _parse_times(distinct, tz)))
-    return np.fromiter(map(parsed.__getitem__, tcol), dtype=np.float64, count=len(tcol))
+        times = _epoch_rule(times)
+    else:
+        tcol = body.texts(col)
+        distinct = list(set(tcol))
+        parsed = dict(zip(distinct, _parse_times(distinct, tz)))
+        times = np.fromiter(map(parsed.__getitem__, tcol), dtype=np.float64, count=len(tcol))
+    if not bool(_in_range(times).all()):
+        raise ValueError("a time out of range: the rows are read one by one, which names them")
+    return times
 
 
 def _groups(order: IntArray, codes: IntArray, count: int) -> list[IntArray]:
@@ -1279,10 +1312,13 @@ def _naive_wall_to_utc(wall: FloatArray, tz: tzinfo) -> tuple[FloatArray, NDArra
     exists = np.ones(distinct.shape[0], dtype=bool)
     epoch = datetime(1970, 1, 1)
     for i, m in enumerate(distinct.tolist()):
-        local = epoch + timedelta(minutes=m)
-        ts = local.replace(tzinfo=tz).timestamp()
-        offsets[i] = m * 60.0 - ts
-        exists[i] = datetime.fromtimestamp(ts, tz).replace(tzinfo=None) == local
+        try:
+            local = epoch + timedelta(minutes=m)
+            ts = local.replace(tzinfo=tz).timestamp()
+            offsets[i] = m * 60.0 - ts
+            exists[i] = datetime.fromtimestamp(ts, tz).replace(tzinfo=None) == local
+        except (OverflowError, ValueError):
+            pass  # at the end of the year 9999: the caller's range check names it
     at = np.searchsorted(distinct, minutes)
     return wall - offsets[at], exists[at]
 
@@ -1325,6 +1361,18 @@ def _arrow_plain(col: Any, valid: NDArray[np.bool_], fill: float) -> NDArray[Any
     return np.where(valid, data, np.array(fill).astype(dtype))
 
 
+def _valid_range(t: FloatArray, valid: NDArray[np.bool_], first: int, column: str,
+                 problems: _GroupProblems) -> NDArray[np.bool_]:
+    """``valid`` less the times no record can be written at, each a problem."""
+    ok = _in_range(t)
+    if bool(ok.all()):
+        return valid
+    problems.rows(valid & (t > TIME_MAX), first, column, f"the time is past the year 9999 {_EPOCH_HINT}")
+    problems.rows(valid & (t < TIME_MIN), first, column, "the time is before the year 1")
+    out: NDArray[np.bool_] = valid & ok
+    return out
+
+
 def _arrow_times(col: Any, column: str, tz: tzinfo | None, first: int,
                  problems: _GroupProblems) -> tuple[FloatArray, NDArray[np.bool_]]:
     """A time column as epoch seconds, and which rows have a usable time (the others are problems)."""
@@ -1342,21 +1390,23 @@ def _arrow_times(col: Any, column: str, tz: tzinfo | None, first: int,
         while per_second > 1000 and bool((raw % 1000 == 0).all()):
             raw, per_second = raw // 1000, per_second // 1000
         t = raw.astype(np.float64) / per_second if per_second > 1 else raw.astype(np.float64)
+        valid = _valid_range(t, valid, first, column, problems)
         if col.type.tz is None:
             if tz is None:
                 problems.rows(valid, first, column, "the time has no UTC offset; say which time zone the "
                               "file is in with --timezone (an IANA name such as Europe/Berlin)")
                 return t, np.zeros(n, dtype=bool)
-            t, exists = _naive_wall_to_utc(t, tz)
+            t, exists = _naive_wall_to_utc(np.where(valid, t, 0.0), tz)
             problems.rows(valid & ~exists, first, column, f"the time does not exist in {tz} "
                           "(the clocks were put forward)")
-            valid &= exists
+            valid = _valid_range(t, valid & exists, first, column, problems)
         return t, valid
     if pa.types.is_integer(col.type) or pa.types.is_floating(col.type):
         t = np.asarray(col.cast(pa.float64()).fill_null(0.0), dtype=np.float64)
         finite = np.isfinite(t)
         problems.rows(valid & ~finite, first, column, "the time is not finite")
-        return _epoch_rule(np.where(finite, t, 0.0)), valid & finite
+        t = _epoch_rule(np.where(finite, t, 0.0))
+        return t, _valid_range(t, valid & finite, first, column, problems)
     if pa.types.is_string(col.type) or pa.types.is_large_string(col.type) or pa.types.is_dictionary(col.type):
         texts = col.cast(pa.string()).to_pylist()
         out = np.zeros(n)

@@ -517,3 +517,52 @@ def test_the_report_of_a_file_that_is_not_utf8_counts_no_row_unreadable(cli, tmp
     res = cli("replay", "--report", str(tmp_path / "report"), str(path))
     assert res.returncode == 1 and "Traceback" not in res.stderr and "1 file(s) not valid UTF-8" in res.stderr
     assert _report_total(tmp_path / "report", "unreadable rows or cells") == 0
+
+
+# ------------------------------------------------------------ times out of range
+def test_epoch_microseconds_and_nanoseconds_are_refused_row_by_row_not_with_a_traceback(
+        cli, history, tmp_path: Path) -> None:
+    # Epoch microseconds or nanoseconds (as some historians and InfluxDB export) were read as
+    # milliseconds of the year 58,132 or 56,164,658, and replay and fit ended in a traceback
+    # ("year 58132 is out of range") where the records were written (found by an outside trial).
+    # A few such rows among good ones: they are named and skipped, the others replayed.
+    src, _ = history
+    lines = src.read_text().splitlines(keepends=True)
+    bad = {101: "us", 2001: "ns", 3001: "us"}
+    hint = ("is past the year 9999 (shiftwatch reads epoch seconds, and epoch milliseconds above "
+            "100,000,000,000: divide epoch microseconds or nanoseconds first)")
+    for i, unit in bad.items():
+        t, name, v = lines[i].split(",")
+        lines[i] = f"{round(datetime.fromisoformat(t).timestamp() * {'us': 10**6, 'ns': 10**9}[unit])},{name},{v}"
+    mixed = tmp_path / "mixed.csv"
+    mixed.write_text("".join(lines))
+    good = tmp_path / "good.csv"
+    good.write_text("".join(ln for i, ln in enumerate(lines) if i not in bad))
+    for jobs in ("1", "2"):
+        res = cli("replay", "--jobs", jobs, str(mixed))
+        assert res.returncode == 1 and "Traceback" not in res.stderr, res.stderr
+        assert printed_records(res.stdout) == one_batch_records(stdlib_long(good)[0])
+        for i in bad:
+            assert f"{mixed}:{i + 1}: time '{lines[i].split(',')[0]}' {hint}" in res.stderr
+        assert "; 3 unreadable row(s) or cell(s) skipped" in res.stderr
+    # A whole file in epoch microseconds: every row named, no traceback, fit says why.
+    us = tmp_path / "us.csv"
+    us.write_text("time,stream,value\n" + "".join(f"{1772431200 * 10**6 + i * 10**6},tank,{i % 7}\n"
+                                                   for i in range(300)))
+    res = cli("replay", str(us))
+    assert res.returncode == 1 and "Traceback" not in res.stderr and res.stdout == "", res.stderr
+    assert f"{us}:2: time '1772431200000000' {hint}" in res.stderr
+    fit = cli("fit", str(us))
+    assert fit.returncode == 2 and "Traceback" not in fit.stderr, fit.stderr
+    assert f"no stream could be read: no row was usable; the first problem: {us}:2: time" in fit.stderr
+    # Parquet: an int64 time column in microseconds, and a timestamp column past the year 9999.
+    n = 300
+    for kind, col in (("int", pa.array([1772431200 * 10**6 + i * 10**6 for i in range(n)], pa.int64())),
+                      ("stamp", pa.array([253402300800 * 1000 + i * 1000 for i in range(n)],
+                                         pa.timestamp("ms", tz="UTC")))):
+        f = tmp_path / f"{kind}.parquet"
+        pq.write_table(pa.table({"time": col, "stream": ["tank"] * n, "value": [float(i % 7) for i in range(n)]}), f)
+        res = cli("replay", str(f))
+        assert res.returncode == 1 and "Traceback" not in res.stderr and res.stdout == "", res.stderr
+        assert (f"{f}: row group 0, row 0, column time: the time is past the year 9999 (shiftwatch reads epoch "
+                "seconds") in res.stderr
