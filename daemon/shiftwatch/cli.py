@@ -41,6 +41,14 @@ def _count(text: str) -> int:
     return n
 
 
+def _path(text: str) -> str:
+    """A path that is not empty (an argparse type): ``--out "$OUT"`` with OUT unset printed the
+    records to standard output, and ``--report ""`` wrote into the current directory."""
+    if not text:
+        raise argparse.ArgumentTypeError("an empty path (an unset shell variable?)")
+    return text
+
+
 def _err(msg: str) -> None:
     print(f"shiftwatch: {msg}", file=sys.stderr)
 
@@ -894,8 +902,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     r = sub.add_parser("replay", help="run CSV files through the detection engine and print alert records")
     r.add_argument("--config", help="YAML configuration (detection settings); defaults without it")
-    r.add_argument("--out", help="write JSON lines here instead of stdout")
-    r.add_argument("--report", metavar="DIR",
+    r.add_argument("--out", type=_path, help="write JSON lines here instead of stdout")
+    r.add_argument("--report", type=_path, metavar="DIR",
                    help="also write DIR/report.html: a chart per stream and a summary table")
     r.add_argument("--report-charts", type=_count, default=None, metavar="N",
                    help="most charts in the report (default 200): streams with events first, then "

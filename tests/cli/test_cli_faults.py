@@ -123,6 +123,17 @@ def test_replay_tries_out_before_replaying(line_csv: Path, tmp_path: Path, out: 
     assert sorted(p.name for p in tmp_path.iterdir()) == ["a-directory", "filler3.csv"]
 
 
+@pytest.mark.parametrize("option", ["--out", "--report"])
+def test_replay_refuses_an_empty_out_or_report_path(cli, line_csv: Path, tmp_path: Path, option: str) -> None:
+    # `--out "$OUT"` with OUT unset printed the records to standard output, and `--report ""`
+    # wrote report.html into the current directory (found by an outside trial).
+    res = cli("replay", option, "", str(line_csv))
+    no_traceback(res.stderr)
+    assert res.returncode == 2 and res.stdout == "", res.stderr
+    assert f"{option}: an empty path" in res.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["filler3.csv"]
+
+
 def test_replay_refuses_an_out_that_is_one_of_its_input_files(cli, line_csv: Path, tmp_path: Path) -> None:
     before = line_csv.read_bytes()
     (tmp_path / "data").mkdir()
