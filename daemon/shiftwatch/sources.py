@@ -518,6 +518,10 @@ class _Lines:
         self.consumed = 0
         self.count = 0
         self.bad_utf8 = False
+        #: Per line end (\n, \r): where the last search found it (-1: nowhere) and where it
+        #: stopped, so no byte is searched twice: a file whose lines end in a lone \r was searched
+        #: to its end for a \n at every line, which took minutes for a few megabytes.
+        self._seen = [(-1, pos), (-1, pos)]
 
     def __iter__(self) -> _Lines:
         return self
@@ -532,21 +536,40 @@ class _Lines:
         if self.pos > (1 << 20):
             del self.buf[:self.pos]
             self.end -= self.pos
+            self._seen = [(f - self.pos if f >= 0 else -1, max(u - self.pos, 0)) for f, u in self._seen]
             self.pos = 0
         self.buf[self.end:self.end] = data
         self.end += len(data)
         return True
 
+    def _find(self, k: int, char: bytes) -> int:
+        """The first ``char`` in ``buf[pos:end]``, or -1; each byte searched once."""
+        found, until = self._seen[k]
+        if found >= self.pos:
+            return found
+        if found < 0 and self.pos <= until >= self.end:
+            return -1
+        found = self.buf.find(char, self.pos if found >= 0 else max(self.pos, until), self.end)
+        self._seen[k] = (found, self.end)
+        return found
+
     def __next__(self) -> str:
         b = self.buf
         while True:
-            nl = b.find(b"\n", self.pos, self.end)
-            if nl >= 0 or not self._fill():
+            nl = self._find(0, b"\n")
+            if nl >= 0:
+                stop = nl + 1
                 break
-        stop = self.end if nl < 0 else nl + 1
+            cr = self._find(1, b"\r")
+            if 0 <= cr < self.end - 1:  # no \n follows it: a lone \r ends the line
+                stop = cr + 1
+                break
+            if not self._fill():
+                stop = self.end
+                break
         if stop == self.pos:
             raise StopIteration
-        cr = b.find(b"\r", self.pos, stop)
+        cr = self._find(1, b"\r")
         while 0 <= cr < stop - 1:
             if b[cr + 1] != 10:  # a lone \r ends the line
                 stop = cr + 1
