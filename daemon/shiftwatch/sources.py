@@ -1171,6 +1171,16 @@ def _wide_parts(src: Source, body: _Body, times: FloatArray,
 # parsed (a CSV chunk's bytes travel with it); a chunk with quotes is read
 # row by row while planning, since only that finds where its rows end.
 
+def _last_line_end(data: bytes) -> int:
+    """The place of the last line end of ``data`` that is surely one: its last ``\n``, or a lone
+    ``\r`` after it (not the last byte, which a ``\n`` may follow); -1 when there is none.  A
+    file whose lines end in a lone ``\r`` (Excel's "CSV (Macintosh)") is cut in chunks too,
+    instead of being read whole, in one piece and in memory."""
+    nl = data.rfind(b"\n")
+    cr = data.rfind(b"\r", nl + 1, len(data) - 1)
+    return max(nl, cr)
+
+
 def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUNK_BYTES,
               first_index: int = 0) -> Iterator[tuple[Any, ...]]:
     """The chunks of a CSV file: ``("csv", file, line, bytes, index, offset, size)`` or
@@ -1209,14 +1219,14 @@ def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUN
                     whole(offset)  # the row read on past the chunk may have met a cut, not the end
                     return
                 continue
-            nl = data.rfind(b"\n")
+            nl = _last_line_end(data)
             while nl < 0 and not eof:  # a line longer than a chunk: read on to its end
                 more = fb.read(chunk_bytes)
                 eof = len(more) < chunk_bytes
                 data += more
                 if eof:
                     whole(offset + len(data))
-                nl = data.rfind(b"\n")
+                nl = _last_line_end(data)
             cut = len(data) if eof else nl + 1
             # The next chunk starts after the last newline: it is read again from there, so
             # no bytes are carried over (or copied) from one chunk to the next.

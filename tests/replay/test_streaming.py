@@ -564,3 +564,26 @@ def test_a_file_whose_lines_end_in_a_lone_carriage_return_replays_in_linear_time
     assert json_lines(got.records) == json_lines(want.records) and len(want.records) >= 8
     assert got.rows == want.rows == 160_000 and got.problems == want.problems == []
     assert cpu < 8.0, f"{cpu:.1f} s of CPU for {cr.stat().st_size:,} bytes"
+
+
+@pytest.mark.parametrize("jobs,chunk_bytes", [(1, 65_536), (2, 65_536), (2, 1 << 20)])
+def test_a_file_whose_lines_end_in_a_lone_carriage_return_is_cut_in_chunks(tmp_path: Path, jobs: int,
+                                                                            chunk_bytes: int) -> None:
+    # Without a \n to cut at, the whole file was one chunk: read whole into memory and in one
+    # process, whatever --jobs said (found by an outside trial). Some lines end in \n\r (a \n,
+    # then an empty line); reference: the same rows with \n.
+    from shiftwatch.sources import open_sources, tasks
+
+    lf = write_long(tmp_path / "lf.csv", readings(3000))
+    raw = lf.read_bytes().replace(b"\n", b"\r")
+    lines = raw.split(b"\r")
+    for i in range(500, 520):
+        lines[i] += b"\n"
+    cr = tmp_path / "cr.csv"
+    cr.write_bytes(b"\r".join(lines))
+    pieces = list(tasks(open_sources([cr]), None, chunk_bytes))
+    assert len(pieces) >= cr.stat().st_size // chunk_bytes
+    want = replay_files([lf], jobs=1)
+    got = replay_files([cr], jobs=jobs, chunk_bytes=chunk_bytes)
+    assert json_lines(got.records) == json_lines(want.records) and len(want.records) >= 4
+    assert got.rows == want.rows == 12_000 and got.problems == want.problems == []
