@@ -426,6 +426,14 @@ def _check_regular(path: str) -> None:
                          "and give that file")
 
 
+def _without_bom(lines: Iterator[str]) -> Iterator[str]:
+    """The lines, the first without a UTF-8 byte order mark: before a quote (Windows
+    PowerShell's Export-Csv writes '\ufeff"time","stream","value"') the csv module took it
+    for a character of the field and its quotes for text."""
+    for i, text in enumerate(lines):
+        yield text[1:] if i == 0 and text.startswith("\ufeff") else text
+
+
 def _is_parquet(path: str) -> bool:
     with open(path, "rb") as fb:
         return fb.read(4) == b"PAR1"
@@ -450,7 +458,7 @@ def open_source(path: str, layout: str = "auto") -> Source:
         raise CsvFormatError(f"{path}: cannot open: {exc.strerror or exc}") from None
     with fb:
         lines = _Lines(bytearray(), 0, 0, fb)
-        reader = csv.reader(lines)
+        reader = csv.reader(_without_bom(lines))
         try:
             header = next(reader)
         except StopIteration:

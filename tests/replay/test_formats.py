@@ -566,3 +566,28 @@ def test_epoch_microseconds_and_nanoseconds_are_refused_row_by_row_not_with_a_tr
         assert res.returncode == 1 and "Traceback" not in res.stderr and res.stdout == "", res.stderr
         assert (f"{f}: row group 0, row 0, column time: the time is past the year 9999 (shiftwatch reads epoch "
                 "seconds") in res.stderr
+
+
+def test_a_byte_order_mark_before_a_quoted_header_is_read(cli, history, tmp_path: Path) -> None:
+    # Windows PowerShell's Export-Csv writes a UTF-8 byte order mark and quotes every field:
+    # '\ufeff"time","stream","value"'. The mark stood before the quote, so the csv module read
+    # the field as the text '\ufeff"time"' and the file was refused ("header lacks column(s)
+    # time"; found by an outside trial). Reference: the stdlib csv module with utf-8-sig.
+    src, data = history
+    quoted = tmp_path / "export.csv"
+    rows = [",".join(f'"{x}"' for x in line.split(",")) for line in src.read_text().splitlines()]
+    quoted.write_text("\ufeff" + "\n".join(rows) + "\n", encoding="utf-8")
+    import csv
+
+    with open(quoted, newline="", encoding="utf-8-sig") as f:
+        assert next(csv.reader(f)) == ["time", "stream", "value"]
+    res = cli("replay", str(quoted))
+    assert res.returncode == 0, res.stderr
+    assert res.stdout == cli("replay", str(src)).stdout and res.stdout.count("\n") >= 8
+    wide = write_wide(tmp_path / "wide.csv", data)
+    wide_rows = [",".join(f'"{x}"' for x in line.split(",")) for line in wide.read_text().splitlines()]
+    quoted_wide = tmp_path / "export-wide.csv"
+    quoted_wide.write_text("\ufeff" + "\n".join(wide_rows) + "\n", encoding="utf-8")
+    res = cli("replay", str(quoted_wide))
+    assert res.returncode == 0, res.stderr
+    assert res.stdout == cli("replay", str(wide)).stdout
