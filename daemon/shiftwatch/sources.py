@@ -457,6 +457,10 @@ def open_source(path: str, layout: str = "auto") -> Source:
     except OSError as exc:
         raise CsvFormatError(f"{path}: cannot open: {exc.strerror or exc}") from None
     with fb:
+        if fb.read(2) in (b"\xff\xfe", b"\xfe\xff"):  # Excel's "Unicode Text", for one
+            raise CsvFormatError(f"{path}:1: the file is UTF-16 (it starts with a UTF-16 byte order mark); "
+                                 "save it as UTF-8 CSV")
+        fb.seek(0)
         lines = _Lines(bytearray(), 0, 0, fb)
         reader = csv.reader(_without_bom(lines))
         try:
@@ -473,7 +477,14 @@ def open_source(path: str, layout: str = "auto") -> Source:
             ti, vi = cols.index("time"), cols.index("value")
             return Source(path, "csv", "long", header, ti, -1, vi, [(vi, "")], stream=stream, body_start=start,
                           body_line=line)
-        lay, ti, si, vi, tags = _pick_layout(path, header, layout, f"{path}:1")
+        try:
+            lay, ti, si, vi, tags = _pick_layout(path, header, layout, f"{path}:1")
+        except CsvFormatError:
+            for sep, name in ((";", "semicolons"), ("\t", "tabs")):
+                if len(header) == 1 and sep in header[0]:
+                    raise CsvFormatError(f"{path}:1: the header is separated by {name}; shiftwatch reads "
+                                         f"comma-separated files (got {header[0]!r})") from None
+            raise
         return Source(path, "csv", lay, header, ti, si, vi, tags, body_start=start, body_line=line)
 
 

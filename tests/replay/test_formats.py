@@ -591,3 +591,26 @@ def test_a_byte_order_mark_before_a_quoted_header_is_read(cli, history, tmp_path
     res = cli("replay", str(quoted_wide))
     assert res.returncode == 0, res.stderr
     assert res.stdout == cli("replay", str(wide)).stdout
+
+
+@pytest.mark.parametrize("kind", ["semicolons", "tabs", "utf-16"])
+def test_a_file_in_another_csv_dialect_is_refused_saying_what_it_is(cli, history, tmp_path: Path,
+                                                                    kind: str) -> None:
+    # European Excel writes semicolons, "Text (Tab delimited)" tabs and "Unicode Text" UTF-16
+    # with tabs: each was refused with the header as it read it ("got time;stream;value", or
+    # "got ��t i m e ...") and no word of why (found by an outside trial).
+    src, _ = history
+    text = src.read_text()
+    path = tmp_path / f"{kind}.csv"
+    if kind == "semicolons":
+        path.write_text(text.replace(",", ";"))
+        why = "the header is separated by semicolons; shiftwatch reads comma-separated files"
+    elif kind == "tabs":
+        path.write_text(text.replace(",", "\t"))
+        why = "the header is separated by tabs; shiftwatch reads comma-separated files"
+    else:
+        path.write_text(text.replace(",", "\t"), encoding="utf-16")
+        why = "the file is UTF-16 (it starts with a UTF-16 byte order mark); save it as UTF-8 CSV"
+    res = cli("replay", str(path))
+    assert res.returncode == 2 and "Traceback" not in res.stderr, res.stderr
+    assert res.stderr.startswith(f"shiftwatch: {path}:1: {why}"), res.stderr
