@@ -710,7 +710,9 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
             problems.append(source.open_quote(name))
             rows += 1
             continue
-        if len(row) < width:
+        # A row longer than the header, past it something not empty: a value with a decimal comma
+        # and no quotes ("499,97"), whose integer part would be read and the rest dropped.
+        if len(row) < width or (len(row) > ncols and any(c.strip() for c in row[ncols:])):
             if not row or (len(row) == 1 and not row[0].strip()):
                 pass
             else:

@@ -614,3 +614,32 @@ def test_a_file_in_another_csv_dialect_is_refused_saying_what_it_is(cli, history
     res = cli("replay", str(path))
     assert res.returncode == 2 and "Traceback" not in res.stderr, res.stderr
     assert res.stderr.startswith(f"shiftwatch: {path}:1: {why}"), res.stderr
+
+
+def test_a_row_with_more_fields_than_the_header_is_refused_not_cut_short(cli, history, tmp_path: Path) -> None:
+    # A value written with a decimal comma and no quotes ("499,97") makes a row one field longer
+    # than the header: the row was read with the value's integer part (499) and the rest
+    # dropped without a word, in a long file and in a wide one, where the tags after it took
+    # their neighbours' digits (found by an outside trial). An empty field past the header's
+    # (a trailing comma) still reads.
+    src, data = history
+    lines = src.read_text().splitlines(keepends=True)
+    t, name, v = lines[101].rstrip("\n").split(",")
+    lines[101] = f"{t},{name},{v.replace('.', ',')}\n"  # 499.9945 -> 499,9945
+    lines[102] = lines[102].rstrip("\n") + ",\n"  # a trailing comma: read
+    long = tmp_path / "comma.csv"
+    long.write_text("".join(lines))
+    good = tmp_path / "good.csv"
+    good.write_text("".join(ln for i, ln in enumerate(lines) if i != 101))
+    res = cli("replay", str(long))
+    assert res.returncode == 1, res.stderr
+    assert f"{long}:102: expected 3 columns, got 4" in res.stderr
+    assert res.stdout == cli("replay", str(good)).stdout and res.stdout.count("\n") >= 8
+    wide = write_wide(tmp_path / "wide.csv", data)
+    rows = wide.read_text().splitlines(keepends=True)
+    cells = rows[50].rstrip("\n").split(",")
+    cells[1] = cells[1].replace(".", ",")
+    rows[50] = ",".join(cells) + "\n"
+    wide.write_text("".join(rows))
+    res = cli("replay", str(wide))
+    assert res.returncode == 1 and f"{wide}:51: expected 5 columns, got 6" in res.stderr, res.stderr
