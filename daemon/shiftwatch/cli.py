@@ -41,6 +41,14 @@ def _count(text: str) -> int:
     return n
 
 
+def _path(text: str) -> str:
+    """A path that is not empty (an argparse type): ``--out "$OUT"`` with OUT unset printed the
+    records to standard output, and ``--report ""`` wrote into the current directory."""
+    if not text:
+        raise argparse.ArgumentTypeError("an empty path (an unset shell variable?)")
+    return text
+
+
 def _err(msg: str) -> None:
     print(f"shiftwatch: {msg}", file=sys.stderr)
 
@@ -194,7 +202,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
 
 def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
     from shiftwatch import heap
-    from shiftwatch.replay import CsvFormatError, default_jobs, replay_files
+    from shiftwatch.replay import CsvFormatError, ReplayProcessError, default_jobs, replay_files
     from shiftwatch.sources import open_sources, time_zone
 
     jobs = default_jobs() if args.jobs is None else args.jobs
@@ -227,6 +235,8 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
             return None if sc is None else sc.unit
 
     shown = (label_for, show_tz)
+    if args.out and not _out_writable(args.out, sources):
+        return EXIT_USAGE
     if args.dask is not None:
         return _replay_on_dask(args, cfg, report, settings_for, unit_for, sources, shown)
     cores = default_jobs()
@@ -242,7 +252,10 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
         result = replay_files(args.csv, settings_for, unit_for, jobs=jobs, timezone=in_tz, sources=sources,
                               trace_options=None if report is None else report.trace_options,
                               progress=bar and bar.update)
-    except CsvFormatError as exc:
+    except (CsvFormatError, ReplayProcessError) as exc:
+        if bar is not None:
+            bar.close()
+            bar = None
         _err(str(exc))
         return EXIT_USAGE
     finally:
@@ -269,6 +282,33 @@ def _replay_on_dask(args: argparse.Namespace, cfg: Any, report: Any, settings_fo
         _err(str(exc))
         return EXIT_USAGE
     return _replay_output(args, report, result, unit_for, sources, shown)
+
+
+def _out_writable(out: str, sources: list[Any]) -> bool:
+    """Whether ``--out`` can be written, told before the replay (which may take hours) and not
+    after it; an input file given as ``--out`` is refused, since writing would overwrite it."""
+    import os
+
+    for src in sources:
+        try:
+            same = os.path.samefile(out, src.path)
+        except OSError:
+            same = False
+        if same:
+            _err(f"--out {out}: is the input file {src.path}; the records would overwrite its readings")
+            return False
+    existed = os.path.lexists(out)
+    try:
+        open(out, "a", encoding="utf-8").close()  # made to try it; written after the replay
+    except OSError as exc:
+        _err(f"--out {out}: cannot write: {exc.strerror or exc}")
+        return False
+    if not existed:
+        try:
+            os.unlink(out)  # made only to try it: a replay that fails leaves nothing
+        except OSError:
+            pass
+    return True
 
 
 def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for: Any, sources: list[Any],
@@ -331,7 +371,8 @@ def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for:
         summary += "; samples set aside: " + ", ".join(f"{k} {v}" for k, v in sorted(rejected.items()))
     skipped = result.read_problem_count - result.file_notes
     if skipped:
-        summary += f"; {skipped} unreadable row(s) skipped"
+        # a bad cell of a wide file is counted, its row is not skipped
+        summary += f"; {skipped} unreadable row(s) or cell(s) skipped"
     if result.file_notes:
         summary += f"; {result.file_notes} file(s) not valid UTF-8 (characters replaced)"
     if result.repeated_hour:
@@ -349,7 +390,7 @@ def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for:
                 samples={name: o.samples_total for name, o in streams.items()},
                 rejected={name: dict(o.rejected_total) for name, o in streams.items()},
                 units={name: unit_for(name) for name in streams}, labels=labels, time_zone=tz,
-                sources=[s.path for s in sources], unreadable_rows=result.read_problem_count,
+                sources=[s.path for s in sources], unreadable_rows=skipped,
                 settings_note=("default detection settings" if args.config is None
                                else f"detection settings from {args.config}"),
                 progress=bar and bar.update)
@@ -861,8 +902,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     r = sub.add_parser("replay", help="run CSV files through the detection engine and print alert records")
     r.add_argument("--config", help="YAML configuration (detection settings); defaults without it")
-    r.add_argument("--out", help="write JSON lines here instead of stdout")
-    r.add_argument("--report", metavar="DIR",
+    r.add_argument("--out", type=_path, help="write JSON lines here instead of stdout")
+    r.add_argument("--report", type=_path, metavar="DIR",
                    help="also write DIR/report.html: a chart per stream and a summary table")
     r.add_argument("--report-charts", type=_count, default=None, metavar="N",
                    help="most charts in the report (default 200): streams with events first, then "

@@ -319,7 +319,8 @@ def _recap(results: dict[str, list[dict[str, Any]]], start: float, ended: float,
            names: dict[str, str], time_zone: str = "UTC") -> str:
     width = max(len(n) for n in names.values()) + 2
     lines = ["\nWhat happened",
-             f"  {'sensor':<{width}}{'scheduled step':>24}{'found':>20}{'started':>14}{'alerted':>14}"]
+             # "found" over the fitted steps' digits (+13.3g), their unit after them
+             f"  {'sensor':<{width}}{'scheduled step':>24}{'found':>13}{'':7}{'started':>14}{'alerted':>14}"]
     for s in SENSORS:
         recs = results.get(s.stream, [])
         conf = [r for r in recs if r["phase"] == "confirmed"]
@@ -355,9 +356,9 @@ def _recap(results: dict[str, list[dict[str, Any]]], start: float, ended: float,
     lines.append("  (an announced change inside its planned window is recorded as 'planned': its step is "
                  "kept,\n   no alarm is raised and the stream is watched from the new level at once)")
     lines.append(f"  (clock times in {zone_label(time_zone)}; 'started' is the fitted shift time, 'alerted' "
-                 "the\n   moment the test tripped; 'found' is the step fitted when the shift was confirmed, "
-                 "from\n   the few seconds of samples seen since it began, so noise moves it by a fraction "
-                 "of a sigma)\n")
+                 "the\n   moment the test tripped; 'found' is the step fitted when the shift was confirmed "
+                 "(for a\n   planned change, when it was recorded), from the few seconds of samples seen since "
+                 "it\n   began, so noise moves it by a fraction of a sigma)\n")
     return "\n".join(lines) + "\n"
 
 

@@ -643,7 +643,7 @@ def _run_processes(procs: list[Any], plans: list[Any], results: Any, done: Any, 
         for i, p in enumerate(procs):
             if i not in finished and p.exitcode is not None:
                 _stop(procs)
-                raise RuntimeError(f"replay process {i} ended (exit code {p.exitcode}) before its work was done")
+                raise ReplayProcessError(i, p.exitcode)
 
     try:
         def hand(i: int, task: Any) -> None:
@@ -682,6 +682,26 @@ def _run_processes(procs: list[Any], plans: list[Any], results: Any, done: Any, 
     for p in procs:
         p.join()
     return _merge([(msg[2], msg[3]) for _, msg in sorted(finished.items())])
+
+
+class ReplayProcessError(RuntimeError):
+    """A replay process ended before its work was done (killed: the out-of-memory killer, an
+    operator); the others are stopped and nothing is returned."""
+
+    def __init__(self, process: int, exitcode: int) -> None:
+        import signal
+
+        if exitcode < 0:
+            try:
+                name = signal.Signals(-exitcode).name
+            except ValueError:
+                name = "an unknown signal"
+            how = f"was killed by signal {-exitcode} ({name}"
+            how += "; the out-of-memory killer sends it when memory runs out)" if name == "SIGKILL" else ")"
+        else:
+            how = f"ended with exit status {exitcode}"
+        super().__init__(f"replay process {process} {how} before its work was done; the replay stopped "
+                         "and nothing was written")
 
 
 def _failed(msg: tuple[Any, ...], procs: list[Any]) -> None:

@@ -402,6 +402,8 @@ class ReplayReport:
             os.unlink(tmp)  # a probe: nothing is left behind while the replay runs
         except OSError as exc:
             raise ReportError(f"--report {directory}: cannot write there: {exc.strerror or exc}") from None
+        if self.path.is_dir():  # the finished report could not be renamed there, after the replay
+            raise ReportError(f"--report {directory}: cannot write {REPORT_FILE}: it is a directory")
         self._tmp: Path | None = None  # the unfinished report, while write() runs
         self._options = {"max_bins": max_bins, "zoom_samples": zoom_samples, "max_zooms": max_zooms,
                          "max_spikes": max_spikes}
@@ -448,7 +450,7 @@ class ReplayReport:
         rejected : per stream, samples set aside by reason.
         sources : the replayed files.
         settings_note : which detection settings were used, in a few words.
-        unreadable_rows : rows of the files that could not be read at all.
+        unreadable_rows : rows of the files that could not be read, and unreadable cells of a wide file.
         units : unit per stream, when known (else the unit of its records).
         labels : the operator's name per stream (the config's ``label``), when it has one.
         time_zone : IANA zone in which times are shown (the config's ``display.time_zone``).
@@ -607,6 +609,19 @@ LITERAL: dict[str, Any] = {"parse_math": False}
 _FONT_WARNINGS = (r"Glyph \d+ \(", r"Matplotlib currently does not support .* natively")
 
 
+#: The most characters of a name, label or unit a chart draws: matplotlib lays out the whole
+#: text, and a name of 500,000 characters (a broken export) took 37 s and 400 MB to chart.
+CHART_TEXT = 120
+
+
+def _drawn(text: str) -> str:
+    """``text`` as a chart draws it: whole up to :data:`CHART_TEXT` characters, else its start
+    and how long it is (the tables keep it whole)."""
+    if len(text) <= CHART_TEXT:
+        return text
+    return f"{text[:CHART_TEXT - 1]}\u2026 ({len(text):,} characters)"
+
+
 def _days(t: FloatArray | float | list[float]) -> Any:
     """Epoch seconds as matplotlib date numbers (days since 1970-01-01 UTC)."""
     return np.asarray(t, dtype=np.float64) / 86400.0
@@ -631,7 +646,7 @@ def stream_figure(trace: StreamTrace) -> Figure:
                             hspace=0.75 / 2.5, wspace=0.25)
     main = fig.add_subplot(grid[0, :])
     panels = [fig.add_subplot(grid[1, i]) for i in range(len(zoomed))]
-    unit = f" ({trace.unit})" if trace.unit else ""
+    unit = f" ({_drawn(trace.unit)})" if trace.unit else ""
     env = trace.envelope
     x, lo, hi, mean = env.points()
     if env.binned:
@@ -649,8 +664,8 @@ def stream_figure(trace: StreamTrace) -> Figure:
         _draw_event(main, ev, env, label=True, until=_level_until(events, k, env))
     # The axis names the reading as the operator does (its label), else "reading", with its unit.
     # Names, labels and units are the user's text: drawn as written, never as mathtext (see LITERAL).
-    main.set_ylabel(f"{trace.label or 'reading'}{unit}", **LITERAL)
-    main.set_title(f"{trace.name}: {env.count:,} samples, {len(events)} event(s)", loc="left", fontsize=10,
+    main.set_ylabel(f"{_drawn(trace.label or 'reading')}{unit}", **LITERAL)
+    main.set_title(f"{_drawn(trace.name)}: {env.count:,} samples, {len(events)} event(s)", loc="left", fontsize=10,
                    **LITERAL)
     if env.count:
         _date_axis(main, trace.time_zone)
@@ -916,7 +931,8 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
         ("streams", len(traces), ""),
         ("samples", total_samples, ""),
         ("rejected samples", total_rejected, why),
-        ("unreadable rows", unreadable_rows, "rows of the files that could not be read"),
+        ("unreadable rows or cells", unreadable_rows,
+         "rows of the files that could not be read, and cells of a wide file"),
         ("events", total_events, ""),
         ("confirmed", counts["confirmed"], "a lasting step"),
         ("returned", counts["returned"], "a lasting step back to the level before an earlier step"),

@@ -32,6 +32,7 @@ import csv
 import math
 import os
 import stat
+from collections import deque
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta, tzinfo
@@ -208,6 +209,29 @@ class RepeatedHour:
         return t, moved
 
 
+#: Times a record can be written at (RFC 3339 has four-digit years): from the year 1 to the last
+#: second of the year 9999, epoch seconds.  Epoch microseconds or nanoseconds, read as
+#: milliseconds by the daemon's rule, fall far past it.
+TIME_MIN, TIME_MAX = -62135596800.0, 253402300799.0
+_EPOCH_HINT = ("(shiftwatch reads epoch seconds, and epoch milliseconds above 100,000,000,000: divide epoch "
+               "microseconds or nanoseconds first)")
+
+
+def _out_of_range(t: float) -> str | None:
+    """What is wrong with a time no record can be written at, or None for a time in range."""
+    if t > TIME_MAX:
+        return f"is past the year 9999 {_EPOCH_HINT}"
+    if t < TIME_MIN:
+        return "is before the year 1"
+    return None
+
+
+def _in_range(t: FloatArray) -> NDArray[np.bool_]:
+    """Which times a record can be written at (see :data:`TIME_MAX`)."""
+    ok: NDArray[np.bool_] = (t >= TIME_MIN) & (t <= TIME_MAX)
+    return ok
+
+
 def _epoch_rule(t: FloatArray) -> FloatArray:
     """Epoch seconds from numeric times, epoch milliseconds above the daemon's bound."""
     big = t > EPOCH_MS_ABOVE
@@ -241,13 +265,19 @@ def parse_time(text: str, tz: tzinfo | None = None) -> float:
                                     "(an IANA name such as Europe/Berlin)")
             local = dt
             dt = dt.replace(tzinfo=tz)
-            if datetime.fromtimestamp(dt.timestamp(), tz).replace(tzinfo=None) != local:
+            t = dt.timestamp()
+            if _out_of_range(t) is None and datetime.fromtimestamp(t, tz).replace(tzinfo=None) != local:
                 raise TimeTextError(f"does not exist in {tz} (the clocks were put forward)")
-        return dt.timestamp()
-    v = float(s)
-    if not math.isfinite(v):
-        raise ValueError("not finite")
-    return v / 1000.0 if v > EPOCH_MS_ABOVE else v
+        t = dt.timestamp()
+    else:
+        v = float(s)
+        if not math.isfinite(v):
+            raise ValueError("not finite")
+        t = v / 1000.0 if v > EPOCH_MS_ABOVE else v
+    wrong = _out_of_range(t)
+    if wrong is not None:
+        raise TimeTextError(wrong)
+    return t
 
 
 def _parse_times(texts: list[str], tz: tzinfo | None) -> list[float]:
@@ -396,6 +426,14 @@ def _check_regular(path: str) -> None:
                          "and give that file")
 
 
+def _without_bom(lines: Iterator[str]) -> Iterator[str]:
+    """The lines, the first without a UTF-8 byte order mark: before a quote (Windows
+    PowerShell's Export-Csv writes '\ufeff"time","stream","value"') the csv module took it
+    for a character of the field and its quotes for text."""
+    for i, text in enumerate(lines):
+        yield text[1:] if i == 0 and text.startswith("\ufeff") else text
+
+
 def _is_parquet(path: str) -> bool:
     with open(path, "rb") as fb:
         return fb.read(4) == b"PAR1"
@@ -419,8 +457,12 @@ def open_source(path: str, layout: str = "auto") -> Source:
     except OSError as exc:
         raise CsvFormatError(f"{path}: cannot open: {exc.strerror or exc}") from None
     with fb:
+        if fb.read(2) in (b"\xff\xfe", b"\xfe\xff"):  # Excel's "Unicode Text", for one
+            raise CsvFormatError(f"{path}:1: the file is UTF-16 (it starts with a UTF-16 byte order mark); "
+                                 "save it as UTF-8 CSV")
+        fb.seek(0)
         lines = _Lines(bytearray(), 0, 0, fb)
-        reader = csv.reader(lines)
+        reader = csv.reader(_without_bom(lines))
         try:
             header = next(reader)
         except StopIteration:
@@ -435,7 +477,14 @@ def open_source(path: str, layout: str = "auto") -> Source:
             ti, vi = cols.index("time"), cols.index("value")
             return Source(path, "csv", "long", header, ti, -1, vi, [(vi, "")], stream=stream, body_start=start,
                           body_line=line)
-        lay, ti, si, vi, tags = _pick_layout(path, header, layout, f"{path}:1")
+        try:
+            lay, ti, si, vi, tags = _pick_layout(path, header, layout, f"{path}:1")
+        except CsvFormatError:
+            for sep, name in ((";", "semicolons"), ("\t", "tabs")):
+                if len(header) == 1 and sep in header[0]:
+                    raise CsvFormatError(f"{path}:1: the header is separated by {name}; shiftwatch reads "
+                                         f"comma-separated files (got {header[0]!r})") from None
+            raise
         return Source(path, "csv", lay, header, ti, si, vi, tags, body_start=start, body_line=line)
 
 
@@ -488,6 +537,10 @@ class _Lines:
         self.consumed = 0
         self.count = 0
         self.bad_utf8 = False
+        #: Per line end (\n, \r): where the last search found it (-1: nowhere) and where it
+        #: stopped, so no byte is searched twice: a file whose lines end in a lone \r was searched
+        #: to its end for a \n at every line, which took minutes for a few megabytes.
+        self._seen = [(-1, pos), (-1, pos)]
 
     def __iter__(self) -> _Lines:
         return self
@@ -502,21 +555,40 @@ class _Lines:
         if self.pos > (1 << 20):
             del self.buf[:self.pos]
             self.end -= self.pos
+            self._seen = [(f - self.pos if f >= 0 else -1, max(u - self.pos, 0)) for f, u in self._seen]
             self.pos = 0
         self.buf[self.end:self.end] = data
         self.end += len(data)
         return True
 
+    def _find(self, k: int, char: bytes) -> int:
+        """The first ``char`` in ``buf[pos:end]``, or -1; each byte searched once."""
+        found, until = self._seen[k]
+        if found >= self.pos:
+            return found
+        if found < 0 and self.pos <= until >= self.end:
+            return -1
+        found = self.buf.find(char, self.pos if found >= 0 else max(self.pos, until), self.end)
+        self._seen[k] = (found, self.end)
+        return found
+
     def __next__(self) -> str:
         b = self.buf
         while True:
-            nl = b.find(b"\n", self.pos, self.end)
-            if nl >= 0 or not self._fill():
+            nl = self._find(0, b"\n")
+            if nl >= 0:
+                stop = nl + 1
                 break
-        stop = self.end if nl < 0 else nl + 1
+            cr = self._find(1, b"\r")
+            if 0 <= cr < self.end - 1:  # no \n follows it: a lone \r ends the line
+                stop = cr + 1
+                break
+            if not self._fill():
+                stop = self.end
+                break
         if stop == self.pos:
             raise StopIteration
-        cr = b.find(b"\r", self.pos, stop)
+        cr = self._find(1, b"\r")
         while 0 <= cr < stop - 1:
             if b[cr + 1] != 10:  # a lone \r ends the line
                 stop = cr + 1
@@ -537,6 +609,43 @@ class _Lines:
         return bytes(self.buf[self.pos:self.end])
 
 
+class _RowLines:
+    """The lines of :class:`_Lines` for the csv module, with their numbers: ``taken`` holds
+    the (number, text) of the lines of the row being read, and :meth:`open_quote` hands all but
+    the first of them out again, for a row that a quote left open ran on from."""
+
+    def __init__(self, lines: _Lines, first: int) -> None:
+        self.lines = lines
+        self.next_number = first
+        self.pending: deque[tuple[int, str]] = deque()
+        self.taken: list[tuple[int, str]] = []
+
+    def __iter__(self) -> _RowLines:
+        return self
+
+    def __next__(self) -> str:
+        if self.pending:
+            item = self.pending.popleft()
+        else:
+            item = (self.next_number, next(self.lines))
+            self.next_number += 1
+        self.taken.append(item)
+        return item[1]
+
+    @property
+    def last_line(self) -> int:
+        """The number of the row's last line (of the last line read, after a blank row)."""
+        return self.taken[-1][0] if self.taken else self.next_number - 1
+
+    def open_quote(self, path: str) -> str:
+        """Skip the row's first line, read the others again; the problem that names it."""
+        first = self.taken[0][0]
+        self.pending.extendleft(reversed(self.taken[1:]))
+        self.taken.clear()
+        return (f"{path}:{first}: a quote opens a field here that is not closed on its line; the line was "
+                "skipped and the lines after it read as rows")
+
+
 def _count_lines(data: bytes | bytearray, end: int) -> int:
     """Lines as :class:`_Lines` counts them in ``data[:end]``, which ends with a line end."""
     # numpy counts the newlines of a 2 MiB chunk about five times faster than bytes.count
@@ -554,14 +663,14 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
     ends at the first row boundary at or after that many bytes.
     """
     name = src.path
-    reader = csv.reader(lines)
+    source = _RowLines(lines, line0)
+    reader = csv.reader(source)
     ti = src.time_col
     long = src.layout == "long"
     si = src.stream_col
     width = (max(ti, si, src.value_col) if long else max(ti, max(c for c, _ in src.tags))) + 1
     ncols = len(src.header)
     fbits = fidx << PLACE_BITS
-    base = line0 - 1
     problems: list[str] = []
     rows = 0
     last_text: str | None = None
@@ -575,18 +684,35 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
 
     if not long:
         tag_apps = [(c, tag, lists_for(tag)) for c, tag in src.tags]
+    used = sorted({ti, si, src.value_col} - {-1} if long else {ti, *(c for c, _ in src.tags)})
     while True:
+        source.taken.clear()
         try:
             row = next(reader)
         except StopIteration:
             break
         except csv.Error as exc:
-            problems.append(f"{name}:{base + reader.line_num}: unreadable row: {exc}")
-            if stop_at is not None and lines.consumed >= stop_at:
+            if len(source.taken) > 1:  # a quote left open ran on to the field size limit
+                problems.append(source.open_quote(name))
+                rows += 1
+                continue
+            problems.append(f"{name}:{source.last_line}: unreadable row: {exc}")
+            if stop_at is not None and lines.consumed >= stop_at and not source.pending:
                 break
             continue
-        line = base + reader.line_num
-        if len(row) < width:
+        line = source.last_line
+        if len(source.taken) > 1 and (len(row) < width or any(
+                "\n" in row[c] or "\r" in row[c] for c in used)):
+            # A field that runs over a line end where a time, a stream or a value should be: a
+            # quote left open (an export that cut a quoted name) would take every line up to the
+            # next quote, or the end of the file, as one field.  The line with the quote is
+            # skipped and the lines after it are read again as rows.
+            problems.append(source.open_quote(name))
+            rows += 1
+            continue
+        # A row longer than the header, past it something not empty: a value with a decimal comma
+        # and no quotes ("499,97"), whose integer part would be read and the rest dropped.
+        if len(row) < width or (len(row) > ncols and any(c.strip() for c in row[ncols:])):
             if not row or (len(row) == 1 and not row[0].strip()):
                 pass
             else:
@@ -642,7 +768,7 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
                     app[0](last_t)
                     app[1](v)
                     app[2](fbits | line)
-        if stop_at is not None and lines.consumed >= stop_at:
+        if stop_at is not None and lines.consumed >= stop_at and not source.pending:
             break
     parts = [(key, np.array(ts, dtype=np.float64), np.array(vs, dtype=np.float64), np.array(ps, dtype=np.int64))
              for key, (ts, vs, ps) in collected.items() if ts]
@@ -885,11 +1011,15 @@ def _fast_times(body: _Body, col: int, tz: tzinfo | None) -> FloatArray:
         return times
     times, plain = _parse_decimals(body, body.starts[:, col], body.ends[:, col])  # epoch numbers
     if bool(plain.all()):
-        return _epoch_rule(times)
-    tcol = body.texts(col)
-    distinct = list(set(tcol))
-    parsed = dict(zip(distinct, _parse_times(distinct, tz)))
-    return np.fromiter(map(parsed.__getitem__, tcol), dtype=np.float64, count=len(tcol))
+        times = _epoch_rule(times)
+    else:
+        tcol = body.texts(col)
+        distinct = list(set(tcol))
+        parsed = dict(zip(distinct, _parse_times(distinct, tz)))
+        times = np.fromiter(map(parsed.__getitem__, tcol), dtype=np.float64, count=len(tcol))
+    if not bool(_in_range(times).all()):
+        raise ValueError("a time out of range: the rows are read one by one, which names them")
+    return times
 
 
 def _groups(order: IntArray, codes: IntArray, count: int) -> list[IntArray]:
@@ -1062,6 +1192,16 @@ def _wide_parts(src: Source, body: _Body, times: FloatArray,
 # parsed (a CSV chunk's bytes travel with it); a chunk with quotes is read
 # row by row while planning, since only that finds where its rows end.
 
+def _last_line_end(data: bytes) -> int:
+    """The place of the last line end of ``data`` that is surely one: its last ``\n``, or a lone
+    ``\r`` after it (not the last byte, which a ``\n`` may follow); -1 when there is none.  A
+    file whose lines end in a lone ``\r`` (Excel's "CSV (Macintosh)") is cut in chunks too,
+    instead of being read whole, in one piece and in memory."""
+    nl = data.rfind(b"\n")
+    cr = data.rfind(b"\r", nl + 1, len(data) - 1)
+    return max(nl, cr)
+
+
 def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUNK_BYTES,
               first_index: int = 0) -> Iterator[tuple[Any, ...]]:
     """The chunks of a CSV file: ``("csv", file, line, bytes, index, offset, size)`` or
@@ -1100,14 +1240,14 @@ def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUN
                     whole(offset)  # the row read on past the chunk may have met a cut, not the end
                     return
                 continue
-            nl = data.rfind(b"\n")
+            nl = _last_line_end(data)
             while nl < 0 and not eof:  # a line longer than a chunk: read on to its end
                 more = fb.read(chunk_bytes)
                 eof = len(more) < chunk_bytes
                 data += more
                 if eof:
                     whole(offset + len(data))
-                nl = data.rfind(b"\n")
+                nl = _last_line_end(data)
             cut = len(data) if eof else nl + 1
             # The next chunk starts after the last newline: it is read again from there, so
             # no bytes are carried over (or copied) from one chunk to the next.
@@ -1226,10 +1366,13 @@ def _naive_wall_to_utc(wall: FloatArray, tz: tzinfo) -> tuple[FloatArray, NDArra
     exists = np.ones(distinct.shape[0], dtype=bool)
     epoch = datetime(1970, 1, 1)
     for i, m in enumerate(distinct.tolist()):
-        local = epoch + timedelta(minutes=m)
-        ts = local.replace(tzinfo=tz).timestamp()
-        offsets[i] = m * 60.0 - ts
-        exists[i] = datetime.fromtimestamp(ts, tz).replace(tzinfo=None) == local
+        try:
+            local = epoch + timedelta(minutes=m)
+            ts = local.replace(tzinfo=tz).timestamp()
+            offsets[i] = m * 60.0 - ts
+            exists[i] = datetime.fromtimestamp(ts, tz).replace(tzinfo=None) == local
+        except (OverflowError, ValueError):
+            pass  # at the end of the year 9999: the caller's range check names it
     at = np.searchsorted(distinct, minutes)
     return wall - offsets[at], exists[at]
 
@@ -1272,6 +1415,18 @@ def _arrow_plain(col: Any, valid: NDArray[np.bool_], fill: float) -> NDArray[Any
     return np.where(valid, data, np.array(fill).astype(dtype))
 
 
+def _valid_range(t: FloatArray, valid: NDArray[np.bool_], first: int, column: str,
+                 problems: _GroupProblems) -> NDArray[np.bool_]:
+    """``valid`` less the times no record can be written at, each a problem."""
+    ok = _in_range(t)
+    if bool(ok.all()):
+        return valid
+    problems.rows(valid & (t > TIME_MAX), first, column, f"the time is past the year 9999 {_EPOCH_HINT}")
+    problems.rows(valid & (t < TIME_MIN), first, column, "the time is before the year 1")
+    out: NDArray[np.bool_] = valid & ok
+    return out
+
+
 def _arrow_times(col: Any, column: str, tz: tzinfo | None, first: int,
                  problems: _GroupProblems) -> tuple[FloatArray, NDArray[np.bool_]]:
     """A time column as epoch seconds, and which rows have a usable time (the others are problems)."""
@@ -1289,21 +1444,23 @@ def _arrow_times(col: Any, column: str, tz: tzinfo | None, first: int,
         while per_second > 1000 and bool((raw % 1000 == 0).all()):
             raw, per_second = raw // 1000, per_second // 1000
         t = raw.astype(np.float64) / per_second if per_second > 1 else raw.astype(np.float64)
+        valid = _valid_range(t, valid, first, column, problems)
         if col.type.tz is None:
             if tz is None:
                 problems.rows(valid, first, column, "the time has no UTC offset; say which time zone the "
                               "file is in with --timezone (an IANA name such as Europe/Berlin)")
                 return t, np.zeros(n, dtype=bool)
-            t, exists = _naive_wall_to_utc(t, tz)
+            t, exists = _naive_wall_to_utc(np.where(valid, t, 0.0), tz)
             problems.rows(valid & ~exists, first, column, f"the time does not exist in {tz} "
                           "(the clocks were put forward)")
-            valid &= exists
+            valid = _valid_range(t, valid & exists, first, column, problems)
         return t, valid
     if pa.types.is_integer(col.type) or pa.types.is_floating(col.type):
         t = np.asarray(col.cast(pa.float64()).fill_null(0.0), dtype=np.float64)
         finite = np.isfinite(t)
         problems.rows(valid & ~finite, first, column, "the time is not finite")
-        return _epoch_rule(np.where(finite, t, 0.0)), valid & finite
+        t = _epoch_rule(np.where(finite, t, 0.0))
+        return t, _valid_range(t, valid & finite, first, column, problems)
     if pa.types.is_string(col.type) or pa.types.is_large_string(col.type) or pa.types.is_dictionary(col.type):
         texts = col.cast(pa.string()).to_pylist()
         out = np.zeros(n)

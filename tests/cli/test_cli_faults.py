@@ -96,6 +96,112 @@ def test_replay_writes_the_same_records_to_out_and_stdout(cli, line_csv: Path, t
     assert out.read_text() == b.stdout and '"phase": "confirmed"' in b.stdout
 
 
+# A replay whose --out cannot be written found it out only after the whole replay, and a --out
+# naming an input file overwrote the readings with the records (found by an outside trial: at
+# historian scale, hours of work lost, or the history itself).
+NO_REPLAY = """
+import sys
+import shiftwatch.replay
+def no_replay(*args, **kwargs):
+    raise SystemExit("the replay ran before --out was tried")
+shiftwatch.replay.replay_files = no_replay
+from shiftwatch.cli import main
+sys.exit(main(sys.argv[1:]))
+"""
+
+
+@pytest.mark.parametrize("out", ["missing-dir/records.jsonl", "a-directory"])
+def test_replay_tries_out_before_replaying(line_csv: Path, tmp_path: Path, out: str) -> None:
+    import sys
+
+    (tmp_path / "a-directory").mkdir()
+    res = subprocess.run([sys.executable, "-c", NO_REPLAY, "replay", "--out", out, str(line_csv)],
+                         capture_output=True, text=True, check=False, timeout=120, cwd=tmp_path)
+    no_traceback(res.stderr)
+    what = os.strerror(errno.ENOENT if out.startswith("missing") else errno.EISDIR)
+    assert res.returncode == 2 and res.stderr == f"shiftwatch: --out {out}: cannot write: {what}\n", res.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["a-directory", "filler3.csv"]
+
+
+@pytest.mark.parametrize("option", ["--out", "--report"])
+def test_replay_refuses_an_empty_out_or_report_path(cli, line_csv: Path, tmp_path: Path, option: str) -> None:
+    # `--out "$OUT"` with OUT unset printed the records to standard output, and `--report ""`
+    # wrote report.html into the current directory (found by an outside trial).
+    res = cli("replay", option, "", str(line_csv))
+    no_traceback(res.stderr)
+    assert res.returncode == 2 and res.stdout == "", res.stderr
+    assert f"{option}: an empty path" in res.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["filler3.csv"]
+
+
+def test_replay_refuses_an_out_that_is_one_of_its_input_files(cli, line_csv: Path, tmp_path: Path) -> None:
+    before = line_csv.read_bytes()
+    (tmp_path / "data").mkdir()
+    link = tmp_path / "data" / "same.csv"
+    link.symlink_to(line_csv)
+    for out, inputs in ((str(line_csv), [str(line_csv)]), (str(link), [str(tmp_path)])):
+        res = cli("replay", "--out", out, *inputs)
+        no_traceback(res.stderr)
+        assert res.returncode == 2, res.stderr
+        assert res.stderr == (f"shiftwatch: --out {out}: is the input file {line_csv if out == str(line_csv) else link}"
+                              "; the records would overwrite its readings\n"), res.stderr
+        assert line_csv.read_bytes() == before
+    fine = cli("replay", "--out", str(tmp_path / "records.jsonl"), str(line_csv))
+    assert fine.returncode == 0 and '"phase": "confirmed"' in (tmp_path / "records.jsonl").read_text()
+
+
+# A replay process killed (the out-of-memory killer, an operator) ended the replay with a
+# Python traceback and exit status 1, the status of a replay with some bad rows (found by an
+# outside trial).  Here the workers wait at their first piece, so the kill comes mid-replay.
+WORKERS_WAIT = """
+import os, sys, time
+import shiftwatch.replay
+parent = os.getpid()
+real = shiftwatch.replay.parse_task
+def slow(*args, **kwargs):
+    if os.getpid() != parent:
+        time.sleep(60)
+    return real(*args, **kwargs)
+shiftwatch.replay.parse_task = slow
+from shiftwatch.cli import main
+sys.exit(main(sys.argv[1:]))
+"""
+
+
+def test_a_replay_process_killed_ends_the_replay_with_one_line_and_exit_2(tmp_path: Path) -> None:
+    import signal
+    import sys
+    import time
+
+    big = write_filler(tmp_path / "filler3.csv", n=45_000)  # over one 2 MiB chunk: in processes
+    assert big.stat().st_size > 2 << 20
+    proc = subprocess.Popen([sys.executable, "-c", WORKERS_WAIT, "replay", "--jobs", "2", "--out",
+                             str(tmp_path / "out.jsonl"), str(big)],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        children = Path(f"/proc/{proc.pid}/task/{proc.pid}/children")
+        deadline = time.monotonic() + 60
+        while time.monotonic() < deadline and len(children.read_text().split()) < 2:
+            time.sleep(0.05)
+        kids = [int(k) for k in children.read_text().split()]
+        assert len(kids) >= 2, kids
+        time.sleep(0.5)  # past the fork, into the first piece
+        os.kill(kids[0], signal.SIGKILL)
+        out, err = proc.communicate(timeout=60)
+        assert out == ""
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    no_traceback(err)
+    assert proc.returncode == 2, err
+    assert err.startswith("shiftwatch: replay process ") and err.count("\n") == 1, err
+    assert "was killed by signal 9 (SIGKILL" in err and "nothing was written" in err, err
+    assert not (tmp_path / "out.jsonl").exists()
+    for k in kids:  # the other process was stopped too
+        assert not Path(f"/proc/{k}").exists() or "Z" in Path(f"/proc/{k}/stat").read_text().split()[2]
+
+
 # ------------------------------------------------------------ more jobs than cores
 @pytest.mark.parametrize("jobs", ["1000", "99999999999999999999"])
 def test_replay_takes_no_more_processes_than_cores_and_says_so(cli, line_csv: Path, jobs: str) -> None:

@@ -231,6 +231,40 @@ def test_replay_report_names_a_directory_it_cannot_write(cli, plant_csv: PlantCs
     assert res.stdout == ""  # refused before replaying anything
 
 
+def test_replay_report_refuses_a_report_html_that_is_a_directory_before_replaying(cli, plant_csv: PlantCsv,
+                                                                                  tmp_path: Path) -> None:
+    # A writable directory whose report.html is a directory was found out only when the
+    # finished report was renamed there, after the whole replay (found by an outside trial).
+    (tmp_path / "out" / "report.html").mkdir(parents=True)
+    res = cli("replay", "--report", str(tmp_path / "out"), str(plant_csv.path))
+    assert res.returncode == 2 and "Traceback" not in res.stderr
+    assert res.stderr == f"shiftwatch: --report {tmp_path / 'out'}: cannot write report.html: it is a directory\n"
+    assert res.stdout == ""  # refused before replaying anything
+    assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["report.html"]
+
+
+def test_a_stream_name_of_half_a_megabyte_is_charted_in_seconds(cli, tmp_path: Path) -> None:
+    # A broken export can make a field of any length; a stream name of 500,000 characters took
+    # the report 37 s and 400 MB (matplotlib laying out the whole name as the chart's title),
+    # one of 5,000,000 characters more than two minutes (found by an outside trial). The
+    # chart shows the name's start; the records and the tables keep it whole.
+    import time
+
+    name = "tank_" + "x" * 500_000
+    path = tmp_path / "long-name.csv"
+    with open(path, "w") as f:
+        f.write("time,stream,value\n")
+        f.writelines(f"{1772431200 + i},{name},{10 + (i % 7) * 0.1 + (3 if i >= 400 else 0):.2f}\n"
+                     for i in range(600))
+    start = time.monotonic()
+    res = cli("replay", "--report", str(tmp_path / "r"), str(path))
+    took = time.monotonic() - start
+    assert res.returncode == 0 and "Traceback" not in res.stderr, res.stderr[-2000:]
+    assert f'"stream": "{name}"' in res.stdout
+    assert took < 20, f"{took:.1f} s"
+    assert name in (tmp_path / "r" / "report.html").read_text()
+
+
 def test_replay_report_without_matplotlib_says_what_to_install(plant_csv: PlantCsv, tmp_path: Path) -> None:
     # The real CLI in a subprocess where importing matplotlib fails.
     code = ("import sys; sys.modules['matplotlib'] = None\n"

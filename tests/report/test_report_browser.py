@@ -89,7 +89,7 @@ def test_report_renders_in_headless_chromium(browser: Any, cli: Any, plant_csv: 
         "e => o[e.dataset.total] = Number(e.textContent.replace(/,/g, ''))); return o")
     phases = [r["phase"] for r in final.values()]
     assert totals == {"streams": 5, "samples": plant_csv.rows, "rejected samples": _spikes(res.stderr),
-                      "unreadable rows": 0, "events": len(final), "confirmed": phases.count("confirmed"),
+                      "unreadable rows or cells": 0, "events": len(final), "confirmed": phases.count("confirmed"),
                       "returned": phases.count("returned"), "dismissed": phases.count("dismissed"),
                       "undecided": phases.count("undecided"), "open": phases.count("detected")}
     assert totals["confirmed"] == 3 and totals["dismissed"] == 1 and totals["open"] == 1
