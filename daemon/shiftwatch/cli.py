@@ -11,6 +11,7 @@ from __future__ import annotations
 import argparse
 import json
 import logging
+import math
 import os
 import sys
 import time
@@ -473,7 +474,10 @@ def cmd_fit(args: argparse.Namespace) -> int:
         "p_value": fit.p_value,
     }
     if args.json:
-        print(json.dumps(d))
+        # JSON carries no infinity or NaN (RFC 8259, section 6): a reading with no noise at all
+        # has an infinite delta_sigma and F statistic, written as null.
+        print(json.dumps({k: None if isinstance(v, float) and not math.isfinite(v) else v
+                          for k, v in d.items()}))
     else:
         print(_fit_text(d, fit))
     return EXIT_BAD_DATA if read.problems else EXIT_OK

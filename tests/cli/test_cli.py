@@ -262,3 +262,34 @@ def test_commands_explain_bad_arguments_without_a_traceback(cli, tmp_path: Path)
         res = cli(*args)
         assert res.returncode == 2, args
         assert message in res.stderr and "Traceback" not in res.stderr, res.stderr
+
+
+def _strict_json(text: str) -> dict:
+    """JSON as RFC 8259 defines it: section 6 permits no Infinity or NaN, which Python's json
+    reads by default (and JavaScript's JSON.parse, Go's encoding/json refuse)."""
+    def refuse(name: str) -> None:
+        raise ValueError(f"{name} is not JSON (RFC 8259, section 6)")
+    return json.loads(text, parse_constant=refuse)
+
+
+def test_records_of_a_reading_with_no_noise_are_strict_json(cli, tmp_path: Path) -> None:
+    # A level that does not vary at all (a stuck or quantised reading), then a step: the noise
+    # sigma is 0, so the step in sigmas and the F statistic are infinite. They were written as
+    # Infinity, which strict JSON parsers refuse (found by an outside trial); now null.
+    path = tmp_path / "flat.csv"
+    with open(path, "w") as f:
+        f.write("time,stream,value\n")
+        f.writelines(f"{int(T0) + i},brackenfield/filler3/level_mm,{5.0 if i < 600 else 7.0}\n"
+                     for i in range(1000))
+    res = cli("replay", str(path))
+    assert res.returncode == 0, res.stderr
+    lines = [ln for ln in res.stdout.splitlines() if ln.strip()]
+    assert lines, res.stderr
+    recs = [_strict_json(ln) for ln in lines]
+    confirmed = [r for r in recs if r["phase"] == "confirmed"]
+    assert len(confirmed) == 1 and confirmed[0]["delta"] == 2.0
+    assert confirmed[0]["delta_sigma"] is None and confirmed[0]["sigma"] == 0.0
+    fit = cli("fit", str(path), "--json")
+    assert fit.returncode == 0, fit.stderr
+    got = _strict_json(fit.stdout)
+    assert got["delta"] == 2.0 and got["delta_sigma"] is None

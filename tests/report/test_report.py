@@ -243,25 +243,32 @@ def test_replay_report_refuses_a_report_html_that_is_a_directory_before_replayin
     assert sorted(p.name for p in (tmp_path / "out").iterdir()) == ["report.html"]
 
 
-def test_a_stream_name_of_half_a_megabyte_is_charted_in_seconds(cli, tmp_path: Path) -> None:
+def test_a_stream_name_of_half_a_megabyte_is_drawn_shortened_and_kept_whole_elsewhere(cli, tmp_path: Path) -> None:
     # A broken export can make a field of any length; a stream name of 500,000 characters took
     # the report 37 s and 400 MB (matplotlib laying out the whole name as the chart's title),
     # one of 5,000,000 characters more than two minutes (found by an outside trial). The
-    # chart shows the name's start; the records and the tables keep it whole.
-    import time
-
+    # chart draws the name's start and its length; the records and the tables keep it whole.
+    # (No time is asserted: the chart's title is what the fix changes.)
     name = "tank_" + "x" * 500_000
+    t = 1772431200.0 + np.arange(600, dtype=float)
+    v = 10 + (np.arange(600) % 7) * 0.1 + np.where(np.arange(600) >= 400, 3.0, 0.0)
+    eng = StreamEngine(name)
+    trace = StreamTrace(name)
+    trace.unit, trace.label = "kg" * 200, "level " * 100
+    trace.add_batch(t, v, eng.process(t, v))
+    trace.close()
+    fig = stream_figure(trace)
+    title = fig.axes[0].get_title(loc="left")
+    assert title.startswith(name[:119] + "\u2026 (500,005 characters): 600 samples"), title[:300]
+    assert len(title) < 300 and len(fig.axes[0].get_ylabel()) < 300
     path = tmp_path / "long-name.csv"
     with open(path, "w") as f:
         f.write("time,stream,value\n")
         f.writelines(f"{1772431200 + i},{name},{10 + (i % 7) * 0.1 + (3 if i >= 400 else 0):.2f}\n"
                      for i in range(600))
-    start = time.monotonic()
     res = cli("replay", "--report", str(tmp_path / "r"), str(path))
-    took = time.monotonic() - start
     assert res.returncode == 0 and "Traceback" not in res.stderr, res.stderr[-2000:]
     assert f'"stream": "{name}"' in res.stdout
-    assert took < 20, f"{took:.1f} s"
     assert name in (tmp_path / "r" / "report.html").read_text()
 
 

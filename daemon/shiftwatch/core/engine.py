@@ -148,20 +148,20 @@ class AlertRecord:
             "level_before": _round(self.level_before),
             "level_after": _round(self.level_after),
             "delta": _round(self.delta),
-            "delta_sigma": round(self.delta_sigma, 3),
+            "delta_sigma": _fixed(self.delta_sigma, 3),
             "sigma": _round(self.sigma),
             "n_before": self.n_before,
             "n_after": self.n_after,
             "test": self.test,
-            "statistic": round(self.statistic, 3),
-            "threshold": round(self.threshold, 3),
+            "statistic": _fixed(self.statistic, 3),
+            "threshold": _fixed(self.threshold, 3),
             "as_of": format_time(self.as_of),
             "direction": self.direction,
             "interval_level": self.interval_level,
             "level_before_se": _round(self.level_before_se),
             "level_after_se": _round(self.level_after_se),
-            "f_stat": round(self.f_stat, 3),
-            "p_value": float(f"{self.p_value:.3g}"),
+            "f_stat": _fixed(self.f_stat, 3),
+            "p_value": float(f"{self.p_value:.3g}") if math.isfinite(self.p_value) else None,
             "advisory": ADVISORY,
         }
         if self.unit is not None:
@@ -175,11 +175,20 @@ class AlertRecord:
         return d
 
 
-def _round(x: float) -> float:
-    """Round to 6 significant digits for display without losing meaningful precision."""
-    if x == 0 or not math.isfinite(x):
+def _round(x: float) -> float | None:
+    """Round to 6 significant digits for display without losing meaningful precision;
+    None (JSON null) for a number that is not finite, which JSON cannot carry (RFC 8259,
+    section 6: "Infinity and NaN are not permitted")."""
+    if not math.isfinite(x):
+        return None
+    if x == 0:
         return float(x)
     return float(f"{x:.6g}")
+
+
+def _fixed(x: float, digits: int) -> float | None:
+    """``x`` to ``digits`` decimals; None (JSON null) when it is not finite (see _round)."""
+    return round(x, digits) if math.isfinite(x) else None
 
 
 def event_id(stream: str, detected_at: float) -> str:
