@@ -712,7 +712,11 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
             continue
         # A row longer than the header, past it something not empty: a value with a decimal comma
         # and no quotes ("499,97"), whose integer part would be read and the rest dropped.
-        if len(row) < width or (len(row) > ncols and any(c.strip() for c in row[ncols:])):
+        # A wide row that stops short after its time (an export that leaves out the empty cells
+        # at the end of a row) keeps the cells it has: the others are read as empty, and it is
+        # counted as a problem.
+        short = not long and ti < len(row) < width
+        if (len(row) < width and not short) or (len(row) > ncols and any(c.strip() for c in row[ncols:])):
             if not row or (len(row) == 1 and not row[0].strip()):
                 pass
             else:
@@ -720,6 +724,9 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
                 problems.append(f"{name}:{line}: expected {ncols} columns, got {len(row)}")
         else:
             rows += 1
+            if short:
+                problems.append(f"{name}:{line}: expected {ncols} columns, got {len(row)}; the "
+                                f"{ncols - len(row)} missing at the end are read as empty cells")
             text = row[ti]
             ok = True
             if text != last_text:
@@ -756,7 +763,10 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
                         app[1](v)
                         app[2](fbits | line)
             elif ok:
+                have = len(row)
                 for c, tag, app in tag_apps:
+                    if c >= have:
+                        continue  # a short row's missing cells (counted above)
                     cell = row[c]
                     if not cell or not cell.strip():
                         continue

@@ -8,6 +8,7 @@ layout, or fed to the engines in one batch here.
 
 from __future__ import annotations
 
+import csv
 import json
 from datetime import UTC, datetime
 from pathlib import Path
@@ -643,3 +644,40 @@ def test_a_row_with_more_fields_than_the_header_is_refused_not_cut_short(cli, hi
     wide.write_text("".join(rows))
     res = cli("replay", str(wide))
     assert res.returncode == 1 and f"{wide}:51: expected 5 columns, got 6" in res.stderr, res.stderr
+
+
+@pytest.mark.parametrize("jobs", ["1", "2"])
+def test_a_wide_row_that_stops_short_keeps_its_cells_and_is_counted(cli, history, tmp_path: Path,
+                                                                     jobs: str) -> None:
+    # Some exports leave out the empty cells at the end of a row ("t,1.5" under a header of four
+    # tags). Such a row was refused whole, its good cells lost (found by an outside trial). Now
+    # its cells are read, the missing ones as empty, and the row is named and counted. The
+    # reference: the same file with the missing cells written out empty (stdlib csv reads both
+    # to the same fields but for the missing ones, RFC 4180's one-record-a-line layout).
+    _src, data = history
+    full = write_wide(tmp_path / "full.csv", data)
+    rows = full.read_text().splitlines(keepends=True)
+    ncols = len(rows[0].split(","))
+    short_at = (40, 41, 300, 1200)
+    for i in short_at:
+        cells = rows[i].rstrip("\n").split(",")
+        cells[2:] = ["" for _ in cells[2:]]  # the reference: empty cells past the first tag
+        rows[i] = ",".join(cells) + "\n"
+    full.write_text("".join(rows))
+    cut = tmp_path / "cut.csv"
+    cut.write_text("".join(ln.rstrip("\n").rstrip(",") + "\n" if i in short_at else ln
+                           for i, ln in enumerate(rows)))
+    assert all(len(r) == 2 for r in (next(csv.reader([cut.read_text().splitlines()[i]])) for i in short_at))
+    want = cli("replay", "--jobs", jobs, str(full))
+    assert want.returncode == 0, want.stderr
+    got = cli("replay", "--jobs", jobs, str(cut))
+    assert got.returncode == 1, got.stderr
+    assert got.stdout == want.stdout and want.stdout.count("\n") >= 4
+    for i in short_at:
+        assert (f"{cut}:{i + 1}: expected {ncols} columns, got 2; the {ncols - 2} missing at the end are "
+                "read as empty cells") in got.stderr
+    assert f"; {len(short_at)} unreadable row(s) or cell(s) skipped" in got.stderr
+    # The cells the short rows have are taken: every stream holds as many samples as from the
+    # reference file (the first tag's included).
+    a, b = replay_files([full], jobs=int(jobs)), replay_files([cut], jobs=int(jobs))
+    assert {n: o.samples_total for n, o in b.streams.items()} == {n: o.samples_total for n, o in a.streams.items()}
