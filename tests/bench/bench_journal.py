@@ -37,7 +37,7 @@ ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT / "tests" / "daemon"))
 
 import numpy as np
-from natskit import start_lone_server
+from natskit import connects, start_lone_server
 
 from shiftwatch.broker import wait_until
 from shiftwatch.clusterstate import PARALLEL, ClusterState
@@ -46,14 +46,6 @@ from shiftwatch.natsio import NatsIO
 
 TARGET = 0.8
 STREAMS = 500
-
-
-def _connects(io: NatsIO) -> bool:
-    try:
-        io.connect()
-    except Exception:  # noqa: BLE001  JetStream not up yet
-        return False
-    return True
 
 
 def block(cs: ClusterState, how: str, messages: int, samples: int, t0: float) -> float:
@@ -93,7 +85,7 @@ def main() -> int:
         io = NatsIO([f"nats://127.0.0.1:{port}"], name="bench-journal", timeout=10.0)
         try:
             io.start()
-            if not wait_until(lambda: _connects(io), 30):
+            if not wait_until(lambda: connects(io), 30):
                 print("nats-server did not answer", file=sys.stderr)
                 return 1
             cs = ClusterState(io, name="bench", replicas=1, logger=logging.getLogger("bench"), writer="bench")

@@ -72,6 +72,16 @@ def partition_mapping(parts: int, prefix: str = "part") -> str:
             '{{wildcard(1)}}.{{wildcard(2)}}.{{wildcard(3)}}"')
 
 
+def connects(io: object) -> bool:
+    """Whether a ``shiftwatch.natsio.NatsIO`` connects now (False while the server, or its
+    JetStream, is not up yet): for ``wait_until(lambda: connects(io), 30)``."""
+    try:
+        io.connect()  # type: ignore[attr-defined]
+    except Exception:  # noqa: BLE001  not up yet
+        return False
+    return True
+
+
 def start_lone_server(base: Path, name: str, mqtt: str | None = None) -> tuple[subprocess.Popen[bytes], int]:
     """One nats-server with JetStream on a free loopback port (its MQTT side on the next port
     when ``mqtt`` holds that block's options, e.g. ``'ack_wait: "1s"'``), started and answering;

@@ -30,7 +30,7 @@ from shiftwatch.clusterstate import ClusterState, JournalRound
 from shiftwatch.journal import JournalGroup
 from shiftwatch.natsio import ClusterError, NatsIO, SequenceConflict
 
-from .natskit import start_lone_server
+from .natskit import connects, start_lone_server
 
 
 @pytest.fixture
@@ -41,7 +41,7 @@ def served(tmp_path: Path):  # type: ignore[no-untyped-def]
     try:
         io = NatsIO([f"nats://127.0.0.1:{port}"], name="journal-test", timeout=5.0)
         io.start()
-        assert wait_until(lambda: _connects(io), 30)
+        assert wait_until(lambda: connects(io), 30)
         cs = ClusterState(io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w1")
         cs.setup()
         yield cs, server
@@ -56,14 +56,6 @@ def served(tmp_path: Path):  # type: ignore[no-untyped-def]
 @pytest.fixture
 def cluster(served: tuple[ClusterState, subprocess.Popen[bytes]]) -> ClusterState:
     return served[0]
-
-
-def _connects(io: NatsIO) -> bool:
-    try:
-        io.connect()
-    except Exception:  # noqa: BLE001  JetStream not up yet
-        return False
-    return True
 
 
 def _group(i: int, n: int = 5, t0: float = 0.0) -> JournalGroup:

@@ -41,7 +41,7 @@ from shiftwatch.mqtt import Message
 from shiftwatch.natsio import NatsIO
 from shiftwatch.partition import partition_of
 
-from .natskit import start_lone_server
+from .natskit import connects, start_lone_server
 
 LEVELS = (2, 3, 4)
 NAME = "pk"
@@ -66,15 +66,7 @@ def server(tmp_path: Path) -> Iterator[int]:
 def _io(port: int, who: str) -> NatsIO:
     io = NatsIO([f"nats://127.0.0.1:{port}"], name=who, timeout=5.0)
     io.start()
-
-    def connects() -> bool:
-        try:
-            io.connect()
-        except Exception:  # noqa: BLE001  JetStream not up yet
-            return False
-        return True
-
-    assert wait_until(connects, 30)
+    assert wait_until(lambda: connects(io), 30)
     return io
 
 
