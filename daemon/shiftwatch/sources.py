@@ -31,6 +31,7 @@ from __future__ import annotations
 import csv
 import math
 import os
+import re
 import stat
 from collections import deque
 from collections.abc import Iterator, Sequence
@@ -258,6 +259,7 @@ def parse_time(text: str, tz: tzinfo | None = None) -> float:
     """
     s = text.strip()
     if "T" in s or "t" in s or ":" in s or "-" in s[1:]:
+        s, leap = _rfc3339_forms(s)
         dt = datetime.fromisoformat(s)
         if dt.tzinfo is None:
             if tz is None:
@@ -268,7 +270,7 @@ def parse_time(text: str, tz: tzinfo | None = None) -> float:
             t = dt.timestamp()
             if _out_of_range(t) is None and datetime.fromtimestamp(t, tz).replace(tzinfo=None) != local:
                 raise TimeTextError(f"does not exist in {tz} (the clocks were put forward)")
-        t = dt.timestamp()
+        t = dt.timestamp() + leap
     else:
         v = float(s)
         if not math.isfinite(v):
@@ -278,6 +280,26 @@ def parse_time(text: str, tz: tzinfo | None = None) -> float:
     if wrong is not None:
         raise TimeTextError(wrong)
     return t
+
+
+_LEAP_SECOND = re.compile(r"(\d{4}-\d\d-\d\d[Tt ]\d\d:\d\d:)60(?=[.,+Zz-]|$)", re.ASCII)
+
+
+def _rfc3339_forms(s: str) -> tuple[str, float]:
+    """The forms of RFC 3339 that ``datetime.fromisoformat`` does not take, put in one it does,
+    and the second to add back: a lower-case 't' or 'z' (section 5.6, the NOTE under the
+    grammar), and a leap second, second 60 (section 5.6), read as the next minute's second 0
+    as POSIX counts it ("Seconds Since the Epoch") and as the daemon's decoder reads it.
+
+    >>> _rfc3339_forms("1990-12-31t23:59:60.25z")
+    ('1990-12-31t23:59:59.25Z', 1.0)
+    """
+    if s[-1:] == "z":
+        s = s[:-1] + "Z"
+    m = _LEAP_SECOND.match(s)
+    if m is None:
+        return s, 0.0
+    return m.group(1) + "59" + s[m.end():], 1.0
 
 
 def _parse_times(texts: list[str], tz: tzinfo | None) -> list[float]:
