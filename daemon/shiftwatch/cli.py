@@ -490,7 +490,12 @@ def _fit_text(d: dict[str, Any], fit: Any) -> str:
     low, high = d["shift_at_low"], d["shift_at_high"]
     if low[:11] == high[:11]:
         high = high[11:]
-    return (f"{d['stream']}: one step at {d['shift_at']}\n"
+    if fit.p_value < 1.0 - fit.interval_level:
+        head = f"{d['stream']}: one step at {d['shift_at']}"
+    else:  # chance alone offers a split this good: say so before its figures
+        head = (f"{d['stream']}: no step at the {fit.interval_level:.0%} level (p-value {fit.p_value:.2g}); "
+                f"the best single split is at {d['shift_at']}")
+    return (f"{head}\n"
             f"  shift-time interval ({fit.interval_level:.0%}): {low} to {high}\n"
             f"  level before {num(fit.level_before)} (standard error {num(fit.level_before_se, 2)}, "
             f"{fit.n_before} samples)\n"
