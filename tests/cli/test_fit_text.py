@@ -24,8 +24,7 @@ STREAM = "brackenfield/line1/scale/net"
 def _write(path: Path, values: np.ndarray) -> Path:
     with open(path, "w", encoding="utf-8") as f:
         f.write("time,stream,value\n")
-        for i, v in enumerate(values.tolist()):
-            f.write(f"{1_790_000_000 + 60 * i},{STREAM},{v!r}\n")
+        f.writelines(f"{1_790_000_000 + 60 * i},{STREAM},{v!r}\n" for i, v in enumerate(values.tolist()))
     return path
 
 
