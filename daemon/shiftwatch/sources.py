@@ -1679,11 +1679,14 @@ def _file_size(path: str) -> int:
 def _long_parquet_parts(scol: Any, times: FloatArray, v: FloatArray, places: IntArray, keep: NDArray[np.bool_],
                         collected: dict[str, list[tuple[FloatArray, FloatArray, IntArray]]],
                         problems: _GroupProblems, first: int, cname: str) -> None:
-    """Split a slice of a long file by its stream column (dictionary-encoded, as pyarrow keeps strings)."""
+    """Split a slice of a long file by its stream column (dictionary-encoded, as pyarrow keeps
+    strings); a column of integers (tags exported by number) names each stream by its decimal
+    text, as a CSV of the same numbers does."""
     import pyarrow as pa
 
     if not pa.types.is_dictionary(scol.type):
-        if not (pa.types.is_string(scol.type) or pa.types.is_large_string(scol.type)):
+        if not (pa.types.is_string(scol.type) or pa.types.is_large_string(scol.type)
+                or pa.types.is_integer(scol.type)):
             problems.whole(cname, f"holds {scol.type}, not stream names; the rows were skipped", len(scol))
             return
         scol = scol.dictionary_encode()

@@ -681,3 +681,29 @@ def test_a_wide_row_that_stops_short_keeps_its_cells_and_is_counted(cli, history
     # reference file (the first tag's included).
     a, b = replay_files([full], jobs=int(jobs)), replay_files([cut], jobs=int(jobs))
     assert {n: o.samples_total for n, o in b.streams.items()} == {n: o.samples_total for n, o in a.streams.items()}
+
+
+@pytest.mark.parametrize("int_type", [pa.int64(), pa.uint32(), pa.int16()])
+def test_a_parquet_stream_column_of_integers_reads_as_their_decimal_names(cli, tmp_path: Path, int_type) -> None:
+    # Historians often export tags by number. A long Parquet file with an integer stream column
+    # was refused ("holds int64, not stream names"); a CSV of the same numbers read fine. The
+    # reference is the CSV (the numbers as text) and pyarrow's cast of the column to strings.
+    ids = [1001, 1002, 2417]
+    data = readings(1500, streams=[str(i) for i in ids])
+    csv_path = write_long(tmp_path / "tags.csv", data)
+    t = data[str(ids[0])][0]
+    n = t.shape[0]
+    table = pa.table({
+        "time": pa.array((np.repeat(t, len(ids)) * 1e3).round().astype(np.int64), pa.timestamp("ms", tz="UTC")),
+        "stream": pa.array(ids * n, int_type),
+        "value": pa.array(np.stack([data[str(i)][1] for i in ids], axis=1).ravel()),
+    })
+    assert table.column("stream").cast(pa.string()).to_pylist()[:3] == ["1001", "1002", "2417"]
+    pq_path = tmp_path / "tags.parquet"
+    pq.write_table(table, pq_path, row_group_size=1000)
+    want = cli("replay", str(csv_path))
+    assert want.returncode == 0, want.stderr
+    for jobs in ("1", "2"):
+        got = cli("replay", "--jobs", jobs, str(pq_path))
+        assert got.returncode == 0, got.stderr
+        assert got.stdout == want.stdout and got.stdout.count("\n") >= 1
