@@ -294,6 +294,13 @@ _RELATIVE_LIMIT = 2.0 ** 28  # RFC 8428 section 4.5.3
 #: A numeric time above this (year 5138 in seconds) is epoch milliseconds; replay reads files by the same rule.
 EPOCH_MS_ABOVE = 1e11
 _MS_THRESHOLD = EPOCH_MS_ABOVE
+#: The largest numeric time read: 9999-12-31T23:59:59.999Z in epoch milliseconds. RFC 3339
+#: writes no later year (date-fullyear is 4DIGIT), and replay reads none; a number past it is
+#: most often epoch microseconds or nanoseconds, which the millisecond rule would read as the
+#: year 58,000 or later.
+_RAW_TIME_MAX = 253402300799999.0
+_PAST_9999 = ("past the year 9999 (shiftwatch reads epoch seconds, and epoch milliseconds above "
+              "100,000,000,000: divide epoch microseconds or nanoseconds first)")
 _BIG_INT_DIGITS = 400  # longer integer literals overflow a float anyway
 
 
@@ -358,6 +365,8 @@ def _seconds(t: float) -> float:
 def _finite_time(t: float, what: str) -> float:
     if not math.isfinite(t):
         raise _Reject("bad_time", f"{what} is not finite")
+    if t > _RAW_TIME_MAX:
+        raise _Reject("bad_time", f"{what} is {t:.17g}, {_PAST_9999}")
     return _seconds(t)
 
 
@@ -733,7 +742,7 @@ def decode_many(payloads: Sequence[bytes | bytearray], fmt: str, *, value_path: 
                     continue
                 t: Any = item.get(time_path)
                 tt = type(t)
-                if (tt is float and t - t == 0.0) or (tt is int and -_BIG_INT < t < _BIG_INT):
+                if (tt is float and t - t == 0.0 and t <= _RAW_TIME_MAX) or (tt is int and -_BIG_INT < t <= _RAW_TIME_MAX):
                     out.append(Decoded([Reading(None, _seconds(float(t)), float(v), None)], no_problems))
                     continue
         readings: list[Reading] = []
@@ -803,7 +812,10 @@ def _array_columns(payload: bytes, value_parts: tuple[str, ...], time_parts: tup
         return None
     # _seconds, element by element: the same division, for a column that holds a time in
     # milliseconds (none is past the threshold otherwise, and the column is kept as it is).
-    if float(np.maximum.reduce(t)) > _MS_THRESHOLD:
+    top = float(np.maximum.reduce(t))
+    if top > _MS_THRESHOLD:
+        if top > _RAW_TIME_MAX:  # each such time is a problem of its own: the usual path names it
+            return None
         return np.where(t > _MS_THRESHOLD, t / 1000.0, t), values
     return t, values
 
@@ -937,7 +949,7 @@ def _senml_columns(payload: bytes, now: float, max_items: int, max_depth: int) -
     with np.errstate(over="ignore"):  # a sum past the float range is inf, refused below
         values = np.fromiter(map(_GET_V, recs), np.float64, n) + bv
         total = bt + t
-    if not (np.isfinite(values).all() and np.isfinite(total).all()):
+    if not (np.isfinite(values).all() and np.isfinite(total).all()) or float(np.maximum.reduce(total)) > _RAW_TIME_MAX:
         return None
     times = np.where(total < _RELATIVE_LIMIT, now + total,
                      np.where(total > _MS_THRESHOLD, total / 1000.0, total))

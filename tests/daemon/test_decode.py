@@ -956,3 +956,37 @@ def test_colons_are_counted_as_bytes_count_counts_them() -> None:
         payload = b"".join(rng.choice(alphabet, size=n).tolist()) if n else b""
         assert decode_module._count_colons(payload) == payload.count(b":")
     assert decode_module._count_colons(bytes(range(256)) * 3) == 3
+
+
+@pytest.mark.parametrize("stamp", ["1772431200000000", "1772431200000000000", "1772431200000000.5"])
+@pytest.mark.parametrize("shape", ["object", "array", "senml"])
+def test_epoch_microseconds_and_nanoseconds_are_refused_as_past_the_year_9999(stamp: str, shape: str) -> None:
+    # Before, epoch microseconds read as milliseconds of the year 58,000 or later, and the
+    # sample was set aside as too far ahead of the receiving clock, which did not say why.
+    # RFC 3339 (section 5.6, date-fullyear = 4DIGIT) writes no year past 9999, nor does replay
+    # read one; the reason names the likely cause, as replay's does.
+    if shape == "object":
+        out = decode(f'{{"value": 1, "ts": {stamp}}}'.encode(), "json", time_path="ts", now=NOW)
+    elif shape == "array":
+        out = decode(f'[{{"value": 1, "ts": {stamp}}}, {{"value": 2, "ts": {stamp}1}}]'.encode(), "json",
+                     time_path="ts", now=NOW, columns=True)
+    else:
+        out = decode(f'[{{"n": "brackenfield:oven", "v": 1, "t": {stamp}}}]'.encode(), "senml", now=NOW,
+                     columns=True)
+    assert out.readings == [] and out.columns is None and out.senml is None
+    assert set(reasons(out)) == {"bad_time"}, out
+    assert all("past the year 9999" in p.message and "divide epoch microseconds or nanoseconds first" in p.message
+               for p in out.problems), out.problems
+    # decode_many (joined objects) agrees
+    if shape == "object":
+        many = decode_many([f'{{"value": 1, "ts": {stamp}}}'.encode()] * 2, "json", time_path="ts", now=[NOW] * 2)
+        assert all(reasons(d) == ["bad_time"] for d in many), many
+
+
+def test_the_last_millisecond_of_the_year_9999_is_still_a_time() -> None:
+    # 9999-12-31T23:59:59.999Z in epoch milliseconds (calendar.timegm, the stdlib's POSIX count)
+    import calendar
+
+    last = calendar.timegm((9999, 12, 31, 23, 59, 59, 0, 0, 0)) * 1000 + 999
+    out = decode(f'{{"value": 1, "ts": {last}}}'.encode(), "json", time_path="ts", now=NOW)
+    assert out.problems == [] and out.readings[0].time == last / 1000.0
