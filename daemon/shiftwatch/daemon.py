@@ -699,15 +699,24 @@ class Daemon:
         unparked: list[JournalGroup] = []
         parked_last: dict[str, int] = {}
         for name, r in loaded.items():
-            if defer and r.written_by not in (None, self.writer_id) and r.written_at is not None:
+            if defer:
                 ho, topic = self.handover, self._topic_of.get(name)
-                if (ho is not None and topic is not None and ho.can_ask(r.written_shard)
-                        and now - r.written_at < ho.wait):
-                    assert r.written_shard is not None
-                    ho.ask(name, r.written_shard, topic)
+                fresh = r.written_by not in (None, self.writer_id) and r.written_at is not None
+                ask = r.written_shard if (fresh and ho is not None and ho.can_ask(r.written_shard)
+                                          and now - r.written_at < ho.wait) else None
+                if ask is None:
+                    # Nobody else wrote it moments ago (a stream nobody has written yet, or
+                    # not for long; or this shard's own, taken back): it may still have moved
+                    # here at the last change of the mapping, and its old owner may hold
+                    # samples of it that the mapping sent it before (a shard still waiting
+                    # after resuming its session, or frozen).  Asked too: begun at once, the
+                    # stream would refuse those samples when they reach the journal.
+                    ask = self._moved_from(topic, now)
+                if ask is not None and ho is not None and topic is not None:
+                    ho.ask(name, ask, topic)
                     self._deferred[name] = now + ho.wait
                     continue
-                if now - r.written_at < wait:
+                if fresh and now - r.written_at < wait:
                     self._deferred[name] = r.written_at + wait
                     continue
             self._parked_here.discard(name)  # loaded here: this load feeds what is parked
@@ -771,6 +780,30 @@ class Daemon:
                           restored, replayed)
         if parked_last:
             self._journal_unparked(unparked, parked_last, now)
+
+    def _moved_from(self, topic: str | None, now: float) -> int | None:
+        """The shard that the mapping before the last change gave ``topic``, while that
+        change is younger than cluster.handover_wait and that shard is another one (it
+        can be asked); None otherwise.  From the cluster's mapping record, which every
+        shard brings up to date at its start and at a reload (see _note_mapping)."""
+        ho, remap = self.handover, self.cluster.remap if self.cluster is not None else None
+        if ho is None or remap is None or topic is None or self.owner is None:
+            return None
+        k = remap.moved_from(topic, self.owner.number, now=now, wait=ho.wait)
+        return k if ho.can_ask(k) else None
+
+    def _note_mapping(self, *, changed: bool) -> None:
+        """Shards with shard.hashed_levels and state in the cluster: the cluster's mapping
+        record says which mapping runs now and which ran before (ClusterState.note_mapping),
+        so that a new owner knows where a stream was before the change, even one no shard
+        has written yet.  A cluster that does not answer costs only that knowledge."""
+        if self.cluster is None or self.owner is None or self.handover is None:
+            return
+        try:
+            self.cluster.note_mapping(self.owner.of, self.owner.levels, changed=changed)
+        except ClusterError as exc:
+            self.log.warning("the mapping record in the cluster not brought up to date (%s): streams "
+                             "that no shard wrote lately begin at once if they moved here", exc)
 
     def _unpark(self, name: str, spec: StreamConfig, unit: str | None, parked: list[JournalGroup],
                 now: float) -> JournalGroup | None:
@@ -1005,6 +1038,7 @@ class Daemon:
             self.owner = Ownership(sh.number, nsh.of, nsh.hashed_levels)
         else:
             self.owner.change(nsh.of, nsh.hashed_levels)
+        self._note_mapping(changed=True)
         if sh.number >= nsh.of:
             self.log.warning("shard %d is past shard.of %d: it owns no stream now; stop it once the "
                              "NATS servers' mapping has %d partitions", sh.number, nsh.of, nsh.of)
@@ -1068,6 +1102,7 @@ class Daemon:
         self._join_cluster()
         if self._stop.is_set():
             return
+        self._note_mapping(changed=False)
         if not self.in_cluster:
             self.restore()
         settle_heap()

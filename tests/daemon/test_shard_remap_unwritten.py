@@ -17,6 +17,7 @@ set aside as ``other_shard``.  The issue asks that no sample be lost and no step
 from __future__ import annotations
 
 import sys
+import time
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -77,22 +78,26 @@ def test_a_reshard_during_an_old_shard_s_wait_loses_none_of_its_unwritten_stream
                 remapped_at.append(j)
                 assert "processing waits" in sh.log()[offset:]
 
-        import time
-
         t0 = time.monotonic()
         r.publish(during)
         counts = r.settle(120, still_for=20.0)
         tally = r.tally(counts, time.monotonic() - t0)
-        page = scrape(sh.port)
+        pages = {k: scrape(x.port) for k, x in r.shards.items()}
     finally:
         r.close()
+    page = pages[waiting]
+    answered = sum(v for m in pages.values() for (n, lab), v in m.items()
+                   if n == "shiftwatch_stream_handovers_total" and dict(lab).get("outcome") == "answered")
+    waited_out = sum(v for m in pages.values() for (n, lab), v in m.items()
+                     if n == "shiftwatch_stream_handovers_total" and dict(lab).get("outcome") == "waited_out")
     other = sum(v for (n, lab), v in page.items()
                 if n == "shiftwatch_messages_dropped_total" and dict(lab).get("reason") == "other_shard")
     handed = metric(page, "shiftwatch_samples_handed_over_total")
     moved_short = {s: plan.samples - int(counts.get(s, 0)) for s in moving[waiting]
                    if counts.get(s, 0) < plan.samples}
     print(tally.line() + f"; shard {waiting} waited at the remap ({len(moving[waiting])} streams moving "
-          f"away, short: {moved_short}); its other shards' samples {other:.0f}, handed over {handed:.0f}")
+          f"away, short: {moved_short}); its other shards' samples {other:.0f}, handed over {handed:.0f}; "
+          f"handovers answered {answered:.0f}, waited out {waited_out:.0f}")
     assert remapped_at == [100], remapped_at
     # The waiting shard held samples of its moving streams at the remap ...
     assert other > 0, tally.line()
@@ -100,3 +105,6 @@ def test_a_reshard_during_an_old_shard_s_wait_loses_none_of_its_unwritten_stream
     assert tally.lost == 0, tally.line()
     assert tally.shifts_missed == 0, tally.line()
     assert tally.shifts_with_two_ids == 0, tally.line()
+    # Their new owners asked the waiting shard (no journal named it: the cluster's mapping
+    # record did) and it answered once its wait was over.
+    assert answered >= len(moving[waiting]) and waited_out == 0, (answered, waited_out)
