@@ -348,30 +348,6 @@ class ClusterState:
                               headers={WRITER: self.writer, WRITTEN: f"{time.time():.3f}",
                                        "Nats-Msg-Id": digest})
 
-    def park_behind(self, groups: list[JournalGroup]) -> list[JournalGroup]:
-        """Park samples of streams whose earlier samples this daemon parked and which it let
-        go before it loaded them, behind those (the next owner feeds the parking in time
-        order after the journal), while the stream's journal still ends at the sequence this
-        daemon read: once it moved on, the owner has loaded the stream (and its parking), so
-        these are refused, as a journal write would be.  Returns the groups refused; raises
-        ClusterError when the cluster did not answer in time."""
-        sem = asyncio.Semaphore(PARALLEL)
-        refused: list[JournalGroup] = []
-
-        async def one(g: JournalGroup) -> None:
-            async with sem:
-                last, _ = await self.io.last_seq(self.stream, self.subject(g.stream))
-                if last != self.seq.get(g.stream, 0):
-                    refused.append(g)
-                    return
-                await self._park_one(g)
-
-        async def go() -> None:
-            await asyncio.gather(*(one(g) for g in groups))
-
-        self.io.run(go(), timeout=self.io.timeout * (1 + len(groups) // PARALLEL))
-        return refused
-
     def unpark(self, lasts: Mapping[str, int]) -> None:
         """Purge each stream's parked messages up to and including the sequence given
         (those a load read; later ones, parked meanwhile, stay).  Raises ClusterError."""

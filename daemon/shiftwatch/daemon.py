@@ -944,9 +944,14 @@ class Daemon:
         With state in the cluster they go to the stream's journal, stating the last
         sequence this daemon knows of it (0, no message yet, for a stream it never
         had: NATS may have held all of an old owner's deliveries back): its owner
-        loads them with the snapshot, or, when it has written the stream since, they
-        are refused and set aside.  Without the cluster they are set aside.  All
-        count as other_shard.  False: the cluster did not answer (the round is held
+        loads them with the snapshot.  When the journal refuses them (the stream was
+        written since this daemon knew it), and for a stream whose samples this daemon
+        parked before, they are parked (ClusterState.park): an owner that is still
+        waiting for this shard's answer (it asks the shard that wrote the stream last,
+        or that the mapping before the last change gave it) feeds them with its own
+        parked samples in time order; one that has begun sets them aside at its next
+        load of the stream, as out of order.  Without the cluster they are set aside.
+        All count as other_shard.  False: the cluster did not answer (the round is held
         and taken again)."""
         assert self.owner is not None
         n = sum(len(g[3]) for g in foreign.values())
@@ -959,31 +964,32 @@ class Daemon:
                                             np.asarray(values, dtype=np.float64),
                                             np.asarray(arrivals, dtype=np.float64),
                                             self._filters.get(name, spec.topic)))
-            # A stream this shard parked samples of while it waited, and let go before it
-            # loaded it (the number of shards changed again): what still comes of it is
-            # parked behind those, whose next owner feeds the parking after the journal in
-            # time order.  Journaled, these newer samples came before the parked ones, which
-            # were then set aside as out of order.
+            # A stream this shard parked samples of (while it waited for an answer, or
+            # refused by its journal before): what still comes of it is parked behind
+            # those, whose next owner feeds the parking after the journal in time order.
+            # Journaled, these newer samples came before the parked ones, which were then
+            # set aside as out of order.
             behind = [g for g in out if g.stream in self._parked_here]
             out = [g for g in out if g.stream not in self._parked_here]
             if out or behind:
                 try:
                     refused = self.cluster.journal(out) if out else []
-                    if behind:
-                        late = self.cluster.park_behind(behind)
-                        self._parked_here.difference_update(g.stream for g in late)
-                        refused += late
-                        out += behind
+                    for g in refused:
+                        self.cluster.unsigned.pop(g.stream, None)  # (refused as another shard's stream)
+                    # Refused: the owner wrote the stream after this shard last knew it.
+                    # Until 2026-12-04 they were set aside, and an owner that took a stream
+                    # back (two changes in a row) lost what the mapping between had sent a
+                    # shard that was frozen meanwhile.
+                    if refused or behind:
+                        self.cluster.park([*refused, *behind])
+                        self._parked_here.update(g.stream for g in (*refused, *behind))
                 except ClusterError as exc:
                     self.metrics.journal_failures.inc()
                     self.rlog.warning("cluster_journal", f"samples of another shard's streams not "
                                       f"written to their journal ({exc}); the round is held and "
                                       "tried again", now)
                     return False
-                gone = {g.stream for g in refused}
-                for name in gone:
-                    self.cluster.unsigned.pop(name, None)  # (refused as another shard's stream)
-                handed = sum(len(g.values) for g in out if g.stream not in gone)
+                handed = sum(len(g.values) for g in (*out, *behind))
         self._count_drop("other_shard", n)
         if handed:
             self.metrics.samples_handed_over.inc(handed)
@@ -995,8 +1001,8 @@ class Daemon:
                     return (f"stream {_printable(name)} belongs to shard {k} (shard.of "
                             f"{self.owner.of if self.owner else '?'}), not to this one: its samples "
                             "are not fed here (with state in the cluster they are written to the "
-                            "stream's journal for its owner until the owner writes the stream "
-                            "itself; then, or with local state, they are set aside)")
+                            "stream's journal, or parked, for its owner; with local state they are "
+                            "set aside)")
 
                 self.rlog.warning("other_shard", text, now, extra={"stream": name})
         return True
@@ -1241,6 +1247,14 @@ class Daemon:
             return 0
         if sort and self._taken_early:
             msgs, self._taken_early = self._taken_early + msgs, []
+        if msgs and self._reload.is_set():
+            # A reload signalled while these were on their way applies to them: a shard
+            # stopped (SIGSTOP) through a change of the number of shards takes the reload
+            # and its backlog at once, and the backlog came under the mapping the reload
+            # brings.  Processed first under the old shard.of, the samples of streams that
+            # had come back to this shard were taken for another shard's.
+            self._reload.clear()
+            self.reload()
         self._busy = len(msgs) >= BUSY_ROUND
         if self._new_held:
             self._flush_new_streams(time.monotonic())

@@ -1,10 +1,10 @@
-"""A reshard that finds a stream no shard has written yet: its new owner asks its old one.
+"""Reshards that used to lose samples (README, Running shards, "Known limits" until 2026-12-04).
 
 A real 3-server NATS cluster (``natskit.NatsCluster``) of its own, real
 ``shiftwatch run --shard k`` daemons in subprocesses with ``state.keep: cluster``,
 samples published with paho over MQTT at QoS 1 (``shardrun.ShardRun``).
 
-The case (README, Running shards, "Known limits" until 2026-12-04): the number of
+The first case: the number of
 shards changes (3 to 4, the README's three steps) while one old shard is still in its
 wait after resuming its MQTT session (``cluster.redelivery_wait``, 6 s here), so it has
 written none of its streams yet.  The streams the new mapping gives other shards then
@@ -12,11 +12,18 @@ had no journal to tell their new owners whom to ask: each new owner began its st
 once, and the samples NATS had queued for the waiting shard before the remap reached it
 after its wait, were refused by the journal (the new owner had written the stream) and
 set aside as ``other_shard``.  The issue asks that no sample be lost and no step missed.
+
+The second: a shard frozen (SIGSTOP) through two changes (3 to 4, then back to 3 within
+``cluster.handover_wait``).  The 4-partition mapping sent it samples of three streams it
+took only after the second change, when their old owners had taken the streams back:
+its journal writes were refused and the samples set aside.
 """
 
 from __future__ import annotations
 
+import signal
 import sys
+import threading
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -108,3 +115,81 @@ def test_a_reshard_during_an_old_shard_s_wait_loses_none_of_its_unwritten_stream
     # Their new owners asked the waiting shard (no journal named it: the cluster's mapping
     # record did) and it answered once its wait was over.
     assert answered >= len(moving[waiting]) and waited_out == 0, (answered, waited_out)
+
+
+def test_a_shard_frozen_through_two_changes_of_the_mapping_loses_nothing(
+        tmp_path: Path, cluster: NatsCluster) -> None:
+    plan = Plan(samples=1600, rate=100.0)
+    names = plan.names()
+    frozen = 0
+    # The streams the 4-partition mapping gives the frozen shard, and those it takes away.
+    gained = [s for s in names if partition_of(s, HASHED_LEVELS, 4) == frozen
+              and partition_of(s, HASHED_LEVELS, 3) != frozen]
+    lost_to = [s for s in names if partition_of(s, HASHED_LEVELS, 3) == frozen
+               and partition_of(s, HASHED_LEVELS, 4) != frozen]
+    r = ShardRun(tmp_path, CMD, cluster, plan=plan, name="twice", keepalive=30)
+    published: list[int] = [0]
+    marks: list[int] = []
+    errors: list[str] = []
+
+    def twice() -> None:
+        try:
+            sh = r.shard(frozen)
+            assert sh.proc is not None
+            # 3 to 4 in the README's order ...
+            r.write_config(4)
+            r.shard(3).start()
+            if not r.online(3):
+                raise RuntimeError("shard 3 did not say online")
+            r.reload_shards([0, 1, 2], "shard.of is 4 now")
+            r.remap(4)
+            marks.append(published[-1])
+            # ... shard 0 frozen just after the remap (the keepalive of 30 s keeps its
+            # connection: a frozen process, not a lost connection) ...
+            sh.proc.send_signal(signal.SIGSTOP)
+            try:
+                time.sleep(5.0)
+                # ... and back to 3 five seconds later, without waiting for shard 0's reload.
+                r.write_config(3)
+                sh.proc.send_signal(signal.SIGHUP)
+                r.reload_shards([1, 2, 3], "shard.of is 3 now")
+                r.remap(3)
+                marks.append(published[-1])
+                time.sleep(2.0)
+            finally:
+                sh.proc.send_signal(signal.SIGCONT)
+            marks.append(published[-1])
+        except Exception as exc:  # noqa: BLE001  reported in the test's thread
+            errors.append(f"{type(exc).__name__}: {exc}")
+
+    def during(j: int) -> None:
+        published[-1] = j
+        if j == 300:
+            threading.Thread(target=twice, daemon=True).start()
+
+    try:
+        r.start()
+        for k in range(3):
+            r.shard(k).start()
+            assert r.online(k), f"shard {k} never said online: {r.shard(k).log()[-2000:]}"
+        t0 = time.monotonic()
+        r.publish(during)
+        counts = r.settle(150, still_for=20.0)
+        tally = r.tally(counts, time.monotonic() - t0)
+        pages = {k: scrape(x.port) for k, x in r.shards.items()}
+    finally:
+        r.close()
+        r.repartition(3)
+    short = {s: plan.samples - int(counts.get(s, 0)) for s in names if counts.get(s, 0) < plan.samples}
+    handovers = {o: sum(v for m in pages.values() for (n, lab), v in m.items()
+                        if n == "shiftwatch_stream_handovers_total" and dict(lab).get("outcome") == o)
+                 for o in ("answered", "waited_out")}
+    print(tally.line() + f"; sample index at the remap to 4, back to 3, the thaw: {marks}; streams "
+          f"the 4-partition mapping gave shard {frozen}: {gained}, took from it: {lost_to}; "
+          f"short: {short}; handovers {handovers}")
+    assert not errors, errors
+    # Both changes came while samples flowed, and the shard was frozen between them.
+    assert len(marks) == 3 and marks[0] < marks[1] < plan.samples - 200, marks
+    assert tally.lost == 0, tally.line()
+    assert tally.shifts_missed == 0, tally.line()
+    assert tally.shifts_with_two_ids == 0, tally.line()
