@@ -39,7 +39,15 @@ The same two parts as the local state directory, with the same guarantee
   while it waits (a shard holding them unacknowledged was sent nothing more
   once it held the broker's limit of them, asks and all).  Whoever loads the
   stream next feeds them after its journal, writes them to the journal and
-  purges them from here.
+  purges them from here.  Another shard's samples that the journal refused
+  (the stream was written since that shard last knew it) are parked here too,
+  for an owner that still waits for that shard's answer.
+- **Mapping record**: the key ``mapping`` in the bucket (``partition.Remap``):
+  the mapping for ``shard.of`` partitions the shards run now, the one before,
+  and when the latest shard took it up (``note_mapping``, at each shard's start
+  and at a reload that changes its ``shard.of``).  Read with every load: a new
+  owner asks the shard the mapping before gave a stream, for a while after a
+  change, even when no journal message names it (a stream nobody wrote yet).
 
 A stream is loaded when its first samples reach a daemon: snapshot, then the
 journal messages after the snapshot's sequence, fed to a new engine.  That is

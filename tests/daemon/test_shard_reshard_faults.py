@@ -92,6 +92,7 @@ def test_a_reshard_during_an_old_shard_s_wait_loses_none_of_its_unwritten_stream
         pages = {k: scrape(x.port) for k, x in r.shards.items()}
     finally:
         r.close()
+        r.repartition(3)  # the cluster's mapping back to 3 partitions for the next test
     page = pages[waiting]
     answered = sum(v for m in pages.values() for (n, lab), v in m.items()
                    if n == "shiftwatch_stream_handovers_total" and dict(lab).get("outcome") == "answered")
