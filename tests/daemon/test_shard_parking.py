@@ -499,3 +499,41 @@ def test_samples_of_another_shard_s_stream_refused_by_its_journal_are_parked_for
         assert _journaled(server, topic) == [float(i) for i in range(150)]
     finally:
         _close(owner)
+
+
+def test_a_stream_nobody_wrote_waits_for_the_shard_the_mapping_before_gave_it(
+        tmp_path: Path, server: int) -> None:
+    # The number of shards went from 3 to 2 moments ago (the cluster's mapping record says
+    # so: another shard took up the mapping for 3, this one that for 2).  A stream no shard
+    # has written yet, which the mapping for 3 gave another shard, used to begin at once:
+    # samples its old owner still held (in its wait after resuming a session, say) were
+    # then refused by the journal and set aside.  Now it waits for that shard's answer, its
+    # samples parked; a stream that was this shard's under both mappings begins at once,
+    # and so does every stream once the change is older than cluster.handover_wait.
+    moved = next(t for t in _owned_by_1_of_2(16) if partition_of(t, LEVELS, 3) not in (1, None))
+    stayed = next(t for t in _owned_by_1_of_2(16) if partition_of(t, LEVELS, 3) == 1)
+    later = next(t for t in _owned_by_1_of_2(16) if partition_of(t, LEVELS, 3) not in (1, None)
+                 and t != moved)
+    io = _io(server, "before")
+    try:
+        cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="w-before",
+                          shard=0)
+        cs.setup()
+        first = cs.note_mapping(3, LEVELS, changed=False)
+        assert first is not None and (first.of, first.previous_of) == (3, None)
+    finally:
+        io.close()
+    d = _daemon(tmp_path, server, "remapped", handover_wait=2.0)
+    try:
+        d._note_mapping(changed=False)
+        assert d.cluster.remap is not None and (d.cluster.remap.of, d.cluster.remap.previous_of) == (2, 3)
+        d.process([_array(moved, 0.0, [500.0] * 20), _array(stayed, 0.0, [500.0] * 20)])
+        assert moved in d._deferred and moved not in d.engines
+        assert d.handover.waiting[moved].shard == partition_of(moved, LEVELS, 3)
+        assert _parked(server, moved)[0] == [float(t) for t in range(20)]
+        assert stayed in d.engines and stayed not in d._deferred
+        time.sleep(2.1)  # the change is older than cluster.handover_wait now
+        d.process([_array(later, 0.0, [500.0] * 20)])
+        assert later in d.engines and later not in d._deferred
+    finally:
+        _close(d)
