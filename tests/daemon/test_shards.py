@@ -571,9 +571,11 @@ def test_an_old_owner_not_yet_reloaded_answers_only_once_it_let_go(tmp_path: Pat
     # next snapshot and at its reload: the state as of the remap, and the journal purged
     # down to its last message).  So the answer waits for the reload that lets the streams
     # go; shard 3, killed right after that reload and started again, loses nothing of them.
-    # (The streams moving between the old shards lose their samples of those 8 s: their new
+    # (The streams moving between the old shards lost their samples of those 8 s: their new
     # owners, not reloaded either, take them for another shard's; that is what the README's
-    # order is for, and not checked here.)
+    # order is for, and not checked here.  3,038 of 19,200 lost in a run of 2026-12-04;
+    # none in the one after another shard's samples refused by a journal were parked
+    # instead of set aside.)
     plan = Plan(samples=1600, rate=100.0)
     r = _run(tmp_path, cluster, "late", plan)
     to3 = [s for s in plan.names() if partition_of(s, HASHED_LEVELS, 4) == 3]
