@@ -39,7 +39,15 @@ The same two parts as the local state directory, with the same guarantee
   while it waits (a shard holding them unacknowledged was sent nothing more
   once it held the broker's limit of them, asks and all).  Whoever loads the
   stream next feeds them after its journal, writes them to the journal and
-  purges them from here.
+  purges them from here.  Another shard's samples that the journal refused
+  (the stream was written since that shard last knew it) are parked here too,
+  for an owner that still waits for that shard's answer.
+- **Mapping record**: the key ``mapping`` in the bucket (``partition.Remap``):
+  the mapping for ``shard.of`` partitions the shards run now, the one before,
+  and when the latest shard took it up (``note_mapping``, at each shard's start
+  and at a reload that changes its ``shard.of``).  Read with every load: a new
+  owner asks the shard the mapping before gave a stream, for a while after a
+  change, even when no journal message names it (a stream nobody wrote yet).
 
 A stream is loaded when its first samples reach a daemon: snapshot, then the
 journal messages after the snapshot's sequence, fed to a new engine.  That is
@@ -64,6 +72,7 @@ from typing import Any
 
 from shiftwatch.journal import JournalGroup, decode_groups, encode_groups
 from shiftwatch.natsio import ClusterError, NatsIO, SequenceConflict
+from shiftwatch.partition import Remap
 from shiftwatch.statestore import decode_state, encode_state
 
 __all__ = ["ClusterState", "JournalRound", "Restored", "stream_key"]
@@ -81,6 +90,9 @@ SHARD = "Shiftwatch-Shard"
 #: Journal messages older than this are dropped by the cluster even without a snapshot
 #: (a safety net: snapshots purge them long before).
 JOURNAL_MAX_AGE = 7 * 86400.0
+#: The key of the mapping record (``partition.Remap``) in the state bucket; no stream's
+#: key (``stream_key``: "s" and 40 hex digits) can be it.
+MAPPING_KEY = "mapping"
 
 
 def stream_key(name: str) -> str:
@@ -148,6 +160,9 @@ class ClusterState:
         #: Streams whose entry the last :meth:`save` found damaged (no stream state at all)
         #: and wrote anew from the engine.
         self.damaged: list[str] = []
+        #: The mapping record (``partition.Remap``) as the last :meth:`load` read it (None:
+        #: none yet, or unreadable): where a stream was before the last change.
+        self.remap: Remap | None = None
 
     def subject(self, name: str) -> str:
         return f"{self.name}.journal.{stream_key(name)}"
@@ -180,8 +195,12 @@ class ClusterState:
 
         async def go() -> list[tuple[str, Restored, int]]:
             # One request says which streams have parked samples (few, and only around a
-            # change of the number of shards), instead of one request per stream.
-            parked.update(await self.io.subjects(self.parking, f"{self.name}.parked.*"))
+            # change of the number of shards), instead of one request per stream; one more
+            # reads the mapping record (where a stream was before the last change).
+            subjects, entry = await asyncio.gather(self.io.subjects(self.parking, f"{self.name}.parked.*"),
+                                                   self.io.kv_get(self.bucket, MAPPING_KEY))
+            parked.update(subjects)
+            self.remap = None if entry is None else Remap.decode(entry.value)
             return list(await asyncio.gather(*(one(n) for n in names)))
 
         out: dict[str, Restored] = {}
@@ -287,6 +306,32 @@ class ClusterState:
             return after, None
         return after, f"saved state in {where} has an unusable " + ", ".join(wrong)
 
+    def note_mapping(self, of: int, levels: tuple[int, ...], *, changed: bool) -> Remap | None:
+        """This shard runs the mapping for ``of`` partitions over ``levels`` now (at its
+        start, or at a reload that ``changed`` its own): the cluster's mapping record is
+        brought up to date (``Remap.taken_up``), with the bucket's revision checked so that
+        shards starting or reloading together keep the one before.  Returns the record as
+        it stands; raises ClusterError."""
+        async def go() -> Remap | None:
+            for _attempt in range(5):
+                entry = await self.io.kv_get(self.bucket, MAPPING_KEY)
+                cur = None if entry is None else Remap.decode(entry.value)
+                now = time.time()
+                new = Remap(of, tuple(levels), None, None, now) if cur is None \
+                    else cur.taken_up(of, tuple(levels), now, changed=changed)
+                if new is None:
+                    return cur
+                if entry is None:
+                    rev = await self.io.kv_create(self.bucket, MAPPING_KEY, new.encode())
+                else:
+                    rev = await self.io.kv_update(self.bucket, MAPPING_KEY, new.encode(), last=entry.revision)
+                if rev is not None:
+                    return new
+            raise ClusterError(f"the mapping record {self.bucket} key {MAPPING_KEY} kept changing")
+
+        self.remap = self.io.run(go(), timeout=self.io.timeout * 2)
+        return self.remap
+
     # ------------------------------------------------------------ parking
     def park(self, groups: list[JournalGroup]) -> None:
         """Store each group as its stream's next parked message and wait for the cluster
@@ -310,30 +355,6 @@ class ClusterState:
         await self.io.publish(self.parked_subject(g.stream), body,
                               headers={WRITER: self.writer, WRITTEN: f"{time.time():.3f}",
                                        "Nats-Msg-Id": digest})
-
-    def park_behind(self, groups: list[JournalGroup]) -> list[JournalGroup]:
-        """Park samples of streams whose earlier samples this daemon parked and which it let
-        go before it loaded them, behind those (the next owner feeds the parking in time
-        order after the journal), while the stream's journal still ends at the sequence this
-        daemon read: once it moved on, the owner has loaded the stream (and its parking), so
-        these are refused, as a journal write would be.  Returns the groups refused; raises
-        ClusterError when the cluster did not answer in time."""
-        sem = asyncio.Semaphore(PARALLEL)
-        refused: list[JournalGroup] = []
-
-        async def one(g: JournalGroup) -> None:
-            async with sem:
-                last, _ = await self.io.last_seq(self.stream, self.subject(g.stream))
-                if last != self.seq.get(g.stream, 0):
-                    refused.append(g)
-                    return
-                await self._park_one(g)
-
-        async def go() -> None:
-            await asyncio.gather(*(one(g) for g in groups))
-
-        self.io.run(go(), timeout=self.io.timeout * (1 + len(groups) // PARALLEL))
-        return refused
 
     def unpark(self, lasts: Mapping[str, int]) -> None:
         """Purge each stream's parked messages up to and including the sequence given

@@ -699,15 +699,24 @@ class Daemon:
         unparked: list[JournalGroup] = []
         parked_last: dict[str, int] = {}
         for name, r in loaded.items():
-            if defer and r.written_by not in (None, self.writer_id) and r.written_at is not None:
+            if defer:
                 ho, topic = self.handover, self._topic_of.get(name)
-                if (ho is not None and topic is not None and ho.can_ask(r.written_shard)
-                        and now - r.written_at < ho.wait):
-                    assert r.written_shard is not None
-                    ho.ask(name, r.written_shard, topic)
+                fresh = r.written_by not in (None, self.writer_id) and r.written_at is not None
+                ask = r.written_shard if (fresh and ho is not None and ho.can_ask(r.written_shard)
+                                          and now - r.written_at < ho.wait) else None
+                if ask is None:
+                    # Nobody else wrote it moments ago (a stream nobody has written yet, or
+                    # not for long; or this shard's own, taken back): it may still have moved
+                    # here at the last change of the mapping, and its old owner may hold
+                    # samples of it that the mapping sent it before (a shard still waiting
+                    # after resuming its session, or frozen).  Asked too: begun at once, the
+                    # stream would refuse those samples when they reach the journal.
+                    ask = self._moved_from(topic, now)
+                if ask is not None and ho is not None and topic is not None:
+                    ho.ask(name, ask, topic)
                     self._deferred[name] = now + ho.wait
                     continue
-                if now - r.written_at < wait:
+                if fresh and now - r.written_at < wait:
                     self._deferred[name] = r.written_at + wait
                     continue
             self._parked_here.discard(name)  # loaded here: this load feeds what is parked
@@ -771,6 +780,30 @@ class Daemon:
                           restored, replayed)
         if parked_last:
             self._journal_unparked(unparked, parked_last, now)
+
+    def _moved_from(self, topic: str | None, now: float) -> int | None:
+        """The shard that the mapping before the last change gave ``topic``, while that
+        change is younger than cluster.handover_wait and that shard is another one (it
+        can be asked); None otherwise.  From the cluster's mapping record, which every
+        shard brings up to date at its start and at a reload (see _note_mapping)."""
+        ho, remap = self.handover, self.cluster.remap if self.cluster is not None else None
+        if ho is None or remap is None or topic is None or self.owner is None:
+            return None
+        k = remap.moved_from(topic, self.owner.number, now=now, wait=ho.wait)
+        return k if ho.can_ask(k) else None
+
+    def _note_mapping(self, *, changed: bool) -> None:
+        """Shards with shard.hashed_levels and state in the cluster: the cluster's mapping
+        record says which mapping runs now and which ran before (ClusterState.note_mapping),
+        so that a new owner knows where a stream was before the change, even one no shard
+        has written yet.  A cluster that does not answer costs only that knowledge."""
+        if self.cluster is None or self.owner is None or self.handover is None:
+            return
+        try:
+            self.cluster.note_mapping(self.owner.of, self.owner.levels, changed=changed)
+        except ClusterError as exc:
+            self.log.warning("the mapping record in the cluster not brought up to date (%s): streams "
+                             "that no shard wrote lately begin at once if they moved here", exc)
 
     def _unpark(self, name: str, spec: StreamConfig, unit: str | None, parked: list[JournalGroup],
                 now: float) -> JournalGroup | None:
@@ -911,9 +944,14 @@ class Daemon:
         With state in the cluster they go to the stream's journal, stating the last
         sequence this daemon knows of it (0, no message yet, for a stream it never
         had: NATS may have held all of an old owner's deliveries back): its owner
-        loads them with the snapshot, or, when it has written the stream since, they
-        are refused and set aside.  Without the cluster they are set aside.  All
-        count as other_shard.  False: the cluster did not answer (the round is held
+        loads them with the snapshot.  When the journal refuses them (the stream was
+        written since this daemon knew it), and for a stream whose samples this daemon
+        parked before, they are parked (ClusterState.park): an owner that is still
+        waiting for this shard's answer (it asks the shard that wrote the stream last,
+        or that the mapping before the last change gave it) feeds them with its own
+        parked samples in time order; one that has begun sets them aside at its next
+        load of the stream, as out of order.  Without the cluster they are set aside.
+        All count as other_shard.  False: the cluster did not answer (the round is held
         and taken again)."""
         assert self.owner is not None
         n = sum(len(g[3]) for g in foreign.values())
@@ -926,31 +964,32 @@ class Daemon:
                                             np.asarray(values, dtype=np.float64),
                                             np.asarray(arrivals, dtype=np.float64),
                                             self._filters.get(name, spec.topic)))
-            # A stream this shard parked samples of while it waited, and let go before it
-            # loaded it (the number of shards changed again): what still comes of it is
-            # parked behind those, whose next owner feeds the parking after the journal in
-            # time order.  Journaled, these newer samples came before the parked ones, which
-            # were then set aside as out of order.
+            # A stream this shard parked samples of (while it waited for an answer, or
+            # refused by its journal before): what still comes of it is parked behind
+            # those, whose next owner feeds the parking after the journal in time order.
+            # Journaled, these newer samples came before the parked ones, which were then
+            # set aside as out of order.
             behind = [g for g in out if g.stream in self._parked_here]
             out = [g for g in out if g.stream not in self._parked_here]
             if out or behind:
                 try:
                     refused = self.cluster.journal(out) if out else []
-                    if behind:
-                        late = self.cluster.park_behind(behind)
-                        self._parked_here.difference_update(g.stream for g in late)
-                        refused += late
-                        out += behind
+                    for g in refused:
+                        self.cluster.unsigned.pop(g.stream, None)  # (refused as another shard's stream)
+                    # Refused: the owner wrote the stream after this shard last knew it.
+                    # Until 2026-12-04 they were set aside, and an owner that took a stream
+                    # back (two changes in a row) lost what the mapping between had sent a
+                    # shard that was frozen meanwhile.
+                    if refused or behind:
+                        self.cluster.park([*refused, *behind])
+                        self._parked_here.update(g.stream for g in (*refused, *behind))
                 except ClusterError as exc:
                     self.metrics.journal_failures.inc()
                     self.rlog.warning("cluster_journal", f"samples of another shard's streams not "
                                       f"written to their journal ({exc}); the round is held and "
                                       "tried again", now)
                     return False
-                gone = {g.stream for g in refused}
-                for name in gone:
-                    self.cluster.unsigned.pop(name, None)  # (refused as another shard's stream)
-                handed = sum(len(g.values) for g in out if g.stream not in gone)
+                handed = sum(len(g.values) for g in (*out, *behind))
         self._count_drop("other_shard", n)
         if handed:
             self.metrics.samples_handed_over.inc(handed)
@@ -962,8 +1001,8 @@ class Daemon:
                     return (f"stream {_printable(name)} belongs to shard {k} (shard.of "
                             f"{self.owner.of if self.owner else '?'}), not to this one: its samples "
                             "are not fed here (with state in the cluster they are written to the "
-                            "stream's journal for its owner until the owner writes the stream "
-                            "itself; then, or with local state, they are set aside)")
+                            "stream's journal, or parked, for its owner; with local state they are "
+                            "set aside)")
 
                 self.rlog.warning("other_shard", text, now, extra={"stream": name})
         return True
@@ -1005,6 +1044,7 @@ class Daemon:
             self.owner = Ownership(sh.number, nsh.of, nsh.hashed_levels)
         else:
             self.owner.change(nsh.of, nsh.hashed_levels)
+        self._note_mapping(changed=True)
         if sh.number >= nsh.of:
             self.log.warning("shard %d is past shard.of %d: it owns no stream now; stop it once the "
                              "NATS servers' mapping has %d partitions", sh.number, nsh.of, nsh.of)
@@ -1068,6 +1108,7 @@ class Daemon:
         self._join_cluster()
         if self._stop.is_set():
             return
+        self._note_mapping(changed=False)
         if not self.in_cluster:
             self.restore()
         settle_heap()
@@ -1206,6 +1247,14 @@ class Daemon:
             return 0
         if sort and self._taken_early:
             msgs, self._taken_early = self._taken_early + msgs, []
+        if msgs and self._reload.is_set():
+            # A reload signalled while these were on their way applies to them: a shard
+            # stopped (SIGSTOP) through a change of the number of shards takes the reload
+            # and its backlog at once, and the backlog came under the mapping the reload
+            # brings.  Processed first under the old shard.of, the samples of streams that
+            # had come back to this shard were taken for another shard's.
+            self._reload.clear()
+            self.reload()
         self._busy = len(msgs) >= BUSY_ROUND
         if self._new_held:
             self._flush_new_streams(time.monotonic())

@@ -11,7 +11,9 @@ holding a session's deliveries back), after the new owner has begun: those
 samples used to be refused and set aside.
 
 So the new owner asks before it begins.  Its first samples of a stream whose
-journal another shard wrote moments ago make it send, at QoS 1, an *ask* on
+journal another shard wrote moments ago (or, with no such journal message, that
+the mapping before a change less than ``cluster.handover_wait`` old gave another
+shard: ``partition.Remap``) make it send, at QoS 1, an *ask* on
 the stream's own topic in that shard's partition (``<its shard.topic_prefix>/<topic>``),
 and hold the stream (its samples wait, see ``Daemon._deferred``).  The ask is
 stored by the broker after every message the mapping sent that shard before

@@ -22,7 +22,10 @@ Pure: no I/O, no clock.
 
 from __future__ import annotations
 
-__all__ = ["FNV32_OFFSET", "FNV32_PRIME", "Ownership", "fnv1a_32", "partition_of"]
+import json
+from dataclasses import dataclass
+
+__all__ = ["FNV32_OFFSET", "FNV32_PRIME", "Ownership", "Remap", "fnv1a_32", "partition_of"]
 
 #: 32-bit FNV-1a parameters (Fowler, Noll, Vo; the IETF draft "The FNV
 #: Non-Cryptographic Hash Algorithm", draft-eastlake-fnv).
@@ -110,3 +113,83 @@ class Ownership:
             return False
         self._logged.add(stream)
         return True
+
+
+@dataclass(frozen=True)
+class Remap:
+    """The mapping the shards run with, the one before it, and when the latest shard took it
+    up (wall clock, seconds): kept in the cluster (``ClusterState.note_mapping``), so that
+    every shard, a new one included, knows where a stream was before the last change.
+
+    A stream's journal says who wrote it last, and its new owner asks that shard for what
+    it still holds (``shiftwatch.handover``).  A stream nobody wrote yet (or not for long)
+    has no such word: its old owner may still hold samples of it that the mapping sent it
+    before the change (a shard still waiting after resuming its session, a frozen one).
+    :meth:`moved_from` names that old owner for a while after a change.
+
+    >>> r = Remap(4, (2, 3, 4), 3, (2, 3, 4), since=100.0)
+    >>> topic = "brackenfield/line1/head1/fill"
+    >>> partition_of(topic, (2, 3, 4), 3), partition_of(topic, (2, 3, 4), 4)
+    (1, 2)
+    >>> r.moved_from(topic, 2, now=130.0, wait=60.0), r.moved_from(topic, 1, now=130.0, wait=60.0)
+    (1, None)
+    >>> r.moved_from(topic, 2, now=170.0, wait=60.0) is None  # the change is too old
+    True
+    >>> Remap.decode(r.encode()) == r
+    True
+    >>> Remap(3, (2, 3, 4), None, None, 5.0).moved_from(topic, 2, now=6.0, wait=60.0) is None
+    True
+    """
+
+    of: int
+    levels: tuple[int, ...]
+    previous_of: int | None
+    previous_levels: tuple[int, ...] | None
+    since: float
+
+    def moved_from(self, topic: str, number: int, *, now: float, wait: float) -> int | None:
+        """The shard the mapping before gave ``topic``, when it is not ``number`` and the
+        change is less than ``wait`` seconds old; otherwise None."""
+        if self.previous_of is None or self.previous_levels is None or not now - self.since < wait:
+            return None
+        k = partition_of(topic, self.previous_levels, self.previous_of)
+        return None if k is None or k == number else k
+
+    def encode(self) -> bytes:
+        return json.dumps({"format": "shiftwatch-mapping", "of": self.of, "levels": list(self.levels),
+                           "previous_of": self.previous_of,
+                           "previous_levels": None if self.previous_levels is None else list(self.previous_levels),
+                           "since": self.since}, separators=(",", ":")).encode("utf-8")
+
+    @classmethod
+    def decode(cls, body: bytes) -> Remap | None:
+        """None for anything that is not such a record (damaged, put there by hand)."""
+        try:
+            doc = json.loads(body)
+            if not isinstance(doc, dict) or doc.get("format") != "shiftwatch-mapping":
+                return None
+
+            def levels(v: object) -> tuple[int, ...]:
+                if not isinstance(v, list) or not v or not all(type(x) is int and x > 0 for x in v):
+                    raise ValueError("levels")
+                return tuple(v)
+
+            of, pof, since = doc["of"], doc.get("previous_of"), doc["since"]
+            if type(of) is not int or of < 1 or type(since) not in (int, float):
+                return None
+            if pof is not None and (type(pof) is not int or pof < 1):
+                return None
+            plev = doc.get("previous_levels")
+            return cls(of, levels(doc["levels"]), pof, None if plev is None else levels(plev), float(since))
+        except (ValueError, KeyError, TypeError, UnicodeDecodeError):
+            return None
+
+    def taken_up(self, of: int, levels: tuple[int, ...], now: float, *, changed: bool) -> Remap | None:
+        """The record after a shard took up the mapping for ``of`` partitions over ``levels``
+        (at its start, or at a reload that ``changed`` its own); None when it stays as is."""
+        levels = tuple(levels)
+        if (of, levels) != (self.of, self.levels):
+            return Remap(of, levels, self.of, self.levels, now)
+        if changed:  # the latest old shard's reload: the streams move from about now on
+            return Remap(of, levels, self.previous_of, self.previous_levels, max(now, self.since))
+        return None
