@@ -500,6 +500,10 @@ FIT_MIN = 2 * FIT_MIN_SEGMENT + 1
 #: A segment that holds an outlier is split at its outliers only
 #: (StreamEngine._split_spikes_sparse); False: the reference's passes over the segment.
 SPARSE_SPIKES = True
+#: A segment longer than the samples a stretch can keep is searched for outliers in
+#: those samples first (StreamEngine._split_spikes); False: the whole segment, the
+#: reference (tests/core/test_split_spikes.py holds the two to each other).
+HEAD_SPIKES = True
 SPLIT_DEFER_ROWS = 64
 #: A batch that folds samples of the window and of its own into the baseline sums folds
 #: them in one call (BaselineSums.add with a cut); False: two calls, the reference
@@ -1053,7 +1057,16 @@ class StreamEngine:
             idx = np.concatenate(([-1], idx))
             self._pending = None
         span = s.spike_sigma * sigma
-        if not (float(np.maximum.reduce(x)) > center + span or float(np.minimum.reduce(x)) < center - span):
+        if HEAD_SPIKES and x.shape[0] > limit:
+            # Only the first ``limit`` samples can be kept: when none of them is an outlier
+            # they are all kept whatever follows (a sample is set aside only for being an
+            # outlier, and a kept one's direction and settling time are its own), so the
+            # outcome is the one below however many outliers the rest holds.
+            head = x[:limit]
+            if not (float(np.maximum.reduce(head)) > center + span
+                    or float(np.minimum.reduce(head)) < center - span):
+                return t[:limit], head, [], limit - int(held_before), None, None
+        elif not (float(np.maximum.reduce(x)) > center + span or float(np.minimum.reduce(x)) < center - span):
             # Fast path: no outlier at all.
             if x.shape[0] >= limit:
                 return t[:limit], x[:limit], [], limit - int(held_before), None, None
