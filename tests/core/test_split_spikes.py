@@ -124,3 +124,82 @@ def test_sparse_split_property(seed: int, n: int, cut: int) -> None:
     t, x = _series(np.random.default_rng(seed), n)
     cuts = [cut] if cut < n else []
     assert _run(t, x, cuts, True) == _run(t, x, cuts, False)
+
+
+# ``engine.HEAD_SPIKES``: a segment longer than the samples a stretch can keep is searched
+# for outliers in those samples first; with none there, the stretch keeps them all,
+# whatever the rest holds.  Held to the search of the whole segment (``HEAD_SPIKES =
+# False``), whose outcome says for each kept sample "no outlier" with a direction of 0 and
+# its own time as its settling time where the head's says so with None.
+
+def _call_head(head: bool, t: np.ndarray, x: np.ndarray, pending: tuple[float, float] | None, prev_out: int,
+               limit: int, sparse: bool) -> tuple[Any, ...]:
+    saved = engine.HEAD_SPIKES
+    engine.HEAD_SPIKES = head
+    try:
+        kt, kx, spikes, used, osign, settled, held = _call(sparse, t, x, pending, prev_out, limit)
+    finally:
+        engine.HEAD_SPIKES = saved
+    if osign is None:
+        osign = [0] * len(kt)
+    if settled is None:
+        settled = list(kt)
+    return kt, kx, spikes, used, osign, settled, held
+
+
+def test_a_head_without_outliers_keeps_what_the_whole_segment_keeps() -> None:
+    rng = np.random.default_rng(91)
+    for _ in range(800):
+        n = int(rng.integers(2, 400))
+        x = _segment(rng, n)
+        if rng.random() < 0.5:
+            # Outliers only after a clean head (the case the head's search settles).
+            clean = int(rng.integers(1, n))
+            x[:clean] = 40.0 + 0.2 * np.clip(rng.standard_normal(clean), -3.0, 3.0)
+        t = T0 + np.cumsum(rng.choice([1.0, 1.0, 1.0, 7.5], n))
+        pending = None
+        if rng.random() < 0.3:
+            pending = (T0 - 1.0, 40.0 + float(rng.choice([-1.8, 1.8, 0.1])))
+        prev_out = int(rng.choice([-1, 0, 0, 1]))
+        limit = int(rng.choice([1, 2, max(1, n // 3), max(1, n - 1), n, n + 5]))
+        for sparse in (True, False):
+            assert (_call_head(True, t, x, pending, prev_out, limit, sparse)
+                    == _call_head(False, t, x, pending, prev_out, limit, sparse))
+
+
+def test_the_head_search_at_the_spike_limit() -> None:
+    # The first sample past the head, and the head's last, within a rounding of the limit.
+    k = DetectionSettings().spike_sigma
+    base = 40.0 + k * 0.2
+    for v in [base + j * np.spacing(base) for j in range(-3, 4)]:
+        for where in (2, 3):
+            x = np.full(6, 40.0)
+            x[where] = v
+            t = T0 + np.arange(6.0)
+            for limit in (2, 3, 4):
+                assert _call_head(True, t, x, None, 0, limit, True) == _call_head(False, t, x, None, 0, limit, True)
+
+
+@pytest.mark.parametrize("seed", [4, 5])
+def test_engine_records_are_the_same_with_the_head_search(seed: int) -> None:
+    rng = np.random.default_rng(seed)
+    for trial in range(10):
+        n = int(rng.choice([900, 3000, 9000]))
+        t, x = _series(rng, n)
+        cuts = ([] if trial % 3 == 0 else list(range(int(rng.integers(50, 700)), n, 4096)) if trial % 3 == 1
+                else sorted({int(v) for v in rng.integers(1, n, size=12)}))
+        eng = StreamEngine("brackenfield/press4/ram", DetectionSettings())
+        ref = run_in_batches(StreamEngine("brackenfield/press4/ram", DetectionSettings()), t, x, cuts,
+                             "HEAD_SPIKES", False)
+        assert run_in_batches(eng, t, x, cuts, "HEAD_SPIKES", True) == ref, trial
+
+
+@settings(max_examples=30, deadline=None)
+@given(seed=st.integers(0, 2**32 - 1), n=st.integers(250, 2500), cut=st.integers(1, 2500))
+def test_head_search_property(seed: int, n: int, cut: int) -> None:
+    t, x = _series(np.random.default_rng(seed), n)
+    cuts = [cut] if cut < n else []
+    eng = StreamEngine("brackenfield/press4/ram", DetectionSettings())
+    ref = run_in_batches(StreamEngine("brackenfield/press4/ram", DetectionSettings()), t, x, cuts,
+                         "HEAD_SPIKES", False)
+    assert run_in_batches(eng, t, x, cuts, "HEAD_SPIKES", True) == ref

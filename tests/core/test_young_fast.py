@@ -17,6 +17,9 @@ from typing import Any
 
 import numpy as np
 import pytest
+from hypothesis import given
+from hypothesis import settings as hsettings
+from hypothesis import strategies as st
 
 from shiftwatch.core import engine
 from shiftwatch.core.engine import StreamEngine
@@ -142,3 +145,59 @@ def test_a_remembered_design_and_an_adopted_state_equal_the_made_ones() -> None:
     assert adopted.adopt_state(old)
     assert adopted.get_state() == by_state.get_state()
     assert not MultiCusumTest(ks=[0.5], hs=[5.0]).adopt_state(old)
+
+
+@st.composite
+def _young_histories(draw: st.DrawFn) -> tuple[np.ndarray, list[int], float]:
+    """A short history whose young phases hit the loop's rare turns: constant stretches
+    (a spread of zero), steps inside the first warm-up and after it, lone spikes and
+    pairs of outliers, some of them on a batch's first or last sample."""
+    n = draw(st.integers(30, 700))
+    seed = draw(st.integers(0, 2**32 - 1))
+    rng = np.random.default_rng(seed)
+    kind = draw(st.sampled_from(["iid", "ar", "t3", "quantised", "constant"]))
+    x = np.zeros(n) if kind == "constant" else noise(kind, n, rng)
+    if kind != "constant" and draw(st.booleans()):
+        x[: draw(st.integers(1, n))] = 0.0  # a constant stretch first
+    x = 20.0 + 0.5 * x
+    for at in draw(st.lists(st.integers(1, n - 1), max_size=3)):
+        x[at:] += draw(st.sampled_from([-4.0, -1.5, 1.2, 3.0, 8.0]))
+    cuts = sorted(set(draw(st.lists(st.integers(1, n - 1), max_size=12))))
+    edges = [c + d for c in cuts for d in (-1, 0) if 0 <= c + d < n]
+    for at in draw(st.lists(st.sampled_from(edges or [n - 1]), max_size=4)):
+        x[at] += draw(st.sampled_from([-15.0, 15.0]))
+        if draw(st.booleans()) and at + 1 < n:
+            x[at + 1] += 15.0 if x[at] > 20.0 else -15.0  # a pair: the start of a large step
+    far = draw(st.sampled_from([3600.0, 7 * 86400.0]))
+    return x, cuts, far
+
+
+@given(_young_histories())
+@hsettings(max_examples=120, deadline=None)
+def test_fast_young_path_on_random_histories_with_edge_cases(case: tuple[np.ndarray, list[int], float]) -> None:
+    # The loop's local copies of the young level's fields are written back at every
+    # turn that reads them (a held spike settled, a held sample taken in, a trip, the
+    # level settled, a batch's end): checked where those turns are most crowded.
+    x, cuts, far = case
+    settings = DetectionSettings(false_alarm_every=far)
+    assert _run(x, cuts, settings, fast=True) == _run(x, cuts, settings, fast=False)
+
+
+def test_fast_young_path_with_a_bank_of_three_charts(monkeypatch: pytest.MonkeyPatch) -> None:
+    # A bank of other than four charts takes the loop's general recursion over its charts.
+    from shiftwatch.core.multicusum import MultiCusumTest
+
+    made = engine.make_test
+
+    def three(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: float = float("inf"), *,
+              n_level: float | None = None) -> Any:
+        test = made(settings, arl0, shift_z, n_ref, n_level=n_level)
+        return MultiCusumTest(ks=list(test.ks[1:]), hs=list(test.hs[1:]))  # type: ignore[attr-defined]
+
+    monkeypatch.setattr(engine, "make_test", three)
+    rng = np.random.default_rng(17)
+    for kind in ("iid", "t3", "ar"):
+        x = _series(kind, 1500, rng)
+        cuts = _cuts(1500, rng)
+        settings = DetectionSettings()
+        assert _run(x, cuts, settings, fast=True) == _run(x, cuts, settings, fast=False)

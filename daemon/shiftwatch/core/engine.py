@@ -500,6 +500,10 @@ FIT_MIN = 2 * FIT_MIN_SEGMENT + 1
 #: A segment that holds an outlier is split at its outliers only
 #: (StreamEngine._split_spikes_sparse); False: the reference's passes over the segment.
 SPARSE_SPIKES = True
+#: A segment longer than the samples a stretch can keep is searched for outliers in
+#: those samples first (StreamEngine._split_spikes); False: the whole segment, the
+#: reference (tests/core/test_split_spikes.py holds the two to each other).
+HEAD_SPIKES = True
 SPLIT_DEFER_ROWS = 64
 #: A batch that folds samples of the window and of its own into the baseline sums folds
 #: them in one call (BaselineSums.add with a cut); False: two calls, the reference
@@ -1053,7 +1057,16 @@ class StreamEngine:
             idx = np.concatenate(([-1], idx))
             self._pending = None
         span = s.spike_sigma * sigma
-        if not (float(np.maximum.reduce(x)) > center + span or float(np.minimum.reduce(x)) < center - span):
+        if HEAD_SPIKES and x.shape[0] > limit:
+            # Only the first ``limit`` samples can be kept: when none of them is an outlier
+            # they are all kept whatever follows (a sample is set aside only for being an
+            # outlier, and a kept one's direction and settling time are its own), so the
+            # outcome is the one below however many outliers the rest holds.
+            head = x[:limit]
+            if not (float(np.maximum.reduce(head)) > center + span
+                    or float(np.minimum.reduce(head)) < center - span):
+                return t[:limit], head, [], limit - int(held_before), None, None
+        elif not (float(np.maximum.reduce(x)) > center + span or float(np.minimum.reduce(x)) < center - span):
             # Fast path: no outlier at all.
             if x.shape[0] >= limit:
                 return t[:limit], x[:limit], [], limit - int(held_before), None, None
@@ -1316,12 +1329,15 @@ class StreamEngine:
         Per kept sample the reference calls a dozen methods (SelfStart.standardise and
         its helpers, the window's push, the test's update_one, which turns the CUSUM
         bank's sums into a list and back) and works out the lag-1 autocorrelation
-        twice.  Here the self-starting standardisation is written out, the window is
-        written in place, and the bank's recursion (:meth:`.multicusum.MultiCusumTest
-        ._update_small`) runs on a list of its sums that is handed back to the test only
-        when the loop leaves or something else reads the test.  Rare turns (a held
-        spike that is settled, a split test, a trip, a held sample) call the same
-        methods the reference does.
+        twice.  Here the self-starting standardisation and update are written out on
+        the young level's fields held in local variables (written back to the
+        :class:`.selfstart.SelfStart` before anything else reads or changes it, and
+        read again after), the window is written in place, and the bank's recursion
+        (:meth:`.multicusum.MultiCusumTest._update_small`) runs on a list of its sums
+        that is handed back to the test only when the loop leaves or something else
+        reads the test; a bank of four charts (the default) has its recursion written
+        out chart by chart.  Rare turns (a held spike that is settled, a split test, a
+        trip, a held sample taken in) call the same methods the reference does.
         """
         ys = self._young
         assert ys is not None
@@ -1352,8 +1368,17 @@ class StreamEngine:
         h2: tuple[float, ...] = ()
         khs: tuple[tuple[int, int, float, float], ...] = ()  # each chart: its two sums' places, k, h
         thr = 1.0
+        four = False  # a bank of four charts: k and h of each below
+        k0 = k1 = k2 = k3 = h0 = h1 = h2_ = h3 = 0.0
         if test is not None:
             c, h2, khs, thr = _small_bank(test)
+            four = len(khs) == 4
+            if four:
+                (_, _, k0, h0), (_, _, k1, h1), (_, _, k2, h2_), (_, _, k3, h3) = khs
+        # The young level's fields that change here (the others are fixed while it lives).
+        yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm = _young_fields(ys)
+        yphi, follow, pool_n, pool_c1 = ys.phi, ys.follow, ys.pool_n, ys.pool_c1
+        held = ys.held  # changed in place only
         dirty = False  # c holds updates the test has not been handed yet
         kept = 0
         pend_pos = -1  # batch position of the held sample (-1: held from an earlier batch)
@@ -1365,6 +1390,7 @@ class StreamEngine:
         ts: list[float] = []
         for i in range(total):
             if kept >= limit:
+                _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
                 if deferred:
                     self._flush_splits(deferred)
                 if dirty:
@@ -1376,27 +1402,28 @@ class StreamEngine:
                 ts = t[at:end].tolist()
             xv = xs[i - at]
             tv = ts[i - at]
-            n = ys.n
+            n = yn
             sd0 = -1.0  # sqrt(ss / df) of the level as it stands (-1: not worked out)
             if no_base:
                 if known is not None:
                     spread = known
                 else:
-                    spread = sd0 = sqrt(ys.ss / ys.df) if ys.df > 0 else 0.0
+                    spread = sd0 = sqrt(yss / ydf) if ydf > 0 else 0.0
             else:
                 spread = b_sigma
             out = 0
             if spread > 0 and n >= min_unknown:
-                dev = (xv - ys.mean) / spread
+                dev = (xv - ymean) / spread
                 out = 1 if dev > spike else (-1 if dev < -spike else 0)
             if self._pending is not None:
                 # A spike held from the sample before: the reference's own steps.
+                _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
                 if dirty:
                     test.set_small_sums(c, False)  # type: ignore[union-attr]
                     dirty = False
                 pt, px = self._pending
                 self._pending = None
-                p_out = 1 if px > ys.mean else -1
+                p_out = 1 if px > ymean else -1
                 if out == p_out:
                     if deferred:
                         self._flush_splits(deferred)
@@ -1411,7 +1438,11 @@ class StreamEngine:
                         test = self._test
                     if test is not None:
                         c, h2, khs, thr = _small_bank(test)
-                    n = ys.n
+                        four = len(khs) == 4
+                        if four:
+                            (_, _, k0, h0), (_, _, k1, h1), (_, _, k2, h2_), (_, _, k3, h3) = khs
+                    yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm = _young_fields(ys)
+                    n = yn
                     sd0 = -1.0
                 else:
                     result.rejected.append(Rejection(pend_pos, "spike", pt))
@@ -1423,48 +1454,47 @@ class StreamEngine:
             self._prev_out = out
             kept += 1
             # ---- _feed_young, written out
-            mean = ys.mean
             z: float | None = None
             phi = 0.0
             if known is not None:
-                phi = ys.phi
+                phi = yphi
                 if n >= 1:
-                    r = xv - mean
-                    if phi != 0.0 and ys.last is not None:
-                        r -= phi * (ys.last - mean)
-                    z = r / (known * sqrt(1.0 + ys.vm))
-            elif n >= min_unknown and ys.df >= 2:
-                dfi = ys.df
-                ssum = ys.ss
-                sd = sd0 if sd0 >= 0.0 else sqrt(ssum / dfi)
+                    r = xv - ymean
+                    if phi != 0.0 and ylast is not None:
+                        r -= phi * (ylast - ymean)
+                    z = r / (known * sqrt(1.0 + yvm))
+            elif n >= min_unknown and ydf >= 2:
+                sd = sd0 if sd0 >= 0.0 else sqrt(yss / ydf)
                 if sd > 0:
                     # SelfStart._phi_raw, ._significant, ._long_run_factor and t_to_normal
-                    nn = n + ys.pool_n
-                    if nn < 3 or not ssum > 0:
+                    nn = n + pool_n
+                    if nn < 3 or not yss > 0:
                         raw = 0.0
                     else:
-                        first = ys.first
-                        prev = ys.prev
-                        if n < 2 or first is None or prev is None:
+                        if n < 2 or yfirst is None or yprev is None:
                             c1 = 0.0
                         else:
-                            mm = mean - first
-                            lst = prev - first
-                            c1 = ys.lag - mm * (2.0 * n * mm - lst) + (n - 1) * mm * mm
-                        rr = (c1 + ys.pool_c1) / ssum
+                            mm = ymean - yfirst
+                            lst = yprev - yfirst
+                            c1 = ylag - mm * (2.0 * n * mm - lst) + (n - 1) * mm * mm
+                        rr = (c1 + pool_c1) / yss
                         if bias:
                             rr += (1.0 + 3.0 * rr) / nn
                         raw = rr if -0.95 <= rr <= 0.95 else max(-0.95, min(0.95, rr))
-                    phi = raw if nn >= 20 and abs(raw) >= 2.0 / sqrt(nn) else 0.0
-                    r = xv - mean
-                    dff = float(dfi)
-                    last = ys.last
-                    if phi != 0.0 and last is not None:
-                        r -= phi * (last - mean)
+                    # sqrt(nn) once for both of its uses; max(raw, 0.0) and min(0.95, v)
+                    # written as the comparisons those builtins make (the same float, -0.0 too)
+                    rn = sqrt(nn) if nn > 0 else 0.0
+                    phi = raw if nn >= 20 and abs(raw) >= 2.0 / rn else 0.0
+                    r = xv - ymean
+                    dff = float(ydf)
+                    if phi != 0.0 and ylast is not None:
+                        r -= phi * (ylast - ymean)
                         sd *= sqrt(1.0 - phi * phi)
                         dff = max(2.0, dff * (1.0 - abs(phi)) / (1.0 + abs(phi)))
                     elif margin:
-                        up = min(0.95, max(raw, 0.0) + (margin / sqrt(nn) if nn > 0 else 0.0))
+                        up = (0.0 if 0.0 > raw else raw) + (margin / rn if nn > 0 else 0.0)
+                        if not up < 0.95:
+                            up = 0.95
                         sd *= sqrt((1.0 + up) / (1.0 - up) if up > 0.0 else 1.0)
                     elif raw > 0.0:
                         # the same with no margin: raw lies in (0, 0.95], and a factor of 1
@@ -1481,34 +1511,94 @@ class StreamEngine:
                 win._n = wn + 1
             else:
                 win.push(xv, tv)
-            if z is None:
-                ys.add(xv)
-            else:
+            take = True  # the sample is taken into the level (SelfStart.add)
+            tripped = False
+            if z is not None:
                 if test is None:
                     test = self._young_test()
                     c, h2, khs, thr = _small_bank(test)
+                    four = len(khs) == 4
+                    if four:
+                        (_, _, k0, h0), (_, _, k1, h1), (_, _, k2, h2_), (_, _, k3, h3) = khs
                 zc = nclip if z < nclip else (clip if z > clip else z)
                 stat = -1.0  # the test's statistic, worked out when needed
                 if c is not None:
                     # MultiCusumTest._update_small on one sample
                     # (a sum at zero never exceeds its h, which is positive, so each side
                     # is compared with h only when it is above zero)
-                    tripped = False
-                    for j, mj, kj, hj in khs:
-                        up = c[j] + zc - kj
-                        if up > 0.0:
-                            c[j] = up
-                            if up > hj:
+                    if four:
+                        v = c[0] + zc - k0
+                        if v > 0.0:
+                            c[0] = v
+                            if v > h0:
                                 tripped = True
                         else:
-                            c[j] = 0.0
-                        lo = c[mj] - zc - kj
-                        if lo > 0.0:
-                            c[mj] = lo
-                            if lo > hj:
+                            c[0] = 0.0
+                        v = c[4] - zc - k0
+                        if v > 0.0:
+                            c[4] = v
+                            if v > h0:
                                 tripped = True
                         else:
-                            c[mj] = 0.0
+                            c[4] = 0.0
+                        v = c[1] + zc - k1
+                        if v > 0.0:
+                            c[1] = v
+                            if v > h1:
+                                tripped = True
+                        else:
+                            c[1] = 0.0
+                        v = c[5] - zc - k1
+                        if v > 0.0:
+                            c[5] = v
+                            if v > h1:
+                                tripped = True
+                        else:
+                            c[5] = 0.0
+                        v = c[2] + zc - k2
+                        if v > 0.0:
+                            c[2] = v
+                            if v > h2_:
+                                tripped = True
+                        else:
+                            c[2] = 0.0
+                        v = c[6] - zc - k2
+                        if v > 0.0:
+                            c[6] = v
+                            if v > h2_:
+                                tripped = True
+                        else:
+                            c[6] = 0.0
+                        v = c[3] + zc - k3
+                        if v > 0.0:
+                            c[3] = v
+                            if v > h3:
+                                tripped = True
+                        else:
+                            c[3] = 0.0
+                        v = c[7] - zc - k3
+                        if v > 0.0:
+                            c[7] = v
+                            if v > h3:
+                                tripped = True
+                        else:
+                            c[7] = 0.0
+                    else:
+                        for j, mj, kj, hj in khs:
+                            up = c[j] + zc - kj
+                            if up > 0.0:
+                                c[j] = up
+                                if up > hj:
+                                    tripped = True
+                            else:
+                                c[j] = 0.0
+                            lo = c[mj] - zc - kj
+                            if lo > 0.0:
+                                c[mj] = lo
+                                if lo > hj:
+                                    tripped = True
+                            else:
+                                c[mj] = 0.0
                     if tripped:
                         cast(MultiCusumTest, test).set_small_sums(c, True)
                         dirty = False
@@ -1517,7 +1607,7 @@ class StreamEngine:
                 else:
                     tripped = test.update_one(zc)
                     thr = test.threshold
-                az = abs(z)
+                az = z if z >= 0.0 else -z  # compared only: abs(z) up to the sign of a zero
                 if not tripped and no_base and n >= YOUNG_SPLIT_FROM:
                     if az < YOUNG_Z_HOLD:
                         stat = max(map(truediv, c, h2)) if c is not None else test.statistic
@@ -1535,54 +1625,62 @@ class StreamEngine:
                             self._split = ev
                             tripped = True
                 if az > spike:
-                    ys.last = xv  # the start of a large step: fed, never taken into the level
+                    ylast = xv  # the start of a large step: fed, never taken into the level
+                    take = False
                 elif n >= YOUNG_HOLD_FROM and phi == 0.0 and (
                         tripped or az >= YOUNG_Z_HOLD
                         or (stat if stat >= 0.0 else (max(map(truediv, c, h2)) if c is not None
                                                        else test.statistic)) >= YOUNG_CALM * thr):
-                    ys.hold(xv, YOUNG_HOLD)
+                    # SelfStart.hold
+                    take = False
+                    held.append(xv)
+                    ylast = xv
+                    if len(held) > YOUNG_HOLD:
+                        _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
+                        ys._take(held.pop(0))
+                        yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm = _young_fields(ys)
+                elif held:
+                    _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
+                    ys.release()
+                    yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm = _young_fields(ys)
+            if take:
+                # SelfStart.add
+                if yfirst is None:
+                    yfirst = xv
+                elif yprev is not None:
+                    ylag += (xv - yfirst) * (yprev - yfirst)
+                yn += 1
+                d = xv - ymean
+                if follow and yn > follow:
+                    lam = 1.0 / follow
+                    ymean += lam * d
+                    yvm = (1.0 - lam) ** 2 * yvm + lam * lam
                 else:
-                    if ys.held:
-                        ys.release()
-                    # SelfStart.add
-                    first = ys.first
-                    if first is None:
-                        ys.first = xv
-                    elif ys.prev is not None:
-                        ys.lag += (xv - first) * (ys.prev - first)
-                    n1 = ys.n + 1
-                    ys.n = n1
-                    mean = ys.mean
-                    d = xv - mean
-                    follow = ys.follow
-                    if follow and n1 > follow:
-                        lam = 1.0 / follow
-                        mean += lam * d
-                        ys.vm = (1.0 - lam) ** 2 * ys.vm + lam * lam
-                    else:
-                        mean += d / n1
-                        ys.vm = 1.0 / n1
-                    ys.mean = mean
-                    if n1 > 1:
-                        ys.ss += d * (xv - mean)
-                        ys.df += 1
-                    ys.prev = xv
-                    ys.last = xv
-                if tripped:
-                    if deferred:
-                        self._flush_splits(deferred)
-                    if dirty and c is not None:
-                        cast(MultiCusumTest, test).set_small_sums(c, False)
-                        dirty = False
-                    self._young_event(tv, result, tv)
-                    return i + 1
-            if watching and ys.n >= YOUNG_END:
+                    ymean += d / yn
+                    yvm = 1.0 / yn
+                if yn > 1:
+                    yss += d * (xv - ymean)
+                    ydf += 1
+                yprev = xv
+                ylast = xv
+            if tripped:
+                _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
+                if deferred:
+                    self._flush_splits(deferred)
+                if dirty and c is not None:
+                    cast(MultiCusumTest, test).set_small_sums(c, False)
+                    dirty = False
+                self._young_event(tv, result, tv)
+                return i + 1
+            if watching and yn >= YOUNG_END:
+                _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
                 if deferred:
                     self._flush_splits(deferred)
                 if dirty:
                     test.set_small_sums(c, False)  # type: ignore[union-attr]
                 self._settle_young()
                 return i + 1
+        _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
         if deferred:
             self._flush_splits(deferred)
         if dirty:
@@ -2567,6 +2665,20 @@ def _small_bank(test: SequentialTest) -> tuple[list[float] | None, tuple[float, 
         return None, (), (), test.threshold
     ks, hs = test.ks, test.hs  # type: ignore[attr-defined]
     return c, hs + hs, _chart_rows(ks, hs), test.threshold
+
+
+def _young_fields(ys: SelfStart) -> tuple[int, float, float, int, float | None, float | None, float,
+                                        float | None, float]:
+    """The fields of a young level that :meth:`StreamEngine._young_loop` changes, for its
+    local variables."""
+    return ys.n, ys.mean, ys.ss, ys.df, ys.first, ys.prev, ys.lag, ys.last, ys.vm
+
+
+def _young_put(ys: SelfStart, n: int, mean: float, ss: float, df: int, first: float | None,
+               prev: float | None, lag: float, last: float | None, vm: float) -> None:
+    """:meth:`StreamEngine._young_loop`'s local variables written back to the young level."""
+    ys.n, ys.mean, ys.ss, ys.df, ys.first, ys.prev, ys.lag, ys.last, ys.vm = (
+        n, mean, ss, df, first, prev, lag, last, vm)
 
 
 def _chart_rows(ks: tuple[float, ...], hs: tuple[float, ...]) -> tuple[tuple[int, int, float, float], ...]:
