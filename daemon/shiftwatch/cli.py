@@ -418,7 +418,9 @@ def cmd_fit(args: argparse.Namespace) -> int:
     from shiftwatch.replay import CsvFormatError, read_long_csv
 
     try:
-        read = read_long_csv([args.csv], layout=args.layout, timezone=args.timezone, only=args.stream)
+        # Without --stream only the first stream's rows are kept: a file of more than one is refused.
+        read = read_long_csv([args.csv], layout=args.layout, timezone=args.timezone, only=args.stream,
+                             first_only=args.stream is None)
     except CsvFormatError as exc:
         _err(str(exc))
         return EXIT_USAGE

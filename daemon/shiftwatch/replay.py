@@ -783,12 +783,15 @@ class ReadResult:
 
 
 def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone: str | tzinfo | None = None,
-                  only: str | None = None) -> ReadResult:
+                  only: str | None = None, first_only: bool = False) -> ReadResult:
     """Read files (any layout :func:`replay_files` reads) into whole per-stream series.
 
     Raises :class:`CsvFormatError` when a file is missing or its header fits
     no layout; rows with bad values are reported in ``problems``.  With
-    ``only`` just that stream's rows are kept.
+    ``only`` just that stream's rows are kept; with ``first_only`` just those of the first
+    stream met (``fit`` without ``--stream``, which refuses a file of more than one stream:
+    it read every stream's whole series first, 620 MB for 19 million rows, only to refuse).
+    The other streams are in ``streams`` with no rows, so their names are known.
     """
     tz = timezone if timezone is None or isinstance(timezone, tzinfo) else time_zone(timezone)
     sources = open_sources(list(paths), layout)
@@ -806,6 +809,8 @@ def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone
                 noted.add(block.file)
             by_file.setdefault(block.file, []).extend(block.problems)
             for name, t, v, p in block.parts:
+                if only is None and first_only and streams and name not in streams:
+                    only = next(iter(streams))  # the first stream met: keep only its rows
                 if only is not None and name != only:
                     streams.setdefault(name, StreamSeries(sources))
                     continue

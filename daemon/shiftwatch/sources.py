@@ -31,6 +31,7 @@ from __future__ import annotations
 import csv
 import math
 import os
+import re
 import stat
 from collections import deque
 from collections.abc import Iterator, Sequence
@@ -333,21 +334,34 @@ class Source:
 
 def expand_paths(paths: Sequence[str | Path]) -> list[str]:
     """The files to read: each path, a directory standing for its ``.parquet`` and ``.csv``
-    files (all levels below it, in path order).  An entry of a directory that is named as
+    files (all levels below it, in path order, numbers in names by their value:
+    :func:`_path_order`).  An entry of a directory that is named as
     such a file but is none (a broken symlink, a pipe) is kept, so that opening it names it
     as opening a path given directly does, instead of leaving its rows out without a word."""
     out: list[str] = []
     for p in paths:
         if os.path.isdir(p):
-            found = sorted(str(f) for f in Path(p).rglob("*")
-                           if not f.is_dir() and f.suffix.lower() in (".parquet", ".pq", ".csv")
-                           and not any(part.startswith((".", "_")) for part in f.relative_to(p).parts))
+            found = sorted((str(f) for f in Path(p).rglob("*")
+                            if not f.is_dir() and f.suffix.lower() in (".parquet", ".pq", ".csv")
+                            and not any(part.startswith((".", "_")) for part in f.relative_to(p).parts)),
+                           key=_path_order)
             if not found:
                 raise CsvFormatError(f"{p}: the directory holds no .parquet or .csv file")
             out.extend(found)
         else:
             out.append(str(p))
     return out
+
+
+def _path_order(path: str) -> tuple[list[Any], str]:
+    """A directory's files in path order, each run of digits taken as its number: writers number
+    a partition's files ``part-0``, ``part-1``, ... (pyarrow's ``write_dataset``), and in plain text
+    order ``part-10`` came before ``part-2``, so the rows of ``part-2`` on read as out of order.
+    Zero-padded numbers (Spark's ``part-00000``) keep their text order; ties keep it too."""
+    return [int(x) if i % 2 else x for i, x in enumerate(_DIGITS.split(path))], path
+
+
+_DIGITS = re.compile(r"(\d+)")
 
 
 def _partition_stream(path: str) -> str | None:

@@ -353,3 +353,34 @@ def test_fit_on_a_parquet_file_with_no_readable_row_says_why(cli, tmp_path: Path
     else:
         assert pq.read_schema(path).field("value").type == pa.string()  # pyarrow's reading of the type
     _fit_says_why(cli("fit", str(path)), path)
+
+
+# ------------------------------------------------------------ fit on a large file of several streams
+def _peak_kib(cmd: list[str], cwd: Path) -> tuple[int, str]:
+    """Run ``cmd``; its exit status, stderr and peak resident memory in KiB (getrusage(2)'s
+    ru_maxrss of that one child, through wait4(2))."""
+    proc = subprocess.Popen(cmd, cwd=cwd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    assert proc.stderr is not None
+    err = proc.stderr.read()
+    _, status, usage = os.wait4(proc.pid, 0)
+    proc.returncode = os.waitstatus_to_exitcode(status)
+    assert proc.returncode == 2, err
+    return usage.ru_maxrss, err
+
+
+def test_fit_refusing_a_file_of_several_streams_keeps_no_rows_of_the_others(shiftwatch_cmd, tmp_path: Path) -> None:
+    # fit without --stream refuses a file of more than one stream; it read every stream's whole
+    # series into memory first (19 million rows of 64 streams: 620 MB, 9 s, for the refusal).
+    # Here a second stream of 1.5 million rows: 36 MB of arrays (times, values, places) kept
+    # before the refusal.  The reference is the same refusal's cost with --stream naming a
+    # stream that is not there (nothing kept at all).
+    path = tmp_path / "two.csv"
+    with open(path, "w") as f:
+        f.write("time,stream,value\n")
+        f.writelines(f"{T0 + i:.0f},{STREAM},{500 + i % 5}\n" for i in range(100))
+        f.writelines(f"{T0 + i:.0f},brackenfield/oven2/zone4_c,{182 + i % 7}\n" for i in range(1_500_000))
+    refused, err = _peak_kib(shiftwatch_cmd + ["fit", str(path)], tmp_path)
+    assert "holds 2 streams; choose one with --stream" in err, err
+    nothing, err = _peak_kib(shiftwatch_cmd + ["fit", "--stream", "brackenfield/nowhere", str(path)], tmp_path)
+    assert "no stream named 'brackenfield/nowhere'" in err, err
+    assert refused <= nothing + 12 * 1024, (refused, nothing)
