@@ -507,7 +507,20 @@ def open_sources(paths: list[str | Path], layout: str = "auto") -> list[Source]:
     the replay before it starts."""
     if layout not in LAYOUTS:
         raise CsvFormatError(f"--layout {layout}: choose one of {', '.join(LAYOUTS)}")
-    return [open_source(p, layout) for p in expand_paths(paths)]
+    sources = [open_source(p, layout) for p in expand_paths(paths)]
+    seen: dict[tuple[int, int], int] = {}
+    for i, src in enumerate(sources):
+        # A file given twice (by name, through its directory, by a link) had every row of its
+        # second reading set aside as a repeated time, one problem per row.
+        try:
+            st = os.stat(src.path)
+        except OSError:
+            continue
+        first = seen.setdefault((st.st_dev, st.st_ino), i)
+        if first != i:
+            raise CsvFormatError(f"{src.path}: given twice (the same file as {sources[first].path}); "
+                                 "each file is read once")
+    return sources
 
 
 # ---------------------------------------------------------------------------

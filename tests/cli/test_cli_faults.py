@@ -384,3 +384,21 @@ def test_fit_refusing_a_file_of_several_streams_keeps_no_rows_of_the_others(shif
     nothing, err = _peak_kib(shiftwatch_cmd + ["fit", "--stream", "brackenfield/nowhere", str(path)], tmp_path)
     assert "no stream named 'brackenfield/nowhere'" in err, err
     assert refused <= nothing + 12 * 1024, (refused, nothing)
+
+
+# ------------------------------------------------------------ the same file given twice
+@pytest.mark.parametrize("twice", ["same name", "directory and file"])
+def test_a_file_given_twice_is_refused_naming_both(cli, tmp_path: Path, twice: str) -> None:
+    # Before: every row of the second reading was set aside as a repeated time (exit 1 and one
+    # problem per row, each naming a line of "the" file), the records those of one reading.
+    data = tmp_path / "line2"
+    data.mkdir()
+    path = write_filler(data / "filler3.csv")
+    args = ["line2/filler3.csv", "line2/filler3.csv"] if twice == "same name" else ["line2", "line2/filler3.csv"]
+    res = cli("replay", *args)
+    no_traceback(res.stderr)
+    assert res.returncode == 2, res.stderr
+    assert res.stderr == ("shiftwatch: line2/filler3.csv: given twice (the same file as line2/filler3.csv); "
+                          "each file is read once\n"), res.stderr
+    assert res.stdout == ""
+    assert path.exists()
