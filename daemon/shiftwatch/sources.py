@@ -364,14 +364,27 @@ def _path_order(path: str) -> tuple[list[Any], str]:
 _DIGITS = re.compile(r"(\d+)")
 
 
+#: The directory name pyarrow (``HivePartitioning``'s default ``null_fallback``), Hive and Spark
+#: give the rows of a null partition value.
+NULL_PARTITION = "__HIVE_DEFAULT_PARTITION__"
+
+
 def _partition_stream(path: str) -> str | None:
-    """The stream named by the nearest ``stream=NAME`` directory of a path (percent-decoded)."""
+    """The stream named by the nearest ``stream=NAME`` directory of a path (percent-decoded);
+    ``""`` for a directory that names none (``stream=``, or a null stream's
+    :data:`NULL_PARTITION`), whose rows are problems as a long file's row without a name is."""
     from urllib.parse import unquote
 
     for part in reversed(Path(path).parent.parts):
         if part.startswith("stream="):
-            return unquote(part[len("stream="):])
+            name = unquote(part[len("stream="):])
+            return "" if name == NULL_PARTITION or not name.strip() else name
     return None
+
+
+def _no_stream(src: Source) -> str:
+    """Why a row of a file in a ``stream=`` directory that names no stream has none."""
+    return f"no stream: its directory {Path(src.path).parent.name} names none (a null or empty stream)"
 
 
 def _pick_layout(name: str, header: list[str], layout: str, where: str) -> tuple[str, int, int, int,
@@ -781,7 +794,8 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
                     if app is None:
                         key = stream.strip()
                         if not key:
-                            problems.append(f"{name}:{line}: empty stream name")
+                            problems.append(f"{name}:{line}: " + ("empty stream name" if si >= 0 or src.stream is None
+                                                                 else _no_stream(src)))
                             app = None
                         else:
                             app = appenders[stream] = lists_for(key)
@@ -1174,6 +1188,8 @@ def _read_fast(src: Source, buf: bytearray, begin: int, end: int, line0: int, fb
     except (ValueError, OverflowError, UnicodeDecodeError):
         return None
     if src.stream is not None:
+        if not src.stream:
+            return None  # no stream: the row reader names each row
         return [(src.stream, times, values, places)], n
     got = _stream_codes(body, src.stream_col)
     if got is None:
@@ -1663,6 +1679,9 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
                                         problems, a, src.header[src.stream_col])
                     continue
                 tag = src.stream or ""
+                if src.stream == "":  # a stream= directory that names none
+                    problems.rows(keep, a, "stream", _no_stream(src))
+                    continue
             if bool(keep.all()):
                 collected.setdefault(tag, []).append((times, v, places))
             elif bool(keep.any()):

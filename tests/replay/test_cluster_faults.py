@@ -261,3 +261,34 @@ def test_ctrl_c_during_a_dask_replay_exits_130_with_no_traceback(cluster: Client
     assert proc.returncode == 130, err
     assert not (tmp_path / "out.jsonl").exists()
 
+
+
+# ------------------------------------------------------------ rows with no stream
+@pytest.mark.parametrize("kind", ["parquet", "csv"])
+def test_rows_of_a_null_stream_partition_are_problems_as_in_a_long_file(cluster: Client, tmp_path: Path,
+                                                                        kind: str) -> None:
+    # pyarrow writes the rows of a null stream to stream=__HIVE_DEFAULT_PARTITION__ (the default
+    # null_fallback of pyarrow.dataset.HivePartitioning, Hive's own name for it); an empty
+    # stream= directory names no stream either.  Before: their rows were replayed as streams
+    # named "__HIVE_DEFAULT_PARTITION__" and "", where a long file's row with no stream name is a
+    # problem ("empty stream name") and is skipped.
+    data = readings(3000, NAMES[:1])
+    table = _table(data)
+    nulls = table.set_column(1, "stream", pa.array([None] * table.num_rows, pa.string()))
+    root = tmp_path / "line2"
+    ds.write_dataset(pa.concat_tables([table, nulls]), root, format="parquet", partitioning=["stream"],
+                     partitioning_flavor="hive")
+    assert (root / "stream=__HIVE_DEFAULT_PARTITION__").is_dir()
+    empty = root / "stream="
+    empty.mkdir()
+    if kind == "csv":
+        (empty / "part-0.csv").write_text("time,value\n" + "".join(f"{1.8e9 + i:.0f},{i % 5}\n" for i in range(50)))
+    else:
+        ds.write_dataset(table.drop_columns(["stream"]).slice(0, 50), empty, format="parquet")
+    res = replay_files([root])
+    assert sorted(res.streams) == NAMES[:1]
+    assert json_lines(res.records) == one_batch_records(data)
+    assert res.read_problem_count == 3000 + 50
+    assert all("no stream" in p for p in res.read_problems), res.read_problems
+    got = replay_on_dask(root, cluster)
+    assert json_lines(got.records) == json_lines(res.records) and got.problems == res.problems
