@@ -139,7 +139,9 @@ def test_replay_refuses_an_out_that_is_one_of_its_input_files(cli, line_csv: Pat
     (tmp_path / "data").mkdir()
     link = tmp_path / "data" / "same.csv"
     link.symlink_to(line_csv)
-    for out, inputs in ((str(line_csv), [str(line_csv)]), (str(link), [str(tmp_path)])):
+    # (the link's directory only: tmp_path holds the file twice, itself and the link, which is
+    # refused as a file given twice before --out is looked at)
+    for out, inputs in ((str(line_csv), [str(line_csv)]), (str(link), [str(tmp_path / "data")])):
         res = cli("replay", "--out", out, *inputs)
         no_traceback(res.stderr)
         assert res.returncode == 2, res.stderr
@@ -402,3 +404,52 @@ def test_a_file_given_twice_is_refused_naming_both(cli, tmp_path: Path, twice: s
                           "each file is read once\n"), res.stderr
     assert res.stdout == ""
     assert path.exists()
+
+
+# ------------------------------------------------------------ --out filling up part way
+def _many_steps(path: Path, streams: int = 200, n: int = 800) -> Path:
+    """Brackenfield's filler heads, each with a step of 3 sigma half way: two records a stream."""
+    rng = np.random.default_rng(11)
+    with open(path, "w") as f:
+        f.write("time,stream,value\n")
+        for i in range(n):
+            v = 500 + rng.standard_normal(streams) + (3.0 if i >= n // 2 else 0.0)
+            f.writelines(f"{T0 + i:.0f},brackenfield/filler{k:03d}/fill_g,{v[k]:.4f}\n" for k in range(streams))
+    return path
+
+
+@pytest.mark.parametrize("existing", [False, True])
+def test_out_that_fills_up_part_way_leaves_no_cut_records_file(shiftwatch_cmd, tmp_path: Path,
+                                                               existing: bool) -> None:
+    # A disk that fills while the records are written: RLIMIT_FSIZE (setrlimit(2): a write past it
+    # fails with EFBIG; Python ignores SIGXFSZ) stands in for a small file system.  Before: exit 2
+    # and the line, but a records file cut at 64 KiB was left, looking like a whole replay's (and an
+    # earlier records file was already emptied).  Now the records go to a temporary file beside
+    # --out, renamed when complete.
+    import resource
+
+    history = _many_steps(tmp_path / "fillers.csv")
+    full = subprocess.run(shiftwatch_cmd + ["replay", str(history)], capture_output=True, text=True,
+                          check=False, timeout=300)
+    assert full.returncode == 0 and len(full.stdout) > 256 * 1024, full.stderr
+    out = tmp_path / "records.jsonl"
+    if existing:
+        out.write_text("the last replay's records\n")
+
+    def limit() -> None:
+        resource.setrlimit(resource.RLIMIT_FSIZE, (64 * 1024, resource.RLIM_INFINITY))
+
+    res = subprocess.run(shiftwatch_cmd + ["replay", "--out", str(out), str(history)], capture_output=True,
+                         text=True, check=False, timeout=300, preexec_fn=limit)
+    no_traceback(res.stderr)
+    assert res.returncode == 2, res.stderr
+    assert res.stderr.endswith(f"shiftwatch: --out {out}: cannot write: {os.strerror(errno.EFBIG)}\n"), res.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == (["fillers.csv", "records.jsonl"] if existing
+                                                          else ["fillers.csv"])
+    if existing:
+        assert out.read_text() == "the last replay's records\n"
+    # With room, the same command writes every record, as standard output holds them.
+    ok = subprocess.run(shiftwatch_cmd + ["replay", "--out", str(out), str(history)], capture_output=True,
+                        text=True, check=False, timeout=300)
+    assert ok.returncode == 0 and out.read_text() == full.stdout
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["fillers.csv", "records.jsonl"]
