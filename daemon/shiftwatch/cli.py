@@ -501,7 +501,7 @@ def cmd_fit(args: argparse.Namespace) -> int:
     except CsvFormatError as exc:
         _err(str(exc))
         return EXIT_USAGE
-    _print_problems(read.problems)
+    _print_problems(read.problems, total=read.problem_count)
     names = sorted(read.streams)
     if not names:  # say why, not "holds 0 streams" or "no stream named 'a' (streams: )"
         if read.problems:

@@ -780,6 +780,9 @@ class ReadResult:
     streams: dict[str, StreamSeries]
     problems: list[str] = field(default_factory=list)
     rows: int = 0
+    #: problems in all: those listed, and those a piece counted without a message (Parquet lists
+    #: the first 20 of a kind in a piece)
+    problem_count: int = 0
 
 
 def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone: str | tzinfo | None = None,
@@ -801,10 +804,12 @@ def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone
     noted: set[int] = set()
     by_file: dict[int, list[str]] = {}
     repeated = RepeatedHour(tz) if tz is not None else None  # as replay_files reads that hour
+    unlisted = 0
     with OpenFiles() as opened:  # as in replay_files: a Parquet group's pieces read in turn
         for task in tasks(sources, tz):
             block = parse_task(task, sources, tz, opened)
             rows += block.rows
+            unlisted += block.unlisted
             if block.note is not None and block.file not in noted:
                 noted.add(block.file)
             by_file.setdefault(block.file, []).extend(block.problems)
@@ -824,7 +829,7 @@ def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone
         if f in noted:
             problems.append(f"{sources[f].path}: the file is not valid UTF-8; unreadable characters were replaced")
         problems += by_file.get(f, [])
-    return ReadResult(streams=streams, problems=problems, rows=rows)
+    return ReadResult(streams=streams, problems=problems, rows=rows, problem_count=len(problems) + unlisted)
 
 
 def replay_series(series: dict[str, StreamSeries], settings_for: Callable[[str], DetectionSettings],

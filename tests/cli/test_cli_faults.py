@@ -453,3 +453,27 @@ def test_out_that_fills_up_part_way_leaves_no_cut_records_file(shiftwatch_cmd, t
                         text=True, check=False, timeout=300)
     assert ok.returncode == 0 and out.read_text() == full.stdout
     assert sorted(p.name for p in tmp_path.iterdir()) == ["fillers.csv", "records.jsonl"]
+
+
+# ------------------------------------------------------------ fit counts every problem
+def test_fit_counts_every_null_value_of_a_parquet_file(cli, tmp_path: Path) -> None:
+    # The Parquet reader lists the first 20 problems of a piece and counts the rest; fit printed
+    # "... and 80 more problems like these" for 100,000 null values (replay said 100,000).  The
+    # reference count is pyarrow's own (the column's null_count).
+    n = 9000
+    rng = np.random.default_rng(5)
+    values = 182 + 0.4 * rng.standard_normal(n) + 0.6 * (np.arange(n) >= n // 2)
+    column = pa.array(values, mask=np.arange(n) % 3 == 0)
+    path = tmp_path / "oven2.parquet"
+    pq.write_table(pa.table({"time": T0 + np.arange(n, dtype=np.float64),
+                             "stream": ["brackenfield/oven2/zone4_c"] * n, "value": column}), path)
+    nulls = pq.read_table(path).column("value").null_count
+    assert nulls == 3000
+    res = cli("fit", str(path))
+    no_traceback(res.stderr)
+    assert res.returncode == 1, res.stderr
+    lines = res.stderr.splitlines()
+    assert len(lines) == 21 and lines[-1] == f"... and {nulls - 20} more problems like these", lines[-3:]
+    assert "one step at" in res.stdout
+    replay = cli("replay", str(path))
+    assert f"; {nulls} unreadable row(s) or cell(s) skipped" in replay.stderr
