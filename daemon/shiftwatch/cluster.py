@@ -159,28 +159,56 @@ def _check_scheduler(address: str, timeout: float) -> None:
                                f"({type(exc).__name__}: {exc})") from None
 
 
+#: Seconds between looks at the tasks and the scheduler's workers while waiting.
+WAIT_STEP = 1.0
+
+
 def _gather(client: Any, futures: list[Any], partitions: list[list[str]]) -> list[Any]:
     """The tasks' results in order; the first task that failed stops the others and is named by
-    its partition's directory."""
-    from distributed import as_completed
+    its partition's directory.  With no worker at the scheduler for :data:`CONNECT_TIMEOUT`
+    seconds (none started, or all gone) the tasks would wait for one for ever: that stops the
+    replay too."""
+    import time
+
+    from distributed import wait
 
     index = {f.key: i for i, f in enumerate(futures)}
     out: list[Any] = [None] * len(futures)
-    for fut in as_completed(futures):  # type: ignore[no-untyped-call]  # distributed is unannotated
-        i = index[fut.key]
-        if fut.status != "finished":
-            exc = fut.exception()
-            client.cancel(futures)
-            if isinstance(exc, CsvFormatError):
-                raise CsvFormatError(str(exc)) from None
-            where = os.path.dirname(partitions[i][0]) or "."
-            if type(exc).__name__ == "KilledWorker":
-                raise ClusterError(f"{where}: the replay of this partition ended every worker it ran on "
-                                   "(out of memory, or killed); look at the workers' logs") from None
-            raise ClusterError(f"{where}: the replay of this partition failed on the cluster: "
-                               f"{type(exc).__name__}: {exc}") from None
-        out[i] = fut.result()
+    pending = list(futures)
+    seen_worker = time.monotonic()
+    while pending:
+        try:
+            wait(pending, timeout=WAIT_STEP, return_when="FIRST_COMPLETED")  # type: ignore[no-untyped-call]
+        except TimeoutError:
+            if client.scheduler_info().get("workers"):
+                seen_worker = time.monotonic()
+            elif time.monotonic() - seen_worker > CONNECT_TIMEOUT:
+                client.cancel(futures)
+                raise ClusterError(f"the Dask scheduler at {client.scheduler.address} has no workers (none for "
+                                   f"{CONNECT_TIMEOUT:g} s): start some with dask worker "
+                                   f"{client.scheduler.address}") from None
+            continue
+        done = [f for f in pending if f.done()]
+        pending = [f for f in pending if not f.done()]
+        for fut in done:
+            _take(client, fut, index[fut.key], futures, partitions, out)
     return out
+
+
+def _take(client: Any, fut: Any, i: int, futures: list[Any], partitions: list[list[str]], out: list[Any]) -> None:
+    """Put a finished task's result in ``out[i]``, or stop every task and raise what it failed of."""
+    if fut.status != "finished":
+        exc = fut.exception()
+        client.cancel(futures)
+        if isinstance(exc, CsvFormatError):
+            raise CsvFormatError(str(exc)) from None
+        where = os.path.dirname(partitions[i][0]) or "."
+        if type(exc).__name__ == "KilledWorker":
+            raise ClusterError(f"{where}: the replay of this partition ended every worker it ran on "
+                               "(out of memory, or killed); look at the workers' logs") from None
+        raise ClusterError(f"{where}: the replay of this partition failed on the cluster: "
+                           f"{type(exc).__name__}: {exc}") from None
+    out[i] = fut.result()
 
 
 def replay_on_dask(root: str | Path, client: Any, settings_for: Callable[[str], DetectionSettings] | None = None,

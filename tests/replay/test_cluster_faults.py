@@ -292,3 +292,23 @@ def test_rows_of_a_null_stream_partition_are_problems_as_in_a_long_file(cluster:
     assert all("no stream" in p for p in res.read_problems), res.read_problems
     got = replay_on_dask(root, cluster)
     assert json_lines(got.records) == json_lines(res.records) and got.problems == res.problems
+
+
+# ------------------------------------------------------------ a scheduler with no workers
+def test_a_scheduler_with_no_workers_is_told_not_waited_on_for_ever(tmp_path: Path, monkeypatch) -> None:
+    # A scheduler started without workers (or whose workers all went away) takes the tasks and
+    # holds them until a worker comes: before, the replay waited for ever without a word.  Now,
+    # with no worker for CONNECT_TIMEOUT seconds (shortened here), it stops naming the scheduler.
+    import shiftwatch.cluster as cluster_module
+
+    monkeypatch.setattr(cluster_module, "CONNECT_TIMEOUT", 3.0, raising=False)
+    root = tmp_path / "line2"
+    ds.write_dataset(_table(readings(500, NAMES[:1])), root, format="parquet",
+                     partitioning=["stream"], partitioning_flavor="hive")
+    with LocalCluster(n_workers=0, processes=True, host="127.0.0.1", dashboard_address=None) as c, \
+            Client(c) as client:
+        with pytest.raises(ClusterError) as err:
+            replay_on_dask(root, client)
+        assert not any(client.processing().values())  # the tasks were cancelled, not left waiting
+    msg = str(err.value)
+    assert "has no workers" in msg and c.scheduler_address in msg, msg
