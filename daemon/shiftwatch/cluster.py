@@ -32,7 +32,7 @@ from typing import Any
 
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.replay import KEEP_PROBLEMS, ReplayResult, _record_key, replay_files
-from shiftwatch.sources import CsvFormatError, _partition_stream, expand_paths
+from shiftwatch.sources import CsvFormatError, _partition_stream, _path_order, expand_paths
 
 
 class ClusterError(RuntimeError):
@@ -239,7 +239,9 @@ def replay_on_dask(root: str | Path, client: Any, settings_for: Callable[[str], 
     partitions = stream_partitions(root)
     if not partitions:
         raise CsvFormatError(f"{root}: no files to replay")
-    order = {f: i for i, f in enumerate(f for part in partitions for f in part)}
+    # each file's place in one process's order (a task's files are those of one stream, taken
+    # from several directories: day=1/stream=A, day=2/stream=A)
+    order = {f: i for i, f in enumerate(sorted((f for part in partitions for f in part), key=_path_order))}
     own = isinstance(client, str)
     if own:
         _check_scheduler(client, CONNECT_TIMEOUT)

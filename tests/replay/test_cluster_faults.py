@@ -312,3 +312,25 @@ def test_a_scheduler_with_no_workers_is_told_not_waited_on_for_ever(tmp_path: Pa
         assert not any(client.processing().values())  # the tasks were cancelled, not left waiting
     msg = str(err.value)
     assert "has no workers" in msg and c.scheduler_address in msg, msg
+
+
+def test_problems_of_date_directories_come_in_the_files_order(cluster: Client, cli, tmp_path: Path) -> None:
+    # day=1/stream=A, day=1/stream=B, day=2/stream=A, day=2/stream=B: one process reads the files
+    # in that order and lists their unreadable rows so; the cluster's tasks are per stream (A's two
+    # directories, then B's), and their problems must still come in the files' order.
+    data = readings(4000, NAMES[:2])
+    root = tmp_path / "line2"
+    for day, (a, b) in (("day=1", (0, 2000)), ("day=2", (2000, 4000))):
+        part = _table({k: (t[a:b], v[a:b]) for k, (t, v) in data.items()})
+        values = part.column("value").to_numpy()
+        nulls = np.zeros(part.num_rows, dtype=bool)
+        nulls[[7, 2000 + 9]] = True  # a row of each stream
+        part = part.set_column(2, "value", pa.array(values, mask=nulls))
+        ds.write_dataset(part, root / day, format="parquet", partitioning=["stream"], partitioning_flavor="hive")
+    one = cli("replay", "line2")
+    assert one.returncode == 1
+    listed = [line for line in one.stderr.splitlines() if "no value (null)" in line]
+    assert len(listed) == 4 and [line.split("/")[1] for line in listed] == ["day=1", "day=1", "day=2", "day=2"]
+    res = cli("replay", "--dask", cluster.scheduler.address, "line2")
+    assert res.returncode == 1 and res.stdout == one.stdout
+    assert res.stderr == one.stderr
