@@ -1,17 +1,19 @@
 """Replay of a Parquet dataset partitioned by stream on a Dask cluster.
 
 Replay is one engine per stream, so it splits by stream: each partition of
-the dataset (a directory of files, such as the ``stream=NAME`` directories
-that ``pyarrow.dataset.write_dataset`` writes with Hive partitioning) is
-replayed by one task on the cluster, in one process there, and the records
-are gathered here.  The result is the one :func:`shiftwatch.replay.replay_files`
-gives for the same files in one process: the same records in the same
+the dataset (the files of one stream's ``stream=NAME`` directories, as
+``pyarrow.dataset.write_dataset`` writes them with Hive partitioning, wherever
+they lie; other files by directory) is replayed by one task on the cluster,
+in one process there, and the records are gathered here.  The result is the
+one :func:`shiftwatch.replay.replay_files` gives for the same files in one
+process: the same records in the same order, the same problems in the same
 order, the same per-stream totals.
 
 Requirements: every stream's rows lie in one partition (a stream found in
-two is refused, since two engines would each see part of it), and every
-worker can read the dataset's path (a shared file system).  dask and
-distributed come with the ``cluster`` extra and are imported only here.
+two is refused, since two engines would each see part of it), every worker
+can read the dataset's path (a shared file system; a relative path is taken
+from this process's working directory) and runs the same shiftwatch.  dask
+and distributed come with the ``cluster`` extra and are imported only here.
 
 Example, with a scheduler already running::
 
