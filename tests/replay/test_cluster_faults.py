@@ -334,3 +334,33 @@ def test_problems_of_date_directories_come_in_the_files_order(cluster: Client, c
     res = cli("replay", "--dask", cluster.scheduler.address, "line2")
     assert res.returncode == 1 and res.stdout == one.stdout
     assert res.stderr == one.stderr
+
+
+# ------------------------------------------------------------ a worker killed mid-run
+def test_a_worker_killed_mid_run_is_replaced_and_the_records_are_those_of_one_process(tmp_path: Path) -> None:
+    # The README's promise: a worker that dies once (SIGKILL, as the out-of-memory killer sends;
+    # signal(7)) is replaced by its nanny and the task is run again, with the same records.
+    names = [f"brackenfield/line{k % 4}/cell{k:03d}/weight" for k in range(8)]
+    root = tmp_path / "line2"
+    ds.write_dataset(_table(readings(60_000, names)), root, format="parquet", partitioning=["stream"],
+                     partitioning_flavor="hive")
+    one = replay_files([root])
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                      dashboard_address=None) as c, Client(c) as client:
+        pids = client.run(os.getpid)
+        got: list = []
+        thread = threading.Thread(target=lambda: got.append(replay_on_dask(root, client)))
+        thread.start()
+        deadline = time.monotonic() + 120
+        busy: list[str] = []
+        while not busy and time.monotonic() < deadline and thread.is_alive():
+            busy = [w for w, tasks in client.processing().items() if tasks]
+            time.sleep(0.02)
+        assert busy, "no task was seen running"
+        os.kill(pids[busy[0]], signal.SIGKILL)
+        thread.join(timeout=300)
+        assert not thread.is_alive()
+        assert pids[busy[0]] not in client.run(os.getpid).values()  # that worker was replaced
+    assert len(got) == 1
+    assert json_lines(got[0].records) == json_lines(one.records) and len(one.records) >= 8
+    assert {n: o.samples_total for n, o in got[0].streams.items()} == {n: o.samples_total for n, o in one.streams.items()}
