@@ -315,25 +315,109 @@ def _out_writable(out: str, sources: list[Any]) -> bool:
 def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for: Any, sources: list[Any],
                    shown: tuple[Any, str]) -> int:
     """Write the records, the problems, the summary and the report of a replay."""
-    from shiftwatch.replay import KEEP_PROBLEMS
-
     label_for, tz = shown
 
     out: Any
+    partial: str | None = None  # the temporary file beside --out, renamed to it when complete
     if args.out:
         try:
-            out = _Output(open(args.out, "w", encoding="utf-8"), f"--out {args.out}")  # noqa: SIM115  closed below
+            partial = _partial_out(args.out)
+            handle = open(partial or args.out, "w", encoding="utf-8")  # noqa: SIM115  closed below
+            out = _Output(handle, f"--out {args.out}")
         except OSError as exc:
+            _drop(partial)
             _err(f"--out {args.out}: cannot write: {exc.strerror or exc}")
             return EXIT_USAGE
     else:
         out = sys.stdout
-    from shiftwatch.display import alert_summary
-
     written = time.time()  # the summaries give the date of a time not on this day
     labels = {name: label_for(name) for name in result.streams}
+    # SIGTERM and SIGHUP unwind the writing, so the partial file is removed
+    from shiftwatch.report import _unwinding_on_termination
+
     try:
-        for rec in result.records:
+        with _unwinding_on_termination():
+            _write_records(out, result, labels, tz, written)
+            if args.out:
+                out.close()
+                if partial is not None:
+                    _put_in_place(partial, args.out)
+                    partial = None
+            else:
+                out.flush()  # a full disk is told here, before the summary, and not at exit
+    except OutputError as exc:
+        if not args.out:
+            raise  # standard output: main() tells it
+        _close_quietly(out)
+        _err(str(exc))
+        return EXIT_USAGE
+    except OSError as exc:  # the rename
+        _err(f"--out {args.out}: cannot write: {exc.strerror or exc}")
+        return EXIT_USAGE
+    except BaseException:
+        if args.out:
+            _close_quietly(out)
+        raise
+    finally:
+        _drop(partial)
+    return _replay_summary(args, report, result, unit_for, sources, labels, tz)
+
+
+def _partial_out(out: str) -> str | None:
+    """A new temporary file beside ``--out`` for the records, or None where ``--out`` is not a
+    regular file (a device such as /dev/stdout, a FIFO) and is written directly.  A records file
+    cut short by a full disk looked like a whole replay's, and an earlier one was emptied first."""
+    import os
+    import stat
+
+    target = os.path.realpath(out)  # a symbolic link: the file it points to is replaced
+    try:
+        if not stat.S_ISREG(os.stat(target).st_mode):
+            return None
+    except FileNotFoundError:
+        pass
+    head, tail = os.path.split(target)
+    flags = os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_CLOEXEC", 0)
+    for k in range(100):
+        path = os.path.join(head, f".{tail}.{os.getpid()}-{k}.part")
+        try:
+            os.close(os.open(path, flags, 0o666))
+            return path
+        except FileExistsError:
+            continue
+        except OSError:  # a directory that takes no new file: --out itself was found writable
+            return None
+    return None
+
+
+def _put_in_place(partial: str, out: str) -> None:
+    """Rename the complete records file to ``--out`` (keeping an earlier file's mode)."""
+    import os
+    import shutil
+
+    target = os.path.realpath(out)
+    if os.path.exists(target):
+        try:
+            shutil.copymode(target, partial)
+        except OSError:
+            pass
+    os.replace(partial, target)
+
+
+def _drop(path: str | None) -> None:
+    import os
+
+    if path is not None:
+        try:
+            os.unlink(path)
+        except OSError:
+            pass
+
+
+def _write_records(out: Any, result: Any, labels: dict[str, Any], tz: str, written: float) -> None:
+    from shiftwatch.display import alert_summary
+
+    for rec in result.records:
             # The same record the daemon publishes: the label when the config gives one, the summary.
             d = rec.to_dict()
             label = labels.get(rec.stream)
@@ -341,20 +425,13 @@ def _replay_output(args: argparse.Namespace, report: Any, result: Any, unit_for:
                 d["label"] = label
             d["summary"] = alert_summary(rec, label, tz, today=written)
             out.write(json.dumps(d) + "\n")
-        if args.out:
-            out.close()
-        else:
-            out.flush()  # a full disk is told here, before the summary, and not at exit
-    except OutputError as exc:
-        if not args.out:
-            raise  # standard output: main() tells it
-        _close_quietly(out)
-        _err(str(exc))
-        return EXIT_USAGE
-    except BaseException:
-        if args.out:
-            _close_quietly(out)
-        raise
+
+
+def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for: Any, sources: list[Any],
+                    labels: dict[str, Any], tz: str) -> int:
+    """The problems, the summary line and the report, once the records are written."""
+    from shiftwatch.replay import KEEP_PROBLEMS
+
     problem_count = result.problem_count
     _print_problems(result.problems, KEEP_PROBLEMS, problem_count)
     streams = result.streams
@@ -418,11 +495,13 @@ def cmd_fit(args: argparse.Namespace) -> int:
     from shiftwatch.replay import CsvFormatError, read_long_csv
 
     try:
-        read = read_long_csv([args.csv], layout=args.layout, timezone=args.timezone, only=args.stream)
+        # Without --stream only the first stream's rows are kept: a file of more than one is refused.
+        read = read_long_csv([args.csv], layout=args.layout, timezone=args.timezone, only=args.stream,
+                             first_only=args.stream is None)
     except CsvFormatError as exc:
         _err(str(exc))
         return EXIT_USAGE
-    _print_problems(read.problems)
+    _print_problems(read.problems, total=read.problem_count)
     names = sorted(read.streams)
     if not names:  # say why, not "holds 0 streams" or "no stream named 'a' (streams: )"
         if read.problems:

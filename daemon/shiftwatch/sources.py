@@ -355,15 +355,17 @@ class Source:
 
 def expand_paths(paths: Sequence[str | Path]) -> list[str]:
     """The files to read: each path, a directory standing for its ``.parquet`` and ``.csv``
-    files (all levels below it, in path order).  An entry of a directory that is named as
+    files (all levels below it, in path order, numbers in names by their value:
+    :func:`_path_order`).  An entry of a directory that is named as
     such a file but is none (a broken symlink, a pipe) is kept, so that opening it names it
     as opening a path given directly does, instead of leaving its rows out without a word."""
     out: list[str] = []
     for p in paths:
         if os.path.isdir(p):
-            found = sorted(str(f) for f in Path(p).rglob("*")
-                           if not f.is_dir() and f.suffix.lower() in (".parquet", ".pq", ".csv")
-                           and not any(part.startswith((".", "_")) for part in f.relative_to(p).parts))
+            found = sorted((str(f) for f in Path(p).rglob("*")
+                            if not f.is_dir() and f.suffix.lower() in (".parquet", ".pq", ".csv")
+                            and not any(part.startswith((".", "_")) for part in f.relative_to(p).parts)),
+                           key=_path_order)
             if not found:
                 raise CsvFormatError(f"{p}: the directory holds no .parquet or .csv file")
             out.extend(found)
@@ -372,14 +374,38 @@ def expand_paths(paths: Sequence[str | Path]) -> list[str]:
     return out
 
 
+def _path_order(path: str) -> tuple[list[Any], str]:
+    """A directory's files in path order, each run of digits taken as its number: writers number
+    a partition's files ``part-0``, ``part-1``, ... (pyarrow's ``write_dataset``), and in plain text
+    order ``part-10`` came before ``part-2``, so the rows of ``part-2`` on read as out of order.
+    Zero-padded numbers (Spark's ``part-00000``) keep their text order; ties keep it too."""
+    return [int(x) if i % 2 else x for i, x in enumerate(_DIGITS.split(path))], path
+
+
+_DIGITS = re.compile(r"(\d+)")
+
+
+#: The directory name pyarrow (``HivePartitioning``'s default ``null_fallback``), Hive and Spark
+#: give the rows of a null partition value.
+NULL_PARTITION = "__HIVE_DEFAULT_PARTITION__"
+
+
 def _partition_stream(path: str) -> str | None:
-    """The stream named by the nearest ``stream=NAME`` directory of a path (percent-decoded)."""
+    """The stream named by the nearest ``stream=NAME`` directory of a path (percent-decoded);
+    ``""`` for a directory that names none (``stream=``, or a null stream's
+    :data:`NULL_PARTITION`), whose rows are problems as a long file's row without a name is."""
     from urllib.parse import unquote
 
     for part in reversed(Path(path).parent.parts):
         if part.startswith("stream="):
-            return unquote(part[len("stream="):])
+            name = unquote(part[len("stream="):])
+            return "" if name == NULL_PARTITION or not name.strip() else name
     return None
+
+
+def _no_stream(src: Source) -> str:
+    """Why a row of a file in a ``stream=`` directory that names no stream has none."""
+    return f"no stream: its directory {Path(src.path).parent.name} names none (a null or empty stream)"
 
 
 def _pick_layout(name: str, header: list[str], layout: str, where: str) -> tuple[str, int, int, int,
@@ -515,7 +541,20 @@ def open_sources(paths: list[str | Path], layout: str = "auto") -> list[Source]:
     the replay before it starts."""
     if layout not in LAYOUTS:
         raise CsvFormatError(f"--layout {layout}: choose one of {', '.join(LAYOUTS)}")
-    return [open_source(p, layout) for p in expand_paths(paths)]
+    sources = [open_source(p, layout) for p in expand_paths(paths)]
+    seen: dict[tuple[int, int], int] = {}
+    for i, src in enumerate(sources):
+        # A file given twice (by name, through its directory, by a link) had every row of its
+        # second reading set aside as a repeated time, one problem per row.
+        try:
+            st = os.stat(src.path)
+        except OSError:
+            continue
+        first = seen.setdefault((st.st_dev, st.st_ino), i)
+        if first != i:
+            raise CsvFormatError(f"{src.path}: given twice (the same file as {sources[first].path}); "
+                                 "each file is read once")
+    return sources
 
 
 # ---------------------------------------------------------------------------
@@ -776,7 +815,8 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
                     if app is None:
                         key = stream.strip()
                         if not key:
-                            problems.append(f"{name}:{line}: empty stream name")
+                            problems.append(f"{name}:{line}: " + ("empty stream name" if si >= 0 or src.stream is None
+                                                                 else _no_stream(src)))
                             app = None
                         else:
                             app = appenders[stream] = lists_for(key)
@@ -1169,6 +1209,8 @@ def _read_fast(src: Source, buf: bytearray, begin: int, end: int, line0: int, fb
     except (ValueError, OverflowError, UnicodeDecodeError):
         return None
     if src.stream is not None:
+        if not src.stream:
+            return None  # no stream: the row reader names each row
         return [(src.stream, times, values, places)], n
     got = _stream_codes(body, src.stream_col)
     if got is None:
@@ -1658,6 +1700,9 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
                                         problems, a, src.header[src.stream_col])
                     continue
                 tag = src.stream or ""
+                if src.stream == "":  # a stream= directory that names none
+                    problems.rows(keep, a, "stream", _no_stream(src))
+                    continue
             if bool(keep.all()):
                 collected.setdefault(tag, []).append((times, v, places))
             elif bool(keep.any()):

@@ -139,7 +139,9 @@ def test_replay_refuses_an_out_that_is_one_of_its_input_files(cli, line_csv: Pat
     (tmp_path / "data").mkdir()
     link = tmp_path / "data" / "same.csv"
     link.symlink_to(line_csv)
-    for out, inputs in ((str(line_csv), [str(line_csv)]), (str(link), [str(tmp_path)])):
+    # (the link's directory only: tmp_path holds the file twice, itself and the link, which is
+    # refused as a file given twice before --out is looked at)
+    for out, inputs in ((str(line_csv), [str(line_csv)]), (str(link), [str(tmp_path / "data")])):
         res = cli("replay", "--out", out, *inputs)
         no_traceback(res.stderr)
         assert res.returncode == 2, res.stderr
@@ -353,3 +355,125 @@ def test_fit_on_a_parquet_file_with_no_readable_row_says_why(cli, tmp_path: Path
     else:
         assert pq.read_schema(path).field("value").type == pa.string()  # pyarrow's reading of the type
     _fit_says_why(cli("fit", str(path)), path)
+
+
+# ------------------------------------------------------------ fit on a large file of several streams
+def _peak_kib(cmd: list[str], cwd: Path) -> tuple[int, str]:
+    """Run ``cmd``; its exit status, stderr and peak resident memory in KiB (getrusage(2)'s
+    ru_maxrss of that one child, through wait4(2))."""
+    proc = subprocess.Popen(cmd, cwd=cwd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    assert proc.stderr is not None
+    err = proc.stderr.read()
+    _, status, usage = os.wait4(proc.pid, 0)
+    proc.returncode = os.waitstatus_to_exitcode(status)
+    assert proc.returncode == 2, err
+    return usage.ru_maxrss, err
+
+
+def test_fit_refusing_a_file_of_several_streams_keeps_no_rows_of_the_others(shiftwatch_cmd, tmp_path: Path) -> None:
+    # fit without --stream refuses a file of more than one stream; it read every stream's whole
+    # series into memory first (19 million rows of 64 streams: 620 MB, 9 s, for the refusal).
+    # Here a second stream of 1.5 million rows: 36 MB of arrays (times, values, places) kept
+    # before the refusal.  The reference is the same refusal's cost with --stream naming a
+    # stream that is not there (nothing kept at all).
+    path = tmp_path / "two.csv"
+    with open(path, "w") as f:
+        f.write("time,stream,value\n")
+        f.writelines(f"{T0 + i:.0f},{STREAM},{500 + i % 5}\n" for i in range(100))
+        f.writelines(f"{T0 + i:.0f},brackenfield/oven2/zone4_c,{182 + i % 7}\n" for i in range(1_500_000))
+    refused, err = _peak_kib(shiftwatch_cmd + ["fit", str(path)], tmp_path)
+    assert "holds 2 streams; choose one with --stream" in err, err
+    nothing, err = _peak_kib(shiftwatch_cmd + ["fit", "--stream", "brackenfield/nowhere", str(path)], tmp_path)
+    assert "no stream named 'brackenfield/nowhere'" in err, err
+    assert refused <= nothing + 12 * 1024, (refused, nothing)
+
+
+# ------------------------------------------------------------ the same file given twice
+@pytest.mark.parametrize("twice", ["same name", "directory and file"])
+def test_a_file_given_twice_is_refused_naming_both(cli, tmp_path: Path, twice: str) -> None:
+    # Before: every row of the second reading was set aside as a repeated time (exit 1 and one
+    # problem per row, each naming a line of "the" file), the records those of one reading.
+    data = tmp_path / "line2"
+    data.mkdir()
+    path = write_filler(data / "filler3.csv")
+    args = ["line2/filler3.csv", "line2/filler3.csv"] if twice == "same name" else ["line2", "line2/filler3.csv"]
+    res = cli("replay", *args)
+    no_traceback(res.stderr)
+    assert res.returncode == 2, res.stderr
+    assert res.stderr == ("shiftwatch: line2/filler3.csv: given twice (the same file as line2/filler3.csv); "
+                          "each file is read once\n"), res.stderr
+    assert res.stdout == ""
+    assert path.exists()
+
+
+# ------------------------------------------------------------ --out filling up part way
+def _many_steps(path: Path, streams: int = 200, n: int = 800) -> Path:
+    """Brackenfield's filler heads, each with a step of 3 sigma half way: two records a stream."""
+    rng = np.random.default_rng(11)
+    with open(path, "w") as f:
+        f.write("time,stream,value\n")
+        for i in range(n):
+            v = 500 + rng.standard_normal(streams) + (3.0 if i >= n // 2 else 0.0)
+            f.writelines(f"{T0 + i:.0f},brackenfield/filler{k:03d}/fill_g,{v[k]:.4f}\n" for k in range(streams))
+    return path
+
+
+@pytest.mark.parametrize("existing", [False, True])
+def test_out_that_fills_up_part_way_leaves_no_cut_records_file(shiftwatch_cmd, tmp_path: Path,
+                                                               existing: bool) -> None:
+    # A disk that fills while the records are written: RLIMIT_FSIZE (setrlimit(2): a write past it
+    # fails with EFBIG; Python ignores SIGXFSZ) stands in for a small file system.  Before: exit 2
+    # and the line, but a records file cut at 64 KiB was left, looking like a whole replay's (and an
+    # earlier records file was already emptied).  Now the records go to a temporary file beside
+    # --out, renamed when complete.
+    import resource
+
+    history = _many_steps(tmp_path / "fillers.csv")
+    full = subprocess.run(shiftwatch_cmd + ["replay", str(history)], capture_output=True, text=True,
+                          check=False, timeout=300)
+    assert full.returncode == 0 and len(full.stdout) > 256 * 1024, full.stderr
+    out = tmp_path / "records.jsonl"
+    if existing:
+        out.write_text("the last replay's records\n")
+
+    def limit() -> None:
+        resource.setrlimit(resource.RLIMIT_FSIZE, (64 * 1024, resource.RLIM_INFINITY))
+
+    res = subprocess.run(shiftwatch_cmd + ["replay", "--out", str(out), str(history)], capture_output=True,
+                         text=True, check=False, timeout=300, preexec_fn=limit)
+    no_traceback(res.stderr)
+    assert res.returncode == 2, res.stderr
+    assert res.stderr.endswith(f"shiftwatch: --out {out}: cannot write: {os.strerror(errno.EFBIG)}\n"), res.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == (["fillers.csv", "records.jsonl"] if existing
+                                                          else ["fillers.csv"])
+    if existing:
+        assert out.read_text() == "the last replay's records\n"
+    # With room, the same command writes every record, as standard output holds them.
+    ok = subprocess.run(shiftwatch_cmd + ["replay", "--out", str(out), str(history)], capture_output=True,
+                        text=True, check=False, timeout=300)
+    assert ok.returncode == 0 and out.read_text() == full.stdout
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["fillers.csv", "records.jsonl"]
+
+
+# ------------------------------------------------------------ fit counts every problem
+def test_fit_counts_every_null_value_of_a_parquet_file(cli, tmp_path: Path) -> None:
+    # The Parquet reader lists the first 20 problems of a piece and counts the rest; fit printed
+    # "... and 80 more problems like these" for 100,000 null values (replay said 100,000).  The
+    # reference count is pyarrow's own (the column's null_count).
+    n = 9000
+    rng = np.random.default_rng(5)
+    values = 182 + 0.4 * rng.standard_normal(n) + 0.6 * (np.arange(n) >= n // 2)
+    column = pa.array(values, mask=np.arange(n) % 3 == 0)
+    path = tmp_path / "oven2.parquet"
+    pq.write_table(pa.table({"time": T0 + np.arange(n, dtype=np.float64),
+                             "stream": ["brackenfield/oven2/zone4_c"] * n, "value": column}), path)
+    nulls = pq.read_table(path).column("value").null_count
+    assert nulls == 3000
+    res = cli("fit", str(path))
+    no_traceback(res.stderr)
+    assert res.returncode == 1, res.stderr
+    lines = res.stderr.splitlines()
+    assert len(lines) == 21 and lines[-1] == f"... and {nulls - 20} more problems like these", lines[-3:]
+    assert "one step at" in res.stdout
+    replay = cli("replay", str(path))
+    assert f"; {nulls} unreadable row(s) or cell(s) skipped" in replay.stderr
