@@ -179,6 +179,7 @@ class KillRun:
         self.journal = journal
         self.snapshot_every = snapshot_every
         self.rng = random.Random(kill_seed)
+        self._killed_all = threading.Event()  # set when the kills are over
         self.lifetime = lifetime
         self.state = self.workdir / "state"
         self.port = free_port()
@@ -257,13 +258,34 @@ class KillRun:
         names = p.names()
         series = [p.series(i) for i in range(p.streams)]
         start = time.monotonic()
+        hold_at = p.samples * 9 // 10
         for j in range(p.samples):
+            if j == hold_at and self.kills:
+                # The last tenth waits for the last kill: on a loaded machine each restart
+                # takes longer, and the readings could all be out before the kills were.
+                self._killed_all.wait(180)
+                start = time.monotonic() - j / p.rate
             for i, name in enumerate(names):
                 pub.publish(name, json.dumps({"v": round(float(series[i][j]), 4), "ts": T0 + j}), qos=1)
             lag = start + (j + 1) / p.rate - time.monotonic()
             if lag > 0:
                 time.sleep(lag)
         done.set()
+
+    def _kill_all(self, done: threading.Event) -> None:
+        """Each run of the daemon lives a random time (from its connection to the broker)
+        before it is killed: some die before their first snapshot, some just after one,
+        some in the middle of a round."""
+        while self.tally.kills < self.kills and not done.is_set():
+            time.sleep(self.rng.uniform(*self.lifetime))
+            if done.is_set():
+                break
+            assert self.proc is not None
+            self.proc.send_signal(signal.SIGKILL)
+            self.proc.wait()
+            self.tally.kills += 1
+            self._check_state()
+            self._start_daemon()
 
     # ------------------------------------------------------------ the run
     def run(self) -> Tally:
@@ -280,19 +302,10 @@ class KillRun:
         done = threading.Event()
         thread = threading.Thread(target=self._publish_all, args=(pub, done), daemon=True)
         thread.start()
-        # Each run of the daemon lives a random time (from its connection to
-        # the broker) before it is killed: some die before their first
-        # snapshot, some just after one, some in the middle of a round.
-        while self.tally.kills < self.kills and not done.is_set():
-            time.sleep(self.rng.uniform(*self.lifetime))
-            if done.is_set():
-                break
-            assert self.proc is not None
-            self.proc.send_signal(signal.SIGKILL)
-            self.proc.wait()
-            self.tally.kills += 1
-            self._check_state()
-            self._start_daemon()
+        try:
+            self._kill_all(done)
+        finally:
+            self._killed_all.set()
         thread.join()
         # Wait (bounded) until every stream has seen every reading once.
         names = self.plan.names()

@@ -82,6 +82,13 @@ def connects(io: object) -> bool:
     return True
 
 
+def _text(path: Path) -> str:
+    try:
+        return path.read_text(errors="replace")
+    except OSError:
+        return ""
+
+
 def start_lone_server(base: Path, name: str, mqtt: str | None = None) -> tuple[subprocess.Popen[bytes], int]:
     """One nats-server with JetStream on a free loopback port (its MQTT side on the next port
     when ``mqtt`` holds that block's options, e.g. ``'ack_wait: "1s"'``), started and answering;
@@ -91,22 +98,32 @@ def start_lone_server(base: Path, name: str, mqtt: str | None = None) -> tuple[s
     exe = find_nats_server()
     if exe is None:
         pytest.fail("nats-server is not installed (tests/install-and-test.sh installs it)")
-    port = free_port_block(2 if mqtt is not None else 1)
-    conf = base / "nats.conf"
-    text = f"server_name: {name}\nlisten: 127.0.0.1:{port}\n" f'jetstream {{ store_dir: "{base / "js"}" }}\n'
-    if mqtt is not None:
-        text += f"mqtt {{ listen: 127.0.0.1:{port + 1}, {mqtt} }}\n"
-    conf.write_text(text)
-    with open(base / "nats.log", "wb") as log:
-        server = subprocess.Popen([exe, "-c", str(conf)], stdout=log, stderr=subprocess.STDOUT)
-    deadline = time.monotonic() + 30
-    while not (port_open(port) and (mqtt is None or port_open(port + 1))):
-        if time.monotonic() > deadline or server.poll() is not None:
-            server.kill()
-            server.wait(10)
-            pytest.fail(f"nats-server did not start: {(base / 'nats.log').read_text()[-600:]}")
-        time.sleep(0.05)
-    return server, port
+    for _attempt in range(3):
+        port = free_port_block(2 if mqtt is not None else 1)
+        conf = base / "nats.conf"
+        text = f"server_name: {name}\nlisten: 127.0.0.1:{port}\n" f'jetstream {{ store_dir: "{base / "js"}" }}\n'
+        if mqtt is not None:
+            text += f"mqtt {{ listen: 127.0.0.1:{port + 1}, {mqtt} }}\n"
+        conf.write_text(text)
+        with open(base / "nats.log", "wb") as log:
+            server = subprocess.Popen([exe, "-c", str(conf)], stdout=log, stderr=subprocess.STDOUT)
+        deadline = time.monotonic() + 30
+        # Ready: this server says so, and it still runs. An open port alone is not enough: on a
+        # machine running other tests, another process may take the port between its choice and
+        # this server's bind, and the test would then talk to that one.
+        while not (server.poll() is None and "Server is ready" in _text(base / "nats.log")
+                   and port_open(port) and (mqtt is None or port_open(port + 1))):
+            if time.monotonic() > deadline or server.poll() is not None:
+                break
+            time.sleep(0.05)
+        if server.poll() is None and time.monotonic() <= deadline:
+            return server, port
+        server.kill()
+        server.wait(10)
+        said = _text(base / "nats.log")
+        if "address already in use" not in said:
+            break
+    pytest.fail(f"nats-server did not start: {_text(base / 'nats.log')[-600:]}")
 
 
 class NatsServer:

@@ -19,7 +19,6 @@ import asyncio
 import logging
 import signal
 import subprocess
-import time
 from pathlib import Path
 
 import numpy as np
@@ -107,12 +106,10 @@ def test_a_round_the_cluster_does_not_acknowledge_times_out_and_is_taken_once_wh
         rnd = cs.journal_round()
         for i in range(3):
             rnd.add(_group(i, t0=10.0))
-        started = time.monotonic()
-        with pytest.raises(ClusterError):
+        # wait() gives up by its own bound (the client's timeout for a round of fewer than
+        # PARALLEL messages, plus the second NatsIO.result allows) and says so.
+        with pytest.raises(ClusterError, match="no answer within"):
             rnd.wait()
-        # The bound: the client's timeout for a round of fewer than PARALLEL messages, plus
-        # the second NatsIO.result allows (generous: a loaded machine).
-        assert time.monotonic() - started < 10.0
         assert cs.seq == before  # no sequence from a round that timed out
     finally:
         server.send_signal(signal.SIGCONT)
