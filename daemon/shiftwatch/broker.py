@@ -75,6 +75,36 @@ def wait_until(pred: Callable[[], bool], timeout: float = 30.0, every: float = 0
     return pred()
 
 
+def thread_states(pid: int) -> str:
+    """The state letter of each thread of a process, from /proc (proc(5)); '' when it is gone."""
+    try:
+        tasks = os.listdir(f"/proc/{pid}/task")
+    except OSError:
+        return ""
+    out = []
+    for t in tasks:
+        try:
+            with open(f"/proc/{pid}/task/{t}/stat") as f:
+                out.append(f.read().rsplit(")", 1)[1].split()[0])
+        except (OSError, IndexError):
+            continue
+    return "".join(out)
+
+
+def hold(proc: subprocess.Popen[Any], timeout: float = 20.0) -> None:
+    """SIGSTOP ``proc`` and wait until every one of its threads is stopped ('T' in /proc).
+
+    kill(2) returns before the signal is delivered: a busy multi-threaded server was seen
+    here answering requests sent after it had returned, for a second or more.  The tests
+    that hold a process use this so that what they send next meets a process that is held.
+    Raises RuntimeError when it is not stopped within ``timeout`` seconds.
+    """
+    proc.send_signal(signal.SIGSTOP)
+    if not wait_until(lambda: set(thread_states(proc.pid)) == {"T"}, timeout, every=0.01):
+        raise RuntimeError(f"process {proc.pid} not stopped {timeout:.0f} s after SIGSTOP "
+                           f"(its threads: {thread_states(proc.pid)!r})")
+
+
 def port_open(port: int) -> bool:
     """Whether something accepts connections on 127.0.0.1:``port`` (within 0.2 s)."""
     try:
@@ -224,9 +254,10 @@ class MosquittoBroker:
         self.start()
 
     def freeze(self) -> None:
-        """SIGSTOP: the broker keeps its sockets open but answers nothing."""
+        """SIGSTOP: the broker keeps its sockets open but answers nothing (returns once it is
+        stopped, see :func:`hold`)."""
         if self.process is not None:
-            self.process.send_signal(signal.SIGSTOP)
+            hold(self.process)
 
     def thaw(self) -> None:
         """SIGCONT after :meth:`freeze`."""

@@ -19,7 +19,7 @@ from typing import Any
 
 import pytest
 
-from shiftwatch.broker import MosquittoBroker, free_port
+from shiftwatch.broker import MosquittoBroker, free_port, hold
 from shiftwatch.mqtt import PlainClient
 
 
@@ -117,6 +117,9 @@ class DaemonProcess:
 
     def signal(self, sig: int) -> None:
         assert self.proc is not None
+        if sig == signal.SIGSTOP:
+            hold(self.proc)  # returns once every thread of the daemon is stopped
+            return
         self.proc.send_signal(sig)
         if sig == signal.SIGTERM:
             self.term_sent = True

@@ -23,7 +23,7 @@ import tempfile
 import time
 from pathlib import Path
 
-from shiftwatch.broker import find_program, port_open, wait_until
+from shiftwatch.broker import find_program, hold, port_open, wait_until
 
 #: The servers' MQTT ack_wait: unacknowledged messages are sent again after it (the
 #: daemons' cluster.redelivery_wait in the tests is above it).
@@ -87,6 +87,17 @@ def _text(path: Path) -> str:
         return path.read_text(errors="replace")
     except OSError:
         return ""
+
+
+def freeze(proc: subprocess.Popen[bytes]) -> None:
+    """SIGSTOP a server and wait until it is stopped (shiftwatch.broker.hold); fails the test
+    when it is not."""
+    import pytest
+
+    try:
+        hold(proc)
+    except RuntimeError as exc:
+        pytest.fail(str(exc))
 
 
 def start_lone_server(base: Path, name: str, mqtt: str | None = None) -> tuple[subprocess.Popen[bytes], int]:

@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from shiftwatch.broker import MosquittoBroker, free_port
+from shiftwatch.broker import MosquittoBroker, free_port, hold
 from shiftwatch.mqtt import PlainClient
 
 from .conftest import Collector
@@ -93,7 +93,7 @@ def test_alert_records_in_the_outbox_survive_a_kill_while_the_broker_is_down(
         x = 180.0 + 0.5 * np.random.default_rng(23).standard_normal(900)
         x[600:] += 1.5
         batch = json.dumps([{"v": round(float(v), 3), "ts": T0 + i} for i, v in enumerate(x)])
-        d.proc.send_signal(signal.SIGSTOP)
+        hold(d.proc)
         pub.publish_wait("oven/z3/t", batch)
         time.sleep(0.3)  # the broker hands the message to the stopped daemon's socket
         pub.stop()

@@ -29,7 +29,7 @@ from shiftwatch.clusterstate import ClusterState, JournalRound
 from shiftwatch.journal import JournalGroup
 from shiftwatch.natsio import ClusterError, NatsIO, SequenceConflict
 
-from .natskit import connects, start_lone_server
+from .natskit import connects, freeze, start_lone_server
 
 
 @pytest.fixture
@@ -101,7 +101,7 @@ def test_a_round_the_cluster_does_not_acknowledge_times_out_and_is_taken_once_wh
     assert cs.journal([_group(i) for i in range(3)]) == []
     before = dict(cs.seq)
     cs.io.timeout = 1.0
-    server.send_signal(signal.SIGSTOP)
+    freeze(server)
     try:
         rnd = cs.journal_round()
         for i in range(3):

@@ -30,6 +30,7 @@ from pathlib import Path
 
 import pytest
 
+from shiftwatch.broker import hold
 from shiftwatch.partition import partition_of
 
 from .killrun import metric, scrape
@@ -147,7 +148,7 @@ def test_a_shard_frozen_through_two_changes_of_the_mapping_loses_nothing(
             marks.append(published[-1])
             # ... shard 0 frozen just after the remap (the keepalive of 30 s keeps its
             # connection: a frozen process, not a lost connection) ...
-            sh.proc.send_signal(signal.SIGSTOP)
+            hold(sh.proc)
             try:
                 time.sleep(5.0)
                 # ... and back to 3 five seconds later, without waiting for shard 0's reload.

@@ -40,7 +40,7 @@ from pathlib import Path
 
 import pytest
 
-from shiftwatch.broker import wait_until
+from shiftwatch.broker import hold, wait_until
 from shiftwatch.handover import MAGIC as HANDOVER_MAGIC
 from shiftwatch.lease import ShardLease
 from shiftwatch.mqtt import PlainClient
@@ -506,7 +506,7 @@ def _stalled_reshard(tmp_path: Path, cluster: NatsCluster, plan: Plan, *, watch:
         r.reload_shards([0, 1, 2], "shard.of is 4 now")
         proc = r.shard(stalled).proc
         assert proc is not None
-        proc.send_signal(signal.SIGSTOP)
+        hold(proc)
         try:
             time.sleep(2.5)
             r.remap(4)
