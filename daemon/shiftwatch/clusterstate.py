@@ -163,6 +163,9 @@ class ClusterState:
         #: The mapping record (``partition.Remap``) as the last :meth:`load` read it (None:
         #: none yet, or unreadable): where a stream was before the last change.
         self.remap: Remap | None = None
+        #: What was wrong with the mapping record the last :meth:`note_mapping` found (no
+        #: such record: damaged, or put there by hand) and wrote anew; None: it was sound.
+        self.mapping_damaged: str | None = None
 
     def subject(self, name: str) -> str:
         return f"{self.name}.journal.{stream_key(name)}"
@@ -310,12 +313,18 @@ class ClusterState:
         """This shard runs the mapping for ``of`` partitions over ``levels`` now (at its
         start, or at a reload that ``changed`` its own): the cluster's mapping record is
         brought up to date (``Remap.taken_up``), with the bucket's revision checked so that
-        shards starting or reloading together keep the one before.  Returns the record as
-        it stands; raises ClusterError."""
+        shards starting or reloading together keep the one before.  A record that is no
+        such record is written anew and said in :attr:`mapping_damaged`.  Returns the record
+        as it stands; raises ClusterError."""
+        self.mapping_damaged = None
+
         async def go() -> Remap | None:
             for _attempt in range(5):
                 entry = await self.io.kv_get(self.bucket, MAPPING_KEY)
                 cur = None if entry is None else Remap.decode(entry.value)
+                if entry is not None and cur is None:
+                    self.mapping_damaged = (f"bucket {self.bucket} key {MAPPING_KEY} revision {entry.revision} "
+                                            "is no mapping record (damaged, or put there by hand)")
                 now = time.time()
                 new = Remap(of, tuple(levels), None, None, now) if cur is None \
                     else cur.taken_up(of, tuple(levels), now, changed=changed)

@@ -804,6 +804,12 @@ class Daemon:
         except ClusterError as exc:
             self.log.warning("the mapping record in the cluster not brought up to date (%s): streams "
                              "that no shard wrote lately begin at once if they moved here", exc)
+        if self.cluster.mapping_damaged is not None:
+            # Written anew from this shard's mapping: the one before it is not known, so
+            # streams that no shard wrote lately begin at once if they moved here.
+            self.metrics.states_set_aside.inc()
+            self.log.warning("%s: set aside and written anew with this shard's mapping (shard.of %d); "
+                             "the mapping before is not known", self.cluster.mapping_damaged, self.owner.of)
 
     def _unpark(self, name: str, spec: StreamConfig, unit: str | None, parked: list[JournalGroup],
                 now: float) -> JournalGroup | None:

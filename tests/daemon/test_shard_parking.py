@@ -31,7 +31,7 @@ import numpy as np
 import pytest
 
 from shiftwatch.broker import wait_until
-from shiftwatch.clusterstate import ClusterState
+from shiftwatch.clusterstate import MAPPING_KEY, ClusterState
 from shiftwatch.config import load_config
 from shiftwatch.daemon import Daemon
 from shiftwatch.handover import MAGIC
@@ -39,7 +39,7 @@ from shiftwatch.journal import JournalGroup
 from shiftwatch.metrics import Metrics
 from shiftwatch.mqtt import Message
 from shiftwatch.natsio import NatsIO
-from shiftwatch.partition import partition_of
+from shiftwatch.partition import Remap, partition_of
 
 from .natskit import connects, start_lone_server
 
@@ -535,5 +535,75 @@ def test_a_stream_nobody_wrote_waits_for_the_shard_the_mapping_before_gave_it(
         time.sleep(2.1)  # the change is older than cluster.handover_wait now
         d.process([_array(later, 0.0, [500.0] * 20)])
         assert later in d.engines and later not in d._deferred
+    finally:
+        _close(d)
+
+
+def test_a_damaged_mapping_record_is_written_anew_named_and_counted(tmp_path: Path, server: int) -> None:
+    # The mapping record (key ``mapping`` of the state bucket) holds something that is no
+    # such record (put there by hand, or damaged).  The shard's start wrote it anew without
+    # a word: bad input neither said nor counted, and the mapping before (which a new owner
+    # asks by) silently lost.  Now that is logged, naming the bucket, key and revision, and
+    # counted (states_set_aside), once.
+    io = _io(server, "hand")
+    try:
+        cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="hand")
+        cs.setup()
+        io.run(io.kv_put(cs.bucket, MAPPING_KEY, b"{\"format\": \"shiftwatch-mapping\", \"of\": -3"))
+    finally:
+        io.close()
+    d = _daemon(tmp_path, server, "after-hand")
+    try:
+        d._note_mapping(changed=False)
+        assert d.cluster.remap is not None and (d.cluster.remap.of, d.cluster.remap.previous_of) == (2, None)
+        assert _counter(d, "shiftwatch_stream_states_set_aside_total") == 1
+        stored = d.nats.run(d.nats.kv_get(d.cluster.bucket, MAPPING_KEY))
+        assert stored is not None and Remap.decode(stored.value) == d.cluster.remap
+        d._note_mapping(changed=False)  # sound now: nothing more to say or count
+        assert _counter(d, "shiftwatch_stream_states_set_aside_total") == 1
+    finally:
+        _close(d)
+
+
+def _journal_as_shard(port: int, writer: str, shard: int, topic: str, t: np.ndarray) -> None:
+    """Shard ``shard``, as daemon ``writer``, writes samples at times ``t`` to the stream's journal."""
+    io = _io(port, writer)
+    try:
+        cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer=writer,
+                          shard=shard)
+        cs.setup()
+        cs.load([topic])
+        assert cs.journal([JournalGroup(topic, "g", t, 500.0 + 0.0 * t, t, "brackenfield/+/+/fill")]) == []
+    finally:
+        io.close()
+
+
+def test_a_stream_this_shard_wrote_after_the_change_is_not_asked_of_its_owner_before(
+        tmp_path: Path, server: int) -> None:
+    # The number of shards went from 3 to 2 moments ago, and an earlier run of this shard
+    # (shard 1) has already loaded and written a stream that moved here, after the change:
+    # its handover is done.  Restarted, the shard used to ask the shard the mapping for 3
+    # gave the stream all the same (the record said the change was young), and wait for its
+    # answer: up to the whole cluster.handover_wait when that shard is gone (4 to 3).  Now
+    # a stream written since the change waits cluster.redelivery_wait from that write, as
+    # the README says of a restart.
+    moved = next(t for t in _owned_by_1_of_2(16) if partition_of(t, LEVELS, 3) not in (1, None))
+    io = _io(server, "before")
+    try:
+        cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="w-before",
+                          shard=0)
+        cs.setup()
+        cs.note_mapping(3, LEVELS, changed=False)
+        cs.note_mapping(2, LEVELS, changed=True)
+    finally:
+        io.close()
+    _journal_as_shard(server, "w-earlier-run", 1, moved, np.arange(20, dtype=float))
+    d = _daemon(tmp_path, server, "restarted", handover_wait=30.0)
+    try:
+        d._note_mapping(changed=False)
+        assert d.cluster.remap is not None and (d.cluster.remap.of, d.cluster.remap.previous_of) == (2, 3)
+        d.process([_array(moved, 20.0, [500.0] * 10)])
+        assert moved not in d.handover.waiting
+        assert moved in d._deferred and d._deferred[moved] < time.time() + 1.5  # redelivery_wait: 1 s
     finally:
         _close(d)
