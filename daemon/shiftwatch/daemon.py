@@ -711,7 +711,7 @@ class Daemon:
                     # samples of it that the mapping sent it before (a shard still waiting
                     # after resuming its session, or frozen).  Asked too: begun at once, the
                     # stream would refuse those samples when they reach the journal.
-                    ask = self._moved_from(topic, now)
+                    ask = self._moved_from(topic, now, r.written_at)
                 if ask is not None and ho is not None and topic is not None:
                     ho.ask(name, ask, topic)
                     self._deferred[name] = now + ho.wait
@@ -781,15 +781,20 @@ class Daemon:
         if parked_last:
             self._journal_unparked(unparked, parked_last, now)
 
-    def _moved_from(self, topic: str | None, now: float) -> int | None:
+    def _moved_from(self, topic: str | None, now: float, written: float | None) -> int | None:
         """The shard that the mapping before the last change gave ``topic``, while that
-        change is younger than cluster.handover_wait and that shard is another one (it
+        change is younger than cluster.handover_wait, the stream's journal (last written
+        at ``written``) has not been written since, and that shard is another one (it
         can be asked); None otherwise.  From the cluster's mapping record, which every
-        shard brings up to date at its start and at a reload (see _note_mapping)."""
+        shard brings up to date at its start and at a reload (see _note_mapping).  A
+        stream written since the change was taken up under the new mapping: by an earlier
+        run of this shard (a restart), which waits cluster.redelivery_wait instead; until
+        2026-12-04 it asked the old owner again, and waited the whole handover_wait when
+        that shard was gone (4 to 3)."""
         ho, remap = self.handover, self.cluster.remap if self.cluster is not None else None
         if ho is None or remap is None or topic is None or self.owner is None:
             return None
-        k = remap.moved_from(topic, self.owner.number, now=now, wait=ho.wait)
+        k = remap.moved_from(topic, self.owner.number, now=now, wait=ho.wait, written=written)
         return k if ho.can_ask(k) else None
 
     def _note_mapping(self, *, changed: bool) -> None:

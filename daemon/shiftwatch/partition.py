@@ -135,6 +135,10 @@ class Remap:
     (1, None)
     >>> r.moved_from(topic, 2, now=170.0, wait=60.0) is None  # the change is too old
     True
+    >>> r.moved_from(topic, 2, now=130.0, wait=60.0, written=90.0)  # last written before it
+    1
+    >>> r.moved_from(topic, 2, now=130.0, wait=60.0, written=110.0) is None  # taken up since
+    True
     >>> Remap.decode(r.encode()) == r
     True
     >>> Remap(3, (2, 3, 4), None, None, 5.0).moved_from(topic, 2, now=6.0, wait=60.0) is None
@@ -147,10 +151,16 @@ class Remap:
     previous_levels: tuple[int, ...] | None
     since: float
 
-    def moved_from(self, topic: str, number: int, *, now: float, wait: float) -> int | None:
+    def moved_from(self, topic: str, number: int, *, now: float, wait: float,
+                   written: float | None = None) -> int | None:
         """The shard the mapping before gave ``topic``, when it is not ``number`` and the
-        change is less than ``wait`` seconds old; otherwise None."""
+        change is less than ``wait`` seconds old; otherwise None.  ``written``: when the
+        stream's journal was last written (None: never); written since the change, the
+        stream has been taken up under the new mapping already (its handover is done), so
+        None too."""
         if self.previous_of is None or self.previous_levels is None or not now - self.since < wait:
+            return None
+        if written is not None and written >= self.since:
             return None
         k = partition_of(topic, self.previous_levels, self.previous_of)
         return None if k is None or k == number else k
