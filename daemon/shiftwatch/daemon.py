@@ -957,7 +957,8 @@ class Daemon:
         had: NATS may have held all of an old owner's deliveries back): its owner
         loads them with the snapshot.  When the journal refuses them (the stream was
         written since this daemon knew it), and for a stream whose samples this daemon
-        parked before, they are parked (ClusterState.park): an owner that is still
+        parked before, they are parked (ClusterState.park), unless the owner wrote the
+        stream since the last change of the mapping (_owners_began: set aside): an owner that is still
         waiting for this shard's answer (it asks the shard that wrote the stream last,
         or that the mapping before the last change gave it) feeds them with its own
         parked samples in time order; one that has begun sets them aside at its next
@@ -990,7 +991,12 @@ class Daemon:
                     # Refused: the owner wrote the stream after this shard last knew it.
                     # Until 2026-12-04 they were set aside, and an owner that took a stream
                     # back (two changes in a row) lost what the mapping between had sent a
-                    # shard that was frozen meanwhile.
+                    # shard that was frozen meanwhile: parked now, unless the owner wrote
+                    # the stream since the last change (it has begun, and reads the parking
+                    # only at its next load, which may never come: set aside, counted now).
+                    begun = self._owners_began(refused)
+                    set_aside = [g for g in refused if g.stream in begun]
+                    refused = [g for g in refused if g.stream not in begun]
                     if refused or behind:
                         self.cluster.park([*refused, *behind])
                         self._parked_here.update(g.stream for g in (*refused, *behind))
@@ -1000,7 +1006,13 @@ class Daemon:
                                       f"written to their journal ({exc}); the round is held and "
                                       "tried again", now)
                     return False
-                handed = sum(len(g.values) for g in (*out, *behind))
+                handed = sum(len(g.values) for g in (*out, *behind)) - sum(len(g.values) for g in set_aside)
+                if set_aside:
+                    self.rlog.warning("other_shard_late", lambda: (
+                        f"{sum(len(g.values) for g in set_aside)} sample(s) of {len(set_aside)} stream(s) "
+                        f"of other shards (e.g. {_printable(set_aside[0].stream)}) set aside: their "
+                        "owner has written them since the last change of shard.of, after these were "
+                        "sent here"), now)
         self._count_drop("other_shard", n)
         if handed:
             self.metrics.samples_handed_over.inc(handed)
@@ -1017,6 +1029,29 @@ class Daemon:
 
                 self.rlog.warning("other_shard", text, now, extra={"stream": name})
         return True
+
+    def _owners_began(self, refused: list[JournalGroup]) -> set[str]:
+        """Of another shard's streams whose journal refused this shard's write, those whose
+        owner (by this shard's mapping) wrote the message that refused it at or after the
+        last change of the mapping (the mapping record, read again: a change may have come
+        since this shard last read it): that owner has begun the stream.  One that wrote
+        it before the change may be waiting for this shard's answer (it took the stream
+        back), and one whose message does not say (no headers, no record) is taken to
+        wait.  Raises ClusterError."""
+        assert self.cluster is not None and self.owner is not None
+        by = {g.stream: self.cluster.refused_by.pop(g.stream, (None, None)) for g in refused}
+        if not refused:
+            return set()
+        remap = self.cluster.read_mapping()
+        if remap is None:
+            return set()
+        out = set()
+        for name, (shard, at) in by.items():
+            topic = self._topic_of.get(name)
+            if (shard is not None and at is not None and topic is not None
+                    and shard == self.owner.partition(topic) and at >= remap.since):
+                out.add(name)
+        return out
 
     def _let_go(self, names: list[str], *, save: bool = True) -> None:
         """Streams this shard no longer owns: their state saved (state in the cluster),

@@ -607,3 +607,32 @@ def test_a_stream_this_shard_wrote_after_the_change_is_not_asked_of_its_owner_be
         assert moved in d._deferred and d._deferred[moved] < time.time() + 1.5  # redelivery_wait: 1 s
     finally:
         _close(d)
+
+
+def test_late_samples_refused_by_an_owner_that_began_after_the_change_are_set_aside_at_once(
+        tmp_path: Path, server: int) -> None:
+    # This shard went from 2 partitions to 3; the stream's owner under 3 (shard 0) has
+    # loaded it and written it since that change: it has begun and reads the stream's
+    # parking only at its next load (a restart, a later move), which may never come within
+    # the parking's 7 days.  Samples of it that still reach this shard are refused by the
+    # journal.  They used to be parked all the same, neither fed nor counted as lost, and
+    # the parking grew.  Now they are set aside at once (other_shard, not handed over), as
+    # before the parking of refused samples; refused by an owner that wrote the stream
+    # before the change (it may be waiting for this shard's answer), they are still parked
+    # (test_samples_of_another_shard_s_stream_refused_by_its_journal_are_parked_for_its_owner).
+    topic = next(t for t in _owned_by_1_of_2(16) if partition_of(t, LEVELS, 3) == 0)
+    d = _daemon(tmp_path, server, "not-mine-any-more")
+    try:
+        moved_on = tmp_path / "not-mine-any-more-of-3.yaml"
+        moved_on.write_text((tmp_path / "not-mine-any-more.yaml").read_text().replace("of: 2", "of: 3"))
+        d._set_shard(load_config(str(moved_on)))
+        time.sleep(0.05)  # the owner's write comes after the change (times kept to the ms)
+        _journal_as_shard(server, "w-owner", 0, topic, np.arange(100, dtype=float))
+        d.process([_array(topic, 100.0, [500.0] * 30)])
+        assert _counter(d, "shiftwatch_messages_dropped_total", reason="other_shard") == 30
+        assert _counter(d, "shiftwatch_samples_handed_over_total") == 0
+        assert _journaled(server, topic) == [float(i) for i in range(100)]
+        assert _parked(server, topic) == ([], [], 0)
+        assert topic not in d._parked_here
+    finally:
+        _close(d)
