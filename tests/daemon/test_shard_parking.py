@@ -636,3 +636,32 @@ def test_late_samples_refused_by_an_owner_that_began_after_the_change_are_set_as
         assert topic not in d._parked_here
     finally:
         _close(d)
+
+
+def test_a_mapping_record_from_a_clock_far_ahead_does_not_hold_new_streams(tmp_path: Path, server: int) -> None:
+    # The mapping record's time is the wall clock of the shard that wrote it last.  One
+    # written by a box whose clock is an hour ahead read as a change less than
+    # cluster.handover_wait old for that whole hour: every stream that moved (each loaded
+    # at any shard's restart, say) waited for the shard the mapping before gave it, the
+    # whole wait when that shard was gone; and a reload kept the time (the latest of the
+    # two).  A change more than cluster.handover_wait ahead of this box's clock is taken
+    # for a clock error now: not a young change.
+    moved = next(t for t in _owned_by_1_of_2(16) if partition_of(t, LEVELS, 3) not in (1, None))
+    ahead = Remap(2, LEVELS, 3, LEVELS, time.time() + 3600.0)
+    io = _io(server, "ahead")
+    try:
+        cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="ahead")
+        cs.setup()
+        io.run(io.kv_put(cs.bucket, MAPPING_KEY, ahead.encode()))
+    finally:
+        io.close()
+    d = _daemon(tmp_path, server, "on-time", handover_wait=30.0)
+    try:
+        d.process([_array(moved, 0.0, [500.0] * 20)])
+        assert d.cluster.remap == ahead
+        assert moved in d.engines and moved not in d._deferred and moved not in d.handover.waiting
+        now = time.time()
+        retaken = ahead.taken_up(2, LEVELS, now, changed=True)
+        assert retaken is not None and retaken.since == now  # not the hour ahead
+    finally:
+        _close(d)
