@@ -308,6 +308,23 @@ class ClusterState:
             return after, None
         return after, f"saved state in {where} has an unusable " + ", ".join(wrong)
 
+    def last_written(self, names: Iterable[str]) -> dict[str, tuple[int | None, float | None]]:
+        """Per stream, the shard and wall-clock time its journal's last message was written
+        by and at (None where a header is missing, or there is no message).  Raises
+        ClusterError."""
+        names = list(names)
+        sem = asyncio.Semaphore(PARALLEL)
+
+        async def one(name: str) -> tuple[str, tuple[int | None, float | None]]:
+            async with sem:
+                _last, headers = await self.io.last_seq(self.stream, self.subject(name))
+                return name, _written(headers)
+
+        async def go() -> dict[str, tuple[int | None, float | None]]:
+            return dict(await asyncio.gather(*(one(n) for n in names)))
+
+        return self.io.run(go(), timeout=self.io.timeout * (1 + len(names) // PARALLEL))
+
     def read_mapping(self) -> Remap | None:
         """The mapping record as it stands (None: none, or damaged), kept in :attr:`remap`.
         Raises ClusterError."""

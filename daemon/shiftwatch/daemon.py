@@ -994,19 +994,26 @@ class Daemon:
                     # shard that was frozen meanwhile: parked now, unless the owner wrote
                     # the stream since the last change (it has begun, and reads the parking
                     # only at its next load, which may never come: set aside, counted now).
-                    begun = self._owners_began(refused)
-                    set_aside = [g for g in refused if g.stream in begun]
-                    refused = [g for g in refused if g.stream not in begun]
-                    if refused or behind:
-                        self.cluster.park([*refused, *behind])
-                        self._parked_here.update(g.stream for g in (*refused, *behind))
+                    # So too for those parked behind earlier ones: once the owner has read
+                    # the parking and written on, nothing reads them but a later load.
+                    by = {g.stream: self.cluster.refused_by.pop(g.stream, (None, None)) for g in refused}
+                    if behind:
+                        by.update(self.cluster.last_written({g.stream for g in behind}))
+                    begun = self._owners_began(by)
+                    set_aside = [g for g in (*refused, *behind) if g.stream in begun]
+                    parked = [g for g in (*refused, *behind) if g.stream not in begun]
+                    self._parked_here.difference_update(begun)
+                    if parked:
+                        self.cluster.park(parked)
+                        self._parked_here.update(g.stream for g in parked)
                 except ClusterError as exc:
                     self.metrics.journal_failures.inc()
                     self.rlog.warning("cluster_journal", f"samples of another shard's streams not "
                                       f"written to their journal ({exc}); the round is held and "
                                       "tried again", now)
                     return False
-                handed = sum(len(g.values) for g in (*out, *behind)) - sum(len(g.values) for g in set_aside)
+                no = {id(g) for g in refused}
+                handed = sum(len(g.values) for g in (*(g for g in out if id(g) not in no), *parked))
                 if set_aside:
                     self.rlog.warning("other_shard_late", lambda: (
                         f"{sum(len(g.values) for g in set_aside)} sample(s) of {len(set_aside)} stream(s) "
@@ -1030,17 +1037,16 @@ class Daemon:
                 self.rlog.warning("other_shard", text, now, extra={"stream": name})
         return True
 
-    def _owners_began(self, refused: list[JournalGroup]) -> set[str]:
-        """Of another shard's streams whose journal refused this shard's write, those whose
-        owner (by this shard's mapping) wrote the message that refused it at or after the
-        last change of the mapping (the mapping record, read again: a change may have come
-        since this shard last read it): that owner has begun the stream.  One that wrote
-        it before the change may be waiting for this shard's answer (it took the stream
-        back), and one whose message does not say (no headers, no record) is taken to
-        wait.  Raises ClusterError."""
+    def _owners_began(self, by: dict[str, tuple[int | None, float | None]]) -> set[str]:
+        """Of another shard's streams, with the shard and time of their journal's last
+        message (the one that refused this shard's write), those whose owner (by this
+        shard's mapping) wrote it at or after the last change of the mapping (the mapping
+        record, read again: a change may have come since this shard last read it): that
+        owner has begun the stream.  One that wrote it before the change may be waiting
+        for this shard's answer (it took the stream back), and one whose message does not
+        say (no headers, no record) is taken to wait.  Raises ClusterError."""
         assert self.cluster is not None and self.owner is not None
-        by = {g.stream: self.cluster.refused_by.pop(g.stream, (None, None)) for g in refused}
-        if not refused:
+        if not by:
             return set()
         remap = self.cluster.read_mapping()
         if remap is None:

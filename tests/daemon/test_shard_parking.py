@@ -665,3 +665,39 @@ def test_a_mapping_record_from_a_clock_far_ahead_does_not_hold_new_streams(tmp_p
         assert retaken is not None and retaken.since == now  # not the hour ahead
     finally:
         _close(d)
+
+
+def test_late_samples_parked_behind_are_set_aside_once_the_owner_has_begun(tmp_path: Path, server: int) -> None:
+    # This shard parked late samples of a stream whose owner wrote it before the change
+    # (it may be waiting for this shard's answer); what still came of the stream was parked
+    # behind them without a look at the journal.  Once the owner has loaded the stream (its
+    # parking read and purged) and written it, such samples were parked where nothing would
+    # read them but a later load.  Now, as for a refused write, they are set aside at once.
+    topic = next(t for t in _owned_by_1_of_2(16) if partition_of(t, LEVELS, 3) == 0)
+    _journal_as_shard(server, "w-owner", 0, topic, np.arange(100, dtype=float))  # before the change
+    time.sleep(0.05)
+    d = _daemon(tmp_path, server, "late-again")
+    try:
+        moved_on = tmp_path / "late-again-of-3.yaml"
+        moved_on.write_text((tmp_path / "late-again.yaml").read_text().replace("of: 2", "of: 3"))
+        d._set_shard(load_config(str(moved_on)))
+        d.process([_array(topic, 100.0, [500.0] * 30)])
+        assert _parked(server, topic)[0] == [float(t) for t in range(100, 130)]  # the owner may wait
+        # The owner loads the stream with its parking, feeds and journals it, purges the parking,
+        # and writes on: begun after the change.
+        io = _io(server, "w-owner-2")
+        try:
+            cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="w-owner-2",
+                              shard=0)
+            r = cs.load([topic])[topic]
+            t = np.arange(100, 140, dtype=float)
+            assert cs.journal([JournalGroup(topic, "g", t, 500.0 + 0.0 * t, t, "brackenfield/+/+/fill")]) == []
+            cs.unpark({topic: r.parked_last})
+        finally:
+            io.close()
+        d.process([_array(topic, 130.0, [500.0] * 10)])
+        assert _counter(d, "shiftwatch_messages_dropped_total", reason="other_shard") == 40
+        assert _counter(d, "shiftwatch_samples_handed_over_total") == 30
+        assert _parked(server, topic) == ([], [], 0)
+    finally:
+        _close(d)
