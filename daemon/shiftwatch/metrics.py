@@ -880,7 +880,8 @@ class Metrics:
         self.samples_handed_over = Counter(
             "shiftwatch_samples_handed_over",
             "Samples of streams that the shard mapping gives another shard, written to their "
-            "stream's journal in the cluster for that shard (they also count in "
+            "stream's journal in the cluster for that shard, or parked for it when the journal "
+            "refused them and the owner may still wait for them (they also count in "
             "shiftwatch_messages_dropped_total{reason=\"other_shard\"}).", registry=reg)
         self.handovers = Counter(
             "shiftwatch_stream_handovers",
