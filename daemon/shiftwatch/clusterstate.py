@@ -163,6 +163,13 @@ class ClusterState:
         #: The mapping record (``partition.Remap``) as the last :meth:`load` read it (None:
         #: none yet, or unreadable): where a stream was before the last change.
         self.remap: Remap | None = None
+        #: What was wrong with the mapping record the last :meth:`note_mapping` found (no
+        #: such record: damaged, or put there by hand) and wrote anew; None: it was sound.
+        self.mapping_damaged: str | None = None
+        #: Per stream whose journal write was refused: the shard (Shiftwatch-Shard) and the
+        #: wall-clock time (Shiftwatch-Written) of the message that ended its journal then
+        #: (None where the header is missing); the daemon takes them out.
+        self.refused_by: dict[str, tuple[int | None, float | None]] = {}
 
     def subject(self, name: str) -> str:
         return f"{self.name}.journal.{stream_key(name)}"
@@ -233,12 +240,7 @@ class ClusterState:
                                 f"end of {self.stream} ({last}); its journal is read from the start")
             after = 0
         r.written_by = headers.get(WRITER)
-        try:
-            r.written_at = float(headers.get(WRITTEN, "nan"))
-        except ValueError:
-            r.written_at = None
-        shard = headers.get(SHARD, "")
-        r.written_shard = int(shard) if shard.isascii() and shard.isdigit() else None
+        r.written_shard, r.written_at = _written(headers)
         if last > after:
             for seq, body in await self.io.messages_after(self.stream, subject, after, last):
                 try:
@@ -306,16 +308,46 @@ class ClusterState:
             return after, None
         return after, f"saved state in {where} has an unusable " + ", ".join(wrong)
 
+    def last_written(self, names: Iterable[str]) -> dict[str, tuple[int | None, float | None]]:
+        """Per stream, the shard and wall-clock time its journal's last message was written
+        by and at (None where a header is missing, or there is no message).  Raises
+        ClusterError."""
+        names = list(names)
+        sem = asyncio.Semaphore(PARALLEL)
+
+        async def one(name: str) -> tuple[str, tuple[int | None, float | None]]:
+            async with sem:
+                _last, headers = await self.io.last_seq(self.stream, self.subject(name))
+                return name, _written(headers)
+
+        async def go() -> dict[str, tuple[int | None, float | None]]:
+            return dict(await asyncio.gather(*(one(n) for n in names)))
+
+        return self.io.run(go(), timeout=self.io.timeout * (1 + len(names) // PARALLEL))
+
+    def read_mapping(self) -> Remap | None:
+        """The mapping record as it stands (None: none, or damaged), kept in :attr:`remap`.
+        Raises ClusterError."""
+        entry = self.io.run(self.io.kv_get(self.bucket, MAPPING_KEY))
+        self.remap = None if entry is None else Remap.decode(entry.value)
+        return self.remap
+
     def note_mapping(self, of: int, levels: tuple[int, ...], *, changed: bool) -> Remap | None:
         """This shard runs the mapping for ``of`` partitions over ``levels`` now (at its
         start, or at a reload that ``changed`` its own): the cluster's mapping record is
         brought up to date (``Remap.taken_up``), with the bucket's revision checked so that
-        shards starting or reloading together keep the one before.  Returns the record as
-        it stands; raises ClusterError."""
+        shards starting or reloading together keep the one before.  A record that is no
+        such record is written anew and said in :attr:`mapping_damaged`.  Returns the record
+        as it stands; raises ClusterError."""
+        self.mapping_damaged = None
+
         async def go() -> Remap | None:
             for _attempt in range(5):
                 entry = await self.io.kv_get(self.bucket, MAPPING_KEY)
                 cur = None if entry is None else Remap.decode(entry.value)
+                if entry is not None and cur is None:
+                    self.mapping_damaged = (f"bucket {self.bucket} key {MAPPING_KEY} revision {entry.revision} "
+                                            "is no mapping record (damaged, or put there by hand)")
                 now = time.time()
                 new = Remap(of, tuple(levels), None, None, now) if cur is None \
                     else cur.taken_up(of, tuple(levels), now, changed=changed)
@@ -382,7 +414,9 @@ class ClusterState:
         """A round's journal messages, sent while the round is still being fed
         (:meth:`JournalRound.add` as each stream's group is ready, then
         :meth:`JournalRound.wait`): the cluster stores the first streams' samples
-        while the engines take the next ones, instead of after the whole round."""
+        while the engines take the next ones, instead of after the whole round.  Clears
+        :attr:`refused_by` (it speaks of the last round's refusals only)."""
+        self.refused_by.clear()
         return JournalRound(self)
 
 
@@ -563,6 +597,7 @@ class JournalRound:
                         return g, at
                     if at and WRITER not in hdrs:
                         cs.unsigned[g.stream] = at
+                    cs.refused_by[g.stream] = _written(hdrs)
                     return g, None
                 return g, seq
 
@@ -598,3 +633,14 @@ class JournalRound:
             else:
                 self.cs.seq[g.stream] = seq
         return refused
+
+
+def _written(headers: Mapping[str, str]) -> tuple[int | None, float | None]:
+    """The shard number and the wall-clock time a journal message's headers give (None
+    for one missing or unreadable)."""
+    shard = headers.get(SHARD, "")
+    try:
+        at: float | None = float(headers.get(WRITTEN, "nan"))
+    except ValueError:
+        at = None
+    return (int(shard) if shard.isascii() and shard.isdigit() else None), at

@@ -711,7 +711,7 @@ class Daemon:
                     # samples of it that the mapping sent it before (a shard still waiting
                     # after resuming its session, or frozen).  Asked too: begun at once, the
                     # stream would refuse those samples when they reach the journal.
-                    ask = self._moved_from(topic, now)
+                    ask = self._moved_from(topic, now, r.written_at)
                 if ask is not None and ho is not None and topic is not None:
                     ho.ask(name, ask, topic)
                     self._deferred[name] = now + ho.wait
@@ -781,15 +781,20 @@ class Daemon:
         if parked_last:
             self._journal_unparked(unparked, parked_last, now)
 
-    def _moved_from(self, topic: str | None, now: float) -> int | None:
+    def _moved_from(self, topic: str | None, now: float, written: float | None) -> int | None:
         """The shard that the mapping before the last change gave ``topic``, while that
-        change is younger than cluster.handover_wait and that shard is another one (it
+        change is younger than cluster.handover_wait, the stream's journal (last written
+        at ``written``) has not been written since, and that shard is another one (it
         can be asked); None otherwise.  From the cluster's mapping record, which every
-        shard brings up to date at its start and at a reload (see _note_mapping)."""
+        shard brings up to date at its start and at a reload (see _note_mapping).  A
+        stream written since the change was taken up under the new mapping: by an earlier
+        run of this shard (a restart), which waits cluster.redelivery_wait instead; until
+        2026-12-04 it asked the old owner again, and waited the whole handover_wait when
+        that shard was gone (4 to 3)."""
         ho, remap = self.handover, self.cluster.remap if self.cluster is not None else None
         if ho is None or remap is None or topic is None or self.owner is None:
             return None
-        k = remap.moved_from(topic, self.owner.number, now=now, wait=ho.wait)
+        k = remap.moved_from(topic, self.owner.number, now=now, wait=ho.wait, written=written)
         return k if ho.can_ask(k) else None
 
     def _note_mapping(self, *, changed: bool) -> None:
@@ -804,6 +809,12 @@ class Daemon:
         except ClusterError as exc:
             self.log.warning("the mapping record in the cluster not brought up to date (%s): streams "
                              "that no shard wrote lately begin at once if they moved here", exc)
+        if self.cluster.mapping_damaged is not None:
+            # Written anew from this shard's mapping: the one before it is not known, so
+            # streams that no shard wrote lately begin at once if they moved here.
+            self.metrics.states_set_aside.inc()
+            self.log.warning("%s: set aside and written anew with this shard's mapping (shard.of %d); "
+                             "the mapping before is not known", self.cluster.mapping_damaged, self.owner.of)
 
     def _unpark(self, name: str, spec: StreamConfig, unit: str | None, parked: list[JournalGroup],
                 now: float) -> JournalGroup | None:
@@ -946,7 +957,8 @@ class Daemon:
         had: NATS may have held all of an old owner's deliveries back): its owner
         loads them with the snapshot.  When the journal refuses them (the stream was
         written since this daemon knew it), and for a stream whose samples this daemon
-        parked before, they are parked (ClusterState.park): an owner that is still
+        parked before, they are parked (ClusterState.park), unless the owner wrote the
+        stream since the last change of the mapping (_owners_began: set aside): an owner that is still
         waiting for this shard's answer (it asks the shard that wrote the stream last,
         or that the mapping before the last change gave it) feeds them with its own
         parked samples in time order; one that has begun sets them aside at its next
@@ -979,17 +991,35 @@ class Daemon:
                     # Refused: the owner wrote the stream after this shard last knew it.
                     # Until 2026-12-04 they were set aside, and an owner that took a stream
                     # back (two changes in a row) lost what the mapping between had sent a
-                    # shard that was frozen meanwhile.
-                    if refused or behind:
-                        self.cluster.park([*refused, *behind])
-                        self._parked_here.update(g.stream for g in (*refused, *behind))
+                    # shard that was frozen meanwhile: parked now, unless the owner wrote
+                    # the stream since the last change (it has begun, and reads the parking
+                    # only at its next load, which may never come: set aside, counted now).
+                    # So too for those parked behind earlier ones: once the owner has read
+                    # the parking and written on, nothing reads them but a later load.
+                    by = {g.stream: self.cluster.refused_by.pop(g.stream, (None, None)) for g in refused}
+                    if behind:
+                        by.update(self.cluster.last_written({g.stream for g in behind}))
+                    begun = self._owners_began(by)
+                    set_aside = [g for g in (*refused, *behind) if g.stream in begun]
+                    parked = [g for g in (*refused, *behind) if g.stream not in begun]
+                    self._parked_here.difference_update(begun)
+                    if parked:
+                        self.cluster.park(parked)
+                        self._parked_here.update(g.stream for g in parked)
                 except ClusterError as exc:
                     self.metrics.journal_failures.inc()
                     self.rlog.warning("cluster_journal", f"samples of another shard's streams not "
                                       f"written to their journal ({exc}); the round is held and "
                                       "tried again", now)
                     return False
-                handed = sum(len(g.values) for g in (*out, *behind))
+                no = {id(g) for g in refused}
+                handed = sum(len(g.values) for g in (*(g for g in out if id(g) not in no), *parked))
+                if set_aside:
+                    self.rlog.warning("other_shard_late", lambda: (
+                        f"{sum(len(g.values) for g in set_aside)} sample(s) of {len(set_aside)} stream(s) "
+                        f"of other shards (e.g. {_printable(set_aside[0].stream)}) set aside: their "
+                        "owner has written them since the last change of shard.of, after these were "
+                        "sent here"), now)
         self._count_drop("other_shard", n)
         if handed:
             self.metrics.samples_handed_over.inc(handed)
@@ -1006,6 +1036,28 @@ class Daemon:
 
                 self.rlog.warning("other_shard", text, now, extra={"stream": name})
         return True
+
+    def _owners_began(self, by: dict[str, tuple[int | None, float | None]]) -> set[str]:
+        """Of another shard's streams, with the shard and time of their journal's last
+        message (the one that refused this shard's write), those whose owner (by this
+        shard's mapping) wrote it at or after the last change of the mapping (the mapping
+        record, read again: a change may have come since this shard last read it): that
+        owner has begun the stream.  One that wrote it before the change may be waiting
+        for this shard's answer (it took the stream back), and one whose message does not
+        say (no headers, no record) is taken to wait.  Raises ClusterError."""
+        assert self.cluster is not None and self.owner is not None
+        if not by:
+            return set()
+        remap = self.cluster.read_mapping()
+        if remap is None:
+            return set()
+        out = set()
+        for name, (shard, at) in by.items():
+            topic = self._topic_of.get(name)
+            if (shard is not None and at is not None and topic is not None
+                    and shard == self.owner.partition(topic) and at >= remap.since):
+                out.add(name)
+        return out
 
     def _let_go(self, names: list[str], *, save: bool = True) -> None:
         """Streams this shard no longer owns: their state saved (state in the cluster),

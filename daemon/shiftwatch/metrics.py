@@ -809,7 +809,8 @@ class Metrics:
     outbox_failures : alert records or outbox updates that could not be written to disk.
     journal_failures : rounds of samples that could not be appended to the journal.
     states_set_aside : saved stream states that could not be used at start, and (state in the
-        cluster) stream loads that found a damaged part and snapshot entries written anew.
+        cluster) stream loads that found a damaged part, snapshot entries and the mapping
+        record written anew.
     journal_damaged : sample journals found deleted, replaced or damaged.
     client_id_conflicts : takeovers of the MQTT session by another client with our client id.
     samples_handed_over : samples of another shard's streams written to their journal for it.
@@ -879,7 +880,8 @@ class Metrics:
         self.samples_handed_over = Counter(
             "shiftwatch_samples_handed_over",
             "Samples of streams that the shard mapping gives another shard, written to their "
-            "stream's journal in the cluster for that shard (they also count in "
+            "stream's journal in the cluster for that shard, or parked for it when the journal "
+            "refused them and the owner may still wait for them (they also count in "
             "shiftwatch_messages_dropped_total{reason=\"other_shard\"}).", registry=reg)
         self.handovers = Counter(
             "shiftwatch_stream_handovers",
@@ -897,7 +899,8 @@ class Metrics:
             "Saved stream states that could not be used at start (malformed or damaged); "
             "those streams warmed up again. With state in the cluster also each stream load "
             "that found a damaged part (of its snapshot entry, journal or parked samples; that "
-            "part alone was set aside) and each snapshot entry found damaged and written anew.",
+            "part alone was set aside), each snapshot entry found damaged and written anew, "
+            "and a mapping record found damaged and written anew at a shard's start or reload.",
             registry=reg)
         #: The operator's label of a stream (the daemon sets it; shown in
         #: ``shiftwatch_stream_display_info``).  Called from the render thread.

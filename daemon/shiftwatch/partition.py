@@ -35,6 +35,9 @@ FNV32_PRIME = 0x01000193
 CACHE_TOPICS = 100_000
 #: Streams whose first sample from another shard's partition is logged (then no more lines).
 LOGGED_STREAMS = 10_000
+#: A mapping record's time further ahead of a shard's clock than this (seconds) is taken
+#: for a clock error when the shard takes the mapping up again (``Remap.taken_up``).
+CLOCK_AHEAD = 60.0
 
 
 def fnv1a_32(data: bytes) -> int:
@@ -135,6 +138,14 @@ class Remap:
     (1, None)
     >>> r.moved_from(topic, 2, now=170.0, wait=60.0) is None  # the change is too old
     True
+    >>> r.moved_from(topic, 2, now=130.0, wait=60.0, written=90.0)  # last written before it
+    1
+    >>> r.moved_from(topic, 2, now=130.0, wait=60.0, written=110.0) is None  # taken up since
+    True
+    >>> r.moved_from(topic, 2, now=90.0, wait=60.0)  # written by a clock 10 s ahead
+    1
+    >>> r.moved_from(topic, 2, now=30.0, wait=60.0) is None  # 70 s ahead: a clock error
+    True
     >>> Remap.decode(r.encode()) == r
     True
     >>> Remap(3, (2, 3, 4), None, None, 5.0).moved_from(topic, 2, now=6.0, wait=60.0) is None
@@ -147,10 +158,17 @@ class Remap:
     previous_levels: tuple[int, ...] | None
     since: float
 
-    def moved_from(self, topic: str, number: int, *, now: float, wait: float) -> int | None:
+    def moved_from(self, topic: str, number: int, *, now: float, wait: float,
+                   written: float | None = None) -> int | None:
         """The shard the mapping before gave ``topic``, when it is not ``number`` and the
-        change is less than ``wait`` seconds old; otherwise None."""
-        if self.previous_of is None or self.previous_levels is None or not now - self.since < wait:
+        change is less than ``wait`` seconds old; otherwise None.  ``written``: when the
+        stream's journal was last written (None: never); written since the change, the
+        stream has been taken up under the new mapping already (its handover is done), so
+        None too.  A change more than ``wait`` ahead of ``now`` is a clock that is ahead
+        (``since`` is the wall clock of the box that wrote the record): not a young change."""
+        if self.previous_of is None or self.previous_levels is None or not -wait < now - self.since < wait:
+            return None
+        if written is not None and written >= self.since:
             return None
         k = partition_of(topic, self.previous_levels, self.previous_of)
         return None if k is None or k == number else k
@@ -191,5 +209,7 @@ class Remap:
         if (of, levels) != (self.of, self.levels):
             return Remap(of, levels, self.of, self.levels, now)
         if changed:  # the latest old shard's reload: the streams move from about now on
-            return Remap(of, levels, self.previous_of, self.previous_levels, max(now, self.since))
+            # (a time far ahead of this clock is another box's clock error: not kept)
+            since = max(now, self.since) if self.since - now < CLOCK_AHEAD else now
+            return Remap(of, levels, self.previous_of, self.previous_levels, since)
         return None

@@ -31,7 +31,7 @@ import numpy as np
 import pytest
 
 from shiftwatch.broker import wait_until
-from shiftwatch.clusterstate import ClusterState
+from shiftwatch.clusterstate import MAPPING_KEY, ClusterState
 from shiftwatch.config import load_config
 from shiftwatch.daemon import Daemon
 from shiftwatch.handover import MAGIC
@@ -39,7 +39,7 @@ from shiftwatch.journal import JournalGroup
 from shiftwatch.metrics import Metrics
 from shiftwatch.mqtt import Message
 from shiftwatch.natsio import NatsIO
-from shiftwatch.partition import partition_of
+from shiftwatch.partition import Remap, partition_of
 
 from .natskit import connects, start_lone_server
 
@@ -535,5 +535,169 @@ def test_a_stream_nobody_wrote_waits_for_the_shard_the_mapping_before_gave_it(
         time.sleep(2.1)  # the change is older than cluster.handover_wait now
         d.process([_array(later, 0.0, [500.0] * 20)])
         assert later in d.engines and later not in d._deferred
+    finally:
+        _close(d)
+
+
+def test_a_damaged_mapping_record_is_written_anew_named_and_counted(tmp_path: Path, server: int) -> None:
+    # The mapping record (key ``mapping`` of the state bucket) holds something that is no
+    # such record (put there by hand, or damaged).  The shard's start wrote it anew without
+    # a word: bad input neither said nor counted, and the mapping before (which a new owner
+    # asks by) silently lost.  Now that is logged, naming the bucket, key and revision, and
+    # counted (states_set_aside), once.
+    io = _io(server, "hand")
+    try:
+        cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="hand")
+        cs.setup()
+        io.run(io.kv_put(cs.bucket, MAPPING_KEY, b"{\"format\": \"shiftwatch-mapping\", \"of\": -3"))
+    finally:
+        io.close()
+    d = _daemon(tmp_path, server, "after-hand")
+    try:
+        d._note_mapping(changed=False)
+        assert d.cluster.remap is not None and (d.cluster.remap.of, d.cluster.remap.previous_of) == (2, None)
+        assert _counter(d, "shiftwatch_stream_states_set_aside_total") == 1
+        stored = d.nats.run(d.nats.kv_get(d.cluster.bucket, MAPPING_KEY))
+        assert stored is not None and Remap.decode(stored.value) == d.cluster.remap
+        d._note_mapping(changed=False)  # sound now: nothing more to say or count
+        assert _counter(d, "shiftwatch_stream_states_set_aside_total") == 1
+    finally:
+        _close(d)
+
+
+def _journal_as_shard(port: int, writer: str, shard: int, topic: str, t: np.ndarray) -> None:
+    """Shard ``shard``, as daemon ``writer``, writes samples at times ``t`` to the stream's journal."""
+    io = _io(port, writer)
+    try:
+        cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer=writer,
+                          shard=shard)
+        cs.setup()
+        cs.load([topic])
+        assert cs.journal([JournalGroup(topic, "g", t, 500.0 + 0.0 * t, t, "brackenfield/+/+/fill")]) == []
+    finally:
+        io.close()
+
+
+def test_a_stream_this_shard_wrote_after_the_change_is_not_asked_of_its_owner_before(
+        tmp_path: Path, server: int) -> None:
+    # The number of shards went from 3 to 2 moments ago, and an earlier run of this shard
+    # (shard 1) has already loaded and written a stream that moved here, after the change:
+    # its handover is done.  Restarted, the shard used to ask the shard the mapping for 3
+    # gave the stream all the same (the record said the change was young), and wait for its
+    # answer: up to the whole cluster.handover_wait when that shard is gone (4 to 3).  Now
+    # a stream written since the change waits cluster.redelivery_wait from that write, as
+    # the README says of a restart.
+    moved = next(t for t in _owned_by_1_of_2(16) if partition_of(t, LEVELS, 3) not in (1, None))
+    io = _io(server, "before")
+    try:
+        cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="w-before",
+                          shard=0)
+        cs.setup()
+        cs.note_mapping(3, LEVELS, changed=False)
+        cs.note_mapping(2, LEVELS, changed=True)
+    finally:
+        io.close()
+    _journal_as_shard(server, "w-earlier-run", 1, moved, np.arange(20, dtype=float))
+    d = _daemon(tmp_path, server, "restarted", handover_wait=30.0)
+    try:
+        d._note_mapping(changed=False)
+        assert d.cluster.remap is not None and (d.cluster.remap.of, d.cluster.remap.previous_of) == (2, 3)
+        d.process([_array(moved, 20.0, [500.0] * 10)])
+        assert moved not in d.handover.waiting
+        assert moved in d._deferred and d._deferred[moved] < time.time() + 1.5  # redelivery_wait: 1 s
+    finally:
+        _close(d)
+
+
+def test_late_samples_refused_by_an_owner_that_began_after_the_change_are_set_aside_at_once(
+        tmp_path: Path, server: int) -> None:
+    # This shard went from 2 partitions to 3; the stream's owner under 3 (shard 0) has
+    # loaded it and written it since that change: it has begun and reads the stream's
+    # parking only at its next load (a restart, a later move), which may never come within
+    # the parking's 7 days.  Samples of it that still reach this shard are refused by the
+    # journal.  They used to be parked all the same, neither fed nor counted as lost, and
+    # the parking grew.  Now they are set aside at once (other_shard, not handed over), as
+    # before the parking of refused samples; refused by an owner that wrote the stream
+    # before the change (it may be waiting for this shard's answer), they are still parked
+    # (test_samples_of_another_shard_s_stream_refused_by_its_journal_are_parked_for_its_owner).
+    topic = next(t for t in _owned_by_1_of_2(16) if partition_of(t, LEVELS, 3) == 0)
+    d = _daemon(tmp_path, server, "not-mine-any-more")
+    try:
+        moved_on = tmp_path / "not-mine-any-more-of-3.yaml"
+        moved_on.write_text((tmp_path / "not-mine-any-more.yaml").read_text().replace("of: 2", "of: 3"))
+        d._set_shard(load_config(str(moved_on)))
+        time.sleep(0.05)  # the owner's write comes after the change (times kept to the ms)
+        _journal_as_shard(server, "w-owner", 0, topic, np.arange(100, dtype=float))
+        d.process([_array(topic, 100.0, [500.0] * 30)])
+        assert _counter(d, "shiftwatch_messages_dropped_total", reason="other_shard") == 30
+        assert _counter(d, "shiftwatch_samples_handed_over_total") == 0
+        assert _journaled(server, topic) == [float(i) for i in range(100)]
+        assert _parked(server, topic) == ([], [], 0)
+        assert topic not in d._parked_here
+    finally:
+        _close(d)
+
+
+def test_a_mapping_record_from_a_clock_far_ahead_does_not_hold_new_streams(tmp_path: Path, server: int) -> None:
+    # The mapping record's time is the wall clock of the shard that wrote it last.  One
+    # written by a box whose clock is an hour ahead read as a change less than
+    # cluster.handover_wait old for that whole hour: every stream that moved (each loaded
+    # at any shard's restart, say) waited for the shard the mapping before gave it, the
+    # whole wait when that shard was gone; and a reload kept the time (the latest of the
+    # two).  A change more than cluster.handover_wait ahead of this box's clock is taken
+    # for a clock error now: not a young change.
+    moved = next(t for t in _owned_by_1_of_2(16) if partition_of(t, LEVELS, 3) not in (1, None))
+    ahead = Remap(2, LEVELS, 3, LEVELS, time.time() + 3600.0)
+    io = _io(server, "ahead")
+    try:
+        cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="ahead")
+        cs.setup()
+        io.run(io.kv_put(cs.bucket, MAPPING_KEY, ahead.encode()))
+    finally:
+        io.close()
+    d = _daemon(tmp_path, server, "on-time", handover_wait=30.0)
+    try:
+        d.process([_array(moved, 0.0, [500.0] * 20)])
+        assert d.cluster.remap == ahead
+        assert moved in d.engines and moved not in d._deferred and moved not in d.handover.waiting
+        now = time.time()
+        retaken = ahead.taken_up(2, LEVELS, now, changed=True)
+        assert retaken is not None and retaken.since == now  # not the hour ahead
+    finally:
+        _close(d)
+
+
+def test_late_samples_parked_behind_are_set_aside_once_the_owner_has_begun(tmp_path: Path, server: int) -> None:
+    # This shard parked late samples of a stream whose owner wrote it before the change
+    # (it may be waiting for this shard's answer); what still came of the stream was parked
+    # behind them without a look at the journal.  Once the owner has loaded the stream (its
+    # parking read and purged) and written it, such samples were parked where nothing would
+    # read them but a later load.  Now, as for a refused write, they are set aside at once.
+    topic = next(t for t in _owned_by_1_of_2(16) if partition_of(t, LEVELS, 3) == 0)
+    _journal_as_shard(server, "w-owner", 0, topic, np.arange(100, dtype=float))  # before the change
+    time.sleep(0.05)
+    d = _daemon(tmp_path, server, "late-again")
+    try:
+        moved_on = tmp_path / "late-again-of-3.yaml"
+        moved_on.write_text((tmp_path / "late-again.yaml").read_text().replace("of: 2", "of: 3"))
+        d._set_shard(load_config(str(moved_on)))
+        d.process([_array(topic, 100.0, [500.0] * 30)])
+        assert _parked(server, topic)[0] == [float(t) for t in range(100, 130)]  # the owner may wait
+        # The owner loads the stream with its parking, feeds and journals it, purges the parking,
+        # and writes on: begun after the change.
+        io = _io(server, "w-owner-2")
+        try:
+            cs = ClusterState(io, name=NAME, replicas=1, logger=logging.getLogger("test"), writer="w-owner-2",
+                              shard=0)
+            r = cs.load([topic])[topic]
+            t = np.arange(100, 140, dtype=float)
+            assert cs.journal([JournalGroup(topic, "g", t, 500.0 + 0.0 * t, t, "brackenfield/+/+/fill")]) == []
+            cs.unpark({topic: r.parked_last})
+        finally:
+            io.close()
+        d.process([_array(topic, 130.0, [500.0] * 10)])
+        assert _counter(d, "shiftwatch_messages_dropped_total", reason="other_shard") == 40
+        assert _counter(d, "shiftwatch_samples_handed_over_total") == 30
+        assert _parked(server, topic) == ([], [], 0)
     finally:
         _close(d)
