@@ -21,7 +21,9 @@ import socket
 import subprocess
 import tempfile
 import time
+from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 from shiftwatch.broker import find_program, hold, port_open, wait_until
 
@@ -284,3 +286,15 @@ class NatsCluster:
     def __exit__(self, *exc: object) -> None:
         self.stop()
 
+
+def module_cluster(tmp_path_factory: Any) -> Iterator[NatsCluster]:
+    """A module's own 3-server cluster with 3 replicas (a fixture's body: ``yield from``); the
+    test fails when it cannot be started (CI never skips)."""
+    import pytest
+
+    try:
+        c = NatsCluster(3, 3, base=tmp_path_factory.mktemp("nats")).start()
+    except RuntimeError as exc:
+        pytest.fail(f"cannot start the test NATS cluster: {exc}")
+    yield c
+    c.stop()

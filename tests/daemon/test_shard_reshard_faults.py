@@ -34,7 +34,7 @@ from shiftwatch.broker import hold
 from shiftwatch.partition import partition_of
 
 from .killrun import metric, scrape
-from .natskit import NatsCluster
+from .natskit import NatsCluster, module_cluster
 from .shardrun import HASHED_LEVELS, Plan, ShardRun
 
 CMD = [sys.executable, "-m", "shiftwatch"]
@@ -42,12 +42,7 @@ CMD = [sys.executable, "-m", "shiftwatch"]
 
 @pytest.fixture(scope="module")
 def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[NatsCluster]:
-    try:
-        c = NatsCluster(3, 3, base=tmp_path_factory.mktemp("nats")).start()
-    except RuntimeError as exc:
-        pytest.fail(f"cannot start the test NATS cluster: {exc}")
-    yield c
-    c.stop()
+    yield from module_cluster(tmp_path_factory)
 
 
 def test_a_reshard_during_an_old_shard_s_wait_loses_none_of_its_unwritten_streams(

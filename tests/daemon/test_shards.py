@@ -48,7 +48,7 @@ from shiftwatch.natsio import NatsIO
 from shiftwatch.partition import fnv1a_32, partition_of
 
 from .killrun import metric, scrape
-from .natskit import NatsCluster
+from .natskit import NatsCluster, module_cluster
 from .shardrun import HASHED_LEVELS, Plan, ShardRun, Tally
 
 CMD = [sys.executable, "-m", "shiftwatch"]
@@ -56,12 +56,7 @@ CMD = [sys.executable, "-m", "shiftwatch"]
 
 @pytest.fixture(scope="module")
 def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[NatsCluster]:
-    try:
-        c = NatsCluster(3, 3, base=tmp_path_factory.mktemp("nats")).start()
-    except RuntimeError as exc:
-        pytest.fail(f"cannot start the test NATS cluster: {exc}")
-    yield c
-    c.stop()
+    yield from module_cluster(tmp_path_factory)
 
 
 def _run(tmp_path: Path, cluster: NatsCluster, name: str, plan: Plan, keepalive: int = 5) -> ShardRun:
