@@ -43,7 +43,7 @@ from typing import Any, BinaryIO, Self
 import numpy as np
 from numpy.typing import NDArray
 
-from shiftwatch.decode import EPOCH_MS_ABOVE
+from shiftwatch.decode import _NONFINITE, _NUMBER, EPOCH_MS_ABOVE
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -218,6 +218,29 @@ _EPOCH_HINT = ("(shiftwatch reads epoch seconds, and epoch milliseconds above 10
                "microseconds or nanoseconds first)")
 
 
+def number(text: str) -> float:
+    """The number a CSV value or epoch time is written as; ValueError for text that is none.
+
+    A number is what the daemon's ``number`` decoder takes as one (the grammar of
+    :data:`shiftwatch.decode._NUMBER`: ``[+-]digits[.digits][e[+-]digits]``, ASCII digits, and
+    ``nan``, ``inf``, ``infinity`` in any case, which the engine then sets aside), with
+    whitespace around it.  ``float()`` takes more: digit separators (``1_000``, PEP 515) and
+    digits of other scripts, which pandas and pyarrow refuse in a CSV as the daemon does in a
+    payload; replay read them as numbers.
+
+    >>> number(" 499.5 "), number("1e3"), number("-Infinity")
+    (499.5, 1000.0, -inf)
+    >>> number("1_000")
+    Traceback (most recent call last):
+    ...
+    ValueError: not a number: '1_000'
+    """
+    s = text.strip()
+    if _NUMBER.fullmatch(s) is None and _NONFINITE.fullmatch(s) is None:
+        raise ValueError(f"not a number: {text!r}")
+    return float(s)
+
+
 def _out_of_range(t: float) -> str | None:
     """What is wrong with a time no record can be written at, or None for a time in range."""
     if t > TIME_MAX:
@@ -272,7 +295,7 @@ def parse_time(text: str, tz: tzinfo | None = None) -> float:
                 raise TimeTextError(f"does not exist in {tz} (the clocks were put forward)")
         t = dt.timestamp() + leap
     else:
-        v = float(s)
+        v = number(s)
         if not math.isfinite(v):
             raise ValueError("not finite")
         t = v / 1000.0 if v > EPOCH_MS_ABOVE else v
@@ -806,7 +829,7 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
                     last_text = text
             if ok and long:
                 try:
-                    v = float(row[src.value_col])
+                    v = number(row[src.value_col])
                 except ValueError:
                     problems.append(f"{name}:{line}: value {row[src.value_col]!r} is not a number")
                 else:
@@ -833,7 +856,7 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
                     if not cell or not cell.strip():
                         continue
                     try:
-                        v = float(cell)
+                        v = number(cell)
                     except ValueError:
                         problems.append(f"{name}:{line}: {tag}: value {cell!r} is not a number")
                         continue
@@ -1205,7 +1228,7 @@ def _read_fast(src: Source, buf: bytearray, begin: int, end: int, line0: int, fb
         vi = src.value_col
         values, plain = _parse_decimal_column(body, vi)
         if not bool(plain.all()):
-            values[~plain] = [float(body.text(i, vi)) for i in np.flatnonzero(~plain).tolist()]
+            values[~plain] = [number(body.text(i, vi)) for i in np.flatnonzero(~plain).tolist()]
     except (ValueError, OverflowError, UnicodeDecodeError):
         return None
     if src.stream is not None:
@@ -1245,7 +1268,7 @@ def _wide_parts(src: Source, body: _Body, times: FloatArray,
     other = ~plain & ~empty
     if bool(other.any()):
         b = body.buf
-        values[other] = [float(b[s[i]:e[i]].decode()) for i in np.flatnonzero(other).tolist()]
+        values[other] = [number(b[s[i]:e[i]].decode()) for i in np.flatnonzero(other).tolist()]
     m = len(cols)
     v = values.reshape(-1, m)
     present = ~empty.reshape(-1, m)
