@@ -212,7 +212,9 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
         return EXIT_USAGE
     try:
         in_tz = time_zone(args.timezone)  # the zone of input times without an offset
-        sources = open_sources(args.csv, args.layout)
+        # A file of a directory that cannot be read is named and left out; one named itself is refused.
+        unread: list[str] = []
+        sources = open_sources(args.csv, args.layout, unread)
     except CsvFormatError as exc:
         _err(str(exc))
         return EXIT_USAGE
@@ -252,7 +254,7 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
     try:
         result = replay_files(args.csv, settings_for, unit_for, jobs=jobs, timezone=in_tz, sources=sources,
                               trace_options=None if report is None else report.trace_options,
-                              progress=bar and bar.update)
+                              progress=bar and bar.update, unread_files=unread)
     except (CsvFormatError, ReplayProcessError) as exc:
         if bar is not None:
             bar.close()
@@ -433,6 +435,8 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
     from shiftwatch.replay import KEEP_PROBLEMS
 
     problem_count = result.problem_count
+    for msg in result.unread_files:  # every one: a whole file's rows were left out
+        print(f"{msg}; the file was skipped, the other files were replayed", file=sys.stderr)
     _print_problems(result.problems, KEEP_PROBLEMS, problem_count)
     streams = result.streams
     phases: dict[str, int] = {}
@@ -453,6 +457,8 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
         summary += f"; {skipped} unreadable row(s) or cell(s) skipped"
     if result.file_notes:
         summary += f"; {result.file_notes} file(s) not valid UTF-8 (characters replaced)"
+    if result.unread_files:
+        summary += f"; {len(result.unread_files)} file(s) could not be read and were skipped"
     if result.repeated_hour:
         summary += (f"; {result.repeated_hour} time(s) in the hour repeated when the clocks went back "
                     f"in {args.timezone} read as its second occurrence (their stream's times went back "
@@ -468,7 +474,7 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
                 samples={name: o.samples_total for name, o in streams.items()},
                 rejected={name: dict(o.rejected_total) for name, o in streams.items()},
                 units={name: unit_for(name) for name in streams}, labels=labels, time_zone=tz,
-                sources=[s.path for s in sources], unreadable_rows=skipped,
+                sources=[s.path for s in sources], unreadable_rows=skipped, unread_files=result.unread_files,
                 settings_note=("default detection settings" if args.config is None
                                else f"detection settings from {args.config}"),
                 progress=bar and bar.update)
@@ -483,7 +489,7 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
             print(f"report: charts for {charted:,} of {total:,} streams (those with events first; "
                   f"--report-charts N to change); every stream is in its tables", file=sys.stderr)
         print(f"report written to {path}", file=sys.stderr)
-    return EXIT_BAD_DATA if problem_count else EXIT_OK
+    return EXIT_BAD_DATA if problem_count or result.unread_files else EXIT_OK
 
 
 # -------------------------------------------------------------------- fit

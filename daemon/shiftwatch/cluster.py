@@ -34,7 +34,13 @@ from typing import Any
 
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.replay import KEEP_PROBLEMS, ReplayResult, _record_key, replay_files
-from shiftwatch.sources import CsvFormatError, _partition_stream, _path_order, expand_paths
+from shiftwatch.sources import (
+    CsvFormatError,
+    _partition_stream,
+    _path_order,
+    expand_paths,
+    open_found,
+)
 
 
 class ClusterError(RuntimeError):
@@ -86,12 +92,17 @@ def _replay_partition(files: list[str], cwd: str, settings_for: Callable[[str], 
     file it names (so problems can be put in the order of one process)."""
     opened = [os.path.join(cwd, f) for f in files]
     try:
+        # the files were found in the dataset's directory: one that cannot be read is named and
+        # left out, as replay_files leaves it out in one process
+        unread: list[str] = []
+        sources = open_found(opened, layout, unread)
         res = replay_files(opened, settings_for, unit_for, jobs=1, layout=layout, timezone=timezone,
-                           trace_options=trace_options)
+                           trace_options=trace_options, sources=sources, unread_files=unread)
     except CsvFormatError as exc:
         raise CsvFormatError(_as_given(str(exc), opened, files)) from None
     if opened != files:
         res.read_problems = [_as_given(p, opened, files) for p in res.read_problems]
+        res.unread_files = [_as_given(p, opened, files) for p in res.unread_files]
         for outcome in res.streams.values():
             outcome.problems = [_as_given(p, opened, files) for p in outcome.problems]
     return res, [_file_of(p, files) for p in res.read_problems]
@@ -116,7 +127,8 @@ def merge_results(parts: list[ReplayResult], places: list[list[int]] | None = No
     read_problems = [x[3] for x in keyed][:KEEP_PROBLEMS]
     return ReplayResult(records, streams, sum(p.rows for p in parts), read_problems,
                         sum(p.read_problem_count for p in parts), sum(p.file_notes for p in parts),
-                        sum(p.repeated_hour for p in parts))
+                        sum(p.repeated_hour for p in parts), [u for p in parts for u in p.unread_files],
+                        sum(p.files_read for p in parts))
 
 
 def _check_scheduler(address: str, timeout: float) -> None:
@@ -227,9 +239,10 @@ def replay_on_dask(root: str | Path, client: Any, settings_for: Callable[[str], 
         (the functions are sent to the workers, so they must pickle with cloudpickle).
 
     Returns the :class:`~shiftwatch.replay.ReplayResult` of
-    ``replay_files(files)`` in one process.  Raises
-    :class:`~shiftwatch.sources.CsvFormatError` for a file that cannot be
-    read (checked on the workers) and :class:`ClusterError` when dask is
+    ``replay_files(files)`` in one process: a file that cannot be read is named in its
+    ``unread_files`` and the others are replayed.  Raises
+    :class:`~shiftwatch.sources.CsvFormatError` when no file can be read (checked on the
+    workers) and :class:`ClusterError` when dask is
     missing, the address is malformed or no scheduler answers there, a stream is in two
     partitions, or a task failed (named by its partition).
     """
@@ -260,9 +273,18 @@ def replay_on_dask(root: str | Path, client: Any, settings_for: Callable[[str], 
                              unit_for=unit_for, layout=layout, timezone=timezone, trace_options=trace_options,
                              pure=False)
         done = _gather(client, futures, partitions)
-        return merge_results([r for r, _ in done],
-                             [[order[part[k]] if k >= 0 else -1 for k in keys]
-                              for part, (_, keys) in zip(partitions, done)])
+        merged = merge_results([r for r, _ in done],
+                               [[order[part[k]] if k >= 0 else -1 for k in keys]
+                                for part, (_, keys) in zip(partitions, done)])
+        # the files not read in the order one process names them
+        merged.unread_files = [u for _, u in sorted(
+            (order.get(part[k], -1) if k >= 0 else -1, u)
+            for part, (r, _) in zip(partitions, done) for u in r.unread_files for k in [_file_of(u, part)])]
+        if not merged.files_read:  # as open_sources refuses in one process
+            unread = merged.unread_files
+            raise CsvFormatError(unread[0] if len(unread) == 1 else
+                                 f"none of the {len(unread)} files could be read; the first: {unread[0]}")
+        return merged
     except BaseException:
         if futures:
             client.cancel(futures)  # nothing left running for a replay that stopped

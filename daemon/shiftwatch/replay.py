@@ -120,6 +120,11 @@ class ReplayResult:
     #: Times without an offset read as the second occurrence of the hour repeated when the
     #: clocks went back (:class:`shiftwatch.sources.RepeatedHour`).
     repeated_hour: int = 0
+    #: Files found in a directory that could not be read, each its problem (in file order);
+    #: the others were replayed.
+    unread_files: list[str] = field(default_factory=list)
+    #: Files replayed.
+    files_read: int = 0
 
     @property
     def problems(self) -> list[str]:
@@ -305,7 +310,8 @@ def replay_files(paths: Iterable[str | Path], settings_for: Callable[[str], Dete
                  layout: str = "auto", timezone: str | tzinfo | None = None,
                  trace_options: dict[str, int] | None = None,
                  progress: Callable[[int], None] | None = None,
-                 chunk_bytes: int = CHUNK_BYTES, sources: list[Source] | None = None) -> ReplayResult:
+                 chunk_bytes: int = CHUNK_BYTES, sources: list[Source] | None = None,
+                 unread_files: Iterable[str] = ()) -> ReplayResult:
     """Replay files (long or wide CSV, Parquet, directories of them) through one engine per stream.
 
     Parameters
@@ -321,13 +327,29 @@ def replay_files(paths: Iterable[str | Path], settings_for: Callable[[str], Dete
     progress : called with the input bytes of each piece once it is read.
     chunk_bytes : bytes of CSV per chunk.
     sources : the files already opened (:func:`shiftwatch.sources.open_sources`).
+    unread_files : with ``sources``, the problems of the files left out (the result's
+        ``unread_files``).
 
-    Raises :class:`CsvFormatError` before replaying anything when a file cannot be
-    opened, its columns fit no layout, or the time zone is unknown.
+    A file found in a directory that cannot be opened (a damaged Parquet footer, an empty
+    file, a header that fits no layout) is left out, named in the result's ``unread_files``,
+    and the other files are replayed.  Raises :class:`CsvFormatError` before replaying
+    anything when a file named in ``paths`` itself cannot be opened or its columns fit no
+    layout, when no file can be, or when the time zone is unknown.
     """
     tz = timezone if timezone is None or isinstance(timezone, tzinfo) else time_zone(timezone)
+    unread = list(unread_files)
     if sources is None:
-        sources = open_sources(list(paths), layout)
+        sources = open_sources(list(paths), layout, unread)
+    result = _replay_sources(sources, settings_for, unit_for, jobs, tz, trace_options, progress, chunk_bytes)
+    result.unread_files = unread
+    result.files_read = len(sources)
+    return result
+
+
+def _replay_sources(sources: list[Source], settings_for: Callable[[str], DetectionSettings] | None,
+                    unit_for: Callable[[str], str | None] | None, jobs: int, tz: tzinfo | None,
+                    trace_options: dict[str, int] | None, progress: Callable[[int], None] | None,
+                    chunk_bytes: int) -> ReplayResult:
     if settings_for is None:
         defaults = DetectionSettings()
         settings_for = lambda stream: defaults
@@ -789,17 +811,19 @@ def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone
                   only: str | None = None, first_only: bool = False) -> ReadResult:
     """Read files (any layout :func:`replay_files` reads) into whole per-stream series.
 
-    Raises :class:`CsvFormatError` when a file is missing or its header fits
-    no layout; rows with bad values are reported in ``problems``.  With
+    Raises :class:`CsvFormatError` when a file named in ``paths`` is missing or its header
+    fits no layout, or when no file can be read; a file of a directory that cannot be read
+    and rows with bad values are reported in ``problems``.  With
     ``only`` just that stream's rows are kept; with ``first_only`` just those of the first
     stream met (``fit`` without ``--stream``, which refuses a file of more than one stream:
     it read every stream's whole series first, 620 MB for 19 million rows, only to refuse).
     The other streams are in ``streams`` with no rows, so their names are known.
     """
     tz = timezone if timezone is None or isinstance(timezone, tzinfo) else time_zone(timezone)
-    sources = open_sources(list(paths), layout)
+    unread: list[str] = []  # files of a directory that cannot be read: named first, the rest read
+    sources = open_sources(list(paths), layout, unread)
     streams: dict[str, StreamSeries] = {}
-    problems: list[str] = []
+    problems: list[str] = [f"{u}; the file was skipped, the other files were read" for u in unread]
     rows = 0
     noted: set[int] = set()
     by_file: dict[int, list[str]] = {}

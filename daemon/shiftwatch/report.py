@@ -438,7 +438,7 @@ class ReplayReport:
 
     def write(self, *, samples: dict[str, int], rejected: dict[str, dict[str, int]],
               sources: Sequence[str], settings_note: str, unreadable_rows: int = 0,
-              units: dict[str, str | None] | None = None,
+              unread_files: Sequence[str] = (), units: dict[str, str | None] | None = None,
               labels: dict[str, str | None] | None = None, time_zone: str = "UTC",
               progress: Callable[[int], None] | None = None) -> Path:
         """Render the charts and write ``report.html``; return its path.
@@ -451,6 +451,7 @@ class ReplayReport:
         sources : the replayed files.
         settings_note : which detection settings were used, in a few words.
         unreadable_rows : rows of the files that could not be read, and unreadable cells of a wide file.
+        unread_files : the files found in a directory that could not be read at all, each its problem.
         units : unit per stream, when known (else the unit of its records).
         labels : the operator's name per stream (the config's ``label``), when it has one.
         time_zone : IANA zone in which times are shown (the config's ``display.time_zone``).
@@ -468,6 +469,7 @@ class ReplayReport:
             try:
                 return self._write(traces, samples=samples, rejected=rejected, sources=sources,
                                    settings_note=settings_note, unreadable_rows=unreadable_rows,
+                                   unread_files=unread_files,
                                    time_zone=time_zone, progress=progress)
             except OSError as exc:
                 raise ReportError(f"--report {self.directory}: cannot write {REPORT_FILE}: "
@@ -477,13 +479,13 @@ class ReplayReport:
 
     def _write(self, traces: list[StreamTrace], *, samples: dict[str, int], rejected: dict[str, dict[str, int]],
                sources: Sequence[str], settings_note: str, unreadable_rows: int, time_zone: str,
-               progress: Callable[[int], None] | None) -> Path:
+               progress: Callable[[int], None] | None, unread_files: Sequence[str] = ()) -> Path:
         charted = charted_streams(traces, rejected, self.max_charts)
         self.charted = (len(charted), len(traces))
         fd, tmp = _create_temporary(self.directory)
         self._tmp = tmp
         with open(fd, "w", encoding="utf-8") as out:
-            out.write(_head(sources, settings_note, time_zone))
+            out.write(_head(sources, settings_note, time_zone, unread_files))
             out.write(_summary(traces, samples, rejected, unreadable_rows, time_zone, charted))
             out.write('<h2 id="charts">Charts</h2>\n')
             out.write(_how_to_read())
@@ -862,8 +864,12 @@ def _interval_text(rec: AlertRecord, time_zone: str = "UTC") -> str:
     return f"{low} to {high} ({rec.interval_level:.0%})"
 
 
-def _head(sources: Sequence[str], settings_note: str, time_zone: str = "UTC") -> str:
+def _head(sources: Sequence[str], settings_note: str, time_zone: str = "UTC", unread: Sequence[str] = ()) -> str:
     files = ", ".join(f"<code>{_e(s)}</code>" for s in sources) or "none"
+    skipped = "".join(f"<li>{_e(u)}</li>" for u in unread)
+    if skipped:
+        skipped = (f'<p class="caution" id="unread">{len(unread):,} file(s) could not be read and were '
+                   f"skipped; their rows are in none of the figures below:</p>\n<ul>{skipped}</ul>\n")
     return (
         '<!DOCTYPE html>\n<html lang="en">\n<head>\n<meta charset="utf-8">\n'
         '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
@@ -874,6 +880,7 @@ def _head(sources: Sequence[str], settings_note: str, time_zone: str = "UTC") ->
         f"<p>Replayed {files}; {_e(settings_note)}. Times are shown in {_e(zone_label(time_zone))} "
         "(the alert records hold them in UTC).</p>\n"
         f'<p class="caution">{_e(ADVISORY)}</p>\n'
+        f"{skipped}"
     )
 
 

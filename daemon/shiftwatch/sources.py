@@ -382,7 +382,13 @@ def expand_paths(paths: Sequence[str | Path]) -> list[str]:
     :func:`_path_order`).  An entry of a directory that is named as
     such a file but is none (a broken symlink, a pipe) is kept, so that opening it names it
     as opening a path given directly does, instead of leaving its rows out without a word."""
-    out: list[str] = []
+    return [f for f, _ in expand_paths_found(paths)]
+
+
+def expand_paths_found(paths: Sequence[str | Path]) -> list[tuple[str, bool]]:
+    """:func:`expand_paths`, each file with whether it was found in a directory (True) or
+    named itself (False)."""
+    out: list[tuple[str, bool]] = []
     for p in paths:
         if os.path.isdir(p):
             found = sorted((str(f) for f in Path(p).rglob("*")
@@ -391,9 +397,9 @@ def expand_paths(paths: Sequence[str | Path]) -> list[str]:
                            key=_path_order)
             if not found:
                 raise CsvFormatError(f"{p}: the directory holds no .parquet or .csv file")
-            out.extend(found)
+            out.extend((f, True) for f in found)
         else:
-            out.append(str(p))
+            out.append((str(p), False))
     return out
 
 
@@ -505,9 +511,24 @@ def _without_bom(lines: Iterator[str]) -> Iterator[str]:
         yield text[1:] if i == 0 and text.startswith("\ufeff") else text
 
 
+#: Names of Parquet files (in a directory, the files read besides ``.csv``).
+PARQUET_SUFFIXES = (".parquet", ".pq")
+
+
 def _is_parquet(path: str) -> bool:
+    """Whether the file is Parquet (it begins with PAR1); :class:`CsvFormatError` for a file
+    named as Parquet that does not (empty, damaged, or something else): read as CSV, its bytes
+    were taken for a header."""
     with open(path, "rb") as fb:
-        return fb.read(4) == b"PAR1"
+        head = fb.read(4)
+    if head == b"PAR1":
+        return True
+    if Path(path).suffix.lower() in PARQUET_SUFFIXES:
+        if not head:
+            raise CsvFormatError(f"{path}: the file is empty (0 bytes); a Parquet file begins and ends with PAR1")
+        raise CsvFormatError(f"{path}: not a readable Parquet file: it does not begin with PAR1 (damaged, or "
+                             "not Parquet)")
+    return False
 
 
 def open_source(path: str, layout: str = "auto") -> Source:
@@ -559,12 +580,27 @@ def open_source(path: str, layout: str = "auto") -> Source:
         return Source(path, "csv", lay, header, ti, si, vi, tags, body_start=start, body_line=line)
 
 
-def open_sources(paths: list[str | Path], layout: str = "auto") -> list[Source]:
+def open_sources(paths: list[str | Path], layout: str = "auto", unread: list[str] | None = None) -> list[Source]:
     """:func:`open_source` for every file (directories expanded), so a bad header stops
-    the replay before it starts."""
+    the replay before it starts.
+
+    With ``unread`` (a list), a file found in a directory that cannot be read (a damaged
+    Parquet footer, an empty file, a header that fits no layout, a broken link) is left out
+    and its problem appended there, so the other files of a dataset are still read; a file
+    named in ``paths`` itself is refused all the same, and so are files of which none can be
+    read.
+    """
     if layout not in LAYOUTS:
         raise CsvFormatError(f"--layout {layout}: choose one of {', '.join(LAYOUTS)}")
-    sources = [open_source(p, layout) for p in expand_paths(paths)]
+    found = expand_paths_found(paths)
+    if unread is None:
+        sources = [open_source(p, layout) for p, _ in found]
+    else:
+        sources = open_found([p for p, _ in found], layout, unread,
+                             named={p for p, in_dir in found if not in_dir})
+        if not sources:
+            raise CsvFormatError(unread[0] if len(unread) == 1 else
+                                 f"none of the {len(unread)} files could be read; the first: {unread[0]}")
     seen: dict[tuple[int, int], int] = {}
     for i, src in enumerate(sources):
         # A file given twice (by name, through its directory, by a link) had every row of its
@@ -578,6 +614,22 @@ def open_sources(paths: list[str | Path], layout: str = "auto") -> list[Source]:
             raise CsvFormatError(f"{src.path}: given twice (the same file as {sources[first].path}); "
                                  "each file is read once")
     return sources
+
+
+def open_found(files: list[str], layout: str, unread: list[str], named: set[str] | None = None) -> list[Source]:
+    """The sources of ``files`` in order, those that cannot be opened left out and their
+    problems appended to ``unread``; a file in ``named`` (given by name, not found in a
+    directory) is refused instead (:class:`CsvFormatError`).  ``files`` may include the named
+    ones: the order of ``files`` is kept."""
+    out: list[Source] = []
+    for p in files:
+        try:
+            out.append(open_source(p, layout))
+        except CsvFormatError as exc:
+            if named and p in named:
+                raise
+            unread.append(str(exc))
+    return out
 
 
 # ---------------------------------------------------------------------------

@@ -290,9 +290,10 @@ def test_the_same_rows_from_a_regular_file_given_as_dev_stdin_replay(run_to, lin
 # ------------------------------------------------------------ unreadable entries of a directory
 @pytest.mark.parametrize("entry", ["broken symlink", "fifo"])
 @pytest.mark.parametrize("command", READERS)
-def test_a_directorys_unreadable_entry_exits_2_naming_it(cli, tmp_path: Path, entry: str,
-                                                        command: tuple[str, ...]) -> None:
-    # README: "A file that cannot be read ... gives exit status 2", in a directory as named directly.
+def test_a_directorys_unreadable_entry_is_named_and_the_rest_read(cli, tmp_path: Path, entry: str,
+                                                                  command: tuple[str, ...]) -> None:
+    # README: a file named on the command line that cannot be read gives exit status 2; one
+    # found in a directory is named the same way, skipped, and the other files are read (exit 1).
     data = tmp_path / "brackenfield-line3"
     data.mkdir()
     write_filler(data / "filler3.csv")
@@ -306,10 +307,13 @@ def test_a_directorys_unreadable_entry_exits_2_naming_it(cli, tmp_path: Path, en
         why = "a pipe, not a regular file; "
     given = cli(*command, str(bad), timeout=60)
     res = cli(*command, str(data), timeout=60)
+    alone = cli(*command, str(data / "filler3.csv"), timeout=60)
     no_traceback(res.stderr)
-    assert res.returncode == given.returncode == 2, res.stderr
-    assert res.stderr.startswith(f"shiftwatch: {bad}: {why}"), res.stderr
-    assert res.stderr == given.stderr
+    assert given.returncode == 2 and given.stderr.startswith(f"shiftwatch: {bad}: {why}"), given.stderr
+    assert res.returncode == 1 and alone.returncode == 0, res.stderr
+    assert res.stderr.startswith(f"{bad}: {why}"), res.stderr
+    assert "; the file was skipped, the other files were " in res.stderr.splitlines()[0]
+    assert res.stdout == alone.stdout and res.stdout
 
 
 # ------------------------------------------------------------ fit on a file with no usable row

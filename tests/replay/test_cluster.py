@@ -74,3 +74,30 @@ def test_a_stream_in_two_partitions_is_refused(tmp_path: Path) -> None:
 def _csv(path: Path, k: int) -> Path:
     path.write_text("time,stream,value\n" + "".join(f"{1.8e9 + i + 1000 * k},oven,{i % 7}\n" for i in range(50)))
     return path
+
+
+def test_a_damaged_file_of_the_dataset_is_named_and_the_rest_replayed_on_the_cluster(cluster, cli,
+                                                                                     tmp_path: Path) -> None:
+    # Before (2026-12-04) a task whose partition held a damaged file failed, and that stopped the
+    # whole replay with exit status 2.  Now the cluster names it as one process does, skips it,
+    # and replays the rest: the same records, the same lines on stderr, exit status 1.
+    root = tmp_path / "line2"
+    write_dataset(root)
+    parts = stream_partitions(root)
+    cut = Path(parts[0][1])
+    cut.write_bytes(cut.read_bytes()[:-9])  # its footer cut off
+    (Path(parts[1][0]).parent / "part-9.parquet").write_bytes(b"")
+    lone = root / "stream=brackenfield%2Fline2%2Fmixer%2Fspeed"  # a partition of one damaged file
+    lone.mkdir()
+    (lone / "part-0.parquet").write_bytes(b"PAR1 cut short")
+    one = replay_files([root], jobs=1)
+    assert len(one.unread_files) == 3 and one.files_read == 11
+    got = replay_on_dask(root, cluster)
+    assert got.unread_files == one.unread_files and got.files_read == one.files_read
+    assert json_lines(got.records) == json_lines(one.records) and len(one.records) >= 10
+    assert got.rows == one.rows and got.problem_count == one.problem_count
+    res = cli("replay", "--dask", cluster.scheduler.address, str(root))
+    alone = cli("replay", "--jobs", "1", str(root))
+    assert res.returncode == alone.returncode == 1, res.stderr
+    assert (res.stdout, res.stderr) == (alone.stdout, alone.stderr)
+    assert res.stderr.splitlines()[-1].endswith("; 3 file(s) could not be read and were skipped")
