@@ -210,6 +210,11 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
     if jobs < 1:
         _err(f"--jobs must be at least 1, got {jobs}")
         return EXIT_USAGE
+    if args.jobs is not None and args.dask is not None:
+        # A task runs in one process on its worker: --jobs would be ignored without a word.
+        _err(f"--jobs {args.jobs} and --dask {args.dask}: --jobs splits the streams over processes on this "
+             "machine, --dask over the cluster's workers (a process per partition); give one of them")
+        return EXIT_USAGE
     try:
         in_tz = time_zone(args.timezone)  # the zone of input times without an offset
         # A file of a directory that cannot be read is named and left out; one named itself is refused.
@@ -1003,7 +1008,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="most charts in the report (default 200): streams with events first, then "
                    "those with samples set aside, then the others; every stream is in its tables")
     r.add_argument("--jobs", type=int, default=None, metavar="N",
-                   help="processes to split the streams over (default, and at most: the cores available)")
+                   help="processes to split the streams over (default, and at most: the cores available); "
+                   "not with --dask")
     r.add_argument("--dask", metavar="ADDRESS",
                    help="replay one dataset directory partitioned by stream on this Dask scheduler "
                    "(tcp://HOST:PORT); needs the cluster extra")

@@ -101,3 +101,15 @@ def test_a_damaged_file_of_the_dataset_is_named_and_the_rest_replayed_on_the_clu
     assert res.returncode == alone.returncode == 1, res.stderr
     assert (res.stdout, res.stderr) == (alone.stdout, alone.stderr)
     assert res.stderr.splitlines()[-1].endswith("; 3 file(s) could not be read and were skipped")
+
+
+def test_jobs_with_dask_is_refused_naming_the_conflict(cluster, cli, tmp_path: Path) -> None:
+    # Before (2026-12-04) --jobs was silently ignored with --dask: each task runs in one process
+    # on a worker, however many --jobs asked for.
+    root = tmp_path / "line2"
+    write_dataset(root, n=200)
+    res = cli("replay", "--jobs", "2", "--dask", cluster.scheduler.address, str(root))
+    assert res.returncode == 2 and res.stdout == "", res.stderr
+    assert res.stderr == (f"shiftwatch: --jobs 2 and --dask {cluster.scheduler.address}: --jobs splits the "
+                          "streams over processes on this machine, --dask over the cluster's workers (a "
+                          "process per partition); give one of them\n")
