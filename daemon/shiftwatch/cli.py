@@ -203,7 +203,13 @@ def cmd_replay(args: argparse.Namespace) -> int:
 
 def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
     from shiftwatch import heap
-    from shiftwatch.replay import CsvFormatError, ReplayProcessError, default_jobs, replay_files
+    from shiftwatch.replay import (
+        CsvFormatError,
+        ReplayProcessError,
+        affinity_cores,
+        default_jobs,
+        replay_files,
+    )
     from shiftwatch.sources import open_sources, time_zone
 
     jobs = default_jobs() if args.jobs is None else args.jobs
@@ -247,12 +253,13 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
         return EXIT_USAGE
     if args.dask is not None:
         return _replay_on_dask(args, cfg, report, settings_for, unit_for, sources, shown)
-    cores = default_jobs()
+    cores = default_jobs()  # the cores it may run on, within its cgroup's CPU quota
     if jobs > cores:
         # More processes than cores only take turns on them, and pay for it: --jobs 1000 on two
         # cores took 67 s against 3 s, 27 s of it system time.
-        _err(f"--jobs {jobs}: replaying in {cores} process{'es' if cores > 1 else ''}, "
-             "as many as the cores this process may run on")
+        why = ("as many as the cores this process may run on" if cores == affinity_cores() else
+               "as many as its control group's CPU quota allows (cgroup cpu.max or cpu.cfs_quota_us)")
+        _err(f"--jobs {jobs}: replaying in {cores} process{'es' if cores > 1 else ''}, {why}")
         jobs = cores
     heap.keep_freed_memory()  # a chunk's arrays reuse the last one's pages (see shiftwatch.heap)
     bar = progress_bar(_input_bytes(args.csv), "replay", "B", minimum=PROGRESS_MIN_BYTES)
@@ -1008,8 +1015,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="most charts in the report (default 200): streams with events first, then "
                    "those with samples set aside, then the others; every stream is in its tables")
     r.add_argument("--jobs", type=int, default=None, metavar="N",
-                   help="processes to split the streams over (default, and at most: the cores available); "
-                   "not with --dask")
+                   help="processes to split the streams over (default, and at most: the cores this process "
+                   "may run on, within its cgroup's CPU quota); not with --dask")
     r.add_argument("--dask", metavar="ADDRESS",
                    help="replay one dataset directory partitioned by stream on this Dask scheduler "
                    "(tcp://HOST:PORT); needs the cluster extra")

@@ -36,7 +36,8 @@ from collections import deque
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from datetime import tzinfo
-from typing import TYPE_CHECKING, Any
+from pathlib import Path
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -60,11 +61,9 @@ from shiftwatch.sources import (
     time_zone,
 )
 
-if TYPE_CHECKING:
-    from pathlib import Path
-
 __all__ = ["BATCH", "KEEP_PROBLEMS", "REQUIRED_COLUMNS", "CsvFormatError", "ReadResult", "ReplayResult",
-           "StreamOutcome", "StreamSeries", "default_jobs", "read_long_csv", "replay_files", "replay_series"]
+           "StreamOutcome", "StreamSeries", "affinity_cores", "cgroup_cpu_limit", "default_jobs",
+           "own_cgroup_paths", "read_long_csv", "replay_files", "replay_series"]
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -77,12 +76,106 @@ KEEP_PROBLEMS = 20
 HELD_SAMPLES = 1 << 20
 
 
-def default_jobs() -> int:
-    """The cores this process may run on."""
+#: Where the kernel's control groups are mounted, and where a process reads its own.
+CGROUP_ROOT = "/sys/fs/cgroup"
+PROC_SELF_CGROUP = "/proc/self/cgroup"
+
+
+def affinity_cores() -> int:
+    """The cores this process may run on (its CPU affinity)."""
     try:
         return max(1, len(os.sched_getaffinity(0)))
     except AttributeError:  # not on Linux
         return max(1, os.cpu_count() or 1)
+
+
+def default_jobs(cgroup_root: str | os.PathLike[str] = CGROUP_ROOT,
+                 proc_cgroup: str | os.PathLike[str] = PROC_SELF_CGROUP) -> int:
+    """The processes ``replay`` runs by default: the cores this process may run on, and no
+    more than its control group's CPU quota allows (a container's ``--cpus 1.5``), rounded up,
+    at least 1.  More processes than that only take turns, throttled by the kernel."""
+    cores = affinity_cores()
+    try:
+        text = Path(proc_cgroup).read_text(encoding="utf-8", errors="replace")
+    except OSError:
+        text = ""
+    quota = cgroup_cpu_limit(cgroup_root, *own_cgroup_paths(text))
+    return cores if quota is None else min(cores, max(1, math.ceil(quota)))
+
+
+def own_cgroup_paths(text: str) -> tuple[str, str]:
+    r"""This process's cgroup paths from the text of ``/proc/self/cgroup`` (lines
+    ``hierarchy-ID:controllers:path``, cgroups(7)): the v2 one (``0::path``) and the v1 one of
+    the ``cpu`` controller; ``/`` for either that is not there.
+
+    >>> own_cgroup_paths("2:cpu,cpuacct:/batch\n0::/line4.slice\n")
+    ('/line4.slice', '/batch')
+    """
+    v2 = v1 = "/"
+    for line in text.splitlines():
+        parts = line.split(":", 2)
+        if len(parts) != 3 or not parts[2].startswith("/"):
+            continue
+        if parts[0] == "0" and parts[1] == "":
+            v2 = parts[2]
+        elif "cpu" in parts[1].split(","):
+            v1 = parts[2]
+    return v2, v1
+
+
+def cgroup_cpu_limit(root: str | os.PathLike[str], v2_path: str = "/", v1_path: str | None = None) -> float | None:
+    """The CPUs a control group's quota allows (quota over period), the tightest of the group at
+    ``v2_path`` (cgroup v2, ``cpu.max``; also under ``root/unified``, systemd's hybrid layout)
+    or ``v1_path`` (cgroup v1, ``cpu.cfs_quota_us`` and ``cpu.cfs_period_us`` under ``root/cpu``
+    or ``root/cpu,cpuacct``; ``v2_path`` when not given) and of every group above it up to
+    ``root``; None when no level sets one.  A missing or unreadable file, or one that holds no
+    quota, sets none.
+
+    >>> cgroup_cpu_limit("/nonexistent") is None
+    True
+    """
+    base = Path(root)
+    found: list[float] = []
+    for path, files in ((v2_path, _v2_files), (v2_path if v1_path is None else v1_path, _v1_files)):
+        parts = [p for p in path.split("/") if p and p != ".."]
+        for depth in range(len(parts), -1, -1):
+            for limit in files(base, Path(*parts[:depth])):
+                if limit is not None:
+                    found.append(limit)
+    return min(found) if found else None
+
+
+def _read_words(path: Path) -> list[str] | None:
+    try:
+        return path.read_text(encoding="ascii", errors="replace").split()
+    except OSError:
+        return None
+
+
+def _quota(quota: str, period: str) -> float | None:
+    """CPUs of a quota and period in microseconds; None for no limit or text that is none."""
+    if not (quota.isdigit() and period.isdigit()):
+        return None  # "max" (v2), "-1" (v1): no limit; anything else is no quota either
+    q, p = int(quota), int(period)
+    return q / p if q > 0 and p > 0 else None
+
+
+def _v2_files(base: Path, rel: Path) -> list[float | None]:
+    out: list[float | None] = []
+    for tree in (base, base / "unified"):
+        words = _read_words(tree / rel / "cpu.max")
+        out.append(_quota(words[0], words[1]) if words is not None and len(words) == 2 else None)
+    return out
+
+
+def _v1_files(base: Path, rel: Path) -> list[float | None]:
+    out: list[float | None] = []
+    for controller in ("cpu", "cpu,cpuacct", "cpuacct,cpu"):
+        quota = _read_words(base / controller / rel / "cpu.cfs_quota_us")
+        period = _read_words(base / controller / rel / "cpu.cfs_period_us")
+        ok = quota is not None and period is not None and len(quota) == 1 and len(period) == 1
+        out.append(_quota(quota[0], period[0]) if ok and quota and period else None)
+    return out
 
 
 def _record_key(r: AlertRecord) -> tuple[float, str, bool]:
