@@ -864,10 +864,18 @@ class StreamSeries:
         if self._joined is None:
             if len(self._parts) == 1:
                 self._joined = self._parts[0]
+            elif not self._parts:
+                self._joined = (np.empty(0), np.empty(0), np.empty(0, dtype=np.int64))
             else:
-                t, v, p = zip(*self._parts) if self._parts else ((), (), ())
-                self._joined = (np.concatenate(t) if t else np.empty(0), np.concatenate(v) if v else np.empty(0),
-                                np.concatenate(p) if p else np.empty(0, dtype=np.int64))
+                # One column at a time, its parts let go once joined: the parts and the whole
+                # series are held together for one column, not for all three.
+                columns = [list(col) for col in zip(*self._parts)]
+                self._parts = []
+                whole = []
+                for col in columns:
+                    whole.append(np.concatenate(col))
+                    col.clear()
+                self._joined = (whole[0], whole[1], whole[2])
             self._parts = [self._joined]
         return self._joined
 
