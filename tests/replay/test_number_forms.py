@@ -35,6 +35,11 @@ FORMS = ["1_000", "1_0.5", "1__0", "_12", "12_", " 12 ", "12 ", "\t12", "nan", "
          "\u0661\u0662", "\uff11\uff12", "1.5e", "--1", "1.2.3", "12 g", "one", "1e3_0", "4_99.5e1"]
 
 
+#: Spaces other than ASCII around a number: pandas and pyarrow refuse them; the daemon's decoder
+#: takes them off a payload (str.strip), and replay follows the daemon (README says so).
+UNICODE_SPACES = ["\u00a012\u00a0", "12\u2003", "\u300012"]
+
+
 def _pandas(form: str) -> float | None:
     """pandas' float64 reading of the cell, or None when it refuses it."""
     try:
@@ -65,6 +70,12 @@ def _same(a: float | None, b: float | None) -> bool:
 def test_the_references_agree_on_each_form(form: str) -> None:
     # The check of the check: the two readers agree, so each form has one answer.
     assert _same(_pandas(form), _pyarrow(form)), form
+
+
+@pytest.mark.parametrize("form", UNICODE_SPACES)
+def test_the_references_refuse_unicode_spaces_where_replay_follows_the_daemon(form: str) -> None:
+    assert _pandas(form) is None and _pyarrow(form) is None
+    assert decode(form.encode(), "number", now=0.0).readings[0].value == 12.0
 
 
 def _long_file(path: Path, form: str, where: str) -> Path:
@@ -122,7 +133,7 @@ def _equal_parts(a: sources.Block, b: sources.Block) -> bool:
     return True
 
 
-@pytest.mark.parametrize("form", FORMS)
+@pytest.mark.parametrize("form", FORMS + UNICODE_SPACES)
 @pytest.mark.parametrize("layout", ["long value", "long time", "wide value"])
 def test_the_column_wise_and_row_by_row_readers_agree_on_each_form(tmp_path: Path, form: str, layout: str) -> None:
     path = (_wide_file(tmp_path / "wide.csv", form) if layout == "wide value"
@@ -171,7 +182,7 @@ def test_an_epoch_time_is_a_number_where_pandas_and_pyarrow_read_one(tmp_path: P
         assert float(read.streams[STREAM].times[2]) == expected
 
 
-@pytest.mark.parametrize("form", FORMS)
+@pytest.mark.parametrize("form", FORMS + UNICODE_SPACES)
 def test_replay_reads_a_value_as_the_daemon_reads_a_number_payload(tmp_path: Path, form: str) -> None:
     # Where a message payload and a CSV value overlap (the text of one number), the daemon and
     # replay take the same text as a number, and set aside the same NaN and infinities (the
