@@ -167,13 +167,12 @@ def progress_bar(total: int, desc: str, unit: str, *, minimum: int = PROGRESS_MI
     return tqdm(total=total, desc=desc, unit=unit, unit_scale=total >= 10_000, leave=False, file=sys.stderr)
 
 
-def _input_bytes(paths: list[str]) -> int:
+def _input_bytes(sources: list[Any]) -> int:
+    """Bytes of the files to replay (those skipped as unreadable left out, so the bar ends full)."""
     import os
 
-    from shiftwatch.sources import expand_paths
-
     try:
-        return sum(os.path.getsize(p) for p in expand_paths(paths))
+        return sum(os.path.getsize(s.path) for s in sources)
     except (OSError, ValueError):
         return 0
 
@@ -262,7 +261,7 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
         _err(f"--jobs {jobs}: replaying in {cores} process{'es' if cores > 1 else ''}, {why}")
         jobs = cores
     heap.keep_freed_memory()  # a chunk's arrays reuse the last one's pages (see shiftwatch.heap)
-    bar = progress_bar(_input_bytes(args.csv), "replay", "B", minimum=PROGRESS_MIN_BYTES)
+    bar = progress_bar(_input_bytes(sources), "replay", "B", minimum=PROGRESS_MIN_BYTES)
     try:
         result = replay_files(args.csv, settings_for, unit_for, jobs=jobs, timezone=in_tz, sources=sources,
                               trace_options=None if report is None else report.trace_options,
