@@ -52,7 +52,7 @@ from shiftwatch.outbox import Outbox
 from shiftwatch.partition import Ownership
 from shiftwatch.sparkplug import NAMESPACE as SPARKPLUG_NAMESPACE
 from shiftwatch.sparkplug import SparkplugSessions, rebirth_request
-from shiftwatch.statestore import StateStore
+from shiftwatch.statestore import PACKED_FROM, StateStore
 from shiftwatch.status import StatusBoard
 
 #: Messages taken from the queue per processing round (acks go out after each
@@ -2449,6 +2449,10 @@ class Daemon:
         self.snapshot()
 
 
+#: The entries of StreamEngine.get_state(arrays=True) that are arrays (or None).
+_STATE_ARRAYS = ("times", "values", "event_times", "event_values", "unfolded_follow")
+
+
 class _EngineStates(Mapping[str, dict[str, Any]]):
     """Each engine's state, made when the snapshot writer reaches it.
 
@@ -2463,7 +2467,16 @@ class _EngineStates(Mapping[str, dict[str, Any]]):
         self._engines = engines
 
     def __getitem__(self, name: str) -> dict[str, Any]:
-        return self._engines[name].get_state()
+        # The samples as arrays, which the snapshot packs as bytes: the same file as from
+        # lists of floats (a short one stays a list, as the store keeps a short list),
+        # without a float object per sample made and read again (about a fifth of a
+        # snapshot's time).
+        state = self._engines[name].get_state(arrays=True)
+        for key in _STATE_ARRAYS:
+            a = state[key]
+            if a is not None and a.shape[0] < PACKED_FROM:
+                state[key] = a.tolist()
+        return state
 
     def __iter__(self) -> Iterator[str]:
         return iter(list(self._engines))

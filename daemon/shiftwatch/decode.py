@@ -808,14 +808,20 @@ def _array_columns(payload: bytes, value_parts: tuple[str, ...], time_parts: tup
     if time_parts is None:
         return None, values
     t = np.fromiter([s.b for s in doc], np.float64, n)
-    if not np.isfinite(t).all():
+    # Every time finite: a NaN makes the largest NaN, an infinity the largest or the
+    # smallest infinite (two reductions instead of isfinite's array and its all()).
+    top = float(np.maximum.reduce(t))
+    low = float(np.minimum.reduce(t))
+    if not (math.isfinite(top) and math.isfinite(low)):
         return None
     # _seconds, element by element: the same division, for a column that holds a time in
     # milliseconds (none is past the threshold otherwise, and the column is kept as it is).
-    top = float(np.maximum.reduce(t))
     if top > _MS_THRESHOLD:
         if top > _RAW_TIME_MAX:  # each such time is a problem of its own: the usual path names it
             return None
+        if low > _MS_THRESHOLD:  # all of them (a sender's clock in milliseconds): in place
+            np.divide(t, 1000.0, out=t)
+            return t, values
         return np.where(t > _MS_THRESHOLD, t / 1000.0, t), values
     return t, values
 

@@ -58,6 +58,8 @@ _FORMAT = "shiftwatch-state"
 _TMP_PREFIX = f".{SNAPSHOT_NAME}."
 _TMP_SUFFIX = ".tmp"
 _MIN_PACKED = 8  # shorter float lists stay readable JSON
+#: Float lists from this length on are packed (a float64 array is packed at any length).
+PACKED_FROM = _MIN_PACKED
 _COMPRESSLEVEL = 1
 
 

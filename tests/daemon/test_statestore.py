@@ -384,3 +384,41 @@ def test_encode_skips_plain_values_without_changing_anything() -> None:
     eng.process(1.788e9 + np.arange(3000.0), 100 + np.random.default_rng(1).standard_normal(3000))
     state = dict(eng.get_state())
     assert repr(_encode(state)) == repr(reference(state))
+
+
+def test_daemon_snapshot_of_engines_as_arrays_is_the_same_file(tmp_path: Path) -> None:
+    """The daemon hands the store each engine's samples as float64 arrays
+    (``get_state(arrays=True)``, see daemon._EngineStates); the file must be the one the
+    lists of floats give, byte for byte (the gzip stream is written with mtime 0), for
+    engines in every state: a window shorter than the store packs, warming up, watching,
+    an event open, after a confirmed shift."""
+    from shiftwatch.daemon import _EngineStates
+
+    engs = engines()
+    rng = np.random.default_rng(11)
+    short = StreamEngine("line/short")
+    short.process(1764633600.0 + np.arange(3.0), [1.0, 2.0, 1.5])
+    engs[short.stream] = short
+    opened = StreamEngine("line/open")
+    t = 1764633600.0 + np.arange(1315.0)
+    x = 500.0 + 0.4 * rng.standard_normal(1315)
+    x[1300:] += 0.6  # a step of 1.5 sigma: tripped on its 15th sample, not decided yet
+    opened.process(t, x)
+    engs[opened.stream] = opened
+    assert {e.state for e in engs.values()} >= {"warming_up", "watching", "event_open"}
+    assert any(len(s["times"]) < 8 for s in (e.get_state() for e in engs.values()))
+    meta = {"saved_at": 1764634600.25}
+    StateStore(tmp_path / "lists").save({n: e.get_state() for n, e in engs.items()}, meta)
+    StateStore(tmp_path / "arrays").save(_EngineStates(engs), meta)
+    a = (tmp_path / "lists" / SNAPSHOT_NAME).read_bytes()
+    b = (tmp_path / "arrays" / SNAPSHOT_NAME).read_bytes()
+    assert gzip.decompress(a) == gzip.decompress(b)
+    assert a == b
+    # and the arrays are what the lists hold
+    for name, eng in engs.items():
+        listed, arrayed = eng.get_state(), eng.get_state(arrays=True)
+        for key, v in arrayed.items():
+            if isinstance(v, np.ndarray):
+                assert v.dtype == np.float64 and v.tolist() == listed[key], (name, key)
+            else:
+                assert v == listed[key], (name, key)

@@ -2318,23 +2318,40 @@ class StreamEngine:
         self._young_test()
 
     # ------------------------------------------------------------ snapshots
-    def get_state(self) -> dict[str, Any]:
+    def get_state(self, *, arrays: bool = False) -> dict[str, Any]:
         """Everything needed to carry on after a restart, as plain JSON-able data.
 
         The window is included, so a restored engine does not warm up again,
         and an open event is decided as if nothing had happened.
+
+        ``arrays``: the window's and the event's samples and the follower offsets as
+        float64 arrays (copies) instead of lists of floats, for a writer that packs
+        them as bytes anyway (``statestore``): the same numbers, without a float
+        object per sample made and read again.
         """
         ev = self._event
+        win, fitter = self._window, self._fitter
+        if arrays:
+            times: Any = win.times.copy()
+            values: Any = win.values.copy()
+            ev_times: Any = None if fitter is None else fitter.times.copy()
+            ev_values: Any = None if fitter is None else fitter.values.copy()
+            follow: Any = np.array(self._unfolded_u, dtype=np.float64)
+        else:
+            times, values = win.times.tolist(), win.values.tolist()
+            ev_times = None if fitter is None else fitter.times.tolist()
+            ev_values = None if fitter is None else fitter.values.tolist()
+            follow = list(self._unfolded_u)
         return {
             "stream": self.stream,
             "state": self._state,
-            "times": self._window.times.tolist(),
-            "values": self._window.values.tolist(),
-            "event_times": None if self._fitter is None else self._fitter.times.tolist(),
-            "event_values": None if self._fitter is None else self._fitter.values.tolist(),
+            "times": times,
+            "values": values,
+            "event_times": ev_times,
+            "event_values": ev_values,
             "sums": self._sums.to_list(),
             "unfolded": self._unfolded,
-            "unfolded_follow": list(self._unfolded_u),
+            "unfolded_follow": follow,
             "baseline": None if self._baseline is None else self._baseline.to_dict(),
             "test": None if self._test is None else {
                 "name": self._test.name, "arl0": self._test_arl0, "shift_z": self._test_shift_z,

@@ -163,7 +163,7 @@ def screen_samples(
         n = times.shape[0]
         limits = arrived is not None and (max_ahead is not None or max_behind is not None)
         if (n and times[0] > last_time and bool(np.maximum.reduce(values) <= MAX_ABS_VALUE)
-                and bool(np.minimum.reduce(values) >= -MAX_ABS_VALUE) and np.isfinite(times[-1])
+                and bool(np.minimum.reduce(values) >= -MAX_ABS_VALUE) and math.isfinite(times[-1])
                 and (n == 1 or bool((times[1:] > times[:-1]).all()))
                 and (not limits or (ARRIVAL_FAST and _arrivals_within(arrived, times, max_ahead, max_behind)))):
             return Screened(times=times, values=values,
