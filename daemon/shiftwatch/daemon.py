@@ -1701,13 +1701,15 @@ class Daemon:
         if not parked:
             return True
         try:
-            self.cluster.park(parked)
+            # Counted as the cluster stores them: a round held after this (another shard's
+            # samples not written, say) parks them again, and the cluster keeps one copy.
+            # Until 2026-12-04 each attempt counted them all again.
+            self.cluster.park(parked, stored=self.metrics.samples_parked.inc)
         except ClusterError as exc:
             self.metrics.journal_failures.inc()
             self.rlog.warning("cluster_park", f"samples of streams waiting for their last writer not "
                               f"parked in the cluster ({exc}); the round is held and tried again", now)
             return False
-        self.metrics.samples_parked.inc(sum(len(g.values) for g in parked))
         self._parked_here.update(g.stream for g in parked)
         return True
 

@@ -893,7 +893,9 @@ class Metrics:
             "shiftwatch_samples_parked",
             "Samples of streams waiting for their last writer (see "
             "shiftwatch_stream_handovers_total), parked in the cluster so that their messages "
-            "could be acknowledged meanwhile; fed when the wait ends.", registry=reg)
+            "could be acknowledged meanwhile; fed when the wait ends. Each sample counts once, "
+            "when the cluster stores it: a round parked again after a failure adds nothing.",
+            registry=reg)
         self.shard_of_disputed = Gauge(
             "shiftwatch_shard_of_disputed",
             "Shards only: 1 while the shard.of (and shard.hashed_levels) of this shard's "
