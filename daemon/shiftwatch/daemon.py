@@ -49,7 +49,7 @@ from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
 from shiftwatch.natsio import ClusterError
 from shiftwatch.notify import sd_notify, watchdog_interval
 from shiftwatch.outbox import Outbox
-from shiftwatch.partition import Count, Ownership, count_disagreement
+from shiftwatch.partition import Count, Ownership, count_disagreement, new_to_the_set
 from shiftwatch.sparkplug import NAMESPACE as SPARKPLUG_NAMESPACE
 from shiftwatch.sparkplug import SparkplugSessions, rebirth_request
 from shiftwatch.statestore import StateStore
@@ -313,10 +313,13 @@ class Daemon:
             if cfg.shard is not None and cfg.shard.hashed_levels else None
         self._topic_of: dict[str, str] = {}  # stream -> a topic it came on (with self.owner)
         # A count (shard.of, hashed levels) that agrees with no other live shard of the set is
-        # not taken up (see _take_up_count): at a start the shard takes no samples meanwhile
-        # (_count_held); at a reload it goes on with the count it ran (_count_pending: the
-        # configuration that brought the new one).  Both are looked at again every second.
+        # not taken up (see _take_up_count): at a start the shard leaves the cluster's mapping
+        # record alone (_count_unnoted) and takes no samples meanwhile (_count_held) unless it
+        # is new to the set; at a reload it goes on with the count it ran (_count_pending: the
+        # configuration that brought the new one).  All are looked at again every second.
+        self._count_unnoted = False
         self._count_held = False
+        self._count_new = False
         self._count_pending: Config | None = None
         self._count_said: str | None = None
         self.nats: Any = None  # shiftwatch.natsio.NatsIO, with a cluster section
@@ -828,13 +831,16 @@ class Daemon:
         """None when this shard may take up ``count`` (shard.of, hashed levels): see
         partition.count_disagreement, judged by the counts the other live shards announce in
         their leases; otherwise what disagrees (also when the leases cannot be read: the
-        count is taken up only once they have said)."""
+        count is taken up only once they have said).  Notes in ``_count_new`` whether the
+        shard is new to the set (partition.new_to_the_set)."""
+        self._count_new = False
         if self.lease is None or not count[1]:
             return None
         try:
             peers = self.lease.peers()
         except ClusterError as exc:
             return f"the other shards' shard.of cannot be read ({exc})"
+        self._count_new = new_to_the_set(self.lease.shard, peers)
         return count_disagreement(self.lease.shard, count, peers)
 
     def _take_up_count(self) -> None:
@@ -842,7 +848,10 @@ class Daemon:
         only when it agrees with the other live shards of the set.  Otherwise (one shard of
         a running set started with a wrong shard.of, say) the record is left as it is and
         the shard takes no samples (they stay with the broker) until another live shard
-        runs the same count or this one's configuration agrees again (_recheck_count).
+        runs the same count or this one's configuration agrees again (_recheck_count).  A
+        shard new to the set (step 1 of a change: past every other shard's shard.of, so the
+        servers' mapping sends it nothing yet) takes samples all the same, as before: only
+        the record waits.
         Until 2026-12-04 every start rewrote the record: a typo made the other shards take
         the shard's own count for a change of the number of shards, and the real mapping
         before was lost."""
@@ -850,7 +859,8 @@ class Daemon:
         if why is None:
             self._note_mapping(changed=False)
             return
-        self._count_held = True
+        self._count_unnoted = True
+        self._count_held = not self._count_new
         self._say_count(why)
 
     def _say_count(self, why: str | None) -> None:
@@ -868,6 +878,10 @@ class Daemon:
             return
         if self._count_pending is not None and self.owner is not None:
             then = (f"it goes on with shard.of {self.owner.of}, the count in force, and leaves the cluster's "
+                    "mapping record as it is")
+        elif not self._count_held:
+            then = ("this shard is new to the set (past the others' shard.of): it takes the samples of its "
+                    "partition (none come before the servers' mapping changes) and leaves the cluster's "
                     "mapping record as it is")
         else:
             then = ("it takes no samples (they stay with the broker, unacknowledged) and leaves the "
@@ -891,11 +905,11 @@ class Daemon:
                 self._count_pending = None
                 self._set_shard(pending, agreed=True)
             self._say_count(why)
-        elif self._count_held:
+        elif self._count_unnoted:
             assert self.owner is not None
             why = self._count_disagreement((self.owner.of, self.owner.levels))
             if why is None:
-                self._count_held = False
+                self._count_held = self._count_unnoted = False
                 self._note_mapping(changed=False)
             self._say_count(why)
 
@@ -1177,7 +1191,7 @@ class Daemon:
                 self.lease.announce(count if nsh.hashed_levels else None)
             if not nsh.hashed_levels or self.owner is None:
                 self.owner = None
-                self._count_held = False
+                self._count_held = self._count_unnoted = False
                 self._say_count(None)
                 return
             self.owner.change(nsh.of, nsh.hashed_levels)
@@ -1198,8 +1212,9 @@ class Daemon:
                 self._count_pending = new
                 self._say_count(why)
                 return
-            if self._count_pending is not None:
+            if self._count_pending is not None or self._count_unnoted:
                 self._count_pending = None
+                self._count_unnoted = False
                 self._say_count(None)
         self.cfg = dataclasses.replace(self.cfg, shard=dataclasses.replace(
             sh, of=nsh.of, hashed_levels=nsh.hashed_levels))
@@ -1358,7 +1373,7 @@ class Daemon:
             now = time.monotonic()
             if now >= next_check:
                 self.check_journal()
-                if self._count_held or self._count_pending is not None:
+                if self._count_unnoted or self._count_pending is not None:
                     self._recheck_count()
                 if self.link is not None:
                     self.link.retry_subscriptions()

@@ -27,7 +27,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 
 __all__ = ["FNV32_OFFSET", "FNV32_PRIME", "Count", "Ownership", "Remap", "count_disagreement", "fnv1a_32",
-           "partition_of"]
+           "new_to_the_set", "partition_of"]
 
 #: 32-bit FNV-1a parameters (Fowler, Noll, Vo; the IETF draft "The FNV
 #: Non-Cryptographic Hash Algorithm", draft-eastlake-fnv).
@@ -117,6 +117,24 @@ def count_disagreement(number: int, mine: Count, others: Mapping[int, Count | No
     said = "; ".join(f"shard {ns[0]} runs {count(c)}" if len(ns) == 1
                      else f"shards {', '.join(map(str, ns))} run {count(c)}" for c, ns in by.items())
     return f"{count(mine)} agrees with no other live shard of the set ({said})"
+
+
+def new_to_the_set(number: int, others: Mapping[int, Count | None]) -> bool:
+    """Whether shard ``number`` has no partition under the count any other live shard
+    announces (it is past every one's ``shard.of``): a shard being added to the set, to
+    which the servers' mapping sends nothing before it changes too.
+
+    >>> new_to_the_set(3, {0: (3, (2, 3, 4)), 1: (3, (2, 3, 4)), 2: None})
+    True
+    >>> new_to_the_set(1, {0: (3, (2, 3, 4)), 2: (3, (2, 3, 4))})
+    False
+    >>> new_to_the_set(3, {0: (4, (2, 3, 4)), 1: (3, (2, 3, 4))})  # shard 0 already runs 4
+    False
+    >>> new_to_the_set(0, {})
+    False
+    """
+    known = [c for n, c in others.items() if n != number and c is not None]
+    return bool(known) and all(number >= of for of, _levels in known)
 
 
 class Ownership:

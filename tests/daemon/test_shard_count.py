@@ -75,9 +75,10 @@ def _io(port: int, who: str) -> NatsIO:
 
 class _Peers:
     """Shards 0 and 2 of the set, live: their leases claimed and renewed, each announcing
-    shard.of 3; and the mapping record of a real change from 2 shards to 3."""
+    shard.of 3; and the mapping record of a real change from 2 shards to 3 (``ago`` seconds
+    before: 0, moments ago)."""
 
-    def __init__(self, port: int) -> None:
+    def __init__(self, port: int, ago: float = 0.0) -> None:
         self.io = _io(port, "peers")
         self.leases = []
         for k in (0, 2):
@@ -92,6 +93,9 @@ class _Peers:
         cs.note_mapping(2, LEVELS, changed=False)
         self.record = cs.note_mapping(3, LEVELS, changed=True)
         assert self.record is not None and (self.record.of, self.record.previous_of) == (3, 2)
+        if ago:
+            self.record = Remap(3, LEVELS, 2, LEVELS, self.record.since - ago)
+            self.io.run(self.io.kv_put(cs.bucket, MAPPING_KEY, self.record.encode()))
 
     def mapping(self) -> tuple[Remap | None, int]:
         entry = self.io.run(self.io.kv_get(f"{NAME}_state", MAPPING_KEY))
@@ -107,11 +111,12 @@ class _Peers:
 class _Shard:
     """``shiftwatch run --shard 1`` with its log in a file."""
 
-    def __init__(self, tmp_path: Path, port: int, of: int) -> None:
+    def __init__(self, tmp_path: Path, port: int, of: int, number: int = 1) -> None:
         self.port = port
+        self.number = number
         self.metrics_port = free_port_block(1)
         self.config = tmp_path / "shiftwatch.yaml"
-        self.log_path = tmp_path / "shard1.log"
+        self.log_path = tmp_path / f"shard{number}.log"
         self.state = tmp_path / "state"
         self.write(of)
         self.proc: subprocess.Popen[bytes] | None = None
@@ -129,7 +134,7 @@ class _Shard:
     def start(self) -> None:
         with open(self.log_path, "ab") as out:
             self.proc = subprocess.Popen([sys.executable, "-m", "shiftwatch", "run", "--config",
-                                          str(self.config), "--shard", "1"],
+                                          str(self.config), "--shard", str(self.number)],
                                          stdout=out, stderr=subprocess.STDOUT)
         assert wait_until(lambda: "connected to broker" in self.log() or self.proc is None
                           or self.proc.poll() is not None, 60), self.log()[-2000:]
@@ -154,12 +159,12 @@ class _Shard:
         assert isinstance(doc, dict)
         return doc
 
-    def taken(self) -> float:
+    def taken(self, topics: list[str] = TOPICS) -> float:
         try:
             m = self.metrics()
         except OSError:
             return -1.0
-        return sum(metric(m, "shiftwatch_samples_total", stream=t) for t in TOPICS)
+        return sum(metric(m, "shiftwatch_samples_total", stream=t) for t in topics)
 
     def stop(self) -> None:
         if self.proc is not None and self.proc.poll() is None:
@@ -177,12 +182,12 @@ class _Publisher:
         self.sent = 0
         self._j = 0
 
-    def send(self, n: int) -> None:
-        """``n`` samples of each topic, on shard 1's partition (what the NATS mapping for 3
-        partitions would put in front of them; the lone server has no mapping)."""
+    def send(self, n: int, topics: list[str] = TOPICS, part: int = 1) -> None:
+        """``n`` samples of each topic, on shard ``part``'s partition (what the NATS mapping
+        would put in front of them; the lone server has no mapping)."""
         for _ in range(n):
-            for t in TOPICS:
-                self.client.publish(f"part/1/{t}", json.dumps({"v": 500.0, "ts": T0 + self._j}), qos=1)
+            for t in topics:
+                self.client.publish(f"part/{part}/{t}", json.dumps({"v": 500.0, "ts": T0 + self._j}), qos=1)
                 self.sent += 1
             self._j += 1
 
@@ -263,6 +268,38 @@ def test_a_reload_to_a_shard_of_the_others_take_up_too_is_a_change_and_until_the
         pub.send(20)
         assert wait_until(lambda: shard.taken() >= pub.sent, 30), (shard.taken(), pub.sent)
         assert shard.taken() == pub.sent
+    finally:
+        pub.stop()
+        shard.stop()
+        peers.close()
+
+
+def test_a_shard_new_to_the_set_takes_samples_and_leaves_the_record_until_the_others_agree(
+        tmp_path: Path, server: int) -> None:
+    # Step 1 of a change from 3 shards to 4: the new shard 3 starts with shard.of 4 while
+    # the others run 3.  It has no partition under their count (the servers' mapping sends
+    # it nothing yet), so it runs as it always did, and takes what reaches it (the servers'
+    # mapping changed first, say); only the record waits for a second shard with 4.
+    mine = [t for li in range(1, 7) for h in range(1, 9)
+            if partition_of(t := f"brackenfield/line{li}/head{h}/fill", LEVELS, 4) == 3][:2]
+    peers = _Peers(server, ago=600.0)  # the set has run with 3 for ten minutes
+    before = peers.mapping()
+    shard = _Shard(tmp_path, server, of=4, number=3)
+    pub = _Publisher(server)
+    try:
+        shard.start()
+        pub.send(20, mine, part=3)
+        assert wait_until(lambda: shard.taken(mine) >= pub.sent, 30), (shard.taken(mine), pub.sent)
+        assert metric(shard.metrics(), "shiftwatch_shard_of_disputed") == 1
+        assert "this shard is new to the set" in shard.log(), shard.log()[-2000:]
+        assert peers.mapping() == before
+        for lease in peers.leases:  # the first old shard's reload (step 2) wants 4 too
+            lease.announce((4, LEVELS))
+        assert wait_until(lambda: "shard.of 4 is taken up" in shard.log(), 30), shard.log()[-2000:]
+        record, _rev = peers.mapping()
+        assert record is not None and (record.of, record.previous_of) == (4, 3)
+        assert metric(shard.metrics(), "shiftwatch_shard_of_disputed") == 0
+        assert shard.taken(mine) == pub.sent
     finally:
         pub.stop()
         shard.stop()
