@@ -304,3 +304,59 @@ def test_a_shard_new_to_the_set_takes_samples_and_leaves_the_record_until_the_ot
         pub.stop()
         shard.stop()
         peers.close()
+
+
+def test_going_down_shard_by_shard_the_first_reloaded_runs_the_old_count_until_the_second_is_reloaded(
+        tmp_path: Path, server: int) -> None:
+    # The README's order for 4 shards to 3, the reloads one by one (in-process daemons, the
+    # real lease and record against the real nats-server): shard 0 reloaded first finds no
+    # other live shard with 3 and goes on with 4, the record as it is; shard 1 reloaded next
+    # agrees with shard 0's announced 3 and takes it up at once; shard 0 takes it up at its
+    # next look.  The record ends as 3 now, 4 before.
+    from shiftwatch.config import for_shard, load_config
+    from shiftwatch.daemon import Daemon
+    from shiftwatch.metrics import Metrics
+
+    def config(of: int) -> Path:
+        """The file every shard reads (``run --shard k`` picks the number)."""
+        path = tmp_path / f"shards-of-{of}.yaml"
+        path.write_text(
+            "streams:\n  - {topic: 'brackenfield/+/+/fill', format: json, value: v, time: ts, unit: g}\n"
+            f"broker: {{client_id: down}}\nmetrics: {{listen: '127.0.0.1:0'}}\n"
+            f"state: {{dir: '{tmp_path / 'state'}', keep: cluster}}\n"
+            f"cluster: {{servers: ['nats://127.0.0.1:{server}'], name: {NAME}, replicas: 1, lease: 6s}}\n"
+            f"shard: {{number: 0, of: {of}, hashed_levels: [2, 3, 4]}}\n")
+        return path
+
+    shards = []
+    try:
+        for k in range(4):
+            d = Daemon(for_shard(load_config(str(config(4))), k), config_path=str(config(4)), metrics=Metrics())
+            d._join_cluster()
+            d._take_up_count()
+            shards.append(d)
+        first = shards[0].cluster.read_mapping()
+        assert first is not None and (first.of, first.previous_of) == (4, None)
+        d0, d1 = shards[0], shards[1]
+        d0._set_shard(load_config(str(config(3))))
+        assert d0.owner is not None and d0.owner.of == 4 and d0._count_pending is not None
+        assert d0.metrics.registry.get_sample_value("shiftwatch_shard_of_disputed") == 1
+        assert d0.cluster.read_mapping() == first
+        d0._recheck_count()  # a second later: still nobody else with 3
+        assert d0.owner.of == 4
+        d1._set_shard(load_config(str(config(3))))
+        assert d1.owner is not None and d1.owner.of == 3 and d1._count_pending is None
+        d0._recheck_count()
+        assert d0.owner.of == 3 and d0._count_pending is None
+        assert d0.metrics.registry.get_sample_value("shiftwatch_shard_of_disputed") == 0
+        for d in shards[2:]:
+            d._set_shard(load_config(str(config(3))))
+            assert d.owner.of == 3 and d._count_pending is None
+        record = d0.cluster.read_mapping()
+        assert record is not None and (record.of, record.previous_of) == (3, 4)
+    finally:
+        for d in shards:
+            if d.lease is not None:
+                d.lease.release()
+            if d.nats is not None:
+                d.nats.close()
