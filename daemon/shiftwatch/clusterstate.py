@@ -66,7 +66,7 @@ import hashlib
 import json
 import logging
 import time
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -365,28 +365,35 @@ class ClusterState:
         return self.remap
 
     # ------------------------------------------------------------ parking
-    def park(self, groups: list[JournalGroup]) -> None:
+    def park(self, groups: list[JournalGroup], stored: Callable[[int], None] | None = None) -> None:
         """Store each group as its stream's next parked message and wait for the cluster
         (ClusterError when it did not acknowledge them in time).  A group parked twice
         (a round taken again after a timeout) is stored once: its message id is the hash
-        of the writer and the body, which JetStream's duplicate window checks."""
+        of the writer and the body, which JetStream's duplicate window checks.
+        ``stored(n)`` is called with each group's sample count as the cluster stores it
+        anew (not for a copy it took for a duplicate; also for groups stored before a
+        failure), from the NATS thread: so a count of parked samples counts samples, not
+        attempts."""
         sem = asyncio.Semaphore(PARALLEL)
 
         async def one(g: JournalGroup) -> None:
             async with sem:
-                await self._park_one(g)
+                if await self._park_one(g) and stored is not None:
+                    stored(len(g.values))
 
         async def go() -> None:
             await asyncio.gather(*(one(g) for g in groups))
 
         self.io.run(go(), timeout=self.io.timeout * (1 + len(groups) // PARALLEL))
 
-    async def _park_one(self, g: JournalGroup) -> None:
+    async def _park_one(self, g: JournalGroup) -> bool:
+        """Park one group; whether the cluster stored it anew (not a duplicate)."""
         body = encode_groups([g])
         digest = hashlib.sha256(self.writer.encode() + body).hexdigest()[:32]
-        await self.io.publish(self.parked_subject(g.stream), body,
-                              headers={WRITER: self.writer, WRITTEN: f"{time.time():.3f}",
-                                       "Nats-Msg-Id": digest})
+        _seq, new = await self.io.publish_once(self.parked_subject(g.stream), body,
+                                               headers={WRITER: self.writer, WRITTEN: f"{time.time():.3f}",
+                                                        "Nats-Msg-Id": digest})
+        return new
 
     def unpark(self, lasts: Mapping[str, int]) -> None:
         """Purge each stream's parked messages up to and including the sequence given

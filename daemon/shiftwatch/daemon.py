@@ -49,7 +49,7 @@ from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
 from shiftwatch.natsio import ClusterError
 from shiftwatch.notify import sd_notify, watchdog_interval
 from shiftwatch.outbox import Outbox
-from shiftwatch.partition import Ownership
+from shiftwatch.partition import Count, Ownership, count_disagreement, new_to_the_set
 from shiftwatch.sparkplug import NAMESPACE as SPARKPLUG_NAMESPACE
 from shiftwatch.sparkplug import SparkplugSessions, rebirth_request
 from shiftwatch.statestore import PACKED_FROM, StateStore
@@ -312,6 +312,16 @@ class Daemon:
         self.owner = Ownership(cfg.shard.number, cfg.shard.of, cfg.shard.hashed_levels) \
             if cfg.shard is not None and cfg.shard.hashed_levels else None
         self._topic_of: dict[str, str] = {}  # stream -> a topic it came on (with self.owner)
+        # A count (shard.of, hashed levels) that agrees with no other live shard of the set is
+        # not taken up (see _take_up_count): at a start the shard leaves the cluster's mapping
+        # record alone (_count_unnoted) and takes no samples meanwhile (_count_held) unless it
+        # is new to the set; at a reload it goes on with the count it ran (_count_pending: the
+        # configuration that brought the new one).  All are looked at again every second.
+        self._count_unnoted = False
+        self._count_held = False
+        self._count_new = False
+        self._count_pending: Config | None = None
+        self._count_said: str | None = None
         self.nats: Any = None  # shiftwatch.natsio.NatsIO, with a cluster section
         self.cluster: Any = None  # shiftwatch.clusterstate.ClusterState, with state.keep: cluster
         self.lease: ShardLease | None = None
@@ -645,7 +655,8 @@ class Daemon:
         self.log.info("connected to the NATS cluster %s", self.nats.where)
         if shard is not None:
             self.lease = ShardLease(self.nats, name=cc.name, shard=shard.number, lease=cc.lease,
-                                    replicas=cc.replicas, logger=self.log)
+                                    replicas=cc.replicas, logger=self.log,
+                                    count=(shard.of, shard.hashed_levels) if shard.hashed_levels else None)
             self._setup_retried(self.lease.setup)
             if not self.lease.claim(self._stop):
                 return
@@ -815,6 +826,92 @@ class Daemon:
             self.metrics.states_set_aside.inc()
             self.log.warning("%s: set aside and written anew with this shard's mapping (shard.of %d); "
                              "the mapping before is not known", self.cluster.mapping_damaged, self.owner.of)
+
+    def _count_disagreement(self, count: Count) -> str | None:
+        """None when this shard may take up ``count`` (shard.of, hashed levels): see
+        partition.count_disagreement, judged by the counts the other live shards announce in
+        their leases; otherwise what disagrees (also when the leases cannot be read: the
+        count is taken up only once they have said).  Notes in ``_count_new`` whether the
+        shard is new to the set (partition.new_to_the_set)."""
+        self._count_new = False
+        if self.lease is None or not count[1]:
+            return None
+        try:
+            peers = self.lease.peers()
+        except ClusterError as exc:
+            return f"the other shards' shard.of cannot be read ({exc})"
+        self._count_new = new_to_the_set(self.lease.shard, peers)
+        return count_disagreement(self.lease.shard, count, peers)
+
+    def _take_up_count(self) -> None:
+        """At start: the shard's count goes into the cluster's mapping record (_note_mapping)
+        only when it agrees with the other live shards of the set.  Otherwise (one shard of
+        a running set started with a wrong shard.of, say) the record is left as it is and
+        the shard takes no samples (they stay with the broker) until another live shard
+        runs the same count or this one's configuration agrees again (_recheck_count).  A
+        shard new to the set (step 1 of a change: past every other shard's shard.of, so the
+        servers' mapping sends it nothing yet) takes samples all the same, as before: only
+        the record waits.
+        Until 2026-12-04 every start rewrote the record: a typo made the other shards take
+        the shard's own count for a change of the number of shards, and the real mapping
+        before was lost."""
+        why = None if self.owner is None else self._count_disagreement((self.owner.of, self.owner.levels))
+        if why is None:
+            self._note_mapping(changed=False)
+            return
+        self._count_unnoted = True
+        self._count_held = not self._count_new
+        self._say_count(why)
+
+    def _say_count(self, why: str | None) -> None:
+        """The disagreement of this shard's count (None: none any more) in the log (once per
+        change of what is said), the metrics and the status page."""
+        self.metrics.shard_of_disputed.set(0 if why is None else 1)
+        if why is None:
+            self.status.set_notice("shard_of", None)
+            if self._count_said is not None:
+                self.log.info("shard %d: shard.of %d is taken up (it agrees with the other live shards, "
+                              "or is the one in force); the cluster's mapping record is brought up to date",
+                              self.lease.shard if self.lease else -1,
+                              self.owner.of if self.owner is not None else 0)
+            self._count_said = None
+            return
+        if self._count_pending is not None and self.owner is not None:
+            then = (f"it goes on with shard.of {self.owner.of}, the count in force, and leaves the cluster's "
+                    "mapping record as it is")
+        elif not self._count_held:
+            then = ("this shard is new to the set (past the others' shard.of): it takes the samples of its "
+                    "partition (none come before the servers' mapping changes) and leaves the cluster's "
+                    "mapping record as it is")
+        else:
+            then = ("it takes no samples (they stay with the broker, unacknowledged) and leaves the "
+                    "cluster's mapping record as it is")
+        text = (f"{why}: {then}, until another live shard runs the same shard.of (a change of the "
+                "number of shards: reload or restart the others too) or this shard's configuration "
+                "agrees again (a typo: correct it and reload)")
+        self.status.set_notice("shard_of", text)
+        if text != self._count_said:
+            self.log.warning("shard %d: %s", self.lease.shard if self.lease else -1, text)
+            self._count_said = text
+
+    def _recheck_count(self) -> None:
+        """Every second while this shard's count disagrees with the other live shards': taken
+        up once it agrees (another shard changed too)."""
+        if self._count_pending is not None:
+            pending = self._count_pending
+            assert pending.shard is not None
+            why = self._count_disagreement((pending.shard.of, tuple(pending.shard.hashed_levels or ())))
+            if why is None:
+                self._count_pending = None
+                self._set_shard(pending, agreed=True)
+            self._say_count(why)
+        elif self._count_unnoted:
+            assert self.owner is not None
+            why = self._count_disagreement((self.owner.of, self.owner.levels))
+            if why is None:
+                self._count_held = self._count_unnoted = False
+                self._note_mapping(changed=False)
+            self._say_count(why)
 
     def _unpark(self, name: str, spec: StreamConfig, unit: str | None, parked: list[JournalGroup],
                 now: float) -> JournalGroup | None:
@@ -1073,18 +1170,52 @@ class Daemon:
             self.metrics.remove_stream(n)
             self.status.forget(n)
 
-    def _set_shard(self, new: Config) -> None:
+    def _set_shard(self, new: Config, *, agreed: bool = False) -> None:
         """SIGHUP: take shard.of and shard.hashed_levels from the file (the number, the
-        prefix and the cluster stay until the next start)."""
+        prefix and the cluster stay until the next start), once the count agrees with the
+        other live shards of the set (see _take_up_count; ``agreed``: checked already)."""
         sh, nsh = self.cfg.shard, new.shard
         if sh is None or nsh is None:
             if (sh is None) != (nsh is None):
                 self.log.warning("the shard section was added or removed: that takes a restart")
             return
-        if nsh.topic_prefix != sh.topic_prefix:
+        if nsh.topic_prefix != sh.topic_prefix and not agreed:
             self.log.warning("shard.topic_prefix changed: that takes a restart (kept: %s)", sh.topic_prefix)
-        if (nsh.of, nsh.hashed_levels) == (sh.of, sh.hashed_levels):
+        count = (nsh.of, tuple(nsh.hashed_levels or ()))
+        if self._count_held:
+            # Started with a count the other live shards disagreed with: nothing was taken
+            # under it, so the file's count simply replaces it, and is judged in its turn.
+            self.cfg = dataclasses.replace(self.cfg, shard=dataclasses.replace(
+                sh, of=nsh.of, hashed_levels=nsh.hashed_levels))
+            if self.lease is not None:
+                self.lease.announce(count if nsh.hashed_levels else None)
+            if not nsh.hashed_levels or self.owner is None:
+                self.owner = None
+                self._count_held = self._count_unnoted = False
+                self._say_count(None)
+                return
+            self.owner.change(nsh.of, nsh.hashed_levels)
+            self._recheck_count()
             return
+        if (nsh.of, nsh.hashed_levels) == (sh.of, sh.hashed_levels):
+            if self._count_pending is not None:
+                # Back to the count in force (a typo corrected): nothing to take up.
+                self._count_pending = None
+                if self.lease is not None:
+                    self.lease.announce(count if nsh.hashed_levels else None)
+                self._say_count(None)
+            return
+        if nsh.hashed_levels and self.lease is not None and not agreed:
+            self.lease.announce(count)
+            why = self._count_disagreement(count)
+            if why is not None:
+                self._count_pending = new
+                self._say_count(why)
+                return
+            if self._count_pending is not None or self._count_unnoted:
+                self._count_pending = None
+                self._count_unnoted = False
+                self._say_count(None)
         self.cfg = dataclasses.replace(self.cfg, shard=dataclasses.replace(
             sh, of=nsh.of, hashed_levels=nsh.hashed_levels))
         if not nsh.hashed_levels:
@@ -1160,7 +1291,7 @@ class Daemon:
         self._join_cluster()
         if self._stop.is_set():
             return
-        self._note_mapping(changed=False)
+        self._take_up_count()
         if not self.in_cluster:
             self.restore()
         settle_heap()
@@ -1242,6 +1373,8 @@ class Daemon:
             now = time.monotonic()
             if now >= next_check:
                 self.check_journal()
+                if self._count_unnoted or self._count_pending is not None:
+                    self._recheck_count()
                 if self.link is not None:
                     self.link.retry_subscriptions()
                 next_check = now + 1.0
@@ -1270,6 +1403,12 @@ class Daemon:
             limit = DRAIN
         if self._held_round is not None:
             self._retry_held_round()
+            return 0
+        if self._count_held:
+            # Started with a count no other live shard agrees with: nothing is taken (the
+            # messages stay unacknowledged with the broker) until it is taken up.
+            self._stop.wait(timeout)
+            self._gauges()
             return 0
         if self.handover is not None:
             if self._answers:
@@ -1372,7 +1511,8 @@ class Daemon:
         # Process what was queued when the stop came, no more: under load the
         # inbox refills, and what arrives now is delivered again after the
         # restart (it is not acknowledged).
-        left = len(self.inbox)
+        # (None while the shard's count is not taken up: they stay with the broker.)
+        left = 0 if self._count_held else len(self.inbox)
         self.log.info("stopping: processing %d queued message(s)", left)
         while left > 0:
             msgs = self.inbox.take(min(left, DRAIN), ROUND_BYTES, 0.0)
@@ -1576,13 +1716,15 @@ class Daemon:
         if not parked:
             return True
         try:
-            self.cluster.park(parked)
+            # Counted as the cluster stores them: a round held after this (another shard's
+            # samples not written, say) parks them again, and the cluster keeps one copy.
+            # Until 2026-12-04 each attempt counted them all again.
+            self.cluster.park(parked, stored=self.metrics.samples_parked.inc)
         except ClusterError as exc:
             self.metrics.journal_failures.inc()
             self.rlog.warning("cluster_park", f"samples of streams waiting for their last writer not "
                               f"parked in the cluster ({exc}); the round is held and tried again", now)
             return False
-        self.metrics.samples_parked.inc(sum(len(g.values) for g in parked))
         self._parked_here.update(g.stream for g in parked)
         return True
 

@@ -16,6 +16,11 @@ The bucket ``<name>_owners`` (3 replicas) has one key per shard,
   ownership: the daemon stops at once with exit status 3, before the key can
   expire and be claimed elsewhere, and the service manager starts it again
   (it then waits for the lease like any newcomer).
+- **Count**: the entry also says which count (``shard.of`` and
+  ``shard.hashed_levels``) the shard's configuration gives it (:meth:`announce`
+  writes a new one at once), so that a shard can see whether the other live
+  shards of the set agree with its own before it takes it up (:meth:`peers`,
+  ``partition.count_disagreement``).
 - **Handover**: a daemon that stops (SIGTERM) releases the key after its last
   acknowledgement and snapshot, so the next owner starts at once; a daemon
   that dies (SIGKILL, a lost box) holds it until it expires, at most
@@ -37,6 +42,7 @@ import time
 from typing import Any
 
 from shiftwatch.natsio import ClusterError, NatsIO
+from shiftwatch.partition import Count
 
 __all__ = ["ShardLease"]
 
@@ -45,7 +51,7 @@ class ShardLease:
     """The claim of one shard (see the module docstring)."""
 
     def __init__(self, io: NatsIO, *, name: str, shard: int, lease: float, replicas: int,
-                 logger: logging.Logger) -> None:
+                 logger: logging.Logger, count: Count | None = None) -> None:
         self.io = io
         self.bucket = f"{name}_owners"
         self.key = f"shard-{shard}"
@@ -59,9 +65,56 @@ class ShardLease:
         self.lost: str | None = None
         self.lost_event = threading.Event()
         self._task: Any = None
+        #: The count (shard.of, hashed levels) this shard's configuration gives it, announced
+        #: in the entry (None: none, the shard has no hashed levels).
+        self.count: Count | None = None if count is None else (count[0], tuple(count[1]))
 
     def _value(self) -> bytes:
-        return json.dumps({**self.owner, "renewed_at": time.time()}).encode()
+        doc: dict[str, Any] = {**self.owner, "renewed_at": time.time()}
+        if self.count is not None:
+            doc["of"], doc["levels"] = self.count[0], list(self.count[1])
+        return json.dumps(doc).encode()
+
+    def announce(self, count: Count | None) -> None:
+        """The count this shard's configuration gives it now (a reload): written to the
+        entry at once, so that the other shards see it before the next renewal.  A write
+        that does not get through is left to that renewal (within a third of the lease)."""
+        self.count = None if count is None else (count[0], tuple(count[1]))
+        if self._rev is None or self.lost is not None:
+            return
+
+        async def go() -> None:
+            for _attempt in range(3):
+                rev = await self.io.kv_update(self.bucket, self.key, self._value(), int(self._rev or 0))
+                if rev is not None:
+                    self._rev = rev
+                    self._last_ok = time.monotonic()
+                    return
+                # The renewal wrote meanwhile (the same loop): carry on from its revision.
+                entry = await self.io.kv_get(self.bucket, self.key)
+                if entry is None or _owner_id(entry.value) != self.owner["id"]:
+                    return  # judged by the renewal
+                self._rev = entry.revision
+
+        try:
+            self.io.run(go())
+        except ClusterError as exc:
+            self.log.warning("shard %d: the count in its lease not written at once (%s); the next "
+                             "renewal writes it", self.shard, exc)
+
+    def peers(self) -> dict[int, Count | None]:
+        """The other live shards of the set (those whose lease entry is there) and the count
+        each announces (None: none, or not readable).  Raises ClusterError."""
+        async def go() -> dict[int, Count | None]:
+            prefix = f"$KV.{self.bucket}."
+            subjects = await self.io.subjects(f"KV_{self.bucket}", prefix + "*")  # (a whole token)
+            numbers = [int(k) for s in subjects if s.startswith(prefix + "shard-")
+                       and (k := s[len(prefix) + len("shard-"):]).isascii() and k.isdigit()]
+            numbers = [n for n in numbers if n != self.shard]
+            entries = await asyncio.gather(*(self.io.kv_get(self.bucket, f"shard-{n}") for n in numbers))
+            return {n: _count(e.value) for n, e in zip(numbers, entries) if e is not None}
+
+        return self.io.run(go())
 
     def setup(self) -> None:
         self.io.run(self.io.ensure_bucket(self.bucket, self.replicas, ttl=self.lease))
@@ -185,6 +238,21 @@ def _owner_id(value: bytes) -> str | None:
         return str(d["id"]) if isinstance(d, dict) else None
     except (ValueError, KeyError):
         return None
+
+
+def _count(value: bytes) -> Count | None:
+    """The count a lease entry announces (None: none, or not readable)."""
+    try:
+        d = json.loads(value)
+    except ValueError:
+        return None
+    if not isinstance(d, dict):
+        return None
+    of, levels = d.get("of"), d.get("levels")
+    if type(of) is not int or of < 1 or not isinstance(levels, list) or not levels \
+            or not all(type(x) is int and x > 0 for x in levels):
+        return None
+    return of, tuple(levels)
 
 
 def _sample(value: bytes) -> str:

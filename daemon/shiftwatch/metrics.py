@@ -893,7 +893,15 @@ class Metrics:
             "shiftwatch_samples_parked",
             "Samples of streams waiting for their last writer (see "
             "shiftwatch_stream_handovers_total), parked in the cluster so that their messages "
-            "could be acknowledged meanwhile; fed when the wait ends.", registry=reg)
+            "could be acknowledged meanwhile; fed when the wait ends. Each sample counts once, "
+            "when the cluster stores it: a round parked again after a failure adds nothing.",
+            registry=reg)
+        self.shard_of_disputed = Gauge(
+            "shiftwatch_shard_of_disputed",
+            "Shards only: 1 while the shard.of (and shard.hashed_levels) of this shard's "
+            "configuration agrees with no other live shard of the set, so it is not taken up: "
+            "after a start the shard takes no samples, after a reload it goes on with the count "
+            "in force; the log and the status page name the counts. Else 0.", registry=reg)
         self.states_set_aside = Counter(
             "shiftwatch_stream_states_set_aside",
             "Saved stream states that could not be used at start (malformed or damaged); "

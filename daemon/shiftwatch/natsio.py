@@ -253,12 +253,19 @@ class NatsIO:
         With ``expect_last`` the cluster stores the message only when the subject's
         last sequence is that number (0: no message on it yet); otherwise SequenceConflict.
         """
+        return (await self.publish_once(subject, payload, expect_last=expect_last, headers=headers))[0]
+
+    async def publish_once(self, subject: str, payload: bytes, *, expect_last: int | None = None,
+                           headers: dict[str, str] | None = None) -> tuple[int, bool]:
+        """:meth:`publish`, and whether the message was stored anew: False when JetStream
+        took it for a duplicate (its ``Nats-Msg-Id`` already stored within the stream's
+        duplicate window) and kept the copy it had."""
         hdrs = _publish_headers(headers, expect_last)
         try:
             ack = await self._js.publish(subject, payload, headers=hdrs)
         except Exception as exc:  # noqa: BLE001  as one of ours
             raise self._publish_error(subject, exc) from None
-        return int(ack.seq)
+        return int(ack.seq), not ack.duplicate
 
     async def publish_in_batch(self, subject: str, payload: bytes, *, expect_last: int | None = None,
                                headers: dict[str, str] | None = None) -> int:

@@ -23,9 +23,11 @@ Pure: no I/O, no clock.
 from __future__ import annotations
 
 import json
+from collections.abc import Mapping
 from dataclasses import dataclass
 
-__all__ = ["FNV32_OFFSET", "FNV32_PRIME", "Ownership", "Remap", "fnv1a_32", "partition_of"]
+__all__ = ["FNV32_OFFSET", "FNV32_PRIME", "Count", "Ownership", "Remap", "count_disagreement", "fnv1a_32",
+           "new_to_the_set", "partition_of"]
 
 #: 32-bit FNV-1a parameters (Fowler, Noll, Vo; the IETF draft "The FNV
 #: Non-Cryptographic Hash Algorithm", draft-eastlake-fnv).
@@ -38,6 +40,9 @@ LOGGED_STREAMS = 10_000
 #: A mapping record's time further ahead of a shard's clock than this (seconds) is taken
 #: for a clock error when the shard takes the mapping up again (``Remap.taken_up``).
 CLOCK_AHEAD = 60.0
+
+#: A shard's count: ``shard.of`` and ``shard.hashed_levels``, which together are the mapping.
+Count = tuple[int, tuple[int, ...]]
 
 
 def fnv1a_32(data: bytes) -> int:
@@ -71,6 +76,65 @@ def partition_of(topic: str, levels: tuple[int, ...], parts: int) -> int | None:
         return None
     key = "".join(tokens[i - 1] for i in levels).encode("utf-8", "surrogatepass")
     return fnv1a_32(key) % parts
+
+
+def count_disagreement(number: int, mine: Count, others: Mapping[int, Count | None]) -> str | None:
+    """Whether shard ``number`` may take up the count its configuration gives it (``mine``),
+    judged by the counts the other live shards of the set announce (``others``: shard
+    number -> count, None for a shard that announces none): None when it may, otherwise a
+    line that names the disagreement.
+
+    A count may be taken up when no other live shard announces one (the shard is alone,
+    or the others run a release that does not announce it), or when another live shard
+    runs or wants the same count: a change of the number of shards is made on every shard
+    within a short time, so the second shard to change agrees with the first.  A count
+    that every other live shard disagrees with is one shard's alone: a typo, or the first
+    step of a change that the others have not made yet; either way the cluster's mapping
+    record is not rewritten by it (see ``Daemon._take_up_count``).
+
+    >>> count_disagreement(1, (3, (2, 3, 4)), {0: (3, (2, 3, 4)), 2: (3, (2, 3, 4))}) is None
+    True
+    >>> count_disagreement(1, (4, (2, 3, 4)), {0: (3, (2, 3, 4)), 2: (3, (2, 3, 4))})
+    'shard.of 4 agrees with no other live shard of the set (shards 0, 2 run shard.of 3)'
+    >>> count_disagreement(0, (4, (2, 3, 4)), {1: (3, (2, 3, 4)), 3: (4, (2, 3, 4))}) is None  # one agrees
+    True
+    >>> count_disagreement(3, (4, (2, 3, 4)), {}) is None  # alone
+    True
+    >>> count_disagreement(1, (3, (2, 3)), {0: (3, (2, 3, 4)), 2: None})
+    'shard.of 3 over hashed levels [2, 3] agrees with no other live shard of the set (shard 0 runs shard.of 3 over hashed levels [2, 3, 4])'
+    """
+    known = {n: c for n, c in others.items() if n != number and c is not None}
+    if not known or mine in known.values():
+        return None
+    by: dict[Count, list[int]] = {}
+    for n, c in sorted(known.items()):
+        by.setdefault(c, []).append(n)
+    show_levels = any(levels != mine[1] for _of, levels in by)
+
+    def count(c: Count) -> str:
+        return f"shard.of {c[0]}" + (f" over hashed levels {list(c[1])}" if show_levels else "")
+
+    said = "; ".join(f"shard {ns[0]} runs {count(c)}" if len(ns) == 1
+                     else f"shards {', '.join(map(str, ns))} run {count(c)}" for c, ns in by.items())
+    return f"{count(mine)} agrees with no other live shard of the set ({said})"
+
+
+def new_to_the_set(number: int, others: Mapping[int, Count | None]) -> bool:
+    """Whether shard ``number`` has no partition under the count any other live shard
+    announces (it is past every one's ``shard.of``): a shard being added to the set, to
+    which the servers' mapping sends nothing before it changes too.
+
+    >>> new_to_the_set(3, {0: (3, (2, 3, 4)), 1: (3, (2, 3, 4)), 2: None})
+    True
+    >>> new_to_the_set(1, {0: (3, (2, 3, 4)), 2: (3, (2, 3, 4))})
+    False
+    >>> new_to_the_set(3, {0: (4, (2, 3, 4)), 1: (3, (2, 3, 4))})  # shard 0 already runs 4
+    False
+    >>> new_to_the_set(0, {})
+    False
+    """
+    known = [c for n, c in others.items() if n != number and c is not None]
+    return bool(known) and all(number >= of for of, _levels in known)
 
 
 class Ownership:

@@ -267,6 +267,8 @@ class StatusBoard:
         self._context: dict[str, deque[tuple[str, list[float], list[float]]]] = {}
         self._labels: dict[str, str | None] = {}
         self._providers: list[Callable[[str], Mapping[str, Any] | None]] = []
+        # What the daemon has to say about itself (key -> one line), shown above the streams.
+        self._notices: dict[str, str] = {}
         # Sample rates: the counts at the last two checkpoints (main thread writes, others read).
         self._prev: tuple[float, dict[str, int]] | None = None
         self._rates: dict[str, float] = {}
@@ -394,6 +396,15 @@ class StatusBoard:
                     self._windows[name] = copy
 
     # ------------------------------------------------------- providers
+    def set_notice(self, key: str, text: str | None) -> None:
+        """A line about the daemon itself (None: no more), shown above the streams, e.g. a
+        shard whose shard.of the other shards disagree with."""
+        with self._lock:
+            if text is None:
+                self._notices.pop(key, None)
+            else:
+                self._notices[key] = text
+
     def add_provider(self, provide: Callable[[str], Mapping[str, Any] | None]) -> None:
         """Add a source of more fields for every stream (see the module docstring)."""
         with self._lock:
@@ -439,6 +450,7 @@ class StatusBoard:
             "generated_text": clock(now, self.time_zone),
             "time_zone": zone_label(self.time_zone),
             "recent_s": RECENT_S,
+            "notices": self.notices(),
             "query": query,
             "counts": {"streams": all_streams, "matching": len(every),
                        "shown": min(len(every), limit),
@@ -446,6 +458,11 @@ class StatusBoard:
                        "recent": sum(s.recent(now) and not s.event_open for s in every)},
             "streams": [s.to_dict(self.time_zone, now) for s in every[:limit]],
         }
+
+    def notices(self) -> list[str]:
+        """The daemon's lines about itself (see :meth:`set_notice`)."""
+        with self._lock:
+            return [self._notices[k] for k in sorted(self._notices)]
 
     def has_stream(self, name: str) -> bool:
         """The stream is tracked (has a metrics snapshot)."""
@@ -611,6 +628,7 @@ def format_table(doc: Mapping[str, Any], width: int = 120) -> str:
             f"{counts.get('streams', 0)} stream(s), {counts.get('event_open', 0)} with an open event, "
             f"{counts.get('recent', 0)} with a recent one")
     lines = [str(doc.get("advisory", "")), head]
+    lines += [f"note: {_cell(str(n))}" for n in doc.get("notices", [])]
     rows = [("STREAM", "STATE", "LEVEL", "SIGMA", "/MIN", "LAST EVENT")]
     for s in doc.get("streams", []):
         ev = s.get("last_event")

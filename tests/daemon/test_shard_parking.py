@@ -701,3 +701,48 @@ def test_late_samples_parked_behind_are_set_aside_once_the_owner_has_begun(tmp_p
         assert _parked(server, topic) == ([], [], 0)
     finally:
         _close(d)
+
+
+def test_samples_parked_again_by_a_held_round_are_counted_once_on_the_real_metrics(
+        tmp_path: Path, server: int) -> None:
+    # A round parks a waiting stream's samples, then the cluster does not answer for another
+    # shard's samples of the same round (their journal write times out): the round is held
+    # and taken again whole, and parks the same samples again.  The cluster keeps one copy
+    # (the message id, JetStream's duplicate window), but shiftwatch_samples_parked_total
+    # counted every attempt: 40 for 20 samples.  Now it counts what the cluster stored anew.
+    # Read from the real /metrics endpoint (prometheus_client's parser is the reference for
+    # the exposition format).
+    from shiftwatch.natsio import ClusterError
+
+    from .killrun import metric, scrape
+
+    [topic] = _owned_by_1_of_2(1)
+    other = next(t for li in range(1, 5) for h in range(1, 9)
+                 if partition_of(t := f"brackenfield/line{li}/head{h}/fill", LEVELS, 2) == 0)
+    _old_writer(server, topic, 100)  # shard 0 wrote it moments ago: it waits here, parked
+    d = _daemon(tmp_path, server, "parked-twice")
+    served = d.metrics.serve("127.0.0.1:0", pages=d.status)
+    try:
+        real = d.cluster.journal
+        calls: list[int] = []
+
+        def no_answer_first(groups: list[JournalGroup]) -> list[JournalGroup]:
+            calls.append(len(groups))
+            if len(calls) == 1:  # the other shard's samples, the first time: the cluster is silent
+                raise ClusterError("NATS cluster (the test): no answer within 5 s")
+            return real(groups)
+
+        d.cluster.journal = no_answer_first
+        msgs = [_array(topic, 100.0, [500.0] * 20), _array(other, 0.0, [500.0] * 5)]
+        d.process(msgs)
+        assert topic in d._deferred and d._held_round is not None and d._held_round[0] == "load"
+        d.round(timeout=0.0)  # the held round, taken again whole
+        assert d._held_round is None and len(calls) == 2
+        times, values, _last = _parked(server, topic)
+        assert (times, values) == _sent(msgs, topic)  # one copy in the cluster
+        m = scrape(served.port)
+        assert metric(m, "shiftwatch_samples_parked_total") == 20
+        assert metric(m, "shiftwatch_samples_handed_over_total") == 5
+    finally:
+        served.close()
+        _close(d)

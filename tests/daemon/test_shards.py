@@ -570,7 +570,9 @@ def test_an_old_owner_not_yet_reloaded_answers_only_once_it_let_go(tmp_path: Pat
     # owners, not reloaded either, take them for another shard's; that is what the README's
     # order is for, and not checked here.  3,038 of 19,200 lost in a run of 2026-12-04;
     # none in the one after another shard's samples refused by a journal were parked
-    # instead of set aside.)
+    # instead of set aside; later that day, on a busy machine, 2,018 and 2,790 in two runs
+    # of that code and 1,469 to 2,745 in three with a shard.of taken up only when another
+    # live shard agrees: it varies from run to run.)
     plan = Plan(samples=1600, rate=100.0)
     r = _run(tmp_path, cluster, "late", plan)
     to3 = [s for s in plan.names() if partition_of(s, HASHED_LEVELS, 4) == 3]

@@ -114,6 +114,11 @@ async function refreshOverview() {
     if (q) text += "; " + c.matching + " match";
     if (c.shown < c.matching) text += "; the first " + c.shown + " shown (narrow by name to see others)";
     show("counts", text);
+    const notices = document.getElementById("notices");
+    if (notices) {
+      notices.textContent = (d.notices || []).join(" ");
+      notices.hidden = !(d.notices && d.notices.length);
+    }
     const body = document.querySelector("#streams tbody");
     const rows = d.streams.map(overviewRow);
     if (rows.length === 0) {
