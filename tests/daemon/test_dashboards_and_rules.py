@@ -208,7 +208,13 @@ def test_the_rules_fire_when_they_should_and_not_otherwise(tmp_path: Path) -> No
              "values": "0+60x40"},
             {"series": f'shiftwatch_broker_connected{{{sel},shard="0"}}', "values": "1x10"},
             {"series": f'shiftwatch_broker_connected{{{sel},shard="1"}}', "values": "1 0x10"},
+            # Shard 1 started with a shard.of the others do not run: held from minute 1 on.
+            {"series": f'shiftwatch_shard_of_disputed{{{sel},shard="0"}}', "values": "0x10"},
+            {"series": f'shiftwatch_shard_of_disputed{{{sel},shard="1"}}', "values": "0 1x10"},
         ], "alert_rule_test": [
+            {"eval_time": "4m", "alertname": "ShiftwatchShardCountDisputed", "exp_alerts": []},  # not yet for 5m
+            {"eval_time": "7m", "alertname": "ShiftwatchShardCountDisputed",
+             "exp_alerts": [_alert("ShiftwatchShardCountDisputed", **a, shard="1")]},
             {"eval_time": "30m", "alertname": "ShiftwatchMessagesDropped",
              "exp_alerts": [_alert("ShiftwatchMessagesDropped", instance="edge1:9650", shard="1",
                                    reason="not_json")]},
