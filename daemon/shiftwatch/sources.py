@@ -43,7 +43,7 @@ from typing import Any, BinaryIO, Self
 import numpy as np
 from numpy.typing import NDArray
 
-from shiftwatch.decode import _NONFINITE, _NUMBER, EPOCH_MS_ABOVE
+from shiftwatch.decode import _NONFINITE, _NUMBER, _RFC3339, EPOCH_MS_ABOVE
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -264,10 +264,22 @@ def _epoch_rule(t: FloatArray) -> FloatArray:
     return t
 
 
+#: What a time that is none of the forms read is told, with the form wanted.
+NOT_A_TIME = ("is not RFC 3339, epoch seconds or epoch milliseconds (an RFC 3339 time has a date, a time "
+              "of day to the second and a UTC offset, as in 2026-03-02T06:00:00Z or 2026-03-02 07:00:00.5+01:00)")
+
+
 def parse_time(text: str, tz: tzinfo | None = None) -> float:
     """RFC 3339 text, epoch seconds or epoch milliseconds as epoch seconds.
 
-    Text without a UTC offset is read in ``tz``, and refused without one.
+    Text is RFC 3339's date-time (section 5.6) and no other ISO 8601 form: the
+    grammar of the daemon's decoder (:data:`shiftwatch.decode._RFC3339`), with a
+    ``T``, ``t`` or space between date and time, ``Z`` or ``z``, second 60 (a
+    leap second, read as the next second as POSIX counts it).  A date alone, the
+    basic form, week dates, hours or minutes alone, a decimal comma, an offset
+    without its colon, all of which ``datetime.fromisoformat`` takes, are
+    refused.  Text without a UTC offset is read in ``tz``, and refused without
+    one.
 
     Examples
     --------
@@ -275,27 +287,40 @@ def parse_time(text: str, tz: tzinfo | None = None) -> float:
     (1772431200.25, 1772431200.5, 1772431200.25)
     >>> parse_time("2026-03-02T07:00:00", time_zone("Europe/Berlin"))
     1772431200.0
+    >>> parse_time("1990-12-31t23:59:60.25z")
+    662688000.25
     >>> parse_time("2026-03-02T07:00:00")
     Traceback (most recent call last):
     ...
     shiftwatch.sources.TimeTextError: has no UTC offset; say which time zone the file is in with --timezone (an IANA name such as Europe/Berlin)
+    >>> parse_time("2026-03-02", time_zone("Europe/Berlin"))
+    Traceback (most recent call last):
+    ...
+    shiftwatch.sources.TimeTextError: is not RFC 3339, epoch seconds or epoch milliseconds (an RFC 3339 time has a date, a time of day to the second and a UTC offset, as in 2026-03-02T06:00:00Z or 2026-03-02 07:00:00.5+01:00)
     """
     s = text.strip()
-    if "T" in s or "t" in s or ":" in s or "-" in s[1:]:
-        s, leap = _rfc3339_forms(s)
-        dt = datetime.fromisoformat(s)
-        if dt.tzinfo is None:
+    m = _RFC3339.fullmatch(s)
+    if m is not None:
+        date, clock, offset = m.groups()
+        leap = 0.0
+        if clock[6:8] == "60":  # a leap second (RFC 3339 section 5.6): the next second, as POSIX counts it
+            clock, leap = clock[:6] + "59" + clock[8:], 1.0
+        if offset is None:
             if tz is None:
                 raise TimeTextError("has no UTC offset; say which time zone the file is in with --timezone "
                                     "(an IANA name such as Europe/Berlin)")
-            local = dt
-            dt = dt.replace(tzinfo=tz)
-            t = dt.timestamp()
+            local = datetime.fromisoformat(f"{date}T{clock}")
+            t = local.replace(tzinfo=tz).timestamp()
             if _out_of_range(t) is None and datetime.fromtimestamp(t, tz).replace(tzinfo=None) != local:
                 raise TimeTextError(f"does not exist in {tz} (the clocks were put forward)")
-        t = dt.timestamp() + leap
+        else:
+            t = datetime.fromisoformat(f"{date}T{clock}{'+00:00' if offset in 'Zz' else offset}").timestamp()
+        t += leap
     else:
-        v = number(s)
+        try:
+            v = number(s)
+        except ValueError:
+            raise TimeTextError(NOT_A_TIME) from None
         if not math.isfinite(v):
             raise ValueError("not finite")
         t = v / 1000.0 if v > EPOCH_MS_ABOVE else v
@@ -305,38 +330,25 @@ def parse_time(text: str, tz: tzinfo | None = None) -> float:
     return t
 
 
-_LEAP_SECOND = re.compile(r"(\d{4}-\d\d-\d\d[Tt ]\d\d:\d\d:)60(?=[.,+Zz-]|$)", re.ASCII)
-
-
-def _rfc3339_forms(s: str) -> tuple[str, float]:
-    """The forms of RFC 3339 that ``datetime.fromisoformat`` does not take, put in one it does,
-    and the second to add back: a lower-case 't' or 'z' (section 5.6, the NOTE under the
-    grammar), and a leap second, second 60 (section 5.6), read as the next minute's second 0
-    as POSIX counts it ("Seconds Since the Epoch") and as the daemon's decoder reads it.
-
-    >>> _rfc3339_forms("1990-12-31t23:59:60.25z")
-    ('1990-12-31t23:59:59.25Z', 1.0)
-    """
-    if s[-1:] == "z":
-        s = s[:-1] + "Z"
-    m = _LEAP_SECOND.match(s)
-    if m is None:
-        return s, 0.0
-    return m.group(1) + "59" + s[m.end():], 1.0
+#: Lines of RFC 3339 times in UTC with an upper-case 'T' and 'Z', the texts numpy's parser reads
+#: as :func:`parse_time` does (numpy also takes hours or minutes alone and a space before the 'Z').
+_RFC3339_Z_LINES = re.compile(r"(?:\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d(?:\.\d+)?Z\n)*", re.ASCII)
 
 
 def _parse_times(texts: list[str], tz: tzinfo | None) -> list[float]:
     """Parse time texts (distinct ones, usually).  When every text is RFC 3339
     in UTC with a ``Z``, numpy's C parser does them all at once; otherwise each
     goes through :func:`parse_time`."""
-    if texts and all(x.endswith("Z") and "T" in x for x in texts):
+    if texts and _RFC3339_Z_LINES.fullmatch("\n".join(texts) + "\n"):
         try:
             stamps = np.array([x[:-1] for x in texts], dtype="datetime64[us]")
         except ValueError:
             pass
         else:
-            secs: list[float] = (stamps.astype(np.int64) / 1e6).tolist()
-            return secs
+            t = stamps.astype(np.int64) / 1e6
+            if bool(_in_range(t).all()):  # numpy reads the year 0000 too: parse_time names it
+                secs: list[float] = t.tolist()
+                return secs
     return [parse_time(x, tz) for x in texts]
 
 
@@ -873,8 +885,7 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
                     last_text = None
                     ok = False
                 except (ValueError, OverflowError):
-                    problems.append(f"{name}:{line}: time {text!r} is not RFC 3339, epoch seconds "
-                                    "or epoch milliseconds")
+                    problems.append(f"{name}:{line}: time {text!r} {NOT_A_TIME}")
                     last_text = None
                     ok = False
                 else:
@@ -1624,7 +1635,7 @@ def _arrow_times(col: Any, column: str, tz: tzinfo | None, first: int,
                 except TimeTextError as exc:
                     got = f"time {x!r} {exc}"
                 except (ValueError, OverflowError):
-                    got = f"time {x!r} is not RFC 3339, epoch seconds or epoch milliseconds"
+                    got = f"time {x!r} {NOT_A_TIME}"
                 cache[x] = got
             if isinstance(got, str):
                 valid[i] = False
