@@ -301,20 +301,23 @@ def parse_time(text: str, tz: tzinfo | None = None) -> float:
     s = text.strip()
     m = _RFC3339.fullmatch(s)
     if m is not None:
-        date, clock, offset = m.groups()
+        # Within this grammar fromisoformat reads the text as RFC 3339 does, but for 'z' and second 60.
         leap = 0.0
-        if clock[6:8] == "60":  # a leap second (RFC 3339 section 5.6): the next second, as POSIX counts it
-            clock, leap = clock[:6] + "59" + clock[8:], 1.0
-        if offset is None:
+        if s[17:19] == "60" or s[-1] == "z":
+            date, clock, offset = m.groups()
+            if clock[6:8] == "60":  # a leap second (RFC 3339 section 5.6): the next second, as POSIX counts it
+                clock, leap = clock[:6] + "59" + clock[8:], 1.0
+            s = f"{date}T{clock}{'Z' if offset in ('Z', 'z') else offset or ''}"
+        dt = datetime.fromisoformat(s)
+        if dt.tzinfo is None:
             if tz is None:
                 raise TimeTextError("has no UTC offset; say which time zone the file is in with --timezone "
                                     "(an IANA name such as Europe/Berlin)")
-            local = datetime.fromisoformat(f"{date}T{clock}")
-            t = local.replace(tzinfo=tz).timestamp()
-            if _out_of_range(t) is None and datetime.fromtimestamp(t, tz).replace(tzinfo=None) != local:
+            t = dt.replace(tzinfo=tz).timestamp()
+            if _out_of_range(t) is None and datetime.fromtimestamp(t, tz).replace(tzinfo=None) != dt:
                 raise TimeTextError(f"does not exist in {tz} (the clocks were put forward)")
         else:
-            t = datetime.fromisoformat(f"{date}T{clock}{'+00:00' if offset in 'Zz' else offset}").timestamp()
+            t = dt.timestamp()
         t += leap
     else:
         try:
