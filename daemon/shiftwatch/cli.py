@@ -499,6 +499,8 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
         summary += f"; {result.file_notes} file(s) not valid UTF-8 (characters replaced)"
     if result.unread_files:
         summary += f"; {len(result.unread_files)} file(s) could not be read and were skipped"
+    for note in result.notes:  # nothing of the file was lost: not counted among the problems
+        summary += f"; note: {note}"
     if result.repeated_hour:
         summary += (f"; {result.repeated_hour} time(s) in the hour repeated when the clocks went back "
                     f"in {args.timezone} read as its second occurrence (their stream's times went back "
@@ -549,6 +551,8 @@ def cmd_fit(args: argparse.Namespace) -> int:
         _err(str(exc))
         return EXIT_USAGE
     _print_problems(read.problems, total=read.problem_count)
+    for note in read.notes:
+        print(f"note: {note}", file=sys.stderr)
     names = sorted(read.streams)
     if not names:  # say why, not "holds 0 streams" or "no stream named 'a' (streams: )"
         if read.problems:
@@ -780,6 +784,8 @@ def _design_from(args: argparse.Namespace) -> int:
         _err(str(exc))
         return EXIT_USAGE
     _print_problems(read.problems)
+    for note in read.notes:
+        print(f"note: {note}", file=sys.stderr)
     names = sorted(read.streams)
     if not names:
         _err(f"{', '.join(args.from_csv)}: no readable rows, so nothing to suggest")

@@ -315,7 +315,11 @@ def parse_time(text: str, tz: tzinfo | None = None) -> float:
                                     "(an IANA name such as Europe/Berlin)")
             t = dt.replace(tzinfo=tz).timestamp()
             if _out_of_range(t) is None and datetime.fromtimestamp(t, tz).replace(tzinfo=None) != dt:
-                raise TimeTextError(f"does not exist in {tz} (the clocks were put forward)")
+                # Far from 1970 a double holds no microseconds, so the second decides (a gap in a
+                # zone's clock is whole seconds).
+                whole = dt.replace(microsecond=0)
+                if datetime.fromtimestamp(whole.replace(tzinfo=tz).timestamp(), tz).replace(tzinfo=None) != whole:
+                    raise TimeTextError(f"does not exist in {tz} (the clocks were put forward)")
         else:
             t = dt.timestamp()
         t += leap
@@ -338,19 +342,23 @@ def parse_time(text: str, tz: tzinfo | None = None) -> float:
 _RFC3339_Z_LINES = re.compile(r"(?:\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d(?:\.\d+)?Z\n)*", re.ASCII)
 
 
-def _parse_times(texts: list[str], tz: tzinfo | None) -> list[float]:
+def _parse_times(texts: list[str], tz: tzinfo | None, z_form: bool = False) -> list[float]:
     """Parse time texts (distinct ones, usually).  When every text is RFC 3339
-    in UTC with a ``Z``, numpy's C parser does them all at once; otherwise each
-    goes through :func:`parse_time`."""
-    if texts and _RFC3339_Z_LINES.fullmatch("\n".join(texts) + "\n"):
+    in UTC with a ``Z`` (``z_form``: the caller has checked it), numpy's C parser
+    does them all at once; otherwise each goes through :func:`parse_time`."""
+    if texts and (z_form or _RFC3339_Z_LINES.fullmatch("\n".join(texts) + "\n")):
         try:
             stamps = np.array([x[:-1] for x in texts], dtype="datetime64[us]")
         except ValueError:
             pass
         else:
-            t = stamps.astype(np.int64) / 1e6
-            if bool(_in_range(t).all()):  # numpy reads the year 0000 too: parse_time names it
-                secs: list[float] = t.tolist()
+            us = stamps.astype(np.int64)
+            # A whole number of microseconds up to 2**53 is a double exactly, and the one division is
+            # correctly rounded, as datetime.timestamp() is; further from 1970 (before 1685, after
+            # 2255) the conversion would round first.  numpy reads the year 0000 too: parse_time
+            # names it.
+            if bool((np.abs(us) <= 2**53).all()):
+                secs: list[float] = (us / 1e6).tolist()
                 return secs
     return [parse_time(x, tz) for x in texts]
 
@@ -382,6 +390,18 @@ class Source:
     group_rows: list[int] = field(default_factory=list)
     #: the stream of every row, when a partition directory (``stream=NAME``) says it
     stream: str | None = None
+    #: CSV, wide: the unnamed columns at the end of the header (it ends with a comma), whose cells
+    #: must be empty: a cell there that holds something is a problem, and the rest of its row is read
+    unnamed: list[int] = field(default_factory=list)
+
+    def remark(self) -> str | None:
+        """What the summary says once about this file though it loses nothing, or None."""
+        if not self.unnamed:
+            return None
+        first, last = self.unnamed[0] + 1, self.unnamed[-1] + 1
+        which = f"column {first} has no name (the header ends with a comma)" if first == last else \
+            f"columns {first} to {last} have no name (the header ends with commas)"
+        return f"{self.path}: the header's {which}; its empty cells were ignored"
 
     def where(self, row: int) -> str:
         """The place of a row in this file, as problems name it."""
@@ -477,10 +497,13 @@ def _pick_layout(name: str, header: list[str], layout: str, where: str) -> tuple
                              "followed by one column per tag")
     tags: list[tuple[int, str]] = []
     seen: set[str] = set()
-    for i, h in enumerate(header):
+    names = [h.lstrip("\ufeff").strip() for h in header]
+    # Unnamed columns at the end (a header ending in a comma, as spreadsheets write one) name no
+    # tag; their cells must be empty (see Source.unnamed).
+    last = max(i for i, n in enumerate(names) if n or i == ti)
+    for i, tag in enumerate(names[:last + 1]):
         if i == ti:
             continue
-        tag = h.lstrip("\ufeff").strip()
         if not tag:
             raise CsvFormatError(f"{where}: column {i + 1} of the header has no name; in a wide file "
                                  "each column after time names a tag")
@@ -592,7 +615,10 @@ def open_source(path: str, layout: str = "auto") -> Source:
                     raise CsvFormatError(f"{path}:1: the header is separated by {name}; shiftwatch reads "
                                          f"comma-separated files (got {header[0]!r})") from None
             raise
-        return Source(path, "csv", lay, header, ti, si, vi, tags, body_start=start, body_line=line)
+        named = {ti, *(c for c, _ in tags)}
+        unnamed = [i for i in range(len(header)) if i not in named] if lay == "wide" else []
+        return Source(path, "csv", lay, header, ti, si, vi, tags, body_start=start, body_line=line,
+                      unnamed=unnamed)
 
 
 def open_sources(paths: list[str | Path], layout: str = "auto", unread: list[str] | None = None) -> list[Source]:
@@ -655,8 +681,10 @@ class Block:
     """The rows of one chunk of a file, per stream, in file order.
 
     ``parts`` holds ``(stream, times, values, places)``; ``problems`` the
-    chunk's unreadable rows as messages, in file order; ``note`` a remark
-    about the whole file (not valid UTF-8), or None.
+    chunk's unreadable rows as messages, in file order; ``note`` a problem
+    of the whole file (not valid UTF-8), or None; ``remark`` what is said
+    once about the whole file though nothing of it was lost (an unnamed
+    empty column ignored: :meth:`Source.remark`), or None.
     """
 
     index: int
@@ -668,6 +696,7 @@ class Block:
     note: str | None = None
     #: problems counted beyond those in ``problems``
     unlisted: int = 0
+    remark: str | None = None
 
 
 class _Lines:
@@ -915,6 +944,11 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
                         app[2](fbits | line)
             elif ok:
                 have = len(row)
+                for c in src.unnamed:
+                    if c < have and row[c].strip():
+                        problems.append(f"{name}:{line}: column {c + 1} has no name in the header but holds "
+                                        f"{row[c]!r}; the cell was skipped (in a wide file each column after "
+                                        "time names a tag)")
                 for c, tag, app in tag_apps:
                     if c >= have:
                         continue  # a short row's missing cells (counted above)
@@ -934,7 +968,7 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
     parts = [(key, np.array(ts, dtype=np.float64), np.array(vs, dtype=np.float64), np.array(ps, dtype=np.int64))
              for key, (ts, vs, ps) in collected.items() if ts]
     note = f"{name}: the file is not valid UTF-8; unreadable characters were replaced" if lines.bad_utf8 else None
-    return Block(index, fidx, parts, problems, rows, nbytes, note)
+    return Block(index, fidx, parts, problems, rows, nbytes, note, remark=src.remark())
 
 
 # ---------------------------------------------------------------------------
@@ -1165,6 +1199,29 @@ def _iso_ms_times(body: _Body, col: int) -> FloatArray | None:
     return parsed if firsts.shape[0] == s.shape[0] else parsed[np.cumsum(new) - 1]
 
 
+def _z_form_column(body: _Body, col: int) -> bool:
+    """Whether every field of the column is ``YYYY-MM-DDTHH:MM:SS[.digits]Z`` of one width, its
+    bytes checked at once (what :data:`_RFC3339_Z_LINES` checks texts of any widths for).
+
+    >>> body = _Body.split(bytearray(b"2026-03-02T06:00:00.5Z,1\\n2026-03-02T06:00:01.5Z,2\\n" + bytes(16)), 0, 50, 2)
+    >>> _z_form_column(body, 0), _z_form_column(body, 1)
+    (True, False)
+    """
+    s, e = body.starts[:, col], body.ends[:, col]
+    width = int(e[0] - s[0])
+    if width < 20 or width == 21 or not bool((e - s == width).all()):
+        return False
+    c = np.frombuffer(body.buf, dtype=np.uint8)[s[:, None] + np.arange(width)]
+    fixed = {4: b"-", 7: b"-", 10: b"T", 13: b":", 16: b":", width - 1: b"Z"}
+    if width > 20:
+        fixed[19] = b"."
+    where = list(fixed)
+    if not bool((c[:, where] == np.frombuffer(b"".join(fixed.values()), dtype=np.uint8)).all()):
+        return False
+    digits = c[:, [i for i in range(width) if i not in fixed]] - np.uint8(48)
+    return bool((digits <= 9).all())  # below '0' wraps around
+
+
 def _fast_times(body: _Body, col: int, tz: tzinfo | None) -> FloatArray:
     """The time column as epoch seconds; ValueError (or OverflowError) at the first doubt."""
     times = _iso_ms_times(body, col)
@@ -1176,7 +1233,7 @@ def _fast_times(body: _Body, col: int, tz: tzinfo | None) -> FloatArray:
     else:
         tcol = body.texts(col)
         distinct = list(set(tcol))
-        parsed = dict(zip(distinct, _parse_times(distinct, tz)))
+        parsed = dict(zip(distinct, _parse_times(distinct, tz, _z_form_column(body, col))))
         times = np.fromiter(map(parsed.__getitem__, tcol), dtype=np.float64, count=len(tcol))
     if not bool(_in_range(times).all()):
         raise ValueError("a time out of range: the rows are read one by one, which names them")
@@ -1290,6 +1347,9 @@ def _read_fast(src: Source, buf: bytearray, begin: int, end: int, line0: int, fb
     try:
         times = _fast_times(body, src.time_col, tz)
         if src.layout == "wide":
+            for c in src.unnamed:  # a cell under no tag: the row reader names it
+                if not bool((body.ends[:, c] == body.starts[:, c]).all()):
+                    return None
             return _wide_parts(src, body, times, places), n
         vi = src.value_col
         values, plain = _parse_decimal_column(body, vi)
@@ -1439,7 +1499,7 @@ def parse_csv_chunk(src: Source, fidx: int, line0: int, chunk: bytes, index: int
     if utf8:
         got = _read_fast(src, buf, begin, end, line0, fidx << PLACE_BITS, tz)
         if got is not None:
-            return Block(index, fidx, got[0], [], got[1], size)
+            return Block(index, fidx, got[0], [], got[1], size, remark=src.remark())
     return _slow_rows(src, fidx, _Lines(buf, begin, end, None), line0, tz, index, size)
 
 

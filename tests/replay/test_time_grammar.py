@@ -39,7 +39,7 @@ from pathlib import Path
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
 from shiftwatch import decode, sources
@@ -261,6 +261,10 @@ def _fast_and_slow(text: str, zone: object) -> tuple[sources.Block | None, sourc
 
 @settings(max_examples=400, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(text=TEXTS, zone_given=st.booleans())
+@example(text="0001-01-01T00:00:00.1", zone_given=True)  # read as not existing in UTC, once: no microsecond there
+@example(text="2026-03-02T05:06:00-00:60", zone_given=False)  # the decoder read +01:60 as +02:00
+@example(text="2026-03-02T06Z", zone_given=False)  # numpy read hours alone
+@example(text="0001-01-01T00:00:00.0003Z", zone_given=False)  # numpy rounded twice, far from 1970
 def test_every_time_path_reads_what_rfc3339_section_5_6_allows_and_nothing_else(text: str, zone_given: bool) -> None:
     if "," in text or sources._NUMBER.fullmatch(text.strip()) or not text.strip():
         return  # a comma splits the CSV row; epoch numbers are test_number_forms.py's
