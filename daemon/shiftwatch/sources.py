@@ -339,11 +339,13 @@ def parse_time(text: str, tz: tzinfo | None = None) -> float:
 
 #: Lines of RFC 3339 times in UTC with an upper-case 'T' and 'Z', the texts numpy's parser reads
 #: as :func:`parse_time` does (numpy also takes hours or minutes alone and a space before the 'Z').
-_RFC3339_Z_LINES = re.compile(r"(?:\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d(?:\.\d+)?Z\n)*", re.ASCII)
+#: The repetition is possessive (``*+``): with ``*`` the match kept its place at every line, 27 MB
+#: for 60,000 lines.
+_RFC3339_Z_LINES = re.compile(r"(?:\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d(?:\.\d+)?Z\n)*+", re.ASCII)
 #: Lines of RFC 3339 times with a 'Z' or a numeric offset, no leap second and no lower-case 'z': the
 #: texts ``datetime.fromisoformat`` reads as :func:`parse_time` does, checked all in one match.
 _RFC3339_AWARE_LINES = re.compile(
-    r"(?:\d{4}-\d\d-\d\d[Tt ]\d\d:\d\d:[0-5]\d(?:\.\d+)?(?:Z|[+-](?:[01]\d|2[0-3]):[0-5]\d)\n)*", re.ASCII)
+    r"(?:\d{4}-\d\d-\d\d[Tt ]\d\d:\d\d:[0-5]\d(?:\.\d+)?(?:Z|[+-](?:[01]\d|2[0-3]):[0-5]\d)\n)*+", re.ASCII)
 
 
 def _parse_times(texts: list[str], tz: tzinfo | None, z_form: bool = False) -> list[float]:
