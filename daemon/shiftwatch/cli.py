@@ -146,6 +146,35 @@ def _print_problems(problems: list[str], limit: int = 20, total: int | None = No
         print(f"... and {total - shown} more problems like these", file=sys.stderr)
 
 
+def _values_set_aside(name: str, series: Any, values: Any, counts: dict[str, int],
+                      limit: int = 20) -> list[str]:
+    """The samples of a series read from files that replay's engine would set aside for their value
+    (NaN; infinite or beyond ``MAX_ABS_VALUE``, whose squares overflow a fit), as ``fit`` and
+    ``design --from`` leave them out: the problem line of each of the first ``limit``, named as
+    replay names them, and every one counted by reason into ``counts``."""
+    import numpy as np
+
+    from shiftwatch.core.screen import MAX_ABS_VALUE, REASONS
+
+    within = values <= MAX_ABS_VALUE  # NaN compares false; no copy of the values' magnitudes
+    within &= values >= -MAX_ABS_VALUE
+    bad = np.flatnonzero(~within)
+    del within
+    if bad.shape[0] == 0:
+        return []
+    nan = np.isnan(values[bad])
+    for reason, n in (("nan", int(nan.sum())), ("infinite", int((~nan).sum()))):
+        if n:
+            counts[reason] = counts.get(reason, 0) + n
+    return [f"{series.where(i)}: stream {name}: {REASONS['nan' if is_nan else 'infinite']}"
+            for i, is_nan in zip(bad[:limit].tolist(), nan[:limit].tolist())]
+
+
+def _set_aside_text(counts: dict[str, int]) -> str:
+    """``samples set aside: infinite 1, nan 2``, as replay's summary counts them."""
+    return "samples set aside: " + ", ".join(f"{k} {v}" for k, v in sorted(counts.items()))
+
+
 # ----------------------------------------------------------------- replay
 #: Replays of fewer samples finish too soon for a progress bar to help.
 PROGRESS_MIN_SAMPLES = 100_000
@@ -470,6 +499,8 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
         summary += f"; {result.file_notes} file(s) not valid UTF-8 (characters replaced)"
     if result.unread_files:
         summary += f"; {len(result.unread_files)} file(s) could not be read and were skipped"
+    for note in result.notes:  # nothing of the file was lost: not counted among the problems
+        summary += f"; note: {note}"
     if result.repeated_hour:
         summary += (f"; {result.repeated_hour} time(s) in the hour repeated when the clocks went back "
                     f"in {args.timezone} read as its second occurrence (their stream's times went back "
@@ -507,6 +538,7 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
 def cmd_fit(args: argparse.Namespace) -> int:
     import numpy as np
 
+    from shiftwatch.core.screen import MAX_ABS_VALUE
     from shiftwatch.core.stepfit import fit_step
     from shiftwatch.core.timefmt import format_time
     from shiftwatch.replay import CsvFormatError, read_long_csv
@@ -519,6 +551,8 @@ def cmd_fit(args: argparse.Namespace) -> int:
         _err(str(exc))
         return EXIT_USAGE
     _print_problems(read.problems, total=read.problem_count)
+    for note in read.notes:
+        print(f"note: {note}", file=sys.stderr)
     names = sorted(read.streams)
     if not names:  # say why, not "holds 0 streams" or "no stream named 'a' (streams: )"
         if read.problems:
@@ -540,7 +574,10 @@ def cmd_fit(args: argparse.Namespace) -> int:
     s = read.streams[name]
     t = np.asarray(s.times)
     v = np.asarray(s.values)
-    problems = bool(read.problems)
+    set_aside: dict[str, int] = {}
+    lines = _values_set_aside(name, s, v, set_aside)
+    _print_problems(lines, total=sum(set_aside.values()))
+    problems = bool(read.problems) or bool(set_aside)
     del read, s  # the rows' places go: an array of the series' length less at the fit
     # Copies only where needed (a series of 4 million rows held eight arrays of its length here):
     # rows in time order are the stable sort's own order, and all values are usually finite.
@@ -548,14 +585,15 @@ def cmd_fit(args: argparse.Namespace) -> int:
         order = np.argsort(t, kind="stable")
         t, v = t[order], v[order]
         del order
-    good = np.isfinite(v)
-    usable = int(good.sum())
+    usable = v.shape[0] - sum(set_aside.values())
     if usable < 5:
         _err(f"{args.csv}: stream {name!r} has {usable} usable samples; a step fit needs at least 5")
         return EXIT_USAGE
-    if usable < v.shape[0]:
+    if set_aside:
+        print(f"{_set_aside_text(set_aside)}; the fit used the other {usable}", file=sys.stderr)
+        good = np.abs(v) <= MAX_ABS_VALUE
         t, v = t[good], v[good]
-    del good
+        del good
     try:
         fit = fit_step(v, t, level=args.level, min_segment=args.min_segment)
     except ValueError as exc:
@@ -714,6 +752,7 @@ def _design_from(args: argparse.Namespace) -> int:
     """``design --from CSV``: suggested settings for every stream of a replay file."""
     import numpy as np
 
+    from shiftwatch.core.screen import MAX_ABS_VALUE
     from shiftwatch.core.suggest import measure_noise, suggest
     from shiftwatch.replay import CsvFormatError, read_long_csv
 
@@ -745,6 +784,8 @@ def _design_from(args: argparse.Namespace) -> int:
         _err(str(exc))
         return EXIT_USAGE
     _print_problems(read.problems)
+    for note in read.notes:
+        print(f"note: {note}", file=sys.stderr)
     names = sorted(read.streams)
     if not names:
         _err(f"{', '.join(args.from_csv)}: no readable rows, so nothing to suggest")
@@ -753,16 +794,21 @@ def _design_from(args: argparse.Namespace) -> int:
     per_day = args.plant_false_alarms_per_day or 1.0
     results: list[dict[str, Any]] = []
     unmeasured = []
+    set_aside: dict[str, int] = {}
+    aside_lines: list[str] = []
     for name in names:
         s = read.streams[name]
+        aside_lines += _values_set_aside(name, s, np.asarray(s.values, dtype=np.float64), set_aside,
+                                         limit=20 - len(aside_lines))
         unit = label = None
         if cfg is not None:
             sc = cfg.stream_for(name)
             unit = None if sc is None else sc.unit
             label = cfg.label_for(name)
+        t, v = np.asarray(s.times, dtype=np.float64), np.asarray(s.values, dtype=np.float64)
+        keep = np.abs(v) <= MAX_ABS_VALUE
         try:
-            noise = measure_noise(np.asarray(s.times, dtype=np.float64),
-                                  np.asarray(s.values, dtype=np.float64))
+            noise = measure_noise(t[keep], v[keep])
         except ValueError as exc:
             unmeasured.append(f"{name}: no suggestion: {exc}")
             results.append({"stream": name, "problem": str(exc)})
@@ -782,7 +828,10 @@ def _design_from(args: argparse.Namespace) -> int:
                 print(r["explanation"])
         for u in unmeasured:
             print(u)
-    return EXIT_BAD_DATA if read.problems or unmeasured else EXIT_OK
+    if set_aside:  # left out of the noise as replay's engine leaves them out
+        _print_problems(aside_lines, total=sum(set_aside.values()))
+        print(f"{_set_aside_text(set_aside)}; the suggestions use the other samples", file=sys.stderr)
+    return EXIT_BAD_DATA if read.problems or unmeasured or set_aside else EXIT_OK
 
 
 # ---------------------------------------------------------------- daemon

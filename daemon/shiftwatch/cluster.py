@@ -103,6 +103,7 @@ def _replay_partition(files: list[str], cwd: str, settings_for: Callable[[str], 
     if opened != files:
         res.read_problems = [_as_given(p, opened, files) for p in res.read_problems]
         res.unread_files = [_as_given(p, opened, files) for p in res.unread_files]
+        res.notes = [_as_given(p, opened, files) for p in res.notes]
         for outcome in res.streams.values():
             outcome.problems = [_as_given(p, opened, files) for p in outcome.problems]
     return res, [_file_of(p, files) for p in res.read_problems]
@@ -128,7 +129,7 @@ def merge_results(parts: list[ReplayResult], places: list[list[int]] | None = No
     return ReplayResult(records, streams, sum(p.rows for p in parts), read_problems,
                         sum(p.read_problem_count for p in parts), sum(p.file_notes for p in parts),
                         sum(p.repeated_hour for p in parts), [u for p in parts for u in p.unread_files],
-                        sum(p.files_read for p in parts))
+                        sum(p.files_read for p in parts), [n for p in parts for n in p.notes])
 
 
 def _check_scheduler(address: str, timeout: float) -> None:

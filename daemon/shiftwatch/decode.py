@@ -278,8 +278,11 @@ _MISSING = _Missing()
 # payload (say 64 KiB of digits and one letter) costs linear time.
 _NUMBER = re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?", re.ASCII)
 _NONFINITE = re.compile(r"[+-]?(?:(nan)|inf|infinity)", re.ASCII | re.IGNORECASE)
+#: RFC 3339 section 5.6's date-time ('T' may be 't' or a space, 'Z' may be 'z': its NOTE); an offset's
+#: hour is 00-23 and its minute 00-59 (time-numoffset), which datetime.fromisoformat does not check
+#: for the minute ("+01:60" read as +02:00).  Replay reads file times by this same grammar.
 _RFC3339 = re.compile(
-    r"(\d{4}-\d{2}-\d{2})[Tt ](\d{2}:\d{2}:\d{2}(?:\.\d+)?)([Zz]|[+-]\d{2}:\d{2})?", re.ASCII)
+    r"(\d{4}-\d{2}-\d{2})[Tt ](\d{2}:\d{2}:\d{2}(?:\.\d+)?)([Zz]|[+-](?:[01]\d|2[0-3]):[0-5]\d)?", re.ASCII)
 # A JSON string, or an unterminated one up to the end of the text: always
 # matches from a quote, so scanning stays linear on hostile input.
 _JSON_STRING = re.compile(r'"[^"\\]*(?:\\.[^"\\]*)*"?', re.DOTALL)

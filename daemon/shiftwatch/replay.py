@@ -218,6 +218,9 @@ class ReplayResult:
     unread_files: list[str] = field(default_factory=list)
     #: Files replayed.
     files_read: int = 0
+    #: What the summary says once about a file though nothing of it was lost (an unnamed empty
+    #: column ignored), in file order; not problems.
+    notes: list[str] = field(default_factory=list)
 
     @property
     def problems(self) -> list[str]:
@@ -269,6 +272,7 @@ class _Feeder:
         self.read_kept = 0
         self.read_count = 0
         self.notes: dict[int, str] = {}
+        self.remarks: dict[int, str] = {}
 
     def take_block(self, block: Block) -> None:
         """Count a block's rows and keep its problems (all but the parts)."""
@@ -277,6 +281,8 @@ class _Feeder:
         if block.note is not None and block.file not in self.notes:
             self.notes[block.file] = block.note
             self.read_count += 1
+        if block.remark is not None:
+            self.remarks.setdefault(block.file, block.remark)
         if self.read_kept < KEEP_PROBLEMS:
             # Later chunks come after these in the files: once KEEP_PROBLEMS are
             # kept here, no later one can be among the first.
@@ -364,9 +370,10 @@ class _Feeder:
                                       eng.samples_total, dict(eng.records_total), dict(eng.rejected_total), trace)
         return out
 
-    def read_summary(self) -> tuple[int, list[tuple[int, int, int, int, str]], int, dict[int, str], int]:
+    def read_summary(self) -> tuple[int, list[tuple[int, int, int, int, str]], int, dict[int, str], int,
+                                    dict[int, str]]:
         return (self.rows, self.read_problems, self.read_count, self.notes,
-                0 if self.repeated is None else self.repeated.moved)
+                0 if self.repeated is None else self.repeated.moved, self.remarks)
 
 
 def _merge(parts: list[tuple[dict[str, StreamOutcome], tuple[Any, ...]]]) -> ReplayResult:
@@ -377,14 +384,16 @@ def _merge(parts: list[tuple[dict[str, StreamOutcome], tuple[Any, ...]]]) -> Rep
     kept: list[tuple[int, int, int, int, str]] = []
     count = 0
     notes: dict[int, str] = {}
+    remarks: dict[int, str] = {}
     repeated = 0
-    for outcome, (r, k, c, n, h) in parts:
+    for outcome, (r, k, c, n, h, m) in parts:
         streams.update(outcome)
         rows += r
         kept += k
         count += c
         notes.update(n)
         repeated += h
+        remarks.update(m)
     kept += [(f, 0, 0, 0, note) for f, note in notes.items()]
     kept.sort(key=lambda x: x[:4])
     records: list[AlertRecord] = []
@@ -392,7 +401,7 @@ def _merge(parts: list[tuple[dict[str, StreamOutcome], tuple[Any, ...]]]) -> Rep
         records += streams[name].records
     records.sort(key=_record_key)
     return ReplayResult(records, streams, rows, [x[4] for x in kept[:KEEP_PROBLEMS]], count, len(notes),
-                        repeated)
+                        repeated, notes=[remarks[f] for f in sorted(remarks)])
 
 
 # ---------------------------------------------------------------------------
@@ -906,6 +915,8 @@ class ReadResult:
     #: problems in all: those listed, and those a piece counted without a message (Parquet lists
     #: the first 20 of a kind in a piece)
     problem_count: int = 0
+    #: what is said once about a file though nothing of it was lost (``ReplayResult.notes``)
+    notes: list[str] = field(default_factory=list)
 
 
 def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone: str | tzinfo | None = None,
@@ -927,6 +938,7 @@ def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone
     problems: list[str] = [f"{u}; the file was skipped, the other files were read" for u in unread]
     rows = 0
     noted: set[int] = set()
+    remarks: dict[int, str] = {}
     by_file: dict[int, list[str]] = {}
     repeated = RepeatedHour(tz) if tz is not None else None  # as replay_files reads that hour
     unlisted = 0
@@ -937,6 +949,8 @@ def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone
             unlisted += block.unlisted
             if block.note is not None and block.file not in noted:
                 noted.add(block.file)
+            if block.remark is not None:
+                remarks.setdefault(block.file, block.remark)
             by_file.setdefault(block.file, []).extend(block.problems)
             for name, t, v, p in block.parts:
                 if only is None and first_only and streams and name not in streams:
@@ -954,7 +968,8 @@ def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone
         if f in noted:
             problems.append(f"{sources[f].path}: the file is not valid UTF-8; unreadable characters were replaced")
         problems += by_file.get(f, [])
-    return ReadResult(streams=streams, problems=problems, rows=rows, problem_count=len(problems) + unlisted)
+    return ReadResult(streams=streams, problems=problems, rows=rows, problem_count=len(problems) + unlisted,
+                      notes=[remarks[f] for f in sorted(remarks)])
 
 
 def replay_series(series: dict[str, StreamSeries], settings_for: Callable[[str], DetectionSettings],
