@@ -567,6 +567,10 @@ class MqttLink:
         # SUBSCRIBEs waiting for their SUBACK (mid -> filter), and filters the broker refused:
         # filter -> (when to try again, monotonic; attempts so far).  See retry_subscriptions.
         self._sub_mids: dict[int, str] = {}
+        # SUBACKs handled before their SUBSCRIBE's mid was recorded (mid -> reasons): paho
+        # sends the SUBSCRIBE from the calling thread, and its own thread can read and
+        # hand over the SUBACK before subscribe() has returned the mid.
+        self._early_subacks: dict[int, Any] = {}
         self._sub_refused: dict[str, tuple[float, int]] = {}
         # Filters a reload added: their SUBACK is logged, since only from then on do their
         # messages arrive (the reload's own log line comes before the broker has answered).
@@ -693,7 +697,14 @@ class MqttLink:
             _rc, mid = client.subscribe(topic_filter, qos=self.cfg.qos)
         if mid is not None:
             with self._lock:
-                self._sub_mids[int(mid)] = topic_filter
+                reasons = self._early_subacks.pop(int(mid), None)
+                if reasons is None:
+                    self._sub_mids[int(mid)] = topic_filter
+            if reasons is not None:  # the SUBACK came first: settled now
+                self._settle_suback(topic_filter, reasons)
+
+    #: SUBACKs kept for a SUBSCRIBE whose mid is not recorded yet; more only if mids never came.
+    EARLY_SUBACKS = 1024
 
     def _handle_subscribe(self, client: paho.Client, userdata: Any, mid: int, reasons: Any,
                           properties: Any) -> None:
@@ -703,7 +714,17 @@ class MqttLink:
         logged and tried again later (retry_subscriptions), waiting twice as long each time."""
         with self._lock:
             f = self._sub_mids.pop(int(mid), None)
-        if f is None or not reasons:
+            if f is None:
+                # Before subscribe() returned its mid to _subscribe, which settles it then.
+                if len(self._early_subacks) < self.EARLY_SUBACKS:
+                    self._early_subacks[int(mid)] = reasons
+                return
+        self._settle_suback(f, reasons)
+
+    def _settle_suback(self, f: str, reasons: Any) -> None:
+        """The broker's answer to the SUBSCRIBE of filter ``f``: taken, or refused (then tried
+        again later)."""
+        if not reasons:
             return
         code = reasons[0]
         if getattr(code, "is_failure", False) or getattr(code, "value", 0) >= 0x80:
@@ -798,6 +819,7 @@ class MqttLink:
                       "resumed" if session else "new")
         with self._lock:
             self._sub_mids.clear()  # SUBACKs of an earlier connection never come
+            self._early_subacks.clear()
             self._sub_added.clear()  # every filter is subscribed afresh: nothing to announce
         # A copy is skipped only within the connection that brought the first: a broker
         # that was restarted (a NATS server killed and started again) may number what it

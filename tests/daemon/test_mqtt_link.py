@@ -249,3 +249,45 @@ def test_a_close_without_a_reason_after_a_refusal_with_one_is_the_same_failure(
     assert len(errors) == 1 and "alert unknown ca" in errors[0].getMessage()
     same = [r.getMessage() for r in caplog.records if "failed the same way" in r.getMessage()]
     assert [m.split("attempt ")[1].split(" ")[0] for m in same] == ["2", "3"]
+
+
+def test_a_suback_that_comes_before_subscribe_returns_is_still_matched(
+        broker: MosquittoBroker, caplog: pytest.LogCaptureFixture) -> None:
+    # paho sends the SUBSCRIBE from the calling thread; over loopback the SUBACK can
+    # be read and handled on paho's own thread before client.subscribe() has returned
+    # its mid to the caller.  Seen in CI on a loaded machine: a reload's new filter was
+    # taken by the broker but never said to be, and a refusal answered that early would
+    # never have been tried again (MQTT 3.1.1 section 3.9: the SUBACK carries the
+    # SUBSCRIBE's packet identifier, the only way to match the two).  The caller's
+    # thread is held here after the real SUBSCRIBE went out, until the real SUBACK
+    # has been handled.
+    log = logging.getLogger("test-link-early-suback")
+    cfg = BrokerConfig(url=broker.url, client_id="link-early-suback")
+    link = MqttLink(cfg, subscriptions=["line/a/+"], status_topic="sw/status", inbox=Inbox(100),
+                    on_drop=lambda reason: None, on_published=lambda mid: None,
+                    on_connection=lambda up: None, logger=log)
+    link.start()
+    try:
+        assert wait_until(lambda: link.connected)
+        handled: list[int] = []
+        real_handler = link.client.on_subscribe
+
+        def handler(*args: object) -> None:
+            real_handler(*args)
+            handled.append(1)
+
+        link.client.on_subscribe = handler
+        real_subscribe = link.client.subscribe
+
+        def slow_return(*args: object, **kwargs: object) -> object:
+            out = real_subscribe(*args, **kwargs)
+            assert wait_until(lambda: bool(handled), timeout=10.0)  # the SUBACK, handled meanwhile
+            return out
+
+        link.client.subscribe = slow_return  # type: ignore[method-assign]
+        with caplog.at_level(logging.INFO, logger="test-link-early-suback"):
+            link.set_subscriptions(["line/a/+", "line/c/+"], added=["line/c/+"], removed=[])
+            assert wait_until(lambda: "took the subscription to line/c/+" in caplog.text, timeout=10.0), caplog.text
+        assert not link._sub_mids  # every SUBACK matched its SUBSCRIBE; nothing left waiting
+    finally:
+        link.stop()
