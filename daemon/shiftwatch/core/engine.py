@@ -50,6 +50,7 @@ from shiftwatch.core.baseline import (
     HEAVY_TAIL_CLIP,
     Baseline,
     BaselineSums,
+    _clip,
     estimate_baseline,
     estimation_adjusted_arl,
     median,
@@ -514,6 +515,13 @@ FOLD_TOGETHER = True
 #: buffer emptied and filled again each batch and a new array at each refinement.
 OFFSETS_IN_PLACE = True
 _ONE_ZERO = array("d", [0.0])
+#: The fixed work of one engine call on the established watch, trimmed: the clip ufunc
+#: called without ndarray.clip's Python wrapper, the follower's delay and rate looked up
+#: per phi, the window's unfolded offsets read through a view, the follower's one-block
+#: path worked in place, and an empty batch's bookkeeping skipped; the same operations on
+#: the same numbers.  False: the reference (tests/core/test_per_call.py holds the two to
+#: each other).
+LEAN_CALLS = True
 
 
 class _SplitCalled(Exception):
@@ -796,8 +804,11 @@ class StreamEngine:
         st = self.settings
         scr = screen_samples(times, values, self._last_time, self._window.times, arrived=arrived,
                              max_ahead=st.max_time_ahead, max_behind=st.max_time_behind)
-        raw_t = np.asarray(times, dtype=object) if scr.rejected else None
-        result = BatchResult(rejected=[Rejection(i, r, _time_or_nan(raw_t, i)) for i, r in scr.rejected])
+        if scr.rejected or not LEAN_CALLS:
+            raw_t = np.asarray(times, dtype=object) if scr.rejected else None
+            result = BatchResult(rejected=[Rejection(i, r, _time_or_nan(raw_t, i)) for i, r in scr.rejected])
+        else:
+            result = BatchResult()
         t, x = scr.times, scr.values
         if t.shape[0]:
             self._last_time = float(t[-1])
@@ -820,12 +831,17 @@ class StreamEngine:
         # Each sample once: one whose time is not newer than the stream's newest
         # (a message delivered again, or a late one) is counted only among the
         # rejections, so a redelivery never counts twice.
-        self.samples_total += len(scr.kept) + sum(r not in _NOT_NEW for _, r in scr.rejected)
+        if scr.rejected or not LEAN_CALLS:
+            self.samples_total += len(scr.kept) + sum(r not in _NOT_NEW for _, r in scr.rejected)
+        else:
+            self.samples_total += len(scr.kept)
         if result.rejected:
             self.rejected_total = _tally(self.rejected_total, (rej.reason for rej in result.rejected))
+            result.rejected.sort()
+        elif not LEAN_CALLS:
+            result.rejected.sort()
         if result.records:
             self.records_total = _tally(self.records_total, (rec.phase for rec in result.records))
-        result.rejected.sort()
         return result
 
     # ------------------------------------------------------------ warm-up
@@ -850,7 +866,10 @@ class StreamEngine:
             if old:
                 n = len(w)
                 a = n - self._unfolded
-                wu = np.array(self._unfolded_u[:old], dtype=np.float64)
+                # (a view of the offsets' buffer when lean: every use below copies out of it
+                # before _keep_offsets moves or replaces them)
+                wu = np.frombuffer(self._unfolded_u, count=old) if LEAN_CALLS else \
+                    np.array(self._unfolded_u[:old], dtype=np.float64)
                 if new and FOLD_TOGETHER:
                     # The window's oldest unfolded samples and the batch's first, folded
                     # as two calls would fold them (BaselineSums.add's cut).  They are all
@@ -873,6 +892,8 @@ class StreamEngine:
                         self._sums.add(b, x[:new] - u[:new], t[:new])
             elif new:
                 self._sums.add(b, x[:new] - u[:new], t[:new])
+            if old:
+                del wu  # no view of the offsets' buffer left: it may be resized now
             self._keep_offsets(old, u[new:] if new else u)
             self._unfolded -= fold
         else:
@@ -1824,7 +1845,10 @@ class StreamEngine:
         else:
             e = r
         z = e * (1.0 / b.innovation_sigma)
-        z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
+        if LEAN_CALLS:
+            _clip(z, -b.clip, b.clip, out=z)  # the ufunc ndarray.clip reaches through _methods._clip
+        else:
+            z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
         trip = test.update(z)
         if trip < 0:
             self._kept_all(spikes, osign, r, result)
@@ -1920,7 +1944,10 @@ class StreamEngine:
         and the offset each sample of the stretch is measured against."""
         m = kx.shape[0]
         lag = self._follow_lag
-        delay = follow_delay(phi, self.settings.window_samples)
+        if LEAN_CALLS:
+            delay, lam = _follow_terms(phi, self.settings.window_samples)
+        else:
+            delay, lam = follow_delay(phi, self.settings.window_samples), 1.0 / follow_samples(phi)
         feed = max(0, lag + m - delay)
         if feed == 0:
             return 0, np.array([self._follow]), np.full(m, self._follow)
@@ -1928,7 +1955,7 @@ class StreamEngine:
         from_window = min(lag, feed)
         y = kx[: feed - from_window] if from_window == 0 else np.concatenate(
             (w.values[len(w) - lag: len(w) - lag + from_window], kx[: feed - from_window]))
-        path = follow_path(y - level, self._follow, 1.0 / follow_samples(phi))
+        path = follow_path(y - level, self._follow, lam)
         # Sample i of the stretch is measured once max(0, lag + i - delay) samples are fed.
         k0 = max(0, delay - lag)
         if k0 == 0:
@@ -2129,7 +2156,10 @@ class StreamEngine:
         # Residuals from the level fitted before the step, not the baseline's.
         e -= (1.0 - b.phi) * (ev.level_before - b.level)
         z = e * (1.0 / b.innovation_sigma)
-        z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
+        if LEAN_CALLS:
+            _clip(z, -b.clip, b.clip, out=z)  # the ufunc ndarray.clip reaches through _methods._clip
+        else:
+            z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
         i, outcome = ev.trial.feed(z)
         if i < 0:
             self._kept_all(spikes, osign, r, result)
@@ -2754,6 +2784,19 @@ def follow_delay(phi: float, window: int) -> int:
     FOLLOW_DELAY_MAX and half the window."""
     return int(min(FOLLOW_DELAY * _long_run(phi), FOLLOW_DELAY_MAX, window // 2))
 _follow_powers: dict[float, FloatArray] = {}
+_follow_terms_of: dict[tuple[float, int], tuple[int, float]] = {}
+
+
+def _follow_terms(phi: float, window: int) -> tuple[int, float]:
+    """``follow_delay(phi, window)`` and the follower's rate ``1 / follow_samples(phi)``,
+    kept per phi (refined now and then: a few distinct values a stream)."""
+    key = (phi, window)
+    got = _follow_terms_of.get(key)
+    if got is None:
+        if len(_follow_terms_of) > 1024:
+            _follow_terms_of.clear()
+        got = _follow_terms_of[key] = (follow_delay(phi, window), 1.0 / follow_samples(phi))
+    return got
 
 
 def follow_arl_factor(phi: float, arl0: float) -> float:
@@ -2813,7 +2856,16 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
     if m <= block:
         # One block (a live batch, or a stretch shorter than 4 / lam): the loop's one
         # step, its product written in place.
-        np.multiply(p[:m], u0 + lam * np.add.accumulate(r / p[:m]), out=out[1:])
+        if LEAN_CALLS:
+            # The same quotients, sums and products, in one buffer (lam * s is s * lam and
+            # u0 + v is v + u0 exactly: IEEE addition and multiplication commute).
+            q = np.divide(r, p[:m])
+            np.add.accumulate(q, out=q)
+            q *= lam
+            q += u0
+            np.multiply(p[:m], q, out=out[1:])
+        else:
+            np.multiply(p[:m], u0 + lam * np.add.accumulate(r / p[:m]), out=out[1:])
         return out
     if not FOLLOW_BLOCKS_TOGETHER:
         for a in range(0, m, block):
