@@ -816,7 +816,9 @@ class StreamEngine:
         pos = 0
         n = t.shape[0]
         while pos < n:
-            before = (pos, self._state, self._watch_kept, len(self._window), self._event_len())
+            # (the window's and the fitter's lengths read directly: this runs on every call)
+            before = (pos, self._state, self._watch_kept, self._window._n,
+                      -1 if self._fitter is None else len(self._fitter))
             if self._state == WARMING_UP:
                 used = self._warm(t[pos:], x[pos:], kept[pos:], result)
             elif self._state == WATCHING:
@@ -824,7 +826,8 @@ class StreamEngine:
             else:
                 used = self._track(t[pos:], x[pos:], kept[pos:], result)
             pos += used
-            if (pos, self._state, self._watch_kept, len(self._window), self._event_len()) == before:
+            if (pos, self._state, self._watch_kept, self._window._n,
+                    -1 if self._fitter is None else len(self._fitter)) == before:
                 # Nothing moved: a defect.  Refuse loudly instead of spinning.
                 raise RuntimeError(f"engine for stream {self.stream!r} made no progress in state {self._state}")
         result.accepted = n
@@ -845,9 +848,6 @@ class StreamEngine:
         return result
 
     # ------------------------------------------------------------ warm-up
-    def _event_len(self) -> int:
-        return -1 if self._fitter is None else len(self._fitter)
-
     def _append(self, t: FloatArray, x: FloatArray, u: FloatArray) -> None:
         """Append kept samples while watching; fold those that age past the guard
         into the baseline sums, each less the follower's offset it was measured
@@ -1837,7 +1837,8 @@ class StreamEngine:
         # Each sample against the followed level as it stood before the sample: fed
         # with the samples FOLLOW_DELAY and more before it.
         feed, path, before = self._follow_plan(kx, b.level, b.phi)
-        r = kx - b.level - before
+        r = kx - b.level
+        r -= before  # in place: the same subtraction, without a third array
         if b.phi != 0.0:
             e = r.copy()
             e[0] -= b.phi * self._prev_r

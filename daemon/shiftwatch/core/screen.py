@@ -39,6 +39,8 @@ MAX_ABS_VALUE = 1e150
 #: Batches of at most this many float64 samples are checked in plain floats first.
 SMALL_BATCH = 8
 _F64 = np.dtype(np.float64)
+#: ndarray.all's reduction without its Python wrapper (numpy's _methods._all).
+_all = np.logical_and.reduce
 
 
 def _read_only_arange(n: int) -> NDArray[np.intp]:
@@ -164,7 +166,7 @@ def screen_samples(
         limits = arrived is not None and (max_ahead is not None or max_behind is not None)
         if (n and times[0] > last_time and bool(np.maximum.reduce(values) <= MAX_ABS_VALUE)
                 and bool(np.minimum.reduce(values) >= -MAX_ABS_VALUE) and math.isfinite(times[-1])
-                and (n == 1 or bool((times[1:] > times[:-1]).all()))
+                and (n == 1 or bool(_all(times[1:] > times[:-1])))
                 and (not limits or (ARRIVAL_FAST and _arrivals_within(arrived, times, max_ahead, max_behind)))):
             return Screened(times=times, values=values,
                             kept=_KEPT[:n] if n <= _KEPT.shape[0] else np.arange(n), rejected=[])
