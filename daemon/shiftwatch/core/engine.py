@@ -822,7 +822,10 @@ class StreamEngine:
             if self._state == WARMING_UP:
                 used = self._warm(t[pos:], x[pos:], kept[pos:], result)
             elif self._state == WATCHING:
-                used = self._watch(t[pos:], x[pos:], kept[pos:], result)
+                # (the batch's largest and smallest value, which screening took, stand for
+                # the spike check's on the first stretch)
+                used = self._watch(t[pos:], x[pos:], kept[pos:], result,
+                                   (scr.high, scr.low) if pos == 0 and LEAN_CALLS else None)
             else:
                 used = self._track(t[pos:], x[pos:], kept[pos:], result)
             pos += used
@@ -1046,7 +1049,7 @@ class StreamEngine:
 
     # ----------------------------------------------------------- watching
     def _split_spikes(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], center: float,
-                      sigma: float, limit: int
+                      sigma: float, limit: int, bounds: tuple[float, float] | None = None
                       ) -> tuple[FloatArray, FloatArray, list[Rejection], int, NDArray[np.int8] | None,
                                  FloatArray | None]:
         """Drop lone spikes from a segment and keep at most ``limit`` samples.
@@ -1068,10 +1071,20 @@ class StreamEngine:
         was an outlier).  Counting kept samples, not input samples, makes the engine give
         the same result with the spikes present or taken out; stopping at a
         fixed count of kept samples makes it independent of batching.
+
+        ``bounds``, when given, are the largest and smallest of ``x`` (taken by
+        screening): with both inside the band no sample is an outlier, which is what
+        the checks below would find on ``x`` or on its first ``limit`` samples.
         """
         s = self.settings
         n_in = t.shape[0]
         held_before = self._pending is not None
+        if bounds is not None and not held_before:
+            span = s.spike_sigma * sigma
+            if bounds[0] <= center + span and bounds[1] >= center - span:
+                if n_in >= limit:
+                    return t[:limit], x[:limit], [], limit, None, None
+                return t, x, [], n_in, None, None
         if self._pending is not None:
             t = np.concatenate(([self._pending[0]], t))
             x = np.concatenate(([self._pending[1]], x))
@@ -1814,7 +1827,8 @@ class StreamEngine:
         self._test = None
         self._design_test()
 
-    def _watch(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
+    def _watch(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult,
+               bounds: tuple[float, float] | None = None) -> int:
         if self._young is not None:
             return self._watch_young(t, x, idx, t.shape[0], result)
         if t.shape[0] <= SMALL_BATCH and self._pending is None:
@@ -1830,7 +1844,7 @@ class StreamEngine:
         # then one sample is taken and the refinement follows at once.)
         stop = min(self._next_refine, self._next_center)
         kt, kx, spikes, used, osign, settled = self._split_spikes(t, x, idx, b.level + self._center, b.sigma,
-                                                         max(stop - self._watch_kept, 1))
+                                                         max(stop - self._watch_kept, 1), bounds)
         if kt.shape[0] == 0:
             result.rejected.extend(spikes)
             return used
