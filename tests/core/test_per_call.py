@@ -147,10 +147,10 @@ def test_established_batches_of_260_and_4096() -> None:
 
 
 @settings(max_examples=25, deadline=None)
-@given(seed=st.integers(0, 2**32 - 1), n=st.integers(400, 3000), most=st.integers(2, 600))
-def test_lean_calls_on_random_short_histories(seed: int, n: int, most: int) -> None:
-    rng = np.random.default_rng(seed)
-    kind = ("iid", "ar", "t3", "quantised")[seed % 4]
+@given(state=st.integers(0, 2**32 - 1), n=st.integers(400, 3000), most=st.integers(2, 600))
+def test_lean_calls_on_random_short_histories(state: int, n: int, most: int) -> None:
+    rng = np.random.default_rng(state)
+    kind = ("iid", "ar", "t3", "quantised")[state % 4]
     t, x, a = _history(kind, n, rng)
     cuts = steps_of(n, rng, most)
     assert _run(StreamEngine("s"), t, x, a, cuts, True) == _run(StreamEngine("s"), t, x, a, cuts, False)
