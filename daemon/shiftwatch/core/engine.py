@@ -2808,7 +2808,7 @@ def _follow_terms(phi: float, window: int) -> tuple[int, float]:
     key = (phi, window)
     got = _follow_terms_of.get(key)
     if got is None:
-        if len(_follow_terms_of) > 1024:
+        if len(_follow_terms_of) > 256:  # phi is per stream: keep a bounded few (some 50 kB)
             _follow_terms_of.clear()
         got = _follow_terms_of[key] = (follow_delay(phi, window), 1.0 / follow_samples(phi))
     return got
