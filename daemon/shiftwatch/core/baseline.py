@@ -22,6 +22,17 @@ FloatArray = NDArray[np.float64]
 _sum = np.add.reduce
 _min = np.minimum.reduce
 _max = np.maximum.reduce
+#: np.dot's own C function and the clip ufunc that ndarray.clip reaches through a Python
+#: wrapper (numpy's _methods._clip): the same functions on the same numbers, without the
+#: dispatcher and the wrapper (a microsecond or so per call on an engine's every batch).
+_dot: Any = getattr(np.dot, "_implementation", np.dot)
+try:
+    _clip: Any = np._core.umath.clip  # type: ignore[attr-defined]  # numpy 2's stubs omit _core
+except AttributeError:  # numpy 1.x (the ufunc's module was numpy.core then)
+    _clip = np.core.umath.clip  # type: ignore[attr-defined]
+#: BaselineSums.add calls _dot and _clip directly; False: np.dot and ndarray.clip, the
+#: reference (tests/core/test_per_call.py holds the two to each other).
+DIRECT_CALLS = True
 
 #: d2 for subgroups of two: E|X1 - X2| = 1.128 sigma for Gaussian noise.
 #: A standard SPC constant (common practice).
@@ -390,18 +401,26 @@ class BaselineSums:
         if m == 0:
             return
         c = b.clip
+        direct = DIRECT_CALLS
+        dot = _dot if direct else np.dot
         dev = values - b.level
         dev *= 1.0 / b.sigma
         if c > TAIL_AT:
-            u = dev.clip(-c, c)
+            u = _clip(dev, -c, c) if direct else dev.clip(-c, c)
             self.tail += int(np.count_nonzero(np.abs(u) > TAIL_AT))
         else:
             self.tail += int(np.count_nonzero(np.abs(dev) > TAIL_AT))
-            u = dev.clip(-c, c)
+            u = _clip(dev, -c, c) if direct else dev.clip(-c, c)
         phi = b.phi
         # The prewhitened residuals within the samples (both parts; the one across the
         # cut is the second part's first, as prev_u makes it in a call of its own).
-        e_all = None if phi == 0.0 or m < 2 else (u[1:] - phi * u[:-1]).clip(-c, c)
+        if phi == 0.0 or m < 2:
+            e_all = None
+        elif direct:
+            e_all = u[1:] - phi * u[:-1]
+            _clip(e_all, -c, c, out=e_all)
+        else:
+            e_all = (u[1:] - phi * u[:-1]).clip(-c, c)
         # Sampling interval: gaps of ten intervals or more (stoppages) are left out, each
         # step judged on its own as add_one judges it, so the estimate does not depend on
         # where a batch ends.  (A block's mean step within 20% of the interval was once
@@ -417,9 +436,9 @@ class BaselineSums:
             k = z - a
             us = u[a:z]
             self.su += float(_sum(us))
-            uu = float(np.dot(us, us))
+            uu = float(dot(us, us))
             self.suu += uu
-            lag = float(np.dot(us[1:], us[:-1]))
+            lag = float(dot(us[1:], us[:-1]))
             if self.prev_u is not None:
                 lag += us[0] * self.prev_u
             self.slag += lag
@@ -428,7 +447,7 @@ class BaselineSums:
             else:
                 if e_all is not None:
                     e = e_all[a: z - 1]
-                    self.see += float(np.dot(e, e))
+                    self.see += float(dot(e, e))
                 if self.prev_u is not None:
                     # clip of one number: min and max give the same float
                     ef = float(us[0] - phi * self.prev_u)

@@ -50,6 +50,7 @@ from shiftwatch.core.baseline import (
     HEAVY_TAIL_CLIP,
     Baseline,
     BaselineSums,
+    _clip,
     estimate_baseline,
     estimation_adjusted_arl,
     median,
@@ -514,6 +515,13 @@ FOLD_TOGETHER = True
 #: buffer emptied and filled again each batch and a new array at each refinement.
 OFFSETS_IN_PLACE = True
 _ONE_ZERO = array("d", [0.0])
+#: The fixed work of one engine call on the established watch, trimmed: the clip ufunc
+#: called without ndarray.clip's Python wrapper, the follower's delay and rate looked up
+#: per phi, the window's unfolded offsets read through a view, the follower's one-block
+#: path worked in place, and an empty batch's bookkeeping skipped; the same operations on
+#: the same numbers.  False: the reference (tests/core/test_per_call.py holds the two to
+#: each other).
+LEAN_CALLS = True
 
 
 class _SplitCalled(Exception):
@@ -796,8 +804,11 @@ class StreamEngine:
         st = self.settings
         scr = screen_samples(times, values, self._last_time, self._window.times, arrived=arrived,
                              max_ahead=st.max_time_ahead, max_behind=st.max_time_behind)
-        raw_t = np.asarray(times, dtype=object) if scr.rejected else None
-        result = BatchResult(rejected=[Rejection(i, r, _time_or_nan(raw_t, i)) for i, r in scr.rejected])
+        if scr.rejected or not LEAN_CALLS:
+            raw_t = np.asarray(times, dtype=object) if scr.rejected else None
+            result = BatchResult(rejected=[Rejection(i, r, _time_or_nan(raw_t, i)) for i, r in scr.rejected])
+        else:
+            result = BatchResult()
         t, x = scr.times, scr.values
         if t.shape[0]:
             self._last_time = float(t[-1])
@@ -805,33 +816,41 @@ class StreamEngine:
         pos = 0
         n = t.shape[0]
         while pos < n:
-            before = (pos, self._state, self._watch_kept, len(self._window), self._event_len())
+            # (the window's and the fitter's lengths read directly: this runs on every call)
+            before = (pos, self._state, self._watch_kept, self._window._n,
+                      -1 if self._fitter is None else len(self._fitter))
             if self._state == WARMING_UP:
                 used = self._warm(t[pos:], x[pos:], kept[pos:], result)
             elif self._state == WATCHING:
-                used = self._watch(t[pos:], x[pos:], kept[pos:], result)
+                # (the batch's largest and smallest value, which screening took, stand for
+                # the spike check's on the first stretch)
+                used = self._watch(t[pos:], x[pos:], kept[pos:], result,
+                                   (scr.high, scr.low) if pos == 0 and LEAN_CALLS else None)
             else:
                 used = self._track(t[pos:], x[pos:], kept[pos:], result)
             pos += used
-            if (pos, self._state, self._watch_kept, len(self._window), self._event_len()) == before:
+            if (pos, self._state, self._watch_kept, self._window._n,
+                    -1 if self._fitter is None else len(self._fitter)) == before:
                 # Nothing moved: a defect.  Refuse loudly instead of spinning.
                 raise RuntimeError(f"engine for stream {self.stream!r} made no progress in state {self._state}")
         result.accepted = n
         # Each sample once: one whose time is not newer than the stream's newest
         # (a message delivered again, or a late one) is counted only among the
         # rejections, so a redelivery never counts twice.
-        self.samples_total += len(scr.kept) + sum(r not in _NOT_NEW for _, r in scr.rejected)
+        if scr.rejected or not LEAN_CALLS:
+            self.samples_total += len(scr.kept) + sum(r not in _NOT_NEW for _, r in scr.rejected)
+        else:
+            self.samples_total += len(scr.kept)
         if result.rejected:
             self.rejected_total = _tally(self.rejected_total, (rej.reason for rej in result.rejected))
+            result.rejected.sort()
+        elif not LEAN_CALLS:
+            result.rejected.sort()
         if result.records:
             self.records_total = _tally(self.records_total, (rec.phase for rec in result.records))
-        result.rejected.sort()
         return result
 
     # ------------------------------------------------------------ warm-up
-    def _event_len(self) -> int:
-        return -1 if self._fitter is None else len(self._fitter)
-
     def _append(self, t: FloatArray, x: FloatArray, u: FloatArray) -> None:
         """Append kept samples while watching; fold those that age past the guard
         into the baseline sums, each less the follower's offset it was measured
@@ -850,7 +869,10 @@ class StreamEngine:
             if old:
                 n = len(w)
                 a = n - self._unfolded
-                wu = np.array(self._unfolded_u[:old], dtype=np.float64)
+                # (a view of the offsets' buffer when lean: every use below copies out of it
+                # before _keep_offsets moves or replaces them)
+                wu = np.frombuffer(self._unfolded_u, count=old) if LEAN_CALLS else \
+                    np.array(self._unfolded_u[:old], dtype=np.float64)
                 if new and FOLD_TOGETHER:
                     # The window's oldest unfolded samples and the batch's first, folded
                     # as two calls would fold them (BaselineSums.add's cut).  They are all
@@ -873,6 +895,8 @@ class StreamEngine:
                         self._sums.add(b, x[:new] - u[:new], t[:new])
             elif new:
                 self._sums.add(b, x[:new] - u[:new], t[:new])
+            if old:
+                del wu  # no view of the offsets' buffer left: it may be resized now
             self._keep_offsets(old, u[new:] if new else u)
             self._unfolded -= fold
         else:
@@ -1025,7 +1049,7 @@ class StreamEngine:
 
     # ----------------------------------------------------------- watching
     def _split_spikes(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], center: float,
-                      sigma: float, limit: int
+                      sigma: float, limit: int, bounds: tuple[float, float] | None = None
                       ) -> tuple[FloatArray, FloatArray, list[Rejection], int, NDArray[np.int8] | None,
                                  FloatArray | None]:
         """Drop lone spikes from a segment and keep at most ``limit`` samples.
@@ -1047,10 +1071,20 @@ class StreamEngine:
         was an outlier).  Counting kept samples, not input samples, makes the engine give
         the same result with the spikes present or taken out; stopping at a
         fixed count of kept samples makes it independent of batching.
+
+        ``bounds``, when given, are the largest and smallest of ``x`` (taken by
+        screening): with both inside the band no sample is an outlier, which is what
+        the checks below would find on ``x`` or on its first ``limit`` samples.
         """
         s = self.settings
         n_in = t.shape[0]
         held_before = self._pending is not None
+        if bounds is not None and not held_before:
+            span = s.spike_sigma * sigma
+            if bounds[0] <= center + span and bounds[1] >= center - span:
+                if n_in >= limit:
+                    return t[:limit], x[:limit], [], limit, None, None
+                return t, x, [], n_in, None, None
         if self._pending is not None:
             t = np.concatenate(([self._pending[0]], t))
             x = np.concatenate(([self._pending[1]], x))
@@ -1793,7 +1827,8 @@ class StreamEngine:
         self._test = None
         self._design_test()
 
-    def _watch(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
+    def _watch(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult,
+               bounds: tuple[float, float] | None = None) -> int:
         if self._young is not None:
             return self._watch_young(t, x, idx, t.shape[0], result)
         if t.shape[0] <= SMALL_BATCH and self._pending is None:
@@ -1809,14 +1844,15 @@ class StreamEngine:
         # then one sample is taken and the refinement follows at once.)
         stop = min(self._next_refine, self._next_center)
         kt, kx, spikes, used, osign, settled = self._split_spikes(t, x, idx, b.level + self._center, b.sigma,
-                                                         max(stop - self._watch_kept, 1))
+                                                         max(stop - self._watch_kept, 1), bounds)
         if kt.shape[0] == 0:
             result.rejected.extend(spikes)
             return used
         # Each sample against the followed level as it stood before the sample: fed
         # with the samples FOLLOW_DELAY and more before it.
         feed, path, before = self._follow_plan(kx, b.level, b.phi)
-        r = kx - b.level - before
+        r = kx - b.level
+        r -= before  # in place: the same subtraction, without a third array
         if b.phi != 0.0:
             e = r.copy()
             e[0] -= b.phi * self._prev_r
@@ -1824,7 +1860,10 @@ class StreamEngine:
         else:
             e = r
         z = e * (1.0 / b.innovation_sigma)
-        z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
+        if LEAN_CALLS:
+            _clip(z, -b.clip, b.clip, out=z)  # the ufunc ndarray.clip reaches through _methods._clip
+        else:
+            z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
         trip = test.update(z)
         if trip < 0:
             self._kept_all(spikes, osign, r, result)
@@ -1920,7 +1959,10 @@ class StreamEngine:
         and the offset each sample of the stretch is measured against."""
         m = kx.shape[0]
         lag = self._follow_lag
-        delay = follow_delay(phi, self.settings.window_samples)
+        if LEAN_CALLS:
+            delay, lam = _follow_terms(phi, self.settings.window_samples)
+        else:
+            delay, lam = follow_delay(phi, self.settings.window_samples), 1.0 / follow_samples(phi)
         feed = max(0, lag + m - delay)
         if feed == 0:
             return 0, np.array([self._follow]), np.full(m, self._follow)
@@ -1928,7 +1970,7 @@ class StreamEngine:
         from_window = min(lag, feed)
         y = kx[: feed - from_window] if from_window == 0 else np.concatenate(
             (w.values[len(w) - lag: len(w) - lag + from_window], kx[: feed - from_window]))
-        path = follow_path(y - level, self._follow, 1.0 / follow_samples(phi))
+        path = follow_path(y - level, self._follow, lam)
         # Sample i of the stretch is measured once max(0, lag + i - delay) samples are fed.
         k0 = max(0, delay - lag)
         if k0 == 0:
@@ -2129,7 +2171,10 @@ class StreamEngine:
         # Residuals from the level fitted before the step, not the baseline's.
         e -= (1.0 - b.phi) * (ev.level_before - b.level)
         z = e * (1.0 / b.innovation_sigma)
-        z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
+        if LEAN_CALLS:
+            _clip(z, -b.clip, b.clip, out=z)  # the ufunc ndarray.clip reaches through _methods._clip
+        else:
+            z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
         i, outcome = ev.trial.feed(z)
         if i < 0:
             self._kept_all(spikes, osign, r, result)
@@ -2754,6 +2799,19 @@ def follow_delay(phi: float, window: int) -> int:
     FOLLOW_DELAY_MAX and half the window."""
     return int(min(FOLLOW_DELAY * _long_run(phi), FOLLOW_DELAY_MAX, window // 2))
 _follow_powers: dict[float, FloatArray] = {}
+_follow_terms_of: dict[tuple[float, int], tuple[int, float]] = {}
+
+
+def _follow_terms(phi: float, window: int) -> tuple[int, float]:
+    """``follow_delay(phi, window)`` and the follower's rate ``1 / follow_samples(phi)``,
+    kept per phi (refined now and then: a few distinct values a stream)."""
+    key = (phi, window)
+    got = _follow_terms_of.get(key)
+    if got is None:
+        if len(_follow_terms_of) > 256:  # phi is per stream: keep a bounded few (some 50 kB)
+            _follow_terms_of.clear()
+        got = _follow_terms_of[key] = (follow_delay(phi, window), 1.0 / follow_samples(phi))
+    return got
 
 
 def follow_arl_factor(phi: float, arl0: float) -> float:
@@ -2813,7 +2871,16 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
     if m <= block:
         # One block (a live batch, or a stretch shorter than 4 / lam): the loop's one
         # step, its product written in place.
-        np.multiply(p[:m], u0 + lam * np.add.accumulate(r / p[:m]), out=out[1:])
+        if LEAN_CALLS:
+            # The same quotients, sums and products, in one buffer (lam * s is s * lam and
+            # u0 + v is v + u0 exactly: IEEE addition and multiplication commute).
+            q = np.divide(r, p[:m])
+            np.add.accumulate(q, out=q)
+            q *= lam
+            q += u0
+            np.multiply(p[:m], q, out=out[1:])
+        else:
+            np.multiply(p[:m], u0 + lam * np.add.accumulate(r / p[:m]), out=out[1:])
         return out
     if not FOLLOW_BLOCKS_TOGETHER:
         for a in range(0, m, block):

@@ -39,6 +39,8 @@ MAX_ABS_VALUE = 1e150
 #: Batches of at most this many float64 samples are checked in plain floats first.
 SMALL_BATCH = 8
 _F64 = np.dtype(np.float64)
+#: ndarray.all's reduction without its Python wrapper (numpy's _methods._all).
+_all = np.logical_and.reduce
 
 
 def _read_only_arange(n: int) -> NDArray[np.intp]:
@@ -64,12 +66,17 @@ class Screened(NamedTuple):
     positions in the input, and ``rejected`` a list of ``(position, reason)``.
     (A named tuple: one is made on every engine call, and a frozen dataclass
     is made by four attribute writes through ``object.__setattr__``.)
+    ``high`` and ``low`` are the largest and smallest value when the array fast
+    path took the batch whole (NaN otherwise), so the engine need not take them
+    again for its spike check.
     """
 
     times: NDArray[np.float64]
     values: NDArray[np.float64]
     kept: NDArray[np.intp]
     rejected: list[tuple[int, str]]
+    high: float = math.nan
+    low: float = math.nan
 
 
 def coerce_values(values: Sequence[Any] | NDArray[Any]) -> tuple[NDArray[np.float64], NDArray[np.bool_]]:
@@ -162,12 +169,16 @@ def screen_samples(
         # what is wrong (ARRIVAL_FAST = False: always the full path when limits apply).
         n = times.shape[0]
         limits = arrived is not None and (max_ahead is not None or max_behind is not None)
-        if (n and times[0] > last_time and bool(np.maximum.reduce(values) <= MAX_ABS_VALUE)
-                and bool(np.minimum.reduce(values) >= -MAX_ABS_VALUE) and math.isfinite(times[-1])
-                and (n == 1 or bool((times[1:] > times[:-1]).all()))
-                and (not limits or (ARRIVAL_FAST and _arrivals_within(arrived, times, max_ahead, max_behind)))):
-            return Screened(times=times, values=values,
-                            kept=_KEPT[:n] if n <= _KEPT.shape[0] else np.arange(n), rejected=[])
+        if n and times[0] > last_time:
+            high = float(np.maximum.reduce(values))
+            low = float(np.minimum.reduce(values))
+            if (high <= MAX_ABS_VALUE and low >= -MAX_ABS_VALUE and math.isfinite(times[-1])
+                    and (n == 1 or bool(_all(times[1:] > times[:-1])))
+                    and (not limits or (ARRIVAL_FAST and _arrivals_within(arrived, times, max_ahead,
+                                                                          max_behind)))):
+                return Screened(times=times, values=values,
+                                kept=_KEPT[:n] if n <= _KEPT.shape[0] else np.arange(n), rejected=[],
+                                high=high, low=low)
     t, bad_t = coerce_values(times)
     v, bad_v = coerce_values(values)
     n = t.shape[0]
