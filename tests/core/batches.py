@@ -66,3 +66,22 @@ def run_in_batches(eng: StreamEngine, t: np.ndarray, x: np.ndarray, cuts: list[i
     finally:
         for name, value in saved.items():
             setattr(engine, name, value)
+
+
+def mixed_cuts(n: int, rng: np.random.Generator, modes: int = 6) -> list[int]:
+    """Where to cut ``n`` samples into batches, one of the ways the engine is fed, drawn
+    from the first ``modes`` of: 0 as replay feeds (4,096 at a time), 1 as a sender of
+    JSON arrays of 260, 2 a few random cuts, 3 batches of 1 to 299, 4 one batch, 5 one
+    sample at a time for 400 samples (a lone spike is a whole batch), then 4,096."""
+    mode = int(rng.integers(0, modes))
+    if mode == 5:
+        return list(range(1, min(n, 400))) + list(range(400, n, 4096))
+    if mode == 0:
+        return list(range(4096, n, 4096))
+    if mode == 1:
+        return list(range(260, n, 260))
+    if mode == 2:
+        return sorted({int(v) for v in rng.integers(1, n, size=int(rng.integers(1, 40)))})
+    if mode == 3:
+        return steps_of(n, rng, 300)
+    return []

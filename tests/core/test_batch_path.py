@@ -25,7 +25,7 @@ from shiftwatch.core.multicusum import MultiCusumTest
 from shiftwatch.core.screen import screen_samples
 from shiftwatch.core.settings import DetectionSettings
 
-from .batches import noise, run_in_batches, steps_of
+from .batches import mixed_cuts, noise, run_in_batches
 
 T0 = 1_788_000_000.0
 
@@ -53,28 +53,13 @@ def _history(kind: str, n: int, rng: np.random.Generator) -> tuple[np.ndarray, n
     return T0 + np.cumsum(dt), x
 
 
-def _cuts(n: int, rng: np.random.Generator) -> list[int]:
-    mode = int(rng.integers(0, 6))
-    if mode == 5:  # one sample at a time for a while (a lone spike is a whole batch), then 4,096
-        return list(range(1, min(n, 400))) + list(range(400, n, 4096))
-    if mode == 0:
-        return list(range(4096, n, 4096))  # as replay feeds
-    if mode == 1:
-        return list(range(260, n, 260))  # JSON arrays of 260 samples
-    if mode == 2:
-        return sorted({int(v) for v in rng.integers(1, n, size=int(rng.integers(1, 40)))})
-    if mode == 3:  # batches of 1 to 299 samples
-        return steps_of(n, rng, 300)
-    return []
-
-
 @pytest.mark.parametrize("kind", ["iid", "ar", "t3", "quantised"])
 def test_batch_path_equals_the_reference(kind: str) -> None:
     rng = np.random.default_rng({"iid": 21, "ar": 22, "t3": 23, "quantised": 24}[kind])
     for _ in range(12):
         n = int(rng.integers(1500, 9000))
         t, x = _history(kind, n, rng)
-        cuts = _cuts(n, rng)
+        cuts = mixed_cuts(n, rng)
         fast = run_in_batches(StreamEngine("s"), t, x, cuts, SWITCHES, True)
         ref = run_in_batches(StreamEngine("s"), t, x, cuts, SWITCHES, False)
         assert fast == ref
@@ -92,7 +77,7 @@ def test_each_switch_alone(switch: str) -> None:
         for kind in ("iid", "ar", "t3"):
             n = int(rng.integers(2000, 6000))
             t, x = _history(kind, n, rng)
-            cuts = _cuts(n, rng)
+            cuts = mixed_cuts(n, rng)
             fast = run_in_batches(StreamEngine("s", settings), t, x, cuts, switch, True)
             ref = run_in_batches(StreamEngine("s", settings), t, x, cuts, switch, False)
             assert fast == ref, (test_name, kind)

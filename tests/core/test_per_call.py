@@ -36,7 +36,7 @@ from shiftwatch.core.baseline import BaselineSums, estimate_baseline
 from shiftwatch.core.engine import StreamEngine, follow_path
 from shiftwatch.core.settings import DetectionSettings
 
-from .batches import noise, steps_of
+from .batches import mixed_cuts, noise, steps_of
 
 T0 = 1_788_000_000.0
 
@@ -93,26 +93,13 @@ def _history(kind: str, n: int, rng: np.random.Generator
     return t, x, a
 
 
-def _cuts(n: int, rng: np.random.Generator) -> list[int]:
-    mode = int(rng.integers(0, 5))
-    if mode == 0:
-        return list(range(4096, n, 4096))  # as replay feeds
-    if mode == 1:
-        return list(range(260, n, 260))  # JSON arrays of 260 samples
-    if mode == 2:
-        return sorted({int(v) for v in rng.integers(1, n, size=int(rng.integers(1, 40)))})
-    if mode == 3:  # batches of 1 to 299 samples
-        return steps_of(n, rng, 300)
-    return []
-
-
 @pytest.mark.parametrize("kind", ["iid", "ar", "t3", "quantised"])
 def test_lean_calls_equal_the_reference(kind: str) -> None:
     rng = np.random.default_rng({"iid": 41, "ar": 42, "t3": 43, "quantised": 44}[kind])
     for _ in range(8):
         n = int(rng.integers(1500, 9000))
         t, x, a = _history(kind, n, rng)
-        cuts = _cuts(n, rng)
+        cuts = mixed_cuts(n, rng, 5)
         lean = _run(StreamEngine("s"), t, x, a, cuts, True)
         ref = _run(StreamEngine("s"), t, x, a, cuts, False)
         assert lean == ref
@@ -125,7 +112,7 @@ def test_lean_calls_with_the_other_tests(test_name: str) -> None:
     for kind in ("iid", "ar", "t3"):
         n = int(rng.integers(2000, 6000))
         t, x, a = _history(kind, n, rng)
-        cuts = _cuts(n, rng)
+        cuts = mixed_cuts(n, rng, 5)
         assert _run(StreamEngine("s", s), t, x, a, cuts, True) == _run(StreamEngine("s", s), t, x, a, cuts, False)
 
 

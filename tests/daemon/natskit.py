@@ -84,6 +84,17 @@ def connects(io: object) -> bool:
     return True
 
 
+def started_io(port: int, who: str) -> Any:
+    """A started :class:`shiftwatch.natsio.NatsIO` named ``who`` on the server at ``port``,
+    once it is connected."""
+    from shiftwatch.natsio import NatsIO
+
+    io = NatsIO([f"nats://127.0.0.1:{port}"], name=who, timeout=5.0)
+    io.start()
+    assert wait_until(lambda: connects(io), 30)
+    return io
+
+
 def _text(path: Path) -> str:
     try:
         return path.read_text(errors="replace")

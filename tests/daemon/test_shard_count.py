@@ -47,7 +47,7 @@ from shiftwatch.natsio import NatsIO
 from shiftwatch.partition import Remap, partition_of
 
 from .killrun import metric, scrape
-from .natskit import connects, free_port_block, start_lone_server
+from .natskit import free_port_block, start_lone_server, started_io
 
 LEVELS = (2, 3, 4)
 NAME = "cnt"
@@ -67,9 +67,7 @@ def server(tmp_path: Path) -> Iterator[int]:
 
 
 def _io(port: int, who: str) -> NatsIO:
-    io = NatsIO([f"nats://127.0.0.1:{port}"], name=who, timeout=5.0)
-    io.start()
-    assert wait_until(lambda: connects(io), 30)
+    io: NatsIO = started_io(port, who)
     return io
 
 

@@ -30,7 +30,6 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from shiftwatch.broker import wait_until
 from shiftwatch.clusterstate import MAPPING_KEY, ClusterState
 from shiftwatch.config import load_config
 from shiftwatch.daemon import Daemon
@@ -41,7 +40,7 @@ from shiftwatch.mqtt import Message
 from shiftwatch.natsio import NatsIO
 from shiftwatch.partition import Remap, partition_of
 
-from .natskit import connects, start_lone_server
+from .natskit import start_lone_server, started_io
 
 LEVELS = (2, 3, 4)
 NAME = "pk"
@@ -64,9 +63,7 @@ def server(tmp_path: Path) -> Iterator[int]:
 
 
 def _io(port: int, who: str) -> NatsIO:
-    io = NatsIO([f"nats://127.0.0.1:{port}"], name=who, timeout=5.0)
-    io.start()
-    assert wait_until(lambda: connects(io), 30)
+    io: NatsIO = started_io(port, who)
     return io
 
 
