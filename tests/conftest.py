@@ -34,6 +34,41 @@ def cli(tmp_path: Path):
     return run
 
 
+def _stderr_on_terminal(args: list[str], cwd: Path | None = None, timeout: float = 120.0) -> tuple[int, str]:
+    """Run ``args`` with stderr on a pseudo-terminal of 120 columns (as an operator's
+    shell gives it, so progress bars are drawn); its exit status and everything it wrote
+    there."""
+    import fcntl
+    import pty
+    import struct
+    import termios
+
+    master, slave = pty.openpty()
+    fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", 40, 120, 0, 0))
+    try:
+        proc = subprocess.Popen(args, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=slave, cwd=cwd)
+        os.close(slave)
+        chunks = []
+        while True:
+            try:
+                data = os.read(master, 65536)
+            except OSError:  # EIO: the child closed the terminal
+                break
+            if not data:
+                break
+            chunks.append(data)
+        code = proc.wait(timeout=timeout)
+    finally:
+        os.close(master)
+    return code, b"".join(chunks).decode("utf-8", "replace")
+
+
+@pytest.fixture
+def stderr_on_terminal():
+    """:func:`_stderr_on_terminal`: a command run with stderr on a pseudo-terminal."""
+    return _stderr_on_terminal
+
+
 CHROMIUM = "/usr/bin/chromium"
 CHROMEDRIVER = "/usr/bin/chromedriver"
 CHROMIUM_SETUP_HINT = ("the README's test command (sh tests/install-and-test.sh) installs them: "

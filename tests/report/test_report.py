@@ -6,15 +6,10 @@ The browser's view of the same report is in test_report_browser.py.
 
 from __future__ import annotations
 
-import fcntl
 import json
-import os
-import pty
 import re
-import struct
 import subprocess
 import sys
-import termios
 from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -194,30 +189,12 @@ def test_replay_report_writes_one_html_file_that_matches_the_records(cli, plant_
 
 
 def test_replay_shows_a_progress_bar_on_a_terminal(shiftwatch_cmd: list[str], write_plant: Callable[..., Any],
-                                                   tmp_path: Path) -> None:
+                                                   tmp_path: Path, stderr_on_terminal: Any) -> None:
     # A long replay (5 streams x 24,000 samples) with stderr on a pseudo-terminal.
     plant = write_plant(tmp_path / "long.csv", n=24_000)
-    master, slave = pty.openpty()
-    fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", 40, 120, 0, 0))  # 120 columns
-    try:
-        proc = subprocess.Popen(shiftwatch_cmd + ["replay", "--out", str(tmp_path / "a.jsonl"),
-                                                        str(plant.path)],
-                                stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=slave,
-                                cwd=tmp_path)
-        os.close(slave)
-        chunks = []
-        while True:
-            try:
-                data = os.read(master, 65536)
-            except OSError:  # EIO: the child closed the terminal
-                break
-            if not data:
-                break
-            chunks.append(data)
-        assert proc.wait(timeout=120) == 0
-    finally:
-        os.close(master)
-    seen = b"".join(chunks).decode("utf-8", "replace")
+    code, seen = stderr_on_terminal(shiftwatch_cmd + ["replay", "--out", str(tmp_path / "a.jsonl"), str(plant.path)],
+                                    cwd=tmp_path)
+    assert code == 0, seen[-500:]
     assert "replay:" in seen and f"/{plant.path.stat().st_size / 1e6:.2f}M [" in seen and "B/s]" in seen, seen[-500:]
     assert "replayed 120000 rows in 5 stream(s)" in seen
 
