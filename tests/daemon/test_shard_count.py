@@ -17,7 +17,8 @@ reload it goes on with the count in force.
 The real parts: a nats-server with JetStream and MQTT started by the test
 (``natskit.start_lone_server``), the real ``shiftwatch run --shard 1`` in a
 subprocess, samples published over MQTT with paho (``PlainClient``), the real
-/metrics and /status.json scraped over HTTP.  The other shards of the set are real
+/metrics and /status.json scraped over HTTP, and the
+status page's notices line read in headless Chromium (the ``chromium`` fixture).  The other shards of the set are real
 ``ShardLease`` claims made by the test (their leases are all a shard's count is
 read from).  Which partition a topic falls in is ``partition_of``, held to the real
 nats-server's ``partition()`` mapping in ``test_shards.py``; the samples expected are
@@ -36,6 +37,7 @@ import time
 import urllib.request
 from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import pytest
 
@@ -48,6 +50,7 @@ from shiftwatch.partition import Remap, partition_of
 
 from .killrun import metric, scrape
 from .natskit import free_port_block, start_lone_server, started_io
+from .test_status_page import FLAGS
 
 LEVELS = (2, 3, 4)
 NAME = "cnt"
@@ -193,8 +196,20 @@ class _Publisher:
         self.client.stop()
 
 
+def _notice_shown(browser: Any) -> str | None:
+    """The status page's notices line as headless Chromium shows it: its text when it is
+    visible, None when it is hidden (read in one script: the page refreshes every 5 s)."""
+    got = browser.execute_script(
+        "const n = document.getElementById('notices');"
+        "return n ? [n.hidden, getComputedStyle(n).display, n.textContent] : null")
+    if got is None:
+        return None
+    hidden, display, text = got
+    return None if hidden or display == "none" else str(text)
+
+
 def test_a_shard_started_with_a_shard_of_no_live_shard_runs_takes_nothing_and_keeps_the_mapping_record(
-        tmp_path: Path, server: int) -> None:
+        tmp_path: Path, server: int, chromium: Any) -> None:
     # Shards 0 and 2 of a 3-shard set run (the record says: 3 now, 2 before).  Shard 1 is
     # started with shard.of 4 by a typo.  Before, its start rewrote the record (4 now, 3
     # before: the real mapping before lost) and it went on with 4.  Now the record stays,
@@ -218,6 +233,10 @@ def test_a_shard_started_with_a_shard_of_no_live_shard_runs_takes_nothing_and_ke
         assert said in shard.log(), shard.log()[-2000:]
         notices = shard.status()["notices"]
         assert isinstance(notices, list) and len(notices) == 1 and said in notices[0], notices
+        # The operator's status page says it too, in a real headless Chromium.
+        browser = chromium(FLAGS, {"browser": "ALL"})
+        browser.get(f"http://127.0.0.1:{shard.metrics_port}/status")
+        assert wait_until(lambda: said in (_notice_shown(browser) or ""), 30), _notice_shown(browser)
         assert peers.mapping() == before  # the record as it was: same contents, same revision
         # The typo corrected, the shard reloaded: its count agrees, it takes what waited.
         shard.reload(3, "shard.of 3 is taken up")
@@ -228,6 +247,7 @@ def test_a_shard_started_with_a_shard_of_no_live_shard_runs_takes_nothing_and_ke
         assert shard.taken() == pub.sent
         assert metric(m, "shiftwatch_shard_of_disputed") == 0
         assert shard.status()["notices"] == []
+        assert wait_until(lambda: _notice_shown(browser) is None, 30), _notice_shown(browser)  # next refresh
         assert peers.mapping() == before
     finally:
         pub.stop()
