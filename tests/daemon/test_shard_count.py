@@ -17,9 +17,9 @@ reload it goes on with the count in force.
 The real parts: a nats-server with JetStream and MQTT started by the test
 (``natskit.start_lone_server``), the real ``shiftwatch run --shard 1`` in a
 subprocess, samples published over MQTT with paho (``PlainClient``), the real
-/metrics and /status.json scraped over HTTP, and the
-status page's notices line read in headless Chromium (the ``chromium`` fixture).  The other shards of the set are real
-``ShardLease`` claims made by the test (their leases are all a shard's count is
+/metrics and /status.json scraped over HTTP, and the status page's notices line read
+in headless Chromium (the ``chromium`` fixture).  The other shards of the set are
+real ``ShardLease`` claims made by the test (their leases are all a shard's count is
 read from).  Which partition a topic falls in is ``partition_of``, held to the real
 nats-server's ``partition()`` mapping in ``test_shards.py``; the samples expected are
 the ones published (counted here, the reference for what was sent).
