@@ -499,12 +499,15 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
         summary += f"; {result.file_notes} file(s) not valid UTF-8 (characters replaced)"
     if result.unread_files:
         summary += f"; {len(result.unread_files)} file(s) could not be read and were skipped"
-    for note in result.notes:  # nothing of the file was lost: not counted among the problems
+    notes = list(result.notes)  # nothing of the file was lost: not counted among the problems
+    if result.repeated_hour:
+        notes.append(f"{result.repeated_hour} time(s) in the hour repeated when the clocks went back "
+                     f"in {args.timezone} read as its second occurrence (their stream's times went back "
+                     "there)")
+    for note in result.notes:
         summary += f"; note: {note}"
     if result.repeated_hour:
-        summary += (f"; {result.repeated_hour} time(s) in the hour repeated when the clocks went back "
-                    f"in {args.timezone} read as its second occurrence (their stream's times went back "
-                    "there)")
+        summary += f"; {notes[-1]}"
     print(summary, file=sys.stderr)
     if report is not None:
         from shiftwatch.report import ReportError
@@ -517,6 +520,7 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
                 rejected={name: dict(o.rejected_total) for name, o in streams.items()},
                 units={name: unit_for(name) for name in streams}, labels=labels, time_zone=tz,
                 sources=[s.path for s in sources], unreadable_rows=skipped, unread_files=result.unread_files,
+                notes=notes,
                 settings_note=("default detection settings" if args.config is None
                                else f"detection settings from {args.config}"),
                 progress=bar and bar.update)

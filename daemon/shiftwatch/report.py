@@ -440,7 +440,7 @@ class ReplayReport:
               sources: Sequence[str], settings_note: str, unreadable_rows: int = 0,
               unread_files: Sequence[str] = (), units: dict[str, str | None] | None = None,
               labels: dict[str, str | None] | None = None, time_zone: str = "UTC",
-              progress: Callable[[int], None] | None = None) -> Path:
+              progress: Callable[[int], None] | None = None, notes: Sequence[str] = ()) -> Path:
         """Render the charts and write ``report.html``; return its path.
 
         Parameters
@@ -452,6 +452,8 @@ class ReplayReport:
         settings_note : which detection settings were used, in a few words.
         unreadable_rows : rows of the files that could not be read, and unreadable cells of a wide file.
         unread_files : the files found in a directory that could not be read at all, each its problem.
+        notes : what was said once about the files though nothing of them was lost (an ignored
+            unnamed column, times of a repeated hour).
         units : unit per stream, when known (else the unit of its records).
         labels : the operator's name per stream (the config's ``label``), when it has one.
         time_zone : IANA zone in which times are shown (the config's ``display.time_zone``).
@@ -469,7 +471,7 @@ class ReplayReport:
             try:
                 return self._write(traces, samples=samples, rejected=rejected, sources=sources,
                                    settings_note=settings_note, unreadable_rows=unreadable_rows,
-                                   unread_files=unread_files,
+                                   unread_files=unread_files, notes=notes,
                                    time_zone=time_zone, progress=progress)
             except OSError as exc:
                 raise ReportError(f"--report {self.directory}: cannot write {REPORT_FILE}: "
@@ -479,13 +481,14 @@ class ReplayReport:
 
     def _write(self, traces: list[StreamTrace], *, samples: dict[str, int], rejected: dict[str, dict[str, int]],
                sources: Sequence[str], settings_note: str, unreadable_rows: int, time_zone: str,
-               progress: Callable[[int], None] | None, unread_files: Sequence[str] = ()) -> Path:
+               progress: Callable[[int], None] | None, unread_files: Sequence[str] = (),
+               notes: Sequence[str] = ()) -> Path:
         charted = charted_streams(traces, rejected, self.max_charts)
         self.charted = (len(charted), len(traces))
         fd, tmp = _create_temporary(self.directory)
         self._tmp = tmp
         with open(fd, "w", encoding="utf-8") as out:
-            out.write(_head(sources, settings_note, time_zone, unread_files))
+            out.write(_head(sources, settings_note, time_zone, unread_files, notes))
             out.write(_summary(traces, samples, rejected, unreadable_rows, time_zone, charted))
             out.write('<h2 id="charts">Charts</h2>\n')
             out.write(_how_to_read())
@@ -864,12 +867,16 @@ def _interval_text(rec: AlertRecord, time_zone: str = "UTC") -> str:
     return f"{low} to {high} ({rec.interval_level:.0%})"
 
 
-def _head(sources: Sequence[str], settings_note: str, time_zone: str = "UTC", unread: Sequence[str] = ()) -> str:
+def _head(sources: Sequence[str], settings_note: str, time_zone: str = "UTC", unread: Sequence[str] = (),
+          notes: Sequence[str] = ()) -> str:
     files = ", ".join(f"<code>{_e(s)}</code>" for s in sources) or "none"
     skipped = "".join(f"<li>{_e(u)}</li>" for u in unread)
     if skipped:
         skipped = (f'<p class="caution" id="unread">{len(unread):,} file(s) could not be read and were '
                    f"skipped; their rows are in none of the figures below:</p>\n<ul>{skipped}</ul>\n")
+    if notes:
+        skipped += ('<p id="notes">Notes on the files (nothing of them was lost):</p>\n<ul>'
+                    + "".join(f"<li>{_e(n)}</li>" for n in notes) + "</ul>\n")
     return (
         '<!DOCTYPE html>\n<html lang="en">\n<head>\n<meta charset="utf-8">\n'
         '<meta name="viewport" content="width=device-width, initial-scale=1">\n'

@@ -109,10 +109,13 @@ def test_the_hour_repeated_when_clocks_go_back_is_read_as_each_stream_s_times_sa
     utc = write_long(tmp_path / "utc.csv", data)
     expected = cli("replay", str(utc))
     assert expected.returncode == 0 and expected.stdout.count("\n") >= 4
-    read = cli("replay", "--timezone", "Europe/Berlin", str(local))
+    read = cli("replay", "--timezone", "Europe/Berlin", "--report", str(tmp_path / "rep"), str(local))
     assert read.returncode == 0, read.stderr[-2000:]
     assert read.stdout == expected.stdout
     assert "4000 time(s) in the hour repeated when the clocks went back" in read.stderr
+    # and the report says so too, among its notes on the files
+    page = (tmp_path / "rep" / "report.html").read_text(encoding="utf-8")
+    assert 'id="notes"' in page and "4000 time(s) in the hour repeated when the clocks went back" in page
     # The same through more than one process, the file in several chunks (streams are fed
     # by their owner, which keeps each stream's last time).
     chunked = replay_files([local], jobs=2, timezone="Europe/Berlin", chunk_bytes=64 * 1024)

@@ -101,3 +101,16 @@ def test_an_unnamed_column_between_tags_is_still_refused(cli, tmp_path: Path) ->
     assert got.returncode == 2
     assert f"{bad}:1: column 3 of the header has no name; in a wide file each column after time names a tag" \
         in got.stderr, got.stderr
+
+
+def test_the_note_is_in_the_report_too(cli, tmp_path: Path) -> None:
+    # The engineer who reads the HTML report, not the terminal, learns of the ignored column
+    # as well (before, only stderr said it). The note is not among the problems.
+    data = readings(1500)
+    wide = _with_trailing_comma(write_wide(tmp_path / "plain.csv", data), tmp_path / "sheet.csv")
+    got = cli("replay", "--report", str(tmp_path / "rep"), str(wide))
+    assert got.returncode == 0, got.stderr
+    html = (tmp_path / "rep" / "report.html").read_text(encoding="utf-8")
+    import html as html_lib
+    assert f'<li>{html_lib.escape(f"{wide}: {NOTE}")}</li>' in html, html[:3000]
+    assert 'id="notes"' in html and 'id="unread"' not in html
