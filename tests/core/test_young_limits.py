@@ -102,3 +102,53 @@ def test_limits_equal_the_divisions_on_random_histories(case: tuple[np.ndarray, 
     x, cuts, far = case
     settings = DetectionSettings(false_alarm_every=far)
     assert _run(x, cuts, settings, True) == _run(x, cuts, settings, False)
+
+
+@pytest.mark.parametrize("turn", [0, 1, 2, 3])
+def test_limits_equal_the_divisions_with_each_chart_nearest_its_limit(monkeypatch: pytest.MonkeyPatch,
+                                                                     turn: int) -> None:
+    # The designed bank's charts with the smaller k have the larger sums and the larger h,
+    # so one chart's quotient tends to lead; with the h rotated among the charts each one
+    # in turn has the smallest h, and its two sums' limits decide.
+    from shiftwatch.core.multicusum import MultiCusumTest
+
+    made = engine.make_test
+
+    def rotated(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: float = float("inf"), *,
+                n_level: float | None = None) -> MultiCusumTest:
+        test = made(settings, arl0, shift_z, n_ref, n_level=n_level)
+        hs = list(test.hs)  # type: ignore[attr-defined]
+        hs[turn], hs[hs.index(min(hs))] = min(hs), hs[turn]
+        return MultiCusumTest(ks=list(test.ks), hs=hs)  # type: ignore[attr-defined]
+
+    monkeypatch.setattr(engine, "make_test", rotated)
+    # Most split tests the screen lets through answer None and change nothing: the window
+    # lengths they are asked at are compared too.
+    asked: list[tuple[str, tuple[int, ...]]] = []
+    screen, evidence = engine.split_screen, engine.split_evidence
+
+    def screen_spy(values: np.ndarray, lengths: np.ndarray, **kw: float) -> np.ndarray:
+        asked.append(("screen", tuple(lengths.tolist())))
+        return screen(values, lengths, **kw)
+
+    def evidence_spy(values: np.ndarray, **kw: float) -> object:
+        asked.append(("evidence", (values.shape[0],)))
+        return evidence(values, **kw)
+
+    monkeypatch.setattr(engine, "split_screen", screen_spy)
+    monkeypatch.setattr(engine, "split_evidence", evidence_spy)
+    rng = np.random.default_rng(40 + turn)
+    for kind in ("iid", "t3", "ar"):
+        n = 1500
+        x = 20.0 + 0.5 * noise(kind, n, rng)
+        x[int(rng.integers(30, 190)):] += 1.0
+        x[int(rng.integers(300, n)):] -= 2.0
+        cuts = mixed_cuts(n, rng)
+        settings = DetectionSettings()
+        got = _run(x, cuts, settings, True)
+        asked_on = asked[:]
+        del asked[:]
+        assert got == _run(x, cuts, settings, False)
+        assert asked_on == asked
+        assert asked  # the histories do reach the split tests
+        del asked[:]
