@@ -152,3 +152,14 @@ def test_limits_equal_the_divisions_with_each_chart_nearest_its_limit(monkeypatc
         assert asked_on == asked
         assert asked  # the histories do reach the split tests
         del asked[:]
+
+
+def test_limits_stand_aside_for_unusable_charts_or_fractions() -> None:
+    # A bank's h is finite and positive (MultiCusumTest checks it); the loop falls back on
+    # the divisions rather than look for a limit that does not exist.
+    rows = ((0, 4, 0.25, 10.0), (1, 5, 0.5, 8.0), (2, 6, 0.75, 6.0), (3, 7, 1.0, 5.0))
+    assert engine._four_terms(rows, 0.1, 0.5, True)[-1] is True
+    for screen, calm in ((0.0, 0.5), (0.1, math.inf), (math.nan, 0.5)):
+        assert engine._four_terms(rows, screen, calm, True)[-1] is False
+    bad = ((0, 4, 0.25, math.inf),) + rows[1:]
+    assert engine._four_terms(bad, 0.1, 0.5, True)[-1] is False

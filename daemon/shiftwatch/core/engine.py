@@ -2783,7 +2783,7 @@ def _small_bank(test: SequentialTest) -> tuple[list[float] | None, tuple[float, 
 
 
 def _least_reaching(h: float, frac: float) -> float:
-    """The least double ``c`` for which ``c / h >= frac`` (``h`` and ``frac`` positive):
+    """The least double ``c`` for which ``c / h >= frac`` (``h`` and ``frac`` positive and finite):
     division by a positive ``h`` is correctly rounded and so never decreasing in ``c``,
     and for every ``c >= 0`` the comparison ``c >= _least_reaching(h, frac)`` is
     ``c / h >= frac``, whatever the rounding does near the boundary."""
@@ -2808,7 +2808,7 @@ def _four_terms(khs: tuple[tuple[int, int, float, float], ...], screen: float, c
     compared with its chart's limits as the recursion sets it gives the same answer as the
     eight divisions and their maximum (tests/core/test_young_limits.py)."""
     (_, _, k0, h0), (_, _, k1, h1), (_, _, k2, h2), (_, _, k3, h3) = khs
-    ok = on and screen > 0.0 and calm > 0.0 and all(h > 0.0 for h in (h0, h1, h2, h3))
+    ok = on and all(0.0 < v < math.inf for v in (screen, calm, h0, h1, h2, h3))
     if not ok:
         inf = math.inf
         return k0, h0, inf, inf, k1, h1, inf, inf, k2, h2, inf, inf, k3, h3, inf, inf, False
