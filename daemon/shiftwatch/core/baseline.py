@@ -33,6 +33,11 @@ except AttributeError:  # numpy 1.x (the ufunc's module was numpy.core then)
 #: BaselineSums.add calls _dot and _clip directly; False: np.dot and ndarray.clip, the
 #: reference (tests/core/test_per_call.py holds the two to each other).
 DIRECT_CALLS = True
+#: huber_scale works each iteration's mean of clipped squares in one buffer by the ufuncs
+#: np.mean and np.clip reach through their wrappers (the same floats); False: the
+#: reference, np.mean(np.clip(r / s, -c, c) ** 2) (tests/core/test_lean_huber.py holds the
+#: two to each other).
+LEAN_HUBER = True
 
 #: d2 for subgroups of two: E|X1 - X2| = 1.128 sigma for Gaussian noise.
 #: A standard SPC constant (common practice).
@@ -114,6 +119,24 @@ def huber_scale(r: FloatArray, c: float, s0: float, iterations: int = 30) -> flo
         return s0
     beta = huber_beta(c)
     s = s0
+    if LEAN_HUBER:
+        # np.mean(np.clip(r / s, -c, c) ** 2) by the ufuncs it reaches through its wrappers,
+        # in one buffer: the same quotients, clips and squares, summed by the same pairwise
+        # reduction and divided by the count as np.mean divides, so the same float.
+        buf = np.empty_like(r, dtype=np.float64)
+        count = r.shape[0]
+        for _ in range(iterations):
+            np.true_divide(r, s, out=buf)
+            _clip(buf, -c, c, out=buf)
+            np.square(buf, out=buf)
+            m2 = float(_sum(buf)) / count
+            s_new = s * math.sqrt(m2 / beta)
+            if s_new <= 0:
+                return s
+            if abs(s_new - s) <= 1e-9 * s:
+                return s_new
+            s = s_new
+        return s
     for _ in range(iterations):
         m2 = float(np.mean(np.clip(r / s, -c, c) ** 2))
         s_new = s * math.sqrt(m2 / beta)

@@ -32,6 +32,7 @@ The engine moves through three states:
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import math
 import operator
@@ -522,6 +523,12 @@ _ONE_ZERO = array("d", [0.0])
 #: the same numbers.  False: the reference (tests/core/test_per_call.py holds the two to
 #: each other).
 LEAN_CALLS = True
+#: The young loop (StreamEngine._young_loop) tells whether its bank's statistic reaches the
+#: split screen's or the calm fraction of the threshold by comparing each sum, as the
+#: recursion sets it, with the least sum that reaches it (_four_terms), in place of the
+#: bank's eight divisions and their maximum per sample; the same answers.  False: the
+#: divisions, the reference (tests/core/test_young_limits.py holds the two to each other).
+YOUNG_LIMITS = True
 
 
 class _SplitCalled(Exception):
@@ -1404,11 +1411,16 @@ class StreamEngine:
         thr = 1.0
         four = False  # a bank of four charts: k and h of each below
         k0 = k1 = k2 = k3 = h0 = h1 = h2_ = h3 = 0.0
+        # ... and the least sums at which a chart's C / h reaches the split screen's and the
+        # calm fractions of the threshold (see _four_terms); lim: they stand for the divisions.
+        s0 = s1 = s2 = s3 = q0 = q1 = q2 = q3 = math.inf
+        lim = False
         if test is not None:
             c, h2, khs, thr = _small_bank(test)
-            four = len(khs) == 4
+            four = lim = len(khs) == 4
             if four:
-                (_, _, k0, h0), (_, _, k1, h1), (_, _, k2, h2_), (_, _, k3, h3) = khs
+                (k0, h0, s0, q0, k1, h1, s1, q1, k2, h2_, s2, q2, k3, h3, s3, q3,
+                 lim) = _four_terms(khs, YOUNG_SPLIT_SCREEN * thr, YOUNG_CALM * thr, YOUNG_LIMITS)
         # The young level's fields that change here (the others are fixed while it lives).
         yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm = _young_fields(ys)
         yphi, follow, pool_n, pool_c1 = ys.phi, ys.follow, ys.pool_n, ys.pool_c1
@@ -1472,9 +1484,10 @@ class StreamEngine:
                         test = self._test
                     if test is not None:
                         c, h2, khs, thr = _small_bank(test)
-                        four = len(khs) == 4
+                        four = lim = len(khs) == 4
                         if four:
-                            (_, _, k0, h0), (_, _, k1, h1), (_, _, k2, h2_), (_, _, k3, h3) = khs
+                            (k0, h0, s0, q0, k1, h1, s1, q1, k2, h2_, s2, q2, k3, h3, s3, q3,
+                             lim) = _four_terms(khs, YOUNG_SPLIT_SCREEN * thr, YOUNG_CALM * thr, YOUNG_LIMITS)
                     yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm = _young_fields(ys)
                     n = yn
                     sd0 = -1.0
@@ -1551,11 +1564,13 @@ class StreamEngine:
                 if test is None:
                     test = self._young_test()
                     c, h2, khs, thr = _small_bank(test)
-                    four = len(khs) == 4
+                    four = lim = len(khs) == 4
                     if four:
-                        (_, _, k0, h0), (_, _, k1, h1), (_, _, k2, h2_), (_, _, k3, h3) = khs
+                        (k0, h0, s0, q0, k1, h1, s1, q1, k2, h2_, s2, q2, k3, h3, s3, q3,
+                         lim) = _four_terms(khs, YOUNG_SPLIT_SCREEN * thr, YOUNG_CALM * thr, YOUNG_LIMITS)
                 zc = nclip if z < nclip else (clip if z > clip else z)
                 stat = -1.0  # the test's statistic, worked out when needed
+                screened = calm = False  # (with lim) its C / h reached the screen's, the calm fraction
                 if c is not None:
                     # MultiCusumTest._update_small on one sample
                     # (a sum at zero never exceeds its h, which is positive, so each side
@@ -1566,6 +1581,10 @@ class StreamEngine:
                             c[0] = v
                             if v > h0:
                                 tripped = True
+                            if v >= s0:
+                                screened = True
+                                if v >= q0:
+                                    calm = True
                         else:
                             c[0] = 0.0
                         v = c[4] - zc - k0
@@ -1573,6 +1592,10 @@ class StreamEngine:
                             c[4] = v
                             if v > h0:
                                 tripped = True
+                            if v >= s0:
+                                screened = True
+                                if v >= q0:
+                                    calm = True
                         else:
                             c[4] = 0.0
                         v = c[1] + zc - k1
@@ -1580,6 +1603,10 @@ class StreamEngine:
                             c[1] = v
                             if v > h1:
                                 tripped = True
+                            if v >= s1:
+                                screened = True
+                                if v >= q1:
+                                    calm = True
                         else:
                             c[1] = 0.0
                         v = c[5] - zc - k1
@@ -1587,6 +1614,10 @@ class StreamEngine:
                             c[5] = v
                             if v > h1:
                                 tripped = True
+                            if v >= s1:
+                                screened = True
+                                if v >= q1:
+                                    calm = True
                         else:
                             c[5] = 0.0
                         v = c[2] + zc - k2
@@ -1594,6 +1625,10 @@ class StreamEngine:
                             c[2] = v
                             if v > h2_:
                                 tripped = True
+                            if v >= s2:
+                                screened = True
+                                if v >= q2:
+                                    calm = True
                         else:
                             c[2] = 0.0
                         v = c[6] - zc - k2
@@ -1601,6 +1636,10 @@ class StreamEngine:
                             c[6] = v
                             if v > h2_:
                                 tripped = True
+                            if v >= s2:
+                                screened = True
+                                if v >= q2:
+                                    calm = True
                         else:
                             c[6] = 0.0
                         v = c[3] + zc - k3
@@ -1608,6 +1647,10 @@ class StreamEngine:
                             c[3] = v
                             if v > h3:
                                 tripped = True
+                            if v >= s3:
+                                screened = True
+                                if v >= q3:
+                                    calm = True
                         else:
                             c[3] = 0.0
                         v = c[7] - zc - k3
@@ -1615,6 +1658,10 @@ class StreamEngine:
                             c[7] = v
                             if v > h3:
                                 tripped = True
+                            if v >= s3:
+                                screened = True
+                                if v >= q3:
+                                    calm = True
                         else:
                             c[7] = 0.0
                     else:
@@ -1643,13 +1690,18 @@ class StreamEngine:
                     thr = test.threshold
                 az = z if z >= 0.0 else -z  # compared only: abs(z) up to the sign of a zero
                 if not tripped and no_base and n >= YOUNG_SPLIT_FROM:
-                    if az < YOUNG_Z_HOLD:
+                    if az >= YOUNG_Z_HOLD:
+                        near = True
+                    elif lim:
+                        near = screened
+                    else:
                         stat = max(map(truediv, c, h2)) if c is not None else test.statistic
-                    if deferred is not None and (az >= YOUNG_Z_HOLD or stat >= YOUNG_SPLIT_SCREEN * thr):
+                        near = stat >= YOUNG_SPLIT_SCREEN * thr
+                    if deferred is not None and near:
                         deferred.append((win._n, self._test_arl0))
                         if len(deferred) >= SPLIT_DEFER_ROWS:
                             self._flush_splits(deferred)
-                    elif az >= YOUNG_Z_HOLD or stat >= YOUNG_SPLIT_SCREEN * thr:
+                    elif near:
                         ev = split_evidence(win.values, phi_margin=YOUNG_SPLIT_MARGIN,
                                             p_below=YOUNG_SPLIT_SHARE / self._test_arl0 if self._test_arl0 > 0.0
                                             else 1.0)
@@ -1663,8 +1715,9 @@ class StreamEngine:
                     take = False
                 elif n >= YOUNG_HOLD_FROM and phi == 0.0 and (
                         tripped or az >= YOUNG_Z_HOLD
-                        or (stat if stat >= 0.0 else (max(map(truediv, c, h2)) if c is not None
-                                                       else test.statistic)) >= YOUNG_CALM * thr):
+                        or (calm if lim else
+                            (stat if stat >= 0.0 else (max(map(truediv, c, h2)) if c is not None
+                                                       else test.statistic)) >= YOUNG_CALM * thr)):
                     # SelfStart.hold
                     take = False
                     held.append(xv)
@@ -2727,6 +2780,42 @@ def _small_bank(test: SequentialTest) -> tuple[list[float] | None, tuple[float, 
         return None, (), (), test.threshold
     ks, hs = test.ks, test.hs  # type: ignore[attr-defined]
     return c, hs + hs, _chart_rows(ks, hs), test.threshold
+
+
+def _least_reaching(h: float, frac: float) -> float:
+    """The least double ``c`` for which ``c / h >= frac`` (``h`` and ``frac`` positive and finite):
+    division by a positive ``h`` is correctly rounded and so never decreasing in ``c``,
+    and for every ``c >= 0`` the comparison ``c >= _least_reaching(h, frac)`` is
+    ``c / h >= frac``, whatever the rounding does near the boundary."""
+    c = frac * h
+    while c > 0.0 and c / h >= frac:
+        c = math.nextafter(c, -math.inf)
+    while not c / h >= frac:
+        c = math.nextafter(c, math.inf)
+    return c
+
+
+@functools.lru_cache(maxsize=64)
+def _four_terms(khs: tuple[tuple[int, int, float, float], ...], screen: float, calm: float, on: bool
+                ) -> tuple[float, float, float, float, float, float, float, float, float, float, float, float,
+                           float, float, float, float, bool]:
+    """For :meth:`StreamEngine._young_loop`'s bank of four charts: each chart's k and h, and
+    the least sums (:func:`_least_reaching`) at which its ``C / h`` reaches ``screen`` and
+    ``calm`` (YOUNG_SPLIT_SCREEN and YOUNG_CALM times the threshold); last, whether those
+    limits stand for the divisions (``on``: YOUNG_LIMITS, and the calm limit never below
+    the screen's, as the loop checks it only past the screen's).  The young test's statistic is the largest
+    ``C / h`` of the bank, and the loop only compares it with those fractions: a sum
+    compared with its chart's limits as the recursion sets it gives the same answer as the
+    eight divisions and their maximum (tests/core/test_young_limits.py)."""
+    (_, _, k0, h0), (_, _, k1, h1), (_, _, k2, h2), (_, _, k3, h3) = khs
+    ok = on and all(0.0 < v < math.inf for v in (screen, calm, h0, h1, h2, h3))
+    if not ok:
+        inf = math.inf
+        return k0, h0, inf, inf, k1, h1, inf, inf, k2, h2, inf, inf, k3, h3, inf, inf, False
+    s = [_least_reaching(h, screen) for h in (h0, h1, h2, h3)]
+    q = [_least_reaching(h, calm) for h in (h0, h1, h2, h3)]
+    ok = all(a <= b for a, b in zip(s, q))
+    return k0, h0, s[0], q[0], k1, h1, s[1], q[1], k2, h2, s[2], q[2], k3, h3, s[3], q[3], ok
 
 
 def _young_fields(ys: SelfStart) -> tuple[int, float, float, int, float | None, float | None, float,

@@ -353,7 +353,7 @@ class MultiCusumTest(SequentialTest):
             stop = min(n, start + BLOCK)
             blk = x[start:stop]
             if bank.ascending and stop - start >= FAST_FROM:
-                i = self._block_fast(blk)
+                i = self._block_lean(blk) if LEAN_BLOCK else self._block_fast(blk)
                 if i == -2:
                     pass  # the fast path declined: exact path below
                 elif i >= 0:
@@ -549,6 +549,104 @@ class MultiCusumTest(SequentialTest):
         self._stat = float(np.max(ratio))
         return -1
 
+    def _block_lean(self, blk: FloatArray) -> int:
+        """:meth:`_block_fast` with its fixed work trimmed: the sums' order checked on a
+        list of them, the charts' k and h read as floats, and the reductions and running
+        sums called as the ufuncs that ndarray.max, .min and np.cumsum reach through their
+        Python wrappers; the same operations on the same numbers, so the same sums and
+        trip (tests/core/test_lean_block.py holds the two to each other)."""
+        bank = self._bank
+        m = bank.m
+        ks, hs = bank.ks, bank.hs
+        c = self._c
+        cl = c.tolist()
+        for side in (0, 1):
+            cs = cl[side * m:(side + 1) * m]
+            first = cs[0]
+            for i in range(m):
+                v = cs[i]
+                if (i and v > first) or v >= hs[i]:
+                    return -2
+        n: int = blk.shape[0]
+        acc = np.add.accumulate
+        run_min = np.minimum.accumulate
+        top = np.maximum.reduce
+        low_of = np.minimum.reduce
+        total = acc(blk)
+        best_t = n
+        first_c: list[FloatArray] = []
+        signs: list[FloatArray] = []
+        tilde: list[dict[int, FloatArray]] = []
+        k0 = ks[0]
+        for side in (0, 1):
+            cs = cl[side * m:(side + 1) * m]
+            if side == 0:
+                d0 = blk - k0
+                signed = total
+                zmax = float(top(blk))
+            else:
+                d0 = -blk
+                d0 -= k0
+                signed = -total
+                zmax = float(-low_of(blk))
+            signs.append(signed)
+            s0 = acc(d0)
+            floor0 = run_min(s0)
+            np.minimum(floor0, -cs[0], out=floor0)
+            c1 = np.subtract(s0, floor0, out=s0)
+            first_c.append(c1)
+            c1max = float(top(c1))
+            c1end = float(c1[-1])
+            if c1max > hs[0]:
+                best_t = min(best_t, int(np.argmax(c1 > hs[0])))
+            rows: dict[int, FloatArray] = {}
+            for i in range(1, m):
+                g = zmax - ks[i]
+                if g > 0:
+                    lag = min(math.floor(hs[i] / g) + 1, math.floor((hs[i] - cs[i]) / g) + 1)
+                    bound = hs[i] + (ks[i] - k0) * max(lag, 1)
+                else:
+                    bound = math.inf  # this chart can only fall in this block
+                if c1max <= bound and c1end <= 0.0:
+                    continue  # cannot trip, and ends at zero like the first chart
+                st = signed - ks[i] * _STEPS[:n]
+                rows[i] = st
+                if c1max <= bound:
+                    continue
+                sus = np.flatnonzero(c1 > bound)
+                cuts = sus + 1
+                cuts = cuts[cuts < n]
+                seg = np.minimum.reduceat(st, np.concatenate(([0], cuts)))
+                pre = run_min(seg)[: sus.shape[0]]
+                ci = st[sus] - np.minimum(pre, -cs[i])
+                hit = np.flatnonzero(ci > hs[i])
+                if hit.shape[0]:
+                    best_t = min(best_t, int(sus[hit[0]]))
+            tilde.append(rows)
+        t = best_t if best_t < n else n - 1
+        col = np.zeros(2 * m)
+        for side in (0, 1):
+            cs = cl[side * m:(side + 1) * m]
+            f = first_c[side][t]
+            col[side * m] = f
+            if f <= 0.0:
+                continue  # every chart of this side is at zero
+            for i in range(1, m):
+                kept = tilde[side].get(i)
+                st = signs[side] - ks[i] * _STEPS[:n] if kept is None else kept
+                low = float(low_of(st[: t + 1])) if t < n - 1 else float(low_of(st))
+                col[side * m + i] = st[t] - min(-cs[i], low)
+        self._c[:] = col
+        ratio = col / bank.h2
+        if best_t < n:
+            row = int(np.argmax(ratio))
+            self._stat = float(ratio[row])
+            self._tripped = row % m
+            self._dir = 1 if row < m else -1
+            return best_t
+        self._stat = float(top(ratio))
+        return -1
+
     def reset(self) -> None:
         """Set every sum to zero; keep ``ks`` and ``hs``."""
         self._c = np.zeros(2 * self._bank.m)
@@ -634,6 +732,9 @@ FAST_FROM = 1024
 #: MultiCusumTest.update's exact path builds the increments of both sides' rows with one
 #: multiplication by the rows' signs (False: the two subtractions, the reference).
 SIGNED_ROWS = True
+#: Blocks that take the few-pass path take it with its fixed work trimmed
+#: (MultiCusumTest._block_lean); False: _block_fast, the reference.
+LEAN_BLOCK = True
 
 
 def _float_list(name: str, values: Sequence[float]) -> list[float]:
