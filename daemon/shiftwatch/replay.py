@@ -635,6 +635,7 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
         feeder = _Feeder(sources, settings_for, unit_for, trace_options, tz)
         opened = OpenFiles()
         own: deque[tuple[int, list[Any]]] = deque()
+        owners: dict[str, int] = {}
         next_own = me
         total: int | None = None
 
@@ -651,7 +652,10 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
             feeder.take_block(block)
             split: list[list[Any]] = [[] for _ in range(jobs)]
             for part in block.parts:
-                split[_owner(part[0], jobs)].append(part)
+                to = owners.get(part[0])
+                if to is None:  # a CRC-32 once per stream, not once per stream and piece
+                    to = owners[part[0]] = _owner(part[0], jobs)
+                split[to].append(part)
             for j in range(jobs):
                 if j != me:
                     pairs[me, j].put(slots[me, j].put(split[j]))
