@@ -29,15 +29,12 @@ from __future__ import annotations
 import math
 import mmap
 import os
-import queue
-import traceback
 import zlib
 from collections import deque
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from datetime import tzinfo
-from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -60,6 +57,9 @@ from shiftwatch.sources import (
     tasks,
     time_zone,
 )
+
+if TYPE_CHECKING:
+    from pathlib import Path
 
 __all__ = ["BATCH", "KEEP_PROBLEMS", "REQUIRED_COLUMNS", "CsvFormatError", "ReadResult", "ReplayResult",
            "StreamOutcome", "StreamSeries", "affinity_cores", "cgroup_cpu_limit", "default_jobs",
@@ -96,7 +96,8 @@ def default_jobs(cgroup_root: str | os.PathLike[str] = CGROUP_ROOT,
     at least 1.  More processes than that only take turns, throttled by the kernel."""
     cores = affinity_cores()
     try:
-        text = Path(proc_cgroup).read_text(encoding="utf-8", errors="replace")
+        with open(proc_cgroup, encoding="utf-8", errors="replace") as f:
+            text = f.read()
     except OSError:
         text = ""
     quota = cgroup_cpu_limit(cgroup_root, *own_cgroup_paths(text))
@@ -134,20 +135,21 @@ def cgroup_cpu_limit(root: str | os.PathLike[str], v2_path: str = "/", v1_path: 
     >>> cgroup_cpu_limit("/nonexistent") is None
     True
     """
-    base = Path(root)
+    base = os.fspath(root)
     found: list[float] = []
     for path, files in ((v2_path, _v2_files), (v2_path if v1_path is None else v1_path, _v1_files)):
-        parts = [p for p in path.split("/") if p and p != ".."]
+        parts = [p for p in path.split("/") if p and p not in (".", "..")]
         for depth in range(len(parts), -1, -1):
-            for limit in files(base, Path(*parts[:depth])):
+            for limit in files(base, parts[:depth]):
                 if limit is not None:
                     found.append(limit)
     return min(found) if found else None
 
 
-def _read_words(path: Path) -> list[str] | None:
+def _read_words(path: str) -> list[str] | None:
     try:
-        return path.read_text(encoding="ascii", errors="replace").split()
+        with open(path, encoding="ascii", errors="replace") as f:
+            return f.read().split()
     except OSError:
         return None
 
@@ -160,19 +162,19 @@ def _quota(quota: str, period: str) -> float | None:
     return q / p if q > 0 and p > 0 else None
 
 
-def _v2_files(base: Path, rel: Path) -> list[float | None]:
+def _v2_files(base: str, rel: list[str]) -> list[float | None]:
     out: list[float | None] = []
-    for tree in (base, base / "unified"):
-        words = _read_words(tree / rel / "cpu.max")
+    for tree in (base, os.path.join(base, "unified")):
+        words = _read_words(os.path.join(tree, *rel, "cpu.max"))
         out.append(_quota(words[0], words[1]) if words is not None and len(words) == 2 else None)
     return out
 
 
-def _v1_files(base: Path, rel: Path) -> list[float | None]:
+def _v1_files(base: str, rel: list[str]) -> list[float | None]:
     out: list[float | None] = []
     for controller in ("cpu", "cpu,cpuacct", "cpuacct,cpu"):
-        quota = _read_words(base / controller / rel / "cpu.cfs_quota_us")
-        period = _read_words(base / controller / rel / "cpu.cfs_period_us")
+        quota = _read_words(os.path.join(base, controller, *rel, "cpu.cfs_quota_us"))
+        period = _read_words(os.path.join(base, controller, *rel, "cpu.cfs_period_us"))
         ok = quota is not None and period is not None and len(quota) == 1 and len(period) == 1
         out.append(_quota(quota[0], period[0]) if ok and quota and period else None)
     return out
@@ -625,11 +627,15 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
     While the chunk to feed next is another's and has not come yet, it parses up to
     :data:`LOOKAHEAD` of its own ahead, so the processes parse at the same time.
     """
+    import queue
+    import traceback
+
     try:
         _end_with_parent(parent)
         feeder = _Feeder(sources, settings_for, unit_for, trace_options, tz)
         opened = OpenFiles()
         own: deque[tuple[int, list[Any]]] = deque()
+        owners: dict[str, int] = {}
         next_own = me
         total: int | None = None
 
@@ -646,7 +652,10 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
             feeder.take_block(block)
             split: list[list[Any]] = [[] for _ in range(jobs)]
             for part in block.parts:
-                split[_owner(part[0], jobs)].append(part)
+                to = owners.get(part[0])
+                if to is None:  # a CRC-32 once per stream, not once per stream and piece
+                    to = owners[part[0]] = _owner(part[0], jobs)
+                split[to].append(part)
             for j in range(jobs):
                 if j != me:
                     pairs[me, j].put(slots[me, j].put(split[j]))
@@ -742,6 +751,8 @@ def _run_processes(procs: list[Any], plans: list[Any], results: Any, done: Any, 
                    chunk_bytes: int) -> ReplayResult:
     """Start the workers, hand them the pieces, gather what they return; any failure or
     signal stops them all."""
+    import queue  # here: one process never pays for it
+
     for p in procs:
         p.start()
     reported = 0

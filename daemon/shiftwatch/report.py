@@ -31,13 +31,10 @@ of 9 s fills about half of them, so each bin is 5 s wide.
 
 from __future__ import annotations
 
-import base64
 import errno
-import html
 import io
 import math
 import os
-import secrets
 import signal
 import struct
 import threading
@@ -45,7 +42,6 @@ import warnings
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
-from pathlib import Path
 from typing import TYPE_CHECKING, Any, Literal
 
 import numpy as np
@@ -57,6 +53,8 @@ from shiftwatch.core.timefmt import format_duration
 from shiftwatch.display import stamp, zone, zone_label
 
 if TYPE_CHECKING:
+    from pathlib import Path
+
     from matplotlib.axes import Axes
     from matplotlib.figure import Figure
 
@@ -388,6 +386,8 @@ class ReplayReport:
 
     def __init__(self, directory: str | Path, *, max_bins: int = MAX_BINS, zoom_samples: int = ZOOM_SAMPLES,
                  max_zooms: int = MAX_ZOOMS, max_spikes: int = MAX_SPIKES, max_charts: int = MAX_CHARTS) -> None:
+        from pathlib import Path  # here: a replay without --report does without it
+
         require_matplotlib()
         if max_charts < 0:
             raise ValueError(f"max_charts must be 0 or more, got {max_charts}")
@@ -483,6 +483,9 @@ class ReplayReport:
                sources: Sequence[str], settings_note: str, unreadable_rows: int, time_zone: str,
                progress: Callable[[int], None] | None, unread_files: Sequence[str] = (),
                notes: Sequence[str] = ()) -> Path:
+        import base64
+        import html  # here: a replay without --report writes no HTML
+
         charted = charted_streams(traces, rejected, self.max_charts)
         self.charted = (len(charted), len(traces))
         fd, tmp = _create_temporary(self.directory)
@@ -529,6 +532,8 @@ def _create_temporary(directory: Path) -> tuple[int, Path]:
     Like :func:`tempfile.mkstemp` (a new name, never an existing file), but with
     mode 0666 less the umask rather than 0600: the file becomes ``report.html``,
     which is meant to be passed around, as any file the user writes."""
+    import secrets
+
     flags = os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_CLOEXEC", 0)
     for _ in range(100):
         path = directory / f".report-{secrets.token_hex(4)}.html"
@@ -852,6 +857,8 @@ footer { margin-top: 2rem; font-size: 0.8rem; color: #555; }
 
 
 def _e(x: object) -> str:
+    import html
+
     return html.escape(str(x))
 
 

@@ -92,7 +92,12 @@ with open(sys.argv[1], newline="") as f:
         pass
 """ + CPU_REPORT
 # The replay with engines that take every batch and do nothing: reading, batching, output.
+# shiftwatch.cli first, as the command imports it: it sets OPENBLAS_NUM_THREADS=1 before numpy is
+# imported.  Imported after numpy (through shiftwatch.core), it did not, and these runs alone paid
+# for OpenBLAS's threads (0.62 against 0.40 s of CPU for the Parquet file, 5 alternated runs,
+# 2026-12-04), which made the engines' share of a replay look smaller than it is.
 NULL_ENGINE = """
+import shiftwatch.cli
 from shiftwatch.core import engine
 empty = engine.BatchResult()
 engine.StreamEngine.process = lambda self, t, v: empty
