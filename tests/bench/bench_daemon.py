@@ -800,12 +800,12 @@ def batch_daemon(bench: Bench, streams: int, batch: int, rounds: int) -> dict[st
         finish_publishers(bench, pubs, 60)
         m = scrape(port)
         code, stop_s = bench.stop_proc(d)
-        if m.get("shiftwatch_samples_total", 0.0) != c2:  # a message of another size, or samples set aside
-            raise RuntimeError(f"the engines took {m.get('shiftwatch_samples_total', 0.0):,.0f} samples, "
-                               f"{c2:,.0f} = messages processed x {batch} expected")
         if t1 is None or c1 is None or cpu1 is None or c2 <= c1:
             return {"rate": 0.0, "per_cpu": 0.0, "samples": c2, "expected": total, "cpu_share": 0.0,
                     "dropped": m.get("shiftwatch_messages_dropped_total", 0.0), "exit": float(code or 0)}
+        if m.get("shiftwatch_samples_total", 0.0) != c2:  # a message of another size
+            raise RuntimeError(f"the engines took {m.get('shiftwatch_samples_total', 0.0):,.0f} samples, "
+                               f"{c2:,.0f} = messages processed x {batch} expected")
         return {"rate": (c2 - c1) / max(t2 - t1, 1e-9), "per_cpu": (c2 - c1) / max(cpu2 - cpu1, 1e-9),
                 "cpu_share": (cpu2 - cpu1) / max(t2 - t1, 1e-9), "samples": c2, "expected": total,
                 "measured": c2 - c1, "seconds": t2 - t1,

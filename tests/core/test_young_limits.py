@@ -108,8 +108,11 @@ def test_limits_equal_the_divisions_on_random_histories(case: tuple[np.ndarray, 
 def test_limits_equal_the_divisions_with_each_chart_nearest_its_limit(monkeypatch: pytest.MonkeyPatch,
                                                                      turn: int) -> None:
     # The designed bank's charts with the smaller k have the larger sums and the larger h,
-    # so one chart's quotient tends to lead; with the h rotated among the charts each one
-    # in turn has the smallest h, and its two sums' limits decide.
+    # so one chart's quotient tends to lead.  The young loop writes the four charts out by
+    # their place in the bank; with the (k, h) pairs moved round the places, each place in
+    # turn holds the leading chart, and its two sums' limits decide.  (Before 2026-12-04
+    # this swapped h values in one line, which stored the old value back: the bank was
+    # never changed, and the fourth place's limits were not guarded.)
     from shiftwatch.core.multicusum import MultiCusumTest
 
     made = engine.make_test
@@ -117,9 +120,10 @@ def test_limits_equal_the_divisions_with_each_chart_nearest_its_limit(monkeypatc
     def rotated(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: float = float("inf"), *,
                 n_level: float | None = None) -> MultiCusumTest:
         test = made(settings, arl0, shift_z, n_ref, n_level=n_level)
-        hs = list(test.hs)  # type: ignore[attr-defined]
-        hs[turn], hs[hs.index(min(hs))] = min(hs), hs[turn]
-        return MultiCusumTest(ks=list(test.ks), hs=hs)  # type: ignore[attr-defined]
+        ks, hs = list(test.ks), list(test.hs)  # type: ignore[attr-defined]
+        # the charts' (k, h) pairs moved round by ``turn`` places: the leading chart moves
+        # with its k and h to another of the written-out sums' places
+        return MultiCusumTest(ks=ks[turn:] + ks[:turn], hs=hs[turn:] + hs[:turn])
 
     monkeypatch.setattr(engine, "make_test", rotated)
     # Most split tests the screen lets through answer None and change nothing: the window
@@ -163,3 +167,9 @@ def test_limits_stand_aside_for_unusable_charts_or_fractions() -> None:
         assert engine._four_terms(rows, screen, calm, True)[-1] is False
     bad = ((0, 4, 0.25, math.inf),) + rows[1:]
     assert engine._four_terms(bad, 0.1, 0.5, True)[-1] is False
+    # A product of a fraction and an h that overflows or leaves the normal doubles: a
+    # search from there would step through up to 2**52 doubles; the divisions are used.
+    for screen, calm in ((1e-310, 0.5), (0.1, 1e308)):
+        assert engine._four_terms(rows, screen, calm, True)[-1] is False
+    huge = ((0, 4, 0.25, 1e305),) + rows[1:]
+    assert engine._four_terms(huge, 0.1, 0.5, True)[-1] is False

@@ -119,7 +119,7 @@ def huber_scale(r: FloatArray, c: float, s0: float, iterations: int = 30) -> flo
         return s0
     beta = huber_beta(c)
     s = s0
-    if LEAN_HUBER:
+    if LEAN_HUBER and r.dtype == np.float64 and r.ndim == 1:  # what every caller in the package passes
         # np.mean(np.clip(r / s, -c, c) ** 2) by the ufuncs it reaches through its wrappers,
         # in one buffer: the same quotients, clips and squares, summed by the same pairwise
         # reduction and divided by the count as np.mean divides, so the same float.

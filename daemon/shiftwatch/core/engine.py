@@ -2808,7 +2808,10 @@ def _four_terms(khs: tuple[tuple[int, int, float, float], ...], screen: float, c
     compared with its chart's limits as the recursion sets it gives the same answer as the
     eight divisions and their maximum (tests/core/test_young_limits.py)."""
     (_, _, k0, h0), (_, _, k1, h1), (_, _, k2, h2), (_, _, k3, h3) = khs
-    ok = on and all(0.0 < v < math.inf for v in (screen, calm, h0, h1, h2, h3))
+    # (each product of a fraction and an h a normal double far from overflow: then the least
+    # sum lies within a few steps of it, and _least_reaching's loops end at once)
+    ok = on and all(0.0 < v < math.inf for v in (screen, calm, h0, h1, h2, h3)) and all(
+        1e-300 < f * h < 1e300 for f in (screen, calm) for h in (h0, h1, h2, h3))
     if not ok:
         inf = math.inf
         return k0, h0, inf, inf, k1, h1, inf, inf, k2, h2, inf, inf, k3, h3, inf, inf, False
