@@ -119,26 +119,20 @@ def huber_scale(r: FloatArray, c: float, s0: float, iterations: int = 30) -> flo
         return s0
     beta = huber_beta(c)
     s = s0
-    if LEAN_HUBER and r.dtype == np.float64 and r.ndim == 1:  # what every caller in the package passes
-        # np.mean(np.clip(r / s, -c, c) ** 2) by the ufuncs it reaches through its wrappers,
-        # in one buffer: the same quotients, clips and squares, summed by the same pairwise
-        # reduction and divided by the count as np.mean divides, so the same float.
-        buf = np.empty_like(r, dtype=np.float64)
-        count = r.shape[0]
-        for _ in range(iterations):
+    # LEAN_HUBER: np.mean(np.clip(r / s, -c, c) ** 2) by the ufuncs it reaches through its
+    # wrappers, in one buffer: the same quotients, clips and squares, summed by the same
+    # pairwise reduction and divided by the count as np.mean divides, so the same float
+    # (for the 1-D float64 residuals every caller in the package passes).
+    buf = np.empty_like(r) if LEAN_HUBER and r.dtype == np.float64 and r.ndim == 1 else None
+    count = r.shape[0]
+    for _ in range(iterations):
+        if buf is not None:
             np.true_divide(r, s, out=buf)
             _clip(buf, -c, c, out=buf)
             np.square(buf, out=buf)
             m2 = float(_sum(buf)) / count
-            s_new = s * math.sqrt(m2 / beta)
-            if s_new <= 0:
-                return s
-            if abs(s_new - s) <= 1e-9 * s:
-                return s_new
-            s = s_new
-        return s
-    for _ in range(iterations):
-        m2 = float(np.mean(np.clip(r / s, -c, c) ** 2))
+        else:
+            m2 = float(np.mean(np.clip(r / s, -c, c) ** 2))
         s_new = s * math.sqrt(m2 / beta)
         if s_new <= 0:
             return s
