@@ -533,7 +533,9 @@ def _stalled_reshard(tmp_path: Path, cluster: NatsCluster, plan: Plan, *, watch:
         assert len(others) == 2 and len(watched) == 2 and watched[1] >= 260, (others, watched)
         # ... and it took them meanwhile: a shard that NATS sends nothing more after 64
         # unacknowledged messages would take at most 64 (it took 0 on the code before).
-        assert watched[0] >= max(65.0, watched[1] / 4), (others, watched)
+        # (Not a share of what was published: how much of it a shard takes in 5 s is a
+        # matter of the machine's speed; a CI run on a slow machine took 202 of 1,004.)
+        assert watched[0] >= 65.0, (others, watched)
     page = pages[stalled]
     other = sum(v for (n, lab), v in page.items()
                 if n == "shiftwatch_messages_dropped_total" and dict(lab).get("reason") == "other_shard")
