@@ -148,6 +148,12 @@ def test_a_client_that_trickles_its_request_is_cut_at_the_deadline() -> None:
                         break
                 except TimeoutError:
                     pass
+                except ConnectionResetError:
+                    # Also a cut: a server that closes a socket with bytes of ours still
+                    # unread sends a reset instead of an end of stream (RFC 1122, 4.2.2.13).
+                    # A run with three test workers on two cores got it at the recv. (The RFC
+                    # section is cited from memory.)
+                    break
                 s.settimeout(30)
             assert sent < len(request), (sent, got)
             assert not got.startswith(b"HTTP/1.1 200")
