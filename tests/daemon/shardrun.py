@@ -20,10 +20,11 @@ from __future__ import annotations
 import json
 import signal
 import subprocess
+import sys
 import threading
 import time
 from collections import defaultdict
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -414,3 +415,68 @@ def _epoch(value: Any) -> float:
         return float(parse_time(value)) if isinstance(value, str) else float(value)
     except (TypeError, ValueError):
         return float("nan")
+
+
+# The steps the shard tests share (test_shards.py, test_shard_handover_stalls.py).
+
+#: The real command line of the daemon, in this interpreter.
+SHIFTWATCH = [sys.executable, "-m", "shiftwatch"]
+
+
+def run_three_shards(tmp_path: Path, cluster: NatsCluster, name: str, plan: Plan, keepalive: int = 5) -> ShardRun:
+    r = ShardRun(tmp_path, SHIFTWATCH, cluster, plan=plan, name=name, keepalive=keepalive)
+    r.start()
+    for k in range(3):
+        r.shard(k).start()
+        assert r.online(k), f"shard {k} never said online: {r.shard(k).log()[-2000:]}"
+    return r
+
+
+def all_taking(r: ShardRun, shards: int = 3) -> float:
+    """Wait until shards 0 to ``shards`` - 1 have all taken samples; the seconds waited."""
+    t = time.monotonic()
+    if not wait_until(lambda: all(metric(scrape(r.shard(k).port), "shiftwatch_samples_total") > 0
+                                  for k in range(shards)), 60):
+        raise RuntimeError("a shard took no sample in 60 s")
+    return time.monotonic() - t
+
+
+def publish_with(r: ShardRun, change: Callable[[], None], *, at: int = 300, wait: float = 120.0,
+                 settle: float = 150.0, still_for: float = 20.0,
+                 progress: list[int] | None = None) -> tuple[dict[str, float], Tally]:
+    """Publish the plan; once sample index ``at`` is out, run ``change`` in a thread (what it
+    raises fails the test); then wait for the shards to settle (``ShardRun.settle``): the
+    samples each stream's holder took, and the tally.  ``progress[-1]``: the last index out."""
+    done = threading.Event()
+    errors: list[str] = []
+
+    def run() -> None:
+        try:
+            change()
+        except Exception as exc:  # noqa: BLE001  reported below, in the test's thread
+            errors.append(f"{type(exc).__name__}: {exc}")
+        finally:
+            done.set()
+
+    def during(j: int) -> None:
+        if progress is not None:
+            progress[-1] = j
+        if j == at:
+            threading.Thread(target=run, daemon=True).start()
+
+    t0 = time.monotonic()
+    r.publish(during)
+    assert done.wait(wait)
+    assert not errors, errors
+    counts = r.settle(settle, still_for=still_for)
+    return counts, r.tally(counts, time.monotonic() - t0)
+
+
+def handover_outcomes(pages: Iterable[dict[tuple[str, tuple[tuple[str, str], ...]], float]]) -> dict[str, float]:
+    """shiftwatch_stream_handovers_total by outcome, summed over the shards' scrapes."""
+    out = {"answered": 0.0, "waited_out": 0.0}
+    for m in pages:
+        for (n, lab), v in m.items():
+            if n == "shiftwatch_stream_handovers_total":
+                out[dict(lab)["outcome"]] += v
+    return out

@@ -1,7 +1,7 @@
 """The handover of a moved stream between shards, as a pure exchange (shiftwatch.handover).
 
 The live exchange, through a real NATS cluster with a stopped old owner, is
-``test_shards.py::test_an_old_owner_held_back_at_a_reshard_hands_its_late_samples_over``.
+``test_shard_handover_stalls.py::test_an_old_owner_held_back_at_a_reshard_hands_its_late_samples_over``.
 
 References outside the project:
 
@@ -77,7 +77,7 @@ def test_a_shard_that_still_owns_the_streams_answers_only_once_it_let_them_go() 
     # An old owner whose reload has not come yet (the mapping changed first) still has
     # an engine of the stream, which it saves to the cluster at its next snapshot and at
     # its reload: answered at once, its new owner would begin before that and have its
-    # state overwritten (test_shards.py, test_an_old_owner_not_yet_reloaded_...).
+    # state overwritten (test_shard_handover_stalls.py, test_an_old_owner_not_yet_reloaded_...).
     old = Handover(1, "w-old", "part/{number}", 60.0)
     ask = MAGIC + json.dumps({"ask": ["s1"], "shard": 3, "writer": "w3"}).encode()
     old.receive(ask, 100.0, topic=TOPIC)

@@ -7,7 +7,7 @@ the shard that wrote it last has passed on what it still held
 (``shiftwatch.handover``).  Its samples used to wait in the daemon's memory, and
 the rounds that brought them unacknowledged; NATS's MQTT side then sent the shard
 nothing more once it held ``max_ack_pending`` of them (the live case is
-``test_shards.py::test_shards_waiting_for_an_answer_go_on_taking_samples_at_a_small_unacknowledged_limit``).
+``test_shard_handover_stalls.py::test_shards_waiting_for_an_answer_go_on_taking_samples_at_a_small_unacknowledged_limit``).
 Now they are parked in the cluster (``ClusterState.park``) and the round is
 acknowledged; whoever loads the stream next, this daemon when the wait ends or
 another on an empty disk after a crash, feeds them after the journal, journals

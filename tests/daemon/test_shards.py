@@ -23,24 +23,23 @@ References outside the project:
 - At-least-once delivery with a key to drop repeats is common practice for
   event streams; the record's ``id`` (with ``phase``) is that key.
 
-The last four tests change the mapping (to 4 partitions, and back to 3 at their end): they run last in the module.
+The last two tests change the mapping (to 4 partitions, and back to 3 at their end): they run last in the module.
+The reshards whose old owner is late are in ``test_shard_handover_stalls.py``.
 """
 
 from __future__ import annotations
 
 import json
 import logging
-import signal
 import socket
-import sys
 import threading
 import time
-from collections.abc import Callable, Iterable, Iterator
+from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
 
-from shiftwatch.broker import hold, wait_until
+from shiftwatch.broker import wait_until
 from shiftwatch.handover import MAGIC as HANDOVER_MAGIC
 from shiftwatch.lease import ShardLease
 from shiftwatch.mqtt import PlainClient
@@ -49,73 +48,22 @@ from shiftwatch.partition import fnv1a_32, partition_of
 
 from .killrun import metric, scrape
 from .natskit import NatsCluster, module_cluster
-from .shardrun import HASHED_LEVELS, Plan, ShardRun, Tally
-
-CMD = [sys.executable, "-m", "shiftwatch"]
+from .shardrun import (
+    HASHED_LEVELS,
+    SHIFTWATCH,
+    Plan,
+    ShardRun,
+    all_taking,
+    handover_outcomes,
+    publish_with,
+    run_three_shards,
+)
 
 
 @pytest.fixture(scope="module")
 def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[NatsCluster]:
     yield from module_cluster(tmp_path_factory)
 
-
-def _run(tmp_path: Path, cluster: NatsCluster, name: str, plan: Plan, keepalive: int = 5) -> ShardRun:
-    r = ShardRun(tmp_path, CMD, cluster, plan=plan, name=name, keepalive=keepalive)
-    r.start()
-    for k in range(3):
-        r.shard(k).start()
-        assert r.online(k), f"shard {k} never said online: {r.shard(k).log()[-2000:]}"
-    return r
-
-
-def _all_taking(r: ShardRun, shards: int = 3) -> float:
-    """Wait until shards 0 to ``shards`` - 1 have all taken samples; the seconds waited."""
-    t = time.monotonic()
-    if not wait_until(lambda: all(metric(scrape(r.shard(k).port), "shiftwatch_samples_total") > 0
-                                  for k in range(shards)), 60):
-        raise RuntimeError("a shard took no sample in 60 s")
-    return time.monotonic() - t
-
-
-def _publish_with(r: ShardRun, change: Callable[[], None], *, at: int = 300, wait: float = 120.0,
-                  settle: float = 150.0, still_for: float = 20.0,
-                  progress: list[int] | None = None) -> tuple[dict[str, float], Tally]:
-    """Publish the plan; once sample index ``at`` is out, run ``change`` in a thread (what it
-    raises fails the test); then wait for the shards to settle (``ShardRun.settle``): the
-    samples each stream's holder took, and the tally.  ``progress[-1]``: the last index out."""
-    done = threading.Event()
-    errors: list[str] = []
-
-    def run() -> None:
-        try:
-            change()
-        except Exception as exc:  # noqa: BLE001  reported below, in the test's thread
-            errors.append(f"{type(exc).__name__}: {exc}")
-        finally:
-            done.set()
-
-    def during(j: int) -> None:
-        if progress is not None:
-            progress[-1] = j
-        if j == at:
-            threading.Thread(target=run, daemon=True).start()
-
-    t0 = time.monotonic()
-    r.publish(during)
-    assert done.wait(wait)
-    assert not errors, errors
-    counts = r.settle(settle, still_for=still_for)
-    return counts, r.tally(counts, time.monotonic() - t0)
-
-
-def _handovers(pages: Iterable[dict[tuple[str, tuple[tuple[str, str], ...]], float]]) -> dict[str, float]:
-    """shiftwatch_stream_handovers_total by outcome, summed over the shards' scrapes."""
-    out = {"answered": 0.0, "waited_out": 0.0}
-    for m in pages:
-        for (n, lab), v in m.items():
-            if n == "shiftwatch_stream_handovers_total":
-                out[dict(lab)["outcome"]] += v
-    return out
 
 
 def test_partition_function_is_the_one_nats_server_applies(cluster: NatsCluster) -> None:
@@ -178,7 +126,7 @@ def test_a_shard_that_cannot_start_gives_its_lease_back(tmp_path: Path, cluster:
     # stopped with status 2 after it had claimed its lease, and every restart waited for
     # that lease to expire (cluster.lease), then failed the same way.  A start that fails
     # gives the lease back: the next attempt claims it at once.
-    r = ShardRun(tmp_path, CMD, cluster, plan=Plan(samples=10), name="portclash")
+    r = ShardRun(tmp_path, SHIFTWATCH, cluster, plan=Plan(samples=10), name="portclash")
     sh = r.shard(0)
     blocker = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
     try:
@@ -250,7 +198,7 @@ def test_a_lease_whose_entry_vanished_is_taken_again_when_nobody_else_has_it(clu
 
 def test_three_shards_split_the_plant_and_keep_stream_names(tmp_path: Path, cluster: NatsCluster) -> None:
     plan = Plan(samples=700, rate=100.0)
-    r = _run(tmp_path, cluster, "split", plan)
+    r = run_three_shards(tmp_path, cluster, "split", plan)
     try:
         t0 = time.monotonic()
         # A damaged handover message on a stream's topic in shard 0's partition, and an
@@ -294,7 +242,7 @@ def test_three_shards_split_the_plant_and_keep_stream_names(tmp_path: Path, clus
 
 def test_shard_killed_and_restarted_on_an_empty_state_dir(tmp_path: Path, cluster: NatsCluster) -> None:
     plan = Plan(samples=1000, rate=100.0)
-    r = _run(tmp_path, cluster, "killed", plan)
+    r = run_three_shards(tmp_path, cluster, "killed", plan)
     held: list[str] = []
 
     def restart() -> None:
@@ -308,7 +256,7 @@ def test_shard_killed_and_restarted_on_an_empty_state_dir(tmp_path: Path, cluste
 
     try:
         # At 450: just after a step at 400 was detected, its trial still open.
-        _counts, tally = _publish_with(r, restart, at=450, wait=90, settle=120)
+        _counts, tally = publish_with(r, restart, at=450, wait=90, settle=120)
         # Streams the dead shard wrote moments before are loaded once cluster.redelivery_wait
         # has passed (deferred): the line can come after the last samples.
         deadline = time.monotonic() + 30.0
@@ -340,7 +288,7 @@ def test_shard_killed_and_restarted_on_an_empty_state_dir(tmp_path: Path, cluste
 
 def test_one_nats_server_killed_and_restarted(tmp_path: Path, cluster: NatsCluster) -> None:
     plan = Plan(samples=800, rate=100.0)
-    r = _run(tmp_path, cluster, "serverdown", plan)
+    r = run_three_shards(tmp_path, cluster, "serverdown", plan)
 
     def bounce() -> None:
         cluster.kill(0)  # the server the shards' MQTT connections use
@@ -354,7 +302,7 @@ def test_one_nats_server_killed_and_restarted(tmp_path: Path, cluster: NatsClust
         # machine: a CI run on fc348e9 stopped waiting at 36 s with 7,294 samples not yet
         # taken (whether they would have come is not known).  A real loss still fails
         # below, once 45 s pass with nothing taken.
-        _counts, tally = _publish_with(r, bounce, settle=180, still_for=45.0)
+        _counts, tally = publish_with(r, bounce, settle=180, still_for=45.0)
     finally:
         r.close()
     print(tally.line())
@@ -368,7 +316,7 @@ def test_one_nats_server_killed_and_restarted(tmp_path: Path, cluster: NatsClust
 
 def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, cluster: NatsCluster) -> None:
     plan = Plan(samples=1600, rate=100.0)
-    r = _run(tmp_path, cluster, "grown", plan)
+    r = run_three_shards(tmp_path, cluster, "grown", plan)
     started: list[float] = []
     published: list[int] = [0]
     remapped_at: list[int] = []
@@ -385,7 +333,7 @@ def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, clus
         # lets go of the streams the mapping for 4 partitions gives another shard: state
         # saved to the cluster, engine dropped; what still comes to it of them goes to
         # their journal); then the mapping on every server.
-        started.append(_all_taking(r))
+        started.append(all_taking(r))
         r.write_config(4)
         r.shard(3).start()
         if not r.online(3):
@@ -395,7 +343,7 @@ def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, clus
         remapped_at.append(published[-1])
 
     try:
-        _counts, tally = _publish_with(r, grow, wait=90, settle=120, progress=published)
+        _counts, tally = publish_with(r, grow, wait=90, settle=120, progress=published)
         pages = {k: scrape(sh.port) for k, sh in r.shards.items()}
     finally:
         r.close()
@@ -404,7 +352,7 @@ def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, clus
     assert remapped_at and remapped_at[0] < plan.samples - 100, remapped_at
     handed = sum(v for m in pages.values() for (n, _lab), v in m.items()
                  if n == "shiftwatch_samples_handed_over_total")
-    handovers = _handovers(pages.values())
+    handovers = handover_outcomes(pages.values())
     print(tally.line() + f"; handed over through the journal {handed:.0f}; handovers {handovers}; "
           f"every shard had taken samples {started[0]:.1f} s after the grow began")
     # Each stream ends with exactly the shard the real cluster's mapping for 4 partitions
@@ -430,192 +378,6 @@ def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, clus
     assert handovers["waited_out"] == 0, handovers
 
 
-def test_an_old_owner_held_back_at_a_reshard_hands_its_late_samples_over(tmp_path: Path,
-                                                                          cluster: NatsCluster) -> None:
-    # The stall behind the measured losses, made certain: right after the old shards'
-    # reload, the old owner of the most moving streams is stopped (SIGSTOP) for 2.5 s
-    # before the mapping changes and 9 s after it, longer than cluster.redelivery_wait
-    # (6 s).  Samples of the moving streams pile up in its MQTT session meanwhile, and
-    # reach it only after their new owners have seen the streams.  (The MQTT keepalive is
-    # 30 s here, so the broker keeps the stopped shard's connection: a frozen process, not
-    # a lost connection, is what is tested.)
-    # Before the handover (shiftwatch.handover), the new owners waited redelivery_wait,
-    # then wrote the streams, and the old owner's late samples were refused by the journal
-    # and set aside: 250 or more a moving stream, and in CI runs a step with them.  Now the
-    # new owners ask the old one and wait for its answer, which it sends only once it has
-    # written all it held to the journal: no sample of a moving stream is lost, no step
-    # missed, none confirmed under two ids.
-    # (With a cluster whose MQTT side sends at most 64 unacknowledged messages a
-    # subscription, this passed twice and stalled once: every old owner is a new owner
-    # too, each waiting shard soon held 64 and was sent nothing more, asks included, so
-    # they waited on each other until cluster.handover_wait.  README, Running shards,
-    # "Known limits"; the answer by plain NATS removed the other half of that stall.)
-    _stalled_reshard(tmp_path, cluster, Plan(samples=1600, rate=100.0))
-
-
-def test_shards_waiting_for_an_answer_go_on_taking_samples_at_a_small_unacknowledged_limit(
-        tmp_path: Path) -> None:
-    # The same stall on a cluster whose MQTT side sends a subscription at most 64
-    # unacknowledged messages.  A new owner waiting for the stopped shard's answer held
-    # its rounds unacknowledged (the waiting streams' samples were only in its memory), so
-    # after 64 messages NATS sent it nothing more, on any of its streams, asks for its own
-    # answers included: in one run of three two waiting shards waited on each other until
-    # cluster.handover_wait.  Now the waiting streams' samples are parked in the cluster
-    # and every round is acknowledged: shard 3 goes on taking its other streams.
-    own = NatsCluster(3, 3, base=tmp_path / "nats", max_ack_pending=64)
-    try:
-        own.start()
-    except RuntimeError as exc:
-        pytest.fail(f"cannot start the test NATS cluster: {exc}")
-    try:
-        _stalled_reshard(tmp_path, own, Plan(samples=3000, rate=100.0), watch=True)
-    finally:
-        own.stop()
-
-
-def _stalled_reshard(tmp_path: Path, cluster: NatsCluster, plan: Plan, *, watch: bool = False) -> None:
-    r = _run(tmp_path, cluster, "stalled", plan, keepalive=30)
-    names = plan.names()
-    moving = {k: [s for s in names if partition_of(s, HASHED_LEVELS, 3) == k
-                  and partition_of(s, HASHED_LEVELS, 4) != k] for k in range(3)}
-    stalled = max(moving, key=lambda k: len(moving[k]))
-    published: list[int] = [0]
-    remapped_at: list[int] = []
-    # Streams shard 3 takes over from the shards that keep running (answered at once),
-    # and what it took of them while the stalled shard's streams waited (watch=True),
-    # with how many of their samples were published meanwhile.
-    others = [s for s in names if partition_of(s, HASHED_LEVELS, 4) == 3 and s not in moving[stalled]]
-    watched: list[float] = []
-
-    def taken_by_3() -> float:
-        page = scrape(r.shard(3).port)
-        return sum(v for (n, lab), v in page.items()
-                   if n == "shiftwatch_samples_total" and dict(lab).get("stream") in others)
-
-    def grow() -> None:
-        _all_taking(r)  # as in the test above
-        r.write_config(4)
-        r.shard(3).start()
-        if not r.online(3):
-            raise RuntimeError("shard 3 did not say online")
-        r.reload_shards([0, 1, 2], "shard.of is 4 now")
-        proc = r.shard(stalled).proc
-        assert proc is not None
-        hold(proc)
-        try:
-            time.sleep(2.5)
-            r.remap(4)
-            remapped_at.append(published[-1])
-            if watch:
-                time.sleep(3.0)
-                before, sent_from = taken_by_3(), published[-1]
-                time.sleep(5.0)
-                watched.append(taken_by_3() - before)
-                watched.append(float(len(others) * (published[-1] - sent_from)))
-                time.sleep(1.0)
-            else:
-                time.sleep(9.0)
-        finally:
-            proc.send_signal(signal.SIGCONT)
-
-    try:
-        counts, tally = _publish_with(r, grow, progress=published)
-        pages = {k: scrape(sh.port) for k, sh in r.shards.items()}
-    finally:
-        r.close()
-        r.repartition(3)
-    # The mapping changed while samples still flowed, so the stalled shard held some.
-    assert remapped_at and remapped_at[0] < plan.samples - 200, remapped_at
-    if watch:
-        # Samples of shard 3's other streams were published while it was watched (500 a
-        # stream at the plan's rate; fewer when the publisher falls behind on a busy
-        # machine) ...
-        assert len(others) == 2 and len(watched) == 2 and watched[1] >= 260, (others, watched)
-        # ... and it took them meanwhile: a shard that NATS sends nothing more after 64
-        # unacknowledged messages would take at most 64 (it took 0 on the code before).
-        # (Not a share of what was published: how much of it a shard takes in 5 s is a
-        # matter of the machine's speed; a CI run on a slow machine took 202 of 1,004.)
-        assert watched[0] >= 65.0, (others, watched)
-    page = pages[stalled]
-    other = sum(v for (n, lab), v in page.items()
-                if n == "shiftwatch_messages_dropped_total" and dict(lab).get("reason") == "other_shard")
-    handed = sum(v for (n, _lab), v in page.items() if n == "shiftwatch_samples_handed_over_total")
-    handovers = _handovers(pages.values())
-    moved_short = sum(plan.samples - min(int(counts.get(s, 0)), plan.samples) for s in moving[stalled])
-    print(tally.line() + f"; shard {stalled} (stopped 11.5 s, {len(moving[stalled])} streams moving away, "
-          f"{moved_short} of their samples lost): other shards' samples {other:.0f}, handed over "
-          f"{handed:.0f}; handovers {handovers}"
-          + (f"; shard 3 took {watched[0]:.0f} of the {watched[1]:.0f} samples of its other streams "
-             "published in the 5 s watched" if len(watched) == 2 else ""))
-    assert tally.shifts_missed == 0, tally.line()
-    assert tally.shifts_with_two_ids == 0, tally.line()
-    # The stalled shard wrote the moving streams' late samples to their journals (how many
-    # depends on how far the publisher got in the 2.5 s: 434 to 2,835 in runs so far)...
-    assert handed >= 10 * len(moving[stalled]), (handed, tally.line())
-    # ...and their new owners waited for its answer, so none of those samples was lost.
-    assert moved_short == 0, (moved_short, tally.line())
-    assert handovers["answered"] >= len(moving[stalled]) and handovers["waited_out"] == 0, handovers
-    assert tally.lost <= tally.published // 10, tally.line()
-
-
-def test_an_old_owner_not_yet_reloaded_answers_only_once_it_let_go(tmp_path: Path,
-                                                                    cluster: NatsCluster) -> None:
-    # The README's steps reload the old shards before the mapping changes.  Here the
-    # mapping changes first: the old owners of the streams moving to the new shard 3 still
-    # own them by their shard.of (3) for 8 s, and keep their engines of them.  Shard 3 asks
-    # them.  An old owner that answered at once let shard 3 begin the streams while it still
-    # held an engine of them, which it then saved to the cluster over shard 3's work (at its
-    # next snapshot and at its reload: the state as of the remap, and the journal purged
-    # down to its last message).  So the answer waits for the reload that lets the streams
-    # go; shard 3, killed right after that reload and started again, loses nothing of them.
-    # (The streams moving between the old shards lost their samples of those 8 s: their new
-    # owners, not reloaded either, take them for another shard's; that is what the README's
-    # order is for, and not checked here.  3,038 of 19,200 lost in a run of 2026-12-04;
-    # none in the one after another shard's samples refused by a journal were parked
-    # instead of set aside; later that day, on a busy machine, 2,018 and 2,790 in two runs
-    # of that code and 1,469 to 2,745 in three with a shard.of taken up only when another
-    # live shard agrees: it varies from run to run.)
-    plan = Plan(samples=1600, rate=100.0)
-    r = _run(tmp_path, cluster, "late", plan)
-    to3 = [s for s in plan.names() if partition_of(s, HASHED_LEVELS, 4) == 3]
-    before: list[dict[str, float]] = []
-
-    def answered(k: int) -> dict[str, float]:
-        return _handovers([scrape(r.shard(k).port)])
-
-    def grow() -> None:
-        _all_taking(r)
-        r.write_config(4)
-        r.shard(3).start()
-        if not r.online(3):
-            raise RuntimeError("shard 3 did not say online")
-        r.remap(4)
-        time.sleep(8.0)
-        before.append(answered(3))
-        r.reload_shards([0, 1, 2], "shard.of is 4 now")
-        wait_until(lambda: answered(3)["answered"] >= len(to3), 30)
-        before.append(answered(3))
-        r.shard(3).kill()
-        r.shard(3).start()
-
-    try:
-        counts, tally = _publish_with(r, grow)
-    finally:
-        r.close()
-        r.repartition(3)
-    short = {s: plan.samples - int(counts.get(s, 0)) for s in to3 if counts.get(s, 0) < plan.samples}
-    print(tally.line() + f"; shard 3's handovers before the old shards' reload and after it {before}; "
-          f"its streams short of samples after its restart {short}")
-    assert len(to3) == 3 and len(before) == 2, before
-    # No answer while the old owners still owned the streams (they said why)...
-    assert before[0]["answered"] == 0, before
-    assert any("the answer waits until a reload lets them go" in r.shard(k).log() for k in range(3))
-    # ...the answers once they let them go...
-    assert before[1]["answered"] == len(to3) and before[1]["waited_out"] == 0, before
-    # ...and the cluster held all of shard 3's work on them when it was killed.
-    assert not short, short
-
-
 def test_shard_count_changed_from_4_to_3_while_samples_flow(tmp_path: Path, cluster: NatsCluster) -> None:
     # The README's order for going down: shard.of 3 in every shard's file, all four
     # reloaded (shard 3 then owns nothing), the mapping reloaded, shard 3 stopped once its
@@ -623,7 +385,7 @@ def test_shard_count_changed_from_4_to_3_while_samples_flow(tmp_path: Path, clus
     # owners of shard 3's streams ask it; it answers until it stops: nothing is lost, no
     # handover waits out.
     plan = Plan(samples=1600, rate=100.0)
-    r = ShardRun(tmp_path, CMD, cluster, plan=plan, name="shrunk", shards=4)
+    r = ShardRun(tmp_path, SHIFTWATCH, cluster, plan=plan, name="shrunk", shards=4)
     r.repartition(4)
     r.start()
     for k in range(4):
@@ -631,7 +393,7 @@ def test_shard_count_changed_from_4_to_3_while_samples_flow(tmp_path: Path, clus
         assert r.online(k), f"shard {k} never said online: {r.shard(k).log()[-2000:]}"
 
     def shrink() -> None:
-        _all_taking(r, 4)
+        all_taking(r, 4)
         r.write_config(3)
         r.reload_shards([0, 1, 2, 3], "shard.of is 3 now")
         r.remap(3)
@@ -645,12 +407,12 @@ def test_shard_count_changed_from_4_to_3_while_samples_flow(tmp_path: Path, clus
         r.shard(3).stop()
 
     try:
-        _counts, tally = _publish_with(r, shrink)
+        _counts, tally = publish_with(r, shrink)
         pages = {k: scrape(sh.port) for k, sh in r.shards.items() if k < 3}
     finally:
         r.close()
         r.repartition(3)
-    handovers = _handovers(pages.values())
+    handovers = handover_outcomes(pages.values())
     print(tally.line() + f"; handovers {handovers}")
     assert tally.shifts_missed == 0, tally.line()
     assert tally.shifts_with_two_ids == 0, tally.line()
