@@ -37,8 +37,10 @@ def write_dataset(root: Path, n: int = 6000) -> list[str]:
 
 @pytest.fixture(scope="module")
 def cluster():
+    # The scheduler's HTTP server on a free loopback port: on its default, 8787, clusters of
+    # files run side by side by the suite's workers warned that the port was taken.
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                      dashboard_address=None) as c, Client(c) as client:
+                      dashboard_address="127.0.0.1:0") as c, Client(c) as client:
         yield client
 
 

@@ -38,8 +38,10 @@ NAMES = ["brackenfield/line2/filler/head1/fill", "brackenfield/line2/capper/torq
 
 @pytest.fixture(scope="module")
 def cluster() -> Iterator[Client]:
+    # The scheduler's HTTP server on a free loopback port: on its default, 8787, clusters of
+    # files run side by side by the suite's workers warned that the port was taken.
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                      dashboard_address=None) as c, Client(c) as client:
+                      dashboard_address="127.0.0.1:0") as c, Client(c) as client:
         yield client
 
 
@@ -137,7 +139,7 @@ def test_a_partition_that_kills_every_worker_it_runs_on_is_named(tmp_path: Path)
                      partitioning=["stream"], partitioning_flavor="hive")
     with dask.config.set({"distributed.scheduler.allowed-failures": 1}), \
             LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
-                         dashboard_address=None) as c, Client(c) as client, \
+                         dashboard_address="127.0.0.1:0") as c, Client(c) as client, \
             pytest.raises(ClusterError) as err:
         replay_on_dask(root, client, settings_for=_die)
     msg = str(err.value)
@@ -305,7 +307,7 @@ def test_a_scheduler_with_no_workers_is_told_not_waited_on_for_ever(tmp_path: Pa
     root = tmp_path / "line2"
     ds.write_dataset(_table(readings(500, NAMES[:1])), root, format="parquet",
                      partitioning=["stream"], partitioning_flavor="hive")
-    with LocalCluster(n_workers=0, processes=True, host="127.0.0.1", dashboard_address=None) as c, \
+    with LocalCluster(n_workers=0, processes=True, host="127.0.0.1", dashboard_address="127.0.0.1:0") as c, \
             Client(c) as client:
         with pytest.raises(ClusterError) as err:
             replay_on_dask(root, client)
@@ -346,7 +348,7 @@ def test_a_worker_killed_mid_run_is_replaced_and_the_records_are_those_of_one_pr
                      partitioning_flavor="hive")
     one = replay_files([root])
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                      dashboard_address=None) as c, Client(c) as client:
+                      dashboard_address="127.0.0.1:0") as c, Client(c) as client:
         pids = client.run(os.getpid)
         got: list = []
         thread = threading.Thread(target=lambda: got.append(replay_on_dask(root, client)))
