@@ -832,8 +832,9 @@ def _array_columns(payload: bytes, value_parts: tuple[str, ...], time_parts: tup
     return t, values
 
 
-#: The columns of a JSON array are written into their float64 arrays by ``struct``'s
-#: ``pack_into`` (False: ``np.fromiter`` over the list, the reference).  Both store each
+#: The columns of a JSON array and a SenML pack's values and times are written into their
+#: float64 arrays by ``struct``'s ``pack_into`` (False: ``np.fromiter`` over the list, or
+#: ``np.array`` of it for the SenML times, the reference).  All store each
 #: float's double as it is (``PyFloat_AsDouble``, then the 8 bytes in the machine's
 #: order, which is float64's): the same arrays bit for bit, NaN payloads and signed
 #: zeros included (tests/daemon/test_decode_columns_packed.py).  About 74,000 against
@@ -949,9 +950,10 @@ def _senml_columns(payload: bytes, now: float, max_items: int, max_depth: int) -
         n_unset = n_col.count(_UNSET)
         n_colons = "".join([x for x in n_col if x is not _UNSET] if n_unset else n_col).count(":")
     try:
-        t = np.array(t_col, dtype=np.float64)  # refuses UNSET: then the records without t are 0
+        # refuses UNSET: then the records without t are 0
+        t = _column(t_col, n) if PACKED_COLUMNS else np.array(t_col, dtype=np.float64)
         t_unset = 0
-    except TypeError:
+    except (TypeError, struct.error):
         t_unset = t_col.count(_UNSET)
         t = np.array([0.0 if x is _UNSET else x for x in t_col], dtype=np.float64)
     u_unset = u_col.count(_UNSET)
@@ -983,7 +985,8 @@ def _senml_columns(payload: bytes, now: float, max_items: int, max_depth: int) -
                 return None
         units = [per[key] for key in firsts]
     with np.errstate(over="ignore"):  # a sum past the float range is inf, refused below
-        values = np.fromiter(map(_GET_V, recs), np.float64, n) + bv
+        values = (_column([r.v for r in recs], n) if PACKED_COLUMNS
+                  else np.fromiter(map(_GET_V, recs), np.float64, n)) + bv
         total = bt + t
     if not (np.isfinite(values).all() and np.isfinite(total).all()) or float(np.maximum.reduce(total)) > _RAW_TIME_MAX:
         return None

@@ -33,6 +33,7 @@ from shiftwatch.metrics import Metrics
 from shiftwatch.mqtt import Message
 
 from .fuzz_strategies import PROPERTY
+from .test_decode import _senml_pack
 
 NOW = 1_790_000_000.0
 T0 = 1_790_000_000.0
@@ -116,6 +117,55 @@ def test_packed_columns_keep_signed_zeros_and_extremes() -> None:
     # milliseconds to seconds, as float()/1000 of the texts (the usual path's rule)
     assert nt.tolist() == [1790000000000 / 1000.0, 1790000001000 / 1000.0, 1790000002000 / 1000.0,
                            1790000003000 / 1000.0]
+
+
+@settings(PROPERTY, max_examples=1500)
+@given(pack=_senml_pack(), n=st.integers(min_value=1, max_value=40))
+def test_property_packed_senml_columns_are_the_reference_columns(pack: str, n: int) -> None:
+    # test_decode.py's packs (plain records, and records of any pieces), the records repeated
+    # up to 40 times so that longer columns are packed too: the same names, units, order
+    # and float64 columns bit for bit, or both not columns.
+    records = json.loads(pack) if _is_json(pack) else None
+    payload = (json.dumps(records[:1] + records[1:] * n) if records else pack).encode()
+    out = {}
+    for on in (True, False):
+        with packed(on):
+            out[on] = decode(payload, "senml", now=NOW, columns=True)
+    new, old = out[True], out[False]
+    assert new.readings == old.readings and new.problems == old.problems
+    assert (new.senml is None) == (old.senml is None)
+    if new.senml is None:
+        return
+    assert new.senml.names == old.senml.names and new.senml.units == old.senml.units
+    assert new.senml.order.tobytes() == old.senml.order.tobytes()
+    assert all(same_bits(a, b) for a, b in zip(new.senml.times, old.senml.times, strict=True))
+    assert all(same_bits(a, b) for a, b in zip(new.senml.values, old.senml.values, strict=True))
+
+
+def test_packed_senml_columns_with_records_without_a_time() -> None:
+    # A record without "t" is at the base time (RFC 8428 section 4.5.3: t defaults to 0,
+    # relative to bt); the packed path meets the missing time and takes the reference's way.
+    payload = (b'[{"bn": "oven2:", "bt": 1790000000, "n": "zone1", "v": -0.0}, {"n": "zone1", "t": 1, "v": 5e-324}, '
+               b'{"n": "zone1", "v": 1.7976931348623157e308}]')
+    out = {}
+    for on in (True, False):
+        with packed(on):
+            out[on] = decode(payload, "senml", now=NOW, columns=True).senml
+    new, old = out[True], out[False]
+    assert new is not None and old is not None
+    assert same_bits(new.times[0], old.times[0]) and same_bits(new.values[0], old.values[0])
+    assert new.times[0].tolist() == [1790000000.0, 1790000001.0, 1790000000.0]
+    # the value is the base value plus v (RFC 8428 section 4.5.3; bv defaults to 0): in
+    # IEEE 754 arithmetic 0.0 + -0.0 is +0.0, on both paths
+    assert math.copysign(1.0, float(new.values[0][0])) == 1.0
+    assert new.values[0].tolist() == [0.0 + -0.0, 0.0 + 5e-324, 0.0 + 1.7976931348623157e308]
+
+
+def _is_json(text: str) -> bool:
+    try:
+        return isinstance(json.loads(text), list)
+    except ValueError:
+        return False
 
 
 def _daemon(tmp_path: Path, name: str) -> Daemon:
