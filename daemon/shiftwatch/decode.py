@@ -124,6 +124,7 @@ import json
 import math
 import operator
 import re
+import struct
 from collections import Counter
 from collections.abc import Sequence
 from datetime import datetime
@@ -803,14 +804,16 @@ def _array_columns(payload: bytes, value_parts: tuple[str, ...], time_parts: tup
         return None
     # The same float objects into float64 arrays.  A list comprehension over the structs
     # and np.fromiter over the list cost about 70,000 fewer instructions for two columns of
-    # 260 than np.fromiter over map(attrgetter) (callgrind, 2026-12-04).
+    # 260 than np.fromiter over map(attrgetter) (callgrind, 2026-12-04); struct's
+    # pack_into from the list into an empty array 25,000 fewer again a column (see
+    # _column).
     n = len(doc)
-    values = np.fromiter([s.a for s in doc], np.float64, n)
+    values = _column([s.a for s in doc], n)
     if not np.isfinite(values).all():
         return None
     if time_parts is None:
         return None, values
-    t = np.fromiter([s.b for s in doc], np.float64, n)
+    t = _column([s.b for s in doc], n)
     # Every time finite: a NaN makes the largest NaN, an infinity the largest or the
     # smallest infinite (two reductions instead of isfinite's array and its all()).
     top = float(np.maximum.reduce(t))
@@ -827,6 +830,31 @@ def _array_columns(payload: bytes, value_parts: tuple[str, ...], time_parts: tup
             return t, values
         return np.where(t > _MS_THRESHOLD, t / 1000.0, t), values
     return t, values
+
+
+#: The columns of a JSON array and a SenML pack's values and times are written into their
+#: float64 arrays by ``struct``'s ``pack_into`` (False: ``np.fromiter`` over the list, or
+#: ``np.array`` of it for the SenML times, the reference).  All store each
+#: float's double as it is (``PyFloat_AsDouble``, then the 8 bytes in the machine's
+#: order, which is float64's): the same arrays bit for bit, NaN payloads and signed
+#: zeros included (tests/daemon/test_decode_columns_packed.py).  About 74,000 against
+#: 99,000 instructions for a column of 260 (callgrind, 2026-12-05).
+PACKED_COLUMNS = True
+
+
+@functools.lru_cache(maxsize=64)
+def _doubles(n: int) -> struct.Struct:
+    """The ``struct`` layout of ``n`` doubles in the machine's order and alignment: float64's."""
+    return struct.Struct(f"{n}d")
+
+
+def _column(items: list[float], n: int) -> FloatArray:
+    """A new float64 array of the ``n`` floats ``items`` (a writable array of its own)."""
+    if not PACKED_COLUMNS:
+        return np.fromiter(items, np.float64, n)
+    out = np.empty(n, dtype=np.float64)
+    _doubles(n).pack_into(out.data, 0, *items)
+    return out
 
 
 def _count_colons(payload: bytes) -> int:
@@ -922,9 +950,10 @@ def _senml_columns(payload: bytes, now: float, max_items: int, max_depth: int) -
         n_unset = n_col.count(_UNSET)
         n_colons = "".join([x for x in n_col if x is not _UNSET] if n_unset else n_col).count(":")
     try:
-        t = np.array(t_col, dtype=np.float64)  # refuses UNSET: then the records without t are 0
+        # refuses UNSET: then the records without t are 0
+        t = _column(t_col, n) if PACKED_COLUMNS else np.array(t_col, dtype=np.float64)
         t_unset = 0
-    except TypeError:
+    except (TypeError, struct.error):
         t_unset = t_col.count(_UNSET)
         t = np.array([0.0 if x is _UNSET else x for x in t_col], dtype=np.float64)
     u_unset = u_col.count(_UNSET)
@@ -956,7 +985,8 @@ def _senml_columns(payload: bytes, now: float, max_items: int, max_depth: int) -
                 return None
         units = [per[key] for key in firsts]
     with np.errstate(over="ignore"):  # a sum past the float range is inf, refused below
-        values = np.fromiter(map(_GET_V, recs), np.float64, n) + bv
+        values = (_column([r.v for r in recs], n) if PACKED_COLUMNS
+                  else np.fromiter(map(_GET_V, recs), np.float64, n)) + bv
         total = bt + t
     if not (np.isfinite(values).all() and np.isfinite(total).all()) or float(np.maximum.reduce(total)) > _RAW_TIME_MAX:
         return None

@@ -221,6 +221,19 @@ class RawPublisher:
             pass
 
 
+def batch_variants(rng: random.Random, b: int, batch: int) -> list[bytes]:
+    """The payloads of publishing round ``b`` in mode 'batch': 8 JSON arrays of ``batch``
+    samples (value about 100 with sigma 1, time in epoch milliseconds, a second apart),
+    stream i sending the (i mod 8)th.  bench_batch_path.py makes the same ones."""
+    variants = []
+    for _ in range(8):
+        items = ",".join(f'{{"v":{100.0 + rng.gauss(0.0, 1.0):.3f},'
+                         f'"ts":{T0_MS + (b * batch + q) * 1000}}}'
+                         for q in range(batch))
+        variants.append(("[" + items + "]").encode())
+    return variants
+
+
 def role_pub(a: argparse.Namespace) -> int:
     """Publish at QoS 1 as fast as possible over streams [a.first, a.last).
 
@@ -257,12 +270,7 @@ def role_pub(a: argparse.Namespace) -> int:
             c.send(block)
     else:
         for b in range(a.batches):
-            variants = []
-            for _ in range(8):
-                items = ",".join(f'{{"v":{100.0 + rng.gauss(0.0, 1.0):.3f},'
-                                 f'"ts":{T0_MS + (b * a.batch + q) * 1000}}}'
-                                 for q in range(a.batch))
-                variants.append(("[" + items + "]").encode())
+            variants = batch_variants(rng, b, a.batch)
             for i, topic in enumerate(topics):
                 c.send([c.packet(topic, variants[i % 8])])
                 if time.monotonic() > deadline:
