@@ -12,7 +12,9 @@
 #      we are root, through sudo when we are not and sudo exists; otherwise the script says
 #      what to install and stops;
 #   3. python -m pytest, the whole suite, doctests included, in three worker processes
-#      (pytest-xdist), each taking whole test files: most tests wait on brokers, clusters,
+#      (pytest-xdist), each taking whole test files in the order collected (without
+#      --no-loadscope-reorder xdist hands out the files with most tests first, and the
+#      few long ones of tests/conftest.py's LONG_FILES last): most tests wait on brokers, clusters,
 #      browsers and subprocesses rather than compute, so three workers fit on two cores
 #      (about 14 minutes instead of 25 on a 2-core machine).  SHIFTWATCH_TEST_WORKERS sets
 #      another number; 0 runs the suite in this one process.
@@ -61,4 +63,4 @@ if [ -n "$need$lean" ]; then
     fi
 fi
 
-exec python -m pytest -n "${SHIFTWATCH_TEST_WORKERS:-3}" --dist loadfile "$@"
+exec python -m pytest -n "${SHIFTWATCH_TEST_WORKERS:-3}" --dist loadfile --no-loadscope-reorder "$@"

@@ -836,8 +836,9 @@ def _array_columns(payload: bytes, value_parts: tuple[str, ...], time_parts: tup
 #: float64 arrays by ``struct``'s ``pack_into`` (False: ``np.fromiter`` over the list, or
 #: ``np.array`` of it for the SenML times, the reference).  All store each
 #: float's double as it is (``PyFloat_AsDouble``, then the 8 bytes in the machine's
-#: order, which is float64's): the same arrays bit for bit, NaN payloads and signed
-#: zeros included (tests/daemon/test_decode_columns_packed.py).  About 74,000 against
+#: order, which is float64's, a plain copy, so NaN payloads too): the same arrays bit for
+#: bit (tests/daemon/test_decode_columns_packed.py: signed zeros, extremes, columns of up
+#: to the 10,000-item limit; msgspec lets no NaN reach a column).  About 74,000 against
 #: 99,000 instructions for a column of 260 (callgrind, 2026-12-05).
 PACKED_COLUMNS = True
 

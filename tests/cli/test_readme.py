@@ -30,7 +30,8 @@ def test_quick_start_is_two_commands_and_ci_runs_the_second_and_nothing_else() -
     script = (ROOT / "tests" / "install-and-test.sh").read_text()
     # sudo only when not root and only where it exists; the whole suite at the end.
     assert 'if [ "$(id -u)" -eq 0 ]' in script and "command -v sudo" in script
-    assert script.rstrip().endswith('exec python -m pytest -n "${SHIFTWATCH_TEST_WORKERS:-3}" --dist loadfile "$@"')
+    assert script.rstrip().endswith('exec python -m pytest -n "${SHIFTWATCH_TEST_WORKERS:-3}" --dist loadfile '
+                                   '--no-loadscope-reorder "$@"')
 
 
 def test_the_record_example_carries_the_advisory_the_engine_writes() -> None:

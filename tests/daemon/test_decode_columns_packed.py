@@ -104,6 +104,31 @@ def test_property_packed_columns_are_the_reference_columns(values: list[str], da
     assert nv.tobytes() == struct.pack(f"{len(ref)}d", *ref)
 
 
+def test_packed_columns_near_the_limits_are_the_reference_columns() -> None:
+    # The property above draws at most 300 items; a column of 1,900 (a payload near the
+    # 64 KiB default, times included) and one of the 10,000-item limit (values only,
+    # with max_bytes raised) take the same path on the same floats.
+    assert decode_mod.PACKED_COLUMNS is True  # the daemon's default is the packed path
+    rng = np.random.default_rng(20261205)
+    for n, with_time, max_bytes in ((1_900, True, 65536), (10_000, False, 400_000)):
+        vals = [repr(float(v)) for v in np.round(rng.normal(100.0, 1.0, n), 3)]
+        items = [('{"v":' + v + (f',"ts":{1_790_000_000_000 + 1000 * i}' if with_time else "") + "}")
+                 for i, v in enumerate(vals)]
+        payload = ("[" + ",".join(items) + "]").encode()
+        assert len(payload) <= max_bytes
+        kwargs: dict[str, Any] = {"value_path": "v", "time_path": "ts" if with_time else None, "now": NOW,
+                                  "columns": True, "max_bytes": max_bytes}
+        with packed(True):
+            new = decode(payload, "json", **kwargs)
+        with packed(False):
+            old = decode(payload, "json", **kwargs)
+        assert new.columns is not None and old.columns is not None, (n, new.problems)
+        (nt, nv), (ot, ov) = new.columns, old.columns
+        assert len(nv) == n and same_bits(nv, ov) and same_bits(nt, ot)
+        # Python's json.loads and float() of each value: the reference outside the project.
+        assert nv.tobytes() == struct.pack(f"{n}d", *[float(item["v"]) for item in json.loads(payload)])
+
+
 def test_packed_columns_keep_signed_zeros_and_extremes() -> None:
     payload = (b'[{"v": -0.0, "ts": 1790000000000}, {"v": 5e-324, "ts": 1790000001000}, '
                b'{"v": 1.7976931348623157e308, "ts": 1790000002000}, {"v": 9007199254740993, "ts": 1790000003000}]')

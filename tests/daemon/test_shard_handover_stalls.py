@@ -4,8 +4,8 @@ limit, or not yet reloaded when the mapping changes (``shiftwatch.handover``).
 The scenario of ``test_shards.py`` (``shardrun.ShardRun``: a real 3-server NATS
 cluster with JetStream, 3 replicas and MQTT; real ``shiftwatch run --shard k``
 daemons as subprocesses; paho publishing over MQTT), in a file of its own so
-that, with the suite's workers, it runs beside ``test_shards.py`` instead of
-after it.  When a cluster cannot start the tests fail, they never skip.
+that, with the suite's workers, it can run beside ``test_shards.py`` instead
+of after it (both are first in ``tests/conftest.py``'s ``LONG_FILES``).  When a cluster cannot start the tests fail, they never skip.
 
 References outside the project:
 
