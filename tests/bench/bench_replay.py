@@ -5,6 +5,7 @@ Usage, from the repository root with the package installed (``.[test]``)::
     python tests/bench/bench_replay.py            # 2.4 million and 50 million rows (about 10 minutes)
     python tests/bench/bench_replay.py --quick    # 2.4 million and 12 million rows
     python tests/bench/bench_replay.py --repeat 5 # more runs per figure (medians count)
+    python tests/bench/bench_replay.py --part jobs --repeat 5   # target 3 alone (a minute)
 
 The files are written under /tmp at run time and deleted afterwards: 200
 streams of the invented Brackenfield plant at one sample a second (noise,
@@ -209,11 +210,49 @@ def spread(xs: list[float]) -> str:
     return f"{min(xs):.2f}-{max(xs):.2f} s" if len(xs) > 1 else f"{xs[0]:.2f} s"
 
 
+def jobs_only(repeat: int) -> int:
+    """Target 3 alone: paired --jobs 1 / --jobs 2 wall times and the side-by-side ceiling."""
+    say = lambda msg: print(f"[{time.strftime('%H:%M:%S')}] {msg}", file=sys.stderr, flush=True)
+    with tempfile.TemporaryDirectory(prefix="shiftwatch-bench-replay-", dir="/tmp") as tmp:
+        long_csv = Path(tmp) / "long.csv"
+        n = write_long(long_csv, 12_000, value_texts())
+        compile_package()
+        ones, twos, twins, loads = [], [], [], []
+        for i in range(repeat):
+            loads.append(os.getloadavg()[0])
+            if i % 2 == 0:
+                one, two = replay(long_csv, 1), replay(long_csv, 2)
+            else:
+                two, one = replay(long_csv, 2), replay(long_csv, 1)
+            ones.append(one)
+            twos.append(two)
+            twins.append(2 * one[0] / replay_pair(long_csv))
+            say(f"pair {i + 1}: --jobs 1 {one[0]:.3f} s, --jobs 2 {two[0]:.3f} s, speed-up {one[0] / two[0]:.2f}, "
+                f"two side by side {twins[-1]:.2f}, load {loads[-1]:.2f}")
+    pairs = [a[0] / b[0] for a, b in zip(ones, twos)]
+    sp = med(pairs)
+    print(f"long CSV, {n:,} rows: --jobs 1 wall {med([o[0] for o in ones]):.3f} s ({spread([o[0] for o in ones])}), "
+          f"--jobs 2 {med([t[0] for t in twos]):.3f} s ({spread([t[0] for t in twos])})")
+    print(f"speed-up per pair {', '.join(f'{x:.2f}' for x in pairs)}: median {sp:.2f} >= 1.7 "
+          f"{'ok' if sp >= 1.7 else 'MISSED'}")
+    print(f"two one-process replays side by side against one: {med(twins):.2f} "
+          f"({', '.join(f'{x:.2f}' for x in twins)}); CPU of all --jobs 2 processes "
+          f"{med([t[2] for t in twos]) / med([o[2] for o in ones]):.2f} x one process's; "
+          f"load average before each pair {', '.join(f'{x:.2f}' for x in loads)}")
+    return 0 if sp >= 1.7 else 1
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="12 million rows instead of 50 million for memory")
     ap.add_argument("--repeat", type=int, default=3, help="runs per timed figure (default 3)")
+    ap.add_argument("--part", choices=("all", "jobs"), default="all",
+                    help="jobs: target 3 alone, --jobs 1 and --jobs 2 alternately (which goes first "
+                         "alternating too), --repeat pairs, and two one-process replays side by side "
+                         "after each pair")
     opts = ap.parse_args()
+    if opts.part == "jobs":
+        return jobs_only(opts.repeat)
     small_s = 12_000  # 2.4 million rows
     big_s = 60_000 if opts.quick else 250_000
     rows: list[tuple[str, str, str, str, bool]] = []
