@@ -16,7 +16,7 @@
 #      --no-loadscope-reorder xdist hands out the files with most tests first, and the
 #      few long ones of tests/conftest.py's LONG_FILES last): most tests wait on brokers, clusters,
 #      browsers and subprocesses rather than compute, so three workers fit on two cores
-#      (about 14 minutes instead of 25 on a 2-core machine).  SHIFTWATCH_TEST_WORKERS sets
+#      (about 12 minutes instead of 25 on a 2-core machine).  SHIFTWATCH_TEST_WORKERS sets
 #      another number; 0 runs the suite in this one process.
 #
 # Extra arguments go to pytest (e.g. tests/core -q).
