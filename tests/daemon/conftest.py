@@ -23,6 +23,17 @@ from shiftwatch.broker import MosquittoBroker, free_port, hold
 from shiftwatch.mqtt import PlainClient
 
 
+@pytest.fixture(scope="module")
+def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Any]:
+    """A module's own 3-server NATS cluster (JetStream, 3 replicas, MQTT, the plant's
+    partition mapping: ``natskit.module_cluster``), for the shard test files that ask for
+    ``cluster``; it fails the test when it cannot start.  (test_shard_journal.py has a
+    ``cluster`` of its own, a different thing.)"""
+    from .natskit import module_cluster
+
+    yield from module_cluster(tmp_path_factory)
+
+
 @pytest.fixture
 def broker(tmp_path: Path) -> Iterator[MosquittoBroker]:
     try:

@@ -27,7 +27,6 @@ from __future__ import annotations
 
 import signal
 import time
-from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
@@ -36,7 +35,7 @@ from shiftwatch.broker import hold, wait_until
 from shiftwatch.partition import partition_of
 
 from .killrun import scrape
-from .natskit import NatsCluster, module_cluster
+from .natskit import NatsCluster
 from .shardrun import (
     HASHED_LEVELS,
     Plan,
@@ -45,11 +44,6 @@ from .shardrun import (
     publish_with,
     run_three_shards,
 )
-
-
-@pytest.fixture(scope="module")
-def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[NatsCluster]:
-    yield from module_cluster(tmp_path_factory)
 
 
 def test_an_old_owner_held_back_at_a_reshard_hands_its_late_samples_over(tmp_path: Path,

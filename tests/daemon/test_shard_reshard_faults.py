@@ -25,24 +25,16 @@ import signal
 import sys
 import threading
 import time
-from collections.abc import Iterator
 from pathlib import Path
-
-import pytest
 
 from shiftwatch.broker import hold
 from shiftwatch.partition import partition_of
 
 from .killrun import metric, scrape
-from .natskit import NatsCluster, module_cluster
+from .natskit import NatsCluster
 from .shardrun import HASHED_LEVELS, Plan, ShardRun
 
 CMD = [sys.executable, "-m", "shiftwatch"]
-
-
-@pytest.fixture(scope="module")
-def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[NatsCluster]:
-    yield from module_cluster(tmp_path_factory)
 
 
 def test_a_reshard_during_an_old_shard_s_wait_loses_none_of_its_unwritten_streams(

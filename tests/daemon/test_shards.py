@@ -34,7 +34,6 @@ import logging
 import socket
 import threading
 import time
-from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
@@ -47,7 +46,7 @@ from shiftwatch.natsio import NatsIO
 from shiftwatch.partition import fnv1a_32, partition_of
 
 from .killrun import metric, scrape
-from .natskit import NatsCluster, module_cluster
+from .natskit import NatsCluster
 from .shardrun import (
     HASHED_LEVELS,
     SHIFTWATCH,
@@ -58,12 +57,6 @@ from .shardrun import (
     publish_with,
     run_three_shards,
 )
-
-
-@pytest.fixture(scope="module")
-def cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[NatsCluster]:
-    yield from module_cluster(tmp_path_factory)
-
 
 
 def test_partition_function_is_the_one_nats_server_applies(cluster: NatsCluster) -> None:
