@@ -24,9 +24,66 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+#: Linux's default local port range (``ip_local_port_range``), used where /proc is not there.
+_DEFAULT_EPHEMERAL = (32768, 60999)
+#: Ports below this are left to the system's own services.
+_LOWEST_PORT = 10000
+
+
+def ephemeral_ports() -> tuple[int, int]:
+    """The kernel's range of local ports for outgoing connections and port-0 binds.
+
+    Linux: ``/proc/sys/net/ipv4/ip_local_port_range`` (ip-sysctl.rst); elsewhere the
+    Linux default.
+    """
+    try:
+        low, high = (int(x) for x in Path("/proc/sys/net/ipv4/ip_local_port_range").read_text().split()[:2])
+    except (OSError, ValueError):
+        return _DEFAULT_EPHEMERAL
+    return (low, high) if 1 <= low <= high <= 65535 else _DEFAULT_EPHEMERAL
+
+
+def _outside_ephemeral() -> list[range]:
+    low, high = ephemeral_ports()
+    spans = [range(_LOWEST_PORT, max(_LOWEST_PORT, low)), range(high + 1, 65536)]
+    return [r for r in spans if len(r)]
+
+
+_port_lock = threading.Lock()
+_port_walk: list[int] = []  # [next index]; each process starts at its own place (its pid)
+if hasattr(os, "register_at_fork"):  # a forked child walks from its own place, not its parent's
+    os.register_at_fork(after_in_child=_port_walk.clear)
+
 
 def free_port() -> int:
-    """A TCP port on 127.0.0.1 that nothing listens on right now."""
+    """A TCP port on 127.0.0.1 that nothing listens on right now, outside the kernel's range.
+
+    Binding port 0 would give a port of the ephemeral range, which the kernel also hands to
+    every outgoing connection and every other port-0 bind: between this pick and the
+    server's own bind, another process's client could take it (the suite runs in several
+    workers).  So the ports come from outside that range, each process walking them from
+    its own starting place, and each is checked by binding it.  Falls back to port 0 when
+    there is no port outside the range.
+    """
+    spans = _outside_ephemeral()
+    total = sum(len(r) for r in spans)
+    with _port_lock:
+        if not _port_walk:
+            _port_walk.append((os.getpid() * 7919) % total if total else 0)
+        for _ in range(total):
+            k = _port_walk[0] % total
+            _port_walk[0] = k + 1
+            for r in spans:
+                if k < len(r):
+                    port = r[k]
+                    break
+                k -= len(r)
+            with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+                try:
+                    s.bind(("127.0.0.1", port))
+                except OSError:
+                    continue
+                return port
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
         s.bind(("127.0.0.1", 0))
         return int(s.getsockname()[1])

@@ -1,0 +1,82 @@
+"""The loopback ports the tests and the demo give their brokers, clusters and endpoints.
+
+The suite runs in three pytest-xdist workers.  ``free_port()`` used to bind port 0 and
+return what the kernel chose: a port of the kernel's ephemeral range, which it also gives
+to every outgoing connection (``connect()`` without ``bind()``) and to every other port-0
+bind, so between the pick and the server's own bind another worker's client could take
+it.  CI saw exactly that: "metrics endpoint 127.0.0.1:47185: [Errno 98] Address already
+in use".  Linux documents the range in ``/proc/sys/net/ipv4/ip_local_port_range``
+(ip-sysctl.rst: "the local port range that is used by TCP and UDP traffic to choose the
+local port"); ports outside it are never handed out that way.
+"""
+
+from __future__ import annotations
+
+import socket
+from pathlib import Path
+
+from shiftwatch.broker import ephemeral_ports, free_port
+
+
+def test_the_kernel_range_is_read_from_proc() -> None:
+    text = Path("/proc/sys/net/ipv4/ip_local_port_range").read_text().split()
+    assert ephemeral_ports() == (int(text[0]), int(text[1]))
+
+
+def test_a_free_port_is_never_one_the_kernel_hands_to_outgoing_connections() -> None:
+    low, high = ephemeral_ports()
+    ports = [free_port() for _ in range(200)]
+    inside = [p for p in ports if low <= p <= high]
+    assert inside == [], f"{len(inside)} of 200 in the kernel's ephemeral range {low}-{high}"
+    assert all(1024 <= p <= 65535 for p in ports)
+
+
+def test_successive_ports_differ_and_each_can_be_bound() -> None:
+    ports = [free_port() for _ in range(50)]
+    assert len(set(ports)) == 50  # a process walks its own sequence
+    for p in ports:
+        with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+            s.bind(("127.0.0.1", p))
+
+
+def test_a_port_something_listens_on_is_passed_over() -> None:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", free_port()))
+        s.listen()
+        taken = s.getsockname()[1]
+        low, high = ephemeral_ports()
+        span = (high - low + 1) if low > 1024 else 0
+        # the walk wraps round the ports outside the range; it never returns the held one
+        given = [free_port() for _ in range(200)]
+        assert taken not in given, (taken, span)
+
+
+def test_an_outgoing_connections_local_port_is_not_given_out() -> None:
+    """The CI failure's mechanism: a client's connection holds a kernel-chosen local port."""
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as server:
+        server.bind(("127.0.0.1", free_port()))
+        server.listen(64)
+        clients = [socket.create_connection(server.getsockname()) for _ in range(50)]
+        try:
+            local = {c.getsockname()[1] for c in clients}
+            low, high = ephemeral_ports()
+            assert all(low <= p <= high for p in local)  # the kernel's choice (common practice)
+            assert local.isdisjoint(free_port() for _ in range(200))
+        finally:
+            for c in clients:
+                c.close()
+
+
+def test_a_forked_child_does_not_walk_its_parents_sequence() -> None:
+    import multiprocessing
+
+    free_port()
+    ctx = multiprocessing.get_context("fork")
+    with ctx.Pool(1) as pool:
+        child = pool.apply(_ports, (20,))
+    mine = _ports(20)
+    assert set(child).isdisjoint(mine)
+
+
+def _ports(n: int) -> list[int]:
+    return [free_port() for _ in range(n)]
