@@ -559,14 +559,25 @@ _pending_signal = 0
 def _raise_terminated(signum: int, frame: object) -> None:
     # Also noted: Python runs a handler between any two bytecodes, and an exception
     # raised inside a finaliser (__del__, a weakref callback) is printed and dropped,
-    # so the drawing loop checks the note after each chart too.
+    # so the drawing loop checks the note after each chart too.  And an exception
+    # raised in Python code that compiled code called (matplotlib's renderer) may come
+    # out of it as another one ("Invalid bounding box"): the note decides then.
     global _pending_signal
     _pending_signal = signum
     raise _Terminated(signum)
 
 
+def _raise_interrupted(signum: int, frame: object) -> None:
+    """Ctrl-C as Python's own handler treats it (KeyboardInterrupt), and noted as above."""
+    global _pending_signal
+    _pending_signal = signum
+    raise KeyboardInterrupt
+
+
 def _check_terminated() -> None:
-    """Raise :class:`_Terminated` when a signal arrived whose exception was lost."""
+    """Raise what a signal that arrived should have raised, when its exception was lost."""
+    if _pending_signal == signal.SIGINT:
+        raise KeyboardInterrupt
     if _pending_signal:
         raise _Terminated(_pending_signal)
 
@@ -581,25 +592,39 @@ def _unwinding_on_termination() -> Iterator[None]:
     cleaned up, the default is restored and the signal raised again, so the
     process still ends by it (exit status 128 + the signal's number).  A
     handler the program installed itself is left alone: it decides, and an
-    exception it raises unwinds the block too.
+    exception it raises unwinds the block too.  Ctrl-C (SIGINT at Python's own
+    handler) raises KeyboardInterrupt as always, and is noted the same way.
+
+    Whatever exception the block ends with, once one of these signals has come
+    the signal decides the outcome: an exception raised inside compiled code
+    (matplotlib's renderer) can come out of it as another exception.
     """
     global _pending_signal
-    wanted = [getattr(signal, n) for n in ("SIGTERM", "SIGHUP") if hasattr(signal, n)]
     installed: dict[int, Any] = {}
     _pending_signal = 0
     if threading.current_thread() is threading.main_thread():
-        for sig in wanted:
-            if signal.getsignal(sig) == signal.SIG_DFL:
+        for name in ("SIGTERM", "SIGHUP"):
+            sig = getattr(signal, name, None)
+            if sig is not None and signal.getsignal(sig) == signal.SIG_DFL:
                 installed[sig] = signal.signal(sig, _raise_terminated)
+        if signal.getsignal(signal.SIGINT) is signal.default_int_handler:
+            installed[signal.SIGINT] = signal.signal(signal.SIGINT, _raise_interrupted)
     try:
         yield
         _check_terminated()  # finished although a signal came: it still ends the process
-    except _Terminated as exc:
+    except BaseException as exc:
+        signum = exc.signum if isinstance(exc, _Terminated) else _pending_signal
         for sig, old in installed.items():
             signal.signal(sig, old)
         installed.clear()
         _pending_signal = 0
-        signal.raise_signal(exc.signum)
+        if not signum:
+            raise
+        if signum == signal.SIGINT:
+            if isinstance(exc, KeyboardInterrupt):
+                raise
+            raise KeyboardInterrupt from None
+        signal.raise_signal(signum)
         raise  # only if the signal did not end the process
     finally:
         for sig, old in installed.items():
