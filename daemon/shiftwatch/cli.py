@@ -210,6 +210,8 @@ def cmd_replay(args: argparse.Namespace) -> int:
     cfg, failed = _optional_config(args.config)
     if failed:
         return EXIT_USAGE
+    if args.out == "-":
+        args.out = None  # standard output, as "-" means to command-line tools (POSIX.1, XBD 12.2)
     if args.report is None:
         if args.report_charts is not None:
             _err("--report-charts needs --report DIR: it sets how many charts the report holds")
@@ -330,6 +332,7 @@ def _replay_on_dask(args: argparse.Namespace, cfg: Any, report: Any, settings_fo
 def _out_writable(out: str, sources: list[Any]) -> bool:
     """Whether ``--out`` can be written, told before the replay (which may take hours) and not
     after it; an input file given as ``--out`` is refused, since writing would overwrite it."""
+    import errno
     import os
 
     for src in sources:
@@ -340,6 +343,20 @@ def _out_writable(out: str, sources: list[Any]) -> bool:
         if same:
             _err(f"--out {out}: is the input file {src.path}; the records would overwrite its readings")
             return False
+    import stat
+
+    try:
+        mode = os.stat(out).st_mode
+    except OSError:
+        mode = None
+    if mode is not None and not stat.S_ISREG(mode) and not stat.S_ISDIR(mode):
+        # A FIFO or a device is written directly and opened once, after the replay: opening and
+        # closing a FIFO here handed its reader an end of file, and the real opening then waited
+        # for a reader for ever.  access(2) tells the permission without opening it.
+        if not os.access(out, os.W_OK):
+            _err(f"--out {out}: cannot write: {os.strerror(errno.EACCES)}")
+            return False
+        return True
     existed = os.path.lexists(out)
     try:
         open(out, "a", encoding="utf-8").close()  # made to try it; written after the replay
@@ -1070,7 +1087,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     r = sub.add_parser("replay", help="run CSV files through the detection engine and print alert records")
     r.add_argument("--config", help="YAML configuration (detection settings); defaults without it")
-    r.add_argument("--out", type=_path, help="write JSON lines here instead of stdout")
+    r.add_argument("--out", type=_path, help="write JSON lines here instead of stdout ('-': stdout)")
     r.add_argument("--report", type=_path, metavar="DIR",
                    help="also write DIR/report.html: a chart per stream and a summary table")
     r.add_argument("--report-charts", type=_count, default=None, metavar="N",

@@ -13,6 +13,7 @@ import os
 import subprocess
 from datetime import UTC, datetime
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -481,3 +482,51 @@ def test_fit_counts_every_null_value_of_a_parquet_file(cli, tmp_path: Path) -> N
     assert "one step at" in res.stdout
     replay = cli("replay", str(path))
     assert f"; {nulls} unreadable row(s) or cell(s) skipped" in replay.stderr
+
+
+# ------------------------------------------------------------ --out that is no regular file
+def _read_fifo_in_a_thread(fifo: Path) -> tuple[Any, list[bytes]]:
+    """A reader of ``fifo`` as ``cat FIFO > file`` is one: it opens the FIFO (which blocks until
+    a writer opens it, fifo(7)) and reads until end of file, that is until every writer has
+    closed it (pipe(7): read(2) returns 0)."""
+    import threading
+
+    got: list[bytes] = []
+
+    def read() -> None:
+        with open(fifo, "rb") as f:
+            got.append(f.read())
+
+    reader = threading.Thread(target=read, daemon=True)
+    reader.start()
+    return reader, got
+
+
+def test_replay_out_to_a_fifo_hands_its_reader_every_record(cli, line_csv: Path, tmp_path: Path) -> None:
+    # README: "a --out that is no regular file (/dev/stdout, a FIFO) is written directly".  Before
+    # (found by an outside tester): the check that --out can be written opened and closed the
+    # FIFO, its reader saw end of file and left, and the real opening then waited for a reader for
+    # ever (the command was still there after 60 s).  The timeouts below only end a hang.
+    fifo = tmp_path / "records.fifo"
+    os.mkfifo(fifo)
+    reader, got = _read_fifo_in_a_thread(fifo)
+    res = cli("replay", "--jobs", "1", "--out", str(fifo), str(line_csv), timeout=120)
+    reader.join(timeout=60)
+    direct = cli("replay", "--jobs", "1", str(line_csv))
+    no_traceback(res.stderr)
+    assert res.returncode == direct.returncode == 0, res.stderr
+    assert not reader.is_alive()
+    assert got == [direct.stdout.encode()] and '"phase": "confirmed"' in direct.stdout
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["filler3.csv", "records.fifo"]
+
+
+def test_replay_out_dash_writes_the_records_to_standard_output(cli, line_csv: Path, tmp_path: Path) -> None:
+    # Common practice for command-line tools (POSIX.1-2017, XBD 12.2 Utility Syntax Guidelines,
+    # guideline 13: "-" as an operand means standard input or standard output): `--out -` wrote a
+    # file literally named "-".
+    dash = cli("replay", "--jobs", "1", "--out", "-", str(line_csv))
+    plain = cli("replay", "--jobs", "1", str(line_csv))
+    no_traceback(dash.stderr)
+    assert dash.returncode == plain.returncode == 0, dash.stderr
+    assert dash.stdout == plain.stdout and '"phase": "confirmed"' in plain.stdout
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["filler3.csv"]
