@@ -51,7 +51,15 @@ def _path(text: str) -> str:
 
 
 def _err(msg: str) -> None:
-    print(f"shiftwatch: {msg}", file=sys.stderr)
+    _say(f"shiftwatch: {msg}", keep="\n")
+
+
+def _say(line: str, keep: str = "") -> None:
+    """A line on stderr, its control characters escaped: names and texts in it may come from a
+    file (a header, a stream name), and a terminal obeys the escape sequences they hold."""
+    from shiftwatch.termtext import printable
+
+    print(printable(line, keep), file=sys.stderr)
 
 
 class OutputError(Exception):
@@ -140,10 +148,10 @@ def _print_problems(problems: list[str], limit: int = 20, total: int | None = No
     """The first ``limit`` problems on stderr, and how many more there were (``total`` in all)."""
     total = len(problems) if total is None else total
     for p in problems[:limit]:
-        print(p, file=sys.stderr)
+        _say(p)
     shown = min(limit, len(problems))
     if total > shown:
-        print(f"... and {total - shown} more problems like these", file=sys.stderr)
+        _say(f"... and {total - shown} more problems like these")
 
 
 def _values_set_aside(name: str, series: Any, values: Any, counts: dict[str, int],
@@ -493,7 +501,7 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
 
     problem_count = result.problem_count
     for msg in result.unread_files:  # every one: a whole file's rows were left out
-        print(f"{msg}; the file was skipped, the other files were replayed", file=sys.stderr)
+        _say(f"{msg}; the file was skipped, the other files were replayed")
     _print_problems(result.problems, KEEP_PROBLEMS, problem_count)
     streams = result.streams
     phases: dict[str, int] = {}
@@ -525,7 +533,7 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
         summary += f"; note: {note}"
     if result.repeated_hour:
         summary += f"; {notes[-1]}"
-    print(summary, file=sys.stderr)
+    _say(summary)
     if report is not None:
         from shiftwatch.report import ReportError
 
@@ -549,9 +557,9 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
                 bar.close()
         charted, total = report.charted
         if charted < total:
-            print(f"report: charts for {charted:,} of {total:,} streams (those with events first; "
-                  f"--report-charts N to change); every stream is in its tables", file=sys.stderr)
-        print(f"report written to {path}", file=sys.stderr)
+            _say(f"report: charts for {charted:,} of {total:,} streams (those with events first; "
+                 f"--report-charts N to change); every stream is in its tables")
+        _say(f"report written to {path}")
     return EXIT_BAD_DATA if problem_count or result.unread_files else EXIT_OK
 
 
@@ -573,7 +581,7 @@ def cmd_fit(args: argparse.Namespace) -> int:
         return EXIT_USAGE
     _print_problems(read.problems, total=read.problem_count)
     for note in read.notes:
-        print(f"note: {note}", file=sys.stderr)
+        _say(f"note: {note}")
     names = sorted(read.streams)
     if not names:  # say why, not "holds 0 streams" or "no stream named 'a' (streams: )"
         if read.problems:
@@ -611,7 +619,7 @@ def cmd_fit(args: argparse.Namespace) -> int:
         _err(f"{args.csv}: stream {name!r} has {usable} usable samples; a step fit needs at least 5")
         return EXIT_USAGE
     if set_aside:
-        print(f"{_set_aside_text(set_aside)}; the fit used the other {usable}", file=sys.stderr)
+        _say(f"{_set_aside_text(set_aside)}; the fit used the other {usable}")
         good = np.abs(v) <= MAX_ABS_VALUE
         t, v = t[good], v[good]
         del good
@@ -806,7 +814,7 @@ def _design_from(args: argparse.Namespace) -> int:
         return EXIT_USAGE
     _print_problems(read.problems)
     for note in read.notes:
-        print(f"note: {note}", file=sys.stderr)
+        _say(f"note: {note}")
     names = sorted(read.streams)
     if not names:
         _err(f"{', '.join(args.from_csv)}: no readable rows, so nothing to suggest")
@@ -851,7 +859,7 @@ def _design_from(args: argparse.Namespace) -> int:
             print(u)
     if set_aside:  # left out of the noise as replay's engine leaves them out
         _print_problems(aside_lines, total=sum(set_aside.values()))
-        print(f"{_set_aside_text(set_aside)}; the suggestions use the other samples", file=sys.stderr)
+        _say(f"{_set_aside_text(set_aside)}; the suggestions use the other samples")
     return EXIT_BAD_DATA if read.problems or unmeasured or set_aside else EXIT_OK
 
 

@@ -514,9 +514,21 @@ def _no_stream(src: Source) -> str:
     return f"no stream: its directory {Path(src.path).parent.name} names none (a null or empty stream)"
 
 
+def _once_each(cols: list[str], names: tuple[str, ...], where: str) -> None:
+    """Refuse a header that names one of ``names`` twice (in any case): it was read with the
+    first of them without a word, while a wide file's repeated tag was refused."""
+    for name in names:
+        if cols.count(name) > 1:
+            first, second = [i + 1 for i, c in enumerate(cols) if c == name][:2]
+            raise CsvFormatError(f"{where}: the header names {name} twice (columns {first} and {second}); "
+                                 f"a file has one {name} column (a long file: time, stream and value; a "
+                                 "wide file: time, then one column per tag)")
+
+
 def _pick_layout(name: str, header: list[str], layout: str, where: str) -> tuple[str, int, int, int,
                                                                                  list[tuple[int, str]]]:
     cols = [c.strip().lower().lstrip("\ufeff") for c in header]
+    _once_each(cols, ("time",), where)  # in any layout: which of two would be the time?
     long_ok = all(c in cols for c in REQUIRED_COLUMNS)
     # A `stream` or `value` column says the file is long (README: say --layout wide for a tag so named)
     if layout == "long" or (layout == "auto" and (long_ok or "time" not in cols or "stream" in cols
@@ -528,15 +540,13 @@ def _pick_layout(name: str, header: list[str], layout: str, where: str) -> tuple
             raise CsvFormatError(
                 f"{where}: header lacks column(s) {', '.join(missing)}; expected time,stream,value "
                 f"(long) or time followed by one column per tag (wide), got {','.join(header)}{wide}")
+        _once_each(cols, REQUIRED_COLUMNS, where)
         ti, si, vi = (cols.index(c) for c in REQUIRED_COLUMNS)
         return "long", ti, si, vi, [(vi, "")]
     if "time" not in cols:
         raise CsvFormatError(f"{where}: header lacks a time column; a wide file is time followed by one "
                              f"column per tag, got {','.join(header)}")
     ti = cols.index("time")
-    if cols.count("time") > 1:
-        raise CsvFormatError(f"{where}: the header names time twice; a wide file is one time column "
-                             "followed by one column per tag")
     tags: list[tuple[int, str]] = []
     seen: set[str] = set()
     names = [h.lstrip("\ufeff").strip() for h in header]
@@ -653,12 +663,24 @@ def open_source(path: str, layout: str = "auto") -> Source:
         cols = [c.strip().lower().lstrip("\ufeff") for c in header]
         if stream is not None and layout != "wide" and "stream" not in cols and "time" in cols and "value" in cols:
             # a long file whose stream is its partition's (stream=NAME directories), as for Parquet
+            _once_each(cols, ("time", "value"), f"{path}:1")
             ti, vi = cols.index("time"), cols.index("value")
             return Source(path, "csv", "long", header, ti, -1, vi, [(vi, "")], stream=stream, body_start=start,
                           body_line=line)
         try:
             lay, ti, si, vi, tags = _pick_layout(path, header, layout, f"{path}:1")
         except CsvFormatError:
+            if lines.bad_utf8:  # a binary file (or another encoding) whose first line fits no layout
+                fb.seek(0)
+                head = fb.read(start)
+                try:
+                    head.decode("utf-8")
+                    at = ""
+                except UnicodeDecodeError as exc:
+                    at = f": byte {exc.start + 1:,} of its first line is {head[exc.start]:#04x}"
+                raise CsvFormatError(f"{path}:1: not a UTF-8 text file{at}, which UTF-8 does not allow (RFC "
+                                     "3629); shiftwatch reads comma-separated UTF-8 text (save it as UTF-8 "
+                                     "CSV)") from None
             for sep, name in ((";", "semicolons"), ("\t", "tabs")):
                 if len(header) == 1 and sep in header[0]:
                     raise CsvFormatError(f"{path}:1: the header is separated by {name}; shiftwatch reads "
@@ -2029,7 +2051,14 @@ def _read_at(path: str, offset: int, size: int, opened: dict[str, Any] | None) -
 
 
 def _changed(path: str, at: int, expected: int) -> CsvFormatError:
-    """A file that ends (at byte ``at``) before the bytes planned from it (``expected``)."""
+    """A file that ends (at byte ``at``) before the bytes planned from it (``expected``).
+
+    ``at`` is where a read found no more bytes; when that read began past the file's new end
+    (a chunk planned before the cut), the file's length now (stat(2)) is where it ends."""
+    try:
+        at = min(at, os.stat(path).st_size)
+    except OSError:
+        pass
     return CsvFormatError(f"{path}: the file changed while it was read (it ends at byte {at:,}, "
                           f"not {expected:,})")
 

@@ -641,8 +641,8 @@ def format_table(doc: Mapping[str, Any], width: int = 120) -> str:
         if s.get("ack") and s["ack"].get("acked"):
             last += f" [seen by {s['ack'].get('by') or '?'}]"
         rate = s.get("samples_per_minute")
-        rows.append((_cell(s.get("label") or s.get("stream", "?")), state, s.get("level_text") or "-",
-                     s.get("sigma_text") or "-", "-" if rate is None else f"{rate:g}", last))
+        rows.append((_cell(s.get("label") or s.get("stream", "?")), _cell(state), s.get("level_text") or "-",
+                     s.get("sigma_text") or "-", "-" if rate is None else f"{rate:g}", _cell(last)))
     widths = [min(max(len(r[i]) for r in rows), 48) for i in range(5)]
     for r in rows:
         cells = [r[i][:widths[i]].ljust(widths[i]) for i in range(5)]

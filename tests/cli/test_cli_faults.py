@@ -530,3 +530,59 @@ def test_replay_out_dash_writes_the_records_to_standard_output(cli, line_csv: Pa
     assert dash.returncode == plain.returncode == 0, dash.stderr
     assert dash.stdout == plain.stdout and '"phase": "confirmed"' in plain.stdout
     assert sorted(p.name for p in tmp_path.iterdir()) == ["filler3.csv"]
+
+
+# ------------------------------------------------------------ control characters from files
+# ECMA-48 (5th edition, 1991), section 5: C0 controls are 0x00-0x1F, C1 controls 0x80-0x9F (in
+# Unicode U+0080-U+009F); ESC (0x1B) opens control sequences (CSI "ESC [", OSC "ESC ]", which a
+# terminal emulator takes as commands: colours, its window title), BEL (0x07) ends an OSC.  Text
+# taken from a file must reach a terminal with them escaped as \xNN (Python's repr, common practice).
+def _no_control_characters(stderr: str) -> None:
+    bad = [c for c in stderr if (ord(c) < 0x20 and c != "\n") or 0x7F <= ord(c) <= 0x9F]
+    assert not bad, (bad, stderr)
+
+
+def test_control_bytes_in_a_header_reach_stderr_escaped(cli, tmp_path: Path) -> None:
+    # Found by an outside tester: the header's ESC sequences went to the terminal as they were.
+    path = tmp_path / "esc.csv"
+    path.write_bytes(b"time,stream,val\x1b[31mRED\x1b]0;title\x07\n1,2,3\n")
+    res = cli("replay", str(path))
+    no_traceback(res.stderr)
+    assert res.returncode == 2, res.stderr
+    _no_control_characters(res.stderr)
+    assert "val\\x1b[31mRED\\x1b]0;title\\x07" in res.stderr, res.stderr
+
+
+def test_a_file_of_random_bytes_is_refused_as_not_utf8_text(cli, tmp_path: Path) -> None:
+    # Was "header lacks column(s)" or "separated by tabs" with the binary echoed.  The bytes are
+    # checked against Python's UTF-8 decoder (RFC 3629) first, so the file is surely no UTF-8 text.
+    data = np.random.default_rng(13).integers(0, 256, 4096, dtype=np.uint8).tobytes()
+    with pytest.raises(UnicodeDecodeError):
+        data.split(b"\n")[0].decode("utf-8")
+    path = tmp_path / "historian.csv"
+    path.write_bytes(data)
+    for command in READERS:
+        res = cli(*command, str(path))
+        no_traceback(res.stderr)
+        assert res.returncode == 2, res.stderr
+        _no_control_characters(res.stderr)
+        assert res.stderr.startswith(f"shiftwatch: {path}:1: not a UTF-8 text file"), res.stderr
+
+
+def test_stream_and_file_names_from_files_reach_stderr_escaped(cli, tmp_path: Path) -> None:
+    # A stream name in a problem line (a NaN value, set aside and named with its stream) and a
+    # file found in a directory (named with why it could not be read) come from the data, not
+    # from the person typing the command.
+    data = tmp_path / "line3"
+    data.mkdir()
+    name = "brackenfield/line3/\x1b]0;pwned\x07fill\x9b2J"
+    with open(data / "filler.csv", "w", encoding="utf-8") as f:
+        f.write("time,stream,value\n")
+        f.writelines(f"{format_time(T0 + i)},{name},{'nan' if i == 5 else 500 + i % 3}\n" for i in range(50))
+    (data / "bad\x1b[2Jname.parquet").write_bytes(b"")
+    res = cli("replay", str(data))
+    no_traceback(res.stderr)
+    assert res.returncode == 1, res.stderr
+    _no_control_characters(res.stderr)
+    assert "bad\\x1b[2Jname.parquet" in res.stderr
+    assert "brackenfield/line3/\\x1b]0;pwned\\x07fill\\x9b2J" in res.stderr, res.stderr

@@ -710,3 +710,28 @@ def test_a_parquet_stream_column_of_integers_reads_as_their_decimal_names(cli, t
         got = cli("replay", "--jobs", jobs, str(pq_path))
         assert got.returncode == 0, got.stderr
         assert got.stdout == want.stdout and got.stdout.count("\n") >= 1
+
+
+@pytest.mark.parametrize(("header", "column", "layout"), [
+    ("time,stream,value,value", "value", "auto"), ("time,stream,Stream,value", "stream", "auto"),
+    ("time,stream,value, VALUE", "value", "long"), ("time,time,value", "time", "auto"),
+    ("time,stream,value,time", "time", "long"), ("time,value,value", "value", "partition")])
+def test_a_long_header_that_names_a_column_twice_is_refused_naming_it(cli, tmp_path: Path, header: str,
+                                                                      column: str, layout: str) -> None:
+    # Found by an outside tester: a long file with `value` or `stream` twice was read with the first
+    # of them without a word (a wide file with a tag twice is refused), and `time,time,value` was
+    # refused as lacking a stream column though the README says "A header that names time twice is
+    # refused".  RFC 4180 (section 2) gives a header one name per field and does not say which of
+    # two equal names counts; pandas' read_csv renames the second (`value.1`, from memory), so
+    # readers disagree on which column a repeated name means.
+    where = tmp_path / "stream=brackenfield%2Fline2%2Fcapper%2Ftorque" if layout == "partition" else tmp_path
+    where.mkdir(exist_ok=True)
+    path = where / "twice.csv"
+    n = len(header.split(","))
+    path.write_text(f"{header}\n" + "".join(
+        ",".join([f"2026-03-02T06:00:{i:02d}Z"] + ["1.5"] * (n - 1)) + "\n" for i in range(3)))
+    args = ["--layout", layout] if layout != "partition" else []
+    res = cli("replay", *args, str(path))
+    assert "Traceback" not in res.stderr
+    assert res.returncode == 2 and res.stdout == "", res.stderr
+    assert res.stderr.startswith(f"shiftwatch: {path}:1: the header names {column} twice"), res.stderr

@@ -599,3 +599,26 @@ def test_a_file_whose_lines_end_in_a_lone_carriage_return_is_cut_in_chunks(tmp_p
     got = replay_files([cr], jobs=jobs, chunk_bytes=chunk_bytes)
     assert json_lines(got.records) == json_lines(want.records) and len(want.records) >= 4
     assert got.rows == want.rows == 12_000 and got.problems == want.problems == []
+
+
+@pytest.mark.parametrize("jobs", [1, 2])
+@pytest.mark.parametrize("share", [2, 5])
+def test_a_file_cut_short_while_it_is_replayed_is_named_with_the_byte_it_ends_at(tmp_path: Path, jobs: int,
+                                                                                 share: int) -> None:
+    # Found by an outside tester: a 23 MB CSV cut to 1,000,000 bytes while replayed was said to end
+    # "at byte 10,485,716", the start of the next chunk planned, not where it ends.  The file's
+    # length after truncate(2) is what stat(2) gives (st_size), the reference here.
+    path = write_long(tmp_path / "line4.csv", readings(3000))
+    size = path.stat().st_size
+    to = size // share + 3
+    assert to > 2 * 20_000  # the cut lies chunks behind the place the reading has reached
+
+    def cut(nbytes: int) -> None:
+        if path.stat().st_size == size:  # after the first chunk read
+            with open(path, "r+b") as f:
+                f.truncate(to)
+
+    with pytest.raises(CsvFormatError) as caught:
+        replay_files([path], jobs=jobs, chunk_bytes=20_000, progress=cut)
+    assert path.stat().st_size == to
+    assert str(caught.value) == f"{path}: the file changed while it was read (it ends at byte {to:,}, not {size:,})"
