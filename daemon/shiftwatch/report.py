@@ -401,6 +401,10 @@ class ReplayReport:
             os.close(fd)
             os.unlink(tmp)  # a probe: nothing is left behind while the replay runs
         except OSError as exc:
+            if self.directory.exists() and not self.directory.is_dir():  # mkdir(2) said only EEXIST
+                what = "is a file, not a directory" if self.directory.is_file() else "is not a directory"
+                raise ReportError(f"--report {directory}: {what}; --report names the "
+                                  f"directory that gets {REPORT_FILE}") from None
             raise ReportError(f"--report {directory}: cannot write there: {exc.strerror or exc}") from None
         if self.path.is_dir():  # the finished report could not be renamed there, after the replay
             raise ReportError(f"--report {directory}: cannot write {REPORT_FILE}: it is a directory")

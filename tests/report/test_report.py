@@ -21,7 +21,14 @@ import pytest
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.timefmt import parse_time
 from shiftwatch.replay import read_long_csv
-from shiftwatch.report import Envelope, StreamTrace, band_range, stream_figure, zoom_range
+from shiftwatch.report import (
+    REPORT_FILE,
+    Envelope,
+    StreamTrace,
+    band_range,
+    stream_figure,
+    zoom_range,
+)
 
 if TYPE_CHECKING:
     from conftest import PlantCsv
@@ -206,6 +213,20 @@ def test_replay_report_names_a_directory_it_cannot_write(cli, plant_csv: PlantCs
     assert res.returncode == 2
     assert res.stderr.startswith(f"shiftwatch: --report {blocker / 'report'}: cannot write there: ")
     assert res.stdout == ""  # refused before replaying anything
+
+
+def test_replay_report_given_an_existing_file_says_it_is_a_file_not_a_directory(cli, plant_csv: PlantCsv,
+                                                                               tmp_path: Path) -> None:
+    # Found by an outside tester: `--report afile` said "cannot write there: File exists" (EEXIST
+    # from mkdir(2)), which does not say why.  --report names a directory (README); a regular file
+    # is named as such, before anything is replayed, and left as it was.
+    afile = tmp_path / "afile"
+    afile.write_text("an earlier report\n")
+    res = cli("replay", "--report", str(afile), str(plant_csv.path))
+    assert res.returncode == 2 and "Traceback" not in res.stderr
+    assert res.stderr == (f"shiftwatch: --report {afile}: is a file, not a directory; --report names the "
+                          f"directory that gets {REPORT_FILE}\n"), res.stderr
+    assert res.stdout == "" and afile.read_text() == "an earlier report\n"
 
 
 def test_replay_report_refuses_a_report_html_that_is_a_directory_before_replaying(cli, plant_csv: PlantCsv,
