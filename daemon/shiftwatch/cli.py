@@ -42,6 +42,17 @@ def _count(text: str) -> int:
     return n
 
 
+def _rows(text: str) -> int:
+    """A whole number of 1 or more (an argparse type): ``status --limit 0`` showed one row."""
+    try:
+        n = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if n < 1:
+        raise argparse.ArgumentTypeError(f"expected 1 or more, got {n}")
+    return n
+
+
 def _path(text: str) -> str:
     """A path that is not empty (an argparse type): ``--out "$OUT"`` with OUT unset printed the
     records to standard output, and ``--report ""`` wrote into the current directory."""
@@ -1168,7 +1179,7 @@ def build_parser() -> argparse.ArgumentParser:
     st.add_argument("--config", required=True, help="YAML configuration file of the running daemon "
                     "(its metrics.listen and metrics.tls say where to ask)")
     st.add_argument("--filter", metavar="TEXT", help="only streams whose name or label holds TEXT")
-    st.add_argument("--limit", type=int, default=500, help="rows at most (default 500)")
+    st.add_argument("--limit", type=_rows, default=500, help="rows at most (default 500)")
     st.add_argument("--json", action="store_true", help="print the JSON as the daemon gives it")
     st.add_argument("--url", help="ask here instead (e.g. https://edge7.example:9650/status.json)")
     st.add_argument("--ca-file", help="CA that signed the endpoint's certificate (default: "

@@ -184,7 +184,15 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
 
 
 def _lag_text(lag: float) -> str:
-    """A detection delay as an operator says it: 1.3 s, 9 s, 2.5 min."""
+    """A detection delay as an operator says it: 40 ms, 1.3 s, 9 s, 2.5 min.
+
+    Examples
+    --------
+    >>> _lag_text(0.008), _lag_text(0.25), _lag_text(0.9999), _lag_text(0.0)
+    ('8 ms', '250 ms', '1 s', '0 s')
+    """
+    if 0 < lag < 0.9995:  # sub-second data: "0 s" said nothing (three figures, as format_duration)
+        return f"{lag * 1000:.3g} ms"
     if lag < 10:
         return f"{max(lag, 0.0):.1f} s".replace(".0 s", " s")
     if lag < 120:

@@ -445,7 +445,8 @@ def _settle(fut: asyncio.Future[Any], result: Any) -> None:
 
 
 _STATUS = {200: "OK", 303: "See Other", 400: "Bad Request", 404: "Not Found", 405: "Method Not Allowed",
-           500: "Internal Server Error", 503: "Service Unavailable"}
+           414: "URI Too Long", 431: "Request Header Fields Too Large", 500: "Internal Server Error",
+           503: "Service Unavailable"}
 
 #: Longest request head (request line and headers) read; a longer one is cut off.
 _MAX_HEAD = 16384
@@ -597,7 +598,12 @@ class _Endpoint:
                     lambda: protocol, sock=conn, ssl=self.tls,
                     ssl_handshake_timeout=self.deadline if self.tls is not None else None)
                 writer = asyncio.StreamWriter(transport, protocol, reader, self._loop)
-                head = await reader.readuntil(b"\r\n\r\n")
+                try:
+                    head = await reader.readuntil(b"\r\n\r\n")
+                except asyncio.LimitOverrunError:
+                    await self._refuse_long_head(reader, writer)
+                    answered = True
+                    return
                 record = self._conns.get(task)
                 if record is not None:
                     record.reading = False
@@ -616,6 +622,25 @@ class _Endpoint:
                     await asyncio.wait_for(writer.wait_closed(), 2.0)
                 except (Exception, asyncio.CancelledError):  # noqa: BLE001  not closed cleanly: aborted
                     writer.transport.abort()
+
+    async def _refuse_long_head(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
+        """Answer a request whose head passes :data:`_MAX_HEAD`: 414 when its request line alone
+        does (a long status filter), else 431 (RFC 9110 15.5.15, RFC 6585 5); the connection was
+        closed without an answer.  The rest the client sent is read and dropped until it closes
+        (bounded by the connection's deadline): closing with unread bytes sends a reset, which
+        can make the client lose the answer."""
+        start = await reader.read(_MAX_HEAD)
+        if b"\r\n" not in start:
+            writer.write(_response(414, f"the request line is longer than {_MAX_HEAD:,} bytes; "
+                                   "a shorter filter (q) or name is served\n".encode()))
+        else:
+            writer.write(_response(431, f"the request's headers are longer than {_MAX_HEAD:,} "
+                                   "bytes\n".encode()))
+        await writer.drain()
+        if writer.can_write_eof():
+            writer.write_eof()
+        while await reader.read(65536):
+            pass
 
     async def _answer(self, head: bytes, writer: asyncio.StreamWriter) -> None:
         lines = head.decode("latin-1").split("\r\n")

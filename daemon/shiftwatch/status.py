@@ -547,10 +547,13 @@ class StatusBoard:
             name = "overview.html" if path == "/status" else "stream.html"
             return 200, asset(name), "text/html; charset=utf-8"
         if path == "/status.json":
+            given = params.get("limit", [str(DEFAULT_LIMIT)])[0]
             try:
-                limit = max(1, min(int(params.get("limit", [str(DEFAULT_LIMIT)])[0]), 100_000))
+                limit = min(int(given), 100_000)
             except ValueError:
                 return 400, b'{"error": "limit must be a whole number"}\n', "application/json"
+            if limit < 1:  # was taken as 1: one row shown for limit=0 or limit=-1
+                return 400, _json({"error": f"limit must be 1 or more, got {int(given)}"}), "application/json"
             body = self.overview(params.get("q", [""])[0], limit)
             return 200, _json(body), "application/json"
         if path == "/status/stream.json":

@@ -293,3 +293,25 @@ def test_records_of_a_reading_with_no_noise_are_strict_json(cli, tmp_path: Path)
     assert fit.returncode == 0, fit.stderr
     got = _strict_json(fit.stdout)
     assert got["delta"] == 2.0 and got["delta_sigma"] is None
+
+
+def test_a_sub_second_detection_delay_is_said_in_milliseconds(cli, tmp_path: Path) -> None:
+    # Found by an outside tester: a replay of 100 Hz data said "detected 0 s later" (8 ms).  The
+    # delay is taken from the record's own RFC 3339 times with datetime.fromisoformat (the
+    # standard library, not shiftwatch's parser); 1 s = 1000 ms (SI).
+    rng = np.random.default_rng(21)
+    n, step_at = 3000, 2000
+    t0 = datetime(2026, 3, 2, 6, 0, tzinfo=UTC).timestamp()
+    path = tmp_path / "vibration.csv"
+    with open(path, "w") as f:
+        f.write("time,stream,value\n")
+        f.writelines(f"{format_time(t0 + i / 100)},brackenfield/line2/capper/torque,"
+                     f"{2.0 + 0.05 * rng.standard_normal() + 0.15 * (i >= step_at):.4f}\n" for i in range(n))
+    res = cli("replay", "--jobs", "1", str(path))
+    assert res.returncode == 0, res.stderr
+    recs = [json.loads(line) for line in res.stdout.splitlines()]
+    assert recs, res.stderr
+    for r in recs:
+        lag = (datetime.fromisoformat(r["detected_at"]) - datetime.fromisoformat(r["shift_at"])).total_seconds()
+        assert 0 < lag < 1, r  # the case at hand: a delay under a second
+        assert f", detected {lag * 1000:.3g} ms later: " in r["summary"], (lag, r["summary"])

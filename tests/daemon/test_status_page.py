@@ -491,3 +491,55 @@ def test_fields_other_parts_provide_show_on_the_page_and_absent_ones_leave_no_ga
         stop.set()
         helper.join(5)
         server.close()
+
+
+# ---------------------------------------------------------------- limits of a request
+@pytest.mark.parametrize("limit", ["0", "-1", "-5"])
+def test_a_limit_below_one_is_refused_with_400_saying_so(limit: str) -> None:
+    # Found by an outside tester: limit=-1 was taken as 1 (one row shown).  A request the server
+    # will not carry out because of the client's own input is 400 Bad Request (RFC 9110, 15.5.1).
+    eng = StreamEngine("line/a", unit="g")
+    eng.process(T0 + np.arange(300.0), series(4, 300))
+    board, _ = board_with({"line/a": eng}, {})
+    code, body, ctype = board.page("/status.json", f"limit={limit}")
+    assert code == 400 and ctype == "application/json", body
+    assert json.loads(body) == {"error": f"limit must be 1 or more, got {limit}"}
+    assert board.page("/status.json", "limit=1")[0] == 200
+
+
+def test_a_request_line_too_long_gets_414_and_a_reason_over_http() -> None:
+    # Found by an outside tester: /status.json?q=<100 kB> had its connection closed without an
+    # answer.  RFC 9110, 15.5.15: 414 URI Too Long, "the target URI is longer than the server is
+    # willing to interpret"; the real endpoint over a real socket, read with http.client.
+    import http.client
+
+    eng = StreamEngine("line/a", unit="g")
+    eng.process(T0 + np.arange(300.0), series(4, 300))
+    board, m = board_with({"line/a": eng}, {})
+    with m.serve("127.0.0.1:0", pages=board) as server:
+        for size in (100_000, 20_000):
+            conn = http.client.HTTPConnection("127.0.0.1", server.port, timeout=30)
+            try:
+                conn.request("GET", "/status.json?q=" + "x" * size)
+                r = conn.getresponse()
+                body = r.read()
+            finally:
+                conn.close()
+            assert r.status == 414 and r.reason == "URI Too Long", (r.status, body)
+            assert b"request line" in body
+        # The endpoint still answers afterwards.
+        assert get(f"http://127.0.0.1:{server.port}/status.json?q=line")[0] == 200
+
+
+@pytest.mark.parametrize("limit", ["0", "-5"])
+def test_status_refuses_a_limit_below_one_naming_the_option(tmp_path: Path, shiftwatch_cmd: list[str],
+                                                             limit: str) -> None:
+    # Found by an outside tester: `shiftwatch status --limit 0` (or -5) was accepted and showed one
+    # row.  Refused by the option's own check, before any daemon is asked (none runs here).
+    cfg = tmp_path / "c.yaml"
+    cfg.write_text("streams:\n  - topic: a/+\nmetrics:\n  listen: 127.0.0.1:9\n")
+    res = subprocess.run(shiftwatch_cmd + ["status", "--config", str(cfg), "--limit", limit],
+                         capture_output=True, text=True, timeout=60, check=False)
+    assert res.returncode == 2 and "Traceback" not in res.stderr, res.stderr
+    assert f"--limit: expected 1 or more, got {limit}" in res.stderr, res.stderr
+    assert "cannot read the status" not in res.stderr
