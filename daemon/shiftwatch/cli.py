@@ -53,6 +53,13 @@ def _rows(text: str) -> int:
     return n
 
 
+def _shown(text: str) -> str:
+    """Lines for a person on a terminal, the control characters of names from files escaped."""
+    from shiftwatch.termtext import printable
+
+    return printable(text, keep="\n")
+
+
 def _path(text: str) -> str:
     """A path that is not empty (an argparse type): ``--out "$OUT"`` with OUT unset printed the
     records to standard output, and ``--report ""`` wrote into the current directory."""
@@ -663,7 +670,7 @@ def cmd_fit(args: argparse.Namespace) -> int:
         print(json.dumps({k: None if isinstance(v, float) and not math.isfinite(v) else v
                           for k, v in d.items()}))
     else:
-        print(_fit_text(d, fit))
+        print(_shown(_fit_text(d, fit)))  # a stream name from the file, escaped for the terminal
     return EXIT_BAD_DATA if problems else EXIT_OK
 
 
@@ -865,9 +872,9 @@ def _design_from(args: argparse.Namespace) -> int:
     else:
         for r in results:
             if "explanation" in r:
-                print(r["explanation"])
+                print(_shown(r["explanation"]))
         for u in unmeasured:
-            print(u)
+            print(_shown(u))
     if set_aside:  # left out of the noise as replay's engine leaves them out
         _print_problems(aside_lines, total=sum(set_aside.values()))
         _say(f"{_set_aside_text(set_aside)}; the suggestions use the other samples")

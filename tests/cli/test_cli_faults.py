@@ -586,3 +586,18 @@ def test_stream_and_file_names_from_files_reach_stderr_escaped(cli, tmp_path: Pa
     _no_control_characters(res.stderr)
     assert "bad\\x1b[2Jname.parquet" in res.stderr
     assert "brackenfield/line3/\\x1b]0;pwned\\x07fill\\x9b2J" in res.stderr, res.stderr
+
+
+@pytest.mark.parametrize("command", [("fit",), ("design", "--from")])
+def test_fit_and_design_print_a_stream_name_from_the_file_escaped(cli, tmp_path: Path,
+                                                                  command: tuple[str, ...]) -> None:
+    # Their text for a person names the stream, read from the file; its ESC and BEL (ECMA-48)
+    # went to the terminal as they were.  --json keeps the name whole (RFC 8259 escapes them).
+    name = "brackenfield/filler3/\x1b]0;pwned\x07fill_g"
+    path = write_filler(tmp_path / "filler3.csv")
+    path.write_text(path.read_text().replace(STREAM, name))
+    res = cli(*command, str(path))
+    no_traceback(res.stderr)
+    assert res.returncode == 0, res.stderr
+    _no_control_characters(res.stdout)
+    assert "brackenfield/filler3/\\x1b]0;pwned\\x07fill_g" in res.stdout, res.stdout
