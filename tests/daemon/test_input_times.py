@@ -212,3 +212,17 @@ def test_a_status_page_that_cannot_be_rendered_is_answered_500_and_logged_with_i
     lines = [r.getMessage() for r in caplog.records if "could not be rendered" in r.getMessage()]
     # one line a minute, naming the page and the reason (before the fix: none at all)
     assert len(lines) == 1 and "/status/stream.json" in lines[0] and "year -29719 is out of range" in lines[0], lines
+
+
+def test_a_snapshot_entry_whose_values_are_text_is_reported_under_values() -> None:
+    # The tester's entry: values "abc" was reported as "times: could not convert ...".
+    from shiftwatch.core.engine import StreamEngine
+    from shiftwatch.core.settings import DetectionSettings
+
+    eng = StreamEngine("r/a", DetectionSettings())
+    eng.process([NOW + i for i in range(5)], [1.0, 2.0, 1.5, 1.2, 1.8])
+    state = dict(eng.get_state())
+    state["values"] = "abc"
+    with pytest.raises(ValueError, match=r"^values: ") as err:
+        StreamEngine("r/a", DetectionSettings()).set_state(state)
+    assert "times" not in str(err.value), err.value
