@@ -79,7 +79,8 @@ SenML specifics (RFC 8428)
 - A resolved time below ``2**28`` is relative to ``now`` (section 4.5.3):
   time = ``now`` + time, so a record without ``t`` and ``bt`` is "now".
   Above ``1e11`` the millisecond rule above applies, although RFC 8428 times
-  are seconds, because no plausible seconds stamp is that large.
+  are seconds, because no plausible seconds stamp is that large.  A resolved
+  time before the year 1 (``-1e12`` from now, say) is ``bad_time``.
 - ``vs``, ``vb`` and ``vd`` (string, boolean and data values) give
   ``not_a_number`` for that record.  A record with a sum ``s`` and no value
   is skipped without a problem, and so is a record holding only base fields
