@@ -585,9 +585,11 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
 def cmd_fit(args: argparse.Namespace) -> int:
     import numpy as np
 
-    from shiftwatch.core.screen import MAX_ABS_VALUE
+    from shiftwatch.core.screen import REASONS, screen_series
+    from shiftwatch.core.settings import DetectionSettings
     from shiftwatch.core.stepfit import fit_step
     from shiftwatch.core.timefmt import format_time
+    from shiftwatch.replay import BATCH as REPLAY_BATCH
     from shiftwatch.replay import CsvFormatError, read_long_csv
 
     try:
@@ -619,28 +621,27 @@ def cmd_fit(args: argparse.Namespace) -> int:
             _err(f"{args.csv}: no stream named {name!r} (streams: {', '.join(names[:10])})")
             return EXIT_USAGE
     s = read.streams[name]
-    t = np.asarray(s.times)
-    v = np.asarray(s.values)
+    t = np.asarray(s.times, dtype=np.float64)
+    v = np.asarray(s.values, dtype=np.float64)
+    # The samples replay's engine sets aside, by its screening in file order (a value NaN,
+    # infinite or beyond 1e150; a time repeated or earlier than one accepted), with its reasons.
+    kept, rejected = screen_series(t, v, DetectionSettings().window_samples, REPLAY_BATCH)
     set_aside: dict[str, int] = {}
-    lines = _values_set_aside(name, s, v, set_aside)
-    _print_problems(lines, total=sum(set_aside.values()))
+    for _, reason in rejected:
+        set_aside[reason] = set_aside.get(reason, 0) + 1
+    _print_problems([f"{s.where(i)}: stream {name}: {REASONS[r]}" for i, r in rejected[:20]],
+                    total=len(rejected))
     problems = bool(read.problems) or bool(set_aside)
-    del read, s  # the rows' places go: an array of the series' length less at the fit
-    # Copies only where needed (a series of 4 million rows held eight arrays of its length here):
-    # rows in time order are the stable sort's own order, and all values are usually finite.
-    if not bool((t[1:] >= t[:-1]).all()):
-        order = np.argsort(t, kind="stable")
-        t, v = t[order], v[order]
-        del order
-    usable = v.shape[0] - sum(set_aside.values())
+    del read, s, rejected  # the rows' places go: an array of the series' length less at the fit
+    usable = kept.shape[0]
+    if set_aside:
+        _say(f"{_set_aside_text(set_aside)}; the fit used the other {usable}")
     if usable < 5:
         _err(f"{args.csv}: stream {name!r} has {usable} usable samples; a step fit needs at least 5")
         return EXIT_USAGE
     if set_aside:
-        _say(f"{_set_aside_text(set_aside)}; the fit used the other {usable}")
-        good = np.abs(v) <= MAX_ABS_VALUE
-        t, v = t[good], v[good]
-        del good
+        t, v = t[kept], v[kept]
+    del kept
     try:
         fit = fit_step(v, t, level=args.level, min_segment=args.min_segment)
     except ValueError as exc:

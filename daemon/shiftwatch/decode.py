@@ -39,8 +39,10 @@ Behaviour decisions
   (e.g. ``10**400``) and sums that overflow.
 - Times: a JSON number is epoch seconds, except that a number above
   ``1e11`` (year 5138 as seconds) is taken as epoch milliseconds; text is
-  RFC 3339 (``Z``, ``z`` or an offset; no offset means UTC; a space may stand
-  for ``T``; a leap second ``:60`` counts as the second after ``:59``).
+  RFC 3339 section 5.6's date-time, the same grammar replay reads (``Z``, ``z``
+  or an offset, which is required: a payload has no time zone to read a time
+  without one in; a space may stand for ``T``; a leap second ``:60`` counts as
+  the second after ``:59``).  A time must lie in the years 1 to 9999.
   Numbers written as text are not times.  Anything else, or a non-finite
   number, is ``bad_time`` and the item is dropped, because a reading that
   cannot be placed in time cannot be placed in a series.
@@ -77,7 +79,8 @@ SenML specifics (RFC 8428)
 - A resolved time below ``2**28`` is relative to ``now`` (section 4.5.3):
   time = ``now`` + time, so a record without ``t`` and ``bt`` is "now".
   Above ``1e11`` the millisecond rule above applies, although RFC 8428 times
-  are seconds, because no plausible seconds stamp is that large.
+  are seconds, because no plausible seconds stamp is that large.  A resolved
+  time before the year 1 (``-1e12`` from now, say) is ``bad_time``.
 - ``vs``, ``vb`` and ``vd`` (string, boolean and data values) give
   ``not_a_number`` for that record.  A record with a sum ``s`` and no value
   is skipped without a problem, and so is a record holding only base fields
@@ -127,13 +130,14 @@ import re
 import struct
 from collections import Counter
 from collections.abc import Sequence
-from datetime import datetime
 from itertools import accumulate
 from typing import Any, NamedTuple
 
 import msgspec
 import numpy as np
 from numpy.typing import NDArray
+
+from shiftwatch.core.timefmt import RFC3339, TIME_MIN, parse_rfc3339
 
 FloatArray = NDArray[np.float64]
 
@@ -279,11 +283,9 @@ _MISSING = _Missing()
 # payload (say 64 KiB of digits and one letter) costs linear time.
 _NUMBER = re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?", re.ASCII)
 _NONFINITE = re.compile(r"[+-]?(?:(nan)|inf|infinity)", re.ASCII | re.IGNORECASE)
-#: RFC 3339 section 5.6's date-time ('T' may be 't' or a space, 'Z' may be 'z': its NOTE); an offset's
-#: hour is 00-23 and its minute 00-59 (time-numoffset), which datetime.fromisoformat does not check
-#: for the minute ("+01:60" read as +02:00).  Replay reads file times by this same grammar.
-_RFC3339 = re.compile(
-    r"(\d{4}-\d{2}-\d{2})[Tt ](\d{2}:\d{2}:\d{2}(?:\.\d+)?)([Zz]|[+-](?:[01]\d|2[0-3]):[0-5]\d)?", re.ASCII)
+#: RFC 3339 section 5.6's date-time (:data:`shiftwatch.core.timefmt.RFC3339`); replay reads file
+#: times by this same grammar, the decoder and the floor commands by :func:`parse_rfc3339`.
+_RFC3339 = RFC3339
 # A JSON string, or an unterminated one up to the end of the text: always
 # matches from a quote, so scanning stays linear on hostile input.
 _JSON_STRING = re.compile(r'"[^"\\]*(?:\\.[^"\\]*)*"?', re.DOTALL)
@@ -303,6 +305,10 @@ _MS_THRESHOLD = EPOCH_MS_ABOVE
 #: most often epoch microseconds or nanoseconds, which the millisecond rule would read as the
 #: year 58,000 or later.
 _RAW_TIME_MAX = 253402300799999.0
+#: The earliest time read: 0001-01-01T00:00:00Z (RFC 3339's date-fullyear is 4DIGIT, and
+#: there is no year 0000 in datetime's calendar).  An earlier time cannot be written in a record.
+_TIME_MIN = TIME_MIN
+_BEFORE_1 = "before the year 1"
 _PAST_9999 = ("past the year 9999 (shiftwatch reads epoch seconds, and epoch milliseconds above "
               "100,000,000,000: divide epoch microseconds or nanoseconds first)")
 _BIG_INT_DIGITS = 400  # longer integer literals overflow a float anyway
@@ -371,6 +377,8 @@ def _finite_time(t: float, what: str) -> float:
         raise _Reject("bad_time", f"{what} is not finite")
     if t > _RAW_TIME_MAX:
         raise _Reject("bad_time", f"{what} is {t:.17g}, {_PAST_9999}")
+    if t < _TIME_MIN:
+        raise _Reject("bad_time", f"{what} is {t:.17g}, {_BEFORE_1}")
     return _seconds(t)
 
 
@@ -388,19 +396,10 @@ def _epoch(v: Any, what: str) -> float:
 
 
 def _rfc3339(text: str, what: str) -> float:
-    m = _RFC3339.fullmatch(text.strip())
-    if m is None:
-        raise _Reject("bad_time", f"{what} is {_show(text)}, not an RFC 3339 time")
-    date, clock, offset = m.groups()
-    if offset is None or offset in "Zz":
-        offset = "+00:00"
-    leap = 0.0
-    if clock[6:8] == "60":  # a leap second (RFC 3339 section 5.6): the next second
-        clock, leap = clock[:6] + "59" + clock[8:], 1.0
     try:
-        return datetime.fromisoformat(f"{date}T{clock}{offset}").timestamp() + leap
-    except (ValueError, OverflowError):
-        raise _Reject("bad_time", f"{what} is {_show(text)}, not a valid date and time") from None
+        return parse_rfc3339(text)
+    except ValueError as exc:
+        raise _Reject("bad_time", f"{what} is {_show(text)}, {exc}") from None
 
 
 def _check_now(now: Any) -> None:
@@ -746,7 +745,8 @@ def decode_many(payloads: Sequence[bytes | bytearray], fmt: str, *, value_path: 
                     continue
                 t: Any = item.get(time_path)
                 tt = type(t)
-                if (tt is float and t - t == 0.0 and t <= _RAW_TIME_MAX) or (tt is int and -_BIG_INT < t <= _RAW_TIME_MAX):
+                if ((tt is float and t - t == 0.0 and _TIME_MIN <= t <= _RAW_TIME_MAX)
+                        or (tt is int and _TIME_MIN <= t <= _RAW_TIME_MAX)):
                     out.append(Decoded([Reading(None, _seconds(float(t)), float(v), None)], no_problems))
                     continue
         readings: list[Reading] = []
@@ -818,8 +818,8 @@ def _array_columns(payload: bytes, value_parts: tuple[str, ...], time_parts: tup
     # smallest infinite (two reductions instead of isfinite's array and its all()).
     top = float(np.maximum.reduce(t))
     low = float(np.minimum.reduce(t))
-    if not (math.isfinite(top) and math.isfinite(low)):
-        return None
+    if not (math.isfinite(top) and math.isfinite(low)) or low < _TIME_MIN:
+        return None  # each such time is a problem of its own: the usual path names it
     # _seconds, element by element: the same division, for a column that holds a time in
     # milliseconds (none is past the threshold otherwise, and the column is kept as it is).
     if top > _MS_THRESHOLD:
@@ -993,6 +993,8 @@ def _senml_columns(payload: bytes, now: float, max_items: int, max_depth: int) -
         return None
     times = np.where(total < _RELATIVE_LIMIT, now + total,
                      np.where(total > _MS_THRESHOLD, total / 1000.0, total))
+    if float(np.minimum.reduce(times)) < _TIME_MIN:  # the usual path names each such time
+        return None
     if len(names) == 1:
         return SenmlColumns(names, units, [times], [values], np.zeros(n, dtype=np.intp))
     code = {key: j for j, key in enumerate(firsts)}
@@ -1210,7 +1212,12 @@ def _senml_record(rec: dict[str, Any], base: dict[str, Any], now: float, where: 
     total = _base(base, "bt", where) + t
     if not math.isfinite(total):
         raise _Reject("bad_time", f"{where}: bt + t overflows")
-    time = now + total if total < _RELATIVE_LIMIT else _finite_time(total, f"{where}: time")
+    if total < _RELATIVE_LIMIT:
+        time = now + total
+        if time < _TIME_MIN:
+            raise _Reject("bad_time", f"{where}: time is {total:.17g} s from now, {_BEFORE_1}")
+    else:
+        time = _finite_time(total, f"{where}: time")
     return Reading(name, time, value, unit)
 
 

@@ -41,6 +41,7 @@ from __future__ import annotations
 import asyncio
 import functools
 import gzip
+import logging
 import math
 import socket
 import ssl
@@ -326,6 +327,7 @@ class _Connection:
 _Key = tuple[str, tuple[str, ...], bool]
 #: The ``accept`` of a render key that asks for a page of the status board, not the exposition.
 _PAGE = "\x00page"
+_log = logging.getLogger(__name__)
 
 
 class PageSource(Protocol):
@@ -384,6 +386,7 @@ class _Renderer:
         self._waiting: dict[_Key, list[tuple[asyncio.AbstractEventLoop, asyncio.Future[Any]]]] = {}
         self._closed = False
         self.renders = 0
+        self._failures: dict[str, tuple[float, int]] = {}  # what failed: (when last logged, failures since)
         # Started here, with the endpoint: no thread is ever started while serving.
         self._thread = threading.Thread(target=self._run, name="metrics-render", daemon=True)
         self._thread.start()
@@ -412,6 +415,7 @@ class _Renderer:
                     result: Any = self._render(*key)
                 except Exception as exc:  # noqa: BLE001  a failed render fails its scrapes, never the thread
                     result = exc
+                    self._log_failure(key, exc)
                 for loop, fut in waiters:
                     try:
                         loop.call_soon_threadsafe(_settle, fut, result)
@@ -421,6 +425,20 @@ class _Renderer:
             took = time.monotonic() - started
             with self._cv:  # rest as long as the render took (or until closed)
                 self._cv.wait_for(lambda: self._closed, timeout=min(took, 5.0))
+
+    def _log_failure(self, key: _Key, exc: Exception) -> None:
+        """Say why a render failed (its requests get a 500): one line per kind of request a
+        minute, with the count of the failures not logged since."""
+        what = f"the status page {key[1][0]}" if key[0] == _PAGE else "the metrics"
+        now = time.monotonic()
+        last, quiet = self._failures.get(what, (-math.inf, 0))
+        if now - last < 60.0:
+            self._failures[what] = (last, quiet + 1)
+            return
+        self._failures[what] = (now, 0)
+        more = f" ({quiet} more failure(s) since the last line)" if quiet else ""
+        _log.error("%s could not be rendered (answered HTTP 500): %s: %.300s%s", what,
+                   type(exc).__name__, exc, more)
 
     def _render(self, accept: str, names: tuple[str, ...], zipped: bool) -> tuple[bytes, str, bool, int]:
         status = 200

@@ -203,9 +203,10 @@ def test_json_large_but_finite_values() -> None:
     ('"1990-12-31T23:59:60Z"', rfc3339_expected(1991, 1, 1, 0, 0, 0)),
     ('"1990-12-31T15:59:60-08:00"', rfc3339_expected(1991, 1, 1, 0, 0, 0)),
     ('"1937-01-01T12:00:27.87+00:20"', rfc3339_expected(1937, 1, 1, 11, 40, 27, 0.87)),
-    # Variants this decoder accepts: lower-case t/z, a space, no offset (UTC).
+    # Variants RFC 3339 section 5.6's NOTE allows: lower-case t/z, a space (an offset is required:
+    # a time without one is bad_time, tests/daemon/test_input_times.py).
     ('"2025-12-02t06:25:17z"', rfc3339_expected(2025, 12, 2, 6, 25, 17)),
-    ('"2025-12-02 06:25:17.250"', rfc3339_expected(2025, 12, 2, 6, 25, 17, 0.25)),
+    ('"2025-12-02 06:25:17.250Z"', rfc3339_expected(2025, 12, 2, 6, 25, 17, 0.25)),
     # Numbers: epoch seconds, or epoch milliseconds above 1e11.
     ("1764633601", 1764633601.0), ("1764633601.5", 1764633601.5),
     ("1764633601500", 1764633601.5), ("100000000000", 100000000000.0), ("100000000001", 100000000.001),

@@ -24,9 +24,9 @@ and the README documents:
   calendar Python counts from the year 1, and is refused, as is a time past 9999-12-31
   after its offset.
 
-The daemon's decoder (``shiftwatch.decode``) reads a payload's time by the same grammar; it
-reads one without an offset as UTC (an MQTT payload has no ``--timezone``), and is held here
-to the reference read that way.  Demo data: the invented Brackenfield plant.
+The daemon's decoder (``shiftwatch.decode``) and the floor commands read a time by the same
+grammar (``timefmt.parse_rfc3339``); they refuse one without an offset (an MQTT payload has
+no ``--timezone``), and are held here to the reference read without a zone.  Demo data: the invented Brackenfield plant.
 """
 
 from __future__ import annotations
@@ -295,14 +295,13 @@ def test_every_time_path_reads_what_rfc3339_section_5_6_allows_and_nothing_else(
         assert _same(float(slow.parts[0][1][0]), want, text)
         if fast is not None:
             assert float(fast.parts[0][1][0]) == float(slow.parts[0][1][0]), text
-    # the daemon's decoder: the same grammar, a time without an offset read as UTC
+    # the daemon's decoder (and the floor commands, by the same parse_rfc3339): the same grammar
+    # and the same years, an offset required (a payload has no --timezone)
     try:
         daemon: float | None = decode._rfc3339(text, "time")
     except decode._Reject:
         daemon = None
-    want_utc = unbounded(text, zone_given=True)
-    if want_utc is None:
-        assert daemon is None, (text, daemon)
-    elif TIME_MIN <= want_utc <= TIME_MAX:
-        assert daemon is not None and _same(daemon, want_utc, text), (text, daemon, want_utc)
-    # (outside the years 1 to 9999 after the offset, the decoder's range rule is its own)
+    want_offset = reference(text, zone_given=False)
+    assert (daemon is None) == (want_offset is None), (text, daemon, want_offset)
+    if want_offset is not None and daemon is not None:
+        assert _same(daemon, want_offset, text), (text, daemon, want_offset)

@@ -67,7 +67,7 @@ from shiftwatch.core.selfstart import SelfStart, SplitEvidence, split_evidence, 
 from shiftwatch.core.sequential import SequentialTest
 from shiftwatch.core.settings import ARL_RANGE, DetectionSettings
 from shiftwatch.core.stepfit import StepFit, StepFitter
-from shiftwatch.core.timefmt import format_time
+from shiftwatch.core.timefmt import TIME_MAX, TIME_MIN, format_time
 
 FloatArray = NDArray[np.float64]
 
@@ -2491,7 +2491,8 @@ class StreamEngine:
                 raise ValueError(f"state: unknown engine state {st!r}")
             self._state = st
             field_name = "times"
-            times = _finite_array(state["times"], "times")
+            times = _time_array(state["times"], "times")
+            field_name = "values"
             values = _finite_array(state["values"], "values")
             if times.shape != values.shape:
                 raise ValueError("times, values: differ in length")
@@ -2501,7 +2502,7 @@ class StreamEngine:
             if (ev_t is None) != (ev_v is None):
                 raise ValueError("event_times, event_values: one is missing")
             if ev_t is not None:
-                et, evv = _finite_array(ev_t, "event_times"), _finite_array(ev_v, "event_values")
+                et, evv = _time_array(ev_t, "event_times"), _finite_array(ev_v, "event_values")
                 if et.shape != evv.shape:
                     raise ValueError("event_times, event_values: differ in length")
                 self._fitter = StepFitter(evv, et)
@@ -2545,7 +2546,7 @@ class StreamEngine:
             if p is not None:
                 if len(p) != 2:
                     raise ValueError(f"pending: expected [time, value], got {p!r:.80}")
-                self._pending = (_finite_number(p[0], "pending"), _finite_number(p[1], "pending"))
+                self._pending = (float(_time_array([p[0]], "pending")[0]), _finite_number(p[1], "pending"))
             field_name = "prev_out"
             self._prev_out = int(state["prev_out"])
             if self._prev_out not in (-1, 0, 1):
@@ -2759,6 +2760,18 @@ def _finite_array(v: Any, name: str) -> FloatArray:
         raise ValueError(f"{name}: must be a list of numbers")
     if not np.isfinite(a).all():
         raise ValueError(f"{name}: holds a value that is not a finite number")
+    return a
+
+
+def _time_array(v: Any, name: str) -> FloatArray:
+    """Saved sample times: finite, and in the years 1 to 9999 that a record can be written at
+    (an earlier version took such times from payloads; the status page could not show them)."""
+    a = _finite_array(v, name)
+    # up to the last millisecond of the year 9999, the decoder's last epoch-milliseconds time
+    if a.shape[0] and not (TIME_MIN <= float(a.min()) and float(a.max()) <= TIME_MAX + 0.999):
+        wrong = float(a.min()) if float(a.min()) < TIME_MIN else float(a.max())
+        raise ValueError(f"{name}: holds the time {wrong:.17g}, "
+                         + ("before the year 1" if wrong < TIME_MIN else "past the year 9999"))
     return a
 
 

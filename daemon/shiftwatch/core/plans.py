@@ -46,7 +46,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from shiftwatch.core.timefmt import DURATION_FORMS, format_time, parse_duration, parse_time
+from shiftwatch.core.timefmt import DURATION_FORMS, format_time, parse_duration, parse_rfc3339
 
 PLAN = "plan"
 HOLD = "hold"
@@ -272,14 +272,14 @@ def _when(d: Mapping[str, Any], key: str, now: float) -> float | None:
         except ValueError as exc:
             raise CommandError("bad_time", f"{key}: {exc}") from None
         return now - d_s if m.group(1) == "-" else now + d_s
-    if "T" not in s and " " not in s:
+    if "T" not in s and "t" not in s and " " not in s:
         raise CommandError("bad_time", f"{key}: {v!r:.40} is neither an RFC 3339 time with a date and a "
                                        f"UTC offset, 'now', nor a signed duration ({DURATION_FORMS}, "
                                        "with + or - in front)")
     try:
-        t = parse_time(s)
+        t = parse_rfc3339(s)  # RFC 3339 section 5.6, as the decoder and replay read times
     except ValueError as exc:
-        raise CommandError("bad_time", f"{key}: {exc}") from None
+        raise CommandError("bad_time", f"{key}: {v!r:.40} {exc}") from None
     return t
 
 

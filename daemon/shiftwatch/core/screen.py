@@ -238,6 +238,35 @@ def screen_samples(
     return Screened(times=t[kept], values=v[kept], kept=kept, rejected=rejected)
 
 
+def screen_series(times: NDArray[np.float64], values: NDArray[np.float64], window: int,
+                  batch: int = 4096) -> tuple[NDArray[np.intp], list[tuple[int, str]]]:
+    """What an engine fed a whole series in its order, ``batch`` samples a call, keeps.
+
+    Each batch is screened as :meth:`StreamEngine.process` screens it: against the newest
+    time accepted so far and the last ``window`` accepted times (the engine's window of
+    ``window_samples``), so a time set aside gets the reason replay gives it.  Returns the
+    positions kept (in order) and ``(position, reason)`` of each sample set aside.  (The
+    engine's spike rule, which depends on its level, is not applied.)
+
+    >>> kept, rejected = screen_series(np.array([1.0, 2.0, 2.0, 0.5, 3.0]), np.array([1.0, 2.0, 3.0, 4.0, np.nan]), 400)
+    >>> kept.tolist(), rejected
+    ([0, 1], [(2, 'duplicate_time'), (3, 'out_of_order'), (4, 'nan')])
+    """
+    n = times.shape[0]
+    kept: list[NDArray[np.intp]] = []
+    rejected: list[tuple[int, str]] = []
+    last = -np.inf
+    seen = np.empty(0, dtype=np.float64)
+    for a in range(0, n, batch):
+        scr = screen_samples(times[a:a + batch], values[a:a + batch], last, seen)
+        kept.append(scr.kept + a)
+        rejected.extend((a + i, reason) for i, reason in scr.rejected)
+        if scr.times.shape[0]:
+            last = float(scr.times[-1])
+            seen = np.concatenate([seen, scr.times])[-window:]
+    return (np.concatenate(kept) if kept else np.empty(0, dtype=np.intp)), rejected
+
+
 def _small_batch_clean(ts: list[float], vs: list[float], last_time: float, arrived: Any,
                        max_ahead: float | None, max_behind: float | None) -> bool:
     """Whether a few samples pass every check, tested in plain floats: the fast

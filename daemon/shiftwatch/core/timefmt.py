@@ -10,6 +10,18 @@ import math
 import re
 from datetime import UTC, datetime
 
+#: RFC 3339 section 5.6's date-time ('T' may be 't' or a space, 'Z' may be 'z': its NOTE); an offset's
+#: hour is 00-23 and its minute 00-59 (time-numoffset), which datetime.fromisoformat does not check
+#: for the minute ("+01:60" read as +02:00).  The offset is optional here only so that replay can
+#: read a file's times in its --timezone; :func:`parse_rfc3339` requires it.
+RFC3339 = re.compile(
+    r"(\d{4}-\d{2}-\d{2})[Tt ](\d{2}:\d{2}:\d{2}(?:\.\d+)?)([Zz]|[+-](?:[01]\d|2[0-3]):[0-5]\d)?", re.ASCII)
+#: The times a record can be written at (RFC 3339 has four-digit years): from the year 1 to the
+#: last second of the year 9999, epoch seconds (replay's ``sources.TIME_MIN``, ``TIME_MAX``).
+TIME_MIN, TIME_MAX = -62135596800.0, 253402300799.0
+#: What an RFC 3339 time looks like, for messages about one that is not.
+RFC3339_FORM = ("an RFC 3339 time has a date, a time of day to the second and a UTC offset, as in "
+                "2026-03-02T06:00:00Z or 2026-03-02 07:00:00.5+01:00")
 _DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(ms|s|m|min|h|d|w)?\s*$")
 _UNIT_SECONDS = {"ms": 0.001, "s": 1.0, "m": 60.0, "min": 60.0, "h": 3600.0, "d": 86400.0, "w": 604800.0}
 
@@ -70,6 +82,47 @@ def parse_time(text: str | float) -> float:
     if dt.tzinfo is None:
         dt = dt.replace(tzinfo=UTC)
     return dt.timestamp()
+
+
+def parse_rfc3339(text: str) -> float:
+    """RFC 3339 section 5.6's date-time, with its UTC offset, as epoch seconds.
+
+    The grammar is :data:`RFC3339` (replay reads a file's times by it too); a
+    leap second (``:60``) is the second after ``:59``, as POSIX counts it.  A
+    time without an offset, any other ISO 8601 form, a date that does not exist
+    and a time outside the years 1 to 9999 raise ``ValueError`` saying which.
+
+    Examples
+    --------
+    >>> parse_rfc3339("2026-12-05T06:00:00+01:00"), parse_rfc3339("1990-12-31t23:59:60.25z")
+    (1796446800.0, 662688000.25)
+    >>> parse_rfc3339("2026-12-05T06:00:00")
+    Traceback (most recent call last):
+    ...
+    ValueError: has no UTC offset (add Z for UTC, or the offset such as +01:00)
+    >>> parse_rfc3339("0001-01-01T00:30:00+01:00")
+    Traceback (most recent call last):
+    ...
+    ValueError: is before the year 1
+    """
+    m = RFC3339.fullmatch(text.strip())
+    if m is None:
+        raise ValueError(f"is not an RFC 3339 time ({RFC3339_FORM})")
+    date, clock, offset = m.groups()
+    if offset is None:
+        raise ValueError("has no UTC offset (add Z for UTC, or the offset such as +01:00)")
+    leap = 0.0
+    if clock[6:8] == "60":  # a leap second (RFC 3339 section 5.6): the next second
+        clock, leap = clock[:6] + "59" + clock[8:], 1.0
+    try:
+        t = datetime.fromisoformat(f"{date}T{clock}{'+00:00' if offset in 'Zz' else offset}").timestamp() + leap
+    except (ValueError, OverflowError):
+        raise ValueError("is not a valid date and time") from None
+    if t < TIME_MIN:
+        raise ValueError("is before the year 1")
+    if t > TIME_MAX:
+        raise ValueError("is past the year 9999")
+    return t
 
 
 #: The forms a duration may take, shown in every error about one.
