@@ -19,7 +19,14 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from shiftwatch.core.plans import filter_matches
-from shiftwatch.core.settings import MIN_SIGMA_LOWEST, TEST_NAMES, DetectionSettings
+from shiftwatch.core.settings import (
+    MIN_SIGMA_HIGHEST,
+    MIN_SIGMA_LOWEST,
+    NUMBER_RANGES,
+    TEST_NAMES,
+    WHOLE_RANGES,
+    DetectionSettings,
+)
 from shiftwatch.core.timefmt import parse_duration
 from shiftwatch.decode import MAX_PREFIX_LEVELS, stream_name
 
@@ -220,11 +227,20 @@ def _detection_keys() -> dict[str, Key]:
                                {"anyOf": [dict(DURATION_SCHEMA), {"type": "null"}]})
         elif f.name == "min_sigma":
             keys[f.name] = Key(_optional(_num()), None, _DETECTION_HELP[f.name],
-                               {"type": ["number", "null"], "minimum": MIN_SIGMA_LOWEST})
+                               {"type": ["number", "null"], "minimum": MIN_SIGMA_LOWEST,
+                                "maximum": MIN_SIGMA_HIGHEST})
         elif isinstance(default, int):
-            keys[f.name] = Key(_num(integer=True), default, _DETECTION_HELP[f.name], {"type": "integer"})
+            lo, hi, _why = WHOLE_RANGES[f.name]  # the ranges DetectionSettings enforces
+            keys[f.name] = Key(_num(integer=True), default, _DETECTION_HELP[f.name],
+                               {"type": "integer", "minimum": lo, **({} if hi is None else {"maximum": hi})})
         else:
-            keys[f.name] = Key(_num(), default, _DETECTION_HELP[f.name], {"type": "number"})
+            schema: dict[str, Any] = {"type": "number"}
+            if f.name in NUMBER_RANGES:
+                low, _open, high = NUMBER_RANGES[f.name]
+                schema["exclusiveMinimum"] = low
+                if high is not None:
+                    schema["maximum"] = high
+            keys[f.name] = Key(_num(), default, _DETECTION_HELP[f.name], schema)
     return keys
 
 
