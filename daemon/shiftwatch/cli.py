@@ -702,7 +702,8 @@ def cmd_design(args: argparse.Namespace) -> int:
     if args.json:
         out: dict[str, Any] = {
             "min_shift_sigma": d.min_shift_sigma, "false_alarm_every_s": d.false_alarm_every,
-            "interval_s": d.interval, "arl0": d.arl0, "cusum": {"k": d.k, "h": d.h},
+            "interval_s": d.interval, "arl0": d.arl0, "arl0_asked": d.arl0_asked,
+            "cusum": {"k": d.k, "h": d.h},
             "glr": {"threshold": d.glr_threshold, "window": d.glr_window},
             "multi_cusum": {"ks": list(d.bank_ks), "hs": list(d.bank_hs)},
             "rows": [{"shift_sigma": r.shift, "cusum_arl": r.cusum_arl,
@@ -726,6 +727,12 @@ def cmd_design(args: argparse.Namespace) -> int:
     w(f"Design for a stream sampled every {hd(interval)}, "
       f"at most one false alarm every {hd(every)} on average\n")
     w(f"  in-control average run length (ARL): {d.arl0:,.0f} samples\n")
+    if d.held:
+        from shiftwatch.core.settings import ARL_RANGE
+
+        w(f"  (false_alarm_every / interval asks for an ARL of {d.arl0_asked:,.{0 if d.arl0_asked >= 1 else 3}f} "
+          f"samples; the daemon designs its tests\n   for {ARL_RANGE[0]:,.0f} to {ARL_RANGE[1]:,.0f} samples, "
+          f"the range they are calibrated for, so it runs with {d.arl0:,.0f}:\n   the figures below are for that)\n")
     w(f"  CUSUM for a smallest shift of {d.min_shift_sigma:g} sigma: k = {d.k:.3f}, h = {d.h:.2f}\n")
     w(f"  multi-chart CUSUM (the default test): k = {', '.join(f'{k:.3g}' for k in d.bank_ks)}; "
       f"h's = {', '.join(f'{h:.2f}' for h in d.bank_hs)}\n")
