@@ -713,13 +713,10 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
     if "tls" in bnodes:
         t, _ = ld.section(bnodes["tls"], TLS_KEYS, "broker.tls")
         tls = TlsConfig(**t)
-    url = b["url"]
-    if not url.startswith(("mqtt://", "mqtts://")):
-        raise ld.error("broker.url", f"must start with mqtt:// or mqtts://, got {url!r}", bnodes.get("url"))
-    if "@" in url.split("://", 1)[1].split("/", 1)[0]:
-        # Not echoed: what stands before the @ may be a password.
-        raise ld.error("broker.url", "must not hold a user name or password; use broker.username "
-                       "and broker.password_file or broker.password_env", bnodes.get("url"))
+    try:
+        broker_address(b["url"])
+    except ValueError as exc:
+        raise ld.error("broker.url", str(exc), bnodes.get("url")) from None
     if b["qos"] not in (0, 1):
         raise ld.error("broker.qos", f"must be 0 or 1, got {b['qos']}", bnodes.get("qos"))
     if not 1 <= b["receive_maximum"] <= 65535:
@@ -778,6 +775,74 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
         shard=shard,
         cluster=cluster,
     )
+
+
+#: A host name: letters, digits, '-', '.' and '_' (RFC 1123 names, with the '_' some sites use).
+_HOST_NAME = re.compile(r"[A-Za-z0-9_]([A-Za-z0-9_.-]*[A-Za-z0-9_])?")
+
+
+def broker_address(url: str) -> tuple[str, int, bool]:
+    """(host, port, tls) of a broker URL, ``mqtt://host[:port]`` or ``mqtts://host[:port]``.
+
+    The one reading of ``broker.url``: the configuration is refused with its ``ValueError``
+    and the MQTT client connects where it says.  The authority is ``host[:port]`` (RFC 3986,
+    section 3.2; an IPv6 address in brackets); the port is 1 to 65535 (1883 for mqtt://,
+    8883 for mqtts://, the ports IANA assigns to MQTT); a connection has no path, query or
+    fragment, and the user name and password have keys of their own.
+
+    Examples
+    --------
+    >>> broker_address("mqtt://127.0.0.1:1883"), broker_address("mqtts://[::1]")
+    (('127.0.0.1', 1883, False), ('::1', 8883, True))
+    >>> broker_address("mqtt://h:0")
+    Traceback (most recent call last):
+    ...
+    ValueError: port 0 is outside 1 to 65535 (mqtt://host:port), in 'mqtt://h:0'
+    """
+    import ipaddress
+
+    form = "(mqtt://host:port)"
+    scheme, sep, rest = url.partition("://")
+    if not sep or scheme not in ("mqtt", "mqtts"):
+        raise ValueError(f"must start with mqtt:// or mqtts://, got {url!r}")
+    m = re.search(r"[/?#]", rest)
+    authority, after = (rest[:m.start()], rest[m.start():]) if m else (rest, "")
+    if "@" in authority:
+        # Not echoed: what stands before the @ may be a password.
+        raise ValueError("must not hold a user name or password; use broker.username "
+                         "and broker.password_file or broker.password_env")
+    for mark, what in (("#", "fragment"), ("?", "query")):
+        if mark in after:
+            raise ValueError(f"must not have a {what} ({mark}...): an MQTT connection has only a host "
+                             f"and a port {form}, in {url!r}")
+    if after not in ("", "/"):
+        raise ValueError(f"must not have a path ({after!r}): an MQTT connection has only a host and a "
+                         f"port {form}, in {url!r}")
+    if authority.startswith("["):
+        host, close, port_part = authority[1:].partition("]")
+        try:
+            ipaddress.IPv6Address(host)
+        except ValueError:
+            raise ValueError(f"'[{host}]' is not an IPv6 address {form}, in {url!r}") from None
+        if not close or (port_part and not port_part.startswith(":")):
+            raise ValueError(f"an IPv6 address must be in brackets, then :port {form}, in {url!r}")
+        port_text = port_part[1:] if port_part else None
+    else:
+        host, colon, port_text_or = authority.partition(":")
+        port_text = port_text_or if colon else None
+        if not host:
+            raise ValueError(f"has no host {form}, in {url!r}")
+        if not _HOST_NAME.fullmatch(host):
+            raise ValueError(f"{host!r} is not a host name or address {form}, in {url!r}")
+    tls = scheme == "mqtts"
+    if port_text is None:
+        return host, 8883 if tls else 1883, tls
+    if not port_text.isascii() or not port_text.isdigit():
+        raise ValueError(f"port {port_text!r} is not a number {form}, in {url!r}")
+    port = int(port_text)
+    if not 1 <= port <= 65535:
+        raise ValueError(f"port {port} is outside 1 to 65535 {form}, in {url!r}")
+    return host, port, tls
 
 
 def for_shard(cfg: Config, number: int | None = None) -> Config:

@@ -98,3 +98,18 @@ def test_an_unreadable_password_file_and_a_wrong_password_are_problems(cli, tmp_
         assert f"ok: broker.password_file {right}: readable" in res.stdout
     finally:
         b.stop()
+
+
+@pytest.mark.parametrize("url", ["mqtt://127.0.0.1:99999", "mqtt://127.0.0.1:0", "mqtt://:1883",
+                                 "mqtt://127.0.0.1:abc", "mqtt://[zz]:1"])
+def test_check_and_run_refuse_a_broker_url_without_a_traceback(cli, tmp_path: Path, url: str) -> None:
+    """The tester's URLs passed validation, then check, check --no-network and run ended
+    in ValueError or BrokerError tracebacks (or, for port 0, connected to 1883)."""
+    cfg = write(tmp_path, f"streams: [{{topic: a/b}}]\nbroker: {{url: \"{url}\"}}\n"
+                f"metrics: {{listen: '127.0.0.1:0'}}\nstate: {{dir: '{tmp_path}'}}\n")
+    for args in (["check", "--config", str(cfg)], ["check", "--config", str(cfg), "--no-network"],
+                 ["run", "--config", str(cfg)]):
+        res = cli(*args)
+        assert res.returncode == 2, (args, res.stdout, res.stderr)
+        assert f"{cfg}:2: broker.url: " in res.stderr, res.stderr
+        assert "Traceback" not in res.stderr and "accepted a connection" not in res.stdout

@@ -255,3 +255,41 @@ def test_the_schema_holds_the_limits_check_enforces() -> None:
     assert not any(pattern.match(t) for t in ("7", "60", "soon"))
     behind = det["max_time_behind"]["anyOf"]
     assert {"type": "null"} in behind and any(re.compile(b["pattern"]).match("2d") for b in behind if "pattern" in b)
+
+
+# Broker URLs: the authority is host[:port] (RFC 3986, section 3.2); a port is decimal digits
+# and TCP ports run 1 to 65535 (RFC 793; port 0 is reserved and means "any" to the socket
+# API, so a client that connects to it reaches the default port instead: the tester's check
+# said "accepted a connection" for mqtt://127.0.0.1:0, from the broker on 1883).  An MQTT
+# connection has no path, query or fragment (MQTT 3.1.1 and 5.0 name host and port only).
+@pytest.mark.parametrize("url, why", [
+    ("mqtt://127.0.0.1:99999", "port 99999 is outside 1 to 65535"),
+    ("mqtt://127.0.0.1:0", "port 0 is outside 1 to 65535"),
+    ("mqtt://127.0.0.1:abc", "port 'abc' is not a number"),
+    ("mqtt://:1883", "has no host"),
+    ("mqtt://[zz]:1", "'[zz]' is not an IPv6 address"),
+    ("mqtt://h:1/path", "must not have a path"),
+    ("mqtt://h:1?x=1", "must not have a query"),
+    ("mqtt://h:1#frag", "must not have a fragment"),
+    ("mqtt://h:1:2", "port '1:2' is not a number"),
+    ("mqtt://bad host:1", "'bad host' is not a host name"),
+])
+def test_a_broker_url_the_client_cannot_use_is_refused_at_load(url: str, why: str) -> None:
+    msg = error_of(f'streams: [{{topic: a/b}}]\nbroker:\n  url: "{url}"\n')
+    assert msg.startswith("plant.yaml:3: broker.url: "), msg
+    assert why in msg, msg
+
+
+@pytest.mark.parametrize("url, host, port, tls", [
+    ("mqtt://127.0.0.1:1883", "127.0.0.1", 1883, False),
+    ("mqtt://broker.brackenfield.example", "broker.brackenfield.example", 1883, False),  # MQTT's port (IANA)
+    ("mqtts://broker.brackenfield.example", "broker.brackenfield.example", 8883, True),  # MQTT over TLS (IANA)
+    ("mqtt://[::1]:1884", "::1", 1884, False),  # RFC 3986, 3.2.2: an IPv6 literal in brackets
+    ("mqtt://h:65535/", "h", 65535, False),  # an empty path is no path
+])
+def test_a_good_broker_url_gives_the_host_and_port_the_client_connects_to(url: str, host: str, port: int,
+                                                                          tls: bool) -> None:
+    from shiftwatch.mqtt import parse_url
+
+    cfg = parse_config(f'streams: [{{topic: a/b}}]\nbroker: {{url: "{url}"}}\n', file="plant.yaml")
+    assert parse_url(cfg.broker.url) == (host, port, tls)
