@@ -1050,10 +1050,14 @@ def cmd_demo(args: argparse.Namespace) -> int:
     except ValueError as exc:
         _err(str(exc) if str(exc).startswith("--") else f"--time-zone: {exc}")
         return EXIT_USAGE
-    from shiftwatch.demo import run_demo
+    from shiftwatch.demo import DemoError, run_demo
 
-    return run_demo(duration, metrics_listen=args.metrics_listen, use_embedded=args.embedded_broker,
-                    time_zone=tz)
+    try:
+        return run_demo(duration, metrics_listen=args.metrics_listen, use_embedded=args.embedded_broker,
+                        time_zone=tz)
+    except DemoError as exc:
+        _err(str(exc))
+        return EXIT_USAGE
 
 
 # ------------------------------------------------------------------- main

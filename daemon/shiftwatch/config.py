@@ -749,10 +749,10 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
     if alerts["qos"] not in (0, 1, 2):
         raise ld.error("alerts.qos", f"must be 0, 1 or 2, got {alerts['qos']}", anodes.get("qos"))
     metrics, mnodes = ld.section(nodes.get("metrics"), METRICS_KEYS, "metrics")
-    _host, sep, port = metrics["listen"].rpartition(":")
-    if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:
-        raise ld.error("metrics.listen", f"must be HOST:PORT (e.g. \"127.0.0.1:9650\", a port of 0 to "
-                       f"65535), got {metrics['listen']!r}", mnodes.get("listen"))
+    try:
+        listen_address(metrics["listen"])
+    except ValueError as exc:
+        raise ld.error("metrics.listen", str(exc), mnodes.get("listen")) from None
     metrics["tls"] = None
     if "tls" in mnodes:
         mt, _ = ld.section(mnodes["tls"], METRICS_TLS_KEYS, "metrics.tls")
@@ -775,6 +775,43 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
         shard=shard,
         cluster=cluster,
     )
+
+
+#: What ``check``, ``run`` and a reload (SIGHUP) say of a file without stream entries, after
+#: its name: a daemon started with it would watch nothing, and a reload to it would drop every
+#: stream and its state at once (much more likely a file caught half-written than a wish).
+NO_STREAMS = ("has no stream entries: list the topics to watch under streams: "
+              "(to stop watching every stream, stop the daemon)")
+
+
+def listen_address(listen: str) -> tuple[str, int]:
+    """(host, port) of ``metrics.listen`` (and ``demo --metrics-listen``): ``HOST:PORT``, an
+    IPv6 address in brackets (``[::1]:9650``), a port of 0 (any free one) to 65535; the host
+    as written, brackets and all, "" for none (loopback).  ``ValueError`` says what is wrong.
+
+    Examples
+    --------
+    >>> listen_address("127.0.0.1:9650"), listen_address("[::1]:0")
+    (('127.0.0.1', 9650), ('[::1]', 0))
+    >>> listen_address("foo")
+    Traceback (most recent call last):
+    ...
+    ValueError: must be HOST:PORT (e.g. "127.0.0.1:9650", a port of 0 to 65535), got 'foo'
+    """
+    import ipaddress
+
+    host, sep, port = listen.rpartition(":")
+    ok = bool(sep) and port.isascii() and port.isdigit() and 0 <= int(port) <= 65535
+    if ok and host.startswith("["):
+        try:
+            ok = host.endswith("]") and bool(ipaddress.IPv6Address(host[1:-1]))
+        except ValueError:
+            ok = False
+    elif ok:
+        ok = host == "" or bool(_HOST_NAME.fullmatch(host))
+    if not ok:
+        raise ValueError(f"must be HOST:PORT (e.g. \"127.0.0.1:9650\", a port of 0 to 65535), got {listen!r}")
+    return host, int(port)
 
 
 #: A host name: letters, digits, '-', '.' and '_' (RFC 1123 names, with the '_' some sites use).
