@@ -885,13 +885,16 @@ def setup_logging(fmt: str, level: int = logging.INFO, tz: str = "UTC") -> loggi
 
 
 def cmd_run(args: argparse.Namespace) -> int:
-    from shiftwatch.config import ConfigError, for_shard, load_config
+    from shiftwatch.config import NO_STREAMS, ConfigError, for_shard, load_config
 
     log = setup_logging(args.log_format)
     try:
         cfg = for_shard(load_config(args.config), args.shard)
     except ConfigError as exc:
         log.error("%s", exc)
+        return EXIT_USAGE
+    if not cfg.streams:  # refused as a reload refuses it: a daemon that would watch nothing
+        log.error("%s %s", args.config, NO_STREAMS)
         return EXIT_USAGE
     log = setup_logging(args.log_format, tz=cfg.display.time_zone)
     from shiftwatch.fsutil import StateDirInUse, StateDirLock
@@ -979,13 +982,16 @@ def cmd_check(args: argparse.Namespace) -> int:
 
     import yaml
 
-    from shiftwatch.config import ConfigError, load_config
+    from shiftwatch.config import NO_STREAMS, ConfigError, load_config
     from shiftwatch.preflight import run_probes
 
     try:
         cfg = load_config(args.config)
     except ConfigError as exc:
         _err(str(exc))
+        return EXIT_USAGE
+    if not cfg.streams:  # as run and a reload refuse it
+        _err(f"{args.config} {NO_STREAMS}")
         return EXIT_USAGE
     d = dataclasses.asdict(cfg)
     d.pop("source", None)

@@ -630,8 +630,13 @@ class _Loader:
         return ConfigError(path, message, file=self.file, line=line)
 
     def plain(self, node: yaml.Node) -> Any:
-        # safe_load semantics for a sub-tree.
-        return self.y.safe_load(self.y.serialize(node))
+        # safe_load semantics for a sub-tree, constructed from the node itself (serializing it
+        # and reading it back failed on an empty value such as "streams:" with a YAML error).
+        loader = self.y.SafeLoader("")
+        try:
+            return loader.construct_document(node)
+        finally:
+            loader.dispose()
 
     def section(self, node: yaml.Node | None, keys: dict[str, Key], path: str) -> tuple[dict[str, Any], dict[str, yaml.Node]]:
         out: dict[str, Any] = {}

@@ -113,3 +113,28 @@ def test_check_and_run_refuse_a_broker_url_without_a_traceback(cli, tmp_path: Pa
         assert res.returncode == 2, (args, res.stdout, res.stderr)
         assert f"{cfg}:2: broker.url: " in res.stderr, res.stderr
         assert "Traceback" not in res.stderr and "accepted a connection" not in res.stdout
+
+
+@pytest.mark.parametrize("text", ["", "# every line commented out\n", "streams: []\n",
+                                  "streams:\ndetection: {min_shift_sigma: 1.5}\n"])
+def test_check_and_run_refuse_a_file_without_streams_as_a_reload_does(cli, tmp_path: Path, text: str) -> None:
+    """check called these valid and probed the default broker, run then watched nothing,
+    and a SIGHUP reload refused the same files (test_hardening.py): all three say the same."""
+    from shiftwatch.config import NO_STREAMS
+
+    cfg = write(tmp_path, text)
+    for args in (["check", "--config", str(cfg)], ["check", "--config", str(cfg), "--no-network"],
+                 ["run", "--config", str(cfg)]):
+        res = cli(*args)
+        assert res.returncode == 2, (args, res.stdout, res.stderr)
+        assert f"{cfg} {NO_STREAMS}" in res.stderr, res.stderr
+        assert "broker" not in res.stdout and "valid" not in res.stdout
+        assert "Traceback" not in res.stderr
+
+
+def test_check_refuses_dev_null(cli) -> None:
+    from shiftwatch.config import NO_STREAMS
+
+    res = cli("check", "--config", "/dev/null", "--no-network")
+    assert res.returncode == 2, res.stdout + res.stderr
+    assert f"/dev/null {NO_STREAMS}" in res.stderr
