@@ -102,6 +102,7 @@ def _num(positive: bool = True, integer: bool = False, minimum: float | None = N
             raise ValueError(f"must be at least {minimum}, got {v!r}")
         return int(v) if integer else float(v)
 
+    check.numeric = True  # type: ignore[attr-defined]  # see _Loader.section: 1e-12 is a number
     return check
 
 
@@ -180,7 +181,21 @@ def _optional(check: Callable[[Any], Any]) -> Callable[[Any], Any]:
     def inner(v: Any) -> Any:
         return None if v is None else check(v)
 
+    inner.numeric = getattr(check, "numeric", False)  # type: ignore[attr-defined]
     return inner
+
+
+#: A decimal float as YAML 1.2's core schema reads it (YAML 1.2.2, section 10.3.2).  PyYAML
+#: follows YAML 1.1, whose floats need a dot and a signed exponent: ``1e-12`` is text to it.
+_YAML12_FLOAT = re.compile(r"[-+]?(\.[0-9]+|[0-9]+(\.[0-9]*)?)([eE][-+]?[0-9]+)?")
+
+
+def _number_text(value: Any, node: Any) -> Any:
+    """A plain (unquoted) scalar that YAML 1.1 left as text but that spells a decimal float,
+    as that float; anything else as it is (quoted text stays text on purpose)."""
+    if isinstance(value, str) and getattr(node, "style", "'") is None and _YAML12_FLOAT.fullmatch(value):
+        return float(value)
+    return value
 
 
 _DETECTION_HELP = {
@@ -658,7 +673,10 @@ class _Loader:
                 raise self.error(kpath, "key appears twice", knode)
             nodes[key] = vnode
             try:
-                out[key] = keys[key].check(self.plain(vnode))
+                value = self.plain(vnode)
+                if getattr(keys[key].check, "numeric", False):
+                    value = _number_text(value, vnode)
+                out[key] = keys[key].check(value)
             except ValueError as exc:
                 raise self.error(kpath, str(exc), vnode) from None
         for key, spec in keys.items():

@@ -293,3 +293,26 @@ def test_a_good_broker_url_gives_the_host_and_port_the_client_connects_to(url: s
 
     cfg = parse_config(f'streams: [{{topic: a/b}}]\nbroker: {{url: "{url}"}}\n', file="plant.yaml")
     assert parse_url(cfg.broker.url) == (host, port, tls)
+
+
+# YAML 1.1, which PyYAML implements, reads a float only with a dot: 1e-12 and 1e0 are text
+# to it, while YAML 1.2's core schema (section 10.3.2 of the 1.2.2 specification) reads
+# them as floats.  A numeric key takes such a plain scalar as the number it spells; PyYAML
+# itself is the reference for which forms it leaves as text.
+@pytest.mark.parametrize("form", ["1e-12", "1E-12", "5e-3", "+1e0", "1e0", "2e+0", "1.5e0"])
+def test_a_float_yaml_1_1_reads_as_text_is_taken_as_the_number_it_spells(form: str) -> None:
+    import yaml
+
+    key = "min_sigma" if form.lstrip("+").startswith(("1e-", "1E-", "5e-")) else "min_shift_sigma"
+    spec = parse_config(f"streams: [{{topic: a/b}}]\ndetection: {{{key}: {form}}}\n", file="plant.yaml")
+    got = getattr(spec.detection, key)
+    assert got == float(form)  # Python's float() as the reference for the value
+    if "." not in form:
+        assert isinstance(yaml.safe_load(form), str)  # text to PyYAML: the case this covers
+
+
+def test_a_quoted_number_or_a_number_word_stays_refused() -> None:
+    # Quoted, it is text on purpose; nan, 1_0e0 and 1e are not decimal floats of YAML 1.2.
+    for form in ('"1e-12"', "nan", "1_0e0", "1e", "e5", "1e-12x"):
+        msg = error_of(f"streams: [{{topic: a/b}}]\ndetection: {{min_sigma: {form}}}\n")
+        assert msg.startswith("plant.yaml:2: detection.min_sigma: "), msg
