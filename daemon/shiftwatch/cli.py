@@ -304,7 +304,21 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
     finally:
         if bar is not None:
             bar.close()
+    _note_unmatched(cfg, result.streams)
     return _replay_output(args, report, result, unit_for, sources, shown)
+
+
+def _note_unmatched(cfg: Any, streams: Any) -> None:
+    """Say how many replayed streams no stream entry of the configuration matched (historian
+    tags are not MQTT topics): they got the detection section's settings, which is easy to miss."""
+    if cfg is None or not cfg.streams:
+        return
+    missed = sorted(name for name in streams if cfg.stream_for(name) is None)
+    if missed:
+        shown = ", ".join(missed[:3]) + (", ..." if len(missed) > 3 else "")
+        _err(f"note: {len(missed)} of {len(streams)} stream{'s' if len(streams) != 1 else ''} matched no "
+             f"stream entry of {cfg.source} ({shown}): the settings of its detection section applied "
+             "to them")
 
 
 def _replay_on_dask(args: argparse.Namespace, cfg: Any, report: Any, settings_for: Any, unit_for: Any,
@@ -324,6 +338,7 @@ def _replay_on_dask(args: argparse.Namespace, cfg: Any, report: Any, settings_fo
     except (ClusterError, CsvFormatError) as exc:
         _err(str(exc))
         return EXIT_USAGE
+    _note_unmatched(cfg, result.streams)
     return _replay_output(args, report, result, unit_for, sources, shown)
 
 
@@ -953,6 +968,12 @@ def config_warnings(path: str, cfg: Any) -> list[str]:
         if mode & (stat.S_IRWXG | stat.S_IRWXO):
             out.append(f"{label} {fpath} is readable by other users "
                        f"(mode {stat.S_IMODE(mode):04o}){why}; chmod 600 it")
+    from shiftwatch.config import _ordinal, shadowed_entries
+
+    for j, i in shadowed_entries(cfg):
+        out.append(f"the {_ordinal(j + 1)} stream (streams[{j}], topic {cfg.streams[j].topic!r}) can never "
+                   f"apply: the {_ordinal(i + 1)} stream's filter {cfg.streams[i].topic!r} matches every "
+                   "topic it matches, and the first entry that matches a topic decides")
     host = parse_listen(m.listen)[0]
     if m.tls is None and host not in ("127.0.0.1", "::1", "localhost"):
         out.append(f"metrics.listen {m.listen} is reachable from other hosts and metrics.tls "

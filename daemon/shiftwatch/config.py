@@ -630,6 +630,42 @@ def topic_matches(pattern: str, topic: str) -> bool:
     return filter_matches(pattern, topic)
 
 
+def filter_covers(first: str, second: str) -> bool:
+    """Whether every topic the filter ``second`` matches, ``first`` matches too (MQTT 3.1.1
+    and 5.0, section 4.7: ``+`` is one level, ``#`` the parent and every level below it, and
+    a wildcard at the first level matches no topic that starts with ``$``).
+
+    Examples
+    --------
+    >>> filter_covers("plant/#", "plant/+/fill"), filter_covers("plant/+/fill", "plant/#")
+    (True, False)
+    """
+    a, b = first.split("/"), second.split("/")
+    for i, part in enumerate(a):
+        if part in ("#", "+") and i == 0 and b[0].startswith("$"):
+            return False
+        if part == "#":
+            return True
+        if i >= len(b) or b[i] == "#":
+            return False
+        if part != "+" and part != b[i]:
+            return False
+    return len(a) == len(b)
+
+
+def shadowed_entries(cfg: Config) -> list[tuple[int, int]]:
+    """(entry, earlier entry) for every stream entry that can never apply: the daemon gives a
+    message to the first entry whose filter matches its topic, and an earlier filter matches
+    every topic this one does."""
+    out = []
+    for j, later in enumerate(cfg.streams):
+        i = next((i for i, earlier in enumerate(cfg.streams[:j])
+                  if filter_covers(earlier.topic, later.topic)), None)
+        if i is not None:
+            out.append((j, i))
+    return out
+
+
 # --------------------------------------------------------------- validation
 class _Loader:
     """Walks the YAML node tree so every value keeps its line number."""

@@ -316,3 +316,43 @@ def test_a_quoted_number_or_a_number_word_stays_refused() -> None:
     for form in ('"1e-12"', "nan", "1_0e0", "1e", "e5", "1e-12x"):
         msg = error_of(f"streams: [{{topic: a/b}}]\ndetection: {{min_sigma: {form}}}\n")
         assert msg.startswith("plant.yaml:2: detection.min_sigma: "), msg
+
+
+# Filter subsumption: every topic the second filter matches, the first matches too (MQTT
+# 3.1.1, section 4.7 and MQTT 5.0, section 4.7: '+' one level, '#' the parent and every
+# level below it ("sport/#" matches "sport"), and a wildcard at the first level matches no
+# topic that starts with '$').
+@pytest.mark.parametrize("first, second, covers", [
+    ("#", "plant/line2/+/fill", True),
+    ("plant/#", "plant", True),  # 4.7.1.2: "sport/#" also matches "sport"
+    ("plant/+/#", "plant", False),
+    ("plant/+/fill", "plant/line2/fill", True),
+    ("plant/+/fill", "plant/+/fill", True),
+    ("plant/line2/fill", "plant/+/fill", False),
+    ("plant/+", "plant/#", False),
+    ("plant/+/+", "plant/+", False),
+    ("+/+", "plant/line2", True),
+    ("#", "$SYS/broker/load", False),  # 4.7.2: wildcards at the first level skip $ topics
+    ("+/broker/load", "$SYS/broker/load", False),
+    ("$SYS/#", "$SYS/broker/load", True),
+])
+def test_filter_subsumption_follows_the_mqtt_matching_rules(first: str, second: str, covers: bool) -> None:
+    from shiftwatch.config import filter_covers
+
+    assert filter_covers(first, second) is covers
+    # Cross-checked with the matcher the daemon uses, on the topics the second filter names
+    # with its wildcards filled in (a sample, not a proof).
+    if covers:
+        for topic in (second.replace("/#", "/x/y").replace("#", "x").replace("+", "x"),
+                      second.replace("/#", "").replace("+", "q")):
+            if topic and topic_matches(second, topic):
+                assert topic_matches(first, topic), topic
+
+
+def test_entries_an_earlier_entry_shadows_are_named() -> None:
+    from shiftwatch.config import shadowed_entries
+
+    cfg = parse_config("streams:\n  - topic: brackenfield/line2/#\n  - topic: brackenfield/line2/oven/+\n"
+                       "  - topic: brackenfield/line3/+\n  - topic: brackenfield/+/capper\n",
+                       file="plant.yaml")
+    assert shadowed_entries(cfg) == [(1, 0)]
