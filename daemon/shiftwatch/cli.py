@@ -745,7 +745,8 @@ def cmd_design(args: argparse.Namespace) -> int:
     if d.held:
         from shiftwatch.core.settings import ARL_RANGE
 
-        w(f"  (false_alarm_every / interval asks for an ARL of {d.arl0_asked:,.{0 if d.arl0_asked >= 1 else 3}f} "
+        asked = f"{d.arl0_asked:,.0f}" if d.arl0_asked >= 1 else f"{d.arl0_asked:.3g}"
+        w(f"  (false_alarm_every / interval asks for an ARL of {asked} "
           f"samples; the daemon designs its tests\n   for {ARL_RANGE[0]:,.0f} to {ARL_RANGE[1]:,.0f} samples, "
           f"the range they are calibrated for, so it runs with {d.arl0:,.0f}:\n   the figures below are for that)\n")
     w(f"  CUSUM for a smallest shift of {d.min_shift_sigma:g} sigma: k = {d.k:.3f}, h = {d.h:.2f}\n")
