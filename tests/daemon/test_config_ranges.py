@@ -25,6 +25,7 @@ from shiftwatch.core.settings import (
     MIN_SIGMA_HIGHEST,
     MIN_SIGMA_LOWEST,
     SPIKE_SIGMA_MAX,
+    TEST_NAMES,
     WINDOW_SAMPLES_MAX,
     DetectionSettings,
 )
@@ -84,7 +85,7 @@ EDGES: list[dict[str, object]] = [
 ]
 
 
-@pytest.mark.parametrize("test", ["glr", "multi_cusum", "cusum"])
+@pytest.mark.parametrize("test", TEST_NAMES)
 @pytest.mark.parametrize("edge", EDGES, ids=lambda e: ",".join(f"{k}={v}" for k, v in e.items()))
 def test_the_engine_runs_at_the_edges_the_configuration_accepts(test: str, edge: dict[str, object]) -> None:
     # Floats written with a dot: YAML 1.1 reads 1e-100 without one as text (see test_config.py).
