@@ -332,7 +332,21 @@ def _replay(args: argparse.Namespace, cfg: Any, report: Any) -> int:
     finally:
         if bar is not None:
             bar.close()
+    _note_unmatched(cfg, result.streams)
     return _replay_output(args, report, result, unit_for, sources, shown)
+
+
+def _note_unmatched(cfg: Any, streams: Any) -> None:
+    """Say how many replayed streams no stream entry of the configuration matched (historian
+    tags are not MQTT topics): they got the detection section's settings, which is easy to miss."""
+    if cfg is None or not cfg.streams:
+        return
+    missed = sorted(name for name in streams if cfg.stream_for(name) is None)
+    if missed:
+        shown = ", ".join(missed[:3]) + (", ..." if len(missed) > 3 else "")
+        _err(f"note: {len(missed)} of {len(streams)} stream{'s' if len(streams) != 1 else ''} matched no "
+             f"stream entry of {cfg.source} ({shown}): the settings of its detection section applied "
+             "to them")
 
 
 def _replay_on_dask(args: argparse.Namespace, cfg: Any, report: Any, settings_for: Any, unit_for: Any,
@@ -352,6 +366,7 @@ def _replay_on_dask(args: argparse.Namespace, cfg: Any, report: Any, settings_fo
     except (ClusterError, CsvFormatError) as exc:
         _err(str(exc))
         return EXIT_USAGE
+    _note_unmatched(cfg, result.streams)
     return _replay_output(args, report, result, unit_for, sources, shown)
 
 
@@ -746,7 +761,8 @@ def cmd_design(args: argparse.Namespace) -> int:
     if args.json:
         out: dict[str, Any] = {
             "min_shift_sigma": d.min_shift_sigma, "false_alarm_every_s": d.false_alarm_every,
-            "interval_s": d.interval, "arl0": d.arl0, "cusum": {"k": d.k, "h": d.h},
+            "interval_s": d.interval, "arl0": d.arl0, "arl0_asked": d.arl0_asked,
+            "cusum": {"k": d.k, "h": d.h},
             "glr": {"threshold": d.glr_threshold, "window": d.glr_window},
             "multi_cusum": {"ks": list(d.bank_ks), "hs": list(d.bank_hs)},
             "rows": [{"shift_sigma": r.shift, "cusum_arl": r.cusum_arl,
@@ -770,6 +786,13 @@ def cmd_design(args: argparse.Namespace) -> int:
     w(f"Design for a stream sampled every {hd(interval)}, "
       f"at most one false alarm every {hd(every)} on average\n")
     w(f"  in-control average run length (ARL): {d.arl0:,.0f} samples\n")
+    if d.held:
+        from shiftwatch.core.settings import ARL_RANGE
+
+        asked = f"{d.arl0_asked:,.0f}" if d.arl0_asked >= 1 else f"{d.arl0_asked:.3g}"
+        w(f"  (false_alarm_every / interval asks for an ARL of {asked} "
+          f"samples; the daemon designs its tests\n   for {ARL_RANGE[0]:,.0f} to {ARL_RANGE[1]:,.0f} samples, "
+          f"the range they are calibrated for, so it runs with {d.arl0:,.0f}:\n   the figures below are for that)\n")
     w(f"  CUSUM for a smallest shift of {d.min_shift_sigma:g} sigma: k = {d.k:.3f}, h = {d.h:.2f}\n")
     w(f"  multi-chart CUSUM (the default test): k = {', '.join(f'{k:.3g}' for k in d.bank_ks)}; "
       f"h's = {', '.join(f'{h:.2f}' for h in d.bank_hs)}\n")
@@ -922,13 +945,16 @@ def setup_logging(fmt: str, level: int = logging.INFO, tz: str = "UTC") -> loggi
 
 
 def cmd_run(args: argparse.Namespace) -> int:
-    from shiftwatch.config import ConfigError, for_shard, load_config
+    from shiftwatch.config import NO_STREAMS, ConfigError, for_shard, load_config
 
     log = setup_logging(args.log_format)
     try:
         cfg = for_shard(load_config(args.config), args.shard)
     except ConfigError as exc:
         log.error("%s", exc)
+        return EXIT_USAGE
+    if not cfg.streams:  # refused as a reload refuses it: a daemon that would watch nothing
+        log.error("%s %s", args.config, NO_STREAMS)
         return EXIT_USAGE
     log = setup_logging(args.log_format, tz=cfg.display.time_zone)
     from shiftwatch.fsutil import StateDirInUse, StateDirLock
@@ -987,6 +1013,12 @@ def config_warnings(path: str, cfg: Any) -> list[str]:
         if mode & (stat.S_IRWXG | stat.S_IRWXO):
             out.append(f"{label} {fpath} is readable by other users "
                        f"(mode {stat.S_IMODE(mode):04o}){why}; chmod 600 it")
+    from shiftwatch.config import _ordinal, shadowed_entries
+
+    for j, i in shadowed_entries(cfg):
+        out.append(f"the {_ordinal(j + 1)} stream (streams[{j}], topic {cfg.streams[j].topic!r}) can never "
+                   f"apply: the {_ordinal(i + 1)} stream's filter {cfg.streams[i].topic!r} matches every "
+                   "topic it matches, and the first entry that matches a topic decides")
     host = parse_listen(m.listen)[0]
     if m.tls is None and host not in ("127.0.0.1", "::1", "localhost"):
         out.append(f"metrics.listen {m.listen} is reachable from other hosts and metrics.tls "
@@ -1016,13 +1048,16 @@ def cmd_check(args: argparse.Namespace) -> int:
 
     import yaml
 
-    from shiftwatch.config import ConfigError, load_config
+    from shiftwatch.config import NO_STREAMS, ConfigError, load_config
     from shiftwatch.preflight import run_probes
 
     try:
         cfg = load_config(args.config)
     except ConfigError as exc:
         _err(str(exc))
+        return EXIT_USAGE
+    if not cfg.streams:  # as run and a reload refuse it
+        _err(f"{args.config} {NO_STREAMS}")
         return EXIT_USAGE
     d = dataclasses.asdict(cfg)
     d.pop("source", None)
@@ -1087,10 +1122,14 @@ def cmd_demo(args: argparse.Namespace) -> int:
     except ValueError as exc:
         _err(str(exc) if str(exc).startswith("--") else f"--time-zone: {exc}")
         return EXIT_USAGE
-    from shiftwatch.demo import run_demo
+    from shiftwatch.demo import DemoError, run_demo
 
-    return run_demo(duration, metrics_listen=args.metrics_listen, use_embedded=args.embedded_broker,
-                    time_zone=tz)
+    try:
+        return run_demo(duration, metrics_listen=args.metrics_listen, use_embedded=args.embedded_broker,
+                        time_zone=tz)
+    except DemoError as exc:
+        _err(str(exc))
+        return EXIT_USAGE
 
 
 # ------------------------------------------------------------------- main

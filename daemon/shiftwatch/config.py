@@ -19,7 +19,14 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from shiftwatch.core.plans import filter_matches
-from shiftwatch.core.settings import MIN_SIGMA_LOWEST, TEST_NAMES, DetectionSettings
+from shiftwatch.core.settings import (
+    MIN_SIGMA_HIGHEST,
+    MIN_SIGMA_LOWEST,
+    NUMBER_RANGES,
+    TEST_NAMES,
+    WHOLE_RANGES,
+    DetectionSettings,
+)
 from shiftwatch.core.timefmt import parse_duration
 from shiftwatch.decode import MAX_PREFIX_LEVELS, stream_name
 
@@ -95,6 +102,7 @@ def _num(positive: bool = True, integer: bool = False, minimum: float | None = N
             raise ValueError(f"must be at least {minimum}, got {v!r}")
         return int(v) if integer else float(v)
 
+    check.numeric = True  # type: ignore[attr-defined]  # see _Loader.section: 1e-12 is a number
     return check
 
 
@@ -173,7 +181,21 @@ def _optional(check: Callable[[Any], Any]) -> Callable[[Any], Any]:
     def inner(v: Any) -> Any:
         return None if v is None else check(v)
 
+    inner.numeric = getattr(check, "numeric", False)  # type: ignore[attr-defined]
     return inner
+
+
+#: A decimal float as YAML 1.2's core schema reads it (YAML 1.2.2, section 10.3.2).  PyYAML
+#: follows YAML 1.1, whose floats need a dot and a signed exponent: ``1e-12`` is text to it.
+_YAML12_FLOAT = re.compile(r"[-+]?(\.[0-9]+|[0-9]+(\.[0-9]*)?)([eE][-+]?[0-9]+)?")
+
+
+def _number_text(value: Any, node: Any) -> Any:
+    """A plain (unquoted) scalar that YAML 1.1 left as text but that spells a decimal float,
+    as that float; anything else as it is (quoted text stays text on purpose)."""
+    if isinstance(value, str) and getattr(node, "style", "'") is None and _YAML12_FLOAT.fullmatch(value):
+        return float(value)
+    return value
 
 
 _DETECTION_HELP = {
@@ -220,11 +242,20 @@ def _detection_keys() -> dict[str, Key]:
                                {"anyOf": [dict(DURATION_SCHEMA), {"type": "null"}]})
         elif f.name == "min_sigma":
             keys[f.name] = Key(_optional(_num()), None, _DETECTION_HELP[f.name],
-                               {"type": ["number", "null"], "minimum": MIN_SIGMA_LOWEST})
+                               {"type": ["number", "null"], "minimum": MIN_SIGMA_LOWEST,
+                                "maximum": MIN_SIGMA_HIGHEST})
         elif isinstance(default, int):
-            keys[f.name] = Key(_num(integer=True), default, _DETECTION_HELP[f.name], {"type": "integer"})
+            lo, hi, _why = WHOLE_RANGES[f.name]  # the ranges DetectionSettings enforces
+            keys[f.name] = Key(_num(integer=True), default, _DETECTION_HELP[f.name],
+                               {"type": "integer", "minimum": lo, **({} if hi is None else {"maximum": hi})})
         else:
-            keys[f.name] = Key(_num(), default, _DETECTION_HELP[f.name], {"type": "number"})
+            schema: dict[str, Any] = {"type": "number"}
+            if f.name in NUMBER_RANGES:
+                low, _open, high = NUMBER_RANGES[f.name]
+                schema["exclusiveMinimum"] = low
+                if high is not None:
+                    schema["maximum"] = high
+            keys[f.name] = Key(_num(), default, _DETECTION_HELP[f.name], schema)
     return keys
 
 
@@ -599,6 +630,42 @@ def topic_matches(pattern: str, topic: str) -> bool:
     return filter_matches(pattern, topic)
 
 
+def filter_covers(first: str, second: str) -> bool:
+    """Whether every topic the filter ``second`` matches, ``first`` matches too (MQTT 3.1.1
+    and 5.0, section 4.7: ``+`` is one level, ``#`` the parent and every level below it, and
+    a wildcard at the first level matches no topic that starts with ``$``).
+
+    Examples
+    --------
+    >>> filter_covers("plant/#", "plant/+/fill"), filter_covers("plant/+/fill", "plant/#")
+    (True, False)
+    """
+    a, b = first.split("/"), second.split("/")
+    for i, part in enumerate(a):
+        if part in ("#", "+") and i == 0 and b[0].startswith("$"):
+            return False
+        if part == "#":
+            return True
+        if i >= len(b) or b[i] == "#":
+            return False
+        if part != "+" and part != b[i]:
+            return False
+    return len(a) == len(b)
+
+
+def shadowed_entries(cfg: Config) -> list[tuple[int, int]]:
+    """(entry, earlier entry) for every stream entry that can never apply: the daemon gives a
+    message to the first entry whose filter matches its topic, and an earlier filter matches
+    every topic this one does."""
+    out = []
+    for j, later in enumerate(cfg.streams):
+        i = next((i for i, earlier in enumerate(cfg.streams[:j])
+                  if filter_covers(earlier.topic, later.topic)), None)
+        if i is not None:
+            out.append((j, i))
+    return out
+
+
 # --------------------------------------------------------------- validation
 class _Loader:
     """Walks the YAML node tree so every value keeps its line number."""
@@ -614,8 +681,13 @@ class _Loader:
         return ConfigError(path, message, file=self.file, line=line)
 
     def plain(self, node: yaml.Node) -> Any:
-        # safe_load semantics for a sub-tree.
-        return self.y.safe_load(self.y.serialize(node))
+        # safe_load semantics for a sub-tree, constructed from the node itself (serializing it
+        # and reading it back failed on an empty value such as "streams:" with a YAML error).
+        loader = self.y.SafeLoader("")
+        try:
+            return loader.construct_document(node)
+        finally:
+            loader.dispose()
 
     def section(self, node: yaml.Node | None, keys: dict[str, Key], path: str) -> tuple[dict[str, Any], dict[str, yaml.Node]]:
         out: dict[str, Any] = {}
@@ -637,7 +709,10 @@ class _Loader:
                 raise self.error(kpath, "key appears twice", knode)
             nodes[key] = vnode
             try:
-                out[key] = keys[key].check(self.plain(vnode))
+                value = self.plain(vnode)
+                if getattr(keys[key].check, "numeric", False):
+                    value = _number_text(value, vnode)
+                out[key] = keys[key].check(value)
             except ValueError as exc:
                 raise self.error(kpath, str(exc), vnode) from None
         for key, spec in keys.items():
@@ -697,13 +772,10 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
     if "tls" in bnodes:
         t, _ = ld.section(bnodes["tls"], TLS_KEYS, "broker.tls")
         tls = TlsConfig(**t)
-    url = b["url"]
-    if not url.startswith(("mqtt://", "mqtts://")):
-        raise ld.error("broker.url", f"must start with mqtt:// or mqtts://, got {url!r}", bnodes.get("url"))
-    if "@" in url.split("://", 1)[1].split("/", 1)[0]:
-        # Not echoed: what stands before the @ may be a password.
-        raise ld.error("broker.url", "must not hold a user name or password; use broker.username "
-                       "and broker.password_file or broker.password_env", bnodes.get("url"))
+    try:
+        broker_address(b["url"])
+    except ValueError as exc:
+        raise ld.error("broker.url", str(exc), bnodes.get("url")) from None
     if b["qos"] not in (0, 1):
         raise ld.error("broker.qos", f"must be 0 or 1, got {b['qos']}", bnodes.get("qos"))
     if not 1 <= b["receive_maximum"] <= 65535:
@@ -736,10 +808,10 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
     if alerts["qos"] not in (0, 1, 2):
         raise ld.error("alerts.qos", f"must be 0, 1 or 2, got {alerts['qos']}", anodes.get("qos"))
     metrics, mnodes = ld.section(nodes.get("metrics"), METRICS_KEYS, "metrics")
-    _host, sep, port = metrics["listen"].rpartition(":")
-    if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:
-        raise ld.error("metrics.listen", f"must be HOST:PORT (e.g. \"127.0.0.1:9650\", a port of 0 to "
-                       f"65535), got {metrics['listen']!r}", mnodes.get("listen"))
+    try:
+        listen_address(metrics["listen"])
+    except ValueError as exc:
+        raise ld.error("metrics.listen", str(exc), mnodes.get("listen")) from None
     metrics["tls"] = None
     if "tls" in mnodes:
         mt, _ = ld.section(mnodes["tls"], METRICS_TLS_KEYS, "metrics.tls")
@@ -762,6 +834,111 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
         shard=shard,
         cluster=cluster,
     )
+
+
+#: What ``check``, ``run`` and a reload (SIGHUP) say of a file without stream entries, after
+#: its name: a daemon started with it would watch nothing, and a reload to it would drop every
+#: stream and its state at once (much more likely a file caught half-written than a wish).
+NO_STREAMS = ("has no stream entries: list the topics to watch under streams: "
+              "(to stop watching every stream, stop the daemon)")
+
+
+def listen_address(listen: str) -> tuple[str, int]:
+    """(host, port) of ``metrics.listen`` (and ``demo --metrics-listen``): ``HOST:PORT``, an
+    IPv6 address in brackets (``[::1]:9650``), a port of 0 (any free one) to 65535; the host
+    as written, brackets and all, "" for none (loopback).  ``ValueError`` says what is wrong.
+
+    Examples
+    --------
+    >>> listen_address("127.0.0.1:9650"), listen_address("[::1]:0")
+    (('127.0.0.1', 9650), ('[::1]', 0))
+    >>> listen_address("foo")
+    Traceback (most recent call last):
+    ...
+    ValueError: must be HOST:PORT (e.g. "127.0.0.1:9650", a port of 0 to 65535), got 'foo'
+    """
+    import ipaddress
+
+    host, sep, port = listen.rpartition(":")
+    ok = bool(sep) and port.isascii() and port.isdigit() and 0 <= int(port) <= 65535
+    if ok and host.startswith("["):
+        try:
+            ok = host.endswith("]") and bool(ipaddress.IPv6Address(host[1:-1]))
+        except ValueError:
+            ok = False
+    elif ok:
+        ok = host == "" or bool(_HOST_NAME.fullmatch(host))
+    if not ok:
+        raise ValueError(f"must be HOST:PORT (e.g. \"127.0.0.1:9650\", a port of 0 to 65535), got {listen!r}")
+    return host, int(port)
+
+
+#: A host name: letters, digits, '-', '.' and '_' (RFC 1123 names, with the '_' some sites use).
+_HOST_NAME = re.compile(r"[A-Za-z0-9_]([A-Za-z0-9_.-]*[A-Za-z0-9_])?")
+
+
+def broker_address(url: str) -> tuple[str, int, bool]:
+    """(host, port, tls) of a broker URL, ``mqtt://host[:port]`` or ``mqtts://host[:port]``.
+
+    The one reading of ``broker.url``: the configuration is refused with its ``ValueError``
+    and the MQTT client connects where it says.  The authority is ``host[:port]`` (RFC 3986,
+    section 3.2; an IPv6 address in brackets); the port is 1 to 65535 (1883 for mqtt://,
+    8883 for mqtts://, the ports IANA assigns to MQTT); a connection has no path, query or
+    fragment, and the user name and password have keys of their own.
+
+    Examples
+    --------
+    >>> broker_address("mqtt://127.0.0.1:1883"), broker_address("mqtts://[::1]")
+    (('127.0.0.1', 1883, False), ('::1', 8883, True))
+    >>> broker_address("mqtt://h:0")
+    Traceback (most recent call last):
+    ...
+    ValueError: port 0 is outside 1 to 65535 (mqtt://host:port), in 'mqtt://h:0'
+    """
+    import ipaddress
+
+    form = "(mqtt://host:port)"
+    scheme, sep, rest = url.partition("://")
+    if not sep or scheme not in ("mqtt", "mqtts"):
+        raise ValueError(f"must start with mqtt:// or mqtts://, got {url!r}")
+    m = re.search(r"[/?#]", rest)
+    authority, after = (rest[:m.start()], rest[m.start():]) if m else (rest, "")
+    if "@" in authority:
+        # Not echoed: what stands before the @ may be a password.
+        raise ValueError("must not hold a user name or password; use broker.username "
+                         "and broker.password_file or broker.password_env")
+    for mark, what in (("#", "fragment"), ("?", "query")):
+        if mark in after:
+            raise ValueError(f"must not have a {what} ({mark}...): an MQTT connection has only a host "
+                             f"and a port {form}, in {url!r}")
+    if after not in ("", "/"):
+        raise ValueError(f"must not have a path ({after!r}): an MQTT connection has only a host and a "
+                         f"port {form}, in {url!r}")
+    if authority.startswith("["):
+        host, close, port_part = authority[1:].partition("]")
+        try:
+            ipaddress.IPv6Address(host)
+        except ValueError:
+            raise ValueError(f"'[{host}]' is not an IPv6 address {form}, in {url!r}") from None
+        if not close or (port_part and not port_part.startswith(":")):
+            raise ValueError(f"an IPv6 address must be in brackets, then :port {form}, in {url!r}")
+        port_text = port_part[1:] if port_part else None
+    else:
+        host, colon, port_text_or = authority.partition(":")
+        port_text = port_text_or if colon else None
+        if not host:
+            raise ValueError(f"has no host {form}, in {url!r}")
+        if not _HOST_NAME.fullmatch(host):
+            raise ValueError(f"{host!r} is not a host name or address {form}, in {url!r}")
+    tls = scheme == "mqtts"
+    if port_text is None:
+        return host, 8883 if tls else 1883, tls
+    if not port_text.isascii() or not port_text.isdigit():
+        raise ValueError(f"port {port_text!r} is not a number {form}, in {url!r}")
+    port = int(port_text)
+    if not 1 <= port <= 65535:
+        raise ValueError(f"port {port} is outside 1 to 65535 {form}, in {url!r}")
+    return host, port, tls
 
 
 def for_shard(cfg: Config, number: int | None = None) -> Config:

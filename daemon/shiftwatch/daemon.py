@@ -2534,10 +2534,12 @@ class Daemon:
                            "(%s: %s)", self.config_path, type(exc).__name__, exc)
             return
         if not new.streams:
+            from shiftwatch.config import NO_STREAMS  # what check and run say of such a file too
+
             # An empty (or emptied) file would drop every stream and its state at once:
             # much more likely a file caught half-written than a wish.
-            self.log.error("reload refused, keeping the running configuration: %s has no stream "
-                           "entries (to stop watching every stream, stop the daemon)", self.config_path)
+            self.log.error("reload refused, keeping the running configuration: %s %s", self.config_path,
+                           NO_STREAMS)
             return
         # Engines are kept, renewed or dropped below as they stand with every sample taken.
         self._pool_empty()

@@ -46,7 +46,7 @@ WINDOW_AFTER = 6.0
 @dataclass(frozen=True)
 class Sensor:
     """One invented sensor.  What an operator calls it is the configuration's ``label``
-    (:data:`CONFIG_TEMPLATE`), the same name the alerts use."""
+    (:func:`demo_config`), the same name the alerts use."""
 
     topic: str
     stream: str  # the stream name the daemon gives it
@@ -93,38 +93,58 @@ CHANGEOVERS = (
     Changeover("brackenfield/line2/filler/head3/fill", 44.0, 2.0, "recipe change: fill target raised"),
 )
 
-CONFIG_TEMPLATE = """\
-broker:
-  url: {url}
-  client_id: shiftwatch-demo
-  mqtt_version: "{version}"
-streams:
-  - topic: brackenfield/line2/filler/+/fill
-    format: json
-    value: weight_g
-    time: ts
-    unit: g
-    label: "fill weight on filler {{1}}"
-  - topic: brackenfield/line2/oven/senml
-    format: senml
-    label: "tunnel oven {{name}} temperature"
-  - topic: brackenfield/line2/capper/torque
-    format: number
-    unit: N m
-    label: capper torque
-detection:
-  min_shift_sigma: 1.0
-  false_alarm_every: 7d
-alerts:
-  topic_prefix: {prefix}
-metrics:
-  listen: {listen}
-state:
-  dir: {state}
-  snapshot_every: 10s
-display:
-  time_zone: {time_zone}
-"""
+def demo_config(url: str, version: str, listen: str, state: str, time_zone: str) -> dict[str, Any]:
+    """The demo's configuration, as data: written out with ``yaml.safe_dump`` and read back
+    by the same validation as any configuration file (an address such as ``[::1]:9650`` is
+    quoted as YAML needs it, which formatting text did not do)."""
+    return {
+        "broker": {"url": url, "client_id": "shiftwatch-demo", "mqtt_version": version},
+        "streams": [
+            {"topic": "brackenfield/line2/filler/+/fill", "format": "json", "value": "weight_g",
+             "time": "ts", "unit": "g", "label": "fill weight on filler {1}"},
+            {"topic": "brackenfield/line2/oven/senml", "format": "senml",
+             "label": "tunnel oven {name} temperature"},
+            {"topic": "brackenfield/line2/capper/torque", "format": "number", "unit": "N m",
+             "label": "capper torque"},
+        ],
+        "detection": {"min_shift_sigma": 1.0, "false_alarm_every": "7d"},
+        "alerts": {"topic_prefix": PREFIX},
+        "metrics": {"listen": listen},
+        "state": {"dir": state, "snapshot_every": "10s"},
+        "display": {"time_zone": time_zone},
+    }
+
+
+class DemoError(ValueError):
+    """The demo cannot run as asked (``--metrics-listen``): said before anything starts."""
+
+
+def _metrics_address(listen: str) -> tuple[str, str | None]:
+    """``listen`` checked as ``metrics.listen`` is, and tried: the address to use, and why it
+    differs (only a port in use moves the demo to a free one; an address nothing can listen
+    on is a :class:`DemoError`, its port kept in the message)."""
+    import errno
+    import socket
+
+    from shiftwatch.config import listen_address
+
+    try:
+        host, port = listen_address(listen)
+    except ValueError as exc:
+        raise DemoError(f"--metrics-listen {listen!r}: {exc}") from None
+    if port == 0:
+        return listen, None
+    bare = host[1:-1] if host.startswith("[") else (host or "127.0.0.1")
+    try:
+        family, _, _, _, addr = socket.getaddrinfo(bare, port, type=socket.SOCK_STREAM,
+                                                   flags=socket.AI_PASSIVE)[0]
+        with socket.socket(family, socket.SOCK_STREAM) as probe:
+            probe.bind(addr)
+    except OSError as exc:
+        if exc.errno == errno.EADDRINUSE:
+            return f"{host}:{free_port()}", f"port {port} is in use ({exc.strerror or exc})"
+        raise DemoError(f"--metrics-listen {listen!r}: cannot listen there: {exc.strerror or exc}") from None
+    return listen, None
 
 
 def payload_for(sensor: Sensor, t: float, value: float) -> bytes:
@@ -153,7 +173,8 @@ class Line:
 
     def stop(self) -> None:
         self._stop.set()
-        self._thread.join(timeout=5)
+        if self._thread.ident is not None:  # started (a demo whose daemon failed never starts it)
+            self._thread.join(timeout=5)
         self.client.stop()
 
     def _run(self) -> None:
@@ -181,9 +202,11 @@ def run_demo(duration: float = 75.0, *, out: TextIO = sys.stdout, metrics_listen
     """Run the demo for ``duration`` seconds (Ctrl-C stops it early, cleanly).
 
     Every time it shows is a clock time in ``time_zone`` (an IANA name), the
-    zone the alert summaries use too.
+    zone the alert summaries use too.  ``--metrics-listen`` that cannot be used raises
+    :class:`DemoError` before anything starts; a daemon that cannot start ends the demo
+    with its exit status, and no recap.
     """
-    w = out.write
+    metrics_listen, moved = _metrics_address(metrics_listen)  # DemoError before anything starts
     broker: Any
     if not use_embedded and find_mosquitto() is not None:
         broker = MosquittoBroker().start()
@@ -191,21 +214,22 @@ def run_demo(duration: float = 75.0, *, out: TextIO = sys.stdout, metrics_listen
     else:
         broker = EmbeddedBroker().start()
         version, kind = "3.1.1", "embedded amqtt broker"
-    host, _, port = metrics_listen.rpartition(":")
-    moved = None
-    if port != "0":
-        try:
-            import socket
+    try:  # the broker is stopped however the demo ends
+        return _run(broker, version, kind, duration, out, metrics_listen, moved, time_zone)
+    finally:
+        broker.stop()
 
-            with socket.socket() as probe:
-                probe.bind((host, int(port)))
-        except OSError as exc:
-            moved = f"port {port} is in use ({exc.strerror or exc})"
-            metrics_listen = f"{host}:{free_port()}"
+
+def _run(broker: Any, version: str, kind: str, duration: float, out: TextIO, metrics_listen: str,
+         moved: str | None, time_zone: str) -> int:
+    import yaml
+
+    w = out.write
     state_dir = tempfile.mkdtemp(prefix="shiftwatch-demo-state-")
-    cfg: Config = parse_config(CONFIG_TEMPLATE.format(url=broker.url, version=version, prefix=PREFIX,
-                                                      listen=metrics_listen, state=state_dir,
-                                                      time_zone=time_zone))
+    cfg: Config = parse_config(yaml.safe_dump(demo_config(broker.url, version, metrics_listen, state_dir,
+                                                          time_zone), sort_keys=False),
+                               file="the demo's configuration")
+    host = metrics_listen.rpartition(":")[0]
     names = {s.stream: cfg.label_for(s.stream) or s.stream for s in SENSORS}
     log = logging.getLogger("shiftwatch.demo.daemon")
     log.setLevel(logging.WARNING)
@@ -271,13 +295,21 @@ def run_demo(duration: float = 75.0, *, out: TextIO = sys.stdout, metrics_listen
     mes = PlainClient(broker.url, "brackenfield-line2-mes", mqtt_version=version)
     due = sorted(((start + c.at - ANNOUNCE_AHEAD, c) for c in CHANGEOVERS), key=lambda d: d[0])
     line = Line(broker.url, version, start)
-    runner = threading.Thread(target=daemon.run, kwargs={"install_signals": False}, name="daemon")
+    status: list[int] = []
+    runner = threading.Thread(target=lambda: status.append(daemon.run(install_signals=False)), name="daemon")
     code = 0
+    started = True
     try:
         viewer.start()
         runner.start()
         while daemon.server is None and runner.is_alive():
             time.sleep(0.05)
+        if daemon.server is None:
+            # It said why (cannot start: ...): no sensors, no recap of a run that never was.
+            started = False
+            runner.join(timeout=15)
+            code = status[0] if status and status[0] else 2
+            return code
         if daemon.server is not None:
             why = f"\n           ({moved}, so the demo took a free one; --metrics-listen chooses)" if moved else ""
             base = f"http://{host or '127.0.0.1'}:{daemon.server.port}"
@@ -305,11 +337,11 @@ def run_demo(duration: float = 75.0, *, out: TextIO = sys.stdout, metrics_listen
         line.stop()
         mes.stop()
         ended = time.time() - start  # the sensors' last sample
-        time.sleep(0.5)
+        if started:
+            time.sleep(0.5)
         daemon.request_stop()
         runner.join(timeout=15)
         viewer.stop()
-        broker.stop()
     w(_recap(results, start, ended, names, time_zone))
     out.flush()
     return code

@@ -36,7 +36,6 @@ from collections import deque
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any, NamedTuple
-from urllib.parse import urlsplit
 
 import paho.mqtt.client as paho
 from paho.mqtt.enums import CallbackAPIVersion, MQTTErrorCode, MQTTProtocolVersion
@@ -421,11 +420,12 @@ def describe_connect_error(exc: BaseException | None) -> str:
 
 def parse_url(url: str) -> tuple[str, int, bool]:
     """(host, port, tls) from mqtt://host:port or mqtts://host:port."""
-    parts = urlsplit(url)
-    if parts.scheme not in ("mqtt", "mqtts") or not parts.hostname:
-        raise BrokerError(f"broker.url: expected mqtt://host:port or mqtts://host:port, got {url!r}")
-    tls = parts.scheme == "mqtts"
-    return parts.hostname, parts.port or (8883 if tls else 1883), tls
+    from shiftwatch.config import broker_address  # the one reading, as the configuration is checked
+
+    try:
+        return broker_address(url)
+    except ValueError as exc:
+        raise BrokerError(f"broker.url: {exc}") from None
 
 
 def probe_broker(cfg: BrokerConfig, password: str | None, *, timeout: float = 5.0) -> str | None:

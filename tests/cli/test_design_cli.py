@@ -145,3 +145,31 @@ def test_design_chart_draws_the_chosen_settings_and_their_neighbours(cli, tmp_pa
     assert len(colours) > 20  # three coloured curves, text and a grid, not a blank image
     bad = cli("design", "--chart", str(tmp_path / "no" / "such" / "dir" / "c.png"))
     assert bad.returncode == 2 and "cannot write the chart" in bad.stderr and "Traceback" not in bad.stderr
+
+
+@pytest.mark.parametrize("options, asked, used", [
+    # 20,000 weeks at 1 s, and a year at 1 ms, ask for ARLs past the 1e9 samples the tests are
+    # calibrated for (both ended in a ValueError traceback); the daemon designs for 1e9 there.
+    (["--false-alarm-every", "20000w"], "12,096,000,000", "1,000,000,000"),
+    (["--interval", "1ms", "--false-alarm-every", "365d"], "31,536,000,000", "1,000,000,000"),
+    # 1 ms at 1 s asks for an ARL of 0.001 samples: the table showed 50 and said nothing.
+    (["--false-alarm-every", "1ms"], "0.001", "50"),
+])
+def test_design_says_when_the_arl_is_held_to_the_calibrated_range(cli, options: list[str], asked: str,
+                                                                  used: str) -> None:
+    res = cli("design", *options)
+    assert res.returncode == 0, res.stderr
+    assert "Traceback" not in res.stderr
+    assert f"in-control average run length (ARL): {used} samples" in res.stdout
+    assert f"asks for an ARL of {asked} samples" in res.stdout
+    assert "the daemon designs its tests\n   for 50 to 1,000,000,000 samples" in res.stdout
+    data = json.loads(cli("design", *options, "--json").stdout)
+    assert data["arl0"] == float(used.replace(",", ""))
+    assert data["arl0_asked"] == pytest.approx(float(asked.replace(",", "")))
+
+
+def test_design_within_the_range_says_nothing_of_it(cli) -> None:
+    res = cli("design", "--false-alarm-every", "7d")
+    assert res.returncode == 0, res.stderr
+    assert "in-control average run length (ARL): 604,800 samples" in res.stdout  # 7 x 86,400 s at 1 s
+    assert "asks for an ARL" not in res.stdout

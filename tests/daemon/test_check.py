@@ -98,3 +98,68 @@ def test_an_unreadable_password_file_and_a_wrong_password_are_problems(cli, tmp_
         assert f"ok: broker.password_file {right}: readable" in res.stdout
     finally:
         b.stop()
+
+
+@pytest.mark.parametrize("url", ["mqtt://127.0.0.1:99999", "mqtt://127.0.0.1:0", "mqtt://:1883",
+                                 "mqtt://127.0.0.1:abc", "mqtt://[zz]:1"])
+def test_check_and_run_refuse_a_broker_url_without_a_traceback(cli, tmp_path: Path, url: str) -> None:
+    """The tester's URLs passed validation, then check, check --no-network and run ended
+    in ValueError or BrokerError tracebacks (or, for port 0, connected to 1883)."""
+    cfg = write(tmp_path, f"streams: [{{topic: a/b}}]\nbroker: {{url: \"{url}\"}}\n"
+                f"metrics: {{listen: '127.0.0.1:0'}}\nstate: {{dir: '{tmp_path}'}}\n")
+    for args in (["check", "--config", str(cfg)], ["check", "--config", str(cfg), "--no-network"],
+                 ["run", "--config", str(cfg)]):
+        res = cli(*args)
+        assert res.returncode == 2, (args, res.stdout, res.stderr)
+        assert f"{cfg}:2: broker.url: " in res.stderr, res.stderr
+        assert "Traceback" not in res.stderr and "accepted a connection" not in res.stdout
+
+
+@pytest.mark.parametrize("text", ["", "# every line commented out\n", "streams: []\n",
+                                  "streams:\ndetection: {min_shift_sigma: 1.5}\n"])
+def test_check_and_run_refuse_a_file_without_streams_as_a_reload_does(cli, tmp_path: Path, text: str) -> None:
+    """check called these valid and probed the default broker, run then watched nothing,
+    and a SIGHUP reload refused the same files (test_hardening.py): all three say the same."""
+    from shiftwatch.config import NO_STREAMS
+
+    cfg = write(tmp_path, text)
+    for args in (["check", "--config", str(cfg)], ["check", "--config", str(cfg), "--no-network"],
+                 ["run", "--config", str(cfg)]):
+        res = cli(*args)
+        assert res.returncode == 2, (args, res.stdout, res.stderr)
+        assert f"{cfg} {NO_STREAMS}" in res.stderr, res.stderr
+        assert "broker" not in res.stdout and "valid" not in res.stdout
+        assert "Traceback" not in res.stderr
+
+
+def test_check_refuses_dev_null(cli) -> None:
+    from shiftwatch.config import NO_STREAMS
+
+    res = cli("check", "--config", "/dev/null", "--no-network")
+    assert res.returncode == 2, res.stdout + res.stderr
+    assert f"/dev/null {NO_STREAMS}" in res.stderr
+
+
+def test_check_warns_of_an_entry_an_earlier_entry_shadows(cli, tmp_path: Path) -> None:
+    cfg = write(tmp_path, "streams:\n  - {topic: '#', format: number}\n"
+                "  - {topic: brackenfield/line2/capper/torque, format: number, unit: N m}\n"
+                f"metrics: {{listen: '127.0.0.1:0'}}\nstate: {{dir: '{tmp_path}'}}\n")
+    res = cli("check", "--config", str(cfg), "--no-network")
+    assert res.returncode == 0, res.stderr
+    assert ("warning: the 2nd stream (streams[1], topic 'brackenfield/line2/capper/torque') can never "
+            "apply: the 1st stream's filter '#' matches every topic it matches") in res.stderr, res.stderr
+
+
+def test_replay_says_which_streams_no_entry_matched(cli, tmp_path: Path) -> None:
+    """Historian tags are not MQTT topics: with entries for topics, the tags got the
+    detection defaults without a word."""
+    cfg = write(tmp_path, "streams:\n  - {topic: brackenfield/line2/filler/+/fill, format: json}\n"
+                "detection: {min_shift_sigma: 1.5}\n")
+    rows = "".join(f"2026-03-02T06:{i // 60:02d}:{i % 60:02d}Z,{tag},{10 + (i * 7 % 11) * 0.1}\n"
+                   for i in range(240) for tag in ("FT-201.PV", "TT-305.PV", "PT-110.PV", "LT-7.PV",
+                                                    "brackenfield/line2/filler/head1/fill"))
+    data = write(tmp_path, "time,stream,value\n" + rows, "history.csv")
+    res = cli("replay", "--config", str(cfg), str(data))
+    assert res.returncode == 0, res.stderr
+    assert (f"note: 4 of 5 streams matched no stream entry of {cfg} (FT-201.PV, LT-7.PV, PT-110.PV, ...): "
+            "the settings of its detection section applied to them") in res.stderr, res.stderr

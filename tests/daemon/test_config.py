@@ -255,3 +255,104 @@ def test_the_schema_holds_the_limits_check_enforces() -> None:
     assert not any(pattern.match(t) for t in ("7", "60", "soon"))
     behind = det["max_time_behind"]["anyOf"]
     assert {"type": "null"} in behind and any(re.compile(b["pattern"]).match("2d") for b in behind if "pattern" in b)
+
+
+# Broker URLs: the authority is host[:port] (RFC 3986, section 3.2); a port is decimal digits
+# and TCP ports run 1 to 65535 (RFC 793; port 0 is reserved and means "any" to the socket
+# API, so a client that connects to it reaches the default port instead: the tester's check
+# said "accepted a connection" for mqtt://127.0.0.1:0, from the broker on 1883).  An MQTT
+# connection has no path, query or fragment (MQTT 3.1.1 and 5.0 name host and port only).
+@pytest.mark.parametrize("url, why", [
+    ("mqtt://127.0.0.1:99999", "port 99999 is outside 1 to 65535"),
+    ("mqtt://127.0.0.1:0", "port 0 is outside 1 to 65535"),
+    ("mqtt://127.0.0.1:abc", "port 'abc' is not a number"),
+    ("mqtt://:1883", "has no host"),
+    ("mqtt://[zz]:1", "'[zz]' is not an IPv6 address"),
+    ("mqtt://h:1/path", "must not have a path"),
+    ("mqtt://h:1?x=1", "must not have a query"),
+    ("mqtt://h:1#frag", "must not have a fragment"),
+    ("mqtt://h:1:2", "port '1:2' is not a number"),
+    ("mqtt://bad host:1", "'bad host' is not a host name"),
+])
+def test_a_broker_url_the_client_cannot_use_is_refused_at_load(url: str, why: str) -> None:
+    msg = error_of(f'streams: [{{topic: a/b}}]\nbroker:\n  url: "{url}"\n')
+    assert msg.startswith("plant.yaml:3: broker.url: "), msg
+    assert why in msg, msg
+
+
+@pytest.mark.parametrize("url, host, port, tls", [
+    ("mqtt://127.0.0.1:1883", "127.0.0.1", 1883, False),
+    ("mqtt://broker.brackenfield.example", "broker.brackenfield.example", 1883, False),  # MQTT's port (IANA)
+    ("mqtts://broker.brackenfield.example", "broker.brackenfield.example", 8883, True),  # MQTT over TLS (IANA)
+    ("mqtt://[::1]:1884", "::1", 1884, False),  # RFC 3986, 3.2.2: an IPv6 literal in brackets
+    ("mqtt://h:65535/", "h", 65535, False),  # an empty path is no path
+])
+def test_a_good_broker_url_gives_the_host_and_port_the_client_connects_to(url: str, host: str, port: int,
+                                                                          tls: bool) -> None:
+    from shiftwatch.mqtt import parse_url
+
+    cfg = parse_config(f'streams: [{{topic: a/b}}]\nbroker: {{url: "{url}"}}\n', file="plant.yaml")
+    assert parse_url(cfg.broker.url) == (host, port, tls)
+
+
+# YAML 1.1, which PyYAML implements, reads a float only with a dot: 1e-12 and 1e0 are text
+# to it, while YAML 1.2's core schema (section 10.3.2 of the 1.2.2 specification) reads
+# them as floats.  A numeric key takes such a plain scalar as the number it spells; PyYAML
+# itself is the reference for which forms it leaves as text.
+@pytest.mark.parametrize("form", ["1e-12", "1E-12", "5e-3", "+1e0", "1e0", "2e+0", "1.5e0"])
+def test_a_float_yaml_1_1_reads_as_text_is_taken_as_the_number_it_spells(form: str) -> None:
+    import yaml
+
+    key = "min_sigma" if form.lstrip("+").startswith(("1e-", "1E-", "5e-")) else "min_shift_sigma"
+    spec = parse_config(f"streams: [{{topic: a/b}}]\ndetection: {{{key}: {form}}}\n", file="plant.yaml")
+    got = getattr(spec.detection, key)
+    assert got == float(form)  # Python's float() as the reference for the value
+    if "." not in form:
+        assert isinstance(yaml.safe_load(form), str)  # text to PyYAML: the case this covers
+
+
+def test_a_quoted_number_or_a_number_word_stays_refused() -> None:
+    # Quoted, it is text on purpose; nan, 1_0e0 and 1e are not decimal floats of YAML 1.2.
+    for form in ('"1e-12"', "nan", "1_0e0", "1e", "e5", "1e-12x"):
+        msg = error_of(f"streams: [{{topic: a/b}}]\ndetection: {{min_sigma: {form}}}\n")
+        assert msg.startswith("plant.yaml:2: detection.min_sigma: "), msg
+
+
+# Filter subsumption: every topic the second filter matches, the first matches too (MQTT
+# 3.1.1, section 4.7 and MQTT 5.0, section 4.7: '+' one level, '#' the parent and every
+# level below it ("sport/#" matches "sport"), and a wildcard at the first level matches no
+# topic that starts with '$').
+@pytest.mark.parametrize("first, second, covers", [
+    ("#", "plant/line2/+/fill", True),
+    ("plant/#", "plant", True),  # 4.7.1.2: "sport/#" also matches "sport"
+    ("plant/+/#", "plant", False),
+    ("plant/+/fill", "plant/line2/fill", True),
+    ("plant/+/fill", "plant/+/fill", True),
+    ("plant/line2/fill", "plant/+/fill", False),
+    ("plant/+", "plant/#", False),
+    ("plant/+/+", "plant/+", False),
+    ("+/+", "plant/line2", True),
+    ("#", "$SYS/broker/load", False),  # 4.7.2: wildcards at the first level skip $ topics
+    ("+/broker/load", "$SYS/broker/load", False),
+    ("$SYS/#", "$SYS/broker/load", True),
+])
+def test_filter_subsumption_follows_the_mqtt_matching_rules(first: str, second: str, covers: bool) -> None:
+    from shiftwatch.config import filter_covers
+
+    assert filter_covers(first, second) is covers
+    # Cross-checked with the matcher the daemon uses, on the topics the second filter names
+    # with its wildcards filled in (a sample, not a proof).
+    if covers:
+        for topic in (second.replace("/#", "/x/y").replace("#", "x").replace("+", "x"),
+                      second.replace("/#", "").replace("+", "q")):
+            if topic and topic_matches(second, topic):
+                assert topic_matches(first, topic), topic
+
+
+def test_entries_an_earlier_entry_shadows_are_named() -> None:
+    from shiftwatch.config import shadowed_entries
+
+    cfg = parse_config("streams:\n  - topic: brackenfield/line2/#\n  - topic: brackenfield/line2/oven/+\n"
+                       "  - topic: brackenfield/line3/+\n  - topic: brackenfield/+/capper\n",
+                       file="plant.yaml")
+    assert shadowed_entries(cfg) == [(1, 0)]

@@ -26,6 +26,7 @@ import numpy as np
 from shiftwatch.core.arl import cusum_arl, cusum_run_length_quantile, design_h
 from shiftwatch.core.glr import GlrTest
 from shiftwatch.core.multicusum import MultiCusumTest
+from shiftwatch.core.settings import ARL_RANGE
 
 #: Shift sizes (in sigmas) tabulated by default.
 DEFAULT_SHIFTS = (0.0, 0.5, 0.75, 1.0, 1.5, 2.0, 3.0, 4.0)
@@ -58,6 +59,13 @@ class Design:
     rows: tuple[DesignRow, ...]
     bank_ks: tuple[float, ...] = ()
     bank_hs: tuple[float, ...] = ()
+    #: false_alarm_every / interval, before it was held to ARL_RANGE (as the daemon holds it)
+    arl0_asked: float = 0.0
+
+    @property
+    def held(self) -> bool:
+        """Whether the ARL asked for lay outside ARL_RANGE, and the design is for its edge."""
+        return self.arl0 != self.arl0_asked
 
 
 def glr_median_delay(test: GlrTest, shift: float, *, runs: int = 400, max_len: int = 4000,
@@ -100,7 +108,10 @@ def design(min_shift_sigma: float, false_alarm_every: float, interval: float, *,
     """
     if not (min_shift_sigma > 0 and false_alarm_every > 0 and interval > 0):
         raise ValueError("min_shift_sigma, false_alarm_every and interval must be positive")
-    arl0 = max(false_alarm_every / interval, 50.0)
+    asked = false_alarm_every / interval
+    # Held to the range the tests are calibrated for, exactly as the daemon holds it
+    # (DetectionSettings.arl0): the table shows what the daemon would run.
+    arl0 = min(max(asked, ARL_RANGE[0]), ARL_RANGE[1])
     k = min_shift_sigma / 2.0
     h = design_h(arl0, k)
     glr = GlrTest.design(arl0, window=glr_window)
@@ -117,7 +128,8 @@ def design(min_shift_sigma: float, false_alarm_every: float, interval: float, *,
         ))
     return Design(min_shift_sigma=min_shift_sigma, false_alarm_every=false_alarm_every,
                   interval=interval, arl0=arl0, k=k, h=h, glr_threshold=glr.threshold,
-                  glr_window=glr_window, rows=tuple(rows), bank_ks=bank.ks, bank_hs=bank.hs)
+                  glr_window=glr_window, rows=tuple(rows), bank_ks=bank.ks, bank_hs=bank.hs,
+                  arl0_asked=asked)
 
 
 def bank_run_lengths(ks: tuple[float, ...], hs: tuple[float, ...], shifts: tuple[float, ...] | list[float],
@@ -196,7 +208,7 @@ def sensitivity(min_shift_sigma: float, false_alarm_every: float, interval: floa
     out = []
     for label, every in (("chosen", false_alarm_every), ("more sensitive", false_alarm_every / factor),
                          ("less sensitive", false_alarm_every * factor)):
-        arl0 = min(max(every / interval, 50.0), 1e9)
+        arl0 = min(max(every / interval, ARL_RANGE[0]), ARL_RANGE[1])
         bank = _steady_bank(arl0, min_shift_sigma)
         rl = bank_run_lengths(bank.ks, bank.hs, grid, arl0=arl0)
         out.append(SensitivityCurve(label=label, min_shift_sigma=min_shift_sigma, false_alarm_every=every,

@@ -49,6 +49,7 @@ from typing import Any
 import numpy as np
 
 from shiftwatch.core.sequential import FloatArray, SequentialTest
+from shiftwatch.core.settings import GLR_WINDOW_RANGE
 
 #: Default longest lag.  A 0.5-sigma shift needs about 2 c / 0.25 ~ 110
 #: samples to reach the threshold ``c ~ 13.7`` used at ARL 604,800 (simulated
@@ -286,10 +287,11 @@ class GlrTest(SequentialTest):
             raise ValueError(f"arl0 must be a number in [50, 1e10], got {arl0!r}") from None
         if not (50 <= target <= 1e10):
             raise ValueError(f"arl0 must be a number in [50, 1e10], got {arl0!r}")
+        low, high = GLR_WINDOW_RANGE  # one range: the configuration is refused with it at load
         if isinstance(window, bool) or not isinstance(window, (int, np.integer)) or not (
-            50 <= window <= 2000
+            low <= window <= high
         ):
-            raise ValueError(f"window must be an integer in [50, 2000], got {window!r}")
+            raise ValueError(f"window must be an integer in [{low}, {high}], got {window!r}")
         return cls(threshold_for_arl(target, int(window)), window=int(window),
                    reference_size=reference_size)
 

@@ -212,9 +212,10 @@ class MultiCusumTest(SequentialTest):
         Raises
         ------
         ValueError
-            On arguments outside these ranges, or when the chart with the
-            largest ``k`` cannot reach the needed individual ARL (small
-            ``arl0`` with a large ``min_shift``).
+            On arguments outside these ranges.  A chart whose ``k`` cannot
+            reach the needed individual ARL (small ``arl0`` with a large
+            ``min_shift``) gets the smallest h, :data:`H_LOWEST`: it alarms
+            less often than asked even so.
 
         Examples
         --------
@@ -833,13 +834,24 @@ def _design_cached(
             if hi - lo < 1e-12:
                 break
         ind = math.exp(hi)
-    try:
-        solve = siegmund_h if approximate else quick_design_h
-        hs = tuple(solve(ind, k) for k in ks)
-    except ValueError:
-        raise ValueError(
-            f"arl0={arl0!r} with min_shift={min_shift!r} needs every chart at "
-            f"individual ARL {ind:.6g}, which the chart with the largest k "
-            f"({max(ks):.6g}) cannot reach; use a larger arl0 or a smaller min_shift"
-        ) from None
+    solve = siegmund_h if approximate else quick_design_h
+    hs = tuple(_h_or_lowest(solve, ind, k) for k in ks)
     return ks, hs
+
+
+#: The h of a chart whose k is so large that even h -> 0 alarms less often than asked.
+H_LOWEST = 1e-3
+
+
+def _h_or_lowest(solve: Any, ind: float, k: float) -> float:
+    """The h of one chart for an individual ARL of ``ind``; :data:`H_LOWEST` for a chart
+    that cannot alarm that often: a two-sided chart signals at each step with probability
+    about 2 P(Z > k) as h -> 0, so its ARL never falls below 1 / (2 P(Z > k)) (4,100 samples
+    for k = 3.67).  Such a chart already alarms less often than asked, the safe side, so the
+    bank keeps it at its most sensitive instead of being refused (a large min_shift_sigma with
+    a short false_alarm_every stopped the engine)."""
+    try:
+        h: float = solve(ind, k)
+    except ValueError:
+        return H_LOWEST
+    return h

@@ -15,6 +15,43 @@ ARL_RANGE = (50.0, 1e9)
 #: The smallest ``min_sigma`` accepted: its square must stay a normal double (below
 #: about 1e-154 it underflows, and a flat stream's statistics divide by zero).
 MIN_SIGMA_LOWEST = 1e-100
+#: The largest ``min_sigma`` accepted, for the same reason: above about 1e154 its square
+#: overflows (the engine then stops on an OverflowError).
+MIN_SIGMA_HIGHEST = 1e100
+#: Longest segment the GLR test looks over: the range its threshold is calibrated for
+#: (``GlrTest.design`` refuses anything else, see core/glr.py).
+GLR_WINDOW_RANGE = (50, 2000)
+#: The most samples kept per stream: the windows of 128 streams share one block of
+#: 16 bytes a sample (20,000 samples: 41 MB a block, 320 kB a stream).
+WINDOW_SAMPLES_MAX = 20_000
+#: The most samples an event may stay open after its detection (the window grows by
+#: them while it is open: 16 MB a stream at most).
+CONFIRM_MAX_SAMPLES_MAX = 1_000_000
+#: Largest ``clip_sigma`` and ``spike_sigma``: a normal residual passes 40 sigma about never,
+#: so larger values change nothing, and near the largest double they overflow.
+CLIP_SIGMA_MAX = 1000.0
+SPIKE_SIGMA_MAX = 10000.0
+
+#: The range of every whole-number setting, lowest and highest (None: no upper bound), and
+#: why, as the errors give it.  One source of truth: ``DetectionSettings`` enforces it, the
+#: configuration file is refused with it at load, and the JSON Schema states it.
+WHOLE_RANGES: dict[str, tuple[int, int | None, str]] = {
+    "warmup_samples": (20, WINDOW_SAMPLES_MAX // 2, "at most half of window_samples"),
+    "window_samples": (40, WINDOW_SAMPLES_MAX, "memory: 16 bytes a sample and stream"),
+    "confirm_min_samples": (1, CONFIRM_MAX_SAMPLES_MAX, "at most confirm_max_samples"),
+    "confirm_max_samples": (1, CONFIRM_MAX_SAMPLES_MAX, "the window grows by them while an event is open"),
+    "glr_window": (GLR_WINDOW_RANGE[0], GLR_WINDOW_RANGE[1], "the range the GLR test is calibrated for"),
+    "baseline_memory": (1, None, ""),
+    "baseline_guard": (1, WINDOW_SAMPLES_MAX, "below window_samples - warmup_samples"),
+}
+#: The range of every number setting: (lowest, lowest excluded, highest).
+NUMBER_RANGES: dict[str, tuple[float, bool, float | None]] = {
+    "min_shift_sigma": (0.0, True, 4.0),
+    "false_alarm_every": (0.0, True, None),
+    "clip_sigma": (0.0, True, CLIP_SIGMA_MAX),
+    "spike_sigma": (0.0, True, SPIKE_SIGMA_MAX),
+    "confirm_precision": (0.0, True, None),
+}
 
 
 @dataclass(frozen=True)
@@ -85,18 +122,19 @@ class DetectionSettings:
 
         if self.test not in TEST_NAMES:
             bad("test", f"{self.test!r} is not one of {', '.join(TEST_NAMES)}")
-        for name in ("min_shift_sigma", "false_alarm_every", "clip_sigma", "spike_sigma",
-                     "confirm_precision"):
+        for name, (low, _open, high) in NUMBER_RANGES.items():
             v = getattr(self, name)
-            if not isinstance(v, (int, float)) or isinstance(v, bool) or not math.isfinite(v) or v <= 0:
+            if not isinstance(v, (int, float)) or isinstance(v, bool) or not math.isfinite(v) or v <= low:
                 bad(name, f"must be a positive number, got {v!r}")
-        for name in ("warmup_samples", "window_samples", "confirm_min_samples",
-                     "confirm_max_samples", "glr_window", "baseline_memory", "baseline_guard"):
+            if high is not None and v > high:
+                bad(name, f"must be at most {high:g}, got {v!r}")
+        for name, (lo, hi, why) in WHOLE_RANGES.items():
             v = getattr(self, name)
             if not isinstance(v, int) or isinstance(v, bool) or v < 1:
                 bad(name, f"must be a positive whole number, got {v!r}")
-        if self.warmup_samples < 20:
-            bad("warmup_samples", f"must be at least 20, got {self.warmup_samples}")
+            if v < lo or (hi is not None and v > hi):
+                span = f"at least {lo}" if hi is None else f"from {lo} to {hi}"
+                bad(name, f"must be a whole number {span}{f' ({why})' if why else ''}, got {v}")
         if self.window_samples < 2 * self.warmup_samples:
             bad("window_samples", f"must be at least twice warmup_samples ({2 * self.warmup_samples}), "
                 f"got {self.window_samples}")
@@ -104,17 +142,16 @@ class DetectionSettings:
             bad("interval_level", f"must be in [0.5, 1), got {self.interval_level!r}")
         if not 0.0 < self.confirm_p_value < 0.5:
             bad("confirm_p_value", f"must be in (0, 0.5), got {self.confirm_p_value!r}")
-        if self.min_shift_sigma > 4.0:
-            bad("min_shift_sigma", f"must be at most 4 (larger steps are caught within a few samples "
-                f"at 4), got {self.min_shift_sigma}")
         if self.baseline_guard >= self.window_samples - self.warmup_samples:
             bad("baseline_guard", f"must be below window_samples - warmup_samples "
                 f"({self.window_samples - self.warmup_samples}), got {self.baseline_guard}")
         if self.spike_sigma <= self.clip_sigma:
             bad("spike_sigma", f"must exceed clip_sigma ({self.clip_sigma}), got {self.spike_sigma}")
-        if self.min_sigma is not None and not (MIN_SIGMA_LOWEST <= self.min_sigma < math.inf):
-            bad("min_sigma", f"must be null or a finite number of at least {MIN_SIGMA_LOWEST:g} "
-                f"(reading units), got {self.min_sigma!r}")
+        if self.min_sigma is not None and (
+                not isinstance(self.min_sigma, (int, float)) or isinstance(self.min_sigma, bool)
+                or not MIN_SIGMA_LOWEST <= self.min_sigma <= MIN_SIGMA_HIGHEST):
+            bad("min_sigma", f"must be null or a finite number from {MIN_SIGMA_LOWEST:g} to "
+                f"{MIN_SIGMA_HIGHEST:g} (reading units), got {self.min_sigma!r}")
         for name in ("max_time_ahead", "max_time_behind"):
             v = getattr(self, name)
             if v is not None and (not isinstance(v, (int, float)) or isinstance(v, bool)
