@@ -1044,7 +1044,11 @@ class StreamEngine:
                 self._young_event(at, result, at, (END_TEST, ev.t, split_critical_t(n, p_end)))
                 return take
             # Not even that: the first level rests on too few samples to tell this shift
-            # from noise at the plant's rate (see the README): start again from it.
+            # from noise at the plant's rate (see the README): start again from it.  The
+            # samples before it are set aside with a reason, so the shift leaves a trace.
+            result.rejected.extend(
+                Rejection(_batch_position(t[:take], idx, tj), "warmup_shift", tj)
+                for tj in wt[:fit.index].tolist())
             self._window.drop_front(fit.index)
             self._young = _young_from(self._window.values)
             return take
