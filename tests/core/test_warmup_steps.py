@@ -19,6 +19,7 @@ false-alarm count on streams with no step.
 
 from __future__ import annotations
 
+import json
 import math
 
 import numpy as np
@@ -197,3 +198,35 @@ def test_a_step_too_early_to_report_is_not_learned_without_a_trace() -> None:
         neither += not found and not trace
     assert traced >= 1
     assert neither <= 12
+
+
+def test_a_stretched_warm_up_gives_the_same_records_however_batched_or_restored() -> None:
+    """Where the warm-up is stretched and looked at again depends on the window's length
+    only: the records and rejections are the same fed whole, in random batches, or saved
+    and restored (JSON round trip) mid-stretch."""
+    rng = np.random.default_rng(31)
+    stretched = 0
+    for at in (30, 60, 150, 190):
+        x = 10.0 + rng.standard_normal(N)
+        x[at:] += 1.0
+        t = T0 + np.arange(float(N))
+        whole = StreamEngine("s").process(t, x)
+        eng = StreamEngine("s")
+        recs, rejs = [], []
+        i = 0
+        while i < N:
+            j = min(N, i + int(rng.integers(1, 90)))
+            if i < 260 <= j:
+                j = 260
+            res = eng.process(t[i:j], x[i:j])
+            recs += res.records
+            rejs += [(r.reason, r.time) for r in res.rejected]
+            if j == 260:
+                stretched += eng.state == "warming_up"
+                saved = json.loads(json.dumps(eng.get_state()))
+                eng = StreamEngine("s")
+                eng.set_state(saved)
+            i = j
+        assert recs == whole.records
+        assert rejs == [(r.reason, r.time) for r in whole.rejected]
+    assert stretched >= 1
