@@ -447,7 +447,7 @@ def split_critical_t(n: int, p_below: float, min_segment: int = 3) -> float:
     has ``t`` above it.  The threshold a record names for the split test (``warmup_split``).
 
     >>> round(split_critical_t(200, 0.5 / 604800.0), 2)
-    6.14
+    6.15
     """
     df = n - 2.0
     splits = n - 2 * max(int(min_segment), 2) + 1
