@@ -40,7 +40,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from shiftwatch.core.engine import AlertRecord, BatchResult, StreamEngine
-from shiftwatch.core.screen import REASONS
+from shiftwatch.core.screen import READING_REASONS, REASONS
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.sources import (
     CHUNK_BYTES,
@@ -342,7 +342,7 @@ class _Feeder:
                 trace.add_batch(tb, vb, res)
             records.extend(res.records)
             for rej in res.rejected:
-                if rej.reason == "spike":
+                if rej.reason in READING_REASONS:
                     continue
                 self._problem(name, rej.reason, int(p[a + rej.position]) if rej.position >= 0 else -1)
         self.held_total -= upto
@@ -1008,7 +1008,7 @@ def replay_series(series: dict[str, StreamSeries], settings_for: Callable[[str],
                 observe(name, t[a:a + BATCH], v[a:a + BATCH], res)
             records.extend(res.records)
             for rej in res.rejected:
-                if rej.reason == "spike":
+                if rej.reason in READING_REASONS:
                     continue
                 where = s.where(a + rej.position) if rej.position >= 0 else "?:0"
                 problems.append(f"{where}: stream {name}: {REASONS[rej.reason]}")

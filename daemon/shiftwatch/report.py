@@ -301,7 +301,7 @@ class StreamTrace:
                     self._spike(float(t[rej.position]), float(v[rej.position]))
                 elif rej.time == self._last[0]:
                     self._spike(*self._last)
-            elif rej.position >= 0:
+            elif rej.position >= 0 and rej.reason != "warmup_shift":  # a real reading, plotted
                 keep[rej.position] = False
         ts, vs = t[keep], v[keep]
         self.envelope.add(ts, vs)

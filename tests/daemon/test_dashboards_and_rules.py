@@ -189,6 +189,10 @@ def test_the_rules_fire_when_they_should_and_not_otherwise(tmp_path: Path) -> No
              "values": "0+6x60"},
             {"series": f'shiftwatch_samples_rejected_total{{{sel},stream="{fill_a}",reason="spike"}}',
              "values": "0+30x60"},
+            # ... and readings a new stream's warm-up set aside before a shift (warmup_shift):
+            # real readings, not bad input, so no alert either.
+            {"series": f'shiftwatch_samples_rejected_total{{{sel},stream="{fill_a}",reason="warmup_shift"}}',
+             "values": "0+30x60"},
         ], "alert_rule_test": [
             {"eval_time": "40m", "alertname": "ShiftwatchStreamStale", "exp_alerts": []},
             {"eval_time": "55m", "alertname": "ShiftwatchStreamStale",

@@ -24,10 +24,18 @@ REASONS: dict[str, str] = {
     "duplicate_time": "time stamp repeats one already accepted for this stream",
     "out_of_order": "time stamp is earlier than one already accepted for this stream",
     "spike": "lone outlier far from the current level (held one sample, then discarded)",
+    "warmup_shift": ("sample before a shift in a new stream's warm-up, too few samples after its start "
+                     "to report the shift at the plant's false-alarm rate: set aside, the warm-up "
+                     "started again from the shift (its level is learned as the baseline)"),
     "time_ahead": "time stamp is too far ahead of the receiving clock",
     "time_behind": "time stamp is too far behind the receiving clock",
     "stream_cap": "stream limit reached; new stream not admitted",
 }
+
+
+#: Reasons the engine gives for real readings it sets aside (not bad input): a replay
+#: counts them in its summary, not among the file's problems, and its report plots them.
+READING_REASONS = frozenset(("spike", "warmup_shift"))
 
 
 #: Largest magnitude of an accepted value.  Squares and sums of squares of

@@ -439,6 +439,34 @@ def split_evidence(values: FloatArray, min_segment: int = 3, phi_margin: float =
     return SplitEvidence(k, t, p, before, after, math.sqrt(rss / df), max(-0.95, min(0.95, r)))
 
 
+@functools.lru_cache(maxsize=4096)
+def split_critical_t(n: int, p_below: float, min_segment: int = 3) -> float:
+    """The t statistic :func:`split_evidence` must exceed on ``n`` samples for its
+    Bonferroni bound to fall below ``p_below``: the largest t (to 1e-12 of itself, by
+    bisection) whose bound is still at least ``p_below``, so a split called at that bound
+    has ``t`` above it.  The threshold a record names for the split test (``warmup_split``).
+
+    >>> round(split_critical_t(200, 0.5 / 604800.0), 2)
+    6.15
+    """
+    df = n - 2.0
+    splits = n - 2 * max(int(min_segment), 2) + 1
+
+    def bound(t: float) -> float:
+        return splits * 2.0 * student_t_tail(t, df)
+
+    lo, hi = 0.0, 1.0
+    while bound(hi) >= p_below:
+        lo, hi = hi, hi * 2.0
+    while hi - lo > 1e-12 * hi:
+        mid = 0.5 * (lo + hi)
+        if bound(mid) >= p_below:
+            lo = mid
+        else:
+            hi = mid
+    return lo
+
+
 #: :func:`split_screen` trusts its sum of squares to this relative error (the sums of the same
 #: non-negative terms in two orders differ by at most ``2 (n - 1)`` units in the last place,
 #: 2e-11 of the sum at 100,000 samples), and its critical t to these margins.
