@@ -28,6 +28,9 @@ from typing import Any
 _DEFAULT_EPHEMERAL = (32768, 60999)
 #: Ports below this are left to the system's own services.
 _LOWEST_PORT = 10000
+#: Ports left to callers that need several consecutive ports (the tests' NATS clusters and
+#: shards bind base + k): free_port() never gives one of these.
+BLOCK_PORTS = (20000, 32000)
 
 
 def ephemeral_ports() -> tuple[int, int]:
@@ -43,10 +46,18 @@ def ephemeral_ports() -> tuple[int, int]:
     return (low, high) if 1 <= low <= high <= 65535 else _DEFAULT_EPHEMERAL
 
 
-def _outside_ephemeral() -> list[range]:
+def _single_ports() -> list[range]:
+    """The even ports outside the kernel's range and outside BLOCK_PORTS, as ranges."""
     low, high = ephemeral_ports()
-    spans = [range(_LOWEST_PORT, max(_LOWEST_PORT, low)), range(high + 1, 65536)]
-    return [r for r in spans if len(r)]
+    spans: list[tuple[int, int]] = [(_LOWEST_PORT, low), (high + 1, 65536)]
+    cut: list[tuple[int, int]] = []
+    for a, b in spans:
+        for lo, hi in ((a, min(b, BLOCK_PORTS[0])), (max(a, BLOCK_PORTS[1]), b)):
+            lo = max(lo, _LOWEST_PORT)
+            lo += lo % 2
+            if lo < hi:
+                cut.append((lo, hi))
+    return [range(lo, hi, 2) for lo, hi in cut]
 
 
 _port_lock = threading.Lock()
@@ -56,16 +67,18 @@ if hasattr(os, "register_at_fork"):  # a forked child walks from its own place, 
 
 
 def free_port() -> int:
-    """A TCP port on 127.0.0.1 that nothing listens on right now, outside the kernel's range.
+    """An even TCP port on 127.0.0.1 that nothing listens on right now, outside the kernel's range.
 
     Binding port 0 would give a port of the ephemeral range, which the kernel also hands to
     every outgoing connection and every other port-0 bind: between this pick and the
     server's own bind, another process's client could take it (the suite runs in several
     workers).  So the ports come from outside that range, each process walking them from
-    its own starting place, and each is checked by binding it.  Falls back to port 0 when
-    there is no port outside the range.
+    its own starting place, and each is checked by binding it.  Only even ports, and none of
+    BLOCK_PORTS: a caller may use the port after the one it got (a NATS server's MQTT
+    listener at port + 1), or a block of ports there, and no other call hands those out.
+    Falls back to port 0 when there is no such port.
     """
-    spans = _outside_ephemeral()
+    spans = _single_ports()
     total = sum(len(r) for r in spans)
     with _port_lock:
         if not _port_walk:

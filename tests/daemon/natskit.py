@@ -25,7 +25,7 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
-from shiftwatch.broker import find_program, hold, port_open, wait_until
+from shiftwatch.broker import BLOCK_PORTS, find_program, hold, port_open, wait_until
 
 #: The servers' MQTT ack_wait: unacknowledged messages are sent again after it (the
 #: daemons' cluster.redelivery_wait in the tests is above it).
@@ -38,8 +38,9 @@ PLANT = "brackenfield"
 #: 60999 by default), whose ports the kernel also gives to outgoing connections as their
 #: local ports.  A port taken from that range and bound later (a shard's metrics port at
 #: base + k, a NATS server started again on its port) could meanwhile be the local port
-#: of some connection, and the bind then fails with "Address already in use".
-PORT_RANGE = (20000, 32000)
+#: of some connection, and the bind then fails with "Address already in use".  free_port()
+#: never gives a port of this range, so a block picked here stays free for its base + k.
+PORT_RANGE = BLOCK_PORTS
 
 
 def _bindable(port: int) -> bool:

@@ -80,3 +80,16 @@ def test_a_forked_child_does_not_walk_its_parents_sequence() -> None:
 
 def _ports(n: int) -> list[int]:
     return [free_port() for _ in range(n)]
+
+
+def test_the_port_after_a_free_port_and_the_block_range_are_never_given_out() -> None:
+    """CI: with ports walked one by one, the next call gave ``port + 1``, the MQTT listener
+    a NATS server of the tests was about to bind beside its client port, and ports of the
+    blocks shards bind at ``base + k`` (tests/daemon/natskit.py, ``free_port_block``)."""
+    from shiftwatch.broker import BLOCK_PORTS
+
+    ports = [free_port() for _ in range(300)]
+    assert all(p % 2 == 0 for p in ports)
+    assert not [p for p in ports if BLOCK_PORTS[0] <= p < BLOCK_PORTS[1]]
+    given = set(ports)
+    assert not [p for p in ports if p + 1 in given]
