@@ -19,6 +19,7 @@ chosen settings next to a more and a less sensitive choice for the chart of
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -155,8 +156,14 @@ def bank_run_lengths(ks: tuple[float, ...], hs: tuple[float, ...], shifts: tuple
         if sf == 0.0:
             out.append((float(arl0), float("nan")))
             continue
-        arl = min(cusum_arl(k, h, sf) for k, h in zip(ks, hs))
-        med = min(cusum_run_length_quantile(k, h, sf, 0.5) for k, h in zip(ks, hs))
+        arls = [cusum_arl(k, h, sf) for k, h in zip(ks, hs)]
+        meds = [cusum_run_length_quantile(k, h, sf, 0.5) for k, h in zip(ks, hs)]
+        # min() skips a nan depending on its place (min(5, nan) is 5, min(nan, 5) nan):
+        # a bound taken past a nan would be no bound, so refuse one outright.
+        if any(math.isnan(v) for v in (*arls, *meds)):
+            raise ArithmeticError(f"a chart's run length at shift {sf} is not a number")
+        arl = min(arls)
+        med = min(meds)
         out.append((arl, med))
     return out
 
