@@ -17,15 +17,18 @@ import numpy as np
 import pytest
 
 from shiftwatch.core.arl import (
+    CHAIN_H_MAX,
     SIEGMUND_CORRECTION,
     cusum_arl,
     cusum_run_length_quantile,
     siegmund_arl,
 )
-from shiftwatch.core.design import design
+from shiftwatch.core.design import design, sensitivity
 
 # The charts `design` gives for min_shift 0.1 and ARL 1e9 (the CUSUM, then the bank's four).
-CHARTS = [(0.05, 160.02), (0.034, 242.94), (0.0454, 188.25), (0.068, 131.07), (0.0907, 101.18)]
+# The last is a chart at h = CHAIN_H_MAX, the longest `design` tabulates.
+CHARTS = [(0.05, 160.02), (0.034, 242.94), (0.0454, 188.25), (0.068, 131.07), (0.0907, 101.18),
+          (0.02, CHAIN_H_MAX)]
 
 
 def _simulated_run_lengths(k: float, h: float, shift: float, runs: int, rng: np.random.Generator) -> np.ndarray:
@@ -101,3 +104,13 @@ def test_design_min_shift_0_1_at_arl_1e9_has_finite_figures_and_slow_bank_median
         climb = min(hh / (r.shift - kk) for kk, hh in zip(d.bank_ks, d.bank_hs))
         assert r.bank_median >= 0.9 * climb
         assert r.cusum_median >= 0.9 * d.h / (r.shift - d.k)
+
+
+def test_design_refuses_charts_beyond_chain_h_max() -> None:
+    # At ARL 1e9 a min_shift of 0.05 needs h above 300 (Siegmund's approximation,
+    # Montgomery ch. 9, gives h of about 293 for the CUSUM's k = 0.025 alone and more for
+    # the bank's smaller k): beyond what the chain resolves, so no table is made.
+    with pytest.raises(ValueError, match="computed only up to h = 300"):
+        design(0.05, 10000 * 7 * 86400.0, 1.0, runs=20)
+    with pytest.raises(ValueError, match="computed only up to h = 300"):
+        sensitivity(0.05, 10000 * 7 * 86400.0, 1.0, shifts=(0.0, 1.0))
