@@ -746,13 +746,21 @@ def cmd_design(args: argparse.Namespace) -> int:
         if not parent.is_dir():
             _err(f"--chart {args.chart}: cannot write the chart: no directory {parent}")
             return EXIT_USAGE
-    d = design(args.min_shift, every, interval)
+    try:
+        d = design(args.min_shift, every, interval)
+    except ValueError as exc:  # charts too long for the run-length figures (check_tabulable)
+        _err(str(exc))
+        return EXIT_USAGE
     curves = None
     if args.chart:
         from shiftwatch.core.design import sensitivity
         from shiftwatch.design_chart import ChartError, draw_sensitivity
 
-        curves = sensitivity(args.min_shift, every, interval)
+        try:
+            curves = sensitivity(args.min_shift, every, interval)
+        except ValueError as exc:
+            _err(str(exc))
+            return EXIT_USAGE
         try:
             draw_sensitivity(curves, interval, args.chart)
         except ChartError as exc:

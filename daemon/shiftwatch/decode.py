@@ -137,7 +137,7 @@ import msgspec
 import numpy as np
 from numpy.typing import NDArray
 
-from shiftwatch.core.timefmt import RFC3339, TIME_MIN, parse_rfc3339
+from shiftwatch.core.timefmt import RFC3339, TIME_MAX_MS, TIME_MIN, parse_rfc3339
 
 FloatArray = NDArray[np.float64]
 
@@ -304,7 +304,7 @@ _MS_THRESHOLD = EPOCH_MS_ABOVE
 #: writes no later year (date-fullyear is 4DIGIT), and replay reads none; a number past it is
 #: most often epoch microseconds or nanoseconds, which the millisecond rule would read as the
 #: year 58,000 or later.
-_RAW_TIME_MAX = 253402300799999.0
+_RAW_TIME_MAX = float(TIME_MAX_MS)  # core.timefmt, the one limit
 #: The earliest time read: 0001-01-01T00:00:00Z (RFC 3339's date-fullyear is 4DIGIT, and
 #: there is no year 0000 in datetime's calendar).  An earlier time cannot be written in a record.
 _TIME_MIN = TIME_MIN

@@ -42,6 +42,8 @@ from typing import TYPE_CHECKING, Any, BinaryIO, Self
 import numpy as np
 from numpy.typing import NDArray
 
+from shiftwatch.core import timefmt as _timefmt
+
 if TYPE_CHECKING:
     from pathlib import Path
     from types import ModuleType
@@ -227,10 +229,10 @@ class RepeatedHour:
         return t, moved
 
 
-#: Times a record can be written at (RFC 3339 has four-digit years): from the year 1 to the last
-#: second of the year 9999, epoch seconds.  Epoch microseconds or nanoseconds, read as
-#: milliseconds by the daemon's rule, fall far past it.
-TIME_MIN, TIME_MAX = -62135596800.0, 253402300799.0
+#: Times a record can be written at: core.timefmt's TIME_MIN and TIME_MAX, the year 1 to the last
+#: millisecond of the year 9999, as the daemon reads them.  Epoch microseconds or nanoseconds,
+#: read as milliseconds by the daemon's rule, fall far past it.
+TIME_MIN, TIME_MAX = _timefmt.TIME_MIN, _timefmt.TIME_MAX
 _EPOCH_HINT = ("(shiftwatch reads epoch seconds, and epoch milliseconds above 100,000,000,000: divide epoch "
                "microseconds or nanoseconds first)")
 

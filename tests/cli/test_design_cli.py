@@ -173,3 +173,28 @@ def test_design_within_the_range_says_nothing_of_it(cli) -> None:
     assert res.returncode == 0, res.stderr
     assert "in-control average run length (ARL): 604,800 samples" in res.stdout  # 7 x 86,400 s at 1 s
     assert "asks for an ARL" not in res.stdout
+
+
+def test_design_at_min_shift_0_1_and_arl_1e9_prints_finite_delays_and_no_warning(cli) -> None:
+    # The reviewer's reproduction: numpy overflow warnings, a nan CUSUM ARL at 3 and
+    # 4 sigma, and a bank delay of 4 samples at 1.5 to 4 sigma for charts with h of 101
+    # to 243.  A chart climbs mu - k a sample, so it needs about h / (mu - k) samples
+    # (Wald's approximation, common practice, from memory): 26 or more at 4 sigma.
+    res = cli("design", "--min-shift", "0.1", "--false-alarm-every", "10000w", "--json")
+    assert res.returncode == 0, res.stderr
+    assert "RuntimeWarning" not in res.stderr
+    data = json.loads(res.stdout)
+    for row in data["rows"]:
+        assert math.isfinite(row["cusum_arl"]) and math.isfinite(row["cusum_median_delay"])
+        if row["shift_sigma"] >= 1.5:
+            assert row["multi_cusum_median_delay_at_most"] >= 0.9 * 101.18 / (row["shift_sigma"] - 0.0907)
+
+
+def test_design_refuses_charts_too_long_for_the_run_length_figures(cli) -> None:
+    # min_shift 0.05 at ARL 1e9 needs charts with h above 300, where the chain's 400
+    # nodes no longer resolve the run lengths: an error in words, not a wrong table.
+    res = cli("design", "--min-shift", "0.05", "--false-alarm-every", "10000w")
+    assert res.returncode != 0
+    assert "Traceback" not in res.stderr
+    assert "computed only up to h = 300" in res.stderr
+    assert res.stdout == ""

@@ -226,3 +226,32 @@ def test_a_snapshot_entry_whose_values_are_text_is_reported_under_values() -> No
     with pytest.raises(ValueError, match=r"^values: ") as err:
         StreamEngine("r/a", DetectionSettings()).set_state(state)
     assert "times" not in str(err.value), err.value
+
+
+def test_the_last_second_of_9999_is_read_alike_as_text_as_epoch_ms_and_from_a_snapshot() -> None:
+    # RFC 3339 section 5.6 allows a fraction of the second; 9999-12-31T23:59:59.5Z is an
+    # instant of the year 9999 (END_9999 from calendar.timegm, plus half a second).  The
+    # decoder took it as epoch ms 253402300799500 but refused it as text, and a snapshot
+    # took up to TIME_MAX + 0.999: one limit now, the last millisecond of the year 9999.
+    from shiftwatch import sources
+    from shiftwatch.core import engine, timefmt
+
+    for frac, ms in ((".5", 500), (".999", 999)):
+        want = END_9999 + ms / 1000.0
+        text = decode(f'{{"v": 1, "ts": "9999-12-31T23:59:59{frac}Z"}}'.encode(), "json", value_path="v",
+                      time_path="ts", now=NOW)
+        raw = decode(f'{{"v": 1, "ts": {int(END_9999) * 1000 + ms}}}'.encode(), "json", value_path="v",
+                     time_path="ts", now=NOW)
+        assert text.problems == [] and raw.problems == [], (text, raw)
+        assert text.readings[0].time == raw.readings[0].time == pytest.approx(want, abs=1e-6)
+    # past the last millisecond: refused as text and as epoch ms alike
+    text = decode(b'{"v": 1, "ts": "9999-12-31T23:59:59.9995Z"}', "json", value_path="v", time_path="ts",
+                  now=NOW)
+    raw = decode(b'{"v": 1, "ts": 253402300799999.5}', "json", value_path="v", time_path="ts", now=NOW)
+    assert reasons(text) == reasons(raw) == ["bad_time"], (text, raw)
+    # the limit is defined once, and a snapshot holds a time up to it and no further
+    assert sources.TIME_MAX == timefmt.TIME_MAX == END_9999 + 0.999
+    assert timefmt.format_time(timefmt.TIME_MAX) == "9999-12-31T23:59:59.999Z"
+    engine._time_array([timefmt.TIME_MAX], "t")
+    with pytest.raises(ValueError, match="past the year 9999"):
+        engine._time_array([timefmt.TIME_MAX + 0.0005], "t")

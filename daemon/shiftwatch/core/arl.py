@@ -38,6 +38,7 @@ from numpy.typing import NDArray
 FloatArray = NDArray[np.float64]
 
 __all__ = [
+    "CHAIN_H_MAX",
     "arl_table",
     "brook_evans_arl",
     "cusum_arl",
@@ -53,6 +54,13 @@ _SQRT2 = math.sqrt(2.0)
 _INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
 _ERFC = np.frompyfunc(math.erfc, 1, 1)
 _MAX_NODES = 400
+#: The largest h whose figures the chain gives to about 1e-6: its nodes are
+#: capped at _MAX_NODES, and 400 nodes agree with 1600 to 6e-8 at h = 300 but
+#: only to 2e-3 at h = 400, 3e-2 at 500 and 0.5 at 700 (the run lengths at
+#: 0 to 1.5 sigma with k of 0.01 to 0.05).  :func:`shiftwatch.core.design.design`
+#: tabulates no chart beyond it.
+CHAIN_H_MAX = 300.0
+_MAX_BITS = 200  # binary lifting of a run-length quantile: up to 2**200 samples
 
 
 # --------------------------------------------------------------------------
@@ -166,6 +174,12 @@ class _Chain:
         return float(1.0 + to_zero * lv[0] + kern @ lv[1:])
 
 
+#: The right-hand side of :func:`_gth_solve` is scaled down by 2**_RESCALE_BITS
+#: whenever an entry passes 2**_RESCALE_AT (see there).
+_RESCALE_AT = 960
+_RESCALE_BITS = 900
+
+
 def _gth_solve(a: FloatArray, exit_p: FloatArray, b: FloatArray) -> FloatArray:
     """Solve ``(I - a) x = b`` for a sub-stochastic ``a`` without subtractions.
 
@@ -174,12 +188,26 @@ def _gth_solve(a: FloatArray, exit_p: FloatArray, b: FloatArray) -> FloatArray:
     exit probability plus its off-diagonal mass, so all arithmetic adds
     non-negative numbers.  The relative error stays near machine precision
     however close ``I - a`` is to singular (Grassmann, Taksar & Heyman 1985).
+
+    The solution can exceed the range of a float: the lower sum of a chart
+    with h of 160 on data 3 sigma up has an ARL of about exp(2 * 3.05 * 161).
+    The eliminated right-hand side (expected visits) grows towards it, so it
+    is carried as ``rhs * 2**scale``: scaled down by 2**900 whenever an entry
+    passes 2**960 (the factors ``f`` stay below 2**53 / d, far from that).
+    The system is linear in ``b``, so the scaling changes nothing else; an
+    entry whose true value lies beyond the float range comes out ``inf``, and
+    one that falls below 2**-1074 of the largest is lost as zero, which
+    cannot matter to the ARL from the zero state, the largest of all.  When
+    no entry passes 2**960 (every ARL a design uses) the arithmetic is the
+    unscaled one, bit for bit.
     """
     n = a.shape[0]
     g = a.copy()  # g[i, j] = -(I - a)[i, j] for i != j, i.e. a[i, j]
     e = exit_p.astype(np.float64).copy()
     rhs = b.astype(np.float64).copy()
     piv = np.empty(n)
+    scale = 0  # the solution is x * 2**scale
+    limit = math.ldexp(1.0, _RESCALE_AT)
     for p in range(n):
         d = e[p] + g[p, p + 1 :].sum()
         if d <= 0.0:  # a closed class: the run never ends from here
@@ -189,15 +217,37 @@ def _gth_solve(a: FloatArray, exit_p: FloatArray, b: FloatArray) -> FloatArray:
             f = g[p + 1 :, p] / d
             g[p + 1 :, p + 1 :] += f[:, None] * g[p, p + 1 :][None, :]
             e[p + 1 :] += f * e[p]
+            if rhs[p] > 0.0 and f.max() > limit / rhs[p]:
+                rhs = np.ldexp(rhs, -_RESCALE_BITS)
+                scale += _RESCALE_BITS
             rhs[p + 1 :] += f * rhs[p]
+            if rhs[p + 1 :].max() > limit:
+                rhs = np.ldexp(rhs, -_RESCALE_BITS)
+                scale += _RESCALE_BITS
             # the new diagonal is rebuilt at its pivot step; drop what
             # accumulated there so it is not counted as off-diagonal mass
             idx = np.arange(p + 1, n)
             g[idx, idx] = 0.0
     x = np.empty(n)
     for i in range(n - 1, -1, -1):
-        x[i] = (rhs[i] + g[i, i + 1 :] @ x[i + 1 :]) / piv[i]
-    return x
+        xi = (rhs[i] + g[i, i + 1 :] @ x[i + 1 :]) / piv[i]
+        if xi > limit:  # back-substitution grows x too: keep it in range
+            rhs = np.ldexp(rhs, -_RESCALE_BITS)
+            x[i + 1 :] = np.ldexp(x[i + 1 :], -_RESCALE_BITS)
+            scale += _RESCALE_BITS
+            xi = (rhs[i] + g[i, i + 1 :] @ x[i + 1 :]) / piv[i]
+        x[i] = xi
+    if scale == 0:
+        return x
+    return _unscale(x, scale)
+
+
+def _unscale(x: FloatArray, scale: int) -> FloatArray:
+    """``x * 2**scale``, ``inf`` where that lies beyond the float range (no overflow warning)."""
+    mant, expo = np.frexp(x)
+    big = expo.astype(np.int64) + scale > 1024
+    out: FloatArray = np.where(big, np.inf, np.ldexp(mant, np.minimum(expo + scale, 1024)))
+    return out
 
 
 @functools.lru_cache(maxsize=256)
@@ -398,8 +448,11 @@ def _quantile_cached(k: float, h: float, mu: float, q: float, sides: int) -> flo
     # Enough doublings to pass the q-quantile: the run length is roughly
     # geometric beyond the mean, so ~ARL * (-log(1 - q) + 10) is ample.
     arl = cusum_arl(k, h, mu, sides=sides)
+    if math.isnan(arl):
+        # max(2.0, nan) is 2.0: a nan here would silently give a quantile of 4 or less
+        raise ArithmeticError(f"the ARL of k={k!r}, h={h!r}, shift={mu!r} is not a number")
     bound = max(2.0, arl * (-math.log1p(-q) + 10.0))
-    nbits = min(200, max(1, math.ceil(math.log2(bound)) + 1))
+    nbits = _MAX_BITS if math.isinf(bound) else min(_MAX_BITS, max(1, math.ceil(math.log2(bound)) + 1))
     powers = [_survival_powers(c, nbits) for c in chains]
     vecs = [np.ones(c.a.shape[0]) for c in chains]
     n = 0  # invariant: P(RL > n) > 1 - q
@@ -412,6 +465,8 @@ def _quantile_cached(k: float, h: float, mu: float, q: float, sides: int) -> flo
         if surv > target:
             vecs = cand
             n += 1 << j
+    if n == (1 << nbits) - 1 and nbits == _MAX_BITS:
+        return math.inf  # beyond 2**200 samples: past any horizon, not a delay to print
     return float(n + 1)
 
 

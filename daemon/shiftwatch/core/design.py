@@ -19,11 +19,12 @@ chosen settings next to a more and a less sensitive choice for the chart of
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
 
-from shiftwatch.core.arl import cusum_arl, cusum_run_length_quantile, design_h
+from shiftwatch.core.arl import CHAIN_H_MAX, cusum_arl, cusum_run_length_quantile, design_h
 from shiftwatch.core.glr import GlrTest
 from shiftwatch.core.multicusum import MultiCusumTest
 from shiftwatch.core.settings import ARL_RANGE
@@ -114,8 +115,9 @@ def design(min_shift_sigma: float, false_alarm_every: float, interval: float, *,
     arl0 = min(max(asked, ARL_RANGE[0]), ARL_RANGE[1])
     k = min_shift_sigma / 2.0
     h = design_h(arl0, k)
-    glr = GlrTest.design(arl0, window=glr_window)
     bank = _steady_bank(arl0, min_shift_sigma)
+    check_tabulable(min_shift_sigma, arl0, (h, *bank.hs))
+    glr = GlrTest.design(arl0, window=glr_window)
     rows = []
     for s, (b_arl, b_med) in zip(shifts, bank_run_lengths(bank.ks, bank.hs, shifts, arl0=arl0)):
         rows.append(DesignRow(
@@ -130,6 +132,30 @@ def design(min_shift_sigma: float, false_alarm_every: float, interval: float, *,
                   interval=interval, arl0=arl0, k=k, h=h, glr_threshold=glr.threshold,
                   glr_window=glr_window, rows=tuple(rows), bank_ks=bank.ks, bank_hs=bank.hs,
                   arl0_asked=asked)
+
+
+def check_tabulable(min_shift_sigma: float, arl0: float, hs: tuple[float, ...]) -> None:
+    """Refuse a design whose charts are too long for the chain to give their figures.
+
+    Beyond ``h = CHAIN_H_MAX`` (300 sigma) the chain's capped nodes no longer
+    resolve the run lengths (see :data:`.arl.CHAIN_H_MAX`): the table would be
+    finite but wrong, so none is made.  At an ARL of 1e9 that is a
+    ``min_shift_sigma`` below about 0.1.
+
+    Examples
+    --------
+    >>> check_tabulable(0.1, 1e9, (160.0, 242.9))
+    >>> check_tabulable(0.03, 1e9, (455.8,))
+    Traceback (most recent call last):
+    ...
+    ValueError: min_shift_sigma 0.03 at an ARL of 1e+09 samples needs charts with h up to 455.8 sigma; the run-length figures are computed only up to h = 300: ask for a larger smallest shift or fewer samples between false alarms
+    """
+    worst = max(hs)
+    if worst > CHAIN_H_MAX:
+        raise ValueError(
+            f"min_shift_sigma {min_shift_sigma:g} at an ARL of {arl0:.4g} samples needs charts with "
+            f"h up to {worst:.1f} sigma; the run-length figures are computed only up to "
+            f"h = {CHAIN_H_MAX:g}: ask for a larger smallest shift or fewer samples between false alarms")
 
 
 def bank_run_lengths(ks: tuple[float, ...], hs: tuple[float, ...], shifts: tuple[float, ...] | list[float],
@@ -155,8 +181,14 @@ def bank_run_lengths(ks: tuple[float, ...], hs: tuple[float, ...], shifts: tuple
         if sf == 0.0:
             out.append((float(arl0), float("nan")))
             continue
-        arl = min(cusum_arl(k, h, sf) for k, h in zip(ks, hs))
-        med = min(cusum_run_length_quantile(k, h, sf, 0.5) for k, h in zip(ks, hs))
+        arls = [cusum_arl(k, h, sf) for k, h in zip(ks, hs)]
+        meds = [cusum_run_length_quantile(k, h, sf, 0.5) for k, h in zip(ks, hs)]
+        # min() skips a nan depending on its place (min(5, nan) is 5, min(nan, 5) nan):
+        # a bound taken past a nan would be no bound, so refuse one outright.
+        if any(math.isnan(v) for v in (*arls, *meds)):
+            raise ArithmeticError(f"a chart's run length at shift {sf} is not a number")
+        arl = min(arls)
+        med = min(meds)
         out.append((arl, med))
     return out
 
@@ -210,6 +242,7 @@ def sensitivity(min_shift_sigma: float, false_alarm_every: float, interval: floa
                          ("less sensitive", false_alarm_every * factor)):
         arl0 = min(max(every / interval, ARL_RANGE[0]), ARL_RANGE[1])
         bank = _steady_bank(arl0, min_shift_sigma)
+        check_tabulable(min_shift_sigma, arl0, bank.hs)
         rl = bank_run_lengths(bank.ks, bank.hs, grid, arl0=arl0)
         out.append(SensitivityCurve(label=label, min_shift_sigma=min_shift_sigma, false_alarm_every=every,
                                     arl0=arl0, shifts=tuple(float(s) for s in grid),

@@ -2835,8 +2835,8 @@ def _time_array(v: Any, name: str) -> FloatArray:
     """Saved sample times: finite, and in the years 1 to 9999 that a record can be written at
     (an earlier version took such times from payloads; the status page could not show them)."""
     a = _finite_array(v, name)
-    # up to the last millisecond of the year 9999, the decoder's last epoch-milliseconds time
-    if a.shape[0] and not (TIME_MIN <= float(a.min()) and float(a.max()) <= TIME_MAX + 0.999):
+    # up to the last millisecond of the year 9999, the limit the decoder and replay use too
+    if a.shape[0] and not (TIME_MIN <= float(a.min()) and float(a.max()) <= TIME_MAX):
         wrong = float(a.min()) if float(a.min()) < TIME_MIN else float(a.max())
         raise ValueError(f"{name}: holds the time {wrong:.17g}, "
                          + ("before the year 1" if wrong < TIME_MIN else "past the year 9999"))

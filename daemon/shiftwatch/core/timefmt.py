@@ -17,8 +17,12 @@ from datetime import UTC, datetime
 RFC3339 = re.compile(
     r"(\d{4}-\d{2}-\d{2})[Tt ](\d{2}:\d{2}:\d{2}(?:\.\d+)?)([Zz]|[+-](?:[01]\d|2[0-3]):[0-5]\d)?", re.ASCII)
 #: The times a record can be written at (RFC 3339 has four-digit years): from the year 1 to the
-#: last second of the year 9999, epoch seconds (replay's ``sources.TIME_MIN``, ``TIME_MAX``).
-TIME_MIN, TIME_MAX = -62135596800.0, 253402300799.0
+#: last millisecond of the year 9999, 9999-12-31T23:59:59.999Z, the last time a record's
+#: millisecond format can write.  The one limit for text, epoch milliseconds, replay and
+#: snapshots alike: ``TIME_MAX_MS`` is it in epoch milliseconds, and ``TIME_MAX`` in epoch
+#: seconds is the same rational, correctly rounded (as the decoder's ms / 1000 is).
+TIME_MAX_MS = 253402300799999
+TIME_MIN, TIME_MAX = -62135596800.0, TIME_MAX_MS / 1000
 #: What an RFC 3339 time looks like, for messages about one that is not.
 RFC3339_FORM = ("an RFC 3339 time has a date, a time of day to the second and a UTC offset, as in "
                 "2026-03-02T06:00:00Z or 2026-03-02 07:00:00.5+01:00")
