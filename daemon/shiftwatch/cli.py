@@ -15,7 +15,7 @@ import math
 import os
 import sys
 import time
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import Any
 
 from shiftwatch import __version__
@@ -31,26 +31,23 @@ EXIT_BAD_DATA = 1  # some rows or values were bad; the good ones were processed
 EXIT_USAGE = 2  # the command could not run at all (bad file, header, config)
 
 
-def _count(text: str) -> int:
-    """A whole number of 0 or more (an argparse type)."""
-    try:
-        n = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if n < 0:
-        raise argparse.ArgumentTypeError(f"expected 0 or more, got {n}")
-    return n
+def _whole_at_least(least: int) -> Callable[[str], int]:
+    """An argparse type: a whole number of ``least`` or more."""
+
+    def parse(text: str) -> int:
+        try:
+            n = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+        if n < least:
+            raise argparse.ArgumentTypeError(f"expected {least} or more, got {n}")
+        return n
+
+    return parse
 
 
-def _rows(text: str) -> int:
-    """A whole number of 1 or more (an argparse type): ``status --limit 0`` showed one row."""
-    try:
-        n = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if n < 1:
-        raise argparse.ArgumentTypeError(f"expected 1 or more, got {n}")
-    return n
+_count = _whole_at_least(0)
+_rows = _whole_at_least(1)  # ``status --limit 0`` showed one row
 
 
 def _shown(text: str) -> str:

@@ -35,6 +35,7 @@ from __future__ import annotations
 
 import functools
 import math
+from collections.abc import Callable
 from typing import Any, NamedTuple
 
 import numpy as np
@@ -455,12 +456,22 @@ def split_critical_t(n: int, p_below: float, min_segment: int = 3) -> float:
     def bound(t: float) -> float:
         return splits * 2.0 * student_t_tail(t, df)
 
+    t = _last_t_holding(bound, p_below)
+    assert t is not None  # no cap
+    return t
+
+
+def _last_t_holding(bound: Callable[[float], float], goal: float, cap: float = math.inf) -> float | None:
+    """The largest t (to 1e-12 of itself, by doubling then bisection) at which ``bound``,
+    falling as t grows, is still at least ``goal``; None when that t passes ``cap``."""
     lo, hi = 0.0, 1.0
-    while bound(hi) >= p_below:
+    while bound(hi) >= goal:
         lo, hi = hi, hi * 2.0
+        if hi > cap:
+            return None
     while hi - lo > 1e-12 * hi:
         mid = 0.5 * (lo + hi)
-        if bound(mid) >= p_below:
+        if bound(mid) >= goal:
             lo = mid
         else:
             hi = mid
@@ -490,17 +501,9 @@ def _split_t2_none(n: int, m: int, p_below: float) -> float:
 
     if bound(0.0) < goal:
         return 0.0
-    lo, hi = 0.0, 1.0
-    while bound(hi) >= goal:
-        lo, hi = hi, hi * 2.0
-        if hi > 1e12:
-            return 0.0
-    while hi - lo > 1e-12 * hi:
-        mid = 0.5 * (lo + hi)
-        if bound(mid) >= goal:
-            lo = mid
-        else:
-            hi = mid
+    lo = _last_t_holding(bound, goal, cap=1e12)
+    if lo is None:
+        return 0.0
     t = lo * (1.0 - _SCREEN_T)
     return t * t
 
