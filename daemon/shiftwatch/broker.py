@@ -60,8 +60,58 @@ def _single_ports() -> list[range]:
     return [range(lo, hi, 2) for lo, hi in cut]
 
 
+#: How long a port free_port() handed out stays claimed for every process of this user
+#: (long enough for the caller's server to start and bind it).
+CLAIM_SECONDS = 120.0
+
+
+def _claims_dir() -> Path:
+    return Path(tempfile.gettempdir()) / f"shiftwatch-ports-{os.getuid()}"
+
+
+def _claim(port: int) -> bool:
+    """Note ``port`` as handed out, for every process of this user that calls free_port():
+    False when another one handed it out less than CLAIM_SECONDS ago.  The note is a file
+    made with O_EXCL (one process wins it); a stale note is taken over by renaming it away
+    first (one process wins that too).  Where no note can be written, True: the bind check
+    alone decides, as before."""
+    claims = _claims_dir()
+    try:
+        claims.mkdir(mode=0o700, exist_ok=True)
+    except OSError:
+        return True
+    path = claims / str(port)
+    for _ in range(3):
+        try:
+            fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o600)
+        except FileExistsError:
+            try:
+                age = time.time() - path.stat().st_mtime
+            except FileNotFoundError:
+                continue
+            if 0.0 <= age < CLAIM_SECONDS:
+                return False
+            away = claims / f"{port}.stale.{os.getpid()}"
+            try:
+                os.rename(path, away)
+            except FileNotFoundError:
+                return False  # another process took the stale note over first
+            except OSError:
+                return True
+            try:
+                os.unlink(away)
+            except OSError:
+                pass
+            continue
+        except OSError:
+            return True
+        os.close(fd)
+        return True
+    return False
+
+
 _port_lock = threading.Lock()
-_port_walk: list[int] = []  # [next index]; each process starts at its own place (its pid)
+_port_walk: list[int] = []  # [next index]; each process starts at a random place
 if hasattr(os, "register_at_fork"):  # a forked child walks from its own place, not its parent's
     os.register_at_fork(after_in_child=_port_walk.clear)
 
@@ -73,7 +123,9 @@ def free_port() -> int:
     every outgoing connection and every other port-0 bind: between this pick and the
     server's own bind, another process's client could take it (the suite runs in several
     workers).  So the ports come from outside that range, each process walking them from
-    its own starting place, and each is checked by binding it.  Only even ports, and none of
+    a random starting place, each checked by binding it and claimed for CLAIM_SECONDS in
+    a note every process of this user reads (two walks that meet, as the test workers'
+    did, never hand out the same port while its caller is starting its server).  Only even ports, and none of
     BLOCK_PORTS: a caller may use the port after the one it got (a NATS server's MQTT
     listener at port + 1), or a block of ports there, and no other call hands those out.
     Falls back to port 0 when there is no such port.
@@ -82,7 +134,7 @@ def free_port() -> int:
     total = sum(len(r) for r in spans)
     with _port_lock:
         if not _port_walk:
-            _port_walk.append((os.getpid() * 7919) % total if total else 0)
+            _port_walk.append(int.from_bytes(os.urandom(4), "big") % total if total else 0)
         for _ in range(total):
             k = _port_walk[0] % total
             _port_walk[0] = k + 1
@@ -96,6 +148,7 @@ def free_port() -> int:
                     s.bind(("127.0.0.1", port))
                 except OSError:
                     continue
+            if _claim(port):
                 return port
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
         s.bind(("127.0.0.1", 0))

@@ -106,3 +106,30 @@ def test_the_port_after_a_free_port_and_the_block_range_are_never_given_out() ->
     assert not [p for p in ports if BLOCK_PORTS[0] <= p < BLOCK_PORTS[1]]
     given = set(ports)
     assert not [p for p in ports if p + 1 in given]
+
+
+def test_two_processes_walking_the_same_ports_never_get_the_same_one() -> None:
+    """CI: two test workers' walks met (their starts 267 ports apart, from their pids), and
+    a port one had handed to its daemon, not bound yet, went to the other's daemon too
+    ("metrics endpoint 127.0.0.1:32604: Address already in use").  Here both processes are
+    set to walk from the same place, the worst case: the claims keep their ports apart."""
+    import multiprocessing
+
+    from shiftwatch import broker
+
+    ctx = multiprocessing.get_context("fork")
+    with broker._port_lock:
+        broker._port_walk[:] = [0]
+    with ctx.Pool(1) as pool:
+        child = pool.apply_async(_walk_from_zero, (100,))
+        mine = _ports(100)
+        theirs = child.get(timeout=60)
+    assert set(mine).isdisjoint(theirs)
+
+
+def _walk_from_zero(n: int) -> list[int]:
+    from shiftwatch import broker
+
+    with broker._port_lock:
+        broker._port_walk[:] = [0]
+    return _ports(n)
