@@ -60,8 +60,8 @@ def _single_ports() -> list[range]:
     return [range(lo, hi, 2) for lo, hi in cut]
 
 
-#: How long a port free_port() handed out stays claimed for every process of this user
-#: (long enough for the caller's server to start and bind it).
+#: A port free_port() handed out stays claimed for every process of this user for one to
+#: two of these (long enough for the caller's server to start and bind it).
 CLAIM_SECONDS = 120.0
 
 
@@ -71,43 +71,38 @@ def _claims_dir() -> Path:
 
 def _claim(port: int) -> bool:
     """Note ``port`` as handed out, for every process of this user that calls free_port():
-    False when another one handed it out less than CLAIM_SECONDS ago.  The note is a file
-    made with O_EXCL (one process wins it); a stale note is taken over by renaming it away
-    first (one process wins that too).  Where no note can be written, True: the bind check
-    alone decides, as before."""
+    False when another one handed it out within the last CLAIM_SECONDS or so.
+
+    A note is a file named by the port and the CLAIM_SECONDS-long period it was made in,
+    made with O_EXCL (of two processes in one period, one wins).  A note of the period
+    before or after counts too, checked after the file is made: two processes either side
+    of a period's end both give the port up, never both take it.  Notes two periods old
+    are removed.  Where no note can be written, True: the bind check alone decides."""
     claims = _claims_dir()
     try:
         claims.mkdir(mode=0o700, exist_ok=True)
     except OSError:
         return True
-    path = claims / str(port)
-    for _ in range(3):
-        try:
-            fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o600)
-        except FileExistsError:
-            try:
-                age = time.time() - path.stat().st_mtime
-            except FileNotFoundError:
-                continue
-            if 0.0 <= age < CLAIM_SECONDS:
-                return False
-            away = claims / f"{port}.stale.{os.getpid()}"
-            try:
-                os.rename(path, away)
-            except FileNotFoundError:
-                return False  # another process took the stale note over first
-            except OSError:
-                return True
-            try:
-                os.unlink(away)
-            except OSError:
-                pass
-            continue
-        except OSError:
-            return True
-        os.close(fd)
+    period = int(time.time() // CLAIM_SECONDS)
+    mine = claims / f"{port}.{period}"
+    try:
+        fd = os.open(mine, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o600)
+    except FileExistsError:
+        return False
+    except OSError:
         return True
-    return False
+    os.close(fd)
+    if (claims / f"{port}.{period - 1}").exists() or (claims / f"{port}.{period + 1}").exists():
+        try:
+            mine.unlink()
+        except OSError:
+            pass
+        return False
+    try:
+        (claims / f"{port}.{period - 2}").unlink()
+    except OSError:
+        pass
+    return True
 
 
 _port_lock = threading.Lock()
@@ -123,8 +118,8 @@ def free_port() -> int:
     every outgoing connection and every other port-0 bind: between this pick and the
     server's own bind, another process's client could take it (the suite runs in several
     workers).  So the ports come from outside that range, each process walking them from
-    a random starting place, each checked by binding it and claimed for CLAIM_SECONDS in
-    a note every process of this user reads (two walks that meet, as the test workers'
+    a random starting place, each checked by binding it and claimed for two to four
+    minutes in a note every process of this user reads (two walks that meet, as the test workers'
     did, never hand out the same port while its caller is starting its server).  Only even ports, and none of
     BLOCK_PORTS: a caller may use the port after the one it got (a NATS server's MQTT
     listener at port + 1), or a block of ports there, and no other call hands those out.
