@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import os
 import socket
+import subprocess
 from pathlib import Path
 
 import pytest
@@ -100,6 +101,17 @@ def test_an_unreadable_password_file_and_a_wrong_password_are_problems(cli, tmp_
         b.stop()
 
 
+def refused_by_check_and_run(cli, cfg: Path) -> list[subprocess.CompletedProcess[str]]:
+    """check, check --no-network and run on ``cfg``, each required to exit 2 (a usage error)."""
+    out = []
+    for args in (["check", "--config", str(cfg)], ["check", "--config", str(cfg), "--no-network"],
+                 ["run", "--config", str(cfg)]):
+        res = cli(*args)
+        assert res.returncode == 2, (args, res.stdout, res.stderr)
+        out.append(res)
+    return out
+
+
 @pytest.mark.parametrize("url", ["mqtt://127.0.0.1:99999", "mqtt://127.0.0.1:0", "mqtt://:1883",
                                  "mqtt://127.0.0.1:abc", "mqtt://[zz]:1"])
 def test_check_and_run_refuse_a_broker_url_without_a_traceback(cli, tmp_path: Path, url: str) -> None:
@@ -107,10 +119,7 @@ def test_check_and_run_refuse_a_broker_url_without_a_traceback(cli, tmp_path: Pa
     in ValueError or BrokerError tracebacks (or, for port 0, connected to 1883)."""
     cfg = write(tmp_path, f"streams: [{{topic: a/b}}]\nbroker: {{url: \"{url}\"}}\n"
                 f"metrics: {{listen: '127.0.0.1:0'}}\nstate: {{dir: '{tmp_path}'}}\n")
-    for args in (["check", "--config", str(cfg)], ["check", "--config", str(cfg), "--no-network"],
-                 ["run", "--config", str(cfg)]):
-        res = cli(*args)
-        assert res.returncode == 2, (args, res.stdout, res.stderr)
+    for res in refused_by_check_and_run(cli, cfg):
         assert f"{cfg}:2: broker.url: " in res.stderr, res.stderr
         assert "Traceback" not in res.stderr and "accepted a connection" not in res.stdout
 
@@ -123,10 +132,7 @@ def test_check_and_run_refuse_a_file_without_streams_as_a_reload_does(cli, tmp_p
     from shiftwatch.config import NO_STREAMS
 
     cfg = write(tmp_path, text)
-    for args in (["check", "--config", str(cfg)], ["check", "--config", str(cfg), "--no-network"],
-                 ["run", "--config", str(cfg)]):
-        res = cli(*args)
-        assert res.returncode == 2, (args, res.stdout, res.stderr)
+    for res in refused_by_check_and_run(cli, cfg):
         assert f"{cfg} {NO_STREAMS}" in res.stderr, res.stderr
         assert "broker" not in res.stdout and "valid" not in res.stdout
         assert "Traceback" not in res.stderr
