@@ -31,11 +31,9 @@ import numpy as np
 
 from shiftwatch import heap
 from shiftwatch.config import Config, ConfigError, StreamConfig, load_config, topic_matches
-from shiftwatch.core.baseline import Baseline
 from shiftwatch.core.calm import CalmPool
-from shiftwatch.core.engine import ADVISORY, WATCHING, AlertRecord, StreamEngine
+from shiftwatch.core.engine import ADVISORY, AlertRecord, StreamEngine
 from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
-from shiftwatch.core.timefmt import format_time
 from shiftwatch.decode import REASONS as DECODE_REASONS
 from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, stream_name
 from shiftwatch.display import alert_summary, stamp
@@ -44,6 +42,7 @@ from shiftwatch.fsutil import explain_os_error
 from shiftwatch.handover import Handover, HandoverError, is_handover
 from shiftwatch.journal import Journal, JournalGroup, JournalSingles
 from shiftwatch.lease import ShardLease
+from shiftwatch.levels import LevelBoard
 from shiftwatch.metrics import FloorMetrics, Metrics, MetricsServer, StreamStats
 from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
 from shiftwatch.natsio import ClusterError
@@ -80,14 +79,6 @@ GATHER_S = 0.1
 #: (a topic gives one stream or more, so every live topic fits).
 SPEC_CACHE_TOPIC = 512
 SPEC_CACHE_MIN = 1000
-#: Level publications handed to paho and not yet acknowledged by the broker, at
-#: most.  A stream whose level changes while this many are out waits its turn
-#: (oldest first) and then publishes its state as it is then.  Without the bound
-#: paho holds every update until its PUBACK, some dozen objects each, and
-#: PUBACKs wait behind the incoming messages while the inbox is full: 10,000
-#: streams fed batches left 13,000 updates in paho's memory, and their objects,
-#: made among the engines' own, fragmented the heap for good (about 20 MB).
-LEVELS_IN_FLIGHT = 50
 #: Samples gathered from the journal's rounds before they are fed, stream by stream.
 REPLAY_BATCH = 200_000
 #: At most this many "new stream" lines per NEW_STREAM_EVERY seconds; the rest are summed up.
@@ -360,17 +351,8 @@ class Daemon:
         # <cluster.name>.handover.<writer id>; see shiftwatch.handover).
         self._answers: deque[bytes] = deque()
         self.outbox = Outbox(state_dir / "outbox", max_items=cfg.alerts.outbox_max, logger=self.log)
-        # What the levels topic shows of each stream, (state, level, sigma) as last sent (see
-        # _shows): a watching stream's is its engine's Baseline itself (a tuple a stream
-        # would cost 64 bytes more, and the baseline is there anyway).
-        self._levels_sent: dict[str, Baseline | tuple[str, float | None, float | None]] = {}
-        # Streams whose level update is queued (an ordered set, main thread
-        # only; see send_due_levels), and the mids of the level publications out.
-        self._levels_due: OrderedDict[str, None] = OrderedDict()
-        self._levels_offline = False
         #: The site's time zone for times shown to people (records stay UTC).
         self.tz = cfg.display.time_zone
-        self._level_mids: set[int] = set()
         self._lock = threading.Lock()
         self._mid_key: dict[int, str | None] = {}
         self._early_acks: OrderedDict[int, None] = OrderedDict()
@@ -379,6 +361,11 @@ class Daemon:
         self._connected_changed = threading.Event()
         self.rlog = RateLimitedLog(self.log)
         self.link: MqttLink | None = None
+        #: The retained levels of the streams (shiftwatch.levels).
+        self.levels = LevelBoard(self.prefix, self.engines, label_for=self._label,
+                                 publish=self._publish_level,
+                                 linked=lambda: self.link is not None,
+                                 connected=lambda: self.link is not None and self.link.connected)
         self.server: MetricsServer | None = None
         self.records_published = 0
         self._last_trim = 0.0
@@ -1166,7 +1153,7 @@ class Daemon:
             del self.engines[n]
             self._filters.pop(n, None)
             self._fed_since_snapshot.discard(n)
-            self._levels_due.pop(n, None)
+            self.levels.let_go(n)
             self.metrics.remove_stream(n)
             self.status.forget(n)
 
@@ -1424,7 +1411,7 @@ class Daemon:
             held = self._hold_until - time.monotonic()
             if held > 0:  # waiting for the redeliveries (see _connection)
                 self._stop.wait(min(held, timeout))
-                self.send_due_levels()
+                self.levels.send_due()
                 self._gauges()
                 return 0
             self._sort_round = False
@@ -1452,7 +1439,7 @@ class Daemon:
         if not msgs:
             self._pool_due(idle=True)
             self.status.serve_windows(self.engines)
-            self.send_due_levels()
+            self.levels.send_due()
             self.rlog.flush(time.time())
             self._gauges()
             if self._trim_pending:  # the burst is over: trim now, it costs nothing
@@ -1461,7 +1448,7 @@ class Daemon:
         self.process(msgs, in_time_order=sort)
         self._pool_due()
         self.status.serve_windows(self.engines)
-        self.send_due_levels()
+        self.levels.send_due()
         self.rlog.flush(time.time())
         self._gauges()
         if sum(len(m.payload) for m in msgs) > ROUND_BYTES // 4:
@@ -1481,7 +1468,7 @@ class Daemon:
             self._finish(msgs, flag)
         if self._held_round is not None:
             self._stop.wait(0.5)  # the cluster is not answering: no hurry
-        self.send_due_levels()
+        self.levels.send_due()
         self.rlog.flush(time.time())
         self._gauges()
 
@@ -1527,9 +1514,7 @@ class Daemon:
         # Every stream's retained level says the daemon is gone, so a dashboard
         # reading it does not take it for one that is watched (a crash leaves the
         # levels as they were; <prefix>/status, the last will, then says offline).
-        self._levels_offline = True
-        for name in self.engines:
-            self._levels_due[name] = None
+        self.levels.go_offline(self.engines)
         self._pool_empty()
         if not self._acker.wait_idle(10.0):
             self.log.warning("stopping: the outbox is still being written; its rounds stay unacknowledged")
@@ -1538,9 +1523,9 @@ class Daemon:
             self.journal.close()
             self.journal.stop_background()
         deadline = time.monotonic() + 5.0
-        while ((len(self.outbox) or self._levels_due) and self.link is not None and self.link.connected
+        while ((len(self.outbox) or self.levels.due) and self.link is not None and self.link.connected
                and time.monotonic() < deadline):
-            self.send_due_levels()
+            self.levels.send_due()
             time.sleep(0.02)
         if self.link is not None:
             self.link.stop()
@@ -2059,7 +2044,7 @@ class Daemon:
         for rec in res.records:
             j = int(np.searchsorted(times, rec.as_of))
             self.emit(rec, float(arrivals[min(j, len(arrivals) - 1)]))
-        self._level_changed(name, eng)
+        self.levels.changed(name, eng)
         self.metrics.update_stream(name, StreamStats.from_engine(eng))
         if self.in_cluster:  # read by the snapshots to the cluster only
             self._fed_since_snapshot.add(name)
@@ -2246,79 +2231,10 @@ class Daemon:
     def _warn_floor(self, key: str, text: str, now: float) -> None:
         self.rlog.warning(key, text, now)
 
-    def _level_changed(self, name: str, eng: StreamEngine) -> None:
-        """After a stream's batch: queue its level update if what the levels
-        topic shows of it has changed (send_due_levels publishes it)."""
-        if eng.level is not None and not self._shows(name, eng.state, eng):
-            self._levels_due[name] = None
-
-    def _shows(self, name: str, state: str, eng: StreamEngine) -> bool:
-        """Whether the levels topic shows the stream as ``(state, eng.level, eng.sigma)``
-        (compared as tuples, as they were kept before: the same floats, or equal ones)."""
-        sent = self._levels_sent.get(name)
-        if sent is None:
-            return False
-        if isinstance(sent, tuple):
-            return sent == (state, eng.level, eng.sigma)
-        return state == WATCHING and (sent.level, sent.sigma) == (eng.level, eng.sigma)
-
-    def _note_shown(self, name: str, state: str, eng: StreamEngine) -> None:
-        """The levels topic now shows the stream as ``(state, eng.level, eng.sigma)``."""
-        b = eng.baseline
-        self._levels_sent[name] = b if state == WATCHING and b is not None else (state, eng.level, eng.sigma)
-
-    def send_due_levels(self) -> None:
-        """Publish the queued level updates, oldest first, each stream's state as
-        it is now, while fewer than LEVELS_IN_FLIGHT are unacknowledged.
-
-        Nothing goes to paho while the broker is away: paho would hold every
-        update in memory and its 16-bit message ids would wrap in a long
-        outage; the queue holds each stream once at most, and empties after
-        the reconnect.
-        """
-        due = self._levels_due
-        while due and len(self._level_mids) < LEVELS_IN_FLIGHT:
-            if self.link is None or not self.link.connected:
-                return
-            name, _ = due.popitem(last=False)
-            eng = self.engines.get(name)  # None: removed by a reload meanwhile
-            if eng is None or eng.level is None:
-                continue
-            state = OFFLINE if self._levels_offline else eng.state
-            if self._shows(name, state, eng):
-                continue
-            self._note_shown(name, state, eng)
-            body = self.level_body(name, eng, state)
-            self._publish(f"{self.prefix}/levels/{name}", json.dumps(body).encode(), qos=1, retain=True,
-                          level=True)
-
-    def level_body(self, name: str, eng: StreamEngine, state: str) -> dict[str, Any]:
-        """The retained ``levels`` payload of a stream.
-
-        Level and sigma are rounded to 6 significant digits, as in alert
-        records; ``state`` is the engine's, or ``offline`` in the update each
-        stream gets when the daemon stops (the level is then the last one
-        known, not watched any more).  ``updated_at`` is when it was made (UTC).
-        """
-        body: dict[str, Any] = {"stream": name}
-        label = self.cfg.label_for(name, self._filters.get(name))
-        if label is not None:
-            body["label"] = label
-        body.update({"state": state, "level": _six(eng.level), "sigma": _six(eng.sigma),
-                     "unit": eng.unit, "last_shift_at": None if eng.last_shift_at is None
-                     else format_time(eng.last_shift_at), "updated_at": format_time(time.time())})
-        if state == OFFLINE:
-            body["note"] = ("shiftwatch stopped: this level is the last one known and is not "
-                            "being watched until it restarts")
-        return body
-
-    def _clear_levels(self, name: str) -> None:
-        """A removed stream: its retained levels message is cleared on the broker (an
-        empty retained message deletes it), so no subscriber sees a stream that is gone."""
-        self._levels_due.pop(name, None)
-        self._levels_sent.pop(name, None)
-        if self.link is not None:  # also for a level published before a restart
-            self._publish(f"{self.prefix}/levels/{name}", b"", qos=1, retain=True)
+    def _publish_level(self, topic: str, payload: bytes, level: bool) -> None:
+        """A retained level (``level``: counted against LEVELS_IN_FLIGHT), or the empty
+        message that clears one (shiftwatch.levels)."""
+        self._publish(topic, payload, qos=1, retain=True, level=level)
 
     def _publish(self, topic: str, payload: bytes, *, qos: int, retain: bool, key: str | None = None,
                  level: bool = False) -> None:
@@ -2345,7 +2261,7 @@ class Daemon:
             else:
                 self._mid_key[mid] = key
                 if level:
-                    self._level_mids.add(mid)
+                    self.levels.sent_out(mid)
 
     def _delivered(self, key: str) -> None:
         """The broker has the record: out of the outbox now, its file deleted by the
@@ -2358,7 +2274,7 @@ class Daemon:
         with self._lock:
             if mid in self._mid_key:
                 key = self._mid_key.pop(mid)
-                self._level_mids.discard(mid)
+                self.levels.answered(mid)
                 if key is not None:
                     self._delivered(key)
             else:
@@ -2387,13 +2303,8 @@ class Daemon:
                               "what the connection before left unacknowledged comes first",
                               f"{cc.redelivery_wait:g}")
         if not up:
-            # paho sends the levels it holds again after the reconnect, and the
-            # broker acknowledges them then; the bound counts from each
-            # connection all the same, so that a PUBACK that never comes (a
-            # defect anywhere) cannot hold a place for ever.  A link that flaps
-            # may so leave paho up to LEVELS_IN_FLIGHT more per flap for a while.
-            with self._lock:
-                self._level_mids.clear()
+            with self._lock:  # (see LevelBoard.connection_lost)
+                self.levels.connection_lost()
 
     def _count_drop(self, reason: str, n: int = 1) -> None:
         self.metrics.messages_dropped.labels(reason).inc(n)
@@ -2566,7 +2477,7 @@ class Daemon:
                 self.metrics.remove_stream(name)
                 self.status.forget(name)
                 self.sparkplug.forget_stream(name)
-                self._clear_levels(name)
+                self.levels.clear(name)
                 dropped += 1
                 continue
             if old_spec is None or spec.detection != old_spec.detection or spec.unit != old_spec.unit:
@@ -2686,17 +2597,6 @@ def current_stream_name(name: str, spec: StreamConfig) -> str:
     if cut is None or cut >= len(levels) or levels[cut][:4].lower() != "urn:":
         return name
     return stream_name("/".join(levels[:cut]), "/".join(levels[cut:]))
-
-
-#: The ``state`` of every retained level once the daemon has stopped.
-OFFLINE = "offline"
-
-
-def _six(x: float | None) -> float | None:
-    """Six significant digits (the rounding of alert records), for payloads people read."""
-    if x is None or x == 0 or not np.isfinite(x):
-        return x
-    return float(f"{x:.6g}")
 
 
 def _one_line(exc: BaseException, limit: int = 300) -> str:

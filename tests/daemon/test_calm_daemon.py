@@ -318,12 +318,12 @@ def test_level_updates_are_due_exactly_when_the_tuples_kept_before_said_so(tmp_p
                 continue
             now = (eng.state, eng.level, eng.sigma)
             states.add(eng.state)
-            assert d._shows(name, eng.state, eng) == (sent.get(name) == now), (k, name)
+            assert d.levels.shows(name, eng.state, eng) == (sent.get(name) == now), (k, name)
             if sent.get(name) != now:
                 due_rounds += 1
                 sent[name] = now
-                d._note_shown(name, eng.state, eng)
-        d._levels_due.clear()  # no broker here: what send_due_levels would have sent is noted above
+                d.levels.note_shown(name, eng.state, eng)
+        d.levels.due.clear()  # no broker here: what LevelBoard.send_due would have sent is noted above
     assert {"watching", "event_open"} <= states
     assert due_rounds > 2 * n  # levels moved with refinements and steps
     assert d.journal is not None

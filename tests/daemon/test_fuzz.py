@@ -55,8 +55,9 @@ from shiftwatch.config import parse_config
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.core.timefmt import parse_time
-from shiftwatch.daemon import LEVELS_IN_FLIGHT, SPEC_CACHE_MIN, Daemon
+from shiftwatch.daemon import SPEC_CACHE_MIN, Daemon
 from shiftwatch.decode import decode
+from shiftwatch.levels import LEVELS_IN_FLIGHT
 from shiftwatch.metrics import Metrics
 from shiftwatch.mqtt import PlainClient
 
@@ -433,8 +434,8 @@ def test_level_updates_waiting_for_acknowledgement_stay_bounded(mosquitto: Mosqu
             while len(d.inbox):
                 d.round(timeout=0.05)
             assert all(e.level is not None for e in d.engines.values()) and len(d.engines) == n
-            assert len(d._level_mids) == LEVELS_IN_FLIGHT
-            assert len(d._levels_due) == n - LEVELS_IN_FLIGHT
+            assert len(d.levels.in_flight) == LEVELS_IN_FLIGHT
+            assert len(d.levels.due) == n - LEVELS_IN_FLIGHT
             held = [m for m in d.link.client._out_messages.values() if m.topic.startswith(f"{PREFIX}/levels/")]
             assert len(held) == LEVELS_IN_FLIGHT  # what paho holds
         finally:
@@ -446,7 +447,7 @@ def test_level_updates_waiting_for_acknowledgement_stay_bounded(mosquitto: Mosqu
                 return {t[len(prefix):]: b for t, b in seen.items if t.startswith(prefix)}
 
         deadline = time.monotonic() + 30
-        while (d._levels_due or len(latest()) < n) and time.monotonic() < deadline:
+        while (d.levels.due or len(latest()) < n) and time.monotonic() < deadline:
             d.round(timeout=0.05)
         got = latest()
         assert set(got) == {name[len("fz/json/line/"):] for name in d.engines}
@@ -455,7 +456,7 @@ def test_level_updates_waiting_for_acknowledgement_stay_bounded(mosquitto: Mosqu
             # Level and sigma to 6 significant digits, as the payload rounds them for people.
             assert (body["state"], body["level"], body["sigma"]) == \
                 (eng.state, float(f"{eng.level:.6g}"), float(f"{eng.sigma:.6g}"))
-        assert not d._levels_due and d.link.connected
+        assert not d.levels.due and d.link.connected
 
 
 # ---------------------------------------------------------------------------
