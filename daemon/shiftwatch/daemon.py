@@ -48,7 +48,8 @@ from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
 from shiftwatch.natsio import ClusterError
 from shiftwatch.notify import sd_notify, watchdog_interval
 from shiftwatch.outbox import Outbox
-from shiftwatch.partition import Count, Ownership, count_disagreement, new_to_the_set
+from shiftwatch.partition import Ownership
+from shiftwatch.shardcount import ShardCount
 from shiftwatch.sparkplug import NAMESPACE as SPARKPLUG_NAMESPACE
 from shiftwatch.sparkplug import SparkplugSessions, rebirth_request
 from shiftwatch.statestore import PACKED_FROM, StateStore
@@ -298,21 +299,6 @@ class Daemon:
         self.journal = Journal(state_dir / "snapshots", logger=self.log, background=True) \
             if cfg.state.journal and not self.in_cluster else None
         self.shard_prefix = cfg.shard.prefix if cfg.shard is not None else ""
-        # With shard.hashed_levels: the streams the mapping for shard.of partitions gives
-        # this shard; the others' samples are not fed (see _take_foreign, _set_shard).
-        self.owner = Ownership(cfg.shard.number, cfg.shard.of, cfg.shard.hashed_levels) \
-            if cfg.shard is not None and cfg.shard.hashed_levels else None
-        self._topic_of: dict[str, str] = {}  # stream -> a topic it came on (with self.owner)
-        # A count (shard.of, hashed levels) that agrees with no other live shard of the set is
-        # not taken up (see _take_up_count): at a start the shard leaves the cluster's mapping
-        # record alone (_count_unnoted) and takes no samples meanwhile (_count_held) unless it
-        # is new to the set; at a reload it goes on with the count it ran (_count_pending: the
-        # configuration that brought the new one).  All are looked at again every second.
-        self._count_unnoted = False
-        self._count_held = False
-        self._count_new = False
-        self._count_pending: Config | None = None
-        self._count_said: str | None = None
         self.nats: Any = None  # shiftwatch.natsio.NatsIO, with a cluster section
         self.cluster: Any = None  # shiftwatch.clusterstate.ClusterState, with state.keep: cluster
         self.lease: ShardLease | None = None
@@ -391,6 +377,20 @@ class Daemon:
         self.sparkplug = SparkplugSessions(max_sessions=cfg.metrics.max_streams)
         self._sparkplug_streams: set[str] = set()
         self.status.add_provider(self._stale_fields)
+        #: The shard count this shard runs and the streams it owns by it (shiftwatch.shardcount).
+        self.shards = ShardCount(cfg.shard, config=lambda: self.cfg, adopt=self._adopt_count,
+                                 moved_away=self._let_go_moved,
+                                 keep_topic=lambda n: n in self.engines or n in self._deferred,
+                                 topic_bound=2 * cfg.metrics.max_streams + SPEC_CACHE_MIN,
+                                 lease=lambda: self.lease, cluster=lambda: self.cluster,
+                                 handover=self.handover, metrics=self.metrics, status=self.status,
+                                 log=self.log)
+
+    @property
+    def owner(self) -> Ownership | None:
+        """With shard.hashed_levels: the streams the mapping for shard.of partitions gives
+        this shard (see shiftwatch.shardcount)."""
+        return self.shards.owner
 
     def _label(self, name: str) -> str | None:
         """The configured label of a stream (the status board caches it)."""
@@ -698,7 +698,7 @@ class Daemon:
         parked_last: dict[str, int] = {}
         for name, r in loaded.items():
             if defer:
-                ho, topic = self.handover, self._topic_of.get(name)
+                ho, topic = self.handover, self.shards.topic_of.get(name)
                 fresh = r.written_by not in (None, self.writer_id) and r.written_at is not None
                 ask = r.written_shard if (fresh and ho is not None and ho.can_ask(r.written_shard)
                                           and now - r.written_at < ho.wait) else None
@@ -709,7 +709,7 @@ class Daemon:
                     # samples of it that the mapping sent it before (a shard still waiting
                     # after resuming its session, or frozen).  Asked too: begun at once, the
                     # stream would refuse those samples when they reach the journal.
-                    ask = self._moved_from(topic, now, r.written_at)
+                    ask = self.shards.moved_from(topic, now, r.written_at)
                 if ask is not None and ho is not None and topic is not None:
                     ho.ask(name, ask, topic)
                     self._deferred[name] = now + ho.wait
@@ -778,127 +778,6 @@ class Daemon:
                           restored, replayed)
         if parked_last:
             self._journal_unparked(unparked, parked_last, now)
-
-    def _moved_from(self, topic: str | None, now: float, written: float | None) -> int | None:
-        """The shard that the mapping before the last change gave ``topic``, while that
-        change is younger than cluster.handover_wait, the stream's journal (last written
-        at ``written``) has not been written since, and that shard is another one (it
-        can be asked); None otherwise.  From the cluster's mapping record, which every
-        shard brings up to date at its start and at a reload (see _note_mapping).  A
-        stream written since the change was taken up under the new mapping: by an earlier
-        run of this shard (a restart), which waits cluster.redelivery_wait instead; until
-        2026-12-04 it asked the old owner again, and waited the whole handover_wait when
-        that shard was gone (4 to 3)."""
-        ho, remap = self.handover, self.cluster.remap if self.cluster is not None else None
-        if ho is None or remap is None or topic is None or self.owner is None:
-            return None
-        k = remap.moved_from(topic, self.owner.number, now=now, wait=ho.wait, written=written)
-        return k if ho.can_ask(k) else None
-
-    def _note_mapping(self, *, changed: bool) -> None:
-        """Shards with shard.hashed_levels and state in the cluster: the cluster's mapping
-        record says which mapping runs now and which ran before (ClusterState.note_mapping),
-        so that a new owner knows where a stream was before the change, even one no shard
-        has written yet.  A cluster that does not answer costs only that knowledge."""
-        if self.cluster is None or self.owner is None or self.handover is None:
-            return
-        try:
-            self.cluster.note_mapping(self.owner.of, self.owner.levels, changed=changed)
-        except ClusterError as exc:
-            self.log.warning("the mapping record in the cluster not brought up to date (%s): streams "
-                             "that no shard wrote lately begin at once if they moved here", exc)
-        if self.cluster.mapping_damaged is not None:
-            # Written anew from this shard's mapping: the one before it is not known, so
-            # streams that no shard wrote lately begin at once if they moved here.
-            self.metrics.states_set_aside.inc()
-            self.log.warning("%s: set aside and written anew with this shard's mapping (shard.of %d); "
-                             "the mapping before is not known", self.cluster.mapping_damaged, self.owner.of)
-
-    def _count_disagreement(self, count: Count) -> str | None:
-        """None when this shard may take up ``count`` (shard.of, hashed levels): see
-        partition.count_disagreement, judged by the counts the other live shards announce in
-        their leases; otherwise what disagrees (also when the leases cannot be read: the
-        count is taken up only once they have said).  Notes in ``_count_new`` whether the
-        shard is new to the set (partition.new_to_the_set)."""
-        self._count_new = False
-        if self.lease is None or not count[1]:
-            return None
-        try:
-            peers = self.lease.peers()
-        except ClusterError as exc:
-            return f"the other shards' shard.of cannot be read ({exc})"
-        self._count_new = new_to_the_set(self.lease.shard, peers)
-        return count_disagreement(self.lease.shard, count, peers)
-
-    def _take_up_count(self) -> None:
-        """At start: the shard's count goes into the cluster's mapping record (_note_mapping)
-        only when it agrees with the other live shards of the set.  Otherwise (one shard of
-        a running set started with a wrong shard.of, say) the record is left as it is and
-        the shard takes no samples (they stay with the broker) until another live shard
-        runs the same count or this one's configuration agrees again (_recheck_count).  A
-        shard new to the set (step 1 of a change: past every other shard's shard.of, so the
-        servers' mapping sends it nothing yet) takes samples all the same, as before: only
-        the record waits.
-        Until 2026-12-04 every start rewrote the record: a typo made the other shards take
-        the shard's own count for a change of the number of shards, and the real mapping
-        before was lost."""
-        why = None if self.owner is None else self._count_disagreement((self.owner.of, self.owner.levels))
-        if why is None:
-            self._note_mapping(changed=False)
-            return
-        self._count_unnoted = True
-        self._count_held = not self._count_new
-        self._say_count(why)
-
-    def _say_count(self, why: str | None) -> None:
-        """The disagreement of this shard's count (None: none any more) in the log (once per
-        change of what is said), the metrics and the status page."""
-        self.metrics.shard_of_disputed.set(0 if why is None else 1)
-        if why is None:
-            self.status.set_notice("shard_of", None)
-            if self._count_said is not None:
-                self.log.info("shard %d: shard.of %d is taken up (it agrees with the other live shards, "
-                              "or is the one in force); the cluster's mapping record is brought up to date",
-                              self.lease.shard if self.lease else -1,
-                              self.owner.of if self.owner is not None else 0)
-            self._count_said = None
-            return
-        if self._count_pending is not None and self.owner is not None:
-            then = (f"it goes on with shard.of {self.owner.of}, the count in force, and leaves the cluster's "
-                    "mapping record as it is")
-        elif not self._count_held:
-            then = ("this shard is new to the set (past the others' shard.of): it takes the samples of its "
-                    "partition (none come before the servers' mapping changes) and leaves the cluster's "
-                    "mapping record as it is")
-        else:
-            then = ("it takes no samples (they stay with the broker, unacknowledged) and leaves the "
-                    "cluster's mapping record as it is")
-        text = (f"{why}: {then}, until another live shard runs the same shard.of (a change of the "
-                "number of shards: reload or restart the others too) or this shard's configuration "
-                "agrees again (a typo: correct it and reload)")
-        self.status.set_notice("shard_of", text)
-        if text != self._count_said:
-            self.log.warning("shard %d: %s", self.lease.shard if self.lease else -1, text)
-            self._count_said = text
-
-    def _recheck_count(self) -> None:
-        """Every second while this shard's count disagrees with the other live shards': taken
-        up once it agrees (another shard changed too)."""
-        if self._count_pending is not None:
-            pending = self._count_pending
-            assert pending.shard is not None
-            why = self._count_disagreement((pending.shard.of, tuple(pending.shard.hashed_levels or ())))
-            if why is None:
-                self._count_pending = None
-                self._set_shard(pending, agreed=True)
-            self._say_count(why)
-        elif self._count_unnoted:
-            assert self.owner is not None
-            why = self._count_disagreement((self.owner.of, self.owner.levels))
-            if why is None:
-                self._count_held = self._count_unnoted = False
-                self._note_mapping(changed=False)
-            self._say_count(why)
 
     def _unpark(self, name: str, spec: StreamConfig, unit: str | None, parked: list[JournalGroup],
                 now: float) -> JournalGroup | None:
@@ -999,23 +878,9 @@ class Daemon:
             return False
 
     # ---------------------------------------------------- stream ownership
-    # With shard.hashed_levels each shard computes the partition of every topic as the
-    # NATS mapping for shard.of partitions does (shiftwatch.partition) and feeds its
-    # engines only its own streams.  When the number of shards changes, a moving
-    # stream then has one writer at a time, decided by the mapping: the old owner
-    # lets it go at its reload (snapshot, engine dropped) and writes what still
-    # comes to it of the stream into the stream's journal, which the new owner
-    # loads with the snapshot (README, "Running shards").
-    def _note_topic(self, name: str, topic: str) -> None:
-        if name not in self._topic_of:
-            if len(self._topic_of) >= 2 * self.cfg.metrics.max_streams + SPEC_CACHE_MIN:
-                self._topic_of = {n: t for n, t in self._topic_of.items()
-                                  if n in self.engines or n in self._deferred}
-            self._topic_of[name] = topic
-
+    # (see shiftwatch.shardcount)
     def _owns_stream(self, name: str) -> bool:
-        topic = self._topic_of.get(name)
-        return self.owner is None or topic is None or self.owner.owns(topic)
+        return self.shards.owns(name)
 
     def _say_refused(self, names: list[str], moved_text: str, then: str) -> None:
         """Why the cluster refused these streams (a journal write, a snapshot): another
@@ -1042,8 +907,8 @@ class Daemon:
         loads them with the snapshot.  When the journal refuses them (the stream was
         written since this daemon knew it), and for a stream whose samples this daemon
         parked before, they are parked (ClusterState.park), unless the owner wrote the
-        stream since the last change of the mapping (_owners_began: set aside): an owner that is still
-        waiting for this shard's answer (it asks the shard that wrote the stream last,
+        stream since the last change of the mapping (ShardCount.owners_began: set
+        aside): an owner that is still waiting for this shard's answer (it asks the shard that wrote the stream last,
         or that the mapping before the last change gave it) feeds them with its own
         parked samples in time order; one that has begun sets them aside at its next
         load of the stream, as out of order.  Without the cluster they are set aside.
@@ -1083,7 +948,7 @@ class Daemon:
                     by = {g.stream: self.cluster.refused_by.pop(g.stream, (None, None)) for g in refused}
                     if behind:
                         by.update(self.cluster.last_written({g.stream for g in behind}))
-                    begun = self._owners_began(by)
+                    begun = self.shards.owners_began(by)
                     set_aside = [g for g in (*refused, *behind) if g.stream in begun]
                     parked = [g for g in (*refused, *behind) if g.stream not in begun]
                     self._parked_here.difference_update(begun)
@@ -1109,7 +974,7 @@ class Daemon:
             self.metrics.samples_handed_over.inc(handed)
         for name in foreign:
             if self.owner.first_sight(name):
-                k = self.owner.partition(self._topic_of.get(name, name))
+                k = self.owner.partition(self.shards.topic_of.get(name, name))
 
                 def text(name: str = name, k: int | None = k) -> str:
                     return (f"stream {_printable(name)} belongs to shard {k} (shard.of "
@@ -1120,28 +985,6 @@ class Daemon:
 
                 self.rlog.warning("other_shard", text, now, extra={"stream": name})
         return True
-
-    def _owners_began(self, by: dict[str, tuple[int | None, float | None]]) -> set[str]:
-        """Of another shard's streams, with the shard and time of their journal's last
-        message (the one that refused this shard's write), those whose owner (by this
-        shard's mapping) wrote it at or after the last change of the mapping (the mapping
-        record, read again: a change may have come since this shard last read it): that
-        owner has begun the stream.  One that wrote it before the change may be waiting
-        for this shard's answer (it took the stream back), and one whose message does not
-        say (no headers, no record) is taken to wait.  Raises ClusterError."""
-        assert self.cluster is not None and self.owner is not None
-        if not by:
-            return set()
-        remap = self.cluster.read_mapping()
-        if remap is None:
-            return set()
-        out = set()
-        for name, (shard, at) in by.items():
-            topic = self._topic_of.get(name)
-            if (shard is not None and at is not None and topic is not None
-                    and shard == self.owner.partition(topic) and at >= remap.since):
-                out.add(name)
-        return out
 
     def _let_go(self, names: list[str], *, save: bool = True) -> None:
         """Streams this shard no longer owns: their state saved (state in the cluster),
@@ -1157,67 +1000,16 @@ class Daemon:
             self.metrics.remove_stream(n)
             self.status.forget(n)
 
-    def _set_shard(self, new: Config, *, agreed: bool = False) -> None:
-        """SIGHUP: take shard.of and shard.hashed_levels from the file (the number, the
-        prefix and the cluster stay until the next start), once the count agrees with the
-        other live shards of the set (see _take_up_count; ``agreed``: checked already)."""
-        sh, nsh = self.cfg.shard, new.shard
-        if sh is None or nsh is None:
-            if (sh is None) != (nsh is None):
-                self.log.warning("the shard section was added or removed: that takes a restart")
-            return
-        if nsh.topic_prefix != sh.topic_prefix and not agreed:
-            self.log.warning("shard.topic_prefix changed: that takes a restart (kept: %s)", sh.topic_prefix)
-        count = (nsh.of, tuple(nsh.hashed_levels or ()))
-        if self._count_held:
-            # Started with a count the other live shards disagreed with: nothing was taken
-            # under it, so the file's count simply replaces it, and is judged in its turn.
-            self.cfg = dataclasses.replace(self.cfg, shard=dataclasses.replace(
-                sh, of=nsh.of, hashed_levels=nsh.hashed_levels))
-            if self.lease is not None:
-                self.lease.announce(count if nsh.hashed_levels else None)
-            if not nsh.hashed_levels or self.owner is None:
-                self.owner = None
-                self._count_held = self._count_unnoted = False
-                self._say_count(None)
-                return
-            self.owner.change(nsh.of, nsh.hashed_levels)
-            self._recheck_count()
-            return
-        if (nsh.of, nsh.hashed_levels) == (sh.of, sh.hashed_levels):
-            if self._count_pending is not None:
-                # Back to the count in force (a typo corrected): nothing to take up.
-                self._count_pending = None
-                if self.lease is not None:
-                    self.lease.announce(count if nsh.hashed_levels else None)
-                self._say_count(None)
-            return
-        if nsh.hashed_levels and self.lease is not None and not agreed:
-            self.lease.announce(count)
-            why = self._count_disagreement(count)
-            if why is not None:
-                self._count_pending = new
-                self._say_count(why)
-                return
-            if self._count_pending is not None or self._count_unnoted:
-                self._count_pending = None
-                self._count_unnoted = False
-                self._say_count(None)
+    def _adopt_count(self, of: int, hashed_levels: tuple[int, ...] | None) -> None:
+        """A shard count taken up (shiftwatch.shardcount): into the running configuration."""
+        assert self.cfg.shard is not None
         self.cfg = dataclasses.replace(self.cfg, shard=dataclasses.replace(
-            sh, of=nsh.of, hashed_levels=nsh.hashed_levels))
-        if not nsh.hashed_levels:
-            self.owner = None
-            self.log.info("shard.of is %d now; shard.hashed_levels is not set, so this shard feeds "
-                          "every stream that reaches it", nsh.of)
-            return
-        if self.owner is None:
-            self.owner = Ownership(sh.number, nsh.of, nsh.hashed_levels)
-        else:
-            self.owner.change(nsh.of, nsh.hashed_levels)
-        self._note_mapping(changed=True)
-        if sh.number >= nsh.of:
-            self.log.warning("shard %d is past shard.of %d: it owns no stream now; stop it once the "
-                             "NATS servers' mapping has %d partitions", sh.number, nsh.of, nsh.of)
+            self.cfg.shard, of=of, hashed_levels=hashed_levels))
+
+    def _let_go_moved(self) -> None:
+        """The count taken up at a reload moved streams away: let them go."""
+        sh = self.cfg.shard
+        assert sh is not None
         gone = [n for n in self.engines if not self._owns_stream(n)]
         # Deferred streams (waiting for their previous writer) that are not ours any more:
         # the samples parked for them stay in the cluster, and their next owner feeds
@@ -1228,10 +1020,10 @@ class Daemon:
                 self.handover.forget(n)
         self._let_go(gone)
         # (deferred streams keep theirs: a later reshard must still see where they belong)
-        self._topic_of = {n: t for n, t in self._topic_of.items() if n in self.engines or n in self._deferred}
+        self.shards.prune_topics()
         self.log.info("shard.of is %d now: this shard owns the streams the mapping gives partition %d; "
                       "%d stream(s) let go (state saved to the cluster, engines dropped), %d kept",
-                      nsh.of, sh.number, len(gone), len(self.engines))
+                      sh.of, sh.number, len(gone), len(self.engines))
 
     def _lease_lost(self) -> int:
         """The shard's lease is gone: stop at once, acknowledging nothing more."""
@@ -1278,7 +1070,7 @@ class Daemon:
         self._join_cluster()
         if self._stop.is_set():
             return
-        self._take_up_count()
+        self.shards.take_up()
         if not self.in_cluster:
             self.restore()
         settle_heap()
@@ -1360,8 +1152,8 @@ class Daemon:
             now = time.monotonic()
             if now >= next_check:
                 self.check_journal()
-                if self._count_unnoted or self._count_pending is not None:
-                    self._recheck_count()
+                if self.shards.rechecking:
+                    self.shards.recheck()
                 if self.link is not None:
                     self.link.retry_subscriptions()
                 next_check = now + 1.0
@@ -1391,7 +1183,7 @@ class Daemon:
         if self._held_round is not None:
             self._retry_held_round()
             return 0
-        if self._count_held:
+        if self.shards.held:
             # Started with a count no other live shard agrees with: nothing is taken (the
             # messages stay unacknowledged with the broker) until it is taken up.
             self._stop.wait(timeout)
@@ -1499,7 +1291,7 @@ class Daemon:
         # inbox refills, and what arrives now is delivered again after the
         # restart (it is not acknowledged).
         # (None while the shard's count is not taken up: they stay with the broker.)
-        left = 0 if self._count_held else len(self.inbox)
+        left = 0 if self.shards.held else len(self.inbox)
         self.log.info("stopping: processing %d queued message(s)", left)
         while left > 0:
             msgs = self.inbox.take(min(left, DRAIN), ROUND_BYTES, 0.0)
@@ -1618,7 +1410,7 @@ class Daemon:
                     if g is None:
                         g = into[name] = [spec, r.unit or spec.unit, [], [], []]
                         if self.owner is not None:
-                            self._note_topic(name, m.topic)
+                            self.shards.note_topic(name, m.topic)
                     elif type(g[2]) is not list:
                         g[2:5] = [c.tolist() for c in g[2:5]]
                     g[2].append(arrived if r.time is None else r.time)
@@ -1731,7 +1523,7 @@ class Daemon:
         if g is None:
             g = into[name] = [spec, unit, [], [], []]
             if self.owner is not None:
-                self._note_topic(name, topic)
+                self.shards.note_topic(name, topic)
             if n > POOL_LAYERS:
                 arr = np.full(n, arrived)
                 g[2:5] = [arr if ts is None else ts, vs, arr]
@@ -2492,7 +2284,7 @@ class Daemon:
         # endpoint, the state directory) stay as they were until the next start.
         self.cfg = dataclasses.replace(self.cfg, streams=new.streams, detection=new.detection)
         self._spec_cache.clear()
-        self._set_shard(new)
+        self.shards.reload(new)
         self.status.forget_labels()
         if self.link is not None:
             p = self.shard_prefix

@@ -15,7 +15,7 @@ off).  With it a shard knows, for every topic, whether the mapping in force
 for ``shard.of`` partitions sends it here.  A shard feeds its engines only
 the streams it owns, so that a stream moving when the number of shards
 changes has one writer at a time, decided by the mapping and not by who
-wrote it last (see ``Daemon._set_shard_of``).
+wrote it last (see ``ShardCount.reload``).
 
 Pure: no I/O, no clock.
 """
@@ -90,7 +90,7 @@ def count_disagreement(number: int, mine: Count, others: Mapping[int, Count | No
     within a short time, so the second shard to change agrees with the first.  A count
     that every other live shard disagrees with is one shard's alone: a typo, or the first
     step of a change that the others have not made yet; either way the cluster's mapping
-    record is not rewritten by it (see ``Daemon._take_up_count``).
+    record is not rewritten by it (see ``ShardCount.take_up``).
 
     >>> count_disagreement(1, (3, (2, 3, 4)), {0: (3, (2, 3, 4)), 2: (3, (2, 3, 4))}) is None
     True

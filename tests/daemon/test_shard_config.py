@@ -107,11 +107,11 @@ def test_a_held_stream_keeps_its_topic_through_a_reload_so_the_next_one_moves_it
         return path
 
     d = Daemon(load_config(str(config(3))), config_path=str(config(3)), metrics=Metrics())
-    d._note_topic(topic, topic)
+    d.shards.note_topic(topic, topic)
     d._deferred[topic] = float("inf")
-    d._set_shard(load_config(str(config(5))))  # still this shard's
-    assert topic in d._deferred and d._topic_of.get(topic) == topic
-    d._set_shard(load_config(str(config(4))))  # moved away: it waits here no more
+    d.shards.reload(load_config(str(config(5))))  # still this shard's
+    assert topic in d._deferred and d.shards.topic_of.get(topic) == topic
+    d.shards.reload(load_config(str(config(4))))  # moved away: it waits here no more
     # (the samples parked for it stay in the cluster for its next owner:
     # test_shard_parking.py)
     assert topic not in d._deferred

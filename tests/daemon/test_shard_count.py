@@ -351,25 +351,25 @@ def test_going_down_shard_by_shard_the_first_reloaded_runs_the_old_count_until_t
         for k in range(4):
             d = Daemon(for_shard(load_config(str(config(4))), k), config_path=str(config(4)), metrics=Metrics())
             d._join_cluster()
-            d._take_up_count()
+            d.shards.take_up()
             shards.append(d)
         first = shards[0].cluster.read_mapping()
         assert first is not None and (first.of, first.previous_of) == (4, None)
         d0, d1 = shards[0], shards[1]
-        d0._set_shard(load_config(str(config(3))))
-        assert d0.owner is not None and d0.owner.of == 4 and d0._count_pending is not None
+        d0.shards.reload(load_config(str(config(3))))
+        assert d0.owner is not None and d0.owner.of == 4 and d0.shards.pending is not None
         assert d0.metrics.registry.get_sample_value("shiftwatch_shard_of_disputed") == 1
         assert d0.cluster.read_mapping() == first
-        d0._recheck_count()  # a second later: still nobody else with 3
+        d0.shards.recheck()  # a second later: still nobody else with 3
         assert d0.owner.of == 4
-        d1._set_shard(load_config(str(config(3))))
-        assert d1.owner is not None and d1.owner.of == 3 and d1._count_pending is None
-        d0._recheck_count()
-        assert d0.owner.of == 3 and d0._count_pending is None
+        d1.shards.reload(load_config(str(config(3))))
+        assert d1.owner is not None and d1.owner.of == 3 and d1.shards.pending is None
+        d0.shards.recheck()
+        assert d0.owner.of == 3 and d0.shards.pending is None
         assert d0.metrics.registry.get_sample_value("shiftwatch_shard_of_disputed") == 0
         for d in shards[2:]:
-            d._set_shard(load_config(str(config(3))))
-            assert d.owner.of == 3 and d._count_pending is None
+            d.shards.reload(load_config(str(config(3))))
+            assert d.owner.of == 3 and d.shards.pending is None
         record = d0.cluster.read_mapping()
         assert record is not None and (record.of, record.previous_of) == (3, 4)
     finally:

@@ -409,7 +409,7 @@ def test_late_samples_of_a_stream_let_go_while_it_waited_stay_behind_its_parked_
         assert topic in d._deferred
         moved_on = tmp_path / "twice-of-3.yaml"
         moved_on.write_text((tmp_path / "twice.yaml").read_text().replace("of: 2", "of: 3"))
-        d._set_shard(load_config(str(moved_on)))
+        d.shards.reload(load_config(str(moved_on)))
         assert topic not in d._deferred and d.owner is not None and not d.owner.owns(topic)
         d.process([_array(topic, 160.0, [500.1] * 40)])
         assert _counter(d, "shiftwatch_messages_dropped_total", reason="other_shard") == 40
@@ -476,7 +476,7 @@ def test_samples_of_another_shard_s_stream_refused_by_its_journal_are_parked_for
     try:
         moved_on = tmp_path / "not-mine-of-3.yaml"
         moved_on.write_text((tmp_path / "not-mine.yaml").read_text().replace("of: 2", "of: 3"))
-        d._set_shard(load_config(str(moved_on)))
+        d.shards.reload(load_config(str(moved_on)))
         d.process([_array(topic, 100.0, [500.0] * 30)])
         d.process([_array(topic, 130.0, [500.0] * 10)])
         assert _counter(d, "shiftwatch_messages_dropped_total", reason="other_shard") == 40
@@ -522,7 +522,7 @@ def test_a_stream_nobody_wrote_waits_for_the_shard_the_mapping_before_gave_it(
         io.close()
     d = _daemon(tmp_path, server, "remapped", handover_wait=2.0)
     try:
-        d._note_mapping(changed=False)
+        d.shards.note_mapping(changed=False)
         assert d.cluster.remap is not None and (d.cluster.remap.of, d.cluster.remap.previous_of) == (2, 3)
         d.process([_array(moved, 0.0, [500.0] * 20), _array(stayed, 0.0, [500.0] * 20)])
         assert moved in d._deferred and moved not in d.engines
@@ -551,12 +551,12 @@ def test_a_damaged_mapping_record_is_written_anew_named_and_counted(tmp_path: Pa
         io.close()
     d = _daemon(tmp_path, server, "after-hand")
     try:
-        d._note_mapping(changed=False)
+        d.shards.note_mapping(changed=False)
         assert d.cluster.remap is not None and (d.cluster.remap.of, d.cluster.remap.previous_of) == (2, None)
         assert _counter(d, "shiftwatch_stream_states_set_aside_total") == 1
         stored = d.nats.run(d.nats.kv_get(d.cluster.bucket, MAPPING_KEY))
         assert stored is not None and Remap.decode(stored.value) == d.cluster.remap
-        d._note_mapping(changed=False)  # sound now: nothing more to say or count
+        d.shards.note_mapping(changed=False)  # sound now: nothing more to say or count
         assert _counter(d, "shiftwatch_stream_states_set_aside_total") == 1
     finally:
         _close(d)
@@ -597,7 +597,7 @@ def test_a_stream_this_shard_wrote_after_the_change_is_not_asked_of_its_owner_be
     _journal_as_shard(server, "w-earlier-run", 1, moved, np.arange(20, dtype=float))
     d = _daemon(tmp_path, server, "restarted", handover_wait=30.0)
     try:
-        d._note_mapping(changed=False)
+        d.shards.note_mapping(changed=False)
         assert d.cluster.remap is not None and (d.cluster.remap.of, d.cluster.remap.previous_of) == (2, 3)
         d.process([_array(moved, 20.0, [500.0] * 10)])
         assert moved not in d.handover.waiting
@@ -622,7 +622,7 @@ def test_late_samples_refused_by_an_owner_that_began_after_the_change_are_set_as
     try:
         moved_on = tmp_path / "not-mine-any-more-of-3.yaml"
         moved_on.write_text((tmp_path / "not-mine-any-more.yaml").read_text().replace("of: 2", "of: 3"))
-        d._set_shard(load_config(str(moved_on)))
+        d.shards.reload(load_config(str(moved_on)))
         time.sleep(0.05)  # the owner's write comes after the change (times kept to the ms)
         _journal_as_shard(server, "w-owner", 0, topic, np.arange(100, dtype=float))
         d.process([_array(topic, 100.0, [500.0] * 30)])
@@ -677,7 +677,7 @@ def test_late_samples_parked_behind_are_set_aside_once_the_owner_has_begun(tmp_p
     try:
         moved_on = tmp_path / "late-again-of-3.yaml"
         moved_on.write_text((tmp_path / "late-again.yaml").read_text().replace("of: 2", "of: 3"))
-        d._set_shard(load_config(str(moved_on)))
+        d.shards.reload(load_config(str(moved_on)))
         d.process([_array(topic, 100.0, [500.0] * 30)])
         assert _parked(server, topic)[0] == [float(t) for t in range(100, 130)]  # the owner may wait
         # The owner loads the stream with its parking, feeds and journals it, purges the parking,
