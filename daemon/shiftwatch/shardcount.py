@@ -285,6 +285,7 @@ class ShardCount:
                     lease.announce(count if nsh.hashed_levels else None)
                 self.say(None)
             return
+        taken = False  # a disputed count that agrees now: said once the new one is in force
         if nsh.hashed_levels and lease is not None and not agreed:
             lease.announce(count)
             why = self.disagreement(count)
@@ -295,7 +296,7 @@ class ShardCount:
             if self.pending is not None or self.unnoted:
                 self.pending = None
                 self.unnoted = False
-                self.say(None)
+                taken = True
         self.adopt(nsh.of, nsh.hashed_levels)
         if not nsh.hashed_levels:
             self.owner = None
@@ -306,6 +307,9 @@ class ShardCount:
             self.owner = Ownership(sh.number, nsh.of, nsh.hashed_levels)
         else:
             self.owner.change(nsh.of, nsh.hashed_levels)
+        if taken:
+            # Until 2026-12-05 said before the change: the line named the count before.
+            self.say(None)
         self.note_mapping(changed=True)
         if sh.number >= nsh.of:
             self.log.warning("shard %d is past shard.of %d: it owns no stream now; stop it once the "

@@ -275,3 +275,24 @@ def test_a_stream_that_moved_at_the_last_change_names_its_shard_before(tmp_path:
     assert s.view.moved_from(topic, now, rec.since + 0.5) is None  # written since the change
     assert s.view.moved_from(topic, rec.since + 31.0, None) is None  # older than handover_wait
     assert s.view.moved_from(None, now, None) is None
+
+
+def test_a_count_taken_up_at_a_second_reload_is_named_in_the_log_line(tmp_path: Path, server: int,
+                                                                     setups: list[Setup]) -> None:
+    # Shard 0 of 4 reloaded with 3 finds nobody else with 3 and goes on with 4 (pending);
+    # shard 1 then wants 3 too, and shard 0 is reloaded once more (with 3) before its
+    # once-a-second recheck: the count taken up is 3, and the line saying so must name 3.
+    # It named the count in force before (4): the line was written before the new count
+    # replaced it.
+    s = Setup(tmp_path, server, "again", number=0, of=4, peers={1: (4, LEVELS), 2: (4, LEVELS),
+                                                                 3: (4, LEVELS)})
+    setups.append(s)
+    s.view.take_up()
+    s.view.reload(s.config(0, 3))
+    assert s.view.pending is not None
+    s.peers[1].announce((3, LEVELS))
+    s.view.reload(s.config(0, 3))
+    assert s.view.pending is None and s.view.owner is not None and s.view.owner.of == 3
+    taken = [m for _lv, m in s.lines.lines if "is taken up" in m]
+    assert taken == [("shard 0: shard.of 3 is taken up (it agrees with the other live shards, or is the "
+                      "one in force); the cluster's mapping record is brought up to date")], taken
