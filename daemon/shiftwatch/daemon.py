@@ -39,11 +39,12 @@ from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, strea
 from shiftwatch.display import alert_summary, stamp
 from shiftwatch.floor import FloorDesk
 from shiftwatch.fsutil import explain_os_error
-from shiftwatch.handover import Handover, HandoverError, is_handover
+from shiftwatch.handover import Handover, is_handover
 from shiftwatch.journal import Journal, JournalGroup, JournalSingles
 from shiftwatch.lease import ShardLease
 from shiftwatch.levels import LevelBoard
 from shiftwatch.metrics import FloorMetrics, Metrics, MetricsServer, StreamStats
+from shiftwatch.moved import MovedStreams
 from shiftwatch.mqtt import BrokerError, Inbox, Message, MqttLink, read_password
 from shiftwatch.natsio import ClusterError
 from shiftwatch.notify import sd_notify, watchdog_interval
@@ -54,6 +55,7 @@ from shiftwatch.sparkplug import NAMESPACE as SPARKPLUG_NAMESPACE
 from shiftwatch.sparkplug import SparkplugSessions, rebirth_request
 from shiftwatch.statestore import PACKED_FROM, StateStore
 from shiftwatch.status import StatusBoard
+from shiftwatch.termtext import log_text as _printable
 
 #: Messages taken from the queue per processing round (acks go out after each
 #: round).  Large rounds give each stream's engine longer batches; a round also
@@ -318,11 +320,7 @@ class Daemon:
         # A round the cluster did not take (its state could not be loaded, or its samples
         # not journaled): (what failed, its messages, the groups fed, a flag), retried first.
         self._held_round: tuple[str, list[Message], list[JournalGroup], bool] | None = None
-        # Streams another daemon wrote moments ago (they moved here), each with the time its
-        # wait ends: their samples are parked in the cluster until that daemon has had time
-        # to finish its own (see _cluster_load, _park); the rounds are acknowledged as usual.
         self.writer_id = secrets.token_hex(6)
-        self._deferred: dict[str, float] = {}
         # Streams whose samples this daemon parked and has not loaded since: when a reload
         # let one go while it waited, samples of it that still come here are parked behind
         # those, not journaled ahead of them (see _take_foreign).
@@ -333,9 +331,6 @@ class Daemon:
         self.handover = Handover(cfg.shard.number, self.writer_id, cfg.shard.topic_prefix,
                                  cfg.cluster.handover_wait) \
             if cfg.shard is not None and cfg.cluster is not None and self.in_cluster else None
-        # Answers to this daemon's asks, as the NATS thread hands them over (plain NATS on
-        # <cluster.name>.handover.<writer id>; see shiftwatch.handover).
-        self._answers: deque[bytes] = deque()
         self.outbox = Outbox(state_dir / "outbox", max_items=cfg.alerts.outbox_max, logger=self.log)
         #: The site's time zone for times shown to people (records stay UTC).
         self.tz = cfg.display.time_zone
@@ -346,6 +341,18 @@ class Daemon:
         self._reload = threading.Event()
         self._connected_changed = threading.Event()
         self.rlog = RateLimitedLog(self.log)
+        #: Streams that moved here and wait for their last writer; the handover's asks and
+        #: answers (shiftwatch.moved).
+        self.moved = MovedStreams(
+            self.handover, writer=self.writer_id, cluster_name=cfg.cluster.name if cfg.cluster else None,
+            redelivery_wait=cfg.cluster.redelivery_wait if cfg.cluster is not None else 0.0,
+            shard_prefix=self.shard_prefix, owner=lambda: self.owner,
+            moved_from=lambda topic, now, written: self.shards.moved_from(topic, now, written),
+            hold_until=lambda: self._hold_until, load=self._cluster_load,
+            loaded=lambda n: n in self.engines,
+            publish=lambda topic, payload: self._publish(topic, payload, qos=1, retain=False),
+            send=self._send_nats, count_drop=self._count_drop, metrics=self.metrics, rlog=self.rlog,
+            log=self.log)
         self.link: MqttLink | None = None
         #: The retained levels of the streams (shiftwatch.levels).
         self.levels = LevelBoard(self.prefix, self.engines, label_for=self._label,
@@ -380,7 +387,7 @@ class Daemon:
         #: The shard count this shard runs and the streams it owns by it (shiftwatch.shardcount).
         self.shards = ShardCount(cfg.shard, config=lambda: self.cfg, adopt=self._adopt_count,
                                  moved_away=self._let_go_moved,
-                                 keep_topic=lambda n: n in self.engines or n in self._deferred,
+                                 keep_topic=lambda n: n in self.engines or n in self.moved.deferred,
                                  topic_bound=2 * cfg.metrics.max_streams + SPEC_CACHE_MIN,
                                  lease=lambda: self.lease, cluster=lambda: self.cluster,
                                  handover=self.handover, metrics=self.metrics, status=self.status,
@@ -655,8 +662,8 @@ class Daemon:
             self.log.info("stream state in the cluster (journal stream %s, bucket %s, %d replica(s))",
                           self.cluster.stream, self.cluster.bucket, cc.replicas)
             if self.handover is not None:
-                self._setup_retried(lambda: self.nats.subscribe(self._answer_subject(self.writer_id),
-                                                                self._answers.append))
+                self._setup_retried(lambda: self.nats.subscribe(self.moved.answer_subject(self.writer_id),
+                                                                self.moved.answers.append))
 
     def _setup_retried(self, setup: Callable[[], None], attempts: int = 5) -> None:
         """Make the cluster's buckets or stream, trying again a few times: shards that
@@ -680,7 +687,7 @@ class Daemon:
 
         With ``defer``, a stream whose journal another daemon wrote moments ago (it
         moved here when the shards changed, and that daemon may still hold older
-        samples of it) gets no engine yet: it is deferred (see _release_deferred).
+        samples of it) gets no engine yet: it is deferred (see shiftwatch.moved).
         When that daemon was another shard, it is asked to pass on what it holds
         (shiftwatch.handover) and the stream waits for its answer, at most
         cluster.handover_wait; otherwise it waits cluster.redelivery_wait from
@@ -692,31 +699,12 @@ class Daemon:
         except ClusterError as exc:
             raise ClusterError(f"loading stream state: {exc}") from None
         restored = replayed = 0
-        wait = self.cfg.cluster.redelivery_wait if self.cfg.cluster is not None else 0.0
         now = time.time()
         unparked: list[JournalGroup] = []
         parked_last: dict[str, int] = {}
         for name, r in loaded.items():
-            if defer:
-                ho, topic = self.handover, self.shards.topic_of.get(name)
-                fresh = r.written_by not in (None, self.writer_id) and r.written_at is not None
-                ask = r.written_shard if (fresh and ho is not None and ho.can_ask(r.written_shard)
-                                          and now - r.written_at < ho.wait) else None
-                if ask is None:
-                    # Nobody else wrote it moments ago (a stream nobody has written yet, or
-                    # not for long; or this shard's own, taken back): it may still have moved
-                    # here at the last change of the mapping, and its old owner may hold
-                    # samples of it that the mapping sent it before (a shard still waiting
-                    # after resuming its session, or frozen).  Asked too: begun at once, the
-                    # stream would refuse those samples when they reach the journal.
-                    ask = self.shards.moved_from(topic, now, r.written_at)
-                if ask is not None and ho is not None and topic is not None:
-                    ho.ask(name, ask, topic)
-                    self._deferred[name] = now + ho.wait
-                    continue
-                if fresh and now - r.written_at < wait:
-                    self._deferred[name] = r.written_at + wait
-                    continue
+            if defer and self.moved.defer(name, self.shards.topic_of.get(name), r, now):
+                continue
             self._parked_here.discard(name)  # loaded here: this load feeds what is parked
             if r.problem is not None:
                 self.metrics.states_set_aside.inc()
@@ -1011,13 +999,7 @@ class Daemon:
         sh = self.cfg.shard
         assert sh is not None
         gone = [n for n in self.engines if not self._owns_stream(n)]
-        # Deferred streams (waiting for their previous writer) that are not ours any more:
-        # the samples parked for them stay in the cluster, and their next owner feeds
-        # them when it loads them.
-        for n in [n for n in self._deferred if not self._owns_stream(n)]:
-            del self._deferred[n]
-            if self.handover is not None:
-                self.handover.forget(n)
+        self.moved.let_go(self._owns_stream)
         self._let_go(gone)
         # (deferred streams keep theirs: a later reshard must still see where they belong)
         self.shards.prune_topics()
@@ -1190,13 +1172,13 @@ class Daemon:
             self._gauges()
             return 0
         if self.handover is not None:
-            if self._answers:
-                self._take_answers()
+            if self.moved.answers:
+                self.moved.take_answers()
             # Answers owed for asks of rounds now in the cluster (the round before this one,
             # or held after a reconnect; see shiftwatch.handover).
-            self._send_answers()
-        if self._deferred:
-            self._release_deferred()
+            self.moved.send_answers()
+        if self.moved.deferred:
+            self.moved.release()
         round_bytes = ROUND_BYTES
         sort = False
         if self._sort_round:
@@ -1353,7 +1335,7 @@ class Daemon:
                 self.emit(rec, now)
         handover = [m for m in msgs if is_handover(m.payload)] if self.handover is not None else None
         if handover:
-            self._handover_messages(handover, now)
+            self.moved.messages([(m.payload, m.topic) for m in handover], now)
         for m in msgs:
             if commands and self.floor.is_command(m.topic):
                 continue
@@ -1420,7 +1402,7 @@ class Daemon:
         if self.cluster is not None:
             try:
                 self._cluster_load([n for n in groups if n not in self.engines
-                                    and n not in self._deferred], defer=True)
+                                    and n not in self.moved.deferred], defer=True)
             except ClusterError as exc:
                 # Nothing is fed (a fresh engine would start without the stream's history)
                 # and nothing acknowledged: the round is held and processed again first
@@ -1430,8 +1412,8 @@ class Daemon:
                 self._held_round = ("load", msgs, [], in_time_order)
                 return
             if self.handover is not None:
-                self._send_asks()
-            if self._deferred and not self._park(groups, now):
+                self.moved.send_asks()
+            if self.moved.deferred and not self._park(groups, now):
                 self._held_round = ("load", msgs, [], in_time_order)  # nothing fed yet: all again
                 return
         if foreign and not self._take_foreign(foreign, now):
@@ -1443,7 +1425,7 @@ class Daemon:
         # round is still acknowledged only once every message is stored.
         pub = self.cluster.journal_round() if self.cluster is not None else None
         for name, (spec, unit, times, values, arrivals, *prior) in groups.items():
-            if name in self._deferred:
+            if name in self.moved.deferred:
                 continue  # parked in the cluster (see _park)
             if in_time_order and len(times) > 1:
                 order = sorted(range(len(times)), key=times.__getitem__)
@@ -1496,7 +1478,7 @@ class Daemon:
                                np.asarray(values, dtype=np.float64), np.asarray(arrivals, dtype=np.float64),
                                self._filters.get(name, spec.topic))
                   for name, (spec, unit, times, values, arrivals, *_prior) in groups.items()
-                  if name in self._deferred]
+                  if name in self.moved.deferred]
         if not parked:
             return True
         try:
@@ -1538,93 +1520,11 @@ class Daemon:
         g[4].extend([arrived] * n)
 
     # ---------------------------------------------------------- handover
-    def _handover_messages(self, msgs: list[Message], now: float) -> None:
-        """Asks that came over MQTT on streams' topics (shiftwatch.handover): each is
-        answered once the round that brought it is in the cluster (after a reconnect,
-        once cluster.redelivery_wait has passed)."""
-        for m in msgs:
-            self._handover_message(m.payload, f"on {self.shard_prefix}{_printable(m.topic)}", now,
-                                   topic=m.topic)
-
-    def _take_answers(self) -> None:
-        """Answers to this daemon's asks (plain NATS): the streams they name are due now."""
-        now = time.time()
-        while self._answers:
-            self._handover_message(self._answers.popleft(), "from the cluster", now)
-
-    def _handover_message(self, payload: bytes | bytearray, where: str, now: float, *,
-                          topic: str = "") -> None:
-        assert self.handover is not None
-        held = self._hold_until if self._hold_until > time.monotonic() else 0.0
-        try:
-            released = self.handover.receive(payload, time.monotonic(), topic=topic, not_before=held)
-        except HandoverError as exc:
-            self._count_drop("bad_handover")
-            self.rlog.warning("bad_handover", f"handover message {where} set aside: {exc}", now)
-            return
-        for n in released:
-            if n in self._deferred:
-                self._deferred[n] = 0.0
-        if topic and self.owner is not None and self.owner.owns(topic) and self.handover.owes(topic):
-            self.rlog.warning("handover_owned", f"another shard asked for what this shard holds of "
-                              f"the streams on {_printable(topic)}, which the mapping for shard.of "
-                              f"{self.owner.of} still gives this shard: the answer waits until a "
-                              "reload lets them go (is shard.of up to date here?)", now)
-
-    def _answer_subject(self, writer: str) -> str:
-        assert self.cfg.cluster is not None
-        return f"{self.cfg.cluster.name}.handover.{writer}"
-
-    def _send_asks(self) -> None:
-        assert self.handover is not None
-        names = self.handover.asking()
-        if not names:
-            return
-        self.log.info("%d stream(s) moved here (e.g. %s); asked the shard(s) that wrote them last "
-                      "for what they still hold of them; they wait for the answer, at most "
-                      "cluster.handover_wait (%s s)", len(names), _printable(names[0]),
-                      f"{self.handover.wait:g}")
-        for topic, payload in self.handover.outgoing():
-            self._publish(topic, payload, qos=1, retain=False)
-
-    def _send_answers(self) -> None:
-        """The answers owed whose asks' rounds are in the cluster; not for the streams this
-        shard still owns (its reload has not let them go: see Handover.answers_due)."""
-        assert self.handover is not None
-        owner = self.owner
-        for writer, payload in self.handover.answers_due(time.monotonic(),
-                                                         None if owner is None else owner.owns):
-            if self.nats is not None:
-                self.nats.send(self._answer_subject(writer), payload)
-
-    def _settle_handover(self, name: str) -> None:
-        outcome = self.handover.settle(name) if self.handover is not None else None
-        if outcome is None:
-            return
-        self.metrics.handovers.labels(outcome).inc()
-        if outcome == "waited_out":
-            self.rlog.warning("handover_waited_out", f"stream {_printable(name)}: the shard that "
-                              "wrote it last did not answer within cluster.handover_wait; loaded "
-                              "with what the cluster holds (samples that shard still sends are "
-                              "set aside there)", time.time(), extra={"stream": name})
-
-    def _release_deferred(self) -> None:
-        """Load the deferred streams whose wait is over: afresh, with what the other
-        daemon wrote meanwhile, then the samples parked while they waited."""
-        now = time.time()
-        due = [n for n, until in self._deferred.items() if until <= now]
-        if not due:
-            return
-        try:
-            self._cluster_load(due)
-        except ClusterError as exc:
-            self.rlog.warning("cluster_load", f"{exc}; tried again shortly", now)
-            # Those that loaded all the same (another's parked samples were refused by its
-            # journal) are done: only the others wait for the next attempt.
-            due = [n for n in due if n in self.engines]
-        for n in due:
-            del self._deferred[n]
-            self._settle_handover(n)
+    # (see shiftwatch.moved)
+    def _send_nats(self, subject: str, payload: bytes) -> None:
+        """A handover answer by plain NATS (nothing before the daemon has joined the cluster)."""
+        if self.nats is not None:
+            self.nats.send(subject, payload)
 
     def _finish(self, msgs: list[Message], wrote: bool) -> None:
         """Acknowledge a processed round (after the outbox is on disk when it wrote records)."""
@@ -2400,12 +2300,6 @@ def _one_line(exc: BaseException, limit: int = 300) -> str:
 def _plain_number(v: Any) -> bool:
     """A float, or an int a float holds exactly: what the pool takes as it is."""
     return type(v) is float or (type(v) is int and -(1 << 53) <= v <= 1 << 53)
-
-
-def _printable(text: str, limit: int = 120) -> str:
-    """Topic or stream text made safe for one log line."""
-    clean = "".join(c if c.isprintable() else "?" for c in text[:limit])
-    return clean if len(text) <= limit else clean + "..."
 
 
 __all__ = ["DECODE_REASONS", "Daemon", "alert_summary"]

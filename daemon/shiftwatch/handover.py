@@ -15,7 +15,7 @@ journal another shard wrote moments ago (or, with no such journal message, that
 the mapping before a change less than ``cluster.handover_wait`` old gave another
 shard: ``partition.Remap``) make it send, at QoS 1, an *ask* on
 the stream's own topic in that shard's partition (``<its shard.topic_prefix>/<topic>``),
-and hold the stream (its samples wait, see ``Daemon._deferred``).  The ask is
+and hold the stream (its samples wait, see ``shiftwatch.moved``).  The ask is
 stored by the broker after every message the mapping sent that shard before
 the change (the new owner only sees the stream once the mapping has changed).
 NATS's MQTT side keeps one JetStream consumer per subscription and delivers

@@ -18,3 +18,10 @@ def printable(text: str, keep: str = "") -> str:
     if text.isprintable():
         return text
     return "".join(c if c.isprintable() or c in keep else repr(c)[1:-1] for c in text)
+
+
+def log_text(text: str, limit: int = 120) -> str:
+    """Topic or stream text made safe for one log line: at most ``limit`` characters (and
+    ``...`` when cut), each one that is not printable written as ``?``."""
+    clean = "".join(c if c.isprintable() else "?" for c in text[:limit])
+    return clean if len(text) <= limit else clean + "..."

@@ -85,7 +85,7 @@ def test_an_unreachable_cluster_is_one_line_and_exit_status_2(tmp_path: Path) ->
 
 
 def test_a_held_stream_keeps_its_topic_through_a_reload_so_the_next_one_moves_it(tmp_path: Path) -> None:
-    # A stream waiting for its last writer's answer (Daemon._deferred) has no engine yet.
+    # A stream waiting for its last writer's answer (Daemon.moved.deferred) has no engine yet.
     # A reload pruned the stream-to-topic map down to the engines, so the held stream's
     # topic was forgotten, and a stream with no known topic counts as this shard's own:
     # at the next change of shard.of it stayed held here although the mapping had moved
@@ -108,10 +108,10 @@ def test_a_held_stream_keeps_its_topic_through_a_reload_so_the_next_one_moves_it
 
     d = Daemon(load_config(str(config(3))), config_path=str(config(3)), metrics=Metrics())
     d.shards.note_topic(topic, topic)
-    d._deferred[topic] = float("inf")
+    d.moved.deferred[topic] = float("inf")
     d.shards.reload(load_config(str(config(5))))  # still this shard's
-    assert topic in d._deferred and d.shards.topic_of.get(topic) == topic
+    assert topic in d.moved.deferred and d.shards.topic_of.get(topic) == topic
     d.shards.reload(load_config(str(config(4))))  # moved away: it waits here no more
     # (the samples parked for it stay in the cluster for its next owner:
     # test_shard_parking.py)
-    assert topic not in d._deferred
+    assert topic not in d.moved.deferred

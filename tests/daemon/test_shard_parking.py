@@ -172,7 +172,7 @@ def test_a_waiting_stream_s_samples_are_parked_and_its_round_is_done(tmp_path: P
     d = _daemon(tmp_path, server, "parker")
     try:
         d.process(msgs)
-        assert sorted(d._deferred) == sorted([a_topic, b_topic])  # both wait for shard 0
+        assert sorted(d.moved.deferred) == sorted([a_topic, b_topic])  # both wait for shard 0
         assert not d.engines  # nothing fed while they wait
         assert d._held_round is None  # the round is done: its messages are acknowledged
         assert _counter(d, "shiftwatch_samples_parked_total") == 352
@@ -191,15 +191,15 @@ def test_parked_samples_are_fed_in_time_order_when_the_wait_ends(tmp_path: Path,
     try:
         first = [_array(topic, 100.0, [500.0] * 50)]
         d.process(first)
-        assert topic in d._deferred and topic not in d.engines
+        assert topic in d.moved.deferred and topic not in d.engines
         second = [_array(topic, 150.0, [500.1] * 50)]
         d.process(second)
         # The old owner wrote samples 100 to 119 meanwhile (its late ones), before the answer.
         _journal_as(server, "w-old", topic, np.arange(100.0, 120.0), 499.9)
         # Shard 0's answer, as it comes by plain NATS (shiftwatch.handover's format).
         answer = {"answer": [topic], "shard": 0, "writer": d.writer_id}
-        d._handover_message(MAGIC + json.dumps(answer).encode(), "from the test", time.time())
-        d._release_deferred()
+        d.moved.message(MAGIC + json.dumps(answer).encode(), "from the test", time.time())
+        d.moved.release()
         eng = d.engines[topic]
         # The journal's 120 samples, then the parked 100 to 199, whose first 20 (times 100
         # to 119, taken by the old owner first) are set aside as duplicates.
@@ -222,14 +222,14 @@ def test_parked_samples_survive_the_shard_and_reach_the_next_loader_on_an_empty_
     first = _daemon(tmp_path, server, "first", handover_wait=1.0)
     try:
         first.process([_array(topic, 100.0, [500.0] * 60)])
-        assert topic in first._deferred and first._held_round is None
+        assert topic in first.moved.deferred and first._held_round is None
     finally:
         _close(first)  # gone before the wait ended: no snapshot, nothing fed
     time.sleep(1.2)  # past cluster.handover_wait and redelivery_wait: the next loader does not wait
     second = _daemon(tmp_path, server, "second-on-an-empty-disk", handover_wait=1.0)
     try:
         second.process([_array(topic, 160.0, [500.0] * 40)])
-        assert topic not in second._deferred
+        assert topic not in second.moved.deferred
         eng = second.engines[topic]
         assert eng.samples_total == 200 and not sum(eng.rejected_total.values()), (
             eng.samples_total, eng.rejected_total)
@@ -278,10 +278,10 @@ def test_a_stream_whose_parked_samples_reached_its_journal_is_done_when_another_
     try:
         msgs = [_array(a_topic, 100.0, [500.0] * 50), _array(b_topic, 100.0, [500.0] * 50)]
         d.process(msgs)
-        assert sorted(d._deferred) == sorted([a_topic, b_topic])
+        assert sorted(d.moved.deferred) == sorted([a_topic, b_topic])
         for topic in (a_topic, b_topic):
             answer = {"answer": [topic], "shard": 0, "writer": d.writer_id}
-            d._handover_message(MAGIC + json.dumps(answer).encode(), "from the test", time.time())
+            d.moved.message(MAGIC + json.dumps(answer).encode(), "from the test", time.time())
         real = d.cluster.journal
         calls = []
 
@@ -301,12 +301,12 @@ def test_a_stream_whose_parked_samples_reached_its_journal_is_done_when_another_
             return real(groups)
 
         d.cluster.journal = late_write_first
-        d._release_deferred()
-        assert a_topic not in d._deferred and a_topic in d.engines  # a is done
+        d.moved.release()
+        assert a_topic not in d.moved.deferred and a_topic in d.engines  # a is done
         assert _parked(server, a_topic)[2] == 0  # and its parked samples purged
-        assert b_topic in d._deferred and _parked(server, b_topic)[2] > 0  # b waits, parked kept
-        d._release_deferred()
-        assert not d._deferred
+        assert b_topic in d.moved.deferred and _parked(server, b_topic)[2] > 0  # b waits, parked kept
+        d.moved.release()
+        assert not d.moved.deferred
         a_eng, b_eng = d.engines[a_topic], d.engines[b_topic]
         assert a_eng.samples_total == 150 and not sum(a_eng.rejected_total.values()), (
             a_eng.samples_total, a_eng.rejected_total)
@@ -346,7 +346,7 @@ def test_parked_samples_of_a_stream_with_a_cut_name_and_no_snapshot_are_fed(
     first = _daemon(tmp_path, server, "first-cut", handover_wait=1.0)
     try:
         first.process([_array(topic, 100.0, [500.0] * 60)])
-        assert name in first._deferred and first._held_round is None
+        assert name in first.moved.deferred and first._held_round is None
     finally:
         _close(first)
     assert _parked(server, name)[2] > 0
@@ -373,7 +373,7 @@ def test_a_damaged_parked_message_is_set_aside_named_and_counted_and_the_rest_is
     first = _daemon(tmp_path, server, "first-damaged", handover_wait=1.0)
     try:
         first.process([_array(topic, 100.0, [500.0] * 60)])
-        assert topic in first._deferred
+        assert topic in first.moved.deferred
         subject = first.cluster.parked_subject(topic)
         first.nats.run(first.nats.publish(subject, b"\x00not a journal round"))
     finally:
@@ -406,11 +406,11 @@ def test_late_samples_of_a_stream_let_go_while_it_waited_stay_behind_its_parked_
     d = _daemon(tmp_path, server, "twice")
     try:
         d.process([_array(topic, 100.0, [500.0] * 60)])
-        assert topic in d._deferred
+        assert topic in d.moved.deferred
         moved_on = tmp_path / "twice-of-3.yaml"
         moved_on.write_text((tmp_path / "twice.yaml").read_text().replace("of: 2", "of: 3"))
         d.shards.reload(load_config(str(moved_on)))
-        assert topic not in d._deferred and d.owner is not None and not d.owner.owns(topic)
+        assert topic not in d.moved.deferred and d.owner is not None and not d.owner.owns(topic)
         d.process([_array(topic, 160.0, [500.1] * 40)])
         assert _counter(d, "shiftwatch_messages_dropped_total", reason="other_shard") == 40
     finally:
@@ -443,13 +443,13 @@ def test_parked_samples_of_a_stream_whose_entry_was_removed_stay_and_are_said(
     d.log.addHandler(handler)
     try:
         d.process([_array(topic, 100.0, [500.0] * 60)])
-        assert topic in d._deferred
+        assert topic in d.moved.deferred
         path = tmp_path / "no-entry.yaml"
         path.write_text(path.read_text().replace("brackenfield/+/+/fill", "brackenfield/+/+/weight"))
         d.reload()
         time.sleep(1.1)
-        d._release_deferred()
-        assert topic not in d._deferred and topic not in d.engines
+        d.moved.release()
+        assert topic not in d.moved.deferred and topic not in d.engines
         times, _values, last = _parked(server, topic)
         assert times == [float(t) for t in range(100, 160)] and last > 0  # kept
         subject = d.cluster.parked_subject(topic)
@@ -525,13 +525,13 @@ def test_a_stream_nobody_wrote_waits_for_the_shard_the_mapping_before_gave_it(
         d.shards.note_mapping(changed=False)
         assert d.cluster.remap is not None and (d.cluster.remap.of, d.cluster.remap.previous_of) == (2, 3)
         d.process([_array(moved, 0.0, [500.0] * 20), _array(stayed, 0.0, [500.0] * 20)])
-        assert moved in d._deferred and moved not in d.engines
+        assert moved in d.moved.deferred and moved not in d.engines
         assert d.handover.waiting[moved].shard == partition_of(moved, LEVELS, 3)
         assert _parked(server, moved)[0] == [float(t) for t in range(20)]
-        assert stayed in d.engines and stayed not in d._deferred
+        assert stayed in d.engines and stayed not in d.moved.deferred
         time.sleep(2.1)  # the change is older than cluster.handover_wait now
         d.process([_array(later, 0.0, [500.0] * 20)])
-        assert later in d.engines and later not in d._deferred
+        assert later in d.engines and later not in d.moved.deferred
     finally:
         _close(d)
 
@@ -601,7 +601,7 @@ def test_a_stream_this_shard_wrote_after_the_change_is_not_asked_of_its_owner_be
         assert d.cluster.remap is not None and (d.cluster.remap.of, d.cluster.remap.previous_of) == (2, 3)
         d.process([_array(moved, 20.0, [500.0] * 10)])
         assert moved not in d.handover.waiting
-        assert moved in d._deferred and d._deferred[moved] < time.time() + 1.5  # redelivery_wait: 1 s
+        assert moved in d.moved.deferred and d.moved.deferred[moved] < time.time() + 1.5  # redelivery_wait: 1 s
     finally:
         _close(d)
 
@@ -656,7 +656,7 @@ def test_a_mapping_record_from_a_clock_far_ahead_does_not_hold_new_streams(tmp_p
     try:
         d.process([_array(moved, 0.0, [500.0] * 20)])
         assert d.cluster.remap == ahead
-        assert moved in d.engines and moved not in d._deferred and moved not in d.handover.waiting
+        assert moved in d.engines and moved not in d.moved.deferred and moved not in d.handover.waiting
         now = time.time()
         retaken = ahead.taken_up(2, LEVELS, now, changed=True)
         assert retaken is not None and retaken.since == now  # not the hour ahead
@@ -732,7 +732,7 @@ def test_samples_parked_again_by_a_held_round_are_counted_once_on_the_real_metri
         d.cluster.journal = no_answer_first
         msgs = [_array(topic, 100.0, [500.0] * 20), _array(other, 0.0, [500.0] * 5)]
         d.process(msgs)
-        assert topic in d._deferred and d._held_round is not None and d._held_round[0] == "load"
+        assert topic in d.moved.deferred and d._held_round is not None and d._held_round[0] == "load"
         d.round(timeout=0.0)  # the held round, taken again whole
         assert d._held_round is None and len(calls) == 2
         times, values, _last = _parked(server, topic)
