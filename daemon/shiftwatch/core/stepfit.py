@@ -695,6 +695,7 @@ def fit_step(
     trim: float | None = None,
     variance_factor: float = 1.0,
     interval: str = "lr",
+    last_split: int | None = None,
 ) -> StepFit:
     """Fit the exact least-squares single step to a series.
 
@@ -728,6 +729,13 @@ def fit_step(
         Hansen's uncorrected asymptotic critical value, or Bai (1997)'s
         symmetric asymptotic interval.  The default is the one whose
         simulated coverage stays closest to nominal (see the tests).
+    last_split : int, optional
+        If given, splits are further restricted to ``index <= last_split``
+        (the step of an event, which began at or before its detection).  The
+        fit, its levels and its interval are then those of the best split in
+        that range; ``f_stat`` is the sup-F over that range, and the p-value
+        is still that of the sup over ``[pi0, 1 - pi0]``, which is larger (so
+        conservative for the shorter range).
 
     Returns
     -------
@@ -761,6 +769,11 @@ def fit_step(
     n = y.size
     k_lo, k_hi, pi0 = _check_options(n, level, min_segment, trim, variance_factor)
     _check_interval(interval)
+    if last_split is not None:
+        if isinstance(last_split, bool) or not isinstance(last_split, Integral) or last_split < k_lo:
+            raise ValueError(f"last_split must be an integer >= {k_lo} (the first admissible split), "
+                             f"got {last_split!r}")
+        k_hi = min(k_hi, int(last_split))
     t = np.arange(n, dtype=np.float64) if times is None else _as_times(times, n)
     csum = np.empty(n + 1, dtype=np.float64)
     csum[0] = 0.0
