@@ -109,3 +109,55 @@ def test_a_fit_with_its_split_at_or_before_a_given_sample_is_the_best_of_those_s
     with pytest.raises(ValueError, match="last_split"):
         fit_step(y, min_segment=2, last_split=1)
 
+
+def ar08_stream(state: int, n: int = 600) -> tuple[np.ndarray, np.ndarray]:
+    """A new stream of AR(1) noise, phi 0.8, sd 2 around 50, no step (scipy's lfilter)."""
+    from scipy.signal import lfilter
+
+    rng = np.random.default_rng(state)
+    z = lfilter([1.0], [1.0, -0.8], rng.standard_normal(n)) * math.sqrt(1.0 - 0.64)
+    return T0 + np.arange(n, dtype=np.float64), 50.0 + 2.0 * z
+
+
+@pytest.mark.parametrize("state", [19, 70, 117])
+def test_an_event_opened_as_the_one_before_is_dismissed_names_what_opened_it(state: int) -> None:
+    # Trial defect 7: `detected` records with `test: multi_cusum, statistic 0.365,
+    # threshold 1.0` (the README promises statistic >= threshold), all on AR(1) 0.8
+    # noise, when the refit at an event's decision placed the step after the
+    # detection: the old event was dismissed and a new one opened with the sequential
+    # test's statistic, reset at the first trip.  (Failed before: statistic below
+    # threshold on each of these streams.)
+    from shiftwatch.core.stepfit import supf_pvalue
+
+    settings = DetectionSettings()  # the default settings, as in the trial
+    t, x = ar08_stream(state)
+    recs = StreamEngine("s", settings).process(t, x).records
+    assert recs
+    refits = 0
+    for rec in recs:
+        assert rec.statistic >= rec.threshold, rec
+        if rec.test == "event_refit" and rec.phase == "detected":
+            refits += 1
+            # the refit's sup-F (the detected record's own f_stat) against the F whose
+            # p-value is confirm_p_value (pi0: the fit's two-sample segments over its length)
+            assert rec.statistic == pytest.approx(rec.f_stat, rel=1e-12)
+            pi0 = 2.0 / (rec.n_before + rec.n_after)
+            assert supf_pvalue(rec.threshold, pi0) == pytest.approx(settings.confirm_p_value, rel=1e-6)
+        elif rec.test == "event_trial":
+            # Wald (1945): the bound is log((1 - a) / a), a = confirm_p_value
+            a = settings.confirm_p_value
+            assert rec.threshold == pytest.approx(math.log((1.0 - a) / a), rel=1e-12)
+    assert refits >= 1
+
+
+def test_the_sup_f_critical_value_is_andrews() -> None:
+    # Andrews (1993) Table 1, p = 1, pi0 = 0.15 (from memory): 7.17 (10%), 8.85 (5%),
+    # 12.35 (1%); the tail approximation of supf_pvalue is within a tenth or so there
+    # (its p-value at 7.17 is 0.10 +- 0.006, test_stepfit.py).
+    from shiftwatch.core.stepfit import supf_critical
+
+    assert supf_critical(0.10, 0.15) == pytest.approx(7.17, abs=0.15)
+    assert supf_critical(0.05, 0.15) == pytest.approx(8.85, abs=0.05)
+    assert supf_critical(0.01, 0.15) == pytest.approx(12.35, abs=0.1)
+    with pytest.raises(ValueError, match="alpha"):
+        supf_critical(0.0, 0.15)

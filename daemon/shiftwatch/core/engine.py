@@ -72,7 +72,7 @@ from shiftwatch.core.selfstart import (
 )
 from shiftwatch.core.sequential import SequentialTest
 from shiftwatch.core.settings import ARL_RANGE, DetectionSettings
-from shiftwatch.core.stepfit import StepFit, StepFitter
+from shiftwatch.core.stepfit import StepFit, StepFitter, supf_critical
 from shiftwatch.core.timefmt import TIME_MAX, TIME_MIN, format_time
 
 FloatArray = NDArray[np.float64]
@@ -515,6 +515,12 @@ WARM_STRETCH_P = 0.1
 #: that look names END_TEST.
 WARM_END_SHARE = 0.1
 END_TEST = "warmup_end"
+#: The names a record gives what opened an event as the one before it was dismissed because
+#: its refit placed the step after that detection (StreamEngine._decide): the refit, a clear
+#: step (``statistic``: its sup-F, ``threshold``: the F whose p-value is confirm_p_value), or
+#: else the trial's step evidence (its log-likelihood ratio against Wald's bound).
+REFIT_TEST = "event_refit"
+TRIAL_TEST = "event_trial"
 #: The shortest segment an event's step fit allows on each side of the step, and the
 #: fewest samples it can fit (``StepFitter``: at least 2 * min_segment + 1).
 FIT_MIN_SEGMENT = 2
@@ -2327,7 +2333,13 @@ class StreamEngine:
             if self._young is None:
                 # The samples since the first trip are not followed yet either.
                 self._follow_lag += len(self._fitter) - ev.trip_len
-            self._begin_event(as_of, result, as_of, by_fit=True)
+            # The new event's record names what opened it, not the sequential test (whose
+            # statistic was reset at the first trip and may be anywhere below its threshold):
+            # the refit's sup-F against the F whose p-value is confirm_p_value, or else the
+            # trial's evidence for a step against Wald's bound.
+            tripped = ((REFIT_TEST, fit.f_stat, supf_critical(self.settings.confirm_p_value, fit.pi0)) if clear
+                       else (TRIAL_TEST, ev.trial.llr_step(), ev.trial.bound))
+            self._begin_event(as_of, result, as_of, by_fit=True, tripped=tripped)
             return
         shown = self._event_fit(ev, b, fit)  # what the record says
         conflict = outcome == STEP and (fit.delta * ev.trial.sign <= 0.0

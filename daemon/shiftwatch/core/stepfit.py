@@ -62,6 +62,7 @@ __all__ = [
     "fit_step",
     "lr_cdf",
     "lr_critical",
+    "supf_critical",
     "supf_pvalue",
 ]
 
@@ -315,6 +316,31 @@ def supf_pvalue(f_stat: float, pi0: float) -> float:
         * ((1.0 - 1.0 / c) * log_lam + 4.0 / c)
     )
     return min(1.0, max(0.0, value))
+
+
+def supf_critical(alpha: float, pi0: float) -> float:
+    """The sup-F statistic whose :func:`supf_pvalue` is ``alpha``: the smallest
+    statistic (to 1e-9 of itself) above which every statistic has a p-value below
+    ``alpha``, found by bisection on the decreasing tail.
+
+    Examples
+    --------
+    >>> round(supf_critical(0.05, 0.15), 2)
+    8.85
+    """
+    alpha = float(alpha)
+    if not 0.0 < alpha < 1.0:
+        raise ValueError(f"alpha must lie strictly between 0 and 1, got {alpha!r}")
+    lo, hi = 0.0, 1.0
+    while supf_pvalue(hi, pi0) >= alpha:
+        lo, hi = hi, 2.0 * hi
+    while hi - lo > 1e-9 * hi:
+        mid = 0.5 * (lo + hi)
+        if supf_pvalue(mid, pi0) >= alpha:
+            lo = mid
+        else:
+            hi = mid
+    return lo
 
 
 # ---------------------------------------------------------------------------
