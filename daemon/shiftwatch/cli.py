@@ -536,14 +536,17 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
     streams = result.streams
     phases: dict[str, int] = {}
     rejected: dict[str, int] = {}
+    still_open = 0  # events detected with no final record when the files ended
     for o in streams.values():
+        still_open += o.open_events
         for k, v in o.records_total.items():
             phases[k] = phases.get(k, 0) + v
         for k, v in o.rejected_total.items():
             rejected[k] = rejected.get(k, 0) + v
     summary = (f"replayed {result.rows} rows in {len(streams)} stream(s): "
                f"{phases.get('confirmed', 0)} shift(s) confirmed, {phases.get('returned', 0)} returned, "
-               f"{phases.get('dismissed', 0)} dismissed, {phases.get('undecided', 0)} undecided")
+               f"{phases.get('dismissed', 0)} dismissed, {phases.get('undecided', 0)} undecided, "
+               f"{still_open} still open")
     if rejected:
         summary += "; samples set aside: " + ", ".join(f"{k} {v}" for k, v in sorted(rejected.items()))
     skipped = result.read_problem_count - result.file_notes

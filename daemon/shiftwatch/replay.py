@@ -39,7 +39,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from numpy.typing import NDArray
 
-from shiftwatch.core.engine import AlertRecord, BatchResult, StreamEngine
+from shiftwatch.core.engine import EVENT_OPEN, AlertRecord, BatchResult, StreamEngine
 from shiftwatch.core.screen import READING_REASONS, REASONS
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.sources import (
@@ -199,6 +199,8 @@ class StreamOutcome:
     records_total: dict[str, int]
     rejected_total: dict[str, int]
     trace: Any = None  # the report's StreamTrace, when a report was asked for
+    #: 1 when the stream's engine still had an event open (detected, no final record) at the end
+    open_events: int = 0
 
 
 @dataclass
@@ -369,7 +371,8 @@ class _Feeder:
             if trace is not None:
                 trace.close()
             out[name] = StreamOutcome(self.records[name], self.problems[name], self.problem_count[name],
-                                      eng.samples_total, dict(eng.records_total), dict(eng.rejected_total), trace)
+                                      eng.samples_total, dict(eng.records_total), dict(eng.rejected_total), trace,
+                                      int(eng.state == EVENT_OPEN))
         return out
 
     def read_summary(self) -> tuple[int, list[tuple[int, int, int, int, str]], int, dict[int, str], int,
