@@ -325,8 +325,8 @@ def supf_critical(alpha: float, pi0: float) -> float:
 
     Examples
     --------
-    >>> round(supf_critical(0.05, 0.15), 2)
-    8.85
+    >>> round(supf_critical(0.05, 0.15), 3), round(supf_pvalue(supf_critical(0.05, 0.15), 0.15), 6)
+    (8.857, 0.05)
     """
     alpha = float(alpha)
     if not 0.0 < alpha < 1.0:
