@@ -536,14 +536,17 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
     streams = result.streams
     phases: dict[str, int] = {}
     rejected: dict[str, int] = {}
+    still_open = 0  # events detected with no final record when the files ended
     for o in streams.values():
+        still_open += o.open_events
         for k, v in o.records_total.items():
             phases[k] = phases.get(k, 0) + v
         for k, v in o.rejected_total.items():
             rejected[k] = rejected.get(k, 0) + v
     summary = (f"replayed {result.rows} rows in {len(streams)} stream(s): "
                f"{phases.get('confirmed', 0)} shift(s) confirmed, {phases.get('returned', 0)} returned, "
-               f"{phases.get('dismissed', 0)} dismissed, {phases.get('undecided', 0)} undecided")
+               f"{phases.get('dismissed', 0)} dismissed, {phases.get('undecided', 0)} undecided, "
+               f"{still_open} still open")
     if rejected:
         summary += "; samples set aside: " + ", ".join(f"{k} {v}" for k, v in sorted(rejected.items()))
     skipped = result.read_problem_count - result.file_notes
@@ -813,11 +816,15 @@ def cmd_design(args: argparse.Namespace) -> int:
         b = f"{r.bank_median:6.0f} / {hd(r.bank_median * interval)}"
         w(f"  {r.shift:5.2f}   {b:22s}{r.cusum_arl:11.1f}   {r.cusum_median:6.0f} / "
           f"{hd(r.cusum_median * interval):12s} {g}\n")
-    w("\nDelays count samples from the shift to the alarm, and are rounded for reading\n"
-      "(--json gives every figure in full). CUSUM figures come from the\n"
-      "Brook & Evans Markov chain; the multi-chart CUSUM trips no later than its fastest\n"
-      "chart, so its delay is at most that chart's; GLR delays come from a simulation\n"
-      "with a fixed random state.\n")
+    w("\nDelays are median run lengths: the samples from the first one at the new level to\n"
+      "the one that trips the test, both counted (1: tripped on the first), rounded for\n"
+      "reading (--json gives every figure in full). They are the test's alone, started\n"
+      "from zero at the shift, on independent readings whose level and sigma are known.\n"
+      "CUSUM figures come from the Brook & Evans Markov chain; the multi-chart CUSUM trips\n"
+      "no later than its fastest chart, so its run length is at most that chart's; GLR\n"
+      "delays come from a simulation with a fixed random state. shiftwatch itself\n"
+      "estimates the level and sigma: a step early in a stream's life is found later\n"
+      "than this (see the README, \"Why the multi-chart CUSUM is the default\").\n")
     if args.chart:
         w(f"\nChart written to {args.chart}: the chosen settings next to false_alarm_every / 4 "
           "(more sensitive) and x 4 (less sensitive).\n")

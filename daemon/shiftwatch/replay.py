@@ -6,8 +6,8 @@ rows, in file order, to the stream's own :class:`StreamEngine` in batches of
 :data:`BATCH` samples, so memory is bounded by the streams and the engines'
 windows, not by the rows.  The engine is batch-independent, so the records
 are those of one batch per stream; they come out sorted by
-``(as_of, stream, phase != "detected")``, a stream's records that tie
-keeping the order the engine made them in.
+``(as_of, stream)``, a stream's records that tie keeping the order the
+engine made them in.
 
 With ``jobs`` > 1 the streams are split over that many processes (by a hash
 of the name).  Each process parses every ``jobs``-th chunk and hands the
@@ -39,7 +39,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from numpy.typing import NDArray
 
-from shiftwatch.core.engine import AlertRecord, BatchResult, StreamEngine
+from shiftwatch.core.engine import EVENT_OPEN, AlertRecord, BatchResult, StreamEngine
 from shiftwatch.core.screen import READING_REASONS, REASONS
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.sources import (
@@ -180,8 +180,12 @@ def _v1_files(base: str, rel: list[str]) -> list[float | None]:
     return out
 
 
-def _record_key(r: AlertRecord) -> tuple[float, str, bool]:
-    return (r.as_of, r.stream, r.phase != "detected")
+def _record_key(r: AlertRecord) -> tuple[float, str]:
+    # A stream's records that tie keep the engine's order (the sorts are stable): an
+    # event's final record before the detection of the event that replaces it on
+    # the same sample.  (Before, a tie put `detected` first, between the other
+    # event's `detected` and final records.)
+    return (r.as_of, r.stream)
 
 
 # ---------------------------------------------------------------------------
@@ -199,6 +203,8 @@ class StreamOutcome:
     records_total: dict[str, int]
     rejected_total: dict[str, int]
     trace: Any = None  # the report's StreamTrace, when a report was asked for
+    #: 1 when the stream's engine still had an event open (detected, no final record) at the end
+    open_events: int = 0
 
 
 @dataclass
@@ -369,7 +375,8 @@ class _Feeder:
             if trace is not None:
                 trace.close()
             out[name] = StreamOutcome(self.records[name], self.problems[name], self.problem_count[name],
-                                      eng.samples_total, dict(eng.records_total), dict(eng.rejected_total), trace)
+                                      eng.samples_total, dict(eng.records_total), dict(eng.rejected_total), trace,
+                                      int(eng.state == EVENT_OPEN))
         return out
 
     def read_summary(self) -> tuple[int, list[tuple[int, int, int, int, str]], int, dict[int, str], int,

@@ -129,7 +129,7 @@ def one_batch_records(series: dict[str, tuple[Iterable[float], Iterable[float]]]
         t, v = series[name]
         records += StreamEngine(name).process(np.asarray(list(t), dtype=np.float64),
                                               np.asarray(list(v), dtype=np.float64)).records
-    records.sort(key=lambda r: (r.as_of, r.stream, r.phase != "detected"))
+    records.sort(key=lambda r: (r.as_of, r.stream))
     return [json.dumps(r.to_dict()) for r in records]
 
 

@@ -72,7 +72,7 @@ from shiftwatch.core.selfstart import (
 )
 from shiftwatch.core.sequential import SequentialTest
 from shiftwatch.core.settings import ARL_RANGE, DetectionSettings
-from shiftwatch.core.stepfit import StepFit, StepFitter
+from shiftwatch.core.stepfit import StepFit, StepFitter, supf_critical
 from shiftwatch.core.timefmt import TIME_MAX, TIME_MIN, format_time
 
 FloatArray = NDArray[np.float64]
@@ -515,6 +515,12 @@ WARM_STRETCH_P = 0.1
 #: that look names END_TEST.
 WARM_END_SHARE = 0.1
 END_TEST = "warmup_end"
+#: The names a record gives what opened an event as the one before it was dismissed because
+#: its refit placed the step after that detection (StreamEngine._decide): the refit, a clear
+#: step (``statistic``: its sup-F, ``threshold``: the F whose p-value is confirm_p_value), or
+#: else the trial's step evidence (its log-likelihood ratio against Wald's bound).
+REFIT_TEST = "event_refit"
+TRIAL_TEST = "event_trial"
 #: The shortest segment an event's step fit allows on each side of the step, and the
 #: fewest samples it can fit (``StepFitter``: at least 2 * min_segment + 1).
 FIT_MIN_SEGMENT = 2
@@ -2322,14 +2328,20 @@ class StreamEngine:
             # direction, or clearly in the other): that detection was not this step.
             # It ends as dismissed (with the fit it had), and the step gets an event
             # of its own, detected now, so nothing is thrown away.
-            self._end_event(ev, "dismissed", self._fit_until_trip(ev, b), result, as_of)
+            self._end_event(ev, "dismissed", self._event_fit(ev, b, fit, end=ev.trip_len), result, as_of)
             self._state = EVENT_OPEN
             if self._young is None:
                 # The samples since the first trip are not followed yet either.
                 self._follow_lag += len(self._fitter) - ev.trip_len
-            self._begin_event(as_of, result, as_of, by_fit=True)
+            # The new event's record names what opened it, not the sequential test (whose
+            # statistic was reset at the first trip and may be anywhere below its threshold):
+            # the refit's sup-F against the F whose p-value is confirm_p_value, or else the
+            # trial's evidence for a step against Wald's bound.
+            tripped = ((REFIT_TEST, fit.f_stat, supf_critical(self.settings.confirm_p_value, fit.pi0)) if clear
+                       else (TRIAL_TEST, ev.trial.llr_step(), ev.trial.bound))
+            self._begin_event(as_of, result, as_of, by_fit=True, tripped=tripped)
             return
-        shown = self._fit_until_trip(ev, b) if late else fit  # what the record says
+        shown = self._event_fit(ev, b, fit)  # what the record says
         conflict = outcome == STEP and (fit.delta * ev.trial.sign <= 0.0
                                         or abs(fit.delta) < 0.5 * self.settings.min_shift_sigma * b.sigma)
         if outcome == NO_STEP or conflict:
@@ -2382,7 +2394,7 @@ class StreamEngine:
         if ev is None or b is None or self._fitter is None:
             return None
         fit = self._fit(b)
-        shown = fit if fit.index < ev.trip_len else self._fit_until_trip(ev, b)
+        shown = self._event_fit(ev, b, fit)
         rec = self._record(ev, shown, "undecided", max(as_of, ev.detected_at))
         ys = self._young
         if ys is not None:  # as for a dismissal: the held and event samples join the young level
@@ -2418,15 +2430,25 @@ class StreamEngine:
         self._center = self._follow
         self._prev_r -= self._follow
 
-    def _fit_until_trip(self, ev: OpenEvent, b: Baseline) -> StepFit:
-        """The step fit over the samples up to the detection only."""
+    def _event_fit(self, ev: OpenEvent, b: Baseline, fit: StepFit, end: int | None = None) -> StepFit:
+        """The fit a final record carries: the detected step as the samples up to ``end``
+        (default: every sample the event holds at its decision) show it, its split at or
+        before the detection (the record is of the step detected).  ``fit``, the refit
+        of every sample, when it places the step there already.  Before, a refit that
+        placed its split after the detection left an ``undecided`` record with the fit
+        up to the detection: after 1,000 samples it said "after 3 samples"."""
         assert self._fitter is not None
-        n = ev.trip_len
-        vals, times = self._fitter.values[:n], self._fitter.times[:n]
-        fit = _fit(vals, times, level=self.settings.interval_level, variance_factor=_variance_factor(b.phi))
-        if fit is None:  # too few samples to fit: the whole window's fit, clamped on output
-            return self._fit(b)
-        return fit
+        n = len(self._fitter) if end is None else end
+        if n == len(self._fitter) and fit.index < ev.trip_len:
+            return fit
+        last = ev.trip_len - 1
+        if last < FIT_MIN_SEGMENT or n < 2 * FIT_MIN_SEGMENT + 1:
+            return fit if n == len(self._fitter) else self._fit(b)  # too few: clamped on output
+        from shiftwatch.core.stepfit import fit_step
+
+        return fit_step(self._fitter.values[:n], self._fitter.times[:n], level=self.settings.interval_level,
+                        min_segment=FIT_MIN_SEGMENT, variance_factor=_variance_factor(b.phi),
+                        last_split=last)
 
     def _end_event(self, ev: OpenEvent, phase: str, fit: StepFit, result: BatchResult, as_of: float,
                    **extra: Any) -> None:

@@ -62,6 +62,7 @@ __all__ = [
     "fit_step",
     "lr_cdf",
     "lr_critical",
+    "supf_critical",
     "supf_pvalue",
 ]
 
@@ -315,6 +316,31 @@ def supf_pvalue(f_stat: float, pi0: float) -> float:
         * ((1.0 - 1.0 / c) * log_lam + 4.0 / c)
     )
     return min(1.0, max(0.0, value))
+
+
+def supf_critical(alpha: float, pi0: float) -> float:
+    """The sup-F statistic whose :func:`supf_pvalue` is ``alpha``: the smallest
+    statistic (to 1e-9 of itself) above which every statistic has a p-value below
+    ``alpha``, found by bisection on the decreasing tail.
+
+    Examples
+    --------
+    >>> round(supf_critical(0.05, 0.15), 3), round(supf_pvalue(supf_critical(0.05, 0.15), 0.15), 6)
+    (8.857, 0.05)
+    """
+    alpha = float(alpha)
+    if not 0.0 < alpha < 1.0:
+        raise ValueError(f"alpha must lie strictly between 0 and 1, got {alpha!r}")
+    lo, hi = 0.0, 1.0
+    while supf_pvalue(hi, pi0) >= alpha:
+        lo, hi = hi, 2.0 * hi
+    while hi - lo > 1e-9 * hi:
+        mid = 0.5 * (lo + hi)
+        if supf_pvalue(mid, pi0) >= alpha:
+            lo = mid
+        else:
+            hi = mid
+    return lo
 
 
 # ---------------------------------------------------------------------------
@@ -695,6 +721,7 @@ def fit_step(
     trim: float | None = None,
     variance_factor: float = 1.0,
     interval: str = "lr",
+    last_split: int | None = None,
 ) -> StepFit:
     """Fit the exact least-squares single step to a series.
 
@@ -728,6 +755,13 @@ def fit_step(
         Hansen's uncorrected asymptotic critical value, or Bai (1997)'s
         symmetric asymptotic interval.  The default is the one whose
         simulated coverage stays closest to nominal (see the tests).
+    last_split : int, optional
+        If given, splits are further restricted to ``index <= last_split``
+        (the step of an event, which began at or before its detection).  The
+        fit, its levels and its interval are then those of the best split in
+        that range; ``f_stat`` is the sup-F over that range, and the p-value
+        is still that of the sup over ``[pi0, 1 - pi0]``, which is larger (so
+        conservative for the shorter range).
 
     Returns
     -------
@@ -761,6 +795,11 @@ def fit_step(
     n = y.size
     k_lo, k_hi, pi0 = _check_options(n, level, min_segment, trim, variance_factor)
     _check_interval(interval)
+    if last_split is not None:
+        if isinstance(last_split, bool) or not isinstance(last_split, Integral) or last_split < k_lo:
+            raise ValueError(f"last_split must be an integer >= {k_lo} (the first admissible split), "
+                             f"got {last_split!r}")
+        k_hi = min(k_hi, int(last_split))
     t = np.arange(n, dtype=np.float64) if times is None else _as_times(times, n)
     csum = np.empty(n + 1, dtype=np.float64)
     csum[0] = 0.0
