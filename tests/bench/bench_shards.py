@@ -3,7 +3,7 @@ paho subscribers in the same run, and the cost of cluster state against local st
 
     python tests/bench/bench_shards.py [--quick] [--repeat N] [--part throughput|state]
         [--shards 1 2 4] [--payload single batch260] [--streams established|new]
-        [--ack-wait 5s] [--max-ack-pending 4096]
+        [--ack-wait 5s] [--max-ack-pending 4096] [--against DIR] [--spy DIR] [--poll 0.05]
 
 For each shard count n, a private 3-server NATS cluster (JetStream, MQTT, the plant
 mapped to n partitions; tests/daemon/natskit.py) is started.  The consumers'
@@ -38,6 +38,15 @@ thread (names from ``py-spy dump`` when py-spy is installed), how the shard's
 main thread spent the interval (on a core, runnable but waiting for a core,
 asleep: the kernel's schedstat), the NATS servers' CPU-seconds per million
 samples, each one's share of the machine's cores, and the load average.
+
+``--against DIR`` runs the shards of each repeat twice over the same cluster, on DIR's
+code (another checkout's ``daemon/`` directory, first on their PYTHONPATH) and on this
+checkout's, which goes first alternating, and reports both and the ratio of their
+samples per shard CPU-second per repeat.  ``--spy DIR`` runs ``py-spy record`` (raw
+stacks per thread, not stopping the shard) on each shard while it takes the backlog.
+``--poll`` sets the seconds between the polls of the shards' /metrics (0.05 by default;
+``bench_daemon.py`` polls every 0.25 s): each poll costs the shard a render in its
+metrics threads, which the figure without those threads leaves out.
 
 Ratios only, each against a baseline measured in the same run: the machine
 (2 cores) is shared, so absolute rates move from run to run.  With --repeat the
@@ -89,6 +98,9 @@ BARE_WAIT = 90.0
 #: How long the shards may take no sample of the backlog before the repeat is not counted
 #: (samples set aside, e.g. copies NATS sent again after newer ones, never arrive).
 STALL = 60.0
+#: Seconds between two polls of the shards' /metrics while they take the backlog (--poll): each
+#: poll costs the shard a render of ``shiftwatch_samples_total`` in its metrics threads.
+POLL = 0.05
 #: The machine's cores, the denominator of each process group's share.
 CORES = psutil.cpu_count() or 1
 #: The shard's threads that answer the benchmark's /metrics polls (metrics.py): what they
@@ -456,7 +468,7 @@ def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: li
         if n >= total:
             done = now
             break
-        time.sleep(0.05)
+        time.sleep(POLL)
     for sp in spies:
         sp.send_signal(signal.SIGINT)  # py-spy writes its file and ends
     for sp in spies:
@@ -710,6 +722,7 @@ def part_state(args: argparse.Namespace, work: Path) -> list[str]:
 
 
 def main() -> int:
+    global POLL
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--repeat", type=int, default=3)
@@ -727,9 +740,13 @@ def main() -> int:
     ap.add_argument("--spy", metavar="DIR", type=Path,
                     help="py-spy record (raw, per thread, not stopping the shard) of each shard while it "
                          "takes the backlog, into DIR (needs py-spy)")
+    ap.add_argument("--poll", type=float, default=POLL, metavar="SECONDS",
+                    help=f"seconds between polls of the shards' /metrics while they take the backlog (default "
+                         f"{POLL}; bench_daemon.py polls every 0.25)")
     ap.add_argument("--max-ack-pending", type=int, default=4096,
                     help="the NATS servers' mqtt max_ack_pending (default 4096, as config/nats-partitions.conf)")
     args = ap.parse_args()
+    POLL = args.poll
     if args.against and not Path(args.against, "shiftwatch", "__init__.py").is_file():
         ap.error(f"--against {args.against}: no shiftwatch package there (give a checkout's daemon/ directory)")
     if args.spy is not None and py_spy() is None:
