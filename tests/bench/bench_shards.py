@@ -61,6 +61,7 @@ from __future__ import annotations
 import argparse
 import http.client
 import json
+import math
 import os
 import re
 import shutil
@@ -628,11 +629,15 @@ def part_throughput(args: argparse.Namespace, work: Path) -> list[str]:
                 per_cpu: dict[str, list[float]] = {side: [] for side, _ in sides}
                 for rep in range(args.repeat):
                     tag = f"{kind}{parts}r{rep}"
+                    bared: tuple[float, CpuSpent, CpuSpent] | None = None
                     try:
-                        b, b_take, b_store = run_bare(cluster, parts, msgs, tag, batch)
+                        bared = run_bare(cluster, parts, msgs, tag, batch)
                     except RuntimeError as exc:
-                        print(f"  repeat {rep + 1}: not counted ({exc})", flush=True)
-                        continue
+                        if not args.against:
+                            print(f"  repeat {rep + 1}: not counted ({exc})", flush=True)
+                            continue
+                        # Paired runs compare the shards with each other: they go on without it.
+                        print(f"  repeat {rep + 1}: bare subscribers not counted ({exc})", flush=True)
                     got: dict[str, tuple[float, CpuSpent, CpuSpent]] = {}
                     for side, code in (sides if rep % 2 == 0 else sides[::-1]):
                         try:
@@ -642,8 +647,13 @@ def part_throughput(args: argparse.Namespace, work: Path) -> list[str]:
                             print(f"  repeat {rep + 1} ({side}): not counted ({str(exc)[:3000]})", flush=True)
                     if len(got) != len(sides):
                         continue
-                    stores.append(b_store)
-                    bare_takes.append(b_take)
+                    b = math.nan
+                    if bared is not None:
+                        b, b_take, b_store = bared
+                        stores.append(b_store)
+                        bare_takes.append(b_take)
+                        print(cpu_line("stored (bare's backlog)", b_store), flush=True)
+                        print(cpu_line("bare took", b_take), flush=True)
                     for side, (r, s_take, s_store) in got.items():
                         rb[side].append(b)
                         rs[side].append(r)
@@ -652,8 +662,6 @@ def part_throughput(args: argparse.Namespace, work: Path) -> list[str]:
                         per_cpu[side].append(s_take.samples / max(s_take.groups["shard"], 1e-9))
                         print(f"  repeat {rep + 1} ({side}): shards {r:,.0f} msg/s, bare {b:,.0f} msg/s, "
                               f"ratio {r / b:.2f}", flush=True)
-                    print(cpu_line("stored (bare's backlog)", b_store), flush=True)
-                    print(cpu_line("bare took", b_take), flush=True)
                     for side, (_r, s_take, s_store) in got.items():
                         print(cpu_line(f"stored (shards' backlog, {side})", s_store), flush=True)
                         print(cpu_line(f"shards took ({side})", s_take), flush=True)
@@ -663,7 +671,9 @@ def part_throughput(args: argparse.Namespace, work: Path) -> list[str]:
                 for side, code in sides:
                     if not rs[side]:
                         continue
-                    shard_rate, bare_rate = statistics.median(rs[side]), statistics.median(rb[side])
+                    counted = [x for x in rb[side] if not math.isnan(x)]
+                    bare_rate = statistics.median(counted) if counted else math.nan
+                    shard_rate = statistics.median(rs[side])
                     label = kind if not args.against else f"{kind} ({side}: {code})"
                     rows.append(f"| {parts} | {label} | {args.streams} | {len(msgs):,} | {shard_rate:,.0f} msg/s, "
                                 f"{shard_rate * batch:,.0f} samples/s | {bare_rate:,.0f} msg/s | "
