@@ -177,8 +177,9 @@ class CpuSpent:
     def by_thread(self) -> str:
         """The shards' CPU by thread, as parts of the shards' CPU, largest first."""
         shard = self.groups["shard"] or 1.0
-        return ", ".join(f"{n} {c / shard:.0%}" for n, c in sorted(self.thread_cpu().items(), key=lambda x: -x[1])
-                         if c / shard >= 0.005)
+        per = 1e6 / max(self.samples, 1.0)
+        return ", ".join(f"{n} {c / shard:.0%} ({c * per:.3f} us a sample)"
+                         for n, c in sorted(self.thread_cpu().items(), key=lambda x: -x[1]) if c / shard >= 0.005)
 
 
 class CpuMeter:
