@@ -557,9 +557,10 @@ class JournalRound:
 
     Each stream's group is one message with the expected last sequence known when
     it is added (a stream has one group a round), exactly as :meth:`ClusterState.journal`
-    sends them.  Groups go to the NATS thread in chunks of :data:`CHUNK`, so the
-    publishing overlaps the feeding of the rest of the round; :meth:`wait` sends the
-    last chunk and waits for every acknowledgement.  Nothing is acknowledged to the
+    sends them.  Groups go to the NATS thread in chunks of :data:`CHUNK`, each chunk one
+    ``NatsIO.publish_batch`` (its messages sent together, one future for their
+    acknowledgements), so the publishing overlaps the feeding of the rest of the round;
+    :meth:`wait` sends the last chunk and waits for every acknowledgement.  Nothing is acknowledged to the
     broker before :meth:`wait` returns: the guarantee is the same.
     """
 
