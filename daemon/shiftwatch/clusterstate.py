@@ -557,9 +557,10 @@ class JournalRound:
 
     Each stream's group is one message with the expected last sequence known when
     it is added (a stream has one group a round), exactly as :meth:`ClusterState.journal`
-    sends them.  Groups go to the NATS thread in chunks of :data:`CHUNK`, so the
-    publishing overlaps the feeding of the rest of the round; :meth:`wait` sends the
-    last chunk and waits for every acknowledgement.  Nothing is acknowledged to the
+    sends them.  Groups go to the NATS thread in chunks of :data:`CHUNK`, each chunk one
+    ``NatsIO.publish_batch`` (its messages sent together, one future for their
+    acknowledgements), so the publishing overlaps the feeding of the rest of the round;
+    :meth:`wait` sends the last chunk and waits for every acknowledgement.  Nothing is acknowledged to the
     broker before :meth:`wait` returns: the guarantee is the same.
     """
 
@@ -568,7 +569,8 @@ class JournalRound:
 
     def __init__(self, cs: ClusterState) -> None:
         self.cs = cs
-        self._sem = asyncio.Semaphore(PARALLEL)
+        #: Chunks in flight at once: PARALLEL messages, as the round's other requests.
+        self._sem = asyncio.Semaphore(max(1, PARALLEL // self.CHUNK))
         self._buf: list[tuple[JournalGroup, bytes, int]] = []
         self._futs: list[Any] = []
         self._n = 0
@@ -589,27 +591,35 @@ class JournalRound:
         if cs.shard is not None:
             headers[SHARD] = str(cs.shard)
 
-        async def one(g: JournalGroup, body: bytes, last: int) -> tuple[JournalGroup, int | None]:
-            async with sem:
-                subject = cs.subject(g.stream)
-                try:
-                    seq = await cs.io.publish_in_batch(subject, body, expect_last=last, headers=headers)
-                except SequenceConflict:
-                    # Refused: the subject moved on.  When its last message is this very
-                    # group, written by this daemon, an earlier attempt of the round was
-                    # stored and only its acknowledgement was lost (the round timed out and
-                    # is tried again): that message is this group's, nothing to reload.
-                    at, hdrs, stored = await cs.io.last_message(cs.stream, subject)
-                    if at > last and hdrs.get(WRITER) == cs.writer and stored == body:
-                        return g, at
-                    if at and WRITER not in hdrs:
-                        cs.unsigned[g.stream] = at
-                    cs.refused_by[g.stream] = _written(hdrs)
-                    return g, None
-                return g, seq
+        async def refused(g: JournalGroup, body: bytes, last: int) -> int | None:
+            # Refused: the subject moved on.  When its last message is this very group,
+            # written by this daemon, an earlier attempt of the round was stored and only
+            # its acknowledgement was lost (the round timed out and is tried again): that
+            # message is this group's (its sequence), nothing to reload.
+            subject = cs.subject(g.stream)
+            at, hdrs, stored = await cs.io.last_message(cs.stream, subject)
+            if at > last and hdrs.get(WRITER) == cs.writer and stored == body:
+                return at
+            if at and WRITER not in hdrs:
+                cs.unsigned[g.stream] = at
+            cs.refused_by[g.stream] = _written(hdrs)
+            return None
 
         async def go() -> list[tuple[JournalGroup, int | None]]:
-            return list(await asyncio.gather(*(one(*c) for c in chunk)))
+            # One batch for the chunk (its messages leave together, one future for all of
+            # their acknowledgements); at most PARALLEL messages of the round in flight.
+            async with sem:
+                got = await cs.io.publish_batch([(cs.subject(g.stream), body, last) for g, body, last in chunk],
+                                                headers)
+            out: list[tuple[JournalGroup, int | None]] = []
+            for (g, body, last), seq in zip(chunk, got):
+                if isinstance(seq, SequenceConflict):
+                    out.append((g, await refused(g, body, last)))
+                elif isinstance(seq, BaseException):
+                    raise seq
+                else:
+                    out.append((g, seq))
+            return out
 
         try:
             self._futs.append(cs.io.submit(go()))

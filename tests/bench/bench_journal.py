@@ -8,6 +8,8 @@ nats-server available::
 
     python tests/bench/bench_journal.py              # 8 blocks of 5,000 messages each way
     python tests/bench/bench_journal.py --quick      # 4 blocks of 2,000
+    python tests/bench/bench_journal.py --round-only --samples 260   # the daemon's round alone, to pair
+                                                     # two checkouts (PYTHONPATH=<checkout>/daemon each)
 
 One lone nats-server with JetStream (file storage, one replica: the replicas are the
 servers' cost, not the shard's) on a free loopback port, and a ``ClusterState`` on it
@@ -74,12 +76,60 @@ def block(cs: ClusterState, how: str, messages: int, samples: int, t0: float) ->
     return (time.process_time() - before) / messages * 1e6
 
 
+def round_block(cs: ClusterState, messages: int, samples: int, t0: float) -> float:
+    """Publish ``messages`` journal messages as the daemon's rounds do (``journal_round``:
+    each stream's group added as its engine returns it, then ``wait``), rounds of
+    :data:`STREAMS` streams; CPU microseconds a message, the groups' encoding included."""
+    t = np.arange(samples, dtype=float) + t0
+    groups = [JournalGroup(f"brackenfield/bench/r{i}", None, t, t * 0.5, t, None) for i in range(STREAMS)]
+    before = time.process_time()
+    for start in range(0, messages, STREAMS):
+        rnd = cs.journal_round()
+        for g in groups[:min(STREAMS, messages - start)]:
+            rnd.add(g)
+        if rnd.wait():
+            raise RuntimeError("a journal message of the round was refused")
+    return (time.process_time() - before) / messages * 1e6
+
+
+def main_round(blocks: int, messages: int, samples: int) -> int:
+    """``--round-only``: the round's figure alone, for pairing two checkouts' code (run this
+    script with each one's ``daemon/`` first on PYTHONPATH, alternating)."""
+    with TemporaryDirectory() as tmp:
+        server, port = start_lone_server(Path(tmp), "bench-journal")
+        io = NatsIO([f"nats://127.0.0.1:{port}"], name="bench-journal", timeout=10.0)
+        try:
+            io.start()
+            if not wait_until(lambda: connects(io), 30):
+                print("nats-server did not answer", file=sys.stderr)
+                return 1
+            cs = ClusterState(io, name="bench", replicas=1, logger=logging.getLogger("bench"), writer="bench")
+            cs.setup()
+            round_block(cs, STREAMS, samples, 0.0)  # warm up (subjects, the reply subscription)
+            got = [round_block(cs, messages, samples, 1e6 + b * 1e4) for b in range(blocks)]
+        finally:
+            io.close()
+            server.terminate()
+            server.wait(10)
+    import shiftwatch
+    print(f"journal rounds of {STREAMS} streams, messages of {samples} sample(s), {blocks} blocks of "
+          f"{messages:,} messages, CPU of this process per message (median block), code of "
+          f"{Path(shiftwatch.__file__).parents[1]}: {statistics.median(got):.1f} us; blocks "
+          + ", ".join(f"{x:.1f}" for x in got))
+    return 0
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--samples", type=int, default=1, help="samples in each journal message (default 1)")
+    ap.add_argument("--round-only", action="store_true",
+                    help="only the daemon's round (journal_round: add, wait), CPU per message, for pairing "
+                         "two checkouts (run with each one's daemon/ first on PYTHONPATH)")
     args = ap.parse_args()
     blocks, messages = (4, 2_000) if args.quick else (8, 5_000)
+    if args.round_only:
+        return main_round(blocks, messages, args.samples)
     with TemporaryDirectory() as tmp:
         server, port = start_lone_server(Path(tmp), "bench-journal")
         io = NatsIO([f"nats://127.0.0.1:{port}"], name="bench-journal", timeout=10.0)

@@ -3,7 +3,7 @@ paho subscribers in the same run, and the cost of cluster state against local st
 
     python tests/bench/bench_shards.py [--quick] [--repeat N] [--part throughput|state]
         [--shards 1 2 4] [--payload single batch260] [--streams established|new]
-        [--ack-wait 5s] [--max-ack-pending 4096]
+        [--ack-wait 5s] [--max-ack-pending 4096] [--against DIR] [--spy DIR] [--poll 0.05]
 
 For each shard count n, a private 3-server NATS cluster (JetStream, MQTT, the plant
 mapped to n partitions; tests/daemon/natskit.py) is started.  The consumers'
@@ -39,6 +39,15 @@ main thread spent the interval (on a core, runnable but waiting for a core,
 asleep: the kernel's schedstat), the NATS servers' CPU-seconds per million
 samples, each one's share of the machine's cores, and the load average.
 
+``--against DIR`` runs the shards of each repeat twice over the same cluster, on DIR's
+code (another checkout's ``daemon/`` directory, first on their PYTHONPATH) and on this
+checkout's, which goes first alternating, and reports both and the ratio of their
+samples per shard CPU-second per repeat.  ``--spy DIR`` runs ``py-spy record`` (raw
+stacks per thread, not stopping the shard) on each shard while it takes the backlog.
+``--poll`` sets the seconds between the polls of the shards' /metrics (0.05 by default;
+``bench_daemon.py`` polls every 0.25 s): each poll costs the shard a render in its
+metrics threads, which the figure without those threads leaves out.
+
 Ratios only, each against a baseline measured in the same run: the machine
 (2 cores) is shared, so absolute rates move from run to run.  With --repeat the
 median of the repeats is reported.  A repeat in which the shards take no sample
@@ -52,6 +61,7 @@ from __future__ import annotations
 import argparse
 import http.client
 import json
+import math
 import os
 import re
 import shutil
@@ -89,6 +99,9 @@ BARE_WAIT = 90.0
 #: How long the shards may take no sample of the backlog before the repeat is not counted
 #: (samples set aside, e.g. copies NATS sent again after newer ones, never arrive).
 STALL = 60.0
+#: Seconds between two polls of the shards' /metrics while they take the backlog (--poll): each
+#: poll costs the shard a render of ``shiftwatch_samples_total`` in its metrics threads.
+POLL = 0.05
 #: The machine's cores, the denominator of each process group's share.
 CORES = psutil.cpu_count() or 1
 #: The shard's threads that answer the benchmark's /metrics polls (metrics.py): what they
@@ -164,8 +177,9 @@ class CpuSpent:
     def by_thread(self) -> str:
         """The shards' CPU by thread, as parts of the shards' CPU, largest first."""
         shard = self.groups["shard"] or 1.0
-        return ", ".join(f"{n} {c / shard:.0%}" for n, c in sorted(self.thread_cpu().items(), key=lambda x: -x[1])
-                         if c / shard >= 0.005)
+        per = 1e6 / max(self.samples, 1.0)
+        return ", ".join(f"{n} {c / shard:.0%} ({c * per:.3f} us a sample)"
+                         for n, c in sorted(self.thread_cpu().items(), key=lambda x: -x[1]) if c / shard >= 0.005)
 
 
 class CpuMeter:
@@ -228,8 +242,7 @@ class CpuMeter:
 def thread_names(pid: int) -> dict[int, str]:
     """Thread id to Python thread name in process ``pid``, from ``py-spy dump`` when py-spy is
     installed beside this Python or on PATH (empty otherwise: the threads are then shown by id)."""
-    exe = Path(sys.executable).with_name("py-spy")
-    spy = str(exe) if exe.exists() else shutil.which("py-spy")
+    spy = py_spy()
     if spy is None:
         return {}
     try:
@@ -364,13 +377,26 @@ def taken(ports: list[int]) -> float:
     return n
 
 
+def py_spy() -> str | None:
+    """py-spy beside this Python or on PATH (None: not installed)."""
+    exe = Path(sys.executable).with_name("py-spy")
+    return str(exe) if exe.exists() else shutil.which("py-spy")
+
+
 def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: list[tuple[str, bytes]],
                tag: str, warm: list[tuple[str, bytes]] | None = None,
-               per_msg: int = 1) -> tuple[float, CpuSpent, CpuSpent]:
+               per_msg: int = 1, code: str | None = None,
+               spy: Path | None = None) -> tuple[float, CpuSpent, CpuSpent]:
     """The shards' rate over the backlog ``msgs``, in messages a second, with the CPU
     spent while they took it and while the cluster stored it.  With ``warm``, the
     shards first take those messages live, so that the backlog meets established
-    streams instead of new ones warming up."""
+    streams instead of new ones warming up.  ``code``: a ``daemon/`` directory whose
+    package the shards run (first on their PYTHONPATH; None: this checkout's, as
+    imported here).  ``spy``: a directory where ``py-spy record`` (raw, per thread,
+    not stopping the shard) writes what each shard did while it took the backlog."""
+    env = dict(os.environ)
+    if code is not None:
+        env["PYTHONPATH"] = code + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
     cfg = work / f"{tag}.yaml"
     port = free_port()
     while not all(_free(port + k) for k in range(parts)):  # the shards take port, port + 1, ...
@@ -380,7 +406,7 @@ def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: li
     def start(k: int) -> subprocess.Popen[bytes]:
         log = open(work / f"{tag}-{k}.log", "ab")  # noqa: SIM115  kept open by the child
         return subprocess.Popen(CMD + ["run", "--config", str(cfg), "--shard", str(k)], stdout=log,
-                                stderr=subprocess.STDOUT)
+                                stderr=subprocess.STDOUT, env=env)
 
     def logs(k: int) -> str:
         return (work / f"{tag}-{k}.log").read_text(errors="replace")
@@ -390,8 +416,13 @@ def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: li
     viewer = PlainClient(cluster.mqtt_url(1), f"bench-viewer-{tag}", subscribe=[f"bench/{tag}/status/#"],
                          on_message=lambda t, p: seen.__setitem__(t, p.decode()), mqtt_version="3.1.1").start()
     procs = [start(k) for k in range(parts)]
-    assert wait_until(lambda: sum(v == "online" for v in seen.values()) >= parts, 90), \
-        [logs(k)[-800:] for k in range(parts)]
+    if not wait_until(lambda: sum(v == "online" for v in seen.values()) >= parts, 90):
+        # (a cluster busy past its timeouts, e.g. after an overload: the repeat is not counted)
+        for p in procs:
+            p.terminate()
+            p.wait(60)
+        viewer.stop()
+        raise RuntimeError(f"the shards did not say they were online within 90 s: {[logs(k)[-800:] for k in range(parts)]}")
     ports = [port + k for k in range(parts)]
     base = 0.0
     if warm:
@@ -416,6 +447,7 @@ def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: li
         for p in procs:
             p.send_signal(signal.SIGSTOP)
         store = publish_measured(cluster, msgs, per_msg)
+        spies = start_spies(spy, tag, [p.pid for p in procs])
         for p in procs:
             p.send_signal(signal.SIGCONT)
     else:
@@ -424,6 +456,7 @@ def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: li
             p.wait(60)
         store = publish_measured(cluster, msgs, per_msg)
         procs = [start(k) for k in range(parts)]
+        spies = start_spies(spy, tag, [p.pid for p in procs])
     pids = [p.pid for p in procs]
     meter = CpuMeter({"shard": pids, "nats": nats_pids(cluster), "bench": [os.getpid()]}, threads=pids)
     total = len(msgs) * per_msg
@@ -442,7 +475,14 @@ def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: li
         if n >= total:
             done = now
             break
-        time.sleep(0.05)
+        time.sleep(POLL)
+    for sp in spies:
+        sp.send_signal(signal.SIGINT)  # py-spy writes its file and ends
+    for sp in spies:
+        try:
+            sp.wait(60)
+        except subprocess.TimeoutExpired:
+            sp.kill()
     names: dict[int, str] = {}
     if done is not None:
         for p in procs:
@@ -457,6 +497,18 @@ def run_shards(work: Path, cluster: NatsCluster, parts: int, keep: str, msgs: li
     take = meter.spent(first, done, total - start_count)
     take.names = names
     return (total - start_count) / take.wall / per_msg, take, store
+
+
+def start_spies(spy: Path | None, tag: str, pids: list[int]) -> list[subprocess.Popen[bytes]]:
+    """``py-spy record`` on each shard, until SIGINT (nothing without ``spy`` or py-spy)."""
+    exe = py_spy() if spy is not None else None
+    if exe is None or spy is None:
+        return []
+    spy.mkdir(parents=True, exist_ok=True)
+    return [subprocess.Popen([exe, "record", "--pid", str(pid), "--rate", "200", "--format", "raw", "--threads",
+                              "--nonblocking", "--output", str(spy / f"{tag}-{k}.txt")],
+                             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+            for k, pid in enumerate(pids)]
 
 
 def publish_measured(cluster: NatsCluster, msgs: list[tuple[str, bytes]], per_msg: int) -> CpuSpent:
@@ -555,6 +607,7 @@ def cpu_line(what: str, x: CpuSpent) -> str:
 def part_throughput(args: argparse.Namespace, work: Path) -> list[str]:
     rows = []
     cpu = []
+    paired: list[str] = []
     streams = 500 if args.quick else 2000
     single_rounds = 10 if args.quick else 20
     batch_rounds = 3 if args.quick else 4
@@ -562,6 +615,11 @@ def part_throughput(args: argparse.Namespace, work: Path) -> list[str]:
     # warm-up of 200 and the young level's 1,000 after it), not measured.
     warm = payloads(streams, WARM_ROUNDS, BATCH) if args.streams == "established" else None
     after = WARM_ROUNDS * BATCH if warm else 0
+    # --against DIR: each repeat runs the shards on DIR's code and on this checkout's, one
+    # after the other over the same cluster, which goes first alternating.
+    sides: list[tuple[str, str | None]] = [("this", None)]
+    if args.against:
+        sides = [("against", args.against), ("this", str(ROOT / "daemon"))]
     for parts in args.shards:
         with NatsCluster(3, parts, base=work / f"nats{parts}", ack_wait=args.ack_wait,
                          max_ack_pending=args.max_ack_pending) as cluster:
@@ -569,47 +627,85 @@ def part_throughput(args: argparse.Namespace, work: Path) -> list[str]:
                 if kind not in args.payload:
                     continue
                 msgs = payloads(streams, rounds, batch, after)
-                rs, rb = [], []
+                rs: dict[str, list[float]] = {side: [] for side, _ in sides}
+                rb: dict[str, list[float]] = {side: [] for side, _ in sides}
                 stores: list[CpuSpent] = []
                 bare_takes: list[CpuSpent] = []
-                shard_takes: list[CpuSpent] = []
+                shard_takes: dict[str, list[CpuSpent]] = {side: [] for side, _ in sides}
+                per_cpu: dict[str, list[float]] = {side: [] for side, _ in sides}
                 for rep in range(args.repeat):
                     tag = f"{kind}{parts}r{rep}"
+                    bared: tuple[float, CpuSpent, CpuSpent] | None = None
                     try:
-                        b, b_take, b_store = run_bare(cluster, parts, msgs, tag, batch)
+                        bared = run_bare(cluster, parts, msgs, tag, batch)
                     except RuntimeError as exc:
-                        print(f"  repeat {rep + 1}: not counted ({exc})", flush=True)
+                        if not args.against:
+                            print(f"  repeat {rep + 1}: not counted ({exc})", flush=True)
+                            continue
+                        # Paired runs compare the shards with each other: they go on without it.
+                        print(f"  repeat {rep + 1}: bare subscribers not counted ({exc})", flush=True)
+                    got: dict[str, tuple[float, CpuSpent, CpuSpent]] = {}
+                    for side, code in (sides if rep % 2 == 0 else sides[::-1]):
+                        try:
+                            got[side] = run_shards(work, cluster, parts, "cluster", msgs, f"{tag}{side}", warm,
+                                                   batch, code=code, spy=args.spy)
+                        except RuntimeError as exc:
+                            print(f"  repeat {rep + 1} ({side}): not counted ({str(exc)[:3000]})", flush=True)
+                    if len(got) != len(sides):
                         continue
-                    try:
-                        r, s_take, s_store = run_shards(work, cluster, parts, "cluster", msgs, tag, warm, batch)
-                    except RuntimeError as exc:
-                        print(f"  repeat {rep + 1}: not counted ({str(exc)[:3000]})", flush=True)
+                    b = math.nan
+                    if bared is not None:
+                        b, b_take, b_store = bared
+                        stores.append(b_store)
+                        bare_takes.append(b_take)
+                        print(cpu_line("stored (bare's backlog)", b_store), flush=True)
+                        print(cpu_line("bare took", b_take), flush=True)
+                    for side, (r, s_take, s_store) in got.items():
+                        rb[side].append(b)
+                        rs[side].append(r)
+                        stores.append(s_store)
+                        shard_takes[side].append(s_take)
+                        per_cpu[side].append(s_take.samples / max(s_take.groups["shard"], 1e-9))
+                        print(f"  repeat {rep + 1} ({side}): shards {r:,.0f} msg/s, bare {b:,.0f} msg/s, "
+                              f"ratio {r / b:.2f}", flush=True)
+                    for side, (_r, s_take, s_store) in got.items():
+                        print(cpu_line(f"stored (shards' backlog, {side})", s_store), flush=True)
+                        print(cpu_line(f"shards took ({side})", s_take), flush=True)
+                    if args.against:
+                        print(f"  repeat {rep + 1}: this / against, samples per shard CPU-second: "
+                              f"{per_cpu['this'][-1] / per_cpu['against'][-1]:.3f}", flush=True)
+                for side, code in sides:
+                    if not rs[side]:
                         continue
-                    rb.append(b)
-                    rs.append(r)
-                    stores += [b_store, s_store]
-                    bare_takes.append(b_take)
-                    shard_takes.append(s_take)
-                    print(f"  repeat {rep + 1}: shards {rs[-1]:,.0f} msg/s, bare {rb[-1]:,.0f} msg/s, "
-                          f"ratio {rs[-1] / rb[-1]:.2f}", flush=True)
-                    for what, x in (("stored (bare's backlog)", b_store), ("bare took", b_take),
-                                    ("stored (shards' backlog)", s_store), ("shards took", s_take)):
-                        print(cpu_line(what, x), flush=True)
-                if not rs:
-                    continue
-                shard_rate, bare_rate = statistics.median(rs), statistics.median(rb)
-                rows.append(f"| {parts} | {kind} | {args.streams} | {len(msgs):,} | {shard_rate:,.0f} msg/s, "
-                            f"{shard_rate * batch:,.0f} samples/s | {bare_rate:,.0f} msg/s | "
-                            f"{shard_rate / bare_rate:.2f} | {', '.join(f'{s / b:.2f}' for s, b in zip(rs, rb))} |")
-                print(rows[-1], flush=True)
-                cpu += (cpu_rows(parts, kind, "the cluster stores the backlog (publisher)", stores)
-                        + cpu_rows(parts, kind, "bare subscribers take it", bare_takes)
-                        + cpu_rows(parts, kind, "shards take it", shard_takes))
+                    counted = [x for x in rb[side] if not math.isnan(x)]
+                    bare_rate = statistics.median(counted) if counted else math.nan
+                    shard_rate = statistics.median(rs[side])
+                    label = kind if not args.against else f"{kind} ({side}: {code})"
+                    rows.append(f"| {parts} | {label} | {args.streams} | {len(msgs):,} | {shard_rate:,.0f} msg/s, "
+                                f"{shard_rate * batch:,.0f} samples/s | {bare_rate:,.0f} msg/s | "
+                                f"{shard_rate / bare_rate:.2f} | "
+                                f"{', '.join(f'{s / b:.2f}' for s, b in zip(rs[side], rb[side]))} |")
+                    print(rows[-1], flush=True)
+                    cpu += cpu_rows(parts, label, "shards take it", shard_takes[side])
+                    if args.against:
+                        xs = per_cpu[side]
+                        paired.append(f"- {parts} shard(s), {kind}, {side} ({code}): samples per shard CPU-second, "
+                                      f"median {statistics.median(xs):,.0f} ({min(xs):,.0f} to {max(xs):,.0f}); "
+                                      f"runs {', '.join(f'{x:,.0f}' for x in xs)}")
+                if args.against and per_cpu["this"] and per_cpu["against"]:
+                    ratios = [t / a for t, a in zip(per_cpu["this"], per_cpu["against"])]
+                    paired.append(f"- {parts} shard(s), {kind}, this / against per repeat: "
+                                  f"{', '.join(f'{x:.3f}' for x in ratios)} (median {statistics.median(ratios):.3f})")
+                cpu = (cpu_rows(parts, kind, "the cluster stores the backlog (publisher)", stores)
+                       + cpu_rows(parts, kind, "bare subscribers take it", bare_takes) + cpu)
     head = ("| shards | payload | streams | messages | shards took | bare subscribers took | ratio (median) | "
             "ratio per repeat |")
-    return [head, "|---|---|---|---|---|---|---|---|", *rows, "",
-            f"Where the CPU went (medians over the repeats; {CORES} cores):", "",
-            CPU_HEAD, CPU_RULE, *cpu]
+    out = [head, "|---|---|---|---|---|---|---|---|", *rows, "",
+           f"Where the CPU went (medians over the repeats; {CORES} cores):", "",
+           CPU_HEAD, CPU_RULE, *cpu]
+    if paired:
+        out += ["", "Paired (--against; each repeat ran both, which went first alternating):", "", *paired]
+    return out
 
 
 def part_state(args: argparse.Namespace, work: Path) -> list[str]:
@@ -642,6 +738,7 @@ def part_state(args: argparse.Namespace, work: Path) -> list[str]:
 
 
 def main() -> int:
+    global POLL
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--repeat", type=int, default=3)
@@ -653,9 +750,23 @@ def main() -> int:
                          "backlog; new: the backlog is each stream's first samples, warm-up included")
     ap.add_argument("--ack-wait", default="5s",
                     help="the NATS servers' mqtt ack_wait (default 5s, as config/nats-partitions.conf)")
+    ap.add_argument("--against", metavar="DIR",
+                    help="also run the shards on the code of DIR (another checkout's daemon/ directory) in "
+                         "each repeat, alternating which goes first, and report both and their ratios")
+    ap.add_argument("--spy", metavar="DIR", type=Path,
+                    help="py-spy record (raw, per thread, not stopping the shard) of each shard while it "
+                         "takes the backlog, into DIR (needs py-spy)")
+    ap.add_argument("--poll", type=float, default=POLL, metavar="SECONDS",
+                    help=f"seconds between polls of the shards' /metrics while they take the backlog (default "
+                         f"{POLL}; bench_daemon.py polls every 0.25)")
     ap.add_argument("--max-ack-pending", type=int, default=4096,
                     help="the NATS servers' mqtt max_ack_pending (default 4096, as config/nats-partitions.conf)")
     args = ap.parse_args()
+    POLL = args.poll
+    if args.against and not Path(args.against, "shiftwatch", "__init__.py").is_file():
+        ap.error(f"--against {args.against}: no shiftwatch package there (give a checkout's daemon/ directory)")
+    if args.spy is not None and py_spy() is None:
+        ap.error("--spy: py-spy is not installed beside this Python nor on PATH")
     parts = args.part or ["throughput", "state"]
     with TemporaryDirectory(prefix="bench-shards-") as tmp:
         work = Path(tmp)

@@ -365,3 +365,129 @@ def test_a_snapshot_whose_entry_was_deleted_meanwhile_is_saved_again(cluster: Cl
     assert cs.refused == []
     reader = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3")
     assert reader.load([name])[name].state == {"n": 15}
+
+
+def _read_back(cs: ClusterState, subject: str) -> list[tuple[bytes, dict[str, str]]]:
+    """Every message on ``subject`` in the journal stream: body and headers, in order."""
+    async def go() -> list[tuple[bytes, dict[str, str]]]:
+        last, _ = await cs.io.last_seq(cs.stream, subject)
+        out = []
+        seq = 1
+        while seq <= last:
+            msg = await cs.io._js.get_msg(cs.stream, seq=seq, subject=subject, next=True)
+            out.append((bytes(msg.data or b""), dict(msg.headers or {})))
+            seq = int(msg.seq) + 1
+        return out
+    return cs.io.run(go())
+
+
+def test_a_batch_publish_answers_each_message_in_its_place_as_a_single_publish_would(
+        cluster: ClusterState) -> None:
+    """``NatsIO.publish_batch`` (a journal round's chunk: one coroutine, one future for
+    all the acknowledgements, since 2026-12-05) against nats-py's own JetStream
+    ``publish`` (the reference, a request a message): in one batch, a message stored, a
+    wrong expected last sequence (JetStream error 10071, from memory), a subject no
+    stream takes (NATS's "no responders") and a message over a stream's
+    ``max_msg_size`` each get, in their own place, what ``publish`` gives the same
+    message, and the stored ones are stored byte for byte with the same headers."""
+    io = cluster.io
+
+    async def tiny() -> None:
+        from nats.js.api import StreamConfig
+        await io._js.add_stream(StreamConfig(name="tinyb", subjects=["tinyb.>"], max_msg_size=8))
+
+    io.run(tiny())
+    a, b = cluster.subject("plant/ba/v"), cluster.subject("plant/bb/v")
+    headers = {"Shiftwatch-Writer": "w1", "Shiftwatch-Written": "1790000000.000"}
+    items: list[tuple[str, bytes, int | None]] = [
+        (a, b"first", 0), (b, b"stale", 7), ("nowhere.at.all", b"x", None),
+        ("tinyb.a", b"y" * 64, None), (a, b"second", None)]
+    got = io.run(io.publish_batch(items, headers))
+    assert len(got) == len(items)
+    assert isinstance(got[0], int) and isinstance(got[4], int) and got[4] == got[0] + 1
+    assert isinstance(got[1], SequenceConflict) and b in str(got[1])
+    assert isinstance(got[2], ClusterError) and not isinstance(got[2], SequenceConflict)
+    assert "nowhere.at.all" in str(got[2]) and "no stream takes" in str(got[2])
+    assert isinstance(got[3], ClusterError) and "refused" in str(got[3]) and "tinyb.a" in str(got[3])
+
+    # The reference: the same messages through nats-py's publish, one request each.
+    a2, b2 = cluster.subject("plant/ra/v"), cluster.subject("plant/rb/v")
+    ref: list[object] = []
+    for subject, payload, last in [(a2, b"first", 0), (b2, b"stale", 7), ("nowhere.at.all", b"x", None),
+                                   ("tinyb.a", b"y" * 64, None), (a2, b"second", None)]:
+        try:
+            ref.append(io.run(io.publish(subject, payload, expect_last=last, headers=headers)))
+        except ClusterError as exc:
+            ref.append(exc)
+    assert [type(x) for x in ref] == [type(x) for x in got]
+    # Stored alike: bodies and headers (the expected-sequence header included, kept as
+    # sent) byte for byte.
+    assert _read_back(cluster, a) == _read_back(cluster, a2)
+    assert [body for body, _ in _read_back(cluster, a)] == [b"first", b"second"]
+    assert io.run(io.publish_batch([], headers)) == []
+
+
+def test_a_round_refused_in_the_middle_of_its_chunks_takes_every_other_stream_s_sequence(
+        cluster: ClusterState) -> None:
+    """Streams another daemon wrote meanwhile, in the middle of the round's chunks (one in
+    the first chunk, one in the second): exactly those are refused, every other stream's
+    message is stored once and its sequence taken, as the per-message publish did."""
+    cs = cluster
+    n = 2 * JournalRound.CHUNK + 3
+    names = [f"plant/{i}/v" for i in range(n)]
+    assert cs.journal([_group(i) for i in range(n)]) == []
+    other = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w2")
+    moved = [17, JournalRound.CHUNK + 5]
+    other.load([names[i] for i in moved])
+    assert other.journal([_group(i, t0=10.0) for i in moved]) == []
+    before = dict(cs.seq)
+    rnd = cs.journal_round()
+    for i in range(n):
+        rnd.add(_group(i, t0=10.0))
+    refused = rnd.wait()
+    assert [g.stream for g in refused] == [names[i] for i in moved]
+    for i, name in enumerate(names):
+        if i in moved:
+            assert cs.seq[name] == before[name]  # untouched: the daemon reloads those
+        else:
+            assert cs.seq[name] > before[name]
+            assert [g.times[0] for g in cs.load([name])[name].groups] == [0.0, 10.0]
+    assert cs.refused_by[names[17]][0] is None  # no shard header: not a shard's write
+    assert _stored(cs) == 2 * n
+
+
+def test_a_round_whose_cluster_stops_half_way_is_taken_once_when_written_again(
+        served: tuple[ClusterState, subprocess.Popen[bytes]]) -> None:
+    """The cluster stops (SIGSTOP) after the round's first chunk was stored and before the
+    rest is: ``wait()`` ends in ClusterError by its bound and takes no sequence, not even
+    the first chunk's (the round is held whole: its messages stay unacknowledged with
+    the broker).  Written again once the cluster runs, every group of the round is in the
+    journal exactly once, the first chunk's found as this daemon's own."""
+    cs, server = served
+    n = 2 * JournalRound.CHUNK + 7
+    names = [f"plant/{i}/v" for i in range(n)]
+    assert cs.journal([_group(i) for i in range(n)]) == []
+    before = dict(cs.seq)
+    cs.io.timeout = 1.0
+    rnd = cs.journal_round()
+    try:
+        for i in range(JournalRound.CHUNK):
+            rnd.add(_group(i, t0=10.0))  # the first chunk leaves here
+        assert wait_until(lambda: _stored(cs) >= n + JournalRound.CHUNK, 10)
+        freeze(server)
+        for i in range(JournalRound.CHUNK, n):
+            rnd.add(_group(i, t0=10.0))
+        with pytest.raises(ClusterError, match="no answer within"):
+            rnd.wait()
+        assert cs.seq == before
+    finally:
+        server.send_signal(signal.SIGCONT)
+    cs.io.timeout = 5.0
+    assert cs.journal([_group(i, t0=10.0) for i in range(n)]) == []
+    assert _stored(cs) == 2 * n
+    reader = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3")
+    loaded = reader.load(names)
+    for i, name in enumerate(names):
+        assert [g.times.tolist() for g in loaded[name].groups] == [_group(i).times.tolist(),
+                                                                   _group(i, t0=10.0).times.tolist()]
+        assert cs.seq[name] == reader.seq[name]
