@@ -110,3 +110,27 @@ def test_ordinary_readings_are_set_aside_no_more_often_than_a_normal_tail() -> N
     expected = 2.0 * stats.norm.sf(HOURLY.spike_sigma) * total
     print(f"set aside {lost} of {total} (normal tail {expected:.2f}), |z| {sorted(far)[:20]}")
     assert lost <= stats.poisson.ppf(0.999, expected) + 3
+
+
+def test_an_open_event_keeps_the_samples_its_after_level_rests_on_in_its_snapshot() -> None:
+    # The open event's band allows for the error of the level fitted after the detection
+    # (n_after samples); a snapshot carries the count, an older snapshot without it loads
+    # with the widest band (1), and a bad count is named.
+    rng = np.random.default_rng(16)
+    x = 10.0 + rng.standard_normal(700)
+    x[600:] += 3.0
+    eng = StreamEngine("brackenfield/kiln2/draft", HOURLY)
+    t = T0 + np.arange(700.0)
+    for i in range(700):
+        eng.process(t[i:i + 1], x[i:i + 1])
+        if eng.state == "event_open":
+            break
+    state = eng.get_state()
+    assert state["event"]["n_after"] >= 1
+    old = {**state, "event": {k: v for k, v in state["event"].items() if k != "n_after"}}
+    again = StreamEngine("brackenfield/kiln2/draft", HOURLY)
+    again.set_state(old)
+    assert again.get_state()["event"]["n_after"] == 1
+    bad = {**state, "event": {**state["event"], "n_after": 0}}
+    with pytest.raises(ValueError, match="n_after"):
+        StreamEngine("brackenfield/kiln2/draft", HOURLY).set_state(bad)
