@@ -1536,9 +1536,12 @@ class StreamEngine:
             scale, band = 1.0, spike
             if judged:
                 scale = spread * sqrt(1.0 + yvm)
-                band = spike if known is not None or not no_base else young_spike_limit(spike, True, ydf)
                 dev = (xv - ymean) / scale
-                out = 1 if dev > band else (-1 if dev < -band else 0)
+                # (the band is never narrower than spike: worked out only where it matters)
+                if dev > spike or dev < -spike or self._pending is not None:
+                    if known is None and no_base:
+                        band = young_spike_limit(spike, True, ydf)
+                    out = 1 if dev > band else (-1 if dev < -band else 0)
             if self._pending is not None:
                 # A spike held from the sample before: the reference's own steps.
                 _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
