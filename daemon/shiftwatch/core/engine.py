@@ -66,6 +66,7 @@ from shiftwatch.core.screen import screen_samples
 from shiftwatch.core.selfstart import (
     SelfStart,
     SplitEvidence,
+    normal_to_t,
     split_critical_t,
     split_evidence,
     split_screen,
@@ -577,6 +578,11 @@ FOLLOW_PHI_MAX = 0.7
 #: on a drift of 0.0004 sigma a sample, 1.6 sigma at most, against spike_sigma 5).  Each
 #: point ends a vectorised stretch: 1,024 halved a stream's throughput on history.
 FOLLOW_RECENTER = 4096
+#: A sample beyond the spike band is the first sample of a step, not a lone spike, when
+#: the next one deviates the same way beyond the band or beyond this share of the
+#: outlier's own deviation (the midpoint between the level and the outlier).  Requiring
+#: the next one beyond the band too set aside the first sample of 13% of 4-sigma steps.
+SPIKE_CONFIRM_SHARE = 0.5
 FOLLOW_MARGIN = 2.0
 #: A stream whose noise is heavy-tailed is clipped at 2 sigma (baseline.choose_clip), and
 #: clipped increments reach the test's threshold less often than the Gaussian ones it is
@@ -1226,15 +1232,17 @@ class StreamEngine:
         cand = np.flatnonzero(np.abs(d) > (k * sigma) * (1.0 - 1e-9))
         dev = (d[cand] / sigma).tolist()
         sign: dict[int, float] = {}
+        devs: dict[int, float] = {}
         for i, v in zip(cand.tolist(), dev):
             if abs(v) > k:
                 sign[i] = 1.0 if v > 0 else -1.0
+                devs[i] = v
         prev = self._prev_out
         lone: list[int] = []
         late: list[int] = []  # outliers settled by the sample after them
         for i, sg in sign.items():
             same_prev = sign.get(i - 1) == sg if i > 0 else (prev != 0 and sg == prev)
-            if not same_prev and sign.get(i + 1) != sg:
+            if not same_prev and not (i + 1 < n and spike_confirmed(float(d[i + 1]) / sigma, devs[i], k)):
                 lone.append(i)
             if (sign.get(i - 1, 0.0) if i > 0 else float(prev)) != sg:
                 late.append(i)
@@ -1325,17 +1333,25 @@ class StreamEngine:
                 return i
             spread = ys.spread() if b is None else b.sigma
             out = 0
-            if spread > 0 and ys.n >= SelfStart.MIN_UNKNOWN:
-                dev = (xv - ys.mean) / spread
-                out = 1 if dev > s.spike_sigma else (-1 if dev < -s.spike_sigma else 0)
+            judged = spread > 0 and ys.n >= SelfStart.MIN_UNKNOWN
+            dev = 0.0
+            # The band allows for the young level's own error (its variance, vm) and, while
+            # the spread is estimated, for that too: the predictive t beyond the t value
+            # with spike_sigma's normal tail (young_spike_limit).
+            scale, band = 1.0, s.spike_sigma
+            if judged:
+                scale = spread * math.sqrt(1.0 + ys.vm)
+                band = young_spike_limit(s.spike_sigma, b is None and ys.sigma is None, ys.df)
+                dev = (xv - ys.mean) / scale
+                out = 1 if dev > band else (-1 if dev < -band else 0)
             if self._pending is not None:
                 pt, px = self._pending
                 self._pending = None
                 p_out = 1 if px > ys.mean else -1
-                if out == p_out:
-                    # Two outliers on one side: the start of a large step.  The held
-                    # one is kept, settled by this one.
-                    self._prev_out = out
+                if judged and spike_confirmed(dev, (px - ys.mean) / scale, band):
+                    # The next sample deviates the same way (spike_confirmed): the start
+                    # of a step.  The held one is kept, settled by this one.
+                    self._prev_out = p_out
                     kept += 1
                     if self._feed_young(pt, px, clip):
                         self._young_event(pt, result, tv)
@@ -1521,9 +1537,17 @@ class StreamEngine:
             else:
                 spread = b_sigma
             out = 0
-            if spread > 0 and n >= min_unknown:
-                dev = (xv - ymean) / spread
-                out = 1 if dev > spike else (-1 if dev < -spike else 0)
+            judged = spread > 0 and n >= min_unknown
+            dev = 0.0
+            scale, band = 1.0, spike
+            if judged:
+                scale = spread * sqrt(1.0 + yvm)
+                dev = (xv - ymean) / scale
+                # (the band is never narrower than spike: worked out only where it matters)
+                if dev > spike or dev < -spike or self._pending is not None:
+                    if known is None and no_base:
+                        band = young_spike_limit(spike, True, ydf)
+                    out = 1 if dev > band else (-1 if dev < -band else 0)
             if self._pending is not None:
                 # A spike held from the sample before: the reference's own steps.
                 _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
@@ -1533,10 +1557,10 @@ class StreamEngine:
                 pt, px = self._pending
                 self._pending = None
                 p_out = 1 if px > ymean else -1
-                if out == p_out:
+                if judged and spike_confirmed(dev, (px - ymean) / scale, band):
                     if deferred:
                         self._flush_splits(deferred)
-                    self._prev_out = out
+                    self._prev_out = p_out
                     kept += 1
                     if self._feed_young(pt, px, clip):
                         self._young_event(pt, result, tv)
@@ -2223,6 +2247,7 @@ class StreamEngine:
                           if b.level_n >= 2 * self.settings.window_samples else fit.level_before),
             level_after=fit.level_after,
             trial=self._new_trial(sign),
+            n_after=max(1, fit.n_after),
         )
         self._event = ev
         self._state = EVENT_OPEN
@@ -2285,7 +2310,8 @@ class StreamEngine:
         ev = self._event
         b = self._baseline
         assert ev is not None and b is not None and self._fitter is not None
-        kt, kx, spikes, used, osign, _ = self._split_spikes(t, x, idx, ev.level_after, b.sigma,
+        center, scale = self._event_band(ev, b)
+        kt, kx, spikes, used, osign, _ = self._split_spikes(t, x, idx, center, scale,
                                                          max(ev.trial.limit - ev.trial.m, 1))
         if kt.shape[0] == 0:
             result.rejected.extend(spikes)
@@ -2313,6 +2339,24 @@ class StreamEngine:
         self._window.extend(kx[: i + 1], kt[: i + 1])
         self._decide(outcome, result, t_dec)
         return int(np.searchsorted(t, t_dec, side="right"))
+
+    def _event_band(self, ev: OpenEvent, b: Baseline) -> tuple[float, float]:
+        """The spike band while an event is open, as a centre and a scale (the band is
+        ``spike_sigma`` scales either side): the union of the bands around the level
+        before the step and around the level after it.  A sample near either level is
+        never a spike; the level after rests on the few samples fitted at the detection
+        (``n_after``), so its band allows for its error; and a provisional baseline's
+        sigma (first warm-up) rests on few samples too, so the band is as wide as the
+        t value with spike_sigma's normal tail (:func:`young_spike_limit`).  Centred on
+        the level after alone, with such a sigma, the band set ordinary readings aside
+        for the whole event (the outside measurement of 2026-12-05)."""
+        k = self.settings.spike_sigma
+        wide = young_spike_limit(k, True, b.n - 1) / k if self._provisional else 1.0
+        wb = k * wide * b.sigma * math.sqrt(1.0 + 1.0 / max(b.n, 1))
+        wa = k * wide * b.sigma * math.sqrt(1.0 + 1.0 / ev.n_after)
+        hi = max(ev.level_before + wb, ev.level_after + wa)
+        lo = min(ev.level_before - wb, ev.level_after - wa)
+        return 0.5 * (hi + lo), (hi - lo) / (2.0 * k)
 
     def _decide(self, outcome: str, result: BatchResult, as_of: float) -> None:
         """End the open event as its trial decided (see :mod:`.events`)."""
@@ -2768,11 +2812,37 @@ def _grid(x: float, *, up: bool = True, step: float = 0.05) -> float:
     return math.exp(q * step)
 
 
+def young_spike_limit(spike_sigma: float, estimated: bool, df: float) -> float:
+    """The spike band of a young level, in units of its predictive spread: ``spike_sigma``
+    when sigma is known, else the Student-t value on the spread's ``df`` degrees of
+    freedom with the same normal tail (:func:`.selfstart.normal_to_t`).  A spread from a
+    few samples is often small by chance; 5 of it set ordinary readings aside.
+
+    >>> young_spike_limit(5.0, False, 4), round(young_spike_limit(5.0, True, 23), 2)
+    (5.0, 6.84)
+    """
+    return normal_to_t(spike_sigma, float(df)) if estimated and df > 0 else spike_sigma
+
+
+def spike_confirmed(dev_next: float, dev_out: float, limit: float) -> bool:
+    """Whether the sample after an outlier (deviation ``dev_out`` beyond ``limit``, in
+    the band's units) deviates the same way: beyond ``limit``, or beyond
+    SPIKE_CONFIRM_SHARE of the outlier's own deviation.  Then the outlier is the
+    first sample of a step, not a lone spike (:func:`lone_outliers`, rule for rule).
+
+    >>> spike_confirmed(-3.3, -5.3, 5.0), spike_confirmed(0.4, -5.3, 5.0), spike_confirmed(6.0, 30.0, 5.0)
+    (True, False, True)
+    """
+    return (dev_next if dev_out > 0 else -dev_next) > min(limit, SPIKE_CONFIRM_SHARE * abs(dev_out))
+
+
 def lone_outliers(dev: FloatArray, limit: float, prev_sign: int = 0) -> tuple[NDArray[np.bool_], bool]:
     """Flag lone outliers among standardised deviations.
 
-    A deviation beyond ``limit`` is a lone outlier unless a neighbour deviates
-    beyond it in the same direction (the start of a large step).  Returns the
+    A deviation beyond ``limit`` is a lone outlier unless the sample before it
+    deviates beyond ``limit`` in the same direction, or the sample after it deviates
+    the same way beyond ``limit`` or beyond half of the outlier's own deviation
+    (:func:`spike_confirmed`: the start of a step).  Returns the
     mask and whether the last sample is an outlier whose next neighbour is not
     yet known (the caller may hold it).  ``prev_sign`` is the direction in
     which the sample before the first one was an outlier (0 if it was not).
@@ -2782,6 +2852,8 @@ def lone_outliers(dev: FloatArray, limit: float, prev_sign: int = 0) -> tuple[ND
     >>> m, last = lone_outliers(np.array([0.1, 9.0, 0.2, 7.0, 8.0, -0.3, 6.0]), 5.0)
     >>> m.tolist(), last
     ([False, True, False, False, False, False, True], True)
+    >>> lone_outliers(np.array([0.1, -5.3, -3.3, -4.1]), 5.0)[0].tolist()  # a step's first sample
+    [False, False, False, False]
     """
     out = np.abs(dev) > limit
     if not out.any():
@@ -2792,7 +2864,9 @@ def lone_outliers(dev: FloatArray, limit: float, prev_sign: int = 0) -> tuple[ND
     if prev_sign:
         same_prev[0] = bool(out[0]) and sign[0] == prev_sign
     same_next = np.zeros_like(out)
-    same_next[:-1] = same_prev[1:]
+    # The next sample confirms an outlier when it deviates the same way beyond the
+    # band, or beyond half the outlier's own deviation (SPIKE_CONFIRM_SHARE).
+    same_next[:-1] = out[:-1] & (dev[1:] * sign[:-1] > np.minimum(limit, SPIKE_CONFIRM_SHARE * np.abs(dev[:-1])))
     lone = out & ~same_prev & ~same_next
     return lone, bool(lone[-1])
 

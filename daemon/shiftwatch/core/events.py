@@ -204,13 +204,13 @@ class OpenEvent:
     """
 
     __slots__ = (
-        "detected_at", "id", "level_after", "level_before", "statistic", "test", "threshold",
+        "detected_at", "id", "level_after", "level_before", "n_after", "statistic", "test", "threshold",
         "trial", "trip_len",
     )
 
     def __init__(self, *, id: str, detected_at: float, test: str, statistic: float,
                  threshold: float, trip_len: int, level_before: float, level_after: float,
-                 trial: EventTrial) -> None:
+                 trial: EventTrial, n_after: int = 1) -> None:
         self.id = id
         self.detected_at = detected_at
         self.test = test
@@ -220,14 +220,15 @@ class OpenEvent:
         # The level before the step as fitted at the detection (on every sample of the
         # window before it, more than a young baseline has): the trial's reference.
         self.level_before = level_before
-        self.level_after = level_after  # the new level as first fitted: the centre for the spike check
+        self.level_after = level_after  # the new level as first fitted: one centre of the spike check
+        self.n_after = n_after  # the samples it was fitted on (the spike band allows for its error)
         self.trial = trial
 
     def get_state(self) -> dict[str, Any]:
         return {"id": self.id, "detected_at": self.detected_at, "test": self.test,
                 "statistic": self.statistic, "threshold": self.threshold,
                 "trip_len": self.trip_len, "level_before": self.level_before,
-                "level_after": self.level_after,
+                "level_after": self.level_after, "n_after": self.n_after,
                 "trial": self.trial.get_state()}
 
     @classmethod
@@ -241,7 +242,11 @@ class OpenEvent:
                   trip_len=int(e["trip_len"]),
                   level_before=_finite(e, "level_before") if "level_before" in e else level,
                   level_after=_finite(e, "level_after"),
-                  trial=new_trial() if trial is None else EventTrial.from_state(trial))
+                  trial=new_trial() if trial is None else EventTrial.from_state(trial),
+                  # (snapshots before it have none: 1, the widest band)
+                  n_after=int(e.get("n_after", 1)))
+        if out.n_after < 1:
+            raise ValueError(f"event.n_after: must be at least 1, got {out.n_after}")
         if out.trip_len < 1:
             raise ValueError(f"event.trip_len: must be at least 1, got {out.trip_len}")
         return out

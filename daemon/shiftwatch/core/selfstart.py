@@ -71,6 +71,28 @@ def t_to_normal(t: float, df: float) -> float:
     return z if t >= 0 else -z
 
 
+@functools.lru_cache(maxsize=4096)
+def normal_to_t(z: float, df: float) -> float:
+    """The Student-t value on ``df`` degrees of freedom with the tail probability of the
+    standard normal ``z``: :func:`t_to_normal` inverted (Wallace 1959, the same
+    approximation), so ``t_to_normal(normal_to_t(z, df), df) == z`` up to rounding.
+
+    The spike band of a level whose spread is estimated: a sample lies beyond ``z``
+    sigmas on the normal scale when its predictive t lies beyond this.
+
+    Examples
+    --------
+    >>> round(normal_to_t(1.96, 10), 2)   # the two-sided 5% point of t(10) is 2.228
+    2.23
+    >>> normal_to_t(5.0, math.inf)
+    5.0
+    """
+    if math.isinf(df):
+        return z
+    w = z * (8.0 * df + 3.0) / (8.0 * df + 1.0)
+    return math.copysign(math.sqrt(df * math.expm1(min(w * w / df, 700.0))), z)
+
+
 class SelfStart:
     """Running level (and, unless known, spread) of one level regime.
 
