@@ -617,6 +617,112 @@ class _FirstLine:
         return self.found
 
 
+class _Pipe:
+    """The messages of one process to another (a pipe; ``put`` and ``get`` as a bounded
+    ``multiprocessing.Queue`` has them), written by the sender's own thread.
+
+    A queue's writes are made by a thread of its own, which waits for the interpreter's lock
+    (up to the 5 ms switch interval, while the sender parses or feeds) before a message
+    leaves; the receiver meanwhile waited for the chunk.  Here a message that fits into the
+    room the pipe has left is written at once (it cannot block), and one that does not (a
+    share pickled whole: a Parquet row group, short lines) goes to a thread, as in a queue,
+    so two processes writing large messages to each other never wait for each other's read;
+    the messages after it follow it through the thread, in order.  At most ``maxsize``
+    messages are put and not yet taken (a semaphore, as a queue's)."""
+
+    def __init__(self, ctx: Any, maxsize: int) -> None:
+        self.r, self.w = os.pipe()
+        self.sem = ctx.BoundedSemaphore(maxsize)
+        self.size: int | None = None  # the pipe's capacity, asked for by the sender
+        self.lock: Any = None  # the sender's, made after the fork
+        self.queued: deque[bytes] = deque()  # written by the thread, in order
+        self.thread: Any = None
+
+    def put(self, obj: Any) -> None:
+        import pickle
+        import threading
+
+        self.sem.acquire()
+        data = pickle.dumps(obj, protocol=pickle.HIGHEST_PROTOCOL)
+        frame = len(data).to_bytes(8, "little") + data
+        if self.lock is None:
+            self.lock = threading.Condition(threading.Lock())
+        with self.lock:
+            if not self.queued and len(frame) <= self._room():
+                _write_all(self.w, frame)
+                return
+            self.queued.append(frame)
+            if self.thread is None:
+                self.thread = threading.Thread(target=self._write_queued, daemon=True)
+                self.thread.start()
+            self.lock.notify()
+
+    def _room(self) -> int:
+        import fcntl
+        import termios
+
+        try:
+            if self.size is None:
+                self.size = fcntl.fcntl(self.w, 1032)  # F_GETPIPE_SZ (Linux)
+            waiting = bytearray(4)
+            fcntl.ioctl(self.w, termios.FIONREAD, waiting)  # bytes written and not yet read
+        except OSError:
+            self.size = 0  # every message through the thread
+            return 0
+        return self.size - int.from_bytes(waiting, "little")
+
+    def _write_queued(self) -> None:
+        while True:
+            with self.lock:
+                while not self.queued:
+                    self.lock.wait()
+                frame = self.queued[0]  # left in place while written: later messages wait for it
+            _write_all(self.w, frame)
+            with self.lock:
+                self.queued.popleft()
+                self.lock.notify_all()
+
+    def flush(self) -> None:
+        """Wait until the thread has written every message (before the process ends: a
+        daemon thread would be stopped in the middle of one)."""
+        if self.lock is None:
+            return
+        with self.lock:
+            while self.queued:
+                self.lock.wait()
+
+    def ready(self) -> bool:
+        """Whether a message has begun to arrive (``get`` then waits at most for its rest)."""
+        import select
+
+        return bool(select.select([self.r], [], [], 0)[0])
+
+    def get(self) -> Any:
+        import pickle
+
+        size = int.from_bytes(_read_all(self.r, 8), "little")
+        obj = pickle.loads(_read_all(self.r, size))
+        self.sem.release()
+        return obj
+
+
+def _write_all(fd: int, data: bytes) -> None:
+    view = memoryview(data)
+    while view:
+        view = view[os.write(fd, view):]
+
+
+def _read_all(fd: int, size: int) -> bytearray:
+    buf = bytearray(size)
+    view = memoryview(buf)
+    while view:
+        got = os.readv(fd, [view])
+        if got == 0:
+            raise EOFError("a replay process's pipe closed")
+        view = view[got:]
+    return buf
+
+
 def _end_with_parent(parent: int) -> None:
     """Have the kernel kill this process when its parent ends, however it ends (prctl(2),
     PR_SET_PDEATHSIG): a worker left behind blocks on its pipes for ever, holding the
@@ -650,7 +756,6 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
     While the chunk to feed next is another's and has not come yet, it parses up to
     :data:`LOOKAHEAD` of its own ahead, so the processes parse at the same time.
     """
-    import queue
     import traceback
 
     try:
@@ -706,20 +811,21 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
                         places += first
                 feeder.add(parts)
             else:
-                try:
-                    got = pairs[owner, me].get_nowait()
-                except queue.Empty:
-                    if total is None and len(own) < LOOKAHEAD:
-                        parse_next()
-                        continue
-                    got = pairs[owner, me].get()
+                if not pairs[owner, me].ready() and total is None and len(own) < LOOKAHEAD:
+                    parse_next()
+                    continue
+                got = pairs[owner, me].get()
                 if isinstance(got, str):  # _END: the owner had no chunk k, there are k chunks
                     break
                 info, msg = got
                 first = lines.first(info)
                 feeder.add(slots[owner, me].take(msg, first if info[2] else 0))
             k += 1
-        results.put(("ok", me, feeder.finish(), feeder.read_summary()))
+        outcome = feeder.finish()
+        for j in range(jobs):
+            if j != me:
+                pairs[me, j].flush()
+        results.put(("ok", me, outcome, feeder.read_summary()))
         opened.close()
     except CsvFormatError as exc:
         results.put(("format", me, str(exc), None))
@@ -802,7 +908,7 @@ def _replay_in_processes(sources: list[Source], settings_for: Any, unit_for: Any
 
     ctx = multiprocessing.get_context("fork")  # the workers inherit the settings and the opened files
     plans = [ctx.Queue(maxsize=4) for _ in range(jobs)]
-    pairs = {(a, b): ctx.Queue(maxsize=LOOKAHEAD) for a in range(jobs) for b in range(jobs) if a != b}
+    pairs = {(a, b): _Pipe(ctx, LOOKAHEAD) for a in range(jobs) for b in range(jobs) if a != b}
     slots = {pair: _Slots(int(SLOT_SCALE * 2 * chunk_bytes / jobs)) for pair in pairs}
     results = ctx.Queue()
     done = ctx.Value("q", 0)
