@@ -51,6 +51,7 @@ from shiftwatch.sources import (
     OpenFiles,
     RepeatedHour,
     Source,
+    lines_between,
     open_sources,
     parquet_pieces,
     parse_task,
@@ -592,13 +593,144 @@ class _Slots:
         np.concatenate([q[3] for q in parts], out=p)
         return ("slot", slot, tuple(q[0] for q in parts), tuple(q[1].shape[0] for q in parts))
 
-    def take(self, msg: tuple[Any, ...]) -> list[tuple[str, FloatArray, FloatArray, IntArray]]:
-        """The parts a message hands over, each in arrays of its own."""
+    def take(self, msg: tuple[Any, ...], line0: int = 0) -> list[tuple[str, FloatArray, FloatArray, IntArray]]:
+        """The parts a message hands over, each in arrays of its own (``line0``: see
+        :func:`_unpack`)."""
         if msg[0] != "slot":
-            return _unpack(msg)
+            return _unpack(msg, line0)
         _, slot, names, counts = msg
         t, v, p = self.view(slot, sum(counts))
-        return _unpack((names, counts, t, v, p))
+        return _unpack((names, counts, t, v, p), line0)
+
+
+class _FirstLine:
+    """The first line of a CSV chunk, for a chunk read row by row (:meth:`_LineCount.finder`):
+    the task's when known, else counted from the last chunk of its file fed whose first line
+    is known (kept in ``found``)."""
+
+    def __init__(self, count: _LineCount, task: tuple[Any, ...]) -> None:
+        self.count = count
+        self.task = task
+        self.found: int | None = None
+
+    def __call__(self) -> int:
+        _, fidx, line0, _, _, offset, _ = self.task
+        if line0 is not None:
+            return int(line0)
+        if self.found is None:
+            src = self.count.sources[fidx]
+            at, line = self.count.known.get(fidx, (src.body_start, src.body_line))
+            self.found = line + lines_between(src.path, at, offset, self.count.opened)
+        return self.found
+
+
+class _Pipe:
+    """The messages of one process to another (a pipe; ``put`` and ``get`` as a bounded
+    ``multiprocessing.Queue`` has them), written by the sender's own thread.
+
+    A queue's writes are made by a thread of its own, which waits for the interpreter's lock
+    (up to the 5 ms switch interval, while the sender parses or feeds) before a message
+    leaves; the receiver meanwhile waited for the chunk.  Here a message that fits into the
+    room the pipe has left is written at once (it cannot block), and one that does not (a
+    share pickled whole: a Parquet row group, short lines) goes to a thread, as in a queue,
+    so two processes writing large messages to each other never wait for each other's read;
+    the messages after it follow it through the thread, in order.  At most ``maxsize``
+    messages are put and not yet taken (a semaphore, as a queue's)."""
+
+    def __init__(self, ctx: Any, maxsize: int) -> None:
+        self.r, self.w = os.pipe()
+        self.sem = ctx.BoundedSemaphore(maxsize)
+        self.size: int | None = None  # the pipe's capacity, asked for by the sender
+        self.lock: Any = None  # the sender's, made after the fork
+        self.queued: deque[bytes] = deque()  # written by the thread, in order
+        self.thread: Any = None
+
+    def put(self, obj: Any) -> None:
+        import pickle
+        import threading
+
+        self.sem.acquire()
+        data = pickle.dumps(obj, protocol=pickle.HIGHEST_PROTOCOL)
+        frame = len(data).to_bytes(8, "little") + data
+        if self.lock is None:
+            self.lock = threading.Condition(threading.Lock())
+        with self.lock:
+            if not self.queued and len(frame) <= self._room():
+                _write_all(self.w, frame)
+                return
+            self.queued.append(frame)
+            if self.thread is None:
+                self.thread = threading.Thread(target=self._write_queued, daemon=True)
+                self.thread.start()
+            self.lock.notify()
+
+    def _room(self) -> int:
+        import fcntl
+        import termios
+
+        try:
+            if self.size is None:
+                self.size = fcntl.fcntl(self.w, 1032)  # F_GETPIPE_SZ (Linux)
+            waiting = bytearray(4)
+            fcntl.ioctl(self.w, termios.FIONREAD, waiting)  # bytes written and not yet read
+        except OSError:
+            self.size = 0  # every message through the thread
+            return 0
+        return self.size - int.from_bytes(waiting, "little")
+
+    def _write_queued(self) -> None:
+        while True:
+            with self.lock:
+                while not self.queued:
+                    self.lock.wait()
+                frame = self.queued[0]  # left in place while written: later messages wait for it
+            _write_all(self.w, frame)
+            with self.lock:
+                self.queued.popleft()
+                self.lock.notify_all()
+
+    def flush(self) -> None:
+        """Wait until the thread has written every message (before the process ends: a
+        daemon thread would be stopped in the middle of one)."""
+        if self.lock is None:
+            return
+        with self.lock:
+            while self.queued:
+                self.lock.wait()
+
+    def ready(self) -> bool:
+        """Whether a message has begun to arrive (``get`` then waits at most for its rest)."""
+        import fcntl
+        import termios
+
+        waiting = bytearray(4)
+        fcntl.ioctl(self.r, termios.FIONREAD, waiting)  # not select(): descriptors past 1,023
+        return int.from_bytes(waiting, "little") > 0
+
+    def get(self) -> Any:
+        import pickle
+
+        size = int.from_bytes(_read_all(self.r, 8), "little")
+        obj = pickle.loads(_read_all(self.r, size))
+        self.sem.release()
+        return obj
+
+
+def _write_all(fd: int, data: bytes) -> None:
+    view = memoryview(data)
+    while view:
+        view = view[os.write(fd, view):]
+
+
+def _read_all(fd: int, size: int) -> bytearray:
+    buf = bytearray(size)
+    view = memoryview(buf)
+    while view:
+        got = os.readv(fd, [view])
+        if got == 0:
+            raise EOFError("a replay process's pipe closed")
+        view = view[got:]
+    return buf
 
 
 def _end_with_parent(parent: int) -> None:
@@ -634,17 +766,17 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
     While the chunk to feed next is another's and has not come yet, it parses up to
     :data:`LOOKAHEAD` of its own ahead, so the processes parse at the same time.
     """
-    import queue
     import traceback
 
     try:
         _end_with_parent(parent)
         feeder = _Feeder(sources, settings_for, unit_for, trace_options, tz)
         opened = OpenFiles()
-        own: deque[tuple[int, list[Any]]] = deque()
+        own: deque[tuple[int, list[Any], tuple[Any, ...]]] = deque()
         owners: dict[str, int] = {}
         next_own = me
         total: int | None = None
+        lines = _LineCount(sources, opened)
 
         def parse_next() -> None:
             nonlocal next_own, total
@@ -655,7 +787,9 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
                     if j != me:
                         pairs[me, j].put(_END)
                 return
-            block = parse_task(task, sources, tz, opened)
+            finder = lines.finder(task)
+            block = parse_task(task, sources, tz, opened, finder)
+            info = lines.info(task, block, finder)
             feeder.take_block(block)
             split: list[list[Any]] = [[] for _ in range(jobs)]
             for part in block.parts:
@@ -665,8 +799,8 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
                 split[to].append(part)
             for j in range(jobs):
                 if j != me:
-                    pairs[me, j].put(slots[me, j].put(split[j]))
-            own.append((block.index, split[me]))
+                    pairs[me, j].put((info, slots[me, j].put(split[j])))
+            own.append((block.index, split[me], info))
             next_own += jobs
             with done.get_lock():
                 done.value += block.nbytes
@@ -679,21 +813,29 @@ def _worker(me: int, jobs: int, sources: list[Source], settings_for: Any, unit_f
                     parse_next()
                 if not own:
                     break
-                _, parts = own.popleft()
+                _, parts, info = own.popleft()
+                first = lines.first(info)
+                if info[2]:  # places counted from the chunk's first line
+                    for part in parts:
+                        places = part[3]
+                        places += first
                 feeder.add(parts)
             else:
-                try:
-                    got = pairs[owner, me].get_nowait()
-                except queue.Empty:
-                    if total is None and len(own) < LOOKAHEAD:
-                        parse_next()
-                        continue
-                    got = pairs[owner, me].get()
+                if not pairs[owner, me].ready() and total is None and len(own) < LOOKAHEAD:
+                    parse_next()
+                    continue
+                got = pairs[owner, me].get()
                 if isinstance(got, str):  # _END: the owner had no chunk k, there are k chunks
                     break
-                feeder.add(slots[owner, me].take(got))
+                info, msg = got
+                first = lines.first(info)
+                feeder.add(slots[owner, me].take(msg, first if info[2] else 0))
             k += 1
-        results.put(("ok", me, feeder.finish(), feeder.read_summary()))
+        outcome = feeder.finish()
+        for j in range(jobs):
+            if j != me:
+                pairs[me, j].flush()
+        results.put(("ok", me, outcome, feeder.read_summary()))
         opened.close()
     except CsvFormatError as exc:
         results.put(("format", me, str(exc), None))
@@ -712,17 +854,61 @@ def _pack(parts: list[tuple[str, FloatArray, FloatArray, IntArray]]) -> tuple[An
             np.concatenate([p[3] for p in parts]))
 
 
-def _unpack(packed: tuple[Any, ...]) -> list[tuple[str, FloatArray, FloatArray, IntArray]]:
+def _unpack(packed: tuple[Any, ...], line0: int = 0) -> list[tuple[str, FloatArray, FloatArray, IntArray]]:
     """:func:`_pack`'s parts again, each in arrays of its own (not views that would keep the
-    whole chunk's arrays alive while a stream holds its rows)."""
+    whole chunk's arrays alive while a stream holds its rows); ``line0`` added to the places
+    (those of a chunk whose first line was not known when it was read)."""
     names, counts, t, v, p = packed
     out = []
     a = 0
     for name, n in zip(names, counts):
         b = a + n
-        out.append((name, t[a:b].copy(), v[a:b].copy(), p[a:b].copy()))
+        out.append((name, t[a:b].copy(), v[a:b].copy(), p[a:b] + line0 if line0 else p[a:b].copy()))
         a = b
     return out
+
+
+class _LineCount:
+    """A process's count of the lines of the CSV chunks it feeds, when the parent plans them
+    without counting (it would read and count every chunk of every file again, while the
+    processes that read the chunks count their lines as they read them).
+
+    Each chunk is handed on with :meth:`info` ``(first, lines, relative, file, offset)``: its
+    first line when known (a file's first chunk, one after a chunk with quotes, one read row by
+    row), its lines, whether its places count from 0, and where it is.  Fed in order, the
+    chunks give each other their first lines (:meth:`first`).  A chunk read row by row needs
+    its first line before that (its problems name their lines): :meth:`finder` counts the
+    lines from the last chunk of the file fed whose first line is known (read again)."""
+
+    def __init__(self, sources: list[Source], opened: dict[str, Any]) -> None:
+        self.sources = sources
+        self.opened = opened
+        self.next: int | None = None  # the first line of the chunk after the last fed
+        self.known: dict[int, tuple[int, int]] = {}  # file -> (offset, line) of a chunk fed
+
+    def finder(self, task: tuple[Any, ...]) -> _FirstLine | None:
+        return _FirstLine(self, task) if task[0] == "csv" else None
+
+    @staticmethod
+    def info(task: tuple[Any, ...], block: Block, finder: _FirstLine | None) -> tuple[Any, ...]:
+        if task[0] != "csv":
+            return (None, -1, False, block.file, -1)
+        first = task[2] if finder is None or finder.found is None else finder.found
+        return (first, block.lines, block.relative, task[1], task[5])
+
+    def first(self, info: tuple[Any, ...]) -> int:
+        """The first line of the chunk fed now (0 where none is known: not a CSV chunk)."""
+        first, lines, relative, fidx, offset = info
+        if first is None:
+            first = self.next
+        if first is None:
+            if relative:
+                raise RuntimeError("a chunk's first line is not known")
+            first = 0
+        elif offset >= 0:
+            self.known[fidx] = (offset, first)
+        self.next = None if lines < 0 else first + lines
+        return int(first)
 
 
 def _replay_in_processes(sources: list[Source], settings_for: Any, unit_for: Any,
@@ -732,7 +918,7 @@ def _replay_in_processes(sources: list[Source], settings_for: Any, unit_for: Any
 
     ctx = multiprocessing.get_context("fork")  # the workers inherit the settings and the opened files
     plans = [ctx.Queue(maxsize=4) for _ in range(jobs)]
-    pairs = {(a, b): ctx.Queue(maxsize=LOOKAHEAD) for a in range(jobs) for b in range(jobs) if a != b}
+    pairs = {(a, b): _Pipe(ctx, LOOKAHEAD) for a in range(jobs) for b in range(jobs) if a != b}
     slots = {pair: _Slots(int(SLOT_SCALE * 2 * chunk_bytes / jobs)) for pair in pairs}
     results = ctx.Queue()
     done = ctx.Value("q", 0)
@@ -798,7 +984,7 @@ def _run_processes(procs: list[Any], plans: list[Any], results: Any, done: Any, 
                     report_progress()
 
         k = 0
-        for task in tasks(sources, tz, chunk_bytes):
+        for task in tasks(sources, tz, chunk_bytes, count=False):  # the workers count the lines
             if task[0] == "csv":
                 task = task[:3] + (None,) + task[4:]  # the worker reads the bytes itself
             hand(k % jobs, task)

@@ -34,7 +34,7 @@ import os
 import re
 import stat
 from collections import deque
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta, tzinfo
 from typing import TYPE_CHECKING, Any, BinaryIO, Self
@@ -770,6 +770,11 @@ class Block:
     #: problems counted beyond those in ``problems``
     unlisted: int = 0
     remark: str | None = None
+    #: Lines of the chunk (a CSV chunk read with ``--jobs``; -1: not counted)
+    lines: int = -1
+    #: True when the places count lines from the chunk's first (its line number not known
+    #: when it was read): the reader that learns it adds it (:func:`parse_csv_chunk`)
+    relative: bool = False
 
 
 class _Lines:
@@ -905,6 +910,26 @@ def _count_lines(data: bytes | bytearray, end: int) -> int:
     n = int(np.count_nonzero(np.frombuffer(data, dtype=np.uint8, count=end) == 10))
     if data.find(b"\r", 0, end) >= 0:
         n += data.count(b"\r", 0, end) - data.count(b"\r\n", 0, end)
+    return n
+
+
+def lines_between(path: str, start: int, stop: int, opened: dict[str, Any] | None = None) -> int:
+    """Lines as :class:`_Lines` counts them in the file's bytes ``start:stop`` (a line end at
+    ``stop - 1``), read in pieces: a ``\r`` that ends a piece and a ``\n`` that begins the next
+    are one line end."""
+    f = _kept_open(opened, path, lambda: open(path, "rb"))  # noqa: SIM115  kept open across chunks
+    n = 0
+    cr = False  # the piece before ended in \r
+    at = start
+    while at < stop:
+        piece = os.pread(f.fileno(), min(CHUNK_BYTES, stop - at), at)
+        if not piece:
+            raise _changed(path, at, stop)
+        n += _count_lines(piece, len(piece)) - (1 if cr and piece[0] == 10 else 0)
+        cr = piece[-1] == 13
+        at += len(piece)
+    if opened is None:
+        f.close()
     return n
 
 
@@ -1502,14 +1527,21 @@ def _last_line_end(data: bytes) -> int:
 
 
 def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUNK_BYTES,
-              first_index: int = 0) -> Iterator[tuple[Any, ...]]:
+              first_index: int = 0, count: bool = True) -> Iterator[tuple[Any, ...]]:
     """The chunks of a CSV file: ``("csv", file, line, bytes, index, offset, size)`` or
     ``("block", Block)`` for a chunk with quotes, read here.  Another process may be handed the
-    task without its bytes (None), and read them from the file at the offset."""
+    task without its bytes (None), and read them from the file at the offset.
+
+    With ``count`` False (``--jobs``: the processes that read the chunks count their lines)
+    the lines are not counted here: a chunk's line is None unless it is known (a file's first
+    chunk, the one after a chunk with quotes), and only a chunk with quotes, which is read
+    here, has the chunks since the last known line counted first (read again)."""
     index = first_index
     with open(src.path, "rb") as fb:
         offset = src.body_start  # of the chunk's first byte in the file
-        line0 = src.body_line
+        line0: int | None = src.body_line
+        # Without count: where the line was last known, and the chunks cut since (offset, cut).
+        known: tuple[int, list[tuple[int, int]]] = (src.body_line, [])
         size = os.fstat(fb.fileno()).st_size  # a file cut short meanwhile is named, not read in part
 
         def whole(at: int) -> None:
@@ -1526,6 +1558,15 @@ def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUN
             if eof:
                 whole(offset + len(data))
             if data.find(b'"') >= 0:
+                if line0 is None:
+                    line0 = known[0]
+                    for at, cut in known[1]:  # the chunks cut since, read again and counted
+                        fb.seek(at)
+                        again = fb.read(cut)
+                        if len(again) != cut:
+                            raise _changed(src.path, at + len(again), at + cut)
+                        line0 += _count_lines(again, cut)
+                    fb.seek(offset + len(data))
                 # Only reading the rows finds where they end: read them here, up to the
                 # first row that ends at or past the chunk's size.
                 lines = _Lines(bytearray(data), 0, len(data), None if eof else fb)
@@ -1533,6 +1574,7 @@ def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUN
                 block.nbytes = lines.consumed
                 line0 += lines.count
                 offset += lines.consumed
+                known = (line0, [])
                 yield ("block", block)
                 index += 1
                 if lines.more is None and not lines.rest():
@@ -1554,16 +1596,35 @@ def csv_tasks(src: Source, fidx: int, tz: tzinfo | None, chunk_bytes: int = CHUN
             index += 1
             if cut == len(data) and eof:
                 return
-            line0 += _count_lines(data, cut)
+            if count:
+                assert line0 is not None
+                line0 += _count_lines(data, cut)
+            else:
+                if line0 is not None:
+                    known = (line0, [])
+                line0 = None
+                known[1].append((offset, cut))
             offset += cut
 
 
-def parse_csv_chunk(src: Source, fidx: int, line0: int, chunk: bytes, index: int,
-                    tz: tzinfo | None, size: int | None = None) -> Block:
-    """The rows of ``chunk[:size]``: column-wise when it is clean, else row by row."""
+def parse_csv_chunk(src: Source, fidx: int, line0: int | None, chunk: bytes, index: int,
+                    tz: tzinfo | None, size: int | None = None,
+                    find_line0: Callable[[], int] | None = None) -> Block:
+    """The rows of ``chunk[:size]``: column-wise when it is clean, else row by row.
+
+    ``line0`` None (a chunk planned without counting lines, ``--jobs``): a clean chunk's
+    places count its lines from 0 (``Block.relative``), and a chunk read row by row asks
+    ``find_line0`` for its first line; either way ``Block.lines`` is the chunk's lines."""
     size = len(chunk) if size is None else size
     buf = bytearray(size + 2 * _PAD)
     buf[_PAD:_PAD + size] = memoryview(chunk)[:size]
+    return _parse_padded(src, fidx, line0, buf, index, tz, size, find_line0)
+
+
+def _parse_padded(src: Source, fidx: int, line0: int | None, buf: bytearray, index: int,
+                  tz: tzinfo | None, size: int, find_line0: Callable[[], int] | None) -> Block:
+    """:func:`parse_csv_chunk` of a chunk already in ``buf[_PAD:_PAD + size]``, with :data:`_PAD`
+    zero bytes on each side."""
     begin, end = _PAD, _PAD + size
     utf8 = buf.isascii()  # the padding is zeros: ASCII
     if not utf8:
@@ -1573,10 +1634,26 @@ def parse_csv_chunk(src: Source, fidx: int, line0: int, chunk: bytes, index: int
         except UnicodeDecodeError:
             pass
     if utf8:
-        got = _read_fast(src, buf, begin, end, line0, fidx << PLACE_BITS, tz)
+        ends_line = size > 0 and buf[end - 1] == 10
+        got = _read_fast(src, buf, begin, end, 0 if line0 is None else line0, fidx << PLACE_BITS, tz)
         if got is not None:
-            return Block(index, fidx, got[0], [], got[1], size, remark=src.remark())
-    return _slow_rows(src, fidx, _Lines(buf, begin, end, None), line0, tz, index, size)
+            block = Block(index, fidx, got[0], [], got[1], size, remark=src.remark(), relative=line0 is None)
+            if find_line0 is not None:
+                # A clean chunk has no \r: its lines are its newlines (a last line without
+                # one, at the file's end, is a row but not a line end).
+                n = got[1]
+                block.lines = buf.count(b"\n", begin, end) if n == 0 else n - (0 if ends_line else 1)
+            return block
+    lines = -1
+    if find_line0 is not None:
+        lines = _count_lines(buf[begin:end], size)
+        if line0 is None:
+            line0 = find_line0()
+    elif line0 is None:
+        raise ValueError("a chunk planned without its line number needs find_line0")
+    block = _slow_rows(src, fidx, _Lines(buf, begin, end, None), line0, tz, index, size)
+    block.lines = lines
+    return block
 
 
 # ---------------------------------------------------------------------------
@@ -2000,11 +2077,13 @@ def _long_parquet_parts(scol: Any, times: FloatArray, v: FloatArray, places: Int
             collected.setdefault(key, []).append((times[sel], v[sel], places[sel]))
 
 
-def tasks(sources: list[Source], tz: tzinfo | None, chunk_bytes: int = CHUNK_BYTES) -> Iterator[tuple[Any, ...]]:
-    """Every piece of every file, in order; pieces are numbered from 0 across the files."""
+def tasks(sources: list[Source], tz: tzinfo | None, chunk_bytes: int = CHUNK_BYTES,
+          count: bool = True) -> Iterator[tuple[Any, ...]]:
+    """Every piece of every file, in order; pieces are numbered from 0 across the files.
+    ``count``: see :func:`csv_tasks`."""
     index = 0
     for fidx, src in enumerate(sources):
-        it = (csv_tasks(src, fidx, tz, chunk_bytes, index) if src.kind == "csv"
+        it = (csv_tasks(src, fidx, tz, chunk_bytes, index, count) if src.kind == "csv"
               else parquet_tasks(src, fidx, index))
         for task in it:
             yield task
@@ -2041,17 +2120,6 @@ def _kept_open(opened: dict[str, Any] | None, path: str, make: Any) -> Any:
     return f
 
 
-def _read_at(path: str, offset: int, size: int, opened: dict[str, Any] | None) -> bytes:
-    """``size`` bytes of a file from ``offset`` (a chunk handed over without its bytes)."""
-    f = _kept_open(opened, path, lambda: open(path, "rb"))  # noqa: SIM115  kept open across chunks
-    chunk = os.pread(f.fileno(), size, offset)
-    if opened is None:
-        f.close()
-    if len(chunk) != size:
-        raise _changed(path, offset + len(chunk), offset + size)
-    return chunk
-
-
 def _changed(path: str, at: int, expected: int) -> CsvFormatError:
     """A file that ends (at byte ``at``) before the bytes planned from it (``expected``).
 
@@ -2066,8 +2134,9 @@ def _changed(path: str, at: int, expected: int) -> CsvFormatError:
 
 
 def parse_task(task: tuple[Any, ...], sources: list[Source], tz: tzinfo | None,
-               opened: dict[str, Any] | None = None) -> Block:
-    """The :class:`Block` of one task of :func:`tasks`."""
+               opened: dict[str, Any] | None = None, find_line0: Callable[[], int] | None = None) -> Block:
+    """The :class:`Block` of one task of :func:`tasks`; ``find_line0`` for a CSV chunk
+    planned without counting lines (:func:`parse_csv_chunk`)."""
     kind = task[0]
     if kind == "block":
         block: Block = task[1]
@@ -2075,7 +2144,16 @@ def parse_task(task: tuple[Any, ...], sources: list[Source], tz: tzinfo | None,
     if kind == "csv":
         _, fidx, line0, chunk, index, offset, size = task
         if chunk is None:
-            chunk = _read_at(sources[fidx].path, offset, size, opened)
-        return parse_csv_chunk(sources[fidx], fidx, line0, chunk, index, tz, size)
+            # Read straight into the padded buffer the reader takes (not into bytes copied there).
+            path = sources[fidx].path
+            f = _kept_open(opened, path, lambda: open(path, "rb"))  # noqa: SIM115  kept open across chunks
+            buf = bytearray(size + 2 * _PAD)
+            got = os.preadv(f.fileno(), [memoryview(buf)[_PAD:_PAD + size]], offset)
+            if opened is None:
+                f.close()
+            if got != size:
+                raise _changed(path, offset + got, offset + size)
+            return _parse_padded(sources[fidx], fidx, line0, buf, index, tz, size, find_line0)
+        return parse_csv_chunk(sources[fidx], fidx, line0, chunk, index, tz, size, find_line0)
     _, fidx, g, index, first, stop = task
     return parse_parquet_group(sources[fidx], fidx, g, index, tz, opened, first, stop)
