@@ -158,6 +158,11 @@ class EventTrial:
         self.outcome = self._verdict()
         return i, self.outcome
 
+    def reopen(self) -> None:
+        """Take back a "step" verdict the engine did not accept (the fit of the event's
+        samples does not show the step): the sums stand and the trial goes on."""
+        self.outcome = PENDING
+
     def _verdict(self) -> str:
         if self.m < self.min_samples:
             return PENDING
