@@ -579,7 +579,9 @@ PHI_BOUND_MARGIN = 2.0
 #: p-value (or ``confirm_p_value``, when larger): the trial alone confirmed wander of
 #: young autocorrelated streams.  0.001 lost more real steps on AR(1) 0.8 noise
 #: (1-sigma steps confirmed within 1,600 samples: 56 of 100, against 75 at 0.01
-#: and 93 with no gate), for few fewer false confirmations (5 against 6 of 110).
+#: and 93 with no gate, when every sample was refitted; 69 at 0.01 with
+#: ``EventTrial.reopen``'s spacing), for few fewer false confirmations (5 against 6
+#: of 110).
 CONFIRM_FIT_P = 0.01
 #: A stream whose noise is heavy-tailed is clipped at 2 sigma (baseline.choose_clip), and
 #: clipped increments reach the test's threshold less often than the Gaussian ones it is
