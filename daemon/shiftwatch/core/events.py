@@ -22,6 +22,11 @@ units.  With ``S_m`` the sum of ``sign * z`` over ``m`` samples:
   At the same bound the event is *dismissed*.
 * neither after ``limit`` samples: the event ends *undecided*.
 
+The engine accepts a "step" only while the least-squares fit of all the
+event's samples shows the step too (``engine.StreamEngine._fit_p_value``);
+otherwise it takes the verdict back (:meth:`EventTrial.reopen`) and the
+trial goes on.  The bounds below are for the trial alone.
+
 Wald's inequalities bound the error rates: an event on an unchanged level
 is confirmed with probability at most ``alpha``; a step of ``d`` or more is
 dismissed with probability at most ``alpha`` (both rates are set to the
