@@ -22,6 +22,11 @@ units.  With ``S_m`` the sum of ``sign * z`` over ``m`` samples:
   At the same bound the event is *dismissed*.
 * neither after ``limit`` samples: the event ends *undecided*.
 
+The engine accepts a "step" only while the least-squares fit of all the
+event's samples shows the step too (``engine.StreamEngine._fit_p_value``);
+otherwise it takes the verdict back (:meth:`EventTrial.reopen`) and the
+trial goes on.  The bounds below are for the trial alone.
+
 Wald's inequalities bound the error rates: an event on an unchanged level
 is confirmed with probability at most ``alpha``; a step of ``d`` or more is
 dismissed with probability at most ``alpha`` (both rates are set to the
@@ -88,7 +93,7 @@ class EventTrial:
     (24, 'no_step')
     """
 
-    __slots__ = ("bound", "d", "limit", "m", "min_samples", "outcome", "s", "sign")
+    __slots__ = ("bound", "d", "limit", "m", "min_samples", "outcome", "s", "sign", "step_from")
 
     def __init__(self, sign: int, d: float, error_rate: float, limit: int,
                  min_samples: int = 1) -> None:
@@ -108,6 +113,7 @@ class EventTrial:
         self.m = 0
         self.s = 0.0
         self.outcome = PENDING
+        self.step_from = 0  # no "step" verdict before this count (see reopen)
 
     # The two log-likelihood ratios, from the sums.
     def llr_step(self) -> float:
@@ -146,6 +152,8 @@ class EventTrial:
         s = np.cumsum(np.concatenate(([self.s], z if self.sign > 0 else -z)))[1:]
         c = DISMISS_AT * self.d
         step = (self.d * s - 0.5 * m * self.d * self.d) >= self.bound
+        if self.step_from > self.m + 1:
+            step &= m >= self.step_from
         none = (-c * s + 0.5 * m * c * c) >= self.bound
         hit = np.flatnonzero(((step | none) & (m >= self.min_samples)) | (m >= self.limit))
         if hit.shape[0] == 0:
@@ -158,10 +166,19 @@ class EventTrial:
         self.outcome = self._verdict()
         return i, self.outcome
 
+    def reopen(self) -> None:
+        """Take back a "step" verdict the engine did not accept (the fit of the event's
+        samples does not show the step): the sums stand and the trial goes on.  The next
+        "step" verdict comes no sooner than a tenth of the samples so far later (so the
+        engine refits once every so many samples, not on each), on a count that does
+        not depend on batching; "no step" and the limit decide as before."""
+        self.outcome = PENDING
+        self.step_from = self.m + max(1, self.m // 10)
+
     def _verdict(self) -> str:
         if self.m < self.min_samples:
             return PENDING
-        if self.llr_step() >= self.bound:
+        if self.llr_step() >= self.bound and self.m >= self.step_from:
             return STEP
         if self.llr_no_step() >= self.bound:
             return NO_STEP
@@ -171,7 +188,7 @@ class EventTrial:
 
     def get_state(self) -> dict[str, Any]:
         return {"sign": self.sign, "d": self.d, "bound": self.bound, "limit": self.limit,
-                "min_samples": self.min_samples, "m": self.m, "s": self.s}
+                "min_samples": self.min_samples, "m": self.m, "s": self.s, "step_from": self.step_from}
 
     @classmethod
     def from_state(cls, state: dict[str, Any]) -> EventTrial:
@@ -192,6 +209,11 @@ class EventTrial:
                 raise ValueError(f"event.trial.{name}: out of range ({v!r})")
             setattr(out, name, v)
         out.outcome = PENDING
+        # (snapshots before the fit's check carry no step_from: 0, as a new trial)
+        v = int(state.get("step_from", 0))
+        if not 0 <= v <= 2**53:
+            raise ValueError(f"event.trial.step_from: out of range ({v!r})")
+        out.step_from = v
         return out
 
 
