@@ -12,12 +12,10 @@ process, since what is checked is that the shell reports what the core holds.
 from __future__ import annotations
 
 import json
-import math
 import re
 from pathlib import Path
 
 import numpy as np
-from scipy.signal import lfilter
 
 from shiftwatch.core.engine import EVENT_OPEN, StreamEngine
 
@@ -73,10 +71,15 @@ def test_an_events_final_record_comes_before_the_detection_that_replaces_it(cli,
     # first.  The README: every event has one `detected` record and then one final
     # record; records in time order.  (Failed before: a `detected` record came
     # between another event's `detected` and its final record.)
-    rng = np.random.default_rng(70)  # AR(1) phi 0.8 around 50, sd 2: such a dismissal at sample 73
-    z = lfilter([1.0], [1.0, -0.8], rng.standard_normal(600)) * math.sqrt(1.0 - 0.64)
+    # A blip of 4 samples at +3 sigma trips the test, and a real +3-sigma step begins 11
+    # samples after it, inside the open event: the refit at the decision dismisses the
+    # blip's event and opens one for the step on the same sample.
+    rng = np.random.default_rng(11)
+    x = 50.0 + rng.standard_normal(3000)
+    x[1500:1504] += 3.0
+    x[1504 + int(rng.integers(5, 40)):] += 3.0
     path = tmp_path / "oven.csv"
-    write_long(path, {"brackenfield/oven2/zone4_c": 50.0 + 2.0 * z})
+    write_long(path, {"brackenfield/oven2/zone4_c": x})
     for jobs in ("1", "2"):
         res = cli("replay", "--jobs", jobs, str(path))
         assert res.returncode == 0, res.stderr

@@ -119,20 +119,41 @@ def ar08_stream(state: int, n: int = 600) -> tuple[np.ndarray, np.ndarray]:
     return T0 + np.arange(n, dtype=np.float64), 50.0 + 2.0 * z
 
 
-@pytest.mark.parametrize("state", [19, 155, 598])
+@pytest.mark.parametrize("state", [155, 598, 717])
 def test_an_event_opened_as_the_one_before_is_dismissed_names_what_opened_it(state: int) -> None:
     # Trial defect 7: `detected` records with `test: multi_cusum, statistic 0.365,
     # threshold 1.0` (the README promises statistic >= threshold), all on AR(1) 0.8
     # noise, when the refit at an event's decision placed the step after the
     # detection: the old event was dismissed and a new one opened with the sequential
     # test's statistic, reset at the first trip.  (Failed before: statistic below
-    # threshold on each of these streams.)
-    from shiftwatch.core.stepfit import supf_pvalue
-
+    # threshold on each of these streams; since the fit's check before a confirmation,
+    # their wander no longer opens a second event at all.)
     settings = DetectionSettings()  # the default settings, as in the trial
     t, x = ar08_stream(state)
     recs = StreamEngine("s", settings).process(t, x).records
     assert recs
+    for rec in recs:
+        assert rec.statistic >= rec.threshold, rec
+
+
+@pytest.mark.parametrize("state", [11, 21, 34])
+def test_an_event_opened_by_the_refit_names_the_refit_and_its_critical_value(state: int) -> None:
+    # A blip of 4 samples at +3 sigma trips the test; a real +3-sigma step begins
+    # 11 to 14 samples after it, inside the open event.  The refit at the decision
+    # places the step after the detection: the blip's event is dismissed and the step
+    # gets an event of its own, named `event_refit` (its sup-F against the F whose
+    # p-value is confirm_p_value) or `event_trial` (the trial's evidence for a step
+    # against Wald's bound), never the sequential test reset at the first trip.
+    from shiftwatch.core.stepfit import supf_pvalue
+
+    settings = DetectionSettings()
+    rng = np.random.default_rng(state)
+    n = 3000
+    x = 50.0 + rng.standard_normal(n)
+    x[1500:1504] += 3.0
+    gap = int(rng.integers(5, 40))
+    x[1504 + gap:] += 3.0
+    recs = StreamEngine("s", settings).process(T0 + np.arange(n, dtype=np.float64), x).records
     refits = 0
     for rec in recs:
         assert rec.statistic >= rec.threshold, rec
@@ -148,6 +169,9 @@ def test_an_event_opened_as_the_one_before_is_dismissed_names_what_opened_it(sta
             a = settings.confirm_p_value
             assert rec.threshold == pytest.approx(math.log((1.0 - a) / a), rel=1e-12)
     assert refits >= 1
+    # the step itself ends confirmed, dated where it began
+    final = [r for r in recs if r.phase == "confirmed"]
+    assert final and abs(final[-1].shift_at - (T0 + 1504 + gap)) <= 2.0
 
 
 def test_the_sup_f_critical_value_is_andrews() -> None:
