@@ -548,3 +548,29 @@ def test_a_detection_settled_by_the_next_sample_says_so_in_as_of() -> None:
     y[600:] += 2.0
     det = [r for r in run(StreamEngine("s"), t, y, batch=1)[0] if r.phase == "detected"]
     assert det and det[0].as_of == det[0].detected_at
+
+
+def test_a_warm_up_spike_found_when_a_held_sample_fills_the_window_is_not_taken_for_a_stall() -> None:
+    # Found by test_young_fast's random histories (2026-12-05): a constant stream with one
+    # lone outlier early and an outlier pair at its end, the last sample alone in its batch.
+    # That sample confirms the held one before it (both deviate the same way), which fills
+    # the warm-up window; the lone outlier is then set aside and the window is one short
+    # again, with the new sample not yet taken.  The state looked as before the call, and
+    # the engine raised "made no progress" (the batch was lost in the daemon as an
+    # internal error) though a sample had moved in and a spike out.  (Failed before.)
+    settings = DetectionSettings(false_alarm_every=3600.0)
+    n = settings.warmup_samples + 1
+    x = np.full(n, 20.0)
+    x[2] = -10.0
+    x[-2:] = 5.0
+    t = T0 + np.arange(float(n))
+    whole = StreamEngine("s", settings).process(t, x)
+    eng = StreamEngine("s", settings)
+    first = eng.process(t[:-1], x[:-1])
+    last = eng.process(t[-1:], x[-1:])
+    # batched as in one call: the same records and the same set-asides
+    assert [r.to_dict() for r in first.records + last.records] == [r.to_dict() for r in whole.records]
+    assert [(r.reason, r.time) for r in first.rejected + last.rejected] == \
+        [(r.reason, r.time) for r in whole.rejected]
+    assert [(r.reason, r.time) for r in whole.rejected] == [("spike", float(t[2]))]
+    assert eng.samples_total == n

@@ -871,8 +871,11 @@ class StreamEngine:
         n = t.shape[0]
         while pos < n:
             # (the window's and the fitter's lengths read directly: this runs on every call)
+            # (and the set-asides: a warm-up can take a held sample in and set a spike
+            # aside in one turn, its window as long as before and the new sample not yet
+            # taken; that is progress, and the next turn takes the sample)
             before = (pos, self._state, self._watch_kept, self._window._n,
-                      -1 if self._fitter is None else len(self._fitter))
+                      -1 if self._fitter is None else len(self._fitter), len(result.rejected))
             if self._state == WARMING_UP:
                 used = self._warm(t[pos:], x[pos:], kept[pos:], result)
             elif self._state == WATCHING:
@@ -884,7 +887,7 @@ class StreamEngine:
                 used = self._track(t[pos:], x[pos:], kept[pos:], result)
             pos += used
             if (pos, self._state, self._watch_kept, self._window._n,
-                    -1 if self._fitter is None else len(self._fitter)) == before:
+                    -1 if self._fitter is None else len(self._fitter), len(result.rejected)) == before:
                 # Nothing moved: a defect.  Refuse loudly instead of spinning.
                 raise RuntimeError(f"engine for stream {self.stream!r} made no progress in state {self._state}")
         result.accepted = n
