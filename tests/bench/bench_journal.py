@@ -32,6 +32,8 @@ import logging
 import statistics
 import sys
 import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from tempfile import TemporaryDirectory
 
@@ -92,25 +94,32 @@ def round_block(cs: ClusterState, messages: int, samples: int, t0: float) -> flo
     return (time.process_time() - before) / messages * 1e6
 
 
-def main_round(blocks: int, messages: int, samples: int) -> int:
-    """``--round-only``: the round's figure alone, for pairing two checkouts' code (run this
-    script with each one's ``daemon/`` first on PYTHONPATH, alternating)."""
+@contextmanager
+def lone_cluster_state() -> Iterator[ClusterState]:
+    """A lone nats-server in a temporary directory, a connected NatsIO and a ClusterState
+    set up on it; all stopped on leaving."""
     with TemporaryDirectory() as tmp:
         server, port = start_lone_server(Path(tmp), "bench-journal")
         io = NatsIO([f"nats://127.0.0.1:{port}"], name="bench-journal", timeout=10.0)
         try:
             io.start()
             if not wait_until(lambda: connects(io), 30):
-                print("nats-server did not answer", file=sys.stderr)
-                return 1
+                raise RuntimeError("nats-server did not answer")
             cs = ClusterState(io, name="bench", replicas=1, logger=logging.getLogger("bench"), writer="bench")
             cs.setup()
-            round_block(cs, STREAMS, samples, 0.0)  # warm up (subjects, the reply subscription)
-            got = [round_block(cs, messages, samples, 1e6 + b * 1e4) for b in range(blocks)]
+            yield cs
         finally:
             io.close()
             server.terminate()
             server.wait(10)
+
+
+def main_round(blocks: int, messages: int, samples: int) -> int:
+    """``--round-only``: the round's figure alone, for pairing two checkouts' code (run this
+    script with each one's ``daemon/`` first on PYTHONPATH, alternating)."""
+    with lone_cluster_state() as cs:
+        round_block(cs, STREAMS, samples, 0.0)  # warm up (subjects, the reply subscription)
+        got = [round_block(cs, messages, samples, 1e6 + b * 1e4) for b in range(blocks)]
     import shiftwatch
     print(f"journal rounds of {STREAMS} streams, messages of {samples} sample(s), {blocks} blocks of "
           f"{messages:,} messages, CPU of this process per message (median block), code of "
@@ -130,27 +139,14 @@ def main() -> int:
     blocks, messages = (4, 2_000) if args.quick else (8, 5_000)
     if args.round_only:
         return main_round(blocks, messages, args.samples)
-    with TemporaryDirectory() as tmp:
-        server, port = start_lone_server(Path(tmp), "bench-journal")
-        io = NatsIO([f"nats://127.0.0.1:{port}"], name="bench-journal", timeout=10.0)
-        try:
-            io.start()
-            if not wait_until(lambda: connects(io), 30):
-                print("nats-server did not answer", file=sys.stderr)
-                return 1
-            cs = ClusterState(io, name="bench", replicas=1, logger=logging.getLogger("bench"), writer="bench")
-            cs.setup()
-            block(cs, "request", STREAMS, args.samples, 0.0)  # warm both ways up (subjects, subscriptions)
-            block(cs, "batch", STREAMS, args.samples, 1e6)
-            got: dict[str, list[float]] = {"request": [], "batch": []}
-            for b in range(blocks):
-                order = ("request", "batch") if b % 2 == 0 else ("batch", "request")
-                for how in order:
-                    got[how].append(block(cs, how, messages, args.samples, 2e6 + b * 1e4))
-        finally:
-            io.close()
-            server.terminate()
-            server.wait(10)
+    with lone_cluster_state() as cs:
+        block(cs, "request", STREAMS, args.samples, 0.0)  # warm both ways up (subjects, subscriptions)
+        block(cs, "batch", STREAMS, args.samples, 1e6)
+        got: dict[str, list[float]] = {"request": [], "batch": []}
+        for b in range(blocks):
+            order = ("request", "batch") if b % 2 == 0 else ("batch", "request")
+            for how in order:
+                got[how].append(block(cs, how, messages, args.samples, 2e6 + b * 1e4))
     old, new = statistics.median(got["request"]), statistics.median(got["batch"])
     ratio = new / old
     print(f"journal messages of {args.samples} sample(s), {blocks} blocks of {messages:,} each way, "
