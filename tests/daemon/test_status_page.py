@@ -84,7 +84,7 @@ def test_the_board_orders_open_then_recent_then_by_name_and_filters_by_name_or_l
         if name == "line/c":
             x[500:] += 2.0  # confirmed
         if name == "line/d":
-            x[694:] += 2.0  # tripped near the end: still open
+            x[695:] += 2.0  # tripped near the end: still open
         recs[name] = eng.process(t, x).records
     assert [r.phase for r in recs["line/c"]] == ["detected", "confirmed"]
     assert engines["line/d"].state == "event_open"
@@ -446,7 +446,7 @@ def test_fields_other_parts_provide_show_on_the_page_and_absent_ones_leave_no_ga
         eng = StreamEngine(name, unit="g" if "filler" in name else "Cel")
         x = series(3 if k == 0 else k + 20)
         if k == 0:
-            x[694:] += 2.0  # still open at the end (see the first test)
+            x[695:] += 2.0  # still open at the end (see the first test)
         records += eng.process(t, x).records
         engines[name] = eng
     assert engines["line/filler/a"].state == "event_open"
