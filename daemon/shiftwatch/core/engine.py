@@ -73,7 +73,7 @@ from shiftwatch.core.selfstart import (
 )
 from shiftwatch.core.sequential import SequentialTest
 from shiftwatch.core.settings import ARL_RANGE, DetectionSettings
-from shiftwatch.core.stepfit import StepFit, StepFitter, supf_critical, supf_pvalue
+from shiftwatch.core.stepfit import StepFit, StepFitter, anchor_step, supf_critical, supf_pvalue
 from shiftwatch.core.timefmt import TIME_MAX, TIME_MIN, format_time
 
 FloatArray = NDArray[np.float64]
@@ -2407,10 +2407,15 @@ class StreamEngine:
             self._begin_event(as_of, result, as_of, by_fit=True, tripped=tripped)
             return
         shown = self._event_fit(ev, b, fit)  # what the record says
-        half = 0.5 * self.settings.min_shift_sigma
-        conflict = outcome == STEP and (fit.delta * ev.trial.sign <= 0.0
-                                        or abs(fit.delta) < half * b.sigma
-                                        or abs(fit.delta_sigma) < half)
+        conflict = outcome == STEP and self._conflicts(fit, ev.trial.sign, b)
+        if outcome == STEP and (conflict or not shows):
+            anchored = self._anchored(ev, shown, b)
+            if anchored is not None:
+                # The fit's window may hold few samples from before the step (a step
+                # detected late: 1 sigma on AR(1) 0.8 noise, a median 228 samples after
+                # it), so its sup-F cannot show it; the baseline's settled level, the
+                # trial's own reference, can.  Confirmed on the fit measured from it.
+                fit, shows, conflict = anchored, True, False
         if outcome == STEP and not conflict and not shows:
             # The trial says "step", but the fit of all the event's samples does not show
             # one at the decision's error rate (its p-value, with the autocorrelation
@@ -2458,6 +2463,27 @@ class StreamEngine:
         else:
             self._end_event(ev, "undecided", shown, result, as_of)
         self._reanchor(fit.index)
+
+    def _conflicts(self, fit: StepFit, sign: int, b: Baseline) -> bool:
+        """Whether ``fit`` contradicts a trial's "step" in direction ``sign``: a step
+        the other way, or less than half of min_shift_sigma (in the baseline's sigma or
+        in the fit's own)."""
+        half = 0.5 * self.settings.min_shift_sigma
+        return (fit.delta * sign <= 0.0 or abs(fit.delta) < half * b.sigma
+                or abs(fit.delta_sigma) < half)
+
+    def _anchored(self, ev: OpenEvent, fit: StepFit, b: Baseline) -> StepFit | None:
+        """The event's fit measured from the trial's reference level, when that is the
+        baseline's settled level (it rests on at least two windows of samples), if that
+        shows the step in the trial's direction at ``confirm_p_value`` and at least half
+        of min_shift_sigma (:func:`.stepfit.anchor_step`); else None."""
+        if (b.level_n < 2 * self.settings.window_samples or self._young is not None
+                or self._provisional or fit.n_after < 1 or not b.sigma > 0.0):
+            return None
+        a = anchor_step(fit, ev.level_before, b.level_n, b.sigma, _variance_factor(b.phi))
+        if a.p_value < self.settings.confirm_p_value and not self._conflicts(a, ev.trial.sign, b):
+            return a
+        return None
 
     def _fit_p_value(self, fit: StepFit, b: Baseline) -> float:
         """The p-value of the fit of the event's samples ("one step against none") on

@@ -43,7 +43,7 @@ clock reads.
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from functools import lru_cache
 from numbers import Integral, Real
 from typing import Any
@@ -57,6 +57,7 @@ __all__ = [
     "INTERVAL_METHODS",
     "StepFit",
     "StepFitter",
+    "anchor_step",
     "bai_cdf",
     "bai_quantile",
     "fit_step",
@@ -710,6 +711,50 @@ def _lr_interval(
 # ---------------------------------------------------------------------------
 # Public entry points
 # ---------------------------------------------------------------------------
+
+
+def anchor_step(fit: StepFit, level_before: float, n_before: int, sigma: float,
+                variance_factor: float = 1.0) -> StepFit:
+    """The step of ``fit`` measured from a known level before it.
+
+    ``fit`` splits a stretch of samples; ``level_before`` is the level before
+    the step known from elsewhere (a settled baseline), resting on ``n_before``
+    samples of noise sigma ``sigma``.  The level after and the split stay the
+    fit's; the level before, ``delta``, ``delta_sigma`` (over ``sigma``),
+    ``sigma``, ``n_before`` and ``level_before_se`` are the known level's, and
+    the test is the two-sample z of the level after against it, with both
+    means' variances times ``variance_factor`` (the long-run factor of AR(1)
+    noise): ``f_stat`` is z squared and ``p_value`` its one-sided normal tail
+    in the direction of ``delta``.  Shift-time interval and sums of squares
+    stay the fit's.  Where the fit sees few samples before its split (the
+    stretch began after the step), its own sup-F cannot show a step that this
+    test shows.
+
+    Examples
+    --------
+    >>> fit = fit_step([0.2, -0.1, 1.1, 0.9, 1.0, 1.2], min_segment=2)
+    >>> a = anchor_step(fit, 0.0, 1000, 0.1)
+    >>> round(a.delta, 3), a.n_before, a.p_value < 1e-12
+    (1.05, 1000, True)
+    """
+    if not (sigma > 0.0 and math.isfinite(sigma)) or n_before < 1 or fit.n_after < 1:
+        raise ValueError("anchor_step needs sigma > 0, n_before >= 1 and a fit with samples after its split")
+    vf = float(variance_factor)
+    delta = fit.level_after - float(level_before)
+    se = sigma * math.sqrt(vf * (1.0 / fit.n_after + 1.0 / n_before))
+    z = delta / se
+    return replace(
+        fit,
+        level_before=float(level_before),
+        level_before_se=sigma * math.sqrt(vf / n_before),
+        delta=delta,
+        sigma=float(sigma),
+        delta_sigma=delta / sigma,
+        n_before=int(n_before),
+        f_stat=z * z,
+        p_value=0.5 * math.erfc(abs(z) / math.sqrt(2.0)),
+        variance_factor=vf,
+    )
 
 
 def fit_step(
