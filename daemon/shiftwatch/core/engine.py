@@ -597,7 +597,8 @@ PHI_BOUND_MARGIN = 2.0
 CONFIRM_FIT_P = 0.01
 #: The same once the baseline's phi rests on a window of samples or more: there the
 #: trial's assumptions hold better, and 0.01 cost 1-sigma steps on AR(1) 0.8 noise
-#: (bench_events: 88% confirmed within 1,000 samples instead of 99%).
+#: (bench_events: 88% confirmed within 1,000 samples instead of 99%; 93% at 0.1, until a
+#: settled level stood in for the samples before a late-detected step: ``_anchored``).
 CONFIRM_FIT_P_SETTLED = 0.1
 #: A stream whose noise is heavy-tailed is clipped at 2 sigma (baseline.choose_clip), and
 #: clipped increments reach the test's threshold less often than the Gaussian ones it is

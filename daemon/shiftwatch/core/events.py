@@ -23,8 +23,9 @@ units.  With ``S_m`` the sum of ``sign * z`` over ``m`` samples:
 * neither after ``limit`` samples: the event ends *undecided*.
 
 The engine accepts a "step" only while the least-squares fit of all the
-event's samples shows the step too (``engine.StreamEngine._fit_p_value``);
-otherwise it takes the verdict back (:meth:`EventTrial.reopen`) and the
+event's samples shows the step too (``engine.StreamEngine._fit_p_value``;
+on a settled baseline also the fit measured from the baseline's level,
+``engine.StreamEngine._anchored``); otherwise it takes the verdict back (:meth:`EventTrial.reopen`) and the
 trial goes on.  The bounds below are for the trial alone.
 
 Wald's inequalities bound the error rates: an event on an unchanged level
