@@ -578,10 +578,12 @@ FOLLOW_PHI_MAX = 0.7
 #: on a drift of 0.0004 sigma a sample, 1.6 sigma at most, against spike_sigma 5).  Each
 #: point ends a vectorised stretch: 1,024 halved a stream's throughput on history.
 FOLLOW_RECENTER = 4096
-#: A sample beyond the spike band is the first sample of a step, not a lone spike, when
-#: the next one deviates the same way beyond the band or beyond this share of the
-#: outlier's own deviation (the midpoint between the level and the outlier).  Requiring
-#: the next one beyond the band too set aside the first sample of 13% of 4-sigma steps.
+#: A sample beyond the spike band is a sample of a step, not a lone spike, when the next
+#: one, or the one before, deviates the same way beyond the band or beyond this share of
+#: the outlier's own deviation (the midpoint between the level and the outlier).
+#: Requiring the next one beyond the band too set aside the first sample of 13% of
+#: 4-sigma steps; looking at the next one only set aside a 5-sigma step's second sample
+#: (5.73 sigma) after a first at 4.86 and before a third at 2.84.
 SPIKE_CONFIRM_SHARE = 0.5
 FOLLOW_MARGIN = 2.0
 #: Standard errors above its bias-corrected estimate at which the decision on an event
@@ -1204,13 +1206,14 @@ class StreamEngine:
             return self._split_spikes_sparse(t, x, idx, center, sigma, limit, n_in, held_before)
         pos = np.arange(-int(held_before), n_in, dtype=np.intp)
         dev = (x - center) / sigma
-        lone, out_last = lone_outliers(dev, s.spike_sigma, prev_sign=self._prev_out)
+        prev_dev = self._prev_dev(center, sigma)
+        lone, out_last = lone_outliers(dev, s.spike_sigma, prev_sign=self._prev_out, prev_dev=prev_dev)
         osign = (np.sign(dev) * (np.abs(dev) > s.spike_sigma)).astype(np.int8)
         # An outlier whose predecessor did not deviate the same way was kept on
         # the word of its successor: it was settled when that one came in.
-        before = np.concatenate((np.array([self._prev_out], dtype=np.int8), osign[:-1]))
+        backed = backed_by_prev(dev, s.spike_sigma, self._prev_out, prev_dev)
         after = np.minimum(np.arange(1, t.shape[0] + 1), t.shape[0] - 1)
-        settled = np.where((osign != 0) & (before != osign), t[after], t)
+        settled = np.where((osign != 0) & ~backed, t[after], t)
         keep = ~lone
         held = False
         if out_last:
@@ -1228,6 +1231,21 @@ class StreamEngine:
             self._pending = (float(t[-1]), float(x[-1]))
         spikes = [Rejection(int(idx[j]), "spike", float(t[j])) for j in np.flatnonzero(lone)]
         return t[kept], x[kept], spikes, n_in, osign[kept], settled[kept]
+
+    def _young_prev(self) -> float | None:
+        """The sample before the next one the young loop judges: one held for the spike
+        check, else the window's last (None: none)."""
+        if self._pending is not None:
+            return self._pending[1]
+        w = self._window
+        return w.at(len(w) - 1)[1] if len(w) else None
+
+    def _prev_dev(self, center: float, scale: float) -> float:
+        """The deviation, on the band's centre and scale, of the sample before the next
+        one judged for spikes: the last one the window holds (the last consumed: a
+        batch never ends on a lone spike, a trailing outlier is held), 0 with none."""
+        w = self._window
+        return (w.at(len(w) - 1)[1] - center) / scale if len(w) else 0.0
 
     def _split_spikes_sparse(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], center: float,
                              sigma: float, limit: int, n_in: int, held_before: bool
@@ -1257,13 +1275,17 @@ class StreamEngine:
                 sign[i] = 1.0 if v > 0 else -1.0
                 devs[i] = v
         prev = self._prev_out
+        prev_dev = self._prev_dev(center, sigma)
         lone: list[int] = []
         late: list[int] = []  # outliers settled by the sample after them
         for i, sg in sign.items():
             same_prev = sign.get(i - 1) == sg if i > 0 else (prev != 0 and sg == prev)
+            if not same_prev:  # (backed_by_prev: the sample before beyond the share of this one)
+                pd = float(d[i - 1]) / sigma if i > 0 else prev_dev
+                same_prev = pd * sg > min(k, SPIKE_CONFIRM_SHARE * abs(devs[i]))
             if not same_prev and not (i + 1 < n and spike_confirmed(float(d[i + 1]) / sigma, devs[i], k)):
                 lone.append(i)
-            if (sign.get(i - 1, 0.0) if i > 0 else float(prev)) != sg:
+            if not same_prev:
                 late.append(i)
         held = bool(lone) and lone[-1] == n - 1
         removed = lone.copy()  # the samples not kept: the lone spikes and a held one
@@ -1347,6 +1369,7 @@ class StreamEngine:
         clip = s.clip_sigma if b is None else b.clip
         kept = 0
         pend_pos = -1  # batch position of the held sample (-1: held from an earlier batch)
+        pv = self._young_prev()  # the sample before this one (None: none)
         for i, (tv, xv) in enumerate(zip(t.tolist(), x.tolist())):
             if kept >= limit:
                 return i
@@ -1358,11 +1381,15 @@ class StreamEngine:
             # the spread is estimated, for that too: the predictive t beyond the t value
             # with spike_sigma's normal tail (young_spike_limit).
             scale, band = 1.0, s.spike_sigma
+            back = False  # the sample before deviates the same way (backed_by_prev)
             if judged:
                 scale = spread * math.sqrt(1.0 + ys.vm)
                 band = young_spike_limit(s.spike_sigma, b is None and ys.sigma is None, ys.df)
                 dev = (xv - ys.mean) / scale
                 out = 1 if dev > band else (-1 if dev < -band else 0)
+                if out != 0 and pv is not None:
+                    back = (pv - ys.mean) / scale * out > min(band, SPIKE_CONFIRM_SHARE * abs(dev))
+            pv = xv
             if self._pending is not None:
                 pt, px = self._pending
                 self._pending = None
@@ -1380,7 +1407,7 @@ class StreamEngine:
                 else:
                     result.rejected.append(Rejection(pend_pos, "spike", pt))
                     self._prev_out = 0
-            if out != 0 and out != self._prev_out:
+            if out != 0 and out != self._prev_out and not back:
                 self._pending = (tv, xv)
                 pend_pos = int(idx[i])
                 continue
@@ -1529,6 +1556,7 @@ class StreamEngine:
         total = int(t.shape[0])
         # The batch is turned into floats a piece at a time: the first warm-up takes a
         # few hundred samples of a batch of thousands.
+        pv = self._young_prev()  # the sample before this one (None: none)
         at = end = 0
         xs: list[float] = []
         ts: list[float] = []
@@ -1559,6 +1587,7 @@ class StreamEngine:
             judged = spread > 0 and n >= min_unknown
             dev = 0.0
             scale, band = 1.0, spike
+            back = False
             if judged:
                 scale = spread * sqrt(1.0 + yvm)
                 dev = (xv - ymean) / scale
@@ -1567,6 +1596,9 @@ class StreamEngine:
                     if known is None and no_base:
                         band = young_spike_limit(spike, True, ydf)
                     out = 1 if dev > band else (-1 if dev < -band else 0)
+                    if out != 0 and pv is not None:
+                        back = (pv - ymean) / scale * out > min(band, SPIKE_CONFIRM_SHARE * abs(dev))
+            pv = xv
             if self._pending is not None:
                 # A spike held from the sample before: the reference's own steps.
                 _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
@@ -1600,7 +1632,7 @@ class StreamEngine:
                 else:
                     result.rejected.append(Rejection(pend_pos, "spike", pt))
                     self._prev_out = 0
-            if out != 0 and out != self._prev_out:
+            if out != 0 and out != self._prev_out and not back:
                 self._pending = (tv, xv)
                 pend_pos = int(idx[i])
                 continue
@@ -2911,16 +2943,43 @@ def spike_confirmed(dev_next: float, dev_out: float, limit: float) -> bool:
     return (dev_next if dev_out > 0 else -dev_next) > min(limit, SPIKE_CONFIRM_SHARE * abs(dev_out))
 
 
-def lone_outliers(dev: FloatArray, limit: float, prev_sign: int = 0) -> tuple[NDArray[np.bool_], bool]:
+def backed_by_prev(dev: FloatArray, limit: float, prev_sign: int = 0, prev_dev: float = 0.0
+                   ) -> NDArray[np.bool_]:
+    """The outliers among standardised deviations (beyond ``limit``) whose predecessor
+    deviates the same way beyond ``limit`` or beyond SPIKE_CONFIRM_SHARE of the outlier's
+    own deviation (:func:`spike_confirmed`, the same rule looking back): such an outlier
+    is a step's second (or later) sample, never a lone spike.  ``prev_sign`` is the
+    direction in which the sample before the first one was an outlier (0 if it was not),
+    ``prev_dev`` that sample's deviation on the same scale (0 if there was none).
+
+    >>> backed_by_prev(np.array([4.86, 5.73, 2.84]), 5.0).tolist()
+    [False, True, False]
+    >>> backed_by_prev(np.array([5.73, 2.84]), 5.0, prev_dev=4.86).tolist()
+    [True, False]
+    """
+    out = np.abs(dev) > limit
+    back = np.zeros_like(out)
+    if not out.any():
+        return back
+    sign = np.sign(dev)
+    thr = np.minimum(limit, SPIKE_CONFIRM_SHARE * np.abs(dev))
+    back[1:] = out[1:] & (dev[:-1] * sign[1:] > thr[1:])
+    back[0] = bool(out[0]) and (sign[0] == prev_sign or bool(prev_dev * sign[0] > thr[0]))
+    return back
+
+
+def lone_outliers(dev: FloatArray, limit: float, prev_sign: int = 0, prev_dev: float = 0.0
+                  ) -> tuple[NDArray[np.bool_], bool]:
     """Flag lone outliers among standardised deviations.
 
-    A deviation beyond ``limit`` is a lone outlier unless the sample before it
-    deviates beyond ``limit`` in the same direction, or the sample after it deviates
-    the same way beyond ``limit`` or beyond half of the outlier's own deviation
-    (:func:`spike_confirmed`: the start of a step).  Returns the
+    A deviation beyond ``limit`` is a lone outlier unless a neighbour deviates the
+    same way beyond ``limit`` or beyond half of the outlier's own deviation: the
+    sample after it (:func:`spike_confirmed`: the start of a step) or the sample
+    before it (:func:`backed_by_prev`).  Returns the
     mask and whether the last sample is an outlier whose next neighbour is not
     yet known (the caller may hold it).  ``prev_sign`` is the direction in
-    which the sample before the first one was an outlier (0 if it was not).
+    which the sample before the first one was an outlier (0 if it was not),
+    ``prev_dev`` its deviation (0 if there was none).
 
     Examples
     --------
@@ -2929,15 +2988,14 @@ def lone_outliers(dev: FloatArray, limit: float, prev_sign: int = 0) -> tuple[ND
     ([False, True, False, False, False, False, True], True)
     >>> lone_outliers(np.array([0.1, -5.3, -3.3, -4.1]), 5.0)[0].tolist()  # a step's first sample
     [False, False, False, False]
+    >>> lone_outliers(np.array([0.1, 4.86, 5.73, 2.84]), 5.0)[0].tolist()  # and its second
+    [False, False, False, False]
     """
     out = np.abs(dev) > limit
     if not out.any():
         return out, False
     sign = np.sign(dev)
-    same_prev = np.zeros_like(out)
-    same_prev[1:] = out[1:] & out[:-1] & (sign[1:] == sign[:-1])
-    if prev_sign:
-        same_prev[0] = bool(out[0]) and sign[0] == prev_sign
+    same_prev = backed_by_prev(dev, limit, prev_sign, prev_dev)
     same_next = np.zeros_like(out)
     # The next sample confirms an outlier when it deviates the same way beyond the
     # band, or beyond half the outlier's own deviation (SPIKE_CONFIRM_SHARE).
