@@ -241,10 +241,23 @@ class CpuMeter:
 
 def thread_names(pid: int) -> dict[int, str]:
     """Thread id to Python thread name in process ``pid``, from ``py-spy dump`` when py-spy is
-    installed beside this Python or on PATH (empty otherwise: the threads are then shown by id)."""
+    installed beside this Python or on PATH; otherwise the names the daemon gives its threads
+    in the operating system (``/proc/<pid>/task/<tid>/comm``, cut to 15 bytes: e.g.
+    ``metrics-render``, ``shiftwatch-nats``, ``paho-mqtt-clien``; since 2026-12-05, see
+    ``daemon.name_os_threads``).  A thread that still has the process's name is shown by id."""
     spy = py_spy()
     if spy is None:
-        return {}
+        task = Path(f"/proc/{pid}/task")
+        names: dict[int, str] = {}
+        try:
+            process_name = (task / str(pid) / "comm").read_text().strip()
+            for t in task.iterdir():
+                name = (t / "comm").read_text().strip()
+                if int(t.name) != pid and name != process_name:
+                    names[int(t.name)] = name
+        except OSError:  # the process or a thread gone meanwhile
+            pass
+        return names
     try:
         out = subprocess.run([spy, "dump", "--pid", str(pid)], capture_output=True, text=True,
                              timeout=30, check=False).stdout
