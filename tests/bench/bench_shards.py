@@ -29,12 +29,14 @@ new`` measures each stream's first samples, warm-up included (the figures before
 
 Where the CPU goes: over each measured interval (the cluster storing a backlog,
 the bare subscribers taking it, the shards taking it) the CPU time (user +
-system, psutil from /proc) of each shard, of each nats-server and of this
-process (the publisher, the bare subscribers, the /metrics poller), and the
+system) of each shard (its threads' run times in nanoseconds, /proc/<pid>/task/*/schedstat),
+of each nats-server and of this process (the publisher, the bare subscribers, the
+/metrics poller; psutil from /proc, in ticks of 10 ms), and the
 machine's busy time from /proc/stat, whose rest is other work sharing the
 machine.  Reported: samples per CPU-second of the shard process itself (and
 without its two /metrics threads, which serve the poller), the shard's CPU by
-thread (names from ``py-spy dump`` when py-spy is installed), how the shard's
+thread (names from ``py-spy dump`` when py-spy is installed, else the names the
+daemon gives its threads in /proc), how the shard's
 main thread spent the interval (on a core, runnable but waiting for a core,
 asleep: the kernel's schedstat), the NATS servers' CPU-seconds per million
 samples, each one's share of the machine's cores, and the load average.
