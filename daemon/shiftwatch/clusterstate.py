@@ -7,7 +7,8 @@ The same two parts as the local state directory, with the same guarantee
   stream, ``<name>.journal.<key>`` (``key`` is a hash of the stream's name, so
   any name fits a subject).  After each round, every stream's samples of the
   round are one message on its subject, in the local journal's encoding
-  (``journal.encode_groups``); the round's MQTT messages are acknowledged only
+  (``journal.encode_groups`` of the one group, made by ``journal.encode_group``); the
+  round's MQTT messages are acknowledged only
   after the cluster has acknowledged all of them (stored on a majority of the
   replicas).  Each publish carries JetStream's
   ``Nats-Expected-Last-Subject-Sequence`` header with the last sequence this
@@ -62,6 +63,7 @@ from __future__ import annotations
 
 import asyncio
 import base64
+import functools
 import hashlib
 import json
 import logging
@@ -70,7 +72,7 @@ from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
-from shiftwatch.journal import JournalGroup, decode_groups, encode_groups
+from shiftwatch.journal import JournalGroup, decode_groups, encode_group
 from shiftwatch.natsio import ClusterError, NatsIO, SequenceConflict
 from shiftwatch.partition import Remap
 from shiftwatch.statestore import decode_state, encode_state
@@ -95,8 +97,10 @@ JOURNAL_MAX_AGE = 7 * 86400.0
 MAPPING_KEY = "mapping"
 
 
+@functools.lru_cache(maxsize=16384)
 def stream_key(name: str) -> str:
-    """The stream's key in the bucket and its journal subject's last token.
+    """The stream's key in the bucket and its journal subject's last token (kept for the
+    streams seen last: each round names every stream's subject again).
 
     >>> k = stream_key("brackenfield/line2/filler/3/fill")
     >>> k[0], len(k)
@@ -388,7 +392,7 @@ class ClusterState:
 
     async def _park_one(self, g: JournalGroup) -> bool:
         """Park one group; whether the cluster stored it anew (not a duplicate)."""
-        body = encode_groups([g])
+        body = encode_group(g)
         digest = hashlib.sha256(self.writer.encode() + body).hexdigest()[:32]
         _seq, new = await self.io.publish_once(self.parked_subject(g.stream), body,
                                                headers={WRITER: self.writer, WRITTEN: f"{time.time():.3f}",
@@ -577,7 +581,7 @@ class JournalRound:
         self._error: BaseException | None = None
 
     def add(self, g: JournalGroup) -> None:
-        self._buf.append((g, encode_groups([g]), self.cs.seq.get(g.stream, 0)))
+        self._buf.append((g, encode_group(g), self.cs.seq.get(g.stream, 0)))
         self._n += 1
         if len(self._buf) >= self.CHUNK:
             self._send()

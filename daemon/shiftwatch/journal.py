@@ -32,6 +32,7 @@ or damaged record ends the journal; what follows it is never read.
 
 from __future__ import annotations
 
+import functools
 import json
 import logging
 import os
@@ -113,6 +114,26 @@ def _round_parts(groups: Iterable[JournalGroup], singles: JournalSingles | None 
                      .astype("<f8").data.cast("B"))
     parts[0] = json.dumps(index, ensure_ascii=False).encode("utf-8") + b"\n"
     return parts
+
+
+@functools.lru_cache(maxsize=16384)
+def _index_line(stream: str, unit: str | None, topic_filter: str | None) -> tuple[bytes, bytes]:
+    """The index line of a round of one group, less its sample count: the bytes before and
+    after the count.  ``json.dumps`` of the line is most of a group's encoding otherwise, and
+    a stream's name, unit and filter stay the same round after round."""
+    def text(x: str | None) -> str:
+        return json.dumps(x, ensure_ascii=False)
+
+    return (f"[[{text(stream)}, {text(unit)}, ".encode(), f", {text(topic_filter)}]]\n".encode())
+
+
+def encode_group(g: JournalGroup) -> bytes:
+    """``encode_groups([g])``, the same bytes, for one group (a cluster journal message): the
+    index line from its cached parts and the sample count, then the group's times, values
+    and arrival times as little-endian float64 (tests/daemon/test_journal_group_encoding.py)."""
+    head, tail = _index_line(g.stream, g.unit, g.topic_filter)
+    return b"".join((head, b"%d" % int(g.times.shape[0]), tail,
+                     np.concatenate((g.times, g.values, g.arrived), dtype="<f8").data))
 
 
 def _round_record(groups: Sequence[JournalGroup], singles: JournalSingles | None = None) -> list[bytes | memoryview]:

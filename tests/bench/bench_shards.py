@@ -29,12 +29,14 @@ new`` measures each stream's first samples, warm-up included (the figures before
 
 Where the CPU goes: over each measured interval (the cluster storing a backlog,
 the bare subscribers taking it, the shards taking it) the CPU time (user +
-system, psutil from /proc) of each shard, of each nats-server and of this
-process (the publisher, the bare subscribers, the /metrics poller), and the
+system) of each shard (its threads' run times in nanoseconds, /proc/<pid>/task/*/schedstat),
+of each nats-server and of this process (the publisher, the bare subscribers, the
+/metrics poller; psutil from /proc, in ticks of 10 ms), and the
 machine's busy time from /proc/stat, whose rest is other work sharing the
 machine.  Reported: samples per CPU-second of the shard process itself (and
 without its two /metrics threads, which serve the poller), the shard's CPU by
-thread (names from ``py-spy dump`` when py-spy is installed), how the shard's
+thread (names from ``py-spy dump`` when py-spy is installed, else the names the
+daemon gives its threads in /proc), how the shard's
 main thread spent the interval (on a core, runnable but waiting for a core,
 asleep: the kernel's schedstat), the NATS servers' CPU-seconds per million
 samples, each one's share of the machine's cores, and the load average.
@@ -185,13 +187,22 @@ class CpuSpent:
 class CpuMeter:
     """Reads the CPU time of named groups of processes from the kernel (psutil, from
     /proc/<pid>/stat), of each thread of the processes in ``threads`` (the shards, from
-    /proc/<pid>/task), and the machine's from /proc/stat.  A process that has ended
-    counts as what it had spent at the last reading."""
+    /proc/<pid>/task/<tid>/schedstat), and the machine's from /proc/stat.  A process that
+    has ended counts as what it had spent at the last reading.
+
+    A group made only of processes in ``threads`` (the shards) counts the sum of their
+    threads' time on a core, in nanoseconds (the kernel's ``sum_exec_runtime``, user and
+    system time together); /proc/<pid>/stat counts in ticks of 10 ms, and a repeat's
+    shard spends about half a second, so the ticks alone moved a repeat's figure by up
+    to 4% and a small thread's by a whole tick, 0.027 microseconds a sample (since
+    2026-12-05; before, both came from the ticks)."""
 
     def __init__(self, groups: dict[str, list[int]], threads: list[int] | None = None) -> None:
         self.procs = {name: [psutil.Process(pid) for pid in pids] for name, pids in groups.items()}
         self.threaded = [psutil.Process(pid) for pid in threads or []]
         self.mains = list(threads or [])
+        self.by_threads = {name: list(pids) for name, pids in groups.items() if pids and set(pids) <= set(self.mains)}
+        self._of: dict[int, int] = {}  # thread id -> its process
         self._last: dict[int, float] = {}
         self._last_threads: dict[int, float] = {}
         self._last_sched: dict[int, tuple[float, float]] = {}
@@ -206,11 +217,17 @@ class CpuMeter:
 
     def _threads(self) -> dict[int, float]:
         for p in self.threaded:
+            task = Path(f"/proc/{p.pid}/task")
             try:
-                for th in p.threads():
-                    self._last_threads[th.id] = th.user_time + th.system_time
-            except psutil.NoSuchProcess:
-                pass
+                tids = [int(t.name) for t in task.iterdir()]
+            except OSError:  # the process has ended
+                continue
+            for tid in tids:
+                try:
+                    self._last_threads[tid] = int((task / str(tid) / "schedstat").read_text().split()[0]) / 1e9
+                    self._of[tid] = p.pid
+                except (OSError, IndexError, ValueError):  # the thread has ended
+                    pass
         return dict(self._last_threads)
 
     def _sched(self) -> tuple[float, float]:
@@ -230,8 +247,11 @@ class CpuMeter:
     def read(self) -> CpuReading:
         m = psutil.cpu_times()
         busy = m.user + m.nice + m.system + m.irq + m.softirq + m.steal  # guest time is in user
-        return CpuReading(time.monotonic(), {k: sum(self._cpu(p) for p in ps) for k, ps in self.procs.items()},
-                          self._threads(), *self._sched(), busy, os.getloadavg()[0])
+        threads = self._threads()
+        groups = {k: sum(self._cpu(p) for p in ps) for k, ps in self.procs.items()}
+        for k, pids in self.by_threads.items():
+            groups[k] = sum(c for tid, c in threads.items() if self._of.get(tid) in pids)
+        return CpuReading(time.monotonic(), groups, threads, *self._sched(), busy, os.getloadavg()[0])
 
     def spent(self, a: CpuReading, b: CpuReading, samples: float) -> CpuSpent:
         return CpuSpent(b.at - a.at, samples, {k: b.groups[k] - a.groups[k] for k in a.groups},
@@ -241,10 +261,23 @@ class CpuMeter:
 
 def thread_names(pid: int) -> dict[int, str]:
     """Thread id to Python thread name in process ``pid``, from ``py-spy dump`` when py-spy is
-    installed beside this Python or on PATH (empty otherwise: the threads are then shown by id)."""
+    installed beside this Python or on PATH; otherwise the names the daemon gives its threads
+    in the operating system (``/proc/<pid>/task/<tid>/comm``, cut to 15 bytes: e.g.
+    ``metrics-render``, ``shiftwatch-nats``, ``paho-mqtt-clien``; since 2026-12-05, see
+    ``daemon.name_os_threads``).  A thread that still has the process's name is shown by id."""
     spy = py_spy()
     if spy is None:
-        return {}
+        task = Path(f"/proc/{pid}/task")
+        names: dict[int, str] = {}
+        try:
+            process_name = (task / str(pid) / "comm").read_text().strip()
+            for t in task.iterdir():
+                name = (t / "comm").read_text().strip()
+                if int(t.name) != pid and name != process_name:
+                    names[int(t.name)] = name
+        except OSError:  # the process or a thread gone meanwhile
+            pass
+        return names
     try:
         out = subprocess.run([spy, "dump", "--pid", str(pid)], capture_output=True, text=True,
                              timeout=30, check=False).stdout

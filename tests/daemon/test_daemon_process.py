@@ -50,6 +50,34 @@ def test_systemd_notification_ready_watchdog_stopping(daemon_factory, tmp_path: 
     assert d.stop() == 0
 
 
+def test_the_daemon_s_threads_carry_their_names_in_the_operating_system(daemon_factory) -> None:
+    """Once started, every thread of a real daemon process but the main one shows its
+    Python name (cut to Linux's 15 bytes, a fact of the kernel's ``comm``: common practice)
+    in ``/proc/<pid>/task/<tid>/comm``, where ``top -H`` and the shard benchmark read it;
+    the main thread keeps the process's name.  Before 2026-12-05 each showed the
+    process's name only."""
+    d = daemon_factory("  - topic: a/+\n    format: number\n").start()
+    assert d.proc is not None
+    task = Path(f"/proc/{d.proc.pid}/task")
+    process_name = (task / str(d.proc.pid) / "comm").read_text().strip()
+
+    def names() -> set[str]:
+        out = set()
+        for t in task.iterdir():
+            try:
+                out.add((t / "comm").read_text().strip())
+            except OSError:  # (a thread gone meanwhile)
+                pass
+        return out
+
+    want = {"metrics-render", "metrics-http", "shiftwatch-outb", "paho-mqtt-clien"}
+    assert wait_until(lambda: want <= names(), 15), names()
+    assert (task / str(d.proc.pid) / "comm").read_text().strip() == process_name
+    assert not process_name.startswith(("metrics", "shiftwatch-", "paho"))
+    d.signal(signal.SIGTERM)
+    assert d.stop() == 0
+
+
 def test_reload_keeps_streams_that_stay(daemon_factory, publisher) -> None:
     d = daemon_factory("  - topic: line/a/+\n    format: number\n  - topic: line/b/+\n    format: number\n").start()
     for i in range(300):

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import asyncio
 import logging
+import re
 import signal
 import subprocess
 from pathlib import Path
@@ -491,3 +492,80 @@ def test_a_round_whose_cluster_stops_half_way_is_taken_once_when_written_again(
         assert [g.times.tolist() for g in loaded[name].groups] == [_group(i).times.tolist(),
                                                                    _group(i, t0=10.0).times.tolist()]
         assert cs.seq[name] == reader.seq[name]
+
+
+def test_a_batch_sent_in_one_write_stores_what_publish_stores(cluster: ClusterState) -> None:
+    """``publish_batch`` hands a batch to nats-py's buffer as one write of HPUB frames made
+    by ``natsio._hpub`` (since 2026-12-05; before, nats-py's ``publish`` per message).  The
+    reference is nats-py's own ``publish`` (the NATS protocol's encoding as the client
+    library writes it): for the same messages, reply subjects and headers it writes the
+    very bytes of that one write, and the server stores the same bodies and headers.  A
+    batch whose headers ``publish`` would rewrite (a value with a line break: nats-py
+    turns it into a space) goes out through ``publish`` itself, one write a message."""
+    from shiftwatch.journal import encode_group
+    from shiftwatch.natsio import _publish_headers
+
+    io = cluster.io
+    nc = io._nc
+    real = nc._send_command
+    sent: list[bytes] = []
+
+    async def spy(cmd: bytes, priority: bool = False) -> None:
+        sent.append(bytes(cmd))
+        await real(cmd, priority)
+
+    headers = {"Shiftwatch-Writer": "w1", "Shiftwatch-Written": "1790000000.125", "Shiftwatch-Shard": "2"}
+    a, b = cluster.subject("plant/wa/v"), cluster.subject("plant/wb/\u00e9t\u00e9")
+    t = 1.79e9 + np.arange(260.0)
+    body_a = encode_group(JournalGroup("plant/wa/v", None, t, np.sin(t), t, "plant/+/v"))
+    body_b = encode_group(JournalGroup("plant/wb/\u00e9t\u00e9", "°C", t[:3], t[:3] * 0.5, t[:3], None))
+    items: list[tuple[str, bytes, int | None]] = [(a, body_a, 0), (b, body_b, 0), (a, b"second", None)]
+    nc._send_command = spy
+    try:
+        got = io.run(io.publish_batch(items, headers))
+    finally:
+        nc._send_command = real
+    assert all(isinstance(x, int) for x in got)
+    (blob,) = [cmd for cmd in sent if not cmd.startswith(b"SUB ")]  # one write for the batch (and the
+    # reply subscription's SUB, made at the first batch)
+    replies = re.findall(rb"HPUB \S+ (\S+) ", blob)
+    assert len(replies) == 3
+
+    # nats-py's publish of the same messages to the same reply subjects, captured, not sent.
+    ref: list[bytes] = []
+
+    async def capture(cmd: bytes, priority: bool = False) -> None:
+        ref.append(bytes(cmd))
+
+    async def reference() -> None:
+        for (subject, payload, last), reply in zip(items, replies):
+            await nc.publish(subject, payload, reply=reply.decode(), headers=_publish_headers(headers, last))
+
+    nc._send_command = capture
+    try:
+        io.run(reference())
+    finally:
+        nc._send_command = real
+    assert b"".join(ref) == blob
+
+    # Stored alike: the same messages through publish (a request each) on other subjects.
+    a2, b2 = cluster.subject("plant/ra2/v"), cluster.subject("plant/rb2/v")
+    for subject, payload, last in [(a2, body_a, 0), (b2, body_b, 0), (a2, b"second", None)]:
+        io.run(io.publish(subject, payload, expect_last=last, headers=headers))
+    assert _read_back(cluster, a) == _read_back(cluster, a2)
+    assert _read_back(cluster, b) == _read_back(cluster, b2)
+    assert [body for body, _ in _read_back(cluster, a)] == [body_a, b"second"]
+
+    # Headers publish would rewrite: through publish, one write a message, stored as it stores them.
+    odd = {"Shiftwatch-Writer": "w1\nx", "Shiftwatch-Written": "1790000000.125"}
+    c, c2 = cluster.subject("plant/wc/v"), cluster.subject("plant/rc/v")
+    sent.clear()
+    nc._send_command = spy
+    try:
+        (seq,) = io.run(io.publish_batch([(c, b"odd", 0)], odd))
+    finally:
+        nc._send_command = real
+    assert isinstance(seq, int) and [cmd for cmd in sent if not cmd.startswith(b"SUB ")] == sent
+    assert len(sent) == 1 and b"w1 x" in sent[0]
+    io.run(io.publish(c2, b"odd", expect_last=0, headers=odd))
+    assert _read_back(cluster, c) == _read_back(cluster, c2)
