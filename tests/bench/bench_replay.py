@@ -6,6 +6,13 @@ Usage, from the repository root with the package installed (``.[test]``)::
     python tests/bench/bench_replay.py --quick    # 2.4 million and 12 million rows
     python tests/bench/bench_replay.py --repeat 5 # more runs per figure (medians count)
     python tests/bench/bench_replay.py --part jobs --repeat 5   # target 3 alone (a minute)
+    python tests/bench/bench_replay.py --part parquet --repeat 5  # target 4 alone, with its bound
+    python tests/bench/bench_replay.py --part jobs --against /tmp/base   # paired with another checkout
+
+``--against DIR`` (with ``--part jobs`` or ``--part parquet``) runs every figure of the part
+for this checkout and for the one at DIR (its ``daemon/`` first on ``PYTHONPATH``), in
+rounds that alternate which checkout goes first, and prints both sides' figures and the
+ratio of each round's pair: on the shared machine two codes are compared only so.
 
 The files are written under /tmp at run time and deleted afterwards: 200
 streams of the invented Brackenfield plant at one sample a second (noise,
@@ -146,21 +153,32 @@ def write_parquet(path: Path, seconds: int, texts: list[list[str]], row_group_si
     return seconds * STREAMS
 
 
-def compile_package() -> None:
-    """Write the package's bytecode, as an installed package has it (see the module docstring)."""
+def compile_package(root: Path | None = None) -> None:
+    """Write the package's bytecode, as an installed package has it (see the module docstring):
+    this one's, or that of the checkout at ``root``."""
     import compileall
 
     import shiftwatch
 
-    compileall.compile_dir(str(Path(shiftwatch.__file__).parent), quiet=1)
+    where = Path(shiftwatch.__file__).parent if root is None else root / "daemon" / "shiftwatch"
+    compileall.compile_dir(str(where), quiet=1)
 
 
-def run(args: list[str], prelude: str = "") -> tuple[float, float, float]:
+def checkout_env(root: Path) -> dict[str, str]:
+    """The environment that runs the package of the checkout at ``root`` (``--against``)."""
+    if not (root / "daemon" / "shiftwatch" / "__init__.py").is_file():
+        raise SystemExit(f"bench_replay: --against {root}: no daemon/shiftwatch package there")
+    env = dict(os.environ)
+    env["PYTHONPATH"] = str(root / "daemon") + os.pathsep + env.get("PYTHONPATH", "")
+    return env
+
+
+def run(args: list[str], prelude: str = "", env: dict[str, str] | None = None) -> tuple[float, float, float]:
     """Wall seconds, peak RSS (MB) and CPU seconds (with its children's) of the command line in a
-    fresh process; ``prelude`` runs before it."""
+    fresh process; ``prelude`` runs before it; ``env``: another checkout's (``checkout_env``)."""
     t0 = time.perf_counter()
     res = subprocess.run([sys.executable, "-c", prelude + RUNNER, *args], capture_output=True, text=True,
-                         check=False)
+                         check=False, env=env)
     wall = time.perf_counter() - t0
     if res.returncode not in (0, 1):
         raise RuntimeError(f"replay exited {res.returncode}: {res.stderr[-800:]}")
@@ -168,8 +186,8 @@ def run(args: list[str], prelude: str = "") -> tuple[float, float, float]:
     return wall, int(line[1]) / 1024.0, float(line[2])
 
 
-def replay(path: Path, jobs: int, prelude: str = "") -> tuple[float, float, float]:
-    return run(["replay", "--jobs", str(jobs), "--out", os.devnull, str(path)], prelude)
+def replay(path: Path, jobs: int, prelude: str = "", env: dict[str, str] | None = None) -> tuple[float, float, float]:
+    return run(["replay", "--jobs", str(jobs), "--out", os.devnull, str(path)], prelude, env)
 
 
 def bare(path: Path, script: str = BARE_PARSE) -> tuple[float, float]:
@@ -190,12 +208,12 @@ def bare_pair(path: Path) -> float:
     return time.perf_counter() - t0
 
 
-def replay_pair(path: Path) -> float:
+def replay_pair(path: Path, env: dict[str, str] | None = None) -> float:
     """Wall seconds of two one-process replays of the file started together, until both have
     ended: what this machine gives two processes that share nothing (no rows handed over)."""
     t0 = time.perf_counter()
     procs = [subprocess.Popen([sys.executable, "-c", RUNNER, "replay", "--jobs", "1", "--out", os.devnull, str(path)],
-                              stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL) for _ in range(2)]
+                              stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env) for _ in range(2)]
     for p in procs:
         if p.wait() not in (0, 1):
             raise RuntimeError("the replay failed")
@@ -242,17 +260,124 @@ def jobs_only(repeat: int) -> int:
     return 0 if sp >= 1.7 else 1
 
 
+def _sides(other: Path | None) -> list[tuple[str, dict[str, str] | None]]:
+    """The checkouts a part measures: this one, and with ``--against`` the one at ``other``."""
+    return [("this", None)] + ([(f"against {other}", checkout_env(other))] if other is not None else [])
+
+
+def jobs_against(repeat: int, other: Path) -> int:
+    """Target 3 for this checkout and another, in rounds: each side's --jobs 1 and --jobs 2 (which
+    side, and which of the two, goes first alternating from round to round), the side-by-side
+    ceiling once a round, and the ratio of the two sides' --jobs 2 wall times."""
+    say = lambda msg: print(f"[{time.strftime('%H:%M:%S')}] {msg}", file=sys.stderr, flush=True)
+    sides = _sides(other)
+    with tempfile.TemporaryDirectory(prefix="shiftwatch-bench-replay-", dir="/tmp") as tmp:
+        long_csv = Path(tmp) / "long.csv"
+        n = write_long(long_csv, 12_000, value_texts())
+        compile_package()
+        compile_package(other)
+        got: dict[str, list[tuple[tuple[float, float, float], tuple[float, float, float]]]] = {
+            name: [] for name, _ in sides}
+        twins, loads = [], []
+        for i in range(repeat):
+            loads.append(os.getloadavg()[0])
+            for name, env in (sides if i % 2 == 0 else sides[::-1]):
+                if (i // 2) % 2 == 0:
+                    one, two = replay(long_csv, 1, env=env), replay(long_csv, 2, env=env)
+                else:
+                    two, one = replay(long_csv, 2, env=env), replay(long_csv, 1, env=env)
+                got[name].append((one, two))
+            twins.append(2 * got["this"][-1][0][0] / replay_pair(long_csv))
+            say(f"round {i + 1}: " + "; ".join(
+                f"{name}: --jobs 1 {got[name][-1][0][0]:.3f} s, --jobs 2 {got[name][-1][1][0]:.3f} s, "
+                f"speed-up {got[name][-1][0][0] / got[name][-1][1][0]:.2f}" for name, _ in sides)
+                + f"; two side by side {twins[-1]:.2f}, load {loads[-1]:.2f}")
+    print(f"long CSV, {n:,} rows, {repeat} rounds; load average before each "
+          f"{', '.join(f'{x:.2f}' for x in loads)}; two one-process replays side by side against one: "
+          f"{med(twins):.2f} ({', '.join(f'{x:.2f}' for x in twins)})")
+    for name, _ in sides:
+        rows = got[name]
+        pairs = [a[0] / b[0] for a, b in rows]
+        print(f"{name}: --jobs 1 wall {med([a[0] for a, _ in rows]):.3f} s ({spread([a[0] for a, _ in rows])}), "
+              f"--jobs 2 {med([b[0] for _, b in rows]):.3f} s ({spread([b[0] for _, b in rows])}); speed-up per "
+              f"round {', '.join(f'{x:.2f}' for x in pairs)}: median {med(pairs):.2f}; CPU of --jobs 2 "
+              f"{med([b[2] for _, b in rows]) / med([a[2] for a, _ in rows]):.2f} x one process's")
+    mine, theirs = got["this"], got[sides[1][0]]
+    ratios = [a[1][0] / b[1][0] for a, b in zip(mine, theirs)]
+    print(f"this --jobs 2 / against --jobs 2 (wall) per round {', '.join(f'{x:.3f}' for x in ratios)}: "
+          f"median {med(ratios):.3f}")
+    return 0 if med([a[0] / b[0] for a, b in mine]) >= 1.7 else 1
+
+
+def parquet_part(repeat: int, other: Path | None) -> int:
+    """Target 4 alone (CPU, one process): the long CSV and the Parquet file of the same rows, each
+    also with engines that do nothing (C and P), so the engines' CPU E and the bound the target
+    sets on them, (P + E) / (C + E) <= 0.5 only while E <= C - 2 P, are measured in the same
+    runs.  With ``other``, both checkouts in rounds that alternate which goes first."""
+    say = lambda msg: print(f"[{time.strftime('%H:%M:%S')}] {msg}", file=sys.stderr, flush=True)
+    sides = _sides(other)
+    kinds = (("csv", False), ("parquet", False), ("csv", True), ("parquet", True))
+    with tempfile.TemporaryDirectory(prefix="shiftwatch-bench-replay-", dir="/tmp") as tmp:
+        d = Path(tmp)
+        texts = value_texts()
+        files = {"csv": d / "long.csv", "parquet": d / "long.parquet"}
+        n = write_long(files["csv"], 12_000, texts)
+        write_parquet(files["parquet"], 12_000, texts)
+        compile_package()
+        if other is not None:
+            compile_package(other)
+        cpu: dict[tuple[str, str, bool], list[float]] = {}
+        loads = []
+        for i in range(repeat):
+            loads.append(os.getloadavg()[0])
+            for name, env in (sides if i % 2 == 0 else sides[::-1]):
+                for kind, null in (kinds if i % 2 == 0 else kinds[::-1]):
+                    cpu.setdefault((name, kind, null), []).append(
+                        replay(files[kind], 1, NULL_ENGINE if null else "", env)[2])
+            say(f"round {i + 1}: " + "; ".join(
+                f"{name}: Parquet / long CSV {cpu[name, 'parquet', False][-1] / cpu[name, 'csv', False][-1]:.2f}"
+                for name, _ in sides) + f", load {loads[-1]:.2f}")
+    print(f"{n:,} rows, {repeat} rounds, CPU seconds (user + system), one process; load average before each "
+          f"round {', '.join(f'{x:.2f}' for x in loads)}")
+    ok = False
+    for name, _ in sides:
+        c_all, p_all = cpu[name, "csv", False], cpu[name, "parquet", False]
+        c0, p0 = med(cpu[name, "csv", True]), med(cpu[name, "parquet", True])
+        per = [a / b for a, b in zip(p_all, c_all)]
+        e = med([a - b for a, b in zip(c_all, cpu[name, "csv", True])])
+        print(f"{name}: long CSV {med(c_all):.3f} s ({spread(c_all)}), Parquet {med(p_all):.3f} s "
+              f"({spread(p_all)}); ratio per round {', '.join(f'{x:.3f}' for x in per)}: median {med(per):.3f} "
+              f"<= 0.5 {'ok' if med(per) <= 0.5 else 'MISSED'}; engines that do nothing: long CSV C = {c0:.3f} s, "
+              f"Parquet P = {p0:.3f} s, so the engines E = {e:.3f} s and the target needs E <= C - 2 P = "
+              f"{c0 - 2 * p0:.3f} s")
+        if name == "this":
+            ok = med(per) <= 0.5
+    if other is not None:
+        for key, label in ((("csv", False), "long CSV"), (("parquet", False), "Parquet"),
+                           (("csv", True), "long CSV, engines that do nothing")):
+            r = [a / b for a, b in zip(cpu[("this", *key)], cpu[(sides[1][0], *key)])]
+            print(f"this / against, {label} (CPU) per round {', '.join(f'{x:.3f}' for x in r)}: median {med(r):.3f}")
+    return 0 if ok else 1
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="12 million rows instead of 50 million for memory")
     ap.add_argument("--repeat", type=int, default=3, help="runs per timed figure (default 3)")
-    ap.add_argument("--part", choices=("all", "jobs"), default="all",
+    ap.add_argument("--part", choices=("all", "jobs", "parquet"), default="all",
                     help="jobs: target 3 alone, --jobs 1 and --jobs 2 alternately (which goes first "
                          "alternating too), --repeat pairs, and two one-process replays side by side "
-                         "after each pair")
+                         "after each pair; parquet: target 4 alone, with engines that do nothing too")
+    ap.add_argument("--against", type=Path, metavar="DIR",
+                    help="another checkout (its daemon/ is put first on PYTHONPATH) measured in the same "
+                         "rounds, alternating, with --part jobs or --part parquet")
     opts = ap.parse_args()
+    if opts.against is not None and opts.part == "all":
+        ap.error("--against is for --part jobs or --part parquet")
     if opts.part == "jobs":
-        return jobs_only(opts.repeat)
+        return jobs_only(opts.repeat) if opts.against is None else jobs_against(opts.repeat, opts.against)
+    if opts.part == "parquet":
+        return parquet_part(opts.repeat, opts.against)
     small_s = 12_000  # 2.4 million rows
     big_s = 60_000 if opts.quick else 250_000
     rows: list[tuple[str, str, str, str, bool]] = []
