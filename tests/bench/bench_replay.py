@@ -6,6 +6,20 @@ Usage, from the repository root with the package installed (``.[test]``)::
     python tests/bench/bench_replay.py --quick    # 2.4 million and 12 million rows
     python tests/bench/bench_replay.py --repeat 5 # more runs per figure (medians count)
     python tests/bench/bench_replay.py --part jobs --repeat 5   # target 3 alone (a minute)
+    python tests/bench/bench_replay.py --part parquet --repeat 5  # target 4 alone, with its bound
+    python tests/bench/bench_replay.py --part jobs --against /tmp/base   # paired with another checkout
+    python tests/bench/bench_replay.py --part engines --repeat 5  # where the engines' time goes, in process
+
+``--part engines`` feeds the bench's history (the same values, times one second apart) to the
+engines in this process as replay feeds them, a call of 4,096 samples per stream (the last
+3,808), and prints the CPU time of the engine's parts (timers around its methods: a part's own
+time, without the parts it calls that are timed too), its watch stretches' cost fitted as a
+fixed cost per stretch plus a cost per sample, and how often the warm-up's level holds samples.
+
+``--against DIR`` (with ``--part jobs``, ``parquet`` or ``engines``) runs every figure of the part
+for this checkout and for the one at DIR (its ``daemon/`` first on ``PYTHONPATH``), in
+rounds that alternate which checkout goes first, and prints both sides' figures and the
+ratio of each round's pair: on the shared machine two codes are compared only so.
 
 The files are written under /tmp at run time and deleted afterwards: 200
 streams of the invented Brackenfield plant at one sample a second (noise,
@@ -54,6 +68,7 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import run_bench  # the bare parse this bench compares with, shared with run_bench.py
@@ -146,21 +161,32 @@ def write_parquet(path: Path, seconds: int, texts: list[list[str]], row_group_si
     return seconds * STREAMS
 
 
-def compile_package() -> None:
-    """Write the package's bytecode, as an installed package has it (see the module docstring)."""
+def compile_package(root: Path | None = None) -> None:
+    """Write the package's bytecode, as an installed package has it (see the module docstring):
+    this one's, or that of the checkout at ``root``."""
     import compileall
 
     import shiftwatch
 
-    compileall.compile_dir(str(Path(shiftwatch.__file__).parent), quiet=1)
+    where = Path(shiftwatch.__file__).parent if root is None else root / "daemon" / "shiftwatch"
+    compileall.compile_dir(str(where), quiet=1)
 
 
-def run(args: list[str], prelude: str = "") -> tuple[float, float, float]:
+def checkout_env(root: Path) -> dict[str, str]:
+    """The environment that runs the package of the checkout at ``root`` (``--against``)."""
+    if not (root / "daemon" / "shiftwatch" / "__init__.py").is_file():
+        raise SystemExit(f"bench_replay: --against {root}: no daemon/shiftwatch package there")
+    env = dict(os.environ)
+    env["PYTHONPATH"] = str(root / "daemon") + os.pathsep + env.get("PYTHONPATH", "")
+    return env
+
+
+def run(args: list[str], prelude: str = "", env: dict[str, str] | None = None) -> tuple[float, float, float]:
     """Wall seconds, peak RSS (MB) and CPU seconds (with its children's) of the command line in a
-    fresh process; ``prelude`` runs before it."""
+    fresh process; ``prelude`` runs before it; ``env``: another checkout's (``checkout_env``)."""
     t0 = time.perf_counter()
     res = subprocess.run([sys.executable, "-c", prelude + RUNNER, *args], capture_output=True, text=True,
-                         check=False)
+                         check=False, env=env)
     wall = time.perf_counter() - t0
     if res.returncode not in (0, 1):
         raise RuntimeError(f"replay exited {res.returncode}: {res.stderr[-800:]}")
@@ -168,8 +194,8 @@ def run(args: list[str], prelude: str = "") -> tuple[float, float, float]:
     return wall, int(line[1]) / 1024.0, float(line[2])
 
 
-def replay(path: Path, jobs: int, prelude: str = "") -> tuple[float, float, float]:
-    return run(["replay", "--jobs", str(jobs), "--out", os.devnull, str(path)], prelude)
+def replay(path: Path, jobs: int, prelude: str = "", env: dict[str, str] | None = None) -> tuple[float, float, float]:
+    return run(["replay", "--jobs", str(jobs), "--out", os.devnull, str(path)], prelude, env)
 
 
 def bare(path: Path, script: str = BARE_PARSE) -> tuple[float, float]:
@@ -190,12 +216,12 @@ def bare_pair(path: Path) -> float:
     return time.perf_counter() - t0
 
 
-def replay_pair(path: Path) -> float:
+def replay_pair(path: Path, env: dict[str, str] | None = None) -> float:
     """Wall seconds of two one-process replays of the file started together, until both have
     ended: what this machine gives two processes that share nothing (no rows handed over)."""
     t0 = time.perf_counter()
     procs = [subprocess.Popen([sys.executable, "-c", RUNNER, "replay", "--jobs", "1", "--out", os.devnull, str(path)],
-                              stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL) for _ in range(2)]
+                              stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env) for _ in range(2)]
     for p in procs:
         if p.wait() not in (0, 1):
             raise RuntimeError("the replay failed")
@@ -242,17 +268,298 @@ def jobs_only(repeat: int) -> int:
     return 0 if sp >= 1.7 else 1
 
 
+def _sides(other: Path | None) -> list[tuple[str, dict[str, str] | None]]:
+    """The checkouts a part measures: this one, and with ``--against`` the one at ``other``."""
+    return [("this", None)] + ([(f"against {other}", checkout_env(other))] if other is not None else [])
+
+
+def jobs_against(repeat: int, other: Path) -> int:
+    """Target 3 for this checkout and another, in rounds: each side's --jobs 1 and --jobs 2 (which
+    side, and which of the two, goes first alternating from round to round), the side-by-side
+    ceiling once a round, and the ratio of the two sides' --jobs 2 wall times."""
+    say = lambda msg: print(f"[{time.strftime('%H:%M:%S')}] {msg}", file=sys.stderr, flush=True)
+    sides = _sides(other)
+    with tempfile.TemporaryDirectory(prefix="shiftwatch-bench-replay-", dir="/tmp") as tmp:
+        long_csv = Path(tmp) / "long.csv"
+        n = write_long(long_csv, 12_000, value_texts())
+        compile_package()
+        compile_package(other)
+        got: dict[str, list[tuple[tuple[float, float, float], tuple[float, float, float]]]] = {
+            name: [] for name, _ in sides}
+        twins, loads = [], []
+        for i in range(repeat):
+            loads.append(os.getloadavg()[0])
+            for name, env in (sides if i % 2 == 0 else sides[::-1]):
+                if (i // 2) % 2 == 0:
+                    one, two = replay(long_csv, 1, env=env), replay(long_csv, 2, env=env)
+                else:
+                    two, one = replay(long_csv, 2, env=env), replay(long_csv, 1, env=env)
+                got[name].append((one, two))
+            twins.append(2 * got["this"][-1][0][0] / replay_pair(long_csv))
+            say(f"round {i + 1}: " + "; ".join(
+                f"{name}: --jobs 1 {got[name][-1][0][0]:.3f} s, --jobs 2 {got[name][-1][1][0]:.3f} s, "
+                f"speed-up {got[name][-1][0][0] / got[name][-1][1][0]:.2f}" for name, _ in sides)
+                + f"; two side by side {twins[-1]:.2f}, load {loads[-1]:.2f}")
+    print(f"long CSV, {n:,} rows, {repeat} rounds; load average before each "
+          f"{', '.join(f'{x:.2f}' for x in loads)}; two one-process replays side by side against one: "
+          f"{med(twins):.2f} ({', '.join(f'{x:.2f}' for x in twins)})")
+    for name, _ in sides:
+        rows = got[name]
+        pairs = [a[0] / b[0] for a, b in rows]
+        print(f"{name}: --jobs 1 wall {med([a[0] for a, _ in rows]):.3f} s ({spread([a[0] for a, _ in rows])}), "
+              f"--jobs 2 {med([b[0] for _, b in rows]):.3f} s ({spread([b[0] for _, b in rows])}); speed-up per "
+              f"round {', '.join(f'{x:.2f}' for x in pairs)}: median {med(pairs):.2f}; CPU of --jobs 2 "
+              f"{med([b[2] for _, b in rows]) / med([a[2] for a, _ in rows]):.2f} x one process's")
+    mine, theirs = got["this"], got[sides[1][0]]
+    ratios = [a[1][0] / b[1][0] for a, b in zip(mine, theirs)]
+    print(f"this --jobs 2 / against --jobs 2 (wall) per round {', '.join(f'{x:.3f}' for x in ratios)}: "
+          f"median {med(ratios):.3f}")
+    return 0 if med([a[0] / b[0] for a, b in mine]) >= 1.7 else 1
+
+
+def parquet_part(repeat: int, other: Path | None) -> int:
+    """Target 4 alone (CPU, one process): the long CSV and the Parquet file of the same rows, each
+    also with engines that do nothing (C and P), so the engines' CPU E and the bound the target
+    sets on them, (P + E) / (C + E) <= 0.5 only while E <= C - 2 P, are measured in the same
+    runs.  With ``other``, both checkouts in rounds that alternate which goes first."""
+    say = lambda msg: print(f"[{time.strftime('%H:%M:%S')}] {msg}", file=sys.stderr, flush=True)
+    sides = _sides(other)
+    kinds = (("csv", False), ("parquet", False), ("csv", True), ("parquet", True))
+    with tempfile.TemporaryDirectory(prefix="shiftwatch-bench-replay-", dir="/tmp") as tmp:
+        d = Path(tmp)
+        texts = value_texts()
+        files = {"csv": d / "long.csv", "parquet": d / "long.parquet"}
+        n = write_long(files["csv"], 12_000, texts)
+        write_parquet(files["parquet"], 12_000, texts)
+        compile_package()
+        if other is not None:
+            compile_package(other)
+        cpu: dict[tuple[str, str, bool], list[float]] = {}
+        loads = []
+        for i in range(repeat):
+            loads.append(os.getloadavg()[0])
+            for name, env in (sides if i % 2 == 0 else sides[::-1]):
+                for kind, null in (kinds if i % 2 == 0 else kinds[::-1]):
+                    cpu.setdefault((name, kind, null), []).append(
+                        replay(files[kind], 1, NULL_ENGINE if null else "", env)[2])
+            say(f"round {i + 1}: " + "; ".join(
+                f"{name}: Parquet / long CSV {cpu[name, 'parquet', False][-1] / cpu[name, 'csv', False][-1]:.2f}"
+                for name, _ in sides) + f", load {loads[-1]:.2f}")
+    print(f"{n:,} rows, {repeat} rounds, CPU seconds (user + system), one process; load average before each "
+          f"round {', '.join(f'{x:.2f}' for x in loads)}")
+    ok = False
+    for name, _ in sides:
+        c_all, p_all = cpu[name, "csv", False], cpu[name, "parquet", False]
+        c0, p0 = med(cpu[name, "csv", True]), med(cpu[name, "parquet", True])
+        per = [a / b for a, b in zip(p_all, c_all)]
+        e = med([a - b for a, b in zip(c_all, cpu[name, "csv", True])])
+        print(f"{name}: long CSV {med(c_all):.3f} s ({spread(c_all)}), Parquet {med(p_all):.3f} s "
+              f"({spread(p_all)}); ratio per round {', '.join(f'{x:.3f}' for x in per)}: median {med(per):.3f} "
+              f"<= 0.5 {'ok' if med(per) <= 0.5 else 'MISSED'}; engines that do nothing: long CSV C = {c0:.3f} s, "
+              f"Parquet P = {p0:.3f} s, so the engines E = {e:.3f} s and the target needs E <= C - 2 P = "
+              f"{c0 - 2 * p0:.3f} s")
+        if name == "this":
+            ok = med(per) <= 0.5
+    if other is not None:
+        for key, label in ((("csv", False), "long CSV"), (("parquet", False), "Parquet"),
+                           (("csv", True), "long CSV, engines that do nothing")):
+            r = [a / b for a, b in zip(cpu[("this", *key)], cpu[(sides[1][0], *key)])]
+            print(f"this / against, {label} (CPU) per round {', '.join(f'{x:.3f}' for x in r)}: median {med(r):.3f}")
+    return 0 if ok else 1
+
+
+# The engines alone, fed the bench's history in process (``--part engines``); with ``--against`` each
+# side in a fresh process of its own, which prints the CPU seconds of its feeding runs.
+ENGINE_FEED = """
+import os, sys, time
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+import numpy as np
+from shiftwatch.core.engine import StreamEngine
+sys.path.insert(0, sys.argv[1])
+import bench_replay as b
+values = np.array([[float(x) for x in row] for row in b.value_texts()])
+times = b.T0 + np.arange(b.PERIOD, dtype=np.float64)
+cols = [np.ascontiguousarray(values[:, k]) for k in range(b.STREAMS)]
+def feed():
+    engines = [StreamEngine(name) for name in b.NAMES]
+    c0 = time.process_time()
+    for a in range(0, b.PERIOD, 4096):
+        for k, eng in enumerate(engines):
+            eng.process(times[a:a + 4096], cols[k][a:a + 4096])
+    return time.process_time() - c0
+feed()
+print(" ".join(f"{feed():.4f}" for _ in range(int(sys.argv[2]))))
+"""
+
+
+def engine_parts(repeat: int) -> None:
+    """The table of ``--part engines``: the engine's parts timed in this process."""
+    import collections
+    import functools
+
+    from shiftwatch.core import engine as eng_mod
+    from shiftwatch.core import multicusum
+
+    os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+    values = np.array([[float(x) for x in row] for row in value_texts()])
+    times = T0 + np.arange(PERIOD, dtype=np.float64)
+    cols = [np.ascontiguousarray(values[:, k]) for k in range(STREAMS)]
+    own: collections.Counter[str] = collections.Counter()
+    calls: collections.Counter[str] = collections.Counter()
+    inner: list[float] = []
+    stretches: list[tuple[int, float]] = []
+    clock = time.process_time
+    se = eng_mod.StreamEngine
+    parts = [(se, "process", "process: screening, the loop over phases, tallies"),
+             (se, "_warm", "first warm-up's end: robust baseline, step fit, lone outliers"),
+             (se, "_young_loop", "young level, sample by sample (first warm-up, after a step)"),
+             (se, "_flush_splits", "young level's split screens, weighed together"),
+             (se, "_young_event", "young level's events"),
+             (se, "_watch", "watch stretch: the rest"),
+             (se, "_split_spikes", "watch stretch: spike split"),
+             (se, "_follow_plan", "watch stretch: follower's path"),
+             (multicusum.MultiCusumTest, "update", "watch stretch: CUSUM bank"),
+             (se, "_append", "watch stretch: window and baseline sums"),
+             (se, "_refine", "refinement of the baseline"),
+             (se, "_design_test", "refinement: the test designed again"),
+             (se, "_track", "open event: tracking"),
+             (se, "_open_event", "event opened"),
+             (se, "_decide", "event decided")]
+
+    def timed(f: Any, label: str) -> Any:
+        @functools.wraps(f)
+        def g(*a: Any, **k: Any) -> Any:
+            t0 = clock()
+            inner.append(0.0)
+            try:
+                return f(*a, **k)
+            finally:
+                dt = clock() - t0
+                own[label] += dt - inner.pop()
+                calls[label] += 1
+                if inner:
+                    inner[-1] += dt
+        return g
+
+    watch = se._watch
+
+    def watch_stretch(self: Any, t: Any, x: Any, idx: Any, result: Any, bounds: Any = None) -> int:
+        young = self._young is not None
+        t0 = clock()
+        used = watch(self, t, x, idx, result, bounds)
+        if not young:
+            stretches.append((used, clock() - t0))
+        return used
+
+    saved = [(o, name, getattr(o, name)) for o, name, _ in parts]
+    releases = [0, 0]
+    release = eng_mod.SelfStart.release
+
+    def counted_release(ys: Any) -> None:
+        if ys.held:
+            releases[0] += 1
+            releases[1] += len(ys.held)
+        release(ys)
+
+    try:
+        se._watch = watch_stretch  # type: ignore[method-assign]
+        for o, name, label in parts:
+            setattr(o, name, timed(getattr(o, name), label))
+        eng_mod.SelfStart.release = counted_release  # type: ignore[method-assign]
+        young_samples = [0]
+        loop = se._young_loop
+
+        def young_loop(self: Any, *a: Any) -> int:
+            used = loop(self, *a)
+            young_samples[0] += used
+            return int(used)
+
+        se._young_loop = young_loop  # type: ignore[method-assign]
+        totals = []
+        for r in range(repeat + 1):
+            if r == 1:  # the first run warms the caches (designs, critical values) and is not counted
+                own.clear()
+                calls.clear()
+                stretches.clear()
+                releases[:] = [0, 0]
+                young_samples[0] = 0
+            engines = [se(name) for name in NAMES]
+            c0 = clock()
+            for a in range(0, PERIOD, 4096):
+                for k, e in enumerate(engines):
+                    e.process(times[a:a + 4096], cols[k][a:a + 4096])
+            if r:
+                totals.append(clock() - c0)
+    finally:
+        eng_mod.SelfStart.release = release  # type: ignore[method-assign]
+        for o, name, f in saved:  # the methods as they were (the wrappers' wrappers too)
+            setattr(o, name, f)
+    timed_total = sum(own.values()) / repeat
+    print(f"engines fed the bench's history ({STREAMS} streams x {PERIOD:,} samples, calls of 4,096), in process, "
+          f"{repeat} runs after one uncounted: CPU {med(totals):.3f} s ({spread(totals)}) with the timers; "
+          f"the timed parts {timed_total:.3f} s a run")
+    w = max(len(label) for _, _, label in parts)
+    for label, v in own.most_common():
+        print(f"  {label.ljust(w)}  {v / repeat * 1000:7.1f} ms  {v / repeat / timed_total:6.1%}  "
+              f"{calls[label] // repeat:6d} calls")
+    a = np.array(stretches, dtype=np.float64)
+    fit = np.linalg.lstsq(np.column_stack([np.ones(a.shape[0]), a[:, 0]]), a[:, 1], rcond=None)[0]
+    print(f"  watch stretches: {a.shape[0] // repeat:,} a run, {a[:, 0].sum() / repeat:,.0f} samples, "
+          f"{a[:, 1].sum() / repeat:.3f} s; fitted {fit[0] * 1e6:.0f} us a stretch + {fit[1] * 1e9:.0f} ns a sample")
+    for lo, hi in ((0, 64), (64, 256), (256, 1024), (1024, 1 << 20)):
+        sel = a[(a[:, 0] >= lo) & (a[:, 0] < hi)]
+        if sel.shape[0]:
+            print(f"    {lo:,} to {hi - 1:,} samples: {sel.shape[0] // repeat:,} stretches, "
+                  f"{sel[:, 1].sum() / repeat * 1000:.0f} ms, median {np.median(sel[:, 1]) * 1e6:.0f} us")
+    print(f"  young level: {young_samples[0] // repeat:,} samples a run, "
+          f"{own['young level, sample by sample (first warm-up, after a step)'] / max(young_samples[0], 1) * 1e6:.2f}"
+          f" us each; it held samples {releases[0] // repeat:,} times ({releases[1] // repeat:,} samples), "
+          f"once every {young_samples[0] / max(releases[0], 1):.0f} samples")
+
+
+def engines_part(repeat: int, other: Path | None) -> int:
+    """``--part engines``: the table, and with ``other`` both checkouts' engines' CPU in rounds."""
+    engine_parts(repeat)
+    if other is None:
+        return 0
+    here = str(Path(__file__).resolve().parent)
+    compile_package()
+    compile_package(other)
+    got: dict[str, list[float]] = {}
+    sides = _sides(other)
+    for i in range(repeat):
+        for name, env in (sides if i % 2 == 0 else sides[::-1]):
+            res = subprocess.run([sys.executable, "-c", ENGINE_FEED, here, "3"], capture_output=True, text=True,
+                                 check=True, env=env)
+            got.setdefault(name, []).append(med([float(x) for x in res.stdout.split()]))
+    for name, _ in sides:
+        print(f"{name}: engines' CPU, median of 3 feedings a round: {med(got[name]):.3f} s ({spread(got[name])})")
+    r = [a / b for a, b in zip(got["this"], got[sides[1][0]])]
+    print(f"this / against per round {', '.join(f'{x:.3f}' for x in r)}: median {med(r):.3f}")
+    return 0
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="12 million rows instead of 50 million for memory")
     ap.add_argument("--repeat", type=int, default=3, help="runs per timed figure (default 3)")
-    ap.add_argument("--part", choices=("all", "jobs"), default="all",
+    ap.add_argument("--part", choices=("all", "jobs", "parquet", "engines"), default="all",
                     help="jobs: target 3 alone, --jobs 1 and --jobs 2 alternately (which goes first "
                          "alternating too), --repeat pairs, and two one-process replays side by side "
-                         "after each pair")
+                         "after each pair; parquet: target 4 alone, with engines that do nothing too; "
+                         "engines: where the engines' time goes, in process")
+    ap.add_argument("--against", type=Path, metavar="DIR",
+                    help="another checkout (its daemon/ is put first on PYTHONPATH) measured in the same "
+                         "rounds, alternating, with --part jobs, parquet or engines")
     opts = ap.parse_args()
+    if opts.against is not None and opts.part == "all":
+        ap.error("--against is for --part jobs, parquet or engines")
     if opts.part == "jobs":
-        return jobs_only(opts.repeat)
+        return jobs_only(opts.repeat) if opts.against is None else jobs_against(opts.repeat, opts.against)
+    if opts.part == "parquet":
+        return parquet_part(opts.repeat, opts.against)
+    if opts.part == "engines":
+        return engines_part(opts.repeat, opts.against)
     small_s = 12_000  # 2.4 million rows
     big_s = 60_000 if opts.quick else 250_000
     rows: list[tuple[str, str, str, str, bool]] = []
