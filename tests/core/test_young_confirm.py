@@ -8,8 +8,9 @@ README's bound is about ``confirm_p_value`` (0.001) of the detections.  Their
 histories: the trial (two Wald SPRTs) measured the samples after the trip
 against a level fitted on 20 to 200 samples and, on a provisional baseline,
 with phi 0; the fit's check (p < 0.01 with phi at an upper bound) passed at its
-first look for 7 of the 12 (an excursion of the noise that the detection picked
-and that the next samples carried on) and after 3 to 11 looks for the other 5.
+first look for 8 of the 12 (an excursion of the noise that the detection picked
+and that the next samples carried on; two of them a step back after a false
+confirmed one) and after 3 to 11 looks for the other 4.
 Now the trial's "step" on a young stream counts only where its evidence, with
 the noise's variance at the phi bound and the reference level's error
 integrated out, still reaches Wald's bound
