@@ -85,3 +85,28 @@ def mixed_cuts(n: int, rng: np.random.Generator, modes: int = 6) -> list[int]:
     if mode == 3:
         return steps_of(n, rng, 300)
     return []
+
+
+def split_spikes_with(sparse: bool, t: np.ndarray, x: np.ndarray, pending: tuple[float, float] | None,
+                      limit: int, *, prev_out: int | None = None, before: float | None = None,
+                      t0: float = 0.0) -> tuple[Any, ...]:
+    """``StreamEngine._split_spikes`` on one segment around level 40 (scale 0.2), with the
+    sparse split (``sparse``) or the array split: its outputs as plain lists, and the
+    sample held at its end.  ``pending``: a sample held from the batch before;
+    ``prev_out``: the engine's count of outliers before; ``before``: a sample already in
+    the window (at ``t0 - 2``), the one before the segment."""
+    saved = engine.SPARSE_SPIKES
+    engine.SPARSE_SPIKES = sparse
+    try:
+        eng = StreamEngine("brackenfield/press4/ram")
+        if before is not None:
+            eng._window.push(before, t0 - 2.0)
+        eng._pending = pending
+        if prev_out is not None:
+            eng._prev_out = prev_out
+        idx = np.arange(t.shape[0], dtype=np.intp)
+        kt, kx, spikes, used, osign, settled = eng._split_spikes(t, x, idx, 40.0, 0.2, limit)
+        return (kt.tolist(), kx.tolist(), spikes, used, None if osign is None else osign.tolist(),
+                None if settled is None else settled.tolist(), eng._pending)
+    finally:
+        engine.SPARSE_SPIKES = saved

@@ -33,6 +33,8 @@ from shiftwatch.core.engine import CONFIRM_FIT_P_SETTLED, StreamEngine, residual
 from shiftwatch.core.events import PENDING, STEP, EventTrial
 from shiftwatch.core.settings import DetectionSettings
 
+from .oracle import first_trip, oracle_h
+
 T0 = 1_788_000_000.0
 HOUR = DetectionSettings(false_alarm_every=3600.0)
 
@@ -51,29 +53,6 @@ def _records(x: np.ndarray, settings: DetectionSettings) -> list:
     for a in range(0, x.shape[0], 4096):
         out += eng.process(t[a:a + 4096], x[a:a + 4096]).records
     return out
-
-
-def _oracle_h(arl0_two_sided: float, k: float = 0.5) -> float:
-    """Siegmund's approximation (one-sided ARL (exp(-2Db) + 2Db - 1) / (2D^2), D = -k,
-    b = h + 1.166; two-sided: half), solved for h by bisection."""
-    def arl(h: float) -> float:
-        b, d = h + 1.166, -k
-        return (math.exp(-2.0 * d * b) + 2.0 * d * b - 1.0) / (2.0 * d * d) / 2.0
-    lo, hi = 0.5, 40.0
-    for _ in range(100):
-        mid = 0.5 * (lo + hi)
-        lo, hi = (mid, hi) if arl(mid) < arl0_two_sided else (lo, mid)
-    return 0.5 * (lo + hi)
-
-
-def _oracle_finds(z: np.ndarray, h: float, k: float = 0.5) -> bool:
-    cp = cm = 0.0
-    for v in z.tolist():
-        cp = max(0.0, cp + v - k)
-        cm = max(0.0, cm - v - k)
-        if cp > h or cm > h:
-            return True
-    return False
 
 
 def test_every_confirmed_record_is_supported_by_its_own_fit() -> None:
@@ -121,7 +100,7 @@ def test_real_steps_are_still_confirmed_as_the_oracle_finds_them() -> None:
     # phi) in every stream; the engine confirms each in the right direction in
     # at least 95% of the streams (binomial lower bound: with a true rate of
     # 0.99, fewer than 95% of 120 has probability below 1e-3, scipy).
-    h = _oracle_h(3600.0)
+    h = oracle_h(3600.0, hi=40.0)
     for phi, size in ((0.0, 1.0), (0.0, 2.0), (0.5, 1.0)):
         found = oracle = 0
         for k in range(120):
@@ -131,7 +110,7 @@ def test_real_steps_are_still_confirmed_as_the_oracle_finds_them() -> None:
             sign = 1.0 if k % 2 else -1.0
             x[400:] += sign * size
             z = (x[400:] - phi * x[399:-1]) / math.sqrt(1.0 - phi * phi)  # prewhitened, known phi
-            oracle += _oracle_finds(z, h)
+            oracle += first_trip(z, h) is not None
             recs = _records(50.0 + x, HOUR)
             found += any(r.phase == "confirmed" and r.delta * sign > 0 and r.detected_at >= T0 + 400
                          for r in recs)

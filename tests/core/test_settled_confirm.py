@@ -34,6 +34,8 @@ from scipy.signal import lfilter
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.settings import DetectionSettings
 
+from .oracle import first_trip, oracle_h
+
 T0 = 1_788_000_000.0
 PHI = 0.8
 AT = 1500
@@ -59,29 +61,6 @@ def _records(t: np.ndarray, x: np.ndarray) -> list:
     return out
 
 
-def _oracle_h(arl0_two_sided: float, k: float) -> float:
-    """Siegmund's approximation (one-sided ARL (exp(-2Db) + 2Db - 1) / (2D^2), D = -k,
-    b = h + 1.166; two-sided: half), solved for h by bisection."""
-    def arl(h: float) -> float:
-        b, d = h + 1.166, -k
-        return (math.exp(-2.0 * d * b) + 2.0 * d * b - 1.0) / (2.0 * d * d) / 2.0
-    lo, hi = 0.5, 200.0
-    for _ in range(100):
-        mid = 0.5 * (lo + hi)
-        lo, hi = (mid, hi) if arl(mid) < arl0_two_sided else (lo, mid)
-    return 0.5 * (lo + hi)
-
-
-def _oracle_finds_by(z: np.ndarray, h: float, k: float) -> int | None:
-    cp = cm = 0.0
-    for i, v in enumerate(z.tolist()):
-        cp = max(0.0, cp + v - k)
-        cm = max(0.0, cm - v - k)
-        if cp > h or cm > h:
-            return i
-    return None
-
-
 # Random states (of 81,000 to 81,059) whose 1-sigma step the engine at 9963615 did
 # not confirm within 1,000 samples, the last detected three times.
 MISSED_BEFORE = (81_005, 81_008, 81_020, 81_025, 81_028, 81_031, 81_053)
@@ -89,12 +68,12 @@ MISSED_BEFORE = (81_005, 81_008, 81_020, 81_025, 81_028, 81_031, 81_053)
 
 def test_late_detected_steps_on_a_settled_ar08_baseline_are_confirmed() -> None:
     shift_z = (1.0 - PHI) / math.sqrt(1.0 - PHI * PHI)  # 1 sigma, prewhitened, in innovation sigmas
-    h = _oracle_h(DetectionSettings().false_alarm_every, shift_z / 2.0)
+    h = oracle_h(DetectionSettings().false_alarm_every, shift_z / 2.0)
     for state in MISSED_BEFORE:
         t, x, sign = _stream(state)
         r = x - 20.0  # prewhitened from the known level before the step, known phi
         z = (r[AT:] - PHI * r[AT - 1:-1]) / math.sqrt(1.0 - PHI * PHI)
-        found = _oracle_finds_by(z, h, shift_z / 2.0)
+        found = first_trip(z, h, shift_z / 2.0)
         assert found is not None and found < 1000, (state, found)  # the oracle finds it in time
         recs = [r for r in _records(t, x) if r.detected_at >= t[AT]]
         ends = [r for r in recs if r.phase in ("confirmed", "returned")]

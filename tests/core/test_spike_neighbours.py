@@ -18,16 +18,13 @@ paths are held bit for bit to the reference paths they stand in for.
 
 from __future__ import annotations
 
-from typing import Any
-
 import numpy as np
 import pytest
 
-from shiftwatch.core import engine
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.settings import DetectionSettings
 
-from .batches import run_in_batches, steps_of
+from .batches import run_in_batches, split_spikes_with, steps_of
 
 T0 = 1_788_000_000.0
 
@@ -88,23 +85,6 @@ def _ramps(rng: np.random.Generator, n: int) -> np.ndarray:
     return x
 
 
-def _call(sparse: bool, t: np.ndarray, x: np.ndarray, before: float | None,
-          pending: tuple[float, float] | None, limit: int) -> tuple[Any, ...]:
-    saved = engine.SPARSE_SPIKES
-    engine.SPARSE_SPIKES = sparse
-    try:
-        eng = StreamEngine("brackenfield/press4/ram")
-        if before is not None:
-            eng._window.push(before, T0 - 2.0)
-        eng._pending = pending
-        idx = np.arange(t.shape[0], dtype=np.intp)
-        kt, kx, spikes, used, osign, settled = eng._split_spikes(t, x, idx, 40.0, 0.2, limit)
-        return (kt.tolist(), kx.tolist(), spikes, used, None if osign is None else osign.tolist(),
-                None if settled is None else settled.tolist(), eng._pending)
-    finally:
-        engine.SPARSE_SPIKES = saved
-
-
 def test_sparse_split_equals_the_array_split_with_the_sample_before() -> None:
     # The sparse path's judgement of each outlier's predecessor (within the segment, the
     # window's last sample, a held one) is the array path's, bit for bit.
@@ -118,7 +98,8 @@ def test_sparse_split_equals_the_array_split_with_the_sample_before() -> None:
         if rng.random() < 0.3:
             pending = (T0 - 1.0, 40.0 + 0.2 * float(rng.choice([-6.0, 5.5, 9.0])))
         limit = int(rng.choice([1, 2, max(1, n // 2), n, n + 5]))
-        assert _call(True, t, x, before, pending, limit) == _call(False, t, x, before, pending, limit)
+        assert split_spikes_with(True, t, x, pending, limit, before=before, t0=T0) == split_spikes_with(
+            False, t, x, pending, limit, before=before, t0=T0)
 
 
 @pytest.mark.parametrize("seed", [1, 2, 3])

@@ -23,7 +23,7 @@ from shiftwatch.core import engine
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.settings import DetectionSettings
 
-from .batches import run_in_batches
+from .batches import run_in_batches, split_spikes_with
 
 T0 = 1_788_000_000.0
 
@@ -41,22 +41,6 @@ def _segment(rng: np.random.Generator, n: int) -> np.ndarray:
     return 40.0 + 0.2 * x
 
 
-def _call(sparse: bool, t: np.ndarray, x: np.ndarray, pending: tuple[float, float] | None, prev_out: int,
-          limit: int) -> tuple[Any, ...]:
-    saved = engine.SPARSE_SPIKES
-    engine.SPARSE_SPIKES = sparse
-    try:
-        eng = StreamEngine("brackenfield/press4/ram")
-        eng._pending = pending
-        eng._prev_out = prev_out
-        idx = np.arange(t.shape[0], dtype=np.intp)
-        kt, kx, spikes, used, osign, settled = eng._split_spikes(t, x, idx, 40.0, 0.2, limit)
-        return (kt.tolist(), kx.tolist(), spikes, used, None if osign is None else osign.tolist(),
-                None if settled is None else settled.tolist(), eng._pending)
-    finally:
-        engine.SPARSE_SPIKES = saved
-
-
 def test_sparse_split_equals_the_array_split_on_random_segments() -> None:
     rng = np.random.default_rng(77)
     for _ in range(600):
@@ -68,7 +52,7 @@ def test_sparse_split_equals_the_array_split_on_random_segments() -> None:
             pending = (T0 - 1.0, 40.0 + float(rng.choice([-1.8, 1.8])))
         prev_out = int(rng.choice([-1, 0, 0, 1]))
         limit = int(rng.choice([1, 2, max(1, n // 2), n, n + 5]))
-        assert _call(True, t, x, pending, prev_out, limit) == _call(False, t, x, pending, prev_out, limit)
+        assert split_spikes_with(True, t, x, pending, limit, prev_out=prev_out) == split_spikes_with(False, t, x, pending, limit, prev_out=prev_out)
 
 
 def test_an_outlier_at_the_spike_limit_is_judged_as_the_reference_judges_it() -> None:
@@ -80,7 +64,7 @@ def test_an_outlier_at_the_spike_limit_is_judged_as_the_reference_judges_it() ->
         x = np.array([40.0, v, 40.0, 40.0 + 2.0 * k * 0.2, v, 40.0])
         t = T0 + np.arange(6.0)
         for limit in (3, 6):
-            assert _call(True, t, x, None, 0, limit) == _call(False, t, x, None, 0, limit)
+            assert split_spikes_with(True, t, x, None, limit, prev_out=0) == split_spikes_with(False, t, x, None, limit, prev_out=0)
 
 
 def _run(t: np.ndarray, x: np.ndarray, cuts: list[int], sparse: bool) -> dict[str, Any]:
@@ -137,7 +121,7 @@ def _call_head(head: bool, t: np.ndarray, x: np.ndarray, pending: tuple[float, f
     saved = engine.HEAD_SPIKES
     engine.HEAD_SPIKES = head
     try:
-        kt, kx, spikes, used, osign, settled, held = _call(sparse, t, x, pending, prev_out, limit)
+        kt, kx, spikes, used, osign, settled, held = split_spikes_with(sparse, t, x, pending, limit, prev_out=prev_out)
     finally:
         engine.HEAD_SPIKES = saved
     if osign is None:

@@ -20,7 +20,6 @@ false-alarm count on streams with no step.
 from __future__ import annotations
 
 import json
-import math
 
 import numpy as np
 import pytest
@@ -29,40 +28,10 @@ from scipy import optimize, stats
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.settings import DetectionSettings
 
+from .oracle import first_trip, oracle_h, siegmund_arl
+
 T0 = 1_788_000_000.0
 N = 1_500
-
-
-def _siegmund_arl(h: float, k: float, delta: float) -> float:
-    """One-sided CUSUM ARL by Siegmund's approximation (Montgomery ch. 9)."""
-    b = h + 1.166
-    d = delta - k
-    if d == 0.0:
-        return b * b
-    return (math.exp(-2.0 * d * b) + 2.0 * d * b - 1.0) / (2.0 * d * d)
-
-
-def _oracle_h(arl0_two_sided: float, k: float = 0.5) -> float:
-    """h of the two-sided chart whose in-control ARL is ``arl0_two_sided`` (bisection)."""
-    lo, hi = 0.5, 40.0
-    for _ in range(100):
-        mid = 0.5 * (lo + hi)
-        if _siegmund_arl(mid, k, 0.0) / 2.0 < arl0_two_sided:
-            lo = mid
-        else:
-            hi = mid
-    return 0.5 * (lo + hi)
-
-
-def _oracle_trips(z: np.ndarray, h: float, k: float = 0.5) -> int | None:
-    """Index of the first trip of the two-sided tabular CUSUM on standardised ``z``."""
-    cp = cm = 0.0
-    for i, v in enumerate(z.tolist()):
-        cp = max(0.0, cp + v - k)
-        cm = max(0.0, cm - v - k)
-        if cp > h or cm > h:
-            return i
-    return None
 
 
 def _streams(seed: int, count: int, at: int | None, size: float) -> list[np.ndarray]:
@@ -89,8 +58,8 @@ def _found(x: np.ndarray, at: int) -> bool:
 def test_oracle_h_matches_montgomery_table() -> None:
     # Montgomery's table of two-sided ARLs for k = 0.5 (common practice, from memory):
     # h = 4: 168, h = 5: 465; Siegmund's formula gives them within a few per cent.
-    assert _siegmund_arl(4.0, 0.5, 0.0) / 2.0 == pytest.approx(168, rel=0.03)
-    assert _siegmund_arl(5.0, 0.5, 0.0) / 2.0 == pytest.approx(465, rel=0.03)
+    assert siegmund_arl(4.0, 0.5, 0.0) / 2.0 == pytest.approx(168, rel=0.03)
+    assert siegmund_arl(5.0, 0.5, 0.0) / 2.0 == pytest.approx(465, rel=0.03)
 
 
 @pytest.mark.parametrize(("at", "size", "share"),
@@ -109,14 +78,14 @@ def test_a_step_in_the_warm_up_is_found_as_by_the_oracle(at: int, size: float, s
     """
     count = 60
     arl0 = DetectionSettings().arl0(1.0)
-    h = _oracle_h(arl0)
+    h = oracle_h(arl0, hi=40.0)
     xs = _streams(1000 + at, count, at, size)
     oracle = 0
     engine_found = 0
     for x in xs:
         # after the fact: the step is there (scipy's two-sample t at the true split)
         assert stats.ttest_ind(x[:at], x[at:]).pvalue < 1e-6
-        trip = _oracle_trips(x - 10.0, h)
+        trip = first_trip(x - 10.0, h)
         if trip is not None and trip >= at:
             oracle += 1
         engine_found += _found(x, at)
