@@ -2,7 +2,7 @@
 
 Usage, from the repository root with the package installed::
 
-    python tests/bench/bench_events.py            # full run, about 10 minutes on 2 cores
+    python tests/bench/bench_events.py            # full run, about 20 seconds on 2 cores (17 s, 2026-12-05)
     python tests/bench/bench_events.py --quick    # smaller samples, a smoke check
 
 ``run_bench.py`` runs it too, after the core figures.  Every figure is

@@ -599,3 +599,39 @@ def test_a_snapshot_made_under_earlier_design_rules_gets_its_test_designed_again
     older.set_state(state)
     assert older._test_arl0 == pytest.approx(e._test_arl0)
     assert older._test.get_state() == e._test.get_state()  # the evidence is kept
+
+
+@pytest.mark.parametrize("field,value", [
+    ("step_from", "abc"),   # text where a count belongs
+    ("m", 1.5),             # a count with a fraction: was read as 1
+    ("limit", True),        # a JSON true is not a count
+    ("d", "abc"),           # text where a number belongs
+    ("bound", None),
+    ("s", [1.0]),
+])
+def test_a_damaged_trial_field_in_a_snapshot_is_refused_by_name(field: str, value: object) -> None:
+    # An open event's trial saved in a snapshot, one field damaged: set_state refuses
+    # it with a ValueError that names the field (the daemon logs it and counts the
+    # stream's state as damaged), never a bare "invalid literal" or a count rounded down.
+    rng = np.random.default_rng(8)
+    x = rng.standard_normal(812)
+    x[800:] += 2.0
+    eng = StreamEngine("s")
+    feed(eng, T0 + np.arange(812.0), x, batch=812)
+    assert eng.state == "event_open"
+    snap = json.loads(json.dumps(eng.get_state()))
+    snap["event"]["trial"][field] = value
+    with pytest.raises(ValueError, match=rf"event\.trial\.{field}\b"):
+        StreamEngine("s").set_state(snap)
+
+
+def test_a_trial_field_missing_from_a_snapshot_is_refused_by_name() -> None:
+    rng = np.random.default_rng(8)
+    x = rng.standard_normal(812)
+    x[800:] += 2.0
+    eng = StreamEngine("s")
+    feed(eng, T0 + np.arange(812.0), x, batch=812)
+    snap = json.loads(json.dumps(eng.get_state()))
+    del snap["event"]["trial"]["bound"]
+    with pytest.raises(ValueError, match=r"event\.trial\.bound\b.*missing"):
+        StreamEngine("s").set_state(snap)

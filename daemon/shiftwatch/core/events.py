@@ -229,22 +229,41 @@ class EventTrial:
             raise ValueError(f"event.trial.sign: must be +1 or -1, got {sign!r}")
         out.sign = int(sign)
         for name in ("d", "bound", "s"):
-            v = float(state[name])
+            v = _number(state, name)
             if not math.isfinite(v) or (name != "s" and v <= 0):
                 raise ValueError(f"event.trial.{name}: not a usable number ({v!r})")
             setattr(out, name, v)
         for name in ("limit", "min_samples", "m"):
-            v = int(state[name])
-            if not (1 if name != "m" else 0) <= v <= 2**53:
-                raise ValueError(f"event.trial.{name}: out of range ({v!r})")
-            setattr(out, name, v)
+            setattr(out, name, _count(state, name, 1 if name != "m" else 0))
         out.outcome = PENDING
         # (snapshots before the fit's check carry no step_from: 0, as a new trial)
-        v = int(state.get("step_from", 0))
-        if not 0 <= v <= 2**53:
-            raise ValueError(f"event.trial.step_from: out of range ({v!r})")
-        out.step_from = v
+        out.step_from = _count(state, "step_from", 0, default=0)
         return out
+
+
+def _number(state: dict[str, Any], name: str) -> float:
+    """Field ``name`` of a saved trial as a float; ``ValueError`` names it when it is
+    missing or not a number (text, a list, true or false)."""
+    if name not in state:
+        raise ValueError(f"event.trial.{name}: missing")
+    v = state[name]
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        raise ValueError(f"event.trial.{name}: not a number ({v!r})")  # noqa: TRY004 (set_state's contract: ValueError names the field)
+    return float(v)
+
+
+def _count(state: dict[str, Any], name: str, low: int, default: int | None = None) -> int:
+    """Field ``name`` of a saved trial as a count from ``low`` to 2**53; ``ValueError``
+    names it when it is missing (and has no ``default``), not a whole number (text,
+    1.5, true) or out of that range."""
+    if name not in state and default is not None:
+        return default
+    v = _number(state, name)
+    if not v.is_integer():
+        raise ValueError(f"event.trial.{name}: not a whole number ({state[name]!r})")
+    if not low <= v <= 2**53:
+        raise ValueError(f"event.trial.{name}: out of range ({state[name]!r})")
+    return int(v)
 
 
 class OpenEvent:
