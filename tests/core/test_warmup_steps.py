@@ -201,3 +201,26 @@ def test_a_stretched_warm_up_gives_the_same_records_however_batched_or_restored(
         assert recs == whole.records
         assert rejs == [(r.reason, r.time) for r in whole.rejected]
     assert stretched >= 1
+
+
+def test_a_large_step_on_a_new_stream_is_confirmed_not_left_open_to_the_limit() -> None:
+    # A 3-sigma step at sample 20 or 25 of a new iid stream (fed 10 samples a call):
+    # a two-sample t test on the 20 samples before and 20 after rejects "no step" at
+    # p < 1e-6 (scipy, the reference here), so the event must end confirmed, and soon.
+    # A trial whose evidence for its design step is bounded by the reference level's
+    # few samples (tried on 2026-12-05 and taken back) left 6 of 40 such steps at
+    # sample 20 open for 1,000 samples, a blind spot, ending undecided at sample 1,024.
+    for at in (20, 25):
+        for state in range(40):
+            rng = np.random.default_rng(state)
+            x = rng.standard_normal(400)
+            x[at:] += 3.0
+            assert stats.ttest_ind(x[at:at + 20], x[:at]).pvalue < 1e-6
+            t = T0 + np.arange(400.0)
+            eng = StreamEngine("s")
+            recs = []
+            for a in range(0, 400, 10):
+                recs += eng.process(t[a:a + 10], x[a:a + 10]).records
+            ends = [r for r in recs if r.phase not in ("detected",)]
+            assert ends and ends[0].phase == "confirmed", (at, state, [(r.phase, r.as_of - T0) for r in recs])
+            assert ends[0].as_of - T0 <= at + 150, (at, state, ends[0].as_of - T0)

@@ -589,15 +589,6 @@ FOLLOW_MARGIN = 2.0
 #: Standard errors above its bias-corrected estimate at which the decision on an event
 #: takes the autocorrelation of a young stream's noise (``residual_phi_bound``).
 PHI_BOUND_MARGIN = 2.0
-#: The same for the young trial's evidence (``StreamEngine._young_step_holds``): the
-#: variance inflation is taken at phi this many standard errors above its estimate.
-#: At 2 (as for the fit's p-value) a false confirmation on an AR(1) 0.6 stream that
-#: both forms confirm came 50 samples later, at a fitted 0.97 sigma, and bench_events'
-#: "confirmed in-control events below min_shift, 7d" (target 0) read 1; at 1 it
-#: reads 0 (fitted 1.01 sigma).  Step-free new streams at 1h (bench_confirm_counts,
-#: 2026-12-05), confirmed false detections at margins 0 / 1 / 2: iid 2 / 0 / 0,
-#: AR 0.5 1 / 0 / 0, AR 0.8 6 / 4 / 1 (of about 90, 162 and 234).
-YOUNG_PHI_MARGIN = 1.0
 #: A step is confirmed only while the fit of the event's samples shows it at this
 #: p-value (or ``confirm_p_value``, when larger): the trial alone confirmed wander of
 #: young autocorrelated streams.  0.001 lost more real steps on AR(1) 0.8 noise
@@ -2428,10 +2419,6 @@ class StreamEngine:
         p = self._fit_p_value(fit, b)
         young = b.n < self.settings.window_samples
         shows = p < max(self.settings.confirm_p_value, CONFIRM_FIT_P if young else CONFIRM_FIT_P_SETTLED)
-        if young and outcome == STEP and shows and not self._young_step_holds(ev, fit, b):
-            # The trial measured against a young level and phi: its "step" counts only where
-            # it still reaches Wald's bound with both allowed for (see _young_step_holds).
-            shows = False
         clear = (p < self.settings.confirm_p_value
                  and abs(fit.delta) >= 0.5 * self.settings.min_shift_sigma * b.sigma)
         if late and ((outcome == STEP and shows) or clear):
@@ -2509,25 +2496,6 @@ class StreamEngine:
         else:
             self._end_event(ev, "undecided", shown, result, as_of)
         self._reanchor(fit.index)
-
-    def _young_step_holds(self, ev: OpenEvent, fit: StepFit, b: Baseline) -> bool:
-        """Whether a trial's "step" on a young stream (the baseline rests on fewer samples
-        than the window) still reaches Wald's bound with what such a stream knows badly
-        allowed for: the noise's long-run variance at the upper bound on phi from the
-        fit's residuals (:func:`residual_phi_bound`, as :meth:`_fit_p_value` takes it),
-        over the one at the baseline's phi that the trial prewhitened with; and the error
-        of the trial's reference level, fitted at the detection on the samples before its
-        split (:meth:`.events.EventTrial.llr_step_marginal`: a mixture likelihood ratio,
-        so the bound holds however often the trial is looked at).  Without it, step-free
-        new streams at ``1h`` saw 4 of 90 false detections confirmed on iid noise, 8 of
-        166 at phi 0.5 and 18 of 246 at phi 0.8 (``bench_confirm_counts.py``, 2026-12-05):
-        a few dozen samples of young noise, an excursion the detection picked, and the
-        fit's p-value asked again and again as samples came."""
-        assert self._fitter is not None
-        up = max(b.phi, residual_phi_bound(self._fitter.values, fit.index, YOUNG_PHI_MARGIN))
-        inflation = _variance_factor(up) / _variance_factor(b.phi)
-        n_ref = max(1, ev.trip_len - ev.n_after)  # the samples before the detection's split
-        return ev.trial.llr_step_marginal(inflation, n_ref) >= ev.trial.bound
 
     def _conflicts(self, fit: StepFit, sign: int, b: Baseline) -> bool:
         """Whether ``fit`` contradicts a trial's "step" in direction ``sign``: a step

@@ -121,35 +121,6 @@ class EventTrial:
         """Evidence for a step of ``d`` against none (decides at :attr:`bound`)."""
         return self.d * self.s - 0.5 * self.m * self.d * self.d
 
-    def llr_step_marginal(self, inflation: float, n_ref: int) -> float:
-        """The evidence for a step of ``d`` when the inputs' long-run variance may be
-        ``inflation`` (>= 1) times what the trial assumes and its reference level was
-        measured on ``n_ref`` samples of the same noise.
-
-        The reference's error is a constant drift in every input, of variance
-        ``inflation / n_ref``; integrated out, the sum ``S_m`` is normal with mean ``m mu``
-        and variance ``w m`` with ``w = inflation (1 + m / n_ref)``, and the likelihood ratio
-        of "mean ``d``" against "mean 0" is ``exp((d S_m - m d^2 / 2) / w)``.  Under "no
-        step" that ratio is a nonnegative martingale in ``m`` (a mixture likelihood ratio,
-        Robbins 1970, "Statistical methods related to the law of the iterated logarithm",
-        Ann. Math. Statist. 41:1397-1409, from memory), so by Ville's inequality (Ville
-        1939, from memory) it reaches ``1 / alpha`` at *any* sample with probability at
-        most ``alpha``: the bound holds however often the engine looks.  With
-        ``inflation`` 1 and ``n_ref`` infinite it is :meth:`llr_step`.
-
-        A level 1 sigma up on independent noise reaches the bound (6.9) at the 14th
-        input; measured from a level of 14 samples, with the variance possibly twice
-        the assumed, the same sums are far from it:
-
-        >>> tr = EventTrial(+1, 1.0, 0.001, 600)
-        >>> tr.feed(np.full(20, 1.0))
-        (13, 'step')
-        >>> tr.llr_step(), round(tr.llr_step_marginal(1.0, 10**12), 6), tr.llr_step_marginal(2.0, 14)
-        (7.0, 7.0, 1.75)
-        """
-        w = max(1.0, float(inflation)) * (1.0 + self.m / max(1, int(n_ref)))
-        return self.llr_step() / w
-
     def llr_no_step(self) -> float:
         """Evidence for no step against one of ``DISMISS_AT * d`` (decides at :attr:`bound`)."""
         c = DISMISS_AT * self.d
