@@ -1282,7 +1282,7 @@ class StreamEngine:
             same_prev = sign.get(i - 1) == sg if i > 0 else (prev != 0 and sg == prev)
             if not same_prev:  # (backed_by_prev: the sample before beyond the share of this one)
                 pd = float(d[i - 1]) / sigma if i > 0 else prev_dev
-                same_prev = pd * sg > min(k, SPIKE_CONFIRM_SHARE * abs(devs[i]))
+                same_prev = spike_confirmed(pd, devs[i], k)
             if not same_prev and not (i + 1 < n and spike_confirmed(float(d[i + 1]) / sigma, devs[i], k)):
                 lone.append(i)
             if not same_prev:
@@ -1388,7 +1388,7 @@ class StreamEngine:
                 dev = (xv - ys.mean) / scale
                 out = 1 if dev > band else (-1 if dev < -band else 0)
                 if out != 0 and pv is not None:
-                    back = (pv - ys.mean) / scale * out > min(band, SPIKE_CONFIRM_SHARE * abs(dev))
+                    back = spike_confirmed((pv - ys.mean) / scale, dev, band)
             pv = xv
             if self._pending is not None:
                 pt, px = self._pending
@@ -1597,7 +1597,7 @@ class StreamEngine:
                         band = young_spike_limit(spike, True, ydf)
                     out = 1 if dev > band else (-1 if dev < -band else 0)
                     if out != 0 and pv is not None:
-                        back = (pv - ymean) / scale * out > min(band, SPIKE_CONFIRM_SHARE * abs(dev))
+                        back = spike_confirmed((pv - ymean) / scale, dev, band)
             pv = xv
             if self._pending is not None:
                 # A spike held from the sample before: the reference's own steps.
@@ -2936,6 +2936,8 @@ def spike_confirmed(dev_next: float, dev_out: float, limit: float) -> bool:
     the band's units) deviates the same way: beyond ``limit``, or beyond
     SPIKE_CONFIRM_SHARE of the outlier's own deviation.  Then the outlier is the
     first sample of a step, not a lone spike (:func:`lone_outliers`, rule for rule).
+    Asked of the sample before an outlier (``dev_next`` its deviation), the same rule
+    says the outlier is a step's second or later sample (:func:`backed_by_prev`).
 
     >>> spike_confirmed(-3.3, -5.3, 5.0), spike_confirmed(0.4, -5.3, 5.0), spike_confirmed(6.0, 30.0, 5.0)
     (True, False, True)
