@@ -428,6 +428,9 @@ class Source:
     group_rows: list[int] = field(default_factory=list)
     #: the stream of every row, when a partition directory (``stream=NAME``) says it
     stream: str | None = None
+    #: Parquet: the columns pyarrow is to read as dictionaries (a long file's stream column of
+    #: plain text, so that its names are read once a page's dictionary, not once a row)
+    read_dictionary: list[str] = field(default_factory=list)
     #: CSV, wide: the unnamed columns at the end of the header (it ends with a comma), whose cells
     #: must be empty: a cell there that holds something is a problem, and the rest of its row is read
     unnamed: list[int] = field(default_factory=list)
@@ -1673,7 +1676,8 @@ def _open_parquet(path: str, layout: str) -> Source:
     pq = _pyarrow()
     try:
         meta = pq.ParquetFile(path).metadata
-        header = list(meta.schema.to_arrow_schema().names)
+        schema = meta.schema.to_arrow_schema()
+        header = list(schema.names)
     except Exception as exc:  # noqa: BLE001  pyarrow raises ArrowInvalid, OSError, ... for a damaged file
         raise CsvFormatError(f"{path}: not a readable Parquet file: {exc}") from None
     offsets = [0]
@@ -1686,7 +1690,17 @@ def _open_parquet(path: str, layout: str) -> Source:
         ti, vi = cols.index("time"), cols.index("value")
         return Source(path, "parquet", "long", header, ti, -1, vi, [(vi, "")], group_rows=offsets, stream=stream)
     lay, ti, si, vi, tags = _pick_layout(path, header, layout, path)
-    return Source(path, "parquet", lay, header, ti, si, vi, tags, group_rows=offsets)
+    src = Source(path, "parquet", lay, header, ti, si, vi, tags, group_rows=offsets)
+    if lay == "long" and si >= 0:
+        import pyarrow as pa
+
+        typ = schema.field(si).type
+        if pa.types.is_string(typ) or pa.types.is_large_string(typ):
+            # Read as a dictionary, it needs no dictionary_encode (a hash of every row, and the
+            # import of pyarrow.compute, 0.1 s, on its first call).  Not binary: a column of bytes
+            # is refused by name, as before, not read as their repr.
+            src.read_dictionary = [header[si]]
+    return src
 
 
 def parquet_slice_rows(src: Source) -> int:
@@ -1802,6 +1816,8 @@ def _arrow_plain(col: Any, valid: NDArray[np.bool_], fill: float) -> NDArray[Any
 def _valid_range(t: FloatArray, valid: NDArray[np.bool_], first: int, column: str,
                  problems: _GroupProblems) -> NDArray[np.bool_]:
     """``valid`` less the times no record can be written at, each a problem."""
+    if t.shape[0] == 0 or (float(t.min()) >= TIME_MIN and float(t.max()) <= TIME_MAX):  # (NaN: not so)
+        return valid
     ok = _in_range(t)
     if bool(ok.all()):
         return valid
@@ -1828,7 +1844,8 @@ def _arrow_times(col: Any, column: str, tz: tzinfo | None, first: int,
         # The coarsest exact unit, so that a time reads as the same double whatever its unit.
         while per_second > 1000 and bool((raw % 1000 == 0).all()):
             raw, per_second = raw // 1000, per_second // 1000
-        t = raw.astype(np.float64) / per_second if per_second > 1 else raw.astype(np.float64)
+        # (one pass: the division casts each integer to a double as astype does, then divides)
+        t = np.divide(raw, float(per_second), dtype=np.float64) if per_second > 1 else raw.astype(np.float64)
         valid = _valid_range(t, valid, first, column, problems)
         if col.type.tz is None:
             if tz is None:
@@ -1956,7 +1973,8 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
         value_cols = [(src.header[c], tag) for c, tag in src.tags]
         want = [tname] + [c for c, _ in value_cols]
     pf = _kept_open(opened, src.path, lambda: pq.ParquetFile(src.path, pre_buffer=False,
-                                                             buffer_size=_parquet_buffer(len(want))))
+                                                             buffer_size=_parquet_buffer(len(want)),
+                                                             read_dictionary=src.read_dictionary or None))
     group = src.group_rows[g + 1] - src.group_rows[g]
     stop = group if stop is None else stop
     n = first  # rows of the group taken so far
@@ -2047,13 +2065,15 @@ def _file_size(path: str) -> int:
 
 
 def _slice_codes(scol: Any, keep: NDArray[np.bool_], problems: _GroupProblems, first: int,
-                 cname: str) -> tuple[dict[str, int], IntArray] | None:
+                 cname: str, cache: list[Any] | None = None) -> tuple[dict[str, int], IntArray] | None:
     """A slice's stream column as codes: the distinct names (stripped, not empty) by code, in
     the order of the column's dictionary, and each row's code, ``len(names)`` for a row not
     kept (no time, no value, no name, an empty name).  None when the column holds no names (a
     problem of the whole column).  A dictionary-encoded column (as pyarrow keeps strings)
     gives its indices; a column of integers (tags exported by number) names each stream by
-    its decimal text, as a CSV of the same numbers does."""
+    its decimal text, as a CSV of the same numbers does.  ``cache``: the last slice's
+    dictionary and what was made of it, kept there and used again while the dictionary is
+    the same (the slices of a row group share their page's dictionary)."""
     import pyarrow as pa
 
     if not pa.types.is_dictionary(scol.type):
@@ -2062,14 +2082,19 @@ def _slice_codes(scol: Any, keep: NDArray[np.bool_], problems: _GroupProblems, f
             problems.whole(cname, f"holds {scol.type}, not stream names; the rows were skipped", len(scol))
             return None
         scol = scol.dictionary_encode()
-    names = [str(x).strip() for x in scol.dictionary.to_pylist()]
     valid = _arrow_valid(scol.indices)
     nulls = scol.indices.null_count or not PARQUET_FAST
     if nulls:
         problems.rows(keep & ~valid, first, cname, "no stream name (null)")
-    # The same name may stand under several codes (spaces around it): one code per name.
-    key_of: dict[str, int] = {}
-    remap = np.array([key_of.setdefault(x, len(key_of)) if x else -1 for x in names] + [-1], dtype=np.int64)
+    if cache and cache[0].equals(scol.dictionary):
+        names, key_of, remap = cache[1:]
+    else:
+        names = [str(x).strip() for x in scol.dictionary.to_pylist()]
+        # The same name may stand under several codes (spaces around it): one code per name.
+        key_of = {}
+        remap = np.array([key_of.setdefault(x, len(key_of)) if x else -1 for x in names] + [-1], dtype=np.int64)
+        if cache is not None:
+            cache[:] = [scol.dictionary, names, key_of, remap]
     indices = _arrow_plain(scol.indices, valid, 0)
     if indices is None:  # unsigned 64-bit indices
         indices = np.asarray(scol.indices.fill_null(0), dtype=np.int64)
@@ -2126,6 +2151,8 @@ class _PieceStreams:
         self.starts: list[int] = []  # each slice's first row (of the piece)
         self.local: list[NDArray[np.int32]] = []  # each slice's piece code of its own codes
         self.dropped = False  # a row not kept
+        self.cache: list[Any] = []  # the last slice's dictionary, its names (_slice_codes)
+        self.last: tuple[dict[str, int], NDArray[np.int32]] | None = None  # its piece codes
 
     def skip(self, m: int) -> None:
         """A slice none of whose rows is kept (a problem of a whole column)."""
@@ -2138,7 +2165,7 @@ class _PieceStreams:
     def add(self, scol: Any, times: FloatArray, v: FloatArray, keep: NDArray[np.bool_],
             problems: _GroupProblems, first: int, cname: str) -> None:
         m = times.shape[0]
-        got = _slice_codes(scol, keep, problems, first, cname)
+        got = _slice_codes(scol, keep, problems, first, cname, self.cache)
         if got is None:
             self.skip(m)
             return
@@ -2146,7 +2173,11 @@ class _PieceStreams:
         a, b = self.n, self.n + m
         self.starts.append(a)
         self.n = b
-        local = np.array([self.key_of.setdefault(x, len(self.key_of)) for x in key_of] + [-1], dtype=np.int32)
+        if self.last is not None and self.last[0] is key_of:
+            local = self.last[1]
+        else:
+            local = np.array([self.key_of.setdefault(x, len(self.key_of)) for x in key_of] + [-1], dtype=np.int32)
+            self.last = key_of, local
         self.local.append(local)
         self.t[a:b] = times
         self.v[a:b] = v
@@ -2171,7 +2202,7 @@ class _PieceStreams:
         c = self.c[:n]
         if self.dropped:
             c[c < 0] = count  # rows not kept sort last
-        place0 = np.int64(self.place0)
+        place0 = self.place0
         t, v = self.t, self.v
         names = list(self.key_of)
         # Each stream's first row, and its rows: (start, stop, step) or the rows sorted by code.
@@ -2192,7 +2223,7 @@ class _PieceStreams:
         codes = c[first].astype(np.int64)
         in_slice = np.searchsorted(np.array(self.starts), first, side="right") - 1
         rank = np.empty(first.shape[0], dtype=np.int64)
-        for s in np.unique(in_slice).tolist():
+        for s in sorted(set(in_slice.tolist())):  # (not np.unique: it imports numpy.ma, 10 ms or more)
             at = np.flatnonzero(in_slice == s)
             local = self.local[s][:-1]
             inverse = np.empty(count, dtype=np.int64)
@@ -2203,9 +2234,9 @@ class _PieceStreams:
             if isinstance(which, tuple):
                 lo, hi, step = which
                 out.append((names[int(codes[j])], t[lo:hi:step].copy(), v[lo:hi:step].copy(),
-                            np.arange(lo, hi, step, dtype=np.int64) + place0))
+                            np.arange(lo + place0, hi + place0, step, dtype=np.int64)))
             else:
-                out.append((names[int(codes[j])], t.take(which), v.take(which), which + place0))
+                out.append((names[int(codes[j])], t.take(which), v.take(which), which + np.int64(place0)))
 
     @staticmethod
     def _periodic(c: NDArray[np.int32], count: int) -> bool:

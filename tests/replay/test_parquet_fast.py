@@ -263,3 +263,47 @@ def test_the_records_of_a_replay_of_long_files_in_any_order_are_the_reference_s(
     # the steps were found (the records compared are not all empty), or a shuffled file's rows
     # were refused as out of order
     assert len(a.records) >= 2 if shape != 5 else a.problem_count > 0
+
+
+@pytest.mark.parametrize("unit", ["s", "ms", "us", "ns"])
+def test_timestamps_of_every_unit_read_as_the_cast_and_division_they_were_read_with(unit: str) -> None:
+    # The time column's integers are divided in one pass (np.divide with a float64 result);
+    # the reference is what it replaced: astype(float64), then a division by the units a
+    # second.  Times from the year 1 to 9999 and past either end (those rows are problems),
+    # counts of units beyond 2**53 (not exact as doubles), a null.
+    per = {"s": 1, "ms": 10**3, "us": 10**6, "ns": 10**9}[unit]
+    rng = np.random.default_rng(per)
+    lo, hi = sources.TIME_MIN, sources.TIME_MAX
+    secs = np.concatenate([rng.uniform(lo, hi, 2000), [lo, hi, lo - 1, hi + 1, 0.0, 1.788e9]])
+    raw = np.clip(np.round(secs * per), -9.2e18, 9.2e18).astype(np.int64)  # (ns: 1678 to 2261)
+    raw[:500] += rng.integers(0, per, 500) if per > 1 else 0  # not whole seconds
+    col = pa.array(raw.tolist() + [None], pa.timestamp(unit, tz="UTC"))
+    problems = sources._GroupProblems(sources.Source("x.parquet", "parquet", "long", [], 0), 0)
+    t, ok = sources._arrow_times(col, "time", None, 0, problems)
+    want, p = raw, per
+    while p > 1000 and bool((want % 1000 == 0).all()):
+        want, p = want // 1000, p // 1000
+    ref = want.astype(np.float64) / p if p > 1 else want.astype(np.float64)
+    assert t[:-1].tobytes() == ref.tobytes()
+    in_range = (ref >= lo) & (ref <= hi)
+    assert ok.tolist() == in_range.tolist() + [False]
+    assert problems.messages  # the null and the times past either end are named
+
+
+def test_the_range_check_s_short_way_keeps_exactly_the_times_in_range() -> None:
+    # _valid_range returns `valid` untouched when the smallest and largest times are in range;
+    # the reference is the row-by-row test it skips (_in_range), on times at and past the
+    # limits, NaN, and all-valid arrays.
+    rng = np.random.default_rng(3)
+    lo, hi = sources.TIME_MIN, sources.TIME_MAX
+    src = sources.Source("x.parquet", "parquet", "long", [], 0)
+    edges = [lo, hi, np.nextafter(lo, -np.inf), np.nextafter(hi, np.inf), np.nan, 0.0]
+    for k in range(200):
+        t = rng.uniform(lo, hi, int(rng.integers(0, 50)))
+        if k % 2:
+            t = np.concatenate([t, rng.choice(edges, int(rng.integers(1, 4)))])
+        valid = rng.random(t.shape[0]) < 0.9
+        problems = sources._GroupProblems(src, 0)
+        got = sources._valid_range(t, valid, 0, "time", problems)
+        assert got.tolist() == (valid & sources._in_range(t)).tolist()
+        assert bool(problems.messages) == bool((valid & ~sources._in_range(t) & ~np.isnan(t)).any())
