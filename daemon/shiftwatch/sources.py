@@ -1770,9 +1770,10 @@ def _naive_wall_to_utc(wall: FloatArray, tz: tzinfo) -> tuple[FloatArray, NDArra
 
 #: Take the short ways through a Parquet slice (True): no search for nulls in a column that has
 #: none (pyarrow counts them), a stream column's dictionary used as the codes when its names are
-#: distinct and not empty, codes sorted as 16-bit integers.  False: every check on every slice
-#: and codes sorted as 64-bit integers, the reference the short ways are held to bit for bit
-#: (tests/replay/test_parquet_fast.py).
+#: distinct and not empty, a long file's piece grouped by stream once (:class:`_PieceStreams`).
+#: False: every check on every slice, each slice sorted by stream (a stable sort of 64-bit
+#: codes) and its streams' rows copied out, the reference the short ways are held to bit for
+#: bit (tests/replay/test_parquet_fast.py).
 PARQUET_FAST = True
 
 #: numpy types of the fixed-width arrow columns read straight from their buffers.
@@ -2121,10 +2122,7 @@ def _long_parquet_parts(scol: Any, times: FloatArray, v: FloatArray, places: Int
     if got is None:
         return
     key_of, codes = got
-    # Stable: each stream's rows stay in file order.  Codes of 16 bits are sorted by radix (numpy's
-    # stable sort of int16): 0.2 ms for a slice of 65,536 rows against 0.6 ms as int64.
-    small = len(key_of) < 2**15 and PARQUET_FAST  # codes up to len(key_of)
-    order = np.argsort(codes.astype(np.int16) if small else codes, kind="stable")
+    order = np.argsort(codes, kind="stable")  # each stream's rows stay in file order
     for key, sel in zip(key_of, _groups(order, codes, len(key_of) + 1)):
         if sel.shape[0]:
             collected.setdefault(key, []).append((times[sel], v[sel], places[sel]))
@@ -2134,8 +2132,8 @@ class _PieceStreams:
     """The rows of a piece of a long file with a stream column, grouped by stream once for the
     whole piece (``PARQUET_FAST``): each slice's codes, times and values are copied into arrays
     of the piece's length as the slices are read (their problems named slice by slice, as
-    before), and :meth:`parts` sorts the piece's rows by stream once and copies each stream's
-    rows out once.  The slice-by-slice way (:func:`_long_parquet_parts`) sorted every slice and
+    before), and :meth:`parts` groups the piece's rows by stream once (by their period, by
+    slicing rows sorted by stream, or by one sort) and copies each stream's rows out once.  The slice-by-slice way (:func:`_long_parquet_parts`) sorted every slice and
     made a part per stream and slice: 22,200 small copies and 7,400 parts for the bench's 2.4
     million rows of 200 streams, against 6,000 and 2,000 here.  The parts are those of the
     slice-by-slice way joined: the same rows per stream in file order, the streams in the same

@@ -134,12 +134,15 @@ def test_wide_parquet_slices_read_the_short_way_give_the_reference_blocks(
 
 
 @pytest.mark.parametrize("distinct", [32_766, 32_767, 32_768])
-def test_codes_at_the_16_bit_sort_s_bound_are_sorted_as_the_reference_sorts_them(
+def test_codes_at_the_32_bit_keys_bound_are_sorted_as_the_reference_sorts_them(
         tmp_path: Path, monkeypatch: pytest.MonkeyPatch, distinct: int) -> None:
-    # A slice's codes run up to the number of names (the code of rows not kept): 32,767 names
-    # is the most a 16-bit sort takes.  Rows in a shuffled order, a few without a value.
+    # A piece's codes run up to the number of names (the code of rows not kept), each with its
+    # row below it in a key of 32 bits while they fit: a piece of 70,000 rows (two slices)
+    # takes 17 bits for its rows, so 32,767 names is the most such keys hold, and 32,768
+    # are sorted by numpy's stable argsort instead.  Rows in a shuffled order, a few without
+    # a value.
     rng = np.random.default_rng(distinct)
-    n = 40_000
+    n = 70_000
     names = [f"brackenfield/t{k}" for k in range(distinct)]
     picks = np.concatenate([np.arange(distinct), rng.integers(0, distinct, n - distinct)])
     rng.shuffle(picks)
