@@ -310,3 +310,49 @@ def test_the_range_check_s_short_way_keeps_exactly_the_times_in_range() -> None:
         got = sources._valid_range(t, valid, 0, "time", problems)
         assert got.tolist() == (valid & sources._in_range(t)).tolist()
         assert bool(problems.messages) == bool((valid & ~sources._in_range(t) & ~np.isnan(t)).any())
+
+
+@pytest.mark.usefixtures("small_slices")
+@pytest.mark.parametrize("seed", range(4))
+def test_local_times_across_the_hour_repeated_in_autumn_group_as_the_reference_groups_them(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch, seed: int) -> None:
+    # With --timezone, a stream's second pass through the hour the clocks go back is told by
+    # its own order (RepeatedHour.follow, part by part): the short way hands it one part a
+    # piece where the reference hands one a slice.  Europe/Berlin went back on 2026-10-25 at
+    # 03:00 local (tz database, from memory; zoneinfo gives the instants here); readings every
+    # 20 s from 01:00 to 05:00 local, 6 tags time by time (or shuffled at each time), naive
+    # timestamps in milliseconds as historians export them, a step after 04:00 on two tags.
+    from datetime import UTC, datetime
+    from zoneinfo import ZoneInfo
+
+    zone = ZoneInfo("Europe/Berlin")
+    rng = np.random.default_rng(900 + seed)
+    start = datetime(2026, 10, 24, 23, 0, tzinfo=UTC).timestamp()  # 01:00 local (UTC+2)
+    instants = start + 20.0 * np.arange(900)  # to 03:00 UTC, 04:00 local after the change
+    wall = [datetime.fromtimestamp(x, zone).replace(tzinfo=None) for x in instants.tolist()]
+    wall_ms = np.array([round((w - datetime(1970, 1, 1)).total_seconds() * 1000) for w in wall])
+    assert len(set(wall_ms.tolist())) < wall_ms.shape[0]  # the repeated hour is there
+    tags = 6
+    code = np.tile(np.arange(tags), wall_ms.shape[0])
+    at = np.repeat(np.arange(wall_ms.shape[0]), tags)
+    if seed % 2:
+        order = np.lexsort((rng.random(code.shape[0]), at))
+        code, at = code[order], at[order]
+    step = np.where((code < 2) & (at > 700), 3.0, 0.0)
+    table = pa.table({
+        "time": pa.array(wall_ms[at], pa.timestamp("ms")),
+        "stream": pa.DictionaryArray.from_arrays(
+            pa.array(code, pa.int32()), pa.array([f"brackenfield/line4/press{k}" for k in range(tags)])),
+        "value": pa.array(20.0 + step + rng.standard_normal(code.shape[0]).round(3)),
+    })
+    path = tmp_path / "autumn.parquet"
+    pq.write_table(table, path, row_group_size=2000)
+    monkeypatch.setattr(sources, "PARQUET_FAST", True)
+    a = replay_files([path], timezone="Europe/Berlin")
+    monkeypatch.setattr(sources, "PARQUET_FAST", False)
+    b = replay_files([path], timezone="Europe/Berlin")
+    assert a.repeated_hour == b.repeated_hour == 180 * tags  # the second pass through 02:00-03:00
+    assert [r.to_dict() for r in a.records] == [r.to_dict() for r in b.records]
+    assert len(a.records) >= 2  # the steps were found
+    assert (a.rows, a.problems, a.problem_count) == (b.rows, b.problems, b.problem_count)
+    assert a.rows == code.shape[0]
