@@ -442,7 +442,14 @@ def test_no_step_below_min_shift_is_confirmed_on_heavy_tailed_noise() -> None:
         recs += eng.process(t[a:a + 1024], 50.0 + x[a:a + 1024]).records
     ends = [r for r in recs if r.phase in ("confirmed", "returned")]
     assert all(abs(r.delta_sigma) >= 1.0 for r in ends), [r.delta_sigma for r in ends]
-    assert any(r.phase == "undecided" for r in recs)
+    # These samples once ended 2 of 112 events undecided on that rule; both came after
+    # runs of spikes had pulled the follower 0.63 sigma off the level (it was fed
+    # readings beyond the spike band as they were).  Held to the band (2026-12-05,
+    # tests/core/test_outlier_burst.py) the follower stays within 0.36 sigma, and all
+    # 108 detections on this step-free series end dismissed: none is confirmed.
+    phases = [r.phase for r in recs]
+    assert phases.count("dismissed") + phases.count("undecided") >= phases.count("detected") - 1
+    assert not ends
 
 
 def test_heavy_tailed_noise_alarms_at_the_chosen_rate_whatever_its_warmup_showed() -> None:

@@ -836,7 +836,7 @@ class StreamEngine:
             # on samples the window holds now (see _follow_plan).
             lag = self._follow_lag
             w = self._window.values
-            path = follow_path(w[len(w) - lag:] - b.level, self._follow, lam)
+            path = follow_path(self._follow_input(w[len(w) - lag:], b), self._follow, lam)
             offsets = tuple(path[np.maximum(0, lag + np.arange(delay + 1) - delay)].tolist())
         return CalmTerms(level=b.level, offsets=offsets, lam=lam, delay=delay if lam else 0,
                          lo=b.level + self._center - span, hi=b.level + self._center + span,
@@ -2114,6 +2114,7 @@ class StreamEngine:
         assert b is not None and test is not None
         span = self.settings.spike_sigma * b.sigma
         hi, lo = b.level + self._center + span, b.level + self._center - span
+        f_hi, f_lo = self._center + span, self._center - span  # the follower's band (_follow_input)
         level, phi, clip = b.level, b.phi, b.clip
         inv = 1.0 / b.innovation_sigma
         lam = 1.0 / follow_samples(b.phi)
@@ -2125,7 +2126,8 @@ class StreamEngine:
                 break
             w = self._window
             while self._follow_lag > delay:  # the delay shrank (phi was refined): catch up first
-                self._follow = keep * self._follow + lam * (w.at(len(w) - self._follow_lag)[1] - level)
+                fr = w.at(len(w) - self._follow_lag)[1] - level
+                self._follow = keep * self._follow + lam * (f_hi if fr > f_hi else (f_lo if fr < f_lo else fr))
                 self._follow_lag -= 1
             u = self._follow
             r = xv - level - u
@@ -2142,7 +2144,8 @@ class StreamEngine:
                 self._open_event(tv, result, tv)
                 break
             if self._follow_lag > delay:
-                self._follow = keep * u + lam * (w.at(len(w) - self._follow_lag)[1] - level)
+                fr = w.at(len(w) - self._follow_lag)[1] - level
+                self._follow = keep * u + lam * (f_hi if fr > f_hi else (f_lo if fr < f_lo else fr))
                 self._follow_lag -= 1
             refine = self._watch_kept + 1 >= min(self._next_refine, self._next_center)
             self._count_watched(1)
@@ -2168,7 +2171,9 @@ class StreamEngine:
         from_window = min(lag, feed)
         y = kx[: feed - from_window] if from_window == 0 else np.concatenate(
             (w.values[len(w) - lag: len(w) - lag + from_window], kx[: feed - from_window]))
-        path = follow_path(y - level, self._follow, lam)
+        b = self._baseline
+        assert b is not None
+        path = follow_path(self._follow_input(y, b), self._follow, lam)
         # Sample i of the stretch is measured once max(0, lag + i - delay) samples are fed.
         k0 = max(0, delay - lag)
         if k0 == 0:
@@ -2568,6 +2573,20 @@ class StreamEngine:
         self.records_total = _tally(self.records_total, ("undecided",))
         return rec
 
+    def _follow_input(self, x: FloatArray, b: Baseline) -> FloatArray:
+        """What the follower is fed of samples ``x``: each less the baseline's level, held
+        within the spike band (``spike_sigma`` sigmas about the level plus the centre
+        spikes are judged against).  A sample beyond the band is kept only as part of a
+        run (a step's first samples, a burst of outliers); before, a burst of three
+        samples 100 sigma out moved the follower by 3 x 100 / 110 sigma once the
+        follower reached it, and the stream then detected the burst's "step" again and
+        again (30 events for three samples of 1e9 on a level of 20).  Inside the band,
+        where every sample of a calm stream lies, the floats are those of ``x - level``."""
+        span = self.settings.spike_sigma * b.sigma
+        r = x - b.level
+        _clip(r, self._center - span, self._center + span, out=r)
+        return r
+
     def _follow_catch_up(self, ev: OpenEvent, b: Baseline) -> None:
         """After an event that found no step: the level went on moving, if at all,
         slowly.  The follower catches up with the event's samples as if no event had
@@ -2576,7 +2595,8 @@ class StreamEngine:
         vals = self._fitter.values
         start = max(0, ev.trip_len - self._follow_lag)
         end = max(start, vals.shape[0] - follow_delay(b.phi, self.settings.window_samples))
-        self._follow = float(follow_path(vals[start:end] - b.level, self._follow, 1.0 / follow_samples(b.phi))[-1])
+        self._follow = float(follow_path(self._follow_input(vals[start:end], b), self._follow,
+                                         1.0 / follow_samples(b.phi))[-1])
         self._follow_lag = vals.shape[0] - end
         self._center = self._follow
         self._prev_r -= self._follow
