@@ -154,8 +154,8 @@ class AlertRecord:
             "shift_at": format_time(self.shift_at),
             "shift_at_low": format_time(self.shift_at_low),
             "shift_at_high": format_time(self.shift_at_high),
-            "level_before": _round(self.level_before),
-            "level_after": _round(self.level_after),
+            "level_before": _round_level(self.level_before, self.level_before_se),
+            "level_after": _round_level(self.level_after, self.level_after_se),
             "delta": _round(self.delta),
             "delta_sigma": _fixed(self.delta_sigma, 3),
             "sigma": _round(self.sigma),
@@ -193,6 +193,25 @@ def _round(x: float) -> float | None:
     if x == 0:
         return float(x)
     return float(f"{x:.6g}")
+
+
+def _round_level(x: float, se: float) -> float | None:
+    """A fitted level as :func:`_round` gives it, or, where 6 significant digits would
+    round it by more than a tenth of its standard error ``se`` (a reading far from
+    zero with little noise: 773.152 K with sigma 0.001 K, 101325.37 Pa with sigma
+    0.2 Pa), to two significant digits of ``se``.  Before, such levels were rounded by
+    up to 10 of their standard errors (773.155 for 773.15542, se 5e-05), and
+    ``level_after - level_before`` was no longer the record's ``delta``.
+
+    >>> _round_level(500.0312, 0.017), _round_level(773.1554162, 5.09e-05), _round_level(101325.372, 0.0105)
+    (500.031, 773.155416, 101325.372)
+    """
+    r = _round(x)
+    if r is None or x == 0 or not (se > 0.0 and math.isfinite(se)):
+        return r
+    if 10.0 ** (math.floor(math.log10(abs(x))) - 5) > se / 10.0:
+        return round(x, 1 - math.floor(math.log10(se)))
+    return r
 
 
 def _fixed(x: float, digits: int) -> float | None:
