@@ -173,7 +173,7 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
                 f"{before} -> {after}{unit}")
     if rec.phase == "planned":
         return (f"{verb} {who} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
-                f"({abs(rec.delta_sigma):.2g} sigma) at {clock(rec.shift_at, tz, today=ref)}, inside planned "
+                f"({sigmas_text(rec.delta_sigma)}) at {clock(rec.shift_at, tz, today=ref)}, inside planned "
                 f"window {rec.plan_id}: no alarm, watching on from the new level: "
                 f"{before} -> {after}{unit}")
     if rec.phase == "undecided":
@@ -181,8 +181,27 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
                 f"{clock(rec.detected_at, tz, today=ref)} is still uncertain ({before} -> "
                 f"{after}{unit}); watching on from the current level")
     return (f"{verb} {who} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
-            f"({abs(rec.delta_sigma):.2g} sigma) at {clock(rec.shift_at, tz, today=ref)}, detected "
+            f"({sigmas_text(rec.delta_sigma)}) at {clock(rec.shift_at, tz, today=ref)}, detected "
             f"{_lag_text(rec.detected_at - rec.shift_at)} later: {before} -> {after}{unit}")
+
+
+#: What a summary says in place of a step's size in sigmas when the readings had no noise
+#: (sigma 0: the size in sigmas is infinite, ``null`` in the record's ``delta_sigma``).
+NO_NOISE = "no noise to measure it in sigmas"
+
+
+def sigmas_text(delta_sigma: float, *, signed: bool = False) -> str:
+    """A step's size in noise sigmas for people: ``2.1 sigma`` (``+2.1 sigma`` signed), or
+    :data:`NO_NOISE` when it is not finite.  Before, a step on readings without noise
+    (a stuck sensor that moved) read "(inf sigma)" in the summary and "(+inf sigma)" on
+    the status page.
+
+    >>> sigmas_text(2.104), sigmas_text(-2.104, signed=True), sigmas_text(float("inf"))
+    ('2.1 sigma', '-2.1 sigma', 'no noise to measure it in sigmas')
+    """
+    if not math.isfinite(delta_sigma):
+        return NO_NOISE
+    return f"{delta_sigma:+.2g} sigma" if signed else f"{abs(delta_sigma):.2g} sigma"
 
 
 def _levels(a: float, b: float, scale: float) -> tuple[str, str]:

@@ -80,3 +80,27 @@ def test_a_confirmed_record_keeps_its_levels_to_their_standard_errors(
     a, b = (float(v) for v in shown.groups())
     assert "e+" not in shown.group(0)
     assert abs((b - a) - rec.delta) <= 0.05 * abs(rec.delta), text
+
+
+def test_a_step_on_readings_without_noise_says_so_instead_of_inf_sigma() -> None:
+    # Outside trial of 2026-12-05, through the real daemon: a valve-position reading
+    # that sat at 7.25 bar for 1,500 samples and moved to 7.5 (a stuck sensor that
+    # moved: README, a known limit that it reads as a step).  The record's
+    # ``delta_sigma`` was null, as RFC 8259 section 6 requires (JSON has no infinity),
+    # but the summary an operator reads said "stepped up 0.25 bar (inf sigma)", and
+    # the status page "+0.25 bar (+inf sigma)".  (Failed before on both texts.)
+    from shiftwatch.status import EventSummary, _size_text
+
+    x = np.full(1800, 7.25)
+    x[1500:] = 7.5
+    eng = StreamEngine("brackenfield/line2/capper/air_bar", unit="bar")
+    recs = eng.process(T0 + np.arange(1800, dtype=np.float64), x).records
+    assert [r.phase for r in recs] == ["detected", "confirmed"]
+    for rec in recs:
+        assert rec.to_dict()["delta_sigma"] is None and rec.to_dict()["sigma"] == 0.0
+        text = alert_summary(rec)
+        assert "inf" not in text and "nan" not in text, text
+        assert "stepped up 0.25 bar (no noise to measure it in sigmas)" in text, text
+        assert text.endswith(": 7.25 -> 7.5 bar"), text
+        page = _size_text(EventSummary.of(rec, rec.as_of), "bar")
+        assert page == "+0.25 bar (no noise to measure it in sigmas)", page
