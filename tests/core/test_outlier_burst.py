@@ -93,3 +93,51 @@ def test_after_the_burst_a_real_step_is_confirmed_where_it_is() -> None:
     assert step["shift_at_low"] <= "2026-03-02T01:06:40.000Z" <= step["shift_at_high"]
     assert abs(step["level_before"] - LEVEL) < 0.1 and abs(step["delta"] - 2 * SIGMA) < 0.3
     assert abs(step["sigma"] - SIGMA) < 0.05
+
+
+@pytest.mark.parametrize("length", [2, 3])
+@pytest.mark.parametrize("state", [0, 1, 2, 3, 4])
+def test_a_burst_in_the_first_warm_up_is_one_dismissed_event(state: int, length: int) -> None:
+    # (Failed before, 10 of 10: the split test's event was dismissed, then the warm-up's
+    # baseline came out at level 554.6, sigma 608.7, because its Huber steps started from
+    # the mean moving range, which the burst's two jumps of 1e6 made 8,900; the stream
+    # then reported 5 undecided events and, for two readings, a false confirmed step.)
+    rng = np.random.default_rng(state)
+    x = LEVEL + SIGMA * rng.standard_normal(N)
+    x[100:100 + length] = 1e6
+    recs = run(x, 64)
+    assert [r["phase"] for r in recs] == ["detected", "dismissed"], [(r["phase"], r["as_of"]) for r in recs]
+    assert run(x, 1) == recs
+
+
+def test_the_robust_start_changes_no_baseline_without_wild_readings() -> None:
+    # The mean moving range is set aside only when it is more than MR_OUTLIER_RATIO times
+    # both robust estimates.  On 1,200 warm-ups of 200 samples without wild readings
+    # (independent normal, AR(1) 0.8 by scipy.signal.lfilter, Student t(3), readings
+    # quantised to a tenth of sigma, a 3-sigma step at sample 100, a slow drift) the
+    # baseline is the one the mean-moving-range start gives, bit for bit.
+    from scipy.signal import lfilter
+
+    from shiftwatch.core import baseline as bl
+
+    rng = np.random.default_rng(77)
+    t = np.arange(200.0)
+    kinds = {
+        "iid": lambda: rng.standard_normal(200),
+        "ar08": lambda: lfilter([1.0], [1.0, -0.8], rng.standard_normal(200)),
+        "t3": lambda: rng.standard_t(3, 200),
+        "quantised": lambda: np.round(rng.standard_normal(200) * 10) / 10,
+        "step": lambda: rng.standard_normal(200) + 3.0 * (t >= 100),
+        "drift": lambda: rng.standard_normal(200) + 0.01 * t,
+    }
+    for name, draw in kinds.items():
+        for _ in range(200):
+            x = 50.0 + draw()
+            new = bl.estimate_baseline(t, x, clip=4.0)
+            old_ratio = bl.MR_OUTLIER_RATIO
+            bl.MR_OUTLIER_RATIO = np.inf
+            try:
+                old = bl.estimate_baseline(t, x, clip=4.0)
+            finally:
+                bl.MR_OUTLIER_RATIO = old_ratio
+            assert new == old, name
