@@ -161,6 +161,10 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
     verb = {"detected": "DETECTED", "confirmed": "CONFIRMED", "dismissed": "DISMISSED"}.get(
         rec.phase, rec.phase.upper())
     before, after = _levels(rec.level_before, rec.level_after, rec.delta)
+    at = clock(rec.shift_at, tz, today=ref)
+    if rec.gap_from is not None:  # a step across a pause in the readings: say it may lie in the pause
+        at += (f" (the first reading after {format_duration(rec.shift_at_low - rec.gap_from)} without "
+               f"readings, since {clock(rec.gap_from, tz, today=ref)})")
     if rec.phase == "dismissed":
         return (f"{verb} {who}: no lasting step found after the detection at "
                 f"{clock(rec.detected_at, tz, today=ref)}; the level stays "
@@ -169,11 +173,11 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
     if rec.phase == "returned":
         start = "?" if rec.excursion_start is None else clock(rec.excursion_start, tz, today=ref)
         return (f"{verb} {who} went back {rec.direction} {abs(rec.delta):.3g}{unit} at "
-                f"{clock(rec.shift_at, tz, today=ref)}, ending the excursion that began at {start}: "
+                f"{at}, ending the excursion that began at {start}: "
                 f"{before} -> {after}{unit}")
     if rec.phase == "planned":
         return (f"{verb} {who} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
-                f"({sigmas_text(rec.delta_sigma)}) at {clock(rec.shift_at, tz, today=ref)}, inside planned "
+                f"({sigmas_text(rec.delta_sigma)}) at {at}, inside planned "
                 f"window {rec.plan_id}: no alarm, watching on from the new level: "
                 f"{before} -> {after}{unit}")
     if rec.phase == "undecided":
@@ -181,7 +185,7 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
                 f"{clock(rec.detected_at, tz, today=ref)} is still uncertain ({before} -> "
                 f"{after}{unit}); watching on from the current level")
     return (f"{verb} {who} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
-            f"({sigmas_text(rec.delta_sigma)}) at {clock(rec.shift_at, tz, today=ref)}, detected "
+            f"({sigmas_text(rec.delta_sigma)}) at {at}, detected "
             f"{_lag_text(rec.detected_at - rec.shift_at)} later: {before} -> {after}{unit}")
 
 

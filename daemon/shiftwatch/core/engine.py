@@ -143,6 +143,9 @@ class AlertRecord:
     excursion_start: float | None = None
     #: for a ``planned`` record: the planned window the step fell in
     plan_id: str | None = None
+    #: the time of the last reading before ``shift_at_low`` when the readings paused there
+    #: for more than GAP_FACTOR of their usual intervals: the step came at some moment after it
+    gap_from: float | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON form: contract fields first, then the extras."""
@@ -181,6 +184,8 @@ class AlertRecord:
             d["excursion_start"] = format_time(self.excursion_start)
         if self.plan_id is not None:
             d["plan_id"] = self.plan_id
+        if self.gap_from is not None:
+            d["gap_from"] = format_time(self.gap_from)
         return d
 
 
@@ -543,6 +548,9 @@ REFIT_TEST = "event_refit"
 TRIAL_TEST = "event_trial"
 #: The shortest segment an event's step fit allows on each side of the step, and the
 #: fewest samples it can fit (``StepFitter``: at least 2 * min_segment + 1).
+#: A pause in the readings before a step's shift-time interval of more than this many
+#: usual sampling intervals is named in its records (``gap_from``).
+GAP_FACTOR = 10.0
 FIT_MIN_SEGMENT = 2
 FIT_MIN = 2 * FIT_MIN_SEGMENT + 1
 #: A segment that holds an outlier is split at its outliers only
@@ -2898,17 +2906,34 @@ class StreamEngine:
                 raise ValueError(f"{field_name}: {exc.args[0]} is missing from the saved state") from None  # noqa: TRY004  every bad field is a ValueError
             raise ValueError(f"{field_name}: malformed ({exc!r:.120})") from None
 
+    def _gap_from(self, shift_at_low: float) -> float | None:
+        """The time of the last reading before ``shift_at_low`` when the readings paused
+        there for more than GAP_FACTOR times their median interval (the event's window),
+        else None.  A step across a pause (a line stopped overnight) may have come at
+        any moment of it; its first reading after the pause is all the fit can date."""
+        f = self._fitter
+        if f is None or len(f) < 3:
+            return None
+        tt = f.times
+        j = int(np.searchsorted(tt, shift_at_low, side="left"))
+        if j < 1:
+            return None
+        usual = float(np.median(np.diff(tt)))
+        before = float(tt[j - 1])
+        return before if usual > 0.0 and shift_at_low - before > GAP_FACTOR * usual else None
+
     def _record(self, ev: OpenEvent, fit: StepFit, phase: str, as_of: float,
                 **extra: Any) -> AlertRecord:
         # A step is never dated after the detection that reported it: the fit of
         # the event's samples can reach past it only at its upper bound.
+        low = min(fit.shift_at_low, ev.detected_at)
         return AlertRecord(
             id=ev.id,
             phase=phase,
             stream=self.stream,
             detected_at=ev.detected_at,
             shift_at=min(fit.shift_at, ev.detected_at),
-            shift_at_low=min(fit.shift_at_low, ev.detected_at),
+            shift_at_low=low,
             shift_at_high=min(fit.shift_at_high, ev.detected_at),
             level_before=fit.level_before,
             level_after=fit.level_after,
@@ -2928,6 +2953,7 @@ class StreamEngine:
             p_value=fit.p_value,
             direction="up" if fit.delta > 0 else "down",
             unit=self.unit,
+            gap_from=self._gap_from(low),
             **extra,
         )
 
