@@ -143,6 +143,9 @@ class AlertRecord:
     excursion_start: float | None = None
     #: for a ``planned`` record: the planned window the step fell in
     plan_id: str | None = None
+    #: the time of the last reading before ``shift_at_low`` when the readings paused there
+    #: for more than GAP_FACTOR of their usual intervals: the step came at some moment after it
+    gap_from: float | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON form: contract fields first, then the extras."""
@@ -154,8 +157,8 @@ class AlertRecord:
             "shift_at": format_time(self.shift_at),
             "shift_at_low": format_time(self.shift_at_low),
             "shift_at_high": format_time(self.shift_at_high),
-            "level_before": _round(self.level_before),
-            "level_after": _round(self.level_after),
+            "level_before": _round_level(self.level_before, self.level_before_se),
+            "level_after": _round_level(self.level_after, self.level_after_se),
             "delta": _round(self.delta),
             "delta_sigma": _fixed(self.delta_sigma, 3),
             "sigma": _round(self.sigma),
@@ -181,6 +184,8 @@ class AlertRecord:
             d["excursion_start"] = format_time(self.excursion_start)
         if self.plan_id is not None:
             d["plan_id"] = self.plan_id
+        if self.gap_from is not None:
+            d["gap_from"] = format_time(self.gap_from)
         return d
 
 
@@ -193,6 +198,25 @@ def _round(x: float) -> float | None:
     if x == 0:
         return float(x)
     return float(f"{x:.6g}")
+
+
+def _round_level(x: float, se: float) -> float | None:
+    """A fitted level as :func:`_round` gives it, or, where 6 significant digits would
+    round it by more than a tenth of its standard error ``se`` (a reading far from
+    zero with little noise: 773.152 K with sigma 0.001 K, 101325.37 Pa with sigma
+    0.2 Pa), to two significant digits of ``se``.  Before, such levels were rounded by
+    up to 10 of their standard errors (773.155 for 773.15542, se 5e-05), and
+    ``level_after - level_before`` was no longer the record's ``delta``.
+
+    >>> _round_level(500.0312, 0.017), _round_level(773.1554162, 5.09e-05), _round_level(101325.372, 0.0105)
+    (500.031, 773.155416, 101325.372)
+    """
+    r = _round(x)
+    if r is None or x == 0 or not (se > 0.0 and math.isfinite(se)):
+        return r
+    if 10.0 ** (math.floor(math.log10(abs(x))) - 5) > se / 10.0:
+        return round(x, 1 - math.floor(math.log10(se)))
+    return r
 
 
 def _fixed(x: float, digits: int) -> float | None:
@@ -524,6 +548,9 @@ REFIT_TEST = "event_refit"
 TRIAL_TEST = "event_trial"
 #: The shortest segment an event's step fit allows on each side of the step, and the
 #: fewest samples it can fit (``StepFitter``: at least 2 * min_segment + 1).
+#: A pause in the readings before a step's shift-time interval of more than this many
+#: usual sampling intervals is named in its records (``gap_from``).
+GAP_FACTOR = 10.0
 FIT_MIN_SEGMENT = 2
 FIT_MIN = 2 * FIT_MIN_SEGMENT + 1
 #: A segment that holds an outlier is split at its outliers only
@@ -836,7 +863,7 @@ class StreamEngine:
             # on samples the window holds now (see _follow_plan).
             lag = self._follow_lag
             w = self._window.values
-            path = follow_path(w[len(w) - lag:] - b.level, self._follow, lam)
+            path = follow_path(self._follow_input(w[len(w) - lag:], b), self._follow, lam)
             offsets = tuple(path[np.maximum(0, lag + np.arange(delay + 1) - delay)].tolist())
         return CalmTerms(level=b.level, offsets=offsets, lam=lam, delay=delay if lam else 0,
                          lo=b.level + self._center - span, hi=b.level + self._center + span,
@@ -2114,6 +2141,7 @@ class StreamEngine:
         assert b is not None and test is not None
         span = self.settings.spike_sigma * b.sigma
         hi, lo = b.level + self._center + span, b.level + self._center - span
+        f_hi, f_lo = self._center + span, self._center - span  # the follower's band (_follow_input)
         level, phi, clip = b.level, b.phi, b.clip
         inv = 1.0 / b.innovation_sigma
         lam = 1.0 / follow_samples(b.phi)
@@ -2125,7 +2153,8 @@ class StreamEngine:
                 break
             w = self._window
             while self._follow_lag > delay:  # the delay shrank (phi was refined): catch up first
-                self._follow = keep * self._follow + lam * (w.at(len(w) - self._follow_lag)[1] - level)
+                fr = w.at(len(w) - self._follow_lag)[1] - level
+                self._follow = keep * self._follow + lam * (f_hi if fr > f_hi else (f_lo if fr < f_lo else fr))
                 self._follow_lag -= 1
             u = self._follow
             r = xv - level - u
@@ -2142,7 +2171,8 @@ class StreamEngine:
                 self._open_event(tv, result, tv)
                 break
             if self._follow_lag > delay:
-                self._follow = keep * u + lam * (w.at(len(w) - self._follow_lag)[1] - level)
+                fr = w.at(len(w) - self._follow_lag)[1] - level
+                self._follow = keep * u + lam * (f_hi if fr > f_hi else (f_lo if fr < f_lo else fr))
                 self._follow_lag -= 1
             refine = self._watch_kept + 1 >= min(self._next_refine, self._next_center)
             self._count_watched(1)
@@ -2168,7 +2198,9 @@ class StreamEngine:
         from_window = min(lag, feed)
         y = kx[: feed - from_window] if from_window == 0 else np.concatenate(
             (w.values[len(w) - lag: len(w) - lag + from_window], kx[: feed - from_window]))
-        path = follow_path(y - level, self._follow, lam)
+        b = self._baseline
+        assert b is not None
+        path = follow_path(self._follow_input(y, b), self._follow, lam)
         # Sample i of the stretch is measured once max(0, lag + i - delay) samples are fed.
         k0 = max(0, delay - lag)
         if k0 == 0:
@@ -2568,6 +2600,20 @@ class StreamEngine:
         self.records_total = _tally(self.records_total, ("undecided",))
         return rec
 
+    def _follow_input(self, x: FloatArray, b: Baseline) -> FloatArray:
+        """What the follower is fed of samples ``x``: each less the baseline's level, held
+        within the spike band (``spike_sigma`` sigmas about the level plus the centre
+        spikes are judged against).  A sample beyond the band is kept only as part of a
+        run (a step's first samples, a burst of outliers); before, a burst of three
+        samples 100 sigma out moved the follower by 3 x 100 / 110 sigma once the
+        follower reached it, and the stream then detected the burst's "step" again and
+        again (30 events for three samples of 1e9 on a level of 20).  Inside the band,
+        where every sample of a calm stream lies, the floats are those of ``x - level``."""
+        span = self.settings.spike_sigma * b.sigma
+        r = x - b.level
+        _clip(r, self._center - span, self._center + span, out=r)
+        return r
+
     def _follow_catch_up(self, ev: OpenEvent, b: Baseline) -> None:
         """After an event that found no step: the level went on moving, if at all,
         slowly.  The follower catches up with the event's samples as if no event had
@@ -2576,7 +2622,8 @@ class StreamEngine:
         vals = self._fitter.values
         start = max(0, ev.trip_len - self._follow_lag)
         end = max(start, vals.shape[0] - follow_delay(b.phi, self.settings.window_samples))
-        self._follow = float(follow_path(vals[start:end] - b.level, self._follow, 1.0 / follow_samples(b.phi))[-1])
+        self._follow = float(follow_path(self._follow_input(vals[start:end], b), self._follow,
+                                         1.0 / follow_samples(b.phi))[-1])
         self._follow_lag = vals.shape[0] - end
         self._center = self._follow
         self._prev_r -= self._follow
@@ -2859,17 +2906,34 @@ class StreamEngine:
                 raise ValueError(f"{field_name}: {exc.args[0]} is missing from the saved state") from None  # noqa: TRY004  every bad field is a ValueError
             raise ValueError(f"{field_name}: malformed ({exc!r:.120})") from None
 
+    def _gap_from(self, shift_at_low: float) -> float | None:
+        """The time of the last reading before ``shift_at_low`` when the readings paused
+        there for more than GAP_FACTOR times their median interval (the event's window),
+        else None.  A step across a pause (a line stopped overnight) may have come at
+        any moment of it; its first reading after the pause is all the fit can date."""
+        f = self._fitter
+        if f is None or len(f) < 3:
+            return None
+        tt = f.times
+        j = int(np.searchsorted(tt, shift_at_low, side="left"))
+        if j < 1:
+            return None
+        usual = float(np.median(np.diff(tt)))
+        before = float(tt[j - 1])
+        return before if usual > 0.0 and shift_at_low - before > GAP_FACTOR * usual else None
+
     def _record(self, ev: OpenEvent, fit: StepFit, phase: str, as_of: float,
                 **extra: Any) -> AlertRecord:
         # A step is never dated after the detection that reported it: the fit of
         # the event's samples can reach past it only at its upper bound.
+        low = min(fit.shift_at_low, ev.detected_at)
         return AlertRecord(
             id=ev.id,
             phase=phase,
             stream=self.stream,
             detected_at=ev.detected_at,
             shift_at=min(fit.shift_at, ev.detected_at),
-            shift_at_low=min(fit.shift_at_low, ev.detected_at),
+            shift_at_low=low,
             shift_at_high=min(fit.shift_at_high, ev.detected_at),
             level_before=fit.level_before,
             level_after=fit.level_after,
@@ -2889,6 +2953,7 @@ class StreamEngine:
             p_value=fit.p_value,
             direction="up" if fit.delta > 0 else "down",
             unit=self.unit,
+            gap_from=self._gap_from(low),
             **extra,
         )
 
