@@ -122,6 +122,8 @@ class EventTrial:
     n_ref : the samples the reference level rests on, when few (a young level);
         ``inf`` (the default): a settled reference, whose error is negligible.
     lam : variance of the inputs per sample allowed for (> 0; with ``n_ref``).
+    n_lam : the samples ``lam`` rests on, against the trial's own inputs' variance
+        (default ``n_ref``).
 
     Examples
     --------
@@ -139,12 +141,12 @@ class EventTrial:
     >>> i, outcome = tr.feed(np.zeros(100)); i, outcome
     (24, 'no_step')
 
-    Measured from a level of 20 samples, a 3-sigma step is still confirmed (the
-    larger step sizes weigh it), a little later than from a settled level:
+    Measured from a level of 20 samples, a 3-sigma step is still confirmed as soon
+    (the larger step sizes weigh it):
 
     >>> tr = EventTrial(+1, 1.0, 0.001, 600, n_ref=20.0)
-    >>> tr.feed(np.full(20, 3.0))
-    (4, 'step')
+    >>> tr.feed(np.array([2.9, 3.2, 2.7, 3.1, 3.0, 2.4, 3.6, 2.8]))
+    (2, 'step')
     """
 
     __slots__ = ("bound", "c", "d", "lam", "last", "limit", "m", "min_samples", "n_lam", "n_ref", "outcome",
@@ -152,7 +154,7 @@ class EventTrial:
 
     def __init__(self, sign: int, d: float, error_rate: float, limit: int,
                  min_samples: int = 1, n_ref: float = math.inf, lam: float = 1.0,
-                 n_lam: float = 0.0) -> None:
+                 n_lam: float | None = None) -> None:
         if sign not in (-1, 1):
             raise ValueError(f"sign must be +1 or -1, got {sign!r}")
         if not (d > 0 and math.isfinite(d)):
@@ -165,6 +167,8 @@ class EventTrial:
             raise ValueError(f"n_ref must be a positive number or inf, got {n_ref!r}")
         if not (lam > 0.0 and math.isfinite(lam)):
             raise ValueError(f"lam must be a positive number, got {lam!r}")
+        if n_lam is None:
+            n_lam = n_ref if math.isfinite(n_ref) else 0.0
         if not (n_lam >= 0.0 and math.isfinite(n_lam)):
             raise ValueError(f"n_lam must be a number of at least 0, got {n_lam!r}")
         self.sign = sign
@@ -207,7 +211,8 @@ class EventTrial:
         their mean times ``(1 + r) / (1 - r)``, ``r`` their lag-1 autocorrelation
         (Kendall's bias ``(1 + 3 r) / m`` added) plus :data:`PHI_MARGIN` standard errors
         ``1 / sqrt(m)``, in [0, 0.95]; pooled with :attr:`lam`, which rests on
-        :attr:`n_lam` samples; at least :data:`LAM_FLOOR`."""
+        :attr:`n_lam` samples, by degrees of freedom (``m - 1`` for the inputs' own);
+        at least :data:`LAM_FLOOR`."""
         mm1 = np.maximum(m - 1.0, 1.0)
         mean = s / m
         var = np.maximum((q - s * mean) / mm1, 0.0)
@@ -216,7 +221,7 @@ class EventTrial:
         r = r + (1.0 + 3.0 * r) / m
         up = np.minimum(0.95, np.maximum(0.0, r + PHI_MARGIN / np.sqrt(m)))
         own = var * ((1.0 + up) / (1.0 - up))
-        return np.maximum((self.n_lam * self.lam + m * own) / (self.n_lam + m), LAM_FLOOR)
+        return np.maximum((self.n_lam * self.lam + (m - 1.0) * own) / (self.n_lam + (m - 1.0)), LAM_FLOOR)
 
     def _young_llr(self, m: Any, s: Any, q: Any, c: Any) -> Any:
         """The young reference's evidence (the largest of the step sizes' share-weighted
