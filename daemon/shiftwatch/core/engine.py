@@ -60,7 +60,7 @@ from shiftwatch.core.baseline import (
 from shiftwatch.core.calm import MAX_CHARTS as CALM_MAX_CHARTS
 from shiftwatch.core.calm import CalmTerms
 from shiftwatch.core.cusum import CusumTest
-from shiftwatch.core.events import NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
+from shiftwatch.core.events import LOOK, NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
 from shiftwatch.core.multicusum import MultiCusumTest
 from shiftwatch.core.screen import screen_samples
 from shiftwatch.core.selfstart import (
@@ -616,6 +616,9 @@ FOLLOW_MARGIN = 2.0
 #: Standard errors above its bias-corrected estimate at which the decision on an event
 #: takes the autocorrelation of a young stream's noise (``residual_phi_bound``).
 PHI_BOUND_MARGIN = 2.0
+#: Standard errors above its estimate at which the trial of an event on a provisional
+#: baseline takes the baseline's phi (``young_variance``).
+YOUNG_PHI_MARGIN = 1.0
 #: A step is confirmed only while the fit of the event's samples shows it at this
 #: p-value (or ``confirm_p_value``, when larger): the trial alone confirmed wander of
 #: young autocorrelated streams.  0.001 lost more real steps on AR(1) 0.8 noise
@@ -2329,7 +2332,13 @@ class StreamEngine:
             level_before=(b.level + self._follow + sign * FOLLOW_MARGIN * b.sigma * _follow_se(b.phi)
                           if b.level_n >= 2 * self.settings.window_samples else fit.level_before),
             level_after=fit.level_after,
-            trial=self._new_trial(sign),
+            # On a provisional baseline (the first warm-up: level, sigma and phi from a
+            # few dozen samples) the trial measures from a fitted level of that many
+            # samples and allows for its error and for a phi estimated low (events.py,
+            # "a reference known from few samples").  Elsewhere the plain trial: see
+            # DEVELOPERS.md for what the allowance cost on later young levels.
+            trial=(self._new_trial(sign, young_ref=max(1, fit.n_before)) if self._provisional
+                   else self._new_trial(sign)),
             n_after=max(1, fit.n_after),
         )
         self._event = ev
@@ -2372,13 +2381,23 @@ class StreamEngine:
             self.records_total = _tally(self.records_total, (PLANNED,))
         return rec
 
-    def _new_trial(self, sign: int) -> EventTrial:
+    def _new_trial(self, sign: int, young_ref: int = 0) -> EventTrial:
         """The decision for an event in direction ``sign``: the smallest step of interest in
-        the units of the trial's inputs (prewhitened residuals over the innovation sigma)."""
+        the units of the trial's inputs (prewhitened residuals over the innovation sigma).
+
+        ``young_ref``: the samples of the fitted level the trial measures from, when
+        the baseline is provisional; the trial then weighs that level's error, the
+        inputs' variance per sample taken at :func:`young_variance` for as many samples
+        as the level rests on (the baseline's phi rests on the samples before the split,
+        however many the young level holds), and pooled with its own inputs' as they
+        come (:meth:`.events.EventTrial.variance`)."""
         s = self.settings
         b = self._baseline
         d = self._test_shift_z if b is None else s.min_shift_sigma * b.sigma * (1.0 - b.phi) / b.innovation_sigma
-        return EventTrial(sign, max(d, 0.05), s.confirm_p_value, s.confirm_max_samples, s.confirm_min_samples)
+        if young_ref <= 0 or b is None:
+            return EventTrial(sign, max(d, 0.05), s.confirm_p_value, s.confirm_max_samples, s.confirm_min_samples)
+        return EventTrial(sign, max(d, 0.05), s.confirm_p_value, s.confirm_max_samples, s.confirm_min_samples,
+                          n_ref=float(young_ref), lam=young_variance(b), n_lam=float(min(b.n, young_ref)))
 
     def _fit(self, b: Baseline) -> StepFit:
         """Fit the step over the event's window, reusing the fitter's running sums."""
@@ -2453,7 +2472,13 @@ class StreamEngine:
         shows = p < max(self.settings.confirm_p_value, CONFIRM_FIT_P if young else CONFIRM_FIT_P_SETTLED)
         clear = (p < self.settings.confirm_p_value
                  and abs(fit.delta) >= 0.5 * self.settings.min_shift_sigma * b.sigma)
-        if late and ((outcome == STEP and shows) or clear):
+        # A look (a trial on a young reference: the plain evidence for a step, not yet
+        # the evidence that allows for the reference's error) is weighed as a "step"
+        # is, but never confirms: the late step and the conflict end the event as
+        # after a "step", else the trial goes on.
+        looked = outcome == LOOK
+        stepped = outcome == STEP or looked
+        if late and ((stepped and shows) or clear):
             # The step the samples show began after the detection (in the detected
             # direction, or clearly in the other): that detection was not this step.
             # It ends as dismissed (with the fit it had), and the step gets an event
@@ -2468,11 +2493,14 @@ class StreamEngine:
             # the refit's sup-F against the F whose p-value is confirm_p_value, or else the
             # trial's evidence for a step against Wald's bound.
             tripped = ((REFIT_TEST, fit.f_stat, supf_critical(self.settings.confirm_p_value, fit.pi0)) if clear
-                       else (TRIAL_TEST, ev.trial.llr_step(), ev.trial.bound))
+                       else (TRIAL_TEST, ev.trial.llr_plain() if looked else ev.trial.llr_step(), ev.trial.bound))
             self._begin_event(as_of, result, as_of, by_fit=True, tripped=tripped)
             return
         shown = self._event_fit(ev, b, fit)  # what the record says
-        conflict = outcome == STEP and self._conflicts(fit, ev.trial.sign, b)
+        conflict = stepped and self._conflicts(fit, ev.trial.sign, b)
+        if looked and not conflict:
+            ev.trial.reopen()
+            return
         if outcome == STEP and (conflict or not shows):
             anchored = self._anchored(ev, shown, b)
             if anchored is not None:
@@ -3406,6 +3434,21 @@ def residual_phi_bound(values: FloatArray, split: int, margin: float | None = No
     r += segments * (1.0 + 3.0 * r) / n
     up = r + (PHI_BOUND_MARGIN if margin is None else margin) / math.sqrt(n)
     return float(max(0.0, min(0.95, up)))
+
+
+def young_variance(b: Baseline) -> float:
+    """Variance per sample of a trial's inputs (prewhitened at ``b.phi``, over
+    ``b.innovation_sigma``) on noise whose phi lies one standard error above ``b.phi``
+    (``sqrt((1 - phi^2) / n)`` on ``b.n`` samples, at most 0.95): the long-run variance
+    ``(1 - phi)^2 sigma^2 (1 + phi_up) / (1 - phi_up)`` over ``innovation_sigma^2``, and
+    at least 1 (a provisional baseline's innovation sigma may carry an allowance
+    already)."""
+    phi = b.phi
+    up = min(0.95, max(phi, 0.0) + YOUNG_PHI_MARGIN * math.sqrt(max(1.0 - phi * phi, 0.0) / max(b.n, 1)))
+    if not b.innovation_sigma > 0.0:
+        return 1.0
+    v = (1.0 - phi) ** 2 * b.sigma * b.sigma * _variance_factor(up) / (b.innovation_sigma * b.innovation_sigma)
+    return max(1.0, v) if math.isfinite(v) else 1.0
 
 
 def _variance_factor(phi: float) -> float:
