@@ -3,13 +3,13 @@
 A watch stretch (the samples an established stream watches between two refinements,
 recentrings, events or call ends) costs some tens of array calls whatever its length, and
 a replay cuts each stream into a dozen of them, the daemon's JSON arrays of 260 samples
-into one or two a call.  ``engine.TRIM_STRETCH`` and ``multicusum.AS_GIVEN`` trim that
-work without touching the arithmetic: screening's largest and smallest value stand for the
-spike check on every stretch of a call (not only the first), the follower's delay and rate
-are kept on the engine, the window's rows are sliced once, the first stretch takes the
-screened arrays themselves, the CUSUM bank takes the residual array as it is; with
-``baseline.DIRECT_CALLS`` the baseline sums read their scalars with ``item()`` and call
-count_nonzero's C function.  Off, each is the reference path.  These tests replay random
+into one or two a call.  ``engine.TRIM_STRETCH``, ``multicusum.AS_GIVEN`` and
+``baseline.DIRECT_CALLS`` trim that work without touching the arithmetic: screening's
+largest and smallest value stand for the spike check on every stretch of a call (not only
+the first), the follower's delay and rate are kept on the engine, the window's rows are
+sliced once, the first stretch takes the screened arrays themselves, the CUSUM bank takes
+the residual array as it is, the baseline sums read their scalars with ``item()`` and call
+count_nonzero's C function, a refinement clips its phi in plain floats.  Off, each is the reference path.  These tests replay random
 histories (iid, AR(1), heavy-tailed and quantised noise; steps; lone spikes and bursts of
 +9 sigma; gaps; bad values; samples stamped a day ahead; batches of 1 to 4,096 and every
 other kind, with and without arrival times) through both and require the same records,
@@ -45,10 +45,9 @@ T0 = 1_788_000_000.0
 
 
 @contextmanager
-def _trim(on: bool, *, direct: bool = True) -> Iterator[None]:
+def _trim(on: bool) -> Iterator[None]:
     saved = engine.TRIM_STRETCH, multicusum.AS_GIVEN, baseline.DIRECT_CALLS
-    engine.TRIM_STRETCH = multicusum.AS_GIVEN = on
-    baseline.DIRECT_CALLS = direct
+    engine.TRIM_STRETCH = multicusum.AS_GIVEN = baseline.DIRECT_CALLS = on
     try:
         yield
     finally:
@@ -192,8 +191,8 @@ def test_baseline_sums_with_gaps_and_cuts() -> None:
             tt = at + np.cumsum(steps)
             at = float(tt[-1])
             cut = int(rng.integers(0, m + 1))
-            for s, direct in zip(sums, (True, False)):
-                with _trim(direct, direct=direct):
+            for s, on in zip(sums, (True, False)):
+                with _trim(on):
                     s.add(b, v, tt, cut=cut)
         assert json.dumps(sums[0].to_list()) == json.dumps(sums[1].to_list())
         assert [type(v) for v in sums[0].to_list()] == [type(v) for v in sums[1].to_list()]
@@ -201,3 +200,33 @@ def test_baseline_sums_with_gaps_and_cuts() -> None:
 
 def test_the_switches_are_on() -> None:
     assert engine.TRIM_STRETCH is True and multicusum.AS_GIVEN is True and baseline.DIRECT_CALLS is True
+
+
+def test_refinement_clips_phi_as_the_reference() -> None:
+    # A refinement's phi clipped to +-0.95 in plain floats against np.clip: blocks of slow
+    # drift or alternation (phi of the block near +1 or -1, beyond the bound) and of noise
+    # (well inside), on young baselines whose weight the block outweighs.
+    rng = np.random.default_rng(70)
+    seen = set()
+    for _ in range(120):
+        b = estimate_baseline(np.arange(40.0), 10.0 + rng.standard_normal(40))
+        n = int(rng.integers(16, 3000))
+        kind = int(rng.integers(0, 3))
+        if kind == 0:  # a random walk: lag-1 correlation near +1
+            v = 10.0 + 0.2 * np.cumsum(rng.standard_normal(n))
+        elif kind == 1:  # alternation: near -1
+            v = 10.0 + np.where(np.arange(n) % 2 == 0, 1.0, -1.0) + 0.01 * rng.standard_normal(n)
+        else:
+            v = 10.0 + rng.standard_normal(n)
+        out = []
+        for on in (True, False):
+            s = BaselineSums()
+            with _trim(on):
+                s.add(b, v, 40.0 + np.arange(float(n)))
+                nb = s.refine(b, clip=4.0, floor=1e-9, max_weight=20000)
+            out.append(json.dumps([nb.phi_raw, nb.phi, nb.level, nb.sigma, nb.innovation_sigma, nb.interval, nb.n,
+                                   nb.clip, nb.tail_fraction]))
+            assert type(nb.phi_raw) is float
+        assert out[0] == out[1]
+        seen.add(round(json.loads(out[0])[0], 2))
+    assert {0.95, -0.95} <= seen  # both bounds were reached
