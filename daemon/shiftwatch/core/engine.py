@@ -558,6 +558,7 @@ LEAN_CALLS = True
 #: their properties and then again.  False: the reference (tests/core/test_stretch_trim.py
 #: holds the two to each other).
 TRIM_STRETCH = True
+_NO_TERMS = (math.nan, 0, 0, 0.0)  # StreamEngine._fterms before a stretch (NaN matches no phi)
 #: The young loop (StreamEngine._young_loop) tells whether its bank's statistic reaches the
 #: split screen's or the calm fraction of the threshold by comparing each sum, as the
 #: recursion sets it, with the least sum that reaches it (_four_terms), in place of the
@@ -750,7 +751,7 @@ class StreamEngine:
         self._follow = 0.0  # offset of the followed level from the baseline's (see FOLLOW_SAMPLES)
         self._follow_lag = 0  # newest kept samples in the window not yet fed to the follower
         # phi and the window for which the follower's delay and rate were taken, and those two
-        self._fterms: tuple[float, int, int, float] = (math.nan, 0, 0, 0.0)
+        self._fterms: tuple[float, int, int, float] = _NO_TERMS  # (shared until the first stretch)
         self._center = 0.0  # the follower's offset that spikes are judged against (see FOLLOW_RECENTER)
         self._next_center = FOLLOW_RECENTER  # value of _watch_kept at which _center is taken next
         self._pending: tuple[float, float] | None = None  # held possible spike
