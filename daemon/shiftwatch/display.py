@@ -10,6 +10,7 @@ zones are IANA names read from the system's tz database through
 from __future__ import annotations
 
 import functools
+import math
 from datetime import UTC, datetime, tzinfo
 from zoneinfo import ZoneInfo
 
@@ -159,28 +160,70 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
     ref = rec.as_of if today is None else today
     verb = {"detected": "DETECTED", "confirmed": "CONFIRMED", "dismissed": "DISMISSED"}.get(
         rec.phase, rec.phase.upper())
+    before, after = _levels(rec.level_before, rec.level_after, rec.delta)
+    at = clock(rec.shift_at, tz, today=ref)
+    if rec.gap_from is not None:  # a step across a pause in the readings: say it may lie in the pause
+        at += (f" (the first reading after {format_duration(rec.shift_at_low - rec.gap_from)} without "
+               f"readings, since {clock(rec.gap_from, tz, today=ref)})")
     if rec.phase == "dismissed":
         return (f"{verb} {who}: no lasting step found after the detection at "
                 f"{clock(rec.detected_at, tz, today=ref)}; the level stays "
-                f"{rec.level_before:.5g}{unit} (any follow-up is for the site's procedures)")
+                f"{_levels(rec.level_before, rec.level_before, rec.sigma)[0]}{unit} "
+                f"(any follow-up is for the site's procedures)")
     if rec.phase == "returned":
         start = "?" if rec.excursion_start is None else clock(rec.excursion_start, tz, today=ref)
         return (f"{verb} {who} went back {rec.direction} {abs(rec.delta):.3g}{unit} at "
-                f"{clock(rec.shift_at, tz, today=ref)}, ending the excursion that began at {start}: "
-                f"{rec.level_before:.5g} -> {rec.level_after:.5g}{unit}")
+                f"{at}, ending the excursion that began at {start}: "
+                f"{before} -> {after}{unit}")
     if rec.phase == "planned":
         return (f"{verb} {who} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
-                f"({abs(rec.delta_sigma):.2g} sigma) at {clock(rec.shift_at, tz, today=ref)}, inside planned "
+                f"({sigmas_text(rec.delta_sigma)}) at {at}, inside planned "
                 f"window {rec.plan_id}: no alarm, watching on from the new level: "
-                f"{rec.level_before:.5g} -> {rec.level_after:.5g}{unit}")
+                f"{before} -> {after}{unit}")
     if rec.phase == "undecided":
         return (f"{verb} {who}: after {rec.n_after} samples the step detected at "
-                f"{clock(rec.detected_at, tz, today=ref)} is still uncertain ({rec.level_before:.5g} -> "
-                f"{rec.level_after:.5g}{unit}); watching on from the current level")
+                f"{clock(rec.detected_at, tz, today=ref)} is still uncertain ({before} -> "
+                f"{after}{unit}); watching on from the current level")
     return (f"{verb} {who} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
-            f"({abs(rec.delta_sigma):.2g} sigma) at {clock(rec.shift_at, tz, today=ref)}, detected "
-            f"{_lag_text(rec.detected_at - rec.shift_at)} later: {rec.level_before:.5g} -> "
-            f"{rec.level_after:.5g}{unit}")
+            f"({sigmas_text(rec.delta_sigma)}) at {at}, detected "
+            f"{_lag_text(rec.detected_at - rec.shift_at)} later: {before} -> {after}{unit}")
+
+
+#: What a summary says in place of a step's size in sigmas when the readings had no noise
+#: (sigma 0: the size in sigmas is infinite, ``null`` in the record's ``delta_sigma``).
+NO_NOISE = "no noise to measure it in sigmas"
+
+
+def sigmas_text(delta_sigma: float, *, signed: bool = False) -> str:
+    """A step's size in noise sigmas for people: ``2.1 sigma`` (``+2.1 sigma`` signed), or
+    :data:`NO_NOISE` when it is not finite.  Before, a step on readings without noise
+    (a stuck sensor that moved) read "(inf sigma)" in the summary and "(+inf sigma)" on
+    the status page.
+
+    >>> sigmas_text(2.104), sigmas_text(-2.104, signed=True), sigmas_text(float("inf"))
+    ('2.1 sigma', '-2.1 sigma', 'no noise to measure it in sigmas')
+    """
+    if not math.isfinite(delta_sigma):
+        return NO_NOISE
+    return f"{delta_sigma:+.2g} sigma" if signed else f"{abs(delta_sigma):.2g} sigma"
+
+
+def _levels(a: float, b: float, scale: float) -> tuple[str, str]:
+    """Two levels for a summary line: five significant figures, or, where their last
+    figure would be more than a twentieth of ``scale`` (the step, or for one level its
+    noise sigma), with the decimals that show ``scale`` to three figures, so that the
+    two levels shown differ by the step to within 5%.  Before, a 1.2 Pa step at
+    101325 Pa read "1.0133e+05 -> 1.0133e+05".
+
+    >>> _levels(500.03, 501.83, 1.8), _levels(101325.37, 101326.59, 1.22), _levels(773.152, 773.15542, 0.00342)
+    (('500.03', '501.83'), ('101325.37', '101326.59'), ('773.15200', '773.15542'))
+    """
+    top = max(abs(a), abs(b))
+    if (math.isfinite(top) and math.isfinite(scale) and scale != 0.0 and 0.0 < top < 1e15
+            and 10.0 ** (math.floor(math.log10(top)) - 4) > abs(scale) / 20.0):
+        d = max(0, 2 - math.floor(math.log10(abs(scale))))
+        return f"{a:.{d}f}", f"{b:.{d}f}"
+    return f"{a:.5g}", f"{b:.5g}"
 
 
 def _lag_text(lag: float) -> str:

@@ -12,6 +12,7 @@ it keeps no reference to the daemon.
 from __future__ import annotations
 
 import json
+import math
 import time
 from collections import OrderedDict
 from collections.abc import Callable, Iterable, Mapping
@@ -124,7 +125,8 @@ class LevelBoard:
         """The retained ``levels`` payload of a stream.
 
         Level and sigma are rounded to 6 significant digits, as in alert
-        records; ``state`` is the engine's, or ``offline`` in the update each
+        records, the level to finer where that would round it by more than a
+        tenth of sigma (:func:`level_digits`); ``state`` is the engine's, or ``offline`` in the update each
         stream gets when the daemon stops (the level is then the last one
         known, not watched any more).  ``updated_at`` is when it was made (UTC).
         """
@@ -132,7 +134,7 @@ class LevelBoard:
         label = self.label_for(name)
         if label is not None:
             body["label"] = label
-        body.update({"state": state, "level": six_digits(eng.level), "sigma": six_digits(eng.sigma),
+        body.update({"state": state, "level": level_digits(eng.level, eng.sigma), "sigma": six_digits(eng.sigma),
                      "unit": eng.unit, "last_shift_at": None if eng.last_shift_at is None
                      else format_time(eng.last_shift_at), "updated_at": format_time(self.clock())})
         if state == OFFLINE:
@@ -181,3 +183,22 @@ def six_digits(x: float | None) -> float | None:
     if x is None or x == 0 or not np.isfinite(x):
         return x
     return float(f"{x:.6g}")
+
+
+def level_digits(level: float | None, sigma: float | None) -> float | None:
+    """A level for the levels topic: :func:`six_digits`, or, where six significant digits
+    would round it by more than a tenth of the noise ``sigma`` (a reading far from zero
+    with little noise), to the decimals that give sigma two significant digits.  Before,
+    a compressed-air header at 101325.37 Pa with 0.2 Pa of noise showed 101325.0, two
+    sigmas off; a thermometer at 773.15542 K with 0.001 K showed 773.155.
+
+    >>> level_digits(500.0312, 0.5), level_digits(101325.372, 0.2), level_digits(773.1554162, 0.001)
+    (500.031, 101325.37, 773.1554)
+    """
+    six = six_digits(level)
+    if (level is None or six is None or level == 0 or not np.isfinite(level) or sigma is None
+            or not (sigma > 0.0 and np.isfinite(sigma))):
+        return six
+    if 10.0 ** (math.floor(math.log10(abs(level))) - 5) > sigma / 10.0:
+        return round(level, 1 - math.floor(math.log10(sigma)))
+    return six

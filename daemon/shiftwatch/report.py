@@ -50,7 +50,7 @@ from numpy.typing import NDArray
 from shiftwatch import __version__
 from shiftwatch.core.engine import ADVISORY, AlertRecord, BatchResult
 from shiftwatch.core.timefmt import format_duration
-from shiftwatch.display import stamp, zone, zone_label
+from shiftwatch.display import NO_NOISE, sigmas_text, stamp, zone, zone_label
 
 if TYPE_CHECKING:
     from pathlib import Path
@@ -730,7 +730,7 @@ def stream_figure(trace: StreamTrace) -> Figure:
             pad = 0.08 * (float(zv.max() - zv.min()) or 1.0)
             ax.set_ylim(float(zv.min()) - pad, float(zv.max()) + pad)
         r = ev.final
-        ax.set_title(f"event {ev.number}: {ev.outcome}, {r.direction} {abs(r.delta_sigma):.2g} sigma",
+        ax.set_title(f"event {ev.number}: {ev.outcome}, {r.direction} {sigmas_text(r.delta_sigma)}",
                      loc="left", fontsize=9, **LITERAL)
         _date_axis(ax, trace.time_zone, label=False)
         ax.tick_params(labelsize=7)
@@ -1024,7 +1024,8 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
                 f'<td class="{ev.outcome}">{ev.outcome}</td><td>{stamp(r.shift_at, time_zone)}</td>'
                 f"<td>{_interval_text(r, time_zone)}</td>"
                 f'<td class="n">{r.delta:+.4g}{_e(unit)}</td>'
-                f'<td class="n" data-sigma="{r.delta_sigma:.3f}">{r.delta_sigma:+.2f}</td>'
+                f'<td class="n" data-sigma="{r.delta_sigma:.3f}">'
+                f'{f"{r.delta_sigma:+.2f}" if math.isfinite(r.delta_sigma) else NO_NOISE}</td>'
                 f"<td>{stamp(r.detected_at, time_zone)}</td>"
                 f'<td class="n" data-delay="{ev.delay:.3f}">{_signed_duration(ev.delay)}</td>'
                 f'<td class="n">{r.p_value:.2g}</td></tr>\n')

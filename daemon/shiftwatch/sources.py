@@ -37,6 +37,7 @@ from collections import deque
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta, tzinfo
+from itertools import pairwise
 from typing import TYPE_CHECKING, Any, BinaryIO, Self
 
 import numpy as np
@@ -427,6 +428,9 @@ class Source:
     group_rows: list[int] = field(default_factory=list)
     #: the stream of every row, when a partition directory (``stream=NAME``) says it
     stream: str | None = None
+    #: Parquet: the columns pyarrow is to read as dictionaries (a long file's stream column of
+    #: plain text, so that its names are read once a page's dictionary, not once a row)
+    read_dictionary: list[str] = field(default_factory=list)
     #: CSV, wide: the unnamed columns at the end of the header (it ends with a comma), whose cells
     #: must be empty: a cell there that holds something is a problem, and the rest of its row is read
     unnamed: list[int] = field(default_factory=list)
@@ -1672,7 +1676,8 @@ def _open_parquet(path: str, layout: str) -> Source:
     pq = _pyarrow()
     try:
         meta = pq.ParquetFile(path).metadata
-        header = list(meta.schema.to_arrow_schema().names)
+        schema = meta.schema.to_arrow_schema()
+        header = list(schema.names)
     except Exception as exc:  # noqa: BLE001  pyarrow raises ArrowInvalid, OSError, ... for a damaged file
         raise CsvFormatError(f"{path}: not a readable Parquet file: {exc}") from None
     offsets = [0]
@@ -1685,7 +1690,17 @@ def _open_parquet(path: str, layout: str) -> Source:
         ti, vi = cols.index("time"), cols.index("value")
         return Source(path, "parquet", "long", header, ti, -1, vi, [(vi, "")], group_rows=offsets, stream=stream)
     lay, ti, si, vi, tags = _pick_layout(path, header, layout, path)
-    return Source(path, "parquet", lay, header, ti, si, vi, tags, group_rows=offsets)
+    src = Source(path, "parquet", lay, header, ti, si, vi, tags, group_rows=offsets)
+    if lay == "long" and si >= 0:
+        import pyarrow as pa
+
+        typ = schema.field(si).type
+        if pa.types.is_string(typ) or pa.types.is_large_string(typ):
+            # Read as a dictionary, it needs no dictionary_encode (a hash of every row, and the
+            # import of pyarrow.compute, 0.1 s, on its first call).  Not binary: a column of bytes
+            # is refused by name, as before, not read as their repr.
+            src.read_dictionary = [header[si]]
+    return src
 
 
 def parquet_slice_rows(src: Source) -> int:
@@ -1755,9 +1770,10 @@ def _naive_wall_to_utc(wall: FloatArray, tz: tzinfo) -> tuple[FloatArray, NDArra
 
 #: Take the short ways through a Parquet slice (True): no search for nulls in a column that has
 #: none (pyarrow counts them), a stream column's dictionary used as the codes when its names are
-#: distinct and not empty, codes sorted as 16-bit integers.  False: every check on every slice
-#: and codes sorted as 64-bit integers, the reference the short ways are held to bit for bit
-#: (tests/replay/test_parquet_fast.py).
+#: distinct and not empty, a long file's piece grouped by stream once (:class:`_PieceStreams`).
+#: False: every check on every slice, each slice sorted by stream (a stable sort of 64-bit
+#: codes) and its streams' rows copied out, the reference the short ways are held to bit for
+#: bit (tests/replay/test_parquet_fast.py).
 PARQUET_FAST = True
 
 #: numpy types of the fixed-width arrow columns read straight from their buffers.
@@ -1801,6 +1817,8 @@ def _arrow_plain(col: Any, valid: NDArray[np.bool_], fill: float) -> NDArray[Any
 def _valid_range(t: FloatArray, valid: NDArray[np.bool_], first: int, column: str,
                  problems: _GroupProblems) -> NDArray[np.bool_]:
     """``valid`` less the times no record can be written at, each a problem."""
+    if t.shape[0] == 0 or (float(t.min()) >= TIME_MIN and float(t.max()) <= TIME_MAX):  # (NaN: not so)
+        return valid
     ok = _in_range(t)
     if bool(ok.all()):
         return valid
@@ -1827,7 +1845,8 @@ def _arrow_times(col: Any, column: str, tz: tzinfo | None, first: int,
         # The coarsest exact unit, so that a time reads as the same double whatever its unit.
         while per_second > 1000 and bool((raw % 1000 == 0).all()):
             raw, per_second = raw // 1000, per_second // 1000
-        t = raw.astype(np.float64) / per_second if per_second > 1 else raw.astype(np.float64)
+        # (one pass: the division casts each integer to a double as astype does, then divides)
+        t = np.divide(raw, float(per_second), dtype=np.float64) if per_second > 1 else raw.astype(np.float64)
         valid = _valid_range(t, valid, first, column, problems)
         if col.type.tz is None:
             if tz is None:
@@ -1955,7 +1974,8 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
         value_cols = [(src.header[c], tag) for c, tag in src.tags]
         want = [tname] + [c for c, _ in value_cols]
     pf = _kept_open(opened, src.path, lambda: pq.ParquetFile(src.path, pre_buffer=False,
-                                                             buffer_size=_parquet_buffer(len(want))))
+                                                             buffer_size=_parquet_buffer(len(want)),
+                                                             read_dictionary=src.read_dictionary or None))
     group = src.group_rows[g + 1] - src.group_rows[g]
     stop = group if stop is None else stop
     n = first  # rows of the group taken so far
@@ -1963,6 +1983,9 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
     fbits = fidx << PLACE_BITS
     problems = _GroupProblems(src, g)
     collected: dict[str, list[tuple[FloatArray, FloatArray, IntArray]]] = {}
+    # A long file's rows grouped by stream once for the piece (see _PieceStreams).
+    split = _PieceStreams(stop - first, fbits | (base + first)) \
+        if src.layout == "long" and src.stream_col >= 0 and PARQUET_FAST else None
     cursor = None
     while n < stop:
         try:
@@ -1990,11 +2013,13 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
         m = part.num_rows
         n += m
         times, tok = _arrow_times(part.column(0), tname, tz, a, problems)
-        places = np.arange(base + a, base + a + m, dtype=np.int64) | fbits
+        places = np.arange(base + a, base + a + m, dtype=np.int64) | fbits if split is None else None
         for j, (cname, tag) in enumerate(value_cols):
             col = part.column(1 + j)
             if not _is_number_type(col.type):
                 problems.whole(cname, f"holds {col.type}, not numbers; its values were skipped", m)
+                if split is not None:
+                    split.skip(m)
                 continue
             valid = _arrow_valid(col)
             v = _arrow_plain(col, valid, math.nan) if pa.types.is_float64(col.type) else None
@@ -2007,6 +2032,10 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
                 if nulls:
                     problems.rows(tok & ~valid, a, cname, "no value (null)")
                 keep = tok & valid if nulls else tok
+                if split is not None:
+                    split.add(part.column(2), times, v, keep, problems, a, src.header[src.stream_col])
+                    continue
+                assert places is not None  # (made whenever split is None)
                 if src.stream_col >= 0:
                     _long_parquet_parts(part.column(2), times, v, places, keep, collected,
                                         problems, a, src.header[src.stream_col])
@@ -2015,12 +2044,15 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
                 if src.stream == "":  # a stream= directory that names none
                     problems.rows(keep, a, "stream", _no_stream(src))
                     continue
+            assert places is not None
             if bool(keep.all()):
                 collected.setdefault(tag, []).append((times, v, places))
             elif bool(keep.any()):
                 collected.setdefault(tag, []).append((times[keep], v[keep], places[keep]))
     # A stream's pieces stay apart (in order): joining them would hold the row group twice.
     parts = [(key, *piece) for key, pieces in collected.items() for piece in pieces]
+    if split is not None:
+        split.parts(parts)
     size = _file_size(src.path)
     nbytes = size * (n - first) // max(1, src.group_rows[-1])  # for progress: the piece's share of the file
     return Block(index, fidx, parts, problems.messages, n - first, nbytes, unlisted=problems.unlisted)
@@ -2033,28 +2065,37 @@ def _file_size(path: str) -> int:
         return 0
 
 
-def _long_parquet_parts(scol: Any, times: FloatArray, v: FloatArray, places: IntArray, keep: NDArray[np.bool_],
-                        collected: dict[str, list[tuple[FloatArray, FloatArray, IntArray]]],
-                        problems: _GroupProblems, first: int, cname: str) -> None:
-    """Split a slice of a long file by its stream column (dictionary-encoded, as pyarrow keeps
-    strings); a column of integers (tags exported by number) names each stream by its decimal
-    text, as a CSV of the same numbers does."""
+def _slice_codes(scol: Any, keep: NDArray[np.bool_], problems: _GroupProblems, first: int,
+                 cname: str, cache: list[Any] | None = None) -> tuple[dict[str, int], IntArray] | None:
+    """A slice's stream column as codes: the distinct names (stripped, not empty) by code, in
+    the order of the column's dictionary, and each row's code, ``len(names)`` for a row not
+    kept (no time, no value, no name, an empty name).  None when the column holds no names (a
+    problem of the whole column).  A dictionary-encoded column (as pyarrow keeps strings)
+    gives its indices; a column of integers (tags exported by number) names each stream by
+    its decimal text, as a CSV of the same numbers does.  ``cache``: the last slice's
+    dictionary and what was made of it, kept there and used again while the dictionary is
+    the same (the slices of a row group share their page's dictionary)."""
     import pyarrow as pa
 
     if not pa.types.is_dictionary(scol.type):
         if not (pa.types.is_string(scol.type) or pa.types.is_large_string(scol.type)
                 or pa.types.is_integer(scol.type)):
             problems.whole(cname, f"holds {scol.type}, not stream names; the rows were skipped", len(scol))
-            return
+            return None
         scol = scol.dictionary_encode()
-    names = [str(x).strip() for x in scol.dictionary.to_pylist()]
     valid = _arrow_valid(scol.indices)
     nulls = scol.indices.null_count or not PARQUET_FAST
     if nulls:
         problems.rows(keep & ~valid, first, cname, "no stream name (null)")
-    # The same name may stand under several codes (spaces around it): one code per name.
-    key_of: dict[str, int] = {}
-    remap = np.array([key_of.setdefault(x, len(key_of)) if x else -1 for x in names] + [-1], dtype=np.int64)
+    if cache and cache[0].equals(scol.dictionary):
+        names, key_of, remap = cache[1:]
+    else:
+        names = [str(x).strip() for x in scol.dictionary.to_pylist()]
+        # The same name may stand under several codes (spaces around it): one code per name.
+        key_of = {}
+        remap = np.array([key_of.setdefault(x, len(key_of)) if x else -1 for x in names] + [-1], dtype=np.int64)
+        if cache is not None:
+            cache[:] = [scol.dictionary, names, key_of, remap]
     indices = _arrow_plain(scol.indices, valid, 0)
     if indices is None:  # unsigned 64-bit indices
         indices = np.asarray(scol.indices.fill_null(0), dtype=np.int64)
@@ -2068,13 +2109,157 @@ def _long_parquet_parts(scol: Any, times: FloatArray, v: FloatArray, places: Int
         problems.rows(keep & valid & (codes < 0), first, cname, "empty stream name")
     if not (plain and not nulls and bool(keep.all())):
         codes = np.where(keep & (codes >= 0), codes, len(key_of))
-    # Stable: each stream's rows stay in file order.  Codes of 16 bits are sorted by radix (numpy's
-    # stable sort of int16): 0.2 ms for a slice of 65,536 rows against 0.6 ms as int64.
-    small = len(key_of) < 2**15 and PARQUET_FAST  # codes up to len(key_of)
-    order = np.argsort(codes.astype(np.int16) if small else codes, kind="stable")
+    return key_of, codes
+
+
+def _long_parquet_parts(scol: Any, times: FloatArray, v: FloatArray, places: IntArray, keep: NDArray[np.bool_],
+                        collected: dict[str, list[tuple[FloatArray, FloatArray, IntArray]]],
+                        problems: _GroupProblems, first: int, cname: str) -> None:
+    """Split a slice of a long file by its stream column (see :func:`_slice_codes`): the
+    reference way (``PARQUET_FAST = False``), a sort and a copy per stream and slice, which
+    :class:`_PieceStreams` is held to bit for bit (tests/replay/test_parquet_fast.py)."""
+    got = _slice_codes(scol, keep, problems, first, cname)
+    if got is None:
+        return
+    key_of, codes = got
+    order = np.argsort(codes, kind="stable")  # each stream's rows stay in file order
     for key, sel in zip(key_of, _groups(order, codes, len(key_of) + 1)):
         if sel.shape[0]:
             collected.setdefault(key, []).append((times[sel], v[sel], places[sel]))
+
+
+class _PieceStreams:
+    """The rows of a piece of a long file with a stream column, grouped by stream once for the
+    whole piece (``PARQUET_FAST``): each slice's codes, times and values are copied into arrays
+    of the piece's length as the slices are read (their problems named slice by slice, as
+    before), and :meth:`parts` groups the piece's rows by stream once (by their period, by
+    slicing rows sorted by stream, or by one sort) and copies each stream's rows out once.  The slice-by-slice way (:func:`_long_parquet_parts`) sorted every slice and
+    made a part per stream and slice: 22,200 small copies and 7,400 parts for the bench's 2.4
+    million rows of 200 streams, against 6,000 and 2,000 here.  The parts are those of the
+    slice-by-slice way joined: the same rows per stream in file order, the streams in the same
+    order (that of the first slice a stream has rows in, and of that slice's dictionary)."""
+
+    def __init__(self, rows: int, place0: int) -> None:
+        self.place0 = place0  # the place of the piece's first row
+        self.t = np.empty(rows)
+        self.v = np.empty(rows)
+        self.c = np.empty(rows, dtype=np.int32)  # piece codes; -1 for a row not kept
+        self.n = 0  # rows taken so far
+        self.key_of: dict[str, int] = {}  # piece codes by name
+        self.starts: list[int] = []  # each slice's first row (of the piece)
+        self.local: list[NDArray[np.int32]] = []  # each slice's piece code of its own codes
+        self.dropped = False  # a row not kept
+        self.cache: list[Any] = []  # the last slice's dictionary, its names (_slice_codes)
+        self.last: tuple[dict[str, int], NDArray[np.int32]] | None = None  # its piece codes
+
+    def skip(self, m: int) -> None:
+        """A slice none of whose rows is kept (a problem of a whole column)."""
+        self.starts.append(self.n)
+        self.local.append(np.zeros(0, dtype=np.int32))
+        self.c[self.n:self.n + m] = -1
+        self.n += m
+        self.dropped = True
+
+    def add(self, scol: Any, times: FloatArray, v: FloatArray, keep: NDArray[np.bool_],
+            problems: _GroupProblems, first: int, cname: str) -> None:
+        m = times.shape[0]
+        got = _slice_codes(scol, keep, problems, first, cname, self.cache)
+        if got is None:
+            self.skip(m)
+            return
+        key_of, codes = got
+        a, b = self.n, self.n + m
+        self.starts.append(a)
+        self.n = b
+        if self.last is not None and self.last[0] is key_of:
+            local = self.last[1]
+        else:
+            local = np.array([self.key_of.setdefault(x, len(self.key_of)) for x in key_of] + [-1], dtype=np.int32)
+            self.last = key_of, local
+        self.local.append(local)
+        self.t[a:b] = times
+        self.v[a:b] = v
+        if bool((local[:-1] == np.arange(len(key_of), dtype=np.int32)).all()):
+            # the slice's codes are the piece's (the first slice's, or a dictionary kept)
+            self.c[a:b] = codes
+            dropped = codes == len(key_of)
+            if bool(dropped.any()):
+                self.c[a:b][dropped] = -1
+                self.dropped = True
+        else:
+            np.take(local, codes, out=self.c[a:b])
+            self.dropped = self.dropped or bool((codes == len(key_of)).any())
+
+    def parts(self, out: list[tuple[str, FloatArray, FloatArray, IntArray]]) -> None:
+        """Append each stream's rows to ``out`` as ``(stream, times, values, places)``, each in
+        arrays of its own (a view would hold the whole piece for as long as a reader keeps it)."""
+        n = self.n
+        count = len(self.key_of)
+        if n == 0 or count == 0:
+            return
+        c = self.c[:n]
+        if self.dropped:
+            c[c < 0] = count  # rows not kept sort last
+        place0 = self.place0
+        t, v = self.t, self.v
+        names = list(self.key_of)
+        # Each stream's first row, and its rows: (start, stop, step) or the rows sorted by code.
+        rows: list[tuple[int, tuple[int, int, int] | NDArray[np.intp]]] = []
+        if not self.dropped and n > count and self._periodic(c, count):
+            # Every stream once in each run of `count` rows, in the same order (a file written
+            # time by time, its tags in a fixed order): stream c[j]'s rows are j, j + count, ...
+            rows = [(j, (j, n, count)) for j in np.argsort(c[:count]).tolist()]
+        elif bool((c[1:] >= c[:-1]).all()):  # already in order (a file sorted by stream)
+            bounds = np.searchsorted(c, np.arange(count + 1, dtype=c.dtype)).tolist()
+            rows = [(lo, (lo, hi, 1)) for lo, hi in pairwise(bounds) if hi > lo]
+        else:
+            order, bounds = self._sorted(c, count)
+            rows = [(int(order[lo]), order[lo:hi]) for lo, hi in pairwise(bounds) if hi > lo]
+        # The streams in the order the slice-by-slice way meets them: the first slice a stream
+        # has rows in, then that slice's order of codes.
+        first = np.array([r for r, _ in rows], dtype=np.int64)
+        codes = c[first].astype(np.int64)
+        in_slice = np.searchsorted(np.array(self.starts), first, side="right") - 1
+        rank = np.empty(first.shape[0], dtype=np.int64)
+        for s in sorted(set(in_slice.tolist())):  # (not np.unique: it imports numpy.ma, 10 ms or more)
+            at = np.flatnonzero(in_slice == s)
+            local = self.local[s][:-1]
+            inverse = np.empty(count, dtype=np.int64)
+            inverse[local] = np.arange(local.shape[0])
+            rank[at] = inverse[codes[at]]
+        for j in np.lexsort((rank, in_slice)).tolist():
+            which = rows[j][1]
+            if isinstance(which, tuple):
+                lo, hi, step = which
+                out.append((names[int(codes[j])], t[lo:hi:step].copy(), v[lo:hi:step].copy(),
+                            np.arange(lo + place0, hi + place0, step, dtype=np.int64)))
+            else:
+                out.append((names[int(codes[j])], t.take(which), v.take(which), which + np.int64(place0)))
+
+    @staticmethod
+    def _periodic(c: NDArray[np.int32], count: int) -> bool:
+        """Whether the codes ``c`` repeat with period ``count``, each code once a period."""
+        return bool((np.bincount(c[:count], minlength=count) == 1).all()) and bool((c[count:] == c[:-count]).all())
+
+    @staticmethod
+    def _sorted(c: NDArray[np.int32], count: int) -> tuple[NDArray[np.intp], list[int]]:
+        """The rows in the order of a stable sort by code, and where each code's rows begin
+        (``count + 1`` bounds)."""
+        n = c.shape[0]
+        bits = max(1, (n - 1).bit_length())
+        if count < (1 << (32 - bits)):
+            # Each code with its row below it: the keys are distinct, so sorting them (numpy's
+            # quicksort, vectorised) gives the rows of a stable sort by code, each stream's rows
+            # in file order.
+            keys = (c.astype(np.uint32) << np.uint32(bits)) | np.arange(n, dtype=np.uint32)
+            keys.sort()
+            order = (keys & np.uint32((1 << bits) - 1)).astype(np.intp)
+            sorted_codes = keys >> np.uint32(bits)
+        else:
+            order = np.argsort(c, kind="stable")
+            sorted_codes = c[order].astype(np.uint32)
+        bounds = np.searchsorted(sorted_codes, np.arange(count + 1, dtype=np.uint32)).tolist()
+        return order, bounds
 
 
 def tasks(sources: list[Source], tz: tzinfo | None, chunk_bytes: int = CHUNK_BYTES,

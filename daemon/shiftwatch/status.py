@@ -37,7 +37,7 @@ from urllib.parse import parse_qs
 
 from shiftwatch.core.engine import ADVISORY, EVENT_OPEN, AlertRecord
 from shiftwatch.core.timefmt import format_time
-from shiftwatch.display import clock, human_number, zone_label
+from shiftwatch.display import clock, human_number, sigmas_text, zone_label
 
 if TYPE_CHECKING:
     from shiftwatch.metrics import StreamStats
@@ -239,7 +239,7 @@ def _size_text(ev: EventSummary, unit: str | None) -> str:
     """The size of an event's step in units and sigmas, e.g. ``+1.8 g (+2.1 sigma)``."""
     if ev.phase == "dismissed":
         return "no lasting step"
-    return (f"{ev.delta:+.3g}{' ' + unit if unit else ''} ({ev.delta_sigma:+.2g} sigma)")
+    return (f"{ev.delta:+.3g}{' ' + unit if unit else ''} ({sigmas_text(ev.delta_sigma, signed=True)})")
 
 
 class StatusBoard:

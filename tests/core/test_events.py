@@ -442,7 +442,34 @@ def test_no_step_below_min_shift_is_confirmed_on_heavy_tailed_noise() -> None:
         recs += eng.process(t[a:a + 1024], 50.0 + x[a:a + 1024]).records
     ends = [r for r in recs if r.phase in ("confirmed", "returned")]
     assert all(abs(r.delta_sigma) >= 1.0 for r in ends), [r.delta_sigma for r in ends]
-    assert any(r.phase == "undecided" for r in recs)
+    # These samples once ended 2 of 112 events undecided on that rule; both came after
+    # runs of spikes had pulled the follower 0.63 sigma off the level (it was fed
+    # readings beyond the spike band as they were).  Held to the band (2026-12-05,
+    # tests/core/test_outlier_burst.py) the follower stays within 0.36 sigma, and all
+    # 108 detections on this step-free series end dismissed: none is confirmed.
+    phases = [r.phase for r in recs]
+    assert phases.count("dismissed") + phases.count("undecided") >= phases.count("detected") - 1
+    assert not ends
+
+
+@pytest.mark.parametrize("state", [30, 68, 104])
+def test_an_event_whose_trial_and_fit_disagree_ends_undecided_before_the_limit(state: int) -> None:
+    # The rule above (a trial's "step" that the refit of the event's samples contradicts:
+    # a step the other way, or under half of min_shift) ends the event undecided at once,
+    # not at confirm_max_samples (README, the operators' table).  The heavy-tailed series
+    # above reached it before the follower was held to the spike band; these new AR(1)
+    # 0.5 streams at 1h (scipy's lfilter as the recursion) reach it 166 to 402 samples
+    # after a false detection in their first 50 samples.  Nothing is confirmed.
+    rng = np.random.default_rng(state)
+    x = 500.0 + 0.5 * math.sqrt(0.75) * lfilter([1.0], [1.0, -0.5], rng.standard_normal(1500))
+    eng = StreamEngine("s", DetectionSettings(false_alarm_every=3600.0))
+    recs = []
+    for a in range(0, x.size, 64):
+        recs += eng.process(T0 + np.arange(a, min(a + 64, x.size), dtype=np.float64), x[a:a + 64]).records
+    early = [r for r in recs if r.phase == "undecided"
+             and r.as_of - r.detected_at < DetectionSettings().confirm_max_samples - 1]
+    assert early, [(r.phase, r.as_of - T0) for r in recs]
+    assert not [r for r in recs if r.phase in ("confirmed", "returned")]
 
 
 def test_heavy_tailed_noise_alarms_at_the_chosen_rate_whatever_its_warmup_showed() -> None:

@@ -735,3 +735,69 @@ def test_a_long_header_that_names_a_column_twice_is_refused_naming_it(cli, tmp_p
     assert "Traceback" not in res.stderr
     assert res.returncode == 2 and res.stdout == "", res.stderr
     assert res.stderr.startswith(f"shiftwatch: {path}:1: the header names {column} twice"), res.stderr
+
+
+# The command line in a process of its own, telling which of pyarrow's modules the replay imported.
+_IMPORTS_PROBE = """
+import sys
+from shiftwatch.cli import main
+code = main(sys.argv[1:])
+print("imported:", " ".join(m for m in ("pyarrow.compute", "pandas") if m in sys.modules), file=sys.stderr)
+sys.exit(code)
+"""
+
+
+@pytest.mark.parametrize("text_type", [pa.string(), pa.large_string()])
+def test_a_parquet_stream_column_of_plain_text_is_read_as_a_dictionary(tmp_path: Path, text_type) -> None:
+    # pandas and Spark write a stream column as plain text (the names' dictionary is the pages',
+    # the column's type is string).  Each slice was dictionary-encoded after reading (a hash of
+    # every row), whose first call imported pyarrow.compute (0.1 s of CPU, as much as reading
+    # the bench's 2.4 million rows); pyarrow now reads the column as a dictionary
+    # (read_dictionary).  Reference: the CSV of the same rows (the stdlib csv module's rows fed
+    # to the engines in one batch per stream, and the command's output for it).
+    import subprocess
+    import sys
+
+    data = readings(3000)
+    csv_path = write_long(tmp_path / "line2.csv", data)
+    names = list(data)
+    t = data[names[0]][0]
+    table = pa.table({
+        "time": pa.array((np.repeat(t, len(names)) * 1e3).round().astype(np.int64), pa.timestamp("ms", tz="UTC")),
+        "stream": pa.array(names * t.shape[0], text_type),
+        "value": pa.array(np.stack([data[k][1] for k in names], axis=1).ravel()),
+    })
+    pq_path = tmp_path / "line2.parquet"
+    pq.write_table(table, pq_path, row_group_size=5000)
+    assert pq.ParquetFile(pq_path).schema_arrow.field("stream").type == text_type
+
+    def run(path: Path, *args: str) -> subprocess.CompletedProcess[str]:
+        return subprocess.run([sys.executable, "-c", _IMPORTS_PROBE, "replay", *args, str(path)],
+                              capture_output=True, text=True, timeout=300, check=False)
+
+    want = run(csv_path)
+    assert want.returncode == 0, want.stderr
+    assert want.stdout.count("\n") >= 2
+    assert printed_records(want.stdout) == one_batch_records(stdlib_long(csv_path)[0])
+    for jobs in ("1", "2"):
+        got = run(pq_path, "--jobs", jobs)
+        assert got.returncode == 0, got.stderr
+        assert got.stdout == want.stdout
+        assert "imported: \n" in got.stderr  # neither pyarrow.compute nor pandas
+
+
+def test_a_parquet_stream_column_of_bytes_is_still_refused_by_name(cli, tmp_path: Path) -> None:
+    # Only text is read as a dictionary: pyarrow would read bytes as one too, and their names
+    # would be Python's repr of them (b'...').
+    n = 50
+    table = pa.table({
+        "time": pa.array(1_788_000_000_000 + 1000 * np.arange(n), pa.timestamp("ms", tz="UTC")),
+        "stream": pa.array([b"brackenfield/line2/oven/zone3_temp"] * n, pa.binary()),
+        "value": pa.array(np.full(n, 182.0)),
+    })
+    path = tmp_path / "bytes.parquet"
+    pq.write_table(table, path)
+    got = cli("replay", str(path))
+    assert got.returncode == 1, got.stderr
+    assert "column stream: holds binary, not stream names; the rows were skipped" in got.stderr
+    assert "b'" not in got.stdout + got.stderr

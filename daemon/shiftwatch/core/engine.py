@@ -60,7 +60,7 @@ from shiftwatch.core.baseline import (
 from shiftwatch.core.calm import MAX_CHARTS as CALM_MAX_CHARTS
 from shiftwatch.core.calm import CalmTerms
 from shiftwatch.core.cusum import CusumTest
-from shiftwatch.core.events import NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
+from shiftwatch.core.events import LOOK, NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
 from shiftwatch.core.multicusum import MultiCusumTest
 from shiftwatch.core.screen import screen_samples
 from shiftwatch.core.selfstart import (
@@ -143,6 +143,9 @@ class AlertRecord:
     excursion_start: float | None = None
     #: for a ``planned`` record: the planned window the step fell in
     plan_id: str | None = None
+    #: the time of the last reading before ``shift_at_low`` when the readings paused there
+    #: for more than GAP_FACTOR of their usual intervals: the step came at some moment after it
+    gap_from: float | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON form: contract fields first, then the extras."""
@@ -154,8 +157,8 @@ class AlertRecord:
             "shift_at": format_time(self.shift_at),
             "shift_at_low": format_time(self.shift_at_low),
             "shift_at_high": format_time(self.shift_at_high),
-            "level_before": _round(self.level_before),
-            "level_after": _round(self.level_after),
+            "level_before": _round_level(self.level_before, self.level_before_se),
+            "level_after": _round_level(self.level_after, self.level_after_se),
             "delta": _round(self.delta),
             "delta_sigma": _fixed(self.delta_sigma, 3),
             "sigma": _round(self.sigma),
@@ -181,6 +184,8 @@ class AlertRecord:
             d["excursion_start"] = format_time(self.excursion_start)
         if self.plan_id is not None:
             d["plan_id"] = self.plan_id
+        if self.gap_from is not None:
+            d["gap_from"] = format_time(self.gap_from)
         return d
 
 
@@ -193,6 +198,25 @@ def _round(x: float) -> float | None:
     if x == 0:
         return float(x)
     return float(f"{x:.6g}")
+
+
+def _round_level(x: float, se: float) -> float | None:
+    """A fitted level as :func:`_round` gives it, or, where 6 significant digits would
+    round it by more than a tenth of its standard error ``se`` (a reading far from
+    zero with little noise: 773.152 K with sigma 0.001 K, 101325.37 Pa with sigma
+    0.2 Pa), to two significant digits of ``se``.  Before, such levels were rounded by
+    up to 10 of their standard errors (773.155 for 773.15542, se 5e-05), and
+    ``level_after - level_before`` was no longer the record's ``delta``.
+
+    >>> _round_level(500.0312, 0.017), _round_level(773.1554162, 5.09e-05), _round_level(101325.372, 0.0105)
+    (500.031, 773.155416, 101325.372)
+    """
+    r = _round(x)
+    if r is None or x == 0 or not (se > 0.0 and math.isfinite(se)):
+        return r
+    if 10.0 ** (math.floor(math.log10(abs(x))) - 5) > se / 10.0:
+        return round(x, 1 - math.floor(math.log10(se)))
+    return r
 
 
 def _fixed(x: float, digits: int) -> float | None:
@@ -524,6 +548,9 @@ REFIT_TEST = "event_refit"
 TRIAL_TEST = "event_trial"
 #: The shortest segment an event's step fit allows on each side of the step, and the
 #: fewest samples it can fit (``StepFitter``: at least 2 * min_segment + 1).
+#: A pause in the readings before a step's shift-time interval of more than this many
+#: usual sampling intervals is named in its records (``gap_from``).
+GAP_FACTOR = 10.0
 FIT_MIN_SEGMENT = 2
 FIT_MIN = 2 * FIT_MIN_SEGMENT + 1
 #: A segment that holds an outlier is split at its outliers only
@@ -598,6 +625,9 @@ FOLLOW_MARGIN = 2.0
 #: Standard errors above its bias-corrected estimate at which the decision on an event
 #: takes the autocorrelation of a young stream's noise (``residual_phi_bound``).
 PHI_BOUND_MARGIN = 2.0
+#: Standard errors above its estimate at which the trial of an event on a provisional
+#: baseline takes the baseline's phi (``young_variance``).
+YOUNG_PHI_MARGIN = 1.0
 #: A step is confirmed only while the fit of the event's samples shows it at this
 #: p-value (or ``confirm_p_value``, when larger): the trial alone confirmed wander of
 #: young autocorrelated streams.  0.001 lost more real steps on AR(1) 0.8 noise
@@ -848,7 +878,7 @@ class StreamEngine:
             # on samples the window holds now (see _follow_plan).
             lag = self._follow_lag
             w = self._window.values
-            path = follow_path(w[len(w) - lag:] - b.level, self._follow, lam)
+            path = follow_path(self._follow_input(w[len(w) - lag:], b), self._follow, lam)
             offsets = tuple(path[np.maximum(0, lag + np.arange(delay + 1) - delay)].tolist())
         return CalmTerms(level=b.level, offsets=offsets, lam=lam, delay=delay if lam else 0,
                          lo=b.level + self._center - span, hi=b.level + self._center + span,
@@ -2133,6 +2163,7 @@ class StreamEngine:
         assert b is not None and test is not None
         span = self.settings.spike_sigma * b.sigma
         hi, lo = b.level + self._center + span, b.level + self._center - span
+        f_hi, f_lo = self._center + span, self._center - span  # the follower's band (_follow_input)
         level, phi, clip = b.level, b.phi, b.clip
         inv = 1.0 / b.innovation_sigma
         lam = 1.0 / follow_samples(b.phi)
@@ -2144,7 +2175,8 @@ class StreamEngine:
                 break
             w = self._window
             while self._follow_lag > delay:  # the delay shrank (phi was refined): catch up first
-                self._follow = keep * self._follow + lam * (w.at(len(w) - self._follow_lag)[1] - level)
+                fr = w.at(len(w) - self._follow_lag)[1] - level
+                self._follow = keep * self._follow + lam * (f_hi if fr > f_hi else (f_lo if fr < f_lo else fr))
                 self._follow_lag -= 1
             u = self._follow
             r = xv - level - u
@@ -2161,7 +2193,8 @@ class StreamEngine:
                 self._open_event(tv, result, tv)
                 break
             if self._follow_lag > delay:
-                self._follow = keep * u + lam * (w.at(len(w) - self._follow_lag)[1] - level)
+                fr = w.at(len(w) - self._follow_lag)[1] - level
+                self._follow = keep * u + lam * (f_hi if fr > f_hi else (f_lo if fr < f_lo else fr))
                 self._follow_lag -= 1
             refine = self._watch_kept + 1 >= min(self._next_refine, self._next_center)
             self._count_watched(1)
@@ -2198,7 +2231,9 @@ class StreamEngine:
             y = np.concatenate((w._blk[w._i, 0, a: a + from_window], kx[: feed - from_window]))
         else:
             y = np.concatenate((w.values[len(w) - lag: len(w) - lag + from_window], kx[: feed - from_window]))
-        path = follow_path(y - level, self._follow, lam)
+        b = self._baseline
+        assert b is not None
+        path = follow_path(self._follow_input(y, b), self._follow, lam)
         # Sample i of the stretch is measured once max(0, lag + i - delay) samples are fed.
         k0 = max(0, delay - lag)
         if k0 == 0:
@@ -2327,7 +2362,13 @@ class StreamEngine:
             level_before=(b.level + self._follow + sign * FOLLOW_MARGIN * b.sigma * _follow_se(b.phi)
                           if b.level_n >= 2 * self.settings.window_samples else fit.level_before),
             level_after=fit.level_after,
-            trial=self._new_trial(sign),
+            # On a provisional baseline (the first warm-up: level, sigma and phi from a
+            # few dozen samples) the trial measures from a fitted level of that many
+            # samples and allows for its error and for a phi estimated low (events.py,
+            # "a reference known from few samples").  Elsewhere the plain trial: see
+            # DEVELOPERS.md for what the allowance cost on later young levels.
+            trial=(self._new_trial(sign, young_ref=max(1, fit.n_before)) if self._provisional
+                   else self._new_trial(sign)),
             n_after=max(1, fit.n_after),
         )
         self._event = ev
@@ -2370,13 +2411,23 @@ class StreamEngine:
             self.records_total = _tally(self.records_total, (PLANNED,))
         return rec
 
-    def _new_trial(self, sign: int) -> EventTrial:
+    def _new_trial(self, sign: int, young_ref: int = 0) -> EventTrial:
         """The decision for an event in direction ``sign``: the smallest step of interest in
-        the units of the trial's inputs (prewhitened residuals over the innovation sigma)."""
+        the units of the trial's inputs (prewhitened residuals over the innovation sigma).
+
+        ``young_ref``: the samples of the fitted level the trial measures from, when
+        the baseline is provisional; the trial then weighs that level's error, the
+        inputs' variance per sample taken at :func:`young_variance` for as many samples
+        as the level rests on (the baseline's phi rests on the samples before the split,
+        however many the young level holds), and pooled with its own inputs' as they
+        come (:meth:`.events.EventTrial.variance`)."""
         s = self.settings
         b = self._baseline
         d = self._test_shift_z if b is None else s.min_shift_sigma * b.sigma * (1.0 - b.phi) / b.innovation_sigma
-        return EventTrial(sign, max(d, 0.05), s.confirm_p_value, s.confirm_max_samples, s.confirm_min_samples)
+        if young_ref <= 0 or b is None:
+            return EventTrial(sign, max(d, 0.05), s.confirm_p_value, s.confirm_max_samples, s.confirm_min_samples)
+        return EventTrial(sign, max(d, 0.05), s.confirm_p_value, s.confirm_max_samples, s.confirm_min_samples,
+                          n_ref=float(young_ref), lam=young_variance(b), n_lam=float(min(b.n, young_ref)))
 
     def _fit(self, b: Baseline) -> StepFit:
         """Fit the step over the event's window, reusing the fitter's running sums."""
@@ -2451,7 +2502,13 @@ class StreamEngine:
         shows = p < max(self.settings.confirm_p_value, CONFIRM_FIT_P if young else CONFIRM_FIT_P_SETTLED)
         clear = (p < self.settings.confirm_p_value
                  and abs(fit.delta) >= 0.5 * self.settings.min_shift_sigma * b.sigma)
-        if late and ((outcome == STEP and shows) or clear):
+        # A look (a trial on a young reference: the plain evidence for a step, not yet
+        # the evidence that allows for the reference's error) is weighed as a "step"
+        # is, but never confirms: the late step and the conflict end the event as
+        # after a "step", else the trial goes on.
+        looked = outcome == LOOK
+        stepped = outcome == STEP or looked
+        if late and ((stepped and shows) or clear):
             # The step the samples show began after the detection (in the detected
             # direction, or clearly in the other): that detection was not this step.
             # It ends as dismissed (with the fit it had), and the step gets an event
@@ -2466,11 +2523,14 @@ class StreamEngine:
             # the refit's sup-F against the F whose p-value is confirm_p_value, or else the
             # trial's evidence for a step against Wald's bound.
             tripped = ((REFIT_TEST, fit.f_stat, supf_critical(self.settings.confirm_p_value, fit.pi0)) if clear
-                       else (TRIAL_TEST, ev.trial.llr_step(), ev.trial.bound))
+                       else (TRIAL_TEST, ev.trial.llr_plain() if looked else ev.trial.llr_step(), ev.trial.bound))
             self._begin_event(as_of, result, as_of, by_fit=True, tripped=tripped)
             return
         shown = self._event_fit(ev, b, fit)  # what the record says
-        conflict = outcome == STEP and self._conflicts(fit, ev.trial.sign, b)
+        conflict = stepped and self._conflicts(fit, ev.trial.sign, b)
+        if looked and not conflict:
+            ev.trial.reopen()
+            return
         if outcome == STEP and (conflict or not shows):
             anchored = self._anchored(ev, shown, b)
             if anchored is not None:
@@ -2598,6 +2658,20 @@ class StreamEngine:
         self.records_total = _tally(self.records_total, ("undecided",))
         return rec
 
+    def _follow_input(self, x: FloatArray, b: Baseline) -> FloatArray:
+        """What the follower is fed of samples ``x``: each less the baseline's level, held
+        within the spike band (``spike_sigma`` sigmas about the level plus the centre
+        spikes are judged against).  A sample beyond the band is kept only as part of a
+        run (a step's first samples, a burst of outliers); before, a burst of three
+        samples 100 sigma out moved the follower by 3 x 100 / 110 sigma once the
+        follower reached it, and the stream then detected the burst's "step" again and
+        again (30 events for three samples of 1e9 on a level of 20).  Inside the band,
+        where every sample of a calm stream lies, the floats are those of ``x - level``."""
+        span = self.settings.spike_sigma * b.sigma
+        r = x - b.level
+        _clip(r, self._center - span, self._center + span, out=r)
+        return r
+
     def _follow_catch_up(self, ev: OpenEvent, b: Baseline) -> None:
         """After an event that found no step: the level went on moving, if at all,
         slowly.  The follower catches up with the event's samples as if no event had
@@ -2606,7 +2680,8 @@ class StreamEngine:
         vals = self._fitter.values
         start = max(0, ev.trip_len - self._follow_lag)
         end = max(start, vals.shape[0] - follow_delay(b.phi, self.settings.window_samples))
-        self._follow = float(follow_path(vals[start:end] - b.level, self._follow, 1.0 / follow_samples(b.phi))[-1])
+        self._follow = float(follow_path(self._follow_input(vals[start:end], b), self._follow,
+                                         1.0 / follow_samples(b.phi))[-1])
         self._follow_lag = vals.shape[0] - end
         self._center = self._follow
         self._prev_r -= self._follow
@@ -2889,17 +2964,34 @@ class StreamEngine:
                 raise ValueError(f"{field_name}: {exc.args[0]} is missing from the saved state") from None  # noqa: TRY004  every bad field is a ValueError
             raise ValueError(f"{field_name}: malformed ({exc!r:.120})") from None
 
+    def _gap_from(self, shift_at_low: float) -> float | None:
+        """The time of the last reading before ``shift_at_low`` when the readings paused
+        there for more than GAP_FACTOR times their median interval (the event's window),
+        else None.  A step across a pause (a line stopped overnight) may have come at
+        any moment of it; its first reading after the pause is all the fit can date."""
+        f = self._fitter
+        if f is None or len(f) < 3:
+            return None
+        tt = f.times
+        j = int(np.searchsorted(tt, shift_at_low, side="left"))
+        if j < 1:
+            return None
+        usual = float(np.median(np.diff(tt)))
+        before = float(tt[j - 1])
+        return before if usual > 0.0 and shift_at_low - before > GAP_FACTOR * usual else None
+
     def _record(self, ev: OpenEvent, fit: StepFit, phase: str, as_of: float,
                 **extra: Any) -> AlertRecord:
         # A step is never dated after the detection that reported it: the fit of
         # the event's samples can reach past it only at its upper bound.
+        low = min(fit.shift_at_low, ev.detected_at)
         return AlertRecord(
             id=ev.id,
             phase=phase,
             stream=self.stream,
             detected_at=ev.detected_at,
             shift_at=min(fit.shift_at, ev.detected_at),
-            shift_at_low=min(fit.shift_at_low, ev.detected_at),
+            shift_at_low=low,
             shift_at_high=min(fit.shift_at_high, ev.detected_at),
             level_before=fit.level_before,
             level_after=fit.level_after,
@@ -2919,6 +3011,7 @@ class StreamEngine:
             p_value=fit.p_value,
             direction="up" if fit.delta > 0 else "down",
             unit=self.unit,
+            gap_from=self._gap_from(low),
             **extra,
         )
 
@@ -3372,6 +3465,21 @@ def residual_phi_bound(values: FloatArray, split: int, margin: float | None = No
     r += segments * (1.0 + 3.0 * r) / n
     up = r + (PHI_BOUND_MARGIN if margin is None else margin) / math.sqrt(n)
     return float(max(0.0, min(0.95, up)))
+
+
+def young_variance(b: Baseline) -> float:
+    """Variance per sample of a trial's inputs (prewhitened at ``b.phi``, over
+    ``b.innovation_sigma``) on noise whose phi lies one standard error above ``b.phi``
+    (``sqrt((1 - phi^2) / n)`` on ``b.n`` samples, at most 0.95): the long-run variance
+    ``(1 - phi)^2 sigma^2 (1 + phi_up) / (1 - phi_up)`` over ``innovation_sigma^2``, and
+    at least 1 (a provisional baseline's innovation sigma may carry an allowance
+    already)."""
+    phi = b.phi
+    up = min(0.95, max(phi, 0.0) + YOUNG_PHI_MARGIN * math.sqrt(max(1.0 - phi * phi, 0.0) / max(b.n, 1)))
+    if not b.innovation_sigma > 0.0:
+        return 1.0
+    v = (1.0 - phi) ** 2 * b.sigma * b.sigma * _variance_factor(up) / (b.innovation_sigma * b.innovation_sigma)
+    return max(1.0, v) if math.isfinite(v) else 1.0
 
 
 def _variance_factor(phi: float) -> float:

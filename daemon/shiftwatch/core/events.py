@@ -42,6 +42,38 @@ Expected samples to a decision (Wald's approximation ``bound / drift``,
 d = 1, bound 6.9): 3 for a 3 sigma step, 7 for 1.5 sigma, 14 for 1 sigma,
 and 25 to dismiss an event on an unchanged level.
 
+**A reference known from few samples** (``n_ref``, given on a provisional
+baseline, a new stream's first warm-up: the trial measures from the level
+fitted before the step on a few dozen samples).  That level's own error, the
+same for every sample of the trial, and a phi estimated low both make the
+inputs of an unchanged level drift.  With the inputs' variance per sample
+``lam_m`` and the reference's error ``N(0, lam_m / n_ref)`` integrated out,
+the log-likelihood ratio for a mean ``d_j`` is ``(d_j S_m - m d_j^2 / 2)
+* w_m``, ``w_m = n_ref / (lam_m (n_ref + m))`` (the reference's share of
+the evidence); with ``lam`` fixed each is the likelihood ratio of the
+samples so far, a martingale under no step.  ``lam_m`` pools ``lam`` (the
+engine's: the long-run variance at the baseline's phi one standard error
+up, over the one the inputs are scaled by, at least 1), resting on
+``n_lam`` samples, with the trial's own inputs' variance times ``(1 + r) /
+(1 - r)``, ``r`` their lag-1 autocorrelation one standard error up
+(:meth:`EventTrial.variance`): a baseline whose spread holds the start of
+the step scales the inputs down, and the trial learns that from its own
+samples.  That evidence is bounded by about ``n_ref (d_j mu - d_j^2 / 2) /
+lam_m`` for a step ``mu`` however long the trial runs, so one design step
+alone cannot confirm a large step measured from 20 samples; the trial
+weighs the steps ``d_j = d, 2d, 4d, 8d`` (:data:`STEP_MULTIPLES`) and says
+"step" when the largest of the four reaches the bound plus ``log 4``: then
+their equal mixture, itself a martingale, has reached the bound, and
+Ville's inequality (Ville 1939) keeps the error rate under ``alpha``
+(``tests/core/test_young_trial.py`` simulates it).  Where the plain evidence
+for ``d`` (as above) reaches the bound and this one does not, the trial says
+*look* (:data:`LOOK`): the engine ends the event undecided when the fit of
+its samples contradicts a step, as it does after a "step", and otherwise
+lets the trial go on (:meth:`EventTrial.reopen`); so a false event whose
+evidence the reference's error keeps from a decision is not held open to
+the limit.  Without ``n_ref`` the trial is the single design step above,
+unchanged.
+
 The decision falls on a fixed sample whatever the batching: the sums are
 advanced sample by sample (vectorised as cumulative sums) and the first
 sample at which a bound is crossed decides.
@@ -59,11 +91,22 @@ from shiftwatch.core.sequential import FloatArray
 #: The "no step" hypothesis is tested against a step of this fraction of ``d``.
 DISMISS_AT = 0.75
 
+#: Standard errors above its estimate at which a young reference's trial takes the lag-1
+#: autocorrelation of its own inputs.
+PHI_MARGIN = 1.0
+#: The least variance per sample a young reference's trial allows for.
+LAM_FLOOR = 0.05
+
+#: The step sizes, as multiples of ``d``, a trial on a young reference weighs (see above).
+STEP_MULTIPLES = (1.0, 2.0, 4.0, 8.0)
+_LOG_MULTIPLES = math.log(len(STEP_MULTIPLES))
+
 #: Outcomes of :meth:`EventTrial.feed`.
 PENDING = ""
 STEP = "step"
 NO_STEP = "no_step"
 NO_DECISION = "no_decision"
+LOOK = "look"  # (a trial on a young reference: the plain evidence for d reached the bound)
 
 
 class EventTrial:
@@ -76,6 +119,11 @@ class EventTrial:
     error_rate : alpha = beta of both tests (in (0, 0.5)).
     limit : samples after which the event ends undecided (>= 1).
     min_samples : samples before any decision (>= 1, at most ``limit``).
+    n_ref : the samples the reference level rests on, when few (a young level);
+        ``inf`` (the default): a settled reference, whose error is negligible.
+    lam : variance of the inputs per sample allowed for (> 0; with ``n_ref``).
+    n_lam : the samples ``lam`` rests on, against the trial's own inputs' variance
+        (default ``n_ref``).
 
     Examples
     --------
@@ -92,12 +140,21 @@ class EventTrial:
     >>> tr = EventTrial(-1, 1.0, 0.001, 600)
     >>> i, outcome = tr.feed(np.zeros(100)); i, outcome
     (24, 'no_step')
+
+    Measured from a level of 20 samples, a 3-sigma step is still confirmed as soon
+    (the larger step sizes weigh it):
+
+    >>> tr = EventTrial(+1, 1.0, 0.001, 600, n_ref=20.0)
+    >>> tr.feed(np.array([2.9, 3.2, 2.7, 3.1, 3.0, 2.4, 3.6, 2.8]))
+    (2, 'step')
     """
 
-    __slots__ = ("bound", "d", "limit", "m", "min_samples", "outcome", "s", "sign", "step_from")
+    __slots__ = ("bound", "c", "d", "lam", "last", "limit", "m", "min_samples", "n_lam", "n_ref", "outcome",
+                 "q", "s", "sign", "step_from")
 
     def __init__(self, sign: int, d: float, error_rate: float, limit: int,
-                 min_samples: int = 1) -> None:
+                 min_samples: int = 1, n_ref: float = math.inf, lam: float = 1.0,
+                 n_lam: float | None = None) -> None:
         if sign not in (-1, 1):
             raise ValueError(f"sign must be +1 or -1, got {sign!r}")
         if not (d > 0 and math.isfinite(d)):
@@ -106,6 +163,14 @@ class EventTrial:
             raise ValueError(f"error_rate must be in (0, 0.5), got {error_rate!r}")
         if limit < 1:
             raise ValueError(f"limit must be at least 1, got {limit!r}")
+        if not n_ref > 0:
+            raise ValueError(f"n_ref must be a positive number or inf, got {n_ref!r}")
+        if not (lam > 0.0 and math.isfinite(lam)):
+            raise ValueError(f"lam must be a positive number, got {lam!r}")
+        if n_lam is None:
+            n_lam = n_ref if math.isfinite(n_ref) else 0.0
+        if not (n_lam >= 0.0 and math.isfinite(n_lam)):
+            raise ValueError(f"n_lam must be a number of at least 0, got {n_lam!r}")
         self.sign = sign
         self.d = float(d)
         self.bound = math.log((1.0 - error_rate) / error_rate)
@@ -115,10 +180,62 @@ class EventTrial:
         self.s = 0.0
         self.outcome = PENDING
         self.step_from = 0  # no "step" verdict before this count (see reopen)
+        self.n_ref = float(n_ref)
+        self.lam = float(lam) if math.isfinite(self.n_ref) else 1.0
+        self.n_lam = float(n_lam) if math.isfinite(self.n_ref) else 0.0
+        self.q = 0.0  # sum of the squared inputs (signed as s)
+        self.c = 0.0  # sum of the products of neighbouring inputs
+        self.last = 0.0  # the last input (signed)
 
     # The two log-likelihood ratios, from the sums.
     def llr_step(self) -> float:
-        """Evidence for a step of ``d`` against none (decides at :attr:`bound`)."""
+        """Evidence for a step of ``d`` against none (decides at :attr:`bound`); on a young
+        reference the largest of the step sizes' share-weighted ratios, less ``log 4``."""
+        if not math.isfinite(self.n_ref):
+            return self.d * self.s - 0.5 * self.m * self.d * self.d
+        return float(self._young_llr(np.float64(self.m), np.float64(self.s), np.float64(self.q),
+                                     np.float64(self.c)))
+
+    def variance(self) -> float:
+        """The variance per sample of the inputs the young reference's evidence allows for
+        (see the module docstring); :attr:`lam` on a settled reference."""
+        if not math.isfinite(self.n_ref) or self.m == 0:
+            return self.lam
+        return float(self._lam_at(np.float64(self.m), np.float64(self.s), np.float64(self.q),
+                                  np.float64(self.c)))
+
+    def _lam_at(self, m: Any, s: Any, q: Any, c: Any) -> Any:
+        """The variance per sample allowed for after ``m`` inputs with sums ``s``, ``q`` and
+        ``c``, element by element (numpy's operations on scalars and arrays alike, so that
+        both paths of :meth:`feed` get the same floats): the inputs' own variance about
+        their mean times ``(1 + r) / (1 - r)``, ``r`` their lag-1 autocorrelation
+        (Kendall's bias ``(1 + 3 r) / m`` added) plus :data:`PHI_MARGIN` standard errors
+        ``1 / sqrt(m)``, in [0, 0.95]; pooled with :attr:`lam`, which rests on
+        :attr:`n_lam` samples, by degrees of freedom (``m - 1`` for the inputs' own);
+        at least :data:`LAM_FLOOR`."""
+        mm1 = np.maximum(m - 1.0, 1.0)
+        mean = s / m
+        var = np.maximum((q - s * mean) / mm1, 0.0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            r = np.where(var > 0.0, (c / mm1 - mean * mean) / var, 0.0)
+        r = r + (1.0 + 3.0 * r) / m
+        up = np.minimum(0.95, np.maximum(0.0, r + PHI_MARGIN / np.sqrt(m)))
+        own = var * ((1.0 + up) / (1.0 - up))
+        return np.maximum((self.n_lam * self.lam + (m - 1.0) * own) / (self.n_lam + (m - 1.0)), LAM_FLOOR)
+
+    def _young_llr(self, m: Any, s: Any, q: Any, c: Any) -> Any:
+        """The young reference's evidence (the largest of the step sizes' share-weighted
+        log-likelihood ratios, less ``log 4``), element by element."""
+        best = None
+        for k in STEP_MULTIPLES:
+            dj = k * self.d
+            g = dj * s - 0.5 * m * dj * dj
+            best = g if best is None else np.maximum(best, g)
+        return best * (self.n_ref / (self._lam_at(m, s, q, c) * (self.n_ref + m))) - _LOG_MULTIPLES
+
+    def llr_plain(self) -> float:
+        """Evidence for a step of ``d`` against none on a reference taken as exact (the
+        settled trial's :meth:`llr_step`; on a young reference it decides a :data:`LOOK`)."""
         return self.d * self.s - 0.5 * self.m * self.d * self.d
 
     def llr_no_step(self) -> float:
@@ -140,8 +257,12 @@ class EventTrial:
             return -1, PENDING
         if n <= 4:
             for i, v in enumerate(z.tolist()):
+                u = self.sign * v
                 self.m += 1
-                self.s += self.sign * v
+                self.s += u
+                self.q += u * u
+                self.c += self.last * u
+                self.last = u
                 out = self._verdict()
                 if out:
                     self.outcome = out
@@ -150,25 +271,39 @@ class EventTrial:
         m = self.m + np.arange(1, n + 1, dtype=np.float64)
         # Summed from the running total one sample at a time, as the small path sums:
         # both decide on the same sample however the stream is batched.
-        s = np.cumsum(np.concatenate(([self.s], z if self.sign > 0 else -z)))[1:]
+        u = z if self.sign > 0 else -z
+        s = np.cumsum(np.concatenate(([self.s], u)))[1:]
         c = DISMISS_AT * self.d
-        step = (self.d * s - 0.5 * m * self.d * self.d) >= self.bound
+        q = cq = None
+        if math.isfinite(self.n_ref):
+            # The same operations as llr_step's, element by element (the same floats).
+            q = np.cumsum(np.concatenate(([self.q], u * u)))[1:]
+            lag = np.empty(n)
+            lag[0] = self.last * float(u[0])
+            np.multiply(u[:-1], u[1:], out=lag[1:])
+            cq = np.cumsum(np.concatenate(([self.c], lag)))[1:]
+            step = self._young_llr(m, s, q, cq) >= self.bound
+            step |= (self.d * s - 0.5 * m * self.d * self.d) >= self.bound  # (or a look: see _verdict)
+        else:
+            step = (self.d * s - 0.5 * m * self.d * self.d) >= self.bound
         if self.step_from > self.m + 1:
             step &= m >= self.step_from
         none = (-c * s + 0.5 * m * c * c) >= self.bound
         hit = np.flatnonzero(((step | none) & (m >= self.min_samples)) | (m >= self.limit))
-        if hit.shape[0] == 0:
-            self.m += n
-            self.s = float(s[-1])
-            return -1, PENDING
-        i = int(hit[0])
+        i = n - 1 if hit.shape[0] == 0 else int(hit[0])
         self.m += i + 1
         self.s = float(s[i])
+        if q is not None and cq is not None:
+            self.q = float(q[i])
+            self.c = float(cq[i])
+            self.last = float(u[i])
+        if hit.shape[0] == 0:
+            return -1, PENDING
         self.outcome = self._verdict()
         return i, self.outcome
 
     def reopen(self) -> None:
-        """Take back a "step" verdict the engine did not accept (the fit of the event's
+        """Take back a "step" (or "look") verdict the engine did not accept (the fit of the event's
         samples does not show the step): the sums stand and the trial goes on.  The next
         "step" verdict comes no sooner than a tenth of the samples so far later (so the
         engine refits once every so many samples, not on each), on a count that does
@@ -179,8 +314,11 @@ class EventTrial:
     def _verdict(self) -> str:
         if self.m < self.min_samples:
             return PENDING
-        if self.llr_step() >= self.bound and self.m >= self.step_from:
-            return STEP
+        if self.m >= self.step_from:
+            if self.llr_step() >= self.bound:
+                return STEP
+            if math.isfinite(self.n_ref) and self.llr_plain() >= self.bound:
+                return LOOK
         if self.llr_no_step() >= self.bound:
             return NO_STEP
         if self.m >= self.limit:
@@ -189,7 +327,10 @@ class EventTrial:
 
     def get_state(self) -> dict[str, Any]:
         return {"sign": self.sign, "d": self.d, "bound": self.bound, "limit": self.limit,
-                "min_samples": self.min_samples, "m": self.m, "s": self.s, "step_from": self.step_from}
+                "min_samples": self.min_samples, "m": self.m, "s": self.s, "step_from": self.step_from,
+                # (JSON has no inf: 0 for a settled reference)
+                "n_ref": self.n_ref if math.isfinite(self.n_ref) else 0.0, "lam": self.lam,
+                "n_lam": self.n_lam, "q": self.q, "c": self.c, "last": self.last}
 
     @classmethod
     def from_state(cls, state: dict[str, Any]) -> EventTrial:
@@ -209,6 +350,20 @@ class EventTrial:
         out.outcome = PENDING
         # (snapshots before the fit's check carry no step_from: 0, as a new trial)
         out.step_from = _count(state, "step_from", 0, default=0)
+        # (snapshots before the young reference's allowance carry neither: a settled one)
+        n_ref = _number(state, "n_ref") if "n_ref" in state else 0.0
+        if not (math.isfinite(n_ref) and n_ref >= 0):
+            raise ValueError(f"event.trial.n_ref: not a usable number ({n_ref!r})")
+        out.n_ref = n_ref if n_ref > 0 else math.inf
+        lam = _number(state, "lam") if "lam" in state else 1.0
+        if not (math.isfinite(lam) and lam > 0.0):
+            raise ValueError(f"event.trial.lam: not a usable number ({lam!r})")
+        out.lam = lam if math.isfinite(out.n_ref) else 1.0
+        for name in ("n_lam", "q", "c", "last"):
+            v = _number(state, name) if name in state else 0.0
+            if not math.isfinite(v) or (name in ("n_lam", "q") and v < 0):
+                raise ValueError(f"event.trial.{name}: not a usable number ({v!r})")
+            setattr(out, name, v)
         return out
 
 
