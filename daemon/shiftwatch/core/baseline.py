@@ -30,6 +30,10 @@ try:
     _clip: Any = np._core.umath.clip  # type: ignore[attr-defined]  # numpy 2's stubs omit _core
 except AttributeError:  # numpy 1.x (the ufunc's module was numpy.core then)
     _clip = np.core.umath.clip  # type: ignore[attr-defined]
+try:  # np.count_nonzero's C function, without the Python function that dispatches to it
+    _count_nonzero: Any = np._core.multiarray.count_nonzero  # type: ignore[attr-defined]
+except AttributeError:  # numpy 1.x
+    _count_nonzero = np.core.multiarray.count_nonzero  # type: ignore[attr-defined]
 #: BaselineSums.add calls _dot and _clip directly; False: np.dot and ndarray.clip, the
 #: reference (tests/core/test_per_call.py holds the two to each other).
 DIRECT_CALLS = True
@@ -448,11 +452,12 @@ class BaselineSums:
         dot = _dot if direct else np.dot
         dev = values - b.level
         dev *= 1.0 / b.sigma
+        count = _count_nonzero if direct else np.count_nonzero
         if c > TAIL_AT:
             u = _clip(dev, -c, c) if direct else dev.clip(-c, c)
-            self.tail += int(np.count_nonzero(np.abs(u) > TAIL_AT))
+            self.tail += int(count(np.abs(u) > TAIL_AT))
         else:
-            self.tail += int(np.count_nonzero(np.abs(dev) > TAIL_AT))
+            self.tail += int(count(np.abs(dev) > TAIL_AT))
             u = _clip(dev, -c, c) if direct else dev.clip(-c, c)
         phi = b.phi
         # The prewhitened residuals within the samples (both parts; the one across the
@@ -496,6 +501,26 @@ class BaselineSums:
                     ef = float(us[0] - phi * self.prev_u)
                     ef = -c if ef < -c else (c if ef > c else ef)
                     self.see += ef * ef
+            if direct:
+                # The same doubles read with item() (no array scalar made and converted), the
+                # part's steps sliced only when they are looked at one by one.
+                t_a, t_z = times.item(a), times.item(z - 1)
+                if self.prev_t is not None:
+                    d0 = t_a - self.prev_t
+                    if 0.0 < d0 < gap:
+                        self.sdt += d0
+                        self.ndt += 1
+                if k > 1:
+                    assert dt_all is not None
+                    if regular:
+                        self.sdt += t_z - t_a
+                        self.ndt += k - 1
+                    else:
+                        self._add_steps(dt_all[a: z - 1], gap, t_z - t_a, k)
+                self.n += k
+                self.prev_u = u.item(z - 1)
+                self.prev_t = t_z
+                continue
             if self.prev_t is not None:
                 d0 = float(times[a]) - self.prev_t
                 if 0.0 < d0 < gap:
@@ -514,6 +539,16 @@ class BaselineSums:
             self.n += k
             self.prev_u = float(us[-1])
             self.prev_t = float(times[z - 1])
+
+    def _add_steps(self, dt: FloatArray, gap: float, span: float, k: int) -> None:
+        """:meth:`add`'s steps of one part that were not all regular over the whole call."""
+        if 0.0 < float(_min(dt)) and float(_max(dt)) < gap:
+            self.sdt += span
+            self.ndt += k - 1
+        else:
+            ok = dt[(dt > 0) & (dt < gap)]
+            self.sdt += float(ok.sum())
+            self.ndt += int(ok.shape[0])
 
     def add_one(self, b: Baseline, value: float, time: float) -> None:
         """:meth:`add` of one sample, in plain floats: the same operations on the same
@@ -570,7 +605,12 @@ class BaselineSums:
         def avg(a: float, c: float) -> float:
             return (a * w_old + c * n_blk) / w
 
-        phi_raw = float(np.clip(avg(b.phi_raw, phi_blk), -0.95, 0.95))
+        if DIRECT_CALLS:
+            # np.clip of one float, in plain floats: the same bounds on the same number (a
+            # NaN stays NaN, a zero keeps its sign), without some 10 us of the array call
+            phi_raw = float(min(max(avg(b.phi_raw, phi_blk), -0.95), 0.95))
+        else:
+            phi_raw = float(np.clip(avg(b.phi_raw, phi_blk), -0.95, 0.95))
         n = min(b.n + n_blk, max_weight + n_blk)
         phi = phi_raw if abs(phi_raw) >= 2.0 / math.sqrt(n) else 0.0
         tail = avg(b.tail_fraction, tail_blk)

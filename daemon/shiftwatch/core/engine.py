@@ -577,6 +577,15 @@ _ONE_ZERO = array("d", [0.0])
 #: the same numbers.  False: the reference (tests/core/test_per_call.py holds the two to
 #: each other).
 LEAN_CALLS = True
+#: The watch stretch's fixed work trimmed further, the same operations on the same numbers:
+#: screening's largest and smallest value of the batch stand for the spike check on every
+#: watch stretch of the call (a later stretch's samples are some of the batch's, so when the
+#: batch lies inside the band so do they), not only the first; the follower's delay and
+#: rate kept on the engine for its phi; the window's rows sliced once instead of through
+#: their properties and then again.  False: the reference (tests/core/test_stretch_trim.py
+#: holds the two to each other).
+TRIM_STRETCH = True
+_NO_TERMS = (math.nan, 0, 0, 0.0)  # StreamEngine._fterms before a stretch (NaN matches no phi)
 #: The young loop (StreamEngine._young_loop) tells whether its bank's statistic reaches the
 #: split screen's or the calm fraction of the threshold by comparing each sum, as the
 #: recursion sets it, with the least sum that reaches it (_four_terms), in place of the
@@ -713,6 +722,7 @@ class StreamEngine:
         "_fitter",
         "_follow",
         "_follow_lag",
+        "_fterms",
         "_last_step",
         "_last_time",
         "_next_center",
@@ -770,6 +780,8 @@ class StreamEngine:
         self._prev_r = 0.0
         self._follow = 0.0  # offset of the followed level from the baseline's (see FOLLOW_SAMPLES)
         self._follow_lag = 0  # newest kept samples in the window not yet fed to the follower
+        # phi and the window for which the follower's delay and rate were taken, and those two
+        self._fterms: tuple[float, int, int, float] = _NO_TERMS  # (shared until the first stretch)
         self._center = 0.0  # the follower's offset that spikes are judged against (see FOLLOW_RECENTER)
         self._next_center = FOLLOW_RECENTER  # value of _watch_kept at which _center is taken next
         self._pending: tuple[float, float] | None = None  # held possible spike
@@ -913,9 +925,12 @@ class StreamEngine:
                 used = self._warm(t[pos:], x[pos:], kept[pos:], result)
             elif self._state == WATCHING:
                 # (the batch's largest and smallest value, which screening took, stand for
-                # the spike check's on the first stretch)
-                used = self._watch(t[pos:], x[pos:], kept[pos:], result,
-                                   (scr.high, scr.low) if pos == 0 and LEAN_CALLS else None)
+                # the spike check's on the first stretch, and with TRIM_STRETCH on every one)
+                bounds = (scr.high, scr.low) if (pos == 0 or TRIM_STRETCH) and LEAN_CALLS else None
+                if pos == 0 and TRIM_STRETCH:  # (the arrays themselves: [0:] makes views of them)
+                    used = self._watch(t, x, kept, result, bounds)
+                else:
+                    used = self._watch(t[pos:], x[pos:], kept[pos:], result, bounds)
             else:
                 used = self._track(t[pos:], x[pos:], kept[pos:], result)
             pos += used
@@ -973,8 +988,12 @@ class StreamEngine:
                         w.extend(x, t)
                         extended = True
                         p0 = len(w) - m - old
-                        self._sums.add(b, w.values[p0: p0 + fold] - np.concatenate((wu, u[:new])),
-                                       w.times[p0: p0 + fold], cut=old)
+                        if TRIM_STRETCH:  # the window's rows sliced once
+                            rows = w._blk[w._i, :, p0: p0 + fold]
+                            self._sums.add(b, rows[0] - np.concatenate((wu, u[:new])), rows[1], cut=old)
+                        else:
+                            self._sums.add(b, w.values[p0: p0 + fold] - np.concatenate((wu, u[:new])),
+                                           w.times[p0: p0 + fold], cut=old)
                     else:
                         self._sums.add(b, np.concatenate((w.values[a: a + old], x[:new]))
                                        - np.concatenate((wu, u[:new])),
@@ -2190,7 +2209,13 @@ class StreamEngine:
         and the offset each sample of the stretch is measured against."""
         m = kx.shape[0]
         lag = self._follow_lag
-        if LEAN_CALLS:
+        if TRIM_STRETCH and LEAN_CALLS:
+            ft = self._fterms
+            if ft[0] != phi or ft[1] != self.settings.window_samples:  # (phi: refined now and then)
+                ft = self._fterms = (phi, self.settings.window_samples,
+                                     *_follow_terms(phi, self.settings.window_samples))
+            delay, lam = ft[2], ft[3]
+        elif LEAN_CALLS:
             delay, lam = _follow_terms(phi, self.settings.window_samples)
         else:
             delay, lam = follow_delay(phi, self.settings.window_samples), 1.0 / follow_samples(phi)
@@ -2199,8 +2224,13 @@ class StreamEngine:
             return 0, np.array([self._follow]), np.full(m, self._follow)
         w = self._window
         from_window = min(lag, feed)
-        y = kx[: feed - from_window] if from_window == 0 else np.concatenate(
-            (w.values[len(w) - lag: len(w) - lag + from_window], kx[: feed - from_window]))
+        if from_window == 0:
+            y = kx[: feed - from_window]
+        elif TRIM_STRETCH:
+            a = w._n - lag  # the window's values row, sliced once
+            y = np.concatenate((w._blk[w._i, 0, a: a + from_window], kx[: feed - from_window]))
+        else:
+            y = np.concatenate((w.values[len(w) - lag: len(w) - lag + from_window], kx[: feed - from_window]))
         b = self._baseline
         assert b is not None
         path = follow_path(self._follow_input(y, b), self._follow, lam)
@@ -3371,11 +3401,12 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
         if LEAN_CALLS:
             # The same quotients, sums and products, in one buffer (lam * s is s * lam and
             # u0 + v is v + u0 exactly: IEEE addition and multiplication commute).
-            q = np.divide(r, p[:m])
+            pm = p[:m]
+            q = np.divide(r, pm)
             np.add.accumulate(q, out=q)
             q *= lam
             q += u0
-            np.multiply(p[:m], q, out=out[1:])
+            np.multiply(pm, q, out=out[1:])
         else:
             np.multiply(p[:m], u0 + lam * np.add.accumulate(r / p[:m]), out=out[1:])
         return out

@@ -341,7 +341,10 @@ class MultiCusumTest(SequentialTest):
         vector operations on a ``(2 m, block)`` array (``m`` charts, both
         sides); samples after the trip index are not consumed.
         """
-        x = np.asarray(z, dtype=np.float64).ravel()
+        if AS_GIVEN and type(z) is np.ndarray and z.ndim == 1 and z.dtype == _F64:
+            x = z  # (the engine's residuals: what asarray and ravel would give, as they are)
+        else:
+            x = np.asarray(z, dtype=np.float64).ravel()
         n = x.shape[0]
         bank = self._bank
         m = bank.m
@@ -352,7 +355,7 @@ class MultiCusumTest(SequentialTest):
             return self._update_small(x.tolist())
         while start < n:
             stop = min(n, start + BLOCK)
-            blk = x[start:stop]
+            blk = x if AS_GIVEN and start == 0 and stop == n else x[start:stop]
             if bank.ascending and stop - start >= FAST_FROM:
                 i = self._block_lean(blk) if LEAN_BLOCK else self._block_fast(blk)
                 if i == -2:
@@ -392,9 +395,10 @@ class MultiCusumTest(SequentialTest):
                 self._tripped = j
                 self._dir = 1 if row < m else -1
                 return start + i
-            self._c[:] = s[:, -1]
+            last = s[:, -1]
+            self._c[:] = last
             # the largest C / h in plain floats: the same divisions, and max is exact
-            self._stat = max(map(operator.truediv, self._c.tolist(), bank.h2_list))
+            self._stat = max(map(operator.truediv, last.tolist(), bank.h2_list))
             start = stop
         return -1
 
@@ -736,6 +740,10 @@ SIGNED_ROWS = True
 #: Blocks that take the few-pass path take it with its fixed work trimmed
 #: (MultiCusumTest._block_lean); False: _block_fast, the reference.
 LEAN_BLOCK = True
+#: MultiCusumTest.update takes a 1-D float64 array as it is, without asarray and ravel
+#: (False: through them, the reference; tests/core/test_stretch_trim.py).
+AS_GIVEN = True
+_F64 = np.dtype(np.float64)
 
 
 def _float_list(name: str, values: Sequence[float]) -> list[float]:
