@@ -7,11 +7,15 @@ from __future__ import annotations
 
 import itertools
 import json
+from collections.abc import Callable
+from contextlib import AbstractContextManager
+from dataclasses import replace
 from typing import Any
 
 import numpy as np
 
 from shiftwatch.core import engine
+from shiftwatch.core.baseline import BaselineSums, estimate_baseline
 from shiftwatch.core.engine import StreamEngine
 
 
@@ -110,3 +114,92 @@ def split_spikes_with(sparse: bool, t: np.ndarray, x: np.ndarray, pending: tuple
                 None if settled is None else settled.tolist(), eng._pending)
     finally:
         engine.SPARSE_SPIKES = saved
+
+
+def record_run(eng: StreamEngine, t: np.ndarray, x: np.ndarray, a: np.ndarray | None,
+               cuts: list[int]) -> dict[str, Any]:
+    """Feed the batches between ``cuts`` (with their arrival times when ``a`` is given, as the
+    daemon feeds them); everything the engine said and kept after each batch."""
+    records, rejected, states = [], [], []
+    for lo, hi in itertools.pairwise([0, *cuts, x.shape[0]]):
+        res = eng.process(t[lo:hi], x[lo:hi]) if a is None else eng.process(t[lo:hi], x[lo:hi], a[lo:hi])
+        records += [r.to_dict() for r in res.records]
+        rejected += [(lo + r.position, r.reason, r.time) for r in res.rejected]
+        states.append(json.dumps(eng.get_state(), sort_keys=True))
+    return {"records": records, "rejected": rejected, "states": states,
+            "counts": (eng.samples_total, dict(eng.records_total), dict(eng.rejected_total))}
+
+
+def switched_run(switch: Callable[[bool], AbstractContextManager[None]], eng: StreamEngine, t: np.ndarray,
+                 x: np.ndarray, a: np.ndarray | None, cuts: list[int], on: bool) -> dict[str, Any]:
+    """:func:`record_run` with ``switch(on)`` set: the fast path (True) or its reference."""
+    with switch(on):
+        return record_run(eng, t, x, a, cuts)
+
+
+def random_history(kind: str, n: int, rng: np.random.Generator, *, t0: float, level: float, sigma: float,
+                   least_step: float, spiky: float, bare: float
+                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    """Times, values and (for most histories) arrival times of one stream: ``noise`` of
+    ``kind`` about ``level``; up to 3 steps of ``least_step`` to 5 and lone spikes of 6 to
+    20, in its units; with probability ``spiky`` 0.1% spikes of +9 sigma, as the replay
+    bench's data carry; a few bad values, stoppages and short gaps, sometimes a jittery
+    clock; with probability ``bare`` no arrival times (replay), else arrival times with
+    now and then a sample stamped a day ahead."""
+    x = level + sigma * noise(kind, n, rng)
+    for _ in range(int(rng.integers(0, 4))):  # steps
+        at = int(rng.integers(300, n))
+        x[at:] += float(rng.choice([-1.0, 1.0])) * float(rng.uniform(least_step, 5.0))
+    for at in rng.integers(0, n, size=int(rng.integers(0, 12))):  # lone spikes, +-6 to 20 sigma
+        x[at] += float(rng.choice([-1.0, 1.0])) * float(rng.uniform(6.0, 20.0))
+    if rng.random() < spiky:
+        x[rng.random(n) < 0.001] += 9.0 * sigma
+    for at in rng.integers(0, n, size=int(rng.integers(0, 3))):  # bad values
+        x[at] = float(rng.choice([np.nan, np.inf]))
+    dt = np.ones(n)
+    for at in rng.integers(1, n, size=int(rng.integers(0, 6))):  # stoppages and short gaps
+        dt[at] = float(rng.choice([2.0, 7.0, 45.0, 3600.0]))
+    if rng.random() < 0.3:  # a jittery clock
+        dt *= rng.uniform(0.8, 1.2, n)
+    t = t0 + np.cumsum(dt)
+    if rng.random() < bare:
+        return t, x, None
+    a = t + 0.05
+    for at in rng.integers(0, n, size=int(rng.integers(0, 3))):  # a sample stamped a day ahead
+        a[at] -= 86_400.0
+    return t, x, a
+
+
+def random_run_agrees(run: Callable[..., dict[str, Any]], history: Callable[..., Any], state: int, n: int,
+                      most: int) -> None:
+    """A random history (its noise's kind from ``state``) cut into batches of up to ``most``:
+    ``run`` gives the same with its switch on and off."""
+    rng = np.random.default_rng(state)
+    kind = ("iid", "ar", "t3", "quantised")[state % 4]
+    t, x, a = history(kind, n, rng)
+    cuts = steps_of(n, rng, most)
+    assert run(StreamEngine("s"), t, x, a, cuts, True) == run(StreamEngine("s"), t, x, a, cuts, False)
+
+
+def baseline_sums_agree(switch: Callable[[bool], AbstractContextManager[None]], rng: np.random.Generator,
+                        rounds: int, most: int, steps: Callable[[int], np.ndarray]) -> None:
+    """``BaselineSums.add`` with ``switch`` on and off gives the same sums (every one, and of
+    the same types, through ``to_list``) after random batches of t(3) readings of up to
+    ``most`` whose time steps ``steps(m)`` gives, with and without a cut, phi zero and not,
+    clip 4 and 2 (the tail count taken before or after the clip)."""
+    for _ in range(rounds):
+        b = estimate_baseline(np.arange(200.0), 10.0 + rng.standard_normal(200))
+        b = replace(b, phi=float(rng.choice([0.0, 0.3, -0.2])), clip=float(rng.choice([4.0, 2.0])))
+        sums = [BaselineSums(), BaselineSums()]
+        at = 200.0
+        for _ in range(int(rng.integers(1, 8))):
+            m = int(rng.integers(1, most))
+            v = 10.0 + rng.standard_t(3, m)
+            tt = at + np.cumsum(steps(m))
+            at = float(tt[-1])
+            cut = int(rng.integers(0, m + 1))
+            for s, on in zip(sums, (True, False)):
+                with switch(on):
+                    s.add(b, v, tt, cut=cut)
+        assert json.dumps(sums[0].to_list()) == json.dumps(sums[1].to_list())
+        assert [type(v) for v in sums[0].to_list()] == [type(v) for v in sums[1].to_list()]

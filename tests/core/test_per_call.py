@@ -19,12 +19,10 @@ statsmodels, scipy, published tables).
 
 from __future__ import annotations
 
+import functools
 import itertools
-import json
 from collections.abc import Iterator
 from contextlib import contextmanager
-from dataclasses import replace
-from typing import Any
 
 import numpy as np
 import pytest
@@ -32,11 +30,11 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from shiftwatch.core import baseline, engine
-from shiftwatch.core.baseline import BaselineSums, estimate_baseline
 from shiftwatch.core.engine import StreamEngine, follow_path
 from shiftwatch.core.settings import DetectionSettings
 
-from .batches import mixed_cuts, noise, steps_of
+from . import batches
+from .batches import mixed_cuts
 
 T0 = 1_788_000_000.0
 
@@ -51,46 +49,8 @@ def _lean(on: bool) -> Iterator[None]:
         engine.LEAN_CALLS, baseline.DIRECT_CALLS = saved
 
 
-def _run(eng: StreamEngine, t: np.ndarray, x: np.ndarray, a: np.ndarray | None, cuts: list[int],
-         on: bool) -> dict[str, Any]:
-    """Feed the batches between ``cuts`` (with their arrival times when ``a`` is given, as the
-    daemon feeds them); everything the engine said and kept after each batch."""
-    with _lean(on):
-        records, rejected, states = [], [], []
-        for lo, hi in itertools.pairwise([0, *cuts, x.shape[0]]):
-            res = eng.process(t[lo:hi], x[lo:hi]) if a is None else eng.process(t[lo:hi], x[lo:hi], a[lo:hi])
-            records += [r.to_dict() for r in res.records]
-            rejected += [(lo + r.position, r.reason, r.time) for r in res.rejected]
-            states.append(json.dumps(eng.get_state(), sort_keys=True))
-        return {"records": records, "rejected": rejected, "states": states,
-                "counts": (eng.samples_total, dict(eng.records_total), dict(eng.rejected_total))}
-
-
-def _history(kind: str, n: int, rng: np.random.Generator
-             ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
-    """Times, values and (for most histories) arrival times of one stream."""
-    x = 50.0 + 0.8 * noise(kind, n, rng)
-    for _ in range(int(rng.integers(0, 4))):  # steps
-        at = int(rng.integers(300, n))
-        x[at:] += float(rng.choice([-1.0, 1.0])) * float(rng.uniform(0.5, 5.0))
-    for at in rng.integers(0, n, size=int(rng.integers(0, 12))):  # lone spikes, +-6 to 20 sigma
-        x[at] += float(rng.choice([-1.0, 1.0])) * float(rng.uniform(6.0, 20.0))
-    if rng.random() < 0.3:  # 0.1% spikes of +9 sigma, as the replay bench's data carry
-        x[rng.random(n) < 0.001] += 9.0 * 0.8
-    for at in rng.integers(0, n, size=int(rng.integers(0, 3))):  # bad values
-        x[at] = float(rng.choice([np.nan, np.inf]))
-    dt = np.ones(n)
-    for at in rng.integers(1, n, size=int(rng.integers(0, 6))):  # stoppages and short gaps
-        dt[at] = float(rng.choice([2.0, 7.0, 45.0, 3600.0]))
-    if rng.random() < 0.3:  # a jittery clock
-        dt *= rng.uniform(0.8, 1.2, n)
-    t = T0 + np.cumsum(dt)
-    if rng.random() < 0.3:  # replay: no arrival times
-        return t, x, None
-    a = t + 0.05
-    for at in rng.integers(0, n, size=int(rng.integers(0, 3))):  # a sample stamped a day ahead
-        a[at] -= 86_400.0
-    return t, x, a
+_run = functools.partial(batches.switched_run, _lean)  # (eng, t, x, a, cuts, on): everything said and kept
+_history = functools.partial(batches.random_history, t0=T0, level=50.0, sigma=0.8, least_step=0.5, spiky=0.3, bare=0.3)
 
 
 @pytest.mark.parametrize("kind", ["iid", "ar", "t3", "quantised"])
@@ -136,11 +96,7 @@ def test_established_batches_of_260_and_4096() -> None:
 @settings(max_examples=25, deadline=None)
 @given(state=st.integers(0, 2**32 - 1), n=st.integers(400, 3000), most=st.integers(2, 600))
 def test_lean_calls_on_random_short_histories(state: int, n: int, most: int) -> None:
-    rng = np.random.default_rng(state)
-    kind = ("iid", "ar", "t3", "quantised")[state % 4]
-    t, x, a = _history(kind, n, rng)
-    cuts = steps_of(n, rng, most)
-    assert _run(StreamEngine("s"), t, x, a, cuts, True) == _run(StreamEngine("s"), t, x, a, cuts, False)
+    batches.random_run_agrees(_run, _history, state, n, most)
 
 
 def test_follower_one_block_in_place_equals_the_reference() -> None:
@@ -164,22 +120,7 @@ def test_baseline_sums_direct_calls_equal_the_reference() -> None:
     # sums (every one, through to_list) after random batches with and without a cut, phi zero
     # and not, clip 4 and 2 (the tail count taken before or after the clip).
     rng = np.random.default_rng(49)
-    for _ in range(60):
-        b = estimate_baseline(np.arange(200.0), 10.0 + rng.standard_normal(200))
-        b = replace(b, phi=float(rng.choice([0.0, 0.3, -0.2])), clip=float(rng.choice([4.0, 2.0])))
-        sums = [BaselineSums(), BaselineSums()]
-        at = 200.0
-        for _ in range(int(rng.integers(1, 8))):
-            m = int(rng.integers(1, 600))
-            v = 10.0 + rng.standard_t(3, m)
-            tt = at + np.cumsum(rng.choice([1.0, 1.0, 1.0, 30.0], m))
-            at = float(tt[-1])
-            cut = int(rng.integers(0, m + 1))
-            for s, on in zip(sums, (True, False)):
-                with _lean(on):
-                    s.add(b, v, tt, cut=cut)
-        assert sums[0].to_list() == sums[1].to_list()
-        assert json.dumps(sums[0].to_list()) == json.dumps(sums[1].to_list())
+    batches.baseline_sums_agree(_lean, rng, 60, 600, lambda m: rng.choice([1.0, 1.0, 1.0, 30.0], m))
 
 
 def test_the_switches_are_on() -> None:

@@ -21,11 +21,10 @@ themselves are held to outside references by the other tests of tests/core
 
 from __future__ import annotations
 
-import itertools
+import functools
 import json
 from collections.abc import Iterator
 from contextlib import contextmanager
-from dataclasses import replace
 from typing import Any
 
 import numpy as np
@@ -39,7 +38,8 @@ from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.multicusum import MultiCusumTest
 from shiftwatch.core.settings import DetectionSettings
 
-from .batches import mixed_cuts, noise, steps_of
+from . import batches
+from .batches import mixed_cuts
 
 T0 = 1_788_000_000.0
 
@@ -54,46 +54,8 @@ def _trim(on: bool) -> Iterator[None]:
         engine.TRIM_STRETCH, multicusum.AS_GIVEN, baseline.DIRECT_CALLS = saved
 
 
-def _run(eng: StreamEngine, t: np.ndarray, x: np.ndarray, a: np.ndarray | None, cuts: list[int],
-         on: bool) -> dict[str, Any]:
-    """Feed the batches between ``cuts`` (with their arrival times when ``a`` is given);
-    everything the engine said and kept after each batch."""
-    with _trim(on):
-        records, rejected, states = [], [], []
-        for lo, hi in itertools.pairwise([0, *cuts, x.shape[0]]):
-            res = eng.process(t[lo:hi], x[lo:hi]) if a is None else eng.process(t[lo:hi], x[lo:hi], a[lo:hi])
-            records += [r.to_dict() for r in res.records]
-            rejected += [(lo + r.position, r.reason, r.time) for r in res.rejected]
-            states.append(json.dumps(eng.get_state(), sort_keys=True))
-        return {"records": records, "rejected": rejected, "states": states,
-                "counts": (eng.samples_total, dict(eng.records_total), dict(eng.rejected_total))}
-
-
-def _history(kind: str, n: int, rng: np.random.Generator
-             ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
-    """Times, values and (for most histories) arrival times of one stream."""
-    x = 20.0 + 0.5 * noise(kind, n, rng)
-    for _ in range(int(rng.integers(0, 4))):  # steps
-        at = int(rng.integers(300, n))
-        x[at:] += float(rng.choice([-1.0, 1.0])) * float(rng.uniform(0.4, 5.0))
-    for at in rng.integers(0, n, size=int(rng.integers(0, 12))):  # lone spikes, +-6 to 20 sigma
-        x[at] += float(rng.choice([-1.0, 1.0])) * float(rng.uniform(6.0, 20.0))
-    if rng.random() < 0.4:  # 0.1% spikes of +9 sigma, as the replay bench's data carry
-        x[rng.random(n) < 0.001] += 9.0 * 0.5
-    for at in rng.integers(0, n, size=int(rng.integers(0, 3))):  # bad values
-        x[at] = float(rng.choice([np.nan, np.inf]))
-    dt = np.ones(n)
-    for at in rng.integers(1, n, size=int(rng.integers(0, 6))):  # stoppages and short gaps
-        dt[at] = float(rng.choice([2.0, 7.0, 45.0, 3600.0]))
-    if rng.random() < 0.3:  # a jittery clock
-        dt *= rng.uniform(0.8, 1.2, n)
-    t = T0 + np.cumsum(dt)
-    if rng.random() < 0.4:  # replay: no arrival times
-        return t, x, None
-    a = t + 0.05
-    for at in rng.integers(0, n, size=int(rng.integers(0, 3))):  # a sample stamped a day ahead
-        a[at] -= 86_400.0
-    return t, x, a
+_run = functools.partial(batches.switched_run, _trim)  # (eng, t, x, a, cuts, on): everything said and kept
+_history = functools.partial(batches.random_history, t0=T0, level=20.0, sigma=0.5, least_step=0.4, spiky=0.4, bare=0.4)
 
 
 @pytest.mark.parametrize("kind", ["iid", "ar", "t3", "quantised"])
@@ -143,11 +105,7 @@ def test_later_stretches_of_a_call_with_spikes_and_refinements() -> None:
 @settings(max_examples=30, deadline=None)
 @given(state=st.integers(0, 2**32 - 1), n=st.integers(400, 5000), most=st.integers(2, 4097))
 def test_trimmed_stretches_on_random_histories(state: int, n: int, most: int) -> None:
-    rng = np.random.default_rng(state)
-    kind = ("iid", "ar", "t3", "quantised")[state % 4]
-    t, x, a = _history(kind, n, rng)
-    cuts = steps_of(n, rng, most)
-    assert _run(StreamEngine("s"), t, x, a, cuts, True) == _run(StreamEngine("s"), t, x, a, cuts, False)
+    batches.random_run_agrees(_run, _history, state, n, most)
 
 
 def test_bank_takes_arrays_as_given() -> None:
@@ -177,25 +135,14 @@ def test_baseline_sums_with_gaps_and_cuts() -> None:
     # not all regular) against the reference: batches whose steps are all regular, whose gaps
     # fall in one part only or in both, with and without a cut, phi zero and not.
     rng = np.random.default_rng(69)
-    for _ in range(300):
-        b = estimate_baseline(np.arange(200.0), 10.0 + rng.standard_normal(200))
-        b = replace(b, phi=float(rng.choice([0.0, 0.3, -0.2])), clip=float(rng.choice([4.0, 2.0])))
-        sums = [BaselineSums(), BaselineSums()]
-        at = 200.0
-        for _ in range(int(rng.integers(1, 8))):
-            m = int(rng.integers(1, 400))
-            v = 10.0 + rng.standard_t(3, m)
-            steps = np.ones(m) if rng.random() < 0.5 else rng.uniform(0.8, 1.2, m)
-            for g in rng.integers(0, m, size=int(rng.integers(0, 3))):
-                steps[g] = float(rng.choice([0.0, 12.0, 30.0, 3600.0]))  # a repeat, gaps
-            tt = at + np.cumsum(steps)
-            at = float(tt[-1])
-            cut = int(rng.integers(0, m + 1))
-            for s, on in zip(sums, (True, False)):
-                with _trim(on):
-                    s.add(b, v, tt, cut=cut)
-        assert json.dumps(sums[0].to_list()) == json.dumps(sums[1].to_list())
-        assert [type(v) for v in sums[0].to_list()] == [type(v) for v in sums[1].to_list()]
+
+    def steps(m: int) -> np.ndarray:
+        out = np.ones(m) if rng.random() < 0.5 else rng.uniform(0.8, 1.2, m)
+        for g in rng.integers(0, m, size=int(rng.integers(0, 3))):
+            out[g] = float(rng.choice([0.0, 12.0, 30.0, 3600.0]))  # a repeat, gaps
+        return out
+
+    batches.baseline_sums_agree(_trim, rng, 300, 400, steps)
 
 
 def test_the_switches_are_on() -> None:
