@@ -206,8 +206,9 @@ class EventTrial:
 
     def _lam_at(self, m: Any, s: Any, q: Any, c: Any) -> Any:
         """The variance per sample allowed for after ``m`` inputs with sums ``s``, ``q`` and
-        ``c``, element by element (numpy's operations on scalars and arrays alike, so that
-        both paths of :meth:`feed` get the same floats): the inputs' own variance about
+        ``c``, element by element (numpy's operations; :meth:`feed` decides on the plain
+        evidence and asks this at the deciding sample, from sums both of its paths add
+        sample by sample, so both get the same floats): the inputs' own variance about
         their mean times ``(1 + r) / (1 - r)``, ``r`` their lag-1 autocorrelation
         (Kendall's bias ``(1 + 3 r) / m`` added) plus :data:`PHI_MARGIN` standard errors
         ``1 / sqrt(m)``, in [0, 0.95]; pooled with :attr:`lam`, which rests on
