@@ -400,6 +400,19 @@ class ShardRun:
                     t.shifts_with_two_ids += 1
         return t
 
+    def log_tails(self, lines: int = 12) -> str:
+        """The last ``lines`` lines of every shard's log and the cluster servers' warnings and
+        errors: what a failed fault test shows, since a CI run keeps nothing else of it."""
+        out = []
+        for k, sh in sorted(self.shards.items()):
+            tail = sh.log().splitlines()[-lines:]
+            out.append(f"--- shard {k} ---\n" + "\n".join(t[:240] for t in tail))
+        for s in self.cluster.servers:
+            text = s.log_path.read_text(errors="replace") if s.log_path.exists() else ""
+            bad = [t for t in text.splitlines() if "[WRN]" in t or "[ERR]" in t][-lines:]
+            out.append(f"--- NATS {s.name} ---\n" + "\n".join(t[:240] for t in bad))
+        return "\n".join(out)
+
     def close(self) -> None:
         self._closing.set()
         for sh in self.shards.values():

@@ -290,21 +290,25 @@ def test_one_nats_server_killed_and_restarted(tmp_path: Path, cluster: NatsClust
 
     try:
         # The cluster's recovery (the server's restart, JetStream electing leaders, the
-        # shards' reconnect backing off up to 8 s, their wait for redeliveries, NATS's
+        # shards' reconnect backing off up to 30 s, their wait for redeliveries, NATS's
         # ack_wait) can take more than settle's usual 20 s without progress on a loaded
         # machine: a CI run on fc348e9 stopped waiting at 36 s with 7,294 samples not yet
-        # taken (whether they would have come is not known).  A real loss still fails
-        # below, once 45 s pass with nothing taken.
-        _counts, tally = publish_with(r, bounce, settle=180, still_for=45.0)
+        # taken, one on ad97735 at 68 s (45 s without progress) with 3,305 not taken and no
+        # record at all, which is what a round held while the cluster's journal does not
+        # answer looks like (whether they would have come is not known; none of 8 runs
+        # here stalled, 6 of them beside 2 or 3 busy loops).  A real loss still fails below, once
+        # 90 s pass with nothing taken, and the shards' and servers' logs are shown.
+        _counts, tally = publish_with(r, bounce, settle=240, still_for=90.0)
+        logs = r.log_tails()
     finally:
         r.close()
     print(tally.line())
     # As for the shard moved to an empty disk: no step missed, none under a second id; no
     # sample lost in every run so far, but a delivery NATS holds back past
     # cluster.redelivery_wait is set aside as out of order, so the bound is a loose one.
-    assert tally.lost <= tally.published // 4, tally.line()
-    assert tally.shifts_missed == 0, tally.line()
-    assert tally.shifts_with_two_ids == 0, tally.line()
+    assert tally.lost <= tally.published // 4, f"{tally.line()}\n{logs}"
+    assert tally.shifts_missed == 0, f"{tally.line()}\n{logs}"
+    assert tally.shifts_with_two_ids == 0, f"{tally.line()}\n{logs}"
 
 
 def test_shard_count_changed_from_3_to_4_while_samples_flow(tmp_path: Path, cluster: NatsCluster) -> None:
