@@ -4,7 +4,7 @@ libraries at hand would make of its arrays (issue 15).
 Usage, from the repository root with the package installed::
 
     python tests/bench/bench_cluster_round.py                     # both parts
-    python tests/bench/bench_cluster_round.py --part split [--quick] [--repeat N]
+    python tests/bench/bench_cluster_round.py --part split [--quick] [--repeat N] [--against DIR]
     python tests/bench/bench_cluster_round.py --part decoders [--repeat N]
 
 ``--part split``: one ``Daemon`` with ``state.keep: cluster`` on a lone nats-server
@@ -20,7 +20,10 @@ main thread's CPU time (``time.thread_time``) and its parts, each timed by a wra
 (``Daemon._decode``), the journal messages (``JournalRound.add``: the encoding and
 the hand-over to the NATS thread; ``JournalRound.wait``), the metrics snapshot of
 each stream (``StreamStats.from_engine``), the round's arrays (``Daemon._add_columns``)
-and the rest; and the NATS thread's CPU time (its schedstat run time).
+and the rest; and the NATS thread's CPU time (its schedstat run time).  ``--against
+DIR``: each repeat runs the part in child processes, on DIR's code (another checkout's
+``daemon/`` directory, first on their PYTHONPATH) and on this checkout's, which goes
+first alternating, with the ratios (this / DIR) of the CPU a sample per repeat.
 
 ``--part decoders``: CPU time per array of 260 samples (the shard benchmark's
 payloads, ``{"v": .., "ts": ..}`` objects), in alternating passes over 100 payloads:
@@ -43,6 +46,7 @@ import io
 import json
 import os
 import statistics
+import subprocess
 import sys
 import tempfile
 import threading
@@ -100,7 +104,7 @@ def _run_ns(tid: int) -> int:
         return int(f.read().split()[0])
 
 
-def part_split(streams: int, repeat: int) -> None:
+def part_split(streams: int, repeat: int) -> list[dict[str, float]]:
     acc: Counter[str] = Counter()
 
     def wrap(owner: Any, name: str, key: str) -> Callable[[], None]:
@@ -167,13 +171,45 @@ def part_split(streams: int, repeat: int) -> None:
                 u()
             server.kill()
             server.wait(30)
-    print(f"\nsplit: {streams} streams, {MEASURED} arrays of {BATCH} each measured, rounds of {ROUND} messages, "
-          f"{repeat} repeat(s); nanoseconds of CPU a sample, median (range); share of the main thread")
+    return rows
+
+
+def print_split(rows: list[dict[str, float]], streams: int, what: str = "") -> None:
+    print(f"\nsplit{what}: {streams} streams, {MEASURED} arrays of {BATCH} each measured, rounds of {ROUND} "
+          f"messages, {len(rows)} repeat(s); nanoseconds of CPU a sample, median (range); share of the main thread")
     order = ["main thread"] + [key for _o, _n, key in PARTS] + ["rest", "NATS thread"]
     for key in order:
         xs = [r[key] for r in rows]
         share = statistics.median(r[key] / r["main thread"] for r in rows)
         print(f"  {key:32s} {statistics.median(xs):7.1f} ({min(xs):.1f}-{max(xs):.1f})  {share:6.1%}")
+
+
+def split_against(against: str, streams: int, repeat: int, quick: bool) -> None:
+    """Each repeat runs the split part in a child process on ``against``'s code (a
+    ``daemon/`` directory, first on its PYTHONPATH) and on this checkout's, which goes
+    first alternating; the ratios of this checkout's CPU a sample to the other's."""
+    sides = {"against": against, "this": str(ROOT / "daemon")}
+    rows: dict[str, list[dict[str, float]]] = {"against": [], "this": []}
+    code: dict[str, str] = {}
+    for r in range(repeat):
+        for side in (("against", "this") if r % 2 == 0 else ("this", "against")):
+            env = dict(os.environ)
+            env["PYTHONPATH"] = sides[side] + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
+            cmd = [sys.executable, __file__, "--part", "split", "--repeat", "1", "--child"] + (["--quick"] if quick else [])
+            out = subprocess.run(cmd, env=env, capture_output=True, text=True, check=True, timeout=1800)
+            got = json.loads(out.stdout.strip().splitlines()[-1])
+            rows[side] += got["rows"]
+            code[side] = got["code"]
+    for side in ("against", "this"):
+        print_split(rows[side], streams, f" ({side}: the package at {code[side]})")
+    for key in ("main thread", "NATS thread"):
+        ratios = [t[key] / a[key] for t, a in zip(rows["this"], rows["against"])]
+        print(f"  this / against, {key} CPU a sample, per repeat: " + ", ".join(f"{x:.3f}" for x in ratios)
+              + f" (median {statistics.median(ratios):.3f})")
+    both = [(t["main thread"] + t["NATS thread"]) / (a["main thread"] + a["NATS thread"])
+            for t, a in zip(rows["this"], rows["against"])]
+    print("  this / against, main and NATS threads together, per repeat: " + ", ".join(f"{x:.3f}" for x in both)
+          + f" (median {statistics.median(both):.3f})")
 
 
 def part_decoders(repeat: int) -> None:
@@ -260,11 +296,23 @@ def main() -> int:
     ap.add_argument("--part", choices=("split", "decoders"), action="append")
     ap.add_argument("--quick", action="store_true", help="100 streams in --part split")
     ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--against", metavar="DIR",
+                    help="--part split also on DIR's code (another checkout's daemon/), in alternating child processes")
+    ap.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
     a = ap.parse_args()
     parts = a.part or ["split", "decoders"]
+    streams = 100 if a.quick else 500
+    if a.child:  # one side of --against: the rows as JSON on the last line
+        import shiftwatch
+
+        print(json.dumps({"code": str(Path(shiftwatch.__file__).parent), "rows": part_split(streams, max(a.repeat, 1))}))
+        return 0
     print(f"load average at the start: {os.getloadavg()[0]:.1f}", flush=True)
     if "split" in parts:
-        part_split(100 if a.quick else 500, max(a.repeat, 1))
+        if a.against:
+            split_against(a.against, streams, max(a.repeat, 1), a.quick)
+        else:
+            print_split(part_split(streams, max(a.repeat, 1)), streams)
     if "decoders" in parts:
         part_decoders(max(a.repeat, 1))
     return 0
