@@ -5,6 +5,7 @@ Usage, from the repository root with the package installed::
 
     python tests/bench/bench_cluster_round.py                     # both parts
     python tests/bench/bench_cluster_round.py --part split [--quick] [--repeat N] [--against DIR]
+    python tests/bench/bench_cluster_round.py --part split --instructions [--quick] [--against DIR]
     python tests/bench/bench_cluster_round.py --part decoders [--repeat N]
 
 ``--part split``: one ``Daemon`` with ``state.keep: cluster`` on a lone nats-server
@@ -24,6 +25,10 @@ and the rest; and the NATS thread's CPU time (its schedstat run time).  ``--agai
 DIR``: each repeat runs the part in child processes, on DIR's code (another checkout's
 ``daemon/`` directory, first on their PYTHONPATH) and on this checkout's, which goes
 first alternating, with the ratios (this / DIR) of the CPU a sample per repeat.
+``--instructions``: the part once per code under callgrind (valgrind), its
+instrumentation switched on around the measured rounds only (``callgrind_control``),
+without the timers: instructions a message of the main thread and of the others
+(the NATS thread's), which the machine's load does not move.
 
 ``--part decoders``: CPU time per array of 260 samples (the shard benchmark's
 payloads, ``{"v": .., "ts": ..}`` objects), in alternating passes over 100 payloads:
@@ -45,6 +50,7 @@ import argparse
 import io
 import json
 import os
+import re
 import statistics
 import subprocess
 import sys
@@ -75,6 +81,9 @@ T0 = 1764633600.0
 WARM = 5
 MEASURED = 3
 ROUND = 100
+#: Set in a child run under callgrind (--instructions): no timers, the instrumentation
+#: switched on around the measured rounds.
+COUNTING = "SHIFTWATCH_BENCH_COUNTING"
 #: (owner, attribute, part), timed by a wrapper in --part split.
 PARTS: list[tuple[Any, str, str]] = [
     (StreamEngine, "process", "engines"),
@@ -146,16 +155,23 @@ def part_split(streams: int, repeat: int) -> list[dict[str, float]]:
                         raise RuntimeError("a round was held (the cluster did not take it)")
 
             feed(payloads(streams, WARM))
-            undo = [wrap(owner, name, key) for owner, name, key in PARTS]
+            counting = os.environ.get(COUNTING) == "1"  # under callgrind (--instructions): no timers
+            undo = [] if counting else [wrap(owner, name, key) for owner, name, key in PARTS]
             after = WARM * BATCH
             rows: list[dict[str, float]] = []
             for _ in range(repeat):
                 msgs = payloads(streams, MEASURED, after)
                 after += MEASURED * BATCH
                 acc.clear()
+                if counting:  # callgrind counts the measured rounds only
+                    subprocess.run(["callgrind_control", "-i", "on", str(os.getpid())], check=True,
+                                   capture_output=True, timeout=600)
                 main0, nats0 = time.thread_time_ns(), _run_ns(nats_tid)
                 feed(msgs)
                 main1, nats1 = time.thread_time_ns(), _run_ns(nats_tid)
+                if counting:
+                    subprocess.run(["callgrind_control", "-i", "off", str(os.getpid())], check=True,
+                                   capture_output=True, timeout=600)
                 n = len(msgs) * BATCH
                 row = {key: acc[key] / n for _o, _n, key in PARTS}
                 row["main thread"] = (main1 - main0) / n
@@ -182,6 +198,51 @@ def print_split(rows: list[dict[str, float]], streams: int, what: str = "") -> N
         xs = [r[key] for r in rows]
         share = statistics.median(r[key] / r["main thread"] for r in rows)
         print(f"  {key:32s} {statistics.median(xs):7.1f} ({min(xs):.1f}-{max(xs):.1f})  {share:6.1%}")
+
+
+def instructions(code: str, streams: int, quick: bool, out: Path) -> tuple[int, int, str]:
+    """One split run in a child process under callgrind on ``code``'s package, the
+    instrumentation switched on around the measured rounds only: the instructions of the
+    main thread and of all the others (the NATS thread's, mostly), and the package's path."""
+    env = dict(os.environ)
+    env["PYTHONPATH"] = code + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
+    env[COUNTING] = "1"
+    env["PYTHONHASHSEED"] = "0"
+    out.mkdir(parents=True, exist_ok=True)
+    cmd = ["valgrind", "--tool=callgrind", "--instr-atstart=no", "--separate-threads=yes",
+           f"--callgrind-out-file={out / 'cg.%p'}", sys.executable, __file__, "--part", "split", "--repeat", "1",
+           "--child"] + (["--quick"] if quick else [])
+    got = subprocess.run(cmd, env=env, capture_output=True, text=True, check=True, timeout=3600)
+    where = json.loads(got.stdout.strip().splitlines()[-1])["code"]
+    main = others = 0
+    for f in sorted(out.glob("cg.*-*")):
+        m = re.search(r"^totals: (\d+)", f.read_text(errors="replace"), re.MULTILINE)
+        n = int(m.group(1)) if m else 0
+        if f.name.endswith("-01"):
+            main += n
+        else:
+            others += n
+    return main, others, where
+
+
+def split_instructions(against: str | None, streams: int, quick: bool) -> None:
+    """--instructions: callgrind counts of the measured rounds, this checkout's code and
+    (with --against) DIR's, each once (the counts do not move with the machine's load)."""
+    messages = streams * MEASURED
+    sides = [("this", str(ROOT / "daemon"))] + ([("against", against)] if against else [])
+    counts = {}
+    with tempfile.TemporaryDirectory() as tmp:
+        for side, code in sides:
+            counts[side] = instructions(code, streams, quick, Path(tmp) / side)
+    print(f"\ninstructions (callgrind, the {messages:,} measured messages of {streams} streams only; a message "
+          f"is {BATCH} samples):")
+    for side, (main, others, where) in counts.items():
+        print(f"  {side} ({where}): main thread {main / messages:,.0f} a message, the other threads "
+              f"{others / messages:,.0f}")
+    if against:
+        t, a = counts["this"], counts["against"]
+        print(f"  this / against: main thread {t[0] / a[0]:.4f}, the other threads {t[1] / a[1]:.4f}, "
+              f"all {(t[0] + t[1]) / (a[0] + a[1]):.4f}")
 
 
 def split_against(against: str, streams: int, repeat: int, quick: bool) -> None:
@@ -298,6 +359,8 @@ def main() -> int:
     ap.add_argument("--repeat", type=int, default=3)
     ap.add_argument("--against", metavar="DIR",
                     help="--part split also on DIR's code (another checkout's daemon/), in alternating child processes")
+    ap.add_argument("--instructions", action="store_true",
+                    help="--part split counted by callgrind instead of timed (with --against: both codes)")
     ap.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
     a = ap.parse_args()
     parts = a.part or ["split", "decoders"]
@@ -309,7 +372,9 @@ def main() -> int:
         return 0
     print(f"load average at the start: {os.getloadavg()[0]:.1f}", flush=True)
     if "split" in parts:
-        if a.against:
+        if a.instructions:
+            split_instructions(a.against, streams, a.quick)
+        elif a.against:
             split_against(a.against, streams, max(a.repeat, 1), a.quick)
         else:
             print_split(part_split(streams, max(a.repeat, 1)), streams)
