@@ -20,16 +20,25 @@ References outside the project:
   killed was not tried again for another 27 s.
 - At-least-once delivery with a key to drop repeats is common practice for event
   streams; the record's ``id`` (with ``phase``) is that key.
+- nats-server 2.9 itself for a server whose JetStream has no meta leader (the other
+  servers of its cluster not started): its MQTT side takes the TCP connection, fails to
+  look the session up ("unable to connect: lookup sessions stream ... timeout" in its
+  log, after about 4 s) and closes the connection before any CONNACK, as it does while
+  a restarted server's JetStream catches up.
 """
 
 from __future__ import annotations
 
+import re
+import subprocess
+import sys
 import time
 from pathlib import Path
 
 from shiftwatch.broker import wait_until
 
-from .natskit import NatsCluster
+from .killrun import metric, scrape
+from .natskit import NatsCluster, free_port_block
 from .shardrun import Plan, publish_with, run_three_shards
 
 #: How long the server stays down: just past the attempt paho made 31 s after the loss
@@ -78,3 +87,53 @@ def test_shards_reconnect_soon_after_a_long_server_outage(tmp_path: Path, cluste
     assert tally.shifts_missed == 0, f"{tally.line()}\n{logs}"
     assert tally.shifts_with_two_ids == 0, f"{tally.line()}\n{logs}"
     assert tally.lost <= tally.published // 4, f"{tally.line()}\n{logs}"
+
+
+def test_a_broker_closing_connections_before_accepting_them_is_tried_again_every_few_seconds(
+        tmp_path: Path) -> None:
+    # NATS's MQTT side closes a connection before its CONNACK while its JetStream cannot
+    # answer (a restarted server catching up; here a server whose cluster peers are not
+    # started yet).  Each such attempt doubled paho's wait (to 30 s), so a daemon that met a
+    # few of them tried again only 30 s later although the server was ready long before:
+    # the 7th attempt came about 90 s after the first.  Now, with nothing for the operator
+    # to fix, the wait stays within 4 s (after the 4 s the server takes to close).
+    cluster = NatsCluster(3, 3, base=tmp_path / "nats")
+    lone = cluster.servers[0]
+    daemon = None
+    try:
+        lone.start()
+        assert wait_until(lone.ready, 30), lone.log_path.read_text()[-2000:]
+        port = free_port_block(1)
+        config = tmp_path / "shiftwatch.yaml"
+        config.write_text(
+            f"broker:\n  url: {lone.mqtt_url}\n  client_id: sw-notready\n  mqtt_version: \"3.1.1\"\n"
+            "streams:\n  - topic: brackenfield/+/+/fill\n    format: json\n    value: v\n    time: ts\n"
+            f"    unit: g\nmetrics:\n  listen: 127.0.0.1:{port}\nstate:\n  dir: {tmp_path / 'state'}\n")
+        log_path = tmp_path / "shiftwatch.log"
+        with open(log_path, "wb") as log:
+            daemon = subprocess.Popen([sys.executable, "-m", "shiftwatch", "run", "--config", str(config)],
+                                      stdout=log, stderr=subprocess.STDOUT)
+        failed = re.compile(r"^(ERROR broker .*retrying with backoff|INFO broker .*attempt \d+ failed the "
+                            r"same way)", re.MULTILINE)
+
+        def attempts() -> int:
+            return len(failed.findall(log_path.read_text(errors="replace")))
+
+        # The bound is well past the 7th attempt every 4 s would make (about 30 s) and well
+        # short of the doubling's (about 90 s).
+        assert wait_until(lambda: attempts() >= 7, 60), log_path.read_text(errors="replace")[-3000:]
+        text = log_path.read_text(errors="replace")
+        assert "the connection was closed before the broker accepted it" in text, text[-3000:]
+        assert "unable to connect" in lone.log_path.read_text(errors="replace")
+        # The cluster complete: the daemon is let in and says so, and its metric says so.
+        cluster.servers[1].start()
+        cluster.servers[2].start()
+        assert wait_until(lambda: "connected to broker" in log_path.read_text(errors="replace"), 60), \
+            log_path.read_text(errors="replace")[-3000:]
+        assert wait_until(lambda: metric(scrape(port), "shiftwatch_broker_connected") == 1.0, 30)
+        assert "Traceback" not in log_path.read_text(errors="replace")
+    finally:
+        if daemon is not None:
+            daemon.terminate()
+            daemon.wait(30)
+        cluster.stop()
