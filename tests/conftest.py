@@ -25,6 +25,7 @@ LONG_FILES = (
     "tests/daemon/test_shard_handover_stalls.py",  # about 310 s: three reshards with a late owner
     "tests/daemon/test_shards.py",  # about 250 s: kills, a server down, 3 to 4 and back
     "tests/daemon/test_shard_reshard_faults.py",  # about 120 s
+    "tests/daemon/test_shard_server_outage.py",  # about 115 s: a NATS server down 34 s, one not ready
     "tests/daemon/test_daemon_process.py",  # about 110 s: the demo's runs
     "tests/test_lint.py",  # about 100 s: mypy --strict
     "tests/daemon/test_floor.py",  # about 90 s

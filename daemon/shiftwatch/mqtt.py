@@ -14,8 +14,11 @@ processed them (paho's manual acks).
 
 A connection that fails (refused, TLS verification, wrong password) is reported
 once as an error line naming the broker URL and the reason; paho then retries
-with a doubling delay (1 s up to 30 s), and each further attempt that fails the
-same way is one information line.
+with a doubling delay, and each further attempt that fails the same way is one
+information line.  The delay doubles from 1 s to 30 s while the broker refuses us for a
+reason the operator must fix (TLS verification, a password), and only to
+:data:`RECONNECT_MAX_DELAY` (4 s) while it is away or not ready yet (connection refused,
+or closed with no reason given before the broker accepted it).
 """
 
 from __future__ import annotations
@@ -202,6 +205,18 @@ TAKEOVER_WINDOW = 10.0
 TAKEOVER_STREAK = 3
 #: Longest wait before reconnecting after such takeovers (it doubles with each).
 TAKEOVER_MAX_DELAY = 120
+#: Longest wait between two attempts to reach a broker that is away or not ready
+#: (seconds; doubling from 1): connection refused, reset or timed out, or closed with no
+#: reason given before the broker accepted it.  It was 30 s, as for every failure, until
+#: 2026-12-05: a broker back after a long outage, or a NATS server whose MQTT side closed
+#: a few connections while its JetStream caught up (each one doubles the wait), then
+#: waited up to 30 s for the next attempt with every sample held (27 s measured after a
+#: NATS server down for 34 s, tests/daemon/test_shard_server_outage.py).  Such an attempt
+#: costs the broker next to nothing.
+RECONNECT_MAX_DELAY = 4
+#: Longest wait between attempts the broker refuses for a reason the operator must fix
+#: (TLS verification, a client certificate, a password): one log line each, so fewer.
+REFUSED_MAX_DELAY = 30
 #: Longest wait before a refused subscription is tried again (seconds; doubling from 2).
 SUBSCRIBE_RETRY_MAX = 30
 
@@ -610,7 +625,8 @@ class MqttLink:
         plog.handlers[:] = [self._paho_error]
         self.client.enable_logger(plog)
         self._refused = False
-        self.client.reconnect_delay_set(min_delay=1, max_delay=30)
+        self._max_delay = REFUSED_MAX_DELAY  # (until a failure says the broker is only away)
+        self.client.reconnect_delay_set(min_delay=1, max_delay=self._max_delay)
         self.client.max_queued_messages_set(0)
         self.client.will_set(status_topic, b"offline", qos=1, retain=True)
         if cfg.username is not None:
@@ -633,7 +649,8 @@ class MqttLink:
 
     # ---------------------------------------------------------------- life
     def start(self) -> None:
-        """Connect in the background; paho reconnects with backoff (1 s doubling to 30 s)."""
+        """Connect in the background; paho reconnects with backoff (1 s doubling to
+        RECONNECT_MAX_DELAY or REFUSED_MAX_DELAY, see :meth:`_report_error`)."""
         props = None
         if self._v5:
             props = Properties(PacketTypes.CONNECT)  # type: ignore[no-untyped-call]  # paho's Properties() is unannotated
@@ -807,7 +824,10 @@ class MqttLink:
                 who = f"user {self.cfg.username!r}" if self.cfg.username else "no user name"
                 hint = f" ({who}; check broker.username and the password)"
             self._refused = True
-            self._report_error(f"refused the connection: {reason}{hint}")
+            # "Server unavailable" (MQTT 3.1.1 return code 3; MQTT 5 0x88, and 0x89 "Server
+            # busy"): the broker is not ready yet, as when it refuses the TCP connection.
+            away = getattr(reason, "value", None) in (3, 0x88, 0x89)
+            self._report_error(f"refused the connection: {reason}{hint}", away=away)
             return
         self._connected = True
         self._connected_at = time.monotonic()
@@ -837,7 +857,11 @@ class MqttLink:
         self._short_losses = 0  # the broker was away: an outage, not a takeover
         # paho calls this from inside its ``except OSError`` around the attempt, so the
         # exception being handled is the reason (it passes none itself).
-        self._report_error(f"cannot connect: {describe_connect_error(sys.exc_info()[1])}")
+        exc = sys.exc_info()[1]
+        away = isinstance(exc, (ConnectionError, TimeoutError)) or (
+            isinstance(exc, OSError) and not isinstance(exc, ssl.SSLError)
+            and exc.errno in (errno.EHOSTUNREACH, errno.ENETUNREACH))
+        self._report_error(f"cannot connect: {describe_connect_error(exc)}", away=away)
 
     def _handle_disconnect(self, client: paho.Client, userdata: Any, flags: Any, reason: Any,
                            properties: Any) -> None:
@@ -858,7 +882,10 @@ class MqttLink:
                 # the connection, a race on a loaded machine): the same failure as the
                 # last attempt, whose reason was shown.
                 text = self._last_error
-            self._report_error(text)
+            # No TLS alert and no certificate named: the broker closed the connection
+            # without a reason, as NATS's MQTT side does while its JetStream is not ready.
+            away = not any(w in text.lower() for w in ("certificate", "alert", "ssl", "tls", "handshake"))
+            self._report_error(text, away=away)
         if self._stopping:
             self.log.info("disconnected from broker %s", self.url)
         elif was:
@@ -891,7 +918,7 @@ class MqttLink:
             self._short_losses = 0
             if self.takeovers:
                 self.takeovers = 0
-                self.client.reconnect_delay_set(min_delay=1, max_delay=30)
+                self.client.reconnect_delay_set(min_delay=1, max_delay=self._max_delay)
             return False
         if self._short_losses < TAKEOVER_STREAK:
             return False
@@ -959,10 +986,19 @@ class MqttLink:
         except Exception:
             self.log.exception("error while recording a delivered publication")
 
-    def _report_error(self, text: str) -> None:
+    def _report_error(self, text: str, *, away: bool) -> None:
         # One error line per distinct problem; a repeat is one information line per
-        # attempt, and attempts are spaced by paho's doubling delay.
+        # attempt, and attempts are spaced by paho's doubling delay: up to
+        # RECONNECT_MAX_DELAY while the broker is ``away`` (not there, or not ready), up to
+        # REFUSED_MAX_DELAY while it refuses us for a reason the operator must fix.  (paho
+        # starts again from 1 s when the bound changes; after takeovers, _taken_over's
+        # delay stands.)
         self._failed_attempts += 1
+        bound = RECONNECT_MAX_DELAY if away else REFUSED_MAX_DELAY
+        if bound != self._max_delay:
+            self._max_delay = bound
+            if not self.takeovers:
+                self.client.reconnect_delay_set(min_delay=1, max_delay=bound)
         if text != self._last_error:
             self.log.error("broker %s: %s; retrying with backoff", self.url, text)
             self._last_error = text

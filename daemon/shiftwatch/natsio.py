@@ -213,7 +213,8 @@ class NatsIO:
                 self._nc = await nats.connect(
                     servers=self.servers, name=self.name, connect_timeout=min(self.timeout, 5.0),
                     max_reconnect_attempts=-1, reconnect_time_wait=0.5, allow_reconnect=True,
-                    user=self._user, password=self._password, error_cb=on_error)
+                    user=self._user, password=self._password, error_cb=on_error,
+                    disconnected_cb=self._connection_lost)
             except Exception as exc:  # noqa: BLE001  every cause becomes one line
                 cause = errors[-1] if errors else _describe(exc)
                 raise ClusterError(f"NATS cluster {self.where} cannot be reached ({cause})") from None
@@ -405,6 +406,20 @@ class NatsIO:
         if nc._flush_queue is not None and nc._flush_queue.empty():
             await nc._flush_pending()
         return True
+
+    async def _connection_lost(self) -> None:
+        """nats-py lost the connection (it reconnects on its own): every batch message in
+        flight on it gets its answer now, an error, since no acknowledgement of it can come
+        on the next connection.  Until 2026-12-05 such a batch waited out its caller's whole
+        bound (a journal round's: the client's timeout, more for a large round), the shard's
+        round held meanwhile, for acknowledgements that were gone with the connection
+        (``test_shard_journal.py::test_a_round_in_flight_when_its_server_dies_ends_at_once``).
+        The round written again finds what the server stored of it as its own
+        (``JournalRound``'s ``refused``)."""
+        lost, self._batch_futs = self._batch_futs, {}
+        for batch, i, subject in lost.values():
+            batch.settle(i, ClusterError(f"NATS cluster {self.where}: the connection was lost before "
+                                         f"the publish to {subject} was acknowledged"))
 
     async def _batch_subscribe(self) -> str:
         async with self._batch_lock:

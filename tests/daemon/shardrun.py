@@ -338,9 +338,9 @@ class ShardRun:
 
     def settle(self, timeout: float = 120.0, still_for: float = 20.0) -> dict[str, float]:
         """Wait until every stream's samples are taken (or nothing moves for ``still_for``
-        seconds: reconnections back off up to 8 s, and a daemon waits for redeliveries after
-        each); the
-        count per stream, from the shard that has taken most of it."""
+        seconds: a daemon tries a broker that is away again at least every 4 s, and waits for
+        redeliveries after each reconnection); the count per stream, from the shard that has
+        taken most of it."""
         names = self.plan.names()
         deadline = time.monotonic() + timeout
         last: dict[str, float] = {}

@@ -569,3 +569,60 @@ def test_a_batch_sent_in_one_write_stores_what_publish_stores(cluster: ClusterSt
     assert len(sent) == 1 and b"w1 x" in sent[0]
     io.run(io.publish(c2, b"odd", expect_last=0, headers=odd))
     assert _read_back(cluster, c) == _read_back(cluster, c2)
+
+
+def test_a_round_in_flight_when_its_server_dies_ends_at_once_and_is_taken_once_when_written_again(
+        served: tuple[ClusterState, subprocess.Popen[bytes]], tmp_path: Path) -> None:
+    """The server holding a round's journal messages dies (SIGKILL; stopped first, so that
+    they are surely sent and not yet acknowledged).  No acknowledgement can come on the
+    next connection, so ``wait()`` must end in a ClusterError saying the connection was
+    lost, not wait out its bound (the client's timeout, 30 s here, more for a large
+    round) with the shard's round held.  Written again once the server is back (the same
+    store, the same port), every group of the round is in the journal exactly once.
+    Reference for the kernel's part: a process killed by SIGKILL has its sockets closed
+    by the kernel (POSIX ``_exit`` semantics, "all of the file descriptors ... shall be
+    closed"), which the client reads as the end of its connection."""
+    cs, server = served
+    n = JournalRound.CHUNK + 3
+    names = [f"plant/{i}/v" for i in range(n)]
+    assert cs.journal([_group(i) for i in range(n)]) == []
+    before = dict(cs.seq)
+    cs.io.timeout = 30.0
+    freeze(server)
+    rnd = cs.journal_round()
+    for i in range(n):
+        rnd.add(_group(i, t0=10.0))
+    server.kill()
+    server.wait(10)
+    with pytest.raises(ClusterError, match="connection was lost before the publish"):
+        rnd.wait()
+    assert cs.seq == before
+    # The server again, on its port and store (the configuration start_lone_server wrote).
+    from .natskit import find_nats_server
+
+    exe = find_nats_server()
+    assert exe is not None
+    with open(tmp_path / "nats-again.log", "wb") as log:
+        again = subprocess.Popen([exe, "-c", str(tmp_path / "nats.conf")], stdout=log,
+                                 stderr=subprocess.STDOUT)
+    try:
+        cs.io.timeout = 5.0
+        assert wait_until(lambda: cs.io.connected, 30)
+
+        def written() -> bool:
+            try:
+                return cs.journal([_group(i, t0=10.0) for i in range(n)]) == []
+            except ClusterError:
+                return False  # JetStream not up yet: the round is held and tried again
+
+        assert wait_until(written, 30, every=0.5)
+        assert _stored(cs) == 2 * n
+        reader = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3")
+        loaded = reader.load(names)
+        for i, name in enumerate(names):
+            assert [g.times.tolist() for g in loaded[name].groups] == [_group(i).times.tolist(),
+                                                                       _group(i, t0=10.0).times.tolist()]
+    finally:
+        cs.io.close()  # while its server runs (the fixture's close then has nothing to do)
+        again.terminate()
+        again.wait(10)
