@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+import pickle
 
 import numpy as np
 import pytest
@@ -85,3 +86,50 @@ def test_shares_pickled_larger_than_a_pipe_change_nothing(tmp_path, jobs: int,
     res = replay_files([path], jobs=jobs, chunk_bytes=1 << 20)
     assert json_lines(res.records) == json_lines(whole.records)
     assert res.problems == whole.problems and res.rows == whole.rows
+
+
+def _layouts(tmp_path, seed: int) -> list[list[object]]:
+    """Random files of several layouts: long CSV (one file and two), wide CSV with gaps, and
+    long Parquet in small row groups; streams, lengths and values drawn from ``seed``."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from .history import write_wide
+
+    rng = np.random.default_rng(seed)
+    names = [f"brackenfield/line{k % 4}/cell{k:03d}/temp" for k in range(int(rng.integers(3, 40)))]
+    n = int(rng.integers(800, 2500))
+    data = readings(n, names, random_state=seed)
+    long_csv = write_long(tmp_path / f"long{seed}.csv", data)
+    later = readings(n, names, random_state=seed + 1, t0=float(data[names[0]][0][-1]) + 1.0)
+    second = write_long(tmp_path / f"later{seed}.csv", later)
+    wide = write_wide(tmp_path / f"wide{seed}.csv", data, missing=0.05, random_state=seed)
+    t = np.concatenate([data[k][0] for k in names])
+    order = np.argsort(t, kind="stable")
+    table = pa.table({"time": pa.array((t[order] * 1000).round().astype(np.int64), pa.timestamp("ms", tz="UTC")),
+                      "stream": pa.array(np.repeat(np.array(names, dtype=object), n)[order]),
+                      "value": np.concatenate([data[k][1] for k in names])[order]})
+    parquet = tmp_path / f"long{seed}.parquet"
+    pq.write_table(table, parquet, row_group_size=int(rng.integers(500, 5000)))
+    return [[long_csv], [long_csv, second], [wide], [parquet]]
+
+
+@pytest.mark.parametrize("seed", [5, 6, 7])
+def test_records_problems_and_traces_are_those_of_one_process_in_any_layout(tmp_path, seed: int) -> None:
+    # Guard for the processes' hand-over: every layout replayed in 2 and 3 processes gives one
+    # process's records, problems, totals and report traces (large outcomes written to the
+    # parent's pipe by several processes at once), field for field.
+    chunk = int(np.random.default_rng(seed).integers(3000, 40_000))
+    for paths in _layouts(tmp_path, seed):
+        whole = replay_files(paths, jobs=1, chunk_bytes=chunk, trace_options={})
+        assert whole.records and whole.rows > 1000
+        for jobs in (2, 3):
+            res = replay_files(paths, jobs=jobs, chunk_bytes=chunk, trace_options={})
+            assert json_lines(res.records) == json_lines(whole.records)
+            assert res.problems == whole.problems and res.rows == whole.rows
+            assert sorted(res.streams) == sorted(whole.streams)
+            for name, one in whole.streams.items():
+                other = res.streams[name]
+                assert (other.samples_total, other.records_total, other.rejected_total, other.problems) == \
+                    (one.samples_total, one.records_total, one.rejected_total, one.problems)
+                assert pickle.dumps(other.trace) == pickle.dumps(one.trace)
