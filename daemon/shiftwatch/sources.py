@@ -1859,7 +1859,7 @@ def _arrow_times(col: Any, column: str, tz: tzinfo | None, first: int,
             valid = _valid_range(t, valid & exists, first, column, problems)
         return t, valid
     if pa.types.is_integer(col.type) or pa.types.is_floating(col.type):
-        t = np.asarray(col.cast(pa.float64()).fill_null(0.0), dtype=np.float64)
+        t = np.asarray(_arrow_doubles(col).fill_null(0.0), dtype=np.float64)
         finite = np.isfinite(t)
         problems.rows(valid & ~finite, first, column, "the time is not finite")
         t = _epoch_rule(np.where(finite, t, 0.0))
@@ -1891,6 +1891,22 @@ def _arrow_times(col: Any, column: str, tz: tzinfo | None, first: int,
         return out, valid
     problems.whole(column, f"holds {col.type}, not times; the rows were skipped", n)
     return np.zeros(n), np.zeros(n, dtype=bool)
+
+
+def _arrow_doubles(col: Any) -> Any:
+    """A number column (integers, floats, decimals) as doubles, each the double nearest to its
+    value, as the same number written as text in a CSV reads.
+
+    pyarrow's default cast refuses an integer beyond 2**53 (an epoch in nanoseconds, a
+    counter) with ``ArrowInvalid``, and its cast of a decimal is not correctly rounded
+    (``-123.4567`` gave ``-123.45670000000001``); the unchecked cast of an integer is the
+    conversion C does (to nearest), and a decimal is read through its exact text.
+    """
+    import pyarrow as pa
+
+    if pa.types.is_decimal(col.type):
+        col = col.cast(pa.string())
+    return col.cast(pa.float64(), safe=False)
 
 
 def _is_number_type(t: Any) -> bool:
@@ -2024,7 +2040,7 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
             valid = _arrow_valid(col)
             v = _arrow_plain(col, valid, math.nan) if pa.types.is_float64(col.type) else None
             if v is None:
-                v = np.asarray(col.cast(pa.float64()).fill_null(np.nan), dtype=np.float64)
+                v = np.asarray(_arrow_doubles(col).fill_null(np.nan), dtype=np.float64)
             nulls = col.null_count or not PARQUET_FAST  # (read only below: tok itself when none)
             if src.layout == "wide":
                 keep = tok & valid if nulls else tok
