@@ -997,13 +997,15 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
         # A wide row that stops short after its time (an export that leaves out the empty cells
         # at the end of a row) keeps the cells it has: the others are read as empty, and it is
         # counted as a problem.
-        short = not long and ti < len(row) < width
-        if (len(row) < width and not short) or (len(row) > ncols and any(c.strip() for c in row[ncols:])):
-            if not row or (len(row) == 1 and not row[0].strip()):
-                pass
-            else:
-                rows += 1
-                problems.append(f"{name}:{line}: expected {ncols} columns, got {len(row)}")
+        # A line of spaces or tabs only is blank in either layout (pandas' read_csv skips it too);
+        # a wide file took it for a short row with a bad time, two problems for no reading lost.
+        blank = not row or (len(row) == 1 and not row[0].strip())
+        short = not long and ti < len(row) < width and not blank
+        if blank:
+            pass
+        elif (len(row) < width and not short) or (len(row) > ncols and any(c.strip() for c in row[ncols:])):
+            rows += 1
+            problems.append(f"{name}:{line}: expected {ncols} columns, got {len(row)}")
         else:
             rows += 1
             if short:
