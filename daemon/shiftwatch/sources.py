@@ -1866,7 +1866,7 @@ def _arrow_times(col: Any, column: str, tz: tzinfo | None, first: int,
         problems.rows(valid & ~finite, first, column, "the time is not finite")
         t = _epoch_rule(np.where(finite, t, 0.0))
         return t, _valid_range(t, valid & finite, first, column, problems)
-    if pa.types.is_string(col.type) or pa.types.is_large_string(col.type) or pa.types.is_dictionary(col.type):
+    if _is_text_type(col.type) or pa.types.is_dictionary(col.type):
         texts = col.cast(pa.string()).to_pylist()
         out = np.zeros(n)
         cache: dict[str, float | str] = {}
@@ -1909,6 +1909,14 @@ def _arrow_doubles(col: Any) -> Any:
     if pa.types.is_decimal(col.type):
         col = col.cast(pa.string())
     return col.cast(pa.float64(), safe=False)
+
+
+def _is_text_type(t: Any) -> bool:
+    """Arrow's text types: string, large_string and string_view (its view type, which a file
+    keeps in its Arrow schema when the writer held it so; it was refused before 2026-12-05)."""
+    import pyarrow as pa
+
+    return bool(pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_string_view(t))
 
 
 def _is_number_type(t: Any) -> bool:
@@ -2096,8 +2104,7 @@ def _slice_codes(scol: Any, keep: NDArray[np.bool_], problems: _GroupProblems, f
     import pyarrow as pa
 
     if not pa.types.is_dictionary(scol.type):
-        if not (pa.types.is_string(scol.type) or pa.types.is_large_string(scol.type)
-                or pa.types.is_integer(scol.type)):
+        if not (_is_text_type(scol.type) or pa.types.is_integer(scol.type)):
             problems.whole(cname, f"holds {scol.type}, not stream names; the rows were skipped", len(scol))
             return None
         scol = scol.dictionary_encode()
