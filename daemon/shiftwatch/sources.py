@@ -73,6 +73,10 @@ PLACE_BITS = 40
 _PLACE_MASK = (1 << PLACE_BITS) - 1
 
 
+#: a file's note when some of its bytes are not UTF-8 (replaced by U+FFFD)
+NOT_UTF8_NOTE = "the file is not valid UTF-8; unreadable characters were replaced"
+
+
 class CsvFormatError(ValueError):
     """A file cannot be read at all (missing file, bad header, unknown time zone)."""
 
@@ -434,6 +438,9 @@ class Source:
     #: CSV, wide: the unnamed columns at the end of the header (it ends with a comma), whose cells
     #: must be empty: a cell there that holds something is a problem, and the rest of its row is read
     unnamed: list[int] = field(default_factory=list)
+    #: CSV: a problem of the whole file found reading its header (not valid UTF-8), given with
+    #: each of its blocks as the one found in its rows is (a wide file's tag names are there)
+    note: str | None = None
 
     def remark(self) -> str | None:
         """What the summary says once about this file though it loses nothing, or None."""
@@ -694,8 +701,11 @@ def open_source(path: str, layout: str = "auto") -> Source:
             raise
         named = {ti, *(c for c, _ in tags)}
         unnamed = [i for i in range(len(header)) if i not in named] if lay == "wide" else []
+        # A header not in UTF-8 that fits a layout (a tag name in Windows-1252) is read with its
+        # bytes replaced, as a row's are, and said so: a wide file's were replaced without a word.
+        note = f"{path}: {NOT_UTF8_NOTE}" if lines.bad_utf8 else None
         return Source(path, "csv", lay, header, ti, si, vi, tags, body_start=start, body_line=line,
-                      unnamed=unnamed)
+                      unnamed=unnamed, note=note)
 
 
 def open_sources(paths: list[str | Path], layout: str = "auto", unread: list[str] | None = None) -> list[Source]:
@@ -1071,7 +1081,7 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
             break
     parts = [(key, np.array(ts, dtype=np.float64), np.array(vs, dtype=np.float64), np.array(ps, dtype=np.int64))
              for key, (ts, vs, ps) in collected.items() if ts]
-    note = f"{name}: the file is not valid UTF-8; unreadable characters were replaced" if lines.bad_utf8 else None
+    note = f"{name}: {NOT_UTF8_NOTE}" if lines.bad_utf8 else src.note
     return Block(index, fidx, parts, problems, rows, nbytes, note, remark=src.remark())
 
 
@@ -1643,7 +1653,8 @@ def _parse_padded(src: Source, fidx: int, line0: int | None, buf: bytearray, ind
         ends_line = size > 0 and buf[end - 1] == 10
         got = _read_fast(src, buf, begin, end, 0 if line0 is None else line0, fidx << PLACE_BITS, tz)
         if got is not None:
-            block = Block(index, fidx, got[0], [], got[1], size, remark=src.remark(), relative=line0 is None)
+            block = Block(index, fidx, got[0], [], got[1], size, src.note, remark=src.remark(),
+                          relative=line0 is None)
             if find_line0 is not None:
                 # A clean chunk has no \r: its lines are its newlines (a last line without
                 # one, at the file's end, is a row but not a line end).
