@@ -441,6 +441,9 @@ class Source:
     #: CSV: a problem of the whole file found reading its header (not valid UTF-8), given with
     #: each of its blocks as the one found in its rows is (a wide file's tag names are there)
     note: str | None = None
+    #: the file's stat(2) before its header was read: device, inode, size, modification time
+    #: (:func:`check_unchanged` compares it with the file's once everything is read)
+    stamp: tuple[int, int, int, int] | None = None
 
     def remark(self) -> str | None:
         """What the summary says once about this file though it loses nothing, or None."""
@@ -641,6 +644,39 @@ def _is_parquet(path: str) -> bool:
     return False
 
 
+def _stamp(path: str) -> tuple[int, int, int, int]:
+    st = os.stat(path)
+    return st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns
+
+
+def check_unchanged(sources: Sequence[Source]) -> None:
+    """Raise :class:`CsvFormatError` naming the first file written to since it was opened.
+
+    A file is read in pieces, by more than one process and opened more than once: one rewritten
+    in place (the same length), appended to or replaced meanwhile was read as a mixture of its
+    two contents without a word.  stat(2) tells: a write sets the modification time, a
+    replacement (rename) brings another inode; a file found shorter than planned is named
+    while it is read (:func:`_changed`)."""
+    for src in sources:
+        if src.stamp is None:
+            continue
+        try:
+            now = _stamp(src.path)
+        except OSError as exc:
+            raise CsvFormatError(f"{src.path}: the file changed while it was read (it is gone: "
+                                 f"{exc.strerror or exc})") from None
+        if now == src.stamp:
+            continue
+        if now[:2] != src.stamp[:2]:
+            how = "another file was put in its place"
+        elif now[2] != src.stamp[2]:
+            how = f"its size went from {src.stamp[2]:,} to {now[2]:,} bytes"
+        else:
+            how = "it was written to, its size unchanged"
+        raise CsvFormatError(f"{src.path}: the file changed while it was read ({how}); nothing was written: "
+                             "give a copy of it that nothing writes to")
+
+
 def open_source(path: str, layout: str = "auto") -> Source:
     """Read a file's header (or Parquet schema) and decide its layout.
 
@@ -648,6 +684,16 @@ def open_source(path: str, layout: str = "auto") -> Source:
     columns fit no layout.
     """
     _check_regular(path)
+    try:
+        stamp = _stamp(path)
+    except OSError as exc:
+        raise CsvFormatError(f"{path}: cannot open: {exc.strerror or exc}") from None
+    src = _open_source(path, layout)
+    src.stamp = stamp
+    return src
+
+
+def _open_source(path: str, layout: str) -> Source:
     try:
         parquet = _is_parquet(path)
     except OSError as exc:
