@@ -587,6 +587,13 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
     if result.repeated_hour:
         summary += f"; {notes[-1]}"
     _say(summary)
+    if not streams and skipped > 0:
+        # Rows, and not one of them read (times without an offset and no --timezone, a value
+        # column of text): no records, which status 1 ("the good rows were replayed") would hide.
+        first = (result.problems or result.unread_files or [""])[0]
+        _err(f"no row could be read, so nothing was replayed ({skipped:,} unreadable row(s) or cell(s)); "
+             f"the first problem: {first}")
+        return EXIT_USAGE
     if report is not None:
         from shiftwatch.report import ReportError
 

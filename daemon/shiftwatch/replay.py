@@ -51,6 +51,7 @@ from shiftwatch.sources import (
     OpenFiles,
     RepeatedHour,
     Source,
+    check_unchanged,
     lines_between,
     open_sources,
     parquet_pieces,
@@ -453,6 +454,7 @@ def replay_files(paths: Iterable[str | Path], settings_for: Callable[[str], Dete
     if sources is None:
         sources = open_sources(list(paths), layout, unread)
     result = _replay_sources(sources, settings_for, unit_for, jobs, tz, trace_options, progress, chunk_bytes)
+    check_unchanged(sources)
     result.unread_files = unread
     result.files_read = len(sources)
     return result
@@ -1168,6 +1170,7 @@ def read_long_csv(paths: Iterable[str | Path], *, layout: str = "auto", timezone
                 if ser is None:
                     ser = streams[name] = StreamSeries(sources)
                 ser.add(t, v, p)
+    check_unchanged(sources)
     for f in sorted(set(by_file) | noted):
         if f in noted:
             problems.append(f"{sources[f].path}: the file is not valid UTF-8; unreadable characters were replaced")

@@ -73,6 +73,10 @@ PLACE_BITS = 40
 _PLACE_MASK = (1 << PLACE_BITS) - 1
 
 
+#: a file's note when some of its bytes are not UTF-8 (replaced by U+FFFD)
+NOT_UTF8_NOTE = "the file is not valid UTF-8; unreadable characters were replaced"
+
+
 class CsvFormatError(ValueError):
     """A file cannot be read at all (missing file, bad header, unknown time zone)."""
 
@@ -434,6 +438,12 @@ class Source:
     #: CSV, wide: the unnamed columns at the end of the header (it ends with a comma), whose cells
     #: must be empty: a cell there that holds something is a problem, and the rest of its row is read
     unnamed: list[int] = field(default_factory=list)
+    #: CSV: a problem of the whole file found reading its header (not valid UTF-8), given with
+    #: each of its blocks as the one found in its rows is (a wide file's tag names are there)
+    note: str | None = None
+    #: the file's stat(2) before its header was read: device, inode, size, modification time
+    #: (:func:`check_unchanged` compares it with the file's once everything is read)
+    stamp: tuple[int, int, int, int] | None = None
 
     def remark(self) -> str | None:
         """What the summary says once about this file though it loses nothing, or None."""
@@ -634,6 +644,39 @@ def _is_parquet(path: str) -> bool:
     return False
 
 
+def _stamp(path: str) -> tuple[int, int, int, int]:
+    st = os.stat(path)
+    return st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns
+
+
+def check_unchanged(sources: Sequence[Source]) -> None:
+    """Raise :class:`CsvFormatError` naming the first file written to since it was opened.
+
+    A file is read in pieces, by more than one process and opened more than once: one rewritten
+    in place (the same length), appended to or replaced meanwhile was read as a mixture of its
+    two contents without a word.  stat(2) tells: a write sets the modification time, a
+    replacement (rename) brings another inode; a file found shorter than planned is named
+    while it is read (:func:`_changed`)."""
+    for src in sources:
+        if src.stamp is None:
+            continue
+        try:
+            now = _stamp(src.path)
+        except OSError as exc:
+            raise CsvFormatError(f"{src.path}: the file changed while it was read (it is gone: "
+                                 f"{exc.strerror or exc})") from None
+        if now == src.stamp:
+            continue
+        if now[:2] != src.stamp[:2]:
+            how = "another file was put in its place"
+        elif now[2] != src.stamp[2]:
+            how = f"its size went from {src.stamp[2]:,} to {now[2]:,} bytes"
+        else:
+            how = "it was written to, its size unchanged"
+        raise CsvFormatError(f"{src.path}: the file changed while it was read ({how}); nothing was written: "
+                             "give a copy of it that nothing writes to")
+
+
 def open_source(path: str, layout: str = "auto") -> Source:
     """Read a file's header (or Parquet schema) and decide its layout.
 
@@ -641,6 +684,16 @@ def open_source(path: str, layout: str = "auto") -> Source:
     columns fit no layout.
     """
     _check_regular(path)
+    try:
+        stamp = _stamp(path)
+    except OSError as exc:
+        raise CsvFormatError(f"{path}: cannot open: {exc.strerror or exc}") from None
+    src = _open_source(path, layout)
+    src.stamp = stamp
+    return src
+
+
+def _open_source(path: str, layout: str) -> Source:
     try:
         parquet = _is_parquet(path)
     except OSError as exc:
@@ -694,8 +747,11 @@ def open_source(path: str, layout: str = "auto") -> Source:
             raise
         named = {ti, *(c for c, _ in tags)}
         unnamed = [i for i in range(len(header)) if i not in named] if lay == "wide" else []
+        # A header not in UTF-8 that fits a layout (a tag name in Windows-1252) is read with its
+        # bytes replaced, as a row's are, and said so: a wide file's were replaced without a word.
+        note = f"{path}: {NOT_UTF8_NOTE}" if lines.bad_utf8 else None
         return Source(path, "csv", lay, header, ti, si, vi, tags, body_start=start, body_line=line,
-                      unnamed=unnamed)
+                      unnamed=unnamed, note=note)
 
 
 def open_sources(paths: list[str | Path], layout: str = "auto", unread: list[str] | None = None) -> list[Source]:
@@ -997,13 +1053,15 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
         # A wide row that stops short after its time (an export that leaves out the empty cells
         # at the end of a row) keeps the cells it has: the others are read as empty, and it is
         # counted as a problem.
-        short = not long and ti < len(row) < width
-        if (len(row) < width and not short) or (len(row) > ncols and any(c.strip() for c in row[ncols:])):
-            if not row or (len(row) == 1 and not row[0].strip()):
-                pass
-            else:
-                rows += 1
-                problems.append(f"{name}:{line}: expected {ncols} columns, got {len(row)}")
+        # A line of spaces or tabs only is blank in either layout (pandas' read_csv skips it too);
+        # a wide file took it for a short row with a bad time, two problems for no reading lost.
+        blank = not row or (len(row) == 1 and not row[0].strip())
+        short = not long and ti < len(row) < width and not blank
+        if blank:
+            pass
+        elif (len(row) < width and not short) or (len(row) > ncols and any(c.strip() for c in row[ncols:])):
+            rows += 1
+            problems.append(f"{name}:{line}: expected {ncols} columns, got {len(row)}")
         else:
             rows += 1
             if short:
@@ -1069,7 +1127,7 @@ def _slow_rows(src: Source, fidx: int, lines: _Lines, line0: int, tz: tzinfo | N
             break
     parts = [(key, np.array(ts, dtype=np.float64), np.array(vs, dtype=np.float64), np.array(ps, dtype=np.int64))
              for key, (ts, vs, ps) in collected.items() if ts]
-    note = f"{name}: the file is not valid UTF-8; unreadable characters were replaced" if lines.bad_utf8 else None
+    note = f"{name}: {NOT_UTF8_NOTE}" if lines.bad_utf8 else src.note
     return Block(index, fidx, parts, problems, rows, nbytes, note, remark=src.remark())
 
 
@@ -1641,7 +1699,8 @@ def _parse_padded(src: Source, fidx: int, line0: int | None, buf: bytearray, ind
         ends_line = size > 0 and buf[end - 1] == 10
         got = _read_fast(src, buf, begin, end, 0 if line0 is None else line0, fidx << PLACE_BITS, tz)
         if got is not None:
-            block = Block(index, fidx, got[0], [], got[1], size, remark=src.remark(), relative=line0 is None)
+            block = Block(index, fidx, got[0], [], got[1], size, src.note, remark=src.remark(),
+                          relative=line0 is None)
             if find_line0 is not None:
                 # A clean chunk has no \r: its lines are its newlines (a last line without
                 # one, at the file's end, is a row but not a line end).
@@ -1859,12 +1918,12 @@ def _arrow_times(col: Any, column: str, tz: tzinfo | None, first: int,
             valid = _valid_range(t, valid & exists, first, column, problems)
         return t, valid
     if pa.types.is_integer(col.type) or pa.types.is_floating(col.type):
-        t = np.asarray(col.cast(pa.float64()).fill_null(0.0), dtype=np.float64)
+        t = np.asarray(_arrow_doubles(col).fill_null(0.0), dtype=np.float64)
         finite = np.isfinite(t)
         problems.rows(valid & ~finite, first, column, "the time is not finite")
         t = _epoch_rule(np.where(finite, t, 0.0))
         return t, _valid_range(t, valid & finite, first, column, problems)
-    if pa.types.is_string(col.type) or pa.types.is_large_string(col.type) or pa.types.is_dictionary(col.type):
+    if _is_text_type(col.type) or pa.types.is_dictionary(col.type):
         texts = col.cast(pa.string()).to_pylist()
         out = np.zeros(n)
         cache: dict[str, float | str] = {}
@@ -1891,6 +1950,30 @@ def _arrow_times(col: Any, column: str, tz: tzinfo | None, first: int,
         return out, valid
     problems.whole(column, f"holds {col.type}, not times; the rows were skipped", n)
     return np.zeros(n), np.zeros(n, dtype=bool)
+
+
+def _arrow_doubles(col: Any) -> Any:
+    """A number column (integers, floats, decimals) as doubles, each the double nearest to its
+    value, as the same number written as text in a CSV reads.
+
+    pyarrow's default cast refuses an integer beyond 2**53 (an epoch in nanoseconds, a
+    counter) with ``ArrowInvalid``, and its cast of a decimal is not correctly rounded
+    (``-123.4567`` gave ``-123.45670000000001``); the unchecked cast of an integer is the
+    conversion C does (to nearest), and a decimal is read through its exact text.
+    """
+    import pyarrow as pa
+
+    if pa.types.is_decimal(col.type):
+        col = col.cast(pa.string())
+    return col.cast(pa.float64(), safe=False)
+
+
+def _is_text_type(t: Any) -> bool:
+    """Arrow's text types: string, large_string and string_view (its view type, which a file
+    keeps in its Arrow schema when the writer held it so; it was refused before 2026-12-05)."""
+    import pyarrow as pa
+
+    return bool(pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_string_view(t))
 
 
 def _is_number_type(t: Any) -> bool:
@@ -2024,7 +2107,7 @@ def parse_parquet_group(src: Source, fidx: int, g: int, index: int, tz: tzinfo |
             valid = _arrow_valid(col)
             v = _arrow_plain(col, valid, math.nan) if pa.types.is_float64(col.type) else None
             if v is None:
-                v = np.asarray(col.cast(pa.float64()).fill_null(np.nan), dtype=np.float64)
+                v = np.asarray(_arrow_doubles(col).fill_null(np.nan), dtype=np.float64)
             nulls = col.null_count or not PARQUET_FAST  # (read only below: tok itself when none)
             if src.layout == "wide":
                 keep = tok & valid if nulls else tok
@@ -2078,8 +2161,7 @@ def _slice_codes(scol: Any, keep: NDArray[np.bool_], problems: _GroupProblems, f
     import pyarrow as pa
 
     if not pa.types.is_dictionary(scol.type):
-        if not (pa.types.is_string(scol.type) or pa.types.is_large_string(scol.type)
-                or pa.types.is_integer(scol.type)):
+        if not (_is_text_type(scol.type) or pa.types.is_integer(scol.type)):
             problems.whole(cname, f"holds {scol.type}, not stream names; the rows were skipped", len(scol))
             return None
         scol = scol.dictionary_encode()

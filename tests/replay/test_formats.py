@@ -77,7 +77,8 @@ def test_times_without_an_offset_need_the_files_time_zone(cli, tmp_path: Path) -
     local = write_long(tmp_path / "local.csv", data, stamps=stamps)
     utc = write_long(tmp_path / "utc.csv", data)
     refused = cli("replay", str(local))
-    assert refused.returncode == 1 and "Traceback" not in refused.stderr
+    assert refused.returncode == 2 and "Traceback" not in refused.stderr  # no row read: status 2, as fit (2026-12-05; 1 before)
+    assert "shiftwatch: no row could be read, so nothing was replayed" in refused.stderr
     assert (f"{local}:2: time '2026-03-29T01:10:00.000' has no UTC offset; say which time zone the file is "
             "in with --timezone") in refused.stderr
     assert refused.stdout == ""
@@ -87,7 +88,7 @@ def test_times_without_an_offset_need_the_files_time_zone(cli, tmp_path: Path) -
     gap = tmp_path / "gap.csv"
     gap.write_text("time,stream,value\n2026-03-29T02:30:00,x,1.0\n")
     res = cli("replay", "--timezone", "Europe/Berlin", str(gap))
-    assert res.returncode == 1 and "does not exist in Europe/Berlin" in res.stderr
+    assert res.returncode == 2 and "does not exist in Europe/Berlin" in res.stderr  # no row read: status 2, as fit (2026-12-05; 1 before)
     res = cli("replay", "--timezone", "Europe/Bruxelles", str(utc))
     assert res.returncode == 2 and "--timezone Europe/Bruxelles: not an IANA time zone name" in res.stderr
     assert "Traceback" not in res.stderr
@@ -308,7 +309,8 @@ def test_bad_parquet_rows_are_named_by_row_group_row_and_column(cli, history, tm
     naive = tmp_path / "naive.parquet"
     pq.write_table(table.set_column(0, "time", pa.array(times, pa.timestamp("ms"))), naive)
     res = cli("replay", str(naive))
-    assert res.returncode == 1 and f"{naive}: row group 0, row 0, column time: the time has no UTC offset" in res.stderr
+    assert res.returncode == 2 and f"{naive}: row group 0, row 0, column time: the time has no UTC offset" in res.stderr
+    assert "shiftwatch: no row could be read, so nothing was replayed" in res.stderr  # no row read: status 2, as fit (2026-12-05; 1 before)
     res = cli("replay", "--timezone", "UTC", str(naive))
     assert res.stdout == cli("replay", str(f)).stdout
     # A damaged page in row group 1 (its footer still sound): that group's rows are counted and
@@ -554,7 +556,7 @@ def test_epoch_microseconds_and_nanoseconds_are_refused_row_by_row_not_with_a_tr
     us.write_text("time,stream,value\n" + "".join(f"{1772431200 * 10**6 + i * 10**6},tank,{i % 7}\n"
                                                    for i in range(300)))
     res = cli("replay", str(us))
-    assert res.returncode == 1 and "Traceback" not in res.stderr and res.stdout == "", res.stderr
+    assert res.returncode == 2 and "Traceback" not in res.stderr and res.stdout == "", res.stderr  # no row read: status 2, as fit (2026-12-05; 1 before)
     assert f"{us}:2: time '1772431200000000' {hint}" in res.stderr
     fit = cli("fit", str(us))
     assert fit.returncode == 2 and "Traceback" not in fit.stderr, fit.stderr
@@ -567,7 +569,7 @@ def test_epoch_microseconds_and_nanoseconds_are_refused_row_by_row_not_with_a_tr
         f = tmp_path / f"{kind}.parquet"
         pq.write_table(pa.table({"time": col, "stream": ["tank"] * n, "value": [float(i % 7) for i in range(n)]}), f)
         res = cli("replay", str(f))
-        assert res.returncode == 1 and "Traceback" not in res.stderr and res.stdout == "", res.stderr
+        assert res.returncode == 2 and "Traceback" not in res.stderr and res.stdout == "", res.stderr  # no row read
         assert (f"{f}: row group 0, row 0, column time: the time is past the year 9999 (shiftwatch reads epoch "
                 "seconds") in res.stderr
 
@@ -798,6 +800,6 @@ def test_a_parquet_stream_column_of_bytes_is_still_refused_by_name(cli, tmp_path
     path = tmp_path / "bytes.parquet"
     pq.write_table(table, path)
     got = cli("replay", str(path))
-    assert got.returncode == 1, got.stderr
+    assert got.returncode == 2, got.stderr  # no row read: status 2, as fit (2026-12-05; 1 before)
     assert "column stream: holds binary, not stream names; the rows were skipped" in got.stderr
     assert "b'" not in got.stdout + got.stderr
