@@ -46,12 +46,15 @@ from typing import Any, ClassVar, NamedTuple, cast
 import numpy as np
 from numpy.typing import NDArray
 
+from shiftwatch.core import baseline as _baseline
 from shiftwatch.core import selfstart as _selfstart
 from shiftwatch.core.baseline import (
+    _BOUNDS,
     HEAVY_TAIL_CLIP,
     Baseline,
     BaselineSums,
     _clip,
+    clip_bounds,
     estimate_baseline,
     estimation_adjusted_arl,
     median,
@@ -2107,7 +2110,9 @@ class StreamEngine:
         else:
             e = r
         z = e * (1.0 / b.innovation_sigma)
-        if LEAN_CALLS:
+        if LEAN_CALLS and _baseline.SHARED_SCALARS:  # the bounds as shared 0-d arrays
+            _clip(z, *(_BOUNDS.get(b.clip) or clip_bounds(b.clip)), out=z)
+        elif LEAN_CALLS:
             _clip(z, -b.clip, b.clip, out=z)  # the ufunc ndarray.clip reaches through _methods._clip
         else:
             z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
@@ -2456,7 +2461,9 @@ class StreamEngine:
         # Residuals from the level fitted before the step, not the baseline's.
         e -= (1.0 - b.phi) * (ev.level_before - b.level)
         z = e * (1.0 / b.innovation_sigma)
-        if LEAN_CALLS:
+        if LEAN_CALLS and _baseline.SHARED_SCALARS:  # the bounds as shared 0-d arrays
+            _clip(z, *(_BOUNDS.get(b.clip) or clip_bounds(b.clip)), out=z)
+        elif LEAN_CALLS:
             _clip(z, -b.clip, b.clip, out=z)  # the ufunc ndarray.clip reaches through _methods._clip
         else:
             z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
@@ -3325,7 +3332,7 @@ def follow_delay(phi: float, window: int) -> int:
     :func:`follow_samples`; they are read back from the window, so at most
     FOLLOW_DELAY_MAX and half the window."""
     return int(min(FOLLOW_DELAY * _long_run(phi), FOLLOW_DELAY_MAX, window // 2))
-_follow_powers: dict[float, FloatArray] = {}
+_follow_powers: dict[float, tuple[FloatArray, FloatArray]] = {}
 _follow_terms_of: dict[tuple[float, int], tuple[int, float]] = {}
 
 
@@ -3389,12 +3396,14 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
     # sum loses no more than a few units in the 14th digit against the recursion
     # sample by sample (records are rounded to 6).
     block = max(16, min(_FOLLOW_BLOCK, int(4.0 / lam)))
-    p = _follow_powers.get(lam)
-    if p is None:
+    got = _follow_powers.get(lam)
+    if got is None:
         if len(_follow_powers) > 64:  # lam follows phi, refined now and then: keep a few
             _follow_powers.clear()
-        p = (1.0 - lam) ** np.arange(1, block + 1, dtype=np.float64)
-        _follow_powers[lam] = p
+        lam_a = np.array(lam, dtype=np.float64)  # lam as a shared 0-d array (SHARED_SCALARS)
+        lam_a.flags.writeable = False
+        got = _follow_powers[lam] = ((1.0 - lam) ** np.arange(1, block + 1, dtype=np.float64), lam_a)
+    p = got[0]
     if m <= block:
         # One block (a live batch, or a stretch shorter than 4 / lam): the loop's one
         # step, its product written in place.
@@ -3404,7 +3413,7 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
             pm = p[:m]
             q = np.divide(r, pm)
             np.add.accumulate(q, out=q)
-            q *= lam
+            q *= got[1] if _baseline.SHARED_SCALARS else lam
             q += u0
             np.multiply(pm, q, out=out[1:])
         else:
