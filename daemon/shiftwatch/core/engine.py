@@ -588,6 +588,11 @@ LEAN_CALLS = True
 #: their properties and then again.  False: the reference (tests/core/test_stretch_trim.py
 #: holds the two to each other).
 TRIM_STRETCH = True
+#: A call's last time and last residual read with item() (no array scalar made and
+#: converted), and the unfolded offsets not moved when every one of them leaves (a batch
+#: of a guard or more): the same doubles.  False: the reference (tests/core/test_read_items.py
+#: holds the two to each other).
+READ_ITEMS = True
 _NO_TERMS = (math.nan, 0, 0, 0.0)  # StreamEngine._fterms before a stretch (NaN matches no phi)
 #: The young loop (StreamEngine._young_loop) tells whether its bank's statistic reaches the
 #: split screen's or the calm fraction of the threshold by comparing each sum, as the
@@ -913,7 +918,7 @@ class StreamEngine:
             result = BatchResult()
         t, x = scr.times, scr.values
         if t.shape[0]:
-            self._last_time = float(t[-1])
+            self._last_time = t.item(-1) if READ_ITEMS else float(t[-1])  # (the same double)
         kept = scr.kept
         pos = 0
         n = t.shape[0]
@@ -1032,7 +1037,8 @@ class StreamEngine:
             return
         if drop and tail.shape[0] == drop:
             v = np.frombuffer(uq)
-            v[: n - drop] = v[drop:]
+            if n > drop or not READ_ITEMS:  # (all leave when the batch is a guard or more: none moves)
+                v[: n - drop] = v[drop:]
             v[n - drop:] = tail
             del v  # the array can be resized again once no view of its buffer is left
             return
@@ -2140,7 +2146,7 @@ class StreamEngine:
         """Every kept sample of a :meth:`_split_spikes` segment was consumed."""
         result.rejected.extend(spikes)
         self._prev_out = 0 if osign is None else int(osign[-1])
-        self._prev_r = float(r[-1])
+        self._prev_r = r.item(-1) if READ_ITEMS else float(r[-1])  # (the same double)
 
     def _kept_to(self, i: int, kt: FloatArray, spikes: list[Rejection], osign: NDArray[np.int8] | None,
                  r: FloatArray, result: BatchResult) -> float:
