@@ -37,6 +37,39 @@ except AttributeError:  # numpy 1.x
 #: BaselineSums.add calls _dot and _clip directly; False: np.dot and ndarray.clip, the
 #: reference (tests/core/test_per_call.py holds the two to each other).
 DIRECT_CALLS = True
+#: The clip bounds and the tail bound that the engine's array calls take (BaselineSums.add,
+#: the watch's and the event trial's clip) and the follower's rate (engine.follow_path)
+#: handed over as read-only 0-d float64 arrays, one per value and shared by every stream,
+#: instead of Python floats, which numpy turns into a 0-d array of the same double on every
+#: call (some 1,000 to 1,900 instructions an operand, callgrind): the same loops on the
+#: same doubles.  False: the floats, the reference (tests/core/test_shared_scalars.py
+#: holds the two to each other).
+SHARED_SCALARS = True
+_BOUNDS: dict[float, tuple[FloatArray, FloatArray]] = {}
+
+
+def clip_bounds(c: float) -> tuple[FloatArray, FloatArray]:
+    """``-c`` and ``c`` as read-only 0-d float64 arrays, shared: one pair per value of ``c``
+    (a stream's clip is one of a few values).  Callers on a hot path look the pair up in
+    ``_BOUNDS`` themselves and call this on a miss.  A zero is never kept (0.0 and -0.0
+    are the same key, not the same double); a NaN, never found, makes a new pair each time.
+
+    >>> lo, hi = clip_bounds(4.0)
+    >>> float(lo), float(hi), lo.ndim, clip_bounds(4.0)[1] is hi
+    (-4.0, 4.0, 0, True)
+    """
+    got = _BOUNDS.get(c)
+    if got is not None:
+        return got
+    lo, hi = np.array(-c, dtype=np.float64), np.array(c, dtype=np.float64)
+    lo.flags.writeable = hi.flags.writeable = False
+    if c != 0.0:
+        if len(_BOUNDS) >= 64:  # a few clips in practice; a bound on what it can hold
+            _BOUNDS.clear()
+        _BOUNDS[c] = (lo, hi)
+    return lo, hi
+
+
 #: huber_scale works each iteration's mean of clipped squares in one buffer by the ufuncs
 #: np.mean and np.clip reach through their wrappers (the same floats); False: the
 #: reference, np.mean(np.clip(r / s, -c, c) ** 2) (tests/core/test_lean_huber.py holds the
@@ -264,6 +297,8 @@ def sigma_floor(level: float, quantum: float, min_sigma: float | None) -> float:
 
 #: Residuals beyond this many sigmas count as tail samples.
 TAIL_AT = 2.5
+_TAIL_AT = np.array(TAIL_AT)  # (a shared 0-d array for BaselineSums.add, see SHARED_SCALARS)
+_TAIL_AT.flags.writeable = False
 #: Gaussian noise puts 1.24% beyond 2.5 sigma (common practice).  A stream is treated
 #: as heavy-tailed when its share lies beyond that of Student-t(8) noise: 2.1% of the
 #: samples beyond 2.5 of Huber's scale at the configured clip (4), and 2.5% beyond 2.5 of
@@ -453,10 +488,22 @@ class BaselineSums:
         dev = values - b.level
         dev *= 1.0 / b.sigma
         count = _count_nonzero if direct else np.count_nonzero
-        if c > TAIL_AT:
+        lo: Any
+        hi: Any
+        if SHARED_SCALARS and direct:
+            lo, hi = _BOUNDS.get(c) or clip_bounds(c)
+            if c > TAIL_AT:
+                u = _clip(dev, lo, hi)
+                self.tail += int(count(np.abs(u) > _TAIL_AT))
+            else:
+                self.tail += int(count(np.abs(dev) > _TAIL_AT))
+                u = _clip(dev, lo, hi)
+        elif c > TAIL_AT:
+            lo, hi = -c, c
             u = _clip(dev, -c, c) if direct else dev.clip(-c, c)
             self.tail += int(count(np.abs(u) > TAIL_AT))
         else:
+            lo, hi = -c, c
             self.tail += int(count(np.abs(dev) > TAIL_AT))
             u = _clip(dev, -c, c) if direct else dev.clip(-c, c)
         phi = b.phi
@@ -466,7 +513,7 @@ class BaselineSums:
             e_all = None
         elif direct:
             e_all = u[1:] - phi * u[:-1]
-            _clip(e_all, -c, c, out=e_all)
+            _clip(e_all, lo, hi, out=e_all)
         else:
             e_all = (u[1:] - phi * u[:-1]).clip(-c, c)
         # Sampling interval: gaps of ten intervals or more (stoppages) are left out, each

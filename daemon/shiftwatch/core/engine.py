@@ -46,12 +46,15 @@ from typing import Any, ClassVar, NamedTuple, cast
 import numpy as np
 from numpy.typing import NDArray
 
+from shiftwatch.core import baseline as _baseline
 from shiftwatch.core import selfstart as _selfstart
 from shiftwatch.core.baseline import (
+    _BOUNDS,
     HEAVY_TAIL_CLIP,
     Baseline,
     BaselineSums,
     _clip,
+    clip_bounds,
     estimate_baseline,
     estimation_adjusted_arl,
     median,
@@ -585,6 +588,11 @@ LEAN_CALLS = True
 #: their properties and then again.  False: the reference (tests/core/test_stretch_trim.py
 #: holds the two to each other).
 TRIM_STRETCH = True
+#: A call's last time and last residual read with item() (no array scalar made and
+#: converted), and the unfolded offsets not moved when every one of them leaves (a batch
+#: of a guard or more): the same doubles.  False: the reference (tests/core/test_read_items.py
+#: holds the two to each other).
+READ_ITEMS = True
 _NO_TERMS = (math.nan, 0, 0, 0.0)  # StreamEngine._fterms before a stretch (NaN matches no phi)
 #: The young loop (StreamEngine._young_loop) tells whether its bank's statistic reaches the
 #: split screen's or the calm fraction of the threshold by comparing each sum, as the
@@ -910,7 +918,7 @@ class StreamEngine:
             result = BatchResult()
         t, x = scr.times, scr.values
         if t.shape[0]:
-            self._last_time = float(t[-1])
+            self._last_time = t.item(-1) if READ_ITEMS else float(t[-1])  # (the same double)
         kept = scr.kept
         pos = 0
         n = t.shape[0]
@@ -1029,7 +1037,8 @@ class StreamEngine:
             return
         if drop and tail.shape[0] == drop:
             v = np.frombuffer(uq)
-            v[: n - drop] = v[drop:]
+            if n > drop or not READ_ITEMS:  # (all leave when the batch is a guard or more: none moves)
+                v[: n - drop] = v[drop:]
             v[n - drop:] = tail
             del v  # the array can be resized again once no view of its buffer is left
             return
@@ -2107,7 +2116,9 @@ class StreamEngine:
         else:
             e = r
         z = e * (1.0 / b.innovation_sigma)
-        if LEAN_CALLS:
+        if LEAN_CALLS and _baseline.SHARED_SCALARS:  # the bounds as shared 0-d arrays
+            _clip(z, *(_BOUNDS.get(b.clip) or clip_bounds(b.clip)), out=z)
+        elif LEAN_CALLS:
             _clip(z, -b.clip, b.clip, out=z)  # the ufunc ndarray.clip reaches through _methods._clip
         else:
             z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
@@ -2135,7 +2146,7 @@ class StreamEngine:
         """Every kept sample of a :meth:`_split_spikes` segment was consumed."""
         result.rejected.extend(spikes)
         self._prev_out = 0 if osign is None else int(osign[-1])
-        self._prev_r = float(r[-1])
+        self._prev_r = r.item(-1) if READ_ITEMS else float(r[-1])  # (the same double)
 
     def _kept_to(self, i: int, kt: FloatArray, spikes: list[Rejection], osign: NDArray[np.int8] | None,
                  r: FloatArray, result: BatchResult) -> float:
@@ -2456,7 +2467,9 @@ class StreamEngine:
         # Residuals from the level fitted before the step, not the baseline's.
         e -= (1.0 - b.phi) * (ev.level_before - b.level)
         z = e * (1.0 / b.innovation_sigma)
-        if LEAN_CALLS:
+        if LEAN_CALLS and _baseline.SHARED_SCALARS:  # the bounds as shared 0-d arrays
+            _clip(z, *(_BOUNDS.get(b.clip) or clip_bounds(b.clip)), out=z)
+        elif LEAN_CALLS:
             _clip(z, -b.clip, b.clip, out=z)  # the ufunc ndarray.clip reaches through _methods._clip
         else:
             z.clip(-b.clip, b.clip, out=z)  # the method: np.clip's own, without its dispatcher
@@ -3325,7 +3338,7 @@ def follow_delay(phi: float, window: int) -> int:
     :func:`follow_samples`; they are read back from the window, so at most
     FOLLOW_DELAY_MAX and half the window."""
     return int(min(FOLLOW_DELAY * _long_run(phi), FOLLOW_DELAY_MAX, window // 2))
-_follow_powers: dict[float, FloatArray] = {}
+_follow_powers: dict[float, tuple[FloatArray, FloatArray]] = {}
 _follow_terms_of: dict[tuple[float, int], tuple[int, float]] = {}
 
 
@@ -3389,12 +3402,14 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
     # sum loses no more than a few units in the 14th digit against the recursion
     # sample by sample (records are rounded to 6).
     block = max(16, min(_FOLLOW_BLOCK, int(4.0 / lam)))
-    p = _follow_powers.get(lam)
-    if p is None:
+    got = _follow_powers.get(lam)
+    if got is None:
         if len(_follow_powers) > 64:  # lam follows phi, refined now and then: keep a few
             _follow_powers.clear()
-        p = (1.0 - lam) ** np.arange(1, block + 1, dtype=np.float64)
-        _follow_powers[lam] = p
+        lam_a = np.array(lam, dtype=np.float64)  # lam as a shared 0-d array (SHARED_SCALARS)
+        lam_a.flags.writeable = False
+        got = _follow_powers[lam] = ((1.0 - lam) ** np.arange(1, block + 1, dtype=np.float64), lam_a)
+    p = got[0]
     if m <= block:
         # One block (a live batch, or a stretch shorter than 4 / lam): the loop's one
         # step, its product written in place.
@@ -3404,7 +3419,7 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
             pm = p[:m]
             q = np.divide(r, pm)
             np.add.accumulate(q, out=q)
-            q *= lam
+            q *= got[1] if _baseline.SHARED_SCALARS else lam
             q += u0
             np.multiply(pm, q, out=out[1:])
         else:

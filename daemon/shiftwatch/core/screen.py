@@ -67,6 +67,13 @@ _KEPT = _read_only_arange(4096)
 ARRIVAL_FAST = True
 
 
+#: screen_samples checks a float batch's type once (not once for the small-batch path and
+#: again for the array path) and reads its first and last time with item(); the same checks
+#: on the same doubles.  False: the reference (tests/core/test_read_items.py holds the two
+#: to each other).
+READ_ONCE = True
+
+
 class Screened(NamedTuple):
     """Result of :func:`screen_samples`.
 
@@ -162,19 +169,42 @@ def screen_samples(
     ([100.0, 102.0], [(1, 'time_ahead')])
     """
     if (type(times) is np.ndarray and type(values) is np.ndarray and times.dtype == _F64
-            and values.dtype == _F64 and times.ndim == 1 and 0 < times.shape[0] <= SMALL_BATCH
-            and times.shape == values.shape
-            and _small_batch_clean(times.tolist(), values.tolist(), last_time, arrived, max_ahead,
-                                   max_behind)):
-        return Screened(times=times, values=values, kept=_ARANGE[times.shape[0]], rejected=[])
-    if (type(times) is np.ndarray and type(values) is np.ndarray and times.dtype == _F64
             and values.dtype == _F64 and times.ndim == 1 and times.shape == values.shape):
+        n = times.shape[0]
+        if (0 < n <= SMALL_BATCH
+                and _small_batch_clean(times.tolist(), values.tolist(), last_time, arrived, max_ahead,
+                                       max_behind)):
+            return Screened(times=times, values=values, kept=_ARANGE[n], rejected=[])
+        if not READ_ONCE:
+            return _screen_arrays_reference(times, values, last_time, seen, arrived, max_ahead, max_behind)
         # Float arrays: the checks of the fast path below on the arrays as they are (values
         # within the bound: the largest and the smallest, where a NaN fails the comparison
         # as it fails abs(v) <= bound).  Arrival limits (the daemon's batches) are checked
         # on the lags' smallest and largest, as _within does, once the times are known to
         # be finite and increasing; anything else takes the full path, which also says
         # what is wrong (ARRIVAL_FAST = False: always the full path when limits apply).
+        # (a few samples that failed the plain-float checks come here too, as before)
+        limits = arrived is not None and (max_ahead is not None or max_behind is not None)
+        if n and times.item(0) > last_time:  # (item(): the same double, no array scalar)
+            high = float(np.maximum.reduce(values))
+            low = float(np.minimum.reduce(values))
+            if (high <= MAX_ABS_VALUE and low >= -MAX_ABS_VALUE and math.isfinite(times.item(-1))
+                    and (n == 1 or bool(_all(times[1:] > times[:-1])))
+                    and (not limits or (ARRIVAL_FAST and _arrivals_within(arrived, times, max_ahead,
+                                                                          max_behind)))):
+                return Screened(times=times, values=values,
+                                kept=_KEPT[:n] if n <= _KEPT.shape[0] else np.arange(n), rejected=[],
+                                high=high, low=low)
+    return _screen_full(times, values, last_time, seen, arrived, max_ahead, max_behind)
+
+
+def _screen_arrays_reference(times: NDArray[np.float64], values: NDArray[np.float64], last_time: float,
+                             seen: NDArray[np.float64] | None, arrived: Any, max_ahead: float | None,
+                             max_behind: float | None) -> Screened:
+    """:func:`screen_samples` as it was before ``READ_ONCE`` from its array path on (the
+    float checks made again, the times read as array scalars); the reference."""
+    if (type(times) is np.ndarray and type(values) is np.ndarray and times.dtype == _F64
+            and values.dtype == _F64 and times.ndim == 1 and times.shape == values.shape):
         n = times.shape[0]
         limits = arrived is not None and (max_ahead is not None or max_behind is not None)
         if n and times[0] > last_time:
@@ -187,6 +217,14 @@ def screen_samples(
                 return Screened(times=times, values=values,
                                 kept=_KEPT[:n] if n <= _KEPT.shape[0] else np.arange(n), rejected=[],
                                 high=high, low=low)
+    return _screen_full(times, values, last_time, seen, arrived, max_ahead, max_behind)
+
+
+def _screen_full(times: Sequence[Any] | NDArray[Any], values: Sequence[Any] | NDArray[Any], last_time: float,
+                 seen: NDArray[np.float64] | None, arrived: Any, max_ahead: float | None,
+                 max_behind: float | None) -> Screened:
+    """:func:`screen_samples`' full path: any input, each sample checked and its rejection
+    named."""
     t, bad_t = coerce_values(times)
     v, bad_v = coerce_values(values)
     n = t.shape[0]
