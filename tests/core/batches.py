@@ -17,6 +17,7 @@ import numpy as np
 from shiftwatch.core import engine
 from shiftwatch.core.baseline import BaselineSums, estimate_baseline
 from shiftwatch.core.engine import StreamEngine
+from shiftwatch.core.settings import DetectionSettings
 
 
 def noise(kind: str, n: int, rng: np.random.Generator) -> np.ndarray:
@@ -179,6 +180,30 @@ def random_run_agrees(run: Callable[..., dict[str, Any]], history: Callable[...,
     t, x, a = history(kind, n, rng)
     cuts = steps_of(n, rng, most)
     assert run(StreamEngine("s"), t, x, a, cuts, True) == run(StreamEngine("s"), t, x, a, cuts, False)
+
+
+def mixed_runs_agree(run: Callable[..., dict[str, Any]], history: Callable[..., Any], kind: str,
+                     rng: np.random.Generator, runs: int = 8) -> None:
+    """``runs`` random histories of ``kind`` noise (1,500 to 12,000 samples) cut by
+    :func:`mixed_cuts`: ``run`` gives the same with its switch on and off."""
+    for _ in range(runs):
+        n = int(rng.integers(1500, 12000))
+        t, x, a = history(kind, n, rng)
+        cuts = mixed_cuts(n, rng)
+        on = run(StreamEngine("brackenfield/kiln2/draft"), t, x, a, cuts, True)
+        assert on == run(StreamEngine("brackenfield/kiln2/draft"), t, x, a, cuts, False)
+
+
+def other_tests_agree(run: Callable[..., dict[str, Any]], history: Callable[..., Any], test_name: str,
+                      rng: np.random.Generator) -> None:
+    """As :func:`mixed_runs_agree` with the sequential test ``test_name`` (cusum, glr), on
+    iid, AR(1) and t(3) noise."""
+    s = DetectionSettings(test=test_name)
+    for kind in ("iid", "ar", "t3"):
+        n = int(rng.integers(2000, 7000))
+        t, x, a = history(kind, n, rng)
+        cuts = mixed_cuts(n, rng)
+        assert run(StreamEngine("s", s), t, x, a, cuts, True) == run(StreamEngine("s", s), t, x, a, cuts, False)
 
 
 def baseline_sums_agree(switch: Callable[[bool], AbstractContextManager[None]], rng: np.random.Generator,

@@ -30,10 +30,8 @@ from hypothesis import strategies as st
 from shiftwatch.core import baseline
 from shiftwatch.core.baseline import _clip, clip_bounds
 from shiftwatch.core.engine import StreamEngine, follow_path
-from shiftwatch.core.settings import DetectionSettings
 
 from . import batches
-from .batches import mixed_cuts
 
 T0 = 1_788_000_000.0
 
@@ -54,24 +52,12 @@ _history = functools.partial(batches.random_history, t0=T0, level=20.0, sigma=0.
 
 @pytest.mark.parametrize("kind", ["iid", "ar", "t3", "quantised"])
 def test_shared_operands_equal_the_reference(kind: str) -> None:
-    rng = np.random.default_rng({"iid": 81, "ar": 82, "t3": 83, "quantised": 84}[kind])
-    for _ in range(8):
-        n = int(rng.integers(1500, 12000))
-        t, x, a = _history(kind, n, rng)
-        cuts = mixed_cuts(n, rng)
-        shared = _run(StreamEngine("brackenfield/kiln2/draft"), t, x, a, cuts, True)
-        assert shared == _run(StreamEngine("brackenfield/kiln2/draft"), t, x, a, cuts, False)
+    batches.mixed_runs_agree(_run, _history, kind, np.random.default_rng({"iid": 81, "ar": 82, "t3": 83, "quantised": 84}[kind]))
 
 
 @pytest.mark.parametrize("test_name", ["cusum", "glr"])
 def test_shared_operands_with_the_other_tests(test_name: str) -> None:
-    rng = np.random.default_rng({"cusum": 85, "glr": 86}[test_name])
-    s = DetectionSettings(test=test_name)
-    for kind in ("iid", "ar", "t3"):
-        n = int(rng.integers(2000, 7000))
-        t, x, a = _history(kind, n, rng)
-        cuts = mixed_cuts(n, rng)
-        assert _run(StreamEngine("s", s), t, x, a, cuts, True) == _run(StreamEngine("s", s), t, x, a, cuts, False)
+    batches.other_tests_agree(_run, _history, test_name, np.random.default_rng({"cusum": 85, "glr": 86}[test_name]))
 
 
 def test_established_streams_in_arrays_of_260_with_steps_and_spikes() -> None:

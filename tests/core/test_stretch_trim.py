@@ -36,10 +36,8 @@ from shiftwatch.core import baseline, engine, multicusum
 from shiftwatch.core.baseline import BaselineSums, estimate_baseline
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.multicusum import MultiCusumTest
-from shiftwatch.core.settings import DetectionSettings
 
 from . import batches
-from .batches import mixed_cuts
 
 T0 = 1_788_000_000.0
 
@@ -60,24 +58,12 @@ _history = functools.partial(batches.random_history, t0=T0, level=20.0, sigma=0.
 
 @pytest.mark.parametrize("kind", ["iid", "ar", "t3", "quantised"])
 def test_trimmed_stretches_equal_the_reference(kind: str) -> None:
-    rng = np.random.default_rng({"iid": 61, "ar": 62, "t3": 63, "quantised": 64}[kind])
-    for _ in range(8):
-        n = int(rng.integers(1500, 12000))
-        t, x, a = _history(kind, n, rng)
-        cuts = mixed_cuts(n, rng)
-        trimmed = _run(StreamEngine("brackenfield/kiln2/draft"), t, x, a, cuts, True)
-        assert trimmed == _run(StreamEngine("brackenfield/kiln2/draft"), t, x, a, cuts, False)
+    batches.mixed_runs_agree(_run, _history, kind, np.random.default_rng({"iid": 61, "ar": 62, "t3": 63, "quantised": 64}[kind]))
 
 
 @pytest.mark.parametrize("test_name", ["cusum", "glr"])
 def test_trimmed_stretches_with_the_other_tests(test_name: str) -> None:
-    rng = np.random.default_rng({"cusum": 65, "glr": 66}[test_name])
-    s = DetectionSettings(test=test_name)
-    for kind in ("iid", "ar", "t3"):
-        n = int(rng.integers(2000, 7000))
-        t, x, a = _history(kind, n, rng)
-        cuts = mixed_cuts(n, rng)
-        assert _run(StreamEngine("s", s), t, x, a, cuts, True) == _run(StreamEngine("s", s), t, x, a, cuts, False)
+    batches.other_tests_agree(_run, _history, test_name, np.random.default_rng({"cusum": 65, "glr": 66}[test_name]))
 
 
 def test_later_stretches_of_a_call_with_spikes_and_refinements() -> None:
