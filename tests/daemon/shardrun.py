@@ -322,7 +322,16 @@ class ShardRun:
         """Publish the plan (from the cluster's third server); ``during(j)`` is called
         after each sample index j, from the publishing thread."""
         p = self.plan
-        pub = PlainClient(self.cluster.mqtt_url(2), f"{self.name}-publisher", mqtt_version="3.1.1").start()
+        pub = PlainClient(self.cluster.mqtt_url(2), f"{self.name}-publisher", mqtt_version="3.1.1")
+        # paho keeps what is published while the connection is down and sends it, with the
+        # QoS 1 messages not yet acknowledged, once it is back (paho-mqtt 2.x
+        # _messages_reconnect_reset_out); its default wait between attempts doubles to 120 s.
+        # A CI run whose NATS server timed out storing the publisher's messages ("timeout for
+        # request type MS" in its log) and closed its connection near the end of the plan
+        # left 5,657 samples in paho past settle's 20 s still: the shards had lost nothing.
+        # The publisher tries again within 2 s, as PlainClient(persistent=True) does.
+        pub.client.reconnect_delay_set(min_delay=1, max_delay=2)
+        pub.start()
         self.clients.append(pub)
         names = p.names()
         series = [p.series(i) for i in range(len(names))]
