@@ -31,7 +31,6 @@ from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.screen import screen_samples
 
 from . import batches
-from .batches import mixed_cuts
 
 T0 = 1_788_000_000.0
 
@@ -52,13 +51,8 @@ _history = functools.partial(batches.random_history, t0=T0, level=20.0, sigma=0.
 
 @pytest.mark.parametrize("kind", ["iid", "ar", "t3", "quantised"])
 def test_item_reads_equal_the_reference(kind: str) -> None:
-    rng = np.random.default_rng({"iid": 91, "ar": 92, "t3": 93, "quantised": 94}[kind])
-    for _ in range(6):
-        n = int(rng.integers(1500, 12000))
-        t, x, a = _history(kind, n, rng)
-        cuts = mixed_cuts(n, rng)
-        assert _run(StreamEngine("brackenfield/kiln2/draft"), t, x, a, cuts, True) == \
-            _run(StreamEngine("brackenfield/kiln2/draft"), t, x, a, cuts, False)
+    batches.mixed_runs_agree(_run, _history, kind,
+                             np.random.default_rng({"iid": 91, "ar": 92, "t3": 93, "quantised": 94}[kind]), runs=6)
 
 
 def test_established_streams_in_arrays_of_a_guard_and_more() -> None:

@@ -70,6 +70,18 @@ def _stored(cs: ClusterState) -> int:
     return cs.io.run(go())
 
 
+def _both_rounds_read_back(cs: ClusterState, names: list[str]) -> None:
+    """Every stream's journal holds its first group and the one at t0 = 10, each once (read
+    by another daemon), and this daemon's sequences are the reader's."""
+    assert _stored(cs) == 2 * len(names)
+    reader = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3")
+    loaded = reader.load(names)
+    for i, name in enumerate(names):
+        assert [g.times.tolist() for g in loaded[name].groups] == [_group(i).times.tolist(),
+                                                                   _group(i, t0=10.0).times.tolist()]
+        assert cs.seq[name] == reader.seq[name]
+
+
 def test_a_rounds_journal_messages_are_stored_before_the_round_is_done(cluster: ClusterState) -> None:
     cs = cluster
     rnd = cs.journal_round()
@@ -485,13 +497,7 @@ def test_a_round_whose_cluster_stops_half_way_is_taken_once_when_written_again(
         server.send_signal(signal.SIGCONT)
     cs.io.timeout = 5.0
     assert cs.journal([_group(i, t0=10.0) for i in range(n)]) == []
-    assert _stored(cs) == 2 * n
-    reader = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3")
-    loaded = reader.load(names)
-    for i, name in enumerate(names):
-        assert [g.times.tolist() for g in loaded[name].groups] == [_group(i).times.tolist(),
-                                                                   _group(i, t0=10.0).times.tolist()]
-        assert cs.seq[name] == reader.seq[name]
+    _both_rounds_read_back(cs, names)
 
 
 def test_a_batch_sent_in_one_write_stores_what_publish_stores(cluster: ClusterState) -> None:
@@ -616,12 +622,7 @@ def test_a_round_in_flight_when_its_server_dies_ends_at_once_and_is_taken_once_w
                 return False  # JetStream not up yet: the round is held and tried again
 
         assert wait_until(written, 30, every=0.5)
-        assert _stored(cs) == 2 * n
-        reader = ClusterState(cs.io, name="jt", replicas=1, logger=logging.getLogger("test"), writer="w3")
-        loaded = reader.load(names)
-        for i, name in enumerate(names):
-            assert [g.times.tolist() for g in loaded[name].groups] == [_group(i).times.tolist(),
-                                                                       _group(i, t0=10.0).times.tolist()]
+        _both_rounds_read_back(cs, names)
     finally:
         cs.io.close()  # while its server runs (the fixture's close then has nothing to do)
         again.terminate()
