@@ -765,7 +765,11 @@ def parse_config(text: str, *, file: str | None = None) -> Config:
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         line = mark.line + 1 if mark is not None else None
-        raise ConfigError("", f"not valid YAML: {getattr(exc, 'problem', exc)}", file=file, line=line) from None
+        problem = getattr(exc, "problem", None) or str(exc)
+        context = getattr(exc, "context", None)
+        if context and problem.startswith("but "):  # "but found another document" says what only with its context
+            problem = f"{context}, {problem}"
+        raise ConfigError("", f"not valid YAML: {problem}", file=file, line=line) from None
     _top, nodes = ld.section(root, TOP_KEYS, "")
     b, bnodes = ld.section(nodes.get("broker"), BROKER_KEYS, "broker")
     tls = None

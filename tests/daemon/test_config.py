@@ -74,6 +74,10 @@ def test_the_shipped_schema_is_generated_from_the_same_definitions() -> None:
     ("detection:\n  warmup_samples: 1000\n",
      "plant.yaml:2: detection.window_samples: must be at least twice warmup_samples"),
     ("a: [\n", "plant.yaml:2: not valid YAML"),
+    # Two YAML documents (a Kubernetes manifest, say): PyYAML's problem alone read "but found another
+    # document"; its context says what was expected (PyYAML's own two-part message).
+    ("streams:\n  - topic: a\n---\nkind: Service\n",
+     "plant.yaml:3: not valid YAML: expected a single document in the stream, but found another document"),
     ("detection: {}\ndetection: {}\n", "plant.yaml:2: detection: key appears twice"),
 ])
 def test_errors_name_the_line_and_the_key_path(text: str, expected: str) -> None:
