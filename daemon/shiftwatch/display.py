@@ -223,7 +223,30 @@ def _levels(a: float, b: float, scale: float) -> tuple[str, str]:
             and 10.0 ** (math.floor(math.log10(top)) - 4) > abs(scale) / 20.0):
         d = max(0, 2 - math.floor(math.log10(abs(scale))))
         return f"{a:.{d}f}", f"{b:.{d}f}"
-    return f"{a:.5g}", f"{b:.5g}"
+    return _same_decimals(f"{a:.5g}", a, f"{b:.5g}", b)
+
+
+def _decimals(text: str) -> int:
+    return len(text) - text.index(".") - 1 if "." in text else 0
+
+
+def _same_decimals(ta: str, a: float, tb: str, b: float) -> tuple[str, str]:
+    """Two levels written with ``.5g``, a trailing zero it dropped from one put back so
+    both show the same decimals ("500.02 -> 501.30"), each only as far as its own five
+    significant figures reach (12345 takes no decimals from 0.5).
+
+    >>> _same_decimals("500.02", 500.02, "501.3", 501.3), _same_decimals("12345", 12345.0, "0.5", 0.5)
+    (('500.02', '501.30'), ('12345', '0.5'))
+    """
+    if "e" in ta or "e" in tb or "n" in ta or "n" in tb:  # exponent form, inf or nan
+        return ta, tb
+    want = max(_decimals(ta), _decimals(tb))
+    out = []
+    for text, x in ((ta, a), (tb, b)):
+        own = 4 - math.floor(math.log10(abs(x))) if x != 0.0 else want
+        d = min(want, max(own, 0))
+        out.append(f"{x:.{d}f}" if d > _decimals(text) else text)
+    return out[0], out[1]
 
 
 def _lag_text(lag: float) -> str:

@@ -101,6 +101,29 @@ def test_a_step_on_readings_without_noise_says_so_instead_of_inf_sigma() -> None
         text = alert_summary(rec)
         assert "inf" not in text and "nan" not in text, text
         assert "stepped up 0.25 bar (no noise to measure it in sigmas)" in text, text
-        assert text.endswith(": 7.25 -> 7.5 bar"), text
+        assert text.endswith(": 7.25 -> 7.50 bar"), text
         page = _size_text(EventSummary.of(rec, rec.as_of), "bar")
         assert page == "+0.25 bar (no noise to measure it in sigmas)", page
+
+
+@pytest.mark.parametrize(("a", "b", "scale", "want"), [
+    # Found by a first-hour review (2026-12-05): a replay's summary read "500.02 -> 501.3",
+    # the second level one figure short of the first though both are rounded alike.
+    (500.02, 501.3, 1.28, ("500.02", "501.30")),
+    (7.25, 7.5, 0.25, ("7.25", "7.50")),
+    (501.3, 500.02, 1.28, ("501.30", "500.02")),
+    # Padded only to the level's own five figures: 12345 takes no decimals from 0.5.
+    (12345.0, 0.5, 12344.5, ("12345", "0.5")),
+    # Both already alike, or in exponent form: unchanged.
+    (500.03, 501.83, 1.8, ("500.03", "501.83")),
+    (1.5e-7, 2.5e-7, 1e-7, ("1.5e-07", "2.5e-07")),
+])
+def test_the_two_levels_of_a_summary_show_the_same_decimals(
+        a: float, b: float, scale: float, want: tuple[str, str]) -> None:
+    """The two levels of a summary line are read side by side, so a trailing zero that
+    ``format(x, '.5g')`` drops from one of them is put back (to that level's own five
+    significant figures, never further): "500.02 -> 501.30", not "500.02 -> 501.3".
+    Five significant figures and the dropping of zeros past them are common practice in
+    reporting measurements (the decimals a reading is shown with say its resolution)."""
+    from shiftwatch.display import _levels
+    assert _levels(a, b, scale) == want
