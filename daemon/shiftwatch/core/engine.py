@@ -2615,22 +2615,27 @@ class StreamEngine:
 
     def _spread_ends(self, ev: OpenEvent, fit: StepFit, b: Baseline, outcome: str, result: BatchResult,
                      as_of: float) -> bool:
-        """End the event ``undecided`` when its samples show the noise's spread grew and
-        its step does not stand at the new spread; the stream watches on at the new
-        sigma.  A "step" while the spread looks wider but is not yet clear waits, the
+        """End the event ``undecided`` when its samples show the noise's spread grew, unless
+        the trial says "step" and the step stands at the new spread; the stream watches
+        on at the new sigma.  A "step" while the spread looks wider but is not yet clear waits, the
         trial going on (core/sensorcheck.py).  False (nothing done) otherwise."""
         assert self._fitter is not None
         vals = self._fitter.values
         spread = _sensorcheck.event_spread(vals, ev.trip_len, b, self.settings.confirm_p_value)
+        waits = outcome in (STEP, NO_STEP)
         if spread is None:
-            if outcome in (STEP, NO_STEP) and _sensorcheck.spread_unclear(vals, ev.trip_len, b):
+            if waits and _sensorcheck.spread_unclear(vals, ev.trip_len, b):
                 ev.trial.reopen()
                 return True
             return False
+        if waits and len(vals) - ev.trip_len < _sensorcheck.SPREAD_SETTLE:
+            ev.trial.reopen()  # enough samples to measure the new spread by
+            return True
         shown = self._event_fit(ev, b, fit)
-        if (_sensorcheck.step_stands(shown, b.sigma, spread, _variance_factor(b.phi), self.settings.confirm_p_value)
-                and not self._conflicts(shown, ev.trial.sign, b)):
-            return False
+        if (outcome == STEP and not self._conflicts(shown, ev.trial.sign, b)
+                and _sensorcheck.step_stands(shown, b.sigma, spread, _variance_factor(b.phi),
+                                             self.settings.confirm_p_value)):
+            return False  # a step that stands at the new spread too: decided as ever, the spread named
         self._end_event(ev, "undecided", shown, result, as_of)
         self._baseline = replace(b, sigma=b.sigma * spread.ratio, innovation_sigma=b.innovation_sigma * spread.ratio)
         self._reanchor(fit.index)

@@ -32,7 +32,9 @@ A spread change (:func:`spread_change`)
     the event ``undecided``, names the spread (``spread_ratio``, ``sigma_after``)
     and watches on at the new sigma, so the wider noise is not detected again and
     again.  A trial's verdict waits (up to :data:`SPREAD_WAIT` samples) while the
-    spread looks wider but cannot be told yet (:func:`spread_unclear`).
+    spread looks wider but cannot be told yet (:func:`spread_unclear`), and an event
+    whose spread grew ends no sooner than :data:`SPREAD_SETTLE` samples after its
+    detection, so the new sigma rests on that many.
 
 Pure: samples in, numbers out.
 """
@@ -65,10 +67,15 @@ SPREAD_RATIO = 1.5
 #: A spread change is judged at this share of the event's ``confirm_p_value``: it ends an
 #: event whatever the trial says, so it asks for more than a step does.
 SPREAD_P_SHARE = 0.1
-#: The fewest samples after the detection a spread change is judged on.
+#: The samples before the detection that the spread of an event's samples is measured on too.
+SPREAD_LEAD = 10
+#: The fewest samples a spread change is judged on.
 SPREAD_MIN = 10
-#: Until this many samples after the detection, a "step" waits while the spread looks wider.
+#: Until this many samples after the detection, a verdict waits while the spread looks wider.
 SPREAD_WAIT = 60
+#: An event whose spread grew ends with at least this many samples after its detection, so
+#: the new sigma rests on them (the first significant look overstates it: 3.6 for 2).
+SPREAD_SETTLE = 50
 #: Moving ranges count for at most this many sigmas of the reference's neighbouring differences.
 SPREAD_CAP = 3.0
 #: The fewest readings before the detection whose moving ranges may stand for the reference.
@@ -230,22 +237,26 @@ def spread_unclear(values: FloatArray, trip_len: int, b: Baseline) -> bool:
     :data:`SPREAD_WAIT` of them, their capped mean moving range at least
     :data:`SPREAD_RATIO` of the reference's (as in :func:`spread_change`).  The
     event's verdict then waits."""
-    after = values[trip_len:]
-    n = after.shape[0]
-    if n < 3 or n >= SPREAD_WAIT or not b.sigma > 0.0:
+    after = values[max(0, trip_len - SPREAD_LEAD):]
+    n = values.shape[0] - trip_len
+    if n < 1 or n >= SPREAD_WAIT or after.shape[0] < 4 or not b.sigma > 0.0:
         return False
-    before = _shape_ref(values[:trip_len], b)
+    before = _shape_ref(values[:max(0, trip_len - SPREAD_LEAD)], b)
     ref, _, cap, _, _ = _reference(_NONE if before is None else before, b.sigma, b.phi, 1)
     return float(np.minimum(np.abs(np.diff(after)), cap).mean()) >= SPREAD_RATIO * ref
 
 
 def event_spread(values: FloatArray, trip_len: int, b: Baseline, p_value: float) -> Spread | None:
     """:func:`spread_change` of an open event's samples after the detection (the window's
-    first ``trip_len`` samples are before it) against the baseline ``b``.  The moving
-    ranges hardly move with a step in level (one of them takes it), so the fitted
-    split is not asked."""
-    return spread_change(values[trip_len:], b.sigma, b.phi, b.n, SPREAD_P_SHARE * p_value,
-                         _shape_ref(values[:trip_len], b))
+    first ``trip_len`` samples are before it) and the :data:`SPREAD_LEAD` before it,
+    against the baseline ``b``.  The moving ranges hardly move with a step in level
+    (one of them takes it), so neither the fitted split nor the step's start is asked;
+    the samples that led to the detection are as wide as the event's when the spread
+    grew (without them a twofold spread change was dismissed again and again, each
+    event decided on a dozen samples)."""
+    lead = max(0, trip_len - SPREAD_LEAD)
+    return spread_change(values[lead:], b.sigma, b.phi, b.n, SPREAD_P_SHARE * p_value,
+                         _shape_ref(values[:lead], b))
 
 
 def _shape_ref(before: FloatArray, b: Baseline) -> FloatArray | None:
