@@ -234,6 +234,25 @@ def _spread_text(rec: AlertRecord, unit: str) -> str:
             f"{human_number(s_after, 3)}{unit})")
 
 
+#: What a table (status page, replay report) shows in place of a step's size in sigmas when
+#: the record's last readings repeat one value (``repeated_value``): a stuck sensor is possible.
+REPEATS = "one value repeated"
+
+
+def fault_text(repeated_value: float | None, spread_ratio: float | None) -> str | None:
+    """What a table shows in place of a step's size in sigmas for a record that names a
+    sensor fault (core/sensorcheck.py), or None for a record that names none.
+
+    >>> fault_text(0.0, None), fault_text(None, 2.24), fault_text(None, None)
+    ('one value repeated', 'spread x2.2', None)
+    """
+    if repeated_value is not None:
+        return REPEATS
+    if spread_ratio is not None:
+        return f"spread x{spread_ratio:.2g}"
+    return None
+
+
 #: What a summary says in place of a step's size in sigmas when the readings had no noise
 #: (sigma 0: the size in sigmas is infinite, ``null`` in the record's ``delta_sigma``).
 NO_NOISE = "no noise to measure it in sigmas"
