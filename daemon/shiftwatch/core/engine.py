@@ -2617,14 +2617,18 @@ class StreamEngine:
                      as_of: float) -> bool:
         """End the event ``undecided`` when its samples show the noise's spread grew, unless
         the trial says "step" and the step stands at the new spread; the stream watches
-        on at the new sigma.  A "step" while the spread looks wider but is not yet clear waits, the
-        trial going on (core/sensorcheck.py).  False (nothing done) otherwise."""
+        on at the new sigma.  A verdict while the spread looks wider but is not yet clear
+        waits, the trial going on, unless the step stands even at that spread
+        (core/sensorcheck.py).  False (nothing done) otherwise."""
         assert self._fitter is not None
         vals = self._fitter.values
         spread = _sensorcheck.event_spread(vals, ev.trip_len, b, self.settings.confirm_p_value)
         waits = outcome in (STEP, NO_STEP)
+        vf = _variance_factor(b.phi)
         if spread is None:
-            if waits and _sensorcheck.spread_unclear(vals, ev.trip_len, b):
+            unclear = _sensorcheck.spread_unclear(vals, ev.trip_len, b) if waits else None
+            if unclear is not None and not _sensorcheck.step_stands(self._event_fit(ev, b, fit), b.sigma, unclear,
+                                                                    vf, self.settings.confirm_p_value):
                 ev.trial.reopen()
                 return True
             return False
@@ -2633,8 +2637,7 @@ class StreamEngine:
             return True
         shown = self._event_fit(ev, b, fit)
         if (outcome == STEP and not self._conflicts(shown, ev.trial.sign, b)
-                and _sensorcheck.step_stands(shown, b.sigma, spread, _variance_factor(b.phi),
-                                             self.settings.confirm_p_value)):
+                and _sensorcheck.step_stands(shown, b.sigma, spread, vf, self.settings.confirm_p_value)):
             return False  # a step that stands at the new spread too: decided as ever, the spread named
         self._end_event(ev, "undecided", shown, result, as_of)
         self._baseline = replace(b, sigma=b.sigma * spread.ratio, innovation_sigma=b.innovation_sigma * spread.ratio)

@@ -69,6 +69,12 @@ SPREAD_RATIO = 1.5
 SPREAD_P_SHARE = 0.1
 #: The samples before the detection that the spread of an event's samples is measured on too.
 SPREAD_LEAD = 10
+#: A verdict waits while the spread of an event's samples is at least this many times the
+#: reference's but not yet clear (below SPREAD_RATIO: the few samples' ratio wanders).
+SPREAD_UNCLEAR = 1.25
+#: While the spread is unclear, a verdict waits unless the step stands at this many times
+#: the reference's spread (a burst of three wild readings, 27 sigma, need not wait).
+SPREAD_UNCLEAR_STAND = 3.0
 #: The fewest samples a spread change is judged on.
 SPREAD_MIN = 10
 #: Until this many samples after the detection, a verdict waits while the spread looks wider.
@@ -218,7 +224,7 @@ def spread_change(after: FloatArray, sigma: float, phi: float, n_ref: int, p_val
     if after.shape[0] < SPREAD_MIN or not sigma > 0.0:
         return None
     ref, ref_var, cap, plain, r = _reference(_NONE if before is None else before, sigma, phi, n_ref)
-    mr = np.abs(np.diff(after))
+    mr = _moving_ranges(after)
     capped = np.minimum(mr, cap)
     ma, va, na = float(capped.mean()), float(capped.var(ddof=1)), capped.shape[0]
     if ma < SPREAD_RATIO * ref:
@@ -231,19 +237,32 @@ def spread_change(after: FloatArray, sigma: float, phi: float, n_ref: int, p_val
     return Spread(float(np.median(mr)) / plain if plain > 0.0 else ma / ref, z)
 
 
-def spread_unclear(values: FloatArray, trip_len: int, b: Baseline) -> bool:
-    """Whether the spread of an open event's samples after its detection (``values`` past
-    the first ``trip_len``) may have grown but cannot be told yet: fewer than
-    :data:`SPREAD_WAIT` of them, their capped mean moving range at least
-    :data:`SPREAD_RATIO` of the reference's (as in :func:`spread_change`).  The
-    event's verdict then waits."""
-    after = values[max(0, trip_len - SPREAD_LEAD):]
+def spread_unclear(values: FloatArray, trip_len: int, b: Baseline) -> Spread | None:
+    """Whether the spread of an open event's samples (``values`` past the first
+    ``trip_len``, and the :data:`SPREAD_LEAD` before) may have grown but cannot be told
+    yet: fewer than :data:`SPREAD_WAIT` samples after the detection, their capped mean
+    moving range at least :data:`SPREAD_UNCLEAR` of the reference's (as in
+    :func:`spread_change`).  Then the spread a step must stand at not to wait: the ratio
+    of those means, at least :data:`SPREAD_UNCLEAR_STAND` (a dozen samples of a threefold
+    spread read as 1.5 and wander like a 4-sigma step); else None."""
+    lead = max(0, trip_len - SPREAD_LEAD)
+    after = values[lead:]
     n = values.shape[0] - trip_len
     if n < 1 or n >= SPREAD_WAIT or after.shape[0] < 4 or not b.sigma > 0.0:
-        return False
-    before = _shape_ref(values[:max(0, trip_len - SPREAD_LEAD)], b)
+        return None
+    before = _shape_ref(values[:lead], b)
     ref, _, cap, _, _ = _reference(_NONE if before is None else before, b.sigma, b.phi, 1)
-    return float(np.minimum(np.abs(np.diff(after)), cap).mean()) >= SPREAD_RATIO * ref
+    ratio = float(np.minimum(_moving_ranges(after), cap).mean()) / ref
+    return Spread(max(ratio, SPREAD_UNCLEAR_STAND), 0.0) if ratio >= SPREAD_UNCLEAR else None
+
+
+def _moving_ranges(x: FloatArray) -> FloatArray:
+    """The moving ranges of ``x`` less the largest one: a step in level makes one wide
+    moving range, which on a dozen samples would read as a wider spread."""
+    mr = np.abs(np.diff(x))
+    if mr.shape[0] > 2:
+        mr = np.delete(mr, int(np.argmax(mr)))
+    return mr
 
 
 def event_spread(values: FloatArray, trip_len: int, b: Baseline, p_value: float) -> Spread | None:
