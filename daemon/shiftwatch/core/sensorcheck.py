@@ -22,17 +22,18 @@ A spread change (:func:`spread_change`)
     to end ``confirmed`` or ``returned`` at about one (old) sigma.  The spread of an
     event's samples after its detection is measured by their moving ranges
     ``|x[i] - x[i-1]|`` (the spread estimate of Shewhart's individuals chart, common
-    practice), which a step in level moves in one place only, so the fitted split
-    need not be right.  Their mean is compared with the baseline's (that of normal
+    practice), which a step in level moves in one place only (the largest is left
+    out), so the fitted split need not be right.  Their mean is compared with the baseline's (that of normal
     AR(1) noise of the baseline's sigma and phi; on a heavy-tailed stream, the
     window's own moving ranges where larger) by Welch's z, at a tenth of
     ``confirm_p_value`` and a ratio of at least :data:`SPREAD_RATIO`.  When the
     spread grew, :func:`step_stands` asks whether the fitted step still shows with
-    its side after the split at the new spread; where it does not, the engine ends
+    both its sides at the new spread; where it does not, the engine ends
     the event ``undecided``, names the spread (``spread_ratio``, ``sigma_after``)
     and watches on at the new sigma, so the wider noise is not detected again and
     again.  A trial's verdict waits (up to :data:`SPREAD_WAIT` samples) while the
-    spread looks wider but cannot be told yet (:func:`spread_unclear`), and an event
+    spread looks wider but cannot be told yet (:func:`spread_unclear`), unless the
+    step would stand even at :data:`SPREAD_UNCLEAR_STAND` times the spread, and an event
     whose spread grew ends no sooner than :data:`SPREAD_SETTLE` samples after its
     detection, so the new sigma rests on that many.
 
@@ -70,8 +71,8 @@ SPREAD_P_SHARE = 0.1
 #: The samples before the detection that the spread of an event's samples is measured on too.
 SPREAD_LEAD = 10
 #: A verdict waits while the spread of an event's samples is at least this many times the
-#: reference's but not yet clear (below SPREAD_RATIO: the few samples' ratio wanders).
-SPREAD_UNCLEAR = 1.25
+#: reference's but not yet clear (at 1.25, real steps waited by chance: DEVELOPERS.md).
+SPREAD_UNCLEAR = 1.5
 #: While the spread is unclear, a verdict waits unless the step stands at this many times
 #: the reference's spread (a burst of three wild readings, 27 sigma, need not wait).
 SPREAD_UNCLEAR_STAND = 3.0
@@ -300,10 +301,12 @@ def step_at_spread(delta: float, n_before: int, n_after: int, sigma_before: floa
 
 
 def step_stands(fit: StepFit, sigma: float, spread: Spread, variance_factor: float, p_value: float) -> bool:
-    """Whether ``fit``'s step shows at ``p_value`` with its side after the split at the new
-    spread (``sigma`` times the spread's ratio): :func:`step_at_spread` against the sup-F's
+    """Whether ``fit``'s step shows at ``p_value`` with both its sides at the new spread
+    (``sigma`` times the spread's ratio; the fit's window may hold wider readings before
+    the split too, after an earlier event): :func:`step_at_spread` against the sup-F's
     distribution at the fit's trimming (the split was chosen, as in the fit's own p)."""
-    z2 = step_at_spread(fit.delta, fit.n_before, fit.n_after, sigma, sigma * spread.ratio, variance_factor)
+    wide = sigma * spread.ratio
+    z2 = step_at_spread(fit.delta, fit.n_before, fit.n_after, wide, wide, variance_factor)
     return supf_pvalue(z2, fit.pi0) < p_value
 
 
