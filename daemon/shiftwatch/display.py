@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import functools
 import math
+from dataclasses import replace
 from datetime import UTC, datetime, tzinfo
 from zoneinfo import ZoneInfo
 
@@ -154,6 +155,12 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
     'PLANNED filler 7 stepped up 1.8 g (2.1 sigma) at 06:23:12Z, inside planned window 5277bb177513: no alarm, watching on from the new level: 500.03 -> 501.83 g'
     >>> alert_summary(rec)[:60]
     'CONFIRMED plant/line2/filler/head7/fill stepped up 1.8 g (2.'
+    >>> alert_summary(replace(rec, level_after=0.0, delta=-500.03, direction="down", repeated_value=0.0,
+    ...                       repeated_count=60, repeated_of=60), "filler 7")
+    'CONFIRMED filler 7: 60 of the last 60 readings are one value, 0 g: a stuck sensor is possible; the level read 500.03 -> 0 g from 06:23:12Z, detected 9 s later'
+    >>> alert_summary(replace(rec, phase="undecided", level_after=500.33, delta=0.3, spread_ratio=3.0,
+    ...                       sigma_after=1.8), "filler 7")
+    "UNDECIDED filler 7: the noise's spread grew 3 times (sigma 0.6 -> 1.8 g) after the detection at 06:23:21Z, with no clear step in level (500.03 -> 500.33 g): a loose sensor or a worn part is possible; watching on at the new spread"
     """
     unit = f" {rec.unit}" if rec.unit else ""
     who = label or rec.stream
@@ -165,6 +172,15 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
     if rec.gap_from is not None:  # a step across a pause in the readings: say it may lie in the pause
         at += (f" (the first reading after {format_duration(rec.shift_at_low - rec.gap_from)} without "
                f"readings, since {clock(rec.gap_from, tz, today=ref)})")
+    if rec.repeated_value is not None:  # a stuck sensor is possible: no size in sigmas
+        return _stuck_summary(rec, verb, who, at, before, after, unit, tz, ref)
+    if rec.spread_ratio is not None:
+        if rec.phase == "undecided":
+            return (f"{verb} {who}: {_spread_text(rec, unit)} after the detection at "
+                    f"{clock(rec.detected_at, tz, today=ref)}, with no clear step in level ({before} -> "
+                    f"{after}{unit}): a loose sensor or a worn part is possible; watching on at the new spread")
+        return (f"{alert_summary(replace(rec, spread_ratio=None), label, tz, today=today)}; "
+                f"{_spread_text(rec, unit).replace(' spread grew', ' spread also grew')}")
     if rec.phase == "dismissed":
         return (f"{verb} {who}: no lasting step found after the detection at "
                 f"{clock(rec.detected_at, tz, today=ref)}; the level stays "
@@ -187,6 +203,54 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
     return (f"{verb} {who} stepped {rec.direction} {abs(rec.delta):.3g}{unit} "
             f"({sigmas_text(rec.delta_sigma)}) at {at}, detected "
             f"{_lag_text(rec.detected_at - rec.shift_at)} later: {before} -> {after}{unit}")
+
+
+def _stuck_summary(rec: AlertRecord, verb: str, who: str, at: str, before: str, after: str, unit: str,
+                   tz: str, ref: float) -> str:
+    """The summary of a record whose last readings repeat one value (``repeated_value``):
+    it says so, and that a stuck sensor is possible, with no size in sigmas (the noise
+    they measure is gone)."""
+    same = (f"{rec.repeated_count} of the last {rec.repeated_of} readings are one value, "
+            f"{human_number(rec.repeated_value or 0.0, 6)}{unit}")
+    detected = clock(rec.detected_at, tz, today=ref)
+    if rec.phase == "dismissed":
+        return (f"{verb} {who}: no lasting step found after the detection at {detected}; {same}: a stuck "
+                f"sensor is possible (any follow-up is for the site's procedures)")
+    if rec.phase == "undecided":
+        return (f"{verb} {who}: {same}: a stuck sensor is possible; the step detected at {detected} is "
+                f"still uncertain ({before} -> {after}{unit}); watching on from the current level")
+    if rec.phase == "planned":
+        return (f"{verb} {who}: {same}: a stuck sensor is possible; inside planned window {rec.plan_id}: "
+                f"no alarm; the level read {before} -> {after}{unit} from {at}")
+    return (f"{verb} {who}: {same}: a stuck sensor is possible; the level read {before} -> {after}{unit} "
+            f"from {at}, detected {_lag_text(rec.detected_at - rec.shift_at)} later")
+
+
+def _spread_text(rec: AlertRecord, unit: str) -> str:
+    """``the noise's spread grew 3 times (sigma 0.6 -> 1.8 g)``, of a record with ``spread_ratio``."""
+    ratio = rec.spread_ratio or 1.0
+    s_after = rec.sigma_after if rec.sigma_after is not None else math.nan
+    return (f"the noise's spread grew {ratio:.2g} times (sigma {human_number(s_after / ratio, 3)} -> "
+            f"{human_number(s_after, 3)}{unit})")
+
+
+#: What a table (status page, replay report) shows in place of a step's size in sigmas when
+#: the record's last readings repeat one value (``repeated_value``): a stuck sensor is possible.
+REPEATS = "one value repeated"
+
+
+def fault_text(repeated_value: float | None, spread_ratio: float | None) -> str | None:
+    """What a table shows in place of a step's size in sigmas for a record that names a
+    sensor fault (core/sensorcheck.py), or None for a record that names none.
+
+    >>> fault_text(0.0, None), fault_text(None, 2.24), fault_text(None, None)
+    ('one value repeated', 'spread x2.2', None)
+    """
+    if repeated_value is not None:
+        return REPEATS
+    if spread_ratio is not None:
+        return f"spread x{spread_ratio:.2g}"
+    return None
 
 
 #: What a summary says in place of a step's size in sigmas when the readings had no noise

@@ -50,7 +50,7 @@ from numpy.typing import NDArray
 from shiftwatch import __version__
 from shiftwatch.core.engine import ADVISORY, AlertRecord, BatchResult
 from shiftwatch.core.timefmt import format_duration
-from shiftwatch.display import NO_NOISE, sigmas_text, stamp, zone, zone_label
+from shiftwatch.display import NO_NOISE, fault_text, sigmas_text, stamp, zone, zone_label
 
 if TYPE_CHECKING:
     from pathlib import Path
@@ -730,7 +730,8 @@ def stream_figure(trace: StreamTrace) -> Figure:
             pad = 0.08 * (float(zv.max() - zv.min()) or 1.0)
             ax.set_ylim(float(zv.min()) - pad, float(zv.max()) + pad)
         r = ev.final
-        ax.set_title(f"event {ev.number}: {ev.outcome}, {r.direction} {sigmas_text(r.delta_sigma)}",
+        size = fault_text(r.repeated_value, r.spread_ratio) or sigmas_text(r.delta_sigma)
+        ax.set_title(f"event {ev.number}: {ev.outcome}, {r.direction} {size}",
                      loc="left", fontsize=9, **LITERAL)
         _date_axis(ax, trace.time_zone, label=False)
         ax.tick_params(labelsize=7)
@@ -1025,13 +1026,21 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
                 f"<td>{_interval_text(r, time_zone)}</td>"
                 f'<td class="n">{r.delta:+.4g}{_e(unit)}</td>'
                 f'<td class="n" data-sigma="{r.delta_sigma:.3f}">'
-                f'{f"{r.delta_sigma:+.2f}" if math.isfinite(r.delta_sigma) else NO_NOISE}</td>'
+                f'{_sigma_cell(r)}</td>'
                 f"<td>{stamp(r.detected_at, time_zone)}</td>"
                 f'<td class="n" data-delay="{ev.delay:.3f}">{_signed_duration(ev.delay)}</td>'
                 f'<td class="n">{r.p_value:.2g}</td></tr>\n')
         out.append("</tbody>\n")
     out.append("</table>\n")
     return "".join(out)
+
+
+def _sigma_cell(r: AlertRecord) -> str:
+    """The events table's size in sigmas, or the sensor fault the record names in its place."""
+    fault = fault_text(r.repeated_value, r.spread_ratio)
+    if fault is not None:
+        return _e(fault)
+    return f"{r.delta_sigma:+.2f}" if math.isfinite(r.delta_sigma) else NO_NOISE
 
 
 def _how_to_read() -> str:

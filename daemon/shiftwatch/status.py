@@ -37,7 +37,7 @@ from urllib.parse import parse_qs
 
 from shiftwatch.core.engine import ADVISORY, EVENT_OPEN, AlertRecord
 from shiftwatch.core.timefmt import format_time
-from shiftwatch.display import clock, human_number, sigmas_text, zone_label
+from shiftwatch.display import clock, fault_text, human_number, sigmas_text, zone_label
 
 if TYPE_CHECKING:
     from shiftwatch.metrics import StreamStats
@@ -97,12 +97,15 @@ class EventSummary:
     delta_sigma: float
     direction: str
     recorded_at: float
+    #: the record's sensor-fault fields (core/sensorcheck.py), None when it names none
+    repeated_value: float | None = None
+    spread_ratio: float | None = None
 
     @classmethod
     def of(cls, rec: AlertRecord, recorded_at: float) -> EventSummary:
         return cls(rec.id, rec.phase, rec.detected_at, rec.shift_at, rec.shift_at_low,
                    rec.shift_at_high, rec.as_of, rec.level_before, rec.level_after, rec.delta,
-                   rec.delta_sigma, rec.direction, recorded_at)
+                   rec.delta_sigma, rec.direction, recorded_at, rec.repeated_value, rec.spread_ratio)
 
 
 @dataclass(frozen=True, slots=True)
@@ -165,6 +168,8 @@ class StreamStatus:
                 "level_before": _num(ev.level_before), "level_after": _num(ev.level_after),
                 "delta": _num(ev.delta), "delta_sigma": round(ev.delta_sigma, 3) if math.isfinite(ev.delta_sigma) else None,
                 "direction": ev.direction, "recorded_at": format_time(ev.recorded_at),
+                "repeated_value": ev.repeated_value,
+                "spread_ratio": None if ev.spread_ratio is None else round(ev.spread_ratio, 2),
                 "when_text": clock(ev.shift_at if ev.phase != "dismissed" else ev.detected_at, tz,
                                    today=now),
                 "size_text": _size_text(ev, self.unit),
@@ -236,10 +241,15 @@ def _with_unit(text: str, unit: str | None) -> str:
 
 
 def _size_text(ev: EventSummary, unit: str | None) -> str:
-    """The size of an event's step in units and sigmas, e.g. ``+1.8 g (+2.1 sigma)``."""
+    """The size of an event's step in units and sigmas, e.g. ``+1.8 g (+2.1 sigma)``; for a
+    record that names a sensor fault the fault in place of the sigmas (``-500 g (one value
+    repeated)``, ``+0.3 g (spread x2.2)``: a stuck sensor's readings have no noise to
+    measure a step in, and a spread change's step is measured in the old noise)."""
+    fault = fault_text(ev.repeated_value, ev.spread_ratio)
     if ev.phase == "dismissed":
-        return "no lasting step"
-    return (f"{ev.delta:+.3g}{' ' + unit if unit else ''} ({sigmas_text(ev.delta_sigma, signed=True)})")
+        return "no lasting step" if fault is None else f"no lasting step ({fault})"
+    return (f"{ev.delta:+.3g}{' ' + unit if unit else ''} "
+            f"({sigmas_text(ev.delta_sigma, signed=True) if fault is None else fault})")
 
 
 class StatusBoard:

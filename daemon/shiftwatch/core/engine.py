@@ -48,6 +48,7 @@ from numpy.typing import NDArray
 
 from shiftwatch.core import baseline as _baseline
 from shiftwatch.core import selfstart as _selfstart
+from shiftwatch.core import sensorcheck as _sensorcheck
 from shiftwatch.core.baseline import (
     _BOUNDS,
     HEAVY_TAIL_CLIP,
@@ -149,6 +150,15 @@ class AlertRecord:
     #: the time of the last reading before ``shift_at_low`` when the readings paused there
     #: for more than GAP_FACTOR of their usual intervals: the step came at some moment after it
     gap_from: float | None = None
+    #: the one value the record's last ``repeated_of`` readings (nearly) all repeat, and how
+    #: many of them hold it: a stuck sensor is possible (core/sensorcheck.py)
+    repeated_value: float | None = None
+    repeated_count: int | None = None
+    repeated_of: int | None = None
+    #: the noise's spread over the event's samples against before them, and the sigma it
+    #: means, when it grew (core/sensorcheck.py)
+    spread_ratio: float | None = None
+    sigma_after: float | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON form: contract fields first, then the extras."""
@@ -189,6 +199,7 @@ class AlertRecord:
             d["plan_id"] = self.plan_id
         if self.gap_from is not None:
             d["gap_from"] = format_time(self.gap_from)
+        d.update(_sensorcheck.record_fields(self))
         return d
 
 
@@ -2509,6 +2520,8 @@ class StreamEngine:
         b = self._baseline
         assert ev is not None and b is not None and self._fitter is not None
         fit = self._fit(b)
+        if self._spread_ends(ev, fit, b, outcome, result, as_of):
+            return
         late = fit.index >= ev.trip_len
         p = self._fit_p_value(fit, b)
         young = b.n < self.settings.window_samples
@@ -2599,6 +2612,37 @@ class StreamEngine:
         else:
             self._end_event(ev, "undecided", shown, result, as_of)
         self._reanchor(fit.index)
+
+    def _spread_ends(self, ev: OpenEvent, fit: StepFit, b: Baseline, outcome: str, result: BatchResult,
+                     as_of: float) -> bool:
+        """End the event ``undecided`` when its samples show the noise's spread grew, unless
+        the trial says "step" and the step stands at the new spread; the stream watches
+        on at the new sigma.  A verdict while the spread looks wider but is not yet clear
+        waits, the trial going on, unless the step stands even at that spread
+        (core/sensorcheck.py).  False (nothing done) otherwise."""
+        assert self._fitter is not None
+        vals = self._fitter.values
+        spread = _sensorcheck.event_spread(vals, ev.trip_len, b, self.settings.confirm_p_value)
+        waits = outcome in (STEP, NO_STEP)
+        vf = _variance_factor(b.phi)
+        if spread is None:
+            unclear = _sensorcheck.spread_unclear(vals, ev.trip_len, b) if waits else None
+            if unclear is not None and not _sensorcheck.step_stands(self._event_fit(ev, b, fit), b.sigma, unclear,
+                                                                    vf, self.settings.confirm_p_value):
+                ev.trial.reopen()
+                return True
+            return False
+        if waits and len(vals) - ev.trip_len < _sensorcheck.SPREAD_SETTLE:
+            ev.trial.reopen()  # enough samples to measure the new spread by
+            return True
+        shown = self._event_fit(ev, b, fit)
+        if (outcome == STEP and not self._conflicts(shown, ev.trial.sign, b)
+                and _sensorcheck.step_stands(shown, b.sigma, spread, vf, self.settings.confirm_p_value)):
+            return False  # a step that stands at the new spread too: decided as ever, the spread named
+        self._end_event(ev, "undecided", shown, result, as_of)
+        self._baseline = replace(b, sigma=b.sigma * spread.ratio, innovation_sigma=b.innovation_sigma * spread.ratio)
+        self._reanchor(fit.index)
+        return True
 
     def _conflicts(self, fit: StepFit, sign: int, b: Baseline) -> bool:
         """Whether ``fit`` contradicts a trial's "step" in direction ``sign``: a step
@@ -3026,6 +3070,8 @@ class StreamEngine:
             unit=self.unit,
             gap_from=self._gap_from(low),
             **extra,
+            **_sensorcheck.fit_fields(None if self._fitter is None else self._fitter.values, fit,
+                                      ev.trip_len, phase, self._baseline, self.settings.confirm_p_value),
         )
 
 

@@ -88,8 +88,16 @@ function overviewRow(s) {
   tr.appendChild(el("td", { class: "num size", "data-delta": ev ? ev.delta : null },
     ev && ev.phase !== "dismissed" ? signed(ev.delta) + (s.unit ? " " + s.unit : "") : ""));
   tr.appendChild(el("td", { class: "num sigmas", "data-sigma": ev ? ev.delta_sigma : null },
-    ev && ev.phase !== "dismissed" ? signed(ev.delta_sigma) : ""));
+    ev && ev.phase !== "dismissed" ? (fault(ev) || signed(ev.delta_sigma)) : ""));
   return tr;
+}
+
+// A record that names a sensor fault shows it in place of the size in sigmas (as
+// display.fault_text): a stuck sensor's readings, or a spread that grew.
+function fault(ev) {
+  if (ev.repeated_value !== null && ev.repeated_value !== undefined) return "one value repeated";
+  if (ev.spread_ratio !== null && ev.spread_ratio !== undefined) return "spread x" + Number(ev.spread_ratio).toPrecision(2);
+  return null;
 }
 
 function signed(x) {
