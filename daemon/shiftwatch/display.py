@@ -14,7 +14,7 @@ import math
 from datetime import UTC, datetime, tzinfo
 from zoneinfo import ZoneInfo
 
-from shiftwatch.core.engine import AlertRecord
+from shiftwatch.core.records import AlertRecord
 from shiftwatch.core.timefmt import format_duration
 
 UTC_NAMES = frozenset(("UTC", "Etc/UTC", "Z"))
