@@ -65,6 +65,8 @@ from shiftwatch.core.eventfit import _fit, _variance_factor, residual_phi_bound,
 from shiftwatch.core.events import LOOK, NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
 from shiftwatch.core.follow import (
     FOLLOW_MARGIN,
+    FOLLOW_RECENTER,
+    Follower,
     _follow_se,
     _follow_terms,
     follow_arl_factor,
@@ -283,7 +285,6 @@ TRIM_STRETCH = True
 #: of a guard or more): the same doubles.  False: the reference (tests/core/test_read_items.py
 #: holds the two to each other).
 READ_ITEMS = True
-_NO_TERMS = (math.nan, 0, 0, 0.0)  # StreamEngine._fterms before a stretch (NaN matches no phi)
 #: The young loop (StreamEngine._young_loop) tells whether its bank's statistic reaches the
 #: split screen's or the calm fraction of the threshold by comparing each sum, as the
 #: recursion sets it, with the least sum that reaches it (_four_terms), in place of the
@@ -295,12 +296,6 @@ YOUNG_LIMITS = True
 class _SplitCalled(Exception):
     """A split test noted by the young loop calls a step: the loop is run again."""
 
-#: Lone spikes are judged against the followed level as it stood at the last of these
-#: points (every FOLLOW_RECENTER watched samples, so the same samples are spikes however
-#: the stream is batched, and the level judged against is never more than that old:
-#: on a drift of 0.0004 sigma a sample, 1.6 sigma at most, against spike_sigma 5).  Each
-#: point ends a vectorised stretch: 1,024 halved a stream's throughput on history.
-FOLLOW_RECENTER = 4096
 #: A step is confirmed only while the fit of the event's samples shows it at this
 #: p-value (or ``confirm_p_value``, when larger): the trial alone confirmed wander of
 #: young autocorrelated streams.  0.001 lost more real steps on AR(1) 0.8 noise
@@ -365,15 +360,11 @@ class StreamEngine:
     # One engine per stream, thousands of them in the daemon: no per-instance dict.
     __slots__ = (
         "_baseline",
-        "_center",
         "_event",
         "_fitter",
-        "_follow",
-        "_follow_lag",
-        "_fterms",
+        "_follower",
         "_last_step",
         "_last_time",
-        "_next_center",
         "_next_refine",
         "_pending",
         "_prev_out",
@@ -426,12 +417,7 @@ class StreamEngine:
         self._test_n_ref = 0.0
         self._test_n_level = 0
         self._prev_r = 0.0
-        self._follow = 0.0  # offset of the followed level from the baseline's (see FOLLOW_SAMPLES)
-        self._follow_lag = 0  # newest kept samples in the window not yet fed to the follower
-        # phi and the window for which the follower's delay and rate were taken, and those two
-        self._fterms: tuple[float, int, int, float] = _NO_TERMS  # (shared until the first stretch)
-        self._center = 0.0  # the follower's offset that spikes are judged against (see FOLLOW_RECENTER)
-        self._next_center = FOLLOW_RECENTER  # value of _watch_kept at which _center is taken next
+        self._follower = Follower()  # the followed level's offset, lag and spike centre (follow.py)
         self._pending: tuple[float, float] | None = None  # held possible spike
         self._prev_out = 0  # direction in which the last kept sample was an outlier (0: it was not)
         self._event: OpenEvent | None = None
@@ -512,24 +498,25 @@ class StreamEngine:
         else:
             return None
         s = self.settings
-        room = min(self._next_refine, self._next_center) - self._watch_kept
+        fo = self._follower
+        room = min(self._next_refine, fo.next_center) - self._watch_kept
         delay = follow_delay(b.phi, s.window_samples)
-        if room < 2 or self._follow_lag > delay or len(ks) > CALM_MAX_CHARTS:
+        if room < 2 or fo.lag > delay or len(ks) > CALM_MAX_CHARTS:
             return None
         span = s.spike_sigma * b.sigma
         fs = follow_samples(b.phi)
         lam = 0.0 if math.isinf(fs) else 1.0 / fs
         if lam == 0.0:
-            offsets: tuple[float, ...] = (self._follow,)
+            offsets: tuple[float, ...] = (fo.offset,)
         else:
             # The next delay + 1 samples are measured against offsets the follower reaches
             # on samples the window holds now (see _follow_plan).
-            lag = self._follow_lag
+            lag = fo.lag
             w = self._window.values
-            path = follow_path(self._follow_input(w[len(w) - lag:], b), self._follow, lam)
+            path = follow_path(fo.input(w[len(w) - lag:], b.level, span), fo.offset, lam)
             offsets = tuple(path[np.maximum(0, lag + np.arange(delay + 1) - delay)].tolist())
         return CalmTerms(level=b.level, offsets=offsets, lam=lam, delay=delay if lam else 0,
-                         lo=b.level + self._center - span, hi=b.level + self._center + span,
+                         lo=b.level + fo.center - span, hi=b.level + fo.center + span,
                          inv=1.0 / b.innovation_sigma, phi=b.phi, prev_r=self._prev_r, clip=b.clip,
                          ks=tuple(ks), hs=tuple(hs), c_plus=tuple(cp), c_minus=tuple(cm), room=room,
                          last_time=self._last_time,
@@ -798,10 +785,7 @@ class StreamEngine:
         self._test = None
         self._design_test()
         self._prev_r = 0.0
-        self._follow = 0.0
-        self._follow_lag = 0
-        self._center = 0.0
-        self._next_center = FOLLOW_RECENTER
+        self._follower.restart()
         self._pending = None
         self._sums.reset()
         self._unfolded = 0  # the warm-up samples are in the baseline already
@@ -1710,10 +1694,7 @@ class StreamEngine:
         ys.release()
         self._baseline = replace(b, level=ys.mean, n_level=ys.level_n() if ys.level_n() < b.n else 0)
         self._prev_r = 0.0 if ys.last is None else ys.last - ys.mean
-        self._follow = 0.0
-        self._follow_lag = 0
-        self._center = 0.0
-        self._next_center = FOLLOW_RECENTER
+        self._follower.restart()
         self._sums.reset()
         self._unfolded = 0
         del self._unfolded_u[:]
@@ -1738,8 +1719,9 @@ class StreamEngine:
         # same sample however the stream is batched.
         # (After an event the count may already be past the refinement point:
         # then one sample is taken and the refinement follows at once.)
-        stop = min(self._next_refine, self._next_center)
-        kt, kx, spikes, used, osign, settled = self._split_spikes(t, x, idx, b.level + self._center, b.sigma,
+        fo = self._follower
+        stop = min(self._next_refine, fo.next_center)
+        kt, kx, spikes, used, osign, settled = self._split_spikes(t, x, idx, b.level + fo.center, b.sigma,
                                                          max(stop - self._watch_kept, 1), bounds)
         if kt.shape[0] == 0:
             result.rejected.extend(spikes)
@@ -1766,16 +1748,16 @@ class StreamEngine:
         if trip < 0:
             self._kept_all(spikes, osign, r, result)
             self._append(kt, kx, before)
-            self._follow = float(path[-1])
-            self._follow_lag += kx.shape[0] - feed
+            fo.offset = float(path[-1])
+            fo.lag += kx.shape[0] - feed
             self._count_watched(kt.shape[0])
             return used
         # The rest is fed to the event that opens now; the follower stands still
         # from the sample that tripped.
         t_trip = self._kept_to(trip, kt, spikes, osign, r, result)
-        fed = max(0, self._follow_lag + trip - follow_delay(b.phi, self.settings.window_samples))
-        self._follow = float(path[fed])
-        self._follow_lag += trip + 1 - fed
+        fed = max(0, fo.lag + trip - follow_delay(b.phi, self.settings.window_samples))
+        fo.offset = float(path[fed])
+        fo.lag += trip + 1 - fed
         self._append(kt[: trip + 1], kx[: trip + 1], before[: trip + 1])
         self._watch_kept += trip + 1
         self._open_event(t_trip, result, t_trip if settled is None else float(settled[trip]))
@@ -1812,9 +1794,10 @@ class StreamEngine:
         b = self._baseline
         test = self._test
         assert b is not None and test is not None
+        fo = self._follower
         span = self.settings.spike_sigma * b.sigma
-        hi, lo = b.level + self._center + span, b.level + self._center - span
-        f_hi, f_lo = self._center + span, self._center - span  # the follower's band (_follow_input)
+        hi, lo = b.level + fo.center + span, b.level + fo.center - span
+        f_hi, f_lo = fo.center + span, fo.center - span  # the follower's band (Follower.input)
         level, phi, clip = b.level, b.phi, b.clip
         inv = 1.0 / b.innovation_sigma
         lam = 1.0 / follow_samples(b.phi)
@@ -1825,11 +1808,11 @@ class StreamEngine:
             if xv > hi or xv < lo:
                 break
             w = self._window
-            while self._follow_lag > delay:  # the delay shrank (phi was refined): catch up first
-                fr = w.at(len(w) - self._follow_lag)[1] - level
-                self._follow = keep * self._follow + lam * (f_hi if fr > f_hi else (f_lo if fr < f_lo else fr))
-                self._follow_lag -= 1
-            u = self._follow
+            while fo.lag > delay:  # the delay shrank (phi was refined): catch up first
+                fr = w.at(len(w) - fo.lag)[1] - level
+                fo.offset = keep * fo.offset + lam * (f_hi if fr > f_hi else (f_lo if fr < f_lo else fr))
+                fo.lag -= 1
+            u = fo.offset
             r = xv - level - u
             z = (r - phi * self._prev_r if phi != 0.0 else r) * inv
             z = -clip if z < -clip else (clip if z > clip else z)
@@ -1838,16 +1821,16 @@ class StreamEngine:
             self._prev_r = r
             self._append_one(tv, xv, u)
             used += 1
-            self._follow_lag += 1
+            fo.lag += 1
             if tripped:
                 self._watch_kept += 1
                 self._open_event(tv, result, tv)
                 break
-            if self._follow_lag > delay:
-                fr = w.at(len(w) - self._follow_lag)[1] - level
-                self._follow = keep * u + lam * (f_hi if fr > f_hi else (f_lo if fr < f_lo else fr))
-                self._follow_lag -= 1
-            refine = self._watch_kept + 1 >= min(self._next_refine, self._next_center)
+            if fo.lag > delay:
+                fr = w.at(len(w) - fo.lag)[1] - level
+                fo.offset = keep * u + lam * (f_hi if fr > f_hi else (f_lo if fr < f_lo else fr))
+                fo.lag -= 1
+            refine = self._watch_kept + 1 >= min(self._next_refine, fo.next_center)
             self._count_watched(1)
             if refine:
                 break
@@ -1859,12 +1842,13 @@ class StreamEngine:
         newest FOLLOW_DELAY), its path over them (``u`` before the first and after each),
         and the offset each sample of the stretch is measured against."""
         m = kx.shape[0]
-        lag = self._follow_lag
+        fo = self._follower
+        lag = fo.lag
         if TRIM_STRETCH and LEAN_CALLS:
-            ft = self._fterms
+            ft = fo.terms
             if ft[0] != phi or ft[1] != self.settings.window_samples:  # (phi: refined now and then)
-                ft = self._fterms = (phi, self.settings.window_samples,
-                                     *_follow_terms(phi, self.settings.window_samples))
+                ft = fo.terms = (phi, self.settings.window_samples,
+                                 *_follow_terms(phi, self.settings.window_samples))
             delay, lam = ft[2], ft[3]
         elif LEAN_CALLS:
             delay, lam = _follow_terms(phi, self.settings.window_samples)
@@ -1872,7 +1856,7 @@ class StreamEngine:
             delay, lam = follow_delay(phi, self.settings.window_samples), 1.0 / follow_samples(phi)
         feed = max(0, lag + m - delay)
         if feed == 0:
-            return 0, np.array([self._follow]), np.full(m, self._follow)
+            return 0, np.array([fo.offset]), np.full(m, fo.offset)
         w = self._window
         from_window = min(lag, feed)
         if from_window == 0:
@@ -1884,7 +1868,7 @@ class StreamEngine:
             y = np.concatenate((w.values[len(w) - lag: len(w) - lag + from_window], kx[: feed - from_window]))
         b = self._baseline
         assert b is not None
-        path = follow_path(self._follow_input(y, b), self._follow, lam)
+        path = follow_path(fo.input(y, b.level, self.settings.spike_sigma * b.sigma), fo.offset, lam)
         # Sample i of the stretch is measured once max(0, lag + i - delay) samples are fed.
         k0 = max(0, delay - lag)
         if k0 == 0:
@@ -1901,9 +1885,9 @@ class StreamEngine:
             # Refine often while the baseline rests on few samples, then rarely.
             self._refine_block = min(2 * self._refine_block, REFINE_BLOCK_MAX)
             self._next_refine = self._watch_kept + self._refine_block
-        if self._watch_kept >= self._next_center:
-            self._center = self._follow
-            self._next_center = self._watch_kept + FOLLOW_RECENTER
+        fo = self._follower
+        if self._watch_kept >= fo.next_center:
+            fo.recenter(self._watch_kept)
 
     def _refine(self) -> None:
         """Merge the samples folded since the last refinement into the baseline.
@@ -1923,12 +1907,13 @@ class StreamEngine:
         # The sums were of the samples less the follower's offset: the refined level is
         # the baseline's part of the followed level, which stays where it was.
         off = math.isinf(follow_samples(nb.phi))
+        fo = self._follower
         if off:
             # Not followed (strongly autocorrelated noise): the refined level is the level
             # (from the followed one, so it does not jump when following stops).
             if not math.isinf(follow_samples(b.phi)):
-                self._baseline = nb = replace(nb, level=b.level + self._follow)
-            self._follow = self._center = 0.0
+                self._baseline = nb = replace(nb, level=b.level + fo.offset)
+            fo.clear()
             if self._unfolded_u and OFFSETS_IN_PLACE:  # in place, as in _keep_offsets
                 v = np.frombuffer(self._unfolded_u)
                 v[:] = 0.0
@@ -1937,8 +1922,7 @@ class StreamEngine:
                 self._unfolded_u = array("d", bytes(8 * len(self._unfolded_u)))
         else:
             shift = b.level - nb.level
-            self._follow += shift
-            self._center += shift
+            fo.shift(shift)
             if self._unfolded_u and OFFSETS_IN_PLACE:
                 # v + shift for each, in place (IEEE addition: the same doubles as in floats)
                 v = np.frombuffer(self._unfolded_u)
@@ -1979,7 +1963,7 @@ class StreamEngine:
         self._fitter = StepFitter(self._window.values[start:].copy(), self._window.times[start:].copy())
         # An open event measures from the baseline's level (see _track); the last
         # residual was from the followed level.
-        self._prev_r += self._follow
+        self._prev_r += self._follower.offset
         self._begin_event(detected_at, result, as_of, by_fit=by_fit, tripped=tripped)
 
     def _begin_event(self, detected_at: float, result: BatchResult, as_of: float,
@@ -2010,7 +1994,8 @@ class StreamEngine:
             # followed level.  A false trip comes most often when the follower happens
             # to lag, so the followed level is biased towards the trip exactly when an
             # event is open; the margin keeps the trial from confirming that lag.
-            level_before=(b.level + self._follow + sign * FOLLOW_MARGIN * b.sigma * _follow_se(b.phi)
+            level_before=(b.level + self._follower.offset
+                          + sign * FOLLOW_MARGIN * b.sigma * _follow_se(b.phi)
                           if b.level_n >= 2 * self.settings.window_samples else fit.level_before),
             level_after=fit.level_after,
             # On a provisional baseline (the first warm-up: level, sigma and phi from a
@@ -2170,7 +2155,7 @@ class StreamEngine:
             self._state = EVENT_OPEN
             if self._young is None:
                 # The samples since the first trip are not followed yet either.
-                self._follow_lag += len(self._fitter) - ev.trip_len
+                self._follower.lag += len(self._fitter) - ev.trip_len
             # The new event's record names what opened it, not the sequential test (whose
             # statistic was reset at the first trip and may be anywhere below its threshold):
             # the refit's sup-F against the F whose p-value is confirm_p_value, or else the
@@ -2311,33 +2296,15 @@ class StreamEngine:
         self.records_total = _tally(self.records_total, ("undecided",))
         return rec
 
-    def _follow_input(self, x: FloatArray, b: Baseline) -> FloatArray:
-        """What the follower is fed of samples ``x``: each less the baseline's level, held
-        within the spike band (``spike_sigma`` sigmas about the level plus the centre
-        spikes are judged against).  A sample beyond the band is kept only as part of a
-        run (a step's first samples, a burst of outliers); before, a burst of three
-        samples 100 sigma out moved the follower by 3 x 100 / 110 sigma once the
-        follower reached it, and the stream then detected the burst's "step" again and
-        again (30 events for three samples of 1e9 on a level of 20).  Inside the band,
-        where every sample of a calm stream lies, the floats are those of ``x - level``."""
-        span = self.settings.spike_sigma * b.sigma
-        r = x - b.level
-        _clip(r, self._center - span, self._center + span, out=r)
-        return r
-
     def _follow_catch_up(self, ev: OpenEvent, b: Baseline) -> None:
         """After an event that found no step: the level went on moving, if at all,
         slowly.  The follower catches up with the event's samples as if no event had
         been open (all but the newest FOLLOW_DELAY), and the watch goes on from it."""
         assert self._fitter is not None
-        vals = self._fitter.values
-        start = max(0, ev.trip_len - self._follow_lag)
-        end = max(start, vals.shape[0] - follow_delay(b.phi, self.settings.window_samples))
-        self._follow = float(follow_path(self._follow_input(vals[start:end], b), self._follow,
-                                         1.0 / follow_samples(b.phi))[-1])
-        self._follow_lag = vals.shape[0] - end
-        self._center = self._follow
-        self._prev_r -= self._follow
+        fo = self._follower
+        fo.catch_up(self._fitter.values, ev.trip_len, follow_delay(b.phi, self.settings.window_samples),
+                    1.0 / follow_samples(b.phi), b.level, self.settings.spike_sigma * b.sigma)
+        self._prev_r -= fo.offset
 
     def _event_fit(self, ev: OpenEvent, b: Baseline, fit: StepFit, end: int | None = None) -> StepFit:
         """The fit a final record carries: the detected step as the samples up to ``end``
@@ -2388,10 +2355,7 @@ class StreamEngine:
         self._unfolded = 0
         del self._unfolded_u[:]
         self._watch_kept = 0
-        self._follow = 0.0
-        self._follow_lag = 0
-        self._center = 0.0
-        self._next_center = FOLLOW_RECENTER
+        self._follower.restart()
         old = self._young
         if self._provisional:
             ys = SelfStart(None) if old is None else old.carry_over()
@@ -2427,7 +2391,7 @@ class StreamEngine:
         object per sample made and read again.
         """
         ev = self._event
-        win, fitter = self._window, self._fitter
+        win, fitter, fo = self._window, self._fitter, self._follower
         if arrays:
             times: Any = win.times.copy()
             values: Any = win.values.copy()
@@ -2455,10 +2419,10 @@ class StreamEngine:
                 "n_ref": self._test_n_ref, "n_level": self._test_n_level, "rules": DESIGN_RULES,
                 "state": self._test.get_state()},
             "prev_r": self._prev_r,
-            "follow": self._follow,
-            "follow_lag": self._follow_lag,
-            "center": self._center,
-            "next_center": self._next_center,
+            "follow": fo.offset,
+            "follow_lag": fo.lag,
+            "center": fo.center,
+            "next_center": fo.next_center,
             "pending": None if self._pending is None else list(self._pending),
             "prev_out": self._prev_out,
             "event": None if ev is None else ev.get_state(),
@@ -2539,7 +2503,8 @@ class StreamEngine:
             self._prev_r = _finite_number(state["prev_r"], "prev_r")
             field_name = "follow"
             # Snapshots before the follower have none: the level was the baseline's.
-            self._follow = _finite_number(state.get("follow", 0.0), "follow")
+            fo = self._follower
+            fo.offset = _finite_number(state.get("follow", 0.0), "follow")
             field_name = "pending"
             p = state["pending"]
             if p is not None:
@@ -2574,17 +2539,17 @@ class StreamEngine:
             self._next_refine = _count(state["next_refine"], "next_refine")
             self._refine_block = _count(state["refine_block"], "refine_block")
             field_name = "follow_lag"
-            self._follow_lag = _count(state.get("follow_lag", 0), "follow_lag")
+            fo.lag = _count(state.get("follow_lag", 0), "follow_lag")
             # Not yet followed: samples of the window, or of an open event (up to its trip).
             room = self._event.trip_len if self._event is not None else len(self._window)
-            if self._follow_lag > room or (self._follow_lag and self._young is not None):
-                raise ValueError(f"follow_lag: {self._follow_lag} samples not yet followed, but there "
+            if fo.lag > room or (fo.lag and self._young is not None):
+                raise ValueError(f"follow_lag: {fo.lag} samples not yet followed, but there "
                                  f"are {room}" + (" and the level is young" if self._young is not None else ""))
             field_name = "center"
-            self._center = _finite_number(state.get("center", self._follow), "center")
+            fo.center = _finite_number(state.get("center", fo.offset), "center")
             field_name = "next_center"
-            self._next_center = _count(state.get("next_center", self._watch_kept + FOLLOW_RECENTER),
-                                       "next_center")
+            fo.next_center = _count(state.get("next_center", self._watch_kept + FOLLOW_RECENTER),
+                                    "next_center")
             field_name = "last_time"
             lt = state["last_time"]
             self._last_time = -math.inf if lt is None else _finite_number(lt, "last_time")

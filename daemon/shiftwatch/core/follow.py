@@ -10,6 +10,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from shiftwatch.core import baseline as _baseline
+from shiftwatch.core.baseline import _clip
 
 FloatArray = NDArray[np.float64]
 
@@ -24,6 +25,12 @@ FOLLOW_SAMPLES = 110
 FOLLOW_DELAY = 40
 FOLLOW_DELAY_MAX = 300
 FOLLOW_PHI_MAX = 0.7
+#: Lone spikes are judged against the followed level as it stood at the last of these
+#: points (every FOLLOW_RECENTER watched samples, so the same samples are spikes however
+#: the stream is batched, and the level judged against is never more than that old:
+#: on a drift of 0.0004 sigma a sample, 1.6 sigma at most, against spike_sigma 5).  Each
+#: point ends a vectorised stretch: 1,024 halved a stream's throughput on history.
+FOLLOW_RECENTER = 4096
 #: Standard errors of the followed level by which an event's trial moves the level
 #: before the step against the event's direction (StreamEngine._begin_event).
 FOLLOW_MARGIN = 2.0
@@ -183,3 +190,86 @@ def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
         starts.append(u)
     out[1:] = (p * (np.array(starts)[:, None] + sums)).ravel()[:m]
     return out
+
+
+_NO_TERMS = (math.nan, 0, 0, 0.0)  # Follower.terms before a stretch (NaN matches no phi)
+
+
+class Follower:
+    """The follower of one stream's established level: the offset of the followed level
+    from the baseline's (:attr:`offset`), how many of the newest kept samples in the window
+    it has not been fed yet (:attr:`lag`, at most :func:`follow_delay`), the offset lone
+    spikes are judged against (:attr:`center`, taken every FOLLOW_RECENTER watched samples)
+    and the count of watched samples at which it is taken next (:attr:`next_center`), and
+    the delay and rate last looked up, with the phi and window they are for (:attr:`terms`).
+
+    The engine (StreamEngine) plans each watch stretch's path from these
+    (``_follow_plan``, ``_watch_small``), and saves and restores them as the fields
+    ``follow``, ``follow_lag``, ``center`` and ``next_center`` of its state.
+
+    >>> f = Follower()
+    >>> f.input(np.array([10.5, 30.0, 9.0]), 10.0, 2.0).tolist()
+    [0.5, 2.0, -1.0]
+    >>> f.catch_up(np.array([11.0, 11.0, 11.0, 11.0]), 0, 2, 0.5, 10.0, 2.0)
+    >>> f.offset, f.lag, f.center
+    (0.75, 2, 0.75)
+    """
+
+    # One per engine, thousands of them in the daemon: no per-instance dict.
+    __slots__ = ("center", "lag", "next_center", "offset", "terms")
+
+    def __init__(self) -> None:
+        self.offset = 0.0
+        self.lag = 0
+        self.terms: tuple[float, int, int, float] = _NO_TERMS  # (shared until the first stretch)
+        self.center = 0.0
+        self.next_center = FOLLOW_RECENTER
+
+    def restart(self) -> None:
+        """A new level (a baseline just set, a young level settled, a level re-anchored
+        after a step): nothing followed yet, spikes judged against the level itself."""
+        self.offset = 0.0
+        self.lag = 0
+        self.center = 0.0
+        self.next_center = FOLLOW_RECENTER
+
+    def clear(self) -> None:
+        """The level is no longer followed (its phi went past FOLLOW_PHI_MAX): no offset."""
+        self.offset = self.center = 0.0
+
+    def shift(self, by: float) -> None:
+        """The baseline's level moved by ``-by`` (a refinement): the followed level, and the
+        level spikes are judged against, stay where they were."""
+        self.offset += by
+        self.center += by
+
+    def recenter(self, watch_kept: int) -> None:
+        """Spikes are judged against the followed level as it stands now, until
+        FOLLOW_RECENTER more samples are watched (``watch_kept``: those watched so far)."""
+        self.center = self.offset
+        self.next_center = watch_kept + FOLLOW_RECENTER
+
+    def input(self, x: FloatArray, level: float, span: float) -> FloatArray:
+        """What the follower is fed of samples ``x``: each less the baseline's ``level``, held
+        within the spike band (``span``: ``spike_sigma`` sigmas, about the level plus the
+        centre spikes are judged against).  A sample beyond the band is kept only as part of a
+        run (a step's first samples, a burst of outliers); before, a burst of three
+        samples 100 sigma out moved the follower by 3 x 100 / 110 sigma once the
+        follower reached it, and the stream then detected the burst's "step" again and
+        again (30 events for three samples of 1e9 on a level of 20).  Inside the band,
+        where every sample of a calm stream lies, the floats are those of ``x - level``."""
+        r = x - level
+        _clip(r, self.center - span, self.center + span, out=r)
+        return r
+
+    def catch_up(self, values: FloatArray, trip_len: int, delay: int, lam: float, level: float,
+                 span: float) -> None:
+        """After an event that found no step: fed the event's samples ``values`` as if no
+        event had been open, those from the first it had not been fed (of the ``trip_len``
+        up to the trip) to all but the newest ``delay``, at the rate ``lam``; the centre
+        spikes are judged against taken there."""
+        start = max(0, trip_len - self.lag)
+        end = max(start, values.shape[0] - delay)
+        self.offset = float(follow_path(self.input(values[start:end], level, span), self.offset, lam)[-1])
+        self.lag = values.shape[0] - end
+        self.center = self.offset
