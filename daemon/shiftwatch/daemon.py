@@ -32,7 +32,8 @@ import numpy as np
 from shiftwatch import heap
 from shiftwatch.config import Config, ConfigError, StreamConfig, load_config, topic_matches
 from shiftwatch.core.calm import CalmPool
-from shiftwatch.core.engine import ADVISORY, AlertRecord, StreamEngine
+from shiftwatch.core.engine import StreamEngine
+from shiftwatch.core.records import ADVISORY, AlertRecord
 from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
 from shiftwatch.decode import REASONS as DECODE_REASONS
 from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, stream_name

@@ -27,7 +27,7 @@ import numpy as np
 
 from shiftwatch.broker import EmbeddedBroker, MosquittoBroker, find_mosquitto, free_port
 from shiftwatch.config import Config, parse_config
-from shiftwatch.core.engine import ADVISORY
+from shiftwatch.core.records import ADVISORY
 from shiftwatch.core.timefmt import format_time, parse_time
 from shiftwatch.daemon import Daemon
 from shiftwatch.display import clock, zone_label

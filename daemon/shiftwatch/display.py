@@ -15,7 +15,7 @@ from dataclasses import replace
 from datetime import UTC, datetime, tzinfo
 from zoneinfo import ZoneInfo
 
-from shiftwatch.core.engine import AlertRecord
+from shiftwatch.core.records import AlertRecord
 from shiftwatch.core.timefmt import format_duration
 
 UTC_NAMES = frozenset(("UTC", "Etc/UTC", "Z"))

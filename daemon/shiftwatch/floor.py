@@ -28,7 +28,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from shiftwatch.core.engine import ADVISORY, AlertRecord, StreamEngine
+from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.plans import (
     ACK,
     END,
@@ -41,6 +41,7 @@ from shiftwatch.core.plans import (
     StreamFloor,
     parse_command,
 )
+from shiftwatch.core.records import ADVISORY, AlertRecord
 from shiftwatch.core.timefmt import format_time
 from shiftwatch.fsutil import explain_os_error, fsync_dir
 from shiftwatch.metrics import FloorMetrics

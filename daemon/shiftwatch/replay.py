@@ -39,7 +39,8 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from numpy.typing import NDArray
 
-from shiftwatch.core.engine import EVENT_OPEN, AlertRecord, BatchResult, StreamEngine
+from shiftwatch.core.engine import EVENT_OPEN, StreamEngine
+from shiftwatch.core.records import AlertRecord, BatchResult
 from shiftwatch.core.screen import READING_REASONS, REASONS
 from shiftwatch.core.settings import DetectionSettings
 from shiftwatch.sources import (

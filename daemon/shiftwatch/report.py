@@ -48,7 +48,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from shiftwatch import __version__
-from shiftwatch.core.engine import ADVISORY, AlertRecord, BatchResult
+from shiftwatch.core.records import ADVISORY, AlertRecord, BatchResult
 from shiftwatch.core.timefmt import format_duration
 from shiftwatch.display import NO_NOISE, fault_text, sigmas_text, stamp, zone, zone_label
 

@@ -35,7 +35,8 @@ from importlib import resources
 from typing import TYPE_CHECKING, Any
 from urllib.parse import parse_qs
 
-from shiftwatch.core.engine import ADVISORY, EVENT_OPEN, AlertRecord
+from shiftwatch.core.engine import EVENT_OPEN
+from shiftwatch.core.records import ADVISORY, AlertRecord
 from shiftwatch.core.timefmt import format_time
 from shiftwatch.display import clock, fault_text, human_number, sigmas_text, zone_label
 

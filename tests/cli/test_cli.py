@@ -15,7 +15,8 @@ import numpy as np
 import pytest
 
 from shiftwatch.core.arl import cusum_arl
-from shiftwatch.core.engine import RECORD_FIELDS, StreamEngine
+from shiftwatch.core.engine import StreamEngine
+from shiftwatch.core.records import RECORD_FIELDS
 from shiftwatch.core.timefmt import format_time, parse_time
 from shiftwatch.display import alert_summary
 

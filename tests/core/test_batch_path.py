@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from shiftwatch.core import engine
+from shiftwatch.core import engine, follow
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.multicusum import MultiCusumTest
 from shiftwatch.core.screen import screen_samples
@@ -142,11 +142,11 @@ def test_follower_single_block_equals_its_loop() -> None:
     rng = np.random.default_rng(43)
     for _ in range(200):
         lam = 1.0 / float(rng.choice([60.0, 110.0, 250.0, 1000.0]))
-        block = max(16, min(engine._FOLLOW_BLOCK, int(4.0 / lam)))
+        block = max(16, min(follow._FOLLOW_BLOCK, int(4.0 / lam)))
         m = int(rng.integers(0, block + 1))
         r = rng.standard_normal(m) * float(rng.uniform(0.1, 3.0))
         u0 = float(rng.standard_normal())
-        got = engine.follow_path(r, u0, lam)
+        got = follow.follow_path(r, u0, lam)
         p = ((1.0 - lam) ** np.arange(1, block + 1, dtype=np.float64))[:m]  # as the engine keeps them
         want = np.concatenate(([u0], p * (u0 + lam * np.cumsum(r / p))))
         assert got.tobytes() == want.tobytes()
@@ -192,7 +192,7 @@ def test_windows_of_one_block_keep_their_own_samples() -> None:
     import collections
     import gc
 
-    from shiftwatch.core.engine import Window, _WindowStore
+    from shiftwatch.core.window import Window, _WindowStore
 
     rng = np.random.default_rng(41)
     keep = 37

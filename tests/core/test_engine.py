@@ -15,7 +15,8 @@ import math
 import numpy as np
 import pytest
 
-from shiftwatch.core.engine import RECORD_FIELDS, StreamEngine, event_id
+from shiftwatch.core.engine import StreamEngine
+from shiftwatch.core.records import RECORD_FIELDS, event_id
 from shiftwatch.core.settings import DetectionSettings
 
 T0 = 1_788_000_000.0  # 2026-08-29, an arbitrary epoch for the simulated line

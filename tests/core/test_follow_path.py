@@ -1,9 +1,9 @@
 """The follower's path with its blocks worked out together, against one block at a time.
 
-``engine.follow_path`` (the follower of slow change: ``u_i = (1 - lam) u_(i-1) + lam
+``follow.follow_path`` (the follower of slow change: ``u_i = (1 - lam) u_(i-1) + lam
 r_i``) works in blocks of about ``4 / lam`` samples.  Its long-stretch form computes
 every block's running sum in one array and carries only the offset from block to block
-in plain floats (``engine.FOLLOW_BLOCKS_TOGETHER``); the reference is the block-by-block
+in plain floats (``follow.FOLLOW_BLOCKS_TOGETHER``); the reference is the block-by-block
 loop (the flag off), and the outside reference for both is the recursion itself, sample
 by sample, to which they stay within a few units in the 14th digit.  The two forms must
 give the same floats bit for bit, directly and through the engine's records.
@@ -20,21 +20,22 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from shiftwatch.core import engine
-from shiftwatch.core.engine import StreamEngine, follow_path
+from shiftwatch.core import engine, follow
+from shiftwatch.core.engine import StreamEngine
+from shiftwatch.core.follow import follow_path
 
 T0 = 1_788_000_000.0
 
 
 def _both(r: np.ndarray, u0: float, lam: float) -> tuple[np.ndarray, np.ndarray]:
-    saved = engine.FOLLOW_BLOCKS_TOGETHER
+    saved = follow.FOLLOW_BLOCKS_TOGETHER
     try:
-        engine.FOLLOW_BLOCKS_TOGETHER = True
+        follow.FOLLOW_BLOCKS_TOGETHER = True
         fast = follow_path(r, u0, lam)
-        engine.FOLLOW_BLOCKS_TOGETHER = False
+        follow.FOLLOW_BLOCKS_TOGETHER = False
         ref = follow_path(r, u0, lam)
     finally:
-        engine.FOLLOW_BLOCKS_TOGETHER = saved
+        follow.FOLLOW_BLOCKS_TOGETHER = saved
     return fast, ref
 
 
@@ -67,8 +68,8 @@ def test_blocks_together_property(m: int, lam: float, u0: float, seed: int) -> N
 
 
 def _run(x: np.ndarray, together: bool) -> dict[str, Any]:
-    saved = engine.FOLLOW_BLOCKS_TOGETHER
-    engine.FOLLOW_BLOCKS_TOGETHER = together
+    saved = follow.FOLLOW_BLOCKS_TOGETHER
+    follow.FOLLOW_BLOCKS_TOGETHER = together
     try:
         eng = StreamEngine("brackenfield/dryer1/outlet")
         t = T0 + np.arange(float(x.shape[0]))
@@ -79,7 +80,7 @@ def _run(x: np.ndarray, together: bool) -> dict[str, Any]:
             states.append(json.dumps(eng.get_state(), sort_keys=True))
         return {"records": records, "states": states}
     finally:
-        engine.FOLLOW_BLOCKS_TOGETHER = saved
+        follow.FOLLOW_BLOCKS_TOGETHER = saved
 
 
 @pytest.mark.parametrize("kind", ["drift", "ar", "steps"])
@@ -97,3 +98,11 @@ def test_engine_records_are_the_same(kind: str) -> None:
             x[at:] += 2.5
     x[rng.integers(0, n, 20)] += 12.0
     assert _run(20.0 + x, True) == _run(20.0 + x, False)
+
+
+def test_the_switch_is_the_followers() -> None:
+    # On by default, and only where follow_path reads it: one set on engine.py (where it
+    # lived before follow.py) would switch nothing, and the tests above would compare a
+    # path with itself.
+    assert follow.FOLLOW_BLOCKS_TOGETHER is True
+    assert not hasattr(engine, "FOLLOW_BLOCKS_TOGETHER")

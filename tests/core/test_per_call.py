@@ -2,8 +2,8 @@
 
 An established stream's engine call costs some tens of microseconds whatever it
 carries (a JSON array of 260 samples is one call in the daemon; a replay's 4,096-sample
-batch is several watch stretches).  ``engine.LEAN_CALLS`` and
-``baseline.DIRECT_CALLS`` trim that work without touching the arithmetic: the clip
+batch is several watch stretches).  ``engine.LEAN_CALLS`` (with its share in
+``follow.LEAN_CALLS``) and ``baseline.DIRECT_CALLS`` trim that work without touching the arithmetic: the clip
 ufunc and np.dot's C function called directly (ndarray.clip and np.dot reach the same
 functions through a Python wrapper and a dispatcher), the follower's delay and rate
 looked up per phi, the unfolded offsets read through a view, the follower's one-block
@@ -29,8 +29,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from shiftwatch.core import baseline, engine
-from shiftwatch.core.engine import StreamEngine, follow_path
+from shiftwatch.core import baseline, engine, follow
+from shiftwatch.core.engine import StreamEngine
+from shiftwatch.core.follow import follow_path
 from shiftwatch.core.settings import DetectionSettings
 
 from . import batches
@@ -41,12 +42,12 @@ T0 = 1_788_000_000.0
 
 @contextmanager
 def _lean(on: bool) -> Iterator[None]:
-    saved = engine.LEAN_CALLS, baseline.DIRECT_CALLS
-    engine.LEAN_CALLS = baseline.DIRECT_CALLS = on
+    saved = engine.LEAN_CALLS, follow.LEAN_CALLS, baseline.DIRECT_CALLS
+    engine.LEAN_CALLS = follow.LEAN_CALLS = baseline.DIRECT_CALLS = on
     try:
         yield
     finally:
-        engine.LEAN_CALLS, baseline.DIRECT_CALLS = saved
+        engine.LEAN_CALLS, follow.LEAN_CALLS, baseline.DIRECT_CALLS = saved
 
 
 _run = functools.partial(batches.switched_run, _lean)  # (eng, t, x, a, cuts, on): everything said and kept
@@ -124,7 +125,7 @@ def test_baseline_sums_direct_calls_equal_the_reference() -> None:
 
 
 def test_the_switches_are_on() -> None:
-    assert engine.LEAN_CALLS is True and baseline.DIRECT_CALLS is True
+    assert engine.LEAN_CALLS is True and follow.LEAN_CALLS is True and baseline.DIRECT_CALLS is True
 
 
 def test_screen_gives_the_batch_extremes_it_took() -> None:

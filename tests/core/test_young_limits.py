@@ -3,7 +3,7 @@
 ``StreamEngine._young_loop`` asks, per sample, whether the bank's statistic (the largest
 ``C / h``) reaches the split screen's or the calm fraction of the threshold.  With
 ``engine.YOUNG_LIMITS`` it compares each sum, as the recursion sets it, with the least sum
-whose quotient reaches the fraction (``engine._least_reaching``); without, it divides (the
+whose quotient reaches the fraction (``young._least_reaching``); without, it divides (the
 reference).  These tests hold the two to each other bit for bit, and the limit itself to
 the division it stands for at and around the boundary.
 """
@@ -18,7 +18,7 @@ from hypothesis import given
 from hypothesis import settings as hsettings
 from hypothesis import strategies as st
 
-from shiftwatch.core import engine
+from shiftwatch.core import engine, young
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.settings import DetectionSettings
 
@@ -36,7 +36,7 @@ def _run(x: np.ndarray, cuts: list[int], settings: DetectionSettings, on: bool) 
        ulps=st.integers(-4, 4))
 @hsettings(max_examples=300, deadline=None)
 def test_the_least_reaching_sum_decides_as_the_division_does(h: float, frac: float, ulps: int) -> None:
-    lim = engine._least_reaching(h, frac)
+    lim = young._least_reaching(h, frac)
     assert lim / h >= frac
     assert not math.nextafter(lim, -math.inf) / h >= frac
     # Sums around the limit and around frac * h, each decided as the division decides.

@@ -65,7 +65,7 @@ FILLER = """\
 
 def test_json_log_lines_carry_time_stream_event_and_phase_and_the_caution_comes_first(
         daemon_factory, collector, publisher) -> None:
-    from shiftwatch.core.engine import ADVISORY
+    from shiftwatch.core.records import ADVISORY
 
     d = daemon_factory(FILLER, extra="display:\n  time_zone: Europe/Berlin\n")
     d.run_args = ["--log-format", "json"]

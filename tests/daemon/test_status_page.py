@@ -26,7 +26,8 @@ from urllib.parse import quote, urlsplit
 import numpy as np
 import pytest
 
-from shiftwatch.core.engine import ADVISORY, StreamEngine
+from shiftwatch.core.engine import StreamEngine
+from shiftwatch.core.records import ADVISORY
 from shiftwatch.metrics import Metrics, StreamStats
 from shiftwatch.status import STATUS_FIELDS, StatusBoard, format_table
 

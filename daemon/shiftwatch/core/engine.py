@@ -32,16 +32,14 @@ The engine moves through three states:
 
 from __future__ import annotations
 
-import functools
-import hashlib
 import math
 import operator
 from array import array
 from bisect import bisect_left
 from collections import Counter
-from collections.abc import Callable, Iterable, Sequence
-from dataclasses import dataclass, field, replace
-from typing import Any, ClassVar, NamedTuple, cast
+from collections.abc import Callable, Sequence
+from dataclasses import replace
+from typing import Any, cast
 
 import numpy as np
 from numpy.typing import NDArray
@@ -64,21 +62,52 @@ from shiftwatch.core.baseline import (
 from shiftwatch.core.calm import MAX_CHARTS as CALM_MAX_CHARTS
 from shiftwatch.core.calm import CalmTerms
 from shiftwatch.core.cusum import CusumTest
+from shiftwatch.core.eventfit import _fit, _variance_factor, residual_phi_bound, young_variance
 from shiftwatch.core.events import LOOK, NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
+from shiftwatch.core.follow import (
+    FOLLOW_MARGIN,
+    FOLLOW_RECENTER,
+    Follower,
+    _follow_se,
+    _follow_terms,
+    follow_arl_factor,
+    follow_delay,
+    follow_path,
+    follow_samples,
+)
 from shiftwatch.core.multicusum import MultiCusumTest
+from shiftwatch.core.records import (
+    _NO_COUNTS,
+    PLANNED,
+    AlertRecord,
+    BatchResult,
+    Rejection,
+    _tally,
+    event_id,
+)
+from shiftwatch.core.restore import (
+    _baseline_from,
+    _check_finite,
+    _count,
+    _finite_array,
+    _finite_number,
+    _positive,
+    _time_array,
+)
 from shiftwatch.core.screen import screen_samples
 from shiftwatch.core.selfstart import (
     SelfStart,
     SplitEvidence,
-    normal_to_t,
     split_critical_t,
     split_evidence,
     split_screen,
 )
 from shiftwatch.core.sequential import SequentialTest
 from shiftwatch.core.settings import ARL_RANGE, DetectionSettings
+from shiftwatch.core.spikes import backed_by_prev, lone_outliers, spike_confirmed, young_spike_limit
 from shiftwatch.core.stepfit import StepFit, StepFitter, anchor_step, supf_critical, supf_pvalue
-from shiftwatch.core.timefmt import TIME_MAX, TIME_MIN, format_time
+from shiftwatch.core.window import Window
+from shiftwatch.core.young import _four_terms, _small_bank, _young_fields, _young_from, _young_put
 
 FloatArray = NDArray[np.float64]
 
@@ -88,166 +117,6 @@ _NOT_NEW = frozenset(("duplicate_time", "out_of_order"))
 WARMING_UP = "warming_up"
 WATCHING = "watching"
 EVENT_OPEN = "event_open"
-
-#: The phases of an event's records: one ``detected``, then one of the others.
-PHASES = ("detected", "confirmed", "returned", "dismissed", "undecided", "planned")
-#: A step inside a planned window gets one record of this phase instead (see core/plans.py).
-PLANNED = "planned"
-
-#: Printed with every alert: shiftwatch advises, it does not protect.
-ADVISORY = (
-    "Advisory only: shiftwatch is not a safety function, a safety instrumented system or an "
-    "interlock, and must not start or stop equipment without the site's own safety review. "
-    "Site procedures, local codes and licensed practice come first."
-)
-
-#: Field order of the alert record (the JSON contract shared with the daemon).
-RECORD_FIELDS = (
-    "id", "phase", "stream", "detected_at", "shift_at", "shift_at_low", "shift_at_high",
-    "level_before", "level_after", "delta", "delta_sigma", "sigma", "n_before", "n_after",
-    "test", "statistic", "threshold",
-)
-
-
-@dataclass(frozen=True)
-class AlertRecord:
-    """One record of an event.  ``phase`` is one of :data:`PHASES`.
-
-    Times are epoch seconds here and RFC 3339 in :meth:`to_dict`.  ``as_of``
-    is the time of the sample that completed the record.
-    """
-
-    id: str
-    phase: str
-    stream: str
-    detected_at: float
-    shift_at: float
-    shift_at_low: float
-    shift_at_high: float
-    level_before: float
-    level_after: float
-    delta: float
-    delta_sigma: float
-    sigma: float
-    n_before: int
-    n_after: int
-    test: str
-    statistic: float
-    threshold: float
-    as_of: float
-    interval_level: float
-    level_before_se: float
-    level_after_se: float
-    f_stat: float
-    p_value: float
-    direction: str
-    unit: str | None = None
-    #: for a ``returned`` record: the event whose step the level went back from, and its start
-    excursion_id: str | None = None
-    excursion_start: float | None = None
-    #: for a ``planned`` record: the planned window the step fell in
-    plan_id: str | None = None
-    #: the time of the last reading before ``shift_at_low`` when the readings paused there
-    #: for more than GAP_FACTOR of their usual intervals: the step came at some moment after it
-    gap_from: float | None = None
-    #: the one value the record's last ``repeated_of`` readings (nearly) all repeat, and how
-    #: many of them hold it: a stuck sensor is possible (core/sensorcheck.py)
-    repeated_value: float | None = None
-    repeated_count: int | None = None
-    repeated_of: int | None = None
-    #: the noise's spread over the event's samples against before them, and the sigma it
-    #: means, when it grew (core/sensorcheck.py)
-    spread_ratio: float | None = None
-    sigma_after: float | None = None
-
-    def to_dict(self) -> dict[str, Any]:
-        """The JSON form: contract fields first, then the extras."""
-        d: dict[str, Any] = {
-            "id": self.id,
-            "phase": self.phase,
-            "stream": self.stream,
-            "detected_at": format_time(self.detected_at),
-            "shift_at": format_time(self.shift_at),
-            "shift_at_low": format_time(self.shift_at_low),
-            "shift_at_high": format_time(self.shift_at_high),
-            "level_before": _round_level(self.level_before, self.level_before_se),
-            "level_after": _round_level(self.level_after, self.level_after_se),
-            "delta": _round(self.delta),
-            "delta_sigma": _fixed(self.delta_sigma, 3),
-            "sigma": _round(self.sigma),
-            "n_before": self.n_before,
-            "n_after": self.n_after,
-            "test": self.test,
-            "statistic": _fixed(self.statistic, 3),
-            "threshold": _fixed(self.threshold, 3),
-            "as_of": format_time(self.as_of),
-            "direction": self.direction,
-            "interval_level": self.interval_level,
-            "level_before_se": _round(self.level_before_se),
-            "level_after_se": _round(self.level_after_se),
-            "f_stat": _fixed(self.f_stat, 3),
-            "p_value": float(f"{self.p_value:.3g}") if math.isfinite(self.p_value) else None,
-            "advisory": ADVISORY,
-        }
-        if self.unit is not None:
-            d["unit"] = self.unit
-        if self.excursion_id is not None:
-            d["excursion_id"] = self.excursion_id
-        if self.excursion_start is not None:
-            d["excursion_start"] = format_time(self.excursion_start)
-        if self.plan_id is not None:
-            d["plan_id"] = self.plan_id
-        if self.gap_from is not None:
-            d["gap_from"] = format_time(self.gap_from)
-        d.update(_sensorcheck.record_fields(self))
-        return d
-
-
-def _round(x: float) -> float | None:
-    """Round to 6 significant digits for display without losing meaningful precision;
-    None (JSON null) for a number that is not finite, which JSON cannot carry (RFC 8259,
-    section 6: "Infinity and NaN are not permitted")."""
-    if not math.isfinite(x):
-        return None
-    if x == 0:
-        return float(x)
-    return float(f"{x:.6g}")
-
-
-def _round_level(x: float, se: float) -> float | None:
-    """A fitted level as :func:`_round` gives it, or, where 6 significant digits would
-    round it by more than a tenth of its standard error ``se`` (a reading far from
-    zero with little noise: 773.152 K with sigma 0.001 K, 101325.37 Pa with sigma
-    0.2 Pa), to two significant digits of ``se``.  Before, such levels were rounded by
-    up to 10 of their standard errors (773.155 for 773.15542, se 5e-05), and
-    ``level_after - level_before`` was no longer the record's ``delta``.
-
-    >>> _round_level(500.0312, 0.017), _round_level(773.1554162, 5.09e-05), _round_level(101325.372, 0.0105)
-    (500.031, 773.155416, 101325.372)
-    """
-    r = _round(x)
-    if r is None or x == 0 or not (se > 0.0 and math.isfinite(se)):
-        return r
-    if 10.0 ** (math.floor(math.log10(abs(x))) - 5) > se / 10.0:
-        return round(x, 1 - math.floor(math.log10(se)))
-    return r
-
-
-def _fixed(x: float, digits: int) -> float | None:
-    """``x`` to ``digits`` decimals; None (JSON null) when it is not finite (see _round)."""
-    return round(x, digits) if math.isfinite(x) else None
-
-
-def event_id(stream: str, detected_at: float) -> str:
-    """A stable id for one event: the same stream and detection time give the same id.
-
-    Examples
-    --------
-    >>> event_id("line2/filler7/weight", 1764633600.0)
-    '79be137c3ac03026'
-    """
-    h = hashlib.blake2b(f"{stream}|{detected_at:.6f}".encode(), digest_size=8)
-    return h.hexdigest()
 
 
 def make_test(settings: DetectionSettings, arl0: float, shift_z: float, n_ref: float = math.inf,
@@ -297,193 +166,6 @@ def steady_test(settings: DetectionSettings, arl0: float, shift_z: float, phi: f
     real one is ``arl0``).  What ``shiftwatch design`` and the suggestions state is this
     test's behaviour."""
     return make_test(settings, arl0 * follow_arl_factor(phi, arl0), shift_z)
-
-
-class _NoCounts(Counter[str]):
-    """An empty counter that refuses to count (shared by engines that have counted nothing)."""
-
-    def _refuse(self, *args: Any, **kwargs: Any) -> Any:
-        raise TypeError("this shared empty counter is read-only")
-
-    __setitem__ = subtract = setdefault = __ior__ = __iadd__ = __isub__ = _refuse
-
-    def update(self, iterable: Any = None, /, **kwds: Any) -> None:
-        if iterable or kwds:  # Counter() itself calls update() with nothing
-            self._refuse()
-
-
-_NO_COUNTS: Counter[str] = _NoCounts()
-
-
-def _tally(counts: Counter[str], keys: Iterable[str]) -> Counter[str]:
-    """``counts`` with ``keys`` counted in (a counter of its own in place of the shared empty one)."""
-    if isinstance(counts, _NoCounts):
-        counts = Counter()
-    counts.update(keys)
-    return counts
-
-
-class Window:
-    """The newest samples of one stream: values and times, the two rows of one small array.
-
-    Holds at least the last ``keep`` samples (up to ``keep + slack`` between
-    trims, so long streams shift memory rarely).  Memory per stream is about
-    ``16 (keep + slack)`` bytes; the step fitter with its running sums is
-    only built while an event is open.
-
-    Examples
-    --------
-    >>> w = Window(4, slack=2)
-    >>> w.extend(np.arange(5.0), np.arange(5.0)); w.values.tolist()
-    [1.0, 2.0, 3.0, 4.0]
-    >>> w.extend(np.array([9.0]), np.array([5.0])); w.values.tolist()
-    [1.0, 2.0, 3.0, 4.0, 9.0]
-    >>> w.drop_front(3); w.values.tolist()
-    [4.0, 9.0]
-    """
-
-    # The window's (2, capacity) rows are row ``_i`` of a block of _WindowStore.BLOCK
-    # windows, reached through the block: a view of its own per window would cost an
-    # array object and its shape (about 130 bytes a stream).
-    __slots__ = ("_blk", "_i", "_n", "keep")
-
-    def __init__(self, keep: int, slack: int = 8) -> None:
-        self.keep = keep
-        self._blk, self._i = _WindowStore.of(keep + slack).take()
-        self._n = 0
-
-    def __del__(self) -> None:
-        try:
-            _WindowStore.of(self._blk.shape[2]).give(self._blk, self._i)
-        except (AttributeError, TypeError):  # half-built, or the interpreter is shutting down
-            pass
-
-    def __len__(self) -> int:
-        return self._n
-
-    @property
-    def capacity(self) -> int:
-        return int(self._blk.shape[2])
-
-    @property
-    def rows(self) -> FloatArray:
-        """The (2, capacity) array itself: row 0 the values, row 1 the times (a view)."""
-        rows: FloatArray = self._blk[self._i]
-        return rows
-
-    @property
-    def values(self) -> FloatArray:
-        return self._blk[self._i, 0, : self._n]
-
-    @property
-    def times(self) -> FloatArray:
-        return self._blk[self._i, 1, : self._n]
-
-    def extend(self, x: FloatArray, t: FloatArray) -> None:
-        m = x.shape[0]
-        b = self._blk
-        i = self._i
-        if m >= self.keep:
-            b[i, 0, : self.keep] = x[-self.keep:]
-            b[i, 1, : self.keep] = t[-self.keep:]
-            self._n = self.keep
-            return
-        n = self._n
-        if n + m > b.shape[2]:
-            shift = n + m - self.keep
-            b[i, :, : n - shift] = b[i, :, shift:n]
-            n -= shift
-        b[i, 0, n: n + m] = x
-        b[i, 1, n: n + m] = t
-        self._n = n + m
-
-    def push(self, x: float, t: float) -> None:
-        """:meth:`extend` by one sample."""
-        n = self._n
-        b = self._blk
-        i = self._i
-        if n >= b.shape[2]:
-            if self.keep < 2:
-                self.extend(np.array([x]), np.array([t]))
-                return
-            shift = n + 1 - self.keep
-            b[i, :, : n - shift] = b[i, :, shift:n]
-            n -= shift
-        b[i, 0, n] = x
-        b[i, 1, n] = t
-        self._n = n + 1
-
-    def at(self, j: int) -> tuple[float, float]:
-        """The time and value of sample ``j`` (0 is the oldest held)."""
-        return float(self._blk[self._i, 1, j]), float(self._blk[self._i, 0, j])
-
-    def drop_front(self, k: int) -> None:
-        k = min(k, self._n)
-        if k:
-            self._blk[self._i, :, : self._n - k] = self._blk[self._i, :, k: self._n]
-            self._n -= k
-
-    def reset_to(self, x: FloatArray, t: FloatArray) -> None:
-        """Hold exactly these samples (the newest ones, if they do not all fit)."""
-        cap = self._blk.shape[2]
-        xs = np.asarray(x, dtype=np.float64)[-cap:]
-        ts = np.asarray(t, dtype=np.float64)[-cap:]
-        self._n = xs.shape[0]
-        self._blk[self._i, 0, : self._n] = xs
-        self._blk[self._i, 1, : self._n] = ts
-
-
-class _WindowStore:
-    """Memory for the windows of one capacity, handed out from large blocks.
-
-    A daemon holds thousands of windows for as long as it runs.  One small
-    allocation each would sit between the short-lived arrays of batch
-    processing and keep the memory freed around them from being returned to
-    the system; blocks of :attr:`BLOCK` windows keep them together instead.
-    A window's row goes back to the store when the window is dropped.
-    """
-
-    BLOCK = 128
-    _stores: ClassVar[dict[int, _WindowStore]] = {}
-
-    def __init__(self, capacity: int) -> None:
-        self.capacity = capacity
-        self._free: list[tuple[FloatArray, int]] = []
-
-    @classmethod
-    def of(cls, capacity: int) -> _WindowStore:
-        store = cls._stores.get(capacity)
-        if store is None:
-            store = cls._stores[capacity] = cls(capacity)
-        return store
-
-    def take(self) -> tuple[FloatArray, int]:
-        """A block of (BLOCK, 2, capacity) and the row of it that holds the values and
-        times of one window (contents undefined)."""
-        if not self._free:
-            block = np.empty((self.BLOCK, 2, self.capacity))
-            self._free.extend((block, i) for i in range(self.BLOCK - 1, -1, -1))
-        return self._free.pop()
-
-    def give(self, block: FloatArray, i: int) -> None:
-        self._free.append((block, i))
-
-class Rejection(NamedTuple):
-    """A rejected sample: its position in the batch (-1 for a sample of an
-    earlier batch, such as one held for the spike check), reason code and time."""
-
-    position: int
-    reason: str
-    time: float
-
-
-@dataclass
-class BatchResult:
-    """What one call to :meth:`StreamEngine.process` produced."""
-
-    records: list[AlertRecord] = field(default_factory=list)
-    accepted: int = 0
-    rejected: list[Rejection] = field(default_factory=list)
 
 
 #: Batches of at most this many samples are watched one sample at a time in
@@ -604,7 +286,6 @@ TRIM_STRETCH = True
 #: of a guard or more): the same doubles.  False: the reference (tests/core/test_read_items.py
 #: holds the two to each other).
 READ_ITEMS = True
-_NO_TERMS = (math.nan, 0, 0, 0.0)  # StreamEngine._fterms before a stretch (NaN matches no phi)
 #: The young loop (StreamEngine._young_loop) tells whether its bank's statistic reaches the
 #: split screen's or the calm fraction of the threshold by comparing each sum, as the
 #: recursion sets it, with the least sum that reaches it (_four_terms), in place of the
@@ -616,37 +297,6 @@ YOUNG_LIMITS = True
 class _SplitCalled(Exception):
     """A split test noted by the young loop calls a step: the loop is run again."""
 
-#: An established level follows slow change: the level a sample is measured against
-#: is the baseline's plus an exponentially weighted offset (weight 1/FOLLOW_SAMPLES
-#: per sample) of the samples older than FOLLOW_DELAY.  A drift, a slow cycle or a
-#: wander is followed, FOLLOW_SAMPLES + FOLLOW_DELAY samples behind; a step is not:
-#: the follower sees none of its first FOLLOW_DELAY samples, by when a step of 0.75
-#: sigma or more is usually detected, and it stands still while an event is open.
-#: See the README's "Slow change" for where the line between slow and sudden lies.
-FOLLOW_SAMPLES = 110
-FOLLOW_DELAY = 40
-FOLLOW_DELAY_MAX = 300
-FOLLOW_PHI_MAX = 0.7
-#: Lone spikes are judged against the followed level as it stood at the last of these
-#: points (every FOLLOW_RECENTER watched samples, so the same samples are spikes however
-#: the stream is batched, and the level judged against is never more than that old:
-#: on a drift of 0.0004 sigma a sample, 1.6 sigma at most, against spike_sigma 5).  Each
-#: point ends a vectorised stretch: 1,024 halved a stream's throughput on history.
-FOLLOW_RECENTER = 4096
-#: A sample beyond the spike band is a sample of a step, not a lone spike, when the next
-#: one, or the one before, deviates the same way beyond the band or beyond this share of
-#: the outlier's own deviation (the midpoint between the level and the outlier).
-#: Requiring the next one beyond the band too set aside the first sample of 13% of
-#: 4-sigma steps; looking at the next one only set aside a 5-sigma step's second sample
-#: (5.73 sigma) after a first at 4.86 and before a third at 2.84.
-SPIKE_CONFIRM_SHARE = 0.5
-FOLLOW_MARGIN = 2.0
-#: Standard errors above its bias-corrected estimate at which the decision on an event
-#: takes the autocorrelation of a young stream's noise (``residual_phi_bound``).
-PHI_BOUND_MARGIN = 2.0
-#: Standard errors above its estimate at which the trial of an event on a provisional
-#: baseline takes the baseline's phi (``young_variance``).
-YOUNG_PHI_MARGIN = 1.0
 #: A step is confirmed only while the fit of the event's samples shows it at this
 #: p-value (or ``confirm_p_value``, when larger): the trial alone confirmed wander of
 #: young autocorrelated streams.  0.001 lost more real steps on AR(1) 0.8 noise
@@ -672,11 +322,6 @@ HEAVY_ARL_FACTOR = 0.45
 #: recorded: before the ARL-dependent follower factor and HEAVY_ARL_FACTOR) has its test
 #: designed again on load, keeping its evidence, as a fresh stream's would be.
 DESIGN_RULES = 2
-#: The follower's design factor for iid noise, ``exp(a + b (log10 arl0 - u0))``
-#: (see :func:`follow_arl_factor`): (a, b, u0).
-FOLLOW_ARL_FIT = (0.157, 0.231, 2.78)
-#: ... measured from 600 to 604,800 samples (log10), held at its ends beyond.
-FOLLOW_ARL_RANGE = (2.78, 5.78)
 
 #: The baseline is refined at least every REFINE_BLOCK_MAX samples (more often while
 #: it is young).  Each refinement ends a vectorised stretch of a batch, so a smaller
@@ -687,26 +332,6 @@ REFINE_BLOCK_MAX = 65536
 #: The settings of engines built without any (frozen, so one is shared).
 _DEFAULT_SETTINGS = DetectionSettings()
 
-
-
-def _check_finite(o: Any, path: str) -> None:
-    """Raise ValueError naming the first number in a saved state that is NaN or infinite
-    (no state the engine saves holds one; a test's reference size may be infinite)."""
-    if isinstance(o, float):
-        if not math.isfinite(o) and not (path.endswith("n_ref") and o == math.inf):
-            raise ValueError(f"field {path or 'state'} is {o!r}, not a finite number")
-    elif isinstance(o, dict):
-        for k, v in o.items():
-            _check_finite(v, f"{path}.{k}" if path else str(k))
-    elif isinstance(o, (list, tuple)):
-        if o and all(type(v) is float for v in o):  # a window: one vector check
-            bad = ~np.isfinite(np.asarray(o, dtype=np.float64))
-            if bad.any():
-                i = int(np.argmax(bad))
-                raise ValueError(f"field {path}[{i}] is {o[i]!r}, not a finite number")
-            return
-        for i, v in enumerate(o):
-            _check_finite(v, f"{path}[{i}]")
 
 class StreamEngine:
     """Watches one stream for level shifts.
@@ -736,15 +361,11 @@ class StreamEngine:
     # One engine per stream, thousands of them in the daemon: no per-instance dict.
     __slots__ = (
         "_baseline",
-        "_center",
         "_event",
         "_fitter",
-        "_follow",
-        "_follow_lag",
-        "_fterms",
+        "_follower",
         "_last_step",
         "_last_time",
-        "_next_center",
         "_next_refine",
         "_pending",
         "_prev_out",
@@ -797,12 +418,7 @@ class StreamEngine:
         self._test_n_ref = 0.0
         self._test_n_level = 0
         self._prev_r = 0.0
-        self._follow = 0.0  # offset of the followed level from the baseline's (see FOLLOW_SAMPLES)
-        self._follow_lag = 0  # newest kept samples in the window not yet fed to the follower
-        # phi and the window for which the follower's delay and rate were taken, and those two
-        self._fterms: tuple[float, int, int, float] = _NO_TERMS  # (shared until the first stretch)
-        self._center = 0.0  # the follower's offset that spikes are judged against (see FOLLOW_RECENTER)
-        self._next_center = FOLLOW_RECENTER  # value of _watch_kept at which _center is taken next
+        self._follower = Follower()  # the followed level's offset, lag and spike centre (follow.py)
         self._pending: tuple[float, float] | None = None  # held possible spike
         self._prev_out = 0  # direction in which the last kept sample was an outlier (0: it was not)
         self._event: OpenEvent | None = None
@@ -883,24 +499,25 @@ class StreamEngine:
         else:
             return None
         s = self.settings
-        room = min(self._next_refine, self._next_center) - self._watch_kept
+        fo = self._follower
+        room = min(self._next_refine, fo.next_center) - self._watch_kept
         delay = follow_delay(b.phi, s.window_samples)
-        if room < 2 or self._follow_lag > delay or len(ks) > CALM_MAX_CHARTS:
+        if room < 2 or fo.lag > delay or len(ks) > CALM_MAX_CHARTS:
             return None
         span = s.spike_sigma * b.sigma
         fs = follow_samples(b.phi)
         lam = 0.0 if math.isinf(fs) else 1.0 / fs
         if lam == 0.0:
-            offsets: tuple[float, ...] = (self._follow,)
+            offsets: tuple[float, ...] = (fo.offset,)
         else:
             # The next delay + 1 samples are measured against offsets the follower reaches
             # on samples the window holds now (see _follow_plan).
-            lag = self._follow_lag
+            lag = fo.lag
             w = self._window.values
-            path = follow_path(self._follow_input(w[len(w) - lag:], b), self._follow, lam)
+            path = follow_path(fo.input(w[len(w) - lag:], b.level, span), fo.offset, lam)
             offsets = tuple(path[np.maximum(0, lag + np.arange(delay + 1) - delay)].tolist())
         return CalmTerms(level=b.level, offsets=offsets, lam=lam, delay=delay if lam else 0,
-                         lo=b.level + self._center - span, hi=b.level + self._center + span,
+                         lo=b.level + fo.center - span, hi=b.level + fo.center + span,
                          inv=1.0 / b.innovation_sigma, phi=b.phi, prev_r=self._prev_r, clip=b.clip,
                          ks=tuple(ks), hs=tuple(hs), c_plus=tuple(cp), c_minus=tuple(cm), room=room,
                          last_time=self._last_time,
@@ -1169,10 +786,7 @@ class StreamEngine:
         self._test = None
         self._design_test()
         self._prev_r = 0.0
-        self._follow = 0.0
-        self._follow_lag = 0
-        self._center = 0.0
-        self._next_center = FOLLOW_RECENTER
+        self._follower.restart()
         self._pending = None
         self._sums.reset()
         self._unfolded = 0  # the warm-up samples are in the baseline already
@@ -2081,10 +1695,7 @@ class StreamEngine:
         ys.release()
         self._baseline = replace(b, level=ys.mean, n_level=ys.level_n() if ys.level_n() < b.n else 0)
         self._prev_r = 0.0 if ys.last is None else ys.last - ys.mean
-        self._follow = 0.0
-        self._follow_lag = 0
-        self._center = 0.0
-        self._next_center = FOLLOW_RECENTER
+        self._follower.restart()
         self._sums.reset()
         self._unfolded = 0
         del self._unfolded_u[:]
@@ -2109,8 +1720,9 @@ class StreamEngine:
         # same sample however the stream is batched.
         # (After an event the count may already be past the refinement point:
         # then one sample is taken and the refinement follows at once.)
-        stop = min(self._next_refine, self._next_center)
-        kt, kx, spikes, used, osign, settled = self._split_spikes(t, x, idx, b.level + self._center, b.sigma,
+        fo = self._follower
+        stop = min(self._next_refine, fo.next_center)
+        kt, kx, spikes, used, osign, settled = self._split_spikes(t, x, idx, b.level + fo.center, b.sigma,
                                                          max(stop - self._watch_kept, 1), bounds)
         if kt.shape[0] == 0:
             result.rejected.extend(spikes)
@@ -2137,16 +1749,16 @@ class StreamEngine:
         if trip < 0:
             self._kept_all(spikes, osign, r, result)
             self._append(kt, kx, before)
-            self._follow = float(path[-1])
-            self._follow_lag += kx.shape[0] - feed
+            fo.offset = float(path[-1])
+            fo.lag += kx.shape[0] - feed
             self._count_watched(kt.shape[0])
             return used
         # The rest is fed to the event that opens now; the follower stands still
         # from the sample that tripped.
         t_trip = self._kept_to(trip, kt, spikes, osign, r, result)
-        fed = max(0, self._follow_lag + trip - follow_delay(b.phi, self.settings.window_samples))
-        self._follow = float(path[fed])
-        self._follow_lag += trip + 1 - fed
+        fed = max(0, fo.lag + trip - follow_delay(b.phi, self.settings.window_samples))
+        fo.offset = float(path[fed])
+        fo.lag += trip + 1 - fed
         self._append(kt[: trip + 1], kx[: trip + 1], before[: trip + 1])
         self._watch_kept += trip + 1
         self._open_event(t_trip, result, t_trip if settled is None else float(settled[trip]))
@@ -2183,9 +1795,10 @@ class StreamEngine:
         b = self._baseline
         test = self._test
         assert b is not None and test is not None
+        fo = self._follower
         span = self.settings.spike_sigma * b.sigma
-        hi, lo = b.level + self._center + span, b.level + self._center - span
-        f_hi, f_lo = self._center + span, self._center - span  # the follower's band (_follow_input)
+        hi, lo = b.level + fo.center + span, b.level + fo.center - span
+        f_hi, f_lo = fo.center + span, fo.center - span  # the follower's band (Follower.input)
         level, phi, clip = b.level, b.phi, b.clip
         inv = 1.0 / b.innovation_sigma
         lam = 1.0 / follow_samples(b.phi)
@@ -2196,11 +1809,11 @@ class StreamEngine:
             if xv > hi or xv < lo:
                 break
             w = self._window
-            while self._follow_lag > delay:  # the delay shrank (phi was refined): catch up first
-                fr = w.at(len(w) - self._follow_lag)[1] - level
-                self._follow = keep * self._follow + lam * (f_hi if fr > f_hi else (f_lo if fr < f_lo else fr))
-                self._follow_lag -= 1
-            u = self._follow
+            while fo.lag > delay:  # the delay shrank (phi was refined): catch up first
+                fr = w.at(len(w) - fo.lag)[1] - level
+                fo.offset = keep * fo.offset + lam * (f_hi if fr > f_hi else (f_lo if fr < f_lo else fr))
+                fo.lag -= 1
+            u = fo.offset
             r = xv - level - u
             z = (r - phi * self._prev_r if phi != 0.0 else r) * inv
             z = -clip if z < -clip else (clip if z > clip else z)
@@ -2209,16 +1822,16 @@ class StreamEngine:
             self._prev_r = r
             self._append_one(tv, xv, u)
             used += 1
-            self._follow_lag += 1
+            fo.lag += 1
             if tripped:
                 self._watch_kept += 1
                 self._open_event(tv, result, tv)
                 break
-            if self._follow_lag > delay:
-                fr = w.at(len(w) - self._follow_lag)[1] - level
-                self._follow = keep * u + lam * (f_hi if fr > f_hi else (f_lo if fr < f_lo else fr))
-                self._follow_lag -= 1
-            refine = self._watch_kept + 1 >= min(self._next_refine, self._next_center)
+            if fo.lag > delay:
+                fr = w.at(len(w) - fo.lag)[1] - level
+                fo.offset = keep * u + lam * (f_hi if fr > f_hi else (f_lo if fr < f_lo else fr))
+                fo.lag -= 1
+            refine = self._watch_kept + 1 >= min(self._next_refine, fo.next_center)
             self._count_watched(1)
             if refine:
                 break
@@ -2230,12 +1843,13 @@ class StreamEngine:
         newest FOLLOW_DELAY), its path over them (``u`` before the first and after each),
         and the offset each sample of the stretch is measured against."""
         m = kx.shape[0]
-        lag = self._follow_lag
+        fo = self._follower
+        lag = fo.lag
         if TRIM_STRETCH and LEAN_CALLS:
-            ft = self._fterms
+            ft = fo.terms
             if ft[0] != phi or ft[1] != self.settings.window_samples:  # (phi: refined now and then)
-                ft = self._fterms = (phi, self.settings.window_samples,
-                                     *_follow_terms(phi, self.settings.window_samples))
+                ft = fo.terms = (phi, self.settings.window_samples,
+                                 *_follow_terms(phi, self.settings.window_samples))
             delay, lam = ft[2], ft[3]
         elif LEAN_CALLS:
             delay, lam = _follow_terms(phi, self.settings.window_samples)
@@ -2243,7 +1857,7 @@ class StreamEngine:
             delay, lam = follow_delay(phi, self.settings.window_samples), 1.0 / follow_samples(phi)
         feed = max(0, lag + m - delay)
         if feed == 0:
-            return 0, np.array([self._follow]), np.full(m, self._follow)
+            return 0, np.array([fo.offset]), np.full(m, fo.offset)
         w = self._window
         from_window = min(lag, feed)
         if from_window == 0:
@@ -2255,7 +1869,7 @@ class StreamEngine:
             y = np.concatenate((w.values[len(w) - lag: len(w) - lag + from_window], kx[: feed - from_window]))
         b = self._baseline
         assert b is not None
-        path = follow_path(self._follow_input(y, b), self._follow, lam)
+        path = follow_path(fo.input(y, b.level, self.settings.spike_sigma * b.sigma), fo.offset, lam)
         # Sample i of the stretch is measured once max(0, lag + i - delay) samples are fed.
         k0 = max(0, delay - lag)
         if k0 == 0:
@@ -2272,9 +1886,9 @@ class StreamEngine:
             # Refine often while the baseline rests on few samples, then rarely.
             self._refine_block = min(2 * self._refine_block, REFINE_BLOCK_MAX)
             self._next_refine = self._watch_kept + self._refine_block
-        if self._watch_kept >= self._next_center:
-            self._center = self._follow
-            self._next_center = self._watch_kept + FOLLOW_RECENTER
+        fo = self._follower
+        if self._watch_kept >= fo.next_center:
+            fo.recenter(self._watch_kept)
 
     def _refine(self) -> None:
         """Merge the samples folded since the last refinement into the baseline.
@@ -2294,12 +1908,13 @@ class StreamEngine:
         # The sums were of the samples less the follower's offset: the refined level is
         # the baseline's part of the followed level, which stays where it was.
         off = math.isinf(follow_samples(nb.phi))
+        fo = self._follower
         if off:
             # Not followed (strongly autocorrelated noise): the refined level is the level
             # (from the followed one, so it does not jump when following stops).
             if not math.isinf(follow_samples(b.phi)):
-                self._baseline = nb = replace(nb, level=b.level + self._follow)
-            self._follow = self._center = 0.0
+                self._baseline = nb = replace(nb, level=b.level + fo.offset)
+            fo.clear()
             if self._unfolded_u and OFFSETS_IN_PLACE:  # in place, as in _keep_offsets
                 v = np.frombuffer(self._unfolded_u)
                 v[:] = 0.0
@@ -2308,8 +1923,7 @@ class StreamEngine:
                 self._unfolded_u = array("d", bytes(8 * len(self._unfolded_u)))
         else:
             shift = b.level - nb.level
-            self._follow += shift
-            self._center += shift
+            fo.shift(shift)
             if self._unfolded_u and OFFSETS_IN_PLACE:
                 # v + shift for each, in place (IEEE addition: the same doubles as in floats)
                 v = np.frombuffer(self._unfolded_u)
@@ -2350,7 +1964,7 @@ class StreamEngine:
         self._fitter = StepFitter(self._window.values[start:].copy(), self._window.times[start:].copy())
         # An open event measures from the baseline's level (see _track); the last
         # residual was from the followed level.
-        self._prev_r += self._follow
+        self._prev_r += self._follower.offset
         self._begin_event(detected_at, result, as_of, by_fit=by_fit, tripped=tripped)
 
     def _begin_event(self, detected_at: float, result: BatchResult, as_of: float,
@@ -2381,7 +1995,8 @@ class StreamEngine:
             # followed level.  A false trip comes most often when the follower happens
             # to lag, so the followed level is biased towards the trip exactly when an
             # event is open; the margin keeps the trial from confirming that lag.
-            level_before=(b.level + self._follow + sign * FOLLOW_MARGIN * b.sigma * _follow_se(b.phi)
+            level_before=(b.level + self._follower.offset
+                          + sign * FOLLOW_MARGIN * b.sigma * _follow_se(b.phi)
                           if b.level_n >= 2 * self.settings.window_samples else fit.level_before),
             level_after=fit.level_after,
             # On a provisional baseline (the first warm-up: level, sigma and phi from a
@@ -2543,7 +2158,7 @@ class StreamEngine:
             self._state = EVENT_OPEN
             if self._young is None:
                 # The samples since the first trip are not followed yet either.
-                self._follow_lag += len(self._fitter) - ev.trip_len
+                self._follower.lag += len(self._fitter) - ev.trip_len
             # The new event's record names what opened it, not the sequential test (whose
             # statistic was reset at the first trip and may be anywhere below its threshold):
             # the refit's sup-F against the F whose p-value is confirm_p_value, or else the
@@ -2715,33 +2330,15 @@ class StreamEngine:
         self.records_total = _tally(self.records_total, ("undecided",))
         return rec
 
-    def _follow_input(self, x: FloatArray, b: Baseline) -> FloatArray:
-        """What the follower is fed of samples ``x``: each less the baseline's level, held
-        within the spike band (``spike_sigma`` sigmas about the level plus the centre
-        spikes are judged against).  A sample beyond the band is kept only as part of a
-        run (a step's first samples, a burst of outliers); before, a burst of three
-        samples 100 sigma out moved the follower by 3 x 100 / 110 sigma once the
-        follower reached it, and the stream then detected the burst's "step" again and
-        again (30 events for three samples of 1e9 on a level of 20).  Inside the band,
-        where every sample of a calm stream lies, the floats are those of ``x - level``."""
-        span = self.settings.spike_sigma * b.sigma
-        r = x - b.level
-        _clip(r, self._center - span, self._center + span, out=r)
-        return r
-
     def _follow_catch_up(self, ev: OpenEvent, b: Baseline) -> None:
         """After an event that found no step: the level went on moving, if at all,
         slowly.  The follower catches up with the event's samples as if no event had
         been open (all but the newest FOLLOW_DELAY), and the watch goes on from it."""
         assert self._fitter is not None
-        vals = self._fitter.values
-        start = max(0, ev.trip_len - self._follow_lag)
-        end = max(start, vals.shape[0] - follow_delay(b.phi, self.settings.window_samples))
-        self._follow = float(follow_path(self._follow_input(vals[start:end], b), self._follow,
-                                         1.0 / follow_samples(b.phi))[-1])
-        self._follow_lag = vals.shape[0] - end
-        self._center = self._follow
-        self._prev_r -= self._follow
+        fo = self._follower
+        fo.catch_up(self._fitter.values, ev.trip_len, follow_delay(b.phi, self.settings.window_samples),
+                    1.0 / follow_samples(b.phi), b.level, self.settings.spike_sigma * b.sigma)
+        self._prev_r -= fo.offset
 
     def _event_fit(self, ev: OpenEvent, b: Baseline, fit: StepFit, end: int | None = None) -> StepFit:
         """The fit a final record carries: the detected step as the samples up to ``end``
@@ -2792,10 +2389,7 @@ class StreamEngine:
         self._unfolded = 0
         del self._unfolded_u[:]
         self._watch_kept = 0
-        self._follow = 0.0
-        self._follow_lag = 0
-        self._center = 0.0
-        self._next_center = FOLLOW_RECENTER
+        self._follower.restart()
         old = self._young
         if self._provisional:
             ys = SelfStart(None) if old is None else old.carry_over()
@@ -2831,7 +2425,7 @@ class StreamEngine:
         object per sample made and read again.
         """
         ev = self._event
-        win, fitter = self._window, self._fitter
+        win, fitter, fo = self._window, self._fitter, self._follower
         if arrays:
             times: Any = win.times.copy()
             values: Any = win.values.copy()
@@ -2859,10 +2453,10 @@ class StreamEngine:
                 "n_ref": self._test_n_ref, "n_level": self._test_n_level, "rules": DESIGN_RULES,
                 "state": self._test.get_state()},
             "prev_r": self._prev_r,
-            "follow": self._follow,
-            "follow_lag": self._follow_lag,
-            "center": self._center,
-            "next_center": self._next_center,
+            "follow": fo.offset,
+            "follow_lag": fo.lag,
+            "center": fo.center,
+            "next_center": fo.next_center,
             "pending": None if self._pending is None else list(self._pending),
             "prev_out": self._prev_out,
             "event": None if ev is None else ev.get_state(),
@@ -2943,7 +2537,8 @@ class StreamEngine:
             self._prev_r = _finite_number(state["prev_r"], "prev_r")
             field_name = "follow"
             # Snapshots before the follower have none: the level was the baseline's.
-            self._follow = _finite_number(state.get("follow", 0.0), "follow")
+            fo = self._follower
+            fo.offset = _finite_number(state.get("follow", 0.0), "follow")
             field_name = "pending"
             p = state["pending"]
             if p is not None:
@@ -2978,17 +2573,17 @@ class StreamEngine:
             self._next_refine = _count(state["next_refine"], "next_refine")
             self._refine_block = _count(state["refine_block"], "refine_block")
             field_name = "follow_lag"
-            self._follow_lag = _count(state.get("follow_lag", 0), "follow_lag")
+            fo.lag = _count(state.get("follow_lag", 0), "follow_lag")
             # Not yet followed: samples of the window, or of an open event (up to its trip).
             room = self._event.trip_len if self._event is not None else len(self._window)
-            if self._follow_lag > room or (self._follow_lag and self._young is not None):
-                raise ValueError(f"follow_lag: {self._follow_lag} samples not yet followed, but there "
+            if fo.lag > room or (fo.lag and self._young is not None):
+                raise ValueError(f"follow_lag: {fo.lag} samples not yet followed, but there "
                                  f"are {room}" + (" and the level is young" if self._young is not None else ""))
             field_name = "center"
-            self._center = _finite_number(state.get("center", self._follow), "center")
+            fo.center = _finite_number(state.get("center", fo.offset), "center")
             field_name = "next_center"
-            self._next_center = _count(state.get("next_center", self._watch_kept + FOLLOW_RECENTER),
-                                       "next_center")
+            fo.next_center = _count(state.get("next_center", self._watch_kept + FOLLOW_RECENTER),
+                                    "next_center")
             field_name = "last_time"
             lt = state["last_time"]
             self._last_time = -math.inf if lt is None else _finite_number(lt, "last_time")
@@ -3101,247 +2696,10 @@ def _grid(x: float, *, up: bool = True, step: float = 0.05) -> float:
     return math.exp(q * step)
 
 
-def young_spike_limit(spike_sigma: float, estimated: bool, df: float) -> float:
-    """The spike band of a young level, in units of its predictive spread: ``spike_sigma``
-    when sigma is known, else the Student-t value on the spread's ``df`` degrees of
-    freedom with the same normal tail (:func:`.selfstart.normal_to_t`).  A spread from a
-    few samples is often small by chance; 5 of it set ordinary readings aside.
-
-    >>> young_spike_limit(5.0, False, 4), round(young_spike_limit(5.0, True, 23), 2)
-    (5.0, 6.84)
-    """
-    return normal_to_t(spike_sigma, float(df)) if estimated and df > 0 else spike_sigma
-
-
-def spike_confirmed(dev_next: float, dev_out: float, limit: float) -> bool:
-    """Whether the sample after an outlier (deviation ``dev_out`` beyond ``limit``, in
-    the band's units) deviates the same way: beyond ``limit``, or beyond
-    SPIKE_CONFIRM_SHARE of the outlier's own deviation.  Then the outlier is the
-    first sample of a step, not a lone spike (:func:`lone_outliers`, rule for rule).
-    Asked of the sample before an outlier (``dev_next`` its deviation), the same rule
-    says the outlier is a step's second or later sample (:func:`backed_by_prev`).
-
-    >>> spike_confirmed(-3.3, -5.3, 5.0), spike_confirmed(0.4, -5.3, 5.0), spike_confirmed(6.0, 30.0, 5.0)
-    (True, False, True)
-    """
-    return (dev_next if dev_out > 0 else -dev_next) > min(limit, SPIKE_CONFIRM_SHARE * abs(dev_out))
-
-
-def backed_by_prev(dev: FloatArray, limit: float, prev_sign: int = 0, prev_dev: float = 0.0
-                   ) -> NDArray[np.bool_]:
-    """The outliers among standardised deviations (beyond ``limit``) whose predecessor
-    deviates the same way beyond ``limit`` or beyond SPIKE_CONFIRM_SHARE of the outlier's
-    own deviation (:func:`spike_confirmed`, the same rule looking back): such an outlier
-    is a step's second (or later) sample, never a lone spike.  ``prev_sign`` is the
-    direction in which the sample before the first one was an outlier (0 if it was not),
-    ``prev_dev`` that sample's deviation on the same scale (0 if there was none).
-
-    >>> backed_by_prev(np.array([4.86, 5.73, 2.84]), 5.0).tolist()
-    [False, True, False]
-    >>> backed_by_prev(np.array([5.73, 2.84]), 5.0, prev_dev=4.86).tolist()
-    [True, False]
-    """
-    out = np.abs(dev) > limit
-    back = np.zeros_like(out)
-    if not out.any():
-        return back
-    sign = np.sign(dev)
-    thr = np.minimum(limit, SPIKE_CONFIRM_SHARE * np.abs(dev))
-    back[1:] = out[1:] & (dev[:-1] * sign[1:] > thr[1:])
-    back[0] = bool(out[0]) and (sign[0] == prev_sign or bool(prev_dev * sign[0] > thr[0]))
-    return back
-
-
-def lone_outliers(dev: FloatArray, limit: float, prev_sign: int = 0, prev_dev: float = 0.0
-                  ) -> tuple[NDArray[np.bool_], bool]:
-    """Flag lone outliers among standardised deviations.
-
-    A deviation beyond ``limit`` is a lone outlier unless a neighbour deviates the
-    same way beyond ``limit`` or beyond half of the outlier's own deviation: the
-    sample after it (:func:`spike_confirmed`: the start of a step) or the sample
-    before it (:func:`backed_by_prev`).  Returns the
-    mask and whether the last sample is an outlier whose next neighbour is not
-    yet known (the caller may hold it).  ``prev_sign`` is the direction in
-    which the sample before the first one was an outlier (0 if it was not),
-    ``prev_dev`` its deviation (0 if there was none).
-
-    Examples
-    --------
-    >>> m, last = lone_outliers(np.array([0.1, 9.0, 0.2, 7.0, 8.0, -0.3, 6.0]), 5.0)
-    >>> m.tolist(), last
-    ([False, True, False, False, False, False, True], True)
-    >>> lone_outliers(np.array([0.1, -5.3, -3.3, -4.1]), 5.0)[0].tolist()  # a step's first sample
-    [False, False, False, False]
-    >>> lone_outliers(np.array([0.1, 4.86, 5.73, 2.84]), 5.0)[0].tolist()  # and its second
-    [False, False, False, False]
-    """
-    out = np.abs(dev) > limit
-    if not out.any():
-        return out, False
-    sign = np.sign(dev)
-    same_prev = backed_by_prev(dev, limit, prev_sign, prev_dev)
-    same_next = np.zeros_like(out)
-    # The next sample confirms an outlier when it deviates the same way beyond the
-    # band, or beyond half the outlier's own deviation (SPIKE_CONFIRM_SHARE).
-    same_next[:-1] = out[:-1] & (dev[1:] * sign[:-1] > np.minimum(limit, SPIKE_CONFIRM_SHARE * np.abs(dev[:-1])))
-    lone = out & ~same_prev & ~same_next
-    return lone, bool(lone[-1])
-
-
-def _baseline_from(d: dict[str, Any]) -> Baseline:
-    """A Baseline from its snapshot form (``Baseline.to_dict``); ``ValueError`` names a bad field."""
-    known = {"level", "sigma", "phi", "innovation_sigma", "interval", "quantum", "phi_raw", "clip",
-             "tail_fraction"}
-    floats: dict[str, float] = {}
-    for k, v in d.items():
-        if k in ("n", "n_level"):
-            continue
-        if k not in known:
-            raise ValueError(f"baseline.{k}: unknown field")
-        floats[k] = _finite_number(v, f"baseline.{k}")
-    for k in ("sigma", "innovation_sigma", "interval"):
-        if k in floats and not floats[k] > 0:
-            raise ValueError(f"baseline.{k}: must be positive, got {floats[k]!r}")
-    for k in ("phi", "phi_raw"):
-        if k in floats and not -0.95 <= floats[k] <= 0.95:
-            raise ValueError(f"baseline.{k}: must lie in [-0.95, 0.95], got {floats[k]!r}")
-    n = _count(d["n"], "baseline.n")
-    n_level = _count(d.get("n_level", 0), "baseline.n_level")
-    return Baseline(n=n, n_level=n_level, **floats)
-
-
-#: The largest count a saved state may hold (doubles count exactly up to it).
-MAX_COUNT = 2**53
-
-
-def _finite_number(v: Any, name: str) -> float:
-    x = float(v)
-    if not math.isfinite(x):
-        raise ValueError(f"{name}: not a finite number ({x!r})")
-    return x
-
-
-def _positive(v: Any, name: str) -> float:
-    x = _finite_number(v, name)
-    if not x > 0:
-        raise ValueError(f"{name}: must be positive, got {x!r}")
-    return x
-
-
-def _count(v: Any, name: str) -> int:
-    if (isinstance(v, bool) or not isinstance(v, (int, float)) or not 0 <= v <= MAX_COUNT
-            or v != int(v)):
-        raise ValueError(f"{name}: must be a whole number from 0 to 2**53, got {v!r:.40}")
-    return int(v)
-
-
-def _finite_array(v: Any, name: str) -> FloatArray:
-    a = np.asarray(v, dtype=np.float64)
-    if a.ndim != 1:
-        raise ValueError(f"{name}: must be a list of numbers")
-    if not np.isfinite(a).all():
-        raise ValueError(f"{name}: holds a value that is not a finite number")
-    return a
-
-
-def _time_array(v: Any, name: str) -> FloatArray:
-    """Saved sample times: finite, and in the years 1 to 9999 that a record can be written at
-    (an earlier version took such times from payloads; the status page could not show them)."""
-    a = _finite_array(v, name)
-    # up to the last millisecond of the year 9999, the limit the decoder and replay use too
-    if a.shape[0] and not (TIME_MIN <= float(a.min()) and float(a.max()) <= TIME_MAX):
-        wrong = float(a.min()) if float(a.min()) < TIME_MIN else float(a.max())
-        raise ValueError(f"{name}: holds the time {wrong:.17g}, "
-                         + ("before the year 1" if wrong < TIME_MIN else "past the year 9999"))
-    return a
-
-
 def _batch_position(t: FloatArray, idx: NDArray[np.intp], time: float) -> int:
     """The batch position of the kept sample at ``time`` among ``t`` (-1: an earlier batch's)."""
     j = int(np.searchsorted(t, time))
     return int(idx[j]) if j < t.shape[0] and t[j] == time else -1
-
-
-def _small_bank(test: SequentialTest) -> tuple[list[float] | None, tuple[float, ...],
-                                              tuple[tuple[int, int, float, float], ...], float]:
-    """For :meth:`StreamEngine._young_loop`: a CUSUM bank's sums as a list, its charts' h
-    twice over (upper, lower), each chart's row for the recursion (:func:`_chart_rows`),
-    and the test's threshold; the sums are None for a test that updates itself (any other
-    test, or a bank of one chart)."""
-    small = getattr(test, "small_sums", None)
-    c = small() if small is not None else None
-    if c is None:
-        return None, (), (), test.threshold
-    ks, hs = test.ks, test.hs  # type: ignore[attr-defined]
-    return c, hs + hs, _chart_rows(ks, hs), test.threshold
-
-
-def _least_reaching(h: float, frac: float) -> float:
-    """The least double ``c`` for which ``c / h >= frac`` (``h`` and ``frac`` positive and finite):
-    division by a positive ``h`` is correctly rounded and so never decreasing in ``c``,
-    and for every ``c >= 0`` the comparison ``c >= _least_reaching(h, frac)`` is
-    ``c / h >= frac``, whatever the rounding does near the boundary."""
-    c = frac * h
-    while c > 0.0 and c / h >= frac:
-        c = math.nextafter(c, -math.inf)
-    while not c / h >= frac:
-        c = math.nextafter(c, math.inf)
-    return c
-
-
-@functools.lru_cache(maxsize=64)
-def _four_terms(khs: tuple[tuple[int, int, float, float], ...], screen: float, calm: float, on: bool
-                ) -> tuple[float, float, float, float, float, float, float, float, float, float, float, float,
-                           float, float, float, float, bool]:
-    """For :meth:`StreamEngine._young_loop`'s bank of four charts: each chart's k and h, and
-    the least sums (:func:`_least_reaching`) at which its ``C / h`` reaches ``screen`` and
-    ``calm`` (YOUNG_SPLIT_SCREEN and YOUNG_CALM times the threshold); last, whether those
-    limits stand for the divisions (``on``: YOUNG_LIMITS, and the calm limit never below
-    the screen's, as the loop checks it only past the screen's).  The young test's statistic is the largest
-    ``C / h`` of the bank, and the loop only compares it with those fractions: a sum
-    compared with its chart's limits as the recursion sets it gives the same answer as the
-    eight divisions and their maximum (tests/core/test_young_limits.py)."""
-    (_, _, k0, h0), (_, _, k1, h1), (_, _, k2, h2), (_, _, k3, h3) = khs
-    # (each product of a fraction and an h a normal double far from overflow: then the least
-    # sum lies within a few steps of it, and _least_reaching's loops end at once)
-    ok = on and all(0.0 < v < math.inf for v in (screen, calm, h0, h1, h2, h3)) and all(
-        1e-300 < f * h < 1e300 for f in (screen, calm) for h in (h0, h1, h2, h3))
-    if not ok:
-        inf = math.inf
-        return k0, h0, inf, inf, k1, h1, inf, inf, k2, h2, inf, inf, k3, h3, inf, inf, False
-    s = [_least_reaching(h, screen) for h in (h0, h1, h2, h3)]
-    q = [_least_reaching(h, calm) for h in (h0, h1, h2, h3)]
-    ok = all(a <= b for a, b in zip(s, q))
-    return k0, h0, s[0], q[0], k1, h1, s[1], q[1], k2, h2, s[2], q[2], k3, h3, s[3], q[3], ok
-
-
-def _young_fields(ys: SelfStart) -> tuple[int, float, float, int, float | None, float | None, float,
-                                        float | None, float]:
-    """The fields of a young level that :meth:`StreamEngine._young_loop` changes, for its
-    local variables."""
-    return ys.n, ys.mean, ys.ss, ys.df, ys.first, ys.prev, ys.lag, ys.last, ys.vm
-
-
-def _young_put(ys: SelfStart, n: int, mean: float, ss: float, df: int, first: float | None,
-               prev: float | None, lag: float, last: float | None, vm: float) -> None:
-    """:meth:`StreamEngine._young_loop`'s local variables written back to the young level."""
-    ys.n, ys.mean, ys.ss, ys.df, ys.first, ys.prev, ys.lag, ys.last, ys.vm = (
-        n, mean, ss, df, first, prev, lag, last, vm)
-
-
-def _chart_rows(ks: tuple[float, ...], hs: tuple[float, ...]) -> tuple[tuple[int, int, float, float], ...]:
-    """For the young loop's CUSUM recursion: each chart's place among the sums (upper,
-    lower), its k and its h."""
-    m = len(ks)
-    return tuple((j, m + j, k, h) for j, (k, h) in enumerate(zip(ks, hs)))
-
-
-def _young_from(values: FloatArray) -> SelfStart:
-    """A self-starting level of unknown spread over these samples."""
-    ys = SelfStart(None)
-    for v in values.tolist():
-        ys.add(v)
-    return ys
 
 
 def _time_or_nan(raw: NDArray[Any] | None, i: int) -> float:
@@ -3349,208 +2707,3 @@ def _time_or_nan(raw: NDArray[Any] | None, i: int) -> float:
         return float(raw[i]) if raw is not None else math.nan
     except (TypeError, ValueError, OverflowError):
         return math.nan
-
-
-_FOLLOW_BLOCK = 2048
-#: follow_path works out a long stretch's blocks together; False: one block at a time
-#: (the reference, tests/core/test_follow_path.py).
-FOLLOW_BLOCKS_TOGETHER = True
-
-
-def _long_run(phi: float) -> float:
-    return (1.0 + phi) / (1.0 - phi) if phi > 0.0 else 1.0
-
-
-def follow_samples(phi: float) -> float:
-    """The follower's time constant for noise of lag-1 autocorrelation ``phi``: longer
-    by the long-run variance factor (1 + phi) / (1 - phi), as a step takes that much
-    longer to be told from autocorrelated noise (an AR(1) stream of phi 0.6 follows
-    four times as slowly).  Beyond FOLLOW_PHI_MAX, infinite: the level is not
-    followed, since a step of min_shift takes longer to find than any delay the
-    window allows, and the follower would absorb it."""
-    if phi > FOLLOW_PHI_MAX:
-        return math.inf
-    return FOLLOW_SAMPLES * _long_run(phi)
-
-
-def _follow_se(phi: float) -> float:
-    """Standard error of the followed level in sigmas: sqrt(lam / (2 - lam)) for iid noise,
-    times sqrt((1 + phi) / (1 - phi)) for AR(1) noise (the long-run variance)."""
-    return math.sqrt(_long_run(phi) / (2.0 * follow_samples(phi) - 1.0))
-
-
-def follow_delay(phi: float, window: int) -> int:
-    """How many of the newest samples the follower has not been fed, scaled like
-    :func:`follow_samples`; they are read back from the window, so at most
-    FOLLOW_DELAY_MAX and half the window."""
-    return int(min(FOLLOW_DELAY * _long_run(phi), FOLLOW_DELAY_MAX, window // 2))
-_follow_powers: dict[float, tuple[FloatArray, FloatArray]] = {}
-_follow_terms_of: dict[tuple[float, int], tuple[int, float]] = {}
-
-
-def _follow_terms(phi: float, window: int) -> tuple[int, float]:
-    """``follow_delay(phi, window)`` and the follower's rate ``1 / follow_samples(phi)``,
-    kept per phi (refined now and then: a few distinct values a stream)."""
-    key = (phi, window)
-    got = _follow_terms_of.get(key)
-    if got is None:
-        if len(_follow_terms_of) > 256:  # phi is per stream: keep a bounded few (some 50 kB)
-            _follow_terms_of.clear()
-        got = _follow_terms_of[key] = (follow_delay(phi, window), 1.0 / follow_samples(phi))
-    return got
-
-
-def follow_arl_factor(phi: float, arl0: float) -> float:
-    """How much longer an ARL the test of a followed level is designed for, at the
-    plant's ARL ``arl0`` (in samples).
-
-    Measured, not derived.  On iid noise the follower (FOLLOW_SAMPLES 110, FOLLOW_DELAY
-    40) raises the in-control detections of the test designed for ``arl0`` by a factor
-    that grows with ``arl0`` (the reference's own wander matters more the longer the
-    test's sums run): 1.17 at 600 samples, 1.29 at 3,600, 1.69 at 28,800, 1.86 at 86,400
-    and 2.34 at 604,800 (0.6 to 16 M samples each, 2026-12-03).  ``log`` of it is close
-    to linear in ``log10 arl0`` (FOLLOW_ARL_FIT, within 9% of every point), and the
-    detections fall about in proportion to the design ARL, so the iid factor is that
-    fit, held at its ends beyond the measured range.  Autocorrelated noise needs less (its
-    steps take longer to tell, the follower is slower): the extra over 1 is divided by the
-    square root of the long-run variance factor (chosen by measurement: with the factor
-    itself, AR(1) phi 0.6 ran at 1.51 of nominal at 7d, with its root 1.26, and 0.94 to
-    1.08 at 1h and 8h), and nothing is followed above FOLLOW_PHI_MAX.  tests/bench/bench_events.py measures the resulting rates on every
-    noise kind at 7d and 1h.  (A single factor of 2.4 for every ARL gave 0.56 of the
-    nominal rate at 1h on iid noise.)
-
-    >>> round(follow_arl_factor(0.0, 604800.0), 2), round(follow_arl_factor(0.0, 3600.0), 2)
-    (2.34, 1.4)
-    """
-    if phi > FOLLOW_PHI_MAX:
-        return 1.0
-    a, b, u0 = FOLLOW_ARL_FIT
-    u = min(max(math.log10(max(arl0, 1.0)), FOLLOW_ARL_RANGE[0]), FOLLOW_ARL_RANGE[1])
-    iid = math.exp(a + b * (u - u0))
-    return 1.0 + max(iid - 1.0, 0.0) / math.sqrt(_long_run(phi))
-
-
-def follow_path(r: FloatArray, u0: float, lam: float) -> FloatArray:
-    """The follower's offset before each of the samples ``r`` and after the last
-    (``m + 1`` values): ``u_i = (1 - lam) u_(i-1) + lam r_i``, an exponentially
-    weighted mean, vectorised in blocks as ``a^(i+1) (u0 + lam cumsum(r_j a^-(j+1)))``
-    with ``a = 1 - lam`` (blocks short enough that ``a^-2048`` stays well in range).
-
-    >>> follow_path(np.array([1.0, 1.0, 1.0]), 0.0, 0.5).tolist()
-    [0.0, 0.5, 0.75, 0.875]
-    """
-    m = r.shape[0]
-    if lam <= 0.0:
-        return np.full(m + 1, u0)
-    out = np.empty(m + 1)
-    out[0] = u0
-    # Blocks of about 4 / lam samples: a^-(block) stays below e^4, so the cumulative
-    # sum loses no more than a few units in the 14th digit against the recursion
-    # sample by sample (records are rounded to 6).
-    block = max(16, min(_FOLLOW_BLOCK, int(4.0 / lam)))
-    got = _follow_powers.get(lam)
-    if got is None:
-        if len(_follow_powers) > 64:  # lam follows phi, refined now and then: keep a few
-            _follow_powers.clear()
-        lam_a = np.array(lam, dtype=np.float64)  # lam as a shared 0-d array (SHARED_SCALARS)
-        lam_a.flags.writeable = False
-        got = _follow_powers[lam] = ((1.0 - lam) ** np.arange(1, block + 1, dtype=np.float64), lam_a)
-    p = got[0]
-    if m <= block:
-        # One block (a live batch, or a stretch shorter than 4 / lam): the loop's one
-        # step, its product written in place.
-        if LEAN_CALLS:
-            # The same quotients, sums and products, in one buffer (lam * s is s * lam and
-            # u0 + v is v + u0 exactly: IEEE addition and multiplication commute).
-            pm = p[:m]
-            q = np.divide(r, pm)
-            np.add.accumulate(q, out=q)
-            q *= got[1] if _baseline.SHARED_SCALARS else lam
-            q += u0
-            np.multiply(pm, q, out=out[1:])
-        else:
-            np.multiply(p[:m], u0 + lam * np.add.accumulate(r / p[:m]), out=out[1:])
-        return out
-    if not FOLLOW_BLOCKS_TOGETHER:
-        for a in range(0, m, block):
-            blk = r[a: a + block]
-            k = blk.shape[0]
-            pk = p[:k]
-            out[a + 1: a + k + 1] = pk * (out[a] + lam * np.add.accumulate(blk / pk))
-        return out
-    # The same per block, all blocks at once: a block's cumulative sum does not depend on
-    # the offset it starts from, so the sums are one array operation (a row per block,
-    # the last one padded; a row's running sum is its own, summed in order), and only the
-    # offset carried from block to block runs in plain floats, by the same operations on
-    # the same numbers as the array's last element.  The same floats, in about a fifth of
-    # the array calls (a stretch of 4,096 samples is some ten blocks).
-    nb = -(-m // block)
-    rows = np.zeros(nb * block)
-    rows[:m] = r
-    sums = np.add.accumulate(rows.reshape(nb, block) / p, axis=1)
-    sums *= lam
-    last = float(p[block - 1])
-    starts = [u0]
-    u = u0
-    for s_last in sums[: nb - 1, block - 1].tolist():
-        u = last * (u + s_last)
-        starts.append(u)
-    out[1:] = (p * (np.array(starts)[:, None] + sums)).ravel()[:m]
-    return out
-
-
-def residual_phi_bound(values: FloatArray, split: int, margin: float | None = None) -> float:
-    """An upper bound on the lag-1 autocorrelation of the noise around a fitted step.
-
-    The residuals about the two fitted levels (``values[:split]`` and
-    ``values[split:]``, pairs within a segment only) give the sample
-    autocorrelation r; r falls short of phi by about ``(1 + 3 phi) / n`` for
-    each mean estimated (Kendall 1954, Marriott & Pope 1954, from memory; the
-    correction :mod:`.selfstart` makes for one), and its standard error is about ``1 / sqrt(n)``
-    (Bartlett's formula at phi = 0, common practice).  The bound is the
-    corrected r plus ``margin`` standard errors, in [0, 0.95].
-
-    >>> round(residual_phi_bound(np.array([0.0, 1, 0, 1, 0, 1, 0, 1]), 4), 3)
-    0.0
-    """
-    head = values[:split] - values[:split].mean() if split > 0 else values[:0]
-    tail = values[split:] - values[split:].mean() if split < values.shape[0] else values[:0]
-    n = head.shape[0] + tail.shape[0]
-    ss = float(head @ head + tail @ tail)
-    if n < 3 or not ss > 0.0:
-        return 0.0
-    c1 = float(head[1:] @ head[:-1]) if head.shape[0] > 1 else 0.0
-    c1 += float(tail[1:] @ tail[:-1]) if tail.shape[0] > 1 else 0.0
-    r = c1 / ss
-    segments = int(head.shape[0] > 0) + int(tail.shape[0] > 0)
-    r += segments * (1.0 + 3.0 * r) / n
-    up = r + (PHI_BOUND_MARGIN if margin is None else margin) / math.sqrt(n)
-    return float(max(0.0, min(0.95, up)))
-
-
-def young_variance(b: Baseline) -> float:
-    """Variance per sample of a trial's inputs (prewhitened at ``b.phi``, over
-    ``b.innovation_sigma``) on noise whose phi lies one standard error above ``b.phi``
-    (``sqrt((1 - phi^2) / n)`` on ``b.n`` samples, at most 0.95): the long-run variance
-    ``(1 - phi)^2 sigma^2 (1 + phi_up) / (1 - phi_up)`` over ``innovation_sigma^2``, and
-    at least 1 (a provisional baseline's innovation sigma may carry an allowance
-    already)."""
-    phi = b.phi
-    up = min(0.95, max(phi, 0.0) + YOUNG_PHI_MARGIN * math.sqrt(max(1.0 - phi * phi, 0.0) / max(b.n, 1)))
-    if not b.innovation_sigma > 0.0:
-        return 1.0
-    v = (1.0 - phi) ** 2 * b.sigma * b.sigma * _variance_factor(up) / (b.innovation_sigma * b.innovation_sigma)
-    return max(1.0, v) if math.isfinite(v) else 1.0
-
-
-def _variance_factor(phi: float) -> float:
-    """Long-run over marginal variance for AR(1) noise: (1 + phi) / (1 - phi), at least 1."""
-    return max(1.0, (1.0 + phi) / (1.0 - phi))
-
-
-def _fit(values: FloatArray, times: FloatArray, *, level: float, variance_factor: float) -> StepFit | None:
-    from shiftwatch.core.stepfit import fit_step
-
-    if values.shape[0] < 5:
-        return None
-    return fit_step(values, times, level=level, min_segment=2, variance_factor=variance_factor)
