@@ -26,7 +26,8 @@ from pathlib import Path
 import numpy as np
 from scipy import stats
 
-from shiftwatch.core.engine import ADVISORY, StreamEngine
+from shiftwatch.core.engine import StreamEngine
+from shiftwatch.core.records import ADVISORY
 from shiftwatch.core.timefmt import format_time
 from shiftwatch.metrics import Metrics, StreamStats
 from shiftwatch.status import StatusBoard, format_table
