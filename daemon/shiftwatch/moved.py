@@ -4,10 +4,10 @@ taken and owed (the exchange itself is :class:`shiftwatch.handover.Handover`).
 
 A stream whose journal another daemon wrote moments ago, or that the mapping
 before a young change of shard.of gave another shard, gets no engine at first: it
-is *deferred*.  Its samples are parked in the cluster meanwhile (the daemon's
-``_park``); once its wait is over (the answer came, ``cluster.handover_wait`` or
-``cluster.redelivery_wait`` passed) :meth:`MovedStreams.release` has the daemon
-load it afresh.
+is *deferred*.  Its samples are parked in the cluster meanwhile
+(``ClusterKeeper.park``, shiftwatch.keeper); once its wait is over (the answer came,
+``cluster.handover_wait`` or ``cluster.redelivery_wait`` passed)
+:meth:`MovedStreams.release` has the daemon load it afresh.
 
 :class:`MovedStreams` belongs to the daemon's main thread; the NATS thread only
 appends answers to :attr:`MovedStreams.answers`.  It loads, publishes and sends
@@ -47,7 +47,7 @@ class MovedStreams:
     moved_from : ShardCount.moved_from (the shard the mapping before a young change
         gave a topic).
     hold_until : the monotonic time the daemon's hold for redeliveries ends.
-    load : load streams from the cluster (Daemon._cluster_load without deferral);
+    load : load streams from the cluster (ClusterKeeper.load without deferral);
         raises ClusterError.
     loaded : whether a stream has an engine.
     publish : publish an ask (topic, payload) at QoS 1.
@@ -80,7 +80,7 @@ class MovedStreams:
         self.log = log
         # Streams another daemon wrote moments ago (they moved here), each with the time its
         # wait ends: their samples are parked in the cluster until that daemon has had time
-        # to finish its own (see Daemon._cluster_load, Daemon._park); the rounds are
+        # to finish its own (see ClusterKeeper.load, ClusterKeeper.park); the rounds are
         # acknowledged as usual.
         self.deferred: dict[str, float] = {}
         # Answers to this daemon's asks, as the NATS thread hands them over (plain NATS on

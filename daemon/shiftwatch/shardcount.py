@@ -59,7 +59,7 @@ class ShardCount:
         self.status = status
         self.log = log
         # With shard.hashed_levels: the streams the mapping for shard.of partitions gives
-        # this shard; the others' samples are not fed (see Daemon._take_foreign, reload).
+        # this shard; the others' samples are not fed (see ClusterKeeper.take_foreign, reload).
         self.owner = Ownership(shard.number, shard.of, shard.hashed_levels) \
             if shard is not None and shard.hashed_levels else None
         self.topic_of: dict[str, str] = {}  # stream -> a topic it came on (with self.owner)

@@ -25,3 +25,9 @@ def log_text(text: str, limit: int = 120) -> str:
     ``...`` when cut), each one that is not printable written as ``?``."""
     clean = "".join(c if c.isprintable() else "?" for c in text[:limit])
     return clean if len(text) <= limit else clean + "..."
+
+
+def one_line(exc: BaseException, limit: int = 300) -> str:
+    """An exception as a short log phrase (its type when it has no message)."""
+    text = " ".join(str(exc).split()) or type(exc).__name__
+    return text if len(text) <= limit else text[:limit - 3] + "..."

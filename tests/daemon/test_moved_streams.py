@@ -7,8 +7,8 @@ Two ``MovedStreams`` are driven here directly, without daemons or broker: the ne
 ``Metrics`` and ``RateLimitedLog``.  What one publishes on the stream's topic in the
 other's partition is handed to the other's ``messages``, as the broker's mapping would;
 what one sends on ``<cluster.name>.handover.<writer id>`` lands in the other's
-``answers``, as a plain NATS subscription would.  Loading a stream (the daemon's
-``_cluster_load``) is a recorded call; the loaded journal's headers are real
+``answers``, as a plain NATS subscription would.  Loading a stream
+(``ClusterKeeper.load``) is a recorded call; the loaded journal's headers are real
 ``clusterstate.Restored`` records.  The transitions: deferred for an answer or for
 cluster.redelivery_wait, not deferred, released by an answer or when its wait is over,
 a load that fails, a stream let go while it waits, an ask for streams this shard

@@ -61,7 +61,7 @@ def _written(tmp_path: Path, port: int, topic: str) -> None:
     d = _daemon(tmp_path, port, "a")
     try:
         d.process([_array(topic, 0.0, [500.0] * 50)])
-        assert d._cluster_snapshot()
+        assert d.keeper.snapshot()
         d.process([_array(topic, 50.0, [500.0] * 10)])
     finally:
         _close(d)
@@ -291,10 +291,10 @@ def test_a_snapshot_entry_damaged_while_the_owner_runs_is_written_anew_not_taken
     d.log.addHandler(lines)
     try:
         d.process([_array(topic, 0.0, [500.0] * 50)])
-        assert d._cluster_snapshot()
+        assert d.keeper.snapshot()
         asyncio.run(_kv(server, topic, b"\xff\x00 garbage"))
         d.process([_array(topic, 50.0, [500.0] * 10)])
-        assert d._cluster_snapshot()
+        assert d.keeper.snapshot()
         assert topic in d.engines and d.engines[topic].samples_total == 60
         assert _counter(d, "shiftwatch_stream_states_set_aside_total") == 1
         said = [x for x in lines.lines if f"bucket {NAME}_state key {stream_key(topic)}" in x]
@@ -360,7 +360,7 @@ def test_a_message_no_daemon_wrote_found_at_a_snapshot_is_named_not_taken_for_an
     try:
         d.process([_array(topic, 0.0, [500.0] * 50)])
         seq = asyncio.run(_publish_journal(server, topic, b"\xff\x00 garbage"))
-        assert d._cluster_snapshot()
+        assert d.keeper.snapshot()
         assert not any("written by another daemon" in x for x in lines.lines), lines.lines
         said = [x for x in lines.lines if f"{NAME}_journal sequence {seq}" in x and "no shiftwatch" in x]
         assert said, lines.lines

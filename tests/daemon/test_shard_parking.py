@@ -256,7 +256,7 @@ def test_a_stale_engine_is_not_saved_over_the_work_of_the_stream_s_new_writer(
         assert topic in d.engines and d.engines[topic].records_total.get("detected", 0) >= 1
         assert topic in d.status._records
         _journal_as(server, "w-new", topic, np.arange(300.0, 330.0))
-        assert d._cluster_snapshot()
+        assert d.keeper.snapshot()
         assert topic not in d.engines and topic not in d.status._records
         assert _journaled(server, topic) == [float(i) for i in range(330)]  # nothing purged
     finally:
@@ -630,7 +630,7 @@ def test_late_samples_refused_by_an_owner_that_began_after_the_change_are_set_as
         assert _counter(d, "shiftwatch_samples_handed_over_total") == 0
         assert _journaled(server, topic) == [float(i) for i in range(100)]
         assert _parked(server, topic) == ([], [], 0)
-        assert topic not in d._parked_here
+        assert topic not in d.keeper.parked_here
     finally:
         _close(d)
 
