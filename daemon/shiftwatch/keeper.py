@@ -22,7 +22,8 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from shiftwatch.config import Config, StreamConfig
-from shiftwatch.core.engine import AlertRecord, StreamEngine
+from shiftwatch.core.engine import StreamEngine
+from shiftwatch.core.records import AlertRecord
 from shiftwatch.journal import JournalGroup
 from shiftwatch.levels import LevelBoard
 from shiftwatch.metrics import Metrics, StreamStats
