@@ -32,7 +32,8 @@ import pytest
 
 from shiftwatch.clusterstate import ClusterState
 from shiftwatch.config import StreamConfig, load_config
-from shiftwatch.core.engine import AlertRecord, StreamEngine
+from shiftwatch.core.engine import StreamEngine
+from shiftwatch.core.records import AlertRecord
 from shiftwatch.daemon import RateLimitedLog
 from shiftwatch.journal import JournalGroup
 from shiftwatch.keeper import ClusterKeeper
