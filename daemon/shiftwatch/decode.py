@@ -725,6 +725,20 @@ def decode_many(payloads: Sequence[bytes | bytearray], fmt: str, *, value_path: 
     if fmt == "json" and len(payloads) > 1:
         value_parts, time_parts = _checked_options(fmt, value_path, time_path, max_bytes, max_items, max_depth)
         doc = _joined_objects(payloads, max_bytes, _watched(value_parts, time_parts))
+        if doc is None and columns:
+            # JSON arrays (batches): what decode() does first with one, without its checks of
+            # the options (done above) for each; anything else goes through decode().
+            many: list[Decoded] = []
+            for p, at in zip(payloads, now):
+                if type(p) is bytes and p[:1] == b"[" and len(p) <= max_bytes and p.isascii():
+                    _check_now(at)
+                    cols = _array_columns(p, value_parts, time_parts, max_items, max_depth)
+                    if cols is not None:
+                        many.append(Decoded([], [], cols))
+                        continue
+                many.append(decode(p, fmt, value_path=value_path, time_path=time_path, max_bytes=max_bytes,
+                                   now=at, max_items=max_items, max_depth=max_depth, columns=columns))
+            return many
     if doc is None:
         return [decode(p, fmt, value_path=value_path, time_path=time_path, max_bytes=max_bytes, now=t,
                        max_items=max_items, max_depth=max_depth, columns=columns) for p, t in zip(payloads, now)]
