@@ -1,7 +1,9 @@
 """The SenML column path with its lean reading (``decode.LEAN_SENML``: the columns of fields
 no record holds left out, the others read by list comprehensions, the colons counted by
-numpy, the times taken whole when they are all absolute) against the reference reading
-(every column by ``map(attrgetter)``, ``bytes.count``, ``np.where`` over every sum).
+numpy, the times taken whole when they are all absolute, the first record parsed apart
+from the others) against the reference reading
+(the whole pack parsed into one kind of record, every column by ``map(attrgetter)``,
+``bytes.count``, ``np.where`` over every sum).
 
 Guard of a speed change: the two must give the same names, units, record order and float64
 columns bit for bit, or both leave the pack to the usual path with the same readings and
@@ -161,6 +163,20 @@ def test_property_lean_times_are_the_reference_times(bt: float | None, ts: list[
     b'[{"bn": "a:", "n": "x", "t": 100000000000, "v": 1}, {"n": "x", "t": 100000000000, "v": 2}]',
     b'[{"bn": "a:", "bt": 1e308, "n": "x", "t": 1e308, "v": 1}]',
     b'[{"bn": "a:", "bv": 1e308, "n": "x", "v": 1e308}]',
+    # the first record parsed apart from the others: a "}" in its text, a trailing comma,
+    # whitespace of every kind around the comma, one record, a base field in the second
+    b'[{"bn": "a}b:", "n": "x", "v": 1}, {"n": "x", "v": 2}]',
+    b'[{"u": "}", "n": "x", "v": 1}, {"n": "x", "v": 2}]',
+    b'[{"n": "x", "v": 1},]',
+    b'[{"n": "x", "v": 1}, ]',
+    b'[{"n": "x", "v": 1},, {"n": "x", "v": 2}]',
+    b'[{"n": "x", "v": 1} {"n": "x", "v": 2}]',
+    b'[ {"n": "x", "v": 1}\t,\r\n{"n": "x", "v": 2} ]',
+    b'[{"n": "x", "v": 1}]',
+    b'[{"n": "x", "v": 1}, {"bn": "y:", "n": "x", "v": 2}]',
+    b'[{"n": "x", "v": 1}, 5]',
+    b'[{"n": "x", "v": 1}, {"n": "x", "v": 2}',
+    b'[{"n": "x", "v": {"a": 1}}, {"n": "x", "v": 2}]',
 ])
 def test_lean_senml_columns_on_chosen_packs(payload: bytes) -> None:
     assert_same(payload)
