@@ -161,7 +161,7 @@ class StreamStats:
 
 #: ``StreamStats.from_engine`` sets the snapshot's slots through their own setters
 #: (False: through the dataclass's ``__init__``, the reference).  The same snapshot
-#: (tests/daemon/test_metrics_snapshot.py); 1.0 against 2.7 microseconds a stream and
+#: (tests/daemon/test_metrics_snapshot.py); 1.6 against 2.7 microseconds a stream and
 #: round (timeit, 2026-12-05), which a shard in cluster mode pays for every stream fed.
 DIRECT_SNAPSHOT = True
 
