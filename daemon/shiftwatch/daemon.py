@@ -1166,7 +1166,8 @@ class Daemon:
             if self.owner is not None:
                 self.shards.note_topic(name, topic)
             if n > POOL_LAYERS:
-                arr = np.full(n, arrived)
+                arr = np.empty(n)
+                arr.fill(arrived)  # np.full's array, without its Python wrapper
                 g[2:5] = [arr if ts is None else ts, vs, arr]
                 return
         if type(g[2]) is not list:

@@ -42,7 +42,7 @@ import time
 import zlib
 from collections.abc import Iterable, Iterator, Sequence
 from pathlib import Path
-from typing import BinaryIO, NamedTuple
+from typing import Any, BinaryIO, NamedTuple
 
 import numpy as np
 from numpy.typing import NDArray
@@ -132,8 +132,17 @@ def encode_group(g: JournalGroup) -> bytes:
     index line from its cached parts and the sample count, then the group's times, values
     and arrival times as little-endian float64 (tests/daemon/test_journal_group_encoding.py)."""
     head, tail = _index_line(g.stream, g.unit, g.topic_filter)
-    return b"".join((head, b"%d" % int(g.times.shape[0]), tail,
-                     np.concatenate((g.times, g.values, g.arrived), dtype="<f8").data))
+    ts, vs, ar = g.times, g.values, g.arrived
+    if (ts.dtype is _NATIVE_F8 and vs.dtype is _NATIVE_F8 and ar.dtype is _NATIVE_F8 and ts.flags.c_contiguous
+            and vs.flags.c_contiguous and ar.flags.c_contiguous):
+        # Already little-endian float64 each, laid out in order: joined from where they
+        # lie, the bytes a concatenation into one array would hold, copied once.
+        return b"".join((head, b"%d" % int(ts.shape[0]), tail, ts.data, vs.data, ar.data))
+    return b"".join((head, b"%d" % int(ts.shape[0]), tail, np.concatenate((ts, vs, ar), dtype="<f8").data))
+
+
+#: float64 in the machine's order when that is little-endian (the journal's), else None.
+_NATIVE_F8: np.dtype[Any] | None = np.dtype("<f8") if np.dtype("<f8").isnative else None
 
 
 def _round_record(groups: Sequence[JournalGroup], singles: JournalSingles | None = None) -> list[bytes | memoryview]:

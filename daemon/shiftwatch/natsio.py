@@ -110,9 +110,15 @@ def _header_lines(headers: dict[str, str] | None) -> bytes | None:
 def _hpub(subject: str, reply: str, lines: bytes, expect_last: int | None, payload: bytes) -> bytes:
     """One message as nats-py's ``publish`` puts it on the wire (HPUB, its header block
     ``lines`` and the expected last sequence, then the payload): the same bytes."""
+    return b"".join(_hpub_parts(subject, reply, lines, expect_last, payload))
+
+
+def _hpub_parts(subject: str, reply: str, lines: bytes, expect_last: int | None,
+                payload: bytes) -> tuple[bytes, bytes, bytes, bytes]:
+    """:func:`_hpub`'s bytes in four parts, so that a batch joins all of its messages' parts
+    once (each payload copied once into the write, not first into a frame of its own)."""
     hdr = lines + (b"" if expect_last is None else f"{EXPECT_LAST}: {expect_last}\r\n".encode()) + b"\r\n"
-    return b"".join((f"HPUB {subject} {reply} {len(hdr)} {len(hdr) + len(payload)}\r\n".encode(),
-                     hdr, payload, b"\r\n"))
+    return (f"HPUB {subject} {reply} {len(hdr)} {len(hdr) + len(payload)}\r\n".encode(), hdr, payload, b"\r\n")
 
 
 def _describe(exc: BaseException) -> str:
@@ -398,11 +404,12 @@ class NatsIO:
         if (lines is None or not self._raw_send or not nc.is_connected or nc.is_draining_pubs
                 or any(len(payload) > nc._max_payload for _s, payload, _e in items)):
             return False
-        frames = [_hpub(subject, prefix + token, lines, expect_last, payload)
-                  for token, (subject, payload, expect_last) in zip(tokens, items)]
+        parts: list[bytes] = []
+        for token, (subject, payload, expect_last) in zip(tokens, items):
+            parts += _hpub_parts(subject, prefix + token, lines, expect_last, payload)
         nc.stats["out_msgs"] += len(items)
         nc.stats["out_bytes"] += sum(len(payload) for _s, payload, _e in items)
-        await nc._send_command(b"".join(frames))
+        await nc._send_command(b"".join(parts))
         if nc._flush_queue is not None and nc._flush_queue.empty():
             await nc._flush_pending()
         return True
