@@ -1906,11 +1906,11 @@ def current_stream_name(name: str, spec: StreamConfig) -> str:
 
     Examples
     --------
-    >>> spec = StreamConfig("ravensmoor/l4/+/senml", format="senml")
-    >>> current_stream_name("ravensmoor/l4/filler/senml/urn:ravensmoor:l4:filler:fill_volume", spec)
-    'ravensmoor/l4/filler/senml/l4/filler/fill_volume'
-    >>> current_stream_name("ravensmoor/l4/filler/senml/oven2:zone3", spec)
-    'ravensmoor/l4/filler/senml/oven2:zone3'
+    >>> spec = StreamConfig("brackenfield/l4/+/senml", format="senml")
+    >>> current_stream_name("brackenfield/l4/filler/senml/urn:brackenfield:l4:filler:fill_volume", spec)
+    'brackenfield/l4/filler/senml/l4/filler/fill_volume'
+    >>> current_stream_name("brackenfield/l4/filler/senml/oven2:zone3", spec)
+    'brackenfield/l4/filler/senml/oven2:zone3'
     >>> current_stream_name("plant/x/urn:a:b:c", StreamConfig("plant/#", format="senml"))
     'plant/x/b/c'
     """

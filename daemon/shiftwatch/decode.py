@@ -1363,7 +1363,7 @@ def readable_senml_name(name: str) -> str:
 
     Examples
     --------
-    >>> readable_senml_name("urn:ravensmoor:l4:filler:fill_volume")
+    >>> readable_senml_name("urn:brackenfield:l4:filler:fill_volume")
     'l4/filler/fill_volume'
     >>> readable_senml_name("urn:dev:ow:10e2073a01080063:temp")
     'ow/10e2073a01080063/temp'
@@ -1383,9 +1383,9 @@ def stream_name(topic: str, name: str | None) -> str:
     """The stream a reading belongs to: ``topic``, or ``topic/name`` for SenML names.
 
     A SenML name that is a URN is read as levels first
-    (:func:`readable_senml_name`): ``urn:ravensmoor:l4:filler:fill_volume`` on
-    the topic ``ravensmoor/l4/senml`` gives the stream
-    ``ravensmoor/l4/senml/l4/filler/fill_volume``.
+    (:func:`readable_senml_name`): ``urn:brackenfield:l4:filler:fill_volume`` on
+    the topic ``brackenfield/l4/senml`` gives the stream
+    ``brackenfield/l4/senml/l4/filler/fill_volume``.
 
     The result is used both as a suffix of MQTT topic levels (alerts are
     published under it) and as a Prometheus label value, so it is made safe

@@ -62,11 +62,11 @@ metric and a device metric give the same name (a node metric named
 
 Examples
 --------
->>> parse_topic("spBv1.0/Ravensmoor/DDATA/Line4Edge/Filler3")
-SpTopic(group='Ravensmoor', kind='DDATA', node='Line4Edge', device='Filler3')
->>> parse_topic("spBv1.0/Ravensmoor/NBIRTH/Line4Edge")
-SpTopic(group='Ravensmoor', kind='NBIRTH', node='Line4Edge', device=None)
->>> parse_topic("ravensmoor/l4/fill") is None
+>>> parse_topic("spBv1.0/Brackenfield/DDATA/Line4Edge/Filler3")
+SpTopic(group='Brackenfield', kind='DDATA', node='Line4Edge', device='Filler3')
+>>> parse_topic("spBv1.0/Brackenfield/NBIRTH/Line4Edge")
+SpTopic(group='Brackenfield', kind='NBIRTH', node='Line4Edge', device=None)
+>>> parse_topic("brackenfield/l4/fill") is None
 True
 """
 

@@ -664,8 +664,8 @@ def test_stream_name_examples() -> None:
     # read as levels, without urn:dev:.
     assert stream_name("brackenfield/oven2", "urn:dev:ow:10e2073a01080063:temp") == \
         "brackenfield/oven2/ow/10e2073a01080063/temp"
-    assert stream_name("ravensmoor/l4/senml", "urn:ravensmoor:l4:filler:fill_volume") == \
-        "ravensmoor/l4/senml/l4/filler/fill_volume"
+    assert stream_name("brackenfield/l4/senml", "urn:brackenfield:l4:filler:fill_volume") == \
+        "brackenfield/l4/senml/l4/filler/fill_volume"
     assert stream_name("brackenfield/oven2", "oven2:zone3") == "brackenfield/oven2/oven2:zone3"
     odd = stream_name("brackenfield/+/cap#\x00", "a\nb")
     assert odd.startswith("brackenfield/_/cap__/a_b~") and len(odd) == len("brackenfield/_/cap__/a_b~") + 12

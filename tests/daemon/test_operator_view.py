@@ -54,7 +54,7 @@ def step_series(seed: int, n: int = 800, step: int = 500) -> list[float]:
 
 
 FILLER = """\
-  - topic: ravensmoor/line4/+/fill
+  - topic: brackenfield/line4/+/fill
     format: json
     value: v
     time: ts
@@ -71,7 +71,7 @@ def test_json_log_lines_carry_time_stream_event_and_phase_and_the_caution_comes_
     d.run_args = ["--log-format", "json"]
     d.start()
     alerts = collector("sw/alerts/#")
-    topic = "ravensmoor/line4/head1/fill"
+    topic = "brackenfield/line4/head1/fill"
     for i, v in enumerate(step_series(11)):
         publisher.publish(topic, json.dumps({"v": v, "ts": int((T0 + i) * 1000)}))
     assert alerts.wait_for(lambda items: any(b.get("phase") == "confirmed" for _, b in items))
@@ -99,7 +99,7 @@ def test_json_log_lines_carry_time_stream_event_and_phase_and_the_caution_comes_
 def test_retained_levels_have_a_label_rounded_numbers_and_say_offline_after_a_stop(
         daemon_factory, collector, publisher) -> None:
     d = daemon_factory(FILLER).start()
-    topic = "ravensmoor/line4/head2/fill"
+    topic = "brackenfield/line4/head2/fill"
     x = step_series(12, n=300)
     for i, v in enumerate(x):
         publisher.publish(topic, json.dumps({"v": v, "ts": int((T0 + i) * 1000)}))
@@ -125,7 +125,7 @@ def test_senml_streams_get_readable_names_and_state_saved_under_the_old_name_car
     from shiftwatch.statestore import StateStore
 
     topic = "brackenfield/line4/filler/senml"
-    old = f"{topic}/urn:ravensmoor:l4:filler:fill_volume"  # the name releases before this one gave
+    old = f"{topic}/urn:brackenfield:l4:filler:fill_volume"  # the name releases before this one gave
     new = f"{topic}/l4/filler/fill_volume"
     # A snapshot as an earlier release left it: the stream warmed up under its old name.
     eng = StreamEngine(old, DetectionSettings(), unit="ml")
@@ -140,7 +140,7 @@ def test_senml_streams_get_readable_names_and_state_saved_under_the_old_name_car
     assert f"stream {old} is now named {new}" in log and "restored 1 stream(s)" in log
     alerts = collector("sw/alerts/#")
     for i in range(300, 700):
-        pack = [{"bn": "urn:ravensmoor:l4:filler:", "bt": T0 + i, "n": "fill_volume", "u": "ml",
+        pack = [{"bn": "urn:brackenfield:l4:filler:", "bt": T0 + i, "n": "fill_volume", "u": "ml",
                  "v": float(x[i])}]
         publisher.publish(topic, json.dumps(pack))
     assert alerts.wait_for(lambda items: any(b.get("phase") == "confirmed" for _, b in items))
