@@ -216,3 +216,29 @@ def test_spread_change_agrees_with_levene_on_independent_samples() -> None:
             agree += s is not None
             twofold += 1
     assert agree >= 0.8 * twofold
+
+
+@pytest.mark.parametrize("quantum", [2.0 * SIG, SIG])
+def test_quantised_noise_alone_rarely_reads_as_a_stuck_sensor(quantum: float) -> None:
+    # Readings quantised at one or two sigmas, the level on a quantum: no fault at all.
+    # A look names a stuck sensor when the run it sees has less than REPEAT_P of chance;
+    # on noise alone that should happen at about that rate.  The chance that a reading
+    # holds the level's own value is 2 Phi(q / 2 sigma) - 1 (scipy.stats.norm: 0.68 at
+    # q = 2 sigma), above the share of neighbouring pairs that repeat (the sum of the
+    # values' squared shares, 0.52), which the run used to be held to; and a run of all
+    # but one in ten is likelier than the same number in a row (binomial tail, common
+    # practice).  (Failed before: 3% of looks at q = 2 sigma, 0.1% at q = sigma.)
+    from shiftwatch.core import sensorcheck
+
+    shares = stats.norm.cdf(np.arange(-6, 7) * quantum + quantum / 2, scale=SIG) \
+        - stats.norm.cdf(np.arange(-6, 7) * quantum - quantum / 2, scale=SIG)
+    rng = np.random.default_rng(17)
+    x = np.round((LEVEL + SIG * rng.standard_normal(30_300)) / quantum) * quantum
+    _, counts = np.unique(x, return_counts=True)
+    assert counts.max() / x.shape[0] == pytest.approx(shares.max(), abs=0.01)
+    assert float(np.sum(shares ** 2)) < shares.max()
+    looks = flags = 0
+    for t in range(300, x.shape[0], 1):
+        looks += 1
+        flags += sensorcheck.repeated_value(x[t - 300:t]) is not None
+    assert flags <= 3 * sensorcheck.REPEAT_P * looks, (flags, looks)

@@ -113,9 +113,10 @@ def repeated_value(x: FloatArray) -> Repeated | None:
     The run is the longest stretch at the end of ``x`` that begins with its last value
     and in which at least :data:`REPEAT_SHARE` of the readings are that value (a stuck
     sensor's odd other reading does not end it); ``held`` of its ``of`` readings are.
-    It is improbable when the share of neighbouring readings before it that repeat
-    (Laplace's estimate, ``(r + 1) / (n + 1)``), raised to ``count - 1``, is below
-    :data:`REPEAT_P`.
+    It is improbable when, at a chance per reading of the share of neighbouring readings
+    before it that repeat (Laplace's estimate, ``(r + 1) / (n + 1)``) or, where larger,
+    the share of the most common value there, ``held - 1`` or more of the run's other
+    ``of - 1`` readings repeating its value is less likely than :data:`REPEAT_P`.
 
     >>> rng = np.random.default_rng(3)
     >>> before = np.round(500 + 0.4 * rng.standard_normal(300), 2)
@@ -142,9 +143,25 @@ def repeated_value(x: FloatArray) -> Repeated | None:
     pairs = max(before.shape[0] - 1, 0)
     repeats = int(np.count_nonzero(before[1:] == before[:-1])) if pairs else 0
     p = (repeats + 1.0) / (pairs + 1.0)
-    if p >= 1.0 or (count - 1) * math.log(p) >= math.log(REPEAT_P):
+    if before.shape[0]:
+        # A run of the most common value repeats at that value's own share, not at the
+        # share of all neighbouring pairs (sum of the values' squared shares, less): on
+        # readings quantised at twice the sigma, 3% of looks named a stuck sensor.
+        p = max(p, float(np.unique(before, return_counts=True)[1].max()) / before.shape[0])
+    if p >= 1.0 or _log_tail(count - 1, of - 1, p) >= math.log(REPEAT_P):
         return None
     return Repeated(v, count, of)
+
+
+def _log_tail(k: int, m: int, p: float) -> float:
+    """The log of the chance of at least ``k`` repeats in ``m`` readings at ``p`` each (the
+    binomial's upper tail): a run that holds all but one in ten is that much likelier than
+    ``p ** k``, the chance of ``k`` repeats in a row (``k == m``)."""
+    lp, lq = math.log(p), math.log1p(-p)
+    terms = [math.lgamma(m + 1) - math.lgamma(j + 1) - math.lgamma(m - j + 1) + j * lp + (m - j) * lq
+             for j in range(k, m + 1)]
+    top = max(terms)
+    return top + math.log(sum(math.exp(t - top) for t in terms))
 
 
 def abs_corr(rho: float) -> float:
