@@ -242,3 +242,25 @@ def test_quantised_noise_alone_rarely_reads_as_a_stuck_sensor(quantum: float) ->
         looks += 1
         flags += sensorcheck.repeated_value(x[t - 300:t]) is not None
     assert flags <= 3 * sensorcheck.REPEAT_P * looks, (flags, looks)
+
+
+def test_after_a_spread_change_the_sigma_comes_to_the_new_spread() -> None:
+    # A threefold spread change: the event ends undecided and the stream watches on at a
+    # sigma measured on the 60 or so samples after the detection (0.7 to 1.2 of the new
+    # spread).  That sigma must give way to the readings that follow, as any baseline's
+    # does: 6,000 samples later the engine's sigma is the readings' own (numpy's standard
+    # deviation of the samples at the new spread) within 5% (a Huber scale on 6,000
+    # normal samples is within about 2%: common practice).  (Failed before: the new sigma
+    # kept the old baseline's weight of 6,216 samples and was still 0.88 to 0.96 of the
+    # spread 6,000 samples on, 2.64 to 2.88 old sigmas for 3.)
+    n, at = 9000, 3000
+    for state in range(6):
+        rng = np.random.default_rng(300 + state)
+        e = rng.standard_normal(n)
+        e[at:] *= 3.0
+        x = np.round(LEVEL + SIG * e, 2)
+        recs, eng = feed(x)
+        named = [r for r in recs if r.spread_ratio is not None]
+        assert named and named[0].phase == "undecided", (state, [r.phase for r in recs])
+        own = float(np.std(x[at:], ddof=1))
+        assert eng.sigma == pytest.approx(own, rel=0.05), (state, eng.sigma / SIG, own / SIG)

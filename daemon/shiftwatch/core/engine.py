@@ -2255,7 +2255,12 @@ class StreamEngine:
                 and _sensorcheck.step_stands(shown, b.sigma, spread, vf, self.settings.confirm_p_value)):
             return False  # a step that stands at the new spread too: decided as ever, the spread named
         self._end_event(ev, "undecided", shown, result, as_of)
-        self._baseline = replace(b, sigma=b.sigma * spread.ratio, innovation_sigma=b.innovation_sigma * spread.ratio)
+        # The new sigma rests on the samples the spread was measured on, not on the old
+        # baseline's: so many it weighs in the refinements to come (with b.n, a sigma from
+        # some 60 samples outweighed thousands of later ones) and in the test's allowance.
+        rests_on = len(vals) - max(0, ev.trip_len - _sensorcheck.SPREAD_LEAD)
+        self._baseline = replace(b, sigma=b.sigma * spread.ratio, innovation_sigma=b.innovation_sigma * spread.ratio,
+                                 n=max(1, min(b.n, rests_on)))
         self._reanchor(fit.index)
         return True
 
