@@ -61,6 +61,10 @@ _HALF_NORMAL_MEDIAN = 0.6744897501960817
 REPEAT_SHARE = 0.9
 #: The fewest readings of the one value for a record to say the readings repeat it.
 REPEAT_MIN = 3
+#: The fewest readings of the most common value before a run for its share to be the
+#: chance a reading repeats it (a quantised stream's; on a fine resolution the most
+#: common value's few readings are chance).
+REPEAT_MODE_MIN = 30
 #: A run is a stuck sensor's when the stream's own repeat rate makes it less likely than this.
 REPEAT_P = 1e-4
 #: The least ratio of the spreads (after over before) reported as a spread change.
@@ -143,11 +147,15 @@ def repeated_value(x: FloatArray) -> Repeated | None:
     pairs = max(before.shape[0] - 1, 0)
     repeats = int(np.count_nonzero(before[1:] == before[:-1])) if pairs else 0
     p = (repeats + 1.0) / (pairs + 1.0)
-    if before.shape[0]:
+    if before.shape[0] >= REPEAT_MODE_MIN:
         # A run of the most common value repeats at that value's own share, not at the
         # share of all neighbouring pairs (sum of the values' squared shares, less): on
-        # readings quantised at twice the sigma, 3% of looks named a stuck sensor.
-        p = max(p, float(np.unique(before, return_counts=True)[1].max()) / before.shape[0])
+        # readings quantised at twice the sigma, 3% of looks named a stuck sensor.  Only
+        # a value held often enough for its share to mean something: on finely resolved
+        # readings the most common of a few hundred holds a handful by chance.
+        top = int(np.unique(before, return_counts=True)[1].max())
+        if top >= REPEAT_MODE_MIN:
+            p = max(p, top / before.shape[0])
     if p >= 1.0 or _log_tail(count - 1, of - 1, p) >= math.log(REPEAT_P):
         return None
     return Repeated(v, count, of)
