@@ -264,3 +264,32 @@ def test_after_a_spread_change_the_sigma_comes_to_the_new_spread() -> None:
         assert named and named[0].phase == "undecided", (state, [r.phase for r in recs])
         own = float(np.std(x[at:], ddof=1))
         assert eng.sigma == pytest.approx(own, rel=0.05), (state, eng.sigma / SIG, own / SIG)
+
+
+def test_a_step_confirmed_with_a_spread_change_watches_on_at_the_new_spread() -> None:
+    # A real 2-sigma step and the noise's spread doubling at once: where the step stands
+    # at the new spread, the event ends confirmed and its record names the spread
+    # (spread_ratio, sigma_after).  The stream must then watch on at that spread, as
+    # after an undecided spread change (README, A sensor fault, not a step): not detect
+    # the wider noise again.  That the spread grew is checked by scipy.stats.levene
+    # (Brown-Forsythe) on the 300 readings either side.  (Failed before: in each such
+    # stream the engine kept the old sigma, the wider noise was detected again and an
+    # event ended undecided naming the same spread change a second time.)
+    named = 0
+    for state in range(30):
+        rng = np.random.default_rng(600 + state)
+        e = rng.standard_normal(N)
+        e[F:] *= 2.0
+        x = np.round(LEVEL + SIG * e, 2)
+        x[F:] += 2.0 * SIG
+        assert stats.levene(x[F - 300:F], x[F:F + 300], center="median").pvalue < 1e-6
+        recs, _ = feed(x)
+        after = [r for r in recs if r.as_of >= T0 + F - 5]
+        first = next((r for r in after if r.phase == "confirmed"), None)
+        if first is None or first.spread_ratio is None:
+            continue
+        named += 1
+        later = [r for r in after if r.as_of > first.as_of]
+        assert not [r for r in later if r.spread_ratio is not None], (state, [r.phase for r in later])
+        assert [r.phase for r in later].count("detected") <= 1, (state, [r.phase for r in later])
+    assert named >= 3

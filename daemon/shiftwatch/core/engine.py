@@ -2226,6 +2226,10 @@ class StreamEngine:
             self._end_event(ev, phase, fit, result, as_of, **extra)
         else:
             self._end_event(ev, "undecided", shown, result, as_of)
+        # A step that stands at a wider spread (its record names it): the stream watches on
+        # at that spread too, or the wider noise is detected again (as _spread_ends does).
+        self._adopt_spread(ev, b, _sensorcheck.event_spread(self._fitter.values, ev.trip_len, b,
+                                                            self.settings.confirm_p_value))
         self._reanchor(fit.index)
 
     def _spread_ends(self, ev: OpenEvent, fit: StepFit, b: Baseline, outcome: str, result: BatchResult,
@@ -2255,14 +2259,22 @@ class StreamEngine:
                 and _sensorcheck.step_stands(shown, b.sigma, spread, vf, self.settings.confirm_p_value)):
             return False  # a step that stands at the new spread too: decided as ever, the spread named
         self._end_event(ev, "undecided", shown, result, as_of)
+        self._adopt_spread(ev, b, spread)
+        self._reanchor(fit.index)
+        return True
+
+    def _adopt_spread(self, ev: OpenEvent, b: Baseline, spread: _sensorcheck.Spread | None) -> None:
+        """Watch on at the spread an ending event's samples show (sigma and innovation sigma
+        times its ratio), when they show one; called before :meth:`_reanchor`."""
+        if spread is None:
+            return
+        assert self._fitter is not None
         # The new sigma rests on the samples the spread was measured on, not on the old
         # baseline's: so many it weighs in the refinements to come (with b.n, a sigma from
         # some 60 samples outweighed thousands of later ones) and in the test's allowance.
-        rests_on = len(vals) - max(0, ev.trip_len - _sensorcheck.SPREAD_LEAD)
+        rests_on = len(self._fitter.values) - max(0, ev.trip_len - _sensorcheck.SPREAD_LEAD)
         self._baseline = replace(b, sigma=b.sigma * spread.ratio, innovation_sigma=b.innovation_sigma * spread.ratio,
                                  n=max(1, min(b.n, rests_on)))
-        self._reanchor(fit.index)
-        return True
 
     def _conflicts(self, fit: StepFit, sign: int, b: Baseline) -> bool:
         """Whether ``fit`` contradicts a trial's "step" in direction ``sign``: a step
