@@ -445,7 +445,7 @@ def engine_parts(repeat: int) -> None:
     watch = se._watch
 
     def watch_stretch(self: Any, t: Any, x: Any, idx: Any, result: Any, bounds: Any = None) -> int:
-        young = self._young is not None
+        young = self._young.level is not None
         t0 = clock()
         used = watch(self, t, x, idx, result, bounds)
         if not young:

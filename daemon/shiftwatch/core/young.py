@@ -1,5 +1,8 @@
-"""Helpers of the young level's loop (StreamEngine._young_loop): a CUSUM bank's sums and
-rows for its recursion, the least sums that reach its limits, and the young level's fields.
+"""The young level: an engine's young phase (:class:`YoungPhase`: the self-starting level
+while it rests on few samples, whether the baseline is a provisional stand-in for it, the
+split that opened its event), and the helpers of its loop (StreamEngine._young_loop): a
+CUSUM bank's sums and rows for its recursion, the least sums that reach its limits, and
+the young level's fields.
 """
 
 from __future__ import annotations
@@ -10,7 +13,7 @@ import math
 import numpy as np
 from numpy.typing import NDArray
 
-from shiftwatch.core.selfstart import SelfStart
+from shiftwatch.core.selfstart import SelfStart, SplitEvidence
 from shiftwatch.core.sequential import SequentialTest
 
 FloatArray = NDArray[np.float64]
@@ -95,3 +98,88 @@ def _young_from(values: FloatArray) -> SelfStart:
     for v in values.tolist():
         ys.add(v)
     return ys
+
+
+class YoungPhase:
+    """The young phase of one stream's engine: the self-starting level (:attr:`level`, a
+    :class:`.selfstart.SelfStart`, None once the level is established), whether the
+    engine's baseline is a provisional stand-in for an event opened from the first
+    warm-up (:attr:`provisional`), and the split that opened such an event, until the
+    event takes it (:attr:`split`).
+
+    The engine (StreamEngine) runs the phase's loop on the level (``_watch_young``,
+    ``_young_loop``) and calls the transitions below; it saves and restores the level
+    and the provisional flag as the fields ``young`` and ``provisional`` of its state
+    (the split never outlives the call that sets it).
+
+    >>> yp = YoungPhase()
+    >>> yp.restart(np.array([1.0, 2.0, 3.0])).mean
+    2.0
+    >>> yp.take_back([4.0]); yp.level.n, yp.level.mean
+    (4, 2.5)
+    >>> ys = yp.settle(); yp.level is None, ys.n
+    (True, 4)
+    """
+
+    # One per engine, thousands of them in the daemon: no per-instance dict.
+    __slots__ = ("level", "provisional", "split")
+
+    def __init__(self) -> None:
+        self.level: SelfStart | None = None  # the level while it rests on few samples
+        self.provisional = False  # the baseline is a stand-in for an event during the first warm-up
+        self.split: SplitEvidence | None = None  # the split that opened a first-warm-up event
+
+    def begin(self) -> SelfStart:
+        """The first warm-up's level: a new one of unknown spread, unless one is young already."""
+        if self.level is None:
+            self.level = SelfStart(None)
+        return self.level
+
+    def restart(self, values: FloatArray) -> SelfStart:
+        """The first warm-up starts again (spikes or a shift set aside) from these samples."""
+        self.level = _young_from(values)
+        return self.level
+
+    def end(self) -> None:
+        """The baseline is established: no young level, no provisional stand-in."""
+        self.provisional = False
+        self.level = None
+
+    def settle(self) -> SelfStart:
+        """A re-anchored level that rests on enough samples leaves the phase: its held
+        samples taken in, it is returned for the baseline to take its level from."""
+        ys = self.level
+        assert ys is not None
+        self.level = None
+        ys.release()
+        return ys
+
+    def take_split(self) -> SplitEvidence | None:
+        """The split that opened the event now opening (None: none), cleared."""
+        split, self.split = self.split, None
+        return split
+
+    def take_back(self, values: list[float]) -> None:
+        """An event that found no step: the held samples and the event's join the level."""
+        ys = self.level
+        assert ys is not None
+        ys.release()
+        for v in values:
+            ys.add(v)
+
+    def reanchor(self, values: list[float], known: tuple[float, float, int] | None) -> SelfStart:
+        """A new young level after a step, of these samples: on a provisional baseline (the
+        first warm-up, ``known`` None) a level of unknown spread whose spread and
+        autocorrelation go on pooled over both regimes, the provisional flag cleared; else
+        one of the known innovation sigma, phi and follow count in ``known`` (SelfStart's)."""
+        if self.provisional:
+            old = self.level
+            ys = SelfStart(None) if old is None else old.carry_over()
+            self.provisional = False
+        else:
+            assert known is not None
+            ys = SelfStart(known[0], known[1], follow=known[2])
+        for v in values:
+            ys.add(v)
+        self.level = ys
+        return ys
