@@ -414,7 +414,7 @@ def engine_parts(repeat: int) -> None:
     parts = [(se, "process", "process: screening, the loop over phases, tallies"),
              (se, "_warm", "first warm-up's end: robust baseline, step fit, lone outliers"),
              (se, "_young_loop", "young level, sample by sample (first warm-up, after a step)"),
-             (se, "_flush_splits", "young level's split screens, weighed together"),
+             (eng_mod, "weigh_splits", "young level's split screens, weighed together"),
              (se, "_young_event", "young level's events"),
              (se, "_watch", "watch stretch: the rest"),
              (se, "_split_spikes", "watch stretch: spike split"),

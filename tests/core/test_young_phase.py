@@ -24,8 +24,14 @@ import numpy as np
 import pytest
 
 from shiftwatch.core.engine import StreamEngine
-from shiftwatch.core.selfstart import SelfStart
-from shiftwatch.core.young import YoungPhase
+from shiftwatch.core.selfstart import SelfStart, split_evidence
+from shiftwatch.core.young import (
+    YoungPhase,
+    _SplitCalled,
+    provisional_baseline,
+    weigh_splits,
+    young_split,
+)
 
 T0 = 1_788_000_000.0
 
@@ -152,3 +158,48 @@ def test_the_engine_saves_and_restores_its_young_phase_under_the_old_names() -> 
     fs = fresh.get_state()
     assert fs["young"] is not None and fs["young"]["sigma"] is None and fs["provisional"] is False
     assert isinstance(SelfStart.from_state(fs["young"]), SelfStart)
+
+
+def test_the_provisional_baseline_stands_on_the_young_level_or_on_the_split() -> None:
+    rng = np.random.default_rng(12)
+    x = (8.0 + 0.3 * rng.standard_normal(60)).tolist()
+    dt = rng.choice([1.0, 1.0, 2.0], size=59)
+    times = T0 + np.concatenate(([0.0], np.cumsum(dt)))
+    yp = YoungPhase()
+    ys = yp.restart(np.array(x))
+    b = provisional_baseline(ys, None, times, None, 4.0)
+    assert b.level == pytest.approx(statistics.fmean(x), rel=1e-13)
+    assert b.sigma == pytest.approx(statistics.stdev(x), rel=1e-12)
+    assert b.interval == statistics.median(np.diff(times).tolist())  # the sampling interval
+    assert (b.n, b.clip, b.quantum) == (60, 4.0, 0.0)
+    # innovation sigma: sigma * sqrt(1 - phi^2) (AR(1), Box & Jenkins), times the allowance
+    assert b.innovation_sigma == pytest.approx(
+        b.sigma * math.sqrt(1.0 - b.phi ** 2) * math.sqrt(ys.variance_factor(2.0) if b.phi == 0.0 else 1.0),
+        rel=1e-12)
+    # a step in the samples: the split's level before it and its spread
+    x2 = np.array(x + (9.5 + 0.3 * rng.standard_normal(40)).tolist())
+    ev = split_evidence(x2, phi_margin=0.0)
+    assert ev is not None
+    b2 = provisional_baseline(yp.restart(x2), ev, T0 + np.arange(100.0), 1e-3, 4.0)
+    assert (b2.level, b2.sigma, b2.interval) == (ev.level_before, max(ev.sigma, 1e-3), 1.0)
+
+
+@pytest.mark.parametrize("step", [0.0, 0.6, 1.5])
+def test_noted_split_tests_raise_exactly_when_one_of_them_calls_a_step(step: float) -> None:
+    # weigh_splits settles most noted tests by split_screen and must agree with asking
+    # young_split (split_evidence and its gate) of each noted prefix in turn.
+    rng = np.random.default_rng(int(10 * step) + 1)
+    for _ in range(20):
+        x = 5.0 + rng.standard_normal(160)
+        x[int(rng.integers(25, 120)):] += step
+        lengths = sorted({int(v) for v in rng.integers(20, 161, size=12)})
+        arl0 = float(rng.choice([600.0, 3600.0]))
+        want = any(young_split(x[:n], arl0) is not None for n in lengths)
+        deferred = [(n, arl0) for n in lengths]
+        try:
+            weigh_splits(x, deferred)
+            got = False
+        except _SplitCalled:
+            got = True
+        assert got == want
+        assert deferred == ([] if not got else [(n, arl0) for n in lengths])

@@ -99,14 +99,29 @@ from shiftwatch.core.selfstart import (
     SelfStart,
     split_critical_t,
     split_evidence,
-    split_screen,
 )
 from shiftwatch.core.sequential import SequentialTest
 from shiftwatch.core.settings import ARL_RANGE, DetectionSettings
 from shiftwatch.core.spikes import backed_by_prev, lone_outliers, spike_confirmed, young_spike_limit
 from shiftwatch.core.stepfit import StepFit, StepFitter, anchor_step, supf_critical, supf_pvalue
 from shiftwatch.core.window import Window
-from shiftwatch.core.young import YoungPhase, _four_terms, _small_bank, _young_fields, _young_put
+from shiftwatch.core.young import (
+    YOUNG_SPLIT_BEFORE,
+    YOUNG_SPLIT_FROM,
+    YOUNG_SPLIT_GATE,
+    YOUNG_SPLIT_MARGIN,
+    YOUNG_SPLIT_SCREEN,
+    YOUNG_SPLIT_SHARE,
+    YoungPhase,
+    _four_terms,
+    _small_bank,
+    _SplitCalled,
+    _young_fields,
+    _young_put,
+    provisional_baseline,
+    weigh_splits,
+    young_split,
+)
 
 FloatArray = NDArray[np.float64]
 
@@ -195,28 +210,6 @@ YOUNG_Z_HOLD = 2.0
 #: autocorrelated samples holding would feed the runs it is meant to wait out.
 YOUNG_HOLD_FROM = 20
 
-#: In the first warm-up the samples so far are also tested for one step at an unknown
-#: point (:func:`.selfstart.split_evidence`), from this many samples on, whenever the
-#: young test's statistic reaches YOUNG_SPLIT_SCREEN of its threshold or a sample lies
-#: YOUNG_Z_HOLD sigmas out; a step is called at a p-value below YOUNG_SPLIT_SHARE over
-#: the plant's ARL.  The self-starting test absorbs a step into the level it measures
-#: against; this test does not, so a step in a stream's first samples is not lost.
-YOUNG_SPLIT_FROM = 20
-YOUNG_SPLIT_SCREEN = 0.1
-YOUNG_SPLIT_SHARE = 0.5
-YOUNG_SPLIT_MARGIN = 0.0
-#: ... and only for a split with this many samples before it, whose autocorrelation is below
-#: YOUNG_SPLIT_GATE standard errors (autocorrelated noise wanders like a step over a few dozen
-#: samples; the t statistic allows for the autocorrelation as estimated, and the gate stands
-#: aside where the estimate itself says the noise wanders).  Measured over 1,500 new streams of
-#: 600 samples at false_alarm_every 1h: AR(1) phi 0.6 333 detections, phi 0.8 429 (nominal
-#: 250; 410 and 550 before the split test and the bias correction); 3 sigma steps at sample
-#: 20 found in 200 of 200 (gate 2: 198, with 321 and 395).  Measured again with the split's
-#: pooled autocorrelation (selfstart.SPLIT_POOL_MARGIN), 1,500 streams each: iid 135,
-#: phi 0.6 347, phi 0.8 497 (347 and 496 without it); 3 sigma steps at sample 20 found in
-#: 1,000 of 1,000 (998 without it).
-YOUNG_SPLIT_BEFORE = 15
-YOUNG_SPLIT_GATE = 3.0
 #: The name a record gives the split test when it tripped (its ``test``, ``statistic``:
 #: the split's t, ``threshold``: the t its bound calls a step above).
 SPLIT_TEST = "warmup_split"
@@ -292,9 +285,6 @@ READ_ITEMS = True
 #: divisions, the reference (tests/core/test_young_limits.py holds the two to each other).
 YOUNG_LIMITS = True
 
-
-class _SplitCalled(Exception):
-    """A split test noted by the young loop calls a step: the loop is run again."""
 
 #: A step is confirmed only while the fit of the event's samples shows it at this
 #: p-value (or ``confirm_p_value``, when larger): the trial alone confirmed wander of
@@ -1138,31 +1128,6 @@ class StreamEngine:
                     test.back_to(sums)
         return self._young_loop(t, x, idx, limit, result, None)
 
-    def _flush_splits(self, deferred: list[tuple[int, float]]) -> None:
-        """Weigh the split tests :meth:`_watch_young_fast` noted; raise :class:`_SplitCalled`
-        when one of them calls a step (the first that would have, in order)."""
-        if not deferred:
-            return
-        values = self._window.values
-        arl0 = deferred[0][1]
-        if any(a != arl0 for _, a in deferred):  # never within one batch; each on its own
-            for n, a in deferred:
-                self._flush_splits([(n, a)])
-            deferred.clear()
-            return
-        p_below = YOUNG_SPLIT_SHARE / arl0 if arl0 > 0.0 else 1.0
-        lengths = np.array([n for n, _ in deferred], dtype=np.intp)
-        sure = split_screen(values, lengths, p_below=p_below)
-        for n, none in zip(lengths.tolist(), sure.tolist()):
-            if none:
-                continue
-            ev = split_evidence(values[:n], phi_margin=YOUNG_SPLIT_MARGIN, p_below=p_below)
-            if (ev is not None and ev.split_at >= YOUNG_SPLIT_BEFORE
-                    and ev.phi < YOUNG_SPLIT_GATE / math.sqrt(ev.split_at)
-                    and ev.p_value * arl0 < YOUNG_SPLIT_SHARE):
-                raise _SplitCalled
-        deferred.clear()
-
     def _young_loop(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], limit: int,
                     result: BatchResult, deferred: list[tuple[int, float]] | None) -> int:
         """:meth:`_watch_young` in one loop: the same operations on the same floats in the
@@ -1241,7 +1206,7 @@ class StreamEngine:
             if kept >= limit:
                 _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
                 if deferred:
-                    self._flush_splits(deferred)
+                    weigh_splits(win.values, deferred)
                 if dirty:
                     test.set_small_sums(c, False)  # type: ignore[union-attr]
                 return i
@@ -1287,7 +1252,7 @@ class StreamEngine:
                 p_out = 1 if px > ymean else -1
                 if judged and spike_confirmed(dev, (px - ymean) / scale, band):
                     if deferred:
-                        self._flush_splits(deferred)
+                        weigh_splits(win.values, deferred)
                     self._prev_out = p_out
                     kept += 1
                     if self._feed_young(pt, px, clip):
@@ -1515,14 +1480,10 @@ class StreamEngine:
                     if deferred is not None and near:
                         deferred.append((win._n, self._test_arl0))
                         if len(deferred) >= SPLIT_DEFER_ROWS:
-                            self._flush_splits(deferred)
+                            weigh_splits(win.values, deferred)
                     elif near:
-                        ev = split_evidence(win.values, phi_margin=YOUNG_SPLIT_MARGIN,
-                                            p_below=YOUNG_SPLIT_SHARE / self._test_arl0 if self._test_arl0 > 0.0
-                                            else 1.0)
-                        if (ev is not None and ev.split_at >= YOUNG_SPLIT_BEFORE
-                                and ev.phi < YOUNG_SPLIT_GATE / math.sqrt(ev.split_at)
-                                and ev.p_value * self._test_arl0 < YOUNG_SPLIT_SHARE):
+                        ev = young_split(win.values, self._test_arl0)
+                        if ev is not None:
                             self._young.split = ev
                             tripped = True
                 if az > spike:
@@ -1568,7 +1529,7 @@ class StreamEngine:
             if tripped:
                 _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
                 if deferred:
-                    self._flush_splits(deferred)
+                    weigh_splits(win.values, deferred)
                 if dirty and c is not None:
                     cast(MultiCusumTest, test).set_small_sums(c, False)
                     dirty = False
@@ -1577,14 +1538,14 @@ class StreamEngine:
             if watching and yn >= YOUNG_END:
                 _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
                 if deferred:
-                    self._flush_splits(deferred)
+                    weigh_splits(win.values, deferred)
                 if dirty:
                     test.set_small_sums(c, False)  # type: ignore[union-attr]
                 self._settle_young()
                 return i + 1
         _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
         if deferred:
-            self._flush_splits(deferred)
+            weigh_splits(win.values, deferred)
         if dirty:
             test.set_small_sums(c, False)  # type: ignore[union-attr]
         return total
@@ -1602,10 +1563,8 @@ class StreamEngine:
         tripped = test.update_one(-clip if z < -clip else (clip if z > clip else z))
         if (not tripped and self._baseline is None and ys.n >= YOUNG_SPLIT_FROM
                 and (abs(z) >= YOUNG_Z_HOLD or test.statistic >= YOUNG_SPLIT_SCREEN * test.threshold)):
-            ev = split_evidence(self._window.values, phi_margin=YOUNG_SPLIT_MARGIN,
-                                p_below=YOUNG_SPLIT_SHARE / self._test_arl0 if self._test_arl0 > 0.0 else 1.0)
-            if (ev is not None and ev.split_at >= YOUNG_SPLIT_BEFORE and ev.phi < YOUNG_SPLIT_GATE / math.sqrt(ev.split_at)
-                    and ev.p_value * self._test_arl0 < YOUNG_SPLIT_SHARE):
+            ev = young_split(self._window.values, self._test_arl0)
+            if ev is not None:
                 self._young.split = ev
                 tripped = True
         if abs(z) > self.settings.spike_sigma:
@@ -1643,31 +1602,8 @@ class StreamEngine:
         b = self._baseline
         split = yp.take_split()
         if b is None:
-            dt = np.diff(self._window.times)
-            interval = median(dt) if dt.shape[0] else 1.0
-            level = ys.mean if split is None else split.level_before
-            spread = ys.spread() if split is None else split.sigma
-            sd = max(spread, sigma_floor(level, 0.0, self.settings.min_sigma))
-            # The event is weighed on prewhitened residuals as an established stream's
-            # would be, with the autocorrelation as far as the samples show it; while
-            # it cannot be told from none, in units of its long-run variance at two
-            # standard errors above the estimate (a step must not be confirmed on a
-            # run of autocorrelated samples).
-            if split is None:
-                phi, vf = ys.phi_estimate(), ys.variance_factor(2.0)
-            else:
-                # The samples' own autocorrelation, around the two levels of the split.
-                # The phi estimate rests on the samples before the split, or on both
-                # segments pooled, where that is less (then it is 2 standard errors high
-                # already, and the allowance below adds 2 more: on the safe side).
-                n = split.split_at
-                phi = split.phi if n >= 20 and abs(split.phi) >= 2.0 / math.sqrt(n) else 0.0
-                up = min(0.95, max(split.phi, 0.0) + 2.0 / math.sqrt(n))
-                vf = 1.0 if phi != 0.0 else (1.0 + up) / (1.0 - up)
-            inn = sd * math.sqrt(1.0 - phi * phi) * math.sqrt(vf)
-            b = Baseline(level=level, sigma=sd, phi=phi, innovation_sigma=inn,
-                         interval=interval if interval > 0 else 1.0, n=max(ys.n, 1), quantum=0.0,
-                         clip=self.settings.clip_sigma)
+            b = provisional_baseline(ys, split, self._window.times, self.settings.min_sigma,
+                                     self.settings.clip_sigma)
             yp.provisional = True
         else:
             b = replace(b, level=ys.mean, n_level=ys.level_n() if ys.level_n() < b.n else 0)
