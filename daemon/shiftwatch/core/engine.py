@@ -1095,8 +1095,9 @@ class StreamEngine:
         on a batch of at least :data:`SPLIT_DEFER_FROM` samples the loop notes the window's
         length at each of those tests and goes on as if the answer were None; before it
         does anything that the answer could have prevented (a trip, a held spike settled,
-        its return) it weighs the noted tests at once (:func:`.selfstart.split_screen`,
-        :func:`.selfstart.split_evidence` for the few it cannot settle).  If one of them
+        its return) it weighs the noted tests at once (:func:`.young.weigh_splits`:
+        :func:`.selfstart.split_screen`, :func:`.young.young_split` for the few it cannot
+        settle).  If one of them
         would have called a step, everything the loop changed is put back as it was at
         the start and the batch is watched again with each test asked as it comes.  The
         window only grows here (each test saw a prefix of it), so the records and the
