@@ -414,7 +414,7 @@ def engine_parts(repeat: int) -> None:
     parts = [(se, "process", "process: screening, the loop over phases, tallies"),
              (se, "_warm", "first warm-up's end: robust baseline, step fit, lone outliers"),
              (se, "_young_loop", "young level, sample by sample (first warm-up, after a step)"),
-             (se, "_flush_splits", "young level's split screens, weighed together"),
+             (eng_mod, "weigh_splits", "young level's split screens, weighed together"),
              (se, "_young_event", "young level's events"),
              (se, "_watch", "watch stretch: the rest"),
              (se, "_split_spikes", "watch stretch: spike split"),
@@ -445,7 +445,7 @@ def engine_parts(repeat: int) -> None:
     watch = se._watch
 
     def watch_stretch(self: Any, t: Any, x: Any, idx: Any, result: Any, bounds: Any = None) -> int:
-        young = self._young is not None
+        young = self._young.level is not None
         t0 = clock()
         used = watch(self, t, x, idx, result, bounds)
         if not young:

@@ -95,16 +95,16 @@ class _Counted:
 
     def __init__(self, monkeypatch: pytest.MonkeyPatch) -> None:
         self.again = 0
-        flush = engine.StreamEngine._flush_splits
+        weigh = engine.weigh_splits
 
-        def counted(eng: StreamEngine, deferred: list[tuple[int, float]]) -> None:
+        def counted(values: np.ndarray, deferred: list[tuple[int, float]]) -> None:
             try:
-                flush(eng, deferred)
+                weigh(values, deferred)
             except engine._SplitCalled:
                 self.again += 1
                 raise
 
-        monkeypatch.setattr(engine.StreamEngine, "_flush_splits", counted)
+        monkeypatch.setattr(engine, "weigh_splits", counted)
 
 
 def test_noted_split_tests_give_the_reference_records(monkeypatch: pytest.MonkeyPatch) -> None:

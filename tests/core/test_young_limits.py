@@ -129,7 +129,7 @@ def test_limits_equal_the_divisions_with_each_chart_nearest_its_limit(monkeypatc
     # Most split tests the screen lets through answer None and change nothing: the window
     # lengths they are asked at are compared too.
     asked: list[tuple[str, tuple[int, ...]]] = []
-    screen, evidence = engine.split_screen, engine.split_evidence
+    screen, evidence = young.split_screen, young.split_evidence
 
     def screen_spy(values: np.ndarray, lengths: np.ndarray, **kw: float) -> np.ndarray:
         asked.append(("screen", tuple(lengths.tolist())))
@@ -139,7 +139,9 @@ def test_limits_equal_the_divisions_with_each_chart_nearest_its_limit(monkeypatc
         asked.append(("evidence", (values.shape[0],)))
         return evidence(values, **kw)
 
-    monkeypatch.setattr(engine, "split_screen", screen_spy)
+    # (the young loop's split tests are asked in core/young.py, the warm-up's end in engine.py)
+    monkeypatch.setattr(young, "split_screen", screen_spy)
+    monkeypatch.setattr(young, "split_evidence", evidence_spy)
     monkeypatch.setattr(engine, "split_evidence", evidence_spy)
     rng = np.random.default_rng(40 + turn)
     for kind in ("iid", "t3", "ar"):

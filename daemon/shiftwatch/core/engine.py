@@ -97,17 +97,31 @@ from shiftwatch.core.restore import (
 from shiftwatch.core.screen import screen_samples
 from shiftwatch.core.selfstart import (
     SelfStart,
-    SplitEvidence,
     split_critical_t,
     split_evidence,
-    split_screen,
 )
 from shiftwatch.core.sequential import SequentialTest
 from shiftwatch.core.settings import ARL_RANGE, DetectionSettings
 from shiftwatch.core.spikes import backed_by_prev, lone_outliers, spike_confirmed, young_spike_limit
 from shiftwatch.core.stepfit import StepFit, StepFitter, anchor_step, supf_critical, supf_pvalue
 from shiftwatch.core.window import Window
-from shiftwatch.core.young import _four_terms, _small_bank, _young_fields, _young_from, _young_put
+from shiftwatch.core.young import (
+    YOUNG_SPLIT_BEFORE,
+    YOUNG_SPLIT_FROM,
+    YOUNG_SPLIT_GATE,
+    YOUNG_SPLIT_MARGIN,
+    YOUNG_SPLIT_SCREEN,
+    YOUNG_SPLIT_SHARE,
+    YoungPhase,
+    _four_terms,
+    _small_bank,
+    _SplitCalled,
+    _young_fields,
+    _young_put,
+    provisional_baseline,
+    weigh_splits,
+    young_split,
+)
 
 FloatArray = NDArray[np.float64]
 
@@ -196,28 +210,6 @@ YOUNG_Z_HOLD = 2.0
 #: autocorrelated samples holding would feed the runs it is meant to wait out.
 YOUNG_HOLD_FROM = 20
 
-#: In the first warm-up the samples so far are also tested for one step at an unknown
-#: point (:func:`.selfstart.split_evidence`), from this many samples on, whenever the
-#: young test's statistic reaches YOUNG_SPLIT_SCREEN of its threshold or a sample lies
-#: YOUNG_Z_HOLD sigmas out; a step is called at a p-value below YOUNG_SPLIT_SHARE over
-#: the plant's ARL.  The self-starting test absorbs a step into the level it measures
-#: against; this test does not, so a step in a stream's first samples is not lost.
-YOUNG_SPLIT_FROM = 20
-YOUNG_SPLIT_SCREEN = 0.1
-YOUNG_SPLIT_SHARE = 0.5
-YOUNG_SPLIT_MARGIN = 0.0
-#: ... and only for a split with this many samples before it, whose autocorrelation is below
-#: YOUNG_SPLIT_GATE standard errors (autocorrelated noise wanders like a step over a few dozen
-#: samples; the t statistic allows for the autocorrelation as estimated, and the gate stands
-#: aside where the estimate itself says the noise wanders).  Measured over 1,500 new streams of
-#: 600 samples at false_alarm_every 1h: AR(1) phi 0.6 333 detections, phi 0.8 429 (nominal
-#: 250; 410 and 550 before the split test and the bias correction); 3 sigma steps at sample
-#: 20 found in 200 of 200 (gate 2: 198, with 321 and 395).  Measured again with the split's
-#: pooled autocorrelation (selfstart.SPLIT_POOL_MARGIN), 1,500 streams each: iid 135,
-#: phi 0.6 347, phi 0.8 497 (347 and 496 without it); 3 sigma steps at sample 20 found in
-#: 1,000 of 1,000 (998 without it).
-YOUNG_SPLIT_BEFORE = 15
-YOUNG_SPLIT_GATE = 3.0
 #: The name a record gives the split test when it tripped (its ``test``, ``statistic``:
 #: the split's t, ``threshold``: the t its bound calls a step above).
 SPLIT_TEST = "warmup_split"
@@ -294,9 +286,6 @@ READ_ITEMS = True
 YOUNG_LIMITS = True
 
 
-class _SplitCalled(Exception):
-    """A split test noted by the young loop calls a step: the loop is run again."""
-
 #: A step is confirmed only while the fit of the event's samples shows it at this
 #: p-value (or ``confirm_p_value``, when larger): the trial alone confirmed wander of
 #: young autocorrelated streams.  0.001 lost more real steps on AR(1) 0.8 noise
@@ -370,9 +359,7 @@ class StreamEngine:
         "_pending",
         "_prev_out",
         "_prev_r",
-        "_provisional",
         "_refine_block",
-        "_split",
         "_state",
         "_sums",
         "_test",
@@ -423,9 +410,7 @@ class StreamEngine:
         self._prev_out = 0  # direction in which the last kept sample was an outlier (0: it was not)
         self._event: OpenEvent | None = None
         self._last_step: StepMemory | None = None  # the last confirmed step, to recognise its return
-        self._young: SelfStart | None = None  # the level while it rests on few samples
-        self._provisional = False  # the baseline is a stand-in for an event during the first warm-up
-        self._split: SplitEvidence | None = None  # the split that opened a first-warm-up event
+        self._young = YoungPhase()  # the young level, the provisional flag, the opening split (young.py)
         self._unfolded = 0  # newest samples not yet folded into the baseline sums
         # The follower's offset each was measured against, as C doubles: a deque of float
         # objects took four times the room (about 2 KB a stream of the daemon's 14).
@@ -489,7 +474,7 @@ class StreamEngine:
         young level, a sample held for the spike check, a test other than a CUSUM, or
         a baseline about to change within two samples."""
         b, test = self._baseline, self._test
-        if (self._state != WATCHING or b is None or test is None or self._young is not None
+        if (self._state != WATCHING or b is None or test is None or self._young.level is not None
                 or self._pending is not None or self._event is not None):
             return None
         if isinstance(test, MultiCusumTest):
@@ -710,8 +695,7 @@ class StreamEngine:
         need = (s.warmup_samples - have if have < s.warmup_samples
                 else -(have - s.warmup_samples) % WARM_STRETCH)
         take = int(max(min(need, t.shape[0]), 0))
-        if self._young is None:
-            self._young = SelfStart(None)
+        self._young.begin()
         if need > 0:
             used = self._watch_young(t, x, idx, need, result)
             if self._state != WARMING_UP or len(self._window) < have + need:
@@ -730,7 +714,7 @@ class StreamEngine:
                 Rejection(_batch_position(t[:take], idx, float(wt[j])), "spike", float(wt[j]))
                 for j in np.flatnonzero(lone))
             self._window.reset_to(wx[~lone].copy(), wt[~lone].copy())
-            self._young = _young_from(self._window.values)
+            self._young.restart(self._window.values)
             return take
         # A warm-up that holds a clear shift is stretched, WARM_STRETCH samples at a time,
         # while the young tests (the split test above all, which weighs every sample so
@@ -760,7 +744,7 @@ class StreamEngine:
             ev = split_evidence(wx, phi_margin=YOUNG_SPLIT_MARGIN, p_below=p_end)
             if (ev is not None and ev.p_value < p_end and ev.split_at >= YOUNG_SPLIT_BEFORE
                     and ev.phi < YOUNG_SPLIT_GATE / math.sqrt(ev.split_at)):
-                self._split = ev
+                self._young.split = ev
                 at = float(wt[-1])
                 self._young_event(at, result, at, (END_TEST, ev.t, split_critical_t(n, p_end)))
                 return take
@@ -771,15 +755,14 @@ class StreamEngine:
                 Rejection(_batch_position(t[:take], idx, tj), "warmup_shift", tj)
                 for tj in wt[:fit.index].tolist())
             self._window.drop_front(fit.index)
-            self._young = _young_from(self._window.values)
+            self._young.restart(self._window.values)
             return take
         self._start_watching(b)
         return take
 
     def _start_watching(self, b: Baseline) -> None:
         self._baseline = b
-        self._provisional = False
-        self._young = None
+        self._young.end()
         self._state = WATCHING
         # The self-starting test's evidence was measured against another level:
         # the test for the fixed baseline starts afresh.
@@ -1045,7 +1028,7 @@ class StreamEngine:
         """
         if FAST_YOUNG:
             return self._watch_young_fast(t, x, idx, limit, result)
-        ys = self._young
+        ys = self._young.level
         assert ys is not None
         s = self.settings
         b = self._baseline
@@ -1112,18 +1095,20 @@ class StreamEngine:
         on a batch of at least :data:`SPLIT_DEFER_FROM` samples the loop notes the window's
         length at each of those tests and goes on as if the answer were None; before it
         does anything that the answer could have prevented (a trip, a held spike settled,
-        its return) it weighs the noted tests at once (:func:`.selfstart.split_screen`,
-        :func:`.selfstart.split_evidence` for the few it cannot settle).  If one of them
+        its return) it weighs the noted tests at once (:func:`.young.weigh_splits`:
+        :func:`.selfstart.split_screen`, :func:`.young.young_split` for the few it cannot
+        settle).  If one of them
         would have called a step, everything the loop changed is put back as it was at
         the start and the batch is watched again with each test asked as it comes.  The
         window only grows here (each test saw a prefix of it), so the records and the
         state are the same bit for bit (tests/core/test_young_fast.py).
         """
-        ys = self._young
+        yp = self._young
+        ys = yp.level
         test = self._test
         span = min(limit, int(t.shape[0]))
         win = self._window
-        if (ys is not None and ys.sigma is None and self._baseline is None and self._split is None
+        if (ys is not None and ys.sigma is None and self._baseline is None and yp.split is None
                 and span >= SPLIT_DEFER_FROM and len(win) + span + 1 <= win.capacity
                 and (test is None or isinstance(test, MultiCusumTest))):
             mark = (ys.copy(), len(win), self._pending, self._prev_out, len(result.rejected),
@@ -1134,40 +1119,15 @@ class StreamEngine:
             except _SplitCalled:
                 (young, n, self._pending, self._prev_out, rejected, records, test, sums, self._test_arl0,
                  self._test_shift_z, self._test_n_ref, self._test_n_level) = mark
-                self._young = young
+                yp.level = young
                 win._n = n
                 del result.rejected[rejected:]
                 del result.records[records:]
                 self._test = test
-                self._split = None
+                yp.split = None
                 if test is not None and sums is not None:
                     test.back_to(sums)
         return self._young_loop(t, x, idx, limit, result, None)
-
-    def _flush_splits(self, deferred: list[tuple[int, float]]) -> None:
-        """Weigh the split tests :meth:`_watch_young_fast` noted; raise :class:`_SplitCalled`
-        when one of them calls a step (the first that would have, in order)."""
-        if not deferred:
-            return
-        values = self._window.values
-        arl0 = deferred[0][1]
-        if any(a != arl0 for _, a in deferred):  # never within one batch; each on its own
-            for n, a in deferred:
-                self._flush_splits([(n, a)])
-            deferred.clear()
-            return
-        p_below = YOUNG_SPLIT_SHARE / arl0 if arl0 > 0.0 else 1.0
-        lengths = np.array([n for n, _ in deferred], dtype=np.intp)
-        sure = split_screen(values, lengths, p_below=p_below)
-        for n, none in zip(lengths.tolist(), sure.tolist()):
-            if none:
-                continue
-            ev = split_evidence(values[:n], phi_margin=YOUNG_SPLIT_MARGIN, p_below=p_below)
-            if (ev is not None and ev.split_at >= YOUNG_SPLIT_BEFORE
-                    and ev.phi < YOUNG_SPLIT_GATE / math.sqrt(ev.split_at)
-                    and ev.p_value * arl0 < YOUNG_SPLIT_SHARE):
-                raise _SplitCalled
-        deferred.clear()
 
     def _young_loop(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], limit: int,
                     result: BatchResult, deferred: list[tuple[int, float]] | None) -> int:
@@ -1188,7 +1148,7 @@ class StreamEngine:
         out chart by chart.  Rare turns (a held spike that is settled, a split test, a
         trip, a held sample taken in) call the same methods the reference does.
         """
-        ys = self._young
+        ys = self._young.level
         assert ys is not None
         s = self.settings
         b = self._baseline
@@ -1247,7 +1207,7 @@ class StreamEngine:
             if kept >= limit:
                 _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
                 if deferred:
-                    self._flush_splits(deferred)
+                    weigh_splits(win.values, deferred)
                 if dirty:
                     test.set_small_sums(c, False)  # type: ignore[union-attr]
                 return i
@@ -1293,7 +1253,7 @@ class StreamEngine:
                 p_out = 1 if px > ymean else -1
                 if judged and spike_confirmed(dev, (px - ymean) / scale, band):
                     if deferred:
-                        self._flush_splits(deferred)
+                        weigh_splits(win.values, deferred)
                     self._prev_out = p_out
                     kept += 1
                     if self._feed_young(pt, px, clip):
@@ -1521,15 +1481,11 @@ class StreamEngine:
                     if deferred is not None and near:
                         deferred.append((win._n, self._test_arl0))
                         if len(deferred) >= SPLIT_DEFER_ROWS:
-                            self._flush_splits(deferred)
+                            weigh_splits(win.values, deferred)
                     elif near:
-                        ev = split_evidence(win.values, phi_margin=YOUNG_SPLIT_MARGIN,
-                                            p_below=YOUNG_SPLIT_SHARE / self._test_arl0 if self._test_arl0 > 0.0
-                                            else 1.0)
-                        if (ev is not None and ev.split_at >= YOUNG_SPLIT_BEFORE
-                                and ev.phi < YOUNG_SPLIT_GATE / math.sqrt(ev.split_at)
-                                and ev.p_value * self._test_arl0 < YOUNG_SPLIT_SHARE):
-                            self._split = ev
+                        ev = young_split(win.values, self._test_arl0)
+                        if ev is not None:
+                            self._young.split = ev
                             tripped = True
                 if az > spike:
                     ylast = xv  # the start of a large step: fed, never taken into the level
@@ -1574,7 +1530,7 @@ class StreamEngine:
             if tripped:
                 _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
                 if deferred:
-                    self._flush_splits(deferred)
+                    weigh_splits(win.values, deferred)
                 if dirty and c is not None:
                     cast(MultiCusumTest, test).set_small_sums(c, False)
                     dirty = False
@@ -1583,21 +1539,21 @@ class StreamEngine:
             if watching and yn >= YOUNG_END:
                 _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
                 if deferred:
-                    self._flush_splits(deferred)
+                    weigh_splits(win.values, deferred)
                 if dirty:
                     test.set_small_sums(c, False)  # type: ignore[union-attr]
                 self._settle_young()
                 return i + 1
         _young_put(ys, yn, ymean, yss, ydf, yfirst, yprev, ylag, ylast, yvm)
         if deferred:
-            self._flush_splits(deferred)
+            weigh_splits(win.values, deferred)
         if dirty:
             test.set_small_sums(c, False)  # type: ignore[union-attr]
         return total
 
     def _feed_young(self, tv: float, xv: float, clip: float) -> bool:
         """One kept sample of the young phase; True when the test trips on it."""
-        ys = self._young
+        ys = self._young.level
         assert ys is not None
         z = ys.standardise(xv)
         self._window.push(xv, tv)
@@ -1608,11 +1564,9 @@ class StreamEngine:
         tripped = test.update_one(-clip if z < -clip else (clip if z > clip else z))
         if (not tripped and self._baseline is None and ys.n >= YOUNG_SPLIT_FROM
                 and (abs(z) >= YOUNG_Z_HOLD or test.statistic >= YOUNG_SPLIT_SCREEN * test.threshold)):
-            ev = split_evidence(self._window.values, phi_margin=YOUNG_SPLIT_MARGIN,
-                                p_below=YOUNG_SPLIT_SHARE / self._test_arl0 if self._test_arl0 > 0.0 else 1.0)
-            if (ev is not None and ev.split_at >= YOUNG_SPLIT_BEFORE and ev.phi < YOUNG_SPLIT_GATE / math.sqrt(ev.split_at)
-                    and ev.p_value * self._test_arl0 < YOUNG_SPLIT_SHARE):
-                self._split = ev
+            ev = young_split(self._window.values, self._test_arl0)
+            if ev is not None:
+                self._young.split = ev
                 tripped = True
         if abs(z) > self.settings.spike_sigma:
             ys.last = xv  # the start of a large step: fed, never taken into the level
@@ -1626,7 +1580,7 @@ class StreamEngine:
 
     def _young_settled(self) -> bool:
         """After a re-anchor: fix the level once it rests on :data:`YOUNG_END` samples."""
-        ys = self._young
+        ys = self._young.level
         if self._state == WATCHING and ys is not None and ys.n >= YOUNG_END:
             self._settle_young()
             return True
@@ -1641,39 +1595,17 @@ class StreamEngine:
         no event opens and the young phase goes on: its test's sums stay over the
         limit, so it trips again as the next samples come unless they pull it back.
         """
-        ys = self._young
+        yp = self._young
+        ys = yp.level
         assert ys is not None
         if len(self._window) < FIT_MIN:
             return
         b = self._baseline
-        split, self._split = self._split, None
+        split = yp.take_split()
         if b is None:
-            dt = np.diff(self._window.times)
-            interval = median(dt) if dt.shape[0] else 1.0
-            level = ys.mean if split is None else split.level_before
-            spread = ys.spread() if split is None else split.sigma
-            sd = max(spread, sigma_floor(level, 0.0, self.settings.min_sigma))
-            # The event is weighed on prewhitened residuals as an established stream's
-            # would be, with the autocorrelation as far as the samples show it; while
-            # it cannot be told from none, in units of its long-run variance at two
-            # standard errors above the estimate (a step must not be confirmed on a
-            # run of autocorrelated samples).
-            if split is None:
-                phi, vf = ys.phi_estimate(), ys.variance_factor(2.0)
-            else:
-                # The samples' own autocorrelation, around the two levels of the split.
-                # The phi estimate rests on the samples before the split, or on both
-                # segments pooled, where that is less (then it is 2 standard errors high
-                # already, and the allowance below adds 2 more: on the safe side).
-                n = split.split_at
-                phi = split.phi if n >= 20 and abs(split.phi) >= 2.0 / math.sqrt(n) else 0.0
-                up = min(0.95, max(split.phi, 0.0) + 2.0 / math.sqrt(n))
-                vf = 1.0 if phi != 0.0 else (1.0 + up) / (1.0 - up)
-            inn = sd * math.sqrt(1.0 - phi * phi) * math.sqrt(vf)
-            b = Baseline(level=level, sigma=sd, phi=phi, innovation_sigma=inn,
-                         interval=interval if interval > 0 else 1.0, n=max(ys.n, 1), quantum=0.0,
-                         clip=self.settings.clip_sigma)
-            self._provisional = True
+            b = provisional_baseline(ys, split, self._window.times, self.settings.min_sigma,
+                                     self.settings.clip_sigma)
+            yp.provisional = True
         else:
             b = replace(b, level=ys.mean, n_level=ys.level_n() if ys.level_n() < b.n else 0)
         self._baseline = b
@@ -1688,11 +1620,9 @@ class StreamEngine:
 
     def _settle_young(self) -> None:
         """A re-anchored level that rests on enough samples becomes the baseline's level."""
-        ys = self._young
         b = self._baseline
-        assert ys is not None and b is not None
-        self._young = None
-        ys.release()
+        assert b is not None
+        ys = self._young.settle()
         self._baseline = replace(b, level=ys.mean, n_level=ys.level_n() if ys.level_n() < b.n else 0)
         self._prev_r = 0.0 if ys.last is None else ys.last - ys.mean
         self._follower.restart()
@@ -1707,7 +1637,7 @@ class StreamEngine:
 
     def _watch(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult,
                bounds: tuple[float, float] | None = None) -> int:
-        if self._young is not None:
+        if self._young.level is not None:
             return self._watch_young(t, x, idx, t.shape[0], result)
         if t.shape[0] <= SMALL_BATCH and self._pending is None:
             used = self._watch_small(t, x, result)
@@ -2004,7 +1934,7 @@ class StreamEngine:
             # samples and allows for its error and for a phi estimated low (events.py,
             # "a reference known from few samples").  Elsewhere the plain trial: see
             # DEVELOPERS.md for what the allowance cost on later young levels.
-            trial=(self._new_trial(sign, young_ref=max(1, fit.n_before)) if self._provisional
+            trial=(self._new_trial(sign, young_ref=max(1, fit.n_before)) if self._young.provisional
                    else self._new_trial(sign)),
             n_after=max(1, fit.n_after),
         )
@@ -2122,7 +2052,7 @@ class StreamEngine:
         the level after alone, with such a sigma, the band set ordinary readings aside
         for the whole event (the outside measurement of 2026-12-05)."""
         k = self.settings.spike_sigma
-        wide = young_spike_limit(k, True, b.n - 1) / k if self._provisional else 1.0
+        wide = young_spike_limit(k, True, b.n - 1) / k if self._young.provisional else 1.0
         wb = k * wide * b.sigma * math.sqrt(1.0 + 1.0 / max(b.n, 1))
         wa = k * wide * b.sigma * math.sqrt(1.0 + 1.0 / ev.n_after)
         hi = max(ev.level_before + wb, ev.level_after + wa)
@@ -2156,7 +2086,7 @@ class StreamEngine:
             # of its own, detected now, so nothing is thrown away.
             self._end_event(ev, "dismissed", self._event_fit(ev, b, fit, end=ev.trip_len), result, as_of)
             self._state = EVENT_OPEN
-            if self._young is None:
+            if self._young.level is None:
                 # The samples since the first trip are not followed yet either.
                 self._follower.lag += len(self._fitter) - ev.trip_len
             # The new event's record names what opened it, not the sequential test (whose
@@ -2195,17 +2125,15 @@ class StreamEngine:
             # ends undecided and the stream watches on from its level, as after a dismissal.)
             self._end_event(ev, "undecided" if conflict else "dismissed", shown, result, as_of)
             self._state = WATCHING
-            if self._young is None:
+            yp = self._young
+            if yp.level is None:
                 self._follow_catch_up(ev, b)
-            ys = self._young
-            if ys is not None:
+            else:
                 # The level held: the held samples and the event's belong to it.
-                ys.release()
-                for v in self._fitter.values[ev.trip_len:].tolist():
-                    ys.add(v)
-                if self._provisional:
+                yp.take_back(self._fitter.values[ev.trip_len:].tolist())
+                if yp.provisional:
                     self._baseline = None
-                    self._provisional = False
+                    yp.provisional = False
                     self._state = WARMING_UP
             self._fitter = None
             assert self._test is not None
@@ -2289,8 +2217,8 @@ class StreamEngine:
         baseline's settled level (it rests on at least two windows of samples), if that
         shows the step in the trial's direction at ``confirm_p_value`` and at least half
         of min_shift_sigma (:func:`.stepfit.anchor_step`); else None."""
-        if (b.level_n < 2 * self.settings.window_samples or self._young is not None
-                or self._provisional or fit.n_after < 1 or not b.sigma > 0.0):
+        if (b.level_n < 2 * self.settings.window_samples or self._young.level is not None
+                or self._young.provisional or fit.n_after < 1 or not b.sigma > 0.0):
             return None
         a = anchor_step(fit, ev.level_before, b.level_n, b.sigma, _variance_factor(b.phi))
         if a.p_value < self.settings.confirm_p_value and not self._conflicts(a, ev.trial.sign, b):
@@ -2326,19 +2254,17 @@ class StreamEngine:
         fit = self._fit(b)
         shown = self._event_fit(ev, b, fit)
         rec = self._record(ev, shown, "undecided", max(as_of, ev.detected_at))
-        ys = self._young
-        if ys is not None:  # as for a dismissal: the held and event samples join the young level
-            ys.release()
-            for v in self._fitter.values[ev.trip_len:].tolist():
-                ys.add(v)
-        elif not self._provisional:
+        yp = self._young
+        if yp.level is not None:  # as for a dismissal: the held and event samples join the young level
+            yp.take_back(self._fitter.values[ev.trip_len:].tolist())
+        elif not yp.provisional:
             self._follow_catch_up(ev, b)
         self._event = None
         self._fitter = None
         self._pending = None
-        if self._provisional:
+        if yp.provisional:
             self._baseline = None
-            self._provisional = False
+            yp.provisional = False
             self._state = WARMING_UP
         else:
             self._state = WATCHING
@@ -2407,20 +2333,16 @@ class StreamEngine:
         del self._unfolded_u[:]
         self._watch_kept = 0
         self._follower.restart()
-        old = self._young
-        if self._provisional:
-            ys = SelfStart(None) if old is None else old.carry_over()
+        yp = self._young
+        if yp.provisional:
+            ys = yp.reanchor(vals.tolist(), None)
             self._baseline = None
-            self._provisional = False
             self._state = WARMING_UP
         else:
             tau = follow_samples(b.phi)
             follow = 0 if math.isinf(tau) else int(tau) + follow_delay(b.phi, self.settings.window_samples)
-            ys = SelfStart(b.innovation_sigma, b.phi, follow=follow)
+            ys = yp.reanchor(vals.tolist(), (b.innovation_sigma, b.phi, follow))
             self._state = WATCHING
-        for v in vals.tolist():
-            ys.add(v)
-        self._young = ys
         if self._baseline is not None:
             self._baseline = replace(b, level=ys.mean, n_level=ys.level_n() if ys.level_n() < b.n else 0)
             self._prev_r = float(vals[-1] - ys.mean)
@@ -2478,8 +2400,8 @@ class StreamEngine:
             "prev_out": self._prev_out,
             "event": None if ev is None else ev.get_state(),
             "last_step": None if self._last_step is None else self._last_step.get_state(),
-            "young": None if self._young is None else self._young.get_state(),
-            "provisional": self._provisional,
+            "young": None if self._young.level is None else self._young.level.get_state(),
+            "provisional": self._young.provisional,
             "watch_kept": self._watch_kept,
             "next_refine": self._next_refine,
             "refine_block": self._refine_block,
@@ -2579,8 +2501,9 @@ class StreamEngine:
             self._last_step = None if ls_ is None else StepMemory.from_state(ls_)
             field_name = "young"
             yg = state.get("young")
-            self._young = None if yg is None else SelfStart.from_state(yg)
-            self._provisional = bool(state.get("provisional", False))
+            yp = self._young
+            yp.level = None if yg is None else SelfStart.from_state(yg)
+            yp.provisional = bool(state.get("provisional", False))
             if (st != WARMING_UP and (self._baseline is None or self._test is None)) or \
                     (st == EVENT_OPEN) != (self._event is not None) or \
                     (self._event is None) != (self._fitter is None):
@@ -2593,9 +2516,9 @@ class StreamEngine:
             fo.lag = _count(state.get("follow_lag", 0), "follow_lag")
             # Not yet followed: samples of the window, or of an open event (up to its trip).
             room = self._event.trip_len if self._event is not None else len(self._window)
-            if fo.lag > room or (fo.lag and self._young is not None):
+            if fo.lag > room or (fo.lag and yp.level is not None):
                 raise ValueError(f"follow_lag: {fo.lag} samples not yet followed, but there "
-                                 f"are {room}" + (" and the level is young" if self._young is not None else ""))
+                                 f"are {room}" + (" and the level is young" if yp.level is not None else ""))
             field_name = "center"
             fo.center = _finite_number(state.get("center", fo.offset), "center")
             field_name = "next_center"
@@ -2615,7 +2538,7 @@ class StreamEngine:
             field_name = "last_shift_at"
             ls = state["last_shift_at"]
             self.last_shift_at = None if ls is None else _finite_number(ls, "last_shift_at")
-            if (self._baseline is not None and self._young is None and self._test is not None
+            if (self._baseline is not None and yp.level is None and self._test is not None
                     and state["test"].get("rules") != DESIGN_RULES):
                 # A snapshot made under other design rules (before the follower, its test was
                 # designed for a fixed level; before DESIGN_RULES 2, with one follower factor
