@@ -301,14 +301,18 @@ def _same_decimals(ta: str, a: float, tb: str, b: float) -> tuple[str, str]:
 
     >>> _same_decimals("500.02", 500.02, "501.3", 501.3), _same_decimals("12345", 12345.0, "0.5", 0.5)
     (('500.02', '501.30'), ('12345', '0.5'))
+    >>> _same_decimals("499.98", 499.98, "0", 0.0)
+    ('499.98', '0')
     """
     if "e" in ta or "e" in tb or "n" in ta or "n" in tb:  # exponent form, inf or nan
         return ta, tb
     want = max(_decimals(ta), _decimals(tb))
     out = []
     for text, x in ((ta, a), (tb, b)):
-        own = 4 - math.floor(math.log10(abs(x))) if x != 0.0 else want
-        d = min(want, max(own, 0))
+        if x == 0.0:  # an exact zero (a sensor stuck at 0) gains nothing from zeros after it
+            out.append(text)
+            continue
+        d = min(want, max(4 - math.floor(math.log10(abs(x))), 0))
         out.append(f"{x:.{d}f}" if d > _decimals(text) else text)
     return out[0], out[1]
 
