@@ -151,6 +151,15 @@ def start_lone_server(base: Path, name: str, mqtt: str | None = None) -> tuple[s
     pytest.fail(f"nats-server did not start: {_text(base / 'nats.log')[-600:]}")
 
 
+def lone_server_port(tmp_path_factory: Any, name: str) -> Iterator[int]:
+    """The body of a module fixture: a lone JetStream server (``start_lone_server``) for the
+    module's tests, its client port yielded, the server stopped after them."""
+    proc, port = start_lone_server(tmp_path_factory.mktemp("nats"), name)
+    yield port
+    proc.terminate()
+    proc.wait(10)
+
+
 class NatsServer:
     """One server of a :class:`NatsCluster` (ports fixed for its whole life)."""
 

@@ -44,7 +44,8 @@ from shiftwatch.partition import partition_of
 from shiftwatch.shardcount import ShardCount
 from shiftwatch.status import StatusBoard
 
-from .natskit import start_lone_server, started_io
+from .loglines import Lines
+from .natskit import lone_server_port, started_io
 
 LEVELS = (2, 3, 4)
 NAME = "kp"
@@ -61,22 +62,7 @@ def _topics(shard: int, n: int) -> list[str]:
 
 @pytest.fixture(scope="module")
 def server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[int]:
-    proc, port = start_lone_server(tmp_path_factory.mktemp("nats"), "keeper")
-    yield port
-    proc.terminate()
-    proc.wait(10)
-
-
-class Lines(logging.Handler):
-    def __init__(self) -> None:
-        super().__init__(logging.DEBUG)
-        self.lines: list[str] = []
-
-    def emit(self, record: logging.LogRecord) -> None:
-        self.lines.append(record.getMessage())
-
-    def said(self, text: str) -> int:
-        return sum(text in m for m in self.lines)
+    yield from lone_server_port(tmp_path_factory, "keeper")
 
 
 class Side:

@@ -25,14 +25,11 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from shiftwatch import decode as decode_mod
-from shiftwatch.config import load_config
-from shiftwatch.daemon import Daemon
 from shiftwatch.decode import decode
-from shiftwatch.journal import JOURNAL_NAME
-from shiftwatch.metrics import Metrics
 from shiftwatch.mqtt import Message
 
 from .fuzz_strategies import PROPERTY
+from .switchrun import RunOutput, local_daemon, run_rounds
 from .test_decode import _senml_pack
 
 NOW = 1_790_000_000.0
@@ -193,15 +190,6 @@ def _is_json(text: str) -> bool:
         return False
 
 
-def _daemon(tmp_path: Path, name: str) -> Daemon:
-    path = tmp_path / f"{name}.yaml"
-    path.write_text("streams:\n  - {topic: 'line/+/v', format: json, value: v, time: ts}\n"
-                    f"metrics: {{listen: '127.0.0.1:0'}}\nstate: {{dir: '{tmp_path / name}'}}\n")
-    d = Daemon(load_config(str(path)), config_path=str(path), metrics=Metrics())
-    d.restore()
-    return d
-
-
 def _rounds() -> list[list[Message]]:
     """12 streams, 30 rounds of JSON arrays of 260 (times in milliseconds, 1 s apart):
     a third step by 1 to 4 sigma at round 12, every stream has 8-sigma spikes now and then."""
@@ -221,26 +209,8 @@ def _rounds() -> list[list[Message]]:
     return out
 
 
-def _run(tmp_path: Path, name: str, on: bool) -> tuple[list[dict[str, Any]], dict[str, str], bytes]:
-    d = _daemon(tmp_path, name)
-    records: list[dict[str, Any]] = []
-    emit = d.emit
-
-    def keep(rec: Any, arrived: float) -> None:
-        records.append(rec.to_dict())
-        emit(rec, arrived)
-
-    d.emit = keep  # type: ignore[method-assign]
-    with packed(on):
-        for msgs in _rounds():
-            d.process(msgs)
-    assert d.journal is not None
-    d.journal.close()
-    assert d.journal.path.name == JOURNAL_NAME
-    states = {n: json.dumps(e.get_state(), sort_keys=True) for n, e in d.engines.items()}
-    raw = d.journal.path.read_bytes()
-    head = struct.unpack_from("<4sII", raw)  # the header record holds this daemon's own token
-    return records, states, raw[struct.calcsize("<4sII") + head[1]:]
+def _run(tmp_path: Path, name: str, on: bool) -> RunOutput:
+    return run_rounds(local_daemon(tmp_path, name, "{topic: 'line/+/v', format: json, value: v, time: ts}"), _rounds(), packed, on)
 
 
 def test_daemon_gives_the_same_records_states_and_journal_with_packed_columns(tmp_path: Path) -> None:

@@ -34,24 +34,14 @@ from shiftwatch.moved import MovedStreams
 from shiftwatch.natsio import ClusterError
 from shiftwatch.partition import Ownership, Remap, partition_of
 
+from .loglines import Lines
+
 LEVELS = (2, 3, 4)
 NAME = "plant"
 #: A topic the mapping for 4 partitions gives shard 3, and for 3 partitions shard 1.
 TOPIC = next(t for li in range(1, 9) for h in range(1, 9)
              if partition_of(t := f"brackenfield/line{li}/head{h}/fill", LEVELS, 4) == 3
              and partition_of(t, LEVELS, 3) == 1)
-
-
-class Lines(logging.Handler):
-    def __init__(self) -> None:
-        super().__init__(logging.DEBUG)
-        self.lines: list[str] = []
-
-    def emit(self, record: logging.LogRecord) -> None:
-        self.lines.append(record.getMessage())
-
-    def said(self, text: str) -> int:
-        return sum(text in m for m in self.lines)
 
 
 class Side:

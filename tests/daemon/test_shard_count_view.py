@@ -37,17 +37,14 @@ from shiftwatch.partition import Count, partition_of
 from shiftwatch.shardcount import ShardCount
 from shiftwatch.status import StatusBoard
 
-from .natskit import start_lone_server, started_io
+from .natskit import lone_server_port, started_io
 
 LEVELS = (2, 3, 4)
 
 
 @pytest.fixture(scope="module")
 def server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[int]:
-    proc, port = start_lone_server(tmp_path_factory.mktemp("nats"), "view")
-    yield port
-    proc.terminate()
-    proc.wait(10)
+    yield from lone_server_port(tmp_path_factory, "view")
 
 
 class Lines(logging.Handler):
