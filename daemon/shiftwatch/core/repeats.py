@@ -1,0 +1,299 @@
+"""Readings that stopped changing: a run of one repeated value, too long for the stream's own noise.
+
+A sensor that freezes at (or near) its level trips no test of the level: the
+residuals of a frozen reading are calm.  So each engine counts, on every reading
+it takes in, the current run of identical readings (:class:`RepeatWatch`), and
+flags the stream while that run is improbable for the stream's own readings:
+
+* the share of neighbouring readings before the run that repeat (Laplace's
+  estimate ``(r + 1) / (n + 1)``, as :func:`.sensorcheck.repeat_share` gives it
+  to the records), so that a coarse resolution, whose readings repeat often,
+  needs a longer run;
+* raised to the run's repeats (``count - 1``; neighbouring pairs taken as
+  independent, common practice), below the share of readings at which a run that
+  long may start by chance: one in :data:`REPEAT_RARER` times as many readings as
+  the plant's ``false_alarm_every`` holds at the stream's mean interval.  So on a
+  stream whose readings are sound a flag comes about ten times less often than
+  the false alarms the plant chose (a run of ``L`` or more readings begins at a
+  given reading with probability ``(1 - p) p^(L - 1)`` at most ``p^(L - 1)``:
+  Feller, An Introduction to Probability Theory, Vol. I, XIII.7, from memory).
+
+A run that was flagged does not join the history the share is taken over (a
+stuck sensor's readings are not the stream's noise), and no flag is raised
+before :data:`REPEAT_HISTORY` neighbouring pairs are known.  Decisions fall on
+readings, never on batch boundaries: fed in one batch or one reading at a
+time, the same runs are flagged at the same readings (``tests/core/test_repeats.py``).
+
+This is a flag of the stream, like a Sparkplug stream's ``stale``; it makes no
+alert record (records are about steps in level and their phases).
+
+Pure: samples in, numbers out.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+from typing import Any, NamedTuple
+
+import numpy as np
+from numpy.typing import NDArray
+
+from shiftwatch.core.sensorcheck import REPEAT_MIN, repeat_share
+
+FloatArray = NDArray[np.float64]
+
+#: A run is flagged at a chance this many times below the plant's false alarms.
+REPEAT_RARER = 10.0
+#: The fewest neighbouring pairs of readings the repeat share rests on before a flag.
+REPEAT_HISTORY = 200
+#: Batches of at most this many readings go reading by reading (plain floats).
+_SMALL = 8
+#: No run reaches this: the limit of a stream whose readings may not be flagged (yet).
+_NEVER = 1 << 62
+
+
+class RepeatSpan(NamedTuple):
+    """A run of one repeated value that was flagged: the value, the time of its first
+    reading (``since``), of the reading at which it became improbable (``flagged_at``),
+    its readings then (or in all, once it ended), and the time of its last reading once a
+    different one came (``until``; None while it goes on)."""
+
+    value: float
+    since: float
+    flagged_at: float
+    count: int
+    until: float | None
+
+
+def run_limit(pairs: int, repeats: int, interval: float, every: float) -> int:
+    """The fewest readings of a run that are improbable for a stream whose ``pairs``
+    neighbouring readings held ``repeats`` repeats, at a mean ``interval`` (seconds)
+    between readings and the plant's ``every`` (``false_alarm_every``, seconds): the
+    least ``L`` (at least ``REPEAT_MIN``) with ``p^(L - 1)`` below ``interval / (REPEAT_RARER
+    every)``, ``p`` the repeat share.  :data:`_NEVER` with too little history, or when
+    the readings repeat always.
+
+    >>> run_limit(10_000, 0, 1.0, 7 * 86400.0)      # no repeats in 10,000 readings
+    3
+    >>> run_limit(10_000, 70, 1.0, 7 * 86400.0)     # 0.01 g on 0.4 g of noise
+    5
+    >>> run_limit(10_000, 5_000, 1.0, 7 * 86400.0)  # half the readings repeat
+    24
+    >>> run_limit(50, 0, 1.0, 7 * 86400.0) == _NEVER
+    True
+    """
+    if pairs < REPEAT_HISTORY or not interval > 0.0:
+        return _NEVER
+    p = repeat_share(repeats, pairs)
+    if p >= 1.0:
+        return _NEVER
+    budget = interval / (REPEAT_RARER * every)
+    if budget >= 1.0:
+        return REPEAT_MIN
+    need = math.log(budget) / math.log(p)
+    return max(REPEAT_MIN, math.floor(need) + 2)
+
+
+class RepeatWatch:
+    """The current run of identical readings of one stream, and the repeat share before it.
+
+    ``feed(times, values, every)`` takes readings (screened: finite, in time order) and
+    returns the flagged runs that began or ended among them (each a :class:`RepeatSpan`;
+    one that began is returned with ``until`` None), or None.  :attr:`span` is the
+    flagged run going on, if any.
+
+    >>> w = RepeatWatch()
+    >>> rng = np.random.default_rng(7)
+    >>> x = np.round(500 + 0.4 * rng.standard_normal(600), 2)
+    >>> x[400:] = x[399]
+    >>> t = np.arange(600.0)
+    >>> [(s.value == float(x[399]), s.since, s.flagged_at, s.until) for s in w.feed(t, x, 7 * 86400.0)]
+    [(True, 399.0, 403.0, None)]
+    >>> w.span.count
+    201
+    >>> w.feed(np.array([600.0]), np.array([500.1]), 7 * 86400.0)[0].until
+    599.0
+    >>> w.span is None
+    True
+    """
+
+    __slots__ = ("count", "first_time", "flagged_at", "last_time", "limit", "pairs", "repeats", "seen",
+                 "since", "value")
+
+    def __init__(self) -> None:
+        self.value = math.nan  # the current run's value (NaN: no reading yet)
+        self.count = 0  # its readings
+        self.since = math.nan  # the time of its first reading
+        self.last_time = math.nan  # the time of the newest reading
+        self.flagged_at: float | None = None  # when the current run was flagged, if it was
+        self.pairs = 0  # neighbouring pairs before the current run (flagged runs left out)
+        self.repeats = 0  # and the repeats among them
+        self.seen = 0  # readings in all
+        self.first_time = math.nan  # the time of the first reading
+        self.limit = 0  # the current run's limit once worked out (0: not yet)
+
+    @property
+    def span(self) -> RepeatSpan | None:
+        """The flagged run going on, or None."""
+        if self.flagged_at is None:
+            return None
+        return RepeatSpan(self.value, self.since, self.flagged_at, self.count, None)
+
+    def _limit(self, every: float) -> int:
+        if not self.limit:
+            start = self.seen - self.count
+            interval = (self.since - self.first_time) / start if start > 0 else 0.0
+            self.limit = run_limit(self.pairs, self.repeats, interval, every)
+        return self.limit
+
+    def _end(self, out: list[RepeatSpan]) -> None:
+        """The current run ends: named when it was flagged, else folded into the history."""
+        if self.flagged_at is not None:
+            out.append(RepeatSpan(self.value, self.since, self.flagged_at, self.count, self.last_time))
+            self.flagged_at = None
+        elif self.count:
+            self.pairs += self.count
+            self.repeats += self.count - 1
+        self.limit = 0
+
+    def _take(self, v: float, t: FloatArray, a: int, m: int, every: float, out: list[RepeatSpan]) -> None:
+        """``m`` readings of value ``v`` at ``t[a: a + m]``, a run of their own or the current
+        run's continuation."""
+        if v == self.value:
+            c0 = self.count
+            self.count = c0 + m
+        else:
+            self._end(out)
+            if math.isnan(self.first_time):
+                self.first_time = float(t[a])
+            self.value, self.count, self.since, c0 = v, m, float(t[a]), 0
+        self.seen += m
+        self.last_time = float(t[a + m - 1])
+        if self.flagged_at is None and self.count >= REPEAT_MIN and self.count >= self._limit(every):
+            k = max(self.limit - c0, 1)  # the reading of the batch at which the run reached its limit
+            self.flagged_at = float(t[a + k - 1])
+            out.append(RepeatSpan(v, self.since, self.flagged_at, c0 + k, None))
+
+    def feed(self, t: FloatArray, x: FloatArray, every: float) -> list[RepeatSpan] | None:
+        """Take readings ``x`` at times ``t`` (float64 arrays, oldest first); ``every`` is the
+        plant's ``false_alarm_every`` in seconds.  Returns the flagged runs that began or
+        ended among them, or None."""
+        n = x.shape[0]
+        out: list[RepeatSpan] = []
+        if n <= _SMALL:
+            if n == 1:
+                v = x.item(0)
+                if v != self.value and self.flagged_at is None and self.count:
+                    # The steady state of a sound stream: one more reading unlike the last.
+                    self.pairs += self.count
+                    self.repeats += self.count - 1
+                    self.limit = 0
+                    self.value, self.count, self.seen = v, 1, self.seen + 1
+                    self.since = self.last_time = t.item(0)
+                    return None
+                self._take(v, t, 0, 1, every, out)
+                return out or None
+            for i, v in enumerate(x.tolist()):
+                self._take(v, t, i, 1, every, out)
+            return out or None
+        eq = x[1:] == x[:-1]
+        r = np.flatnonzero(eq)  # i: reading i + 1 repeats reading i
+        cont = bool(x[0] == self.value)
+        if self.flagged_at is None and not math.isnan(self.first_time) and not self._could_flag(t, r, cont, n, every):
+            self._fold(t, x, r, cont, n)
+            return None
+        starts = np.flatnonzero(~eq) + 1
+        bounds = [0, *starts.tolist(), n]
+        for a, b in itertools.pairwise(bounds):
+            self._take(x.item(a), t, a, b - a, every, out)
+        return out or None
+
+    def _could_flag(self, t: FloatArray, r: NDArray[np.intp], cont: bool, n: int, every: float) -> bool:
+        """Whether a run among ``n`` new readings (``r`` their repeats, ``cont``: the first
+        continues the current run) could reach its limit: the longest run against a limit
+        no run of the batch can be below (the least repeat share, the longest interval)."""
+        if self.pairs + self.count + n < REPEAT_HISTORY:
+            return False
+        longest = self.count + 1 if cont else 1
+        if r.shape[0]:
+            brk = np.flatnonzero(np.diff(r) != 1)
+            firsts = np.concatenate((r[:1], r[brk + 1]))
+            lasts = np.concatenate((r[brk], r[-1:]))
+            lengths = lasts - firsts + 2
+            if cont and firsts.item(0) == 0:
+                lengths[0] += self.count
+            longest = max(longest, int(lengths.max()))
+        if longest < REPEAT_MIN:
+            return False
+        start = max(self.seen - self.count, 1)
+        interval = (t.item(-1) - self.first_time) / start
+        low = run_limit(self.pairs + self.count + n, self.repeats, interval, every)
+        return longest >= low - 1
+
+    def _fold(self, t: FloatArray, x: FloatArray, r: NDArray[np.intp], cont: bool, n: int) -> None:
+        """Readings none of whose runs reaches its limit (and no flagged run going on):
+        the history takes every run but the last, which becomes the current run."""
+        k = r.shape[0]
+        # The last run's first reading: after the last reading unlike its successor.
+        j = n - 1
+        if k and r.item(-1) == n - 2:
+            tail = np.flatnonzero(np.diff(r) != 1)
+            g = r.item(int(tail[-1]) + 1) if tail.shape[0] else r.item(0)
+            j = g
+        if cont and j == 0:
+            # Every reading continues the current run.
+            self.count += n
+            self.seen += n
+            self.last_time = t.item(-1)
+            return
+        start = self.seen - self.count  # the current run's first reading, counted from the first
+        new_start = self.seen + j
+        inside = int(np.count_nonzero(r < j)) if k else 0  # repeats among the batch's pairs before j
+        self.repeats += max(self.count - 1, 0) + (1 if cont else 0) + inside
+        self.pairs += new_start - start
+        self.value = x.item(j)
+        self.count = n - j
+        self.since = t.item(j)
+        self.seen += n
+        self.last_time = t.item(-1)
+        self.limit = 0
+
+    # ---------------------------------------------------------------- state
+    def get_state(self) -> list[Any]:
+        """Plain JSON: ``[value, count, since, flagged_at, pairs, repeats, seen, first_time,
+        last_time]`` (None for what is not known)."""
+        def num(v: float) -> float | None:
+            return None if math.isnan(v) else v
+        return [num(self.value), self.count, num(self.since), self.flagged_at, self.pairs, self.repeats,
+                self.seen, num(self.first_time), num(self.last_time)]
+
+    @classmethod
+    def from_state(cls, s: Any) -> RepeatWatch:
+        """What :meth:`get_state` gave; ``ValueError`` names what is wrong."""
+        if not isinstance(s, list) or len(s) != 9:
+            raise ValueError(f"repeats: expected a list of 9 entries, got {s!r:.80}")
+        w = cls()
+
+        def num(v: Any, what: str) -> float:
+            if v is None:
+                return math.nan
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+                raise ValueError(f"repeats: {what} must be a finite number or null, got {v!r:.40}")
+            return float(v)
+
+        def whole(v: Any, what: str) -> int:
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or v != int(v) or v < 0:
+                raise ValueError(f"repeats: {what} must be a whole number of at least 0, got {v!r:.40}")
+            return int(v)
+
+        w.value = num(s[0], "value")
+        w.count = whole(s[1], "count")
+        w.since = num(s[2], "since")
+        fa = num(s[3], "flagged_at")
+        w.flagged_at = None if math.isnan(fa) else fa
+        w.pairs, w.repeats, w.seen = whole(s[4], "pairs"), whole(s[5], "repeats"), whole(s[6], "seen")
+        w.first_time, w.last_time = num(s[7], "first_time"), num(s[8], "last_time")
+        if w.repeats > w.pairs or w.count > w.seen or (w.count == 0) != math.isnan(w.value):
+            raise ValueError(f"repeats: the counts disagree ({s!r:.80})")
+        return w
