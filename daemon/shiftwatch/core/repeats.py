@@ -62,7 +62,7 @@ class RepeatSpan(NamedTuple):
     value: float
     since: float
     flagged_at: float
-    count: int
+    readings: int
     until: float | None
 
 
@@ -110,7 +110,7 @@ class RepeatWatch:
     >>> t = np.arange(600.0)
     >>> [(s.value == float(x[399]), s.since, s.flagged_at, s.until) for s in w.feed(t, x, 7 * 86400.0)]
     [(True, 399.0, 403.0, None)]
-    >>> w.span.count
+    >>> w.span.readings
     201
     >>> w.feed(np.array([600.0]), np.array([500.1]), 7 * 86400.0)[0].until
     599.0
