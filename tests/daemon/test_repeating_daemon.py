@@ -103,3 +103,48 @@ def test_a_frozen_sensor_raises_the_gauge_and_it_falls_when_the_readings_vary_ag
     assert "a stuck sensor is possible" in start[0] and "advisory only" in start[0]
     assert len(end) == 1 and "fill weight on filler head7" in end[0], log[-3000:]
     assert "head8" not in " ".join(start + end)
+
+
+def test_a_frozen_sensor_in_the_pool_of_calm_streams_is_flagged_in_the_round_its_reading_came(tmp_path) -> None:
+    """In process, rounds of one sample per stream (no idle time: the pool hands a stream's
+    samples to its engine only when it must).  20 calm streams; one freezes at its level.
+    Its flag is up in the round of the reading that makes the run improbable, as it is
+    for a daemon without the pool (the reference, whose engines take each sample as it
+    comes), and down in the round of the first reading that differs; the records of the
+    two daemons are the same."""
+    from shiftwatch.config import load_config
+    from shiftwatch.daemon import Daemon
+    from shiftwatch.metrics import Metrics
+    from shiftwatch.mqtt import Message
+
+    t0, warm, n = 1_790_000_000.0, 600, 20
+    rng = np.random.default_rng(9)
+    data = np.round((500.0 + 0.4 * rng.standard_normal((n, warm + 200))) / 0.01) * 0.01
+    frozen = slice(warm + 50, warm + 120)
+    data[3, frozen] = 500.0
+    daemons = {}
+    for pool in (True, False):
+        path = tmp_path / f"pool{pool}.yaml"
+        path.write_text("streams:\n  - {topic: 'brackenfield/line2/+/fill', format: json, value: v, time: ts, "
+                        f"unit: g}}\nmetrics: {{listen: '127.0.0.1:0'}}\nstate: {{dir: '{tmp_path / str(pool)}'}}\n")
+        d = Daemon(load_config(str(path)), config_path=str(path), metrics=Metrics(), pool=pool)
+        d.restore()
+        d.process([Message(f"brackenfield/line2/head{i}/fill",
+                           json.dumps([{"v": float(v), "ts": t0 + j} for j, v in enumerate(data[i, :warm])]).encode(),
+                           t0 + warm, 0, 0) for i in range(n)])
+        daemons[pool] = d
+    name = "brackenfield/line2/head3/fill"
+    flags: dict[bool, list[bool]] = {True: [], False: []}
+    pooled = 0
+    for k in range(warm, warm + 200):
+        for pool, d in daemons.items():
+            d.process([Message(f"brackenfield/line2/head{i}/fill", json.dumps({"v": float(data[i, k]), "ts": t0 + k}).encode(),
+                               t0 + k, 0, 0) for i in range(n)])
+            flags[pool].append(d.metrics.streams()[name].repeating is not None)
+            if pool and d.pool is not None and name in d.pool and d.pool.waiting(name):
+                pooled += 1
+    assert flags[True] == flags[False]
+    up = [k for k, f in zip(range(warm, warm + 200), flags[True]) if f]
+    assert up and up[0] < frozen.stop and up[0] - frozen.start <= 10, up
+    assert up[-1] == frozen.stop - 1 and len(up) == frozen.stop - up[0]
+    assert pooled > 100  # the streams sat in the pool

@@ -525,13 +525,15 @@ class StreamEngine:
             w = self._window.values
             path = follow_path(fo.input(w[len(w) - lag:], b.level, span), fo.offset, lam)
             offsets = tuple(path[np.maximum(0, lag + np.arange(delay + 1) - delay)].tolist())
+        rv, rl, rn, rf = self._repeats.pool_terms(s.false_alarm_every)
         return CalmTerms(level=b.level, offsets=offsets, lam=lam, delay=delay if lam else 0,
                          lo=b.level + fo.center - span, hi=b.level + fo.center + span,
                          inv=1.0 / b.innovation_sigma, phi=b.phi, prev_r=self._prev_r, clip=b.clip,
                          ks=tuple(ks), hs=tuple(hs), c_plus=tuple(cp), c_minus=tuple(cm), room=room,
                          last_time=self._last_time,
                          max_ahead=math.inf if s.max_time_ahead is None else s.max_time_ahead,
-                         max_behind=math.inf if s.max_time_behind is None else s.max_time_behind)
+                         max_behind=math.inf if s.max_time_behind is None else s.max_time_behind,
+                         run_value=rv, run_left=rl, run_new=rn, run_flagged=rf)
 
     # ------------------------------------------------------------- feeding
     def process(self, times: Sequence[Any] | FloatArray, values: Sequence[Any] | FloatArray,

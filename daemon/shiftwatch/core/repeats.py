@@ -170,6 +170,24 @@ class RepeatWatch:
             self.limit = run_limit(self.pairs, self.repeats, self.triples, interval, every)
         return self.limit
 
+    def pool_terms(self, every: float) -> tuple[float, float, float, bool]:
+        """What the pool of calm streams (core/calm.py) needs to hand the stream to its engine
+        no later than the reading at which a run is flagged, or at the first reading unlike a
+        flagged run: the current value, the readings of that value that may follow before
+        the run could be flagged, those of a run beginning at the next reading (each one
+        early, so that a share moved by the readings meanwhile is allowed for; infinite when
+        no flag can come), and whether the run going on is flagged."""
+        if self.flagged_at is not None:
+            return self.value, math.inf, math.inf, True
+        if not self.count:
+            return math.nan, math.inf, math.inf, False
+        now = self._limit(every)
+        interval = (self.last_time - self.first_time) / self.seen if self.seen > 1 else 0.0
+        new = run_limit(self.pairs + self.count, self.repeats + self.count - 1,
+                        self.triples + max(self.count - 2, 0), interval, every)
+        return (self.value, math.inf if now >= _NEVER else float(now - self.count - 1),
+                math.inf if new >= _NEVER else float(new - 2), False)
+
     def _end(self, out: list[RepeatSpan]) -> None:
         """The current run ends: named when it was flagged, else folded into the history."""
         if self.flagged_at is not None:
