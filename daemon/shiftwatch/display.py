@@ -353,3 +353,22 @@ def repeat_text(span: RepeatSpan, who: str, unit: str | None = None, tz: str = "
                 f"a stuck sensor is possible; check it by your site's procedures (advisory only)")
     return (f"readings of {who} vary again after {span.readings} readings of one value, {value}, from "
             f"{since} to {clock(span.until, tz, today=today)}")
+
+
+def frozen_text(span: RepeatSpan, who: str, unit: str | None = None, tz: str = "UTC") -> str:
+    """What a replay says of a run of one repeated reading the engine flagged: the stream, the
+    value, from when to when (or to the end of the data), and how many readings.
+
+    >>> from shiftwatch.core.repeats import RepeatSpan
+    >>> s = RepeatSpan(500.0, 1772432400.0, 1772432404.0, 1201, 1772433600.0)
+    >>> print(frozen_text(s, "fill weight on filler head7", "g"))
+    fill weight on filler head7: 1201 readings repeated one value, 500 g, from 2026-03-02T06:20:00.000Z to 2026-03-02T06:40:00.000Z (improbable for its own noise from 2026-03-02T06:20:04.000Z): a stuck sensor is possible
+    >>> print(frozen_text(s._replace(until=None), "head7"))
+    head7: 1201 readings repeat one value, 500, from 2026-03-02T06:20:00.000Z to the end of the data (improbable for its own noise from 2026-03-02T06:20:04.000Z): a stuck sensor is possible
+    """
+    u = f" {unit}" if unit else ""
+    end = "the end of the data" if span.until is None else stamp(span.until, tz)
+    verb = "repeat" if span.until is None else "repeated"
+    return (f"{who}: {span.readings} readings {verb} one value, {human_number(span.value, 6)}{u}, from "
+            f"{stamp(span.since, tz)} to {end} (improbable for its own noise from {stamp(span.flagged_at, tz)}): "
+            f"a stuck sensor is possible")
