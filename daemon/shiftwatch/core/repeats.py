@@ -38,7 +38,6 @@ Pure: samples in, numbers out.
 
 from __future__ import annotations
 
-import itertools
 import math
 from array import array
 from typing import Any, NamedTuple, Self
@@ -60,6 +59,7 @@ REPEAT_PRIOR = 10.0
 _SMALL = 8
 #: No run reaches this: the limit of a stream whose readings may not be flagged (yet).
 _NEVER = 1 << 62
+_ZERO = np.zeros(1, dtype=np.intp)
 
 
 class RepeatSpan(NamedTuple):
@@ -299,24 +299,36 @@ class RepeatWatch(array):  # type: ignore[type-arg]
             for i, v in enumerate(x.tolist()):
                 self._take(v, t, i, 1, every, out)
             return out or None
+        if math.isnan(self[_F0]):
+            self[_F0] = t.item(0)
         eq = x[1:] == x[:-1]
         r = np.flatnonzero(eq)  # i: reading i + 1 repeats reading i
-        cont = bool(x[0] == self.value)
-        if self.flagged_at is None and not math.isnan(self.first_time) and not self._could_flag(t, r, cont, n, every):
+        cont = bool(x[0] == self[_V])
+        low = self._least_limit(t, n, every)
+        if math.isnan(self[_FL]) and self._longest(r, cont) < low - 1:
             self._fold(t, x, r, cont, n)
             return None
+        # Run by run where a run could reach its limit (and the first, which may go on a
+        # flagged run); the runs between, which cannot, folded together.
         starts = np.flatnonzero(~eq) + 1
-        bounds = [0, *starts.tolist(), n]
-        for a, b in itertools.pairwise(bounds):
-            self._take(x.item(a), t, a, b - a, every, out)
+        firsts = np.concatenate((_ZERO, starts))
+        lengths = np.diff(np.concatenate((firsts, [n])))
+        pos = int(lengths[0])
+        self._take(x.item(0), t, 0, pos, every, out)
+        if low < _NEVER:
+            for k in (np.flatnonzero(lengths[1:] >= low - 1) + 1).tolist():
+                a, m = int(firsts[k]), int(lengths[k])
+                if a > pos:
+                    self._fold_part(t, x, eq, pos, a, out)
+                self._take(x.item(a), t, a, m, every, out)
+                pos = a + m
+        if pos < n:
+            self._fold_part(t, x, eq, pos, n, out)
         return out or None
 
-    def _could_flag(self, t: FloatArray, r: NDArray[np.intp], cont: bool, n: int, every: float) -> bool:
-        """Whether a run among ``n`` new readings (``r`` their repeats, ``cont``: the first
-        continues the current run) could reach its limit: the longest run against a limit
-        no run of the batch can be below (the least repeat share, the longest interval)."""
-        if self.pairs + self.count + n < REPEAT_HISTORY:
-            return False
+    def _longest(self, r: NDArray[np.intp], cont: bool) -> int:
+        """The longest run among a batch's readings whose repeats are ``r`` (``cont``: its
+        first reading continues the current run)."""
         longest = self.count + 1 if cont else 1
         if r.shape[0]:
             brk = np.flatnonzero(np.diff(r) != 1)
@@ -326,19 +338,35 @@ class RepeatWatch(array):  # type: ignore[type-arg]
             if cont and firsts.item(0) == 0:
                 lengths[0] += self.count
             longest = max(longest, int(lengths.max()))
-        if longest < REPEAT_MIN:
-            return False
+        return longest
+
+    def _least_limit(self, t: FloatArray, n: int, every: float) -> int:
+        """A limit no run among ``n`` new readings at ``t`` can be below: that of the least
+        share the readings can give (the most pairs, the fewest repeats) at the longest
+        interval; :data:`_NEVER` when none of them can be flagged."""
+        most = self.pairs + self.count + n
+        if most < REPEAT_HISTORY:
+            return _NEVER
         start = max(self.seen - self.count, 1)
         interval = (t.item(-1) - self.first_time) / start
-        low = run_limit(self.pairs + self.count + n, self.repeats, self.triples, interval, every)
+        low = run_limit(most, self.repeats, self.triples, interval, every)
         if low < _NEVER:  # (the repeats may grow: the least share another repeat follows)
-            most = self.pairs + self.count + n
             p = repeat_share(self.repeats, most)
             q = max(p, (self.triples + REPEAT_PRIOR * p) / (self.repeats + self.count + n + REPEAT_PRIOR))
             budget = interval / (REPEAT_RARER * every)
             if q < 1.0 and budget < 1.0:
                 low = min(low, max(REPEAT_MIN, math.floor(math.log(budget) / math.log(q)) + 2))
-        return longest >= low - 1
+        return low
+
+    def _fold_part(self, t: FloatArray, x: FloatArray, eq: NDArray[np.bool_], a: int, b: int,
+                   out: list[RepeatSpan]) -> None:
+        """The readings ``a`` to ``b`` of a batch, whose runs cannot reach their limits, the
+        first of them beginning a run: the run going on ends (named when flagged), then
+        :meth:`_fold`."""
+        if not math.isnan(self[_FL]):
+            self._end(out)
+            self[_C] = 0.0  # (left out of the history: see _end)
+        self._fold(t[a:b], x[a:b], np.flatnonzero(eq[a:b - 1]), False, b - a)
 
     def _fold(self, t: FloatArray, x: FloatArray, r: NDArray[np.intp], cont: bool, n: int) -> None:
         """Readings none of whose runs reaches its limit (and no flagged run going on):
