@@ -193,7 +193,17 @@ class RepeatWatch(array):  # type: ignore[type-arg]
     count = _count(_C, "its readings")
     since = _field(_S, "the time of its first reading")
     last_time = _field(_L, "the time of the newest reading")
-    pairs = _count(_P, "neighbouring pairs before the current run (flagged runs left out)")
+
+    @property
+    def pairs(self) -> int:
+        """Neighbouring pairs before the current run, flagged runs left out: the readings
+        before it less those of flagged runs (kept in the array), so that a reading unlike
+        the last, the common case, moves no count but ``seen``."""
+        return int(self[_N] - self[_C] - self[_P])
+
+    @pairs.setter
+    def pairs(self, v: int) -> None:
+        self[_P] = self[_N] - self[_C] - v
     repeats = _count(_R, "and the repeats among them")
     triples = _count(_T, "and the repeats that followed a repeat")
     seen = _count(_N, "readings in all")
@@ -218,6 +228,8 @@ class RepeatWatch(array):  # type: ignore[type-arg]
         return RepeatSpan(self.value, self.since, self.flagged_at, self.count, None)
 
     def _limit(self, every: float) -> int:
+        """The current run's limit, kept for the run (worked out for runs of REPEAT_MIN or more
+        readings only: a run of one moves on in feed's fast path without clearing it)."""
         if not self.limit:
             start = self.seen - self.count
             interval = (self.since - self.first_time) / start if start > 0 else 0.0
@@ -235,7 +247,10 @@ class RepeatWatch(array):  # type: ignore[type-arg]
             return self.value, math.inf, math.inf, True
         if not self.count:
             return math.nan, math.inf, math.inf, False
-        now = self._limit(every)
+        start = self.seen - self.count
+        now = run_limit(self.pairs, self.repeats, self.triples,
+                        (self.since - self.first_time) / start if start > 0 else 0.0, every)  # (not kept:
+        # the fast path of feed starts a new run without clearing a kept limit)
         interval = (self.last_time - self.first_time) / self.seen if self.seen > 1 else 0.0
         new = run_limit(self.pairs + self.count, self.repeats + self.count - 1,
                         self.triples + max(self.count - 2, 0), interval, every)
@@ -247,8 +262,8 @@ class RepeatWatch(array):  # type: ignore[type-arg]
         if self.flagged_at is not None:
             out.append(RepeatSpan(self.value, self.since, self.flagged_at, self.count, self.last_time))
             self.flagged_at = None
+            self[_P] += self[_C]  # its pairs are left out of the history
         elif self.count:
-            self.pairs += self.count
             self.repeats += self.count - 1
             if self.count > 2:
                 self.triples += self.count - 2
@@ -281,18 +296,13 @@ class RepeatWatch(array):  # type: ignore[type-arg]
         if n <= _SMALL:
             if n == 1:
                 v = x.item(0)
-                c = self[_C]
-                if v != self[_V] and c and math.isnan(self[_FL]):
-                    # The steady state of a sound stream: one more reading unlike the last.
-                    self[_P] += c
-                    self[_R] += c - 1.0
-                    if c > 2.0:
-                        self[_T] += c - 2.0
-                    self[_LIM] = 0.0
-                    self[_V] = v
-                    self[_C] = 1.0
-                    self[_N] += 1.0
-                    self[_S] = self[_L] = t.item(0)
+                if self[1] == 1.0 and v != self[0]:
+                    # The steady state of a sound stream: a reading unlike the last, which was
+                    # unlike the one before (a run of one is never flagged): the run moves on and
+                    # the history with it (``pairs`` follows ``seen``).  (Places as _V, _C, _N, _S, _L.)
+                    self[0] = v
+                    self[8] += 1.0
+                    self[2] = self[3] = t.item(0)
                     return None
                 self._take(v, t, 0, 1, every, out)
                 return out or None
@@ -384,8 +394,6 @@ class RepeatWatch(array):  # type: ignore[type-arg]
             self.seen += n
             self.last_time = t.item(-1)
             return
-        start = self.seen - self.count  # the current run's first reading, counted from the first
-        new_start = self.seen + j
         rr = r[r < j] if k else r  # the repeats among the batch's pairs before j
         added = max(self.count - 1, 0) + (1 if cont else 0) + rr.shape[0]
         # Runs of two or more among them: the current run's, and the groups of rr (the first
@@ -396,7 +404,6 @@ class RepeatWatch(array):  # type: ignore[type-arg]
         groups += 1 if self.count >= 2 or cont else 0
         self.repeats += added
         self.triples += added - groups
-        self.pairs += new_start - start
         self.value = x.item(j)
         self.count = n - j
         self.since = t.item(j)
@@ -437,7 +444,11 @@ class RepeatWatch(array):  # type: ignore[type-arg]
         w.since = num(s[2], "since")
         fa = num(s[3], "flagged_at")
         w.flagged_at = None if math.isnan(fa) else fa
-        w.pairs, w.repeats, w.seen = whole(s[4], "pairs"), whole(s[5], "repeats"), whole(s[6], "seen")
+        w.seen, w.repeats = whole(s[6], "seen"), whole(s[5], "repeats")
+        pairs = whole(s[4], "pairs")
+        if pairs + w.count > w.seen:
+            raise ValueError(f"repeats: the counts disagree ({s!r:.80})")
+        w.pairs = pairs
         w.first_time, w.last_time = num(s[7], "first_time"), num(s[8], "last_time")
         w.triples = whole(s[9], "triples")
         if w.triples > w.repeats or w.repeats > w.pairs or w.count > w.seen or (w.count == 0) != math.isnan(w.value):
