@@ -11,7 +11,8 @@ Each side replays the same long CSV with the real command line (``shiftwatch rep
 --out /dev/null``) under ``valgrind --tool=callgrind`` and the figure is the instructions
 executed (callgrind's ``summary``: Ir), whole process, start-up and imports included;
 the sides alternate which goes first.  Instruction counts do not move with the load of
-the shared machine, so one run a side is enough (``--repeat`` to see that they do not).
+the shared machine; string hashing is fixed for both sides (``PYTHONHASHSEED``), and the
+very first run after a change still counts a little more (take ``--repeat 3`` or more).
 
 The history: 24 streams of the invented Brackenfield plant at one reading a second,
 ``--rows`` readings each (20,000 by default), 0.4 noise at three resolutions (full
@@ -73,7 +74,9 @@ def write_history(path: Path, rows: int) -> None:
 
 
 def instructions(checkout: Path, csv: Path, out: Path) -> int:
-    env = dict(os.environ, PYTHONPATH=str(checkout / "daemon"), OPENBLAS_NUM_THREADS="1")
+    # (string hashing fixed: with it random, one side's count moved by about half a percent
+    # from run to run)
+    env = dict(os.environ, PYTHONPATH=str(checkout / "daemon"), OPENBLAS_NUM_THREADS="1", PYTHONHASHSEED="0")
     subprocess.run([sys.executable, "-m", "compileall", "-q", str(checkout / "daemon" / "shiftwatch")],
                    check=True, env=env)
     cmd = ["valgrind", "--tool=callgrind", f"--callgrind-out-file={out}", sys.executable, "-m", "shiftwatch",

@@ -339,14 +339,15 @@ class RepeatWatch(array):  # type: ignore[type-arg]
     def _longest(self, r: NDArray[np.intp], cont: bool) -> int:
         """The longest run among a batch's readings whose repeats are ``r`` (``cont``: its
         first reading continues the current run)."""
-        longest = self.count + 1 if cont else 1
+        count = int(self[_C])
+        longest = count + 1 if cont else 1
         if r.shape[0]:
             brk = np.flatnonzero(np.diff(r) != 1)
             firsts = np.concatenate((r[:1], r[brk + 1]))
             lasts = np.concatenate((r[brk], r[-1:]))
             lengths = lasts - firsts + 2
             if cont and firsts.item(0) == 0:
-                lengths[0] += self.count
+                lengths[0] += count
             longest = max(longest, int(lengths.max()))
         return longest
 
@@ -354,15 +355,16 @@ class RepeatWatch(array):  # type: ignore[type-arg]
         """A limit no run among ``n`` new readings at ``t`` can be below: that of the least
         share the readings can give (the most pairs, the fewest repeats) at the longest
         interval; :data:`_NEVER` when none of them can be flagged."""
-        most = self.pairs + self.count + n
+        seen, count, repeats, triples = self[_N], self[_C], int(self[_R]), int(self[_T])
+        most = int(seen - self[_P]) + n  # (pairs + count + n)
         if most < REPEAT_HISTORY:
             return _NEVER
-        start = max(self.seen - self.count, 1)
-        interval = (t.item(-1) - self.first_time) / start
-        low = run_limit(most, self.repeats, self.triples, interval, every)
+        start = max(seen - count, 1.0)
+        interval = (t.item(-1) - self[_F0]) / start
+        low = run_limit(most, repeats, triples, interval, every)
         if low < _NEVER:  # (the repeats may grow: the least share another repeat follows)
-            p = repeat_share(self.repeats, most)
-            q = max(p, (self.triples + REPEAT_PRIOR * p) / (self.repeats + self.count + n + REPEAT_PRIOR))
+            p = repeat_share(repeats, most)
+            q = max(p, (triples + REPEAT_PRIOR * p) / (repeats + count + n + REPEAT_PRIOR))
             budget = interval / (REPEAT_RARER * every)
             if q < 1.0 and budget < 1.0:
                 low = min(low, max(REPEAT_MIN, math.floor(math.log(budget) / math.log(q)) + 2))
@@ -388,28 +390,29 @@ class RepeatWatch(array):  # type: ignore[type-arg]
             tail = np.flatnonzero(np.diff(r) != 1)
             g = r.item(int(tail[-1]) + 1) if tail.shape[0] else r.item(0)
             j = g
+        count = self[_C]
         if cont and j == 0:
             # Every reading continues the current run.
-            self.count += n
-            self.seen += n
-            self.last_time = t.item(-1)
+            self[_C] = count + n
+            self[_N] += n
+            self[_L] = t.item(-1)
             return
         rr = r[r < j] if k else r  # the repeats among the batch's pairs before j
-        added = max(self.count - 1, 0) + (1 if cont else 0) + rr.shape[0]
+        added = max(count - 1.0, 0.0) + (1.0 if cont else 0.0) + rr.shape[0]
         # Runs of two or more among them: the current run's, and the groups of rr (the first
         # of which is the current run's when it goes on into the batch).
         groups = 1 + int(np.count_nonzero(np.diff(rr) != 1)) if rr.shape[0] else 0
         if cont and rr.shape[0] and rr.item(0) == 0:
             groups -= 1
-        groups += 1 if self.count >= 2 or cont else 0
-        self.repeats += added
-        self.triples += added - groups
-        self.value = x.item(j)
-        self.count = n - j
-        self.since = t.item(j)
-        self.seen += n
-        self.last_time = t.item(-1)
-        self.limit = 0
+        groups += 1 if count >= 2.0 or cont else 0
+        self[_R] += added
+        self[_T] += added - groups
+        self[_V] = x.item(j)
+        self[_C] = n - j
+        self[_S] = t.item(j)
+        self[_N] += n
+        self[_L] = t.item(-1)
+        self[_LIM] = 0.0
 
     # ---------------------------------------------------------------- state
     def get_state(self) -> list[Any]:
