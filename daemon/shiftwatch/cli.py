@@ -544,6 +544,28 @@ def _write_records(out: Any, result: Any, labels: dict[str, Any], tz: str, writt
             out.write(json.dumps(d) + "\n")
 
 
+#: Runs of one repeated reading a replay names one by one (the summary line counts them all).
+SAY_FROZEN = 20
+
+
+def _say_frozen(streams: dict[str, Any], frozen: list[str], labels: dict[str, Any], unit_for: Any,
+                tz: str) -> None:
+    """One line per run of one repeated reading the engines flagged, up to SAY_FROZEN."""
+    from shiftwatch.display import frozen_text
+
+    said = total = 0
+    for name in frozen:
+        o = streams[name]
+        total += o.repeat_count
+        who = labels.get(name) or name
+        for span in o.repeats:
+            if said < SAY_FROZEN:
+                _say(frozen_text(span, who if who == name else f"{who} ({name})", unit_for(name), tz))
+                said += 1
+    if total > said:
+        _say(f"... and {total - said} more run(s) of one repeated value (the report lists up to 100 a stream)")
+
+
 def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for: Any, sources: list[Any],
                     labels: dict[str, Any], tz: str) -> int:
     """The problems, the summary line and the report, once the records are written."""
@@ -569,6 +591,11 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
                f"{still_open} still open")
     if rejected:
         summary += "; samples set aside: " + ", ".join(f"{k} {v}" for k, v in sorted(rejected.items()))
+    frozen = sorted(n for n, o in streams.items() if o.repeat_count)
+    if frozen:
+        summary += (f"; {len(frozen)} stream(s) whose readings repeated one value improbably long "
+                    f"({sum(streams[n].repeat_count for n in frozen)} time(s); a stuck sensor is possible, "
+                    "no record is made of it)")
     skipped = result.read_problem_count - result.file_notes
     if skipped:
         # a bad cell of a wide file is counted, its row is not skipped
@@ -587,6 +614,7 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
     if result.repeated_hour:
         summary += f"; {notes[-1]}"
     _say(summary)
+    _say_frozen(streams, frozen, labels, unit_for, tz)
     if not streams and skipped > 0:
         # Rows, and not one of them read (times without an offset and no --timezone, a value
         # column of text): no records, which status 1 ("the good rows were replayed") would hide.
@@ -598,6 +626,9 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
         from shiftwatch.report import ReportError
 
         report.adopt({name: o.trace for name, o in streams.items()})
+        for o in streams.values():
+            if o.trace is not None:  # the engine's own count of a run still going on at the end
+                o.trace.repeats, o.trace.repeats_total = list(o.repeats), o.repeat_count
         bar = progress_bar(min(len(streams), report.max_charts), "charts", "chart", minimum=2)
         try:
             path = report.write(

@@ -37,7 +37,7 @@ from shiftwatch.core.records import ADVISORY, AlertRecord
 from shiftwatch.core.screen import REASONS as SAMPLE_REASONS
 from shiftwatch.decode import REASONS as DECODE_REASONS
 from shiftwatch.decode import Decoded, DecodeProblem, decode, decode_many, stream_name
-from shiftwatch.display import alert_summary, stamp
+from shiftwatch.display import alert_summary, repeat_text, stamp
 from shiftwatch.floor import FloorDesk
 from shiftwatch.fsutil import explain_os_error
 from shiftwatch.handover import Handover, is_handover
@@ -1396,6 +1396,8 @@ class Daemon:
         for rec in res.records:
             j = int(np.searchsorted(times, rec.as_of))
             self.emit(rec, float(arrivals[min(j, len(arrivals) - 1)]))
+        if res.repeats:
+            self._repeat_lines(name, eng, res.repeats, now)
         self.levels.changed(name, eng)
         self.metrics.update_stream(name, StreamStats.from_engine(eng))
         if self.in_cluster:  # read by the snapshots to the cluster only
@@ -1404,6 +1406,21 @@ class Daemon:
             terms = eng.calm_terms()
             if terms is not None:
                 self.pool.join(name, terms)
+
+    def _repeat_lines(self, name: str, eng: StreamEngine, spans: Any, now: float) -> None:
+        """One line when a stream's readings start repeating one value improbably long (a
+        stuck sensor is possible: core/repeats.py), and one when they vary again; rate-limited
+        as the set-aside lines are (one line per kind every 10 s, the rest summed up).  No
+        alert record: a record is about a step in level."""
+        who = self.cfg.label_for(name, self._filters.get(name)) or _printable(name)
+        for span in spans:
+
+            def text(s: Any = span) -> str:
+                return repeat_text(s, who, eng.unit, self.tz, today=now)
+
+            self.rlog.warning("repeating" if span.until is None else "repeating_ended", text, now,
+                              extra={"stream": name},
+                              level=logging.WARNING if span.until is None else logging.INFO)
 
     # ------------------------------------------------------- calm streams
     def _pool_round(self, groups: dict[str, list[Any]], now: float) -> JournalSingles | None:

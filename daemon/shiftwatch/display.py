@@ -16,6 +16,7 @@ from datetime import UTC, datetime, tzinfo
 from zoneinfo import ZoneInfo
 
 from shiftwatch.core.records import AlertRecord
+from shiftwatch.core.repeats import RepeatSpan
 from shiftwatch.core.timefmt import format_duration
 
 UTC_NAMES = frozenset(("UTC", "Etc/UTC", "Z"))
@@ -332,3 +333,46 @@ def _lag_text(lag: float) -> str:
     if lag < 120:
         return f"{lag:.0f} s"
     return format_duration(lag)
+
+
+def repeat_text(span: RepeatSpan, who: str, unit: str | None = None, tz: str = "UTC", *,
+                today: float | None = None) -> str:
+    """One line for a run of one repeated reading the engine flagged (core/repeats.py):
+    when it began, or, once a different reading came, when it ended.  It is a flag of the
+    stream, not an alert record; shiftwatch stays advisory.
+
+    >>> from shiftwatch.core.repeats import RepeatSpan
+    >>> s = RepeatSpan(500.0, 1772432400.0, 1772432404.0, 5, None)
+    >>> print(repeat_text(s, "fill weight on filler head7", "g"))
+    readings of fill weight on filler head7 repeat one value, 500 g, since 06:20:00Z (5 readings by 06:20:04Z, improbable for its own noise and resolution): a stuck sensor is possible; check it by your site's procedures (advisory only)
+    >>> print(repeat_text(s._replace(readings=1201, until=1772433600.0), "fill weight on filler head7", "g"))
+    readings of fill weight on filler head7 vary again after 1201 readings of one value, 500 g, from 06:20:00Z to 06:40:00Z
+    """
+    u = f" {unit}" if unit else ""
+    value = f"{human_number(span.value, 6)}{u}"
+    since = clock(span.since, tz, today=today)
+    if span.until is None:
+        return (f"readings of {who} repeat one value, {value}, since {since} ({span.readings} readings by "
+                f"{clock(span.flagged_at, tz, today=today)}, improbable for its own noise and resolution): "
+                f"a stuck sensor is possible; check it by your site's procedures (advisory only)")
+    return (f"readings of {who} vary again after {span.readings} readings of one value, {value}, from "
+            f"{since} to {clock(span.until, tz, today=today)}")
+
+
+def frozen_text(span: RepeatSpan, who: str, unit: str | None = None, tz: str = "UTC") -> str:
+    """What a replay says of a run of one repeated reading the engine flagged: the stream, the
+    value, from when to when (or to the end of the data), and how many readings.
+
+    >>> from shiftwatch.core.repeats import RepeatSpan
+    >>> s = RepeatSpan(500.0, 1772432400.0, 1772432404.0, 1201, 1772433600.0)
+    >>> print(frozen_text(s, "fill weight on filler head7", "g"))
+    fill weight on filler head7: 1201 readings repeated one value, 500 g, from 2026-03-02T06:20:00.000Z to 2026-03-02T06:40:00.000Z (improbable for its own noise from 2026-03-02T06:20:04.000Z): a stuck sensor is possible
+    >>> print(frozen_text(s._replace(until=None), "head7"))
+    head7: 1201 readings repeat one value, 500, from 2026-03-02T06:20:00.000Z to the end of the data (improbable for its own noise from 2026-03-02T06:20:04.000Z): a stuck sensor is possible
+    """
+    u = f" {unit}" if unit else ""
+    end = "the end of the data" if span.until is None else stamp(span.until, tz)
+    verb = "repeat" if span.until is None else "repeated"
+    return (f"{who}: {span.readings} readings {verb} one value, {human_number(span.value, 6)}{u}, from "
+            f"{stamp(span.since, tz)} to {end} (improbable for its own noise from {stamp(span.flagged_at, tz)}): "
+            f"a stuck sensor is possible")

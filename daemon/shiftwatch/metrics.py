@@ -25,6 +25,7 @@ Names follow Prometheus conventions (base units, ``_total`` on counters,
 ``shiftwatch_last_shift_timestamp_seconds``  when the last confirmed shift started
 ``shiftwatch_stream_info{stream,state}``     1, labelled with the engine state
 ``shiftwatch_stream_display_info``           1, labelled with the stream's ``label`` and ``unit``
+``shiftwatch_stream_repeating{stream}``      1 while the readings repeat one value improbably long
 ``shiftwatch_streams``                       streams tracked
 ==========================================  =============================================
 
@@ -99,6 +100,8 @@ class StreamStats:
     last_shift_at : epoch seconds at which the last confirmed shift started, or None.
     state : the engine state (``warming_up``, ``watching``, ``event_open``).
     unit : the unit of the readings, when known.
+    repeating : the run of one repeated reading the engine flags (a stuck sensor is possible;
+        core/repeats.py), or None.
     """
 
     samples_total: int
@@ -111,6 +114,7 @@ class StreamStats:
     last_shift_at: float | None
     state: str
     unit: str | None = None
+    repeating: Any = None
 
     @classmethod
     def from_engine(cls, engine: Any) -> StreamStats:
@@ -156,6 +160,7 @@ class StreamStats:
             last_shift_at=engine.last_shift_at,
             state=str(engine.state),
             unit=engine.unit,
+            repeating=engine.repeating,
         )
 
 
@@ -277,6 +282,16 @@ def _display_info(labels: Callable[[str], str | None]) -> Callable[[list[str], l
     return family
 
 
+def _fam_repeating(names: list[str], stats: list[StreamStats]) -> Metric:
+    f = GaugeMetricFamily(
+        "shiftwatch_stream_repeating", "1 while the stream's readings repeat one value for longer "
+        "than its own noise and resolution make likely (a stuck sensor is possible), else 0.",
+        labels=["stream"])
+    for name, st in zip(names, stats):
+        f.add_metric([name], 0.0 if st.repeating is None else 1.0)
+    return f
+
+
 def _fam_count(names: list[str], stats: list[StreamStats]) -> Metric:
     f = GaugeMetricFamily("shiftwatch_streams", "Streams currently tracked.")
     f.add_metric([], float(len(names)))
@@ -285,7 +300,7 @@ def _fam_count(names: list[str], stats: list[StreamStats]) -> Metric:
 
 #: The per-stream families, in the order a full scrape shows them.
 _FAMILIES = (_fam_samples, _fam_rejected, _fam_records, _fam_level, _fam_sigma, _fam_statistic,
-             _fam_threshold, _fam_last_shift, _fam_info, _fam_count)
+             _fam_threshold, _fam_last_shift, _fam_info, _fam_repeating, _fam_count)
 
 
 class _StreamCollector(Collector):

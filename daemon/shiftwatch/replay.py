@@ -75,6 +75,8 @@ IntArray = NDArray[np.int64]
 BATCH = 4096
 #: Problems kept (in order) besides their count; the command line prints this many.
 KEEP_PROBLEMS = 20
+#: Runs of one repeated reading kept per stream for the summary and the report (all are counted).
+KEEP_REPEATS = 100
 #: Samples a process holds back in its streams' batches before it feeds them all early.
 HELD_SAMPLES = 1 << 20
 
@@ -208,6 +210,11 @@ class StreamOutcome:
     trace: Any = None  # the report's StreamTrace, when a report was asked for
     #: 1 when the stream's engine still had an event open (detected, no final record) at the end
     open_events: int = 0
+    #: the runs of one repeated reading the engine flagged (core/repeats.py; the last one with
+    #: ``until`` None when the readings still repeated at the end), the first KEEP_REPEATS
+    repeats: list[Any] = field(default_factory=list)
+    #: how many there were in all
+    repeat_count: int = 0
 
 
 @dataclass
@@ -277,6 +284,8 @@ class _Feeder:
         self.problems: dict[str, list[str]] = {}
         self.problem_count: dict[str, int] = {}
         self.traces: dict[str, Any] = {}
+        self.repeats: dict[str, list[Any]] = {}  # flagged runs of one repeated reading that ended
+        self.repeat_count: dict[str, int] = {}
         # rows and their problems
         self.rows = 0
         self.read_problems: list[tuple[int, int, int, int, str]] = []  # (file, 1, chunk, order, message)
@@ -350,6 +359,8 @@ class _Feeder:
             if trace is not None:
                 trace.add_batch(tb, vb, res)
             records.extend(res.records)
+            if res.repeats:
+                self._repeats(name, res.repeats)
             for rej in res.rejected:
                 if rej.reason in READING_REASONS:
                     continue
@@ -361,6 +372,13 @@ class _Feeder:
         else:
             held[:] = [(t[upto:].copy(), v[upto:].copy(), p[upto:].copy())]  # not views of the whole
             self.held_count[name] = n - upto
+
+    def _repeats(self, name: str, spans: Any) -> None:
+        ended = [s for s in spans if s.until is not None]
+        if ended:
+            kept = self.repeats.setdefault(name, [])
+            kept += ended[:KEEP_REPEATS - len(kept)]
+            self.repeat_count[name] = self.repeat_count.get(name, 0) + len(ended)
 
     def _problem(self, name: str, reason: str, place: int) -> None:
         self.problem_count[name] += 1
@@ -377,9 +395,12 @@ class _Feeder:
             trace = self.traces.get(name)
             if trace is not None:
                 trace.close()
+            reps, count = self.repeats.get(name, []), self.repeat_count.get(name, 0)
+            if eng.repeating is not None:  # the readings still repeated at the end
+                reps, count = [*reps, eng.repeating][:KEEP_REPEATS], count + 1
             out[name] = StreamOutcome(self.records[name], self.problems[name], self.problem_count[name],
                                       eng.samples_total, dict(eng.records_total), dict(eng.rejected_total), trace,
-                                      int(eng.state == EVENT_OPEN))
+                                      int(eng.state == EVENT_OPEN), reps, count)
         return out
 
     def read_summary(self) -> tuple[int, list[tuple[int, int, int, int, str]], int, dict[int, str], int,

@@ -50,7 +50,15 @@ from numpy.typing import NDArray
 from shiftwatch import __version__
 from shiftwatch.core.records import ADVISORY, AlertRecord, BatchResult
 from shiftwatch.core.timefmt import format_duration
-from shiftwatch.display import NO_NOISE, fault_text, sigmas_text, stamp, zone, zone_label
+from shiftwatch.display import (
+    NO_NOISE,
+    fault_text,
+    human_number,
+    sigmas_text,
+    stamp,
+    zone,
+    zone_label,
+)
 
 if TYPE_CHECKING:
     from pathlib import Path
@@ -70,6 +78,8 @@ ZOOM_SAMPLES = 2400
 MAX_ZOOMS = 3
 #: Spikes marked per stream; further ones are counted only.
 MAX_SPIKES = 500
+#: Runs of one repeated reading listed per stream.
+MAX_REPEATS = 100
 #: Charts drawn per report (``--report-charts``).  A chart costs about 0.1 to 0.25 s of CPU
 #: and 30 to 60 kB of the file, so thousands of streams are summarised in the tables, with
 #: charts for the streams with events first (see :func:`charted_streams`).
@@ -279,6 +289,11 @@ class StreamTrace:
         self.spike_times: list[float] = []
         self.spike_values: list[float] = []
         self.spikes_total = 0
+        #: runs of one repeated reading the engine flagged (core/repeats.py), the first MAX_REPEATS;
+        #: one still going on when the data ended has ``until`` None
+        self.repeats: list[Any] = []
+        self.repeats_total = 0
+        self._repeating: Any = None
         self.unit: str | None = None
         self.label: str | None = None  # the operator's name, from the config's label
         self.time_zone = "UTC"  # in which the chart shows times
@@ -309,6 +324,12 @@ class StreamTrace:
             self._last = (float(ts[-1]), float(vs[-1]))
         self._ring_t = np.concatenate((self._ring_t, ts))
         self._ring_v = np.concatenate((self._ring_v, vs))
+        for span in result.repeats:
+            if span.until is None:
+                self._repeating = span
+            else:
+                self._repeating = None
+                self._repeat(span)
         for rec in result.records:
             self.records.append(rec)
             if rec.unit:
@@ -323,10 +344,20 @@ class StreamTrace:
         if self._closed:
             return
         self._closed = True
+        if self._repeating is not None:
+            # still repeating when the data ended (its readings as at the flag: a replay sets
+            # the engine's own, StreamOutcome.repeats, in their place)
+            self._repeat(self._repeating)
+            self._repeating = None
         for ev in self.events():
             if ev.outcome == "open" and self._ring_t.shape[0]:
                 self._take_zoom(ev.final, until=float(self._ring_t[-1]))
         self._ring_t = self._ring_v = np.empty(0)
+
+    def _repeat(self, span: Any) -> None:
+        self.repeats_total += 1
+        if len(self.repeats) < MAX_REPEATS:
+            self.repeats.append(span)
 
     def _spike(self, t: float, v: float) -> None:
         self.spikes_total += 1
@@ -1010,6 +1041,7 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
                f'<td class="n">{counts["confirmed"]}</td><td class="n">{counts["dismissed"]}</td>'
                f'<td class="n">{counts["open"]}</td></tr></tfoot>\n</table>\n')
 
+    out.append(_repeats_table(traces, time_zone, charted))
     out.append('<h2 id="events">Events</h2>\n<table class="events">\n<thead><tr><th>#</th><th>outcome</th>'
                f"<th>shift at ({zn})</th><th>shift-time interval</th><th>step</th><th>step (sigma)</th>"
                f"<th>detected at ({zn})</th><th>delay, shift to detection</th><th>p-value</th></tr></thead>\n")
@@ -1032,6 +1064,31 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
                 f'<td class="n">{r.p_value:.2g}</td></tr>\n')
         out.append("</tbody>\n")
     out.append("</table>\n")
+    return "".join(out)
+
+
+def _repeats_table(traces: list[StreamTrace], time_zone: str, charted: set[str] | None) -> str:
+    """The runs of one repeated reading the engines flagged: a stuck sensor is possible.  No
+    record is made of them (a record is about a step in level); the table says where to look."""
+    zn = _e(zone_label(time_zone))
+    rows = [(i, t, s) for i, t in enumerate(traces) for s in t.repeats]
+    total = sum(t.repeats_total for t in traces)
+    out = ['<h2 id="repeats">Readings that repeated one value</h2>\n']
+    if not rows:
+        return out[0] + "<p>No stream's readings repeated one value for longer than its own noise makes likely.</p>\n"
+    out.append(f"<p>{total} time(s) in {sum(bool(t.repeats_total) for t in traces)} stream(s), the readings "
+               "repeated one value for longer than the stream's own noise and resolution make likely: a "
+               "stuck sensor is possible (check it by your site's procedures). A step in level cannot be "
+               "seen meanwhile; no alert record is made of it.</p>\n")
+    out.append(f'<table class="repeats">\n<thead><tr><th>stream</th><th>value</th><th>from ({zn})</th>'
+               f"<th>to ({zn})</th><th>readings</th><th>improbable from ({zn})</th></tr></thead>\n<tbody>\n")
+    for i, t, s in rows:
+        unit = f" {t.unit}" if t.unit else ""
+        end = "the end of the data" if s.until is None else stamp(s.until, time_zone)
+        out.append(f'<tr data-stream="{_e(t.name)}"><td>{_stream_link(i, t.name, charted)}</td>'
+                   f'<td class="n">{_e(human_number(s.value, 6) + unit)}</td><td>{stamp(s.since, time_zone)}</td>'
+                   f'<td>{end}</td><td class="n">{s.readings:,}</td><td>{stamp(s.flagged_at, time_zone)}</td></tr>\n')
+    out.append("</tbody>\n</table>\n")
     return "".join(out)
 
 

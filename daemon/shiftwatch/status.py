@@ -119,7 +119,9 @@ class StreamStatus:
     ``{"acked": bool, "by": str, "note": str, "at": epoch s}``), ``hold`` (a
     hold or a planned window: ``{"kind": str, "until": epoch s, "note": str}``),
     ``stale`` (True while the source of the stream has announced its death and
-    no birth followed) and ``notes`` (short lines any part wants shown).
+    no birth followed) and ``notes`` (short lines any part wants shown).  ``repeating`` comes
+    with the metrics snapshot: the run of one repeated reading the engine flags (a stuck
+    sensor is possible; ``{"value", "readings", "since", "flagged_at"}``, epoch s), or None.
     """
 
     stream: str
@@ -135,6 +137,7 @@ class StreamStatus:
     hold: Mapping[str, Any] | None = None
     stale: bool | None = None
     notes: tuple[str, ...] = ()
+    repeating: Mapping[str, Any] | None = None
 
     @property
     def event_open(self) -> bool:
@@ -148,7 +151,7 @@ class StreamStatus:
         """Open events first, then recent events (newest first), then the rest by name."""
         if self.event_open:
             group = 0
-        elif self.stale:
+        elif self.stale or self.repeating:
             group = 1
         elif self.recent(now):
             group = 2
@@ -188,6 +191,7 @@ class StreamStatus:
             "ack": None if self.ack is None else dict(self.ack),
             "hold": None if self.hold is None else dict(self.hold),
             "stale": self.stale, "notes": list(self.notes),
+            "repeating": None if self.repeating is None else _repeating(self.repeating, self.unit, tz, now),
         }
 
 
@@ -221,14 +225,26 @@ def stream_status(stream: str, stats: StreamStats, *, label: str | None = None,
     last: EventSummary | None = None
     for recorded_at, rec in records:
         last = EventSummary.of(rec, recorded_at)
+    rep = stats.repeating
     s = StreamStatus(stream=stream, label=label, unit=stats.unit, state=stats.state,
                      level=stats.level, sigma=stats.sigma, samples_total=stats.samples_total,
-                     samples_per_minute=samples_per_minute, last_event=last)
+                     samples_per_minute=samples_per_minute, last_event=last,
+                     repeating=None if rep is None else {"value": rep.value, "readings": rep.readings,
+                                                         "since": rep.since, "flagged_at": rep.flagged_at})
     for provide in providers:
         extra = provide(stream)
         if extra:
             s = dataclasses.replace(s, **dict(extra))
     return s
+
+
+def _repeating(rep: Mapping[str, Any], unit: str | None, tz: str, now: float) -> dict[str, Any]:
+    """The JSON of a flagged run of one repeated reading: its value, readings, since when
+    (RFC 3339 UTC) and ``text`` as the page shows it (``one value 500 g since 06:20:00Z``)."""
+    since = clock(rep["since"], tz, today=now)
+    return {"value": rep["value"], "readings": rep["readings"], "since": format_time(rep["since"]),
+            "flagged_at": format_time(rep["flagged_at"]),
+            "text": f"one value {_with_unit(human_number(rep['value'], 6), unit)} since {since}"}
 
 
 def _num(x: float | None, digits: int = 6) -> float | None:
@@ -650,6 +666,8 @@ def format_table(doc: Mapping[str, Any], width: int = 120) -> str:
         state = str(s.get("state", "?"))
         if s.get("stale"):
             state += " (stale)"
+        if s.get("repeating"):
+            state += f" ({s['repeating'].get('text', 'one value repeated')})"
         if s.get("hold"):
             state += f" ({s['hold'].get('kind', 'hold')})"
         if s.get("ack") and s["ack"].get("acked"):

@@ -193,7 +193,15 @@ def test_the_rules_fire_when_they_should_and_not_otherwise(tmp_path: Path) -> No
             # real readings, not bad input, so no alert either.
             {"series": f'shiftwatch_samples_rejected_total{{{sel},stream="{fill_a}",reason="warmup_shift"}}',
              "values": "0+30x60"},
+            # head2's readings repeat one value from minute 10 to minute 30 (a stuck sensor is
+            # possible), head1's never.
+            {"series": f'shiftwatch_stream_repeating{{{sel},stream="{fill_b}"}}', "values": "0x9 1x20 0x30"},
+            {"series": f'shiftwatch_stream_repeating{{{sel},stream="{fill_a}"}}', "values": "0x60"},
         ], "alert_rule_test": [
+            {"eval_time": "13m", "alertname": "ShiftwatchStreamRepeating", "exp_alerts": []},  # not yet for 5m
+            {"eval_time": "20m", "alertname": "ShiftwatchStreamRepeating",
+             "exp_alerts": [_alert("ShiftwatchStreamRepeating", **a, stream=fill_b)]},
+            {"eval_time": "35m", "alertname": "ShiftwatchStreamRepeating", "exp_alerts": []},
             {"eval_time": "40m", "alertname": "ShiftwatchStreamStale", "exp_alerts": []},
             {"eval_time": "55m", "alertname": "ShiftwatchStreamStale",
              "exp_alerts": [_alert("ShiftwatchStreamStale", **a, stream=fill_a)]},

@@ -204,7 +204,7 @@ def test_names_types_and_help(metrics: Metrics, served: MetricsServer) -> None:
         "shiftwatch_journal_damaged": "counter", "shiftwatch_stream_states_set_aside": "counter",
         "shiftwatch_client_id_conflicts": "counter", "shiftwatch_samples_handed_over": "counter",
         "shiftwatch_stream_handovers": "counter", "shiftwatch_samples_parked": "counter",
-        "shiftwatch_shard_of_disputed": "gauge",
+        "shiftwatch_shard_of_disputed": "gauge", "shiftwatch_stream_repeating": "gauge",
     }
     for name, kind in expected.items():
         assert fams[name][0] == kind, name

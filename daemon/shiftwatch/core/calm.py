@@ -30,6 +30,12 @@ pooled sample ``delay + 1`` places back.  So the pool's sums are the
 engine's, up to the order of floating-point sums, and it hands a stream over
 when a sum comes within a hair (``MARGIN``) of its threshold ``h``.
 
+A stream is handed over too at a reading that could make its run of one repeated
+value improbable, and at the first reading unlike a run that was (core/repeats.py:
+the engine counts the run; the pool knows from its ``run_*`` terms how many more
+readings of the value may wait), so that a frozen sensor is flagged, and its flag
+taken down, in the round its reading came and not a batch later.
+
 A stream leaves the pool after at most ``room`` samples (the engine refines
 its baseline or re-centres its spike band at a count of samples: that
 sample ends a batch), at most ``max_samples``, or when its oldest waiting
@@ -82,6 +88,13 @@ class CalmTerms(NamedTuple):
     last_time: float  # newest accepted time
     max_ahead: float  # arrival checks (inf: none)
     max_behind: float
+    # The run of one repeated reading (core/repeats.py, RepeatWatch.pool_terms): the last value,
+    # how many more of it may come before the run could be flagged, how many of a new run,
+    # and whether the run going on is flagged (then the first other value ends the flag).
+    run_value: float = math.nan
+    run_left: float = math.inf
+    run_new: float = math.inf
+    run_flagged: bool = False
 
 
 class CalmPool:
@@ -136,6 +149,10 @@ class CalmPool:
         self._first_at = _grown(self, "_first_at", (n,), 0.0)
         self._last_a = _grown(self, "_last_a", (n,), 0.0)
         self._age = _grown(self, "_age", (n,), 0.0)
+        self._rv = _grown(self, "_rv", (n,), 0.0)
+        self._rl = _grown(self, "_rl", (n,), 0.0)
+        self._rn = _grown(self, "_rn", (n,), 0.0)
+        self._rf = _grown(self, "_rf", (n,), 0.0)
         self._k = _grown(self, "_k", (n, m), 0.0)
         self._h = _grown(self, "_h", (n, m), math.inf)
         self._cp = _grown(self, "_cp", (n, m), 0.0)
@@ -215,6 +232,10 @@ class CalmPool:
         self._last_t[slot] = terms.last_time
         self._ahead[slot] = terms.max_ahead
         self._behind[slot] = terms.max_behind
+        self._rv[slot] = terms.run_value
+        self._rl[slot] = terms.run_left
+        self._rn[slot] = terms.run_new
+        self._rf[slot] = 1.0 if terms.run_flagged else 0.0
         self._k[slot] = 0.0
         self._h[slot] = math.inf
         self._cp[slot] = 0.0
@@ -308,7 +329,14 @@ class CalmPool:
         self._cnt[s] = cnt
         self._last_t[s] = t
         self._prev[s] = r
-        out: NDArray[np.bool_] = ~plain | could_trip | (cnt >= self._cap[s])
+        # A run of one value that could be flagged at this reading, or the first other
+        # value after a flagged run (the status page and the gauge show it at once).
+        same = x == self._rv[s]
+        left = np.where(same, self._rl[s] - 1.0, self._rn[s])
+        self._rl[s] = left
+        self._rv[s] = x
+        run = (left <= 0.0) | ((self._rf[s] > 0.0) & ~same)
+        out: NDArray[np.bool_] = ~plain | could_trip | (cnt >= self._cap[s]) | run
         return out
 
     def due(self, now: float, *, most: int | None = None) -> list[str]:

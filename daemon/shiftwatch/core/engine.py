@@ -85,6 +85,7 @@ from shiftwatch.core.records import (
     _tally,
     event_id,
 )
+from shiftwatch.core.repeats import RepeatSpan, RepeatWatch
 from shiftwatch.core.restore import (
     _baseline_from,
     _check_finite,
@@ -360,6 +361,7 @@ class StreamEngine:
         "_prev_out",
         "_prev_r",
         "_refine_block",
+        "_repeats",
         "_state",
         "_sums",
         "_test",
@@ -419,6 +421,7 @@ class StreamEngine:
         self._next_refine = 0  # value of _watch_kept at which the baseline is refined next
         self._refine_block = 0
         self._last_time = -math.inf
+        self._repeats = RepeatWatch()  # the current run of one repeated reading (core/repeats.py)
         self.samples_total = 0
         # Most streams never reject a sample or make a record: they share one
         # empty, read-only counter until their first count.
@@ -455,6 +458,12 @@ class StreamEngine:
     @property
     def test_name(self) -> str:
         return self.settings.test
+
+    @property
+    def repeating(self) -> RepeatSpan | None:
+        """The run of one repeated reading going on, while it is improbable for the stream's
+        own readings (a stuck sensor is possible; core/repeats.py), else None."""
+        return self._repeats.span
 
     def held_samples(self) -> tuple[FloatArray, FloatArray]:
         """Copies of the samples the engine holds now (its window): times and values, oldest first.
@@ -501,13 +510,15 @@ class StreamEngine:
             w = self._window.values
             path = follow_path(fo.input(w[len(w) - lag:], b.level, span), fo.offset, lam)
             offsets = tuple(path[np.maximum(0, lag + np.arange(delay + 1) - delay)].tolist())
+        rv, rl, rn, rf = self._repeats.pool_terms(s.false_alarm_every)
         return CalmTerms(level=b.level, offsets=offsets, lam=lam, delay=delay if lam else 0,
                          lo=b.level + fo.center - span, hi=b.level + fo.center + span,
                          inv=1.0 / b.innovation_sigma, phi=b.phi, prev_r=self._prev_r, clip=b.clip,
                          ks=tuple(ks), hs=tuple(hs), c_plus=tuple(cp), c_minus=tuple(cm), room=room,
                          last_time=self._last_time,
                          max_ahead=math.inf if s.max_time_ahead is None else s.max_time_ahead,
-                         max_behind=math.inf if s.max_time_behind is None else s.max_time_behind)
+                         max_behind=math.inf if s.max_time_behind is None else s.max_time_behind,
+                         run_value=rv, run_left=rl, run_new=rn, run_flagged=rf)
 
     # ------------------------------------------------------------- feeding
     def process(self, times: Sequence[Any] | FloatArray, values: Sequence[Any] | FloatArray,
@@ -532,6 +543,9 @@ class StreamEngine:
         t, x = scr.times, scr.values
         if t.shape[0]:
             self._last_time = t.item(-1) if READ_ITEMS else float(t[-1])  # (the same double)
+            spans = self._repeats.feed(t, x, st.false_alarm_every)
+            if spans:
+                result.repeats = spans
         kept = scr.kept
         pos = 0
         n = t.shape[0]
@@ -2410,6 +2424,7 @@ class StreamEngine:
             "rejected_total": dict(self.rejected_total),
             "records_total": dict(self.records_total),
             "last_shift_at": self.last_shift_at,
+            "repeats": self._repeats.get_state(),
         }
 
     def set_state(self, state: dict[str, Any]) -> None:
@@ -2538,6 +2553,10 @@ class StreamEngine:
             field_name = "last_shift_at"
             ls = state["last_shift_at"]
             self.last_shift_at = None if ls is None else _finite_number(ls, "last_shift_at")
+            field_name = "repeats"
+            rs = state.get("repeats")  # (snapshots before it have none: the count starts again)
+            if rs is not None:
+                self._repeats = RepeatWatch.from_state(rs)
             if (self._baseline is not None and yp.level is None and self._test is not None
                     and state["test"].get("rules") != DESIGN_RULES):
                 # A snapshot made under other design rules (before the follower, its test was

@@ -10,7 +10,7 @@ from __future__ import annotations
 import hashlib
 import math
 from collections import Counter
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from typing import Any, NamedTuple
 
@@ -194,6 +194,9 @@ class BatchResult:
     records: list[AlertRecord] = field(default_factory=list)
     accepted: int = 0
     rejected: list[Rejection] = field(default_factory=list)
+    #: runs of one repeated reading flagged (``until`` None) or ended among the batch's
+    #: readings (core/repeats.py; a ``RepeatSpan`` each): no record, a flag of the stream
+    repeats: Sequence[Any] = ()
 
 
 class _NoCounts(Counter[str]):

@@ -146,7 +146,7 @@ def repeated_value(x: FloatArray) -> Repeated | None:
     before = x[:n - of]
     pairs = max(before.shape[0] - 1, 0)
     repeats = int(np.count_nonzero(before[1:] == before[:-1])) if pairs else 0
-    p = (repeats + 1.0) / (pairs + 1.0)
+    p = repeat_share(repeats, pairs)
     if before.shape[0] >= REPEAT_MODE_MIN:
         # A run of the most common value repeats at that value's own share, not at the
         # share of all neighbouring pairs (sum of the values' squared shares, less): on
@@ -170,6 +170,18 @@ def _log_tail(k: int, m: int, p: float) -> float:
              for j in range(k, m + 1)]
     top = max(terms)
     return top + math.log(sum(math.exp(t - top) for t in terms))
+
+
+def repeat_share(repeats: int, pairs: int) -> float:
+    """The share of neighbouring readings that repeat, from ``repeats`` among ``pairs``:
+    Laplace's estimate ``(r + 1) / (n + 1)`` (never 0, so a run of a stream that never
+    repeated is improbable but not impossible).  Used by :func:`repeated_value` for records
+    and by :mod:`.repeats` for the flag of a stream whose readings stopped changing.
+
+    >>> repeat_share(0, 99), round(repeat_share(70, 10_000), 5)
+    (0.01, 0.0071)
+    """
+    return (repeats + 1.0) / (pairs + 1.0)
 
 
 def abs_corr(rho: float) -> float:

@@ -57,6 +57,7 @@ function dash(x) {
 function extras(s) {
   const out = [];
   if (s.stale) out.push(tag("stale", "stale"));
+  if (s.repeating) out.push(tag(s.repeating.text, "repeating"));
   if (s.hold) out.push(tag(s.hold.kind || "hold", "hold"));
   if (s.ack && s.ack.acked) out.push(tag("seen" + (s.ack.by ? " by " + s.ack.by : ""), "acked"));
   return out;
@@ -68,6 +69,7 @@ function overviewRow(s) {
   if (s.event_open) tr.classList.add("open");
   else if (s.recent) tr.classList.add("recent");
   if (s.stale) tr.classList.add("stale");
+  if (s.repeating) tr.classList.add("repeating");
   const name = el("td", { class: "name" });
   const a = el("a", { href: "/status/stream?name=" + encodeURIComponent(s.stream) }, s.label || s.stream);
   name.appendChild(a);
@@ -278,6 +280,8 @@ function drawFacts(d) {
     (s.ack.note ? ": " + s.ack.note : "")));
   if (s.hold) parts.push(fact(s.hold.kind || "hold", (s.hold.note || "") + (s.hold.until_text ? " until " + s.hold.until_text : "")));
   if (s.stale) parts.push(fact("source", "stale: its source announced it stopped"));
+  if (s.repeating) parts.push(fact("readings", s.repeating.text + " (" + s.repeating.readings +
+    " readings): a stuck sensor is possible; check it by your site's procedures"));
   for (const n of s.notes || []) parts.push(fact("note", n));
   document.getElementById("facts").replaceChildren(...parts);
 }
