@@ -137,7 +137,7 @@ class StreamStats:
             # setter, bound once (_slot_setters): the same object, in a third of the time.
             st = object.__new__(cls)
             (set_samples, set_rejected, set_records, set_level, set_sigma, set_statistic, set_threshold,
-             set_shift, set_state, set_unit) = _SETTERS
+             set_shift, set_state, set_unit, set_repeating) = _SETTERS
             set_samples(st, int(engine.samples_total))
             set_rejected(st, dict(engine.rejected_total) if engine.rejected_total else _NONE)
             set_records(st, dict(engine.records_total) if engine.records_total else _NONE)
@@ -148,6 +148,7 @@ class StreamStats:
             set_shift(st, engine.last_shift_at)
             set_state(st, str(engine.state))
             set_unit(st, engine.unit)
+            set_repeating(st, engine.repeating)
             return st
         return cls(
             samples_total=int(engine.samples_total),
@@ -174,7 +175,7 @@ DIRECT_SNAPSHOT = True
 def _slot_setters() -> tuple[Callable[[StreamStats, Any], None], ...]:
     """Each field's slot setter, in the order ``from_engine`` unpacks them."""
     order = ("samples_total", "rejected_total", "records_total", "level", "sigma", "statistic", "threshold",
-             "last_shift_at", "state", "unit")
+             "last_shift_at", "state", "unit", "repeating")
     if set(order) != set(StreamStats.__slots__):
         raise RuntimeError("StreamStats' fields changed: update metrics._slot_setters")
     return tuple(StreamStats.__dict__[name].__set__ for name in order)

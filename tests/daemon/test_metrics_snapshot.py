@@ -36,9 +36,10 @@ def _reference(engine: StreamEngine) -> StreamStats:
 
 def _histories() -> Iterator[StreamEngine]:
     """Engines of Brackenfield fill weights fed in batches, yielded after each batch: a clean
-    stream, one with a 4-sigma step, one with NaNs, repeats and spikes, one with a unit."""
+    stream, one with a 4-sigma step, one with NaNs, repeats and spikes, one with a unit, one
+    whose sensor freezes (its snapshot then carries the engine's ``repeating`` flag)."""
     rng = np.random.default_rng(7)
-    for kind in range(4):
+    for kind in range(5):
         eng = StreamEngine(f"brackenfield/filler{kind}/fill_g", unit="g" if kind == 3 else None)
         t = 0
         for _k in range(40):
@@ -52,6 +53,8 @@ def _histories() -> Iterator[StreamEngine]:
                 if n > 3:
                     times[2] = times[1]
                 x[rng.random(n) < 0.01] += 9.0
+            if kind == 4 and t > 1500:
+                x[:] = 500.2
             t += n
             eng.process(times, x, times + 0.5)
             yield eng
@@ -60,7 +63,7 @@ def _histories() -> Iterator[StreamEngine]:
 def test_the_direct_snapshot_is_the_reference_snapshot() -> None:
     assert metrics_mod.DIRECT_SNAPSHOT is True  # the daemon's default
     states = set()
-    with_records = with_rejections = 0
+    with_records = with_rejections = with_repeating = 0
     for eng in _histories():
         new, old = StreamStats.from_engine(eng), _reference(eng)
         assert type(new) is StreamStats and new == old
@@ -78,6 +81,8 @@ def test_the_direct_snapshot_is_the_reference_snapshot() -> None:
         assert new.threshold == float(eng.threshold) or (np.isnan(new.threshold) and np.isnan(eng.threshold))
         assert dict(new.rejected_total) == dict(eng.rejected_total)
         assert dict(new.records_total) == dict(eng.records_total)
+        assert new.repeating == eng.repeating
+        with_repeating += eng.repeating is not None
         if eng.rejected_total:
             with_rejections += 1
             assert new.rejected_total is not eng.rejected_total  # a copy, not the engine's counter
@@ -86,6 +91,7 @@ def test_the_direct_snapshot_is_the_reference_snapshot() -> None:
             assert new.records_total is not eng.records_total
         states.add(eng.state)
     assert {"warming_up", "watching"} <= states and with_records > 0 and with_rejections > 0
+    assert with_repeating > 0
 
 
 def test_a_subclass_still_goes_through_its_init() -> None:
