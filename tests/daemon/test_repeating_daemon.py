@@ -23,15 +23,8 @@ import numpy as np
 from shiftwatch.mqtt import PlainClient
 
 from .faultkit import metric_matching
+from .test_floor import STREAMS  # the Brackenfield fill weights, as JSON objects with a label
 
-STREAMS = """\
-  - topic: brackenfield/line2/+/fill
-    format: json
-    value: v
-    time: ts
-    unit: g
-    label: "fill weight on filler {1}"
-"""
 TOPIC = "brackenfield/line2/head7/fill"
 OTHER = "brackenfield/line2/head8/fill"
 
