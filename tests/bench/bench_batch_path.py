@@ -142,7 +142,7 @@ def run_daemon(streams: int, rounds: int, *, capture: list[Any] | None = None) -
                         daemon_rounds += on[0]
                         assert d.journal is not None
                         d.journal.sync_if_due()
-                        if d._journal_half_full():  # as Daemon.run does
+                        if d.local.journal_half_full():  # as Daemon.run does
                             c = time.process_time()
                             d.snapshot()
                             settle_heap()

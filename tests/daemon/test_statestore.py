@@ -388,11 +388,11 @@ def test_encode_skips_plain_values_without_changing_anything() -> None:
 
 def test_daemon_snapshot_of_engines_as_arrays_is_the_same_file(tmp_path: Path) -> None:
     """The daemon hands the store each engine's samples as float64 arrays
-    (``get_state(arrays=True)``, see daemon._EngineStates); the file must be the one the
+    (``get_state(arrays=True)``, see localstate._EngineStates); the file must be the one the
     lists of floats give, byte for byte (the gzip stream is written with mtime 0), for
     engines in every state: a window shorter than the store packs, warming up, watching,
     an event open, after a confirmed shift."""
-    from shiftwatch.daemon import _EngineStates
+    from shiftwatch.localstate import _EngineStates
 
     engs = engines()
     rng = np.random.default_rng(11)
