@@ -5,8 +5,8 @@ state directory under ``tmp_path``, real ``FloorDesk``, ``StatusBoard``, ``Metri
 What it hands the daemon is recorded: ``engine_for`` makes an engine as the daemon's does, and
 ``emit`` notes the records.  The transitions: a snapshot written (read back with the standard
 library's gzip and json, and restored), rounds journaled and a crash (SIGKILL of a process of
-its own) that the journal's replay makes up for, and damaged state refused with a line that names
-what and where.  Each restore is held against ``Daemon.restore`` on a copy of the same directory:
+its own) that the journal's replay makes up for, damaged state refused with a line that names
+what and where, and a journal deleted behind its back said, counted and started afresh.  Each restore is held against ``Daemon.restore`` on a copy of the same directory:
 the same engines, the same lines, the same counts.
 
 References: the file layout is the one statestore.py describes, read here with Python's
@@ -39,7 +39,7 @@ from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.records import AlertRecord
 from shiftwatch.daemon import Daemon
 from shiftwatch.floor import FloorDesk
-from shiftwatch.journal import Journal, JournalGroup
+from shiftwatch.journal import JOURNAL_NAME, Journal, JournalGroup
 from shiftwatch.localstate import LocalState
 from shiftwatch.metrics import FloorMetrics, Metrics
 from shiftwatch.statestore import SNAPSHOT_NAME, StateStore
@@ -295,3 +295,27 @@ def test_damaged_state_is_refused_naming_the_file_and_the_rest_is_kept(tmp_path:
     e.journal.close()
     assert e.engines == {}
     assert e.lines.said(f"state snapshot in {snaps} cannot be read (") == 1
+
+
+def test_a_journal_deleted_behind_its_back_is_said_counted_and_started_afresh(tmp_path: Path) -> None:
+    cfg = load_config(str(write_config(tmp_path, "d")))
+    snaps = Path(cfg.state.dir) / "snapshots"
+    a = Part(cfg)
+    a.local.restore()
+    a.feed(0, 200)
+    a.local.check_journal()  # nothing wrong: nothing said, nothing taken
+    assert a.lines.lines == [] and a.count("shiftwatch_snapshots_total") == 0
+    (snaps / JOURNAL_NAME).unlink()
+    a.local.check_journal()
+    said = [m for m in a.lines.lines if str(snaps / JOURNAL_NAME) in m]
+    assert len(said) == 1 and "was deleted" in said[0] and "taking a snapshot" in said[0]
+    assert a.count("shiftwatch_journal_damaged_total") == 1
+    assert a.count("shiftwatch_snapshots_total") == 1
+    # The snapshot holds what the lost journal did, and a fresh journal belongs to it.
+    a.feed(200, 250)
+    a.journal.close()
+    b = Part(cfg)
+    b.local.restore()
+    b.journal.close()
+    assert b.lines.said("replayed 100 sample(s) in 1 round(s) from the journal") == 1
+    assert states(b.engines) == states(a.engines)
