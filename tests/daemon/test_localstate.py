@@ -121,6 +121,15 @@ class Part:
         return self.metrics.registry.get_sample_value(name) or 0.0
 
 
+def started(tmp_path: Path, name: str) -> tuple[Config, Path, Part]:
+    """A configuration with its state directory under ``tmp_path / name``, and a LocalState
+    restored on it (nothing there yet: the journal starts)."""
+    cfg = load_config(str(write_config(tmp_path, name)))
+    part = Part(cfg)
+    part.local.restore()
+    return cfg, Path(cfg.state.dir) / "snapshots", part
+
+
 def states(engines: dict[str, StreamEngine]) -> dict[str, str]:
     return {n: json.dumps(e.get_state(), sort_keys=True) for n, e in engines.items()}
 
@@ -169,23 +178,21 @@ def same_as_daemon(tmp_path: Path, part: Part, state_from: Path, name: str) -> N
 
 
 def test_a_snapshot_is_written_to_disk_and_restored(tmp_path: Path) -> None:
-    cfg = load_config(str(write_config(tmp_path, "a")))
-    a = Part(cfg)
-    a.local.restore()  # nothing there yet: the journal starts
+    cfg, snaps, a = started(tmp_path, "a")
     a.feed(0, 500)
     assert a.local.snapshot()
     assert a.count("shiftwatch_snapshots_total") == 1
     a.journal.close()
 
     # The file as statestore.py describes it, read with the standard library alone.
-    with gzip.open(Path(cfg.state.dir) / "snapshots" / SNAPSHOT_NAME, "rt", encoding="utf-8") as f:
+    with gzip.open(snaps / SNAPSHOT_NAME, "rt", encoding="utf-8") as f:
         lines = [json.loads(line) for line in f]
     head, end = lines[0], lines[-1]
     assert head["format"] == "shiftwatch-state" and head["streams"] == len(TOPICS) == end["end"]
     assert sorted(n for n, _ in lines[1:-1]) == sorted(TOPICS)
     assert head["meta"]["filters"] == {t: "brackenfield/+/fill" for t in TOPICS}
     # The journal now belongs to this snapshot: its header repeats the snapshot's token.
-    assert Journal(Path(cfg.state.dir) / "snapshots").open(head["meta"]["journal"]) == []
+    assert Journal(snaps).open(head["meta"]["journal"]) == []
 
     b = Part(cfg)
     b.local.restore()
@@ -250,10 +257,7 @@ def test_the_journal_is_replayed_after_a_crash(tmp_path: Path) -> None:
 
 
 def test_damaged_state_is_refused_naming_the_file_and_the_rest_is_kept(tmp_path: Path) -> None:
-    cfg = load_config(str(write_config(tmp_path, "c")))
-    snaps = Path(cfg.state.dir) / "snapshots"
-    a = Part(cfg)
-    a.local.restore()
+    cfg, snaps, a = started(tmp_path, "c")
     a.feed(0, 300)
     assert a.local.snapshot()
     a.journal.close()
@@ -298,10 +302,7 @@ def test_damaged_state_is_refused_naming_the_file_and_the_rest_is_kept(tmp_path:
 
 
 def test_a_journal_deleted_behind_its_back_is_said_counted_and_started_afresh(tmp_path: Path) -> None:
-    cfg = load_config(str(write_config(tmp_path, "d")))
-    snaps = Path(cfg.state.dir) / "snapshots"
-    a = Part(cfg)
-    a.local.restore()
+    cfg, snaps, a = started(tmp_path, "d")
     a.feed(0, 200)
     a.local.check_journal()  # nothing wrong: nothing said, nothing taken
     assert a.lines.lines == [] and a.count("shiftwatch_snapshots_total") == 0
