@@ -99,7 +99,6 @@ class LocalState:
         filters = meta.get("filters")
         if not isinstance(filters, dict):  # snapshots written before it was saved
             filters = {}
-        renamed = 0
         for name, state in streams.items():
             f = filters.get(name)
             spec = self.config().stream_for(name, f if isinstance(f, str) else None)
@@ -107,7 +106,6 @@ class LocalState:
                 continue
             old, name = name, current_stream_name(name, spec)
             if name != old:
-                renamed += 1
                 self.renamed[old] = name
                 self.log.info("stream %s is now named %s (a SenML name that is a URN is read as "
                               "levels); its state carries over", _printable(old), _printable(name),
