@@ -63,7 +63,15 @@ from shiftwatch.core.calm import MAX_CHARTS as CALM_MAX_CHARTS
 from shiftwatch.core.calm import CalmTerms
 from shiftwatch.core.cusum import CusumTest
 from shiftwatch.core.eventfit import _fit, _variance_factor, residual_phi_bound, young_variance
-from shiftwatch.core.events import LOOK, NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
+from shiftwatch.core.events import (
+    LOOK,
+    NO_STEP,
+    RETURN_WAIT,
+    STEP,
+    EventTrial,
+    OpenEvent,
+    StepMemory,
+)
 from shiftwatch.core.follow import (
     FOLLOW_MARGIN,
     FOLLOW_RECENTER,
@@ -2156,6 +2164,14 @@ class StreamEngine:
         if outcome == STEP:
             phase = "confirmed"
             last = self._last_step
+            if (last is not None and len(self._fitter) - ev.trip_len < RETURN_WAIT
+                    and last.return_unclear(level_after=fit.level_after, delta=fit.delta,
+                                            level_after_se=fit.level_after_se)):
+                # A step back whose level lies near the line between a return and a step
+                # of its own, within its standard error: the kind waits for more samples
+                # (the way back is confirmed on a few, chosen by the detection).
+                ev.trial.reopen()
+                return
             extra: dict[str, Any] = {}
             if last is not None and last.is_return(level_after=fit.level_after, delta=fit.delta):
                 phase = "returned"
