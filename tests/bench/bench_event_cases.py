@@ -34,6 +34,12 @@ counts).
    whose last final record leaves the level away from the true 20 by more than half
    the step: the excursion is claimed as lasting.  Beside it, the share of excursions
    the oracle CUSUM above detects before the level is back (+ 5 readings).
+2b. **way back**: the level leaves by 1.5, 2 or 3 sigma and after 20 or 50 readings moves
+   back by 0.25, 0.5, 1, 1.5 or 2 times as much (states ``700_000 + ...``): the kind of
+   the way back's final record, against the truth the line draws (``returned`` when the
+   level ends within half the step of where it was: so at 1 times; a step of its own at
+   0.25 and 2 times; 0.5 and 1.5 times lie on the line), and the readings from its
+   detection to that record.
 3. **slow+step**: a 2-sigma step at reading 3,000 of 6,000 on a steady drift of 0.0005
    sigma a reading, and on a cycle of 0.5 sigma amplitude and 30 minutes' period (the
    README's "slow change") (states ``300_000 + ...``).  Found; the error of the
@@ -188,6 +194,21 @@ def _excursion(args: tuple[int, float, int]) -> tuple[str, bool, bool]:
     k = size / 2
     oracle = oracle_delay(x - 20.0, 0, AT, k, siegmund_h(k, ARL)) <= length + 5
     return pattern, lasting, oracle
+
+
+def _way_back(args: tuple[float, int, float, int]) -> tuple[str, int] | None:
+    back, length, size, state = args
+    rng = np.random.default_rng(state)
+    sign = float(rng.choice([-1.0, 1.0]))
+    x = 20.0 + rng.standard_normal(N)
+    x[AT:] += sign * size
+    x[AT + length:] -= back * sign * size
+    t = T0 + np.arange(float(N))
+    recs, _ = feed(t, x)
+    fin = [r for r in recs if r.phase != "detected" and r.detected_at >= t[AT + length]]
+    if not fin:
+        return None
+    return fin[0].phase, idx(t, fin[0].as_of) - idx(t, fin[0].detected_at)
 
 
 # ------------------------------------------------------------------ 3. a step on slow change
@@ -352,6 +373,22 @@ def main() -> int:
                 pats = collections.Counter(r[0] for r in res2)
                 print(f"| {size} | {length} | " + ", ".join(f"{k} {v}" for k, v in pats.most_common())
                       + f" | {sum(r[1] for r in res2)} | {sum(r[2] for r in res2)}/{S} |", flush=True)
+
+        print("\n2b. The way back: the level leaves by 1.5, 2 or 3 sigma for 20 or 50 readings, then moves "
+              "back by a share of that; the first final record after it (all sizes and lengths)")
+        print("| back | right kind | records | readings from detection to it: median / p90 / p99 / max |")
+        print("|---|---|---|---|")
+        for back in (0.25, 0.5, 1.0, 1.5, 2.0):
+            jobs = [(back, length, size, 700_000 + 1_000 * int(4 * back) + 100 * int(2 * size) + s)
+                    for size in (1.5, 2.0, 3.0) for length in (20, 50) for s in range(2 * S)]
+            res2b = [r for r in pool.map(_way_back, jobs, chunksize=10) if r is not None]
+            k2b = collections.Counter(r[0] for r in res2b)
+            right = {1.0: "returned", 0.25: "confirmed", 2.0: "confirmed"}.get(back)
+            w = np.array([r[1] for r in res2b])
+            print(f"| {back} | " + (f"{k2b[right]} of {len(res2b)}" if right else "(on the line)") + " | "
+                  + ", ".join(f"{k} {v}" for k, v in k2b.most_common()) + " | "
+                  f"{np.median(w):.0f} / {np.percentile(w, 90):.0f} / {np.percentile(w, 99):.0f} / {w.max()} |",
+                  flush=True)
 
         print("\n3. A 2-sigma step on slow change (at reading 3,000 of 6,000); delta error in sigma, "
               "p10 / median / p90")

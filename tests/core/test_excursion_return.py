@@ -2,7 +2,7 @@
 
 Outside trial of 2026-12-05 (``tests/bench/bench_event_cases.py``): of excursions of 1.5
 to 3 sigma lasting 20 to 50 readings on iid noise (numpy random states 0 to 199 each),
-12 of about 1,740 whose way out was confirmed had their way back recorded as a second
+12 of the 1,665 whose way out was confirmed had their way back recorded as a second
 ``confirmed`` step (5 of 190 at 1.5 sigma and 35 readings), and two streams of 60 in
 the bench's 2-sigma, 50-reading cell ended on a record that left the level away from
 where it truly was.  The way back is detected a few readings after it began, and
