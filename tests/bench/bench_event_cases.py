@@ -51,7 +51,8 @@ counts).
    ``400_000 + ...``; and the same readings with no pause.  The share of records whose
    time span (the reading before ``shift_at_low``, ``shift_at_high``] meets the true
    span (the last reading before the pause, the first after it], the share that
-   name the pause (``gap_from``), and the shift-time error in readings.
+   name the pause (``gap_from``, and the summary of ``display.alert_summary``), and the
+   shift-time error in readings.
 5. **quantised**: steps of 1 and 2 sigma on readings rounded to 1 sigma (the coarsest a
    gauge should read; ``bench_events.py`` has 0.5), states ``500_000 + ...``.  Found
    within 1,000 readings, the shift-time error against ruptures' ``Binseg(model="l2")``
@@ -90,6 +91,7 @@ N = 3000
 BATCH = 1024
 ARL = 604_800.0
 FINAL = ("confirmed", "returned")
+PARTS = ("close", "excursion", "way_back", "slow", "gap", "quantised", "messy")
 
 
 def feed(t: np.ndarray, x: np.ndarray, batch: int = BATCH) -> tuple[list, collections.Counter]:
@@ -257,7 +259,11 @@ def _gap(args: tuple[float, int]) -> tuple[bool, bool, int, bool]:
     lo = idx(t, r.shift_at_low)
     span_lo = t[lo - 1]
     meets = span_lo < t[AT] and r.shift_at_high > t[AT - 1]
-    return True, meets, idx(t, r.shift_at) - AT, r.gap_from is not None
+    from shiftwatch.display import alert_summary
+
+    text = alert_summary(r)
+    return True, meets, idx(t, r.shift_at) - AT, r.gap_from is not None and (
+        "without readings" in text or "pause" in text)
 
 
 # ------------------------------------------------------------------ 5. quantised
@@ -334,104 +340,113 @@ def main() -> int:
     ap = argparse.ArgumentParser()
     ap.add_argument("--states", type=int, default=60, help="random states a cell")
     ap.add_argument("--cli", type=int, default=0, help="also replay this many states through the CLI")
+    ap.add_argument("--part", action="append", choices=PARTS, help="only these parts (repeatable; default all)")
     a = ap.parse_args()
+    parts = set(a.part or PARTS)
     S = a.states
     started = time.time()
     with ProcessPoolExecutor(2) as pool:
-        print("\n1. Two steps close together (iid, step 1 at reading 1,500); errors in readings, "
-              "median / p90 of |shift_at - truth|")
-        print("| size | way | apart | 1st found | 2nd found | 2nd kinds | 1st err engine / Binseg "
-              "| 2nd err engine / Binseg | 2nd level_after covered | 2nd delay engine / oracle (median) |")
-        print("|---|---|---|---|---|---|---|---|---|---|")
-        for size in (1.5, 2.0, 3.0):
-            for way in (1.0, -1.0):
-                for gap in (30, 60, 100, 150):
-                    base = 100_000 + 10_000 * int(size * 2) + 5_000 * (way < 0) + 100 * gap
-                    res = list(pool.map(_close, [(gap, size, way, base + s) for s in range(S)]))
-                    kinds = collections.Counter(r["kind2"] for r in res)
-                    cov = [r["cover2"] for r in res if "cover2" in r]
-                    d2 = [r["delay2"] for r in res if "delay2" in r]
-                    o2 = [r["oracle2"] for r in res]
-                    print(f"| {size} | {'same' if way > 0 else 'back'} | {gap} | "
-                          f"{sum(r['f1'] for r in res)}/{S} | {sum(r['f2'] for r in res)}/{S} | "
-                          + ", ".join(f"{k} {v}" for k, v in sorted(kinds.items())) + " | "
-                          f"{_pct([r['err1'] for r in res], 50)}, {_pct([r['err1'] for r in res], 90)} / "
-                          f"{_pct([r['rup1'] for r in res], 50)}, {_pct([r['rup1'] for r in res], 90)} | "
-                          f"{_pct([r['err2'] for r in res], 50)}, {_pct([r['err2'] for r in res], 90)} / "
-                          f"{_pct([r['rup2'] for r in res], 50)}, {_pct([r['rup2'] for r in res], 90)} | "
-                          f"{100 * np.mean(cov):.0f}% of {len(cov)} | "
-                          f"{np.median(d2):.0f} / {np.median(o2):.0f} |", flush=True)
+        if "close" in parts:
+            print("\n1. Two steps close together (iid, step 1 at reading 1,500); errors in readings, "
+                  "median / p90 of |shift_at - truth|")
+            print("| size | way | apart | 1st found | 2nd found | 2nd kinds | 1st err engine / Binseg "
+                  "| 2nd err engine / Binseg | 2nd level_after covered | 2nd delay engine / oracle (median) |")
+            print("|---|---|---|---|---|---|---|---|---|---|")
+            for size in (1.5, 2.0, 3.0):
+                for way in (1.0, -1.0):
+                    for gap in (30, 60, 100, 150):
+                        base = 100_000 + 10_000 * int(size * 2) + 5_000 * (way < 0) + 100 * gap
+                        res = list(pool.map(_close, [(gap, size, way, base + s) for s in range(S)]))
+                        kinds = collections.Counter(r["kind2"] for r in res)
+                        cov = [r["cover2"] for r in res if "cover2" in r]
+                        d2 = [r["delay2"] for r in res if "delay2" in r]
+                        o2 = [r["oracle2"] for r in res]
+                        print(f"| {size} | {'same' if way > 0 else 'back'} | {gap} | "
+                              f"{sum(r['f1'] for r in res)}/{S} | {sum(r['f2'] for r in res)}/{S} | "
+                              + ", ".join(f"{k} {v}" for k, v in sorted(kinds.items())) + " | "
+                              f"{_pct([r['err1'] for r in res], 50)}, {_pct([r['err1'] for r in res], 90)} / "
+                              f"{_pct([r['rup1'] for r in res], 50)}, {_pct([r['rup1'] for r in res], 90)} | "
+                              f"{_pct([r['err2'] for r in res], 50)}, {_pct([r['err2'] for r in res], 90)} / "
+                              f"{_pct([r['rup2'] for r in res], 50)}, {_pct([r['rup2'] for r in res], 90)} | "
+                              f"{100 * np.mean(cov):.0f}% of {len(cov)} | "
+                              f"{np.median(d2):.0f} / {np.median(o2):.0f} |", flush=True)
 
-        print("\n2. Excursions: the level leaves and comes back (iid, at reading 1,500); "
-              "the final records after it, per stream")
-        print("| size | readings away | finals (streams) | claimed lasting | oracle CUSUM detects it |")
-        print("|---|---|---|---|---|")
-        for size in (2.0, 3.0, 5.0):
-            for length in (5, 10, 20, 50):
-                base = 200_000 + 10_000 * int(size) + 100 * length
-                res2 = list(pool.map(_excursion, [(length, size, base + s) for s in range(S)]))
-                pats = collections.Counter(r[0] for r in res2)
-                print(f"| {size} | {length} | " + ", ".join(f"{k} {v}" for k, v in pats.most_common())
-                      + f" | {sum(r[1] for r in res2)} | {sum(r[2] for r in res2)}/{S} |", flush=True)
+        if "excursion" in parts:
+            print("\n2. Excursions: the level leaves and comes back (iid, at reading 1,500); "
+                  "the final records after it, per stream")
+            print("| size | readings away | finals (streams) | claimed lasting | oracle CUSUM detects it |")
+            print("|---|---|---|---|---|")
+            for size in (2.0, 3.0, 5.0):
+                for length in (5, 10, 20, 50):
+                    base = 200_000 + 10_000 * int(size) + 100 * length
+                    res2 = list(pool.map(_excursion, [(length, size, base + s) for s in range(S)]))
+                    pats = collections.Counter(r[0] for r in res2)
+                    print(f"| {size} | {length} | " + ", ".join(f"{k} {v}" for k, v in pats.most_common())
+                          + f" | {sum(r[1] for r in res2)} | {sum(r[2] for r in res2)}/{S} |", flush=True)
 
-        print("\n2b. The way back: the level leaves by 1.5, 2 or 3 sigma for 20 or 50 readings, then moves "
-              "back by a share of that; the first final record after it (all sizes and lengths)")
-        print("| back | right kind | records | readings from detection to it: median / p90 / p99 / max |")
-        print("|---|---|---|---|")
-        for back in (0.25, 0.5, 1.0, 1.5, 2.0):
-            jobs = [(back, length, size, 700_000 + 1_000 * int(4 * back) + 100 * int(2 * size) + s)
-                    for size in (1.5, 2.0, 3.0) for length in (20, 50) for s in range(2 * S)]
-            res2b = [r for r in pool.map(_way_back, jobs, chunksize=10) if r is not None]
-            k2b = collections.Counter(r[0] for r in res2b)
-            right = {1.0: "returned", 0.25: "confirmed", 2.0: "confirmed"}.get(back)
-            w = np.array([r[1] for r in res2b])
-            print(f"| {back} | " + (f"{k2b[right]} of {len(res2b)}" if right else "(on the line)") + " | "
-                  + ", ".join(f"{k} {v}" for k, v in k2b.most_common()) + " | "
-                  f"{np.median(w):.0f} / {np.percentile(w, 90):.0f} / {np.percentile(w, 99):.0f} / {w.max()} |",
-                  flush=True)
+        if "way_back" in parts:
+            print("\n2b. The way back: the level leaves by 1.5, 2 or 3 sigma for 20 or 50 readings, then moves "
+                  "back by a share of that; the first final record after it (all sizes and lengths)")
+            print("| back | right kind | records | readings from detection to it: median / p90 / p99 / max |")
+            print("|---|---|---|---|")
+            for back in (0.25, 0.5, 1.0, 1.5, 2.0):
+                jobs = [(back, length, size, 700_000 + 1_000 * int(4 * back) + 100 * int(2 * size) + s)
+                        for size in (1.5, 2.0, 3.0) for length in (20, 50) for s in range(2 * S)]
+                res2b = [r for r in pool.map(_way_back, jobs, chunksize=10) if r is not None]
+                k2b = collections.Counter(r[0] for r in res2b)
+                right = {1.0: "returned", 0.25: "confirmed", 2.0: "confirmed"}.get(back)
+                w = np.array([r[1] for r in res2b])
+                print(f"| {back} | " + (f"{k2b[right]} of {len(res2b)}" if right else "(on the line)") + " | "
+                      + ", ".join(f"{k} {v}" for k, v in k2b.most_common()) + " | "
+                      f"{np.median(w):.0f} / {np.percentile(w, 90):.0f} / {np.percentile(w, 99):.0f} / {w.max()} |",
+                      flush=True)
 
-        print("\n3. A 2-sigma step on slow change (at reading 3,000 of 6,000); delta error in sigma, "
-              "p10 / median / p90")
-        print("| slow change | found | record's delta - truth | statsmodels OLS (true model) - truth |")
-        print("|---|---|---|---|")
-        for j, kind in enumerate(("drift", "cycle")):
-            res3 = list(pool.map(_slow, [(kind, 300_000 + 10_000 * j + s) for s in range(S)]))
-            e = [r[1] for r in res3 if r[0]]
-            o = [r[2] for r in res3]
-            print(f"| {kind} | {sum(r[0] for r in res3)}/{S} | "
-                  f"{np.percentile(e, 10):+.2f} / {np.median(e):+.2f} / {np.percentile(e, 90):+.2f} | "
-                  f"{np.percentile(o, 10):+.2f} / {np.median(o):+.2f} / {np.percentile(o, 90):+.2f} |",
-                  flush=True)
+        if "slow" in parts:
+            print("\n3. A 2-sigma step on slow change (at reading 3,000 of 6,000); delta error in sigma, "
+                  "p10 / median / p90")
+            print("| slow change | found | record's delta - truth | statsmodels OLS (true model) - truth |")
+            print("|---|---|---|---|")
+            for j, kind in enumerate(("drift", "cycle")):
+                res3 = list(pool.map(_slow, [(kind, 300_000 + 10_000 * j + s) for s in range(S)]))
+                e = [r[1] for r in res3 if r[0]]
+                o = [r[2] for r in res3]
+                print(f"| {kind} | {sum(r[0] for r in res3)}/{S} | "
+                      f"{np.percentile(e, 10):+.2f} / {np.median(e):+.2f} / {np.percentile(e, 90):+.2f} | "
+                      f"{np.percentile(o, 10):+.2f} / {np.median(o):+.2f} / {np.percentile(o, 90):+.2f} |",
+                      flush=True)
 
-        print("\n4. A 2-sigma step during a pause in the readings (1 Hz)")
-        print("| pause | found | record's span meets the true one | names the pause (gap_from) "
-              "| shift error in readings: p10 / median / p90 |")
-        print("|---|---|---|---|---|")
-        for pause in (0.0, 60.0, 300.0, 3600.0):
-            res4 = list(pool.map(_gap, [(pause, 400_000 + s) for s in range(S)]))
-            ok = [r for r in res4 if r[0]]
-            e4 = [r[2] for r in ok]
-            print(f"| {pause:.0f} s | {len(ok)}/{S} | {sum(r[1] for r in ok)} | {sum(r[3] for r in ok)} | "
-                  f"{np.percentile(e4, 10):+.0f} / {np.median(e4):+.0f} / {np.percentile(e4, 90):+.0f} |",
-                  flush=True)
+        if "gap" in parts:
+            print("\n4. A 2-sigma step during a pause in the readings (1 Hz)")
+            print("| pause | found | record's span meets the true one | names the pause (gap_from) "
+                  "| shift error in readings: p10 / median / p90 |")
+            print("|---|---|---|---|---|")
+            for pause in (0.0, 60.0, 300.0, 3600.0):
+                res4 = list(pool.map(_gap, [(pause, 400_000 + s) for s in range(S)]))
+                ok = [r for r in res4 if r[0]]
+                e4 = [r[2] for r in ok]
+                print(f"| {pause:.0f} s | {len(ok)}/{S} | {sum(r[1] for r in ok)} | {sum(r[3] for r in ok)} | "
+                      f"{np.percentile(e4, 10):+.0f} / {np.median(e4):+.0f} / {np.percentile(e4, 90):+.0f} |",
+                      flush=True)
 
-        print("\n5. Readings rounded to 1 sigma, a step at reading 1,500")
-        print("| step | found within 1,000 | |shift error| engine median, p90 / Binseg | "
-              "90% interval covers |")
-        print("|---|---|---|---|")
-        for size in (1.0, 2.0):
-            res5 = list(pool.map(_quant, [(size, 500_000 + 1_000 * int(size) + s) for s in range(S)]))
-            ok5 = [r for r in res5 if r[0]]
-            print(f"| {size} | {len(ok5)}/{S} | {_pct([r[1] for r in ok5], 50)}, {_pct([r[1] for r in ok5], 90)} / "
-                  f"{_pct([r[2] for r in res5], 50)}, {_pct([r[2] for r in res5], 90)} | "
-                  f"{100 * np.mean([r[3] for r in ok5]):.0f}% |", flush=True)
+        if "quantised" in parts:
+            print("\n5. Readings rounded to 1 sigma, a step at reading 1,500")
+            print("| step | found within 1,000 | |shift error| engine median, p90 / Binseg | "
+                  "90% interval covers |")
+            print("|---|---|---|---|")
+            for size in (1.0, 2.0):
+                res5 = list(pool.map(_quant, [(size, 500_000 + 1_000 * int(size) + s) for s in range(S)]))
+                ok5 = [r for r in res5 if r[0]]
+                print(f"| {size} | {len(ok5)}/{S} | {_pct([r[1] for r in ok5], 50)}, {_pct([r[1] for r in ok5], 90)} / "
+                      f"{_pct([r[2] for r in res5], 50)}, {_pct([r[2] for r in res5], 90)} | "
+                      f"{100 * np.mean([r[3] for r in ok5]):.0f}% |", flush=True)
 
-        print("\n6. Readings repeated (2%) and neighbours swapped (2%), a 2-sigma step")
-        res6 = list(pool.map(_messy, [600_000 + s for s in range(S)]))
-        tot = np.array([r[:4] for r in res6]).sum(axis=0)
-        print(f"planted: {tot[0]} repeated readings, {tot[1]} swaps, {tot[2]} readings whose time is not "
-              f"after every earlier one; set aside (duplicate_time, out_of_order): {tot[3]}; records as the "
-              f"clean feed's (phases, shift_at within 1 reading): {sum(r[4] for r in res6)} of {S} streams")
+        if "messy" in parts:
+            print("\n6. Readings repeated (2%) and neighbours swapped (2%), a 2-sigma step")
+            res6 = list(pool.map(_messy, [600_000 + s for s in range(S)]))
+            tot = np.array([r[:4] for r in res6]).sum(axis=0)
+            print(f"planted: {tot[0]} repeated readings, {tot[1]} swaps, {tot[2]} readings whose time is not "
+                  f"after every earlier one; set aside (duplicate_time, out_of_order): {tot[3]}; records as the "
+                  f"clean feed's (phases, shift_at within 1 reading): {sum(r[4] for r in res6)} of {S} streams")
 
     if a.cli:
         same = 0
