@@ -417,7 +417,7 @@ def main() -> int:
 
         if "gap" in parts:
             print("\n4. A 2-sigma step during a pause in the readings (1 Hz)")
-            print("| pause | found | record's span meets the true one | names the pause (gap_from) "
+            print("| pause | found | record's span meets the true one | names the pause (gap_from, summary) "
                   "| shift error in readings: p10 / median / p90 |")
             print("|---|---|---|---|---|")
             for pause in (0.0, 60.0, 300.0, 3600.0):
