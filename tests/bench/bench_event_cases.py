@@ -22,8 +22,9 @@ counts).
    each against the truth (median of its absolute value, p90), and the same for
    ruptures' ``Binseg(model="l2")`` told there are two breaks, on readings 1,300 to
    1,850 (an offline reference that sees every reading: Truong, Oudre & Vayatis 2020);
-   and the share of second records whose ``level_after`` +- 1.645 ``level_after_se``
-   holds the true level (nominal 90%).  The detection delay of the second step is set
+   the share of second records whose ``level_after`` +- 1.645 ``level_after_se``
+   holds the true level (nominal 90%), and whose shift-time interval holds the true
+   step (nominal 90%).  The detection delay of the second step is set
    beside an oracle two-sided CUSUM that knows the level and sigma on each side
    (Montgomery ch. 9, k = step / 2, h by Siegmund's approximation for the same ARL of
    604,800 readings), restarted at the first step.
@@ -168,6 +169,7 @@ def _close(args: tuple[int, float, float, int]) -> dict:
         r = f2[0]
         truth = 20.0 + sign * size * (1.0 + way)
         out["cover2"] = abs(r.level_after - truth) <= 1.6449 * r.level_after_se
+        out["within2"] = r.shift_at_low <= t[AT + gap] <= r.shift_at_high
         det = next(d for d in recs if d.phase == "detected" and d.id == r.id)
         out["delay2"] = idx(t, det.detected_at) - (AT + gap)
     lo = 1300
@@ -352,8 +354,9 @@ def main() -> int:
             print("\n1. Two steps close together (iid, step 1 at reading 1,500); errors in readings, "
                   "median / p90 of |shift_at - truth|")
             print("| size | way | apart | 1st found | 2nd found | 2nd kinds | 1st err engine / Binseg "
-                  "| 2nd err engine / Binseg | 2nd level_after covered | 2nd delay engine / oracle (median) |")
-            print("|---|---|---|---|---|---|---|---|---|---|")
+                  "| 2nd err engine / Binseg | 2nd level_after covered | 2nd 90% interval holds it "
+                  "| 2nd delay engine / oracle (median) |")
+            print("|---|---|---|---|---|---|---|---|---|---|---|")
             for size in (1.5, 2.0, 3.0):
                 for way in (1.0, -1.0):
                     for gap in (30, 60, 100, 150):
@@ -361,6 +364,7 @@ def main() -> int:
                         res = list(pool.map(_close, [(gap, size, way, base + s) for s in range(S)]))
                         kinds = collections.Counter(r["kind2"] for r in res)
                         cov = [r["cover2"] for r in res if "cover2" in r]
+                        win = [r["within2"] for r in res if "within2" in r]
                         d2 = [r["delay2"] for r in res if "delay2" in r]
                         o2 = [r["oracle2"] for r in res]
                         print(f"| {size} | {'same' if way > 0 else 'back'} | {gap} | "
@@ -370,7 +374,7 @@ def main() -> int:
                               f"{_pct([r['rup1'] for r in res], 50)}, {_pct([r['rup1'] for r in res], 90)} | "
                               f"{_pct([r['err2'] for r in res], 50)}, {_pct([r['err2'] for r in res], 90)} / "
                               f"{_pct([r['rup2'] for r in res], 50)}, {_pct([r['rup2'] for r in res], 90)} | "
-                              f"{100 * np.mean(cov):.0f}% of {len(cov)} | "
+                              f"{100 * np.mean(cov):.0f}% of {len(cov)} | {100 * np.mean(win):.0f}% | "
                               f"{np.median(d2):.0f} / {np.median(o2):.0f} |", flush=True)
 
         if "excursion" in parts:
