@@ -4,7 +4,7 @@
 Usage, from the repository root with the package installed (``ruptures`` and
 ``statsmodels`` come with the ``test`` extra)::
 
-    python tests/bench/bench_event_cases.py              # about 2 minutes on 2 cores
+    python tests/bench/bench_event_cases.py              # 2 to 4 minutes on 2 cores (135 s quiet, 2026-12-05)
     python tests/bench/bench_event_cases.py --states 10  # fewer random states, a smoke check
     python tests/bench/bench_event_cases.py --cli 5      # also 5 states through `shiftwatch replay`
 
