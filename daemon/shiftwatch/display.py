@@ -170,9 +170,14 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
         rec.phase, rec.phase.upper())
     before, after = _levels(rec.level_before, rec.level_after, rec.delta)
     at = clock(rec.shift_at, tz, today=ref)
-    if rec.gap_from is not None:  # a step across a pause in the readings: say it may lie in the pause
+    if rec.gap_from is not None and rec.gap_from < rec.shift_at_low:
+        # a step across a pause in the readings that ends where its interval begins
         at += (f" (the first reading after {format_duration(rec.shift_at_low - rec.gap_from)} without "
                f"readings, since {clock(rec.gap_from, tz, today=ref)})")
+    elif rec.gap_from is not None:  # the interval holds the pause: the step may lie in it
+        at += (f" (its interval, {clock(rec.shift_at_low, tz, today=ref)} to "
+               f"{clock(rec.shift_at_high, tz, today=ref)}, spans a pause in the readings from "
+               f"{clock(rec.gap_from, tz, today=ref)}: the step may lie in it)")
     if rec.repeated_value is not None:  # a stuck sensor is possible: no size in sigmas
         return _stuck_summary(rec, verb, who, at, before, after, unit, tz, ref)
     if rec.spread_ratio is not None:

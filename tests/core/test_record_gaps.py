@@ -81,3 +81,45 @@ def test_a_pause_long_before_the_step_is_not_named() -> None:
     recs = feed(x, t)
     assert [r.phase for r in recs] == ["detected", "confirmed"]
     assert all(r.gap_from is None for r in recs)
+
+
+@pytest.mark.parametrize("state", [10, 17, 21, 31, 34, 41])
+def test_a_step_whose_interval_spans_the_pause_names_it_too(state: int) -> None:
+    # Outside trial of 2026-12-05 (tests/bench/bench_event_cases.py, part 4: 2-sigma steps
+    # in pauses of 60 s, 5 minutes and an hour, 60 states each): where the fit's interval
+    # began a reading or more before the pause and ended after it, the records had no
+    # gap_from and the summary said "at 06:16:40Z, detected 5 s later" (or dated the step
+    # at the last reading before the pause, "detected 6.0 h later"), nothing of the pause
+    # the step may have come in: 26 of the 60 streams at each pause length.  These states
+    # failed so before: the interval reaches from before the pause to after it.
+    rng = np.random.default_rng(state)
+    x = 500.0 + 0.5 * rng.standard_normal(1600)
+    x[1000:] += 1.5
+    t = T0 + np.arange(1600.0)
+    t[1000:] += PAUSE
+    recs = feed(x, t)
+    conf = [r for r in recs if r.phase == "confirmed"]
+    assert len(conf) == 1, [r.phase for r in recs]
+    rec = conf[0]
+    assert rec.shift_at_low < t[1000] <= rec.shift_at_high  # the interval spans the pause
+    assert rec.gap_from == t[999]
+    assert rec.to_dict()["gap_from"] == "2026-03-02T00:16:39.000Z"
+    text = alert_summary(rec)
+    assert "spans a pause in the readings from 00:16:39Z: the step may lie in it" in text, text
+    assert "the first reading after" not in text
+
+
+def test_of_two_pauses_inside_the_interval_the_longer_is_named() -> None:
+    # A pause of a minute two readings before the step's pause of 6 hours: the record
+    # names the longer one, whose start the fit's interval holds too.
+    rng = np.random.default_rng(10)
+    x = 500.0 + 0.5 * rng.standard_normal(1600)
+    x[1000:] += 1.5
+    t = T0 + np.arange(1600.0)
+    t[998:] += 60.0
+    t[1000:] += PAUSE
+    recs = feed(x, t)
+    conf = [r for r in recs if r.phase == "confirmed"]
+    assert len(conf) == 1, [r.phase for r in recs]
+    assert conf[0].shift_at_low <= t[998]
+    assert conf[0].gap_from == t[999]

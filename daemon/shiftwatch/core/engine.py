@@ -63,7 +63,15 @@ from shiftwatch.core.calm import MAX_CHARTS as CALM_MAX_CHARTS
 from shiftwatch.core.calm import CalmTerms
 from shiftwatch.core.cusum import CusumTest
 from shiftwatch.core.eventfit import _fit, _variance_factor, residual_phi_bound, young_variance
-from shiftwatch.core.events import LOOK, NO_STEP, STEP, EventTrial, OpenEvent, StepMemory
+from shiftwatch.core.events import (
+    LOOK,
+    NO_STEP,
+    RETURN_WAIT,
+    STEP,
+    EventTrial,
+    OpenEvent,
+    StepMemory,
+)
 from shiftwatch.core.follow import (
     FOLLOW_MARGIN,
     FOLLOW_RECENTER,
@@ -2156,6 +2164,14 @@ class StreamEngine:
         if outcome == STEP:
             phase = "confirmed"
             last = self._last_step
+            if (last is not None and len(self._fitter) - ev.trip_len < RETURN_WAIT
+                    and last.return_unclear(level_after=fit.level_after, delta=fit.delta,
+                                            level_after_se=fit.level_after_se)):
+                # A step back whose level lies near the line between a return and a step
+                # of its own, within its standard error: the kind waits for more samples
+                # (the way back is confirmed on a few, chosen by the detection).
+                ev.trial.reopen()
+                return
             extra: dict[str, Any] = {}
             if last is not None and last.is_return(level_after=fit.level_after, delta=fit.delta):
                 phase = "returned"
@@ -2575,11 +2591,13 @@ class StreamEngine:
                 raise ValueError(f"{field_name}: {exc.args[0]} is missing from the saved state") from None  # noqa: TRY004  every bad field is a ValueError
             raise ValueError(f"{field_name}: malformed ({exc!r:.120})") from None
 
-    def _gap_from(self, shift_at_low: float) -> float | None:
-        """The time of the last reading before ``shift_at_low`` when the readings paused
-        there for more than GAP_FACTOR times their median interval (the event's window),
-        else None.  A step across a pause (a line stopped overnight) may have come at
-        any moment of it; its first reading after the pause is all the fit can date."""
+    def _gap_from(self, shift_at_low: float, shift_at_high: float) -> float | None:
+        """The time of the last reading before the longest pause of the readings, of more
+        than GAP_FACTOR times their median interval (the event's window), that ends at
+        ``shift_at_low`` or inside the interval up to ``shift_at_high``; else None.  A step
+        across a pause (a line stopped overnight) may have come at any moment of it; the
+        fit can date only readings, and its interval may begin before the pause (outside
+        trial of 2026-12-05: 26 of 60 steps in a pause, none named before)."""
         f = self._fitter
         if f is None or len(f) < 3:
             return None
@@ -2587,9 +2605,11 @@ class StreamEngine:
         j = int(np.searchsorted(tt, shift_at_low, side="left"))
         if j < 1:
             return None
+        k = max(int(np.searchsorted(tt, shift_at_high, side="right")), j + 1)
         usual = float(np.median(np.diff(tt)))
-        before = float(tt[j - 1])
-        return before if usual > 0.0 and shift_at_low - before > GAP_FACTOR * usual else None
+        gaps = np.diff(tt[j - 1:k])
+        i = int(np.argmax(gaps))
+        return float(tt[j - 1 + i]) if usual > 0.0 and gaps[i] > GAP_FACTOR * usual else None
 
     def _record(self, ev: OpenEvent, fit: StepFit, phase: str, as_of: float,
                 **extra: Any) -> AlertRecord:
@@ -2622,7 +2642,7 @@ class StreamEngine:
             p_value=fit.p_value,
             direction="up" if fit.delta > 0 else "down",
             unit=self.unit,
-            gap_from=self._gap_from(low),
+            gap_from=self._gap_from(low, min(fit.shift_at_high, ev.detected_at)),
             **extra,
             **_sensorcheck.fit_fields(None if self._fitter is None else self._fitter.values, fit,
                                       ev.trip_len, phase, self._baseline, self.settings.confirm_p_value),

@@ -458,18 +458,36 @@ def _finite(d: dict[str, Any], key: str) -> float:
     return v
 
 
+#: How many standard errors of the new level from the line between a return and a step
+#: of its own leave the kind unclear (the two-sided 10% point of the normal), and the most
+#: samples after the detection the engine waits for it to clear: see :class:`StepMemory`.
+RETURN_Z = 1.6449
+RETURN_WAIT = 60
+
+
 class StepMemory:
     """The last confirmed step of a stream, kept to recognise its return.
 
     A later step in the opposite direction whose new level lies within half
     the first step of the level before it ends the excursion: its record is
-    ``returned`` and names the excursion's event and start.
+    ``returned`` and names the excursion's event and start.  Where the new
+    level lies within ``RETURN_Z`` of its own standard errors of that line
+    (:meth:`return_unclear`), the engine waits for more readings, up to
+    ``RETURN_WAIT`` after the detection, before it names the kind: the way
+    back is often confirmed on a few readings, chosen by the detection for
+    running far out, and a level of 19.00 +- 0.31 for a true 20 fell beyond
+    the half by 0.2 and was recorded as a step of its own (outside trial of
+    2026-12-05, ``tests/core/test_excursion_return.py``).
 
     Examples
     --------
     >>> m = StepMemory("a1", shift_at=100.0, level_before=10.0, delta=2.0)
     >>> m.is_return(level_after=10.3, delta=-1.7), m.is_return(level_after=11.5, delta=-0.5)
     (True, False)
+    >>> m.return_unclear(level_after=8.8, delta=-3.0, level_after_se=0.3)
+    True
+    >>> m.return_unclear(level_after=8.8, delta=-3.0, level_after_se=0.05)
+    False
     """
 
     __slots__ = ("delta", "id", "level_before", "shift_at")
@@ -483,6 +501,14 @@ class StepMemory:
     def is_return(self, *, level_after: float, delta: float) -> bool:
         return (delta * self.delta < 0
                 and abs(level_after - self.level_before) <= 0.5 * abs(self.delta))
+
+    def return_unclear(self, *, level_after: float, delta: float, level_after_se: float) -> bool:
+        """Whether a step of ``delta`` to ``level_after`` goes back from this one and its
+        level lies within ``RETURN_Z`` standard errors ``level_after_se`` of the line
+        :meth:`is_return` draws (half this step from the level before it)."""
+        return (delta * self.delta < 0 and math.isfinite(level_after_se)
+                and abs(abs(level_after - self.level_before) - 0.5 * abs(self.delta))
+                <= RETURN_Z * level_after_se)
 
     def get_state(self) -> dict[str, Any]:
         return {"id": self.id, "shift_at": self.shift_at, "level_before": self.level_before,
