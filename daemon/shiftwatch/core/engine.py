@@ -2164,13 +2164,18 @@ class StreamEngine:
         if outcome == STEP:
             phase = "confirmed"
             last = self._last_step
-            if (last is not None and len(self._fitter) - ev.trip_len < RETURN_WAIT
+            waited = len(self._fitter) - ev.trip_len
+            if (last is not None and waited < RETURN_WAIT and ev.trial.m < ev.trial.limit
                     and last.return_unclear(level_after=fit.level_after, delta=fit.delta,
                                             level_after_se=fit.level_after_se)):
                 # A step back whose level lies near the line between a return and a step
                 # of its own, within its standard error: the kind waits for more samples
-                # (the way back is confirmed on a few, chosen by the detection).
-                ev.trial.reopen()
+                # (the way back is confirmed on a few, chosen by the detection), but its
+                # next verdict comes no later than RETURN_WAIT samples after the detection
+                # nor than the trial's limit (confirm_max_samples), where the kind is named
+                # as the fit then stands: without that bound the wait ran to 61 to 63
+                # samples, and at a limit below it ended the step "undecided".
+                ev.trial.reopen(by=min(ev.trial.m + RETURN_WAIT - waited, ev.trial.limit))
                 return
             extra: dict[str, Any] = {}
             if last is not None and last.is_return(level_after=fit.level_after, delta=fit.delta):

@@ -302,14 +302,18 @@ class EventTrial:
         self.outcome = self._verdict()
         return i, self.outcome
 
-    def reopen(self) -> None:
+    def reopen(self, by: int | None = None) -> None:
         """Take back a "step" (or "look") verdict the engine did not accept (the fit of the event's
         samples does not show the step): the sums stand and the trial goes on.  The next
         "step" verdict comes no sooner than a tenth of the samples so far later (so the
         engine refits once every so many samples, not on each), on a count that does
-        not depend on batching; "no step" and the limit decide as before."""
+        not depend on batching, or at the count ``by`` where that is sooner (a wait of the
+        engine's that ends there: see :data:`RETURN_WAIT`); "no step" and the limit decide
+        as before."""
         self.outcome = PENDING
         self.step_from = self.m + max(1, self.m // 10)
+        if by is not None:
+            self.step_from = min(self.step_from, max(int(by), self.m + 1))
 
     def _verdict(self) -> str:
         if self.m < self.min_samples:
