@@ -23,6 +23,8 @@ no difference between the 200 readings before the excursion and the 200 after it
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 from scipy import stats
@@ -129,3 +131,44 @@ def test_a_limit_below_the_wait_names_the_kind_at_the_limit_not_undecided(limit:
         f = [r for r in recs if r.phase != "detected" and r.detected_at >= t[AT]]
         assert [r.phase for r in f] == ["confirmed", "returned"], (state, limit, [r.phase for r in f])
         assert f[1].as_of - f[1].detected_at <= limit
+
+
+def _fed(t: np.ndarray, x: np.ndarray, cuts: list[int], settings: DetectionSettings,
+         snapshot_from: int | None = None) -> tuple[list[dict], int]:
+    """The records of a feed cut at ``cuts``; from ``snapshot_from`` on, the engine is passed
+    through a JSON snapshot (as the daemon stores it) and a fresh engine after every batch.
+    Also how many of those snapshots were taken while the way back's kind waited."""
+    eng = StreamEngine("line2/oven3/temp", settings)
+    out: list[dict] = []
+    waiting = 0
+    for a, b in zip([0, *cuts], [*cuts, t.shape[0]], strict=True):
+        out += [r.to_dict() for r in eng.process(t[a:b], x[a:b]).records]
+        if snapshot_from is not None and b >= snapshot_from:
+            snap = json.loads(json.dumps(eng.get_state()))
+            ev = snap.get("event")
+            waiting += bool(ev and snap["last_step"] and ev["trial"]["step_from"] > 0)
+            eng = StreamEngine("line2/oven3/temp", settings)
+            eng.set_state(snap)
+    return out, waiting
+
+
+@pytest.mark.parametrize(("state", "length", "size", "back", "limit"),
+                         [(99, 20, 1.5, 1.0, 1000), (92, 35, 1.5, 1.0, 1000), (10, 50, 2.0, 0.5, 1000),
+                          (92, 35, 1.5, 1.0, 30)])
+def test_a_restart_or_a_batching_during_the_wait_changes_no_record(state: int, length: int, size: float,
+                                                                  back: float, limit: int) -> None:
+    # Nothing is added to the saved state for the wait: it is worked out from the fit (the
+    # event's samples are saved) and the trial's step_from (saved).  A snapshot after every
+    # reading from just before the way back to 90 readings after it, and feeds of 1, 7 and
+    # 260 readings a call, give the records of one call over the whole series.
+    settings = DetectionSettings(confirm_max_samples=limit)
+    t, x = excursion(state, length, size, back)
+    n = t.shape[0]
+    whole, _ = _fed(t, x, [], settings)
+    assert whole[-1]["phase"] == "returned" if back == 1.0 else whole[-1]["phase"] in ("confirmed", "returned")
+    for step in (1, 7, 260):
+        assert _fed(t, x, list(range(step, n, step)), settings)[0] == whole, step
+    lo, hi = AT + length - 2, AT + length + 90
+    restarted, waiting = _fed(t, x, list(range(lo, hi)), settings, snapshot_from=lo)
+    assert restarted == whole
+    assert waiting >= 3  # the snapshots fell inside the wait, not only around it
