@@ -21,7 +21,7 @@ import numpy as np
 import pytest
 
 from shiftwatch.core.engine import StreamEngine
-from shiftwatch.display import alert_summary
+from shiftwatch.display import alert_summary, clock
 
 T0 = 1_772_409_600.0
 PAUSE = 6 * 3600.0
@@ -105,8 +105,14 @@ def test_a_step_whose_interval_spans_the_pause_names_it_too(state: int) -> None:
     assert rec.gap_from == t[999]
     assert rec.to_dict()["gap_from"] == "2026-03-02T00:16:39.000Z"
     text = alert_summary(rec)
-    assert "spans a pause in the readings from 00:16:39Z: the step may lie in it" in text, text
-    assert "the first reading after" not in text
+    # For a line operator: the span to look in (the logbook's hours) and why it is so wide,
+    # in plain words.  Before, "(its interval, 00:16:38Z to 06:16:40Z, spans a pause in the
+    # readings from 00:16:39Z: the step may lie in it)": "its interval" is the fit's term,
+    # and "it" could be read as the interval or the pause.
+    low, high = (clock(v, today=rec.as_of) for v in (rec.shift_at_low, rec.shift_at_high))
+    assert (f"(the step may lie anywhere from {low} to {high}: the readings paused after 00:16:39Z)"
+            in text), text
+    assert "its interval" not in text and "the first reading after" not in text
 
 
 def test_of_two_pauses_inside_the_interval_the_longer_is_named() -> None:
