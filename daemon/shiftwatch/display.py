@@ -175,9 +175,9 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
         at += (f" (the first reading after {format_duration(rec.shift_at_low - rec.gap_from)} without "
                f"readings, since {clock(rec.gap_from, tz, today=ref)})")
     elif rec.gap_from is not None:  # the interval holds the pause: the step may lie in it
-        at += (f" (its interval, {clock(rec.shift_at_low, tz, today=ref)} to "
-               f"{clock(rec.shift_at_high, tz, today=ref)}, spans a pause in the readings from "
-               f"{clock(rec.gap_from, tz, today=ref)}: the step may lie in it)")
+        at += (f" (the step may lie anywhere from {clock(rec.shift_at_low, tz, today=ref)} to "
+               f"{clock(rec.shift_at_high, tz, today=ref)}: the readings paused after "
+               f"{clock(rec.gap_from, tz, today=ref)})")
     if rec.repeated_value is not None:  # a stuck sensor is possible: no size in sigmas
         return _stuck_summary(rec, verb, who, at, before, after, unit, tz, ref)
     if rec.spread_ratio is not None:
