@@ -129,3 +129,26 @@ def test_of_two_pauses_inside_the_interval_the_longer_is_named() -> None:
     assert len(conf) == 1, [r.phase for r in recs]
     assert conf[0].shift_at_low <= t[998]
     assert conf[0].gap_from == t[999]
+
+
+@pytest.mark.parametrize("state", [2, 14])
+def test_a_split_after_the_first_reading_past_the_pause_is_not_called_that_reading(state: int) -> None:
+    # The fit's split may lie a reading or two after the first reading past the pause
+    # (shift_at later than shift_at_low).  Before, the summary said "at 06:16:42Z (the first
+    # reading after 6 h without readings, since 00:16:39Z)": 06:16:42Z is the third reading
+    # after the pause, not the first.  The truth is the data's construction (readings
+    # before the pause at the old level, after it at the new one).
+    rng = np.random.default_rng(state)
+    x = 500.0 + 0.5 * rng.standard_normal(1600)
+    x[1000:] += 1.5
+    t = T0 + np.arange(1600.0)
+    t[1000:] += PAUSE
+    recs = feed(x, t)
+    conf = [r for r in recs if r.phase == "confirmed"]
+    assert len(conf) == 1, [r.phase for r in recs]
+    rec = conf[0]
+    assert rec.gap_from == t[999] and rec.shift_at_low == t[1000] < rec.shift_at  # the case in question
+    text = alert_summary(rec)
+    first, at = clock(t[1000], today=rec.as_of), clock(rec.shift_at, today=rec.as_of)
+    assert (f"at {at} (or from {first}, the first reading after 6 h without readings, since 00:16:39Z)"
+            in text), text
