@@ -171,8 +171,10 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
     before, after = _levels(rec.level_before, rec.level_after, rec.delta)
     at = clock(rec.shift_at, tz, today=ref)
     if rec.gap_from is not None and rec.gap_from < rec.shift_at_low:
-        # a step across a pause in the readings that ends where its interval begins
-        at += (f" (the first reading after {format_duration(rec.shift_at_low - rec.gap_from)} without "
+        # a step across a pause in the readings that ends where its interval begins (the
+        # fit's split may lie a reading or two later: then the first reading is named too)
+        first = "" if rec.shift_at <= rec.shift_at_low else f"or from {clock(rec.shift_at_low, tz, today=ref)}, "
+        at += (f" ({first}the first reading after {format_duration(rec.shift_at_low - rec.gap_from)} without "
                f"readings, since {clock(rec.gap_from, tz, today=ref)})")
     elif rec.gap_from is not None:  # the interval holds the pause: the step may lie in it
         at += (f" (the step may lie anywhere from {clock(rec.shift_at_low, tz, today=ref)} to "

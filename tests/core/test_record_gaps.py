@@ -54,7 +54,7 @@ def test_a_step_across_a_pause_names_the_last_reading_before_it(state: int) -> N
         # ... and the last reading before the pause is named: the step came after it.
         assert rec.gap_from == t[999]
         assert d["gap_from"] == "2026-03-02T00:16:39.000Z"
-        assert "(the first reading after 6 h without readings, since 00:16:39Z)" in alert_summary(rec), \
+        assert "the first reading after 6 h without readings, since 00:16:39Z)" in alert_summary(rec), \
             alert_summary(rec)
 
 
