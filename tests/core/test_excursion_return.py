@@ -30,7 +30,7 @@ import pytest
 from scipy import stats
 
 from shiftwatch.core.engine import StreamEngine
-from shiftwatch.core.events import RETURN_WAIT, StepMemory
+from shiftwatch.core.events import RETURN_WAIT, RETURN_Z, StepMemory
 from shiftwatch.core.settings import DetectionSettings
 
 T0 = 1_788_000_000.0
@@ -172,3 +172,17 @@ def test_a_restart_or_a_batching_during_the_wait_changes_no_record(state: int, l
     restarted, waiting = _fed(t, x, list(range(lo, hi)), settings, snapshot_from=lo)
     assert restarted == whole
     assert waiting >= 3  # the snapshots fell inside the wait, not only around it
+
+
+def test_the_wait_uses_the_records_own_90_percent_point_and_standard_error() -> None:
+    # RETURN_Z is the two-sided 10% point of the normal (reference: scipy.stats.norm.ppf),
+    # the 1.645 of the README's "level_after +- 1.645 level_after_se" (90%, the default
+    # interval_level); the standard error the wait weighs is the record's own level_after_se.
+    assert abs(RETURN_Z - stats.norm.ppf(0.95)) < 1e-4
+    t, x = excursion(92, 35, 1.5)
+    out, back = finals(t, x)
+    m = StepMemory(out.id, shift_at=out.shift_at, level_before=out.level_before, delta=out.delta)
+    # named when the record's level cleared the line by more than 1.645 of its own se, or at the bound
+    cleared = not m.return_unclear(level_after=back.level_after, delta=back.delta,
+                                   level_after_se=back.level_after_se)
+    assert cleared or back.as_of - back.detected_at >= RETURN_WAIT
