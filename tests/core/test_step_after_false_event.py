@@ -4,19 +4,23 @@ Measured from outside (2026-12-05): a false detection on an established stream,
 then a real step of 1 to 3 sigma 20 to 300 samples later, before the false
 event was decided (iid and AR(1) 0.5 noise, ``false_alarm_every`` 600 s, 400
 random states each).  The false event itself was confirmed with the false
-trip's split as ``shift_at`` (22 to 413 samples before the real step) in 17 of
+trip's split as ``shift_at`` (25 to 413 samples before the real step) in 17 of
 198 iid streams and 42 of 378 AR(1) 0.5 ones, always when the step went the
 false trip's way: the refit of the event's window merged the samples the false
 trip had raised (selected by the test, so biased towards the trip) with the
 step, and the late path, which asks whether that refit splits after the
 detection, never saw it.  Now the samples after the detection, which no
-selection raised, are weighed on their own (``StreamEngine._step_after``).
+selection raised, are weighed on their own (``StreamEngine._step_after``):
+8 and 39 are left, mostly 1-sigma steps with too few samples between the
+detection and the step to tell the two levels apart at the trial's bound
+(``tests/bench/bench_false_then_step.py`` measures it).
 
 References: the truth (the step is put into the data at a known sample); the
 tabular CUSUM restarted after the false signal, knowing level, sigma and phi
 (Montgomery, Introduction to Statistical Quality Control, ch. 9: common
 practice), which dates a step by the last sample at which its sum was zero
-(the change-point estimate Montgomery gives with the tabular CUSUM: common
+(the change-point estimate Montgomery gives with the tabular CUSUM, its counter
+of periods since the sum left zero, from memory: common
 practice), as an independent reading of the same samples.  (In the outside
 measurement the exact least-squares single split of the event's window up to
 the false event's decision, the cost ruptures' ``Dynp`` with model "l2" and one
@@ -109,8 +113,6 @@ DATED_AT_THE_FALSE_SPLIT_BEFORE = (
     ("iid", 2369, 43, 1.0),
     ("iid", 2371, 26, 1.0),
     ("ar05", 2080, 59, 1.0),
-    ("ar05", 2304, 37, 2.0),
-    ("ar05", 2375, 36, 1.0),
 )
 
 

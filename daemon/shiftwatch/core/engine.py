@@ -2255,7 +2255,9 @@ class StreamEngine:
         trial's own (the log-likelihood ratio of the two levels, normal noise of the
         baseline's long-run variance), the level after at least half of min_shift_sigma
         from the reference in the trial's direction and the level before the split less
-        than that.  Returns that fit when they do with the level after moved
+        than that, on at least as many samples before the split as the trial needs to
+        confirm its design step (``2 bound / d^2``).  Returns that fit when they do with
+        the level after moved
         :data:`AFTER_MARGIN` standard errors towards the reference and resting on as
         many samples as the segment before the split at least, and whether to wait for
         more samples: when they do with the level as fitted, while the level after rests
@@ -2266,9 +2268,10 @@ class StreamEngine:
         samples, a martingale if both levels were known, would reach the bound with
         probability at most the trial's error rate (Ville's inequality, as the trial's own
         bound); the level after is estimated from the same samples, at the split where
-        the two segments differ most, hence the margin and the wait (on
-        ``bench_events.py``'s 600 real steps one detection was moved so, a 1-sigma step
-        on quantised noise)."""
+        the two segments differ most, hence the margin, the wait and the least count
+        (without that count one of ``bench_events.py``'s 600 real steps and one of
+        ``test_warmup_steps.py``'s 300 had their detection moved to a later split, each
+        on 8 samples before it)."""
         assert self._fitter is not None
         start = ev.trip_len
         if len(self._fitter) - start < 2 * FIT_MIN_SEGMENT + 1 or not b.sigma > 0.0:
@@ -2290,6 +2293,11 @@ class StreamEngine:
             return post.index * step * (after + ev.level_before - 2.0 * post.level_before) / (2.0 * var)
 
         bound = ev.trial.bound
+        if post.index < 2.0 * bound / (ev.trial.d * ev.trial.d):
+            # Fewer samples before the split than the trial needs to confirm a step of its
+            # design size (Wald's expected number, bound over drift): too few to tell the
+            # two levels apart, whatever a few samples after them show.
+            return None, False
         if post.n_after >= post.index and llr(AFTER_MARGIN) >= bound:
             return post, False
         # Too few samples after the split to weigh them by yet (a few wild ones make a level
