@@ -295,6 +295,16 @@ READ_ITEMS = True
 YOUNG_LIMITS = True
 
 
+#: Standard errors of the level after a step by which :meth:`StreamEngine._step_after` moves it
+#: towards the reference before it weighs the samples after a detection (it rests on the
+#: samples after the split only, a few dozen, and the split is where they look farthest
+#: from the samples before it).
+AFTER_MARGIN = 1.0
+#: The samples after that split, in multiples of those before it, up to which
+#: :meth:`StreamEngine._step_after` waits for them when the level as fitted says the step
+#: began after the detection and the level moved by the margin does not yet (without a
+#: limit a step at the bound's edge kept its event open to ``confirm_max_samples``).
+AFTER_WAIT = 4
 #: A step is confirmed only while the fit of the event's samples shows it at this
 #: p-value (or ``confirm_p_value``, when larger): the trial alone confirmed wander of
 #: young autocorrelated streams.  0.001 lost more real steps on AR(1) 0.8 noise
@@ -1920,14 +1930,16 @@ class StreamEngine:
         self._begin_event(detected_at, result, as_of, by_fit=by_fit, tripped=tripped)
 
     def _begin_event(self, detected_at: float, result: BatchResult, as_of: float,
-                     by_fit: bool = False, tripped: tuple[str, float, float] | None = None) -> None:
+                     by_fit: bool = False, tripped: tuple[str, float, float] | None = None,
+                     first_split: int = 0) -> None:
         """Open an event over the fitter as it stands (its last sample is the detection).
         Its direction is the test's, or the fitted step's when ``by_fit`` (or the test
-        cannot tell)."""
+        cannot tell).  ``first_split``: the first sample its fits may place the step at
+        (:class:`.events.OpenEvent`)."""
         b = self._baseline
         test = self._test
         assert b is not None and test is not None and self._fitter is not None
-        fit = self._fit(b)
+        fit = self._fit(b, first_split)
         if self.planned is not None and self._adopt_if_planned(fit, detected_at, result, as_of):
             return
         sign = (0 if by_fit else test.direction) or (1 if fit.delta > 0 else -1)
@@ -1959,6 +1971,7 @@ class StreamEngine:
             trial=(self._new_trial(sign, young_ref=max(1, fit.n_before)) if self._young.provisional
                    else self._new_trial(sign)),
             n_after=max(1, fit.n_after),
+            first_split=first_split,
         )
         self._event = ev
         self._state = EVENT_OPEN
@@ -1994,7 +2007,7 @@ class StreamEngine:
         b = self._baseline
         if ev is None or b is None or self._fitter is None or self.planned is None:
             return None
-        fit = self._fit(b)
+        fit = self._fit(b, ev.first_split)
         rec = self._adopt_if_planned(fit, ev.detected_at, None, max(as_of, ev.detected_at), ev)
         if rec is not None:
             self.records_total = _tally(self.records_total, (PLANNED,))
@@ -2018,11 +2031,12 @@ class StreamEngine:
         return EventTrial(sign, max(d, 0.05), s.confirm_p_value, s.confirm_max_samples, s.confirm_min_samples,
                           n_ref=float(young_ref), lam=young_variance(b), n_lam=float(min(b.n, young_ref)))
 
-    def _fit(self, b: Baseline) -> StepFit:
-        """Fit the step over the event's window, reusing the fitter's running sums."""
+    def _fit(self, b: Baseline, first_split: int = 0) -> StepFit:
+        """Fit the step over the event's window, reusing the fitter's running sums; its
+        split at ``first_split`` or after (:class:`.events.OpenEvent`)."""
         assert self._fitter is not None
         return self._fitter.fit(level=self.settings.interval_level, min_segment=FIT_MIN_SEGMENT,
-                                variance_factor=_variance_factor(b.phi))
+                                variance_factor=_variance_factor(b.phi), first_split=first_split or None)
 
     def _track(self, t: FloatArray, x: FloatArray, idx: NDArray[np.intp], result: BatchResult) -> int:
         """Feed an open event: every kept sample goes to the step fit and to the
@@ -2086,7 +2100,7 @@ class StreamEngine:
         ev = self._event
         b = self._baseline
         assert ev is not None and b is not None and self._fitter is not None
-        fit = self._fit(b)
+        fit = self._fit(b, ev.first_split)
         if self._spread_ends(ev, fit, b, outcome, result, as_of):
             return
         late = fit.index >= ev.trip_len
@@ -2101,7 +2115,16 @@ class StreamEngine:
         # after a "step", else the trial goes on.
         looked = outcome == LOOK
         stepped = outcome == STEP or looked
-        if late and ((stepped and shows) or clear):
+        # The refit of every sample may place the step at or before the detection where
+        # the samples after the detection show it began later: a false trip raised the
+        # samples before it, and the fit merged them with the step that came while the
+        # event was open (it dated that step at the false trip's split).
+        after, wait = self._step_after(ev, b) if stepped and not late else (None, False)
+        if wait:
+            # They lean that way, on the few samples after that split: more will tell.
+            ev.trial.reopen()
+            return
+        if (late and ((stepped and shows) or clear)) or after is not None:
             # The step the samples show began after the detection (in the detected
             # direction, or clearly in the other): that detection was not this step.
             # It ends as dismissed (with the fit it had), and the step gets an event
@@ -2115,9 +2138,15 @@ class StreamEngine:
             # statistic was reset at the first trip and may be anywhere below its threshold):
             # the refit's sup-F against the F whose p-value is confirm_p_value, or else the
             # trial's evidence for a step against Wald's bound.
-            tripped = ((REFIT_TEST, fit.f_stat, supf_critical(self.settings.confirm_p_value, fit.pi0)) if clear
-                       else (TRIAL_TEST, ev.trial.llr_plain() if looked else ev.trial.llr_step(), ev.trial.bound))
-            self._begin_event(as_of, result, as_of, by_fit=True, tripped=tripped)
+            if after is not None:
+                # Its fits split after that detection, as the samples after it show.
+                tripped = (REFIT_TEST, after.f_stat, supf_critical(self.settings.confirm_p_value, after.pi0))
+            elif clear:
+                tripped = (REFIT_TEST, fit.f_stat, supf_critical(self.settings.confirm_p_value, fit.pi0))
+            else:
+                tripped = (TRIAL_TEST, ev.trial.llr_plain() if looked else ev.trial.llr_step(), ev.trial.bound)
+            self._begin_event(as_of, result, as_of, by_fit=True, tripped=tripped,
+                              first_split=ev.first_split if after is None else ev.trip_len)
             return
         shown = self._event_fit(ev, b, fit)  # what the record says
         conflict = stepped and self._conflicts(fit, ev.trial.sign, b)
@@ -2239,6 +2268,64 @@ class StreamEngine:
         self._baseline = replace(b, sigma=b.sigma * spread.ratio, innovation_sigma=b.innovation_sigma * spread.ratio,
                                  n=max(1, min(b.n, rests_on)))
 
+    def _step_after(self, ev: OpenEvent, b: Baseline) -> tuple[StepFit | None, bool]:
+        """Whether the event's samples after its detection (not raised by the selection
+        that tripped the test, as the ones before it are) say the step began after the
+        detection: the fit of those samples alone, before whose split they favour the
+        trial's reference level over the level after the split by Wald's bound, the
+        trial's own (the log-likelihood ratio of the two levels, normal noise of the
+        baseline's long-run variance), the level after at least half of min_shift_sigma
+        from the reference in the trial's direction and the level before the split less
+        than that, on at least as many samples before the split as the trial needs to
+        confirm its design step (``2 bound / d^2``).  Returns that fit when they do with
+        the level after moved
+        :data:`AFTER_MARGIN` standard errors towards the reference and resting on as
+        many samples as the segment before the split at least, and whether to wait for
+        more samples: when they do with the level as fitted, while the level after rests
+        on fewer than :data:`AFTER_WAIT` times the samples before the split.
+
+        Were the step at or before the detection, every sample after it would lie at
+        the level after, and the likelihood ratio of the two levels over its first
+        samples, a martingale if both levels were known, would reach the bound with
+        probability at most the trial's error rate (Ville's inequality, as the trial's own
+        bound); the level after is estimated from the same samples, at the split where
+        the two segments differ most, hence the margin, the wait and the least count
+        (without that count one of ``bench_events.py``'s 600 real steps and one of
+        ``test_warmup_steps.py``'s 300 had their detection moved to a later split, each
+        on 8 samples before it)."""
+        assert self._fitter is not None
+        start = ev.trip_len
+        if len(self._fitter) - start < 2 * FIT_MIN_SEGMENT + 1 or not b.sigma > 0.0:
+            return None, False
+        post = self._fitter.fit_from(start, level=self.settings.interval_level, min_segment=FIT_MIN_SEGMENT,
+                                     variance_factor=_variance_factor(b.phi))
+        var = b.sigma * b.sigma * _variance_factor(b.phi)
+        half = 0.5 * self.settings.min_shift_sigma * b.sigma
+        sign = ev.trial.sign
+        if (post.level_before - ev.level_before) * sign >= half:
+            return None, False  # the samples before the split show a step already (this event's)
+
+        def llr(margin: float) -> float:
+            # over the samples before the split, sum ((x - after)^2 - (x - ref)^2) / (2 var)
+            after = post.level_after - sign * margin * math.sqrt(var / post.n_after)
+            step = after - ev.level_before
+            if step * sign < half:
+                return -math.inf
+            return post.index * step * (after + ev.level_before - 2.0 * post.level_before) / (2.0 * var)
+
+        bound = ev.trial.bound
+        if post.index < 2.0 * bound / (ev.trial.d * ev.trial.d):
+            # Fewer samples before the split than the trial needs to confirm a step of its
+            # design size (Wald's expected number, bound over drift): too few to tell the
+            # two levels apart, whatever a few samples after them show.
+            return None, False
+        if post.n_after >= post.index and llr(AFTER_MARGIN) >= bound:
+            return post, False
+        # Too few samples after the split to weigh them by yet (a few wild ones make a level
+        # far out), or to tell the level after from the margin: wait while the level as
+        # fitted reaches the bound, up to AFTER_WAIT times the segment before the split.
+        return None, post.n_after < AFTER_WAIT * post.index and llr(0.0) >= bound
+
     def _conflicts(self, fit: StepFit, sign: int, b: Baseline) -> bool:
         """Whether ``fit`` contradicts a trial's "step" in direction ``sign``: a step
         the other way, or less than half of min_shift_sigma (in the baseline's sigma or
@@ -2286,7 +2373,7 @@ class StreamEngine:
         b = self._baseline
         if ev is None or b is None or self._fitter is None:
             return None
-        fit = self._fit(b)
+        fit = self._fit(b, ev.first_split)
         shown = self._event_fit(ev, b, fit)
         rec = self._record(ev, shown, "undecided", max(as_of, ev.detected_at))
         yp = self._young
@@ -2330,13 +2417,13 @@ class StreamEngine:
         if n == len(self._fitter) and fit.index < ev.trip_len:
             return fit
         last = ev.trip_len - 1
-        if last < FIT_MIN_SEGMENT or n < 2 * FIT_MIN_SEGMENT + 1:
-            return fit if n == len(self._fitter) else self._fit(b)  # too few: clamped on output
+        if last < max(FIT_MIN_SEGMENT, ev.first_split) or n < 2 * FIT_MIN_SEGMENT + 1:
+            return fit if n == len(self._fitter) else self._fit(b, ev.first_split)  # too few: clamped on output
         from shiftwatch.core.stepfit import fit_step
 
         return fit_step(self._fitter.values[:n], self._fitter.times[:n], level=self.settings.interval_level,
                         min_segment=FIT_MIN_SEGMENT, variance_factor=_variance_factor(b.phi),
-                        last_split=last)
+                        last_split=last, first_split=ev.first_split or None)
 
     def _end_event(self, ev: OpenEvent, phase: str, fit: StepFit, result: BatchResult, as_of: float,
                    **extra: Any) -> None:

@@ -403,17 +403,22 @@ class OpenEvent:
 
     ``trip_len`` is the number of samples in the event's fitter at the trip
     (the tripping sample is the last of them), so a refit can tell whether
-    the step it finds began before the detection or after it.
+    the step it finds began before the detection or after it.  ``first_split``
+    is the first sample of the fitter a fit of this event may place the step
+    at: 0, or for an event opened when the samples after an earlier detection
+    showed a step of their own, that detection's ``trip_len`` (the step began
+    after it; a fit over the samples the false trip had raised could date it
+    there).
     """
 
     __slots__ = (
-        "detected_at", "id", "level_after", "level_before", "n_after", "statistic", "test", "threshold",
-        "trial", "trip_len",
+        "detected_at", "first_split", "id", "level_after", "level_before", "n_after", "statistic", "test",
+        "threshold", "trial", "trip_len",
     )
 
     def __init__(self, *, id: str, detected_at: float, test: str, statistic: float,
                  threshold: float, trip_len: int, level_before: float, level_after: float,
-                 trial: EventTrial, n_after: int = 1) -> None:
+                 trial: EventTrial, n_after: int = 1, first_split: int = 0) -> None:
         self.id = id
         self.detected_at = detected_at
         self.test = test
@@ -426,13 +431,14 @@ class OpenEvent:
         self.level_after = level_after  # the new level as first fitted: one centre of the spike check
         self.n_after = n_after  # the samples it was fitted on (the spike band allows for its error)
         self.trial = trial
+        self.first_split = first_split
 
     def get_state(self) -> dict[str, Any]:
         return {"id": self.id, "detected_at": self.detected_at, "test": self.test,
                 "statistic": self.statistic, "threshold": self.threshold,
                 "trip_len": self.trip_len, "level_before": self.level_before,
                 "level_after": self.level_after, "n_after": self.n_after,
-                "trial": self.trial.get_state()}
+                "first_split": self.first_split, "trial": self.trial.get_state()}
 
     @classmethod
     def from_state(cls, e: dict[str, Any], new_trial: Any, level: float) -> OpenEvent:
@@ -447,12 +453,25 @@ class OpenEvent:
                   level_after=_finite(e, "level_after"),
                   trial=new_trial() if trial is None else EventTrial.from_state(trial),
                   # (snapshots before it have none: 1, the widest band)
-                  n_after=int(e.get("n_after", 1)))
+                  n_after=int(e.get("n_after", 1)),
+                  first_split=_first_split(e))
         if out.n_after < 1:
             raise ValueError(f"event.n_after: must be at least 1, got {out.n_after}")
         if out.trip_len < 1:
             raise ValueError(f"event.trip_len: must be at least 1, got {out.trip_len}")
+        if not 0 <= out.first_split < out.trip_len:
+            raise ValueError(f"event.first_split: must be from 0 to trip_len - 1 ({out.trip_len - 1}), "
+                             f"got {out.first_split}")
         return out
+
+
+def _first_split(e: dict[str, Any]) -> int:
+    """A saved event's ``first_split`` (snapshots before it have none: 0, any split);
+    ``ValueError`` names it when it is not a whole number."""
+    v = e.get("first_split", 0)
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not float(v).is_integer():
+        raise ValueError(f"event.first_split: not a whole number ({v!r})")
+    return int(v)
 
 
 def _finite(d: dict[str, Any], key: str) -> float:

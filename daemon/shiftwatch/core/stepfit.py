@@ -767,6 +767,7 @@ def fit_step(
     variance_factor: float = 1.0,
     interval: str = "lr",
     last_split: int | None = None,
+    first_split: int | None = None,
 ) -> StepFit:
     """Fit the exact least-squares single step to a series.
 
@@ -807,6 +808,11 @@ def fit_step(
         that range; ``f_stat`` is the sup-F over that range, and the p-value
         is still that of the sup over ``[pi0, 1 - pi0]``, which is larger (so
         conservative for the shorter range).
+    first_split : int, optional
+        If given, splits are further restricted to ``index >= first_split``
+        (the step of an event opened after an earlier detection that was not
+        this step: it began after that detection); as ``last_split`` for the
+        fit, its interval and its p-value.
 
     Returns
     -------
@@ -845,6 +851,7 @@ def fit_step(
             raise ValueError(f"last_split must be an integer >= {k_lo} (the first admissible split), "
                              f"got {last_split!r}")
         k_hi = min(k_hi, int(last_split))
+    k_lo = _first_split(first_split, k_lo, k_hi)
     t = np.arange(n, dtype=np.float64) if times is None else _as_times(times, n)
     csum = np.empty(n + 1, dtype=np.float64)
     csum[0] = 0.0
@@ -854,6 +861,16 @@ def fit_step(
         y, t, csum, level=level, k_lo=k_lo, k_hi=k_hi, pi0=pi0,
         variance_factor=variance_factor, interval=interval,
     )
+
+
+def _first_split(first_split: int | None, k_lo: int, k_hi: int) -> int:
+    """The first admissible split with ``first_split`` (see :func:`fit_step`)."""
+    if first_split is None:
+        return k_lo
+    if isinstance(first_split, bool) or not isinstance(first_split, Integral) or first_split > k_hi:
+        raise ValueError(f"first_split must be an integer <= {k_hi} (the last admissible split), "
+                         f"got {first_split!r}")
+    return max(k_lo, int(first_split))
 
 
 class StepFitter:
@@ -1046,11 +1063,13 @@ class StepFitter:
         trim: float | None = None,
         variance_factor: float = 1.0,
         interval: str = "lr",
+        first_split: int | None = None,
     ) -> StepFit:
         """Fit one step to the suffix of the window beginning at ``start``.
 
         Indices in the result (``index``, ``index_low``, ``index_high``)
-        count from ``start``.  Options are those of :func:`fit_step`.
+        count from ``start``.  Options are those of :func:`fit_step`
+        (``first_split`` counts from ``start`` too).
 
         Parameters
         ----------
@@ -1069,6 +1088,7 @@ class StepFitter:
         n = b - a
         k_lo, k_hi, pi0 = _check_options(n, level, min_segment, trim, variance_factor)
         _check_interval(interval)
+        k_lo = _first_split(first_split, k_lo, k_hi)
         return _fit_window(
             self._values[a:b], self._times[a:b], self._csum[a : b + 1],
             level=level, k_lo=k_lo, k_hi=k_hi, pi0=pi0,
@@ -1083,6 +1103,7 @@ class StepFitter:
         trim: float | None = None,
         variance_factor: float = 1.0,
         interval: str = "lr",
+        first_split: int | None = None,
     ) -> StepFit:
         """Fit one step to the whole window (see :func:`fit_step`).
 
@@ -1093,5 +1114,5 @@ class StepFitter:
         """
         return self.fit_from(
             0, level=level, min_segment=min_segment, trim=trim,
-            variance_factor=variance_factor, interval=interval,
+            variance_factor=variance_factor, interval=interval, first_split=first_split,
         )
