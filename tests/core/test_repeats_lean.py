@@ -79,7 +79,11 @@ def _watch_run(t: np.ndarray, x: np.ndarray, cuts: list[int], every: float, on: 
     out: list[object] = []
     with _lean(on):
         for a, b in itertools.pairwise([0, *cuts, x.shape[0]]):
-            spans = w.feed(t[a:b], x[a:b], every)
+            try:
+                spans = w.feed(t[a:b], x[a:b], every)
+            except (ValueError, ZeroDivisionError) as exc:  # (see test_a_limit_that_raises_...)
+                out.append((a, type(exc).__name__, str(exc), w.tobytes()))
+                return out
             out.append((spans, w.tobytes()))
     return out
 
@@ -123,6 +127,22 @@ def test_the_watch_agrees_on_hypothesis_readings(state: int, n: int, every: floa
     t, x = _readings(rng, n)
     cuts = _cuts(rng, n)
     assert _watch_run(t, x, cuts, every, True) == _watch_run(t, x, cuts, every, False)
+
+
+@pytest.mark.parametrize("every", [1e308, 0.0])
+def test_a_limit_that_raises_raises_the_same(every: float) -> None:
+    # A false_alarm_every past about 1.8e307 s (its tenfold is infinite: the budget is 0,
+    # whose logarithm raises) or of 0 (a division by zero) makes working out a limit raise;
+    # the lean fold must not skip that, so the same batch raises the same error both ways.
+    rng = np.random.default_rng(156)
+    t, x = T0 + np.arange(2000.0), 500.0 + np.arange(2000.0) * 0.001
+    cuts = list(range(260, 2000, 260))
+    on = _watch_run(t, x, cuts, every, True)
+    assert on == _watch_run(t, x, cuts, every, False)
+    assert len(on[-1]) == 4  # (it raised)
+    t2, x2 = _readings(rng, 1500)
+    cuts2 = _cuts(rng, 1500)
+    assert _watch_run(t2, x2, cuts2, every, True) == _watch_run(t2, x2, cuts2, every, False)
 
 
 _run = functools.partial(batches.switched_run, _lean)

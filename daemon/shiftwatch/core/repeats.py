@@ -62,7 +62,7 @@ _SMALL = 8
 #: first reading compared as a float, and a batch whose runs are all of one
 #: reading folded without working out the least limit (every limit is REPEAT_MIN or more,
 #: so it cannot matter).  False: the reference.  The same state and spans bit for bit
-#: (tests/core/test_repeats_lean.py); about 57,000 to 33,000 instructions a batch of 260
+#: (tests/core/test_repeats_lean.py); about 57,000 to 30,000 instructions a batch of 260
 #: sound readings (callgrind, 2026-12-05).
 LEAN_FEED = True
 #: No run reaches this: the limit of a stream whose readings may not be flagged (yet).
@@ -327,10 +327,20 @@ class RepeatWatch(array):  # type: ignore[type-arg]
                 longest = self._longest(r, cont)
                 # Every limit is REPEAT_MIN or more (run_limit's least, and so _least_limit's):
                 # a batch whose runs are all of one reading folds whatever the limit, which is
-                # then not worked out (the steady state of a sound stream).
+                # then not worked out (the steady state of a sound stream), unless working it
+                # out would raise, as the reference then does: _least_limit takes logarithms of
+                # its budget, interval / (REPEAT_RARER every), only with enough history and a
+                # positive interval, and they raise only for a budget of 0 or NaN (an every
+                # past about 1.8e307 s makes the divisor infinite), or it divides by zero for
+                # an every of 0.  The same numbers as there, in the same order.
                 if longest < REPEAT_MIN - 1:
-                    self._fold(t, x, r, cont, n)
-                    return None
+                    seen = self[_N]
+                    rarer = REPEAT_RARER * every
+                    if seen - self[_P] + n < REPEAT_HISTORY or (
+                            not (interval := (t.item(-1) - self[_F0]) / max(seen - self[_C], 1.0)) > 0.0
+                            or (rarer > 0.0 and interval / rarer > 0.0)):
+                        self._fold(t, x, r, cont, n)
+                        return None
                 low = self._least_limit(t, n, every)
                 if longest < low - 1:
                     self._fold(t, x, r, cont, n)
