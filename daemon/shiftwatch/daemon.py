@@ -99,6 +99,12 @@ POOL_IDLE_S = 0.02
 #: Streams with up to this many samples in a round go through the pool; more make a
 #: batch the engine takes in one call anyway.
 POOL_LAYERS = 4
+#: A stream's arrays from one message of a round reach its engine with the message's
+#: arrival time as one float, not as the array of it the journal keeps: screening then
+#: holds the batch to the arrival limits on its first and last time only
+#: (core/screen.py, ARRIVAL_ENDS), the same decisions.  False: the array, the reference
+#: (tests/daemon/test_one_arrival.py).
+ONE_ARRIVAL = True
 POOL_IDLE_BATCH = 2000
 NEW_STREAM_EVERY = 10.0
 
@@ -402,6 +408,9 @@ class Daemon:
             config=lambda: self.cfg, floor=self.floor, status=self.status, pool=self.pool, tz=self.tz,
             engine_for=lambda name, spec, unit: self.engine_for(name, spec, unit),
             emit=lambda rec, arrived: self.emit(rec, arrived), metrics=self.metrics, log=self.log)
+        # This round's groups made from one message's arrays: stream -> (the arrivals array
+        # _add_columns filled, the message's arrival time); see ONE_ARRIVAL.
+        self._one_arrival: dict[str, tuple[np.ndarray, float]] = {}
 
     @property
     def owner(self) -> Ownership | None:
@@ -880,6 +889,8 @@ class Daemon:
         now = time.time()
         published_before = self.records_published
         self.metrics.messages_received.inc(len(msgs))
+        if self._one_arrival:
+            self._one_arrival.clear()
         # Messages per stream configuration, so each set is decoded in one call.
         by_spec: dict[int, tuple[StreamConfig, list[Message], list[str]]] = {}
         commands = [m for m in msgs if self.floor.is_command(m.topic)]
@@ -1026,6 +1037,8 @@ class Daemon:
                 arr = np.empty(n)
                 arr.fill(arrived)  # np.full's array, without its Python wrapper
                 g[2:5] = [arr if ts is None else ts, vs, arr]
+                if ONE_ARRIVAL:
+                    self._one_arrival[name] = (arr, arrived)
                 return
         if type(g[2]) is not list:
             g[2] = np.concatenate((g[2], np.full(n, arrived) if ts is None else ts))
@@ -1235,14 +1248,17 @@ class Daemon:
             # A stream that brought more than POOL_LAYERS samples this round would leave the
             # pool again on its next such round: it joins after a round of few samples, and
             # saves calm_terms(), join() and take() on each of its batches.
-            self._feed(name, eng, times, values, arrivals, now, rejoin=len(values_list) <= POOL_LAYERS)
+            one = self._one_arrival.get(name) if self._one_arrival else None
+            self._feed(name, eng, times, values, arrivals, now, rejoin=len(values_list) <= POOL_LAYERS,
+                       arrived=one[1] if one is not None and one[0] is arrivals else None)
         return group
 
     def _feed(self, name: str, eng: StreamEngine, times: np.ndarray, values: np.ndarray,
-              arrivals: np.ndarray, now: float, *, rejoin: bool = True) -> None:
+              arrivals: np.ndarray, now: float, *, rejoin: bool = True, arrived: float | None = None) -> None:
         """Run a stream's engine on samples; publish its records; let it join the pool
-        of calm streams when it is calm (``rejoin``)."""
-        res = eng.process(times, values, arrivals)
+        of calm streams when it is calm (``rejoin``).  ``arrived``: the one arrival time
+        every sample has, when known (see ONE_ARRIVAL)."""
+        res = eng.process(times, values, arrivals if arrived is None else arrived)
         for rej in res.rejected:
             if rej.reason != "spike":  # one key per reason: many streams cannot multiply the lines
 

@@ -57,6 +57,14 @@ REPEAT_HISTORY = 200
 REPEAT_PRIOR = 10.0
 #: Batches of at most this many readings go reading by reading (plain floats).
 _SMALL = 8
+#: A batch's repeats found by ``ndarray.nonzero`` (np.flatnonzero's array without its Python
+#: wrappers; the steps between them by one subtraction, np.diff's without its wrapper), its
+#: first reading compared as a float, and a batch whose runs are all of one
+#: reading folded without working out the least limit (every limit is REPEAT_MIN or more,
+#: so it cannot matter).  False: the reference.  The same state and spans bit for bit
+#: (tests/core/test_repeats_lean.py); about 57,000 to 30,000 instructions a batch of 260
+#: sound readings (callgrind, 2026-12-05).
+LEAN_FEED = True
 #: No run reaches this: the limit of a stream whose readings may not be flagged (yet).
 _NEVER = 1 << 62
 _ZERO = np.zeros(1, dtype=np.intp)
@@ -312,12 +320,40 @@ class RepeatWatch(array):  # type: ignore[type-arg]
         if math.isnan(self[_F0]):
             self[_F0] = t.item(0)
         eq = x[1:] == x[:-1]
-        r = np.flatnonzero(eq)  # i: reading i + 1 repeats reading i
-        cont = bool(x[0] == self[_V])
-        low = self._least_limit(t, n, every)
-        if math.isnan(self[_FL]) and self._longest(r, cont) < low - 1:
-            self._fold(t, x, r, cont, n)
-            return None
+        if LEAN_FEED:
+            r = eq.nonzero()[0]  # (np.flatnonzero's array, without its two Python wrappers)
+            cont = x.item(0) == self[_V]  # (the same double compared, no array scalar)
+            if math.isnan(self[_FL]):
+                longest = self._longest(r, cont)
+                # Every limit is REPEAT_MIN or more (run_limit's least, and so _least_limit's):
+                # a batch whose runs are all of one reading folds whatever the limit, which is
+                # then not worked out (the steady state of a sound stream), unless working it
+                # out would raise, as the reference then does: _least_limit takes logarithms of
+                # its budget, interval / (REPEAT_RARER every), only with enough history and a
+                # positive interval, and they raise only for a budget of 0 or NaN (an every
+                # past about 1.8e307 s makes the divisor infinite), or it divides by zero for
+                # an every of 0.  The same numbers as there, in the same order.
+                if longest < REPEAT_MIN - 1:
+                    seen = self[_N]
+                    rarer = REPEAT_RARER * every
+                    if seen - self[_P] + n < REPEAT_HISTORY or (
+                            not (interval := (t.item(-1) - self[_F0]) / max(seen - self[_C], 1.0)) > 0.0
+                            or (rarer > 0.0 and interval / rarer > 0.0)):
+                        self._fold(t, x, r, cont, n)
+                        return None
+                low = self._least_limit(t, n, every)
+                if longest < low - 1:
+                    self._fold(t, x, r, cont, n)
+                    return None
+            else:
+                low = self._least_limit(t, n, every)
+        else:
+            r = np.flatnonzero(eq)  # i: reading i + 1 repeats reading i
+            cont = bool(x[0] == self[_V])
+            low = self._least_limit(t, n, every)
+            if math.isnan(self[_FL]) and self._longest(r, cont) < low - 1:
+                self._fold(t, x, r, cont, n)
+                return None
         # Run by run where a run could reach its limit (and the first, which may go on a
         # flagged run); the runs between, which cannot, folded together.
         starts = np.flatnonzero(~eq) + 1
@@ -342,7 +378,7 @@ class RepeatWatch(array):  # type: ignore[type-arg]
         count = int(self[_C])
         longest = count + 1 if cont else 1
         if r.shape[0]:
-            brk = np.flatnonzero(np.diff(r) != 1)
+            brk = ((r[1:] - r[:-1]) != 1).nonzero()[0] if LEAN_FEED else np.flatnonzero(np.diff(r) != 1)
             firsts = np.concatenate((r[:1], r[brk + 1]))
             lasts = np.concatenate((r[brk], r[-1:]))
             lengths = lasts - firsts + 2
@@ -387,7 +423,7 @@ class RepeatWatch(array):  # type: ignore[type-arg]
         # The last run's first reading: after the last reading unlike its successor.
         j = n - 1
         if k and r.item(-1) == n - 2:
-            tail = np.flatnonzero(np.diff(r) != 1)
+            tail = ((r[1:] - r[:-1]) != 1).nonzero()[0] if LEAN_FEED else np.flatnonzero(np.diff(r) != 1)
             g = r.item(int(tail[-1]) + 1) if tail.shape[0] else r.item(0)
             j = g
         count = self[_C]
@@ -401,7 +437,12 @@ class RepeatWatch(array):  # type: ignore[type-arg]
         added = max(count - 1.0, 0.0) + (1.0 if cont else 0.0) + rr.shape[0]
         # Runs of two or more among them: the current run's, and the groups of rr (the first
         # of which is the current run's when it goes on into the batch).
-        groups = 1 + int(np.count_nonzero(np.diff(rr) != 1)) if rr.shape[0] else 0
+        if not rr.shape[0]:
+            groups = 0
+        elif LEAN_FEED:  # (np.diff's subtraction, without its Python wrapper)
+            groups = 1 + int(np.count_nonzero((rr[1:] - rr[:-1]) != 1))
+        else:
+            groups = 1 + int(np.count_nonzero(np.diff(rr) != 1))
         if cont and rr.shape[0] and rr.item(0) == 0:
             groups -= 1
         groups += 1 if count >= 2.0 or cont else 0

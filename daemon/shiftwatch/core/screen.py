@@ -73,6 +73,14 @@ ARRIVAL_FAST = True
 #: to each other).
 READ_ONCE = True
 
+#: One arrival time for a batch (a float: the daemon's batch from one message) is held to
+#: the limits on the lags of the first and last time only: the times are finite and
+#: strictly increasing there, ``arrived - t`` falls as ``t`` grows and rounding keeps that
+#: order, so the last time's lag is the smallest and the first's the largest, the very
+#: doubles the reductions over every lag find (no array of lags, no reduction).  False:
+#: the lags of every sample, the reference (tests/core/test_screen_one_arrival.py).
+ARRIVAL_ENDS = True
+
 
 class Screened(NamedTuple):
     """Result of :func:`screen_samples`.
@@ -349,6 +357,10 @@ def _arrivals_within(arrived: Any, times: NDArray[np.float64], max_ahead: float 
     within the limits: :func:`_within` on the same lags (one arrival for the batch, or one
     float per sample; any other shape is left to the full path, which reports it)."""
     if type(arrived) is float:
+        if ARRIVAL_ENDS:  # (times finite and increasing here: see ARRIVAL_ENDS)
+            if max_ahead is not None and not arrived - times.item(-1) >= -max_ahead:
+                return False
+            return max_behind is None or arrived - times.item(0) <= max_behind
         lag = arrived - times
     else:
         arr = np.asarray(arrived)
