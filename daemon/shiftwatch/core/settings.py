@@ -31,6 +31,11 @@ CONFIRM_MAX_SAMPLES_MAX = 1_000_000
 #: so larger values change nothing, and near the largest double they overflow.
 CLIP_SIGMA_MAX = 1000.0
 SPIKE_SIGMA_MAX = 10000.0
+#: Longest ``false_alarm_every``, in seconds: 1,000 years of 365.25 days.  The in-control
+#: ARL is held to ARL_RANGE anyway (1e9 samples), so a longer mean time changes no design;
+#: near the largest double (above about 1.8e307 s) the check for runs of one repeated
+#: reading took the logarithm of an overflowed product and raised on every batch.
+FALSE_ALARM_EVERY_MAX = 1000 * 365.25 * 86400.0
 
 #: The range of every whole-number setting, lowest and highest (None: no upper bound), and
 #: why, as the errors give it.  One source of truth: ``DetectionSettings`` enforces it, the
@@ -47,7 +52,7 @@ WHOLE_RANGES: dict[str, tuple[int, int | None, str]] = {
 #: The range of every number setting: (lowest, lowest excluded, highest).
 NUMBER_RANGES: dict[str, tuple[float, bool, float | None]] = {
     "min_shift_sigma": (0.0, True, 4.0),
-    "false_alarm_every": (0.0, True, None),
+    "false_alarm_every": (0.0, True, FALSE_ALARM_EVERY_MAX),
     "clip_sigma": (0.0, True, CLIP_SIGMA_MAX),
     "spike_sigma": (0.0, True, SPIKE_SIGMA_MAX),
     "confirm_precision": (0.0, True, None),
@@ -127,6 +132,8 @@ class DetectionSettings:
             if not isinstance(v, (int, float)) or isinstance(v, bool) or not math.isfinite(v) or v <= low:
                 bad(name, f"must be a positive number, got {v!r}")
             if high is not None and v > high:
+                if name == "false_alarm_every":
+                    bad(name, f"must be at most 1000 years ({high:.0f} s), got {v!r} s")
                 bad(name, f"must be at most {high:g}, got {v!r}")
         for name, (lo, hi, why) in WHOLE_RANGES.items():
             v = getattr(self, name)
