@@ -34,9 +34,10 @@ from shiftwatch.core.settings import (
 #: must be here (checked below), so a new setting cannot skip the walk.
 OUT_OF_RANGE: dict[str, list[str]] = {
     "min_shift_sigma": ["0", "-1", "4.5", ".inf", ".nan", "'big'"],
-    # 1e302 weeks (6e307 s) passed and the engine's repeat check then raised on every batch
-    # ("math domain error"): held to FALSE_ALARM_EVERY_MAX (1,000 years).
-    "false_alarm_every": ["0s", "-5s", "'soon'", "1.0e+302w", "52200w"],
+    # 10**302 weeks (6e307 s, written out: a duration takes no exponent) passed and the
+    # engine's repeat check then raised on every batch ("math domain error"): held to
+    # FALSE_ALARM_EVERY_MAX (1,000 years).
+    "false_alarm_every": ["0s", "-5s", "'soon'", "1.0e+302w", f"{10**302}w", "52200w"],
     "test": ["ewma", "5"],
     "warmup_samples": ["0", "19", "2.5", "true"],
     "window_samples": ["0", "39", str(WINDOW_SAMPLES_MAX + 1), "100000000"],
