@@ -76,6 +76,7 @@ from shiftwatch.core.follow import (
     FOLLOW_MARGIN,
     FOLLOW_RECENTER,
     Follower,
+    _follow_key_terms,
     _follow_se,
     _follow_terms,
     follow_arl_factor,
@@ -115,6 +116,7 @@ from shiftwatch.core.spikes import backed_by_prev, lone_outliers, spike_confirme
 from shiftwatch.core.stepfit import StepFit, StepFitter, anchor_step, supf_critical, supf_pvalue
 from shiftwatch.core.window import Window
 from shiftwatch.core.young import (
+    IDLE_YOUNG,
     YOUNG_SPLIT_BEFORE,
     YOUNG_SPLIT_FROM,
     YOUNG_SPLIT_GATE,
@@ -287,6 +289,12 @@ TRIM_STRETCH = True
 #: of a guard or more): the same doubles.  False: the reference (tests/core/test_read_items.py
 #: holds the two to each other).
 READ_ITEMS = True
+#: An established stream holds no young phase of its own (it shares young.IDLE_YOUNG, read-only,
+#: and takes one of its own before writing one) and its follower keeps the one tuple of delay
+#: and rate of every follower of the same phi and window (follow._follow_key_terms): about
+#: 130 bytes a stream less.  False: the reference, a young phase and a tuple for each engine
+#: (tests/core/test_shared_parts.py holds the two to each other).
+SHARED_PARTS = True
 #: The young loop (StreamEngine._young_loop) tells whether its bank's statistic reaches the
 #: split screen's or the calm fraction of the threshold by comparing each sum, as the
 #: recursion sets it, with the least sum that reaches it (_four_terms), in place of the
@@ -430,7 +438,9 @@ class StreamEngine:
         self._prev_out = 0  # direction in which the last kept sample was an outlier (0: it was not)
         self._event: OpenEvent | None = None
         self._last_step: StepMemory | None = None  # the last confirmed step, to recognise its return
-        self._young = YoungPhase()  # the young level, the provisional flag, the opening split (young.py)
+        # The young level, the provisional flag, the opening split (young.py): the shared idle
+        # phase until the engine writes one (_own_young), and again once it holds nothing.
+        self._young: YoungPhase = IDLE_YOUNG if SHARED_PARTS else YoungPhase()
         self._unfolded = 0  # newest samples not yet folded into the baseline sums
         # The follower's offset each was measured against, as C doubles: a deque of float
         # objects took four times the room (about 2 KB a stream of the daemon's 14).
@@ -727,7 +737,7 @@ class StreamEngine:
         need = (s.warmup_samples - have if have < s.warmup_samples
                 else -(have - s.warmup_samples) % WARM_STRETCH)
         take = int(max(min(need, t.shape[0]), 0))
-        self._young.begin()
+        self._own_young().begin()
         if need > 0:
             used = self._watch_young(t, x, idx, need, result)
             if self._state != WARMING_UP or len(self._window) < have + need:
@@ -746,7 +756,7 @@ class StreamEngine:
                 Rejection(_batch_position(t[:take], idx, float(wt[j])), "spike", float(wt[j]))
                 for j in np.flatnonzero(lone))
             self._window.reset_to(wx[~lone].copy(), wt[~lone].copy())
-            self._young.restart(self._window.values)
+            self._own_young().restart(self._window.values)
             return take
         # A warm-up that holds a clear shift is stretched, WARM_STRETCH samples at a time,
         # while the young tests (the split test above all, which weighs every sample so
@@ -787,14 +797,30 @@ class StreamEngine:
                 Rejection(_batch_position(t[:take], idx, tj), "warmup_shift", tj)
                 for tj in wt[:fit.index].tolist())
             self._window.drop_front(fit.index)
-            self._young.restart(self._window.values)
+            self._own_young().restart(self._window.values)
             return take
         self._start_watching(b)
         return take
 
+    def _own_young(self) -> YoungPhase:
+        """The engine's own young phase, taken in place of the shared idle one before it
+        is written (:data:`.young.IDLE_YOUNG` is read-only)."""
+        yp = self._young
+        if yp is IDLE_YOUNG:
+            yp = self._young = YoungPhase()
+        return yp
+
+    def _idle_young(self) -> None:
+        """The shared idle young phase again once the engine's own holds nothing (no young
+        level, no provisional baseline, no split): an established stream holds none."""
+        yp = self._young
+        if SHARED_PARTS and yp.level is None and not yp.provisional and yp.split is None:
+            self._young = IDLE_YOUNG
+
     def _start_watching(self, b: Baseline) -> None:
         self._baseline = b
         self._young.end()
+        self._idle_young()
         self._state = WATCHING
         # The self-starting test's evidence was measured against another level:
         # the test for the fixed baseline starts afresh.
@@ -1151,6 +1177,7 @@ class StreamEngine:
             except _SplitCalled:
                 (young, n, self._pending, self._prev_out, rejected, records, test, sums, self._test_arl0,
                  self._test_shift_z, self._test_n_ref, self._test_n_level) = mark
+                self._young = yp  # (its own, as when the loop began)
                 yp.level = young
                 win._n = n
                 del result.rejected[rejected:]
@@ -1655,6 +1682,7 @@ class StreamEngine:
         b = self._baseline
         assert b is not None
         ys = self._young.settle()
+        self._idle_young()
         self._baseline = replace(b, level=ys.mean, n_level=ys.level_n() if ys.level_n() < b.n else 0)
         self._prev_r = 0.0 if ys.last is None else ys.last - ys.mean
         self._follower.restart()
@@ -1810,8 +1838,8 @@ class StreamEngine:
         if TRIM_STRETCH and LEAN_CALLS:
             ft = fo.terms
             if ft[0] != phi or ft[1] != self.settings.window_samples:  # (phi: refined now and then)
-                ft = fo.terms = (phi, self.settings.window_samples,
-                                 *_follow_terms(phi, self.settings.window_samples))
+                ft = fo.terms = (_follow_key_terms(phi, self.settings.window_samples) if SHARED_PARTS else
+                                 (phi, self.settings.window_samples, *_follow_terms(phi, self.settings.window_samples)))
             delay, lam = ft[2], ft[3]
         elif LEAN_CALLS:
             delay, lam = _follow_terms(phi, self.settings.window_samples)
@@ -2455,7 +2483,7 @@ class StreamEngine:
         del self._unfolded_u[:]
         self._watch_kept = 0
         self._follower.restart()
-        yp = self._young
+        yp = self._own_young()
         if yp.provisional:
             ys = yp.reanchor(vals.tolist(), None)
             self._baseline = None
@@ -2624,9 +2652,11 @@ class StreamEngine:
             self._last_step = None if ls_ is None else StepMemory.from_state(ls_)
             field_name = "young"
             yg = state.get("young")
-            yp = self._young
-            yp.level = None if yg is None else SelfStart.from_state(yg)
-            yp.provisional = bool(state.get("provisional", False))
+            young_level = None if yg is None else SelfStart.from_state(yg)
+            provisional = bool(state.get("provisional", False))
+            yp = self._own_young()
+            yp.level, yp.provisional = young_level, provisional
+            self._idle_young()
             if (st != WARMING_UP and (self._baseline is None or self._test is None)) or \
                     (st == EVENT_OPEN) != (self._event is not None) or \
                     (self._event is None) != (self._fitter is None):

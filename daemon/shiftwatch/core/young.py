@@ -284,3 +284,40 @@ class YoungPhase:
             ys.add(v)
         self.level = ys
         return ys
+
+
+class _IdleYoung(YoungPhase):
+    """The young phase of every engine whose level is established (no young level, no
+    provisional baseline, no split): one shared, read-only instance, :data:`IDLE_YOUNG`.
+    An engine takes a :class:`YoungPhase` of its own before it writes one
+    (StreamEngine._own_young) and shares this one again once its own holds nothing, so an
+    established stream holds no young phase (56 bytes by tracemalloc, 10,000 streams 0.6 MB).
+
+    >>> IDLE_YOUNG.level is None, IDLE_YOUNG.provisional, IDLE_YOUNG.take_split()
+    (True, False, None)
+    >>> IDLE_YOUNG.begin()
+    Traceback (most recent call last):
+    ...
+    TypeError: the shared idle young phase is read-only (level)
+    """
+
+    __slots__ = ()
+
+    def __setattr__(self, name: str, value: object) -> None:
+        raise TypeError(f"the shared idle young phase is read-only ({name})")
+
+    def __reduce__(self) -> str:  # (copies and pickles are the one instance)
+        return "IDLE_YOUNG"
+
+    def end(self) -> None:
+        """Nothing to end."""
+
+    def take_split(self) -> SplitEvidence | None:
+        """No split."""
+        return None
+
+
+IDLE_YOUNG = _IdleYoung.__new__(_IdleYoung)
+for _name in YoungPhase.__slots__:
+    object.__setattr__(IDLE_YOUNG, _name, False if _name == "provisional" else None)
+del _name
