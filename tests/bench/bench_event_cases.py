@@ -81,10 +81,14 @@ import sys
 import tempfile
 import time
 from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
 
 import numpy as np
 
 from shiftwatch.core.engine import StreamEngine
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from bench_record_claims import siegmund_h  # this folder is first on the path
 
 T0 = 1_788_000_000.0
 AT = 1500
@@ -104,20 +108,6 @@ def feed(t: np.ndarray, x: np.ndarray, batch: int = BATCH) -> tuple[list, collec
         recs += res.records
         rej.update(r.reason for r in res.rejected)
     return recs, rej
-
-
-def siegmund_h(k: float, arl: float) -> float:
-    """h of a two-sided CUSUM (each side ARL 2 arl) by Siegmund's approximation
-    ARL = (exp(2kb) - 2kb - 1) / (2k^2), b = h + 1.166 (Montgomery ch. 9)."""
-    lo, hi = 0.0, 200.0
-    for _ in range(200):
-        m = 0.5 * (lo + hi)
-        b = m + 1.166
-        if (math.exp(2 * k * b) - 2 * k * b - 1) / (2 * k * k) < 2 * arl:
-            lo = m
-        else:
-            hi = m
-    return 0.5 * (lo + hi)
 
 
 def oracle_delay(z: np.ndarray, start: int, at: int, k: float, h: float) -> float:

@@ -21,6 +21,7 @@ import numpy as np
 import pytest
 
 from shiftwatch.core.engine import StreamEngine
+from shiftwatch.core.records import AlertRecord
 from shiftwatch.display import alert_summary, clock
 
 T0 = 1_772_409_600.0
@@ -33,6 +34,23 @@ def feed(x: np.ndarray, t: np.ndarray) -> list:
     for i in range(0, x.shape[0], 50):
         recs += eng.process(t[i:i + 50], x[i:i + 50]).records
     return recs
+
+
+def confirmed_in_pause(state: int, *, minute_before: bool = False) -> tuple[np.ndarray, AlertRecord]:
+    """A 3-sigma step (1.5 on noise of 0.5) at reading 1,000 of 1,600, just after a pause
+    of PAUSE (and a pause of a minute two readings before it with ``minute_before``): the
+    times and the one confirmed record."""
+    rng = np.random.default_rng(state)
+    x = 500.0 + 0.5 * rng.standard_normal(1600)
+    x[1000:] += 1.5
+    t = T0 + np.arange(1600.0)
+    if minute_before:
+        t[998:] += 60.0
+    t[1000:] += PAUSE
+    recs = feed(x, t)
+    conf = [r for r in recs if r.phase == "confirmed"]
+    assert len(conf) == 1, [r.phase for r in recs]
+    return t, conf[0]
 
 
 @pytest.mark.parametrize("state", [1, 2, 3, 4, 5])
@@ -92,15 +110,7 @@ def test_a_step_whose_interval_spans_the_pause_names_it_too(state: int) -> None:
     # at the last reading before the pause, "detected 6.0 h later"), nothing of the pause
     # the step may have come in: 26 of the 60 streams at each pause length.  These states
     # failed so before: the interval reaches from before the pause to after it.
-    rng = np.random.default_rng(state)
-    x = 500.0 + 0.5 * rng.standard_normal(1600)
-    x[1000:] += 1.5
-    t = T0 + np.arange(1600.0)
-    t[1000:] += PAUSE
-    recs = feed(x, t)
-    conf = [r for r in recs if r.phase == "confirmed"]
-    assert len(conf) == 1, [r.phase for r in recs]
-    rec = conf[0]
+    t, rec = confirmed_in_pause(state)
     assert rec.shift_at_low < t[1000] <= rec.shift_at_high  # the interval spans the pause
     assert rec.gap_from == t[999]
     assert rec.to_dict()["gap_from"] == "2026-03-02T00:16:39.000Z"
@@ -118,17 +128,9 @@ def test_a_step_whose_interval_spans_the_pause_names_it_too(state: int) -> None:
 def test_of_two_pauses_inside_the_interval_the_longer_is_named() -> None:
     # A pause of a minute two readings before the step's pause of 6 hours: the record
     # names the longer one, whose start the fit's interval holds too.
-    rng = np.random.default_rng(10)
-    x = 500.0 + 0.5 * rng.standard_normal(1600)
-    x[1000:] += 1.5
-    t = T0 + np.arange(1600.0)
-    t[998:] += 60.0
-    t[1000:] += PAUSE
-    recs = feed(x, t)
-    conf = [r for r in recs if r.phase == "confirmed"]
-    assert len(conf) == 1, [r.phase for r in recs]
-    assert conf[0].shift_at_low <= t[998]
-    assert conf[0].gap_from == t[999]
+    t, rec = confirmed_in_pause(10, minute_before=True)
+    assert rec.shift_at_low <= t[998]
+    assert rec.gap_from == t[999]
 
 
 @pytest.mark.parametrize("state", [2, 14])
@@ -138,15 +140,7 @@ def test_a_split_after_the_first_reading_past_the_pause_is_not_called_that_readi
     # reading after 6 h without readings, since 00:16:39Z)": 06:16:42Z is the third reading
     # after the pause, not the first.  The truth is the data's construction (readings
     # before the pause at the old level, after it at the new one).
-    rng = np.random.default_rng(state)
-    x = 500.0 + 0.5 * rng.standard_normal(1600)
-    x[1000:] += 1.5
-    t = T0 + np.arange(1600.0)
-    t[1000:] += PAUSE
-    recs = feed(x, t)
-    conf = [r for r in recs if r.phase == "confirmed"]
-    assert len(conf) == 1, [r.phase for r in recs]
-    rec = conf[0]
+    t, rec = confirmed_in_pause(state)
     assert rec.gap_from == t[999] and rec.shift_at_low == t[1000] < rec.shift_at  # the case in question
     text = alert_summary(rec)
     first, at = clock(t[1000], today=rec.as_of), clock(rec.shift_at, today=rec.as_of)
