@@ -73,12 +73,8 @@ from __future__ import annotations
 
 import argparse
 import collections
-import json
 import math
-import os
-import subprocess
 import sys
-import tempfile
 import time
 from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
@@ -88,7 +84,8 @@ import numpy as np
 from shiftwatch.core.engine import StreamEngine
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from bench_record_claims import siegmund_h  # this folder is first on the path
+from bench_record_claims import oracle_delay, siegmund_h  # this folder is first on the path
+from bench_sensor_faults import run_cli
 
 T0 = 1_788_000_000.0
 AT = 1500
@@ -108,21 +105,6 @@ def feed(t: np.ndarray, x: np.ndarray, batch: int = BATCH) -> tuple[list, collec
         recs += res.records
         rej.update(r.reason for r in res.rejected)
     return recs, rej
-
-
-def oracle_delay(z: np.ndarray, start: int, at: int, k: float, h: float) -> float:
-    """Readings from ``at`` to the oracle's first alarm at or after it on ``z``
-    (standardised on the true level before ``at``), the sums started from zero at
-    ``start`` and restarted after each alarm before ``at`` (math.inf: none)."""
-    cp = cm = 0.0
-    for i, v in enumerate(z[start:].tolist(), start):
-        cp = max(0.0, cp + v - k)
-        cm = max(0.0, cm - v - k)
-        if cp > h or cm > h:
-            if i >= at:
-                return float(i - at)
-            cp = cm = 0.0
-    return math.inf
 
 
 def binseg(x: np.ndarray, n_bkps: int) -> list[int]:
@@ -167,7 +149,7 @@ def _close(args: tuple[int, float, float, int]) -> dict:
     out["rup1"] = min(abs(lo + v - AT) for v in b)
     out["rup2"] = min(abs(lo + v - AT - gap) for v in b)
     # the oracle knows the level between the steps and sigma, and starts at the first step
-    out["oracle2"] = oracle_delay(x - 20.0 - sign * size, AT, AT + gap, size / 2, siegmund_h(size / 2, ARL))
+    out["oracle2"] = oracle_delay(x - 20.0 - sign * size, AT + gap, size / 2, siegmund_h(size / 2, ARL), start=AT)
     return out
 
 
@@ -186,7 +168,7 @@ def _excursion(args: tuple[int, float, int]) -> tuple[str, bool, bool]:
     last = [r for r in fin if r.phase in ("confirmed", "returned", "undecided")]
     lasting = bool(last) and abs(last[-1].level_after - 20.0) > 0.5 * size
     k = size / 2
-    oracle = oracle_delay(x - 20.0, 0, AT, k, siegmund_h(k, ARL)) <= length + 5
+    oracle = oracle_delay(x - 20.0, AT, k, siegmund_h(k, ARL)) <= length + 5
     return pattern, lasting, oracle
 
 
@@ -319,17 +301,6 @@ def _pct(v: list[float], q: float) -> str:
     return f"{np.percentile(a, q):.0f}" if a.size else "-"
 
 
-def run_cli(t: np.ndarray, x: np.ndarray) -> list[dict]:
-    with tempfile.TemporaryDirectory() as d:
-        p = os.path.join(d, "history.csv")
-        with open(p, "w") as f:
-            f.write("time,stream,value\n")
-            f.writelines(f"{ti:.3f},bench/case,{float(xi)!r}\n" for ti, xi in zip(t, x, strict=True))
-        out = subprocess.run([sys.executable, "-m", "shiftwatch", "replay", p], capture_output=True,
-                             text=True, check=False)
-        return [json.loads(line) for line in out.stdout.splitlines() if line.strip()]
-
-
 def main() -> int:
     ap = argparse.ArgumentParser()
     ap.add_argument("--states", type=int, default=60, help="random states a cell")
@@ -454,7 +425,7 @@ def main() -> int:
             x[AT + 60:] -= sign * 2.0
             t = T0 + np.arange(float(N))
             core, _ = feed(t, x)
-            cli = run_cli(t, x)
+            cli = run_cli(t, x, "bench/case")
             want = [(d["phase"], d["shift_at"], d["delta"]) for d in (r.to_dict() for r in core)]
             got = [(d["phase"], d["shift_at"], d["delta"]) for d in cli]
             same += want == got

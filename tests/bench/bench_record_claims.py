@@ -53,9 +53,12 @@ def siegmund_h(k: float, arl: float) -> float:
     return 0.5 * (lo + hi)
 
 
-def oracle_delay(z: np.ndarray, at: int, k: float, h: float) -> float:
+def oracle_delay(z: np.ndarray, at: int, k: float, h: float, start: int = 0) -> float:
+    """Readings from ``at`` to a textbook two-sided CUSUM's first alarm at or after it on
+    ``z`` (standardised on the true level before ``at``), the sums started from zero at
+    ``start`` and restarted after each alarm before ``at`` (math.inf: none)."""
     cp = cm = 0.0
-    for i, v in enumerate(z.tolist()):
+    for i, v in enumerate(z[start:].tolist(), start):
         cp = max(0.0, cp + v - k)
         cm = max(0.0, cm - v - k)
         if cp > h or cm > h:

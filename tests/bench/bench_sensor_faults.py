@@ -107,12 +107,13 @@ def run_engine(t: np.ndarray, x: np.ndarray, batch: int = 50) -> tuple[list[dict
     return [r.to_dict() | {"summary": alert_summary(r), "_as_of": r.as_of} for r in recs], eng
 
 
-def run_cli(t: np.ndarray, x: np.ndarray) -> list[dict]:
+def run_cli(t: np.ndarray, x: np.ndarray, stream: str = STREAM) -> list[dict]:
+    """The records of ``shiftwatch replay`` (a subprocess) on a long CSV of one stream."""
     with tempfile.TemporaryDirectory() as d:
         p = os.path.join(d, "history.csv")
         with open(p, "w") as f:
             f.write("time,stream,value\n")
-            f.writelines(f"{ti:.3f},{STREAM},{float(xi)!r}\n" for ti, xi in zip(t, x, strict=True))
+            f.writelines(f"{ti:.3f},{stream},{float(xi)!r}\n" for ti, xi in zip(t, x, strict=True))
         out = subprocess.run([sys.executable, "-m", "shiftwatch", "replay", p], capture_output=True,
                              text=True, check=False)
         return [json.loads(line) for line in out.stdout.splitlines() if line.strip()]
