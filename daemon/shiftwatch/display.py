@@ -174,7 +174,7 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
         # a step across a pause in the readings that ends where its interval begins (the
         # fit's split may lie a reading or two later: then the first reading is named too)
         first = "" if rec.shift_at <= rec.shift_at_low else f"or from {clock(rec.shift_at_low, tz, today=ref)}, "
-        at += (f" ({first}the first reading after {format_duration(rec.shift_at_low - rec.gap_from)} without "
+        at += (f" ({first}the first reading after {human_duration(rec.shift_at_low - rec.gap_from)} without "
                f"readings, since {clock(rec.gap_from, tz, today=ref)})")
     elif rec.gap_from is not None:  # the interval holds the pause: the step may lie in it
         at += (f" (the step may lie anywhere from {clock(rec.shift_at_low, tz, today=ref)} to "
