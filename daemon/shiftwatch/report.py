@@ -53,6 +53,7 @@ from shiftwatch.core.timefmt import format_duration
 from shiftwatch.display import (
     NO_NOISE,
     fault_text,
+    human_duration,
     human_number,
     sigmas_text,
     stamp,
@@ -928,11 +929,19 @@ def _signed_duration(seconds: float) -> str:
 
 
 def _interval_text(rec: AlertRecord, time_zone: str = "UTC") -> str:
-    """The shift-time interval; its end without the date when that is the same."""
+    """The shift-time interval; its end without the date when that is the same; and a
+    pause in the readings where it begins or inside it (``gap_from``), as the summary
+    names it: the step may have come at any moment of the pause."""
     low, high = stamp(rec.shift_at_low, time_zone), stamp(rec.shift_at_high, time_zone)
     if low[:11] == high[:11]:
         high = high[11:]
-    return f"{low} to {high} ({rec.interval_level:.0%})"
+    text = f"{low} to {high} ({rec.interval_level:.0%})"
+    if rec.gap_from is not None and rec.gap_from < rec.shift_at_low:
+        text += (f", the first reading after {human_duration(rec.shift_at_low - rec.gap_from)} without "
+                 f"readings, since {stamp(rec.gap_from, time_zone)}")
+    elif rec.gap_from is not None:
+        text += f"; the readings paused inside it, after {stamp(rec.gap_from, time_zone)}"
+    return text
 
 
 def _head(sources: Sequence[str], settings_note: str, time_zone: str = "UTC", unread: Sequence[str] = (),
