@@ -1236,7 +1236,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--version", action="version", version=f"shiftwatch {__version__}")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
 
-    r = sub.add_parser("replay", help="run CSV files through the detection engine and print alert records")
+    r = sub.add_parser("replay", help="run CSV or Parquet files (or directories of them) through the detection "
+                                      "engine and print alert records")
     r.add_argument("--config", help="YAML configuration (detection settings); defaults without it")
     r.add_argument("--out", type=_path, help="write JSON lines here instead of stdout ('-': stdout)")
     r.add_argument("--report", type=_path, metavar="DIR",

@@ -121,3 +121,12 @@ def test_fit_of_readings_without_a_pause_names_none(cli, tmp_path: Path) -> None
     assert "gap_from" not in json.loads(js.stdout)
     assert "without readings" not in text.stdout and "paused" not in text.stdout
     assert text.stdout.startswith(f"{STREAM}: one step at "), text.stdout
+
+
+def test_the_command_list_says_replay_reads_parquet_too(cli) -> None:
+    # A new user's first look (2026-12-05): `shiftwatch --help` said replay runs "CSV files",
+    # while `replay --help` and the README take CSV or Parquet files and directories of them.
+    res = cli("--help")
+    assert res.returncode == 0, res.stderr
+    text = " ".join(res.stdout.split())
+    assert "replay run CSV or Parquet files (or directories of them) through the detection engine" in text, text
