@@ -1036,19 +1036,17 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
     out.append("</tbody>\n</table>\n")
 
     out.append('<h2 id="streams">Streams</h2>\n<table class="streams">\n<thead><tr><th>stream</th>'
-               "<th>samples</th><th>rejected</th><th>events</th><th>confirmed</th><th>dismissed</th>"
-               "<th>open</th></tr></thead>\n<tbody>\n")
+               "<th>samples</th><th>rejected</th><th>events</th><th>confirmed</th><th>returned</th>"
+               "<th>dismissed</th><th>undecided</th><th>open</th></tr></thead>\n<tbody>\n")
     for i, t in enumerate(traces):
         evs = all_events[t.name]
         n = {k: sum(ev.outcome == k for ev in evs) for k in counts}
         out.append(f'<tr><td>{_stream_link(i, t.name, charted)}</td><td class="n">{samples.get(t.name, 0):,}</td>'
                    f'<td class="n">{sum(rejected.get(t.name, {}).values()):,}</td><td class="n">{len(evs)}</td>'
-                   f'<td class="n">{n["confirmed"]}</td><td class="n">{n["dismissed"]}</td>'
-                   f'<td class="n">{n["open"]}</td></tr>\n')
+                   + "".join(f'<td class="n">{n[k]}</td>' for k in counts) + "</tr>\n")
     out.append(f'</tbody>\n<tfoot><tr><td>total</td><td class="n">{total_samples:,}</td>'
                f'<td class="n">{total_rejected:,}</td><td class="n">{total_events}</td>'
-               f'<td class="n">{counts["confirmed"]}</td><td class="n">{counts["dismissed"]}</td>'
-               f'<td class="n">{counts["open"]}</td></tr></tfoot>\n</table>\n')
+               + "".join(f'<td class="n">{counts[k]}</td>' for k in counts) + "</tr></tfoot>\n</table>\n")
 
     out.append(_repeats_table(traces, time_zone, charted))
     out.append('<h2 id="events">Events</h2>\n<table class="events">\n<thead><tr><th>#</th><th>outcome</th>'

@@ -40,3 +40,40 @@ def test_the_events_table_names_the_pause_before_a_step(cli, tmp_path: Path) -> 
             for r in re.findall(r'<tr class="event .*?</tr>', page, re.DOTALL)]
     assert len(rows) == 1, rows
     assert f"the first reading after 30 min without readings, since {format_time(t[1199])}" in rows[0], rows[0]
+
+
+def test_the_streams_table_counts_every_outcome_so_a_row_adds_up(cli, tmp_path: Path) -> None:
+    # The same trial: a filler's fill weight went up 2 g for a minute and came back
+    # (confirmed, then returned), and later stepped up across the stop (confirmed).  The
+    # Streams table read "events 3, confirmed 2, dismissed 0, open 0": the returned step was
+    # in no column, and the row did not add up.  Truth: the records' own phases.
+    rng = np.random.default_rng(20261205)
+    x = 500.0 + 0.5 * rng.standard_normal(4200)
+    x[1500:1560] += 2.0
+    x[2400:] += 1.2
+    t = 1_796_000_000.0 + np.arange(4200.0)
+    t[2400:] += 1800.0
+    data = tmp_path / "excursion.csv"
+    with open(data, "w", encoding="utf-8") as f:
+        f.write("time,stream,value\n")
+        f.writelines(f"{ti:.0f},{STREAM},{v!r}\n" for ti, v in zip(t.tolist(), x.tolist(), strict=True))
+    res = cli("replay", "--jobs", "1", "--report", str(tmp_path / "report"), "--out", str(tmp_path / "r.jsonl"),
+              str(data))
+    assert res.returncode == 0, res.stderr[-2000:]
+    import json
+    phases = [json.loads(line)["phase"] for line in (tmp_path / "r.jsonl").read_text().splitlines()]
+    finals = [p for p in phases if p != "detected"]
+    assert "returned" in finals, phases
+    page = (tmp_path / "report" / "report.html").read_text(encoding="utf-8")
+    table = re.search(r'<table class="streams">.*?</table>', page, re.DOTALL)
+    assert table is not None
+    head = [html.unescape(c) for c in re.findall(r"<th>(.*?)</th>", table.group(0).split("</thead>")[0])]
+    assert head == ["stream", "samples", "rejected", "events", "confirmed", "returned", "dismissed",
+                    "undecided", "open"], head
+    body = table.group(0).split("<tbody>")[1].split("</tbody>")[0]
+    cells = [re.sub(r"<[^>]+>", "", c).replace(",", "") for c in re.findall(r"<td[^>]*>(.*?)</td>", body)]
+    row = dict(zip(head, cells, strict=True))
+    assert int(row["events"]) == len(phases) - len(finals) == 3, row
+    for outcome in ("confirmed", "returned", "dismissed", "undecided"):
+        assert int(row[outcome]) == finals.count(outcome), (outcome, row, finals)
+    assert sum(int(row[k]) for k in head[4:]) == int(row["events"]), row
