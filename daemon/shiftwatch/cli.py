@@ -783,7 +783,9 @@ def _fit_text(d: dict[str, Any], fit: Any, gap_from: float | None = None) -> str
             f"{fit.n_after} samples)\n"
             f"  step {'+' if fit.delta >= 0 else ''}{num(fit.delta)} ({num(fit.delta_sigma, 3)} sigma; "
             f"sigma {num(fit.sigma, 3)})\n"
-            f"  one step against none: F {num(fit.f_stat, 4)}, p-value {fit.p_value:.2g}\n"
+            f"  one step against none: F {num(fit.f_stat, 4)}, p-value "
+            # a p-value is never 0: one that underflowed the double is below its range ("p-value 0" before)
+            f"{'below 1e-300' if fit.p_value < 1e-300 else format(fit.p_value, '.2g')}\n"
             "(rounded for reading; --json gives every figure in full)")
 
 

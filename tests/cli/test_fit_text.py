@@ -130,3 +130,17 @@ def test_the_command_list_says_replay_reads_parquet_too(cli) -> None:
     assert res.returncode == 0, res.stderr
     text = " ".join(res.stdout.split())
     assert "replay run CSV or Parquet files (or directories of them) through the detection engine" in text, text
+
+
+def test_a_p_value_too_small_for_a_double_is_not_printed_as_zero(cli, tmp_path: Path) -> None:
+    # A new user's half-hour stop (2026-12-05) with a 2 g step on 0.5 g of noise over 2,400
+    # readings: fit printed "p-value 0", which no test of one step against none can give
+    # (a p-value is a probability of a statistic at least as large under "no step": never 0).
+    # The double underflowed (smallest positive double about 4.9e-324, IEEE 754 binary64).
+    path, _, _ = _stopped_line(tmp_path / "stop.csv", 2.0, 1)
+    js = cli("fit", str(path), "--json")
+    text = cli("fit", str(path))
+    assert js.returncode == 0 and text.returncode == 0, js.stderr + text.stderr
+    assert json.loads(js.stdout)["p_value"] == 0.0  # the case in question: underflowed
+    assert "p-value 0\n" not in text.stdout, text.stdout
+    assert "one step against none: F " in text.stdout and ", p-value below 1e-300\n" in text.stdout, text.stdout
