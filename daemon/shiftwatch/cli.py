@@ -658,6 +658,7 @@ def _replay_summary(args: argparse.Namespace, report: Any, result: Any, unit_for
 def cmd_fit(args: argparse.Namespace) -> int:
     import numpy as np
 
+    from shiftwatch.core.engine import pause_before
     from shiftwatch.core.screen import REASONS, screen_series
     from shiftwatch.core.settings import DetectionSettings
     from shiftwatch.core.stepfit import fit_step
@@ -738,23 +739,36 @@ def cmd_fit(args: argparse.Namespace) -> int:
         "f_stat": fit.f_stat,
         "p_value": fit.p_value,
     }
+    # A pause in the readings (a line stopped) where the interval begins, or inside it: the
+    # step may have come at any moment of it, as replay's records say (gap_from).
+    gap_from = pause_before(t, fit.shift_at_low, fit.shift_at_high) if t.shape[0] >= 3 else None
+    if gap_from is not None:
+        d["gap_from"] = format_time(gap_from)
     if args.json:
         # JSON carries no infinity or NaN (RFC 8259, section 6): a reading with no noise at all
         # has an infinite delta_sigma and F statistic, written as null.
         print(json.dumps({k: None if isinstance(v, float) and not math.isfinite(v) else v
                           for k, v in d.items()}))
     else:
-        print(_shown(_fit_text(d, fit)))  # a stream name from the file, escaped for the terminal
+        print(_shown(_fit_text(d, fit, gap_from)))  # a stream name from the file, escaped for the terminal
     return EXIT_BAD_DATA if problems else EXIT_OK
 
 
-def _fit_text(d: dict[str, Any], fit: Any) -> str:
+def _fit_text(d: dict[str, Any], fit: Any, gap_from: float | None = None) -> str:
     """The fitted step for a person: five significant figures (``--json`` keeps them all)."""
+    from shiftwatch.display import human_duration
     from shiftwatch.display import human_number as num
 
     low, high = d["shift_at_low"], d["shift_at_high"]
     if low[:11] == high[:11]:
         high = high[11:]
+    pause = ""
+    if gap_from is not None and gap_from < fit.shift_at_low:
+        pause = (f"  the first reading after {human_duration(fit.shift_at_low - gap_from)} "
+                 f"without readings, since {d['gap_from']}: the step may have come at any moment of the pause\n")
+    elif gap_from is not None:
+        pause = (f"  the readings paused after {d['gap_from']}, inside the interval: the step may lie "
+                 "anywhere in it\n")
     if fit.p_value < 1.0 - fit.interval_level:
         head = f"{d['stream']}: one step at {d['shift_at']}"
     else:  # chance alone offers a split this good: say so before its figures
@@ -762,13 +776,16 @@ def _fit_text(d: dict[str, Any], fit: Any) -> str:
                 f"the best single split is at {d['shift_at']}")
     return (f"{head}\n"
             f"  shift-time interval ({fit.interval_level:.0%}): {low} to {high}\n"
+            f"{pause}"
             f"  level before {num(fit.level_before)} (standard error {num(fit.level_before_se, 2)}, "
             f"{fit.n_before} samples)\n"
             f"  level after  {num(fit.level_after)} (standard error {num(fit.level_after_se, 2)}, "
             f"{fit.n_after} samples)\n"
             f"  step {'+' if fit.delta >= 0 else ''}{num(fit.delta)} ({num(fit.delta_sigma, 3)} sigma; "
             f"sigma {num(fit.sigma, 3)})\n"
-            f"  one step against none: F {num(fit.f_stat, 4)}, p-value {fit.p_value:.2g}\n"
+            f"  one step against none: F {num(fit.f_stat, 4)}, p-value "
+            # a p-value is never 0: one that underflowed the double is below its range ("p-value 0" before)
+            f"{'below 1e-300' if fit.p_value < 1e-300 else format(fit.p_value, '.2g')}\n"
             "(rounded for reading; --json gives every figure in full)")
 
 
@@ -1221,7 +1238,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--version", action="version", version=f"shiftwatch {__version__}")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
 
-    r = sub.add_parser("replay", help="run CSV files through the detection engine and print alert records")
+    r = sub.add_parser("replay", help="run CSV or Parquet files (or directories of them) through the detection "
+                                      "engine and print alert records")
     r.add_argument("--config", help="YAML configuration (detection settings); defaults without it")
     r.add_argument("--out", type=_path, help="write JSON lines here instead of stdout ('-': stdout)")
     r.add_argument("--report", type=_path, metavar="DIR",

@@ -264,6 +264,8 @@ def _run(broker: Any, version: str, kind: str, duration: float, out: TextIO, met
           f"steps {'up' if size > 0 else 'down'} {abs(size):g} {unit} ({cause})\n")
     w(f"  alerts   MQTT {PREFIX}/alerts/<stream>; levels {PREFIX}/levels/<stream>; commands "
       f"{PREFIX}/commands/<command>\n")
+    w("  sizes    each alert gives the step in the reading's unit and in sigmas: one sigma is the reading's\n"
+      "           ordinary noise (its standard deviation), so a 1 sigma step is hard to see by eye on a trend\n")
     w(f"  {ADVISORY}\n\n")
     out.flush()
     def on_message(topic: str, payload: bytes) -> None:

@@ -174,7 +174,7 @@ def alert_summary(rec: AlertRecord, label: str | None = None, tz: str = "UTC", *
         # a step across a pause in the readings that ends where its interval begins (the
         # fit's split may lie a reading or two later: then the first reading is named too)
         first = "" if rec.shift_at <= rec.shift_at_low else f"or from {clock(rec.shift_at_low, tz, today=ref)}, "
-        at += (f" ({first}the first reading after {format_duration(rec.shift_at_low - rec.gap_from)} without "
+        at += (f" ({first}the first reading after {human_duration(rec.shift_at_low - rec.gap_from)} without "
                f"readings, since {clock(rec.gap_from, tz, today=ref)})")
     elif rec.gap_from is not None:  # the interval holds the pause: the step may lie in it
         at += (f" (the step may lie anywhere from {clock(rec.shift_at_low, tz, today=ref)} to "
@@ -305,16 +305,18 @@ def _decimals(text: str) -> int:
 def _same_decimals(ta: str, a: float, tb: str, b: float) -> tuple[str, str]:
     """Two levels written with ``.5g``, a trailing zero it dropped from one put back so
     both show the same decimals ("500.02 -> 501.30"), each only as far as its own five
-    significant figures reach (12345 takes no decimals from 0.5).
+    significant figures reach (12345 takes no decimals from 0.5).  A level that the five
+    figures round keeps their zeros ("500.00", not "500"): before, levels of 499.9951 and
+    502.2031 read "500.0 -> 502.2", both a zero short, as neither could lend its decimals.
 
     >>> _same_decimals("500.02", 500.02, "501.3", 501.3), _same_decimals("12345", 12345.0, "0.5", 0.5)
     (('500.02', '501.30'), ('12345', '0.5'))
-    >>> _same_decimals("499.98", 499.98, "0", 0.0)
-    ('499.98', '0')
+    >>> _same_decimals("499.98", 499.98, "0", 0.0), _same_decimals("500", 499.9951, "502.2", 502.2031)
+    (('499.98', '0'), ('500.00', '502.20'))
     """
     if "e" in ta or "e" in tb or "n" in ta or "n" in tb:  # exponent form, inf or nan
         return ta, tb
-    want = max(_decimals(ta), _decimals(tb))
+    want = max(_decimals(t if float(t) == x else f"{x:#.5g}") for t, x in ((ta, a), (tb, b)))
     out = []
     for text, x in ((ta, a), (tb, b)):
         if x == 0.0:  # an exact zero (a sensor stuck at 0) gains nothing from zeros after it

@@ -53,6 +53,7 @@ from shiftwatch.core.timefmt import format_duration
 from shiftwatch.display import (
     NO_NOISE,
     fault_text,
+    human_duration,
     human_number,
     sigmas_text,
     stamp,
@@ -928,11 +929,19 @@ def _signed_duration(seconds: float) -> str:
 
 
 def _interval_text(rec: AlertRecord, time_zone: str = "UTC") -> str:
-    """The shift-time interval; its end without the date when that is the same."""
+    """The shift-time interval; its end without the date when that is the same; and a
+    pause in the readings where it begins or inside it (``gap_from``), as the summary
+    names it: the step may have come at any moment of the pause."""
     low, high = stamp(rec.shift_at_low, time_zone), stamp(rec.shift_at_high, time_zone)
     if low[:11] == high[:11]:
         high = high[11:]
-    return f"{low} to {high} ({rec.interval_level:.0%})"
+    text = f"{low} to {high} ({rec.interval_level:.0%})"
+    if rec.gap_from is not None and rec.gap_from < rec.shift_at_low:
+        text += (f", the first reading after {human_duration(rec.shift_at_low - rec.gap_from)} without "
+                 f"readings, since {stamp(rec.gap_from, time_zone)}")
+    elif rec.gap_from is not None:
+        text += f"; the readings paused inside it, after {stamp(rec.gap_from, time_zone)}"
+    return text
 
 
 def _head(sources: Sequence[str], settings_note: str, time_zone: str = "UTC", unread: Sequence[str] = (),
@@ -1027,19 +1036,17 @@ def _summary(traces: list[StreamTrace], samples: dict[str, int], rejected: dict[
     out.append("</tbody>\n</table>\n")
 
     out.append('<h2 id="streams">Streams</h2>\n<table class="streams">\n<thead><tr><th>stream</th>'
-               "<th>samples</th><th>rejected</th><th>events</th><th>confirmed</th><th>dismissed</th>"
-               "<th>open</th></tr></thead>\n<tbody>\n")
+               "<th>samples</th><th>rejected</th><th>events</th><th>confirmed</th><th>returned</th>"
+               "<th>dismissed</th><th>undecided</th><th>open</th></tr></thead>\n<tbody>\n")
     for i, t in enumerate(traces):
         evs = all_events[t.name]
         n = {k: sum(ev.outcome == k for ev in evs) for k in counts}
         out.append(f'<tr><td>{_stream_link(i, t.name, charted)}</td><td class="n">{samples.get(t.name, 0):,}</td>'
                    f'<td class="n">{sum(rejected.get(t.name, {}).values()):,}</td><td class="n">{len(evs)}</td>'
-                   f'<td class="n">{n["confirmed"]}</td><td class="n">{n["dismissed"]}</td>'
-                   f'<td class="n">{n["open"]}</td></tr>\n')
+                   + "".join(f'<td class="n">{n[k]}</td>' for k in counts) + "</tr>\n")
     out.append(f'</tbody>\n<tfoot><tr><td>total</td><td class="n">{total_samples:,}</td>'
                f'<td class="n">{total_rejected:,}</td><td class="n">{total_events}</td>'
-               f'<td class="n">{counts["confirmed"]}</td><td class="n">{counts["dismissed"]}</td>'
-               f'<td class="n">{counts["open"]}</td></tr></tfoot>\n</table>\n')
+               + "".join(f'<td class="n">{counts[k]}</td>' for k in counts) + "</tr></tfoot>\n</table>\n")
 
     out.append(_repeats_table(traces, time_zone, charted))
     out.append('<h2 id="events">Events</h2>\n<table class="events">\n<thead><tr><th>#</th><th>outcome</th>'

@@ -146,3 +146,24 @@ def test_a_split_after_the_first_reading_past_the_pause_is_not_called_that_readi
     first, at = clock(t[1000], today=rec.as_of), clock(rec.shift_at, today=rec.as_of)
     assert (f"at {at} (or from {first}, the first reading after 6 h without readings, since 00:16:39Z)"
             in text), text
+
+
+@pytest.mark.parametrize(("pause", "said"), [(1800.0, "30 min"), (8 * 3600.0 + 23 * 60.0 + 16.0, "8 h 23 min")])
+def test_the_pause_is_said_as_a_person_says_a_duration(pause: float, said: str) -> None:
+    # A new user's trial (2026-12-05): a Brackenfield filler stopped for half an hour
+    # (readings 1 s apart, then none from 06:39:59 to 07:10:00) read "the first reading after
+    # 30.02 min without readings"; a stop of 8 h 23 min read "8.384 h".  A duration for an
+    # operator is said in whole minutes, or hours and minutes, as the summary's other
+    # durations are (display.human_duration; common practice).  The pause's true length is
+    # the data's construction: the readings' times, pause + 1 s apart across it.
+    rng = np.random.default_rng(3)
+    x = 500.0 + 0.5 * rng.standard_normal(1600)
+    x[1000:] += 1.5
+    t = T0 + np.arange(1600.0)
+    t[1000:] += pause
+    recs = feed(x, t)
+    conf = [r for r in recs if r.phase == "confirmed"]
+    assert len(conf) == 1, [r.phase for r in recs]
+    assert conf[0].gap_from == t[999]
+    text = alert_summary(conf[0])
+    assert f"the first reading after {said} without readings, since 00:16:39Z)" in text, text

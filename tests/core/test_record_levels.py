@@ -112,7 +112,15 @@ def test_a_step_on_readings_without_noise_says_so_instead_of_inf_sigma() -> None
     (500.02, 501.3, 1.28, ("500.02", "501.30")),
     (7.25, 7.5, 0.25, ("7.25", "7.50")),
     (501.3, 500.02, 1.28, ("501.30", "500.02")),
-    # Padded only to the level's own five figures: 12345 takes no decimals from 0.5.
+    # A new user's replay (2026-12-05): a detected record's levels 499.9951 and 502.2031 read
+    # "500.0 -> 502.2", four figures where its confirmed record read "500.00 -> 502.36": both
+    # lost a zero to '.5g', so neither could lend the other its decimals.  A level that five
+    # figures round keeps the zeros of its five figures.
+    (499.9951, 502.2031, 2.208, ("500.00", "502.20")),
+    (500.0049, 501.2003, 1.195, ("500.00", "501.20")),
+    (30.00004, 29.49996, -0.5, ("30.000", "29.500")),
+    # Padded only to the level's own five figures: 12345 takes no decimals from 0.5 (an
+    # exact value, a sensor's fallback, keeps its short form).
     (12345.0, 0.5, 12344.5, ("12345", "0.5")),
     # Both already alike, or in exponent form: unchanged.
     (500.03, 501.83, 1.8, ("500.03", "501.83")),

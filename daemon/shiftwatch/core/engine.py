@@ -349,6 +349,27 @@ REFINE_BLOCK_MAX = 65536
 _DEFAULT_SETTINGS = DetectionSettings()
 
 
+def pause_before(times: np.ndarray, shift_at_low: float, shift_at_high: float) -> float | None:
+    """The time of the last reading before the longest pause of ``times`` (sorted, at
+    least 3), of more than GAP_FACTOR times their median interval, that ends at
+    ``shift_at_low`` or inside the interval up to ``shift_at_high``; else None.  The
+    event's records (``gap_from``) and ``shiftwatch fit`` name it: a step across a pause
+    may have come at any moment of it.
+
+    >>> t = np.array([0.0, 1.0, 2.0, 1802.0, 1803.0, 1804.0])
+    >>> pause_before(t, 1802.0, 1802.0), pause_before(t, 1.0, 1802.0), pause_before(t, 1803.0, 1804.0)
+    (2.0, 2.0, None)
+    """
+    j = int(np.searchsorted(times, shift_at_low, side="left"))
+    if j < 1:
+        return None
+    k = max(int(np.searchsorted(times, shift_at_high, side="right")), j + 1)
+    usual = float(np.median(np.diff(times)))
+    gaps = np.diff(times[j - 1:k])
+    i = int(np.argmax(gaps))
+    return float(times[j - 1 + i]) if usual > 0.0 and gaps[i] > GAP_FACTOR * usual else None
+
+
 class StreamEngine:
     """Watches one stream for level shifts.
 
@@ -2723,15 +2744,7 @@ class StreamEngine:
         f = self._fitter
         if f is None or len(f) < 3:
             return None
-        tt = f.times
-        j = int(np.searchsorted(tt, shift_at_low, side="left"))
-        if j < 1:
-            return None
-        k = max(int(np.searchsorted(tt, shift_at_high, side="right")), j + 1)
-        usual = float(np.median(np.diff(tt)))
-        gaps = np.diff(tt[j - 1:k])
-        i = int(np.argmax(gaps))
-        return float(tt[j - 1 + i]) if usual > 0.0 and gaps[i] > GAP_FACTOR * usual else None
+        return pause_before(f.times, shift_at_low, shift_at_high)
 
     def _record(self, ev: OpenEvent, fit: StepFit, phase: str, as_of: float,
                 **extra: Any) -> AlertRecord:
