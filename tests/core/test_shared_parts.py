@@ -1,6 +1,8 @@
 """The parts an established stream shares with the others, against a part of its own each.
 
-A daemon holds one engine per stream.  With ``engine.SHARED_PARTS`` an engine whose level is
+A daemon holds one engine per stream.  With ``engine.SHARED_PARTS`` (and
+``baseline.SHARED_VALUES``: equal positive numbers many streams hold, the sampling interval,
+the design ARL, the refine block and a full window's count, are one object) an engine whose level is
 established holds no young phase of its own (it points at ``young.IDLE_YOUNG``, read-only,
 and takes a ``YoungPhase`` of its own before it writes one: a first warm-up, a level
 re-anchored after a step, a provisional baseline, a snapshot of a young level), and its
@@ -30,7 +32,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from shiftwatch.core import engine, follow
+from shiftwatch.core import baseline, engine, follow
 from shiftwatch.core.engine import StreamEngine
 from shiftwatch.core.young import IDLE_YOUNG, YoungPhase
 
@@ -41,12 +43,12 @@ T0 = 1_788_000_000.0
 
 @contextmanager
 def _shared(on: bool) -> Iterator[None]:
-    saved = engine.SHARED_PARTS
-    engine.SHARED_PARTS = on
+    saved = engine.SHARED_PARTS, baseline.SHARED_VALUES
+    engine.SHARED_PARTS = baseline.SHARED_VALUES = on
     try:
         yield
     finally:
-        engine.SHARED_PARTS = saved
+        engine.SHARED_PARTS, baseline.SHARED_VALUES = saved
 
 
 _run = functools.partial(batches.switched_run, _shared)  # (eng, t, x, a, cuts, on): everything said and kept
@@ -186,3 +188,53 @@ def test_the_shared_idle_young_phase_is_read_only() -> None:
     import pickle
     assert copy.deepcopy(IDLE_YOUNG) is IDLE_YOUNG and pickle.loads(pickle.dumps(IDLE_YOUNG)) is IDLE_YOUNG
     _idle_untouched()
+
+
+def test_established_streams_share_their_equal_numbers() -> None:
+    # What baseline.SHARED_VALUES is for: streams sampled alike hold one float for their
+    # interval and design ARL, one int for their refine block and full window's count
+    # (each a float of 24 or an int of 32 bytes a stream otherwise); restored from a
+    # snapshot as well.  Off: numbers of their own, equal.
+    rng = np.random.default_rng(103)
+    n = 1300
+    t = T0 + np.arange(float(n))
+    x = 80.0 + 0.3 * rng.standard_normal(n)  # the same readings: the same numbers
+
+    def fed(on: bool, k: int) -> StreamEngine:
+        with _shared(on):
+            eng = StreamEngine(f"brackenfield/press{k}/force")
+            for lo in range(0, n, 260):
+                eng.process(t[lo: lo + 260], x[lo: lo + 260])
+            assert eng.state == "watching" and eng._baseline is not None
+            return eng
+
+    def numbers(eng: StreamEngine) -> list[Any]:
+        assert eng._baseline is not None
+        return [eng._baseline.interval, eng._test_arl0, eng._refine_block, eng._window._n]
+
+    on = [fed(True, k) for k in range(3)]
+    with _shared(True):
+        again = StreamEngine("brackenfield/press9/force")
+        again.set_state(json.loads(json.dumps(on[0].get_state())))
+    assert numbers(on[0]) == [1.0, numbers(on[0])[1], 1024, 400] and on[0]._window._n is on[0]._window.keep
+    for eng in (*on[1:], again):
+        assert numbers(eng) == numbers(on[0])
+        assert all(a is b for a, b in zip(numbers(eng)[:3], numbers(on[0])[:3], strict=True))
+    off = [fed(False, k) for k in range(2)]
+    assert numbers(off[0]) == numbers(off[1]) == numbers(on[0])
+    assert not any(a is b for a, b in zip(numbers(off[0]), numbers(off[1]), strict=True))
+
+
+def test_shared_value_keeps_every_bit() -> None:
+    # Only positive numbers are shared, of their own type: 0.0 and -0.0, 1 and 1.0 and True
+    # compare equal but are not the same number; NaN equals nothing.
+    with _shared(True):
+        for v in (-0.0, 0.0, -3.5, float("nan"), True, 0, -700):
+            assert baseline.shared_value(v) is v
+        one = baseline.shared_value(1.0)
+        assert type(baseline.shared_value(1)) is int and baseline.shared_value(float(1)) is one
+        big = 10**6 + 1
+        assert baseline.shared_value(big) is baseline.shared_value(int(str(big)))
+    with _shared(False):
+        x = float("1.5")
+        assert baseline.shared_value(x) is x

@@ -47,6 +47,38 @@ DIRECT_CALLS = True
 SHARED_SCALARS = True
 _BOUNDS: dict[float, tuple[FloatArray, FloatArray]] = {}
 
+#: Positive numbers many streams hold equal (a baseline's sampling interval, the design ARL,
+#: the refine block, a full window's count): one object for all the streams that hold an
+#: equal one (shared_value), instead of a float of 24 bytes or an int above 256 of 32 bytes
+#: each.  Equal positive floats (and ints) are the same bits, so nothing read from them
+#: changes.  False: each engine's own, the reference (tests/core/test_shared_parts.py holds
+#: the two to each other).
+SHARED_VALUES = True
+_SHARED_FLOATS: dict[float, float] = {}
+_SHARED_INTS: dict[int, int] = {}
+
+
+def shared_value(v: Any) -> Any:
+    """``v``, or an equal number of the same type kept earlier (a positive float or int; any
+    other value as it is: 0.0 and -0.0 are equal but not the same bits, NaN equals nothing).
+
+    >>> a, b = 2.0 ** 0.5, 2.0 ** 0.5
+    >>> shared_value(a) is shared_value(b), shared_value(-0.0)
+    (True, -0.0)
+    """
+    if not SHARED_VALUES:
+        return v
+    kind = type(v)
+    kept = _SHARED_FLOATS if kind is float else _SHARED_INTS if kind is int else None
+    if kept is None or not v > 0:
+        return v
+    got = kept.get(v)
+    if got is None:
+        if len(kept) >= 1024:  # values of one stream each (a jittered interval): a bounded few
+            kept.clear()
+        got = kept[v] = v
+    return got
+
 
 def clip_bounds(c: float) -> tuple[FloatArray, FloatArray]:
     """``-c`` and ``c`` as read-only 0-d float64 arrays, shared: one pair per value of ``c``
@@ -260,6 +292,10 @@ class Baseline:
     clip: float = 3.0  # residuals are clipped here (lower for heavy-tailed noise)
     tail_fraction: float = 0.0  # share of residuals beyond TAIL_AT sigmas
     n_level: int = 0  # samples behind the level when fewer than n (0: n)
+
+    def __post_init__(self) -> None:
+        # the interval of every stream sampled alike: one float (SHARED_VALUES)
+        object.__setattr__(self, "interval", shared_value(self.interval))
 
     @property
     def level_n(self) -> int:

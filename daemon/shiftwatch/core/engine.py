@@ -57,6 +57,7 @@ from shiftwatch.core.baseline import (
     estimate_baseline,
     estimation_adjusted_arl,
     median,
+    shared_value,
     sigma_floor,
 )
 from shiftwatch.core.calm import MAX_CHARTS as CALM_MAX_CHARTS
@@ -884,7 +885,7 @@ class StreamEngine:
                     self._test.set_state(old.get_state())
                 except ValueError:
                     pass  # a test of another shape: start it afresh
-        self._test_arl0 = arl0
+        self._test_arl0 = shared_value(arl0)  # (the same for every stream of a phi and interval)
         self._test_shift_z = shift_z
         self._test_n_ref = float(b.n)
         self._test_n_level = n_level
@@ -1895,7 +1896,7 @@ class StreamEngine:
         if self._watch_kept >= self._next_refine:
             self._refine()
             # Refine often while the baseline rests on few samples, then rarely.
-            self._refine_block = min(2 * self._refine_block, REFINE_BLOCK_MAX)
+            self._refine_block = shared_value(min(2 * self._refine_block, REFINE_BLOCK_MAX))
             self._next_refine = self._watch_kept + self._refine_block
         fo = self._follower
         if self._watch_kept >= fo.next_center:
@@ -2641,7 +2642,7 @@ class StreamEngine:
                 # Snapshots before level re-anchoring have no n_level: the level rested on n_ref.
                 n_level = _count(ts.get("n_level", int(min(n_ref, 1e9))), "test.n_level")
                 self._test = make_test(self.settings, arl0, shift_z, n_ref, n_level=n_level)
-                self._test_arl0, self._test_shift_z, self._test_n_ref = arl0, shift_z, n_ref
+                self._test_arl0, self._test_shift_z, self._test_n_ref = shared_value(arl0), shift_z, n_ref
                 self._test_n_level = n_level
                 self._test.set_state(ts["state"])
             field_name = "prev_r"
@@ -2685,7 +2686,7 @@ class StreamEngine:
             field_name = "watch_kept"
             self._watch_kept = _count(state["watch_kept"], "watch_kept")
             self._next_refine = _count(state["next_refine"], "next_refine")
-            self._refine_block = _count(state["refine_block"], "refine_block")
+            self._refine_block = shared_value(_count(state["refine_block"], "refine_block"))
             field_name = "follow_lag"
             fo.lag = _count(state.get("follow_lag", 0), "follow_lag")
             # Not yet followed: samples of the window, or of an open event (up to its trip).

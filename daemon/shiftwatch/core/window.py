@@ -8,6 +8,8 @@ from typing import ClassVar
 import numpy as np
 from numpy.typing import NDArray
 
+from shiftwatch.core import baseline as _baseline
+
 FloatArray = NDArray[np.float64]
 
 class Window:
@@ -82,7 +84,9 @@ class Window:
             n -= shift
         b[i, 0, n: n + m] = x
         b[i, 1, n: n + m] = t
-        self._n = n + m
+        n += m
+        # a full window's count: the int of the settings, not one of 32 bytes of its own
+        self._n = self.keep if n == self.keep and _baseline.SHARED_VALUES else n
 
     def push(self, x: float, t: float) -> None:
         """:meth:`extend` by one sample."""
