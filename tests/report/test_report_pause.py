@@ -12,6 +12,7 @@ is the data's construction: every reading before the stop at 500 g, every one af
 from __future__ import annotations
 
 import html
+import json
 import re
 from pathlib import Path
 
@@ -22,20 +23,26 @@ from shiftwatch.core.timefmt import format_time
 STREAM = "brackenfield/line3/filler/head4/fill"
 
 
-def test_the_events_table_names_the_pause_before_a_step(cli, tmp_path: Path) -> None:
-    rng = np.random.default_rng(20261205)
-    x = 500.0 + 0.5 * rng.standard_normal(2400)
-    x[1200:] += 2.0
-    t = 1_796_000_000.0 + np.arange(2400.0)
-    t[1200:] += 1800.0
-    data = tmp_path / "stop.csv"
+def replay_report(cli, tmp_path: Path, name: str, t: np.ndarray, x: np.ndarray) -> str:
+    """The report page of ``shiftwatch replay --report`` (a subprocess) on a long CSV of one
+    stream (``t``, ``x``); its records in ``tmp_path / "r.jsonl"``."""
+    data = tmp_path / name
     with open(data, "w", encoding="utf-8") as f:
         f.write("time,stream,value\n")
         f.writelines(f"{ti:.0f},{STREAM},{v!r}\n" for ti, v in zip(t.tolist(), x.tolist(), strict=True))
     res = cli("replay", "--jobs", "1", "--report", str(tmp_path / "report"), "--out", str(tmp_path / "r.jsonl"),
               str(data))
     assert res.returncode == 0, res.stderr[-2000:]
-    page = (tmp_path / "report" / "report.html").read_text(encoding="utf-8")
+    return (tmp_path / "report" / "report.html").read_text(encoding="utf-8")
+
+
+def test_the_events_table_names_the_pause_before_a_step(cli, tmp_path: Path) -> None:
+    rng = np.random.default_rng(20261205)
+    x = 500.0 + 0.5 * rng.standard_normal(2400)
+    x[1200:] += 2.0
+    t = 1_796_000_000.0 + np.arange(2400.0)
+    t[1200:] += 1800.0
+    page = replay_report(cli, tmp_path, "stop.csv", t, x)
     rows = [html.unescape(re.sub(r"<[^>]+>", " ", r))
             for r in re.findall(r'<tr class="event .*?</tr>', page, re.DOTALL)]
     assert len(rows) == 1, rows
@@ -53,18 +60,10 @@ def test_the_streams_table_counts_every_outcome_so_a_row_adds_up(cli, tmp_path: 
     x[2400:] += 1.2
     t = 1_796_000_000.0 + np.arange(4200.0)
     t[2400:] += 1800.0
-    data = tmp_path / "excursion.csv"
-    with open(data, "w", encoding="utf-8") as f:
-        f.write("time,stream,value\n")
-        f.writelines(f"{ti:.0f},{STREAM},{v!r}\n" for ti, v in zip(t.tolist(), x.tolist(), strict=True))
-    res = cli("replay", "--jobs", "1", "--report", str(tmp_path / "report"), "--out", str(tmp_path / "r.jsonl"),
-              str(data))
-    assert res.returncode == 0, res.stderr[-2000:]
-    import json
+    page = replay_report(cli, tmp_path, "excursion.csv", t, x)
     phases = [json.loads(line)["phase"] for line in (tmp_path / "r.jsonl").read_text().splitlines()]
     finals = [p for p in phases if p != "detected"]
     assert "returned" in finals, phases
-    page = (tmp_path / "report" / "report.html").read_text(encoding="utf-8")
     table = re.search(r'<table class="streams">.*?</table>', page, re.DOTALL)
     assert table is not None
     head = [html.unescape(c) for c in re.findall(r"<th>(.*?)</th>", table.group(0).split("</thead>")[0])]
